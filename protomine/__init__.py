@@ -1,0 +1,14 @@
+"""protomine: mine pose-aware object prototypes from unlabelled RGB-D captures.
+
+The pipeline, one sub-package per stage:
+
+    scenes  -> demo captures (renderer of the built-in scenario)
+    ingest  -> support plane, object proposals, object-centric cylindrical volumes, object store
+    mine    -> pose search (FFT over yaw, discrete scales), clustering engine, prototype library
+    label   -> single-view matching against the library, open-set decision, overlays
+    audit   -> cluster purity and pose consistency against held-out labels, report
+    curate  -> naming clusters, one-shot classes, export
+"""
+from __future__ import annotations
+
+__version__ = "0.1.0"

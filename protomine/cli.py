@@ -1,0 +1,48 @@
+"""The ``protomine`` command: composes the stage commands; each lives beside its library code."""
+from __future__ import annotations
+
+import functools
+import importlib
+import sys
+
+import typer
+
+from .errors import InputError
+
+app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+                  help="Mine pose-aware object prototypes from unlabelled RGB-D captures.")
+
+COMMANDS: list[tuple[str, str]] = [
+    # (module under protomine, function name); each stage adds its own line
+    ("provenance", "provenance_cmd"),
+]
+
+
+@app.callback()
+def _root() -> None:
+    """Find objects in RGB-D captures, lift them to 3D volumes, mine pose-aware prototypes, label, audit."""
+
+
+def guarded(fn):
+    """Bad input becomes one line on stderr and exit code 2, never a traceback."""
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except InputError as e:
+            print(f"error: {e}", file=sys.stderr)
+            raise typer.Exit(2) from None
+    return wrapper
+
+
+def _register() -> None:
+    for mod, name in COMMANDS:
+        module = importlib.import_module(f"protomine.{mod}")
+        app.command(name=name.removesuffix("_cmd"))(guarded(getattr(module, name)))
+
+
+_register()
+
+
+def main() -> None:
+    app()
