@@ -1,0 +1,129 @@
+"""Clustering quality against held-out labels, and yaw consistency modulo a symmetry period.
+
+Conventions:
+
+- ``clusters`` (N,) are integer cluster ids of the labelled objects; ``labels`` (N,) are their truth
+  labels (any hashable values, usually strings).  Both describe the same N objects, in the same order.
+- Purity (Manning, Raghavan & Schutze 2008, ch. 16) = (1/N) sum_k max_j |cluster_k & class_j|;
+  inverse purity swaps the roles of clusters and classes.
+- Hungarian-matched accuracy: each cluster is matched to at most one label (one-to-one, maximising the
+  number of agreeing objects, ``scipy.optimize.linear_sum_assignment``); objects in unmatched clusters
+  count as wrong.
+- NMI, ARI, Rand index, homogeneity / completeness / V-measure come from scikit-learn unchanged
+  (NMI with the arithmetic-mean normalisation, as in Manning et al. 2008).
+- Yaw in degrees.  A prototype with symmetry order n (library convention: 0 = continuous, 1 = none,
+  n = n-fold) has period 360/n degrees; continuous symmetry has period ``inf`` and every yaw error is 0.
+  Truth yaw is measured from the capture's reference direction, predicted yaw from the prototype's own
+  frame, so the two differ by one unknown offset per cluster: truth = predicted + offset (mod period).
+"""
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy.optimize import linear_sum_assignment
+from scipy.stats import circmean
+from sklearn import metrics as skm
+from sklearn.metrics.cluster import contingency_matrix
+
+from ..geometry import angle_diff_deg
+
+__all__ = [
+    "contingency", "purity_score", "inverse_purity_score", "hungarian_accuracy_score",
+    "clustering_scores", "symmetry_to_period_deg", "yaw_offset_deg", "yaw_error_deg",
+]
+
+
+def _check_pair(clusters, labels) -> tuple[np.ndarray, np.ndarray]:
+    clusters = np.asarray(clusters)
+    labels = np.asarray(labels)
+    if clusters.ndim != 1 or labels.ndim != 1 or clusters.shape != labels.shape:
+        raise ValueError(f"clusters and labels must be 1-D of equal length, got {clusters.shape} and {labels.shape}")
+    if clusters.size == 0:
+        raise ValueError("need at least one labelled object, got 0")
+    return clusters, labels
+
+
+def contingency(clusters, labels) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Counts table (K, L): row k = cluster ``cluster_ids[k]``, column j = label ``label_names[j]``.
+
+    Returns (table (K, L) int64, cluster_ids (K,), label_names (L,)), both sorted ascending.
+    """
+    clusters, labels = _check_pair(clusters, labels)
+    cluster_ids = np.unique(clusters)
+    label_names = np.unique(labels)
+    return contingency_matrix(clusters, labels).astype(np.int64), cluster_ids, label_names
+
+
+def _purity(table: np.ndarray) -> float:
+    return float(table.max(axis=1).sum() / table.sum())
+
+
+def purity_score(clusters, labels) -> float:
+    """Fraction of objects whose label is their cluster's majority label (higher is better)."""
+    return _purity(contingency(clusters, labels)[0])
+
+
+def inverse_purity_score(clusters, labels) -> float:
+    """Purity with clusters and labels swapped: how whole each label class is kept."""
+    return _purity(contingency(clusters, labels)[0].T)
+
+
+def _hungarian_accuracy(table: np.ndarray) -> float:
+    rows, cols = linear_sum_assignment(table, maximize=True)
+    return float(table[rows, cols].sum() / table.sum())
+
+
+def hungarian_accuracy_score(clusters, labels) -> float:
+    """Accuracy after the best one-to-one matching of clusters to labels."""
+    return _hungarian_accuracy(contingency(clusters, labels)[0])
+
+
+def clustering_scores(clusters, labels) -> dict[str, float]:
+    """All external clustering scores of (clusters (N,), labels (N,)); every value is higher-is-better."""
+    clusters, labels = _check_pair(clusters, labels)
+    table = contingency(clusters, labels)[0]
+    h, c, v = skm.homogeneity_completeness_v_measure(labels, clusters)
+    return {
+        "n": int(clusters.size),
+        "purity": _purity(table),
+        "inverse_purity": _purity(table.T),
+        "hungarian_accuracy": _hungarian_accuracy(table),
+        "nmi": float(skm.normalized_mutual_info_score(labels, clusters)),
+        "ari": float(skm.adjusted_rand_score(labels, clusters)),
+        "rand_index": float(skm.rand_score(labels, clusters)),
+        "homogeneity": float(h),
+        "completeness": float(c),
+        "v_measure": float(v),
+    }
+
+
+# --- yaw ------------------------------------------------------------------------------------
+
+def symmetry_to_period_deg(order: int) -> float:
+    """Library symmetry order (0 continuous, 1 none, n n-fold) -> yaw period in degrees (inf for 0)."""
+    order = int(order)
+    if order < 0:
+        raise ValueError(f"symmetry order must be >= 0, got {order}")
+    return math.inf if order == 0 else 360.0 / order
+
+
+def yaw_offset_deg(truth_deg, pred_deg, period: float = 360.0) -> float:
+    """Circular mean of (truth - predicted) modulo ``period``, in [0, period); 0 for infinite period.
+
+    truth_deg, pred_deg: (M,) degrees, M >= 1.  The differences are wrapped onto a circle of
+    circumference ``period`` (an n-fold symmetric prototype aligns equally at offset and offset + period).
+    """
+    truth_deg = np.asarray(truth_deg, dtype=np.float64)
+    pred_deg = np.asarray(pred_deg, dtype=np.float64)
+    if truth_deg.shape != pred_deg.shape or truth_deg.ndim != 1 or truth_deg.size == 0:
+        raise ValueError(f"truth_deg and pred_deg must be 1-D, non-empty and equal, got {truth_deg.shape} and {pred_deg.shape}")
+    if not np.isfinite(period):
+        return 0.0
+    return float(np.mod(circmean(np.mod(truth_deg - pred_deg, period), high=period, low=0.0), period))
+
+
+def yaw_error_deg(truth_deg, pred_deg, offset_deg: float, period: float = 360.0) -> np.ndarray:
+    """(M,) absolute yaw error in [0, period/2] after aligning predicted yaw by ``offset_deg``."""
+    pred = np.asarray(pred_deg, dtype=np.float64) + offset_deg
+    return angle_diff_deg(np.asarray(truth_deg, dtype=np.float64), pred, period)
