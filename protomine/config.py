@@ -46,6 +46,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "audit.bootstrap": (10, 100000),
     "audit.match_radius_m": (1e-4, 10.0),
     "audit.target_interval_width": (0.01, 1.0),
+    "audit.clean_purity": (0.5, 1.0),
 }
 
 
