@@ -27,6 +27,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "ingest.cluster_min_points": (1, 10000),
     "ingest.crop_size": (8, 512),
     "ingest.max_crops_per_object": (1, 64),
+    "ingest.single_views_per_object": (0, 64),
     "volume.radial_bins": (2, 64),
     "volume.azimuth_bins": (8, 360),
     "volume.height_bins": (1, 64),

@@ -1,0 +1,1 @@
+"""Ingest: support plane, object proposals, object-centric volumes, the HDF5 object store."""

@@ -1,0 +1,247 @@
+"""Objects in a capture: the support plane, then one proposal per physical object.
+
+With masks: each mask id is one object across all frames.  Without masks: class-agnostic proposals
+from geometry alone: points above the plane (by ``above_plane_m``), fused across frames in the world
+frame (static objects stay put there), voxel down-sampled, grouped by DBSCAN (scikit-learn), filtered
+by size; each object then gets its per-frame pixels by projecting back (a pixel belongs to the object
+whose fused points are nearest to its own 3-D point, within the DBSCAN radius).
+
+The object frame (see protomine.geometry): origin at the base centre on the plane (the centre of the
+minimum enclosing circle of the footprint, robust to one-sided views of round objects), z = up.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+from scipy.spatial import ConvexHull, QhullError, cKDTree
+from sklearn.cluster import DBSCAN
+
+from ..capture import Capture
+from ..errors import InputError
+from ..geometry import camera_to_world, depth_to_points, plane_basis
+from .plane import PlaneFit, fit_plane
+from .volume import ObjectFrame, View
+
+HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
+FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
+DBSCAN_MIN_SAMPLES = 5
+
+
+@dataclass
+class FrameData:
+    id: str
+    depth: np.ndarray         # (H, W) metres
+    rgb: np.ndarray           # (H, W, 3) uint8
+    mask: np.ndarray | None   # (H, W) int ids
+    cam_to_world: np.ndarray  # (4, 4)
+    points: np.ndarray        # (M, 3) world points of every valid pixel
+    pixels: np.ndarray        # (M,) flat pixel indices
+
+
+@dataclass
+class Proposal:
+    object_id: str
+    key: str                            # mask id, or "p<k>" for geometry-only proposals
+    frame: ObjectFrame
+    center_world: np.ndarray            # (3,) centre of the object's points
+    n_points: int
+    pixels: dict[str, np.ndarray] = field(default_factory=dict)  # frame id -> flat pixel indices
+
+
+@dataclass
+class SceneObjects:
+    capture: Capture
+    plane: PlaneFit
+    frames: list[FrameData]
+    proposals: list[Proposal]
+
+    def views(self, p: Proposal, frame_ids: list[str] | None = None) -> list[View]:
+        K = self.capture.intrinsics.K
+        out = []
+        for fd in self.frames:
+            if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
+                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id]))
+        return out
+
+
+def load_frames(cap: Capture, frame_ids: list[str] | None = None,
+                progress: Callable[[str], None] | None = None) -> list[FrameData]:
+    K = cap.intrinsics.K
+    out = []
+    for fr in cap.frames:
+        if frame_ids is not None and fr.id not in frame_ids:
+            continue
+        depth = cap.depth(fr.id)
+        if not np.any(depth > 0):
+            raise InputError(cap.frame_file("depth", fr.id), "pixels", "all depth readings are 0 (no reading anywhere)")
+        rgb = cap.rgb(fr.id)
+        if rgb.shape[:2] != depth.shape:
+            raise InputError(cap.frame_file("rgb", fr.id), "size", f"expected {depth.shape[::-1]} like the depth image, got {rgb.shape[1::-1]}")
+        mask = cap.mask(fr.id)
+        pc, idx = depth_to_points(depth, K)
+        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx))
+        if progress:
+            progress(f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
+    return out
+
+
+def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.random.Generator) -> PlaneFit:
+    c = cfg["ingest"]
+    pts = np.concatenate([f.points for f in frames])
+    if len(pts) > c["max_points_per_capture"]:
+        pts = pts[rng.choice(len(pts), c["max_points_per_capture"], replace=False)]
+    cams = np.mean([f.cam_to_world[:3, 3] for f in frames], axis=0)
+    try:
+        plane = fit_plane(pts, inlier_dist=c["plane_inlier_m"], confidence=c["plane_confidence"], rng=rng, toward=cams)
+    except ValueError as e:
+        raise InputError(cap.path, "depth", f"no support plane: {e}") from None
+    if plane.inlier_fraction < c["plane_min_inlier_frac"]:
+        raise InputError(cap.path, "depth", f"no support plane: the best plane holds {plane.inlier_fraction:.1%} of the points, "
+                         f"expected at least {c['plane_min_inlier_frac']:.0%} (ingest.plane_min_inlier_frac)")
+    return plane
+
+
+def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
+    """Smallest circle (centre (2,), radius) containing points (N, 2); Welzl's algorithm on the hull."""
+    pts = np.asarray(xy, dtype=np.float64)
+    if len(pts) >= 4:
+        try:
+            pts = pts[ConvexHull(pts).vertices]
+        except QhullError:
+            pass
+    pts = pts[np.random.default_rng(0).permutation(len(pts))]  # fixed order: deterministic result
+
+    def circle2(a, b):
+        c = (a + b) / 2
+        return c, np.linalg.norm(a - c)
+
+    def circle3(a, b, c):
+        d = 2 * (a[0] * (b[1] - c[1]) + b[0] * (c[1] - a[1]) + c[0] * (a[1] - b[1]))
+        if abs(d) < 1e-15:
+            cands = [circle2(a, b), circle2(a, c), circle2(b, c)]
+            return max(cands, key=lambda t: t[1])
+        ux = ((a @ a) * (b[1] - c[1]) + (b @ b) * (c[1] - a[1]) + (c @ c) * (a[1] - b[1])) / d
+        uy = ((a @ a) * (c[0] - b[0]) + (b @ b) * (a[0] - c[0]) + (c @ c) * (b[0] - a[0])) / d
+        o = np.array([ux, uy])
+        return o, np.linalg.norm(a - o)
+
+    def inside(circ, p):
+        return np.linalg.norm(p - circ[0]) <= circ[1] * (1 + 1e-9) + 1e-12
+
+    if len(pts) == 0:
+        return np.zeros(2), 0.0
+    circ = (pts[0], 0.0)
+    for i in range(1, len(pts)):
+        if inside(circ, pts[i]):
+            continue
+        circ = (pts[i], 0.0)
+        for j in range(i):
+            if inside(circ, pts[j]):
+                continue
+            circ = circle2(pts[i], pts[j])
+            for k in range(j):
+                if not inside(circ, pts[k]):
+                    circ = circle3(pts[i], pts[j], pts[k])
+    return np.asarray(circ[0]), float(circ[1])
+
+
+def object_frame(points: np.ndarray, plane: PlaneFit) -> tuple[ObjectFrame, np.ndarray]:
+    """Object frame and centre (3,) from the object's world points (M, 3)."""
+    up = plane.normal
+    B = plane_basis(up)
+    heights = plane.height(points)
+    height = max(float(np.percentile(heights, HEIGHT_QUANTILE)), 1e-3)
+    xy = points @ B[:2].T                                    # (M, 2) in-plane coordinates
+    med = np.median(xy, axis=0)
+    r = np.linalg.norm(xy - med, axis=1)
+    keep = r <= np.percentile(r, FOOTPRINT_TRIM) * 1.15
+    c2, radius = min_enclosing_circle(xy[keep])
+    # base centre: the circle's centre, on the plane
+    origin = c2 @ B[:2] + plane.offset * up
+    centre = origin + 0.5 * height * up
+    return ObjectFrame(origin=origin, up=up, radius=max(radius, 1e-3), height=height), centre
+
+
+def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
+    above = 0.5 * cfg["ingest"]["above_plane_m"]
+    per_id: dict[int, dict[str, np.ndarray]] = {}
+    pts_id: dict[int, list[np.ndarray]] = {}
+    for fd in frames:
+        ids = fd.mask.reshape(-1)[fd.pixels]
+        h = plane.height(fd.points)
+        keep = (ids > 0) & (h > above)
+        for oid in np.unique(ids[keep]):
+            sel = keep & (ids == oid)
+            per_id.setdefault(int(oid), {})[fd.id] = fd.pixels[sel]
+            pts_id.setdefault(int(oid), []).append(fd.points[sel])
+    props = []
+    for oid in sorted(per_id):
+        pts = np.concatenate(pts_id[oid])
+        if len(pts) < 10:
+            continue
+        fr, centre = object_frame(pts, plane)
+        props.append(Proposal(f"{cap.name}/{oid}", str(oid), fr, centre, len(pts), per_id[oid]))
+    return props
+
+
+def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
+    c = cfg["ingest"]
+    eps = c["cluster_eps_m"]
+    voxel = eps / 3.0
+    above_sel = []
+    for fd in frames:
+        h = plane.height(fd.points)
+        above_sel.append((h > c["above_plane_m"]) & (h < 2.0))
+    pts = np.concatenate([fd.points[s] for fd, s in zip(frames, above_sel)])
+    if len(pts) == 0:
+        return []
+    keys, inv = np.unique(np.floor(pts / voxel).astype(np.int64), axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    counts = np.bincount(inv)
+    vox = np.zeros((len(keys), 3))
+    np.add.at(vox, inv, pts)
+    vox /= counts[:, None]
+    lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
+    clusters = []
+    for l in range(lab.max() + 1):
+        sel = lab == l
+        if sel.sum() < c["cluster_min_points"]:
+            continue
+        fr, centre = object_frame(vox[sel], plane)
+        if fr.height < c["min_object_height_m"] or not (c["min_object_radius_m"] <= fr.radius <= c["max_object_radius_m"]):
+            continue
+        clusters.append((vox[sel], fr, centre))
+    # stable ids: order by position in the plane's own coordinates, rounded to 1 cm
+    B = plane_basis(plane.normal)
+    clusters.sort(key=lambda t: tuple(np.round(t[2] @ B.T, 2)))
+    if not clusters:
+        return []
+    tree_pts = np.concatenate([t[0] for t in clusters])
+    tree_lab = np.concatenate([np.full(len(t[0]), i) for i, t in enumerate(clusters)])
+    tree = cKDTree(tree_pts)
+    props = [Proposal(f"{cap.name}/p{i:03d}", f"p{i:03d}", fr, centre, 0, {}) for i, (_, fr, centre) in enumerate(clusters)]
+    for fd, s in zip(frames, above_sel):
+        d, j = tree.query(fd.points[s], distance_upper_bound=eps)
+        ok = np.isfinite(d)
+        lab_f = tree_lab[j[ok]]
+        pix = fd.pixels[s][ok]
+        for i, p in enumerate(props):
+            sel = lab_f == i
+            if sel.any():
+                p.pixels[fd.id] = pix[sel]
+                p.n_points += int(sel.sum())
+    return [p for p in props if p.n_points > 0]
+
+
+def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids: list[str] | None = None,
+                 use_masks: bool = True, progress: Callable[[str], None] | None = None) -> SceneObjects:
+    """Support plane and object proposals of a capture (or of the frames ``frame_ids`` only)."""
+    frames = load_frames(cap, frame_ids, progress)
+    plane = fit_support_plane(cap, frames, cfg, rng)
+    if use_masks and cap.has_masks:
+        props = _mask_proposals(cap, frames, plane, cfg)
+    else:
+        props = _geometry_proposals(cap, frames, plane, cfg)
+    return SceneObjects(cap, plane, frames, props)

@@ -1,0 +1,179 @@
+"""Object-centric cylindrical feature volumes: lifting views of one object into a (C, R, A, H) grid.
+
+Grid (see DEVELOPERS.md): radial bin i covers rho / rho_max in [i/R, (i+1)/R); azimuth bin j covers
+phi in [j, j+1) * 360/A degrees counter-clockwise about up from the object's x axis (the reference
+direction); height bin k covers z / z_max in [k/H, (k+1)/H).  rho_max = radial_margin * footprint
+radius and z_max = height_margin * height, so every volume is scale-normalised; the metric size is kept
+beside it.  Yawing the object by +d degrees rolls the volume by +d / (360/A) bins along azimuth, which is
+what makes the pose search an FFT along one axis.
+
+Channels (``CHANNELS``), per cell, fused over the frames that observed it:
+  surface   1 - exp(-n / n0): n = trilinear splat weight of the object's own points (n0 config)
+  free      fraction of observing frames in which a camera ray passed through the cell before
+            hitting a surface (projective carving: cell depth < measured depth - margin)
+  observed  number of frames that observed the cell (in front of or at the measured surface)
+  red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
+A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
+"unseen" is never confused with "empty".  Single-view lifting is the same code with one frame; its
+volume is partial (observed = 0 where unseen).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..geometry import camera_to_world, plane_basis, world_to_pixel
+
+CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
+FEATURES = ("surface", "free", "red*surface", "green*surface", "blue*surface")
+
+
+@dataclass(frozen=True)
+class Grid:
+    radial_bins: int = 8
+    azimuth_bins: int = 36
+    height_bins: int = 12
+    radial_margin: float = 1.15
+    height_margin: float = 1.10
+    surface_points_per_cell: float = 3.0
+    carve_margin_cells: float = 0.75
+
+    @classmethod
+    def from_config(cls, cfg: dict) -> "Grid":
+        return cls(**cfg["volume"])
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return (self.radial_bins, self.azimuth_bins, self.height_bins)
+
+
+@dataclass
+class View:
+    """One frame's look at one object.
+
+    depth (H, W) metres (0 = no reading); rgb (H, W, 3) uint8; K (3, 3); cam_to_world (4, 4);
+    pixels: flat indices (M,) into (H, W) of the pixels that belong to the object.
+    """
+    depth: np.ndarray
+    rgb: np.ndarray
+    K: np.ndarray
+    cam_to_world: np.ndarray
+    pixels: np.ndarray
+
+
+@dataclass
+class ObjectFrame:
+    """Where an object sits: base centre on the plane (3,), up (3,), footprint radius and height (m)."""
+    origin: np.ndarray
+    up: np.ndarray
+    radius: float
+    height: float
+
+
+def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
+    """World coordinates (R, A, H, 3) of the cell centres."""
+    R, A, H = grid.shape
+    rho = (np.arange(R) + 0.5) / R * grid.radial_margin * frame.radius
+    phi = (np.arange(A) + 0.5) / A * 2 * np.pi
+    z = (np.arange(H) + 0.5) / H * grid.height_margin * frame.height
+    rr, pp, zz = np.meshgrid(rho, phi, z, indexing="ij")
+    local = np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], axis=-1)
+    return local @ plane_basis(frame.up) + frame.origin
+
+
+def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Trilinear splat of values (M, V) at world points (M, 3) into (V+1, R, A, H): weight, weighted values."""
+    R, A, H = grid.shape
+    out = np.zeros((values.shape[1] + 1, R * A * H))
+    if len(pts_world) == 0:
+        return out.reshape(-1, R, A, H)
+    local = (pts_world - frame.origin) @ plane_basis(frame.up).T
+    rho = np.hypot(local[:, 0], local[:, 1]) / (grid.radial_margin * frame.radius) * R - 0.5
+    phi = np.mod(np.arctan2(local[:, 1], local[:, 0]), 2 * np.pi) / (2 * np.pi) * A - 0.5
+    z = local[:, 2] / (grid.height_margin * frame.height) * H - 0.5
+    i0, j0, k0 = np.floor(rho), np.floor(phi), np.floor(z)
+    fr, fp, fz = rho - i0, phi - j0, z - k0
+    vals = np.concatenate([np.ones((len(values), 1)), values], axis=1)
+    for di in (0, 1):
+        wi = fr if di else 1 - fr
+        ii = (i0 + di).astype(int)
+        # points just inside the axis or the rim/top keep their whole weight in the edge bin
+        ii = np.clip(ii, 0, R - 1)
+        for dj in (0, 1):
+            wj = fp if dj else 1 - fp
+            jj = np.mod(j0 + dj, A).astype(int)
+            for dk in (0, 1):
+                wk = fz if dk else 1 - fz
+                kk = (k0 + dk).astype(int)
+                ok = (kk >= 0) & (kk < H) & (rho < R)
+                w = (wi * wj * wk)[ok]
+                flat = (ii[ok] * A + jj[ok]) * H + kk[ok]
+                for c in range(vals.shape[1]):
+                    out[c] += np.bincount(flat, weights=w * vals[ok, c], minlength=R * A * H)
+    return out.reshape(-1, R, A, H)
+
+
+def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
+    """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
+    R, A, H = grid.shape
+    centres = cell_centres(grid, frame).reshape(-1, 3)
+    cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
+    margin = grid.carve_margin_cells * cell
+    surf_sum = np.zeros(R * A * H)
+    free_sum = np.zeros(R * A * H)
+    obs = np.zeros(R * A * H)
+    col = np.zeros((3, R * A * H))
+    colw = np.zeros(R * A * H)
+    for v in views:
+        h, w = v.depth.shape
+        uv, zc = world_to_pixel(centres, v.cam_to_world, v.K)
+        u = np.rint(uv[:, 0]).astype(int)
+        r = np.rint(uv[:, 1]).astype(int)
+        inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
+        d = np.zeros(len(centres))
+        d[inside] = v.depth[r[inside], u[inside]]
+        seen = inside & (d > 0) & (zc < d + margin)
+        free = seen & (zc < d - margin)
+        # the object's own points: back-project its pixels
+        vv, uu = np.divmod(v.pixels, w)
+        z = v.depth.reshape(-1)[v.pixels]
+        good = z > 0
+        vv, uu, z = vv[good], uu[good], z[good]
+        pc = np.stack([(uu - v.K[0, 2]) * z / v.K[0, 0], (vv - v.K[1, 2]) * z / v.K[1, 1], z], axis=1)
+        pw = camera_to_world(pc, v.cam_to_world)
+        rgb = v.rgb.reshape(-1, 3)[v.pixels[good]].astype(np.float64) / 255.0
+        sp = _splat(grid, frame, pw, rgb).reshape(4, -1)
+        surf = 1.0 - np.exp(-sp[0] / grid.surface_points_per_cell)
+        seen |= sp[0] > 0
+        free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
+        obs += seen
+        surf_sum += surf * seen
+        free_sum += free
+        col += sp[1:]
+        colw += sp[0]
+    n = np.maximum(obs, 1.0)
+    out = np.zeros((len(CHANNELS), R * A * H))
+    out[0] = surf_sum / n
+    out[1] = free_sum / n
+    out[2] = obs
+    out[3:6] = col / np.maximum(colw, 1e-9)
+    return out.reshape(len(CHANNELS), R, A, H).astype(np.float32)
+
+
+def matching_features(volumes: np.ndarray, *, free_weight: float = 0.5, colour_weight: float = 0.15,
+                      obs_saturation: float = 2.0) -> tuple[np.ndarray, np.ndarray]:
+    """Store volumes (N, 6, R, A, H) -> features X (N, 5, R, A, H) and observation weights W (N, R, A, H).
+
+    X = [surface, sqrt(free_weight) * free, sqrt(colour_weight) * rgb * surface] so that the squared
+    distance weighs channels by free_weight and colour_weight; W = min(observed, s) / s saturates after
+    s observing frames (a cell seen twice is as trustworthy as one seen eight times).
+    """
+    v = np.asarray(volumes, dtype=np.float32)
+    surf = v[:, 0]
+    X = np.empty((v.shape[0], len(FEATURES)) + v.shape[2:], dtype=np.float32)
+    X[:, 0] = surf
+    X[:, 1] = np.sqrt(free_weight) * v[:, 1]
+    X[:, 2:5] = np.sqrt(colour_weight) * v[:, 3:6] * surf[:, None]
+    W = np.minimum(v[:, 2], obs_saturation) / obs_saturation
+    return X, W.astype(np.float32)
