@@ -1,0 +1,1 @@
+"""The demo scenario renderer: SDF shapes, sphere tracing, sensor noise, scenario generation with truth files."""
