@@ -1,0 +1,258 @@
+"""Audit numbers: clustering scores, yaw alignment, bootstrap / Wilson intervals, label propagation."""
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+from scipy.stats import bootstrap
+from sklearn import metrics as skm
+
+from protomine.audit.metrics import (clustering_scores, contingency, hungarian_accuracy_score,
+                                     inverse_purity_score, purity_score, symmetry_to_period_deg,
+                                     yaw_error_deg, yaw_offset_deg)
+from protomine.audit.uncertainty import (_batched_purity, _encode, bootstrap_intervals,
+                                         labels_needed_for_width, propagation_accuracy, wilson_interval)
+
+
+def _manning_example() -> tuple[np.ndarray, np.ndarray]:
+    # Manning, Raghavan & Schutze, Introduction to Information Retrieval (2008), ch. 16, Figure 16.4:
+    # cluster 1 = 5 x, 1 o; cluster 2 = 1 x, 4 o, 1 diamond; cluster 3 = 2 x, 3 diamond (17 points)
+    clusters = np.repeat([1, 1, 2, 2, 2, 3, 3], [5, 1, 1, 4, 1, 2, 3])
+    labels = np.repeat(["x", "o", "x", "o", "d", "x", "d"], [5, 1, 1, 4, 1, 2, 3])
+    return clusters, labels
+
+
+def test_manning_worked_example():
+    c, l = _manning_example()
+    s = clustering_scores(c, l)
+    assert s["n"] == 17
+    assert s["purity"] == pytest.approx(0.71, abs=0.005)       # Manning et al. 2008, ch. 16: purity ~ 0.71
+    assert s["nmi"] == pytest.approx(0.36, abs=0.005)          # Manning et al. 2008, ch. 16: NMI ~ 0.36
+    assert s["rand_index"] == pytest.approx(0.68, abs=0.005)   # Manning et al. 2008, ch. 16: RI ~ 0.68
+    assert s["purity"] == pytest.approx(12 / 17)               # Manning et al. 2008: (5 + 4 + 3) / 17
+
+
+def test_purity_and_inverse_purity_hand_worked():
+    # hand-worked: clusters {a,a,b}, {b}, {c}: majorities 2 + 1 + 1 of 5 -> 0.8;
+    # classes a {c0,c0}, b {c0,c1}, c {c2}: 2 + 1 + 1 of 5 -> 0.8; merging all: purity 2/5, inverse 1
+    c = np.array([0, 0, 0, 1, 2])
+    l = np.array(["a", "a", "b", "b", "c"])
+    assert purity_score(c, l) == pytest.approx(0.8)
+    assert inverse_purity_score(c, l) == pytest.approx(0.8)
+    assert purity_score(np.zeros(5, int), l) == pytest.approx(0.4)
+    assert inverse_purity_score(np.zeros(5, int), l) == pytest.approx(1.0)
+    table, ids, names = contingency(c, l)
+    assert table.tolist() == [[2, 1, 0], [0, 1, 0], [0, 0, 1]]
+    assert ids.tolist() == [0, 1, 2] and names.tolist() == ["a", "b", "c"]
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_scores_equal_sklearn_on_random_labelings(seed):
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(20, 200))
+    c = rng.integers(0, rng.integers(2, 9), n)
+    l = rng.choice(list("abcdefg"), n)
+    s = clustering_scores(c, l)
+    # scikit-learn as the reference implementation
+    assert s["nmi"] == pytest.approx(skm.normalized_mutual_info_score(l, c))
+    assert s["ari"] == pytest.approx(skm.adjusted_rand_score(l, c))
+    assert s["v_measure"] == pytest.approx(skm.v_measure_score(l, c))
+    assert s["homogeneity"] == pytest.approx(skm.homogeneity_score(l, c))
+    assert s["completeness"] == pytest.approx(skm.completeness_score(l, c))
+    assert s["rand_index"] == pytest.approx(skm.rand_score(l, c))
+    # purity vs sklearn's contingency matrix (independent of our helper)
+    cm = skm.cluster.contingency_matrix(l, c)
+    assert s["purity"] == pytest.approx(cm.max(axis=0).sum() / n)
+    assert s["inverse_purity"] == pytest.approx(cm.max(axis=1).sum() / n)
+
+
+def _hungarian_brute_force(c: np.ndarray, l: np.ndarray) -> float:
+    """Best one-to-one cluster -> label map by trying every injection (small cases only)."""
+    cs, ls = np.unique(c), np.unique(l)
+    best = 0
+    slots = list(ls) + [None] * len(cs)          # None = cluster left unmatched
+    for perm in set(itertools.permutations(slots, len(cs))):
+        used = [p for p in perm if p is not None]
+        if len(used) != len(set(used)):
+            continue
+        mapping = dict(zip(cs, perm))
+        best = max(best, sum(mapping[ci] == li for ci, li in zip(c, l)))
+    return best / len(c)
+
+
+@pytest.mark.parametrize("seed", range(8))
+def test_hungarian_accuracy_equals_brute_force(seed):
+    rng = np.random.default_rng(100 + seed)
+    n = int(rng.integers(5, 30))
+    c = rng.integers(0, rng.integers(1, 5), n)
+    l = rng.choice(list("abcd")[: int(rng.integers(1, 5))], n)
+    assert hungarian_accuracy_score(c, l) == pytest.approx(_hungarian_brute_force(c, l))
+
+
+def test_hungarian_is_at_most_purity_and_one_to_one():
+    # two clusters with the same majority: purity counts both, Hungarian only one of them
+    c = np.array([0, 0, 1, 1])
+    l = np.array(["a", "a", "a", "a"])
+    assert purity_score(c, l) == 1.0
+    assert hungarian_accuracy_score(c, l) == pytest.approx(0.5)
+
+
+def test_bad_metric_input():
+    with pytest.raises(ValueError, match="equal length"):
+        purity_score([0, 1], ["a"])
+    with pytest.raises(ValueError, match="at least one"):
+        clustering_scores([], [])
+
+
+# --- yaw -------------------------------------------------------------------------------------
+
+def test_symmetry_periods():
+    assert symmetry_to_period_deg(1) == 360.0
+    assert symmetry_to_period_deg(4) == 90.0
+    assert np.isinf(symmetry_to_period_deg(0))
+
+
+def test_yaw_offset_recovered_across_wraparound():
+    rng = np.random.default_rng(3)
+    pred = rng.uniform(0, 360, 200)
+    noise = rng.normal(0, 3, 200)
+    truth = np.mod(pred + 355.0 + noise, 360)          # offset close to the 0/360 seam
+    off = yaw_offset_deg(truth, pred, 360.0)
+    assert min(abs(off - 355.0), 360 - abs(off - 355.0)) < 1.0
+    err = yaw_error_deg(truth, pred, off, 360.0)
+    assert np.median(err) < 4.0 and err.max() <= 180.0
+
+
+def test_yaw_modulo_symmetry_period():
+    # a 2-fold object: a prediction off by 180 degrees is as good as a correct one
+    pred = np.array([10.0, 50.0, 100.0, 300.0])
+    truth = np.mod(pred + 40.0 + np.array([0.0, 180.0, 0.0, 180.0]), 360)
+    off = yaw_offset_deg(truth, pred, 180.0)
+    assert off == pytest.approx(40.0, abs=1e-9)
+    assert np.allclose(yaw_error_deg(truth, pred, off, 180.0), 0.0, atol=1e-9)
+    assert np.allclose(yaw_error_deg(truth, pred, 40.0, 360.0), [0, 180, 0, 180])
+    # continuous symmetry: no yaw is observable, so no error
+    assert yaw_offset_deg(truth, pred, np.inf) == 0.0
+    assert np.all(yaw_error_deg(truth, pred, 0.0, np.inf) == 0.0)
+
+
+# --- Wilson ----------------------------------------------------------------------------------
+
+def test_wilson_published_value():
+    lo, hi = wilson_interval(81, 263)
+    assert lo == pytest.approx(0.2553, abs=5e-5)   # Newcombe 1998, Stat Med 17:857, Table I (81/263), Wilson method
+    assert hi == pytest.approx(0.3662, abs=5e-5)   # Newcombe 1998, same row
+
+
+def test_wilson_edge_cases():
+    assert wilson_interval(0, 0) == (0.0, 1.0)
+    lo, hi = wilson_interval(10, 10)
+    assert hi == pytest.approx(1.0) and 0.6 < lo < 0.75   # Wilson 1927 closed form: n/(n+z^2) = 0.7225 for 10/10
+    assert lo == pytest.approx(10 / (10 + 1.959964 ** 2), abs=1e-4)
+    with pytest.raises(ValueError):
+        wilson_interval(5, 3)
+
+
+@pytest.mark.parametrize("p", [None, 0.5, 0.9, 1.0])
+@pytest.mark.parametrize("width", [0.1, 0.2, 0.4])
+def test_labels_needed_reaches_width_and_is_minimal(p, width):
+    n = labels_needed_for_width(p, width)
+    q = 0.5 if p is None else p
+    lo, hi = wilson_interval(round(q * n), n)
+    assert hi - lo <= width
+    lo, hi = wilson_interval(round(q * (n - 1)), n - 1)
+    assert hi - lo > width
+
+
+def test_labels_needed_worst_case_near_textbook():
+    # common practice: n ~ (z / half-width)^2 * p(1-p) = (1.96 / 0.1)^2 / 4 ~ 96 for a +-0.1 interval at p = 0.5
+    n = labels_needed_for_width(None, 0.2)
+    assert 85 <= n <= 100
+
+
+# --- bootstrap -------------------------------------------------------------------------------
+
+def test_batched_purity_matches_purity_score():
+    rng = np.random.default_rng(5)
+    c = rng.integers(0, 4, (7, 40))
+    l = rng.choice(list("abc"), (7, 40))
+    codes = [_encode(c[i], l[i]) for i in range(7)]
+    for i, (ci, li, k, m) in enumerate(codes):
+        assert _batched_purity(ci[None], li[None], k, m)[0] == pytest.approx(purity_score(c[i], l[i]))
+
+
+def test_bootstrap_intervals_contain_point_and_are_reproducible():
+    rng = np.random.default_rng(7)
+    c = rng.integers(0, 3, 50)
+    l = np.where(rng.random(50) < 0.8, c, rng.integers(0, 3, 50)).astype(str)
+    s = clustering_scores(c, l)
+    a = bootstrap_intervals(c, l, np.random.default_rng(1), n_resamples=200)
+    b = bootstrap_intervals(c, l, np.random.default_rng(1), n_resamples=200)
+    assert a == b
+    for k in ("purity", "nmi", "hungarian_accuracy"):
+        lo, hi = a[k]
+        assert lo <= s[k] + 1e-9 and s[k] <= hi + 0.02 and hi - lo > 0
+
+
+def test_bootstrap_degenerate_clean_set():
+    c = np.array([0, 0, 1, 1, 1])
+    l = np.array(list("aabbb"))
+    out = bootstrap_intervals(c, l, np.random.default_rng(0), n_resamples=50, statistics=("purity",))
+    assert out["purity"] == (1.0, 1.0)
+
+
+def test_bootstrap_purity_coverage():
+    # simulation: the percentile bootstrap interval should cover the population purity ~95% of the time;
+    # accept 0.88-0.99 for 200 simulations (binomial sd ~ 0.015 at 0.95)
+    rng = np.random.default_rng(2024)
+    # population: 3 clusters x 3 labels joint distribution with clear majorities
+    joint = np.array([[0.28, 0.04, 0.02], [0.03, 0.25, 0.05], [0.02, 0.03, 0.28]])
+    joint /= joint.sum()
+    true_purity = joint.max(axis=1).sum()
+    n, sims, covered = 120, 200, 0
+    for _ in range(sims):
+        cells = rng.choice(9, size=n, p=joint.ravel())
+        c, l = np.divmod(cells, 3)
+        ci, li, k, m = _encode(c, l)
+        res = bootstrap((ci, li), lambda a, b, axis=-1: _batched_purity(a, b, k, m), paired=True,
+                        vectorized=True, n_resamples=200, method="percentile", rng=rng)
+        covered += res.confidence_interval.low <= true_purity <= res.confidence_interval.high
+    assert 0.88 <= covered / sims <= 0.99
+
+
+# --- label propagation -----------------------------------------------------------------------
+
+def test_propagation_hand_worked_single_draw():
+    # one cluster labelled a, a, b; one draw names it a with prob 2/3 (then 2 of 3 correct) or b with 1/3
+    # (1 of 3 correct): expected accuracy 2/3 * 2/3 + 1/3 * 1/3 = 5/9 (hand-worked)
+    c = np.zeros(3, int)
+    l = np.array(["a", "a", "b"])
+    out = propagation_accuracy(c, l, np.random.default_rng(0), draws=1, n_repeats=6000)
+    assert out["mean"] == pytest.approx(5 / 9, abs=0.015)
+    assert out["interval"] == (pytest.approx(1 / 3), pytest.approx(2 / 3))
+    # three draws of three members: the whole cluster is seen, always named a
+    out3 = propagation_accuracy(c, l, np.random.default_rng(0), draws=3, n_repeats=100)
+    assert out3["mean"] == pytest.approx(2 / 3) and out3["ceiling"] == pytest.approx(2 / 3)
+    out5 = propagation_accuracy(c, l, np.random.default_rng(0), draws=5, n_repeats=10)
+    assert out5["short_clusters"] == [0]
+
+
+def test_propagation_tie_is_broken_at_random():
+    # two draws from {a, b}: always a tie, so the name is a or b half the time each
+    c = np.zeros(2, int)
+    l = np.array(["a", "b"])
+    out = propagation_accuracy(c, l, np.random.default_rng(1), draws=2, n_repeats=4000)
+    assert out["mean"] == pytest.approx(0.5)          # every outcome gives 1 of 2 correct
+    names_a = propagation_accuracy(np.zeros(3, int), np.array(["a", "b", "a"]), np.random.default_rng(1),
+                                   draws=2, n_repeats=6000)
+    # draws {a,a} w.p. 1/3 -> a; {a,b} w.p. 2/3 -> tie -> a half the time: P(a) = 2/3, acc = 2/3*2/3 + 1/3*1/3
+    assert names_a["mean"] == pytest.approx(5 / 9, abs=0.015)
+
+
+def test_propagation_pure_clusters_are_always_right():
+    c = np.repeat([0, 1, 2], 4)
+    l = np.repeat(["x", "y", "x"], 4)
+    for d in (1, 3, 5):
+        out = propagation_accuracy(c, l, np.random.default_rng(d), draws=d, n_repeats=50)
+        assert out["mean"] == 1.0 and out["interval"] == (1.0, 1.0)
