@@ -16,6 +16,7 @@ COMMANDS: list[tuple[str, str]] = [
     # (module under protomine, function name); each stage adds its own line
     ("provenance", "provenance_cmd"),
     ("ingest.command", "ingest"),
+    ("audit.command", "audit"),
 ]
 
 
