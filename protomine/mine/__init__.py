@@ -1,0 +1,1 @@
+"""Mining: pose search, pose-aware clustering, symmetry, choice of K, the prototype library."""

@@ -1,0 +1,370 @@
+"""Pose search: observation-weighted distance between objects and posed prototypes, all yaws at once.
+
+Conventions (shared by the whole ``mine`` stage)
+------------------------------------------------
+- Features ``X`` (N, C, R, A, H) float32: channels, radial, azimuth, height.  Observation weights
+  ``W`` (N, R, A, H) float32 in [0, 1]; 0 = never seen.  Prototypes ``P`` (K, C, R, A, H) with
+  prototype weights ``V`` (K, R, A, H).  A 2-D image is a one-layer polar grid (H = 1).
+- ``roll(a, s)`` is ``numpy.roll`` along the azimuth axis: ``roll(a, s)[j] = a[j - s]``.  Yawing an
+  object by +d degrees rolls its volume by +d / (360 / A) bins.
+- A pose g = (s, sigma): a yaw shift of s bins and a scale sigma.  The posed prototype is
+  ``g.mu = roll(P_sigma, s)`` with weights ``g.v = roll(V_sigma, s)``, so a match with yaw ``y`` degrees
+  means *the object looks like the prototype rolled by y* (object yaw relative to the prototype).
+
+Distance
+--------
+For one object (x, w) and one posed prototype (g.mu, g.v)::
+
+    D(g) = sum_{c, cells} w * g.v * (x_c - g.mu_c)^2  /  (C * sum_{cells} w * g.v  +  eps)
+
+i.e. the mean squared feature difference over channels, weighted by how well *both* sides observed
+each cell.  Cells with w = 0 (unseen in the object) or g.v = 0 (unknown in the prototype) play no part.
+When no cell is observed by both, the numerator and the denominator are 0 and D = 0 / eps = 0 is
+meaningless, so such pairs get ``D = inf`` (``min_overlap`` controls the threshold on the denominator).
+
+Expanding the square gives, for every shift s at once, four cross-correlations along azimuth
+(``corr(f, g)(s) = sum_j f[j] g[j - s]``), each summed over R, H (and C)::
+
+    num(s) = corr(w |x|^2, v)(s) + corr(w, v |mu|^2)(s) - 2 sum_c corr(w x_c, v mu_c)(s)
+    den(s) = C * corr(w, v)(s)
+
+By the correlation theorem ``corr(f, g) = irfft(rfft(f) * conj(rfft(g)))``, so per azimuthal frequency
+the sums over (C, R, H) become one complex matrix product (objects x features) @ (features x
+prototypes); objects are processed in chunks so memory is bounded by the chunk size.
+
+Scales
+------
+A prototype scaled by sigma is ``P_sigma(rho, z) = P(rho / sigma, z / sigma)``: for radial bin i (centre
+(i + 0.5) / R of rho_max) the source position is index ``(i + 0.5) / sigma - 0.5``, sampled by linear
+interpolation between the two neighbouring bins (likewise along height).  Source positions below the
+first bin centre (near the axis / the base) take the first bin's value; source positions beyond the
+grid's outer edge (index > n - 0.5, only when sigma < 1) are *unknown*: feature 0 and weight 0, so they
+are ignored by the distance.  Axes of length 1 (H = 1 images) are not resampled.
+
+Best pose
+---------
+Per (object, prototype): argmin of D over the shifts and scales; the yaw is then refined to sub-bin
+precision by fitting a parabola through D at the best shift and its two circular neighbours (same
+scale): offset = (D[-1] - D[+1]) / (2 (D[-1] - 2 D[0] + D[+1])), clipped to [-0.5, 0.5].  The reported
+distance is D at the best integer shift (the evaluated value, not the parabola's vertex).
+
+Public API
+----------
+- ``pose_distances(X, W, P, V, *, scales=(1.0,), return_all=False, chunk_size=1024) -> PoseMatch``
+- ``pose_distances_naive(...)``: the same by explicitly rolling every prototype for every shift (tests only).
+- ``dense_distances(X, W, P, V, *, chunk_size=1024) -> (N, K)``: single-pose distance (bench baseline).
+- ``scale_prototypes(P, V, scales) -> (Ps, Vs)``, ``shift_volume(a, shift_bins, axis)``: helpers that the
+  engine and symmetry modules reuse.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Sequence
+
+import numpy as np
+import torch
+
+EPS = 1e-6
+
+
+@dataclass
+class PoseMatch:
+    """Best pose per (object, prototype).
+
+    D : (N, K) float32 pose-minimised distance (inf where object and prototype share no observed cell).
+    yaw_deg : (N, K) float32 in [0, 360): object ~= prototype rolled by yaw_deg.
+    scale : (N, K) float32, the best scale factor (object ~= prototype scaled by it).
+    all_D : (N, K, S, A) float32 distance for every scale and integer shift, only with return_all=True.
+    """
+
+    D: np.ndarray
+    yaw_deg: np.ndarray
+    scale: np.ndarray
+    all_D: np.ndarray | None = None
+
+
+# --- validation ----------------------------------------------------------------------------
+
+def _check_arrays(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray) -> None:
+    if X.ndim != 5:
+        raise ValueError(f"X must have shape (N, C, R, A, H), got {X.shape}")
+    if W.shape != X.shape[:1] + X.shape[2:]:
+        raise ValueError(f"W must have shape {X.shape[:1] + X.shape[2:]} (N, R, A, H), got {W.shape}")
+    if P.ndim != 5 or P.shape[1:] != X.shape[1:]:
+        raise ValueError(f"P must have shape (K, {', '.join(map(str, X.shape[1:]))}), got {P.shape}")
+    if V.shape != P.shape[:1] + P.shape[2:]:
+        raise ValueError(f"V must have shape {P.shape[:1] + P.shape[2:]} (K, R, A, H), got {V.shape}")
+
+
+def _check_scales(scales: Sequence[float]) -> tuple[float, ...]:
+    scales = tuple(float(s) for s in scales)
+    if not scales or any(not (0.0 < s < np.inf) for s in scales):
+        raise ValueError(f"scales must be a non-empty sequence of positive numbers, got {scales}")
+    return scales
+
+
+# --- geometry helpers ----------------------------------------------------------------------
+
+def _resample_axis(a: np.ndarray, mask: np.ndarray, sigma: float, axis: int) -> tuple[np.ndarray, np.ndarray]:
+    """Resample ``a`` along ``axis`` so that out(i) = a((i + 0.5) / sigma - 0.5); mask marks in-grid."""
+    n = a.shape[axis]
+    if n == 1 or sigma == 1.0:
+        return a, mask
+    pos = (np.arange(n) + 0.5) / sigma - 0.5
+    inside = pos <= n - 0.5
+    pos = np.clip(pos, 0.0, n - 1)
+    lo = np.floor(pos).astype(int)
+    hi = np.minimum(lo + 1, n - 1)
+    t = (pos - lo).astype(a.dtype)
+    shape = [1] * a.ndim
+    shape[axis] = n
+    t = t.reshape(shape)
+    out = np.take(a, lo, axis=axis) * (1 - t) + np.take(a, hi, axis=axis) * t
+    mshape = [1] * mask.ndim
+    mshape[axis if mask.ndim == a.ndim else axis - 1] = n
+    return out, mask & inside.reshape(mshape)
+
+
+def scale_prototypes(P: np.ndarray, V: np.ndarray, scales: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
+    """Prototypes scaled by every factor: Ps (K, S, C, R, A, H), Vs (K, S, R, A, H) float32.
+
+    P_sigma(rho, z) = P(rho / sigma, z / sigma) with linear interpolation; cells that would sample
+    outside the grid get feature 0 and weight 0 (see the module docstring).
+    """
+    P = np.asarray(P, dtype=np.float32)
+    V = np.asarray(V, dtype=np.float32)
+    K, C, R, A, H = P.shape
+    Ps = np.empty((K, len(scales), C, R, A, H), np.float32)
+    Vs = np.empty((K, len(scales), R, A, H), np.float32)
+    for si, sigma in enumerate(scales):
+        p, v = P, V
+        m = np.ones((1, R, 1, H), bool)
+        # radial axis is 2 in P (K, C, R, A, H) and 1 in V; height is 4 and 3
+        p, _ = _resample_axis(p, m, sigma, 2)
+        v, m = _resample_axis(v, m, sigma, 1)
+        p, _ = _resample_axis(p, m, sigma, 4)
+        v, m = _resample_axis(v, m, sigma, 3)
+        Vs[:, si] = v * m
+        Ps[:, si] = p * m[:, None]
+    return Ps, Vs
+
+
+def shift_volume(a: np.ndarray, shift_bins: np.ndarray | float, axis: int) -> np.ndarray:
+    """Roll ``a`` along ``axis`` by a possibly fractional number of bins (linear interpolation).
+
+    ``a`` (N, ...) with a per-item shift ``shift_bins`` (N,) (or a scalar); the result is
+    ``(1 - t) roll(a, f) + t roll(a, f + 1)`` with f = floor(shift), t = shift - f.  Linear
+    interpolation keeps weights inside [0, 1], which a Fourier shift would not.
+    """
+    a = np.asarray(a)
+    n_ax = a.shape[axis]
+    shifts = np.broadcast_to(np.asarray(shift_bins, dtype=np.float64), (a.shape[0],))
+    f = np.floor(shifts)
+    t = (shifts - f).astype(a.dtype)
+    f = f.astype(np.int64)
+    idx = np.arange(n_ax)
+    # gather index for roll by f: out[j] = a[j - f]
+    src0 = (idx[None, :] - f[:, None]) % n_ax  # (N, A)
+    src1 = (src0 - 1) % n_ax
+    shape = [a.shape[0]] + [1] * (a.ndim - 1)
+    shape[axis] = n_ax
+    g0 = np.take_along_axis(a, src0.reshape(shape), axis=axis)
+    g1 = np.take_along_axis(a, src1.reshape(shape), axis=axis)
+    tt = t.reshape([a.shape[0]] + [1] * (a.ndim - 1))
+    return g0 * (1 - tt) + g1 * tt
+
+
+def _parabolic_offset(dm: np.ndarray, d0: np.ndarray, dp: np.ndarray) -> np.ndarray:
+    """Vertex offset in [-0.5, 0.5] of the parabola through (-1, dm), (0, d0), (1, dp)."""
+    curv = dm - 2 * d0 + dp
+    with np.errstate(divide="ignore", invalid="ignore"):
+        off = 0.5 * (dm - dp) / curv
+    off = np.where(np.isfinite(off) & (curv > 0), off, 0.0)
+    return np.clip(off, -0.5, 0.5)
+
+
+def _best_pose(allD: np.ndarray, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """allD (n, K, S, A) -> D (n, K), yaw_deg (n, K), scale (n, K)."""
+    n, K, S, A = allD.shape
+    flat = allD.reshape(n, K, S * A)
+    best = np.argmin(flat, axis=2)
+    D = np.take_along_axis(flat, best[..., None], axis=2)[..., 0]
+    si, sh = np.divmod(best, A)
+    row = np.take_along_axis(allD, si[..., None, None].repeat(A, axis=3), axis=2)[:, :, 0]  # (n, K, A)
+    dm = np.take_along_axis(row, ((sh - 1) % A)[..., None], axis=2)[..., 0]
+    dp = np.take_along_axis(row, ((sh + 1) % A)[..., None], axis=2)[..., 0]
+    off = _parabolic_offset(dm.astype(np.float64), D.astype(np.float64), dp.astype(np.float64))
+    off = np.where(np.isfinite(D), off, 0.0)
+    yaw = np.mod((sh + off) * (360.0 / A), 360.0)
+    return D.astype(np.float32), yaw.astype(np.float32), np.asarray(scales, np.float32)[si]
+
+
+# --- fast kernel ---------------------------------------------------------------------------
+
+def _dft_matrix(A: int) -> torch.Tensor:
+    """(2F, A) real DFT matrix, F = A // 2 + 1: rows [cos; -sin] so that M @ f = [Re rfft(f); Im rfft(f)]."""
+    k = np.arange(A // 2 + 1)[:, None]
+    ang = 2.0 * np.pi * k * np.arange(A)[None, :] / A
+    return torch.from_numpy(np.concatenate([np.cos(ang), -np.sin(ang)]).astype(np.float32))
+
+
+def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torch.Tensor:
+    """Object factors in the frequency domain: x (n, C, R, A, H), w (n, R, A, H) -> (2F, n, (C + 2) R H).
+
+    Rows [:F] are real parts, [F:] imaginary parts of the azimuthal rfft of [w |x|^2, w, w x_1..w x_C].
+    The DFT is a matrix product (faster than ``rfft`` along a middle axis, and lands in the layout the
+    batched products need).
+    """
+    n = x.shape[0]
+    wx = w[:, None] * x
+    q = (wx * x).sum(1)
+    stack = torch.cat([q[:, None], w[:, None], wx], dim=1)  # (n, C + 2, R, A, H)
+    return torch.tensordot(dft, stack, dims=([1], [3])).reshape(dft.shape[0], n, -1)
+
+
+def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """Prototype factors for the real-arithmetic complex product.
+
+    Ps (M, C, R, A, H), Vs (M, R, A, H) -> (Br, Bi), each (F, (C + 2) R H, 4 M), such that for object
+    spectra (Or, Oi) ``Or @ Br + Oi @ Bi = [Re num | Re den | Im num | Im den]`` where num, den are the
+    per-frequency sums of object spectrum x conj(prototype spectrum) for the numerator and the
+    denominator of the distance (module docstring).  The denominator uses only the w block.
+    """
+    M, C, R, A, H = Ps.shape
+    vmu = Vs[:, None] * Ps
+    num = torch.cat([Vs[:, None], (vmu * Ps).sum(1)[:, None], -2.0 * vmu], dim=1)  # (M, C + 2, R, A, H)
+    den = torch.zeros_like(num)
+    den[:, 1] = C * Vs
+    both = torch.cat([num, den], dim=0)  # (2M, C + 2, R, A, H)
+    f = torch.fft.rfft(both, dim=3).permute(3, 1, 2, 4, 0).reshape(A // 2 + 1, -1, 2 * M)
+    # conj(p) = pr - i pi:  (or + i oi)(pr - i pi) = (or pr + oi pi) + i (oi pr - or pi)
+    pr, pi = f.real.contiguous(), f.imag.contiguous()
+    return torch.cat([pr, -pi], dim=2).contiguous(), torch.cat([pi, pr], dim=2).contiguous()
+
+
+def _fft_all_distances(x: np.ndarray, w: np.ndarray, br: torch.Tensor, bi: torch.Tensor, dft: torch.Tensor,
+                       A: int, min_overlap: float) -> np.ndarray:
+    """Distances for every shift: (n, M, A) float32 for one chunk of objects."""
+    xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
+    wt = torch.from_numpy(np.ascontiguousarray(w, dtype=np.float32))
+    o = _object_spectra(xt, wt, dft)
+    F = A // 2 + 1
+    prod = torch.baddbmm(torch.bmm(o[:F], br), o[F:], bi)  # (F, n, 4M)
+    M2 = prod.shape[2] // 2
+    corr = torch.fft.irfft(torch.complex(prod[..., :M2], prod[..., M2:]), n=A, dim=0)  # (A, n, 2M)
+    num, den = corr[..., :M2 // 2], corr[..., M2 // 2:]
+    d = num.clamp_min(0.0) / (den + EPS)
+    d = torch.where(den > min_overlap, d, torch.full_like(d, float("inf")))
+    return d.permute(1, 2, 0).numpy()
+
+
+def pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *,
+                   scales: Sequence[float] = (1.0,), return_all: bool = False,
+                   chunk_size: int = 1024, min_overlap: float = 1e-3) -> PoseMatch:
+    """Best yaw and scale of every object against every prototype, by FFT correlation.
+
+    X (N, C, R, A, H), W (N, R, A, H), P (K, C, R, A, H), V (K, R, A, H); see the module docstring
+    for the distance.  Returns a :class:`PoseMatch` with D, yaw_deg, scale of shape (N, K)
+    (and all_D (N, K, S, A) with ``return_all``).
+    """
+    X = np.asarray(X, dtype=np.float32)
+    W = np.asarray(W, dtype=np.float32)
+    P = np.asarray(P, dtype=np.float32)
+    V = np.asarray(V, dtype=np.float32)
+    _check_arrays(X, W, P, V)
+    scales = _check_scales(scales)
+    if chunk_size < 1:
+        raise ValueError(f"chunk_size must be >= 1, got {chunk_size}")
+    return _pose_distances(X, W, PoseBank(P, V, scales), return_all=return_all,
+                           chunk_size=chunk_size, min_overlap=min_overlap)
+
+
+class PoseBank:
+    """Prototypes scaled and transformed once, reused for many chunks of objects.
+
+    P (K, C, R, A, H), V (K, R, A, H); ``scales`` the scale set.  Holds the conjugated spectra of
+    the K * S scaled prototypes.
+    """
+
+    def __init__(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]):
+        K, C, R, A, H = P.shape
+        self.K, self.C, self.A, self.scales = K, C, A, scales
+        Ps, Vs = scale_prototypes(P, V, scales)
+        S = len(scales)
+        self.dft = _dft_matrix(A)
+        self.br, self.bi = _prototype_spectra(torch.from_numpy(Ps.reshape(K * S, C, R, A, H)),
+                                              torch.from_numpy(Vs.reshape(K * S, R, A, H)))
+
+    def all_distances(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3) -> np.ndarray:
+        """x (n, C, R, A, H), w (n, R, A, H) -> (n, K, S, A) distances for every scale and shift."""
+        d = _fft_all_distances(x, w, self.br, self.bi, self.dft, self.A, self.C * min_overlap)
+        return d.reshape(x.shape[0], self.K, len(self.scales), self.A)
+
+    def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3,
+              return_all: bool = False) -> PoseMatch:
+        allD = self.all_distances(x, w, min_overlap)
+        D, yaw, sc = _best_pose(allD, self.scales)
+        return PoseMatch(D, yaw, sc, allD if return_all else None)
+
+
+def _pose_distances(X: np.ndarray, W: np.ndarray, bank: PoseBank, *, return_all: bool, chunk_size: int,
+                    min_overlap: float) -> PoseMatch:
+    parts = [bank.match(X[i:i + chunk_size], W[i:i + chunk_size], min_overlap, return_all)
+             for i in range(0, X.shape[0], chunk_size)]
+    if not parts:
+        K = bank.K
+        return PoseMatch(np.zeros((0, K), np.float32), np.zeros((0, K), np.float32), np.zeros((0, K), np.float32),
+                         np.zeros((0, K, len(bank.scales), bank.A), np.float32) if return_all else None)
+    cat = lambda name: np.concatenate([getattr(p, name) for p in parts])  # noqa: E731
+    return PoseMatch(cat("D"), cat("yaw_deg"), cat("scale"), cat("all_D") if return_all else None)
+
+
+# --- reference twins -----------------------------------------------------------------------
+
+def _dense(x: np.ndarray, w: np.ndarray, P: np.ndarray, V: np.ndarray, min_overlap: float) -> np.ndarray:
+    """Single-pose distance by matrix products over all cells: (n, K)."""
+    n, C = x.shape[:2]
+    xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32)).reshape(n, C, -1)
+    wt = torch.from_numpy(np.ascontiguousarray(w, dtype=np.float32)).reshape(n, -1)
+    Pt = torch.from_numpy(np.ascontiguousarray(P, dtype=np.float32)).reshape(P.shape[0], C, -1)
+    Vt = torch.from_numpy(np.ascontiguousarray(V, dtype=np.float32)).reshape(P.shape[0], -1)
+    wx = wt[:, None] * xt
+    obj = torch.cat([(wx * xt).sum(1), wt, wx.reshape(n, -1)], dim=1)
+    vmu = Vt[:, None] * Pt
+    pro = torch.cat([Vt, (vmu * Pt).sum(1), -2.0 * vmu.reshape(P.shape[0], -1)], dim=1)
+    num = obj @ pro.T
+    den = C * (wt @ Vt.T)
+    d = num.clamp_min(0.0) / (den + EPS)
+    return torch.where(den > C * min_overlap, d, torch.full_like(d, float("inf"))).numpy()
+
+
+def dense_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *,
+                    chunk_size: int = 1024, min_overlap: float = 1e-3) -> np.ndarray:
+    """Pose-unaware distance (prototype as is, one pose): (N, K) float32.  Baseline for the bench."""
+    X = np.asarray(X, dtype=np.float32)
+    W = np.asarray(W, dtype=np.float32)
+    _check_arrays(X, W, np.asarray(P), np.asarray(V))
+    out = [_dense(X[i:i + chunk_size], W[i:i + chunk_size], P, V, min_overlap)
+           for i in range(0, X.shape[0], chunk_size)]
+    return np.concatenate(out) if out else np.zeros((0, P.shape[0]), np.float32)
+
+
+def pose_distances_naive(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *,
+                         scales: Sequence[float] = (1.0,), return_all: bool = False,
+                         chunk_size: int = 1024, min_overlap: float = 1e-3) -> PoseMatch:
+    """Slow reference twin of :func:`pose_distances`: rolls every scaled prototype for every shift."""
+    X = np.asarray(X, dtype=np.float32)
+    W = np.asarray(W, dtype=np.float32)
+    P = np.asarray(P, dtype=np.float32)
+    V = np.asarray(V, dtype=np.float32)
+    _check_arrays(X, W, P, V)
+    scales = _check_scales(scales)
+    K, A = P.shape[0], P.shape[3]
+    Ps, Vs = scale_prototypes(P, V, scales)
+    allD = np.empty((X.shape[0], K, len(scales), A), np.float32)
+    for si in range(len(scales)):
+        for s in range(A):
+            allD[:, :, si, s] = dense_distances(X, W, np.roll(Ps[:, si], s, axis=3), np.roll(Vs[:, si], s, axis=2),
+                                                chunk_size=chunk_size, min_overlap=min_overlap)
+    D, yaw, sc = _best_pose(allD, scales)
+    return PoseMatch(D, yaw, sc, allD if return_all else None)
