@@ -305,7 +305,8 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
         if len(old_rows):
             with h5py.File(old.path, "r") as fo:
                 for s0 in range(0, len(old_rows), 256):
-                    sv[s0:s0 + 256] = fo["single/volumes"][old_rows[s0:s0 + 256]]
+                    rows_ = old_rows[s0:s0 + 256]
+                    sv[s0:s0 + len(rows_)] = fo["single/volumes"][rows_]
             so += [remap[int(x)] for x in old.single_object[old_rows]]
             sf += list(old.single_frame[old_rows])
         r = len(old_rows)

@@ -8,7 +8,9 @@ beside it.  Yawing the object by +d degrees rolls the volume by +d / (360/A) bin
 what makes the pose search an FFT along one axis.
 
 Channels (``CHANNELS``), per cell, fused over the frames that observed it:
-  surface   1 - exp(-n / n0): n = trilinear splat weight of the object's own points (n0 config)
+  surface   1 - exp(-n / (k n75)): n = trilinear splat weight of the object's own points in this frame,
+            n75 = its 75th percentile over the cells hit in this frame (resolution/distance invariant),
+            k = volume.surface_points_per_cell
   free      fraction of observing frames in which a camera ray passed through the cell before
             hitting a surface (projective carving: cell depth < measured depth - margin)
   observed  number of frames that observed the cell (in front of or at the measured surface)
@@ -144,7 +146,11 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         pw = camera_to_world(pc, v.cam_to_world)
         rgb = v.rgb.reshape(-1, 3)[v.pixels[good]].astype(np.float64) / 255.0
         sp = _splat(grid, frame, pw, rgb).reshape(4, -1)
-        surf = 1.0 - np.exp(-sp[0] / grid.surface_points_per_cell)
+        # point density depends on resolution and distance: measure splat weight against this frame's
+        # typical occupied-cell weight so that evidence is the same for near and far, small and large
+        hit = sp[0] > 0
+        typical = np.percentile(sp[0][hit], 75) if hit.any() else 1.0
+        surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
         seen |= sp[0] > 0
         free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
         obs += seen

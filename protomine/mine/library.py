@@ -1,0 +1,157 @@
+"""The HDF5 prototype library: prototypes, their poses and statistics, members, names.
+
+Layout (format ``protomine.library/1``; readers check the version)::
+
+    attrs        format, conventions, grid, features, scales, store_path, store_fingerprint,
+                 config, seed, provenance (code version, inputs)
+    prototypes/  features (K, C, R, A, H), weights (K, R, A, H) matching features and observation weights
+                 in the canonical frame; volumes (K, 6, R, A, H) mean aligned store volumes (pictures);
+                 symmetry (K,) 0 = continuous, 1 = none, n = n-fold; period_deg (K,) 360/n (0 = any yaw);
+                 count (K,); size_median, size_p10, size_p90 (K, 2) metric footprint radius and height;
+                 fused_mu, fused_sigma, single_mu, single_sigma (K,) log-normal fit of member distances
+                 (whole fused objects / single views) for the calibrated score; origin (K,) "mined" or
+                 "one-shot"; name, name_example (K,) str ("" when unnamed)
+    members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
+                 second_cluster, second_distance
+
+Score (see :func:`match_score`): for a distance d to prototype k,
+    score = 1 - Phi((ln d - mu_k) / sigma_k)
+the fraction of the prototype's own members (or single views of them) expected to fit worse than this
+one, under a log-normal fit of their distances.  It is comparable across clusters, needs no labels, and
+an object is "unknown" when its score falls below ``label.unknown_score``.
+"""
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import h5py
+import numpy as np
+from scipy.stats import norm
+
+from ..atomic import atomic_path, exclusive_lock
+from ..errors import InputError
+
+FORMAT = "protomine.library/1"
+STR = h5py.string_dtype()
+PROTO_ARRAYS = ("features", "weights", "volumes", "symmetry", "period_deg", "count", "size_median", "size_p10",
+                "size_p90", "fused_mu", "fused_sigma", "single_mu", "single_sigma")
+PROTO_STR = ("origin", "name", "name_example")
+MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance")
+
+
+def match_score(distance: np.ndarray, mu: np.ndarray, sigma: np.ndarray, eps: float = 1e-12) -> np.ndarray:
+    """Calibrated score in [0, 1] (higher = more confident) of distances under log-normal member fits."""
+    z = (np.log(np.maximum(distance, eps)) - mu) / np.maximum(sigma, 1e-6)
+    return norm.sf(z)
+
+
+def lognormal_fit(d: np.ndarray, *, min_sigma: float = 0.05) -> tuple[float, float]:
+    """(mu, sigma) of log distances (robust: median and 1.4826 x MAD)."""
+    ld = np.log(np.maximum(np.asarray(d, dtype=np.float64), 1e-12))
+    if len(ld) == 0:
+        return float("nan"), float("nan")
+    mu = float(np.median(ld))
+    sig = 1.4826 * float(np.median(np.abs(ld - mu))) if len(ld) > 2 else 0.0
+    return mu, max(sig, min_sigma)
+
+
+@dataclass
+class Library:
+    prototypes: dict                    # name -> array (see module docstring)
+    members: dict                       # name -> array
+    attrs: dict = field(default_factory=dict)
+    path: Path | None = None
+
+    @property
+    def n_clusters(self) -> int:
+        return int(len(self.prototypes["count"]))
+
+    @property
+    def names(self) -> dict[int, str]:
+        return {k: str(n) for k, n in enumerate(self.prototypes["name"]) if n}
+
+    def display_name(self, k: int | None) -> str:
+        if k is None or k < 0:
+            return "unknown"
+        n = self.prototypes["name"][k]
+        return str(n) if n else f"cluster-{k}"
+
+    @property
+    def config(self) -> dict:
+        return json.loads(self.attrs.get("config", "{}"))
+
+    @property
+    def scales(self) -> list[float]:
+        return list(json.loads(self.attrs["scales"]))
+
+    @property
+    def store_path(self) -> str:
+        return str(self.attrs.get("store_path", ""))
+
+    def member_index(self, object_id: str) -> int:
+        hits = np.flatnonzero(self.members["object"] == object_id)
+        if not len(hits):
+            raise InputError(self.path, "members.object", f"no object {object_id!r} among the library's {len(self.members['object'])} members")
+        return int(hits[0])
+
+    def score(self, distance: np.ndarray, cluster: np.ndarray, *, single_view: bool) -> np.ndarray:
+        mu = self.prototypes["single_mu" if single_view else "fused_mu"][cluster]
+        sg = self.prototypes["single_sigma" if single_view else "fused_sigma"][cluster]
+        return match_score(distance, mu, sg)
+
+
+def read_library(path: str | Path) -> Library:
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, None, "library not found")
+    try:
+        with h5py.File(path, "r") as f:
+            fmt = f.attrs.get("format")
+            if fmt != FORMAT:
+                raise InputError(path, "format", f"expected a prototype library {FORMAT!r}, got {fmt!r}")
+            attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
+            protos = {k: _dec(f["prototypes"][k][()]) for k in f["prototypes"]}
+            members = {k: _dec(f["members"][k][()]) for k in f["members"]}
+    except OSError as e:
+        raise InputError(path, None, f"not a readable HDF5 library ({e})") from None
+    except KeyError as e:
+        raise InputError(path, str(e), "library is missing this dataset (corrupt or not a library)") from None
+    missing = [k for k in PROTO_ARRAYS + PROTO_STR if k not in protos] + [k for k in MEMBER_FIELDS if k not in members]
+    if missing:
+        raise InputError(path, "prototypes", f"library is missing {missing}")
+    return Library(protos, members, attrs, path)
+
+
+def _dec(a):
+    if isinstance(a, np.ndarray) and a.dtype == object:
+        return np.array([x.decode() if isinstance(x, bytes) else x for x in a], dtype=object)
+    return a
+
+
+def write_library(path: str | Path, lib: Library) -> None:
+    """Write atomically (temporary file + rename), holding the writer lock."""
+    path = Path(path)
+    with exclusive_lock(path, timeout=30.0), atomic_path(path) as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = FORMAT
+            for k, v in lib.attrs.items():
+                if k != "format":
+                    f.attrs[k] = v
+            g = f.create_group("prototypes")
+            for k in PROTO_ARRAYS:
+                a = np.asarray(lib.prototypes[k])
+                big = a.ndim >= 4
+                g.create_dataset(k, data=a, compression="gzip" if big else None,
+                                 chunks=(1,) + a.shape[1:] if big and len(a) else None)
+            for k in PROTO_STR:
+                g.create_dataset(k, data=np.array([str(x) for x in lib.prototypes[k]], dtype=object), dtype=STR)
+            g = f.create_group("members")
+            for k in MEMBER_FIELDS:
+                a = lib.members[k]
+                if k == "object":
+                    g.create_dataset(k, data=np.array([str(x) for x in a], dtype=object), dtype=STR)
+                else:
+                    g.create_dataset(k, data=np.asarray(a))
+    lib.path = path

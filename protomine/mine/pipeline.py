@@ -1,0 +1,179 @@
+"""Mine an object store into a prototype library: engine fit, calibration, statistics, outputs.
+
+Steps
+1. Pose-aware clustering of the store's matching features (``engine.PoseKMeans``; K chosen by
+   ``choosek`` when not given).  Members' yaw is relative to their prototype's canonical frame, modulo
+   its symmetry period.
+2. Mean aligned store volumes per prototype (for pictures): each member volume is rolled back by its
+   yaw (Fourier shift along azimuth) and averaged with its observation counts as weights.
+3. Label-free calibration: log-normal fits of the members' distances (fused objects) and of the
+   distances of the store's one-frame volumes to their object's prototype (single views), so that
+   ``library.match_score`` is comparable across clusters and usable for single views.
+4. Metric size statistics (footprint radius, height) and member scale = sqrt(r h) / median over the
+   cluster of sqrt(r h).
+"""
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from ..atomic import write_text
+from ..errors import InputError
+from ..ingest.store import ObjectStore
+from ..ingest.volume import matching_features
+from ..provenance import provenance
+from .library import Library, lognormal_fit, match_score, write_library
+from .posesearch import pose_distances, shift_volume
+
+
+def period_of(symmetry: np.ndarray) -> np.ndarray:
+    """Yaw period in degrees per prototype: 0 for continuous symmetry (any yaw), 360/n otherwise."""
+    s = np.asarray(symmetry)
+    return np.where(s == 0, 0.0, 360.0 / np.maximum(s, 1))
+
+
+def reduce_yaw(yaw: np.ndarray, period: np.ndarray) -> np.ndarray:
+    """Yaw modulo the period (0 -> 0)."""
+    p = np.asarray(period, dtype=np.float64)
+    return np.where(p > 0, np.mod(yaw, np.where(p > 0, p, 1.0)), 0.0)
+
+
+def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
+               progress: Callable[[str], None] | None = None):
+    from .engine import PoseKMeans
+    m = cfg["mine"]
+    src = store.source(cfg)
+    k = n_clusters or m["clusters"] or None
+    if k is not None and k > len(store):
+        raise InputError(store.path, "objects", f"--clusters={k} must be <= the number of objects in the store ({len(store)})")
+    common = dict(scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
+                  chunk_size=m["chunk_size"], random_state=seed)
+    if k is None:
+        from .choosek import fit_auto
+        if progress:
+            progress(f"choosing K in 2..{min(m['max_clusters'], len(store) - 1)} on pose-minimised distances")
+        model, table = fit_auto(src, max_k=min(m["max_clusters"], len(store) - 1), merge_threshold=m["merge_threshold"],
+                                symmetry_tol=m["symmetry_tol"], **common)
+        return model, table
+    model = PoseKMeans(n_clusters=k, symmetry_tol=m["symmetry_tol"], **common).fit(src)
+    return model, None
+
+
+def aligned_mean_volumes(store: ObjectStore, labels: np.ndarray, yaw_deg: np.ndarray, K: int, chunk: int = 512) -> np.ndarray:
+    """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame."""
+    R, A, H = store.grid_shape
+    acc = np.zeros((K, 6, R, A, H))
+    wsum = np.zeros((K, 1, R, A, H))
+    for i0 in range(0, len(store), chunk):
+        vols = store.read_volumes(i0, min(len(store), i0 + chunk)).astype(np.float64)
+        for j, v in enumerate(vols):
+            k = labels[i0 + j]
+            back = shift_volume(v, -yaw_deg[i0 + j] / (360.0 / A), axis=2)
+            w = np.clip(back[2:3], 0, None)
+            acc[k] += back * w
+            wsum[k] += w
+    out = acc / np.maximum(wsum, 1e-9)
+    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels, minlength=K)[:, None, None, None], 1)
+    return out.astype(np.float32)
+
+
+def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                          scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray]:
+    """Distances of the store's one-frame volumes to their object's prototype: (Q,) distances, (Q,) clusters."""
+    if len(store.single_object) == 0:
+        return np.zeros(0), np.zeros(0, int)
+    m = cfg["mine"]
+    X, W = matching_features(store.read_single_views(), free_weight=m["free_weight"], colour_weight=m["colour_weight"])
+    pm = pose_distances(X, W, P, V, scales=scales)
+    k = labels[store.single_object]
+    return pm.D[np.arange(len(k)), k], k
+
+
+def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
+               n_clusters: int | None = None, out_dir: str | Path | None = None,
+               progress: Callable[[str], None] | None = None) -> tuple[Library, dict]:
+    """Mine the store and write the library, assignments.csv and gallery.png (beside the library)."""
+    from .gallery import render_gallery
+    store = ObjectStore(store_path)
+    if len(store) < 2:
+        raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
+    if progress:
+        progress(f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
+    model, k_table = fit_engine(store, cfg, seed, n_clusters, progress)
+    K = int(model.prototypes_.shape[0])
+    labels = np.asarray(model.labels_)
+    period = period_of(model.symmetry_)
+    yaw = reduce_yaw(np.asarray(model.yaw_deg_, dtype=np.float64), period[labels])
+    if progress:
+        progress(f"{K} prototypes after {model.n_iter_} iterations; aligning members and calibrating scores")
+    scales = tuple(cfg["mine"]["scales"])
+    vols = aligned_mean_volumes(store, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
+    # full match table once more: second-best cluster for every member
+    pm = model.match(store.source(cfg)) if hasattr(model, "match") else None
+    dist = np.asarray(model.distance_, dtype=np.float64)
+    if pm is not None:
+        D = np.array(pm.D, dtype=np.float64)
+        D[np.arange(len(labels)), labels] = np.inf
+        second = np.argmin(D, axis=1) if K > 1 else np.full(len(labels), -1)
+        second_d = D[np.arange(len(labels)), second] if K > 1 else np.full(len(labels), np.inf)
+    else:
+        second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
+    fused = [lognormal_fit(dist[labels == k]) for k in range(K)]
+    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales)
+    single = [lognormal_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
+    # pooled sigma where a cluster has too few samples for its own spread
+    pooled_f = float(np.median([s for _, s in fused])) if K else 0.1
+    pooled_s = float(np.median([s for _, s in single])) if K else 0.1
+    fused_mu = np.array([f[0] for f in fused]); fused_sigma = np.array([max(f[1], pooled_f) if np.sum(labels == k) < 5 else f[1] for k, f in enumerate(fused)])
+    single_mu = np.array([s[0] for s in single]); single_sigma = np.array([max(s[1], pooled_s) if np.sum(sv_k == k) < 5 else s[1] for k, s in enumerate(single)])
+    score = match_score(dist, fused_mu[labels], fused_sigma[labels])
+    radius, height = store.objects["radius_m"], store.objects["height_m"]
+    gsize = np.sqrt(radius * height)
+    counts = np.bincount(labels, minlength=K)
+    med_g = np.array([np.median(gsize[labels == k]) if counts[k] else np.nan for k in range(K)])
+    size = np.stack([radius, height], 1)
+    pct = lambda q: np.array([np.percentile(size[labels == k], q, axis=0) if counts[k] else [np.nan, np.nan] for k in range(K)])
+    fit_scale = np.asarray(getattr(model, "scale_", np.ones(len(labels))), dtype=np.float64)
+    protos = {
+        "features": np.asarray(model.prototypes_, np.float32), "weights": np.asarray(model.prototype_weights_, np.float32),
+        "volumes": vols, "symmetry": np.asarray(model.symmetry_, np.int64), "period_deg": period,
+        "count": counts, "size_median": pct(50), "size_p10": pct(10), "size_p90": pct(90),
+        "fused_mu": fused_mu, "fused_sigma": fused_sigma, "single_mu": single_mu, "single_sigma": single_sigma,
+        "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K,
+    }
+    members = {
+        "object": np.array(store.ids, dtype=object), "cluster": labels.astype(np.int64), "yaw_deg": yaw,
+        "scale": gsize / med_g[labels], "fit_scale": fit_scale, "distance": dist, "score": score,
+        "second_cluster": np.asarray(second, np.int64), "second_distance": np.asarray(second_d, np.float64),
+    }
+    prov = provenance(cfg, seed, {"store": store.fingerprint()}, command="mine")
+    attrs = dict(prov)
+    attrs.update({"grid": np.array(store.grid_shape), "scales": json.dumps(list(scales)),
+                  "store_path": str(Path(store_path).resolve()), "store_fingerprint": store.fingerprint(),
+                  "conventions": store.attrs.get("conventions", ""),
+                  "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
+    lib = Library(protos, members, attrs)
+    write_library(library_path, lib)
+    out = Path(out_dir) if out_dir else Path(library_path).parent
+    write_assignments(out / "assignments.csv", lib)
+    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"])
+    return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
+                 "k_selection": k_table}
+
+
+def write_assignments(path: str | Path, lib: Library) -> None:
+    """assignments.csv: object,cluster,yaw_deg,scale,distance,score (one row per object)."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["object", "cluster", "yaw_deg", "scale", "distance", "score"])
+    m = lib.members
+    for i in range(len(m["object"])):
+        k = int(m["cluster"][i])
+        w.writerow([m["object"][i], k, f"{m['yaw_deg'][i]:.2f}", f"{m['scale'][i]:.4f}",
+                    f"{m['distance'][i]:.6g}", f"{m['score'][i]:.4f}"])
+    write_text(path, buf.getvalue())
