@@ -82,8 +82,9 @@ class _Placed:
         return torch.linalg.vector_norm(p - self.centre, dim=1) - self.radius
 
 
-def render(scene: Scene, intrinsics: Intrinsics, cam_to_scene: np.ndarray, *, max_steps: int = 160,
-           eps: float = 1e-4, t_max: float = 6.0, cull_margin: float = 0.02) -> Render:
+def render(scene: Scene, intrinsics: Intrinsics, cam_to_scene: np.ndarray, *, max_steps: int = 64,
+           eps: float = 1e-4, t_max: float = 6.0, cull_margin: float = 0.02,
+           grazing_tol: float = 2e-3) -> Render:
     """Sphere-trace every pixel of a pinhole camera.
 
     intrinsics: width, height, fx, fy, cx, cy.  cam_to_scene: (4, 4) rigid transform.
@@ -94,11 +95,18 @@ def render(scene: Scene, intrinsics: Intrinsics, cam_to_scene: np.ndarray, *, ma
         raise ValueError(f"cam_to_scene must have shape (4, 4), got {T.shape}")
     if not scene.objects and scene.table_half_extent <= 0:
         raise ValueError("scene is empty")
-    return _render(scene, intrinsics, T, max_steps, eps, t_max, cull_margin)
+    # One intra-op thread: each step is a few dozen small tensor ops, where thread hand-off costs
+    # more than it saves (measured 0.8 s vs 6-25 s per frame on a loaded 2-core machine).
+    n_threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        return _render(scene, intrinsics, T, max_steps, eps, t_max, cull_margin, grazing_tol)
+    finally:
+        torch.set_num_threads(n_threads)
 
 
 def _render(scene: Scene, K: Intrinsics, T: np.ndarray, max_steps: int, eps: float, t_max: float,
-            cull_margin: float) -> Render:
+            cull_margin: float, grazing_tol: float) -> Render:
     H, W = K.height, K.width
     v, u = torch.meshgrid(torch.arange(H, dtype=torch.float32), torch.arange(W, dtype=torch.float32), indexing="ij")
     d_cam = torch.stack([(u - K.cx) / K.fx, (v - K.cy) / K.fy, torch.ones_like(u)], dim=-1).reshape(-1, 3)
@@ -126,18 +134,27 @@ def _render(scene: Scene, K: Intrinsics, T: np.ndarray, max_steps: int, eps: flo
     # towards a plane at a grazing angle would shrink the step only geometrically.  The objects are
     # sphere-traced up to that distance; rays start where they enter the slab of object heights.
     P = d.shape[0]
-    top = max([float(ob.centre[2]) + ob.radius for ob in placed], default=0.0) + cull_margin
     dz = d[:, 2]
     down = dz < -1e-9
     t_table = torch.where(down, -origin[2] / torch.where(down, dz, -1.0), torch.full((P,), float("inf")))
     q = origin[:2] + t_table.clamp(max=1e3)[:, None] * d[:, :2]
     on_table = down & (q.abs().max(dim=1).values <= half) & (t_table > 0)
     t_table = torch.where(on_table, t_table, torch.full((P,), t_max))
-    t_enter = torch.where(down & (origin[2] > top), (top - origin[2]) / torch.where(down, dz, -1.0), torch.zeros(P))
-    t = torch.maximum(t_enter, torch.full((P,), 0.02))
+    # Rays start where they first enter an object's (margin-grown) bounding sphere; rays that enter
+    # none go straight to the table.
+    t = torch.full((P,), float("inf"))
+    for ob in placed:
+        oc = origin - ob.centre
+        b = d @ oc
+        disc = b * b - (float(oc @ oc) - (ob.radius + cull_margin) ** 2)
+        root = torch.sqrt(disc.clamp(min=0.0))
+        enters = (disc > 0) & (-b + root > 0)
+        t = torch.where(enters, torch.minimum(t, (-b - root).clamp(min=0.02)), t)
     hit = torch.zeros(P, dtype=torch.bool)
     active = torch.nonzero(t < t_table).squeeze(1)
+    t = torch.where(t < t_table, t, t_table)
     steps = 0
+    last_dist = torch.zeros(0)
     for steps in range(1, max_steps + 1):
         if active.numel() == 0 or not placed:
             break
@@ -148,6 +165,11 @@ def _render(scene: Scene, K: Intrinsics, T: np.ndarray, max_steps: int, eps: flo
         t[active] += torch.where(done, torch.zeros_like(dist), dist)
         keep = ~done & (t[active] < t_table[active])
         active = active[keep]
+        last_dist = dist[keep]
+    # Rays still marching after max_steps are creeping along a silhouette: count them as hits when
+    # they are within ``grazing_tol`` of a surface, otherwise let them fall through to the table.
+    if active.numel():
+        hit[active[last_dist < grazing_tol]] = True
     # Rays that reached the table plane (or never met an object) end on the table top.
     table_hit = ~hit & on_table
     t = torch.where(table_hit, t_table, t)

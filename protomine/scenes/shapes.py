@@ -104,7 +104,7 @@ def frustum(r_bottom: float, r_top: float, height: float, z0: float = 0.0) -> Sh
     def fn(p: Tensor) -> Tensor:
         qx = _length2(p[:, 0], p[:, 1])
         qy = p[:, 2] - zc
-        rr = torch.where(qy < 0, torch.full_like(qy, r_bottom), torch.full_like(qy, r_top))
+        rr = torch.where(qy < 0, r_bottom, r_top)
         cax = qx - torch.minimum(qx, rr)
         cay = qy.abs() - hh
         t = (((r_top - qx) * k2x + (hh - qy) * k2y) / k2dot).clamp(0.0, 1.0)

@@ -1,0 +1,204 @@
+"""Generate the demo scenario: rendered capture folders plus truth files beside them.
+
+Layout of OUT::
+
+    OUT/scenario.json        capture folders (mining / single-frame), class split, seed
+    OUT/truth.csv            object,label,yaw_deg            (object = "<capture>/<mask id>")
+    OUT/truth_points.csv     capture,x,y,z,label,yaw_deg     (world base centre of each object)
+    OUT/truth_full.csv       every fact about every object (class, symmetry, scale, up, split...)
+    OUT/mine_000/ ...        mining captures: a ring of cameras around the table
+    OUT/single_000/ ...      single-frame captures: new instances, including the held-out classes
+
+Conventions: each capture's scene is built in a table frame (z up, table top z = 0); the capture's
+world frame is a random rigid transform of it (up is not a world axis).  yaw_deg is the truth yaw of the
+object's canonical x axis, right-handed about the world up and measured from
+``geometry.reference_direction(up)``, in [0, 360); it is written unreduced, and ``symmetry`` in
+truth_full.csv gives the period to reduce it by.  Truth never goes inside a capture folder.
+"""
+from __future__ import annotations
+
+import csv
+import io
+import json
+import time
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+from scipy.spatial.transform import Rotation
+
+from demo_scenes.items import Instance, ItemClass, load_item_classes, make_instance
+
+from ..atomic import clean_stale_temporaries, write_text
+from ..capture import Intrinsics, write_capture
+from ..errors import InputError
+from ..geometry import direction_to_yaw
+from .noise import add_sensor_noise
+from .render import Scene, SceneObject, look_at, render
+
+SCENARIO_FORMAT = "protomine.scenario/1"
+DEPTH_SCALE = 1000.0
+PLACE_RADIUS = 0.38          # object footprints stay inside this disc about the table centre (m)
+GAP = 0.01                   # minimum gap between footprint circles (m)
+
+
+def demo_intrinsics(width: int, height: int) -> Intrinsics:
+    """A ~62 degree horizontal field of view, principal point at the image centre."""
+    f = 0.85 * width
+    return Intrinsics(width, height, f, f, (width - 1) / 2, (height - 1) / 2)
+
+
+def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int = 24, frames: int = 8,
+                      width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
+                      single_classes: list[str] | None = None,
+                      progress: Callable[[str], None] | None = None) -> dict:
+    """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
+
+    classes: item classes used in mining captures (default: every class not marked held_out).
+    single_classes: classes used in single-frame captures (default: every class).
+    """
+    if n_mining < 1 or n_single < 0 or frames < 1:
+        raise InputError(None, "captures/single/frames", f"expected captures >= 1, single >= 0, frames >= 1, got {n_mining}, {n_single}, {frames}")
+    if width < 16 or height < 16:
+        raise InputError(None, "width/height", f"expected an image of at least 16x16, got {width}x{height}")
+    all_classes = load_item_classes()
+    by_name = {c.name: c for c in all_classes}
+    mining = _pick(by_name, classes, [c.name for c in all_classes if not c.held_out], "classes")
+    single = _pick(by_name, single_classes, [c.name for c in all_classes], "single_classes")
+    return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
+                     progress or (lambda msg: None))
+
+
+def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
+    names = default if names is None else list(names)
+    unknown = [n for n in names if n not in by_name]
+    if unknown or not names:
+        raise InputError(None, what, f"expected a non-empty list of item classes from {sorted(by_name)}, got {names}")
+    return [by_name[n] for n in names]
+
+
+def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
+              mining: list[ItemClass], single: list[ItemClass], progress: Callable[[str], None]) -> dict:
+    t0 = time.monotonic()
+    out.mkdir(parents=True, exist_ok=True)
+    clean_stale_temporaries(out)
+    rng = np.random.default_rng(seed)
+    K = demo_intrinsics(width, height)
+    plan = [(f"mine_{i:03d}", "mining", mining, frames) for i in range(n_mining)]
+    plan += [(f"single_{i:03d}", "single", single, 1) for i in range(n_single)]
+    rows: list[dict] = []
+    render_s, n_frames = 0.0, 0
+    for name, split, pool, n_frames_cap in plan:
+        cap_rng = rng.spawn(1)[0]
+        t1 = time.monotonic()
+        cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng)
+        rows += cap_rows
+        render_s += dt
+        n_frames += n_frames_cap
+        progress(f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {time.monotonic() - t1:.2f}s")
+    _write_truth(out, rows)
+    held = sorted({c.name for c in single} - {c.name for c in mining})
+    doc = {
+        "format": SCENARIO_FORMAT,
+        "seed": int(seed),
+        "mining": [p[0] for p in plan if p[1] == "mining"],
+        "single": [p[0] for p in plan if p[1] == "single"],
+        "classes": {"mining": [c.name for c in mining], "single": [c.name for c in single], "held_out": held},
+        "symmetry": {c.name: c.symmetry for c in {**{c.name: c for c in mining}, **{c.name: c for c in single}}.values()},
+        "truth": {"objects": "truth.csv", "points": "truth_points.csv", "full": "truth_full.csv"},
+        "image": {"width": width, "height": height, "frames_per_mining_capture": frames},
+    }
+    write_text(out / "scenario.json", json.dumps(doc, indent=1))
+    return {**doc, "out": str(out), "objects": len(rows), "frames_rendered": n_frames,
+            "render_seconds_per_frame": render_s / max(n_frames, 1), "seconds": time.monotonic() - t0}
+
+
+def _place(instances: list[Instance], rng: np.random.Generator) -> list[tuple[float, float]] | None:
+    """Non-overlapping footprint circles inside PLACE_RADIUS, or None when this draw does not fit."""
+    radii = [inst.shape.footprint_radius() for inst in instances]
+    order = np.argsort(radii)[::-1]
+    pos: dict[int, np.ndarray] = {}
+    for i in order:
+        r = radii[i]
+        room = PLACE_RADIUS - r
+        if room < 0:
+            return None
+        for _ in range(300):
+            rho, a = room * np.sqrt(rng.random()), rng.uniform(0, 2 * np.pi)
+            c = np.array([rho * np.cos(a), rho * np.sin(a)])
+            if all(np.linalg.norm(c - pos[j]) > r + radii[j] + GAP for j in pos):
+                pos[i] = c
+                break
+        else:
+            return None
+    return [tuple(pos[i]) for i in range(len(instances))]
+
+
+def _layout(pool: list[ItemClass], rng: np.random.Generator) -> tuple[list[Instance], list[tuple[float, float]]]:
+    target = int(rng.integers(5, 9))
+    for attempt in range(60):
+        n = max(5, target - attempt // 15)     # a crowded draw gives up one object every 15 attempts
+        instances = [make_instance(pool[int(rng.integers(len(pool)))], rng) for _ in range(n)]
+        pos = _place(instances, rng)
+        if pos is not None:
+            return instances, pos
+    raise RuntimeError("could not place 5 objects without overlap; item sizes too large for the table disc")
+
+
+def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
+                 rng: np.random.Generator) -> tuple[list[dict], float]:
+    instances, pos = _layout(pool, rng)
+    yaws = rng.uniform(0.0, 360.0, len(instances))
+    scene = Scene([SceneObject(inst.shape, float(y), p, inst.colour) for inst, y, p in zip(instances, yaws, pos)],
+                  table_colour=tuple(np.clip(np.array([0.62, 0.55, 0.45]) + rng.normal(0, 0.05, 3), 0, 1)),
+                  table_texture=float(rng.uniform(0.0, 0.06)))
+    # The capture's world frame: a random rigid transform of the table frame.
+    world_from_table = np.eye(4)
+    world_from_table[:3, :3] = Rotation.random(random_state=rng).as_matrix()
+    world_from_table[:3, 3] = rng.uniform(-1.5, 1.5, 3)
+    az0 = rng.uniform(0.0, 360.0)
+    out_frames, dt = [], 0.0
+    for k in range(n_frames):
+        az = np.deg2rad(az0 + 360.0 * k / n_frames + rng.uniform(-8.0, 8.0))
+        el = np.deg2rad(rng.uniform(35.0, 60.0))
+        dist = rng.uniform(0.55, 0.9)
+        eye = dist * np.array([np.cos(el) * np.cos(az), np.cos(el) * np.sin(az), np.sin(el)])
+        target = np.array([*rng.normal(0.0, 0.03, 2), 0.03])
+        cam_to_table = look_at(eye, target, np.array([0.0, 0.0, 1.0]), roll_deg=rng.uniform(-3.0, 3.0))
+        t1 = time.monotonic()
+        frame = render(scene, K, cam_to_table)
+        dt += time.monotonic() - t1
+        depth, rgb = add_sensor_noise(frame, rng)
+        out_frames.append({"id": f"{k:06d}", "cam_to_world": world_from_table @ cam_to_table, "rgb": rgb,
+                           "depth_m": depth, "mask": frame.mask.astype(np.uint16)})
+    write_capture(folder, intrinsics=K, depth_scale=DEPTH_SCALE, frames=out_frames)
+    R, t = world_from_table[:3, :3], world_from_table[:3, 3]
+    up = R[:, 2]
+    rows = []
+    for mid, (inst, yaw, p) in enumerate(zip(instances, yaws, pos), start=1):
+        a = np.deg2rad(yaw)
+        x_dir = R @ np.array([np.cos(a), np.sin(a), 0.0])
+        base = R @ np.array([p[0], p[1], 0.0]) + t
+        rows.append({"capture": folder.name, "mask_id": mid, "object": f"{folder.name}/{mid}", "class": inst.item.name,
+                     "symmetry": inst.item.symmetry, "yaw_deg": float(direction_to_yaw(x_dir, up)),
+                     "scale": inst.scale, "size_m": inst.size, "x": base[0], "y": base[1], "z": base[2],
+                     "up_x": up[0], "up_y": up[1], "up_z": up[2], "split": split})
+    return rows, dt
+
+
+def _csv(header: list[str], rows: list[list]) -> str:
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(header)
+    for r in rows:
+        w.writerow([f"{v:.6f}" if isinstance(v, (float, np.floating)) else v for v in r])
+    return buf.getvalue()
+
+
+def _write_truth(out: Path, rows: list[dict]) -> None:
+    write_text(out / "truth.csv", _csv(["object", "label", "yaw_deg"], [[r["object"], r["class"], r["yaw_deg"]] for r in rows]))
+    write_text(out / "truth_points.csv", _csv(["capture", "x", "y", "z", "label", "yaw_deg"],
+                                               [[r["capture"], r["x"], r["y"], r["z"], r["class"], r["yaw_deg"]] for r in rows]))
+    full = ["capture", "mask_id", "object", "class", "symmetry", "yaw_deg", "scale", "size_m", "x", "y", "z",
+            "up_x", "up_y", "up_z", "split"]
+    write_text(out / "truth_full.csv", _csv(full, [[r[k] for k in full] for r in rows]))
