@@ -16,6 +16,8 @@ COMMANDS: list[tuple[str, str]] = [
     # (module under protomine, function name); each stage adds its own line
     ("provenance", "provenance_cmd"),
     ("ingest.command", "ingest"),
+    ("mine.command", "mine"),
+    ("scenes.command", "scenes"),
     ("audit.command", "audit"),
 ]
 
