@@ -127,7 +127,9 @@ def is_rigid(T: np.ndarray, tol: float = 1e-4) -> str | None:
 
 def normalize(v: np.ndarray, eps: float = EPS) -> np.ndarray:
     v = np.asarray(v, dtype=np.float64)
-    return v / (np.linalg.norm(v, axis=-1, keepdims=True) + eps)
+    # max(norm, eps), not norm + eps: the latter leaves unit vectors ~1e-9 short of unit length,
+    # which shows up as 1e-7 degree yaw errors and non-orthonormal bases.
+    return v / np.maximum(np.linalg.norm(v, axis=-1, keepdims=True), eps)
 
 
 def axis_angle_to_matrix(axis: np.ndarray, angle_rad: np.ndarray | float) -> np.ndarray:
