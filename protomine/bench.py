@@ -1,0 +1,157 @@
+"""``protomine bench``: speed and memory of the clustering engine, measured side by side in one run.
+
+Synthetic volumes (demo data, invented): K random smooth prototypes on a (C, R, A, H) = (5, 8, 36, 12)
+grid, each object a prototype rolled by a random yaw, scaled by a random factor in [0.9, 1.1], with
+Gaussian noise and a random partial-observation mask (a view sees a random half of the azimuth and a
+random fraction of the height).
+
+Rows (JSON keys in brackets):
+
+(a) assignment of the same N objects to K = 32 prototypes [``assignment``]:
+    ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
+    ``naive_s`` (explicitly rolling every prototype for every shift), ``ratio_fft_dense`` (target <= 4),
+    ``ratio_naive_fft``; ``n_objects``, ``n_prototypes``, ``n_shifts``.
+(b) mining with fixed K = 32 [``mining``]: a list of {``n_objects``, ``seconds``, ``peak_rss_mb``,
+    ``n_iter``}, each size run in its own subprocess so its peak resident memory
+    (``resource.getrusage(RUSAGE_SELF).ru_maxrss``) is its own; ``growth_exponent`` = slope of
+    log(seconds) against log(n_objects) (1 = linear).  Targets: 10,000 objects under 300 s, under 2 GB.
+
+Other stages add rows by appending a ``(name, function(quick, seed) -> dict)`` pair to ``BENCH_ROWS``;
+each dict is printed as one table section and stored under its name in the JSON.
+"""
+from __future__ import annotations
+
+import json as _json
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Annotated, Callable, Optional
+
+import numpy as np
+import typer
+from scipy import ndimage
+
+from . import atomic
+
+GRID = (5, 8, 36, 12)  # C, R, A, H
+
+
+def synthetic_prototypes(rng: np.random.Generator, k: int, grid: tuple[int, int, int, int] = GRID) -> np.ndarray:
+    """(k, C, R, A, H) random smooth prototypes (Gaussian-filtered noise, wrapped along azimuth)."""
+    C, R, A, H = grid
+    P = rng.normal(size=(k, C, R, A, H))
+    P = ndimage.gaussian_filter(P, sigma=(0, 0, 1.0, 2.5, 1.5), mode=("nearest", "nearest", "nearest", "wrap", "nearest"))
+    P /= P.std(axis=(1, 2, 3, 4), keepdims=True) + 1e-9
+    return P.astype(np.float32)
+
+
+def synthetic_objects(rng: np.random.Generator, P: np.ndarray, n: int, *, noise: float = 0.3,
+                      scale_jitter: float = 0.1, partial: bool = True
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """n objects from prototypes P (K, C, R, A, H): X (n, C, R, A, H), W (n, R, A, H), labels (n,),
+    yaw_deg (n,) (object = prototype rolled by yaw), scale (n,)."""
+    from .mine.posesearch import _resample_axis, shift_volume
+    K, C, R, A, H = P.shape
+    labels = rng.integers(0, K, n)
+    yaw = rng.uniform(0, 360, n)
+    scale = rng.uniform(1 - scale_jitter, 1 + scale_jitter, n) if scale_jitter > 0 else np.ones(n)
+    X = shift_volume(P[labels], yaw / (360.0 / A), axis=3)
+    for i in range(n):
+        if scale[i] != 1.0:
+            m = np.ones((1, R, 1, H), bool)
+            x = X[i:i + 1]
+            x, _ = _resample_axis(x, m, scale[i], 2)
+            x, _ = _resample_axis(x, m, scale[i], 4)
+            X[i:i + 1] = x
+    X = (X + noise * rng.normal(size=X.shape)).astype(np.float32)
+    W = np.ones((n, R, A, H), np.float32)
+    if partial:
+        start = rng.integers(0, A, n)
+        arc = (np.arange(A)[None, :] - start[:, None]) % A < A // 2  # a view sees half the azimuth
+        top = rng.integers(H // 2, H + 1, n)
+        tall = np.arange(H)[None, :] < top[:, None]
+        W = (arc[:, None, :, None] & tall[:, None, None, :]).astype(np.float32) * W
+    return X, W, labels, yaw, scale
+
+
+def _time(fn: Callable[[], object]) -> float:
+    t0 = time.perf_counter()
+    fn()
+    return time.perf_counter() - t0
+
+
+def bench_assignment(quick: bool, seed: int) -> dict:
+    """(a) FFT over all shifts vs one dense pass vs naive explicit rotation, same volumes."""
+    from .mine.posesearch import dense_distances, pose_distances, pose_distances_naive
+    rng = np.random.default_rng(seed)
+    K = 8 if quick else 32
+    n = 256 if quick else 2048
+    P = synthetic_prototypes(rng, K)
+    X, W, *_ = synthetic_objects(rng, P, n)
+    V = np.ones((K,) + W.shape[1:], np.float32)
+    pose_distances(X[:64], W[:64], P, V)  # warm-up (thread pools, allocator)
+    fft_s = min(_time(lambda: pose_distances(X, W, P, V, chunk_size=512)) for _ in range(2))
+    dense_s = min(_time(lambda: dense_distances(X, W, P, V, chunk_size=512)) for _ in range(2))
+    m = max(32, n // 8)  # the naive way is slow: time a slice and scale up
+    naive_s = _time(lambda: pose_distances_naive(X[:m], W[:m], P, V, chunk_size=512)) * n / m
+    return {"n_objects": n, "n_prototypes": K, "n_shifts": GRID[2], "fft_s": fft_s, "dense_s": dense_s,
+            "naive_s": naive_s, "naive_timed_objects": m, "ratio_fft_dense": fft_s / dense_s,
+            "ratio_naive_fft": naive_s / fft_s}
+
+
+def _mine_once(n: int, k: int, seed: int) -> dict:
+    """Run in a subprocess: generate n objects, fit PoseKMeans(K=k), report time and peak RSS."""
+    from .mine.engine import ArraySource, PoseKMeans
+    rng = np.random.default_rng(seed)
+    P = synthetic_prototypes(rng, k)
+    X, W, *_ = synthetic_objects(rng, P, n)
+    t0 = time.perf_counter()
+    model = PoseKMeans(n_clusters=k, n_init=2, max_iter=15, chunk_size=1024, random_state=seed,
+                       sample_size=2048).fit(ArraySource(X, W))
+    secs = time.perf_counter() - t0
+    rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB
+    return {"n_objects": n, "seconds": secs, "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_)}
+
+
+def bench_mining(quick: bool, seed: int) -> dict:
+    """(b) mining time and peak memory per size, each size in its own subprocess."""
+    sizes, k = ((200, 400), 8) if quick else ((1000, 3000, 10000), 32)
+    rows = []
+    for n in sizes:
+        code = f"import json; from protomine.bench import _mine_once; print(json.dumps(_mine_once({n}, {k}, {seed})))"
+        out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+        rows.append(_json.loads(out.stdout.strip().splitlines()[-1]))
+    ln, lt = np.log([r["n_objects"] for r in rows]), np.log([r["seconds"] for r in rows])
+    growth = float(np.polyfit(ln, lt, 1)[0]) if len(rows) > 1 else float("nan")
+    return {"n_prototypes": k, "sizes": rows, "growth_exponent": growth}
+
+
+# The label stage appends its throughput row here: (name, fn(quick, seed) -> dict of figures).
+BENCH_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [
+    ("assignment", bench_assignment),
+    ("mining", bench_mining),
+]
+
+
+def _print_section(name: str, figures: dict) -> None:
+    print(f"== {name}")
+    for key, val in figures.items():
+        if isinstance(val, list):
+            for row in val:
+                print("   " + "  ".join(f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in row.items()))
+        else:
+            print(f"   {key:<22} {val:.4g}" if isinstance(val, float) else f"   {key:<22} {val}")
+
+
+def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also write the figures as JSON here.")] = None,
+          quick: Annotated[bool, typer.Option("--quick", help="Small sizes: a smoke test of the benchmark.")] = False,
+          seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed of the synthetic volumes.")] = 0) -> None:
+    """Measure pose-search and mining speed and memory on synthetic volumes (see protomine/bench.py)."""
+    results = {"quick": quick, "seed": seed, "grid_CRAH": list(GRID)}
+    for name, fn in BENCH_ROWS:
+        results[name] = fn(quick, seed)
+        _print_section(name, results[name])
+    if json is not None:
+        atomic.write_text(json, _json.dumps(results, indent=2))
