@@ -1,0 +1,78 @@
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from protomine.mine.posesearch import dense_distances, pose_distances, pose_distances_naive, shift_volume
+
+
+def _random(rng, n=12, k=3, grid=(3, 5, 24, 4)):
+    C, R, A, H = grid
+    X = rng.normal(size=(n, C, R, A, H)).astype(np.float32)
+    W = (rng.random((n, R, A, H)) * (rng.random((n, R, A, H)) > 0.4)).astype(np.float32)
+    P = rng.normal(size=(k, C, R, A, H)).astype(np.float32)
+    V = rng.random((k, R, A, H)).astype(np.float32)
+    return X, W, P, V
+
+
+@pytest.mark.parametrize("scales", [(1.0,), (0.85, 1.0, 1.2)])
+def test_fft_matches_naive_twin(scales):
+    X, W, P, V = _random(np.random.default_rng(1))
+    fast = pose_distances(X, W, P, V, scales=scales, return_all=True, chunk_size=5)
+    slow = pose_distances_naive(X, W, P, V, scales=scales, return_all=True)
+    np.testing.assert_allclose(fast.all_D, slow.all_D, rtol=1e-4, atol=1e-5)
+    np.testing.assert_allclose(fast.D, slow.D, rtol=1e-4, atol=1e-5)
+    np.testing.assert_array_equal(fast.scale, slow.scale)
+    np.testing.assert_allclose(fast.yaw_deg, slow.yaw_deg, atol=1e-2)
+
+
+def test_rolled_prototype_found_at_its_yaw_with_zero_distance():
+    rng = np.random.default_rng(2)
+    _, _, P, V = _random(rng, k=2)
+    A = P.shape[3]
+    X, W = np.roll(P, 5, axis=3), np.roll(V, 5, axis=2)
+    m = pose_distances(X, W, P, V)
+    np.testing.assert_allclose(np.diag(m.yaw_deg), 5 * 360.0 / A, atol=1e-3)
+    assert np.diag(m.D).max() < 1e-5
+
+
+def test_sub_bin_refinement_recovers_fractional_shift():
+    A = 36
+    phi = 2 * np.pi * np.arange(A) / A
+    proto = (np.cos(phi) + 0.5 * np.sin(2 * phi)).astype(np.float32)  # smooth ring
+    P = np.broadcast_to(proto[None, None, None, :, None], (1, 1, 2, A, 1)).copy()
+    V = np.ones((1, 2, A, 1), np.float32)
+    for true_shift in (3.3, 10.7, 20.5):
+        # the object is the continuous signal rotated by a fractional number of bins
+        x = (np.cos(phi - true_shift * 2 * np.pi / A) + 0.5 * np.sin(2 * (phi - true_shift * 2 * np.pi / A)))
+        X = np.broadcast_to(x.astype(np.float32)[None, None, None, :, None], (1, 1, 2, A, 1)).copy()
+        m = pose_distances(X, V.copy(), P, V)
+        assert abs(m.yaw_deg[0, 0] / (360.0 / A) - true_shift) < 0.2
+
+
+def test_unobserved_cells_do_not_change_distance():
+    rng = np.random.default_rng(3)
+    X, W, P, V = _random(rng)
+    W[:, :, :6] = 0.0
+    a = pose_distances(X, W, P, V, scales=(0.9, 1.0))
+    X2 = X.copy()
+    X2[:, :, :, :6] = rng.normal(size=X2[:, :, :, :6].shape) * 100  # garbage where w = 0
+    b = pose_distances(X2, W, P, V, scales=(0.9, 1.0))
+    np.testing.assert_allclose(a.D, b.D, rtol=1e-4, atol=1e-5)
+    np.testing.assert_allclose(dense_distances(X, W, P, V), dense_distances(X2, W, P, V), rtol=1e-4, atol=1e-5)
+
+
+def test_distance_formula_by_hand():
+    # one cell observed by both (w v = 0.5 * 1), one channel differing by 2: D = 0.5 * 4 / (1 * 0.5)
+    X = np.zeros((1, 1, 1, 4, 1), np.float32)
+    X[0, 0, 0, 0, 0] = 2.0
+    W = np.zeros((1, 1, 4, 1), np.float32)
+    W[0, 0, 0, 0] = 0.5
+    P = np.zeros((1, 1, 1, 4, 1), np.float32)
+    V = np.ones((1, 1, 4, 1), np.float32)
+    assert dense_distances(X, W, P, V)[0, 0] == pytest.approx(4.0, rel=1e-4)
+
+
+def test_shift_volume_integer_equals_roll():
+    a = np.random.default_rng(4).random((3, 2, 7, 10, 2))
+    np.testing.assert_allclose(shift_volume(a, np.array([1, -3, 12]), axis=3)[1], np.roll(a[1], -3, axis=2))
