@@ -79,7 +79,16 @@ class _Placed:
         return self.shape.fn((p - self.t) @ self.R)
 
     def bound(self, p: Tensor) -> Tensor:
-        return torch.linalg.vector_norm(p - self.centre, dim=1) - self.radius
+        q = p - self.centre
+        return (q * q).sum(dim=1).sqrt() - self.radius
+
+    def culled_sdf(self, p: Tensor, margin: float) -> Tensor:
+        """Exact SDF within ``margin`` of the bounding sphere, the sphere distance (a lower bound) elsewhere."""
+        db = self.bound(p)
+        near = torch.nonzero(db < margin).squeeze(1)
+        if near.numel():
+            db = db.index_put((near,), self.sdf(p[near]))
+        return db
 
 
 def render(scene: Scene, intrinsics: Intrinsics, cam_to_scene: np.ndarray, *, max_steps: int = 64,
@@ -122,12 +131,7 @@ def _render(scene: Scene, K: Intrinsics, T: np.ndarray, max_steps: int, eps: flo
     def objects_sdf(p: Tensor) -> Tensor:
         dist = torch.full((p.shape[0],), float("inf"))
         for ob in placed:
-            db = ob.bound(p)
-            near = db < cull_margin
-            if near.any():
-                db = db.clone()
-                db[near] = ob.sdf(p[near])
-            dist = torch.minimum(dist, db)
+            dist = torch.minimum(dist, ob.culled_sdf(p, cull_margin))
         return dist
 
     # The table slab is a plane for every ray that reaches it, so its hit is closed-form: marching
@@ -178,7 +182,7 @@ def _render(scene: Scene, K: Intrinsics, T: np.ndarray, max_steps: int, eps: flo
     idx = torch.nonzero(hit).squeeze(1)
     p = origin + t[idx, None] * d[idx]
     # Which surface was hit: the component with the smallest distance at the hit point.
-    comps = [table.fn(p)] + [torch.where(ob.bound(p) < cull_margin, ob.sdf(p), ob.bound(p)) for ob in placed]
+    comps = [table.fn(p)] + [ob.culled_sdf(p, cull_margin) for ob in placed]
     which = torch.stack(comps, dim=1).argmin(dim=1)
     normal = torch.zeros_like(p)
     fns = [table.fn] + [ob.sdf for ob in placed]

@@ -54,13 +54,18 @@ def _length2(x: Tensor, y: Tensor) -> Tensor:
     return torch.sqrt(x * x + y * y)
 
 
+def _norm(q: Tensor) -> Tensor:
+    """Row norms (N,) of (N, 3); cheaper per call than torch.linalg.vector_norm on small tensors."""
+    return (q * q).sum(dim=1).sqrt()
+
+
 # --- primitives ----------------------------------------------------------------------------------
 
 def sphere(radius: float, centre: tuple[float, float, float] = (0.0, 0.0, 0.0)) -> Shape:
     c = torch.tensor(centre, dtype=torch.float32)
 
     def fn(p: Tensor) -> Tensor:
-        return torch.linalg.vector_norm(p - c, dim=1) - radius
+        return _norm(p - c) - radius
     return Shape(fn, tuple(np.subtract(centre, radius)), tuple(np.add(centre, radius)))
 
 
@@ -77,7 +82,7 @@ def rounded_box(half: tuple[float, float, float], radius: float,
 
     def fn(p: Tensor) -> Tensor:
         q = (p - c).abs() - inner
-        outside = torch.linalg.vector_norm(q.clamp(min=0.0), dim=1)
+        outside = _norm(q.clamp(min=0.0))
         inside = q.max(dim=1).values.clamp(max=0.0)
         return outside + inside - radius
     return Shape(fn, tuple(np.subtract(centre, half)), tuple(np.add(centre, half)))
@@ -136,7 +141,7 @@ def capsule(a: tuple[float, float, float], b: tuple[float, float, float], radius
     def fn(p: Tensor) -> Tensor:
         pa = p - ta
         h = ((pa @ ba) / bb).clamp(0.0, 1.0)
-        return torch.linalg.vector_norm(pa - h[:, None] * ba, dim=1) - radius
+        return _norm(pa - h[:, None] * ba) - radius
     lo = np.minimum(a, b) - radius
     hi = np.maximum(a, b) + radius
     return Shape(fn, tuple(lo), tuple(hi))
