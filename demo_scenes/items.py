@@ -4,7 +4,8 @@ Conventions: every builder gets the instance's characteristic ``size`` (metres, 
 items.toml), its drawn proportions ``p`` (name -> float) and the generator ``rng``, and returns a
 :class:`protomine.scenes.shapes.Shape` in the object frame: z up, canonical x axis = the direction
 that yaw rotates (asymmetric classes put a distinctive part along +x).  :func:`make_instance`
-re-centres the result so its footprint is centred on the z axis and its base lies on z = 0.
+puts its base on z = 0 and, for asymmetric classes, centres its footprint box on the z axis; builders of
+symmetric classes must put the symmetry axis on z.
 
 To add a class: add an ``[[item]]`` table to items.toml and a function decorated with
 ``@builder("<name>")`` below.
@@ -135,7 +136,7 @@ def make_instance(item: ItemClass, rng: np.random.Generator) -> Instance:
     else:
         base = item.palette[int(rng.integers(len(item.palette)))]
         colour = tuple(float(np.clip(c + rng.normal(0.0, 0.04), 0.0, 1.0)) for c in base)
-    shape = S.on_base(BUILDERS[item.name](size, params, rng))
+    shape = S.on_base(BUILDERS[item.name](size, params, rng), centre_xy=item.symmetry == "none")
     return Instance(item, shape, colour, size, size / math.sqrt(lo * hi), params)
 
 
@@ -220,10 +221,12 @@ def _hand_plane(size: float, p: dict, rng: np.random.Generator) -> Shape:
     w, hb = size * p["width"], size * p["body_height"]
     rk = size * p["knob_radius"]
     body = S.rounded_box((size / 2, w / 2, hb / 2), min(0.2 * hb, 0.01), (0.0, 0.0, hb / 2))
-    knob = S.sphere(rk, (size * 0.3, 0.0, hb + rk * 0.7))
-    tote = S.translate(S.rotate(S.torus(size * 0.1, size * 0.028), S.axis_rotation("x", 90.0)),
-                       (-size * 0.22, 0.0, hb + size * 0.04))
-    return S.union(body, knob, S.intersect(tote, S.halfspace((0.0, 0.0, -1.0), (0.0, 0.0, hb * 0.9))))
+    # a pointed toe at +x, a small knob in front and a tall closed tote behind make front and back differ
+    toe = S.intersect(body, S.halfspace((1.0, 0.7, 0.0), (size / 2, 0.0, 0.0)), S.halfspace((1.0, -0.7, 0.0), (size / 2, 0.0, 0.0)))
+    knob = S.sphere(rk, (size * 0.28, 0.0, hb + rk * 0.7))
+    tote = S.translate(S.rotate(S.torus(size * 0.14, size * 0.045), S.axis_rotation("x", 90.0)),
+                       (-size * 0.24, 0.0, hb + size * 0.11))
+    return S.union(toe, knob, S.intersect(tote, S.halfspace((0.0, 0.0, -1.0), (0.0, 0.0, hb * 0.9))))
 
 
 @builder("trowel")

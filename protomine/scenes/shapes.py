@@ -229,7 +229,13 @@ def smooth_union(a: Shape, b: Shape, k: float) -> Shape:
     return Shape(fn, tuple(lo), tuple(hi))
 
 
-def on_base(shape: Shape) -> Shape:
-    """Translate so the bounding box is centred on the z axis and its bottom lies on z = 0."""
+def on_base(shape: Shape, *, centre_xy: bool = True) -> Shape:
+    """Translate so the bottom lies on z = 0 and (if centre_xy) the bounding box is centred on the z axis.
+
+    Symmetric shapes keep their xy placement (centre_xy=False): their symmetry axis is the z axis,
+    which the bounding-box centre need not be (three legs at 0/120/240 degrees).
+    """
     lo, hi = np.asarray(shape.lo), np.asarray(shape.hi)
+    if not centre_xy:
+        return translate(shape, (0.0, 0.0, -lo[2]))
     return translate(shape, (-(lo[0] + hi[0]) / 2, -(lo[1] + hi[1]) / 2, -lo[2]))
