@@ -87,11 +87,12 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     plan = [(f"mine_{i:03d}", "mining", mining, frames) for i in range(n_mining)]
     plan += [(f"single_{i:03d}", "single", single, 1) for i in range(n_single)]
     rows: list[dict] = []
+    used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
     render_s, n_frames = 0.0, 0
     for name, split, pool, n_frames_cap in plan:
         cap_rng = rng.spawn(1)[0]
         t1 = time.monotonic()
-        cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng)
+        cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split])
         rows += cap_rows
         render_s += dt
         n_frames += n_frames_cap
@@ -134,20 +135,26 @@ def _place(instances: list[Instance], rng: np.random.Generator) -> list[tuple[fl
     return [tuple(pos[i]) for i in range(len(instances))]
 
 
-def _layout(pool: list[ItemClass], rng: np.random.Generator) -> tuple[list[Instance], list[tuple[float, float]]]:
+def _layout(pool: list[ItemClass], rng: np.random.Generator,
+            used: dict[str, int]) -> tuple[list[Instance], list[tuple[float, float]]]:
+    """5-8 new instances with placements.  ``used`` counts instances per class so far (updated here):
+    each scene takes the least-used classes (random tie-break), which keeps the classes balanced."""
     target = int(rng.integers(5, 9))
     for attempt in range(60):
         n = max(5, target - attempt // 15)     # a crowded draw gives up one object every 15 attempts
-        instances = [make_instance(pool[int(rng.integers(len(pool)))], rng) for _ in range(n)]
+        order = sorted(pool, key=lambda c: (used.get(c.name, 0), rng.random()))
+        instances = [make_instance(order[i % len(order)], rng) for i in range(n)]
         pos = _place(instances, rng)
         if pos is not None:
+            for inst in instances:
+                used[inst.item.name] = used.get(inst.item.name, 0) + 1
             return instances, pos
     raise RuntimeError("could not place 5 objects without overlap; item sizes too large for the table disc")
 
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
-                 rng: np.random.Generator) -> tuple[list[dict], float]:
-    instances, pos = _layout(pool, rng)
+                 rng: np.random.Generator, used: dict[str, int]) -> tuple[list[dict], float]:
+    instances, pos = _layout(pool, rng, used)
     yaws = rng.uniform(0.0, 360.0, len(instances))
     scene = Scene([SceneObject(inst.shape, float(y), p, inst.colour) for inst, y, p in zip(instances, yaws, pos)],
                   table_colour=tuple(np.clip(np.array([0.62, 0.55, 0.45]) + rng.normal(0, 0.05, 3), 0, 1)),
