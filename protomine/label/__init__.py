@@ -1,0 +1,1 @@
+"""Labelling: single-view matching against a prototype library, open-set score, overlays."""

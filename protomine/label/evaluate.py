@@ -1,0 +1,170 @@
+"""How good single-view labels are, against the demo scenario's truth (the label stage's target figures).
+
+Conventions:
+
+- ``records`` are the dicts of :mod:`protomine.label.matcher`.  Truth files are the scenario's CSVs
+  (``truth_full.csv``: capture, object, class, yaw_deg, x, y, z, ...; or ``truth.csv``: object, label,
+  yaw_deg).  A record is matched to its truth row by object id (masks) or, when ids do not match (no
+  masks), by its base point to the nearest truth base point of the same capture within ``radius_m``
+  (one-to-one, Hungarian matching by ``scipy.optimize.linear_sum_assignment``).
+- Cluster -> class: each prototype is named after the majority truth class of its *mined members*
+  (the library's members and the mining truth), so nothing of the labelled views leaks into the mapping.
+  A truth class is "known" when some mined member has it, else "unknown" (never mined: held out).
+- Yaw: predicted yaw is relative to the prototype's canonical frame, truth yaw to the capture's
+  reference direction, so they differ by one offset per prototype; that offset is the circular mean of
+  (truth - predicted) over the prototype's mined members of its majority class (``audit.metrics``), and
+  carries over to single views.  Errors are modulo the prototype's period; a continuous prototype has
+  error 0 (``median_yaw_error_deg_oriented`` leaves those out).
+- AUROC (``sklearn.metrics.roc_auc_score``) of the score for known (positive) vs unknown objects.
+
+Figures returned (``evaluate_labels``): n_records, n_matched, n_known, n_unknown, accuracy (known
+records whose best guess maps to their class, flagged or not), accepted_accuracy (among known records
+not flagged), median_yaw_error_deg (correctly classified known records), median_yaw_error_deg_oriented,
+auroc, unknown_flagged, known_flagged, cluster_to_class, per_class (n, accuracy, flagged).
+"""
+from __future__ import annotations
+
+import csv
+from collections import Counter
+from pathlib import Path
+
+import numpy as np
+from scipy.optimize import linear_sum_assignment
+from sklearn.metrics import roc_auc_score
+
+from ..audit.metrics import symmetry_to_period_deg, yaw_error_deg, yaw_offset_deg
+from ..errors import InputError
+from ..mine.library import Library
+
+DEFAULT_RADIUS_M = 0.05
+
+
+def read_truth_rows(path: str | Path) -> dict[str, dict]:
+    """Truth CSV -> {object id: {"class", "yaw_deg", "capture", "point" (3,) or None}}."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, None, "truth CSV not found")
+    with open(path, newline="") as fh:
+        reader = csv.DictReader(fh)
+        cols = reader.fieldnames or []
+        if "object" not in cols or not ({"class", "label"} & set(cols)):
+            raise InputError(path, "header", f"expected columns object and class (or label), got {cols}")
+        out = {}
+        for line, row in enumerate(reader, start=2):
+            try:
+                yaw = float(row["yaw_deg"]) if row.get("yaw_deg") not in (None, "") else None
+                point = np.array([float(row[c]) for c in "xyz"]) if all(row.get(c) for c in "xyz") else None
+            except ValueError:
+                raise InputError(path, f"row {line}", "expected numbers in yaw_deg, x, y, z") from None
+            oid = row["object"]
+            out[oid] = {"class": row.get("class") or row.get("label"), "yaw_deg": yaw, "point": point,
+                        "capture": row.get("capture") or oid.split("/")[0], "split": row.get("split", "")}
+    return out
+
+
+def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Library,
+                    mining_truth: str | Path, *, radius_m: float = DEFAULT_RADIUS_M) -> dict:
+    """The label targets for ``records`` (see the module docstring for every figure)."""
+    truth = read_truth_rows(truth_full_csv)
+    mined = read_truth_rows(mining_truth)
+    members = [str(o) for o in library.members["object"]]
+    missing = [o for o in members if o not in mined]
+    if missing:
+        raise InputError(mining_truth, "object", f"expected truth for every mined member, {len(missing)} missing "
+                         f"(e.g. {missing[0]!r})")
+    return _evaluate(records, truth, library, mined, radius_m)
+
+
+def cluster_classes(library: Library, mined: dict[str, dict]) -> dict[int, str | None]:
+    """Majority truth class of each prototype's mined members (None for an empty prototype)."""
+    m = library.members
+    out = {}
+    for k in range(library.n_clusters):
+        labs = [mined[str(o)]["class"] for o, c in zip(m["object"], m["cluster"]) if c == k]
+        out[k] = Counter(labs).most_common(1)[0][0] if labs else None
+    return out
+
+
+def cluster_yaw_offsets(library: Library, mined: dict[str, dict], classes: dict[int, str | None]) -> dict[int, float]:
+    """Per prototype: truth = predicted + offset (mod period), from its mined members of the majority class."""
+    m = library.members
+    out = {}
+    for k in range(library.n_clusters):
+        period = symmetry_to_period_deg(int(library.prototypes["symmetry"][k]))
+        sel = [(mined[str(o)]["yaw_deg"], y) for o, c, y in zip(m["object"], m["cluster"], m["yaw_deg"])
+               if c == k and mined[str(o)]["class"] == classes[k] and mined[str(o)]["yaw_deg"] is not None]
+        out[k] = yaw_offset_deg([t for t, _ in sel], [p for _, p in sel], period) if sel else 0.0
+    return out
+
+
+def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) -> list[str | None]:
+    """Truth object id of every record (None when unmatched): by id, else by base point within radius_m."""
+    out: list[str | None] = [r["object"] if r["object"] in truth else None for r in records]
+    by_cap: dict[str, list[int]] = {}
+    for i, r in enumerate(records):
+        if out[i] is None:
+            by_cap.setdefault((r["capture"], r["frame"]), []).append(i)
+    for (cap, _), idx in by_cap.items():
+        cand = [oid for oid, t in truth.items() if t["capture"] == cap and t["point"] is not None]
+        if not cand:
+            continue
+        A = np.array([records[i]["base_world"] for i in idx])
+        B = np.array([truth[o]["point"] for o in cand])
+        d = np.linalg.norm(A[:, None] - B[None], axis=2)
+        rows, cols = linear_sum_assignment(np.where(d <= radius_m, d, 1e6))
+        for r_, c_ in zip(rows, cols):
+            if d[r_, c_] <= radius_m:
+                out[idx[r_]] = cand[c_]
+    return out
+
+
+def _evaluate(records, truth, library, mined, radius_m) -> dict:
+    classes = cluster_classes(library, mined)
+    offsets = cluster_yaw_offsets(library, mined, classes)
+    known_classes = {mined[str(o)]["class"] for o in library.members["object"]}
+    ids = match_records(records, truth, radius_m)
+    rows = []
+    for r, oid in zip(records, ids):
+        if oid is None:
+            continue
+        t = truth[oid]
+        k = r["cluster"]
+        rows.append({"class": t["class"], "known": t["class"] in known_classes, "score": float(r["score"]),
+                     "flag": bool(r["unknown"]), "correct": k is not None and classes.get(k) == t["class"],
+                     "yaw_err": _yaw_error(library, k, offsets, t["yaw_deg"], r["yaw_deg"]),
+                     "period": _period(library, k)})
+    known = [x for x in rows if x["known"]]
+    unknown = [x for x in rows if not x["known"]]
+    mean = lambda xs: float(np.mean(xs)) if len(xs) else float("nan")  # noqa: E731
+    yaw_all = [x["yaw_err"] for x in known if x["correct"] and x["yaw_err"] is not None]
+    yaw_or = [x["yaw_err"] for x in known if x["correct"] and x["yaw_err"] is not None and np.isfinite(x["period"])]
+    auroc = (float(roc_auc_score([x["known"] for x in rows], [x["score"] for x in rows]))
+             if known and unknown else float("nan"))
+    per_class = {}
+    for c in sorted({x["class"] for x in rows}):
+        xs = [x for x in rows if x["class"] == c]
+        per_class[c] = {"n": len(xs), "known": xs[0]["known"], "accuracy": mean([x["correct"] for x in xs]) if xs[0]["known"] else None,
+                        "flagged": mean([x["flag"] for x in xs])}
+    return {
+        "n_records": len(records), "n_matched": len(rows), "n_known": len(known), "n_unknown": len(unknown),
+        "accuracy": mean([x["correct"] for x in known]),
+        "accepted_accuracy": mean([x["correct"] for x in known if not x["flag"]]),
+        "median_yaw_error_deg": float(np.median(yaw_all)) if yaw_all else float("nan"),
+        "median_yaw_error_deg_oriented": float(np.median(yaw_or)) if yaw_or else float("nan"),
+        "auroc": auroc,
+        "unknown_flagged": mean([x["flag"] for x in unknown]),
+        "known_flagged": mean([x["flag"] for x in known]),
+        "cluster_to_class": {int(k): v for k, v in classes.items()},
+        "per_class": per_class,
+    }
+
+
+def _period(library: Library, k: int | None) -> float:
+    return symmetry_to_period_deg(int(library.prototypes["symmetry"][k])) if k is not None else float("nan")
+
+
+def _yaw_error(library: Library, k: int | None, offsets: dict[int, float], truth_yaw: float | None,
+               pred_yaw: float) -> float | None:
+    if k is None or truth_yaw is None:
+        return None
+    return float(yaw_error_deg([truth_yaw], [pred_yaw], offsets[k], _period(library, k))[0])

@@ -1,0 +1,251 @@
+"""Single-view labelling: every frame on its own, every object in it matched against the library.
+
+Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
+
+- Each frame is treated as a capture of its own (no fusion across frames): ``ingest.find_objects`` with
+  ``frame_ids=[frame]`` fits that frame's support plane and gives its objects (mask ids when the capture
+  has masks and ``use_masks``, else geometry-only proposals), each with an object frame of its own
+  (origin = base centre on the plane, z = up, x = the reference direction of that frame's plane).
+- Each object is lifted from that one frame (``ingest.volume.lift``), turned into matching features with
+  the library's own grid and channel weights, and matched against every prototype over all yaws and the
+  library's scales (``mine.posesearch``: the FFT pose search of ``pose_distances``, with the scaled
+  prototype spectra of ``PoseBank`` built once per run rather than once per call).  The volume is partial (unseen cells have
+  observation weight 0), which the observation-weighted distance ignores.  ``weighted=False`` is the
+  plain baseline: W = 1 on every cell of the object and of the prototypes.
+- yaw_deg: object ~= prototype rolled by yaw, i.e. the prototype's canonical x axis turned by yaw about
+  up from the object frame's x axis; reported modulo the prototype's period (0 for continuous symmetry).
+
+Score (documented once, used by the open-set decision):
+    score_k = 1 - Phi((ln d_k - mu_k) / sigma_k)
+with (mu_k, sigma_k) the library's log-normal fit of the distances of *one-frame* volumes of the mined
+objects to their own prototype (``single_mu``, ``single_sigma``, learnt at mining time without labels):
+the fraction of single views of prototype k's own members expected to fit worse than this one.  It is in
+[0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
+are measured against its own spread.  The object's cluster is the prototype with the highest score (an
+object with no observed cell in common with any prototype gets cluster None and score 0).  It is
+"unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
+prototype's own single views, i.e. the per-prototype distance threshold
+``exp(mu_k + sigma_k * Phi^-1(1 - unknown_score))``.
+
+Record (one dict per object and frame; JSON-ready):
+    capture, frame, object, bbox [u0, v0, u1, v1) pixels, center_world [x, y, z] m, base_world [x, y, z]
+    (object frame origin), up [x, y, z], size_m [footprint radius, height], cluster (int | None),
+    name (str | None), yaw_deg, symmetry ("continuous" | "none" | "n-fold:N"), scale (metric size
+    sqrt(r h) over the prototype's median), fit_scale (best scale of the pose search), distance, score,
+    unknown, alternatives [{cluster, score}] (the next best prototypes, at most ``N_ALTERNATIVES``).
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from ..capture import read_capture
+from ..errors import InputError
+from ..ingest.pipeline import capture_rng, pixel_bbox
+from ..ingest.proposals import SceneObjects, find_objects
+from ..ingest.volume import Grid, lift, matching_features
+from ..mine.library import Library
+from ..mine.pipeline import reduce_yaw
+from ..mine.posesearch import PoseBank
+
+N_ALTERNATIVES = 3
+MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
+
+
+def symmetry_name(code: int) -> str:
+    """Library symmetry code (0 continuous, 1 none, n) -> "continuous" | "none" | "n-fold:n"."""
+    code = int(code)
+    return "continuous" if code == 0 else "none" if code == 1 else f"n-fold:{code}"
+
+
+@dataclass
+class Matcher:
+    """A library prepared for matching: prototypes, calibration and the lifting settings it was built with.
+
+    P (K, C, R, A, H) features, V (K, R, A, H) weights (ones when ``weighted`` is False).
+    """
+
+    library: Library
+    grid: Grid
+    free_weight: float
+    colour_weight: float
+    scales: tuple[float, ...]
+    unknown_score: float
+    weighted: bool = True
+    chunk_size: int = 512
+    P: np.ndarray = field(init=False)
+    V: np.ndarray = field(init=False)
+    bank: PoseBank = field(init=False)
+
+    def __post_init__(self) -> None:
+        self.P = np.asarray(self.library.prototypes["features"], np.float32)
+        V = np.asarray(self.library.prototypes["weights"], np.float32)
+        self.V = V if self.weighted else np.ones_like(V)
+        # the scaled prototypes' spectra cost more than matching a whole frame: build them once
+        self.bank = PoseBank(self.P, self.V, self.scales)
+
+    @property
+    def K(self) -> int:
+        return int(self.P.shape[0])
+
+    def features(self, volumes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Volumes (n, 6, R, A, H) -> X (n, C, R, A, H), W (n, R, A, H) (W = 1 when not weighted)."""
+        X, W = matching_features(volumes, free_weight=self.free_weight, colour_weight=self.colour_weight)
+        return X, (W if self.weighted else np.ones_like(W))
+
+    def match(self, volumes: np.ndarray) -> dict[str, np.ndarray]:
+        """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale (n, K) and best (n,) (-1 = none)."""
+        n = volumes.shape[0]
+        if n == 0:
+            z = np.zeros((0, self.K))
+            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "best": np.zeros(0, int)}
+        X, W = self.features(volumes)
+        parts = [self.bank.match(X[i:i + self.chunk_size], W[i:i + self.chunk_size])
+                 for i in range(0, n, self.chunk_size)]
+        D = np.concatenate([p.D for p in parts]).astype(np.float64)
+        S = self.library.score(D, np.arange(self.K)[None, :], single_view=True)
+        S = np.where(np.isfinite(D), S, 0.0)
+        best = np.where(np.isfinite(D).any(axis=1), np.argmax(S, axis=1), -1)
+        period = np.asarray(self.library.prototypes["period_deg"], np.float64)
+        yaw = reduce_yaw(np.concatenate([p.yaw_deg for p in parts]).astype(np.float64), period[None, :])
+        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "best": best}
+
+
+def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
+    """Matcher for ``library``: the grid and channel weights come from the library's own config (the
+    volumes must be lifted exactly as the mined ones were); ``label.unknown_score`` from ``cfg``."""
+    lib_cfg = library.config
+    if "volume" not in lib_cfg or "mine" not in lib_cfg:
+        raise InputError(library.path, "config", "library does not record the [volume] and [mine] config it was mined with")
+    grid = Grid.from_config(lib_cfg)
+    want = tuple(int(x) for x in library.attrs.get("grid", grid.shape))
+    if grid.shape != want or library.prototypes["features"].shape[2:] != want:
+        raise InputError(library.path, "grid", f"expected prototypes on the grid {want} of the recorded config, "
+                         f"got {tuple(library.prototypes['features'].shape[2:])}")
+    if library.n_clusters < 1:
+        raise InputError(library.path, "prototypes", "library has no prototypes")
+    m = lib_cfg["mine"]
+    return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
+                   float(cfg["label"]["unknown_score"]), weighted)
+
+
+@dataclass
+class FrameObjects:
+    """The objects found in one frame, lifted: volumes (n, 6, R, A, H) and their per-object facts."""
+    frame: str
+    volumes: np.ndarray
+    facts: list[dict]
+
+
+def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool) -> FrameObjects:
+    """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields."""
+    vols, facts = [], []
+    for p in scene.proposals:
+        pix = p.pixels.get(frame_id)
+        if pix is None or len(pix) < MIN_PIXELS:
+            continue
+        vols.append(lift(scene.views(p, [frame_id]), p.frame, grid))
+        # geometry-only proposals are numbered per frame, so their ids name the frame too
+        oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
+        facts.append({"object": oid, "bbox": list(pixel_bbox(pix, width)),
+                      "center_world": [float(x) for x in p.center_world],
+                      "base_world": [float(x) for x in p.frame.origin], "up": [float(x) for x in p.frame.up],
+                      "size_m": [float(p.frame.radius), float(p.frame.height)]})
+    R, A, H = grid.shape
+    stack = np.stack(vols) if vols else np.zeros((0, 6, R, A, H), np.float32)
+    return FrameObjects(frame_id, stack, facts)
+
+
+def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.ndarray]) -> list[dict]:
+    lib = matcher.library
+    names = lib.prototypes["name"]
+    sym = lib.prototypes["symmetry"]
+    size_med = np.asarray(lib.prototypes["size_median"], np.float64)
+    out = []
+    for i, facts in enumerate(fo.facts):
+        k = int(m["best"][i])
+        order = np.argsort(-m["score"][i], kind="stable")
+        alts = [{"cluster": int(j), "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
+        rec = {"capture": capture, "frame": fo.frame, **facts}
+        if k < 0:
+            rec.update(cluster=None, name=None, yaw_deg=0.0, symmetry=None, scale=None, fit_scale=None,
+                       distance=None, score=0.0, unknown=True, alternatives=alts)
+        else:
+            r, h = facts["size_m"]
+            score = float(m["score"][i, k])
+            rec.update(cluster=k, name=str(names[k]) or None, yaw_deg=float(m["yaw_deg"][i, k]),
+                       symmetry=symmetry_name(sym[k]),
+                       scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
+                       fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
+                       score=score, unknown=bool(score < matcher.unknown_score), alternatives=alts)
+        out.append(rec)
+    return out
+
+
+def label_capture(library: Library, capture_path: str | Path, cfg: dict, *, seed: int = 0, use_masks: bool = True,
+                  weighted: bool = True, progress: Callable[[str], None] | None = None) -> list[dict]:
+    """Label every object in every frame of one capture, each frame on its own.  Returns the records
+    (see the module docstring), in frame order then proposal order."""
+    matcher = make_matcher(library, cfg, weighted=weighted)
+    return _label_capture(matcher, Path(capture_path), cfg, seed, use_masks, progress, {})
+
+
+def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict, *, seed: int = 0,
+                   use_masks: bool = True, weighted: bool = True, progress: Callable[[str], None] | None = None,
+                   stats: dict | None = None) -> list[dict]:
+    """Label several captures (records concatenated in the given order).
+
+    stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
+    and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
+    """
+    names = [Path(c).name for c in capture_paths]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    matcher = make_matcher(library, cfg, weighted=weighted)
+    st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
+    out = []
+    for ci, path in enumerate(capture_paths):
+        if progress:
+            progress(f"capture {ci + 1}/{len(capture_paths)} {Path(path).name}")
+        out += _label_capture(matcher, Path(path), cfg, seed, use_masks, progress, st)
+    st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    if stats is not None:
+        stats.update(st)
+    return out
+
+
+def _label_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks: bool,
+                   progress: Callable[[str], None] | None, st: dict) -> list[dict]:
+    cap = read_capture(path, check_images=False)
+    rng = capture_rng(seed, cap.name)   # one generator per capture, consumed frame after frame
+    masks = bool(use_masks and cap.has_masks)
+    width = cap.intrinsics.width
+    lifted: list[FrameObjects] = []
+    for fr in cap.frames:
+        scene = find_objects(cap, cfg, rng, frame_ids=[fr.id], use_masks=masks)
+        t0 = time.perf_counter()
+        fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks)
+        st["lift_s"] = st.get("lift_s", 0.0) + time.perf_counter() - t0
+        lifted.append(fo)
+        if progress:
+            progress(f"{cap.name} frame {fr.id}: {len(fo.facts)} objects")
+    # one matching pass for the whole capture: the prototype spectra are computed once
+    t0 = time.perf_counter()
+    allvol = np.concatenate([fo.volumes for fo in lifted]) if lifted else np.zeros((0,))
+    m = matcher.match(allvol)
+    st["match_s"] = st.get("match_s", 0.0) + time.perf_counter() - t0
+    st["objects"] = st.get("objects", 0) + int(allvol.shape[0])
+    st["frames"] = st.get("frames", 0) + len(cap.frames)
+    out, i0 = [], 0
+    for fo in lifted:
+        n = len(fo.facts)
+        part = {k: v[i0:i0 + n] for k, v in m.items()}
+        out += _records(matcher, cap.name, fo, part)
+        i0 += n
+    return out
