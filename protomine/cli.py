@@ -14,6 +14,7 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_
 
 COMMANDS: list[tuple[str, str]] = [
     # (module under protomine, function name); each stage adds its own line
+    ("demo", "demo"),
     ("provenance", "provenance_cmd"),
     ("bench", "bench"),
     ("ingest.command", "ingest"),

@@ -27,6 +27,7 @@ from .volume import ObjectFrame, View
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
 DBSCAN_MIN_SAMPLES = 5
+FOOTPRINT_OVERLAP = 0.5     # groups with footprint centres closer than this x (r_i + r_j) are one object
 
 
 @dataclass
@@ -204,6 +205,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     np.add.at(vox, inv, pts)
     vox /= counts[:, None]
     lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
+    lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):
         sel = lab == l
@@ -233,6 +235,36 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
                 p.pixels[fd.id] = pix[sel]
                 p.n_points += int(sel.sum())
     return [p for p in props if p.n_points > 0]
+
+
+def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit) -> np.ndarray:
+    """Merge DBSCAN groups whose footprints overlap deeply (one object whose thin parts lost contact).
+
+    Objects rest side by side on the support surface, so two groups whose footprint circles' centres
+    are closer than FOOTPRINT_OVERLAP x (r_i + r_j) are parts of one object (e.g. a post and its legs).
+    Returns relabelled groups 0..n-1 (noise stays -1).
+    """
+    n = lab.max() + 1
+    if n < 2:
+        return lab
+    B = plane_basis(plane.normal)
+    circles = [min_enclosing_circle(pts[lab == l] @ B[:2].T) for l in range(n)]
+    parent = list(range(n))
+
+    def root(i):
+        while parent[i] != i:
+            parent[i] = parent[parent[i]]
+            i = parent[i]
+        return i
+
+    for i in range(n):
+        for j in range(i + 1, n):
+            (ci, ri), (cj, rj) = circles[i], circles[j]
+            if np.linalg.norm(ci - cj) < FOOTPRINT_OVERLAP * (ri + rj):
+                parent[root(j)] = root(i)
+    roots = np.array([root(i) for i in range(n)])
+    _, new = np.unique(roots, return_inverse=True)
+    return np.where(lab >= 0, new[np.maximum(lab, 0)], -1)
 
 
 def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids: list[str] | None = None,
