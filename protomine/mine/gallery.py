@@ -80,22 +80,26 @@ def render_gallery(path: str | Path, volumes: np.ndarray, *, counts: np.ndarray,
     K = len(volumes)
     cols = min(4, max(1, K))
     rows = int(np.ceil(K / cols))
-    fig, axes = plt.subplots(rows, cols * 3, figsize=(cols * 3 * 1.25, rows * 1.6 + 0.4), squeeze=False)
-    for ax in axes.ravel():
-        ax.axis("off")
+    view_in, gap_in, text_in, title_in = 1.2, 0.25, 0.45, 0.45
+    block_w = 3 * view_in + gap_in
+    W, H = cols * block_w + gap_in, rows * (view_in + text_in) + title_in
+    fig = plt.figure(figsize=(W, H))
     for k in range(K):
         r, c = divmod(k, cols)
-        views = prototype_views(volumes[k])
-        for v, img in enumerate(views):
-            ax = axes[r, c * 3 + v]
+        x0 = gap_in + c * block_w
+        y0 = H - title_in - (r + 1) * (view_in + text_in) + text_in
+        for v, img in enumerate(prototype_views(volumes[k])):
+            ax = fig.add_axes([(x0 + v * view_in) / W, y0 / H, (view_in * 0.95) / W, (view_in * 0.95) / H])
             ax.imshow(img, interpolation="nearest")
+            ax.set_xticks([]); ax.set_yticks([])
+            for sp in ax.spines.values():
+                sp.set_color("#cccccc")
             ax.set_title(["top", "front", "side"][v], fontsize=6, pad=1)
         label = names[k] if names and names[k] else f"cluster {k}"
-        axes[r, c * 3].text(0, -0.35, f"{label}: {int(counts[k])} members, {symmetry_text(int(symmetry[k]))}",
-                            transform=axes[r, c * 3].transAxes, fontsize=7, va="top")
-    fig.suptitle(title, fontsize=9)
-    fig.tight_layout()
+        fig.text(x0 / W, (y0 - 0.08) / H, f"{label}: {int(counts[k])} members\n{symmetry_text(int(symmetry[k]))}",
+                 fontsize=7, va="top")
+    fig.suptitle(title, fontsize=9, y=1 - 0.12 / H)
     with atomic_path(path) as tmp:
-        fig.savefig(tmp, dpi=110, format="png")
+        fig.savefig(tmp, dpi=110, format="png", facecolor="white")
     plt.close(fig)
     return Path(path)
