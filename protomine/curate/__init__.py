@@ -1,0 +1,1 @@
+"""Everyday verbs after mining: name clusters (tag), one-shot classes (find), dataset export."""

@@ -1,0 +1,77 @@
+"""Naming clusters: a name per prototype, stored in the library with the example it came from.
+
+Conventions: a cluster is a prototype index k in [0, K).  ``prototypes/name`` holds the name ("" when
+unnamed) and ``prototypes/name_example`` the object id the name was given from ("" when the cluster was
+named directly by its index).  Names are free text (one line, at most ``MAX_NAME`` characters); two
+clusters may share a name (one item class split over two prototypes), and exports then merge them into
+one category.  Every change rewrites the library atomically (temporary file + rename, writer lock) and
+re-renders ``gallery.png`` beside the library when that folder has one.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import InputError
+from ..mine.library import Library, read_library, write_library
+
+MAX_NAME = 80
+
+
+def check_name(name: str | None, *, field: str = "--name") -> str:
+    """The cleaned name (surrounding spaces removed); InputError for an empty or multi-line name."""
+    if name is None or not str(name).strip():
+        raise InputError(None, field, f"expected a non-empty name, got {name!r} (use --clear to remove a name)")
+    name = str(name).strip()
+    if any(c in name for c in "\r\n\t") or len(name) > MAX_NAME:
+        raise InputError(None, field, f"expected one line of at most {MAX_NAME} characters without tabs, got {name!r}")
+    return name
+
+
+def cluster_of(lib: Library, object_id: str) -> int:
+    """The cluster holding ``object_id`` (InputError naming the library when it is not a member)."""
+    return int(lib.members["cluster"][lib.member_index(object_id)])
+
+
+def name_cluster(library_path: str | Path, *, name: str | None, object_id: str | None = None,
+                 cluster: int | None = None, clear: bool = False) -> Library:
+    """Name (or with ``clear`` un-name) the cluster holding ``object_id``, or cluster ``cluster``.
+
+    Exactly one of ``object_id`` / ``cluster``.  Returns the rewritten library.
+    """
+    library_path = Path(library_path)
+    if (object_id is None) == (cluster is None):
+        raise InputError(library_path, "--object/--cluster", "give exactly one of an object id or a cluster index")
+    if clear and name is not None:
+        raise InputError(None, "--name", "give either a name or --clear, not both")
+    name = "" if clear else check_name(name)
+    lib = read_library(library_path)
+    if object_id is not None:
+        k = cluster_of(lib, str(object_id))
+    else:
+        k = int(cluster)
+        if not 0 <= k < lib.n_clusters:
+            raise InputError(library_path, "prototypes", f"no cluster {k}; the library has clusters 0..{lib.n_clusters - 1}")
+    return _set_name(lib, library_path, k, name, "" if clear or object_id is None else str(object_id))
+
+
+def _set_name(lib: Library, path: Path, k: int, name: str, example: str) -> Library:
+    names = np.array([str(x) for x in lib.prototypes["name"]], dtype=object)
+    examples = np.array([str(x) for x in lib.prototypes["name_example"]], dtype=object)
+    names[k], examples[k] = name, example
+    lib.prototypes["name"], lib.prototypes["name_example"] = names, examples
+    write_library(path, lib)
+    refresh_gallery(lib, path)
+    return lib
+
+
+def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
+    """Re-render gallery.png beside the library if that folder already has one; returns its path."""
+    from ..mine.gallery import render_gallery
+    gallery = Path(library_path).parent / "gallery.png"
+    if not gallery.is_file():
+        return None
+    p = lib.prototypes
+    return render_gallery(gallery, np.asarray(p["volumes"]), counts=np.asarray(p["count"]),
+                          symmetry=np.asarray(p["symmetry"]), names=[str(x) for x in p["name"]])

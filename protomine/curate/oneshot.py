@@ -1,0 +1,331 @@
+"""A new item class from one example: one-shot prototype, store-wide pose search, adding it to a library.
+
+Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
+
+- The one-shot prototype is the example object's own matching features X (C, R, A, H) and observation
+  weights W (R, A, H) from the store: fused over its frames when it was seen in several (multi-view), a
+  partial volume (W = 0 where unseen) when it was seen in one.  A new scan is brought in with
+  ``protomine ingest NEW_CAPTURE --store objects.h5`` first; its object id is then the example.
+  Features use the library's channel weights (its recorded ``mine.free_weight`` / ``mine.colour_weight``)
+  and the search uses the library's scales, so distances are those of the library.
+- Every store object is matched against it over all yaws and scales (``pose_distances``): distance d,
+  yaw_deg (object ~= example rolled by yaw, i.e. the object's yaw relative to the example, modulo the
+  one-shot symmetry period; 0 for continuous symmetry) and ``scale`` = metric size sqrt(r h) of the
+  object over that of the example (``fit_scale`` is the pose search's residual scale).
+
+One-shot score (label-free calibration; documented once, used by ``find`` and ``--add``)
+------------------------------------------------------------------------------------------
+A single example is a noisier reference than a mined prototype (a mean of many members), so its member
+distances are larger.  How much larger is measured on the library itself, with no labels: for every
+mined cluster with at least ``MIN_CAL_MEMBERS`` members in the store, its *typical* member (the one at
+the median distance to its prototype) serves as a one-shot exemplar and the other members (at most
+``MAX_CAL_MEMBERS``, evenly spread) are matched against it.  A robust log-normal fit of those distances
+per cluster (median, 1.4826 MAD of ln d) is pooled over clusters by the median:
+
+    mu_1 = median_k mu_k,   sigma_1 = median_k sigma_k,   score = 1 - Phi((ln d - mu_1) / sigma_1)
+
+i.e. the fraction of a class's instances expected to fit a single exemplar of that class worse than
+this object does, the same meaning as ``library.match_score`` of mined prototypes.  It is therefore
+comparable with member scores (``--add`` moves a member when its one-shot score beats its current
+score) and with ``label.unknown_score``.  When no cluster has enough members the fit falls back to the
+bulk of the store: (m, s) = median and 1.4826 MAD of ln d of every other object, mu_1 = m - 2 s,
+sigma_1 = s (objects two robust standard deviations closer than the bulk score 0.5).
+Single-view calibration of an added prototype: single_mu = mu_1 + median_k(single_mu_k - fused_mu_k),
+single_sigma = max(sigma_1, median_k single_sigma_k).
+Symmetry of the one-shot prototype: ``symmetry.detect_symmetry`` with the instance noise level
+exp(mu_1) / 2 per cell (a distance is a mean squared difference of two noisy instances).
+"""
+from __future__ import annotations
+
+import csv
+import io
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..atomic import write_text
+from ..errors import InputError
+from ..ingest.store import ObjectStore
+from ..ingest.volume import matching_features
+from ..mine.library import Library, lognormal_fit, match_score, read_library, write_library
+from ..mine.pipeline import period_of, reduce_yaw, write_assignments
+from ..mine.posesearch import pose_distances
+from ..mine.symmetry import detect_symmetry
+from .names import check_name, refresh_gallery
+
+MIN_CAL_MEMBERS = 3
+MAX_CAL_MEMBERS = 64
+MATCH_COLUMNS = ("object", "distance", "score", "yaw_deg", "scale", "cluster")
+
+
+@dataclass
+class OneShotPrototype:
+    """features (C, R, A, H), weights (R, A, H), volume (6, R, A, H) store channels; calibration (mu, sigma)."""
+    example: str
+    features: np.ndarray
+    weights: np.ndarray
+    volume: np.ndarray
+    symmetry: int
+    mu: float
+    sigma: float
+    single_mu: float
+    single_sigma: float
+    calibration: str                     # "exemplars of N clusters" or "store bulk"
+
+
+@dataclass
+class Matches:
+    """Every store object against the one-shot prototype, in store order; arrays (N,)."""
+    prototype: OneShotPrototype
+    object: np.ndarray
+    distance: np.ndarray
+    score: np.ndarray
+    yaw_deg: np.ndarray
+    scale: np.ndarray
+    fit_scale: np.ndarray
+    cluster: np.ndarray                 # the object's library cluster, -1 when it is not a member
+    order: np.ndarray = field(init=False)
+
+    def __post_init__(self) -> None:
+        # ascending distance; unmatched (inf) last; ties broken by object id for determinism
+        self.order = np.lexsort((self.object.astype(str), self.distance))
+
+    def rows(self, top: int | None = None) -> list[dict]:
+        idx = self.order if top is None else self.order[:top]
+        return [{"object": str(self.object[i]), "distance": float(self.distance[i]), "score": float(self.score[i]),
+                 "yaw_deg": float(self.yaw_deg[i]), "scale": float(self.scale[i]), "cluster": int(self.cluster[i])}
+                for i in idx]
+
+
+def _feature_weights(library: Library, cfg: dict) -> tuple[float, float]:
+    m = library.config.get("mine") or cfg["mine"]
+    return float(m["free_weight"]), float(m["colour_weight"])
+
+
+def _check_pair(library: Library, store: ObjectStore) -> None:
+    grid = tuple(int(x) for x in np.asarray(library.attrs.get("grid", store.grid_shape)))
+    if grid != tuple(store.grid_shape):
+        raise InputError(store.path, "grid", f"store grid {tuple(store.grid_shape)} differs from the library's {grid} "
+                         f"({library.path}); use the store the library was mined from")
+
+
+def _features(store: ObjectStore, idx: np.ndarray, weights: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    return matching_features(store.read_volume_at(np.asarray(idx, dtype=np.int64)), free_weight=weights[0], colour_weight=weights[1])
+
+
+def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float], scales: tuple[float, ...],
+               example_idx: int, P: np.ndarray, V: np.ndarray, d_all: np.ndarray) -> tuple[float, float, str]:
+    """(mu_1, sigma_1, how) of the one-shot score (module docstring)."""
+    m = library.members
+    store_index = {oid: i for i, oid in enumerate(store.ids)}
+    in_store = np.array([str(o) in store_index for o in m["object"]])
+    exemplars, groups = [], []
+    for k in range(library.n_clusters):
+        rows = np.flatnonzero((m["cluster"] == k) & in_store & np.isfinite(m["distance"]))
+        if len(rows) < MIN_CAL_MEMBERS:
+            continue
+        by_d = rows[np.argsort(m["distance"][rows], kind="stable")]
+        ex = by_d[len(by_d) // 2]
+        others = by_d[by_d != ex]
+        others = others[np.unique(np.linspace(0, len(others) - 1, min(len(others), MAX_CAL_MEMBERS)).round().astype(int))]
+        exemplars.append(store_index[str(m["object"][ex])])
+        groups.append([store_index[str(m["object"][r])] for r in others])
+    if exemplars:
+        Pe, Ve = _features(store, np.array(exemplars), weights)
+        flat = np.array(sorted({i for g in groups for i in g}))
+        Xo, Wo = _features(store, flat, weights)
+        D = pose_distances(Xo, Wo, Pe, Ve, scales=scales).D
+        pos = {int(i): j for j, i in enumerate(flat)}
+        fits = [lognormal_fit(D[[pos[i] for i in g], j][np.isfinite(D[[pos[i] for i in g], j])]) for j, g in enumerate(groups)]
+        fits = [f for f in fits if np.isfinite(f[0])]
+        if fits:
+            return float(np.median([f[0] for f in fits])), float(np.median([f[1] for f in fits])), f"exemplars of {len(fits)} clusters"
+    others = np.delete(d_all, example_idx)
+    ld = np.log(np.maximum(others[np.isfinite(others)], 1e-12))
+    if len(ld) < 2:
+        raise InputError(store.path, "objects", "one-shot calibration needs a library cluster with >= 3 members "
+                         f"or >= 2 other objects in the store, got {len(ld)}")
+    med = float(np.median(ld))
+    s = max(1.4826 * float(np.median(np.abs(ld - med))), 0.05)
+    return med - 2 * s, s, "store bulk"
+
+
+def find_similar(library: Library, store: ObjectStore, example_id: str, cfg: dict, *, top: int | None = None) -> Matches:
+    """Match every store object against a one-shot prototype built from ``example_id``.
+
+    Returns :class:`Matches` (all objects; ``rows(top)`` gives the best ``top``).  See the module docstring.
+    """
+    _check_pair(library, store)
+    ex = store.index_of(str(example_id))
+    if top is not None and top < 1:
+        raise InputError(None, "--top", f"expected >= 1, got {top}")
+    return _find(library, store, ex, cfg)
+
+
+def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
+    weights = _feature_weights(library, cfg)
+    scales = tuple(library.scales)
+    X1, W1 = _features(store, np.array([ex]), weights)
+    if not np.any(W1 > 0):
+        raise InputError(store.path, f"objects[{store.ids[ex]}]", "the example has no observed cell; choose another example")
+    N, chunk = len(store), int(cfg["mine"]["chunk_size"])
+    D, yaw, fit = (np.empty(N, np.float64) for _ in range(3))
+    src = store.source({"mine": {"free_weight": weights[0], "colour_weight": weights[1]}})
+    for i0 in range(0, N, chunk):
+        X, W = src.read(i0, min(N, i0 + chunk))
+        pm = pose_distances(X, W, X1, W1, scales=scales)
+        D[i0:i0 + len(X)], yaw[i0:i0 + len(X)], fit[i0:i0 + len(X)] = pm.D[:, 0], pm.yaw_deg[:, 0], pm.scale[:, 0]
+    mu, sigma, how = _calibrate(library, store, weights, scales, ex, X1, W1, D)
+    p = library.prototypes
+    off = float(np.median(np.asarray(p["single_mu"]) - np.asarray(p["fused_mu"]))) if library.n_clusters else 0.0
+    s_sigma = max(sigma, float(np.median(p["single_sigma"]))) if library.n_clusters else sigma
+    symmetry = int(detect_symmetry(X1, W1, np.exp(mu) / 2.0)[0])
+    proto = OneShotPrototype(str(store.ids[ex]), X1[0], W1[0], store.read_volume_at(np.array([ex]))[0], symmetry,
+                             mu, sigma, mu + off, s_sigma, how)
+    gsize = np.sqrt(store.objects["radius_m"] * store.objects["height_m"])
+    cl = {str(o): int(k) for o, k in zip(library.members["object"], library.members["cluster"])}
+    score = np.where(np.isfinite(D), match_score(D, mu, sigma), 0.0)
+    return Matches(proto, np.asarray(store.ids, dtype=object), D, score,
+                   reduce_yaw(yaw, np.full(N, float(period_of(np.array([symmetry]))[0]))),
+                   gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64))
+
+
+def write_matches(path: str | Path, matches: Matches, top: int | None = None) -> Path:
+    """matches.csv (atomic): object, distance, score, yaw_deg, scale, cluster; best first."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(MATCH_COLUMNS)
+    for r in matches.rows(top):
+        w.writerow([r["object"], f"{r['distance']:.6g}", f"{r['score']:.4f}", f"{r['yaw_deg']:.2f}",
+                    f"{r['scale']:.4f}", r["cluster"]])
+    write_text(path, buf.getvalue())
+    return Path(path)
+
+
+def add_oneshot(library_path: str | Path, store: ObjectStore, example_id: str, cfg: dict, *, name: str,
+                matches: Matches | None = None) -> tuple[Library, dict]:
+    """Add the one-shot prototype of ``example_id`` to the library as a new named cluster.
+
+    Members whose one-shot score beats their current score move to it; store objects that are not yet
+    members join it when its score beats their best mined score (others stay out).  Nothing else changes:
+    other prototypes, their statistics and the other members are kept as they are (counts are updated).
+    Rewrites the library atomically, and assignments.csv / gallery.png beside it when present.
+    Returns (library, summary).
+    """
+    name = check_name(name)
+    library_path = Path(library_path)
+    lib = read_library(library_path)
+    _check_pair(lib, store)
+    ex = store.index_of(str(example_id))
+    if matches is None or matches.prototype.example != str(example_id):
+        matches = _find(lib, store, ex, cfg)
+    return _add(lib, library_path, store, matches, name, cfg)
+
+
+def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, cfg: dict) -> tuple[Library, dict]:
+    K = lib.n_clusters
+    m = {k: np.asarray(v).copy() for k, v in lib.members.items()}
+    sidx = {oid: i for i, oid in enumerate(store.ids)}
+    member_rows = np.array([sidx.get(str(o), -1) for o in m["object"]])
+    present = member_rows >= 0
+    s1 = np.full(len(member_rows), -1.0)
+    s1[present] = mt.score[member_rows[present]]
+    move = present & (s1 > m["score"])
+    moved_from = {int(k): int(c) for k, c in zip(*np.unique(m["cluster"][move], return_counts=True))}
+    # store objects the library does not know yet: join the new cluster when it beats every mined one
+    known = set(str(o) for o in m["object"])
+    new = np.array([i for i, o in enumerate(store.ids) if str(o) not in known], dtype=np.int64)
+    join = np.zeros(0, np.int64)
+    best_k = np.zeros(0, np.int64)
+    best_d = np.zeros(0)
+    if len(new):
+        weights = _feature_weights(lib, cfg)
+        X, W = _features(store, new, weights)
+        pm = pose_distances(X, W, lib.prototypes["features"], lib.prototypes["weights"], scales=tuple(lib.scales))
+        sc = np.where(np.isfinite(pm.D), lib.score(pm.D, np.arange(K)[None, :], single_view=False), 0.0) if K else np.zeros((len(new), 0))
+        best = sc.max(axis=1) if K else np.full(len(new), -1.0)
+        ok = mt.score[new] > best
+        join = new[ok]
+        best_k = np.argmax(sc, axis=1)[ok] if K else np.full(ok.sum(), -1)
+        best_d = pm.D[np.flatnonzero(ok), best_k] if K else np.full(ok.sum(), np.inf)
+    rows_new = np.concatenate([member_rows[move], join])
+    gsize = np.sqrt(store.objects["radius_m"] * store.objects["height_m"])
+    med_g = float(np.median(gsize[rows_new]))
+    period = float(period_of(np.array([mt.prototype.symmetry]))[0])
+    upd = {"cluster": K, "yaw_deg": mt.yaw_deg, "scale": gsize / med_g, "fit_scale": mt.fit_scale,
+           "distance": mt.distance, "score": mt.score}
+    m["second_cluster"][move] = m["cluster"][move]
+    m["second_distance"][move] = m["distance"][move]
+    for f, v in upd.items():
+        m[f][move] = v if np.isscalar(v) else np.asarray(v)[member_rows[move]]
+    if len(join):
+        extra = {"object": np.asarray(store.ids, dtype=object)[join], "cluster": np.full(len(join), K),
+                 "second_cluster": best_k, "second_distance": best_d}
+        extra.update({f: np.asarray(v)[join] for f, v in upd.items() if f != "cluster"})
+        m = {f: np.concatenate([m[f], np.asarray(extra[f]).astype(m[f].dtype)]) for f in m}
+    m["yaw_deg"] = np.where(m["cluster"] == K, reduce_yaw(m["yaw_deg"], np.full(len(m["yaw_deg"]), period)), m["yaw_deg"])
+    p = {k: np.asarray(v) for k, v in lib.prototypes.items()}
+    op = mt.prototype
+    size = np.stack([store.objects["radius_m"][rows_new], store.objects["height_m"][rows_new]], 1)
+    new_proto = {
+        "features": op.features[None].astype(p["features"].dtype), "weights": op.weights[None].astype(p["weights"].dtype),
+        "volumes": op.volume[None].astype(p["volumes"].dtype), "symmetry": np.array([op.symmetry]),
+        "period_deg": np.array([period]), "count": np.array([0]),
+        "size_median": np.percentile(size, 50, axis=0)[None], "size_p10": np.percentile(size, 10, axis=0)[None],
+        "size_p90": np.percentile(size, 90, axis=0)[None], "fused_mu": np.array([op.mu]), "fused_sigma": np.array([op.sigma]),
+        "single_mu": np.array([op.single_mu]), "single_sigma": np.array([op.single_sigma]),
+        "origin": np.array(["one-shot"], dtype=object), "name": np.array([name], dtype=object),
+        "name_example": np.array([op.example], dtype=object),
+    }
+    protos = {k: np.concatenate([p[k].astype(object) if p[k].dtype == object else p[k], new_proto[k].astype(p[k].dtype)])
+              for k in p if k in new_proto}
+    protos["count"] = np.bincount(m["cluster"].astype(np.int64), minlength=K + 1)
+    out = Library(protos, m, dict(lib.attrs), path)
+    write_library(path, out)
+    assignments = path.parent / "assignments.csv"
+    if assignments.is_file():
+        write_assignments(assignments, out)
+    refresh_gallery(out, path)
+    return out, {"cluster": K, "name": name, "members": int(protos["count"][K]), "moved": int(move.sum()),
+                 "moved_from": moved_from, "joined_new_objects": int(len(join)), "symmetry": op.symmetry,
+                 "calibration": op.calibration, "mu": op.mu, "sigma": op.sigma}
+
+
+def evaluate_oneshot(store: ObjectStore, truth_csv: str | Path, library: Library, cfg: dict,
+                     rng: np.random.Generator) -> list[dict]:
+    """Per truth class: one random example, its one-shot ranking of every *other* stored object.
+
+    Returns rows {label, example, instances, k, p_at_10, ap}: ``p_at_10`` is the precision of the best
+    k = min(10, instances - 1) other objects (a class with fewer than 11 instances cannot fill 10 places,
+    so the cut-off shrinks to what a perfect ranking could reach); ``ap`` is
+    ``sklearn.metrics.average_precision_score`` of "same class" against the negated distance.  Classes with a
+    single instance have nothing to find and are skipped.
+    """
+    from sklearn.metrics import average_precision_score
+
+    from ..audit.truth import ObjectTable, match_truth, read_truth
+    rows = read_truth(truth_csv)
+    table = ObjectTable(np.asarray(store.ids, dtype=object), np.asarray(store.objects["capture"], dtype=object),
+                        np.asarray(store.objects["center"], dtype=np.float64))
+    tm = match_truth(rows, table, radius_m=float(cfg["audit"]["match_radius_m"]), path=truth_csv)
+    labelled = np.asarray(tm.object_index, dtype=np.int64)
+    labels = np.array([r.label for r in tm.rows], dtype=object)
+    _check_pair(library, store)
+    out = []
+    for lab in sorted(set(labels)):
+        members = labelled[labels == lab]
+        if len(members) < 2:
+            continue
+        ex = int(rng.choice(members))
+        mt = _find(library, store, ex, cfg)
+        others = np.array([i for i in labelled if i != ex])
+        y = np.isin(others, members)
+        d = mt.distance[others]
+        d = np.where(np.isfinite(d), d, np.finfo(np.float64).max)
+        k = min(10, int(y.sum()))
+        order = others[np.lexsort((mt.object[others].astype(str), d))]
+        p10 = float(np.isin(order[:k], members).mean())
+        out.append({"label": str(lab), "example": str(store.ids[ex]), "instances": int(len(members)), "k": k,
+                    "p_at_10": p10, "ap": float(average_precision_score(y, -d))})
+    return out
