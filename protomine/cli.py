@@ -21,6 +21,9 @@ COMMANDS: list[tuple[str, str]] = [
     ("mine.command", "mine"),
     ("scenes.command", "scenes"),
     ("audit.command", "audit"),
+    ("curate.command", "tag"),
+    ("curate.command", "find"),
+    ("curate.command", "export"),
 ]
 
 
