@@ -21,6 +21,7 @@ COMMANDS: list[tuple[str, str]] = [
     ("mine.command", "mine"),
     ("scenes.command", "scenes"),
     ("audit.command", "audit"),
+    ("label.command", "label"),
     ("curate.command", "tag"),
     ("curate.command", "find"),
     ("curate.command", "export"),

@@ -7,7 +7,8 @@ Steps
 2. Mean aligned store volumes per prototype (for pictures): each member volume is rolled back by its
    yaw (Fourier shift along azimuth) and averaged with its observation counts as weights.
 3. Label-free calibration: log-normal fits of the members' distances (fused objects) and of the
-   distances of the store's one-frame volumes to their object's prototype (single views), so that
+   leave-one-out distances of the store's one-frame volumes to their object's prototype rebuilt without
+   that object (single views; see ``single_view_distances``), so that
    ``library.match_score`` is comparable across clusters and usable for single views.
 4. Metric size statistics (footprint radius, height) and member scale = sqrt(r h) / median over the
    cluster of sqrt(r h).
@@ -22,11 +23,11 @@ from typing import Callable
 
 import numpy as np
 
-from ..atomic import write_text
+from ..atomic import pause_point, write_text
 from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
-from ..provenance import provenance
+from ..provenance import provenance, write_sidecar
 from .library import Library, lognormal_fit, match_score, write_library
 from .posesearch import pose_distances, shift_volume
 
@@ -58,9 +59,9 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
         if progress:
             progress(f"choosing K in 2..{min(m['max_clusters'], len(store) - 1)} on pose-minimised distances")
         model, table = fit_auto(src, max_k=min(m["max_clusters"], len(store) - 1), merge_threshold=m["merge_threshold"],
-                                symmetry_tol=m["symmetry_tol"], **common)
+                                symmetry_factor=m["symmetry_factor"], **common)
         return model, table
-    model = PoseKMeans(n_clusters=k, symmetry_tol=m["symmetry_tol"], **common).fit(src)
+    model = PoseKMeans(n_clusters=k, symmetry_factor=m["symmetry_factor"], **common).fit(src)
     return model, None
 
 
@@ -82,16 +83,60 @@ def aligned_mean_volumes(store: ObjectStore, labels: np.ndarray, yaw_deg: np.nda
     return out.astype(np.float32)
 
 
+def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
+    """At most n of ``items`` (1-D), evenly spaced over it (all when n >= len)."""
+    if len(items) <= n:
+        return np.asarray(items)
+    return np.asarray(items)[np.unique(np.round(np.linspace(0, len(items) - 1, n)).astype(int))]
+
+
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray]:
-    """Distances of the store's one-frame volumes to their object's prototype: (Q,) distances, (Q,) clusters."""
+                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
+    """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
+    (inf for views left out of the calibration), (Q,) clusters.
+
+    A single view is matched against its prototype *without its own object*: the prototype is the
+    observation-weighted mean of its aligned members, P = sum w_al x_al / sum w_al with sum w_al = n V, so
+    P_-i = (n V P - w_i x_i) / (n V - w_i) and V_-i = (n V - w_i) / (n - 1), where (x_i, w_i) is the object's
+    fused volume aligned by its own best pose against P.  Without this, the calibration measures how well
+    a prototype fits views of objects it was built from, which for small clusters (a prototype of 5
+    members is one fifth each of them) is far tighter than for new objects, and the single-view score
+    would call most new instances unknown.  Prototypes with one member keep the plain distance.
+    """
+    from .engine import align_to_prototype
     if len(store.single_object) == 0:
         return np.zeros(0), np.zeros(0, int)
     m = cfg["mine"]
-    X, W = matching_features(store.read_single_views(), free_weight=m["free_weight"], colour_weight=m["colour_weight"])
-    pm = pose_distances(X, W, P, V, scales=scales)
-    k = labels[store.single_object]
-    return pm.D[np.arange(len(k)), k], k
+    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
+    K = P.shape[0]
+    n = np.bincount(labels, minlength=K)
+    k_of = labels[store.single_object]
+    out = np.full(len(k_of), np.inf)
+    # a log-normal fit needs tens of samples, not thousands: at most max_objects_per_cluster objects per
+    # prototype (evenly spread over its members, deterministic) keep the cost bounded on large stores
+    have = np.unique(store.single_object)
+    objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
+    objs.sort()
+    for i0 in range(0, len(objs), 256):
+        chunk = objs[i0:i0 + 256]
+        xo, wo = feats(store.read_volume_at(chunk))
+        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+        xs, ws = feats(store.read_single_views(rows_all))
+        for j, obj in enumerate(chunk):
+            k = int(labels[obj])
+            Pk, Vk = P[k:k + 1].astype(np.float64), V[k:k + 1].astype(np.float64)
+            if n[k] > 1:
+                pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P[k:k + 1], V[k:k + 1], scales=scales)
+                xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+                den = n[k] * Vk - wa
+                ok = den > 1e-6
+                # (1, C, R, A, H): the weighted sum without the object, over the weight left
+                Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+                Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+            sel = np.flatnonzero(store.single_object[rows_all] == obj)
+            pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
+            out[rows_all[sel]] = pm.D[:, 0]
+    return out, k_of
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -125,6 +170,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
     fused = [lognormal_fit(dist[labels == k]) for k in range(K)]
     sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales)
+    sv_k = sv_k[np.isfinite(sv_d)]
+    sv_d = sv_d[np.isfinite(sv_d)]
     single = [lognormal_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
     # pooled sigma where a cluster has too few samples for its own spread
     pooled_f = float(np.median([s for _, s in fused])) if K else 0.1
@@ -158,10 +205,13 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "conventions": store.attrs.get("conventions", ""),
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
     lib = Library(protos, members, attrs)
+    pause_point("inputs_read")
     write_library(library_path, lib)
     out = Path(out_dir) if out_dir else Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
     render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"])
+    for name in ("assignments.csv", "gallery.png"):
+        write_sidecar(out / name, prov)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
                  "k_selection": k_table}
 
