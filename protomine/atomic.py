@@ -3,6 +3,12 @@
 A crash (even SIGKILL) at any point leaves either the previous file or the new one, never a half
 file.  Temporary names are ``.<name>.tmp-<pid>-<random>``; :func:`clean_stale_temporaries` removes
 ones left by processes that no longer exist (called at the start of every writing command).
+
+Test hook (inert unless set): ``PROTOMINE_TEST_PAUSE=<point>`` makes :func:`pause_point` print
+``protomine-pause: <point>`` on stderr and sleep ``PROTOMINE_TEST_PAUSE_S`` seconds (default 60), so a
+test can SIGKILL the process at a known place.  Points: ``inputs_read`` (inputs read, nothing written),
+``mid_write`` (the temporary file is half written, writer lock held), ``before_rename`` (the
+temporary file is complete and fsynced, not yet renamed).
 """
 from __future__ import annotations
 
@@ -11,6 +17,7 @@ import errno
 import fcntl
 import os
 import secrets
+import sys
 import time
 from pathlib import Path
 from typing import Iterator
@@ -18,6 +25,15 @@ from typing import Iterator
 from .errors import InputError
 
 TMP_MARK = ".tmp-"
+PAUSE_ENV = "PROTOMINE_TEST_PAUSE"
+
+
+def pause_point(point: str) -> None:
+    """Test hook: pause here when PROTOMINE_TEST_PAUSE == point (see module docstring); otherwise nothing."""
+    if os.environ.get(PAUSE_ENV) != point:
+        return
+    print(f"protomine-pause: {point}", file=sys.stderr, flush=True)
+    time.sleep(float(os.environ.get(PAUSE_ENV + "_S", "60")))
 
 
 def _tmp_name(path: Path) -> Path:
@@ -35,6 +51,7 @@ def atomic_path(path: str | Path) -> Iterator[Path]:
         if tmp.exists():
             with open(tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
+            pause_point("before_rename")
             os.replace(tmp, path)
     finally:
         if tmp.exists():

@@ -1,7 +1,11 @@
 """Provenance: what produced an output file (config, seed, input fingerprints, code version).
 
-HDF5 outputs carry these as root attributes; JSON/CSV-side outputs carry a ``provenance`` object (JSON)
-or a sidecar ``<file>.provenance.json``.  ``protomine provenance FILE`` prints them.
+One rule for every output: HDF5 files (store, library) carry the record as root attributes; every other
+file (CSV, JSON, PNG, HTML, ...) gets a sidecar ``<file>.provenance.json`` written by
+:func:`write_sidecar` right after the file itself.  The sidecar also holds the sha256 fingerprint of the
+file it describes, so a sidecar left over from another run is detected, not trusted.
+``protomine provenance FILE`` prints the record (older JSON reports that embed a ``provenance`` object
+are still read).
 """
 from __future__ import annotations
 
@@ -14,6 +18,7 @@ from typing import Annotated
 import typer
 
 from . import __version__
+from .atomic import write_text
 from .config import config_json
 from .errors import InputError
 
@@ -51,27 +56,58 @@ def provenance(cfg: dict, seed: int, inputs: dict[str, str] | None = None, comma
     }
 
 
-def read_provenance(path: str | Path) -> dict:
+SIDECAR_SUFFIX = ".provenance.json"
+
+
+def sidecar_path(path: str | Path) -> Path:
     path = Path(path)
-    if not path.exists():
+    return path.with_name(path.name + SIDECAR_SUFFIX)
+
+
+def write_sidecar(path: str | Path, prov: dict) -> Path:
+    """Record ``prov`` for the (already written) non-HDF5 output ``path`` in ``<path>.provenance.json``."""
+    doc = dict(prov)
+    doc["output_fingerprint"] = file_fingerprint(path)
+    side = sidecar_path(path)
+    write_text(side, json.dumps(doc, indent=1, sort_keys=True))
+    return side
+
+
+def _is_hdf5(path: Path) -> bool:
+    with open(path, "rb") as fh:
+        return fh.read(8) == b"\x89HDF\r\n\x1a\n"
+
+
+def read_provenance(path: str | Path) -> dict:
+    """The provenance record of a file protomine wrote (HDF5 attributes, sidecar, or embedded in JSON)."""
+    path = Path(path)
+    if not path.is_file():
         raise InputError(path, None, "file not found")
-    if path.suffix in (".h5", ".hdf5"):
+    if _is_hdf5(path):
         import h5py
         try:
             with h5py.File(path, "r") as f:
-                return {k: (v.decode() if isinstance(v, bytes) else v.item() if hasattr(v, "item") else v) for k, v in f.attrs.items()}
+                attrs = {k: (v.decode() if isinstance(v, bytes) else v.item() if hasattr(v, "item") and getattr(v, "size", 1) == 1 else v.tolist() if hasattr(v, "tolist") else v) for k, v in f.attrs.items()}
         except OSError as e:
             raise InputError(path, None, f"not a readable HDF5 file ({e})") from None
-    side = path.with_name(path.name + ".provenance.json")
+        if attrs.get("producer") != "protomine":
+            raise InputError(path, "producer", "no provenance attributes (not written by protomine?)")
+        return attrs
+    side = sidecar_path(path)
     for cand in (side, path):
         if cand.suffix == ".json" and cand.is_file():
             try:
                 doc = json.loads(cand.read_text())
-            except json.JSONDecodeError as e:
+            except (json.JSONDecodeError, UnicodeDecodeError) as e:
                 raise InputError(cand, None, f"not valid JSON ({e})") from None
-            if isinstance(doc, dict) and ("provenance" in doc or "producer" in doc):
-                return doc.get("provenance", doc)
-    raise InputError(path, None, "no provenance recorded for this file (not written by protomine?)")
+            if not (isinstance(doc, dict) and ("provenance" in doc or "producer" in doc)):
+                continue
+            if cand == side and doc.get("output_fingerprint") not in (None, file_fingerprint(path)):
+                raise InputError(side, "output_fingerprint", f"sidecar describes a different version of {path.name} "
+                                 f"(fingerprint {doc['output_fingerprint']}, file is {file_fingerprint(path)}); "
+                                 "the file was changed after protomine wrote it")
+            return doc.get("provenance", doc)
+    raise InputError(path, None, f"no provenance recorded for this file (no {side.name}; not written by protomine?)")
 
 
 def provenance_cmd(file: Annotated[Path, typer.Argument(help="A file protomine wrote (store, library, report, labels...).")]) -> None:

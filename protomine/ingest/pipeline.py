@@ -8,11 +8,12 @@ from typing import Callable
 import numpy as np
 from PIL import Image
 
+from ..atomic import pause_point
 from ..capture import read_capture
 from ..errors import InputError
 from ..provenance import folder_fingerprint, provenance
 from .proposals import SceneObjects, find_objects, object_frame
-from .store import CaptureRecord, ObjectRecord, write_store
+from .store import CaptureRecord, ObjectRecord, ObjectStore, write_store
 from .volume import Grid, lift
 
 
@@ -95,6 +96,13 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
         raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    if Path(store).exists():
+        # fail before minutes of work when the existing store is unreadable or of another grid;
+        # write_store checks again under the writer lock (another process may replace it meanwhile)
+        old = ObjectStore(store)
+        if old.grid_shape != grid.shape:
+            raise InputError(store, "grid", f"store was built with grid {old.grid_shape}, this run uses {grid.shape}; "
+                             "use the same [volume] config or a new store")
     objects, caps, per_capture = [], [], []
     t0, n_frames = time.monotonic(), 0
     for ci, path in enumerate(captures):
@@ -119,6 +127,7 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
             progress(f"capture {ci + 1}/{len(captures)} {cap.name}: {len(recs)} objects, plane residual "
                      f"{scene.plane.residual_m * 1000:.2f} mm")
     elapsed = time.monotonic() - t0
+    pause_point("inputs_read")
     prov = provenance(cfg, seed, {c.name: c.fingerprint for c in caps}, command="ingest")
     counts = write_store(store, objects, caps, grid=grid, provenance=prov, crop_size=cfg["ingest"]["crop_size"])
     return {"captures": per_capture, "objects": len(objects), "frames": n_frames, "seconds": elapsed,

@@ -28,7 +28,7 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from ..atomic import atomic_path, exclusive_lock
+from ..atomic import atomic_path, exclusive_lock, pause_point
 from ..errors import InputError
 from .volume import CHANNELS, Grid, matching_features
 
@@ -243,6 +243,7 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
                     dv[s:s + len(idx)] = src[idx]
         for i, o in enumerate(objects):
             dv[n_old + i] = o.volume
+        pause_point("mid_write")
         g = f.create_group("objects")
         for k in OBJ_STR:
             vals = ([old.objects[k][j] for j in keep] if n_old else []) + [getattr(o, k) for o in objects]

@@ -30,7 +30,7 @@ import h5py
 import numpy as np
 from scipy.stats import norm
 
-from ..atomic import atomic_path, exclusive_lock
+from ..atomic import atomic_path, exclusive_lock, pause_point
 from ..errors import InputError
 
 FORMAT = "protomine.library/1"
@@ -147,6 +147,7 @@ def write_library(path: str | Path, lib: Library) -> None:
                                  chunks=(1,) + a.shape[1:] if big and len(a) else None)
             for k in PROTO_STR:
                 g.create_dataset(k, data=np.array([str(x) for x in lib.prototypes[k]], dtype=object), dtype=STR)
+            pause_point("mid_write")
             g = f.create_group("members")
             for k in MEMBER_FIELDS:
                 a = lib.members[k]
