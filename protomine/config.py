@@ -43,6 +43,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.free_weight": (0.0, 10.0),
     "mine.colour_weight": (0.0, 10.0),
     "mine.symmetry_tol": (0.0, 1.0),
+    "mine.symmetry_factor": (0.1, 100.0),
     "mine.threshold_quantile": (0.5, 1.0),
     "label.unknown_score": (0.0, 1.0),
     "audit.bootstrap": (10, 100000),

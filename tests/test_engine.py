@@ -65,17 +65,18 @@ def test_pose_aware_clustering_recovers_labels_yaw_and_symmetry():
 def test_detect_symmetry_on_exact_prototypes():
     P = _symmetric_prototypes(np.random.default_rng(5))
     V = np.ones((3,) + P.shape[2:], np.float32)
-    np.testing.assert_array_equal(sym.detect_symmetry(P, V), [0, 4, 1])
+    noise = 0.01  # variance of each prototype cell's mean, as if averaged from noisy members
+    np.testing.assert_array_equal(sym.detect_symmetry(P, V, noise), [0, 4, 1])
     # a 5-fold ring on 36 bins: 5 does not divide 36, still detected from the harmonics
     P5 = P[:1].copy()
     P5[0] += 2.0 * np.cos(5 * 2 * np.pi * np.arange(A) / A)[None, None, :, None]
-    assert sym.detect_symmetry(P5, V[:1])[0] == 5
+    assert sym.detect_symmetry(P5, V[:1], noise)[0] == 5
 
 
 def test_canonical_frame_is_independent_of_the_prototype_roll():
     P = _symmetric_prototypes(np.random.default_rng(6))[2:]
     V = np.ones((1,) + P.shape[2:], np.float32)
-    s = sym.detect_symmetry(P, V)
+    s = np.array([sym.NONE])
     t0 = sym.canonical_shift_bins(P, V, s)[0]
     t1 = sym.canonical_shift_bins(np.roll(P, 7, axis=3), V, s)[0]
     assert abs(np.mod(t1 - t0 - 7 + A / 2, A) - A / 2) < 1e-6

@@ -46,7 +46,9 @@ from __future__ import annotations
 from typing import Protocol, Sequence
 
 import numpy as np
-from sklearn.cluster import kmeans_plusplus
+import torch
+from sklearn.cluster import KMeans
+from sklearn.decomposition import PCA
 
 from . import symmetry as sym
 from .posesearch import PoseBank, PoseMatch, _check_scales, _resample_axis, shift_volume
@@ -102,6 +104,37 @@ def yaw_invariant_descriptors(X: np.ndarray, W: np.ndarray) -> np.ndarray:
     return f.reshape(X.shape[0], -1).astype(np.float32)
 
 
+def reduced_descriptors(X: np.ndarray, W: np.ndarray, *, n_components: int = 32,
+                        random_state: int | None = None) -> np.ndarray:
+    """(N, <= n_components) principal components of :func:`yaw_invariant_descriptors` (seeding space).
+
+    The full descriptors have C R H (A / 2 + 1) dimensions (9120 on the bench grid); k-means on a few
+    dozen principal components finds the same coarse groups at a fraction of the cost.
+    """
+    desc = yaw_invariant_descriptors(X, W)
+    n = min(n_components, desc.shape[0], desc.shape[1])
+    return PCA(n_components=n, random_state=random_state).fit_transform(desc).astype(np.float32)
+
+
+def _descriptor_seeds(sub: "ArraySource", desc: np.ndarray, K: int, scales: tuple[float, ...], chunk_size: int,
+                      seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Initial prototypes (K, C, R, A, H), (K, R, A, H) from k-means on yaw-invariant descriptors.
+
+    k-means (k-means++ seeding, ``sklearn.cluster.KMeans``) on the descriptors ``desc`` (n, d) of the
+    objects of ``sub`` groups objects whatever their yaw; each group's member nearest its centroid is
+    the reference, and the group's members, posed against that reference and aligned, are averaged
+    (one Lloyd update with the descriptor labels held fixed).  A group mean is a much steadier start
+    than a single object.
+    """
+    km = KMeans(n_clusters=K, n_init=1, random_state=seed).fit(desc)
+    lab = km.labels_
+    d2 = ((desc - km.cluster_centers_[lab]) ** 2).sum(axis=1)
+    refs = np.array([np.flatnonzero(lab == k)[np.argmin(d2[lab == k])] for k in range(K)])
+    P_ref, V_ref = sub.X[refs].copy(), sub.W[refs].copy()
+    *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, K, forced=lab)
+    return _update(num, den, count, worst, P_ref, V_ref)
+
+
 def align_to_prototype(x: np.ndarray, w: np.ndarray, yaw_deg: np.ndarray, scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Undo each object's pose: x (n, C, R, A, H), w (n, R, A, H) rolled by -yaw, resampled by 1/scale.
 
@@ -129,36 +162,98 @@ def align_to_prototype(x: np.ndarray, w: np.ndarray, yaw_deg: np.ndarray, scale:
 class _Result:
     """One Lloyd run's output."""
 
-    def __init__(self, P, V, labels, yaw, scale, dist, cost, n_iter):
+    def __init__(self, P, V, labels, yaw, scale, dist, cost, n_iter, moments=None):
         self.P, self.V, self.labels, self.yaw, self.scale, self.dist = P, V, labels, yaw, scale, dist
         self.cost, self.n_iter = cost, n_iter
+        self.moments = moments  # (s0, s1, s2, sw2) of the aligned members, or None
+
+
+def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
+    """(F, n) complex transfer function of rolling by -yaw bins with linear interpolation.
+
+    roll by f + t (f integer, t in [0, 1)) = (1 - t) roll(a, f) + t roll(a, f + 1), and roll(a, f)
+    multiplies rfft bin k by exp(-2 pi i k f / A); the result equals :func:`shift_volume` exactly.
+    """
+    shift = -np.asarray(yaw_deg, np.float64) / (360.0 / A)
+    f = np.floor(shift)
+    t = shift - f
+    k = np.arange(A // 2 + 1)[:, None]
+    e0 = np.exp(-2j * np.pi * k * f[None, :] / A)
+    e1 = np.exp(-2j * np.pi * k * (f[None, :] + 1) / A)
+    return torch.from_numpy(((1 - t)[None, :] * e0 + t[None, :] * e1).astype(np.complex64))
+
+
+class _AlignedSums:
+    """Per (prototype, scale) sums of members' quantities rolled into the prototype frame, kept as spectra.
+
+    Members are added as real spectra (2F, n, B R H) (rows [:F] real, [F:] imaginary parts of the
+    azimuthal rfft, the layout of ``posesearch``); the roll by -yaw is a per-member phase, and members
+    of the same (prototype, scale) are summed with ``index_add_``, so the cost is linear in the number of
+    members and independent of K.  :meth:`result` transforms back once and resamples each scale's sum
+    by 1 / scale (resampling is linear, so resampling the sum equals summing the resampled members).
+    """
+
+    def __init__(self, K: int, S: int, A: int, n_feat: int):
+        self.K, self.S, self.A = K, S, A
+        self.acc = torch.zeros((A // 2 + 1, K * S, n_feat), dtype=torch.complex64)
+
+    def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray) -> None:
+        F = self.A // 2 + 1
+        c = torch.complex(spec[:F], spec[F:]) * _align_phase(yaw_deg, self.A)[:, :, None]
+        self.acc.index_add_(1, torch.from_numpy(group.astype(np.int64)), c)
+
+    def result(self, scales: tuple[float, ...], shape: tuple[int, int, int]) -> np.ndarray:
+        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H)."""
+        B, R, H = shape
+        a = torch.fft.irfft(self.acc, n=self.A, dim=0).numpy().astype(np.float64)  # (A, K S, B R H)
+        a = a.reshape(self.A, self.K, self.S, B, R, H).transpose(1, 2, 3, 4, 0, 5)  # (K, S, B, R, A, H)
+        out = np.zeros((self.K, B, R, self.A, H))
+        for si, s in enumerate(scales):
+            part = a[:, si]
+            if s != 1.0:
+                m = np.ones((1, 1, R, 1, H), bool)
+                part, m = _resample_axis(part, m, 1.0 / s, 2)
+                part, m = _resample_axis(part, m, 1.0 / s, 4)
+                part = part * m  # cells the scaled members do not cover stay unknown
+            out += part
+        return out
+
+
+def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
+    """Spectra (2F, n, (C + 1) R H) of [w x_1^2 .. w x_C^2, w^2] for the symmetry test's moments."""
+    xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
+    wt = torch.from_numpy(np.ascontiguousarray(w, dtype=np.float32))
+    stack = torch.cat([wt[:, None] * xt * xt, (wt * wt)[:, None]], dim=1)
+    return torch.tensordot(dft, stack, dims=([1], [3])).reshape(dft.shape[0], x.shape[0], -1)
 
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
-                 accumulate: bool, n_worst: int):
+                 accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None):
     """One pass over the source: assignment against (P, V) and, optionally, the aligned sums.
 
     Returns labels, yaw, scale, dist (N,), and when accumulating num (K, C, R, A, H), den (K, R, A, H),
-    count (K,), plus the ``n_worst`` worst-fitting objects (x, w) for re-seeding empty clusters.
+    count (K,), plus the ``n_worst`` worst-fitting objects (x, w) for re-seeding empty clusters (only
+    read when a cluster is empty), and with ``moments`` the symmetry test's (s0, s1, s2, sw2).
+    ``forced`` (N,) fixes the labels (seeding): poses are then those against the forced prototype.
     """
     N = len(source)
-    K = P.shape[0]
+    K, C, R, A, H = P.shape
+    S = len(scales)
     bank = PoseBank(P, V, scales)
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
     dist = np.empty(N, np.float32)
-    num = np.zeros((K,) + P.shape[1:], np.float64)
-    den = np.zeros((K,) + V.shape[1:], np.float64)
-    worst_d = np.empty(0, np.float32)
-    worst_x = np.empty((0,) + P.shape[1:], np.float32)
-    worst_w = np.empty((0,) + V.shape[1:], np.float32)
+    sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
+    msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
+    scale_index = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
     for i0, i1 in _chunks(N, chunk_size):
         x, w = source.read(i0, i1)
         x = np.asarray(x, np.float32)
         w = np.asarray(w, np.float32)
-        m = bank.match(x, w)
-        lab = np.argmin(m.D, axis=1)
+        o = bank.spectra(x, w)
+        m = bank.match_spectra(o)
+        lab = np.argmin(m.D, axis=1) if forced is None else forced[i0:i1]
         r = np.arange(i1 - i0)
         labels[i0:i1] = lab
         yaw[i0:i1] = m.yaw_deg[r, lab]
@@ -167,29 +262,36 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         dist[i0:i1] = d
         if not accumulate:
             continue
-        ok = np.isfinite(d)
-        xa, wa = align_to_prototype(x[ok], w[ok], yaw[i0:i1][ok], scale[i0:i1][ok])
-        # per-cluster sums as one-hot matrix products (much faster than scattered adds)
-        onehot = np.zeros((K, xa.shape[0]), np.float32)
-        onehot[lab[ok], np.arange(xa.shape[0])] = 1.0
-        num += (onehot @ (wa[:, None] * xa).reshape(xa.shape[0], -1)).reshape(num.shape)
-        den += (onehot @ wa.reshape(wa.shape[0], -1)).reshape(den.shape)
-        if n_worst:
-            # keep the n_worst largest distances seen so far (unmatchable objects count as worst)
-            dd = np.where(np.isfinite(d), d, np.float32(np.finfo(np.float32).max))
-            cand = np.concatenate([worst_d, dd])
-            keep = np.argsort(-cand, kind="stable")[:n_worst]
-            worst_x = np.concatenate([worst_x, x])[keep]
-            worst_w = np.concatenate([worst_w, w])[keep]
-            worst_d = cand[keep]
-    count = np.bincount(labels[np.isfinite(dist)], minlength=K) if accumulate else None
-    return labels, yaw, scale, dist, num, den, count, (worst_x, worst_w)
+        ok = np.flatnonzero(np.isfinite(d))
+        group = lab[ok] * S + np.array([scale_index[float(s)] for s in scale[i0:i1][ok]], np.int64)
+        sel = torch.from_numpy(ok)
+        sums.add(o[:, sel], yaw[i0:i1][ok], group)
+        if moments:
+            msums.add(_moment_spectra(x[ok], w[ok], bank.dft), yaw[i0:i1][ok], group)
+    if not accumulate:
+        return labels, yaw, scale, dist, None, None, None, None, None
+    count = np.bincount(labels[np.isfinite(dist)], minlength=K)
+    tot = sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
+    num, den = tot[:, 2:], tot[:, 1]
+    worst = (np.empty((0,) + P.shape[1:], np.float32), np.empty((0,) + V.shape[1:], np.float32))
+    if n_worst and (count == 0).any():
+        # unmatchable objects count as worst
+        dd = np.where(np.isfinite(dist), dist, np.float32(np.finfo(np.float32).max))
+        top = np.sort(np.argsort(-dd, kind="stable")[:n_worst])
+        wx, ww = _gather(source, top, chunk_size)
+        order = np.argsort(-dd[top], kind="stable")  # worst first
+        worst = (wx[order], ww[order])
+    mom = None
+    if moments:
+        extra = msums.result(scales, (C + 1, R, H))
+        mom = (den, num, extra[:, :C], extra[:, C])
+    return labels, yaw, scale, dist, num, den, count, worst, mom
 
 
 def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: np.ndarray, V_old: np.ndarray):
     """New prototypes from the aligned sums; empty clusters take the worst-fitting objects."""
     P = np.where(den[:, None] > 1e-9, num / np.maximum(den[:, None], 1e-9), 0.0).astype(np.float32)
-    V = (den / np.maximum(count, 1)[:, None, None, None]).astype(np.float32)
+    V = np.clip(den / np.maximum(count, 1)[:, None, None, None], 0.0, 1.0).astype(np.float32)
     wx, ww = worst
     empty = np.flatnonzero(count == 0)
     for j, k in enumerate(empty):
@@ -201,12 +303,12 @@ def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: n
 
 
 def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: int, tol: float,
-           chunk_size: int) -> _Result:
+           chunk_size: int, moments: bool = False) -> _Result:
     K = P.shape[0]
     prev_labels, prev_cost = None, np.inf
     n_iter = 0
     for n_iter in range(1, max_iter + 1):
-        labels, yaw, scale, dist, num, den, count, worst = _assign_pass(source, P, V, scales, chunk_size, True, K)
+        labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K)
         cost = float(dist[np.isfinite(dist)].sum())
         stable = prev_labels is not None and np.array_equal(labels, prev_labels)
         small = np.isfinite(prev_cost) and abs(prev_cost - cost) <= tol * max(abs(cost), 1e-12)
@@ -216,9 +318,9 @@ def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: in
         if small and count.min() > 0:
             break
         prev_labels, prev_cost = labels, cost
-    labels, yaw, scale, dist, *_ = _assign_pass(source, P, V, scales, chunk_size, False, 0)
+    labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments)
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(P, V, labels, yaw, scale, dist, cost, n_iter)
+    return _Result(P, V, labels, yaw, scale, dist, cost, n_iter, rest[-1] if moments else None)
 
 
 class PoseKMeans:
@@ -228,18 +330,19 @@ class PoseKMeans:
     ----------
     n_clusters : K, number of prototypes.
     scales : scale factors searched per pose (1.0 = no scale search).
-    n_init : restarts with different k-means++ seeds; the lowest final cost is kept.
+    n_init : restarts with different descriptor k-means seeds; the lowest final cost is kept.
     max_iter, tol : Lloyd iteration cap and relative cost-change tolerance.
     chunk_size : objects read and matched at once (bounds memory).
     random_state : int or None; the only source of randomness.
     sample_size : objects used for seeding descriptors and, for large N, for the restarts.
-    symmetry_tol : tolerance of :func:`protomine.mine.symmetry.detect_symmetry`.
+    symmetry_factor : how far a rotation may exceed the members' scatter and still count as a symmetry
+        (``factor`` of :func:`protomine.mine.symmetry.detect_symmetry`).
     init : optional (P (K, C, R, A, H), V (K, R, A, H)) starting prototypes (skips seeding and restarts).
     """
 
     def __init__(self, *, n_clusters: int, scales: Sequence[float] = (1.0,), n_init: int = 4, max_iter: int = 30,
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
-                 sample_size: int = 4096, symmetry_tol: float = 0.12,
+                 sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR,
                  init: tuple[np.ndarray, np.ndarray] | None = None):
         self.n_clusters = n_clusters
         self.scales = scales
@@ -249,7 +352,7 @@ class PoseKMeans:
         self.chunk_size = chunk_size
         self.random_state = random_state
         self.sample_size = sample_size
-        self.symmetry_tol = symmetry_tol
+        self.symmetry_factor = symmetry_factor
         self.init = init
 
     # --- validation ------------------------------------------------------------------------
@@ -279,7 +382,7 @@ class PoseKMeans:
             if P0.shape[0] != K or V0.shape[0] != K:
                 raise ValueError(f"init must hold n_clusters={K} prototypes, got {P0.shape[0]}")
             best = _lloyd(source, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size)
+                          chunk_size=self.chunk_size, moments=True)
         else:
             best = self._fit_restarts(source, scales, rng)
         self._finish(best, source, scales)
@@ -289,24 +392,24 @@ class PoseKMeans:
         N, K = len(source), self.n_clusters
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size), replace=False))
         Xs, Ws = _gather(source, idx, self.chunk_size)
-        desc = yaw_invariant_descriptors(Xs, Ws)
+        desc = reduced_descriptors(Xs, Ws, random_state=int(rng.integers(2**31 - 1)))
         sub = ArraySource(Xs, Ws)
         fit_on = source if N <= self.sample_size else sub
         best = None
         for _ in range(self.n_init):
-            _, seeds = kmeans_plusplus(desc, K, random_state=int(rng.integers(2**31 - 1)))
-            res = _lloyd(fit_on, Xs[seeds].copy(), Ws[seeds].copy(), scales=scales, max_iter=self.max_iter,
-                         tol=self.tol, chunk_size=self.chunk_size)
+            P0, V0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)))
+            res = _lloyd(fit_on, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
+                         chunk_size=self.chunk_size, moments=fit_on is source)
             if best is None or res.cost < best.cost:
                 best = res
         if fit_on is not source:
             best = _lloyd(source, best.P, best.V, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size)
+                          chunk_size=self.chunk_size, moments=True)
         return best
 
     def _finish(self, res: _Result, source: Source, scales: tuple[float, ...]) -> None:
         A = res.P.shape[3]
-        symm = sym.detect_symmetry(res.P, res.V, tol=self.symmetry_tol)
+        symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor)
         t = sym.canonical_shift_bins(res.P, res.V, symm)
         self.prototypes_ = shift_volume(res.P, -t, axis=3).astype(np.float32)
         self.prototype_weights_ = shift_volume(res.V, -t, axis=2).astype(np.float32)

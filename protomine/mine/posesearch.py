@@ -242,20 +242,49 @@ def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor
     return torch.cat([pr, -pi], dim=2).contiguous(), torch.cat([pi, pr], dim=2).contiguous()
 
 
-def _fft_all_distances(x: np.ndarray, w: np.ndarray, br: torch.Tensor, bi: torch.Tensor, dft: torch.Tensor,
-                       A: int, min_overlap: float) -> np.ndarray:
-    """Distances for every shift: (n, M, A) float32 for one chunk of objects."""
+def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
+    """Object spectra (2F, n, (C + 2) R H) of numpy x (n, C, R, A, H), w (n, R, A, H)."""
     xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
     wt = torch.from_numpy(np.ascontiguousarray(w, dtype=np.float32))
-    o = _object_spectra(xt, wt, dft)
+    return _object_spectra(xt, wt, dft)
+
+
+def _distances_from_spectra(o: torch.Tensor, br: torch.Tensor, bi: torch.Tensor, A: int,
+                            min_overlap: float) -> torch.Tensor:
+    """Distances for every shift from object spectra o (2F, n, (C + 2) R H): (n, M, A) float32 tensor."""
     F = A // 2 + 1
     prod = torch.baddbmm(torch.bmm(o[:F], br), o[F:], bi)  # (F, n, 4M)
     M2 = prod.shape[2] // 2
     corr = torch.fft.irfft(torch.complex(prod[..., :M2], prod[..., M2:]), n=A, dim=0)  # (A, n, 2M)
     num, den = corr[..., :M2 // 2], corr[..., M2 // 2:]
-    d = num.clamp_min(0.0) / (den + EPS)
-    d = torch.where(den > min_overlap, d, torch.full_like(d, float("inf")))
-    return d.permute(1, 2, 0).numpy()
+    d = num.clamp_min_(0.0).div_(den + EPS)
+    d.masked_fill_(den <= min_overlap, float("inf"))
+    return d.permute(1, 2, 0)
+
+
+def _fft_all_distances(x: np.ndarray, w: np.ndarray, br: torch.Tensor, bi: torch.Tensor, dft: torch.Tensor,
+                       A: int, min_overlap: float) -> np.ndarray:
+    """Distances for every shift: (n, M, A) float32 for one chunk of objects."""
+    return _distances_from_spectra(_spectra_of(x, w, dft), br, bi, A, min_overlap).numpy()
+
+
+def _best_pose_torch(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """d (n, K, S, A) tensor -> D (n, K), yaw_deg (n, K), scale (n, K); same rule as :func:`_best_pose`.
+
+    Works on the tensor so that only (n, K) results are copied (the (n, K, S, A) array is the largest
+    object of a pass).
+    """
+    n, K, S, A = d.shape
+    D, best = d.reshape(n, K, S * A).min(dim=2)
+    si, sh = best // A, best % A
+    row = d.reshape(n * K, S, A)[torch.arange(n * K), si.reshape(-1)].reshape(n, K, A)
+    dm = row.gather(2, ((sh - 1) % A)[..., None])[..., 0]
+    dp = row.gather(2, ((sh + 1) % A)[..., None])[..., 0]
+    D, dm, dp = D.numpy(), dm.numpy(), dp.numpy()
+    off = _parabolic_offset(dm.astype(np.float64), D.astype(np.float64), dp.astype(np.float64))
+    off = np.where(np.isfinite(D), off, 0.0)
+    yaw = np.mod((sh.numpy() + off) * (360.0 / A), 360.0)
+    return D.astype(np.float32), yaw.astype(np.float32), np.asarray(scales, np.float32)[si.numpy()]
 
 
 def pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *,
@@ -295,16 +324,26 @@ class PoseBank:
         self.br, self.bi = _prototype_spectra(torch.from_numpy(Ps.reshape(K * S, C, R, A, H)),
                                               torch.from_numpy(Vs.reshape(K * S, R, A, H)))
 
+    def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
+        """Object spectra (2F, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""
+        return _spectra_of(x, w, self.dft)
+
     def all_distances(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3) -> np.ndarray:
         """x (n, C, R, A, H), w (n, R, A, H) -> (n, K, S, A) distances for every scale and shift."""
         d = _fft_all_distances(x, w, self.br, self.bi, self.dft, self.A, self.C * min_overlap)
         return d.reshape(x.shape[0], self.K, len(self.scales), self.A)
 
+    def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False) -> PoseMatch:
+        """Best pose from object spectra o (2F, n, (C + 2) R H) (see :meth:`spectra`)."""
+        d = _distances_from_spectra(o, self.br, self.bi, self.A, self.C * min_overlap)
+        d = d.reshape(o.shape[1], self.K, len(self.scales), self.A)
+        D, yaw, sc = _best_pose_torch(d, self.scales)
+        return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None)
+
     def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3,
               return_all: bool = False) -> PoseMatch:
-        allD = self.all_distances(x, w, min_overlap)
-        D, yaw, sc = _best_pose(allD, self.scales)
-        return PoseMatch(D, yaw, sc, allD if return_all else None)
+        """Best pose of x (n, C, R, A, H), w (n, R, A, H) against every scaled prototype: (n, K) arrays."""
+        return self.match_spectra(self.spectra(x, w), min_overlap, return_all)
 
 
 def _pose_distances(X: np.ndarray, W: np.ndarray, bank: PoseBank, *, return_all: bool, chunk_size: int,
