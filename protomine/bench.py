@@ -142,6 +142,15 @@ BENCH_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [
 ]
 
 
+def _bench_label(quick: bool, seed: int) -> dict:
+    """(c) single-view lifting + matching against K = 32 prototypes [``label``] (protomine/label/throughput.py)."""
+    from .label.throughput import bench_label
+    return bench_label(quick, seed)
+
+
+BENCH_ROWS.append(("label", _bench_label))
+
+
 def _print_section(name: str, figures: dict) -> None:
     print(f"== {name}")
     for key, val in figures.items():

@@ -21,8 +21,9 @@ with (mu_k, sigma_k) the library's log-normal fit of the distances of *one-frame
 objects to their own prototype (``single_mu``, ``single_sigma``, learnt at mining time without labels):
 the fraction of single views of prototype k's own members expected to fit worse than this one.  It is in
 [0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
-are measured against its own spread.  The object's cluster is the prototype with the highest score (an
-object with no observed cell in common with any prototype gets cluster None and score 0).  It is
+are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
+the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
+cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
 "unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
 prototype's own single views, i.e. the per-prototype distance threshold
 ``exp(mu_k + sigma_k * Phi^-1(1 - unknown_score))``.
@@ -32,7 +33,7 @@ Record (one dict per object and frame; JSON-ready):
     (object frame origin), up [x, y, z], size_m [footprint radius, height], cluster (int | None),
     name (str | None), yaw_deg, symmetry ("continuous" | "none" | "n-fold:N"), scale (metric size
     sqrt(r h) over the prototype's median), fit_scale (best scale of the pose search), distance, score,
-    unknown, alternatives [{cluster, score}] (the next best prototypes, at most ``N_ALTERNATIVES``).
+    unknown, alternatives [{cluster, score}] (the next nearest prototypes, at most ``N_ALTERNATIVES``).
 """
 from __future__ import annotations
 
@@ -109,7 +110,9 @@ class Matcher:
         D = np.concatenate([p.D for p in parts]).astype(np.float64)
         S = self.library.score(D, np.arange(self.K)[None, :], single_view=True)
         S = np.where(np.isfinite(D), S, 0.0)
-        best = np.where(np.isfinite(D).any(axis=1), np.argmax(S, axis=1), -1)
+        # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
+        # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
+        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         period = np.asarray(self.library.prototypes["period_deg"], np.float64)
         yaw = reduce_yaw(np.concatenate([p.yaw_deg for p in parts]).astype(np.float64), period[None, :])
         fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
@@ -169,7 +172,7 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
     out = []
     for i, facts in enumerate(fo.facts):
         k = int(m["best"][i])
-        order = np.argsort(-m["score"][i], kind="stable")
+        order = np.argsort(m["distance"][i], kind="stable")
         alts = [{"cluster": int(j), "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
         rec = {"capture": capture, "frame": fo.frame, **facts}
         if k < 0:
@@ -191,15 +194,17 @@ def label_capture(library: Library, capture_path: str | Path, cfg: dict, *, seed
                   weighted: bool = True, progress: Callable[[str], None] | None = None) -> list[dict]:
     """Label every object in every frame of one capture, each frame on its own.  Returns the records
     (see the module docstring), in frame order then proposal order."""
-    matcher = make_matcher(library, cfg, weighted=weighted)
-    return _label_capture(matcher, Path(capture_path), cfg, seed, use_masks, progress, {})
+    return label_captures(library, [capture_path], cfg, seed=seed, use_masks=use_masks, weighted=weighted,
+                          progress=progress)
 
 
 def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict, *, seed: int = 0,
                    use_masks: bool = True, weighted: bool = True, progress: Callable[[str], None] | None = None,
-                   stats: dict | None = None) -> list[dict]:
-    """Label several captures (records concatenated in the given order).
+                   stats: dict | None = None, batch_objects: int = 256) -> list[dict]:
+    """Label several captures (records in the given capture order, then frame order).
 
+    Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
+    search call costs a fixed overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
     and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
     """
@@ -209,43 +214,52 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
         raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
     matcher = make_matcher(library, cfg, weighted=weighted)
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
-    out = []
+    out: list[dict] = []
+    pending: list[tuple[str, FrameObjects]] = []
     for ci, path in enumerate(capture_paths):
         if progress:
             progress(f"capture {ci + 1}/{len(capture_paths)} {Path(path).name}")
-        out += _label_capture(matcher, Path(path), cfg, seed, use_masks, progress, st)
+        pending += _lift_capture(matcher, Path(path), cfg, seed, use_masks, progress, st)
+        if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
+            out += _match_batch(matcher, pending, st)
+            pending = []
+    out += _match_batch(matcher, pending, st)
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
     if stats is not None:
         stats.update(st)
     return out
 
 
-def _label_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks: bool,
-                   progress: Callable[[str], None] | None, st: dict) -> list[dict]:
+def _lift_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks: bool,
+                  progress: Callable[[str], None] | None, st: dict) -> list[tuple[str, FrameObjects]]:
     cap = read_capture(path, check_images=False)
     rng = capture_rng(seed, cap.name)   # one generator per capture, consumed frame after frame
     masks = bool(use_masks and cap.has_masks)
     width = cap.intrinsics.width
-    lifted: list[FrameObjects] = []
+    lifted = []
     for fr in cap.frames:
         scene = find_objects(cap, cfg, rng, frame_ids=[fr.id], use_masks=masks)
         t0 = time.perf_counter()
         fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks)
-        st["lift_s"] = st.get("lift_s", 0.0) + time.perf_counter() - t0
-        lifted.append(fo)
+        st["lift_s"] += time.perf_counter() - t0
+        lifted.append((cap.name, fo))
         if progress:
             progress(f"{cap.name} frame {fr.id}: {len(fo.facts)} objects")
-    # one matching pass for the whole capture: the prototype spectra are computed once
+    st["frames"] += len(cap.frames)
+    return lifted
+
+
+def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: dict) -> list[dict]:
+    """Match the lifted objects of several frames in one pose search and build their records."""
+    if not lifted:
+        return []
     t0 = time.perf_counter()
-    allvol = np.concatenate([fo.volumes for fo in lifted]) if lifted else np.zeros((0,))
-    m = matcher.match(allvol)
-    st["match_s"] = st.get("match_s", 0.0) + time.perf_counter() - t0
-    st["objects"] = st.get("objects", 0) + int(allvol.shape[0])
-    st["frames"] = st.get("frames", 0) + len(cap.frames)
+    m = matcher.match(np.concatenate([fo.volumes for _, fo in lifted]))
+    st["match_s"] += time.perf_counter() - t0
     out, i0 = [], 0
-    for fo in lifted:
+    for cap_name, fo in lifted:
         n = len(fo.facts)
-        part = {k: v[i0:i0 + n] for k, v in m.items()}
-        out += _records(matcher, cap.name, fo, part)
+        out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
+    st["objects"] += i0
     return out
