@@ -1,0 +1,131 @@
+"""Single-view labelling: records, accuracy on new instances, open-set flagging, overlays, CLI.
+
+The module fixture renders a small demo scenario (invented data: 6 mining captures x 6 frames plus 10
+single-frame captures at 160x120, including the two held-out classes), ingests and mines it with the
+fast config and K = 8 (the number of mining classes), then labels the single-frame captures.
+"""
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from PIL import Image
+from scipy.stats import norm
+from typer.testing import CliRunner
+
+from protomine.cli import app
+from protomine.config import load_config
+from protomine.ingest.pipeline import ingest_captures
+from protomine.label.evaluate import evaluate_labels
+from protomine.label.matcher import label_captures, symmetry_name
+from protomine.label.overlays import yaw_arrow_world
+from protomine.mine.library import match_score
+from protomine.mine.pipeline import mine_store
+from protomine.scenes.scenario import generate_scenario
+
+FIELDS = {"capture": str, "frame": str, "object": str, "bbox": list, "center_world": list, "size_m": list,
+          "yaw_deg": float, "score": float, "unknown": bool, "alternatives": list}
+
+
+@pytest.fixture(scope="module")
+def labelled(tmp_path_factory):
+    out = tmp_path_factory.mktemp("label_scene")
+    doc = generate_scenario(out, n_mining=6, n_single=10, frames=6, width=160, height=120, seed=3)
+    cfg = load_config("fast")
+    ingest_captures([out / c for c in doc["mining"]], out / "objects.h5", cfg, seed=0)
+    lib, _ = mine_store(out / "objects.h5", out / "library.h5", cfg, seed=0, n_clusters=8)
+    singles = [out / c for c in doc["single"]]
+    weighted = label_captures(lib, singles, cfg, seed=0)
+    plain = label_captures(lib, singles, cfg, seed=0, weighted=False)
+    return {"out": out, "lib": lib, "singles": singles, "weighted": weighted, "plain": plain, "cfg": cfg}
+
+
+def test_records_have_the_documented_fields_and_types(labelled):
+    recs = labelled["weighted"]
+    assert len(recs) >= 40
+    K = labelled["lib"].n_clusters
+    for r in recs:
+        for k, t in FIELDS.items():
+            assert isinstance(r[k], t), (k, r[k])
+        json.dumps(r)  # JSON-ready
+        assert r["object"].startswith(r["capture"] + "/")
+        u0, v0, u1, v1 = r["bbox"]
+        assert 0 <= u0 < u1 <= 160 and 0 <= v0 < v1 <= 120
+        assert r["cluster"] is None or 0 <= r["cluster"] < K
+        assert 0.0 <= r["score"] <= 1.0
+        assert r["unknown"] == (r["score"] < labelled["cfg"]["label"]["unknown_score"])
+        if r["symmetry"] == "continuous":
+            assert r["yaw_deg"] == 0.0
+        else:
+            period = 360.0 if r["symmetry"] == "none" else 360.0 / int(r["symmetry"].split(":")[1])
+            assert 0.0 <= r["yaw_deg"] < period
+        assert len(r["alternatives"]) == min(3, K - 1)
+        assert r["cluster"] not in [a["cluster"] for a in r["alternatives"]]
+
+
+def test_known_classes_are_named_and_unknown_classes_flagged(labelled):
+    out = labelled["out"]
+    ev = evaluate_labels(labelled["weighted"], out / "truth_full.csv", labelled["lib"], out / "truth_full.csv")
+    assert ev["n_unknown"] >= 5 and ev["n_known"] >= 30
+    assert ev["accuracy"] >= 0.8
+    assert ev["median_yaw_error_deg"] <= 15.0
+    assert ev["auroc"] >= 0.85            # roc_auc_score from scikit-learn (reference implementation)
+    assert ev["unknown_flagged"] >= 0.6
+    assert ev["known_flagged"] <= 0.25
+
+
+def test_weighted_distance_is_at_least_as_accurate_as_plain(labelled):
+    out = labelled["out"]
+    ev_w = evaluate_labels(labelled["weighted"], out / "truth_full.csv", labelled["lib"], out / "truth_full.csv")
+    ev_p = evaluate_labels(labelled["plain"], out / "truth_full.csv", labelled["lib"], out / "truth_full.csv")
+    assert ev_w["accuracy"] >= ev_p["accuracy"]
+
+
+def test_cli_writes_json_lines_and_one_overlay_per_frame(labelled, tmp_path):
+    res = CliRunner().invoke(app, ["label", str(labelled["out"] / "library.h5"), *map(str, labelled["singles"][:3]),
+                                   "--out", str(tmp_path / "labels.jsonl"), "--overlays", str(tmp_path / "ov"),
+                                   "--config", "fast", "--quiet"])
+    assert res.exit_code == 0, res.output
+    lines = (tmp_path / "labels.jsonl").read_text().splitlines()
+    n = sum(1 for r in labelled["weighted"] if r["capture"] in {c.name for c in labelled["singles"][:3]})
+    assert len(lines) == n
+    pngs = sorted((tmp_path / "ov").glob("*.png"))
+    assert len(pngs) == 3
+    with Image.open(pngs[0]) as im:
+        assert im.size == (160, 120) and im.mode == "RGB"
+    assert (tmp_path / "labels.jsonl.provenance.json").is_file()
+
+
+def test_cli_bad_library_is_one_line_error(tmp_path):
+    bad = tmp_path / "lib.h5"
+    bad.write_text("not hdf5")
+    cap = tmp_path / "cap"
+    cap.mkdir()
+    res = CliRunner().invoke(app, ["label", str(bad), str(cap), "--out", str(tmp_path / "x.jsonl")])
+    assert res.exit_code == 2
+    assert "error:" in res.output and "Traceback" not in res.output
+
+
+def test_yaw_arrow_turns_counter_clockwise_about_up():
+    # hand-worked: up = world z, reference direction = world x; yaw 90 turns x onto y
+    rec = {"base_world": [1.0, 2.0, 0.0], "up": [0.0, 0.0, 1.0], "yaw_deg": 90.0, "size_m": [0.1, 0.2]}
+    base, tip = yaw_arrow_world(rec)
+    np.testing.assert_allclose(base, [1.0, 2.0, 0.0])
+    d = (tip - base) / np.linalg.norm(tip - base)
+    np.testing.assert_allclose(d, [0.0, 1.0, 0.0], atol=1e-12)
+
+
+def test_unknown_threshold_is_the_lognormal_quantile():
+    # score = 1 - Phi((ln d - mu) / sigma): the distance exp(mu + sigma * Phi^-1(1 - u)) scores exactly u
+    # (scipy.stats.norm as reference implementation)
+    mu, sigma, u = -4.0, 0.3, 0.025
+    d = math.exp(mu + sigma * norm.ppf(1 - u))
+    assert match_score(np.array([d]), mu, sigma)[0] == pytest.approx(u, rel=1e-9)
+    assert match_score(np.array([d * 1.01]), mu, sigma)[0] < u
+
+
+@pytest.mark.parametrize("code,name", [(0, "continuous"), (1, "none"), (3, "n-fold:3"), (4, "n-fold:4")])
+def test_symmetry_names_follow_the_item_file_spelling(code, name):
+    assert symmetry_name(code) == name
