@@ -20,6 +20,20 @@ TINY_W, TINY_H = 64, 48
 TINY_INTRINSICS = Intrinsics(TINY_W, TINY_H, 60.0, 60.0, (TINY_W - 1) / 2, (TINY_H - 1) / 2)
 
 
+# a coarse grid and one scale keep a 6-object mine at about a second (the defaults take ~10 s)
+TINY_CONFIG = """[volume]
+radial_bins = 4
+azimuth_bins = 12
+height_bins = 4
+[mine]
+scales = [1.0]
+n_init = 1
+max_iter = 10
+[audit]
+bootstrap = 50
+"""
+
+
 def tiny_box(h: float = 0.05) -> S.Shape:
     """An asymmetric solid (box plus a side block) of height ``h`` metres, base on z = 0."""
     return S.union(S.box((0.035, 0.02, h / 2), (0.0, 0.0, h / 2)), S.box((0.012, 0.03, h / 4), (0.02, 0.03, h / 4)))
@@ -70,15 +84,18 @@ def two_object_scene(k: int) -> list[tuple]:
 def tiny_world(tmp_path_factory):
     """Session data: 3 captures of 2 objects each, a store of all 3, and a library mined with K = 2.
 
-    Returns a dict of paths: caps (list), store, library, cfg_name.  Tests must copy before modifying.
+    Returns a dict: caps (list of folders), store, library, config (TOML path, TINY_CONFIG), cfg (loaded).
+    Tests must copy these files before modifying them.
     """
     from protomine.config import load_config
     from protomine.ingest.pipeline import ingest_captures
     from protomine.mine.pipeline import mine_store
     root = tmp_path_factory.mktemp("tiny_world")
     caps = [make_tiny_capture(root / f"cap{k}", two_object_scene(k), world_seed=k) for k in range(3)]
-    cfg = load_config("fast")
+    config = root / "tiny.toml"
+    config.write_text(TINY_CONFIG)
+    cfg = load_config(config)
     ingest_captures(caps, root / "store" / "objects.h5", cfg, seed=0)
     mine_store(root / "store" / "objects.h5", root / "lib" / "library.h5", cfg, seed=0, n_clusters=2)
     return {"root": root, "caps": caps, "store": root / "store" / "objects.h5", "library": root / "lib" / "library.h5",
-            "cfg": cfg}
+            "cfg": cfg, "config": str(config)}

@@ -37,8 +37,11 @@ class Case:
     outputs: list[Path] = field(default_factory=list)   # must not be created or changed
 
 
+_CONFIG: list[str] = []       # the tiny world's config file, set by the first case built
+
+
 def _cfg():
-    return load_config("fast")
+    return load_config(_CONFIG[0])
 
 
 # --- capture breakers ----------------------------------------------------------------------
@@ -133,7 +136,7 @@ def _capture_case(name, breaker, file, words, tmp_path, world) -> Case:
         return ingest_captures([cap], store, cfg)
     if name == "no support plane":
         api = lambda: __import__("protomine.ingest.pipeline", fromlist=["x"]).ingest_captures([cap], store, cfg)  # noqa: E731
-    return Case(["ingest", str(cap), "--store", str(store), "--config", "fast", "--quiet"], api, file, words, [store])
+    return Case(["ingest", str(cap), "--store", str(store), "--config", _CONFIG[0], "--quiet"], api, file, words, [store])
 
 
 # --- other inputs ----------------------------------------------------------------------------
@@ -152,7 +155,8 @@ def _text(path: Path, text: str) -> Path:
     return path
 
 
-def _mine_case(store: Path, tmp_path: Path, file: str, words, extra=(), n_clusters=None, config="fast") -> Case:
+def _mine_case(store: Path, tmp_path: Path, file: str, words, extra=(), n_clusters=None, config=None) -> Case:
+    config = config or _CONFIG[0]
     lib = tmp_path / "libout" / "library.h5"
     outs = [lib, lib.parent / "assignments.csv", lib.parent / "gallery.png"]
 
@@ -169,7 +173,7 @@ def _audit_case(lib: Path, truth: Path, store: Path, tmp_path: Path, file: str, 
     def api():
         from protomine.audit.run import run_audit
         return run_audit(lib, truth, out, _cfg(), store=store)
-    argv = ["audit", str(lib), "--truth", str(truth), "--out", str(out), "--store", str(store), "--config", "fast", "--quiet"]
+    argv = ["audit", str(lib), "--truth", str(truth), "--out", str(out), "--store", str(store), "--config", _CONFIG[0], "--quiet"]
     return Case(argv, api, file, words, [out])
 
 
@@ -185,7 +189,7 @@ def _other_case(name: str, tmp_path: Path, world) -> Case:
         cap = make_tiny_capture(tmp_path / "empty", [], n_frames=2)
         s = tmp_path / "out" / "objects.h5"
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(cap), "--store", str(s), "--config", "fast", "--quiet"],
+        return Case(["ingest", str(cap), "--store", str(s), "--config", _CONFIG[0], "--quiet"],
                     lambda: ingest_captures([cap], s, _cfg()), "empty", ("objects", "no objects"), [s])
     if name == "duplicate capture names":
         a, b = tmp_path / "x" / "cap", tmp_path / "y" / "cap"
@@ -198,13 +202,13 @@ def _other_case(name: str, tmp_path: Path, world) -> Case:
     if name == "ingest into a store that is not HDF5":
         s = _text(tmp_path / "out" / "objects.h5", "not an hdf5 file\n")
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(world["caps"][0]), "--store", str(s), "--config", "fast", "--quiet"],
+        return Case(["ingest", str(world["caps"][0]), "--store", str(s), "--config", _CONFIG[0], "--quiet"],
                     lambda: ingest_captures([world["caps"][0]], s, _cfg()), "objects.h5", ("HDF5",), [s])
     if name == "ingest into a store built with another grid":
         s = tmp_path / "out" / "objects.h5"
         s.parent.mkdir()
         shutil.copy2(store, s)
-        conf = _text(tmp_path / "grid.toml", "[volume]\nradial_bins = 4\n")
+        conf = _text(tmp_path / "grid.toml", "[volume]\nradial_bins = 6\n")
         from protomine.ingest.pipeline import ingest_captures
         return Case(["ingest", str(world["caps"][1]), "--store", str(s), "--config", str(conf), "--quiet"],
                     lambda: ingest_captures([world["caps"][1]], s, load_config(conf)), "objects.h5", ("grid",), [s])
@@ -260,6 +264,7 @@ ALL = [c[0] for c in CAPTURE_CASES] + OTHER_CASES
 
 
 def _build(name: str, tmp_path: Path, world) -> Case:
+    _CONFIG[:] = [world["config"]]
     for c in CAPTURE_CASES:
         if c[0] == name:
             return _capture_case(*c, tmp_path, world)
