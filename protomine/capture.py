@@ -97,7 +97,8 @@ def _number(doc: dict, key: str, path: Path, where: str, *, positive: bool = Fal
     if key not in doc:
         raise _fail(path, f"{where}.{key}", "missing")
     v = doc[key]
-    if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+    # JSON integers are unbounded: one beyond float64 is not a finite number either (no OverflowError)
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or (isinstance(v, int) and abs(v) > 1e300) or not math.isfinite(v):
         raise _fail(path, f"{where}.{key}", f"expected a finite number, got {v!r}")
     if integer and (float(v) != int(v)):
         raise _fail(path, f"{where}.{key}", f"expected a whole number, got {v!r}")
@@ -156,8 +157,8 @@ def read_capture(folder: str | Path, *, check_images: bool = True) -> Capture:
         T = f.get("cam_to_world")
         try:
             arr = np.array(T, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise _fail(jpath, f"{where}.cam_to_world", f"expected a 4x4 array of numbers, got {T!r}") from None
+        except (TypeError, ValueError, OverflowError):
+            raise _fail(jpath, f"{where}.cam_to_world", f"expected a 4x4 array of finite numbers, got {str(T)[:80]}") from None
         reason = is_rigid(arr)
         if reason:
             raise _fail(jpath, f"{where}.cam_to_world", f"not a rigid transform: {reason}")
