@@ -22,7 +22,8 @@ def mine(
     """Group the store's objects into pose-aware prototypes."""
     from .pipeline import mine_store
     cfg = config_from(config)
-    clean_stale_temporaries(library.parent if str(library.parent) else Path("."))
+    for folder in {library.parent, out or library.parent}:
+        clean_stale_temporaries(folder)
     lib, info = mine_store(store, library, cfg, seed=seed, n_clusters=clusters, out_dir=out, progress=Progress("mine", quiet))
     where = out or library.parent
     typer.echo(f"mined {len(lib.members['object'])} objects into {info['K']} prototypes "
