@@ -52,6 +52,61 @@ def heldout_subset(truth_csv: Path, mined_ids: list[str], out_csv: Path, fractio
     return len(pick)
 
 
+def _export_line(summary: dict) -> str:
+    keys = [k for k in ("images", "labels", "annotations", "dropped_below_min_score") if k in summary]
+    return ", ".join(f"{summary[k]} {k}" for k in keys) if keys else "written"
+
+
+def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
+                       truth: dict, quiet: bool) -> None:
+    """Label held-out single views; then a one-shot search for a class that mining never saw."""
+    from sklearn.metrics import average_precision_score
+
+    from .capture import read_capture
+    from .curate.oneshot import find_similar
+    from .ingest.pipeline import ingest_captures
+    from .ingest.store import open_store
+    from .label.evaluate import evaluate_labels
+    from .label.matcher import label_captures
+    from .label.overlays import write_overlays
+
+    stats: dict = {}
+    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=None if quiet else Progress("label"))
+    write_text(out / "labels.jsonl", "".join(json.dumps(r) + "\n" for r in recs))
+    for c in singles[:6]:
+        write_overlays(out / "overlays", read_capture(c), [r for r in recs if r["capture"] == c.name])
+    ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv")
+    typer.echo(f"label: {ev['n_known']} known and {ev['n_unknown']} never-mined objects in {len(singles)} single views; "
+               f"known-class accuracy {ev['accuracy']:.3f}, median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg; "
+               f"unknown AUROC {ev['auroc']:.3f}, flagged: {ev['unknown_flagged']:.0%} of unknown, "
+               f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
+               f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")
+    # one-shot: the user scans new items; one example of a class mining never saw finds the others
+    scans = out / "new_scans.h5"
+    if scans.exists():
+        scans.unlink()
+    ingest_captures(singles, scans, cfg, seed=seed)
+    st = open_store(scans)
+    labels = np.array([truth.get(o, {}).get("label") for o in st.ids], dtype=object)
+    mined_classes = {truth[o]["label"] for o in lib.members["object"] if o in truth}
+    new_classes = sorted({l for l in labels if l and l not in mined_classes})
+    for cls in new_classes:
+        idx = np.flatnonzero(labels == cls)
+        if len(idx) < 2:
+            continue
+        ex = int(np.random.default_rng(seed).choice(idx))
+        m = find_similar(lib, st, st.ids[ex], cfg)
+        others = np.array([i for i in range(len(st)) if i != ex])
+        d = np.where(np.isfinite(m.distance[others]), m.distance[others], np.finfo(float).max)
+        y = labels[others] == cls
+        k = min(10, int(y.sum()))
+        top = others[np.argsort(d, kind="stable")[:k]]
+        p_at = float(np.mean(labels[top] == cls))
+        ap = float(average_precision_score(y, -d))
+        typer.echo(f"find: one example of {cls!r} (never mined) among {len(st)} new scans: "
+                   f"precision at {k} {p_at:.2f}, average precision {ap:.3f}")
+
+
 def demo(
     out: Annotated[Path, typer.Option("--out", "-o", help="Working folder for scenes, store, library, labels and report.")] = Path("demo_out"),
     captures: Annotated[int, typer.Option("--captures", min=2, help="Multi-view mining captures.")] = 12,
@@ -110,6 +165,29 @@ def demo(
     typer.echo(f"      pose-unaware baseline (scikit-learn KMeans on flattened volumes, same K): "
                f"purity {base['purity']:.3f}, NMI {base['nmi']:.3f}")
     typer.echo(f"      gallery {out / 'gallery.png'}; assignments {out / 'assignments.csv'}")
+
+    # name each cluster from one example, as a user would after a glance at the gallery
+    from .curate.names import name_cluster
+    rng = np.random.default_rng(seed)
+    right = 0
+    for k in range(lib.n_clusters):
+        members = [o for o, c in zip(lib.members["object"], lib.members["cluster"]) if c == k]
+        if not members:
+            continue
+        example = str(members[rng.integers(len(members))])
+        name = truth[example]["label"] if example in truth else f"item-{k}"
+        lib = name_cluster(library, name=name, object_id=example)
+        right += sum(truth.get(o, {}).get("label") == name for o in members)
+    typer.echo(f"tag: each cluster named from one random member; the names are right for {right}/{len(lib.members['object'])} "
+               f"mined objects ({right / max(len(lib.members['object']), 1):.3f})")
+
+    singles = [scenes / c for c in scen["single"]]
+    if singles:
+        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, quiet)
+
+    from .curate.export import export_labels
+    exp = export_labels(lib, open_store(store), mining, out / "export", cfg, seed=seed)
+    typer.echo(f"export: {_export_line(exp)} -> {out / 'export'}")
 
     # audit against a held-out subset of the truth, as a user with a few dozen hand labels would
     from .audit.run import run_audit, summary_line
