@@ -1,7 +1,8 @@
 """Objects in a capture: the support plane, then one proposal per physical object.
 
 With masks: each mask id is one object across all frames.  Without masks: class-agnostic proposals
-from geometry alone: points above the plane (by ``above_plane_m``), fused across frames in the world
+from geometry alone: points above the plane (by ``above_plane_m``, or 3x the plane's residual on noisy
+sensors), fused across frames in the world
 frame (static objects stay put there), voxel down-sampled, grouped by DBSCAN (scikit-learn), filtered
 by size; each object then gets its per-frame pixels by projecting back (a pixel belongs to the object
 whose fused points are nearest to its own 3-D point, within the DBSCAN radius).
@@ -27,6 +28,7 @@ from .volume import ObjectFrame, View
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
 DBSCAN_MIN_SAMPLES = 5
+NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
 FOOTPRINT_OVERLAP = 0.5     # groups with footprint centres closer than this x (r_i + r_j) are one object
 
 
@@ -104,6 +106,12 @@ def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.
     return plane
 
 
+def above_plane_margin(plane: PlaneFit, cfg: dict) -> float:
+    """Height above the plane from which a point counts as object: the configured margin, raised on noisy
+    sensors to NOISE_MARGIN x the plane's fit residual so the table's own noise never forms objects."""
+    return max(cfg["ingest"]["above_plane_m"], NOISE_MARGIN * plane.residual_m)
+
+
 def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
     """Smallest circle (centre (2,), radius) containing points (N, 2); Welzl's algorithm on the hull."""
     pts = np.asarray(xy, dtype=np.float64)
@@ -166,7 +174,7 @@ def object_frame(points: np.ndarray, plane: PlaneFit) -> tuple[ObjectFrame, np.n
 
 
 def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
-    above = 0.5 * cfg["ingest"]["above_plane_m"]
+    above = 0.5 * above_plane_margin(plane, cfg)
     per_id: dict[int, dict[str, np.ndarray]] = {}
     pts_id: dict[int, list[np.ndarray]] = {}
     for fd in frames:
@@ -194,7 +202,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     above_sel = []
     for fd in frames:
         h = plane.height(fd.points)
-        above_sel.append((h > c["above_plane_m"]) & (h < 2.0))
+        above_sel.append((h > above_plane_margin(plane, cfg)) & (h < 2.0))
     pts = np.concatenate([fd.points[s] for fd, s in zip(frames, above_sel)])
     if len(pts) == 0:
         return []
