@@ -79,7 +79,18 @@ class CaptureRecord:
 
 
 class ObjectStore:
-    """Read access to a store.  Tables are loaded once; volumes are read in slices."""
+    """Read access to a store.  Tables are loaded once; volumes are read in slices.
+
+    ``ObjectStore(path)`` on a sharded store's index returns a
+    :class:`protomine.scale.shards.ShardedObjectStore`, which reads the shards as one store.
+    """
+
+    def __new__(cls, path: str | Path):
+        if cls is ObjectStore:
+            from ..scale.shards import ShardedObjectStore, is_index
+            if is_index(path):
+                return super().__new__(ShardedObjectStore)
+        return super().__new__(cls)
 
     def __init__(self, path: str | Path):
         self.path = Path(path)
@@ -207,6 +218,9 @@ def write_store(path: str | Path, objects: list[ObjectRecord], captures: list[Ca
     path = Path(path)
     with exclusive_lock(path, timeout=30.0):
         old = ObjectStore(path) if path.exists() else None
+        if old is not None and type(old) is not ObjectStore:
+            raise InputError(path, "format", "this is a sharded store index; update it with "
+                             "protomine.ingest.sharded.ingest_sharded (the ingest command does)")
         if old is not None and old.grid_shape != grid.shape:
             raise InputError(path, "grid", f"store was built with grid {old.grid_shape}, this run uses {grid.shape}; "
                              "use the same [volume] config or a new store")

@@ -1,0 +1,1 @@
+"""Scale-out: executors (this process, a local process pool, a Dask cluster) and the sharded object store."""

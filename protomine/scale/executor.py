@@ -1,0 +1,165 @@
+"""Executors: where ingest and mining run their map steps — this process, a local process pool, or Dask.
+
+Contract (every executor)
+-------------------------
+``executor.map(fn, items, *, shared=None) -> list`` returns ``[fn(shared, item) for item in items]`` in the
+order of ``items``, whatever order the workers finish in; callers reduce the results in that fixed order,
+so a result never depends on scheduling.  ``fn`` is a module-level function (pickled by reference).
+``shared`` (prototypes, settings) is sent once per worker, not once per item (Dask: scattered with
+``broadcast=True``).  Item i prefers worker ``i mod n_workers`` (Dask ``workers=`` with
+``allow_other_workers=True``), so a worker sees the same chunks on every pass and its per-chunk caches hit.
+A worker's :class:`protomine.errors.InputError` is re-raised as such on the caller's side.
+
+Executors
+---------
+- :class:`InlineExecutor`: this process, items in order (the default; no start-up cost).
+- :class:`PoolExecutor`: ``workers`` processes of this machine (``concurrent.futures``, spawn start method,
+  because forking a process whose torch thread pool is running can deadlock).
+- :class:`DaskExecutor`: a ``dask.distributed`` cluster, by scheduler address or an existing ``Client``.
+
+``make_executor(cfg, scheduler=None, workers=None)`` picks one from the ``[scale]`` config and the
+``--scheduler`` / ``--workers`` flags (flags win).
+"""
+from __future__ import annotations
+
+import concurrent.futures as cf
+import multiprocessing
+from dataclasses import dataclass
+from typing import Any, Callable, Sequence
+
+from ..errors import InputError
+
+
+@dataclass
+class _Failed:
+    """An InputError raised on a worker, carried back as data (its constructor does not pickle)."""
+
+    path: str | None
+    field: str | None
+    message: str
+
+
+def _call(fn: Callable, shared: Any, item: Any) -> Any:
+    try:
+        return fn(shared, item)
+    except InputError as e:
+        return _Failed(e.path, e.field, e.message)
+
+
+def _unwrap(results: list) -> list:
+    for r in results:
+        if isinstance(r, _Failed):
+            raise InputError(r.path, r.field, r.message)
+    return results
+
+
+class InlineExecutor:
+    """Runs every item in this process, in order."""
+
+    kind = "inline"
+    n_workers = 1
+
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None) -> list:
+        return _unwrap([_call(fn, shared, it) for it in items])
+
+    def close(self) -> None:
+        pass
+
+    def describe(self) -> str:
+        return "this process"
+
+
+class PoolExecutor:
+    """``workers`` processes on this machine."""
+
+    kind = "pool"
+
+    def __init__(self, workers: int):
+        if workers < 1:
+            raise ValueError(f"workers must be >= 1, got {workers}")
+        self.n_workers = workers
+        self._pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
+
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None) -> list:
+        futs = [self._pool.submit(_call, fn, shared, it) for it in items]
+        return _unwrap([f.result() for f in futs])  # submission order, not completion order
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=True, cancel_futures=True)
+
+    def describe(self) -> str:
+        return f"a pool of {self.n_workers} processes"
+
+
+class DaskExecutor:
+    """A ``dask.distributed`` cluster: ``DaskExecutor(address="tcp://host:8786")`` or ``DaskExecutor(client=c)``.
+
+    ``min_workers``: wait (up to ``timeout`` s) until that many workers have joined.  Only a client is
+    created here (it connects, it binds nothing); an executor built from an address closes its client.
+    """
+
+    kind = "dask"
+
+    def __init__(self, address: str | None = None, *, client=None, min_workers: int = 1, timeout: float = 60.0):
+        from distributed import Client
+        if (address is None) == (client is None):
+            raise ValueError("give exactly one of address and client")
+        self._own = client is None
+        if client is None:
+            try:
+                client = Client(address, timeout=timeout, set_as_default=False)
+            except (OSError, TimeoutError, ValueError) as e:
+                raise InputError(None, "--scheduler", f"cannot reach a Dask scheduler at {address!r} ({e})") from None
+        self.client = client
+        try:
+            client.wait_for_workers(min_workers, timeout=timeout)
+        except (OSError, TimeoutError) as e:
+            self.close()
+            raise InputError(None, "--workers", f"fewer than {min_workers} workers joined the scheduler at "
+                             f"{client.scheduler.address} within {timeout:.0f} s ({e})") from None
+
+    @property
+    def workers(self) -> list[str]:
+        return sorted(self.client.scheduler_info(n_workers=-1)["workers"])
+
+    @property
+    def n_workers(self) -> int:
+        return len(self.workers)
+
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None) -> list:
+        workers = self.workers
+        shared_f = self.client.scatter([shared], broadcast=True, hash=False)[0]
+        futs = [self.client.submit(_call, fn, shared_f, it, workers=[workers[i % len(workers)]],
+                                   allow_other_workers=True, pure=False) for i, it in enumerate(items)]
+        try:
+            return _unwrap(self.client.gather(futs))  # gathered in submission order
+        finally:
+            del futs, shared_f
+
+    def close(self) -> None:
+        if self._own:
+            self.client.close()
+
+    def describe(self) -> str:
+        return f"the Dask cluster at {self.client.scheduler.address} ({self.n_workers} workers)"
+
+
+Executor = InlineExecutor | PoolExecutor | DaskExecutor
+
+
+def make_executor(cfg: dict, scheduler: str | None = None, workers: int | None = None) -> Executor:
+    """The executor named by ``[scale]`` scheduler/workers, overridden by the CLI flags when given.
+
+    No scheduler and one worker: :class:`InlineExecutor`; no scheduler and N > 1 workers:
+    :class:`PoolExecutor`; a scheduler: :class:`DaskExecutor` that waits for ``workers`` to join.
+    """
+    s = cfg.get("scale", {})
+    scheduler = scheduler if scheduler is not None else s.get("scheduler", "")
+    workers = workers if workers is not None else int(s.get("workers", 1))
+    if workers < 1:
+        raise InputError(None, "--workers", f"expected a positive number of workers, got {workers}")
+    if scheduler:
+        if "://" not in scheduler and ":" not in scheduler:
+            raise InputError(None, "--scheduler", f"expected a scheduler address such as tcp://10.0.0.5:8786, got {scheduler!r}")
+        return DaskExecutor(scheduler, min_workers=workers)
+    return PoolExecutor(workers) if workers > 1 else InlineExecutor()
