@@ -64,6 +64,19 @@ def sidecar_path(path: str | Path) -> Path:
     return path.with_name(path.name + SIDECAR_SUFFIX)
 
 
+PROVENANCE_KEYS = ("producer", "code_version", "python", "command", "seed", "config", "inputs")
+
+
+def provenance_of(attrs: dict) -> dict:
+    """The provenance record inside an HDF5 file's attributes (e.g. a library's), for files derived from it."""
+    out = {}
+    for k in PROVENANCE_KEYS:
+        if k in attrs:
+            v = attrs[k]
+            out[k] = v.decode() if isinstance(v, bytes) else v.item() if hasattr(v, "item") else v
+    return out
+
+
 def write_sidecar(path: str | Path, prov: dict) -> Path:
     """Record ``prov`` for the (already written) non-HDF5 output ``path`` in ``<path>.provenance.json``."""
     doc = dict(prov)

@@ -106,7 +106,6 @@ def test_every_output_of_ingest_mine_audit_has_provenance(tmp_path, tiny_world):
     assert res.exit_code == 2 and "assignments.csv.provenance.json" in res.stderr and "changed" in res.stderr
 
 
-@pytest.mark.xfail(reason="owner: label/curate", strict=False)
 def test_export_outputs_have_provenance(tmp_path, tiny_world):
     out = tmp_path / "exp"
     res = CliRunner().invoke(app, ["export", str(tiny_world["library"]), str(tiny_world["store"]), "--captures",
@@ -117,7 +116,6 @@ def test_export_outputs_have_provenance(tmp_path, tiny_world):
             assert read_provenance(p)["producer"] == "protomine"
 
 
-@pytest.mark.xfail(reason="owner: label/curate", strict=False)
 def test_find_matches_csv_has_provenance(tmp_path, tiny_world):
     lib = tmp_path / "library.h5"
     shutil.copy2(tiny_world["library"], lib)

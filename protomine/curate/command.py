@@ -47,6 +47,7 @@ def find(
     from ..ingest.store import open_store
     from ..mine.library import read_library
     from .names import check_name
+    from ..provenance import file_fingerprint, provenance, write_sidecar
     from .oneshot import add_oneshot, find_similar, write_matches
     cfg = config_from(config)
     say = Progress("find", quiet)
@@ -60,6 +61,8 @@ def find(
     say(f"one-shot prototype from {example}: calibration from {p.calibration} (mu {p.mu:.3f}, sigma {p.sigma:.3f}), "
         f"symmetry {p.symmetry}")
     write_matches(out, mt, top)
+    write_sidecar(out, provenance(cfg, seed, {"library": file_fingerprint(library), "store": st.fingerprint(),
+                                              "example": example}, command="find"))
     n_hi = int(np.sum(mt.score >= cfg["label"]["unknown_score"]))
     typer.echo(f"{len(mt.object)} objects ranked; {n_hi} score >= {cfg['label']['unknown_score']}; wrote {out}")
     if add is not None:

@@ -35,6 +35,7 @@ from typing import Callable
 import numpy as np
 
 from ..atomic import write_text
+from ..provenance import file_fingerprint, provenance, write_sidecar
 from ..capture import read_capture
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng
@@ -191,4 +192,8 @@ def _export(lib: Library, store: ObjectStore, captures: list[Path], out: Path, c
                "objects_without_pixels": no_mask, "classes": classes}
     write_text(out / "summary.json", json.dumps(summary, indent=1))
     write_text(out / "README.txt", NOTE + "\n")
+    prov = provenance(cfg, seed, {"library": file_fingerprint(lib.path) if lib.path else "", "store": store.fingerprint(),
+                                  "captures": [c.name for c in captures]}, command="export")
+    for name in ("labels.jsonl", "instances.json", "classes.csv", "summary.json", "README.txt"):
+        write_sidecar(out / name, prov)
     return summary

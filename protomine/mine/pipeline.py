@@ -27,7 +27,7 @@ from ..atomic import pause_point, write_text
 from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
-from ..provenance import provenance, write_sidecar
+from ..provenance import provenance, provenance_of, write_sidecar
 from .library import Library, lognormal_fit, match_score, write_library
 from .posesearch import pose_distances, shift_volume
 
@@ -45,15 +45,19 @@ def reduce_yaw(yaw: np.ndarray, period: np.ndarray) -> np.ndarray:
 
 
 def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
-               progress: Callable[[str], None] | None = None):
+               progress: Callable[[str], None] | None = None, executor=None):
+    """Fit the clustering; ``executor`` (``protomine.scale.executor``) runs its passes as a map-reduce."""
     from .engine import PoseKMeans
     m = cfg["mine"]
-    src = store.source(cfg)
+    src = store.source(cfg) if executor is None else _executor_source(store, cfg, executor)
     k = n_clusters or m["clusters"] or None
     if k is not None and k > len(store):
         raise InputError(store.path, "objects", f"--clusters={k} must be <= the number of objects in the store ({len(store)})")
     common = dict(scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
                   chunk_size=m["chunk_size"], random_state=seed)
+    if cfg.get("scale", {}).get("batch_size", 0):
+        from .minibatch import fit_minibatch
+        return fit_minibatch(src, cfg, seed, k, max_k=min(m["max_clusters"], len(store) - 1), progress=progress)
     if k is None:
         from .choosek import fit_auto
         if progress:
@@ -65,22 +69,41 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
     return model, None
 
 
-def aligned_mean_volumes(store: ObjectStore, labels: np.ndarray, yaw_deg: np.ndarray, K: int, chunk: int = 512) -> np.ndarray:
-    """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame."""
-    R, A, H = store.grid_shape
-    acc = np.zeros((K, 6, R, A, H))
-    wsum = np.zeros((K, 1, R, A, H))
-    for i0 in range(0, len(store), chunk):
-        vols = store.read_volumes(i0, min(len(store), i0 + chunk)).astype(np.float64)
-        for j, v in enumerate(vols):
-            k = labels[i0 + j]
-            back = shift_volume(v, -yaw_deg[i0 + j] / (360.0 / A), axis=2)
-            w = np.clip(back[2:3], 0, None)
-            acc[k] += back * w
-            wsum[k] += w
+def _executor_source(store: ObjectStore, cfg: dict, executor):
+    from .distributed import ExecutorSource, StoreSpec
+    return ExecutorSource(StoreSpec.of(store, cfg), executor)
+
+
+def aligned_volume_sums(vols: np.ndarray, labels: np.ndarray, yaw_deg: np.ndarray, K: int,
+                        acc: np.ndarray | None = None, wsum: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Add store volumes (n, 6, R, A, H) rolled into their prototype's frame into ``acc`` (K, 6, R, A, H) and
+    their observation weights into ``wsum`` (K, 1, R, A, H) (float64; new zero arrays when None)."""
+    _, Cv, R, A, H = vols.shape
+    acc = np.zeros((K, Cv, R, A, H)) if acc is None else acc
+    wsum = np.zeros((K, 1, R, A, H)) if wsum is None else wsum
+    for j, v in enumerate(vols.astype(np.float64)):
+        k = labels[j]
+        back = shift_volume(v, -yaw_deg[j] / (360.0 / A), axis=2)
+        w = np.clip(back[2:3], 0, None)
+        acc[k] += back * w
+        wsum[k] += w
+    return acc, wsum
+
+
+def mean_from_volume_sums(acc: np.ndarray, wsum: np.ndarray, labels: np.ndarray, K: int) -> np.ndarray:
+    """(K, 6, R, A, H) weighted means from :func:`aligned_volume_sums`; channel 2 = mean observation."""
     out = acc / np.maximum(wsum, 1e-9)
     out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels, minlength=K)[:, None, None, None], 1)
     return out.astype(np.float32)
+
+
+def aligned_mean_volumes(store: ObjectStore, labels: np.ndarray, yaw_deg: np.ndarray, K: int, chunk: int = 512) -> np.ndarray:
+    """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame."""
+    acc = wsum = None
+    for i0 in range(0, len(store), chunk):
+        i1 = min(len(store), i0 + chunk)
+        acc, wsum = aligned_volume_sums(store.read_volumes(i0, i1), labels[i0:i1], yaw_deg[i0:i1], K, acc, wsum)
+    return mean_from_volume_sums(acc, wsum, labels, K)
 
 
 def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
@@ -141,15 +164,19 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
                n_clusters: int | None = None, out_dir: str | Path | None = None,
-               progress: Callable[[str], None] | None = None) -> tuple[Library, dict]:
-    """Mine the store and write the library, assignments.csv and gallery.png (beside the library)."""
+               progress: Callable[[str], None] | None = None, executor=None) -> tuple[Library, dict]:
+    """Mine the store and write the library, assignments.csv and gallery.png (beside the library).
+
+    ``executor`` (``protomine.scale.executor``; None = this process, as before) runs the clustering passes,
+    the final match and the picture volumes as map-reduces over chunks of objects.
+    """
     from .gallery import render_gallery
     store = ObjectStore(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
     if progress:
         progress(f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
-    model, k_table = fit_engine(store, cfg, seed, n_clusters, progress)
+    model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
     period = period_of(model.symmetry_)
@@ -157,9 +184,16 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     if progress:
         progress(f"{K} prototypes after {model.n_iter_} iterations; aligning members and calibrating scores")
     scales = tuple(cfg["mine"]["scales"])
-    vols = aligned_mean_volumes(store, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
+    if executor is None:
+        vols = aligned_mean_volumes(store, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
+    else:
+        from .distributed import aligned_mean_volumes as dist_mean_volumes, match_all
+        vols = dist_mean_volumes(store, executor, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
     # full match table once more: second-best cluster for every member
-    pm = model.match(store.source(cfg)) if hasattr(model, "match") else None
+    if executor is None:
+        pm = model.match(store.source(cfg)) if hasattr(model, "match") else None
+    else:
+        pm = match_all(model, _executor_source(store, cfg, executor))
     dist = np.asarray(model.distance_, dtype=np.float64)
     if pm is not None:
         D = np.array(pm.D, dtype=np.float64)
@@ -210,14 +244,14 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     out = Path(out_dir) if out_dir else Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
     render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"])
-    for name in ("assignments.csv", "gallery.png"):
-        write_sidecar(out / name, prov)
+    write_sidecar(out / "gallery.png", prov)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
                  "k_selection": k_table}
 
 
 def write_assignments(path: str | Path, lib: Library) -> None:
-    """assignments.csv: object,cluster,yaw_deg,scale,distance,score (one row per object)."""
+    """assignments.csv: object,cluster,yaw_deg,scale,distance,score (one row per object), with its
+    provenance sidecar (the library's record)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["object", "cluster", "yaw_deg", "scale", "distance", "score"])
@@ -227,3 +261,4 @@ def write_assignments(path: str | Path, lib: Library) -> None:
         w.writerow([m["object"][i], k, f"{m['yaw_deg'][i]:.2f}", f"{m['scale'][i]:.4f}",
                     f"{m['distance'][i]:.6g}", f"{m['score'][i]:.4f}"])
     write_text(path, buf.getvalue())
+    write_sidecar(path, provenance_of(lib.attrs))
