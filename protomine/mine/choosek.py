@@ -9,12 +9,16 @@ On a random subsample of at most ``sample_size`` objects:
 1. the pose-minimised distance matrix between the subsampled objects, ``D[i, j]`` = best-pose distance
    of object i to object j taken as a prototype (``pose_distances``), symmetrised as
    ``(D + D.T) / 2`` with a zero diagonal (pairs with no common observed cell get the largest finite
-   distance);
-2. for every K in ``min_k..max_k`` a :class:`PoseKMeans` fit on the subsample, scored by the mean
-   silhouette (Rousseeuw 1987) of its labels on that matrix (``sklearn.metrics.silhouette_score`` with
-   ``metric="precomputed"``);
+   distance).  It is computed once and serves every candidate K;
+2. for every K in ``min_k..max_k`` a k-medoids partition of that matrix: average-linkage agglomerative
+   clustering (``sklearn.cluster.AgglomerativeClustering``, precomputed distances) cut at K clusters,
+   refined by alternating "assign each object to its nearest medoid" and "each cluster's medoid = the
+   member with the smallest summed distance to the others" (Park & Jun 2009's alternating k-medoids),
+   scored by the mean silhouette (Rousseeuw 1987) of its labels on the matrix
+   (``sklearn.metrics.silhouette_score`` with ``metric="precomputed"``).  A k-medoids fit needs only
+   the matrix, so the scan costs milliseconds per K instead of a pose-aware fit per K;
 3. K = the argmax of the silhouette (the smallest K on ties).  K = 1 is never proposed (the silhouette
-   is undefined for one cluster).
+   is undefined for one cluster).  ``fit_auto`` then runs one full :class:`PoseKMeans` fit at that K.
 
 Merging (``merge_close_prototypes`` / ``fit_auto``)
 ---------------------------------------------------
@@ -26,8 +30,8 @@ until no pair qualifies.
 
 Public API
 ----------
-- ``choose_k(source, *, max_k, scales=(1.0,), random_state=None, min_k=2, sample_size=600, n_init=2,
-  max_iter=20, chunk_size=2048) -> (k, table)``; table: list of dicts {k, silhouette, inertia}.
+- ``choose_k(source, *, max_k, scales=(1.0,), random_state=None, min_k=2, sample_size=600,
+  chunk_size=2048) -> (k, table)``; table: list of dicts {k, silhouette, medoid_cost}.
 - ``merge_close_prototypes(model, source, *, merge_threshold=0.5) -> (model, merges)``
 - ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, **engine_kwargs)
   -> (model, info)``; info: {"k_chosen", "table", "merges", "k_final"}.
@@ -37,9 +41,10 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
+from sklearn.cluster import AgglomerativeClustering
 from sklearn.metrics import silhouette_score
 
-from .engine import ArraySource, PoseKMeans, Source, _gather
+from .engine import PoseKMeans, Source, _gather
 from .posesearch import _check_scales, pose_distances
 
 
@@ -54,9 +59,9 @@ def _symmetric(D: np.ndarray) -> np.ndarray:
 
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
-             min_k: int = 2, sample_size: int = 600, n_init: int = 2, max_iter: int = 20,
-             chunk_size: int = 2048) -> tuple[int, list[dict]]:
-    """Number of prototypes by mean silhouette on pose-minimised distances (module docstring)."""
+             min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048) -> tuple[int, list[dict]]:
+    """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
+    (module docstring)."""
     scales = _check_scales(scales)
     N = len(source)
     if min_k < 2 or max_k < min_k:
@@ -65,22 +70,37 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
         raise ValueError(f"n_objects={N} must be > min_k={min_k} to compare clusterings")
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
-                     n_init=n_init, max_iter=max_iter, chunk_size=chunk_size)
+                     chunk_size=chunk_size)
 
 
-def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, n_init, max_iter, chunk_size):
+def _kmedoids(S: np.ndarray, labels: np.ndarray, max_iter: int = 30) -> tuple[np.ndarray, float]:
+    """Alternating k-medoids on a (n, n) distance matrix from initial labels (n,): (labels, cost)."""
+    K = int(labels.max()) + 1
+    medoids = np.empty(K, np.int64)
+    for _ in range(max_iter):
+        for k in range(K):
+            members = np.flatnonzero(labels == k)
+            medoids[k] = members[np.argmin(S[np.ix_(members, members)].sum(axis=1))]
+        new = np.argmin(S[:, medoids], axis=1)
+        new[medoids] = np.arange(K)  # a medoid stays in its own cluster, so no cluster empties
+        if np.array_equal(new, labels):
+            break
+        labels = new
+    return labels, float(S[np.arange(len(S)), medoids[labels]].sum())
+
+
+def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     Xs, Ws = _gather(source, idx, chunk_size)
     S = _symmetric(pose_distances(Xs, Ws, Xs, Ws, scales=scales, chunk_size=256).D)
-    sub = ArraySource(Xs, Ws)
     table = []
     for k in range(min_k, min(max_k, len(idx) - 1) + 1):
-        model = PoseKMeans(n_clusters=k, scales=scales, n_init=n_init, max_iter=max_iter, chunk_size=chunk_size,
-                           random_state=int(rng.integers(2**31 - 1))).fit(sub)
-        n_lab = np.unique(model.labels_).size
-        score = float(silhouette_score(S, model.labels_, metric="precomputed")) if 1 < n_lab < len(idx) else -1.0
-        table.append({"k": k, "silhouette": score, "inertia": float(model.inertia_)})
+        start = AgglomerativeClustering(n_clusters=k, metric="precomputed", linkage="average").fit_predict(S)
+        labels, cost = _kmedoids(S, start)
+        n_lab = np.unique(labels).size
+        score = float(silhouette_score(S, labels, metric="precomputed")) if 1 < n_lab < len(idx) else -1.0
+        table.append({"k": k, "silhouette": score, "medoid_cost": cost})
     best = max(table, key=lambda r: (r["silhouette"], -r["k"]))
     return int(best["k"]), table
 

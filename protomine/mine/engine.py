@@ -98,10 +98,17 @@ def _gather(source: Source, idx: np.ndarray, chunk_size: int) -> tuple[np.ndarra
     return np.concatenate(xs), np.concatenate(ws)
 
 
-def yaw_invariant_descriptors(X: np.ndarray, W: np.ndarray) -> np.ndarray:
-    """(N, C * R * F * H) magnitudes of the azimuthal rfft of w * x (invariant to yaw rolls)."""
-    f = np.abs(np.fft.rfft(W[:, None] * X, axis=3))
-    return f.reshape(X.shape[0], -1).astype(np.float32)
+def yaw_invariant_descriptors(X: np.ndarray, W: np.ndarray, chunk_size: int = 256) -> np.ndarray:
+    """(N, C * R * F * H) magnitudes of the azimuthal rfft of w * x (invariant to yaw rolls), float32.
+
+    Computed in chunks in single precision so that the transform's temporaries stay small.
+    """
+    N, C, R, A, H = X.shape
+    out = np.empty((N, C, R, A // 2 + 1, H), np.float32)
+    for i0, i1 in _chunks(N, chunk_size):
+        wx = torch.from_numpy(np.ascontiguousarray(W[i0:i1, None] * X[i0:i1], dtype=np.float32))
+        out[i0:i1] = torch.fft.rfft(wx, dim=3).abs().numpy()
+    return out.reshape(N, -1)
 
 
 def reduced_descriptors(X: np.ndarray, W: np.ndarray, *, n_components: int = 32,
@@ -117,7 +124,7 @@ def reduced_descriptors(X: np.ndarray, W: np.ndarray, *, n_components: int = 32,
 
 
 def _descriptor_seeds(sub: "ArraySource", desc: np.ndarray, K: int, scales: tuple[float, ...], chunk_size: int,
-                      seed: int) -> tuple[np.ndarray, np.ndarray]:
+                      seed: int, cache: "_SpectraCache | None" = None) -> tuple[np.ndarray, np.ndarray]:
     """Initial prototypes (K, C, R, A, H), (K, R, A, H) from k-means on yaw-invariant descriptors.
 
     k-means (k-means++ seeding, ``sklearn.cluster.KMeans``) on the descriptors ``desc`` (n, d) of the
@@ -131,7 +138,8 @@ def _descriptor_seeds(sub: "ArraySource", desc: np.ndarray, K: int, scales: tupl
     d2 = ((desc - km.cluster_centers_[lab]) ** 2).sum(axis=1)
     refs = np.array([np.flatnonzero(lab == k)[np.argmin(d2[lab == k])] for k in range(K)])
     P_ref, V_ref = sub.X[refs].copy(), sub.W[refs].copy()
-    *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, K, forced=lab)
+    *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, K, forced=lab,
+                                                 cache=cache)
     return _update(num, den, count, worst, P_ref, V_ref)
 
 
@@ -199,7 +207,8 @@ class _AlignedSums:
 
     def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray) -> None:
         F = self.A // 2 + 1
-        c = torch.complex(spec[:F], spec[F:]) * _align_phase(yaw_deg, self.A)[:, :, None]
+        c = torch.complex(spec[:F], spec[F:])
+        c.mul_(_align_phase(yaw_deg, self.A)[:, :, None])
         self.acc.index_add_(1, torch.from_numpy(group.astype(np.int64)), c)
 
     def result(self, scales: tuple[float, ...], shape: tuple[int, int, int]) -> np.ndarray:
@@ -219,6 +228,29 @@ class _AlignedSums:
         return out
 
 
+class _SpectraCache:
+    """Object spectra (``posesearch`` layout, (2F, n, (C + 2) R H) float32) kept across passes per chunk.
+
+    The spectra depend on the objects only, not on the prototypes, so a pass that finds them here skips
+    reading and transforming its chunk.  Chunks are kept in order until ``budget_bytes`` is used up;
+    later chunks are recomputed every pass (streaming), so memory stays bounded for any N.
+    """
+
+    def __init__(self, budget_bytes: int):
+        self.budget = budget_bytes
+        self.used = 0
+        self.store: dict[int, torch.Tensor] = {}
+
+    def get(self, i0: int) -> torch.Tensor | None:
+        return self.store.get(i0)
+
+    def put(self, i0: int, o: torch.Tensor) -> None:
+        size = o.numel() * o.element_size()
+        if self.used + size <= self.budget:
+            self.store[i0] = o
+            self.used += size
+
+
 def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
     """Spectra (2F, n, (C + 1) R H) of [w x_1^2 .. w x_C^2, w^2] for the symmetry test's moments."""
     xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
@@ -228,13 +260,15 @@ def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Te
 
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
-                 accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None):
+                 accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
+                 cache: _SpectraCache | None = None):
     """One pass over the source: assignment against (P, V) and, optionally, the aligned sums.
 
     Returns labels, yaw, scale, dist (N,), and when accumulating num (K, C, R, A, H), den (K, R, A, H),
     count (K,), plus the ``n_worst`` worst-fitting objects (x, w) for re-seeding empty clusters (only
     read when a cluster is empty), and with ``moments`` the symmetry test's (s0, s1, s2, sw2).
     ``forced`` (N,) fixes the labels (seeding): poses are then those against the forced prototype.
+    ``cache`` keeps object spectra between passes (same source and chunk_size only).
     """
     N = len(source)
     K, C, R, A, H = P.shape
@@ -248,10 +282,15 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
     scale_index = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
     for i0, i1 in _chunks(N, chunk_size):
-        x, w = source.read(i0, i1)
-        x = np.asarray(x, np.float32)
-        w = np.asarray(w, np.float32)
-        o = bank.spectra(x, w)
+        o = cache.get(i0) if cache is not None else None
+        if o is None or moments:
+            x, w = source.read(i0, i1)
+            x = np.asarray(x, np.float32)
+            w = np.asarray(w, np.float32)
+        if o is None:
+            o = bank.spectra(x, w)
+            if cache is not None:
+                cache.put(i0, o)
         m = bank.match_spectra(o)
         lab = np.argmin(m.D, axis=1) if forced is None else forced[i0:i1]
         r = np.arange(i1 - i0)
@@ -264,8 +303,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             continue
         ok = np.flatnonzero(np.isfinite(d))
         group = lab[ok] * S + np.array([scale_index[float(s)] for s in scale[i0:i1][ok]], np.int64)
-        sel = torch.from_numpy(ok)
-        sums.add(o[:, sel], yaw[i0:i1][ok], group)
+        # all members usually match; indexing would copy the chunk's spectra
+        sums.add(o if ok.size == i1 - i0 else o[:, torch.from_numpy(ok)], yaw[i0:i1][ok], group)
         if moments:
             msums.add(_moment_spectra(x[ok], w[ok], bank.dft), yaw[i0:i1][ok], group)
     if not accumulate:
@@ -303,12 +342,13 @@ def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: n
 
 
 def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: int, tol: float,
-           chunk_size: int, moments: bool = False) -> _Result:
+           chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None) -> _Result:
     K = P.shape[0]
     prev_labels, prev_cost = None, np.inf
     n_iter = 0
     for n_iter in range(1, max_iter + 1):
-        labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K)
+        labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
+                                                                           cache=cache)
         cost = float(dist[np.isfinite(dist)].sum())
         stable = prev_labels is not None and np.array_equal(labels, prev_labels)
         small = np.isfinite(prev_cost) and abs(prev_cost - cost) <= tol * max(abs(cost), 1e-12)
@@ -318,7 +358,8 @@ def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: in
         if small and count.min() > 0:
             break
         prev_labels, prev_cost = labels, cost
-    labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments)
+    labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments,
+                                                 cache=cache)
     cost = float(dist[np.isfinite(dist)].sum())
     return _Result(P, V, labels, yaw, scale, dist, cost, n_iter, rest[-1] if moments else None)
 
@@ -338,12 +379,14 @@ class PoseKMeans:
     symmetry_factor : how far a rotation may exceed the members' scatter and still count as a symmetry
         (``factor`` of :func:`protomine.mine.symmetry.detect_symmetry`).
     init : optional (P (K, C, R, A, H), V (K, R, A, H)) starting prototypes (skips seeding and restarts).
+    cache_mb : memory budget for object spectra kept between passes (about 0.1 MB per object on an
+        8 x 36 x 12 grid with 5 channels); objects beyond it are re-read and re-transformed every pass.
     """
 
     def __init__(self, *, n_clusters: int, scales: Sequence[float] = (1.0,), n_init: int = 4, max_iter: int = 30,
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR,
-                 init: tuple[np.ndarray, np.ndarray] | None = None):
+                 init: tuple[np.ndarray, np.ndarray] | None = None, cache_mb: float = 384.0):
         self.n_clusters = n_clusters
         self.scales = scales
         self.n_init = n_init
@@ -354,10 +397,13 @@ class PoseKMeans:
         self.sample_size = sample_size
         self.symmetry_factor = symmetry_factor
         self.init = init
+        self.cache_mb = cache_mb
 
     # --- validation ------------------------------------------------------------------------
 
     def _validate(self, source: Source) -> tuple[float, ...]:
+        if not self.cache_mb >= 0:
+            raise ValueError(f"cache_mb must be >= 0, got {self.cache_mb!r}")
         for name in ("n_clusters", "n_init", "max_iter", "chunk_size", "sample_size"):
             v = getattr(self, name)
             if not isinstance(v, (int, np.integer)) or v < 1:
@@ -382,7 +428,7 @@ class PoseKMeans:
             if P0.shape[0] != K or V0.shape[0] != K:
                 raise ValueError(f"init must hold n_clusters={K} prototypes, got {P0.shape[0]}")
             best = _lloyd(source, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True)
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache())
         else:
             best = self._fit_restarts(source, scales, rng)
         self._finish(best, source, scales)
@@ -395,17 +441,25 @@ class PoseKMeans:
         desc = reduced_descriptors(Xs, Ws, random_state=int(rng.integers(2**31 - 1)))
         sub = ArraySource(Xs, Ws)
         fit_on = source if N <= self.sample_size else sub
+        # the subsample's spectra serve every restart (and the seeding passes); when the subsample is
+        # the whole source, the same spectra serve the whole fit
+        cache = self._new_cache()
         best = None
         for _ in range(self.n_init):
-            P0, V0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)))
+            P0, V0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)),
+                                       cache)
             res = _lloyd(fit_on, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                         chunk_size=self.chunk_size, moments=fit_on is source)
+                         chunk_size=self.chunk_size, moments=fit_on is source, cache=cache)
             if best is None or res.cost < best.cost:
                 best = res
         if fit_on is not source:
+            del cache, sub, Xs, Ws  # free the subsample's memory before the full fit
             best = _lloyd(source, best.P, best.V, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True)
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache())
         return best
+
+    def _new_cache(self) -> _SpectraCache:
+        return _SpectraCache(int(self.cache_mb * 2**20))
 
     def _finish(self, res: _Result, source: Source, scales: tuple[float, ...]) -> None:
         A = res.P.shape[3]

@@ -212,23 +212,27 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     """Object factors in the frequency domain: x (n, C, R, A, H), w (n, R, A, H) -> (2F, n, (C + 2) R H).
 
     Rows [:F] are real parts, [F:] imaginary parts of the azimuthal rfft of [w |x|^2, w, w x_1..w x_C].
-    The DFT is a matrix product (faster than ``rfft`` along a middle axis, and lands in the layout the
-    batched products need).
+    The DFT is one matrix product (2F, A) @ (A, n (C + 2) R H) on factors written azimuth-first, which
+    lands in the layout the batched products need without a permuted copy of the result.
     """
-    n = x.shape[0]
-    wx = w[:, None] * x
-    q = (wx * x).sum(1)
-    stack = torch.cat([q[:, None], w[:, None], wx], dim=1)  # (n, C + 2, R, A, H)
-    return torch.tensordot(dft, stack, dims=([1], [3])).reshape(dft.shape[0], n, -1)
+    n, C, R, A, H = x.shape
+    xa = x.permute(3, 0, 1, 2, 4)  # (A, n, C, R, H) view
+    wa = w.permute(2, 0, 1, 3)[:, :, None]  # (A, n, 1, R, H) view
+    stack = torch.empty((A, n, C + 2, R, H), dtype=torch.float32)
+    torch.mul(wa, xa, out=stack[:, :, 2:])
+    torch.sum(stack[:, :, 2:] * xa, dim=2, out=stack[:, :, 0])
+    stack[:, :, 1] = wa[:, :, 0]
+    return torch.mm(dft, stack.view(A, -1)).view(dft.shape[0], n, -1)
 
 
 def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Prototype factors for the real-arithmetic complex product.
 
     Ps (M, C, R, A, H), Vs (M, R, A, H) -> (Br, Bi), each (F, (C + 2) R H, 4 M), such that for object
-    spectra (Or, Oi) ``Or @ Br + Oi @ Bi = [Re num | Re den | Im num | Im den]`` where num, den are the
-    per-frequency sums of object spectrum x conj(prototype spectrum) for the numerator and the
-    denominator of the distance (module docstring).  The denominator uses only the w block.
+    spectra (Or, Oi) ``Or @ Br + Oi @ Bi`` viewed as (F, n, 2 M, 2) holds [real, imaginary] pairs of
+    [num_1 .. num_M, den_1 .. den_M], the per-frequency sums of object spectrum x conj(prototype
+    spectrum) for the numerator and the denominator of the distance (module docstring); interleaved so
+    that the product is a complex tensor without a copy.  The denominator uses only the w block.
     """
     M, C, R, A, H = Ps.shape
     vmu = Vs[:, None] * Ps
@@ -239,7 +243,9 @@ def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor
     f = torch.fft.rfft(both, dim=3).permute(3, 1, 2, 4, 0).reshape(A // 2 + 1, -1, 2 * M)
     # conj(p) = pr - i pi:  (or + i oi)(pr - i pi) = (or pr + oi pi) + i (oi pr - or pi)
     pr, pi = f.real.contiguous(), f.imag.contiguous()
-    return torch.cat([pr, -pi], dim=2).contiguous(), torch.cat([pi, pr], dim=2).contiguous()
+    F, B, M2 = pr.shape
+    return (torch.stack([pr, -pi], dim=3).reshape(F, B, 2 * M2).contiguous(),
+            torch.stack([pi, pr], dim=3).reshape(F, B, 2 * M2).contiguous())
 
 
 def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
@@ -255,7 +261,7 @@ def _distances_from_spectra(o: torch.Tensor, br: torch.Tensor, bi: torch.Tensor,
     F = A // 2 + 1
     prod = torch.baddbmm(torch.bmm(o[:F], br), o[F:], bi)  # (F, n, 4M)
     M2 = prod.shape[2] // 2
-    corr = torch.fft.irfft(torch.complex(prod[..., :M2], prod[..., M2:]), n=A, dim=0)  # (A, n, 2M)
+    corr = torch.fft.irfft(torch.view_as_complex(prod.view(F, prod.shape[1], M2, 2)), n=A, dim=0)  # (A, n, 2M)
     num, den = corr[..., :M2 // 2], corr[..., M2 // 2:]
     d = num.clamp_min_(0.0).div_(den + EPS)
     d.masked_fill_(den <= min_overlap, float("inf"))
