@@ -153,6 +153,15 @@ def _bench_label(quick: bool, seed: int) -> dict:
 
 BENCH_ROWS.append(("label", _bench_label))
 
+def _bench_scale(quick: bool, seed: int) -> dict:
+    """(d) scale-out [``scale``], only with ``--scale`` (it starts a Dask LocalCluster)."""
+    from .scale.benchmark import bench_scale
+    return bench_scale(quick, seed)
+
+
+SCALE_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [("scale", _bench_scale)]
+
+
 
 def _print_section(name: str, figures: dict) -> None:
     print(f"== {name}")
@@ -166,10 +175,13 @@ def _print_section(name: str, figures: dict) -> None:
 
 def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also write the figures as JSON here.")] = None,
           quick: Annotated[bool, typer.Option("--quick", help="Small sizes: a smoke test of the benchmark.")] = False,
-          seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed of the synthetic volumes.")] = 0) -> None:
+          seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed of the synthetic volumes.")] = 0,
+          scale: Annotated[bool, typer.Option("--scale", help="Only the scale-out row: this process vs a 2-worker "
+                                              "Dask LocalCluster, and a 1M-object / 50-worker projection "
+                                              "(protomine/scale/benchmark.py).")] = False) -> None:
     """Measure pose-search and mining speed and memory on synthetic volumes (see protomine/bench.py)."""
     results = {"quick": quick, "seed": seed, "grid_CRAH": list(GRID)}
-    for name, fn in BENCH_ROWS:
+    for name, fn in (SCALE_ROWS if scale else BENCH_ROWS):
         results[name] = fn(quick, seed)
         _print_section(name, results[name])
     if json is not None:

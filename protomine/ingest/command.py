@@ -9,6 +9,7 @@ import typer
 
 from ..atomic import clean_stale_temporaries
 from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from
+from ..scale.options import SchedulerOpt, WorkersOpt, executor_for
 
 
 def ingest(
@@ -18,12 +19,25 @@ def ingest(
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    scheduler: SchedulerOpt = None,
+    workers: WorkersOpt = None,
 ) -> None:
-    """Find the objects in CAPTURES and lift each into an object-centric volume in the store."""
+    """Find the objects in CAPTURES and lift each into an object-centric volume in the store.
+
+    With --scheduler, or --workers > 1, the captures are ingested in parallel into a sharded store.
+    """
+    from ..scale.executor import InlineExecutor
+    from ..scale.shards import is_index
     from .pipeline import ingest_captures
+    from .sharded import ingest_sharded
     cfg = config_from(config)
     clean_stale_temporaries(store.parent if str(store.parent) else Path("."))
-    res = ingest_captures(captures, store, cfg, seed=seed, use_masks=not no_masks, progress=Progress("ingest", quiet))
+    with executor_for(cfg, scheduler, workers) as ex:
+        if isinstance(ex, InlineExecutor) and not is_index(store):
+            res = ingest_captures(captures, store, cfg, seed=seed, use_masks=not no_masks, progress=Progress("ingest", quiet))
+        else:
+            res = ingest_sharded(captures, store, cfg, executor=ex, seed=seed, use_masks=not no_masks,
+                                 progress=Progress("ingest", quiet))
     res_ = np.array([c["plane_residual_m"] for c in res["captures"]]) * 1000
     typer.echo(f"ingested {res['objects']} objects from {len(res['captures'])} captures "
                f"({res['frames']} frames, {res['frames_per_second']:.1f} frames/s); plane residual "

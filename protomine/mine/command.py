@@ -8,6 +8,7 @@ import typer
 
 from ..atomic import clean_stale_temporaries
 from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from
+from ..scale.options import SchedulerOpt, WorkersOpt, executor_for
 
 
 def mine(
@@ -18,13 +19,22 @@ def mine(
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    scheduler: SchedulerOpt = None,
+    workers: WorkersOpt = None,
 ) -> None:
-    """Group the store's objects into pose-aware prototypes."""
+    """Group the store's objects into pose-aware prototypes.
+
+    With --scheduler or --workers > 1 the clustering passes run as a map-reduce over chunks of objects.
+    """
+    from ..scale.executor import InlineExecutor
     from .pipeline import mine_store
     cfg = config_from(config)
     for folder in {library.parent, out or library.parent}:
         clean_stale_temporaries(folder)
-    lib, info = mine_store(store, library, cfg, seed=seed, n_clusters=clusters, out_dir=out, progress=Progress("mine", quiet))
+    with executor_for(cfg, scheduler, workers) as ex:
+        lib, info = mine_store(store, library, cfg, seed=seed, n_clusters=clusters, out_dir=out,
+                               progress=Progress("mine", quiet),
+                               executor=None if isinstance(ex, InlineExecutor) else ex)
     where = out or library.parent
     typer.echo(f"mined {len(lib.members['object'])} objects into {info['K']} prototypes "
                f"({info['iterations']} iterations); library {library}; {where / 'assignments.csv'}; {where / 'gallery.png'}")

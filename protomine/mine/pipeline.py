@@ -187,8 +187,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     if executor is None:
         vols = aligned_mean_volumes(store, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
     else:
-        from .distributed import aligned_mean_volumes as dist_mean_volumes, match_all
-        vols = dist_mean_volumes(store, executor, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
+        from .distributed import StoreSpec, aligned_mean_volumes as dist_mean_volumes, match_all
+        vols = dist_mean_volumes(StoreSpec.of(store, cfg), executor, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
     # full match table once more: second-best cluster for every member
     if executor is None:
         pm = model.match(store.source(cfg)) if hasattr(model, "match") else None

@@ -4,7 +4,9 @@ Contract (every executor)
 -------------------------
 ``executor.map(fn, items, *, shared=None) -> list`` returns ``[fn(shared, item) for item in items]`` in the
 order of ``items``, whatever order the workers finish in; callers reduce the results in that fixed order,
-so a result never depends on scheduling.  ``fn`` is a module-level function (pickled by reference).
+so a result never depends on scheduling.  With ``fold=f`` it returns ``f(...f(f(None, r_0), r_1)..., r_n)``
+instead, taking each result in item order as soon as the earlier ones are folded and dropping it after,
+so the caller holds one accumulator, not every result.  ``fn`` is a module-level function (pickled by reference).
 ``shared`` (prototypes, settings) is sent once per worker, not once per item (Dask: scattered with
 ``broadcast=True``).  Item i prefers worker ``i mod n_workers`` (Dask ``workers=`` with
 ``allow_other_workers=True``), so a worker sees the same chunks on every pass and its per-chunk caches hit.
@@ -25,7 +27,7 @@ from __future__ import annotations
 import concurrent.futures as cf
 import multiprocessing
 from dataclasses import dataclass
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Iterable, Iterator, Sequence
 
 from ..errors import InputError
 
@@ -46,11 +48,20 @@ def _call(fn: Callable, shared: Any, item: Any) -> Any:
         return _Failed(e.path, e.field, e.message)
 
 
-def _unwrap(results: list) -> list:
+def _check(r: Any) -> Any:
+    if isinstance(r, _Failed):
+        raise InputError(r.path, r.field, r.message)
+    return r
+
+
+def _collect(results: Iterable, fold: Callable | None) -> Any:
+    """Results (an iterable in item order) as a list, or folded one by one."""
+    if fold is None:
+        return [_check(r) for r in results]
+    acc = None
     for r in results:
-        if isinstance(r, _Failed):
-            raise InputError(r.path, r.field, r.message)
-    return results
+        acc = fold(acc, _check(r))
+    return acc
 
 
 class InlineExecutor:
@@ -59,8 +70,8 @@ class InlineExecutor:
     kind = "inline"
     n_workers = 1
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None) -> list:
-        return _unwrap([_call(fn, shared, it) for it in items])
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
+        return _collect((_call(fn, shared, it) for it in items), fold)
 
     def close(self) -> None:
         pass
@@ -80,9 +91,9 @@ class PoolExecutor:
         self.n_workers = workers
         self._pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None) -> list:
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
         futs = [self._pool.submit(_call, fn, shared, it) for it in items]
-        return _unwrap([f.result() for f in futs])  # submission order, not completion order
+        return _collect(_in_order(futs, lambda f: f.result()), fold)  # submission order, not completion order
 
     def close(self) -> None:
         self._pool.shutdown(wait=True, cancel_futures=True)
@@ -126,15 +137,17 @@ class DaskExecutor:
     def n_workers(self) -> int:
         return len(self.workers)
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None) -> list:
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
         workers = self.workers
         shared_f = self.client.scatter([shared], broadcast=True, hash=False)[0]
         futs = [self.client.submit(_call, fn, shared_f, it, workers=[workers[i % len(workers)]],
                                    allow_other_workers=True, pure=False) for i, it in enumerate(items)]
         try:
-            return _unwrap(self.client.gather(futs))  # gathered in submission order
+            # taken in submission order; a result is released on the worker once fetched
+            return _collect(_in_order(futs, lambda f: f.result()), fold)
         finally:
-            del futs, shared_f
+            futs.clear()  # dropping a Future releases its result on the cluster
+            del shared_f
 
     def close(self) -> None:
         if self._own:
@@ -145,6 +158,13 @@ class DaskExecutor:
 
 
 Executor = InlineExecutor | PoolExecutor | DaskExecutor
+
+
+def _in_order(futs: list, get: Callable) -> Iterator:
+    """Results of ``futs`` in list order; each future is dropped from the list once read."""
+    for i in range(len(futs)):
+        yield get(futs[i])
+        futs[i] = None
 
 
 def make_executor(cfg: dict, scheduler: str | None = None, workers: int | None = None) -> Executor:

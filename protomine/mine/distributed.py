@@ -1,0 +1,283 @@
+"""Mining passes as a map-reduce over chunks of objects, on any executor (:mod:`protomine.scale.executor`).
+
+Conventions: as in :mod:`protomine.mine.engine` (X (N, C, R, A, H), W (N, R, A, H), prototypes
+P (K, C, R, A, H), V (K, R, A, H)).
+
+Map (a worker, per chunk of objects [i0, i1) or per explicit index list)
+    The worker opens the source itself (:class:`StoreSpec`: the object store on a shared file system;
+    :class:`NpySpec`: two ``.npy`` files), so volumes never cross the network.  It transforms the chunk
+    (object spectra, kept in a per-process cache of ``cache_mb`` for the next passes; item i goes to worker
+    i mod n, so the same worker sees the same chunk every pass), finds the best pose per (object,
+    prototype) against the broadcast prototypes, and sums the chunk's members aligned into their
+    prototype's frame.  It returns 4 numbers per object (label, yaw, scale, distance) and the chunk's
+    aligned sums (K, C + 2, R, A, H) float64 (and, on the last pass, the symmetry moments).
+Reduce (the caller)
+    Per-object arrays are concatenated and the sums added in chunk order (fixed, never completion order),
+    then the engine's own update turns them into prototypes.  Memory per worker: one chunk's volumes and
+    spectra (about 0.25 MB per object on the default grid) plus K sums, plus the spectra cache budget.
+
+:class:`ExecutorSource` is a source (``len``, ``read``) whose passes run this way: the engine hands a pass
+to ``source.assign_pass`` when the source has one, so :class:`~protomine.mine.engine.PoseKMeans`, the
+choice of K and the merging run unchanged.  The seeding subsample (at most ``sample_size`` objects) and
+re-seeding objects (at most K) are read on the caller through ``gather``/``read``.
+Summing per-chunk sums instead of one running sum changes prototypes only by float rounding (~1e-7
+relative); assignments are the same.
+
+Public API
+----------
+- ``StoreSpec.of(store, cfg)``, ``NpySpec(x_path, w_path)``: picklable descriptions of a source.
+- ``ExecutorSource(spec, executor, *, chunk_size=None, cache_mb=256.0)``
+- ``match_all(model, source) -> PoseMatch``: ``PoseKMeans.match`` as a map over chunks.
+- ``aligned_mean_volumes(spec, executor, labels, yaw_deg, K, chunk=512)``: the pipeline's picture
+  volumes as a map-reduce.
+"""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+
+from . import symmetry as sym
+from .engine import ArraySource, _AlignedSums, _chunks, _moment_spectra, _SpectraCache
+from .posesearch import PoseBank, PoseMatch
+
+# per worker process: opened sources and spectra caches, keyed by what they were built from
+_OPEN: dict = {}
+_CACHES: dict = {}
+
+
+@dataclass(frozen=True)
+class StoreSpec:
+    """An object store on a shared file system; ``stamp`` (mtime_ns, size) invalidates worker caches."""
+
+    path: str
+    free_weight: float
+    colour_weight: float
+    stamp: tuple[int, int]
+
+    @classmethod
+    def of(cls, store, cfg: dict) -> "StoreSpec":
+        p = Path(store.path).resolve()
+        st = p.stat()
+        m = cfg["mine"]
+        return cls(str(p), float(m["free_weight"]), float(m["colour_weight"]), (st.st_mtime_ns, st.st_size))
+
+    def open(self):
+        from ..ingest.store import ObjectStore
+        return ObjectStore(self.path).source({"mine": {"free_weight": self.free_weight,
+                                                       "colour_weight": self.colour_weight}})
+
+
+@dataclass(frozen=True)
+class NpySpec:
+    """Features in two ``.npy`` files: X (N, C, R, A, H), W (N, R, A, H) float32 (memory-mapped)."""
+
+    x_path: str
+    w_path: str
+
+    def open(self):
+        return ArraySource(np.load(self.x_path, mmap_mode="r"), np.load(self.w_path, mmap_mode="r"))
+
+
+def _open(spec) -> object:
+    if spec not in _OPEN:
+        _OPEN.clear()  # one source per worker at a time: a new store replaces the old one
+        _OPEN[spec] = spec.open()
+    return _OPEN[spec]
+
+
+def _read(src, i0: int, i1: int, idx: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """Objects i0..i1-1 of the source, or the objects at sorted ``idx``."""
+    if idx is None:
+        x, w = src.read(i0, i1)
+    elif isinstance(src, ArraySource):
+        x, w = src.X[idx], src.W[idx]
+    else:  # a StoreSource: read just those rows
+        x, w = type(src)(src.store, src.cfg, src.indices[idx]).read(0, len(idx))
+    return np.asarray(x, np.float32), np.asarray(w, np.float32)
+
+
+@dataclass
+class _Part:
+    """One chunk's map result."""
+
+    labels: np.ndarray
+    yaw: np.ndarray
+    scale: np.ndarray
+    dist: np.ndarray
+    tot: np.ndarray | None = None      # (K, C + 2, R, A, H) aligned sums [w |x|^2, w, w x_1 .. w x_C]
+    extra: np.ndarray | None = None    # (K, C + 1, R, A, H) moments [w x_1^2 .. w x_C^2, w^2]
+    seconds: float = 0.0               # the worker's time for this chunk (read, transform, match, sums)
+
+
+def _chunk_pass(shared: tuple, item: tuple) -> _Part:
+    """Worker: one chunk of one assignment pass (module docstring)."""
+    spec, P, V, scales, accumulate, moments, chunk_size, cache_bytes = shared
+    i0, i1, idx, forced = item
+    t0 = time.perf_counter()
+    src = _open(spec)
+    K, C, R, A, H = P.shape
+    S = len(scales)
+    bank = PoseBank(P, V, scales)
+    cache = None
+    if idx is None and cache_bytes > 0:
+        cache = _CACHES.setdefault((spec, A, chunk_size), _SpectraCache(cache_bytes))
+    o = cache.get(i0) if cache is not None else None
+    if o is None or moments:
+        x, w = _read(src, i0, i1, idx)
+    if o is None:
+        o = bank.spectra(x, w)
+        if cache is not None:
+            cache.put(i0, o)
+    m = bank.match_spectra(o)
+    n = o.shape[1]
+    lab = np.argmin(m.D, axis=1) if forced is None else np.asarray(forced)
+    r = np.arange(n)
+    part = _Part(lab.astype(np.int64), m.yaw_deg[r, lab], m.scale[r, lab], m.D[r, lab])
+    if not accumulate:
+        part.seconds = time.perf_counter() - t0
+        return part
+    scale_index = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
+    ok = np.flatnonzero(np.isfinite(part.dist))
+    group = lab[ok] * S + np.array([scale_index[float(s)] for s in part.scale[ok]], np.int64)
+    sums = _AlignedSums(K, S, A, (C + 2) * R * H)
+    sums.add(o[:, torch.from_numpy(ok)], part.yaw[ok], group)
+    part.tot = sums.result(scales, (C + 2, R, H))
+    if moments:
+        msums = _AlignedSums(K, S, A, (C + 1) * R * H)
+        msums.add(_moment_spectra(x[ok], w[ok], bank.dft), part.yaw[ok], group)
+        part.extra = msums.result(scales, (C + 1, R, H))
+    part.seconds = time.perf_counter() - t0
+    return part
+
+
+def _chunk_match(shared: tuple, item: tuple) -> PoseMatch:
+    """Worker: best pose of one chunk against every prototype, (n, K) arrays."""
+    spec, P, V, scales = shared
+    i0, i1 = item
+    x, w = _read(_open(spec), i0, i1, None)
+    return PoseBank(P, V, scales).match(x, w)
+
+
+@dataclass
+class _Reduced:
+    """Running reduction of chunk parts: per-object pieces kept in chunk order, sums added in chunk order."""
+
+    labels: list
+    yaw: list
+    scale: list
+    dist: list
+    seconds: list
+    tot: np.ndarray | None
+    extra: np.ndarray | None
+
+
+def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
+    """Fold one chunk's part into the reduction (called in chunk order, so sums never depend on which
+    worker finished first)."""
+    if acc is None:
+        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [p.seconds],
+                        None if p.tot is None else p.tot.copy(), None if p.extra is None else p.extra.copy())
+    for name in ("labels", "yaw", "scale", "dist", "seconds"):
+        getattr(acc, name).append(getattr(p, name))
+    if p.tot is not None:
+        acc.tot += p.tot
+    if p.extra is not None:
+        acc.extra += p.extra
+    return acc
+
+
+def _sum_in_order(acc: np.ndarray | None, part: tuple) -> tuple:
+    """Fold for tuples of arrays: element-wise sums in chunk order."""
+    return tuple(a.copy() for a in part) if acc is None else tuple(a + b for a, b in zip(acc, part))
+
+
+class ExecutorSource:
+    """A source whose assignment passes run as a map-reduce on ``executor`` (module docstring).
+
+    ``indices`` (sorted) restricts it to those objects of the spec's source (mini-batches).
+    ``chunk_size`` overrides the engine's chunk size for the map items (None: the engine's).
+    """
+
+    def __init__(self, spec, executor, *, chunk_size: int | None = None, cache_mb: float = 256.0,
+                 indices: np.ndarray | None = None):
+        self.spec, self.executor, self.chunk_size, self.cache_mb = spec, executor, chunk_size, cache_mb
+        self.indices = None if indices is None else np.asarray(indices, np.int64)
+        self._local = None
+
+    def _src(self):
+        if self._local is None:
+            self._local = self.spec.open()
+        return self._local
+
+    def __len__(self) -> int:
+        return len(self._src()) if self.indices is None else len(self.indices)
+
+    def read(self, i0: int, i1: int) -> tuple[np.ndarray, np.ndarray]:
+        """Objects i0..i1-1, read on the caller (the engine does so only for seeding and re-seeding)."""
+        return _read(self._src(), i0, i1, None if self.indices is None else self.indices[i0:i1])
+
+    def gather(self, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Objects at sorted ``idx``, reading only those rows."""
+        idx = np.asarray(idx, np.int64)
+        return _read(self._src(), 0, 0, idx if self.indices is None else self.indices[idx])
+
+    def subset(self, idx: np.ndarray) -> "ExecutorSource":
+        idx = np.sort(np.asarray(idx, np.int64))
+        return ExecutorSource(self.spec, self.executor, chunk_size=self.chunk_size, cache_mb=self.cache_mb,
+                              indices=idx if self.indices is None else self.indices[idx])
+
+    def _items(self, chunk_size: int, forced: np.ndarray | None = None) -> list[tuple]:
+        cs = self.chunk_size or chunk_size
+        return [(i0, i1, None if self.indices is None else self.indices[i0:i1],
+                 None if forced is None else forced[i0:i1]) for i0, i1 in _chunks(len(self), cs)]
+
+    def assign_pass(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
+                    accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None):
+        """The engine's ``_assign_pass`` (same arguments and results) as a map-reduce over chunks."""
+        from .engine import _pass_outputs
+        cs = self.chunk_size or chunk_size
+        shared = (self.spec, np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales), accumulate,
+                  moments, cs, int(self.cache_mb * 2**20))
+        red = self.executor.map(_chunk_pass, self._items(chunk_size, forced), shared=shared, fold=_fold_parts)
+        self.last_seconds = red.seconds  # the workers' seconds per chunk, for the scale benchmark
+        labels = np.concatenate(red.labels).astype(np.int64)
+        yaw, scale, dist = (np.concatenate(a).astype(np.float32) for a in (red.yaw, red.scale, red.dist))
+        if not accumulate:
+            return labels, yaw, scale, dist, None, None, None, None, None
+        tot, extra = red.tot, red.extra
+        return _pass_outputs(self, labels, yaw, scale, dist, tot, extra, P, V, n_worst, cs)
+
+
+def match_all(model, source) -> PoseMatch:
+    """``model.match(source)`` (best pose against every fitted prototype, (N, K) arrays), distributed when
+    ``source`` is an :class:`ExecutorSource`; yaw in each prototype's canonical frame, modulo its symmetry."""
+    if not isinstance(source, ExecutorSource) or source.indices is not None:
+        return model.match(source)
+    shared = (source.spec, model.prototypes_, model.prototype_weights_, tuple(model.scales_))
+    items = [(i0, i1) for i0, i1, *_ in source._items(model.chunk_size)]
+    parts = source.executor.map(_chunk_match, items, shared=shared)
+    D = np.concatenate([p.D for p in parts])
+    yaw = sym.wrap_yaw(np.concatenate([p.yaw_deg for p in parts]), model.symmetry_)
+    return PoseMatch(D, yaw, np.concatenate([p.scale for p in parts]), None)
+
+
+def _chunk_volume_sums(shared: tuple, item: tuple) -> tuple[np.ndarray, np.ndarray]:
+    """Worker: one chunk's aligned store-volume sums for the pipeline's picture volumes."""
+    from .pipeline import aligned_volume_sums
+    spec, K = shared
+    i0, i1, labels, yaw = item
+    return aligned_volume_sums(_open(spec).store.read_volumes(i0, i1), labels, yaw, K)
+
+
+def aligned_mean_volumes(spec: StoreSpec, executor, labels: np.ndarray, yaw_deg: np.ndarray, K: int,
+                         chunk: int = 512) -> np.ndarray:
+    """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame
+    (``pipeline.aligned_mean_volumes`` as a map-reduce; sums added in chunk order)."""
+    from .pipeline import mean_from_volume_sums
+    items = [(i0, i1, labels[i0:i1], yaw_deg[i0:i1]) for i0, i1 in _chunks(len(labels), chunk)]
+    acc, wsum = executor.map(_chunk_volume_sums, items, shared=(spec, K), fold=_sum_in_order)
+    return mean_from_volume_sums(acc, wsum, labels, K)
