@@ -1,0 +1,76 @@
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+from sklearn.metrics import normalized_mutual_info_score
+
+from protomine.mine.choosek import _kmedoids, choose_k, fit_auto, merge_close_prototypes
+from protomine.mine.engine import ArraySource, PoseKMeans
+
+A = 36
+
+
+def _prototypes(rng, k, C=2, R=4, H=3):
+    """k smooth random (C, R, A, H) prototypes, unit standard deviation."""
+    P = ndimage.gaussian_filter(rng.normal(size=(k, C, R, A, H)), sigma=(0, 0, 0.5, 2, 0.5), mode="wrap")
+    return (P / P.std(axis=(1, 2, 3, 4), keepdims=True)).astype(np.float32)
+
+
+def _objects(rng, P, n, noise=0.2):
+    """n noisy members of prototypes P at random yaws (half of them seen over half the azimuth)."""
+    labels = rng.integers(0, len(P), n)
+    X = np.stack([np.roll(P[k], s, axis=2) for k, s in zip(labels, rng.integers(0, A, n))])
+    X = (X + noise * rng.normal(size=X.shape)).astype(np.float32)
+    W = np.ones((n,) + X.shape[2:], np.float32)
+    half = rng.random(n) < 0.5
+    seen = (np.arange(A)[None, :] - rng.integers(0, A, n)[:, None]) % A < A // 2
+    W[half] *= seen[half][:, None, :, None]
+    return X, W, labels
+
+
+def test_fit_auto_recovers_true_k():
+    rng = np.random.default_rng(11)
+    X, W, labels = _objects(rng, _prototypes(rng, 5), 200)
+    model, info = fit_auto(ArraySource(X, W), max_k=9, random_state=0, n_init=2)
+    assert info["k_chosen"] == 5, info["table"]
+    assert info["k_final"] == model.n_clusters == 5
+    # NMI: scikit-learn reference implementation
+    assert normalized_mutual_info_score(labels, model.labels_) > 0.98
+
+
+def test_duplicated_prototype_is_merged():
+    rng = np.random.default_rng(12)
+    P = _prototypes(rng, 3)
+    X, W, labels = _objects(rng, P, 150)
+    V = np.ones((4,) + P.shape[2:], np.float32)
+    # four starting prototypes, the last one the first shape in another pose: one class ends up split
+    init = (np.concatenate([P, np.roll(P[:1], 7, axis=3)]), V)
+    model = PoseKMeans(n_clusters=4, init=init, random_state=0).fit(ArraySource(X, W))
+    assert model.n_clusters == 4 and np.unique(model.labels_).size == 4
+    merged, merges = merge_close_prototypes(model, ArraySource(X, W), merge_threshold=0.5)
+    assert merged.n_clusters == 3 and len(merges) == 1
+    assert normalized_mutual_info_score(labels, merged.labels_) > 0.98
+
+
+def test_distinct_prototypes_are_not_merged():
+    rng = np.random.default_rng(13)
+    X, W, _ = _objects(rng, _prototypes(rng, 3), 120)
+    model = PoseKMeans(n_clusters=3, n_init=2, random_state=0).fit(ArraySource(X, W))
+    merged, merges = merge_close_prototypes(model, ArraySource(X, W), merge_threshold=0.5)
+    assert merges == [] and merged.n_clusters == 3
+
+
+def test_kmedoids_by_hand():
+    # two tight pairs on a line: 0, 1 | 10, 11; a bad start (0 | 1, 10, 11) is repaired in one swap
+    pts = np.array([0.0, 1.0, 10.0, 11.0])
+    S = np.abs(pts[:, None] - pts[None, :])
+    labels, cost = _kmedoids(S, np.array([0, 1, 1, 1]))
+    assert labels[0] == labels[1] != labels[2] == labels[3]
+    assert cost == 2.0  # each pair's non-medoid is 1 from its medoid
+
+
+def test_choose_k_table_covers_the_range():
+    rng = np.random.default_rng(14)
+    X, W, _ = _objects(rng, _prototypes(rng, 3), 60)
+    k, table = choose_k(ArraySource(X, W), max_k=6, random_state=0)
+    assert [r["k"] for r in table] == [2, 3, 4, 5, 6] and k == 3
