@@ -36,6 +36,7 @@ from scipy import ndimage
 from . import atomic
 
 GRID = (5, 8, 36, 12)  # C, R, A, H
+SCALES = (0.87, 0.93, 1.0, 1.07, 1.15)  # configs/default.toml mine.scales
 
 
 def synthetic_prototypes(rng: np.random.Generator, k: int, grid: tuple[int, int, int, int] = GRID) -> np.ndarray:
@@ -116,7 +117,7 @@ def _mine_once(n: int, k: int, seed: int) -> dict:
     t0 = time.perf_counter()
     # chunks of 512 objects keep the per-chunk transients near 0.15 GB; 256 MB of cached object spectra
     # (about 2,500 objects) leave room for the 0.8 GB of volumes at 10,000 objects
-    model = PoseKMeans(n_clusters=k, n_init=2, max_iter=15, chunk_size=512, random_state=seed,
+    model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=2, max_iter=15, chunk_size=512, random_state=seed,
                        sample_size=2048, cache_mb=256).fit(ArraySource(X, W))
     secs = time.perf_counter() - t0
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB

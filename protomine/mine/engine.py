@@ -261,14 +261,15 @@ def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Te
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
                  accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
-                 cache: _SpectraCache | None = None):
+                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None):
     """One pass over the source: assignment against (P, V) and, optionally, the aligned sums.
 
     Returns labels, yaw, scale, dist (N,), and when accumulating num (K, C, R, A, H), den (K, R, A, H),
     count (K,), plus the ``n_worst`` worst-fitting objects (x, w) for re-seeding empty clusters (only
     read when a cluster is empty), and with ``moments`` the symmetry test's (s0, s1, s2, sw2).
     ``forced`` (N,) fixes the labels (seeding): poses are then those against the forced prototype.
-    ``cache`` keeps object spectra between passes (same source and chunk_size only).
+    ``cache`` keeps object spectra between passes (same source and chunk_size only).  ``scale_index``
+    (N,) restricts each object's scale search to its previous best scale +-1 (intermediate passes).
     """
     N = len(source)
     K, C, R, A, H = P.shape
@@ -280,7 +281,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     dist = np.empty(N, np.float32)
     sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
     msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
-    scale_index = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
+    scale_pos = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
     for i0, i1 in _chunks(N, chunk_size):
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
@@ -291,7 +292,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             o = bank.spectra(x, w)
             if cache is not None:
                 cache.put(i0, o)
-        m = bank.match_spectra(o)
+        m = bank.match_spectra(o, scale_index=None if scale_index is None else scale_index[i0:i1])
         lab = np.argmin(m.D, axis=1) if forced is None else forced[i0:i1]
         r = np.arange(i1 - i0)
         labels[i0:i1] = lab
@@ -302,7 +303,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         if not accumulate:
             continue
         ok = np.flatnonzero(np.isfinite(d))
-        group = lab[ok] * S + np.array([scale_index[float(s)] for s in scale[i0:i1][ok]], np.int64)
+        group = lab[ok] * S + np.array([scale_pos[float(s)] for s in scale[i0:i1][ok]], np.int64)
         # all members usually match; indexing would copy the chunk's spectra
         sums.add(o if ok.size == i1 - i0 else o[:, torch.from_numpy(ok)], yaw[i0:i1][ok], group)
         if moments:
@@ -343,12 +344,19 @@ def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: n
 
 def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: int, tol: float,
            chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None) -> _Result:
+    """Lloyd iterations from (P, V).  The first and the final pass search every scale; the passes in
+    between only each object's previous best scale +-1 (scales move slowly once prototypes settle, and
+    the search then costs 3 / S of the full one)."""
     K = P.shape[0]
     prev_labels, prev_cost = None, np.inf
     n_iter = 0
+    sidx = None
+    scale_arr = np.asarray(scales, np.float32)
     for n_iter in range(1, max_iter + 1):
         labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
-                                                                           cache=cache)
+                                                                           cache=cache, scale_index=sidx)
+        # index of each object's best scale (the window runs over the scales in the given order)
+        sidx = np.argmax(scale[:, None] == scale_arr[None, :], axis=1) if len(scales) > 3 else None
         cost = float(dist[np.isfinite(dist)].sum())
         stable = prev_labels is not None and np.array_equal(labels, prev_labels)
         small = np.isfinite(prev_cost) and abs(prev_cost - cost) <= tol * max(abs(cost), 1e-12)

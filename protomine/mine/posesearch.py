@@ -225,27 +225,33 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     return torch.mm(dft, stack.view(A, -1)).view(dft.shape[0], n, -1)
 
 
-def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-    """Prototype factors for the real-arithmetic complex product.
+def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor, ...]:
+    """Prototype factors for the real-arithmetic complex products.
 
-    Ps (M, C, R, A, H), Vs (M, R, A, H) -> (Br, Bi), each (F, (C + 2) R H, 4 M), such that for object
-    spectra (Or, Oi) ``Or @ Br + Oi @ Bi`` viewed as (F, n, 2 M, 2) holds [real, imaginary] pairs of
-    [num_1 .. num_M, den_1 .. den_M], the per-frequency sums of object spectrum x conj(prototype
-    spectrum) for the numerator and the denominator of the distance (module docstring); interleaved so
-    that the product is a complex tensor without a copy.  The denominator uses only the w block.
+    Ps (M, C, R, A, H), Vs (M, R, A, H) -> (Br, Bi, Dr, Di): Br, Bi (F, (C + 2) R H, 2 M) for the
+    numerator and Dr, Di (F, R H, 2 M) for the denominator, such that for object spectra (Or, Oi)
+    ``Or @ Br + Oi @ Bi`` viewed as (F, n, M, 2) holds [real, imaginary] pairs of num_1 .. num_M, the
+    per-frequency sums of object spectrum x conj(prototype spectrum) of the distance's numerator
+    (module docstring), and likewise the w block of (Or, Oi) with (Dr, Di) for the denominator.
+    Interleaved so that the products are complex tensors without a copy; the denominator, which only
+    involves w, multiplies the w block alone (its factors elsewhere would be zeros).
     """
     M, C, R, A, H = Ps.shape
     vmu = Vs[:, None] * Ps
     num = torch.cat([Vs[:, None], (vmu * Ps).sum(1)[:, None], -2.0 * vmu], dim=1)  # (M, C + 2, R, A, H)
-    den = torch.zeros_like(num)
-    den[:, 1] = C * Vs
-    both = torch.cat([num, den], dim=0)  # (2M, C + 2, R, A, H)
-    f = torch.fft.rfft(both, dim=3).permute(3, 1, 2, 4, 0).reshape(A // 2 + 1, -1, 2 * M)
-    # conj(p) = pr - i pi:  (or + i oi)(pr - i pi) = (or pr + oi pi) + i (oi pr - or pi)
-    pr, pi = f.real.contiguous(), f.imag.contiguous()
-    F, B, M2 = pr.shape
-    return (torch.stack([pr, -pi], dim=3).reshape(F, B, 2 * M2).contiguous(),
-            torch.stack([pi, pr], dim=3).reshape(F, B, 2 * M2).contiguous())
+    F = A // 2 + 1
+
+    def factors(t: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        f = torch.fft.rfft(t, dim=-2)  # (M, ..., F, H)
+        f = f.movedim(-2, 0).movedim(1, -1).reshape(F, -1, M)  # (F, features, M)
+        # conj(p) = pr - i pi:  (or + i oi)(pr - i pi) = (or pr + oi pi) + i (oi pr - or pi)
+        pr, pi = f.real, f.imag
+        return (torch.stack([pr, -pi], dim=3).reshape(F, -1, 2 * M).contiguous(),
+                torch.stack([pi, pr], dim=3).reshape(F, -1, 2 * M).contiguous())
+
+    br, bi = factors(num)
+    dr, di = factors(C * Vs)
+    return br, bi, dr, di
 
 
 def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
@@ -255,23 +261,30 @@ def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor
     return _object_spectra(xt, wt, dft)
 
 
-def _distances_from_spectra(o: torch.Tensor, br: torch.Tensor, bi: torch.Tensor, A: int,
+def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A: int,
                             min_overlap: float) -> torch.Tensor:
-    """Distances for every shift from object spectra o (2F, n, (C + 2) R H): (n, M, A) float32 tensor."""
-    F = A // 2 + 1
-    prod = torch.baddbmm(torch.bmm(o[:F], br), o[F:], bi)  # (F, n, 4M)
-    M2 = prod.shape[2] // 2
-    corr = torch.fft.irfft(torch.view_as_complex(prod.view(F, prod.shape[1], M2, 2)), n=A, dim=0)  # (A, n, 2M)
-    num, den = corr[..., :M2 // 2], corr[..., M2 // 2:]
+    """Distances for every shift from object spectra o (2F, n, (C + 2) R H): (n, M, A) float32 tensor.
+
+    ``factors`` = (Br, Bi, Dr, Di) of :func:`_prototype_spectra`.
+    """
+    br, bi, dr, di = factors
+    F, n = A // 2 + 1, o.shape[1]
+    RH = dr.shape[1]
+    M = br.shape[2] // 2
+    prod = torch.baddbmm(torch.bmm(o[:F], br), o[F:], bi)  # (F, n, 2M)
+    ow = o[:, :, RH:2 * RH]  # the w block
+    prod_d = torch.baddbmm(torch.bmm(ow[:F], dr), ow[F:], di)
+    num = torch.fft.irfft(torch.view_as_complex(prod.view(F, n, M, 2)), n=A, dim=0)  # (A, n, M)
+    den = torch.fft.irfft(torch.view_as_complex(prod_d.view(F, n, M, 2)), n=A, dim=0)
     d = num.clamp_min_(0.0).div_(den + EPS)
     d.masked_fill_(den <= min_overlap, float("inf"))
     return d.permute(1, 2, 0)
 
 
-def _fft_all_distances(x: np.ndarray, w: np.ndarray, br: torch.Tensor, bi: torch.Tensor, dft: torch.Tensor,
+def _fft_all_distances(x: np.ndarray, w: np.ndarray, factors: tuple[torch.Tensor, ...], dft: torch.Tensor,
                        A: int, min_overlap: float) -> np.ndarray:
     """Distances for every shift: (n, M, A) float32 for one chunk of objects."""
-    return _distances_from_spectra(_spectra_of(x, w, dft), br, bi, A, min_overlap).numpy()
+    return _distances_from_spectra(_spectra_of(x, w, dft), factors, A, min_overlap).numpy()
 
 
 def _best_pose_torch(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -283,7 +296,7 @@ def _best_pose_torch(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.nda
     n, K, S, A = d.shape
     D, best = d.reshape(n, K, S * A).min(dim=2)
     si, sh = best // A, best % A
-    row = d.reshape(n * K, S, A)[torch.arange(n * K), si.reshape(-1)].reshape(n, K, A)
+    row = d[torch.arange(n)[:, None], torch.arange(K)[None, :], si]  # (n, K, A) at the best scale
     dm = row.gather(2, ((sh - 1) % A)[..., None])[..., 0]
     dp = row.gather(2, ((sh + 1) % A)[..., None])[..., 0]
     D, dm, dp = D.numpy(), dm.numpy(), dp.numpy()
@@ -327,8 +340,9 @@ class PoseBank:
         Ps, Vs = scale_prototypes(P, V, scales)
         S = len(scales)
         self.dft = _dft_matrix(A)
-        self.br, self.bi = _prototype_spectra(torch.from_numpy(Ps.reshape(K * S, C, R, A, H)),
-                                              torch.from_numpy(Vs.reshape(K * S, R, A, H)))
+        # scale-major order (index s K + k), so that a window of neighbouring scales is a column slice
+        self.factors = _prototype_spectra(torch.from_numpy(np.ascontiguousarray(Ps.swapaxes(0, 1)).reshape(S * K, C, R, A, H)),
+                                          torch.from_numpy(np.ascontiguousarray(Vs.swapaxes(0, 1)).reshape(S * K, R, A, H)))
 
     def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
         """Object spectra (2F, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""
@@ -336,13 +350,32 @@ class PoseBank:
 
     def all_distances(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3) -> np.ndarray:
         """x (n, C, R, A, H), w (n, R, A, H) -> (n, K, S, A) distances for every scale and shift."""
-        d = _fft_all_distances(x, w, self.br, self.bi, self.dft, self.A, self.C * min_overlap)
-        return d.reshape(x.shape[0], self.K, len(self.scales), self.A)
+        d = _fft_all_distances(x, w, self.factors, self.dft, self.A, self.C * min_overlap)
+        return d.reshape(x.shape[0], len(self.scales), self.K, self.A).swapaxes(1, 2)
 
-    def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False) -> PoseMatch:
-        """Best pose from object spectra o (2F, n, (C + 2) R H) (see :meth:`spectra`)."""
-        d = _distances_from_spectra(o, self.br, self.bi, self.A, self.C * min_overlap)
-        d = d.reshape(o.shape[1], self.K, len(self.scales), self.A)
+    def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
+                      scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
+        """Best pose from object spectra o (2F, n, (C + 2) R H) (see :meth:`spectra`).
+
+        With ``scale_index`` (n,) (each object's current best scale, an index into the scales), only
+        the 2 window + 1 neighbouring scales are searched for that object (the others count as inf);
+        the product then costs (2 window + 1) / S of the full search.
+        """
+        n, S, K = o.shape[1], len(self.scales), self.K
+        span = 2 * window + 1
+        if scale_index is None or span >= S:
+            d = _distances_from_spectra(o, self.factors, self.A, self.C * min_overlap).reshape(n, S, K, self.A)
+        else:
+            d = torch.full((n, S, K, self.A), float("inf"))
+            lo_all = np.clip(np.asarray(scale_index) - window, 0, S - span)
+            for lo in np.unique(lo_all):
+                rows = np.flatnonzero(lo_all == lo)
+                cols = slice(2 * lo * K, 2 * (lo + span) * K)  # [re, im] column pairs of scales lo..lo+span-1
+                part = tuple(f[:, :, cols] for f in self.factors)
+                og = o if rows.size == n else o[:, torch.from_numpy(rows)]
+                dd = _distances_from_spectra(og, part, self.A, self.C * min_overlap).reshape(rows.size, span, K, self.A)
+                d[torch.from_numpy(rows), lo:lo + span] = dd
+        d = d.permute(0, 2, 1, 3)  # (n, K, S, A)
         D, yaw, sc = _best_pose_torch(d, self.scales)
         return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None)
 
