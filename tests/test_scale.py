@@ -236,3 +236,13 @@ def test_mine_pipeline_minibatch_mode_finds_the_two_shapes(tiny_world, tmp_path)
     same = np.array_equal(lib.members["cluster"], ref.members["cluster"])
     swapped = np.array_equal(lib.members["cluster"], 1 - ref.members["cluster"])
     assert len(full) == 6 and (same or swapped) and info["iterations"] == 3
+
+
+def test_local_process_pool_ingest_equals_single_file_store(tiny_world, tmp_path):
+    from protomine.scale.executor import PoolExecutor
+    ex = PoolExecutor(2)
+    try:
+        ingest_sharded(tiny_world["caps"], tmp_path / "objects.h5", tiny_world["cfg"], executor=ex)
+    finally:
+        ex.close()
+    _tables_equal(ObjectStore(tmp_path / "objects.h5"), ObjectStore(tiny_world["store"]))

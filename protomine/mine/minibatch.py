@@ -5,8 +5,8 @@ Conventions: as in :mod:`protomine.mine.engine`.
 
 Algorithm
 ---------
-1. Seeding as the full-batch engine does for a large store: on a subsample of at most ``sample_size``
-   objects, ``n_init`` restarts of descriptor seeding (``engine._descriptor_seeds``) and full Lloyd
+1. Seeding as the full-batch engine does for a large store: on a subsample of min(``sample_size``,
+   3 ``batch_size``) objects (3 batches: scikit-learn's ``MiniBatchKMeans`` default ``init_size``), ``n_init`` restarts of descriptor seeding (``engine._descriptor_seeds``) and full Lloyd
    iterations (``engine._lloyd``, in memory), the lowest cost wins.  Good seeds matter more here than for
    full batches: a running sum never forgets members assigned against a poor seed.
 2. ``n_steps`` mini-batches of ``batch_size`` objects drawn uniformly without replacement (sorted, so a
@@ -78,7 +78,8 @@ class MiniBatchPoseKMeans(PoseKMeans):
 
     def _fit_minibatch(self, source: Source, scales: tuple[float, ...], rng: np.random.Generator) -> None:
         N, K, cs = len(source), self.n_clusters, self.chunk_size
-        idx = np.sort(rng.choice(N, size=min(N, self.sample_size), replace=False))
+        # seeding subsample: 3 batches' worth (scikit-learn's MiniBatchKMeans init_size), at most sample_size
+        idx = np.sort(rng.choice(N, size=min(N, self.sample_size, 3 * self.batch_size), replace=False))
         Xs, Ws = _gather(source, idx, cs) if not hasattr(source, "gather") else source.gather(idx)
         desc = reduced_descriptors(Xs, Ws, random_state=int(rng.integers(2**31 - 1)))
         sub = ArraySource(Xs, Ws)
