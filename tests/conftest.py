@@ -99,3 +99,21 @@ def tiny_world(tmp_path_factory):
     mine_store(root / "store" / "objects.h5", root / "lib" / "library.h5", cfg, seed=0, n_clusters=2)
     return {"root": root, "caps": caps, "store": root / "store" / "objects.h5", "library": root / "lib" / "library.h5",
             "cfg": cfg, "config": str(config)}
+
+
+@pytest.fixture(scope="session")
+def demo_small(tmp_path_factory):
+    """A small rendered demo scenario (invented data): 8 mining captures x 6 frames and 8 single-frame
+    captures at 160x120, ingested with masks and mined with the fast preset and automatic K."""
+    from protomine.config import load_config
+    from protomine.ingest.pipeline import ingest_captures
+    from protomine.mine.pipeline import mine_store
+    from protomine.scenes.scenario import generate_scenario
+
+    out = tmp_path_factory.mktemp("demo_small")
+    doc = generate_scenario(out, n_mining=8, n_single=8, frames=6, width=160, height=120, seed=5)
+    cfg = load_config("fast")
+    mining = [out / c for c in doc["mining"]]
+    ingest_captures(mining, out / "objects.h5", cfg, seed=0)
+    lib, info = mine_store(out / "objects.h5", out / "library.h5", cfg, seed=0)
+    return {"out": out, "doc": doc, "cfg": cfg, "mining": mining, "lib": lib, "info": info}
