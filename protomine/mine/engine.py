@@ -13,28 +13,42 @@ the prototypes.
 
 Algorithm
 ---------
-1. Seeding: yaw-invariant descriptors (magnitudes of the azimuthal Fourier coefficients of w * x,
-   flattened) of a random subsample of at most ``sample_size`` objects; k-means++ (Arthur &
-   Vassilvitskii 2007, ``sklearn.cluster.kmeans_plusplus``) picks K seed objects, which become the
-   initial prototypes (P = x, V = w).
+1. Seeding: yaw-invariant descriptors (magnitudes of the azimuthal Fourier coefficients of w * x) of a
+   random subsample of at most ``sample_size`` objects, reduced to 32 principal components
+   (``sklearn.decomposition.PCA``); k-means on them (``sklearn.cluster.KMeans``, k-means++ seeding,
+   Arthur & Vassilvitskii 2007) groups objects whatever their yaw.  Each group's member nearest its
+   centroid is a reference; the group's members, posed against their reference and aligned, are
+   averaged into the initial prototype (one Lloyd update with the descriptor labels held fixed).
 2. Lloyd iterations: assign every object to the prototype with the smallest pose-minimised distance
    (``posesearch``), and in the same pass accumulate each object aligned into its prototype's frame
    (rolled by -yaw with linear interpolation between neighbouring bins, resampled by 1 / scale):
-   ``P_k = sum w_al x_al / sum w_al`` and ``V_k = mean w_al`` over the members.  Stop when no label
-   changes or the relative change of the cost (sum of member distances) is below ``tol``, at most
-   ``max_iter`` passes; a final pass assigns against the final prototypes.
-   Empty clusters are re-seeded from the worst-fitting objects of the pass.
+   ``P_k = sum w_al x_al / sum w_al`` and ``V_k = mean w_al`` over the members.  The sums are kept as
+   azimuthal spectra: the object spectra the pose search computed anyway are multiplied by each
+   member's roll phase and added per (prototype, scale) with ``index_add_``; one inverse transform and
+   one resampling per scale at the end of the pass (resampling is linear, so resampling the sum of the
+   products w x equals summing the resampled products).  Stop when no label changes or the relative
+   change of the cost (sum of member distances) is below ``tol``, at most ``max_iter`` passes; a final
+   pass assigns against the final prototypes and accumulates the members' aligned moments for the
+   symmetry test.  Empty clusters are re-seeded from the worst-fitting objects of the pass.
+   The first and final passes search every scale; the passes in between search each object's previous
+   best scale +-1 only (3 of the default 5 scales).
 3. ``n_init`` restarts, the lowest final cost wins.  When N > ``sample_size`` the restarts run on the
    subsample and only the winner is iterated on all objects (restarts on everything would multiply the
    cost of a large fit by n_init).
-4. Symmetry (``symmetry.detect_symmetry``) and the canonical yaw rule: prototypes are rolled into their
-   canonical frame and member yaws are reported in it, modulo the symmetry period (0 if continuous).
+4. Symmetry (``symmetry.detect_symmetry``: each prototype's asymmetry under candidate rotations against
+   the variance of its mean from the members' aligned moments) and the canonical yaw rule: prototypes
+   are rolled into their canonical frame and member yaws are reported in it, modulo the symmetry period
+   (0 if continuous).
+
+Memory: object spectra (about 0.1 MB per object on the 5 x 8 x 36 x 12 grid) are cached between passes
+up to ``cache_mb``; later chunks are re-read and re-transformed each pass.  Besides the per-object result
+arrays, the rest is bounded by one chunk, the seeding subsample and the prototypes.
 
 Public API
 ----------
 - ``ArraySource(X, W)``
 - ``PoseKMeans(*, n_clusters, scales=(1.0,), n_init=4, max_iter=30, tol=1e-4, chunk_size=2048,
-  random_state=None, sample_size=4096, symmetry_tol=0.12, init=None)``
+  random_state=None, sample_size=4096, symmetry_factor=3.5, init=None, cache_mb=384)``
   ``.fit(source) -> self``, ``.predict(source) -> labels (N,)``, ``.match(source) -> PoseMatch``;
   fitted: ``prototypes_`` (K, C, R, A, H), ``prototype_weights_`` (K, R, A, H), ``labels_`` (N,),
   ``yaw_deg_`` (N,), ``scale_`` (N,), ``distance_`` (N,), ``inertia_``, ``n_iter_``, ``symmetry_`` (K,),

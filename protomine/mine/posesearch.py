@@ -30,7 +30,10 @@ Expanding the square gives, for every shift s at once, four cross-correlations a
 
 By the correlation theorem ``corr(f, g) = irfft(rfft(f) * conj(rfft(g)))``, so per azimuthal frequency
 the sums over (C, R, H) become one complex matrix product (objects x features) @ (features x
-prototypes); objects are processed in chunks so memory is bounded by the chunk size.
+prototypes); the denominator involves w alone, so its product runs on the w block of the object
+factors only.  Objects are processed in chunks so memory is bounded by the chunk size.  The pose bank
+orders its scaled prototypes scale-major, so searching only a window of neighbouring scales (the
+engine's intermediate passes) is a column slice of the prototype factors.
 
 Scales
 ------
@@ -237,21 +240,25 @@ def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor
     involves w, multiplies the w block alone (its factors elsewhere would be zeros).
     """
     M, C, R, A, H = Ps.shape
-    vmu = Vs[:, None] * Ps
-    num = torch.cat([Vs[:, None], (vmu * Ps).sum(1)[:, None], -2.0 * vmu], dim=1)  # (M, C + 2, R, A, H)
     F = A // 2 + 1
+    out = [torch.empty((F, n_feat, M, 2)) for n_feat in ((C + 2) * R * H,) * 2 + (R * H,) * 2]
 
-    def factors(t: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        f = torch.fft.rfft(t, dim=-2)  # (M, ..., F, H)
-        f = f.movedim(-2, 0).movedim(1, -1).reshape(F, -1, M)  # (F, features, M)
+    def factors(t: torch.Tensor, re: torch.Tensor, im: torch.Tensor, m0: int) -> None:
+        f = torch.fft.rfft(t, dim=-2)  # (m, ..., F, H)
+        f = f.movedim(-2, 0).movedim(1, -1).reshape(F, -1, t.shape[0])  # (F, features, m)
         # conj(p) = pr - i pi:  (or + i oi)(pr - i pi) = (or pr + oi pi) + i (oi pr - or pi)
-        pr, pi = f.real, f.imag
-        return (torch.stack([pr, -pi], dim=3).reshape(F, -1, 2 * M).contiguous(),
-                torch.stack([pi, pr], dim=3).reshape(F, -1, 2 * M).contiguous())
+        sl = slice(m0, m0 + t.shape[0])
+        re[:, :, sl, 0], re[:, :, sl, 1] = f.real, -f.imag
+        im[:, :, sl, 0], im[:, :, sl, 1] = f.imag, f.real
 
-    br, bi = factors(num)
-    dr, di = factors(C * Vs)
-    return br, bi, dr, di
+    # blocks of prototypes keep the transforms' temporaries small (one block is ~1/S of the bank)
+    for m0 in range(0, M, 64):
+        p, v = Ps[m0:m0 + 64], Vs[m0:m0 + 64]
+        vmu = v[:, None] * p
+        num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (m, C + 2, R, A, H)
+        factors(num, out[0], out[1], m0)
+        factors(C * v, out[2], out[3], m0)
+    return tuple(o.view(F, o.shape[1], 2 * M) for o in out)
 
 
 def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
