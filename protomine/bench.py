@@ -10,11 +10,15 @@ Rows (JSON keys in brackets):
 (a) assignment of the same N objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
     ``naive_s`` (explicitly rolling every prototype for every shift), ``ratio_fft_dense`` (target <= 4),
-    ``ratio_naive_fft``; ``n_objects``, ``n_prototypes``, ``n_shifts``.
-(b) mining with fixed K = 32 [``mining``]: a list of {``n_objects``, ``seconds``, ``peak_rss_mb``,
-    ``n_iter``}, each size run in its own subprocess so its peak resident memory
-    (``resource.getrusage(RUSAGE_SELF).ru_maxrss``) is its own; ``growth_exponent`` = slope of
-    log(seconds) against log(n_objects) (1 = linear).  Targets: 10,000 objects under 300 s, under 2 GB.
+    ``ratio_naive_fft``; ``n_objects``, ``n_prototypes``, ``n_shifts``, ``load_1m`` (1-minute load average).
+(b) mining with fixed K = 32 and the default 5 scales (``SCALES``) [``mining``]: ``sizes``, a list of
+    {``n_objects``, ``seconds``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
+    subprocess so its peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``, which includes
+    the 0.83 GB of synthetic volumes at 10,000 objects) is its own; ``load_1m`` is the machine's 1-minute
+    load average when the size finished (timings on a shared machine grow with it);
+    ``growth_exponent`` = slope of log(seconds) against log(n_objects) (1 = linear).  Engine settings:
+    n_init = 2, max_iter = 15, chunk_size = 256, sample_size = 2048, cache_mb = 128.  Targets (full run:
+    1,000 / 3,000 / 10,000 objects): 10,000 objects under 300 s, under 2 GB.
 
 Other stages add rows by appending a ``(name, function(quick, seed) -> dict)`` pair to ``BENCH_ROWS``;
 each dict is printed as one table section and stored under its name in the JSON.
@@ -22,6 +26,7 @@ each dict is printed as one table section and stored under its name in the JSON.
 from __future__ import annotations
 
 import json as _json
+import os
 import resource
 import subprocess
 import sys
@@ -100,7 +105,7 @@ def bench_assignment(quick: bool, seed: int) -> dict:
     naive_s = _time(lambda: pose_distances_naive(X[:m], W[:m], P, V, chunk_size=512)) * n / m
     return {"n_objects": n, "n_prototypes": K, "n_shifts": GRID[2], "fft_s": fft_s, "dense_s": dense_s,
             "naive_s": naive_s, "naive_timed_objects": m, "ratio_fft_dense": fft_s / dense_s,
-            "ratio_naive_fft": naive_s / fft_s}
+            "ratio_naive_fft": naive_s / fft_s, "load_1m": os.getloadavg()[0]}
 
 
 def _mine_once(n: int, k: int, seed: int) -> dict:
@@ -115,13 +120,14 @@ def _mine_once(n: int, k: int, seed: int) -> dict:
     for i in range(0, n, 1000):
         X[i:i + 1000], W[i:i + 1000] = synthetic_objects(rng, P, min(1000, n - i))[:2]
     t0 = time.perf_counter()
-    # chunks of 512 objects keep the per-chunk transients near 0.15 GB; 256 MB of cached object spectra
-    # (about 2,500 objects) leave room for the 0.8 GB of volumes at 10,000 objects
-    model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=2, max_iter=15, chunk_size=512, random_state=seed,
-                       sample_size=2048, cache_mb=256).fit(ArraySource(X, W))
+    # chunks of 256 objects keep the per-chunk transients near 0.1 GB; 128 MB of cached object spectra
+    # (about 1,250 objects) leave room for the 0.8 GB of volumes at 10,000 objects
+    model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=2, max_iter=15, chunk_size=256, random_state=seed,
+                       sample_size=2048, cache_mb=128).fit(ArraySource(X, W))
     secs = time.perf_counter() - t0
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB
-    return {"n_objects": n, "seconds": secs, "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_)}
+    return {"n_objects": n, "seconds": secs, "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_),
+            "load_1m": os.getloadavg()[0]}
 
 
 def bench_mining(quick: bool, seed: int) -> dict:
@@ -132,7 +138,8 @@ def bench_mining(quick: bool, seed: int) -> dict:
         code = f"import json; from protomine.bench import _mine_once; print(json.dumps(_mine_once({n}, {k}, {seed})))"
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
         rows.append(_json.loads(out.stdout.strip().splitlines()[-1]))
-        print(f"[bench] mined {n} objects in {rows[-1]['seconds']:.1f} s, peak {rows[-1]['peak_rss_mb']:.0f} MB",
+        print(f"[bench] mined {n} objects in {rows[-1]['seconds']:.1f} s, peak {rows[-1]['peak_rss_mb']:.0f} MB, "
+              f"load {rows[-1]['load_1m']:.1f}",
               file=sys.stderr, flush=True)
     ln, lt = np.log([r["n_objects"] for r in rows]), np.log([r["seconds"] for r in rows])
     growth = float(np.polyfit(ln, lt, 1)[0]) if len(rows) > 1 else float("nan")

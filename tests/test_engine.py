@@ -132,7 +132,10 @@ def test_digits_rotated_pose_aware_beats_plain_kmeans():
     plain = KMeans(n_clusters=10, n_init=4, random_state=0).fit(rotated.reshape(len(rotated), -1))
     plain_nmi = normalized_mutual_info_score(digits.target, plain.labels_)
     print(f"rotated digits NMI: pose-aware {pose_nmi:.3f}, plain k-means {plain_nmi:.3f}")
-    # measured on this seed: pose-aware ~0.6 (6/9 are rotations of each other), plain ~0.18
+    # measured on this seed: pose-aware 0.56 (6/9 are rotations of each other), plain ~0.18.  Not 0.65:
+    # Lloyd started from the true labels ends at NMI 0.65 but at a higher cost (28.04) than the partition
+    # found here (27.91), so this objective on this polar grid prefers the worse partition; more
+    # restarts find the same one.
     assert pose_nmi >= 0.5
     assert pose_nmi > plain_nmi + 0.25
 
