@@ -400,6 +400,8 @@ class PoseKMeans:
     sample_size : objects used for seeding descriptors and, for large N, for the restarts.
     symmetry_factor : how far a rotation may exceed the members' scatter and still count as a symmetry
         (``factor`` of :func:`protomine.mine.symmetry.detect_symmetry`).
+    symmetry_tol : the smallest fraction of a prototype's variance a rotation must move to break a symmetry
+        (``tol`` of :func:`protomine.mine.symmetry.detect_symmetry`).
     init : optional (P (K, C, R, A, H), V (K, R, A, H)) starting prototypes (skips seeding and restarts).
     cache_mb : memory budget for object spectra kept between passes (about 0.1 MB per object on an
         8 x 36 x 12 grid with 5 channels); objects beyond it are re-read and re-transformed every pass.
@@ -407,7 +409,7 @@ class PoseKMeans:
 
     def __init__(self, *, n_clusters: int, scales: Sequence[float] = (1.0,), n_init: int = 4, max_iter: int = 30,
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
-                 sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR,
+                 sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
                  init: tuple[np.ndarray, np.ndarray] | None = None, cache_mb: float = 384.0):
         self.n_clusters = n_clusters
         self.scales = scales
@@ -418,6 +420,7 @@ class PoseKMeans:
         self.random_state = random_state
         self.sample_size = sample_size
         self.symmetry_factor = symmetry_factor
+        self.symmetry_tol = symmetry_tol
         self.init = init
         self.cache_mb = cache_mb
 
@@ -485,7 +488,8 @@ class PoseKMeans:
 
     def _finish(self, res: _Result, source: Source, scales: tuple[float, ...]) -> None:
         A = res.P.shape[3]
-        symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor)
+        symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor,
+                                   tol=self.symmetry_tol)
         t = sym.canonical_shift_bins(res.P, res.V, symm)
         self.prototypes_ = shift_volume(res.P, -t, axis=3).astype(np.float32)
         self.prototype_weights_ = shift_volume(res.V, -t, axis=2).astype(np.float32)
