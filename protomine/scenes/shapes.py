@@ -190,15 +190,18 @@ def axis_rotation(axis: str, degrees: float) -> np.ndarray:
 
 # --- combinators ---------------------------------------------------------------------------------
 
-def union(*shapes: Shape) -> Shape:
+def _fold(shapes: tuple[Shape, ...], op, lo: np.ndarray, hi: np.ndarray) -> Shape:
+    """Combine SDFs pointwise with ``op`` (torch.minimum = union, torch.maximum = intersection)."""
     def fn(p: Tensor) -> Tensor:
         d = shapes[0].fn(p)
         for s in shapes[1:]:
-            d = torch.minimum(d, s.fn(p))
+            d = op(d, s.fn(p))
         return d
-    lo = np.min([s.lo for s in shapes], axis=0)
-    hi = np.max([s.hi for s in shapes], axis=0)
     return Shape(fn, tuple(lo), tuple(hi))
+
+
+def union(*shapes: Shape) -> Shape:
+    return _fold(shapes, torch.minimum, np.min([s.lo for s in shapes], axis=0), np.max([s.hi for s in shapes], axis=0))
 
 
 def subtract(a: Shape, b: Shape) -> Shape:
@@ -207,14 +210,7 @@ def subtract(a: Shape, b: Shape) -> Shape:
 
 
 def intersect(*shapes: Shape) -> Shape:
-    def fn(p: Tensor) -> Tensor:
-        d = shapes[0].fn(p)
-        for s in shapes[1:]:
-            d = torch.maximum(d, s.fn(p))
-        return d
-    lo = np.max([s.lo for s in shapes], axis=0)
-    hi = np.min([s.hi for s in shapes], axis=0)
-    return Shape(fn, tuple(lo), tuple(hi))
+    return _fold(shapes, torch.maximum, np.max([s.lo for s in shapes], axis=0), np.min([s.hi for s in shapes], axis=0))
 
 
 def smooth_union(a: Shape, b: Shape, k: float) -> Shape:
