@@ -38,10 +38,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-import torch
-
 from . import symmetry as sym
-from .engine import ArraySource, _AlignedSums, _chunks, _moment_spectra, _SpectraCache
+from .engine import ArraySource, _AlignedSums, _chunk_step, _chunks, _SpectraCache
 from .posesearch import PoseBank, PoseMatch
 
 # per worker process: opened sources and spectra caches, keyed by what they were built from
@@ -116,7 +114,7 @@ class _Part:
 def _chunk_pass(shared: tuple, item: tuple) -> _Part:
     """Worker: one chunk of one assignment pass (module docstring)."""
     spec, P, V, scales, accumulate, moments, chunk_size, cache_bytes = shared
-    i0, i1, idx, forced = item
+    i0, i1, idx, forced, window = item
     t0 = time.perf_counter()
     src = _open(spec)
     K, C, R, A, H = P.shape
@@ -124,7 +122,11 @@ def _chunk_pass(shared: tuple, item: tuple) -> _Part:
     bank = PoseBank(P, V, scales)
     cache = None
     if idx is None and cache_bytes > 0:
-        cache = _CACHES.setdefault((spec, A, chunk_size), _SpectraCache(cache_bytes))
+        key = (spec, A, chunk_size)
+        if key not in _CACHES:
+            _CACHES.clear()  # one cache per worker: a new source or chunking replaces the old one
+            _CACHES[key] = _SpectraCache(cache_bytes)
+        cache = _CACHES[key]
     o = cache.get(i0) if cache is not None else None
     if o is None or moments:
         x, w = _read(src, i0, i1, idx)
@@ -132,23 +134,13 @@ def _chunk_pass(shared: tuple, item: tuple) -> _Part:
         o = bank.spectra(x, w)
         if cache is not None:
             cache.put(i0, o)
-    m = bank.match_spectra(o)
-    n = o.shape[1]
-    lab = np.argmin(m.D, axis=1) if forced is None else np.asarray(forced)
-    r = np.arange(n)
-    part = _Part(lab.astype(np.int64), m.yaw_deg[r, lab], m.scale[r, lab], m.D[r, lab])
-    if not accumulate:
-        part.seconds = time.perf_counter() - t0
-        return part
-    scale_index = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
-    ok = np.flatnonzero(np.isfinite(part.dist))
-    group = lab[ok] * S + np.array([scale_index[float(s)] for s in part.scale[ok]], np.int64)
-    sums = _AlignedSums(K, S, A, (C + 2) * R * H)
-    sums.add(o[:, torch.from_numpy(ok)], part.yaw[ok], group)
-    part.tot = sums.result(scales, (C + 2, R, H))
-    if moments:
-        msums = _AlignedSums(K, S, A, (C + 1) * R * H)
-        msums.add(_moment_spectra(x[ok], w[ok], bank.dft), part.yaw[ok], group)
+    sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
+    msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
+    part = _Part(*_chunk_step(bank, o, x if moments else None, w if moments else None, forced, window, scales,
+                              sums, msums))
+    if sums is not None:
+        part.tot = sums.result(scales, (C + 2, R, H))
+    if msums is not None:
         part.extra = msums.result(scales, (C + 1, R, H))
     part.seconds = time.perf_counter() - t0
     return part
@@ -230,19 +222,23 @@ class ExecutorSource:
         return ExecutorSource(self.spec, self.executor, chunk_size=self.chunk_size, cache_mb=self.cache_mb,
                               indices=idx if self.indices is None else self.indices[idx])
 
-    def _items(self, chunk_size: int, forced: np.ndarray | None = None) -> list[tuple]:
+    def _items(self, chunk_size: int, forced: np.ndarray | None = None, window: np.ndarray | None = None
+               ) -> list[tuple]:
         cs = self.chunk_size or chunk_size
-        return [(i0, i1, None if self.indices is None else self.indices[i0:i1],
-                 None if forced is None else forced[i0:i1]) for i0, i1 in _chunks(len(self), cs)]
+        cut = lambda a, i0, i1: None if a is None else a[i0:i1]  # noqa: E731
+        return [(i0, i1, cut(self.indices, i0, i1), cut(forced, i0, i1), cut(window, i0, i1))
+                for i0, i1 in _chunks(len(self), cs)]
 
     def assign_pass(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
-                    accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None):
+                    accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
+                    scale_index: np.ndarray | None = None):
         """The engine's ``_assign_pass`` (same arguments and results) as a map-reduce over chunks."""
         from .engine import _pass_outputs
         cs = self.chunk_size or chunk_size
         shared = (self.spec, np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales), accumulate,
                   moments, cs, int(self.cache_mb * 2**20))
-        red = self.executor.map(_chunk_pass, self._items(chunk_size, forced), shared=shared, fold=_fold_parts)
+        red = self.executor.map(_chunk_pass, self._items(chunk_size, forced, scale_index), shared=shared,
+                                fold=_fold_parts)
         self.last_seconds = red.seconds  # the workers' seconds per chunk, for the scale benchmark
         labels = np.concatenate(red.labels).astype(np.int64)
         yaw, scale, dist = (np.concatenate(a).astype(np.float32) for a in (red.yaw, red.scale, red.dist))

@@ -101,7 +101,9 @@ def _chunks(n: int, size: int):
 
 
 def _gather(source: Source, idx: np.ndarray, chunk_size: int) -> tuple[np.ndarray, np.ndarray]:
-    """Objects at sorted indices ``idx``, read chunk by chunk."""
+    """Objects at sorted indices ``idx``, read chunk by chunk (or by the source's own ``gather``)."""
+    if hasattr(source, "gather"):  # a source that reads just those rows (mine.distributed.ExecutorSource)
+        return source.gather(idx)
     xs, ws = [], []
     for i0, i1 in _chunks(len(source), chunk_size):
         sel = idx[(idx >= i0) & (idx < i1)]
@@ -284,7 +286,12 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     ``forced`` (N,) fixes the labels (seeding): poses are then those against the forced prototype.
     ``cache`` keeps object spectra between passes (same source and chunk_size only).  ``scale_index``
     (N,) restricts each object's scale search to its previous best scale +-1 (intermediate passes).
+    A source with an ``assign_pass`` method runs the pass itself (``mine.distributed.ExecutorSource``: a
+    map-reduce over chunks on an executor, with the same arguments and results).
     """
+    if hasattr(source, "assign_pass"):
+        return source.assign_pass(P, V, scales, chunk_size, accumulate, n_worst, moments=moments, forced=forced,
+                                  scale_index=scale_index)
     N = len(source)
     K, C, R, A, H = P.shape
     S = len(scales)
@@ -295,7 +302,6 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     dist = np.empty(N, np.float32)
     sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
     msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
-    scale_pos = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
     for i0, i1 in _chunks(N, chunk_size):
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
@@ -306,26 +312,53 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             o = bank.spectra(x, w)
             if cache is not None:
                 cache.put(i0, o)
-        m = bank.match_spectra(o, scale_index=None if scale_index is None else scale_index[i0:i1])
-        lab = np.argmin(m.D, axis=1) if forced is None else forced[i0:i1]
-        r = np.arange(i1 - i0)
-        labels[i0:i1] = lab
-        yaw[i0:i1] = m.yaw_deg[r, lab]
-        scale[i0:i1] = m.scale[r, lab]
-        d = m.D[r, lab]
-        dist[i0:i1] = d
-        if not accumulate:
-            continue
-        ok = np.flatnonzero(np.isfinite(d))
-        group = lab[ok] * S + np.array([scale_pos[float(s)] for s in scale[i0:i1][ok]], np.int64)
-        # all members usually match; indexing would copy the chunk's spectra
-        sums.add(o if ok.size == i1 - i0 else o[:, torch.from_numpy(ok)], yaw[i0:i1][ok], group)
-        if moments:
-            msums.add(_moment_spectra(x[ok], w[ok], bank.dft), yaw[i0:i1][ok], group)
+        labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
+            bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
+            None if scale_index is None else scale_index[i0:i1], scales, sums, msums)
     if not accumulate:
         return labels, yaw, scale, dist, None, None, None, None, None
-    count = np.bincount(labels[np.isfinite(dist)], minlength=K)
     tot = sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
+    extra = msums.result(scales, (C + 1, R, H)) if moments else None
+    return _pass_outputs(source, labels, yaw, scale, dist, tot, extra, P, V, n_worst, chunk_size)
+
+
+def _chunk_step(bank: PoseBank, o: torch.Tensor, x: np.ndarray | None, w: np.ndarray | None,
+                forced: np.ndarray | None, scale_window: np.ndarray | None, scales: tuple[float, ...],
+                sums: _AlignedSums | None, msums: _AlignedSums | None
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """One chunk of a pass (the map step): best pose of each object, given its spectra o (2F, n, (C + 2) R H),
+    against the bank's prototypes; with ``sums`` the members are added aligned into their (prototype,
+    scale) sums, with ``msums`` also their moments from x (n, C, R, A, H), w (n, R, A, H).  ``forced`` (n,)
+    fixes the labels; ``scale_window`` (n,) limits the scale search (see :func:`_assign_pass`).
+    Returns labels (n,) int64, yaw_deg, scale, dist (n,) float32.
+    """
+    m = bank.match_spectra(o, scale_index=scale_window)
+    n = o.shape[1]
+    lab = np.argmin(m.D, axis=1) if forced is None else np.asarray(forced)
+    r = np.arange(n)
+    yaw = m.yaw_deg[r, lab].astype(np.float32)
+    scale = m.scale[r, lab].astype(np.float32)
+    d = m.D[r, lab].astype(np.float32)
+    if sums is not None:
+        S = len(scales)
+        scale_pos = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
+        ok = np.flatnonzero(np.isfinite(d))
+        group = lab[ok] * S + np.array([scale_pos[float(s)] for s in scale[ok]], np.int64)
+        # all members usually match; indexing would copy the chunk's spectra
+        sums.add(o if ok.size == n else o[:, torch.from_numpy(ok)], yaw[ok], group)
+        if msums is not None:
+            msums.add(_moment_spectra(x[ok], w[ok], bank.dft), yaw[ok], group)
+    return lab.astype(np.int64), yaw, scale, d
+
+
+def _pass_outputs(source: Source, labels: np.ndarray, yaw: np.ndarray, scale: np.ndarray, dist: np.ndarray,
+                  tot: np.ndarray, extra: np.ndarray | None, P: np.ndarray, V: np.ndarray, n_worst: int,
+                  chunk_size: int):
+    """An accumulating pass's results (see :func:`_assign_pass`) from its per-object arrays (N,), the summed
+    aligned sums tot (K, C + 2, R, A, H) (blocks [w |x|^2, w, w x_1 .. w x_C]) and moments extra
+    (K, C + 1, R, A, H) or None (the reduce step; ``mine.distributed`` sums them over workers' chunks)."""
+    K, C = P.shape[:2]
+    count = np.bincount(labels[np.isfinite(dist)], minlength=K)
     num, den = tot[:, 2:], tot[:, 1]
     worst = (np.empty((0,) + P.shape[1:], np.float32), np.empty((0,) + V.shape[1:], np.float32))
     if n_worst and (count == 0).any():
@@ -335,10 +368,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         wx, ww = _gather(source, top, chunk_size)
         order = np.argsort(-dd[top], kind="stable")  # worst first
         worst = (wx[order], ww[order])
-    mom = None
-    if moments:
-        extra = msums.result(scales, (C + 1, R, H))
-        mom = (den, num, extra[:, :C], extra[:, C])
+    mom = None if extra is None else (den, num, extra[:, :C], extra[:, C])
     return labels, yaw, scale, dist, num, den, count, worst, mom
 
 
