@@ -91,6 +91,8 @@ def _read(src, i0: int, i1: int, idx: np.ndarray | None) -> tuple[np.ndarray, np
     """Objects i0..i1-1 of the source, or the objects at sorted ``idx``."""
     if idx is None:
         x, w = src.read(i0, i1)
+        if isinstance(src, ArraySource):  # a read-only memory map: copy the chunk (torch wants writable arrays)
+            x, w = np.array(x), np.array(w)
     elif isinstance(src, ArraySource):
         x, w = src.X[idx], src.W[idx]
     else:  # a StoreSource: read just those rows

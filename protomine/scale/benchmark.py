@@ -49,6 +49,11 @@ def _peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: KiB
 
 
+def _rss_mb() -> float:
+    import psutil  # a dependency of distributed
+    return psutil.Process().memory_info().rss / 2**20
+
+
 def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, project_workers: int = 50) -> dict:
     """Measured local vs 2-worker LocalCluster pass times and the projection (module docstring)."""
     from distributed import Client, LocalCluster
@@ -99,7 +104,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                 busy.append((secs.sum(), max(secs[0::2].sum(), secs[1::2].sum())))
             same = bool(np.array_equal(got[0], ref[0]))
             max_rel = float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12))
-            worker_rss = client.run(_peak_rss_mb)
+            worker_rss = client.run(_rss_mb)
             ex.close()
         finally:
             client.close()
@@ -133,7 +138,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "local_s": local_s, "cluster_workers": 2, "cluster_s": cluster_s, "speedup": local_s / cluster_s,
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
         "cluster_equal_labels": same, "cluster_max_rel_sum_diff": max_rel,
-        "worker_peak_rss_mb": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),
+        "worker_rss_mb_after": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),
         "t_obj_s": t_obj, "t_task_s": t_task, "t_fold_s": fold_s, "b_part_bytes": int(b_part),
         "bandwidth_Bps": BANDWIDTH_BPS,
         "projection": [{"objects": N, "workers": Wk, "chunk_size": proj_chunk, "chunks": nc, **terms,
