@@ -24,77 +24,31 @@ auroc, unknown_flagged, known_flagged, cluster_to_class, per_class (n, accuracy,
 """
 from __future__ import annotations
 
-import csv
-from collections import Counter
 from pathlib import Path
 
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 from sklearn.metrics import roc_auc_score
 
-from ..audit.metrics import symmetry_to_period_deg, yaw_error_deg, yaw_offset_deg
+from ..audit.metrics import symmetry_to_period_deg, yaw_error_deg
 from ..errors import InputError
+from ..mine.evaluate import cluster_yaw_offsets, majority_map, read_truth_table
 from ..mine.library import Library
 
 DEFAULT_RADIUS_M = 0.05
 
 
-def read_truth_rows(path: str | Path) -> dict[str, dict]:
-    """Truth CSV -> {object id: {"class", "yaw_deg", "capture", "point" (3,) or None}}."""
-    path = Path(path)
-    if not path.is_file():
-        raise InputError(path, None, "truth CSV not found")
-    with open(path, newline="") as fh:
-        reader = csv.DictReader(fh)
-        cols = reader.fieldnames or []
-        if "object" not in cols or not ({"class", "label"} & set(cols)):
-            raise InputError(path, "header", f"expected columns object and class (or label), got {cols}")
-        out = {}
-        for line, row in enumerate(reader, start=2):
-            try:
-                yaw = float(row["yaw_deg"]) if row.get("yaw_deg") not in (None, "") else None
-                point = np.array([float(row[c]) for c in "xyz"]) if all(row.get(c) for c in "xyz") else None
-            except ValueError:
-                raise InputError(path, f"row {line}", "expected numbers in yaw_deg, x, y, z") from None
-            oid = row["object"]
-            out[oid] = {"class": row.get("class") or row.get("label"), "yaw_deg": yaw, "point": point,
-                        "capture": row.get("capture") or oid.split("/")[0], "split": row.get("split", "")}
-    return out
-
-
 def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Library,
                     mining_truth: str | Path, *, radius_m: float = DEFAULT_RADIUS_M) -> dict:
     """The label targets for ``records`` (see the module docstring for every figure)."""
-    truth = read_truth_rows(truth_full_csv)
-    mined = read_truth_rows(mining_truth)
+    truth = read_truth_table(truth_full_csv)
+    mined = read_truth_table(mining_truth)
     members = [str(o) for o in library.members["object"]]
     missing = [o for o in members if o not in mined]
     if missing:
         raise InputError(mining_truth, "object", f"expected truth for every mined member, {len(missing)} missing "
                          f"(e.g. {missing[0]!r})")
     return _evaluate(records, truth, library, mined, radius_m)
-
-
-def cluster_classes(library: Library, mined: dict[str, dict]) -> dict[int, str | None]:
-    """Majority truth class of each prototype's mined members (None for an empty prototype)."""
-    m = library.members
-    out = {}
-    for k in range(library.n_clusters):
-        labs = [mined[str(o)]["class"] for o, c in zip(m["object"], m["cluster"]) if c == k]
-        out[k] = Counter(labs).most_common(1)[0][0] if labs else None
-    return out
-
-
-def cluster_yaw_offsets(library: Library, mined: dict[str, dict], classes: dict[int, str | None]) -> dict[int, float]:
-    """Per prototype: truth = predicted + offset (mod period), from its mined members of the majority class."""
-    m = library.members
-    out = {}
-    for k in range(library.n_clusters):
-        period = symmetry_to_period_deg(int(library.prototypes["symmetry"][k]))
-        sel = [(mined[str(o)]["yaw_deg"], y) for o, c, y in zip(m["object"], m["cluster"], m["yaw_deg"])
-               if c == k and mined[str(o)]["class"] == classes[k] and mined[str(o)]["yaw_deg"] is not None]
-        out[k] = yaw_offset_deg([t for t, _ in sel], [p for _, p in sel], period) if sel else 0.0
-    return out
 
 
 def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) -> list[str | None]:
@@ -119,8 +73,8 @@ def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) 
 
 
 def _evaluate(records, truth, library, mined, radius_m) -> dict:
-    classes = cluster_classes(library, mined)
-    offsets = cluster_yaw_offsets(library, mined, classes)
+    classes = majority_map(library, mined)
+    offsets = cluster_yaw_offsets(library, mined, prototype_period=True)
     known_classes = {mined[str(o)]["class"] for o in library.members["object"]}
     ids = match_records(records, truth, radius_m)
     rows = []

@@ -14,19 +14,35 @@ from pathlib import Path
 
 import numpy as np
 
-from ..audit.metrics import clustering_scores, yaw_error_deg, yaw_offset_deg
+from ..audit.metrics import clustering_scores, symmetry_to_period_deg, yaw_error_deg, yaw_offset_deg
+from ..errors import InputError
 from .library import Library
 
 
 def read_truth_table(path: str | Path) -> dict[str, dict]:
-    """object id -> row (label/class, yaw_deg, symmetry when present)."""
+    """Truth CSV (object, class or label, [yaw_deg, symmetry, capture, x, y, z, split]) ->
+    {object id: {"label", "class" (the same), "yaw_deg" (or None), "symmetry", "capture", "point" (3,) or
+    None, "split"}}."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(path, None, "truth CSV not found")
     with open(path, newline="") as fh:
-        rows = list(csv.DictReader(fh))
-    out = {}
-    for r in rows:
-        label = r.get("class") or r.get("label")
-        out[r["object"]] = {"label": label, "yaw_deg": float(r["yaw_deg"]) if r.get("yaw_deg") else None,
-                            "symmetry": r.get("symmetry", "none") or "none", "split": r.get("split", "")}
+        reader = csv.DictReader(fh)
+        cols = reader.fieldnames or []
+        if "object" not in cols or not ({"class", "label"} & set(cols)):
+            raise InputError(path, "header", f"expected columns object and class (or label), got {cols}")
+        out = {}
+        for line, row in enumerate(reader, start=2):
+            try:
+                yaw = float(row["yaw_deg"]) if row.get("yaw_deg") not in (None, "") else None
+                point = np.array([float(row[c]) for c in "xyz"]) if all(row.get(c) for c in "xyz") else None
+            except ValueError:
+                raise InputError(path, f"row {line}", "expected numbers in yaw_deg, x, y, z") from None
+            oid = row["object"]
+            label = row.get("class") or row.get("label")
+            out[oid] = {"label": label, "class": label, "yaw_deg": yaw, "point": point,
+                        "symmetry": row.get("symmetry") or "none", "capture": row.get("capture") or oid.split("/")[0],
+                        "split": row.get("split", "")}
     return out
 
 
@@ -54,17 +70,21 @@ def majority_map(lib: Library, truth: dict[str, dict]) -> dict[int, str]:
     return out
 
 
-def cluster_yaw_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, float]:
-    """Per-cluster offset truth - predicted (circular mean modulo the majority class's period)."""
+def cluster_yaw_offsets(lib: Library, truth: dict[str, dict], *, prototype_period: bool = False) -> dict[int, float]:
+    """Per-cluster offset truth - predicted (circular mean over the members of the majority class).
+
+    The period is the majority class's true symmetry, or with ``prototype_period`` the prototype's
+    detected one (what a user of the library sees); a continuous period gives offset 0.
+    """
     maj = majority_map(lib, truth)
     out = {}
     m = lib.members
     for k, label in maj.items():
-        sel = [i for i, (o, c) in enumerate(zip(m["object"], m["cluster"])) if c == k and o in truth and truth[o]["label"] == label]
-        if not sel:
-            continue
-        per = class_period(truth[m["object"][sel[0]]]["symmetry"])
-        if per == 0:
+        sel = [i for i, (o, c) in enumerate(zip(m["object"], m["cluster"]))
+               if c == k and o in truth and truth[o]["label"] == label and truth[o]["yaw_deg"] is not None]
+        per = (symmetry_to_period_deg(int(lib.prototypes["symmetry"][k])) if prototype_period
+               else class_period(truth[m["object"][sel[0]]]["symmetry"]) if sel else 0.0)
+        if not sel or per == 0 or not np.isfinite(per):
             out[k] = 0.0
             continue
         t = np.array([truth[m["object"][i]]["yaw_deg"] for i in sel])
