@@ -161,6 +161,7 @@ def _bench_label(quick: bool, seed: int) -> dict:
 
 BENCH_ROWS.append(("label", _bench_label))
 
+
 def _bench_scale(quick: bool, seed: int) -> dict:
     """(d) scale-out [``scale``], only with ``--scale`` (it starts a Dask LocalCluster)."""
     from .scale.benchmark import bench_scale
@@ -168,7 +169,6 @@ def _bench_scale(quick: bool, seed: int) -> dict:
 
 
 SCALE_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [("scale", _bench_scale)]
-
 
 
 def _print_section(name: str, figures: dict) -> None:
