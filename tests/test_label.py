@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 from PIL import Image
-from scipy.stats import norm
+from scipy.stats import t as student_t
 from typer.testing import CliRunner
 
 from protomine.cli import app
@@ -117,11 +117,11 @@ def test_yaw_arrow_turns_counter_clockwise_about_up():
     np.testing.assert_allclose(d, [0.0, 1.0, 0.0], atol=1e-12)
 
 
-def test_unknown_threshold_is_the_lognormal_quantile():
-    # score = 1 - Phi((ln d - mu) / sigma): the distance exp(mu + sigma * Phi^-1(1 - u)) scores exactly u
-    # (scipy.stats.norm as reference implementation)
+def test_unknown_threshold_is_the_student_t_quantile():
+    # score = 1 - T_4((ln d - mu) / sigma): the distance exp(mu + sigma * T_4^-1(1 - u)) scores exactly u
+    # (scipy.stats.t as reference implementation)
     mu, sigma, u = -4.0, 0.3, 0.025
-    d = math.exp(mu + sigma * norm.ppf(1 - u))
+    d = math.exp(mu + sigma * student_t.ppf(1 - u, 4))
     assert match_score(np.array([d]), mu, sigma)[0] == pytest.approx(u, rel=1e-9)
     assert match_score(np.array([d * 1.01]), mu, sigma)[0] < u
 

@@ -19,10 +19,10 @@ A single example is a noisier reference than a mined prototype (a mean of many m
 distances are larger.  How much larger is measured on the library itself, with no labels: for every
 mined cluster with at least ``MIN_CAL_MEMBERS`` members in the store, its *typical* member (the one at
 the median distance to its prototype) serves as a one-shot exemplar and the other members (at most
-``MAX_CAL_MEMBERS``, evenly spread) are matched against it.  A robust log-normal fit of those distances
+``MAX_CAL_MEMBERS``, evenly spread) are matched against it.  A robust fit (median, MAD) of those log distances
 per cluster (median, 1.4826 MAD of ln d) is pooled over clusters by the median:
 
-    mu_1 = median_k mu_k,   sigma_1 = median_k sigma_k,   score = 1 - Phi((ln d - mu_1) / sigma_1)
+    mu_1 = median_k mu_k,   sigma_1 = median_k sigma_k,   score = 1 - T_4((ln d - mu_1) / sigma_1)
 
 i.e. the fraction of a class's instances expected to fit a single exemplar of that class worse than
 this object does, the same meaning as ``library.match_score`` of mined prototypes.  It is therefore
@@ -48,7 +48,7 @@ from ..atomic import write_text
 from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
-from ..mine.library import Library, lognormal_fit, match_score, read_library, write_library
+from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
 from ..mine.pipeline import period_of, reduce_yaw, write_assignments
 from ..mine.posesearch import pose_distances
 from ..mine.symmetry import detect_symmetry
@@ -137,7 +137,7 @@ def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float
         Xo, Wo = _features(store, flat, weights)
         D = pose_distances(Xo, Wo, Pe, Ve, scales=scales).D
         pos = {int(i): j for j, i in enumerate(flat)}
-        fits = [lognormal_fit(D[[pos[i] for i in g], j][np.isfinite(D[[pos[i] for i in g], j])]) for j, g in enumerate(groups)]
+        fits = [log_distance_fit(D[[pos[i] for i in g], j][np.isfinite(D[[pos[i] for i in g], j])]) for j, g in enumerate(groups)]
         fits = [f for f in fits if np.isfinite(f[0])]
         if fits:
             return float(np.median([f[0] for f in fits])), float(np.median([f[1] for f in fits])), f"exemplars of {len(fits)} clusters"

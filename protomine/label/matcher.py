@@ -16,8 +16,8 @@ Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
   up from the object frame's x axis; reported modulo the prototype's period (0 for continuous symmetry).
 
 Score (documented once, used by the open-set decision):
-    score_k = 1 - Phi((ln d_k - mu_k) / sigma_k)
-with (mu_k, sigma_k) the library's log-normal fit of the distances of *one-frame* volumes of the mined
+    score_k = 1 - T_4((ln d_k - mu_k) / sigma_k)        (``library.match_score``: Student-t tail, 4 dof)
+with (mu_k, sigma_k) the library's robust fit (median, scaled MAD) of the log of the distances of *one-frame* volumes of the mined
 objects to their own prototype (``single_mu``, ``single_sigma``, learnt at mining time without labels):
 the fraction of single views of prototype k's own members expected to fit worse than this one.  It is in
 [0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
@@ -26,7 +26,7 @@ the assignment rule of mining itself (an object with no observed cell in common 
 cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
 "unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
 prototype's own single views, i.e. the per-prototype distance threshold
-``exp(mu_k + sigma_k * Phi^-1(1 - unknown_score))``.
+``exp(mu_k + sigma_k * T_4^-1(1 - unknown_score))``.
 
 Record (one dict per object and frame; JSON-ready):
     capture, frame, object, bbox [u0, v0, u1, v1) pixels, center_world [x, y, z] m, base_world [x, y, z]

@@ -6,7 +6,7 @@ Steps
    its symmetry period.
 2. Mean aligned store volumes per prototype (for pictures): each member volume is rolled back by its
    yaw (Fourier shift along azimuth) and averaged with its observation counts as weights.
-3. Label-free calibration: log-normal fits of the members' distances (fused objects) and of the
+3. Label-free calibration: robust fits (median, MAD) of the log distances of the members' distances (fused objects) and of the
    leave-one-out distances of the store's one-frame volumes to their object's prototype rebuilt without
    that object (single views; see ``single_view_distances``), so that
    ``library.match_score`` is comparable across clusters and usable for single views.
@@ -28,7 +28,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..provenance import provenance, provenance_of, write_sidecar
-from .library import Library, lognormal_fit, match_score, write_library
+from .library import Library, log_distance_fit, match_score, write_library
 from .posesearch import pose_distances, shift_volume
 
 
@@ -135,7 +135,7 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     n = np.bincount(labels, minlength=K)
     k_of = labels[store.single_object]
     out = np.full(len(k_of), np.inf)
-    # a log-normal fit needs tens of samples, not thousands: at most max_objects_per_cluster objects per
+    # a location-scale fit needs tens of samples, not thousands: at most max_objects_per_cluster objects per
     # prototype (evenly spread over its members, deterministic) keep the cost bounded on large stores
     have = np.unique(store.single_object)
     objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
@@ -202,11 +202,11 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         second_d = D[np.arange(len(labels)), second] if K > 1 else np.full(len(labels), np.inf)
     else:
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
-    fused = [lognormal_fit(dist[labels == k]) for k in range(K)]
+    fused = [log_distance_fit(dist[labels == k]) for k in range(K)]
     sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
-    single = [lognormal_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
+    single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
     # pooled sigma where a cluster has too few samples for its own spread
     pooled_f = float(np.median([s for _, s in fused])) if K else 0.1
     pooled_s = float(np.median([s for _, s in single])) if K else 0.1
