@@ -313,6 +313,13 @@ def _best_pose_torch(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.nda
     return D.astype(np.float32), yaw.astype(np.float32), np.asarray(scales, np.float32)[si.numpy()]
 
 
+def _prepare(X, W, P, V, scales) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, tuple[float, ...]]:
+    """Validate once at the boundary: float32 arrays of matching shapes and positive scales."""
+    X, W, P, V = (np.asarray(a, dtype=np.float32) for a in (X, W, P, V))
+    _check_arrays(X, W, P, V)
+    return X, W, P, V, _check_scales(scales)
+
+
 def pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *,
                    scales: Sequence[float] = (1.0,), return_all: bool = False,
                    chunk_size: int = 1024, min_overlap: float = 1e-3) -> PoseMatch:
@@ -322,12 +329,7 @@ def pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *
     for the distance.  Returns a :class:`PoseMatch` with D, yaw_deg, scale of shape (N, K)
     (and all_D (N, K, S, A) with ``return_all``).
     """
-    X = np.asarray(X, dtype=np.float32)
-    W = np.asarray(W, dtype=np.float32)
-    P = np.asarray(P, dtype=np.float32)
-    V = np.asarray(V, dtype=np.float32)
-    _check_arrays(X, W, P, V)
-    scales = _check_scales(scales)
+    X, W, P, V, scales = _prepare(X, W, P, V, scales)
     if chunk_size < 1:
         raise ValueError(f"chunk_size must be >= 1, got {chunk_size}")
     return _pose_distances(X, W, PoseBank(P, V, scales), return_all=return_all,
@@ -438,12 +440,7 @@ def pose_distances_naive(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndar
                          scales: Sequence[float] = (1.0,), return_all: bool = False,
                          chunk_size: int = 1024, min_overlap: float = 1e-3) -> PoseMatch:
     """Slow reference twin of :func:`pose_distances`: rolls every scaled prototype for every shift."""
-    X = np.asarray(X, dtype=np.float32)
-    W = np.asarray(W, dtype=np.float32)
-    P = np.asarray(P, dtype=np.float32)
-    V = np.asarray(V, dtype=np.float32)
-    _check_arrays(X, W, P, V)
-    scales = _check_scales(scales)
+    X, W, P, V, scales = _prepare(X, W, P, V, scales)
     K, A = P.shape[0], P.shape[3]
     Ps, Vs = scale_prototypes(P, V, scales)
     allD = np.empty((X.shape[0], K, len(scales), A), np.float32)
