@@ -231,3 +231,12 @@ def test_match_by_point_nearest_within_radius():
 def test_match_by_point_unknown_capture_is_error():
     with pytest.raises(InputError, match="unknown capture"):
         match_truth([TruthRow(row=2, label="x", capture="zz", point=(0, 0, 0))], _table(), radius_m=0.05)
+
+
+def test_unlabelled_cluster_named_like_a_clean_one_is_a_duplicate():
+    # cluster 3 has no hand labels, but the user named it "mug" like the clean mug clusters: suggest a merge
+    asg, rows, objects = _scene(0)
+    a = build_audit(asg, rows, objects, symmetry_period_deg={0: 360.0, 1: 180.0, 2: 360.0, 3: float("inf")},
+                    names={3: "mug"}, cfg=load_config("fast"), rng=np.random.default_rng(0))
+    by = {c["cluster"]: c for c in a["clusters"]}
+    assert by[3]["verdict"] == "duplicate" and by[3]["merge_with"] in (0, 2)

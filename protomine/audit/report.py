@@ -215,11 +215,15 @@ def _per_cluster(asg, cluster_ids, lab_idx, lab_cluster, lab_label, lab_rows, pe
 
 
 def _mark_duplicates(clusters: list[dict]) -> None:
-    """Clean clusters sharing a majority label: all but the best-supported one become duplicates of it."""
+    """Clean clusters sharing a majority label, and unlabelled clusters the user named like one: all but the
+    best-supported one become duplicates of it (a merge is suggested)."""
     groups: dict[str, list[dict]] = {}
     for e in clusters:
         if e["verdict"] == "clean":
             groups.setdefault(e["majority_label"], []).append(e)
+    for e in clusters:
+        if e["verdict"] == "unlabelled" and e.get("name") and e["name"] in groups:
+            groups[e["name"]].append(e)
     for group in groups.values():
         if len(group) < 2:
             continue
