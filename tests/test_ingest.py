@@ -112,3 +112,24 @@ def test_store_replaces_reingested_capture_and_keeps_others_bit_identical(tmp_pa
     assert len(s2.captures["name"]) == 2
     assert np.all(s2.captures["plane_residual_m"] < 0.003)
     assert not [p for p in tmp_path.iterdir() if ".tmp-" in p.name]
+
+
+def test_flying_pixels_at_depth_edges_do_not_inflate_the_object(tmp_path, cfg):
+    # real sensors average foreground and background at depth edges, and masks often include those pixels
+    # (common practice: drop readings lying between their neighbours); build that on a rendered cylinder
+    from PIL import Image
+    from scipy.ndimage import binary_dilation
+    _capture(tmp_path / "c", [(S.cylinder(0.04, 0.08), 0.0, (0.0, 0.0), (0.2, 0.3, 0.8))], world_seed=4)
+    for p in sorted((tmp_path / "c" / "depth").glob("*.png")):
+        depth = np.asarray(Image.open(p)).astype(np.int64)
+        mpath = tmp_path / "c" / "masks" / p.name
+        mask = np.asarray(Image.open(mpath)).astype(np.int64)
+        ring = binary_dilation(mask > 0, iterations=1) & (mask == 0) & (depth > 0)
+        fg = np.where(mask > 0, depth, 0).max()
+        depth[ring] = (depth[ring] + fg) // 2            # halfway between the object and what lies behind
+        mask = np.where(ring, mask.max(), mask)           # and the sloppy mask claims them
+        Image.fromarray(depth.astype(np.uint16)).save(p)
+        Image.fromarray(mask.astype(np.uint16)).save(mpath)
+    scene = find_objects(read_capture(tmp_path / "c"), cfg, np.random.default_rng(0))
+    (p,) = scene.proposals
+    assert abs(p.frame.radius - 0.04) < 0.006 and abs(p.frame.height - 0.08) < 0.006

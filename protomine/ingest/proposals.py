@@ -28,6 +28,8 @@ from .volume import ObjectFrame, View
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
 DBSCAN_MIN_SAMPLES = 5
+FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
+FLYING_TOL_REL = 0.03
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
 FOOTPRINT_OVERLAP = 0.5     # groups with footprint centres closer than this x (r_i + r_j) are one object
 
@@ -41,6 +43,7 @@ class FrameData:
     cam_to_world: np.ndarray  # (4, 4)
     points: np.ndarray        # (M, 3) world points of every valid pixel
     pixels: np.ndarray        # (M,) flat pixel indices
+    steady: np.ndarray        # (M,) bool: not a flying pixel (see flying_pixels); only these may join objects
 
 
 @dataclass
@@ -69,6 +72,21 @@ class SceneObjects:
         return out
 
 
+def flying_pixels(depth: np.ndarray) -> np.ndarray:
+    """(H, W) bool: readings that lie between a nearer and a farther neighbour by more than
+    FLYING_TOL_M (or FLYING_TOL_REL x depth) on both sides, in a 3x3 window.
+
+    Depth sensors average foreground and background at depth edges ("flying pixels", common practice to
+    drop them); a true edge pixel sits at one of the two depths and is kept.
+    """
+    from scipy.ndimage import maximum_filter, minimum_filter
+    valid = depth > 0
+    hi = maximum_filter(np.where(valid, depth, 0.0), size=3)
+    lo = minimum_filter(np.where(valid, depth, np.inf), size=3)
+    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * depth)
+    return valid & (depth - lo > tol) & (hi - depth > tol)
+
+
 def load_frames(cap: Capture, frame_ids: list[str] | None = None,
                 progress: Callable[[str], None] | None = None) -> list[FrameData]:
     K = cap.intrinsics.K
@@ -84,7 +102,8 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
             raise InputError(cap.frame_file("rgb", fr.id), "size", f"expected {depth.shape[::-1]} like the depth image, got {rgb.shape[1::-1]}")
         mask = cap.mask(fr.id)
         pc, idx = depth_to_points(depth, K)
-        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx))
+        steady = ~flying_pixels(depth).reshape(-1)[idx]
+        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx, steady))
         if progress:
             progress(f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
     return out
@@ -180,7 +199,7 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
     for fd in frames:
         ids = fd.mask.reshape(-1)[fd.pixels]
         h = plane.height(fd.points)
-        keep = (ids > 0) & (h > above)
+        keep = (ids > 0) & (h > above) & fd.steady
         for oid in np.unique(ids[keep]):
             sel = keep & (ids == oid)
             per_id.setdefault(int(oid), {})[fd.id] = fd.pixels[sel]
@@ -202,7 +221,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     above_sel = []
     for fd in frames:
         h = plane.height(fd.points)
-        above_sel.append((h > above_plane_margin(plane, cfg)) & (h < 2.0))
+        above_sel.append((h > above_plane_margin(plane, cfg)) & (h < 2.0) & fd.steady)
     pts = np.concatenate([fd.points[s] for fd, s in zip(frames, above_sel)])
     if len(pts) == 0:
         return []
