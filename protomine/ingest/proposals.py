@@ -31,7 +31,7 @@ DBSCAN_MIN_SAMPLES = 5
 FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
 FLYING_TOL_REL = 0.03
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
-FOOTPRINT_OVERLAP = 0.5     # groups with footprint centres closer than this x (r_i + r_j) are one object
+FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
 @dataclass
@@ -265,17 +265,25 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
 
 
 def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit) -> np.ndarray:
-    """Merge DBSCAN groups whose footprints overlap deeply (one object whose thin parts lost contact).
+    """Merge DBSCAN groups whose footprints overlap (one object whose thin parts lost contact).
 
-    Objects rest side by side on the support surface, so two groups whose footprint circles' centres
-    are closer than FOOTPRINT_OVERLAP x (r_i + r_j) are parts of one object (e.g. a post and its legs).
-    Returns relabelled groups 0..n-1 (noise stays -1).
+    Objects rest side by side on the support surface, so when most (FOOTPRINT_OVERLAP) of one group's
+    footprint lies inside another group's footprint (its 2-D convex hull in the plane), the two are parts
+    of one object (e.g. a post and its legs).  A long group (a wall, a shelf edge) only absorbs what lies
+    over it.  Returns relabelled groups 0..n-1 (noise stays -1).
     """
+    from scipy.spatial import Delaunay
     n = lab.max() + 1
     if n < 2:
         return lab
     B = plane_basis(plane.normal)
-    circles = [min_enclosing_circle(pts[lab == l] @ B[:2].T) for l in range(n)]
+    xy = [pts[lab == l] @ B[:2].T for l in range(n)]
+    hulls = []
+    for q in xy:
+        try:
+            hulls.append(Delaunay(q[ConvexHull(q).vertices]) if len(q) >= 4 else None)
+        except QhullError:
+            hulls.append(None)
     parent = list(range(n))
 
     def root(i):
@@ -285,10 +293,11 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
         return i
 
     for i in range(n):
-        for j in range(i + 1, n):
-            (ci, ri), (cj, rj) = circles[i], circles[j]
-            if np.linalg.norm(ci - cj) < FOOTPRINT_OVERLAP * (ri + rj):
-                parent[root(j)] = root(i)
+        for j in range(n):
+            if i == j or hulls[j] is None or len(xy[i]) > len(xy[j]):
+                continue
+            if np.mean(hulls[j].find_simplex(xy[i]) >= 0) >= FOOTPRINT_OVERLAP:
+                parent[root(i)] = root(j)
     roots = np.array([root(i) for i in range(n)])
     _, new = np.unique(roots, return_inverse=True)
     return np.where(lab >= 0, new[np.maximum(lab, 0)], -1)
