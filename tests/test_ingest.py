@@ -135,25 +135,33 @@ def test_flying_pixels_at_depth_edges_do_not_inflate_the_object(tmp_path, cfg):
     assert abs(p.frame.radius - 0.04) < 0.006 and abs(p.frame.height - 0.08) < 0.006
 
 
-def test_a_wall_behind_the_objects_neither_swallows_them_nor_becomes_one(tmp_path, cfg):
-    # a shelf-like capture: a back wall (a long, tall box) behind three objects, seen from the front only
+def _shelf_capture(path, *, board: float, elevation: float, wall_h: float):
+    """A shelf-like capture: a back wall (a long, tall box) behind three objects, seen from the front only."""
     I = Intrinsics(W, H, 130.0, 130.0, (W - 1) / 2, (H - 1) / 2)
-    objs = [(S.box((0.45, 0.01, 0.35), (0, 0, 0.35)), 0.0, (0.0, 0.22), (0.8, 0.8, 0.75)),
+    objs = [(S.box((0.45, 0.01, wall_h), (0, 0, wall_h)), 0.0, (0.0, 0.22), (0.8, 0.8, 0.75)),
             (S.cylinder(0.04, 0.1), 0.0, (-0.12, 0.05), (0.2, 0.3, 0.8)),
             (S.box((0.05, 0.03, 0.04), (0, 0, 0.04)), 30.0, (0.1, 0.0), (0.8, 0.2, 0.2)),
             (S.sphere(0.04, (0, 0, 0.04)), 0.0, (0.0, -0.1), (0.3, 0.7, 0.3))]
-    scene = Scene([SceneObject(sh, yaw, pos, col) for sh, yaw, pos, col in objs])
+    scene = Scene([SceneObject(sh, yaw, pos, col) for sh, yaw, pos, col in objs], table_half_extent=board)
     Tw = np.eye(4)
     Tw[:3, :3] = Rotation.random(random_state=0).as_matrix()
     frames = []
     for i in range(5):
-        a, el, d = np.deg2rad(-90 + (i - 2) * 15), np.deg2rad(15.0), 0.6
+        a, el, d = np.deg2rad(-90 + (i - 2) * 15), np.deg2rad(elevation), 0.6
         T = look_at(np.array([d * np.cos(el) * np.cos(a), d * np.cos(el) * np.sin(a), d * np.sin(el)]),
                     np.array([0, 0.05, 0.05]), np.array([0, 0, 1.0]))
         r = render(scene, I, T)
         frames.append(dict(id=f"{i:06d}", cam_to_world=Tw @ T, rgb=(np.clip(r.rgb, 0, 1) * 255).astype(np.uint8),
                            depth_m=r.depth))
-    write_capture(tmp_path / "c", intrinsics=I, depth_scale=1000.0, frames=frames)
+    write_capture(path, intrinsics=I, depth_scale=1000.0, frames=frames)
+    return Tw
+
+
+@pytest.mark.parametrize("board,elevation,wall_h", [(0.9, 15.0, 0.35), (0.3, 5.0, 0.5), (0.3, 20.0, 0.5)])
+def test_a_wall_behind_the_objects_is_neither_the_support_nor_an_object(tmp_path, cfg, board, elevation, wall_h):
+    # with a small board and a tall wall the wall holds most depth points; the support is still the board,
+    # because the objects rest on it, and the wall neither swallows the objects nor becomes one
+    Tw = _shelf_capture(tmp_path / "c", board=board, elevation=elevation, wall_h=wall_h)
     found = find_objects(read_capture(tmp_path / "c"), cfg, np.random.default_rng(0), use_masks=False)
-    assert np.degrees(np.arccos(found.plane.normal @ Tw[:3, 2])) < 1.0     # the table, not the wall
+    assert np.degrees(np.arccos(np.clip(found.plane.normal @ Tw[:3, 2], -1, 1))) < 1.0
     assert sorted(round(p.frame.height, 2) for p in found.proposals) == [0.08, 0.08, 0.1]

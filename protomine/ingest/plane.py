@@ -94,3 +94,28 @@ def fit_plane(points: np.ndarray, *, inlier_dist: float, confidence: float = 0.9
         n, d = -n, -d
     resid = float(np.sqrt(np.mean((pts[inl] @ n - d) ** 2))) if inl.any() else float("nan")
     return PlaneFit(normal=n, offset=float(d), inlier_fraction=float(inl.mean()), residual_m=resid, iterations=it)
+
+
+def candidate_planes(points: np.ndarray, *, inlier_dist: float, confidence: float, rng: np.random.Generator,
+                     toward: np.ndarray | None = None, max_planes: int = 3, min_fraction: float = 0.05
+                     ) -> list[tuple[PlaneFit, np.ndarray]]:
+    """Sequential RANSAC: the dominant plane, then the dominant plane of what is left, ...
+
+    Returns up to ``max_planes`` (plane, inlier mask over ``points``) holding at least ``min_fraction`` of
+    all points each, largest first.
+    """
+    pts = np.asarray(points, dtype=np.float64)
+    left = np.ones(len(pts), bool)
+    out: list[tuple[PlaneFit, np.ndarray]] = []
+    while len(out) < max_planes and left.sum() >= max(3, min_fraction * len(pts)):
+        try:
+            plane = fit_plane(pts[left], inlier_dist=inlier_dist, confidence=confidence, rng=rng, toward=toward)
+        except ValueError:
+            break
+        inl = left & (np.abs(plane.height(pts)) < inlier_dist)
+        if inl.sum() < min_fraction * len(pts):
+            break
+        plane.inlier_fraction = float(inl.mean())   # of all points, not of those left
+        out.append((plane, inl))
+        left &= ~inl
+    return out

@@ -22,7 +22,7 @@ from sklearn.cluster import DBSCAN
 from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_world, depth_to_points, plane_basis
-from .plane import PlaneFit, fit_plane
+from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
 
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
@@ -30,6 +30,7 @@ FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1
 DBSCAN_MIN_SAMPLES = 5
 FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
 FLYING_TOL_REL = 0.03
+REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
@@ -110,19 +111,60 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
 
 
 def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.random.Generator) -> PlaneFit:
+    """The support plane: among the dominant planes (sequential RANSAC), the one most objects rest on.
+
+    A table usually dominates the depth images, but on a shelf seen from the front the back wall can hold
+    more points than the board.  So up to three planes are found; the points on none of them are grouped
+    (DBSCAN), and a group *rests* on a plane when its lowest points (2nd percentile of height) are within
+    REST_TOL_M of it and it rises on the cameras' side.  The plane with the most resting groups wins; ties go
+    to the larger plane.  With one plane (the usual case) this is just the RANSAC plane.
+    """
     c = cfg["ingest"]
     pts = np.concatenate([f.points for f in frames])
     if len(pts) > c["max_points_per_capture"]:
         pts = pts[rng.choice(len(pts), c["max_points_per_capture"], replace=False)]
     cams = np.mean([f.cam_to_world[:3, 3] for f in frames], axis=0)
-    try:
-        plane = fit_plane(pts, inlier_dist=c["plane_inlier_m"], confidence=c["plane_confidence"], rng=rng, toward=cams)
-    except ValueError as e:
-        raise InputError(cap.path, "depth", f"no support plane: {e}") from None
-    if plane.inlier_fraction < c["plane_min_inlier_frac"]:
+    cands = candidate_planes(pts, inlier_dist=c["plane_inlier_m"], confidence=c["plane_confidence"], rng=rng,
+                             toward=cams, min_fraction=0.5 * c["plane_min_inlier_frac"])
+    if not cands:
+        raise InputError(cap.path, "depth", f"no support plane: no plane holds {0.5 * c['plane_min_inlier_frac']:.1%} of the "
+                         f"points, expected one with at least {c['plane_min_inlier_frac']:.0%} (ingest.plane_min_inlier_frac)")
+    plane = cands[0][0]
+    if len(cands) > 1:
+        plane = _plane_objects_rest_on(pts, cands, cfg)
+    if plane.inlier_fraction < c["plane_min_inlier_frac"] and plane is cands[0][0]:
         raise InputError(cap.path, "depth", f"no support plane: the best plane holds {plane.inlier_fraction:.1%} of the points, "
                          f"expected at least {c['plane_min_inlier_frac']:.0%} (ingest.plane_min_inlier_frac)")
     return plane
+
+
+def _plane_objects_rest_on(pts: np.ndarray, cands: list, cfg: dict) -> PlaneFit:
+    """The candidate plane with the most point groups resting on it (ties: the larger plane)."""
+    c = cfg["ingest"]
+    off = np.ones(len(pts), bool)
+    for _, inl in cands:
+        off &= ~inl
+    rest = pts[off]
+    if len(rest) > 50000:
+        rest = rest[np.random.default_rng(0).choice(len(rest), 50000, replace=False)]
+    voxel = c["cluster_eps_m"] / 3.0
+    keys, inv = np.unique(np.floor(rest / voxel).astype(np.int64), axis=0, return_inverse=True)
+    vox = np.zeros((len(keys), 3))
+    np.add.at(vox, inv.reshape(-1), rest)
+    vox /= np.bincount(inv.reshape(-1))[:, None]
+    lab = DBSCAN(eps=c["cluster_eps_m"], min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox) if len(vox) else np.zeros(0, int)
+    groups = [vox[lab == l] for l in range(lab.max() + 1 if len(lab) else 0) if (lab == l).sum() >= c["cluster_min_points"]]
+    best, best_key = cands[0][0], (-1, 0.0)
+    for plane, inl in cands:
+        resting = 0
+        for g in groups:
+            h = plane.height(g)
+            if abs(np.percentile(h, 2)) < REST_TOL_M and np.percentile(h, 98) > c["min_object_height_m"]:
+                resting += 1
+        key = (resting, float(inl.mean()))
+        if key > best_key:
+            best, best_key = plane, key
+    return best
 
 
 def above_plane_margin(plane: PlaneFit, cfg: dict) -> float:
