@@ -97,17 +97,22 @@ def fit_plane(points: np.ndarray, *, inlier_dist: float, confidence: float = 0.9
 
 
 def candidate_planes(points: np.ndarray, *, inlier_dist: float, confidence: float, rng: np.random.Generator,
-                     toward: np.ndarray | None = None, max_planes: int = 3, min_fraction: float = 0.05
-                     ) -> list[tuple[PlaneFit, np.ndarray]]:
+                     toward: np.ndarray | None = None, max_planes: int = 3, min_fraction: float = 0.05,
+                     min_angle_deg: float = 20.0, same_surface_m: float = 0.10) -> list[tuple[PlaneFit, np.ndarray]]:
     """Sequential RANSAC: the dominant plane, then the dominant plane of what is left, ...
 
     Returns up to ``max_planes`` (plane, inlier mask over ``points``) holding at least ``min_fraction`` of
-    all points each, largest first.
+    all points each, largest first.  A plane within ``min_angle_deg`` of one already found and whose points
+    lie within ``same_surface_m`` of it is that surface's noisy fringe (far points of a table fall outside
+    the inlier band): its points are removed but it is not a candidate.
     """
     pts = np.asarray(points, dtype=np.float64)
     left = np.ones(len(pts), bool)
     out: list[tuple[PlaneFit, np.ndarray]] = []
-    while len(out) < max_planes and left.sum() >= max(3, min_fraction * len(pts)):
+    cos_min = np.cos(np.deg2rad(min_angle_deg))
+    for _ in range(2 * max_planes):
+        if len(out) >= max_planes or left.sum() < max(3, min_fraction * len(pts)):
+            break
         try:
             plane = fit_plane(pts[left], inlier_dist=inlier_dist, confidence=confidence, rng=rng, toward=toward)
         except ValueError:
@@ -116,6 +121,9 @@ def candidate_planes(points: np.ndarray, *, inlier_dist: float, confidence: floa
         if inl.sum() < min_fraction * len(pts):
             break
         plane.inlier_fraction = float(inl.mean())   # of all points, not of those left
-        out.append((plane, inl))
         left &= ~inl
+        centre = pts[inl].mean(axis=0)
+        if any(abs(plane.normal @ q.normal) > cos_min and abs(q.height(centre)) < same_surface_m for q, _ in out):
+            continue
+        out.append((plane, inl))
     return out
