@@ -256,3 +256,16 @@ def test_propagation_pure_clusters_are_always_right():
     for d in (1, 3, 5):
         out = propagation_accuracy(c, l, np.random.default_rng(d), draws=d, n_repeats=50)
         assert out["mean"] == 1.0 and out["interval"] == (1.0, 1.0)
+
+
+def test_truth_points_match_anywhere_along_the_object_axis():
+    # a truth point may be given at an object's base, middle or top: all lie on its axis (hand-worked)
+    from protomine.audit.truth import ObjectTable
+    t = ObjectTable(["c/1", "c/2"], ["c", "c"], [[0.0, 0.0, 0.05], [1.0, 0.0, 0.05]], [[0.0, 0.0, 0.0], [1.0, 0.0, 0.0]])
+    d = t.distance_to(np.array([0, 1]), np.array([0.0, 0.0, 0.0]))
+    np.testing.assert_allclose(d, [0.0, 1.0])
+    np.testing.assert_allclose(t.distance_to(np.array([0]), np.array([0.0, 0.0, 0.1])), [0.0], atol=1e-12)
+    np.testing.assert_allclose(t.distance_to(np.array([0]), np.array([0.03, 0.04, 0.2])), [np.hypot(0.05, 0.1)])
+    # without base centres the centre is used, as before
+    c = ObjectTable(["c/1"], ["c"], [[0.0, 0.0, 0.05]])
+    np.testing.assert_allclose(c.distance_to(np.array([0]), np.array([0.0, 0.0, 0.0])), [0.05])

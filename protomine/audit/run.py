@@ -13,7 +13,7 @@ from ..mine.library import read_library
 from ..provenance import file_fingerprint, provenance, write_sidecar
 from .metrics import symmetry_to_period_deg
 from .report import Assignments, build_audit, write_report
-from .truth import ObjectTable, read_truth
+from .truth import object_table, read_truth
 
 
 def resolve_store_path(library: Path, recorded: str, given: Path | None) -> Path:
@@ -43,8 +43,7 @@ def run_audit(library: str | Path, truth: str | Path, out: str | Path, cfg: dict
     m = lib.members
     assignments = Assignments(np.asarray(m["object"], dtype=str), m["cluster"], m["yaw_deg"], m["scale"],
                               m["distance"], m["score"])
-    objects = ObjectTable(np.asarray(st.objects["id"], dtype=str), np.asarray(st.objects["capture"], dtype=str),
-                          st.objects["center"])
+    objects = object_table(st)
     periods = {k: symmetry_to_period_deg(int(s)) for k, s in enumerate(lib.prototypes["symmetry"])}
     prov = provenance(cfg, seed, {"library": file_fingerprint(library), "truth": file_fingerprint(truth),
                                   "store": st.fingerprint()}, command="audit")

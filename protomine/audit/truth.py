@@ -57,11 +57,15 @@ class ObjectTable:
     """The stored objects truth rows can refer to.
 
     ids: (N,) object ids.  captures: (N,) capture folder names.  centres: (N, 3) world-space centres (metres).
+    bases: optional (N, 3) base centres on the support plane.  With them a truth point is compared with the
+    object's vertical axis from its base to its top (2 centre - base), so a point given at the base, the
+    middle or the top of an object all match it; without them, with the centre.
     """
 
     ids: np.ndarray
     captures: np.ndarray
     centres: np.ndarray
+    bases: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         self.ids = np.asarray(self.ids, dtype=str)
@@ -73,6 +77,20 @@ class ObjectTable:
                              f"{self.ids.shape}, {self.captures.shape}, {self.centres.shape}")
         if len(set(self.ids.tolist())) != n:
             raise ValueError("object ids must be unique")
+        if self.bases is not None:
+            self.bases = np.asarray(self.bases, dtype=np.float64).reshape(-1, 3)
+            if self.bases.shape != (n, 3):
+                raise ValueError(f"bases must be (N, 3) like centres, got {self.bases.shape}")
+
+    def distance_to(self, idx: np.ndarray, point: np.ndarray) -> np.ndarray:
+        """(len(idx),) distances from ``point`` (3,) to the objects ``idx`` (axis segment or centre)."""
+        p = np.asarray(point, dtype=np.float64)
+        if self.bases is None:
+            return np.linalg.norm(self.centres[idx] - p, axis=1)
+        a = self.bases[idx]
+        ab = 2.0 * (self.centres[idx] - a)                      # base -> top
+        t = np.clip(np.einsum("ij,ij->i", p - a, ab) / np.maximum(np.einsum("ij,ij->i", ab, ab), 1e-12), 0.0, 1.0)
+        return np.linalg.norm(a + t[:, None] * ab - p, axis=1)
 
 
 @dataclass
@@ -101,6 +119,13 @@ def _number(path: Path, line: int, column: str, text: str) -> float:
     if not math.isfinite(value):
         raise InputError(path, f"row {line}, column {column}", f"expected a finite number, got {text!r}")
     return value
+
+
+def object_table(store) -> ObjectTable:
+    """The ObjectTable of an object store (ids, captures, centres and base centres)."""
+    o = store.objects
+    return ObjectTable(np.asarray(o["id"], dtype=str), np.asarray(o["capture"], dtype=str),
+                       np.asarray(o["center"], dtype=np.float64), np.asarray(o["origin"], dtype=np.float64))
 
 
 def read_truth(path: str | Path) -> list[TruthRow]:
@@ -196,7 +221,7 @@ def _match_truth(rows, objects, radius_m, path) -> TruthMatch:
                 raise InputError(path, f"row {tr.row}, column capture",
                                  f"unknown capture {tr.capture!r} (known: {', '.join(sorted(known_captures)[:10])})")
             cand = np.flatnonzero(objects.captures == tr.capture)
-            dist = np.linalg.norm(objects.centres[cand] - np.asarray(tr.point), axis=1)
+            dist = objects.distance_to(cand, tr.point)
             j = int(dist.argmin())
             i, d = int(cand[j]), float(dist[j])
             if d > radius_m:

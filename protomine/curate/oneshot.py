@@ -304,10 +304,9 @@ def evaluate_oneshot(store: ObjectStore, truth_csv: str | Path, library: Library
     """
     from sklearn.metrics import average_precision_score
 
-    from ..audit.truth import ObjectTable, match_truth, read_truth
+    from ..audit.truth import match_truth, object_table, read_truth
     rows = read_truth(truth_csv)
-    table = ObjectTable(np.asarray(store.ids, dtype=object), np.asarray(store.objects["capture"], dtype=object),
-                        np.asarray(store.objects["center"], dtype=np.float64))
+    table = object_table(store)
     tm = match_truth(rows, table, radius_m=float(cfg["audit"]["match_radius_m"]), path=truth_csv)
     labelled = np.asarray(tm.object_index, dtype=np.int64)
     labels = np.array([r.label for r in tm.rows], dtype=object)
