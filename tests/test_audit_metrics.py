@@ -269,3 +269,12 @@ def test_truth_points_match_anywhere_along_the_object_axis():
     # without base centres the centre is used, as before
     c = ObjectTable(["c/1"], ["c"], [[0.0, 0.0, 0.05]])
     np.testing.assert_allclose(c.distance_to(np.array([0]), np.array([0.0, 0.0, 0.0])), [0.05])
+
+
+def test_yaw_offset_ignores_a_flipped_member():
+    # nine members 2 deg apart around an offset of 30, one misaligned by 120: the offset stays at 30 (the
+    # plain circular mean, scipy.stats.circmean, moves to 35.8)
+    pred = np.zeros(10)
+    truth = np.array([22.0, 24, 26, 28, 30, 32, 34, 36, 38, 150.0])
+    off = yaw_offset_deg(truth, pred, 360.0)
+    assert off == pytest.approx(30.0, abs=1e-9)

@@ -109,10 +109,14 @@ def symmetry_to_period_deg(order: int) -> float:
 
 
 def yaw_offset_deg(truth_deg, pred_deg, period: float = 360.0) -> float:
-    """Circular mean of (truth - predicted) modulo ``period``, in [0, period); 0 for infinite period.
+    """Robust circular centre of (truth - predicted) modulo ``period``, in [0, period); 0 for infinite period.
 
     truth_deg, pred_deg: (M,) degrees, M >= 1.  The differences are wrapped onto a circle of
     circumference ``period`` (an n-fold symmetric prototype aligns equally at offset and offset + period).
+    The centre is the circular median (the sample minimising the summed angular deviation; Fisher 1993,
+    Statistical Analysis of Circular Data, sec. 2.3.2, from memory), refined by the circular mean of the
+    differences within period / 8 of it, so one flipped member (a front/back confusion) does not shift
+    every other member's error.
     """
     truth_deg = np.asarray(truth_deg, dtype=np.float64)
     pred_deg = np.asarray(pred_deg, dtype=np.float64)
@@ -120,7 +124,12 @@ def yaw_offset_deg(truth_deg, pred_deg, period: float = 360.0) -> float:
         raise ValueError(f"truth_deg and pred_deg must be 1-D, non-empty and equal, got {truth_deg.shape} and {pred_deg.shape}")
     if not np.isfinite(period):
         return 0.0
-    return float(np.mod(circmean(np.mod(truth_deg - pred_deg, period), high=period, low=0.0), period))
+    d = np.mod(truth_deg - pred_deg, period)
+    cand = d if d.size <= 2000 else np.sort(d)[np.linspace(0, d.size - 1, 2000).astype(int)]
+    dev = np.abs(np.mod(d[None, :] - cand[:, None] + period / 2, period) - period / 2).sum(axis=1)
+    med = cand[int(np.argmin(dev))]
+    near = np.abs(np.mod(d - med + period / 2, period) - period / 2) <= period / 8
+    return float(np.mod(circmean(d[near], high=period, low=0.0), period))
 
 
 def yaw_error_deg(truth_deg, pred_deg, offset_deg: float, period: float = 360.0) -> np.ndarray:
