@@ -149,7 +149,8 @@ class ObjectStore:
         out[order] = vols
         return out
 
-    def source(self, cfg: dict, chunk_size: int = 2048) -> "StoreSource":
+    def source(self, cfg: dict) -> "StoreSource":
+        """The store as a chunked source of matching features (the engine picks the chunk size)."""
         return StoreSource(self, cfg)
 
     def read_single_views(self, rows: np.ndarray | None = None) -> np.ndarray:
