@@ -25,7 +25,7 @@ def tag(
     from .names import name_cluster
     config_from(config)
     say = Progress("tag", quiet)
-    clean_stale_temporaries(library.parent if str(library.parent) else Path("."))
+    clean_stale_temporaries(library.parent)
     lib = name_cluster(existing(library, "library"), name=name, object_id=object_id, cluster=cluster, clear=clear)
     k = lib.members["cluster"][lib.member_index(object_id)] if object_id is not None else cluster
     say(f"library {library}: {lib.n_clusters} clusters, {len(lib.names)} named")
@@ -53,7 +53,7 @@ def find(
     say = Progress("find", quiet)
     if add is not None:
         check_name(add, field="--add")
-    clean_stale_temporaries(out.parent if str(out.parent) else Path("."))
+    clean_stale_temporaries(out.parent)
     lib = read_library(existing(library, "library"))
     st = open_store(existing(store, "object store"))
     mt = find_similar(lib, st, example, cfg, top=top)

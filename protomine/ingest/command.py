@@ -31,7 +31,7 @@ def ingest(
     from .pipeline import ingest_captures
     from .sharded import ingest_sharded
     cfg = config_from(config)
-    clean_stale_temporaries(store.parent if str(store.parent) else Path("."))
+    clean_stale_temporaries(store.parent)
     with executor_for(cfg, scheduler, workers) as ex:
         if isinstance(ex, InlineExecutor) and not is_index(store):
             res = ingest_captures(captures, store, cfg, seed=seed, use_masks=not no_masks, progress=Progress("ingest", quiet))

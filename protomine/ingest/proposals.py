@@ -138,6 +138,18 @@ def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.
     return plane
 
 
+def voxel_groups(pts: np.ndarray, eps: float) -> tuple[np.ndarray, np.ndarray]:
+    """Euclidean groups of points (M, 3): voxel centroids (V, 3) at eps / 3 and their DBSCAN labels (V,)."""
+    if len(pts) == 0:
+        return np.zeros((0, 3)), np.zeros(0, int)
+    keys, inv = np.unique(np.floor(pts / (eps / 3.0)).astype(np.int64), axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    vox = np.zeros((len(keys), 3))
+    np.add.at(vox, inv, pts)
+    vox /= np.bincount(inv)[:, None]
+    return vox, DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
+
+
 def _plane_objects_rest_on(pts: np.ndarray, cands: list, cfg: dict) -> PlaneFit:
     """The candidate plane with the most point groups resting on it (ties: the larger plane)."""
     c = cfg["ingest"]
@@ -147,12 +159,7 @@ def _plane_objects_rest_on(pts: np.ndarray, cands: list, cfg: dict) -> PlaneFit:
     rest = pts[off]
     if len(rest) > 50000:
         rest = rest[np.random.default_rng(0).choice(len(rest), 50000, replace=False)]
-    voxel = c["cluster_eps_m"] / 3.0
-    keys, inv = np.unique(np.floor(rest / voxel).astype(np.int64), axis=0, return_inverse=True)
-    vox = np.zeros((len(keys), 3))
-    np.add.at(vox, inv.reshape(-1), rest)
-    vox /= np.bincount(inv.reshape(-1))[:, None]
-    lab = DBSCAN(eps=c["cluster_eps_m"], min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox) if len(vox) else np.zeros(0, int)
+    vox, lab = voxel_groups(rest, c["cluster_eps_m"])
     groups = [vox[lab == l] for l in range(lab.max() + 1 if len(lab) else 0) if (lab == l).sum() >= c["cluster_min_points"]]
     best, best_key = cands[0][0], (-1, 0.0)
     for plane, inl in cands:
@@ -259,7 +266,6 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
 def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
     c = cfg["ingest"]
     eps = c["cluster_eps_m"]
-    voxel = eps / 3.0
     above_sel = []
     for fd in frames:
         h = plane.height(fd.points)
@@ -267,13 +273,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     pts = np.concatenate([fd.points[s] for fd, s in zip(frames, above_sel)])
     if len(pts) == 0:
         return []
-    keys, inv = np.unique(np.floor(pts / voxel).astype(np.int64), axis=0, return_inverse=True)
-    inv = inv.reshape(-1)
-    counts = np.bincount(inv)
-    vox = np.zeros((len(keys), 3))
-    np.add.at(vox, inv, pts)
-    vox /= counts[:, None]
-    lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
+    vox, lab = voxel_groups(pts, eps)
     lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):

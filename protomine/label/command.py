@@ -32,7 +32,7 @@ def label(
     say = Progress("label", quiet)
     lib = read_library(existing(library, "library"))
     caps = [read_capture(c, check_images=False) for c in captures]
-    clean_stale_temporaries(out.parent if str(out.parent) else Path("."))
+    clean_stale_temporaries(out.parent)
     stats: dict = {}
     records = label_captures(lib, captures, cfg, seed=seed, use_masks=not no_masks, progress=say, stats=stats)
     prov = provenance(cfg, seed, {"library": file_fingerprint(library), **{c.name: folder_fingerprint(c.path) for c in caps}},
