@@ -60,10 +60,8 @@ def _export_line(summary: dict) -> str:
 def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
                        truth: dict, quiet: bool) -> None:
     """Label held-out single views; then a one-shot search for a class that mining never saw."""
-    from sklearn.metrics import average_precision_score
-
     from .capture import read_capture
-    from .curate.oneshot import find_similar
+    from .curate.oneshot import find_similar, retrieval_scores
     from .ingest.pipeline import ingest_captures
     from .ingest.store import open_store
     from .label.evaluate import evaluate_labels
@@ -97,12 +95,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
         ex = int(np.random.default_rng(seed).choice(idx))
         m = find_similar(lib, st, st.ids[ex], cfg)
         others = np.array([i for i in range(len(st)) if i != ex])
-        d = np.where(np.isfinite(m.distance[others]), m.distance[others], np.finfo(float).max)
-        y = labels[others] == cls
-        k = min(10, int(y.sum()))
-        top = others[np.argsort(d, kind="stable")[:k]]
-        p_at = float(np.mean(labels[top] == cls))
-        ap = float(average_precision_score(y, -d))
+        k, p_at, ap = retrieval_scores(m, others, labels[others] == cls)
         typer.echo(f"find: one example of {cls!r} (never mined) among {len(st)} new scans: "
                    f"precision at {k} {p_at:.2f}, average precision {ap:.3f}")
 

@@ -302,7 +302,6 @@ def evaluate_oneshot(store: ObjectStore, truth_csv: str | Path, library: Library
     ``sklearn.metrics.average_precision_score`` of "same class" against the negated distance.  Classes with a
     single instance have nothing to find and are skipped.
     """
-    from sklearn.metrics import average_precision_score
 
     from ..audit.truth import match_truth, object_table, read_truth
     rows = read_truth(truth_csv)
@@ -319,12 +318,21 @@ def evaluate_oneshot(store: ObjectStore, truth_csv: str | Path, library: Library
         ex = int(rng.choice(members))
         mt = _find(library, store, ex, cfg)
         others = np.array([i for i in labelled if i != ex])
-        y = np.isin(others, members)
-        d = mt.distance[others]
-        d = np.where(np.isfinite(d), d, np.finfo(np.float64).max)
-        k = min(10, int(y.sum()))
-        order = others[np.lexsort((mt.object[others].astype(str), d))]
-        p10 = float(np.isin(order[:k], members).mean())
+        k, p10, ap = retrieval_scores(mt, others, np.isin(others, members))
         out.append({"label": str(lab), "example": str(store.ids[ex]), "instances": int(len(members)), "k": k,
-                    "p_at_10": p10, "ap": float(average_precision_score(y, -d))})
+                    "p_at_10": p10, "ap": ap})
     return out
+
+
+def retrieval_scores(matches: Matches, others: np.ndarray, relevant: np.ndarray) -> tuple[int, float, float]:
+    """(k, precision at k, average precision) of the ranking of objects ``others`` (indices) by distance.
+
+    relevant: (len(others),) bool, same class as the example.  k = min(10, number relevant); ties in
+    distance are broken by object id.  AP: ``sklearn.metrics.average_precision_score``.
+    """
+    from sklearn.metrics import average_precision_score
+    d = matches.distance[others]
+    d = np.where(np.isfinite(d), d, np.finfo(np.float64).max)
+    k = min(10, int(relevant.sum()))
+    order = np.lexsort((matches.object[others].astype(str), d))
+    return k, float(relevant[order[:k]].mean()), float(average_precision_score(relevant, -d))
