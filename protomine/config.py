@@ -1,6 +1,6 @@
 """Configuration: TOML presets, validated against the defaults.
 
-``configs/default.toml`` is the schema: every key that exists there may be set, with the same type;
+``protomine/configs/default.toml`` (linked as ``configs/`` in a checkout) is the schema: every key that exists there may be set, with the same type;
 anything else is an error that names the file and the key.  Numeric bounds live in ``BOUNDS``.
 A preset (``fast``, ``fine``) or a user file is merged on top of the defaults.  The merged config is
 recorded (as JSON) in every output file.
@@ -15,7 +15,9 @@ from typing import Any
 
 from .errors import InputError
 
-CONFIG_DIR = Path(__file__).resolve().parents[1] / "configs"
+# The presets ship inside the package (``protomine/configs``); the top-level ``configs`` folder of a checkout
+# is a link to it, so there is one source of truth and an installed wheel finds its presets.
+CONFIG_DIR = Path(__file__).resolve().parent / "configs"
 
 # (min, max) inclusive bounds for numeric keys; lists are checked element-wise.
 BOUNDS: dict[str, tuple[float, float]] = {
