@@ -17,15 +17,15 @@ On a random subsample of at most ``sample_size`` objects:
    scored by the mean silhouette (Rousseeuw 1987) of its labels on the matrix
    (``sklearn.metrics.silhouette_score`` with ``metric="precomputed"``).  A k-medoids fit needs only
    the matrix, so the scan costs milliseconds per K instead of a pose-aware fit per K;
-3. the eigenvalues of the normalised graph Laplacian of self-tuning affinities on the same matrix
-   (``exp(-D^2 / (sigma_i sigma_j))``, sigma_i = distance to the 7th nearest object; Zelnik-Manor &
-   Perona 2004), whose largest gap after the K-th eigenvalue counts well-separated groups (von Luxburg
-   2007).  The silhouette alone favours the coarser level when classes come in close pairs (a shape and
-   its mirror image: K = 2 and K = 4 scored 0.378 and 0.369 on four peg posts), while local scaling
-   keeps the close pairs apart;
-4. K = the larger of the silhouette's argmax and the eigengap's argmax (the smallest K on ties).  A K
-   one too large is undone by merging (below); a K too small is not undone by anything.  K = 1 is
-   never proposed.  ``fit_auto`` then runs one full :class:`PoseKMeans` fit at that K.
+3. the connected components of the symmetric 3-nearest-neighbour graph on the same matrix (von Luxburg
+   2007): classes whose members are each other's pose-searched nearest neighbours form one component
+   each.  The silhouette alone favours the coarser level when classes come in close pairs (a shape and
+   its mirror image: K = 2 and K = 4 scored 0.378 and 0.369 on four peg posts; a spectral eigengap with
+   self-tuning affinities also chose 2 on a smaller scene), while the nearest-neighbour graph keeps the
+   close pairs apart;
+4. K = the larger of the silhouette's argmax (the smallest K on ties) and the component count (clipped to
+   ``max_k``).  A K too large is undone by merging (below); a K too small is not undone by anything.
+   K = 1 is never proposed.  ``fit_auto`` then runs one full :class:`PoseKMeans` fit at that K.
 
 Merging (``merge_close_prototypes`` / ``fit_auto``)
 ---------------------------------------------------
@@ -38,10 +38,10 @@ until no pair qualifies.
 Public API
 ----------
 - ``choose_k(source, *, max_k, scales=(1.0,), random_state=None, min_k=2, sample_size=600,
-  chunk_size=2048, distance=None) -> (k, table)``; table: list of dicts {k, silhouette, eigengap,
+  chunk_size=2048, distance=None) -> (k, table)``; table: list of dicts {k, silhouette, knn_components,
   medoid_cost}; ``distance(X, W, P, V) -> (n, k)`` is the pose-minimised distance (default: the yaw x
   scale search of :mod:`posesearch`).
-- ``spectral_eigengaps(S, neighbour=7) -> eigenvalues (n,)``
+- ``knn_components(S, neighbours=3) -> int``
 - ``merge_close_prototypes(model, source, *, merge_threshold=0.5) -> (model, merges)``
 - ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, **engine_kwargs)
   -> (model, info)``; info: {"k_chosen", "table", "merges", "k_final"}.
@@ -52,13 +52,15 @@ from typing import Sequence
 
 import numpy as np
 from sklearn.cluster import AgglomerativeClustering
+from scipy.sparse import csr_matrix
+from scipy.sparse.csgraph import connected_components
 from sklearn.metrics import silhouette_score
 
 from .engine import PoseKMeans, Source, _gather
 from .posesearch import _check_scales, pose_distances
 from .seeding import DistanceFn, default_distance, kmedoids, pairwise_pose_distances, symmetric_distances
 
-SELF_TUNING_NEIGHBOUR = 7      # the local scale of each object's affinities (Zelnik-Manor & Perona 2004)
+KNN_NEIGHBOURS = 3             # neighbours per object in the graph whose connected components count groups
 
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
@@ -77,19 +79,17 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
                      chunk_size=chunk_size, distance=distance)
 
 
-def spectral_eigengaps(S: np.ndarray, neighbour: int = SELF_TUNING_NEIGHBOUR) -> np.ndarray:
-    """Eigenvalues (n,) ascending of the normalised graph Laplacian of a distance matrix S (n, n) with
-    self-tuning affinities A_ij = exp(-S_ij^2 / (sigma_i sigma_j)), sigma_i = distance from i to its
-    ``neighbour``-th nearest object (Zelnik-Manor & Perona 2004); K well-separated groups give K
-    eigenvalues near 0 and a gap after them (von Luxburg 2007)."""
+def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS) -> int:
+    """Connected components of the symmetric k-nearest-neighbour graph of a distance matrix S (n, n): i and j
+    are linked when either is among the other's ``neighbours`` nearest objects (the kNN graph of von Luxburg
+    2007, "A tutorial on spectral clustering", sec. 2.2).  Every component holds at least neighbours + 1
+    objects, so a lone outlier joins its nearest group instead of counting as one."""
     n = len(S)
-    sigma = np.sort(S, axis=1)[:, min(neighbour, n - 1)]
-    sigma = np.maximum(sigma, 1e-12 * max(float(sigma.max()), 1e-300))
-    A = np.exp(-S ** 2 / np.outer(sigma, sigma))
-    np.fill_diagonal(A, 0.0)
-    d = np.maximum(A.sum(axis=1), 1e-300)
-    L = np.eye(n) - A / np.sqrt(np.outer(d, d))
-    return np.sort(np.linalg.eigvalsh(0.5 * (L + L.T)))
+    k = min(neighbours, n - 1)
+    nb = np.argsort(S + np.diag(np.full(n, np.inf)), axis=1, kind="stable")[:, :k]
+    rows = np.repeat(np.arange(n), k)
+    graph = csr_matrix((np.ones(n * k), (rows, nb.ravel())), shape=(n, n))
+    return int(connected_components(graph, directed=False)[0])
 
 
 def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, distance=None):
@@ -97,18 +97,16 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     Xs, Ws = _gather(source, idx, chunk_size)
     S = pairwise_pose_distances(Xs, Ws, distance or default_distance(scales))
-    eig = spectral_eigengaps(S)
+    components = knn_components(S)
     table = []
     for k in range(min_k, min(max_k, len(idx) - 1) + 1):
         start = AgglomerativeClustering(n_clusters=k, metric="precomputed", linkage="average").fit_predict(S)
         labels, cost = kmedoids(S, start)
         n_lab = np.unique(labels).size
         score = float(silhouette_score(S, labels, metric="precomputed")) if 1 < n_lab < len(idx) else -1.0
-        gap = float(eig[k] - eig[k - 1]) if k < len(eig) else 0.0
-        table.append({"k": k, "silhouette": score, "eigengap": gap, "medoid_cost": cost})
+        table.append({"k": k, "silhouette": score, "knn_components": components, "medoid_cost": cost})
     by_silhouette = max(table, key=lambda r: (r["silhouette"], -r["k"]))["k"]
-    by_gap = max(table, key=lambda r: (r["eigengap"], -r["k"]))["k"]
-    return int(max(by_silhouette, by_gap)), table
+    return int(max(by_silhouette, min(components, table[-1]["k"]))), table
 
 
 def prototype_distances(model: PoseKMeans) -> np.ndarray:
