@@ -12,10 +12,9 @@ import pytest
 from protomine.config import load_config
 from protomine.errors import InputError
 from protomine.ingest.pipeline import ingest_captures
-from protomine.ingest.sharded import capture_groups, ingest_sharded
-from protomine.ingest.store import ObjectStore
+from protomine.ingest.sharded import ShardedObjectStore, capture_groups, ingest_sharded, open_store
+from protomine.ingest.store import ObjectStore, is_index
 from protomine.scale.executor import DaskExecutor, InlineExecutor, make_executor
-from protomine.scale.shards import ShardedObjectStore, is_index
 
 
 
@@ -95,7 +94,7 @@ def test_sharded_ingest_on_cluster_equals_single_file_store(tiny_world, dask_exe
     res = ingest_sharded(tiny_world["caps"], store, tiny_world["cfg"], executor=dask_exec, seed=0,
                          max_captures_per_shard=2)
     assert is_index(store) and res["shards"] == 2 and res["objects"] == 6
-    sharded, single = ObjectStore(store), ObjectStore(tiny_world["store"])
+    sharded, single = open_store(store), ObjectStore(tiny_world["store"])
     assert isinstance(sharded, ShardedObjectStore) and len(sharded.shards) == 2
     _tables_equal(sharded, single)
 
@@ -110,7 +109,7 @@ def test_sharded_reingest_replaces_a_capture_and_drops_dead_shards(tiny_world, t
     assert res["store"] == {"kept": 4, "replaced": 2, "added": 2}
     after = sorted((tmp_path / "objects.h5.shards").glob("*.h5"))
     assert len(after) == 3 and shards_before[1] not in after  # the re-ingested capture's old shard is gone
-    st = ObjectStore(store)
+    st = open_store(store)
     # the re-ingested capture's objects now come last, with identical volumes (same seed)
     single = ObjectStore(tiny_world["store"])
     order = [single.index_of(i) for i in st.ids]
@@ -200,7 +199,7 @@ def test_cli_ingest_and_mine_with_scheduler_equal_local_cli(tiny_world, dask_cli
 
 
 def _synthetic(n: int, k: int, seed: int):
-    from protomine.bench import synthetic_objects, synthetic_prototypes
+    from protomine.mine.synthetic import synthetic_objects, synthetic_prototypes
     rng = np.random.default_rng(seed)
     P = synthetic_prototypes(rng, k, grid=(3, 4, 12, 4))
     X, W, labels, *_ = synthetic_objects(rng, P, n, scale_jitter=0.0)
@@ -258,4 +257,4 @@ def test_local_process_pool_ingest_equals_single_file_store(tiny_world, tmp_path
         ingest_sharded(tiny_world["caps"], tmp_path / "objects.h5", tiny_world["cfg"], executor=ex)
     finally:
         ex.close()
-    _tables_equal(ObjectStore(tmp_path / "objects.h5"), ObjectStore(tiny_world["store"]))
+    _tables_equal(open_store(tmp_path / "objects.h5"), ObjectStore(tiny_world["store"]))
