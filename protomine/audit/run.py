@@ -10,7 +10,7 @@ from ..errors import InputError
 from ..ingest.store import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import read_library
-from ..provenance import file_fingerprint, provenance, write_sidecar
+from ..provenance import file_fingerprint, provenance, record_outputs
 from .metrics import symmetry_to_period_deg
 from .report import Assignments, build_audit, write_report
 from .truth import object_table, read_truth
@@ -54,8 +54,7 @@ def run_audit(library: str | Path, truth: str | Path, out: str | Path, cfg: dict
     gallery = render_gallery(out / "gallery.png", lib.prototypes["volumes"], counts=lib.prototypes["count"],
                              symmetry=lib.prototypes["symmetry"],
                              names=[lib.display_name(k) for k in range(lib.n_clusters)])
-    for path in write_report(out, doc, gallery_png=gallery, crops=st.crops).values():
-        write_sidecar(path, prov)
+    record_outputs(list(write_report(out, doc, gallery_png=gallery, crops=st.crops).values()), prov)
     return doc
 
 

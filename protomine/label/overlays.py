@@ -68,17 +68,28 @@ def draw_frame(rgb: np.ndarray, records: list[dict], K: np.ndarray, cam_to_world
     return im
 
 
-def write_overlays(out_dir: str | Path, capture: Capture, records: list[dict]) -> list[Path]:
-    """One PNG per frame of ``capture``: ``<out_dir>/<capture>_<frame>.png`` (atomic writes)."""
+def write_overlays(out_dir: str | Path, captures: list[Capture], records: list[dict], prov: dict | None = None,
+                   progress=None) -> list[Path]:
+    """One PNG per frame: ``<out_dir>/<capture>_<frame>.png`` (atomic writes), listed in the folder's
+    provenance manifest when ``prov`` is given."""
+    from ..progress import bar
+    from ..provenance import record_outputs
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    K = capture.intrinsics.K
+    by_frame: dict[tuple[str, str], list[dict]] = {}
+    for r in records:
+        by_frame.setdefault((r["capture"], r["frame"]), []).append(r)
     paths = []
-    for fr in capture.frames:
-        mine = [r for r in records if r["capture"] == capture.name and r["frame"] == fr.id]
-        im = draw_frame(capture.rgb(fr.id), mine, K, fr.cam_to_world)
-        path = out_dir / f"{capture.name}_{fr.id}.png"
-        with atomic_path(path) as tmp:
-            im.save(tmp, format="PNG")
-        paths.append(path)
+    with bar(progress, "overlays", total=sum(len(c.frames) for c in captures), unit="frames") as b:
+        for capture in captures:
+            K = capture.intrinsics.K
+            for fr in capture.frames:
+                im = draw_frame(capture.rgb(fr.id), by_frame.get((capture.name, fr.id), []), K, fr.cam_to_world)
+                path = out_dir / f"{capture.name}_{fr.id}.png"
+                with atomic_path(path) as tmp:
+                    im.save(tmp, format="PNG")
+                paths.append(path)
+                b.advance()
+    if prov is not None and paths:
+        record_outputs(paths, prov)
     return paths
