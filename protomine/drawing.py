@@ -10,9 +10,9 @@ import functools
 
 from PIL import ImageDraw, ImageFont
 
-# Okabe & Ito (2008), "Color Universal Design", without black; then five more distinct hues
+# Okabe & Ito (2008), "Color Universal Design", without black; then five more hues far from those
 PALETTE = [(230, 159, 0), (86, 180, 233), (0, 158, 115), (240, 228, 66), (0, 114, 178), (213, 94, 0),
-           (204, 121, 167), (153, 204, 51), (255, 102, 102), (153, 102, 255), (0, 204, 204), (204, 153, 102)]
+           (204, 121, 167), (148, 103, 189), (152, 223, 138), (220, 20, 60), (160, 110, 80), (200, 200, 255)]
 UNKNOWN = (235, 235, 235)
 HALO = (16, 16, 16)
 

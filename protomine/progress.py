@@ -21,8 +21,8 @@ import time
 from typing import Callable, Iterator
 
 from rich.console import Console
-from rich.progress import (BarColumn, MofNCompleteColumn, ProgressColumn, TaskProgressColumn, TextColumn,
-                           TimeElapsedColumn, TimeRemainingColumn)
+from rich.progress import (BarColumn, MofNCompleteColumn, ProgressColumn, TextColumn, TimeElapsedColumn,
+                           TimeRemainingColumn)
 from rich.progress import Progress as _RichProgress
 from rich.text import Text
 
@@ -102,9 +102,9 @@ class Progress:
             return
         if self._want_live and self._live is None:
             self._live = _RichProgress(
-                TextColumn("{task.description}"), BarColumn(bar_width=30), MofNCompleteColumn(),
-                TaskProgressColumn(), _RateColumn(), TimeElapsedColumn(), TextColumn("left"),
-                TimeRemainingColumn(), console=self.console, transient=True)
+                TextColumn("{task.description}"), BarColumn(bar_width=24), MofNCompleteColumn(), _RateColumn(),
+                TimeElapsedColumn(), TextColumn("elapsed,"), TimeRemainingColumn(), TextColumn("left"),
+                console=self.console, transient=True)
             self._live.start()
         self._depth += 1
         b = Bar(self, what, total, unit)
