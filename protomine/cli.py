@@ -61,6 +61,19 @@ def _plain_arguments() -> None:
     TyperArgument._rich_display_name = name
     TyperArgument.display_type_rich = lambda self, ctx: None
 
+    # an option without a metavar shows a plain placeholder (``--seed N``, ``--json PATH``), never ``<int range>``
+    from typer.core import TyperOption
+    typed = TyperOption.display_type_rich
+    plain = {"int": "N", "float": "X", "path": "PATH", "str": "TEXT"}
+
+    def option_type(self, ctx) -> str:
+        if self.metavar:
+            return self.metavar
+        t = typed(self, ctx).strip("<>").removesuffix(" range")
+        return plain.get(t, t.upper())
+
+    TyperOption.display_type_rich = option_type
+
 
 def _register() -> None:
     for mod, name in COMMANDS:

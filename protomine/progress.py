@@ -10,8 +10,8 @@ string, or None) and use three calls, none of which import the command-line laye
 
 Where output goes: messages and bars go to stderr, results to stdout.  When stderr is a terminal the
 bars are live rich bars (description, bar, done/total, items per second, elapsed, time left); otherwise
-(a pipe, a log file, CI) each bar prints one plain line when it finishes: ``[stage] what: n/total unit
-in s (rate/s)``.  ``quiet`` silences everything but errors; ``verbose`` adds the per-item lines.
+(a pipe, a log file, CI) each bar prints a plain line every ``PLAIN_EVERY_S`` seconds (count, rate, time
+left) and one when it finishes: ``[stage] what: n/total unit in s (rate/s)``.  ``quiet`` silences everything but errors; ``verbose`` adds the per-item lines.
 """
 from __future__ import annotations
 
@@ -25,6 +25,9 @@ from rich.progress import (BarColumn, MofNCompleteColumn, ProgressColumn, TextCo
                            TimeRemainingColumn)
 from rich.progress import Progress as _RichProgress
 from rich.text import Text
+
+
+PLAIN_EVERY_S = 30.0     # without a live bar, a progress line at most this often
 
 
 class _RateColumn(ProgressColumn):
@@ -42,6 +45,7 @@ class Bar:
     def __init__(self, owner: "Progress | None", what: str, total: int, unit: str):
         self.owner, self.what, self.total, self.unit = owner, what, int(total), unit
         self.done, self.t0, self._task = 0, time.monotonic(), None
+        self._last = self.t0
         if owner is not None and owner._live is not None:
             self._task = owner._live.add_task(f"[{owner.stage}] {what}", total=max(self.total, 1), unit=unit)
 
@@ -49,6 +53,14 @@ class Bar:
         self.done += int(n)
         if self._task is not None:
             self.owner._live.update(self._task, completed=self.done, total=max(self.total, self.done, 1))
+        elif self.owner is not None and time.monotonic() - self._last >= PLAIN_EVERY_S:
+            # no live bar (a log file, a pipe): a line now and then, so a long stage is not silent
+            self._last = time.monotonic()
+            secs = self._last - self.t0
+            rate = self.done / max(secs, 1e-9)
+            left = (self.total - self.done) / rate if rate > 0 and self.total > self.done else 0.0
+            self.owner(f"{self.what}: {self.done}/{self.total} {self.unit}, {rate:.1f} {self.unit}/s, "
+                       f"about {left:.0f} s left")
 
     def set_total(self, total: int) -> None:
         self.total = int(total)

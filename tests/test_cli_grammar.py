@@ -213,3 +213,14 @@ def test_label_with_another_grid_says_so(tmp_path, tiny_world):
     res = _run("label", tiny_world["library"], new, "-o", tmp_path / "l.jsonl", "-c", "fast", "-q")
     assert res.exit_code == 0
     assert "notice:" in res.stderr and "volume.azimuth_bins=12" in res.stderr
+
+
+def test_mine_with_another_grid_says_so_and_records_the_store_grid(tmp_path, tiny_world):
+    from protomine.mine.library import read_library
+    lib = tmp_path / "l.h5"
+    res = _run("mine", tiny_world["store"], "-o", lib, "-k", "2", "-c", "fast", "-q")
+    assert res.exit_code == 0, res.output
+    assert "notice:" in res.stderr and "volume.azimuth_bins=12" in res.stderr
+    assert read_library(lib).config["volume"]["azimuth_bins"] == 12          # usable by label: the store's grid
+    new = make_tiny_capture(tmp_path / "n", two_object_scene(1), n_frames=1)
+    assert _run("label", lib, new, "-o", tmp_path / "l.jsonl", "-q").exit_code == 0

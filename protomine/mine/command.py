@@ -38,6 +38,8 @@ def mine(
         lib, info = mine_store(existing(store, "object store"), out, cfg, seed=seed, n_clusters=clusters,
                                progress=reporter("mine", quiet, verbose),
                                executor=None if isinstance(ex, InlineExecutor) else ex)
+    for notice in info["notices"]:
+        typer.echo(f"notice: {notice}", err=True)
     where = out.parent
     typer.echo(f"mined {len(lib.members['object'])} objects into {info['K']} prototypes "
                f"({info['iterations']} iterations); library {out}; {where / 'assignments.csv'}; "

@@ -27,6 +27,7 @@ from ..atomic import pause_point, write_text
 from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
+from ..progress import say
 from ..provenance import provenance, provenance_of, record_outputs
 from .library import Library, log_distance_fit, match_score, write_library
 from .posesearch import pose_distances, shift_volume
@@ -176,8 +177,16 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     store = ObjectStore(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
-    if progress:
-        progress(f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
+    notices = []
+    lifted = store.config.get("volume")
+    if lifted is not None and lifted != cfg["volume"]:
+        # the volumes were lifted with the store's [volume] settings; the library must record those, or
+        # labelling would lift single views on another grid than its prototypes
+        diff = ", ".join(f"volume.{k}={lifted[k]}" for k in sorted(lifted) if lifted[k] != cfg["volume"].get(k))
+        notices.append(f"{store.path} was ingested with {diff}; the config asks for other [volume] settings, "
+                       "so the store's are used and recorded in the library")
+        cfg = {**cfg, "volume": dict(lifted)}
+    say(progress, f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
     model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
@@ -249,7 +258,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     record_outputs([out / "gallery.png"], prov)
     write_member_sheets(out / "members", lib, store, progress=progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
-                 "k_selection": k_table}
+                 "k_selection": k_table, "notices": notices}
 
 
 def write_assignments(path: str | Path, lib: Library) -> None:
