@@ -12,7 +12,7 @@ from sklearn.metrics import normalized_mutual_info_score
 
 from protomine.config import load_config
 from protomine.ingest.pipeline import ingest_captures
-from protomine.ingest.store import open_store
+from protomine.ingest.sharded import open_store
 from protomine.mine.choosek import knn_components
 from protomine.mine.evaluate import read_truth_table
 from protomine.mine.pipeline import fit_engine
