@@ -14,7 +14,7 @@ the prototypes.
 Algorithm
 ---------
 1. Seeding (:mod:`protomine.mine.seeding`): pose-minimised distances among a random subsample of at
-   most ``seeding.SEED_SIZE`` objects (yaw-invariant descriptors would forget the angles between parts,
+   most max(``seeding.SEED_SIZE``, 2 K) objects (yaw-invariant descriptors would forget the angles between parts,
    so mirror images and differently pointing parts would look alike); K medoids on that matrix
    (average linkage on the first restart, k-means++-style sampling on the others, refined by
    alternating k-medoids); every object of the subsample joins its pose-nearest medoid.  The groups'
@@ -66,7 +66,7 @@ import torch
 from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseBank, PoseMatch, _check_scales, _resample_axis, shift_volume
-from .seeding import PoseSeeder
+from .seeding import SEED_SIZE, PoseSeeder
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
 
@@ -492,7 +492,7 @@ class PoseKMeans:
         N, K = len(source), self.n_clusters
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size), replace=False))
         Xs, Ws = _gather(source, idx, self.chunk_size)
-        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng)
+        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng, size=max(SEED_SIZE, 2 * K))
         sub = ArraySource(Xs, Ws)
         fit_on = source if N <= self.sample_size else sub
         # the subsample's spectra serve every restart (and the seeding passes); when the subsample is

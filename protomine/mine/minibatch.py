@@ -40,7 +40,7 @@ import numpy as np
 from ..ingest.store import StoreSource
 from .engine import (ArraySource, PoseKMeans, Source, _assign_pass, _gather, _lloyd, _partition_seeds, _Result,
                      _update)
-from .seeding import PoseSeeder
+from .seeding import SEED_SIZE, PoseSeeder
 
 
 def subset_source(source: Source, idx: np.ndarray, chunk_size: int) -> Source:
@@ -82,7 +82,7 @@ class MiniBatchPoseKMeans(PoseKMeans):
         # seeding subsample: 3 batches' worth (scikit-learn's MiniBatchKMeans init_size), at most sample_size
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size, 3 * self.batch_size), replace=False))
         Xs, Ws = _gather(source, idx, cs) if not hasattr(source, "gather") else source.gather(idx)
-        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng)
+        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng, size=max(SEED_SIZE, 2 * K))
         sub = ArraySource(Xs, Ws)
         b = min(self.batch_size, N)
         batches = [np.sort(rng.choice(N, size=b, replace=False)) for _ in range(self.n_steps)]

@@ -43,7 +43,7 @@ from .posesearch import pose_distances
 
 DistanceFn = Callable[[np.ndarray, np.ndarray, np.ndarray, np.ndarray], np.ndarray]
 
-SEED_SIZE = 400      # objects in the seeding matrix: 160k pose searches, a few seconds on 2 cores
+SEED_SIZE = 200      # objects in the seeding matrix: 40k pose searches (~12 per class at K = 16)
 
 
 def symmetric_distances(D: np.ndarray) -> np.ndarray:
