@@ -180,3 +180,19 @@ def test_upright_scenes_are_unchanged_and_record_upright_rotations(tmp_path):
         assert float(G.direction_to_yaw(R[:, 0], up)) == pytest.approx(float(r["yaw_deg"]), abs=1e-3)
         np.testing.assert_allclose([float(r[k]) for k in ("tx", "ty", "tz")],
                                    [float(r[k]) for k in ("x", "y", "z")], atol=1e-5)
+
+
+def test_scenes_command_takes_the_family_and_tumbled_share_from_the_config(tmp_path):
+    from typer.testing import CliRunner
+
+    from protomine.cli import app
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[scenes]\nfamily = "angles"\ntumbled_fraction = 1.0\n')
+    res = CliRunner().invoke(app, ["scenes", "-o", str(tmp_path / "s"), "--captures", "1", "--single", "0",
+                                   "--frames", "1", "--width", "48", "--height", "36", "-c", str(cfg), "-q"])
+    assert res.exit_code == 0, res.output
+    rows = list(csv.DictReader(open(tmp_path / "s" / "truth_full.csv")))
+    assert rows and all(r["tumbled"] == "1" and r["class"].startswith("peg_") for r in rows)
+    cfg.write_text('[scenes]\nfamily = "no_such_family"\n')
+    res = CliRunner().invoke(app, ["scenes", "-o", str(tmp_path / "t"), "-c", str(cfg), "-q"])
+    assert res.exit_code == 2 and "scenes.family" in res.output and "Traceback" not in res.output

@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ..cliutil import QuietOpt, SeedOpt, VerboseOpt, reporter
+from ..cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
 from .scenario import generate_scenario
 
 
@@ -19,6 +19,7 @@ def scenes(
     width: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image width (pixels).")] = 320,
     height: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image height (pixels).")] = 240,
     seed: SeedOpt = 0,
+    config: ConfigOpt = None,
     quiet: QuietOpt = False,
     verbose: VerboseOpt = False,
 ) -> None:
