@@ -67,8 +67,10 @@ def _set_name(lib: Library, path: Path, k: int, name: str, example: str) -> Libr
 
 
 def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
-    """Re-render gallery.png beside the library if that folder already has one; returns its path."""
+    """Re-render gallery.png (and the member sheets, whose titles carry the names) beside the library if
+    that folder already has them; returns the gallery's path."""
     from ..mine.gallery import render_gallery
+    refresh_member_sheets(lib, library_path)
     gallery = Path(library_path).parent / "gallery.png"
     if not gallery.is_file():
         return None
@@ -78,3 +80,14 @@ def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
                    symmetry=np.asarray(p["symmetry"]), names=[str(x) for x in p["name"]])
     record_outputs([gallery], provenance_of(lib.attrs))
     return gallery
+
+
+def refresh_member_sheets(lib: Library, library_path: str | Path) -> list[Path]:
+    """Re-render members/ beside the library when it exists and the library's store can still be opened."""
+    from ..ingest.store import open_store
+    from ..mine.members import write_member_sheets
+    folder = Path(library_path).parent / "members"
+    store = Path(lib.store_path) if lib.store_path else None
+    if not folder.is_dir() or store is None or not store.is_file():
+        return []
+    return write_member_sheets(folder, lib, open_store(store))
