@@ -1,4 +1,4 @@
-"""Provenance: what produced an output file (config, seed, input fingerprints, code version).
+"""Provenance: what produced an output file (config, seed, input fingerprints, code version and commit).
 
 One rule for every output: HDF5 files (store, library) carry the record as root attributes; every other
 file (CSV, JSON, PNG, HTML, ...) is listed in the one manifest of its folder, ``provenance.json``, written
@@ -28,6 +28,7 @@ from . import __version__
 from .atomic import exclusive_lock, write_text
 from .config import config_json
 from .errors import InputError
+from .version import code_commit
 
 
 def file_fingerprint(path: str | Path, *, chunk: int = 1 << 20) -> str:
@@ -55,6 +56,7 @@ def provenance(cfg: dict, seed: int, inputs: dict[str, str] | None = None, comma
     return {
         "producer": "protomine",
         "code_version": __version__,
+        "code_commit": code_commit(),
         "python": platform.python_version(),
         "command": command,
         "seed": int(seed),
@@ -78,7 +80,7 @@ def manifest_path(path: str | Path) -> Path:
     return Path(path).parent / MANIFEST
 
 
-PROVENANCE_KEYS = ("producer", "code_version", "python", "command", "seed", "config", "inputs")
+PROVENANCE_KEYS = ("producer", "code_version", "code_commit", "python", "command", "seed", "config", "inputs")
 
 
 def provenance_of(attrs: dict) -> dict:

@@ -135,7 +135,7 @@ def test_ingest_lists_every_bad_capture_before_work(tmp_path, tiny_world):
 
 
 def test_keep_going_skips_one_bad_and_one_empty_capture(tmp_path, tiny_world):
-    from protomine.ingest.store import open_store
+    from protomine.ingest.sharded import open_store
     good = [tmp_path / "g0", tmp_path / "g1"]
     for c, g in zip(tiny_world["caps"][:2], good):
         shutil.copytree(c, g)

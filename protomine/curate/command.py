@@ -8,7 +8,7 @@ import numpy as np
 import typer
 
 from ..atomic import clean_stale_temporaries
-from ..cliutil import (CapturesArg, ConfigOpt, LibraryArg, QuietOpt, SeedOpt, VerboseOpt, config_from, existing,
+from ..cliutil import (CapturesArg, ConfigOpt, LibraryArg, QuietOpt, VerboseOpt, config_from, existing,
                        notice_library_config, reporter)
 
 StoreArg = Annotated[Path, typer.Argument(metavar="STORE.h5", show_default=False,
@@ -55,7 +55,7 @@ def find(
     quiet: QuietOpt = False,
 ) -> None:
     """Find every instance of a new item class from one example object."""
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     from ..mine.library import read_library
     from ..provenance import file_fingerprint, provenance, record_outputs
     from .names import check_name

@@ -93,7 +93,7 @@ def export_labels(library: Library, source: str | Path | ObjectStore, captures: 
     (JSON lines of ``protomine label``).  captures: the capture folders to export (by folder name: ingested
     into the store, or labelled in the records).  Returns the summary dict.
     """
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     if not 0.0 <= min_score <= 1.0:
         raise InputError(None, "--min-score", f"expected a score in [0, 1], got {min_score}")
     if not captures:

@@ -84,7 +84,7 @@ def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
 
 def refresh_member_sheets(lib: Library, library_path: str | Path) -> list[Path]:
     """Re-render members/ beside the library when it exists and the library's store can still be opened."""
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     from ..mine.members import write_member_sheets
     folder = Path(library_path).parent / "members"
     store = Path(lib.store_path) if lib.store_path else None

@@ -32,9 +32,9 @@ def ingest(
     --workers > 1, the captures are ingested in parallel into a sharded store.
     """
     from ..scale.executor import InlineExecutor
-    from ..scale.shards import is_index
     from .pipeline import check_captures, ingest_captures
     from .sharded import ingest_sharded
+    from .store import is_index
     cfg = config_from(config)
     say = reporter("ingest", quiet, verbose)
     good, bad = check_captures(captures, keep_going=keep_going)
