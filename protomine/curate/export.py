@@ -215,6 +215,8 @@ def _write_export(lib: Library, frames: list[tuple[object, str, list[dict]]], ou
                     raise InputError(lib.path, "prototypes", f"label record of {rec['object']} names cluster {k}, the "
                                      f"library has 0..{lib.n_clusters - 1} (labelled with another library?)")
                 name = lib.display_name(int(k)) if k is not None else "unknown"
+                if k is not None:       # the library's current name (the cluster may have been named since)
+                    rec = {**rec, "name": str(lib.prototypes["name"][int(k)]) or None}
                 lines.append(json.dumps(rec))
                 st = stats.setdefault(name, {"clusters": set(), "objects": set(), "labels": 0, "scores": [], "unknown": 0})
                 if k is not None:

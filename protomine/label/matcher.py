@@ -215,7 +215,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
     search call costs a fixed overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
-    and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
+    and matching, without reading images or finding objects), ``objects_per_second`` for those two and
+    ``scores`` (n_records, K): every record's score against every prototype.
     """
     names = [Path(c).name for c in capture_paths]
     if len(set(names)) != len(names):
@@ -234,6 +235,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
                 pending = []
         out += _match_batch(matcher, pending, st)
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
+    st["scores"] = np.concatenate(st.get("scores") or [np.zeros((0, matcher.K))])
     if stats is not None:
         stats.update(st)
     return out
@@ -270,4 +273,5 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
         out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
     st["objects"] += i0
+    st.setdefault("scores", []).append(m["score"])
     return out

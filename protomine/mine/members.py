@@ -56,7 +56,7 @@ def render_member_sheet(title: str, colour: tuple[int, int, int], tiles: list[tu
         d.rectangle([x, y, x + TILE - 1, y + TILE - 1], outline=colour)
         for j, line in enumerate((line1, line2)):
             while line and text_size(line, TEXT)[0] > TILE:
-                line = "…" + line[2:]
+                line = ".." + line[3:]
             halo_text(d, (x, y + TILE + 2 + j * (TEXT + 3)), line, (235, 235, 235), TEXT)
     return im
 
@@ -78,7 +78,7 @@ def write_member_sheets(folder: str | Path, lib: Library, store: ObjectStore, *,
                 oid = str(m["object"][r])
                 crops = store.crops(oid)
                 tiles.append((crops[0] if crops else None, oid, f"score {float(m['score'][r]):.2f}"))
-            title = (f"cluster {k}" + (f" \u2014 {lib.names[k]}" if k in lib.names else "")
+            title = (f"cluster {k}" + (f" \"{lib.names[k]}\"" if k in lib.names else "")
                      + f": {len(rows)} members" + (f", {len(pick)} shown, nearest first" if len(pick) < len(rows)
                                                    else ", nearest first"))
             path = folder / f"cluster-{k:0{width}d}.png"
