@@ -43,7 +43,7 @@ import numpy as np
 
 from ..capture import Capture, read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng, pixel_bbox
+from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
@@ -218,10 +218,7 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     and matching, without reading images or finding objects), ``objects_per_second`` for those two and
     ``scores`` (n_records, K): every record's score against every prototype.
     """
-    names = [Path(c).name for c in capture_paths]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(capture_paths)
     matcher = make_matcher(library, cfg, weighted=weighted)
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
