@@ -194,6 +194,8 @@ def test_export_of_a_store_writes_the_same_record_fields_as_label(tmp_path, tiny
     assert _run("label", tiny_world["library"], new, "-o", tmp_path / "l.jsonl", "-q").exit_code == 0
     lab = json.loads((tmp_path / "l.jsonl").read_text().splitlines()[0])
     assert rec.keys() == lab.keys() and rec["source"] == "mined"
+    from protomine.records import FIELDS
+    assert set(FIELDS) <= rec.keys()
 
 
 @pytest.mark.parametrize("line, field", [

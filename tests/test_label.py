@@ -23,6 +23,7 @@ from protomine.label.matcher import label_captures, symmetry_name
 from protomine.label.overlays import yaw_arrow_world
 from protomine.mine.library import match_score
 from protomine.mine.pipeline import mine_store
+from protomine.records import FIELDS as RECORD_FIELDS
 from protomine.scenes.scenario import generate_scenario
 
 FIELDS = {"capture": str, "frame": str, "object": str, "bbox": list, "center_world": list, "size_m": list,
@@ -49,6 +50,7 @@ def test_records_have_the_documented_fields_and_types(labelled):
     assert len(recs) >= 40
     K = labelled["lib"].n_clusters
     for r in recs:
+        assert set(RECORD_FIELDS) <= r.keys() and r["source"] == "single-view"   # the one schema, records.py
         for k, t in FIELDS.items():
             assert isinstance(r[k], t), (k, r[k])
         json.dumps(r)  # JSON-ready
