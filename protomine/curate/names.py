@@ -62,15 +62,15 @@ def _set_name(lib: Library, path: Path, k: int, name: str, example: str) -> Libr
     names[k], examples[k] = name, example
     lib.prototypes["name"], lib.prototypes["name_example"] = names, examples
     write_library(path, lib)
-    refresh_gallery(lib, path)
+    refresh_gallery(lib, path, clusters=[k])
     return lib
 
 
-def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
-    """Re-render gallery.png (and the member sheets, whose titles carry the names) beside the library if
-    that folder already has them; returns the gallery's path."""
+def refresh_gallery(lib: Library, library_path: str | Path, clusters: list[int] | None = None) -> Path | None:
+    """Re-render gallery.png (and the member sheets of ``clusters``, None = all: their titles carry the
+    names) beside the library if that folder already has them; returns the gallery's path."""
     from ..mine.gallery import render_gallery
-    refresh_member_sheets(lib, library_path)
+    refresh_member_sheets(lib, library_path, clusters)
     gallery = Path(library_path).parent / "gallery.png"
     if not gallery.is_file():
         return None
@@ -82,7 +82,7 @@ def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
     return gallery
 
 
-def refresh_member_sheets(lib: Library, library_path: str | Path) -> list[Path]:
+def refresh_member_sheets(lib: Library, library_path: str | Path, clusters: list[int] | None = None) -> list[Path]:
     """Re-render members/ beside the library when it exists and the library's store can still be opened."""
     from ..ingest.sharded import open_store
     from ..mine.members import write_member_sheets
@@ -90,4 +90,4 @@ def refresh_member_sheets(lib: Library, library_path: str | Path) -> list[Path]:
     store = Path(lib.store_path) if lib.store_path else None
     if not folder.is_dir() or store is None or not store.is_file():
         return []
-    return write_member_sheets(folder, lib, open_store(store))
+    return write_member_sheets(folder, lib, open_store(store), clusters=clusters)

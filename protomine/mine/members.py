@@ -61,16 +61,22 @@ def render_member_sheet(title: str, colour: tuple[int, int, int], tiles: list[tu
     return im
 
 
-def write_member_sheets(folder: str | Path, lib: Library, store: ObjectStore, *, progress=None) -> list[Path]:
-    """One ``cluster-<k>.png`` per cluster into ``folder`` (atomic), listed in the folder's manifest."""
+def write_member_sheets(folder: str | Path, lib: Library, store: ObjectStore, *, clusters: list[int] | None = None,
+                        progress=None) -> list[Path]:
+    """One ``cluster-<k>.png`` per cluster into ``folder`` (atomic), listed in the folder's manifest.
+
+    clusters: only these sheets (a renamed cluster); None = all, and sheets of clusters that no longer
+    exist are removed.
+    """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     m = lib.members
     width = len(str(max(lib.n_clusters - 1, 0)))
-    stale = {p for p in folder.glob("cluster-*.png")}
+    stale = {p for p in folder.glob("cluster-*.png")} if clusters is None else set()
+    todo = range(lib.n_clusters) if clusters is None else [int(k) for k in clusters]
     paths = []
-    with bar(progress, "member sheets", total=lib.n_clusters, unit="clusters") as b:
-        for k in range(lib.n_clusters):
+    with bar(progress, "member sheets", total=len(todo), unit="clusters") as b:
+        for k in todo:
             rows = np.flatnonzero(np.asarray(m["cluster"]) == k)
             pick = rows[sheet_order(np.asarray(m["distance"])[rows])]
             tiles = []
