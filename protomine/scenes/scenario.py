@@ -116,7 +116,8 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
         for name, split, pool, n_frames_cap in plan:
             cap_rng = rng.spawn(1)[0]
             t1 = time.monotonic()
-            cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split], tumbled_fraction)
+            cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split],
+                                        tumbled_fraction)
             rows += cap_rows
             render_s += dt
             n_frames += n_frames_cap
