@@ -56,18 +56,19 @@ from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 from sklearn.metrics import silhouette_score
 
+from ..progress import bar
 from .engine import PoseKMeans, Source, _gather
 from .posesearch import _check_scales, pose_distances
-from .seeding import DistanceFn, default_distance, kmedoids, pairwise_pose_distances, symmetric_distances
+from .seeding import DistanceFn, kmedoids, pairwise_pose_distances, symmetric_distances
 
 KNN_NEIGHBOURS = 3             # neighbours per object in the graph whose connected components count groups
 
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
-             min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048,
+             min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048, progress=None,
              distance: DistanceFn | None = None) -> tuple[int, list[dict]]:
     """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
-    (module docstring)."""
+    (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows."""
     scales = _check_scales(scales)
     N = len(source)
     if min_k < 2 or max_k < min_k:
@@ -76,7 +77,7 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
         raise ValueError(f"n_objects={N} must be > min_k={min_k} to compare clusterings")
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
-                     chunk_size=chunk_size, distance=distance)
+                     chunk_size=chunk_size, progress=progress, distance=distance)
 
 
 def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS) -> int:
@@ -92,11 +93,11 @@ def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS) -> int:
     return int(connected_components(graph, directed=False)[0])
 
 
-def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, distance=None):
+def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     Xs, Ws = _gather(source, idx, chunk_size)
-    S = pairwise_pose_distances(Xs, Ws, distance or default_distance(scales))
+    S = pairwise_pose_distances(Xs, Ws, distance, scales=scales, progress=progress, what="choose K")
     components = knn_components(S)
     table = []
     for k in range(min_k, min(max_k, len(idx) - 1) + 1):
@@ -149,7 +150,7 @@ def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
     """Choose K, fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
     rng = np.random.default_rng(random_state)
     k, table = choose_k(source, max_k=max_k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
-                        sample_size=sample_size)
+                        sample_size=sample_size, progress=engine_kwargs.get("progress"))
     model = PoseKMeans(n_clusters=k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                        **engine_kwargs).fit(source)
     model, merges = merge_close_prototypes(model, source, merge_threshold=merge_threshold)

@@ -27,7 +27,7 @@ How
 Public API
 ----------
 - ``symmetric_distances(D) -> S``; ``kmedoids(S, labels, max_iter=30) -> (labels, cost)``
-- ``pairwise_pose_distances(X, W, distance) -> S``
+- ``pairwise_pose_distances(X, W, distance=None, *, scales=(1.0,), progress=None) -> S``
 - ``kmedoids_plusplus(S, K, rng) -> medoids (K,)``
 - ``PoseSeeder(X, W, *, scales, rng, size=SEED_SIZE, distance=None)``; ``.partition(K, restart, rng) ->
   (labels (n,), refs (K,))``; ``.S`` (m, m), ``.index`` (m,) rows of X in the matrix.
@@ -39,7 +39,8 @@ from typing import Callable, Sequence
 import numpy as np
 from sklearn.cluster import AgglomerativeClustering
 
-from .posesearch import pose_distances
+from ..progress import bar
+from .posesearch import PoseBank, pose_distances
 
 DistanceFn = Callable[[np.ndarray, np.ndarray, np.ndarray, np.ndarray], np.ndarray]
 
@@ -78,9 +79,20 @@ def default_distance(scales: Sequence[float]) -> DistanceFn:
     return lambda X, W, P, V: pose_distances(X, W, P, V, scales=scales, chunk_size=256).D
 
 
-def pairwise_pose_distances(X: np.ndarray, W: np.ndarray, distance: DistanceFn) -> np.ndarray:
-    """(n, n) symmetrised pose-minimised distances among the objects X (n, C, R, A, H), W (n, R, A, H)."""
-    return symmetric_distances(np.asarray(distance(X, W, X, W), np.float64))
+def pairwise_pose_distances(X: np.ndarray, W: np.ndarray, distance: DistanceFn | None = None, *,
+                            scales: Sequence[float] = (1.0,), progress=None, what: str = "seeding") -> np.ndarray:
+    """(n, n) symmetrised pose-minimised distances among the objects X (n, C, R, A, H), W (n, R, A, H), in
+    blocks of 256 rows with a progress bar (:mod:`protomine.progress`).  ``distance`` None: the yaw x scale
+    search over ``scales``, with the objects' prototype factors computed once (``posesearch.PoseBank``)."""
+    X, W = (np.asarray(a, dtype=np.float32) for a in (X, W))
+    n, rows = len(X), []
+    bank = PoseBank(X, W, scales) if distance is None else None
+    with bar(progress, f"{what}: pose distances of {n} sampled objects", total=n, unit="objects") as b:
+        for i0 in range(0, n, 256):
+            x, w = X[i0:i0 + 256], W[i0:i0 + 256]
+            rows.append(bank.match(x, w).D if bank is not None else np.asarray(distance(x, w, X, W)))
+            b.advance(len(x))
+    return symmetric_distances(np.concatenate(rows))
 
 
 def kmedoids_plusplus(S: np.ndarray, K: int, rng: np.random.Generator) -> np.ndarray:
@@ -110,7 +122,7 @@ class PoseSeeder:
         self.distance = distance or default_distance(scales)
         n = len(X)
         self.index = np.sort(rng.choice(n, size=min(n, size), replace=False))
-        self.S = pairwise_pose_distances(X[self.index], W[self.index], self.distance)
+        self.S = pairwise_pose_distances(X[self.index], W[self.index], distance, scales=scales)
 
     def medoid_labels(self, K: int, restart: int, rng: np.random.Generator) -> np.ndarray:
         """Labels (m,) of the matrix objects: average linkage on restart 0, k-means++ medoids otherwise;

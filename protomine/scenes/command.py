@@ -18,8 +18,8 @@ def scenes(
     frames: Annotated[int, typer.Option(min=1, max=360, metavar="N", help="Camera poses per mining capture.")] = 8,
     width: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image width (pixels).")] = 320,
     height: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image height (pixels).")] = 240,
-    seed: SeedOpt = 0,
     config: ConfigOpt = None,
+    seed: SeedOpt = 0,
     quiet: QuietOpt = False,
     verbose: VerboseOpt = False,
 ) -> None:
