@@ -78,12 +78,15 @@ class PoseMatch:
     yaw_deg : (N, K) float32 in [0, 360): object ~= prototype rolled by yaw_deg.
     scale : (N, K) float32, the best scale factor (object ~= prototype scaled by it).
     all_D : (N, K, S, A) float32 distance for every scale and integer shift, only with return_all=True.
+    tilt : (N, K) int64 index of the best up direction (``mine.tilts.TiltGrid.dirs``; 0 = upright, the
+        only one of a yaw-only search), or None.
     """
 
     D: np.ndarray
     yaw_deg: np.ndarray
     scale: np.ndarray
     all_D: np.ndarray | None = None
+    tilt: np.ndarray | None = None
 
 
 # --- validation ----------------------------------------------------------------------------
@@ -386,7 +389,7 @@ class PoseBank:
                 d[torch.from_numpy(rows), lo:lo + span] = dd
         d = d.permute(0, 2, 1, 3)  # (n, K, S, A)
         D, yaw, sc = _best_pose_torch(d, self.scales)
-        return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None)
+        return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None, tilt=np.zeros(D.shape, np.int64))
 
     def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3,
               return_all: bool = False) -> PoseMatch:

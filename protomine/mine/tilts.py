@@ -1,0 +1,342 @@
+"""Tilted copies of prototypes: the discrete up-direction part of the 3-D pose search.
+
+Conventions: volumes as in :mod:`protomine.mine.posesearch` (P (K, C, R, A, H), V (K, R, A, H)); the
+first feature channel is the surface evidence (``ingest.volume.FEATURES``); rotations as in
+:mod:`protomine.rotations` (x' = R x, quaternions scalar last).
+
+Geometry of a gridded volume
+----------------------------
+A volume's grid is normalised by its own footprint and height: radial bin i covers rho / rho_max in
+[i/R, (i+1)/R), height bin k covers z / z_max in [k/H, (k+1)/H), with rho_max = radial_margin x footprint
+radius and z_max = height_margin x height.  Lengths below are in units of rho_max, so one number per
+volume, its *aspect* z_max / rho_max (:func:`grid_aspect`), fixes its metric shape up to scale.
+
+Tilted copy (forward map)
+-------------------------
+The prototype resting with its direction u (prototype frame) pointing up is the prototype rotated by
+M = ``rotations.tilt_matrix(u)`` about its centre c0 = (0, 0, height / 2).  Its surface cells (surface
+evidence >= ``SURFACE_MIN`` where observed) are rotated; their lowest point, height and smallest enclosing
+footprint circle (as ``ingest.proposals.object_frame`` measures a real object) give the copy's own base
+centre b, footprint radius r' and height h', so the copy is re-normalised by its own footprint and height
+exactly as an object lying that way would be lifted.  Every cell of the copy's grid is mapped back,
+p = M^T (q + b) + c0, into the prototype's grid and sampled there by trilinear interpolation (azimuth
+wraps; below the first radial bin centre the first bin is used; outside the prototype's cylinder the
+copy's weight is 0 = unknown).  The maps are index/weight arrays (8 corners per cell), built once per
+(prototype, tilt) and applied with one gather, so resampling is a small part of a pass.
+
+Untilting (inverse map)
+-----------------------
+A member matched at tilt u, aligned (yaw and scale undone), lives in the copy's grid; every prototype
+cell p is mapped to q = M (p - c0) - b in the copy's grid and sampled there, which rotates the member back
+into the prototype frame (cells it does not cover get weight 0).  Both maps are linear, so the engine
+untilts sums of members once per (prototype, tilt, scale) group.
+
+Search (coarse to fine)
+-----------------------
+``TiltGrid(nsides=(1, 2, 4))``: HEALPix up-direction grids (``rotations.up_grid``, 12 / 48 / 192
+directions, mean spacing 58.6 / 29.3 / 14.7 degrees), each rotated so its first direction is +z.  The
+first level is searched for every (object, prototype) with the FFT yaw search of ``posesearch`` (a
+``PoseBank`` over the K x T tilted copies); for each object's ``refine_top`` best prototypes, every later
+level searches its directions within ``COVER_FACTOR`` x the previous level's spacing of the previous
+best (HEALPix's measured covering radius is 0.79-0.81 x the mean spacing), about 8 directions per level,
+and keeps the best.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
+``nsides=(0,)`` is the set {+z}: the yaw-only search of the 2-D case, with no resampling at all.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Sequence
+
+import numpy as np
+import torch
+
+from .. import rotations as rot
+from ..ingest.proposals import min_enclosing_circle
+from .posesearch import PoseBank, PoseMatch, _prepare
+
+SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
+OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
+COVER_FACTOR = 0.85    # refinement radius in units of the previous level's mean spacing
+IDENTITY_DEG = 1.0     # directions within this angle of +z are the identity tilt (the canonical face)
+
+
+def grid_aspect(radius: np.ndarray, height: np.ndarray, radial_margin: float, height_margin: float) -> np.ndarray:
+    """Aspect z_max / rho_max of the grids of objects with footprint ``radius`` and ``height`` (metres)."""
+    return (height_margin * np.asarray(height, np.float64)) / np.maximum(radial_margin * np.asarray(radius, np.float64), 1e-9)
+
+
+@dataclass(frozen=True)
+class TiltGrid:
+    """Up directions searched, level by level (see the module docstring); margins of the volume grid."""
+
+    nsides: tuple[int, ...] = (1, 2, 4)
+    radial_margin: float = 1.15
+    height_margin: float = 1.10
+    refine_top: int = 2
+    dirs: np.ndarray = field(init=False, repr=False, compare=False)
+    offsets: tuple[int, ...] = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        if not self.nsides or any(n < 0 for n in self.nsides) or (0 in self.nsides and len(self.nsides) > 1):
+            raise ValueError(f"nsides must be (0,) or positive HEALPix N_side values, got {self.nsides}")
+        levels = [rot.up_grid(n) for n in self.nsides]
+        object.__setattr__(self, "dirs", np.concatenate(levels))
+        object.__setattr__(self, "offsets", tuple(np.cumsum([0] + [len(l) for l in levels]).tolist()))
+
+    @classmethod
+    def identity(cls) -> "TiltGrid":
+        return cls(nsides=(0,))
+
+    @property
+    def is_identity(self) -> bool:
+        return self.nsides == (0,)
+
+    def level(self, i: int) -> np.ndarray:
+        """Indices into ``dirs`` of level i."""
+        return np.arange(self.offsets[i], self.offsets[i + 1])
+
+    def candidates(self, i: int, prev: int) -> np.ndarray:
+        """Indices of level i's directions near direction ``prev`` (the refinement step)."""
+        idx = self.level(i)
+        radius = COVER_FACTOR * rot.grid_spacing_deg(self.nsides[i - 1])
+        near = rot.angle_between_deg(self.dirs[idx], self.dirs[prev][None]) <= radius
+        return idx[near]
+
+    def is_upright(self, tilt: np.ndarray) -> np.ndarray:
+        """True where tilt index (...) is the identity (the direction +z)."""
+        return self.dirs[np.asarray(tilt)][..., 2] >= np.cos(np.deg2rad(IDENTITY_DEG))
+
+    def to_config(self) -> dict:
+        return {"nsides": list(self.nsides), "radial_margin": self.radial_margin,
+                "height_margin": self.height_margin, "refine_top": self.refine_top}
+
+
+# --- sampling maps -------------------------------------------------------------------------------
+
+def _cell_points(R: int, A: int, H: int, rho_max: float, z_max: float) -> np.ndarray:
+    """Cell centres (R A H, 3) of a cylindrical grid, in the order of a (R, A, H) reshape."""
+    rho = (np.arange(R) + 0.5) / R * rho_max
+    phi = (np.arange(A) + 0.5) / A * 2 * np.pi
+    z = (np.arange(H) + 0.5) / H * z_max
+    rr, pp, zz = np.meshgrid(rho, phi, z, indexing="ij")
+    return np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], -1).reshape(-1, 3)
+
+
+def _trilinear(pts: np.ndarray, shape: tuple[int, int, int], rho_max: float, z_max: float
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Sampling map of points (M, 3) in a cylindrical grid: corner indices (8, M) into R A H and weights (8, M)
+    (all 0 for points outside the grid's cylinder)."""
+    R, A, H = shape
+    fi = np.hypot(pts[:, 0], pts[:, 1]) / rho_max * R - 0.5
+    fj = np.mod(np.arctan2(pts[:, 1], pts[:, 0]), 2 * np.pi) / (2 * np.pi) * A - 0.5
+    fk = pts[:, 2] / z_max * H - 0.5
+    inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
+    fi = np.clip(fi, 0.0, R - 1)
+    fk = np.clip(fk, 0.0, H - 1)
+    i0, j0, k0 = np.floor(fi), np.floor(fj), np.floor(fk)
+    ti, tj, tk = fi - i0, fj - j0, fk - k0
+    idx, wts = [], []
+    for di in (0, 1):
+        ii = np.minimum(i0 + di, R - 1).astype(np.int64)
+        wi = ti if di else 1 - ti
+        for dj in (0, 1):
+            jj = np.mod(j0 + dj, A).astype(np.int64)
+            wj = tj if dj else 1 - tj
+            for dk in (0, 1):
+                kk = np.minimum(k0 + dk, H - 1).astype(np.int64)
+                wk = tk if dk else 1 - tk
+                idx.append((ii * A + jj) * H + kk)
+                wts.append(wi * wj * wk * inside)
+    return np.stack(idx), np.stack(wts).astype(np.float32)
+
+
+def apply_map(a: np.ndarray, idx: np.ndarray, wts: np.ndarray, shape: tuple[int, int, int]) -> np.ndarray:
+    """Sample a (..., R, A, H) through a map (8, M) -> (..., R', A', H') with ``shape`` = (R', A', H')."""
+    flat = a.reshape(a.shape[:-3] + (-1,))
+    out = (flat[..., idx] * wts).sum(axis=-2)
+    return out.reshape(a.shape[:-3] + shape).astype(np.float32)
+
+
+@dataclass
+class CopyGeometry:
+    """Where a tilted copy sits: rotation M (3, 3), centre c0 (3,) of the prototype, copy base b (3,) and grid
+    extents rho_max, z_max of the copy (units of the prototype's rho_max)."""
+    M: np.ndarray
+    c0: np.ndarray
+    base: np.ndarray
+    rho_max: float
+    z_max: float
+
+
+def copy_geometry(surface: np.ndarray, weight: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGrid) -> CopyGeometry:
+    """Geometry of the copy of one prototype (surface, weight (R, A, H)) resting with ``up`` (3,) pointing up."""
+    R, A, H = surface.shape
+    pts = _cell_points(R, A, H, 1.0, aspect)
+    occ = ((surface >= SURFACE_MIN) & (weight >= OBSERVED_MIN)).reshape(-1)
+    if occ.sum() < 4:  # nothing solid seen: the whole bounding cylinder stands for the object
+        occ = np.ones(len(pts), bool)
+    c0 = np.array([0.0, 0.0, 0.5 * aspect / grid.height_margin])
+    M = rot.tilt_matrix(up)
+    q = (pts[occ] - c0) @ M.T
+    zmin, zmax = q[:, 2].min(), q[:, 2].max()
+    centre, radius = min_enclosing_circle(q[:, :2])
+    # the cell centres sit up to half a cell inside the surface: grow by half a cell
+    half = 0.5 * max(1.0 / R, aspect / H)
+    height = max(zmax - zmin + half, 1e-3)
+    radius = max(radius + 0.5 * half, 1e-3)
+    base = np.array([centre[0], centre[1], zmin - 0.5 * half])
+    return CopyGeometry(M, c0, base, grid.radial_margin * radius, grid.height_margin * height)
+
+
+def forward_map(g: CopyGeometry, shape: tuple[int, int, int], aspect: float) -> tuple[np.ndarray, np.ndarray]:
+    """Map from the copy's grid cells into the prototype's grid (sample the prototype there)."""
+    q = _cell_points(*shape, g.rho_max, g.z_max)
+    p = (q + g.base) @ g.M + g.c0  # M^T (q + b) + c0 for row points
+    return _trilinear(p, shape, 1.0, aspect)
+
+
+def inverse_map(g: CopyGeometry, shape: tuple[int, int, int], aspect: float) -> tuple[np.ndarray, np.ndarray]:
+    """Map from the prototype's grid cells into the copy's grid (sample a member aligned in the copy there)."""
+    p = _cell_points(*shape, 1.0, aspect)
+    q = (p - g.c0) @ g.M.T - g.base
+    return _trilinear(q, shape, g.rho_max, g.z_max)
+
+
+# --- the bank ----------------------------------------------------------------------------------
+
+class TiltBank:
+    """Prototypes P (K, C, R, A, H), V (K, R, A, H) with aspects (K,), searched over tilts x yaw x scale.
+
+    Same interface as :class:`posesearch.PoseBank` (``spectra``, ``match_spectra``, ``match``); its
+    :class:`PoseMatch` carries ``tilt`` (n, K), indices into ``grid.dirs``.  With the identity grid it is a
+    PoseBank (no resampling).
+    """
+
+    def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid):
+        self.P = np.asarray(P, np.float32)
+        self.V = np.asarray(V, np.float32)
+        self.K, self.C = self.P.shape[:2]
+        self.shape = tuple(self.P.shape[2:])
+        self.A = self.shape[1]
+        self.aspect = np.broadcast_to(np.asarray(aspect, np.float64), (self.K,)).copy()
+        self.scales, self.grid = scales, grid
+        self._geom: dict[tuple[int, int], CopyGeometry] = {}
+        self._banks: dict[tuple[int, ...], PoseBank] = {}
+        lvl0 = grid.level(0)
+        Pc, Vc = self.copies(np.repeat(np.arange(self.K), len(lvl0)), np.tile(lvl0, self.K))
+        self.T0 = len(lvl0)
+        self.coarse = PoseBank(Pc, Vc, scales)
+        self.dft = self.coarse.dft
+
+    def geometry(self, k: int, t: int) -> CopyGeometry:
+        key = (int(k), int(t))
+        if key not in self._geom:
+            self._geom[key] = copy_geometry(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid.dirs[t], self.grid)
+        return self._geom[key]
+
+    def copies(self, ks: np.ndarray, ts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Tilted copies (M, C, R, A, H), (M, R, A, H) of prototypes ``ks`` at tilts ``ts`` (M,)."""
+        Pc = np.empty((len(ks), self.C) + self.shape, np.float32)
+        Vc = np.empty((len(ks),) + self.shape, np.float32)
+        for j, (k, t) in enumerate(zip(ks, ts)):
+            if self.grid.is_upright(t):
+                Pc[j], Vc[j] = self.P[k], self.V[k]
+                continue
+            idx, wts = forward_map(self.geometry(k, t), self.shape, float(self.aspect[k]))
+            Vc[j] = apply_map(self.V[k], idx, wts, self.shape)
+            # features are means: sample w x and divide, so unseen cells do not dilute the seen ones
+            wx = apply_map(self.V[k][None] * self.P[k], idx, wts, self.shape)
+            Pc[j] = np.where(Vc[j] > 1e-6, wx / np.maximum(Vc[j], 1e-6), 0.0)
+        return Pc, Vc
+
+    def untilt(self, k: int, t: int, a: np.ndarray) -> np.ndarray:
+        """Sums a (..., R, A, H) in the copy frame of (k, t) rotated back into prototype k's frame."""
+        if self.grid.is_upright(t):
+            return a
+        idx, wts = inverse_map(self.geometry(k, t), self.shape, float(self.aspect[k]))
+        return apply_map(a, idx, wts, self.shape)
+
+    def _bank(self, k: int, ts: np.ndarray) -> PoseBank:
+        key = (int(k),) + tuple(int(t) for t in ts)
+        if key not in self._banks:
+            self._banks[key] = PoseBank(*self.copies(np.full(len(ts), k), ts), self.scales)
+        return self._banks[key]
+
+    def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
+        return self.coarse.spectra(x, w)
+
+    def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
+                      scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
+        """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (2F, n, (C + 2) R H)."""
+        n, K, T0 = o.shape[1], self.K, self.T0
+        m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window)
+        D = m.D.reshape(n, K, T0)
+        bt = np.argmin(D, axis=2)
+        pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
+        out = PoseMatch(pick(m.D), pick(m.yaw_deg), pick(m.scale), None, tilt=self.grid.level(0)[bt])
+        if len(self.grid.nsides) > 1:
+            self._refine(o, out, min_overlap, scale_index, window)
+        return out
+
+    def _refine(self, o: torch.Tensor, out: PoseMatch, min_overlap: float, scale_index: np.ndarray | None,
+                window: int) -> None:
+        """Coarse-to-fine over the later levels for each object's ``refine_top`` best prototypes (in place)."""
+        n = o.shape[1]
+        top = np.argsort(np.where(np.isfinite(out.D), out.D, np.inf), axis=1, kind="stable")[:, :self.grid.refine_top]
+        for level in range(1, len(self.grid.nsides)):
+            pairs: dict[tuple[int, int], list[int]] = {}
+            for i in range(n):
+                for k in top[i]:
+                    if np.isfinite(out.D[i, k]):
+                        pairs.setdefault((int(k), int(out.tilt[i, k])), []).append(i)
+            for (k, t), rows in sorted(pairs.items()):
+                cand = self.grid.candidates(level, t)
+                if not len(cand):
+                    continue
+                rows = np.asarray(rows)
+                og = o[:, torch.from_numpy(rows)]
+                sidx = None if scale_index is None else np.asarray(scale_index)[rows]
+                m = self._bank(k, cand).match_spectra(og, min_overlap, False, sidx, window)
+                j = np.argmin(m.D, axis=1)
+                r = np.arange(len(rows))
+                better = m.D[r, j] < out.D[rows, k]
+                sel = rows[better]
+                out.D[sel, k] = m.D[r, j][better]
+                out.yaw_deg[sel, k] = m.yaw_deg[r, j][better]
+                out.scale[sel, k] = m.scale[r, j][better]
+                out.tilt[sel, k] = cand[j[better]]
+
+    def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3, return_all: bool = False) -> PoseMatch:
+        return self.match_spectra(self.spectra(x, w), min_overlap)
+
+
+def make_bank(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], grid: TiltGrid | None = None,
+              aspect: np.ndarray | None = None):
+    """A PoseBank (yaw-only grid or none) or a TiltBank; both give PoseMatch with ``tilt`` (n, K)."""
+    if grid is None or grid.is_identity:
+        return PoseBank(P, V, scales)
+    if aspect is None:
+        raise ValueError("a tilt search needs the prototypes' aspects (z_max / rho_max), got None")
+    return TiltBank(P, V, aspect, scales, grid)
+
+
+def tilt_pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *, aspect: np.ndarray,
+                        scales: Sequence[float] = (1.0,), grid: TiltGrid | None = None,
+                        chunk_size: int = 1024, min_overlap: float = 1e-3) -> PoseMatch:
+    """Pose-minimised distance of every object to every prototype over tilts x yaw x scale: PoseMatch (N, K)
+    with ``tilt`` (indices into ``grid.dirs``).  P may be objects themselves (pairwise distances between
+    objects); ``aspect`` (K,) are the prototypes' z_max / rho_max (:func:`grid_aspect`)."""
+    X, W, P, V, scales = _prepare(X, W, P, V, scales)
+    bank = make_bank(P, V, scales, grid, aspect)
+    parts = [bank.match(X[i:i + chunk_size], W[i:i + chunk_size], min_overlap) for i in range(0, len(X), chunk_size)]
+    K = P.shape[0]
+    if not parts:
+        z = np.zeros((0, K), np.float32)
+        return PoseMatch(z, z, z, None, tilt=np.zeros((0, K), np.int64))
+    cat = lambda name: np.concatenate([getattr(p, name) for p in parts])  # noqa: E731
+    return PoseMatch(cat("D"), cat("yaw_deg"), cat("scale"), None, tilt=cat("tilt"))
+
+
+def rotation_of(grid: TiltGrid, tilt: np.ndarray, yaw_deg: np.ndarray) -> np.ndarray:
+    """Rotations (..., 3, 3) object frame <- prototype frame: Rz(yaw) @ tilt_matrix(dirs[tilt])."""
+    return rot.tilt_yaw_to_matrix(grid.dirs[np.asarray(tilt)], yaw_deg)
