@@ -36,10 +36,10 @@ Search (coarse to fine)
 ``TiltGrid(nsides=(1, 2, 4))``: HEALPix up-direction grids (``rotations.up_grid``, 12 / 48 / 192
 directions, mean spacing 58.6 / 29.3 / 14.7 degrees), each rotated so its first direction is +z.  The
 first level is searched for every (object, prototype) with the FFT yaw search of ``posesearch`` (a
-``PoseBank`` over the K x T tilted copies); for each object's ``refine_top`` best prototypes, every later
-level searches its directions within ``COVER_FACTOR`` x the previous level's spacing of the previous
-best (HEALPix's measured covering radius is 0.79-0.81 x the mean spacing), about 8 directions per level,
-and keeps the best.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
+``PoseBank`` over the K x T tilted copies); from each object's ``refine_top`` best (prototype, tilt) pairs
+of that level, every later level searches its directions within ``COVER_FACTOR`` x the previous level's
+spacing of the pair's previous best (HEALPix's measured covering radius is 0.79-0.81 x the mean spacing),
+about 8 directions per level, and a prototype's pose is replaced by a refined one with a lower distance.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
 ``nsides=(0,)`` is the set {+z}: the yaw-only search of the 2-D case, with no resampling at all.
 """
 from __future__ import annotations
@@ -72,7 +72,7 @@ class TiltGrid:
     nsides: tuple[int, ...] = (1, 2, 4)
     radial_margin: float = 1.15
     height_margin: float = 1.10
-    refine_top: int = 2
+    refine_top: int = 3
     dirs: np.ndarray = field(init=False, repr=False, compare=False)
     offsets: tuple[int, ...] = field(init=False, repr=False, compare=False)
 
@@ -275,36 +275,46 @@ class TiltBank:
         pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
         out = PoseMatch(pick(m.D), pick(m.yaw_deg), pick(m.scale), None, tilt=self.grid.level(0)[bt])
         if len(self.grid.nsides) > 1:
-            self._refine(o, out, min_overlap, scale_index, window)
+            self._refine(o, m, out, min_overlap, scale_index, window)
         return out
 
-    def _refine(self, o: torch.Tensor, out: PoseMatch, min_overlap: float, scale_index: np.ndarray | None,
-                window: int) -> None:
-        """Coarse-to-fine over the later levels for each object's ``refine_top`` best prototypes (in place)."""
-        n = o.shape[1]
-        top = np.argsort(np.where(np.isfinite(out.D), out.D, np.inf), axis=1, kind="stable")[:, :self.grid.refine_top]
+    def _refine(self, o: torch.Tensor, coarse: PoseMatch, out: PoseMatch, min_overlap: float,
+                scale_index: np.ndarray | None, window: int) -> None:
+        """Coarse-to-fine over the later levels from each object's ``refine_top`` best (prototype, coarse tilt)
+        pairs (in place: a refined pose replaces the prototype's pose when its distance is lower).  Several
+        starting pairs, not one per prototype: the best coarse tilt can be a neighbour basin's."""
+        n, K, T0 = o.shape[1], self.K, self.T0
+        flat = np.where(np.isfinite(coarse.D), coarse.D, np.inf).reshape(n, K * T0)
+        top = np.argsort(flat, axis=1, kind="stable")[:, :self.grid.refine_top]  # (n, m) of k T0 + t
+        r = np.arange(n)[:, None]
+        pk, pt = top // T0, self.grid.level(0)[top % T0]
+        pd = flat[r, top]
+        pyaw = coarse.yaw_deg.reshape(n, K * T0)[r, top]
+        psc = coarse.scale.reshape(n, K * T0)[r, top]
         for level in range(1, len(self.grid.nsides)):
-            pairs: dict[tuple[int, int], list[int]] = {}
-            for i in range(n):
-                for k in top[i]:
-                    if np.isfinite(out.D[i, k]):
-                        pairs.setdefault((int(k), int(out.tilt[i, k])), []).append(i)
-            for (k, t), rows in sorted(pairs.items()):
+            groups: dict[tuple[int, int], list[tuple[int, int]]] = {}
+            for i, j in zip(*np.nonzero(np.isfinite(pd))):
+                groups.setdefault((int(pk[i, j]), int(pt[i, j])), []).append((i, j))
+            for (k, t), entries in sorted(groups.items()):
                 cand = self.grid.candidates(level, t)
                 if not len(cand):
                     continue
-                rows = np.asarray(rows)
-                og = o[:, torch.from_numpy(rows)]
+                rows = np.array([e[0] for e in entries])
+                cols = np.array([e[1] for e in entries])
                 sidx = None if scale_index is None else np.asarray(scale_index)[rows]
-                m = self._bank(k, cand).match_spectra(og, min_overlap, False, sidx, window)
+                m = self._bank(k, cand).match_spectra(o[:, torch.from_numpy(rows)], min_overlap, False, sidx, window)
                 j = np.argmin(m.D, axis=1)
-                r = np.arange(len(rows))
-                better = m.D[r, j] < out.D[rows, k]
-                sel = rows[better]
-                out.D[sel, k] = m.D[r, j][better]
-                out.yaw_deg[sel, k] = m.yaw_deg[r, j][better]
-                out.scale[sel, k] = m.scale[r, j][better]
-                out.tilt[sel, k] = cand[j[better]]
+                rr = np.arange(len(rows))
+                better = m.D[rr, j] < pd[rows, cols]
+                ri, ci = rows[better], cols[better]
+                pd[ri, ci] = m.D[rr, j][better]
+                pyaw[ri, ci] = m.yaw_deg[rr, j][better]
+                psc[ri, ci] = m.scale[rr, j][better]
+                pt[ri, ci] = cand[j[better]]
+        for j in range(pk.shape[1]):
+            i = np.flatnonzero(pd[:, j] < out.D[np.arange(n), pk[:, j]])
+            k = pk[i, j]
+            out.D[i, k], out.yaw_deg[i, k], out.scale[i, k], out.tilt[i, k] = pd[i, j], pyaw[i, j], psc[i, j], pt[i, j]
 
     def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3, return_all: bool = False) -> PoseMatch:
         return self.match_spectra(self.spectra(x, w), min_overlap)
