@@ -46,6 +46,7 @@ from sklearn.metrics import silhouette_score
 
 from .engine import PoseKMeans, Source, _gather
 from .posesearch import _check_scales, pose_distances
+from .tilts import tilt_pose_distances
 
 
 def _symmetric(D: np.ndarray) -> np.ndarray:
@@ -108,7 +109,7 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
 def prototype_distances(model: PoseKMeans) -> np.ndarray:
     """(K, K) symmetric pose-minimised distances between a fitted model's prototypes."""
     P, V = model.prototypes_, model.prototype_weights_
-    return _symmetric(pose_distances(P, V, P, V, scales=model.scales_).D)
+    return _symmetric(tilt_pose_distances(P, V, P, V, aspect=model.aspect_, scales=model.scales_, grid=model.tilts).D)
 
 
 def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold: float = 0.5
@@ -135,7 +136,8 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
         model = PoseKMeans(n_clusters=len(rest), scales=model.scales, n_init=1, max_iter=model.max_iter,
                            tol=model.tol, chunk_size=model.chunk_size, random_state=model.random_state,
                            sample_size=model.sample_size, symmetry_factor=model.symmetry_factor, symmetry_tol=model.symmetry_tol,
-                           init=(model.prototypes_[rest], model.prototype_weights_[rest])).fit(source)
+                           tilts=model.tilts, init=(model.prototypes_[rest], model.prototype_weights_[rest],
+                                                    None if model.aspect_ is None else model.aspect_[rest])).fit(source)
     return model, merges
 
 

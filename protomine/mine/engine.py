@@ -65,6 +65,7 @@ from sklearn.cluster import KMeans
 from sklearn.decomposition import PCA
 
 from .. import rotations as rot
+from . import faces
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
 from .posesearch import PoseBank
@@ -590,7 +591,8 @@ class PoseKMeans:
             if P0.shape[0] != K or V0.shape[0] != K:
                 raise ValueError(f"init must hold n_clusters={K} prototypes, got {P0.shape[0]}")
             grid = self._grid()
-            a0 = None if grid is None else (np.asarray(self.init[2], np.float64) if len(self.init) > 2
+            given = self.init[2] if len(self.init) > 2 else None
+            a0 = None if grid is None else (np.asarray(given, np.float64) if given is not None
                                             else np.full(K, float(np.median(_source_aspect(source)))))
             best = _lloyd(source, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
                           chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid, aspect=a0)
@@ -645,9 +647,17 @@ class PoseKMeans:
         self.aspect_ = res.aspect
         self.rotation_, self.up_ = canonical_rotations(TiltGrid.identity() if grid is None else grid, tilt, res.yaw,
                                                        self.canonical_shift_deg_[res.labels])
-        up = np.ones(len(tilt), bool) if grid is None else grid.is_upright(tilt)
-        yaw = np.where(up, res.yaw + self.canonical_shift_deg_[res.labels], rot.matrix_to_tilt_yaw(self.rotation_)[1])
-        self.yaw_deg_ = np.where(up, sym.wrap_yaw(yaw, symm[res.labels]), np.mod(yaw, 360.0)).astype(np.float32)
+        ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
+        if grid is None:
+            fsym = [np.full(len(u), symm[k], np.int64) for k, u in enumerate(ups)]
+        else:
+            noise = sym.mean_variance(*res.moments).mean(axis=(1, 2, 3, 4))
+            bank = TiltBank(self.prototypes_, self.prototype_weights_, res.aspect, scales, grid)
+            fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol)
+        self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
+        period = np.array([sym.period_deg(fsym[k][f]) for k, f in zip(res.labels, self.face_)], np.float64)
+        self.rotation_, yaw = faces.reduce_rotation(self.rotation_, period)
+        self.yaw_deg_ = yaw.astype(np.float32)
         self.scale_ = res.scale
         self.distance_ = res.dist
         self.inertia_ = res.cost

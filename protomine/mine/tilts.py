@@ -106,6 +106,12 @@ class TiltGrid:
         """True where tilt index (...) is the identity (the direction +z)."""
         return self.dirs[np.asarray(tilt)][..., 2] >= np.cos(np.deg2rad(IDENTITY_DEG))
 
+    @classmethod
+    def from_config(cls, d: dict) -> "TiltGrid":
+        """Inverse of :meth:`to_config` (a library's ``tilts`` attribute)."""
+        return cls(nsides=tuple(int(n) for n in d.get("nsides", [0])), radial_margin=float(d.get("radial_margin", 1.15)),
+                   height_margin=float(d.get("height_margin", 1.10)), refine_top=int(d.get("refine_top", 3)))
+
     def to_config(self) -> dict:
         return {"nsides": list(self.nsides), "radial_margin": self.radial_margin,
                 "height_margin": self.height_margin, "refine_top": self.refine_top}
@@ -242,12 +248,20 @@ class TiltBank:
             if self.grid.is_upright(t):
                 Pc[j], Vc[j] = self.P[k], self.V[k]
                 continue
-            idx, wts = forward_map(self.geometry(k, t), self.shape, float(self.aspect[k]))
-            Vc[j] = apply_map(self.V[k], idx, wts, self.shape)
-            # features are means: sample w x and divide, so unseen cells do not dilute the seen ones
-            wx = apply_map(self.V[k][None] * self.P[k], idx, wts, self.shape)
-            Pc[j] = np.where(Vc[j] > 1e-6, wx / np.maximum(Vc[j], 1e-6), 0.0)
+            Pc[j], Vc[j] = self._resample(k, forward_map(self.geometry(k, t), self.shape, float(self.aspect[k])))
         return Pc, Vc
+
+    def copy_at(self, k: int, up: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Copy (C, R, A, H), (R, A, H) of prototype k resting with any direction ``up`` (3,) pointing up."""
+        g = copy_geometry(self.P[k, 0], self.V[k], float(self.aspect[k]), np.asarray(up, np.float64), self.grid)
+        return self._resample(k, forward_map(g, self.shape, float(self.aspect[k])))
+
+    def _resample(self, k: int, fmap: tuple[np.ndarray, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+        idx, wts = fmap
+        v = apply_map(self.V[k], idx, wts, self.shape)
+        # features are means: sample w x and divide, so unseen cells do not dilute the seen ones
+        wx = apply_map(self.V[k][None] * self.P[k], idx, wts, self.shape)
+        return np.where(v > 1e-6, wx / np.maximum(v, 1e-6), 0.0).astype(np.float32), v
 
     def untilt(self, k: int, t: int, a: np.ndarray) -> np.ndarray:
         """Sums a (..., R, A, H) in the copy frame of (k, t) rotated back into prototype k's frame."""
