@@ -89,15 +89,15 @@ class Matcher:
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     bank: PoseBank | TiltBank = field(init=False)
-    grid: TiltGrid = field(init=False)
+    tilts: TiltGrid = field(init=False)
 
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
-        self.grid = TiltGrid.from_config(self.library.tilt_config)
+        self.tilts = TiltGrid.from_config(self.library.tilt_config)
         # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
-        self.bank = make_bank(self.P, self.V, self.scales, self.grid, self.library.prototypes["aspect"])
+        self.bank = make_bank(self.P, self.V, self.scales, self.tilts, self.library.prototypes["aspect"])
 
     @property
     def K(self) -> int:
@@ -132,7 +132,7 @@ class Matcher:
         yaw = np.zeros((n, self.K))
         rotation = np.zeros((n, self.K, 3, 3))
         for k in range(self.K):
-            face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.grid, tilt[:, k], raw[:, k]),
+            face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
                                                               pr["face_up"][k], pr["face_symmetry"][k])
         fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,

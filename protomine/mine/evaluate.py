@@ -109,29 +109,45 @@ def symmetry_rotations(symmetry: str) -> np.ndarray:
     return rot.yaw_matrix(np.arange(n) * 360.0 / n)
 
 
-def rotation_errors_deg(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray) -> np.ndarray:
-    """Errors (n,) after one offset: R_pred, R_true (n, 3, 3), group (G, 3, 3) of the class's symmetries."""
-    O = np.einsum("nji,njk->nik", R_pred, R_true)  # R_pred^T R_true, each defined up to O g
-    # symmetric geodesic distance between candidate offsets: least over the group
+def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """One offset O (3, 3) with R_true ~ R_pred O: the geodesic medoid of R_pred^T R_true over members
+    R_pred, R_true (n, 3, 3), distances taken modulo the class's symmetries group (G, 3, 3)."""
+    O = np.einsum("nji,njk->nik", R_pred, R_true)  # each defined up to O g
     d = np.min(rot.geodesic_deg(O[:, None, None], O[None, :, None] @ group[None, None]), axis=2)  # (n, n)
-    Ok = O[int(np.argmin(d.sum(axis=1)))]
-    return np.min(rot.geodesic_deg((R_pred @ Ok)[:, None], R_true[:, None] @ group[None]), axis=1)
+    return O[int(np.argmin(d.sum(axis=1)))]
 
 
-def mined_rotation_errors(lib: Library, truth: dict[str, dict]) -> np.ndarray:
-    """Rotation errors (degrees) of the mined members of each cluster's majority class that have a truth
-    rotation (see the module docstring); empty when the truth has none."""
+def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetries group."""
+    return np.min(rot.geodesic_deg((R_pred @ O)[:, None], R_true[:, None] @ group[None]), axis=1)
+
+
+def cluster_rotation_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Per cluster (offset O, symmetry group, member rows used) from its mined members of the majority class
+    that have a truth rotation (at least 2)."""
     m = lib.members
-    maj = majority_map(lib, truth)
-    errs = []
-    for k, label in maj.items():
+    out = {}
+    for k, label in majority_map(lib, truth).items():
         sel = [i for i, (o, c) in enumerate(zip(m["object"], m["cluster"]))
                if c == k and o in truth and truth[o]["label"] == label and truth[o].get("rotation") is not None]
         if len(sel) < 2:
             continue
         Rp = rot.quat_to_matrix(np.asarray(m["rotation"])[sel])
         Rt = rot.quat_to_matrix(np.array([truth[m["object"][i]]["rotation"] for i in sel]))
-        errs += list(rotation_errors_deg(Rp, Rt, symmetry_rotations(truth[m["object"][sel[0]]]["symmetry"])))
+        group = symmetry_rotations(truth[m["object"][sel[0]]]["symmetry"])
+        out[k] = (rotation_offset(Rp, Rt, group), group, np.array(sel))
+    return out
+
+
+def mined_rotation_errors(lib: Library, truth: dict[str, dict]) -> np.ndarray:
+    """Rotation errors (degrees) of the mined members of each cluster's majority class that have a truth
+    rotation (see the module docstring); empty when the truth has none."""
+    m = lib.members
+    errs = []
+    for k, (O, group, sel) in cluster_rotation_offsets(lib, truth).items():
+        Rp = rot.quat_to_matrix(np.asarray(m["rotation"])[sel])
+        Rt = rot.quat_to_matrix(np.array([truth[m["object"][i]]["rotation"] for i in sel]))
+        errs += list(rotation_error_deg(Rp, Rt, O, group))
     return np.asarray(errs)
 
 

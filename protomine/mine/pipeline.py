@@ -32,7 +32,7 @@ from ..rotations import matrix_to_quat
 from ..provenance import provenance, provenance_of, write_sidecar
 from .library import Library, log_distance_fit, match_score, write_library
 from .posesearch import pose_distances, shift_volume
-from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect
+from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -294,10 +294,25 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     write_library(library_path, lib)
     out = Path(out_dir) if out_dir else Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
-    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"])
+    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"],
+                   faces=gallery_faces(vols, protos, grid))
     write_sidecar(out / "gallery.png", prov)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
                  "k_selection": k_table}
+
+
+def gallery_faces(vols: np.ndarray, protos: dict, grid: TiltGrid | None) -> list | None:
+    """Per prototype the picture of its most common other resting face (``gallery.render_gallery``), or None."""
+    if grid is None:
+        return None
+    out = []
+    for k in range(len(vols)):
+        cnt = np.asarray(protos["face_count"][k]).copy()
+        cnt[0] = 0
+        f = int(np.argmax(cnt))
+        out.append((volume_on_face(vols[k], float(protos["aspect"][k]), protos["face_up"][k, f], grid), f, int(cnt[f]))
+                   if cnt[f] > 0 else None)
+    return out
 
 
 def pad_faces(ups: list[np.ndarray], counts: list[np.ndarray], symmetry: list[np.ndarray]) -> dict[str, np.ndarray]:

@@ -360,6 +360,18 @@ class PoseBank:
         """Object spectra (2F, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""
         return _spectra_of(x, w, self.dft)
 
+    def subset(self, keep: np.ndarray) -> "PoseBank":
+        """The bank of prototypes ``keep`` (indices) only, sharing this bank's spectra (columns selected)."""
+        keep = np.asarray(keep, np.int64)
+        S = len(self.scales)
+        # column pairs [re, im] of prototype m at scale s sit at 2 (s K + m) + {0, 1}
+        base = (np.arange(S)[:, None] * self.K + keep[None, :]).reshape(-1)
+        cols = torch.from_numpy(np.stack([2 * base, 2 * base + 1], 1).reshape(-1))
+        out = object.__new__(PoseBank)
+        out.K, out.C, out.A, out.scales, out.dft = len(keep), self.C, self.A, self.scales, self.dft
+        out.factors = tuple(f.index_select(2, cols) for f in self.factors)
+        return out
+
     def all_distances(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3) -> np.ndarray:
         """x (n, C, R, A, H), w (n, R, A, H) -> (n, K, S, A) distances for every scale and shift."""
         d = _fft_all_distances(x, w, self.factors, self.dft, self.A, self.C * min_overlap)

@@ -51,6 +51,8 @@ import numpy as np
 import torch
 
 from .. import rotations as rot
+from scipy.spatial import ConvexHull, QhullError
+
 from ..ingest.proposals import min_enclosing_circle
 from .posesearch import PoseBank, PoseMatch, _prepare
 
@@ -174,16 +176,32 @@ class CopyGeometry:
     z_max: float
 
 
-def copy_geometry(surface: np.ndarray, weight: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGrid) -> CopyGeometry:
-    """Geometry of the copy of one prototype (surface, weight (R, A, H)) resting with ``up`` (3,) pointing up."""
+def solid_points(surface: np.ndarray, weight: np.ndarray, aspect: float, grid: TiltGrid) -> tuple[np.ndarray, np.ndarray]:
+    """Centre c0 (3,) of a volume (surface, weight (R, A, H)) and its solid cells' centres about c0 (m, 3),
+    reduced to their convex hull's vertices (the extents and the enclosing circle of any rotation of the
+    points are those of the hull's vertices)."""
     R, A, H = surface.shape
     pts = _cell_points(R, A, H, 1.0, aspect)
     occ = ((surface >= SURFACE_MIN) & (weight >= OBSERVED_MIN)).reshape(-1)
     if occ.sum() < 4:  # nothing solid seen: the whole bounding cylinder stands for the object
         occ = np.ones(len(pts), bool)
     c0 = np.array([0.0, 0.0, 0.5 * aspect / grid.height_margin])
+    p = pts[occ] - c0
+    try:
+        p = p[ConvexHull(p).vertices]
+    except QhullError:  # flat or degenerate: keep every point
+        pass
+    return c0, p
+
+
+def copy_geometry(surface: np.ndarray, weight: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGrid,
+                  solid: tuple[np.ndarray, np.ndarray] | None = None) -> CopyGeometry:
+    """Geometry of the copy of one prototype (surface, weight (R, A, H)) resting with ``up`` (3,) pointing up
+    (``solid``: its :func:`solid_points` when already computed)."""
+    R, A, H = surface.shape
+    c0, p = solid if solid is not None else solid_points(surface, weight, aspect, grid)
     M = rot.tilt_matrix(up)
-    q = (pts[occ] - c0) @ M.T
+    q = p @ M.T
     zmin, zmax = q[:, 2].min(), q[:, 2].max()
     centre, radius = min_enclosing_circle(q[:, :2])
     # the cell centres sit up to half a cell inside the surface: grow by half a cell
@@ -192,6 +210,14 @@ def copy_geometry(surface: np.ndarray, weight: np.ndarray, aspect: float, up: np
     radius = max(radius + 0.5 * half, 1e-3)
     base = np.array([centre[0], centre[1], zmin - 0.5 * half])
     return CopyGeometry(M, c0, base, grid.radial_margin * radius, grid.height_margin * height)
+
+
+def volume_on_face(vol: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGrid) -> np.ndarray:
+    """A store-channel volume (6, R, A, H) (``ingest.volume.CHANNELS``) resampled as resting with its direction
+    ``up`` (3,) pointing up, re-normalised by that pose's footprint and height (for pictures)."""
+    shape = vol.shape[1:]
+    g = copy_geometry(vol[0], np.minimum(vol[2], 1.0), aspect, up, grid)
+    return apply_map(vol, *forward_map(g, shape, aspect), shape)
 
 
 def forward_map(g: CopyGeometry, shape: tuple[int, int, int], aspect: float) -> tuple[np.ndarray, np.ndarray]:
@@ -227,7 +253,8 @@ class TiltBank:
         self.aspect = np.broadcast_to(np.asarray(aspect, np.float64), (self.K,)).copy()
         self.scales, self.grid = scales, grid
         self._geom: dict[tuple[int, int], CopyGeometry] = {}
-        self._banks: dict[tuple[int, ...], PoseBank] = {}
+        self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        self._level_banks: dict[tuple[int, int], tuple[PoseBank, dict[int, int]]] = {}
         lvl0 = grid.level(0)
         Pc, Vc = self.copies(np.repeat(np.arange(self.K), len(lvl0)), np.tile(lvl0, self.K))
         self.T0 = len(lvl0)
@@ -237,7 +264,10 @@ class TiltBank:
     def geometry(self, k: int, t: int) -> CopyGeometry:
         key = (int(k), int(t))
         if key not in self._geom:
-            self._geom[key] = copy_geometry(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid.dirs[t], self.grid)
+            if k not in self._solid:
+                self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
+            self._geom[key] = copy_geometry(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid.dirs[t], self.grid,
+                                            self._solid[k])
         return self._geom[key]
 
     def copies(self, ks: np.ndarray, ts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -270,11 +300,17 @@ class TiltBank:
         idx, wts = inverse_map(self.geometry(k, t), self.shape, float(self.aspect[k]))
         return apply_map(a, idx, wts, self.shape)
 
-    def _bank(self, k: int, ts: np.ndarray) -> PoseBank:
-        key = (int(k),) + tuple(int(t) for t in ts)
-        if key not in self._banks:
-            self._banks[key] = PoseBank(*self.copies(np.full(len(ts), k), ts), self.scales)
-        return self._banks[key]
+    def _bank(self, k: int, level: int, ts: np.ndarray, need: set[int]) -> PoseBank:
+        """Bank of prototype k's copies at tilts ``ts``: a column subset of one bank per (prototype, level) over
+        every direction the level's refinement needs (``need``; rebuilt when a later chunk needs more)."""
+        key = (int(k), int(level))
+        bank, pos = self._level_banks.get(key, (None, {}))
+        if bank is None or not need.issubset(pos):
+            dirs = np.array(sorted(need | set(pos)), np.int64)
+            bank = PoseBank(*self.copies(np.full(len(dirs), k), dirs), self.scales)
+            pos = {int(t): j for j, t in enumerate(dirs)}
+            self._level_banks[key] = (bank, pos)
+        return bank.subset(np.array([pos[int(t)] for t in ts], np.int64))
 
     def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
         return self.coarse.spectra(x, w)
@@ -309,14 +345,19 @@ class TiltBank:
             groups: dict[tuple[int, int], list[tuple[int, int]]] = {}
             for i, j in zip(*np.nonzero(np.isfinite(pd))):
                 groups.setdefault((int(pk[i, j]), int(pt[i, j])), []).append((i, j))
+            cands = {key: self.grid.candidates(level, key[1]) for key in groups}
+            need: dict[int, set[int]] = {}
+            for (k, _), c in cands.items():
+                need.setdefault(k, set()).update(int(t) for t in c)
             for (k, t), entries in sorted(groups.items()):
-                cand = self.grid.candidates(level, t)
+                cand = cands[(k, t)]
                 if not len(cand):
                     continue
                 rows = np.array([e[0] for e in entries])
                 cols = np.array([e[1] for e in entries])
                 sidx = None if scale_index is None else np.asarray(scale_index)[rows]
-                m = self._bank(k, cand).match_spectra(o[:, torch.from_numpy(rows)], min_overlap, False, sidx, window)
+                m = self._bank(k, level, cand, need[k]).match_spectra(o[:, torch.from_numpy(rows)], min_overlap, False,
+                                                                      sidx, window)
                 j = np.argmin(m.D, axis=1)
                 rr = np.arange(len(rows))
                 better = m.D[rr, j] < pd[rows, cols]
