@@ -122,7 +122,7 @@ def aligned_volume_sums(vols: np.ndarray, labels: np.ndarray, yaw_deg: np.ndarra
 def mean_from_volume_sums(acc: np.ndarray, wsum: np.ndarray, labels: np.ndarray, K: int) -> np.ndarray:
     """(K, 6, R, A, H) weighted means from :func:`aligned_volume_sums`; channel 2 = mean observation."""
     out = acc / np.maximum(wsum, 1e-9)
-    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels, minlength=K)[:, None, None, None], 1)
+    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels[labels >= 0], minlength=K)[:, None, None, None], 1)
     return out.astype(np.float32)
 
 

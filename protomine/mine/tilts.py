@@ -39,7 +39,8 @@ first level is searched for every (object, prototype) with the FFT yaw search of
 ``PoseBank`` over the K x T tilted copies); from each object's ``refine_top`` best (prototype, tilt) pairs
 of that level, every later level searches its directions within ``COVER_FACTOR`` x the previous level's
 spacing of the pair's previous best (HEALPix's measured covering radius is 0.79-0.81 x the mean spacing),
-about 8 directions per level, and a prototype's pose is replaced by a refined one with a lower distance.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
+about 8 directions per level, at the pair's best coarse scale, and a prototype's pose is replaced by a
+refined one with a lower distance.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
 ``nsides=(0,)`` is the set {+z}: the yaw-only search of the 2-D case, with no resampling at all.
 """
 from __future__ import annotations
@@ -254,7 +255,7 @@ class TiltBank:
         self.scales, self.grid = scales, grid
         self._geom: dict[tuple[int, int], CopyGeometry] = {}
         self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
-        self._level_banks: dict[tuple[int, int], tuple[PoseBank, dict[int, int]]] = {}
+        self._copies: dict[tuple[int, int], tuple[np.ndarray, np.ndarray]] = {}
         lvl0 = grid.level(0)
         Pc, Vc = self.copies(np.repeat(np.arange(self.K), len(lvl0)), np.tile(lvl0, self.K))
         self.T0 = len(lvl0)
@@ -271,14 +272,48 @@ class TiltBank:
         return self._geom[key]
 
     def copies(self, ks: np.ndarray, ts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """Tilted copies (M, C, R, A, H), (M, R, A, H) of prototypes ``ks`` at tilts ``ts`` (M,)."""
-        Pc = np.empty((len(ks), self.C) + self.shape, np.float32)
-        Vc = np.empty((len(ks),) + self.shape, np.float32)
-        for j, (k, t) in enumerate(zip(ks, ts)):
+        """Tilted copies (M, C, R, A, H), (M, R, A, H) of prototypes ``ks`` at tilts ``ts`` (M,).
+
+        Copies are kept for the bank's life (the finer levels ask for the same ones at several scales);
+        new ones are resampled together: one sampling map over all their cells, one gather.
+        """
+        todo = sorted({(int(k), int(t)) for k, t in zip(ks, ts)} - set(self._copies))
+        tilted = [(k, t) for k, t in todo if not self.grid.is_upright(t)]
+        for k, t in todo:
             if self.grid.is_upright(t):
-                Pc[j], Vc[j] = self.P[k], self.V[k]
-                continue
-            Pc[j], Vc[j] = self._resample(k, forward_map(self.geometry(k, t), self.shape, float(self.aspect[k])))
+                self._copies[(k, t)] = (self.P[k], self.V[k])
+        if tilted:
+            M, RAH = len(tilted), int(np.prod(self.shape))
+            pts = []
+            for k, t in tilted:
+                g = self.geometry(k, t)
+                q = _cell_points(*self.shape, g.rho_max, g.z_max)
+                # into prototype k's grid, in units of its rho_max; z scaled so every prototype's
+                # height maps to the same index range (the sampler takes one aspect)
+                p = (q + g.base) @ g.M + g.c0
+                p[:, 2] /= self.aspect[k]
+                pts.append(p)
+            idx, wts = _trilinear(np.concatenate(pts), self.shape, 1.0, 1.0)  # (8, M RAH)
+            idx = idx.reshape(8, M, RAH).transpose(1, 0, 2)
+            wts = wts.reshape(8, M, RAH).transpose(1, 0, 2)
+            kk = np.array([k for k, _ in tilted])
+            for b0 in range(0, M, 64):  # blocks of copies bound the gather's temporaries
+                sl = slice(b0, min(M, b0 + 64))
+                m = sl.stop - sl.start
+                Vk = self.V[kk[sl]].reshape(m, 1, RAH)
+                stack = np.concatenate([Vk, Vk * self.P[kk[sl]].reshape(m, self.C, RAH)], axis=1)  # (m, 1 + C, RAH)
+                g = stack[np.arange(m)[:, None, None, None], np.arange(1 + self.C)[None, :, None, None], idx[sl][:, None]]
+                out = (g * wts[sl][:, None]).sum(axis=2)  # (m, 1 + C, RAH): sampled [w, w x]
+                v = out[:, 0]
+                # features are means: sample w x and divide, so unseen cells do not dilute the seen ones
+                pc = np.where(v[:, None] > 1e-6, out[:, 1:] / np.maximum(v[:, None], 1e-6), 0.0)
+                for j, key in enumerate(tilted[sl]):
+                    self._copies[key] = (pc[j].reshape((self.C,) + self.shape).astype(np.float32),
+                                         v[j].reshape(self.shape).astype(np.float32))
+        Pc = np.stack([self._copies[(int(k), int(t))][0] for k, t in zip(ks, ts)]) if len(ks) else \
+            np.zeros((0, self.C) + self.shape, np.float32)
+        Vc = np.stack([self._copies[(int(k), int(t))][1] for k, t in zip(ks, ts)]) if len(ks) else \
+            np.zeros((0,) + self.shape, np.float32)
         return Pc, Vc
 
     def copy_at(self, k: int, up: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -300,17 +335,11 @@ class TiltBank:
         idx, wts = inverse_map(self.geometry(k, t), self.shape, float(self.aspect[k]))
         return apply_map(a, idx, wts, self.shape)
 
-    def _bank(self, k: int, level: int, ts: np.ndarray, need: set[int]) -> PoseBank:
-        """Bank of prototype k's copies at tilts ``ts``: a column subset of one bank per (prototype, level) over
-        every direction the level's refinement needs (``need``; rebuilt when a later chunk needs more)."""
-        key = (int(k), int(level))
-        bank, pos = self._level_banks.get(key, (None, {}))
-        if bank is None or not need.issubset(pos):
-            dirs = np.array(sorted(need | set(pos)), np.int64)
-            bank = PoseBank(*self.copies(np.full(len(dirs), k), dirs), self.scales)
-            pos = {int(t): j for j, t in enumerate(dirs)}
-            self._level_banks[key] = (bank, pos)
-        return bank.subset(np.array([pos[int(t)] for t in ts], np.int64))
+    def _level_bank(self, k: int, si: int, dirs: np.ndarray) -> tuple[PoseBank, dict[int, int]]:
+        """Bank of prototype k's copies at tilts ``dirs``, at the one scale ``scales[si]``, and each tilt's position."""
+        dirs = np.asarray(sorted(int(t) for t in dirs), np.int64)
+        bank = PoseBank(*self.copies(np.full(len(dirs), k), dirs), (self.scales[si],))
+        return bank, {int(t): j for j, t in enumerate(dirs)}
 
     def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
         return self.coarse.spectra(x, w)
@@ -332,7 +361,9 @@ class TiltBank:
                 scale_index: np.ndarray | None, window: int) -> None:
         """Coarse-to-fine over the later levels from each object's ``refine_top`` best (prototype, coarse tilt)
         pairs (in place: a refined pose replaces the prototype's pose when its distance is lower).  Several
-        starting pairs, not one per prototype: the best coarse tilt can be a neighbour basin's."""
+        starting pairs, not one per prototype: the best coarse tilt can be a neighbour basin's.  The finer
+        levels search at each pair's best coarse scale only (size and tilt are nearly independent), so a
+        level builds one copy per (prototype, scale, direction) its pairs need, for this chunk only."""
         n, K, T0 = o.shape[1], self.K, self.T0
         flat = np.where(np.isfinite(coarse.D), coarse.D, np.inf).reshape(n, K * T0)
         top = np.argsort(flat, axis=1, kind="stable")[:, :self.grid.refine_top]  # (n, m) of k T0 + t
@@ -341,31 +372,40 @@ class TiltBank:
         pd = flat[r, top]
         pyaw = coarse.yaw_deg.reshape(n, K * T0)[r, top]
         psc = coarse.scale.reshape(n, K * T0)[r, top]
+        scale_pos = {float(v): i for i, v in enumerate(np.asarray(self.scales, np.float32))}
         for level in range(1, len(self.grid.nsides)):
-            groups: dict[tuple[int, int], list[tuple[int, int]]] = {}
+            groups: dict[tuple[int, int, int], list[tuple[int, int]]] = {}
             for i, j in zip(*np.nonzero(np.isfinite(pd))):
-                groups.setdefault((int(pk[i, j]), int(pt[i, j])), []).append((i, j))
-            cands = {key: self.grid.candidates(level, key[1]) for key in groups}
-            need: dict[int, set[int]] = {}
-            for (k, _), c in cands.items():
-                need.setdefault(k, set()).update(int(t) for t in c)
-            for (k, t), entries in sorted(groups.items()):
-                cand = cands[(k, t)]
-                if not len(cand):
+                key = (int(pk[i, j]), scale_pos[float(psc[i, j])], int(pt[i, j]))
+                groups.setdefault(key, []).append((i, j))
+            cands = {key: self.grid.candidates(level, key[2]) for key in groups}
+            need: dict[tuple[int, int], set[int]] = {}
+            for (k, si, _), c in cands.items():
+                need.setdefault((k, si), set()).update(int(t) for t in c)
+            # one product per (prototype, scale): every object with a pair there against every direction
+            # needed there, each pair then taking the best of its own candidates (few large products run
+            # far faster than many small ones)
+            for (k, si), dirs in sorted(need.items()):
+                if not dirs:
                     continue
-                rows = np.array([e[0] for e in entries])
-                cols = np.array([e[1] for e in entries])
-                sidx = None if scale_index is None else np.asarray(scale_index)[rows]
-                m = self._bank(k, level, cand, need[k]).match_spectra(o[:, torch.from_numpy(rows)], min_overlap, False,
-                                                                      sidx, window)
-                j = np.argmin(m.D, axis=1)
-                rr = np.arange(len(rows))
-                better = m.D[rr, j] < pd[rows, cols]
+                bank, pos = self._level_bank(k, si, np.array(sorted(dirs)))
+                entries = [(e, key[2]) for key, es in groups.items() if key[:2] == (k, si) for e in es]
+                rows = np.array([e[0][0] for e in entries])
+                cols = np.array([e[0][1] for e in entries])
+                urows, inv = np.unique(rows, return_inverse=True)
+                m = bank.match_spectra(o[:, torch.from_numpy(urows)], min_overlap)
+                allowed = np.zeros((len(entries), len(pos)), bool)
+                for e, (_, t) in enumerate(entries):
+                    allowed[e, [pos[int(c)] for c in cands[(k, si, t)]]] = True
+                De = np.where(allowed, m.D[inv], np.inf)
+                j = np.argmin(De, axis=1)
+                rr = np.arange(len(entries))
+                better = De[rr, j] < pd[rows, cols]
                 ri, ci = rows[better], cols[better]
-                pd[ri, ci] = m.D[rr, j][better]
-                pyaw[ri, ci] = m.yaw_deg[rr, j][better]
-                psc[ri, ci] = m.scale[rr, j][better]
-                pt[ri, ci] = cand[j[better]]
+                pd[ri, ci] = De[rr, j][better]
+                pyaw[ri, ci] = m.yaw_deg[inv, j][better]
+                dir_of = np.array(sorted(dirs), np.int64)
+                pt[ri, ci] = dir_of[j[better]]
         for j in range(pk.shape[1]):
             i = np.flatnonzero(pd[:, j] < out.D[np.arange(n), pk[:, j]])
             k = pk[i, j]
