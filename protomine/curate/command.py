@@ -46,6 +46,7 @@ def find(
     """Find every instance of a new item class from one example object."""
     from ..ingest.store import open_store
     from ..mine.library import read_library
+    from ..mine.openset import library_cut
     from .names import check_name
     from ..provenance import file_fingerprint, provenance, write_sidecar
     from .oneshot import add_oneshot, find_similar, write_matches
@@ -63,8 +64,9 @@ def find(
     write_matches(out, mt, top)
     write_sidecar(out, provenance(cfg, seed, {"library": file_fingerprint(library), "store": st.fingerprint(),
                                               "example": example}, command="find"))
-    n_hi = int(np.sum(mt.score >= cfg["label"]["unknown_score"]))
-    typer.echo(f"{len(mt.object)} objects ranked; {n_hi} score >= {cfg['label']['unknown_score']}; wrote {out}")
+    cut = library_cut(lib)
+    n_hi = int(np.sum(mt.score >= cut))
+    typer.echo(f"{len(mt.object)} objects ranked; {n_hi} score >= {cut:.4f} (the library's unknown cut); wrote {out}")
     if add is not None:
         lib2, info = add_oneshot(library, st, example, cfg, name=add, matches=mt)
         typer.echo(f"added cluster {info['cluster']} {info['name']!r}: {info['members']} members "

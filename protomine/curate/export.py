@@ -42,6 +42,7 @@ from ..ingest.pipeline import capture_rng
 from ..ingest.proposals import find_objects
 from ..ingest.store import ObjectStore
 from ..mine.library import Library
+from ..mine.openset import library_cut
 
 NOTE = ("Labels are bootstrapped by unsupervised prototype mining (protomine), not ground truth: "
         "review them (e.g. with protomine audit on a few hand labels) before training or evaluating on them.")
@@ -113,7 +114,7 @@ def export_labels(library: Library, store: ObjectStore, captures: list[str | Pat
 
 def _export(lib: Library, store: ObjectStore, captures: list[Path], out: Path, cfg: dict, min_score: float,
             seed: int, progress) -> dict:
-    unknown_score = float(cfg["label"]["unknown_score"])
+    unknown_score = library_cut(lib)
     mem = {str(o): j for j, o in enumerate(lib.members["object"])}
     cat_names = [lib.display_name(k) for k in range(lib.n_clusters)]
     categories = {n: i + 1 for i, n in enumerate(dict.fromkeys(cat_names))}

@@ -24,9 +24,9 @@ the fraction of single views of prototype k's own members expected to fit worse 
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
 cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
-"unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
-prototype's own single views, i.e. the per-prototype distance threshold
-``exp(mu_k + sigma_k * T_4^-1(1 - unknown_score))``.
+"unknown" when that score is below the library's ``unknown_cut`` (``mine.openset``: the split-conformal
+cut at ``unknown_alpha`` on held-out single views of mined objects, so at most that share of known-class
+views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_cut))``.
 
 Record (one dict per object and frame; JSON-ready):
     capture, frame, object, bbox [u0, v0, u1, v1) pixels, center_world [x, y, z] m, base_world [x, y, z]
@@ -50,6 +50,7 @@ from ..ingest.pipeline import capture_rng, pixel_bbox
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
+from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
 
@@ -75,7 +76,7 @@ class Matcher:
     free_weight: float
     colour_weight: float
     scales: tuple[float, ...]
-    unknown_score: float
+    unknown_cut: float
     weighted: bool = True
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
@@ -121,7 +122,7 @@ class Matcher:
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
-    volumes must be lifted exactly as the mined ones were); ``label.unknown_score`` from ``cfg``."""
+    volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
     lib_cfg = library.config
     if "volume" not in lib_cfg or "mine" not in lib_cfg:
         raise InputError(library.path, "config", "library does not record the [volume] and [mine] config it was mined with")
@@ -134,7 +135,7 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   float(cfg["label"]["unknown_score"]), weighted)
+                   library_cut(library), weighted)
 
 
 @dataclass
@@ -185,7 +186,7 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
                        symmetry=symmetry_name(sym[k]),
                        scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
                        fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
-                       score=score, unknown=bool(score < matcher.unknown_score), alternatives=alts)
+                       score=score, unknown=bool(score < matcher.unknown_cut), alternatives=alts)
         out.append(rec)
     return out
 

@@ -29,6 +29,7 @@ from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..provenance import provenance, provenance_of, write_sidecar
 from .library import Library, log_distance_fit, match_score, write_library
+from .openset import conformal_cut
 from .posesearch import pose_distances, shift_volume
 
 
@@ -238,6 +239,10 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "store_path": str(Path(store_path).resolve()), "store_fingerprint": store.fingerprint(),
                   "conventions": store.attrs.get("conventions", ""),
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
+    # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
+    alpha = float(cfg["mine"]["unknown_alpha"])
+    attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
+                  "unknown_cut": conformal_cut(match_score(sv_d, single_mu[sv_k], single_sigma[sv_k]), alpha)})
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)
