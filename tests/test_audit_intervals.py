@@ -278,3 +278,18 @@ def test_conformal_cut_flags_at_most_alpha_of_new_known_views():
     rate = float(np.mean(flags))
     sd = (alpha * (1 - alpha) / sets) ** 0.5
     assert alpha - 1 / (n + 1) - 3 * sd <= rate <= alpha + 3 * sd     # bounds 0.033 .. 0.05, measured 0.048
+
+
+def test_mining_records_the_conformal_cut_of_its_held_out_views(tiny_world):
+    # the library's cut is conformal_cut of the held-out single views' scores at the configured alpha
+    from protomine.ingest.store import open_store
+    from protomine.mine.library import match_score, read_library
+    from protomine.mine.pipeline import single_view_distances
+    lib = read_library(tiny_world["library"])
+    st = open_store(tiny_world["store"])
+    P, V = lib.prototypes["features"], lib.prototypes["weights"]
+    d, k = single_view_distances(st, tiny_world["cfg"], P, V, np.asarray(lib.members["cluster"]), tuple(lib.scales))
+    d, k = d[np.isfinite(d)], k[np.isfinite(d)]
+    s = match_score(d, lib.prototypes["single_mu"][k], lib.prototypes["single_sigma"][k])
+    assert lib.attrs["unknown_alpha"] == 0.05 and lib.attrs["unknown_calibration_views"] == d.size
+    assert float(lib.attrs["unknown_cut"]) == pytest.approx(conformal_cut(s, 0.05), abs=1e-6)

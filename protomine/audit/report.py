@@ -260,11 +260,18 @@ def headline(doc: dict) -> str:
         return ("No hand label matched a clustered object, so the purity of these clusters is unknown. "
                 "Label some objects (protomine audit LIBRARY --plan N --out DIR writes a sheet to fill in) and audit again.")
     lo, hi = p["interval"]
-    text = (f"Purity at least {lo:.2f} with {pct}% confidence, from {p['labels']} label{'s' * (p['labels'] != 1)} "
-            f"in {p['clusters_labelled']} of {p['clusters']} clusters (estimate {p['estimate']:.3f}, "
-            f"interval {lo:.3f} to {hi:.3f}).")
+    labels = f"{p['labels']} label{'s' * (p['labels'] != 1)} in {p['clusters_labelled']} of {p['clusters']} clusters"
+    if lo < 0.05:
+        text = (f"These labels cannot bound the purity yet: {labels} allow anything from {lo:.2f} to {hi:.2f} "
+                f"({pct}% confidence; estimate {p['estimate']:.3f}). A single label per cluster always agrees with "
+                "itself, so it says nothing; two or more per cluster do.")
+    else:
+        text = (f"Purity at least {lo:.2f} with {pct}% confidence, from {labels} (estimate {p['estimate']:.3f}, "
+                f"interval {lo:.3f} to {hi:.3f}).")
     missing = p["clusters"] - p["clusters_labelled"]
-    if missing:
+    if missing and lo < 0.05:
+        text += f" {missing} cluster{'s' * (missing != 1)} {'have' if missing != 1 else 'has'} no label at all."
+    elif missing:
         share = 1.0 - p["objects_in_labelled_clusters"] / max(p["objects"], 1)
         text += (f" {missing} cluster{'s' * (missing != 1)} ({share:.0%} of the objects) "
                  f"{'have' if missing != 1 else 'has'} no label yet and unknown purity; counting "
@@ -622,8 +629,8 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
     figure(f"{bad}", "mixed or duplicate clusters", "bad" if bad else "")
     os_ = audit.get("open_set")
     if os_ and os_.get("views"):
-        figure(f"{os_['rate']:.1%}", f"labelled views called unknown (alpha {os_['alpha']:g})",
-               "" if os_["rate"] <= 2 * os_["alpha"] else "warn")
+        figure(f"{os_['rate_own']:.1%}", f"false unknowns on labelled views (alpha {os_['alpha']:g})",
+               "" if os_["rate_own"] <= 2 * os_["alpha"] else "warn")
     parts.append("</div>")
     parts.append(f"<p class='notice'>{e(audit['notice'])}</p>")
 
@@ -684,7 +691,8 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
                 cell = f"<span class='note'>not estimable: {e(iv['reason'])}</span>"
             else:
                 cell = _interval(iv["interval"])
-            parts.append(f"<tr><td class='l'>{e(METRIC_NAMES.get(k, k))}</td><td>{_fmt(v)}</td><td class='l'>{cell}</td></tr>")
+            name = METRIC_NAMES.get(k, k) + (", each labelled object once" if k == "purity" else "")
+            parts.append(f"<tr><td class='l'>{e(name)}</td><td>{_fmt(v)}</td><td class='l'>{cell}</td></tr>")
         parts.append("</table>")
     else:
         parts.append("<p class='mixed'>No labelled object was assigned to a cluster: nothing can be scored.</p>")
@@ -696,8 +704,11 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
                          f"split-conformal cut at alpha {os_['alpha']:g} from {os_['calibration_views']} held-out views "
                          f"of mined objects, so at most {os_['alpha']:.0%} of known-class views should be flagged. On the "
                          f"{os_['views']} stored single views of the {os_['objects']} labelled objects it flags "
-                         f"{os_['flagged']} ({os_['rate']:.1%}); of the views whose label disagrees with their cluster's "
-                         f"majority it flags {os_['flagged_disagreeing']} of {os_['disagreeing']}.</p>"
+                         f"{os_['flagged']} ({os_['rate']:.1%}): {os_['flagged_own']} of the {os_['nearest_own']} views "
+                         f"nearest to their own cluster (false unknowns, {os_['rate_own']:.1%}) and "
+                         f"{os_['flagged_other']} of the {os_['nearest_other']} views nearest to another cluster (these "
+                         f"would have been labelled wrong). Of the views whose hand label disagrees with their "
+                         f"cluster's majority it flags {os_['flagged_disagreeing']} of {os_['disagreeing']}.</p>"
                          f"<p class='note'>{e(os_['note'])}</p>")
         else:
             parts.append(f"<p class='note'>{e(os_.get('note', 'no single views stored for the labelled objects'))}</p>")

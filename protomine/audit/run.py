@@ -105,8 +105,10 @@ def open_set_on_labelled(lib: Library, st, doc: dict, cfg: dict) -> dict:
     """What the library's unknown cut does to the stored single views of the labelled objects.
 
     Each view is matched as the label stage matches a new frame (``label.matcher``); it is flagged when
-    no prototype overlaps it or its best prototype's score is below the cut.  Views of labelled objects
-    whose label disagrees with their cluster's majority are counted apart (flagging those is right).
+    no prototype overlaps it or its nearest prototype's score is below the cut.  Counted apart: views whose
+    nearest prototype is their own object's cluster (a flag there is a false flag, the rate alpha bounds)
+    and views nearest to another cluster (they would be labelled wrong, so a flag there is a catch), and
+    views of labelled objects whose label disagrees with their cluster's majority.
     """
     from ..label.matcher import make_matcher
     cut = library_cut(lib)
@@ -117,9 +119,11 @@ def open_set_on_labelled(lib: Library, st, doc: dict, cfg: dict) -> dict:
                      "is what the label stage measures (protomine demo prints it).")}
     majority = {c["cluster"]: c["majority_label"] for c in doc["clusters"]}
     wrong = {r["object"]: r["label"] != majority.get(r["cluster"]) for r in doc["labelled_objects"]}
+    cluster_of = {r["object"]: r["cluster"] for r in doc["labelled_objects"]}
     index = np.array([st.index_of(o) for o in wrong], dtype=np.int64)
     rows = np.sort(np.flatnonzero(np.isin(st.single_object, index)))
     info.update(views=int(rows.size), objects=int(np.unique(st.single_object[rows]).size), flagged=0, rate=0.0,
+                nearest_own=0, flagged_own=0, rate_own=0.0, nearest_other=0, flagged_other=0,
                 disagreeing=0, flagged_disagreeing=0)
     if rows.size == 0:
         return info
@@ -127,10 +131,14 @@ def open_set_on_labelled(lib: Library, st, doc: dict, cfg: dict) -> dict:
     best = res["best"]
     score = np.where(best >= 0, res["score"][np.arange(best.size), np.maximum(best, 0)], 0.0)
     flagged = (best < 0) | (score < cut)
-    ids = np.asarray(st.objects["id"], dtype=str)[st.single_object[rows]]
-    bad = np.array([wrong[o] for o in ids.tolist()], dtype=bool)
-    info.update(flagged=int(flagged.sum()), rate=float(flagged.mean()), disagreeing=int(bad.sum()),
-                flagged_disagreeing=int((flagged & bad).sum()))
+    ids = np.asarray(st.objects["id"], dtype=str)[st.single_object[rows]].tolist()
+    bad = np.array([wrong[o] for o in ids], dtype=bool)
+    own = best == np.array([cluster_of[o] for o in ids])
+    info.update(flagged=int(flagged.sum()), rate=float(flagged.mean()),
+                nearest_own=int(own.sum()), flagged_own=int((flagged & own).sum()),
+                rate_own=float((flagged & own).sum() / max(own.sum(), 1)),
+                nearest_other=int((~own).sum()), flagged_other=int((flagged & ~own).sum()),
+                disagreeing=int(bad.sum()), flagged_disagreeing=int((flagged & bad).sum()))
     return info
 
 
