@@ -11,7 +11,7 @@ from typing import Callable
 import numpy as np
 
 from ..errors import InputError
-from ..ingest.store import open_store
+from ..ingest.sharded import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import Library, read_library
 from ..mine.openset import library_cut

@@ -44,7 +44,7 @@ def find(
     quiet: QuietOpt = False,
 ) -> None:
     """Find every instance of a new item class from one example object."""
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     from ..mine.library import read_library
     from ..mine.openset import library_cut
     from .names import check_name
@@ -84,7 +84,7 @@ def export(
     quiet: QuietOpt = False,
 ) -> None:
     """Export bootstrapped labels (not ground truth) of every object in every frame of mined captures."""
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     from ..mine.library import read_library
     from .export import export_labels
     cfg = config_from(config)
