@@ -282,7 +282,7 @@ def test_conformal_cut_flags_at_most_alpha_of_new_known_views():
 
 def test_mining_records_the_conformal_cut_of_its_held_out_views(tiny_world):
     # the library's cut is conformal_cut of the held-out single views' scores at the configured alpha
-    from protomine.ingest.store import open_store
+    from protomine.ingest.sharded import open_store
     from protomine.mine.library import match_score, read_library
     from protomine.mine.pipeline import single_view_distances
     lib = read_library(tiny_world["library"])

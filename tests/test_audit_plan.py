@@ -13,7 +13,7 @@ from typer.testing import CliRunner
 
 from protomine.audit.plan import SHEET_COLUMNS
 from protomine.cli import app
-from protomine.ingest.store import open_store
+from protomine.ingest.sharded import open_store
 from protomine.mine.library import read_library
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
