@@ -39,7 +39,7 @@ from .truth import ObjectTable, TruthRow, match_truth
 from .uncertainty import (bootstrap_intervals, clopper_pearson_interval, labels_needed_for_width,
                           propagation_accuracy, stratified_purity)
 
-__all__ = ["Assignments", "build_audit", "write_report", "hungarian_order", "NOTICE", "FORMAT", "PALETTE",
+__all__ = ["Assignments", "build_audit", "write_report", "hungarian_order", "jsonable", "NOTICE", "FORMAT", "PALETTE",
            "METRIC_NAMES"]
 
 FORMAT = "protomine.audit/2"
@@ -213,7 +213,7 @@ def _build_audit(asg, truth_rows, objects, periods, names, a, rng, truth_path, p
                               "row": tr.row} for j, tr in zip(lab_idx.tolist(), lab_rows)],
     }
     doc["headline"] = headline(doc)
-    return _jsonable(doc)
+    return jsonable(doc)
 
 
 def hungarian_order(table: np.ndarray) -> tuple[list[int], list[int], int]:
@@ -378,14 +378,14 @@ def _pose_summary(clusters: list[dict]) -> dict | None:
             "p90_error_deg": float(np.percentile(errs, 90)), "errors_deg": errs.tolist()}
 
 
-def _jsonable(x):
+def jsonable(x):
     """Plain JSON types: numpy scalars/arrays converted, non-finite floats become null."""
     if isinstance(x, dict):
-        return {str(k): _jsonable(v) for k, v in x.items()}
+        return {str(k): jsonable(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
-        return [_jsonable(v) for v in x]
+        return [jsonable(v) for v in x]
     if isinstance(x, np.ndarray):
-        return _jsonable(x.tolist())
+        return jsonable(x.tolist())
     if isinstance(x, np.generic):
         x = x.item()
     if isinstance(x, float) and not math.isfinite(x):

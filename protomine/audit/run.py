@@ -18,7 +18,7 @@ from ..mine.openset import library_cut
 from ..provenance import file_fingerprint, provenance, write_sidecar
 from .metrics import symmetry_to_period_deg
 from .plan import choose_objects, member_uncertainty, plan_rows, write_sheet
-from .report import Assignments, _jsonable, build_audit, write_report
+from .report import Assignments, jsonable, build_audit, write_report
 from .truth import object_table, read_truth
 
 
@@ -63,7 +63,7 @@ def run_audit(library: str | Path, truth: str | Path | None, out: str | Path, cf
                       rng=rng, truth_path=truth, provenance=prov)
     if doc["labelled_objects"]:
         say("numbers done; matching the labelled objects' single views against the unknown cut")
-        doc["open_set"] = _jsonable(open_set_on_labelled(lib, st, doc, cfg))
+        doc["open_set"] = jsonable(open_set_on_labelled(lib, st, doc, cfg))
     out.mkdir(parents=True, exist_ok=True)
     written: list[Path] = []
     if plan > 0:
@@ -98,7 +98,7 @@ def _plan(lib: Library, st, asg: Assignments, doc: dict, n: int, cfg: dict, rng:
             "per_cluster": per_cluster, "random_share": share,
             "how": f"Neyman allocation over clusters by size and current uncertainty; within a cluster "
                    f"{share:.0%} at random, the rest the members the library is least sure of"}
-    return _jsonable(info), list(paths.values())
+    return jsonable(info), list(paths.values())
 
 
 def open_set_on_labelled(lib: Library, st, doc: dict, cfg: dict) -> dict:

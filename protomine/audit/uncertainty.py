@@ -17,10 +17,14 @@ Conventions:
   as Poisson, whose variance exceeds the binomial one, so it errs on the wide side; the measured coverage
   (tests/test_audit_intervals.py) is >= 0.98 at purity 0.6-1 with 3-30 labels per cluster, also when
   one large cluster is impure and the rest clean, where effective-sample-size intervals fell to 0.78.
-- NMI, ARI and Hungarian accuracy have no such exact interval.  Their percentile bootstrap (labelled objects
-  resampled with replacement, all resamples' contingency tables built at once) is reported only when it can mean something: at least
-  ``MIN_LABELS_PER_CLUSTER`` labels per labelled cluster on average and a spread that is not zero (a
-  clean labelled set gives the same value in every resample).  Otherwise the reason is returned instead.
+- ARI and Hungarian accuracy have no such exact interval.  Their percentile bootstrap (labelled objects
+  resampled with replacement, all resamples' contingency tables built at once) is reported only where it
+  can mean something: at least ``MIN_LABELS_PER_CLUSTER`` labels per labelled cluster on average and a
+  spread that is not zero (a clean labelled set gives the same value in every resample); measured coverage
+  0.91-1.00 with 10-30 labels per cluster, 0.81-0.88 with 5 (8 clusters, purity 0.6-0.97).  Otherwise the
+  reason is returned instead.
+- NMI never gets an interval: NMI computed on a sample is biased upwards at these sizes, and its bootstrap
+  interval covered the population NMI in only 0-77% of the same simulations (tests/test_audit_intervals.py).
 - Randomness enters as a ``numpy.random.Generator`` passed in by the caller.
 """
 from __future__ import annotations
@@ -36,7 +40,7 @@ __all__ = ["clopper_pearson_interval", "wilson_interval", "stratified_purity", "
            "bootstrap_intervals", "propagation_accuracy", "MIN_LABELS_PER_CLUSTER"]
 
 STATISTICS = ("nmi", "ari", "hungarian_accuracy")
-MIN_LABELS_PER_CLUSTER = 5.0
+MIN_LABELS_PER_CLUSTER = 10.0
 
 
 def _check_confidence(confidence: float) -> float:
@@ -164,26 +168,6 @@ def _tables(ci: np.ndarray, li: np.ndarray, k: int, m: int, idx: np.ndarray) -> 
     return np.bincount(flat.ravel(), minlength=b * k * m).reshape(b, k, m).astype(np.float64)
 
 
-def _entropy(counts: np.ndarray, n: np.ndarray) -> np.ndarray:
-    p = counts / n[:, None]
-    return -np.sum(np.where(p > 0, p * np.log(np.where(p > 0, p, 1.0)), 0.0), axis=1)
-
-
-def _nmi_tables(T: np.ndarray) -> np.ndarray:
-    """(B,) NMI with arithmetic-mean normalisation of tables (B, k, m) (Manning et al. 2008, eq. 16.3);
-    1 when both sides hold a single class, 0 when only one does (scikit-learn's conventions)."""
-    n = T.sum(axis=(1, 2))
-    a, b = T.sum(axis=2), T.sum(axis=1)
-    outer = a[:, :, None] * b[:, None, :]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        mi = np.sum(np.where(T > 0, T / n[:, None, None] * np.log(T * n[:, None, None] / np.where(outer > 0, outer, 1.0)), 0.0),
-                    axis=(1, 2))
-    ha, hb = _entropy(a, n), _entropy(b, n)
-    single = ((a > 0).sum(axis=1) == 1) & ((b > 0).sum(axis=1) == 1)
-    den = (ha + hb) / 2
-    return np.where(single, 1.0, np.where(den > 0, np.maximum(mi, 0.0) / np.where(den > 0, den, 1.0), 0.0))
-
-
 def _ari_tables(T: np.ndarray) -> np.ndarray:
     """(B,) adjusted Rand index of tables (B, k, m) (Hubert & Arabie 1985); 1 when both partitions agree trivially."""
     n = T.sum(axis=(1, 2))
@@ -200,8 +184,9 @@ def _accuracy_tables(T: np.ndarray) -> np.ndarray:
     return np.array([_hungarian_accuracy(t) for t in T])
 
 
-BATCHED: dict[str, Callable[[np.ndarray], np.ndarray]] = {
-    "nmi": _nmi_tables, "ari": _ari_tables, "hungarian_accuracy": _accuracy_tables}
+BATCHED: dict[str, Callable[[np.ndarray], np.ndarray]] = {"ari": _ari_tables, "hungarian_accuracy": _accuracy_tables}
+NMI_REASON = ("NMI measured on a sample of labels is biased upwards at these sizes; its bootstrap interval "
+              "covered the true NMI in 0-77% of simulations with 5-30 labels per cluster, so none is given")
 
 
 def bootstrap_intervals(clusters, labels, rng: np.random.Generator, *, n_resamples: int = 1000,
@@ -226,14 +211,17 @@ def bootstrap_intervals(clusters, labels, rng: np.random.Generator, *, n_resampl
 def _bootstrap_intervals(clusters, labels, rng, n_resamples, confidence, statistics):
     ci, li, k, m = _encode(clusters, labels)
     per_cluster = ci.size / k
+    out = {}
+    if "nmi" in statistics:
+        out["nmi"] = {"interval": None, "reason": NMI_REASON}
+    rest = [s for s in statistics if s != "nmi"]
     if per_cluster < MIN_LABELS_PER_CLUSTER:
         why = (f"{ci.size} labels over {k} clusters ({per_cluster:.1f} per cluster): fewer than "
                f"{MIN_LABELS_PER_CLUSTER:g} per cluster, too few to measure its spread")
-        return {name: {"interval": None, "reason": why} for name in statistics}
+        return {**out, **{name: {"interval": None, "reason": why} for name in rest}}
     T = _tables(ci, li, k, m, rng.integers(0, ci.size, size=(n_resamples, ci.size)))
     a = 1.0 - confidence
-    out = {}
-    for name in statistics:
+    for name in rest:
         values = BATCHED[name](T)
         low, high = (float(x) for x in np.quantile(values, [a / 2, 1 - a / 2]))
         if high - low <= 1e-12:
