@@ -1,4 +1,4 @@
-"""`protomine audit --plan N --out DIR`: the labelling sheet, read back as it is by `audit --truth`; bad truth files.
+"""`protomine audit LIBRARY [TRUTH.csv] --plan N -o DIR`: the labelling sheet, read back as it is as TRUTH.csv; bad truth files.
 
 Checks: the sheet's columns and rows against the store (object ids, frames, boxes); the filled-in sheet
 accepted unchanged; one `error:` line and exit code 2 for bad input (common practice for CLIs).
@@ -51,7 +51,7 @@ def test_plan_without_truth_then_the_filled_sheet_is_the_truth(tmp_path, tiny_wo
     assert (out / "labelling_sheet.png").read_bytes()[:8] == PNG_MAGIC
     assert (out / "report.html").is_file()
 
-    # fill in the label column only, keep every other column: audit --truth reads it as it is
+    # fill in the label column only, keep every other column: audit reads it as it is
     for r in rows:
         r["label"] = _truth_label(r["object"])
     sheet = tmp_path / "filled.csv"
@@ -60,7 +60,7 @@ def test_plan_without_truth_then_the_filled_sheet_is_the_truth(tmp_path, tiny_wo
         w.writeheader()
         w.writerows(rows)
     rep = tmp_path / "report"
-    res = _audit(tiny_world, "--truth", sheet, "--out", rep, "--plan", 2)
+    res = _audit(tiny_world, sheet, "--out", rep, "--plan", 2)
     assert res.exit_code == 0, res.output
     doc = json.loads((rep / "report.json").read_text())
     assert doc["counts"]["labelled"] == 4 and doc["purity"]["clusters_labelled"] == 2
@@ -73,7 +73,7 @@ def test_plan_without_truth_then_the_filled_sheet_is_the_truth(tmp_path, tiny_wo
 def test_unknown_ids_are_listed_when_another_row_matches(tmp_path, tiny_world):
     truth = tmp_path / "t.csv"
     truth.write_text("object,label\ncap0/1,box\ncap9/7,mug\n")
-    res = _audit(tiny_world, "--truth", truth, "--out", tmp_path / "r")
+    res = _audit(tiny_world, truth, "--out", tmp_path / "r")
     assert res.exit_code == 0, res.output
     doc = json.loads((tmp_path / "r" / "report.json").read_text())
     assert [u["row"] for u in doc["unmatched_truth"]] == [3] and "cap9/7" in doc["unmatched_truth"][0]["reason"]
@@ -82,12 +82,12 @@ def test_unknown_ids_are_listed_when_another_row_matches(tmp_path, tiny_world):
 
 def test_bad_sheet_and_missing_inputs_get_one_error_line(tmp_path, tiny_world):
     res = _audit(tiny_world, "--out", tmp_path / "r")
-    assert res.exit_code == 2 and "--truth" in res.output and "--plan" in res.output and "Traceback" not in res.output
+    assert res.exit_code == 2 and "TRUTH.csv" in res.output and "--plan" in res.output and "Traceback" not in res.output
     sheet = tmp_path / "s.csv"
     sheet.write_text(",".join(SHEET_COLUMNS) + "\ncap0/1,cap0,000000,1 2 3 4,0,cluster 0,random,box\n"
                      "cap0/2,cap0,000000,1 2 3 4,1,cluster 1,unsure,\n")
-    res = _audit(tiny_world, "--truth", sheet, "--out", tmp_path / "r2")
+    res = _audit(tiny_world, sheet, "--out", tmp_path / "r2")
     assert res.exit_code == 2 and "s.csv: row 3, column label: empty label" in res.output
     sheet.write_text("object,lable\ncap0/1,box\n")
-    res = _audit(tiny_world, "--truth", sheet, "--out", tmp_path / "r3")
+    res = _audit(tiny_world, sheet, "--out", tmp_path / "r3")
     assert res.exit_code == 2 and "header" in res.output

@@ -20,7 +20,7 @@ random sampling finds.  The sheet says which way each row was chosen (``pick``).
 
 Sheet (``labelling_sheet.csv``): object, capture, frame, bbox ("u0 v0 u1 v1", pixels, inclusive-exclusive,
 in that frame), cluster, cluster_name, pick, label (empty: to fill in).  The filled-in file is read by
-``audit --truth`` as it is (extra columns are ignored).  Picture sheet (``labelling_sheet.png``): each
+``protomine audit LIBRARY TRUTH.csv`` as it is (extra columns are ignored).  Picture sheet (``labelling_sheet.png``): each
 chosen object's crop with its id, grouped by cluster.
 """
 from __future__ import annotations

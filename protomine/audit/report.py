@@ -735,7 +735,7 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
     if plan:
         parts.append(f"<h2>What to label next</h2><p>{plan['objects']} objects chosen for the next round "
                      f"({e(plan['how'])}): fill in the <code>label</code> column of {e(plan['sheet'])} and pass it back "
-                     "with <code>--truth</code>.</p>")
+                     "as the truth file (<code>protomine audit LIBRARY labelling_sheet.csv -o DIR</code>).</p>")
     parts.append("<h2>What was compared</h2><table>")
     for k, v in n.items():
         parts.append(f"<tr><td class='l'>{e(k.replace('_', ' '))}</td><td>{_fmt(v)}</td></tr>")

@@ -15,7 +15,8 @@ from ..ingest.sharded import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import Library, read_library
 from ..mine.openset import library_cut
-from ..provenance import file_fingerprint, provenance, write_sidecar
+from ..progress import bar
+from ..provenance import file_fingerprint, provenance, record_outputs
 from .metrics import symmetry_to_period_deg
 from .plan import choose_objects, member_uncertainty, plan_rows, write_sheet
 from .report import Assignments, jsonable, build_audit, write_report
@@ -59,23 +60,23 @@ def run_audit(library: str | Path, truth: str | Path | None, out: str | Path, cf
         inputs["truth"] = file_fingerprint(truth)
     prov = provenance(cfg, seed, inputs, command="audit")
     rng = np.random.default_rng(seed)
-    doc = build_audit(assignments, rows, objects, symmetry_period_deg=periods, names=lib.names, cfg=cfg,
-                      rng=rng, truth_path=truth, provenance=prov)
-    if doc["labelled_objects"]:
-        say("numbers done; matching the labelled objects' single views against the unknown cut")
-        doc["open_set"] = jsonable(open_set_on_labelled(lib, st, doc, cfg))
-    out.mkdir(parents=True, exist_ok=True)
-    written: list[Path] = []
-    if plan > 0:
-        doc["plan"], sheet = _plan(lib, st, assignments, doc, plan, cfg, rng, out)
-        written += sheet
-    say("drawing")
-    gallery = render_gallery(out / "gallery.png", lib.prototypes["volumes"], counts=lib.prototypes["count"],
-                             symmetry=lib.prototypes["symmetry"],
-                             names=[lib.display_name(k) for k in range(lib.n_clusters)])
-    written += write_report(out, doc, gallery_png=gallery, crops=st.crops).values()
-    for path in written:
-        write_sidecar(path, prov)
+    with bar(progress, "audit", total=2, unit="steps") as b:     # numbers (bootstrap, open set, plan), then pictures
+        doc = build_audit(assignments, rows, objects, symmetry_period_deg=periods, names=lib.names, cfg=cfg,
+                          rng=rng, truth_path=truth, provenance=prov)
+        if doc["labelled_objects"]:
+            doc["open_set"] = jsonable(open_set_on_labelled(lib, st, doc, cfg))
+        out.mkdir(parents=True, exist_ok=True)
+        written: list[Path] = []
+        if plan > 0:
+            doc["plan"], sheet = _plan(lib, st, assignments, doc, plan, cfg, rng, out)
+            written += sheet
+        b.advance()
+        gallery = render_gallery(out / "gallery.png", lib.prototypes["volumes"], counts=lib.prototypes["count"],
+                                 symmetry=lib.prototypes["symmetry"],
+                                 names=[lib.display_name(k) for k in range(lib.n_clusters)])
+        written += write_report(out, doc, gallery_png=gallery, crops=st.crops).values()
+        record_outputs(written, prov)
+        b.advance()
     return doc
 
 
