@@ -584,9 +584,11 @@ def _cross_table(audit: dict) -> list[str]:
     name_of = {c["cluster"]: c["name"] for c in audit["clusters"]}
     parts = ["<table class='cross'><tr><th class='l'>cluster \\ label</th>"
              + "".join(f"<th>{e(str(lab))}</th>" for lab in labels) + "<th>labelled</th></tr>"]
-    agree, disagree = _hex_rgb(PALETTE["agree"]), _hex_rgb(PALETTE["disagree"])
+    agree, disagree, twin = _hex_rgb(PALETTE["agree"]), _hex_rgb(PALETTE["disagree"]), _hex_rgb(PALETTE["unknown"])
     for i, c in enumerate(clusters):
         row_total = counts[i].sum()
+        # a cluster left out of the one-to-one matching whose majority label another cluster already holds
+        majority = int(np.argmax(counts[i])) if i >= conf["matched"] and row_total else -1
         cells = []
         for j in range(len(labels)):
             v = counts[i, j]
@@ -594,7 +596,7 @@ def _cross_table(audit: dict) -> list[str]:
                 cells.append("<td class='z'>&middot;</td>")
                 continue
             on_diagonal = i == j and i < conf["matched"]
-            r, g, b = agree if on_diagonal else disagree
+            r, g, b = agree if on_diagonal else twin if j == majority else disagree
             share = v / max(row_total, 1)
             ink = PALETTE["paper"] if share > 0.55 else PALETTE["ink"]
             cells.append(f"<td style='background:rgba({r},{g},{b},{0.15 + 0.85 * share:.2f});color:{ink}'>{int(v)}</td>")
@@ -670,8 +672,9 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
     if audit["confusion"]["labels"]:
         parts.append("<h2>Clusters against hand labels</h2>")
         parts.append("<p class='note'>Rows and columns are matched one to one (Hungarian matching), so agreement runs "
-                     "down the diagonal (teal); counts off it (rust) are labels the cluster does not hold. Shade = share "
-                     "of the row.</p>")
+                     "down the diagonal (teal); rows below it are clusters whose label another cluster already holds "
+                     "(ochre: merge candidates); other counts (rust) are labels a cluster should not hold. Shade = "
+                     "share of the row.</p>")
         parts.extend(_cross_table(audit))
 
     parts.append("<h2>Scores on the labelled objects</h2>")
