@@ -43,7 +43,7 @@ from ..progress import bar, detail
 from ..provenance import file_fingerprint, provenance, record_outputs
 from ..capture import read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng
+from ..ingest.pipeline import capture_rng, unique_capture_names
 from ..ingest.proposals import find_objects
 from ..ingest.store import ObjectStore
 from ..mine.library import Library
@@ -99,9 +99,7 @@ def export_labels(library: Library, source: str | Path | ObjectStore, captures: 
         raise InputError(None, "--min-score", f"expected a score in [0, 1], got {min_score}")
     if not captures:
         raise InputError(None, "captures", "expected at least one capture folder")
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        raise InputError(None, "captures", f"capture folder names must be unique, got {names}")
+    names = unique_capture_names(captures)
     if isinstance(source, ObjectStore) or _is_hdf5(Path(source)):
         store = source if isinstance(source, ObjectStore) else open_store(source)
         cap_rows = {str(n): j for j, n in enumerate(store.captures["name"])}
@@ -216,6 +214,8 @@ def _write_export(lib: Library, frames: list[tuple[object, str, list[dict]]], ou
                     raise InputError(lib.path, "prototypes", f"label record of {rec['object']} names cluster {k}, the "
                                      f"library has 0..{lib.n_clusters - 1} (labelled with another library?)")
                 name = lib.display_name(int(k)) if k is not None else "unknown"
+                if k is not None:       # the library's current name (the cluster may have been named since)
+                    rec = {**rec, "name": str(lib.prototypes["name"][int(k)]) or None}
                 lines.append(json.dumps(rec))
                 st = stats.setdefault(name, {"clusters": set(), "objects": set(), "labels": 0, "scores": [], "unknown": 0})
                 if k is not None:

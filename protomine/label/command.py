@@ -38,6 +38,7 @@ def label(
     """
     from ..atomic import clean_stale_temporaries
     from ..capture import read_capture
+    from ..ingest.pipeline import check_captures
     from ..mine.library import read_library
     from ..provenance import file_fingerprint, folder_fingerprint, provenance
     from .matcher import label_captures
@@ -48,6 +49,7 @@ def label(
     say = reporter("label", quiet, verbose)
     lib = read_library(existing(library, "library"))
     notice_library_config(lib, config, cfg, say)
+    check_captures(captures)            # every bad capture listed before any work
     caps = [read_capture(c, check_images=False) for c in captures]
     clean_stale_temporaries(out.parent)
     stats: dict = {}

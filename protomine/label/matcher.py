@@ -43,7 +43,7 @@ import numpy as np
 
 from ..capture import Capture, read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng, pixel_bbox
+from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
@@ -216,12 +216,10 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
     search call costs a fixed overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
-    and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
+    and matching, without reading images or finding objects), ``objects_per_second`` for those two and
+    ``scores`` (n_records, K): every record's score against every prototype.
     """
-    names = [Path(c).name for c in capture_paths]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(capture_paths)
     matcher = make_matcher(library, cfg, weighted=weighted)
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
@@ -235,6 +233,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
                 pending = []
         out += _match_batch(matcher, pending, st)
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
+    st["scores"] = np.concatenate(st.get("scores") or [np.zeros((0, matcher.K))])
     if stats is not None:
         stats.update(st)
     return out
@@ -271,4 +271,5 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
         out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
     st["objects"] += i0
+    st.setdefault("scores", []).append(m["score"])
     return out
