@@ -177,10 +177,10 @@ def write_sheet(out_dir: str | Path, rows: list[PlanRow], crops) -> dict[str, Pa
 
 def _sheet_png(rows: list[PlanRow], crops, size: int = 96, cols: int = 8) -> bytes:
     """Crops grouped by cluster: a heading per cluster, then its objects with their ids underneath."""
-    from PIL import Image, ImageDraw, ImageFont
-    from .report import PALETTE, cluster_colour
-    font = ImageFont.load_default(size=13)
-    small = ImageFont.load_default(size=11)
+    from PIL import Image, ImageDraw
+    from ..drawing import cluster_colour, font as bundled_font
+    from .report import PALETTE
+    font, small = bundled_font(13), bundled_font(11)
     groups: dict[int, list[PlanRow]] = {}
     for r in rows:
         groups.setdefault(r.cluster, []).append(r)
@@ -194,7 +194,7 @@ def _sheet_png(rows: list[PlanRow], crops, size: int = 96, cols: int = 8) -> byt
         draw.text((pad, pad), "nothing to label: every clustered object already has a label", fill=rgb(PALETTE["ink"]), font=font)
     y = pad
     for c, g in groups.items():
-        draw.rectangle([pad, y + 4, pad + 12, y + 16], fill=rgb(cluster_colour(c)))
+        draw.rectangle([pad, y + 4, pad + 12, y + 16], fill=cluster_colour(c))
         draw.text((pad + 18, y + 2), f"cluster {c}  {g[0].cluster_name}  ({len(g)} to label)", fill=rgb(PALETTE["ink"]), font=font)
         y += head
         for i, r in enumerate(g):
@@ -207,7 +207,7 @@ def _sheet_png(rows: list[PlanRow], crops, size: int = 96, cols: int = 8) -> byt
                 sheet.paste(img, (x0 + (size - img.width) // 2, y0 + (size - img.height) // 2))
             else:
                 draw.rectangle([x0, y0, x0 + size - 1, y0 + size - 1], fill=rgb(PALETTE["rule"]))
-            draw.rectangle([x0 - 1, y0 - 1, x0 + size, y0 + size], outline=rgb(cluster_colour(c)), width=2)
+            draw.rectangle([x0 - 1, y0 - 1, x0 + size, y0 + size], outline=cluster_colour(c), width=2)
             draw.text((x0, y0 + size + 3), _fit(draw, r.object, small, size), fill=rgb(PALETTE["ink"]), font=small)
             draw.text((x0, y0 + size + 16), r.pick, fill=rgb(PALETTE["muted"]), font=small)
         y += math.ceil(len(g) / cols) * (size + cap + pad)

@@ -33,6 +33,7 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 
 from ..atomic import clean_stale_temporaries, write_bytes, write_text
+from ..drawing import cluster_colour as cluster_rgb
 from ..errors import InputError
 from .metrics import clustering_scores, contingency, yaw_error_deg, yaw_offset_deg
 from .truth import ObjectTable, TruthRow, match_truth
@@ -55,12 +56,10 @@ OVERALL_METHOD = ("size-weighted purity over the labelled clusters, Fay-Feuer ga
                   "labels; per cluster: exact Clopper-Pearson")
 
 # the report's own palette: warm paper, dark slate ink, teal for agreement, rust for disagreement, ochre
-# for what is not known yet; clusters cycle through muted, distinguishable hues
+# for duplicates and what is not known yet; each cluster keeps the colour it has everywhere (drawing.py)
 PALETTE = {
     "paper": "#fbfaf7", "ink": "#1f2a30", "muted": "#6b7780", "rule": "#d9d6cf", "panel": "#f1efe9",
     "agree": "#2f7f6f", "disagree": "#b5523b", "unknown": "#c99a2e",
-    "clusters": ("#2f7f6f", "#b5523b", "#3d5a98", "#c99a2e", "#7a4f8c", "#5b8c3a", "#a8456b", "#3f8fa6",
-                 "#8c6d3f", "#55606b"),
 }
 METRIC_NAMES = {
     "purity": "Purity (labels agreeing with their cluster's majority)",
@@ -76,8 +75,9 @@ METRIC_NAMES = {
 
 
 def cluster_colour(c: int) -> str:
-    """The report's colour of cluster ``c`` (hex)."""
-    return PALETTE["clusters"][int(c) % len(PALETTE["clusters"])]
+    """Cluster ``c``'s colour (as on overlays and member sheets, ``drawing.cluster_colour``) as hex."""
+    r, g, b = cluster_rgb(c)
+    return f"#{r:02x}{g:02x}{b:02x}"
 
 
 @dataclass
@@ -573,7 +573,7 @@ td.l,th.l{text-align:left}
 table.cross td{min-width:2.6em;text-align:center}
 table.cross td.z{color:%(rule)s}
 img{max-width:100%%}.strip{display:block;max-width:300px}
-""" % {k: v for k, v in PALETTE.items() if isinstance(v, str)}
+""" % PALETTE
 
 
 def _cross_table(audit: dict) -> list[str]:
