@@ -13,7 +13,7 @@ Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
   yaw relative to the example, modulo the one-shot symmetry period of its face; 0 for continuous
   symmetry), ``rotation`` [qx, qy, qz, qw] (x_world = R x_example + t, the example's frame taken as the
   prototype frame), ``face`` (the one-shot prototype's faces are the resting faces of the objects that
-  match it with a score above ``label.unknown_score``, grouped by ``faces.group_faces``; face 0 = the
+  match it with a score above the library's unknown cut, grouped by ``faces.group_faces``; face 0 = the
   example's own) and ``scale`` = metric size sqrt(r h) of the object over that of the example
   (``fit_scale`` is the pose search's residual scale).
 
@@ -31,7 +31,7 @@ per cluster (median, 1.4826 MAD of ln d) is pooled over clusters by the median:
 i.e. the fraction of a class's instances expected to fit a single exemplar of that class worse than
 this object does, the same meaning as ``library.match_score`` of mined prototypes.  It is therefore
 comparable with member scores (``--add`` moves a member when its one-shot score beats its current
-score) and with ``label.unknown_score``.  When no cluster has enough members the fit falls back to the
+score) and with the library's unknown cut (``mine.openset``).  When no cluster has enough members the fit falls back to the
 bulk of the store: (m, s) = median and 1.4826 MAD of ln d of every other object, mu_1 = m - 2 s,
 sigma_1 = s (objects two robust standard deviations closer than the bulk score 0.5).
 Single-view calibration of an added prototype: single_mu = mu_1 + median_k(single_mu_k - fused_mu_k),
@@ -54,6 +54,7 @@ from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
 from ..mine.faces import face_pose, group_faces
+from ..mine.openset import library_cut
 from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_assignments
 from ..mine.symmetry import detect_symmetry
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
@@ -94,11 +95,14 @@ class Matches:
     cluster: np.ndarray                 # the object's library cluster, -1 when it is not a member
     rotation: np.ndarray                # (N, 4) quaternions [qx, qy, qz, qw], world <- example frame
     face: np.ndarray                    # (N,) face of the one-shot prototype
+    example_index: int = -1             # the example's own row: matched (distance 0) but left out of ``order``
     order: np.ndarray = field(init=False)
 
     def __post_init__(self) -> None:
-        # ascending distance; unmatched (inf) last; ties broken by object id for determinism
-        self.order = np.lexsort((self.object.astype(str), self.distance))
+        # ascending distance; unmatched (inf) last; ties broken by object id for determinism; the example
+        # itself is not a find
+        order = np.lexsort((self.object.astype(str), self.distance))
+        self.order = order[order != self.example_index]
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
@@ -198,7 +202,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     score = np.where(np.isfinite(D), match_score(D, mu, sigma), 0.0)
     # the one-shot prototype's faces: where the objects that fit it rest (face 0 = the example's own)
     R_obj = rotation_of(grid, tilt, yaw)
-    fit_ok = score >= float(cfg["label"]["unknown_score"])
+    fit_ok = score >= library_cut(library)
     ups, counts, _ = group_faces(R_obj[fit_ok, 2, :], np.zeros(int(fit_ok.sum()), np.int64), 1)
     bank = TiltBank(X1, W1, [aspect], scales, grid) if grid is not None and len(ups[0]) > 1 else None
     fsym = [symmetry] + [int(detect_symmetry(*(a[None] for a in bank.copy_at(0, u)), np.exp(mu) / 2.0)[0])
@@ -212,7 +216,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     cl = {str(o): int(k) for o, k in zip(library.members["object"], library.members["cluster"])}
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
-                   world_quaternions(R_obj, store.objects["up"]), face)
+                   world_quaternions(R_obj, store.objects["up"]), face, ex)
 
 
 def _grid(library: Library) -> TiltGrid | None:

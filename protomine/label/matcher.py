@@ -28,17 +28,13 @@ the fraction of single views of prototype k's own members expected to fit worse 
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
 cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
-"unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
-prototype's own single views, i.e. the per-prototype distance threshold
-``exp(mu_k + sigma_k * T_4^-1(1 - unknown_score))``.
+"unknown" when that score is below the library's ``unknown_cut`` (``mine.openset``: the split-conformal
+cut at ``unknown_alpha`` on held-out single views of mined objects, so at most that share of known-class
+views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_cut))``.
 
-Record (one dict per object and frame; JSON-ready):
-    capture, frame, object, bbox [u0, v0, u1, v1) pixels, center_world [x, y, z] m, base_world [x, y, z]
-    (object frame origin), up [x, y, z], size_m [footprint radius, height], cluster (int | None),
-    name (str | None), yaw_deg, rotation [qx, qy, qz, qw], face (int), symmetry ("continuous" | "none" |
-    "n-fold:N", of that face), scale (metric size
-    sqrt(r h) over the prototype's median), fit_scale (best scale of the pose search), distance, score,
-    unknown, alternatives [{cluster, score}] (the next nearest prototypes, at most ``N_ALTERNATIVES``).
+Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
+``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
+decision order, each with its distance and score); with ``rotation`` [qx, qy, qz, qw] and ``face`` (see above).
 """
 from __future__ import annotations
 
@@ -49,15 +45,19 @@ from typing import Callable
 
 import numpy as np
 
-from ..capture import read_capture
+from ..capture import Capture, read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng, pixel_bbox
+from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..geometry import plane_basis
 from ..mine.faces import face_pose
+from ..mine.openset import library_cut
+from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
+from ..progress import Bar, bar, detail
+from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, make_bank, rotation_of
 from ..rotations import matrix_to_quat
 
@@ -83,7 +83,7 @@ class Matcher:
     free_weight: float
     colour_weight: float
     scales: tuple[float, ...]
-    unknown_score: float
+    unknown_cut: float
     weighted: bool = True
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
@@ -141,7 +141,7 @@ class Matcher:
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
-    volumes must be lifted exactly as the mined ones were); ``label.unknown_score`` from ``cfg``."""
+    volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
     lib_cfg = library.config
     if "volume" not in lib_cfg or "mine" not in lib_cfg:
         raise InputError(library.path, "config", "library does not record the [volume] and [mine] config it was mined with")
@@ -154,7 +154,7 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   float(cfg["label"]["unknown_score"]), weighted)
+                   library_cut(library), weighted)
 
 
 @dataclass
@@ -167,6 +167,9 @@ class FrameObjects:
 
 def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool) -> FrameObjects:
     """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields."""
+    height = scene.capture.intrinsics.height
+    fd = next((f for f in scene.frames if f.id == frame_id), None)
+    mask = None if geometry_ids or fd is None or fd.mask is None else fd.mask.reshape(-1)
     vols, facts = [], []
     for p in scene.proposals:
         pix = p.pixels.get(frame_id)
@@ -175,7 +178,11 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         vols.append(lift(scene.views(p, [frame_id]), p.frame, grid))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
-        facts.append({"object": oid, "bbox": list(pixel_bbox(pix, width)),
+        # the picture's extent: the whole mask region when masks name the object (pixels without a depth
+        # reading included, as export of a store reports it), else the pixels that were lifted
+        region = np.flatnonzero(mask == int(p.key)) if mask is not None and p.key.isdigit() else pix
+        facts.append({"object": oid, "source": "single-view", "bbox": list(pixel_bbox(region, width)),
+                      "segmentation": pixels_to_rle(region, height, width),
                       "center_world": [float(x) for x in p.center_world],
                       "base_world": [float(x) for x in p.frame.origin], "up": [float(x) for x in p.frame.up],
                       "size_m": [float(p.frame.radius), float(p.frame.height)]})
@@ -192,8 +199,11 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
     out = []
     for i, facts in enumerate(fo.facts):
         k = int(m["best"][i])
+        # alternatives in decision order (nearest first), each with the distance that ranks it and its score
         order = np.argsort(m["distance"][i], kind="stable")
-        alts = [{"cluster": int(j), "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
+        alts = [{"cluster": int(j), "name": str(names[j]) or None,
+                 "distance": float(m["distance"][i, j]) if np.isfinite(m["distance"][i, j]) else None,
+                 "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
         rec = {"capture": capture, "frame": fo.frame, **facts}
         if k < 0:
             rec.update(cluster=None, name=None, yaw_deg=0.0, rotation=None, face=None, symmetry=None, scale=None, fit_scale=None,
@@ -208,7 +218,7 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
                        symmetry=symmetry_name(face_sym[k, f]),
                        scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
                        fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
-                       score=score, unknown=bool(score < matcher.unknown_score), alternatives=alts)
+                       score=score, unknown=bool(score < matcher.unknown_cut), alternatives=alts)
         out.append(rec)
     return out
 
@@ -229,33 +239,32 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
     search call costs a fixed overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
-    and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
+    and matching, without reading images or finding objects), ``objects_per_second`` for those two and
+    ``scores`` (n_records, K): every record's score against every prototype.
     """
-    names = [Path(c).name for c in capture_paths]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(capture_paths)
     matcher = make_matcher(library, cfg, weighted=weighted)
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
     pending: list[tuple[str, FrameObjects]] = []
-    for ci, path in enumerate(capture_paths):
-        if progress:
-            progress(f"capture {ci + 1}/{len(capture_paths)} {Path(path).name}")
-        pending += _lift_capture(matcher, Path(path), cfg, seed, use_masks, progress, st)
-        if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
-            out += _match_batch(matcher, pending, st)
-            pending = []
-    out += _match_batch(matcher, pending, st)
+    caps = [read_capture(p, check_images=False) for p in capture_paths]
+    with bar(progress, "label", total=sum(len(c.frames) for c in caps), unit="frames") as b:
+        for cap in caps:
+            pending += _lift_capture(matcher, cap, cfg, seed, use_masks, progress, st, b)
+            if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
+                out += _match_batch(matcher, pending, st)
+                pending = []
+        out += _match_batch(matcher, pending, st)
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
+    st["scores"] = np.concatenate(st.get("scores") or [np.zeros((0, matcher.K))])
     if stats is not None:
         stats.update(st)
     return out
 
 
-def _lift_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks: bool,
-                  progress: Callable[[str], None] | None, st: dict) -> list[tuple[str, FrameObjects]]:
-    cap = read_capture(path, check_images=False)
+def _lift_capture(matcher: Matcher, cap: Capture, cfg: dict, seed: int, use_masks: bool,
+                  progress: Callable[[str], None] | None, st: dict, b: Bar) -> list[tuple[str, FrameObjects]]:
     rng = capture_rng(seed, cap.name)   # one generator per capture, consumed frame after frame
     masks = bool(use_masks and cap.has_masks)
     width = cap.intrinsics.width
@@ -266,8 +275,8 @@ def _lift_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks:
         fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks)
         st["lift_s"] += time.perf_counter() - t0
         lifted.append((cap.name, fo))
-        if progress:
-            progress(f"{cap.name} frame {fr.id}: {len(fo.facts)} objects")
+        b.advance()
+        detail(progress, f"{cap.name} frame {fr.id}: {len(fo.facts)} objects")
     st["frames"] += len(cap.frames)
     return lifted
 
@@ -285,4 +294,5 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
         out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
     st["objects"] += i0
+    st.setdefault("scores", []).append(m["score"])
     return out

@@ -66,6 +66,7 @@ from sklearn.decomposition import PCA
 
 from .. import rotations as rot
 from . import faces
+from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
 from .posesearch import PoseBank
@@ -338,7 +339,7 @@ class TiltState:
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
                  accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
-                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None,
+                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None, advance=None,
                  tilts: TiltState | None = None):
     """One pass over the source: assignment against (P, V) and, optionally, the aligned sums.
 
@@ -349,27 +350,37 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     ``cache`` keeps object spectra between passes (same source and chunk_size only).  ``scale_index``
     (N,) restricts each object's scale search to its previous best scale +-1 (intermediate passes).
     ``tilts`` adds the up-direction search (prototypes' tilted copies, members untilted into the sums) and
-    receives each object's best tilt in ``tilts.tilt``.  A source with an ``assign_pass`` method runs the pass itself (``mine.distributed.ExecutorSource``: a
-    map-reduce over chunks on an executor, with the same arguments and results).
+    receives each object's best tilt in ``tilts.tilt``.  A source with an ``assign_pass`` method runs the
+    pass itself (``mine.distributed.ExecutorSource``: a map-reduce over chunks on an executor, with the same
+    arguments and results; yaw only).  ``advance(n)``, when given, is told how many objects each chunk
+    covered (progress).
     """
     if hasattr(source, "assign_pass"):
         if tilts is not None and not tilts.grid.is_identity:
             raise ValueError("the tilt search runs in this process only; use [mine] tilt_nsides = [0] with a scheduler")
-        return source.assign_pass(P, V, scales, chunk_size, accumulate, n_worst, moments=moments, forced=forced,
-                                  scale_index=scale_index)
+        out = source.assign_pass(P, V, scales, chunk_size, accumulate, n_worst, moments=moments, forced=forced,
+                                 scale_index=scale_index)
+        if advance is not None:
+            advance(len(source))
+        return out
     N = len(source)
     K, C, R, A, H = P.shape
     S = len(scales)
     bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect)
     T = 1 if tilts is None else len(tilts.grid.dirs)
+    untilt = getattr(bank, "untilt", None)
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
     dist = np.empty(N, np.float32)
     tilt = np.zeros(N, np.int64)
-    sums = _AlignedSums(K, S, A, (C + 2) * R * H, T) if accumulate else None
-    msums = _AlignedSums(K, S, A, (C + 1) * R * H, T) if moments else None
+    # Each chunk's aligned sums are transformed back and added in float64 in chunk order, exactly as the
+    # map-reduce pass of mine.distributed folds its chunk parts, so one process and a cluster sum alike.
+    tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
+    extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     for i0, i1 in _chunks(N, chunk_size):
+        sums = _AlignedSums(K, S, A, (C + 2) * R * H, T) if accumulate else None
+        msums = _AlignedSums(K, S, A, (C + 1) * R * H, T) if moments else None
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
             x, w = source.read(i0, i1)
@@ -382,13 +393,16 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
+        if accumulate:
+            tot += sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
+        if moments:
+            extra += msums.result(scales, (C + 1, R, H), untilt)
+        if advance is not None:
+            advance(i1 - i0)
     if tilts is not None:
         tilts.tilt = tilt
     if not accumulate:
         return labels, yaw, scale, dist, None, None, None, None, None
-    untilt = getattr(bank, "untilt", None)
-    tot = sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
-    extra = msums.result(scales, (C + 1, R, H), untilt) if moments else None
     return _pass_outputs(source, labels, yaw, scale, dist, tot, extra, P, V, n_worst, chunk_size)
 
 
@@ -466,12 +480,21 @@ def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: n
 
 
 def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: int, tol: float,
-           chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None,
-           grid: TiltGrid | None = None, aspect: np.ndarray | None = None) -> _Result:
+           chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None, progress=None,
+           what: str = "passes", grid: TiltGrid | None = None, aspect: np.ndarray | None = None) -> _Result:
     """Lloyd iterations from (P, V).  The first and the final pass search every scale; the passes in
     between only each object's previous best scale +-1 (scales move slowly once prototypes settle, and
-    the search then costs 3 / S of the full one).  With a tilt ``grid``, ``aspect`` (K,) are the starting
-    prototypes' aspects, updated after every pass from their upright members (``source.aspect``)."""
+    the search then costs 3 / S of the full one).  ``progress`` (:mod:`protomine.progress`) gets one bar
+    over at most max_iter + 1 passes of the objects, cut to the passes run when the iterations converge.
+    With a tilt ``grid``, ``aspect`` (K,) are the starting prototypes' aspects, updated after every pass
+    from their upright members (``source.aspect``)."""
+    with bar(progress, what, total=(max_iter + 1) * len(source), unit="objects") as b:
+        return _lloyd_passes(source, P, V, scales, max_iter, tol, chunk_size, moments, cache, b, grid, aspect)
+
+
+def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter: int, tol: float, chunk_size: int,
+                  moments: bool, cache: _SpectraCache | None, b: Bar, grid: TiltGrid | None = None,
+                  aspect: np.ndarray | None = None) -> _Result:
     K = P.shape[0]
     ts = None if grid is None else TiltState(grid, aspect)
     obj_aspect = None if grid is None else _source_aspect(source)
@@ -481,7 +504,8 @@ def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: in
     scale_arr = np.asarray(scales, np.float32)
     for n_iter in range(1, max_iter + 1):
         labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
-                                                                           cache=cache, scale_index=sidx, tilts=ts)
+                                                                           cache=cache, scale_index=sidx,
+                                                                           advance=b.advance, tilts=ts)
         # index of each object's best scale (the window runs over the scales in the given order)
         sidx = np.argmax(scale[:, None] == scale_arr[None, :], axis=1) if len(scales) > 3 else None
         cost = float(dist[np.isfinite(dist)].sum())
@@ -495,8 +519,9 @@ def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: in
         if small and count.min() > 0:
             break
         prev_labels, prev_cost = labels, cost
+    b.set_total(b.done + len(source))
     labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments,
-                                                 cache=cache, tilts=ts)
+                                                 cache=cache, advance=b.advance, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())
     return _Result(P, V, labels, yaw, scale, dist, cost, n_iter, rest[-1] if moments else None,
                    None if ts is None else ts.tilt, None if ts is None else ts.aspect)
@@ -529,6 +554,7 @@ class PoseKMeans:
     init : optional (P (K, C, R, A, H), V (K, R, A, H)) starting prototypes (skips seeding and restarts).
     cache_mb : memory budget for object spectra kept between passes (about 0.1 MB per object on an
         8 x 36 x 12 grid with 5 channels); objects beyond it are re-read and re-transformed every pass.
+    progress : optional progress reporter (:mod:`protomine.progress`): one bar per run of Lloyd passes.
     tilts : a :class:`protomine.mine.tilts.TiltGrid` of up directions to search besides yaw and scale (3-D
         poses; the source must then carry ``aspect`` (N,)), or None for the yaw-only search.  With tilts,
         ``init`` may hold a third array, the prototypes' aspects (K,).
@@ -542,7 +568,8 @@ class PoseKMeans:
     def __init__(self, *, n_clusters: int, scales: Sequence[float] = (1.0,), n_init: int = 4, max_iter: int = 30,
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
-                 init: tuple | None = None, cache_mb: float = 384.0, tilts: TiltGrid | None = None):
+                 init: tuple | None = None, cache_mb: float = 384.0, progress=None,
+                 tilts: TiltGrid | None = None):
         self.n_clusters = n_clusters
         self.scales = scales
         self.n_init = n_init
@@ -556,6 +583,7 @@ class PoseKMeans:
         self.init = init
         self.cache_mb = cache_mb
         self.tilts = tilts
+        self.progress = progress
 
     # --- validation ------------------------------------------------------------------------
 
@@ -595,7 +623,8 @@ class PoseKMeans:
             a0 = None if grid is None else (np.asarray(given, np.float64) if given is not None
                                             else np.full(K, float(np.median(_source_aspect(source)))))
             best = _lloyd(source, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid, aspect=a0)
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid, aspect=a0,
+                          progress=self.progress, what=f"K={K} passes")
         else:
             best = self._fit_restarts(source, scales, rng)
         self._finish(best, source, scales)
@@ -613,19 +642,20 @@ class PoseKMeans:
         # the whole source, the same spectra serve the whole fit
         cache = self._new_cache()
         best = None
-        for _ in range(self.n_init):
+        for r in range(self.n_init):
             P0, V0, *a0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)),
                                             cache, grid)
             res = _lloyd(fit_on, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
                          chunk_size=self.chunk_size, moments=fit_on is source, cache=cache, grid=grid,
-                         aspect=a0[0] if a0 else None)
+                         aspect=a0[0] if a0 else None,
+                         progress=self.progress, what=f"K={K} restart {r + 1}/{self.n_init} passes")
             if best is None or res.cost < best.cost:
                 best = res
         if fit_on is not source:
             del cache, sub, Xs, Ws  # free the subsample's memory before the full fit
             best = _lloyd(source, best.P, best.V, scales=scales, max_iter=self.max_iter, tol=self.tol,
                           chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid,
-                          aspect=best.aspect)
+                          aspect=best.aspect, progress=self.progress, what=f"K={K} all objects passes")
         return best
 
     def _new_cache(self) -> _SpectraCache:

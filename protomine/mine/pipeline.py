@@ -25,13 +25,17 @@ import numpy as np
 
 from ..atomic import pause_point, write_text
 from ..errors import InputError
+from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..geometry import plane_basis
 from ..ingest.volume import matching_features
 from ..rotations import matrix_to_quat
-from ..provenance import provenance, provenance_of, write_sidecar
+from ..progress import bar, say
+from ..provenance import provenance, provenance_of, record_outputs
+from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
-from .posesearch import pose_distances, shift_volume
+from .openset import conformal_cut
+from .posesearch import pose_distances
 from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
 
@@ -81,7 +85,7 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
     if progress and grid is None and tilt_grid(cfg) is not None:
         progress("the tilt search runs in this process only: this run searches yaw about up and scale")
     common = dict(scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
-                  chunk_size=m["chunk_size"], random_state=seed, tilts=grid)
+                  chunk_size=m["chunk_size"], random_state=seed, progress=progress, tilts=grid)
     if cfg.get("scale", {}).get("batch_size", 0):
         from .minibatch import fit_minibatch  # yaw-only (grid is None in this mode)
         return fit_minibatch(src, cfg, seed, k, max_k=min(m["max_clusters"], len(store) - 1), progress=progress)
@@ -101,40 +105,6 @@ def _executor_source(store: ObjectStore, cfg: dict, executor):
     return ExecutorSource(StoreSpec.of(store, cfg), executor)
 
 
-def aligned_volume_sums(vols: np.ndarray, labels: np.ndarray, yaw_deg: np.ndarray, K: int,
-                        acc: np.ndarray | None = None, wsum: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Add store volumes (n, 6, R, A, H) rolled into their prototype's frame into ``acc`` (K, 6, R, A, H) and
-    their observation weights into ``wsum`` (K, 1, R, A, H) (float64; new zero arrays when None)."""
-    _, Cv, R, A, H = vols.shape
-    acc = np.zeros((K, Cv, R, A, H)) if acc is None else acc
-    wsum = np.zeros((K, 1, R, A, H)) if wsum is None else wsum
-    for j, v in enumerate(vols.astype(np.float64)):
-        k = labels[j]
-        if k < 0:  # left out (members resting on another face than the canonical one)
-            continue
-        back = shift_volume(v, -yaw_deg[j] / (360.0 / A), axis=2)
-        w = np.clip(back[2:3], 0, None)
-        acc[k] += back * w
-        wsum[k] += w
-    return acc, wsum
-
-
-def mean_from_volume_sums(acc: np.ndarray, wsum: np.ndarray, labels: np.ndarray, K: int) -> np.ndarray:
-    """(K, 6, R, A, H) weighted means from :func:`aligned_volume_sums`; channel 2 = mean observation."""
-    out = acc / np.maximum(wsum, 1e-9)
-    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels[labels >= 0], minlength=K)[:, None, None, None], 1)
-    return out.astype(np.float32)
-
-
-def aligned_mean_volumes(store: ObjectStore, labels: np.ndarray, yaw_deg: np.ndarray, K: int, chunk: int = 512) -> np.ndarray:
-    """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame."""
-    acc = wsum = None
-    for i0 in range(0, len(store), chunk):
-        i1 = min(len(store), i0 + chunk)
-        acc, wsum = aligned_volume_sums(store.read_volumes(i0, i1), labels[i0:i1], yaw_deg[i0:i1], K, acc, wsum)
-    return mean_from_volume_sums(acc, wsum, labels, K)
-
-
 def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
     """At most n of ``items`` (1-D), evenly spaced over it (all when n >= len)."""
     if len(items) <= n:
@@ -144,6 +114,7 @@ def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
                           scales: tuple[float, ...], *, max_objects_per_cluster: int = 64,
+                          progress: Callable[[str], None] | None = None,
                           up: np.ndarray | None = None, bank: TiltBank | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
     (inf for views left out of the calibration), (Q,) clusters.
@@ -159,7 +130,6 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     is compared with the prototype's copy resting on that face (``bank.copy_at``), the same formula applied
     in the copy's frame.
     """
-    from .engine import align_to_prototype
     if len(store.single_object) == 0:
         return np.zeros(0), np.zeros(0, int)
     m = cfg["mine"]
@@ -173,46 +143,65 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     have = np.unique(store.single_object)
     objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
     objs.sort()
-    for i0 in range(0, len(objs), 256):
-        chunk = objs[i0:i0 + 256]
-        xo, wo = feats(store.read_volume_at(chunk))
-        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
-        xs, ws = feats(store.read_single_views(rows_all))
-        for j, obj in enumerate(chunk):
-            k = int(labels[obj])
-            P1, V1 = P[k:k + 1], V[k:k + 1]
-            if up is not None and bank is not None and up[obj, 2] < np.cos(np.deg2rad(IDENTITY_DEG)):
-                Pc, Vc = bank.copy_at(k, up[obj])
-                P1, V1 = Pc[None], Vc[None]
-            Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
-            if n[k] > 1:
-                pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
-                xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
-                den = n[k] * Vk - wa
-                ok = den > 1e-6
-                # (1, C, R, A, H): the weighted sum without the object, over the weight left
-                Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
-                Vk = np.where(ok, den, 0.0) / (n[k] - 1)
-            sel = np.flatnonzero(store.single_object[rows_all] == obj)
-            pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
-            out[rows_all[sel]] = pm.D[:, 0]
+    with bar(progress, "score calibration", total=len(objs), unit="objects") as b:
+        for i0 in range(0, len(objs), 256):
+            _single_view_chunk(store, objs[i0:i0 + 256], feats, P, V, labels, n, scales, out, b.advance, up, bank)
     return out, k_of
 
 
+def _single_view_chunk(store: ObjectStore, chunk: np.ndarray, feats, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                       n: np.ndarray, scales: tuple[float, ...], out: np.ndarray, advance, up: np.ndarray | None = None,
+                       bank: TiltBank | None = None) -> None:
+    """Leave-one-out distances of the single views of the objects ``chunk`` into ``out`` (see the caller)."""
+    from .engine import align_to_prototype
+    xo, wo = feats(store.read_volume_at(chunk))
+    rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+    xs, ws = feats(store.read_single_views(rows_all))
+    for j, obj in enumerate(chunk):
+        k = int(labels[obj])
+        P1, V1 = P[k:k + 1], V[k:k + 1]
+        if up is not None and bank is not None and up[obj, 2] < np.cos(np.deg2rad(IDENTITY_DEG)):
+            Pc, Vc = bank.copy_at(k, up[obj])
+            P1, V1 = Pc[None], Vc[None]
+        Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
+        if n[k] > 1:
+            pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
+            xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+            den = n[k] * Vk - wa
+            ok = den > 1e-6
+            # (1, C, R, A, H): the weighted sum without the object, over the weight left
+            Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+            Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+        sel = np.flatnonzero(store.single_object[rows_all] == obj)
+        pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
+        out[rows_all[sel]] = pm.D[:, 0]
+        advance(1)
+
+
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
-               n_clusters: int | None = None, out_dir: str | Path | None = None,
-               progress: Callable[[str], None] | None = None, executor=None) -> tuple[Library, dict]:
-    """Mine the store and write the library, assignments.csv and gallery.png (beside the library).
+               n_clusters: int | None = None, progress: Callable[[str], None] | None = None,
+               executor=None) -> tuple[Library, dict]:
+    """Mine the store and write the library, and beside it assignments.csv, gallery.png and members/
+    (one sheet of member crops per cluster, :mod:`protomine.mine.members`).
 
     ``executor`` (``protomine.scale.executor``; None = this process, as before) runs the clustering passes,
     the final match and the picture volumes as map-reduces over chunks of objects.
     """
     from .gallery import render_gallery
-    store = ObjectStore(store_path)
+    from .members import write_member_sheets
+    store = open_store(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
-    if progress:
-        progress(f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
+    notices = []
+    lifted = store.config.get("volume")
+    if lifted is not None and lifted != cfg["volume"]:
+        # the volumes were lifted with the store's [volume] settings; the library must record those, or
+        # labelling would lift single views on another grid than its prototypes
+        diff = ", ".join(f"volume.{k}={lifted[k]}" for k in sorted(lifted) if lifted[k] != cfg["volume"].get(k))
+        notices.append(f"{store.path} was ingested with {diff}; the config asks for other [volume] settings, "
+                       "so the store's are used and recorded in the library")
+        cfg = {**cfg, "volume": dict(lifted)}
+    say(progress, f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
     model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
@@ -251,7 +240,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                         for k, counts_k in enumerate(np.bincount(labels, minlength=K))]))
     bank = TiltBank(model.prototypes_, model.prototype_weights_, aspect, scales, grid) if grid is not None else None
     sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales,
-                                       up=np.asarray(model.up_), bank=bank)
+                                       progress=progress, up=np.asarray(model.up_), bank=bank)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
@@ -289,16 +278,21 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "conventions": store.attrs.get("conventions", ""),
                   "tilts": json.dumps((grid or TiltGrid.identity()).to_config()),
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
+    # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
+    alpha = float(cfg["mine"]["unknown_alpha"])
+    attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
+                  "unknown_cut": conformal_cut(match_score(sv_d, single_mu[sv_k], single_sigma[sv_k]), alpha)})
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)
-    out = Path(out_dir) if out_dir else Path(library_path).parent
+    out = Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
     render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"],
                    faces=gallery_faces(vols, protos, grid))
-    write_sidecar(out / "gallery.png", prov)
+    record_outputs([out / "gallery.png"], prov)
+    write_member_sheets(out / "members", lib, store, progress=progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
-                 "k_selection": k_table}
+                 "k_selection": k_table, "notices": notices}
 
 
 def gallery_faces(vols: np.ndarray, protos: dict, grid: TiltGrid | None) -> list | None:
@@ -337,7 +331,7 @@ def world_quaternions(R_obj: np.ndarray, up: np.ndarray) -> np.ndarray:
 
 def write_assignments(path: str | Path, lib: Library) -> None:
     """assignments.csv: object,cluster,yaw_deg,scale,distance,score,qx,qy,qz,qw,face (one row per object;
-    the quaternion as in README "Outputs"), with its provenance sidecar (the library's record)."""
+    the quaternion as in README "Outputs"), listed in its folder's provenance manifest (the library's record)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["object", "cluster", "yaw_deg", "scale", "distance", "score", "qx", "qy", "qz", "qw", "face"])
@@ -348,4 +342,4 @@ def write_assignments(path: str | Path, lib: Library) -> None:
         w.writerow([m["object"][i], k, f"{m['yaw_deg'][i]:.2f}", f"{m['scale'][i]:.4f}",
                     f"{m['distance'][i]:.6g}", f"{m['score'][i]:.4f}", *(f"{v:.6f}" for v in q), int(m["face"][i])])
     write_text(path, buf.getvalue())
-    write_sidecar(path, provenance_of(lib.attrs))
+    record_outputs([path], provenance_of(lib.attrs))
