@@ -201,7 +201,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     symmetry = int(detect_symmetry(X1, W1, np.exp(mu) / 2.0)[0])
     score = np.where(np.isfinite(D), match_score(D, mu, sigma), 0.0)
     # the one-shot prototype's faces: where the objects that fit it rest (face 0 = the example's own)
-    R_obj = rotation_of(grid, tilt, yaw)
+    R_obj = rotation_of(grid or TiltGrid.identity(), tilt, yaw)
     fit_ok = score >= library_cut(library)
     ups, counts, _ = group_faces(R_obj[fit_ok, 2, :], np.zeros(int(fit_ok.sum()), np.int64), 1)
     bank = TiltBank(X1, W1, [aspect], scales, grid) if grid is not None and len(ups[0]) > 1 else None
