@@ -22,6 +22,7 @@ from sklearn.cluster import DBSCAN
 from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_world, depth_to_points, plane_basis
+from .convexity import convex_parts, join_parts, voxel_normals
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
 
@@ -32,6 +33,7 @@ FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x de
 FLYING_TOL_REL = 0.03
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
+NORMAL_RADIUS = 0.7         # x cluster_eps_m: neighbourhood of the voxel normals (small keeps creases sharp)
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
@@ -138,15 +140,24 @@ def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.
     return plane
 
 
+def voxel_means(pts: np.ndarray, size: float, *values: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Voxel centroids (V, 3) of points (M, 3) on a grid of ``size``, and the voxel means of each (M, ...) value."""
+    keys, inv = np.unique(np.floor(pts / size).astype(np.int64), axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    count = np.bincount(inv, minlength=len(keys)).astype(np.float64)
+    out = []
+    for v in (pts,) + values:
+        acc = np.zeros((len(keys),) + v.shape[1:])
+        np.add.at(acc, inv, v)
+        out.append(acc / count.reshape((-1,) + (1,) * (v.ndim - 1)))
+    return tuple(out)
+
+
 def voxel_groups(pts: np.ndarray, eps: float) -> tuple[np.ndarray, np.ndarray]:
     """Euclidean groups of points (M, 3): voxel centroids (V, 3) at eps / 3 and their DBSCAN labels (V,)."""
     if len(pts) == 0:
         return np.zeros((0, 3)), np.zeros(0, int)
-    keys, inv = np.unique(np.floor(pts / (eps / 3.0)).astype(np.int64), axis=0, return_inverse=True)
-    inv = inv.reshape(-1)
-    vox = np.zeros((len(keys), 3))
-    np.add.at(vox, inv, pts)
-    vox /= np.bincount(inv)[:, None]
+    (vox,) = voxel_means(pts, eps / 3.0)
     return vox, DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
 
 
@@ -273,7 +284,16 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     pts = np.concatenate([fd.points[s] for fd, s in zip(frames, above_sel)])
     if len(pts) == 0:
         return []
-    vox, lab = voxel_groups(pts, eps)
+    # unit vectors from each point to the camera that saw it: they orient the surface normals outwards
+    views = np.concatenate([fd.cam_to_world[:3, 3] - fd.points[s] for fd, s in zip(frames, above_sel)])
+    views /= np.maximum(np.linalg.norm(views, axis=1, keepdims=True), 1e-12)
+    vox, views = voxel_means(pts, eps / 3.0, views)
+    lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
+    if c["concave_deg"] < 180.0:
+        normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
+        parts, pairs = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
+        lab = join_parts(parts, pairs, plane.height(vox), rest_tol=REST_TOL_M,
+                         min_voxels=c["cluster_min_points"])
     lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):
@@ -335,11 +355,17 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
         return i
 
     for i in range(n):
+        # one host per group (the one covering most of it): a crumb between two touching objects lies in
+        # both their hulls and must not glue them together
+        best, best_share = -1, FOOTPRINT_OVERLAP
         for j in range(n):
             if i == j or hulls[j] is None or len(xy[i]) > len(xy[j]):
                 continue
-            if np.mean(hulls[j].find_simplex(xy[i]) >= 0) >= FOOTPRINT_OVERLAP:
-                parent[root(i)] = root(j)
+            share = float(np.mean(hulls[j].find_simplex(xy[i]) >= 0))
+            if share >= best_share:
+                best, best_share = j, share
+        if best >= 0:
+            parent[root(i)] = root(best)
     roots = np.array([root(i) for i in range(n)])
     _, new = np.unique(roots, return_inverse=True)
     return np.where(lab >= 0, new[np.maximum(lab, 0)], -1)
