@@ -7,6 +7,11 @@ The binding contract is shared/spec/capture-format.md.  In short::
     <capture>/depth/<id>.png 16-bit greyscale; metres = value / depth_scale; 0 = no reading
     <capture>/masks/<id>.png optional 16-bit greyscale instance ids, 0 = no object
 
+The reader also accepts, beyond the format (what real rigs write): colour as ``rgb/<id>.jpg`` (or .jpeg)
+when no PNG is there, 8-bit greyscale masks (ids 1..255), and a
+depth image of another size than the colour image with the same aspect ratio (a registered depth at its own
+resolution: resampled to the colour image's grid, whose intrinsics the capture gives).
+
 Every problem raises :class:`protomine.errors.InputError` naming the file and the field.
 """
 from __future__ import annotations
@@ -62,7 +67,12 @@ class Capture:
         return self.path.name
 
     def frame_file(self, kind: str, frame_id: str) -> Path:
-        return self.path / kind / f"{frame_id}.png"
+        p = self.path / kind / f"{frame_id}.png"
+        if kind == "rgb" and not p.is_file():
+            for ext in (".jpg", ".jpeg"):
+                if (alt := p.with_suffix(ext)).is_file():
+                    return alt
+        return p
 
     def rgb(self, frame_id: str) -> np.ndarray:
         """(H, W, 3) uint8."""
@@ -71,7 +81,7 @@ class Capture:
     def depth(self, frame_id: str) -> np.ndarray:
         """(H, W) float64 metres, 0 = no reading."""
         raw = _read_png(self.frame_file("depth", frame_id), "depth", self.intrinsics)
-        return raw.astype(np.float64) / self.depth_scale
+        return resample_depth(raw, (self.intrinsics.height, self.intrinsics.width)).astype(np.float64) / self.depth_scale
 
     def mask(self, frame_id: str) -> np.ndarray | None:
         """(H, W) int32 instance ids, or None when the capture has no masks."""
@@ -175,10 +185,30 @@ def read_capture(folder: str | Path, *, check_images: bool = True) -> Capture:
     return cap
 
 
-_EXPECT = {"rgb": ("8-bit RGB", {"RGB"}), "depth": ("16-bit greyscale", {"I;16", "I;16B", "I"}), "mask": ("16-bit greyscale", {"I;16", "I;16B", "I"})}
+_EXPECT = {"rgb": ("8-bit RGB", {"RGB"}), "depth": ("16-bit greyscale", {"I;16", "I;16B", "I"}),
+           "mask": ("16-bit (or 8-bit) greyscale", {"I;16", "I;16B", "I", "L"})}
 
 
-def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
+def resample_depth(depth: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """A depth image (h, w) on the pixel grid of another size (H, W) with the same field of view.
+
+    Nearest neighbour (averaging would invent depths between an object and its background): pixel centre u of
+    the target grid sits at (u + 0.5) w / W - 0.5 on the source grid, which is what scaling the intrinsics
+    (fx, cx + 0.5) by w / W means.  A depth of the target size is returned unchanged.
+    """
+    h, w = depth.shape
+    H, W = shape
+    if (h, w) == (H, W):
+        return depth
+    v = np.clip(np.floor((np.arange(H) + 0.5) * h / H).astype(int), 0, h - 1)
+    u = np.clip(np.floor((np.arange(W) + 0.5) * w / W).astype(int), 0, w - 1)
+    return depth[v[:, None], u[None, :]]
+
+
+def read_image(path: str | Path, kind: str) -> np.ndarray:
+    """Read one image as ``kind`` ("rgb": (H, W, 3) uint8, PNG or JPEG; "depth": (H, W) 16-bit; "mask":
+    (H, W) 16- or 8-bit), or raise InputError naming the file."""
+    path = Path(path)
     want, modes = _EXPECT[kind]
     try:
         with Image.open(path) as im:
@@ -188,7 +218,7 @@ def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
     except FileNotFoundError:
         raise InputError(path, kind, f"{kind} image is missing") from None
     except (OSError, SyntaxError, ValueError) as e:
-        raise InputError(path, kind, f"cannot read PNG ({e})") from None
+        raise InputError(path, kind, f"cannot read image ({e})") from None
     if mode not in modes:
         raise InputError(path, kind, f"expected {want}, got PIL mode {mode} with shape {arr.shape}")
     if kind == "rgb":
@@ -199,8 +229,20 @@ def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
             raise InputError(path, kind, f"expected {want} (H, W), got shape {arr.shape}")
         if mode == "I" and (arr.min(initial=0) < 0 or arr.max(initial=0) > 65535):
             raise InputError(path, kind, f"expected {want} values in [0, 65535]")
-    if arr.shape[:2] != (intr.height, intr.width):
-        raise InputError(path, "size", f"expected {intr.width}x{intr.height} (intrinsics), got {arr.shape[1]}x{arr.shape[0]}")
+    return arr
+
+
+def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
+    arr = read_image(path, kind)
+    h, w = arr.shape[:2]
+    if kind == "depth" and (h, w) != (intr.height, intr.width):
+        # a registered depth at its own resolution: same field of view, so the same aspect ratio
+        if abs(w * intr.height - h * intr.width) > max(w, h, intr.width, intr.height):
+            raise InputError(path, "size", f"expected {intr.width}x{intr.height} (intrinsics) or the same aspect "
+                             f"ratio, got {w}x{h}")
+        return arr
+    if (h, w) != (intr.height, intr.width):
+        raise InputError(path, "size", f"expected {intr.width}x{intr.height} (intrinsics), got {w}x{h}")
     return arr
 
 

@@ -20,6 +20,7 @@ COMMANDS: list[tuple[str, str]] = [
     ("ingest.command", "ingest"),
     ("mine.command", "mine"),
     ("scenes.command", "scenes"),
+    ("importers.command", "import_cmd"),
     ("audit.command", "audit"),
     ("label.command", "label"),
     ("curate.command", "tag"),
