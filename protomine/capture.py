@@ -189,20 +189,31 @@ _EXPECT = {"rgb": ("8-bit RGB", {"RGB"}), "depth": ("16-bit greyscale", {"I;16",
            "mask": ("16-bit (or 8-bit) greyscale", {"I;16", "I;16B", "I", "L"})}
 
 
-def resample_depth(depth: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+def resample_depth(depth: np.ndarray, shape: tuple[int, int], *, smooth_rel: float = 0.02) -> np.ndarray:
     """A depth image (h, w) on the pixel grid of another size (H, W) with the same field of view.
 
-    Nearest neighbour (averaging would invent depths between an object and its background): pixel centre u of
-    the target grid sits at (u + 0.5) w / W - 0.5 on the source grid, which is what scaling the intrinsics
-    (fx, cx + 0.5) by w / W means.  A depth of the target size is returned unchanged.
+    Pixel centre u of the target grid sits at (u + 0.5) w / W - 0.5 on the source grid, which is what scaling
+    the intrinsics (fx, cx + 0.5) by W / w means.  Bilinear where the four source readings around a target
+    pixel exist and agree within ``smooth_rel`` x depth (a smooth surface: nearest neighbour would leave
+    terraces there), nearest neighbour elsewhere (averaging across an edge would invent depths between an
+    object and its background).  A depth of the target size is returned unchanged.
     """
     h, w = depth.shape
     H, W = shape
     if (h, w) == (H, W):
         return depth
-    v = np.clip(np.floor((np.arange(H) + 0.5) * h / H).astype(int), 0, h - 1)
-    u = np.clip(np.floor((np.arange(W) + 0.5) * w / W).astype(int), 0, w - 1)
-    return depth[v[:, None], u[None, :]]
+    y = np.clip((np.arange(H) + 0.5) * h / H - 0.5, 0, h - 1)
+    x = np.clip((np.arange(W) + 0.5) * w / W - 0.5, 0, w - 1)
+    y0, x0 = np.floor(y).astype(int), np.floor(x).astype(int)
+    y1, x1 = np.minimum(y0 + 1, h - 1), np.minimum(x0 + 1, w - 1)
+    fy, fx = (y - y0)[:, None], (x - x0)[None, :]
+    d = depth.astype(np.float64)
+    q = [d[y0][:, x0], d[y0][:, x1], d[y1][:, x0], d[y1][:, x1]]
+    bil = (q[0] * (1 - fx) + q[1] * fx) * (1 - fy) + (q[2] * (1 - fx) + q[3] * fx) * fy
+    lo, hi = np.minimum.reduce(q), np.maximum.reduce(q)
+    smooth = (lo > 0) & (hi - lo <= smooth_rel * hi)
+    near = d[np.where(fy < 0.5, y0[:, None], y1[:, None]), np.where(fx < 0.5, x0[None, :], x1[None, :])]
+    return np.where(smooth, bil, near).astype(depth.dtype) if depth.dtype.kind == "f" else np.where(smooth, np.rint(bil), near).astype(depth.dtype)
 
 
 def read_image(path: str | Path, kind: str) -> np.ndarray:

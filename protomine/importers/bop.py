@@ -103,16 +103,15 @@ def read_bop_scene(src: Path) -> ImportedCapture:
         for i in ids:
             poses[i] = invert_rigid(_rigid(cam_path, f"{i}.cam_R_w2c/cam_t_w2c", cams[i]["cam_R_w2c"], cams[i]["cam_t_w2c"]))
     else:
-        anchor = _anchor_object(anns)
-        if anchor is None:
-            raise InputError(cam_path, "cam_R_w2c", "missing, and no annotated object appears once in two or more "
-                             "images to derive the camera poses from")
+        found = _anchor_object(anns)
+        if found is None:
+            raise InputError(cam_path, "cam_R_w2c", "missing, and no image has an object annotated once to derive "
+                             "the camera poses from")
+        anchor, first = found
+        poses = _static_poses(anns, anchor, first)
         for i in ids:
-            m2c = [T for _, o, T in anns[i] if o == anchor]
-            if len(m2c) == 1:
-                poses[i] = invert_rigid(m2c[0])          # camera -> model frame (the world)
-            else:
-                cap.skipped.append((f"image {i}", f"object {anchor} (the world frame) not annotated once"))
+            if i not in poses:
+                cap.skipped.append((f"image {i}", f"object {anchor} (the world frame) not found in it"))
         cap.notes.append(f"no cam_R_w2c: camera poses derived from object {anchor}'s model-to-camera poses "
                          f"(its model frame is the world; the scene is taken as static)")
         cap.blame.update({k: (gt_path, "cam_R_m2c/cam_t_m2c") for k in ("direction", "axes", "poses")})
@@ -159,16 +158,46 @@ def read_bop_scene(src: Path) -> ImportedCapture:
     return cap
 
 
-def _anchor_object(anns: dict) -> int | None:
-    """The obj_id annotated exactly once in the most images (ties: the smallest id)."""
-    count: dict[int, int] = {}
-    for entries in anns.values():
+def _anchor_object(anns: dict) -> tuple[int, str] | None:
+    """(obj_id, image) of the first image with an object annotated exactly once: of those objects, the one
+    seen in the most images (ties: the smallest id)."""
+    for i, entries in anns.items():
         objs = [o for _, o, _ in entries]
-        for o in set(objs):
-            if objs.count(o) == 1:
-                count[o] = count.get(o, 0) + 1
-    good = [(c, -o) for o, c in count.items() if c >= 2]
-    return -max(good)[1] if good else None
+        once = [o for o in objs if objs.count(o) == 1]
+        if once:
+            seen = {o: sum(any(a[1] == o for a in e) for e in anns.values()) for o in once}
+            return min(once, key=lambda o: (-seen[o], o)), i
+    return None
+
+
+def _static_poses(anns: dict, anchor: int, first: str) -> dict[str, np.ndarray]:
+    """cam_to_world per image with the anchor object's model frame as the world (a static scene).
+
+    In image ``first`` the anchor is annotated once.  In another image it may be annotated several times
+    (more instances of that object): the annotation whose camera pose puts most of the image's other objects
+    where earlier images saw them is the anchor instance.
+    """
+    known: list[tuple[int, np.ndarray]] = []
+    poses: dict[str, np.ndarray] = {}
+    for i in [first] + [i for i in anns if i != first]:
+        entries = anns[i]
+        best, best_score = None, -1
+        for _, obj, m2c in entries:
+            if obj != anchor:
+                continue
+            c2w = invert_rigid(m2c)
+            pos = [(o, (c2w @ T)[:3, 3]) for _, o, T in entries]
+            score = sum(any(o == ko and np.linalg.norm(p - kp) < SAME_PLACE_M for ko, kp in known) for o, p in pos)
+            if score > best_score:
+                best, best_score = c2w, score
+        if best is None or (known and best_score < 2 and sum(o == anchor for _, o, _ in entries) > 1):
+            continue                       # anchor absent, or several candidates and none confirmed
+        poses[i] = best
+        for _, o, T in entries:
+            p = (best @ T)[:3, 3]
+            if not any(o == ko and np.linalg.norm(p - kp) < SAME_PLACE_M for ko, kp in known):
+                known.append((o, p))
+    return poses
 
 
 def _instances(anns: dict, poses: dict) -> dict[str, list[int]]:

@@ -13,11 +13,12 @@ Euclidean groups (DBSCAN, -1 = noise).  Nothing here assumes a world axis is up:
    convex (Stein et al.'s threshold beta against sensor noise).  Connected components of the remaining graph
    are the convex parts.  Two objects that touch meet in a concave crease all around their contact, so they
    fall apart; a part is only cut off when a closed ring of concave connections surrounds it.
-3. Parts back into objects: an object stands on the support plane.  A part that does not reach the plane (a
-   handle, a knob, pegs on a post, a lid) is a piece of the object it hangs on: it joins the neighbour part it
-   shares the most connections with (a lid meets its own walls all around, a neighbour it leans on at a few
-   points).  Parts too small to be an object join their most connected neighbour too.  What stands on the
-   plane on its own stays its own object (parts standing on each other's footprint are joined later, by
+3. Parts back into objects: an object can stand on the support plane by itself (its centre of mass lies over
+   its support polygon).  A part that cannot (a handle, a knob, pegs on a post, a lid, a tripod's slanted
+   leg, a sliver cut from a wall) is a piece of the object it hangs on: it joins the neighbour part it shares
+   the most close voxel pairs with (a lid meets its own walls all around, a neighbour it leans on at a few
+   points).  Parts too small to be an object join their most connected neighbour too.  What stands on its
+   own stays its own object (parts standing on another's footprint are joined later, by
    ``proposals._merge_overlapping_footprints``).
 """
 from __future__ import annotations
@@ -25,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
-from scipy.spatial import cKDTree
+from scipy.spatial import ConvexHull, QhullError, cKDTree
 
 NORMAL_NEIGHBOURS = 16   # PCA neighbourhood size for voxel normals
 
@@ -65,37 +66,76 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     return np.where(labels >= 0, comp, -1), pairs
 
 
-def join_parts(parts: np.ndarray, pairs: np.ndarray, heights: np.ndarray, *, rest_tol: float,
-               min_voxels: int) -> np.ndarray:
-    """Objects (V,) relabelled 0..n-1 from convex parts (V,), their voxel adjacency (E, 2) and the voxels'
-    heights above the support plane (V,)."""
+def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, inset: float) -> bool:
+    """Whether a part could stand on the plane by itself: its centre of mass (the mean of its points (M, 2)
+    in plane coordinates) lies inside the convex hull of its points lower than ``support_band`` (its support
+    polygon), at least ``inset`` from the hull's edge.  Legs, handles, lids and slivers cut from a wall do
+    not; an object does."""
+    foot = xy[heights < support_band]
+    if len(foot) < 3:
+        return False
+    try:
+        hull = ConvexHull(foot)
+    except QhullError:
+        return False
+    com = xy.mean(axis=0)
+    # hull.equations: rows (a, b, c) with a x + b y + c <= 0 inside, (a, b) a unit outward normal
+    depth = -(hull.equations[:, :2] @ com + hull.equations[:, 2])
+    return bool(depth.min() >= inset)
+
+
+def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: np.ndarray, *, link_radius: float,
+               reach: float, support_band: float, inset: float, min_voxels: int) -> np.ndarray:
+    """Objects (V,) relabelled 0..n-1 from convex parts (V,) of voxels (V, 3) with in-plane coordinates
+    (V, 2) and heights above the support plane (V,).
+
+    A part that cannot stand alone (``stands_alone``) or is a crumb (< min_voxels) joins the part it shares
+    the most voxel pairs closer than ``link_radius`` with (none: the nearest part within ``reach``); parts
+    are visited from the smallest up, so a
+    tripod's legs and top, or a jug's handle, end up in one object while two objects that each stand on
+    their own stay apart however they touch.
+    """
     ids = np.unique(parts[parts >= 0])
     if len(ids) < 2:
         return _relabel(parts)
-    a, b = parts[pairs[:, 0]], parts[pairs[:, 1]]
+    ok = parts >= 0
+    idx = np.flatnonzero(ok)
+    pairs = cKDTree(points[idx]).query_pairs(link_radius, output_type="ndarray")
+    a, b = parts[idx[pairs[:, 0]]], parts[idx[pairs[:, 1]]]
     cross = a != b
     n = int(ids.max()) + 1
-    links = coo_matrix((np.ones(int(cross.sum())), (a[cross], b[cross])), shape=(n, n)).toarray()
-    links = links + links.T                                                      # (n, n) shared connections
-    size = np.bincount(parts[parts >= 0], minlength=n)
-    low = np.full(n, np.inf)
-    for p in ids:
-        low[p] = np.percentile(heights[parts == p], 2)
-    parent = np.arange(n)
-
-    def root(x: int) -> int:
-        while parent[x] != x:
-            parent[x] = parent[parent[x]]
-            x = parent[x]
-        return x
-
-    for p in ids:
-        if not links[p].any():
-            continue
-        if size[p] < min_voxels or low[p] > rest_tol:     # a crumb, or a part hanging on a neighbour
-            parent[root(p)] = root(int(links[p].argmax()))
-    roots = np.array([root(int(p)) if p >= 0 else -1 for p in range(n)])
-    return _relabel(np.where(parts >= 0, roots[np.maximum(parts, 0)], -1))
+    links = coo_matrix((np.ones(int(cross.sum())), (a[cross], b[cross])), shape=(n, n)).tocsr()
+    links = (links + links.T).tocsr()                                            # (n, n) shared pairs
+    size = np.bincount(parts[ok], minlength=n)
+    group = np.arange(n)                                  # part -> group id (a part id)
+    voxels = {int(p): np.flatnonzero(parts == p) for p in ids}
+    for _ in range(20):                                   # until every group stands alone or has no neighbour
+        changed = False
+        for g in sorted(set(group[ids].tolist()), key=lambda q: (size[group == q].sum(), q)):
+            mem = np.flatnonzero(group == g)
+            if not len(mem):
+                continue
+            sel = np.concatenate([voxels[int(p)] for p in mem if int(p) in voxels])
+            if len(sel) >= min_voxels and stands_alone(xy[sel], heights[sel], support_band=support_band, inset=inset):
+                continue
+            w = np.asarray(links[mem].sum(axis=0)).ravel()                 # (n,) pairs to every part
+            per_group = np.bincount(group, weights=w, minlength=n)
+            per_group[g] = 0
+            if per_group.max() > 0:
+                target = int(per_group.argmax())
+            else:                 # nothing within link_radius (a thin leg's sparse middle): nearest within reach
+                others = np.flatnonzero(ok & (group[np.maximum(parts, 0)] != g))
+                if not len(others):
+                    continue
+                d, j = cKDTree(points[others]).query(points[sel], distance_upper_bound=reach)
+                if not np.isfinite(d).any():
+                    continue
+                target = int(group[parts[others[j[np.argmin(d)]]]])
+            group[group == g] = target
+            changed = True
+        if not changed:
+            break
+    return _relabel(np.where(ok, group[np.maximum(parts, 0)], -1))
 
 
 def _relabel(lab: np.ndarray) -> np.ndarray:

@@ -34,6 +34,8 @@ FLYING_TOL_REL = 0.03
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
 NORMAL_RADIUS = 0.7         # x cluster_eps_m: neighbourhood of the voxel normals (small keeps creases sharp)
+SUPPORT_BAND_M = 0.025      # points this low over the plane form an object's support polygon
+STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far inside it to stand alone
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
@@ -291,9 +293,9 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
-        parts, pairs = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
-        lab = join_parts(parts, pairs, plane.height(vox), rest_tol=REST_TOL_M,
-                         min_voxels=c["cluster_min_points"])
+        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
+        lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
+                         support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"])
     lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):
