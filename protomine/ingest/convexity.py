@@ -29,6 +29,7 @@ from scipy.sparse.csgraph import connected_components
 from scipy.spatial import ConvexHull, QhullError, cKDTree
 
 NORMAL_NEIGHBOURS = 16   # PCA neighbourhood size for voxel normals
+UNDER_MIN = 10           # voxels under a part's footprint that make a neighbour its support
 
 
 def voxel_normals(points: np.ndarray, views: np.ndarray, labels: np.ndarray, radius: float) -> np.ndarray:
@@ -66,12 +67,15 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     return np.where(labels >= 0, comp, -1), pairs
 
 
-def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, inset: float) -> bool:
+def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, inset: float,
+                 extra: np.ndarray | None = None) -> bool:
     """Whether a part could stand on the plane by itself: its centre of mass (the mean of its points (M, 2)
     in plane coordinates) lies inside the convex hull of its points lower than ``support_band`` (its support
     polygon), at least ``inset`` from the hull's edge.  Legs, handles, lids and slivers cut from a wall do
-    not; an object does."""
+    not; an object does.  extra: more support points (K, 2) (its base seen only below the grouping margin)."""
     foot = xy[heights < support_band]
+    if extra is not None and len(extra):
+        foot = np.concatenate([foot, extra])
     if len(foot) < 3:
         return False
     try:
@@ -85,7 +89,8 @@ def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, in
 
 
 def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: np.ndarray, *, link_radius: float,
-               reach: float, support_band: float, inset: float, min_voxels: int) -> np.ndarray:
+               reach: float, support_band: float, inset: float, min_voxels: int,
+               low: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """Objects (V,) relabelled 0..n-1 from convex parts (V,) of voxels (V, 3) with in-plane coordinates
     (V, 2) and heights above the support plane (V,).
 
@@ -94,6 +99,10 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     are visited from the smallest up, so a
     tripod's legs and top, or a jug's handle, end up in one object while two objects that each stand on
     their own stay apart however they touch.
+
+    low: voxels of the band under the grouping margin (points (L, 3), in-plane coordinates (L, 2), connected
+    component (L,)): a thin base disc is only seen there.  The components a group touches (within
+    link_radius / 2) add to its support polygon.
     """
     ids = np.unique(parts[parts >= 0])
     if len(ids) < 2:
@@ -116,12 +125,16 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
             if not len(mem):
                 continue
             sel = np.concatenate([voxels[int(p)] for p in mem if int(p) in voxels])
-            if len(sel) >= min_voxels and stands_alone(xy[sel], heights[sel], support_band=support_band, inset=inset):
+            if len(sel) >= min_voxels and stands_alone(xy[sel], heights[sel], support_band=support_band, inset=inset,
+                                                       extra=_low_support(points[sel], low, link_radius / 2)):
                 continue
             w = np.asarray(links[mem].sum(axis=0)).ravel()                 # (n,) pairs to every part
             per_group = np.bincount(group, weights=w, minlength=n)
             per_group[g] = 0
-            if per_group.max() > 0:
+            under = _support_under(xy, heights, sel, group[np.maximum(parts, 0)], ok, g, n)
+            if under.max() > 0:            # what it rests on: a lid on its walls, a flange on its core
+                target = int(under.argmax())
+            elif per_group.max() > 0:
                 target = int(per_group.argmax())
             else:                 # nothing within link_radius (a thin leg's sparse middle): nearest within reach
                 others = np.flatnonzero(ok & (group[np.maximum(parts, 0)] != g))
@@ -136,6 +149,44 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
         if not changed:
             break
     return _relabel(np.where(ok, group[np.maximum(parts, 0)], -1))
+
+
+def _low_support(pts: np.ndarray, low, radius: float) -> np.ndarray | None:
+    """In-plane coordinates (K, 2) of the low-band components touching points (M, 3)."""
+    if low is None or not len(low[0]):
+        return None
+    lp, lxy, comp = low
+    d, j = cKDTree(lp).query(pts, distance_upper_bound=radius)
+    hit = np.unique(comp[j[np.isfinite(d)]])
+    if not len(hit):
+        return None
+    # only as far out as 1.5 x the group's own reach: on a noisy table the band's components can run far
+    sup = lp[np.isin(comp, hit)]
+    c = pts.mean(axis=0)
+    r = np.linalg.norm(pts - c, axis=1).max()
+    return lxy[np.isin(comp, hit)][np.linalg.norm(sup - c, axis=1) <= 1.5 * r]
+
+
+def _support_under(xy: np.ndarray, heights: np.ndarray, sel: np.ndarray, vox_group: np.ndarray, ok: np.ndarray,
+                   g: int, n: int) -> np.ndarray:
+    """(n,) per group: voxels lying under the footprint of the voxels ``sel`` (inside their 2-D convex hull
+    in the plane, lower than their lowest point).  An object touching a part from the side has (almost) none
+    there; the part it rests on has many."""
+    from scipy.spatial import Delaunay
+    foot = xy[sel]
+    out = np.zeros(n)
+    try:
+        tri = Delaunay(foot[ConvexHull(foot).vertices]) if len(foot) >= 4 else None
+    except QhullError:
+        tri = None
+    if tri is None:
+        return out
+    cand = np.flatnonzero(ok & (vox_group != g) & (heights < heights[sel].min()))
+    if len(cand):
+        inside = cand[tri.find_simplex(xy[cand]) >= 0]
+        out += np.bincount(vox_group[inside], minlength=n)
+    out[out < UNDER_MIN] = 0
+    return out
 
 
 def _relabel(lab: np.ndarray) -> np.ndarray:

@@ -36,6 +36,9 @@ NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stay
 NORMAL_RADIUS = 0.7         # x cluster_eps_m: neighbourhood of the voxel normals (small keeps creases sharp)
 SUPPORT_BAND_M = 0.025      # points this low over the plane form an object's support polygon
 STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far inside it to stand alone
+LOW_FLOOR_M = 0.002         # the low band (grown into objects) starts this high over the plane ...
+LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy sensors
+LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
@@ -295,7 +298,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
-                         support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"])
+                         support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
+                         low=_low_band(frames, plane, cfg, eps))
     lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):
@@ -315,17 +319,86 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     tree_lab = np.concatenate([np.full(len(t[0]), i) for i, t in enumerate(clusters)])
     tree = cKDTree(tree_pts)
     props = [Proposal(f"{cap.name}/p{i:03d}", f"p{i:03d}", fr, centre, 0, {}) for i, (_, fr, centre) in enumerate(clusters)]
+    floor = low_floor(plane)
+    grown: list[list[np.ndarray]] = [[] for _ in props]
     for fd, s in zip(frames, above_sel):
         d, j = tree.query(fd.points[s], distance_upper_bound=eps)
         ok = np.isfinite(d)
-        lab_f = tree_lab[j[ok]]
-        pix = fd.pixels[s][ok]
+        labels = np.full(fd.depth.size, -1)
+        labels[fd.pixels[s][ok]] = tree_lab[j[ok]]
+        h = np.zeros(fd.depth.size)
+        h[fd.pixels] = plane.height(fd.points)
+        steady = np.zeros(fd.depth.size, bool)
+        steady[fd.pixels] = fd.steady
+        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, (h > floor).reshape(fd.depth.shape)
+                                    & steady.reshape(fd.depth.shape), LOW_GROW_PIXELS).reshape(-1)
+        point_of = np.full(fd.depth.size, -1)
+        point_of[fd.pixels] = np.arange(len(fd.pixels))
         for i, p in enumerate(props):
-            sel = lab_f == i
-            if sel.any():
-                p.pixels[fd.id] = pix[sel]
-                p.n_points += int(sel.sum())
-    return [p for p in props if p.n_points > 0]
+            pix = np.flatnonzero(labels == i)
+            if len(pix):
+                p.pixels[fd.id] = pix
+                p.n_points += len(pix)
+                grown[i].append(fd.points[point_of[pix]])
+    out = []
+    for p, g, (vx, _, _) in zip(props, grown, clusters):
+        if p.n_points == 0:
+            continue
+        # the frame from every point the object holds now, its low band included (a base disc widens the
+        # footprint); only points within reach of its grouped voxels, so no stray table pixel moves it
+        pts = np.concatenate(g)
+        near = cKDTree(vx).query(pts, distance_upper_bound=3 * eps)[0] < np.inf
+        p.frame, p.center_world = object_frame(np.concatenate([vx, pts[near]]), plane)
+        out.append(p)
+    return out
+
+
+def low_floor(plane: PlaneFit) -> float:
+    """Height over the plane from which a reading is not the table's own noise (the low band's floor)."""
+    return max(LOW_FLOOR_M, LOW_FLOOR_SIGMA * plane.residual_m)
+
+
+def _low_band(frames: list[FrameData], plane: PlaneFit, cfg: dict, eps: float):
+    """Voxels (L, 3) of the readings between the noise floor and the grouping margin, their in-plane
+    coordinates (L, 2) and connected components (L,) (neighbours within eps / 2)."""
+    pts = np.concatenate([fd.points[(plane.height(fd.points) > low_floor(plane))
+                                    & (plane.height(fd.points) <= above_plane_margin(plane, cfg)) & fd.steady]
+                          for fd in frames])
+    if len(pts) == 0:
+        return None
+    (vox,) = voxel_means(pts, eps / 3.0)
+    pairs = cKDTree(vox).query_pairs(eps / 2, output_type="ndarray")
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+    g = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(len(vox), len(vox)))
+    comp = connected_components(g, directed=False)[1]
+    return vox, vox @ plane_basis(plane.normal)[:2].T, comp
+
+
+def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, steps: int) -> np.ndarray:
+    """Object labels (H, W) (-1 = none) grown into the pixels of ``band`` (H, W) bool (readings between the
+    plane's noise floor and the grouping margin: a base disc, the lower edge of a lying part), one 4-neighbour
+    ring per step, only across continuous depth (|dz| <= FLYING_TOL_M or FLYING_TOL_REL x z), at most
+    ``steps`` rings.  The table itself lies below the band, so growth stops at the object's rim."""
+    lab = labels.copy()
+    free = band & (lab < 0) & (depth > 0)
+    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * depth)
+    for _ in range(steps):
+        new = np.full_like(lab, -1)
+        for axis, shift in ((0, 1), (0, -1), (1, 1), (1, -1)):
+            nb = np.roll(lab, shift, axis=axis)
+            nd = np.roll(depth, shift, axis=axis)
+            edge = np.zeros_like(free)
+            sl = [slice(None)] * 2
+            sl[axis] = slice(0, 1) if shift == 1 else slice(-1, None)
+            edge[tuple(sl)] = True                       # np.roll wraps around: not a neighbour
+            take = free & (new < 0) & (nb >= 0) & ~edge & (np.abs(nd - depth) <= tol)
+            new[take] = nb[take]
+        if not (new >= 0).any():
+            break
+        lab = np.where(new >= 0, new, lab)
+        free &= new < 0
+    return lab
 
 
 def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit) -> np.ndarray:
