@@ -21,7 +21,7 @@ from sklearn.cluster import DBSCAN
 
 from ..capture import Capture
 from ..errors import InputError
-from ..geometry import camera_to_world, depth_to_points, plane_basis
+from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from .convexity import convex_parts, join_parts, voxel_normals
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
@@ -31,6 +31,7 @@ FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1
 DBSCAN_MIN_SAMPLES = 5
 FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
 FLYING_TOL_REL = 0.03
+FREE_SPACE_VOTES = 2         # other views that must see through a reading to drop it
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
 NORMAL_RADIUS = 0.7         # x cluster_eps_m: neighbourhood of the voxel normals (small keeps creases sharp)
@@ -114,6 +115,41 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
         out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx, steady))
         if progress:
             progress(f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
+    for fd, bad in zip(out, free_space_violations(out, K)):
+        fd.steady &= ~bad
+    return out
+
+
+def free_space_violations(frames: list[FrameData], K: np.ndarray) -> list[np.ndarray]:
+    """Per frame (M,) bool: points that other views see through.
+
+    A reading between an object and its background (a flying pixel at a depth edge, a multipath ghost) lies
+    where other cameras look past it: projected into another frame it falls in front of everything that frame
+    saw around that pixel (3x3 nearest reading, so a thin part one pixel off is not at risk) by more than
+    FLYING_TOL_M (or FLYING_TOL_REL x depth).  Seen through from FREE_SPACE_VOTES other frames (or from every
+    other frame when there are fewer), it is dropped.
+    """
+    from scipy.ndimage import minimum_filter
+    n = len(frames)
+    if n < 2:
+        return [np.zeros(len(fd.pixels), bool) for fd in frames]
+    nearest = [minimum_filter(np.where(fd.depth > 0, fd.depth, np.inf), size=3) for fd in frames]
+    need = min(FREE_SPACE_VOTES, n - 1)
+    out = []
+    for i, fd in enumerate(frames):
+        votes = np.zeros(len(fd.pixels), int)
+        for j, other in enumerate(frames):
+            if i == j:
+                continue
+            uv, z = camera_to_pixel(world_to_camera(fd.points, other.cam_to_world), K)
+            h, w = other.depth.shape
+            u, v = np.rint(uv[:, 0]).astype(int), np.rint(uv[:, 1]).astype(int)
+            inside = (z > 0) & (u >= 0) & (u < w) & (v >= 0) & (v < h)
+            seen = np.full(len(z), np.inf)
+            seen[inside] = nearest[j][v[inside], u[inside]]
+            tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * z)
+            votes += (np.isfinite(seen) & (z < seen - tol)).astype(int)
+        out.append(votes >= need)
     return out
 
 
@@ -292,14 +328,15 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     # unit vectors from each point to the camera that saw it: they orient the surface normals outwards
     views = np.concatenate([fd.cam_to_world[:3, 3] - fd.points[s] for fd, s in zip(frames, above_sel)])
     views /= np.maximum(np.linalg.norm(views, axis=1, keepdims=True), 1e-12)
-    vox, views = voxel_means(pts, eps / 3.0, views)
+    rgbs = np.concatenate([fd.rgb.reshape(-1, 3)[fd.pixels[s]] for fd, s in zip(frames, above_sel)]).astype(np.float64)
+    vox, views, colours = voxel_means(pts, eps / 3.0, views, rgbs)
     lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
-                         low=_low_band(frames, plane, cfg, eps))
+                         low=_low_band(frames, plane, cfg, eps), colours=colours)
     lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):
