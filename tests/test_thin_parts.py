@@ -39,8 +39,7 @@ def _capture(folder, kinds, rng, touching):
     shapes = [peg_post(k) for k in kinds]
     yaws = rng.uniform(0, 360, len(kinds))
     if touching:
-        from types import SimpleNamespace
-        pos = place_touching([SimpleNamespace(shape=s) for s in shapes], yaws, rng)
+        pos = place_touching(shapes, yaws, rng)
     else:
         pos = [(0.1 * (i % 2) - 0.05, 0.1 * (i // 2) - 0.05) for i in range(len(kinds))]
     cols = [tuple(rng.uniform(0.2, 0.9, 3)) for _ in kinds]
