@@ -7,7 +7,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from
+from ..cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
 from ..errors import InputError
 from .convert import import_sources
 
@@ -41,7 +41,8 @@ def import_cmd(
     layout: Annotated[Layout, typer.Argument(help="bop: 6-D pose benchmark scene folders; tum: timestamped RGB-D "
                                              "sequences; plain: rgb/ + depth/ + poses.txt|json.")],
     sources: Annotated[list[Path], typer.Argument(help="Source folders; each becomes one capture named after it.")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Folder the capture folders are written into.")],
+    out: Annotated[Path, typer.Option("--out", "-o", metavar="DIR", show_default=False,
+                                      help="Folder the capture folders are written into.")],
     intrinsics: Annotated[Optional[str], typer.Option(help="fx,fy,cx,cy of the colour camera (plain: required; tum: "
                                                           "default the benchmark's published values).")] = None,
     depth_scale: Annotated[float, typer.Option(min=1e-6, max=1e9, help="plain: depth units per metre.")] = 1000.0,
@@ -54,17 +55,22 @@ def import_cmd(
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    verbose: VerboseOpt = False,
 ) -> None:
     """Convert RGB-D captures in a known layout into capture folders that ingest reads."""
     config_from(config)
-    say = Progress("import", quiet)
+    say = reporter("import", quiet, verbose)
     options = {"intrinsics": _intrinsics(intrinsics), "depth_scale": depth_scale, "convention": pose_convention.value,
                "tolerance_s": tolerance, "every": every, "min_baseline_m": min_baseline}
     summaries = import_sources(layout.value, sources, out, options=options, keep_labels=keep_labels, seed=seed,
                                progress=say)
     for s in summaries:
+        check = s["plane_check"]
         typer.echo(f"{s['capture']}: {s['frames']} frames" + (", masks" if s["masks"] else ", no masks")
-                   + (f", {s['instances']} instances" if s["instances"] else ""))
+                   + (f", {s['instances']} instances" if s["instances"] else "")
+                   + (f"; support plane agrees in frames {check.frames[0]} and {check.frames[1]} within "
+                      f"{check.angle_deg:.2f} deg / {check.offset_m * 1000:.1f} mm" if check.frames else
+                      "; support plane seen in fewer than two frames: not checked"))
         for note in s["notes"]:
             typer.echo(f"  note: {note}")
         for what, why in s["skipped"]:

@@ -12,6 +12,7 @@ from typing import Callable
 import numpy as np
 
 from ..errors import InputError
+from ..progress import bar, detail
 from .bop import read_bop_scene
 from .common import ImportedCapture, publish, staged_output, write_labels, write_staged
 from .plain import read_plain_folder
@@ -40,25 +41,27 @@ def import_sources(layout: str, sources: list[Path], out: Path, *, options: dict
                    progress: Callable[[str], None] | None = None) -> list[dict]:
     """Import every source into ``out`` (all or nothing).  Returns one summary dict per capture."""
     options = options or {}
-    say = progress or (lambda msg: None)
     if keep_labels is not None and layout != "bop":
         raise InputError(None, "--keep-labels", f"only the bop layout carries object labels, got layout {layout!r}")
     names = [Path(s).name for s in sources]
     stage = staged_output(Path(out), names)
     summaries, caps = [], []
     try:
-        for n, src in enumerate(sources, start=1):
-            cap = read_source(layout, Path(src), options)
-            check = check_support_plane(cap, np.random.default_rng(seed))
-            write_staged(stage, cap)
-            summaries.append({"capture": cap.name, "frames": len(cap.frames), "skipped": cap.skipped, "notes": cap.notes,
-                              "plane_check": check, "masks": any(f.mask is not None for f in cap.frames),
-                              "instances": len(cap.labels)})
-            say(f"{n}/{len(sources)} {cap.name}: {len(cap.frames)} frames" + (
-                f", plane agrees within {check.angle_deg:.2f} deg / {check.offset_m * 1000:.1f} mm "
-                f"(frames {check.frames[0]}, {check.frames[1]})" if check.frames else ", plane seen in < 2 frames: not checked"))
-            cap.frames = []                         # written: free the images
-            caps.append(cap)
+        with bar(progress, "import", total=len(sources), unit="captures") as b:
+            for src in sources:
+                cap = read_source(layout, Path(src), options)
+                check = check_support_plane(cap, np.random.default_rng(seed))
+                write_staged(stage, cap)
+                summaries.append({"capture": cap.name, "frames": len(cap.frames), "skipped": cap.skipped,
+                                  "notes": cap.notes, "plane_check": check,
+                                  "masks": any(f.mask is not None for f in cap.frames), "instances": len(cap.labels)})
+                detail(progress, f"{cap.name}: {len(cap.frames)} frames" + (
+                    f", plane agrees within {check.angle_deg:.2f} deg / {check.offset_m * 1000:.1f} mm "
+                    f"(frames {check.frames[0]}, {check.frames[1]})" if check.frames else
+                    ", plane seen in < 2 frames: not checked"))
+                cap.frames = []                         # written: free the images
+                caps.append(cap)
+                b.advance()
         if keep_labels is not None:
             write_labels(Path(keep_labels), caps)
         publish(stage, Path(out), names)
