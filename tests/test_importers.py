@@ -18,7 +18,7 @@ from protomine.config import load_config
 from protomine.importers.convert import import_sources
 from protomine.importers.poses import matrix_to_quaternion, quaternion_to_matrix, slerp, to_cam_to_world
 from protomine.ingest.pipeline import ingest_captures
-from protomine.ingest.store import open_store
+from protomine.ingest.sharded import open_store
 from protomine.mine.pipeline import mine_store
 
 W, H = 128, 96
@@ -74,7 +74,9 @@ def demo(tmp_path_factory):
     root = tmp_path_factory.mktemp("import_demo")
     doc = generate_scenario(root / "demo", n_mining=3, n_single=0, frames=4, width=W, height=H, seed=2,
                            classes=["spool", "tile_box", "mallet", "jug"])
-    cfg = load_config("fast")
+    from conftest import TINY_CONFIG
+    (root / "tiny.toml").write_text(TINY_CONFIG)
+    cfg = load_config(root / "tiny.toml")          # a coarse grid: the comparison needs equal runs, not fine ones
     caps = [root / "demo" / c for c in doc["mining"]]
     rows = list(csv.DictReader(open(root / "demo" / "truth_full.csv")))
     out = {"root": root, "cfg": cfg, "caps": caps, "rows": rows}
