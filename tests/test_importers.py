@@ -68,11 +68,11 @@ def test_pose_conventions_recover_the_camera(conv):
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
-    """3 demo captures x 4 frames at 128x96 (invented data) of 4 demo classes, ingested directly with and without
+    """2 demo captures x 4 frames at 128x96 (invented data) of 4 demo classes, ingested directly with and without
     masks and mined with K = 4; plus the same captures written in each layout."""
     from protomine.scenes.scenario import generate_scenario
     root = tmp_path_factory.mktemp("import_demo")
-    doc = generate_scenario(root / "demo", n_mining=3, n_single=0, frames=4, width=W, height=H, seed=2,
+    doc = generate_scenario(root / "demo", n_mining=2, n_single=0, frames=4, width=W, height=H, seed=2,
                            classes=["spool", "tile_box", "mallet", "jug"])
     from conftest import TINY_CONFIG
     (root / "tiny.toml").write_text(TINY_CONFIG)
