@@ -252,7 +252,7 @@ def read_image(path: str | Path, kind: str) -> np.ndarray:
     except FileNotFoundError:
         raise InputError(path, kind, f"{kind} image is missing") from None
     except (OSError, SyntaxError, ValueError) as e:
-        raise InputError(path, kind, f"cannot read image ({e})") from None
+        raise InputError(path, kind, f"cannot read PNG (or JPEG) ({e})") from None
     if mode not in modes:
         raise InputError(path, kind, f"expected {want}, got PIL mode {mode} with shape {arr.shape}")
     if kind == "rgb":
