@@ -28,6 +28,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "ingest.above_plane_m": (0.0, 0.1),
     "ingest.cluster_eps_m": (1e-3, 0.2),
     "ingest.cluster_min_points": (1, 10000),
+    "ingest.concave_deg": (0.0, 180.0),
     "ingest.crop_size": (8, 512),
     "ingest.max_crops_per_object": (1, 64),
     "ingest.single_views_per_object": (0, 64),
