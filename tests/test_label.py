@@ -59,7 +59,7 @@ def test_records_have_the_documented_fields_and_types(labelled):
         assert 0 <= u0 < u1 <= 160 and 0 <= v0 < v1 <= 120
         assert r["cluster"] is None or 0 <= r["cluster"] < K
         assert 0.0 <= r["score"] <= 1.0
-        assert r["unknown"] == (r["score"] < labelled["cfg"]["label"]["unknown_score"])
+        assert r["unknown"] == (r["score"] < float(labelled["lib"].attrs["unknown_cut"]))
         if r["symmetry"] == "continuous":
             assert r["yaw_deg"] == 0.0
         else:

@@ -57,6 +57,7 @@ def find(
     """Find every instance of a new item class from one example object."""
     from ..ingest.sharded import open_store
     from ..mine.library import read_library
+    from ..mine.openset import library_cut
     from ..provenance import file_fingerprint, provenance, record_outputs
     from .names import check_name
     from .oneshot import add_oneshot, find_similar, write_matches
@@ -76,9 +77,10 @@ def find(
     record_outputs([out], provenance(cfg, 0, {"library": file_fingerprint(library), "store": st.fingerprint(),
                                               "example": example}, command="find"))
     others = mt.order
-    n_hi = int(np.sum(mt.score[others] >= cfg["label"]["unknown_score"]))
-    typer.echo(f"{len(others)} objects ranked (the example left out); {n_hi} score >= "
-               f"{cfg['label']['unknown_score']}; wrote {out}")
+    cut = library_cut(lib)
+    n_hi = int(np.sum(mt.score[others] >= cut))
+    typer.echo(f"{len(others)} objects ranked (the example left out); {n_hi} score >= {cut:.4f} "
+               f"(the library's unknown cut); wrote {out}")
     if add is not None:
         lib2, info = add_oneshot(library, st, example, cfg, name=add, matches=mt)
         typer.echo(f"added cluster {info['cluster']} {info['name']!r}: {info['members']} members "

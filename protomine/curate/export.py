@@ -47,6 +47,7 @@ from ..ingest.pipeline import capture_rng, unique_capture_names
 from ..ingest.proposals import find_objects
 from ..ingest.store import ObjectStore
 from ..mine.library import Library
+from ..mine.openset import library_cut
 from ..records import mask_to_rle, pixels_to_rle, read_records, rle_area  # noqa: F401  (mask_to_rle: public here too)
 
 NOTE = ("Labels are bootstrapped by unsupervised prototype mining (protomine), not ground truth: "
@@ -142,7 +143,7 @@ def _store_records(lib: Library, store: ObjectStore, captures: list[Path], cfg: 
     from ..label.matcher import symmetry_name
     mem = {str(o): j for j, o in enumerate(lib.members["object"])}
     m, p = lib.members, lib.prototypes
-    unknown_score = float(cfg["label"]["unknown_score"])
+    unknown_score = library_cut(lib)
     second_score = lib.score(np.asarray(m["second_distance"], np.float64), np.maximum(np.asarray(m["second_cluster"]), 0),
                              single_view=False) if len(m["object"]) else np.zeros(0)
     out, no_pixels = [], 0
@@ -193,7 +194,7 @@ def _store_records(lib: Library, store: ObjectStore, captures: list[Path], cfg: 
 def _write_export(lib: Library, frames: list[tuple[object, str, list[dict]]], out: Path, cfg: dict, min_score: float,
                   prov: dict, progress) -> dict:
     """COCO + JSON lines + per-class table from (capture, frame id, records) of every frame."""
-    unknown_score = float(cfg["label"]["unknown_score"])
+    unknown_score = library_cut(lib)
     cat_names = [lib.display_name(k) for k in range(lib.n_clusters)]
     categories = {n: i + 1 for i, n in enumerate(dict.fromkeys(cat_names))}
     lines, images, annotations = [], [], []
