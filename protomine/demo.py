@@ -122,11 +122,13 @@ def demo(
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     scenes = out / "scenes"
-    params = {"captures": captures, "single": single, "frames": frames, "seed": seed}
+    stereo = float(cfg["scenes"]["stereo_fraction"])
+    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, "stereo_fraction": stereo}
     if rerender or not _scenario_matches(scenes, params):
-        say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures")
+        say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures "
+            f"({stereo:.0%} with active-stereo depth)")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, seed=seed,
-                          progress=None if quiet else Progress("scenes"))
+                          stereo_fraction=stereo, progress=None if quiet else Progress("scenes"))
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))

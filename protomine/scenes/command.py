@@ -22,9 +22,10 @@ def scenes(
     quiet: QuietOpt = False,
 ) -> None:
     """Render the demo scenario: mining captures, single-frame captures and truth files beside them."""
-    config_from(config)          # validates --config like every command; the renderer has no tunables there
+    cfg = config_from(config)
     progress = Progress("scenes", quiet)
     summary = generate_scenario(out, n_mining=captures, n_single=single, frames=frames, width=width,
-                                height=height, seed=seed, progress=progress)
+                                height=height, seed=seed, stereo_fraction=cfg["scenes"]["stereo_fraction"],
+                                progress=progress)
     progress(f"done: {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
              f"single captures, {summary['render_seconds_per_frame']:.2f}s render per frame")
