@@ -12,7 +12,7 @@ import numpy as np
 
 FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
 FLYING_TOL_REL = 0.03
-FLYING_WINDOW = 5           # a stereo matching window spreads mixed readings up to ~2 px from the edge
+FLYING_WINDOW = 7           # a stereo matching window spreads mixed readings up to ~3 px from the edge
 MIN_SUPPORT = 2             # a reading with this many 8-neighbours within the tolerance lies on a surface
 
 

@@ -52,6 +52,7 @@ from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
+from ..mine.reliability import single_view_weights
 
 N_ALTERNATIVES = 3
 MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
@@ -85,7 +86,8 @@ class Matcher:
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
-        self.V = V if self.weighted else np.ones_like(V)
+        # single views are matched with the per-cell reliability their score was calibrated with
+        self.V = single_view_weights(V, self.library.prototypes.get("cell_reliability")) if self.weighted else np.ones_like(V)
         # the scaled prototypes' spectra cost more than matching a whole frame: build them once
         self.bank = PoseBank(self.P, self.V, self.scales)
 

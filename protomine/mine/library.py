@@ -10,7 +10,8 @@ Layout (format ``protomine.library/1``; readers check the version)::
                  count (K,); size_median, size_p10, size_p90 (K, 2) metric footprint radius and height;
                  fused_mu, fused_sigma, single_mu, single_sigma (K,) robust location and scale of the members' log distances
                  (whole fused objects / single views) for the calibrated score; origin (K,) "mined" or
-                 "one-shot"; name, name_example (K,) str ("" when unnamed)
+                 "one-shot"; name, name_example (K,) str ("" when unnamed); optional cell_reliability (K, R, H)
+                 per-cell weights of single-view matching (``reliability``)
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance
 
@@ -42,6 +43,7 @@ STR = h5py.string_dtype()
 PROTO_ARRAYS = ("features", "weights", "volumes", "symmetry", "period_deg", "count", "size_median", "size_p10",
                 "size_p90", "fused_mu", "fused_sigma", "single_mu", "single_sigma")
 PROTO_STR = ("origin", "name", "name_example")
+PROTO_OPTIONAL = ("cell_reliability",)   # (K, R, H) single-view cell weights (``reliability``); libraries before it have none
 MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance")
 
 
@@ -147,7 +149,7 @@ def write_library(path: str | Path, lib: Library) -> None:
                 if k != "format":
                     f.attrs[k] = v
             g = f.create_group("prototypes")
-            for k in PROTO_ARRAYS:
+            for k in PROTO_ARRAYS + tuple(k for k in PROTO_OPTIONAL if k in lib.prototypes):
                 a = np.asarray(lib.prototypes[k])
                 big = a.ndim >= 4
                 g.create_dataset(k, data=a, compression="gzip" if big else None,

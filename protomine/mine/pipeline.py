@@ -30,6 +30,7 @@ from ..ingest.volume import matching_features
 from ..provenance import provenance, provenance_of, write_sidecar
 from .library import Library, log_distance_fit, match_score, write_library
 from .posesearch import pose_distances, shift_volume
+from .reliability import cell_reliability
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -113,28 +114,16 @@ def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
     return np.asarray(items)[np.unique(np.round(np.linspace(0, len(items) - 1, n)).astype(int))]
 
 
-def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
-    """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
-    (inf for views left out of the calibration), (Q,) clusters.
-
-    A single view is matched against its prototype *without its own object*: the prototype is the
-    observation-weighted mean of its aligned members, P = sum w_al x_al / sum w_al with sum w_al = n V, so
-    P_-i = (n V P - w_i x_i) / (n V - w_i) and V_-i = (n V - w_i) / (n - 1), where (x_i, w_i) is the object's
-    fused volume aligned by its own best pose against P.  Without this, the calibration measures how well
-    a prototype fits views of objects it was built from, which for small clusters (a prototype of 5
-    members is one fifth each of them) is far tighter than for new objects, and the single-view score
-    would call most new instances unknown.  Prototypes with one member keep the plain distance.
-    """
+def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                      scales: tuple[float, ...], max_objects_per_cluster: int):
+    """Yield (k, rows, xs, ws, Pk, Vk) per calibration object: its cluster, its single views' row indices
+    (m,) and features xs (m, C, R, A, H), ws (m, R, A, H), and its prototype rebuilt without it, Pk (1, C, R,
+    A, H), Vk (1, R, A, H) (see :func:`single_view_distances`)."""
     from .engine import align_to_prototype
-    if len(store.single_object) == 0:
-        return np.zeros(0), np.zeros(0, int)
     m = cfg["mine"]
     feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
     K = P.shape[0]
     n = np.bincount(labels, minlength=K)
-    k_of = labels[store.single_object]
-    out = np.full(len(k_of), np.inf)
     # a location-scale fit needs tens of samples, not thousands: at most max_objects_per_cluster objects per
     # prototype (evenly spread over its members, deterministic) keep the cost bounded on large stores
     have = np.unique(store.single_object)
@@ -157,9 +146,55 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
                 Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
                 Vk = np.where(ok, den, 0.0) / (n[k] - 1)
             sel = np.flatnonzero(store.single_object[rows_all] == obj)
-            pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
-            out[rows_all[sel]] = pm.D[:, 0]
-    return out, k_of
+            yield k, rows_all[sel], xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32)
+
+
+def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                          scales: tuple[float, ...], *, reliability: np.ndarray | None = None,
+                          max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
+    """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
+    (inf for views left out of the calibration), (Q,) clusters.
+
+    A single view is matched against its prototype *without its own object*: the prototype is the
+    observation-weighted mean of its aligned members, P = sum w_al x_al / sum w_al with sum w_al = n V, so
+    P_-i = (n V P - w_i x_i) / (n V - w_i) and V_-i = (n V - w_i) / (n - 1), where (x_i, w_i) is the object's
+    fused volume aligned by its own best pose against P.  Without this, the calibration measures how well
+    a prototype fits views of objects it was built from, which for small clusters (a prototype of 5
+    members is one fifth each of them) is far tighter than for new objects, and the single-view score
+    would call most new instances unknown.  Prototypes with one member keep the plain distance.
+    With ``reliability`` (K, R, H) the prototype weights are scaled by it, as single-view matching does
+    (``reliability.single_view_weights``).
+    """
+    from .reliability import single_view_weights
+    if len(store.single_object) == 0:
+        return np.zeros(0), np.zeros(0, int)
+    out = np.full(len(store.single_object), np.inf)
+    for k, rows, xs, ws, Pk, Vk in _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster):
+        lam = None if reliability is None else reliability[k:k + 1]
+        out[rows] = pose_distances(xs, ws, Pk, single_view_weights(Vk, lam), scales=scales).D[:, 0]
+    return out, labels[store.single_object]
+
+
+def single_view_residuals(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
+    """Residual sums (K, R, H) num, den of the leave-one-out single views at their best pose against their
+    prototype without their object (``reliability.residual_sums``): what ``reliability.cell_reliability`` fits."""
+    from .engine import align_to_prototype
+    from .reliability import residual_sums
+    K, _, R, _, H = P.shape
+    num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
+    if len(store.single_object) == 0:
+        return num, den
+    for k, rows, xs, ws, Pk, Vk in _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster):
+        pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        ok = np.isfinite(pm.D[:, 0])
+        if not ok.any():
+            continue
+        xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
+        a, b = residual_sums(xa, wa, Pk[0], Vk[0])
+        num[k] += a
+        den[k] += b
+    return num, den
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -203,7 +238,11 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     else:
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
     fused = [log_distance_fit(dist[labels == k]) for k in range(K)]
-    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales)
+    # single views: per-cell reliability from their residuals, then their distances with those weights
+    reliability = cell_reliability(*single_view_residuals(store, cfg, model.prototypes_, model.prototype_weights_,
+                                                          labels, scales))
+    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales,
+                                       reliability=reliability)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
@@ -225,6 +264,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         "volumes": vols, "symmetry": np.asarray(model.symmetry_, np.int64), "period_deg": period,
         "count": counts, "size_median": pct(50), "size_p10": pct(10), "size_p90": pct(90),
         "fused_mu": fused_mu, "fused_sigma": fused_sigma, "single_mu": single_mu, "single_sigma": single_sigma,
+        "cell_reliability": reliability.astype(np.float32),
         "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K,
     }
     members = {
