@@ -11,7 +11,7 @@ import pytest
 from sklearn.metrics import roc_auc_score
 
 from protomine.mine.posesearch import pose_distances
-from protomine.mine.reliability import cell_reliability, residual_sums, single_view_weights
+from protomine.mine.reliability import cell_reliability, reliable_distances, residual_sums
 
 R, A, H, C = 4, 12, 4, 2
 
@@ -46,8 +46,28 @@ def test_reliability_is_inverse_variance_with_a_floor():
     with_floor = cell_reliability(num, den, floor=0.25)     # median spread 2.5, floor 0.625
     ratio = with_floor[0, 0, 0] / with_floor[0, 0, 1]
     np.testing.assert_allclose(ratio, (4 + 0.625) / (1 + 0.625))
-    V = np.ones((1, 1, 5, 3), np.float32)
-    np.testing.assert_allclose(single_view_weights(V, with_floor)[0, 0, :, 0], with_floor[0, 0, 0])
+
+
+def test_reliable_distance_at_a_pose_matches_the_definition():
+    rng = np.random.default_rng(3)
+    x, w = rng.random((2, C, R, A, H)), rng.random((2, R, A, H))
+    P, V = rng.random((2, C, R, A, H)), rng.random((2, R, A, H))
+    lam = rng.random((2, R, H)) + 0.5
+    yaw = np.array([[30.0, 90.0], [0.0, 330.0]])          # whole bins (A = 12: 30 degrees each)
+    got = reliable_distances(x, w, P, V, lam, yaw, np.ones((2, 2)))
+    for i in range(2):
+        for k in range(2):
+            s = int(round(yaw[i, k] / 30.0))
+            # object ~= prototype rolled by yaw: compare the object with the rolled prototype
+            p, v = np.roll(P[k], s, axis=2), np.roll(V[k], s, axis=1)
+            om = w[i] * v * lam[k][:, None, :]
+            want = (om * ((x[i] - p) ** 2).mean(axis=0)).sum() / om.sum()
+            np.testing.assert_allclose(got[i, k], want, rtol=1e-5)
+    # without reliability it is the plain distance of the pose search at its best pose
+    pm = pose_distances(x, w, P, V)
+    whole = np.abs(pm.yaw_deg / 30.0 - np.round(pm.yaw_deg / 30.0)) < 1e-6
+    plain = reliable_distances(x, w, P, V, None, np.round(pm.yaw_deg / 30.0) * 30.0, pm.scale)
+    np.testing.assert_allclose(plain[whole], pm.D[whole], rtol=1e-4)
 
 
 def test_reliability_weights_separate_unknown_views_that_sensor_noise_hides():
@@ -74,21 +94,29 @@ def test_reliability_weights_separate_unknown_views_that_sensor_noise_hides():
     xu, wu = views(other, 40)
     X, W = np.concatenate([xk, xu]), np.concatenate([wk, wu])
     known = np.r_[np.ones(40), np.zeros(40)]
-    plain = pose_distances(X, W, P, V).D[:, 0]
-    robust = pose_distances(X, W, P, single_view_weights(V, lam)).D[:, 0]
+    pm = pose_distances(X, W, P, V)
+    plain = pm.D[:, 0]
+    robust = reliable_distances(X, W, P, V, lam, pm.yaw_deg, pm.scale)[:, 0]
     auc_plain, auc_robust = roc_auc_score(known, -plain), roc_auc_score(known, -robust)
     # measured: plain 0.66, weighted 1.00
     assert auc_plain < 0.85 and auc_robust > 0.95
     assert lam[0][noisy[:, 0, :]].max() < lam[0][~noisy[:, 0, :]].min()
 
 
-def test_mined_library_carries_reliability_and_the_matcher_uses_it(tiny_world):
+def test_mined_library_carries_reliability_and_the_matcher_scores_with_it(tiny_world):
     from protomine.label.matcher import make_matcher
     from protomine.mine.library import read_library
+    from protomine.ingest.store import open_store
     lib = read_library(tiny_world["library"])
     lam = lib.prototypes["cell_reliability"]
     V = lib.prototypes["weights"]
     assert lam.shape == (V.shape[0], V.shape[1], V.shape[3])
     assert np.all(lam > 0) and np.isfinite(lam).all()
+    st = open_store(tiny_world["store"])
+    vols = st.read_single_views(np.arange(min(4, len(st.single_object))))
     m = make_matcher(lib, tiny_world["cfg"])
-    np.testing.assert_allclose(m.V, V * lam[:, :, None, :], rtol=1e-6)
+    got = m.match(vols)
+    X, W = m.features(vols)
+    pm = pose_distances(X, W, m.P, m.V, scales=m.scales)
+    Dr = reliable_distances(X, W, m.P, m.V, lam, pm.yaw_deg, pm.scale)
+    np.testing.assert_allclose(got["score"], lib.score(Dr, np.arange(lib.n_clusters)[None, :], single_view=True), atol=1e-5)

@@ -52,7 +52,7 @@ from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
-from ..mine.reliability import single_view_weights
+from ..mine.reliability import reliable_distances
 
 N_ALTERNATIVES = 3
 MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
@@ -86,8 +86,7 @@ class Matcher:
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
-        # single views are matched with the per-cell reliability their score was calibrated with
-        self.V = single_view_weights(V, self.library.prototypes.get("cell_reliability")) if self.weighted else np.ones_like(V)
+        self.V = V if self.weighted else np.ones_like(V)
         # the scaled prototypes' spectra cost more than matching a whole frame: build them once
         self.bank = PoseBank(self.P, self.V, self.scales)
 
@@ -110,14 +109,19 @@ class Matcher:
         parts = [self.bank.match(X[i:i + self.chunk_size], W[i:i + self.chunk_size])
                  for i in range(0, n, self.chunk_size)]
         D = np.concatenate([p.D for p in parts]).astype(np.float64)
-        S = self.library.score(D, np.arange(self.K)[None, :], single_view=True)
-        S = np.where(np.isfinite(D), S, 0.0)
+        raw_yaw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
+        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
+        # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
+        # views, as the library's single-view calibration did (``mine.reliability``; none: the plain distance)
+        lam = self.library.prototypes.get("cell_reliability") if self.weighted else None
+        Dr = D if lam is None else reliable_distances(X, W, self.P, self.V, lam, raw_yaw, fit_scale)
+        S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
+        S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         period = np.asarray(self.library.prototypes["period_deg"], np.float64)
-        yaw = reduce_yaw(np.concatenate([p.yaw_deg for p in parts]).astype(np.float64), period[None, :])
-        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
+        yaw = reduce_yaw(raw_yaw, period[None, :])
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "best": best}
 
 

@@ -162,16 +162,20 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     a prototype fits views of objects it was built from, which for small clusters (a prototype of 5
     members is one fifth each of them) is far tighter than for new objects, and the single-view score
     would call most new instances unknown.  Prototypes with one member keep the plain distance.
-    With ``reliability`` (K, R, H) the prototype weights are scaled by it, as single-view matching does
-    (``reliability.single_view_weights``).
+    With ``reliability`` (K, R, H) the distance at the best pose is re-weighted by it, as single-view
+    matching does (``reliability.reliable_distances``).
     """
-    from .reliability import single_view_weights
+    from .reliability import reliable_distances
     if len(store.single_object) == 0:
         return np.zeros(0), np.zeros(0, int)
     out = np.full(len(store.single_object), np.inf)
     for k, rows, xs, ws, Pk, Vk in _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster):
-        lam = None if reliability is None else reliability[k:k + 1]
-        out[rows] = pose_distances(xs, ws, Pk, single_view_weights(Vk, lam), scales=scales).D[:, 0]
+        pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        if reliability is None:
+            out[rows] = pm.D[:, 0]
+        else:
+            d = reliable_distances(xs, ws, Pk, Vk, reliability[k:k + 1], pm.yaw_deg, pm.scale)[:, 0]
+            out[rows] = np.where(np.isfinite(pm.D[:, 0]), d, np.inf)
     return out, labels[store.single_object]
 
 

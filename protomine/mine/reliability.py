@@ -1,5 +1,5 @@
-"""Per-cell reliability of single views: prototype weights for single-view matching that discount the cells
-where single views of a prototype's own members disagree with it.
+"""Per-cell reliability of single views: cell weights for scoring a single-view match that discount the
+cells where single views of a prototype's own members disagree with it.
 
 A single view is partial, and what a sensor does (projector shadows and dropped readings beside depth
 edges, flying pixels, disparity steps, occlusion by neighbours) corrupts some parts of the grid far more
@@ -14,11 +14,18 @@ of the calibration, ``pipeline.single_view_distances``), averaged over those vie
     lambda_k(r, h) = 1 / (s2_k(r, h) + floor * median s2_k),   normalised to mean 1 over observed cells
 
 (inverse-variance weighting; the floor, a quarter of the prototype's median spread, keeps a few very
-steady cells from taking over).  Single-view matching then uses V_k lambda_k in place of V_k: still one
-weight per cell, so the FFT pose search is unchanged, and the calibration of the single-view score uses
-the same weights.  Cells no single view observed keep lambda = 1.
+steady cells from taking over).  Cells no single view observed keep lambda = 1.
 
-Shapes: residual sums (K, R, H); reliability (K, R, H); prototype weights V (K, R, A, H).
+The pose is found as before (the FFT search with the plain weights: concentrating the weight on a few
+cells would let the minimum over poses fit a never-seen object there); at that pose the single view's
+distance is re-weighted, ``reliable_distances``:
+
+    D_rel = sum w v lambda mean_c (x_c - mu_c)^2 / sum w v lambda        (lambda = 1: the plain distance)
+
+and both the calibration of the single-view score (the leave-one-out views) and the matcher score this
+distance.
+
+Shapes: residual sums (K, R, H); reliability (K, R, H); prototypes P (K, C, R, A, H), weights V (K, R, A, H).
 """
 from __future__ import annotations
 
@@ -52,12 +59,26 @@ def cell_reliability(num: np.ndarray, den: np.ndarray, *, floor: float = FLOOR, 
     return lam
 
 
-def single_view_weights(V: np.ndarray, reliability: np.ndarray | None) -> np.ndarray:
-    """Prototype weights V (K, R, A, H) scaled by the reliability (K, R, H) along every azimuth (V when None)."""
-    V = np.asarray(V, np.float32)
-    if reliability is None:
-        return V
-    lam = np.asarray(reliability, np.float32)
-    if lam.shape != (V.shape[0], V.shape[1], V.shape[3]):
-        raise ValueError(f"expected a reliability of shape {(V.shape[0], V.shape[1], V.shape[3])}, got {lam.shape}")
-    return V * lam[:, :, None, :]
+def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, reliability: np.ndarray | None,
+                       yaw_deg: np.ndarray, scale: np.ndarray, *, min_overlap: float = 1e-3) -> np.ndarray:
+    """(n, K) re-weighted distances of single views X (n, C, R, A, H), W (n, R, A, H) to prototypes
+    P (K, C, R, A, H), V (K, R, A, H) at their best poses yaw_deg, scale (n, K) (the pose search's, object ~=
+    prototype rolled by yaw and scaled); inf where the view and the prototype share too little weight.
+    reliability (K, R, H) or None (= 1: the plain distance at that pose)."""
+    from .engine import align_to_prototype
+    X, W = np.asarray(X, np.float32), np.asarray(W, np.float32)
+    n, K = X.shape[0], P.shape[0]
+    out = np.full((n, K), np.inf)
+    if n == 0:
+        return out
+    lam = np.ones((K, P.shape[2], P.shape[4])) if reliability is None else np.asarray(reliability, np.float64)
+    for k in range(K):
+        ok = np.isfinite(yaw_deg[:, k]) & np.isfinite(scale[:, k])
+        if not ok.any():
+            continue
+        xa, wa = align_to_prototype(X[ok], W[ok], yaw_deg[ok, k], scale[ok, k])
+        omega = wa.astype(np.float64) * V[k][None] * lam[k][None, :, None, :]
+        e = ((xa.astype(np.float64) - P[k][None]) ** 2).mean(axis=1)
+        num, den = (omega * e).sum(axis=(1, 2, 3)), omega.sum(axis=(1, 2, 3))
+        out[ok, k] = np.where(den > min_overlap, num / np.maximum(den, 1e-12), np.inf)
+    return out

@@ -89,9 +89,10 @@ class StereoSensor:
     an assumption, not a figure from the paper), so within half a window of a depth discontinuity
     (neighbouring disparities differ by more than ``edge_jump_px``) the window straddles two surfaces: the
     reading is lost with probability ``edge_dropout``, becomes a flying pixel (a disparity between the
-    near and the far surface's) with probability ``edge_flying``, and is kept otherwise (shares are
-    assumptions, chosen so that depth edges look like the published sensor images: a ragged band with
-    some mixed readings).
+    near and the far surface's) with probability ``edge_flying``, and is kept otherwise; both shares
+    taper linearly from the discontinuity to zero half a window away, as less of the window straddles it
+    (shares are assumptions, chosen so that depth edges look like the published sensor images: a ragged
+    band with some mixed readings).
     """
 
     baseline_m: float = 0.075
@@ -184,7 +185,7 @@ def stereo_depth(frame: Render, fx: float, rng: np.random.Generator, sensor: Ste
 
 def _stereo_depth(frame: Render, fx: float, rng: np.random.Generator, sensor: StereoSensor, dropout: float,
                   grazing_deg: float) -> np.ndarray:
-    from scipy.ndimage import maximum_filter, minimum_filter
+    from scipy.ndimage import distance_transform_cdt, maximum_filter, minimum_filter
     z = frame.depth.astype(np.float64)
     valid = z > 0
     fb = sensor.focal_px * sensor.baseline_m
@@ -192,14 +193,19 @@ def _stereo_depth(frame: Render, fx: float, rng: np.random.Generator, sensor: St
     shadow = projector_shadow(z, fx, sensor.baseline_m, tol_px=sensor.shadow_tol_px)
     half = max(1, int(round(0.5 * (sensor.window_px - 1) * fx / sensor.focal_px)))
     lit = np.where(valid & ~shadow, d, 0.0)
-    edge = valid & ~shadow & depth_edges(lit, sensor.edge_jump_px, half)
+    # distance (pixels, chessboard) to the nearest discontinuity: the closer, the more of the matching
+    # window straddles it, so the failure shares taper linearly from the edge to half a window away
+    seed = depth_edges(lit, sensor.edge_jump_px, 0)
+    dist = distance_transform_cdt(~seed, metric="chessboard") if seed.any() else np.full(z.shape, half + 1)
+    edge = valid & ~shadow & (dist <= half)
+    taper = np.clip(1.0 - dist / (half + 1.0), 0.0, 1.0)
     # near and far surface within the matching window: the largest and the smallest lit disparity
     size = 2 * half + 1
     d_near = maximum_filter(lit, size=size)
     d_far = minimum_filter(np.where(lit > 0, lit, np.inf), size=size)
     u = rng.random(z.shape)
-    drop_edge = edge & (u < sensor.edge_dropout)
-    fly = edge & ~drop_edge & (u < sensor.edge_dropout + sensor.edge_flying) & np.isfinite(d_far)
+    drop_edge = edge & (u < sensor.edge_dropout * taper)
+    fly = edge & ~drop_edge & (u < (sensor.edge_dropout + sensor.edge_flying) * taper) & np.isfinite(d_far)
     a = rng.random(z.shape)
     d = np.where(fly, a * d_near + (1.0 - a) * np.where(np.isfinite(d_far), d_far, 0.0), d)
     d = d + rng.standard_normal(z.shape) * sensor.sigma_px
