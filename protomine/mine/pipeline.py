@@ -150,10 +150,11 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...], *, reliability: np.ndarray | None = None,
-                          max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
+                          scales: tuple[float, ...], *, reliable: bool = True,
+                          max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
-    (inf for views left out of the calibration), (Q,) clusters.
+    (inf for views left out of the calibration), (Q,) clusters, and the per-cell reliability (K, R, H) of
+    single views (``reliability``; ones when ``reliable`` is False).
 
     A single view is matched against its prototype *without its own object*: the prototype is the
     observation-weighted mean of its aligned members, P = sum w_al x_al / sum w_al with sum w_al = n V, so
@@ -162,43 +163,38 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     a prototype fits views of objects it was built from, which for small clusters (a prototype of 5
     members is one fifth each of them) is far tighter than for new objects, and the single-view score
     would call most new instances unknown.  Prototypes with one member keep the plain distance.
-    With ``reliability`` (K, R, H) the distance at the best pose is re-weighted by it, as single-view
-    matching does (``reliability.reliable_distances``).
+    The reliability is fitted on the residuals of these views at their best pose; each view's distance is
+    then re-weighted (``reliability.reliable_distances``) by the reliability fitted *without its object's
+    views*, for the same reason.
     """
-    from .reliability import reliable_distances
-    if len(store.single_object) == 0:
-        return np.zeros(0), np.zeros(0, int)
-    out = np.full(len(store.single_object), np.inf)
-    for k, rows, xs, ws, Pk, Vk in _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster):
-        pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
-        if reliability is None:
-            out[rows] = pm.D[:, 0]
-        else:
-            d = reliable_distances(xs, ws, Pk, Vk, reliability[k:k + 1], pm.yaw_deg, pm.scale)[:, 0]
-            out[rows] = np.where(np.isfinite(pm.D[:, 0]), d, np.inf)
-    return out, labels[store.single_object]
-
-
-def single_view_residuals(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
-    """Residual sums (K, R, H) num, den of the leave-one-out single views at their best pose against their
-    prototype without their object (``reliability.residual_sums``): what ``reliability.cell_reliability`` fits."""
     from .engine import align_to_prototype
-    from .reliability import residual_sums
+    from .reliability import reliable_distances, residual_sums
     K, _, R, _, H = P.shape
+    out = np.full(len(store.single_object), np.inf)
     num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
     if len(store.single_object) == 0:
-        return num, den
-    for k, rows, xs, ws, Pk, Vk in _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster):
+        return out, np.zeros(0, int), np.ones((K, R, H))
+    loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster)  # noqa: E731
+    poses, own = [], []
+    for k, rows, xs, ws, Pk, Vk in loo():
         pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        out[rows] = pm.D[:, 0]
+        poses.append((pm.yaw_deg, pm.scale))
         ok = np.isfinite(pm.D[:, 0])
-        if not ok.any():
-            continue
-        xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
-        a, b = residual_sums(xa, wa, Pk[0], Vk[0])
+        a, b = np.zeros((R, H)), np.zeros((R, H))
+        if reliable and ok.any():
+            xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
+            a, b = residual_sums(xa, wa, Pk[0], Vk[0])
+        own.append((a, b))
         num[k] += a
         den[k] += b
-    return num, den
+    if not reliable:
+        return out, labels[store.single_object], np.ones((K, R, H))
+    for (k, rows, xs, ws, Pk, Vk), (yaw, sc), (a, b) in zip(loo(), poses, own):
+        lam = cell_reliability((num[k] - a)[None], (den[k] - b)[None])
+        d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc)[:, 0]
+        out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+    return out, labels[store.single_object], cell_reliability(num, den)
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -242,11 +238,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     else:
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
     fused = [log_distance_fit(dist[labels == k]) for k in range(K)]
-    # single views: per-cell reliability from their residuals, then their distances with those weights
-    reliability = cell_reliability(*single_view_residuals(store, cfg, model.prototypes_, model.prototype_weights_,
-                                                          labels, scales))
-    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales,
-                                       reliability=reliability)
+    sv_d, sv_k, reliability = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_,
+                                                    labels, scales)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
