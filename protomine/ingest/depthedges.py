@@ -53,3 +53,4 @@ def flying_pixels(depth: np.ndarray) -> np.ndarray:
 def steady_depth(depth: np.ndarray) -> np.ndarray:
     """depth (H, W) with its flying pixels set to 0 (no reading)."""
     return np.where(flying_pixels(depth), 0.0, depth)
+
