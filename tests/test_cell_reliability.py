@@ -106,7 +106,7 @@ def test_reliability_weights_separate_unknown_views_that_sensor_noise_hides():
 def test_mined_library_carries_reliability_and_the_matcher_scores_with_it(tiny_world):
     from protomine.label.matcher import make_matcher
     from protomine.mine.library import read_library
-    from protomine.ingest.store import open_store
+    from protomine.ingest.sharded import open_store
     lib = read_library(tiny_world["library"])
     lam = lib.prototypes["cell_reliability"]
     V = lib.prototypes["weights"]
