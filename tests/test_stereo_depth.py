@@ -125,3 +125,31 @@ def test_scenario_stereo_captures_share_scenes_with_gaussian_ones(tmp_path):
             np.testing.assert_array_equal(fg.cam_to_world, fm.cam_to_world)
             np.testing.assert_array_equal(g.rgb(fg.id), m.rgb(fm.id))
             assert np.array_equal(g.depth(fg.id), m.depth(fm.id)) == same_depth
+
+
+def test_lifting_leaves_flying_pixels_unobserved_not_free(box_frame):
+    """A reading halfway between the box top and the table (a flying pixel) is neither surface nor free
+    space: the cells that project onto it are unobserved, as they are where the reading is missing."""
+    from protomine.geometry import world_to_pixel
+    from protomine.ingest.volume import Grid, ObjectFrame, View, cell_centres, lift
+    fr, K = box_frame
+    T = look_at(np.array([0.0, 0.0, 0.6]), np.zeros(3), np.array([0.0, 1.0, 0.0]))
+    depth = fr.depth.astype(np.float64)
+    cols = np.flatnonzero((fr.mask > 0).any(axis=0))
+    rows = np.flatnonzero(fr.mask[:, cols[0]] > 0)
+    mixed = depth.copy()
+    mixed[rows, cols[0] - 1] = 0.5                   # mixed readings along the box's left edge
+    missing = depth.copy()
+    missing[rows, cols[0] - 1] = 0.0
+    grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=8)
+    frame = ObjectFrame(origin=np.zeros(3), up=np.array([0.0, 0.0, 1.0]), radius=0.09, height=0.2)
+    rgb = (fr.rgb * 255).astype(np.uint8)
+    pix = np.flatnonzero(fr.mask.reshape(-1) > 0)
+    vol_mixed = lift([View(mixed, rgb, K.K, T, pix)], frame, grid)
+    vol_missing = lift([View(missing, rgb, K.K, T, pix)], frame, grid)
+    uv, _ = world_to_pixel(cell_centres(grid, frame).reshape(-1, 3), T, K.K)
+    u, v = np.rint(uv[:, 0]).astype(int), np.rint(uv[:, 1]).astype(int)
+    on_column = (u == cols[0] - 1) & np.isin(v, rows)
+    assert on_column.sum() >= 4
+    np.testing.assert_array_equal(vol_mixed[2].reshape(-1)[on_column], vol_missing[2].reshape(-1)[on_column])
+    assert (vol_mixed[1].reshape(-1)[on_column] == 0).all()          # no free space in front of it
