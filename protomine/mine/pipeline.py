@@ -8,7 +8,7 @@ Steps
    yaw (Fourier shift along azimuth) and averaged with its observation counts as weights.
 3. Label-free calibration: robust fits (median, MAD) of the log distances of the members' distances (fused objects) and of the
    leave-one-out distances of the store's one-frame volumes to their object's prototype rebuilt without
-   that object (single views; see ``single_view_distances``), so that
+   that object (single views; see ``single_view_calibration``), so that
    ``library.match_score`` is comparable across clusters and usable for single views.
 4. Metric size statistics (footprint radius, height) and member scale = sqrt(r h) / median over the
    cluster of sqrt(r h).
@@ -28,10 +28,11 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
-from ..progress import say
+from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
+from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
 
@@ -85,21 +86,25 @@ def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
     return np.asarray(items)[np.unique(np.round(np.linspace(0, len(items) - 1, n)).astype(int))]
 
 
+def _calibration_objects(store: ObjectStore, labels: np.ndarray, K: int, max_objects_per_cluster: int) -> np.ndarray:
+    """Sorted store rows of the objects whose single views calibrate the score: a location-scale fit needs
+    tens of samples, not thousands, so at most max_objects_per_cluster per prototype (evenly spread over its
+    members, deterministic) keep the cost bounded on large stores."""
+    have = np.unique(store.single_object)
+    objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
+    return np.sort(objs)
+
+
 def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                      scales: tuple[float, ...], max_objects_per_cluster: int):
+                      scales: tuple[float, ...], objs: np.ndarray):
     """Yield (k, rows, xs, ws, Pk, Vk) per calibration object: its cluster, its single views' row indices
     (m,) and features xs (m, C, R, A, H), ws (m, R, A, H), and its prototype rebuilt without it, Pk (1, C, R,
-    A, H), Vk (1, R, A, H) (see :func:`single_view_distances`)."""
+    A, H), Vk (1, R, A, H) (see :func:`single_view_calibration`)."""
     from .engine import align_to_prototype
     m = cfg["mine"]
     feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
     K = P.shape[0]
     n = np.bincount(labels, minlength=K)
-    # a location-scale fit needs tens of samples, not thousands: at most max_objects_per_cluster objects per
-    # prototype (evenly spread over its members, deterministic) keep the cost bounded on large stores
-    have = np.unique(store.single_object)
-    objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
-    objs.sort()
     for i0 in range(0, len(objs), 256):
         chunk = objs[i0:i0 + 256]
         xo, wo = feats(store.read_volume_at(chunk))
@@ -121,8 +126,18 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...], *, reliable: bool = True,
-                          max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64,
+                          progress: Callable[[str], None] | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
+    (inf for views left out of the calibration), (Q,) clusters (see :func:`single_view_calibration`)."""
+    d, k, _ = single_view_calibration(store, cfg, P, V, labels, scales, max_objects_per_cluster=max_objects_per_cluster,
+                                      progress=progress)
+    return d, k
+
+
+def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                            scales: tuple[float, ...], *, reliable: bool = True, max_objects_per_cluster: int = 64,
+                            progress: Callable[[str], None] | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
     (inf for views left out of the calibration), (Q,) clusters, and the per-cell reliability (K, R, H) of
     single views (``reliability``; ones when ``reliable`` is False).
@@ -145,27 +160,55 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
     if len(store.single_object) == 0:
         return out, np.zeros(0, int), np.ones((K, R, H))
-    loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, max_objects_per_cluster)  # noqa: E731
+    objs = _calibration_objects(store, labels, K, max_objects_per_cluster)
+    loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, objs)  # noqa: E731
     poses, own = [], []
-    for k, rows, xs, ws, Pk, Vk in loo():
-        pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
-        out[rows] = pm.D[:, 0]
-        poses.append((pm.yaw_deg, pm.scale))
-        ok = np.isfinite(pm.D[:, 0])
-        a, b = np.zeros((R, H)), np.zeros((R, H))
-        if reliable and ok.any():
-            xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
-            a, b = residual_sums(xa, wa, Pk[0], Vk[0])
-        own.append((a, b))
-        num[k] += a
-        den[k] += b
-    if not reliable:
-        return out, labels[store.single_object], np.ones((K, R, H))
-    for (k, rows, xs, ws, Pk, Vk), (yaw, sc), (a, b) in zip(loo(), poses, own):
-        lam = cell_reliability((num[k] - a)[None], (den[k] - b)[None])
-        d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc)[:, 0]
-        out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+    with bar(progress, "score calibration", total=len(objs) * (2 if reliable else 1), unit="objects") as b:
+        for k, rows, xs, ws, Pk, Vk in loo():
+            pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+            out[rows] = pm.D[:, 0]
+            poses.append((pm.yaw_deg, pm.scale))
+            ok = np.isfinite(pm.D[:, 0])
+            a, c = np.zeros((R, H)), np.zeros((R, H))
+            if reliable and ok.any():
+                xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
+                a, c = residual_sums(xa, wa, Pk[0], Vk[0])
+            own.append((a, c))
+            num[k] += a
+            den[k] += c
+            b.advance(1)
+        if not reliable:
+            return out, labels[store.single_object], np.ones((K, R, H))
+        for (k, rows, xs, ws, Pk, Vk), (yaw, sc), (a, c) in zip(loo(), poses, own):
+            lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
+            d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc)[:, 0]
+            out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+            b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)
+
+
+def _single_view_chunk(store: ObjectStore, chunk: np.ndarray, feats, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                       n: np.ndarray, scales: tuple[float, ...], out: np.ndarray, advance) -> None:
+    """Leave-one-out distances of the single views of the objects ``chunk`` into ``out`` (see the caller)."""
+    from .engine import align_to_prototype
+    xo, wo = feats(store.read_volume_at(chunk))
+    rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+    xs, ws = feats(store.read_single_views(rows_all))
+    for j, obj in enumerate(chunk):
+        k = int(labels[obj])
+        Pk, Vk = P[k:k + 1].astype(np.float64), V[k:k + 1].astype(np.float64)
+        if n[k] > 1:
+            pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P[k:k + 1], V[k:k + 1], scales=scales)
+            xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+            den = n[k] * Vk - wa
+            ok = den > 1e-6
+            # (1, C, R, A, H): the weighted sum without the object, over the weight left
+            Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+            Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+        sel = np.flatnonzero(store.single_object[rows_all] == obj)
+        pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
+        out[rows_all[sel]] = pm.D[:, 0]
+        advance(1)
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -219,8 +262,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     else:
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
     fused = [log_distance_fit(dist[labels == k]) for k in range(K)]
-    sv_d, sv_k, reliability = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_,
-                                                    labels, scales)
+    sv_d, sv_k, reliability = single_view_calibration(store, cfg, model.prototypes_, model.prototype_weights_,
+                                                      labels, scales, progress=progress)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
@@ -256,6 +299,10 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "store_path": str(Path(store_path).resolve()), "store_fingerprint": store.fingerprint(),
                   "conventions": store.attrs.get("conventions", ""),
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
+    # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
+    alpha = float(cfg["mine"]["unknown_alpha"])
+    attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
+                  "unknown_cut": conformal_cut(match_score(sv_d, single_mu[sv_k], single_sigma[sv_k]), alpha)})
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)
