@@ -28,8 +28,17 @@ COMMANDS: list[tuple[str, str]] = [
 ]
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        from . import __version__
+        from .version import code_commit
+        print(f"protomine {__version__} (commit {code_commit()})")
+        raise typer.Exit()
+
+
 @app.callback()
-def _root() -> None:
+def _root(version: bool = typer.Option(False, "--version", callback=_print_version, is_eager=True,
+                                       help="Print the version and the commit, then exit.")) -> None:
     """Find objects in RGB-D captures, lift them to 3D volumes, mine pose-aware prototypes, label, audit."""
 
 

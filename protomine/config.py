@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 import json
 import tomllib
+from importlib import resources
 from pathlib import Path
 from typing import Any
 
@@ -17,7 +18,7 @@ from .errors import InputError
 
 # The presets ship inside the package (``protomine/configs``); the top-level ``configs`` folder of a checkout
 # is a link to it, so there is one source of truth and an installed wheel finds its presets.
-CONFIG_DIR = Path(__file__).resolve().parent / "configs"
+CONFIG_DIR = Path(str(resources.files("protomine") / "configs"))
 
 # (min, max) inclusive bounds for numeric keys; lists are checked element-wise.
 BOUNDS: dict[str, tuple[float, float]] = {

@@ -63,7 +63,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     from .capture import read_capture
     from .curate.oneshot import find_similar, retrieval_scores
     from .ingest.pipeline import ingest_captures
-    from .ingest.store import open_store
+    from .ingest.sharded import open_store
     from .label.evaluate import evaluate_labels
     from .label.matcher import label_captures
     from .label.overlays import write_overlays
@@ -112,7 +112,7 @@ def demo(
 ) -> None:
     """Run the whole job on the built-in scenario and print how well it did."""
     from .ingest.pipeline import ingest_captures
-    from .ingest.store import open_store
+    from .ingest.sharded import open_store
     from .mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
     from .mine.pipeline import mine_store
     from .scenes.scenario import generate_scenario

@@ -1,4 +1,4 @@
-"""Provenance: what produced an output file (config, seed, input fingerprints, code version).
+"""Provenance: what produced an output file (config, seed, input fingerprints, code version and commit).
 
 One rule for every output: HDF5 files (store, library) carry the record as root attributes; every other
 file (CSV, JSON, PNG, HTML, ...) gets a sidecar ``<file>.provenance.json`` written by
@@ -21,6 +21,7 @@ from . import __version__
 from .atomic import write_text
 from .config import config_json
 from .errors import InputError
+from .version import code_commit
 
 
 def file_fingerprint(path: str | Path, *, chunk: int = 1 << 20) -> str:
@@ -48,6 +49,7 @@ def provenance(cfg: dict, seed: int, inputs: dict[str, str] | None = None, comma
     return {
         "producer": "protomine",
         "code_version": __version__,
+        "code_commit": code_commit(),
         "python": platform.python_version(),
         "command": command,
         "seed": int(seed),
@@ -64,7 +66,7 @@ def sidecar_path(path: str | Path) -> Path:
     return path.with_name(path.name + SIDECAR_SUFFIX)
 
 
-PROVENANCE_KEYS = ("producer", "code_version", "python", "command", "seed", "config", "inputs")
+PROVENANCE_KEYS = ("producer", "code_version", "code_commit", "python", "command", "seed", "config", "inputs")
 
 
 def provenance_of(attrs: dict) -> dict:

@@ -11,7 +11,7 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 
 from protomine.ingest.pipeline import ingest_captures
-from protomine.ingest.store import open_store
+from protomine.ingest.sharded import open_store
 from protomine.mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
 
 

@@ -9,7 +9,7 @@ from protomine.capture import Intrinsics, read_capture, write_capture
 from protomine.config import load_config
 from protomine.ingest.pipeline import ingest_captures
 from protomine.ingest.proposals import find_objects
-from protomine.ingest.store import open_store
+from protomine.ingest.sharded import open_store
 from protomine.ingest.volume import Grid, lift
 from protomine.scenes import shapes as S
 from protomine.scenes.render import Scene, SceneObject, look_at, render

@@ -22,7 +22,7 @@ from conftest import make_tiny_capture, two_object_scene
 from protomine.atomic import TMP_MARK, exclusive_lock
 from protomine.cli import app
 from protomine.errors import InputError
-from protomine.ingest.store import open_store
+from protomine.ingest.sharded import open_store
 from protomine.mine.library import read_library
 
 POINTS = ["inputs_read", "mid_write", "before_rename"]

@@ -7,7 +7,7 @@ from typing import Callable
 import numpy as np
 
 from ..errors import InputError
-from ..ingest.store import open_store
+from ..ingest.sharded import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import read_library
 from ..provenance import file_fingerprint, provenance, write_sidecar

@@ -44,7 +44,7 @@ def find(
     quiet: QuietOpt = False,
 ) -> None:
     """Find every instance of a new item class from one example object."""
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     from ..mine.library import read_library
     from .names import check_name
     from ..provenance import file_fingerprint, provenance, write_sidecar
@@ -82,7 +82,7 @@ def export(
     quiet: QuietOpt = False,
 ) -> None:
     """Export bootstrapped labels (not ground truth) of every object in every frame of mined captures."""
-    from ..ingest.store import open_store
+    from ..ingest.sharded import open_store
     from ..mine.library import read_library
     from .export import export_labels
     cfg = config_from(config)

@@ -27,9 +27,9 @@ def ingest(
     With --scheduler, or --workers > 1, the captures are ingested in parallel into a sharded store.
     """
     from ..scale.executor import InlineExecutor
-    from ..scale.shards import is_index
     from .pipeline import ingest_captures
     from .sharded import ingest_sharded
+    from .store import is_index
     cfg = config_from(config)
     clean_stale_temporaries(store.parent)
     with executor_for(cfg, scheduler, workers) as ex:

@@ -1,32 +1,204 @@
-"""Ingest as a map over captures: each task lifts a group of captures and writes its own store shard.
+"""The sharded object store: HDF5 shards (each an ordinary ``protomine.store/1`` file) and a small index.
 
-The captures are split, in the order given, into contiguous groups of at most ``max_captures_per_shard``
-(and about ``len(captures) / n_workers`` when that is smaller); each group is one task on the executor,
-which runs :func:`protomine.ingest.pipeline.ingest_captures` into a fresh shard file
-``<store>.shards/<run>-<nnnnn>.h5``.  Only capture paths go out and small summaries come back.  The
-caller then writes the index (:mod:`protomine.scale.shards`) under the store's writer lock: the previous
-index's live captures that were not re-ingested, then the new shards in group order.  Shards left without
-a live capture are deleted afterwards.  Per-capture randomness is ``capture_rng(seed, name)``, so objects,
-their order and their volumes equal a single-file ingest of the same captures in the same order.
+Layout (format ``protomine.store-index/1``; readers check the version)::
+
+    <store>.h5                 the index (HDF5, small): attrs format, grid, conventions, channels, provenance
+        shards/path            (M,) str, shard file names relative to the index's folder
+        live/shard, live/capture   (L,) rows (shard number, capture name): the captures whose objects in that
+                               shard are current; a re-ingested capture moves to its new shard, so the old
+                               shard's copy is simply no longer listed
+    <store>.h5.shards/<run>-<nnnnn>.h5   the shards, one per group of captures, written by the workers
+
+:class:`ShardedObjectStore` reads an index exactly like :class:`protomine.ingest.store.ObjectStore` reads a
+single file (:func:`open_store` returns one when ``path`` is an index): the tables are the shards' live
+rows concatenated in index order (shard, then row), with object indices in ``views``, ``crops`` and ``single``
+renumbered to that global order, and volumes, one-frame volumes and crops are read from the shard that
+holds them.  Ingesting the same captures in the same order therefore gives the same tables and volumes as
+a single-file store.
+
+Writing (:func:`ingest_sharded`): ingest as a map over captures, each task lifting a group of captures into
+its own shard.  The captures are split, in the order given, into contiguous groups of at most
+``max_captures_per_shard`` (and about ``len(captures) / n_workers`` when that is smaller); each group is one
+task on the executor, which runs :func:`protomine.ingest.pipeline.ingest_captures` into a fresh shard file
+``<store>.shards/<run>-<nnnnn>.h5``.  Only capture paths go out and small summaries come back.  The caller
+then writes the index under the store's writer lock: the previous index's live captures that were not
+re-ingested, then the new shards in group order.  Shards left without a live capture are deleted
+afterwards.  Per-capture randomness is ``capture_rng(seed, name)``, so objects, their order and their
+volumes equal a single-file ingest of the same captures in the same order.
 
 Workers must see the capture folders and the store's folder at the same paths (a shared file system).
 Memory per task is bounded by one group of captures.
+
+:func:`open_store` opens either kind of store: a single file or an index.
 """
 from __future__ import annotations
 
+import json
 import math
 import secrets
 import time
 from pathlib import Path
 from typing import Callable
 
-from ..atomic import clean_stale_temporaries, exclusive_lock, pause_point
+import h5py
+import numpy as np
+
+from ..atomic import atomic_path, clean_stale_temporaries, exclusive_lock, pause_point
 from ..errors import InputError
 from ..provenance import provenance
 from ..scale.executor import Executor
-from ..scale.shards import is_index, read_index, shard_folder, write_index
-from .store import ObjectStore
-from .volume import Grid
+from .pipeline import ingest_captures
+from .store import CONVENTIONS, INDEX_FORMAT, STR, ObjectStore, _decode, is_index
+from .volume import CHANNELS, Grid
+
+
+def open_store(path: str | Path) -> ObjectStore:
+    """The store at ``path``: a :class:`ShardedObjectStore` when it is an index, else an :class:`ObjectStore`."""
+    return ShardedObjectStore(path) if is_index(path) else ObjectStore(path)
+
+
+def shard_folder(index_path: str | Path) -> Path:
+    p = Path(index_path)
+    return p.with_name(p.name + ".shards")
+
+
+def read_index(path: str | Path) -> tuple[list[str], list[tuple[int, str]], dict]:
+    """Shard paths (relative), live (shard, capture) rows and the index attributes."""
+    path = Path(path)
+    try:
+        with h5py.File(path, "r") as f:
+            if f.attrs.get("format") != INDEX_FORMAT:
+                raise InputError(path, "format", f"expected a sharded store index {INDEX_FORMAT!r}, got {f.attrs.get('format')!r}")
+            attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
+            shards = [str(s) for s in _decode(f["shards/path"][()])]
+            live = list(zip((int(s) for s in f["live/shard"][()]), (str(c) for c in _decode(f["live/capture"][()]))))
+    except OSError as e:
+        raise InputError(path, None, f"not a readable HDF5 store index ({e})") from None
+    except KeyError as e:
+        raise InputError(path, str(e), "store index is missing this dataset (corrupt?)") from None
+    for s, _ in live:
+        if not 0 <= s < len(shards):
+            raise InputError(path, "live/shard", f"shard number {s} out of range (index lists {len(shards)} shards)")
+    return shards, live, attrs
+
+
+def write_index(path: str | Path, shards: list[str], live: list[tuple[int, str]], *, grid: tuple[int, int, int],
+                provenance: dict) -> None:
+    """Write the index atomically (callers hold the store's writer lock)."""
+    with atomic_path(path) as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["format"] = INDEX_FORMAT
+            f.attrs["conventions"] = CONVENTIONS
+            f.attrs["grid"] = np.array(grid)
+            f.attrs["channels"] = json.dumps(CHANNELS)
+            for k, v in provenance.items():
+                f.attrs[k] = v
+            f.create_dataset("shards/path", data=np.array(shards, dtype=object), dtype=STR)
+            f.create_dataset("live/shard", data=np.array([s for s, _ in live], dtype=np.int64))
+            f.create_dataset("live/capture", data=np.array([c for _, c in live], dtype=object), dtype=STR)
+
+
+def _concat(parts: list[np.ndarray], like: np.ndarray | None = None) -> np.ndarray:
+    if parts:
+        return np.concatenate(parts)
+    return np.zeros(0) if like is None else like[:0]
+
+
+class ShardedObjectStore(ObjectStore):
+    """Read access to a sharded store with the :class:`ObjectStore` interface (module docstring)."""
+
+    def __init__(self, path: str | Path):
+        self.path = Path(path)
+        if not self.path.is_file():
+            raise InputError(self.path, None, "object store not found")
+        rel, live, self.attrs = read_index(self.path)
+        self.grid_shape = tuple(int(x) for x in self.attrs["grid"])
+        self.shards = [ObjectStore(self.path.parent / r) for r in rel]
+        live_of = [{c for s, c in live if s == j} for j in range(len(rel))]
+        obj, views, caps = {}, {}, {}
+        crop_o, crop_f, crop_loc = [], [], []
+        sing_o, sing_f, sing_loc = [], [], []
+        shard_of, local = [], []
+        n = 0
+        for j, sh in enumerate(self.shards):
+            if sh.grid_shape != self.grid_shape:
+                raise InputError(sh.path, "grid", f"shard grid {sh.grid_shape} differs from the index's {self.grid_shape}")
+            keep = np.flatnonzero(np.isin(sh.objects["capture"], list(live_of[j])))
+            remap = np.full(len(sh), -1, np.int64)
+            remap[keep] = n + np.arange(len(keep))
+            for k, v in sh.objects.items():
+                obj.setdefault(k, []).append(v[keep])
+            vsel = np.flatnonzero(remap[sh.views["object"]] >= 0) if len(sh.views["object"]) else np.zeros(0, int)
+            for k, v in sh.views.items():
+                views.setdefault(k, []).append(remap[v[vsel]] if k == "object" else v[vsel])
+            csel = np.flatnonzero(np.isin(sh.captures["name"], list(live_of[j])))
+            for k, v in sh.captures.items():
+                caps.setdefault(k, []).append(v[csel])
+            rows = np.flatnonzero(remap[sh.crop_object] >= 0) if len(sh.crop_object) else np.zeros(0, int)
+            crop_o.append(remap[sh.crop_object[rows]]); crop_f.append(sh.crop_frame[rows])
+            crop_loc.append(np.stack([np.full(len(rows), j), rows], 1))
+            rows = np.flatnonzero(remap[sh.single_object] >= 0) if len(sh.single_object) else np.zeros(0, int)
+            sing_o.append(remap[sh.single_object[rows]]); sing_f.append(sh.single_frame[rows])
+            sing_loc.append(np.stack([np.full(len(rows), j), rows], 1))
+            shard_of.append(np.full(len(keep), j, np.int64)); local.append(keep)
+            n += len(keep)
+        self.objects = {k: _concat(v) for k, v in obj.items()}
+        self.views = {k: _concat(v) for k, v in views.items()}
+        self.captures = {k: _concat(v) for k, v in caps.items()}
+        self.crop_object, self.crop_frame = _concat(crop_o).astype(np.int64), _concat(crop_f)
+        self.single_object, self.single_frame = _concat(sing_o).astype(np.int64), _concat(sing_f)
+        self._crop_loc = _concat(crop_loc).reshape(-1, 2).astype(np.int64)
+        self._single_loc = _concat(sing_loc).reshape(-1, 2).astype(np.int64)
+        self._shard_of = _concat(shard_of).astype(np.int64)
+        self._local = _concat(local).astype(np.int64)
+        if not self.shards:
+            self.objects = {"id": np.zeros(0, object), "capture": np.zeros(0, object)}
+        self._index = {oid: i for i, oid in enumerate(self.objects["id"])}
+
+    def _by_shard(self, shard_of: np.ndarray, local: np.ndarray, read, empty_shape: tuple) -> np.ndarray:
+        """Rows read shard by shard with ``read(shard, local_rows)``, put back in the requested order."""
+        out = None
+        for j in np.unique(shard_of):
+            sel = np.flatnonzero(shard_of == j)
+            part = read(self.shards[int(j)], local[sel])
+            if out is None:
+                out = np.empty((len(shard_of),) + part.shape[1:], part.dtype)
+            out[sel] = part
+        return np.zeros((0,) + empty_shape, np.float32) if out is None else out
+
+    def read_volumes(self, i0: int, i1: int) -> np.ndarray:
+        """(i1 - i0, 6, R, A, H) float32."""
+        return self.read_volume_at(np.arange(i0, i1))
+
+    def read_volume_at(self, indices: np.ndarray) -> np.ndarray:
+        idx = np.asarray(indices, np.int64)
+        return self._by_shard(self._shard_of[idx], self._local[idx], lambda sh, r: sh.read_volume_at(r),
+                              (len(CHANNELS),) + self.grid_shape)
+
+    def read_single_views(self, rows: np.ndarray | None = None) -> np.ndarray:
+        """One-frame volumes (Q, 6, R, A, H) (all, or the given rows of single/, in sorted row order)."""
+        rows = np.arange(len(self.single_object)) if rows is None else np.sort(np.asarray(rows, np.int64))
+        loc = self._single_loc[rows]
+        return self._by_shard(loc[:, 0], loc[:, 1], lambda sh, r: _sorted_read(sh.read_single_views, r),
+                              (len(CHANNELS),) + self.grid_shape)
+
+    def crops(self, object_id: str) -> list[np.ndarray]:
+        i = self.index_of(object_id)
+        return self.shards[int(self._shard_of[i])].crops(object_id)
+
+    def crop_masks(self, object_id: str) -> list[np.ndarray]:
+        i = self.index_of(object_id)
+        return self.shards[int(self._shard_of[i])].crop_masks(object_id)
+
+
+def _sorted_read(read, rows: np.ndarray) -> np.ndarray:
+    """``read`` returns rows in sorted order; give them back in the order of ``rows``."""
+    order = np.argsort(rows, kind="stable")
+    got = read(rows)
+    out = np.empty_like(got)
+    out[order] = got
+    return out
+
 
 MAX_CAPTURES_PER_SHARD = 32
 
@@ -39,7 +211,6 @@ def capture_groups(n: int, n_workers: int, max_per_group: int = MAX_CAPTURES_PER
 
 def _ingest_group(shared: tuple, item: tuple) -> dict:
     """Worker: ingest one group of captures into its shard; returns the pipeline's summary."""
-    from .pipeline import ingest_captures
     cfg, seed, use_masks = shared
     paths, shard = item
     Path(shard).parent.mkdir(parents=True, exist_ok=True)
@@ -65,7 +236,7 @@ def ingest_sharded(captures: list[str | Path], store: str | Path, cfg: dict, *, 
         if not is_index(store):
             raise InputError(store, "format", "this is a single-file store; a distributed ingest writes a sharded "
                              "store: give a new --store path (or ingest without --scheduler/--workers)")
-        old = ObjectStore(store)
+        old = ShardedObjectStore(store)
         if old.grid_shape != grid.shape:
             raise InputError(store, "grid", f"store was built with grid {old.grid_shape}, this run uses {grid.shape}; "
                              "use the same [volume] config or a new store")

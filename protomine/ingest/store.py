@@ -33,6 +33,7 @@ from ..errors import InputError
 from .volume import CHANNELS, Grid, matching_features
 
 FORMAT = "protomine.store/1"
+INDEX_FORMAT = "protomine.store-index/1"  # a sharded store's index (protomine.ingest.sharded)
 CONVENTIONS = ("metres; world frame as in each capture; up = support-plane normal toward the cameras; "
                "yaw right-handed about up from world +x projected on the plane; volume (C, R, A, H) "
                "cylindrical, azimuth counter-clockwise")
@@ -79,18 +80,11 @@ class CaptureRecord:
 
 
 class ObjectStore:
-    """Read access to a store.  Tables are loaded once; volumes are read in slices.
+    """Read access to a single-file store.  Tables are loaded once; volumes are read in slices.
 
-    ``ObjectStore(path)`` on a sharded store's index returns a
-    :class:`protomine.scale.shards.ShardedObjectStore`, which reads the shards as one store.
+    A sharded store (an index and its shards) is read by :class:`protomine.ingest.sharded.ShardedObjectStore`
+    with the same interface; :func:`protomine.ingest.sharded.open_store` opens either kind.
     """
-
-    def __new__(cls, path: str | Path):
-        if cls is ObjectStore:
-            from ..scale.shards import ShardedObjectStore, is_index
-            if is_index(path):
-                return super().__new__(ShardedObjectStore)
-        return super().__new__(cls)
 
     def __init__(self, path: str | Path):
         self.path = Path(path)
@@ -99,6 +93,9 @@ class ObjectStore:
         try:
             with h5py.File(self.path, "r") as f:
                 fmt = f.attrs.get("format")
+                if fmt == INDEX_FORMAT:
+                    raise InputError(self.path, "format", "this is a sharded store index: open it with "
+                                     "protomine.ingest.sharded.open_store")
                 if fmt != FORMAT:
                     raise InputError(self.path, "format", f"expected an object store {FORMAT!r}, got {fmt!r}")
                 self.attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}
@@ -200,14 +197,22 @@ class StoreSource:
         return matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])
 
 
+def is_index(path: str | Path) -> bool:
+    """True when ``path`` is an existing sharded-store index (cheap: reads one attribute)."""
+    p = Path(path)
+    if not p.is_file():
+        return False
+    try:
+        with h5py.File(p, "r") as f:
+            return f.attrs.get("format") == INDEX_FORMAT
+    except OSError:
+        return False
+
+
 def _decode(a):
     if isinstance(a, np.ndarray) and a.dtype == object:
         return np.array([x.decode() if isinstance(x, bytes) else x for x in a], dtype=object)
     return a
-
-
-def open_store(path: str | Path) -> ObjectStore:
-    return ObjectStore(path)
 
 
 def write_store(path: str | Path, objects: list[ObjectRecord], captures: list[CaptureRecord], *,
@@ -218,10 +223,10 @@ def write_store(path: str | Path, objects: list[ObjectRecord], captures: list[Ca
     """
     path = Path(path)
     with exclusive_lock(path, timeout=30.0):
-        old = ObjectStore(path) if path.exists() else None
-        if old is not None and type(old) is not ObjectStore:
+        if is_index(path):
             raise InputError(path, "format", "this is a sharded store index; update it with "
                              "protomine.ingest.sharded.ingest_sharded (the ingest command does)")
+        old = ObjectStore(path) if path.exists() else None
         if old is not None and old.grid_shape != grid.shape:
             raise InputError(path, "grid", f"store was built with grid {old.grid_shape}, this run uses {grid.shape}; "
                              "use the same [volume] config or a new store")

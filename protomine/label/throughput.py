@@ -3,7 +3,7 @@
 Demo data: a few single-frame captures of the built-in scenario are rendered into a temporary folder and
 their objects found (not timed); then every object is lifted from its frame (``matcher.lift_frame``) and
 matched (``Matcher.match``: features, FFT pose search over all yaws and the scale set, calibrated scores)
-against K = 32 prototypes, timed.  The prototypes are random smooth volumes (``bench.synthetic_prototypes``,
+against K = 32 prototypes, timed.  The prototypes are random smooth volumes (``mine.synthetic.synthetic_prototypes``,
 invented): the cost of the pose search does not depend on what the prototypes look like.
 """
 from __future__ import annotations
@@ -16,13 +16,13 @@ import numpy as np
 
 from ..config import load_config
 from ..mine.library import Library
+from ..mine.synthetic import synthetic_prototypes
 
 N_PROTOTYPES = 32
 
 
 def synthetic_library(rng: np.random.Generator, k: int, grid: tuple[int, int, int], cfg: dict) -> Library:
     """An in-memory library of k random prototypes on ``grid`` (R, A, H), with a neutral calibration."""
-    from ..bench import synthetic_prototypes
     from ..ingest.volume import FEATURES
     R, A, H = grid
     P = np.clip(synthetic_prototypes(rng, k, (len(FEATURES), R, A, H)) * 0.2 + 0.3, 0, 1)

@@ -38,7 +38,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+
 from . import symmetry as sym
+from .aligned import aligned_volume_sums, mean_from_volume_sums
 from .engine import ArraySource, _AlignedSums, _chunk_step, _chunks, _SpectraCache
 from .posesearch import PoseBank, PoseMatch
 
@@ -64,8 +66,8 @@ class StoreSpec:
         return cls(str(p), float(m["free_weight"]), float(m["colour_weight"]), (st.st_mtime_ns, st.st_size))
 
     def open(self):
-        from ..ingest.store import ObjectStore
-        return ObjectStore(self.path).source({"mine": {"free_weight": self.free_weight,
+        from ..ingest.sharded import open_store
+        return open_store(self.path).source({"mine": {"free_weight": self.free_weight,
                                                        "colour_weight": self.colour_weight}})
 
 
@@ -265,7 +267,6 @@ def match_all(model, source) -> PoseMatch:
 
 def _chunk_volume_sums(shared: tuple, item: tuple) -> tuple[np.ndarray, np.ndarray]:
     """Worker: one chunk's aligned store-volume sums for the pipeline's picture volumes."""
-    from .pipeline import aligned_volume_sums
     spec, K = shared
     i0, i1, labels, yaw = item
     return aligned_volume_sums(_open(spec).store.read_volumes(i0, i1), labels, yaw, K)
@@ -274,8 +275,7 @@ def _chunk_volume_sums(shared: tuple, item: tuple) -> tuple[np.ndarray, np.ndarr
 def aligned_mean_volumes(spec: StoreSpec, executor, labels: np.ndarray, yaw_deg: np.ndarray, K: int,
                          chunk: int = 512) -> np.ndarray:
     """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame
-    (``pipeline.aligned_mean_volumes`` as a map-reduce; sums added in chunk order)."""
-    from .pipeline import mean_from_volume_sums
+    (``aligned.aligned_mean_volumes`` as a map-reduce; sums added in chunk order)."""
     items = [(i0, i1, labels[i0:i1], yaw_deg[i0:i1]) for i0, i1 in _chunks(len(labels), chunk)]
     acc, wsum = executor.map(_chunk_volume_sums, items, shared=(spec, K), fold=_sum_in_order)
     return mean_from_volume_sums(acc, wsum, labels, K)

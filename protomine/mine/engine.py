@@ -300,9 +300,13 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
     dist = np.empty(N, np.float32)
-    sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
-    msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
+    # Each chunk's aligned sums are transformed back and added in float64 in chunk order, exactly as the
+    # map-reduce pass of mine.distributed folds its chunk parts, so one process and a cluster sum alike.
+    tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
+    extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     for i0, i1 in _chunks(N, chunk_size):
+        sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
+        msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
             x, w = source.read(i0, i1)
@@ -315,10 +319,12 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums)
+        if accumulate:
+            tot += sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
+        if moments:
+            extra += msums.result(scales, (C + 1, R, H))
     if not accumulate:
         return labels, yaw, scale, dist, None, None, None, None, None
-    tot = sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
-    extra = msums.result(scales, (C + 1, R, H)) if moments else None
     return _pass_outputs(source, labels, yaw, scale, dist, tot, extra, P, V, n_worst, chunk_size)
 
 

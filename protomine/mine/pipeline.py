@@ -25,11 +25,13 @@ import numpy as np
 
 from ..atomic import pause_point, write_text
 from ..errors import InputError
+from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..provenance import provenance, provenance_of, write_sidecar
+from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
-from .posesearch import pose_distances, shift_volume
+from .posesearch import pose_distances
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -72,38 +74,6 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
 def _executor_source(store: ObjectStore, cfg: dict, executor):
     from .distributed import ExecutorSource, StoreSpec
     return ExecutorSource(StoreSpec.of(store, cfg), executor)
-
-
-def aligned_volume_sums(vols: np.ndarray, labels: np.ndarray, yaw_deg: np.ndarray, K: int,
-                        acc: np.ndarray | None = None, wsum: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Add store volumes (n, 6, R, A, H) rolled into their prototype's frame into ``acc`` (K, 6, R, A, H) and
-    their observation weights into ``wsum`` (K, 1, R, A, H) (float64; new zero arrays when None)."""
-    _, Cv, R, A, H = vols.shape
-    acc = np.zeros((K, Cv, R, A, H)) if acc is None else acc
-    wsum = np.zeros((K, 1, R, A, H)) if wsum is None else wsum
-    for j, v in enumerate(vols.astype(np.float64)):
-        k = labels[j]
-        back = shift_volume(v, -yaw_deg[j] / (360.0 / A), axis=2)
-        w = np.clip(back[2:3], 0, None)
-        acc[k] += back * w
-        wsum[k] += w
-    return acc, wsum
-
-
-def mean_from_volume_sums(acc: np.ndarray, wsum: np.ndarray, labels: np.ndarray, K: int) -> np.ndarray:
-    """(K, 6, R, A, H) weighted means from :func:`aligned_volume_sums`; channel 2 = mean observation."""
-    out = acc / np.maximum(wsum, 1e-9)
-    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels, minlength=K)[:, None, None, None], 1)
-    return out.astype(np.float32)
-
-
-def aligned_mean_volumes(store: ObjectStore, labels: np.ndarray, yaw_deg: np.ndarray, K: int, chunk: int = 512) -> np.ndarray:
-    """(K, 6, R, A, H) mean store volume of each cluster's members rolled into the prototype frame."""
-    acc = wsum = None
-    for i0 in range(0, len(store), chunk):
-        i1 = min(len(store), i0 + chunk)
-        acc, wsum = aligned_volume_sums(store.read_volumes(i0, i1), labels[i0:i1], yaw_deg[i0:i1], K, acc, wsum)
-    return mean_from_volume_sums(acc, wsum, labels, K)
 
 
 def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
@@ -171,7 +141,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     the final match and the picture volumes as map-reduces over chunks of objects.
     """
     from .gallery import render_gallery
-    store = ObjectStore(store_path)
+    store = open_store(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
     if progress:

@@ -1,7 +1,7 @@
 """``protomine bench --scale``: mining-pass throughput in this process vs a 2-worker Dask LocalCluster on this
 machine, and a projection to a large cluster from the measured figures.
 
-Data (demo data, invented): the bench's synthetic volumes (``protomine.bench.synthetic_objects``: K random
+Data (demo data, invented): the bench's synthetic volumes (``protomine.mine.synthetic.synthetic_objects``: K random
 smooth prototypes, objects rolled, scaled, noisy, partly observed) on the default grid, written to two
 ``.npy`` files that the workers memory-map (as they would open a store on a shared file system).
 
@@ -58,7 +58,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
     """Measured local vs 2-worker LocalCluster pass times and the projection (module docstring)."""
     from distributed import Client, LocalCluster
 
-    from ..bench import synthetic_objects, synthetic_prototypes
+    from ..mine.synthetic import synthetic_objects, synthetic_prototypes
     from ..config import load_config
     from ..mine.distributed import ExecutorSource, NpySpec
     from ..mine.engine import ArraySource, _assign_pass
