@@ -122,10 +122,11 @@ def demo(
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     scenes = out / "scenes"
-    params = {"captures": captures, "single": single, "frames": frames, "seed": seed}
+    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, **cfg["scenes"]}
     if rerender or not _scenario_matches(scenes, params):
         say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, seed=seed,
+                          family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
                           progress=None if quiet else Progress("scenes"))
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params

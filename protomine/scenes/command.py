@@ -21,10 +21,13 @@ def scenes(
     config: ConfigOpt = None,
     quiet: QuietOpt = False,
 ) -> None:
-    """Render the demo scenario: mining captures, single-frame captures and truth files beside them."""
-    config_from(config)          # validates --config like every command; the renderer has no tunables there
+    """Render the demo scenario: mining captures, single-frame captures and truth files beside them.
+
+    The config's [scenes] table picks the item-class family and the share of tumbled instances."""
+    sc = config_from(config)["scenes"]
     progress = Progress("scenes", quiet)
     summary = generate_scenario(out, n_mining=captures, n_single=single, frames=frames, width=width,
-                                height=height, seed=seed, progress=progress)
+                                height=height, seed=seed, family=sc["family"],
+                                tumbled_fraction=sc["tumbled_fraction"], progress=progress)
     progress(f"done: {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
              f"single captures, {summary['render_seconds_per_frame']:.2f}s render per frame")
