@@ -48,7 +48,6 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.colour_weight": (0.0, 10.0),
     "mine.symmetry_tol": (0.0, 1.0),
     "mine.symmetry_factor": (0.1, 100.0),
-    "mine.threshold_quantile": (0.5, 1.0),
     "label.unknown_score": (0.0, 1.0),
     "audit.bootstrap": (10, 100000),
     "audit.match_radius_m": (1e-4, 10.0),

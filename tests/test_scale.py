@@ -188,9 +188,9 @@ def test_cli_ingest_and_mine_with_scheduler_equal_local_cli(tiny_world, dask_cli
     caps = [str(c) for c in tiny_world["caps"]]
     run = lambda *args: CliRunner().invoke(app, [*args, "-c", str(cfg_path), "-q"])  # noqa: E731
     for where, extra in (("local", []), ("dask", ["--scheduler", addr, "--workers", "2"])):
-        r = run("ingest", *caps, "--store", str(tmp_path / where / "objects.h5"), *extra)
+        r = run("ingest", *caps, "--out", str(tmp_path / where / "objects.h5"), *extra)
         assert r.exit_code == 0, r.output
-        r = run("mine", str(tmp_path / where / "objects.h5"), "--library", str(tmp_path / where / "library.h5"),
+        r = run("mine", str(tmp_path / where / "objects.h5"), "--out", str(tmp_path / where / "library.h5"),
                 "--clusters", "2", *extra)
         assert r.exit_code == 0, r.output
     assert is_index(tmp_path / "dask" / "objects.h5") and not is_index(tmp_path / "local" / "objects.h5")

@@ -10,7 +10,8 @@ from PIL import Image
 
 from ..atomic import pause_point
 from ..capture import read_capture
-from ..errors import InputError
+from ..errors import InputError, InputErrors
+from ..progress import bar, detail
 from ..provenance import folder_fingerprint, provenance
 from .proposals import SceneObjects, find_objects, object_frame
 from .store import CaptureRecord, ObjectRecord, ObjectStore, write_store
@@ -84,11 +85,37 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
     return out
 
 
+def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> tuple[list[Path], list[tuple[str, str]]]:
+    """Check every capture before any work: capture.json, every frame file's PNG header, unique names.
+
+    Returns (good captures, [(capture, reason)] of bad ones).  Without ``keep_going`` any bad capture raises
+    :class:`InputErrors` naming all of them (one line each); with it they are returned to be skipped.
+    """
+    names = [Path(c).name for c in captures]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    good, errors = [], []
+    for c in captures:
+        try:
+            read_capture(c, check_images=False).check_headers()
+            good.append(Path(c))
+        except InputError as e:
+            errors.append(e)
+    if errors and not keep_going:
+        raise InputErrors(errors)
+    return good, [(str(e.path), f"{e.field + ': ' if e.field else ''}{e.message}") for e in errors]
+
+
 def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *, seed: int = 0,
-                    use_masks: bool = True, progress: Callable[[str], None] | None = None) -> dict:
+                    use_masks: bool = True, progress: Callable[[str], None] | None = None,
+                    keep_going: bool = False) -> dict:
     """Ingest capture folders into the store at ``store`` (created or updated atomically).
 
-    Returns a summary: per-capture plane residual, object counts, frames per second, store counts.
+    keep_going: a capture that fails while it is read (a bad image) or holds no object is skipped and
+    listed in the summary's ``skipped`` [(capture, reason)]; the store is written for the others (not at
+    all when none is left).  Without it the first such capture raises :class:`InputError`.
+    Returns a summary: per-capture plane residual, object counts, frames per second, store counts, skipped.
     """
     import time
     grid = Grid.from_config(cfg)
@@ -103,32 +130,50 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
         if old.grid_shape != grid.shape:
             raise InputError(store, "grid", f"store was built with grid {old.grid_shape}, this run uses {grid.shape}; "
                              "use the same [volume] config or a new store")
-    objects, caps, per_capture = [], [], []
+    objects, caps, per_capture, skipped = [], [], [], []
     t0, n_frames = time.monotonic(), 0
-    for ci, path in enumerate(captures):
-        cap = read_capture(path, check_images=False)
-        if progress:
-            progress(f"capture {ci + 1}/{len(captures)} {cap.name}: {len(cap.frames)} frames")
-        scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
-        if not scene.proposals:
-            raise InputError(cap.path, "objects", "no objects found above the support plane "
-                             f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks {'used' if cap.has_masks and use_masks else 'not used'})")
-        recs = object_records(scene, cfg, grid)
-        objects += recs
-        n_frames += len(scene.frames)
-        caps.append(CaptureRecord(
-            name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
-            plane_normal=scene.plane.normal, plane_offset=scene.plane.offset, plane_residual_m=scene.plane.residual_m,
-            plane_inlier_fraction=scene.plane.inlier_fraction, n_frames=len(scene.frames), n_objects=len(recs),
-            masks=bool(cap.has_masks and use_masks)))
-        per_capture.append({"capture": cap.name, "objects": len(recs), "plane_residual_m": scene.plane.residual_m,
-                            "plane_inlier_fraction": scene.plane.inlier_fraction, "plane_iterations": scene.plane.iterations})
-        if progress:
-            progress(f"capture {ci + 1}/{len(captures)} {cap.name}: {len(recs)} objects, plane residual "
-                     f"{scene.plane.residual_m * 1000:.2f} mm")
+    total = sum(_frame_count(c) for c in captures)
+    with bar(progress, "ingest", total=total, unit="frames") as b:
+        for path in captures:
+            try:
+                cap = read_capture(path, check_images=False)
+                detail(progress, f"{cap.name}: {len(cap.frames)} frames")
+                scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
+                if not scene.proposals:
+                    raise InputError(cap.path, "objects", "no objects found above the support plane "
+                                     f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks "
+                                     f"{'used' if cap.has_masks and use_masks else 'not used'})")
+            except InputError as e:
+                if not keep_going:
+                    raise
+                skipped.append((str(path), f"{e.field + ': ' if e.field else ''}{e.message}"))
+                b.set_total(b.total - _frame_count(path))
+                continue
+            recs = object_records(scene, cfg, grid)
+            b.advance(len(scene.frames))
+            objects += recs
+            n_frames += len(scene.frames)
+            caps.append(CaptureRecord(
+                name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
+                plane_normal=scene.plane.normal, plane_offset=scene.plane.offset, plane_residual_m=scene.plane.residual_m,
+                plane_inlier_fraction=scene.plane.inlier_fraction, n_frames=len(scene.frames), n_objects=len(recs),
+                masks=bool(cap.has_masks and use_masks)))
+            per_capture.append({"capture": cap.name, "objects": len(recs), "plane_residual_m": scene.plane.residual_m,
+                                "plane_inlier_fraction": scene.plane.inlier_fraction, "plane_iterations": scene.plane.iterations})
+            detail(progress, f"{cap.name}: {len(recs)} objects, plane residual {scene.plane.residual_m * 1000:.2f} mm")
     elapsed = time.monotonic() - t0
     pause_point("inputs_read")
-    prov = provenance(cfg, seed, {c.name: c.fingerprint for c in caps}, command="ingest")
-    counts = write_store(store, objects, caps, grid=grid, provenance=prov, crop_size=cfg["ingest"]["crop_size"])
+    counts = {"kept": 0, "replaced": 0, "added": 0}
+    if caps:
+        prov = provenance(cfg, seed, {c.name: c.fingerprint for c in caps}, command="ingest")
+        counts = write_store(store, objects, caps, grid=grid, provenance=prov, crop_size=cfg["ingest"]["crop_size"])
     return {"captures": per_capture, "objects": len(objects), "frames": n_frames, "seconds": elapsed,
-            "frames_per_second": n_frames / max(elapsed, 1e-9), "store": counts}
+            "frames_per_second": n_frames / max(elapsed, 1e-9), "store": counts, "skipped": skipped}
+
+
+def _frame_count(path: str | Path) -> int:
+    """Frames of a capture for the progress total (0 when its capture.json cannot be read)."""
+    try:
+        return len(read_capture(path, check_images=False).frames)
+    except InputError:
+        return 0

@@ -9,10 +9,10 @@ import typer
 from .executor import Executor, make_executor
 
 SchedulerOpt = Annotated[Optional[str], typer.Option(
-    "--scheduler", help="Dask scheduler address (e.g. tcp://10.0.0.5:8786): run the heavy steps on that cluster "
+    "--scheduler", metavar="ADDRESS", help="Dask scheduler address (e.g. tcp://10.0.0.5:8786): run the heavy steps on that cluster "
     "(default: [scale] scheduler in the config; none = this machine).")]
 WorkersOpt = Annotated[Optional[int], typer.Option(
-    "--workers", min=1, max=4096, help="Without --scheduler: worker processes on this machine (1 = this process); "
+    "--workers", min=1, max=4096, metavar="N", help="Without --scheduler: worker processes on this machine (1 = this process); "
     "with it: wait until this many workers have joined (default: [scale] workers).")]
 
 

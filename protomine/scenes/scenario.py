@@ -43,6 +43,7 @@ from ..atomic import clean_stale_temporaries, write_text
 from ..capture import Intrinsics, write_capture
 from ..errors import InputError
 from ..geometry import direction_to_yaw
+from ..progress import bar, detail
 from .noise import add_sensor_noise
 from .render import Scene, SceneObject, look_at, render
 from .resting import rest_shape, shape_resting_poses
@@ -87,7 +88,7 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     mining = _pick(by_name, classes, [c.name for c in own if not c.held_out], "classes")
     single = _pick(by_name, single_classes, [c.name for c in own], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
-                     float(tumbled_fraction), progress or (lambda msg: None))
+                     float(tumbled_fraction), progress)
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
@@ -100,7 +101,7 @@ def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[
 
 def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
               mining: list[ItemClass], single: list[ItemClass], tumbled_fraction: float,
-              progress: Callable[[str], None]) -> dict:
+              progress: Callable[[str], None] | None) -> dict:
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     clean_stale_temporaries(out)
@@ -111,14 +112,17 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     rows: list[dict] = []
     used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
     render_s, n_frames = 0.0, 0
-    for name, split, pool, n_frames_cap in plan:
-        cap_rng = rng.spawn(1)[0]
-        t1 = time.monotonic()
-        cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split], tumbled_fraction)
-        rows += cap_rows
-        render_s += dt
-        n_frames += n_frames_cap
-        progress(f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {time.monotonic() - t1:.2f}s")
+    with bar(progress, "render", total=sum(p[3] for p in plan), unit="frames") as b:
+        for name, split, pool, n_frames_cap in plan:
+            cap_rng = rng.spawn(1)[0]
+            t1 = time.monotonic()
+            cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split],
+                                        tumbled_fraction)
+            rows += cap_rows
+            render_s += dt
+            n_frames += n_frames_cap
+            b.advance(n_frames_cap)
+            detail(progress, f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {time.monotonic() - t1:.2f}s")
     _write_truth(out, rows)
     held = sorted({c.name for c in single} - {c.name for c in mining})
     doc = {
