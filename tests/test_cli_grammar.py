@@ -69,7 +69,7 @@ def test_main_output_is_always_out_and_help_has_no_type_placeholders():
 def test_options_that_do_nothing_are_gone():
     # tag has no randomness and no config; find and export have no randomness
     for argv in (["tag", "x.h5", "--seed", "1"], ["tag", "x.h5", "--config", "fast"], ["find", "--seed", "1"],
-                 ["export", "--seed", "1"], ["scenes", "--config", "fast"]):
+                 ["export", "--seed", "1"]):
         res = _run(*argv)
         assert res.exit_code == 2 and "No such option" in res.output, argv
 

@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ..cliutil import QuietOpt, SeedOpt, VerboseOpt, reporter
+from ..cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
 from .scenario import generate_scenario
 
 
@@ -18,6 +18,7 @@ def scenes(
     frames: Annotated[int, typer.Option(min=1, max=360, metavar="N", help="Camera poses per mining capture.")] = 8,
     width: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image width (pixels).")] = 320,
     height: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image height (pixels).")] = 240,
+    config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
     verbose: VerboseOpt = False,
