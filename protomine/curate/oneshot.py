@@ -27,7 +27,7 @@ per cluster (median, 1.4826 MAD of ln d) is pooled over clusters by the median:
 i.e. the fraction of a class's instances expected to fit a single exemplar of that class worse than
 this object does, the same meaning as ``library.match_score`` of mined prototypes.  It is therefore
 comparable with member scores (``--add`` moves a member when its one-shot score beats its current
-score) and with ``label.unknown_score``.  When no cluster has enough members the fit falls back to the
+score) and with the library's unknown cut (``mine.openset``).  When no cluster has enough members the fit falls back to the
 bulk of the store: (m, s) = median and 1.4826 MAD of ln d of every other object, mu_1 = m - 2 s,
 sigma_1 = s (objects two robust standard deviations closer than the bulk score 0.5).
 Single-view calibration of an added prototype: single_mu = mu_1 + median_k(single_mu_k - fused_mu_k),

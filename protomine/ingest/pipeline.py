@@ -85,16 +85,26 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
     return out
 
 
+def unique_capture_names(captures: list[str | Path]) -> list[str]:
+    """The captures' folder names; InputError when two are the same (they prefix object ids)."""
+    names = [Path(c).name for c in captures]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    return names
+
+
+def _reason(e: InputError) -> str:
+    return f"{e.field + ': ' if e.field else ''}{e.message}"
+
+
 def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> tuple[list[Path], list[tuple[str, str]]]:
     """Check every capture before any work: capture.json, every frame file's PNG header, unique names.
 
     Returns (good captures, [(capture, reason)] of bad ones).  Without ``keep_going`` any bad capture raises
     :class:`InputErrors` naming all of them (one line each); with it they are returned to be skipped.
     """
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(captures)
     good, errors = [], []
     for c in captures:
         try:
@@ -104,7 +114,7 @@ def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> t
             errors.append(e)
     if errors and not keep_going:
         raise InputErrors(errors)
-    return good, [(str(e.path), f"{e.field + ': ' if e.field else ''}{e.message}") for e in errors]
+    return good, [(str(e.path), _reason(e)) for e in errors]
 
 
 def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *, seed: int = 0,
@@ -119,10 +129,7 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
     """
     import time
     grid = Grid.from_config(cfg)
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(captures)
     if Path(store).exists():
         # fail before minutes of work when the existing store is unreadable or of another grid;
         # write_store checks again under the writer lock (another process may replace it meanwhile)
@@ -146,7 +153,7 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
             except InputError as e:
                 if not keep_going:
                     raise
-                skipped.append((str(path), f"{e.field + ': ' if e.field else ''}{e.message}"))
+                skipped.append((str(path), _reason(e)))
                 b.set_total(b.total - _frame_count(path))
                 continue
             recs = object_records(scene, cfg, grid)

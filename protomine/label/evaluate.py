@@ -18,7 +18,9 @@ Conventions:
 - AUROC (``sklearn.metrics.roc_auc_score``) of the score for known (positive) vs unknown objects.
 
 Figures returned (``evaluate_labels``): n_records, n_matched, n_known, n_unknown, accuracy (known
-records whose best guess maps to their class, flagged or not), accepted_accuracy (among known records
+records whose best guess maps to their class, flagged or not), accuracy_by_score (the same if the cluster
+were chosen by the highest score instead of the least distance; needs ``scores`` (n_records, K), NaN
+without), accepted_accuracy (among known records
 not flagged), median_yaw_error_deg (correctly classified known records), median_yaw_error_deg_oriented,
 auroc, unknown_flagged, known_flagged, cluster_to_class, per_class (n, accuracy, flagged).
 """
@@ -39,7 +41,8 @@ DEFAULT_RADIUS_M = 0.05
 
 
 def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Library,
-                    mining_truth: str | Path, *, radius_m: float = DEFAULT_RADIUS_M) -> dict:
+                    mining_truth: str | Path, *, radius_m: float = DEFAULT_RADIUS_M,
+                    scores: np.ndarray | None = None) -> dict:
     """The label targets for ``records`` (see the module docstring for every figure)."""
     truth = read_truth_table(truth_full_csv)
     mined = read_truth_table(mining_truth)
@@ -48,7 +51,7 @@ def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Li
     if missing:
         raise InputError(mining_truth, "object", f"expected truth for every mined member, {len(missing)} missing "
                          f"(e.g. {missing[0]!r})")
-    return _evaluate(records, truth, library, mined, radius_m)
+    return _evaluate(records, truth, library, mined, radius_m, scores)
 
 
 def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) -> list[str | None]:
@@ -72,18 +75,20 @@ def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) 
     return out
 
 
-def _evaluate(records, truth, library, mined, radius_m) -> dict:
+def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
     classes = majority_map(library, mined)
     offsets = cluster_yaw_offsets(library, mined, prototype_period=True)
     known_classes = {mined[str(o)]["class"] for o in library.members["object"]}
     ids = match_records(records, truth, radius_m)
     rows = []
-    for r, oid in zip(records, ids):
+    for i, (r, oid) in enumerate(zip(records, ids)):
         if oid is None:
             continue
         t = truth[oid]
         k = r["cluster"]
+        by_score = int(np.argmax(scores[i])) if scores is not None else None
         rows.append({"class": t["class"], "known": t["class"] in known_classes, "score": float(r["score"]),
+                     "correct_by_score": by_score is not None and classes.get(by_score) == t["class"],
                      "flag": bool(r["unknown"]), "correct": k is not None and classes.get(k) == t["class"],
                      "yaw_err": _yaw_error(library, k, offsets, t["yaw_deg"], r["yaw_deg"]),
                      "period": _period(library, k)})
@@ -102,6 +107,7 @@ def _evaluate(records, truth, library, mined, radius_m) -> dict:
     return {
         "n_records": len(records), "n_matched": len(rows), "n_known": len(known), "n_unknown": len(unknown),
         "accuracy": mean([x["correct"] for x in known]),
+        "accuracy_by_score": mean([x["correct_by_score"] for x in known]) if scores is not None else float("nan"),
         "accepted_accuracy": mean([x["correct"] for x in known if not x["flag"]]),
         "median_yaw_error_deg": float(np.median(yaw_all)) if yaw_all else float("nan"),
         "median_yaw_error_deg_oriented": float(np.median(yaw_or)) if yaw_or else float("nan"),

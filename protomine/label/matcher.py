@@ -24,9 +24,9 @@ the fraction of single views of prototype k's own members expected to fit worse 
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
 cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
-"unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
-prototype's own single views, i.e. the per-prototype distance threshold
-``exp(mu_k + sigma_k * T_4^-1(1 - unknown_score))``.
+"unknown" when that score is below the library's ``unknown_cut`` (``mine.openset``: the split-conformal
+cut at ``unknown_alpha`` on held-out single views of mined objects, so at most that share of known-class
+views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_cut))``.
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
@@ -43,10 +43,11 @@ import numpy as np
 
 from ..capture import Capture, read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng, pixel_bbox
+from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
+from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
 from ..progress import Bar, bar, detail
@@ -74,7 +75,7 @@ class Matcher:
     free_weight: float
     colour_weight: float
     scales: tuple[float, ...]
-    unknown_score: float
+    unknown_cut: float
     weighted: bool = True
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
@@ -120,7 +121,7 @@ class Matcher:
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
-    volumes must be lifted exactly as the mined ones were); ``label.unknown_score`` from ``cfg``."""
+    volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
     lib_cfg = library.config
     if "volume" not in lib_cfg or "mine" not in lib_cfg:
         raise InputError(library.path, "config", "library does not record the [volume] and [mine] config it was mined with")
@@ -133,7 +134,7 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   float(cfg["label"]["unknown_score"]), weighted)
+                   library_cut(library), weighted)
 
 
 @dataclass
@@ -194,7 +195,7 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
                        symmetry=symmetry_name(sym[k]),
                        scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
                        fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
-                       score=score, unknown=bool(score < matcher.unknown_score), alternatives=alts)
+                       score=score, unknown=bool(score < matcher.unknown_cut), alternatives=alts)
         out.append(rec)
     return out
 
@@ -215,12 +216,10 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
     search call costs a fixed overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
-    and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
+    and matching, without reading images or finding objects), ``objects_per_second`` for those two and
+    ``scores`` (n_records, K): every record's score against every prototype.
     """
-    names = [Path(c).name for c in capture_paths]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(capture_paths)
     matcher = make_matcher(library, cfg, weighted=weighted)
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
@@ -234,6 +233,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
                 pending = []
         out += _match_batch(matcher, pending, st)
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
+    st["scores"] = np.concatenate(st.get("scores") or [np.zeros((0, matcher.K))])
     if stats is not None:
         stats.update(st)
     return out
@@ -270,4 +271,5 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
         out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
     st["objects"] += i0
+    st.setdefault("scores", []).append(m["score"])
     return out

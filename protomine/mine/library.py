@@ -3,7 +3,8 @@
 Layout (format ``protomine.library/1``; readers check the version)::
 
     attrs        format, conventions, grid, features, scales, store_path, store_fingerprint,
-                 config, seed, provenance (code version, inputs)
+                 config, seed, provenance (code version, inputs), unknown_alpha, unknown_cut,
+                 unknown_calibration_views (the open-set cut, ``mine.openset``)
     prototypes/  features (K, C, R, A, H), weights (K, R, A, H) matching features and observation weights
                  in the canonical frame; volumes (K, 6, R, A, H) mean aligned store volumes (pictures);
                  symmetry (K,) 0 = continuous, 1 = none, n = n-fold; period_deg (K,) 360/n (0 = any yaw);
@@ -22,7 +23,8 @@ tail of 4 degrees of freedom (T_4 its CDF): single views are partial and sometim
 image border, so their log distances have heavier tails than a normal law (on the demo, the 95th
 percentile of known objects' z is 2.4-3.3 where a normal law gives 1.64); t with 4 degrees of freedom
 is the usual robust choice for such residuals (Lange, Little & Taylor 1989).  It is comparable across clusters, needs no labels, and
-an object is "unknown" when its score falls below ``label.unknown_score``.
+a single view is "unknown" when its score falls below the library's ``unknown_cut`` attribute, the
+split-conformal cut at ``unknown_alpha`` chosen at mining time (see ``mine.openset``).
 """
 from __future__ import annotations
 

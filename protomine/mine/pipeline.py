@@ -28,10 +28,11 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
-from ..progress import say
+from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
+from .openset import conformal_cut
 from .posesearch import pose_distances
 
 
@@ -85,7 +86,8 @@ def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
+                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64,
+                          progress: Callable[[str], None] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
     (inf for views left out of the calibration), (Q,) clusters.
 
@@ -97,7 +99,6 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     members is one fifth each of them) is far tighter than for new objects, and the single-view score
     would call most new instances unknown.  Prototypes with one member keep the plain distance.
     """
-    from .engine import align_to_prototype
     if len(store.single_object) == 0:
         return np.zeros(0), np.zeros(0, int)
     m = cfg["mine"]
@@ -111,26 +112,34 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     have = np.unique(store.single_object)
     objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
     objs.sort()
-    for i0 in range(0, len(objs), 256):
-        chunk = objs[i0:i0 + 256]
-        xo, wo = feats(store.read_volume_at(chunk))
-        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
-        xs, ws = feats(store.read_single_views(rows_all))
-        for j, obj in enumerate(chunk):
-            k = int(labels[obj])
-            Pk, Vk = P[k:k + 1].astype(np.float64), V[k:k + 1].astype(np.float64)
-            if n[k] > 1:
-                pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P[k:k + 1], V[k:k + 1], scales=scales)
-                xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
-                den = n[k] * Vk - wa
-                ok = den > 1e-6
-                # (1, C, R, A, H): the weighted sum without the object, over the weight left
-                Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
-                Vk = np.where(ok, den, 0.0) / (n[k] - 1)
-            sel = np.flatnonzero(store.single_object[rows_all] == obj)
-            pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
-            out[rows_all[sel]] = pm.D[:, 0]
+    with bar(progress, "score calibration", total=len(objs), unit="objects") as b:
+        for i0 in range(0, len(objs), 256):
+            _single_view_chunk(store, objs[i0:i0 + 256], feats, P, V, labels, n, scales, out, b.advance)
     return out, k_of
+
+
+def _single_view_chunk(store: ObjectStore, chunk: np.ndarray, feats, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                       n: np.ndarray, scales: tuple[float, ...], out: np.ndarray, advance) -> None:
+    """Leave-one-out distances of the single views of the objects ``chunk`` into ``out`` (see the caller)."""
+    from .engine import align_to_prototype
+    xo, wo = feats(store.read_volume_at(chunk))
+    rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+    xs, ws = feats(store.read_single_views(rows_all))
+    for j, obj in enumerate(chunk):
+        k = int(labels[obj])
+        Pk, Vk = P[k:k + 1].astype(np.float64), V[k:k + 1].astype(np.float64)
+        if n[k] > 1:
+            pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P[k:k + 1], V[k:k + 1], scales=scales)
+            xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+            den = n[k] * Vk - wa
+            ok = den > 1e-6
+            # (1, C, R, A, H): the weighted sum without the object, over the weight left
+            Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+            Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+        sel = np.flatnonzero(store.single_object[rows_all] == obj)
+        pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
+        out[rows_all[sel]] = pm.D[:, 0]
+        advance(1)
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -184,7 +193,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     else:
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
     fused = [log_distance_fit(dist[labels == k]) for k in range(K)]
-    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales)
+    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales,
+                                       progress=progress)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
@@ -219,6 +229,10 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "store_path": str(Path(store_path).resolve()), "store_fingerprint": store.fingerprint(),
                   "conventions": store.attrs.get("conventions", ""),
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
+    # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
+    alpha = float(cfg["mine"]["unknown_alpha"])
+    attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
+                  "unknown_cut": conformal_cut(match_score(sv_d, single_mu[sv_k], single_sigma[sv_k]), alpha)})
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)
