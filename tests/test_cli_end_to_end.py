@@ -6,7 +6,7 @@ config), so every object's class is known by construction: mask id 1 is the box,
 module fixture runs ingest and mine once; tests that change the library work on copies.
 
 Covered elsewhere and not repeated here: --scheduler / --workers (tests/test_scale.py, CLI against a local
-Dask cluster), --keep-going, export from label output, positional glob captures, one meaning per short
+Dask cluster), audit --plan and audit without truth (tests/test_audit_plan.py), --keep-going, export from label output, positional glob captures, one meaning per short
 flag (tests/test_cli_grammar.py), bad input for every command (tests/test_reliability_badinput.py).
 """
 from __future__ import annotations
@@ -128,10 +128,11 @@ def test_label_names_every_view_and_draws_one_overlay_per_frame(flow, tmp_path):
     recs = [json.loads(l) for l in out.read_text().splitlines()]
     assert len(recs) == 2 * 3 * 2                         # 2 captures x 3 frames x 2 objects
     mined = {r["object"]: r["cluster"] for r in _assignments(flow["lib"])}
-    # single views are named as mining named the whole object, or flagged unknown (measured: 11 of 12 agree,
-    # the 12th, a view of the box from one side on the tiny 4 x 12 x 4 grid, is flagged)
-    agree = [str(r["cluster"]) == mined[r["object"]] for r in recs]
-    assert sum(agree) >= 10 and all(a or r["unknown"] for a, r in zip(agree, recs))
+    # single views are named as mining named the whole object (measured: 11 of 12; the 12th, a view of the
+    # box from one side on the tiny 4 x 12 x 4 grid, scores 0.001 where every right one scores >= 0.11)
+    agree = np.array([str(r["cluster"]) == mined[r["object"]] for r in recs])
+    score = np.array([r["score"] for r in recs])
+    assert agree.sum() >= 10 and (agree.all() or score[~agree].max() < score[agree].min())
     pngs = sorted(ov.glob("*.png"))
     assert [p.name for p in pngs] == [f"{c.name}_{f:06d}.png" for c in caps for f in range(3)]
     assert all(_png_size(p)[0] >= 64 and _png_size(p)[0] * 48 == _png_size(p)[1] * 64 for p in pngs)
@@ -216,11 +217,13 @@ def test_audit_report_on_perfect_labels(flow, tmp_path):
     doc = json.loads((out / "report.json").read_text())
     assert doc["counts"]["labelled"] == 6 and doc["counts"]["unmatched_truth_rows"] == 0
     assert doc["scores"]["purity"] == 1.0 and doc["scores"]["nmi"] == pytest.approx(1.0)
-    lo, hi = doc["intervals"]["purity"]
-    assert 0.0 <= lo <= 1.0 == hi
+    # six agreeing labels do not prove a pure library: the interval stays open below (measured [0.385, 1])
+    assert doc["purity"]["estimate"] == 1.0
+    lo, hi = doc["purity"]["interval"]
+    assert 0.0 < lo < 0.9 and hi == 1.0
     html = (out / "report.html").read_text()
     assert html.lstrip().lower().startswith("<!doctype html") and "purity" in html.lower()
-    assert "6 labelled objects in 2 clusters: purity 1.000" in res.stdout
+    assert f"Purity at least {lo:.2f}" in res.stdout and "6 labels in 2 of 2 clusters" in res.stdout
     # the store recorded in the library is the default
     res2 = _run("audit", flow["lib"], flow["truth"], "-o", tmp_path / "r2", "-c", flow["conf"], "--seed", "0", "-q")
     assert json.loads((tmp_path / "r2" / "report.json").read_text())["scores"] == doc["scores"]

@@ -1,7 +1,7 @@
 """Mutation check: break one thing the tests must guard, run the tests that should notice, report who did.
 
     python tools/mutate.py                       # every mutation, its relevant test files
-    python tools/mutate.py pose-unaware -k twin  # one mutation, extra pytest arguments after the name
+    python tools/mutate.py pose-unaware -k twin  # one mutation; unknown options go to pytest
     python tools/mutate.py --baseline            # first run the same files on an unmutated copy
     python tools/mutate.py --json out.json       # also write the per-mutation result as JSON
 
@@ -31,6 +31,8 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 PACKAGES = ("protomine", "demo_scenes")
 MARK = "_MUTATION_APPLIED"
+AUDIT_TESTS = ["tests/test_audit_metrics.py", "tests/test_audit_intervals.py", "tests/test_audit_report.py",
+               "tests/test_audit_plan.py"]
 
 # an argument replaced by name, whatever the function's other parameters are
 _REPLACE_ARG = '''
@@ -98,8 +100,35 @@ scale_prototypes = _mut_replace_arg(scale_prototypes, "scales", lambda s: [1.0] 
 ''')],
         ["tests/test_posesearch.py", "tests/test_posesearch_reference.py", "tests/test_engine.py"]),
     Mutation(
+        "purity-interval-is-point",
+        "the audit's overall purity interval (stratified, Fay-Feuer) returns the point estimate twice",
+        [Patch("protomine/audit/uncertainty.py", ("stratified_purity",), '''
+_mut_orig_stratified = stratified_purity
+
+
+def stratified_purity(*args, **kwargs):
+    est, _, _ = _mut_orig_stratified(*args, **kwargs)
+    return est, est, est
+''')],
+        AUDIT_TESTS),
+    Mutation(
+        "cluster-interval-is-point",
+        "the audit's per-cluster purity interval (Clopper-Pearson) returns the point estimate twice",
+        [Patch("protomine/audit/uncertainty.py", ("clopper_pearson_interval",), '''
+_mut_orig_clopper = clopper_pearson_interval
+
+
+def clopper_pearson_interval(successes, n, *args, **kwargs):
+    lo, hi = _mut_orig_clopper(successes, n, *args, **kwargs)     # validation, and (0, 1) for n = 0
+    k, m = np.asarray(successes, dtype=np.float64), np.asarray(n, dtype=np.float64)
+    p = np.where(m > 0, k / np.where(m > 0, m, 1.0), np.nan)
+    lo, hi = np.where(m > 0, p, lo), np.where(m > 0, p, hi)
+    return (float(lo), float(hi)) if lo.ndim == 0 else (lo, hi)
+''')],
+        AUDIT_TESTS),
+    Mutation(
         "bootstrap-is-point",
-        "the audit's bootstrap intervals return the point estimate twice",
+        "the audit's bootstrap intervals (ARI, Hungarian accuracy) return the point estimate twice",
         [Patch("protomine/audit/uncertainty.py", ("bootstrap_intervals",), '''
 _mut_orig_bootstrap = bootstrap_intervals
 
@@ -108,23 +137,11 @@ def bootstrap_intervals(clusters, labels, *args, **kwargs):
     from .metrics import clustering_scores
     out = _mut_orig_bootstrap(clusters, labels, *args, **kwargs)
     point = clustering_scores(clusters, labels)
-    return {name: (point[name], point[name]) for name in out}
+    pair = lambda name: (point[name], point[name])  # noqa: E731
+    return {name: {**v, "interval": pair(name), "reason": None} if isinstance(v, dict) else pair(name)
+            for name, v in out.items()}
 ''')],
-        ["tests/test_audit_metrics.py", "tests/test_audit_report.py"]),
-    Mutation(
-        "wilson-is-point",
-        "the audit's per-cluster (Wilson) purity interval returns the point estimate twice",
-        [Patch("protomine/audit/uncertainty.py", ("wilson_interval",), '''
-_mut_orig_wilson = wilson_interval
-
-
-def wilson_interval(successes, n, *args, **kwargs):
-    if int(n) == 0:
-        return _mut_orig_wilson(successes, n, *args, **kwargs)
-    p = int(successes) / int(n)
-    return p, p
-''')],
-        ["tests/test_audit_metrics.py", "tests/test_audit_report.py"]),
+        AUDIT_TESTS),
 ]
 
 
