@@ -4,12 +4,16 @@ What the project only forwards is not an outside check and is listed here so nob
 NMI, ARI, Rand index, homogeneity / completeness / V-measure (``audit.metrics.clustering_scores`` returns
 scikit-learn's values), average precision (``curate.oneshot.retrieval_scores`` returns
 ``sklearn.metrics.average_precision_score``), AUROC (``label.evaluate``, ``roc_auc_score``), the silhouette
-of automatic K (``mine.choosek``) and the Wilson interval (``scipy.stats.binomtest``).  Tests of those check
-the wiring (argument order, sign of the ranking), nothing more.
+of automatic K (``mine.choosek``) and the Wilson interval (``scipy.stats.binomtest``, kept in
+``audit.uncertainty`` for comparison).  Tests of those check the wiring (argument order, sign of the
+ranking), nothing more.
 
-The project's own: purity and Hungarian accuracy (tests/test_audit_metrics.py: Manning et al. 2008 worked
-example, scikit-learn's contingency matrix, brute force over every one-to-one map), and below: precision at
-k, the robust log-distance fit, the calibrated score and the per-cluster yaw offset.
+The project's own, and where each meets its outside source: purity and Hungarian accuracy
+(tests/test_audit_metrics.py: Manning et al. 2008 worked example, scikit-learn's contingency matrix, brute
+force over every one-to-one map); the audit's intervals, Neyman allocation and the conformal unknown cut
+(tests/test_audit_intervals.py: Newcombe 1998, exact binomial coverage sums, Garwood 1936, Cochran 1977,
+the split-conformal quantile); and below: precision at k, the robust log-distance fit, the calibrated
+score and the per-cluster yaw offset.
 """
 from __future__ import annotations
 
