@@ -42,7 +42,7 @@ from .errors import InputError
 
 SOURCES = ("single-view", "mined")
 FIELDS = ("capture", "frame", "object", "source", "bbox", "segmentation", "center_world", "base_world", "up",
-          "size_m", "cluster", "name", "symmetry", "yaw_deg", "scale", "fit_scale", "distance", "score", "unknown",
+          "size_m", "cluster", "name", "symmetry", "yaw_deg", "rotation", "face", "scale", "fit_scale", "distance", "score", "unknown",
           "alternatives")
 # fields a reader needs (export builds COCO from these); the others are optional
 REQUIRED = ("capture", "frame", "object", "bbox", "segmentation", "cluster", "name", "score", "unknown")

@@ -14,6 +14,10 @@ Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
   plain baseline: W = 1 on every cell of the object and of the prototypes.
 - yaw_deg: object ~= prototype rolled by yaw, i.e. the prototype's canonical x axis turned by yaw about
   up from the object frame's x axis; reported modulo the prototype's period (0 for continuous symmetry).
+  With a library mined with tilts the search also runs over the library's up directions
+  (``mine.tilts.TiltBank``): the pose is R = Rz(yaw) tilt(u) (``rotations``), ``face`` the prototype's
+  resting face nearest u, yaw modulo that face's period, and ``rotation`` the quaternion
+  [qx, qy, qz, qw] of x_world = R_world x_prototype + t in the capture's world frame.
 
 Score (documented once, used by the open-set decision):
     score_k = 1 - T_4((ln d_k - mu_k) / sigma_k)        (``library.match_score``: Student-t tail, 4 dof)
@@ -30,7 +34,7 @@ views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
-decision order, each with its distance and score).
+decision order, each with its distance and score); with ``rotation`` [qx, qy, qz, qw] and ``face`` (see above).
 """
 from __future__ import annotations
 
@@ -47,11 +51,15 @@ from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
+from ..geometry import plane_basis
+from ..mine.faces import face_pose
 from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
 from ..progress import Bar, bar, detail
 from ..records import pixels_to_rle
+from ..mine.tilts import TiltBank, TiltGrid, make_bank, rotation_of
+from ..rotations import matrix_to_quat
 
 N_ALTERNATIVES = 3
 MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
@@ -80,14 +88,16 @@ class Matcher:
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
-    bank: PoseBank = field(init=False)
+    bank: PoseBank | TiltBank = field(init=False)
+    tilts: TiltGrid = field(init=False)
 
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
-        # the scaled prototypes' spectra cost more than matching a whole frame: build them once
-        self.bank = PoseBank(self.P, self.V, self.scales)
+        self.tilts = TiltGrid.from_config(self.library.tilt_config)
+        # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
+        self.bank = make_bank(self.P, self.V, self.scales, self.tilts, self.library.prototypes["aspect"])
 
     @property
     def K(self) -> int:
@@ -99,11 +109,13 @@ class Matcher:
         return X, (W if self.weighted else np.ones_like(W))
 
     def match(self, volumes: np.ndarray) -> dict[str, np.ndarray]:
-        """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale (n, K) and best (n,) (-1 = none)."""
+        """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
+        (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none)."""
         n = volumes.shape[0]
         if n == 0:
             z = np.zeros((0, self.K))
-            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "best": np.zeros(0, int)}
+            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
+                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         parts = [self.bank.match(X[i:i + self.chunk_size], W[i:i + self.chunk_size])
                  for i in range(0, n, self.chunk_size)]
@@ -113,10 +125,18 @@ class Matcher:
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
-        period = np.asarray(self.library.prototypes["period_deg"], np.float64)
-        yaw = reduce_yaw(np.concatenate([p.yaw_deg for p in parts]).astype(np.float64), period[None, :])
+        raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
+        tilt = np.concatenate([p.tilt for p in parts])
+        pr = self.library.prototypes
+        face = np.zeros((n, self.K), np.int64)
+        yaw = np.zeros((n, self.K))
+        rotation = np.zeros((n, self.K, 3, 3))
+        for k in range(self.K):
+            face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
+                                                              pr["face_up"][k], pr["face_symmetry"][k])
         fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
-        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "best": best}
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
+                "rotation": rotation, "best": best}
 
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
@@ -174,7 +194,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
 def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.ndarray]) -> list[dict]:
     lib = matcher.library
     names = lib.prototypes["name"]
-    sym = lib.prototypes["symmetry"]
+    face_sym = lib.prototypes["face_symmetry"]
     size_med = np.asarray(lib.prototypes["size_median"], np.float64)
     out = []
     for i, facts in enumerate(fo.facts):
@@ -186,13 +206,16 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
                  "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
         rec = {"capture": capture, "frame": fo.frame, **facts}
         if k < 0:
-            rec.update(cluster=None, name=None, yaw_deg=0.0, symmetry=None, scale=None, fit_scale=None,
+            rec.update(cluster=None, name=None, yaw_deg=0.0, rotation=None, face=None, symmetry=None, scale=None, fit_scale=None,
                        distance=None, score=0.0, unknown=True, alternatives=alts)
         else:
             r, h = facts["size_m"]
             score = float(m["score"][i, k])
+            f = int(m["face"][i, k])
+            R_world = plane_basis(np.asarray(facts["up"])).T @ m["rotation"][i, k]
             rec.update(cluster=k, name=str(names[k]) or None, yaw_deg=float(m["yaw_deg"][i, k]),
-                       symmetry=symmetry_name(sym[k]),
+                       rotation=[round(float(v), 6) for v in matrix_to_quat(R_world)], face=f,
+                       symmetry=symmetry_name(face_sym[k, f]),
                        scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
                        fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
                        score=score, unknown=bool(score < matcher.unknown_cut), alternatives=alts)

@@ -47,6 +47,7 @@ from sklearn.metrics import silhouette_score
 from ..progress import bar
 from .engine import PoseKMeans, Source, _gather
 from .posesearch import PoseBank, _check_scales, pose_distances
+from .tilts import tilt_pose_distances
 
 
 def _symmetric(D: np.ndarray) -> np.ndarray:
@@ -116,7 +117,7 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
 def prototype_distances(model: PoseKMeans) -> np.ndarray:
     """(K, K) symmetric pose-minimised distances between a fitted model's prototypes."""
     P, V = model.prototypes_, model.prototype_weights_
-    return _symmetric(pose_distances(P, V, P, V, scales=model.scales_).D)
+    return _symmetric(tilt_pose_distances(P, V, P, V, aspect=model.aspect_, scales=model.scales_, grid=model.tilts).D)
 
 
 def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold: float = 0.5
@@ -143,7 +144,8 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
         model = PoseKMeans(n_clusters=len(rest), scales=model.scales, n_init=1, max_iter=model.max_iter,
                            tol=model.tol, chunk_size=model.chunk_size, random_state=model.random_state,
                            sample_size=model.sample_size, symmetry_factor=model.symmetry_factor, symmetry_tol=model.symmetry_tol,
-                           init=(model.prototypes_[rest], model.prototype_weights_[rest]),
+                           tilts=model.tilts, init=(model.prototypes_[rest], model.prototype_weights_[rest],
+                                                    None if model.aspect_ is None else model.aspect_[rest]),
                            progress=model.progress).fit(source)
     return model, merges
 

@@ -30,6 +30,6 @@ def scenes(
     progress = reporter("scenes", quiet, verbose)
     summary = generate_scenario(out, n_mining=captures, n_single=single, frames=frames, width=width,
                                 height=height, seed=seed, family=sc["family"],
-                                tumbled_fraction=sc["tumbled_fraction"], progress=progress)
+                                tumbled_fraction=sc["tumbled_fraction"], touching=sc["touching"], progress=progress)
     typer.echo(f"rendered {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
                f"single captures ({summary['render_seconds_per_frame']:.2f} s per frame) into {out}")
