@@ -131,3 +131,17 @@ def test_scale_search_picks_the_cylinder_size():
     W = np.ones((len(scales),) + X.shape[2:])
     m = pose_distances(X, W, P, V, scales=scales)
     np.testing.assert_allclose(m.scale[:, 0], scales)
+
+
+def test_identity_tilt_search_equals_the_twin():
+    # the 3-D search with only the upright direction (TiltGrid nsides=(0,)) is the yaw x scale search:
+    # the same best pose as the explicit-rotation twin
+    from protomine.mine.tilts import TiltGrid, tilt_pose_distances
+    scales = (0.8, 1.0, 1.3)
+    X, W, P, V = _random(np.random.default_rng(14), n=4)
+    m = tilt_pose_distances(X, W, P, V, aspect=np.ones(len(P)), scales=scales, grid=TiltGrid(nsides=(0,)))
+    D, yaw, sc = ref.best_pose(ref.all_distances(X, W, P, V, scales), scales)
+    np.testing.assert_allclose(m.D, D, rtol=2e-4, atol=1e-5)
+    np.testing.assert_array_equal(m.scale, sc.astype(np.float32))
+    assert np.abs(np.mod(m.yaw_deg - yaw + 180.0, 360.0) - 180.0).max() < 1e-3
+    assert np.all(m.tilt == 0)
