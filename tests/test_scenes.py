@@ -223,7 +223,8 @@ def test_truth_yaw_points_along_the_mallet_head(tmp_path):
         h = (p - base) @ up
         head = p[h > 0.6 * h.max()]                 # the head stands higher than the handle
         yaw_obs = G.direction_to_yaw(head.mean(0) - base, up)
-        assert G.angle_diff_deg(yaw_obs, float(r["yaw_deg"])) < 12.0, (r["object"], yaw_obs, r["yaw_deg"])
+        # measured: median 2.7, max 3.9 degrees (the head centroid of a partial view): bar ~3x the median
+        assert G.angle_diff_deg(yaw_obs, float(r["yaw_deg"])) < 8.0, (r["object"], yaw_obs, r["yaw_deg"])
         checked += 1
     assert checked >= 3
 
