@@ -21,6 +21,7 @@ import typer
 
 from .atomic import write_text
 from .cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from
+from .scale.options import executor_for
 
 AUDIT_FRACTION = 0.4   # share of mined objects whose truth is handed to the audit as "hand labels"
 
@@ -58,7 +59,7 @@ def _export_line(summary: dict) -> str:
 
 
 def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
-                       truth: dict, quiet: bool) -> None:
+                       truth: dict, quiet: bool, executor) -> None:
     """Label held-out single views; then a one-shot search for a class that mining never saw."""
     from .capture import read_capture
     from .curate.oneshot import find_similar, retrieval_scores
@@ -69,7 +70,8 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     from .label.overlays import write_overlays
 
     stats: dict = {}
-    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=None if quiet else Progress("label"))
+    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=None if quiet else Progress("label"),
+                          executor=executor)
     write_text(out / "labels.jsonl", "".join(json.dumps(r) + "\n" for r in recs))
     for c in singles[:6]:
         write_overlays(out / "overlays", read_capture(c), [r for r in recs if r["capture"] == c.name])
@@ -83,7 +85,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     scans = out / "new_scans.h5"
     if scans.exists():
         scans.unlink()
-    ingest_captures(singles, scans, cfg, seed=seed)
+    ingest_captures(singles, scans, cfg, seed=seed, executor=executor)
     st = open_store(scans)
     labels = np.array([truth.get(o, {}).get("label") for o in st.ids], dtype=object)
     mined_classes = {truth[o]["label"] for o in lib.members["object"] if o in truth}
@@ -110,7 +112,17 @@ def demo(
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
 ) -> None:
-    """Run the whole job on the built-in scenario and print how well it did."""
+    """Run the whole job on the built-in scenario and print how well it did.
+
+    Rendering, ingest and label spread their captures over worker processes ([scale] workers, default
+    auto = the usable cores); mining runs in this process with the cores as torch threads.
+    """
+    with executor_for(config_from(config), None, None, processes=True) as ex:
+        _demo(out, captures, single, frames, rerender, config, seed, quiet, ex)
+
+
+def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, config, seed: int, quiet: bool,
+          executor) -> None:
     from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
     from .mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
@@ -126,7 +138,7 @@ def demo(
     if rerender or not _scenario_matches(scenes, params):
         say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, seed=seed,
-                          progress=None if quiet else Progress("scenes"))
+                          progress=None if quiet else Progress("scenes"), executor=executor)
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))
@@ -140,7 +152,8 @@ def demo(
     store = out / "objects.h5"
     if store.exists():
         store.unlink()
-    res = ingest_captures(mining, store, cfg, seed=seed, progress=None if quiet else Progress("ingest"))
+    res = ingest_captures(mining, store, cfg, seed=seed, progress=None if quiet else Progress("ingest"),
+                          executor=executor)
     t_ingest = time.monotonic() - t0 - t_scenes
     resid = [c["plane_residual_m"] * 1000 for c in res["captures"]]
     typer.echo(f"ingest: {res['objects']} objects from {len(mining)} captures, {res['frames_per_second']:.1f} frames/s, "
@@ -176,7 +189,7 @@ def demo(
 
     singles = [scenes / c for c in scen["single"]]
     if singles:
-        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, quiet)
+        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, quiet, executor)
 
     from .curate.export import export_labels
     exp = export_labels(lib, open_store(store), mining, out / "export", cfg, seed=seed)

@@ -24,17 +24,19 @@ def ingest(
 ) -> None:
     """Find the objects in CAPTURES and lift each into an object-centric volume in the store.
 
-    With --scheduler, or --workers > 1, the captures are ingested in parallel into a sharded store.
+    Captures are lifted in parallel on this machine's cores (--workers, default auto); with --scheduler
+    they are lifted on the cluster into a sharded store.
     """
-    from ..scale.executor import InlineExecutor
+    from ..scale.executor import DaskExecutor
     from .pipeline import ingest_captures
     from .sharded import ingest_sharded
     from .store import is_index
     cfg = config_from(config)
     clean_stale_temporaries(store.parent)
-    with executor_for(cfg, scheduler, workers) as ex:
-        if isinstance(ex, InlineExecutor) and not is_index(store):
-            res = ingest_captures(captures, store, cfg, seed=seed, use_masks=not no_masks, progress=Progress("ingest", quiet))
+    with executor_for(cfg, scheduler, workers, processes=True, items=len(captures)) as ex:
+        if not isinstance(ex, DaskExecutor) and not is_index(store):
+            res = ingest_captures(captures, store, cfg, seed=seed, use_masks=not no_masks, progress=Progress("ingest", quiet),
+                                  executor=ex)
         else:
             res = ingest_sharded(captures, store, cfg, executor=ex, seed=seed, use_masks=not no_masks,
                                  progress=Progress("ingest", quiet))

@@ -84,10 +84,38 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
     return out
 
 
+def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: Grid,
+                 progress: Callable[[str], None] | None = None) -> tuple[list[ObjectRecord], CaptureRecord, dict, int]:
+    """One capture: its objects lifted into records, its capture record, its summary and its frame count."""
+    cap = read_capture(path, check_images=False)
+    scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
+    if not scene.proposals:
+        raise InputError(cap.path, "objects", "no objects found above the support plane "
+                         f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks {'used' if cap.has_masks and use_masks else 'not used'})")
+    recs = object_records(scene, cfg, grid)
+    rec = CaptureRecord(
+        name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
+        plane_normal=scene.plane.normal, plane_offset=scene.plane.offset, plane_residual_m=scene.plane.residual_m,
+        plane_inlier_fraction=scene.plane.inlier_fraction, n_frames=len(scene.frames), n_objects=len(recs),
+        masks=bool(cap.has_masks and use_masks))
+    summary = {"capture": cap.name, "objects": len(recs), "plane_residual_m": scene.plane.residual_m,
+               "plane_inlier_fraction": scene.plane.inlier_fraction, "plane_iterations": scene.plane.iterations}
+    return recs, rec, summary, len(scene.frames)
+
+
+def _lift_item(shared: tuple, path: str) -> tuple[list[ObjectRecord], CaptureRecord, dict, int]:
+    """Executor item: one capture lifted in a worker process."""
+    cfg, seed, use_masks, grid = shared
+    return lift_capture(path, cfg, seed, use_masks, grid)
+
+
 def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *, seed: int = 0,
-                    use_masks: bool = True, progress: Callable[[str], None] | None = None) -> dict:
+                    use_masks: bool = True, progress: Callable[[str], None] | None = None, executor=None) -> dict:
     """Ingest capture folders into the store at ``store`` (created or updated atomically).
 
+    ``executor`` (``protomine.scale.executor``; None = this process) lifts the captures in its worker
+    processes, one capture per item; the store is written once, here.  Captures are independent (each has
+    its own generator, ``capture_rng``), so the store is the same whatever the number of workers.
     Returns a summary: per-capture plane residual, object counts, frames per second, store counts.
     """
     import time
@@ -105,27 +133,28 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
                              "use the same [volume] config or a new store")
     objects, caps, per_capture = [], [], []
     t0, n_frames = time.monotonic(), 0
-    for ci, path in enumerate(captures):
-        cap = read_capture(path, check_images=False)
+
+    def add(res: tuple[list[ObjectRecord], CaptureRecord, dict, int]) -> None:
+        nonlocal n_frames
+        recs, rec, summary, frames = res
+        objects.extend(recs)
+        caps.append(rec)
+        per_capture.append(summary)
+        n_frames += frames
         if progress:
-            progress(f"capture {ci + 1}/{len(captures)} {cap.name}: {len(cap.frames)} frames")
-        scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
-        if not scene.proposals:
-            raise InputError(cap.path, "objects", "no objects found above the support plane "
-                             f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks {'used' if cap.has_masks and use_masks else 'not used'})")
-        recs = object_records(scene, cfg, grid)
-        objects += recs
-        n_frames += len(scene.frames)
-        caps.append(CaptureRecord(
-            name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
-            plane_normal=scene.plane.normal, plane_offset=scene.plane.offset, plane_residual_m=scene.plane.residual_m,
-            plane_inlier_fraction=scene.plane.inlier_fraction, n_frames=len(scene.frames), n_objects=len(recs),
-            masks=bool(cap.has_masks and use_masks)))
-        per_capture.append({"capture": cap.name, "objects": len(recs), "plane_residual_m": scene.plane.residual_m,
-                            "plane_inlier_fraction": scene.plane.inlier_fraction, "plane_iterations": scene.plane.iterations})
+            progress(f"capture {len(caps)}/{len(captures)} {rec.name}: {len(recs)} objects, plane residual "
+                     f"{rec.plane_residual_m * 1000:.2f} mm")
+
+    if executor is None or executor.n_workers == 1 or len(captures) < 2:
+        for ci, path in enumerate(captures):
+            if progress:
+                progress(f"capture {ci + 1}/{len(captures)} {Path(path).name}")
+            add(lift_capture(path, cfg, seed, use_masks, grid, progress))
+    else:
         if progress:
-            progress(f"capture {ci + 1}/{len(captures)} {cap.name}: {len(recs)} objects, plane residual "
-                     f"{scene.plane.residual_m * 1000:.2f} mm")
+            progress(f"{len(captures)} captures on {executor.describe()}")
+        executor.map(_lift_item, [str(c) for c in captures], shared=(cfg, seed, use_masks, grid),
+                     fold=lambda _, res: add(res))
     elapsed = time.monotonic() - t0
     pause_point("inputs_read")
     prov = provenance(cfg, seed, {c.name: c.fingerprint for c in caps}, command="ingest")

@@ -8,6 +8,7 @@ from typing import Annotated, Optional
 import typer
 
 from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from, existing
+from ..scale.options import WorkersOpt, executor_for
 
 
 def label(
@@ -19,6 +20,7 @@ def label(
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    workers: WorkersOpt = None,
 ) -> None:
     """Name the objects of each frame from the library's prototypes, with yaw, scale and an open-set score."""
     from ..atomic import clean_stale_temporaries, write_text
@@ -34,7 +36,9 @@ def label(
     caps = [read_capture(c, check_images=False) for c in captures]
     clean_stale_temporaries(out.parent)
     stats: dict = {}
-    records = label_captures(lib, captures, cfg, seed=seed, use_masks=not no_masks, progress=say, stats=stats)
+    with executor_for(cfg, None, workers, processes=True, items=len(captures)) as ex:
+        records = label_captures(lib, captures, cfg, seed=seed, use_masks=not no_masks, progress=say, stats=stats,
+                                 executor=ex)
     prov = provenance(cfg, seed, {"library": file_fingerprint(library), **{c.name: folder_fingerprint(c.path) for c in caps}},
                       command="label")
     write_text(out, "".join(json.dumps(r) + "\n" for r in records))

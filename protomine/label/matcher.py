@@ -198,36 +198,83 @@ def label_capture(library: Library, capture_path: str | Path, cfg: dict, *, seed
                           progress=progress)
 
 
+CAPTURES_PER_ITEM = 4  # captures labelled together (one executor item; their objects matched in batches)
+
+_WORKER_MATCHER: dict = {}  # per worker process: the matcher of the current run, keyed by the run's token
+
+
 def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict, *, seed: int = 0,
                    use_masks: bool = True, weighted: bool = True, progress: Callable[[str], None] | None = None,
-                   stats: dict | None = None, batch_objects: int = 256) -> list[dict]:
+                   stats: dict | None = None, batch_objects: int = 256, executor=None) -> list[dict]:
     """Label several captures (records in the given capture order, then frame order).
 
-    Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
-    search call costs a fixed overhead, so single-frame captures are matched several at a time).
+    Captures go in groups of ``CAPTURES_PER_ITEM`` (fixed, so records do not depend on the number of
+    workers); ``executor`` (``protomine.scale.executor``; None = this process) labels the groups in its
+    worker processes, each building the matcher once.  Within a group, objects are lifted capture by
+    capture and matched in batches of about ``batch_objects`` (one pose search call costs a fixed
+    overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
-    and matching, without reading images or finding objects) and ``objects_per_second`` for those two.
+    and matching, summed over workers, without reading images or finding objects), ``objects_per_second``
+    for those two (per worker), ``seconds`` (wall clock of the whole call) and ``workers``.
     """
     names = [Path(c).name for c in capture_paths]
     if len(set(names)) != len(names):
         dup = sorted({n for n in names if names.count(n) > 1})
         raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    t0 = time.perf_counter()
     matcher = make_matcher(library, cfg, weighted=weighted)
+    groups = [[str(p) for p in capture_paths[i:i + CAPTURES_PER_ITEM]]
+              for i in range(0, len(capture_paths), CAPTURES_PER_ITEM)]
+    st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
+    out: list[dict] = []
+
+    def add(res: tuple[list[dict], dict]) -> None:
+        out.extend(res[0])
+        for k in st:
+            st[k] += res[1][k]
+        if progress:
+            progress(f"{st['frames']} frames labelled, {st['objects']} objects")
+
+    n_workers = 1 if executor is None else min(executor.n_workers, len(groups))
+    if n_workers <= 1:
+        for g in groups:
+            add(_label_group(matcher, g, cfg, seed, use_masks, batch_objects, progress))
+    else:
+        if progress:
+            progress(f"{len(capture_paths)} captures on {executor.describe()}")
+        token = f"{id(matcher):x}-{time.time_ns():x}"
+        executor.map(_label_item, groups, shared=(token, library, cfg, weighted, seed, use_masks, batch_objects),
+                     fold=lambda _, res: add(res))
+    st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    st["seconds"] = time.perf_counter() - t0
+    st["workers"] = n_workers
+    if stats is not None:
+        stats.update(st)
+    return out
+
+
+def _label_item(shared: tuple, paths: list[str]) -> tuple[list[dict], dict]:
+    """Executor item: one group of captures labelled in a worker process (matcher built once per run)."""
+    token, library, cfg, weighted, seed, use_masks, batch_objects = shared
+    if token not in _WORKER_MATCHER:
+        _WORKER_MATCHER.clear()
+        _WORKER_MATCHER[token] = make_matcher(library, cfg, weighted=weighted)
+    return _label_group(_WORKER_MATCHER[token], paths, cfg, seed, use_masks, batch_objects, None)
+
+
+def _label_group(matcher: Matcher, paths: list[str], cfg: dict, seed: int, use_masks: bool, batch_objects: int,
+                 progress: Callable[[str], None] | None) -> tuple[list[dict], dict]:
+    """Records of a group of captures and their stats (objects, frames, lift_s, match_s)."""
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
     pending: list[tuple[str, FrameObjects]] = []
-    for ci, path in enumerate(capture_paths):
-        if progress:
-            progress(f"capture {ci + 1}/{len(capture_paths)} {Path(path).name}")
+    for path in paths:
         pending += _lift_capture(matcher, Path(path), cfg, seed, use_masks, progress, st)
         if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
             out += _match_batch(matcher, pending, st)
             pending = []
     out += _match_batch(matcher, pending, st)
-    st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
-    if stats is not None:
-        stats.update(st)
-    return out
+    return out, st
 
 
 def _lift_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks: bool,

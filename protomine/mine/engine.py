@@ -64,10 +64,17 @@ import torch
 from sklearn.cluster import KMeans
 from sklearn.decomposition import PCA
 
+from .. import cores
 from . import symmetry as sym
 from .posesearch import PoseBank, PoseMatch, _check_scales, _resample_axis, shift_volume
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
+
+
+def use_cores() -> None:
+    """Torch intra-op threads for the passes, set once per fit (:mod:`protomine.cores` policy): every usable
+    core when this process works alone, one in an executor's worker process (never both)."""
+    cores.set_torch_threads(cores.threads_for_this_process())
 
 
 class Source(Protocol):
@@ -481,6 +488,7 @@ class PoseKMeans:
     def fit(self, source: Source) -> PoseKMeans:
         """Fit prototypes to every object of ``source``; returns self."""
         scales = self._validate(source)
+        use_cores()
         rng = np.random.default_rng(self.random_state)
         N, K = len(source), self.n_clusters
         if self.init is not None:

@@ -17,6 +17,7 @@ truth_full.csv gives the period to reduce it by.  Truth never goes inside a capt
 """
 from __future__ import annotations
 
+import copy
 import csv
 import io
 import json
@@ -51,8 +52,11 @@ def demo_intrinsics(width: int, height: int) -> Intrinsics:
 def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int = 24, frames: int = 8,
                       width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
                       single_classes: list[str] | None = None,
-                      progress: Callable[[str], None] | None = None) -> dict:
+                      progress: Callable[[str], None] | None = None, executor=None) -> dict:
     """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
+
+    ``executor`` (``protomine.scale.executor``; None = this process) renders the captures in its worker
+    processes; the layouts are drawn here, in capture order, so the scenario does not depend on it.
 
     classes: item classes used in mining captures (default: every class not marked held_out).
     single_classes: classes used in single-frame captures (default: every class).
@@ -66,7 +70,7 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     mining = _pick(by_name, classes, [c.name for c in all_classes if not c.held_out], "classes")
     single = _pick(by_name, single_classes, [c.name for c in all_classes], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
-                     progress or (lambda msg: None))
+                     progress or (lambda msg: None), executor)
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
@@ -78,7 +82,7 @@ def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[
 
 
 def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
-              mining: list[ItemClass], single: list[ItemClass], progress: Callable[[str], None]) -> dict:
+              mining: list[ItemClass], single: list[ItemClass], progress: Callable[[str], None], executor) -> dict:
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     clean_stale_temporaries(out)
@@ -86,17 +90,32 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     K = demo_intrinsics(width, height)
     plan = [(f"mine_{i:03d}", "mining", mining, frames) for i in range(n_mining)]
     plan += [(f"single_{i:03d}", "single", single, 1) for i in range(n_single)]
-    rows: list[dict] = []
     used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
-    render_s, n_frames = 0.0, 0
+    # each capture's layout depends on the class counts of the captures before it: draw the layouts here,
+    # in order, and hand each capture its generator and counts as they were before its layout, so that a
+    # worker redraws the same layout and renders it
+    items = []
     for name, split, pool, n_frames_cap in plan:
         cap_rng = rng.spawn(1)[0]
-        t1 = time.monotonic()
-        cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split])
-        rows += cap_rows
-        render_s += dt
-        n_frames += n_frames_cap
-        progress(f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {time.monotonic() - t1:.2f}s")
+        items.append((str(out / name), split, [c.name for c in pool], n_frames_cap, K, copy.deepcopy(cap_rng),
+                      dict(used[split])))
+        _layout(pool, cap_rng, used[split])
+    rows: list[dict] = []
+    timing = {"render_s": 0.0, "frames": 0}
+
+    def add(res: tuple[list[dict], float, str, int, float]) -> None:
+        cap_rows, dt, name, n_frames_cap, wall = res
+        rows.extend(cap_rows)
+        timing["render_s"] += dt
+        timing["frames"] += n_frames_cap
+        progress(f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {wall:.2f}s")
+
+    if executor is None:
+        for it in items:
+            add(_capture_item(None, it))
+    else:
+        executor.map(_capture_item, items, fold=lambda _, res: add(res))
+    render_s, n_frames = timing["render_s"], timing["frames"]
     _write_truth(out, rows)
     held = sorted({c.name for c in single} - {c.name for c in mining})
     doc = {
@@ -150,6 +169,15 @@ def _layout(pool: list[ItemClass], rng: np.random.Generator,
                 used[inst.item.name] = used.get(inst.item.name, 0) + 1
             return instances, pos
     raise RuntimeError("could not place 5 objects without overlap; item sizes too large for the table disc")
+
+
+def _capture_item(shared: None, item: tuple) -> tuple[list[dict], float, str, int, float]:
+    """One capture (an executor item): its truth rows, render seconds, name, frames and wall seconds."""
+    folder, split, names, n_frames, K, rng, used = item
+    t1 = time.monotonic()
+    by_name = {c.name: c for c in load_item_classes()}
+    rows, dt = _one_capture(Path(folder), split, [by_name[n] for n in names], n_frames, K, rng, used)
+    return rows, dt, Path(folder).name, n_frames, time.monotonic() - t1
 
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
