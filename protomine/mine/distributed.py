@@ -33,8 +33,6 @@ Public API
 """
 from __future__ import annotations
 
-import itertools
-import os
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -46,26 +44,9 @@ from .aligned import aligned_volume_sums, mean_from_volume_sums
 from .engine import ArraySource, _AlignedSums, _chunk_step, _chunks, _SpectraCache
 from .posesearch import PoseBank, PoseMatch
 
-# per worker process: opened sources, spectra caches and the current pass's pose bank, keyed by what
-# they were built from
+# per worker process: opened sources and spectra caches, keyed by what they were built from
 _OPEN: dict = {}
 _CACHES: dict = {}
-_BANKS: dict = {}
-_PASSES = itertools.count()
-
-
-def _pass_token() -> str:
-    """A name for one map's prototypes, unique across callers and passes (keys the workers' pose bank)."""
-    return f"{os.getpid()}-{time.time_ns()}-{next(_PASSES)}"
-
-
-def _bank(token: str, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]) -> PoseBank:
-    """The pose bank of this map's prototypes, built once per worker and map, not once per chunk (scaling
-    and transforming K S prototypes costs as much as searching tens of objects)."""
-    if token not in _BANKS:
-        _BANKS.clear()
-        _BANKS[token] = PoseBank(P, V, scales)
-    return _BANKS[token]
 
 
 @dataclass(frozen=True)
@@ -196,13 +177,13 @@ class _Part:
 
 def _chunk_pass(shared: tuple, item: tuple) -> _Part:
     """Worker: one chunk of one assignment pass (module docstring)."""
-    token, spec, P, V, scales, accumulate, moments, chunk_size, cache_bytes = shared
+    spec, bank, shape, accumulate, moments, chunk_size, cache_bytes = shared
     i0, i1, idx, forced, window = item
     t0 = time.perf_counter()
     src = _open(spec)
-    K, C, R, A, H = P.shape
+    K, C, R, A, H = shape
+    scales = bank.scales
     S = len(scales)
-    bank = _bank(token, P, V, scales)
     cache = None
     if idx is None and cache_bytes > 0:
         key = (spec, A, chunk_size)
@@ -231,10 +212,10 @@ def _chunk_pass(shared: tuple, item: tuple) -> _Part:
 
 def _chunk_match(shared: tuple, item: tuple) -> PoseMatch:
     """Worker: best pose of one chunk against every prototype, (n, K) arrays."""
-    token, spec, P, V, scales = shared
+    spec, bank = shared
     i0, i1 = item
     x, w = _read(_open(spec), i0, i1, None)
-    return _bank(token, P, V, scales).match(x, w)
+    return bank.match(x, w)
 
 
 @dataclass
@@ -318,7 +299,10 @@ class ExecutorSource:
         """The engine's ``_assign_pass`` (same arguments and results) as a map-reduce over chunks."""
         from .engine import _pass_outputs
         cs = self.chunk_size or chunk_size
-        shared = (_pass_token(), self.spec, np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales), accumulate,
+        # the pose bank (scaled prototypes' spectra) is built once here and sent with the pass: building it
+        # on every worker (or for every chunk) costs as much as searching tens of objects
+        bank = PoseBank(np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales))
+        shared = (self.spec, bank, P.shape, accumulate,
                   moments, cs, int(self.cache_mb * 2**20))
         red = self.executor.map(_chunk_pass, self._items(chunk_size, forced, scale_index), shared=shared,
                                 fold=_fold_parts)
@@ -336,7 +320,7 @@ def match_all(model, source) -> PoseMatch:
     ``source`` is an :class:`ExecutorSource`; yaw in each prototype's canonical frame, modulo its symmetry."""
     if not isinstance(source, ExecutorSource) or source.indices is not None:
         return model.match(source)
-    shared = (_pass_token(), source.spec, model.prototypes_, model.prototype_weights_, tuple(model.scales_))
+    shared = (source.spec, PoseBank(model.prototypes_, model.prototype_weights_, tuple(model.scales_)))
     items = [(i0, i1) for i0, i1, *_ in source._items(model.chunk_size)]
     parts = source.executor.map(_chunk_match, items, shared=shared)
     D = np.concatenate([p.D for p in parts])
