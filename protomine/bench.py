@@ -5,12 +5,17 @@ grid, each object a prototype rolled by a random yaw, scaled by a random factor 
 Gaussian noise and a random partial-observation mask (a view sees a random half of the azimuth and a
 random fraction of the height).
 
-Rows (JSON keys in brackets):
+Rows (JSON keys in brackets); every row records the 1-minute load average (``load_1m``): on a shared machine
+absolute times grow with it, so the targets are ratios measured side by side in one run.
 
-(a) assignment of the same N objects to K = 32 prototypes [``assignment``]:
+(a) assignment of the same N = 4,096 objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
-    ``naive_s`` (explicitly rolling every prototype for every shift), ``ratio_fft_dense`` (target <= 4),
-    ``ratio_naive_fft``; ``n_objects``, ``n_prototypes``, ``n_shifts``, ``load_1m`` (1-minute load average).
+    ``naive_s`` (explicitly rolling every prototype for every shift, timed on N / 16 objects and scaled),
+    ``ratio_fft_dense`` (target <= 2), ``ratio_naive_fft``; ``matmul_peak_gflops`` (best of 3 float32
+    4096 x 4096 torch products, 2 n^3 operations each, same process and threads), ``products_gflop``,
+    ``products_s``, ``products_gflops`` (the search's per-frequency batched products, ``bmm``/``baddbmm``,
+    timed by torch's profiler with their shapes), ``products_fraction_of_peak`` (target >= 0.5),
+    ``products_share_of_search``.
 (b) mining with fixed K = 32 and the default 5 scales (``SCALES``) [``mining``]: ``sizes``, a list of
     {``n_objects``, ``seconds``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
     subprocess so its peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``, which includes
@@ -19,6 +24,15 @@ Rows (JSON keys in brackets):
     ``growth_exponent`` = slope of log(seconds) against log(n_objects) (1 = linear).  Engine settings:
     n_init = 2, max_iter = 15, chunk_size = 256, sample_size = 2048, cache_mb = 128.  Targets (full run:
     1,000 / 3,000 / 10,000 objects): 10,000 objects under 300 s, under 2 GB.
+(c) peer [``peer``]: scikit-learn ``KMeans`` (k-means++, pose-unaware, the same n_init = 2) on the same 2,000
+    objects flattened (w x), against our mining (K = 32, 5 scales): ``ratio_ours_kmeans`` (time), ``ours_nmi``,
+    ``kmeans_nmi`` against the synthetic labels: what pose-awareness costs and what it buys.
+(d) label [``label``]: lifting + matching single views in one process with one torch thread
+    (``protomine/label/throughput.py``; target >= 500 objects per second).
+(e) large [``large``]: mini-batch mining of ``--size`` objects streamed from disk, and its quality against
+    full batches on 10,000 (``protomine/scale/streamed.py``; targets at 100,000: < 10 minutes, < 4 GB).
+(f) ``--scale`` only: this process against a local Dask cluster of 1 and 2 workers
+    (``protomine/scale/benchmark.py``).
 
 Other stages add rows by appending a ``(name, function(quick, seed) -> dict)`` pair to ``BENCH_ROWS``;
 each dict is printed as one table section and stored under its name in the JSON.

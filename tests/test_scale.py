@@ -290,6 +290,24 @@ def test_label_and_scenes_in_worker_processes_equal_this_process(tiny_world, poo
         assert (tmp_path / "s1" / f).read_bytes() == (tmp_path / "s2" / f).read_bytes(), f
 
 
+def test_npy_file_source_reads_what_numpy_loads(tmp_path):
+    from protomine.mine.distributed import NpySpec
+    rng = np.random.default_rng(0)
+    X, W = rng.random((40, 2, 3, 4, 2), dtype=np.float32), rng.random((40, 3, 4, 2), dtype=np.float32)
+    np.save(tmp_path / "X.npy", X)
+    np.save(tmp_path / "W.npy", W)
+    src = NpySpec(str(tmp_path / "X.npy"), str(tmp_path / "W.npy")).open()
+    # reference: numpy's own reader (np.load) and fancy indexing
+    x, w = src.read(5, 17)
+    assert len(src) == 40 and np.array_equal(x, X[5:17]) and np.array_equal(w, W[5:17])
+    idx = np.array([0, 1, 2, 9, 20, 21, 39])
+    x, w = src.gather(idx)
+    assert np.array_equal(x, X[idx]) and np.array_equal(w, W[idx])
+    sub = src.subset(idx)
+    x, w = sub.read(2, 6)
+    assert len(sub) == 7 and np.array_equal(x, X[idx[2:6]]) and np.array_equal(w, W[idx[2:6]])
+
+
 def test_workers_auto_is_the_usable_cores():
     import os
 
