@@ -48,6 +48,7 @@ class ItemClass:
     params: dict[str, tuple[float, float]]
     held_out: bool = False
     random_colour_fraction: float = 0.2
+    family: str = "tools"              # the scenario draws its default classes from one family
 
     @property
     def period_deg(self) -> float:
@@ -118,9 +119,12 @@ def load_item_classes(path: str | Path | None = None) -> list[ItemClass]:
         held = it.get("held_out", False)
         if not isinstance(held, bool):
             raise InputError(path, f"{w}.held_out", f"expected true or false, got {held!r}")
+        family = it.get("family", "tools")
+        if not isinstance(family, str) or not family:
+            raise InputError(path, f"{w}.family", f"expected a non-empty string, got {family!r}")
         out.append(ItemClass(name, sym, _range(path, f"{w}.size", it.get("size")),
                              tuple(_hex(path, f"{w}.palette[{j}]", c) for j, c in enumerate(palette)),
-                             params, held, float(frac)))
+                             params, held, float(frac), family))
     if not out:
         raise InputError(path, "item", "no item classes defined")
     return out

@@ -102,23 +102,36 @@ def _pid_alive(pid: int) -> bool:
 def exclusive_lock(path: str | Path, *, timeout: float = 0.0) -> Iterator[None]:
     """Hold an advisory lock on ``<path>.lock`` so two writers of one file never interleave.
 
-    The second writer waits up to ``timeout`` seconds, then fails with a clear error.
+    The second writer waits up to ``timeout`` seconds, then fails with a clear error.  The lock file is
+    removed when the holder is done.  A waiter may have opened the file the holder then removes, so after
+    acquiring the lock it checks that its open file is still the one at the path, and retries otherwise
+    (the usual protocol for removable lock files).
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     lock = path.with_name(path.name + ".lock")
-    fh = open(lock, "a+")
+    deadline = time.monotonic() + timeout
+    while True:
+        fh = open(lock, "a+")
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            fh.close()
+            if time.monotonic() >= deadline:
+                raise InputError(path, None, "another protomine process is writing this file "
+                                 f"(lock {lock.name} is held); try again when it has finished") from None
+            time.sleep(0.1)
+            continue
+        try:
+            same = os.fstat(fh.fileno()).st_ino == os.stat(lock).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
+        fh.close()                      # the holder removed the file we locked: lock the new one
     try:
-        deadline = time.monotonic() + timeout
-        while True:
-            try:
-                fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
-                break
-            except BlockingIOError:
-                if time.monotonic() >= deadline:
-                    raise InputError(path, None, "another protomine process is writing this file "
-                                     f"(lock {lock.name} is held); try again when it has finished") from None
-                time.sleep(0.1)
         yield
     finally:
+        with contextlib.suppress(FileNotFoundError):
+            lock.unlink()               # still holding it: a waiter on this inode will see it is gone
         fh.close()

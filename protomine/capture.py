@@ -79,6 +79,29 @@ class Capture:
             return None
         return _read_png(self.frame_file("masks", frame_id), "mask", self.intrinsics).astype(np.int32)
 
+    def check_headers(self) -> None:
+        """Open every frame file's PNG header (no pixel decoding): present, readable, right mode and size.
+
+        Cheap enough to run on every capture before a long job starts; :meth:`validate_images` decodes too.
+        """
+        kinds = ("rgb", "depth") + (("masks",) if self.has_masks else ())
+        for fr in self.frames:
+            for kind in kinds:
+                path, what = self.frame_file(kind, fr.id), "mask" if kind == "masks" else kind
+                want, modes = _EXPECT[what]
+                try:
+                    with Image.open(path) as im:
+                        mode, (w, h) = im.mode, im.size
+                except FileNotFoundError:
+                    raise InputError(path, f"frame {fr.id}", f"{kind} image is missing") from None
+                except (OSError, SyntaxError, ValueError) as e:
+                    raise InputError(path, what, f"cannot read PNG ({e})") from None
+                if mode not in modes:
+                    raise InputError(path, what, f"expected {want}, got PIL mode {mode}")
+                if (w, h) != (self.intrinsics.width, self.intrinsics.height):
+                    raise InputError(path, "size", f"expected {self.intrinsics.width}x{self.intrinsics.height} "
+                                     f"(intrinsics), got {w}x{h}")
+
     def validate_images(self) -> None:
         """Open every frame file once so bad PNGs fail before any work starts."""
         for fr in self.frames:

@@ -9,27 +9,39 @@ import typer
 
 from .errors import InputError
 
-app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False,
+# plain click help (rich_markup_mode=None): flags read as flags (no "<bool>" column) and "[scale]" in a
+# help text stays text; commands are listed in COMMANDS order, which is the pipeline's order
+app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_enable=False, rich_markup_mode=None,
+                  context_settings={"max_content_width": 110},
                   help="Mine pose-aware object prototypes from unlabelled RGB-D captures.")
 
 COMMANDS: list[tuple[str, str]] = [
-    # (module under protomine, function name); each stage adds its own line
-    ("demo", "demo"),
-    ("provenance", "provenance_cmd"),
-    ("bench", "bench"),
+    # (module under protomine, function name), in pipeline order: the order `protomine --help` lists them
+    ("scenes.command", "scenes"),
     ("ingest.command", "ingest"),
     ("mine.command", "mine"),
-    ("scenes.command", "scenes"),
-    ("audit.command", "audit"),
     ("label.command", "label"),
     ("curate.command", "tag"),
     ("curate.command", "find"),
     ("curate.command", "export"),
+    ("audit.command", "audit"),
+    ("demo", "demo"),
+    ("bench", "bench"),
+    ("provenance", "provenance_cmd"),
 ]
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        from . import __version__
+        from .version import code_commit
+        print(f"protomine {__version__} (commit {code_commit()})")
+        raise typer.Exit()
+
+
 @app.callback()
-def _root() -> None:
+def _root(version: bool = typer.Option(False, "--version", callback=_print_version, is_eager=True,
+                                       help="Print the version and the commit, then exit.")) -> None:
     """Find objects in RGB-D captures, lift them to 3D volumes, mine pose-aware prototypes, label, audit."""
 
 
@@ -40,17 +52,48 @@ def guarded(fn):
         try:
             return fn(*args, **kwargs)
         except InputError as e:
-            print(f"error: {e}", file=sys.stderr)
+            for line in (e.lines() if hasattr(e, "lines") else [str(e)]):
+                print(f"error: {line}", file=sys.stderr)
             raise typer.Exit(2) from None
     return wrapper
+
+
+def _plain_arguments() -> None:
+    """Arguments read as in any Unix tool's help: ``LIBRARY CAPTURE...`` in the usage line and the argument
+    list, without typer's ``{...}`` braces and ``<path>`` type tags (an argument's metavar already says it)."""
+    from typer.core import TyperArgument
+
+    def name(self) -> str:
+        return (self.metavar or self.name.upper()) + ("..." if self.nargs != 1 else "")
+
+    TyperArgument._usage_display_name = lambda self: name(self) if self.required else f"[{name(self)}]"
+    TyperArgument._rich_display_name = name
+    TyperArgument.display_type_rich = lambda self, ctx: None
+
+    # an option without a metavar shows a plain placeholder (``--seed N``, ``--json PATH``), never ``<int range>``
+    from typer.core import TyperOption
+    typed = TyperOption.display_type_rich
+    plain = {"int": "N", "float": "X", "path": "PATH", "str": "TEXT"}
+
+    def option_type(self, ctx) -> str:
+        if self.metavar:
+            return self.metavar
+        t = typed(self, ctx).strip("<>").removesuffix(" range")
+        return plain.get(t, t.upper())
+
+    TyperOption.display_type_rich = option_type
 
 
 def _register() -> None:
     for mod, name in COMMANDS:
         module = importlib.import_module(f"protomine.{mod}")
-        app.command(name=name.removesuffix("_cmd"))(guarded(getattr(module, name)))
+        fn = getattr(module, name)
+        # the whole first line of the docstring in the command list (click would cut it at ~45 characters)
+        short = (fn.__doc__ or "").strip().split("\n")[0].rstrip(".")
+        app.command(name=name.removesuffix("_cmd"), short_help=short)(guarded(fn))
 
 
+_plain_arguments()
 _register()
 
 

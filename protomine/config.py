@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 import json
 import tomllib
+from importlib import resources
 from pathlib import Path
 from typing import Any
 
@@ -17,7 +18,7 @@ from .errors import InputError
 
 # The presets ship inside the package (``protomine/configs``); the top-level ``configs`` folder of a checkout
 # is a link to it, so there is one source of truth and an installed wheel finds its presets.
-CONFIG_DIR = Path(__file__).resolve().parent / "configs"
+CONFIG_DIR = Path(str(resources.files("protomine") / "configs"))
 
 # (min, max) inclusive bounds for numeric keys; lists are checked element-wise.
 BOUNDS: dict[str, tuple[float, float]] = {
@@ -35,6 +36,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "volume.height_bins": (1, 64),
     "volume.radial_margin": (1.0, 3.0),
     "volume.height_margin": (1.0, 3.0),
+    "scenes.tumbled_fraction": (0.0, 1.0),
     "mine.clusters": (0, 100000),
     "mine.max_clusters": (1, 100000),
     "mine.scales": (0.25, 4.0),
@@ -46,7 +48,6 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.colour_weight": (0.0, 10.0),
     "mine.symmetry_tol": (0.0, 1.0),
     "mine.symmetry_factor": (0.1, 100.0),
-    "mine.threshold_quantile": (0.5, 1.0),
     "label.unknown_score": (0.0, 1.0),
     "audit.bootstrap": (10, 100000),
     "audit.match_radius_m": (1e-4, 10.0),

@@ -20,7 +20,7 @@ import numpy as np
 import typer
 
 from .atomic import write_text
-from .cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from
+from .cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
 from .scale.options import executor_for
 
 AUDIT_FRACTION = 0.4   # share of mined objects whose truth is handed to the audit as "hand labels"
@@ -59,7 +59,7 @@ def _export_line(summary: dict) -> str:
 
 
 def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
-                       truth: dict, quiet: bool, executor) -> None:
+                       truth: dict, say, executor) -> None:
     """Label held-out single views; then a one-shot search for a class that mining never saw."""
     from .capture import read_capture
     from .curate.oneshot import find_similar, retrieval_scores
@@ -68,13 +68,14 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     from .label.evaluate import evaluate_labels
     from .label.matcher import label_captures
     from .label.overlays import write_overlays
+    from .provenance import file_fingerprint, provenance
+    from .records import write_records
 
     stats: dict = {}
-    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=None if quiet else Progress("label"),
-                          executor=executor)
-    write_text(out / "labels.jsonl", "".join(json.dumps(r) + "\n" for r in recs))
-    for c in singles[:6]:
-        write_overlays(out / "overlays", read_capture(c), [r for r in recs if r["capture"] == c.name])
+    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=say, executor=executor)
+    prov = provenance(cfg, seed, {"library": file_fingerprint(library)}, command="demo")
+    write_records(out / "labels.jsonl", recs, prov)
+    write_overlays(out / "overlays", [read_capture(c) for c in singles[:6]], recs, prov, progress=say)
     ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv")
     typer.echo(f"label: {ev['n_known']} known and {ev['n_unknown']} never-mined objects in {len(singles)} single views; "
                f"known-class accuracy {ev['accuracy']:.3f}, median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg; "
@@ -85,7 +86,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     scans = out / "new_scans.h5"
     if scans.exists():
         scans.unlink()
-    ingest_captures(singles, scans, cfg, seed=seed, executor=executor)
+    ingest_captures(singles, scans, cfg, seed=seed, progress=say, executor=executor)
     st = open_store(scans)
     labels = np.array([truth.get(o, {}).get("label") for o in st.ids], dtype=object)
     mined_classes = {truth[o]["label"] for o in lib.members["object"] if o in truth}
@@ -111,6 +112,7 @@ def demo(
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    verbose: VerboseOpt = False,
 ) -> None:
     """Run the whole job on the built-in scenario and print how well it did.
 
@@ -118,11 +120,11 @@ def demo(
     auto = the usable cores); mining runs in this process with the cores as torch threads.
     """
     with executor_for(config_from(config), None, None, processes=True) as ex:
-        _demo(out, captures, single, frames, rerender, config, seed, quiet, ex)
+        _demo(out, captures, single, frames, rerender, config, seed, quiet, verbose, ex)
 
 
 def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, config, seed: int, quiet: bool,
-          executor) -> None:
+          verbose: bool, executor) -> None:
     from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
     from .mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
@@ -130,15 +132,16 @@ def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, co
     from .scenes.scenario import generate_scenario
 
     cfg = config_from(config)
-    say = Progress("demo", quiet)
+    say = reporter("demo", quiet, verbose)
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     scenes = out / "scenes"
-    params = {"captures": captures, "single": single, "frames": frames, "seed": seed}
+    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, **cfg["scenes"]}
     if rerender or not _scenario_matches(scenes, params):
         say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, seed=seed,
-                          progress=None if quiet else Progress("scenes"), executor=executor)
+                          family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
+                          progress=say, executor=executor)
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))
@@ -152,15 +155,14 @@ def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, co
     store = out / "objects.h5"
     if store.exists():
         store.unlink()
-    res = ingest_captures(mining, store, cfg, seed=seed, progress=None if quiet else Progress("ingest"),
-                          executor=executor)
+    res = ingest_captures(mining, store, cfg, seed=seed, progress=say, executor=executor)
     t_ingest = time.monotonic() - t0 - t_scenes
     resid = [c["plane_residual_m"] * 1000 for c in res["captures"]]
     typer.echo(f"ingest: {res['objects']} objects from {len(mining)} captures, {res['frames_per_second']:.1f} frames/s, "
                f"plane residual median {np.median(resid):.2f} mm")
 
     library = out / "library.h5"
-    lib, info = mine_store(store, library, cfg, seed=seed, out_dir=out, progress=None if quiet else Progress("mine"))
+    lib, info = mine_store(store, library, cfg, seed=seed, progress=say)
     t_mine = time.monotonic() - t0 - t_scenes - t_ingest
     ev = evaluate_mining(lib, truth)
     n_classes = ev["n_classes"]
@@ -189,10 +191,10 @@ def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, co
 
     singles = [scenes / c for c in scen["single"]]
     if singles:
-        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, quiet, executor)
+        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say, executor)
 
     from .curate.export import export_labels
-    exp = export_labels(lib, open_store(store), mining, out / "export", cfg, seed=seed)
+    exp = export_labels(lib, open_store(store), mining, out / "export", cfg, progress=say)
     typer.echo(f"export: {_export_line(exp)} -> {out / 'export'}")
 
     # audit against a held-out subset of the truth, as a user with a few dozen hand labels would
@@ -200,7 +202,7 @@ def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, co
     held = out / "heldout.csv"
     n_held = heldout_subset(scenes / "truth_full.csv", list(lib.members["object"]), held, AUDIT_FRACTION,
                             np.random.default_rng(seed))
-    doc = run_audit(library, held, out / "report", cfg, store=store, seed=seed, progress=None if quiet else Progress("audit"))
+    doc = run_audit(library, held, out / "report", cfg, store=store, seed=seed, progress=say)
     typer.echo(f"audit ({n_held} hand labels): " + summary_line(doc, out / "report"))
     typer.echo(f"done in {time.monotonic() - t0:.0f} s (scenes {t_scenes:.0f} s, ingest {t_ingest:.0f} s, mine {t_mine:.0f} s). "
                "The labels are bootstrapped, not ground truth: audit them (see the report) before training anything "

@@ -30,3 +30,18 @@ class InputError(Exception):
         if self.field:
             where += f": {self.field}"
         return f"{where}: {self.message}"
+
+
+class InputErrors(InputError):
+    """Several bad inputs found in one check (e.g. every bad capture of an ingest): one line each."""
+
+    def __init__(self, errors: list[InputError]):
+        self.errors = list(errors)
+        first = self.errors[0]
+        super().__init__(first.path, first.field, first.message)
+
+    def __str__(self) -> str:
+        return "\n".join(InputError.__str__(e) for e in self.errors)
+
+    def lines(self) -> list[str]:
+        return [InputError.__str__(e) for e in self.errors]

@@ -158,7 +158,7 @@ def test_cli_reports_bad_capture_in_one_line(tmp_path):
     from protomine.cli import app
     folder = _write_valid(tmp_path / "cap")
     _edit_json(folder, _set_pose(_reflected))
-    res = CliRunner().invoke(app, ["ingest", str(folder), "--store", str(tmp_path / "s.h5"), "--quiet"])
+    res = CliRunner().invoke(app, ["ingest", str(folder), "--out", str(tmp_path / "s.h5"), "--quiet"])
     assert res.exit_code == 2
     out = (res.stderr if hasattr(res, "stderr") and res.stderr else res.output).strip()
     assert out.startswith("error:") and "capture.json" in out and "frames[0].cam_to_world" in out and "reflection" in out

@@ -94,8 +94,9 @@ def test_cli_writes_json_lines_and_one_overlay_per_frame(labelled, tmp_path):
     pngs = sorted((tmp_path / "ov").glob("*.png"))
     assert len(pngs) == 3
     with Image.open(pngs[0]) as im:
-        assert im.size == (160, 120) and im.mode == "RGB"
-    assert (tmp_path / "labels.jsonl.provenance.json").is_file()
+        assert im.size == (320, 240) and im.mode == "RGB"      # drawn on the frame upscaled 2x
+    assert "labels.jsonl" in json.loads((tmp_path / "provenance.json").read_text())["files"]
+    assert len(json.loads((tmp_path / "ov" / "provenance.json").read_text())["files"]) == 3
 
 
 def test_cli_bad_library_is_one_line_error(tmp_path):

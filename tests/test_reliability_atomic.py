@@ -65,7 +65,7 @@ def test_sigkill_during_ingest_keeps_previous_store(point, tmp_path, tiny_world)
     before = _state(store)
     n_before = len(open_store(store))
     cap = make_tiny_capture(tmp_path / "cap3", two_object_scene(3), world_seed=3)
-    proc = _start(["ingest", str(cap), "--store", str(store), "--config", tiny_world["config"], "--quiet"], point)
+    proc = _start(["ingest", str(cap), "--out", str(store), "--config", tiny_world["config"], "--quiet"], point)
     _wait_marker(proc, point)
     proc.kill()                                   # SIGKILL: no cleanup handlers run
     proc.wait(timeout=30)
@@ -76,7 +76,7 @@ def test_sigkill_during_ingest_keeps_previous_store(point, tmp_path, tiny_world)
     left = _temporaries(tmp_path)
     assert len(left) == (0 if point == "inputs_read" else 1), left   # at most the killed writer's one file
     # the next writing command removes the dead writer's temporary and succeeds
-    res = CliRunner().invoke(app, ["ingest", str(cap), "--store", str(store), "--config", tiny_world["config"], "--quiet"])
+    res = CliRunner().invoke(app, ["ingest", str(cap), "--out", str(store), "--config", tiny_world["config"], "--quiet"])
     assert res.exit_code == 0, res.output
     assert _temporaries(tmp_path) == []
     assert len(open_store(store)) == n_before + 2
@@ -87,7 +87,7 @@ def test_sigkill_during_mine_keeps_previous_library(point, tmp_path, tiny_world)
     lib = tmp_path / "library.h5"
     shutil.copy2(tiny_world["library"], lib)
     before = _state(lib)
-    proc = _start(["mine", str(tiny_world["store"]), "--library", str(lib), "--clusters", "2", "--config", tiny_world["config"],
+    proc = _start(["mine", str(tiny_world["store"]), "--out", str(lib), "--clusters", "2", "--config", tiny_world["config"],
                    "--quiet"], point)
     _wait_marker(proc, point)
     proc.kill()
@@ -96,7 +96,7 @@ def test_sigkill_during_mine_keeps_previous_library(point, tmp_path, tiny_world)
     old = read_library(lib)
     assert old.n_clusters == 2 and len(old.members["object"]) == 6
     assert len(_temporaries(tmp_path)) == (0 if point == "inputs_read" else 1)
-    res = CliRunner().invoke(app, ["mine", str(tiny_world["store"]), "--library", str(lib), "--clusters", "2",
+    res = CliRunner().invoke(app, ["mine", str(tiny_world["store"]), "--out", str(lib), "--clusters", "2",
                                    "--config", tiny_world["config"], "--quiet"])
     assert res.exit_code == 0, res.output
     assert _temporaries(tmp_path) == []
@@ -109,13 +109,13 @@ def test_two_ingests_into_one_store_serialise_and_keep_both(tmp_path, tiny_world
     shutil.copy2(tiny_world["store"], store)
     c3 = make_tiny_capture(tmp_path / "cap3", two_object_scene(3), world_seed=3)
     c4 = make_tiny_capture(tmp_path / "cap4", two_object_scene(4), world_seed=4)
-    a = _start(["ingest", str(c3), "--store", str(store), "--config", tiny_world["config"], "--quiet"], "mid_write", pause_s=4.0)
+    a = _start(["ingest", str(c3), "--out", str(store), "--config", tiny_world["config"], "--quiet"], "mid_write", pause_s=4.0)
     _wait_marker(a, "mid_write")
     # a third writer that will not wait fails with the one clear error
     with pytest.raises(InputError, match="another protomine process is writing"):
         with exclusive_lock(store, timeout=0.2):
             pass
-    b = _start(["ingest", str(c4), "--store", str(store), "--config", tiny_world["config"], "--quiet"], None)
+    b = _start(["ingest", str(c4), "--out", str(store), "--config", tiny_world["config"], "--quiet"], None)
     assert a.wait(timeout=90) == 0, a.stderr.read()
     assert b.wait(timeout=90) == 0, b.stderr.read()
     s = open_store(store)
@@ -128,7 +128,7 @@ def test_two_ingests_into_one_store_serialise_and_keep_both(tmp_path, tiny_world
 def test_library_writer_lock_blocks_a_second_writer(tmp_path, tiny_world):
     lib = tmp_path / "library.h5"
     shutil.copy2(tiny_world["library"], lib)
-    a = _start(["mine", str(tiny_world["store"]), "--library", str(lib), "--clusters", "2", "--config", tiny_world["config"],
+    a = _start(["mine", str(tiny_world["store"]), "--out", str(lib), "--clusters", "2", "--config", tiny_world["config"],
                 "--quiet"], "mid_write", pause_s=3.0)
     _wait_marker(a, "mid_write")
     with pytest.raises(InputError) as ei:
@@ -160,7 +160,7 @@ def _object_bits(store: Path, capture: str) -> dict:
 
 def test_cli_reingest_replaces_and_append_keeps_old_objects_bit_identical(tmp_path, tiny_world):
     store = tmp_path / "objects.h5"
-    run = lambda *caps: CliRunner().invoke(app, ["ingest", *map(str, caps), "--store", str(store), "--config", tiny_world["config"], "--quiet"])  # noqa: E731
+    run = lambda *caps: CliRunner().invoke(app, ["ingest", *map(str, caps), "--out", str(store), "--config", tiny_world["config"], "--quiet"])  # noqa: E731
     c0, c1 = tiny_world["caps"][0], tiny_world["caps"][1]
     assert run(c0).exit_code == 0
     bits0 = _object_bits(store, "cap0")

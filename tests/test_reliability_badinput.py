@@ -136,7 +136,7 @@ def _capture_case(name, breaker, file, words, tmp_path, world) -> Case:
         return ingest_captures([cap], store, cfg)
     if name == "no support plane":
         api = lambda: __import__("protomine.ingest.pipeline", fromlist=["x"]).ingest_captures([cap], store, cfg)  # noqa: E731
-    return Case(["ingest", str(cap), "--store", str(store), "--config", _CONFIG[0], "--quiet"], api, file, words, [store])
+    return Case(["ingest", str(cap), "--out", str(store), "--config", _CONFIG[0], "--quiet"], api, file, words, [store])
 
 
 # --- other inputs ----------------------------------------------------------------------------
@@ -163,7 +163,7 @@ def _mine_case(store: Path, tmp_path: Path, file: str, words, extra=(), n_cluste
     def api():
         from protomine.mine.pipeline import mine_store
         return mine_store(store, lib, load_config(config), n_clusters=n_clusters)
-    argv = ["mine", str(store), "--library", str(lib), "--config", str(config), "--quiet", *extra]
+    argv = ["mine", str(store), "--out", str(lib), "--config", str(config), "--quiet", *extra]
     return Case(argv, api, file, words, outs)
 
 
@@ -173,7 +173,7 @@ def _audit_case(lib: Path, truth: Path, store: Path, tmp_path: Path, file: str, 
     def api():
         from protomine.audit.run import run_audit
         return run_audit(lib, truth, out, _cfg(), store=store)
-    argv = ["audit", str(lib), "--truth", str(truth), "--out", str(out), "--store", str(store), "--config", _CONFIG[0], "--quiet"]
+    argv = ["audit", str(lib), str(truth), "--out", str(out), "--store", str(store), "--config", _CONFIG[0], "--quiet"]
     return Case(argv, api, file, words, [out])
 
 
@@ -183,13 +183,13 @@ def _other_case(name: str, tmp_path: Path, world) -> Case:
     if name == "capture folder missing":
         s = tmp_path / "out" / "objects.h5"
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(tmp_path / "nope"), "--store", str(s), "--quiet"],
+        return Case(["ingest", str(tmp_path / "nope"), "--out", str(s), "--quiet"],
                     lambda: ingest_captures([tmp_path / "nope"], s, _cfg()), "nope", ("not found",), [s])
     if name == "capture with no objects":
         cap = make_tiny_capture(tmp_path / "empty", [], n_frames=2)
         s = tmp_path / "out" / "objects.h5"
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(cap), "--store", str(s), "--config", _CONFIG[0], "--quiet"],
+        return Case(["ingest", str(cap), "--out", str(s), "--config", _CONFIG[0], "--quiet"],
                     lambda: ingest_captures([cap], s, _cfg()), "empty", ("objects", "no objects"), [s])
     if name == "duplicate capture names":
         a, b = tmp_path / "x" / "cap", tmp_path / "y" / "cap"
@@ -197,12 +197,12 @@ def _other_case(name: str, tmp_path: Path, world) -> Case:
         shutil.copytree(world["caps"][1], b)
         s = tmp_path / "out" / "objects.h5"
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(a), str(b), "--store", str(s), "--quiet"],
+        return Case(["ingest", str(a), str(b), "--out", str(s), "--quiet"],
                     lambda: ingest_captures([a, b], s, _cfg()), "<input>", ("captures", "unique"), [s])
     if name == "ingest into a store that is not HDF5":
         s = _text(tmp_path / "out" / "objects.h5", "not an hdf5 file\n")
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(world["caps"][0]), "--store", str(s), "--config", _CONFIG[0], "--quiet"],
+        return Case(["ingest", str(world["caps"][0]), "--out", str(s), "--config", _CONFIG[0], "--quiet"],
                     lambda: ingest_captures([world["caps"][0]], s, _cfg()), "objects.h5", ("HDF5",), [s])
     if name == "ingest into a store built with another grid":
         s = tmp_path / "out" / "objects.h5"
@@ -210,7 +210,7 @@ def _other_case(name: str, tmp_path: Path, world) -> Case:
         shutil.copy2(store, s)
         conf = _text(tmp_path / "grid.toml", "[volume]\nradial_bins = 6\n")
         from protomine.ingest.pipeline import ingest_captures
-        return Case(["ingest", str(world["caps"][1]), "--store", str(s), "--config", str(conf), "--quiet"],
+        return Case(["ingest", str(world["caps"][1]), "--out", str(s), "--config", str(conf), "--quiet"],
                     lambda: ingest_captures([world["caps"][1]], s, load_config(conf)), "objects.h5", ("grid",), [s])
     if name == "mine: store is not HDF5":
         return _mine_case(_text(tmp_path / "bad.h5", "hello\n"), tmp_path, "bad.h5", ("HDF5",))
@@ -321,7 +321,7 @@ def test_cli_subprocess_prints_one_line_and_no_traceback(tmp_path, tiny_world):
     shutil.copytree(tiny_world["caps"][0], cap)
     _edit(_set(["frames", 0, "cam_to_world"], _reflected))(cap)
     store = tmp_path / "objects.h5"
-    r = subprocess.run(["protomine", "ingest", str(cap), "--store", str(store), "--quiet"], capture_output=True, text=True,
+    r = subprocess.run(["protomine", "ingest", str(cap), "--out", str(store), "--quiet"], capture_output=True, text=True,
                        timeout=120)
     assert r.returncode == 2 and r.stdout == ""
     assert r.stderr.count("\n") == 1 and r.stderr.startswith("error: ") and "capture.json: frames[0].cam_to_world" in r.stderr

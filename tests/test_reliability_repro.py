@@ -21,7 +21,7 @@ from typer.testing import CliRunner
 from protomine.cli import app
 from protomine.ingest.pipeline import ingest_captures
 from protomine.mine.pipeline import mine_store
-from protomine.provenance import SIDECAR_SUFFIX, read_provenance
+from protomine.provenance import MANIFEST, SIDECAR_SUFFIX, read_provenance
 
 THREAD_ATOL = 1e-4   # prototypes / distances, 1 vs 2 threads (float32 sums in another order)
 
@@ -82,14 +82,16 @@ def test_every_output_of_ingest_mine_audit_has_provenance(tmp_path, tiny_world):
     conf = tiny_world["config"]
     store, lib, rep = tmp_path / "s" / "objects.h5", tmp_path / "l" / "library.h5", tmp_path / "report"
     r = CliRunner()
-    assert r.invoke(app, ["ingest", *map(str, tiny_world["caps"]), "--store", str(store), "--config", conf, "--seed", "5", "-q"]).exit_code == 0
-    assert r.invoke(app, ["mine", str(store), "--library", str(lib), "-k", "2", "--config", conf, "--seed", "5", "-q"]).exit_code == 0
+    assert r.invoke(app, ["ingest", *map(str, tiny_world["caps"]), "--out", str(store), "--config", conf, "--seed", "5", "-q"]).exit_code == 0
+    assert r.invoke(app, ["mine", str(store), "--out", str(lib), "-k", "2", "--config", conf, "--seed", "5", "-q"]).exit_code == 0
     truth = tmp_path / "truth.csv"
     truth.write_text("object,label\ncap0/1,box\ncap0/2,can\ncap1/1,box\ncap1/2,can\n")
-    res = r.invoke(app, ["audit", str(lib), "--truth", str(truth), "--out", str(rep), "--config", conf, "--seed", "5", "-q"])
+    res = r.invoke(app, ["audit", str(lib), str(truth), "--out", str(rep), "--config", conf, "--seed", "5", "-q"])
     assert res.exit_code == 0, res.output
-    outputs = [store, lib] + sorted(p for p in lib.parent.iterdir() if p.is_file() and not p.name.endswith((SIDECAR_SUFFIX, ".lock"))) \
-        + sorted(p for p in rep.iterdir() if not p.name.endswith(SIDECAR_SUFFIX))
+    # no lock file outlives the command that held it
+    assert not [p for p in tmp_path.rglob("*.lock")]
+    outputs = [store, lib] + sorted(p for p in lib.parent.iterdir() if p.is_file() and p.name != MANIFEST) \
+        + sorted(p for p in rep.iterdir() if p.name != MANIFEST)
     names = {p.name for p in outputs}
     assert {"assignments.csv", "gallery.png", "report.json", "report.html"} <= names
     for p in outputs:
@@ -100,19 +102,21 @@ def test_every_output_of_ingest_mine_audit_has_provenance(tmp_path, tiny_world):
         out = _prov_cli(p)
         assert {"seed", "config", "inputs", "code_version", "command"} <= out["keys"], (p, out["text"])
     assert json.loads(read_provenance(store)["inputs"]).keys() == {"cap0", "cap1", "cap2"}
-    # a file changed after protomine wrote it no longer matches its sidecar: one clear error
+    # one manifest per output folder, no sidecar per file
+    assert not list(tmp_path.rglob("*" + SIDECAR_SUFFIX))
+    # a file changed after protomine wrote it no longer matches its manifest entry: one clear error
     (lib.parent / "assignments.csv").write_text("object,cluster\n")
     res = r.invoke(app, ["provenance", str(lib.parent / "assignments.csv")])
-    assert res.exit_code == 2 and "assignments.csv.provenance.json" in res.stderr and "changed" in res.stderr
+    assert res.exit_code == 2 and "provenance.json: files.assignments.csv.fingerprint" in res.stderr and "changed" in res.stderr
 
 
 def test_export_outputs_have_provenance(tmp_path, tiny_world):
     out = tmp_path / "exp"
-    res = CliRunner().invoke(app, ["export", str(tiny_world["library"]), str(tiny_world["store"]), "--captures",
+    res = CliRunner().invoke(app, ["export", str(tiny_world["library"]), str(tiny_world["store"]),
                                    str(tiny_world["caps"][0]), "--out", str(out)])
     assert res.exit_code == 0, res.output
     for p in out.iterdir():
-        if not p.name.endswith(SIDECAR_SUFFIX):
+        if p.name != MANIFEST:
             assert read_provenance(p)["producer"] == "protomine"
 
 

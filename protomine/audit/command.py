@@ -6,20 +6,25 @@ from typing import Annotated, Optional
 
 import typer
 
-from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from, existing
+from ..cliutil import ConfigOpt, LibraryArg, QuietOpt, SeedOpt, VerboseOpt, config_from, existing, reporter
 
 
 def audit(
-    library: Annotated[Path, typer.Argument(help="HDF5 prototype library (protomine mine).")],
-    truth: Annotated[Path, typer.Option("--truth", "-t", help="Held-out labels CSV: object,label[,yaw_deg] or capture,x,y,z,label[,yaw_deg].")],
-    out: Annotated[Path, typer.Option("--out", "-o", help="Report folder (report.json, report.html, PNGs).")],
-    store: Annotated[Optional[Path], typer.Option("--store", "-s", help="Object store; default: the one recorded in the library.")] = None,
+    library: LibraryArg,
+    truth: Annotated[Path, typer.Argument(metavar="TRUTH.csv", show_default=False,
+                                          help="Held-out labels CSV: object,label[,yaw_deg] or capture,x,y,z,label[,yaw_deg].")],
+    out: Annotated[Path, typer.Option("--out", "-o", metavar="DIR", show_default=False,
+                                      help="Report folder (report.html, report.json, PNGs).")],
+    store: Annotated[Optional[Path], typer.Option("--store", "-s", metavar="STORE.h5",
+                                                  help="Object store; default: the one recorded in the library.")] = None,
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    verbose: VerboseOpt = False,
 ) -> None:
     """Measure how pure the mined clusters are against a few hand labels, with honest uncertainty."""
     from .run import run_audit, summary_line
     cfg = config_from(config)
-    doc = run_audit(existing(library, "library"), truth, out, cfg, store=store, seed=seed, progress=Progress("audit", quiet))
+    doc = run_audit(existing(library, "library"), truth, out, cfg, store=store, seed=seed,
+                    progress=reporter("audit", quiet, verbose))
     typer.echo(summary_line(doc, out))

@@ -10,7 +10,8 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import read_library
-from ..provenance import file_fingerprint, provenance, write_sidecar
+from ..progress import bar
+from ..provenance import file_fingerprint, provenance, record_outputs
 from .metrics import symmetry_to_period_deg
 from .report import Assignments, build_audit, write_report
 from .truth import object_table, read_truth
@@ -47,15 +48,16 @@ def run_audit(library: str | Path, truth: str | Path, out: str | Path, cfg: dict
     periods = {k: symmetry_to_period_deg(int(s)) for k, s in enumerate(lib.prototypes["symmetry"])}
     prov = provenance(cfg, seed, {"library": file_fingerprint(library), "truth": file_fingerprint(truth),
                                   "store": st.fingerprint()}, command="audit")
-    doc = build_audit(assignments, rows, objects, symmetry_period_deg=periods, names=lib.names, cfg=cfg,
-                      rng=np.random.default_rng(seed), truth_path=truth, provenance=prov)
-    say("numbers done; drawing")
-    out.mkdir(parents=True, exist_ok=True)
-    gallery = render_gallery(out / "gallery.png", lib.prototypes["volumes"], counts=lib.prototypes["count"],
-                             symmetry=lib.prototypes["symmetry"],
-                             names=[lib.display_name(k) for k in range(lib.n_clusters)])
-    for path in write_report(out, doc, gallery_png=gallery, crops=st.crops).values():
-        write_sidecar(path, prov)
+    with bar(progress, "audit", total=2, unit="steps") as b:     # numbers (bootstrap), then pictures
+        doc = build_audit(assignments, rows, objects, symmetry_period_deg=periods, names=lib.names, cfg=cfg,
+                          rng=np.random.default_rng(seed), truth_path=truth, provenance=prov)
+        b.advance()
+        out.mkdir(parents=True, exist_ok=True)
+        gallery = render_gallery(out / "gallery.png", lib.prototypes["volumes"], counts=lib.prototypes["count"],
+                                 symmetry=lib.prototypes["symmetry"],
+                                 names=[lib.display_name(k) for k in range(lib.n_clusters)])
+        record_outputs(list(write_report(out, doc, gallery_png=gallery, crops=st.crops).values()), prov)
+        b.advance()
     return doc
 
 

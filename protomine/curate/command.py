@@ -8,23 +8,29 @@ import numpy as np
 import typer
 
 from ..atomic import clean_stale_temporaries
-from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from, existing
+from ..cliutil import (CapturesArg, ConfigOpt, LibraryArg, QuietOpt, SeedOpt, VerboseOpt, config_from, existing,
+                       notice_library_config, reporter)
+
+StoreArg = Annotated[Path, typer.Argument(metavar="STORE.h5", show_default=False,
+                                          help="HDF5 object store (protomine ingest).")]
 
 
 def tag(
-    library: Annotated[Path, typer.Argument(help="HDF5 prototype library (protomine mine).")],
-    name: Annotated[Optional[str], typer.Option("--name", "-n", help="Name to give the cluster.")] = None,
-    object_id: Annotated[Optional[str], typer.Option("--object", "-o", help="Name the cluster that holds this object id.")] = None,
-    cluster: Annotated[Optional[int], typer.Option("--cluster", "-k", min=0, max=100000, help="Name this cluster index directly.")] = None,
+    library: LibraryArg,
+    name: Annotated[Optional[str], typer.Option("--name", "-n", metavar="NAME", help="Name to give the cluster.")] = None,
+    object_id: Annotated[Optional[str], typer.Option("--object", metavar="ID",
+                                                     help="Name the cluster that holds this object id.")] = None,
+    cluster: Annotated[Optional[int], typer.Option("--cluster", min=0, max=100000, metavar="K",
+                                                   help="Name this cluster index directly.")] = None,
     clear: Annotated[bool, typer.Option("--clear", help="Remove the cluster's name.")] = False,
-    config: ConfigOpt = None,
-    seed: SeedOpt = 0,
     quiet: QuietOpt = False,
 ) -> None:
-    """Name (or rename, or --clear) a cluster from one example object or by its index."""
+    """Name (or rename, or --clear) a cluster from one example object or by its index.
+
+    The library is rewritten in place, and gallery.png beside it redrawn.
+    """
     from .names import name_cluster
-    config_from(config)
-    say = Progress("tag", quiet)
+    say = reporter("tag", quiet)
     clean_stale_temporaries(library.parent)
     lib = name_cluster(existing(library, "library"), name=name, object_id=object_id, cluster=cluster, clear=clear)
     k = lib.members["cluster"][lib.member_index(object_id)] if object_id is not None else cluster
@@ -33,38 +39,46 @@ def tag(
 
 
 def find(
-    library: Annotated[Path, typer.Argument(help="HDF5 prototype library (protomine mine).")],
-    store: Annotated[Path, typer.Argument(help="HDF5 object store holding the example and the objects to search.")],
-    example: Annotated[str, typer.Option("--example", "-e", help="Object id of the one example (ingest a new scan into the store first).")],
-    out: Annotated[Path, typer.Option("--out", help="CSV to write: object, distance, score, yaw_deg, scale, cluster (best first).")],
-    top: Annotated[Optional[int], typer.Option("--top", min=1, max=10_000_000, help="Write only the best N rows.")] = None,
-    add: Annotated[Optional[str], typer.Option("--add", help="Add the one-shot prototype to the library as a new cluster with this name.")] = None,
+    library: LibraryArg,
+    store: Annotated[Path, typer.Argument(metavar="STORE.h5", show_default=False,
+                                          help="HDF5 object store holding the example and the objects to search.")],
+    example: Annotated[str, typer.Option("--example", "-e", metavar="ID", show_default=False,
+                                         help="Object id of the one example (ingest a new scan into the store first).")],
+    out: Annotated[Path, typer.Option("--out", "-o", metavar="MATCHES.csv", show_default=False,
+                                      help="CSV to write, best first: object, distance, score, yaw_deg, scale, "
+                                      "cluster (the example itself is left out).")],
+    top: Annotated[Optional[int], typer.Option("--top", min=1, max=10_000_000, metavar="N",
+                                               help="Write only the best N rows.")] = None,
+    add: Annotated[Optional[str], typer.Option("--add", metavar="NAME", help="Add the one-shot prototype to the "
+                                               "library as a new cluster with this name.")] = None,
     config: ConfigOpt = None,
-    seed: SeedOpt = 0,
     quiet: QuietOpt = False,
 ) -> None:
     """Find every instance of a new item class from one example object."""
     from ..ingest.sharded import open_store
     from ..mine.library import read_library
+    from ..provenance import file_fingerprint, provenance, record_outputs
     from .names import check_name
-    from ..provenance import file_fingerprint, provenance, write_sidecar
     from .oneshot import add_oneshot, find_similar, write_matches
     cfg = config_from(config)
-    say = Progress("find", quiet)
+    say = reporter("find", quiet)
     if add is not None:
         check_name(add, field="--add")
     clean_stale_temporaries(out.parent)
     lib = read_library(existing(library, "library"))
+    notice_library_config(lib, config, cfg, say)
     st = open_store(existing(store, "object store"))
     mt = find_similar(lib, st, example, cfg, top=top)
     p = mt.prototype
     say(f"one-shot prototype from {example}: calibration from {p.calibration} (mu {p.mu:.3f}, sigma {p.sigma:.3f}), "
         f"symmetry {p.symmetry}")
     write_matches(out, mt, top)
-    write_sidecar(out, provenance(cfg, seed, {"library": file_fingerprint(library), "store": st.fingerprint(),
+    record_outputs([out], provenance(cfg, 0, {"library": file_fingerprint(library), "store": st.fingerprint(),
                                               "example": example}, command="find"))
-    n_hi = int(np.sum(mt.score >= cfg["label"]["unknown_score"]))
-    typer.echo(f"{len(mt.object)} objects ranked; {n_hi} score >= {cfg['label']['unknown_score']}; wrote {out}")
+    others = mt.order
+    n_hi = int(np.sum(mt.score[others] >= cfg["label"]["unknown_score"]))
+    typer.echo(f"{len(others)} objects ranked (the example left out); {n_hi} score >= "
+               f"{cfg['label']['unknown_score']}; wrote {out}")
     if add is not None:
         lib2, info = add_oneshot(library, st, example, cfg, name=add, matches=mt)
         typer.echo(f"added cluster {info['cluster']} {info['name']!r}: {info['members']} members "
@@ -72,25 +86,33 @@ def find(
 
 
 def export(
-    library: Annotated[Path, typer.Argument(help="HDF5 prototype library (protomine mine).")],
-    store: Annotated[Path, typer.Argument(help="HDF5 object store the library was mined from.")],
-    captures: Annotated[list[Path], typer.Option("--captures", "-i", help="Capture folders to export (repeat the option).")],
-    out: Annotated[Path, typer.Option("--out", help="Output folder: labels.jsonl, instances.json (COCO), classes.csv, summary.json.")],
-    min_score: Annotated[float, typer.Option("--min-score", min=0.0, max=1.0, help="Drop labels whose calibrated score is below this.")] = 0.0,
+    library: LibraryArg,
+    source: Annotated[Path, typer.Argument(metavar="STORE.h5|LABELS.jsonl", show_default=False,
+                                           help="Object store the library was mined from (exports the mined "
+                                           "labels), or the output of protomine label (frames never ingested).")],
+    captures: CapturesArg,
+    out: Annotated[Path, typer.Option("--out", "-o", metavar="DIR", show_default=False,
+                                      help="Output folder: labels.jsonl, instances.json (COCO), classes.csv, "
+                                      "summary.json.")],
+    min_score: Annotated[float, typer.Option("--min-score", min=0.0, max=1.0, metavar="S",
+                                             help="Drop labels whose calibrated score is below S.")] = 0.0,
     config: ConfigOpt = None,
-    seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    verbose: VerboseOpt = False,
 ) -> None:
-    """Export bootstrapped labels (not ground truth) of every object in every frame of mined captures."""
-    from ..ingest.sharded import open_store
+    """Export bootstrapped labels (not ground truth) of every object in every frame of CAPTURE... as COCO.
+
+    From a store: the labels mining gave the captures' objects.  From label output: the records of
+    protomine label for those captures (single frames that were never ingested or mined).
+    """
     from ..mine.library import read_library
     from .export import export_labels
     cfg = config_from(config)
-    say = Progress("export", quiet)
+    say = reporter("export", quiet, verbose)
     lib = read_library(existing(library, "library"))
-    st = open_store(existing(store, "object store"))
     clean_stale_temporaries(out) if out.is_dir() else None
-    s = export_labels(lib, st, [existing(c, "capture folder") for c in captures], out, cfg, min_score=min_score, seed=seed, progress=say)
+    s = export_labels(lib, existing(source, "store or label records"), [existing(c, "capture folder") for c in captures],
+                      out, cfg, min_score=min_score, progress=say)
     typer.echo(f"{s['labels']} labels in {s['images']} frames ({s['annotations']} COCO annotations, {s['categories']} categories); "
                f"{s['dropped_below_min_score']} dropped below --min-score {min_score}; {s['unknown_labels']} unknown; wrote {out}")
     typer.echo(s["note"])

@@ -72,9 +72,9 @@ def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
     gallery = Path(library_path).parent / "gallery.png"
     if not gallery.is_file():
         return None
-    from ..provenance import provenance_of, write_sidecar
+    from ..provenance import provenance_of, record_outputs
     p = lib.prototypes
     render_gallery(gallery, np.asarray(p["volumes"]), counts=np.asarray(p["count"]),
                    symmetry=np.asarray(p["symmetry"]), names=[str(x) for x in p["name"]])
-    write_sidecar(gallery, provenance_of(lib.attrs))
+    record_outputs([gallery], provenance_of(lib.attrs))
     return gallery

@@ -85,11 +85,14 @@ class Matches:
     scale: np.ndarray
     fit_scale: np.ndarray
     cluster: np.ndarray                 # the object's library cluster, -1 when it is not a member
+    example_index: int = -1             # the example's own row: matched (distance 0) but left out of ``order``
     order: np.ndarray = field(init=False)
 
     def __post_init__(self) -> None:
-        # ascending distance; unmatched (inf) last; ties broken by object id for determinism
-        self.order = np.lexsort((self.object.astype(str), self.distance))
+        # ascending distance; unmatched (inf) last; ties broken by object id for determinism; the example
+        # itself is not a find
+        order = np.lexsort((self.object.astype(str), self.distance))
+        self.order = order[order != self.example_index]
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
@@ -188,7 +191,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     score = np.where(np.isfinite(D), match_score(D, mu, sigma), 0.0)
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score,
                    reduce_yaw(yaw, np.full(N, float(period_of(np.array([symmetry]))[0]))),
-                   gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64))
+                   gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64), ex)
 
 
 def write_matches(path: str | Path, matches: Matches, top: int | None = None) -> Path:

@@ -10,7 +10,8 @@ from PIL import Image
 
 from ..atomic import pause_point
 from ..capture import read_capture
-from ..errors import InputError
+from ..errors import InputError, InputErrors
+from ..progress import bar, detail
 from ..provenance import folder_fingerprint, provenance
 from .proposals import SceneObjects, find_objects, object_frame
 from .store import CaptureRecord, ObjectRecord, ObjectStore, write_store
@@ -86,12 +87,15 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
 
 def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: Grid,
                  progress: Callable[[str], None] | None = None) -> tuple[list[ObjectRecord], CaptureRecord, dict, int]:
-    """One capture: its objects lifted into records, its capture record, its summary and its frame count."""
+    """One capture: its objects lifted into records, its capture record, its summary and its frame count.
+    Raises :class:`InputError` when the capture cannot be read or holds no object."""
     cap = read_capture(path, check_images=False)
+    detail(progress, f"{cap.name}: {len(cap.frames)} frames")
     scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
     if not scene.proposals:
         raise InputError(cap.path, "objects", "no objects found above the support plane "
-                         f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks {'used' if cap.has_masks and use_masks else 'not used'})")
+                         f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks "
+                         f"{'used' if cap.has_masks and use_masks else 'not used'})")
     recs = object_records(scene, cfg, grid)
     rec = CaptureRecord(
         name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
@@ -103,20 +107,56 @@ def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: 
     return recs, rec, summary, len(scene.frames)
 
 
-def _lift_item(shared: tuple, path: str) -> tuple[list[ObjectRecord], CaptureRecord, dict, int]:
-    """Executor item: one capture lifted in a worker process."""
-    cfg, seed, use_masks, grid = shared
-    return lift_capture(path, cfg, seed, use_masks, grid)
+def _why(e: InputError) -> str:
+    return f"{e.field + ': ' if e.field else ''}{e.message}"
+
+
+def _lift_item(shared: tuple, path: str) -> tuple | str:
+    """Executor item: one capture lifted in a worker process (with keep_going, a bad one gives its reason)."""
+    cfg, seed, use_masks, grid, keep_going = shared
+    try:
+        return lift_capture(path, cfg, seed, use_masks, grid)
+    except InputError as e:
+        if not keep_going:
+            raise
+        return _why(e)
+
+
+def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> tuple[list[Path], list[tuple[str, str]]]:
+    """Check every capture before any work: capture.json, every frame file's PNG header, unique names.
+
+    Returns (good captures, [(capture, reason)] of bad ones).  Without ``keep_going`` any bad capture raises
+    :class:`InputErrors` naming all of them (one line each); with it they are returned to be skipped.
+    """
+    names = [Path(c).name for c in captures]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    good, errors = [], []
+    for c in captures:
+        try:
+            read_capture(c, check_images=False).check_headers()
+            good.append(Path(c))
+        except InputError as e:
+            errors.append(e)
+    if errors and not keep_going:
+        raise InputErrors(errors)
+    return good, [(str(e.path), f"{e.field + ': ' if e.field else ''}{e.message}") for e in errors]
 
 
 def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *, seed: int = 0,
-                    use_masks: bool = True, progress: Callable[[str], None] | None = None, executor=None) -> dict:
+                    use_masks: bool = True, progress: Callable[[str], None] | None = None,
+                    keep_going: bool = False, executor=None) -> dict:
     """Ingest capture folders into the store at ``store`` (created or updated atomically).
 
     ``executor`` (``protomine.scale.executor``; None = this process) lifts the captures in its worker
     processes, one capture per item; the store is written once, here.  Captures are independent (each has
     its own generator, ``capture_rng``), so the store is the same whatever the number of workers.
-    Returns a summary: per-capture plane residual, object counts, frames per second, store counts.
+
+    keep_going: a capture that fails while it is read (a bad image) or holds no object is skipped and
+    listed in the summary's ``skipped`` [(capture, reason)]; the store is written for the others (not at
+    all when none is left).  Without it the first such capture raises :class:`InputError`.
+    Returns a summary: per-capture plane residual, object counts, frames per second, store counts, skipped.
     """
     import time
     grid = Grid.from_config(cfg)
@@ -131,33 +171,52 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
         if old.grid_shape != grid.shape:
             raise InputError(store, "grid", f"store was built with grid {old.grid_shape}, this run uses {grid.shape}; "
                              "use the same [volume] config or a new store")
-    objects, caps, per_capture = [], [], []
+    objects, caps, per_capture, skipped = [], [], [], []
     t0, n_frames = time.monotonic(), 0
+    total = sum(_frame_count(c) for c in captures)
+    with bar(progress, "ingest", total=total, unit="frames") as b:
 
-    def add(res: tuple[list[ObjectRecord], CaptureRecord, dict, int]) -> None:
-        nonlocal n_frames
-        recs, rec, summary, frames = res
-        objects.extend(recs)
-        caps.append(rec)
-        per_capture.append(summary)
-        n_frames += frames
-        if progress:
-            progress(f"capture {len(caps)}/{len(captures)} {rec.name}: {len(recs)} objects, plane residual "
-                     f"{rec.plane_residual_m * 1000:.2f} mm")
+        def add(path: str | Path, res: tuple | str) -> None:
+            nonlocal n_frames
+            if isinstance(res, str):  # skipped (keep_going): the reason
+                skipped.append((str(path), res))
+                b.set_total(b.total - _frame_count(path))
+                return
+            recs, rec, summary, frames = res
+            b.advance(frames)
+            objects.extend(recs)
+            caps.append(rec)
+            per_capture.append(summary)
+            n_frames += frames
+            detail(progress, f"{rec.name}: {len(recs)} objects, plane residual {rec.plane_residual_m * 1000:.2f} mm")
 
-    if executor is None or executor.n_workers == 1 or len(captures) < 2:
-        for ci, path in enumerate(captures):
-            if progress:
-                progress(f"capture {ci + 1}/{len(captures)} {Path(path).name}")
-            add(lift_capture(path, cfg, seed, use_masks, grid, progress))
-    else:
-        if progress:
-            progress(f"{len(captures)} captures on {executor.describe()}")
-        executor.map(_lift_item, [str(c) for c in captures], shared=(cfg, seed, use_masks, grid),
-                     fold=lambda _, res: add(res))
+        if executor is None or executor.n_workers == 1 or len(captures) < 2:
+            for path in captures:
+                try:
+                    res = lift_capture(path, cfg, seed, use_masks, grid, progress)
+                except InputError as e:
+                    if not keep_going:
+                        raise
+                    res = _why(e)
+                add(path, res)
+        else:
+            detail(progress, f"{len(captures)} captures on {executor.describe()}")
+            order = iter(captures)
+            executor.map(_lift_item, [str(c) for c in captures], shared=(cfg, seed, use_masks, grid, keep_going),
+                         fold=lambda _, res: add(next(order), res))
     elapsed = time.monotonic() - t0
     pause_point("inputs_read")
-    prov = provenance(cfg, seed, {c.name: c.fingerprint for c in caps}, command="ingest")
-    counts = write_store(store, objects, caps, grid=grid, provenance=prov, crop_size=cfg["ingest"]["crop_size"])
+    counts = {"kept": 0, "replaced": 0, "added": 0}
+    if caps:
+        prov = provenance(cfg, seed, {c.name: c.fingerprint for c in caps}, command="ingest")
+        counts = write_store(store, objects, caps, grid=grid, provenance=prov, crop_size=cfg["ingest"]["crop_size"])
     return {"captures": per_capture, "objects": len(objects), "frames": n_frames, "seconds": elapsed,
-            "frames_per_second": n_frames / max(elapsed, 1e-9), "store": counts}
+            "frames_per_second": n_frames / max(elapsed, 1e-9), "store": counts, "skipped": skipped}
+
+
+def _frame_count(path: str | Path) -> int:
+    """Frames of a capture for the progress total (0 when its capture.json cannot be read)."""
+    try:
+        return len(read_capture(path, check_images=False).frames)
+    except InputError:
+        return 0

@@ -22,6 +22,7 @@ from sklearn.cluster import DBSCAN
 from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_world, depth_to_points, plane_basis
+from ..progress import detail
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
 
@@ -105,8 +106,7 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
         pc, idx = depth_to_points(depth, K)
         steady = ~flying_pixels(depth).reshape(-1)[idx]
         out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx, steady))
-        if progress:
-            progress(f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
+        detail(progress, f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
     return out
 
 

@@ -45,6 +45,7 @@ import numpy as np
 
 from ..atomic import atomic_path, clean_stale_temporaries, exclusive_lock, pause_point
 from ..errors import InputError
+from ..progress import bar
 from ..provenance import provenance
 from ..scale.executor import Executor
 from .pipeline import ingest_captures
@@ -211,20 +212,21 @@ def capture_groups(n: int, n_workers: int, max_per_group: int = MAX_CAPTURES_PER
 
 def _ingest_group(shared: tuple, item: tuple) -> dict:
     """Worker: ingest one group of captures into its shard; returns the pipeline's summary."""
-    cfg, seed, use_masks = shared
+    cfg, seed, use_masks, keep_going = shared
     paths, shard = item
     Path(shard).parent.mkdir(parents=True, exist_ok=True)
-    res = ingest_captures([Path(p) for p in paths], shard, cfg, seed=seed, use_masks=use_masks)
+    res = ingest_captures([Path(p) for p in paths], shard, cfg, seed=seed, use_masks=use_masks, keep_going=keep_going)
     return res
 
 
 def ingest_sharded(captures: list[str | Path], store: str | Path, cfg: dict, *, executor: Executor, seed: int = 0,
                    use_masks: bool = True, max_captures_per_shard: int = MAX_CAPTURES_PER_SHARD,
-                   progress: Callable[[str], None] | None = None) -> dict:
+                   progress: Callable[[str], None] | None = None, keep_going: bool = False) -> dict:
     """Ingest capture folders into the sharded store indexed at ``store`` (created or updated).
 
     Returns the summary of :func:`protomine.ingest.pipeline.ingest_captures` (captures, objects, frames,
-    seconds, frames_per_second, store counts) plus ``shards`` (number of shards written).
+    seconds, frames_per_second, store counts, skipped) plus ``shards`` (number of shards written).
+    keep_going: as in ``ingest_captures``; a group whose captures were all skipped writes no shard.
     """
     store = Path(store)
     names = [Path(c).name for c in captures]
@@ -250,9 +252,19 @@ def ingest_sharded(captures: list[str | Path], store: str | Path, cfg: dict, *, 
     if progress:
         progress(f"{len(captures)} captures in {len(groups)} shards on {executor.describe()}")
     t0 = time.monotonic()
-    results = executor.map(_ingest_group, items, shared=(cfg, seed, use_masks))
+    with bar(progress, "ingest", total=len(items), unit="shards") as b:
+        results = executor.map(_ingest_group, items, shared=(cfg, seed, use_masks, keep_going))
+        b.advance(len(items))
     elapsed = time.monotonic() - t0
     pause_point("inputs_read")
+    # groups whose captures were all skipped (keep_going) wrote no shard; skipped captures are not live
+    done = {c["capture"] for r in results for c in r["captures"]}
+    items = [(paths, shard) for (paths, shard), r in zip(items, results) if r["captures"]]
+    names = [n for n in names if n in done]
+    skipped = [s for r in results for s in r.get("skipped", [])]
+    if not items:
+        return {"captures": [], "objects": 0, "frames": 0, "seconds": elapsed, "frames_per_second": 0.0,
+                "shards": 0, "skipped": skipped, "store": {"kept": 0, "replaced": 0, "added": 0}}
     new_rel = [Path(shard).name for _, shard in items]
     new_names = set(names)
     with exclusive_lock(store, timeout=30.0):
@@ -265,7 +277,7 @@ def ingest_sharded(captures: list[str | Path], store: str | Path, cfg: dict, *, 
         live = [(renum[s], c) for s, c in kept]
         for g, rel in enumerate(new_rel):
             shards.append(f"{folder.name}/{rel}")
-            live += [(len(shards) - 1, Path(p).name) for p in items[g][0]]
+            live += [(len(shards) - 1, Path(p).name) for p in items[g][0] if Path(p).name in done]
         fingerprints = {}
         for sh in shards:
             st = ObjectStore(store.parent / sh)
@@ -284,6 +296,7 @@ def ingest_sharded(captures: list[str | Path], store: str | Path, cfg: dict, *, 
     added = sum(r["objects"] for r in results)
     return {"captures": per_capture, "objects": added, "frames": n_frames, "seconds": elapsed,
             "frames_per_second": n_frames / max(elapsed, 1e-9), "shards": len(items),
+            "skipped": skipped,
             "store": {"kept": n_kept, "replaced": n_replaced, "added": added}}
 
 

@@ -28,12 +28,9 @@ cluster None and score 0); alternatives are the next nearest prototypes, with th
 prototype's own single views, i.e. the per-prototype distance threshold
 ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_score))``.
 
-Record (one dict per object and frame; JSON-ready):
-    capture, frame, object, bbox [u0, v0, u1, v1) pixels, center_world [x, y, z] m, base_world [x, y, z]
-    (object frame origin), up [x, y, z], size_m [footprint radius, height], cluster (int | None),
-    name (str | None), yaw_deg, symmetry ("continuous" | "none" | "n-fold:N"), scale (metric size
-    sqrt(r h) over the prototype's median), fit_scale (best scale of the pose search), distance, score,
-    unknown, alternatives [{cluster, score}] (the next nearest prototypes, at most ``N_ALTERNATIVES``).
+Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
+``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
+decision order, each with its distance and score).
 """
 from __future__ import annotations
 
@@ -44,7 +41,7 @@ from typing import Callable
 
 import numpy as np
 
-from ..capture import read_capture
+from ..capture import Capture, read_capture
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox
 from ..ingest.proposals import SceneObjects, find_objects
@@ -52,6 +49,8 @@ from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
+from ..progress import Bar, bar, detail
+from ..records import pixels_to_rle
 
 N_ALTERNATIVES = 3
 MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
@@ -147,6 +146,9 @@ class FrameObjects:
 
 def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool) -> FrameObjects:
     """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields."""
+    height = scene.capture.intrinsics.height
+    fd = next((f for f in scene.frames if f.id == frame_id), None)
+    mask = None if geometry_ids or fd is None or fd.mask is None else fd.mask.reshape(-1)
     vols, facts = [], []
     for p in scene.proposals:
         pix = p.pixels.get(frame_id)
@@ -155,7 +157,11 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         vols.append(lift(scene.views(p, [frame_id]), p.frame, grid))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
-        facts.append({"object": oid, "bbox": list(pixel_bbox(pix, width)),
+        # the picture's extent: the whole mask region when masks name the object (pixels without a depth
+        # reading included, as export of a store reports it), else the pixels that were lifted
+        region = np.flatnonzero(mask == int(p.key)) if mask is not None and p.key.isdigit() else pix
+        facts.append({"object": oid, "source": "single-view", "bbox": list(pixel_bbox(region, width)),
+                      "segmentation": pixels_to_rle(region, height, width),
                       "center_world": [float(x) for x in p.center_world],
                       "base_world": [float(x) for x in p.frame.origin], "up": [float(x) for x in p.frame.up],
                       "size_m": [float(p.frame.radius), float(p.frame.height)]})
@@ -172,8 +178,11 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
     out = []
     for i, facts in enumerate(fo.facts):
         k = int(m["best"][i])
+        # alternatives in decision order (nearest first), each with the distance that ranks it and its score
         order = np.argsort(m["distance"][i], kind="stable")
-        alts = [{"cluster": int(j), "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
+        alts = [{"cluster": int(j), "name": str(names[j]) or None,
+                 "distance": float(m["distance"][i, j]) if np.isfinite(m["distance"][i, j]) else None,
+                 "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
         rec = {"capture": capture, "frame": fo.frame, **facts}
         if k < 0:
             rec.update(cluster=None, name=None, yaw_deg=0.0, symmetry=None, scale=None, fit_scale=None,
@@ -228,23 +237,25 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
 
-    def add(res: tuple[list[dict], dict]) -> None:
-        out.extend(res[0])
-        for k in st:
-            st[k] += res[1][k]
-        if progress:
-            progress(f"{st['frames']} frames labelled, {st['objects']} objects")
-
     n_workers = 1 if executor is None else min(executor.n_workers, len(groups))
-    if n_workers <= 1:
-        for g in groups:
-            add(_label_group(matcher, g, cfg, seed, use_masks, batch_objects, progress))
-    else:
-        if progress:
-            progress(f"{len(capture_paths)} captures on {executor.describe()}")
-        token = f"{id(matcher):x}-{time.time_ns():x}"
-        executor.map(_label_item, groups, shared=(token, library, cfg, weighted, seed, use_masks, batch_objects),
-                     fold=lambda _, res: add(res))
+    total = sum(len(read_capture(p, check_images=False).frames) for p in capture_paths)
+    with bar(progress, "label", total=total, unit="frames") as b:
+
+        def add(res: tuple[list[dict], dict], advance: bool) -> None:
+            out.extend(res[0])
+            for k in st:
+                st[k] += res[1][k]
+            if advance:  # a worker's group: its frames at once
+                b.advance(res[1]["frames"])
+
+        if n_workers <= 1:
+            for g in groups:
+                add(_label_group(matcher, g, cfg, seed, use_masks, batch_objects, progress, b), False)
+        else:
+            detail(progress, f"{len(capture_paths)} captures on {executor.describe()}")
+            token = f"{id(matcher):x}-{time.time_ns():x}"
+            executor.map(_label_item, groups, shared=(token, library, cfg, weighted, seed, use_masks, batch_objects),
+                         fold=lambda _, res: add(res, True))
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
     st["seconds"] = time.perf_counter() - t0
     st["workers"] = n_workers
@@ -259,17 +270,19 @@ def _label_item(shared: tuple, paths: list[str]) -> tuple[list[dict], dict]:
     if token not in _WORKER_MATCHER:
         _WORKER_MATCHER.clear()
         _WORKER_MATCHER[token] = make_matcher(library, cfg, weighted=weighted)
-    return _label_group(_WORKER_MATCHER[token], paths, cfg, seed, use_masks, batch_objects, None)
+    return _label_group(_WORKER_MATCHER[token], paths, cfg, seed, use_masks, batch_objects, None,
+                        Bar(None, "label", 0, "frames"))
 
 
 def _label_group(matcher: Matcher, paths: list[str], cfg: dict, seed: int, use_masks: bool, batch_objects: int,
-                 progress: Callable[[str], None] | None) -> tuple[list[dict], dict]:
-    """Records of a group of captures and their stats (objects, frames, lift_s, match_s)."""
+                 progress: Callable[[str], None] | None, b: Bar) -> tuple[list[dict], dict]:
+    """Records of a group of captures and their stats (objects, frames, lift_s, match_s); ``b`` advances
+    by one per frame."""
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
     pending: list[tuple[str, FrameObjects]] = []
     for path in paths:
-        pending += _lift_capture(matcher, Path(path), cfg, seed, use_masks, progress, st)
+        pending += _lift_capture(matcher, read_capture(path, check_images=False), cfg, seed, use_masks, progress, st, b)
         if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
             out += _match_batch(matcher, pending, st)
             pending = []
@@ -277,9 +290,8 @@ def _label_group(matcher: Matcher, paths: list[str], cfg: dict, seed: int, use_m
     return out, st
 
 
-def _lift_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks: bool,
-                  progress: Callable[[str], None] | None, st: dict) -> list[tuple[str, FrameObjects]]:
-    cap = read_capture(path, check_images=False)
+def _lift_capture(matcher: Matcher, cap: Capture, cfg: dict, seed: int, use_masks: bool,
+                  progress: Callable[[str], None] | None, st: dict, b: Bar) -> list[tuple[str, FrameObjects]]:
     rng = capture_rng(seed, cap.name)   # one generator per capture, consumed frame after frame
     masks = bool(use_masks and cap.has_masks)
     width = cap.intrinsics.width
@@ -290,8 +302,8 @@ def _lift_capture(matcher: Matcher, path: Path, cfg: dict, seed: int, use_masks:
         fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks)
         st["lift_s"] += time.perf_counter() - t0
         lifted.append((cap.name, fo))
-        if progress:
-            progress(f"{cap.name} frame {fr.id}: {len(fo.facts)} objects")
+        b.advance()
+        detail(progress, f"{cap.name} frame {fr.id}: {len(fo.facts)} objects")
     st["frames"] += len(cap.frames)
     return lifted
 

@@ -135,7 +135,8 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
         model = PoseKMeans(n_clusters=len(rest), scales=model.scales, n_init=1, max_iter=model.max_iter,
                            tol=model.tol, chunk_size=model.chunk_size, random_state=model.random_state,
                            sample_size=model.sample_size, symmetry_factor=model.symmetry_factor, symmetry_tol=model.symmetry_tol,
-                           init=(model.prototypes_[rest], model.prototype_weights_[rest])).fit(source)
+                           init=(model.prototypes_[rest], model.prototype_weights_[rest]),
+                           progress=model.progress).fit(source)
     return model, merges
 
 

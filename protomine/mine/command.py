@@ -1,4 +1,4 @@
-"""`protomine mine`: object store -> prototype library, assignments.csv, gallery.png."""
+"""`protomine mine`: object store -> prototype library (+ assignments.csv, gallery.png, members/ beside it)."""
 from __future__ import annotations
 
 from pathlib import Path
@@ -7,18 +7,22 @@ from typing import Annotated, Optional
 import typer
 
 from ..atomic import clean_stale_temporaries
-from ..cliutil import ConfigOpt, Progress, QuietOpt, SeedOpt, config_from
+from ..cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, existing, reporter
 from ..scale.options import SchedulerOpt, WorkersOpt, executor_for
 
 
 def mine(
-    store: Annotated[Path, typer.Argument(help="HDF5 object store written by `protomine ingest`.")],
-    library: Annotated[Path, typer.Option("--library", "-l", help="HDF5 prototype library to write.")],
-    clusters: Annotated[Optional[int], typer.Option("--clusters", "-k", min=1, help="Number of prototypes (default: chosen automatically).")] = None,
-    out: Annotated[Optional[Path], typer.Option("--out", help="Folder for assignments.csv and gallery.png (default: beside the library).")] = None,
+    store: Annotated[Path, typer.Argument(metavar="STORE.h5", show_default=False,
+                                          help="HDF5 object store written by `protomine ingest`.")],
+    out: Annotated[Path, typer.Option("--out", "-o", metavar="LIBRARY.h5", show_default=False,
+                                      help="HDF5 prototype library to write; assignments.csv, gallery.png and "
+                                      "members/ (one sheet of member crops per cluster) go beside it.")],
+    clusters: Annotated[Optional[int], typer.Option("--clusters", "-k", min=1, metavar="K",
+                                                    help="Number of prototypes (default: chosen automatically).")] = None,
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    verbose: VerboseOpt = False,
     scheduler: SchedulerOpt = None,
     workers: WorkersOpt = None,
 ) -> None:
@@ -29,12 +33,14 @@ def mine(
     from ..scale.executor import InlineExecutor
     from .pipeline import mine_store
     cfg = config_from(config)
-    for folder in {library.parent, out or library.parent}:
-        clean_stale_temporaries(folder)
+    clean_stale_temporaries(out.parent)
     with executor_for(cfg, scheduler, workers) as ex:
-        lib, info = mine_store(store, library, cfg, seed=seed, n_clusters=clusters, out_dir=out,
-                               progress=Progress("mine", quiet),
+        lib, info = mine_store(existing(store, "object store"), out, cfg, seed=seed, n_clusters=clusters,
+                               progress=reporter("mine", quiet, verbose),
                                executor=None if isinstance(ex, InlineExecutor) else ex)
-    where = out or library.parent
+    for notice in info["notices"]:
+        typer.echo(f"notice: {notice}", err=True)
+    where = out.parent
     typer.echo(f"mined {len(lib.members['object'])} objects into {info['K']} prototypes "
-               f"({info['iterations']} iterations); library {library}; {where / 'assignments.csv'}; {where / 'gallery.png'}")
+               f"({info['iterations']} iterations); library {out}; {where / 'assignments.csv'}; "
+               f"{where / 'gallery.png'}; member sheets in {where / 'members'}")

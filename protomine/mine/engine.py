@@ -65,6 +65,7 @@ from sklearn.cluster import KMeans
 from sklearn.decomposition import PCA
 
 from .. import cores
+from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseBank, PoseMatch, _check_scales, _resample_axis, shift_volume
 
@@ -284,7 +285,7 @@ def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Te
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
                  accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
-                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None):
+                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None, advance=None):
     """One pass over the source: assignment against (P, V) and, optionally, the aligned sums.
 
     Returns labels, yaw, scale, dist (N,), and when accumulating num (K, C, R, A, H), den (K, R, A, H),
@@ -294,11 +295,15 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     ``cache`` keeps object spectra between passes (same source and chunk_size only).  ``scale_index``
     (N,) restricts each object's scale search to its previous best scale +-1 (intermediate passes).
     A source with an ``assign_pass`` method runs the pass itself (``mine.distributed.ExecutorSource``: a
-    map-reduce over chunks on an executor, with the same arguments and results).
+    map-reduce over chunks on an executor, with the same arguments and results).  ``advance(n)``, when
+    given, is told how many objects each chunk covered (progress).
     """
     if hasattr(source, "assign_pass"):
-        return source.assign_pass(P, V, scales, chunk_size, accumulate, n_worst, moments=moments, forced=forced,
-                                  scale_index=scale_index)
+        out = source.assign_pass(P, V, scales, chunk_size, accumulate, n_worst, moments=moments, forced=forced,
+                                 scale_index=scale_index)
+        if advance is not None:
+            advance(len(source))
+        return out
     N = len(source)
     K, C, R, A, H = P.shape
     S = len(scales)
@@ -307,9 +312,13 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
     dist = np.empty(N, np.float32)
-    sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
-    msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
+    # Each chunk's aligned sums are transformed back and added in float64 in chunk order, exactly as the
+    # map-reduce pass of mine.distributed folds its chunk parts, so one process and a cluster sum alike.
+    tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
+    extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     for i0, i1 in _chunks(N, chunk_size):
+        sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
+        msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
             x, w = source.read(i0, i1)
@@ -322,10 +331,14 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums)
+        if accumulate:
+            tot += sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
+        if moments:
+            extra += msums.result(scales, (C + 1, R, H))
+        if advance is not None:
+            advance(i1 - i0)
     if not accumulate:
         return labels, yaw, scale, dist, None, None, None, None, None
-    tot = sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
-    extra = msums.result(scales, (C + 1, R, H)) if moments else None
     return _pass_outputs(source, labels, yaw, scale, dist, tot, extra, P, V, n_worst, chunk_size)
 
 
@@ -400,10 +413,18 @@ def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: n
 
 
 def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: int, tol: float,
-           chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None) -> _Result:
+           chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None, progress=None,
+           what: str = "passes") -> _Result:
     """Lloyd iterations from (P, V).  The first and the final pass search every scale; the passes in
     between only each object's previous best scale +-1 (scales move slowly once prototypes settle, and
-    the search then costs 3 / S of the full one)."""
+    the search then costs 3 / S of the full one).  ``progress`` (:mod:`protomine.progress`) gets one bar
+    over at most max_iter + 1 passes of the objects, cut to the passes run when the iterations converge."""
+    with bar(progress, what, total=(max_iter + 1) * len(source), unit="objects") as b:
+        return _lloyd_passes(source, P, V, scales, max_iter, tol, chunk_size, moments, cache, b)
+
+
+def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter: int, tol: float, chunk_size: int,
+                  moments: bool, cache: _SpectraCache | None, b: Bar) -> _Result:
     K = P.shape[0]
     prev_labels, prev_cost = None, np.inf
     n_iter = 0
@@ -411,7 +432,8 @@ def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: in
     scale_arr = np.asarray(scales, np.float32)
     for n_iter in range(1, max_iter + 1):
         labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
-                                                                           cache=cache, scale_index=sidx)
+                                                                           cache=cache, scale_index=sidx,
+                                                                           advance=b.advance)
         # index of each object's best scale (the window runs over the scales in the given order)
         sidx = np.argmax(scale[:, None] == scale_arr[None, :], axis=1) if len(scales) > 3 else None
         cost = float(dist[np.isfinite(dist)].sum())
@@ -423,8 +445,9 @@ def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: in
         if small and count.min() > 0:
             break
         prev_labels, prev_cost = labels, cost
+    b.set_total(b.done + len(source))
     labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments,
-                                                 cache=cache)
+                                                 cache=cache, advance=b.advance)
     cost = float(dist[np.isfinite(dist)].sum())
     return _Result(P, V, labels, yaw, scale, dist, cost, n_iter, rest[-1] if moments else None)
 
@@ -448,12 +471,13 @@ class PoseKMeans:
     init : optional (P (K, C, R, A, H), V (K, R, A, H)) starting prototypes (skips seeding and restarts).
     cache_mb : memory budget for object spectra kept between passes (about 0.1 MB per object on an
         8 x 36 x 12 grid with 5 channels); objects beyond it are re-read and re-transformed every pass.
+    progress : optional progress reporter (:mod:`protomine.progress`): one bar per run of Lloyd passes.
     """
 
     def __init__(self, *, n_clusters: int, scales: Sequence[float] = (1.0,), n_init: int = 4, max_iter: int = 30,
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
-                 init: tuple[np.ndarray, np.ndarray] | None = None, cache_mb: float = 384.0):
+                 init: tuple[np.ndarray, np.ndarray] | None = None, cache_mb: float = 384.0, progress=None):
         self.n_clusters = n_clusters
         self.scales = scales
         self.n_init = n_init
@@ -466,6 +490,7 @@ class PoseKMeans:
         self.symmetry_tol = symmetry_tol
         self.init = init
         self.cache_mb = cache_mb
+        self.progress = progress
 
     # --- validation ------------------------------------------------------------------------
 
@@ -497,7 +522,8 @@ class PoseKMeans:
             if P0.shape[0] != K or V0.shape[0] != K:
                 raise ValueError(f"init must hold n_clusters={K} prototypes, got {P0.shape[0]}")
             best = _lloyd(source, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache())
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(),
+                          progress=self.progress, what=f"K={K} passes")
         else:
             best = self._fit_restarts(source, scales, rng)
         self._finish(best, source, scales)
@@ -514,17 +540,19 @@ class PoseKMeans:
         # the whole source, the same spectra serve the whole fit
         cache = self._new_cache()
         best = None
-        for _ in range(self.n_init):
+        for r in range(self.n_init):
             P0, V0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)),
                                        cache)
             res = _lloyd(fit_on, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                         chunk_size=self.chunk_size, moments=fit_on is source, cache=cache)
+                         chunk_size=self.chunk_size, moments=fit_on is source, cache=cache,
+                         progress=self.progress, what=f"K={K} restart {r + 1}/{self.n_init} passes")
             if best is None or res.cost < best.cost:
                 best = res
         if fit_on is not source:
             del cache, sub, Xs, Ws  # free the subsample's memory before the full fit
             best = _lloyd(source, best.P, best.V, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache())
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(),
+                          progress=self.progress, what=f"K={K} all objects passes")
         return best
 
     def _new_cache(self) -> _SpectraCache:

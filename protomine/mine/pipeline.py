@@ -28,7 +28,8 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
-from ..provenance import provenance, provenance_of, write_sidecar
+from ..progress import say
+from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
 from .posesearch import pose_distances
@@ -56,7 +57,7 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
     if k is not None and k > len(store):
         raise InputError(store.path, "objects", f"--clusters={k} must be <= the number of objects in the store ({len(store)})")
     common = dict(scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
-                  chunk_size=m["chunk_size"], random_state=seed)
+                  chunk_size=m["chunk_size"], random_state=seed, progress=progress)
     if cfg.get("scale", {}).get("batch_size", 0):
         from .minibatch import fit_minibatch
         return fit_minibatch(src, cfg, seed, k, max_k=min(m["max_clusters"], len(store) - 1), progress=progress)
@@ -133,19 +134,29 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
-               n_clusters: int | None = None, out_dir: str | Path | None = None,
-               progress: Callable[[str], None] | None = None, executor=None) -> tuple[Library, dict]:
-    """Mine the store and write the library, assignments.csv and gallery.png (beside the library).
+               n_clusters: int | None = None, progress: Callable[[str], None] | None = None,
+               executor=None) -> tuple[Library, dict]:
+    """Mine the store and write the library, and beside it assignments.csv, gallery.png and members/
+    (one sheet of member crops per cluster, :mod:`protomine.mine.members`).
 
     ``executor`` (``protomine.scale.executor``; None = this process, as before) runs the clustering passes,
     the final match and the picture volumes as map-reduces over chunks of objects.
     """
     from .gallery import render_gallery
+    from .members import write_member_sheets
     store = open_store(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
-    if progress:
-        progress(f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
+    notices = []
+    lifted = store.config.get("volume")
+    if lifted is not None and lifted != cfg["volume"]:
+        # the volumes were lifted with the store's [volume] settings; the library must record those, or
+        # labelling would lift single views on another grid than its prototypes
+        diff = ", ".join(f"volume.{k}={lifted[k]}" for k in sorted(lifted) if lifted[k] != cfg["volume"].get(k))
+        notices.append(f"{store.path} was ingested with {diff}; the config asks for other [volume] settings, "
+                       "so the store's are used and recorded in the library")
+        cfg = {**cfg, "volume": dict(lifted)}
+    say(progress, f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
     model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
@@ -211,17 +222,18 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)
-    out = Path(out_dir) if out_dir else Path(library_path).parent
+    out = Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
     render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"])
-    write_sidecar(out / "gallery.png", prov)
+    record_outputs([out / "gallery.png"], prov)
+    write_member_sheets(out / "members", lib, store, progress=progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
-                 "k_selection": k_table}
+                 "k_selection": k_table, "notices": notices}
 
 
 def write_assignments(path: str | Path, lib: Library) -> None:
-    """assignments.csv: object,cluster,yaw_deg,scale,distance,score (one row per object), with its
-    provenance sidecar (the library's record)."""
+    """assignments.csv: object,cluster,yaw_deg,scale,distance,score (one row per object), listed in its
+    folder's provenance manifest (the library's record)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(["object", "cluster", "yaw_deg", "scale", "distance", "score"])
@@ -231,4 +243,4 @@ def write_assignments(path: str | Path, lib: Library) -> None:
         w.writerow([m["object"][i], k, f"{m['yaw_deg'][i]:.2f}", f"{m['scale'][i]:.4f}",
                     f"{m['distance'][i]:.6g}", f"{m['score'][i]:.4f}"])
     write_text(path, buf.getvalue())
-    write_sidecar(path, provenance_of(lib.attrs))
+    record_outputs([path], provenance_of(lib.attrs))

@@ -9,8 +9,10 @@ import typer
 from .executor import Executor, make_executor
 
 SchedulerOpt = Annotated[Optional[str], typer.Option(
-    "--scheduler", help="Dask scheduler address (e.g. tcp://10.0.0.5:8786): run the heavy steps on that cluster "
+    "--scheduler", metavar="ADDRESS", help="Dask scheduler address (e.g. tcp://10.0.0.5:8786): run the heavy steps on that cluster "
     "(default: [scale] scheduler in the config; none = this machine).")]
+
+
 def _workers(value: Optional[str]) -> Optional[int | str]:
     if value is None or value == "auto":
         return value
@@ -20,9 +22,10 @@ def _workers(value: Optional[str]) -> Optional[int | str]:
 
 
 WorkersOpt = Annotated[Optional[str], typer.Option(
-    "--workers", callback=_workers, help="Without --scheduler: worker processes on this machine ('auto' = the "
-    "usable cores; ingest and label spread captures over them, mine runs in this process with the cores as "
-    "threads; 1 = this process); with it: wait until this many workers have joined (default: [scale] workers).")]
+    "--workers", callback=_workers, metavar="N|auto", help="Without --scheduler: worker processes on this "
+    "machine ('auto' = the usable cores; ingest and label spread captures over them, mine runs in this process "
+    "with the cores as threads; 1 = this process); with it: wait until this many workers have joined "
+    "(default: [scale] workers).")]
 
 
 @contextlib.contextmanager

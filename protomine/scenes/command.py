@@ -6,25 +6,29 @@ from typing import Annotated
 
 import typer
 
-from ..cliutil import ConfigOpt, Progress, QuietOpt, config_from
+from ..cliutil import QuietOpt, SeedOpt, VerboseOpt, reporter
 from .scenario import generate_scenario
 
 
 def scenes(
-    out: Annotated[Path, typer.Argument(help="Output folder (created); captures and truth CSVs go here.")],
-    captures: Annotated[int, typer.Option(min=1, max=10000, help="Mining captures (a ring of cameras each).")] = 12,
-    single: Annotated[int, typer.Option(min=0, max=10000, help="Single-frame captures (new instances, incl. held-out classes).")] = 24,
-    frames: Annotated[int, typer.Option(min=1, max=360, help="Camera poses per mining capture.")] = 8,
-    width: Annotated[int, typer.Option(min=16, max=4096, help="Image width (pixels).")] = 320,
-    height: Annotated[int, typer.Option(min=16, max=4096, help="Image height (pixels).")] = 240,
-    seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed; same seed gives the same scenario.")] = 0,
-    config: ConfigOpt = None,
+    out: Annotated[Path, typer.Option("--out", "-o", metavar="DIR", show_default=False,
+                                      help="Output folder (created): one capture folder each, truth CSVs beside them.")],
+    captures: Annotated[int, typer.Option(min=1, max=10000, metavar="N", help="Mining captures (a ring of cameras each).")] = 12,
+    single: Annotated[int, typer.Option(min=0, max=10000, metavar="N", help="Single-frame captures (new instances, incl. held-out classes).")] = 24,
+    frames: Annotated[int, typer.Option(min=1, max=360, metavar="N", help="Camera poses per mining capture.")] = 8,
+    width: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image width (pixels).")] = 320,
+    height: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image height (pixels).")] = 240,
+    seed: SeedOpt = 0,
     quiet: QuietOpt = False,
+    verbose: VerboseOpt = False,
 ) -> None:
-    """Render the demo scenario: mining captures, single-frame captures and truth files beside them."""
-    config_from(config)          # validates --config like every command; the renderer has no tunables there
-    progress = Progress("scenes", quiet)
+    """Render the demo scenario: mining captures, single-frame captures and truth files beside them.
+
+    The config's [scenes] table picks the item-class family and the share of tumbled instances."""
+    sc = config_from(config)["scenes"]
+    progress = reporter("scenes", quiet, verbose)
     summary = generate_scenario(out, n_mining=captures, n_single=single, frames=frames, width=width,
-                                height=height, seed=seed, progress=progress)
-    progress(f"done: {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
-             f"single captures, {summary['render_seconds_per_frame']:.2f}s render per frame")
+                                height=height, seed=seed, family=sc["family"],
+                                tumbled_fraction=sc["tumbled_fraction"], progress=progress)
+    typer.echo(f"rendered {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
+               f"single captures ({summary['render_seconds_per_frame']:.2f} s per frame) into {out}")

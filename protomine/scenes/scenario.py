@@ -5,7 +5,7 @@ Layout of OUT::
     OUT/scenario.json        capture folders (mining / single-frame), class split, seed
     OUT/truth.csv            object,label,yaw_deg            (object = "<capture>/<mask id>")
     OUT/truth_points.csv     capture,x,y,z,label,yaw_deg     (world base centre of each object)
-    OUT/truth_full.csv       every fact about every object (class, symmetry, scale, up, split...)
+    OUT/truth_full.csv       every fact about every object (class, symmetry, scale, up, split, full pose...)
     OUT/mine_000/ ...        mining captures: a ring of cameras around the table
     OUT/single_000/ ...      single-frame captures: new instances, including the held-out classes
 
@@ -14,6 +14,15 @@ world frame is a random rigid transform of it (up is not a world axis).  yaw_deg
 object's canonical x axis, right-handed about the world up and measured from
 ``geometry.reference_direction(up)``, in [0, 360); it is written unreduced, and ``symmetry`` in
 truth_full.csv gives the period to reduce it by.  Truth never goes inside a capture folder.
+
+Resting poses: a share ``tumbled_fraction`` of the instances is dropped rather than stood upright: a resting
+face is drawn by its quasi-static probability (:mod:`protomine.scenes.resting`), then a yaw.  truth_full.csv
+gives every instance's full pose, x_world = R x_model + t, as the quaternion ``qx,qy,qz,qw`` (scalar last) of
+R and ``tx,ty,tz``; the model frame is the instance's own (base on z = 0, footprint centred, x = the part
+that yaw rotates).  ``face`` indexes the instance's stable faces, most probable first (-1: the upright pose
+is not a quasi-static rest; empty: an all-upright scene, where no face analysis runs).  For a tumbled
+instance yaw_deg is the drawn yaw of the resting frame (the model rotated by the smallest rotation that takes
+the face's normal to down).
 """
 from __future__ import annotations
 
@@ -22,6 +31,7 @@ import csv
 import io
 import json
 import time
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
@@ -34,8 +44,11 @@ from ..atomic import clean_stale_temporaries, write_text
 from ..capture import Intrinsics, write_capture
 from ..errors import InputError
 from ..geometry import direction_to_yaw
+from ..progress import bar, detail
 from .noise import add_sensor_noise
 from .render import Scene, SceneObject, look_at, render
+from .resting import rest_shape, shape_resting_poses
+from .shapes import Shape
 
 SCENARIO_FORMAT = "protomine.scenario/1"
 DEPTH_SCALE = 1000.0
@@ -51,26 +64,35 @@ def demo_intrinsics(width: int, height: int) -> Intrinsics:
 
 def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int = 24, frames: int = 8,
                       width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
-                      single_classes: list[str] | None = None,
-                      progress: Callable[[str], None] | None = None, executor=None) -> dict:
+                      single_classes: list[str] | None = None, family: str = "tools",
+                      tumbled_fraction: float = 0.0, progress: Callable[[str], None] | None = None,
+                      executor=None) -> dict:
     """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
 
-    ``executor`` (``protomine.scale.executor``; None = this process) renders the captures in its worker
+    family: the item-class family (items.toml ``family``) the default class lists come from.
+    classes: item classes used in mining captures (default: every class of the family not marked held_out).
+    single_classes: classes used in single-frame captures (default: every class of the family).
+    tumbled_fraction: share of instances dropped on a resting face drawn by its probability (0 = all
+    upright, as built; 1 = all dropped).
+    executor (``protomine.scale.executor``; None = this process) renders the captures in its worker
     processes; the layouts are drawn here, in capture order, so the scenario does not depend on it.
-
-    classes: item classes used in mining captures (default: every class not marked held_out).
-    single_classes: classes used in single-frame captures (default: every class).
     """
     if n_mining < 1 or n_single < 0 or frames < 1:
         raise InputError(None, "captures/single/frames", f"expected captures >= 1, single >= 0, frames >= 1, got {n_mining}, {n_single}, {frames}")
     if width < 16 or height < 16:
         raise InputError(None, "width/height", f"expected an image of at least 16x16, got {width}x{height}")
+    if not 0.0 <= tumbled_fraction <= 1.0:
+        raise InputError(None, "scenes.tumbled_fraction", f"expected a number in [0, 1], got {tumbled_fraction!r}")
     all_classes = load_item_classes()
+    families = sorted({c.family for c in all_classes})
+    if family not in families:
+        raise InputError(None, "scenes.family", f"expected one of {families}, got {family!r}")
     by_name = {c.name: c for c in all_classes}
-    mining = _pick(by_name, classes, [c.name for c in all_classes if not c.held_out], "classes")
-    single = _pick(by_name, single_classes, [c.name for c in all_classes], "single_classes")
+    own = [c for c in all_classes if c.family == family]
+    mining = _pick(by_name, classes, [c.name for c in own if not c.held_out], "classes")
+    single = _pick(by_name, single_classes, [c.name for c in own], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
-                     progress or (lambda msg: None), executor)
+                     float(tumbled_fraction), progress, executor)
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
@@ -82,7 +104,8 @@ def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[
 
 
 def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
-              mining: list[ItemClass], single: list[ItemClass], progress: Callable[[str], None], executor) -> dict:
+              mining: list[ItemClass], single: list[ItemClass], tumbled_fraction: float,
+              progress: Callable[[str], None] | None, executor) -> dict:
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     clean_stale_temporaries(out)
@@ -98,23 +121,25 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     for name, split, pool, n_frames_cap in plan:
         cap_rng = rng.spawn(1)[0]
         items.append((str(out / name), split, [c.name for c in pool], n_frames_cap, K, copy.deepcopy(cap_rng),
-                      dict(used[split])))
-        _layout(pool, cap_rng, used[split])
+                      dict(used[split]), tumbled_fraction))
+        _layout(pool, cap_rng, used[split], tumbled_fraction)
     rows: list[dict] = []
     timing = {"render_s": 0.0, "frames": 0}
+    with bar(progress, "render", total=sum(p[3] for p in plan), unit="frames") as b:
 
-    def add(res: tuple[list[dict], float, str, int, float]) -> None:
-        cap_rows, dt, name, n_frames_cap, wall = res
-        rows.extend(cap_rows)
-        timing["render_s"] += dt
-        timing["frames"] += n_frames_cap
-        progress(f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {wall:.2f}s")
+        def add(res: tuple[list[dict], float, str, int, float]) -> None:
+            cap_rows, dt, name, n_frames_cap, wall = res
+            rows.extend(cap_rows)
+            timing["render_s"] += dt
+            timing["frames"] += n_frames_cap
+            b.advance(n_frames_cap)
+            detail(progress, f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {wall:.2f}s")
 
-    if executor is None:
-        for it in items:
-            add(_capture_item(None, it))
-    else:
-        executor.map(_capture_item, items, fold=lambda _, res: add(res))
+        if executor is None:
+            for it in items:
+                add(_capture_item(None, it))
+        else:
+            executor.map(_capture_item, items, fold=lambda _, res: add(res))
     render_s, n_frames = timing["render_s"], timing["frames"]
     _write_truth(out, rows)
     held = sorted({c.name for c in single} - {c.name for c in mining})
@@ -127,15 +152,42 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
         "symmetry": {c.name: c.symmetry for c in {**{c.name: c for c in mining}, **{c.name: c for c in single}}.values()},
         "truth": {"objects": "truth.csv", "points": "truth_points.csv", "full": "truth_full.csv"},
         "image": {"width": width, "height": height, "frames_per_mining_capture": frames},
+        "tumbled_fraction": tumbled_fraction,
     }
     write_text(out / "scenario.json", json.dumps(doc, indent=1))
     return {**doc, "out": str(out), "objects": len(rows), "frames_rendered": n_frames,
             "render_seconds_per_frame": render_s / max(n_frames, 1), "seconds": time.monotonic() - t0}
 
 
-def _place(instances: list[Instance], rng: np.random.Generator) -> list[tuple[float, float]] | None:
+@dataclass(frozen=True)
+class Posed:
+    """An instance as it rests on the table before its yaw: x_rest = R x_model + s (R = I, s = 0 upright)."""
+
+    inst: Instance
+    shape: Shape                 # in the resting frame: resting face on z = 0, footprint centred on z
+    R: np.ndarray                # (3, 3)
+    s: np.ndarray                # (3,)
+    face: int | None             # index into the instance's stable faces; -1 not a rest; None not analysed
+    tumbled: bool
+
+
+def _pose(inst: Instance, rng: np.random.Generator, tumbled_fraction: float) -> Posed:
+    """Upright as built, or (with probability ``tumbled_fraction``) dropped on a face drawn by its probability.
+    All-upright scenes draw nothing here, so they stay the scenes they were before resting poses existed."""
+    if tumbled_fraction <= 0.0:
+        return Posed(inst, inst.shape, np.eye(3), np.zeros(3), None, False)
+    tumbled = bool(rng.random() < tumbled_fraction)
+    poses = shape_resting_poses(inst.shape)
+    if not tumbled:
+        return Posed(inst, inst.shape, np.eye(3), np.zeros(3), poses.face_towards(np.array([0.0, 0.0, -1.0])), False)
+    face = int(rng.choice(len(poses.faces), p=poses.probabilities / poses.probabilities.sum()))
+    shape, R, s = rest_shape(inst.shape, poses, face)
+    return Posed(inst, shape, R, s, face, True)
+
+
+def _place(posed: list[Posed], rng: np.random.Generator) -> list[tuple[float, float]] | None:
     """Non-overlapping footprint circles inside PLACE_RADIUS, or None when this draw does not fit."""
-    radii = [inst.shape.footprint_radius() for inst in instances]
+    radii = [p.shape.footprint_radius() for p in posed]
     order = np.argsort(radii)[::-1]
     pos: dict[int, np.ndarray] = {}
     for i in order:
@@ -151,40 +203,41 @@ def _place(instances: list[Instance], rng: np.random.Generator) -> list[tuple[fl
                 break
         else:
             return None
-    return [tuple(pos[i]) for i in range(len(instances))]
+    return [tuple(pos[i]) for i in range(len(posed))]
 
 
-def _layout(pool: list[ItemClass], rng: np.random.Generator,
-            used: dict[str, int]) -> tuple[list[Instance], list[tuple[float, float]]]:
-    """5-8 new instances with placements.  ``used`` counts instances per class so far (updated here):
-    each scene takes the least-used classes (random tie-break), which keeps the classes balanced."""
+def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int],
+            tumbled_fraction: float) -> tuple[list[Posed], list[tuple[float, float]]]:
+    """5-8 new instances with resting poses and placements.  ``used`` counts instances per class so far
+    (updated here): each scene takes the least-used classes (random tie-break), which keeps them balanced."""
     target = int(rng.integers(5, 9))
     for attempt in range(60):
         n = max(5, target - attempt // 15)     # a crowded draw gives up one object every 15 attempts
         order = sorted(pool, key=lambda c: (used.get(c.name, 0), rng.random()))
-        instances = [make_instance(order[i % len(order)], rng) for i in range(n)]
-        pos = _place(instances, rng)
+        posed = [_pose(make_instance(order[i % len(order)], rng), rng, tumbled_fraction) for i in range(n)]
+        pos = _place(posed, rng)
         if pos is not None:
-            for inst in instances:
-                used[inst.item.name] = used.get(inst.item.name, 0) + 1
-            return instances, pos
+            for p in posed:
+                used[p.inst.item.name] = used.get(p.inst.item.name, 0) + 1
+            return posed, pos
     raise RuntimeError("could not place 5 objects without overlap; item sizes too large for the table disc")
 
 
 def _capture_item(shared: None, item: tuple) -> tuple[list[dict], float, str, int, float]:
     """One capture (an executor item): its truth rows, render seconds, name, frames and wall seconds."""
-    folder, split, names, n_frames, K, rng, used = item
+    folder, split, names, n_frames, K, rng, used, tumbled_fraction = item
     t1 = time.monotonic()
     by_name = {c.name: c for c in load_item_classes()}
-    rows, dt = _one_capture(Path(folder), split, [by_name[n] for n in names], n_frames, K, rng, used)
+    rows, dt = _one_capture(Path(folder), split, [by_name[n] for n in names], n_frames, K, rng, used,
+                            tumbled_fraction)
     return rows, dt, Path(folder).name, n_frames, time.monotonic() - t1
 
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
-                 rng: np.random.Generator, used: dict[str, int]) -> tuple[list[dict], float]:
-    instances, pos = _layout(pool, rng, used)
-    yaws = rng.uniform(0.0, 360.0, len(instances))
-    scene = Scene([SceneObject(inst.shape, float(y), p, inst.colour) for inst, y, p in zip(instances, yaws, pos)],
+                 rng: np.random.Generator, used: dict[str, int], tumbled_fraction: float) -> tuple[list[dict], float]:
+    posed, pos = _layout(pool, rng, used, tumbled_fraction)
+    yaws = rng.uniform(0.0, 360.0, len(posed))
+    scene = Scene([SceneObject(p.shape, float(y), xy, p.inst.colour) for p, y, xy in zip(posed, yaws, pos)],
                   table_colour=tuple(np.clip(np.array([0.62, 0.55, 0.45]) + rng.normal(0, 0.05, 3), 0, 1)),
                   table_texture=float(rng.uniform(0.0, 0.06)))
     # The capture's world frame: a random rigid transform of the table frame.
@@ -207,17 +260,23 @@ def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int,
         out_frames.append({"id": f"{k:06d}", "cam_to_world": world_from_table @ cam_to_table, "rgb": rgb,
                            "depth_m": depth, "mask": frame.mask.astype(np.uint16)})
     write_capture(folder, intrinsics=K, depth_scale=DEPTH_SCALE, frames=out_frames)
-    R, t = world_from_table[:3, :3], world_from_table[:3, 3]
-    up = R[:, 2]
+    Rw, tw = world_from_table[:3, :3], world_from_table[:3, 3]
+    up = Rw[:, 2]
     rows = []
-    for mid, (inst, yaw, p) in enumerate(zip(instances, yaws, pos), start=1):
-        a = np.deg2rad(yaw)
-        x_dir = R @ np.array([np.cos(a), np.sin(a), 0.0])
-        base = R @ np.array([p[0], p[1], 0.0]) + t
+    for mid, (p, yaw, xy) in enumerate(zip(posed, yaws, pos), start=1):
+        inst = p.inst
+        Rz = Rotation.from_euler("z", yaw, degrees=True).as_matrix()
+        base = Rw @ np.array([xy[0], xy[1], 0.0]) + tw
+        # x_world = Rw (Rz (R x_model + s) + base_table) + tw
+        R_full = Rw @ Rz @ p.R
+        t_full = Rw @ (Rz @ p.s) + base
+        q = Rotation.from_matrix(R_full).as_quat()              # [qx, qy, qz, qw], scalar last
         rows.append({"capture": folder.name, "mask_id": mid, "object": f"{folder.name}/{mid}", "class": inst.item.name,
-                     "symmetry": inst.item.symmetry, "yaw_deg": float(direction_to_yaw(x_dir, up)),
+                     "symmetry": inst.item.symmetry, "yaw_deg": float(direction_to_yaw(Rw @ Rz[:, 0], up)),
                      "scale": inst.scale, "size_m": inst.size, "x": base[0], "y": base[1], "z": base[2],
-                     "up_x": up[0], "up_y": up[1], "up_z": up[2], "split": split})
+                     "up_x": up[0], "up_y": up[1], "up_z": up[2], "split": split,
+                     "qx": q[0], "qy": q[1], "qz": q[2], "qw": q[3], "tx": t_full[0], "ty": t_full[1], "tz": t_full[2],
+                     "face": "" if p.face is None else p.face, "tumbled": int(p.tumbled)})
     return rows, dt
 
 
@@ -235,5 +294,5 @@ def _write_truth(out: Path, rows: list[dict]) -> None:
     write_text(out / "truth_points.csv", _csv(["capture", "x", "y", "z", "label", "yaw_deg"],
                                                [[r["capture"], r["x"], r["y"], r["z"], r["class"], r["yaw_deg"]] for r in rows]))
     full = ["capture", "mask_id", "object", "class", "symmetry", "yaw_deg", "scale", "size_m", "x", "y", "z",
-            "up_x", "up_y", "up_z", "split"]
+            "up_x", "up_y", "up_z", "split", "qx", "qy", "qz", "qw", "tx", "ty", "tz", "face", "tumbled"]
     write_text(out / "truth_full.csv", _csv(full, [[r[k] for k in full] for r in rows]))
