@@ -207,6 +207,15 @@ def _bench_scale(quick: bool, seed: int) -> dict:
     return bench_scale(quick, seed)
 
 
+def _bench_tilts(quick: bool, seed: int) -> dict:
+    """(e) pose search over tilts x yaw x scale vs the yaw-only search [``tilts``] (protomine/mine/tiltbench.py)."""
+    from .mine.tiltbench import bench_tilts
+    return bench_tilts(quick, seed)
+
+
+BENCH_ROWS.append(("tilts", _bench_tilts))
+
+
 SCALE_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [("scale", _bench_scale)]
 
 

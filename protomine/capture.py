@@ -7,6 +7,11 @@ The binding contract is shared/spec/capture-format.md.  In short::
     <capture>/depth/<id>.png 16-bit greyscale; metres = value / depth_scale; 0 = no reading
     <capture>/masks/<id>.png optional 16-bit greyscale instance ids, 0 = no object
 
+The reader also accepts, beyond the format (what real rigs write): colour as ``rgb/<id>.jpg`` (or .jpeg)
+when no PNG is there, 8-bit greyscale masks (ids 1..255), and a
+depth image of another size than the colour image with the same aspect ratio (a registered depth at its own
+resolution: resampled to the colour image's grid, whose intrinsics the capture gives).
+
 Every problem raises :class:`protomine.errors.InputError` naming the file and the field.
 """
 from __future__ import annotations
@@ -62,7 +67,12 @@ class Capture:
         return self.path.name
 
     def frame_file(self, kind: str, frame_id: str) -> Path:
-        return self.path / kind / f"{frame_id}.png"
+        p = self.path / kind / f"{frame_id}.png"
+        if kind == "rgb" and not p.is_file():
+            for ext in (".jpg", ".jpeg"):
+                if (alt := p.with_suffix(ext)).is_file():
+                    return alt
+        return p
 
     def rgb(self, frame_id: str) -> np.ndarray:
         """(H, W, 3) uint8."""
@@ -71,7 +81,7 @@ class Capture:
     def depth(self, frame_id: str) -> np.ndarray:
         """(H, W) float64 metres, 0 = no reading."""
         raw = _read_png(self.frame_file("depth", frame_id), "depth", self.intrinsics)
-        return raw.astype(np.float64) / self.depth_scale
+        return resample_depth(raw, (self.intrinsics.height, self.intrinsics.width)).astype(np.float64) / self.depth_scale
 
     def mask(self, frame_id: str) -> np.ndarray | None:
         """(H, W) int32 instance ids, or None when the capture has no masks."""
@@ -198,10 +208,41 @@ def read_capture(folder: str | Path, *, check_images: bool = True) -> Capture:
     return cap
 
 
-_EXPECT = {"rgb": ("8-bit RGB", {"RGB"}), "depth": ("16-bit greyscale", {"I;16", "I;16B", "I"}), "mask": ("16-bit greyscale", {"I;16", "I;16B", "I"})}
+_EXPECT = {"rgb": ("8-bit RGB", {"RGB"}), "depth": ("16-bit greyscale", {"I;16", "I;16B", "I"}),
+           "mask": ("16-bit (or 8-bit) greyscale", {"I;16", "I;16B", "I", "L"})}
 
 
-def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
+def resample_depth(depth: np.ndarray, shape: tuple[int, int], *, smooth_rel: float = 0.02) -> np.ndarray:
+    """A depth image (h, w) on the pixel grid of another size (H, W) with the same field of view.
+
+    Pixel centre u of the target grid sits at (u + 0.5) w / W - 0.5 on the source grid, which is what scaling
+    the intrinsics (fx, cx + 0.5) by W / w means.  Bilinear where the four source readings around a target
+    pixel exist and agree within ``smooth_rel`` x depth (a smooth surface: nearest neighbour would leave
+    terraces there), nearest neighbour elsewhere (averaging across an edge would invent depths between an
+    object and its background).  A depth of the target size is returned unchanged.
+    """
+    h, w = depth.shape
+    H, W = shape
+    if (h, w) == (H, W):
+        return depth
+    y = np.clip((np.arange(H) + 0.5) * h / H - 0.5, 0, h - 1)
+    x = np.clip((np.arange(W) + 0.5) * w / W - 0.5, 0, w - 1)
+    y0, x0 = np.floor(y).astype(int), np.floor(x).astype(int)
+    y1, x1 = np.minimum(y0 + 1, h - 1), np.minimum(x0 + 1, w - 1)
+    fy, fx = (y - y0)[:, None], (x - x0)[None, :]
+    d = depth.astype(np.float64)
+    q = [d[y0][:, x0], d[y0][:, x1], d[y1][:, x0], d[y1][:, x1]]
+    bil = (q[0] * (1 - fx) + q[1] * fx) * (1 - fy) + (q[2] * (1 - fx) + q[3] * fx) * fy
+    lo, hi = np.minimum.reduce(q), np.maximum.reduce(q)
+    smooth = (lo > 0) & (hi - lo <= smooth_rel * hi)
+    near = d[np.where(fy < 0.5, y0[:, None], y1[:, None]), np.where(fx < 0.5, x0[None, :], x1[None, :])]
+    return np.where(smooth, bil, near).astype(depth.dtype) if depth.dtype.kind == "f" else np.where(smooth, np.rint(bil), near).astype(depth.dtype)
+
+
+def read_image(path: str | Path, kind: str) -> np.ndarray:
+    """Read one image as ``kind`` ("rgb": (H, W, 3) uint8, PNG or JPEG; "depth": (H, W) 16-bit; "mask":
+    (H, W) 16- or 8-bit), or raise InputError naming the file."""
+    path = Path(path)
     want, modes = _EXPECT[kind]
     try:
         with Image.open(path) as im:
@@ -211,7 +252,7 @@ def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
     except FileNotFoundError:
         raise InputError(path, kind, f"{kind} image is missing") from None
     except (OSError, SyntaxError, ValueError) as e:
-        raise InputError(path, kind, f"cannot read PNG ({e})") from None
+        raise InputError(path, kind, f"cannot read PNG (or JPEG) ({e})") from None
     if mode not in modes:
         raise InputError(path, kind, f"expected {want}, got PIL mode {mode} with shape {arr.shape}")
     if kind == "rgb":
@@ -222,8 +263,20 @@ def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
             raise InputError(path, kind, f"expected {want} (H, W), got shape {arr.shape}")
         if mode == "I" and (arr.min(initial=0) < 0 or arr.max(initial=0) > 65535):
             raise InputError(path, kind, f"expected {want} values in [0, 65535]")
-    if arr.shape[:2] != (intr.height, intr.width):
-        raise InputError(path, "size", f"expected {intr.width}x{intr.height} (intrinsics), got {arr.shape[1]}x{arr.shape[0]}")
+    return arr
+
+
+def _read_png(path: Path, kind: str, intr: Intrinsics) -> np.ndarray:
+    arr = read_image(path, kind)
+    h, w = arr.shape[:2]
+    if kind == "depth" and (h, w) != (intr.height, intr.width):
+        # a registered depth at its own resolution: same field of view, so the same aspect ratio
+        if abs(w * intr.height - h * intr.width) > max(w, h, intr.width, intr.height):
+            raise InputError(path, "size", f"expected {intr.width}x{intr.height} (intrinsics) or the same aspect "
+                             f"ratio, got {w}x{h}")
+        return arr
+    if (h, w) != (intr.height, intr.width):
+        raise InputError(path, "size", f"expected {intr.width}x{intr.height} (intrinsics), got {w}x{h}")
     return arr
 
 

@@ -18,6 +18,7 @@ app = typer.Typer(add_completion=False, no_args_is_help=True, pretty_exceptions_
 COMMANDS: list[tuple[str, str]] = [
     # (module under protomine, function name), in pipeline order: the order `protomine --help` lists them
     ("scenes.command", "scenes"),
+    ("importers.command", "import_cmd"),
     ("ingest.command", "ingest"),
     ("mine.command", "mine"),
     ("label.command", "label"),

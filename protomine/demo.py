@@ -76,9 +76,10 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     prov = provenance(cfg, seed, {"library": file_fingerprint(library)}, command="demo")
     write_records(out / "labels.jsonl", recs, prov)
     write_overlays(out / "overlays", [read_capture(c) for c in singles[:6]], recs, prov, progress=say)
-    ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv")
+    ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv", scores=stats["scores"])
     typer.echo(f"label: {ev['n_known']} known and {ev['n_unknown']} never-mined objects in {len(singles)} single views; "
-               f"known-class accuracy {ev['accuracy']:.3f}, median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg; "
+               f"known-class accuracy {ev['accuracy']:.3f} (deciding by score instead: {ev['accuracy_by_score']:.3f}), "
+               f"median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg; "
                f"unknown AUROC {ev['auroc']:.3f}, flagged: {ev['unknown_flagged']:.0%} of unknown, "
                f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
                f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")

@@ -8,7 +8,7 @@ string, or None) and use three calls, none of which import the command-line laye
     with bar(progress, "ingest frames", total=96, unit="frames") as b:
         ...; b.advance()                                  # count, rate and time left
 
-Where output goes: messages and bars go to stderr, results to stdout.  When stderr is a terminal the
+Where output goes: messages and bars go to stderr, results to stdout.  When both are a terminal the
 bars are live rich bars (description, bar, done/total, items per second, elapsed, time left); otherwise
 (a pipe, a log file, CI) each bar prints a plain line every ``PLAIN_EVERY_S`` seconds (count, rate, time
 left) and one when it finishes: ``[stage] what: n/total unit in s (rate/s)``.  ``quiet`` silences everything but errors; ``verbose`` adds the per-item lines.
@@ -87,7 +87,9 @@ class Progress:
     def __init__(self, stage: str, quiet: bool = False, *, verbose: bool = False, live: bool | None = None):
         self.stage, self.quiet, self.verbose, self.t0 = stage, quiet, verbose and not quiet, time.monotonic()
         self.console = Console(stderr=True, highlight=False, soft_wrap=True)
-        live = self.console.is_terminal if live is None else live
+        # live bars only for a person at a terminal: stdout and stderr both on it (a pipe or a log file gets
+        # plain lines, never control codes)
+        live = (self.console.is_terminal and sys.stdout.isatty()) if live is None else live
         self._live: _RichProgress | None = None
         self._depth = 0
         self._want_live = bool(live) and not quiet

@@ -24,7 +24,7 @@ One record per object per frame (JSON object per line; ``null`` where a field do
     distance       pose-searched distance to the cluster's prototype (smaller = closer); the decision
     score          calibrated tail probability of that distance for that cluster, in [0, 1] (README "Score"):
                    a typical member scores about 0.5
-    unknown        true when score < [label] unknown_score (or nothing matched)
+    unknown        true when score < the library's unknown cut (``mine.openset``), or nothing matched
     alternatives   the next clusters in decision order (by distance): [{cluster, name, distance, score}]
 
 Pose fields added by full-pose matching (``rotation``, ``face``, ``qx``, ``qy``, ``qz``, ``qw``) keep their
@@ -41,6 +41,9 @@ from .atomic import write_text
 from .errors import InputError
 
 SOURCES = ("single-view", "mined")
+FIELDS = ("capture", "frame", "object", "source", "bbox", "segmentation", "center_world", "base_world", "up",
+          "size_m", "cluster", "name", "symmetry", "yaw_deg", "rotation", "face", "scale", "fit_scale", "distance", "score", "unknown",
+          "alternatives")
 # fields a reader needs (export builds COCO from these); the others are optional
 REQUIRED = ("capture", "frame", "object", "bbox", "segmentation", "cluster", "name", "score", "unknown")
 

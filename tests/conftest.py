@@ -27,6 +27,7 @@ azimuth_bins = 12
 height_bins = 4
 [mine]
 scales = [1.0]
+tilt_nsides = [0]
 n_init = 1
 max_iter = 10
 [audit]

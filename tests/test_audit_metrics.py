@@ -1,18 +1,16 @@
-"""Audit numbers: clustering scores, yaw alignment, bootstrap / Wilson intervals, label propagation."""
+"""Audit numbers: clustering scores, yaw alignment, label propagation (intervals: test_audit_intervals.py)."""
 from __future__ import annotations
 
 import itertools
 
 import numpy as np
 import pytest
-from scipy.stats import bootstrap
 from sklearn import metrics as skm
 
 from protomine.audit.metrics import (clustering_scores, contingency, hungarian_accuracy_score,
                                      inverse_purity_score, purity_score, symmetry_to_period_deg,
                                      yaw_error_deg, yaw_offset_deg)
-from protomine.audit.uncertainty import (_batched_purity, _encode, bootstrap_intervals,
-                                         labels_needed_for_width, propagation_accuracy, wilson_interval)
+from protomine.audit.uncertainty import propagation_accuracy
 
 
 def _manning_example() -> tuple[np.ndarray, np.ndarray]:
@@ -135,90 +133,6 @@ def test_yaw_modulo_symmetry_period():
     # continuous symmetry: no yaw is observable, so no error
     assert yaw_offset_deg(truth, pred, np.inf) == 0.0
     assert np.all(yaw_error_deg(truth, pred, 0.0, np.inf) == 0.0)
-
-
-# --- Wilson ----------------------------------------------------------------------------------
-
-def test_wilson_published_value():
-    lo, hi = wilson_interval(81, 263)
-    assert lo == pytest.approx(0.2553, abs=5e-5)   # Newcombe 1998, Stat Med 17:857, Table I (81/263), Wilson method
-    assert hi == pytest.approx(0.3662, abs=5e-5)   # Newcombe 1998, same row
-
-
-def test_wilson_edge_cases():
-    assert wilson_interval(0, 0) == (0.0, 1.0)
-    lo, hi = wilson_interval(10, 10)
-    assert hi == pytest.approx(1.0) and 0.6 < lo < 0.75   # Wilson 1927 closed form: n/(n+z^2) = 0.7225 for 10/10
-    assert lo == pytest.approx(10 / (10 + 1.959964 ** 2), abs=1e-4)
-    with pytest.raises(ValueError):
-        wilson_interval(5, 3)
-
-
-@pytest.mark.parametrize("p", [None, 0.5, 0.9, 1.0])
-@pytest.mark.parametrize("width", [0.1, 0.2, 0.4])
-def test_labels_needed_reaches_width_and_is_minimal(p, width):
-    n = labels_needed_for_width(p, width)
-    q = 0.5 if p is None else p
-    lo, hi = wilson_interval(round(q * n), n)
-    assert hi - lo <= width
-    lo, hi = wilson_interval(round(q * (n - 1)), n - 1)
-    assert hi - lo > width
-
-
-def test_labels_needed_worst_case_near_textbook():
-    # common practice: n ~ (z / half-width)^2 * p(1-p) = (1.96 / 0.1)^2 / 4 ~ 96 for a +-0.1 interval at p = 0.5
-    n = labels_needed_for_width(None, 0.2)
-    assert 85 <= n <= 100
-
-
-# --- bootstrap -------------------------------------------------------------------------------
-
-def test_batched_purity_matches_purity_score():
-    rng = np.random.default_rng(5)
-    c = rng.integers(0, 4, (7, 40))
-    l = rng.choice(list("abc"), (7, 40))
-    codes = [_encode(c[i], l[i]) for i in range(7)]
-    for i, (ci, li, k, m) in enumerate(codes):
-        assert _batched_purity(ci[None], li[None], k, m)[0] == pytest.approx(purity_score(c[i], l[i]))
-
-
-def test_bootstrap_intervals_contain_point_and_are_reproducible():
-    rng = np.random.default_rng(7)
-    c = rng.integers(0, 3, 50)
-    l = np.where(rng.random(50) < 0.8, c, rng.integers(0, 3, 50)).astype(str)
-    s = clustering_scores(c, l)
-    a = bootstrap_intervals(c, l, np.random.default_rng(1), n_resamples=200)
-    b = bootstrap_intervals(c, l, np.random.default_rng(1), n_resamples=200)
-    assert a == b
-    for k in ("purity", "nmi", "hungarian_accuracy"):
-        lo, hi = a[k]
-        assert lo <= s[k] + 1e-9 and s[k] <= hi + 0.02 and hi - lo > 0
-
-
-def test_bootstrap_degenerate_clean_set():
-    c = np.array([0, 0, 1, 1, 1])
-    l = np.array(list("aabbb"))
-    out = bootstrap_intervals(c, l, np.random.default_rng(0), n_resamples=50, statistics=("purity",))
-    assert out["purity"] == (1.0, 1.0)
-
-
-def test_bootstrap_purity_coverage():
-    # simulation: the percentile bootstrap interval should cover the population purity ~95% of the time;
-    # accept 0.88-0.99 for 200 simulations (binomial sd ~ 0.015 at 0.95)
-    rng = np.random.default_rng(2024)
-    # population: 3 clusters x 3 labels joint distribution with clear majorities
-    joint = np.array([[0.28, 0.04, 0.02], [0.03, 0.25, 0.05], [0.02, 0.03, 0.28]])
-    joint /= joint.sum()
-    true_purity = joint.max(axis=1).sum()
-    n, sims, covered = 120, 200, 0
-    for _ in range(sims):
-        cells = rng.choice(9, size=n, p=joint.ravel())
-        c, l = np.divmod(cells, 3)
-        ci, li, k, m = _encode(c, l)
-        res = bootstrap((ci, li), lambda a, b, axis=-1: _batched_purity(a, b, k, m), paired=True,
-                        vectorized=True, n_resamples=200, method="percentile", rng=rng)
-        covered += res.confidence_interval.low <= true_purity <= res.confidence_interval.high
-    assert 0.88 <= covered / sims <= 0.99
 
 
 # --- label propagation -----------------------------------------------------------------------

@@ -73,9 +73,20 @@ def test_build_audit_numbers_and_verdicts():
     s = a["scores"]
     k = sum(max(c["label_counts"].values()) for c in a["clusters"] if c["labelled"])
     assert s["purity"] == pytest.approx(k / n["labelled"])
-    for key in ("purity", "nmi", "hungarian_accuracy"):
-        lo, hi = a["intervals"][key]
-        assert 0 <= lo <= hi <= 1
+    # overall purity: size-weighted over the 3 labelled clusters (cluster 3 has none), interval never zero-width
+    lab = [c for c in a["clusters"] if c["labelled"]]
+    w = np.array([c["size"] for c in lab], float)
+    p = np.array([max(c["label_counts"].values()) / c["labelled"] for c in lab])
+    assert a["purity"]["estimate"] == pytest.approx(float((w * p).sum() / w.sum()))      # stratified mean, by hand
+    lo, hi = a["purity"]["interval"]
+    assert 0 <= lo < a["purity"]["estimate"] <= hi <= 1
+    assert a["purity"]["clusters_labelled"] == 3 and a["purity"]["clusters"] == 4
+    # unlabelled cluster 3 (6 of 35 objects) may hold anything: the all-objects bound widens by its share
+    assert a["purity"]["all_objects_interval"][0] == pytest.approx(lo * 29 / 35)
+    assert "3 of 4 clusters" in a["headline"] and "unknown purity" in a["headline"]
+    for key in ("nmi", "ari", "hungarian_accuracy"):
+        iv = a["intervals"][key]
+        assert (iv["interval"] is None) != (iv["reason"] is None)
     # yaw: offsets recovered, small errors (noise sd 2 degrees); cluster 3 has no truth yaw
     assert by[0]["pose"]["offset_deg"] == pytest.approx(30.0, abs=3)
     assert by[1]["pose"]["offset_deg"] == pytest.approx(200.0 % 180, abs=3)      # modulo the 2-fold period
@@ -102,23 +113,26 @@ def test_write_report_files_and_self_contained_html(tmp_path):
 
     out = tmp_path / "report"
     written = write_report(out, a, gallery_png=gallery, crops=crops)
-    for name in ("confusion.png", "purity.png", "yaw_error.png", "gallery.png", "cluster_0.png", "cluster_3.png"):
+    for name in ("yaw_error.png", "gallery.png", "cluster_0.png", "cluster_3.png"):
         assert (out / name).read_bytes()[:8] == PNG_MAGIC
         assert written[name] == out / name
     assert not [p for p in out.iterdir() if ".tmp-" in p.name]     # atomic writes left no temporaries
     doc = json.loads((out / "report.json").read_text())
-    for key in ("format", "notice", "counts", "scores", "intervals", "clusters", "confusion", "pose",
-                "propagation", "unlabelled_objects", "unmatched_truth", "labelled_unassigned", "provenance"):
+    for key in ("format", "notice", "headline", "purity", "counts", "scores", "intervals", "clusters", "confusion",
+                "pose", "propagation", "unlabelled_objects", "unmatched_truth", "labelled_unassigned", "provenance"):
         assert key in doc
     page = (out / "report.html").read_text()
     assert "not ground truth" in page
     srcs = re.findall(r'src="([^"]*)"', page)
-    assert len(srcs) == len([n for n in written if n.endswith(".png")])
+    # every written picture but the per-cluster sheets is on the page, plus one member strip per cluster row
+    assert len(srcs) == len([n for n in written if n.endswith(".png") and not n.startswith("cluster_")]) + 4
+    assert page.index(a["headline"].split(",")[0]) < page.index("<table")     # the headline comes first
+    assert "inverse_purity" not in page and "Inverse purity" in page            # readable metric names
     for s in srcs:                                               # every image is embedded, none linked
         assert s.startswith("data:image/png;base64,")
         assert base64.b64decode(s.split(",", 1)[1])[:8] == PNG_MAGIC
     assert "http" not in page and "<link" not in page and "<script" not in page
-    assert "split into" in page and "merge into cluster" in page
+    assert "split:" in page and "merge into cluster" in page
     assert "row 99" in page                                      # unmatched rows are listed, not dropped
     assert set(seen) >= {m["object"] for c in a["clusters"] for m in c["members"]}
 
@@ -205,11 +219,18 @@ def _table():
     return ObjectTable(["a/1", "a/2", "b/1"], ["a", "a", "b"], [[0, 0, 0], [1, 0, 0], [0, 0, 0]])
 
 
-def test_match_by_id_unknown_id_is_error(tmp_path):
+def test_match_by_id_unknown_id_is_listed_when_another_row_matches(tmp_path):
     rows = [TruthRow(row=2, label="mug", object="a/1"), TruthRow(row=3, label="box", object="zz/9")]
+    m = match_truth(rows, _table(), radius_m=0.05, path=tmp_path / "t.csv")
+    assert [r.row for r in m.rows] == [2]
+    assert [(r.row, "zz/9" in why) for r, why in m.unmatched] == [(3, True)]
+
+
+def test_match_by_id_only_unknown_ids_is_error(tmp_path):
+    rows = [TruthRow(row=2, label="mug", object="zz/8"), TruthRow(row=3, label="box", object="zz/9")]
     with pytest.raises(InputError) as e:
         match_truth(rows, _table(), radius_m=0.05, path=tmp_path / "t.csv")
-    assert e.value.field == "row 3, column object" and "zz/9" in e.value.message
+    assert e.value.field == "row 2, column object" and "zz/8" in e.value.message and "2 unknown" in e.value.message
 
 
 def test_match_by_point_nearest_within_radius():

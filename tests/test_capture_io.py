@@ -115,7 +115,7 @@ CASES = [
     ("rgb/depth size mismatch", lambda f: _png(f, "rgb/000000.png", np.zeros((H + 2, W, 3), np.uint8)),
      "rgb/000000.png", "size"),
     ("mask of wrong size", lambda f: _png(f, "masks/000001.png", np.zeros((H, W + 1), np.uint16)), "masks/000001.png", "size"),
-    ("8-bit mask", lambda f: _png(f, "masks/000000.png", np.ones((H, W), np.uint8)), "masks/000000.png", "mask"),
+    ("RGB mask", lambda f: _png(f, "masks/000000.png", np.ones((H, W, 3), np.uint8)), "masks/000000.png", "mask"),
     ("all-zero depth", lambda f: _png(f, "depth/000000.png", np.zeros((H, W), np.uint16)), "depth/000000.png", "pixels"),
 ]
 

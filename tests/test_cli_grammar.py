@@ -69,7 +69,7 @@ def test_main_output_is_always_out_and_help_has_no_type_placeholders():
 def test_options_that_do_nothing_are_gone():
     # tag has no randomness and no config; find and export have no randomness
     for argv in (["tag", "x.h5", "--seed", "1"], ["tag", "x.h5", "--config", "fast"], ["find", "--seed", "1"],
-                 ["export", "--seed", "1"], ["scenes", "--config", "fast"]):
+                 ["export", "--seed", "1"]):
         res = _run(*argv)
         assert res.exit_code == 2 and "No such option" in res.output, argv
 
@@ -194,6 +194,8 @@ def test_export_of_a_store_writes_the_same_record_fields_as_label(tmp_path, tiny
     assert _run("label", tiny_world["library"], new, "-o", tmp_path / "l.jsonl", "-q").exit_code == 0
     lab = json.loads((tmp_path / "l.jsonl").read_text().splitlines()[0])
     assert rec.keys() == lab.keys() and rec["source"] == "mined"
+    from protomine.records import FIELDS
+    assert set(FIELDS) <= rec.keys()
 
 
 @pytest.mark.parametrize("line, field", [
@@ -224,3 +226,15 @@ def test_mine_with_another_grid_says_so_and_records_the_store_grid(tmp_path, tin
     assert read_library(lib).config["volume"]["azimuth_bins"] == 12          # usable by label: the store's grid
     new = make_tiny_capture(tmp_path / "n", two_object_scene(1), n_frames=1)
     assert _run("label", lib, new, "-o", tmp_path / "l.jsonl", "-q").exit_code == 0
+
+
+def test_label_lists_every_bad_capture_before_work(tmp_path, tiny_world):
+    a, b = tmp_path / "a", tmp_path / "b"
+    shutil.copytree(tiny_world["caps"][0], a)
+    shutil.copytree(tiny_world["caps"][1], b)
+    _bad_json(a)
+    _missing_rgb(b)
+    res = _run("label", tiny_world["library"], a, tiny_world["caps"][2], b, "-o", tmp_path / "l.jsonl")
+    assert res.exit_code == 2 and not (tmp_path / "l.jsonl").exists()
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 2 and str(a) in lines[0] and str(b) in lines[1]

@@ -23,6 +23,7 @@ from protomine.label.matcher import label_captures, symmetry_name
 from protomine.label.overlays import yaw_arrow_world
 from protomine.mine.library import match_score
 from protomine.mine.pipeline import mine_store
+from protomine.records import FIELDS as RECORD_FIELDS
 from protomine.scenes.scenario import generate_scenario
 
 FIELDS = {"capture": str, "frame": str, "object": str, "bbox": list, "center_world": list, "size_m": list,
@@ -37,9 +38,11 @@ def labelled(tmp_path_factory):
     ingest_captures([out / c for c in doc["mining"]], out / "objects.h5", cfg, seed=0)
     lib, _ = mine_store(out / "objects.h5", out / "library.h5", cfg, seed=0, n_clusters=8)
     singles = [out / c for c in doc["single"]]
-    weighted = label_captures(lib, singles, cfg, seed=0)
+    stats: dict = {}
+    weighted = label_captures(lib, singles, cfg, seed=0, stats=stats)
     plain = label_captures(lib, singles, cfg, seed=0, weighted=False)
-    return {"out": out, "lib": lib, "singles": singles, "weighted": weighted, "plain": plain, "cfg": cfg}
+    return {"out": out, "lib": lib, "singles": singles, "weighted": weighted, "plain": plain, "cfg": cfg,
+            "scores": stats["scores"]}
 
 
 def test_records_have_the_documented_fields_and_types(labelled):
@@ -47,6 +50,7 @@ def test_records_have_the_documented_fields_and_types(labelled):
     assert len(recs) >= 40
     K = labelled["lib"].n_clusters
     for r in recs:
+        assert set(RECORD_FIELDS) <= r.keys() and r["source"] == "single-view"   # the one schema, records.py
         for k, t in FIELDS.items():
             assert isinstance(r[k], t), (k, r[k])
         json.dumps(r)  # JSON-ready
@@ -55,7 +59,7 @@ def test_records_have_the_documented_fields_and_types(labelled):
         assert 0 <= u0 < u1 <= 160 and 0 <= v0 < v1 <= 120
         assert r["cluster"] is None or 0 <= r["cluster"] < K
         assert 0.0 <= r["score"] <= 1.0
-        assert r["unknown"] == (r["score"] < labelled["cfg"]["label"]["unknown_score"])
+        assert r["unknown"] == (r["score"] < float(labelled["lib"].attrs["unknown_cut"]))
         if r["symmetry"] == "continuous":
             assert r["yaw_deg"] == 0.0
         else:
@@ -130,3 +134,17 @@ def test_unknown_threshold_is_the_student_t_quantile():
 @pytest.mark.parametrize("code,name", [(0, "continuous"), (1, "none"), (3, "n-fold:3"), (4, "n-fold:4")])
 def test_symmetry_names_follow_the_item_file_spelling(code, name):
     assert symmetry_name(code) == name
+
+
+def test_deciding_by_distance_is_at_least_as_accurate_as_by_score(labelled):
+    # the rule README "Score" documents: the nearest cluster wins, the score only judges the match
+    S = labelled["scores"]
+    recs = labelled["weighted"]
+    assert S.shape == (len(recs), labelled["lib"].n_clusters)
+    for r, row in zip(recs, S):
+        if r["cluster"] is not None:
+            assert row[r["cluster"]] == pytest.approx(r["score"])
+            assert [a["score"] for a in r["alternatives"]] == pytest.approx([row[a["cluster"]] for a in r["alternatives"]])
+    out = labelled["out"]
+    ev = evaluate_labels(recs, out / "truth_full.csv", labelled["lib"], out / "truth_full.csv", scores=S)
+    assert ev["accuracy"] >= ev["accuracy_by_score"]

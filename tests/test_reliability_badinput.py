@@ -224,11 +224,15 @@ def _other_case(name: str, tmp_path: Path, world) -> Case:
     if name == "audit: library is not HDF5":
         return _audit_case(_text(tmp_path / "lib.h5", "x,y\n"), good_truth, store, tmp_path, "lib.h5", ("HDF5",))
     if name == "audit: library of another format version":
-        return _audit_case(_hdf5_with_format(tmp_path / "lib2.h5", "protomine.library/2"), good_truth, store, tmp_path,
-                           "lib2.h5", ("format", "protomine.library/1"))
+        return _audit_case(_hdf5_with_format(tmp_path / "lib2.h5", "protomine.library/0"), good_truth, store, tmp_path,
+                           "lib2.h5", ("format", "protomine.library/2"))
+    if name == "audit: library written before 3-D poses":
+        return _audit_case(_hdf5_with_format(tmp_path / "lib1.h5", "protomine.library/1"), good_truth, store, tmp_path,
+                           "lib1.h5", ("protomine.library/1", "re-mine"))
     if name == "audit: truth CSV with unknown object ids":
-        t = _text(tmp_path / "truth.csv", "object,label\ncap0/1,box\ncap9/7,mug\n")
-        return _audit_case(library, t, store, tmp_path, "truth.csv", ("row 3", "cap9/7"))
+        # only unknown ids: nothing to audit (one unknown id among matching rows is listed in the report instead)
+        t = _text(tmp_path / "truth.csv", "object,label\ncap9/7,mug\ncap9/8,box\n")
+        return _audit_case(library, t, store, tmp_path, "truth.csv", ("row 2", "cap9/7"))
     if name == "audit: truth CSV with missing columns":
         t = _text(tmp_path / "truth.csv", "object,yaw_deg\ncap0/1,10\n")
         return _audit_case(library, t, store, tmp_path, "truth.csv", ("header", "label"))
@@ -256,7 +260,7 @@ OTHER_CASES = [
     "ingest into a store that is not HDF5", "ingest into a store built with another grid",
     "mine: store is not HDF5", "mine: store of another format version", "mine: a library given as the store",
     "mine: --clusters larger than the number of objects",
-    "audit: library is not HDF5", "audit: library of another format version", "audit: truth CSV with unknown object ids",
+    "audit: library is not HDF5", "audit: library of another format version", "audit: library written before 3-D poses", "audit: truth CSV with unknown object ids",
     "audit: truth CSV with missing columns", "audit: truth CSV with a bad number", "audit: store is not HDF5",
     "config: unknown key", "config: value out of range", "config: wrong type", "config: not TOML",
 ]

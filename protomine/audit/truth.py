@@ -8,10 +8,12 @@ The CSV (shared/spec/capture-format.md) has a header and one of two forms:
 
 Conventions: ``row`` numbers are 1-based file line numbers (the header is line 1), so messages point at
 the line a user sees in an editor.  yaw_deg is optional per row (an empty cell means "no yaw").
-Problems with the file (missing columns, bad numbers, empty labels, unknown object ids or captures,
-an object labelled twice) raise :class:`protomine.errors.InputError` naming the file, row and column.
-Point rows with no object within the radius, or whose nearest object was claimed by a nearer row, are
-returned as unmatched, never dropped.
+Problems with the file (a wrong header, bad numbers, empty labels, an object labelled twice) raise
+:class:`protomine.errors.InputError` naming the file, row and column.  Rows naming an unknown object id or
+capture, point rows with no object within the radius, and point rows whose nearest object was claimed by a
+nearer row are returned as unmatched with the reason, never dropped; only when no row matches at all does
+an unknown id or capture stop the audit (naming the first such row).
+Columns other than the ones above are ignored, so a filled-in labelling sheet (:mod:`.plan`) is read as is.
 """
 from __future__ import annotations
 
@@ -169,7 +171,7 @@ def _read_rows(path: Path, header: list[str], reader) -> list[TruthRow]:
         cell = {h: cells[i].strip() for h, i in col.items()}
         label = cell["label"]
         if not label:
-            raise InputError(path, f"row {line}, column label", "empty label")
+            raise InputError(path, f"row {line}, column label", "empty label (fill it in or delete the row)")
         yaw = None
         if cell.get("yaw_deg"):
             yaw = _number(path, line, "yaw_deg", cell["yaw_deg"]) % 360.0
@@ -196,8 +198,9 @@ def match_truth(rows: list[TruthRow], objects: ObjectTable, *, radius_m: float,
     """Match truth rows to objects: id rows by id, point rows to the nearest centre of their capture.
 
     A point row matches only within ``radius_m``; when two point rows pick the same object, the nearer
-    one wins and the other is reported unmatched.  Unknown object ids or capture names raise InputError
-    (``path`` names the CSV in the message).
+    one wins and the other is reported unmatched.  Rows naming an unknown object id or capture are
+    reported unmatched; if no row matches at all, the first of them raises InputError (``path`` names the
+    CSV in the message).
     """
     if not radius_m > 0:
         raise ValueError(f"radius_m must be > 0, got {radius_m}")
@@ -210,16 +213,21 @@ def _match_truth(rows, objects, radius_m, path) -> TruthMatch:
     # candidate (object index, distance) per row; point rows may still be displaced by a nearer row
     claims: dict[int, tuple[float, int]] = {}
     unmatched: list[tuple[TruthRow, str]] = []
+    unknown: list[tuple[str, TruthRow, str]] = []          # (column, row, message) of unknown ids/captures
     for r, tr in enumerate(rows):
         if tr.object is not None:
             if tr.object not in index:
-                raise InputError(path, f"row {tr.row}, column object",
-                                 f"unknown object id {tr.object!r} (not in the object store; {len(index)} objects known)")
+                why = f"unknown object id {tr.object!r} (not in the object store; {len(index)} objects known)"
+                unknown.append(("object", tr, why))
+                unmatched.append((tr, why))
+                continue
             i, d = index[tr.object], 0.0
         else:
             if tr.capture not in known_captures:
-                raise InputError(path, f"row {tr.row}, column capture",
-                                 f"unknown capture {tr.capture!r} (known: {', '.join(sorted(known_captures)[:10])})")
+                why = f"unknown capture {tr.capture!r} (known: {', '.join(sorted(known_captures)[:10])})"
+                unknown.append(("capture", tr, why))
+                unmatched.append((tr, why))
+                continue
             cand = np.flatnonzero(objects.captures == tr.capture)
             dist = objects.distance_to(cand, tr.point)
             j = int(dist.argmin())
@@ -234,6 +242,10 @@ def _match_truth(rows, objects, radius_m, path) -> TruthMatch:
             if winner == r_old:
                 continue
         claims[i] = (d, r)
+    if unknown and not claims:
+        column, tr, why = unknown[0]
+        raise InputError(path, f"row {tr.row}, column {column}",
+                         f"{why}; no row of the file matches an object ({len(unknown)} unknown)")
     order = sorted(claims.items(), key=lambda kv: kv[1][1])       # keep file order
     obj_idx = np.array([i for i, _ in order], dtype=np.int64)
     unlabelled = np.setdiff1d(np.arange(objects.ids.shape[0]), obj_idx)

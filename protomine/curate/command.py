@@ -8,7 +8,7 @@ import numpy as np
 import typer
 
 from ..atomic import clean_stale_temporaries
-from ..cliutil import (CapturesArg, ConfigOpt, LibraryArg, QuietOpt, SeedOpt, VerboseOpt, config_from, existing,
+from ..cliutil import (CapturesArg, ConfigOpt, LibraryArg, QuietOpt, VerboseOpt, config_from, existing,
                        notice_library_config, reporter)
 
 StoreArg = Annotated[Path, typer.Argument(metavar="STORE.h5", show_default=False,
@@ -57,6 +57,7 @@ def find(
     """Find every instance of a new item class from one example object."""
     from ..ingest.sharded import open_store
     from ..mine.library import read_library
+    from ..mine.openset import library_cut
     from ..provenance import file_fingerprint, provenance, record_outputs
     from .names import check_name
     from .oneshot import add_oneshot, find_similar, write_matches
@@ -76,9 +77,10 @@ def find(
     record_outputs([out], provenance(cfg, 0, {"library": file_fingerprint(library), "store": st.fingerprint(),
                                               "example": example}, command="find"))
     others = mt.order
-    n_hi = int(np.sum(mt.score[others] >= cfg["label"]["unknown_score"]))
-    typer.echo(f"{len(others)} objects ranked (the example left out); {n_hi} score >= "
-               f"{cfg['label']['unknown_score']}; wrote {out}")
+    cut = library_cut(lib)
+    n_hi = int(np.sum(mt.score[others] >= cut))
+    typer.echo(f"{len(others)} objects ranked (the example left out); {n_hi} score >= {cut:.4f} "
+               f"(the library's unknown cut); wrote {out}")
     if add is not None:
         lib2, info = add_oneshot(library, st, example, cfg, name=add, matches=mt)
         typer.echo(f"added cluster {info['cluster']} {info['name']!r}: {info['members']} members "
@@ -105,14 +107,16 @@ def export(
     From a store: the labels mining gave the captures' objects.  From label output: the records of
     protomine label for those captures (single frames that were never ingested or mined).
     """
+    from ..ingest.pipeline import check_captures
     from ..mine.library import read_library
     from .export import export_labels
     cfg = config_from(config)
     say = reporter("export", quiet, verbose)
     lib = read_library(existing(library, "library"))
     clean_stale_temporaries(out) if out.is_dir() else None
-    s = export_labels(lib, existing(source, "store or label records"), [existing(c, "capture folder") for c in captures],
-                      out, cfg, min_score=min_score, progress=say)
+    check_captures(captures)            # every bad capture listed before any work
+    s = export_labels(lib, existing(source, "store or label records"), captures, out, cfg, min_score=min_score,
+                      progress=say)
     typer.echo(f"{s['labels']} labels in {s['images']} frames ({s['annotations']} COCO annotations, {s['categories']} categories); "
                f"{s['dropped_below_min_score']} dropped below --min-score {min_score}; {s['unknown_labels']} unknown; wrote {out}")
     typer.echo(s["note"])

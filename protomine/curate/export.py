@@ -43,10 +43,11 @@ from ..progress import bar, detail
 from ..provenance import file_fingerprint, provenance, record_outputs
 from ..capture import read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng
+from ..ingest.pipeline import capture_rng, unique_capture_names
 from ..ingest.proposals import find_objects
 from ..ingest.store import ObjectStore
 from ..mine.library import Library
+from ..mine.openset import library_cut
 from ..records import mask_to_rle, pixels_to_rle, read_records, rle_area  # noqa: F401  (mask_to_rle: public here too)
 
 NOTE = ("Labels are bootstrapped by unsupervised prototype mining (protomine), not ground truth: "
@@ -98,9 +99,7 @@ def export_labels(library: Library, source: str | Path | ObjectStore, captures: 
         raise InputError(None, "--min-score", f"expected a score in [0, 1], got {min_score}")
     if not captures:
         raise InputError(None, "captures", "expected at least one capture folder")
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        raise InputError(None, "captures", f"capture folder names must be unique, got {names}")
+    names = unique_capture_names(captures)
     if isinstance(source, ObjectStore) or _is_hdf5(Path(source)):
         store = source if isinstance(source, ObjectStore) else open_store(source)
         cap_rows = {str(n): j for j, n in enumerate(store.captures["name"])}
@@ -144,7 +143,7 @@ def _store_records(lib: Library, store: ObjectStore, captures: list[Path], cfg: 
     from ..label.matcher import symmetry_name
     mem = {str(o): j for j, o in enumerate(lib.members["object"])}
     m, p = lib.members, lib.prototypes
-    unknown_score = float(cfg["label"]["unknown_score"])
+    unknown_score = library_cut(lib)
     second_score = lib.score(np.asarray(m["second_distance"], np.float64), np.maximum(np.asarray(m["second_cluster"]), 0),
                              single_view=False) if len(m["object"]) else np.zeros(0)
     out, no_pixels = [], 0
@@ -195,7 +194,7 @@ def _store_records(lib: Library, store: ObjectStore, captures: list[Path], cfg: 
 def _write_export(lib: Library, frames: list[tuple[object, str, list[dict]]], out: Path, cfg: dict, min_score: float,
                   prov: dict, progress) -> dict:
     """COCO + JSON lines + per-class table from (capture, frame id, records) of every frame."""
-    unknown_score = float(cfg["label"]["unknown_score"])
+    unknown_score = library_cut(lib)
     cat_names = [lib.display_name(k) for k in range(lib.n_clusters)]
     categories = {n: i + 1 for i, n in enumerate(dict.fromkeys(cat_names))}
     lines, images, annotations = [], [], []
@@ -215,6 +214,8 @@ def _write_export(lib: Library, frames: list[tuple[object, str, list[dict]]], ou
                     raise InputError(lib.path, "prototypes", f"label record of {rec['object']} names cluster {k}, the "
                                      f"library has 0..{lib.n_clusters - 1} (labelled with another library?)")
                 name = lib.display_name(int(k)) if k is not None else "unknown"
+                if k is not None:       # the library's current name (the cluster may have been named since)
+                    rec = {**rec, "name": str(lib.prototypes["name"][int(k)]) or None}
                 lines.append(json.dumps(rec))
                 st = stats.setdefault(name, {"clusters": set(), "objects": set(), "labels": 0, "scores": [], "unknown": 0})
                 if k is not None:

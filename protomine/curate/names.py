@@ -62,13 +62,15 @@ def _set_name(lib: Library, path: Path, k: int, name: str, example: str) -> Libr
     names[k], examples[k] = name, example
     lib.prototypes["name"], lib.prototypes["name_example"] = names, examples
     write_library(path, lib)
-    refresh_gallery(lib, path)
+    refresh_gallery(lib, path, clusters=[k])
     return lib
 
 
-def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
-    """Re-render gallery.png beside the library if that folder already has one; returns its path."""
+def refresh_gallery(lib: Library, library_path: str | Path, clusters: list[int] | None = None) -> Path | None:
+    """Re-render gallery.png (and the member sheets of ``clusters``, None = all: their titles carry the
+    names) beside the library if that folder already has them; returns the gallery's path."""
     from ..mine.gallery import render_gallery
+    refresh_member_sheets(lib, library_path, clusters)
     gallery = Path(library_path).parent / "gallery.png"
     if not gallery.is_file():
         return None
@@ -78,3 +80,14 @@ def refresh_gallery(lib: Library, library_path: str | Path) -> Path | None:
                    symmetry=np.asarray(p["symmetry"]), names=[str(x) for x in p["name"]])
     record_outputs([gallery], provenance_of(lib.attrs))
     return gallery
+
+
+def refresh_member_sheets(lib: Library, library_path: str | Path, clusters: list[int] | None = None) -> list[Path]:
+    """Re-render members/ beside the library when it exists and the library's store can still be opened."""
+    from ..ingest.sharded import open_store
+    from ..mine.members import write_member_sheets
+    folder = Path(library_path).parent / "members"
+    store = Path(lib.store_path) if lib.store_path else None
+    if not folder.is_dir() or store is None or not store.is_file():
+        return []
+    return write_member_sheets(folder, lib, open_store(store), clusters=clusters)

@@ -8,10 +8,14 @@ Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
   ``protomine ingest NEW_CAPTURE --store objects.h5`` first; its object id is then the example.
   Features use the library's channel weights (its recorded ``mine.free_weight`` / ``mine.colour_weight``)
   and the search uses the library's scales, so distances are those of the library.
-- Every store object is matched against it over all yaws and scales (``pose_distances``): distance d,
-  yaw_deg (object ~= example rolled by yaw, i.e. the object's yaw relative to the example, modulo the
-  one-shot symmetry period; 0 for continuous symmetry) and ``scale`` = metric size sqrt(r h) of the
-  object over that of the example (``fit_scale`` is the pose search's residual scale).
+- Every store object is matched against it over the library's tilts, all yaws and scales
+  (``tilts.tilt_pose_distances``): distance d, yaw_deg (object ~= example rolled by yaw, i.e. the object's
+  yaw relative to the example, modulo the one-shot symmetry period of its face; 0 for continuous
+  symmetry), ``rotation`` [qx, qy, qz, qw] (x_world = R x_example + t, the example's frame taken as the
+  prototype frame), ``face`` (the one-shot prototype's faces are the resting faces of the objects that
+  match it with a score above the library's unknown cut, grouped by ``faces.group_faces``; face 0 = the
+  example's own) and ``scale`` = metric size sqrt(r h) of the object over that of the example
+  (``fit_scale`` is the pose search's residual scale).
 
 One-shot score (label-free calibration; documented once, used by ``find`` and ``--add``)
 ------------------------------------------------------------------------------------------
@@ -27,7 +31,7 @@ per cluster (median, 1.4826 MAD of ln d) is pooled over clusters by the median:
 i.e. the fraction of a class's instances expected to fit a single exemplar of that class worse than
 this object does, the same meaning as ``library.match_score`` of mined prototypes.  It is therefore
 comparable with member scores (``--add`` moves a member when its one-shot score beats its current
-score) and with ``label.unknown_score``.  When no cluster has enough members the fit falls back to the
+score) and with the library's unknown cut (``mine.openset``).  When no cluster has enough members the fit falls back to the
 bulk of the store: (m, s) = median and 1.4826 MAD of ln d of every other object, mu_1 = m - 2 s,
 sigma_1 = s (objects two robust standard deviations closer than the bulk score 0.5).
 Single-view calibration of an added prototype: single_mu = mu_1 + median_k(single_mu_k - fused_mu_k),
@@ -49,14 +53,16 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
-from ..mine.pipeline import period_of, reduce_yaw, write_assignments
-from ..mine.posesearch import pose_distances
+from ..mine.faces import face_pose, group_faces
+from ..mine.openset import library_cut
+from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_assignments
 from ..mine.symmetry import detect_symmetry
+from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
 from .names import check_name, refresh_gallery
 
 MIN_CAL_MEMBERS = 3
 MAX_CAL_MEMBERS = 64
-MATCH_COLUMNS = ("object", "distance", "score", "yaw_deg", "scale", "cluster")
+MATCH_COLUMNS = ("object", "distance", "score", "yaw_deg", "scale", "cluster", "qx", "qy", "qz", "qw", "face")
 
 
 @dataclass
@@ -72,6 +78,8 @@ class OneShotPrototype:
     single_mu: float
     single_sigma: float
     calibration: str                     # "exemplars of N clusters" or "store bulk"
+    aspect: float = 1.0                  # grid aspect z_max / rho_max (``tilts.grid_aspect``)
+    faces: dict = field(default_factory=dict)  # face_up (F, 3), face_count (F,), face_symmetry (F,)
 
 
 @dataclass
@@ -85,6 +93,8 @@ class Matches:
     scale: np.ndarray
     fit_scale: np.ndarray
     cluster: np.ndarray                 # the object's library cluster, -1 when it is not a member
+    rotation: np.ndarray                # (N, 4) quaternions [qx, qy, qz, qw], world <- example frame
+    face: np.ndarray                    # (N,) face of the one-shot prototype
     example_index: int = -1             # the example's own row: matched (distance 0) but left out of ``order``
     order: np.ndarray = field(init=False)
 
@@ -97,7 +107,8 @@ class Matches:
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
         return [{"object": str(self.object[i]), "distance": float(self.distance[i]), "score": float(self.score[i]),
-                 "yaw_deg": float(self.yaw_deg[i]), "scale": float(self.scale[i]), "cluster": int(self.cluster[i])}
+                 "yaw_deg": float(self.yaw_deg[i]), "scale": float(self.scale[i]), "cluster": int(self.cluster[i]),
+                 "rotation": [float(v) for v in self.rotation[i]], "face": int(self.face[i])}
                 for i in idx]
 
 
@@ -138,7 +149,8 @@ def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float
         Pe, Ve = _features(store, np.array(exemplars), weights)
         flat = np.array(sorted({i for g in groups for i in g}))
         Xo, Wo = _features(store, flat, weights)
-        D = pose_distances(Xo, Wo, Pe, Ve, scales=scales).D
+        D = tilt_pose_distances(Xo, Wo, Pe, Ve, aspect=_aspects(store, np.array(exemplars)), scales=scales,
+                                grid=_grid(library)).D
         pos = {int(i): j for j, i in enumerate(flat)}
         fits = [log_distance_fit(D[[pos[i] for i in g], j][np.isfinite(D[[pos[i] for i in g], j])]) for j, g in enumerate(groups)]
         fits = [f for f in fits if np.isfinite(f[0])]
@@ -174,24 +186,47 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         raise InputError(store.path, f"objects[{store.ids[ex]}]", "the example has no observed cell; choose another example")
     N, chunk = len(store), int(cfg["mine"]["chunk_size"])
     D, yaw, fit = (np.empty(N, np.float64) for _ in range(3))
+    tilt = np.zeros(N, np.int64)
+    grid, aspect = _grid(library), float(_aspects(store, np.array([ex]))[0])
     src = store.source({"mine": {"free_weight": weights[0], "colour_weight": weights[1]}})
     for i0 in range(0, N, chunk):
         X, W = src.read(i0, min(N, i0 + chunk))
-        pm = pose_distances(X, W, X1, W1, scales=scales)
+        pm = tilt_pose_distances(X, W, X1, W1, aspect=[aspect], scales=scales, grid=grid)
         D[i0:i0 + len(X)], yaw[i0:i0 + len(X)], fit[i0:i0 + len(X)] = pm.D[:, 0], pm.yaw_deg[:, 0], pm.scale[:, 0]
+        tilt[i0:i0 + len(X)] = pm.tilt[:, 0]
     mu, sigma, how = _calibrate(library, store, weights, scales, ex, X1, W1, D)
     p = library.prototypes
     off = float(np.median(np.asarray(p["single_mu"]) - np.asarray(p["fused_mu"]))) if library.n_clusters else 0.0
     s_sigma = max(sigma, float(np.median(p["single_sigma"]))) if library.n_clusters else sigma
     symmetry = int(detect_symmetry(X1, W1, np.exp(mu) / 2.0)[0])
+    score = np.where(np.isfinite(D), match_score(D, mu, sigma), 0.0)
+    # the one-shot prototype's faces: where the objects that fit it rest (face 0 = the example's own)
+    R_obj = rotation_of(grid or TiltGrid.identity(), tilt, yaw)
+    fit_ok = score >= library_cut(library)
+    ups, counts, _ = group_faces(R_obj[fit_ok, 2, :], np.zeros(int(fit_ok.sum()), np.int64), 1)
+    bank = TiltBank(X1, W1, [aspect], scales, grid) if grid is not None and len(ups[0]) > 1 else None
+    fsym = [symmetry] + [int(detect_symmetry(*(a[None] for a in bank.copy_at(0, u)), np.exp(mu) / 2.0)[0])
+                         for u in ups[0][1:]] if bank is not None else [symmetry] * len(ups[0])
+    face, R_obj, yaw = face_pose(R_obj, ups[0], np.array(fsym))
+    faces = {"face_up": ups[0], "face_count": np.bincount(face[fit_ok], minlength=len(ups[0])),
+             "face_symmetry": np.array(fsym, np.int64)}
     proto = OneShotPrototype(str(store.ids[ex]), X1[0], W1[0], store.read_volume_at(np.array([ex]))[0], symmetry,
-                             mu, sigma, mu + off, s_sigma, how)
+                             mu, sigma, mu + off, s_sigma, how, aspect, faces)
     gsize = np.sqrt(store.objects["radius_m"] * store.objects["height_m"])
     cl = {str(o): int(k) for o, k in zip(library.members["object"], library.members["cluster"])}
-    score = np.where(np.isfinite(D), match_score(D, mu, sigma), 0.0)
-    return Matches(proto, np.asarray(store.ids, dtype=object), D, score,
-                   reduce_yaw(yaw, np.full(N, float(period_of(np.array([symmetry]))[0]))),
-                   gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64), ex)
+    return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
+                   gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
+                   world_quaternions(R_obj, store.objects["up"]), face, ex)
+
+
+def _grid(library: Library) -> TiltGrid | None:
+    grid = TiltGrid.from_config(library.tilt_config)
+    return None if grid.is_identity else grid
+
+
+def _aspects(store: ObjectStore, idx: np.ndarray) -> np.ndarray:
+    """Grid aspects (n,) of store objects ``idx`` under the store's lifting margins."""
+    return store_aspect(store, {})[np.asarray(idx)]
 
 
 def write_matches(path: str | Path, matches: Matches, top: int | None = None) -> Path:
@@ -201,7 +236,7 @@ def write_matches(path: str | Path, matches: Matches, top: int | None = None) ->
     w.writerow(MATCH_COLUMNS)
     for r in matches.rows(top):
         w.writerow([r["object"], f"{r['distance']:.6g}", f"{r['score']:.4f}", f"{r['yaw_deg']:.2f}",
-                    f"{r['scale']:.4f}", r["cluster"]])
+                    f"{r['scale']:.4f}", r["cluster"], *(f"{v:.6f}" for v in r["rotation"]), r["face"]])
     write_text(path, buf.getvalue())
     return Path(path)
 
@@ -245,7 +280,8 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
     if len(new):
         weights = _feature_weights(lib, cfg)
         X, W = _features(store, new, weights)
-        pm = pose_distances(X, W, lib.prototypes["features"], lib.prototypes["weights"], scales=tuple(lib.scales))
+        pm = tilt_pose_distances(X, W, lib.prototypes["features"], lib.prototypes["weights"], aspect=lib.prototypes["aspect"],
+                                 scales=tuple(lib.scales), grid=_grid(lib))
         sc = np.where(np.isfinite(pm.D), lib.score(pm.D, np.arange(K)[None, :], single_view=False), 0.0) if K else np.zeros((len(new), 0))
         best = sc.max(axis=1) if K else np.full(len(new), -1.0)
         ok = mt.score[new] > best
@@ -257,7 +293,7 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
     med_g = float(np.median(gsize[rows_new]))
     period = float(period_of(np.array([mt.prototype.symmetry]))[0])
     upd = {"cluster": K, "yaw_deg": mt.yaw_deg, "scale": gsize / med_g, "fit_scale": mt.fit_scale,
-           "distance": mt.distance, "score": mt.score}
+           "distance": mt.distance, "score": mt.score, "face": mt.face, "rotation": mt.rotation}
     m["second_cluster"][move] = m["cluster"][move]
     m["second_distance"][move] = m["distance"][move]
     for f, v in upd.items():
@@ -267,7 +303,6 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
                  "second_cluster": best_k, "second_distance": best_d}
         extra.update({f: np.asarray(v)[join] for f, v in upd.items() if f != "cluster"})
         m = {f: np.concatenate([m[f], np.asarray(extra[f]).astype(m[f].dtype)]) for f in m}
-    m["yaw_deg"] = np.where(m["cluster"] == K, reduce_yaw(m["yaw_deg"], np.full(len(m["yaw_deg"]), period)), m["yaw_deg"])
     p = {k: np.asarray(v) for k, v in lib.prototypes.items()}
     op = mt.prototype
     size = np.stack([store.objects["radius_m"][rows_new], store.objects["height_m"][rows_new]], 1)
@@ -279,8 +314,13 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
         "size_p90": np.percentile(size, 90, axis=0)[None], "fused_mu": np.array([op.mu]), "fused_sigma": np.array([op.sigma]),
         "single_mu": np.array([op.single_mu]), "single_sigma": np.array([op.single_sigma]),
         "origin": np.array(["one-shot"], dtype=object), "name": np.array([name], dtype=object),
-        "name_example": np.array([op.example], dtype=object),
+        "name_example": np.array([op.example], dtype=object), "aspect": np.array([op.aspect]),
+        **{f: v[None] for f, v in _padded_faces(op.faces, p["face_up"].shape[1]).items()},
     }
+    F = max(p["face_up"].shape[1], new_proto["face_up"].shape[1])
+    for f, fill in (("face_up", 0.0), ("face_count", 0), ("face_symmetry", -1)):
+        p[f] = _pad_axis1(p[f], F, fill)
+        new_proto[f] = _pad_axis1(new_proto[f], F, fill)
     protos = {k: np.concatenate([p[k].astype(object) if p[k].dtype == object else p[k], new_proto[k].astype(p[k].dtype)])
               for k in p if k in new_proto}
     protos["count"] = np.bincount(m["cluster"].astype(np.int64), minlength=K + 1)
@@ -293,6 +333,21 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
     return out, {"cluster": K, "name": name, "members": int(protos["count"][K]), "moved": int(move.sum()),
                  "moved_from": moved_from, "joined_new_objects": int(len(join)), "symmetry": op.symmetry,
                  "calibration": op.calibration, "mu": op.mu, "sigma": op.sigma}
+
+
+def _padded_faces(faces: dict, F: int) -> dict[str, np.ndarray]:
+    n = max(F, len(faces["face_up"]))
+    return {"face_up": _pad_axis1(np.asarray(faces["face_up"])[None], n, 0.0)[0],
+            "face_count": _pad_axis1(np.asarray(faces["face_count"])[None], n, 0)[0],
+            "face_symmetry": _pad_axis1(np.asarray(faces["face_symmetry"])[None], n, -1)[0]}
+
+
+def _pad_axis1(a: np.ndarray, n: int, fill) -> np.ndarray:
+    """Pad axis 1 of a (K, F, ...) to n entries with ``fill``."""
+    if a.shape[1] >= n:
+        return a
+    pad = np.full((a.shape[0], n - a.shape[1]) + a.shape[2:], fill, dtype=a.dtype)
+    return np.concatenate([a, pad], axis=1)
 
 
 def evaluate_oneshot(store: ObjectStore, truth_csv: str | Path, library: Library, cfg: dict,

@@ -85,6 +85,19 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
     return out
 
 
+def unique_capture_names(captures: list[str | Path]) -> list[str]:
+    """The captures' folder names; InputError when two are the same (they prefix object ids)."""
+    names = [Path(c).name for c in captures]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    return names
+
+
+def _reason(e: InputError) -> str:
+    return f"{e.field + ': ' if e.field else ''}{e.message}"
+
+
 def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: Grid,
                  progress: Callable[[str], None] | None = None) -> tuple[list[ObjectRecord], CaptureRecord, dict, int]:
     """One capture: its objects lifted into records, its capture record, its summary and its frame count.
@@ -107,10 +120,6 @@ def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: 
     return recs, rec, summary, len(scene.frames)
 
 
-def _why(e: InputError) -> str:
-    return f"{e.field + ': ' if e.field else ''}{e.message}"
-
-
 def _lift_item(shared: tuple, path: str) -> tuple | str:
     """Executor item: one capture lifted in a worker process (with keep_going, a bad one gives its reason)."""
     cfg, seed, use_masks, grid, keep_going = shared
@@ -119,7 +128,7 @@ def _lift_item(shared: tuple, path: str) -> tuple | str:
     except InputError as e:
         if not keep_going:
             raise
-        return _why(e)
+        return _reason(e)
 
 
 def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> tuple[list[Path], list[tuple[str, str]]]:
@@ -128,10 +137,7 @@ def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> t
     Returns (good captures, [(capture, reason)] of bad ones).  Without ``keep_going`` any bad capture raises
     :class:`InputErrors` naming all of them (one line each); with it they are returned to be skipped.
     """
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(captures)
     good, errors = [], []
     for c in captures:
         try:
@@ -141,7 +147,7 @@ def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> t
             errors.append(e)
     if errors and not keep_going:
         raise InputErrors(errors)
-    return good, [(str(e.path), f"{e.field + ': ' if e.field else ''}{e.message}") for e in errors]
+    return good, [(str(e.path), _reason(e)) for e in errors]
 
 
 def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *, seed: int = 0,
@@ -160,10 +166,7 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
     """
     import time
     grid = Grid.from_config(cfg)
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(captures)
     if Path(store).exists():
         # fail before minutes of work when the existing store is unreadable or of another grid;
         # write_store checks again under the writer lock (another process may replace it meanwhile)
@@ -197,7 +200,7 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
                 except InputError as e:
                     if not keep_going:
                         raise
-                    res = _why(e)
+                    res = _reason(e)
                 add(path, res)
         else:
             detail(progress, f"{len(captures)} captures on {executor.describe()}")

@@ -21,8 +21,9 @@ from sklearn.cluster import DBSCAN
 
 from ..capture import Capture
 from ..errors import InputError
-from ..geometry import camera_to_world, depth_to_points, plane_basis
+from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from ..progress import detail
+from .convexity import convex_parts, join_parts, voxel_normals
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
 
@@ -31,8 +32,15 @@ FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1
 DBSCAN_MIN_SAMPLES = 5
 FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
 FLYING_TOL_REL = 0.03
+FREE_SPACE_VOTES = 2         # other views that must see through a reading to drop it
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
+NORMAL_RADIUS = 0.7         # x cluster_eps_m: neighbourhood of the voxel normals (small keeps creases sharp)
+SUPPORT_BAND_M = 0.025      # points this low over the plane form an object's support polygon
+STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far inside it to stand alone
+LOW_FLOOR_M = 0.002         # the low band (grown into objects) starts this high over the plane ...
+LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy sensors
+LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
@@ -107,6 +115,41 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
         steady = ~flying_pixels(depth).reshape(-1)[idx]
         out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx, steady))
         detail(progress, f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
+    for fd, bad in zip(out, free_space_violations(out, K)):
+        fd.steady &= ~bad
+    return out
+
+
+def free_space_violations(frames: list[FrameData], K: np.ndarray) -> list[np.ndarray]:
+    """Per frame (M,) bool: points that other views see through.
+
+    A reading between an object and its background (a flying pixel at a depth edge, a multipath ghost) lies
+    where other cameras look past it: projected into another frame it falls in front of everything that frame
+    saw around that pixel (3x3 nearest reading, so a thin part one pixel off is not at risk) by more than
+    FLYING_TOL_M (or FLYING_TOL_REL x depth).  Seen through from FREE_SPACE_VOTES other frames (or from every
+    other frame when there are fewer), it is dropped.
+    """
+    from scipy.ndimage import minimum_filter
+    n = len(frames)
+    if n < 2:
+        return [np.zeros(len(fd.pixels), bool) for fd in frames]
+    nearest = [minimum_filter(np.where(fd.depth > 0, fd.depth, np.inf), size=3) for fd in frames]
+    need = min(FREE_SPACE_VOTES, n - 1)
+    out = []
+    for i, fd in enumerate(frames):
+        votes = np.zeros(len(fd.pixels), int)
+        for j, other in enumerate(frames):
+            if i == j:
+                continue
+            uv, z = camera_to_pixel(world_to_camera(fd.points, other.cam_to_world), K)
+            h, w = other.depth.shape
+            u, v = np.rint(uv[:, 0]).astype(int), np.rint(uv[:, 1]).astype(int)
+            inside = (z > 0) & (u >= 0) & (u < w) & (v >= 0) & (v < h)
+            seen = np.full(len(z), np.inf)
+            seen[inside] = nearest[j][v[inside], u[inside]]
+            tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * z)
+            votes += (np.isfinite(seen) & (z < seen - tol)).astype(int)
+        out.append(votes >= need)
     return out
 
 
@@ -138,15 +181,24 @@ def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.
     return plane
 
 
+def voxel_means(pts: np.ndarray, size: float, *values: np.ndarray) -> tuple[np.ndarray, ...]:
+    """Voxel centroids (V, 3) of points (M, 3) on a grid of ``size``, and the voxel means of each (M, ...) value."""
+    keys, inv = np.unique(np.floor(pts / size).astype(np.int64), axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    count = np.bincount(inv, minlength=len(keys)).astype(np.float64)
+    out = []
+    for v in (pts,) + values:
+        acc = np.zeros((len(keys),) + v.shape[1:])
+        np.add.at(acc, inv, v)
+        out.append(acc / count.reshape((-1,) + (1,) * (v.ndim - 1)))
+    return tuple(out)
+
+
 def voxel_groups(pts: np.ndarray, eps: float) -> tuple[np.ndarray, np.ndarray]:
     """Euclidean groups of points (M, 3): voxel centroids (V, 3) at eps / 3 and their DBSCAN labels (V,)."""
     if len(pts) == 0:
         return np.zeros((0, 3)), np.zeros(0, int)
-    keys, inv = np.unique(np.floor(pts / (eps / 3.0)).astype(np.int64), axis=0, return_inverse=True)
-    inv = inv.reshape(-1)
-    vox = np.zeros((len(keys), 3))
-    np.add.at(vox, inv, pts)
-    vox /= np.bincount(inv)[:, None]
+    (vox,) = voxel_means(pts, eps / 3.0)
     return vox, DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
 
 
@@ -273,7 +325,18 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     pts = np.concatenate([fd.points[s] for fd, s in zip(frames, above_sel)])
     if len(pts) == 0:
         return []
-    vox, lab = voxel_groups(pts, eps)
+    # unit vectors from each point to the camera that saw it: they orient the surface normals outwards
+    views = np.concatenate([fd.cam_to_world[:3, 3] - fd.points[s] for fd, s in zip(frames, above_sel)])
+    views /= np.maximum(np.linalg.norm(views, axis=1, keepdims=True), 1e-12)
+    rgbs = np.concatenate([fd.rgb.reshape(-1, 3)[fd.pixels[s]] for fd, s in zip(frames, above_sel)]).astype(np.float64)
+    vox, views, colours = voxel_means(pts, eps / 3.0, views, rgbs)
+    lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
+    if c["concave_deg"] < 180.0:
+        normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
+        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
+        lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
+                         support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
+                         low=_low_band(frames, plane, cfg, eps), colours=colours)
     lab = _merge_overlapping_footprints(vox, lab, plane)
     clusters = []
     for l in range(lab.max() + 1):
@@ -293,17 +356,86 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     tree_lab = np.concatenate([np.full(len(t[0]), i) for i, t in enumerate(clusters)])
     tree = cKDTree(tree_pts)
     props = [Proposal(f"{cap.name}/p{i:03d}", f"p{i:03d}", fr, centre, 0, {}) for i, (_, fr, centre) in enumerate(clusters)]
+    floor = low_floor(plane)
+    grown: list[list[np.ndarray]] = [[] for _ in props]
     for fd, s in zip(frames, above_sel):
         d, j = tree.query(fd.points[s], distance_upper_bound=eps)
         ok = np.isfinite(d)
-        lab_f = tree_lab[j[ok]]
-        pix = fd.pixels[s][ok]
+        labels = np.full(fd.depth.size, -1)
+        labels[fd.pixels[s][ok]] = tree_lab[j[ok]]
+        h = np.zeros(fd.depth.size)
+        h[fd.pixels] = plane.height(fd.points)
+        steady = np.zeros(fd.depth.size, bool)
+        steady[fd.pixels] = fd.steady
+        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, (h > floor).reshape(fd.depth.shape)
+                                    & steady.reshape(fd.depth.shape), LOW_GROW_PIXELS).reshape(-1)
+        point_of = np.full(fd.depth.size, -1)
+        point_of[fd.pixels] = np.arange(len(fd.pixels))
         for i, p in enumerate(props):
-            sel = lab_f == i
-            if sel.any():
-                p.pixels[fd.id] = pix[sel]
-                p.n_points += int(sel.sum())
-    return [p for p in props if p.n_points > 0]
+            pix = np.flatnonzero(labels == i)
+            if len(pix):
+                p.pixels[fd.id] = pix
+                p.n_points += len(pix)
+                grown[i].append(fd.points[point_of[pix]])
+    out = []
+    for p, g, (vx, _, _) in zip(props, grown, clusters):
+        if p.n_points == 0:
+            continue
+        # the frame from every point the object holds now, its low band included (a base disc widens the
+        # footprint); only points within reach of its grouped voxels, so no stray table pixel moves it
+        pts = np.concatenate(g)
+        near = cKDTree(vx).query(pts, distance_upper_bound=3 * eps)[0] < np.inf
+        p.frame, p.center_world = object_frame(np.concatenate([vx, pts[near]]), plane)
+        out.append(p)
+    return out
+
+
+def low_floor(plane: PlaneFit) -> float:
+    """Height over the plane from which a reading is not the table's own noise (the low band's floor)."""
+    return max(LOW_FLOOR_M, LOW_FLOOR_SIGMA * plane.residual_m)
+
+
+def _low_band(frames: list[FrameData], plane: PlaneFit, cfg: dict, eps: float):
+    """Voxels (L, 3) of the readings between the noise floor and the grouping margin, their in-plane
+    coordinates (L, 2) and connected components (L,) (neighbours within eps / 2)."""
+    pts = np.concatenate([fd.points[(plane.height(fd.points) > low_floor(plane))
+                                    & (plane.height(fd.points) <= above_plane_margin(plane, cfg)) & fd.steady]
+                          for fd in frames])
+    if len(pts) == 0:
+        return None
+    (vox,) = voxel_means(pts, eps / 3.0)
+    pairs = cKDTree(vox).query_pairs(eps / 2, output_type="ndarray")
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
+    g = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(len(vox), len(vox)))
+    comp = connected_components(g, directed=False)[1]
+    return vox, vox @ plane_basis(plane.normal)[:2].T, comp
+
+
+def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, steps: int) -> np.ndarray:
+    """Object labels (H, W) (-1 = none) grown into the pixels of ``band`` (H, W) bool (readings between the
+    plane's noise floor and the grouping margin: a base disc, the lower edge of a lying part), one 4-neighbour
+    ring per step, only across continuous depth (|dz| <= FLYING_TOL_M or FLYING_TOL_REL x z), at most
+    ``steps`` rings.  The table itself lies below the band, so growth stops at the object's rim."""
+    lab = labels.copy()
+    free = band & (lab < 0) & (depth > 0)
+    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * depth)
+    for _ in range(steps):
+        new = np.full_like(lab, -1)
+        for axis, shift in ((0, 1), (0, -1), (1, 1), (1, -1)):
+            nb = np.roll(lab, shift, axis=axis)
+            nd = np.roll(depth, shift, axis=axis)
+            edge = np.zeros_like(free)
+            sl = [slice(None)] * 2
+            sl[axis] = slice(0, 1) if shift == 1 else slice(-1, None)
+            edge[tuple(sl)] = True                       # np.roll wraps around: not a neighbour
+            take = free & (new < 0) & (nb >= 0) & ~edge & (np.abs(nd - depth) <= tol)
+            new[take] = nb[take]
+        if not (new >= 0).any():
+            break
+        lab = np.where(new >= 0, new, lab)
+        free &= new < 0
+    return lab
 
 
 def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit) -> np.ndarray:
@@ -335,11 +467,17 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
         return i
 
     for i in range(n):
+        # one host per group (the one covering most of it): a crumb between two touching objects lies in
+        # both their hulls and must not glue them together
+        best, best_share = -1, FOOTPRINT_OVERLAP
         for j in range(n):
             if i == j or hulls[j] is None or len(xy[i]) > len(xy[j]):
                 continue
-            if np.mean(hulls[j].find_simplex(xy[i]) >= 0) >= FOOTPRINT_OVERLAP:
-                parent[root(i)] = root(j)
+            share = float(np.mean(hulls[j].find_simplex(xy[i]) >= 0))
+            if share >= best_share:
+                best, best_share = j, share
+        if best >= 0:
+            parent[root(i)] = root(best)
     roots = np.array([root(i) for i in range(n)])
     _, new = np.unique(roots, return_inverse=True)
     return np.where(lab >= 0, new[np.maximum(lab, 0)], -1)

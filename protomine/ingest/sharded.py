@@ -48,7 +48,7 @@ from ..errors import InputError
 from ..progress import bar
 from ..provenance import provenance
 from ..scale.executor import Executor
-from .pipeline import ingest_captures
+from .pipeline import ingest_captures, unique_capture_names
 from .store import CONVENTIONS, INDEX_FORMAT, STR, ObjectStore, _decode, is_index
 from .volume import CHANNELS, Grid
 
@@ -229,10 +229,7 @@ def ingest_sharded(captures: list[str | Path], store: str | Path, cfg: dict, *, 
     keep_going: as in ``ingest_captures``; a group whose captures were all skipped writes no shard.
     """
     store = Path(store)
-    names = [Path(c).name for c in captures]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    names = unique_capture_names(captures)
     grid = Grid.from_config(cfg)
     if store.exists():
         if not is_index(store):

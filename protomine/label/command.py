@@ -31,14 +31,16 @@ def label(
     The cluster is the prototype nearest by pose-searched distance (the rule mining assigns by).
     The score judges that match: a tail probability calibrated per cluster, the fraction of the
     cluster's own single views expected to fit worse than this object.  A typical member scores
-    about 0.5, a clear misfit near 0.  Below [label] unknown_score (default 0.025: outside the 95 %
-    two-sided band of the cluster's own views) the object is "unknown".  Alternatives are listed in
+    about 0.5, a clear misfit near 0.  Below the library's unknown cut (set at mining so that at most
+    [mine] unknown_alpha, default 5 %, of held-out views of mined classes fall below it) the object
+    is "unknown".  Alternatives are listed in
     the same order as the decision (by distance), each with its distance and score.  A farther
     cluster can score higher than the chosen one: a loose cluster accepts distances that a tight
     one calls unusual, so scores rank how typical a fit is, not which cluster is nearest.
     """
     from ..atomic import clean_stale_temporaries
     from ..capture import read_capture
+    from ..ingest.pipeline import check_captures
     from ..mine.library import read_library
     from ..provenance import file_fingerprint, folder_fingerprint, provenance
     from .matcher import label_captures
@@ -49,6 +51,7 @@ def label(
     say = reporter("label", quiet, verbose)
     lib = read_library(existing(library, "library"))
     notice_library_config(lib, config, cfg, say)
+    check_captures(captures)            # every bad capture listed before any work
     caps = [read_capture(c, check_images=False) for c in captures]
     clean_stale_temporaries(out.parent)
     stats: dict = {}

@@ -15,10 +15,15 @@ Conventions:
   (truth - predicted) over the prototype's mined members of its majority class (``audit.metrics``), and
   carries over to single views.  Errors are modulo the prototype's period; a continuous prototype has
   error 0 (``median_yaw_error_deg_oriented`` leaves those out).
+- Rotation (truth with qx, qy, qz, qw): the same idea in 3-D, one offset per prototype from its mined
+  members (``mine.evaluate.cluster_rotation_offsets``), error = geodesic angle modulo the class's
+  symmetry (``median_rotation_error_deg``, correctly classified known records).
 - AUROC (``sklearn.metrics.roc_auc_score``) of the score for known (positive) vs unknown objects.
 
 Figures returned (``evaluate_labels``): n_records, n_matched, n_known, n_unknown, accuracy (known
-records whose best guess maps to their class, flagged or not), accepted_accuracy (among known records
+records whose best guess maps to their class, flagged or not), accuracy_by_score (the same if the cluster
+were chosen by the highest score instead of the least distance; needs ``scores`` (n_records, K), NaN
+without), accepted_accuracy (among known records
 not flagged), median_yaw_error_deg (correctly classified known records), median_yaw_error_deg_oriented,
 auroc, unknown_flagged, known_flagged, cluster_to_class, per_class (n, accuracy, flagged).
 """
@@ -32,14 +37,17 @@ from sklearn.metrics import roc_auc_score
 
 from ..audit.metrics import symmetry_to_period_deg, yaw_error_deg
 from ..errors import InputError
-from ..mine.evaluate import cluster_yaw_offsets, majority_map, read_truth_table
+from ..mine.evaluate import (cluster_rotation_offsets, cluster_yaw_offsets, majority_map, read_truth_table,
+                             rotation_error_deg)
+from ..rotations import quat_to_matrix
 from ..mine.library import Library
 
 DEFAULT_RADIUS_M = 0.05
 
 
 def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Library,
-                    mining_truth: str | Path, *, radius_m: float = DEFAULT_RADIUS_M) -> dict:
+                    mining_truth: str | Path, *, radius_m: float = DEFAULT_RADIUS_M,
+                    scores: np.ndarray | None = None) -> dict:
     """The label targets for ``records`` (see the module docstring for every figure)."""
     truth = read_truth_table(truth_full_csv)
     mined = read_truth_table(mining_truth)
@@ -48,7 +56,7 @@ def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Li
     if missing:
         raise InputError(mining_truth, "object", f"expected truth for every mined member, {len(missing)} missing "
                          f"(e.g. {missing[0]!r})")
-    return _evaluate(records, truth, library, mined, radius_m)
+    return _evaluate(records, truth, library, mined, radius_m, scores)
 
 
 def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) -> list[str | None]:
@@ -72,20 +80,24 @@ def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) 
     return out
 
 
-def _evaluate(records, truth, library, mined, radius_m) -> dict:
+def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
     classes = majority_map(library, mined)
     offsets = cluster_yaw_offsets(library, mined, prototype_period=True)
+    rot_off = cluster_rotation_offsets(library, mined)
     known_classes = {mined[str(o)]["class"] for o in library.members["object"]}
     ids = match_records(records, truth, radius_m)
     rows = []
-    for r, oid in zip(records, ids):
+    for i, (r, oid) in enumerate(zip(records, ids)):
         if oid is None:
             continue
         t = truth[oid]
         k = r["cluster"]
+        by_score = int(np.argmax(scores[i])) if scores is not None else None
         rows.append({"class": t["class"], "known": t["class"] in known_classes, "score": float(r["score"]),
+                     "correct_by_score": by_score is not None and classes.get(by_score) == t["class"],
                      "flag": bool(r["unknown"]), "correct": k is not None and classes.get(k) == t["class"],
                      "yaw_err": _yaw_error(library, k, offsets, t["yaw_deg"], r["yaw_deg"]),
+                     "rot_err": _rotation_error(rot_off, k, t.get("rotation"), r.get("rotation")),
                      "period": _period(library, k)})
     known = [x for x in rows if x["known"]]
     unknown = [x for x in rows if not x["known"]]
@@ -102,15 +114,26 @@ def _evaluate(records, truth, library, mined, radius_m) -> dict:
     return {
         "n_records": len(records), "n_matched": len(rows), "n_known": len(known), "n_unknown": len(unknown),
         "accuracy": mean([x["correct"] for x in known]),
+        "accuracy_by_score": mean([x["correct_by_score"] for x in known]) if scores is not None else float("nan"),
         "accepted_accuracy": mean([x["correct"] for x in known if not x["flag"]]),
         "median_yaw_error_deg": float(np.median(yaw_all)) if yaw_all else float("nan"),
         "median_yaw_error_deg_oriented": float(np.median(yaw_or)) if yaw_or else float("nan"),
         "auroc": auroc,
+        "median_rotation_error_deg": (float(np.median(rerr)) if (rerr := [x["rot_err"] for x in known if x["correct"]
+                                                                          and x["rot_err"] is not None]) else float("nan")),
         "unknown_flagged": mean([x["flag"] for x in unknown]),
         "known_flagged": mean([x["flag"] for x in known]),
         "cluster_to_class": {int(k): v for k, v in classes.items()},
         "per_class": per_class,
     }
+
+
+def _rotation_error(offsets: dict, k: int | None, truth_q, pred_q) -> float | None:
+    if k is None or truth_q is None or pred_q is None or k not in offsets:
+        return None
+    O, group, _ = offsets[k]
+    Rp, Rt = quat_to_matrix(np.asarray(pred_q)[None]), quat_to_matrix(np.asarray(truth_q)[None])
+    return float(rotation_error_deg(Rp, Rt, O, group)[0])
 
 
 def _period(library: Library, k: int | None) -> float:

@@ -14,6 +14,10 @@ Conventions (see DEVELOPERS.md and :mod:`protomine.mine.posesearch`):
   plain baseline: W = 1 on every cell of the object and of the prototypes.
 - yaw_deg: object ~= prototype rolled by yaw, i.e. the prototype's canonical x axis turned by yaw about
   up from the object frame's x axis; reported modulo the prototype's period (0 for continuous symmetry).
+  With a library mined with tilts the search also runs over the library's up directions
+  (``mine.tilts.TiltBank``): the pose is R = Rz(yaw) tilt(u) (``rotations``), ``face`` the prototype's
+  resting face nearest u, yaw modulo that face's period, and ``rotation`` the quaternion
+  [qx, qy, qz, qw] of x_world = R_world x_prototype + t in the capture's world frame.
 
 Score (documented once, used by the open-set decision):
     score_k = 1 - T_4((ln d_k - mu_k) / sigma_k)        (``library.match_score``: Student-t tail, 4 dof)
@@ -24,13 +28,13 @@ the fraction of single views of prototype k's own members expected to fit worse 
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
 cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
-"unknown" when that score is below ``label.unknown_score``: worse than all but that fraction of the
-prototype's own single views, i.e. the per-prototype distance threshold
-``exp(mu_k + sigma_k * T_4^-1(1 - unknown_score))``.
+"unknown" when that score is below the library's ``unknown_cut`` (``mine.openset``: the split-conformal
+cut at ``unknown_alpha`` on held-out single views of mined objects, so at most that share of known-class
+views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_cut))``.
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
-decision order, each with its distance and score).
+decision order, each with its distance and score); with ``rotation`` [qx, qy, qz, qw] and ``face`` (see above).
 """
 from __future__ import annotations
 
@@ -43,14 +47,19 @@ import numpy as np
 
 from ..capture import Capture, read_capture
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng, pixel_bbox
+from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
+from ..geometry import plane_basis
+from ..mine.faces import face_pose
+from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
 from ..progress import Bar, bar, detail
 from ..records import pixels_to_rle
+from ..mine.tilts import TiltBank, TiltGrid, make_bank, rotation_of
+from ..rotations import matrix_to_quat
 
 N_ALTERNATIVES = 3
 MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
@@ -74,19 +83,21 @@ class Matcher:
     free_weight: float
     colour_weight: float
     scales: tuple[float, ...]
-    unknown_score: float
+    unknown_cut: float
     weighted: bool = True
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
-    bank: PoseBank = field(init=False)
+    bank: PoseBank | TiltBank = field(init=False)
+    tilts: TiltGrid = field(init=False)
 
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
-        # the scaled prototypes' spectra cost more than matching a whole frame: build them once
-        self.bank = PoseBank(self.P, self.V, self.scales)
+        self.tilts = TiltGrid.from_config(self.library.tilt_config)
+        # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
+        self.bank = make_bank(self.P, self.V, self.scales, self.tilts, self.library.prototypes["aspect"])
 
     @property
     def K(self) -> int:
@@ -98,11 +109,13 @@ class Matcher:
         return X, (W if self.weighted else np.ones_like(W))
 
     def match(self, volumes: np.ndarray) -> dict[str, np.ndarray]:
-        """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale (n, K) and best (n,) (-1 = none)."""
+        """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
+        (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none)."""
         n = volumes.shape[0]
         if n == 0:
             z = np.zeros((0, self.K))
-            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "best": np.zeros(0, int)}
+            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
+                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         parts = [self.bank.match(X[i:i + self.chunk_size], W[i:i + self.chunk_size])
                  for i in range(0, n, self.chunk_size)]
@@ -112,15 +125,23 @@ class Matcher:
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
-        period = np.asarray(self.library.prototypes["period_deg"], np.float64)
-        yaw = reduce_yaw(np.concatenate([p.yaw_deg for p in parts]).astype(np.float64), period[None, :])
+        raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
+        tilt = np.concatenate([p.tilt for p in parts])
+        pr = self.library.prototypes
+        face = np.zeros((n, self.K), np.int64)
+        yaw = np.zeros((n, self.K))
+        rotation = np.zeros((n, self.K, 3, 3))
+        for k in range(self.K):
+            face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
+                                                              pr["face_up"][k], pr["face_symmetry"][k])
         fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
-        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "best": best}
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
+                "rotation": rotation, "best": best}
 
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
-    volumes must be lifted exactly as the mined ones were); ``label.unknown_score`` from ``cfg``."""
+    volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
     lib_cfg = library.config
     if "volume" not in lib_cfg or "mine" not in lib_cfg:
         raise InputError(library.path, "config", "library does not record the [volume] and [mine] config it was mined with")
@@ -133,7 +154,7 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   float(cfg["label"]["unknown_score"]), weighted)
+                   library_cut(library), weighted)
 
 
 @dataclass
@@ -173,7 +194,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
 def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.ndarray]) -> list[dict]:
     lib = matcher.library
     names = lib.prototypes["name"]
-    sym = lib.prototypes["symmetry"]
+    face_sym = lib.prototypes["face_symmetry"]
     size_med = np.asarray(lib.prototypes["size_median"], np.float64)
     out = []
     for i, facts in enumerate(fo.facts):
@@ -185,16 +206,19 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
                  "score": float(m["score"][i, j])} for j in order if j != k][:N_ALTERNATIVES]
         rec = {"capture": capture, "frame": fo.frame, **facts}
         if k < 0:
-            rec.update(cluster=None, name=None, yaw_deg=0.0, symmetry=None, scale=None, fit_scale=None,
+            rec.update(cluster=None, name=None, yaw_deg=0.0, rotation=None, face=None, symmetry=None, scale=None, fit_scale=None,
                        distance=None, score=0.0, unknown=True, alternatives=alts)
         else:
             r, h = facts["size_m"]
             score = float(m["score"][i, k])
+            f = int(m["face"][i, k])
+            R_world = plane_basis(np.asarray(facts["up"])).T @ m["rotation"][i, k]
             rec.update(cluster=k, name=str(names[k]) or None, yaw_deg=float(m["yaw_deg"][i, k]),
-                       symmetry=symmetry_name(sym[k]),
+                       rotation=[round(float(v), 6) for v in matrix_to_quat(R_world)], face=f,
+                       symmetry=symmetry_name(face_sym[k, f]),
                        scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
                        fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
-                       score=score, unknown=bool(score < matcher.unknown_score), alternatives=alts)
+                       score=score, unknown=bool(score < matcher.unknown_cut), alternatives=alts)
         out.append(rec)
     return out
 
@@ -224,18 +248,17 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
     and matching, summed over workers, without reading images or finding objects), ``objects_per_second``
-    for those two (per worker), ``seconds`` (wall clock of the whole call) and ``workers``.
+    for those two (per worker), ``seconds`` (wall clock of the whole call), ``workers`` and ``scores``
+    (n_records, K): every record's score against every prototype.
     """
-    names = [Path(c).name for c in capture_paths]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise InputError(None, "captures", f"capture folder names must be unique (they prefix object ids), got duplicates {dup}")
+    unique_capture_names(capture_paths)
     t0 = time.perf_counter()
     matcher = make_matcher(library, cfg, weighted=weighted)
     groups = [[str(p) for p in capture_paths[i:i + CAPTURES_PER_ITEM]]
               for i in range(0, len(capture_paths), CAPTURES_PER_ITEM)]
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
+    scores: list[np.ndarray] = []
 
     n_workers = 1 if executor is None else min(executor.n_workers, len(groups))
     total = sum(len(read_capture(p, check_images=False).frames) for p in capture_paths)
@@ -245,6 +268,7 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
             out.extend(res[0])
             for k in st:
                 st[k] += res[1][k]
+            scores.extend(res[1].get("scores", []))
             if advance:  # a worker's group: its frames at once
                 b.advance(res[1]["frames"])
 
@@ -259,6 +283,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
     st["seconds"] = time.perf_counter() - t0
     st["workers"] = n_workers
+    # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
+    st["scores"] = np.concatenate(scores or [np.zeros((0, matcher.K))])
     if stats is not None:
         stats.update(st)
     return out
@@ -321,4 +347,5 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
         out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
     st["objects"] += i0
+    st.setdefault("scores", []).append(m["score"])
     return out

@@ -1,6 +1,8 @@
 """Overlay pictures: each labelled frame drawn for a person checking labels and poses.
 
-The frame is upscaled ``UPSCALE`` times (bilinear) and each labelled object gets:
+The frame is upscaled ``upscale_of(w, h)`` times (bilinear: 2x for frames up to ``UPSCALE_UP_TO`` pixels
+on their long side, where 1x text and lines would be too coarse; larger frames stay 1x) and each
+labelled object gets:
 
 - its mask outline (from the record's ``segmentation``) in its cluster's colour (``drawing.cluster_colour``),
   over a light tint of the same colour; unknown objects get a dashed white outline and no tint;
@@ -12,7 +14,7 @@ The frame is upscaled ``UPSCALE`` times (bilinear) and each labelled object gets
   of a typical member); text has a thin dark halo.  Labels are placed greedily, nearest-to-camera base
   first, at the first free place among a few below and above the anchor, so no label hides another.
 
-Conventions: pixel (u, v) as in :mod:`protomine.geometry` (u right, v down), scaled by ``UPSCALE``.
+Conventions: pixel (u, v) as in :mod:`protomine.geometry` (u right, v down), scaled by the upscale factor.
 """
 from __future__ import annotations
 
@@ -28,6 +30,7 @@ from ..drawing import HALO, cluster_colour, halo_text, text_size
 from ..geometry import plane_basis, world_to_pixel, yaw_to_matrix
 
 UPSCALE = 2
+UPSCALE_UP_TO = 1024
 ARROW_RADII = 1.3
 TINT = 0.22            # alpha of the cluster colour over the object's pixels
 DASH = 5               # dash length of an unknown object's outline (upscaled pixels)
@@ -69,9 +72,14 @@ def _dashes(edge: np.ndarray) -> np.ndarray:
     return edge & (((u + v) // DASH) % 2 == 0)
 
 
-def _project(points: np.ndarray, K: np.ndarray, cam_to_world: np.ndarray) -> np.ndarray | None:
+def upscale_of(width: int, height: int) -> int:
+    """The factor a frame of this size is drawn at (``UPSCALE`` for small frames, else 1)."""
+    return UPSCALE if max(width, height) <= UPSCALE_UP_TO else 1
+
+
+def _project(points: np.ndarray, K: np.ndarray, cam_to_world: np.ndarray, up: int) -> np.ndarray | None:
     uv, z = world_to_pixel(points, cam_to_world, K)
-    return None if np.any(z <= 0) else (uv + 0.5) * UPSCALE - 0.5
+    return None if np.any(z <= 0) else (uv + 0.5) * up - 0.5
 
 
 def _arrow(d: ImageDraw.ImageDraw, a: np.ndarray, b: np.ndarray, col, width: int = 3) -> None:
@@ -131,9 +139,10 @@ def layout_labels(anchors: list[tuple[float, float]], sizes: list[tuple[int, int
 
 
 def draw_frame(rgb: np.ndarray, records: list[dict], K: np.ndarray, cam_to_world: np.ndarray) -> Image.Image:
-    """RGB (H, W, 3) uint8 -> (UPSCALE H, UPSCALE W) picture with the records of this frame drawn on it."""
+    """RGB (H, W, 3) uint8 -> (s H, s W) picture (s = ``upscale_of(W, H)``) with the records of this frame."""
     h0, w0 = rgb.shape[:2]
-    W, H = w0 * UPSCALE, h0 * UPSCALE
+    up = upscale_of(w0, h0)
+    W, H = w0 * up, h0 * up
     base = np.asarray(Image.fromarray(rgb).convert("RGB").resize((W, H), Image.BILINEAR), np.float64)
     # masks first (tint, outlines), so arrows and labels sit on top of every object's outline
     outlines = []
@@ -142,7 +151,7 @@ def draw_frame(rgb: np.ndarray, records: list[dict], K: np.ndarray, cam_to_world
         seg = rec.get("segmentation")
         if not seg:
             continue
-        m = np.kron(rle_to_mask(seg), np.ones((UPSCALE, UPSCALE), bool)).astype(bool)
+        m = np.kron(rle_to_mask(seg), np.ones((up, up), bool)).astype(bool)
         if not rec["unknown"]:
             base[m] = (1 - TINT) * base[m] + TINT * col
         edge = _outline(m)
@@ -158,8 +167,8 @@ def draw_frame(rgb: np.ndarray, records: list[dict], K: np.ndarray, cam_to_world
     items = []
     for rec in records:
         col = cluster_colour(None if rec["unknown"] else rec["cluster"])
-        ends = _project(np.stack(yaw_arrow_world(rec)), K, cam_to_world)
-        u0, v0, u1, v1 = (np.asarray(rec["bbox"], np.float64) * UPSCALE).tolist()
+        ends = _project(np.stack(yaw_arrow_world(rec)), K, cam_to_world, up)
+        u0, v0, u1, v1 = (np.asarray(rec["bbox"], np.float64) * up).tolist()
         anchor = (float(ends[0, 0]), float(ends[0, 1])) if ends is not None else ((u0 + u1) / 2, v1)
         items.append((rec, col, ends, anchor, v0))
     for rec, col, ends, anchor, _ in items:

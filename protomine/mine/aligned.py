@@ -22,6 +22,8 @@ def aligned_volume_sums(vols: np.ndarray, labels: np.ndarray, yaw_deg: np.ndarra
     wsum = np.zeros((K, 1, R, A, H)) if wsum is None else wsum
     for j, v in enumerate(vols.astype(np.float64)):
         k = labels[j]
+        if k < 0:  # left out (members resting on another face than the canonical one)
+            continue
         back = shift_volume(v, -yaw_deg[j] / (360.0 / A), axis=2)
         w = np.clip(back[2:3], 0, None)
         acc[k] += back * w
@@ -32,7 +34,7 @@ def aligned_volume_sums(vols: np.ndarray, labels: np.ndarray, yaw_deg: np.ndarra
 def mean_from_volume_sums(acc: np.ndarray, wsum: np.ndarray, labels: np.ndarray, K: int) -> np.ndarray:
     """(K, 6, R, A, H) weighted means from :func:`aligned_volume_sums`; channel 2 = mean observation."""
     out = acc / np.maximum(wsum, 1e-9)
-    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels, minlength=K)[:, None, None, None], 1)
+    out[:, 2] = wsum[:, 0] / np.maximum(np.bincount(labels[labels >= 0], minlength=K)[:, None, None, None], 1)
     return out.astype(np.float32)
 
 

@@ -44,8 +44,10 @@ import numpy as np
 from sklearn.cluster import AgglomerativeClustering
 from sklearn.metrics import silhouette_score
 
+from ..progress import bar
 from .engine import PoseKMeans, Source, _gather
-from .posesearch import _check_scales, pose_distances
+from .posesearch import PoseBank, _check_scales, pose_distances
+from .tilts import tilt_pose_distances
 
 
 def _symmetric(D: np.ndarray) -> np.ndarray:
@@ -59,9 +61,9 @@ def _symmetric(D: np.ndarray) -> np.ndarray:
 
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
-             min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048) -> tuple[int, list[dict]]:
+             min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048, progress=None) -> tuple[int, list[dict]]:
     """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
-    (module docstring)."""
+    (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows."""
     scales = _check_scales(scales)
     N = len(source)
     if min_k < 2 or max_k < min_k:
@@ -70,7 +72,7 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
         raise ValueError(f"n_objects={N} must be > min_k={min_k} to compare clusterings")
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
-                     chunk_size=chunk_size)
+                     chunk_size=chunk_size, progress=progress)
 
 
 def _kmedoids(S: np.ndarray, labels: np.ndarray, max_iter: int = 30) -> tuple[np.ndarray, float]:
@@ -89,11 +91,18 @@ def _kmedoids(S: np.ndarray, labels: np.ndarray, max_iter: int = 30) -> tuple[np
     return labels, float(S[np.arange(len(S)), medoids[labels]].sum())
 
 
-def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size):
+def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     Xs, Ws = _gather(source, idx, chunk_size)
-    S = _symmetric(pose_distances(Xs, Ws, Xs, Ws, scales=scales, chunk_size=256).D)
+    Xs, Ws = (np.asarray(a, dtype=np.float32) for a in (Xs, Ws))
+    n, rows = len(idx), []
+    bank = PoseBank(Xs, Ws, scales)         # what pose_distances(Xs, Ws, Xs, Ws) does, block by block
+    with bar(progress, f"choose K: distances of {n} sampled objects", total=n, unit="objects") as b:
+        for i0 in range(0, n, 256):
+            rows.append(bank.match(Xs[i0:i0 + 256], Ws[i0:i0 + 256]).D)
+            b.advance(len(rows[-1]))
+    S = _symmetric(np.concatenate(rows))
     table = []
     for k in range(min_k, min(max_k, len(idx) - 1) + 1):
         start = AgglomerativeClustering(n_clusters=k, metric="precomputed", linkage="average").fit_predict(S)
@@ -108,7 +117,7 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
 def prototype_distances(model: PoseKMeans) -> np.ndarray:
     """(K, K) symmetric pose-minimised distances between a fitted model's prototypes."""
     P, V = model.prototypes_, model.prototype_weights_
-    return _symmetric(pose_distances(P, V, P, V, scales=model.scales_).D)
+    return _symmetric(tilt_pose_distances(P, V, P, V, aspect=model.aspect_, scales=model.scales_, grid=model.tilts).D)
 
 
 def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold: float = 0.5
@@ -135,7 +144,8 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
         model = PoseKMeans(n_clusters=len(rest), scales=model.scales, n_init=1, max_iter=model.max_iter,
                            tol=model.tol, chunk_size=model.chunk_size, random_state=model.random_state,
                            sample_size=model.sample_size, symmetry_factor=model.symmetry_factor, symmetry_tol=model.symmetry_tol,
-                           init=(model.prototypes_[rest], model.prototype_weights_[rest]),
+                           tilts=model.tilts, init=(model.prototypes_[rest], model.prototype_weights_[rest],
+                                                    None if model.aspect_ is None else model.aspect_[rest]),
                            progress=model.progress).fit(source)
     return model, merges
 
@@ -145,7 +155,7 @@ def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
     """Choose K, fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
     rng = np.random.default_rng(random_state)
     k, table = choose_k(source, max_k=max_k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
-                        sample_size=sample_size)
+                        sample_size=sample_size, progress=engine_kwargs.get("progress"))
     model = PoseKMeans(n_clusters=k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                        **engine_kwargs).fit(source)
     model, merges = merge_close_prototypes(model, source, merge_threshold=merge_threshold)

@@ -65,9 +65,13 @@ from sklearn.cluster import KMeans
 from sklearn.decomposition import PCA
 
 from .. import cores
+from .. import rotations as rot
+from . import faces
 from ..progress import Bar, bar
 from . import symmetry as sym
-from .posesearch import PoseBank, PoseMatch, _check_scales, _resample_axis, shift_volume
+from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
+from .posesearch import PoseBank
+from .tilts import TiltBank, TiltGrid, make_bank
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
 
@@ -85,16 +89,20 @@ class Source(Protocol):
 
 
 class ArraySource:
-    """In-memory source: X (N, C, R, A, H), W (N, R, A, H)."""
+    """In-memory source: X (N, C, R, A, H), W (N, R, A, H); optional ``aspect`` (N,) grid aspects
+    z_max / rho_max (``tilts.grid_aspect``), needed by the tilt search."""
 
-    def __init__(self, X: np.ndarray, W: np.ndarray):
+    def __init__(self, X: np.ndarray, W: np.ndarray, aspect: np.ndarray | None = None):
         X = np.asarray(X, dtype=np.float32)
         W = np.asarray(W, dtype=np.float32)
         if X.ndim != 5:
             raise ValueError(f"X must have shape (N, C, R, A, H), got {X.shape}")
         if W.shape != X.shape[:1] + X.shape[2:]:
             raise ValueError(f"W must have shape {X.shape[:1] + X.shape[2:]}, got {W.shape}")
+        if aspect is not None and np.shape(aspect) != (X.shape[0],):
+            raise ValueError(f"aspect must have shape ({X.shape[0]},), got {np.shape(aspect)}")
         self.X, self.W = X, W
+        self.aspect = None if aspect is None else np.asarray(aspect, np.float64)
 
     def __len__(self) -> int:
         return self.X.shape[0]
@@ -148,23 +156,41 @@ def reduced_descriptors(X: np.ndarray, W: np.ndarray, *, n_components: int = 32,
 
 
 def _descriptor_seeds(sub: "ArraySource", desc: np.ndarray, K: int, scales: tuple[float, ...], chunk_size: int,
-                      seed: int, cache: "_SpectraCache | None" = None) -> tuple[np.ndarray, np.ndarray]:
+                      seed: int, cache: "_SpectraCache | None" = None, grid: TiltGrid | None = None
+                      ) -> tuple[np.ndarray, np.ndarray] | tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Initial prototypes (K, C, R, A, H), (K, R, A, H) from k-means on yaw-invariant descriptors.
 
     k-means (k-means++ seeding, ``sklearn.cluster.KMeans``) on the descriptors ``desc`` (n, d) of the
     objects of ``sub`` groups objects whatever their yaw; each group's member nearest its centroid is
     the reference, and the group's members, posed against that reference and aligned, are averaged
     (one Lloyd update with the descriptor labels held fixed).  A group mean is a much steadier start
-    than a single object.
+    than a single object.  With a tilt ``grid`` the members are posed over tilts too, and the prototypes'
+    aspects (K,) are returned as a third value.
     """
     km = KMeans(n_clusters=K, n_init=1, random_state=seed).fit(desc)
     lab = km.labels_
     d2 = ((desc - km.cluster_centers_[lab]) ** 2).sum(axis=1)
     refs = np.array([np.flatnonzero(lab == k)[np.argmin(d2[lab == k])] for k in range(K)])
     P_ref, V_ref = sub.X[refs].copy(), sub.W[refs].copy()
-    *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, K, forced=lab,
-                                                 cache=cache)
-    return _update(num, den, count, worst, P_ref, V_ref)
+    ts = None if grid is None else TiltState(grid, sub.aspect[refs])
+    labels, *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, K, forced=lab,
+                                                         cache=cache, tilts=ts)
+    P, V = _update(num, den, count, worst, P_ref, V_ref)
+    if ts is None:
+        return P, V
+    return P, V, _update_aspect(ts, labels, sub.aspect)
+
+
+def _update_aspect(ts: "TiltState", labels: np.ndarray, obj_aspect: np.ndarray) -> np.ndarray:
+    """Prototype aspects (K,): the median aspect of each prototype's upright members (tilt = identity: they
+    rest on the canonical face, so their grid's shape is the prototype's); unchanged without such members."""
+    up = ts.grid.is_upright(ts.tilt)
+    out = ts.aspect.copy()
+    for k in range(len(out)):
+        sel = (labels == k) & up
+        if sel.any():
+            out[k] = float(np.median(obj_aspect[sel]))
+    return out
 
 
 def align_to_prototype(x: np.ndarray, w: np.ndarray, yaw_deg: np.ndarray, scale: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -194,10 +220,11 @@ def align_to_prototype(x: np.ndarray, w: np.ndarray, yaw_deg: np.ndarray, scale:
 class _Result:
     """One Lloyd run's output."""
 
-    def __init__(self, P, V, labels, yaw, scale, dist, cost, n_iter, moments=None):
+    def __init__(self, P, V, labels, yaw, scale, dist, cost, n_iter, moments=None, tilt=None, aspect=None):
         self.P, self.V, self.labels, self.yaw, self.scale, self.dist = P, V, labels, yaw, scale, dist
         self.cost, self.n_iter = cost, n_iter
         self.moments = moments  # (s0, s1, s2, sw2) of the aligned members, or None
+        self.tilt, self.aspect = tilt, aspect  # (N,) tilt indices and (K,) prototype aspects, or None
 
 
 def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
@@ -216,39 +243,63 @@ def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
 
 
 class _AlignedSums:
-    """Per (prototype, scale) sums of members' quantities rolled into the prototype frame, kept as spectra.
+    """Per (prototype, tilt, scale) sums of members' quantities rolled into the prototype frame, kept as spectra.
 
     Members are added as real spectra (2F, n, B R H) (rows [:F] real, [F:] imaginary parts of the
     azimuthal rfft, the layout of ``posesearch``); the roll by -yaw is a per-member phase, and members
-    of the same (prototype, scale) are summed with ``index_add_``, so the cost is linear in the number of
-    members and independent of K.  :meth:`result` transforms back once and resamples each scale's sum
-    by 1 / scale (resampling is linear, so resampling the sum equals summing the resampled members).
+    of the same group, key (k T + t) S + s for prototype k, tilt t (of T, 1 for a yaw-only search) and
+    scale s, are summed with ``index_add_``, so the cost is linear in the number of members and
+    independent of K.  Groups get their accumulator slot when their first member arrives (with tilts most
+    (k, t, s) groups stay empty).  :meth:`result` transforms back once, resamples each group's sum by
+    1 / scale and untilts it into the prototype frame (both are linear, so transforming the sum equals
+    summing the transformed members).
     """
 
-    def __init__(self, K: int, S: int, A: int, n_feat: int):
-        self.K, self.S, self.A = K, S, A
-        self.acc = torch.zeros((A // 2 + 1, K * S, n_feat), dtype=torch.complex64)
+    def __init__(self, K: int, S: int, A: int, n_feat: int, T: int = 1):
+        self.K, self.S, self.A, self.T, self.n_feat = K, S, A, T, n_feat
+        self.slots: dict[int, int] = {}
+        self.acc = torch.zeros((A // 2 + 1, 0, n_feat), dtype=torch.complex64)
+
+    def _slots_of(self, group: np.ndarray) -> np.ndarray:
+        for g in np.unique(group):
+            if int(g) not in self.slots:
+                self.slots[int(g)] = len(self.slots)
+        if len(self.slots) > self.acc.shape[1]:
+            grow = max(len(self.slots), 2 * self.acc.shape[1]) - self.acc.shape[1]
+            self.acc = torch.cat([self.acc, torch.zeros((self.acc.shape[0], grow, self.n_feat), dtype=torch.complex64)], 1)
+        return np.array([self.slots[int(g)] for g in group], np.int64)
 
     def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray) -> None:
         F = self.A // 2 + 1
         c = torch.complex(spec[:F], spec[F:])
         c.mul_(_align_phase(yaw_deg, self.A)[:, :, None])
-        self.acc.index_add_(1, torch.from_numpy(group.astype(np.int64)), c)
+        slots = torch.from_numpy(self._slots_of(np.asarray(group)))  # may grow self.acc: before the add
+        self.acc.index_add_(1, slots, c)
 
-    def result(self, scales: tuple[float, ...], shape: tuple[int, int, int]) -> np.ndarray:
-        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H)."""
+    def result(self, scales: tuple[float, ...], shape: tuple[int, int, int], untilt=None) -> np.ndarray:
+        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``untilt(k, t, a)``
+        rotates sums a (B, R, A, H) of tilt t back into prototype k's frame (``TiltBank.untilt``)."""
         B, R, H = shape
-        a = torch.fft.irfft(self.acc, n=self.A, dim=0).numpy().astype(np.float64)  # (A, K S, B R H)
-        a = a.reshape(self.A, self.K, self.S, B, R, H).transpose(1, 2, 3, 4, 0, 5)  # (K, S, B, R, A, H)
         out = np.zeros((self.K, B, R, self.A, H))
-        for si, s in enumerate(scales):
-            part = a[:, si]
+        if not self.slots:
+            return out
+        keys = np.array(sorted(self.slots), np.int64)
+        cols = torch.from_numpy(np.array([self.slots[int(g)] for g in keys], np.int64))
+        a = torch.fft.irfft(self.acc[:, cols], n=self.A, dim=0).numpy().astype(np.float64)  # (A, G, B R H)
+        a = a.reshape(self.A, len(keys), B, R, H).transpose(1, 2, 3, 0, 4)  # (G, B, R, A, H)
+        for j, g in enumerate(keys):
+            kt, si = divmod(int(g), self.S)
+            k, t = divmod(kt, self.T)
+            part = a[j]
+            s = scales[si]
             if s != 1.0:
-                m = np.ones((1, 1, R, 1, H), bool)
-                part, m = _resample_axis(part, m, 1.0 / s, 2)
-                part, m = _resample_axis(part, m, 1.0 / s, 4)
+                m = np.ones((1, R, 1, H), bool)
+                part, m = _resample_axis(part, m, 1.0 / s, 1)
+                part, m = _resample_axis(part, m, 1.0 / s, 3)
                 part = part * m  # cells the scaled members do not cover stay unknown
-            out += part
+            if t and untilt is not None:
+                part = untilt(k, t, part)
+            out[k] += part
         return out
 
 
@@ -283,9 +334,20 @@ def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Te
     return torch.tensordot(dft, stack, dims=([1], [3])).reshape(dft.shape[0], x.shape[0], -1)
 
 
+class TiltState:
+    """The tilt part of a pass (3-D poses): the up-direction grid, the prototypes' aspects (K,) used to build
+    their tilted copies, and, after a pass, each object's best tilt ``tilt`` (N,) (indices into grid.dirs)."""
+
+    def __init__(self, grid: TiltGrid, aspect: np.ndarray):
+        self.grid = grid
+        self.aspect = np.asarray(aspect, np.float64)
+        self.tilt: np.ndarray | None = None
+
+
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
                  accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
-                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None, advance=None):
+                 cache: _SpectraCache | None = None, scale_index: np.ndarray | None = None, advance=None,
+                 tilts: TiltState | None = None):
     """One pass over the source: assignment against (P, V) and, optionally, the aligned sums.
 
     Returns labels, yaw, scale, dist (N,), and when accumulating num (K, C, R, A, H), den (K, R, A, H),
@@ -294,11 +356,15 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     ``forced`` (N,) fixes the labels (seeding): poses are then those against the forced prototype.
     ``cache`` keeps object spectra between passes (same source and chunk_size only).  ``scale_index``
     (N,) restricts each object's scale search to its previous best scale +-1 (intermediate passes).
-    A source with an ``assign_pass`` method runs the pass itself (``mine.distributed.ExecutorSource``: a
-    map-reduce over chunks on an executor, with the same arguments and results).  ``advance(n)``, when
-    given, is told how many objects each chunk covered (progress).
+    ``tilts`` adds the up-direction search (prototypes' tilted copies, members untilted into the sums) and
+    receives each object's best tilt in ``tilts.tilt``.  A source with an ``assign_pass`` method runs the
+    pass itself (``mine.distributed.ExecutorSource``: a map-reduce over chunks on an executor, with the same
+    arguments and results; yaw only).  ``advance(n)``, when given, is told how many objects each chunk
+    covered (progress).
     """
     if hasattr(source, "assign_pass"):
+        if tilts is not None and not tilts.grid.is_identity:
+            raise ValueError("the tilt search runs in this process only; use [mine] tilt_nsides = [0] with a scheduler")
         out = source.assign_pass(P, V, scales, chunk_size, accumulate, n_worst, moments=moments, forced=forced,
                                  scale_index=scale_index)
         if advance is not None:
@@ -307,18 +373,21 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     N = len(source)
     K, C, R, A, H = P.shape
     S = len(scales)
-    bank = PoseBank(P, V, scales)
+    bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect)
+    T = 1 if tilts is None else len(tilts.grid.dirs)
+    untilt = getattr(bank, "untilt", None)
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
     dist = np.empty(N, np.float32)
+    tilt = np.zeros(N, np.int64)
     # Each chunk's aligned sums are transformed back and added in float64 in chunk order, exactly as the
     # map-reduce pass of mine.distributed folds its chunk parts, so one process and a cluster sum alike.
     tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
     extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     for i0, i1 in _chunks(N, chunk_size):
-        sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
-        msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
+        sums = _AlignedSums(K, S, A, (C + 2) * R * H, T) if accumulate else None
+        msums = _AlignedSums(K, S, A, (C + 1) * R * H, T) if moments else None
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
             x, w = source.read(i0, i1)
@@ -330,27 +399,29 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
                 cache.put(i0, o)
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
-            None if scale_index is None else scale_index[i0:i1], scales, sums, msums)
+            None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
         if accumulate:
-            tot += sums.result(scales, (C + 2, R, H))  # blocks [w |x|^2, w, w x_1 .. w x_C]
+            tot += sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
         if moments:
-            extra += msums.result(scales, (C + 1, R, H))
+            extra += msums.result(scales, (C + 1, R, H), untilt)
         if advance is not None:
             advance(i1 - i0)
+    if tilts is not None:
+        tilts.tilt = tilt
     if not accumulate:
         return labels, yaw, scale, dist, None, None, None, None, None
     return _pass_outputs(source, labels, yaw, scale, dist, tot, extra, P, V, n_worst, chunk_size)
 
 
-def _chunk_step(bank: PoseBank, o: torch.Tensor, x: np.ndarray | None, w: np.ndarray | None,
+def _chunk_step(bank: PoseBank | TiltBank, o: torch.Tensor, x: np.ndarray | None, w: np.ndarray | None,
                 forced: np.ndarray | None, scale_window: np.ndarray | None, scales: tuple[float, ...],
-                sums: _AlignedSums | None, msums: _AlignedSums | None
+                sums: _AlignedSums | None, msums: _AlignedSums | None, tilt_out: np.ndarray | None = None
                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """One chunk of a pass (the map step): best pose of each object, given its spectra o (2F, n, (C + 2) R H),
     against the bank's prototypes; with ``sums`` the members are added aligned into their (prototype,
     scale) sums, with ``msums`` also their moments from x (n, C, R, A, H), w (n, R, A, H).  ``forced`` (n,)
     fixes the labels; ``scale_window`` (n,) limits the scale search (see :func:`_assign_pass`).
-    Returns labels (n,) int64, yaw_deg, scale, dist (n,) float32.
+    Returns labels (n,) int64, yaw_deg, scale, dist (n,) float32; ``tilt_out`` (n,) receives the tilts.
     """
     m = bank.match_spectra(o, scale_index=scale_window)
     n = o.shape[1]
@@ -359,11 +430,14 @@ def _chunk_step(bank: PoseBank, o: torch.Tensor, x: np.ndarray | None, w: np.nda
     yaw = m.yaw_deg[r, lab].astype(np.float32)
     scale = m.scale[r, lab].astype(np.float32)
     d = m.D[r, lab].astype(np.float32)
+    tilt = m.tilt[r, lab] if m.tilt is not None else np.zeros(n, np.int64)
+    if tilt_out is not None:
+        tilt_out[:] = tilt
     if sums is not None:
         S = len(scales)
         scale_pos = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
         ok = np.flatnonzero(np.isfinite(d))
-        group = lab[ok] * S + np.array([scale_pos[float(s)] for s in scale[ok]], np.int64)
+        group = (lab[ok] * sums.T + tilt[ok]) * S + np.array([scale_pos[float(s)] for s in scale[ok]], np.int64)
         # all members usually match; indexing would copy the chunk's spectra
         sums.add(o if ok.size == n else o[:, torch.from_numpy(ok)], yaw[ok], group)
         if msums is not None:
@@ -414,18 +488,23 @@ def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: n
 
 def _lloyd(source: Source, P: np.ndarray, V: np.ndarray, *, scales, max_iter: int, tol: float,
            chunk_size: int, moments: bool = False, cache: _SpectraCache | None = None, progress=None,
-           what: str = "passes") -> _Result:
+           what: str = "passes", grid: TiltGrid | None = None, aspect: np.ndarray | None = None) -> _Result:
     """Lloyd iterations from (P, V).  The first and the final pass search every scale; the passes in
     between only each object's previous best scale +-1 (scales move slowly once prototypes settle, and
     the search then costs 3 / S of the full one).  ``progress`` (:mod:`protomine.progress`) gets one bar
-    over at most max_iter + 1 passes of the objects, cut to the passes run when the iterations converge."""
+    over at most max_iter + 1 passes of the objects, cut to the passes run when the iterations converge.
+    With a tilt ``grid``, ``aspect`` (K,) are the starting prototypes' aspects, updated after every pass
+    from their upright members (``source.aspect``)."""
     with bar(progress, what, total=(max_iter + 1) * len(source), unit="objects") as b:
-        return _lloyd_passes(source, P, V, scales, max_iter, tol, chunk_size, moments, cache, b)
+        return _lloyd_passes(source, P, V, scales, max_iter, tol, chunk_size, moments, cache, b, grid, aspect)
 
 
 def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter: int, tol: float, chunk_size: int,
-                  moments: bool, cache: _SpectraCache | None, b: Bar) -> _Result:
+                  moments: bool, cache: _SpectraCache | None, b: Bar, grid: TiltGrid | None = None,
+                  aspect: np.ndarray | None = None) -> _Result:
     K = P.shape[0]
+    ts = None if grid is None else TiltState(grid, aspect)
+    obj_aspect = None if grid is None else _source_aspect(source)
     prev_labels, prev_cost = None, np.inf
     n_iter = 0
     sidx = None
@@ -433,7 +512,7 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
     for n_iter in range(1, max_iter + 1):
         labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
                                                                            cache=cache, scale_index=sidx,
-                                                                           advance=b.advance)
+                                                                           advance=b.advance, tilts=ts)
         # index of each object's best scale (the window runs over the scales in the given order)
         sidx = np.argmax(scale[:, None] == scale_arr[None, :], axis=1) if len(scales) > 3 else None
         cost = float(dist[np.isfinite(dist)].sum())
@@ -442,14 +521,25 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
         if stable and count.min() > 0:
             break  # prototypes already reflect these assignments
         P, V = _update(num, den, count, worst, P, V)
+        if ts is not None:
+            ts.aspect = _update_aspect(ts, labels, obj_aspect)
         if small and count.min() > 0:
             break
         prev_labels, prev_cost = labels, cost
     b.set_total(b.done + len(source))
     labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments,
-                                                 cache=cache, advance=b.advance)
+                                                 cache=cache, advance=b.advance, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(P, V, labels, yaw, scale, dist, cost, n_iter, rest[-1] if moments else None)
+    return _Result(P, V, labels, yaw, scale, dist, cost, n_iter, rest[-1] if moments else None,
+                   None if ts is None else ts.tilt, None if ts is None else ts.aspect)
+
+
+def _source_aspect(source: Source) -> np.ndarray:
+    """The source's per-object aspects (N,) (needed by the tilt search)."""
+    a = getattr(source, "aspect", None)
+    if a is None:
+        raise ValueError("a tilt search needs the objects' aspects: give the source an ``aspect`` (N,) array")
+    return np.asarray(a, np.float64)
 
 
 class PoseKMeans:
@@ -472,12 +562,21 @@ class PoseKMeans:
     cache_mb : memory budget for object spectra kept between passes (about 0.1 MB per object on an
         8 x 36 x 12 grid with 5 channels); objects beyond it are re-read and re-transformed every pass.
     progress : optional progress reporter (:mod:`protomine.progress`): one bar per run of Lloyd passes.
+    tilts : a :class:`protomine.mine.tilts.TiltGrid` of up directions to search besides yaw and scale (3-D
+        poses; the source must then carry ``aspect`` (N,)), or None for the yaw-only search.  With tilts,
+        ``init`` may hold a third array, the prototypes' aspects (K,).
+
+    Fitted with tilts besides the above: ``tilt_`` (N,) indices into ``tilts.dirs`` (in the search frame),
+    ``rotation_`` (N, 3, 3) object frame <- canonical prototype frame, ``up_`` (N, 3) each member's up
+    direction in the canonical frame, ``aspect_`` (K,).  Without tilts ``rotation_`` is the yaw rotation
+    and ``up_`` is +z.
     """
 
     def __init__(self, *, n_clusters: int, scales: Sequence[float] = (1.0,), n_init: int = 4, max_iter: int = 30,
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
-                 init: tuple[np.ndarray, np.ndarray] | None = None, cache_mb: float = 384.0, progress=None):
+                 init: tuple | None = None, cache_mb: float = 384.0, progress=None,
+                 tilts: TiltGrid | None = None):
         self.n_clusters = n_clusters
         self.scales = scales
         self.n_init = n_init
@@ -490,6 +589,7 @@ class PoseKMeans:
         self.symmetry_tol = symmetry_tol
         self.init = init
         self.cache_mb = cache_mb
+        self.tilts = tilts
         self.progress = progress
 
     # --- validation ------------------------------------------------------------------------
@@ -506,7 +606,12 @@ class PoseKMeans:
         n = len(source)
         if n < self.n_clusters:
             raise ValueError(f"n_objects={n} must be >= n_clusters={self.n_clusters}")
+        if self._grid() is not None:
+            _source_aspect(source)
         return _check_scales(self.scales)
+
+    def _grid(self) -> TiltGrid | None:
+        return None if self.tilts is None or self.tilts.is_identity else self.tilts
 
     # --- fitting ---------------------------------------------------------------------------
 
@@ -521,8 +626,12 @@ class PoseKMeans:
             V0 = np.asarray(self.init[1], np.float32).copy()
             if P0.shape[0] != K or V0.shape[0] != K:
                 raise ValueError(f"init must hold n_clusters={K} prototypes, got {P0.shape[0]}")
+            grid = self._grid()
+            given = self.init[2] if len(self.init) > 2 else None
+            a0 = None if grid is None else (np.asarray(given, np.float64) if given is not None
+                                            else np.full(K, float(np.median(_source_aspect(source)))))
             best = _lloyd(source, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(),
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid, aspect=a0,
                           progress=self.progress, what=f"K={K} passes")
         else:
             best = self._fit_restarts(source, scales, rng)
@@ -534,25 +643,27 @@ class PoseKMeans:
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size), replace=False))
         Xs, Ws = _gather(source, idx, self.chunk_size)
         desc = reduced_descriptors(Xs, Ws, random_state=int(rng.integers(2**31 - 1)))
-        sub = ArraySource(Xs, Ws)
+        grid = self._grid()
+        sub = ArraySource(Xs, Ws, None if grid is None else _source_aspect(source)[idx])
         fit_on = source if N <= self.sample_size else sub
         # the subsample's spectra serve every restart (and the seeding passes); when the subsample is
         # the whole source, the same spectra serve the whole fit
         cache = self._new_cache()
         best = None
         for r in range(self.n_init):
-            P0, V0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)),
-                                       cache)
+            P0, V0, *a0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)),
+                                            cache, grid)
             res = _lloyd(fit_on, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                         chunk_size=self.chunk_size, moments=fit_on is source, cache=cache,
+                         chunk_size=self.chunk_size, moments=fit_on is source, cache=cache, grid=grid,
+                         aspect=a0[0] if a0 else None,
                          progress=self.progress, what=f"K={K} restart {r + 1}/{self.n_init} passes")
             if best is None or res.cost < best.cost:
                 best = res
         if fit_on is not source:
             del cache, sub, Xs, Ws  # free the subsample's memory before the full fit
             best = _lloyd(source, best.P, best.V, scales=scales, max_iter=self.max_iter, tol=self.tol,
-                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(),
-                          progress=self.progress, what=f"K={K} all objects passes")
+                          chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid,
+                          aspect=best.aspect, progress=self.progress, what=f"K={K} all objects passes")
         return best
 
     def _new_cache(self) -> _SpectraCache:
@@ -568,7 +679,23 @@ class PoseKMeans:
         self.symmetry_ = symm
         self.canonical_shift_deg_ = (t * 360.0 / A).astype(np.float32)
         self.labels_ = res.labels
-        self.yaw_deg_ = sym.wrap_yaw(res.yaw + self.canonical_shift_deg_[res.labels], symm[res.labels])
+        grid = self._grid()
+        tilt = np.zeros(len(res.labels), np.int64) if res.tilt is None else res.tilt
+        self.tilt_ = tilt
+        self.aspect_ = res.aspect
+        self.rotation_, self.up_ = canonical_rotations(TiltGrid.identity() if grid is None else grid, tilt, res.yaw,
+                                                       self.canonical_shift_deg_[res.labels])
+        ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
+        if grid is None:
+            fsym = [np.full(len(u), symm[k], np.int64) for k, u in enumerate(ups)]
+        else:
+            noise = sym.mean_variance(*res.moments).mean(axis=(1, 2, 3, 4))
+            bank = TiltBank(self.prototypes_, self.prototype_weights_, res.aspect, scales, grid)
+            fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol)
+        self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
+        period = np.array([sym.period_deg(fsym[k][f]) for k, f in zip(res.labels, self.face_)], np.float64)
+        self.rotation_, yaw = faces.reduce_rotation(self.rotation_, period)
+        self.yaw_deg_ = yaw.astype(np.float32)
         self.scale_ = res.scale
         self.distance_ = res.dist
         self.inertia_ = res.cost
@@ -588,7 +715,7 @@ class PoseKMeans:
         yaw_deg is in each prototype's canonical frame, modulo its symmetry period.
         """
         self._check_fitted()
-        bank = PoseBank(self.prototypes_, self.prototype_weights_, self.scales_)
+        bank = make_bank(self.prototypes_, self.prototype_weights_, self.scales_, self._grid(), self.aspect_)
         parts = []
         for i0, i1 in _chunks(len(source), self.chunk_size):
             x, w = source.read(i0, i1)
@@ -597,11 +724,25 @@ class PoseKMeans:
         yaw = sym.wrap_yaw(np.concatenate([p.yaw_deg for p in parts]), self.symmetry_)
         scale = np.concatenate([p.scale for p in parts])
         allD = np.concatenate([p.all_D for p in parts]) if return_all else None
-        return PoseMatch(D, yaw, scale, allD)
+        return PoseMatch(D, yaw, scale, allD, tilt=np.concatenate([p.tilt for p in parts]))
 
     def predict(self, source: Source) -> np.ndarray:
         """Index of the nearest prototype under the best pose, (N,)."""
         return np.argmin(self.match(source).D, axis=1)
+
+
+def canonical_rotations(grid: TiltGrid, tilt: np.ndarray, yaw_deg: np.ndarray, shift_deg: np.ndarray
+                        ) -> tuple[np.ndarray, np.ndarray]:
+    """Members' rotations (N, 3, 3) object frame <- canonical prototype frame, and their up directions (N, 3)
+    in the canonical frame.
+
+    A member matched at tilt u and yaw psi in the search frame is Rz(psi) tilt_matrix(u) applied to the
+    prototype; the canonical frame is the search frame turned by -shift about z (the prototype was rolled
+    by -shift bins' worth of degrees), so the member's rotation from the canonical frame is
+    Rz(psi) tilt_matrix(u) Rz(shift), and its up direction there is that rotation's transpose applied to +z.
+    """
+    Rm = rot.tilt_yaw_to_matrix(grid.dirs[np.asarray(tilt)], yaw_deg) @ rot.yaw_matrix(shift_deg)
+    return Rm, Rm[..., 2, :]
 
 
 def member_stats(labels: np.ndarray, dist: np.ndarray, n_clusters: int) -> dict[str, np.ndarray]:

@@ -4,6 +4,10 @@
 - yaw error: per cluster, the circular offset between truth and predicted yaw is removed (the
   prototype's canonical frame is arbitrary), then errors are taken modulo the truth class's symmetry
   period; classes with continuous symmetry have no yaw and are left out;
+- rotation error (truth tables with qx, qy, qz, qw: the rotation world <- the class's own frame): per
+  cluster one offset O (prototype frame <- class frame) is removed, the geodesic medoid of the members'
+  R_pred^T R_true, then each member's error is the geodesic angle between R_pred O and R_true, the least
+  over the class's symmetry rotations about its own z (``rotation_errors_deg``);
 - detected vs true symmetry per cluster (majority class);
 - the pose-unaware baseline: scikit-learn KMeans on the flattened matching features, same K.
 """
@@ -16,6 +20,7 @@ import numpy as np
 
 from ..audit.metrics import clustering_scores, symmetry_to_period_deg, yaw_error_deg, yaw_offset_deg
 from ..errors import InputError
+from .. import rotations as rot
 from .library import Library
 
 
@@ -40,7 +45,11 @@ def read_truth_table(path: str | Path) -> dict[str, dict]:
                 raise InputError(path, f"row {line}", "expected numbers in yaw_deg, x, y, z") from None
             oid = row["object"]
             label = row.get("class") or row.get("label")
-            out[oid] = {"label": label, "class": label, "yaw_deg": yaw, "point": point,
+            try:
+                q = np.array([float(row[c]) for c in ("qx", "qy", "qz", "qw")]) if row.get("qw") not in (None, "") else None
+            except ValueError:
+                raise InputError(path, f"row {line}", "expected numbers in qx, qy, qz, qw") from None
+            out[oid] = {"label": label, "class": label, "yaw_deg": yaw, "point": point, "rotation": q,
                         "symmetry": row.get("symmetry") or "none", "capture": row.get("capture") or oid.split("/")[0],
                         "split": row.get("split", "")}
     return out
@@ -92,6 +101,56 @@ def cluster_yaw_offsets(lib: Library, truth: dict[str, dict], *, prototype_perio
     return out
 
 
+def symmetry_rotations(symmetry: str) -> np.ndarray:
+    """(G, 3, 3) rotations about z that leave a class with this truth symmetry unchanged (continuous: every
+    10 degrees, finer than any error that matters here)."""
+    per = class_period(symmetry)
+    n = 36 if per == 0 else int(round(360.0 / per))
+    return rot.yaw_matrix(np.arange(n) * 360.0 / n)
+
+
+def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """One offset O (3, 3) with R_true ~ R_pred O: the geodesic medoid of R_pred^T R_true over members
+    R_pred, R_true (n, 3, 3), distances taken modulo the class's symmetries group (G, 3, 3)."""
+    O = np.einsum("nji,njk->nik", R_pred, R_true)  # each defined up to O g
+    d = np.min(rot.geodesic_deg(O[:, None, None], O[None, :, None] @ group[None, None]), axis=2)  # (n, n)
+    return O[int(np.argmin(d.sum(axis=1)))]
+
+
+def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetries group."""
+    return np.min(rot.geodesic_deg((R_pred @ O)[:, None], R_true[:, None] @ group[None]), axis=1)
+
+
+def cluster_rotation_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """Per cluster (offset O, symmetry group, member rows used) from its mined members of the majority class
+    that have a truth rotation (at least 2)."""
+    m = lib.members
+    out = {}
+    for k, label in majority_map(lib, truth).items():
+        sel = [i for i, (o, c) in enumerate(zip(m["object"], m["cluster"]))
+               if c == k and o in truth and truth[o]["label"] == label and truth[o].get("rotation") is not None]
+        if len(sel) < 2:
+            continue
+        Rp = rot.quat_to_matrix(np.asarray(m["rotation"])[sel])
+        Rt = rot.quat_to_matrix(np.array([truth[m["object"][i]]["rotation"] for i in sel]))
+        group = symmetry_rotations(truth[m["object"][sel[0]]]["symmetry"])
+        out[k] = (rotation_offset(Rp, Rt, group), group, np.array(sel))
+    return out
+
+
+def mined_rotation_errors(lib: Library, truth: dict[str, dict]) -> np.ndarray:
+    """Rotation errors (degrees) of the mined members of each cluster's majority class that have a truth
+    rotation (see the module docstring); empty when the truth has none."""
+    m = lib.members
+    errs = []
+    for k, (O, group, sel) in cluster_rotation_offsets(lib, truth).items():
+        Rp = rot.quat_to_matrix(np.asarray(m["rotation"])[sel])
+        Rt = rot.quat_to_matrix(np.array([truth[m["object"][i]]["rotation"] for i in sel]))
+        errs += list(rotation_error_deg(Rp, Rt, O, group))
+    return np.asarray(errs)
+
+
 def evaluate_mining(lib: Library, truth: dict[str, dict]) -> dict:
     m = lib.members
     have = np.array([o in truth for o in m["object"]])
@@ -118,11 +177,14 @@ def evaluate_mining(lib: Library, truth: dict[str, dict]) -> dict:
                 row["yaw_error_median"] = float(np.median(e))
         per_cluster.append(row)
     sym_ok = [r["detected_symmetry"] == r.get("true_symmetry") for r in per_cluster if "true_symmetry" in r]
+    rerr = mined_rotation_errors(lib, truth)
     return {"n_objects": int(len(objs)), "K": lib.n_clusters, "n_classes": int(len(set(lab))),
             "purity": scores["purity"], "nmi": scores["nmi"], "ari": scores["ari"],
             "yaw_error_median_deg": float(np.median(errs)) if errs else float("nan"),
             "yaw_error_p90_deg": float(np.percentile(errs, 90)) if errs else float("nan"),
-            "symmetry_correct": int(sum(sym_ok)), "symmetry_total": len(sym_ok), "clusters": per_cluster}
+            "symmetry_correct": int(sum(sym_ok)), "symmetry_total": len(sym_ok), "clusters": per_cluster,
+            "rotation_error_median_deg": float(np.median(rerr)) if len(rerr) else float("nan"),
+            "rotation_error_p90_deg": float(np.percentile(rerr, 90)) if len(rerr) else float("nan")}
 
 
 def kmeans_baseline(store, cfg: dict, truth: dict[str, dict], n_clusters: int, seed: int = 0) -> dict:

@@ -4,7 +4,9 @@ A cylindrical volume (6, R, A, H) (store channels) is resampled onto a Cartesian
 unit cylinder's bounding box (trilinear in rho and z, linear with wrap-around in azimuth).  A view
 looks along one axis; each pixel shows the first cell whose surface evidence exceeds ``level``, shaded
 by the view depth (near = bright) and by a Lambertian term from the depth gradient, in the cell's mean
-colour.  Views: top (looking down -z), front (looking along +y), side (looking along -x).
+colour.  Views: top (looking down -z), front (looking along +y), side (looking along -x); prototypes with
+members resting on other faces get a fourth picture, the front view of the prototype resting on its most
+common other face (``tilts.volume_on_face``).
 """
 from __future__ import annotations
 
@@ -71,8 +73,11 @@ def symmetry_text(order: int) -> str:
 
 
 def render_gallery(path: str | Path, volumes: np.ndarray, *, counts: np.ndarray, symmetry: np.ndarray,
-                   names: list[str] | None = None, title: str = "prototype gallery") -> Path:
-    """Write a PNG with one row-block per prototype: top, front and side views, label and count."""
+                   names: list[str] | None = None, title: str = "prototype gallery",
+                   faces: list[tuple[np.ndarray, int, int] | None] | None = None) -> Path:
+    """Write a PNG with one row-block per prototype: top, front and side views, label and count; with
+    ``faces``, per prototype None or (volume (6, R, A, H) resting on another face, face index, members on it),
+    shown as a fourth picture."""
     import matplotlib
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
@@ -81,20 +86,27 @@ def render_gallery(path: str | Path, volumes: np.ndarray, *, counts: np.ndarray,
     cols = min(4, max(1, K))
     rows = int(np.ceil(K / cols))
     view_in, gap_in, text_in, title_in = 1.2, 0.25, 0.45, 0.45
-    block_w = 3 * view_in + gap_in
+    faces = faces if faces is not None and any(f is not None for f in faces) else None
+    n_views = 4 if faces else 3
+    block_w = n_views * view_in + gap_in
     W, H = cols * block_w + gap_in, rows * (view_in + text_in) + title_in
     fig = plt.figure(figsize=(W, H))
     for k in range(K):
         r, c = divmod(k, cols)
         x0 = gap_in + c * block_w
         y0 = H - title_in - (r + 1) * (view_in + text_in) + text_in
-        for v, img in enumerate(prototype_views(volumes[k])):
+        views = prototype_views(volumes[k])
+        titles = ["top", "front", "side"]
+        if faces and faces[k] is not None:
+            views.append(prototype_views(faces[k][0])[1])
+            titles.append(f"on face {faces[k][1]} ({faces[k][2]})")
+        for v, img in enumerate(views):
             ax = fig.add_axes([(x0 + v * view_in) / W, y0 / H, (view_in * 0.95) / W, (view_in * 0.95) / H])
             ax.imshow(img, interpolation="nearest")
             ax.set_xticks([]); ax.set_yticks([])
             for sp in ax.spines.values():
                 sp.set_color("#cccccc")
-            ax.set_title(["top", "front", "side"][v], fontsize=6, pad=1)
+            ax.set_title(titles[v], fontsize=6, pad=1)
         label = names[k] if names and names[k] else f"cluster {k}"
         fig.text(x0 / W, (y0 - 0.08) / H, f"{label}: {int(counts[k])} members\n{symmetry_text(int(symmetry[k]))}",
                  fontsize=7, va="top")

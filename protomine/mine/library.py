@@ -1,18 +1,27 @@
 """The HDF5 prototype library: prototypes, their poses and statistics, members, names.
 
-Layout (format ``protomine.library/1``; readers check the version)::
+Layout (format ``protomine.library/2``; readers check the version; a ``protomine.library/1`` file,
+written before 3-D poses, is refused with a one-line error that says to re-mine)::
 
-    attrs        format, conventions, grid, features, scales, store_path, store_fingerprint,
-                 config, seed, provenance (code version, inputs)
+    attrs        format, conventions, grid, features, scales, tilts (JSON: the up-direction grid searched,
+                 ``mine.tilts.TiltGrid.to_config``), store_path, store_fingerprint, config, seed,
+                 provenance (code version, inputs), unknown_alpha, unknown_cut,
+                 unknown_calibration_views (the open-set cut, ``mine.openset``)
     prototypes/  features (K, C, R, A, H), weights (K, R, A, H) matching features and observation weights
                  in the canonical frame; volumes (K, 6, R, A, H) mean aligned store volumes (pictures);
                  symmetry (K,) 0 = continuous, 1 = none, n = n-fold; period_deg (K,) 360/n (0 = any yaw);
                  count (K,); size_median, size_p10, size_p90 (K, 2) metric footprint radius and height;
                  fused_mu, fused_sigma, single_mu, single_sigma (K,) robust location and scale of the members' log distances
                  (whole fused objects / single views) for the calibrated score; origin (K,) "mined" or
-                 "one-shot"; name, name_example (K,) str ("" when unnamed)
+                 "one-shot"; name, name_example (K,) str ("" when unnamed);
+                 aspect (K,) grid aspect z_max / rho_max of the canonical face (``mine.tilts.grid_aspect``);
+                 resting faces, padded to F faces: face_up (K, F, 3) up direction in the prototype frame
+                 (face 0 = +z, the canonical face), face_count (K, F) members resting on it,
+                 face_symmetry (K, F) symmetry code about that up (-1 = padding)
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
-                 second_cluster, second_distance
+                 second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
+                 [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
+                 face's symmetry
 
 Score (see :func:`match_score`): for a distance d to prototype k,
     score = 1 - T_4((ln d - mu_k) / sigma_k)
@@ -22,7 +31,8 @@ tail of 4 degrees of freedom (T_4 its CDF): single views are partial and sometim
 image border, so their log distances have heavier tails than a normal law (on the demo, the 95th
 percentile of known objects' z is 2.4-3.3 where a normal law gives 1.64); t with 4 degrees of freedom
 is the usual robust choice for such residuals (Lange, Little & Taylor 1989).  It is comparable across clusters, needs no labels, and
-an object is "unknown" when its score falls below ``label.unknown_score``.
+a single view is "unknown" when its score falls below the library's ``unknown_cut`` attribute, the
+split-conformal cut at ``unknown_alpha`` chosen at mining time (see ``mine.openset``).
 """
 from __future__ import annotations
 
@@ -37,12 +47,15 @@ from scipy.stats import t as student_t
 from ..atomic import atomic_path, exclusive_lock, pause_point
 from ..errors import InputError
 
-FORMAT = "protomine.library/1"
+FORMAT = "protomine.library/2"
+OLD_FORMATS = ("protomine.library/1",)
 STR = h5py.string_dtype()
 PROTO_ARRAYS = ("features", "weights", "volumes", "symmetry", "period_deg", "count", "size_median", "size_p10",
-                "size_p90", "fused_mu", "fused_sigma", "single_mu", "single_sigma")
+                "size_p90", "fused_mu", "fused_sigma", "single_mu", "single_sigma", "aspect", "face_up", "face_count",
+                "face_symmetry")
 PROTO_STR = ("origin", "name", "name_example")
-MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance")
+MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance",
+                 "face", "rotation")
 
 
 SCORE_DOF = 4.0
@@ -94,6 +107,16 @@ class Library:
         return list(json.loads(self.attrs["scales"]))
 
     @property
+    def tilt_config(self) -> dict:
+        """The up-direction grid the library was mined with (``mine.tilts.TiltGrid.to_config``)."""
+        return json.loads(self.attrs.get("tilts", '{"nsides": [0]}'))
+
+    def face_period_deg(self, cluster: np.ndarray, face: np.ndarray) -> np.ndarray:
+        """Yaw period (degrees, 0 = continuous) of the given (cluster, face) pairs."""
+        code = np.asarray(self.prototypes["face_symmetry"])[np.asarray(cluster), np.asarray(face)]
+        return np.where(code == 0, 0.0, 360.0 / np.maximum(code, 1))
+
+    @property
     def store_path(self) -> str:
         return str(self.attrs.get("store_path", ""))
 
@@ -116,6 +139,9 @@ def read_library(path: str | Path) -> Library:
     try:
         with h5py.File(path, "r") as f:
             fmt = f.attrs.get("format")
+            if fmt in OLD_FORMATS:
+                raise InputError(path, "format", f"library written before 3-D poses ({fmt}); re-mine the store with "
+                                 "`protomine mine` to get rotations and resting faces")
             if fmt != FORMAT:
                 raise InputError(path, "format", f"expected a prototype library {FORMAT!r}, got {fmt!r}")
             attrs = {k: (v.decode() if isinstance(v, bytes) else v) for k, v in f.attrs.items()}

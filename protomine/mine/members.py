@@ -56,21 +56,27 @@ def render_member_sheet(title: str, colour: tuple[int, int, int], tiles: list[tu
         d.rectangle([x, y, x + TILE - 1, y + TILE - 1], outline=colour)
         for j, line in enumerate((line1, line2)):
             while line and text_size(line, TEXT)[0] > TILE:
-                line = "…" + line[2:]
+                line = ".." + line[3:]
             halo_text(d, (x, y + TILE + 2 + j * (TEXT + 3)), line, (235, 235, 235), TEXT)
     return im
 
 
-def write_member_sheets(folder: str | Path, lib: Library, store: ObjectStore, *, progress=None) -> list[Path]:
-    """One ``cluster-<k>.png`` per cluster into ``folder`` (atomic), listed in the folder's manifest."""
+def write_member_sheets(folder: str | Path, lib: Library, store: ObjectStore, *, clusters: list[int] | None = None,
+                        progress=None) -> list[Path]:
+    """One ``cluster-<k>.png`` per cluster into ``folder`` (atomic), listed in the folder's manifest.
+
+    clusters: only these sheets (a renamed cluster); None = all, and sheets of clusters that no longer
+    exist are removed.
+    """
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     m = lib.members
     width = len(str(max(lib.n_clusters - 1, 0)))
-    stale = {p for p in folder.glob("cluster-*.png")}
+    stale = {p for p in folder.glob("cluster-*.png")} if clusters is None else set()
+    todo = range(lib.n_clusters) if clusters is None else [int(k) for k in clusters]
     paths = []
-    with bar(progress, "member sheets", total=lib.n_clusters, unit="clusters") as b:
-        for k in range(lib.n_clusters):
+    with bar(progress, "member sheets", total=len(todo), unit="clusters") as b:
+        for k in todo:
             rows = np.flatnonzero(np.asarray(m["cluster"]) == k)
             pick = rows[sheet_order(np.asarray(m["distance"])[rows])]
             tiles = []
@@ -78,7 +84,7 @@ def write_member_sheets(folder: str | Path, lib: Library, store: ObjectStore, *,
                 oid = str(m["object"][r])
                 crops = store.crops(oid)
                 tiles.append((crops[0] if crops else None, oid, f"score {float(m['score'][r]):.2f}"))
-            title = (f"cluster {k}" + (f" \u2014 {lib.names[k]}" if k in lib.names else "")
+            title = (f"cluster {k}" + (f" \"{lib.names[k]}\"" if k in lib.names else "")
                      + f": {len(rows)} members" + (f", {len(pick)} shown, nearest first" if len(pick) < len(rows)
                                                    else ", nearest first"))
             path = folder / f"cluster-{k:0{width}d}.png"

@@ -27,12 +27,16 @@ from ..atomic import pause_point, write_text
 from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
+from ..geometry import plane_basis
 from ..ingest.volume import matching_features
-from ..progress import say
+from ..rotations import matrix_to_quat
+from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
+from .openset import conformal_cut
 from .posesearch import pose_distances
+from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -47,19 +51,43 @@ def reduce_yaw(yaw: np.ndarray, period: np.ndarray) -> np.ndarray:
     return np.where(p > 0, np.mod(yaw, np.where(p > 0, p, 1.0)), 0.0)
 
 
+def tilt_grid(cfg: dict, path=None) -> TiltGrid | None:
+    """The up-direction grid of ``[mine] tilt_nsides`` (None for [0], the yaw-only search)."""
+    m, v = cfg["mine"], cfg["volume"]
+    nsides = tuple(int(n) for n in m["tilt_nsides"])
+    if nsides == (0,):
+        return None
+    if 0 in nsides or list(nsides) != sorted(set(nsides)):
+        raise InputError(path, "mine.tilt_nsides", f"expected [0] or increasing HEALPix N_side values, got {list(nsides)}")
+    return TiltGrid(nsides=nsides, radial_margin=float(v["radial_margin"]), height_margin=float(v["height_margin"]),
+                    refine_top=int(m["tilt_refine_top"]))
+
+
+def store_aspect(store: ObjectStore, cfg: dict) -> np.ndarray:
+    """(N,) grid aspects z_max / rho_max of the store's objects (``tilts.grid_aspect``), with the margins the
+    store was lifted with (its recorded config; ``cfg`` when it records none)."""
+    v = store.config.get("volume") or cfg["volume"]
+    return grid_aspect(store.objects["radius_m"], store.objects["height_m"], v["radial_margin"], v["height_margin"])
+
+
 def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
                progress: Callable[[str], None] | None = None, executor=None):
-    """Fit the clustering; ``executor`` (``protomine.scale.executor``) runs its passes as a map-reduce."""
+    """Fit the clustering; ``executor`` (``protomine.scale.executor``) runs its passes as a map-reduce
+    (yaw-only: the tilt search runs in this process)."""
     from .engine import PoseKMeans
     m = cfg["mine"]
+    grid = tilt_grid(cfg) if executor is None and not cfg.get("scale", {}).get("batch_size", 0) else None
     src = store.source(cfg) if executor is None else _executor_source(store, cfg, executor)
+    src.aspect = store_aspect(store, cfg)
     k = n_clusters or m["clusters"] or None
     if k is not None and k > len(store):
         raise InputError(store.path, "objects", f"--clusters={k} must be <= the number of objects in the store ({len(store)})")
+    if progress and grid is None and tilt_grid(cfg) is not None:
+        progress("the tilt search runs in this process only: this run searches yaw about up and scale")
     common = dict(scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
-                  chunk_size=m["chunk_size"], random_state=seed, progress=progress)
+                  chunk_size=m["chunk_size"], random_state=seed, progress=progress, tilts=grid)
     if cfg.get("scale", {}).get("batch_size", 0):
-        from .minibatch import fit_minibatch
+        from .minibatch import fit_minibatch  # yaw-only (grid is None in this mode)
         return fit_minibatch(src, cfg, seed, k, max_k=min(m["max_clusters"], len(store) - 1), progress=progress)
     if k is None:
         from .choosek import fit_auto
@@ -85,7 +113,9 @@ def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64) -> tuple[np.ndarray, np.ndarray]:
+                          scales: tuple[float, ...], *, max_objects_per_cluster: int = 64,
+                          progress: Callable[[str], None] | None = None,
+                          up: np.ndarray | None = None, bank: TiltBank | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
     (inf for views left out of the calibration), (Q,) clusters.
 
@@ -96,8 +126,10 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     a prototype fits views of objects it was built from, which for small clusters (a prototype of 5
     members is one fifth each of them) is far tighter than for new objects, and the single-view score
     would call most new instances unknown.  Prototypes with one member keep the plain distance.
+    With tilts, an object resting on another face (``up`` (N, 3), its up direction in the prototype frame)
+    is compared with the prototype's copy resting on that face (``bank.copy_at``), the same formula applied
+    in the copy's frame.
     """
-    from .engine import align_to_prototype
     if len(store.single_object) == 0:
         return np.zeros(0), np.zeros(0, int)
     m = cfg["mine"]
@@ -111,26 +143,39 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     have = np.unique(store.single_object)
     objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
     objs.sort()
-    for i0 in range(0, len(objs), 256):
-        chunk = objs[i0:i0 + 256]
-        xo, wo = feats(store.read_volume_at(chunk))
-        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
-        xs, ws = feats(store.read_single_views(rows_all))
-        for j, obj in enumerate(chunk):
-            k = int(labels[obj])
-            Pk, Vk = P[k:k + 1].astype(np.float64), V[k:k + 1].astype(np.float64)
-            if n[k] > 1:
-                pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P[k:k + 1], V[k:k + 1], scales=scales)
-                xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
-                den = n[k] * Vk - wa
-                ok = den > 1e-6
-                # (1, C, R, A, H): the weighted sum without the object, over the weight left
-                Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
-                Vk = np.where(ok, den, 0.0) / (n[k] - 1)
-            sel = np.flatnonzero(store.single_object[rows_all] == obj)
-            pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
-            out[rows_all[sel]] = pm.D[:, 0]
+    with bar(progress, "score calibration", total=len(objs), unit="objects") as b:
+        for i0 in range(0, len(objs), 256):
+            _single_view_chunk(store, objs[i0:i0 + 256], feats, P, V, labels, n, scales, out, b.advance, up, bank)
     return out, k_of
+
+
+def _single_view_chunk(store: ObjectStore, chunk: np.ndarray, feats, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                       n: np.ndarray, scales: tuple[float, ...], out: np.ndarray, advance, up: np.ndarray | None = None,
+                       bank: TiltBank | None = None) -> None:
+    """Leave-one-out distances of the single views of the objects ``chunk`` into ``out`` (see the caller)."""
+    from .engine import align_to_prototype
+    xo, wo = feats(store.read_volume_at(chunk))
+    rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+    xs, ws = feats(store.read_single_views(rows_all))
+    for j, obj in enumerate(chunk):
+        k = int(labels[obj])
+        P1, V1 = P[k:k + 1], V[k:k + 1]
+        if up is not None and bank is not None and up[obj, 2] < np.cos(np.deg2rad(IDENTITY_DEG)):
+            Pc, Vc = bank.copy_at(k, up[obj])
+            P1, V1 = Pc[None], Vc[None]
+        Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
+        if n[k] > 1:
+            pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
+            xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+            den = n[k] * Vk - wa
+            ok = den > 1e-6
+            # (1, C, R, A, H): the weighted sum without the object, over the weight left
+            Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+            Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+        sel = np.flatnonzero(store.single_object[rows_all] == obj)
+        pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
+        out[rows_all[sel]] = pm.D[:, 0]
+        advance(1)
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -161,12 +206,18 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
     period = period_of(model.symmetry_)
-    yaw = reduce_yaw(np.asarray(model.yaw_deg_, dtype=np.float64), period[labels])
+    yaw = np.asarray(model.yaw_deg_, dtype=np.float64)  # modulo each member's face symmetry
+    face = np.asarray(model.face_, np.int64)
+    grid = getattr(model, "tilts", None)
+    grid = None if grid is None or grid.is_identity else grid
     if progress:
         progress(f"{K} prototypes after {model.n_iter_} iterations; aligning members and calibrating scores")
     scales = tuple(cfg["mine"]["scales"])
     if executor is None:
-        vols = aligned_mean_volumes(store, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
+        # pictures from the members on the canonical face (the others would need untilting)
+        canon = np.where(face == 0, labels, -1)
+        canon = np.where(np.bincount(labels[face == 0], minlength=K)[labels] > 0, canon, labels)
+        vols = aligned_mean_volumes(store, canon, yaw, K)
     else:
         from .distributed import StoreSpec, aligned_mean_volumes as dist_mean_volumes, match_all
         vols = dist_mean_volumes(StoreSpec.of(store, cfg), executor, labels, np.asarray(model.yaw_deg_, dtype=np.float64), K)
@@ -184,7 +235,12 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     else:
         second, second_d = np.full(len(labels), -1), np.full(len(labels), np.inf)
     fused = [log_distance_fit(dist[labels == k]) for k in range(K)]
-    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales)
+    aspect = (np.asarray(model.aspect_, np.float64) if grid is not None else
+              np.array([np.median(store_aspect(store, cfg)[labels == k]) if counts_k else 1.0
+                        for k, counts_k in enumerate(np.bincount(labels, minlength=K))]))
+    bank = TiltBank(model.prototypes_, model.prototype_weights_, aspect, scales, grid) if grid is not None else None
+    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales,
+                                       progress=progress, up=np.asarray(model.up_), bank=bank)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
@@ -206,41 +262,84 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         "volumes": vols, "symmetry": np.asarray(model.symmetry_, np.int64), "period_deg": period,
         "count": counts, "size_median": pct(50), "size_p10": pct(10), "size_p90": pct(90),
         "fused_mu": fused_mu, "fused_sigma": fused_sigma, "single_mu": single_mu, "single_sigma": single_sigma,
-        "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K,
+        "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K, "aspect": aspect,
+        **pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"]),
     }
     members = {
         "object": np.array(store.ids, dtype=object), "cluster": labels.astype(np.int64), "yaw_deg": yaw,
         "scale": gsize / med_g[labels], "fit_scale": fit_scale, "distance": dist, "score": score,
         "second_cluster": np.asarray(second, np.int64), "second_distance": np.asarray(second_d, np.float64),
+        "face": face, "rotation": world_quaternions(np.asarray(model.rotation_), store.objects["up"]),
     }
     prov = provenance(cfg, seed, {"store": store.fingerprint()}, command="mine")
     attrs = dict(prov)
     attrs.update({"grid": np.array(store.grid_shape), "scales": json.dumps(list(scales)),
                   "store_path": str(Path(store_path).resolve()), "store_fingerprint": store.fingerprint(),
                   "conventions": store.attrs.get("conventions", ""),
+                  "tilts": json.dumps((grid or TiltGrid.identity()).to_config()),
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
+    # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
+    alpha = float(cfg["mine"]["unknown_alpha"])
+    attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
+                  "unknown_cut": conformal_cut(match_score(sv_d, single_mu[sv_k], single_sigma[sv_k]), alpha)})
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)
     out = Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
-    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"])
+    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"],
+                   faces=gallery_faces(vols, protos, grid))
     record_outputs([out / "gallery.png"], prov)
     write_member_sheets(out / "members", lib, store, progress=progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
                  "k_selection": k_table, "notices": notices}
 
 
+def gallery_faces(vols: np.ndarray, protos: dict, grid: TiltGrid | None) -> list | None:
+    """Per prototype the picture of its most common other resting face (``gallery.render_gallery``), or None."""
+    if grid is None:
+        return None
+    out = []
+    for k in range(len(vols)):
+        cnt = np.asarray(protos["face_count"][k]).copy()
+        cnt[0] = 0
+        f = int(np.argmax(cnt))
+        out.append((volume_on_face(vols[k], float(protos["aspect"][k]), protos["face_up"][k, f], grid), f, int(cnt[f]))
+                   if cnt[f] > 0 else None)
+    return out
+
+
+def pad_faces(ups: list[np.ndarray], counts: list[np.ndarray], symmetry: list[np.ndarray]) -> dict[str, np.ndarray]:
+    """Per-prototype face lists -> the library's padded arrays face_up (K, F, 3), face_count (K, F),
+    face_symmetry (K, F) (-1 = padding)."""
+    K, F = len(ups), max((len(u) for u in ups), default=1)
+    up = np.zeros((K, F, 3))
+    cnt = np.zeros((K, F), np.int64)
+    code = np.full((K, F), -1, np.int64)
+    for k in range(K):
+        f = len(ups[k])
+        up[k, :f], cnt[k, :f], code[k, :f] = ups[k], counts[k], symmetry[k]
+    return {"face_up": up, "face_count": cnt, "face_symmetry": code}
+
+
+def world_quaternions(R_obj: np.ndarray, up: np.ndarray) -> np.ndarray:
+    """Quaternions (N, 4) [qx, qy, qz, qw] of x_world = R x_prototype + t from rotations R_obj (N, 3, 3)
+    object frame <- prototype frame and each object's world up (N, 3) (its frame: ``geometry.plane_basis``)."""
+    B = np.stack([plane_basis(u) for u in np.asarray(up, np.float64)]) if len(up) else np.zeros((0, 3, 3))
+    return matrix_to_quat(np.swapaxes(B, 1, 2) @ R_obj)
+
+
 def write_assignments(path: str | Path, lib: Library) -> None:
-    """assignments.csv: object,cluster,yaw_deg,scale,distance,score (one row per object), listed in its
-    folder's provenance manifest (the library's record)."""
+    """assignments.csv: object,cluster,yaw_deg,scale,distance,score,qx,qy,qz,qw,face (one row per object;
+    the quaternion as in README "Outputs"), listed in its folder's provenance manifest (the library's record)."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["object", "cluster", "yaw_deg", "scale", "distance", "score"])
+    w.writerow(["object", "cluster", "yaw_deg", "scale", "distance", "score", "qx", "qy", "qz", "qw", "face"])
     m = lib.members
     for i in range(len(m["object"])):
         k = int(m["cluster"][i])
+        q = m["rotation"][i]
         w.writerow([m["object"][i], k, f"{m['yaw_deg'][i]:.2f}", f"{m['scale'][i]:.4f}",
-                    f"{m['distance'][i]:.6g}", f"{m['score'][i]:.4f}"])
+                    f"{m['distance'][i]:.6g}", f"{m['score'][i]:.4f}", *(f"{v:.6f}" for v in q), int(m["face"][i])])
     write_text(path, buf.getvalue())
     record_outputs([path], provenance_of(lib.attrs))

@@ -78,12 +78,15 @@ class PoseMatch:
     yaw_deg : (N, K) float32 in [0, 360): object ~= prototype rolled by yaw_deg.
     scale : (N, K) float32, the best scale factor (object ~= prototype scaled by it).
     all_D : (N, K, S, A) float32 distance for every scale and integer shift, only with return_all=True.
+    tilt : (N, K) int64 index of the best up direction (``mine.tilts.TiltGrid.dirs``; 0 = upright, the
+        only one of a yaw-only search), or None.
     """
 
     D: np.ndarray
     yaw_deg: np.ndarray
     scale: np.ndarray
     all_D: np.ndarray | None = None
+    tilt: np.ndarray | None = None
 
 
 # --- validation ----------------------------------------------------------------------------
@@ -357,6 +360,18 @@ class PoseBank:
         """Object spectra (2F, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""
         return _spectra_of(x, w, self.dft)
 
+    def subset(self, keep: np.ndarray) -> "PoseBank":
+        """The bank of prototypes ``keep`` (indices) only, sharing this bank's spectra (columns selected)."""
+        keep = np.asarray(keep, np.int64)
+        S = len(self.scales)
+        # column pairs [re, im] of prototype m at scale s sit at 2 (s K + m) + {0, 1}
+        base = (np.arange(S)[:, None] * self.K + keep[None, :]).reshape(-1)
+        cols = torch.from_numpy(np.stack([2 * base, 2 * base + 1], 1).reshape(-1))
+        out = object.__new__(PoseBank)
+        out.K, out.C, out.A, out.scales, out.dft = len(keep), self.C, self.A, self.scales, self.dft
+        out.factors = tuple(f.index_select(2, cols) for f in self.factors)
+        return out
+
     def all_distances(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3) -> np.ndarray:
         """x (n, C, R, A, H), w (n, R, A, H) -> (n, K, S, A) distances for every scale and shift."""
         d = _fft_all_distances(x, w, self.factors, self.dft, self.A, self.C * min_overlap)
@@ -386,7 +401,7 @@ class PoseBank:
                 d[torch.from_numpy(rows), lo:lo + span] = dd
         d = d.permute(0, 2, 1, 3)  # (n, K, S, A)
         D, yaw, sc = _best_pose_torch(d, self.scales)
-        return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None)
+        return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None, tilt=np.zeros(D.shape, np.int64))
 
     def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3,
               return_all: bool = False) -> PoseMatch:

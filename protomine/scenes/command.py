@@ -6,7 +6,7 @@ from typing import Annotated
 
 import typer
 
-from ..cliutil import QuietOpt, SeedOpt, VerboseOpt, reporter
+from ..cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
 from .scenario import generate_scenario
 
 
@@ -18,6 +18,7 @@ def scenes(
     frames: Annotated[int, typer.Option(min=1, max=360, metavar="N", help="Camera poses per mining capture.")] = 8,
     width: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image width (pixels).")] = 320,
     height: Annotated[int, typer.Option(min=16, max=4096, metavar="PX", help="Image height (pixels).")] = 240,
+    config: ConfigOpt = None,
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
     verbose: VerboseOpt = False,
@@ -29,6 +30,6 @@ def scenes(
     progress = reporter("scenes", quiet, verbose)
     summary = generate_scenario(out, n_mining=captures, n_single=single, frames=frames, width=width,
                                 height=height, seed=seed, family=sc["family"],
-                                tumbled_fraction=sc["tumbled_fraction"], progress=progress)
+                                tumbled_fraction=sc["tumbled_fraction"], touching=sc["touching"], progress=progress)
     typer.echo(f"rendered {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
                f"single captures ({summary['render_seconds_per_frame']:.2f} s per frame) into {out}")

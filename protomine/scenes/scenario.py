@@ -65,8 +65,8 @@ def demo_intrinsics(width: int, height: int) -> Intrinsics:
 def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int = 24, frames: int = 8,
                       width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
                       single_classes: list[str] | None = None, family: str = "tools",
-                      tumbled_fraction: float = 0.0, progress: Callable[[str], None] | None = None,
-                      executor=None) -> dict:
+                      tumbled_fraction: float = 0.0, touching: bool = False,
+                      progress: Callable[[str], None] | None = None, executor=None) -> dict:
     """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
 
     family: the item-class family (items.toml ``family``) the default class lists come from.
@@ -92,7 +92,7 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     mining = _pick(by_name, classes, [c.name for c in own if not c.held_out], "classes")
     single = _pick(by_name, single_classes, [c.name for c in own], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
-                     float(tumbled_fraction), progress, executor)
+                     float(tumbled_fraction), progress, touching, executor)
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
@@ -105,7 +105,7 @@ def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[
 
 def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
               mining: list[ItemClass], single: list[ItemClass], tumbled_fraction: float,
-              progress: Callable[[str], None] | None, executor) -> dict:
+              progress: Callable[[str], None] | None, touching: bool = False, executor=None) -> dict:
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     clean_stale_temporaries(out)
@@ -121,7 +121,7 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     for name, split, pool, n_frames_cap in plan:
         cap_rng = rng.spawn(1)[0]
         items.append((str(out / name), split, [c.name for c in pool], n_frames_cap, K, copy.deepcopy(cap_rng),
-                      dict(used[split]), tumbled_fraction))
+                      dict(used[split]), tumbled_fraction, touching))
         _layout(pool, cap_rng, used[split], tumbled_fraction)
     rows: list[dict] = []
     timing = {"render_s": 0.0, "frames": 0}
@@ -153,6 +153,7 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
         "truth": {"objects": "truth.csv", "points": "truth_points.csv", "full": "truth_full.csv"},
         "image": {"width": width, "height": height, "frames_per_mining_capture": frames},
         "tumbled_fraction": tumbled_fraction,
+        "placement": "touching" if touching else "apart",
     }
     write_text(out / "scenario.json", json.dumps(doc, indent=1))
     return {**doc, "out": str(out), "objects": len(rows), "frames_rendered": n_frames,
@@ -206,6 +207,70 @@ def _place(posed: list[Posed], rng: np.random.Generator) -> list[tuple[float, fl
     return [tuple(pos[i]) for i in range(len(posed))]
 
 
+CONTACT_M = 0.001            # touching placement: the shapes' clearance at the contact (m)
+
+
+def _inside_samples(shape, yaw_deg: float, step: float = 0.003) -> np.ndarray:
+    """(M, 3) points just inside a shape's surface (a 2-step shell), rotated by yaw about z (table frame)."""
+    import torch
+    lo, hi = np.asarray(shape.lo), np.asarray(shape.hi)
+    axes = [np.arange(a, b + step, step) for a, b in zip(lo, hi)]
+    g = np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, 3)
+    d = shape.fn(torch.tensor(g, dtype=torch.float32)).numpy()
+    pts = g[(d < 0) & (d > -2 * step)]
+    a = np.deg2rad(yaw_deg)
+    R = np.array([[np.cos(a), -np.sin(a), 0.0], [np.sin(a), np.cos(a), 0.0], [0.0, 0.0, 1.0]])
+    return pts @ R.T
+
+
+def _clearance(shape, yaw_deg: float, pos: np.ndarray, pts: np.ndarray) -> float:
+    """Smallest SDF of the placed shape over table-frame points (M, 3): < 0 means they overlap it."""
+    import torch
+    a = np.deg2rad(yaw_deg)
+    R = np.array([[np.cos(a), -np.sin(a), 0.0], [np.sin(a), np.cos(a), 0.0], [0.0, 0.0, 1.0]])
+    local = (pts - np.array([pos[0], pos[1], 0.0])) @ R       # table -> object frame (row points)
+    return float(shape.fn(torch.tensor(local, dtype=torch.float32)).min()) if len(pts) else np.inf
+
+
+def place_touching(shapes: list[Shape], yaws: np.ndarray, rng: np.random.Generator) -> list[tuple[float, float]]:
+    """Positions (x, y) where every object touches at least one other, none overlapping.
+
+    The largest object goes to the centre; each next one picks an already placed anchor and a direction,
+    and slides towards the anchor (bisection on the distance between the two base centres) until the
+    shapes' SDF clearance is about CONTACT_M: the surfaces touch.  A slide that would overlap a third
+    object or leave the table disc is redrawn.
+    """
+    radii = [sh.footprint_radius() for sh in shapes]
+    order = list(np.argsort(radii)[::-1])
+    shells = [_inside_samples(sh, float(y)) for sh, y in zip(shapes, yaws)]
+    pos: dict[int, np.ndarray] = {int(order[0]): np.zeros(2)}
+    for i in order[1:]:
+        i = int(i)
+        for _ in range(200):
+            j = list(pos)[int(rng.integers(len(pos)))]
+            a = rng.uniform(0, 2 * np.pi)
+            u = np.array([np.cos(a), np.sin(a)])
+
+            def gap(dist: float) -> float:
+                c = pos[j] + dist * u
+                pts = shells[i] + np.array([c[0], c[1], 0.0])
+                return min(_clearance(shapes[k], float(yaws[k]), pos[k], pts) for k in pos)
+
+            lo, hi = 0.0, radii[i] + radii[j] + 0.01
+            if gap(hi) <= 0:
+                continue
+            for _ in range(14):
+                mid = 0.5 * (lo + hi)
+                lo, hi = (mid, hi) if gap(mid) <= CONTACT_M else (lo, mid)
+            c = pos[j] + hi * u
+            if np.linalg.norm(c) + radii[i] <= PLACE_RADIUS + 0.1 and gap(hi) > 0:
+                pos[i] = c
+                break
+        else:
+            raise RuntimeError("could not place the objects touching one another")
+    return [tuple(pos[i]) for i in range(len(shapes))]
+
+
 def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int],
             tumbled_fraction: float) -> tuple[list[Posed], list[tuple[float, float]]]:
     """5-8 new instances with resting poses and placements.  ``used`` counts instances per class so far
@@ -225,18 +290,21 @@ def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int
 
 def _capture_item(shared: None, item: tuple) -> tuple[list[dict], float, str, int, float]:
     """One capture (an executor item): its truth rows, render seconds, name, frames and wall seconds."""
-    folder, split, names, n_frames, K, rng, used, tumbled_fraction = item
+    folder, split, names, n_frames, K, rng, used, tumbled_fraction, touching = item
     t1 = time.monotonic()
     by_name = {c.name: c for c in load_item_classes()}
     rows, dt = _one_capture(Path(folder), split, [by_name[n] for n in names], n_frames, K, rng, used,
-                            tumbled_fraction)
+                            tumbled_fraction, touching)
     return rows, dt, Path(folder).name, n_frames, time.monotonic() - t1
 
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
-                 rng: np.random.Generator, used: dict[str, int], tumbled_fraction: float) -> tuple[list[dict], float]:
+                 rng: np.random.Generator, used: dict[str, int], tumbled_fraction: float,
+                 touching: bool = False) -> tuple[list[dict], float]:
     posed, pos = _layout(pool, rng, used, tumbled_fraction)
     yaws = rng.uniform(0.0, 360.0, len(posed))
+    if touching and len(posed) > 1:
+        pos = place_touching([p.shape for p in posed], yaws, rng)
     scene = Scene([SceneObject(p.shape, float(y), xy, p.inst.colour) for p, y, xy in zip(posed, yaws, pos)],
                   table_colour=tuple(np.clip(np.array([0.62, 0.55, 0.45]) + rng.normal(0, 0.05, 3), 0, 1)),
                   table_texture=float(rng.uniform(0.0, 0.06)))

@@ -1,0 +1,1 @@
+"""Importers: RGB-D layouts people already have -> capture folders (protomine.capture/1)."""

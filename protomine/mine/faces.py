@@ -1,0 +1,93 @@
+"""Resting faces of prototypes: which way up their members lie, how many lie so, and each face's symmetry.
+
+Conventions: up directions are unit vectors in the prototype's canonical frame (``rotations``: a member's
+up is R^T e_z for its rotation R, object frame <- prototype frame); symmetry codes as in
+:mod:`protomine.mine.symmetry` (0 continuous, 1 none, n n-fold about that face's up).
+
+Faces (``group_faces``): face 0 is the canonical face, up = +z (the frame the prototype is stored in).  The
+other members' up directions are grouped greedily: the direction with the most members within
+``radius_deg`` (default 25 degrees, between the finest tilt grid's spacing and the smallest angle between
+two faces of a box) becomes a face (up = the normalised mean of those members' ups), its members are
+removed, and so on; every member belongs to the face whose up is nearest.
+
+Face symmetry (``face_symmetries``): the symmetry test of :mod:`symmetry` applied to the prototype's copy
+resting on that face (``tilts.TiltBank.copies``), with the canonical face's noise level (the mean over
+cells of each prototype's mean variance) standing for the copy's, since the members' moments are only
+gathered in the canonical frame.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from .. import rotations as rot
+from . import symmetry as sym
+
+FACE_RADIUS_DEG = 25.0
+
+
+def group_faces(up: np.ndarray, labels: np.ndarray, K: int, radius_deg: float = FACE_RADIUS_DEG
+                ) -> tuple[list[np.ndarray], list[np.ndarray], np.ndarray]:
+    """Faces per prototype from members' up directions up (N, 3) and labels (N,): face ups [(F_k, 3)],
+    member counts [(F_k,)] and each member's face index (N,)."""
+    up = np.asarray(up, np.float64)
+    face = np.zeros(len(up), np.int64)
+    ups, counts = [], []
+    cos_r = np.cos(np.deg2rad(radius_deg))
+    for k in range(K):
+        idx = np.flatnonzero(labels == k)
+        u = up[idx]
+        dirs = [np.array([0.0, 0.0, 1.0])]
+        left = u[:, 2] < cos_r  # members not on the canonical face
+        while left.any():
+            cand = u[left]
+            near = (cand @ cand.T) >= cos_r  # (m, m)
+            best = int(np.argmax(near.sum(axis=1)))
+            members = near[best]
+            d = cand[members].sum(axis=0)
+            dirs.append(d / max(np.linalg.norm(d), 1e-12))
+            pos = np.flatnonzero(left)[members]
+            left[pos] = False
+        dirs = np.array(dirs)
+        f = np.argmax(u @ dirs.T, axis=1) if len(idx) else np.zeros(0, np.int64)
+        face[idx] = f
+        ups.append(dirs)
+        counts.append(np.bincount(f, minlength=len(dirs)).astype(np.int64))
+    return ups, counts, face
+
+
+def face_symmetries(bank, face_ups: list[np.ndarray], noise: np.ndarray, canonical: np.ndarray, *,
+                    factor: float = sym.DEFAULT_FACTOR, tol: float = sym.DEFAULT_TOL) -> list[np.ndarray]:
+    """Symmetry code per face [(F_k,)]: face 0 keeps the prototype's ``canonical`` (K,) code; the others are
+    tested on the prototype's copy resting on them.  ``bank`` is a ``tilts.TiltBank`` over the canonical
+    prototypes (its grid gives the copies' margins), ``noise`` (K,) each prototype's mean cell variance."""
+    out = []
+    for k, ups in enumerate(face_ups):
+        codes = np.full(len(ups), int(canonical[k]), np.int64)
+        for f in range(1, len(ups)):
+            Pc, Vc = bank.copy_at(k, ups[f])
+            codes[f] = int(sym.detect_symmetry(Pc[None], Vc[None], float(noise[k]), factor=factor, tol=tol)[0])
+        out.append(codes)
+    return out
+
+
+def reduce_rotation(R: np.ndarray, period_deg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Rotations (N, 3, 3) = Rz(yaw) tilt(up) with yaw reduced modulo each member's face period (N,) (0 =
+    continuous: yaw 0).  Returns the reduced rotations and yaws (N,)."""
+    up, yaw = rot.matrix_to_tilt_yaw(R)
+    p = np.asarray(period_deg, np.float64)
+    yaw = np.where(p > 0, np.mod(yaw, np.where(p > 0, p, 1.0)), 0.0)
+    return rot.tilt_yaw_to_matrix(up, yaw), yaw
+
+
+def face_pose(R: np.ndarray, face_up: np.ndarray, face_symmetry: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Resting face, reduced rotation and yaw of rotations R (n, 3, 3) (object frame <- prototype frame) of
+    one prototype with library faces face_up (F, 3), face_symmetry (F,) (-1 = padding): the face whose up
+    is nearest the rotation's up R^T e_z, and the rotation with its yaw modulo that face's period.
+    Returns face (n,), R (n, 3, 3), yaw_deg (n,)."""
+    R = np.asarray(R, np.float64).reshape(-1, 3, 3)
+    valid = np.flatnonzero(np.asarray(face_symmetry) >= 0)
+    up = R[:, 2, :]
+    face = valid[np.argmax(up @ np.asarray(face_up, np.float64)[valid].T, axis=1)] if len(R) else np.zeros(0, np.int64)
+    code = np.asarray(face_symmetry)[face]
+    Rr, yaw = reduce_rotation(R, np.where(code == 0, 0.0, 360.0 / np.maximum(code, 1)))
+    return face.astype(np.int64), Rr, yaw
