@@ -52,9 +52,7 @@ import numpy as np
 import typer
 
 from . import atomic, cores
-from .mine.synthetic import GRID, synthetic_objects, synthetic_prototypes
-
-SCALES = (0.87, 0.93, 1.0, 1.07, 1.15)  # configs/default.toml mine.scales
+from .mine.synthetic import GRID, SCALES, synthetic_objects, synthetic_prototypes
 
 
 def _time(fn: Callable[[], object]) -> float:
