@@ -14,7 +14,7 @@ import io
 import json
 import time
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Optional
 
 import numpy as np
 import typer
@@ -23,6 +23,8 @@ from .atomic import write_text
 from .cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
 from .scale.options import executor_for
 
+FULL_SIZE = (320, 240)  # rendered image size (width, height) in pixels
+QUICK_SIZE = (160, 120)
 AUDIT_FRACTION = 0.4   # share of mined objects whose truth is handed to the audit as "hand labels"
 
 
@@ -83,6 +85,14 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
                f"unknown AUROC {ev['auroc']:.3f}, flagged: {ev['unknown_flagged']:.0%} of unknown, "
                f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
                f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")
+    depth_model = json.loads((scenes / "scenario.json").read_text()).get("depth_model", {})
+    models = sorted({depth_model.get(c.name, "gaussian") for c in singles})
+    for model in models if len(models) > 1 else []:
+        sub = [r for r in recs if depth_model.get(r["capture"], "gaussian") == model]
+        e = evaluate_labels(sub, scenes / "truth_full.csv", lib, scenes / "truth_full.csv")
+        typer.echo(f"       {model} depth ({len({r['capture'] for r in sub})} views): accuracy {e['accuracy']:.3f}, "
+                   f"unknown AUROC {e['auroc']:.3f}, flagged {e['unknown_flagged']:.0%} of unknown, "
+                   f"{e['known_flagged']:.0%} of known")
     # one-shot: the user scans new items; one example of a class mining never saw finds the others
     scans = out / "new_scans.h5"
     if scans.exists():
@@ -106,9 +116,16 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
 
 def demo(
     out: Annotated[Path, typer.Option("--out", "-o", help="Working folder for scenes, store, library, labels and report.")] = Path("demo_out"),
-    captures: Annotated[int, typer.Option("--captures", min=2, help="Multi-view mining captures.")] = 12,
-    single: Annotated[int, typer.Option("--single", min=0, help="Single-frame captures for the label stage.")] = 24,
-    frames: Annotated[int, typer.Option("--frames", min=1, help="Frames per mining capture.")] = 8,
+    captures: Annotated[Optional[int], typer.Option("--captures", min=2, metavar="N", show_default=False,
+                                                    help="Multi-view mining captures.  [default: 12, 4 with --quick]")] = None,
+    single: Annotated[Optional[int], typer.Option("--single", min=0, metavar="N", show_default=False,
+                                                  help="Single-frame captures for the label stage.  "
+                                                  "[default: 24, 4 with --quick]")] = None,
+    frames: Annotated[Optional[int], typer.Option("--frames", min=1, metavar="N", show_default=False,
+                                                  help="Frames per mining capture.  [default: 8, 4 with --quick]")] = None,
+    quick: Annotated[bool, typer.Option("--quick", help=f"A small scenario at {QUICK_SIZE[0]}x{QUICK_SIZE[1]} pixels "
+                                        "and the fast preset (unless --config is given): the whole job in about a "
+                                        "minute, to try it out or smoke-test an install.")] = False,
     rerender: Annotated[bool, typer.Option("--rerender", help="Render the scenes again even if present.")] = False,
     config: ConfigOpt = None,
     seed: SeedOpt = 0,
@@ -132,17 +149,22 @@ def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, co
     from .mine.pipeline import mine_store
     from .scenes.scenario import generate_scenario
 
-    cfg = config_from(config)
+    cfg = config_from(config if config is not None or not quick else "fast")
+    size = QUICK_SIZE if quick else FULL_SIZE
+    captures, single, frames = (given if given is not None else (q if quick else full)
+                                for given, q, full in ((captures, 4, 12), (single, 4, 24), (frames, 4, 8)))
     say = reporter("demo", quiet, verbose)
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     scenes = out / "scenes"
-    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, **cfg["scenes"]}
+    stereo = float(cfg["scenes"]["stereo_fraction"])
+    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, "size": list(size), **cfg["scenes"]}
     if rerender or not _scenario_matches(scenes, params):
-        say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures")
-        generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, seed=seed,
+        say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures "
+            f"({stereo:.0%} with active-stereo depth)")
+        generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, width=size[0], height=size[1], seed=seed,
                           family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
-                          progress=say, executor=executor)
+                          stereo_fraction=stereo, progress=say, executor=executor)
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))

@@ -26,6 +26,8 @@ def test_manning_worked_example():
     s = clustering_scores(c, l)
     assert s["n"] == 17
     assert s["purity"] == pytest.approx(0.71, abs=0.005)       # Manning et al. 2008, ch. 16: purity ~ 0.71
+    # NMI and RI are scikit-learn's values forwarded unchanged: these two lines check the wiring (the
+    # arithmetic-mean normalisation Manning et al. use), not code of ours
     assert s["nmi"] == pytest.approx(0.36, abs=0.005)          # Manning et al. 2008, ch. 16: NMI ~ 0.36
     assert s["rand_index"] == pytest.approx(0.68, abs=0.005)   # Manning et al. 2008, ch. 16: RI ~ 0.68
     assert s["purity"] == pytest.approx(12 / 17)               # Manning et al. 2008: (5 + 4 + 3) / 17
@@ -52,7 +54,7 @@ def test_scores_equal_sklearn_on_random_labelings(seed):
     c = rng.integers(0, rng.integers(2, 9), n)
     l = rng.choice(list("abcdefg"), n)
     s = clustering_scores(c, l)
-    # scikit-learn as the reference implementation
+    # forwarded scikit-learn scores: a wiring check (argument order), not an outside check of our code
     assert s["nmi"] == pytest.approx(skm.normalized_mutual_info_score(l, c))
     assert s["ari"] == pytest.approx(skm.adjusted_rand_score(l, c))
     assert s["v_measure"] == pytest.approx(skm.v_measure_score(l, c))
@@ -119,7 +121,8 @@ def test_yaw_offset_recovered_across_wraparound():
     off = yaw_offset_deg(truth, pred, 360.0)
     assert min(abs(off - 355.0), 360 - abs(off - 355.0)) < 1.0
     err = yaw_error_deg(truth, pred, off, 360.0)
-    assert np.median(err) < 4.0 and err.max() <= 180.0
+    # once the offset is removed, each error is that member's noise, up to the offset's own error (< 1 deg)
+    assert np.abs(err - np.abs(noise)).max() < 1.0
 
 
 def test_yaw_modulo_symmetry_period():

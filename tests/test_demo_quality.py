@@ -20,7 +20,8 @@ def test_mining_recovers_classes_poses_and_symmetries(demo_small):
     ev = evaluate_mining(demo_small["lib"], truth)
     assert abs(ev["K"] - ev["n_classes"]) <= 1            # automatic K within +-1 of the true class count
     assert ev["purity"] >= 0.95 and ev["nmi"] >= 0.90     # sklearn NMI as the reference implementation
-    assert ev["yaw_error_median_deg"] <= 8.0              # after per-cluster offset, modulo symmetry
+    # after per-cluster offset, modulo symmetry; measured 0.48 deg (fast preset, 10-degree azimuth bins): bar ~3x
+    assert ev["yaw_error_median_deg"] <= 1.5
     # symmetric classes are detected as such (continuous or n-fold), most asymmetric ones as none
     sym = [c for c in ev["clusters"] if "true_symmetry" in c]
     symmetric = [c for c in sym if c["true_symmetry"] != 1]

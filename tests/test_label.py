@@ -74,7 +74,7 @@ def test_known_classes_are_named_and_unknown_classes_flagged(labelled):
     ev = evaluate_labels(labelled["weighted"], out / "truth_full.csv", labelled["lib"], out / "truth_full.csv")
     assert ev["n_unknown"] >= 5 and ev["n_known"] >= 30
     assert ev["accuracy"] >= 0.8
-    assert ev["median_yaw_error_deg"] <= 15.0
+    assert ev["median_yaw_error_deg"] <= 1.5           # measured 0.52 deg: bar ~3x
     assert ev["auroc"] >= 0.85            # roc_auc_score from scikit-learn (reference implementation)
     assert ev["unknown_flagged"] >= 0.6
     assert ev["known_flagged"] <= 0.25
@@ -84,7 +84,8 @@ def test_weighted_distance_is_at_least_as_accurate_as_plain(labelled):
     out = labelled["out"]
     ev_w = evaluate_labels(labelled["weighted"], out / "truth_full.csv", labelled["lib"], out / "truth_full.csv")
     ev_p = evaluate_labels(labelled["plain"], out / "truth_full.csv", labelled["lib"], out / "truth_full.csv")
-    assert ev_w["accuracy"] >= ev_p["accuracy"]
+    # measured 0.959 weighted vs 0.898 plain (3 of 49 known views): strictly better, not a tie
+    assert ev_w["accuracy"] > ev_p["accuracy"]
 
 
 def test_cli_writes_json_lines_and_one_overlay_per_frame(labelled, tmp_path):

@@ -111,7 +111,9 @@ def test_mask_pixels_lie_on_the_object_surface(name):
 def test_every_class_builds_within_size_bounds():
     rng = np.random.default_rng(0)
     classes = load_item_classes()
-    assert len(classes) == 10 and {c.name for c in classes} <= set(BUILDERS)
+    assert {c.name for c in classes} <= set(BUILDERS)
+    families = {f: [c for c in classes if c.family == f] for f in {c.family for c in classes}}
+    assert len(families["tools"]) == 10 and len(families["angles"]) == 4 and len(families) == 2
     assert sum(c.held_out for c in classes) == 2
     assert all(c.symmetry == "none" for c in classes if c.held_out)
     for c in classes:
@@ -221,7 +223,8 @@ def test_truth_yaw_points_along_the_mallet_head(tmp_path):
         h = (p - base) @ up
         head = p[h > 0.6 * h.max()]                 # the head stands higher than the handle
         yaw_obs = G.direction_to_yaw(head.mean(0) - base, up)
-        assert G.angle_diff_deg(yaw_obs, float(r["yaw_deg"])) < 12.0, (r["object"], yaw_obs, r["yaw_deg"])
+        # measured: median 2.7, max 3.9 degrees (the head centroid of a partial view): bar ~3x the median
+        assert G.angle_diff_deg(yaw_obs, float(r["yaw_deg"])) < 8.0, (r["object"], yaw_obs, r["yaw_deg"])
         checked += 1
     assert checked >= 3
 
