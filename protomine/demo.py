@@ -138,11 +138,11 @@ def demo(
     auto = the usable cores); mining runs in this process with the cores as torch threads.
     """
     with executor_for(config_from(config), None, None, processes=True) as ex:
-        _demo(out, captures, single, frames, rerender, config, seed, quiet, verbose, ex)
+        _demo(out, captures, single, frames, quick, rerender, config, seed, quiet, verbose, ex)
 
 
-def _demo(out: Path, captures: int, single: int, frames: int, rerender: bool, config, seed: int, quiet: bool,
-          verbose: bool, executor) -> None:
+def _demo(out: Path, captures: int | None, single: int | None, frames: int | None, quick: bool, rerender: bool,
+          config, seed: int, quiet: bool, verbose: bool, executor) -> None:
     from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
     from .mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
