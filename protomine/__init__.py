@@ -11,4 +11,10 @@ The pipeline, one sub-package per stage:
 """
 from __future__ import annotations
 
+import os as _os
+
+# torch's OpenMP threads wait for work passively instead of spinning (protomine.cores explains why); read
+# once, when torch loads, so it is set here, before any stage imports torch
+_os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
 __version__ = "0.1.0"

@@ -5,12 +5,17 @@ grid, each object a prototype rolled by a random yaw, scaled by a random factor 
 Gaussian noise and a random partial-observation mask (a view sees a random half of the azimuth and a
 random fraction of the height).
 
-Rows (JSON keys in brackets):
+Rows (JSON keys in brackets); every row records the 1-minute load average (``load_1m``): on a shared machine
+absolute times grow with it, so the targets are ratios measured side by side in one run.
 
-(a) assignment of the same N objects to K = 32 prototypes [``assignment``]:
+(a) assignment of the same N = 4,096 objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
-    ``naive_s`` (explicitly rolling every prototype for every shift), ``ratio_fft_dense`` (target <= 4),
-    ``ratio_naive_fft``; ``n_objects``, ``n_prototypes``, ``n_shifts``, ``load_1m`` (1-minute load average).
+    ``naive_s`` (explicitly rolling every prototype for every shift, timed on N / 16 objects and scaled),
+    ``ratio_fft_dense`` (target <= 2), ``ratio_naive_fft``; ``matmul_peak_gflops`` (best of 3 float32
+    4096 x 4096 torch products, 2 n^3 operations each, same process and threads), ``products_gflop``,
+    ``products_s``, ``products_gflops`` (the search's per-frequency batched products, ``bmm``/``baddbmm``,
+    timed by torch's profiler with their shapes), ``products_fraction_of_peak`` (target >= 0.5),
+    ``products_share_of_search``.
 (b) mining with fixed K = 32 and the default 5 scales (``SCALES``) [``mining``]: ``sizes``, a list of
     {``n_objects``, ``seconds``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
     subprocess so its peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``, which includes
@@ -19,6 +24,15 @@ Rows (JSON keys in brackets):
     ``growth_exponent`` = slope of log(seconds) against log(n_objects) (1 = linear).  Engine settings:
     n_init = 2, max_iter = 15, chunk_size = 256, sample_size = 2048, cache_mb = 128.  Targets (full run:
     1,000 / 3,000 / 10,000 objects): 10,000 objects under 300 s, under 2 GB.
+(c) peer [``peer``]: scikit-learn ``KMeans`` (k-means++, pose-unaware, the same n_init = 2) on the same 2,000
+    objects flattened (w x), against our mining (K = 32, 5 scales): ``ratio_ours_kmeans`` (time), ``ours_nmi``,
+    ``kmeans_nmi`` against the synthetic labels: what pose-awareness costs and what it buys.
+(d) label [``label``]: lifting + matching single views in one process with one torch thread
+    (``protomine/label/throughput.py``; target >= 500 objects per second).
+(e) large [``large``]: mini-batch mining of ``--size`` objects streamed from disk, and its quality against
+    full batches on 10,000 (``protomine/scale/streamed.py``; targets at 100,000: < 10 minutes, < 4 GB).
+(f) ``--scale`` only: this process against a local Dask cluster of 1 and 2 workers
+    (``protomine/scale/benchmark.py``).
 
 Other stages add rows by appending a ``(name, function(quick, seed) -> dict)`` pair to ``BENCH_ROWS``;
 each dict is printed as one table section and stored under its name in the JSON.
@@ -37,10 +51,8 @@ from typing import Annotated, Callable, Optional
 import numpy as np
 import typer
 
-from . import atomic
-from .mine.synthetic import GRID, synthetic_objects, synthetic_prototypes
-
-SCALES = (0.87, 0.93, 1.0, 1.07, 1.15)  # configs/default.toml mine.scales
+from . import atomic, cores
+from .mine.synthetic import GRID, SCALES, synthetic_objects, synthetic_prototypes
 
 
 def _time(fn: Callable[[], object]) -> float:
@@ -49,23 +61,87 @@ def _time(fn: Callable[[], object]) -> float:
     return time.perf_counter() - t0
 
 
+def matmul_peak_gflops(n: int, repeats: int = 3) -> float:
+    """The machine's float32 matrix-multiply rate in this process: best of ``repeats`` (n, n) @ (n, n)
+    torch products, 2 n^3 floating-point operations each (the usual count of a multiply-add as 2)."""
+    import torch
+    g = torch.Generator().manual_seed(0)
+    a, b = torch.randn(n, n, generator=g), torch.randn(n, n, generator=g)
+    a @ b  # warm-up
+    return 2.0 * n ** 3 / min(_time(lambda: a @ b) for _ in range(repeats)) / 1e9
+
+
+def _product_time_and_flops(run: Callable[[], object]) -> tuple[float, float]:
+    """Seconds and floating-point operations of the batched matrix products (``bmm`` / ``baddbmm``: the
+    pose search's per-frequency complex products in real arithmetic) while ``run`` executes, from torch's
+    profiler (op wall times on the calling thread, shapes of the operands: (b, n, k) @ (b, k, m) is 2 b n k m)."""
+    from torch.profiler import ProfilerActivity, profile
+    with profile(activities=[ProfilerActivity.CPU], record_shapes=True) as prof:
+        run()
+    secs = flops = 0.0
+    for e in prof.events():
+        if e.name in ("aten::bmm", "aten::baddbmm"):
+            a, b = e.input_shapes[:2] if e.name == "aten::bmm" else e.input_shapes[1:3]
+            flops += 2.0 * a[0] * a[1] * a[2] * b[2]
+            secs += e.cpu_time_total / 1e6
+    return secs, flops
+
+
 def bench_assignment(quick: bool, seed: int) -> dict:
-    """(a) FFT over all shifts vs one dense pass vs naive explicit rotation, same volumes."""
+    """(a) FFT over all shifts vs one dense pass vs naive explicit rotation, same volumes; the machine's
+    matmul peak and the pose search's products against it."""
     from .mine.posesearch import dense_distances, pose_distances, pose_distances_naive
+    cores.set_torch_threads(cores.usable_cores())
     rng = np.random.default_rng(seed)
     K = 8 if quick else 32
-    n = 256 if quick else 2048
+    n = 512 if quick else 4096
     P = synthetic_prototypes(rng, K)
     X, W, *_ = synthetic_objects(rng, P, n)
     V = np.ones((K,) + W.shape[1:], np.float32)
     pose_distances(X[:64], W[:64], P, V)  # warm-up (thread pools, allocator)
+    load0 = os.getloadavg()[0]
+    peak = matmul_peak_gflops(1024 if quick else 4096)
     fft_s = min(_time(lambda: pose_distances(X, W, P, V, chunk_size=512)) for _ in range(2))
     dense_s = min(_time(lambda: dense_distances(X, W, P, V, chunk_size=512)) for _ in range(2))
-    m = max(32, n // 8)  # the naive way is slow: time a slice and scale up
+    prod_s, prod_flops = _product_time_and_flops(lambda: pose_distances(X, W, P, V, chunk_size=512))
+    m = max(32, n // 16)  # the naive way is slow: time a slice and scale up
     naive_s = _time(lambda: pose_distances_naive(X[:m], W[:m], P, V, chunk_size=512)) * n / m
+    prod_gflops = prod_flops / max(prod_s, 1e-12) / 1e9
     return {"n_objects": n, "n_prototypes": K, "n_shifts": GRID[2], "fft_s": fft_s, "dense_s": dense_s,
             "naive_s": naive_s, "naive_timed_objects": m, "ratio_fft_dense": fft_s / dense_s,
-            "ratio_naive_fft": naive_s / fft_s, "load_1m": os.getloadavg()[0]}
+            "ratio_naive_fft": naive_s / fft_s, "matmul_peak_gflops": peak, "products_gflop": prod_flops / 1e9,
+            "products_s": prod_s, "products_gflops": prod_gflops, "products_fraction_of_peak": prod_gflops / peak,
+            "products_share_of_search": prod_s / fft_s, "torch_threads": cores.usable_cores(),
+            "load_1m_start": load0, "load_1m": os.getloadavg()[0]}
+
+
+def bench_peer(quick: bool, seed: int) -> dict:
+    """(c) scikit-learn ``KMeans`` (pose-unaware, k-means++, same n_init) on the same objects flattened
+    (w x, (N, C R A H)) against our pose-aware mining, both in this process; NMI against the synthetic labels."""
+    from sklearn.cluster import KMeans
+    from sklearn.metrics import normalized_mutual_info_score
+
+    from .mine.engine import ArraySource, PoseKMeans
+    cores.set_torch_threads(cores.usable_cores())
+    rng = np.random.default_rng(seed)
+    n, k = (400, 8) if quick else (2000, 32)
+    P = synthetic_prototypes(rng, k)
+    X, W, labels, *_ = synthetic_objects(rng, P, n)
+    n_init = 2
+    load0 = os.getloadavg()[0]
+    t0 = time.perf_counter()
+    ours = PoseKMeans(n_clusters=k, scales=SCALES, n_init=n_init, max_iter=15, chunk_size=256, random_state=seed,
+                      sample_size=2048).fit(ArraySource(X, W))
+    ours_s = time.perf_counter() - t0
+    flat = (W[:, None] * X).reshape(n, -1)
+    t0 = time.perf_counter()
+    peer = KMeans(n_clusters=k, n_init=n_init, max_iter=300, random_state=seed).fit(flat)
+    peer_s = time.perf_counter() - t0
+    return {"n_objects": n, "n_prototypes": k, "n_init": n_init, "ours_s": ours_s, "kmeans_s": peer_s,
+            "ratio_ours_kmeans": ours_s / peer_s,
+            "ours_nmi": float(normalized_mutual_info_score(labels, ours.labels_)),
+            "kmeans_nmi": float(normalized_mutual_info_score(labels, peer.labels_)),
+            "load_1m_start": load0, "load_1m": os.getloadavg()[0]}
 
 
 def _mine_once(n: int, k: int, seed: int) -> dict:
@@ -110,6 +186,7 @@ def bench_mining(quick: bool, seed: int) -> dict:
 BENCH_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [
     ("assignment", bench_assignment),
     ("mining", bench_mining),
+    ("peer", bench_peer),
 ]
 
 
@@ -155,11 +232,27 @@ def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also writ
           seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed of the synthetic volumes.")] = 0,
           scale: Annotated[bool, typer.Option("--scale", help="Only the scale-out row: this process vs a 2-worker "
                                               "Dask LocalCluster, and a 1M-object / 50-worker projection "
-                                              "(protomine/scale/benchmark.py).")] = False) -> None:
+                                              "(protomine/scale/benchmark.py).")] = False,
+          size: Annotated[Optional[int], typer.Option("--size", min=100, max=10_000_000, help="Objects of the "
+                                                      "streamed-mining row [large] (default 100,000; 3,000 with "
+                                                      "--quick).")] = None,
+          only: Annotated[Optional[str], typer.Option("--only", help="Comma-separated rows to run (e.g. "
+                                                      "'assignment,peer'); default: all.")] = None) -> None:
     """Measure pose-search and mining speed and memory on synthetic volumes (see protomine/bench.py)."""
-    results = {"quick": quick, "seed": seed, "grid_CRAH": list(GRID)}
-    for name, fn in (SCALE_ROWS if scale else BENCH_ROWS):
-        results[name] = fn(quick, seed)
-        _print_section(name, results[name])
+    from .scale.streamed import bench_large
+    rows = SCALE_ROWS if scale else BENCH_ROWS + [
+        ("large", lambda q, s: bench_large(size or (3000 if q else 100_000), s))]
+    names = {r for r in only.split(",")} if only else {name for name, _ in rows}
+    unknown = names - {name for name, _ in rows}
+    if unknown:
+        raise typer.BadParameter(f"unknown rows {sorted(unknown)}; expected some of {[n for n, _ in rows]}",
+                                 param_hint="--only")
+    results = {"quick": quick, "seed": seed, "grid_CRAH": list(GRID), "usable_cores": cores.usable_cores(),
+               "load_1m_start": os.getloadavg()[0]}
+    for name, fn in rows:
+        if name in names:
+            results[name] = fn(quick, seed)
+            _print_section(name, results[name])
+    results["load_1m_end"] = os.getloadavg()[0]
     if json is not None:
         atomic.write_text(json, _json.dumps(results, indent=2))

@@ -58,7 +58,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "audit.target_interval_width": (0.01, 1.0),
     "audit.clean_purity": (0.5, 1.0),
     "audit.plan_random_share": (0.0, 1.0),
-    "scale.workers": (1, 4096),
+    "scale.workers": (0, 4096),
     "scale.batch_size": (0, 100_000_000),
     "scale.batch_steps": (1, 1_000_000),
 }

@@ -21,6 +21,7 @@ import typer
 
 from .atomic import write_text
 from .cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
+from .scale.options import executor_for
 
 FULL_SIZE = (320, 240)  # rendered image size (width, height) in pixels
 QUICK_SIZE = (160, 120)
@@ -60,7 +61,7 @@ def _export_line(summary: dict) -> str:
 
 
 def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
-                       truth: dict, say) -> None:
+                       truth: dict, say, executor) -> None:
     """Label held-out single views; then a one-shot search for a class that mining never saw."""
     from .capture import read_capture
     from .curate.oneshot import find_similar, retrieval_scores
@@ -73,7 +74,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     from .records import write_records
 
     stats: dict = {}
-    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=say)
+    recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=say, executor=executor)
     prov = provenance(cfg, seed, {"library": file_fingerprint(library)}, command="demo")
     write_records(out / "labels.jsonl", recs, prov)
     write_overlays(out / "overlays", [read_capture(c) for c in singles[:6]], recs, prov, progress=say)
@@ -96,7 +97,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     scans = out / "new_scans.h5"
     if scans.exists():
         scans.unlink()
-    ingest_captures(singles, scans, cfg, seed=seed, progress=say)
+    ingest_captures(singles, scans, cfg, seed=seed, progress=say, executor=executor)
     st = open_store(scans)
     labels = np.array([truth.get(o, {}).get("label") for o in st.ids], dtype=object)
     mined_classes = {truth[o]["label"] for o in lib.members["object"] if o in truth}
@@ -131,7 +132,17 @@ def demo(
     quiet: QuietOpt = False,
     verbose: VerboseOpt = False,
 ) -> None:
-    """Run the whole job on the built-in scenario and print how well it did."""
+    """Run the whole job on the built-in scenario and print how well it did.
+
+    Rendering, ingest and label spread their captures over worker processes ([scale] workers, default
+    auto = the usable cores); mining runs in this process with the cores as torch threads.
+    """
+    with executor_for(config_from(config), None, None, processes=True) as ex:
+        _demo(out, captures, single, frames, quick, rerender, config, seed, quiet, verbose, ex)
+
+
+def _demo(out: Path, captures: int | None, single: int | None, frames: int | None, quick: bool, rerender: bool,
+          config, seed: int, quiet: bool, verbose: bool, executor) -> None:
     from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
     from .mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
@@ -153,7 +164,7 @@ def demo(
             f"({stereo:.0%} with active-stereo depth)")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, width=size[0], height=size[1], seed=seed,
                           family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
-                          stereo_fraction=stereo, progress=say)
+                          stereo_fraction=stereo, progress=say, executor=executor)
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))
@@ -167,7 +178,7 @@ def demo(
     store = out / "objects.h5"
     if store.exists():
         store.unlink()
-    res = ingest_captures(mining, store, cfg, seed=seed, progress=say)
+    res = ingest_captures(mining, store, cfg, seed=seed, progress=say, executor=executor)
     t_ingest = time.monotonic() - t0 - t_scenes
     resid = [c["plane_residual_m"] * 1000 for c in res["captures"]]
     typer.echo(f"ingest: {res['objects']} objects from {len(mining)} captures, {res['frames_per_second']:.1f} frames/s, "
@@ -203,7 +214,7 @@ def demo(
 
     singles = [scenes / c for c in scen["single"]]
     if singles:
-        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say)
+        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say, executor)
 
     from .curate.export import export_labels
     exp = export_labels(lib, open_store(store), mining, out / "export", cfg, progress=say)

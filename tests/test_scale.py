@@ -250,11 +250,76 @@ def test_mine_pipeline_minibatch_mode_finds_the_two_shapes(tiny_world, tmp_path)
     assert len(full) == 6 and (same or swapped) and info["iterations"] == 3
 
 
-def test_local_process_pool_ingest_equals_single_file_store(tiny_world, tmp_path):
+@pytest.fixture(scope="module")
+def pool_exec():
     from protomine.scale.executor import PoolExecutor
     ex = PoolExecutor(2)
-    try:
-        ingest_sharded(tiny_world["caps"], tmp_path / "objects.h5", tiny_world["cfg"], executor=ex)
-    finally:
-        ex.close()
+    yield ex
+    ex.close()
+
+
+def test_local_process_pool_ingest_equals_single_file_store(tiny_world, pool_exec, tmp_path):
+    ingest_sharded(tiny_world["caps"], tmp_path / "objects.h5", tiny_world["cfg"], executor=pool_exec)
     _tables_equal(open_store(tmp_path / "objects.h5"), ObjectStore(tiny_world["store"]))
+    # captures lifted in 2 worker processes (one torch thread each), written as one file: the same store
+    ingest_captures(tiny_world["caps"], tmp_path / "pool.h5", tiny_world["cfg"], executor=pool_exec)
+    a, b = ObjectStore(tmp_path / "pool.h5"), ObjectStore(tiny_world["store"])
+    _tables_equal(a, b)
+    assert np.array_equal(a.read_volumes(0, len(a)), b.read_volumes(0, len(b)))
+
+
+def test_label_and_scenes_in_worker_processes_equal_this_process(tiny_world, pool_exec, tmp_path):
+    from protomine.label.matcher import label_captures
+    from protomine.mine.library import read_library
+    from protomine.scenes.scenario import generate_scenario
+    lib = read_library(tiny_world["library"])
+    here = label_captures(lib, tiny_world["caps"], tiny_world["cfg"], seed=0)
+    st: dict = {}
+    there = label_captures(lib, tiny_world["caps"], tiny_world["cfg"], seed=0, executor=pool_exec, stats=st)
+    assert there == here and len(here) > 0 and st["workers"] == 1  # 3 captures are one item of 4
+    many = tiny_world["caps"] * 2  # 6 captures: two items, one per worker (names repeat: use copies)
+    copies = []
+    for i, c in enumerate(many):
+        copies.append(tmp_path / f"c{i}")
+        shutil.copytree(c, copies[-1])
+    here = label_captures(lib, copies, tiny_world["cfg"], seed=0)
+    there = label_captures(lib, copies, tiny_world["cfg"], seed=0, executor=pool_exec, stats=st)
+    assert there == here and st["workers"] == 2
+    kw = dict(n_mining=2, n_single=1, frames=1, width=32, height=24, seed=3)
+    generate_scenario(tmp_path / "s1", **kw)
+    generate_scenario(tmp_path / "s2", executor=pool_exec, **kw)
+    files = sorted(p.relative_to(tmp_path / "s1") for p in (tmp_path / "s1").rglob("*") if p.is_file())
+    assert len(files) > 8
+    for f in files:
+        assert (tmp_path / "s1" / f).read_bytes() == (tmp_path / "s2" / f).read_bytes(), f
+
+
+def test_npy_file_source_reads_what_numpy_loads(tmp_path):
+    from protomine.mine.distributed import NpySpec
+    rng = np.random.default_rng(0)
+    X, W = rng.random((40, 2, 3, 4, 2), dtype=np.float32), rng.random((40, 3, 4, 2), dtype=np.float32)
+    np.save(tmp_path / "X.npy", X)
+    np.save(tmp_path / "W.npy", W)
+    src = NpySpec(str(tmp_path / "X.npy"), str(tmp_path / "W.npy")).open()
+    # reference: numpy's own reader (np.load) and fancy indexing
+    x, w = src.read(5, 17)
+    assert len(src) == 40 and np.array_equal(x, X[5:17]) and np.array_equal(w, W[5:17])
+    idx = np.array([0, 1, 2, 9, 20, 21, 39])
+    x, w = src.gather(idx)
+    assert np.array_equal(x, X[idx]) and np.array_equal(w, W[idx])
+    sub = src.subset(idx)
+    x, w = sub.read(2, 6)
+    assert len(sub) == 7 and np.array_equal(x, X[idx[2:6]]) and np.array_equal(w, W[idx[2:6]])
+
+
+def test_workers_auto_is_the_usable_cores():
+    import os
+
+    from protomine import cores
+    # the usable cores are the affinity mask (Linux sched_getaffinity; common practice for "cores I may use")
+    assert cores.resolve_workers("auto") == len(os.sched_getaffinity(0)) == cores.resolve_workers(0)
+    assert cores.resolve_workers(3) == 3
+    cfg = load_config(None)
+    assert isinstance(make_executor(cfg, workers="auto"), InlineExecutor)  # mine: this process, cores as threads
+    with pytest.raises(InputError, match="--workers"):
+        make_executor(cfg, workers=-2)

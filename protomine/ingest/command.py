@@ -28,10 +28,11 @@ def ingest(
 ) -> None:
     """Find the objects in each CAPTURE and lift each into an object-centric volume in the store.
 
-    Every capture is checked before any work starts; all bad ones are listed.  With --scheduler, or
-    --workers > 1, the captures are ingested in parallel into a sharded store.
+    Every capture is checked before any work starts; all bad ones are listed.  Captures are lifted in
+    parallel on this machine's cores (--workers, default auto) into one store; with --scheduler they are
+    lifted on the cluster into a sharded store.
     """
-    from ..scale.executor import InlineExecutor
+    from ..scale.executor import DaskExecutor
     from .pipeline import check_captures, ingest_captures
     from .sharded import ingest_sharded
     from .store import is_index
@@ -39,10 +40,10 @@ def ingest(
     say = reporter("ingest", quiet, verbose)
     good, bad = check_captures(captures, keep_going=keep_going)
     clean_stale_temporaries(out.parent)
-    with executor_for(cfg, scheduler, workers) as ex:
-        if isinstance(ex, InlineExecutor) and not is_index(out):
+    with executor_for(cfg, scheduler, workers, processes=True, items=len(good)) as ex:
+        if not isinstance(ex, DaskExecutor) and not is_index(out):
             res = ingest_captures(good, out, cfg, seed=seed, use_masks=not no_masks, progress=say,
-                                  keep_going=keep_going)
+                                  keep_going=keep_going, executor=ex)
         else:
             res = ingest_sharded(good, out, cfg, executor=ex, seed=seed, use_masks=not no_masks, progress=say,
                                  keep_going=keep_going)

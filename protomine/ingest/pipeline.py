@@ -98,6 +98,39 @@ def _reason(e: InputError) -> str:
     return f"{e.field + ': ' if e.field else ''}{e.message}"
 
 
+def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: Grid,
+                 progress: Callable[[str], None] | None = None) -> tuple[list[ObjectRecord], CaptureRecord, dict, int]:
+    """One capture: its objects lifted into records, its capture record, its summary and its frame count.
+    Raises :class:`InputError` when the capture cannot be read or holds no object."""
+    cap = read_capture(path, check_images=False)
+    detail(progress, f"{cap.name}: {len(cap.frames)} frames")
+    scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
+    if not scene.proposals:
+        raise InputError(cap.path, "objects", "no objects found above the support plane "
+                         f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks "
+                         f"{'used' if cap.has_masks and use_masks else 'not used'})")
+    recs = object_records(scene, cfg, grid)
+    rec = CaptureRecord(
+        name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
+        plane_normal=scene.plane.normal, plane_offset=scene.plane.offset, plane_residual_m=scene.plane.residual_m,
+        plane_inlier_fraction=scene.plane.inlier_fraction, n_frames=len(scene.frames), n_objects=len(recs),
+        masks=bool(cap.has_masks and use_masks))
+    summary = {"capture": cap.name, "objects": len(recs), "plane_residual_m": scene.plane.residual_m,
+               "plane_inlier_fraction": scene.plane.inlier_fraction, "plane_iterations": scene.plane.iterations}
+    return recs, rec, summary, len(scene.frames)
+
+
+def _lift_item(shared: tuple, path: str) -> tuple | str:
+    """Executor item: one capture lifted in a worker process (with keep_going, a bad one gives its reason)."""
+    cfg, seed, use_masks, grid, keep_going = shared
+    try:
+        return lift_capture(path, cfg, seed, use_masks, grid)
+    except InputError as e:
+        if not keep_going:
+            raise
+        return _reason(e)
+
+
 def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> tuple[list[Path], list[tuple[str, str]]]:
     """Check every capture before any work: capture.json, every frame file's PNG header, unique names.
 
@@ -119,8 +152,12 @@ def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> t
 
 def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *, seed: int = 0,
                     use_masks: bool = True, progress: Callable[[str], None] | None = None,
-                    keep_going: bool = False) -> dict:
+                    keep_going: bool = False, executor=None) -> dict:
     """Ingest capture folders into the store at ``store`` (created or updated atomically).
+
+    ``executor`` (``protomine.scale.executor``; None = this process) lifts the captures in its worker
+    processes, one capture per item; the store is written once, here.  Captures are independent (each has
+    its own generator, ``capture_rng``), so the store is the same whatever the number of workers.
 
     keep_going: a capture that fails while it is read (a bad image) or holds no object is skipped and
     listed in the summary's ``skipped`` [(capture, reason)]; the store is written for the others (not at
@@ -141,33 +178,35 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
     t0, n_frames = time.monotonic(), 0
     total = sum(_frame_count(c) for c in captures)
     with bar(progress, "ingest", total=total, unit="frames") as b:
-        for path in captures:
-            try:
-                cap = read_capture(path, check_images=False)
-                detail(progress, f"{cap.name}: {len(cap.frames)} frames")
-                scene = find_objects(cap, cfg, capture_rng(seed, cap.name), use_masks=use_masks, progress=progress)
-                if not scene.proposals:
-                    raise InputError(cap.path, "objects", "no objects found above the support plane "
-                                     f"(ingest.above_plane_m={cfg['ingest']['above_plane_m']}, masks "
-                                     f"{'used' if cap.has_masks and use_masks else 'not used'})")
-            except InputError as e:
-                if not keep_going:
-                    raise
-                skipped.append((str(path), _reason(e)))
+
+        def add(path: str | Path, res: tuple | str) -> None:
+            nonlocal n_frames
+            if isinstance(res, str):  # skipped (keep_going): the reason
+                skipped.append((str(path), res))
                 b.set_total(b.total - _frame_count(path))
-                continue
-            recs = object_records(scene, cfg, grid)
-            b.advance(len(scene.frames))
-            objects += recs
-            n_frames += len(scene.frames)
-            caps.append(CaptureRecord(
-                name=cap.name, path=str(Path(path).resolve()), fingerprint=folder_fingerprint(cap.path),
-                plane_normal=scene.plane.normal, plane_offset=scene.plane.offset, plane_residual_m=scene.plane.residual_m,
-                plane_inlier_fraction=scene.plane.inlier_fraction, n_frames=len(scene.frames), n_objects=len(recs),
-                masks=bool(cap.has_masks and use_masks)))
-            per_capture.append({"capture": cap.name, "objects": len(recs), "plane_residual_m": scene.plane.residual_m,
-                                "plane_inlier_fraction": scene.plane.inlier_fraction, "plane_iterations": scene.plane.iterations})
-            detail(progress, f"{cap.name}: {len(recs)} objects, plane residual {scene.plane.residual_m * 1000:.2f} mm")
+                return
+            recs, rec, summary, frames = res
+            b.advance(frames)
+            objects.extend(recs)
+            caps.append(rec)
+            per_capture.append(summary)
+            n_frames += frames
+            detail(progress, f"{rec.name}: {len(recs)} objects, plane residual {rec.plane_residual_m * 1000:.2f} mm")
+
+        if executor is None or executor.n_workers == 1 or len(captures) < 2:
+            for path in captures:
+                try:
+                    res = lift_capture(path, cfg, seed, use_masks, grid, progress)
+                except InputError as e:
+                    if not keep_going:
+                        raise
+                    res = _reason(e)
+                add(path, res)
+        else:
+            detail(progress, f"{len(captures)} captures on {executor.describe()}")
+            order = iter(captures)
+            executor.map(_lift_item, [str(c) for c in captures], shared=(cfg, seed, use_masks, grid, keep_going),
+                         fold=lambda _, res: add(next(order), res))
     elapsed = time.monotonic() - t0
     pause_point("inputs_read")
     counts = {"kept": 0, "replaced": 0, "added": 0}

@@ -82,8 +82,10 @@ def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
     rho = (np.arange(R) + 0.5) / R * grid.radial_margin * frame.radius
     phi = (np.arange(A) + 0.5) / A * 2 * np.pi
     z = (np.arange(H) + 0.5) / H * grid.height_margin * frame.height
-    rr, pp, zz = np.meshgrid(rho, phi, z, indexing="ij")
-    local = np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], axis=-1)
+    local = np.empty((R, A, H, 3))  # the products of a meshgrid, by broadcasting (same values, no grids)
+    local[..., 0] = rho[:, None, None] * np.cos(phi)[None, :, None]
+    local[..., 1] = rho[:, None, None] * np.sin(phi)[None, :, None]
+    local[..., 2] = z[None, None, :]
     return local @ plane_basis(frame.up) + frame.origin
 
 
@@ -100,22 +102,21 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     i0, j0, k0 = np.floor(rho), np.floor(phi), np.floor(z)
     fr, fp, fz = rho - i0, phi - j0, z - k0
     vals = np.concatenate([np.ones((len(values), 1)), values], axis=1)
-    for di in (0, 1):
-        wi = fr if di else 1 - fr
-        ii = (i0 + di).astype(int)
-        # points just inside the axis or the rim/top keep their whole weight in the edge bin
-        ii = np.clip(ii, 0, R - 1)
-        for dj in (0, 1):
-            wj = fp if dj else 1 - fp
-            jj = np.mod(j0 + dj, A).astype(int)
-            for dk in (0, 1):
-                wk = fz if dk else 1 - fz
-                kk = (k0 + dk).astype(int)
-                ok = (kk >= 0) & (kk < H) & (rho < R)
-                w = (wi * wj * wk)[ok]
-                flat = (ii[ok] * A + jj[ok]) * H + kk[ok]
-                for c in range(vals.shape[1]):
-                    out[c] += np.bincount(flat, weights=w * vals[ok, c], minlength=R * A * H)
+    # the 8 corners at once: index and weight arrays (2, 2, 2, M), corner (di, dj, dk) along the first axes;
+    # points just inside the axis or the rim/top keep their whole weight in the edge bin
+    step = np.arange(2)[:, None]
+    ii = np.clip(i0 + step, 0, R - 1).astype(int)
+    jj = np.mod(j0 + step, A).astype(int)
+    kk = (k0 + step).astype(int)
+    wi, wj, wk = np.stack([1 - fr, fr]), np.stack([1 - fp, fp]), np.stack([1 - fz, fz])
+    flat = (ii[:, None, None] * A + jj[None, :, None]) * H + kk[None, None, :]
+    w = wi[:, None, None] * wj[None, :, None] * wk[None, None, :]
+    ok = ((kk >= 0) & (kk < H))[None, None, :] & (rho < R)
+    ok = np.broadcast_to(ok, flat.shape)
+    point = np.broadcast_to(np.arange(len(values)), flat.shape)[ok]
+    flat, w = flat[ok], w[ok]
+    for c in range(vals.shape[1]):
+        out[c] = np.bincount(flat, weights=w * vals[point, c], minlength=R * A * H)
     return out.reshape(-1, R, A, H)
 
 

@@ -8,6 +8,7 @@ import typer
 
 from ..cliutil import (CapturesArg, ConfigOpt, LibraryArg, QuietOpt, SeedOpt, VerboseOpt, config_from, existing,
                        notice_library_config, reporter)
+from ..scale.options import WorkersOpt, executor_for
 
 
 def label(
@@ -22,6 +23,7 @@ def label(
     seed: SeedOpt = 0,
     quiet: QuietOpt = False,
     verbose: VerboseOpt = False,
+    workers: WorkersOpt = None,
 ) -> None:
     """Name the objects of each frame from the library's prototypes, with yaw, scale and a score.
 
@@ -53,7 +55,9 @@ def label(
     caps = [read_capture(c, check_images=False) for c in captures]
     clean_stale_temporaries(out.parent)
     stats: dict = {}
-    records = label_captures(lib, captures, cfg, seed=seed, use_masks=not no_masks, progress=say, stats=stats)
+    with executor_for(cfg, None, workers, processes=True, items=len(captures)) as ex:
+        records = label_captures(lib, captures, cfg, seed=seed, use_masks=not no_masks, progress=say, stats=stats,
+                                 executor=ex)
     prov = provenance(cfg, seed, {"library": file_fingerprint(library), **{c.name: folder_fingerprint(c.path) for c in caps}},
                       command="label")
     write_records(out, records, prov)

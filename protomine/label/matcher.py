@@ -240,36 +240,89 @@ def label_capture(library: Library, capture_path: str | Path, cfg: dict, *, seed
                           progress=progress)
 
 
+CAPTURES_PER_ITEM = 4  # captures labelled together (one executor item; their objects matched in batches)
+
+_WORKER_MATCHER: dict = {}  # per worker process: the matcher of the current run, keyed by the run's token
+
+
 def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict, *, seed: int = 0,
                    use_masks: bool = True, weighted: bool = True, progress: Callable[[str], None] | None = None,
-                   stats: dict | None = None, batch_objects: int = 256) -> list[dict]:
+                   stats: dict | None = None, batch_objects: int = 256, executor=None) -> list[dict]:
     """Label several captures (records in the given capture order, then frame order).
 
-    Objects are lifted capture by capture and matched in batches of about ``batch_objects`` (one pose
-    search call costs a fixed overhead, so single-frame captures are matched several at a time).
+    Captures go in groups of ``CAPTURES_PER_ITEM`` (fixed, so records do not depend on the number of
+    workers); ``executor`` (``protomine.scale.executor``; None = this process) labels the groups in its
+    worker processes, each building the matcher once.  Within a group, objects are lifted capture by
+    capture and matched in batches of about ``batch_objects`` (one pose search call costs a fixed
+    overhead, so single-frame captures are matched several at a time).
     stats: optional dict filled with ``objects``, ``frames``, ``lift_s``, ``match_s`` (seconds spent lifting
-    and matching, without reading images or finding objects), ``objects_per_second`` for those two and
-    ``scores`` (n_records, K): every record's score against every prototype.
+    and matching, summed over workers, without reading images or finding objects), ``objects_per_second``
+    for those two (per worker), ``seconds`` (wall clock of the whole call), ``workers`` and ``scores``
+    (n_records, K): every record's score against every prototype.
     """
     unique_capture_names(capture_paths)
+    t0 = time.perf_counter()
     matcher = make_matcher(library, cfg, weighted=weighted)
+    groups = [[str(p) for p in capture_paths[i:i + CAPTURES_PER_ITEM]]
+              for i in range(0, len(capture_paths), CAPTURES_PER_ITEM)]
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
-    pending: list[tuple[str, FrameObjects]] = []
-    caps = [read_capture(p, check_images=False) for p in capture_paths]
-    with bar(progress, "label", total=sum(len(c.frames) for c in caps), unit="frames") as b:
-        for cap in caps:
-            pending += _lift_capture(matcher, cap, cfg, seed, use_masks, progress, st, b)
-            if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
-                out += _match_batch(matcher, pending, st)
-                pending = []
-        out += _match_batch(matcher, pending, st)
+    scores: list[np.ndarray] = []
+
+    n_workers = 1 if executor is None else min(executor.n_workers, len(groups))
+    total = sum(len(read_capture(p, check_images=False).frames) for p in capture_paths)
+    with bar(progress, "label", total=total, unit="frames") as b:
+
+        def add(res: tuple[list[dict], dict], advance: bool) -> None:
+            out.extend(res[0])
+            for k in st:
+                st[k] += res[1][k]
+            scores.extend(res[1].get("scores", []))
+            if advance:  # a worker's group: its frames at once
+                b.advance(res[1]["frames"])
+
+        if n_workers <= 1:
+            for g in groups:
+                add(_label_group(matcher, g, cfg, seed, use_masks, batch_objects, progress, b), False)
+        else:
+            detail(progress, f"{len(capture_paths)} captures on {executor.describe()}")
+            token = f"{id(matcher):x}-{time.time_ns():x}"
+            executor.map(_label_item, groups, shared=(token, library, cfg, weighted, seed, use_masks, batch_objects),
+                         fold=lambda _, res: add(res, True))
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
+    st["seconds"] = time.perf_counter() - t0
+    st["workers"] = n_workers
     # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
-    st["scores"] = np.concatenate(st.get("scores") or [np.zeros((0, matcher.K))])
+    st["scores"] = np.concatenate(scores or [np.zeros((0, matcher.K))])
     if stats is not None:
         stats.update(st)
     return out
+
+
+def _label_item(shared: tuple, paths: list[str]) -> tuple[list[dict], dict]:
+    """Executor item: one group of captures labelled in a worker process (matcher built once per run)."""
+    token, library, cfg, weighted, seed, use_masks, batch_objects = shared
+    if token not in _WORKER_MATCHER:
+        _WORKER_MATCHER.clear()
+        _WORKER_MATCHER[token] = make_matcher(library, cfg, weighted=weighted)
+    return _label_group(_WORKER_MATCHER[token], paths, cfg, seed, use_masks, batch_objects, None,
+                        Bar(None, "label", 0, "frames"))
+
+
+def _label_group(matcher: Matcher, paths: list[str], cfg: dict, seed: int, use_masks: bool, batch_objects: int,
+                 progress: Callable[[str], None] | None, b: Bar) -> tuple[list[dict], dict]:
+    """Records of a group of captures and their stats (objects, frames, lift_s, match_s); ``b`` advances
+    by one per frame."""
+    st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
+    out: list[dict] = []
+    pending: list[tuple[str, FrameObjects]] = []
+    for path in paths:
+        pending += _lift_capture(matcher, read_capture(path, check_images=False), cfg, seed, use_masks, progress, st, b)
+        if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
+            out += _match_batch(matcher, pending, st)
+            pending = []
+    out += _match_batch(matcher, pending, st)
+    return out, st
 
 
 def _lift_capture(matcher: Matcher, cap: Capture, cfg: dict, seed: int, use_masks: bool,

@@ -5,7 +5,7 @@ P (K, C, R, A, H), V (K, R, A, H)).
 
 Map (a worker, per chunk of objects [i0, i1) or per explicit index list)
     The worker opens the source itself (:class:`StoreSpec`: the object store on a shared file system;
-    :class:`NpySpec`: two ``.npy`` files), so volumes never cross the network.  It transforms the chunk
+    :class:`NpySpec`: two ``.npy`` files read by :class:`NpyFileSource`), so volumes never cross the network.  It transforms the chunk
     (object spectra, kept in a per-process cache of ``cache_mb`` for the next passes; item i goes to worker
     i mod n, so the same worker sees the same chunk every pass), finds the best pose per (object,
     prototype) against the broadcast prototypes, and sums the chunk's members aligned into their
@@ -73,13 +73,73 @@ class StoreSpec:
 
 @dataclass(frozen=True)
 class NpySpec:
-    """Features in two ``.npy`` files: X (N, C, R, A, H), W (N, R, A, H) float32 (memory-mapped)."""
+    """Features in two ``.npy`` files: X (N, C, R, A, H), W (N, R, A, H) float32, read chunk by chunk."""
 
     x_path: str
     w_path: str
 
-    def open(self):
-        return ArraySource(np.load(self.x_path, mmap_mode="r"), np.load(self.w_path, mmap_mode="r"))
+    def open(self) -> "NpyFileSource":
+        return NpyFileSource(self.x_path, self.w_path)
+
+
+class NpyFileSource:
+    """A source over two ``.npy`` files read from disk chunk by chunk (plain file reads, no memory map, so
+    a pass over more objects than fit in memory holds one chunk at a time, not the file's pages).
+
+    ``indices`` (sorted) restricts it to those rows (mini-batches): ``read`` then reads just those rows.
+    """
+
+    def __init__(self, x_path: str, w_path: str, indices: np.ndarray | None = None):
+        self.x_path, self.w_path = str(x_path), str(w_path)
+        self._x = _npy_layout(self.x_path)
+        self._w = _npy_layout(self.w_path)
+        if self._x[1][0] != self._w[1][0]:
+            raise ValueError(f"X has {self._x[1][0]} rows but W has {self._w[1][0]}")
+        self.indices = None if indices is None else np.asarray(indices, np.int64)
+
+    def __len__(self) -> int:
+        return self._x[1][0] if self.indices is None else len(self.indices)
+
+    def read(self, i0: int, i1: int) -> tuple[np.ndarray, np.ndarray]:
+        if self.indices is None:
+            return _npy_rows(self.x_path, self._x, i0, i1), _npy_rows(self.w_path, self._w, i0, i1)
+        return self.gather(np.arange(i0, i1))
+
+    def gather(self, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Rows at sorted ``idx`` (of this source), read run by run of consecutive rows."""
+        rows = np.asarray(idx, np.int64) if self.indices is None else self.indices[np.asarray(idx, np.int64)]
+        x = np.empty((len(rows),) + self._x[1][1:], np.float32)
+        w = np.empty((len(rows),) + self._w[1][1:], np.float32)
+        cuts = np.flatnonzero(np.diff(rows) != 1) + 1
+        for r0, r1 in zip(np.r_[0, cuts], np.r_[cuts, len(rows)]):
+            a, b = int(rows[r0]), int(rows[r1 - 1]) + 1
+            x[r0:r1] = _npy_rows(self.x_path, self._x, a, b)
+            w[r0:r1] = _npy_rows(self.w_path, self._w, a, b)
+        return x, w
+
+    def subset(self, idx: np.ndarray) -> "NpyFileSource":
+        idx = np.sort(np.asarray(idx, np.int64))
+        return NpyFileSource(self.x_path, self.w_path, idx if self.indices is None else self.indices[idx])
+
+
+def _npy_layout(path: str) -> tuple[int, tuple[int, ...]]:
+    """(data offset in bytes, shape) of a C-ordered float32 ``.npy`` file."""
+    with open(path, "rb") as f:
+        major, _ = np.lib.format.read_magic(f)
+        read_header = np.lib.format.read_array_header_1_0 if major == 1 else np.lib.format.read_array_header_2_0
+        shape, fortran, dtype = read_header(f)
+        if fortran or dtype != np.float32:
+            raise ValueError(f"{path}: expected a C-ordered float32 array, got fortran={fortran}, dtype={dtype}")
+        return f.tell(), tuple(shape)
+
+
+def _npy_rows(path: str, layout: tuple[int, tuple[int, ...]], i0: int, i1: int) -> np.ndarray:
+    """Rows i0..i1-1 of the ``.npy`` file, read from disk."""
+    offset, shape = layout
+    row = int(np.prod(shape[1:]))
+    n = max(0, min(i1, shape[0]) - i0)
+    a = np.fromfile(path, dtype=np.float32, count=n * row, offset=offset + 4 * i0 * row)
+    return a.reshape((n,) + shape[1:])
 
 
 def _open(spec) -> object:
@@ -93,10 +153,10 @@ def _read(src, i0: int, i1: int, idx: np.ndarray | None) -> tuple[np.ndarray, np
     """Objects i0..i1-1 of the source, or the objects at sorted ``idx``."""
     if idx is None:
         x, w = src.read(i0, i1)
-        if isinstance(src, ArraySource):  # a read-only memory map: copy the chunk (torch wants writable arrays)
-            x, w = np.array(x), np.array(w)
     elif isinstance(src, ArraySource):
         x, w = src.X[idx], src.W[idx]
+    elif isinstance(src, NpyFileSource):
+        x, w = src.gather(idx)
     else:  # a StoreSource: read just those rows
         x, w = type(src)(src.store, src.cfg, src.indices[idx]).read(0, len(idx))
     return np.asarray(x, np.float32), np.asarray(w, np.float32)
@@ -117,13 +177,13 @@ class _Part:
 
 def _chunk_pass(shared: tuple, item: tuple) -> _Part:
     """Worker: one chunk of one assignment pass (module docstring)."""
-    spec, P, V, scales, accumulate, moments, chunk_size, cache_bytes = shared
+    spec, bank, shape, accumulate, moments, chunk_size, cache_bytes = shared
     i0, i1, idx, forced, window = item
     t0 = time.perf_counter()
     src = _open(spec)
-    K, C, R, A, H = P.shape
+    K, C, R, A, H = shape
+    scales = bank.scales
     S = len(scales)
-    bank = PoseBank(P, V, scales)
     cache = None
     if idx is None and cache_bytes > 0:
         key = (spec, A, chunk_size)
@@ -152,10 +212,10 @@ def _chunk_pass(shared: tuple, item: tuple) -> _Part:
 
 def _chunk_match(shared: tuple, item: tuple) -> PoseMatch:
     """Worker: best pose of one chunk against every prototype, (n, K) arrays."""
-    spec, P, V, scales = shared
+    spec, bank = shared
     i0, i1 = item
     x, w = _read(_open(spec), i0, i1, None)
-    return PoseBank(P, V, scales).match(x, w)
+    return bank.match(x, w)
 
 
 @dataclass
@@ -239,7 +299,10 @@ class ExecutorSource:
         """The engine's ``_assign_pass`` (same arguments and results) as a map-reduce over chunks."""
         from .engine import _pass_outputs
         cs = self.chunk_size or chunk_size
-        shared = (self.spec, np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales), accumulate,
+        # the pose bank (scaled prototypes' spectra) is built once here and sent with the pass: building it
+        # on every worker (or for every chunk) costs as much as searching tens of objects
+        bank = PoseBank(np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales))
+        shared = (self.spec, bank, P.shape, accumulate,
                   moments, cs, int(self.cache_mb * 2**20))
         red = self.executor.map(_chunk_pass, self._items(chunk_size, forced, scale_index), shared=shared,
                                 fold=_fold_parts)
@@ -257,7 +320,7 @@ def match_all(model, source) -> PoseMatch:
     ``source`` is an :class:`ExecutorSource`; yaw in each prototype's canonical frame, modulo its symmetry."""
     if not isinstance(source, ExecutorSource) or source.indices is not None:
         return model.match(source)
-    shared = (source.spec, model.prototypes_, model.prototype_weights_, tuple(model.scales_))
+    shared = (source.spec, PoseBank(model.prototypes_, model.prototype_weights_, tuple(model.scales_)))
     items = [(i0, i1) for i0, i1, *_ in source._items(model.chunk_size)]
     parts = source.executor.map(_chunk_match, items, shared=shared)
     D = np.concatenate([p.D for p in parts])

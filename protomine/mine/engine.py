@@ -63,6 +63,7 @@ from typing import Protocol, Sequence
 import numpy as np
 import torch
 
+from .. import cores
 from .. import rotations as rot
 from . import faces
 from ..progress import Bar, bar
@@ -73,6 +74,12 @@ from .seeding import SEED_SIZE, PoseSeeder
 from .tilts import TiltBank, TiltGrid, make_bank
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
+
+
+def use_cores() -> None:
+    """Torch intra-op threads for the passes, set once per fit (:mod:`protomine.cores` policy): every usable
+    core when this process works alone, one in an executor's worker process (never both)."""
+    cores.set_torch_threads(cores.threads_for_this_process())
 
 
 class Source(Protocol):
@@ -578,6 +585,7 @@ class PoseKMeans:
     def fit(self, source: Source) -> PoseKMeans:
         """Fit prototypes to every object of ``source``; returns self."""
         scales = self._validate(source)
+        use_cores()
         rng = np.random.default_rng(self.random_state)
         N, K = len(source), self.n_clusters
         if self.init is not None:

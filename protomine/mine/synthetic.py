@@ -13,6 +13,7 @@ from scipy import ndimage
 from .posesearch import _resample_axis, shift_volume
 
 GRID = (5, 8, 36, 12)  # C, R, A, H
+SCALES = (0.87, 0.93, 1.0, 1.07, 1.15)  # configs/default.toml mine.scales
 
 
 def synthetic_prototypes(rng: np.random.Generator, k: int, grid: tuple[int, int, int, int] = GRID) -> np.ndarray:

@@ -21,7 +21,7 @@ from .tilts import TiltBank, TiltGrid
 
 
 def bench_tilts(quick: bool, seed: int) -> dict:
-    from ..bench import SCALES, synthetic_objects, synthetic_prototypes
+    from .synthetic import SCALES, synthetic_objects, synthetic_prototypes
     rng = np.random.default_rng(seed)
     K, n = (8, 256) if quick else (16, 1024)
     P = synthetic_prototypes(rng, K)

@@ -1,18 +1,26 @@
-"""``protomine bench --scale``: mining-pass throughput in this process vs a 2-worker Dask LocalCluster on this
-machine, and a projection to a large cluster from the measured figures.
+"""``protomine bench --scale``: mining-pass throughput in this process vs a local Dask cluster of 1 and 2 workers
+on this machine, and a projection to a large cluster from the measured figures.
 
-Data (demo data, invented): the bench's synthetic volumes (``protomine.mine.synthetic.synthetic_objects``: K random
-smooth prototypes, objects rolled, scaled, noisy, partly observed) on the default grid, written to two
-``.npy`` files that the workers memory-map (as they would open a store on a shared file system).
+Data (demo data, invented): the bench's synthetic volumes (:mod:`protomine.mine.synthetic`: K random smooth
+prototypes, objects rolled, scaled, noisy, partly observed) on the default grid, written to two ``.npy``
+files that the workers read chunk by chunk (:class:`protomine.mine.distributed.NpyFileSource`, as they
+would read a store on a shared file system).
 
 What is timed: one full assignment-and-accumulation pass (the unit of a Lloyd iteration) against K fixed
 prototypes with the default five scales, without the spectra cache (every pass reads and transforms its
 objects, as when the objects do not fit the workers' caches):
 
-- ``local_s``: ``engine._assign_pass`` in this process (torch's default threads);
-- ``cluster_s``: the same pass through :class:`protomine.mine.distributed.ExecutorSource` on
-  ``LocalCluster(n_workers=2, threads_per_worker=1)`` bound to 127.0.0.1, median of a few passes after a
-  warm-up; ``speedup`` = local_s / cluster_s, and the results are checked equal (same labels).
+- ``local_1thread_s``, ``local_s``: ``engine._assign_pass`` in this process with 1 torch thread (one
+  core: what a worker has) and with every usable core;
+- ``cluster_1worker_s``, ``cluster_s``: the same pass through :class:`protomine.mine.distributed.ExecutorSource`
+  on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1, then 2 workers, median of 3
+  passes after a warm-up; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores), ``speedup`` = local_s /
+  cluster_s, and the results are checked equal (same labels);
+- ``worker_s_per_object``: the workers' own chunk times / N (read, transform, search, sums), against
+  ``local_1thread_s_per_object`` (``ratio_worker_local_per_object``, target <= 1.2).
+
+Each worker process runs torch with one thread (:mod:`protomine.cores`); it builds the pose bank (the
+scaled prototypes' spectra) once per pass, not once per chunk.
 
 Projection model (one pass, N objects, W workers, chunks of c objects, n = ceil(N / c) chunks)::
 
@@ -33,6 +41,7 @@ Memory per worker: one chunk's volumes and spectra (``chunk_mb``) plus its sums,
 from __future__ import annotations
 
 import math
+import os
 import resource
 import statistics
 import sys
@@ -58,50 +67,56 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
     """Measured local vs 2-worker LocalCluster pass times and the projection (module docstring)."""
     from distributed import Client, LocalCluster
 
-    from ..mine.synthetic import synthetic_objects, synthetic_prototypes
+    from .. import cores
     from ..config import load_config
     from ..mine.distributed import ExecutorSource, NpySpec
     from ..mine.engine import ArraySource, _assign_pass
     from .executor import DaskExecutor
+    from .streamed import write_synthetic
 
-    rng = np.random.default_rng(seed)
     n, K, chunk = (768, 8, 128) if quick else (3072, 16, 256)
     scales = tuple(load_config(None)["mine"]["scales"])
-    P = synthetic_prototypes(rng, K)
-    V = np.ones((K,) + P.shape[2:], np.float32)
+    load0 = os.getloadavg()[0]
     with tempfile.TemporaryDirectory(prefix="protomine-scale-") as tmp:
-        xp, wp = Path(tmp) / "X.npy", Path(tmp) / "W.npy"
-        X = np.lib.format.open_memmap(xp, mode="w+", dtype=np.float32, shape=(n,) + P.shape[1:])
-        W = np.lib.format.open_memmap(wp, mode="w+", dtype=np.float32, shape=(n,) + P.shape[2:])
-        for i in range(0, n, 512):
-            X[i:i + 512], W[i:i + 512] = synthetic_objects(rng, P, min(512, n - i))[:2]
-        X.flush(); W.flush()
-        del X, W
+        (xp, wp, _), P = write_synthetic(Path(tmp), n, K, seed)
+        V = np.ones((K,) + P.shape[2:], np.float32)
         spec = NpySpec(str(xp), str(wp))
         src = spec.open()
-        _assign_pass(ArraySource(src.X[:chunk], src.W[:chunk]), P, V, scales, chunk, True, 0)  # warm-up
-        local = []
-        for _ in range(2):
-            t0 = time.perf_counter()
-            ref = _assign_pass(src, P, V, scales, chunk, True, 0)
-            local.append(time.perf_counter() - t0)
-        local_s = min(local)
-        print(f"[bench] local pass over {n} objects: {local_s:.2f} s", file=sys.stderr, flush=True)
-        cluster = LocalCluster(n_workers=2, processes=True, threads_per_worker=1, host="127.0.0.1",
+        _assign_pass(ArraySource(*src.read(0, chunk)), P, V, scales, chunk, True, 0)  # warm-up
+        local = {}
+        for threads in (1, cores.usable_cores()):  # one core (a worker's share), then every core
+            cores.set_torch_threads(threads)
+            times = []
+            for _ in range(2):
+                t0 = time.perf_counter()
+                ref = _assign_pass(src, P, V, scales, chunk, True, 0)
+                times.append(time.perf_counter() - t0)
+            local[threads] = min(times)
+            print(f"[bench] local pass over {n} objects, {threads} thread(s): {local[threads]:.2f} s",
+                  file=sys.stderr, flush=True)
+        local_1t, local_s = local[1], local[cores.usable_cores()]
+        cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
                                dashboard_address=None)
         client = Client(cluster, set_as_default=False)
+        runs = {}
         try:
-            ex = DaskExecutor(client=client, min_workers=2)
-            dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
-            dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
-            walls, busy, folds = [], [], []
-            for _ in range(3):
-                t0 = time.perf_counter()
-                got = dsrc.assign_pass(P, V, scales, chunk, True, 0)
-                walls.append(time.perf_counter() - t0)
-                secs = np.array(dsrc.last_seconds)
-                # item i ran on worker i mod 2 (preferred); the busier worker bounds the wall time
-                busy.append((secs.sum(), max(secs[0::2].sum(), secs[1::2].sum())))
+            for n_workers in (1, 2):
+                if n_workers > 1:
+                    cluster.scale(n_workers)
+                ex = DaskExecutor(client=client, min_workers=n_workers)
+                dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
+                dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
+                walls, busy = [], []
+                for _ in range(3):
+                    t0 = time.perf_counter()
+                    got = dsrc.assign_pass(P, V, scales, chunk, True, 0)
+                    walls.append(time.perf_counter() - t0)
+                    secs = np.array(dsrc.last_seconds)
+                    # item i ran on worker i mod n (preferred); the busiest worker bounds the wall time
+                    busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers))))
+                k = int(np.argsort(walls)[len(walls) // 2])
+                runs[n_workers] = (statistics.median(walls), *busy[k])
+                print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
             same = bool(np.array_equal(got[0], ref[0]))
             max_rel = float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12))
             worker_rss = client.run(_rss_mb)
@@ -117,9 +132,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         for _ in range(n_chunks):
             acc += part
         fold_s = (time.perf_counter() - t0) / n_chunks
-    cluster_s = statistics.median(walls)
-    k = int(np.argsort(walls)[len(walls) // 2])
-    worker_total, worker_max = busy[k]
+    cluster_s, worker_total, worker_max = runs[2]
     t_obj = worker_total / n
     t_task = max(0.0, (cluster_s - worker_max) / (n_chunks / 2))
     b_part = part.nbytes + 16 * chunk
@@ -135,12 +148,16 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
     chunk_mb = proj_chunk * ((C + 1) * R * A * H * 4 + 2 * (A // 2 + 1) * (C + 2) * R * H * 4) / 2**20
     return {
         "n_objects": n, "n_prototypes": K, "n_scales": len(scales), "chunk_size": chunk, "n_chunks": n_chunks,
-        "local_s": local_s, "cluster_workers": 2, "cluster_s": cluster_s, "speedup": local_s / cluster_s,
+        "local_s": local_s, "local_threads": cores.usable_cores(), "local_1thread_s": local_1t,
+        "cluster_1worker_s": runs[1][0], "cluster_workers": 2, "cluster_s": cluster_s,
+        "speedup_2_vs_1_worker": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
+        "worker_s_per_object": t_obj, "local_1thread_s_per_object": local_1t / n,
+        "ratio_worker_local_per_object": t_obj / (local_1t / n),
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
         "cluster_equal_labels": same, "cluster_max_rel_sum_diff": max_rel,
         "worker_rss_mb_after": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),
         "t_obj_s": t_obj, "t_task_s": t_task, "t_fold_s": fold_s, "b_part_bytes": int(b_part),
-        "bandwidth_Bps": BANDWIDTH_BPS,
+        "bandwidth_Bps": BANDWIDTH_BPS, "load_1m_start": load0, "load_1m": os.getloadavg()[0],
         "projection": [{"objects": N, "workers": Wk, "chunk_size": proj_chunk, "chunks": nc, **terms,
                         "pass_s": t_pass, "mine_30_passes_min": 31 * t_pass / 60.0,
                         "worker_chunk_mb": chunk_mb}],

@@ -17,10 +17,13 @@ Executors
 - :class:`InlineExecutor`: this process, items in order (the default; no start-up cost).
 - :class:`PoolExecutor`: ``workers`` processes of this machine (``concurrent.futures``, spawn start method,
   because forking a process whose torch thread pool is running can deadlock).
+
+In a worker process (pool or Dask) an item runs with one torch thread (:func:`protomine.cores.enter_worker`):
+parallelism comes from the workers, never from threads inside them as well.
 - :class:`DaskExecutor`: a ``dask.distributed`` cluster, by scheduler address or an existing ``Client``.
 
-``make_executor(cfg, scheduler=None, workers=None)`` picks one from the ``[scale]`` config and the
-``--scheduler`` / ``--workers`` flags (flags win).
+``make_executor(cfg, scheduler=None, workers=None, processes=False)`` picks one from the ``[scale]``
+config and the ``--scheduler`` / ``--workers`` flags (flags win).
 """
 from __future__ import annotations
 
@@ -29,6 +32,7 @@ import multiprocessing
 from dataclasses import dataclass
 from typing import Any, Callable, Iterable, Iterator, Sequence
 
+from .. import cores
 from ..errors import InputError
 
 
@@ -46,6 +50,16 @@ def _call(fn: Callable, shared: Any, item: Any) -> Any:
         return fn(shared, item)
     except InputError as e:
         return _Failed(e.path, e.field, e.message)
+
+
+def _call_in_worker(fn: Callable, shared: Any, item: Any) -> Any:
+    """:func:`_call` in a worker process: one torch thread there (:mod:`protomine.cores` policy).
+
+    A cluster that runs its workers as threads of the caller (no parent process) keeps its threads.
+    """
+    if multiprocessing.parent_process() is not None:
+        cores.enter_worker()
+    return _call(fn, shared, item)
 
 
 def _check(r: Any) -> Any:
@@ -92,7 +106,7 @@ class PoolExecutor:
         self._pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
 
     def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
-        futs = [self._pool.submit(_call, fn, shared, it) for it in items]
+        futs = [self._pool.submit(_call_in_worker, fn, shared, it) for it in items]
         return _collect(_in_order(futs, lambda f: f.result()), fold)  # submission order, not completion order
 
     def close(self) -> None:
@@ -140,7 +154,7 @@ class DaskExecutor:
     def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
         workers = self.workers
         shared_f = self.client.scatter([shared], broadcast=True, hash=False)[0]
-        futs = [self.client.submit(_call, fn, shared_f, it, workers=[workers[i % len(workers)]],
+        futs = [self.client.submit(_call_in_worker, fn, shared_f, it, workers=[workers[i % len(workers)]],
                                    allow_other_workers=True, pure=False) for i, it in enumerate(items)]
         try:
             # taken in submission order; a result is released on the worker once fetched
@@ -167,19 +181,29 @@ def _in_order(futs: list, get: Callable) -> Iterator:
         futs[i] = None
 
 
-def make_executor(cfg: dict, scheduler: str | None = None, workers: int | None = None) -> Executor:
+def make_executor(cfg: dict, scheduler: str | None = None, workers: int | str | None = None, *,
+                  processes: bool = False, items: int | None = None) -> Executor:
     """The executor named by ``[scale]`` scheduler/workers, overridden by the CLI flags when given.
 
     No scheduler and one worker: :class:`InlineExecutor`; no scheduler and N > 1 workers:
-    :class:`PoolExecutor`; a scheduler: :class:`DaskExecutor` that waits for ``workers`` to join.
+    :class:`PoolExecutor` (at most ``items`` processes); a scheduler: :class:`DaskExecutor` that waits
+    for ``workers`` to join.  Workers ``"auto"`` (config: 0) are the usable cores as processes when
+    ``processes`` (work made of independent items: captures), else this process, whose torch threads then
+    use the cores (:mod:`protomine.cores`).
     """
     s = cfg.get("scale", {})
     scheduler = scheduler if scheduler is not None else s.get("scheduler", "")
-    workers = workers if workers is not None else int(s.get("workers", 1))
-    if workers < 1:
-        raise InputError(None, "--workers", f"expected a positive number of workers, got {workers}")
+    workers = workers if workers is not None else s.get("workers", 0)
+    auto = workers in ("auto", 0)
+    try:
+        n = cores.resolve_workers(workers)
+    except ValueError:
+        raise InputError(None, "--workers", f"expected a positive number of workers or 'auto', got {workers!r}") from None
     if scheduler:
         if "://" not in scheduler and ":" not in scheduler:
             raise InputError(None, "--scheduler", f"expected a scheduler address such as tcp://10.0.0.5:8786, got {scheduler!r}")
-        return DaskExecutor(scheduler, min_workers=workers)
-    return PoolExecutor(workers) if workers > 1 else InlineExecutor()
+        return DaskExecutor(scheduler, min_workers=1 if auto else n)
+    if auto and not processes:
+        return InlineExecutor()
+    n = min(n, items) if items is not None else n
+    return PoolExecutor(n) if n > 1 else InlineExecutor()

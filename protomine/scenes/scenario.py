@@ -26,6 +26,7 @@ the face's normal to down).
 """
 from __future__ import annotations
 
+import copy
 import csv
 import io
 import json
@@ -65,7 +66,7 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
                       width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
                       single_classes: list[str] | None = None, family: str = "tools",
                       tumbled_fraction: float = 0.0, touching: bool = False, stereo_fraction: float = 0.0,
-                      progress: Callable[[str], None] | None = None) -> dict:
+                      progress: Callable[[str], None] | None = None, executor=None) -> dict:
     """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
 
     family: the item-class family (items.toml ``family``) the default class lists come from.
@@ -76,6 +77,8 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     stereo_fraction: share of the mining and of the single-frame captures (evenly spread) whose depth comes
     from the active-stereo model (``noise.stereo_depth``) instead of the gaussian one; the scenes, poses and
     RGB are the same for either model at one seed, only the depth differs.
+    executor (``protomine.scale.executor``; None = this process) renders the captures in its worker
+    processes; the layouts are drawn here, in capture order, so the scenario does not depend on it.
     """
     if n_mining < 1 or n_single < 0 or frames < 1:
         raise InputError(None, "captures/single/frames", f"expected captures >= 1, single >= 0, frames >= 1, got {n_mining}, {n_single}, {frames}")
@@ -94,7 +97,7 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     mining = _pick(by_name, classes, [c.name for c in own if not c.held_out], "classes")
     single = _pick(by_name, single_classes, [c.name for c in own], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
-                     float(tumbled_fraction), progress, touching, float(stereo_fraction))
+                     float(tumbled_fraction), progress, touching, float(stereo_fraction), executor)
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
@@ -108,7 +111,7 @@ def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[
 def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
               mining: list[ItemClass], single: list[ItemClass], tumbled_fraction: float,
               progress: Callable[[str], None] | None, touching: bool = False,
-              stereo_fraction: float = 0.0) -> dict:
+              stereo_fraction: float = 0.0, executor=None) -> dict:
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     clean_stale_temporaries(out)
@@ -119,20 +122,34 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     # the i-th capture of a split is stereo when the running count floor(i f) steps up: evenly spread
     depth_model = {name: "stereo" if np.floor((i + 1) * stereo_fraction) > np.floor(i * stereo_fraction) else "gaussian"
                    for split in ("mining", "single") for i, name in enumerate(p[0] for p in plan if p[1] == split)}
-    rows: list[dict] = []
     used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
-    render_s, n_frames = 0.0, 0
+    # each capture's layout depends on the class counts of the captures before it: draw the layouts here,
+    # in order, and hand each capture its generator and counts as they were before its layout, so that a
+    # worker redraws the same layout and renders it
+    items = []
+    for name, split, pool, n_frames_cap in plan:
+        cap_rng = rng.spawn(1)[0]
+        items.append((str(out / name), split, [c.name for c in pool], n_frames_cap, K, copy.deepcopy(cap_rng),
+                      dict(used[split]), tumbled_fraction, touching, depth_model[name] == "stereo"))
+        _layout(pool, cap_rng, used[split], tumbled_fraction)
+    rows: list[dict] = []
+    timing = {"render_s": 0.0, "frames": 0}
     with bar(progress, "render", total=sum(p[3] for p in plan), unit="frames") as b:
-        for name, split, pool, n_frames_cap in plan:
-            cap_rng = rng.spawn(1)[0]
-            t1 = time.monotonic()
-            cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split],
-                                        tumbled_fraction, touching, depth_model[name] == "stereo")
-            rows += cap_rows
-            render_s += dt
-            n_frames += n_frames_cap
+
+        def add(res: tuple[list[dict], float, str, int, float]) -> None:
+            cap_rows, dt, name, n_frames_cap, wall = res
+            rows.extend(cap_rows)
+            timing["render_s"] += dt
+            timing["frames"] += n_frames_cap
             b.advance(n_frames_cap)
-            detail(progress, f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {time.monotonic() - t1:.2f}s")
+            detail(progress, f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {wall:.2f}s")
+
+        if executor is None:
+            for it in items:
+                add(_capture_item(None, it))
+        else:
+            executor.map(_capture_item, items, fold=lambda _, res: add(res))
+    render_s, n_frames = timing["render_s"], timing["frames"]
     _write_truth(out, rows)
     held = sorted({c.name for c in single} - {c.name for c in mining})
     doc = {
@@ -279,6 +296,16 @@ def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int
                 used[p.inst.item.name] = used.get(p.inst.item.name, 0) + 1
             return posed, pos
     raise RuntimeError("could not place 5 objects without overlap; item sizes too large for the table disc")
+
+
+def _capture_item(shared: None, item: tuple) -> tuple[list[dict], float, str, int, float]:
+    """One capture (an executor item): its truth rows, render seconds, name, frames and wall seconds."""
+    folder, split, names, n_frames, K, rng, used, tumbled_fraction, touching, stereo = item
+    t1 = time.monotonic()
+    by_name = {c.name: c for c in load_item_classes()}
+    rows, dt = _one_capture(Path(folder), split, [by_name[n] for n in names], n_frames, K, rng, used,
+                            tumbled_fraction, touching, stereo)
+    return rows, dt, Path(folder).name, n_frames, time.monotonic() - t1
 
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
