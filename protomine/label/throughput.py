@@ -29,7 +29,8 @@ def synthetic_library(rng: np.random.Generator, k: int, grid: tuple[int, int, in
     protos = {"features": P.astype(np.float32), "weights": np.full((k, R, A, H), 0.8, np.float32),
               "symmetry": np.ones(k, np.int64), "period_deg": np.full(k, 360.0), "count": np.full(k, 10),
               "size_median": np.full((k, 2), 0.05), "single_mu": np.full(k, -4.0), "single_sigma": np.full(k, 0.3),
-              "name": [""] * k}
+              "aspect": np.ones(k), "face_up": np.tile([[[0.0, 0.0, 1.0]]], (k, 1, 1)),
+              "face_count": np.full((k, 1), 10), "face_symmetry": np.ones((k, 1), np.int64), "name": [""] * k}
     import json
     return Library(protos, {}, {"config": json.dumps(cfg), "grid": np.array(grid), "scales": json.dumps(cfg["mine"]["scales"]),
                                 "unknown_cut": 0.0})          # speed only: no view is called unknown
