@@ -258,3 +258,39 @@ def _tape_dispenser(size: float, p: dict, rng: np.random.Generator) -> Shape:
                       (-size / 2 + rr, 0.0, hb + rr * 0.55))
     cutter = S.box((size * 0.08, w * 0.35, hb * 0.6), (size / 2 - size * 0.08, 0.0, hb * 1.2))
     return S.union(base, roll, hub, cutter)
+
+
+# --- the "angles" family: classes that differ only in the relative angles of their parts ----------------
+
+def _pegged_post(size: float, p: dict, azimuths_deg: tuple[float, float, float]) -> Shape:
+    """A post on a thin base disc with three equal pegs at 30/55/80% of the height, pointing at the given
+    azimuths (the lowest along +x).  Every height layer holds one peg, so the magnitudes of each layer's
+    azimuthal spectrum (a yaw-invariant descriptor) are the same whichever way the pegs point."""
+    rd, td = size * p["disc_radius"], size * 0.04
+    rp = size * 0.06
+    lp, rr = size * p["peg_length"], size * p["peg_radius"]
+    parts = [S.cylinder(rd, td), S.cylinder(rp, size)]
+    for h, a in zip((0.30, 0.55, 0.80), azimuths_deg):
+        c, s = math.cos(math.radians(a)), math.sin(math.radians(a))
+        parts.append(S.capsule((c * rp * 0.5, s * rp * 0.5, h * size), (c * (rp + lp), s * (rp + lp), h * size), rr))
+    return S.union(*parts)
+
+
+@builder("peg_helix_right")
+def _peg_helix_right(size: float, p: dict, rng: np.random.Generator) -> Shape:
+    return _pegged_post(size, p, (0.0, 120.0, 240.0))
+
+
+@builder("peg_helix_left")
+def _peg_helix_left(size: float, p: dict, rng: np.random.Generator) -> Shape:
+    return _pegged_post(size, p, (0.0, -120.0, -240.0))          # the mirror image of peg_helix_right
+
+
+@builder("peg_fan_right")
+def _peg_fan_right(size: float, p: dict, rng: np.random.Generator) -> Shape:
+    return _pegged_post(size, p, (0.0, 60.0, 180.0))
+
+
+@builder("peg_fan_left")
+def _peg_fan_left(size: float, p: dict, rng: np.random.Generator) -> Shape:
+    return _pegged_post(size, p, (0.0, -60.0, -180.0))           # the mirror image of peg_fan_right

@@ -22,6 +22,7 @@ CONFIG_DIR = Path(str(resources.files("protomine") / "configs"))
 
 # (min, max) inclusive bounds for numeric keys; lists are checked element-wise.
 BOUNDS: dict[str, tuple[float, float]] = {
+    "scenes.stereo_fraction": (0.0, 1.0),
     "ingest.plane_inlier_m": (1e-4, 0.1),
     "ingest.plane_confidence": (0.5, 0.999999),
     "ingest.plane_min_inlier_frac": (0.01, 1.0),

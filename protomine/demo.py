@@ -84,6 +84,14 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
                f"unknown AUROC {ev['auroc']:.3f}, flagged: {ev['unknown_flagged']:.0%} of unknown, "
                f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
                f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")
+    depth_model = json.loads((scenes / "scenario.json").read_text()).get("depth_model", {})
+    models = sorted({depth_model.get(c.name, "gaussian") for c in singles})
+    for model in models if len(models) > 1 else []:
+        sub = [r for r in recs if depth_model.get(r["capture"], "gaussian") == model]
+        e = evaluate_labels(sub, scenes / "truth_full.csv", lib, scenes / "truth_full.csv")
+        typer.echo(f"       {model} depth ({len({r['capture'] for r in sub})} views): accuracy {e['accuracy']:.3f}, "
+                   f"unknown AUROC {e['auroc']:.3f}, flagged {e['unknown_flagged']:.0%} of unknown, "
+                   f"{e['known_flagged']:.0%} of known")
     # one-shot: the user scans new items; one example of a class mining never saw finds the others
     scans = out / "new_scans.h5"
     if scans.exists():
@@ -138,12 +146,14 @@ def demo(
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     scenes = out / "scenes"
+    stereo = float(cfg["scenes"]["stereo_fraction"])
     params = {"captures": captures, "single": single, "frames": frames, "seed": seed, "size": list(size), **cfg["scenes"]}
     if rerender or not _scenario_matches(scenes, params):
-        say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures")
+        say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures "
+            f"({stereo:.0%} with active-stereo depth)")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, width=size[0], height=size[1], seed=seed,
                           family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
-                          progress=say)
+                          stereo_fraction=stereo, progress=say)
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))

@@ -4,7 +4,8 @@ import numpy as np
 from scipy import ndimage
 from sklearn.metrics import normalized_mutual_info_score
 
-from protomine.mine.choosek import _kmedoids, choose_k, fit_auto, merge_close_prototypes
+from protomine.mine.choosek import choose_k, fit_auto, merge_close_prototypes
+from protomine.mine.seeding import kmedoids
 from protomine.mine.engine import ArraySource, PoseKMeans
 
 A = 36
@@ -64,7 +65,7 @@ def test_kmedoids_by_hand():
     # two tight pairs on a line: 0, 1 | 10, 11; a bad start (0 | 1, 10, 11) is repaired in one swap
     pts = np.array([0.0, 1.0, 10.0, 11.0])
     S = np.abs(pts[:, None] - pts[None, :])
-    labels, cost = _kmedoids(S, np.array([0, 1, 1, 1]))
+    labels, cost = kmedoids(S, np.array([0, 1, 1, 1]))
     assert labels[0] == labels[1] != labels[2] == labels[3]
     assert cost == 2.0  # each pair's non-medoid is 1 from its medoid
 

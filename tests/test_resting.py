@@ -10,10 +10,11 @@ from scipy.spatial.transform import Rotation
 
 from demo_scenes.items import load_item_classes, make_instance
 from protomine import geometry as G
-from protomine.capture import read_capture
+from protomine.capture import Intrinsics, read_capture
 from protomine.config import load_config
 from protomine.errors import InputError
 from protomine.scenes import shapes as S
+from protomine.scenes.render import Scene, SceneObject, look_at, render
 from protomine.scenes.resting import (rest_shape, resting_faces, resting_rotation, shape_resting_poses,
                                       shape_samples)
 from protomine.scenes.scenario import generate_scenario
@@ -99,22 +100,31 @@ def test_resting_rotation_takes_normal_down():
         assert np.linalg.det(R) == pytest.approx(1.0)
 
 
-@pytest.mark.parametrize("name", ["l_bracket", "mallet", "jug"])
+@pytest.mark.parametrize("name", ["l_bracket", "jug"])
 def test_tumbled_instance_rests_on_the_plane(name):
     item = next(c for c in load_item_classes() if c.name == name)
     inst = make_instance(item, np.random.default_rng(3))
     poses = shape_resting_poses(inst.shape)
-    for i in range(min(3, len(poses.faces))):
+    for i in range(min(2, len(poses.faces))):
         shape, R, s = rest_shape(inst.shape, poses, i)
-        pts, _ = shape_samples(shape, resolution=40)
-        cell = float(np.max(np.subtract(shape.hi, shape.lo))) / 40
+        pts, _ = shape_samples(shape)
+        cell = float(np.max(np.subtract(shape.hi, shape.lo))) / 28
         assert abs(pts[:, 2].min()) < 0.25 * cell             # lowest point on the table plane z = 0
         assert (pts[:, 2] > -0.25 * cell).all()
         np.testing.assert_allclose(R @ poses.faces[i].normal, DOWN, atol=1e-9)
         # the surface samples of the placed shape are the model's, moved by x_rest = R x_model + s
-        model, _ = shape_samples(inst.shape, resolution=40)
+        model, _ = shape_samples(inst.shape)
         moved = model @ R.T + s
         assert np.abs(np.sort(moved[:, 2])[:20] - np.sort(pts[:, 2])[:20]).max() < cell
+    # rendered: the object's back-projected pixels reach down to the table top and not below it
+    shape, _, _ = rest_shape(inst.shape, poses, min(1, len(poses.faces) - 1))
+    K = Intrinsics(160, 120, 140.0, 140.0, 79.5, 59.5)
+    eye = np.array([0.45 * np.cos(0.35), 0.0, 0.45 * np.sin(0.35)])
+    T = look_at(eye, np.array([0.0, 0.0, 0.02]), np.array([0.0, 0.0, 1.0]))
+    fr = render(Scene([SceneObject(shape, 30.0, (0.0, 0.0), (0.8, 0.2, 0.2))]), K, T)
+    p_cam, _ = G.depth_to_points(fr.depth, K.K, fr.mask == 1)
+    z = G.camera_to_world(p_cam, T)[:, 2]
+    assert len(z) > 200 and z.min() > -0.001 and z.min() < 0.004   # measured 0.2-1.5 mm (pixel footprint)
 
 
 def test_config_bounds_the_tumbled_fraction():
@@ -170,3 +180,19 @@ def test_upright_scenes_are_unchanged_and_record_upright_rotations(tmp_path):
         assert float(G.direction_to_yaw(R[:, 0], up)) == pytest.approx(float(r["yaw_deg"]), abs=1e-3)
         np.testing.assert_allclose([float(r[k]) for k in ("tx", "ty", "tz")],
                                    [float(r[k]) for k in ("x", "y", "z")], atol=1e-5)
+
+
+def test_scenes_command_takes_the_family_and_tumbled_share_from_the_config(tmp_path):
+    from typer.testing import CliRunner
+
+    from protomine.cli import app
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[scenes]\nfamily = "angles"\ntumbled_fraction = 1.0\n')
+    res = CliRunner().invoke(app, ["scenes", "-o", str(tmp_path / "s"), "--captures", "1", "--single", "0",
+                                   "--frames", "1", "--width", "48", "--height", "36", "-c", str(cfg), "-q"])
+    assert res.exit_code == 0, res.output
+    rows = list(csv.DictReader(open(tmp_path / "s" / "truth_full.csv")))
+    assert rows and all(r["tumbled"] == "1" and r["class"].startswith("peg_") for r in rows)
+    cfg.write_text('[scenes]\nfamily = "no_such_family"\n')
+    res = CliRunner().invoke(app, ["scenes", "-o", str(tmp_path / "t"), "-c", str(cfg), "-q"])
+    assert res.exit_code == 2 and "scenes.family" in res.output and "Traceback" not in res.output

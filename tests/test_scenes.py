@@ -111,7 +111,9 @@ def test_mask_pixels_lie_on_the_object_surface(name):
 def test_every_class_builds_within_size_bounds():
     rng = np.random.default_rng(0)
     classes = load_item_classes()
-    assert len(classes) == 10 and {c.name for c in classes} <= set(BUILDERS)
+    assert {c.name for c in classes} <= set(BUILDERS)
+    families = {f: [c for c in classes if c.family == f] for f in {c.family for c in classes}}
+    assert len(families["tools"]) == 10 and len(families["angles"]) == 4 and len(families) == 2
     assert sum(c.held_out for c in classes) == 2
     assert all(c.symmetry == "none" for c in classes if c.held_out)
     for c in classes:

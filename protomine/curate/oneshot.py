@@ -313,6 +313,7 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
         "size_median": np.percentile(size, 50, axis=0)[None], "size_p10": np.percentile(size, 10, axis=0)[None],
         "size_p90": np.percentile(size, 90, axis=0)[None], "fused_mu": np.array([op.mu]), "fused_sigma": np.array([op.sigma]),
         "single_mu": np.array([op.single_mu]), "single_sigma": np.array([op.single_sigma]),
+        "cell_reliability": np.ones((1, p["weights"].shape[1], p["weights"].shape[3]), np.float32),  # (1, R, H)
         "origin": np.array(["one-shot"], dtype=object), "name": np.array([name], dtype=object),
         "name_example": np.array([op.example], dtype=object), "aspect": np.array([op.aspect]),
         **{f: v[None] for f, v in _padded_faces(op.faces, p["face_up"].shape[1]).items()},

@@ -24,14 +24,13 @@ from ..errors import InputError
 from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from ..progress import detail
 from .convexity import convex_parts, join_parts, voxel_normals
+from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
 
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
 DBSCAN_MIN_SAMPLES = 5
-FLYING_TOL_M = 0.015        # a flying pixel is this far (or FLYING_TOL_REL x depth) from both neighbours
-FLYING_TOL_REL = 0.03
 FREE_SPACE_VOTES = 2         # other views that must see through a reading to drop it
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
 NOISE_MARGIN = 3.0          # x plane residual (RMS): the table's own noise stays below this height
@@ -80,21 +79,6 @@ class SceneObjects:
             if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
                 out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id]))
         return out
-
-
-def flying_pixels(depth: np.ndarray) -> np.ndarray:
-    """(H, W) bool: readings that lie between a nearer and a farther neighbour by more than
-    FLYING_TOL_M (or FLYING_TOL_REL x depth) on both sides, in a 3x3 window.
-
-    Depth sensors average foreground and background at depth edges ("flying pixels", common practice to
-    drop them); a true edge pixel sits at one of the two depths and is kept.
-    """
-    from scipy.ndimage import maximum_filter, minimum_filter
-    valid = depth > 0
-    hi = maximum_filter(np.where(valid, depth, 0.0), size=3)
-    lo = minimum_filter(np.where(valid, depth, np.inf), size=3)
-    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * depth)
-    return valid & (depth - lo > tol) & (hi - depth > tol)
 
 
 def load_frames(cap: Capture, frame_ids: list[str] | None = None,

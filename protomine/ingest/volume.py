@@ -16,7 +16,9 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
   observed  number of frames that observed the cell (in front of or at the measured surface)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
-"unseen" is never confused with "empty".  Single-view lifting is the same code with one frame; its
+"unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A
+flying pixel (a reading between a near and a far surface at a depth edge, ``depthedges``) counts as no
+reading: it is neither surface (proposals never give it to an object) nor free space in front of it.  Single-view lifting is the same code with one frame; its
 volume is partial (observed = 0 where unseen).
 """
 from __future__ import annotations
@@ -26,6 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..geometry import camera_to_world, plane_basis, world_to_pixel
+from .depthedges import FLYING_WINDOW, steady_depth
 
 CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
 FEATURES = ("surface", "free", "red*surface", "green*surface", "blue*surface")
@@ -116,6 +119,16 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     return out.reshape(-1, R, A, H)
 
 
+def _carving_depth(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """Depth (M,) at pixels (r, u) (M,), flying pixels read as 0; filters only the patch the pixels span."""
+    if len(r) == 0:
+        return np.zeros(0)
+    m = FLYING_WINDOW
+    r0, u0 = max(int(r.min()) - m, 0), max(int(u.min()) - m, 0)
+    patch = steady_depth(depth[r0:int(r.max()) + m + 1, u0:int(u.max()) + m + 1])
+    return patch[r - r0, u - u0]
+
+
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
     R, A, H = grid.shape
@@ -134,7 +147,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         r = np.rint(uv[:, 1]).astype(int)
         inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
         d = np.zeros(len(centres))
-        d[inside] = v.depth[r[inside], u[inside]]
+        d[inside] = _carving_depth(v.depth, r[inside], u[inside])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
         # the object's own points: back-project its pixels

@@ -56,6 +56,7 @@ from ..mine.faces import face_pose
 from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
+from ..mine.reliability import reliable_distances
 from ..progress import Bar, bar, detail
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, make_bank, rotation_of
@@ -120,13 +121,22 @@ class Matcher:
         parts = [self.bank.match(X[i:i + self.chunk_size], W[i:i + self.chunk_size])
                  for i in range(0, n, self.chunk_size)]
         D = np.concatenate([p.D for p in parts]).astype(np.float64)
-        S = self.library.score(D, np.arange(self.K)[None, :], single_view=True)
-        S = np.where(np.isfinite(D), S, 0.0)
+        raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
+        tilt = np.concatenate([p.tilt for p in parts])
+        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
+        # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
+        # views, as the library's single-view calibration did (``mine.reliability``; none: the plain distance);
+        # the reliability lives in the canonical frame, so matches on another face keep the plain distance
+        lam = self.library.prototypes.get("cell_reliability") if self.weighted else None
+        Dr = D
+        if lam is not None:
+            upright = self.tilts.is_upright(tilt)
+            Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
+        S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
+        S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
-        raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
-        tilt = np.concatenate([p.tilt for p in parts])
         pr = self.library.prototypes
         face = np.zeros((n, self.K), np.int64)
         yaw = np.zeros((n, self.K))
@@ -134,7 +144,6 @@ class Matcher:
         for k in range(self.K):
             face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
                                                               pr["face_up"][k], pr["face_symmetry"][k])
-        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
                 "rotation": rotation, "best": best}
 

@@ -13,12 +13,13 @@ the prototypes.
 
 Algorithm
 ---------
-1. Seeding: yaw-invariant descriptors (magnitudes of the azimuthal Fourier coefficients of w * x) of a
-   random subsample of at most ``sample_size`` objects, reduced to 32 principal components
-   (``sklearn.decomposition.PCA``); k-means on them (``sklearn.cluster.KMeans``, k-means++ seeding,
-   Arthur & Vassilvitskii 2007) groups objects whatever their yaw.  Each group's member nearest its
-   centroid is a reference; the group's members, posed against their reference and aligned, are
-   averaged into the initial prototype (one Lloyd update with the descriptor labels held fixed).
+1. Seeding (:mod:`protomine.mine.seeding`): pose-minimised distances among a random subsample of at
+   most max(``seeding.SEED_SIZE``, 2 K) objects (yaw-invariant descriptors would forget the angles between parts,
+   so mirror images and differently pointing parts would look alike); K medoids on that matrix
+   (average linkage on the first restart, k-means++-style sampling on the others, refined by
+   alternating k-medoids); every object of the subsample joins its pose-nearest medoid.  The groups'
+   members, posed against their medoid and aligned, are averaged into the initial prototypes (one
+   Lloyd update with the labels held fixed).
 2. Lloyd iterations: assign every object to the prototype with the smallest pose-minimised distance
    (``posesearch``), and in the same pass accumulate each object aligned into its prototype's frame
    (rolled by -yaw with linear interpolation between neighbouring bins, resampled by 1 / scale):
@@ -61,8 +62,6 @@ from typing import Protocol, Sequence
 
 import numpy as np
 import torch
-from sklearn.cluster import KMeans
-from sklearn.decomposition import PCA
 
 from .. import rotations as rot
 from . import faces
@@ -70,6 +69,7 @@ from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
 from .posesearch import PoseBank
+from .seeding import SEED_SIZE, PoseSeeder
 from .tilts import TiltBank, TiltGrid, make_bank
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
@@ -123,55 +123,22 @@ def _gather(source: Source, idx: np.ndarray, chunk_size: int) -> tuple[np.ndarra
     return np.concatenate(xs), np.concatenate(ws)
 
 
-def yaw_invariant_descriptors(X: np.ndarray, W: np.ndarray, chunk_size: int = 256) -> np.ndarray:
-    """(N, C * R * F * H) magnitudes of the azimuthal rfft of w * x (invariant to yaw rolls), float32.
-
-    Computed in chunks in single precision so that the transform's temporaries stay small.
-    """
-    N, C, R, A, H = X.shape
-    out = np.empty((N, C, R, A // 2 + 1, H), np.float32)
-    for i0, i1 in _chunks(N, chunk_size):
-        wx = torch.from_numpy(np.ascontiguousarray(W[i0:i1, None] * X[i0:i1], dtype=np.float32))
-        out[i0:i1] = torch.fft.rfft(wx, dim=3).abs().numpy()
-    return out.reshape(N, -1)
-
-
-def reduced_descriptors(X: np.ndarray, W: np.ndarray, *, n_components: int = 32,
-                        random_state: int | None = None) -> np.ndarray:
-    """(N, <= n_components) principal components of :func:`yaw_invariant_descriptors` (seeding space).
-
-    The full descriptors have C R H (A / 2 + 1) dimensions (9120 on the bench grid); k-means on a few
-    dozen principal components finds the same coarse groups at a fraction of the cost.
-    """
-    desc = yaw_invariant_descriptors(X, W)
-    n = min(n_components, desc.shape[0], desc.shape[1])
-    return PCA(n_components=n, random_state=random_state).fit_transform(desc).astype(np.float32)
-
-
-def _descriptor_seeds(sub: "ArraySource", desc: np.ndarray, K: int, scales: tuple[float, ...], chunk_size: int,
-                      seed: int, cache: "_SpectraCache | None" = None, grid: TiltGrid | None = None
-                      ) -> tuple[np.ndarray, np.ndarray] | tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Initial prototypes (K, C, R, A, H), (K, R, A, H) from k-means on yaw-invariant descriptors.
-
-    k-means (k-means++ seeding, ``sklearn.cluster.KMeans``) on the descriptors ``desc`` (n, d) of the
-    objects of ``sub`` groups objects whatever their yaw; each group's member nearest its centroid is
-    the reference, and the group's members, posed against that reference and aligned, are averaged
-    (one Lloyd update with the descriptor labels held fixed).  A group mean is a much steadier start
-    than a single object.  With a tilt ``grid`` the members are posed over tilts too, and the prototypes'
-    aspects (K,) are returned as a third value.
-    """
-    km = KMeans(n_clusters=K, n_init=1, random_state=seed).fit(desc)
-    lab = km.labels_
-    d2 = ((desc - km.cluster_centers_[lab]) ** 2).sum(axis=1)
-    refs = np.array([np.flatnonzero(lab == k)[np.argmin(d2[lab == k])] for k in range(K)])
+def _partition_seeds(sub: "ArraySource", labels: np.ndarray, refs: np.ndarray, scales: tuple[float, ...],
+                     chunk_size: int, cache: "_SpectraCache | None" = None, grid: TiltGrid | None = None
+                     ) -> tuple[np.ndarray, np.ndarray] | tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Initial prototypes (K, C, R, A, H), (K, R, A, H) from a partition of the subsample ``sub``: labels (n,)
+    and each group's reference object refs (K,) (``seeding.PoseSeeder.partition``).  The group's members,
+    posed against their reference and aligned, are averaged (one Lloyd update with the labels held fixed):
+    a group mean is a much steadier start than a single object.  With a tilt ``grid`` the members are posed
+    over tilts too, and the prototypes' aspects (K,) are returned as a third value."""
     P_ref, V_ref = sub.X[refs].copy(), sub.W[refs].copy()
     ts = None if grid is None else TiltState(grid, sub.aspect[refs])
-    labels, *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, K, forced=lab,
-                                                         cache=cache, tilts=ts)
+    lab, *_, num, den, count, worst, _ = _assign_pass(sub, P_ref, V_ref, scales, chunk_size, True, len(refs),
+                                                      forced=labels, cache=cache, tilts=ts)
     P, V = _update(num, den, count, worst, P_ref, V_ref)
     if ts is None:
         return P, V
-    return P, V, _update_aspect(ts, labels, sub.aspect)
+    return P, V, _update_aspect(ts, lab, sub.aspect)
 
 
 def _update_aspect(ts: "TiltState", labels: np.ndarray, obj_aspect: np.ndarray) -> np.ndarray:
@@ -542,11 +509,11 @@ class PoseKMeans:
     ----------
     n_clusters : K, number of prototypes.
     scales : scale factors searched per pose (1.0 = no scale search).
-    n_init : restarts with different descriptor k-means seeds; the lowest final cost is kept.
+    n_init : restarts with different seeds (``seeding.PoseSeeder``); the lowest final cost is kept.
     max_iter, tol : Lloyd iteration cap and relative cost-change tolerance.
     chunk_size : objects read and matched at once (bounds memory).
     random_state : int or None; the only source of randomness.
-    sample_size : objects used for seeding descriptors and, for large N, for the restarts.
+    sample_size : objects used for seeding and, for large N, for the restarts.
     symmetry_factor : how far a rotation may exceed the members' scatter and still count as a symmetry
         (``factor`` of :func:`protomine.mine.symmetry.detect_symmetry`).
     symmetry_tol : the smallest fraction of a prototype's variance a rotation must move to break a symmetry
@@ -634,7 +601,7 @@ class PoseKMeans:
         N, K = len(source), self.n_clusters
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size), replace=False))
         Xs, Ws = _gather(source, idx, self.chunk_size)
-        desc = reduced_descriptors(Xs, Ws, random_state=int(rng.integers(2**31 - 1)))
+        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng, size=max(SEED_SIZE, 2 * K))
         grid = self._grid()
         sub = ArraySource(Xs, Ws, None if grid is None else _source_aspect(source)[idx])
         fit_on = source if N <= self.sample_size else sub
@@ -643,8 +610,8 @@ class PoseKMeans:
         cache = self._new_cache()
         best = None
         for r in range(self.n_init):
-            P0, V0, *a0 = _descriptor_seeds(sub, desc, K, scales, self.chunk_size, int(rng.integers(2**31 - 1)),
-                                            cache, grid)
+            labels, refs = seeder.partition(K, r, rng)
+            P0, V0, *a0 = _partition_seeds(sub, labels, refs, scales, self.chunk_size, cache, grid)
             res = _lloyd(fit_on, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol,
                          chunk_size=self.chunk_size, moments=fit_on is source, cache=cache, grid=grid,
                          aspect=a0[0] if a0 else None,

@@ -17,7 +17,8 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  aspect (K,) grid aspect z_max / rho_max of the canonical face (``mine.tilts.grid_aspect``);
                  resting faces, padded to F faces: face_up (K, F, 3) up direction in the prototype frame
                  (face 0 = +z, the canonical face), face_count (K, F) members resting on it,
-                 face_symmetry (K, F) symmetry code about that up (-1 = padding)
+                 face_symmetry (K, F) symmetry code about that up (-1 = padding); optional cell_reliability
+                 (K, R, H) per-cell weights of single-view scores (``reliability``)
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
@@ -54,6 +55,7 @@ PROTO_ARRAYS = ("features", "weights", "volumes", "symmetry", "period_deg", "cou
                 "size_p90", "fused_mu", "fused_sigma", "single_mu", "single_sigma", "aspect", "face_up", "face_count",
                 "face_symmetry")
 PROTO_STR = ("origin", "name", "name_example")
+PROTO_OPTIONAL = ("cell_reliability",)   # (K, R, H) single-view cell weights (``reliability``); libraries before it have none
 MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance",
                  "face", "rotation")
 
@@ -173,7 +175,7 @@ def write_library(path: str | Path, lib: Library) -> None:
                 if k != "format":
                     f.attrs[k] = v
             g = f.create_group("prototypes")
-            for k in PROTO_ARRAYS:
+            for k in PROTO_ARRAYS + tuple(k for k in PROTO_OPTIONAL if k in lib.prototypes):
                 a = np.asarray(lib.prototypes[k])
                 big = a.ndim >= 4
                 g.create_dataset(k, data=a, compression="gzip" if big else None,

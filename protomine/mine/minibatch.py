@@ -6,7 +6,7 @@ Conventions: as in :mod:`protomine.mine.engine`.
 Algorithm
 ---------
 1. Seeding as the full-batch engine does for a large store: on a subsample of min(``sample_size``,
-   3 ``batch_size``) objects (3 batches: scikit-learn's ``MiniBatchKMeans`` default ``init_size``), ``n_init`` restarts of descriptor seeding (``engine._descriptor_seeds``) and full Lloyd
+   3 ``batch_size``) objects (3 batches: scikit-learn's ``MiniBatchKMeans`` default ``init_size``), ``n_init`` restarts of pose-distance seeding (``seeding.PoseSeeder``) and full Lloyd
    iterations (``engine._lloyd``, in memory), the lowest cost wins.  Good seeds matter more here than for
    full batches: a running sum never forgets members assigned against a poor seed.
 2. ``n_steps`` mini-batches of ``batch_size`` objects drawn uniformly without replacement (sorted, so a
@@ -38,8 +38,9 @@ from typing import Callable
 import numpy as np
 
 from ..ingest.store import StoreSource
-from .engine import (ArraySource, PoseKMeans, Source, _assign_pass, _descriptor_seeds, _gather, _lloyd, _Result,
-                     _update, reduced_descriptors)
+from .engine import (ArraySource, PoseKMeans, Source, _assign_pass, _gather, _lloyd, _partition_seeds, _Result,
+                     _update)
+from .seeding import SEED_SIZE, PoseSeeder
 
 
 def subset_source(source: Source, idx: np.ndarray, chunk_size: int) -> Source:
@@ -81,18 +82,19 @@ class MiniBatchPoseKMeans(PoseKMeans):
         # seeding subsample: 3 batches' worth (scikit-learn's MiniBatchKMeans init_size), at most sample_size
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size, 3 * self.batch_size), replace=False))
         Xs, Ws = _gather(source, idx, cs) if not hasattr(source, "gather") else source.gather(idx)
-        desc = reduced_descriptors(Xs, Ws, random_state=int(rng.integers(2**31 - 1)))
+        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng, size=max(SEED_SIZE, 2 * K))
         sub = ArraySource(Xs, Ws)
         b = min(self.batch_size, N)
         batches = [np.sort(rng.choice(N, size=b, replace=False)) for _ in range(self.n_steps)]
         best = None
-        for _ in range(self.n_init):
-            P0, V0 = _descriptor_seeds(sub, desc, K, scales, cs, int(rng.integers(2**31 - 1)))
+        for restart in range(self.n_init):
+            labels, refs = seeder.partition(K, restart, rng)
+            P0, V0 = _partition_seeds(sub, labels, refs, scales, cs)
             res = _lloyd(sub, P0, V0, scales=scales, max_iter=self.max_iter, tol=self.tol, chunk_size=cs)
             if best is None or res.cost < best.cost:
                 best = res
         P, V = best.P, best.V
-        del sub, Xs, Ws, desc, best
+        del sub, Xs, Ws, seeder, best
         num = np.zeros(P.shape)
         den = np.zeros(V.shape)
         count = np.zeros(K, np.int64)

@@ -8,7 +8,7 @@ Steps
    yaw (Fourier shift along azimuth) and averaged with its observation counts as weights.
 3. Label-free calibration: robust fits (median, MAD) of the log distances of the members' distances (fused objects) and of the
    leave-one-out distances of the store's one-frame volumes to their object's prototype rebuilt without
-   that object (single views; see ``single_view_distances``), so that
+   that object (single views; see ``single_view_calibration``), so that
    ``library.match_score`` is comparable across clusters and usable for single views.
 4. Metric size statistics (footprint radius, height) and member scale = sqrt(r h) / median over the
    cluster of sqrt(r h).
@@ -36,6 +36,7 @@ from .aligned import aligned_mean_volumes
 from .library import Library, log_distance_fit, match_score, write_library
 from .openset import conformal_cut
 from .posesearch import pose_distances
+from .reliability import cell_reliability
 from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
 
@@ -112,12 +113,69 @@ def spread_pick(items: np.ndarray, n: int) -> np.ndarray:
     return np.asarray(items)[np.unique(np.round(np.linspace(0, len(items) - 1, n)).astype(int))]
 
 
+def _calibration_objects(store: ObjectStore, labels: np.ndarray, K: int, max_objects_per_cluster: int) -> np.ndarray:
+    """Sorted store rows of the objects whose single views calibrate the score: a location-scale fit needs
+    tens of samples, not thousands, so at most max_objects_per_cluster per prototype (evenly spread over its
+    members, deterministic) keep the cost bounded on large stores."""
+    have = np.unique(store.single_object)
+    objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
+    return np.sort(objs)
+
+
+def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                      scales: tuple[float, ...], objs: np.ndarray, up: np.ndarray | None, bank: TiltBank | None):
+    """Yield (k, rows, xs, ws, Pk, Vk, upright) per calibration object: its cluster, its single views' row
+    indices (m,) and features xs (m, C, R, A, H), ws (m, R, A, H), its prototype rebuilt without it, Pk (1, C,
+    R, A, H), Vk (1, R, A, H) (on the object's resting face), and whether that face is the canonical one
+    (see :func:`single_view_calibration`)."""
+    from .engine import align_to_prototype
+    m = cfg["mine"]
+    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
+    K = P.shape[0]
+    n = np.bincount(labels, minlength=K)
+    for i0 in range(0, len(objs), 256):
+        chunk = objs[i0:i0 + 256]
+        xo, wo = feats(store.read_volume_at(chunk))
+        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+        xs, ws = feats(store.read_single_views(rows_all))
+        for j, obj in enumerate(chunk):
+            k = int(labels[obj])
+            P1, V1 = P[k:k + 1], V[k:k + 1]
+            upright = not (up is not None and bank is not None and up[obj, 2] < np.cos(np.deg2rad(IDENTITY_DEG)))
+            if not upright:
+                Pc, Vc = bank.copy_at(k, up[obj])
+                P1, V1 = Pc[None], Vc[None]
+            Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
+            if n[k] > 1:
+                pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
+                xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+                den = n[k] * Vk - wa
+                ok = den > 1e-6
+                # (1, C, R, A, H): the weighted sum without the object, over the weight left
+                Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+                Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+            sel = np.flatnonzero(store.single_object[rows_all] == obj)
+            yield k, rows_all[sel], xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), upright
+
+
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
                           scales: tuple[float, ...], *, max_objects_per_cluster: int = 64,
                           progress: Callable[[str], None] | None = None,
                           up: np.ndarray | None = None, bank: TiltBank | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
-    (inf for views left out of the calibration), (Q,) clusters.
+    (inf for views left out of the calibration), (Q,) clusters (see :func:`single_view_calibration`)."""
+    d, k, _ = single_view_calibration(store, cfg, P, V, labels, scales, max_objects_per_cluster=max_objects_per_cluster,
+                                      progress=progress, up=up, bank=bank)
+    return d, k
+
+
+def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                            scales: tuple[float, ...], *, reliable: bool = True, max_objects_per_cluster: int = 64,
+                            progress: Callable[[str], None] | None = None, up: np.ndarray | None = None,
+                            bank: TiltBank | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
+    (inf for views left out of the calibration), (Q,) clusters, and the per-cell reliability (K, R, H) of
+    single views (``reliability``; ones when ``reliable`` is False).
 
     A single view is matched against its prototype *without its own object*: the prototype is the
     observation-weighted mean of its aligned members, P = sum w_al x_al / sum w_al with sum w_al = n V, so
@@ -129,53 +187,44 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
     With tilts, an object resting on another face (``up`` (N, 3), its up direction in the prototype frame)
     is compared with the prototype's copy resting on that face (``bank.copy_at``), the same formula applied
     in the copy's frame.
+    The reliability is fitted on the residuals of the upright views at their best pose; each upright view's
+    distance is then re-weighted (``reliability.reliable_distances``) by the reliability fitted *without its
+    object's views*, for the same reason.  Views on another face keep the plain distance (the reliability
+    lives in the canonical frame), as the matcher does for tilted matches.
     """
-    if len(store.single_object) == 0:
-        return np.zeros(0), np.zeros(0, int)
-    m = cfg["mine"]
-    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
-    K = P.shape[0]
-    n = np.bincount(labels, minlength=K)
-    k_of = labels[store.single_object]
-    out = np.full(len(k_of), np.inf)
-    # a location-scale fit needs tens of samples, not thousands: at most max_objects_per_cluster objects per
-    # prototype (evenly spread over its members, deterministic) keep the cost bounded on large stores
-    have = np.unique(store.single_object)
-    objs = np.concatenate([spread_pick(have[labels[have] == k], max_objects_per_cluster) for k in range(K)]).astype(int)
-    objs.sort()
-    with bar(progress, "score calibration", total=len(objs), unit="objects") as b:
-        for i0 in range(0, len(objs), 256):
-            _single_view_chunk(store, objs[i0:i0 + 256], feats, P, V, labels, n, scales, out, b.advance, up, bank)
-    return out, k_of
-
-
-def _single_view_chunk(store: ObjectStore, chunk: np.ndarray, feats, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                       n: np.ndarray, scales: tuple[float, ...], out: np.ndarray, advance, up: np.ndarray | None = None,
-                       bank: TiltBank | None = None) -> None:
-    """Leave-one-out distances of the single views of the objects ``chunk`` into ``out`` (see the caller)."""
     from .engine import align_to_prototype
-    xo, wo = feats(store.read_volume_at(chunk))
-    rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
-    xs, ws = feats(store.read_single_views(rows_all))
-    for j, obj in enumerate(chunk):
-        k = int(labels[obj])
-        P1, V1 = P[k:k + 1], V[k:k + 1]
-        if up is not None and bank is not None and up[obj, 2] < np.cos(np.deg2rad(IDENTITY_DEG)):
-            Pc, Vc = bank.copy_at(k, up[obj])
-            P1, V1 = Pc[None], Vc[None]
-        Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
-        if n[k] > 1:
-            pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
-            xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
-            den = n[k] * Vk - wa
-            ok = den > 1e-6
-            # (1, C, R, A, H): the weighted sum without the object, over the weight left
-            Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
-            Vk = np.where(ok, den, 0.0) / (n[k] - 1)
-        sel = np.flatnonzero(store.single_object[rows_all] == obj)
-        pm = pose_distances(xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), scales=scales)
-        out[rows_all[sel]] = pm.D[:, 0]
-        advance(1)
+    from .reliability import reliable_distances, residual_sums
+    K, _, R, _, H = P.shape
+    out = np.full(len(store.single_object), np.inf)
+    num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
+    if len(store.single_object) == 0:
+        return out, np.zeros(0, int), np.ones((K, R, H))
+    objs = _calibration_objects(store, labels, K, max_objects_per_cluster)
+    loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, objs, up, bank)  # noqa: E731
+    poses, own = [], []
+    with bar(progress, "score calibration", total=len(objs) * (2 if reliable else 1), unit="objects") as b:
+        for k, rows, xs, ws, Pk, Vk, upright in loo():
+            pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+            out[rows] = pm.D[:, 0]
+            poses.append((pm.yaw_deg, pm.scale))
+            ok = np.isfinite(pm.D[:, 0])
+            a, c = np.zeros((R, H)), np.zeros((R, H))
+            if reliable and upright and ok.any():
+                xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
+                a, c = residual_sums(xa, wa, Pk[0], Vk[0])
+            own.append((a, c))
+            num[k] += a
+            den[k] += c
+            b.advance(1)
+        if not reliable:
+            return out, labels[store.single_object], np.ones((K, R, H))
+        for (k, rows, xs, ws, Pk, Vk, upright), (yaw, sc), (a, c) in zip(loo(), poses, own):
+            if upright:
+                lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
+                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc)[:, 0]
+                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+            b.advance(1)
+    return out, labels[store.single_object], cell_reliability(num, den)
 
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
@@ -239,8 +288,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
               np.array([np.median(store_aspect(store, cfg)[labels == k]) if counts_k else 1.0
                         for k, counts_k in enumerate(np.bincount(labels, minlength=K))]))
     bank = TiltBank(model.prototypes_, model.prototype_weights_, aspect, scales, grid) if grid is not None else None
-    sv_d, sv_k = single_view_distances(store, cfg, model.prototypes_, model.prototype_weights_, labels, scales,
-                                       progress=progress, up=np.asarray(model.up_), bank=bank)
+    sv_d, sv_k, reliability = single_view_calibration(store, cfg, model.prototypes_, model.prototype_weights_, labels,
+                                                      scales, progress=progress, up=np.asarray(model.up_), bank=bank)
     sv_k = sv_k[np.isfinite(sv_d)]
     sv_d = sv_d[np.isfinite(sv_d)]
     single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
@@ -262,6 +311,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         "volumes": vols, "symmetry": np.asarray(model.symmetry_, np.int64), "period_deg": period,
         "count": counts, "size_median": pct(50), "size_p10": pct(10), "size_p90": pct(90),
         "fused_mu": fused_mu, "fused_sigma": fused_sigma, "single_mu": single_mu, "single_sigma": single_sigma,
+        "cell_reliability": reliability.astype(np.float32),
         "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K, "aspect": aspect,
         **pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"]),
     }

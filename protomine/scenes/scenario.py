@@ -44,7 +44,7 @@ from ..capture import Intrinsics, write_capture
 from ..errors import InputError
 from ..geometry import direction_to_yaw
 from ..progress import bar, detail
-from .noise import add_sensor_noise
+from .noise import add_sensor_noise, stereo_depth
 from .render import Scene, SceneObject, look_at, render
 from .resting import rest_shape, shape_resting_poses
 from .shapes import Shape
@@ -64,7 +64,7 @@ def demo_intrinsics(width: int, height: int) -> Intrinsics:
 def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int = 24, frames: int = 8,
                       width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
                       single_classes: list[str] | None = None, family: str = "tools",
-                      tumbled_fraction: float = 0.0, touching: bool = False,
+                      tumbled_fraction: float = 0.0, touching: bool = False, stereo_fraction: float = 0.0,
                       progress: Callable[[str], None] | None = None) -> dict:
     """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
 
@@ -73,9 +73,14 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     single_classes: classes used in single-frame captures (default: every class of the family).
     tumbled_fraction: share of instances dropped on a resting face drawn by its probability (0 = all
     upright, as built; 1 = all dropped).
+    stereo_fraction: share of the mining and of the single-frame captures (evenly spread) whose depth comes
+    from the active-stereo model (``noise.stereo_depth``) instead of the gaussian one; the scenes, poses and
+    RGB are the same for either model at one seed, only the depth differs.
     """
     if n_mining < 1 or n_single < 0 or frames < 1:
         raise InputError(None, "captures/single/frames", f"expected captures >= 1, single >= 0, frames >= 1, got {n_mining}, {n_single}, {frames}")
+    if not 0.0 <= stereo_fraction <= 1.0:
+        raise InputError(None, "stereo_fraction", f"expected a share in [0, 1], got {stereo_fraction}")
     if width < 16 or height < 16:
         raise InputError(None, "width/height", f"expected an image of at least 16x16, got {width}x{height}")
     if not 0.0 <= tumbled_fraction <= 1.0:
@@ -89,7 +94,7 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     mining = _pick(by_name, classes, [c.name for c in own if not c.held_out], "classes")
     single = _pick(by_name, single_classes, [c.name for c in own], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
-                     float(tumbled_fraction), progress, touching)
+                     float(tumbled_fraction), progress, touching, float(stereo_fraction))
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
@@ -102,7 +107,8 @@ def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[
 
 def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, height: int, seed: int,
               mining: list[ItemClass], single: list[ItemClass], tumbled_fraction: float,
-              progress: Callable[[str], None] | None, touching: bool = False) -> dict:
+              progress: Callable[[str], None] | None, touching: bool = False,
+              stereo_fraction: float = 0.0) -> dict:
     t0 = time.monotonic()
     out.mkdir(parents=True, exist_ok=True)
     clean_stale_temporaries(out)
@@ -110,6 +116,9 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     K = demo_intrinsics(width, height)
     plan = [(f"mine_{i:03d}", "mining", mining, frames) for i in range(n_mining)]
     plan += [(f"single_{i:03d}", "single", single, 1) for i in range(n_single)]
+    # the i-th capture of a split is stereo when the running count floor(i f) steps up: evenly spread
+    depth_model = {name: "stereo" if np.floor((i + 1) * stereo_fraction) > np.floor(i * stereo_fraction) else "gaussian"
+                   for split in ("mining", "single") for i, name in enumerate(p[0] for p in plan if p[1] == split)}
     rows: list[dict] = []
     used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
     render_s, n_frames = 0.0, 0
@@ -118,7 +127,7 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
             cap_rng = rng.spawn(1)[0]
             t1 = time.monotonic()
             cap_rows, dt = _one_capture(out / name, split, pool, n_frames_cap, K, cap_rng, used[split],
-                                        tumbled_fraction, touching)
+                                        tumbled_fraction, touching, depth_model[name] == "stereo")
             rows += cap_rows
             render_s += dt
             n_frames += n_frames_cap
@@ -137,6 +146,7 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
         "image": {"width": width, "height": height, "frames_per_mining_capture": frames},
         "tumbled_fraction": tumbled_fraction,
         "placement": "touching" if touching else "apart",
+        "depth_model": depth_model,
     }
     write_text(out / "scenario.json", json.dumps(doc, indent=1))
     return {**doc, "out": str(out), "objects": len(rows), "frames_rendered": n_frames,
@@ -273,7 +283,7 @@ def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
                  rng: np.random.Generator, used: dict[str, int], tumbled_fraction: float,
-                 touching: bool = False) -> tuple[list[dict], float]:
+                 touching: bool = False, stereo: bool = False) -> tuple[list[dict], float]:
     posed, pos = _layout(pool, rng, used, tumbled_fraction)
     yaws = rng.uniform(0.0, 360.0, len(posed))
     if touching and len(posed) > 1:
@@ -298,6 +308,9 @@ def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int,
         frame = render(scene, K, cam_to_table)
         dt += time.monotonic() - t1
         depth, rgb = add_sensor_noise(frame, rng)
+        if stereo:
+            # a child generator: the parent's stream (poses of the next frames) is the gaussian run's
+            depth = stereo_depth(frame, K.fx, rng.spawn(1)[0])
         out_frames.append({"id": f"{k:06d}", "cam_to_world": world_from_table @ cam_to_table, "rgb": rgb,
                            "depth_m": depth, "mask": frame.mask.astype(np.uint16)})
     write_capture(folder, intrinsics=K, depth_scale=DEPTH_SCALE, frames=out_frames)
