@@ -220,7 +220,7 @@ SCALE_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [("scale", _bench_sc
 def _print_section(name: str, figures: dict) -> None:
     print(f"== {name}")
     for key, val in figures.items():
-        if isinstance(val, list):
+        if isinstance(val, list) and val and all(isinstance(row, dict) for row in val):
             for row in val:
                 print("   " + "  ".join(f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in row.items()))
         else:

@@ -178,7 +178,7 @@ def _store_records(lib: Library, store: ObjectStore, captures: list[Path], cfg: 
                        "cluster": k, "name": (str(p["name"][k]) or None) if k is not None else None,
                        "symmetry": symmetry_name(p["symmetry"][k]) if k is not None else None,
                        "yaw_deg": float(m["yaw_deg"][j]) if j is not None else None,
-                       "rotation": [float(q) for q in m["rotation"][j]] if j is not None else None,
+                       "rotation": [round(float(x), 6) for x in m["rotation"][j]] if j is not None else None,
                        "face": int(m["face"][j]) if j is not None else None,
                        "scale": float(m["scale"][j]) if j is not None else None,
                        "fit_scale": float(m["fit_scale"][j]) if j is not None else None,
