@@ -10,48 +10,16 @@ from __future__ import annotations
 import numpy as np
 
 from ..geometry import invert_rigid
+from ..rotations import matrix_to_quat, quat_to_matrix
 
 # camera axes OpenGL (x right, y up, z backward) -> OpenCV (x right, y down, z forward)
 GL_TO_CV = np.diag([1.0, -1.0, -1.0, 1.0])
 CONVENTIONS = ("opencv-c2w", "opencv-w2c", "opengl-c2w", "opengl-w2c")
 
 
-def quaternion_to_matrix(q: np.ndarray) -> np.ndarray:
-    """(..., 4) quaternions [x, y, z, w] (normalised here) -> (..., 3, 3) rotation matrices."""
-    q = np.asarray(q, dtype=np.float64)
-    q = q / np.linalg.norm(q, axis=-1, keepdims=True)
-    x, y, z, w = np.moveaxis(q, -1, 0)
-    return np.stack([
-        np.stack([1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)], -1),
-        np.stack([2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)], -1),
-        np.stack([2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)], -1),
-    ], -2)
-
-
-def matrix_to_quaternion(R: np.ndarray) -> np.ndarray:
-    """(..., 3, 3) rotations -> (..., 4) unit quaternions [x, y, z, w] with w >= 0 (Shepperd's method:
-    the largest of the four squared components is taken first, which keeps the square root well-conditioned)."""
-    R = np.asarray(R, dtype=np.float64)
-    m = R.reshape(-1, 3, 3)
-    tr = np.trace(m, axis1=1, axis2=2)
-    cand = np.stack([1 + 2 * m[:, 0, 0] - tr, 1 + 2 * m[:, 1, 1] - tr, 1 + 2 * m[:, 2, 2] - tr, 1 + tr], -1)  # 4 q_i^2
-    k = cand.argmax(-1)
-    out = np.zeros((len(m), 4))
-    for i in range(len(m)):
-        a, r = k[i], m[i]
-        s = 2.0 * np.sqrt(max(cand[i, a], 1e-300))
-        if a == 3:
-            q = [(r[2, 1] - r[1, 2]) / s, (r[0, 2] - r[2, 0]) / s, (r[1, 0] - r[0, 1]) / s, s / 4]
-        elif a == 0:
-            q = [s / 4, (r[0, 1] + r[1, 0]) / s, (r[0, 2] + r[2, 0]) / s, (r[2, 1] - r[1, 2]) / s]
-        elif a == 1:
-            q = [(r[0, 1] + r[1, 0]) / s, s / 4, (r[1, 2] + r[2, 1]) / s, (r[0, 2] - r[2, 0]) / s]
-        else:
-            q = [(r[0, 2] + r[2, 0]) / s, (r[1, 2] + r[2, 1]) / s, s / 4, (r[1, 0] - r[0, 1]) / s]
-        out[i] = q
-    out *= np.where(out[:, 3:] < 0, -1.0, 1.0)
-    out /= np.linalg.norm(out, axis=1, keepdims=True)
-    return out.reshape(R.shape[:-2] + (4,))
+# one home for quaternion algebra (scalar last): protomine.rotations
+quaternion_to_matrix = quat_to_matrix
+matrix_to_quaternion = matrix_to_quat
 
 
 def slerp(q0: np.ndarray, q1: np.ndarray, t: float) -> np.ndarray:
