@@ -124,7 +124,7 @@ def bench_peer(quick: bool, seed: int) -> dict:
     from .mine.engine import ArraySource, PoseKMeans
     cores.set_torch_threads(cores.usable_cores())
     rng = np.random.default_rng(seed)
-    n, k = (400, 8) if quick else (2000, 32)
+    n, k = (240, 4) if quick else (2000, 32)
     P = synthetic_prototypes(rng, k)
     X, W, labels, *_ = synthetic_objects(rng, P, n)
     n_init = 2
@@ -220,7 +220,9 @@ SCALE_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [("scale", _bench_sc
 def _print_section(name: str, figures: dict) -> None:
     print(f"== {name}")
     for key, val in figures.items():
-        if isinstance(val, list) and val and all(isinstance(row, dict) for row in val):
+        if isinstance(val, list) and not all(isinstance(row, dict) for row in val):
+            print(f"   {key:<22} {val}")
+        elif isinstance(val, list):
             for row in val:
                 print("   " + "  ".join(f"{k}={v:.3g}" if isinstance(v, float) else f"{k}={v}" for k, v in row.items()))
         else:
@@ -234,14 +236,14 @@ def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also writ
                                               "Dask LocalCluster, and a 1M-object / 50-worker projection "
                                               "(protomine/scale/benchmark.py).")] = False,
           size: Annotated[Optional[int], typer.Option("--size", min=100, max=10_000_000, help="Objects of the "
-                                                      "streamed-mining row [large] (default 100,000; 3,000 with "
+                                                      "streamed-mining row [large] (default 100,000; 600 with "
                                                       "--quick).")] = None,
           only: Annotated[Optional[str], typer.Option("--only", help="Comma-separated rows to run (e.g. "
                                                       "'assignment,peer'); default: all.")] = None) -> None:
     """Measure pose-search and mining speed and memory on synthetic volumes (see protomine/bench.py)."""
     from .scale.streamed import bench_large
     rows = SCALE_ROWS if scale else BENCH_ROWS + [
-        ("large", lambda q, s: bench_large(size or (3000 if q else 100_000), s))]
+        ("large", lambda q, s: bench_large(size or (600 if q else 100_000), s))]
     names = {r for r in only.split(",")} if only else {name for name, _ in rows}
     unknown = names - {name for name, _ in rows}
     if unknown:

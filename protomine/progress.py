@@ -157,3 +157,23 @@ def bar(progress: Callable[[str], None] | None, what: str, total: int, unit: str
         return
     with fn(what, total, unit) as b:
         yield b
+
+
+class Recorder:
+    """A progress that records messages instead of printing them: for work done in another process, whose
+    lines the caller replays in item order (``replay``).  Bars inside it are silent counters."""
+
+    def __init__(self) -> None:
+        self.lines: list[tuple[bool, str]] = []  # (is a detail line, message)
+
+    def __call__(self, msg: str) -> None:
+        self.lines.append((False, msg))
+
+    def detail(self, msg: str) -> None:
+        self.lines.append((True, msg))
+
+
+def replay(progress: Callable[[str], None] | None, lines: list[tuple[bool, str]]) -> None:
+    """Send a :class:`Recorder`'s lines to ``progress``, as if the work had run here."""
+    for is_detail, msg in lines:
+        (detail if is_detail else say)(progress, msg)

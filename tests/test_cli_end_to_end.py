@@ -57,7 +57,7 @@ def flow(tmp_path_factory, tiny_world):
     root = tmp_path_factory.mktemp("cli_e2e")
     caps, conf = tiny_world["caps"], tiny_world["config"]
     store, lib = root / "objects.h5", root / "lib" / "library.h5"
-    ingest = _run("ingest", *caps, "-o", store, "-c", conf, "--seed", "0", "-v", "--workers", "1")  # per-frame lines come from this process
+    ingest = _run("ingest", *caps, "-o", store, "-c", conf, "--seed", "0", "-v")
     mine = _run("mine", store, "-o", lib, "-c", conf, "--seed", "0")
     truth = root / "truth.csv"
     truth.write_text("object,label\n" + "".join(f"{c.name}/{m},{k}\n" for c in caps for m, k in CLASS_OF_MASK.items()))

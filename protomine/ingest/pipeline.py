@@ -11,7 +11,7 @@ from PIL import Image
 from ..atomic import pause_point
 from ..capture import read_capture
 from ..errors import InputError, InputErrors
-from ..progress import bar, detail
+from ..progress import Recorder, bar, detail, replay
 from ..provenance import folder_fingerprint, provenance
 from .proposals import SceneObjects, find_objects, object_frame
 from .store import CaptureRecord, ObjectRecord, ObjectStore, write_store
@@ -120,15 +120,17 @@ def lift_capture(path: str | Path, cfg: dict, seed: int, use_masks: bool, grid: 
     return recs, rec, summary, len(scene.frames)
 
 
-def _lift_item(shared: tuple, path: str) -> tuple | str:
-    """Executor item: one capture lifted in a worker process (with keep_going, a bad one gives its reason)."""
+def _lift_item(shared: tuple, path: str) -> tuple[tuple | str, list]:
+    """Executor item: one capture lifted in a worker process (with keep_going, a bad one gives its reason),
+    and its progress lines for the caller to replay."""
     cfg, seed, use_masks, grid, keep_going = shared
+    rec = Recorder()
     try:
-        return lift_capture(path, cfg, seed, use_masks, grid)
+        return lift_capture(path, cfg, seed, use_masks, grid, rec), rec.lines
     except InputError as e:
         if not keep_going:
             raise
-        return _reason(e)
+        return _reason(e), rec.lines
 
 
 def check_captures(captures: list[str | Path], *, keep_going: bool = False) -> tuple[list[Path], list[tuple[str, str]]]:
@@ -205,8 +207,12 @@ def ingest_captures(captures: list[str | Path], store: str | Path, cfg: dict, *,
         else:
             detail(progress, f"{len(captures)} captures on {executor.describe()}")
             order = iter(captures)
+            def add_replayed(res: tuple[tuple | str, list]) -> None:
+                replay(progress, res[1])
+                add(next(order), res[0])
+
             executor.map(_lift_item, [str(c) for c in captures], shared=(cfg, seed, use_masks, grid, keep_going),
-                         fold=lambda _, res: add(next(order), res))
+                         fold=lambda _, res: add_replayed(res))
     elapsed = time.monotonic() - t0
     pause_point("inputs_read")
     counts = {"kept": 0, "replaced": 0, "added": 0}

@@ -57,7 +57,7 @@ from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
 from ..mine.reliability import reliable_distances
-from ..progress import Bar, bar, detail
+from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, make_bank, rotation_of
 from ..rotations import matrix_to_quat
@@ -278,7 +278,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
             for k in st:
                 st[k] += res[1][k]
             scores.extend(res[1].get("scores", []))
-            if advance:  # a worker's group: its frames at once
+            if advance:  # a worker's group: its lines and its frames at once
+                replay(progress, res[1]["lines"])
                 b.advance(res[1]["frames"])
 
         if n_workers <= 1:
@@ -305,8 +306,11 @@ def _label_item(shared: tuple, paths: list[str]) -> tuple[list[dict], dict]:
     if token not in _WORKER_MATCHER:
         _WORKER_MATCHER.clear()
         _WORKER_MATCHER[token] = make_matcher(library, cfg, weighted=weighted)
-    return _label_group(_WORKER_MATCHER[token], paths, cfg, seed, use_masks, batch_objects, None,
-                        Bar(None, "label", 0, "frames"))
+    rec = Recorder()
+    out, st = _label_group(_WORKER_MATCHER[token], paths, cfg, seed, use_masks, batch_objects, rec,
+                           Bar(None, "label", 0, "frames"))
+    st["lines"] = rec.lines
+    return out, st
 
 
 def _label_group(matcher: Matcher, paths: list[str], cfg: dict, seed: int, use_masks: bool, batch_objects: int,
