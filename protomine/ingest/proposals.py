@@ -12,6 +12,7 @@ minimum enclosing circle of the footprint, robust to one-sided views of round ob
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Callable
 
@@ -217,7 +218,11 @@ def above_plane_margin(plane: PlaneFit, cfg: dict) -> float:
 
 
 def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
-    """Smallest circle (centre (2,), radius) containing points (N, 2); Welzl's algorithm on the hull."""
+    """Smallest circle (centre (2,), radius) containing points (N, 2); Welzl's algorithm on the hull.
+
+    The incremental form (points in a fixed random order), on Python floats: the hull has tens of
+    vertices, where per-point numpy calls would cost far more than the arithmetic (the tilt search
+    measures one footprint per prototype and tilt)."""
     pts = np.asarray(xy, dtype=np.float64)
     if len(pts) >= 4:
         try:
@@ -225,39 +230,39 @@ def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
         except QhullError:
             pass
     pts = pts[np.random.default_rng(0).permutation(len(pts))]  # fixed order: deterministic result
+    if len(pts) == 0:
+        return np.zeros(2), 0.0
+    P = pts.tolist()
 
     def circle2(a, b):
-        c = (a + b) / 2
-        return c, np.linalg.norm(a - c)
+        cx, cy = (a[0] + b[0]) / 2, (a[1] + b[1]) / 2
+        return cx, cy, math.hypot(a[0] - cx, a[1] - cy)
 
     def circle3(a, b, c):
         d = 2 * (a[0] * (b[1] - c[1]) + b[0] * (c[1] - a[1]) + c[0] * (a[1] - b[1]))
         if abs(d) < 1e-15:
-            cands = [circle2(a, b), circle2(a, c), circle2(b, c)]
-            return max(cands, key=lambda t: t[1])
-        ux = ((a @ a) * (b[1] - c[1]) + (b @ b) * (c[1] - a[1]) + (c @ c) * (a[1] - b[1])) / d
-        uy = ((a @ a) * (c[0] - b[0]) + (b @ b) * (a[0] - c[0]) + (c @ c) * (b[0] - a[0])) / d
-        o = np.array([ux, uy])
-        return o, np.linalg.norm(a - o)
+            return max((circle2(a, b), circle2(a, c), circle2(b, c)), key=lambda t: t[2])
+        aa, bb, cc = a[0] * a[0] + a[1] * a[1], b[0] * b[0] + b[1] * b[1], c[0] * c[0] + c[1] * c[1]
+        ux = (aa * (b[1] - c[1]) + bb * (c[1] - a[1]) + cc * (a[1] - b[1])) / d
+        uy = (aa * (c[0] - b[0]) + bb * (a[0] - c[0]) + cc * (b[0] - a[0])) / d
+        return ux, uy, math.hypot(a[0] - ux, a[1] - uy)
 
     def inside(circ, p):
-        return np.linalg.norm(p - circ[0]) <= circ[1] * (1 + 1e-9) + 1e-12
+        return math.hypot(p[0] - circ[0], p[1] - circ[1]) <= circ[2] * (1 + 1e-9) + 1e-12
 
-    if len(pts) == 0:
-        return np.zeros(2), 0.0
-    circ = (pts[0], 0.0)
-    for i in range(1, len(pts)):
-        if inside(circ, pts[i]):
+    circ = (P[0][0], P[0][1], 0.0)
+    for i in range(1, len(P)):
+        if inside(circ, P[i]):
             continue
-        circ = (pts[i], 0.0)
+        circ = (P[i][0], P[i][1], 0.0)
         for j in range(i):
-            if inside(circ, pts[j]):
+            if inside(circ, P[j]):
                 continue
-            circ = circle2(pts[i], pts[j])
+            circ = circle2(P[i], P[j])
             for k in range(j):
-                if not inside(circ, pts[k]):
-                    circ = circle3(pts[i], pts[j], pts[k])
-    return np.asarray(circ[0]), float(circ[1])
+                if not inside(circ, P[k]):
+                    circ = circle3(P[i], P[j], P[k])
+    return np.array(circ[:2]), float(circ[2])
 
 
 def object_frame(points: np.ndarray, plane: PlaneFit) -> tuple[ObjectFrame, np.ndarray]:

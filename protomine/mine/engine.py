@@ -244,8 +244,10 @@ class _AlignedSums:
         self.acc.index_add_(1, slots, c)
 
     def result(self, scales: tuple[float, ...], shape: tuple[int, int, int], untilt=None) -> np.ndarray:
-        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``untilt(k, t, a)``
-        rotates sums a (B, R, A, H) of tilt t back into prototype k's frame (``TiltBank.untilt``)."""
+        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``untilt(ks, ts, a)``
+        rotates sums a (G, B, R, A, H) of tilts ts (G,) back into their prototypes ks' frames
+        (``TiltBank.untilt_many``): a group's scales are summed first, then every (prototype, tilt) is
+        untilted in one resampling."""
         B, R, H = shape
         out = np.zeros((self.K, B, R, self.A, H))
         if not self.slots:
@@ -254,19 +256,22 @@ class _AlignedSums:
         cols = torch.from_numpy(np.array([self.slots[int(g)] for g in keys], np.int64))
         a = torch.fft.irfft(self.acc[:, cols], n=self.A, dim=0).numpy().astype(np.float64)  # (A, G, B R H)
         a = a.reshape(self.A, len(keys), B, R, H).transpose(1, 2, 3, 0, 4)  # (G, B, R, A, H)
-        for j, g in enumerate(keys):
-            kt, si = divmod(int(g), self.S)
-            k, t = divmod(kt, self.T)
+        kts, sis = np.divmod(keys, self.S)
+        ukt, which = np.unique(kts, return_inverse=True)
+        parts = np.zeros((len(ukt), B, R, self.A, H))
+        for j, si in enumerate(sis):
             part = a[j]
-            s = scales[si]
+            s = scales[int(si)]
             if s != 1.0:
                 m = np.ones((1, R, 1, H), bool)
                 part, m = _resample_axis(part, m, 1.0 / s, 1)
                 part, m = _resample_axis(part, m, 1.0 / s, 3)
                 part = part * m  # cells the scaled members do not cover stay unknown
-            if t and untilt is not None:
-                part = untilt(k, t, part)
-            out[k] += part
+            parts[which[j]] += part
+        ks, ts = np.divmod(ukt, self.T)
+        if untilt is not None and np.any(ts):
+            parts = untilt(ks, ts, parts)
+        np.add.at(out, ks, parts)
         return out
 
 
@@ -342,7 +347,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     S = len(scales)
     bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect)
     T = 1 if tilts is None else len(tilts.grid.dirs)
-    untilt = getattr(bank, "untilt", None)
+    untilt = getattr(bank, "untilt_many", None)
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
