@@ -141,22 +141,24 @@ def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray)
     from the other end, so the wrap is ordinary interpolation."""
     vol = torch.as_tensor(vol)
     m, c, R, A, H = vol.shape
-    dt = vol.dtype
-    pts = torch.as_tensor(np.asarray(pts), dtype=dt)
-    rho_max = torch.as_tensor(np.asarray(rho_max, np.float64).reshape(m, 1), dtype=dt)
-    z_max = torch.as_tensor(np.asarray(z_max, np.float64).reshape(m, 1), dtype=dt)
-    x, y, z = pts.unbind(-1)
-    fi = torch.hypot(x, y) / rho_max * R - 0.5
-    fj = torch.remainder(torch.atan2(y, x), 2 * np.pi) / (2 * np.pi) * A - 0.5
+    # coordinates in numpy, in the volume's precision (cheaper than small threaded tensor operations)
+    dt = np.float64 if vol.dtype == torch.float64 else np.float32
+    pts = np.asarray(pts, dt)
+    rho_max = np.asarray(rho_max, dt).reshape(m, 1)
+    z_max = np.asarray(z_max, dt).reshape(m, 1)
+    x, y, z = pts[..., 0], pts[..., 1], pts[..., 2]
+    fi = np.hypot(x, y) / rho_max * R - 0.5
+    fj = np.mod(np.arctan2(y, x), 2 * np.pi) / (2 * np.pi) * A - 0.5
     fk = z / z_max * H - 0.5
     inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
     # grid_sample's coordinates with align_corners: -1 and +1 are the first and last samples' centres
-    norm = lambda f, n: f * (2.0 / (n - 1)) - 1.0 if n > 1 else torch.zeros_like(f)  # noqa: E731
-    grid = torch.stack([norm(fk.clamp(0.0, H - 1), H), norm(fj + 1.0, A + 2), norm(fi.clamp(0.0, R - 1), R)], -1)
+    norm = lambda f, n: f * (2.0 / (n - 1)) - 1.0 if n > 1 else np.zeros_like(f)  # noqa: E731
+    grid = torch.from_numpy(np.stack([norm(np.clip(fk, 0.0, H - 1), H), norm(fj + 1.0, A + 2),
+                                      norm(np.clip(fi, 0.0, R - 1), R)], -1).astype(dt))
     padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3)
     out = torch.nn.functional.grid_sample(padded, grid.view(m, -1, 1, 1, 3), mode="bilinear", padding_mode="border",
                                           align_corners=True)
-    return out[:, :, :, 0, 0] * inside.to(dt)[:, None]
+    return out[:, :, :, 0, 0] * torch.from_numpy(inside).to(vol.dtype)[:, None]
 
 
 @dataclass
@@ -292,8 +294,10 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     Sh = torch.from_numpy(Sh.astype(np.float32))
     p = torch.from_numpy(np.ascontiguousarray(Pc, np.float32))
     v = torch.from_numpy(np.ascontiguousarray(Vc, np.float32))
-    scale = lambda a: torch.einsum("ir,...rak,jk->...iaj", Sr, a, Sh) * mask  # noqa: E731
-    v, p = scale(v), scale(p)
+    if sigma != 1.0:
+        # (..., R, A, H): radial then height interpolation, as matrix products over the other axes
+        scale = lambda a: (torch.matmul(Sr, a.reshape(-1, R, A * H)).reshape(a.shape) @ Sh.T) * mask  # noqa: E731
+        v, p = scale(v), scale(p)
     vmu = v[:, None] * p
     num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (M, C + 2, R, A, H)
     out = []
@@ -308,6 +312,10 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
 
 # --- the bank ----------------------------------------------------------------------------------
 
+GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geometries are kept across passes
+# (solid-cell mask, aspect, grid shape, margins) -> {tilt index: CopyGeometry}; the geometries are functions of
+# these alone (copy_geometries), so a hit is exact
+_GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
 COPY_BLOCK = 64        # copies resampled per grid_sample call (bounds its temporaries)
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
@@ -342,16 +350,26 @@ class TiltBank:
         self.dft = self.coarse.dft
 
     def _geometries(self, pairs: Sequence[tuple[int, int]]) -> None:
-        """Compute the missing geometries of (prototype, tilt) ``pairs``, one batch per prototype."""
+        """Compute the missing geometries of (prototype, tilt) ``pairs``, one batch per prototype.  A geometry
+        depends on the prototype's solid cells and aspect only, which stop changing as the passes converge:
+        :data:`_GEOMETRY_CACHE` keeps them across banks (passes), keyed by exactly those."""
         by_k: dict[int, list[int]] = {}
         for k, t in pairs:
             if (k, t) not in self._geom:
                 by_k.setdefault(k, []).append(t)
         for k, ts in by_k.items():
-            if k not in self._solid:
-                self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
-            gs = copy_geometries(self.shape, float(self.aspect[k]), self.grid.dirs[ts], self.grid, self._solid[k])
-            self._geom.update({(k, t): g for t, g in zip(ts, gs)})
+            occ = np.packbits((self.P[k, 0] >= SURFACE_MIN) & (self.V[k] >= OBSERVED_MIN)).tobytes()
+            key = (occ, float(self.aspect[k]), self.shape, self.grid.nsides, self.grid.radial_margin, self.grid.height_margin)
+            known = _GEOMETRY_CACHE.setdefault(key, {})
+            todo = [t for t in ts if t not in known]
+            if todo:
+                if k not in self._solid:
+                    self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
+                gs = copy_geometries(self.shape, float(self.aspect[k]), self.grid.dirs[todo], self.grid, self._solid[k])
+                known.update(zip(todo, gs))
+            self._geom.update({(k, t): known[t] for t in ts})
+        while len(_GEOMETRY_CACHE) > GEOMETRY_CACHE_SIZE:
+            _GEOMETRY_CACHE.pop(next(iter(_GEOMETRY_CACHE)))
 
     def geometry(self, k: int, t: int) -> CopyGeometry:
         self._geometries([(int(k), int(t))])
