@@ -209,6 +209,9 @@ def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
     return torch.from_numpy(((1 - t)[None, :] * e0 + t[None, :] * e1).astype(np.complex64))
 
 
+RESULT_BLOCK = 256  # (prototype, tilt, scale) groups transformed back at once by _AlignedSums.result
+
+
 class _AlignedSums:
     """Per (prototype, tilt, scale) sums of members' quantities rolled into the prototype frame, kept as spectra.
 
@@ -253,6 +256,14 @@ class _AlignedSums:
         if not self.slots:
             return out
         keys = np.array(sorted(self.slots), np.int64)
+        # blocks of groups bound the float64 temporaries (a 3-D search fills up to one group per member)
+        for g0 in range(0, len(keys), RESULT_BLOCK):
+            self._add_block(out, keys[g0:g0 + RESULT_BLOCK], scales, shape, untilt)
+        return out
+
+    def _add_block(self, out: np.ndarray, keys: np.ndarray, scales: tuple[float, ...], shape: tuple[int, int, int],
+                   untilt) -> None:
+        B, R, H = shape
         cols = torch.from_numpy(np.array([self.slots[int(g)] for g in keys], np.int64))
         a = torch.fft.irfft(self.acc[:, cols], n=self.A, dim=0).numpy().astype(np.float64)  # (A, G, B R H)
         a = a.reshape(self.A, len(keys), B, R, H).transpose(1, 2, 3, 0, 4)  # (G, B, R, A, H)
@@ -272,7 +283,6 @@ class _AlignedSums:
         if untilt is not None and np.any(ts):
             parts = untilt(ks, ts, parts)
         np.add.at(out, ks, parts)
-        return out
 
 
 class _SpectraCache:
