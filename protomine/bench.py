@@ -31,6 +31,9 @@ absolute times grow with it, so the targets are ratios measured side by side in 
     (``protomine/label/throughput.py``; target >= 500 objects per second).
 (e) large [``large``]: mini-batch mining of ``--size`` objects streamed from disk, and its quality against
     full batches on 10,000 (``protomine/scale/streamed.py``; targets at 100,000: < 10 minutes, < 4 GB).
+(e') tilt mining [``tilt_mining``]: mining ``--tilt-size`` tumbled objects (default 3,000) with the default tilt
+    grid, K = 16, in its own subprocess: ``seconds``, ``peak_rss_mb``, ``n_iter``, ``nmi`` (targets at 3,000: under
+    5 minutes and 2 GB on 2 cores; ``protomine/mine/tiltbench.py``).
 (f) ``--scale`` only: this process against a local Dask cluster of 1 and 2 workers
     (``protomine/scale/benchmark.py``).
 
@@ -238,11 +241,16 @@ def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also writ
           size: Annotated[Optional[int], typer.Option("--size", min=100, max=10_000_000, help="Objects of the "
                                                       "streamed-mining row [large] (default 100,000; 600 with "
                                                       "--quick).")] = None,
+          tilt_size: Annotated[Optional[int], typer.Option("--tilt-size", min=20, max=1_000_000, help="Tumbled "
+                                                           "objects of the tilt mining row [tilt_mining] (default "
+                                                           "3,000; 300 with --quick).")] = None,
           only: Annotated[Optional[str], typer.Option("--only", help="Comma-separated rows to run (e.g. "
                                                       "'assignment,peer'); default: all.")] = None) -> None:
     """Measure pose-search and mining speed and memory on synthetic volumes (see protomine/bench.py)."""
+    from .mine.tiltbench import bench_tilt_mining
     from .scale.streamed import bench_large
     rows = SCALE_ROWS if scale else BENCH_ROWS + [
+        ("tilt_mining", lambda q, s: bench_tilt_mining(q, s, tilt_size)),
         ("large", lambda q, s: bench_large(size or (600 if q else 100_000), s))]
     names = {r for r in only.split(",")} if only else {name for name, _ in rows}
     unknown = names - {name for name, _ in rows}

@@ -21,15 +21,17 @@ centre b, footprint radius r' and height h', so the copy is re-normalised by its
 exactly as an object lying that way would be lifted.  Every cell of the copy's grid is mapped back,
 p = M^T (q + b) + c0, into the prototype's grid and sampled there by trilinear interpolation (azimuth
 wraps; below the first radial bin centre the first bin is used; outside the prototype's cylinder the
-copy's weight is 0 = unknown).  The maps are index/weight arrays (8 corners per cell), built once per
-(prototype, tilt) and applied with one gather, so resampling is a small part of a pass.
+copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per block
+(:func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
+a prototype's solid cells and aspect do not change.
 
 Untilting (inverse map)
 -----------------------
 A member matched at tilt u, aligned (yaw and scale undone), lives in the copy's grid; every prototype
 cell p is mapped to q = M (p - c0) - b in the copy's grid and sampled there, which rotates the member back
 into the prototype frame (cells it does not cover get weight 0).  Both maps are linear, so the engine
-untilts sums of members once per (prototype, tilt, scale) group.
+untilts sums of members once per (prototype, tilt) group (its scales summed first), all groups of a chunk in
+one resampling (:meth:`TiltBank.untilt_many`).
 
 Search (coarse to fine)
 -----------------------
