@@ -243,7 +243,7 @@ def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also writ
                                                       "--quick).")] = None,
           tilt_size: Annotated[Optional[int], typer.Option("--tilt-size", min=20, max=1_000_000, help="Tumbled "
                                                            "objects of the tilt mining row [tilt_mining] (default "
-                                                           "3,000; 300 with --quick).")] = None,
+                                                           "3,000; 30 with --quick).")] = None,
           only: Annotated[Optional[str], typer.Option("--only", help="Comma-separated rows to run (e.g. "
                                                       "'assignment,peer'); default: all.")] = None) -> None:
     """Measure pose-search and mining speed and memory on synthetic volumes (see protomine/bench.py)."""

@@ -111,7 +111,7 @@ def tumbled_objects(rng: np.random.Generator, P: np.ndarray, n: int, grid: TiltG
     return X, W, aspect, labels
 
 
-def _mine_tumbled_once(n: int, k: int, seed: int) -> dict:
+def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15) -> dict:
     """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS."""
     import resource
 
@@ -125,7 +125,7 @@ def _mine_tumbled_once(n: int, k: int, seed: int) -> dict:
     X, W, aspect, labels = tumbled_objects(rng, P, n, grid)
     t0 = time.perf_counter()
     # the mining row's engine settings (protomine/bench.py), the default config's chunk and tilt grid
-    model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=2, max_iter=15, chunk_size=2048, random_state=seed,
+    model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=n_init, max_iter=max_iter, chunk_size=2048, random_state=seed,
                        sample_size=2048, cache_mb=128, tilts=grid).fit(ArraySource(X, W, aspect))
     secs = time.perf_counter() - t0
     return {"n_objects": n, "seconds": secs, "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0,
@@ -134,16 +134,17 @@ def _mine_tumbled_once(n: int, k: int, seed: int) -> dict:
 
 
 def bench_tilt_mining(quick: bool, seed: int, size: int | None = None) -> dict:
-    """Mining ``size`` tumbled objects (default 3,000; 300 with ``quick``) with the default tilts, K = 16 (8 with
-    ``quick``), in its own subprocess so its peak resident memory is its own.  Targets at 3,000: under 5 minutes
-    and 2 GB on 2 cores."""
+    """Mining ``size`` tumbled objects (default 3,000) with the default tilts, K = 16, n_init = 2, max_iter = 15, in
+    its own subprocess so its peak resident memory is its own.  Targets at 3,000: under 5 minutes and 2 GB on 2
+    cores.  ``quick`` is a smoke test of the row: 30 objects (or ``size``), K = 3, one restart of 2 passes."""
     import json
     import subprocess
     import sys
-    n = size or (300 if quick else 3000)
-    k = 8 if quick else 16
-    code = f"import json; from protomine.mine.tiltbench import _mine_tumbled_once; print(json.dumps(_mine_tumbled_once({n}, {k}, {seed})))"
+    n = size or (30 if quick else 3000)
+    k, n_init, max_iter = (3, 1, 2) if quick else (16, 2, 15)
+    code = ("import json; from protomine.mine.tiltbench import _mine_tumbled_once; "
+            f"print(json.dumps(_mine_tumbled_once({n}, {k}, {seed}, {n_init}, {max_iter})))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     row = json.loads(out.stdout.strip().splitlines()[-1])
-    row["n_prototypes"] = k
+    row.update(n_prototypes=k, n_init=n_init, max_iter=max_iter)
     return row
