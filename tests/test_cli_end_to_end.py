@@ -292,7 +292,6 @@ def test_bench_quick_writes_every_row(tmp_path):
     assert doc["label"]["n_objects"] > 0
     t = doc["tilt_mining"]  # the tilt mining row's smoke test: 30 tumbled objects, K = 3
     assert t["n_objects"] == 30 and t["peak_rss_mb"] > 0 and 0.0 <= t["nmi"] <= 1.0
-    assert doc["tilts"]["ratio"] > 1.0  # a tilt search does more than the yaw-only one
     assert "mining" in res.stdout and "assignment" in res.stdout
 
 
