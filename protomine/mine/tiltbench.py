@@ -31,10 +31,11 @@ from .posesearch import PoseBank
 from .tilts import TiltBank, TiltGrid
 
 
-def bench_tilts(quick: bool, seed: int) -> dict:
+def bench_tilts(quick: bool, seed: int, n: int | None = None) -> dict:
+    """The row's figures (module docstring); ``n`` overrides the number of objects."""
     from .synthetic import SCALES, synthetic_objects, synthetic_prototypes
     rng = np.random.default_rng(seed)
-    K, n = (8, 256) if quick else (16, 2048)
+    K, n = (8, n or 256) if quick else (16, n or 2048)
     P = synthetic_prototypes(rng, K)
     X, W, *_ = synthetic_objects(rng, P, n)
     P = np.abs(P)  # surface-like evidence, so the tilted copies have solid cells
