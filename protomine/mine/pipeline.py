@@ -346,6 +346,12 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                  "k_selection": k_table, "notices": notices}
 
 
+def library_gallery_faces(lib: Library) -> list | None:
+    """:func:`gallery_faces` of a library read back (the tilt grid it was mined with), for re-rendered galleries."""
+    grid = TiltGrid.from_config(lib.tilt_config)
+    return gallery_faces(np.asarray(lib.prototypes["volumes"]), lib.prototypes, None if grid.is_identity else grid)
+
+
 def gallery_faces(vols: np.ndarray, protos: dict, grid: TiltGrid | None) -> list | None:
     """Per prototype the picture of its most common other resting face (``gallery.render_gallery``), or None."""
     if grid is None:
