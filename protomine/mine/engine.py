@@ -660,8 +660,12 @@ class PoseKMeans:
             noise = sym.mean_variance(*res.moments).mean(axis=(1, 2, 3, 4))
             bank = TiltBank(self.prototypes_, self.prototype_weights_, res.aspect, scales, grid)
             # symmetries that move up (a box tipped onto an equal side): poses modulo them before the faces
-            self.symmetry_rotations_ = [sym.tilt_symmetries(bank, k, float(noise[k]), int(symm[k]), factor=self.symmetry_factor,
-                                                            tol=self.symmetry_tol) for k in range(self.n_clusters)]
+            self.symmetry_rotations_ = []
+            with bar(self.progress, "symmetry in 3-D", total=self.n_clusters, unit="prototypes") as b:
+                for k in range(self.n_clusters):
+                    self.symmetry_rotations_.append(sym.tilt_symmetries(bank, k, float(noise[k]), int(symm[k]),
+                                                                        factor=self.symmetry_factor, tol=self.symmetry_tol))
+                    b.advance()
             for k, reps in enumerate(self.symmetry_rotations_):
                 sel = np.flatnonzero(res.labels == k)
                 if len(reps) > 1 and len(sel):
