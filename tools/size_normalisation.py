@@ -1,6 +1,6 @@
 """Size normalisation across resting faces, measured: which way should tilted copies be sized?
 
-    PYTHONPATH=. python tools/size_normalisation.py DEMO_OUT [--config default]
+    PYTHONPATH=. python tools/size_normalisation.py DEMO_OUT [--config default] [--store objects.h5]
 
 DEMO_OUT is a `protomine demo` folder (objects.h5 and scenes/truth_full.csv; the default scenario tumbles half
 of the instances).  Two options, same features, same tilt x yaw x scale search (`mine.tilts`):
@@ -104,9 +104,10 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("demo_out", type=Path)
     ap.add_argument("--config", default="default")
+    ap.add_argument("--store", default="objects.h5", help="store in DEMO_OUT to measure on (new_scans.h5: the single views)")
     a = ap.parse_args(argv)
     cfg = load_config(a.config)
-    st = open_store(a.demo_out / "objects.h5")
+    st = open_store(a.demo_out / a.store)
     with open(a.demo_out / "scenes" / "truth_full.csv", newline="") as fh:
         truth = {r["object"]: r for r in csv.DictReader(fh)}
     ids = [str(o) for o in st.ids]
