@@ -23,7 +23,7 @@ from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from ..progress import detail
-from .convexity import convex_parts, join_parts, voxel_normals
+from .convexity import convex_parts, frame_segments, join_parts, view_votes, voxel_normals
 from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
@@ -40,6 +40,7 @@ STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far insid
 LOW_FLOOR_M = 0.002         # the low band (grown into objects) starts this high over the plane ...
 LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy sensors
 LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
+VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
@@ -165,14 +166,19 @@ def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.
     return plane
 
 
+def voxel_index(pts: np.ndarray, size: float) -> tuple[int, np.ndarray]:
+    """Number of occupied voxels V of points (M, 3) on a grid of ``size`` and each point's voxel (M,)."""
+    keys, inv = np.unique(np.floor(pts / size).astype(np.int64), axis=0, return_inverse=True)
+    return len(keys), inv.reshape(-1)
+
+
 def voxel_means(pts: np.ndarray, size: float, *values: np.ndarray) -> tuple[np.ndarray, ...]:
     """Voxel centroids (V, 3) of points (M, 3) on a grid of ``size``, and the voxel means of each (M, ...) value."""
-    keys, inv = np.unique(np.floor(pts / size).astype(np.int64), axis=0, return_inverse=True)
-    inv = inv.reshape(-1)
-    count = np.bincount(inv, minlength=len(keys)).astype(np.float64)
+    n, inv = voxel_index(pts, size)
+    count = np.bincount(inv, minlength=n).astype(np.float64)
     out = []
     for v in (pts,) + values:
-        acc = np.zeros((len(keys),) + v.shape[1:])
+        acc = np.zeros((n,) + v.shape[1:])
         np.add.at(acc, inv, v)
         out.append(acc / count.reshape((-1,) + (1,) * (v.ndim - 1)))
     return tuple(out)
@@ -317,7 +323,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
-        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
+        votes = _frame_votes(cap, frames, above_sel, pts, eps / 3.0, c["concave_deg"]) if VIEW_CHECK else None
+        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes)
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours)
@@ -372,6 +379,22 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         p.frame, p.center_world = object_frame(np.concatenate([vx, pts[near]]), plane)
         out.append(p)
     return out
+
+
+def _frame_votes(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarray], pts: np.ndarray, size: float,
+                 concave_deg: float):
+    """Each frame's segments (``convexity.frame_segments``) of its readings above the plane, as per-voxel
+    shares (``convexity.view_votes``) on the voxel grid of ``pts`` (the concatenated selected readings)."""
+    K = cap.intrinsics.K
+    segs, fidx = [], []
+    for f, (fd, s) in enumerate(zip(frames, above_sel)):
+        region = np.zeros(fd.depth.size, bool)
+        region[fd.pixels[s]] = True
+        seg = frame_segments(fd.depth, region.reshape(fd.depth.shape), K, concave_deg)
+        segs.append(seg.reshape(-1)[fd.pixels[s]])
+        fidx.append(np.full(int(s.sum()), f))
+    n, inv = voxel_index(pts, size)
+    return view_votes(inv, np.concatenate(segs), np.concatenate(fidx), n)
 
 
 def low_floor(plane: PlaneFit) -> float:
