@@ -112,3 +112,27 @@ def test_view_votes_cut_pairs_the_frames_put_apart():
     segment2[4] = 3                                           # now frame 1 puts 2 apart from 0 and 1 as well
     cut = view_disagreement(np.array([[0, 1], [1, 2]]), view_votes(inv, segment2, frame, 4))
     assert cut.tolist() == [False, True]
+
+
+def _block(lo, hi, step=0.004):
+    axes = [np.arange(a, b + 1e-9, step) for a, b in zip(lo, hi)]
+    return np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, 3)
+
+
+def test_a_lid_rests_on_its_own_walls_not_on_a_touching_neighbour_of_another_colour():
+    """A box cut into its lid and two walls (creases), and a block of another colour that touches one wall
+    and reaches under the lid's overhang.  The lid cannot stand alone; it rests on both walls (one object)
+    and the block stays apart.  Expected answer by construction."""
+    from protomine.ingest.convexity import join_parts
+    pieces = [_block((-0.07, -0.04, 0.062), (0.07, 0.04, 0.066)),        # lid, 2 cm overhang
+              _block((-0.05, -0.04, 0.0), (-0.042, 0.04, 0.058)),        # wall
+              _block((0.042, -0.04, 0.0), (0.05, 0.04, 0.058)),          # wall
+              _block((0.054, -0.04, 0.0), (0.12, 0.04, 0.056))]          # neighbour, partly under the overhang
+    pts = np.concatenate(pieces)
+    parts = np.concatenate([np.full(len(p), i) for i, p in enumerate(pieces)])
+    rgb = np.array([[150, 100, 50]] * 3 + [[50, 80, 180]], float)[parts]
+    lab = join_parts(pts, parts, pts[:, :2], pts[:, 2], link_radius=0.012, reach=0.036, support_band=0.025,
+                     inset=0.003, min_voxels=30, colours=rgb)
+    assert lab[parts == 0][0] == lab[parts == 1][0] == lab[parts == 2][0]
+    assert lab[parts == 3][0] != lab[parts == 0][0]
+    assert len(np.unique(lab)) == 2

@@ -32,6 +32,7 @@ NORMAL_NEIGHBOURS = 16   # PCA neighbourhood size for voxel normals
 SEAM_SHARE = 0.01        # share of a group's voxels along the seam with a neighbour of its colour to join it
 SAME_CHROMA = 0.03       # chromaticity distance below which two groups have one colour (measured: one object's
                          # blocks 0.004; touching demo objects 0.15-0.6)
+REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
 UNDER_MIN = 10           # voxels under a part's footprint that make a neighbour its support
 
 
@@ -154,8 +155,28 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
             per_group = np.bincount(group, weights=w, minlength=n)
             per_group[g] = 0
             under = _support_under(xy, heights, sel, group[np.maximum(parts, 0)], ok, g, n)
+            if colours is not None and (under.max() > 0 or per_group.max() > 0):
+                # a part hangs on or rests on its own object, mostly of its own colour (chromaticity as in
+                # _join_same_colour): when some neighbour has its colour, only those are candidates
+                cand = np.flatnonzero((under > 0) | (per_group > 0))
+                mine = _chroma(colours[sel])
+                same = np.zeros(n, bool)
+                for q in cand:
+                    qv = np.concatenate([voxels[int(p)] for p in np.flatnonzero(group == q) if int(p) in voxels])
+                    same[q] = np.linalg.norm(_chroma(colours[qv]) - mine) < SAME_CHROMA
+                if (same & (under > 0)).any():
+                    under, per_group = np.where(same, under, 0.0), np.where(same, per_group, 0.0)
+                elif (same & (per_group > 0)).any():
+                    under, per_group = np.zeros(n), np.where(same, per_group, 0.0)
             if under.max() > 0:            # what it rests on: a lid on its walls, a flange on its core
-                target = int(under.argmax())
+                # among the groups under it, the one it meets along the longest seam (a lid meets its own
+                # walls all around, a touching neighbour that reaches under its rim at a few points)
+                seam = np.where(under > 0, per_group, 0.0)
+                target = int(seam.argmax()) if seam.max() > 0 else int(under.argmax())
+                # it rests on all of them: a lid on each of the walls it meets (walls split from one another
+                # by a crease), so they join it together rather than one wall at a time
+                for other_g in np.flatnonzero((seam >= REST_SEAM_SHARE * seam.max()) & (seam > 0)):
+                    group[group == other_g] = target
             elif per_group.max() > 0:
                 target = int(per_group.argmax())
             else:                 # nothing within link_radius (a thin leg's sparse middle): nearest within reach
@@ -174,6 +195,12 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
         group = _join_same_colour(points, colours, np.where(ok, group[np.maximum(parts, 0)], -1), link_radius)
         return _relabel(group)
     return _relabel(np.where(ok, group[np.maximum(parts, 0)], -1))
+
+
+def _chroma(rgb: np.ndarray) -> np.ndarray:
+    """Median chromaticity (3,) (r, g, b) / (r + g + b) of colours (M, 3)."""
+    c = np.median(rgb, axis=0)
+    return c / max(float(c.sum()), 1e-9)
 
 
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float) -> np.ndarray:
