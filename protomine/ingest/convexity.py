@@ -13,12 +13,20 @@ Euclidean groups (DBSCAN, -1 = noise).  Nothing here assumes a world axis is up:
    convex (Stein et al.'s threshold beta against sensor noise).  Connected components of the remaining graph
    are the convex parts.  Two objects that touch meet in a concave crease all around their contact, so they
    fall apart; a part is only cut off when a closed ring of concave connections surrounds it.
+   Checked across views (``frame_segments``, ``view_votes``): in each depth image the readings are split
+   along occluding edges and concave creases measured on the image grid (normals that never mix two
+   surfaces); a pair of adjacent voxels is cut as well when the frames that see both mostly put them in
+   different segments, or when one of them lies on such a boundary in every frame (where objects touch).
+   In the fused cloud alone a few noisy convex connections at a contact join two objects; the frames agree
+   on the boundary there.
 3. Parts back into objects: an object can stand on the support plane by itself (its centre of mass lies over
    its support polygon).  A part that cannot (a handle, a knob, pegs on a post, a lid, a tripod's slanted
    leg, a sliver cut from a wall) is a piece of the object it hangs on: it joins the neighbour part it shares
    the most close voxel pairs with (a lid meets its own walls all around, a neighbour it leans on at a few
-   points).  Parts too small to be an object join their most connected neighbour too.  What stands on its
-   own stays its own object (parts standing on another's footprint are joined later, by
+   points).  Parts too small to be an object join their most connected neighbour too.  A part resting on
+   several groups (a lid on walls split from one another) joins all it meets along a seam; with colours,
+   neighbours of the part's own chromaticity are preferred (a touching neighbour mostly differs in colour).
+   What stands on its own stays its own object (parts standing on another's footprint are joined later, by
    ``proposals._merge_overlapping_footprints``).
 """
 from __future__ import annotations
