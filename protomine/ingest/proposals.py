@@ -39,6 +39,7 @@ SUPPORT_BAND_M = 0.025      # points this low over the plane form an object's su
 STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far inside it to stand alone
 LOW_FLOOR_M = 0.002         # the low band (grown into objects) starts this high over the plane ...
 LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy sensors
+SMOOTH_WINDOW = 5           # pixels: median window of the smoothed low band (``smoothed_band``)
 LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
 VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
@@ -358,8 +359,10 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         h[fd.pixels] = plane.height(fd.points)
         steady = np.zeros(fd.depth.size, bool)
         steady[fd.pixels] = fd.steady
-        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, (h > floor).reshape(fd.depth.shape)
-                                    & steady.reshape(fd.depth.shape), LOW_GROW_PIXELS).reshape(-1)
+        band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
+                                                                               above_plane_margin(plane, cfg)))
+        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, band & steady.reshape(fd.depth.shape),
+                                    LOW_GROW_PIXELS).reshape(-1)
         point_of = np.full(fd.depth.size, -1)
         point_of[fd.pixels] = np.arange(len(fd.pixels))
         for i, p in enumerate(props):
@@ -395,6 +398,27 @@ def _frame_votes(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarr
         fidx.append(np.full(int(s.sum()), f))
     n, inv = voxel_index(pts, size)
     return view_votes(inv, np.concatenate(segs), np.concatenate(fidx), n)
+
+
+def smoothed_band(h: np.ndarray, valid: np.ndarray, plane: PlaneFit, margin: float) -> np.ndarray:
+    """(H, W) bool: readings of a frame whose height over the plane, median-filtered over a
+    SMOOTH_WINDOW square, stands above the table's own smoothed noise.
+
+    A thin base disc (a few mm) on a noisy sensor is half below the per-reading floor (2.5 x the plane's
+    residual), a speckle growth cannot cross.  The median of a window is as high as the disc, and its
+    spread over the table is measured in this very frame (robust MAD of the filtered heights of the
+    readings near the plane), so noise correlated between neighbouring readings (stereo matching windows)
+    raises the floor instead of leaking the table into objects.  h: (H, W) heights (m), valid: (H, W) bool,
+    margin: the grouping margin (m)."""
+    from scipy.ndimage import median_filter
+    # readings above the grouping margin (the objects themselves) and holes count as low: the median only
+    # rises where most of the window is low band, so it never spreads an object's body over the table
+    hs = median_filter(np.where(valid & (h <= margin), h, -1.0), size=SMOOTH_WINDOW)
+    near = valid & (np.abs(h) < NOISE_MARGIN * max(plane.residual_m, 1e-4)) & (hs > -1.0)
+    if near.sum() < 100:
+        return np.zeros(h.shape, bool)
+    sigma = 1.4826 * float(np.median(np.abs(hs[near] - np.median(hs[near]))))
+    return valid & (hs > max(LOW_FLOOR_M, LOW_FLOOR_SIGMA * sigma))
 
 
 def low_floor(plane: PlaneFit) -> float:
