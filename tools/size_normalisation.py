@@ -68,11 +68,10 @@ def invariant_regrid(vol: np.ndarray, X: np.ndarray, W: np.ndarray, radius: np.n
 
 
 def _fixed_extent(orig):
-    """copy_geometry that keeps the prototype's own extent (invariant sizing): only re-based."""
-    def copy_geometry(surface, weight, aspect, up, grid, solid=None):
-        g = orig(surface, weight, aspect, up, grid, solid)
-        return tilts.CopyGeometry(g.M, g.c0, g.base, 1.0, float(aspect))
-    return copy_geometry
+    """copy_geometries that keep the prototype's own extent (invariant sizing): only re-based."""
+    def copy_geometries(shape, aspect, ups, grid, solid):
+        return [tilts.CopyGeometry(g.M, g.c0, g.base, 1.0, float(aspect)) for g in orig(shape, aspect, ups, grid, solid)]
+    return copy_geometries
 
 
 def figures(D: np.ndarray, cls: np.ndarray, face: np.ndarray) -> dict:
@@ -130,12 +129,14 @@ def main(argv=None) -> int:
     D = tilt_pose_distances(X, W, X, W, aspect=asp, scales=scales, grid=grid).D
     out["per-face"] = figures(D, cls, face)
     Xi, Wi, _ = invariant_regrid(vol, X, W, radius, height, rm, hm)
-    orig = tilts.copy_geometry
-    tilts.copy_geometry = _fixed_extent(orig)
+    orig = tilts.copy_geometries
+    tilts.copy_geometries = _fixed_extent(orig)  # the banks' geometries (kept across banks: cleared around it)
+    tilts._GEOMETRY_CACHE.clear()
     try:
         D = tilt_pose_distances(Xi, Wi, Xi, Wi, aspect=np.full(len(Xi), INV_HEIGHT / INV_RADIAL), scales=scales, grid=grid).D
     finally:
-        tilts.copy_geometry = orig
+        tilts.copy_geometries = orig
+        tilts._GEOMETRY_CACHE.clear()
     out["invariant"] = figures(D, cls, face)
     print(f"{len(idx)} objects, {len(set(cls))} classes, {int(np.sum(face != 'upright'))} tumbled; "
           f"tilts {grid.nsides}")

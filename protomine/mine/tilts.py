@@ -134,6 +134,35 @@ def _cell_points(R: int, A: int, H: int, rho_max: float, z_max: float) -> np.nda
     return np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], -1).reshape(-1, 3)
 
 
+def _trilinear(pts: np.ndarray, shape: tuple[int, int, int], rho_max: float, z_max: float
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Sampling map of points (M, 3) in a cylindrical grid: corner indices (8, M) into R A H and weights (8, M)
+    (all 0 for points outside the grid's cylinder); the same reading as :func:`sample_volumes`, as explicit
+    index/weight arrays for callers that apply one map to many volumes."""
+    R, A, H = shape
+    fi = np.hypot(pts[:, 0], pts[:, 1]) / rho_max * R - 0.5
+    fj = np.mod(np.arctan2(pts[:, 1], pts[:, 0]), 2 * np.pi) / (2 * np.pi) * A - 0.5
+    fk = pts[:, 2] / z_max * H - 0.5
+    inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
+    fi = np.clip(fi, 0.0, R - 1)
+    fk = np.clip(fk, 0.0, H - 1)
+    i0, j0, k0 = np.floor(fi), np.floor(fj), np.floor(fk)
+    ti, tj, tk = fi - i0, fj - j0, fk - k0
+    idx, wts = [], []
+    for di in (0, 1):
+        ii = np.minimum(i0 + di, R - 1).astype(np.int64)
+        wi = ti if di else 1 - ti
+        for dj in (0, 1):
+            jj = np.mod(j0 + dj, A).astype(np.int64)
+            wj = tj if dj else 1 - tj
+            for dk in (0, 1):
+                kk = np.minimum(k0 + dk, H - 1).astype(np.int64)
+                wk = tk if dk else 1 - tk
+                idx.append((ii * A + jj) * H + kk)
+                wts.append(wi * wj * wk * inside)
+    return np.stack(idx), np.stack(wts).astype(np.float32)
+
+
 def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray) -> torch.Tensor:
     """Trilinear samples (m, c, N) of cylindrical volumes ``vol`` (m, c, R, A, H) (array or tensor; its dtype
     is kept) at points ``pts`` (m, N, 3) of each volume's frame, whose grid extents are ``rho_max``,
