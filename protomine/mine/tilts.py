@@ -57,8 +57,7 @@ from .. import rotations as rot
 from scipy.spatial import ConvexHull, QhullError
 
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import (PoseBank, PoseMatch, _best_pose_torch, _distances_from_spectra, _prepare, _prototype_spectra,
-                         scale_prototypes)
+from .posesearch import PoseBank, PoseMatch, _best_pose_torch, _distances_from_spectra, _prepare
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
 OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
