@@ -128,8 +128,10 @@ def test_scenario_stereo_captures_share_scenes_with_gaussian_ones(tmp_path):
 
 
 def test_lifting_leaves_flying_pixels_unobserved_not_free(box_frame):
-    """A reading halfway between the box top and the table (a flying pixel) is neither surface nor free
-    space: the cells that project onto it are unobserved, as they are where the reading is missing."""
+    """Readings between the box top and the table (flying pixels) are neither surface nor free space: the
+    cells that project onto them are unobserved, as they are where the reading is missing.  Each mixed
+    reading takes its own depth between the two surfaces, as a matching window straddling an edge gives
+    (a column of equal readings would be a thin surface of its own)."""
     from protomine.geometry import world_to_pixel
     from protomine.ingest.volume import Grid, ObjectFrame, View, cell_centres, lift
     fr, K = box_frame
@@ -138,7 +140,8 @@ def test_lifting_leaves_flying_pixels_unobserved_not_free(box_frame):
     cols = np.flatnonzero((fr.mask > 0).any(axis=0))
     rows = np.flatnonzero(fr.mask[:, cols[0]] > 0)
     mixed = depth.copy()
-    mixed[rows, cols[0] - 1] = 0.5                   # mixed readings along the box's left edge
+    # mixed readings along the box's left edge, anywhere between the box top (0.4 m) and the table (0.6 m)
+    mixed[rows, cols[0] - 1] = np.random.default_rng(0).uniform(0.43, 0.57, len(rows))
     missing = depth.copy()
     missing[rows, cols[0] - 1] = 0.0
     grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=8)
