@@ -17,4 +17,10 @@ import os as _os
 # once, when torch loads, so it is set here, before any stage imports torch
 _os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
+# freed chunk-sized temporaries (up to 64 MB) stay in the heap for the next chunk instead of being unmapped
+# and zero-filled again on first touch (protomine.cores.reuse_freed_memory; a no-op where this is not glibc)
+from . import cores as _cores  # noqa: E402
+
+_cores.reuse_freed_memory()
+
 __version__ = "0.1.0"

@@ -11,11 +11,14 @@ absolute times grow with it, so the targets are ratios measured side by side in 
 (a) assignment of the same N = 4,096 objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
     ``naive_s`` (explicitly rolling every prototype for every shift, timed on N / 16 objects and scaled),
-    ``ratio_fft_dense`` (target <= 2), ``ratio_naive_fft``; ``matmul_peak_gflops`` (best of 3 float32
+    ``ratio_fft_dense`` (target <= 2), ``ratio_naive_fft``; ``fft_cpu_s``, ``dense_cpu_s``,
+    ``ratio_fft_dense_cpu``: the same in CPU seconds of this process (less sensitive to a shared machine's load); ``matmul_peak_gflops`` (best of 3 float32
     4096 x 4096 torch products, 2 n^3 operations each, same process and threads), ``products_gflop``,
     ``products_s``, ``products_gflops`` (the search's per-frequency batched products, ``bmm``/``baddbmm``,
     timed by torch's profiler with their shapes), ``products_fraction_of_peak`` (target >= 0.5),
-    ``products_share_of_search``.
+    ``products_share_of_search``.  Both sides run with freed chunk-sized temporaries kept in the heap
+    (``protomine/__init__.py``); before that the 50 MB temporaries of a 512-object chunk were mapped and
+    zero-filled afresh on every chunk, which cost the dense pass more than its arithmetic.
 (b) mining with fixed K = 32 and the default 5 scales (``SCALES``) [``mining``]: ``sizes``, a list of
     {``n_objects``, ``seconds``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
     subprocess so its peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``, which includes
@@ -61,6 +64,17 @@ def _time(fn: Callable[[], object]) -> float:
     return time.perf_counter() - t0
 
 
+def _times(fn: Callable[[], object], repeats: int) -> tuple[float, float]:
+    """Best wall seconds and best CPU seconds (this process, all threads) of ``repeats`` calls."""
+    wall, cpu = [], []
+    for _ in range(repeats):
+        t0, c0 = time.perf_counter(), time.process_time()
+        fn()
+        wall.append(time.perf_counter() - t0)
+        cpu.append(time.process_time() - c0)
+    return min(wall), min(cpu)
+
+
 def matmul_peak_gflops(n: int, repeats: int = 3) -> float:
     """The machine's float32 matrix-multiply rate in this process: best of ``repeats`` (n, n) @ (n, n)
     torch products, 2 n^3 floating-point operations each (the usual count of a multiply-add as 2)."""
@@ -101,14 +115,15 @@ def bench_assignment(quick: bool, seed: int) -> dict:
     pose_distances(X[:64], W[:64], P, V)  # warm-up (thread pools, allocator)
     load0 = os.getloadavg()[0]
     peak = matmul_peak_gflops(1024 if quick else 4096)
-    fft_s = min(_time(lambda: pose_distances(X, W, P, V, chunk_size=512)) for _ in range(2))
-    dense_s = min(_time(lambda: dense_distances(X, W, P, V, chunk_size=512)) for _ in range(2))
+    fft_s, fft_cpu = _times(lambda: pose_distances(X, W, P, V, chunk_size=512), 2)
+    dense_s, dense_cpu = _times(lambda: dense_distances(X, W, P, V, chunk_size=512), 2)
     prod_s, prod_flops = _product_time_and_flops(lambda: pose_distances(X, W, P, V, chunk_size=512))
     m = max(32, n // 16)  # the naive way is slow: time a slice and scale up
     naive_s = _time(lambda: pose_distances_naive(X[:m], W[:m], P, V, chunk_size=512)) * n / m
     prod_gflops = prod_flops / max(prod_s, 1e-12) / 1e9
     return {"n_objects": n, "n_prototypes": K, "n_shifts": GRID[2], "fft_s": fft_s, "dense_s": dense_s,
             "naive_s": naive_s, "naive_timed_objects": m, "ratio_fft_dense": fft_s / dense_s,
+            "fft_cpu_s": fft_cpu, "dense_cpu_s": dense_cpu, "ratio_fft_dense_cpu": fft_cpu / dense_cpu,
             "ratio_naive_fft": naive_s / fft_s, "matmul_peak_gflops": peak, "products_gflop": prod_flops / 1e9,
             "products_s": prod_s, "products_gflops": prod_gflops, "products_fraction_of_peak": prod_gflops / peak,
             "products_share_of_search": prod_s / fft_s, "torch_threads": cores.usable_cores(),

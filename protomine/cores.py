@@ -66,7 +66,8 @@ def set_torch_threads(n: int) -> None:
 
 def enter_worker() -> None:
     """Mark this process as an executor's worker: torch gets one thread (the module policy) and freed
-    chunk-sized memory is reused (:func:`reuse_freed_memory`)."""
+    chunk-sized memory is reused (:func:`reuse_freed_memory`; again here, because Dask's nanny sets
+    ``MALLOC_TRIM_THRESHOLD_`` in its workers' environment)."""
     global _WORKER
     if not _WORKER:
         _WORKER = True
@@ -86,7 +87,10 @@ def reuse_freed_memory(mmap_threshold: int = 64 * 2**20, trim_threshold: int = 2
     distances for every pose: megabytes to tens of megabytes) is a fresh ``mmap`` whose pages the kernel
     zeroes on first touch, and is unmapped again when freed.  That made a Dask worker about 2x slower per
     object than the same code in a pool worker or in-process (measured: 0.9 s vs 0.42 s per chunk of 128
-    objects, K = 8, 5 scales).  Returns False where this is not glibc.
+    objects, K = 8, 5 scales).  Every protomine process calls it on import (``protomine/__init__.py``): glibc's
+    own dynamic threshold stops at 32 MB, so chunks of 512 objects (spectra of 50 MB) were mapped afresh in
+    every process, which made the bench's pose-unaware baseline 3x slower than its arithmetic (0.72 s vs
+    2.5 s for 4,096 objects x 32 prototypes, 1 thread).  Returns False where this is not glibc.
     """
     try:
         libc = ctypes.CDLL("libc.so.6")

@@ -40,17 +40,19 @@ def _scenario_matches(folder: Path, params: dict) -> bool:
 
 
 def heldout_subset(truth_csv: Path, mined_ids: list[str], out_csv: Path, fraction: float, rng: np.random.Generator) -> int:
-    """Write object,label,yaw_deg for a random ``fraction`` of the mined objects (the audit's hand labels)."""
+    """Write object,label,yaw_deg,qx,qy,qz,qw for a random ``fraction`` of the mined objects (the audit's hand
+    labels; the quaternion is the truth pose, x_world = R x_model + t, when the scenario gives it)."""
     with open(truth_csv, newline="") as fh:
         rows = {r["object"]: r for r in csv.DictReader(fh)}
     ids = [o for o in mined_ids if o in rows]
     pick = sorted(rng.choice(len(ids), size=max(1, int(round(fraction * len(ids)))), replace=False))
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["object", "label", "yaw_deg"])
+    w.writerow(["object", "label", "yaw_deg", "qx", "qy", "qz", "qw"])
     for i in pick:
         r = rows[ids[i]]
-        w.writerow([r["object"], r["class"], r["yaw_deg"] if r["symmetry"] != "continuous" else ""])
+        w.writerow([r["object"], r["class"], r["yaw_deg"] if r["symmetry"] != "continuous" else "",
+                    *(r.get(c, "") for c in ("qx", "qy", "qz", "qw"))])
     write_text(out_csv, buf.getvalue())
     return len(pick)
 
@@ -81,7 +83,8 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv", scores=stats["scores"])
     typer.echo(f"label: {ev['n_known']} known and {ev['n_unknown']} never-mined objects in {len(singles)} single views; "
                f"known-class accuracy {ev['accuracy']:.3f} (deciding by score instead: {ev['accuracy_by_score']:.3f}), "
-               f"median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg; "
+               f"median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg, "
+               f"rotation error {ev['median_rotation_error_deg']:.1f} deg; "
                f"unknown AUROC {ev['auroc']:.3f}, flagged: {ev['unknown_flagged']:.0%} of unknown, "
                f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
                f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")
@@ -192,7 +195,8 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     base = kmeans_baseline(open_store(store), cfg, truth, lib.n_clusters, seed)
     typer.echo(f"mine: K={lib.n_clusters} (true classes {n_classes}); purity {ev['purity']:.3f}, NMI {ev['nmi']:.3f}; "
                f"yaw error median {ev['yaw_error_median_deg']:.1f} deg, p90 {ev['yaw_error_p90_deg']:.1f} deg "
-               f"(per-cluster offset, modulo symmetry); symmetry right for {ev['symmetry_correct']}/{ev['symmetry_total']} clusters")
+               f"(per-cluster offset, modulo symmetry); rotation error median {ev['rotation_error_median_deg']:.1f} deg, "
+               f"p90 {ev['rotation_error_p90_deg']:.1f} deg; symmetry right for {ev['symmetry_correct']}/{ev['symmetry_total']} clusters")
     typer.echo(f"      pose-unaware baseline (scikit-learn KMeans on flattened volumes, same K): "
                f"purity {base['purity']:.3f}, NMI {base['nmi']:.3f}")
     typer.echo(f"      gallery {out / 'gallery.png'}; assignments {out / 'assignments.csv'}")

@@ -112,15 +112,14 @@ def tilt_matrix(up: np.ndarray) -> np.ndarray:
     u = np.asarray(up, np.float64)
     u = u / np.maximum(np.linalg.norm(u, axis=-1, keepdims=True), EPS)
     flat = u.reshape(-1, 3)
-    out = np.empty((len(flat), 3, 3))
-    for i, v in enumerate(flat):
-        c = v[2]
-        if c < -1.0 + 1e-12:
-            out[i] = np.diag([1.0, -1.0, -1.0])
-            continue
-        k = np.array([v[1], -v[0], 0.0])  # v x e_z (unnormalised; |k| = sin angle)
-        K = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-        out[i] = np.eye(3) + K + K @ K / (1.0 + c)
+    c = flat[:, 2]
+    down = c < -1.0 + 1e-12
+    # K = [v x e_z]_x with v x e_z = (v_y, -v_x, 0) (unnormalised; |k| = sin angle), all directions at once
+    K = np.zeros((len(flat), 3, 3))
+    K[:, 0, 2], K[:, 1, 2] = -flat[:, 0], -flat[:, 1]
+    K[:, 2, 0], K[:, 2, 1] = flat[:, 0], flat[:, 1]
+    out = np.eye(3) + K + K @ K / np.where(down, 1.0, 1.0 + c)[:, None, None]
+    out[down] = np.diag([1.0, -1.0, -1.0])
     return out.reshape(u.shape[:-1] + (3, 3))
 
 

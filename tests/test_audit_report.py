@@ -261,3 +261,39 @@ def test_unlabelled_cluster_named_like_a_clean_one_is_a_duplicate():
                     names={3: "mug"}, cfg=load_config("fast"), rng=np.random.default_rng(0))
     by = {c["cluster"]: c for c in a["clusters"]}
     assert by[3]["verdict"] == "duplicate" and by[3]["merge_with"] in (0, 2)
+
+
+def test_pose_consistency_uses_the_rotation_error_modulo_the_prototype_group(tmp_path):
+    # truth poses R_true = R_pred g O (one offset O per cluster, g a symmetry of the prototype) plus a small
+    # known turn per object; the error is that turn's angle (scipy.spatial.transform.Rotation.magnitude as the
+    # reference) once the prototype's group (scipy's D2: half turns about x, y, z) absorbs g
+    from scipy.spatial.transform import Rotation
+    rng = np.random.default_rng(5)
+    n = 12
+    ids = [f"cap0/{i + 1}" for i in range(n)]
+    Rp = Rotation.random(n, random_state=1)
+    group = Rotation.create_group("D2")
+    g = group[rng.integers(0, len(group), n)]
+    turn = Rotation.from_rotvec(rng.normal(size=(n, 3)) * np.deg2rad(4.0))
+    O = Rotation.random(random_state=2)
+    Rt = turn * Rp * g * O
+    asg = Assignments(ids, np.zeros(n, int), np.zeros(n), np.ones(n), np.ones(n), np.ones(n), rotation=Rp.as_quat())
+    rows = [TruthRow(row=i + 2, label="tile", object=oid, rotation=tuple(Rt[i].as_quat())) for i, oid in enumerate(ids)]
+    objects = ObjectTable(ids, ["cap0"] * n, np.zeros((n, 3)))
+    a = build_audit(asg, rows, objects, symmetry_period_deg={0: 180.0}, names={}, cfg=load_config("fast"),
+                    rng=np.random.default_rng(0), symmetry_groups={0: group.as_matrix()})
+    pose = a["clusters"][0]["pose"]
+    assert pose["kind"] == "rotation" and pose["n"] == n
+    # the medoid offset is one member's: errors are relative to that member's turn, so within twice the turns
+    ref = turn.magnitude() * 180 / np.pi
+    assert np.max(pose["errors_deg"]) <= 2 * ref.max() + 1e-6
+    assert np.median(pose["errors_deg"]) < 10.0
+    # without the group the half turns g show up as errors near 180 degrees
+    b = build_audit(asg, rows, objects, symmetry_period_deg={0: 180.0}, names={}, cfg=load_config("fast"),
+                    rng=np.random.default_rng(0))
+    assert np.max(b["clusters"][0]["pose"]["errors_deg"]) > 150.0
+    # the truth CSV's quaternion columns are read into the rows
+    p = tmp_path / "truth.csv"
+    p.write_text("object,label,qx,qy,qz,qw\ncap0/1,tile,0,0,0,1\ncap0/2,tile,,,,\n")
+    got = read_truth(p)
+    assert got[0].rotation == (0.0, 0.0, 0.0, 1.0) and got[1].rotation is None

@@ -57,3 +57,82 @@ def test_stands_alone_by_the_centre_of_mass_over_the_support_polygon():
     t = rng.uniform(0, 1, 300)
     leg_xy = np.c_[0.06 * t, np.zeros(300)] + rng.normal(0, 0.002, (300, 2))
     assert not stands_alone(leg_xy, 0.1 * t, support_band=0.025, inset=0.003)
+
+
+# --- per-frame segments (occluding edges and creases in one depth image) -----------------------------------
+
+def _image(zfun, w=80, h=60, f=100.0):
+    """A depth image (h, w) of the surface z = zfun(X) (camera frame, X = (u - cx) z / f solved by iteration)."""
+    K = np.array([[f, 0, (w - 1) / 2], [0, f, (h - 1) / 2], [0, 0, 1.0]])
+    u = np.tile(np.arange(w, dtype=float), (h, 1))
+    z = np.full((h, w), 0.5)
+    for _ in range(50):                         # fixed point: z = zfun((u - cx) z / f)
+        z = zfun((u - K[0, 2]) * z / f)
+    return z, K
+
+
+def _segments(z, K):
+    from protomine.ingest.convexity import frame_segments
+    seg = frame_segments(z, np.ones(z.shape, bool), K, 15.0)
+    sizes = np.bincount(seg[seg >= 0])
+    return seg, int((sizes >= 0.2 * z.size / 2).sum())
+
+
+def test_frame_segments_cut_a_groove_and_an_occluding_edge_but_not_a_ridge():
+    # the definition of a concave connection as in Stein et al. 2014 (eq. 1-2), on the image grid: a V groove
+    # (the surface folds towards the camera on both sides) is cut, a roof ridge (a box's edge) is not
+    groove, K = _image(lambda X: 0.5 - 0.8 * np.abs(X))
+    ridge, _ = _image(lambda X: 0.4 + 0.8 * np.abs(X))
+    assert _segments(groove, K)[1] == 2
+    assert _segments(ridge, K)[1] == 1
+    # an occluding edge: a near half (0.42 m) in front of a far half (0.5 m); the far side's edge readings
+    # are the boundary, so the near surface keeps its readings up to one ring from its edge
+    step, _ = _image(lambda X: np.where(X < 0, 0.42, 0.5))
+    seg, n = _segments(step, K)
+    assert n == 2
+    cols = np.flatnonzero(seg[30] < 0)
+    # near half: u <= 39 (X < 0); it loses only the one ring at u = 39, the far side VIEW_STEP pixels + a ring
+    assert seg[30, 38] >= 0 and seg[30, 39] < 0
+    assert seg[30, 38] != seg[30, 45] and seg[30, 45] >= 0
+    assert cols.tolist() == [0, 39, 40, 41, 42, 79], cols               # and the image border's ring
+
+
+def test_view_votes_cut_pairs_the_frames_put_apart():
+    from protomine.ingest.convexity import view_disagreement, view_votes
+    # 4 voxels seen in 3 frames: voxels 0 and 1 share a segment in every frame; 1 and 2 in one frame of the
+    # two that see both; voxel 3 lies on a boundary (-1) in every frame
+    inv = np.array([0, 1, 0, 1, 2, 0, 1, 2, 3, 3])
+    frame = np.array([0, 0, 1, 1, 1, 2, 2, 2, 0, 1])
+    segment = np.array([5, 5, 2, 2, 2, 7, 7, 8, -1, -1])
+    votes = view_votes(inv, segment, frame, 4)
+    cut = view_disagreement(np.array([[0, 1], [1, 2], [0, 2], [2, 3]]), votes)
+    # pair (1, 2): agree in 1 of 2 frames = 0.5, not below VIEW_AGREE; (0, 2) likewise; (2, 3): 3 has no vote
+    assert cut.tolist() == [False, False, False, True]
+    segment2 = segment.copy()
+    segment2[4] = 3                                           # now frame 1 puts 2 apart from 0 and 1 as well
+    cut = view_disagreement(np.array([[0, 1], [1, 2]]), view_votes(inv, segment2, frame, 4))
+    assert cut.tolist() == [False, True]
+
+
+def _block(lo, hi, step=0.004):
+    axes = [np.arange(a, b + 1e-9, step) for a, b in zip(lo, hi)]
+    return np.stack(np.meshgrid(*axes, indexing="ij"), -1).reshape(-1, 3)
+
+
+def test_a_lid_rests_on_its_own_walls_not_on_a_touching_neighbour_of_another_colour():
+    """A box cut into its lid and two walls (creases), and a block of another colour that touches one wall
+    and reaches under the lid's overhang.  The lid cannot stand alone; it rests on both walls (one object)
+    and the block stays apart.  Expected answer by construction."""
+    from protomine.ingest.convexity import join_parts
+    pieces = [_block((-0.07, -0.04, 0.062), (0.07, 0.04, 0.066)),        # lid, 2 cm overhang
+              _block((-0.05, -0.04, 0.0), (-0.042, 0.04, 0.058)),        # wall
+              _block((0.042, -0.04, 0.0), (0.05, 0.04, 0.058)),          # wall
+              _block((0.054, -0.04, 0.0), (0.12, 0.04, 0.056))]          # neighbour, partly under the overhang
+    pts = np.concatenate(pieces)
+    parts = np.concatenate([np.full(len(p), i) for i, p in enumerate(pieces)])
+    rgb = np.array([[150, 100, 50]] * 3 + [[50, 80, 180]], float)[parts]
+    lab = join_parts(pts, parts, pts[:, :2], pts[:, 2], link_radius=0.012, reach=0.036, support_band=0.025,
+                     inset=0.003, min_voxels=30, colours=rgb)
+    assert lab[parts == 0][0] == lab[parts == 1][0] == lab[parts == 2][0]
+    assert lab[parts == 3][0] != lab[parts == 0][0]
+    assert len(np.unique(lab)) == 2

@@ -15,6 +15,10 @@ Conventions:
   n = n-fold) has period 360/n degrees; continuous symmetry has period ``inf`` and every yaw error is 0.
   Truth yaw is measured from the capture's reference direction, predicted yaw from the prototype's own
   frame, so the two differ by one unknown offset per cluster: truth = predicted + offset (mod period).
+- Rotations (3, 3), x_world = R x_frame: truth rotations are from the labeller's (or the class's) own frame,
+  predicted ones from the prototype's, so they differ by one unknown offset O per cluster, R_true ~ R_pred O;
+  a symmetry group (G, 3, 3) acting on the right of R_true (``rotation_offset``, ``rotation_error_deg``) makes
+  R_true g the same pose.  Errors are geodesic angles (rotation angle of A^T B) in degrees.
 """
 from __future__ import annotations
 
@@ -27,10 +31,12 @@ from sklearn import metrics as skm
 from sklearn.metrics.cluster import contingency_matrix
 
 from ..geometry import angle_diff_deg
+from ..rotations import geodesic_deg
 
 __all__ = [
     "contingency", "purity_score", "inverse_purity_score", "hungarian_accuracy_score",
-    "clustering_scores", "symmetry_to_period_deg", "yaw_offset_deg", "yaw_error_deg",
+    "clustering_scores", "symmetry_to_period_deg", "yaw_offset_deg", "yaw_error_deg", "rotation_offset",
+    "rotation_error_deg",
 ]
 
 
@@ -136,3 +142,19 @@ def yaw_error_deg(truth_deg, pred_deg, offset_deg: float, period: float = 360.0)
     """(M,) absolute yaw error in [0, period/2] after aligning predicted yaw by ``offset_deg``."""
     pred = np.asarray(pred_deg, dtype=np.float64) + offset_deg
     return angle_diff_deg(np.asarray(truth_deg, dtype=np.float64), pred, period)
+
+
+# --- rotations ------------------------------------------------------------------------------
+
+def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """One offset O (3, 3) with R_true ~ R_pred O: the geodesic medoid of R_pred^T R_true over members
+    R_pred, R_true (n, 3, 3), distances taken modulo the symmetry group (G, 3, 3) on the right (the medoid, not
+    a mean, so a few flipped members do not move it)."""
+    O = np.einsum("nji,njk->nik", R_pred, R_true)  # each defined up to O g
+    d = np.min(geodesic_deg(O[:, None, None], O[None, :, None] @ group[None, None]), axis=2)  # (n, n)
+    return O[int(np.argmin(d.sum(axis=1)))]
+
+
+def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetry group."""
+    return np.min(geodesic_deg((R_pred @ O)[:, None], R_true[:, None] @ group[None]), axis=1)

@@ -35,7 +35,8 @@ from scipy.optimize import linear_sum_assignment
 from ..atomic import clean_stale_temporaries, write_bytes, write_text
 from ..drawing import cluster_colour as cluster_rgb
 from ..errors import InputError
-from .metrics import clustering_scores, contingency, yaw_error_deg, yaw_offset_deg
+from .metrics import clustering_scores, contingency, rotation_error_deg, rotation_offset, yaw_error_deg, yaw_offset_deg
+from ..rotations import geodesic_deg, quat_to_matrix
 from .truth import ObjectTable, TruthRow, match_truth
 from .uncertainty import (bootstrap_intervals, clopper_pearson_interval, labels_needed_for_width,
                           propagation_accuracy, stratified_purity)
@@ -86,7 +87,8 @@ class Assignments:
 
     object_ids: (N,) str.  cluster: (N,) int, < 0 = unassigned.  yaw_deg: (N,) yaw relative to the cluster
     prototype, degrees in [0, 360).  scale: (N,) object size / prototype size.  distance: (N,) pose-minimised
-    distance to the prototype.  score: (N,) match score (higher = more confident).
+    distance to the prototype.  score: (N,) match score (higher = more confident).  rotation: optional (N, 4)
+    unit quaternions [qx, qy, qz, qw] of x_world = R x_prototype + t (the library's members).
     """
 
     object_ids: np.ndarray
@@ -95,6 +97,7 @@ class Assignments:
     scale: np.ndarray
     distance: np.ndarray
     score: np.ndarray
+    rotation: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         self.object_ids = np.asarray(self.object_ids, dtype=str)
@@ -114,10 +117,12 @@ class Assignments:
 def build_audit(assignments: Assignments, truth_rows: list[TruthRow], objects: ObjectTable, *,
                 symmetry_period_deg: dict[int, float], names: dict[int, str], cfg: dict,
                 rng: np.random.Generator, truth_path: str | Path | None = None,
-                provenance: dict | None = None) -> dict:
+                provenance: dict | None = None, symmetry_groups: dict[int, np.ndarray] | None = None) -> dict:
     """Compute every audit number; returns the report.json content (plain JSON types only).
 
-    symmetry_period_deg: cluster -> yaw period (missing clusters: 360).  names: cluster -> user name
+    symmetry_period_deg: cluster -> yaw period (missing clusters: 360).  symmetry_groups: cluster -> the
+    prototype's rotation group (G, 3, 3) in its own frame (``Library.symmetry_group``; missing: identity), used
+    when the truth rows carry rotations and the assignments too.  names: cluster -> user name
     (optional).  cfg: the merged config (uses ``audit.*``).  truth_path names the CSV in error messages.
     ``open_set`` (what the unknown cut does to the labelled objects' views) and ``plan`` (the next objects to
     label) are None here; :mod:`.run` fills them in when it has the library and the store.
@@ -128,10 +133,10 @@ def build_audit(assignments: Assignments, truth_rows: list[TruthRow], objects: O
         raise InputError(None, "objects", f"{len(missing)} assigned object(s) are not in the object store "
                          f"(first: {missing[0]!r}); is this the store the library was mined from?")
     return _build_audit(assignments, truth_rows, objects, symmetry_period_deg, names, a, rng,
-                        truth_path, provenance)
+                        truth_path, provenance, symmetry_groups or {})
 
 
-def _build_audit(asg, truth_rows, objects, periods, names, a, rng, truth_path, provenance) -> dict:
+def _build_audit(asg, truth_rows, objects, periods, names, a, rng, truth_path, provenance, groups=None) -> dict:
     match = match_truth(truth_rows, objects, radius_m=float(a["match_radius_m"]), path=truth_path)
     row_of = {oid: i for i, oid in enumerate(asg.object_ids.tolist())}
     # labelled = matched and assigned; keep parallel lists (assignment index, truth row)
@@ -165,7 +170,7 @@ def _build_audit(asg, truth_rows, objects, periods, names, a, rng, truth_path, p
                                        confidence=CONFIDENCE) for d in PROPAGATION_DRAWS)
     ] if n_lab else []
 
-    clusters = _per_cluster(asg, cluster_ids, lab_idx, lab_cluster, lab_label, lab_rows, periods, names, a)
+    clusters = _per_cluster(asg, cluster_ids, lab_idx, lab_cluster, lab_label, lab_rows, periods, names, a, groups or {})
     purity = _overall_purity(clusters)
     pose = _pose_summary(clusters)
     table, t_clusters, t_labels = contingency(lab_cluster, lab_label) if n_lab else (np.zeros((0, 0), int), [], [])
@@ -284,7 +289,7 @@ def headline(doc: dict) -> str:
     return text
 
 
-def _per_cluster(asg, cluster_ids, lab_idx, lab_cluster, lab_label, lab_rows, periods, names, a) -> list[dict]:
+def _per_cluster(asg, cluster_ids, lab_idx, lab_cluster, lab_label, lab_rows, periods, names, a, groups) -> list[dict]:
     clean_purity = float(a.get("clean_purity", 0.9))
     target = float(a["target_interval_width"])
     out = []
@@ -324,7 +329,8 @@ def _per_cluster(asg, cluster_ids, lab_idx, lab_cluster, lab_label, lab_rows, pe
             "merge_with": None,
             "members": [{"object": str(asg.object_ids[j]), "label": label_of.get(int(j)),
                          "score": float(asg.score[j])} for j in members.tolist()],
-            "pose": _cluster_pose(asg, lab_idx[in_c], [tr for tr, inc in zip(lab_rows, in_c) if inc], period),
+            "pose": _cluster_pose(asg, lab_idx[in_c], [tr for tr, inc in zip(lab_rows, in_c) if inc], period,
+                                  groups.get(c)),
         }
         out.append(entry)
     _mark_duplicates(out)
@@ -351,7 +357,22 @@ def _mark_duplicates(clusters: list[dict]) -> None:
                 e["merge_with"] = keep["cluster"]
 
 
-def _cluster_pose(asg, idx: np.ndarray, rows: list[TruthRow], period: float) -> dict | None:
+def _cluster_pose(asg, idx: np.ndarray, rows: list[TruthRow], period: float, group: np.ndarray | None = None
+                  ) -> dict | None:
+    """Pose consistency of one cluster's labelled members: the rotation error when the truth rows carry
+    rotations (and the assignments too), else the yaw error; one offset per cluster either way."""
+    if asg.rotation is not None:
+        has = np.array([tr.rotation is not None for tr in rows], dtype=bool)
+        if has.any():
+            # R_true ~ R_pred g O with g in the prototype's group: swap the roles so the group acts on the right
+            Rt = quat_to_matrix(np.array([tr.rotation for tr, h in zip(rows, has) if h]))
+            Rp = quat_to_matrix(asg.rotation[idx[has]])
+            G = np.eye(3)[None] if group is None else np.asarray(group, np.float64)
+            O = rotation_offset(Rt, Rp, G)
+            err = rotation_error_deg(Rt, Rp, O, G)
+            return {"kind": "rotation", "n": int(err.size), "offset_deg": float(geodesic_deg(np.eye(3), O)),
+                    "median_error_deg": float(np.median(err)), "p90_error_deg": float(np.percentile(err, 90)),
+                    "errors_deg": err.tolist(), "objects": asg.object_ids[idx[has]].tolist()}
     has = np.array([tr.yaw_deg is not None for tr in rows], dtype=bool)
     if not has.any():
         return None
@@ -360,6 +381,7 @@ def _cluster_pose(asg, idx: np.ndarray, rows: list[TruthRow], period: float) -> 
     offset = yaw_offset_deg(truth, pred, period)
     err = yaw_error_deg(truth, pred, offset, period)
     return {
+        "kind": "yaw",
         "n": int(err.size),
         "offset_deg": offset,
         "median_error_deg": float(np.median(err)),
@@ -374,7 +396,8 @@ def _pose_summary(clusters: list[dict]) -> dict | None:
     if not errs:
         return None
     errs = np.asarray(errs)
-    return {"n": int(errs.size), "median_error_deg": float(np.median(errs)),
+    kinds = sorted({c["pose"]["kind"] for c in clusters if c["pose"]})
+    return {"kind": "+".join(kinds), "n": int(errs.size), "median_error_deg": float(np.median(errs)),
             "p90_error_deg": float(np.percentile(errs, 90)), "errors_deg": errs.tolist()}
 
 
@@ -429,7 +452,8 @@ def _yaw_png(audit: dict) -> bytes:
     ax.hist(errs, bins=np.linspace(0, 180, 37), color=PALETTE["agree"], edgecolor=PALETTE["paper"])
     ax.axvline(audit["pose"]["median_error_deg"], color=PALETTE["ink"], ls="--", lw=1, label="median")
     ax.axvline(audit["pose"]["p90_error_deg"], color=PALETTE["disagree"], ls=":", lw=1.5, label="90th percentile")
-    ax.set_xlabel("yaw error after per-cluster alignment, modulo the symmetry period (degrees)")
+    what = "rotation error (geodesic angle)" if audit["pose"].get("kind") == "rotation" else "yaw error"
+    ax.set_xlabel(f"{what} after per-cluster alignment, modulo the symmetry (degrees)")
     ax.set_ylabel("labelled objects")
     ax.legend(frameon=False, fontsize=8)
     return _png(fig)
@@ -644,7 +668,7 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
                  "no frame = not labelled.</p>")
     parts.append("<table><tr><th class='l'>cluster</th><th>size</th><th>labelled</th><th class='l'>majority label</th>"
                  "<th>purity</th><th class='l'>interval</th><th class='l'>verdict</th><th class='l'>what to do</th>"
-                 "<th>labels needed</th><th>yaw error (median)</th><th class='l'>members</th></tr>")
+                 "<th>labels needed</th><th>pose error (median)</th><th class='l'>members</th></tr>")
     for c in audit["clusters"]:
         if c["verdict"] == "mixed":
             sug = "split: " + ", ".join(f"{e(lab)} ({c['label_counts'][lab]})" for lab in c["split_labels"])
@@ -718,10 +742,12 @@ def _html(audit: dict, strips: dict[int, bytes], files: dict[str, bytes]) -> str
 
     if audit["pose"]:
         q = audit["pose"]
-        parts.append(f"<h2>Pose consistency</h2><p>{q['n']} labelled objects with a truth yaw: median error "
+        what = ("rotation: geodesic angle" if q.get("kind") == "rotation" else
+                "yaw" if q.get("kind") == "yaw" else "rotation where given, else yaw")
+        parts.append(f"<h2>Pose consistency</h2><p>{q['n']} labelled objects with a truth pose ({what}): median error "
                      f"{_fmt(q['median_error_deg'], 1)}&deg;, 90th percentile {_fmt(q['p90_error_deg'], 1)}&deg; "
-                     "(after one offset per cluster, modulo the prototype's symmetry period).</p>")
-        parts.append(_img(files["yaw_error.png"], "yaw error histogram"))
+                     "(after one offset per cluster, modulo the prototype's symmetry).</p>")
+        parts.append(_img(files["yaw_error.png"], "pose error histogram"))
     if audit["propagation"]:
         parts.append("<h2>Naming clusters from a few labels</h2><p class='note'>Each cluster named by the majority of k "
                      "randomly drawn labelled members; accuracy over all labelled objects, over repeated draws "

@@ -15,6 +15,7 @@ from ..ingest.sharded import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import Library, read_library
 from ..mine.openset import library_cut
+from ..mine.pipeline import library_gallery_faces
 from ..progress import bar
 from ..provenance import file_fingerprint, provenance, record_outputs
 from .metrics import symmetry_to_period_deg
@@ -52,7 +53,7 @@ def run_audit(library: str | Path, truth: str | Path | None, out: str | Path, cf
     say(f"{len(rows)} truth rows, {len(lib.members['object'])} library members, {len(st)} stored objects")
     m = lib.members
     assignments = Assignments(np.asarray(m["object"], dtype=str), m["cluster"], m["yaw_deg"], m["scale"],
-                              m["distance"], m["score"])
+                              m["distance"], m["score"], rotation=np.asarray(m["rotation"], np.float64))
     objects = object_table(st)
     periods = {k: symmetry_to_period_deg(int(s)) for k, s in enumerate(lib.prototypes["symmetry"])}
     inputs = {"library": file_fingerprint(library), "store": st.fingerprint()}
@@ -62,7 +63,8 @@ def run_audit(library: str | Path, truth: str | Path | None, out: str | Path, cf
     rng = np.random.default_rng(seed)
     with bar(progress, "audit", total=2, unit="steps") as b:     # numbers (bootstrap, open set, plan), then pictures
         doc = build_audit(assignments, rows, objects, symmetry_period_deg=periods, names=lib.names, cfg=cfg,
-                          rng=rng, truth_path=truth, provenance=prov)
+                          rng=rng, truth_path=truth, provenance=prov,
+                          symmetry_groups={k: lib.symmetry_group(k) for k in range(lib.n_clusters)})
         if doc["labelled_objects"]:
             doc["open_set"] = jsonable(open_set_on_labelled(lib, st, doc, cfg))
         out.mkdir(parents=True, exist_ok=True)
@@ -73,7 +75,8 @@ def run_audit(library: str | Path, truth: str | Path | None, out: str | Path, cf
         b.advance()
         gallery = render_gallery(out / "gallery.png", lib.prototypes["volumes"], counts=lib.prototypes["count"],
                                  symmetry=lib.prototypes["symmetry"],
-                                 names=[lib.display_name(k) for k in range(lib.n_clusters)])
+                                 names=[lib.display_name(k) for k in range(lib.n_clusters)],
+                                 faces=library_gallery_faces(lib))
         written += write_report(out, doc, gallery_png=gallery, crops=st.crops).values()
         record_outputs(written, prov)
         b.advance()

@@ -7,7 +7,10 @@ The CSV (shared/spec/capture-format.md) has a header and one of two forms:
                                         matched to the nearest object centre of that capture within a radius
 
 Conventions: ``row`` numbers are 1-based file line numbers (the header is line 1), so messages point at
-the line a user sees in an editor.  yaw_deg is optional per row (an empty cell means "no yaw").
+the line a user sees in an editor.  yaw_deg is optional per row (an empty cell means "no yaw").  Optional
+columns qx,qy,qz,qw give a full truth pose: the unit quaternion (scalar last) of R with x_world = R x + t from
+the labeller's own frame of the object to the capture's world frame (empty cells: no rotation); the audit
+then measures pose consistency by the rotation error instead of the yaw error.
 Problems with the file (a wrong header, bad numbers, empty labels, an object labelled twice) raise
 :class:`protomine.errors.InputError` naming the file, row and column.  Rows naming an unknown object id or
 capture, point rows with no object within the radius, and point rows whose nearest object was claimed by a
@@ -30,6 +33,7 @@ __all__ = ["TruthRow", "ObjectTable", "TruthMatch", "read_truth", "match_truth"]
 
 OBJECT_COLUMNS = ("object", "label")
 POINT_COLUMNS = ("capture", "x", "y", "z", "label")
+QUATERNION = ("qx", "qy", "qz", "qw")
 
 
 @dataclass(frozen=True)
@@ -45,6 +49,7 @@ class TruthRow:
     capture: str | None = None
     point: tuple[float, float, float] | None = None
     yaw_deg: float | None = None
+    rotation: tuple[float, float, float, float] | None = None   # [qx, qy, qz, qw], scalar last
 
     @property
     def key(self) -> str:
@@ -175,6 +180,11 @@ def _read_rows(path: Path, header: list[str], reader) -> list[TruthRow]:
         yaw = None
         if cell.get("yaw_deg"):
             yaw = _number(path, line, "yaw_deg", cell["yaw_deg"]) % 360.0
+        q = None
+        if all(cell.get(c) for c in QUATERNION):
+            q = tuple(_number(path, line, c, cell[c]) for c in QUATERNION)
+            if not 0.5 < math.sqrt(sum(v * v for v in q)) < 1.5:
+                raise InputError(path, f"row {line}, columns qx,qy,qz,qw", f"expected a unit quaternion, got {q}")
         if by_object:
             obj = cell["object"]
             if not obj:
@@ -182,12 +192,12 @@ def _read_rows(path: Path, header: list[str], reader) -> list[TruthRow]:
             if obj in seen:
                 raise InputError(path, f"row {line}, column object", f"object {obj!r} already labelled in row {seen[obj]}")
             seen[obj] = line
-            rows.append(TruthRow(row=line, label=label, object=obj, yaw_deg=yaw))
+            rows.append(TruthRow(row=line, label=label, object=obj, yaw_deg=yaw, rotation=q))
         else:
             if not cell["capture"]:
                 raise InputError(path, f"row {line}, column capture", "empty capture name")
             point = tuple(_number(path, line, c, cell[c]) for c in ("x", "y", "z"))
-            rows.append(TruthRow(row=line, label=label, capture=cell["capture"], point=point, yaw_deg=yaw))
+            rows.append(TruthRow(row=line, label=label, capture=cell["capture"], point=point, yaw_deg=yaw, rotation=q))
     return rows
 
 

@@ -76,8 +76,9 @@ def refresh_gallery(lib: Library, library_path: str | Path, clusters: list[int] 
         return None
     from ..provenance import provenance_of, record_outputs
     p = lib.prototypes
+    from ..mine.pipeline import library_gallery_faces
     render_gallery(gallery, np.asarray(p["volumes"]), counts=np.asarray(p["count"]),
-                   symmetry=np.asarray(p["symmetry"]), names=[str(x) for x in p["name"]])
+                   symmetry=np.asarray(p["symmetry"]), names=[str(x) for x in p["name"]], faces=library_gallery_faces(lib))
     record_outputs([gallery], provenance_of(lib.attrs))
     return gallery
 

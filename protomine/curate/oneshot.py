@@ -322,6 +322,8 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
     for f, fill in (("face_up", 0.0), ("face_count", 0), ("face_symmetry", -1)):
         p[f] = _pad_axis1(p[f], F, fill)
         new_proto[f] = _pad_axis1(new_proto[f], F, fill)
+    if "symmetry_rotations" in p:  # a one-shot prototype: no symmetry that moves up is tested (identity only)
+        new_proto["symmetry_rotations"] = _pad_axis1(np.array([[[0.0, 0.0, 0.0, 1.0]]]), p["symmetry_rotations"].shape[1], 0.0)
     protos = {k: np.concatenate([p[k].astype(object) if p[k].dtype == object else p[k], new_proto[k].astype(p[k].dtype)])
               for k in p if k in new_proto}
     protos["count"] = np.bincount(m["cluster"].astype(np.int64), minlength=K + 1)

@@ -13,12 +13,20 @@ Euclidean groups (DBSCAN, -1 = noise).  Nothing here assumes a world axis is up:
    convex (Stein et al.'s threshold beta against sensor noise).  Connected components of the remaining graph
    are the convex parts.  Two objects that touch meet in a concave crease all around their contact, so they
    fall apart; a part is only cut off when a closed ring of concave connections surrounds it.
+   Checked across views (``frame_segments``, ``view_votes``): in each depth image the readings are split
+   along occluding edges and concave creases measured on the image grid (normals that never mix two
+   surfaces); a pair of adjacent voxels is cut as well when the frames that see both mostly put them in
+   different segments, or when one of them lies on such a boundary in every frame (where objects touch).
+   In the fused cloud alone a few noisy convex connections at a contact join two objects; the frames agree
+   on the boundary there.
 3. Parts back into objects: an object can stand on the support plane by itself (its centre of mass lies over
    its support polygon).  A part that cannot (a handle, a knob, pegs on a post, a lid, a tripod's slanted
    leg, a sliver cut from a wall) is a piece of the object it hangs on: it joins the neighbour part it shares
    the most close voxel pairs with (a lid meets its own walls all around, a neighbour it leans on at a few
-   points).  Parts too small to be an object join their most connected neighbour too.  What stands on its
-   own stays its own object (parts standing on another's footprint are joined later, by
+   points).  Parts too small to be an object join their most connected neighbour too.  A part resting on
+   several groups (a lid on walls split from one another) joins all it meets along a seam; with colours,
+   neighbours of the part's own chromaticity are preferred (a touching neighbour mostly differs in colour).
+   What stands on its own stays its own object (parts standing on another's footprint are joined later, by
    ``proposals._merge_overlapping_footprints``).
 """
 from __future__ import annotations
@@ -32,6 +40,7 @@ NORMAL_NEIGHBOURS = 16   # PCA neighbourhood size for voxel normals
 SEAM_SHARE = 0.01        # share of a group's voxels along the seam with a neighbour of its colour to join it
 SAME_CHROMA = 0.03       # chromaticity distance below which two groups have one colour (measured: one object's
                          # blocks 0.004; touching demo objects 0.15-0.6)
+REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
 UNDER_MIN = 10           # voxels under a part's footprint that make a neighbour its support
 
 
@@ -54,8 +63,11 @@ def voxel_normals(points: np.ndarray, views: np.ndarray, labels: np.ndarray, rad
 
 
 def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *, adjacency: float,
-                 concave_deg: float) -> tuple[np.ndarray, np.ndarray]:
-    """Parts (V,) (-1 where ``labels`` is -1) and the adjacency pairs (E, 2) within a group."""
+                 concave_deg: float, votes=None) -> tuple[np.ndarray, np.ndarray]:
+    """Parts (V,) (-1 where ``labels`` is -1) and the adjacency pairs (E, 2) within a group.
+
+    votes: optional per-frame segment shares of the voxels (``view_votes``); pairs the frames seeing both
+    mostly put in different segments (``view_disagreement``) are cut as well."""
     V = len(points)
     pairs = cKDTree(points).query_pairs(adjacency, output_type="ndarray") if V > 1 else np.zeros((0, 2), int)
     pairs = pairs[(labels[pairs[:, 0]] == labels[pairs[:, 1]]) & (labels[pairs[:, 0]] >= 0)]
@@ -64,9 +76,23 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     bend = np.einsum("ei,ei->e", dn, points[i] - points[j])                    # > 0 convex, < 0 concave
     cos = np.einsum("ei,ei->e", normals[i], normals[j])
     concave = (bend < 0) & (cos < np.cos(np.deg2rad(concave_deg)))
+    if votes is not None:
+        concave |= view_disagreement(pairs, votes)
     keep = pairs[~concave]
     g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
     _, comp = connected_components(g, directed=False)
+    if votes is not None:
+        # the crease and edge bands leave single voxels: each takes the part of its nearest voxel in a part
+        # of at least CRUMB_VOXELS within its group
+        size = np.bincount(comp, minlength=V)
+        small = (size[comp] < CRUMB_VOXELS) & (labels >= 0)
+        big = np.flatnonzero(~small & (labels >= 0))
+        if small.any() and len(big):
+            for l in np.unique(labels[small]):
+                sm, bg = np.flatnonzero(small & (labels == l)), big[labels[big] == l]
+                if len(bg):
+                    _, j = cKDTree(points[bg]).query(points[sm])
+                    comp[sm] = comp[bg[j]]
     return np.where(labels >= 0, comp, -1), pairs
 
 
@@ -137,8 +163,28 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
             per_group = np.bincount(group, weights=w, minlength=n)
             per_group[g] = 0
             under = _support_under(xy, heights, sel, group[np.maximum(parts, 0)], ok, g, n)
+            if colours is not None and (under.max() > 0 or per_group.max() > 0):
+                # a part hangs on or rests on its own object, mostly of its own colour (chromaticity as in
+                # _join_same_colour): when some neighbour has its colour, only those are candidates
+                cand = np.flatnonzero((under > 0) | (per_group > 0))
+                mine = _chroma(colours[sel])
+                same = np.zeros(n, bool)
+                for q in cand:
+                    qv = np.concatenate([voxels[int(p)] for p in np.flatnonzero(group == q) if int(p) in voxels])
+                    same[q] = np.linalg.norm(_chroma(colours[qv]) - mine) < SAME_CHROMA
+                if (same & (under > 0)).any():
+                    under, per_group = np.where(same, under, 0.0), np.where(same, per_group, 0.0)
+                elif (same & (per_group > 0)).any():
+                    under, per_group = np.zeros(n), np.where(same, per_group, 0.0)
             if under.max() > 0:            # what it rests on: a lid on its walls, a flange on its core
-                target = int(under.argmax())
+                # among the groups under it, the one it meets along the longest seam (a lid meets its own
+                # walls all around, a touching neighbour that reaches under its rim at a few points)
+                seam = np.where(under > 0, per_group, 0.0)
+                target = int(seam.argmax()) if seam.max() > 0 else int(under.argmax())
+                # it rests on all of them: a lid on each of the walls it meets (walls split from one another
+                # by a crease), so they join it together rather than one wall at a time
+                for other_g in np.flatnonzero((seam >= REST_SEAM_SHARE * seam.max()) & (seam > 0)):
+                    group[group == other_g] = target
             elif per_group.max() > 0:
                 target = int(per_group.argmax())
             else:                 # nothing within link_radius (a thin leg's sparse middle): nearest within reach
@@ -157,6 +203,12 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
         group = _join_same_colour(points, colours, np.where(ok, group[np.maximum(parts, 0)], -1), link_radius)
         return _relabel(group)
     return _relabel(np.where(ok, group[np.maximum(parts, 0)], -1))
+
+
+def _chroma(rgb: np.ndarray) -> np.ndarray:
+    """Median chromaticity (3,) (r, g, b) / (r + g + b) of colours (M, 3)."""
+    c = np.median(rgb, axis=0)
+    return c / max(float(c.sum()), 1e-9)
 
 
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float) -> np.ndarray:
@@ -235,3 +287,108 @@ def _relabel(lab: np.ndarray) -> np.ndarray:
     if ok.any():
         _, out[ok] = np.unique(lab[ok], return_inverse=True)
     return out
+
+
+# --- per-frame boundaries, checked for consistency across views -------------------------------------------
+
+VIEW_STEP = 2            # pixels: normals and crease tests compare readings this far apart on either side
+VIEW_JUMP_M = 0.01       # a depth step larger than this (or VIEW_JUMP_REL x depth) between readings VIEW_STEP
+VIEW_JUMP_REL = 0.015    # ... apart along a row or column is an occluding edge
+CRUMB_VOXELS = 5         # parts smaller than this after the view check are absorbed by their nearest part
+VIEW_AGREE = 0.5         # adjacent voxels stay linked when the frames that see both put them in one segment
+                         # at least this often
+
+
+def frame_segments(depth: np.ndarray, region: np.ndarray, K: np.ndarray, concave_deg: float) -> np.ndarray:
+    """(H, W) int segment ids (-1 = boundary or outside ``region``) of one depth image (H, W) metres.
+
+    The readings of ``region`` (H, W) bool (above the support plane) are split along occluding edges (a
+    depth step between readings 2 x VIEW_STEP pixels apart larger than VIEW_JUMP_M or VIEW_JUMP_REL x
+    depth) and concave creases (Stein et al.'s test, (n_a - n_b) . (x_a - x_b) < 0 with the normals more
+    than ``concave_deg`` apart, between the readings VIEW_STEP pixels on either side); the pixels on such a
+    boundary belong to no segment, the 4-connected rest are the segments.  Normals come from the image
+    grid (cross product of the central differences, only across continuous depth), so they never mix two
+    surfaces the way a neighbourhood in the fused cloud does.
+    """
+    from scipy.ndimage import binary_erosion, label, uniform_filter
+    h, w = depth.shape
+    s = VIEW_STEP
+    z = np.where(region, depth, 0.0).astype(np.float64)
+    v, u = np.mgrid[0:h, 0:w]
+    P = np.stack([(u - K[0, 2]) * z / K[0, 0], (v - K[1, 2]) * z / K[1, 1], z], -1)      # (H, W, 3)
+    ok = z > 0
+    tol = np.maximum(VIEW_JUMP_M, VIEW_JUMP_REL * z)
+
+    def shift(a, dy, dx, fill):
+        out = np.full_like(a, fill)
+        ys, yd = (slice(dy, None), slice(None, h - dy)) if dy >= 0 else (slice(None, h + dy), slice(-dy, None))
+        xs, xd = (slice(dx, None), slice(None, w - dx)) if dx >= 0 else (slice(None, w + dx), slice(-dx, None))
+        out[yd, xd] = a[ys, xs]                 # out[y, x] = a[y + dy, x + dx]
+        return out
+
+    boundary = np.zeros((h, w), bool)
+    normal_ok = ok.copy()
+    nb = {}
+    for dy, dx in ((0, s), (0, -s), (s, 0), (-s, 0)):
+        zq, okq = shift(z, dy, dx, 0.0), shift(ok, dy, dx, False)
+        jump = ok & okq & (np.abs(zq - z) > tol)
+        boundary |= jump & (z > zq)             # the far side of an occluding edge: a thin near part stays whole
+        normal_ok &= okq & ~jump
+        nb[(dy, dx)] = shift(P, dy, dx, 0.0)
+    n = np.cross(nb[(0, s)] - nb[(0, -s)], nb[(s, 0)] - nb[(-s, 0)])
+    n /= np.maximum(np.linalg.norm(n, axis=-1, keepdims=True), 1e-12)
+    n *= np.where(np.einsum("hwi,hwi->hw", n, P) > 0, -1.0, 1.0)[..., None]           # face the camera
+    # average over a (2s+1)^2 window of valid normals: sensor noise makes single-pixel normals scatter
+    wgt = normal_ok.astype(np.float64)
+    n = np.stack([uniform_filter(n[..., i] * wgt, 2 * s + 1) for i in range(3)], -1)
+    n /= np.maximum(np.linalg.norm(n, axis=-1, keepdims=True), 1e-12)
+    normal_ok &= uniform_filter(wgt, 2 * s + 1) > 0.5
+    cos_thr = np.cos(np.deg2rad(concave_deg))
+    for dy, dx in ((0, s), (s, 0)):
+        Pa, Pb = shift(P, -dy, -dx, 0.0), shift(P, dy, dx, 0.0)
+        na, nb_ = shift(n, -dy, -dx, 0.0), shift(n, dy, dx, 0.0)
+        both = shift(normal_ok, -dy, -dx, False) & shift(normal_ok, dy, dx, False)
+        bend = np.einsum("hwi,hwi->hw", na - nb_, Pa - Pb)
+        cos = np.einsum("hwi,hwi->hw", na, nb_)
+        boundary |= both & (bend < 0) & (cos < cos_thr)
+    # one ring off every segment: a bridge of a pixel or two where a crease went unseen does not join two
+    # surfaces (a thin part a few pixels wide keeps its core)
+    seg, _ = label(binary_erosion(ok & ~boundary, np.ones((3, 3), bool)))
+    return seg.reshape(h, w) - 1
+
+
+def view_votes(inv: np.ndarray, segment: np.ndarray, frame: np.ndarray, n_voxels: int):
+    """Per voxel, the share of its readings in each frame's segments: a sparse (V, S) matrix and the frame
+    (S,) of each of the S segments.  inv: (M,) voxel of each reading; segment: (M,) its segment id within
+    its frame (-1 none); frame: (M,) its frame index."""
+    from scipy.sparse import csr_matrix
+    ok = segment >= 0
+    keys, col = np.unique(np.c_[frame[ok], segment[ok]], axis=0, return_inverse=True)
+    col = col.reshape(-1)
+    M = csr_matrix((np.ones(int(ok.sum())), (inv[ok], col)), shape=(n_voxels, len(keys)))
+    seg_frame = keys[:, 0]
+    nf = int(seg_frame.max()) + 1 if len(keys) else 1
+    per_frame = (M @ csr_matrix((np.ones(len(keys)), (np.arange(len(keys)), seg_frame)), shape=(len(keys), nf))).tocsr()
+    M = M.tocoo()
+    denom = np.asarray(per_frame[M.row, seg_frame[M.col]]).ravel()
+    return csr_matrix((M.data / denom, (M.row, M.col)), shape=M.shape), seg_frame
+
+
+def view_disagreement(pairs: np.ndarray, votes) -> np.ndarray:
+    """(E,) bool: adjacent voxel pairs (E, 2) that the frames seeing both put in one segment less often than
+    VIEW_AGREE, or with a voxel that lies on a boundary in every frame that sees it (where objects touch, the
+    readings sit on an occluding edge or a crease in every view).  Pairs no frame sees both of, with
+    voxels voted elsewhere, are not judged (False)."""
+    M, seg_frame = votes
+    if not len(pairs):
+        return np.zeros(0, bool)
+    from scipy.sparse import csr_matrix
+    A, B = M[pairs[:, 0]], M[pairs[:, 1]]
+    same = np.asarray(A.multiply(B).sum(axis=1)).ravel()
+    nf = int(seg_frame.max()) + 1
+    F = csr_matrix((np.ones(len(seg_frame)), (np.arange(len(seg_frame)), seg_frame)), shape=(len(seg_frame), nf))
+    fa, fb = (A @ F), (B @ F)
+    both = np.asarray((fa > 0).multiply(fb > 0).sum(axis=1)).ravel()
+    voted = np.asarray(M.sum(axis=1)).ravel() > 0
+    unvoted = ~voted[pairs[:, 0]] | ~voted[pairs[:, 1]]
+    return ((both > 0) & (same < VIEW_AGREE * np.maximum(both, 1))) | unvoted

@@ -23,7 +23,7 @@ from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from ..progress import detail
-from .convexity import convex_parts, join_parts, voxel_normals
+from .convexity import convex_parts, frame_segments, join_parts, view_votes, voxel_normals
 from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
@@ -39,7 +39,9 @@ SUPPORT_BAND_M = 0.025      # points this low over the plane form an object's su
 STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far inside it to stand alone
 LOW_FLOOR_M = 0.002         # the low band (grown into objects) starts this high over the plane ...
 LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy sensors
+SMOOTH_WINDOW = 5           # pixels: median window of the smoothed low band (``smoothed_band``)
 LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
+VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 
 
@@ -165,14 +167,19 @@ def fit_support_plane(cap: Capture, frames: list[FrameData], cfg: dict, rng: np.
     return plane
 
 
+def voxel_index(pts: np.ndarray, size: float) -> tuple[int, np.ndarray]:
+    """Number of occupied voxels V of points (M, 3) on a grid of ``size`` and each point's voxel (M,)."""
+    keys, inv = np.unique(np.floor(pts / size).astype(np.int64), axis=0, return_inverse=True)
+    return len(keys), inv.reshape(-1)
+
+
 def voxel_means(pts: np.ndarray, size: float, *values: np.ndarray) -> tuple[np.ndarray, ...]:
     """Voxel centroids (V, 3) of points (M, 3) on a grid of ``size``, and the voxel means of each (M, ...) value."""
-    keys, inv = np.unique(np.floor(pts / size).astype(np.int64), axis=0, return_inverse=True)
-    inv = inv.reshape(-1)
-    count = np.bincount(inv, minlength=len(keys)).astype(np.float64)
+    n, inv = voxel_index(pts, size)
+    count = np.bincount(inv, minlength=n).astype(np.float64)
     out = []
     for v in (pts,) + values:
-        acc = np.zeros((len(keys),) + v.shape[1:])
+        acc = np.zeros((n,) + v.shape[1:])
         np.add.at(acc, inv, v)
         out.append(acc / count.reshape((-1,) + (1,) * (v.ndim - 1)))
     return tuple(out)
@@ -317,7 +324,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
-        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"])
+        votes = _frame_votes(cap, frames, above_sel, pts, eps / 3.0, c["concave_deg"]) if VIEW_CHECK else None
+        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes)
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours)
@@ -351,8 +359,10 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         h[fd.pixels] = plane.height(fd.points)
         steady = np.zeros(fd.depth.size, bool)
         steady[fd.pixels] = fd.steady
-        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, (h > floor).reshape(fd.depth.shape)
-                                    & steady.reshape(fd.depth.shape), LOW_GROW_PIXELS).reshape(-1)
+        band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
+                                                                               above_plane_margin(plane, cfg)))
+        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, band & steady.reshape(fd.depth.shape),
+                                    LOW_GROW_PIXELS).reshape(-1)
         point_of = np.full(fd.depth.size, -1)
         point_of[fd.pixels] = np.arange(len(fd.pixels))
         for i, p in enumerate(props):
@@ -372,6 +382,43 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         p.frame, p.center_world = object_frame(np.concatenate([vx, pts[near]]), plane)
         out.append(p)
     return out
+
+
+def _frame_votes(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarray], pts: np.ndarray, size: float,
+                 concave_deg: float):
+    """Each frame's segments (``convexity.frame_segments``) of its readings above the plane, as per-voxel
+    shares (``convexity.view_votes``) on the voxel grid of ``pts`` (the concatenated selected readings)."""
+    K = cap.intrinsics.K
+    segs, fidx = [], []
+    for f, (fd, s) in enumerate(zip(frames, above_sel)):
+        region = np.zeros(fd.depth.size, bool)
+        region[fd.pixels[s]] = True
+        seg = frame_segments(fd.depth, region.reshape(fd.depth.shape), K, concave_deg)
+        segs.append(seg.reshape(-1)[fd.pixels[s]])
+        fidx.append(np.full(int(s.sum()), f))
+    n, inv = voxel_index(pts, size)
+    return view_votes(inv, np.concatenate(segs), np.concatenate(fidx), n)
+
+
+def smoothed_band(h: np.ndarray, valid: np.ndarray, plane: PlaneFit, margin: float) -> np.ndarray:
+    """(H, W) bool: readings of a frame whose height over the plane, median-filtered over a
+    SMOOTH_WINDOW square, stands above the table's own smoothed noise.
+
+    A thin base disc (a few mm) on a noisy sensor is half below the per-reading floor (2.5 x the plane's
+    residual), a speckle growth cannot cross.  The median of a window is as high as the disc, and its
+    spread over the table is measured in this very frame (robust MAD of the filtered heights of the
+    readings near the plane), so noise correlated between neighbouring readings (stereo matching windows)
+    raises the floor instead of leaking the table into objects.  h: (H, W) heights (m), valid: (H, W) bool,
+    margin: the grouping margin (m)."""
+    from scipy.ndimage import median_filter
+    # readings above the grouping margin (the objects themselves) and holes count as low: the median only
+    # rises where most of the window is low band, so it never spreads an object's body over the table
+    hs = median_filter(np.where(valid & (h <= margin), h, -1.0), size=SMOOTH_WINDOW)
+    near = valid & (np.abs(h) < NOISE_MARGIN * max(plane.residual_m, 1e-4)) & (hs > -1.0)
+    if near.sum() < 100:
+        return np.zeros(h.shape, bool)
+    sigma = 1.4826 * float(np.median(np.abs(hs[near] - np.median(hs[near]))))
+    return valid & (hs > max(LOW_FLOOR_M, LOW_FLOOR_SIGMA * sigma))
 
 
 def low_floor(plane: PlaneFit) -> float:

@@ -157,7 +157,8 @@ class Matcher:
         rotation = np.zeros((n, self.K, 3, 3))
         for k in range(self.K):
             face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
-                                                              pr["face_up"][k], pr["face_symmetry"][k])
+                                                              pr["face_up"][k], pr["face_symmetry"][k],
+                                                              self.library.symmetry_group(k))
         return {"distance": Dd, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
                 "rotation": rotation, "best": best}
 

@@ -173,13 +173,14 @@ class _Part:
     tot: np.ndarray | None = None      # (K, C + 2, R, A, H) aligned sums [w |x|^2, w, w x_1 .. w x_C]
     extra: np.ndarray | None = None    # (K, C + 1, R, A, H) moments [w x_1^2 .. w x_C^2, w^2]
     seconds: float = 0.0               # the worker's time for this chunk (read, transform, match, sums)
+    cpu_seconds: float = 0.0           # the CPU time of the worker thread that ran it (the same work)
 
 
 def _chunk_pass(shared: tuple, item: tuple) -> _Part:
     """Worker: one chunk of one assignment pass (module docstring)."""
     spec, bank, shape, accumulate, moments, chunk_size, cache_bytes = shared
     i0, i1, idx, forced, window = item
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.thread_time()
     src = _open(spec)
     K, C, R, A, H = shape
     scales = bank.scales
@@ -207,6 +208,7 @@ def _chunk_pass(shared: tuple, item: tuple) -> _Part:
     if msums is not None:
         part.extra = msums.result(scales, (C + 1, R, H))
     part.seconds = time.perf_counter() - t0
+    part.cpu_seconds = time.thread_time() - c0
     return part
 
 
@@ -227,6 +229,7 @@ class _Reduced:
     scale: list
     dist: list
     seconds: list
+    cpu_seconds: list
     tot: np.ndarray | None
     extra: np.ndarray | None
 
@@ -235,9 +238,9 @@ def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
     """Fold one chunk's part into the reduction (called in chunk order, so sums never depend on which
     worker finished first)."""
     if acc is None:
-        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [p.seconds],
+        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [p.seconds], [p.cpu_seconds],
                         None if p.tot is None else p.tot.copy(), None if p.extra is None else p.extra.copy())
-    for name in ("labels", "yaw", "scale", "dist", "seconds"):
+    for name in ("labels", "yaw", "scale", "dist", "seconds", "cpu_seconds"):
         getattr(acc, name).append(getattr(p, name))
     if p.tot is not None:
         acc.tot += p.tot
@@ -307,6 +310,7 @@ class ExecutorSource:
         red = self.executor.map(_chunk_pass, self._items(chunk_size, forced, scale_index), shared=shared,
                                 fold=_fold_parts)
         self.last_seconds = red.seconds  # the workers' seconds per chunk, for the scale benchmark
+        self.last_cpu_seconds = red.cpu_seconds  # and their CPU seconds (a shared machine's load aside)
         labels = np.concatenate(red.labels).astype(np.int64)
         yaw, scale, dist = (np.concatenate(a).astype(np.float32) for a in (red.yaw, red.scale, red.dist))
         if not accumulate:

@@ -652,12 +652,26 @@ class PoseKMeans:
         self.aspect_ = res.aspect
         self.rotation_, self.up_ = canonical_rotations(TiltGrid.identity() if grid is None else grid, tilt, res.yaw,
                                                        self.canonical_shift_deg_[res.labels])
-        ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
         if grid is None:
+            self.symmetry_rotations_ = [np.eye(3)[None] for _ in range(self.n_clusters)]
+            ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
             fsym = [np.full(len(u), symm[k], np.int64) for k, u in enumerate(ups)]
         else:
             noise = sym.mean_variance(*res.moments).mean(axis=(1, 2, 3, 4))
             bank = TiltBank(self.prototypes_, self.prototype_weights_, res.aspect, scales, grid)
+            # symmetries that move up (a box tipped onto an equal side): poses modulo them before the faces
+            self.symmetry_rotations_ = []
+            with bar(self.progress, "symmetry in 3-D", total=self.n_clusters, unit="prototypes") as b:
+                for k in range(self.n_clusters):
+                    self.symmetry_rotations_.append(sym.tilt_symmetries(bank, k, float(noise[k]), int(symm[k]),
+                                                                        factor=self.symmetry_factor, tol=self.symmetry_tol))
+                    b.advance()
+            for k, reps in enumerate(self.symmetry_rotations_):
+                sel = np.flatnonzero(res.labels == k)
+                if len(reps) > 1 and len(sel):
+                    self.rotation_[sel] = sym.reduce_modulo_group(self.rotation_[sel], sym.group_elements(reps, symm[k]))
+            self.up_ = self.rotation_[:, 2, :]
+            ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
             fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol)
         self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
         period = np.array([sym.period_deg(fsym[k][f]) for k, f in zip(res.labels, self.face_)], np.float64)

@@ -18,7 +18,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ..audit.metrics import clustering_scores, symmetry_to_period_deg, yaw_error_deg, yaw_offset_deg
+from ..audit.metrics import (clustering_scores, rotation_error_deg, rotation_offset, symmetry_to_period_deg,  # noqa: F401
+                             yaw_error_deg, yaw_offset_deg)
 from ..errors import InputError
 from .. import rotations as rot
 from .library import Library
@@ -107,19 +108,6 @@ def symmetry_rotations(symmetry: str) -> np.ndarray:
     per = class_period(symmetry)
     n = 36 if per == 0 else int(round(360.0 / per))
     return rot.yaw_matrix(np.arange(n) * 360.0 / n)
-
-
-def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray) -> np.ndarray:
-    """One offset O (3, 3) with R_true ~ R_pred O: the geodesic medoid of R_pred^T R_true over members
-    R_pred, R_true (n, 3, 3), distances taken modulo the class's symmetries group (G, 3, 3)."""
-    O = np.einsum("nji,njk->nik", R_pred, R_true)  # each defined up to O g
-    d = np.min(rot.geodesic_deg(O[:, None, None], O[None, :, None] @ group[None, None]), axis=2)  # (n, n)
-    return O[int(np.argmin(d.sum(axis=1)))]
-
-
-def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray) -> np.ndarray:
-    """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetries group."""
-    return np.min(rot.geodesic_deg((R_pred @ O)[:, None], R_true[:, None] @ group[None]), axis=1)
 
 
 def cluster_rotation_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:

@@ -79,12 +79,16 @@ def reduce_rotation(R: np.ndarray, period_deg: np.ndarray) -> tuple[np.ndarray, 
     return rot.tilt_yaw_to_matrix(up, yaw), yaw
 
 
-def face_pose(R: np.ndarray, face_up: np.ndarray, face_symmetry: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def face_pose(R: np.ndarray, face_up: np.ndarray, face_symmetry: np.ndarray, group: np.ndarray | None = None
+              ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Resting face, reduced rotation and yaw of rotations R (n, 3, 3) (object frame <- prototype frame) of
-    one prototype with library faces face_up (F, 3), face_symmetry (F,) (-1 = padding): the face whose up
-    is nearest the rotation's up R^T e_z, and the rotation with its yaw modulo that face's period.
-    Returns face (n,), R (n, 3, 3), yaw_deg (n,)."""
+    one prototype with library faces face_up (F, 3), face_symmetry (F,) (-1 = padding): the rotation modulo
+    the prototype's symmetry ``group`` (G, 3, 3) (``symmetry.reduce_modulo_group``; None or identity only:
+    as it is), the face whose up is nearest its up R^T e_z, and the rotation with its yaw modulo that face's
+    period.  Returns face (n,), R (n, 3, 3), yaw_deg (n,)."""
     R = np.asarray(R, np.float64).reshape(-1, 3, 3)
+    if group is not None and len(group) > 1 and len(R):
+        R = sym.reduce_modulo_group(R, group)
     valid = np.flatnonzero(np.asarray(face_symmetry) >= 0)
     up = R[:, 2, :]
     face = valid[np.argmax(up @ np.asarray(face_up, np.float64)[valid].T, axis=1)] if len(R) else np.zeros(0, np.int64)

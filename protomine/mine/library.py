@@ -18,7 +18,12 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  resting faces, padded to F faces: face_up (K, F, 3) up direction in the prototype frame
                  (face 0 = +z, the canonical face), face_count (K, F) members resting on it,
                  face_symmetry (K, F) symmetry code about that up (-1 = padding); optional cell_reliability
-                 (K, R, H) per-cell weights of single-view scores (``reliability``)
+                 (K, R, H) per-cell weights of single-view scores (``reliability``); optional
+                 symmetry_rotations (K, S, 4) unit quaternions [qx, qy, qz, qw] of the prototype's symmetries
+                 that move its up +z, one per direction +z is carried to, identity first (rows of zeros =
+                 padding; the whole group is these times the rotations about up of ``symmetry``:
+                 ``mine.symmetry.group_elements``).  A format-2 library without it (mined before it was
+                 added) is read as having no such symmetries
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
@@ -47,6 +52,8 @@ from scipy.stats import t as student_t
 
 from ..atomic import atomic_path, exclusive_lock, pause_point
 from ..errors import InputError
+from ..rotations import matrix_to_quat, quat_to_matrix
+from .symmetry import group_elements
 
 FORMAT = "protomine.library/2"
 OLD_FORMATS = ("protomine.library/1",)
@@ -55,7 +62,8 @@ PROTO_ARRAYS = ("features", "weights", "volumes", "symmetry", "period_deg", "cou
                 "size_p90", "fused_mu", "fused_sigma", "single_mu", "single_sigma", "aspect", "face_up", "face_count",
                 "face_symmetry")
 PROTO_STR = ("origin", "name", "name_example")
-PROTO_OPTIONAL = ("cell_reliability",)   # (K, R, H) single-view cell weights (``reliability``); libraries before it have none
+PROTO_OPTIONAL = ("cell_reliability",     # (K, R, H) single-view cell weights (``reliability``); libraries before it have none
+                  "symmetry_rotations")   # (K, S, 4) symmetries that move up (``symmetry.tilt_symmetries``); none before it
 MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance",
                  "face", "rotation")
 
@@ -118,6 +126,13 @@ class Library:
         code = np.asarray(self.prototypes["face_symmetry"])[np.asarray(cluster), np.asarray(face)]
         return np.where(code == 0, 0.0, 360.0 / np.maximum(code, 1))
 
+    def symmetry_group(self, k: int) -> np.ndarray:
+        """Prototype k's rotational symmetry group (G, 3, 3) in its canonical frame: the symmetries that move up
+        (``symmetry_rotations``; identity only when the library has none) times those about up (``symmetry``)."""
+        q = self.prototypes.get("symmetry_rotations")
+        reps = np.eye(3)[None] if q is None else quat_to_matrix_padded(np.asarray(q)[k])
+        return group_elements(reps, int(self.prototypes["symmetry"][k]))
+
     @property
     def store_path(self) -> str:
         return str(self.attrs.get("store_path", ""))
@@ -157,6 +172,21 @@ def read_library(path: str | Path) -> Library:
     if missing:
         raise InputError(path, "prototypes", f"library is missing {missing}")
     return Library(protos, members, attrs, path)
+
+
+def quat_to_matrix_padded(q: np.ndarray) -> np.ndarray:
+    """Quaternions (S, 4) with rows of zeros as padding -> rotations (S', 3, 3) of the non-padding rows."""
+    q = np.asarray(q, np.float64).reshape(-1, 4)
+    return quat_to_matrix(q[np.linalg.norm(q, axis=1) > 0.5])
+
+
+def pad_quaternions(reps: list[np.ndarray]) -> np.ndarray:
+    """Per-prototype rotation lists [(S_k, 3, 3)] -> (K, S, 4) quaternions, rows of zeros as padding."""
+    S = max((len(r) for r in reps), default=1)
+    out = np.zeros((len(reps), S, 4))
+    for k, r in enumerate(reps):
+        out[k, :len(r)] = matrix_to_quat(np.asarray(r, np.float64).reshape(-1, 3, 3))
+    return out
 
 
 def _dec(a):

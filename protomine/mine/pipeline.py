@@ -33,7 +33,7 @@ from ..rotations import matrix_to_quat
 from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
-from .library import Library, log_distance_fit, match_score, write_library
+from .library import Library, log_distance_fit, match_score, pad_quaternions, write_library
 from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
@@ -314,6 +314,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         "cell_reliability": reliability.astype(np.float32),
         "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K, "aspect": aspect,
         **pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"]),
+        "symmetry_rotations": pad_quaternions(model.symmetry_rotations_),
     }
     members = {
         "object": np.array(store.ids, dtype=object), "cluster": labels.astype(np.int64), "yaw_deg": yaw,
@@ -343,6 +344,12 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     write_member_sheets(out / "members", lib, store, progress=progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
                  "k_selection": k_table, "notices": notices}
+
+
+def library_gallery_faces(lib: Library) -> list | None:
+    """:func:`gallery_faces` of a library read back (the tilt grid it was mined with), for re-rendered galleries."""
+    grid = TiltGrid.from_config(lib.tilt_config)
+    return gallery_faces(np.asarray(lib.prototypes["volumes"]), lib.prototypes, None if grid.is_identity else grid)
 
 
 def gallery_faces(vols: np.ndarray, protos: dict, grid: TiltGrid | None) -> list | None:

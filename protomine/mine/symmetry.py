@@ -69,10 +69,44 @@ Public API
 - ``canonical_shift_bins(P, V, symmetry) -> np.ndarray`` (K,) float roll t (bins) per prototype
 - ``period_deg(symmetry) -> np.ndarray`` (K,) float (0 for continuous)
 - ``wrap_yaw(yaw_deg, symmetry) -> np.ndarray`` yaw (N, K) or (N,) reduced modulo each prototype's period
+
+Symmetry in 3-D (rotations that move up)
+----------------------------------------
+A cube-like box is also unchanged by quarter turns that tip it onto a side; a cylinder lying on its side by
+a half turn about the vertical.  The rotations of a prototype's symmetry group G that fix its canonical up
++z are the about-up symmetries above (n-fold or continuous: the subgroup H).  The rest are found with the
+tilt search itself, matching the prototype against its own tilted copies (``tilts.TiltBank``: every copy
+re-normalised by its own footprint and height, exactly as an object lying that way is lifted):
+:func:`tilt_symmetries` searches every up direction u of the HEALPix grid with N_side = ``TILT_NSIDE``
+(192 directions, 14.7 degrees apart) more than ``MIN_TILT_DEG`` from +z, each with the FFT yaw search, and
+refines the directions whose copy nearly matches (effect ratio below ``LOOSE`` x tol and lowest among its
+neighbours) on finer grids (N_side = ``REFINE_NSIDES``, 7.3, 3.7 then 1.8 degrees) around them.  The rotation found,
+g = Rz(yaw) tilt_matrix(u) (``rotations``: object = prototype turned by g), is a symmetry when the same
+test as above passes on the prototype and its turned copy (T <= factor or E <= tol; the copy's cell noise
+is the prototype's mean noise, since members' moments are gathered in the canonical frame only), the copy
+covers at least ``MIN_OVERLAP`` of the prototype's observation weight (an underside nobody saw proves no
+symmetry), and its footprint radius and height agree with the upright prototype's within ``SIZE_TOL``
+(each copy is re-normalised by its own size, so the volumes alone cannot tell a flat tile from the same
+tile on its edge).  Found
+rotations that carry +z to the same direction (within ``SAME_DEG``) are one coset g H; one representative
+is kept per coset (identity first), and the group is G = {g_i h : h in H} (:func:`group_elements`; a
+continuous H is sampled every 10 degrees).
+
+Poses modulo G (:func:`reduce_modulo_group`): a pose R (object <- prototype) and R g for any g in G show
+the same object.  Of these the one whose up in the prototype frame, g^T R^T e_z, lies nearest the fixed
+direction ``PREFERRED_UP`` (+z tipped slightly towards +x and +y, so that symmetric faces such as a box's
++x and -x sides never tie) is reported; the yaw about that face is then reduced by the face's own period
+(``faces.reduce_rotation``).
+
+- ``tilt_symmetries(bank, k, noise, *, factor, tol) -> (S, 3, 3)`` coset representatives (identity first)
+- ``group_elements(reps, code) -> (G, 3, 3)``; ``reduce_modulo_group(R, group) -> (N, 3, 3)``
 """
 from __future__ import annotations
 
 import numpy as np
+from scipy import sparse
+
+from .. import rotations as rot
 
 CONTINUOUS = 0
 NONE = 1
@@ -126,6 +160,24 @@ def _fourier_roll(a: np.ndarray, s: float, axis: int) -> np.ndarray:
     shape[axis] = k.size
     phase = np.exp(-2j * np.pi * k * s / n).reshape(shape)
     return np.fft.irfft(np.fft.rfft(a, axis=axis) * phase, n=n, axis=axis)
+
+
+def _mismatch(P: np.ndarray, V: np.ndarray, u: np.ndarray, ps: np.ndarray, vs: np.ndarray, us: np.ndarray
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """(T, E) per prototype of P (K, C, R, A, H), V (K, R, A, H) against turned copies ps, vs (same shapes)
+    with cell noise u, us (broadcastable to P): T the largest per-slab ratio, E the effect ratio."""
+    om = (V * vs)[:, None]
+    d2 = om * (P - ps) ** 2
+    num = d2.sum(axis=(1, 2, 3))  # (K, H): one ratio per height slab
+    den = (om * (u + np.maximum(us, 0.0))).sum(axis=(1, 2, 3))
+    T = (num / np.maximum(den, 1e-30)).max(axis=1)
+    h0 = 1 if P.shape[4] > 2 else 0
+    Vb = V[:, None, ..., h0:]
+    Ph = P[..., h0:]
+    m = (Vb * Ph).sum(axis=(2, 3), keepdims=True) / np.maximum(Vb.sum(axis=(2, 3), keepdims=True), 1e-12)
+    var = 2.0 * (Vb * (Ph - m) ** 2).sum(axis=(1, 2, 3, 4))
+    E = d2[..., h0:].sum(axis=(1, 2, 3, 4)) / np.maximum(var, 1e-30)
+    return T, E
 
 
 def asymmetry_ratio(P: np.ndarray, V: np.ndarray, mean_var: np.ndarray, shift_bins) -> np.ndarray:
@@ -259,3 +311,143 @@ def wrap_yaw(yaw_deg: np.ndarray, symmetry: np.ndarray) -> np.ndarray:
     yaw = np.asarray(yaw_deg, dtype=np.float64)
     safe = np.where(per > 0, per, 360.0)
     return np.where(per > 0, np.mod(yaw, safe), 0.0).astype(np.float32)
+
+
+# --- symmetry in 3-D -------------------------------------------------------------------------
+
+TILT_NSIDE = 4          # HEALPix N_side of the directions tried (192, 14.7 degrees apart)
+REFINE_NSIDES = (8, 16, 32)  # ... and of the refinements around a near match (7.3, 3.7, then 1.8 degrees apart)
+MIN_OVERLAP = 0.5       # share of the prototype's observation weight its turned copy must cover
+MIN_TILT_DEG = 30.0     # directions nearer +z than this belong to the about-up test
+SAME_DEG = 20.0         # rotations carrying +z within this angle of each other are one coset
+LOOSE = 3.0             # a direction is refined when its effect ratio is below LOOSE x tol
+SIZE_TOL = np.log(1.15)  # ... and its turned copy's footprint radius and height agree within 15 %
+MAX_CANDIDATES = 12     # directions refined at most (the best first)
+PREFERRED_UP = np.array([2.0, 1.0, 3.0]) / np.sqrt(14.0)
+
+
+def _turned_copies(bank, k: int, ups: np.ndarray, solid=None) -> tuple[np.ndarray, np.ndarray]:
+    """Copies (M, C, R, A, H), (M, R, A, H) of prototype k of a ``tilts.TiltBank`` resting on ups (M, 3), as
+    ``TiltBank.copy_at`` makes them (``solid``: the prototype's ``tilts.solid_points``, computed once), all
+    sampled through one map."""
+    from .tilts import _cell_points, _trilinear, copy_geometry, solid_points
+    P, V, a = bank.P[k], bank.V[k], float(bank.aspect[k])
+    solid = solid if solid is not None else solid_points(P[0], V, a, bank.grid)
+    shape = V.shape
+    pts = []
+    for u in np.asarray(ups, np.float64):
+        g = copy_geometry(P[0], V, a, u, bank.grid, solid)
+        pts.append((_cell_points(*shape, g.rho_max, g.z_max) + g.base) @ g.M + g.c0)  # M^T (q + b) + c0
+    M, n = len(pts), int(np.prod(shape))
+    idx, wts = _trilinear(np.concatenate(pts), shape, 1.0, a)  # (8, M n)
+    rows = np.broadcast_to(np.arange(M * n), idx.shape)
+    S = sparse.csr_matrix((wts.ravel(), (rows.ravel(), idx.ravel())), shape=(M * n, n))
+    stack = np.concatenate([V.reshape(1, n), (V[None] * P).reshape(-1, n)]).T  # (n, 1 + C): [w, w x]
+    out = np.asarray(S @ stack).T.reshape(-1, M, n)
+    v = out[0]
+    pc = np.where(v[None] > 1e-6, out[1:] / np.maximum(v[None], 1e-6), 0.0)  # features are means
+    return (np.moveaxis(pc, 1, 0).reshape((M,) + P.shape).astype(np.float32),
+            v.reshape((M,) + shape).astype(np.float32))
+
+
+def _self_match(P: np.ndarray, V: np.ndarray, Pc: np.ndarray, Vc: np.ndarray, noise: float
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Best yaw (M,) of the prototype P (C, R, A, H), V (R, A, H) against its copies Pc (M, ...), Vc, and the
+    (T, E) of the copies turned by that yaw (object = copy rolled by yaw, ``posesearch``)."""
+    from .posesearch import PoseBank, shift_volume
+    m = PoseBank(Pc, Vc, (1.0,)).match(P[None], V[None])
+    yaw = np.where(np.isfinite(m.D[0]), m.yaw_deg[0], 0.0).astype(np.float64)
+    A = P.shape[2]
+    qs = shift_volume(Pc.astype(np.float64), yaw / (360.0 / A), axis=3)
+    ws = np.clip(shift_volume(Vc.astype(np.float64), yaw / (360.0 / A), axis=2), 0.0, 1.0)
+    M = len(Pc)
+    Pb = np.broadcast_to(P.astype(np.float64), (M,) + P.shape)
+    Vb = np.broadcast_to(V.astype(np.float64), (M,) + V.shape)
+    T, E = _mismatch(Pb, Vb, noise, qs, ws, noise)
+    # the copy must show most of what the prototype shows: a flip onto cells nobody saw proves nothing
+    overlap = (Vb * ws).sum(axis=(1, 2, 3)) / np.maximum(Vb.sum(axis=(1, 2, 3)), 1e-12)
+    bad = ~np.isfinite(m.D[0]) | (overlap < MIN_OVERLAP)
+    return yaw, np.where(bad, np.inf, T), np.where(bad, np.inf, E)
+
+
+def tilt_symmetries(bank, k: int, noise: float, code: int, *, factor: float = DEFAULT_FACTOR, tol: float = DEFAULT_TOL,
+                    nside: int = TILT_NSIDE) -> np.ndarray:
+    """Coset representatives (S, 3, 3) of prototype k's symmetries that move +z (identity first; see the
+    module docstring).  ``bank`` is a ``tilts.TiltBank`` over the canonical prototypes, ``noise`` the
+    prototype's mean cell variance (the about-up test's noise level), ``code`` its about-up symmetry."""
+    from .tilts import copy_geometry, solid_points
+    P, V, a = np.asarray(bank.P[k]), np.asarray(bank.V[k]), float(bank.aspect[k])
+    solid = solid_points(P[0], V, a, bank.grid)
+    g0 = copy_geometry(P[0], V, a, np.array([0.0, 0.0, 1.0]), bank.grid, solid)
+
+    def same_size(u: np.ndarray, slack: float = 1.0) -> bool:  # a symmetry keeps the footprint and the height
+        g = copy_geometry(P[0], V, a, u, bank.grid, solid)
+        return max(abs(np.log(g.rho_max / g0.rho_max)), abs(np.log(g.z_max / g0.z_max))) <= slack * SIZE_TOL
+
+    dirs = rot.up_grid(nside)
+    dirs = dirs[dirs[:, 2] < np.cos(np.deg2rad(MIN_TILT_DEG))]
+    yaw, T, E = _self_match(P, V, *_turned_copies(bank, k, dirs, solid), noise)
+    # local minima of E among the directions within 1.5 grid spacings, below the loose bar
+    near = rot.angle_between_deg(dirs[:, None], dirs[None]) <= 1.5 * rot.grid_spacing_deg(nside)
+    cand = np.flatnonzero((E <= LOOSE * tol) & (E <= np.where(near, E[None], np.inf).min(axis=1)))
+    found = []
+    n = 36 if int(code) == CONTINUOUS else max(int(code), 1)
+    h = rot.yaw_matrix(np.arange(n) * 360.0 / n)
+    known = np.zeros((0, 3))  # ups u = g^T e_z of the group found so far (h g h' for about-up h, h')
+    for c in cand[np.argsort(E[cand])][:MAX_CANDIDATES]:
+        if (len(known) and rot.angle_between_deg(known, dirs[c][None]).min() < SAME_DEG) or not same_size(dirs[c], 2.0):
+            continue
+        best, radius = dirs[c], 0.75 * rot.grid_spacing_deg(nside)
+        for fine_nside in REFINE_NSIDES:  # finer and finer directions around the best so far
+            fine = rot.up_grid(fine_nside)
+            ups = fine[rot.angle_between_deg(fine, best[None]) <= radius]
+            ups = ups[ups[:, 2] < np.cos(np.deg2rad(MIN_TILT_DEG))]
+            if not len(ups):
+                break
+            fy, fT, fE = _self_match(P, V, *_turned_copies(bank, k, ups, solid), noise)
+            j = int(np.argmin(fE))
+            best, radius = ups[j], 1.0 * rot.grid_spacing_deg(fine_nside)
+        else:
+            if (fT[j] <= factor or fE[j] <= tol) and same_size(best):
+                g = rot.tilt_yaw_to_matrix(best, fy[j])
+                found.append(g)
+                known = np.concatenate([known, h.transpose(0, 2, 1) @ g[2], h.transpose(0, 2, 1) @ g[:, 2]])
+    if not found:
+        return np.eye(3)[None]
+    # the group holds h g for every about-up symmetry h: one representative per image of +z
+    found = np.stack(found)
+    gens = np.concatenate([np.eye(3)[None], found, np.swapaxes(found, 1, 2)])
+    return coset_representatives((h[:, None] @ gens[None]).reshape(-1, 3, 3))  # identity first
+
+
+def coset_representatives(group: np.ndarray) -> np.ndarray:
+    """One element per image g e_z of +z (within ``SAME_DEG``), in the group's order (identity first)."""
+    cos_same = np.cos(np.deg2rad(SAME_DEG))
+    reps = []
+    for g in np.asarray(group, np.float64):
+        if all(float(g[:, 2] @ r[:, 2]) < cos_same for r in reps):
+            reps.append(g)
+    return np.stack(reps)
+
+
+def group_elements(reps: np.ndarray, code: int) -> np.ndarray:
+    """The group (G, 3, 3) {g h}: coset representatives reps (S, 3, 3) (rows of zeros = padding) times the
+    about-up rotations h of the symmetry ``code`` (0 continuous: sampled every 10 degrees, 1 none, n n-fold)."""
+    reps = np.asarray(reps, np.float64).reshape(-1, 3, 3)
+    reps = reps[np.abs(reps).sum(axis=(1, 2)) > 0]
+    n = 36 if int(code) == CONTINUOUS else max(int(code), 1)
+    h = rot.yaw_matrix(np.arange(n) * 360.0 / n)
+    return (reps[:, None] @ h[None]).reshape(-1, 3, 3)
+
+
+def reduce_modulo_group(R: np.ndarray, group: np.ndarray) -> np.ndarray:
+    """Of the poses R g (g in ``group`` (G, 3, 3)) of each rotation R (N, 3, 3) (object <- prototype), the one
+    whose up in the prototype frame lies nearest ``PREFERRED_UP`` (see the module docstring)."""
+    R = np.asarray(R, np.float64).reshape(-1, 3, 3)
+    group = np.asarray(group, np.float64).reshape(-1, 3, 3)
+    if len(group) <= 1 or not len(R):
+        return R @ group[0] if len(group) else R
+    up = R[:, 2, :]                                         # R^T e_z
+    imgs = np.einsum("gji,nj->ngi", group, up)              # g^T up
+    best = np.argmax(imgs @ PREFERRED_UP, axis=1)
+    return R @ group[best]

@@ -17,7 +17,12 @@ objects, as when the objects do not fit the workers' caches):
   passes after a warm-up; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores), ``speedup`` = local_s /
   cluster_s, and the results are checked equal (same labels);
 - ``worker_s_per_object``: the workers' own chunk times / N (read, transform, search, sums), against
-  ``local_1thread_s_per_object`` (``ratio_worker_local_per_object``, target <= 1.2).
+  ``local_1thread_s_per_object`` (``ratio_worker_local_per_object``, target <= 1.2);
+- ``worker_cpu_s_per_object`` (2 workers; ``..._1worker``: 1 worker), ``local_1thread_cpu_s_per_object``,
+  ``ratio_worker_local_cpu_per_object``: the same in CPU seconds of the thread that did the work
+  (``time.thread_time``).  Wall times on a machine whose cores other processes also use grow with the
+  load (two workers on two busy cores get little more than one core); CPU seconds tell whether a worker
+  does more work per object than this process, whatever the load.
 
 Each worker process runs torch with one thread (:mod:`protomine.cores`); it builds the pose bank (the
 scaled prototypes' spectra) once per pass, not once per chunk.
@@ -27,7 +32,8 @@ Projection model (one pass, N objects, W workers, chunks of c objects, n = ceil(
     T_pass = t_obj * N / W  +  t_task * n / W  +  t_fold * n  +  b_part * n / bandwidth
 
 - ``t_obj``: a worker's seconds per object (read, transform, pose search over all shifts and scales, aligned
-  sums), measured as the workers' own chunk times / N;
+  sums) on a core of its own, measured as the workers' CPU seconds for their chunks / N (their wall times,
+  ``t_obj_wall_s``, also count the time other processes of a shared machine held the core);
 - ``t_task``: scheduling overhead per task = (cluster wall time - max worker busy time) / (n / W);
 - ``t_fold``: the caller's seconds to fold one chunk's sums (measured, total reduce time / n);
 - ``b_part``: bytes of one chunk's result (K (C + 2) R A H float64 sums + 16 bytes per object);
@@ -83,15 +89,16 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         spec = NpySpec(str(xp), str(wp))
         src = spec.open()
         _assign_pass(ArraySource(*src.read(0, chunk)), P, V, scales, chunk, True, 0)  # warm-up
-        local = {}
+        local, local_cpu = {}, {}
         for threads in (1, cores.usable_cores()):  # one core (a worker's share), then every core
             cores.set_torch_threads(threads)
-            times = []
+            times, cpu = [], []
             for _ in range(2):
-                t0 = time.perf_counter()
+                t0, c0 = time.perf_counter(), time.thread_time()
                 ref = _assign_pass(src, P, V, scales, chunk, True, 0)
                 times.append(time.perf_counter() - t0)
-            local[threads] = min(times)
+                cpu.append(time.thread_time() - c0)
+            local[threads], local_cpu[threads] = min(times), min(cpu)
             print(f"[bench] local pass over {n} objects, {threads} thread(s): {local[threads]:.2f} s",
                   file=sys.stderr, flush=True)
         local_1t, local_s = local[1], local[cores.usable_cores()]
@@ -113,7 +120,8 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                     walls.append(time.perf_counter() - t0)
                     secs = np.array(dsrc.last_seconds)
                     # item i ran on worker i mod n (preferred); the busiest worker bounds the wall time
-                    busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers))))
+                    busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers)),
+                                 float(np.sum(dsrc.last_cpu_seconds))))
                 k = int(np.argsort(walls)[len(walls) // 2])
                 runs[n_workers] = (statistics.median(walls), *busy[k])
                 print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
@@ -132,8 +140,8 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         for _ in range(n_chunks):
             acc += part
         fold_s = (time.perf_counter() - t0) / n_chunks
-    cluster_s, worker_total, worker_max = runs[2]
-    t_obj = worker_total / n
+    cluster_s, worker_total, worker_max, worker_cpu = runs[2]
+    t_obj = worker_cpu / n  # a core of its own (module docstring); worker_total / n on this machine's load
     t_task = max(0.0, (cluster_s - worker_max) / (n_chunks / 2))
     b_part = part.nbytes + 16 * chunk
     # projection at the default mining chunk size and the same K
@@ -151,12 +159,15 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "local_s": local_s, "local_threads": cores.usable_cores(), "local_1thread_s": local_1t,
         "cluster_1worker_s": runs[1][0], "cluster_workers": 2, "cluster_s": cluster_s,
         "speedup_2_vs_1_worker": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
-        "worker_s_per_object": t_obj, "local_1thread_s_per_object": local_1t / n,
-        "ratio_worker_local_per_object": t_obj / (local_1t / n),
+        "worker_s_per_object": worker_total / n, "local_1thread_s_per_object": local_1t / n,
+        "ratio_worker_local_per_object": (worker_total / n) / (local_1t / n),
+        "worker_cpu_s_per_object": worker_cpu / n, "worker_cpu_s_per_object_1worker": runs[1][3] / n,
+        "local_1thread_cpu_s_per_object": local_cpu[1] / n,
+        "ratio_worker_local_cpu_per_object": worker_cpu / local_cpu[1],
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
         "cluster_equal_labels": same, "cluster_max_rel_sum_diff": max_rel,
         "worker_rss_mb_after": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),
-        "t_obj_s": t_obj, "t_task_s": t_task, "t_fold_s": fold_s, "b_part_bytes": int(b_part),
+        "t_obj_s": t_obj, "t_obj_wall_s": worker_total / n, "t_task_s": t_task, "t_fold_s": fold_s, "b_part_bytes": int(b_part),
         "bandwidth_Bps": BANDWIDTH_BPS, "load_1m_start": load0, "load_1m": os.getloadavg()[0],
         "projection": [{"objects": N, "workers": Wk, "chunk_size": proj_chunk, "chunks": nc, **terms,
                         "pass_s": t_pass, "mine_30_passes_min": 31 * t_pass / 60.0,
