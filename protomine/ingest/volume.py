@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..geometry import camera_to_world, plane_basis, world_to_pixel
-from .depthedges import FLYING_REACH, steady_depth
+from .depthedges import FLYING_WINDOW, steady_depth
 
 CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
 FEATURES = ("surface", "free", "red*surface", "green*surface", "blue*surface")
@@ -124,7 +124,7 @@ def _carving_depth(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarra
     """Depth (M,) at pixels (r, u) (M,), flying pixels read as 0; filters only the patch the pixels span."""
     if len(r) == 0:
         return np.zeros(0)
-    m = FLYING_REACH
+    m = FLYING_WINDOW
     r0, u0 = max(int(r.min()) - m, 0), max(int(u.min()) - m, 0)
     patch = steady_depth(depth[r0:int(r.max()) + m + 1, u0:int(u.max()) + m + 1])
     return patch[r - r0, u - u0]

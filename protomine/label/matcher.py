@@ -26,9 +26,8 @@ objects to their own prototype (``single_mu``, ``single_sigma``, learnt at minin
 the fraction of single views of prototype k's own members expected to fit worse than this one.  It is in
 [0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
-the assignment rule of mining itself, or with ``[mine] decide_reliable`` the smallest distance re-weighted at
-its pose by the per-cell reliability of single views (the distance the score judges) (an object with no
-observed cell in common with any prototype gets cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
+the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
+cluster None and score 0); alternatives are the next nearest prototypes, with their scores.  It is
 "unknown" when that score is below the library's ``unknown_cut`` (``mine.openset``: the split-conformal
 cut at ``unknown_alpha`` on held-out single views of mined objects, so at most that share of known-class
 views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_cut))``.
@@ -87,7 +86,6 @@ class Matcher:
     scales: tuple[float, ...]
     unknown_cut: float
     weighted: bool = True
-    decide_reliable: bool = False
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -113,10 +111,7 @@ class Matcher:
 
     def match(self, volumes: np.ndarray) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
-        (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).  distance is
-        the decision distance: the pose-minimised distance, or with ``decide_reliable`` that distance
-        re-weighted at the found pose by the prototype's cell reliability (``mine.reliability``; the plain one
-        for tilted matches or libraries without it)."""
+        (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none)."""
         n = volumes.shape[0]
         if n == 0:
             z = np.zeros((0, self.K))
@@ -137,20 +132,11 @@ class Matcher:
         if lam is not None:
             upright = self.tilts.is_upright(tilt)
             Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
-        Dr = np.where(np.isfinite(D), Dr, np.inf)
         S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
-        S = np.where(np.isfinite(Dr), S, 0.0)
-        # ``[mine] decide_reliable`` (default off): the nearest prototype by the distance the score judges
-        # (the pose-minimised distance re-weighted by the reliability of single views); argmax of the score
-        # would let a loosely calibrated prototype win.  Measured on the demo (24 single views, upright objects,
-        # seed 0), gaussian / active-stereo depth, plain -> re-weighted decision: accuracy 0.885 -> 0.931 /
-        # 0.854 -> 0.885, unknown AUROC 0.920 -> 0.952 / 0.910 -> 0.924, known views flagged 13% -> 9% /
-        # 15% -> 8%, unknown flagged 100% -> 97% / 94% -> 75%: single views are near thin prototypes on the
-        # cells the sensor corrupts, which the weights discount.  Off, the assignment rule of mining (argmin
-        # of the plain distance): on the small scenario of tests/test_label.py the re-weighted decision's
-        # unknown AUROC fell below that test's 0.85 bar.
-        Dd = Dr if self.decide_reliable else np.where(np.isfinite(D), D, np.inf)
-        best = np.where(np.isfinite(Dd).any(axis=1), np.argmin(Dd, axis=1), -1)
+        S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
+        # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
+        # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
+        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         pr = self.library.prototypes
         face = np.zeros((n, self.K), np.int64)
         yaw = np.zeros((n, self.K))
@@ -159,7 +145,7 @@ class Matcher:
             face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
                                                               pr["face_up"][k], pr["face_symmetry"][k],
                                                               self.library.symmetry_group(k))
-        return {"distance": Dd, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
                 "rotation": rotation, "best": best}
 
 
@@ -178,7 +164,7 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   library_cut(library), weighted, bool(cfg["mine"].get("decide_reliable", False)))
+                   library_cut(library), weighted)
 
 
 @dataclass
