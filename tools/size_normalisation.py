@@ -32,7 +32,7 @@ from sklearn.metrics import normalized_mutual_info_score
 from protomine.config import load_config
 from protomine.ingest.sharded import open_store
 from protomine.mine import tilts
-from protomine.mine.tilts import TiltGrid, _trilinear, grid_aspect, tilt_pose_distances
+from protomine.mine.tilts import TiltGrid, grid_aspect, sample_volumes, tilt_pose_distances
 
 INV_RADIAL, INV_HEIGHT = 1.15, 2.2   # invariant grid: rho_max = 1.15 S, z_max = 2.2 S
 
@@ -59,9 +59,9 @@ def invariant_regrid(vol: np.ndarray, X: np.ndarray, W: np.ndarray, radius: np.n
         z2 = (np.arange(H) + 0.5) / H * INV_HEIGHT * S[i]
         rr, pp, zz = np.meshgrid(rho2, phi, z2, indexing="ij")
         q = np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], -1).reshape(-1, 3)
-        idx, wts = _trilinear(q, (R, A, H), rho_max, z_max)
-        v = (W[i].reshape(-1)[idx] * wts).sum(axis=0)
-        wx = ((W[i][None] * X[i]).reshape(C, -1)[:, idx] * wts[None]).sum(axis=1)
+        stack = np.concatenate([W[i][None], W[i][None] * X[i]])[None].astype(np.float32)  # (1, 1 + C, R, A, H)
+        out = sample_volumes(stack, q[None], [rho_max], [z_max])[0].numpy()  # (1 + C, R A H): [w, w x]
+        v, wx = out[0], out[1:]
         Wo[i] = v.reshape(R, A, H)
         Xo[i] = np.where(v > 1e-6, wx / np.maximum(v, 1e-6), 0.0).reshape(C, R, A, H)
     return Xo, Wo, S

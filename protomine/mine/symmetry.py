@@ -104,7 +104,6 @@ direction ``PREFERRED_UP`` (+z tipped slightly towards +x and +y, so that symmet
 from __future__ import annotations
 
 import numpy as np
-from scipy import sparse
 
 from .. import rotations as rot
 
@@ -326,30 +325,6 @@ MAX_CANDIDATES = 12     # directions refined at most (the best first)
 PREFERRED_UP = np.array([2.0, 1.0, 3.0]) / np.sqrt(14.0)
 
 
-def _turned_copies(bank, k: int, ups: np.ndarray, solid=None) -> tuple[np.ndarray, np.ndarray]:
-    """Copies (M, C, R, A, H), (M, R, A, H) of prototype k of a ``tilts.TiltBank`` resting on ups (M, 3), as
-    ``TiltBank.copy_at`` makes them (``solid``: the prototype's ``tilts.solid_points``, computed once), all
-    sampled through one map."""
-    from .tilts import _cell_points, _trilinear, copy_geometry, solid_points
-    P, V, a = bank.P[k], bank.V[k], float(bank.aspect[k])
-    solid = solid if solid is not None else solid_points(P[0], V, a, bank.grid)
-    shape = V.shape
-    pts = []
-    for u in np.asarray(ups, np.float64):
-        g = copy_geometry(P[0], V, a, u, bank.grid, solid)
-        pts.append((_cell_points(*shape, g.rho_max, g.z_max) + g.base) @ g.M + g.c0)  # M^T (q + b) + c0
-    M, n = len(pts), int(np.prod(shape))
-    idx, wts = _trilinear(np.concatenate(pts), shape, 1.0, a)  # (8, M n)
-    rows = np.broadcast_to(np.arange(M * n), idx.shape)
-    S = sparse.csr_matrix((wts.ravel(), (rows.ravel(), idx.ravel())), shape=(M * n, n))
-    stack = np.concatenate([V.reshape(1, n), (V[None] * P).reshape(-1, n)]).T  # (n, 1 + C): [w, w x]
-    out = np.asarray(S @ stack).T.reshape(-1, M, n)
-    v = out[0]
-    pc = np.where(v[None] > 1e-6, out[1:] / np.maximum(v[None], 1e-6), 0.0)  # features are means
-    return (np.moveaxis(pc, 1, 0).reshape((M,) + P.shape).astype(np.float32),
-            v.reshape((M,) + shape).astype(np.float32))
-
-
 def _self_match(P: np.ndarray, V: np.ndarray, Pc: np.ndarray, Vc: np.ndarray, noise: float
                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Best yaw (M,) of the prototype P (C, R, A, H), V (R, A, H) against its copies Pc (M, ...), Vc, and the
@@ -386,7 +361,7 @@ def tilt_symmetries(bank, k: int, noise: float, code: int, *, factor: float = DE
 
     dirs = rot.up_grid(nside)
     dirs = dirs[dirs[:, 2] < np.cos(np.deg2rad(MIN_TILT_DEG))]
-    yaw, T, E = _self_match(P, V, *_turned_copies(bank, k, dirs, solid), noise)
+    yaw, T, E = _self_match(P, V, *bank.copies_at(k, dirs), noise)
     # local minima of E among the directions within 1.5 grid spacings, below the loose bar
     near = rot.angle_between_deg(dirs[:, None], dirs[None]) <= 1.5 * rot.grid_spacing_deg(nside)
     cand = np.flatnonzero((E <= LOOSE * tol) & (E <= np.where(near, E[None], np.inf).min(axis=1)))
@@ -404,7 +379,7 @@ def tilt_symmetries(bank, k: int, noise: float, code: int, *, factor: float = DE
             ups = ups[ups[:, 2] < np.cos(np.deg2rad(MIN_TILT_DEG))]
             if not len(ups):
                 break
-            fy, fT, fE = _self_match(P, V, *_turned_copies(bank, k, ups, solid), noise)
+            fy, fT, fE = _self_match(P, V, *bank.copies_at(k, ups), noise)
             j = int(np.argmin(fE))
             best, radius = ups[j], 1.0 * rot.grid_spacing_deg(fine_nside)
         else:

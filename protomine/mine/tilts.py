@@ -133,35 +133,6 @@ def _cell_points(R: int, A: int, H: int, rho_max: float, z_max: float) -> np.nda
     return np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], -1).reshape(-1, 3)
 
 
-def _trilinear(pts: np.ndarray, shape: tuple[int, int, int], rho_max: float, z_max: float
-               ) -> tuple[np.ndarray, np.ndarray]:
-    """Sampling map of points (M, 3) in a cylindrical grid: corner indices (8, M) into R A H and weights (8, M)
-    (all 0 for points outside the grid's cylinder); the same reading as :func:`sample_volumes`, as explicit
-    index/weight arrays for callers that apply one map to many volumes."""
-    R, A, H = shape
-    fi = np.hypot(pts[:, 0], pts[:, 1]) / rho_max * R - 0.5
-    fj = np.mod(np.arctan2(pts[:, 1], pts[:, 0]), 2 * np.pi) / (2 * np.pi) * A - 0.5
-    fk = pts[:, 2] / z_max * H - 0.5
-    inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
-    fi = np.clip(fi, 0.0, R - 1)
-    fk = np.clip(fk, 0.0, H - 1)
-    i0, j0, k0 = np.floor(fi), np.floor(fj), np.floor(fk)
-    ti, tj, tk = fi - i0, fj - j0, fk - k0
-    idx, wts = [], []
-    for di in (0, 1):
-        ii = np.minimum(i0 + di, R - 1).astype(np.int64)
-        wi = ti if di else 1 - ti
-        for dj in (0, 1):
-            jj = np.mod(j0 + dj, A).astype(np.int64)
-            wj = tj if dj else 1 - tj
-            for dk in (0, 1):
-                kk = np.minimum(k0 + dk, H - 1).astype(np.int64)
-                wk = tk if dk else 1 - tk
-                idx.append((ii * A + jj) * H + kk)
-                wts.append(wi * wj * wk * inside)
-    return np.stack(idx), np.stack(wts).astype(np.float32)
-
-
 def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray) -> torch.Tensor:
     """Trilinear samples (m, c, N) of cylindrical volumes ``vol`` (m, c, R, A, H) (array or tensor; its dtype
     is kept) at points ``pts`` (m, N, 3) of each volume's frame, whose grid extents are ``rho_max``,
@@ -433,9 +404,19 @@ class TiltBank:
 
     def copy_at(self, k: int, up: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Copy (C, R, A, H), (R, A, H) of prototype k resting with any direction ``up`` (3,) pointing up."""
-        g = copy_geometry(self.P[k, 0], self.V[k], float(self.aspect[k]), np.asarray(up, np.float64), self.grid)
-        pc, vc = _resample_copies(self.P[k][None], self.V[k][None], [g], self.aspect[k:k + 1])
+        pc, vc = self.copies_at(k, np.asarray(up, np.float64)[None])
         return pc[0], vc[0]
+
+    def copies_at(self, k: int, ups: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Copies (M, C, R, A, H), (M, R, A, H) of prototype k resting with any directions ``ups`` (M, 3) pointing
+        up (not kept: arbitrary directions are rarely asked for twice)."""
+        k = int(k)
+        if k not in self._solid:
+            self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
+        gs = copy_geometries(self.shape, float(self.aspect[k]), np.asarray(ups, np.float64), self.grid, self._solid[k])
+        M = len(gs)
+        return _resample_copies(np.broadcast_to(self.P[k], (M,) + self.P.shape[1:]),
+                                np.broadcast_to(self.V[k], (M,) + self.shape), gs, np.full(M, self.aspect[k]))
 
     def untilt(self, k: int, t: int, a: np.ndarray) -> np.ndarray:
         """Sums a (..., R, A, H) in the copy frame of (k, t) rotated back into prototype k's frame."""
