@@ -35,10 +35,9 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 from sklearn.metrics import roc_auc_score
 
-from ..audit.metrics import symmetry_to_period_deg, yaw_error_deg
+from ..audit.metrics import rotation_error_deg, symmetry_to_period_deg, yaw_error_deg
 from ..errors import InputError
-from ..mine.evaluate import (cluster_rotation_offsets, cluster_yaw_offsets, majority_map, read_truth_table,
-                             rotation_error_deg)
+from ..mine.evaluate import cluster_rotation_offsets, cluster_yaw_offsets, majority_map, read_truth_table
 from ..rotations import quat_to_matrix
 from ..mine.library import Library
 

@@ -7,7 +7,7 @@
 - rotation error (truth tables with qx, qy, qz, qw: the rotation world <- the class's own frame): per
   cluster one offset O (prototype frame <- class frame) is removed, the geodesic medoid of the members'
   R_pred^T R_true, then each member's error is the geodesic angle between R_pred O and R_true, the least
-  over the class's symmetry rotations about its own z (``rotation_errors_deg``);
+  over the class's symmetry rotations about its own z (``mined_rotation_errors``);
 - detected vs true symmetry per cluster (majority class);
 - the pose-unaware baseline: scikit-learn KMeans on the flattened matching features, same K.
 """
@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..audit.metrics import (clustering_scores, rotation_error_deg, rotation_offset, symmetry_to_period_deg,  # noqa: F401
+from ..audit.metrics import (clustering_scores, rotation_error_deg, rotation_offset, symmetry_to_period_deg,
                              yaw_error_deg, yaw_offset_deg)
 from ..errors import InputError
 from .. import rotations as rot
