@@ -38,3 +38,39 @@ def steady_depth(depth: np.ndarray) -> np.ndarray:
     """depth (H, W) with its flying pixels set to 0 (no reading)."""
     return np.where(flying_pixels(depth), 0.0, depth)
 
+
+
+def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarray:
+    """``steady_depth(depth)[r, u]`` for pixels (r, u) (M,): the test of :func:`flying_pixels` run on the
+    patch the pixels span only (lifting asks for one object's few thousand cells).
+
+    The window's extremes are running maxima / minima of the patch's FLYING_WINDOW^2 shifted slices (with
+    a half-window border; beyond the image mirrored as scipy.ndimage's default ``mode='reflect'`` does):
+    on patches of a few thousand pixels that is about half the time of ``maximum_filter`` /
+    ``minimum_filter`` on them (their per-call cost dominates), with the same values.
+    """
+    if len(r) == 0:
+        return np.zeros(0, np.asarray(depth).dtype)
+    h, w = depth.shape
+    half = FLYING_WINDOW // 2
+    r0, r1 = int(r.min()), int(r.max()) + 1
+    u0, u1 = int(u.min()), int(u.max()) + 1
+    a0, a1, b0, b1 = max(r0 - half, 0), min(r1 + half, h), max(u0 - half, 0), min(u1 + half, w)
+    d = np.asarray(depth[a0:a1, b0:b1], np.float64)
+    pad = ((a0 - (r0 - half), r1 + half - a1), (b0 - (u0 - half), u1 + half - b1))
+    if any(p for side in pad for p in side):
+        d = np.pad(d, pad, mode="symmetric")      # numpy's 'symmetric' is scipy.ndimage's 'reflect'
+    valid = d > 0
+    d_hi, d_lo = np.where(valid, d, 0.0), np.where(valid, d, np.inf)
+    ph, pw = r1 - r0, u1 - u0
+    hi, lo = d_hi[:ph, :pw].copy(), d_lo[:ph, :pw].copy()
+    for i in range(FLYING_WINDOW):
+        for j in range(FLYING_WINDOW):
+            if i or j:
+                np.maximum(hi, d_hi[i:i + ph, j:j + pw], out=hi)
+                np.minimum(lo, d_lo[i:i + ph, j:j + pw], out=lo)
+    c = d[half:half + ph, half:half + pw]
+    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * c)
+    flying = (c > 0) & (c - lo > tol) & (hi - c > tol)
+    steady = np.where(flying, 0.0, depth[r0:r1, u0:u1])
+    return steady.reshape(-1).take((np.asarray(r) - r0) * pw + (np.asarray(u) - u0))

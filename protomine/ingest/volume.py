@@ -28,7 +28,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..geometry import camera_to_world, plane_basis, world_to_pixel
-from .depthedges import FLYING_WINDOW, steady_depth
+from .depthedges import steady_depth_at
 
 CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
 FEATURES = ("surface", "free", "red*surface", "green*surface", "blue*surface")
@@ -78,6 +78,11 @@ class ObjectFrame:
 
 def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
     """World coordinates (R, A, H, 3) of the cell centres."""
+    return _cell_centres(grid, frame, plane_basis(frame.up))
+
+
+def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarray:
+    """:func:`cell_centres` with the object frame's ``plane_basis`` (3, 3) already computed."""
     R, A, H = grid.shape
     rho = (np.arange(R) + 0.5) / R * grid.radial_margin * frame.radius
     phi = (np.arange(A) + 0.5) / A * 2 * np.pi
@@ -86,69 +91,68 @@ def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
     local[..., 0] = rho[:, None, None] * np.cos(phi)[None, :, None]
     local[..., 1] = rho[:, None, None] * np.sin(phi)[None, :, None]
     local[..., 2] = z[None, None, :]
-    return local @ plane_basis(frame.up) + frame.origin
+    return local @ basis + frame.origin
 
 
-def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.ndarray) -> np.ndarray:
-    """Trilinear splat of values (M, V) at world points (M, 3) into (V+1, R, A, H): weight, weighted values."""
+def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.ndarray,
+           basis: np.ndarray | None = None) -> np.ndarray:
+    """Trilinear splat of values (M, V) at world points (M, 3) into (V+1, R, A, H): weight, weighted values.
+
+    ``basis``: the object frame's ``plane_basis`` when the caller has it already.
+    """
     R, A, H = grid.shape
-    out = np.zeros((values.shape[1] + 1, R * A * H))
+    n_cells = R * A * H
+    out = np.zeros((values.shape[1] + 1, n_cells))
     if len(pts_world) == 0:
         return out.reshape(-1, R, A, H)
-    local = (pts_world - frame.origin) @ plane_basis(frame.up).T
+    basis = plane_basis(frame.up) if basis is None else basis
+    local = (pts_world - frame.origin) @ basis.T
     rho = np.hypot(local[:, 0], local[:, 1]) / (grid.radial_margin * frame.radius) * R - 0.5
     phi = np.mod(np.arctan2(local[:, 1], local[:, 0]), 2 * np.pi) / (2 * np.pi) * A - 0.5
     z = local[:, 2] / (grid.height_margin * frame.height) * H - 0.5
     i0, j0, k0 = np.floor(rho), np.floor(phi), np.floor(z)
     fr, fp, fz = rho - i0, phi - j0, z - k0
-    vals = np.concatenate([np.ones((len(values), 1)), values], axis=1)
     # the 8 corners at once: index and weight arrays (2, 2, 2, M), corner (di, dj, dk) along the first axes;
     # points just inside the axis or the rim/top keep their whole weight in the edge bin
     step = np.arange(2)[:, None]
-    ii = np.clip(i0 + step, 0, R - 1).astype(int)
-    jj = np.mod(j0 + step, A).astype(int)
-    kk = (k0 + step).astype(int)
+    ii = np.clip(i0 + step, 0, R - 1).astype(np.intp)
+    jj = np.mod(j0 + step, A).astype(np.intp)
+    kk = (k0 + step).astype(np.intp)
     wi, wj, wk = np.stack([1 - fr, fr]), np.stack([1 - fp, fp]), np.stack([1 - fz, fz])
     flat = (ii[:, None, None] * A + jj[None, :, None]) * H + kk[None, None, :]
     w = wi[:, None, None] * wj[None, :, None] * wk[None, None, :]
     ok = ((kk >= 0) & (kk < H))[None, None, :] & (rho < R)
-    ok = np.broadcast_to(ok, flat.shape)
-    point = np.broadcast_to(np.arange(len(values)), flat.shape)[ok]
-    flat, w = flat[ok], w[ok]
-    for c in range(vals.shape[1]):
-        out[c] = np.bincount(flat, weights=w * vals[point, c], minlength=R * A * H)
+    # corners outside the grid (below the base, above the top, beyond the rim) go to a spare bin past the
+    # end, dropped after: one bincount per channel over every corner, no masked copies of the arrays
+    flat = np.where(ok, flat, n_cells).reshape(-1)
+    out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=n_cells + 1)[:n_cells]
+    for c in range(values.shape[1]):
+        out[c + 1] = np.bincount(flat, weights=(w * values[:, c]).reshape(-1), minlength=n_cells + 1)[:n_cells]
     return out.reshape(-1, R, A, H)
-
-
-def _carving_depth(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarray:
-    """Depth (M,) at pixels (r, u) (M,), flying pixels read as 0; filters only the patch the pixels span."""
-    if len(r) == 0:
-        return np.zeros(0)
-    m = FLYING_WINDOW
-    r0, u0 = max(int(r.min()) - m, 0), max(int(u.min()) - m, 0)
-    patch = steady_depth(depth[r0:int(r.max()) + m + 1, u0:int(u.max()) + m + 1])
-    return patch[r - r0, u - u0]
 
 
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
     R, A, H = grid.shape
-    centres = cell_centres(grid, frame).reshape(-1, 3)
+    n_cells = R * A * H
+    basis = plane_basis(frame.up)                     # once per object: the centres and the splat share it
+    centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
     cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
     margin = grid.carve_margin_cells * cell
-    surf_sum = np.zeros(R * A * H)
-    free_sum = np.zeros(R * A * H)
-    obs = np.zeros(R * A * H)
-    col = np.zeros((3, R * A * H))
-    colw = np.zeros(R * A * H)
+    surf_sum = np.zeros(n_cells)
+    free_sum = np.zeros(n_cells)
+    obs = np.zeros(n_cells)
+    col = np.zeros((3, n_cells))
+    colw = np.zeros(n_cells)
     for v in views:
         h, w = v.depth.shape
         uv, zc = world_to_pixel(centres, v.cam_to_world, v.K)
-        u = np.rint(uv[:, 0]).astype(int)
-        r = np.rint(uv[:, 1]).astype(int)
+        u = np.rint(uv[:, 0]).astype(np.intp)
+        r = np.rint(uv[:, 1]).astype(np.intp)
         inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
-        d = np.zeros(len(centres))
-        d[inside] = _carving_depth(v.depth, r[inside], u[inside])
+        d = np.zeros(n_cells)
+        # depth at the cells' pixels, flying pixels read as 0 (tested at those pixels only)
+        d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
         # the object's own points: back-project its pixels
@@ -159,13 +163,13 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         pc = np.stack([(uu - v.K[0, 2]) * z / v.K[0, 0], (vv - v.K[1, 2]) * z / v.K[1, 1], z], axis=1)
         pw = camera_to_world(pc, v.cam_to_world)
         rgb = v.rgb.reshape(-1, 3)[v.pixels[good]].astype(np.float64) / 255.0
-        sp = _splat(grid, frame, pw, rgb).reshape(4, -1)
+        sp = _splat(grid, frame, pw, rgb, basis).reshape(4, -1)
         # point density depends on resolution and distance: measure splat weight against this frame's
         # typical occupied-cell weight so that evidence is the same for near and far, small and large
         hit = sp[0] > 0
         typical = np.percentile(sp[0][hit], 75) if hit.any() else 1.0
         surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
-        seen |= sp[0] > 0
+        seen |= hit
         free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
         obs += seen
         surf_sum += surf * seen
@@ -173,7 +177,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         col += sp[1:]
         colw += sp[0]
     n = np.maximum(obs, 1.0)
-    out = np.zeros((len(CHANNELS), R * A * H))
+    out = np.zeros((len(CHANNELS), n_cells))
     out[0] = surf_sum / n
     out[1] = free_sum / n
     out[2] = obs
