@@ -61,10 +61,25 @@ def mask_to_rle(mask: np.ndarray) -> dict:
 
 
 def pixels_to_rle(pixels: np.ndarray, height: int, width: int) -> dict:
-    """RLE of flat row-major pixel indices (v * width + u) of an (height, width) image."""
-    mask = np.zeros(height * width, bool)
-    mask[np.asarray(pixels, dtype=np.int64)] = True
-    return mask_to_rle(mask.reshape(height, width))
+    """RLE of flat row-major pixel indices (v * width + u) of an (height, width) image: ``mask_to_rle`` of
+    their mask, from the sorted column-major indices of the pixels alone (no image-sized mask)."""
+    v, u = np.divmod(np.asarray(pixels, dtype=np.int64), width)
+    idx = np.sort(u * height + v)                      # column-major order
+    idx = idx[np.concatenate([[True], idx[1:] != idx[:-1]])] if len(idx) else idx   # each pixel once (np.unique
+    # gives the same; numpy 2.4's unique costs 5x the sort on a few thousand integers)
+    n = height * width
+    if len(idx) == 0:
+        return {"size": [int(height), int(width)], "counts": [n] if n else []}
+    brk = np.flatnonzero(np.diff(idx) != 1) + 1        # where a run of consecutive pixels starts anew
+    starts = idx[np.concatenate([[0], brk])]
+    ends = idx[np.concatenate([brk - 1, [len(idx) - 1]])] + 1
+    runs = np.empty(2 * len(starts) + 1, np.int64)     # zeros before, ones, zeros between, ..., zeros after
+    runs[0] = starts[0]
+    runs[1:-1:2] = ends - starts
+    runs[2:-1:2] = starts[1:] - ends[:-1]
+    runs[-1] = n - ends[-1]
+    counts = runs.tolist() if runs[-1] else runs[:-1].tolist()
+    return {"size": [int(height), int(width)], "counts": counts}
 
 
 def rle_area(rle: dict) -> int:

@@ -108,16 +108,20 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     basis = plane_basis(frame.up) if basis is None else basis
     local = (pts_world - frame.origin) @ basis.T
     rho = np.hypot(local[:, 0], local[:, 1]) / (grid.radial_margin * frame.radius) * R - 0.5
-    phi = np.mod(np.arctan2(local[:, 1], local[:, 0]), 2 * np.pi) / (2 * np.pi) * A - 0.5
+    phi = np.arctan2(local[:, 1], local[:, 0])
+    phi += np.where(phi < 0, 2 * np.pi, 0.0)          # [0, 2 pi): np.mod(phi, 2 pi) for phi in [-pi, pi]
+    phi = phi / (2 * np.pi) * A - 0.5
     z = local[:, 2] / (grid.height_margin * frame.height) * H - 0.5
     i0, j0, k0 = np.floor(rho), np.floor(phi), np.floor(z)
     fr, fp, fz = rho - i0, phi - j0, z - k0
     # the 8 corners at once: index and weight arrays (2, 2, 2, M), corner (di, dj, dk) along the first axes;
     # points just inside the axis or the rim/top keep their whole weight in the edge bin
     step = np.arange(2)[:, None]
-    ii = np.clip(i0 + step, 0, R - 1).astype(np.intp)
-    jj = np.mod(j0 + step, A).astype(np.intp)
-    kk = (k0 + step).astype(np.intp)
+    ii = np.clip(i0.astype(np.intp) + step, 0, R - 1)
+    jj = j0.astype(np.intp) + step                    # in [-1, A]: wrapped about the axis
+    jj[jj < 0] += A
+    jj[jj >= A] -= A
+    kk = k0.astype(np.intp) + step
     wi, wj, wk = np.stack([1 - fr, fr]), np.stack([1 - fp, fp]), np.stack([1 - fz, fz])
     flat = (ii[:, None, None] * A + jj[None, :, None]) * H + kk[None, None, :]
     w = wi[:, None, None] * wj[None, :, None] * wk[None, None, :]

@@ -52,7 +52,8 @@ from ..ingest.proposals import SceneObjects, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..geometry import plane_basis
-from ..mine.faces import face_pose
+from ..mine.faces import reduce_rotation
+from ..mine.symmetry import reduce_modulo_group
 from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
@@ -90,6 +91,7 @@ class Matcher:
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     bank: PoseBank | TiltBank = field(init=False)
+    groups: list[np.ndarray] = field(init=False)
     tilts: TiltGrid = field(init=False)
 
     def __post_init__(self) -> None:
@@ -99,6 +101,7 @@ class Matcher:
         self.tilts = TiltGrid.from_config(self.library.tilt_config)
         # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
         self.bank = make_bank(self.P, self.V, self.scales, self.tilts, self.library.prototypes["aspect"])
+        self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
 
     @property
     def K(self) -> int:
@@ -138,15 +141,32 @@ class Matcher:
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         pr = self.library.prototypes
-        face = np.zeros((n, self.K), np.int64)
-        yaw = np.zeros((n, self.K))
-        rotation = np.zeros((n, self.K, 3, 3))
-        for k in range(self.K):
-            face[:, k], rotation[:, k], yaw[:, k] = face_pose(rotation_of(self.tilts, tilt[:, k], raw[:, k]),
-                                                              pr["face_up"][k], pr["face_symmetry"][k],
-                                                              self.library.symmetry_group(k))
+        face, rotation, yaw = face_poses(rotation_of(self.tilts, tilt, raw), pr["face_up"], pr["face_symmetry"],
+                                         self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
                 "rotation": rotation, "best": best}
+
+
+def face_poses(R: np.ndarray, face_up: np.ndarray, face_symmetry: np.ndarray, groups: list[np.ndarray]
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``mine.faces.face_pose`` for every prototype at once: rotations R (n, K, 3, 3) of n objects against K
+    prototypes with faces face_up (K, F, 3), face_symmetry (K, F) (-1 = padding) and symmetry groups
+    (K of (G, 3, 3)) -> face (n, K), reduced rotation (n, K, 3, 3), yaw_deg (n, K).
+
+    The same rule as face_pose (the rotation modulo the group, the valid face whose up is nearest R^T e_z,
+    the yaw modulo that face's period), with the face choice and the reduction run once over every pair
+    instead of once per prototype (a Python loop over K costs more than matching a frame's objects)."""
+    R = np.array(R, np.float64).reshape(-1, len(groups), 3, 3)
+    n, K = R.shape[:2]
+    for k, g in enumerate(groups):
+        if g is not None and len(g) > 1 and n:
+            R[:, k] = reduce_modulo_group(R[:, k], g)
+    fs = np.asarray(face_symmetry)
+    cos = np.einsum("nki,kfi->nkf", R[:, :, 2, :], np.asarray(face_up, np.float64))
+    face = np.argmax(np.where(fs[None] >= 0, cos, -np.inf), axis=2)             # first of equals, as face_pose
+    code = fs[np.arange(K)[None, :], face]
+    Rr, yaw = reduce_rotation(R.reshape(-1, 3, 3), np.where(code == 0, 0.0, 360.0 / np.maximum(code, 1)).reshape(-1))
+    return face.astype(np.int64), Rr.reshape(n, K, 3, 3), yaw.reshape(n, K)
 
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
