@@ -3,18 +3,27 @@
 Conventions: as in :mod:`protomine.mine.engine` (X (N, C, R, A, H), W (N, R, A, H), prototypes
 P (K, C, R, A, H), V (K, R, A, H)).
 
-Map (a worker, per chunk of objects [i0, i1) or per explicit index list)
-    The worker opens the source itself (:class:`StoreSpec`: the object store on a shared file system;
-    :class:`NpySpec`: two ``.npy`` files read by :class:`NpyFileSource`), so volumes never cross the network.  It transforms the chunk
-    (object spectra, kept in a per-process cache of ``cache_mb`` for the next passes; item i goes to worker
-    i mod n, so the same worker sees the same chunk every pass), finds the best pose per (object,
-    prototype) against the broadcast prototypes, and sums the chunk's members aligned into their
-    prototype's frame.  It returns 4 numbers per object (label, yaw, scale, distance) and the chunk's
+Map (a worker, per task: a run of consecutive chunks of objects [i0, i1) or of explicit index lists)
+    A pass has few tasks (``TASKS_PER_WORKER`` per worker, each at most ``MAX_CHUNKS_PER_TASK`` chunks), so
+    scheduling costs per task, not per chunk.  The worker opens the source itself (:class:`StoreSpec`: the
+    object store on a shared file system; :class:`NpySpec`: two ``.npy`` files read by
+    :class:`NpyFileSource`), so volumes never cross the network.  It receives the prototypes (P, V, a few
+    MB) and builds their pose bank (the K x S scaled spectra, 14x the bytes) itself, once per pass; then, chunk
+    by chunk, it transforms the chunk (object spectra, kept in a per-process cache of ``cache_mb`` for the
+    next passes; task i goes to worker i mod n, so the same worker sees the same chunks every pass), finds
+    the best pose per (object, prototype), and sums the chunk's members aligned into their prototype's
+    frame.  It returns, per chunk, 4 numbers per object (label, yaw, scale, distance) and the chunk's
     aligned sums (K, C + 2, R, A, H) float64 (and, on the last pass, the symmetry moments).
 Reduce (the caller)
-    Per-object arrays are concatenated and the sums added in chunk order (fixed, never completion order),
-    then the engine's own update turns them into prototypes.  Memory per worker: one chunk's volumes and
-    spectra (about 0.25 MB per object on the default grid) plus K sums, plus the spectra cache budget.
+    Per-object arrays are concatenated and the sums added chunk by chunk in chunk order (fixed, never
+    completion order, whatever the tasks), then the engine's own update turns them into prototypes.  Memory
+    per worker: one chunk's volumes and spectra (about 0.25 MB per object on the default grid), the sums of
+    the task's chunks, plus the spectra cache budget.
+Cost per pass beyond the search itself (measured, ``protomine bench --scale``; 2 cores, K = 16, 5 scales):
+    building the bank took 41 ms and sending it (17.8 MB) 70 ms of wall time during which no worker could
+    start, plus ~3 ms of the caller's CPU per task.  Dask's own statistical profiler (on by default in every
+    worker: it samples every thread's stack each 10 ms) cost 0.15-0.2 s of worker CPU per ~1.3 s pass; a
+    cluster for mining should run with ``distributed.worker.profile.enabled: false`` (the bench's does).
 
 :class:`ExecutorSource` is a source (``len``, ``read``) whose passes run this way: the engine hands a pass
 to ``source.assign_pass`` when the source has one, so :class:`~protomine.mine.engine.PoseKMeans`, the
@@ -33,6 +42,7 @@ Public API
 """
 from __future__ import annotations
 
+import hashlib
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -44,9 +54,14 @@ from .aligned import aligned_volume_sums, mean_from_volume_sums
 from .engine import ArraySource, _AlignedSums, _chunk_step, _chunks, _SpectraCache
 from .posesearch import PoseBank, PoseMatch
 
+TASKS_PER_WORKER = 2   # map items per worker and pass (ExecutorSource._tasks): few, so that the fixed cost per
+                       # task (scheduling: ~3 ms of the caller's CPU each, measured) stays small, but more than
+                       # one, so that a worker slowed by other load can hand work to the others
+MAX_CHUNKS_PER_TASK = 8
 # per worker process: opened sources and spectra caches, keyed by what they were built from
 _OPEN: dict = {}
 _CACHES: dict = {}
+_BANKS: dict = {}
 
 
 @dataclass(frozen=True)
@@ -172,15 +187,40 @@ class _Part:
     dist: np.ndarray
     tot: np.ndarray | None = None      # (K, C + 2, R, A, H) aligned sums [w |x|^2, w, w x_1 .. w x_C]
     extra: np.ndarray | None = None    # (K, C + 1, R, A, H) moments [w x_1^2 .. w x_C^2, w^2]
-    seconds: float = 0.0               # the worker's time for this chunk (read, transform, match, sums)
-    cpu_seconds: float = 0.0           # the CPU time of the worker thread that ran it (the same work)
 
 
-def _chunk_pass(shared: tuple, item: tuple) -> _Part:
-    """Worker: one chunk of one assignment pass (module docstring)."""
-    spec, bank, shape, accumulate, moments, chunk_size, cache_bytes = shared
-    i0, i1, idx, forced, window = item
+def _bank(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], key: bytes) -> PoseBank:
+    """The pose bank of (P, V, scales), built once per worker and pass (``key``: a digest of them)."""
+    if key not in _BANKS:
+        _BANKS.clear()  # one bank per worker: the next pass's prototypes replace the last ones
+        _BANKS[key] = PoseBank(np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales))
+    return _BANKS[key]
+
+
+def _bank_key(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]) -> bytes:
+    h = hashlib.blake2b(digest_size=16)
+    for a in (np.ascontiguousarray(P, np.float32), np.ascontiguousarray(V, np.float32)):
+        h.update(repr(a.shape).encode())
+        h.update(a.data)
+    h.update(repr(tuple(float(s) for s in scales)).encode())
+    return h.digest()
+
+
+def _chunk_pass(shared: tuple, item: list[tuple]) -> tuple[list[_Part], float, float]:
+    """Worker: one task of one assignment pass, a run of consecutive chunks (module docstring).  Returns each
+    chunk's part (the caller folds them in chunk order, as one process sums its chunks) and the task's wall
+    and CPU seconds."""
+    spec, protos, shape, accumulate, moments, chunk_size, cache_bytes = shared
     t0, c0 = time.perf_counter(), time.thread_time()
+    bank = _bank(*protos)
+    parts = [_one_chunk(spec, bank, shape, accumulate, moments, chunk_size, cache_bytes, c) for c in item]
+    return parts, time.perf_counter() - t0, time.thread_time() - c0
+
+
+def _one_chunk(spec, bank: PoseBank, shape: tuple, accumulate: bool, moments: bool, chunk_size: int,
+               cache_bytes: int, chunk: tuple) -> _Part:
+    """One chunk of objects [i0, i1) (or the explicit index list idx): read, transform, match, aligned sums."""
+    i0, i1, idx, forced, window = chunk
     src = _open(spec)
     K, C, R, A, H = shape
     scales = bank.scales
@@ -207,17 +247,15 @@ def _chunk_pass(shared: tuple, item: tuple) -> _Part:
         part.tot = sums.result(scales, (C + 2, R, H))
     if msums is not None:
         part.extra = msums.result(scales, (C + 1, R, H))
-    part.seconds = time.perf_counter() - t0
-    part.cpu_seconds = time.thread_time() - c0
     return part
 
 
 def _chunk_match(shared: tuple, item: tuple) -> PoseMatch:
     """Worker: best pose of one chunk against every prototype, (n, K) arrays."""
-    spec, bank = shared
+    spec, protos = shared
     i0, i1 = item
     x, w = _read(_open(spec), i0, i1, None)
-    return bank.match(x, w)
+    return _bank(*protos).match(x, w)
 
 
 @dataclass
@@ -238,14 +276,24 @@ def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
     """Fold one chunk's part into the reduction (called in chunk order, so sums never depend on which
     worker finished first)."""
     if acc is None:
-        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [p.seconds], [p.cpu_seconds],
+        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [], [],
                         None if p.tot is None else p.tot.copy(), None if p.extra is None else p.extra.copy())
-    for name in ("labels", "yaw", "scale", "dist", "seconds", "cpu_seconds"):
+    for name in ("labels", "yaw", "scale", "dist"):
         getattr(acc, name).append(getattr(p, name))
     if p.tot is not None:
         acc.tot += p.tot
     if p.extra is not None:
         acc.extra += p.extra
+    return acc
+
+
+def _fold_task(acc: _Reduced | None, task: tuple[list[_Part], float, float]) -> _Reduced:
+    """Fold one task's chunk parts in chunk order (tasks arrive in task order), and keep its seconds."""
+    parts, seconds, cpu_seconds = task
+    for p in parts:
+        acc = _fold_parts(acc, p)
+    acc.seconds.append(seconds)        # the worker's time for the task (read, transform, match, sums)
+    acc.cpu_seconds.append(cpu_seconds)  # the CPU time of the worker thread that ran it (the same work)
     return acc
 
 
@@ -262,9 +310,10 @@ class ExecutorSource:
     """
 
     def __init__(self, spec, executor, *, chunk_size: int | None = None, cache_mb: float = 256.0,
-                 indices: np.ndarray | None = None):
+                 indices: np.ndarray | None = None, tasks_per_worker: int = TASKS_PER_WORKER):
         self.spec, self.executor, self.chunk_size, self.cache_mb = spec, executor, chunk_size, cache_mb
         self.indices = None if indices is None else np.asarray(indices, np.int64)
+        self.tasks_per_worker = tasks_per_worker
         self._local = None
 
     def _src(self):
@@ -287,7 +336,8 @@ class ExecutorSource:
     def subset(self, idx: np.ndarray) -> "ExecutorSource":
         idx = np.sort(np.asarray(idx, np.int64))
         return ExecutorSource(self.spec, self.executor, chunk_size=self.chunk_size, cache_mb=self.cache_mb,
-                              indices=idx if self.indices is None else self.indices[idx])
+                              indices=idx if self.indices is None else self.indices[idx],
+                              tasks_per_worker=self.tasks_per_worker)
 
     def _items(self, chunk_size: int, forced: np.ndarray | None = None, window: np.ndarray | None = None
                ) -> list[tuple]:
@@ -296,20 +346,31 @@ class ExecutorSource:
         return [(i0, i1, cut(self.indices, i0, i1), cut(forced, i0, i1), cut(window, i0, i1))
                 for i0, i1 in _chunks(len(self), cs)]
 
+    def _tasks(self, chunks: list) -> list[list]:
+        """The chunks in runs of consecutive ones: ``tasks_per_worker`` runs per worker, more when a run
+        would exceed MAX_CHUNKS_PER_TASK chunks (its parts wait on the worker until the task ends), fewer
+        when there are fewer chunks.  Results do not depend on the runs (the caller folds chunk by chunk)."""
+        n = max(self.tasks_per_worker * int(getattr(self.executor, "n_workers", 1)),
+                -(-len(chunks) // MAX_CHUNKS_PER_TASK))
+        n = min(len(chunks), max(1, n))
+        bounds = np.linspace(0, len(chunks), n + 1).round().astype(int)
+        return [chunks[a:b] for a, b in zip(bounds[:-1], bounds[1:])]
+
     def assign_pass(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
                     accumulate: bool, n_worst: int, moments: bool = False, forced: np.ndarray | None = None,
                     scale_index: np.ndarray | None = None):
         """The engine's ``_assign_pass`` (same arguments and results) as a map-reduce over chunks."""
         from .engine import _pass_outputs
         cs = self.chunk_size or chunk_size
-        # the pose bank (scaled prototypes' spectra) is built once here and sent with the pass: building it
-        # on every worker (or for every chunk) costs as much as searching tens of objects
-        bank = PoseBank(np.asarray(P, np.float32), np.asarray(V, np.float32), tuple(scales))
-        shared = (self.spec, bank, P.shape, accumulate,
+        # the prototypes, not their pose bank, are sent with the pass (1/14 of the bytes: the bank holds
+        # K x S scaled spectra); each worker builds the bank once per pass (_bank), in parallel, while the
+        # caller stays idle instead of building and serialising it before any worker can start
+        P, V = np.asarray(P, np.float32), np.asarray(V, np.float32)
+        shared = (self.spec, (P, V, tuple(scales), _bank_key(P, V, scales)), P.shape, accumulate,
                   moments, cs, int(self.cache_mb * 2**20))
-        red = self.executor.map(_chunk_pass, self._items(chunk_size, forced, scale_index), shared=shared,
-                                fold=_fold_parts)
-        self.last_seconds = red.seconds  # the workers' seconds per chunk, for the scale benchmark
+        red = self.executor.map(_chunk_pass, self._tasks(self._items(chunk_size, forced, scale_index)),
+                                shared=shared, fold=_fold_task)
+        self.last_seconds = red.seconds  # the workers' seconds per task, for the scale benchmark
         self.last_cpu_seconds = red.cpu_seconds  # and their CPU seconds (a shared machine's load aside)
         labels = np.concatenate(red.labels).astype(np.int64)
         yaw, scale, dist = (np.concatenate(a).astype(np.float32) for a in (red.yaw, red.scale, red.dist))
@@ -324,7 +385,8 @@ def match_all(model, source) -> PoseMatch:
     ``source`` is an :class:`ExecutorSource`; yaw in each prototype's canonical frame, modulo its symmetry."""
     if not isinstance(source, ExecutorSource) or source.indices is not None:
         return model.match(source)
-    shared = (source.spec, PoseBank(model.prototypes_, model.prototype_weights_, tuple(model.scales_)))
+    P, V = np.asarray(model.prototypes_, np.float32), np.asarray(model.prototype_weights_, np.float32)
+    shared = (source.spec, (P, V, tuple(model.scales_), _bank_key(P, V, model.scales_)))
     items = [(i0, i1) for i0, i1, *_ in source._items(model.chunk_size)]
     parts = source.executor.map(_chunk_match, items, shared=shared)
     D = np.concatenate([p.D for p in parts])

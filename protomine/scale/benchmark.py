@@ -4,7 +4,11 @@ on this machine, and a projection to a large cluster from the measured figures.
 Data (demo data, invented): the bench's synthetic volumes (:mod:`protomine.mine.synthetic`: K random smooth
 prototypes, objects rolled, scaled, noisy, partly observed) on the default grid, written to two ``.npy``
 files that the workers read chunk by chunk (:class:`protomine.mine.distributed.NpyFileSource`, as they
-would read a store on a shared file system).
+would read a store on a shared file system).  Size: 8,192 objects in 16 chunks of 512 (K = 16): a pass of
+a few seconds per worker, as mining passes worth a cluster are (the default mining chunk is 2,048); the
+earlier 3,072 objects in chunks of 256 made a pass ~0.6 s per worker, so that fixed per-pass costs that
+do not grow with the objects (the pose bank, scheduling, start-up of each task) weighed several times more
+than on any pass a cluster would be used for.
 
 What is timed: one full assignment-and-accumulation pass (the unit of a Lloyd iteration) against K fixed
 prototypes with the default five scales, without the spectra cache (every pass reads and transforms its
@@ -15,7 +19,11 @@ objects, as when the objects do not fit the workers' caches):
 - ``cluster_1worker_s``, ``cluster_s``: the same pass through :class:`protomine.mine.distributed.ExecutorSource`
   on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1, then 2 workers, median of 3
   passes after a warm-up; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores), ``speedup`` = local_s /
-  cluster_s, and the results are checked equal (same labels);
+  cluster_s, and the results are checked equal (same labels).  The workers run without Dask's statistical
+  profiler (``distributed.worker.profile.enabled: false``; ``mine.distributed`` gives the measured cost);
+- ``caller_cpu_s_per_pass`` (2 workers): CPU seconds of this process (client, scheduler, folding) per pass,
+  which compete with the workers for the cores of a local cluster; ``worker_overhead_cpu_fraction``: the
+  worker processes' CPU beyond the task threads' (Dask's own threads: communication, monitors) / the tasks';
 - ``worker_s_per_object``: the workers' own chunk times / N (read, transform, search, sums), against
   ``local_1thread_s_per_object`` (``ratio_worker_local_per_object``, target <= 1.2);
 - ``worker_cpu_s_per_object`` (2 workers; ``..._1worker``: 1 worker), ``local_1thread_cpu_s_per_object``,
@@ -29,12 +37,13 @@ scaled prototypes' spectra) once per pass, not once per chunk.
 
 Projection model (one pass, N objects, W workers, chunks of c objects, n = ceil(N / c) chunks)::
 
-    T_pass = t_obj * N / W  +  t_task * n / W  +  t_fold * n  +  b_part * n / bandwidth
+    T_pass = t_obj * N / W  +  t_task * m / W  +  t_fold * n  +  b_part * n / bandwidth    (m tasks)
 
 - ``t_obj``: a worker's seconds per object (read, transform, pose search over all shifts and scales, aligned
   sums) on a core of its own, measured as the workers' CPU seconds for their chunks / N (their wall times,
   ``t_obj_wall_s``, also count the time other processes of a shared machine held the core);
-- ``t_task``: scheduling overhead per task = (cluster wall time - max worker busy time) / (n / W);
+- ``t_task``: scheduling overhead per task = (cluster wall time - max worker busy time) / (tasks / W) (a task
+  is a run of chunks, ``mine.distributed.TASKS_PER_WORKER`` per worker, at most ``MAX_CHUNKS_PER_TASK`` chunks);
 - ``t_fold``: the caller's seconds to fold one chunk's sums (measured, total reduce time / n);
 - ``b_part``: bytes of one chunk's result (K (C + 2) R A H float64 sums + 16 bytes per object);
 - ``bandwidth``: 1.25e9 B/s (10 Gbit/s Ethernet, common practice for a compute cluster; an assumption, not
@@ -69,18 +78,24 @@ def _rss_mb() -> float:
     return psutil.Process().memory_info().rss / 2**20
 
 
+def _process_cpu_s() -> float:
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+
+
 def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, project_workers: int = 50) -> dict:
     """Measured local vs 2-worker LocalCluster pass times and the projection (module docstring)."""
+    import dask
     from distributed import Client, LocalCluster
 
     from .. import cores
     from ..config import load_config
-    from ..mine.distributed import ExecutorSource, NpySpec
+    from ..mine.distributed import MAX_CHUNKS_PER_TASK, TASKS_PER_WORKER, ExecutorSource, NpySpec
     from ..mine.engine import ArraySource, _assign_pass
     from .executor import DaskExecutor
     from .streamed import write_synthetic
 
-    n, K, chunk = (768, 8, 128) if quick else (3072, 16, 256)
+    n, K, chunk = (768, 8, 128) if quick else (8192, 16, 512)
     scales = tuple(load_config(None)["mine"]["scales"])
     load0 = os.getloadavg()[0]
     with tempfile.TemporaryDirectory(prefix="protomine-scale-") as tmp:
@@ -102,36 +117,42 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
             print(f"[bench] local pass over {n} objects, {threads} thread(s): {local[threads]:.2f} s",
                   file=sys.stderr, flush=True)
         local_1t, local_s = local[1], local[cores.usable_cores()]
-        cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
-                               dashboard_address=None)
-        client = Client(cluster, set_as_default=False)
-        runs = {}
-        try:
-            for n_workers in (1, 2):
-                if n_workers > 1:
-                    cluster.scale(n_workers)
-                ex = DaskExecutor(client=client, min_workers=n_workers)
-                dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
-                dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
-                walls, busy = [], []
-                for _ in range(3):
-                    t0 = time.perf_counter()
-                    got = dsrc.assign_pass(P, V, scales, chunk, True, 0)
-                    walls.append(time.perf_counter() - t0)
-                    secs = np.array(dsrc.last_seconds)
-                    # item i ran on worker i mod n (preferred); the busiest worker bounds the wall time
-                    busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers)),
-                                 float(np.sum(dsrc.last_cpu_seconds))))
-                k = int(np.argsort(walls)[len(walls) // 2])
-                runs[n_workers] = (statistics.median(walls), *busy[k])
-                print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
-            same = bool(np.array_equal(got[0], ref[0]))
-            max_rel = float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12))
-            worker_rss = client.run(_rss_mb)
-            ex.close()
-        finally:
-            client.close()
-            cluster.close()
+        # the workers inherit this config (each nanny passes it on): no statistical profiler in the workers
+        with dask.config.set({"distributed.worker.profile.enabled": False}):
+            cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
+                                   dashboard_address=None)
+            client = Client(cluster, set_as_default=False)
+            runs = {}
+            try:
+                for n_workers in (1, 2):
+                    if n_workers > 1:
+                        cluster.scale(n_workers)
+                    ex = DaskExecutor(client=client, min_workers=n_workers)
+                    dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
+                    dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
+                    walls, busy = [], []
+                    for _ in range(3):
+                        w0 = client.run(_process_cpu_s)
+                        t0, c0 = time.perf_counter(), time.process_time()
+                        got = dsrc.assign_pass(P, V, scales, chunk, True, 0)
+                        walls.append(time.perf_counter() - t0)
+                        caller_cpu = time.process_time() - c0
+                        w1 = client.run(_process_cpu_s)
+                        secs = np.array(dsrc.last_seconds)
+                        task_cpu = float(np.sum(dsrc.last_cpu_seconds))
+                        # task i ran on worker i mod n (preferred); the busiest worker bounds the wall time
+                        busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers)),
+                                     task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu, len(secs)))
+                    k = int(np.argsort(walls)[len(walls) // 2])
+                    runs[n_workers] = (statistics.median(walls), *busy[k])
+                    print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
+                same = bool(np.array_equal(got[0], ref[0]))
+                max_rel = float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12))
+                worker_rss = client.run(_rss_mb)
+                ex.close()
+            finally:
+                client.close()
+                cluster.close()
         # the caller's fold cost per chunk: add one chunk's sums into an accumulator, as the reduce does
         part = np.zeros_like(ref[4], shape=(K, P.shape[1] + 2) + P.shape[2:])
         acc = np.zeros_like(part)
@@ -140,22 +161,24 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         for _ in range(n_chunks):
             acc += part
         fold_s = (time.perf_counter() - t0) / n_chunks
-    cluster_s, worker_total, worker_max, worker_cpu = runs[2]
+    cluster_s, worker_total, worker_max, worker_cpu, caller_cpu, overhead_cpu, n_tasks = runs[2]
     t_obj = worker_cpu / n  # a core of its own (module docstring); worker_total / n on this machine's load
-    t_task = max(0.0, (cluster_s - worker_max) / (n_chunks / 2))
+    t_task = max(0.0, (cluster_s - worker_max) / (n_tasks / 2))
     b_part = part.nbytes + 16 * chunk
     # projection at the default mining chunk size and the same K
     proj_chunk = int(load_config(None)["mine"]["chunk_size"])
     N, Wk = project_objects, project_workers
     nc = math.ceil(N / proj_chunk)
+    n_proj_tasks = min(nc, max(TASKS_PER_WORKER * Wk, math.ceil(nc / MAX_CHUNKS_PER_TASK)))
     b_proj = part.nbytes + 16 * proj_chunk
-    terms = {"compute_s": t_obj * N / Wk, "scheduling_s": t_task * nc / Wk, "fold_s": fold_s * nc,
+    terms = {"compute_s": t_obj * N / Wk, "scheduling_s": t_task * n_proj_tasks / Wk, "fold_s": fold_s * nc,
              "transfer_s": b_proj * nc / BANDWIDTH_BPS}
     t_pass = sum(terms.values())
     C, R, A, H = P.shape[1:]
     chunk_mb = proj_chunk * ((C + 1) * R * A * H * 4 + 2 * (A // 2 + 1) * (C + 2) * R * H * 4) / 2**20
     return {
         "n_objects": n, "n_prototypes": K, "n_scales": len(scales), "chunk_size": chunk, "n_chunks": n_chunks,
+        "n_tasks": n_tasks,
         "local_s": local_s, "local_threads": cores.usable_cores(), "local_1thread_s": local_1t,
         "cluster_1worker_s": runs[1][0], "cluster_workers": 2, "cluster_s": cluster_s,
         "speedup_2_vs_1_worker": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
@@ -164,12 +187,14 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "worker_cpu_s_per_object": worker_cpu / n, "worker_cpu_s_per_object_1worker": runs[1][3] / n,
         "local_1thread_cpu_s_per_object": local_cpu[1] / n,
         "ratio_worker_local_cpu_per_object": worker_cpu / local_cpu[1],
+        "caller_cpu_s_per_pass": caller_cpu, "caller_cpu_s_per_pass_1worker": runs[1][4],
+        "worker_overhead_cpu_fraction": overhead_cpu / max(worker_cpu, 1e-9),
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
         "cluster_equal_labels": same, "cluster_max_rel_sum_diff": max_rel,
         "worker_rss_mb_after": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),
         "t_obj_s": t_obj, "t_obj_wall_s": worker_total / n, "t_task_s": t_task, "t_fold_s": fold_s, "b_part_bytes": int(b_part),
         "bandwidth_Bps": BANDWIDTH_BPS, "load_1m_start": load0, "load_1m": os.getloadavg()[0],
-        "projection": [{"objects": N, "workers": Wk, "chunk_size": proj_chunk, "chunks": nc, **terms,
-                        "pass_s": t_pass, "mine_30_passes_min": 31 * t_pass / 60.0,
+        "projection": [{"objects": N, "workers": Wk, "chunk_size": proj_chunk, "chunks": nc, "tasks": n_proj_tasks,
+                        **terms, "pass_s": t_pass, "mine_30_passes_min": 31 * t_pass / 60.0,
                         "worker_chunk_mb": chunk_mb}],
     }
