@@ -19,11 +19,12 @@ Reduce (the caller)
     completion order, whatever the tasks), then the engine's own update turns them into prototypes.  Memory
     per worker: one chunk's volumes and spectra (about 0.25 MB per object on the default grid), the sums of
     the task's chunks, plus the spectra cache budget.
-Cost per pass beyond the search itself (measured, ``protomine bench --scale``; 2 cores, K = 16, 5 scales):
-    building the bank took 41 ms and sending it (17.8 MB) 70 ms of wall time during which no worker could
-    start, plus ~3 ms of the caller's CPU per task.  Dask's own statistical profiler (on by default in every
-    worker: it samples every thread's stack each 10 ms) cost 0.15-0.2 s of worker CPU per ~1.3 s pass; a
-    cluster for mining should run with ``distributed.worker.profile.enabled: false`` (the bench's does).
+Cost per pass beyond the search itself (measured on a local cluster, 2 cores at load 6-7, 3,072 objects,
+    K = 16, 5 scales): when the caller built the bank and sent it, that took 41 ms of its CPU and (17.8 MB)
+    ~70 ms of wall time during which no worker could start; each task costs ~3 ms of the caller's CPU
+    (client and scheduler).  Dask's own statistical profiler (on by default in every worker: it samples
+    every thread's stack each 10 ms) cost 0.15-0.2 s of worker CPU per ~1.3 s pass (1 worker); a cluster
+    for mining should run with ``distributed.worker.profile.enabled: false`` (the bench's does).
 
 :class:`ExecutorSource` is a source (``len``, ``read``) whose passes run this way: the engine hands a pass
 to ``source.assign_pass`` when the source has one, so :class:`~protomine.mine.engine.PoseKMeans`, the
