@@ -44,8 +44,8 @@ def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarr
     """``steady_depth(depth)[r, u]`` for pixels (r, u) (M,): the test of :func:`flying_pixels` run on the
     patch the pixels span only (lifting asks for one object's few thousand cells).
 
-    The window's extremes are running maxima / minima of the patch's FLYING_WINDOW^2 shifted slices (with
-    a half-window border; beyond the image mirrored as scipy.ndimage's default ``mode='reflect'`` does):
+    The window's extremes are running maxima / minima of the patch's shifted slices, along columns then rows
+    (with a half-window border; beyond the image mirrored as scipy.ndimage's default ``mode='reflect'`` does):
     on patches of a few thousand pixels that is about half the time of ``maximum_filter`` /
     ``minimum_filter`` on them (their per-call cost dominates), with the same values.
     """
@@ -61,14 +61,17 @@ def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarr
     if any(p for side in pad for p in side):
         d = np.pad(d, pad, mode="symmetric")      # numpy's 'symmetric' is scipy.ndimage's 'reflect'
     valid = d > 0
-    d_hi, d_lo = np.where(valid, d, 0.0), np.where(valid, d, np.inf)
     ph, pw = r1 - r0, u1 - u0
-    hi, lo = d_hi[:ph, :pw].copy(), d_lo[:ph, :pw].copy()
-    for i in range(FLYING_WINDOW):
-        for j in range(FLYING_WINDOW):
-            if i or j:
-                np.maximum(hi, d_hi[i:i + ph, j:j + pw], out=hi)
-                np.minimum(lo, d_lo[i:i + ph, j:j + pw], out=lo)
+    # separable: the extreme over the window's columns, then over its rows (exact: no rounding in max/min)
+    d_hi, d_lo = np.where(valid, d, 0.0), np.where(valid, d, np.inf)
+    row_hi, row_lo = d_hi[:, :pw].copy(), d_lo[:, :pw].copy()
+    for j in range(1, FLYING_WINDOW):
+        np.maximum(row_hi, d_hi[:, j:j + pw], out=row_hi)
+        np.minimum(row_lo, d_lo[:, j:j + pw], out=row_lo)
+    hi, lo = row_hi[:ph].copy(), row_lo[:ph].copy()
+    for i in range(1, FLYING_WINDOW):
+        np.maximum(hi, row_hi[i:i + ph], out=hi)
+        np.minimum(lo, row_lo[i:i + ph], out=lo)
     c = d[half:half + ph, half:half + pw]
     tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * c)
     flying = (c > 0) & (c - lo > tol) & (hi - c > tol)
