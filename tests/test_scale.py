@@ -323,3 +323,29 @@ def test_workers_auto_is_the_usable_cores():
     assert isinstance(make_executor(cfg, workers="auto"), InlineExecutor)  # mine: this process, cores as threads
     with pytest.raises(InputError, match="--workers"):
         make_executor(cfg, workers=-2)
+
+
+def test_pass_in_few_tasks_sums_chunk_by_chunk_like_one_process(tmp_path):
+    """A pass of 7 chunks in tasks of several chunks (2 per worker, at most MAX_CHUNKS_PER_TASK) gives the
+    one-process pass's labels and float64 sums exactly: the chunks' sums are still added one by one in
+    chunk order (engine._assign_pass is the reference)."""
+    from protomine.mine import distributed as dist
+    from protomine.mine.engine import ArraySource, _assign_pass
+    X, W, _ = _synthetic(70, 3, 2)
+    np.save(tmp_path / "X.npy", X)
+    np.save(tmp_path / "W.npy", W)
+    rng = np.random.default_rng(0)
+    P = X[rng.choice(len(X), 3, replace=False)]
+    V = np.ones((3,) + X.shape[2:], np.float32)
+    src = dist.ExecutorSource(dist.NpySpec(str(tmp_path / "X.npy"), str(tmp_path / "W.npy")), InlineExecutor(),
+                              cache_mb=0.0)
+    chunks = src._items(10)
+    tasks = src._tasks(chunks)
+    assert len(tasks) == 2 and [c for t in tasks for c in t] == chunks        # 1 worker: 2 runs, all chunks in order
+    got = src.assign_pass(P, V, (0.9, 1.0, 1.1), 10, True, 0)
+    ref = _assign_pass(ArraySource(X, W), P, V, (0.9, 1.0, 1.1), 10, True, 0)
+    for a, b in zip(got[:5], ref[:5]):
+        assert np.array_equal(a, b)
+    assert len(src.last_seconds) == 2
+    many = dist.ExecutorSource(src.spec, InlineExecutor(), tasks_per_worker=1)
+    assert len(many._tasks(list(range(3 * dist.MAX_CHUNKS_PER_TASK + 1)))) == 4     # capped run length
