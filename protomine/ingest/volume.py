@@ -130,6 +130,16 @@ def _carving_depth(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarra
     return patch[r - r0, u - u0]
 
 
+def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: ObjectFrame, tol: float) -> np.ndarray:
+    """True where the reading d (M,) at pixel (u, r) (M,) lies within ``tol`` of the support plane (the plane
+    through ``frame.origin`` normal to ``frame.up``).  The ray to such a reading met nothing above the plane,
+    so a cell in front of it is free right down to the plane: without this, a layer of "seen but not free"
+    cells (within the carve margin of the plane) lines every volume's base, which a copy tipped onto another
+    face turns into a wall of non-free cells where an object lying that way shows free space."""
+    pc = np.stack([(u - v.K[0, 2]) * d / v.K[0, 0], (r - v.K[1, 2]) * d / v.K[1, 1], d], axis=1)
+    return (d > 0) & (np.abs((camera_to_world(pc, v.cam_to_world) - frame.origin) @ frame.up) <= tol)
+
+
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
     R, A, H = grid.shape
@@ -151,6 +161,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         d[inside] = _carving_depth(v.depth, r[inside], u[inside])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
+        free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
         # the object's own points: back-project its pixels
         vv, uu = np.divmod(v.pixels, w)
         z = v.depth.reshape(-1)[v.pixels]
