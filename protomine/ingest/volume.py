@@ -12,7 +12,9 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
             n75 = its 75th percentile over the cells hit in this frame (resolution/distance invariant),
             k = volume.surface_points_per_cell
   free      fraction of observing frames in which a camera ray passed through the cell before
-            hitting a surface (projective carving: cell depth < measured depth - margin)
+            hitting a surface (projective carving: cell depth < measured depth - margin; where the
+            reading lies on the support plane, cell depth < measured depth: the space above an empty
+            plane is free right down to it, so free space does not depend on which face is down)
   observed  number of frames that observed the cell (in front of or at the measured surface)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
