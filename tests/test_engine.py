@@ -214,3 +214,28 @@ def test_lloyd_stops_when_an_assignment_comes_back(monkeypatch):
     monkeypatch.setattr(engine, "_assign_pass", cycling)
     km = PoseKMeans(n_clusters=2, n_init=1, max_iter=30, random_state=0).fit(ArraySource(X, W))
     assert len(calls) == 3 and km.n_iter_ == 3, (len(calls), km.n_iter_)
+
+
+def test_prototypes_fitted_at_one_free_weight_rescale_to_another():
+    # prototypes are observation-weighted means of their aligned members (the engine's update, from the
+    # definition of a weighted mean), and a mean is linear: fitting with the free-space channel (feature 1)
+    # scaled by sqrt(a) and rescaling by sqrt(b / a) gives the prototypes fitted at sqrt(b) when the
+    # assignments and poses agree (noise-free, well separated objects)
+    from protomine.mine.pipeline import clustering_config, reweight_free
+    rng = np.random.default_rng(3)
+    X, W, labels, _ = _objects(rng, _symmetric_prototypes(rng), 24, noise=0.0)
+    a, b = 0.05, 0.5
+    fits = []
+    for fw in (a, b):
+        Xf = X.copy()
+        Xf[:, 1] *= np.sqrt(fw)
+        fits.append(PoseKMeans(n_clusters=3, n_init=2, random_state=0).fit(ArraySource(Xf, W)))
+    cfg = {"mine": {"free_weight": b, "cluster_free_weight": a}}
+    assert clustering_config(cfg)["mine"]["free_weight"] == a and cfg["mine"]["free_weight"] == b
+    assert normalized_mutual_info_score(fits[0].labels_, fits[1].labels_) == 1.0
+    assert reweight_free(fits[0], cfg)
+    order = [int(np.bincount(fits[1].labels_[fits[0].labels_ == k]).argmax()) for k in range(3)]
+    # up to the sub-bin yaw refinement, whose parabola moves a little with the channel weights (values are O(1);
+    # without the rescaling feature 1 would be off by a factor sqrt(10))
+    np.testing.assert_allclose(fits[0].prototypes_, fits[1].prototypes_[order], atol=0.02)
+    assert not reweight_free(fits[1], {"mine": {"free_weight": b, "cluster_free_weight": b}})
