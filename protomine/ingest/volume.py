@@ -134,12 +134,17 @@ def _carving_depth(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarra
 
 def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: ObjectFrame, tol: float) -> np.ndarray:
     """True where the reading d (M,) at pixel (u, r) (M,) lies within ``tol`` of the support plane (the plane
-    through ``frame.origin`` normal to ``frame.up``).  The ray to such a reading met nothing above the plane,
-    so a cell in front of it is free right down to the plane: without this, a layer of "seen but not free"
-    cells (within the carve margin of the plane) lines every volume's base, which a copy tipped onto another
-    face turns into a wall of non-free cells where an object lying that way shows free space."""
+    through ``frame.origin`` normal to ``frame.up``) and is not one of the object's own pixels (a long, low
+    object's sides lie that close to the plane).  The ray to such a reading met nothing above the plane, so a
+    cell in front of it is free right down to the plane: without this, a layer of "seen but not free" cells
+    (within the carve margin of the plane) lines every volume's base, which a copy tipped onto another face
+    turns into a wall of non-free cells where an object lying that way shows free space."""
+    own = np.zeros(v.depth.size, bool)
+    own[v.pixels] = True
     pc = np.stack([(u - v.K[0, 2]) * d / v.K[0, 0], (r - v.K[1, 2]) * d / v.K[1, 1], d], axis=1)
-    return (d > 0) & (np.abs((camera_to_world(pc, v.cam_to_world) - frame.origin) @ frame.up) <= tol)
+    near = np.abs((camera_to_world(pc, v.cam_to_world) - frame.origin) @ frame.up) <= tol
+    h, w = v.depth.shape
+    return (d > 0) & near & ~own[np.clip(r, 0, h - 1) * w + np.clip(u, 0, w - 1)]  # d = 0 outside the image
 
 
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
