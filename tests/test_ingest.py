@@ -1,6 +1,8 @@
 """Ingest: yaw equivariance of volumes, multi-view fusion, proposals without masks, store updates."""
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
@@ -173,7 +175,7 @@ def test_free_space_reaches_down_to_the_support_plane(tmp_path, cfg):
     # the empty support plane cross every cell above it, so beside the object the lowest layer is as free as
     # the layers above; a layer of "seen, not free" cells along the base would turn into a wall when the
     # object is compared lying on another face
-    grid = Grid.from_config(cfg)
+    grid = replace(Grid.from_config(cfg), carve_to_plane=True)
     _capture(tmp_path / "c", [(_lshape(0.06), 20.0, (0.0, 0.0), (0.8, 0.3, 0.2))], world_seed=2)
     scene = find_objects(read_capture(tmp_path / "c"), cfg, np.random.default_rng(0))
     (p,) = scene.proposals

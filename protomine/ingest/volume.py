@@ -12,9 +12,10 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
             n75 = its 75th percentile over the cells hit in this frame (resolution/distance invariant),
             k = volume.surface_points_per_cell
   free      fraction of observing frames in which a camera ray passed through the cell before
-            hitting a surface (projective carving: cell depth < measured depth - margin; where the
-            reading lies on the support plane, cell depth < measured depth: the space above an empty
-            plane is free right down to it, so free space does not depend on which face is down)
+            hitting a surface (projective carving: cell depth < measured depth - margin; with
+            ``carve_to_plane``, where the reading lies on the support plane, cell depth < measured depth:
+            the space above an empty plane is free right down to it, so free space does not depend on
+            which face is down)
   observed  number of frames that observed the cell (in front of or at the measured surface)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
@@ -45,6 +46,7 @@ class Grid:
     height_margin: float = 1.10
     surface_points_per_cell: float = 3.0
     carve_margin_cells: float = 0.75
+    carve_to_plane: bool = False
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -168,7 +170,8 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         d[inside] = _carving_depth(v.depth, r[inside], u[inside])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
-        free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
+        if grid.carve_to_plane:
+            free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
         # the object's own points: back-project its pixels
         vv, uu = np.divmod(v.pixels, w)
         z = v.depth.reshape(-1)[v.pixels]

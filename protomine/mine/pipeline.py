@@ -18,6 +18,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+from dataclasses import asdict
 from pathlib import Path
 from typing import Callable
 
@@ -28,7 +29,7 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..geometry import plane_basis
-from ..ingest.volume import matching_features
+from ..ingest.volume import Grid, matching_features
 from ..rotations import matrix_to_quat
 from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
@@ -271,6 +272,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
     notices = []
     lifted = store.config.get("volume")
+    if lifted is not None:  # a key added since the store was lifted: it was lifted as that key's default does
+        lifted = {**{k: v for k, v in asdict(Grid()).items() if k in cfg["volume"]}, **lifted}
     if lifted is not None and lifted != cfg["volume"]:
         # the volumes were lifted with the store's [volume] settings; the library must record those, or
         # labelling would lift single views on another grid than its prototypes
