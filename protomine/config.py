@@ -47,6 +47,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.tol": (0.0, 1.0),
     "mine.chunk_size": (1, 1_000_000),
     "mine.free_weight": (0.0, 10.0),
+    "mine.cluster_free_weight": (0.0, 10.0),
     "mine.colour_weight": (0.0, 10.0),
     "mine.symmetry_tol": (0.0, 1.0),
     "mine.symmetry_factor": (0.1, 100.0),

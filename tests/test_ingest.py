@@ -1,6 +1,8 @@
 """Ingest: yaw equivariance of volumes, multi-view fusion, proposals without masks, store updates."""
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
@@ -165,3 +167,22 @@ def test_a_wall_behind_the_objects_is_neither_the_support_nor_an_object(tmp_path
     found = find_objects(read_capture(tmp_path / "c"), cfg, np.random.default_rng(0), use_masks=False)
     assert np.degrees(np.arccos(np.clip(found.plane.normal @ Tw[:3, 2], -1, 1))) < 1.0
     assert sorted(round(p.frame.height, 2) for p in found.proposals) == [0.08, 0.08, 0.1]
+
+
+def test_free_space_reaches_down_to_the_support_plane(tmp_path, cfg):
+    # projective carving (common practice; Kutulakos and Seitz, "A theory of shape by space carving", IJCV
+    # 2000, from memory): a cell that a camera ray crosses before it meets a surface is empty.  Rays that end on
+    # the empty support plane cross every cell above it, so beside the object the lowest layer is as free as
+    # the layers above; a layer of "seen, not free" cells along the base would turn into a wall when the
+    # object is compared lying on another face
+    grid = replace(Grid.from_config(cfg), carve_to_plane=True)
+    _capture(tmp_path / "c", [(_lshape(0.06), 20.0, (0.0, 0.0), (0.8, 0.3, 0.2))], world_seed=2)
+    scene = find_objects(read_capture(tmp_path / "c"), cfg, np.random.default_rng(0))
+    (p,) = scene.proposals
+    vol = lift(scene.views(p), p.frame, grid)
+    surface, free, observed = vol[0], vol[1], vol[2]
+    empty = (surface.max(axis=2) < 0.05)[..., None] & (observed > 0)   # columns with no object cell in them
+    assert empty[..., 0].sum() >= 20, empty[..., 0].sum()
+    bottom = free[..., 0][empty[..., 0]].mean()
+    above = free[..., 1:][empty[..., 1:]].mean()
+    assert bottom >= 0.9 and bottom >= above - 0.05, (bottom, above)

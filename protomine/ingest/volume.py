@@ -12,7 +12,10 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
             n75 = its 75th percentile over the cells hit in this frame (resolution/distance invariant),
             k = volume.surface_points_per_cell
   free      fraction of observing frames in which a camera ray passed through the cell before
-            hitting a surface (projective carving: cell depth < measured depth - margin)
+            hitting a surface (projective carving: cell depth < measured depth - margin; with
+            ``carve_to_plane``, where the reading lies on the support plane, cell depth < measured depth:
+            the space above an empty plane is free right down to it, so free space does not depend on
+            which face is down)
   observed  number of frames that observed the cell (in front of or at the measured surface)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
@@ -43,6 +46,7 @@ class Grid:
     height_margin: float = 1.10
     surface_points_per_cell: float = 3.0
     carve_margin_cells: float = 0.75
+    carve_to_plane: bool = False
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -135,6 +139,21 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     return out.reshape(-1, R, A, H)
 
 
+def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: ObjectFrame, tol: float) -> np.ndarray:
+    """True where the reading d (M,) at pixel (u, r) (M,) lies within ``tol`` of the support plane (the plane
+    through ``frame.origin`` normal to ``frame.up``) and is not one of the object's own pixels (a long, low
+    object's sides lie that close to the plane).  The ray to such a reading met nothing above the plane, so a
+    cell in front of it is free right down to the plane: without this, a layer of "seen but not free" cells
+    (within the carve margin of the plane) lines every volume's base, which a copy tipped onto another face
+    turns into a wall of non-free cells where an object lying that way shows free space."""
+    own = np.zeros(v.depth.size, bool)
+    own[v.pixels] = True
+    pc = np.stack([(u - v.K[0, 2]) * d / v.K[0, 0], (r - v.K[1, 2]) * d / v.K[1, 1], d], axis=1)
+    near = np.abs((camera_to_world(pc, v.cam_to_world) - frame.origin) @ frame.up) <= tol
+    h, w = v.depth.shape
+    return (d > 0) & near & ~own[np.clip(r, 0, h - 1) * w + np.clip(u, 0, w - 1)]  # d = 0 outside the image
+
+
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
     R, A, H = grid.shape
@@ -159,6 +178,8 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
+        if grid.carve_to_plane:
+            free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
         # the object's own points: back-project its pixels
         vv, uu = np.divmod(v.pixels, w)
         z = v.depth.reshape(-1)[v.pixels]

@@ -488,6 +488,7 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
     ts = None if grid is None else TiltState(grid, aspect)
     obj_aspect = None if grid is None else _source_aspect(source)
     prev_labels, prev_cost = None, np.inf
+    seen: set[bytes] = set()  # earlier assignments: one coming back is a cycle, which further passes only repeat
     n_iter = 0
     sidx = None
     scale_arr = np.asarray(scales, np.float32)
@@ -502,6 +503,10 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
         small = np.isfinite(prev_cost) and abs(prev_cost - cost) <= tol * max(abs(cost), 1e-12)
         if stable and count.min() > 0:
             break  # prototypes already reflect these assignments
+        key = np.asarray(labels, np.int64).tobytes()
+        if key in seen and count.min() > 0:
+            break  # a cycle (the tilt and scale windows make passes not strictly descending): more passes repeat it
+        seen.add(key)
         P, V = _update(num, den, count, worst, P, V)
         if ts is not None:
             ts.aspect = _update_aspect(ts, labels, obj_aspect)

@@ -18,6 +18,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+from dataclasses import asdict
 from pathlib import Path
 from typing import Callable
 
@@ -28,7 +29,7 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
 from ..geometry import plane_basis
-from ..ingest.volume import matching_features
+from ..ingest.volume import Grid, matching_features
 from ..rotations import matrix_to_quat
 from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
@@ -71,11 +72,39 @@ def store_aspect(store: ObjectStore, cfg: dict) -> np.ndarray:
     return grid_aspect(store.objects["radius_m"], store.objects["height_m"], v["radial_margin"], v["height_margin"])
 
 
+CLUSTER_FREE_FLOOR = 1e-4  # the least free-space weight a clustering runs with: its prototypes keep the channel
+
+
+def clustering_config(cfg: dict) -> dict:
+    """``cfg`` with ``mine.free_weight`` replaced by ``mine.cluster_free_weight`` (floored at
+    :data:`CLUSTER_FREE_FLOOR`), the weight the clustering (seeding, choosing K, Lloyd passes, merging) runs
+    with; ``cfg`` itself when the two are equal."""
+    m = cfg["mine"]
+    fw_c = max(float(m.get("cluster_free_weight", m["free_weight"])), CLUSTER_FREE_FLOOR)
+    if fw_c == float(m["free_weight"]):
+        return cfg
+    return {**cfg, "mine": {**m, "free_weight": fw_c}}
+
+
+def reweight_free(model, cfg: dict) -> bool:
+    """Rescale a model fitted with :func:`clustering_config` to the library's ``mine.free_weight``: prototypes
+    are weighted means of their members' features, so their free-space channel (``ingest.volume.FEATURES``
+    index 1, sqrt(weight) x free) scales by sqrt(free_weight / cluster weight).  True when it changed."""
+    fw, fw_c = float(cfg["mine"]["free_weight"]), float(clustering_config(cfg)["mine"]["free_weight"])
+    if fw_c == fw:
+        return False
+    P = np.array(model.prototypes_, np.float32, copy=True)
+    P[:, 1] *= np.float32(np.sqrt(fw / fw_c))
+    model.prototypes_ = P
+    return True
+
+
 def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
                progress: Callable[[str], None] | None = None, executor=None):
     """Fit the clustering; ``executor`` (``protomine.scale.executor``) runs its passes as a map-reduce
     (yaw-only: the tilt search runs in this process)."""
     from .engine import PoseKMeans
+    cfg = clustering_config(cfg)
     m = cfg["mine"]
     grid = tilt_grid(cfg) if executor is None and not cfg.get("scale", {}).get("batch_size", 0) else None
     src = store.source(cfg) if executor is None else _executor_source(store, cfg, executor)
@@ -243,6 +272,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
     notices = []
     lifted = store.config.get("volume")
+    if lifted is not None:  # a key added since the store was lifted: it was lifted as that key's default does
+        lifted = {**{k: v for k, v in asdict(Grid()).items() if k in cfg["volume"]}, **lifted}
     if lifted is not None and lifted != cfg["volume"]:
         # the volumes were lifted with the store's [volume] settings; the library must record those, or
         # labelling would lift single views on another grid than its prototypes
@@ -252,6 +283,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         cfg = {**cfg, "volume": dict(lifted)}
     say(progress, f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
     model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
+    reweighted = reweight_free(model, cfg)  # from here on, distances weigh free space by mine.free_weight
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
     period = period_of(model.symmetry_)
@@ -276,6 +308,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     else:
         pm = match_all(model, _executor_source(store, cfg, executor))
     dist = np.asarray(model.distance_, dtype=np.float64)
+    if pm is not None and reweighted:  # the members' distances with the library's channel weights
+        dist = np.asarray(pm.D, np.float64)[np.arange(len(labels)), labels]
     if pm is not None:
         D = np.array(pm.D, dtype=np.float64)
         D[np.arange(len(labels)), labels] = np.inf
