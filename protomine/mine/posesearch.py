@@ -341,17 +341,30 @@ def _fft_all_distances(x: np.ndarray, w: np.ndarray, factors: tuple[torch.Tensor
 
 
 def _best_pose_torch(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """d (n, K, S, A) tensor -> D (n, K), yaw_deg (n, K), scale (n, K); same rule as :func:`_best_pose`.
+    """d (n, K, S, A) tensor -> D (n, K), yaw_deg (n, K), scale (n, K); same rule as :func:`_best_pose`."""
+    return _best_pose_nska(d.permute(0, 2, 1, 3), scales)
 
-    Works on the tensor so that only (n, K) results are copied (the (n, K, S, A) array is the largest
-    object of a pass).
+
+def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """d (n, S, K, A) tensor (any strides) -> D (n, K), yaw_deg (n, K), scale (n, K); same rule as
+    :func:`_best_pose` (the first minimum in scale-major, then shift order).
+
+    Works on the tensor in the layout the products leave it, so that nothing of size (n, S, K, A) is copied:
+    the minimum over the shifts, then over the scales (two reductions give the same first minimum as one
+    over the flattened (S, A): ties keep the lowest shift within a scale, then the lowest scale), and the
+    two neighbours of the best shift gathered by index.
     """
-    n, K, S, A = d.shape
-    D, best = d.reshape(n, K, S * A).min(dim=2)
-    si, sh = best // A, best % A
-    row = d[torch.arange(n)[:, None], torch.arange(K)[None, :], si]  # (n, K, A) at the best scale
-    dm = row.gather(2, ((sh - 1) % A)[..., None])[..., 0]
-    dp = row.gather(2, ((sh + 1) % A)[..., None])[..., 0]
+    n, S, K, A = d.shape
+    vals, shift = d.min(dim=3)  # (n, S, K)
+    if S == 1:
+        D, sh = vals[:, 0], shift[:, 0]
+        si = torch.zeros((n, K), dtype=torch.int64)
+    else:
+        D, si = vals.min(dim=1)  # (n, K)
+        sh = shift.gather(1, si[:, None])[:, 0]
+    ni, ki = torch.arange(n)[:, None], torch.arange(K)[None, :]
+    dm = d[ni, si, ki, (sh - 1) % A]
+    dp = d[ni, si, ki, (sh + 1) % A]
     D, dm, dp = D.numpy(), dm.numpy(), dp.numpy()
     off = _parabolic_offset(dm.astype(np.float64), D.astype(np.float64), dp.astype(np.float64))
     off = np.where(np.isfinite(D), off, 0.0)
@@ -442,9 +455,9 @@ class PoseBank:
                 og = o if rows.size == n else o[:, torch.from_numpy(rows)]
                 dd = _distances_from_spectra(og, part, self.A, self.C * min_overlap).reshape(rows.size, span, K, self.A)
                 d[torch.from_numpy(rows), lo:lo + span] = dd
-        d = d.permute(0, 2, 1, 3)  # (n, K, S, A)
-        D, yaw, sc = _best_pose_torch(d, self.scales)
-        return PoseMatch(D, yaw, sc, d.numpy().copy() if return_all else None, tilt=np.zeros(D.shape, np.int64))
+        D, yaw, sc = _best_pose_nska(d, self.scales)
+        return PoseMatch(D, yaw, sc, d.permute(0, 2, 1, 3).numpy().copy() if return_all else None,
+                         tilt=np.zeros(D.shape, np.int64))
 
     def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3,
               return_all: bool = False) -> PoseMatch:
