@@ -29,11 +29,14 @@ Expanding the square gives, for every shift s at once, four cross-correlations a
     den(s) = C * corr(w, v)(s)
 
 By the correlation theorem ``corr(f, g) = irfft(rfft(f) * conj(rfft(g)))``, so per azimuthal frequency
-the sums over (C, R, H) become one complex matrix product (objects x features) @ (features x
-prototypes); the denominator involves w alone, so its product runs on the w block of the object
-factors only.  Objects are processed in chunks so memory is bounded by the chunk size.  The pose bank
-orders its scaled prototypes scale-major, so searching only a window of neighbouring scales (the
-engine's intermediate passes) is a column slice of the prototype factors.
+the sums over (C, R, H) become one complex matrix product (prototypes x features) @ (features x
+objects), run as four real ones; the denominator involves w alone, so its product runs on the w block of
+the object factors only.  Object and prototype factors share one layout (frequency, item, feature), and
+the products' output (frequency, prototype, object) is what the inverse transform reads as one matrix,
+so distances come out (shift, prototype, object) without a transposing copy anywhere.  Objects are
+processed in chunks so memory is bounded by the chunk size.  The pose bank orders its scaled prototypes
+scale-major, so searching only a window of neighbouring scales (the engine's intermediate passes) is a
+slice of the prototype factors.
 
 Scales
 ------
