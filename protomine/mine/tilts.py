@@ -527,7 +527,7 @@ class TiltBank:
                             part = tuple(f.index_select(1, pos) for f in factors)
                         rows, cols_e = ii[es_p], jj[es_p]
                         urows, inv = np.unique(rows, return_inverse=True)
-                        og = o[:, torch.from_numpy(urows)]
+                        og = o.index_select(1, torch.from_numpy(urows))  # the group's objects
                         d = _distances_from_spectra(og, part, self.A, minov)  # (A, |cols|, nu)
                         Dg, yg, _ = _best_pose_nska(d.view(self.A, 1, len(cols), len(urows)).permute(3, 1, 2, 0),
                                                     (self.scales[si],))
