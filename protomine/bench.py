@@ -14,7 +14,7 @@ absolute times grow with it, so the targets are ratios measured side by side in 
     ``ratio_fft_dense`` (target <= 2), ``ratio_naive_fft``; ``fft_cpu_s``, ``dense_cpu_s``,
     ``ratio_fft_dense_cpu``: the same in CPU seconds of this process (less sensitive to a shared machine's load); ``matmul_peak_gflops`` (best of 3 float32
     4096 x 4096 torch products, 2 n^3 operations each, same process and threads), ``products_gflop``,
-    ``products_s``, ``products_gflops`` (the search's per-frequency batched products, ``bmm``/``baddbmm``,
+    ``products_s``, ``products_gflops`` (the search's per-frequency batched products, ``bmm``/``baddbmm``(``_``),
     timed by torch's profiler with their shapes), ``products_fraction_of_peak`` (target >= 0.5),
     ``products_share_of_search``.  Both sides run with freed chunk-sized temporaries kept in the heap
     (``protomine/__init__.py``); before that the 50 MB temporaries of a 512-object chunk were mapped and
@@ -89,15 +89,15 @@ def matmul_peak_gflops(n: int, repeats: int = 3) -> float:
 
 
 def _product_time_and_flops(run: Callable[[], object]) -> tuple[float, float]:
-    """Seconds and floating-point operations of the batched matrix products (``bmm`` / ``baddbmm``: the
-    pose search's per-frequency complex products in real arithmetic) while ``run`` executes, from torch's
+    """Seconds and floating-point operations of the batched matrix products (``bmm``, ``baddbmm``, ``baddbmm_``:
+    the pose search's per-frequency complex products in real arithmetic) while ``run`` executes, from torch's
     profiler (op wall times on the calling thread, shapes of the operands: (b, n, k) @ (b, k, m) is 2 b n k m)."""
     from torch.profiler import ProfilerActivity, profile
     with profile(activities=[ProfilerActivity.CPU], record_shapes=True) as prof:
         run()
     secs = flops = 0.0
     for e in prof.events():
-        if e.name in ("aten::bmm", "aten::baddbmm"):
+        if e.name in ("aten::bmm", "aten::baddbmm", "aten::baddbmm_"):  # the in-place form accumulates
             a, b = e.input_shapes[:2] if e.name == "aten::bmm" else e.input_shapes[1:3]
             flops += 2.0 * a[0] * a[1] * a[2] * b[2]
             secs += e.cpu_time_total / 1e6

@@ -12,9 +12,11 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import torch
 from scipy import ndimage
 
+from protomine.mine import tilts
 from protomine.mine.posesearch import _dft_matrix, _prototype_spectra, pose_distances_naive, scale_prototypes
 from protomine.mine.tilts import TiltBank, TiltGrid, column_factors
 
@@ -90,7 +92,12 @@ def test_column_factors_equal_posesearch_spectra():
             np.testing.assert_allclose(g.numpy(), r.numpy(), atol=1e-4 * float(r.abs().max()))
 
 
-def test_refinement_equals_its_definition():
+@pytest.mark.parametrize("split", [False, True])
+def test_refinement_equals_its_definition(split, monkeypatch):
+    # both ways of running a refinement group (one product against the union of its candidates, or one per
+    # previous direction) must give the definition's poses
+    monkeypatch.setattr(tilts, "SPLIT_WASTE", 0.0 if split else np.inf)
+    monkeypatch.setattr(tilts, "SPLIT_OVERHEAD", 0.0)
     rng = np.random.default_rng(2)
     P, V = _protos(rng, K=3)
     scales = (0.9, 1.0, 1.1)
