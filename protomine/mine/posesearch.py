@@ -66,6 +66,8 @@ Public API
 from __future__ import annotations
 
 import functools
+import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Sequence
 
@@ -220,6 +222,49 @@ def _dft_matrix(A: int) -> torch.Tensor:
 
 
 SPECTRA_BLOCK_BYTES = 1 << 20  # the object factors of one block of a chunk (stays in the core's cache)
+SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
+
+
+@functools.lru_cache(maxsize=4)
+def _spectra_pool(threads: int) -> ThreadPoolExecutor:
+    """``threads`` Python threads whose torch ops run on one thread each, for :func:`_object_spectra`.
+
+    torch's thread count is per thread for its ops (OpenMP's and MKL's settings of the calling thread);
+    ``torch.set_num_threads(1)`` in a pool thread also sets the count that threads started later begin with, so
+    the pool's threads are all started here (a barrier holds each until all have set theirs) and the caller's
+    count is set back afterwards (which leaves the caller's own ops as they were)."""
+    pool = ThreadPoolExecutor(threads, thread_name_prefix="spectra")
+    barrier = threading.Barrier(threads)
+
+    def init(_):
+        torch.set_num_threads(1)
+        barrier.wait()
+
+    list(pool.map(init, range(threads)))
+    torch.set_num_threads(threads)
+    return pool
+
+
+def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, flat: torch.Tensor,
+                         i0: int, i1: int) -> None:
+    """Object factors of objects i0..i1 into their columns of ``flat`` (2F, n (C + 2) R H), in cache-sized blocks
+    (see :func:`_object_spectra`)."""
+    n, C, R, A, H = x.shape
+    feat = (C + 2) * R * H
+    b = max(1, min(i1 - i0, SPECTRA_BLOCK_BYTES // (4 * A * feat)))
+    buf = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)
+    for j0 in range(i0, i1, b):
+        j1 = min(i1, j0 + b)
+        st = buf[:, :j1 - j0]
+        xs, ws, sq = st[:, :, 2:], st[:, :, 1], st[:, :, 0]
+        xs.copy_(x[j0:j1].permute(3, 0, 1, 2, 4))
+        ws.copy_(w[j0:j1].permute(2, 0, 1, 3))
+        torch.mul(xs[:, :, 0], xs[:, :, 0], out=sq)
+        for c in range(1, C):
+            sq.addcmul_(xs[:, :, c], xs[:, :, c])
+        sq.mul_(ws)
+        xs.mul_(st[:, :, 1:2])  # w x_c
+        torch.mm(dft, st.reshape(A, -1), out=flat[:, j0 * feat:j1 * feat])
 
 
 def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torch.Tensor:
@@ -235,28 +280,25 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     went through memory four times; one (2F, A) @ (A, 344,064) product alone ran at a third of the
     machine's matrix rate).  Column blocks do not change any column's arithmetic: the result is the same
     to the bit.
+
+    When torch runs T > 1 threads, T Python threads (:func:`_spectra_pool`) build the objects' blocks with
+    single-threaded ops, ``SPECTRA_SHARES`` x T contiguous shares of the objects taken in turn: a block's ops are too small to pay for waking torch's other
+    threads for every one of them (the shared-machine failure: 512 objects took 290 ms wall at load 3, and
+    whole-chunk ops on both threads 108 ms, against 76 ms this way; 23 / 34 / 26 ms at load 2.3, min of 15).
+    Same result to the bit.
     """
     n, C, R, A, H = x.shape
     feat = (C + 2) * R * H
-    rows = dft.shape[0]
-    out = torch.empty((rows, n, feat), dtype=torch.float32)
-    flat = out.view(rows, n * feat)
-    # one block per chunk when torch runs several threads: each op of a block is one parallel region, and a
-    # cache-sized block's ops are too small to pay for waking the other threads (see the docstring)
-    b = n if torch.get_num_threads() > 1 else max(1, min(n, SPECTRA_BLOCK_BYTES // (4 * A * feat)))
-    buf = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)
-    for i0 in range(0, n, b):
-        i1 = min(n, i0 + b)
-        st = buf[:, :i1 - i0]
-        xs, ws, sq = st[:, :, 2:], st[:, :, 1], st[:, :, 0]
-        xs.copy_(x[i0:i1].permute(3, 0, 1, 2, 4))
-        ws.copy_(w[i0:i1].permute(2, 0, 1, 3))
-        torch.mul(xs[:, :, 0], xs[:, :, 0], out=sq)
-        for c in range(1, C):
-            sq.addcmul_(xs[:, :, c], xs[:, :, c])
-        sq.mul_(ws)
-        xs.mul_(st[:, :, 1:2])  # w x_c
-        torch.mm(dft, st.reshape(A, -1), out=flat[:, i0 * feat:i1 * feat])
+    out = torch.empty((dft.shape[0], n, feat), dtype=torch.float32)
+    flat = out.view(dft.shape[0], n * feat)
+    threads = torch.get_num_threads()
+    b = max(1, SPECTRA_BLOCK_BYTES // (4 * A * feat))
+    if threads == 1 or n <= b or threading.current_thread().name.startswith("spectra"):
+        _object_spectra_rows(x, w, dft, flat, 0, n)
+        return out
+    # a few shares per thread, taken in turn: a thread that the machine's other work slows takes fewer
+    cuts = np.linspace(0, n, min(SPECTRA_SHARES * threads, -(-n // b)) + 1).round().astype(int)
+    list(_spectra_pool(threads).map(lambda ij: _object_spectra_rows(x, w, dft, flat, *ij), zip(cuts[:-1], cuts[1:])))
     return out
 
 
