@@ -66,6 +66,7 @@ Public API
 from __future__ import annotations
 
 import functools
+import os
 import threading
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -245,6 +246,10 @@ def _spectra_pool(threads: int) -> ThreadPoolExecutor:
     return pool
 
 
+# a forked child has none of the parent's pool threads: it starts its own pool when it needs one
+os.register_at_fork(after_in_child=_spectra_pool.cache_clear)
+
+
 def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, flat: torch.Tensor,
                          i0: int, i1: int) -> None:
     """Object factors of objects i0..i1 into their columns of ``flat`` (2F, n (C + 2) R H), in cache-sized blocks
@@ -282,10 +287,10 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     to the bit.
 
     When torch runs T > 1 threads, T Python threads (:func:`_spectra_pool`) build the objects' blocks with
-    single-threaded ops, ``SPECTRA_SHARES`` x T contiguous shares of the objects taken in turn: a block's ops are too small to pay for waking torch's other
-    threads for every one of them (the shared-machine failure: 512 objects took 290 ms wall at load 3, and
-    whole-chunk ops on both threads 108 ms, against 76 ms this way; 23 / 34 / 26 ms at load 2.3, min of 15).
-    Same result to the bit.
+    single-threaded ops, ``SPECTRA_SHARES`` x T contiguous shares of the objects taken in turn: a block's ops
+    are too small to pay for waking torch's other threads for every one of them (on a shared machine, 512
+    objects took 290 ms wall at load 3 that way, whole-chunk ops on both threads 108 ms, this 76 ms; 23 / 34 /
+    26 ms at load 2.3, best of 15).  Same result to the bit.
     """
     n, C, R, A, H = x.shape
     feat = (C + 2) * R * H
