@@ -175,3 +175,25 @@ def test_two_touching_posts_of_one_colour_on_bases_at_the_margin_stay_two_whole_
         m = masked[str(top)]
         mine = sum(np.isin(pix, m.pixels.get(f, [])).sum() for f, pix in p.pixels.items())
         assert mine >= 0.8 * m.n_points, (mine, m.n_points)
+
+
+def test_growth_into_the_low_band_keeps_to_each_objects_colour():
+    """Two bases of different colours touch at one height (a 60 x 40 flat band, red left of column 40, blue
+    right of it); the red object's seed lies far from the seam, the blue one's close to it.  Grown ring by
+    ring, the blue one would take the red base beyond the midpoint between the seeds; with each object's
+    chromaticity it stops at the colour seam.  Expected answer by construction."""
+    from protomine.ingest.proposals import grow_into_low_band
+    h, w = 40, 60
+    depth = np.full((h, w), 0.5)
+    labels = np.full((h, w), -1)
+    labels[:, 2:4] = 0
+    labels[:, 50:52] = 1
+    rgb = np.zeros((h, w, 3))
+    rgb[:, :40] = (200, 40, 30)
+    rgb[:, 40:] = (30, 50, 210)
+    chroma = rgb / rgb.sum(axis=2, keepdims=True)
+    own = np.array([chroma[0, 0], chroma[0, -1]])
+    plain = grow_into_low_band(labels, depth, np.ones((h, w), bool), 60)
+    gated = grow_into_low_band(labels, depth, np.ones((h, w), bool), 60, chroma, own)
+    assert (plain[:, 30:40] == 1).all()                  # without colours the seam is the seeds' midpoint
+    assert (gated[:, :40] == 0).all() and (gated[:, 40:] == 1).all()
