@@ -48,6 +48,7 @@ GROW_CHROMA = 0.08          # chromaticity distance within which an object grows
 DARK_RGB = 60               # pixels darker than this (sum of 8-bit r, g, b) have no usable chromaticity
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 ON_PLANE = 2.0              # x the grouping margin: a group whose lowest points are this low stands on the plane
+STANDS_SHARE = 0.25         # ... and, with this share of another group's voxels, is an object beside it, not its part
 
 
 @dataclass
@@ -415,6 +416,9 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
             near, own = tree_lab[jn], labels[new]
             alike = ~(np.linalg.norm(label_chroma[near] - label_chroma[own], axis=1) > GROW_CHROMA)   # NaN: alike
             labels[new[(near != own) & alike]] = -1
+        # like a mask's pixels: readings from half the grouping margin up (the band under it only carried
+        # the growth across a base's low rim; lower readings are the table's as much as the object's)
+        labels[h <= 0.5 * above_plane_margin(plane, cfg)] = -1
         for i, p in enumerate(props):
             pix = np.flatnonzero(labels == i)
             if len(pix):
@@ -537,8 +541,8 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
     footprint lies inside another group's footprint (its 2-D convex hull in the plane), the two are parts
     of one object (e.g. a post and its legs).  A long group (a wall, a shelf edge) only absorbs what lies
     over it.  A group that reaches down to the plane itself (its 2nd height percentile below ``on_plane``)
-    stands there on its own: a touching neighbour whose pegs or rim overhang another's base is not absorbed
-    by it.  Returns relabelled groups 0..n-1 (noise stays -1).
+    and holds at least STANDS_SHARE of the other's voxels stands there on its own: a touching neighbour
+    whose pegs or rim overhang another's base is not absorbed by it (a small piece still is).  Returns relabelled groups 0..n-1 (noise stays -1).
     """
     from scipy.spatial import Delaunay
     n = lab.max() + 1
@@ -562,14 +566,14 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
 
     low = [float(np.percentile(plane.height(pts[lab == l]), 2)) < on_plane for l in range(n)]
     for i in range(n):
-        if low[i]:
-            continue
         # one host per group (the one covering most of it): a crumb between two touching objects lies in
         # both their hulls and must not glue them together
         best, best_share = -1, FOOTPRINT_OVERLAP
         for j in range(n):
             if i == j or hulls[j] is None or len(xy[i]) > len(xy[j]):
                 continue
+            if low[i] and len(xy[i]) >= STANDS_SHARE * len(xy[j]):
+                continue                 # a neighbour of its own size, standing on the plane beside it
             share = float(np.mean(hulls[j].find_simplex(xy[i]) >= 0))
             if share >= best_share:
                 best, best_share = j, share
