@@ -355,11 +355,28 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     props = _grown_proposals(cap, frames, above_sel, plane, cfg, clusters)
     # a group that is only a patch of a base (the rim of a disc as thick as the grouping margin) is lower
     # than an object once it holds its low band too: it gives its pixels back to the objects around it
-    flat = [i for i, p in enumerate(props) if p is not None and p.frame.height < c["min_object_height_m"]]
+    # so is a group that stays within the support band and lies over the footprint of a taller object
+    flat = [i for i, p in enumerate(props) if p is not None and (
+        p.frame.height < c["min_object_height_m"]
+        or (p.frame.height < SUPPORT_BAND_M and _over_taller(clusters[i][0], p, props, plane, eps)))]
     if flat:
         clusters = [t for i, t in enumerate(clusters) if i not in flat]
         props = _grown_proposals(cap, frames, above_sel, plane, cfg, clusters)
     return [p for p in props if p is not None and p.frame.height >= c["min_object_height_m"]]
+
+
+def _over_taller(vox: np.ndarray, p: Proposal, props: list[Proposal | None], plane: PlaneFit, eps: float) -> bool:
+    """Whether most of the voxels (V, 3) of the low proposal ``p`` lie within the footprint circle (grown by
+    ``eps``) of a taller proposal among ``props``."""
+    B = plane_basis(plane.normal)[:2]
+    xy = vox @ B.T
+    for q in props:
+        if q is None or q is p or q.frame.height < SUPPORT_BAND_M:
+            continue
+        d = np.linalg.norm(xy - q.frame.origin @ B.T, axis=1)
+        if np.mean(d <= q.frame.radius + eps) > 0.5:
+            return True
+    return False
 
 
 def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarray], plane: PlaneFit, cfg: dict,
