@@ -37,9 +37,10 @@ from scipy.sparse.csgraph import connected_components
 from scipy.spatial import ConvexHull, QhullError, cKDTree
 
 NORMAL_NEIGHBOURS = 16   # PCA neighbourhood size for voxel normals
-SEAM_SHARE = 0.03        # share of a group's voxels along the seam with a neighbour of its colour to join it
-                         # (measured, demo tools and angles families, touching: the blocks of one object
-                         # 0.04-0.87; two posts touching at a peg 0.009-0.013)
+SEAM_SHARE = 0.01        # share of a group's voxels along the seam with a neighbour of its colour to join it
+SEAM_LONG = 0.05         # ... with any neighbour of its colour at this share, not only the one of its longest seam
+                         # (measured, demo touching scenes: the blocks of one object 0.04-0.93, a post and the
+                         # touching post of another 0.009-0.013)
 SAME_CHROMA = 0.03       # chromaticity distance below which two groups have one colour (measured: one object's
                          # blocks 0.004; touching demo objects 0.15-0.6)
 REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
@@ -251,7 +252,8 @@ def _chroma(rgb: np.ndarray) -> np.ndarray:
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float) -> np.ndarray:
     """Join neighbouring groups of one colour (an L-shaped object: two blocks that each stand): each group
     joins the one neighbour of its colour (median chromaticity (r, g, b) / (r + g + b) within SAME_CHROMA)
-    along which most of its voxels lie (within ``radius``), when that is at least SEAM_SHARE of them.
+    along which most of its voxels lie (within ``radius``), when that is at least SEAM_SHARE of them, and
+    every neighbour of its colour it meets along a long seam (SEAM_LONG of its voxels).
     Shading changes brightness across an object's faces, not its chromaticity.
     One neighbour per group, the one it shares the longest seam with: a post whose own pegs or base were
     cut off by creases meets them along far more of its voxels than a touching neighbour of the same colour
@@ -280,6 +282,8 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
                 continue
             d, _ = trees[b].query(points[lab == a], distance_upper_bound=radius)
             share = float(np.isfinite(d).mean())
+            if share >= SEAM_LONG and root(a) != root(b):
+                parent[root(a)] = root(b)
             if share > best_share or (share == best_share and best < 0):
                 best, best_share = b, share
         if best >= 0 and root(a) != root(best):
