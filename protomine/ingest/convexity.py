@@ -38,6 +38,9 @@ from scipy.spatial import ConvexHull, QhullError, cKDTree
 
 NORMAL_NEIGHBOURS = 16   # PCA neighbourhood size for voxel normals
 SEAM_SHARE = 0.01        # share of a group's voxels along the seam with a neighbour of its colour to join it
+SEAM_LONG = 0.05         # ... with any neighbour of its colour at this share, not only the one of its longest seam
+                         # (measured, demo touching scenes: the blocks of one object 0.04-0.93, a post and the
+                         # touching post of another 0.009-0.013)
 SAME_CHROMA = 0.03       # chromaticity distance below which two groups have one colour (measured: one object's
                          # blocks 0.004; touching demo objects 0.15-0.6)
 REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
@@ -199,10 +202,45 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
             changed = True
         if not changed:
             break
+    lab = _join_bases(points, np.where(ok, group[np.maximum(parts, 0)], -1), heights, low, link_radius / 2,
+                      support_band, colours)
     if colours is not None:
-        group = _join_same_colour(points, colours, np.where(ok, group[np.maximum(parts, 0)], -1), link_radius)
-        return _relabel(group)
-    return _relabel(np.where(ok, group[np.maximum(parts, 0)], -1))
+        lab = _join_same_colour(points, colours, lab, link_radius)
+    return _relabel(lab)
+
+
+def _join_bases(points: np.ndarray, lab: np.ndarray, heights: np.ndarray, low, radius: float, support_band: float,
+                colours: np.ndarray | None) -> np.ndarray:
+    """Flat groups that are the base of a taller neighbour join it (V,).
+
+    A base disc or a flange whose top wavers around the grouping margin shows above it only in patches
+    (its rim, noise peaks); each patch stands on its own and would become an object of its own, while the
+    rest of the base lies in the low band (``low``: voxels (L, 3), in-plane coordinates, components (L,)).
+    A group lying wholly within ``support_band`` (its 99th height percentile) that touches (within ``radius``)
+    a low-band component a taller group touches too joins the nearest such group (with ``colours``: only one
+    of its own chromaticity, SAME_CHROMA; a flat object of another colour next to a tall one stays apart)."""
+    ids = [int(l) for l in np.unique(lab[lab >= 0])]
+    if low is None or not len(low[0]) or len(ids) < 2:
+        return lab
+    lp, _, comp = low
+    d, j = cKDTree(lp).query(points, distance_upper_bound=radius)
+    vcomp = np.where(np.isfinite(d), comp[np.minimum(j, len(lp) - 1)], -1)            # (V,) low component touched
+    top = {l: float(np.percentile(heights[lab == l], 99)) for l in ids}
+    touched = {l: set(np.unique(vcomp[(lab == l) & (vcomp >= 0)]).tolist()) for l in ids}
+    chroma = {l: _chroma(colours[lab == l]) for l in ids} if colours is not None else None
+    tall = [l for l in ids if top[l] >= support_band]
+    out = lab.copy()
+    for l in ids:
+        if top[l] >= support_band or not touched[l]:
+            continue
+        cand = [q for q in tall if touched[q] & touched[l]
+                and (chroma is None or np.linalg.norm(chroma[q] - chroma[l]) < SAME_CHROMA)]
+        if not cand:
+            continue
+        mine = points[lab == l]
+        dist = [float(cKDTree(points[lab == q]).query(mine)[0].min()) for q in cand]
+        out[lab == l] = cand[int(np.argmin(dist))]
+    return out
 
 
 def _chroma(rgb: np.ndarray) -> np.ndarray:
@@ -212,11 +250,16 @@ def _chroma(rgb: np.ndarray) -> np.ndarray:
 
 
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float) -> np.ndarray:
-    """Join neighbouring groups of one colour (an L-shaped object: two blocks that each stand): at least
-    SEAM_SHARE of the smaller group's voxels lie within ``radius`` of the other, and their
-    median chromaticities (r, g, b) / (r + g + b) differ by less than SAME_CHROMA (shading changes brightness
-    across an object's faces, not its chromaticity).  Neighbours mostly differ in colour; two touching
-    objects of one colour (or two greys) stay joined: no cue tells them apart without masks."""
+    """Join neighbouring groups of one colour (an L-shaped object: two blocks that each stand): each group
+    joins the one neighbour of its colour (median chromaticity (r, g, b) / (r + g + b) within SAME_CHROMA)
+    along which most of its voxels lie (within ``radius``), when that is at least SEAM_SHARE of them, and
+    every neighbour of its colour it meets along a long seam (SEAM_LONG of its voxels).
+    Shading changes brightness across an object's faces, not its chromaticity.
+    One neighbour per group, the one it shares the longest seam with: a post whose own pegs or base were
+    cut off by creases meets them along far more of its voxels than a touching neighbour of the same colour
+    it meets at a peg's tip, so the two posts are not glued together (two touching objects of one colour
+    that meet each other along a longer seam than any of their own pieces stay joined: no cue tells them
+    apart without masks)."""
     ids = [int(l) for l in np.unique(lab[lab >= 0])]
     if len(ids) < 2:
         return lab
@@ -233,13 +276,18 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
         return x
 
     for a in ids:
+        best, best_share = -1, SEAM_SHARE
         for b in ids:
-            if b <= a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA:
+            if b == a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA:
                 continue
-            small, big = (a, b) if (lab == a).sum() <= (lab == b).sum() else (b, a)
-            d, _ = trees[big].query(points[lab == small], distance_upper_bound=radius)
-            if np.isfinite(d).mean() >= SEAM_SHARE:
+            d, _ = trees[b].query(points[lab == a], distance_upper_bound=radius)
+            share = float(np.isfinite(d).mean())
+            if share >= SEAM_LONG and root(a) != root(b):
                 parent[root(a)] = root(b)
+            if share > best_share or (share == best_share and best < 0):
+                best, best_share = b, share
+        if best >= 0 and root(a) != root(best):
+            parent[root(a)] = root(best)
     return np.array([root(int(l)) if l >= 0 else -1 for l in lab])
 
 

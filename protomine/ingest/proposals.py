@@ -43,7 +43,12 @@ LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy se
 SMOOTH_WINDOW = 5           # pixels: median window of the smoothed low band (``smoothed_band``)
 LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
 VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
+GROW_CHROMA = 0.08          # chromaticity distance within which an object grows into its low band (measured on
+                            # the demo: 98% of an object's pixels lie within 0.03-0.04 of its median)
+DARK_RGB = 60               # pixels darker than this (sum of 8-bit r, g, b) have no usable chromaticity
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
+ON_PLANE = 2.0              # x the grouping margin: a group whose lowest points are this low stands on the plane
+STANDS_SHARE = 0.25         # ... and, with this share of another group's voxels, is an object beside it, not its part
 
 
 @dataclass
@@ -334,7 +339,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours)
-    lab = _merge_overlapping_footprints(vox, lab, plane)
+    lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg))
     clusters = []
     for l in range(lab.max() + 1):
         sel = lab == l
@@ -347,6 +352,39 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     # stable ids: order by position in the plane's own coordinates, rounded to 1 cm
     B = plane_basis(plane.normal)
     clusters.sort(key=lambda t: tuple(np.round(t[2] @ B.T, 2)))
+    props = _grown_proposals(cap, frames, above_sel, plane, cfg, clusters)
+    # a group that is only a patch of a base (the rim of a disc as thick as the grouping margin) is lower
+    # than an object once it holds its low band too: it gives its pixels back to the objects around it
+    # so is a group that stays within the support band and lies over the footprint of a taller object
+    flat = [i for i, p in enumerate(props) if p is not None and (
+        p.frame.height < c["min_object_height_m"]
+        or (p.frame.height < SUPPORT_BAND_M and _over_taller(clusters[i][0], p, props, plane, eps)))]
+    if flat:
+        clusters = [t for i, t in enumerate(clusters) if i not in flat]
+        props = _grown_proposals(cap, frames, above_sel, plane, cfg, clusters)
+    return [p for p in props if p is not None and p.frame.height >= c["min_object_height_m"]]
+
+
+def _over_taller(vox: np.ndarray, p: Proposal, props: list[Proposal | None], plane: PlaneFit, eps: float) -> bool:
+    """Whether most of the voxels (V, 3) of the low proposal ``p`` lie within the footprint circle (grown by
+    ``eps``) of a taller proposal among ``props``."""
+    B = plane_basis(plane.normal)[:2]
+    xy = vox @ B.T
+    for q in props:
+        if q is None or q is p or q.frame.height < SUPPORT_BAND_M:
+            continue
+        d = np.linalg.norm(xy - q.frame.origin @ B.T, axis=1)
+        if np.mean(d <= q.frame.radius + eps) > 0.5:
+            return True
+    return False
+
+
+def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarray], plane: PlaneFit, cfg: dict,
+                     clusters: list[tuple[np.ndarray, ObjectFrame, np.ndarray]]) -> list[Proposal | None]:
+    """One proposal per point group (voxels, frame, centre) (None when it holds no pixel): each frame's
+    readings above the margin go to the nearest group's voxels (within cluster_eps_m), then the groups
+    grow into the frame's low band (``grow_into_low_band``); the object frame is measured again from it."""
+    eps = cfg["ingest"]["cluster_eps_m"]
     if not clusters:
         return []
     tree_pts = np.concatenate([t[0] for t in clusters])
@@ -355,30 +393,59 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     props = [Proposal(f"{cap.name}/p{i:03d}", f"p{i:03d}", fr, centre, 0, {}) for i, (_, fr, centre) in enumerate(clusters)]
     floor = low_floor(plane)
     grown: list[list[np.ndarray]] = [[] for _ in props]
+    seeds_of, chroma_of = [], []
     for fd, s in zip(frames, above_sel):
         d, j = tree.query(fd.points[s], distance_upper_bound=eps)
         ok = np.isfinite(d)
         labels = np.full(fd.depth.size, -1)
         labels[fd.pixels[s][ok]] = tree_lab[j[ok]]
+        rgb = fd.rgb.reshape(-1, 3).astype(np.float64)
+        bright = rgb.sum(axis=1)
+        ch = np.where((bright >= DARK_RGB)[:, None], rgb / np.maximum(bright, 1.0)[:, None], np.nan)
+        seeds_of.append(labels)
+        chroma_of.append(ch)
+    # each object's colour: the median chromaticity of its readings above the margin in every frame
+    lab_all = np.concatenate(seeds_of)
+    ch_all = np.concatenate(chroma_of)
+    label_chroma = np.full((len(props), 3), np.nan)
+    for i in range(len(props)):
+        sel = (lab_all == i) & ~np.isnan(ch_all[:, 0])
+        if sel.any():
+            label_chroma[i] = np.median(ch_all[sel], axis=0)
+    for fd, s, labels, ch in zip(frames, above_sel, seeds_of, chroma_of):
         h = np.zeros(fd.depth.size)
         h[fd.pixels] = plane.height(fd.points)
         steady = np.zeros(fd.depth.size, bool)
         steady[fd.pixels] = fd.steady
         band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
                                                                                above_plane_margin(plane, cfg)))
+        seeds = labels.copy()
         labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, band & steady.reshape(fd.depth.shape),
-                                    LOW_GROW_PIXELS).reshape(-1)
+                                    LOW_GROW_PIXELS, ch.reshape(fd.depth.shape + (3,)), label_chroma).reshape(-1)
         point_of = np.full(fd.depth.size, -1)
         point_of[fd.pixels] = np.arange(len(fd.pixels))
+        # where two bases of one colour touch, the image-space growth of one runs on over the other's base
+        # (no depth step, no colour change between them); each base lies nearest its own object's voxels, so
+        # a grown reading nearest the voxels of another object of its colour is left to neither
+        new = np.flatnonzero((labels >= 0) & (seeds < 0))
+        if len(new):
+            _, jn = tree.query(fd.points[point_of[new]])
+            near, own = tree_lab[jn], labels[new]
+            alike = ~(np.linalg.norm(label_chroma[near] - label_chroma[own], axis=1) > GROW_CHROMA)   # NaN: alike
+            labels[new[(near != own) & alike]] = -1
+        # like a mask's pixels: readings from half the grouping margin up (the band under it only carried
+        # the growth across a base's low rim; lower readings are the table's as much as the object's)
+        labels[h <= 0.5 * above_plane_margin(plane, cfg)] = -1
         for i, p in enumerate(props):
             pix = np.flatnonzero(labels == i)
             if len(pix):
                 p.pixels[fd.id] = pix
                 p.n_points += len(pix)
                 grown[i].append(fd.points[point_of[pix]])
-    out = []
+    out: list[Proposal | None] = []
     for p, g, (vx, _, _) in zip(props, grown, clusters):
         if p.n_points == 0:
+            out.append(None)
             continue
         # the frame from every point the object holds now, its low band included (a base disc widens the
         # footprint); only points within reach of its grouped voxels, so no stray table pixel moves it
@@ -448,14 +515,20 @@ def _low_band(frames: list[FrameData], plane: PlaneFit, cfg: dict, eps: float):
     return vox, vox @ plane_basis(plane.normal)[:2].T, comp
 
 
-def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, steps: int) -> np.ndarray:
+def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, steps: int,
+                       chroma: np.ndarray | None = None, label_chroma: np.ndarray | None = None) -> np.ndarray:
     """Object labels (H, W) (-1 = none) grown into the pixels of ``band`` (H, W) bool (readings between the
     plane's noise floor and the grouping margin: a base disc, the lower edge of a lying part), one 4-neighbour
     ring per step, only across continuous depth (|dz| <= FLYING_TOL_M or FLYING_TOL_REL x z), at most
-    ``steps`` rings.  The table itself lies below the band, so growth stops at the object's rim."""
+    ``steps`` rings.  The table itself lies below the band, so growth stops at the object's rim.
+
+    chroma: optional (H, W, 3) chromaticity (r, g, b) / (r + g + b) of the pixels (NaN where too dark to
+    tell) and label_chroma (L, 3) each label's own: a label then grows only into pixels within GROW_CHROMA
+    of its colour (two bases that touch lie at one height, nothing but their colours tells them apart)."""
     lab = labels.copy()
     free = band & (lab < 0) & (depth > 0)
     tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * depth)
+    gate = chroma is not None and label_chroma is not None and len(label_chroma) > 0
     for _ in range(steps):
         new = np.full_like(lab, -1)
         for axis, shift in ((0, 1), (0, -1), (1, 1), (1, -1)):
@@ -466,6 +539,10 @@ def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, 
             sl[axis] = slice(0, 1) if shift == 1 else slice(-1, None)
             edge[tuple(sl)] = True                       # np.roll wraps around: not a neighbour
             take = free & (new < 0) & (nb >= 0) & ~edge & (np.abs(nd - depth) <= tol)
+            if gate and take.any():
+                t = np.flatnonzero(take)
+                d = np.linalg.norm(chroma.reshape(-1, 3)[t] - label_chroma[nb.reshape(-1)[t]], axis=1)
+                take.reshape(-1)[t[d > GROW_CHROMA]] = False           # NaN (dark) compares False: kept
             new[take] = nb[take]
         if not (new >= 0).any():
             break
@@ -474,13 +551,15 @@ def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, 
     return lab
 
 
-def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit) -> np.ndarray:
+def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit, on_plane: float = 0.0) -> np.ndarray:
     """Merge DBSCAN groups whose footprints overlap (one object whose thin parts lost contact).
 
     Objects rest side by side on the support surface, so when most (FOOTPRINT_OVERLAP) of one group's
     footprint lies inside another group's footprint (its 2-D convex hull in the plane), the two are parts
     of one object (e.g. a post and its legs).  A long group (a wall, a shelf edge) only absorbs what lies
-    over it.  Returns relabelled groups 0..n-1 (noise stays -1).
+    over it.  A group that reaches down to the plane itself (its 2nd height percentile below ``on_plane``)
+    and holds at least STANDS_SHARE of the other's voxels stands there on its own: a touching neighbour
+    whose pegs or rim overhang another's base is not absorbed by it (a small piece still is).  Returns relabelled groups 0..n-1 (noise stays -1).
     """
     from scipy.spatial import Delaunay
     n = lab.max() + 1
@@ -502,6 +581,7 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
             i = parent[i]
         return i
 
+    low = [float(np.percentile(plane.height(pts[lab == l]), 2)) < on_plane for l in range(n)]
     for i in range(n):
         # one host per group (the one covering most of it): a crumb between two touching objects lies in
         # both their hulls and must not glue them together
@@ -509,6 +589,8 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
         for j in range(n):
             if i == j or hulls[j] is None or len(xy[i]) > len(xy[j]):
                 continue
+            if low[i] and len(xy[i]) >= STANDS_SHARE * len(xy[j]):
+                continue                 # a neighbour of its own size, standing on the plane beside it
             share = float(np.mean(hulls[j].find_simplex(xy[i]) >= 0))
             if share >= best_share:
                 best, best_share = j, share
