@@ -51,23 +51,23 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
-from sklearn.cluster import AgglomerativeClustering
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
-from sklearn.metrics import silhouette_score
+from sklearn.metrics import silhouette_samples
 
 from ..progress import bar
 from .engine import PoseKMeans, Source, _gather
 from .posesearch import _check_scales
-from .seeding import DistanceFn, kmedoids, pairwise_pose_distances, symmetric_distances
+from .seeding import DistanceFn, best_kmedoids, outlying, pairwise_pose_distances, symmetric_distances
 from .tilts import tilt_pose_distances
 
-KNN_NEIGHBOURS = 3             # neighbours per object in the graph whose connected components count groups
+KNN_NEIGHBOURS = 3             # neighbours per object in the symmetric kNN graph (knn_components' default)
+MUTUAL_NEIGHBOURS = 4          # neighbours per object in the mutual kNN graph whose components count groups in choose_k
 
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
              min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048, progress=None,
-             distance: DistanceFn | None = None) -> tuple[int, list[dict]]:
+             distance: DistanceFn | None = None, one_se: bool = False) -> tuple[int, list[dict]]:
     """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
     (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows."""
     scales = _check_scales(scales)
@@ -78,36 +78,49 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
         raise ValueError(f"n_objects={N} must be > min_k={min_k} to compare clusterings")
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
-                     chunk_size=chunk_size, progress=progress, distance=distance)
+                     chunk_size=chunk_size, progress=progress, distance=distance, one_se=one_se)
 
 
-def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS) -> int:
-    """Connected components of the symmetric k-nearest-neighbour graph of a distance matrix S (n, n): i and j
-    are linked when either is among the other's ``neighbours`` nearest objects (the kNN graph of von Luxburg
-    2007, "A tutorial on spectral clustering", sec. 2.2).  Every component holds at least neighbours + 1
-    objects, so a lone outlier joins its nearest group instead of counting as one."""
+def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS, *, mutual: bool = False) -> int:
+    """Connected components of the k-nearest-neighbour graph of a distance matrix S (n, n) (von Luxburg
+    2007, "A tutorial on spectral clustering", sec. 2.2).  Symmetric graph (``mutual`` False): i and j are
+    linked when either is among the other's ``neighbours`` nearest objects; every component holds at least
+    neighbours + 1 objects, so a lone outlier joins its nearest group instead of counting as one.  Mutual
+    graph: linked when each is among the other's nearest; an object whose nearest objects lie in two groups
+    then no longer bridges them, and only components of at least neighbours + 1 objects are counted (the
+    smaller ones are the stragglers the mutual graph cuts off)."""
     n = len(S)
     k = min(neighbours, n - 1)
     nb = np.argsort(S + np.diag(np.full(n, np.inf)), axis=1, kind="stable")[:, :k]
     rows = np.repeat(np.arange(n), k)
     graph = csr_matrix((np.ones(n * k), (rows, nb.ravel())), shape=(n, n))
-    return int(connected_components(graph, directed=False)[0])
+    if not mutual:
+        return int(connected_components(graph, directed=False)[0])
+    graph = graph.multiply(graph.T)
+    _, comp = connected_components(graph, directed=False)
+    return int(max(1, np.sum(np.bincount(comp) >= k + 1)))
 
 
-def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None):
+def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None,
+              one_se=False):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     Xs, Ws = _gather(source, idx, chunk_size)
     S = pairwise_pose_distances(Xs, Ws, distance, scales=scales, progress=progress, what="choose K")
-    components = knn_components(S)
+    out = outlying(S)
+    if len(S) - out.sum() >= min_k + 2:
+        S = S[np.ix_(~out, ~out)]
+    components = knn_components(S, MUTUAL_NEIGHBOURS, mutual=True)
     table = []
-    for k in range(min_k, min(max_k, len(idx) - 1) + 1):
-        start = AgglomerativeClustering(n_clusters=k, metric="precomputed", linkage="average").fit_predict(S)
-        labels, cost = kmedoids(S, start)
+    for k in range(min_k, min(max_k, len(S) - 1) + 1):
+        labels, cost = best_kmedoids(S, k, rng)
         n_lab = np.unique(labels).size
-        score = float(silhouette_score(S, labels, metric="precomputed")) if 1 < n_lab < len(idx) else -1.0
-        table.append({"k": k, "silhouette": score, "knn_components": components, "medoid_cost": cost})
-    by_silhouette = max(table, key=lambda r: (r["silhouette"], -r["k"]))["k"]
+        s = silhouette_samples(S, labels, metric="precomputed") if 1 < n_lab < len(S) else np.full(len(S), -1.0)
+        table.append({"k": k, "silhouette": float(s.mean()), "silhouette_se": float(s.std() / np.sqrt(len(s))),
+                      "knn_components": components, "medoid_cost": cost, "outlying": int(len(idx) - len(S))})
+    top = max(table, key=lambda r: (r["silhouette"], -r["k"]))
+    by_silhouette = (min(r["k"] for r in table if r["silhouette"] >= top["silhouette"] - top["silhouette_se"])
+                     if one_se else top["k"])
     return int(max(by_silhouette, min(components, table[-1]["k"]))), table
 
 
@@ -149,11 +162,12 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
 
 
 def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
-             merge_threshold: float = 0.5, sample_size: int = 600, **engine_kwargs) -> tuple[PoseKMeans, dict]:
-    """Choose K, fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
+             merge_threshold: float = 0.5, sample_size: int = 600, one_se: bool = False,
+             **engine_kwargs) -> tuple[PoseKMeans, dict]:
+    """Choose K (``one_se``: see ``choose_k``), fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
     rng = np.random.default_rng(random_state)
     k, table = choose_k(source, max_k=max_k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
-                        sample_size=sample_size, progress=engine_kwargs.get("progress"))
+                        sample_size=sample_size, progress=engine_kwargs.get("progress"), one_se=one_se)
     model = PoseKMeans(n_clusters=k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                        **engine_kwargs).fit(source)
     model, merges = merge_close_prototypes(model, source, merge_threshold=merge_threshold)
