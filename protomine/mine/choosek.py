@@ -10,22 +10,32 @@ On a random subsample of at most ``sample_size`` objects:
    of object i to object j taken as a prototype (``pose_distances``), symmetrised as
    ``(D + D.T) / 2`` with a zero diagonal (pairs with no common observed cell get the largest finite
    distance).  It is computed once and serves every candidate K;
-2. for every K in ``min_k..max_k`` a k-medoids partition of that matrix: average-linkage agglomerative
-   clustering (``sklearn.cluster.AgglomerativeClustering``, precomputed distances) cut at K clusters,
-   refined by alternating "assign each object to its nearest medoid" and "each cluster's medoid = the
-   member with the smallest summed distance to the others" (Park & Jun 2009's alternating k-medoids),
-   scored by the mean silhouette (Rousseeuw 1987) of its labels on the matrix
-   (``sklearn.metrics.silhouette_score`` with ``metric="precomputed"``).  A k-medoids fit needs only
-   the matrix, so the scan costs milliseconds per K instead of a pose-aware fit per K;
-3. the connected components of the symmetric 3-nearest-neighbour graph on the same matrix (von Luxburg
-   2007): classes whose members are each other's pose-searched nearest neighbours form one component
-   each.  The silhouette alone favours the coarser level when classes come in close pairs (a shape and
-   its mirror image: K = 2 and K = 4 scored 0.378 and 0.369 on four peg posts; a spectral eigengap with
-   self-tuning affinities also chose 2 on a smaller scene), while the nearest-neighbour graph keeps the
-   close pairs apart;
-4. K = the larger of the silhouette's argmax (the smallest K on ties) and the component count (clipped to
-   ``max_k``).  A K too large is undone by merging (below); a K too small is not undone by anything.
-   K = 1 is never proposed.  ``fit_auto`` then runs one full :class:`PoseKMeans` fit at that K.
+2. objects beyond Tukey's fence on nearest-neighbour distances (``seeding.outlying``: poorly observed or
+   broken-up objects, far from every other one) leave the matrix (unless fewer than min_k + 2 would
+   remain).  Each would be a singleton cluster of silhouette 0 that lifts the others' silhouettes: on
+   four peg-post classes with two such objects, the scan chose K = 2 (43 objects against one outlier,
+   silhouette 0.446) over the four classes (0.403 without the outliers);
+3. for every K in ``min_k..max_k`` a k-medoids partition of that matrix, the lowest-cost of alternating
+   k-medoids runs (Park & Jun 2009) from average-linkage clustering and from k-means++ medoid samplings
+   (``seeding.best_kmedoids``; average linkage alone chained mirror-image classes together and found the
+   four peg-post classes at NMI 0.64 where the lowest-cost run found them exactly), scored by the mean
+   silhouette (Rousseeuw 1987) of its labels on the matrix (``sklearn.metrics.silhouette_samples`` with
+   ``metric="precomputed"``).  A k-medoids fit needs only the matrix, so the scan costs milliseconds per
+   K instead of a pose-aware fit per K;
+4. the groups of the mutual 4-nearest-neighbour graph on the same matrix (``knn_components(mutual=True)``,
+   von Luxburg 2007): its connected components of at least 5 objects.  The silhouette alone favours the
+   coarser level when classes come in close pairs (a shape and its mirror image: K = 2 and K = 4 scored
+   0.378 and 0.369 on four peg posts; a spectral eigengap with self-tuning affinities also chose 2 on a
+   smaller scene), while the nearest-neighbour graph keeps the close pairs apart.  In the symmetric graph
+   one object whose nearest neighbours lie in two classes joins them (2 and 3 groups counted on scenes
+   of four peg-post classes); the mutual graph cuts such stragglers off;
+5. K = the larger of the silhouette's choice and the group count (clipped to ``max_k``).  The silhouette's
+   choice is its argmax (the smallest K on ties) or, with ``one_se``, the smallest K whose mean silhouette
+   is within one standard error (of the per-object silhouettes at the argmax) of the best (the one-SE
+   rule of Breiman et al. 1984): on small stores the silhouette is flat over a range of K and its argmax
+   splits classes whose members vary continuously.  A K too large is meant to be undone by merging
+   (below); a K too small is not undone by anything.  K = 1 is never proposed.  ``fit_auto`` then runs
+   one full :class:`PoseKMeans` fit at that K.
 
 Merging (``merge_close_prototypes`` / ``fit_auto``)
 ---------------------------------------------------
@@ -38,12 +48,12 @@ until no pair qualifies.
 Public API
 ----------
 - ``choose_k(source, *, max_k, scales=(1.0,), random_state=None, min_k=2, sample_size=600,
-  chunk_size=2048, distance=None) -> (k, table)``; table: list of dicts {k, silhouette, knn_components,
-  medoid_cost}; ``distance(X, W, P, V) -> (n, k)`` is the pose-minimised distance (default: the yaw x
+  chunk_size=2048, distance=None, one_se=False) -> (k, table)``; table: list of dicts {k, silhouette,
+  silhouette_se, knn_components, medoid_cost, outlying}; ``distance(X, W, P, V) -> (n, k)`` is the pose-minimised distance (default: the yaw x
   scale search of :mod:`posesearch`).
-- ``knn_components(S, neighbours=3) -> int``
+- ``knn_components(S, neighbours=3, *, mutual=False) -> int``
 - ``merge_close_prototypes(model, source, *, merge_threshold=0.5) -> (model, merges)``
-- ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, **engine_kwargs)
+- ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, one_se=False, **engine_kwargs)
   -> (model, info)``; info: {"k_chosen", "table", "merges", "k_final"}.
 """
 from __future__ import annotations
