@@ -186,8 +186,8 @@ def shift_volume(a: np.ndarray, shift_bins: np.ndarray | float, axis: int) -> np
 
 def _parabolic_offset(dm: np.ndarray, d0: np.ndarray, dp: np.ndarray) -> np.ndarray:
     """Vertex offset in [-0.5, 0.5] of the parabola through (-1, dm), (0, d0), (1, dp)."""
-    curv = dm - 2 * d0 + dp
-    with np.errstate(divide="ignore", invalid="ignore"):
+    with np.errstate(divide="ignore", invalid="ignore"):  # no overlap: inf - inf, set to 0 below
+        curv = dm - 2 * d0 + dp
         off = 0.5 * (dm - dp) / curv
     off = np.where(np.isfinite(off) & (curv > 0), off, 0.0)
     return np.clip(off, -0.5, 0.5)
