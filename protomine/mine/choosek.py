@@ -10,22 +10,32 @@ On a random subsample of at most ``sample_size`` objects:
    of object i to object j taken as a prototype (``pose_distances``), symmetrised as
    ``(D + D.T) / 2`` with a zero diagonal (pairs with no common observed cell get the largest finite
    distance).  It is computed once and serves every candidate K;
-2. for every K in ``min_k..max_k`` a k-medoids partition of that matrix: average-linkage agglomerative
-   clustering (``sklearn.cluster.AgglomerativeClustering``, precomputed distances) cut at K clusters,
-   refined by alternating "assign each object to its nearest medoid" and "each cluster's medoid = the
-   member with the smallest summed distance to the others" (Park & Jun 2009's alternating k-medoids),
-   scored by the mean silhouette (Rousseeuw 1987) of its labels on the matrix
-   (``sklearn.metrics.silhouette_score`` with ``metric="precomputed"``).  A k-medoids fit needs only
-   the matrix, so the scan costs milliseconds per K instead of a pose-aware fit per K;
-3. the connected components of the symmetric 3-nearest-neighbour graph on the same matrix (von Luxburg
-   2007): classes whose members are each other's pose-searched nearest neighbours form one component
-   each.  The silhouette alone favours the coarser level when classes come in close pairs (a shape and
-   its mirror image: K = 2 and K = 4 scored 0.378 and 0.369 on four peg posts; a spectral eigengap with
-   self-tuning affinities also chose 2 on a smaller scene), while the nearest-neighbour graph keeps the
-   close pairs apart;
-4. K = the larger of the silhouette's argmax (the smallest K on ties) and the component count (clipped to
-   ``max_k``).  A K too large is undone by merging (below); a K too small is not undone by anything.
-   K = 1 is never proposed.  ``fit_auto`` then runs one full :class:`PoseKMeans` fit at that K.
+2. objects beyond Tukey's fence on nearest-neighbour distances (``seeding.outlying``: poorly observed or
+   broken-up objects, far from every other one) leave the matrix (unless fewer than min_k + 2 would
+   remain).  Each would be a singleton cluster of silhouette 0 that lifts the others' silhouettes: on
+   four peg-post classes with two such objects, the scan chose K = 2 (43 objects against one outlier,
+   silhouette 0.446) over the four classes (0.403 without the outliers);
+3. for every K in ``min_k..max_k`` a k-medoids partition of that matrix, the lowest-cost of alternating
+   k-medoids runs (Park & Jun 2009) from average-linkage clustering and from k-means++ medoid samplings
+   (``seeding.best_kmedoids``; average linkage alone chained mirror-image classes together and found the
+   four peg-post classes at NMI 0.64 where the lowest-cost run found them exactly), scored by the mean
+   silhouette (Rousseeuw 1987) of its labels on the matrix (``sklearn.metrics.silhouette_samples`` with
+   ``metric="precomputed"``).  A k-medoids fit needs only the matrix, so the scan costs milliseconds per
+   K instead of a pose-aware fit per K;
+4. the groups of the mutual 4-nearest-neighbour graph on the same matrix (``knn_components(mutual=True)``,
+   von Luxburg 2007): its connected components of at least 5 objects.  The silhouette alone favours the
+   coarser level when classes come in close pairs (a shape and its mirror image: K = 2 and K = 4 scored
+   0.378 and 0.369 on four peg posts; a spectral eigengap with self-tuning affinities also chose 2 on a
+   smaller scene), while the nearest-neighbour graph keeps the close pairs apart.  In the symmetric graph
+   one object whose nearest neighbours lie in two classes joins them (2 and 3 groups counted on scenes
+   of four peg-post classes); the mutual graph cuts such stragglers off;
+5. K = the larger of the silhouette's choice and the group count (clipped to ``max_k``).  The silhouette's
+   choice is its argmax (the smallest K on ties) or, with ``one_se``, the smallest K whose mean silhouette
+   is within one standard error (of the per-object silhouettes at the argmax) of the best (the one-SE
+   rule of Breiman et al. 1984): on small stores the silhouette is flat over a range of K and its argmax
+   splits classes whose members vary continuously.  A K too large is meant to be undone by merging
+   (below); a K too small is not undone by anything.  K = 1 is never proposed.  ``fit_auto`` then runs
+   one full :class:`PoseKMeans` fit at that K.
 
 Merging (``merge_close_prototypes`` / ``fit_auto``)
 ---------------------------------------------------
@@ -38,12 +48,12 @@ until no pair qualifies.
 Public API
 ----------
 - ``choose_k(source, *, max_k, scales=(1.0,), random_state=None, min_k=2, sample_size=600,
-  chunk_size=2048, distance=None) -> (k, table)``; table: list of dicts {k, silhouette, knn_components,
-  medoid_cost}; ``distance(X, W, P, V) -> (n, k)`` is the pose-minimised distance (default: the yaw x
+  chunk_size=2048, distance=None, one_se=False) -> (k, table)``; table: list of dicts {k, silhouette,
+  silhouette_se, knn_components, medoid_cost, outlying}; ``distance(X, W, P, V) -> (n, k)`` is the pose-minimised distance (default: the yaw x
   scale search of :mod:`posesearch`).
-- ``knn_components(S, neighbours=3) -> int``
+- ``knn_components(S, neighbours=3, *, mutual=False) -> int``
 - ``merge_close_prototypes(model, source, *, merge_threshold=0.5) -> (model, merges)``
-- ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, **engine_kwargs)
+- ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, one_se=False, **engine_kwargs)
   -> (model, info)``; info: {"k_chosen", "table", "merges", "k_final"}.
 """
 from __future__ import annotations
@@ -51,23 +61,23 @@ from __future__ import annotations
 from typing import Sequence
 
 import numpy as np
-from sklearn.cluster import AgglomerativeClustering
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
-from sklearn.metrics import silhouette_score
+from sklearn.metrics import silhouette_samples
 
 from ..progress import bar
 from .engine import PoseKMeans, Source, _gather
 from .posesearch import _check_scales
-from .seeding import DistanceFn, kmedoids, pairwise_pose_distances, symmetric_distances
+from .seeding import DistanceFn, best_kmedoids, outlying, pairwise_pose_distances, symmetric_distances
 from .tilts import tilt_pose_distances
 
-KNN_NEIGHBOURS = 3             # neighbours per object in the graph whose connected components count groups
+KNN_NEIGHBOURS = 3             # neighbours per object in the symmetric kNN graph (knn_components' default)
+MUTUAL_NEIGHBOURS = 4          # neighbours per object in the mutual kNN graph whose components count groups in choose_k
 
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
              min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048, progress=None,
-             distance: DistanceFn | None = None) -> tuple[int, list[dict]]:
+             distance: DistanceFn | None = None, one_se: bool = False) -> tuple[int, list[dict]]:
     """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
     (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows."""
     scales = _check_scales(scales)
@@ -78,36 +88,49 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
         raise ValueError(f"n_objects={N} must be > min_k={min_k} to compare clusterings")
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
-                     chunk_size=chunk_size, progress=progress, distance=distance)
+                     chunk_size=chunk_size, progress=progress, distance=distance, one_se=one_se)
 
 
-def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS) -> int:
-    """Connected components of the symmetric k-nearest-neighbour graph of a distance matrix S (n, n): i and j
-    are linked when either is among the other's ``neighbours`` nearest objects (the kNN graph of von Luxburg
-    2007, "A tutorial on spectral clustering", sec. 2.2).  Every component holds at least neighbours + 1
-    objects, so a lone outlier joins its nearest group instead of counting as one."""
+def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS, *, mutual: bool = False) -> int:
+    """Connected components of the k-nearest-neighbour graph of a distance matrix S (n, n) (von Luxburg
+    2007, "A tutorial on spectral clustering", sec. 2.2).  Symmetric graph (``mutual`` False): i and j are
+    linked when either is among the other's ``neighbours`` nearest objects; every component holds at least
+    neighbours + 1 objects, so a lone outlier joins its nearest group instead of counting as one.  Mutual
+    graph: linked when each is among the other's nearest; an object whose nearest objects lie in two groups
+    then no longer bridges them, and only components of at least neighbours + 1 objects are counted (the
+    smaller ones are the stragglers the mutual graph cuts off)."""
     n = len(S)
     k = min(neighbours, n - 1)
     nb = np.argsort(S + np.diag(np.full(n, np.inf)), axis=1, kind="stable")[:, :k]
     rows = np.repeat(np.arange(n), k)
     graph = csr_matrix((np.ones(n * k), (rows, nb.ravel())), shape=(n, n))
-    return int(connected_components(graph, directed=False)[0])
+    if not mutual:
+        return int(connected_components(graph, directed=False)[0])
+    graph = graph.multiply(graph.T)
+    _, comp = connected_components(graph, directed=False)
+    return int(max(1, np.sum(np.bincount(comp) >= k + 1)))
 
 
-def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None):
+def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None,
+              one_se=False):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     Xs, Ws = _gather(source, idx, chunk_size)
     S = pairwise_pose_distances(Xs, Ws, distance, scales=scales, progress=progress, what="choose K")
-    components = knn_components(S)
+    out = outlying(S)
+    if len(S) - out.sum() >= min_k + 2:
+        S = S[np.ix_(~out, ~out)]
+    components = knn_components(S, MUTUAL_NEIGHBOURS, mutual=True)
     table = []
-    for k in range(min_k, min(max_k, len(idx) - 1) + 1):
-        start = AgglomerativeClustering(n_clusters=k, metric="precomputed", linkage="average").fit_predict(S)
-        labels, cost = kmedoids(S, start)
+    for k in range(min_k, min(max_k, len(S) - 1) + 1):
+        labels, cost = best_kmedoids(S, k, rng)
         n_lab = np.unique(labels).size
-        score = float(silhouette_score(S, labels, metric="precomputed")) if 1 < n_lab < len(idx) else -1.0
-        table.append({"k": k, "silhouette": score, "knn_components": components, "medoid_cost": cost})
-    by_silhouette = max(table, key=lambda r: (r["silhouette"], -r["k"]))["k"]
+        s = silhouette_samples(S, labels, metric="precomputed") if 1 < n_lab < len(S) else np.full(len(S), -1.0)
+        table.append({"k": k, "silhouette": float(s.mean()), "silhouette_se": float(s.std() / np.sqrt(len(s))),
+                      "knn_components": components, "medoid_cost": cost, "outlying": int(len(idx) - len(S))})
+    top = max(table, key=lambda r: (r["silhouette"], -r["k"]))
+    by_silhouette = (min(r["k"] for r in table if r["silhouette"] >= top["silhouette"] - top["silhouette_se"])
+                     if one_se else top["k"])
     return int(max(by_silhouette, min(components, table[-1]["k"]))), table
 
 
@@ -149,11 +172,12 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
 
 
 def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
-             merge_threshold: float = 0.5, sample_size: int = 600, **engine_kwargs) -> tuple[PoseKMeans, dict]:
-    """Choose K, fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
+             merge_threshold: float = 0.5, sample_size: int = 600, one_se: bool = False,
+             **engine_kwargs) -> tuple[PoseKMeans, dict]:
+    """Choose K (``one_se``: see ``choose_k``), fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
     rng = np.random.default_rng(random_state)
     k, table = choose_k(source, max_k=max_k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
-                        sample_size=sample_size, progress=engine_kwargs.get("progress"))
+                        sample_size=sample_size, progress=engine_kwargs.get("progress"), one_se=one_se)
     model = PoseKMeans(n_clusters=k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                        **engine_kwargs).fit(source)
     model, merges = merge_close_prototypes(model, source, merge_threshold=merge_threshold)

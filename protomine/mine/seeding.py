@@ -17,7 +17,9 @@ How
    twice the largest finite distance).  The distance is a function argument ``distance(X, W, P, V) ->
    (n, k)`` (default: ``posesearch.pose_distances(...).D`` over the engine's scales), so a pose search over
    more than yaw and scale slots in unchanged.
-2. ``PoseSeeder.partition(K, restart, rng)``: K medoids on that matrix: restart 0 from average-linkage
+2. ``PoseSeeder.partition(K, restart, rng)``: K medoids on that matrix without its outlying objects
+   (``outlying``: poorly observed or broken-up objects, far from every other one, would otherwise each take a
+   medoid of their own at average linkage, and K true groups get K minus the outliers medoids): restart 0 from average-linkage
    clustering (``sklearn.cluster.AgglomerativeClustering``, precomputed distances), every other restart
    from k-means++-style D^2 sampling of medoids (Arthur & Vassilvitskii 2007, with distances to medoids in
    place of distances to centroids), each refined by alternating k-medoids (Park & Jun 2009).  The other
@@ -29,6 +31,8 @@ Public API
 - ``symmetric_distances(D) -> S``; ``kmedoids(S, labels, max_iter=30) -> (labels, cost)``
 - ``pairwise_pose_distances(X, W, distance=None, *, scales=(1.0,), progress=None) -> S``
 - ``kmedoids_plusplus(S, K, rng) -> medoids (K,)``
+- ``best_kmedoids(S, K, rng, starts=KMEDOIDS_STARTS) -> (labels, cost)``
+- ``outlying(S) -> (n,) bool``: objects far from every other one (Tukey's fence on nearest-neighbour distances)
 - ``PoseSeeder(X, W, *, scales, rng, size=SEED_SIZE, distance=None)``; ``.partition(K, restart, rng) ->
   (labels (n,), refs (K,))``; ``.S`` (m, m), ``.index`` (m,) rows of X in the matrix.
 """
@@ -109,6 +113,42 @@ def kmedoids_plusplus(S: np.ndarray, K: int, rng: np.random.Generator) -> np.nda
     return np.array(medoids)
 
 
+KMEDOIDS_STARTS = 24  # D^2-sampled starts besides average linkage in best_kmedoids
+
+
+def best_kmedoids(S: np.ndarray, K: int, rng: np.random.Generator, starts: int = KMEDOIDS_STARTS
+                  ) -> tuple[np.ndarray, float]:
+    """The lowest-cost alternating k-medoids partition (labels (n,), cost) of the (n, n) matrix S among runs
+    from average-linkage clustering and from ``starts`` k-means++ medoid samplings (module docstring)."""
+    start = AgglomerativeClustering(n_clusters=K, metric="precomputed", linkage="average").fit_predict(S)
+    best = kmedoids(S, start)
+    for _ in range(starts):
+        med = kmedoids_plusplus(S, K, rng)
+        start = np.argmin(S[:, med], axis=1)
+        start[med] = np.arange(K)
+        run = kmedoids(S, start)
+        if run[1] < best[1] - 1e-12:
+            best = run
+    return best
+
+
+OUTLIER_FENCE = 1.5  # Tukey's inner fence: Q3 + 1.5 IQR
+
+
+def outlying(S: np.ndarray, fence: float = OUTLIER_FENCE) -> np.ndarray:
+    """(n,) True for objects whose nearest-neighbour distance in the (n, n) distance matrix S lies above
+    Tukey's upper fence Q3 + fence x IQR of all objects' nearest-neighbour distances (Tukey 1977,
+    "Exploratory Data Analysis", from memory).  Such an object is farther from every other object than
+    the members of any group are from their nearest fellow: it is not a good medoid, and a clustering
+    criterion that sees it spends a cluster on it.  No object is outlying among fewer than 4."""
+    n = len(S)
+    if n < 4:
+        return np.zeros(n, bool)
+    nn = np.min(S + np.diag(np.full(n, np.inf)), axis=1)
+    q1, q3 = np.quantile(nn, [0.25, 0.75])
+    return nn > q3 + fence * (q3 - q1)
+
+
 class PoseSeeder:
     """Seeds for the engine's restarts from pose-searched distances (module docstring).
 
@@ -125,16 +165,27 @@ class PoseSeeder:
         self.S = pairwise_pose_distances(X[self.index], W[self.index], distance, scales=scales)
 
     def medoid_labels(self, K: int, restart: int, rng: np.random.Generator) -> np.ndarray:
-        """Labels (m,) of the matrix objects: average linkage on restart 0, k-means++ medoids otherwise;
-        refined by alternating k-medoids."""
-        S = self.S
+        """Labels (m,) of the matrix objects: ``best_kmedoids`` on restart 0, one k-means++ start refined
+        by alternating k-medoids otherwise, on the objects that are not ``outlying`` (all when fewer than
+        K + 1 remain); the outlying ones join their nearest medoid."""
+        core = ~outlying(self.S)
+        if core.sum() < K + 1:
+            core[:] = True
+        S = self.S[np.ix_(core, core)]
         if restart == 0:
-            start = AgglomerativeClustering(n_clusters=K, metric="precomputed", linkage="average").fit_predict(S)
+            lab_core = best_kmedoids(S, K, rng)[0]
         else:
             med = kmedoids_plusplus(S, K, rng)
             start = np.argmin(S[:, med], axis=1)
             start[med] = np.arange(K)
-        return kmedoids(S, start)[0]
+            lab_core = kmedoids(S, start)[0]
+        if core.all():
+            return lab_core
+        medoids = np.flatnonzero(core)[[np.flatnonzero(lab_core == k)[np.argmin(S[np.ix_(lab_core == k, lab_core == k)].sum(axis=1))]
+                                        for k in range(K)]]
+        labels = np.argmin(self.S[:, medoids], axis=1)
+        labels[core] = lab_core
+        return labels
 
     def partition(self, K: int, restart: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
         """(labels (n,), refs (K,)): every subsample object's cluster and each cluster's medoid (row of X)."""
