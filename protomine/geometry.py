@@ -61,9 +61,12 @@ def depth_to_points(depth: np.ndarray, K: np.ndarray, mask: np.ndarray | None = 
     h, w = depth.shape
     v, u = np.divmod(idx, w)
     z = depth.reshape(-1)[idx].astype(np.float64)
-    x = (u - K[0, 2]) * z / K[0, 0]
-    y = (v - K[1, 2]) * z / K[1, 1]
-    return np.stack([x, y, z], axis=1), idx
+    return pixels_to_camera(u, v, z, K), idx
+
+
+def pixels_to_camera(u: np.ndarray, v: np.ndarray, z: np.ndarray, K: np.ndarray) -> np.ndarray:
+    """Camera points (N, 3) of pixels (column u, row v) (N,) at depths z (N,) metres (pinhole model, K (3, 3))."""
+    return np.stack([(u - K[0, 2]) * z / K[0, 0], (v - K[1, 2]) * z / K[1, 1], z], axis=1)
 
 
 def camera_to_pixel(points_cam: np.ndarray, K: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

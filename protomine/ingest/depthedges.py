@@ -30,14 +30,19 @@ def flying_pixels(depth: np.ndarray) -> np.ndarray:
     valid = d > 0
     hi = maximum_filter(np.where(valid, d, 0.0), size=FLYING_WINDOW)
     lo = minimum_filter(np.where(valid, d, np.inf), size=FLYING_WINDOW)
+    return _between(d, lo, hi)
+
+
+def _between(d: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """Readings d (0 = none) more than the tolerance above their window's least reading lo and below its
+    greatest hi: the flying-pixel test, given the window's extremes."""
     tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * d)
-    return valid & (d - lo > tol) & (hi - d > tol)
+    return (d > 0) & (d - lo > tol) & (hi - d > tol)
 
 
 def steady_depth(depth: np.ndarray) -> np.ndarray:
     """depth (H, W) with its flying pixels set to 0 (no reading)."""
     return np.where(flying_pixels(depth), 0.0, depth)
-
 
 
 def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarray:
@@ -72,8 +77,6 @@ def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarr
     for i in range(1, FLYING_WINDOW):
         np.maximum(hi, row_hi[i:i + ph], out=hi)
         np.minimum(lo, row_lo[i:i + ph], out=lo)
-    c = d[half:half + ph, half:half + pw]
-    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * c)
-    flying = (c > 0) & (c - lo > tol) & (hi - c > tol)
+    flying = _between(d[half:half + ph, half:half + pw], lo, hi)
     steady = np.where(flying, 0.0, depth[r0:r1, u0:u1])
     return steady.reshape(-1).take((np.asarray(r) - r0) * pw + (np.asarray(u) - u0))

@@ -30,7 +30,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..geometry import camera_to_world, plane_basis, world_to_pixel
+from ..geometry import camera_to_world, pixels_to_camera, plane_basis, world_to_pixel
 from .depthedges import steady_depth_at
 
 CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
@@ -148,8 +148,7 @@ def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: Obj
     turns into a wall of non-free cells where an object lying that way shows free space."""
     own = np.zeros(v.depth.size, bool)
     own[v.pixels] = True
-    pc = np.stack([(u - v.K[0, 2]) * d / v.K[0, 0], (r - v.K[1, 2]) * d / v.K[1, 1], d], axis=1)
-    near = np.abs((camera_to_world(pc, v.cam_to_world) - frame.origin) @ frame.up) <= tol
+    near = np.abs((camera_to_world(pixels_to_camera(u, r, d, v.K), v.cam_to_world) - frame.origin) @ frame.up) <= tol
     h, w = v.depth.shape
     return (d > 0) & near & ~own[np.clip(r, 0, h - 1) * w + np.clip(u, 0, w - 1)]  # d = 0 outside the image
 
@@ -185,8 +184,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         z = v.depth.reshape(-1)[v.pixels]
         good = z > 0
         vv, uu, z = vv[good], uu[good], z[good]
-        pc = np.stack([(uu - v.K[0, 2]) * z / v.K[0, 0], (vv - v.K[1, 2]) * z / v.K[1, 1], z], axis=1)
-        pw = camera_to_world(pc, v.cam_to_world)
+        pw = camera_to_world(pixels_to_camera(uu, vv, z, v.K), v.cam_to_world)
         rgb = v.rgb.reshape(-1, 3)[v.pixels[good]].astype(np.float64) / 255.0
         sp = _splat(grid, frame, pw, rgb, basis).reshape(4, -1)
         # point density depends on resolution and distance: measure splat weight against this frame's

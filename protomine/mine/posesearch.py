@@ -406,11 +406,6 @@ def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], 
     return d.view(A, M, n)
 
 
-def _best_pose_torch(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """d (n, K, S, A) tensor -> D (n, K), yaw_deg (n, K), scale (n, K); same rule as :func:`_best_pose`."""
-    return _best_pose_nska(d.permute(0, 2, 1, 3), scales)
-
-
 def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """d (n, S, K, A) tensor (any strides; :func:`_distances_from_spectra` leaves the shifts outermost) -> D (n, K),
     yaw_deg (n, K), scale (n, K); same rule as :func:`_best_pose` (the first minimum in scale-major, then shift
