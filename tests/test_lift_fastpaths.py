@@ -12,7 +12,7 @@ from scipy.spatial.transform import Rotation
 from protomine.geometry import plane_basis
 from protomine.ingest.depthedges import steady_depth, steady_depth_at
 from protomine.ingest.volume import Grid, ObjectFrame, _splat
-from protomine.label.matcher import face_poses
+from protomine.mine.faces import face_poses
 from protomine.mine.faces import face_pose
 from protomine.mine.symmetry import group_elements
 from protomine.records import mask_to_rle, pixels_to_rle

@@ -95,3 +95,25 @@ def face_pose(R: np.ndarray, face_up: np.ndarray, face_symmetry: np.ndarray, gro
     code = np.asarray(face_symmetry)[face]
     Rr, yaw = reduce_rotation(R, np.where(code == 0, 0.0, 360.0 / np.maximum(code, 1)))
     return face.astype(np.int64), Rr, yaw
+
+
+def face_poses(R: np.ndarray, face_up: np.ndarray, face_symmetry: np.ndarray, groups: list[np.ndarray]
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``face_pose`` for every prototype at once: rotations R (n, K, 3, 3) of n objects against K
+    prototypes with faces face_up (K, F, 3), face_symmetry (K, F) (-1 = padding) and symmetry groups
+    (K of (G, 3, 3)) -> face (n, K), reduced rotation (n, K, 3, 3), yaw_deg (n, K).
+
+    The same rule as face_pose (the rotation modulo the group, the valid face whose up is nearest R^T e_z,
+    the yaw modulo that face's period), with the face choice and the reduction run once over every pair
+    instead of once per prototype (a Python loop over K costs more than matching a frame's objects)."""
+    R = np.array(R, np.float64).reshape(-1, len(groups), 3, 3)
+    n, K = R.shape[:2]
+    for k, g in enumerate(groups):
+        if g is not None and len(g) > 1 and n:
+            R[:, k] = sym.reduce_modulo_group(R[:, k], g)
+    fs = np.asarray(face_symmetry)
+    cos = np.einsum("nki,kfi->nkf", R[:, :, 2, :], np.asarray(face_up, np.float64))
+    face = np.argmax(np.where(fs[None] >= 0, cos, -np.inf), axis=2)             # first of equals, as face_pose
+    code = fs[np.arange(K)[None, :], face]
+    Rr, yaw = reduce_rotation(R.reshape(-1, 3, 3), np.where(code == 0, 0.0, 360.0 / np.maximum(code, 1)).reshape(-1))
+    return face.astype(np.int64), Rr.reshape(n, K, 3, 3), yaw.reshape(n, K)
