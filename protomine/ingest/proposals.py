@@ -41,7 +41,8 @@ STAND_INSET_M = 0.003       # ... and its centre of mass must lie this far insid
 LOW_FLOOR_M = 0.002         # the low band (grown into objects) starts this high over the plane ...
 LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy sensors
 SMOOTH_WINDOW = 5           # pixels: median window of the smoothed low band (``smoothed_band``)
-LOW_GROW_PIXELS = 25        # rings of pixels an object grows into its low band at most
+LOW_GROW_M = 0.10           # an object grows into its low band at most this far (metres) from its grouped voxels
+                            # (a base disc or flange reaching out beyond the body standing over it)
 VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
 GROW_CHROMA = 0.08          # chromaticity distance within which an object grows into its low band (measured on
                             # the demo: 98% of an object's pixels lie within 0.03-0.04 of its median)
@@ -392,6 +393,7 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
     tree = cKDTree(tree_pts)
     props = [Proposal(f"{cap.name}/p{i:03d}", f"p{i:03d}", fr, centre, 0, {}) for i, (_, fr, centre) in enumerate(clusters)]
     floor = low_floor(plane)
+    own_trees = [cKDTree(t[0]) for t in clusters]
     grown: list[list[np.ndarray]] = [[] for _ in props]
     seeds_of, chroma_of = [], []
     for fd, s in zip(frames, above_sel):
@@ -419,11 +421,19 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         steady[fd.pixels] = fd.steady
         band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
                                                                                above_plane_margin(plane, cfg)))
+        labels = _release_low_strays(labels, h, fd, point_of_frame(fd), ch, label_chroma, own_trees)
         seeds = labels.copy()
         labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, band & steady.reshape(fd.depth.shape),
-                                    LOW_GROW_PIXELS, ch.reshape(fd.depth.shape + (3,)), label_chroma).reshape(-1)
+                                    grow_steps(fd.depth, seeds >= 0, cap.intrinsics.K, LOW_GROW_M),
+                                    ch.reshape(fd.depth.shape + (3,)), label_chroma).reshape(-1)
         point_of = np.full(fd.depth.size, -1)
         point_of[fd.pixels] = np.arange(len(fd.pixels))
+        # the rings are counted at the nearest object's depth: farther objects stop at LOW_GROW_M in metres
+        new = np.flatnonzero((labels >= 0) & (seeds < 0))
+        for i in np.unique(labels[new]):
+            sel = new[labels[new] == i]
+            far = own_trees[i].query(fd.points[point_of[sel]], distance_upper_bound=LOW_GROW_M)[0] == np.inf
+            labels[sel[far]] = -1
         # where two bases of one colour touch, the image-space growth of one runs on over the other's base
         # (no depth step, no colour change between them); each base lies nearest its own object's voxels, so
         # a grown reading nearest the voxels of another object of its colour is left to neither
@@ -443,15 +453,14 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
                 p.n_points += len(pix)
                 grown[i].append(fd.points[point_of[pix]])
     out: list[Proposal | None] = []
-    for p, g, (vx, _, _) in zip(props, grown, clusters):
+    for p, g in zip(props, grown):
         if p.n_points == 0:
             out.append(None)
             continue
         # the frame from every point the object holds now, its low band included (a base disc widens the
-        # footprint); only points within reach of its grouped voxels, so no stray table pixel moves it
-        pts = np.concatenate(g)
-        near = cKDTree(vx).query(pts, distance_upper_bound=3 * eps)[0] < np.inf
-        p.frame, p.center_world = object_frame(np.concatenate([vx, pts[near]]), plane)
+        # footprint), like a mask's pixels
+        # (each within LOW_GROW_M of its grouped voxels: a base disc reaches farther out than its pegs do)
+        p.frame, p.center_world = object_frame(np.concatenate(g), plane)
         out.append(p)
     return out
 
@@ -491,6 +500,51 @@ def smoothed_band(h: np.ndarray, valid: np.ndarray, plane: PlaneFit, margin: flo
         return np.zeros(h.shape, bool)
     sigma = 1.4826 * float(np.median(np.abs(hs[near] - np.median(hs[near]))))
     return valid & (hs > max(LOW_FLOOR_M, LOW_FLOOR_SIGMA * sigma))
+
+
+def point_of_frame(fd: FrameData) -> np.ndarray:
+    """(H * W,) index of each pixel's reading in ``fd.points`` (-1: no reading)."""
+    out = np.full(fd.depth.size, -1)
+    out[fd.pixels] = np.arange(len(fd.pixels))
+    return out
+
+
+def _release_low_strays(labels: np.ndarray, h: np.ndarray, fd: FrameData, point_of: np.ndarray, ch: np.ndarray,
+                        label_chroma: np.ndarray, trees: list) -> np.ndarray:
+    """Readings (flat labels (H * W,)) low over the plane (under SUPPORT_BAND_M) that are not of their object's
+    colour (chromaticity farther than GROW_CHROMA) but of a neighbour's whose voxels lie within LOW_GROW_M are
+    left to no object (the neighbour's growth may take them).  Where two bases touch, the noise peaks of
+    one base's rim stand over the grouping margin next to the other object's voxels; in the object's footprint
+    (a minimum enclosing circle) a few of them move the base centre by millimetres.  h: (H * W,) heights,
+    ch: (H * W, 3) chromaticity (NaN: too dark), label_chroma (L, 3), trees: per object a cKDTree of its voxels."""
+    cand = np.flatnonzero((labels >= 0) & (h < SUPPORT_BAND_M) & ~np.isnan(ch[:, 0]))
+    if not len(cand) or len(label_chroma) < 2:
+        return labels
+    off = np.linalg.norm(ch[cand] - label_chroma[labels[cand]], axis=1) > GROW_CHROMA
+    cand = cand[off]
+    if not len(cand):
+        return labels
+    pts = fd.points[point_of[cand]]
+    other = np.zeros(len(cand), bool)
+    for j, t in enumerate(trees):
+        alike = (np.linalg.norm(ch[cand] - label_chroma[j], axis=1) <= GROW_CHROMA) & (labels[cand] != j)
+        if alike.any():
+            near = t.query(pts[alike], distance_upper_bound=LOW_GROW_M)[0] < np.inf
+            other[np.flatnonzero(alike)[near]] = True
+    out = labels.copy()
+    out[cand[other]] = -1
+    return out
+
+
+def grow_steps(depth: np.ndarray, seeds: np.ndarray, K: np.ndarray, reach_m: float) -> int:
+    """Rings of pixels that span ``reach_m`` metres at the nearest seed reading of a frame: depth (H, W)
+    metres, seeds (H, W) or flat bool, K the 3x3 intrinsics (pinhole: a length L at depth z spans f L / z
+    pixels).  At most the image's larger side."""
+    z = depth.reshape(-1)[seeds.reshape(-1)]
+    z = z[z > 0]
+    if not len(z):
+        return 0
+    return int(min(math.ceil(reach_m * max(K[0, 0], K[1, 1]) / float(z.min())), max(depth.shape)))
 
 
 def low_floor(plane: PlaneFit) -> float:
