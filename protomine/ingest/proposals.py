@@ -423,9 +423,19 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
                                                                                above_plane_margin(plane, cfg)))
         labels = _release_low_strays(labels, h, fd, point_of_frame(fd), ch, label_chroma, own_trees)
         seeds = labels.copy()
-        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, band & steady.reshape(fd.depth.shape),
-                                    grow_steps(fd.depth, seeds >= 0, cap.intrinsics.K, LOW_GROW_M),
-                                    ch.reshape(fd.depth.shape + (3,)), label_chroma).reshape(-1)
+        steps = grow_steps(fd.depth, seeds >= 0, cap.intrinsics.K, LOW_GROW_M)
+        grow_band = band & steady.reshape(fd.depth.shape)
+        chi = ch.reshape(fd.depth.shape + (3,))
+        # first from the bodies only (low readings set free, ``_release_low_seeds``); low readings no body
+        # reached (a base whose band the noise broke up) keep their object, and everything grows on from there
+        free_low = _release_low_seeds(labels, h, ON_PLANE * above_plane_margin(plane, cfg))
+        labels = grow_into_low_band(free_low.reshape(fd.depth.shape), fd.depth, grow_band, steps, chi,
+                                    label_chroma).reshape(-1)
+        back = (labels < 0) & (seeds >= 0)
+        labels[back] = seeds[back]
+        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, grow_band, steps, chi,
+                                    label_chroma).reshape(-1)
+        seeds = np.where(labels == seeds, seeds, -1)          # readings whose object changed count as grown
         point_of = np.full(fd.depth.size, -1)
         point_of[fd.pixels] = np.arange(len(fd.pixels))
         # the rings are counted at the nearest object's depth: farther objects stop at LOW_GROW_M in metres
@@ -500,6 +510,19 @@ def smoothed_band(h: np.ndarray, valid: np.ndarray, plane: PlaneFit, margin: flo
         return np.zeros(h.shape, bool)
     sigma = 1.4826 * float(np.median(np.abs(hs[near] - np.median(hs[near]))))
     return valid & (hs > max(LOW_FLOOR_M, LOW_FLOOR_SIGMA * sigma))
+
+
+def _release_low_seeds(labels: np.ndarray, h: np.ndarray, low: float) -> np.ndarray:
+    """Flat labels (H * W,) with the readings lower than ``low`` (m over the plane, h (H * W,)) of every object
+    that also holds readings above it in the frame set free: the growth into the low band claims them again,
+    from the body outwards.  Where two bases of one colour touch, the noise peaks of one base's rim stand
+    over the grouping margin and sit in the fused voxels of whichever object is nearest; seeded there, the
+    growth of the wrong object would start on the other's base.  Grown from the bodies, the bases part
+    where the growth fronts meet."""
+    body = np.unique(labels[(labels >= 0) & (h >= low)])
+    out = labels.copy()
+    out[(labels >= 0) & (h < low) & np.isin(labels, body)] = -1
+    return out
 
 
 def point_of_frame(fd: FrameData) -> np.ndarray:
