@@ -5,7 +5,8 @@ from geometry alone: points above the plane (by ``above_plane_m``, or 3x the pla
 sensors), fused across frames in the world
 frame (static objects stay put there), voxel down-sampled, grouped by DBSCAN (scikit-learn), filtered
 by size; each object then gets its per-frame pixels by projecting back (a pixel belongs to the object
-whose fused points are nearest to its own 3-D point, within the DBSCAN radius).
+whose fused points are nearest to its own 3-D point, within the DBSCAN radius), then grows into the
+readings under the margin (a thin base) from the body outwards, up to LOW_GROW_M in metres.
 
 The object frame (see protomine.geometry): origin at the base centre on the plane (the centre of the
 minimum enclosing circle of the footprint, robust to one-sided views of round objects), z = up.
@@ -421,23 +422,15 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         steady[fd.pixels] = fd.steady
         band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
                                                                                above_plane_margin(plane, cfg)))
-        labels = _release_low_strays(labels, h, fd, point_of_frame(fd), ch, label_chroma, own_trees)
+        point_of = point_of_frame(fd)
+        labels = _release_low_strays(labels, h, fd, point_of, ch, label_chroma, own_trees)
         seeds = labels.copy()
         steps = grow_steps(fd.depth, seeds >= 0, cap.intrinsics.K, LOW_GROW_M)
         grow_band = band & steady.reshape(fd.depth.shape)
         chi = ch.reshape(fd.depth.shape + (3,))
-        # first from the bodies only (low readings set free, ``_release_low_seeds``); low readings no body
-        # reached (a base whose band the noise broke up) keep their object, and everything grows on from there
-        free_low = _release_low_seeds(labels, h, ON_PLANE * above_plane_margin(plane, cfg))
-        labels = grow_into_low_band(free_low.reshape(fd.depth.shape), fd.depth, grow_band, steps, chi,
-                                    label_chroma).reshape(-1)
-        back = (labels < 0) & (seeds >= 0)
-        labels[back] = seeds[back]
-        labels = grow_into_low_band(labels.reshape(fd.depth.shape), fd.depth, grow_band, steps, chi,
-                                    label_chroma).reshape(-1)
+        labels = grow_from_bodies(labels, h, ON_PLANE * above_plane_margin(plane, cfg), fd.depth, grow_band, steps,
+                                  chi, label_chroma)
         seeds = np.where(labels == seeds, seeds, -1)          # readings whose object changed count as grown
-        point_of = np.full(fd.depth.size, -1)
-        point_of[fd.pixels] = np.arange(len(fd.pixels))
         # the rings are counted at the nearest object's depth: farther objects stop at LOW_GROW_M in metres
         new = np.flatnonzero((labels >= 0) & (seeds < 0))
         for i in np.unique(labels[new]):
@@ -523,6 +516,21 @@ def _release_low_seeds(labels: np.ndarray, h: np.ndarray, low: float) -> np.ndar
     out = labels.copy()
     out[(labels >= 0) & (h < low) & np.isin(labels, body)] = -1
     return out
+
+
+def grow_from_bodies(labels: np.ndarray, h: np.ndarray, low: float, depth: np.ndarray, band: np.ndarray, steps: int,
+                     chroma: np.ndarray | None = None, label_chroma: np.ndarray | None = None) -> np.ndarray:
+    """Flat labels (H * W,) grown into ``band`` (``grow_into_low_band``) first from the bodies only: the
+    readings under ``low`` of objects that stand over it in the frame are set free (``_release_low_seeds``)
+    and claimed again by the growth; low readings no body reached (a base whose band the noise broke up)
+    keep their object, and everything grows on from there.  h: (H * W,) heights over the plane (m); depth,
+    band (H, W); chroma, label_chroma as in ``grow_into_low_band``."""
+    shape = depth.shape
+    first = grow_into_low_band(_release_low_seeds(labels, h, low).reshape(shape), depth, band, steps, chroma,
+                               label_chroma).reshape(-1)
+    back = (first < 0) & (labels >= 0)
+    first[back] = labels[back]
+    return grow_into_low_band(first.reshape(shape), depth, band, steps, chroma, label_chroma).reshape(-1)
 
 
 def point_of_frame(fd: FrameData) -> np.ndarray:
