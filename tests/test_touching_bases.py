@@ -137,20 +137,3 @@ def test_touching_bases_seen_close_keep_their_footprint_and_base_centre(tmp_path
     assert seen == {1, 2}
     for share, radius, off in rows:
         assert share >= 0.9 and abs(radius) < 0.05 and off < BASE_OFF_M[colours], rows
-
-
-def test_a_groups_chromaticity_ignores_how_each_of_its_readings_is_shaded():
-    """Shading scales a reading's (r, g, b) and leaves its chromaticity (r, g, b) / (r + g + b) alone (common
-    practice, e.g. Gevers & Smeulders 1999 on normalised rgb): a group's chromaticity must not change when
-    each of its colours is darkened by its own factor, and equals the per-component median of the readings'
-    chromaticities (computed here from the definition).  The chromaticity of per-channel medians fails this
-    (measured on the angles family: one post's lit and shaded halves 0.126 apart)."""
-    from protomine.ingest.convexity import _chroma
-    rng = np.random.default_rng(4)
-    rgb = rng.uniform(80, 250, (200, 3))
-    shaded = rgb * rng.uniform(0.4, 1.0, (200, 1))
-    ref = np.median(rgb / rgb.sum(axis=1, keepdims=True), axis=0)
-    assert np.allclose(_chroma(rgb), ref)
-    assert np.allclose(_chroma(shaded), ref)
-    med = np.median(shaded, axis=0)
-    assert np.linalg.norm(med / med.sum() - ref) > 1e-3          # the per-channel median moves

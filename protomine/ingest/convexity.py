@@ -43,7 +43,6 @@ SEAM_LONG = 0.05         # ... with any neighbour of its colour at this share, n
                          # touching post of another 0.009-0.013)
 SAME_CHROMA = 0.03       # chromaticity distance below which two groups have one colour (measured: one object's
                          # blocks 0.004; touching demo objects 0.15-0.6)
-DARK_RGB = 60             # colours darker than this (sum of 8-bit r, g, b) have no usable chromaticity
 REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
 UNDER_MIN = 10           # voxels under a part's footprint that make a neighbour its support
 
@@ -245,18 +244,9 @@ def _join_bases(points: np.ndarray, lab: np.ndarray, heights: np.ndarray, low, r
 
 
 def _chroma(rgb: np.ndarray) -> np.ndarray:
-    """Median chromaticity (3,) of colours (M, 3): per colour (r, g, b) / (r + g + b), then the median of
-    each component, over the colours at least DARK_RGB bright (all of them when none is).  Each colour's
-    chromaticity first: the per-channel medians of the raw colours of a shaded object mix a bright face's
-    red with a dark face's green, a colour no part of it has."""
-    rgb = np.asarray(rgb, dtype=np.float64)
-    b = rgb.sum(axis=1)
-    ok = b >= DARK_RGB
-    if not ok.any():
-        ok = b > 0
-    if not ok.any():
-        return np.full(3, 1.0 / 3.0)
-    return np.median(rgb[ok] / b[ok, None], axis=0)
+    """Median chromaticity (3,) (r, g, b) / (r + g + b) of colours (M, 3)."""
+    c = np.median(rgb, axis=0)
+    return c / max(float(c.sum()), 1e-9)
 
 
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float) -> np.ndarray:
@@ -273,7 +263,10 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
     ids = [int(l) for l in np.unique(lab[lab >= 0])]
     if len(ids) < 2:
         return lab
-    med = {l: _chroma(colours[lab == l]) for l in ids}
+    med = {}
+    for l in ids:
+        c = np.median(colours[lab == l], axis=0)
+        med[l] = c / max(c.sum(), 1e-9)
     trees = {l: cKDTree(points[lab == l]) for l in ids}
     parent = {l: l for l in ids}
 
