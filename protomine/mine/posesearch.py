@@ -31,8 +31,11 @@ Expanding the square gives, for every shift s at once, four cross-correlations a
 By the correlation theorem ``corr(f, g) = irfft(rfft(f) * conj(rfft(g)))``, so per azimuthal frequency
 the sums over (C, R, H) become one complex matrix product (prototypes x features) @ (features x
 objects), run as two real ones (real and imaginary prototype parts stacked, against the objects' real
-and imaginary parts) whose four partial products the inverse transform combines; the denominator involves w alone, so its product runs on the w block of
-the object factors only.  Object and prototype factors share one layout (frequency, item, feature), and
+and imaginary parts) whose four partial products the inverse transform combines; the denominator involves
+w alone, so its product runs on the w block of the object factors only.  The data are real, so the rfft's
+bin 0 (and the Nyquist bin when A is even) are real: spectra are stored as A real rows (the F real parts,
+then the imaginary parts of the complex bins only, ``spectrum_rows``), and those bins need one real
+product instead of a complex one (70 instead of 76 (M, f) @ (f, n) products for A = 36).  Object and prototype factors share one layout (frequency, item, feature), and
 the products' output (frequency, prototype, object) is what the inverse transform reads as one matrix,
 so distances come out (shift, prototype, object) without a transposing copy anywhere.  Objects are
 processed in chunks so memory is bounded by the chunk size.  The pose bank orders its scaled prototypes
@@ -215,11 +218,40 @@ def _best_pose(allD: np.ndarray, scales: tuple[float, ...]) -> tuple[np.ndarray,
 
 # --- fast kernel ---------------------------------------------------------------------------
 
+def spectrum_rows(A: int) -> tuple[int, int]:
+    """(F, Fc) of the real spectra layout for A azimuth bins: F = A // 2 + 1 rfft bins, of which bins 1..Fc
+    (Fc = A - F) are complex and the others (bin 0, and the Nyquist bin F - 1 when A is even) real.
+
+    Real spectra hold A rows: [Re_0 .. Re_{F-1}, Im_1 .. Im_Fc].  The imaginary parts of the real bins are 0
+    for real data (conjugate symmetry), so they are not stored: A real numbers carry the spectrum of A real
+    samples exactly, and the products and transforms skip the rows that would be zeros."""
+    F = A // 2 + 1
+    return F, A - F
+
+
+def _real_bins(A: int) -> slice:
+    """Rows of the real spectra (all real parts come first) holding the real-only bins: 0, and F - 1 if A is even."""
+    F, Fc = spectrum_rows(A)
+    return slice(0, F, F - 1) if F - 1 > Fc else slice(0, 1)
+
+
 def _dft_matrix(A: int) -> torch.Tensor:
-    """(2F, A) real DFT matrix, F = A // 2 + 1: rows [cos; -sin] so that M @ f = [Re rfft(f); Im rfft(f)]."""
-    k = np.arange(A // 2 + 1)[:, None]
-    ang = 2.0 * np.pi * k * np.arange(A)[None, :] / A
-    return torch.from_numpy(np.concatenate([np.cos(ang), -np.sin(ang)]).astype(np.float32))
+    """(A, A) real DFT matrix: rows cos(2 pi k a / A) for k = 0..F-1, then -sin(2 pi k a / A) for k = 1..Fc
+    (:func:`spectrum_rows`), so that M @ f = [Re rfft(f); Im rfft(f)[1:Fc + 1]], the real spectra layout."""
+    F, Fc = spectrum_rows(A)
+    a = np.arange(A)[None, :]
+    cos = np.cos(2.0 * np.pi * np.arange(F)[:, None] * a / A)
+    sin = -np.sin(2.0 * np.pi * np.arange(1, Fc + 1)[:, None] * a / A)
+    return torch.from_numpy(np.concatenate([cos, sin]).astype(np.float32))
+
+
+def complex_spectra(spec: torch.Tensor, A: int) -> torch.Tensor:
+    """Real spectra (A, ...) (:func:`spectrum_rows` layout) -> the complex rfft bins (F, ...), zero imaginary
+    parts restored for the real bins."""
+    F, Fc = spectrum_rows(A)
+    im = torch.zeros_like(spec[:F])
+    im[1:Fc + 1] = spec[F:]
+    return torch.complex(spec[:F], im)
 
 
 SPECTRA_BLOCK_BYTES = 1 << 20  # the object factors of one block of a chunk (stays in the core's cache)
@@ -252,7 +284,7 @@ os.register_at_fork(after_in_child=_spectra_pool.cache_clear)
 
 def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, flat: torch.Tensor,
                          i0: int, i1: int) -> None:
-    """Object factors of objects i0..i1 into their columns of ``flat`` (2F, n (C + 2) R H), in cache-sized blocks
+    """Object factors of objects i0..i1 into their columns of ``flat`` (A, n (C + 2) R H), in cache-sized blocks
     (see :func:`_object_spectra`)."""
     n, C, R, A, H = x.shape
     feat = (C + 2) * R * H
@@ -273,12 +305,13 @@ def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, fl
 
 
 def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torch.Tensor:
-    """Object factors in the frequency domain: x (n, C, R, A, H), w (n, R, A, H) -> (2F, n, (C + 2) R H).
+    """Object factors in the frequency domain: x (n, C, R, A, H), w (n, R, A, H) -> (A, n, (C + 2) R H).
 
-    Rows [:F] are real parts, [F:] imaginary parts of the azimuthal rfft of [w |x|^2, w, w x_1..w x_C].
+    The azimuthal rfft of [w |x|^2, w, w x_1..w x_C] as real spectra (:func:`spectrum_rows`: A rows, the real
+    parts of the F bins, then the imaginary parts of the complex bins).
     Built in blocks of a few objects (``SPECTRA_BLOCK_BYTES`` of factors): a block's factors are written
     azimuth-first (A, b, C + 2, R, H) into one reused buffer by strided copies of x and w, the products
-    [w |x|^2, w x_c] then run in that buffer, and the DFT is one matrix product (2F, A) @ (A, b (C + 2) R H)
+    [w |x|^2, w x_c] then run in that buffer, and the DFT is one matrix product (A, A) @ (A, b (C + 2) R H)
     written straight into the block's columns of the result, the layout the batched products need.  The
     buffer stays in cache, so main memory sees x and w read once and the spectra written once (measured on
     512 objects, one thread: 37 ms instead of 53 ms for the same products on whole-chunk temporaries, which
@@ -308,13 +341,13 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
 
 
 def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor, dft: torch.Tensor | None = None) -> tuple[torch.Tensor, ...]:
-    """Prototype factors: Ps (M, C, R, A, H), Vs (M, R, A, H) -> (Pn, Pd), Pn (2F, M, (C + 2) R H) and
-    Pd (2F, M, R H): rows [:F] real, [F:] imaginary parts of the azimuthal rfft of the numerator factors
+    """Prototype factors: Ps (M, C, R, A, H), Vs (M, R, A, H) -> (Pn, Pd), Pn (A, M, (C + 2) R H) and
+    Pd (A, M, R H): real spectra (:func:`spectrum_rows`) of the azimuthal rfft of the numerator factors
     [v, v |mu|^2, -2 v mu_1 .. -2 v mu_C] and of the denominator factor C v (module docstring), in the
     object spectra's layout (frequency, item, feature), so that a prototype is a row of each frequency's
     matrix and a window of prototypes a slice of rows.  The denominator, which only involves w, meets the w
     block of the object spectra alone (its factors elsewhere would be zeros).  The DFT is one matrix
-    product with the real DFT matrix ``dft`` (2F, A) (built here when not given)."""
+    product with the real DFT matrix ``dft`` (A, A) (built here when not given)."""
     M, C, R, A, H = Ps.shape
     dft = _dft_matrix(A) if dft is None else dft
     rows = dft.shape[0]
@@ -327,13 +360,13 @@ def _prototype_spectra(Ps: torch.Tensor, Vs: torch.Tensor, dft: torch.Tensor | N
         vmu = v[:, None] * p
         num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (m, C + 2, R, A, H)
         for t, out in ((num, pn), (C * v[:, None], pd)):
-            spec = torch.mm(dft, t.permute(3, 0, 1, 2, 4).reshape(A, -1))  # (2F, m features)
+            spec = torch.mm(dft, t.permute(3, 0, 1, 2, 4).reshape(A, -1))  # (A, m features)
             out[:, m0:m1] = spec.view(rows, m1 - m0, -1)
     return pn, pd
 
 
 def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
-    """Object spectra (2F, n, (C + 2) R H) of numpy x (n, C, R, A, H), w (n, R, A, H)."""
+    """Object spectra (A, n, (C + 2) R H) of numpy x (n, C, R, A, H), w (n, R, A, H)."""
     xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
     wt = torch.from_numpy(np.ascontiguousarray(w, dtype=np.float32))
     return _object_spectra(xt, wt, dft)
@@ -341,59 +374,66 @@ def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor
 
 @functools.lru_cache(maxsize=8)
 def _idft_matrix(A: int) -> torch.Tensor:
-    """(A, 2F) inverse real DFT with columns [re_0 .. re_{F-1}, im_0 .. im_{F-1}]: for spectra Z (F, L) stored as
-    real rows [Re Z; Im Z] (2F, L), ``M @ [Re Z; Im Z]`` equals ``irfft(Z, n=A, dim=0)`` (the imaginary parts of the
-    zero and Nyquist bins are ignored, as irfft does)."""
-    F = A // 2 + 1
-    k = np.arange(F)[:, None]
-    ang = 2.0 * np.pi * k * np.arange(A)[None, :] / A
-    c = np.full((F, 1), 2.0)
+    """(A, A) inverse of :func:`_dft_matrix`: for real spectra Z (A, L) (rows [Re_0 .. Re_{F-1}, Im_1 .. Im_Fc]),
+    ``M @ Z`` equals ``irfft(Z, n=A, dim=0)`` of the complex bins."""
+    F, Fc = spectrum_rows(A)
+    s = np.arange(A)[:, None]
+    c = np.full(F, 2.0)
     c[0] = 1.0
-    if A % 2 == 0:
-        c[-1] = 1.0
-    m = np.concatenate([c * np.cos(ang), -c * np.sin(ang)]) / A  # (2F, A)
-    return torch.from_numpy(np.ascontiguousarray(m.T).astype(np.float32))
+    if F - 1 > Fc:
+        c[-1] = 1.0  # the Nyquist bin of an even A
+    re = c * np.cos(2.0 * np.pi * s * np.arange(F)[None, :] / A)
+    im = -2.0 * np.sin(2.0 * np.pi * s * np.arange(1, Fc + 1)[None, :] / A)
+    return torch.from_numpy((np.concatenate([re, im], axis=1) / A).astype(np.float32))
 
 
 @functools.lru_cache(maxsize=8)
 def _idft_of_partials(A: int) -> torch.Tensor:
-    """(A, 4F): the inverse transform of the complex cross spectra from the four real partial products that
-    :func:`_cross_spectra` leaves, columns in its row order (object part b, frequency k, prototype part a), part 0
+    """(A, nr + 4 Fc): the inverse transform of the cross spectra from the real partial products that
+    :func:`_cross_spectra` leaves, columns in its row order: first the nr real-only bins (:func:`_real_bins`,
+    where the cross spectrum is p o, real), then (object part b, complex bin k = 1..Fc, prototype part a), part 0
     real, 1 imaginary.  With B[b, k, a] = p_a o_b^T, Re_k = B[0, k, 0] + B[1, k, 1] and Im_k = B[1, k, 0] -
-    B[0, k, 1], so the columns carry :func:`_idft_matrix`'s coefficients re_k, -im_k, im_k, re_k."""
-    F = A // 2 + 1
+    B[0, k, 1], so those columns carry :func:`_idft_matrix`'s coefficients re_k, -im_k, im_k, re_k."""
+    F, Fc = spectrum_rows(A)
     m = _idft_matrix(A)
-    re, im = m[:, :F], m[:, F:]
-    return torch.stack([torch.stack([re, -im], 2), torch.stack([im, re], 2)], 1).reshape(A, 4 * F).contiguous()
+    re, im = m[:, 1:Fc + 1], m[:, F:]
+    cplx = torch.stack([torch.stack([re, -im], 2), torch.stack([im, re], 2)], 1).reshape(A, 4 * Fc)
+    return torch.cat([m[:, _real_bins(A)], cplx], 1).contiguous()
 
 
 def _cross_spectra(p: torch.Tensor, ob: torch.Tensor) -> torch.Tensor:
-    """Per-frequency partial sums over features of ob conj(p): p (2F, M, f), ob (2F, n, f) real/imaginary row
-    blocks -> (4F, M n) rows (object part b, frequency k, prototype part a) of p_a o_b^T, prototype-major within a
-    row; :func:`_idft_of_partials` turns them into distances.  Two batched products per frequency,
-    [pr; pi] (2M, f) @ (f, n) against the objects' real and imaginary parts: one object block meets twice the
-    prototype rows of the four (M, f) @ (f, n) products of the complex product written out (measured 17 ms
-    instead of 37 ms for 512 objects x 32 prototypes with the inverse transform, two threads), and the
-    combination into real and imaginary parts rides on the inverse transform's product.  The objects enter
-    transposed (a view), so the result already has the (rows, prototype, object) layout that the inverse
-    transform reads as one matrix, with no copy in between."""
-    F = p.shape[0] // 2
+    """Per-frequency partial sums over features of ob conj(p): p (A, M, f), ob (A, n, f) real spectra
+    (:func:`spectrum_rows`) -> (nr + 4 Fc, M n) rows (see :func:`_idft_of_partials`) of prototype-major (M, n)
+    blocks; :func:`_idft_of_partials` turns them into distances.  The real-only bins need one product each,
+    p o^T; every complex bin two batched products, [pr; pi] (2M, f) @ (f, n) against the objects' real and
+    imaginary parts: one object block meets twice the prototype rows of the four (M, f) @ (f, n) products of
+    the complex product written out (measured 17 ms instead of 37 ms for 512 objects x 32 prototypes with the
+    inverse transform, two threads), and the combination into real and imaginary parts rides on the inverse
+    transform's product.  The objects enter transposed (a view), so the result already has the (rows,
+    prototype, object) layout that the inverse transform reads as one matrix, with no copy in between."""
+    A = p.shape[0]
+    F, Fc = spectrum_rows(A)
     M, n = p.shape[1], ob.shape[1]
-    ps = p.view(2, F, M, -1).transpose(0, 1).reshape(F, 2 * M, -1)  # (F, [pr; pi], f), 1/n of the products' bytes
-    t = torch.empty((2, F, 2 * M, n), dtype=torch.float32)
-    torch.bmm(ps, ob[:F].transpose(1, 2), out=t[0])
-    torch.bmm(ps, ob[F:].transpose(1, 2), out=t[1])
-    return t.view(4 * F, M * n)
+    rb = _real_bins(A)
+    nr = len(range(*rb.indices(A)))
+    t = torch.empty((nr + 4 * Fc) * M, n, dtype=torch.float32)
+    torch.bmm(p[rb], ob[rb].transpose(1, 2), out=t[:nr * M].view(nr, M, n))
+    if Fc:
+        ps = torch.stack([p[1:Fc + 1], p[F:]], 1).view(Fc, 2 * M, -1)  # (Fc, [pr; pi], f), 1/n of the products' bytes
+        for j, part in enumerate((ob[1:Fc + 1], ob[F:])):
+            o0 = (nr + 2 * j * Fc) * M
+            torch.bmm(ps, part.transpose(1, 2), out=t[o0:o0 + 2 * Fc * M].view(Fc, 2 * M, n))
+    return t.view(nr + 4 * Fc, M * n)
 
 
 def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A: int,
                             min_overlap: float) -> torch.Tensor:
-    """Distances for every shift from object spectra o (2F, n, (C + 2) R H): (A, M, n) float32 tensor
+    """Distances for every shift from object spectra o (A, n, (C + 2) R H): (A, M, n) float32 tensor
     (shift, prototype, object).
 
     ``factors`` = (Pn, Pd) of :func:`_prototype_spectra`.  The per-frequency products are batched matrix
-    products (:func:`_cross_spectra`); the inverse transform is one matrix product (A, 4F) @ (4F, M n) on
-    their output as it lies.
+    products (:func:`_cross_spectra`); the inverse transform is one matrix product (A, nr + 4 Fc) @ (nr + 4 Fc, M n)
+    on their output as it lies.
     """
     pn, pd = factors
     n, M, RH = o.shape[1], pn.shape[1], pd.shape[2]
@@ -476,7 +516,7 @@ class PoseBank:
                                           self.dft)
 
     def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
-        """Object spectra (2F, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""
+        """Object spectra (A, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""
         return _spectra_of(x, w, self.dft)
 
     def subset(self, keep: np.ndarray) -> "PoseBank":
@@ -496,7 +536,7 @@ class PoseBank:
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
                       scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
-        """Best pose from object spectra o (2F, n, (C + 2) R H) (see :meth:`spectra`).
+        """Best pose from object spectra o (A, n, (C + 2) R H) (see :meth:`spectra`).
 
         With ``scale_index`` (n,) (each object's current best scale, an index into the scales), only
         the 2 window + 1 neighbouring scales are searched for that object (the others count as inf);

@@ -185,7 +185,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
              "transfer_s": b_proj * nc / BANDWIDTH_BPS}
     t_pass = sum(terms.values())
     C, R, A, H = P.shape[1:]
-    chunk_mb = proj_chunk * ((C + 1) * R * A * H * 4 + 2 * (A // 2 + 1) * (C + 2) * R * H * 4) / 2**20
+    chunk_mb = proj_chunk * ((C + 1) * R * A * H * 4 + A * (C + 2) * R * H * 4) / 2**20
     return {
         "n_objects": n, "n_prototypes": K, "n_scales": len(scales), "chunk_size": chunk, "n_chunks": n_chunks,
         "n_tasks": n_tasks,
