@@ -270,6 +270,10 @@ def _spectra_pool(threads: int) -> ThreadPoolExecutor:
     barrier = threading.Barrier(threads)
 
     def init(_):
+        # torch initialises a thread's intra-op count on its first parallel op from the process-wide count, which
+        # the caller sets back below: without this first query (which runs that initialisation now) the pool's
+        # elementwise ops would run on the caller's threads count again (measured: 2 OpenMP threads each)
+        torch.get_num_threads()
         torch.set_num_threads(1)
         barrier.wait()
 
