@@ -314,10 +314,9 @@ def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, fl
     feat = (C + 2) * R * H
     b = max(1, min(i1 - i0, SPECTRA_BLOCK_BYTES // (4 * A * feat)))
     stage = torch.empty((b, C + 2, R, A, H), dtype=torch.float32)  # the block's factors, object-major
-    buf = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)  # the same, azimuth-first
+    buf = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)  # azimuth-first: factors, or their radix-2 folds
     halves = _half_dfts(dft)
-    if halves is not None:
-        diff = torch.empty((A // 2, b * feat), dtype=torch.float32)
+    h = A // 2
     for j0 in range(i0, i1, b):
         j1 = min(i1, j0 + b)
         sg, st = stage[:j1 - j0], buf[:, :j1 - j0]
@@ -329,18 +328,17 @@ def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, fl
             sq.addcmul_(xs[:, c], xs[:, c])
         sq.mul_(ws)
         xs.mul_(sg[:, 1:2])  # w x_c
-        st.copy_(sg.permute(3, 0, 1, 2, 4))  # azimuth-first, from cache
+        az = sg.permute(3, 0, 1, 2, 4)  # azimuth-first view of the staged factors (in cache)
         cols = flat[:, j0 * feat:j1 * feat]
         f = st.reshape(A, -1)
         if halves is None:
+            st.copy_(az)
             torch.mm(dft, f, out=cols)
             continue
-        h = A // 2
-        d = diff[:, :f.shape[1]]
-        torch.sub(f[:h], f[h:], out=d)
-        f[:h].add_(f[h:])
-        torch.mm(halves[0], f[:h], out=cols[0::2])  # even bins
-        torch.mm(halves[1], d, out=cols[1::2])  # odd bins
+        torch.add(az[:h], az[h:], out=st[:h])  # folds for the even bins
+        torch.sub(az[:h], az[h:], out=st[h:])  # and for the odd bins
+        torch.mm(halves[0], f[:h], out=cols[0::2])
+        torch.mm(halves[1], f[h:], out=cols[1::2])
 
 
 def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torch.Tensor:
