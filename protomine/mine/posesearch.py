@@ -483,6 +483,17 @@ def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], 
     return d.view(A, M, n)
 
 
+def _first_min(t: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """Minimum of t (L, ...) over its first axis and the first index holding it, as ``t.min(dim=0)``: the values
+    by ``amin`` (a vectorised reduction; with indices, torch's reduction over the outer axis of a (36, 16,384)
+    block took 2.1 ms instead of 0.07), the index by one comparison per row, last row first."""
+    D = t.amin(dim=0)
+    idx = torch.zeros(D.shape, dtype=torch.int64)
+    for s in range(t.shape[0] - 1, -1, -1):
+        idx.masked_fill_(t[s] == D, s)
+    return D, idx
+
+
 def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """d (n, S, K, A) tensor (any strides; :func:`_distances_from_spectra` leaves the shifts outermost) -> D (n, K),
     yaw_deg (n, K), scale (n, K); same rule as :func:`_best_pose` (the first minimum in scale-major, then shift
@@ -497,11 +508,13 @@ def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndar
     if S == 1:
         row = d[:, 0]  # (n, K, A)
         si = torch.zeros((n, K), dtype=torch.int64)
+        D, sh = _first_min(d.permute(3, 1, 2, 0)[:, 0])  # over the shifts, in their (A, K, n) order
+        D, sh = D.transpose(0, 1), sh.transpose(0, 1)
     else:
         # reduced over the shifts in the (A, S, K, n) order: as a permuted view the reduction runs 30x slower
         _, si = d.permute(3, 1, 2, 0).amin(dim=0).permute(2, 0, 1).min(dim=1)  # (n, K): first scale with the least
         row = d[ni, si, ki]  # (n, K, A) at the best scale
-    D, sh = row.min(dim=2)
+        D, sh = row.min(dim=2)
     dm = row.gather(2, ((sh - 1) % A)[..., None])[..., 0]
     dp = row.gather(2, ((sh + 1) % A)[..., None])[..., 0]
     D, dm, dp = D.numpy(), dm.numpy(), dp.numpy()
