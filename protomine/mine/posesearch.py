@@ -65,6 +65,8 @@ Public API
 - ``dense_distances(X, W, P, V, *, chunk_size=1024) -> (N, K)``: single-pose distance (bench baseline).
 - ``scale_prototypes(P, V, scales) -> (Ps, Vs)``, ``shift_volume(a, shift_bins, axis)``: helpers that the
   engine and symmetry modules reuse.
+- ``spectrum_rows(A) -> (F, Fc)``, ``complex_spectra(spec, A)``: the real spectra layout (A rows) shared with the
+  engine's aligned sums and the tilt search's column factors, and its complex bins.
 """
 from __future__ import annotations
 
