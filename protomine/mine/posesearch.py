@@ -317,17 +317,20 @@ def _object_spectra_rows(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor, fl
     b = max(1, min(i1 - i0, SPECTRA_BLOCK_BYTES // (4 * A * feat)))
     stage = torch.empty((b, C + 2, R, A, H), dtype=torch.float32)  # the block's factors, object-major
     buf = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)  # azimuth-first: factors, or their radix-2 folds
+    square = torch.empty((b, R, A, H), dtype=torch.float32)
     halves = _half_dfts(dft)
     h = A // 2
     for j0 in range(i0, i1, b):
         j1 = min(i1, j0 + b)
         sg, st = stage[:j1 - j0], buf[:, :j1 - j0]
-        xs, ws, sq = sg[:, 2:], sg[:, 1], sg[:, 0]
+        xs, ws, sq, sq2 = sg[:, 2:], sg[:, 1], sg[:, 0], square[:j1 - j0]
         xs.copy_(x[j0:j1])  # read in memory order: a permuted read of x itself ran at a quarter of the rate
         ws.copy_(w[j0:j1])
         torch.mul(xs[:, 0], xs[:, 0], out=sq)
         for c in range(1, C):
-            sq.addcmul_(xs[:, c], xs[:, c])
+            # a product then a sum, not addcmul: on contiguous data addcmul's vector loop fuses them (one
+            # rounding) and its tail does not, so its bits would depend on how threads split the block
+            sq.add_(torch.mul(xs[:, c], xs[:, c], out=sq2))
         sq.mul_(ws)
         xs.mul_(sg[:, 1:2])  # w x_c
         az = sg.permute(3, 0, 1, 2, 4)  # azimuth-first view of the staged factors (in cache)
@@ -370,10 +373,13 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     flat = out.view(dft.shape[0], n * feat)
     threads = torch.get_num_threads()
     b = max(1, SPECTRA_BLOCK_BYTES // (4 * A * feat))
-    if threads == 1 or n <= b or threading.current_thread().name.startswith("spectra"):
+    if threads == 1 or threading.current_thread().name.startswith("spectra"):
         _object_spectra_rows(x, w, dft, flat, 0, n)
         return out
-    # a few shares per thread, taken in turn: a thread that the machine's other work slows takes fewer
+    # a few shares per thread, taken in turn: a thread that the machine's other work slows takes fewer.  Even one
+    # share runs in the pool: the transform's small products run on one thread in every case, as MKL's threaded
+    # kernels round differently from its single-threaded ones for some shapes (measured: (6, 6) @ (6, 4,032) on 2
+    # threads vs 1), and a chunk's spectra must not depend on the threads (worker processes run one)
     cuts = np.linspace(0, n, min(SPECTRA_SHARES * threads, -(-n // b)) + 1).round().astype(int)
     list(_spectra_pool(threads).map(lambda ij: _object_spectra_rows(x, w, dft, flat, *ij), zip(cuts[:-1], cuts[1:])))
     return out
