@@ -24,7 +24,10 @@ Cost per pass beyond the search itself (measured on a local cluster, 2 cores at 
     ~70 ms of wall time during which no worker could start; each task costs ~3 ms of the caller's CPU
     (client and scheduler).  Dask's own statistical profiler (on by default in every worker: it samples
     every thread's stack each 10 ms) cost 0.15-0.2 s of worker CPU per ~1.3 s pass (1 worker); a cluster
-    for mining should run with ``distributed.worker.profile.enabled: false`` (the bench's does).
+    for mining should run with ``distributed.worker.profile.enabled: false`` (the bench's does), and with Dask's
+    periodic monitors and work-stealing check slowed to 1-2 s (``scale.benchmark.DASK_CONFIG_FOR_MINING``): they
+    took half of what a local cluster spent beside its tasks (caller 0.12-0.17 s and workers 0.09-0.13 s of CPU
+    per pass of 1.3-1.7 task-seconds, then 0.075 and 0.06 s), CPU that 2 workers on 2 cores lose.
 
 :class:`ExecutorSource` is a source (``len``, ``read``) whose passes run this way: the engine hands a pass
 to ``source.assign_pass`` when the source has one, so :class:`~protomine.mine.engine.PoseKMeans`, the

@@ -69,7 +69,7 @@ from . import faces
 from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
-from .posesearch import PoseBank
+from .posesearch import PoseBank, complex_spectra
 from .seeding import SEED_SIZE, PoseSeeder
 from .tilts import TiltBank, TiltGrid, make_bank
 
@@ -215,8 +215,8 @@ RESULT_BLOCK = 256  # (prototype, tilt, scale) groups transformed back at once b
 class _AlignedSums:
     """Per (prototype, tilt, scale) sums of members' quantities rolled into the prototype frame, kept as spectra.
 
-    Members are added as real spectra (2F, n, B R H) (rows [:F] real, [F:] imaginary parts of the
-    azimuthal rfft, the layout of ``posesearch``); the roll by -yaw is a per-member phase, and members
+    Members are added as real spectra (A, n, B R H) (the azimuthal rfft in ``posesearch``'s real layout,
+    ``posesearch.spectrum_rows``); the roll by -yaw is a per-member phase, and members
     of the same group, key (k T + t) S + s for prototype k, tilt t (of T, 1 for a yaw-only search) and
     scale s, are summed with ``index_add_``, so the cost is linear in the number of members and
     independent of K.  Groups get their accumulator slot when their first member arrives (with tilts most
@@ -240,8 +240,7 @@ class _AlignedSums:
         return np.array([self.slots[int(g)] for g in group], np.int64)
 
     def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray) -> None:
-        F = self.A // 2 + 1
-        c = torch.complex(spec[:F], spec[F:])
+        c = complex_spectra(spec, self.A)
         c.mul_(_align_phase(yaw_deg, self.A)[:, :, None])
         slots = torch.from_numpy(self._slots_of(np.asarray(group)))  # may grow self.acc: before the add
         self.acc.index_add_(1, slots, c)
@@ -286,7 +285,7 @@ class _AlignedSums:
 
 
 class _SpectraCache:
-    """Object spectra (``posesearch`` layout, (2F, n, (C + 2) R H) float32) kept across passes per chunk.
+    """Object spectra (``posesearch`` layout, (A, n, (C + 2) R H) float32) kept across passes per chunk.
 
     The spectra depend on the objects only, not on the prototypes, so a pass that finds them here skips
     reading and transforming its chunk.  Chunks are kept in order until ``budget_bytes`` is used up;
@@ -309,7 +308,7 @@ class _SpectraCache:
 
 
 def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
-    """Spectra (2F, n, (C + 1) R H) of [w x_1^2 .. w x_C^2, w^2] for the symmetry test's moments."""
+    """Real spectra (A, n, (C + 1) R H) of [w x_1^2 .. w x_C^2, w^2] for the symmetry test's moments."""
     xt = torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
     wt = torch.from_numpy(np.ascontiguousarray(w, dtype=np.float32))
     stack = torch.cat([wt[:, None] * xt * xt, (wt * wt)[:, None]], dim=1)
@@ -399,7 +398,7 @@ def _chunk_step(bank: PoseBank | TiltBank, o: torch.Tensor, x: np.ndarray | None
                 forced: np.ndarray | None, scale_window: np.ndarray | None, scales: tuple[float, ...],
                 sums: _AlignedSums | None, msums: _AlignedSums | None, tilt_out: np.ndarray | None = None
                 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """One chunk of a pass (the map step): best pose of each object, given its spectra o (2F, n, (C + 2) R H),
+    """One chunk of a pass (the map step): best pose of each object, given its spectra o (A, n, (C + 2) R H),
     against the bank's prototypes; with ``sums`` the members are added aligned into their (prototype,
     scale) sums, with ``msums`` also their moments from x (n, C, R, A, H), w (n, R, A, H).  ``forced`` (n,)
     fixes the labels; ``scale_window`` (n,) limits the scale search (see :func:`_assign_pass`).

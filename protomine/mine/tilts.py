@@ -282,9 +282,9 @@ def _scale_matrix(n: int, sigma: float) -> tuple[np.ndarray, np.ndarray]:
 
 def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tensor) -> tuple[torch.Tensor, ...]:
     """Prototype factors (Pn, Pd) of copies Pc (M, C, R, A, H), Vc (M, R, A, H) scaled by ``sigma``: the
-    same tensors as ``posesearch._prototype_spectra(*scale_prototypes(Pc, Vc, (sigma,)))`` (layout (2F, M,
-    features)), built for many small products: the scaling as two small matrices (radial, height) and the
-    azimuthal transform as one product with the real DFT matrix ``dft`` (2F, A) (``PoseBank.dft``), whose
+    same tensors as ``posesearch._prototype_spectra(*scale_prototypes(Pc, Vc, (sigma,)))`` (layout (A, M,
+    features), ``posesearch.spectrum_rows``), built for many small products: the scaling as two small
+    matrices (radial, height) and the azimuthal transform as one product with the real DFT matrix ``dft`` (A, A) (``PoseBank.dft``), whose
     result is already the products' layout."""
     M, C, R, A, H = Pc.shape
     Sr, mr = _scale_matrix(R, sigma)
@@ -441,7 +441,7 @@ class TiltBank:
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
                       scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
-        """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (2F, n, (C + 2) R H)."""
+        """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (A, n, (C + 2) R H)."""
         n, K, T0 = o.shape[1], self.K, self.T0
         parts = []
         for r0 in range(0, n, COARSE_ROWS):  # blocks of objects bound the (n, K T0, S, A) distances

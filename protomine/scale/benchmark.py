@@ -20,7 +20,8 @@ objects, as when the objects do not fit the workers' caches):
   on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1, then 2 workers, median of 3
   passes after a warm-up; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores), ``speedup`` = local_s /
   cluster_s, and the results are checked equal (same labels).  The cluster runs with ``DASK_CONFIG_FOR_MINING``
-  (no statistical profiler in the workers, a 1 s event-loop tick; measured costs beside it);
+  (no statistical profiler in the workers, a 1 s event-loop tick, slower periodic monitors; measured costs
+  beside it);
 - ``caller_cpu_s_per_pass`` (2 workers): CPU seconds of this process (client, scheduler, folding) per pass,
   which compete with the workers for the cores of a local cluster; ``worker_overhead_cpu_fraction``: the
   worker processes' CPU beyond the task threads' (Dask's own threads: communication, monitors) / the tasks';
@@ -72,8 +73,18 @@ BANDWIDTH_BPS = 1.25e9  # 10 Gbit/s Ethernet (common practice; assumed)
 # Dask settings of the bench's cluster (README: the same for a mining cluster).  Measured on 2 cores at load
 # ~5: the statistical profiler (every worker thread's stack sampled each 10 ms) cost 12-17% of the workers'
 # CPU on top of a pass; the 20 ms event-loop tick (a diagnostic of blocked loops) kept an idle cluster's
-# scheduler thread (in the caller's process) at 4-5% of a core and each worker at ~2%, 1 s halves both.
-DASK_CONFIG_FOR_MINING = {"distributed.worker.profile.enabled": False, "distributed.admin.tick.interval": "1s"}
+# scheduler thread (in the caller's process) at 4-5% of a core and each worker at ~2%, 1 s halves both.  Three
+# more periodic callbacks run every 100-500 ms by default: the scheduler's work-stealing check (in the caller's
+# process), every process's system monitor (psutil samples) and each worker's memory monitor.  At 1-2 s instead
+# (tasks last seconds, so stealing checked each second still moves a slow worker's queued task), measured on 2
+# cores at load 7-9, 2 workers, 4,096 objects, K = 16, 5 scales, three runs each: the caller's CPU per pass
+# 0.12-0.17 -> 0.075-0.078 s, the workers' CPU beyond their tasks 0.09-0.13 -> 0.06 s (tasks 1.3-1.7 s), idle
+# 2.0-2.2% -> 0.8% of a core (caller) and 1.5-1.6% -> 0.6% (workers): CPU that a local cluster's workers
+# otherwise lose on the same cores, half of what the cluster spent beside its tasks.
+DASK_CONFIG_FOR_MINING = {"distributed.worker.profile.enabled": False, "distributed.admin.tick.interval": "1s",
+                          "distributed.scheduler.work-stealing-interval": "1s",
+                          "distributed.admin.system-monitor.interval": "2s",
+                          "distributed.worker.memory.monitor-interval": "1s"}
 
 
 def _peak_rss_mb() -> float:
@@ -185,7 +196,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
              "transfer_s": b_proj * nc / BANDWIDTH_BPS}
     t_pass = sum(terms.values())
     C, R, A, H = P.shape[1:]
-    chunk_mb = proj_chunk * ((C + 1) * R * A * H * 4 + 2 * (A // 2 + 1) * (C + 2) * R * H * 4) / 2**20
+    chunk_mb = proj_chunk * ((C + 1) * R * A * H * 4 + A * (C + 2) * R * H * 4) / 2**20
     return {
         "n_objects": n, "n_prototypes": K, "n_scales": len(scales), "chunk_size": chunk, "n_chunks": n_chunks,
         "n_tasks": n_tasks,
