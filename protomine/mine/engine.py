@@ -408,8 +408,10 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
+        o = x = w = None  # the chunk's spectra (unless cached) and volumes are freed before the sums' transforms
         if accumulate:
             tot += sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
+            sums = None
         if moments:
             extra += msums.result(scales, (C + 1, R, H), untilt)
         if advance is not None:
