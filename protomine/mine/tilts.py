@@ -311,8 +311,8 @@ GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geom
 # these alone (copy_geometries), so a hit is exact
 _GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
 COPY_BLOCK = 64        # copies resampled per grid_sample call (bounds its temporaries)
-COARSE_ROWS = 128      # objects per product of the coarse level (bounds the per-shift distances' memory)
-COLUMN_BUDGET = 256    # (copy, scale) columns whose spectra a refinement block holds at once (~60 MB)
+COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
+COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
 PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
 SPLIT_WASTE = 1.5      # a refinement group runs one product per previous direction when the union's arithmetic
 SPLIT_OVERHEAD = 200   # exceeds SPLIT_WASTE x the candidates' own plus this many (object, copy) pairs per product
