@@ -140,10 +140,16 @@ def test_refinement_equals_its_definition(split, monkeypatch):
                 abs(got.D[i, k] - dk[k][0]) < 1e-5, (i, k, got.tilt[i, k], dk[k][2])
 
 
-def test_aligned_sums_untilt_each_member_into_its_prototype():
+@pytest.mark.parametrize("piece, block, subset", [(64, 256, False), (1, 2, True)])
+def test_aligned_sums_untilt_each_member_into_its_prototype(monkeypatch, piece, block, subset):
     """The engine's per-(prototype, tilt, scale) sums, untilted in one resampling, equal the sum of each member
-    untilted on its own by the twin (the untilt is linear; yaw 0 and scale 1 leave members as they are)."""
+    untilted on its own by the twin (the untilt is linear; yaw 0 and scale 1 leave members as they are); also
+    when the members are added a few at a time and the groups untilted in pieces, and when only some of the
+    spectra's columns are members."""
+    from protomine.mine import engine
     from protomine.mine.engine import _AlignedSums
+    monkeypatch.setattr(engine, "RESULT_PIECE", piece)
+    monkeypatch.setattr(engine, "ADD_BLOCK", block)
     from protomine.mine.posesearch import _object_spectra
     rng = np.random.default_rng(3)
     P, V = _protos(rng)
@@ -157,11 +163,12 @@ def test_aligned_sums_untilt_each_member_into_its_prototype():
     t = np.array([3, 3, 20, 0, 3, 33, 12])
     T = len(grid.dirs)
     sums = _AlignedSums(2, 1, SHAPE[1], (C + 2) * SHAPE[0] * SHAPE[2], T)
-    sums.add(_object_spectra(torch.from_numpy(x), torch.from_numpy(w), _dft_matrix(SHAPE[1])), np.zeros(n),
-             k * T + t)
+    spec = _object_spectra(torch.from_numpy(x), torch.from_numpy(w), _dft_matrix(SHAPE[1]))
+    members = np.array([0, 1, 2, 4, 5, 6]) if subset else np.arange(n)
+    sums.add(spec, np.zeros(len(members)), (k * T + t)[members], members if subset else None)
     got = sums.result((1.0,), (C + 2, SHAPE[0], SHAPE[2]), bank.untilt_many)
     ref = np.zeros_like(got)
-    for i in range(n):
+    for i in members:
         blocks = np.concatenate([(w[i] * (x[i] ** 2).sum(0))[None], w[i][None], w[i][None] * x[i]])
         if grid.is_upright(t[i]):
             ref[k[i]] += blocks

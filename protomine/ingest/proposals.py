@@ -261,22 +261,29 @@ def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
         uy = (aa * (c[0] - b[0]) + bb * (a[0] - c[0]) + cc * (b[0] - a[0])) / d
         return ux, uy, math.hypot(a[0] - ux, a[1] - uy)
 
-    def inside(circ, p):
-        return math.hypot(p[0] - circ[0], p[1] - circ[1]) <= circ[2] * (1 + 1e-9) + 1e-12
-
-    circ = (P[0][0], P[0][1], 0.0)
+    # a point is inside when hypot(p - centre) <= radius (1 + 1e-9) + 1e-12, written out in the loops (the
+    # tilt search runs this for every prototype and tilt: a call per test cost more than the test)
+    hypot = math.hypot
+    cx, cy, r = P[0][0], P[0][1], 0.0
+    lim = r * (1 + 1e-9) + 1e-12
     for i in range(1, len(P)):
-        if inside(circ, P[i]):
+        pi = P[i]
+        if hypot(pi[0] - cx, pi[1] - cy) <= lim:
             continue
-        circ = (P[i][0], P[i][1], 0.0)
+        cx, cy, r = pi[0], pi[1], 0.0
+        lim = r * (1 + 1e-9) + 1e-12
         for j in range(i):
-            if inside(circ, P[j]):
+            pj = P[j]
+            if hypot(pj[0] - cx, pj[1] - cy) <= lim:
                 continue
-            circ = circle2(P[i], P[j])
+            cx, cy, r = circle2(pi, pj)
+            lim = r * (1 + 1e-9) + 1e-12
             for k in range(j):
-                if not inside(circ, P[k]):
-                    circ = circle3(P[i], P[j], P[k])
-    return np.array(circ[:2]), float(circ[2])
+                pk = P[k]
+                if not hypot(pk[0] - cx, pk[1] - cy) <= lim:
+                    cx, cy, r = circle3(pi, pj, pk)
+                    lim = r * (1 + 1e-9) + 1e-12
+    return np.array([cx, cy]), float(r)
 
 
 def object_frame(points: np.ndarray, plane: PlaneFit) -> tuple[ObjectFrame, np.ndarray]:

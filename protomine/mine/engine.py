@@ -210,6 +210,8 @@ def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
 
 
 RESULT_BLOCK = 256  # (prototype, tilt, scale) groups transformed back at once by _AlignedSums.result
+RESULT_PIECE = 64   # ... and untilted at once (bounds the float64 temporaries of the untilt)
+ADD_BLOCK = 256     # members whose complex spectra _AlignedSums.add holds at once
 
 
 class _AlignedSums:
@@ -236,14 +238,24 @@ class _AlignedSums:
                 self.slots[int(g)] = len(self.slots)
         if len(self.slots) > self.acc.shape[1]:
             grow = max(len(self.slots), 2 * self.acc.shape[1]) - self.acc.shape[1]
-            self.acc = torch.cat([self.acc, torch.zeros((self.acc.shape[0], grow, self.n_feat), dtype=torch.complex64)], 1)
+            fresh = torch.zeros((self.acc.shape[0], grow, self.n_feat), dtype=torch.complex64)
+            # the usual single add per chunk allocates the exact slots once (a concatenation would hold both)
+            self.acc = torch.cat([self.acc, fresh], 1) if self.acc.shape[1] else fresh
         return np.array([self.slots[int(g)] for g in group], np.int64)
 
-    def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray) -> None:
-        c = complex_spectra(spec, self.A)
-        c.mul_(_align_phase(yaw_deg, self.A)[:, :, None])
-        slots = torch.from_numpy(self._slots_of(np.asarray(group)))  # may grow self.acc: before the add
-        self.acc.index_add_(1, slots, c)
+    def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray, rows: np.ndarray | None = None) -> None:
+        """Add members: real spectra ``spec`` (A, n, n_feat) (``posesearch.spectrum_rows`` layout; or its columns
+        ``rows`` (m,) only), their yaws and groups (m,).  The complex copy of the spectra is made ``ADD_BLOCK`` members at a time (``index_add_`` adds them in
+        member order, so the sums are those of one add of all members)."""
+        group = np.asarray(group)
+        slots = torch.from_numpy(self._slots_of(group))  # may grow self.acc: before the adds
+        phase = _align_phase(yaw_deg, self.A)
+        for b0 in range(0, len(group), ADD_BLOCK):
+            b1 = min(len(group), b0 + ADD_BLOCK)
+            part = spec[:, b0:b1] if rows is None else spec.index_select(1, torch.from_numpy(np.asarray(rows[b0:b1], np.int64)))
+            c = complex_spectra(part, self.A)
+            c.mul_(phase[:, b0:b1, None])
+            self.acc.index_add_(1, slots[b0:b1], c)
 
     def result(self, scales: tuple[float, ...], shape: tuple[int, int, int], untilt=None) -> np.ndarray:
         """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``untilt(ks, ts, a)``
@@ -255,9 +267,23 @@ class _AlignedSums:
         if not self.slots:
             return out
         keys = np.array(sorted(self.slots), np.int64)
-        # blocks of groups bound the float64 temporaries (a 3-D search fills up to one group per member)
+        # blocks of groups bound the float64 temporaries (a 3-D search fills up to one group per member); each
+        # block of RESULT_BLOCK keys is cut further, between (prototype, tilt)s, into pieces of about
+        # RESULT_PIECE groups: a (prototype, tilt)'s scales are still summed together before one untilt, in the
+        # same order, so the pieces add exactly what their block would
         for g0 in range(0, len(keys), RESULT_BLOCK):
-            self._add_block(out, keys[g0:g0 + RESULT_BLOCK], scales, shape, untilt)
+            blk = keys[g0:g0 + RESULT_BLOCK]
+            kts = blk // self.S
+            cuts = np.flatnonzero(kts[1:] != kts[:-1]) + 1  # where a (prototype, tilt) starts
+            p0 = 0
+            while p0 < len(blk):
+                ok = cuts[(cuts > p0) & (cuts <= p0 + RESULT_PIECE)]
+                p1 = int(ok[-1]) if ok.size and p0 + RESULT_PIECE < len(blk) else min(len(blk), p0 + RESULT_PIECE)
+                if p1 < len(blk) and not ok.size:  # one (prototype, tilt) longer than a piece: up to its end
+                    later = cuts[cuts > p0]
+                    p1 = int(later[0]) if later.size else len(blk)
+                self._add_block(out, blk[p0:p1], scales, shape, untilt)
+                p0 = p1
         return out
 
     def _add_block(self, out: np.ndarray, keys: np.ndarray, scales: tuple[float, ...], shape: tuple[int, int, int],
@@ -381,8 +407,10 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
+        o = x = w = None  # the chunk's spectra (unless cached) and volumes are freed before the sums' transforms
         if accumulate:
             tot += sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
+            sums = None
         if moments:
             extra += msums.result(scales, (C + 1, R, H), untilt)
         if advance is not None:
@@ -419,10 +447,13 @@ def _chunk_step(bank: PoseBank | TiltBank, o: torch.Tensor, x: np.ndarray | None
         scale_pos = {float(s): i for i, s in enumerate(np.asarray(scales, np.float32))}
         ok = np.flatnonzero(np.isfinite(d))
         group = (lab[ok] * sums.T + tilt[ok]) * S + np.array([scale_pos[float(s)] for s in scale[ok]], np.int64)
-        # all members usually match; indexing would copy the chunk's spectra
-        sums.add(o if ok.size == n else o[:, torch.from_numpy(ok)], yaw[ok], group)
+        # all members usually match; the sums read the matched members' columns a block at a time
+        sums.add(o, yaw[ok], group, None if ok.size == n else ok)
         if msums is not None:
-            msums.add(_moment_spectra(x[ok], w[ok], bank.dft), yaw[ok], group)
+            msums._slots_of(group)  # every group's slot at once: the blocks below find theirs
+            for b0 in range(0, ok.size, ADD_BLOCK):  # the moments' spectra a block of members at a time
+                sel = ok[b0:b0 + ADD_BLOCK]
+                msums.add(_moment_spectra(x[sel], w[sel], bank.dft), yaw[sel], group[b0:b0 + ADD_BLOCK])
     return lab.astype(np.int64), yaw, scale, d
 
 
@@ -646,7 +677,7 @@ class PoseKMeans:
             if best is None or res.cost < best.cost:
                 best = res
         if fit_on is not source:
-            del cache, sub, Xs, Ws  # free the subsample's memory before the full fit
+            del cache, sub, Xs, Ws, seeder  # free the subsample's memory (the seeder holds it too) before the full fit
             best = _lloyd(source, best.P, best.V, scales=scales, max_iter=self.max_iter, tol=self.tol,
                           chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid,
                           aspect=best.aspect, progress=self.progress, what=f"K={K} all objects passes")

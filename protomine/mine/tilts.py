@@ -313,6 +313,7 @@ _GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
 COPY_BLOCK = 64        # copies resampled per grid_sample call (bounds its temporaries)
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
+PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
 SPLIT_WASTE = 1.5      # a refinement group runs one product per previous direction when the union's arithmetic
 SPLIT_OVERHEAD = 200   # exceeds SPLIT_WASTE x the candidates' own plus this many (object, copy) pairs per product
 
@@ -324,8 +325,10 @@ class TiltBank:
     :class:`PoseMatch` carries ``tilt`` (n, K), indices into ``grid.dirs``.  With the identity grid it is a
     PoseBank (no resampling).
 
-    Kept for the bank's life (a pass): each (prototype, tilt)'s geometry and copy, built when first needed,
-    many at once (one enclosing circle per copy, one ``grid_sample`` per block of copies).
+    Kept for the bank's life (a pass): each (prototype, tilt)'s geometry, and the first level's copies; the
+    later levels' copies only while the refinement works on their batch of prototypes (``PROTOTYPE_BATCH``:
+    all of them would hold about 330 MB).  All built when first needed, many at once (one enclosing circle
+    per copy, one ``grid_sample`` per block of copies).
     """
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid):
@@ -374,8 +377,8 @@ class TiltBank:
     def copies(self, ks: np.ndarray, ts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Tilted copies (M, C, R, A, H), (M, R, A, H) of prototypes ``ks`` at tilts ``ts`` (M,).
 
-        Copies are kept for the bank's life (the finer levels and later chunks ask for the same ones);
-        new ones are resampled together.
+        Copies are kept (the finer levels and later chunks ask for the same ones) until the refinement drops
+        its levels' copies (:meth:`_drop_refined`); new ones are resampled together.
         """
         self._build(list(zip((int(k) for k in ks), (int(t) for t in ts))))
         if not len(ks):
@@ -396,6 +399,15 @@ class TiltBank:
             pc, vc = _resample_copies(self.P[kk], self.V[kk], [self._geom[key] for key in blk], self.aspect[kk])
             for j, key in enumerate(blk):
                 self._copies[key] = (pc[j], vc[j])
+
+    def _drop_refined(self) -> None:
+        """Forget the copies of the later levels (the refinement's): a pass needs K x (48 + 192) of them with the
+        default grid, about 330 MB on the 5 x 8 x 36 x 12 grid, so the refinement builds them a batch of
+        prototypes at a time (a later chunk of the pass builds them again)."""
+        first = self.grid.offsets[1] if len(self.grid.offsets) > 2 else None
+        if first is not None:
+            for key in [key for key in self._copies if key[1] >= first]:
+                del self._copies[key]
 
     def copy_at(self, k: int, up: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Copy (C, R, A, H), (R, A, H) of prototype k resting with any direction ``up`` (3,) pointing up."""
@@ -488,7 +500,9 @@ class TiltBank:
                 break
             prev, gk, gs = pt[ii, jj], pk[ii, jj], psi[ii, jj]
             cand = {int(t): self.grid.candidates(level, int(t)) for t in np.unique(prev)}
-            order = np.lexsort((gk, gs))  # scale-major: a block of groups shares one scale
+            # prototypes in batches of PROTOTYPE_BATCH (their copies are built, used and dropped together),
+            # scale-major within a batch: a block of groups shares one scale
+            order = np.lexsort((gk, gs, gk // PROTOTYPE_BATCH))
             key = np.stack([gs, gk], 1)[order]
             cut = np.flatnonzero(np.any(key[1:] != key[:-1], axis=1)) + 1
             groups = []
@@ -497,11 +511,16 @@ class TiltBank:
                 u = np.unique(np.concatenate([cand[int(t)] for t in np.unique(prev[es])]))
                 if u.size:
                     groups.append((int(key[c0][0]), int(key[c0][1]), u, es))
-            self._build([(k, int(t)) for _, k, u, _ in groups for t in u])
-            b = 0
+            b, bend = 0, 0
             while b < len(groups):  # blocks of groups of one scale, about COLUMN_BUDGET columns each
+                if b == bend:  # a new batch of prototypes: the previous batch's copies go, this one's are built
+                    self._drop_refined()
+                    bend = b
+                    while bend < len(groups) and groups[bend][1] // PROTOTYPE_BATCH == groups[b][1] // PROTOTYPE_BATCH:
+                        bend += 1
+                    self._build([(k, int(t)) for _, k, u, _ in groups[b:bend] for t in u])
                 si, e, ncol = groups[b][0], b, 0
-                while e < len(groups) and groups[e][0] == si and (not ncol or ncol + len(groups[e][2]) <= COLUMN_BUDGET):
+                while e < bend and groups[e][0] == si and (not ncol or ncol + len(groups[e][2]) <= COLUMN_BUDGET):
                     ncol += len(groups[e][2])
                     e += 1
                 blk, b = groups[b:e], e
@@ -544,6 +563,7 @@ class TiltBank:
                         pd[ri, ci] = De[rr, j][better]
                         pyaw[ri, ci] = yg[inv, j][better]
                         pt[ri, ci] = cols[j[better]]
+        self._drop_refined()
         for j in range(pk.shape[1]):
             i = np.flatnonzero(pd[:, j] < out.D[np.arange(n), pk[:, j]])
             k = pk[i, j]
