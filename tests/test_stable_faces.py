@@ -1,0 +1,87 @@
+"""Stable resting directions of gridded volumes (``faces.stable_ups``) and the stable-face pairwise distance
+(``seeding.FaceDistance``).
+
+References: elementary statics, quasi-static resting (from memory; as in Goldberg et al., "Part pose statistics",
+IEEE Trans. Robotics and Automation 1999): a rigid body rests stably on a face of its convex hull when its centre
+of mass projects inside that face.  A rectangular box therefore rests on each of its six faces; a prism on an
+obtuse triangle rests on its two end caps and on the triangle's longest side only (a side with an obtuse angle at
+one end has the centre of mass projecting beyond that end).  The distance's reference twin is
+``posesearch.pose_distances_naive`` (every shift rolled explicitly) on the resting copies.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from protomine.mine.faces import stable_ups
+from protomine.mine.posesearch import pose_distances_naive
+from protomine.mine.seeding import FaceDistance
+from protomine.mine.tilts import TiltGrid, _cell_points, _resample_copies, copy_geometries, solid_points
+
+R, A, H, ASPECT = 16, 72, 24, 0.6
+
+
+def _solid(inside) -> np.ndarray:
+    x, y, z = _cell_points(R, A, H, 1.0, ASPECT).T
+    return inside(x, y, z).reshape(R, A, H).astype(np.float32)
+
+
+def _angles(u: np.ndarray, v: np.ndarray) -> np.ndarray:
+    return np.degrees(np.arccos(np.clip(u @ v.T, -1.0, 1.0)))
+
+
+def test_a_box_rests_on_its_six_faces():
+    box = _solid(lambda x, y, z: (np.abs(x) < 0.35) & (np.abs(y) < 0.2) & (z > 0.05) & (z < 0.5))
+    ups = stable_ups(box, np.ones_like(box), ASPECT)
+    truth = np.array([[1, 0, 0], [-1, 0, 0], [0, 1, 0], [0, -1, 0], [0, 0, 1], [0, 0, -1]], float)
+    ang = _angles(ups, truth)
+    # a cylindrical grid draws the flat sides in steps: every face found within 16 degrees, nothing else
+    assert np.all(ang.min(axis=0) < 16.0)
+    assert np.all(ang.min(axis=1) < 16.0)
+    np.testing.assert_allclose(ups[0], [0, 0, 1])
+
+
+def test_an_obtuse_prism_rests_on_its_caps_and_longest_side_only():
+    # triangle in (x, z): A (-0.4, 0.05), B (0.2, 0.05), C (0.45, 0.4); obtuse at B, so AB (the bottom it is
+    # seen on) and BC are unstable and AC is the stable side; extruded along y (|y| < 0.3): caps at +-y
+    a, b, c = np.array([-0.4, 0.05]), np.array([0.2, 0.05]), np.array([0.45, 0.4])
+    assert (a - b) @ (c - b) < 0  # the angle at B is obtuse
+
+    def inside(x, y, z):
+        p = np.stack([x, z], -1)
+        s = [(q1 - q0)[0] * (p - q0)[..., 1] - (q1 - q0)[1] * (p - q0)[..., 0] for q0, q1 in ((a, b), (b, c), (c, a))]
+        return (s[0] >= 0) & (s[1] >= 0) & (s[2] >= 0) & (np.abs(y) < 0.3)
+
+    prism = _solid(inside)
+    ups = stable_ups(prism, np.ones_like(prism), ASPECT)[1:]  # [0] is +z, the pose it was seen in
+    ac = c - a
+    out = np.array([-ac[1], ac[0]]) / np.linalg.norm(ac)  # normal of AC pointing away from B
+    assert out @ (b - a) < 0
+    truth = np.array([[-out[0], 0.0, -out[1]], [0, 1, 0], [0, -1, 0]])
+    ang = _angles(ups, truth)
+    assert len(ups) == 3
+    assert np.all(ang.min(axis=0) < 10.0)
+
+
+def test_face_distance_is_the_minimum_over_the_resting_copies():
+    rng = np.random.default_rng(0)
+    box = _solid(lambda x, y, z: (np.abs(x) < 0.35) & (np.abs(y) < 0.2) & (z > 0.05) & (z < 0.5))
+    R2, A2, H2 = 8, 36, 12
+    grid = TiltGrid(nsides=(1,))
+    # two coarse prototypes (C = 2: surface and a random second channel) and three objects
+    sub = box[::2, ::2, ::2]
+    P = np.stack([np.stack([sub, rng.random(sub.shape).astype(np.float32) * sub]),
+                  np.stack([np.roll(sub, 3, axis=1), 0.5 * np.roll(sub, 3, axis=1)])])
+    V = np.ones((2,) + sub.shape, np.float32)
+    X = np.clip(P[[0, 1, 0]] + 0.05 * rng.standard_normal((3,) + P.shape[1:]).astype(np.float32), 0, 1)
+    W = np.ones((3,) + sub.shape, np.float32)
+    aspect = np.array([ASPECT, ASPECT])
+    scales = (0.93, 1.0, 1.07)
+    D = FaceDistance(aspect, scales, grid)(X, W, P, V)
+    for k in range(2):
+        ups = stable_ups(P[k, 0], V[k], ASPECT)
+        gs = copy_geometries((R2, A2, H2), ASPECT, ups, grid, solid_points(P[k, 0], V[k], ASPECT, grid))
+        pc, vc = _resample_copies(np.broadcast_to(P[k], (len(gs),) + P.shape[1:]),
+                                  np.broadcast_to(V[k], (len(gs),) + V.shape[1:]), gs, np.full(len(gs), ASPECT))
+        pc[0], vc[0] = P[k], V[k]
+        ref = pose_distances_naive(X, W, pc, vc, scales=scales).D.min(axis=1)
+        np.testing.assert_allclose(D[:, k], ref, rtol=1e-4, atol=1e-6)
