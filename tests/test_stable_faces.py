@@ -85,3 +85,38 @@ def test_face_distance_is_the_minimum_over_the_resting_copies():
         pc[0], vc[0] = P[k], V[k]
         ref = pose_distances_naive(X, W, pc, vc, scales=scales).D.min(axis=1)
         np.testing.assert_allclose(D[:, k], ref, rtol=1e-4, atol=1e-6)
+
+
+def test_choose_k_on_the_stable_face_matrix_joins_each_class_across_its_faces():
+    # two box-like classes (invented data), every object lying on one of its class's stable faces with a random
+    # yaw: the stable-face matrix's groups are the two classes (the statics above), the yaw-only matrix's are not
+    from protomine.mine.choosek import choose_k
+    from protomine.mine.engine import ArraySource
+    from protomine.mine.posesearch import shift_volume
+    rng = np.random.default_rng(1)
+    r, a, h, asp = 8, 36, 12, 1.0
+    pts = _cell_points(r, a, h, 1.0, asp)
+    x, y, z = pts.T
+    shapes = [(np.abs(x) < 0.6) & (np.abs(y) < 0.25) & (z > 0.1) & (z < 0.4),
+              ((np.abs(x) < 0.3) & (np.abs(y) < 0.3) & (z > 0.05) & (z < 0.9)) | ((np.hypot(x, y) < 0.15) & (z > 0.05))]
+    grid = TiltGrid(nsides=(1,), radial_margin=1.15, height_margin=1.10)
+    X, W, aspect, labels = [], [], [], []
+    for k, s in enumerate(shapes):
+        surf = s.reshape(r, a, h).astype(np.float32)
+        P = np.stack([surf, 0.5 * surf])[None]
+        V = np.ones((1, r, a, h), np.float32)
+        ups = stable_ups(surf, V[0], asp)[:3]
+        gs = copy_geometries((r, a, h), asp, ups, grid, solid_points(surf, V[0], asp, grid))
+        pc, vc = _resample_copies(np.repeat(P, len(gs), 0), np.repeat(V, len(gs), 0), gs, np.full(len(gs), asp))
+        for i in range(9):
+            f = i % len(gs)
+            yaw = rng.uniform(0, a)
+            X.append(shift_volume(pc[f][None], yaw, axis=3)[0] + 0.05 * rng.standard_normal(pc[f].shape).astype(np.float32))
+            W.append(shift_volume(vc[f][None], yaw, axis=2)[0])
+            aspect.append(gs[f].z_max / gs[f].rho_max)
+            labels.append(k)
+    X, W = np.clip(np.stack(X), 0, 1).astype(np.float32), np.stack(W).astype(np.float32)
+    src = ArraySource(X, W, np.array(aspect))
+    k_faces, _ = choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect))
+    assert k_faces == 2
+    assert choose_k(src, max_k=6, scales=(1.0,), random_state=0)[0] > 2  # yaw and scale only: split by face
