@@ -140,7 +140,7 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
     top = max(table, key=lambda r: (r["silhouette"], -r["k"]))
     by_silhouette = (min(r["k"] for r in table if r["silhouette"] >= top["silhouette"] - top["silhouette_se"])
                      if one_se else top["k"])
-    if face_grid is not None and distance_is_faces and components >= min_k:
+    if distance_is_faces and components >= min_k:
         # stable-face matrix: the mutual kNN groups join a class's faces, while the silhouette still rises with
         # the faces' sub-groups (tumbled demo seed 0: silhouette K 15, groups 8 = the classes)
         return int(min(components, table[-1]["k"])), table

@@ -134,7 +134,8 @@ def stable_ups(surface: np.ndarray, weight: np.ndarray, aspect: float, *, merge_
     """Up directions (F, 3) on which a volume (surface evidence, weight (R, A, H); grid aspect z_max / rho_max)
     rests stably, +z first (the pose it was seen in).  Solid cells as the tilt search takes them
     (``tilts.SURFACE_MIN``, ``tilts.OBSERVED_MIN``); the centre of mass is their centroid weighted by cell
-    volume (proportional to the cell's radius); the centre must project at least half a cell inside a face.  See the module docstring."""
+    volume (proportional to the cell's radius), and it must project at least half a cell inside a face (see
+    the module docstring)."""
     from scipy.spatial import ConvexHull, QhullError
     from .tilts import OBSERVED_MIN, SURFACE_MIN, _cell_points
     R, A, H = surface.shape
