@@ -120,3 +120,35 @@ def test_choose_k_on_the_stable_face_matrix_joins_each_class_across_its_faces():
     k_faces, _ = choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect))
     assert k_faces == 2
     assert choose_k(src, max_k=6, scales=(1.0,), random_state=0)[0] > 2  # yaw and scale only: split by face
+
+
+def test_label_search_of_exact_resting_faces_finds_a_view_resting_on_a_side():
+    # the matcher's exact-face search (label.matcher.ExactFaces): a box prototype and a view of it resting on a
+    # side at a yaw; the view must get the minimum over the box's resting copies (reference twin:
+    # posesearch.pose_distances_naive on the copies) and that copy's up, within the stable_ups tolerance above
+    from protomine.label.matcher import ExactFaces
+    from protomine.mine.tilts import TiltBank
+    box = _solid(lambda x, y, z: (np.abs(x) < 0.35) & (np.abs(y) < 0.2) & (z > 0.05) & (z < 0.5))
+    P = np.stack([box, 0.5 * box])[None]
+    V = np.ones((1,) + box.shape, np.float32)
+    grid = TiltGrid(nsides=(1,))
+    scales = (1.0,)
+    bank = TiltBank(P, V, np.array([ASPECT]), scales, grid)
+    ups = stable_ups(box, np.ones_like(box), ASPECT)
+    side = ups[np.argmax(ups @ np.array([1.0, 0.0, 0.0]))]  # the +x side as the box's own hull gives it
+    assert _angles(side[None], np.array([[1.0, 0.0, 0.0]]))[0, 0] < 16.0
+    view, w = bank.copy_at(0, side)
+    view = np.roll(view, 5, axis=2)[None]
+    w = np.roll(w, 5, axis=1)[None]
+    faces = ExactFaces.build(bank, np.array([[[0.0, 0.0, 1.0]]]), np.array([[1]]), scales)
+    grid_m = bank.match(view, w)
+    D, yaw, sc = grid_m.D.astype(np.float64), grid_m.yaw_deg.astype(np.float64), grid_m.scale.astype(np.float64)
+    up = grid.dirs[grid_m.tilt]
+    upright = grid.is_upright(grid_m.tilt)
+    d_grid = float(D[0, 0])
+    faces.improve(view, w, D, yaw, sc, up, upright)
+    ref = pose_distances_naive(view, w, *bank.copies_at(0, faces.ups), scales=scales).D.min()
+    np.testing.assert_allclose(D[0, 0], min(ref, d_grid), rtol=1e-4, atol=1e-6)
+    assert D[0, 0] < 0.5 * d_grid  # the grid's nearest tilt fits a resting box far worse than its face
+    assert _angles(up[0], side[None])[0, 0] < 1.0 and not upright[0, 0]
+    assert abs(((yaw[0, 0] - 5 * 360 / box.shape[1]) + 180) % 360 - 180) < 1.0
