@@ -59,10 +59,12 @@ from ..mine.posesearch import PoseBank
 from ..mine.reliability import reliable_distances
 from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
-from ..mine.tilts import TiltBank, TiltGrid, make_bank, rotation_of
+from ..mine.tilts import TiltBank, TiltGrid, make_bank
+from .. import rotations as rot
 from ..rotations import matrix_to_quat
 
 N_ALTERNATIVES = 3
+EXACT_MERGE_DEG = 3.0    # exact resting directions this close to +z or to each other are searched once
 MIN_PIXELS = 10          # fewer object pixels in a frame than this: too little to lift (as ingest's single views)
 
 
@@ -73,10 +75,68 @@ def symmetry_name(code: int) -> str:
 
 
 @dataclass
+class ExactFaces:
+    """Copies of each prototype resting on its exact resting directions, searched over yaw x scale besides the
+    tilt grid (``[mine] face_pairs``): the directions are the library's recorded faces and ``faces.stable_ups``
+    of the prototype's solid cells (+z left out: the grid has it exactly).  A grid leaves a view resting on
+    another face up to the grid's covering radius off its tilt, and the distance grows fast with that error
+    (README, "Why tumbled classes split by face").  owner (M,) prototype of each copy, ups (M, 3)."""
+
+    owner: np.ndarray
+    ups: np.ndarray
+    bank: PoseBank
+
+    @classmethod
+    def build(cls, bank: TiltBank, face_up: np.ndarray, face_symmetry: np.ndarray, scales: tuple[float, ...]
+              ) -> "ExactFaces | None":
+        """From a TiltBank's prototypes (its P, V, aspect) and the library's faces face_up (K, F, 3),
+        face_symmetry (K, F) (-1 = padding); None when no prototype has a resting direction besides +z."""
+        from ..mine.faces import stable_ups
+        owner, ups, Pc, Vc = [], [], [], []
+        cos_same = np.cos(np.deg2rad(EXACT_MERGE_DEG))
+        for k in range(bank.K):
+            rec = np.asarray(face_up[k], np.float64)[np.asarray(face_symmetry[k]) >= 0].reshape(-1, 3)
+            cand = np.concatenate([rec, stable_ups(bank.P[k, 0], bank.V[k], float(bank.aspect[k]))])
+            cand = cand / np.maximum(np.linalg.norm(cand, axis=1, keepdims=True), 1e-12)
+            keep: list[np.ndarray] = []
+            for u in cand:
+                if u[2] < cos_same and all(float(u @ v) < cos_same for v in keep):
+                    keep.append(u)
+            if keep:
+                pc, vc = bank.copies_at(k, np.asarray(keep))
+                owner += [k] * len(keep)
+                ups.append(np.asarray(keep))
+                Pc.append(pc)
+                Vc.append(vc)
+        if not owner:
+            return None
+        return cls(np.asarray(owner), np.concatenate(ups), PoseBank(np.concatenate(Pc), np.concatenate(Vc), scales))
+
+    def improve(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, yaw: np.ndarray, scale: np.ndarray,
+                up: np.ndarray, upright: np.ndarray) -> None:
+        """In place, for objects X (n, C, R, A, H), W (n, R, A, H) and their grid poses D, yaw, scale (n, K),
+        up (n, K, 3), upright (n, K): each (object, prototype) whose best exact resting copy fits better takes
+        that copy's distance, yaw, scale and up (and is no longer upright)."""
+        m = self.bank.match(X, W)
+        Df = np.where(np.isfinite(m.D), m.D, np.inf).astype(np.float64)
+        r = np.arange(len(X))
+        for k in np.unique(self.owner):
+            cols = np.flatnonzero(self.owner == k)
+            j = cols[np.argmin(Df[:, cols], axis=1)]
+            better = Df[r, j] < np.where(np.isfinite(D[:, k]), D[:, k], np.inf)
+            jb = j[better]
+            D[better, k], yaw[better, k], scale[better, k] = Df[better, jb], m.yaw_deg[better, jb], m.scale[better, jb]
+            up[better, k] = self.ups[jb]
+            upright[better, k] = False
+
+
+@dataclass
 class Matcher:
     """A library prepared for matching: prototypes, calibration and the lifting settings it was built with.
 
-    P (K, C, R, A, H) features, V (K, R, A, H) weights (ones when ``weighted`` is False).
+    P (K, C, R, A, H) features, V (K, R, A, H) weights (ones when ``weighted`` is False).  ``exact_faces``
+    (the library's ``[mine] face_pairs``; with tilts only) also searches each prototype's exact resting
+    directions (:class:`ExactFaces`).
     """
 
     library: Library
@@ -86,10 +146,12 @@ class Matcher:
     scales: tuple[float, ...]
     unknown_cut: float
     weighted: bool = True
+    exact_faces: bool = False
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     bank: PoseBank | TiltBank = field(init=False)
+    face_bank: ExactFaces | None = field(init=False)
     groups: list[np.ndarray] = field(init=False)
     tilts: TiltGrid = field(init=False)
 
@@ -101,6 +163,9 @@ class Matcher:
         # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
         self.bank = make_bank(self.P, self.V, self.scales, self.tilts, self.library.prototypes["aspect"])
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
+        pr = self.library.prototypes
+        self.face_bank = (ExactFaces.build(self.bank, pr["face_up"], pr["face_symmetry"], self.scales)
+                          if self.exact_faces and isinstance(self.bank, TiltBank) else None)
 
     @property
     def K(self) -> int:
@@ -126,13 +191,18 @@ class Matcher:
         raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
         tilt = np.concatenate([p.tilt for p in parts])
         fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
+        up = self.tilts.dirs[tilt]
+        upright = self.tilts.is_upright(tilt)
+        if self.face_bank is not None:  # the exact resting directions, where they fit better than the grid's
+            for i in range(0, n, self.chunk_size):
+                sl = slice(i, i + self.chunk_size)
+                self.face_bank.improve(X[sl], W[sl], D[sl], raw[sl], fit_scale[sl], up[sl], upright[sl])
         # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
         # views, as the library's single-view calibration did (``mine.reliability``; none: the plain distance);
         # the reliability lives in the canonical frame, so matches on another face keep the plain distance
         lam = self.library.prototypes.get("cell_reliability") if self.weighted else None
         Dr = D
         if lam is not None:
-            upright = self.tilts.is_upright(tilt)
             Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
         S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
@@ -140,7 +210,7 @@ class Matcher:
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         pr = self.library.prototypes
-        face, rotation, yaw = face_poses(rotation_of(self.tilts, tilt, raw), pr["face_up"], pr["face_symmetry"],
+        face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
                 "rotation": rotation, "best": best}
@@ -161,7 +231,7 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   library_cut(library), weighted)
+                   library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)))
 
 
 @dataclass

@@ -29,7 +29,9 @@ On a random subsample of at most ``sample_size`` objects:
    smaller scene), while the nearest-neighbour graph keeps the close pairs apart.  In the symmetric graph
    one object whose nearest neighbours lie in two classes joins them (2 and 3 groups counted on scenes
    of four peg-post classes); the mutual graph cuts such stragglers off;
-5. K = the larger of the silhouette's choice and the group count (clipped to ``max_k``).  The silhouette's
+5. K = the larger of the silhouette's choice and the group count (clipped to ``max_k``); on the stable-face
+   matrix (``face_grid``, ``[mine] face_pairs``) the group count alone, whose groups then join each class's
+   resting faces while the silhouette keeps rising with the faces' sub-groups.  The silhouette's
    choice is its argmax (the smallest K on ties) or, with ``one_se``, the smallest K whose mean silhouette
    is within one standard error (of the per-object silhouettes at the argmax) of the best (the one-SE
    rule of Breiman et al. 1984): on small stores the silhouette is flat over a range of K and its argmax
@@ -66,9 +68,9 @@ from scipy.sparse.csgraph import connected_components
 from sklearn.metrics import silhouette_samples
 
 from ..progress import bar
-from .engine import PoseKMeans, Source, _gather
+from .engine import PoseKMeans, Source, _gather, _source_aspect
 from .posesearch import _check_scales
-from .seeding import DistanceFn, best_kmedoids, outlying, pairwise_pose_distances, symmetric_distances
+from .seeding import DistanceFn, FaceDistance, best_kmedoids, outlying, pairwise_pose_distances, symmetric_distances
 from .tilts import tilt_pose_distances
 
 KNN_NEIGHBOURS = 3             # neighbours per object in the symmetric kNN graph (knn_components' default)
@@ -77,9 +79,12 @@ MUTUAL_NEIGHBOURS = 4          # neighbours per object in the mutual kNN graph w
 
 def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
              min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048, progress=None,
-             distance: DistanceFn | None = None, one_se: bool = False) -> tuple[int, list[dict]]:
+             distance: DistanceFn | None = None, one_se: bool = False, face_grid=None,
+             aspect: np.ndarray | None = None) -> tuple[int, list[dict]]:
     """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
-    (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows."""
+    (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows.
+    ``face_grid`` (a ``tilts.TiltGrid``) with the objects' ``aspect`` (N,) and no ``distance``: the matrix searches
+    each object's stable resting faces besides yaw and scale (``seeding.FaceDistance``)."""
     scales = _check_scales(scales)
     N = len(source)
     if min_k < 2 or max_k < min_k:
@@ -88,7 +93,8 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
         raise ValueError(f"n_objects={N} must be > min_k={min_k} to compare clusterings")
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
-                     chunk_size=chunk_size, progress=progress, distance=distance, one_se=one_se)
+                     chunk_size=chunk_size, progress=progress, distance=distance, one_se=one_se, face_grid=face_grid,
+                     aspect=aspect)
 
 
 def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS, *, mutual: bool = False) -> int:
@@ -112,9 +118,12 @@ def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS, *, mutual: b
 
 
 def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None,
-              one_se=False):
+              one_se=False, face_grid=None, aspect=None):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
+    distance_is_faces = face_grid is not None and distance is None
+    if distance_is_faces:
+        distance = FaceDistance(np.asarray(aspect)[idx], scales, face_grid)
     Xs, Ws = _gather(source, idx, chunk_size)
     S = pairwise_pose_distances(Xs, Ws, distance, scales=scales, progress=progress, what="choose K")
     out = outlying(S)
@@ -131,6 +140,10 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
     top = max(table, key=lambda r: (r["silhouette"], -r["k"]))
     by_silhouette = (min(r["k"] for r in table if r["silhouette"] >= top["silhouette"] - top["silhouette_se"])
                      if one_se else top["k"])
+    if distance_is_faces and components >= min_k:
+        # stable-face matrix: the mutual kNN groups join a class's faces, while the silhouette still rises with
+        # the faces' sub-groups (tumbled demo seed 0: silhouette K 15, groups 8 = the classes)
+        return int(min(components, table[-1]["k"])), table
     return int(max(by_silhouette, min(components, table[-1]["k"]))), table
 
 
@@ -165,7 +178,7 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
         model = PoseKMeans(n_clusters=len(rest), scales=model.scales, n_init=1, max_iter=model.max_iter,
                            tol=model.tol, chunk_size=model.chunk_size, random_state=model.random_state,
                            sample_size=model.sample_size, symmetry_factor=model.symmetry_factor, symmetry_tol=model.symmetry_tol,
-                           tilts=model.tilts, init=(model.prototypes_[rest], model.prototype_weights_[rest],
+                           tilts=model.tilts, face_pairs=model.face_pairs, init=(model.prototypes_[rest], model.prototype_weights_[rest],
                                                     None if model.aspect_ is None else model.aspect_[rest]),
                            progress=model.progress).fit(source)
     return model, merges
@@ -176,8 +189,11 @@ def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
              **engine_kwargs) -> tuple[PoseKMeans, dict]:
     """Choose K (``one_se``: see ``choose_k``), fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
     rng = np.random.default_rng(random_state)
+    grid = engine_kwargs.get("tilts")
+    faces = engine_kwargs.get("face_pairs") and grid is not None and not grid.is_identity
     k, table = choose_k(source, max_k=max_k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
-                        sample_size=sample_size, progress=engine_kwargs.get("progress"), one_se=one_se)
+                        sample_size=sample_size, progress=engine_kwargs.get("progress"), one_se=one_se,
+                        face_grid=grid if faces else None, aspect=_source_aspect(source) if faces else None)
     model = PoseKMeans(n_clusters=k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                        **engine_kwargs).fit(source)
     model, merges = merge_close_prototypes(model, source, merge_threshold=merge_threshold)

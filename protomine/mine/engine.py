@@ -582,6 +582,8 @@ class PoseKMeans:
     tilts : a :class:`protomine.mine.tilts.TiltGrid` of up directions to search besides yaw and scale (3-D
         poses; the source must then carry ``aspect`` (N,)), or None for the yaw-only search.  With tilts,
         ``init`` may hold a third array, the prototypes' aspects (K,).
+    face_pairs : with tilts, the seeding matrix searches each object's stable resting directions
+        (``seeding.FaceDistance``) instead of yaw and scale only.
 
     Fitted with tilts besides the above: ``tilt_`` (N,) indices into ``tilts.dirs`` (in the search frame),
     ``rotation_`` (N, 3, 3) object frame <- canonical prototype frame, ``up_`` (N, 3) each member's up
@@ -593,8 +595,9 @@ class PoseKMeans:
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
-                 tilts: TiltGrid | None = None):
+                 tilts: TiltGrid | None = None, face_pairs: bool = False):
         self.n_clusters = n_clusters
+        self.face_pairs = face_pairs
         self.scales = scales
         self.n_init = n_init
         self.max_iter = max_iter
@@ -659,8 +662,10 @@ class PoseKMeans:
         N, K = len(source), self.n_clusters
         idx = np.sort(rng.choice(N, size=min(N, self.sample_size), replace=False))
         Xs, Ws = _gather(source, idx, self.chunk_size)
-        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng, size=max(SEED_SIZE, 2 * K))
         grid = self._grid()
+        faces = self.face_pairs and grid is not None
+        seeder = PoseSeeder(Xs, Ws, scales=scales, rng=rng, size=max(SEED_SIZE, 2 * K), face_grid=grid if faces else None,
+                            aspect=_source_aspect(source)[idx] if faces else None)
         sub = ArraySource(Xs, Ws, None if grid is None else _source_aspect(source)[idx])
         fit_on = source if N <= self.sample_size else sub
         # the subsample's spectra serve every restart (and the seeding passes); when the subsample is

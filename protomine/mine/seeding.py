@@ -33,6 +33,8 @@ Public API
 - ``kmedoids_plusplus(S, K, rng) -> medoids (K,)``
 - ``best_kmedoids(S, K, rng, starts=KMEDOIDS_STARTS) -> (labels, cost)``
 - ``outlying(S) -> (n,) bool``: objects far from every other one (Tukey's fence on nearest-neighbour distances)
+- ``FaceDistance(aspect, scales, grid)``: a ``distance`` over yaw x scale x each prototype's stable resting
+  directions (``faces.stable_ups``, exact directions instead of a tilt grid; ``[mine] face_pairs``)
 - ``PoseSeeder(X, W, *, scales, rng, size=SEED_SIZE, distance=None)``; ``.partition(K, restart, rng) ->
   (labels (n,), refs (K,))``; ``.S`` (m, m), ``.index`` (m,) rows of X in the matrix.
 """
@@ -81,6 +83,55 @@ def kmedoids(S: np.ndarray, labels: np.ndarray, max_iter: int = 30) -> tuple[np.
 def default_distance(scales: Sequence[float]) -> DistanceFn:
     """The yaw x scale pose search of :mod:`posesearch` as a distance function."""
     return lambda X, W, P, V: pose_distances(X, W, P, V, scales=scales, chunk_size=256).D
+
+
+class FaceDistance:
+    """``distance(X, W, P, V) -> (n, k)``: the pose-minimised distance over yaw x scale x the stable resting
+    directions of each prototype (``faces.stable_ups``), the prototypes being objects with grid aspects
+    ``aspect`` (k,) (z_max / rho_max); each resting copy is re-normalised by its own footprint and height as
+    in the tilt search (``tilts.copy_geometries``).  The copies are built once per P (the matrix objects of
+    ``pairwise_pose_distances``, passed unchanged for every block of rows)."""
+
+    BLOCK = 512  # copies per PoseBank (bounds the spectra's memory)
+
+    def __init__(self, aspect: np.ndarray, scales: Sequence[float], grid):
+        self.aspect = np.asarray(aspect, np.float64)
+        self.scales, self.grid = tuple(scales), grid
+        self._P = None
+
+    def _build(self, P: np.ndarray, V: np.ndarray) -> None:
+        from .faces import stable_ups
+        from .tilts import _resample_copies, copy_geometries, solid_points
+        P, V = np.asarray(P, np.float32), np.asarray(V, np.float32)
+        if len(self.aspect) != len(P):
+            raise ValueError(f"FaceDistance: {len(self.aspect)} aspects for {len(P)} prototypes")
+        owner, Pc, Vc = [], [], []
+        for k in range(len(P)):
+            a = float(self.aspect[k])
+            ups = stable_ups(P[k, 0], V[k], a)
+            gs = copy_geometries(P.shape[2:], a, ups, self.grid, solid_points(P[k, 0], V[k], a, self.grid))
+            pc, vc = _resample_copies(np.broadcast_to(P[k], (len(gs),) + P.shape[1:]),
+                                      np.broadcast_to(V[k], (len(gs),) + V.shape[1:]), gs, np.full(len(gs), a))
+            pc[0], vc[0] = P[k], V[k]  # +z: the prototype as it is, not resampled
+            owner += [k] * len(gs)
+            Pc.append(pc)
+            Vc.append(vc)
+        owner = np.asarray(owner)
+        Pc, Vc = np.concatenate(Pc), np.concatenate(Vc)
+        self._banks = [(owner[b:b + self.BLOCK], PoseBank(Pc[b:b + self.BLOCK], Vc[b:b + self.BLOCK], self.scales))
+                       for b in range(0, len(owner), self.BLOCK)]
+        self._k = len(P)
+        self._P = P
+
+    def __call__(self, X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray) -> np.ndarray:
+        if self._P is None or P is not self._P and not np.array_equal(P, self._P):
+            self._build(P, V)
+        D = np.full((len(X), self._k), np.inf, np.float32)
+        for owner, bank in self._banks:
+            d = bank.match(X, W).D
+            d = np.where(np.isfinite(d), d, np.inf)
+            np.minimum.at(D.T, owner, d.T)
+        return D
 
 
 def pairwise_pose_distances(X: np.ndarray, W: np.ndarray, distance: DistanceFn | None = None, *,
@@ -153,15 +204,20 @@ class PoseSeeder:
     """Seeds for the engine's restarts from pose-searched distances (module docstring).
 
     X (n, C, R, A, H), W (n, R, A, H): the engine's subsample; ``size`` caps the objects in the matrix;
-    ``distance`` (default: :func:`default_distance` over ``scales``) is the pose-minimised distance.
+    ``distance`` (default: :func:`default_distance` over ``scales``) is the pose-minimised distance;
+    ``face_grid`` (a ``tilts.TiltGrid``, for its margins) with the objects' ``aspect`` (n,) and no ``distance``:
+    :class:`FaceDistance`.
     """
 
     def __init__(self, X: np.ndarray, W: np.ndarray, *, scales: Sequence[float], rng: np.random.Generator,
-                 size: int = SEED_SIZE, distance: DistanceFn | None = None):
+                 size: int = SEED_SIZE, distance: DistanceFn | None = None, face_grid=None,
+                 aspect: np.ndarray | None = None):
         self.X, self.W = X, W
-        self.distance = distance or default_distance(scales)
         n = len(X)
         self.index = np.sort(rng.choice(n, size=min(n, size), replace=False))
+        if face_grid is not None and distance is None:  # stable resting faces of the matrix objects (FaceDistance)
+            distance = FaceDistance(np.asarray(aspect)[self.index], scales, face_grid)
+        self.distance = distance or default_distance(scales)
         self.S = pairwise_pose_distances(X[self.index], W[self.index], distance, scales=scales)
 
     def medoid_labels(self, K: int, restart: int, rng: np.random.Generator) -> np.ndarray:
