@@ -17,6 +17,7 @@ from protomine.mine.pipeline import mine_store
 from protomine.scenes import shapes as S
 from protomine.scenes.render import Scene, SceneObject, look_at, render
 from protomine.scenes.scenario import place_touching
+from touching_pair import ring_proposals
 
 W, H = 160, 120
 INTR = Intrinsics(W, H, 150.0, 150.0, (W - 1) / 2, (H - 1) / 2)
@@ -146,26 +147,14 @@ def test_two_touching_posts_of_one_colour_on_bases_at_the_margin_stay_two_whole_
     rendered masks) holding >= 0.8 of that object's masked pixels: no patch of a base becomes an object of
     its own, and the pieces of one post that meet the other do not glue the two.  Expected answer by
     construction (the renderer's own masks)."""
-    from protomine.scenes.noise import add_sensor_noise
     rng = np.random.default_rng(5)
     shapes = [_flange_post(0.007), _flange_post(0.007)]
     yaws = np.array([10.0, 75.0])
     pos = place_touching(shapes, yaws, rng)
     col = (0.42, 0.2, 0.52)
     scene = Scene([SceneObject(s, float(y), p, col) for s, y, p in zip(shapes, yaws, pos)])
-    frames = []
-    for i in range(6):
-        a, el = 2 * np.pi * i / 6 + rng.uniform(0, 0.5), np.deg2rad(rng.uniform(35, 55))
-        eye = 0.55 * np.array([np.cos(el) * np.cos(a), np.cos(el) * np.sin(a), np.sin(el)])
-        r = render(scene, INTR, look_at(eye, np.array([0, 0, 0.04]), np.array([0, 0, 1.0])))
-        depth, rgb = add_sensor_noise(r, rng)
-        frames.append(dict(id=f"{i:06d}", cam_to_world=look_at(eye, np.array([0, 0, 0.04]), np.array([0, 0, 1.0])),
-                           rgb=rgb, depth_m=depth, mask=r.mask))
-    write_capture(tmp_path / "pair", intrinsics=INTR, depth_scale=1000.0, frames=frames)
-    cap = read_capture(tmp_path / "pair")
-    cfg = load_config("fast")
-    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
-    free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
+    masked, free = ring_proposals(tmp_path, scene, INTR, rng, np.zeros(3), 0.55, (35, 55),
+                                  target=np.array([0, 0, 0.04]))
     assert len(free.proposals) == 2, [p.n_points for p in free.proposals]
     masks = {fd.id: fd.mask.reshape(-1) for fd in free.frames}
     for p in free.proposals:

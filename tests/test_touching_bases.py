@@ -7,14 +7,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from protomine.capture import Intrinsics, read_capture, write_capture
-from protomine.config import load_config
+from protomine.capture import Intrinsics
 from protomine.geometry import plane_basis
-from protomine.ingest.proposals import _release_low_strays, find_objects, grow_from_bodies, grow_into_low_band, grow_steps
+from protomine.ingest.proposals import _release_low_strays, grow_from_bodies, grow_into_low_band, grow_steps
 from protomine.scenes import shapes as S
-from protomine.scenes.noise import add_sensor_noise
-from protomine.scenes.render import Scene, SceneObject, look_at, render
+from protomine.scenes.render import Scene, SceneObject
 from protomine.scenes.scenario import place_touching
+from touching_pair import ring_proposals
 
 BASE_OFF_M = {"one colour": 0.006, "two colours": 0.002}
 W, H = 200, 150
@@ -107,19 +106,7 @@ def test_touching_bases_seen_close_keep_their_footprint_and_base_centre(tmp_path
     cols = [(0.42, 0.2, 0.52)] * 2 if colours == "one colour" else [(0.42, 0.2, 0.52), (0.8, 0.55, 0.1)]
     scene = Scene([SceneObject(s, float(y), p, c) for s, y, p, c in zip(shapes, yaws, pos, cols)])
     mid = np.array([*np.mean(pos, axis=0), 0.03])
-    frames = []
-    for i in range(6):
-        a, el = 2 * np.pi * i / 6 + rng.uniform(0, 0.5), np.deg2rad(rng.uniform(45, 60))
-        eye = mid + 0.33 * np.array([np.cos(el) * np.cos(a), np.cos(el) * np.sin(a), np.sin(el)])
-        T = look_at(eye, mid, np.array([0, 0, 1.0]))
-        r = render(scene, INTR, T)
-        depth, rgb = add_sensor_noise(r, rng)
-        frames.append(dict(id=f"{i:06d}", cam_to_world=T, rgb=rgb, depth_m=depth, mask=r.mask))
-    write_capture(tmp_path / "pair", intrinsics=INTR, depth_scale=1000.0, frames=frames)
-    cap = read_capture(tmp_path / "pair")
-    cfg = load_config("fast")
-    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
-    free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
+    masked, free = ring_proposals(tmp_path, scene, INTR, rng, mid, 0.33, (45, 60))
     assert len(free.proposals) == 2, [p.n_points for p in free.proposals]
     B = plane_basis(free.plane.normal)[:2]
     masks = {fd.id: fd.mask.reshape(-1) for fd in free.frames}
