@@ -214,6 +214,18 @@ RESULT_PIECE = 64   # ... and untilted at once (bounds the float64 temporaries o
 ADD_BLOCK = 256     # members whose complex spectra _AlignedSums.add holds at once
 
 
+def _pieces(runs: np.ndarray, size: int) -> list[tuple[int, int]]:
+    """[p0, p1) pieces covering ``runs`` (n,), cut only where its value changes, each as long as it can be
+    up to ``size`` (a run longer than ``size`` is a piece of its own)."""
+    starts = np.flatnonzero(np.r_[True, runs[1:] != runs[:-1]]).tolist() + [len(runs)]
+    out, p0 = [], 0
+    for a, b in zip(starts[1:-1], starts[2:]):  # a: the end of the piece so far if the run [a, b) is left out
+        if b - p0 > size:
+            out.append((p0, a))
+            p0 = a
+    return out + [(p0, len(runs))] if len(runs) else out
+
+
 class _AlignedSums:
     """Per (prototype, tilt, scale) sums of members' quantities rolled into the prototype frame, kept as spectra.
 
@@ -273,17 +285,8 @@ class _AlignedSums:
         # same order, so the pieces add exactly what their block would
         for g0 in range(0, len(keys), RESULT_BLOCK):
             blk = keys[g0:g0 + RESULT_BLOCK]
-            kts = blk // self.S
-            cuts = np.flatnonzero(kts[1:] != kts[:-1]) + 1  # where a (prototype, tilt) starts
-            p0 = 0
-            while p0 < len(blk):
-                ok = cuts[(cuts > p0) & (cuts <= p0 + RESULT_PIECE)]
-                p1 = int(ok[-1]) if ok.size and p0 + RESULT_PIECE < len(blk) else min(len(blk), p0 + RESULT_PIECE)
-                if p1 < len(blk) and not ok.size:  # one (prototype, tilt) longer than a piece: up to its end
-                    later = cuts[cuts > p0]
-                    p1 = int(later[0]) if later.size else len(blk)
+            for p0, p1 in _pieces(blk // self.S, RESULT_PIECE):
                 self._add_block(out, blk[p0:p1], scales, shape, untilt)
-                p0 = p1
         return out
 
     def _add_block(self, out: np.ndarray, keys: np.ndarray, scales: tuple[float, ...], shape: tuple[int, int, int],

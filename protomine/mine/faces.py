@@ -29,6 +29,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import rotations as rot
+from ..geometry import plane_basis
 from . import symmetry as sym
 
 FACE_RADIUS_DEG = 25.0
@@ -151,7 +152,8 @@ def stable_ups(surface: np.ndarray, weight: np.ndarray, aspect: float, *, merge_
     except QhullError:  # flat or degenerate: no faces to rest on besides the one seen
         return up
     normal = hull.equations[:, :3]
-    area = np.array([0.5 * np.linalg.norm(np.cross(*(pts[s[1:]] - pts[s[0]]))) for s in hull.simplices])
+    tri = pts[hull.simplices]  # (facets, 3, 3) corners
+    area = 0.5 * np.linalg.norm(np.cross(tri[:, 1] - tri[:, 0], tri[:, 2] - tri[:, 0]), axis=1)
     cos_m = np.cos(np.deg2rad(merge_deg))
     margin = 0.5 * max(1.0 / R, float(aspect) / H)  # inside by half a cell: a corner's sliver facets do not count
     left = np.ones(len(normal), bool)
@@ -163,12 +165,9 @@ def stable_ups(surface: np.ndarray, weight: np.ndarray, aspect: float, *, merge_
         left &= ~grp
         n = (normal[grp] * area[grp, None]).sum(axis=0)
         n /= max(np.linalg.norm(n), 1e-12)
-        e1 = np.cross(n, [1.0, 0.0, 0.0] if abs(n[0]) < 0.9 else [0.0, 1.0, 0.0])
-        e1 /= np.linalg.norm(e1)
-        e2 = np.cross(n, e1)
-        q = pts[np.unique(hull.simplices[grp])]
-        q2 = np.stack([q @ e1, q @ e2], 1)
-        c = np.array([com @ e1, com @ e2])
+        E = plane_basis(n)[:2]  # in-plane axes of the face
+        q2 = pts[np.unique(hull.simplices[grp])] @ E.T
+        c = E @ com
         try:
             poly = ConvexHull(q2)
         except QhullError:  # a sliver: an edge, not a face
