@@ -75,6 +75,21 @@ def enter_worker() -> None:
         reuse_freed_memory()
 
 
+def thread_clock() -> tuple[float, float]:
+    """(CPU seconds, seconds waiting for a core) of the calling thread so far, from the kernel's
+    ``/proc/thread-self/schedstat`` (time on a CPU, time runnable in a run queue while other threads held
+    the cores).  A stretch of wall time minus the wait is what the thread would have taken on a core of
+    its own: its CPU plus any time it blocked (I/O, locks, the GIL).  Where the file is missing: the CPU
+    from ``time.thread_time`` and NaN for the wait."""
+    try:
+        with open("/proc/thread-self/schedstat") as f:
+            on_cpu, waiting = f.read().split()[:2]
+        return int(on_cpu) / 1e9, int(waiting) / 1e9
+    except (OSError, ValueError):
+        import time
+        return time.thread_time(), float("nan")
+
+
 # glibc mallopt parameters (malloc.h)
 _M_TRIM_THRESHOLD, _M_TOP_PAD, _M_MMAP_THRESHOLD = -1, -2, -3
 

@@ -53,6 +53,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ..cores import thread_clock
 from . import symmetry as sym
 from .aligned import aligned_volume_sums, mean_from_volume_sums
 from .engine import ArraySource, _AlignedSums, _chunk_step, _chunks, _SpectraCache
@@ -210,15 +211,16 @@ def _bank_key(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]) -> bytes:
     return h.digest()
 
 
-def _chunk_pass(shared: tuple, item: list[tuple]) -> tuple[list[_Part], float, float]:
+def _chunk_pass(shared: tuple, item: list[tuple]) -> tuple[list[_Part], float, float, float]:
     """Worker: one task of one assignment pass, a run of consecutive chunks (module docstring).  Returns each
     chunk's part (the caller folds them in chunk order, as one process sums its chunks) and the task's wall
-    and CPU seconds."""
+    seconds, CPU seconds and seconds waiting for a core (:func:`protomine.cores.thread_clock`)."""
     spec, protos, shape, accumulate, moments, chunk_size, cache_bytes = shared
-    t0, c0 = time.perf_counter(), time.thread_time()
+    t0, (c0, q0) = time.perf_counter(), thread_clock()
     bank = _bank(*protos)
     parts = [_one_chunk(spec, bank, shape, accumulate, moments, chunk_size, cache_bytes, c) for c in item]
-    return parts, time.perf_counter() - t0, time.thread_time() - c0
+    c1, q1 = thread_clock()
+    return parts, time.perf_counter() - t0, c1 - c0, q1 - q0
 
 
 def _one_chunk(spec, bank: PoseBank, shape: tuple, accumulate: bool, moments: bool, chunk_size: int,
@@ -272,6 +274,7 @@ class _Reduced:
     dist: list
     seconds: list
     cpu_seconds: list
+    wait_seconds: list
     tot: np.ndarray | None
     extra: np.ndarray | None
 
@@ -280,7 +283,7 @@ def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
     """Fold one chunk's part into the reduction (called in chunk order, so sums never depend on which
     worker finished first)."""
     if acc is None:
-        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [], [],
+        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [], [], [],
                         None if p.tot is None else p.tot.copy(), None if p.extra is None else p.extra.copy())
     for name in ("labels", "yaw", "scale", "dist"):
         getattr(acc, name).append(getattr(p, name))
@@ -291,13 +294,14 @@ def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
     return acc
 
 
-def _fold_task(acc: _Reduced | None, task: tuple[list[_Part], float, float]) -> _Reduced:
+def _fold_task(acc: _Reduced | None, task: tuple[list[_Part], float, float, float]) -> _Reduced:
     """Fold one task's chunk parts in chunk order (tasks arrive in task order), and keep its seconds."""
-    parts, seconds, cpu_seconds = task
+    parts, seconds, cpu_seconds, wait_seconds = task
     for p in parts:
         acc = _fold_parts(acc, p)
     acc.seconds.append(seconds)        # the worker's time for the task (read, transform, match, sums)
     acc.cpu_seconds.append(cpu_seconds)  # the CPU time of the worker thread that ran it (the same work)
+    acc.wait_seconds.append(wait_seconds)  # and its time runnable but waiting for a core (other threads')
     return acc
 
 
@@ -376,6 +380,7 @@ class ExecutorSource:
                                 shared=shared, fold=_fold_task)
         self.last_seconds = red.seconds  # the workers' seconds per task, for the scale benchmark
         self.last_cpu_seconds = red.cpu_seconds  # and their CPU seconds (a shared machine's load aside)
+        self.last_wait_seconds = red.wait_seconds  # and their seconds waiting for a core held by other threads
         labels = np.concatenate(red.labels).astype(np.int64)
         yaw, scale, dist = (np.concatenate(a).astype(np.float32) for a in (red.yaw, red.scale, red.dist))
         if not accumulate:

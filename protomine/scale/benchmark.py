@@ -122,25 +122,31 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         spec = NpySpec(str(xp), str(wp))
         src = spec.open()
         _assign_pass(ArraySource(*src.read(0, chunk)), P, V, scales, chunk, True, 0)  # warm-up
-        local, local_cpu = {}, {}
-        for threads in (1, cores.usable_cores()):  # one core (a worker's share), then every core
-            cores.set_torch_threads(threads)
-            times, cpu = [], []
-            for _ in range(2):
-                t0, c0 = time.perf_counter(), time.thread_time()
-                ref = _assign_pass(src, P, V, scales, chunk, True, 0)
-                times.append(time.perf_counter() - t0)
-                cpu.append(time.thread_time() - c0)
-            local[threads], local_cpu[threads] = min(times), min(cpu)
-            print(f"[bench] local pass over {n} objects, {threads} thread(s): {local[threads]:.2f} s",
-                  file=sys.stderr, flush=True)
-        local_1t, local_s = local[1], local[cores.usable_cores()]
+        cores.set_torch_threads(cores.usable_cores())  # every core (the one-thread passes run beside the cluster's)
+        times = []
+        for _ in range(2):
+            t0 = time.perf_counter()
+            _assign_pass(src, P, V, scales, chunk, True, 0)
+            times.append(time.perf_counter() - t0)
+        local_s = min(times)
+        print(f"[bench] local pass over {n} objects, {cores.usable_cores()} thread(s): {local_s:.2f} s",
+              file=sys.stderr, flush=True)
+        cores.set_torch_threads(1)  # one core: what a worker has
+
+        def local_pass(Pr):
+            """One in-process pass with 1 thread: its result and (wall, CPU, wait for a core) seconds."""
+            t0, (c0, q0) = time.perf_counter(), cores.thread_clock()
+            out = _assign_pass(src, Pr, V, scales, chunk, True, 0)
+            c1, q1 = cores.thread_clock()
+            return out, (time.perf_counter() - t0, c1 - c0, q1 - q0)
+
         # the cluster's config (each nanny passes it on to its worker): DASK_CONFIG_FOR_MINING
         with dask.config.set(DASK_CONFIG_FOR_MINING):
             cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
                                    dashboard_address=None)
             client = Client(cluster, set_as_default=False)
-            runs, cpu_best = {}, {}
+            runs, cpu_best, rounds = {}, {}, {}
+            same, max_rel, n_pass = True, 0.0, 0
             try:
                 for n_workers in (1, 2):
                     if n_workers > 1:
@@ -148,26 +154,33 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                     ex = DaskExecutor(client=client, min_workers=n_workers)
                     dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
                     dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
-                    walls, busy = [], []
+                    walls, busy, rounds[n_workers] = [], [], []
                     for _ in range(3):
+                        # new prototypes every pass, as in a Lloyd iteration: each pass builds its pose bank, in
+                        # this process and on every worker; the in-process pass runs just before the cluster's
+                        n_pass += 1
+                        Pr = P * np.float32(1.0 + 1e-6 * n_pass)
+                        ref, loc = local_pass(Pr)
                         w0 = client.run(_process_cpu_s)
                         t0, c0 = time.perf_counter(), time.process_time()
-                        got = dsrc.assign_pass(P, V, scales, chunk, True, 0)
+                        got = dsrc.assign_pass(Pr, V, scales, chunk, True, 0)
                         walls.append(time.perf_counter() - t0)
                         caller_cpu = time.process_time() - c0
                         w1 = client.run(_process_cpu_s)
                         secs = np.array(dsrc.last_seconds)
                         task_cpu = float(np.sum(dsrc.last_cpu_seconds))
+                        task_wait = float(np.sum(dsrc.last_wait_seconds))
                         # task i ran on worker i mod n (preferred); the busiest worker bounds the wall time
                         busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers)),
                                      task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu, len(secs)))
+                        rounds[n_workers].append((loc, (secs.sum(), task_cpu, task_wait)))
+                        same &= bool(np.array_equal(got[0], ref[0]))
+                        max_rel = max(max_rel, float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12)))
                     k = int(np.argsort(walls)[len(walls) // 2])
                     runs[n_workers] = (statistics.median(walls), *busy[k])
-                    # CPU seconds from the least disturbed pass (fewest task CPU seconds), as the local passes'
+                    # CPU seconds from the least disturbed pass (fewest task CPU seconds)
                     cpu_best[n_workers] = min(b[2] for b in busy)
                     print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
-                same = bool(np.array_equal(got[0], ref[0]))
-                max_rel = float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12))
                 worker_rss = client.run(_rss_mb)
                 ex.close()
             finally:
@@ -181,6 +194,14 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         for _ in range(n_chunks):
             acc += part
         fold_s = (time.perf_counter() - t0) / n_chunks
+    locs = [loc for nw in rounds for loc, _ in rounds[nw]]
+    local_1t, local_1t_cpu = min(x[0] for x in locs), min(x[1] for x in locs)
+
+    def paired(nw: int, f) -> float:
+        """Median over the interleaved rounds of f(worker tasks' (wall, cpu, wait), in-process (wall, cpu, wait))."""
+        return float(statistics.median(f(c, loc) for loc, c in rounds[nw]))
+
+    on_core = lambda c, loc: (c[0] - c[2]) / (loc[0] - loc[2])  # noqa: E731  wall less the wait for a core
     cluster_s, worker_total, worker_max, _, caller_cpu, overhead_cpu, n_tasks = runs[2]
     worker_cpu = cpu_best[2]
     t_obj = worker_cpu / n  # a core of its own (module docstring); worker_total / n on this machine's load
@@ -204,10 +225,16 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "cluster_1worker_s": runs[1][0], "cluster_workers": 2, "cluster_s": cluster_s,
         "speedup_2_vs_1_worker": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
         "worker_s_per_object": worker_total / n, "local_1thread_s_per_object": local_1t / n,
-        "ratio_worker_local_per_object": (worker_total / n) / (local_1t / n),
+        "ratio_worker_local_per_object": paired(2, lambda c, loc: c[0] / loc[0]),
+        "ratio_worker_local_per_object_1worker": paired(1, lambda c, loc: c[0] / loc[0]),
+        "worker_wait_s_per_object": paired(2, lambda c, loc: c[2]) / n,
+        "local_1thread_wait_s_per_object": paired(2, lambda c, loc: loc[2]) / n,
+        "ratio_worker_local_on_core_per_object": paired(2, on_core),
+        "ratio_worker_local_on_core_per_object_1worker": paired(1, on_core),
         "worker_cpu_s_per_object": worker_cpu / n, "worker_cpu_s_per_object_1worker": cpu_best[1] / n,
-        "local_1thread_cpu_s_per_object": local_cpu[1] / n,
-        "ratio_worker_local_cpu_per_object": worker_cpu / local_cpu[1],
+        "local_1thread_cpu_s_per_object": local_1t_cpu / n,
+        "ratio_worker_local_cpu_per_object": paired(2, lambda c, loc: c[1] / loc[1]),
+        "ratio_worker_local_cpu_per_object_1worker": paired(1, lambda c, loc: c[1] / loc[1]),
         "caller_cpu_s_per_pass": caller_cpu, "caller_cpu_s_per_pass_1worker": runs[1][4],
         "worker_overhead_cpu_fraction": overhead_cpu / max(runs[2][3], 1e-9),
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
