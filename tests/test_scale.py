@@ -325,6 +325,23 @@ def test_workers_auto_is_the_usable_cores():
         make_executor(cfg, workers=-2)
 
 
+def test_thread_clock_reads_the_kernels_cpu_time_and_run_queue_wait():
+    import time
+
+    from protomine import cores
+    # proc(5), /proc/[pid]/task/[tid]/schedstat: time spent on the CPU and time spent waiting on a run queue,
+    # in ns; the first is the same counter as CLOCK_THREAD_CPUTIME_ID (time.thread_time), so both move alike
+    c0, q0 = cores.thread_clock()
+    t0 = time.thread_time()
+    x = 0
+    while time.thread_time() - t0 < 0.2:
+        x += 1
+    c1, q1 = cores.thread_clock()
+    t1 = time.thread_time()
+    assert abs((c1 - c0) - (t1 - t0)) < 0.02 and c1 - c0 >= 0.2
+    assert q1 >= q0 >= 0.0
+
+
 def test_pass_in_few_tasks_sums_chunk_by_chunk_like_one_process(tmp_path):
     """A pass of 7 chunks in tasks of several chunks (2 per worker, at most MAX_CHUNKS_PER_TASK) gives the
     one-process pass's labels and float64 sums exactly: the chunks' sums are still added one by one in
@@ -346,6 +363,7 @@ def test_pass_in_few_tasks_sums_chunk_by_chunk_like_one_process(tmp_path):
     ref = _assign_pass(ArraySource(X, W), P, V, (0.9, 1.0, 1.1), 10, True, 0)
     for a, b in zip(got[:5], ref[:5]):
         assert np.array_equal(a, b)
-    assert len(src.last_seconds) == 2
+    assert len(src.last_seconds) == len(src.last_cpu_seconds) == len(src.last_wait_seconds) == 2
+    assert all(q >= 0 for q in src.last_wait_seconds)
     many = dist.ExecutorSource(src.spec, InlineExecutor(), tasks_per_worker=1)
     assert len(many._tasks(list(range(3 * dist.MAX_CHUNKS_PER_TASK + 1)))) == 4     # capped run length

@@ -28,6 +28,9 @@ Cost per pass beyond the search itself (measured on a local cluster, 2 cores at 
     periodic monitors and work-stealing check slowed to 1-2 s (``scale.benchmark.DASK_CONFIG_FOR_MINING``): they
     took half of what a local cluster spent beside its tasks (caller 0.12-0.17 s and workers 0.09-0.13 s of CPU
     per pass of 1.3-1.7 task-seconds, then 0.075 and 0.06 s), CPU that 2 workers on 2 cores lose.
+    A Dask worker runs each task in a thread other than its main one; glibc's malloc gave that thread's freed
+    chunk memory back to the kernel after every chunk (+20-24% CPU per object in page faults) until
+    ``protomine.cores.reuse_freed_memory`` set a malloc top pad (on import, so in every worker as well).
 
 :class:`ExecutorSource` is a source (``len``, ``read``) whose passes run this way: the engine hands a pass
 to ``source.assign_pass`` when the source has one, so :class:`~protomine.mine.engine.PoseKMeans`, the
