@@ -204,7 +204,7 @@ class Matcher:
         Dr = D
         if lam is not None:
             Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
-        S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
+        S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True, upright=upright)
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
