@@ -43,6 +43,14 @@ def _read(vol: np.ndarray, q: np.ndarray, rho_max: float, z_max: float) -> np.nd
     return np.stack(out).reshape(vol.shape[:-3] + (-1,)) * inside
 
 
+def _outside(q: np.ndarray, rho_max: float, z_max: float) -> np.ndarray:
+    """Points q (N, 3) beyond the last radial bin centre or the first/last height bin's outer edge."""
+    R, _, H = SHAPE
+    fi = np.hypot(q[:, 0], q[:, 1]) / rho_max * R - 0.5
+    fk = q[:, 2] / z_max * H - 0.5
+    return (fi > R - 0.5) | (fk < -0.5) | (fk > H - 0.5)
+
+
 def _centres(rho_max: float, z_max: float) -> np.ndarray:
     R, A, H = SHAPE
     out = np.zeros((R, A, H, 3))
@@ -70,6 +78,15 @@ def test_tilted_copies_and_untilting_equal_the_twin():
         v = _read(V[k], p, 1.0, aspect[k])
         wx = _read(V[k][None] * P[k], p, 1.0, aspect[k])
         ref = np.where(v > 1e-6, wx / np.maximum(v, 1e-6), 0.0)
+        # outside the prototype's cylinder: the empty space of its margin, the weighted mean of its outer
+        # radial bin and top height bin (each margin cell once), with their mean weight
+        R, A, H = SHAPE
+        cells = [(i, j, h) for i in range(R) for j in range(A) for h in range(H) if i == R - 1 or h == H - 1]
+        wsum = sum(V[k][c] for c in cells)
+        fill = np.array([sum(V[k][c] * P[k][ch][c] for c in cells) / wsum for ch in range(2)])
+        out = _outside(p, 1.0, aspect[k])
+        v = np.where(out, wsum / len(cells), v)
+        ref = np.where(out[None], fill[:, None], ref)
         np.testing.assert_allclose(Vc[m].reshape(-1), v, atol=1e-5)
         np.testing.assert_allclose(Pc[m].reshape(2, -1), ref, atol=1e-4)
         # inverse: prototype cell p -> copy point M (p - c0) - b, read in the copy's grid

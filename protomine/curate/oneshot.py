@@ -35,7 +35,9 @@ score) and with the library's unknown cut (``mine.openset``).  When no cluster h
 bulk of the store: (m, s) = median and 1.4826 MAD of ln d of every other object, mu_1 = m - 2 s,
 sigma_1 = s (objects two robust standard deviations closer than the bulk score 0.5).
 Single-view calibration of an added prototype: single_mu = mu_1 + median_k(single_mu_k - fused_mu_k),
-single_sigma = max(sigma_1, median_k single_sigma_k).
+single_sigma = max(sigma_1, median_k single_sigma_k); on other faces (``single_tilt_mu``, ``single_tilt_sigma``,
+when the library has them) the same with the library's median shift single_tilt_mu_k - single_mu_k and
+max(single_sigma, median_k single_tilt_sigma_k).
 Symmetry of the one-shot prototype: ``symmetry.detect_symmetry`` with the instance noise level
 exp(mu_1) / 2 per cell (a distance is a mean squared difference of two noisy instances).
 """
@@ -322,6 +324,9 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
     for f, fill in (("face_up", 0.0), ("face_count", 0), ("face_symmetry", -1)):
         p[f] = _pad_axis1(p[f], F, fill)
         new_proto[f] = _pad_axis1(new_proto[f], F, fill)
+    if "single_tilt_mu" in p:  # other faces: the library's median shift from the canonical calibration
+        new_proto["single_tilt_mu"] = np.array([op.single_mu + float(np.median(p["single_tilt_mu"] - p["single_mu"]))])
+        new_proto["single_tilt_sigma"] = np.array([max(op.single_sigma, float(np.median(p["single_tilt_sigma"])))])
     if "symmetry_rotations" in p:  # a one-shot prototype: no symmetry that moves up is tested (identity only)
         new_proto["symmetry_rotations"] = _pad_axis1(np.array([[[0.0, 0.0, 0.0, 1.0]]]), p["symmetry_rotations"].shape[1], 0.0)
     protos = {k: np.concatenate([p[k].astype(object) if p[k].dtype == object else p[k], new_proto[k].astype(p[k].dtype)])

@@ -23,7 +23,10 @@ Score (documented once, used by the open-set decision):
     score_k = 1 - T_4((ln d_k - mu_k) / sigma_k)        (``library.match_score``: Student-t tail, 4 dof)
 with (mu_k, sigma_k) the library's robust fit (median, scaled MAD) of the log of the distances of *one-frame* volumes of the mined
 objects to their own prototype (``single_mu``, ``single_sigma``, learnt at mining time without labels):
-the fraction of single views of prototype k's own members expected to fit worse than this one.  It is in
+the fraction of single views of prototype k's own members expected to fit worse than this one (a match on
+another face than the canonical one, a tilted copy, takes the library's ``single_tilt_mu``,
+``single_tilt_sigma`` when it has them, fitted on the views of members resting on other faces:
+``pipeline.split_calibration``).  It is in
 [0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
@@ -204,7 +207,7 @@ class Matcher:
         Dr = D
         if lam is not None:
             Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
-        S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
+        S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True, upright=upright)
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)

@@ -23,7 +23,11 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  that move its up +z, one per direction +z is carried to, identity first (rows of zeros =
                  padding; the whole group is these times the rotations about up of ``symmetry``:
                  ``mine.symmetry.group_elements``).  A format-2 library without it (mined before it was
-                 added) is read as having no such symmetries
+                 added) is read as having no such symmetries; optional single_tilt_mu, single_tilt_sigma (K,):
+                 the single-view calibration of matches on a face other than the canonical one (a tilted
+                 copy is resampled, so the same object fits it worse than the canonical prototype;
+                 single_mu, single_sigma then calibrate the canonical face's matches only).  A library
+                 without them scores every match with single_mu, single_sigma
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
@@ -63,7 +67,9 @@ PROTO_ARRAYS = ("features", "weights", "volumes", "symmetry", "period_deg", "cou
                 "face_symmetry")
 PROTO_STR = ("origin", "name", "name_example")
 PROTO_OPTIONAL = ("cell_reliability",     # (K, R, H) single-view cell weights (``reliability``); libraries before it have none
-                  "symmetry_rotations")   # (K, S, 4) symmetries that move up (``symmetry.tilt_symmetries``); none before it
+                  "symmetry_rotations",   # (K, S, 4) symmetries that move up (``symmetry.tilt_symmetries``); none before it
+                  "single_tilt_mu",       # (K,) single-view calibration of matches on another face; none before it
+                  "single_tilt_sigma")
 MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance",
                  "face", "rotation")
 
@@ -143,9 +149,16 @@ class Library:
             raise InputError(self.path, "members.object", f"no object {object_id!r} among the library's {len(self.members['object'])} members")
         return int(hits[0])
 
-    def score(self, distance: np.ndarray, cluster: np.ndarray, *, single_view: bool) -> np.ndarray:
+    def score(self, distance: np.ndarray, cluster: np.ndarray, *, single_view: bool,
+              upright: np.ndarray | None = None) -> np.ndarray:
+        """Calibrated score of distances to prototypes ``cluster`` (broadcast together); single views matched
+        on another face than the canonical one (``upright`` False, broadcast too) take the library's
+        single_tilt_mu, single_tilt_sigma when it has them."""
         mu = self.prototypes["single_mu" if single_view else "fused_mu"][cluster]
         sg = self.prototypes["single_sigma" if single_view else "fused_sigma"][cluster]
+        if single_view and upright is not None and "single_tilt_mu" in self.prototypes:
+            mu = np.where(upright, mu, np.asarray(self.prototypes["single_tilt_mu"])[cluster])
+            sg = np.where(upright, sg, np.asarray(self.prototypes["single_tilt_sigma"])[cluster])
         return match_score(distance, mu, sg)
 
 

@@ -258,6 +258,48 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     return out, labels[store.single_object], cell_reliability(num, den)
 
 
+MIN_CALIBRATION_VIEWS = 5   # fewer views than this: a prototype borrows the pooled spread (or offset)
+
+
+def split_calibration(d: np.ndarray, k: np.ndarray, upright: np.ndarray, K: int, fallback: list[tuple[float, float]]
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Single-view score calibration, canonical face and other faces apart: (single_mu, single_sigma,
+    single_tilt_mu, single_tilt_sigma) (K,) from the held-out views' distances d (Q,) to their prototypes k (Q,),
+    ``upright`` (Q,) where the view's object rests on the prototype's canonical face.
+
+    A view of an object on another face is matched against a resampled (tilted) copy, which fits the same
+    object worse than the canonical prototype does, so one fit over both kinds puts canonical views of known
+    objects too high and tilted ones too low.  Canonical: a robust fit (``log_distance_fit``) of each
+    prototype's canonical views (all its views when it has fewer than ``MIN_CALIBRATION_VIEWS`` of them;
+    ``fallback`` (mu, sigma) when it has none), sigma at least the pooled median where the views are few.
+    Other faces: the prototype's own fit of its tilted views when it has enough, else its canonical fit
+    shifted by the median over all tilted views of (ln d - mu_canonical of their prototype), with sigma at least
+    the median tilted sigma (no tilted view at all: the canonical fit, the old single calibration).
+    """
+    ld = np.log(np.maximum(np.asarray(d, np.float64), 1e-12))
+    k, upright = np.asarray(k), np.asarray(upright, bool)
+    fits, counts = [], []
+    for j in range(K):
+        own = upright & (k == j)
+        sel = own if own.sum() >= MIN_CALIBRATION_VIEWS else k == j
+        fits.append(log_distance_fit(d[sel]) if sel.any() else fallback[j])
+        counts.append(int(sel.sum()))
+    pooled = float(np.median([s for _, s in fits])) if K else 0.1
+    mu = np.array([f[0] for f in fits])
+    sigma = np.array([max(f[1], pooled) if c < MIN_CALIBRATION_VIEWS else f[1] for f, c in zip(fits, counts)])
+    tilted = ~upright
+    if not tilted.any():
+        return mu, sigma, mu.copy(), sigma.copy()
+    offset = float(np.median(ld[tilted] - mu[k[tilted]]))
+    own_t = [log_distance_fit(d[tilted & (k == j)]) if (tilted & (k == j)).sum() >= MIN_CALIBRATION_VIEWS else None
+             for j in range(K)]
+    pooled_t = float(np.median([f[1] for f in own_t if f is not None] or [1.4826 * np.median(np.abs(
+        ld[tilted] - mu[k[tilted]] - offset))]))
+    t_mu = np.array([f[0] if f is not None else mu[j] + offset for j, f in enumerate(own_t)])
+    t_sigma = np.array([f[1] if f is not None else max(sigma[j], pooled_t) for j, f in enumerate(own_t)])
+    return mu, sigma, t_mu, t_sigma
+
+
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
                n_clusters: int | None = None, progress: Callable[[str], None] | None = None,
                executor=None) -> tuple[Library, dict]:
@@ -326,14 +368,14 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     bank = TiltBank(model.prototypes_, model.prototype_weights_, aspect, scales, grid) if grid is not None else None
     sv_d, sv_k, reliability = single_view_calibration(store, cfg, model.prototypes_, model.prototype_weights_, labels,
                                                       scales, progress=progress, up=np.asarray(model.up_), bank=bank)
-    sv_k = sv_k[np.isfinite(sv_d)]
-    sv_d = sv_d[np.isfinite(sv_d)]
-    single = [log_distance_fit(sv_d[sv_k == k]) if np.any(sv_k == k) else fused[k] for k in range(K)]
-    # pooled sigma where a cluster has too few samples for its own spread
+    # views of members resting on the canonical face (as the calibration matched them: _loo_single_views)
+    sv_up = (np.ones(len(sv_d), bool) if bank is None else
+             np.asarray(model.up_)[store.single_object, 2] >= np.cos(np.deg2rad(IDENTITY_DEG)))
+    fin = np.isfinite(sv_d)
+    sv_k, sv_d, sv_up = sv_k[fin], sv_d[fin], sv_up[fin]
     pooled_f = float(np.median([s for _, s in fused])) if K else 0.1
-    pooled_s = float(np.median([s for _, s in single])) if K else 0.1
     fused_mu = np.array([f[0] for f in fused]); fused_sigma = np.array([max(f[1], pooled_f) if np.sum(labels == k) < 5 else f[1] for k, f in enumerate(fused)])
-    single_mu = np.array([s[0] for s in single]); single_sigma = np.array([max(s[1], pooled_s) if np.sum(sv_k == k) < 5 else s[1] for k, s in enumerate(single)])
+    single_mu, single_sigma, tilt_mu, tilt_sigma = split_calibration(sv_d, sv_k, sv_up, K, fused)
     score = match_score(dist, fused_mu[labels], fused_sigma[labels])
     radius, height = store.objects["radius_m"], store.objects["height_m"]
     gsize = np.sqrt(radius * height)
@@ -348,6 +390,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         "count": counts, "size_median": pct(50), "size_p10": pct(10), "size_p90": pct(90),
         "fused_mu": fused_mu, "fused_sigma": fused_sigma, "single_mu": single_mu, "single_sigma": single_sigma,
         "cell_reliability": reliability.astype(np.float32),
+        "single_tilt_mu": tilt_mu, "single_tilt_sigma": tilt_sigma,
         "origin": ["mined"] * K, "name": [""] * K, "name_example": [""] * K, "aspect": aspect,
         **pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"]),
         "symmetry_rotations": pad_quaternions(model.symmetry_rotations_),
@@ -368,7 +411,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
     alpha = float(cfg["mine"]["unknown_alpha"])
     attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
-                  "unknown_cut": conformal_cut(match_score(sv_d, single_mu[sv_k], single_sigma[sv_k]), alpha)})
+                  "unknown_cut": conformal_cut(match_score(sv_d, np.where(sv_up, single_mu[sv_k], tilt_mu[sv_k]),
+                                                           np.where(sv_up, single_sigma[sv_k], tilt_sigma[sv_k])), alpha)})
     lib = Library(protos, members, attrs)
     pause_point("inputs_read")
     write_library(library_path, lib)

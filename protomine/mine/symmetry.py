@@ -361,7 +361,7 @@ def tilt_symmetries(bank, k: int, noise: float, code: int, *, factor: float = DE
 
     dirs = rot.up_grid(nside)
     dirs = dirs[dirs[:, 2] < np.cos(np.deg2rad(MIN_TILT_DEG))]
-    yaw, T, E = _self_match(P, V, *bank.copies_at(k, dirs), noise)
+    yaw, T, E = _self_match(P, V, *bank.copies_at(k, dirs, empty_outside=False), noise)
     # local minima of E among the directions within 1.5 grid spacings, below the loose bar
     near = rot.angle_between_deg(dirs[:, None], dirs[None]) <= 1.5 * rot.grid_spacing_deg(nside)
     cand = np.flatnonzero((E <= LOOSE * tol) & (E <= np.where(near, E[None], np.inf).min(axis=1)))
@@ -379,7 +379,7 @@ def tilt_symmetries(bank, k: int, noise: float, code: int, *, factor: float = DE
             ups = ups[ups[:, 2] < np.cos(np.deg2rad(MIN_TILT_DEG))]
             if not len(ups):
                 break
-            fy, fT, fE = _self_match(P, V, *bank.copies_at(k, ups), noise)
+            fy, fT, fE = _self_match(P, V, *bank.copies_at(k, ups, empty_outside=False), noise)
             j = int(np.argmin(fE))
             best, radius = ups[j], 1.0 * rot.grid_spacing_deg(fine_nside)
         else:

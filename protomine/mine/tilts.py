@@ -237,17 +237,46 @@ def inverse_points(gs: Sequence[CopyGeometry], shape: tuple[int, int, int], aspe
     return np.matmul(p, np.stack([g.M for g in gs]).transpose(0, 2, 1)) - np.stack([g.base for g in gs])[:, None]
 
 
-def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], aspect: np.ndarray
-                     ) -> tuple[np.ndarray, np.ndarray]:
+def empty_margin(P: np.ndarray, V: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """What prototypes P (m, C, R, A, H), V (m, R, A, H) show of the empty space around them: the weighted
+    mean features (m, C) and the mean weight (m,) of their margin cells, the outer radial bin and the top
+    height bin (beyond the footprint radius and the height: ``radial_margin``, ``height_margin`` > 1)."""
+    shell = np.zeros(V.shape[1:], bool)
+    shell[-1] = True
+    shell[:, :, -1] = True
+    v = np.asarray(V, np.float64)[:, shell]
+    x = np.asarray(P, np.float64)[:, :, shell]
+    return (x * v[:, None]).sum(axis=2) / np.maximum(v.sum(axis=1), 1e-9)[:, None], v.mean(axis=1)
+
+
+def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], aspect: np.ndarray, *,
+                     empty_outside: bool = True) -> tuple[np.ndarray, np.ndarray]:
     """Copies (m, C, R, A, H), (m, R, A, H) of prototypes P (m, C, R, A, H), V (m, R, A, H) (one per
     geometry, with their aspects (m,)).  Features are means: w x is sampled and divided by the sampled w,
-    so unseen cells do not dilute the seen ones."""
+    so unseen cells do not dilute the seen ones.  A copy's cells outside the prototype's grid (the corners
+    of a tipped object's new cylinder) are empty space the prototype's margin already shows: they take its
+    :func:`empty_margin` features and weight, not weight 0.  With weight 0 a copy would be compared on only
+    the part of a view it happens to cover, and a copy tipped so that it covers little of the view fits any
+    object (on the demo, single views of six classes went to a tipped L bracket covering 2-40% of them).
+    ``empty_outside=False`` leaves those cells at weight 0 (the 3-D symmetry test compares a prototype with its
+    own copies on what both have seen, ``symmetry.tilt_symmetries``)."""
     m, C = P.shape[:2]
     shape = P.shape[2:]
+    R, _, H = shape
+    pts = forward_points(gs, shape)
     stack = torch.from_numpy(np.concatenate([V[:, None], V[:, None] * P], axis=1).astype(np.float32))
-    out = sample_volumes(stack, forward_points(gs, shape), np.ones(m), aspect).numpy()  # (m, 1 + C, R A H)
+    out = sample_volumes(stack, pts, np.ones(m), aspect).numpy()  # (m, 1 + C, R A H)
     v = out[:, 0]
     pc = np.where(v[:, None] > 1e-6, out[:, 1:] / np.maximum(v[:, None], 1e-6), 0.0)
+    if not empty_outside:
+        return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
+    # the cells sample_volumes leaves out of the prototype's cylinder (the same test)
+    fi = np.hypot(pts[..., 0], pts[..., 1]) * R - 0.5
+    fk = pts[..., 2] / np.asarray(aspect, np.float64).reshape(m, 1) * H - 0.5
+    outside = (fi > R - 0.5) | (fk < -0.5) | (fk > H - 0.5)
+    fx, fw = empty_margin(P, V)
+    pc = np.where(outside[:, None], fx[:, :, None], pc)
+    v = np.where(outside, fw[:, None], v)
     return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
 
 
@@ -414,16 +443,18 @@ class TiltBank:
         pc, vc = self.copies_at(k, np.asarray(up, np.float64)[None])
         return pc[0], vc[0]
 
-    def copies_at(self, k: int, ups: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def copies_at(self, k: int, ups: np.ndarray, *, empty_outside: bool = True) -> tuple[np.ndarray, np.ndarray]:
         """Copies (M, C, R, A, H), (M, R, A, H) of prototype k resting with any directions ``ups`` (M, 3) pointing
-        up (not kept: arbitrary directions are rarely asked for twice)."""
+        up (not kept: arbitrary directions are rarely asked for twice); ``empty_outside``: see
+        :func:`_resample_copies`."""
         k = int(k)
         if k not in self._solid:
             self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
         gs = copy_geometries(self.shape, float(self.aspect[k]), np.asarray(ups, np.float64), self.grid, self._solid[k])
         M = len(gs)
         return _resample_copies(np.broadcast_to(self.P[k], (M,) + self.P.shape[1:]),
-                                np.broadcast_to(self.V[k], (M,) + self.shape), gs, np.full(M, self.aspect[k]))
+                                np.broadcast_to(self.V[k], (M,) + self.shape), gs, np.full(M, self.aspect[k]),
+                                empty_outside=empty_outside)
 
     def untilt(self, k: int, t: int, a: np.ndarray) -> np.ndarray:
         """Sums a (..., R, A, H) in the copy frame of (k, t) rotated back into prototype k's frame."""
