@@ -57,6 +57,7 @@ from ..mine.openset import library_cut
 from ..mine.pipeline import reduce_yaw
 from ..mine.posesearch import PoseBank
 from ..mine.reliability import reliable_distances
+from ..mine.viewdistance import tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, make_bank
@@ -136,7 +137,8 @@ class Matcher:
 
     P (K, C, R, A, H) features, V (K, R, A, H) weights (ones when ``weighted`` is False).  ``exact_faces``
     (the library's ``[mine] face_pairs``; with tilts only) also searches each prototype's exact resting
-    directions (:class:`ExactFaces`).
+    directions (:class:`ExactFaces`).  ``tolerant`` (the library's ``[mine] tolerant_residual``): scores judge
+    the tolerant distance of ``mine.viewdistance`` on every face, as the library's calibration did.
     """
 
     library: Library
@@ -147,6 +149,7 @@ class Matcher:
     unknown_cut: float
     weighted: bool = True
     exact_faces: bool = False
+    tolerant: bool = False
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -202,8 +205,11 @@ class Matcher:
         # the reliability lives in the canonical frame, so matches on another face keep the plain distance
         lam = self.library.prototypes.get("cell_reliability") if self.weighted else None
         Dr = D
-        if lam is not None:
-            Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
+        if lam is not None or self.tolerant:
+            Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale, tolerant=self.tolerant), D)
+        if self.tolerant and isinstance(self.bank, TiltBank):  # other faces: the same residual against the copy
+            tilted = ~upright & np.isfinite(D)
+            Dr = np.where(tilted, tilted_distances(self.bank, X, W, up, raw, fit_scale, tilted, tolerant=True), Dr)
         S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True)
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
@@ -231,7 +237,8 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)))
+                   library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)),
+                   tolerant=bool(m.get("tolerant_residual", False)))
 
 
 @dataclass

@@ -221,10 +221,14 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     The reliability is fitted on the residuals of the upright views at their best pose; each upright view's
     distance is then re-weighted (``reliability.reliable_distances``) by the reliability fitted *without its
     object's views*, for the same reason.  Views on another face keep the plain distance (the reliability
-    lives in the canonical frame), as the matcher does for tilted matches.
+    lives in the canonical frame), as the matcher does for tilted matches.  With ``[mine] tolerant_residual``
+    every view's distance is the tolerant one of ``viewdistance`` (views on another face against the copy
+    resting on it, without reliability), the distance the matcher then scores.
     """
     from .engine import align_to_prototype
     from .reliability import reliable_distances, residual_sums
+    from .viewdistance import pair_distances
+    tolerant = bool(cfg["mine"].get("tolerant_residual", False))
     K, _, R, _, H = P.shape
     out = np.full(len(store.single_object), np.inf)
     num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
@@ -252,7 +256,11 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
         for (k, rows, xs, ws, Pk, Vk, upright), (yaw, sc), (a, c) in zip(loo(), poses, own):
             if upright:
                 lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
-                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc)[:, 0]
+                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant)[:, 0]
+                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+            elif tolerant and len(rows):  # another face: the same residual against the copy, no reliability
+                d = pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
+                                   np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0], tolerant=True)
                 out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
             b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)
