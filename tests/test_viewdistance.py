@@ -129,3 +129,29 @@ def test_switch_scores_views_by_the_tolerant_distance_the_library_was_calibrated
     Dt = reliable_distances(X, W, m.P, m.V, lib.prototypes["cell_reliability"], pm.yaw_deg, pm.scale, tolerant=True)
     np.testing.assert_allclose(got["score"], lib.score(Dt, np.arange(lib.n_clusters)[None, :], single_view=True),
                                atol=1e-5)
+
+
+def test_footprint_rings_are_the_bins_starting_inside_the_footprint():
+    from protomine.mine.viewdistance import footprint_rings
+    # bin i starts at i / R x margin footprint radii (DEVELOPERS.md grid convention), by hand:
+    # R = 8, margin 1.15: bin 7 starts at 1.006 (beyond), bin 6 at 0.8625 (inside) -> 7 bins
+    assert footprint_rings(8, 1.15) == 7
+    assert footprint_rings(8, 1.5) == 6          # bin 6 starts at 1.125, bin 5 at 0.9375
+    assert footprint_rings(4, 1.15) == 4         # bin 3 starts at 0.8625: every bin reaches inside
+    assert footprint_rings(8, 1.0) == 8
+
+
+def test_distance_without_the_margin_ring_matches_the_definition():
+    rng = np.random.default_rng(5)
+    x, w = rng.random((2, C, R, A, H)), rng.random((2, R, A, H))
+    P, V = rng.random((1, C, R, A, H)), rng.random((1, R, A, H))
+    got = reliable_distances(x, w, P, V, None, np.zeros((2, 1)), np.ones((2, 1)), rings=3)[:, 0]
+    for i in range(2):
+        num = den = 0.0
+        for r in range(3):                                  # radial bins 0..2 only
+            for a in range(A):
+                for h in range(H):
+                    om = w[i, r, a, h] * V[0, r, a, h]
+                    num += om * np.mean((x[i, :, r, a, h] - P[0, :, r, a, h]) ** 2)
+                    den += om
+        np.testing.assert_allclose(got[i], num / den, rtol=1e-6)

@@ -21,13 +21,22 @@ at the pose the FFT search found with the plain distance (lambda the per-cell re
 another face is compared with the prototype's copy resting on that face.  The pose search and the decision
 (nearest prototype by the plain distance) do not change.
 
+The ring beyond the footprint.  The grid reaches ``radial_margin`` x the footprint radius, so its outer radial
+bins (those starting at or beyond the footprint radius, :func:`footprint_rings`) are empty space for *every*
+object by construction: scale normalisation puts any object's footprint inside them.  They tell a known
+object from a never-seen one only through how far its silhouette and the free space beside it were read
+right, which is what sensors get wrong (shadows, mixed edge readings, range noise, a neighbour's rim).  With
+``[mine] score_margin_ring = false`` the single-view score leaves them out (weight 0), in the calibration and
+in the matcher alike, on every resting face (a copy on another face has the same ring in its own grid).
+
 Shapes: aligned views x (n, C, R, A, H), prototypes p (n or 1, C, R, A, H); residuals (n, R, A, H).
 """
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["NEIGHBOURS", "shift_cells", "tolerant_residuals", "squared_residuals", "residuals", "weighted_mean"]
+__all__ = ["NEIGHBOURS", "shift_cells", "tolerant_residuals", "squared_residuals", "residuals", "weighted_mean",
+           "footprint_rings", "ring_weights", "pair_distances", "tilted_distances"]
 
 NEIGHBOURS = ((0, 0, 0), (1, 0, 0), (-1, 0, 0), (0, 1, 0), (0, -1, 0), (0, 0, 1), (0, 0, -1))
 
@@ -63,6 +72,21 @@ def residuals(x: np.ndarray, p: np.ndarray, tolerant: bool) -> np.ndarray:
     return tolerant_residuals(x, p) if tolerant else squared_residuals(x, p)
 
 
+def footprint_rings(radial_bins: int, radial_margin: float) -> int:
+    """Number of radial bins that start inside the footprint radius: bin i covers rho / rho_max in [i/R, (i+1)/R)
+    with rho_max = radial_margin x footprint radius, so it starts inside when i / R x radial_margin < 1."""
+    return min(int(radial_bins), int(np.ceil(radial_bins / max(float(radial_margin), 1.0) - 1e-9)))
+
+
+def ring_weights(omega: np.ndarray, rings: int | None) -> np.ndarray:
+    """omega (..., R, A, H) with the radial bins from ``rings`` on set to 0 (None: unchanged)."""
+    if rings is None or rings >= omega.shape[-3]:
+        return omega
+    out = np.array(omega, np.float64, copy=True)
+    out[..., rings:, :, :] = 0.0
+    return out
+
+
 def weighted_mean(e: np.ndarray, omega: np.ndarray, min_overlap: float = 1e-3) -> np.ndarray:
     """(n,) sum omega e / sum omega over cells of e, omega (n, R, A, H); inf where sum omega <= min_overlap."""
     num, den = (omega * e).sum(axis=(1, 2, 3)), omega.sum(axis=(1, 2, 3))
@@ -70,22 +94,23 @@ def weighted_mean(e: np.ndarray, omega: np.ndarray, min_overlap: float = 1e-3) -
 
 
 def pair_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, yaw_deg: np.ndarray, scale: np.ndarray,
-                   *, tolerant: bool, min_overlap: float = 1e-3) -> np.ndarray:
+                   *, tolerant: bool, rings: int | None = None, min_overlap: float = 1e-3) -> np.ndarray:
     """(n,) distances of views X (n, C, R, A, H), W (n, R, A, H) each against its own prototype (copy) P (n, C, R,
     A, H), V (n, R, A, H) at the pose yaw_deg, scale (n,) (object ~= prototype rolled by yaw and scaled), with no
-    reliability (lambda = 1): a view matched on another resting face against the copy resting on it."""
+    reliability (lambda = 1): a view matched on another resting face against the copy resting on it.  ``rings``:
+    radial bins counted (None: all; see :func:`footprint_rings`)."""
     from .engine import align_to_prototype
     n = len(X)
     if n == 0:
         return np.zeros(0)
     xa, wa = align_to_prototype(np.asarray(X, np.float32), np.asarray(W, np.float32), np.asarray(yaw_deg, np.float64),
                                 np.asarray(scale, np.float64))
-    omega = wa.astype(np.float64) * np.asarray(V, np.float64)
+    omega = ring_weights(wa.astype(np.float64) * np.asarray(V, np.float64), rings)
     return weighted_mean(residuals(xa, P, tolerant), omega, min_overlap)
 
 
 def tilted_distances(bank, X: np.ndarray, W: np.ndarray, up: np.ndarray, yaw_deg: np.ndarray, scale: np.ndarray,
-                     pairs: np.ndarray, *, tolerant: bool) -> np.ndarray:
+                     pairs: np.ndarray, *, tolerant: bool, rings: int | None = None) -> np.ndarray:
     """(n, K) distances of views X (n, C, R, A, H), W (n, R, A, H) matched on another resting face: for every
     (view, prototype) in ``pairs`` (n, K) bool, against prototype k's copy resting with ``up`` (n, K, 3) up
     (``tilts.TiltBank.copies_at``, one copy per distinct direction) at the pose yaw_deg, scale (n, K); inf
@@ -97,5 +122,5 @@ def tilted_distances(bank, X: np.ndarray, W: np.ndarray, up: np.ndarray, yaw_deg
         Pc, Vc = bank.copies_at(int(k), dirs)
         inv = np.asarray(inv).reshape(-1)
         out[rows, k] = pair_distances(X[rows], W[rows], Pc[inv], Vc[inv], yaw_deg[rows, k], scale[rows, k],
-                                      tolerant=tolerant)
+                                      tolerant=tolerant, rings=rings)
     return out
