@@ -155,3 +155,28 @@ def test_distance_without_the_margin_ring_matches_the_definition():
                     num += om * np.mean((x[i, :, r, a, h] - P[0, :, r, a, h]) ** 2)
                     den += om
         np.testing.assert_allclose(got[i], num / den, rtol=1e-6)
+
+
+def test_views_on_another_face_are_scored_against_the_copy_resting_on_it():
+    """tilted_distances: each (view, prototype) pair marked is the distance of pair_distances against that
+    prototype's copy at the pair's up direction (copies asked for one by one); unmarked pairs are inf."""
+    from protomine.mine.tilts import TiltBank, TiltGrid
+    from protomine.mine.viewdistance import tilted_distances
+    rng = np.random.default_rng(7)
+    P = rng.random((2, C, R, A, H)).astype(np.float32)
+    V = (rng.random((2, R, A, H)) > 0.2).astype(np.float32)
+    bank = TiltBank(P, V, np.array([1.0, 0.8]), (1.0,), TiltGrid(nsides=(1,)))
+    x, w = rng.random((3, C, R, A, H)).astype(np.float32), rng.random((3, R, A, H)).astype(np.float32)
+    up = np.zeros((3, 2, 3))
+    up[:, 0] = bank.grid.dirs[4]
+    up[:, 1] = bank.grid.dirs[7]
+    up[2, 0] = bank.grid.dirs[9]
+    yaw, sc = rng.uniform(0, 360, (3, 2)), np.ones((3, 2))
+    pairs = np.array([[True, False], [True, True], [True, True]])
+    got = tilted_distances(bank, x, w, up, yaw, sc, pairs, tolerant=False, rings=7)
+    assert np.isinf(got[0, 1])
+    for i, k in zip(*np.nonzero(pairs)):
+        pc, vc = bank.copy_at(int(k), up[i, k])
+        want = pair_distances(x[i:i + 1], w[i:i + 1], pc[None], vc[None], yaw[i:i + 1, k], sc[i:i + 1, k],
+                              tolerant=False, rings=7)[0]
+        np.testing.assert_allclose(got[i, k], want, rtol=1e-6)
