@@ -180,3 +180,28 @@ def test_views_on_another_face_are_scored_against_the_copy_resting_on_it():
         want = pair_distances(x[i:i + 1], w[i:i + 1], pc[None], vc[None], yaw[i:i + 1, k], sc[i:i + 1, k],
                               tolerant=False, rings=7)[0]
         np.testing.assert_allclose(got[i, k], want, rtol=1e-6)
+
+
+def test_distance_with_the_margin_ring_down_weighted_matches_the_definition():
+    rng = np.random.default_rng(6)
+    x, w = rng.random((2, C, R, A, H)), rng.random((2, R, A, H))
+    P, V = rng.random((1, C, R, A, H)), rng.random((1, R, A, H))
+    got = reliable_distances(x, w, P, V, None, np.zeros((2, 1)), np.ones((2, 1)), rings=(2, 0.5))[:, 0]
+    for i in range(2):
+        num = den = 0.0
+        for r in range(R):
+            for a in range(A):
+                for h in range(H):
+                    om = w[i, r, a, h] * V[0, r, a, h] * (0.5 if r >= 2 else 1.0)
+                    num += om * np.mean((x[i, :, r, a, h] - P[0, :, r, a, h]) ** 2)
+                    den += om
+        np.testing.assert_allclose(got[i], num / den, rtol=1e-6)
+
+
+def test_score_rings_from_the_config():
+    from protomine.config import load_config
+    from protomine.mine.pipeline import score_rings
+    cfg = load_config(None)
+    assert score_rings(cfg, 8) is None                                   # default: counted like the rest
+    half = load_config(None, {"mine": {"score_margin_ring": 0.5}})
+    assert score_rings(half, 8) == (7, 0.5)                               # R = 8, margin 1.15: bin 7 is beyond

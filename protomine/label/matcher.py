@@ -139,7 +139,8 @@ class Matcher:
     (the library's ``[mine] face_pairs``; with tilts only) also searches each prototype's exact resting
     directions (:class:`ExactFaces`).  ``tolerant`` (the library's ``[mine] tolerant_residual``): scores judge
     the tolerant distance of ``mine.viewdistance`` on every face, as the library's calibration did; ``rings``
-    (radial bins the score counts, None = all: the library's ``[mine] score_margin_ring``) likewise.
+    (the ring beyond the footprint and its weight, None = counted like the rest: the library's ``[mine]
+    score_margin_ring``) likewise.
     """
 
     library: Library
@@ -151,7 +152,7 @@ class Matcher:
     weighted: bool = True
     exact_faces: bool = False
     tolerant: bool = False
-    rings: int | None = None
+    rings: tuple[int, float] | None = None
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)

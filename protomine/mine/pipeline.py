@@ -189,13 +189,13 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
             yield k, rows_all[sel], xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), upright
 
 
-def score_rings(cfg: dict, radial_bins: int) -> int | None:
-    """Radial bins the single-view score counts: all (None) unless ``[mine] score_margin_ring`` is false, then
-    those that start inside the footprint (``viewdistance.footprint_rings``)."""
+def score_rings(cfg: dict, radial_bins: int) -> tuple[int, float] | None:
+    """The single-view score's ring beyond the footprint: None (counted like the rest) when ``[mine]
+    score_margin_ring`` is 1, else (its first radial bin, ``viewdistance.footprint_rings``; its weight)."""
     from .viewdistance import footprint_rings
-    if cfg["mine"].get("score_margin_ring", True):
-        return None
-    return footprint_rings(radial_bins, float(cfg["volume"]["radial_margin"]))
+    weight = float(cfg["mine"].get("score_margin_ring", 1.0))
+    first = footprint_rings(radial_bins, float(cfg["volume"]["radial_margin"]))
+    return None if weight == 1.0 or first >= radial_bins else (first, weight)
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
@@ -231,7 +231,7 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     distance is then re-weighted (``reliability.reliable_distances``) by the reliability fitted *without its
     object's views*, for the same reason.  Views on another face keep the plain distance (the reliability
     lives in the canonical frame), as the matcher does for tilted matches.  With ``[mine] tolerant_residual``
-    or without ``[mine] score_margin_ring`` every view's distance is the one of ``viewdistance`` (views on
+    or ``[mine] score_margin_ring`` below 1 every view's distance is the one of ``viewdistance`` (views on
     another face against the copy resting on it, without reliability), the distance the matcher then scores.
     """
     from .engine import align_to_prototype

@@ -61,13 +61,13 @@ def cell_reliability(num: np.ndarray, den: np.ndarray, *, floor: float = FLOOR, 
 
 def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, reliability: np.ndarray | None,
                        yaw_deg: np.ndarray, scale: np.ndarray, *, min_overlap: float = 1e-3,
-                       tolerant: bool = False, rings: int | None = None) -> np.ndarray:
+                       tolerant: bool = False, rings: int | tuple[int, float] | None = None) -> np.ndarray:
     """(n, K) re-weighted distances of single views X (n, C, R, A, H), W (n, R, A, H) to prototypes
     P (K, C, R, A, H), V (K, R, A, H) at their best poses yaw_deg, scale (n, K) (the pose search's, object ~=
     prototype rolled by yaw and scaled); inf where the view and the prototype share too little weight.
     reliability (K, R, H) or None (= 1: the plain distance at that pose).  ``tolerant``: per-cell residuals
-    of ``viewdistance.tolerant_residuals`` instead of the squared ones; ``rings``: radial bins counted (None: all;
-    ``viewdistance.footprint_rings``)."""
+    of ``viewdistance.tolerant_residuals`` instead of the squared ones; ``rings``: radial bins left out or down-weighted (None: none;
+    ``viewdistance.ring_weights``)."""
     from .engine import align_to_prototype
     from .viewdistance import residuals, ring_weights
     X, W = np.asarray(X, np.float32), np.asarray(W, np.float32)

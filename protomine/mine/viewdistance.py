@@ -26,8 +26,9 @@ bins (those starting at or beyond the footprint radius, :func:`footprint_rings`)
 object by construction: scale normalisation puts any object's footprint inside them.  They tell a known
 object from a never-seen one only through how far its silhouette and the free space beside it were read
 right, which is what sensors get wrong (shadows, mixed edge readings, range noise, a neighbour's rim).  With
-``[mine] score_margin_ring = false`` the single-view score leaves them out (weight 0), in the calibration and
-in the matcher alike, on every resting face (a copy on another face has the same ring in its own grid).
+``[mine] score_margin_ring`` below 1 the single-view score gives their cells that weight (0: left out), in the
+calibration and in the matcher alike, on every resting face (a copy on another face has the same ring in its
+own grid).
 
 Shapes: aligned views x (n, C, R, A, H), prototypes p (n or 1, C, R, A, H); residuals (n, R, A, H).
 """
@@ -78,12 +79,14 @@ def footprint_rings(radial_bins: int, radial_margin: float) -> int:
     return min(int(radial_bins), int(np.ceil(radial_bins / max(float(radial_margin), 1.0) - 1e-9)))
 
 
-def ring_weights(omega: np.ndarray, rings: int | None) -> np.ndarray:
-    """omega (..., R, A, H) with the radial bins from ``rings`` on set to 0 (None: unchanged)."""
-    if rings is None or rings >= omega.shape[-3]:
+def ring_weights(omega: np.ndarray, rings: int | tuple[int, float] | None) -> np.ndarray:
+    """omega (..., R, A, H) with the radial bins from ``rings`` on weighted by 0, or from ``rings[0]`` on by
+    ``rings[1]`` (None: unchanged)."""
+    first, weight = (rings, 0.0) if isinstance(rings, (int, np.integer)) else (rings if rings is not None else (None, 1.0))
+    if first is None or first >= omega.shape[-3] or weight == 1.0:
         return omega
     out = np.array(omega, np.float64, copy=True)
-    out[..., rings:, :, :] = 0.0
+    out[..., first:, :, :] *= weight
     return out
 
 
@@ -94,11 +97,11 @@ def weighted_mean(e: np.ndarray, omega: np.ndarray, min_overlap: float = 1e-3) -
 
 
 def pair_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, yaw_deg: np.ndarray, scale: np.ndarray,
-                   *, tolerant: bool, rings: int | None = None, min_overlap: float = 1e-3) -> np.ndarray:
+                   *, tolerant: bool, rings: int | tuple[int, float] | None = None, min_overlap: float = 1e-3) -> np.ndarray:
     """(n,) distances of views X (n, C, R, A, H), W (n, R, A, H) each against its own prototype (copy) P (n, C, R,
     A, H), V (n, R, A, H) at the pose yaw_deg, scale (n,) (object ~= prototype rolled by yaw and scaled), with no
     reliability (lambda = 1): a view matched on another resting face against the copy resting on it.  ``rings``:
-    radial bins counted (None: all; see :func:`footprint_rings`)."""
+    the first radial bin left out, or (first bin, weight) (None: all counted; see :func:`ring_weights`)."""
     from .engine import align_to_prototype
     n = len(X)
     if n == 0:
@@ -110,7 +113,7 @@ def pair_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, y
 
 
 def tilted_distances(bank, X: np.ndarray, W: np.ndarray, up: np.ndarray, yaw_deg: np.ndarray, scale: np.ndarray,
-                     pairs: np.ndarray, *, tolerant: bool, rings: int | None = None) -> np.ndarray:
+                     pairs: np.ndarray, *, tolerant: bool, rings: int | tuple[int, float] | None = None) -> np.ndarray:
     """(n, K) distances of views X (n, C, R, A, H), W (n, R, A, H) matched on another resting face: for every
     (view, prototype) in ``pairs`` (n, K) bool, against prototype k's copy resting with ``up`` (n, K, 3) up
     (``tilts.TiltBank.copies_at``, one copy per distinct direction) at the pose yaw_deg, scale (n, K); inf
