@@ -53,6 +53,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.symmetry_factor": (0.1, 100.0),
     "mine.unknown_alpha": (0.001, 0.5),
     "mine.tilt_nsides": (0, 16),
+    "mine.score_margin_ring": (0.0, 1.0),
     "mine.tilt_refine_top": (1, 64),
     "audit.bootstrap": (10, 100000),
     "audit.match_radius_m": (1e-4, 10.0),

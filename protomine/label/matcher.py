@@ -57,9 +57,10 @@ from ..mine.library import Library
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import library_cut
-from ..mine.pipeline import reduce_yaw
+from ..mine.pipeline import reduce_yaw, score_rings
 from ..mine.posesearch import PoseBank
 from ..mine.reliability import reliable_distances
+from ..mine.viewdistance import tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, make_bank
@@ -139,7 +140,10 @@ class Matcher:
 
     P (K, C, R, A, H) features, V (K, R, A, H) weights (ones when ``weighted`` is False).  ``exact_faces``
     (the library's ``[mine] face_pairs``; with tilts only) also searches each prototype's exact resting
-    directions (:class:`ExactFaces`).
+    directions (:class:`ExactFaces`).  ``tolerant`` (the library's ``[mine] tolerant_residual``): scores judge
+    the tolerant distance of ``mine.viewdistance`` on every face, as the library's calibration did; ``rings``
+    (the ring beyond the footprint and its weight, None = counted like the rest: the library's ``[mine]
+    score_margin_ring``) likewise.
     """
 
     library: Library
@@ -150,6 +154,8 @@ class Matcher:
     unknown_cut: float
     weighted: bool = True
     exact_faces: bool = False
+    tolerant: bool = False
+    rings: tuple[int, float] | None = None
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -205,8 +211,14 @@ class Matcher:
         # the reliability lives in the canonical frame, so matches on another face keep the plain distance
         lam = self.library.prototypes.get("cell_reliability") if self.weighted else None
         Dr = D
-        if lam is not None:
-            Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale), D)
+        again = self.tolerant or self.rings is not None
+        if lam is not None or again:
+            Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale, tolerant=self.tolerant,
+                                                      rings=self.rings), D)
+        if again and isinstance(self.bank, TiltBank):  # other faces: the same distance against the copy
+            tilted = ~upright & np.isfinite(D)
+            Dr = np.where(tilted, tilted_distances(self.bank, X, W, up, raw, fit_scale, tilted, tolerant=self.tolerant,
+                                                   rings=self.rings), Dr)
         S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True, upright=upright)
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
@@ -234,7 +246,8 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)))
+                   library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)),
+                   tolerant=bool(m.get("tolerant_residual", False)), rings=score_rings(lib_cfg, grid.radial_bins))
 
 
 @dataclass

@@ -189,6 +189,15 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
             yield k, rows_all[sel], xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), upright
 
 
+def score_rings(cfg: dict, radial_bins: int) -> tuple[int, float] | None:
+    """The single-view score's ring beyond the footprint: None (counted like the rest) when ``[mine]
+    score_margin_ring`` is 1, else (its first radial bin, ``viewdistance.footprint_rings``; its weight)."""
+    from .viewdistance import footprint_rings
+    weight = float(cfg["mine"].get("score_margin_ring", 1.0))
+    first = footprint_rings(radial_bins, float(cfg["volume"]["radial_margin"]))
+    return None if weight == 1.0 or first >= radial_bins else (first, weight)
+
+
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
                           scales: tuple[float, ...], *, max_objects_per_cluster: int = 64,
                           progress: Callable[[str], None] | None = None,
@@ -221,11 +230,17 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     The reliability is fitted on the residuals of the upright views at their best pose; each upright view's
     distance is then re-weighted (``reliability.reliable_distances``) by the reliability fitted *without its
     object's views*, for the same reason.  Views on another face keep the plain distance (the reliability
-    lives in the canonical frame), as the matcher does for tilted matches.
+    lives in the canonical frame), as the matcher does for tilted matches.  With ``[mine] tolerant_residual``
+    or ``[mine] score_margin_ring`` below 1 every view's distance is the one of ``viewdistance`` (views on
+    another face against the copy resting on it, without reliability), the distance the matcher then scores.
     """
     from .engine import align_to_prototype
     from .reliability import reliable_distances, residual_sums
+    from .viewdistance import pair_distances
     K, _, R, _, H = P.shape
+    tolerant = bool(cfg["mine"].get("tolerant_residual", False))
+    rings = score_rings(cfg, R)
+    again = tolerant or rings is not None   # views on another face are re-scored, not given the search distance
     out = np.full(len(store.single_object), np.inf)
     num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
     if len(store.single_object) == 0:
@@ -252,7 +267,12 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
         for (k, rows, xs, ws, Pk, Vk, upright), (yaw, sc), (a, c) in zip(loo(), poses, own):
             if upright:
                 lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
-                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc)[:, 0]
+                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings)[:, 0]
+                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+            elif again and len(rows):  # another face: the same distance against the copy, no reliability
+                d = pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
+                                   np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0],
+                                   tolerant=tolerant, rings=rings)
                 out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
             b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)

@@ -60,12 +60,16 @@ def cell_reliability(num: np.ndarray, den: np.ndarray, *, floor: float = FLOOR, 
 
 
 def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, reliability: np.ndarray | None,
-                       yaw_deg: np.ndarray, scale: np.ndarray, *, min_overlap: float = 1e-3) -> np.ndarray:
+                       yaw_deg: np.ndarray, scale: np.ndarray, *, min_overlap: float = 1e-3,
+                       tolerant: bool = False, rings: int | tuple[int, float] | None = None) -> np.ndarray:
     """(n, K) re-weighted distances of single views X (n, C, R, A, H), W (n, R, A, H) to prototypes
     P (K, C, R, A, H), V (K, R, A, H) at their best poses yaw_deg, scale (n, K) (the pose search's, object ~=
     prototype rolled by yaw and scaled); inf where the view and the prototype share too little weight.
-    reliability (K, R, H) or None (= 1: the plain distance at that pose)."""
+    reliability (K, R, H) or None (= 1: the plain distance at that pose).  ``tolerant``: per-cell residuals
+    of ``viewdistance.tolerant_residuals`` instead of the squared ones; ``rings``: radial bins left out or down-weighted (None: none;
+    ``viewdistance.ring_weights``)."""
     from .engine import align_to_prototype
+    from .viewdistance import residuals, ring_weights
     X, W = np.asarray(X, np.float32), np.asarray(W, np.float32)
     n, K = X.shape[0], P.shape[0]
     out = np.full((n, K), np.inf)
@@ -77,8 +81,8 @@ def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarra
         if not ok.any():
             continue
         xa, wa = align_to_prototype(X[ok], W[ok], yaw_deg[ok, k], scale[ok, k])
-        omega = wa.astype(np.float64) * V[k][None] * lam[k][None, :, None, :]
-        e = ((xa.astype(np.float64) - P[k][None]) ** 2).mean(axis=1)
+        omega = ring_weights(wa.astype(np.float64) * V[k][None] * lam[k][None, :, None, :], rings)
+        e = residuals(xa, P[k][None], tolerant)
         num, den = (omega * e).sum(axis=(1, 2, 3)), omega.sum(axis=(1, 2, 3))
         out[ok, k] = np.where(den > min_overlap, num / np.maximum(den, 1e-12), np.inf)
     return out
