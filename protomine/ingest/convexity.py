@@ -49,6 +49,8 @@ ONE_COLOUR_SHARE = 0.9    # share of a group's colours near its median that make
                           # pixels: 98% within 0.03-0.04 of its median, see proposals.GROW_CHROMA; measured, demo
                           # touching scenes: a standing neighbour's voxels 0.96 within 0.08, a crumb mixing two
                           # objects' edges and shadow 0.30)
+LEAN_SOLID_SHARE = 0.5   # a group with this share of its voxels in parts that stand by themselves leans on a
+                         # neighbour of another colour rather than being a piece of it (a majority)
 DARK_RGB = 60            # colours darker than this (sum of 8-bit r, g, b) have no usable chromaticity
 REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
 UNDER_MIN = 10           # voxels under a part's footprint that make a neighbour its support
@@ -175,6 +177,16 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     size = np.bincount(parts[ok], minlength=n)
     group = np.arange(n)                                  # part -> group id (a part id)
     voxels = {int(p): np.flatnonzero(parts == p) for p in ids}
+    # parts that stand by themselves (a mallet's head, a tripod's foot): a group mostly made of them that
+    # no longer stands once its own pieces joined it (the handle raised, leaning on a neighbour) leans on
+    # that neighbour; it joins it only when their colours agree (a tripod's legs and feet)
+    solid = np.zeros(n)
+    if colours is not None:
+        for p in ids:
+            v = voxels[int(p)]
+            if len(v) >= min_voxels and stands_alone(xy[v], heights[v], support_band=support_band, inset=inset,
+                                                     cell=cell):
+                solid[p] = len(v)
     for _ in range(20):                                   # until every group stands alone or has no neighbour
         changed = False
         for g in sorted(set(group[ids].tolist()), key=lambda q: (size[group == q].sum(), q)):
@@ -203,6 +215,8 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                     under, per_group = np.where(same, under, 0.0), np.where(same, per_group, 0.0)
                 elif (same & (per_group > 0)).any():
                     under, per_group = np.zeros(n), np.where(same, per_group, 0.0)
+                elif solid[mem].sum() >= LEAN_SOLID_SHARE * len(sel):
+                    continue
             if under.max() > 0:            # what it rests on: a lid on its walls, a flange on its core
                 # among the groups under it, the one it meets along the longest seam (a lid meets its own
                 # walls all around, a touching neighbour that reaches under its rim at a few points)
