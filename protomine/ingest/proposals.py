@@ -713,4 +713,3 @@ def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids
     else:
         props = _geometry_proposals(cap, frames, plane, cfg)
     return SceneObjects(cap, plane, frames, props)
-
