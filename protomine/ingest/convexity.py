@@ -111,8 +111,9 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
 def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, inset: float,
                  extra: np.ndarray | None = None, cell: float | None = None) -> bool:
     """Whether a part could stand on the plane by itself: its centre of mass (with ``cell``, that of the solid
-    under its surface, ``column_centre``; without, the mean of its points (M, 2) in plane coordinates) lies inside the convex hull of its points lower than ``support_band`` (its support
-    polygon), at least ``inset`` from the hull's edge.  Legs, handles, lids and slivers cut from a wall do
+    under its surface, ``column_centre``; without, the mean of its points (M, 2) in plane coordinates) lies
+    inside the convex hull of its points lower than ``support_band`` (its support polygon), at least
+    ``inset`` from the hull's edge.  Legs, handles, lids and slivers cut from a wall do
     not; an object does.  extra: more support points (K, 2) (its base seen only below the grouping margin)."""
     foot = xy[heights < support_band]
     if extra is not None and len(extra):
