@@ -41,10 +41,11 @@ SEAM_SHARE = 0.01        # share of a group's voxels along the seam with a neigh
 SEAM_LONG = 0.05         # ... with any neighbour of its colour at this share, not only the one of its longest seam
                          # (measured, demo touching scenes: the blocks of one object 0.04-0.93, a post and the
                          # touching post of another 0.009-0.013)
-SAME_CHROMA = 0.03       # chromaticity distance (``_chroma``) below which two groups have one colour (measured,
+SAME_CHROMA = 0.015      # chromaticity distance (``_chroma``) below which two groups have one colour (measured,
                          # tools demo touching scenes, two seeds, adjacent convex parts of >= 50 voxels: one object's
-                         # parts 0.008 at most (226 pairs), touching objects 0.069 at least (112 pairs); 0.03 lies
-                         # near the geometric middle of that gap)
+                         # parts 0.008 at most (226 pairs), touching objects of other colours 0.069 at least (112
+                         # pairs); two touching posts of one palette's shades (angles family) 0.030: the geometric
+                         # middle of 0.008 and 0.030)
 ONE_COLOUR_SHARE = 0.9    # share of a group's colours near its median that make it one colour (an object's
                           # pixels: 98% within 0.03-0.04 of its median, see proposals.GROW_CHROMA; measured, demo
                           # touching scenes: a standing neighbour's voxels 0.96 within 0.08, a crumb mixing two
