@@ -41,8 +41,18 @@ SEAM_SHARE = 0.01        # share of a group's voxels along the seam with a neigh
 SEAM_LONG = 0.05         # ... with any neighbour of its colour at this share, not only the one of its longest seam
                          # (measured, demo touching scenes: the blocks of one object 0.04-0.93, a post and the
                          # touching post of another 0.009-0.013)
-SAME_CHROMA = 0.03       # chromaticity distance below which two groups have one colour (measured: one object's
-                         # blocks 0.004; touching demo objects 0.15-0.6)
+SAME_CHROMA = 0.015      # chromaticity distance (``_chroma``) below which two groups have one colour (measured,
+                         # tools demo touching scenes, two seeds, adjacent convex parts of >= 50 voxels: one object's
+                         # parts 0.008 at most (226 pairs), touching objects of other colours 0.069 at least (112
+                         # pairs); two touching posts of one palette's shades (angles family) 0.030: the geometric
+                         # middle of 0.008 and 0.030)
+ONE_COLOUR_SHARE = 0.9    # share of a group's colours near its median that make it one colour (an object's
+                          # pixels: 98% within 0.03-0.04 of its median, see proposals.GROW_CHROMA; measured, demo
+                          # touching scenes: a standing neighbour's voxels 0.96 within 0.08, a crumb mixing two
+                          # objects' edges and shadow 0.30)
+LEAN_SOLID_SHARE = 0.5   # a group with this share of its voxels in parts that stand by themselves leans on a
+                         # neighbour of another colour rather than being a piece of it (a majority)
+DARK_RGB = 60            # colours darker than this (sum of 8-bit r, g, b) have no usable chromaticity
 REST_SEAM_SHARE = 0.25   # a part rests on every group under it whose seam with it is this share of the longest
 UNDER_MIN = 10           # voxels under a part's footprint that make a neighbour its support
 
@@ -100,10 +110,11 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
 
 
 def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, inset: float,
-                 extra: np.ndarray | None = None) -> bool:
-    """Whether a part could stand on the plane by itself: its centre of mass (the mean of its points (M, 2)
-    in plane coordinates) lies inside the convex hull of its points lower than ``support_band`` (its support
-    polygon), at least ``inset`` from the hull's edge.  Legs, handles, lids and slivers cut from a wall do
+                 extra: np.ndarray | None = None, cell: float | None = None) -> bool:
+    """Whether a part could stand on the plane by itself: its centre of mass (with ``cell``, that of the solid
+    under its surface, ``column_centre``; without, the mean of its points (M, 2) in plane coordinates) lies
+    inside the convex hull of its points lower than ``support_band`` (its support polygon), at least
+    ``inset`` from the hull's edge.  Legs, handles, lids and slivers cut from a wall do
     not; an object does.  extra: more support points (K, 2) (its base seen only below the grouping margin)."""
     foot = xy[heights < support_band]
     if extra is not None and len(extra):
@@ -114,16 +125,32 @@ def stands_alone(xy: np.ndarray, heights: np.ndarray, *, support_band: float, in
         hull = ConvexHull(foot)
     except QhullError:
         return False
-    com = xy.mean(axis=0)
+    com = xy.mean(axis=0) if cell is None else column_centre(xy, heights, cell)
     # hull.equations: rows (a, b, c) with a x + b y + c <= 0 inside, (a, b) a unit outward normal
     depth = -(hull.equations[:, :2] @ com + hull.equations[:, 2])
     return bool(depth.min() >= inset)
 
 
+def column_centre(xy: np.ndarray, heights: np.ndarray, cell: float) -> np.ndarray:
+    """In-plane centre of mass (2,) of the solid under a surface seen from above: points (M, 2) in plane
+    coordinates with heights (M,) over the plane are binned into ``cell`` x ``cell`` columns, each filled
+    from the plane up to its highest point (uniform density).  The mean of surface points weighs a part
+    by its area: a thin handle or a leg, all surface, would outweigh a solid head or body; a column
+    weighs by volume (it over-counts the space under an overhang, which still errs towards the bulk)."""
+    keys, inv = np.unique(np.floor(xy / cell).astype(np.int64), axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    top = np.zeros(len(keys))
+    np.maximum.at(top, inv, np.maximum(heights, 0.0))
+    cnt = np.bincount(inv, minlength=len(keys)).astype(np.float64)
+    centre = np.stack([np.bincount(inv, weights=xy[:, k], minlength=len(keys)) for k in range(2)], 1) / cnt[:, None]
+    w = top.sum()
+    return centre.mean(axis=0) if w <= 0 else (top[:, None] * centre).sum(axis=0) / w
+
+
 def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: np.ndarray, *, link_radius: float,
                reach: float, support_band: float, inset: float, min_voxels: int,
                low: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
-               colours: np.ndarray | None = None) -> np.ndarray:
+               colours: np.ndarray | None = None, cell: float | None = None) -> np.ndarray:
     """Objects (V,) relabelled 0..n-1 from convex parts (V,) of voxels (V, 3) with in-plane coordinates
     (V, 2) and heights above the support plane (V,).
 
@@ -152,6 +179,16 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     size = np.bincount(parts[ok], minlength=n)
     group = np.arange(n)                                  # part -> group id (a part id)
     voxels = {int(p): np.flatnonzero(parts == p) for p in ids}
+    # parts that stand by themselves (a mallet's head, a tripod's foot): a group mostly made of them that
+    # no longer stands once its own pieces joined it (the handle raised, leaning on a neighbour) leans on
+    # that neighbour; it joins it only when their colours agree (a tripod's legs and feet)
+    solid = np.zeros(n)
+    if colours is not None:
+        for p in ids:
+            v = voxels[int(p)]
+            if len(v) >= min_voxels and stands_alone(xy[v], heights[v], support_band=support_band, inset=inset,
+                                                     cell=cell):
+                solid[p] = len(v)
     for _ in range(20):                                   # until every group stands alone or has no neighbour
         changed = False
         for g in sorted(set(group[ids].tolist()), key=lambda q: (size[group == q].sum(), q)):
@@ -160,7 +197,8 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                 continue
             sel = np.concatenate([voxels[int(p)] for p in mem if int(p) in voxels])
             if len(sel) >= min_voxels and stands_alone(xy[sel], heights[sel], support_band=support_band, inset=inset,
-                                                       extra=_low_support(points[sel], low, link_radius / 2)):
+                                                       extra=_low_support(points[sel], low, link_radius / 2),
+                                                       cell=cell):
                 continue
             w = np.asarray(links[mem].sum(axis=0)).ravel()                 # (n,) pairs to every part
             per_group = np.bincount(group, weights=w, minlength=n)
@@ -179,6 +217,8 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                     under, per_group = np.where(same, under, 0.0), np.where(same, per_group, 0.0)
                 elif (same & (per_group > 0)).any():
                     under, per_group = np.zeros(n), np.where(same, per_group, 0.0)
+                elif solid[mem].sum() >= LEAN_SOLID_SHARE * len(sel):
+                    continue
             if under.max() > 0:            # what it rests on: a lid on its walls, a flange on its core
                 # among the groups under it, the one it meets along the longest seam (a lid meets its own
                 # walls all around, a touching neighbour that reaches under its rim at a few points)
@@ -244,9 +284,28 @@ def _join_bases(points: np.ndarray, lab: np.ndarray, heights: np.ndarray, low, r
 
 
 def _chroma(rgb: np.ndarray) -> np.ndarray:
-    """Median chromaticity (3,) (r, g, b) / (r + g + b) of colours (M, 3)."""
-    c = np.median(rgb, axis=0)
-    return c / max(float(c.sum()), 1e-9)
+    """Median chromaticity (3,) of colours (M, 3): each colour's own (r, g, b) / (r + g + b) first, then the
+    per-component median over the colours bright enough to have one (DARK_RGB; all when none is).  A
+    median of the raw channels would mix channels of different colours (a piece half in shadow, half lit,
+    with a rim of the table's colour) before normalising."""
+    rgb = np.asarray(rgb, dtype=np.float64)
+    s = rgb.sum(axis=1)
+    bright = s >= DARK_RGB
+    if bright.any():
+        rgb, s = rgb[bright], s[bright]
+    return np.median(rgb / np.maximum(s, 1e-9)[:, None], axis=0)
+
+
+def one_colour(rgb: np.ndarray, radius: float) -> bool:
+    """Whether colours (M, 3) are of one colour: at least ONE_COLOUR_SHARE of those bright enough to have a
+    chromaticity (DARK_RGB) lie within ``radius`` of their median chromaticity (``_chroma``)."""
+    rgb = np.asarray(rgb, dtype=np.float64)
+    s = rgb.sum(axis=1)
+    bright = s >= DARK_RGB
+    if not bright.any():
+        return False
+    c = rgb[bright] / s[bright, None]
+    return bool(np.mean(np.linalg.norm(c - _chroma(rgb), axis=1) <= radius) >= ONE_COLOUR_SHARE)
 
 
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float) -> np.ndarray:
@@ -263,10 +322,7 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
     ids = [int(l) for l in np.unique(lab[lab >= 0])]
     if len(ids) < 2:
         return lab
-    med = {}
-    for l in ids:
-        c = np.median(colours[lab == l], axis=0)
-        med[l] = c / max(c.sum(), 1e-9)
+    med = {l: _chroma(colours[lab == l]) for l in ids}
     trees = {l: cKDTree(points[lab == l]) for l in ids}
     parent = {l: l for l in ids}
 

@@ -25,7 +25,8 @@ from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from ..progress import detail
-from .convexity import convex_parts, frame_segments, join_parts, view_votes, voxel_normals
+from .convexity import (DARK_RGB, SAME_CHROMA, _chroma, convex_parts, frame_segments, join_parts, one_colour, view_votes,
+                        voxel_normals)
 from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
@@ -47,7 +48,6 @@ LOW_GROW_M = 0.10           # an object grows into its low band at most this far
 VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
 GROW_CHROMA = 0.08          # chromaticity distance within which an object grows into its low band (measured on
                             # the demo: 98% of an object's pixels lie within 0.03-0.04 of its median)
-DARK_RGB = 60               # pixels darker than this (sum of 8-bit r, g, b) have no usable chromaticity
 FOOTPRINT_OVERLAP = 0.5     # a group with this share of its footprint inside another's is part of it
 ON_PLANE = 2.0              # x the grouping margin: a group whose lowest points are this low stands on the plane
 STANDS_SHARE = 0.25         # ... and, with this share of another group's voxels, is an object beside it, not its part
@@ -347,8 +347,9 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes)
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
-                         low=_low_band(frames, plane, cfg, eps), colours=colours)
-    lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg))
+                         low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0)
+    lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
+                                        colours=colours)
     clusters = []
     for l in range(lab.max() + 1):
         sel = lab == l
@@ -643,7 +644,8 @@ def grow_into_low_band(labels: np.ndarray, depth: np.ndarray, band: np.ndarray, 
     return lab
 
 
-def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit, on_plane: float = 0.0) -> np.ndarray:
+def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: PlaneFit, on_plane: float = 0.0,
+                                  colours: np.ndarray | None = None) -> np.ndarray:
     """Merge DBSCAN groups whose footprints overlap (one object whose thin parts lost contact).
 
     Objects rest side by side on the support surface, so when most (FOOTPRINT_OVERLAP) of one group's
@@ -651,7 +653,11 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
     of one object (e.g. a post and its legs).  A long group (a wall, a shelf edge) only absorbs what lies
     over it.  A group that reaches down to the plane itself (its 2nd height percentile below ``on_plane``)
     and holds at least STANDS_SHARE of the other's voxels stands there on its own: a touching neighbour
-    whose pegs or rim overhang another's base is not absorbed by it (a small piece still is).  Returns relabelled groups 0..n-1 (noise stays -1).
+    whose pegs or rim overhang another's base is not absorbed by it (a small piece still is).  With
+    ``colours`` (V, 3) RGB, neither is a group of one colour (``convexity.one_colour``) reaching down to the
+    plane whose colour differs from the host's (median chromaticity farther apart than convexity.SAME_CHROMA):
+    a neighbour standing inside the convex hull of an L-shaped or leaning object.  A crumb mixing two
+    objects' edges and their shadows has no one colour and is still absorbed.  Returns relabelled groups 0..n-1 (noise stays -1).
     """
     from scipy.spatial import Delaunay
     n = lab.max() + 1
@@ -674,6 +680,8 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
         return i
 
     low = [float(np.percentile(plane.height(pts[lab == l]), 2)) < on_plane for l in range(n)]
+    chroma = [_chroma(colours[lab == l]) for l in range(n)] if colours is not None else None
+    alone = [colours is not None and one_colour(colours[lab == l], GROW_CHROMA) for l in range(n)]
     for i in range(n):
         # one host per group (the one covering most of it): a crumb between two touching objects lies in
         # both their hulls and must not glue them together
@@ -683,6 +691,8 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
                 continue
             if low[i] and len(xy[i]) >= STANDS_SHARE * len(xy[j]):
                 continue                 # a neighbour of its own size, standing on the plane beside it
+            if low[i] and alone[i] and np.linalg.norm(chroma[i] - chroma[j]) >= SAME_CHROMA:
+                continue                 # a neighbour of another colour, standing on the plane beside it
             share = float(np.mean(hulls[j].find_simplex(xy[i]) >= 0))
             if share >= best_share:
                 best, best_share = j, share
