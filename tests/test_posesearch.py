@@ -87,3 +87,28 @@ def test_distance_formula_by_hand():
 def test_shift_volume_integer_equals_roll():
     a = np.random.default_rng(4).random((3, 2, 7, 10, 2))
     np.testing.assert_allclose(shift_volume(a, np.array([1, -3, 12]), axis=3)[1], np.roll(a[1], -3, axis=2))
+
+
+@pytest.mark.parametrize("row_block", [None, 4])
+def test_scale_window_search_matches_the_naive_twin_within_each_window(row_block):
+    # the engine's intermediate passes search each object's previous best scale +-1 only: the best pose must be
+    # the best over that window of the explicit-roll twin's distances (every scale and shift, no transform),
+    # whatever the blocks of objects; an object whose window sees nothing reports inf at the first scale
+    from protomine.mine.posesearch import PoseBank
+    scales = (0.8, 0.9, 1.0, 1.12, 1.25)
+    rng = np.random.default_rng(7)
+    X, W, P, V = _random(rng, n=11, k=3)
+    W[0] = 0.0  # never seen: no overlap at any scale
+    sidx = rng.integers(0, len(scales), len(X))
+    bank = PoseBank(P, V, scales)
+    got = bank.match_spectra(bank.spectra(X, W), scale_index=sidx, row_block=row_block)
+    ref = pose_distances_naive(X, W, P, V, scales=scales, return_all=True).all_D  # (N, K, S, A)
+    lo = np.clip(sidx - 1, 0, len(scales) - 3)
+    inside = (np.arange(len(scales))[None, :] >= lo[:, None]) & (np.arange(len(scales))[None, :] < lo[:, None] + 3)
+    masked = np.where(inside[:, None, :, None], ref, np.inf)
+    flat = masked.reshape(len(X), P.shape[0], -1)
+    best = flat.min(axis=2)
+    np.testing.assert_allclose(got.D[1:], best[1:], rtol=1e-4, atol=1e-5)
+    si = np.argmin(flat, axis=2) // P.shape[3]
+    np.testing.assert_array_equal(got.scale[1:], np.asarray(scales, np.float32)[si[1:]])
+    assert np.all(np.isinf(got.D[0])) and np.all(got.scale[0] == np.float32(scales[0]))

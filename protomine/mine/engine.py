@@ -310,7 +310,8 @@ class _AlignedSums:
         ks, ts = np.divmod(ukt, self.T)
         if untilt is not None and np.any(ts):
             parts = untilt(ks, ts, parts)
-        np.add.at(out, ks, parts)
+        for k, part in zip(ks.tolist(), parts):  # np.add.at's sums (in order), one vector add per group
+            out[k] += part
 
 
 class _SpectraCache:

@@ -448,7 +448,17 @@ def _idft_of_partials(A: int) -> torch.Tensor:
     return torch.cat([m[:, _real_bins(A)], cplx], 1).contiguous()
 
 
-def _cross_spectra(p: torch.Tensor, ob: torch.Tensor) -> torch.Tensor:
+def stack_complex(p: torch.Tensor) -> torch.Tensor:
+    """Real spectra p (A, M, f) (:func:`spectrum_rows`) -> (Fc, 2 M, f): per complex bin, the M real parts' rows
+    then the M imaginary parts' rows, the prototype operand of :func:`_cross_spectra`'s batched products.  A
+    bank lays its factors out this way once (:meth:`PoseBank.match_spectra`, once per scale window and call)
+    instead of once per product."""
+    A, M = p.shape[:2]
+    F, Fc = spectrum_rows(A)
+    return torch.stack([p[1:Fc + 1], p[F:]], 1).view(Fc, 2 * M, -1)
+
+
+def _cross_spectra(p: torch.Tensor, ob: torch.Tensor, ps: torch.Tensor | None = None) -> torch.Tensor:
     """Per-frequency partial sums over features of ob conj(p): p (A, M, f), ob (A, n, f) real spectra
     (:func:`spectrum_rows`) -> (nr + 4 Fc, M n) rows (see :func:`_idft_of_partials`) of prototype-major (M, n)
     blocks; :func:`_idft_of_partials` turns them into distances.  The real-only bins need one product each,
@@ -466,7 +476,7 @@ def _cross_spectra(p: torch.Tensor, ob: torch.Tensor) -> torch.Tensor:
     t = torch.empty((nr + 4 * Fc) * M, n, dtype=torch.float32)
     torch.bmm(p[rb], ob[rb].transpose(1, 2), out=t[:nr * M].view(nr, M, n))
     if Fc:
-        ps = torch.stack([p[1:Fc + 1], p[F:]], 1).view(Fc, 2 * M, -1)  # (Fc, [pr; pi], f), 1/n of the products' bytes
+        ps = stack_complex(p) if ps is None else ps  # (Fc, [pr; pi], f), 1/n of the products' bytes
         for j, part in enumerate((ob[1:Fc + 1], ob[F:])):
             o0 = (nr + 2 * j * Fc) * M
             torch.bmm(ps, part.transpose(1, 2), out=t[o0:o0 + 2 * Fc * M].view(Fc, 2 * M, n))
@@ -474,19 +484,21 @@ def _cross_spectra(p: torch.Tensor, ob: torch.Tensor) -> torch.Tensor:
 
 
 def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A: int,
-                            min_overlap: float) -> torch.Tensor:
+                            min_overlap: float, stacked: tuple[torch.Tensor, ...] | None = None) -> torch.Tensor:
     """Distances for every shift from object spectra o (A, n, (C + 2) R H): (A, M, n) float32 tensor
     (shift, prototype, object).
 
     ``factors`` = (Pn, Pd) of :func:`_prototype_spectra`.  The per-frequency products are batched matrix
     products (:func:`_cross_spectra`); the inverse transform is one matrix product (A, nr + 4 Fc) @ (nr + 4 Fc, M n)
-    on their output as it lies.
+    on their output as it lies.  ``stacked``: :func:`stack_complex` of (Pn, Pd), when the caller keeps them for
+    several products.
     """
     pn, pd = factors
+    sn, sd = (None, None) if stacked is None else stacked
     n, M, RH = o.shape[1], pn.shape[1], pd.shape[2]
     idft = _idft_of_partials(A)
-    num = torch.mm(idft, _cross_spectra(pn, o))
-    den = torch.mm(idft, _cross_spectra(pd, o[:, :, RH:2 * RH]))  # the w block
+    num = torch.mm(idft, _cross_spectra(pn, o, sn))
+    den = torch.mm(idft, _cross_spectra(pd, o[:, :, RH:2 * RH], sd))  # the w block
     unseen = den <= min_overlap
     d = num.clamp_min_(0.0).div_(den.add_(EPS))
     d.masked_fill_(unseen, float("inf"))
@@ -595,13 +607,52 @@ class PoseBank:
         return d.view(self.A, len(self.scales), self.K, x.shape[0]).permute(3, 2, 1, 0).numpy()
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
-                      scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
+                      scale_index: np.ndarray | None = None, window: int = 1, row_block: int | None = None) -> PoseMatch:
         """Best pose from object spectra o (A, n, (C + 2) R H) (see :meth:`spectra`).
 
         With ``scale_index`` (n,) (each object's current best scale, an index into the scales), only
         the 2 window + 1 neighbouring scales are searched for that object (the others count as inf);
-        the product then costs (2 window + 1) / S of the full search.
+        the product then costs (2 window + 1) / S of the full search.  The objects are taken a window of
+        scales at a time (the window's prototype factors laid out for the products once,
+        :func:`stack_complex`) and, with ``row_block``, in blocks of that many objects (bounds the per-shift
+        distances' memory).
         """
+        n, S, K, A = o.shape[1], len(self.scales), self.K, self.A
+        span = 2 * window + 1
+        if return_all:
+            return self._match_all(o, min_overlap, scale_index, window)
+        if scale_index is None or span >= S:
+            windows = [(0, S, None)]
+        else:
+            lo_all = np.clip(np.asarray(scale_index) - window, 0, S - span)
+            windows = [(int(lo), span, np.flatnonzero(lo_all == lo)) for lo in np.unique(lo_all)]
+        D = np.empty((n, K), np.float32)
+        yaw = np.empty((n, K), np.float32)
+        sc = np.empty((n, K), np.float32)
+        step = row_block or max(n, 1)
+        for lo, sp, rows in windows:
+            part = tuple(f[:, lo * K:(lo + sp) * K] for f in self.factors) if sp < S else self.factors
+            stacked = tuple(stack_complex(f) for f in part) if spectrum_rows(A)[1] else None
+            m = n if rows is None else rows.size
+            for r0 in range(0, m, step):
+                r1 = min(m, r0 + step)
+                sel = slice(r0, r1) if rows is None else rows[r0:r1]
+                if rows is None and (r0, r1) == (0, n):
+                    og = o
+                elif rows is None:
+                    og = o[:, r0:r1]
+                else:
+                    og = o.index_select(1, torch.from_numpy(rows[r0:r1]))
+                d = _distances_from_spectra(og, part, A, self.C * min_overlap, stacked).view(A, sp, K, r1 - r0)
+                Db, yb, sb = _best_pose_nska(d.permute(3, 1, 2, 0), self.scales[lo:lo + sp])
+                if sp < S:  # as the search over every scale with inf outside the window: no overlap -> scales[0]
+                    sb = np.where(np.isfinite(Db), sb, np.float32(self.scales[0]))
+                D[sel], yaw[sel], sc[sel] = Db, yb, sb
+        return PoseMatch(D, yaw, sc, None, tilt=np.zeros(D.shape, np.int64))
+
+    def _match_all(self, o: torch.Tensor, min_overlap: float, scale_index: np.ndarray | None,
+                   window: int) -> PoseMatch:
+        """:meth:`match_spectra` with ``all_D`` (n, K, S, A) (inf outside each object's scale window)."""
         n, S, K, A = o.shape[1], len(self.scales), self.K, self.A
         span = 2 * window + 1
         if scale_index is None or span >= S:
@@ -620,8 +671,7 @@ class PoseBank:
                     d[:, lo:lo + span, :, torch.from_numpy(rows)] = dd
         d = d.permute(3, 1, 2, 0)  # (n, S, K, A) view
         D, yaw, sc = _best_pose_nska(d, self.scales)
-        return PoseMatch(D, yaw, sc, d.permute(0, 2, 1, 3).numpy().copy() if return_all else None,
-                         tilt=np.zeros(D.shape, np.int64))
+        return PoseMatch(D, yaw, sc, d.permute(0, 2, 1, 3).numpy().copy(), tilt=np.zeros(D.shape, np.int64))
 
     def match(self, x: np.ndarray, w: np.ndarray, min_overlap: float = 1e-3,
               return_all: bool = False) -> PoseMatch:

@@ -23,7 +23,7 @@ p = M^T (q + b) + c0, into the prototype's grid and sampled there by trilinear i
 wraps; below the first radial bin centre the first bin is used; outside the prototype's cylinder the
 copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per block
 (:func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
-a prototype's solid cells and aspect do not change.
+the hull of a prototype's solid cells and its aspect do not change.
 
 Untilting (inverse map)
 -----------------------
@@ -57,7 +57,7 @@ from .. import rotations as rot
 from scipy.spatial import ConvexHull, QhullError
 
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import PoseBank, PoseMatch, _best_pose_nska, _distances_from_spectra, _prepare
+from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _parabolic_offset, _prepare
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
 OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
@@ -321,24 +321,50 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     mask = torch.from_numpy((mr[:, None] & mh[None, :]).astype(np.float32))[:, None, :]  # (R, 1, H)
     Sr = torch.from_numpy(Sr.astype(np.float32))
     Sh = torch.from_numpy(Sh.astype(np.float32))
-    p = torch.from_numpy(np.ascontiguousarray(Pc, np.float32))
-    v = torch.from_numpy(np.ascontiguousarray(Vc, np.float32))
-    if sigma != 1.0:
-        # (..., R, A, H): radial then height interpolation, as matrix products over the other axes
-        scale = lambda a: (torch.matmul(Sr, a.reshape(-1, R, A * H)).reshape(a.shape) @ Sh.T) * mask  # noqa: E731
-        v, p = scale(v), scale(p)
-    vmu = v[:, None] * p
-    num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (M, C + 2, R, A, H)
+    pa = torch.from_numpy(np.ascontiguousarray(Pc, np.float32))
+    va = torch.from_numpy(np.ascontiguousarray(Vc, np.float32))
     rows = dft.shape[0]
-    return tuple(torch.mm(dft, t.permute(3, 0, 1, 2, 4).reshape(A, -1)).view(rows, M, -1) for t in (num, C * v[:, None]))
+    pn = torch.empty((rows, M, (C + 2) * R * H), dtype=torch.float32)
+    pd = torch.empty((rows, M, R * H), dtype=torch.float32)
+    # a few copies at a time, so the steps' temporaries stay in cache (each column's arithmetic is the same)
+    step = max(1, FACTOR_BLOCK_BYTES // (4 * (C + 2) * R * A * H))
+    for m0 in range(0, M, step):
+        m1 = min(M, m0 + step)
+        p, v = pa[m0:m1], va[m0:m1]
+        if sigma != 1.0:
+            # (..., R, A, H): radial then height interpolation, as matrix products over the other axes
+            scale = lambda a: (torch.matmul(Sr, a.reshape(-1, R, A * H)).reshape(a.shape) @ Sh.T) * mask  # noqa: E731
+            v, p = scale(v), scale(p)
+        vmu = v[:, None] * p
+        num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (m, C + 2, R, A, H)
+        for t, out in ((num, pn), (C * v[:, None], pd)):
+            out[:, m0:m1] = torch.mm(dft, t.permute(3, 0, 1, 2, 4).reshape(A, -1)).view(rows, m1 - m0, -1)
+    return pn, pd
+
+
+def _best_shifts(d: torch.Tensor) -> tuple[np.ndarray, np.ndarray]:
+    """Distances d (A, L) over the shifts of L (copy, object) pairs at one scale -> D (L,), yaw_deg (L,) float32:
+    ``posesearch._best_pose_nska``'s rule (the first shift holding the minimum, the parabola through it and its
+    two circular neighbours) on every column, in one call for a block's products."""
+    A = d.shape[0]
+    D, sh = _first_min(d)
+    dm = d.gather(0, ((sh - 1) % A)[None])[0].numpy()
+    dp = d.gather(0, ((sh + 1) % A)[None])[0].numpy()
+    D = D.numpy()
+    off = _parabolic_offset(dm.astype(np.float64), D.astype(np.float64), dp.astype(np.float64))
+    off = np.where(np.isfinite(D), off, 0.0)
+    yaw = np.mod((sh.numpy() + off) * (360.0 / A), 360.0)
+    return D.astype(np.float32), yaw.astype(np.float32)
 
 
 # --- the bank ----------------------------------------------------------------------------------
 
 GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geometries are kept across passes
-# (solid-cell mask, aspect, grid shape, margins) -> {tilt index: CopyGeometry}; the geometries are functions of
-# these alone (copy_geometries), so a hit is exact
+# (centre and hull vertices of the solid cells (solid_points), aspect, grid shape, margins) -> {tilt index:
+# CopyGeometry}; the geometries are functions of these alone (copy_geometries), so a hit is exact, and a pass whose
+# prototypes changed inside their hulls finds them
 _GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
+FACTOR_BLOCK_BYTES = 1 << 20  # factors of the copies that column_factors builds at once (stays in cache)
 COPY_BLOCK = 64        # copies resampled per grid_sample call (bounds its temporaries)
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
@@ -379,20 +405,23 @@ class TiltBank:
 
     def _geometries(self, pairs: Sequence[tuple[int, int]]) -> None:
         """Compute the missing geometries of (prototype, tilt) ``pairs``, one batch per prototype.  A geometry
-        depends on the prototype's solid cells and aspect only, which stop changing as the passes converge:
-        :data:`_GEOMETRY_CACHE` keeps them across banks (passes), keyed by exactly those."""
+        depends on the hull vertices of the prototype's solid cells and its aspect only, which stop changing as
+        the passes converge (the hull sooner than the cells inside it): :data:`_GEOMETRY_CACHE` keeps them across
+        banks (passes), keyed by exactly those."""
         by_k: dict[int, list[int]] = {}
         for k, t in pairs:
             if (k, t) not in self._geom:
                 by_k.setdefault(k, []).append(t)
         for k, ts in by_k.items():
-            occ = np.packbits((self.P[k, 0] >= SURFACE_MIN) & (self.V[k] >= OBSERVED_MIN)).tobytes()
-            key = (occ, float(self.aspect[k]), self.shape, self.grid.nsides, self.grid.radial_margin, self.grid.height_margin)
+            if k not in self._solid:
+                self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
+            c0, hull = self._solid[k]
+            # the geometries are functions of the solid cells' hull vertices (not of every solid cell) and the aspect
+            key = (c0.tobytes(), hull.tobytes(), float(self.aspect[k]), self.shape, self.grid.nsides,
+                   self.grid.radial_margin, self.grid.height_margin)
             known = _GEOMETRY_CACHE.setdefault(key, {})
             todo = [t for t in ts if t not in known]
             if todo:
-                if k not in self._solid:
-                    self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
                 gs = copy_geometries(self.shape, float(self.aspect[k]), self.grid.dirs[todo], self.grid, self._solid[k])
                 known.update(zip(todo, gs))
             self._geom.update({(k, t): known[t] for t in ts})
@@ -486,12 +515,8 @@ class TiltBank:
                       scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
         """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (A, n, (C + 2) R H)."""
         n, K, T0 = o.shape[1], self.K, self.T0
-        parts = []
-        for r0 in range(0, n, COARSE_ROWS):  # blocks of objects bound the (n, K T0, S, A) distances
-            r1 = min(n, r0 + COARSE_ROWS)
-            parts.append(self.coarse.match_spectra(o[:, r0:r1] if (r0, r1) != (0, n) else o, min_overlap, False,
-                                                   None if scale_index is None else scale_index[r0:r1], window))
-        m = PoseMatch(*(np.concatenate([getattr(p, f) for p in parts]) for f in ("D", "yaw_deg", "scale")))
+        # blocks of objects bound the (n, K T0, S, A) distances
+        m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=COARSE_ROWS)
         D = m.D.reshape(n, K, T0)
         bt = np.argmin(D, axis=2)
         pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
@@ -558,6 +583,7 @@ class TiltBank:
                 ks = np.concatenate([np.full(len(u), k) for _, k, u, _ in blk])
                 ts = np.concatenate([u for _, _, u, _ in blk])
                 factors = column_factors(*self.copies(ks, ts), self.scales[si], self.dft)
+                jobs, dists = [], []
                 c0 = 0
                 for _, k, u, es in blk:
                     cb = c0  # the group's copies are rows cb .. cb + |u| of the block's factors
@@ -575,25 +601,36 @@ class TiltBank:
                         else:
                             pos = torch.from_numpy(cb + np.searchsorted(u, cols))
                             part = tuple(f.index_select(1, pos) for f in factors)
-                        rows, cols_e = ii[es_p], jj[es_p]
+                        rows = ii[es_p]
                         urows, inv = np.unique(rows, return_inverse=True)
                         og = o.index_select(1, torch.from_numpy(urows))  # the group's objects
                         d = _distances_from_spectra(og, part, self.A, minov)  # (A, |cols|, nu)
-                        Dg, yg, _ = _best_pose_nska(d.view(self.A, 1, len(cols), len(urows)).permute(3, 1, 2, 0),
-                                                    (self.scales[si],))
-                        De = Dg[inv]
+                        mask = None
                         if cols is u and len(ps_) > 1:
-                            allowed = np.zeros((len(es_p), len(u)), bool)
+                            mask = np.zeros((len(es_p), len(u)), bool)
                             for t in ps_:  # each pair searches its own candidates only
-                                allowed[np.ix_(tp == t, np.searchsorted(u, cand[int(t)]))] = True
-                            De = np.where(allowed, De, np.inf)
-                        j = np.argmin(De, axis=1)
-                        rr = np.arange(len(es_p))
-                        better = De[rr, j] < pd[rows, cols_e]
-                        ri, ci = rows[better], cols_e[better]
-                        pd[ri, ci] = De[rr, j][better]
-                        pyaw[ri, ci] = yg[inv, j][better]
-                        pt[ri, ci] = cols[j[better]]
+                                mask[np.ix_(tp == t, np.searchsorted(u, cand[int(t)]))] = True
+                        jobs.append((es_p, cols, inv, len(urows), mask))
+                        dists.append(d.view(self.A, -1))
+                # the best shift of every (copy, object) of the block at once (one scale): the rule of
+                # posesearch._best_pose_nska, column by column
+                Db, yb = _best_shifts(torch.cat(dists, 1) if len(dists) > 1 else dists[0])
+                c0 = 0
+                for es_p, cols, inv, nu, mask in jobs:
+                    c1 = c0 + len(cols) * nu
+                    Dg, yg = Db[c0:c1].reshape(len(cols), nu).T, yb[c0:c1].reshape(len(cols), nu).T
+                    c0 = c1
+                    rows, cols_e = ii[es_p], jj[es_p]
+                    De = Dg[inv]
+                    if mask is not None:
+                        De = np.where(mask, De, np.inf)
+                    j = np.argmin(De, axis=1)
+                    rr = np.arange(len(es_p))
+                    better = De[rr, j] < pd[rows, cols_e]
+                    ri, ci = rows[better], cols_e[better]
+                    pd[ri, ci] = De[rr, j][better]
+                    pyaw[ri, ci] = yg[inv, j][better]
+                    pt[ri, ci] = cols[j[better]]
         self._drop_refined()
         for j in range(pk.shape[1]):
             i = np.flatnonzero(pd[:, j] < out.D[np.arange(n), pk[:, j]])
