@@ -539,11 +539,20 @@ def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndar
         D, sh = row.min(dim=2)
     dm = row.gather(2, ((sh - 1) % A)[..., None])[..., 0]
     dp = row.gather(2, ((sh + 1) % A)[..., None])[..., 0]
+    D, yaw = _refined_yaw(D, sh, dm, dp, A)
+    return D, yaw, np.asarray(scales, np.float32)[si.numpy()]
+
+
+def _refined_yaw(D: torch.Tensor, sh: torch.Tensor, dm: torch.Tensor, dp: torch.Tensor, A: int
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """The least distances D, their first shifts sh and the distances dm, dp at the two circular neighbours
+    (any one shape) -> D, yaw_deg float32: the shift refined by the parabola through the three (0 where D is
+    not finite), in degrees of the A azimuth bins."""
     D, dm, dp = D.numpy(), dm.numpy(), dp.numpy()
     off = _parabolic_offset(dm.astype(np.float64), D.astype(np.float64), dp.astype(np.float64))
     off = np.where(np.isfinite(D), off, 0.0)
     yaw = np.mod((sh.numpy() + off) * (360.0 / A), 360.0)
-    return D.astype(np.float32), yaw.astype(np.float32), np.asarray(scales, np.float32)[si.numpy()]
+    return D.astype(np.float32), yaw.astype(np.float32)
 
 
 def _prepare(X, W, P, V, scales) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, tuple[float, ...]]:

@@ -69,7 +69,7 @@ def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarra
     of ``viewdistance.tolerant_residuals`` instead of the squared ones; ``rings``: radial bins left out or down-weighted (None: none;
     ``viewdistance.ring_weights``)."""
     from .engine import align_to_prototype
-    from .viewdistance import residuals, ring_weights
+    from .viewdistance import residuals, ring_weights, weighted_mean
     X, W = np.asarray(X, np.float32), np.asarray(W, np.float32)
     n, K = X.shape[0], P.shape[0]
     out = np.full((n, K), np.inf)
@@ -82,7 +82,5 @@ def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarra
             continue
         xa, wa = align_to_prototype(X[ok], W[ok], yaw_deg[ok, k], scale[ok, k])
         omega = ring_weights(wa.astype(np.float64) * V[k][None] * lam[k][None, :, None, :], rings)
-        e = residuals(xa, P[k][None], tolerant)
-        num, den = (omega * e).sum(axis=(1, 2, 3)), omega.sum(axis=(1, 2, 3))
-        out[ok, k] = np.where(den > min_overlap, num / np.maximum(den, 1e-12), np.inf)
+        out[ok, k] = weighted_mean(residuals(xa, P[k][None], tolerant), omega, min_overlap)
     return out

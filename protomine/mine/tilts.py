@@ -57,7 +57,7 @@ from .. import rotations as rot
 from scipy.spatial import ConvexHull, QhullError
 
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _parabolic_offset, _prepare
+from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
 OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
@@ -133,13 +133,14 @@ def _cell_points(R: int, A: int, H: int, rho_max: float, z_max: float) -> np.nda
     return np.stack([rr * np.cos(pp), rr * np.sin(pp), zz], -1).reshape(-1, 3)
 
 
-def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray) -> torch.Tensor:
+def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray, *, with_inside: bool = False):
     """Trilinear samples (m, c, N) of cylindrical volumes ``vol`` (m, c, R, A, H) (array or tensor; its dtype
     is kept) at points ``pts`` (m, N, 3) of each volume's frame, whose grid extents are ``rho_max``,
     ``z_max`` (m,).  Azimuth wraps; radial and height positions below the first bin centre (or above the
     last) take that bin's value; points outside the grid's cylinder get 0 (unknown).  One
     ``torch.nn.functional.grid_sample`` over all volumes: the azimuth axis is padded by one bin on each side
-    from the other end, so the wrap is ordinary interpolation."""
+    from the other end, so the wrap is ordinary interpolation.  ``with_inside``: also the (m, N) bool mask of
+    the points inside the cylinder (the others got 0)."""
     vol = torch.as_tensor(vol)
     m, c, R, A, H = vol.shape
     # coordinates in numpy, in the volume's precision (cheaper than small threaded tensor operations)
@@ -159,7 +160,8 @@ def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray)
     padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3)
     out = torch.nn.functional.grid_sample(padded, grid.view(m, -1, 1, 1, 3), mode="bilinear", padding_mode="border",
                                           align_corners=True)
-    return out[:, :, :, 0, 0] * torch.from_numpy(inside).to(vol.dtype)[:, None]
+    out = out[:, :, :, 0, 0] * torch.from_numpy(inside).to(vol.dtype)[:, None]
+    return (out, inside) if with_inside else out
 
 
 @dataclass
@@ -262,21 +264,17 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
     own copies on what both have seen, ``symmetry.tilt_symmetries``)."""
     m, C = P.shape[:2]
     shape = P.shape[2:]
-    R, _, H = shape
-    pts = forward_points(gs, shape)
     stack = torch.from_numpy(np.concatenate([V[:, None], V[:, None] * P], axis=1).astype(np.float32))
-    out = sample_volumes(stack, pts, np.ones(m), aspect).numpy()  # (m, 1 + C, R A H)
+    out, inside = sample_volumes(stack, forward_points(gs, shape), np.ones(m), aspect, with_inside=True)
+    out = out.numpy()  # (m, 1 + C, R A H)
     v = out[:, 0]
     pc = np.where(v[:, None] > 1e-6, out[:, 1:] / np.maximum(v[:, None], 1e-6), 0.0)
     if not empty_outside:
         return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
-    # the cells sample_volumes leaves out of the prototype's cylinder (the same test)
-    fi = np.hypot(pts[..., 0], pts[..., 1]) * R - 0.5
-    fk = pts[..., 2] / np.asarray(aspect, np.float64).reshape(m, 1) * H - 0.5
-    outside = (fi > R - 0.5) | (fk < -0.5) | (fk > H - 0.5)
+    # the cells sample_volumes left out of the prototype's cylinder take its empty margin
     fx, fw = empty_margin(P, V)
-    pc = np.where(outside[:, None], fx[:, :, None], pc)
-    v = np.where(outside, fw[:, None], v)
+    pc = np.where(inside[:, None], pc, fx[:, :, None])
+    v = np.where(inside, v, fw[:, None])
     return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
 
 
@@ -348,13 +346,9 @@ def _best_shifts(d: torch.Tensor) -> tuple[np.ndarray, np.ndarray]:
     two circular neighbours) on every column, in one call for a block's products."""
     A = d.shape[0]
     D, sh = _first_min(d)
-    dm = d.gather(0, ((sh - 1) % A)[None])[0].numpy()
-    dp = d.gather(0, ((sh + 1) % A)[None])[0].numpy()
-    D = D.numpy()
-    off = _parabolic_offset(dm.astype(np.float64), D.astype(np.float64), dp.astype(np.float64))
-    off = np.where(np.isfinite(D), off, 0.0)
-    yaw = np.mod((sh.numpy() + off) * (360.0 / A), 360.0)
-    return D.astype(np.float32), yaw.astype(np.float32)
+    dm = d.gather(0, ((sh - 1) % A)[None])[0]
+    dp = d.gather(0, ((sh + 1) % A)[None])[0]
+    return _refined_yaw(D, sh, dm, dp, A)
 
 
 # --- the bank ----------------------------------------------------------------------------------
