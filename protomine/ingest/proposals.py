@@ -45,6 +45,7 @@ LOW_FLOOR_SIGMA = 2.5       # ... or this many plane residuals (RMS) on noisy se
 SMOOTH_WINDOW = 5           # pixels: median window of the smoothed low band (``smoothed_band``)
 LOW_GROW_M = 0.10           # an object grows into its low band at most this far (metres) from its grouped voxels
                             # (a base disc or flange reaching out beyond the body standing over it)
+COLOUR_CUT = True           # mask-free: also cut adjacent voxels whose colours differ (convexity.colour_steps)
 VIEW_CHECK = True           # mask-free: also cut where the frames' own depth edges and creases agree across views
 GROW_CHROMA = 0.08          # chromaticity distance within which an object grows into its low band (measured on
                             # the demo: 98% of an object's pixels lie within 0.03-0.04 of its median)
@@ -344,7 +345,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
         votes = _frame_votes(cap, frames, above_sel, pts, eps / 3.0, c["concave_deg"]) if VIEW_CHECK else None
-        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes)
+        parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
+                                colours=colours if COLOUR_CUT else None)
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0)
