@@ -196,3 +196,52 @@ def test_a_mallet_leaning_on_a_post_of_another_colour_stays_an_object():
     lab = join_parts(pts, parts, pts[:, :2], pts[:, 2], colours=rgb, **kw)
     assert lab[parts == 0][0] == lab[parts == 1][0] != lab[parts == 2][0]
     assert len(np.unique(join_parts(pts, parts, pts[:, :2], pts[:, 2], **kw))) == 1
+
+
+def _two_patches_and_a_bridge():
+    """Two flat 4 x 4 cm patches (z = 0, normals up, 4 mm grid) 8 mm apart along x, so no pair of them is within
+    the 6 mm adjacency, joined by one voxel between them at x = 0 (4 mm from either patch): a voxel at the
+    contact of two touching objects, mixing readings of both.  Geometry alone (flat, no crease) keeps them one
+    part."""
+    g = np.stack(np.meshgrid(np.arange(0.0, 0.04 + 1e-9, 0.004), np.arange(0.0, 0.04 + 1e-9, 0.004), indexing="ij"),
+                 -1).reshape(-1, 2)
+    left = np.c_[g[:, 0] - 0.044, g[:, 1], np.zeros(len(g))]
+    right = np.c_[g[:, 0] + 0.004, g[:, 1], np.zeros(len(g))]
+    pts = np.concatenate([left, right, [[0.0, 0.02, 0.0]]])
+    side = np.r_[np.zeros(len(g), int), np.ones(len(g), int), 2]
+    normals = np.tile([0.0, 0.0, 1.0], (len(pts), 1))
+    return pts, side, normals
+
+
+def test_a_colour_step_cuts_the_bridge_between_two_objects_of_other_colours():
+    """The definition of chromaticity, (r, g, b) / (r + g + b): a red patch (200, 40, 20) and a blue one
+    (30, 60, 190) differ by 0.6; the mixed bridge voxel (their mean, 115, 50, 105) lies 0.3 from either.
+    With colours the bridge is cut (two parts, the bridge voxel taken by one side); without, one part.
+    Expected answer by construction."""
+    from protomine.ingest.convexity import colour_steps
+    pts, side, normals = _two_patches_and_a_bridge()
+    lab = np.zeros(len(pts), int)
+    rgb = np.array([[200, 40, 20], [30, 60, 190], [115, 50, 105]], float)[side]
+    one, _ = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0)
+    assert len(np.unique(one)) == 1
+    two, pairs = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0, colours=rgb)
+    assert len(np.unique(two)) == 2
+    assert len(np.unique(two[side == 0])) == 1 and len(np.unique(two[side == 1])) == 1
+    assert two[side == 0][0] != two[side == 1][0]
+    # only the bridge's connections are colour steps: its neighbours within 6 mm, 3 on either side (4 mm and
+    # 4 sqrt(2) = 5.7 mm away)
+    step = colour_steps(rgb, pairs)
+    assert step.sum() == 6 and (pairs[step] == len(pts) - 1).any(axis=1).all()
+
+
+def test_shading_and_dark_readings_do_not_cut_one_colour():
+    """One object's colour under shading: RGB scaled by 0.25-1.0 across the patches (chromaticity unchanged
+    by a common factor, by definition), the bridge voxel the same colour, and a few readings too dark to have
+    a chromaticity (sum under DARK_RGB, any hue): one part."""
+    pts, side, normals = _two_patches_and_a_bridge()
+    lab = np.zeros(len(pts), int)
+    shade = 0.25 + 0.75 * (pts[:, 0] - pts[:, 0].min()) / np.ptp(pts[:, 0])
+    rgb = shade[:, None] * np.array([200.0, 40.0, 20.0])
+    rgb[::17] = [5.0, 30.0, 10.0]                       # dark: sum 45 < DARK_RGB, a greenish hue
+    parts, _ = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0, colours=rgb)
+    assert len(np.unique(parts)) == 1
