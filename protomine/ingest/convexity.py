@@ -18,7 +18,9 @@ Euclidean groups (DBSCAN, -1 = noise).  Nothing here assumes a world axis is up:
    surfaces); a pair of adjacent voxels is cut as well when the frames that see both mostly put them in
    different segments, or when one of them lies on such a boundary in every frame (where objects touch).
    In the fused cloud alone a few noisy convex connections at a contact join two objects; the frames agree
-   on the boundary there.
+   on the boundary there.  With colours, a pair whose chromaticities differ by more than one object's own
+   readings ever do is cut too (``colour_steps``): a voxel at a contact that mixes two objects' readings, seen
+   by one frame only, is a bridge neither the creases nor the frames cut.
 3. Parts back into objects: an object can stand on the support plane by itself (its centre of mass lies over
    its support polygon).  A part that cannot (a handle, a knob, pegs on a post, a lid, a tripod's slanted
    leg, a sliver cut from a wall) is a piece of the object it hangs on: it joins the neighbour part it shares
