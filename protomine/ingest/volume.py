@@ -47,6 +47,7 @@ class Grid:
     surface_points_per_cell: float = 3.0
     carve_margin_cells: float = 0.75
     carve_to_plane: bool = False
+    unread_min_surface: float = 0.0
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -192,7 +193,10 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         hit = sp[0] > 0
         typical = np.percentile(sp[0][hit], 75) if hit.any() else 1.0
         surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
-        seen |= hit
+        # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
+        # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
+        # points alone says nothing about whether it is empty
+        seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
         free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
         obs += seen
         surf_sum += surf * seen
