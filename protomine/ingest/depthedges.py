@@ -16,9 +16,15 @@ Two tests, either flags a reading:
   them.  In the wider square a reading is flagged when it has a jump beyond the tolerance on both sides and
   fewer than ``WIDE_SUPPORT_BOTH`` neighbours within ``SUPPORT_REL`` x the tolerance of its own depth, or a
   jump on one side only, fewer than ``WIDE_SUPPORT_ONE`` such neighbours and at least ``WIDE_MISSING``
-  neighbours without a reading (the band shows itself by its dropouts).  A surface, even one seen at a
-  grazing angle, continues through its pixel: some of its neighbours lie at about its depth (support), which
-  a mixed reading, drawn anywhere between the two surfaces, seldom has.
+  neighbours without a reading (the band shows itself by its dropouts); either way only when none of its 8
+  adjacent neighbours supports it.  A surface, even one seen at a grazing angle, continues through its pixel
+  along the direction in which its depth does not change, so some of its neighbours lie at about its depth
+  (support), which a mixed reading, drawn anywhere between the two surfaces, seldom has.  Measured on demo
+  frames rendered with both depth models (the same frames, noise-free depth as truth): the close test alone
+  catches 27% of the active-stereo readings off by more than the tolerance, both tests 64%; true readings
+  flagged, gaussian depth: 0.28 and 0.32 per 1000.  Without the adjacent-support rule the wide test caught 75%
+  but flagged the topmost readings of a sphere seen from 5 degrees above the table (its rim curves away from
+  the pixel in every direction), 0.5 mm of the sphere's height.
 """
 from __future__ import annotations
 
@@ -32,6 +38,7 @@ SUPPORT_REL = 0.5           # a neighbour supports a reading within this x the t
 WIDE_SUPPORT_BOTH = 4       # wide test, jumps on both sides: flagged with fewer supporting neighbours than this
 WIDE_SUPPORT_ONE = 3        # ... a jump on one side only: fewer supporting neighbours than this
 WIDE_MISSING = 6            # ... and at least this many neighbours without a reading
+WIDE_ADJACENT_SUPPORT = 1   # either way, fewer than this many of its 8 adjacent neighbours support it
 
 
 def flying_pixels(depth: np.ndarray) -> np.ndarray:
@@ -64,7 +71,7 @@ def _flags(p: np.ndarray, half: int, shape: tuple[int, int]) -> np.ndarray:
     w = WIDE_WINDOW // 2
     hi3 = np.zeros(shape); lo3 = np.full(shape, np.inf)
     near = np.zeros(shape, bool); far = np.zeros(shape, bool)
-    support = np.zeros(shape, np.int32); missing = np.zeros(shape, np.int32)
+    support = np.zeros(shape, np.int32); missing = np.zeros(shape, np.int32); support8 = np.zeros(shape, np.int32)
     for i in range(-half, half + 1):
         for j in range(-half, half + 1):
             q = p[half + i:half + i + ph, half + j:half + j + pw]
@@ -75,13 +82,16 @@ def _flags(p: np.ndarray, half: int, shape: tuple[int, int]) -> np.ndarray:
             if WIDE_WINDOW and abs(i) <= w and abs(j) <= w and (i or j):
                 near |= ok & (d - q > tol)
                 far |= ok & (q - d > tol)
-                support += ok & (np.abs(q - d) <= SUPPORT_REL * tol)
+                sup = ok & (np.abs(q - d) <= SUPPORT_REL * tol)
+                support += sup
+                if abs(i) <= 1 and abs(j) <= 1:
+                    support8 += sup
                 missing += ~ok
     flags = _between(d, lo3, hi3)
     if WIDE_WINDOW:
         both = near & far & (support < WIDE_SUPPORT_BOTH)
         one = (near ^ far) & (support < WIDE_SUPPORT_ONE) & (missing >= WIDE_MISSING)
-        flags |= valid & (both | one)
+        flags |= valid & (both | one) & (support8 < WIDE_ADJACENT_SUPPORT)
     return flags
 
 
