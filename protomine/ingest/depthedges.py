@@ -60,38 +60,54 @@ def _between(d: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
     return (d > 0) & (d - lo > tol) & (hi - d > tol)
 
 
+def _extremes(p: np.ndarray, half: int, shape: tuple[int, int], size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Greatest and least reading (0 = none is skipped) in the size x size square about each pixel of the
+    interior (shape) of the padded array p (border ``half``): running maxima / minima of shifted slices,
+    along columns then rows (exact: no rounding in max/min)."""
+    ph, pw = shape
+    k = size // 2
+    valid = p > 0
+    p_hi, p_lo = np.where(valid, p, 0.0), np.where(valid, p, np.inf)
+    rows = slice(half - k, half + k + ph)
+    row_hi, row_lo = p_hi[rows, half - k:half - k + pw].copy(), p_lo[rows, half - k:half - k + pw].copy()
+    for j in range(1, size):
+        np.maximum(row_hi, p_hi[rows, half - k + j:half - k + j + pw], out=row_hi)
+        np.minimum(row_lo, p_lo[rows, half - k + j:half - k + j + pw], out=row_lo)
+    hi, lo = row_hi[:ph].copy(), row_lo[:ph].copy()
+    for i in range(1, size):
+        np.maximum(hi, row_hi[i:i + ph], out=hi)
+        np.minimum(lo, row_lo[i:i + ph], out=lo)
+    return hi, lo
+
+
 def _flags(p: np.ndarray, half: int, shape: tuple[int, int]) -> np.ndarray:
-    """Flags (shape) of the readings p[half:-half, half:-half] of a padded depth array p: both tests, from
-    the window's shifted slices."""
+    """Flags (shape) of the readings p[half:-half, half:-half] of a padded depth array p: both tests.  The wide
+    test's counts are taken at the readings with a jump in the wide square only (a few percent of them)."""
     ph, pw = shape
     d = p[half:half + ph, half:half + pw]
-    valid = d > 0
     tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * d)
-    c = FLYING_WINDOW // 2
+    flags = _between(d, *_extremes(p, half, shape, FLYING_WINDOW)[::-1])
+    if not WIDE_WINDOW:
+        return flags
+    hi, lo = _extremes(p, half, shape, WIDE_WINDOW)
+    cand = (d > 0) & ~flags & ((d - lo > tol) | (hi - d > tol))
+    r, u = np.nonzero(cand)
+    if len(r) == 0:
+        return flags
     w = WIDE_WINDOW // 2
-    hi3 = np.zeros(shape); lo3 = np.full(shape, np.inf)
-    near = np.zeros(shape, bool); far = np.zeros(shape, bool)
-    support = np.zeros(shape, np.int32); missing = np.zeros(shape, np.int32); support8 = np.zeros(shape, np.int32)
-    for i in range(-half, half + 1):
-        for j in range(-half, half + 1):
-            q = p[half + i:half + i + ph, half + j:half + j + pw]
-            ok = q > 0
-            if abs(i) <= c and abs(j) <= c:
-                np.maximum(hi3, np.where(ok, q, 0.0), out=hi3)
-                np.minimum(lo3, np.where(ok, q, np.inf), out=lo3)
-            if WIDE_WINDOW and abs(i) <= w and abs(j) <= w and (i or j):
-                near |= ok & (d - q > tol)
-                far |= ok & (q - d > tol)
-                sup = ok & (np.abs(q - d) <= SUPPORT_REL * tol)
-                support += sup
-                if abs(i) <= 1 and abs(j) <= 1:
-                    support8 += sup
-                missing += ~ok
-    flags = _between(d, lo3, hi3)
-    if WIDE_WINDOW:
-        both = near & far & (support < WIDE_SUPPORT_BOTH)
-        one = (near ^ far) & (support < WIDE_SUPPORT_ONE) & (missing >= WIDE_MISSING)
-        flags |= valid & (both | one) & (support8 < WIDE_ADJACENT_SUPPORT)
+    off = np.array([(i, j) for i in range(-w, w + 1) for j in range(-w, w + 1) if i or j])
+    q = p[r[:, None] + half + off[:, 0], u[:, None] + half + off[:, 1]]          # (n, window - 1) neighbours
+    dc, tc = d[r, u][:, None], tol[r, u][:, None]
+    ok = q > 0
+    near = (ok & (dc - q > tc)).any(1)
+    far = (ok & (q - dc > tc)).any(1)
+    sup = ok & (np.abs(q - dc) <= SUPPORT_REL * tc)
+    support = sup.sum(1)
+    adjacent = sup[:, (np.abs(off) <= 1).all(1)].sum(1)
+    missing = (~ok).sum(1)
+    both = near & far & (support < WIDE_SUPPORT_BOTH)
+    one = (near ^ far) & (support < WIDE_SUPPORT_ONE) & (missing >= WIDE_MISSING)
+    flags[r, u] = (both | one) & (adjacent < WIDE_ADJACENT_SUPPORT)
     return flags
 
 
