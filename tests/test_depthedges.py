@@ -99,3 +99,47 @@ def test_the_top_of_a_curved_rim_is_not_flying(monkeypatch):
         unguarded = DE.flying_pixels(d)
     assert (unguarded & ~close & sphere).any()      # the 5x5 counts alone would flag the top of the rim
     np.testing.assert_array_equal(DE.flying_pixels(d)[sphere], close[sphere])
+
+
+def _reference_flags(depth: np.ndarray) -> np.ndarray:
+    """Both tests written from the module's definition, pixel by pixel, the image mirrored beyond its border as
+    scipy.ndimage's mode 'reflect' does (numpy.pad 'symmetric')."""
+    h, w = depth.shape
+    p = np.pad(depth, 2, mode="symmetric")
+    out = np.zeros(depth.shape, bool)
+    for r in range(h):
+        for u in range(w):
+            d = depth[r, u]
+            if d <= 0:
+                continue
+            tol = max(0.015, 0.03 * d)
+            close = [p[r + 2 + i, u + 2 + j] for i in (-1, 0, 1) for j in (-1, 0, 1)]
+            close = [q for q in close if q > 0]
+            if d - min(close) > tol and max(close) - d > tol:
+                out[r, u] = True
+                continue
+            nb = [(i, j, p[r + 2 + i, u + 2 + j]) for i in range(-2, 3) for j in range(-2, 3) if i or j]
+            near = any(q > 0 and d - q > tol for _, _, q in nb)
+            far = any(q > 0 and q - d > tol for _, _, q in nb)
+            support = sum(q > 0 and abs(q - d) <= 0.5 * tol for _, _, q in nb)
+            adjacent = sum(q > 0 and abs(q - d) <= 0.5 * tol for i, j, q in nb if abs(i) <= 1 and abs(j) <= 1)
+            missing = sum(q <= 0 for _, _, q in nb)
+            if adjacent == 0 and ((near and far and support < 4) or (near != far and support < 3 and missing >= 6)):
+                out[r, u] = True
+    return out
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_flags_equal_their_definition(seed, monkeypatch):
+    rng = np.random.default_rng(seed)
+    d = 0.6 + 0.1 * rng.random((30, 40))
+    d[8:22, 10:25] = 0.45                                         # a box in front
+    d[8:22, 7:10] = 0.45 + 0.15 * rng.random((14, 3))             # a mixed band beside it
+    d[rng.random(d.shape) < 0.25] = 0.0
+    assert (DE.WIDE_WINDOW, DE.SUPPORT_REL, DE.WIDE_SUPPORT_BOTH, DE.WIDE_SUPPORT_ONE, DE.WIDE_MISSING,
+            DE.WIDE_ADJACENT_SUPPORT) == (5, 0.5, 4, 3, 6, 1)      # the values written into the reference
+    ref = _reference_flags(d)
+    assert ref.sum() > 10
+    np.testing.assert_array_equal(DE.flying_pixels(d), ref)
+    monkeypatch.setattr(DE, "WIDE_WINDOW", 0)
+    assert (ref & ~DE.flying_pixels(d)).any()                    # the wide test flags readings of its own
