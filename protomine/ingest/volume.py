@@ -19,7 +19,10 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
   observed  number of frames that observed the cell (in front of or at the measured surface)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
-"unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A
+"unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A cell
+with the object's points in it is observed, except, with ``unread_min_surface`` > 0, one whose own pixel has no
+reading and whose surface evidence stays below that: the trilinear spill of a neighbour's points says nothing
+about whether it is empty (beside a shadowed silhouette such cells read "seen, not free").  A
 flying pixel (a reading between a near and a far surface at a depth edge, ``depthedges``) counts as no
 reading: it is neither surface (proposals never give it to an object) nor free space in front of it.  Single-view lifting is the same code with one frame; its
 volume is partial (observed = 0 where unseen).
