@@ -25,7 +25,7 @@ def test_steady_depth_at_pixels_equals_the_whole_image_filter(seed):
     depth = 0.6 + 0.4 * rng.random((h, w))                     # rough surfaces: many flying readings
     depth[rng.random((h, w)) < 0.2] = 0.0
     depth[:, w // 2:] += 0.3                                    # a depth edge
-    ref = steady_depth(depth)                                   # scipy.ndimage maximum/minimum_filter, mode reflect
+    ref = steady_depth(depth)                                   # the whole image, mirrored beyond it (tests/test_depthedges.py checks it against its definition)
     assert (ref != depth).any()                                 # the test sees flying pixels at all
     corners = (np.array([0, h - 1, 0, h - 1]), np.array([0, w - 1, w - 1, 0]))
     for r, u in [corners, (rng.integers(0, h, 400), rng.integers(0, w, 400)),

@@ -153,3 +153,38 @@ def test_lifting_leaves_flying_pixels_unobserved_not_free(box_frame):
     assert on_column.sum() >= 4
     np.testing.assert_array_equal(vol_mixed[2].reshape(-1)[on_column], vol_missing[2].reshape(-1)[on_column])
     assert (vol_mixed[1].reshape(-1)[on_column] == 0).all()          # no free space in front of it
+
+
+def test_cells_without_a_reading_are_observed_only_through_real_surface(box_frame):
+    """Beside the box a band of pixels has no reading (a projector shadow).  The cells there that only the
+    trilinear spill of the box's own points reaches are unobserved with ``unread_min_surface`` set (nothing
+    says whether they are empty), observed but not free without it; the box's surface cells are the same either
+    way (hand-worked geometry: camera straight above the box)."""
+    from dataclasses import replace
+    from protomine.geometry import world_to_pixel
+    from protomine.ingest.volume import Grid, ObjectFrame, View, cell_centres, lift
+    fr, K = box_frame
+    T = look_at(np.array([0.0, 0.0, 0.6]), np.zeros(3), np.array([0.0, 1.0, 0.0]))
+    depth = fr.depth.astype(np.float64)
+    cols = np.flatnonzero((fr.mask > 0).any(axis=0))
+    rows = np.flatnonzero(fr.mask[:, cols[0]] > 0)
+    depth[rows[0]:rows[-1] + 1, cols[0] - 8:cols[0]] = 0.0          # the shadow band left of the box
+    grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=8)
+    frame = ObjectFrame(origin=np.zeros(3), up=np.array([0.0, 0.0, 1.0]), radius=0.09, height=0.2)
+    rgb = (fr.rgb * 255).astype(np.uint8)
+    pix = np.flatnonzero(fr.mask.reshape(-1) > 0)
+    plain = lift([View(depth, rgb, K.K, T, pix)], frame, grid).reshape(6, -1)
+    strict = lift([View(depth, rgb, K.K, T, pix)], frame, replace(grid, unread_min_surface=0.5)).reshape(6, -1)
+    uv, _ = world_to_pixel(cell_centres(grid, frame).reshape(-1, 3), T, K.K)
+    u, v = np.rint(uv[:, 0]).astype(int), np.rint(uv[:, 1]).astype(int)
+    inside = (u >= 0) & (u < depth.shape[1]) & (v >= 0) & (v < depth.shape[0])
+    unread = np.zeros(len(u), bool)
+    unread[inside] = depth[v[inside], u[inside]] == 0
+    spill = unread & (plain[2] > 0) & (plain[0] < 0.5)
+    assert spill.sum() >= 4                                          # the case exists without the setting
+    assert (plain[1][spill] == 0).all()                              # ... observed there, never free
+    assert (strict[2][spill] == 0).all()                             # with it: unobserved
+    solid = plain[0] >= 0.5
+    assert solid.sum() > 20
+    np.testing.assert_array_equal(strict[:, solid], plain[:, solid])
+    assert (strict[2][~unread] == plain[2][~unread]).all()           # cells with a reading: as before

@@ -19,7 +19,10 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
   observed  number of frames that observed the cell (in front of or at the measured surface)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
-"unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A
+"unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A cell
+with the object's points in it is observed, except, with ``unread_min_surface`` > 0, one whose own pixel has no
+reading and whose surface evidence stays below that: the trilinear spill of a neighbour's points says nothing
+about whether it is empty (beside a shadowed silhouette such cells read "seen, not free").  A
 flying pixel (a reading between a near and a far surface at a depth edge, ``depthedges``) counts as no
 reading: it is neither surface (proposals never give it to an object) nor free space in front of it.  Single-view lifting is the same code with one frame; its
 volume is partial (observed = 0 where unseen).
@@ -47,6 +50,7 @@ class Grid:
     surface_points_per_cell: float = 3.0
     carve_margin_cells: float = 0.75
     carve_to_plane: bool = False
+    unread_min_surface: float = 0.0
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -192,7 +196,10 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         hit = sp[0] > 0
         typical = np.percentile(sp[0][hit], 75) if hit.any() else 1.0
         surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
-        seen |= hit
+        # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
+        # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
+        # points alone says nothing about whether it is empty
+        seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
         free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
         obs += seen
         surf_sum += surf * seen
