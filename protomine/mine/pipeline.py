@@ -210,13 +210,18 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
         xo, wo = feats(store.read_volume_at(chunk))
         rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
         xs, ws = feats(store.read_single_views(rows_all))
+        # every view of the chunk searched against its own prototype, one call per prototype
+        view_k = labels[store.single_object[rows_all]]
+        ups_all, upr_all = np.zeros((len(rows_all), 3)), np.ones(len(rows_all), bool)
+        for k in np.unique(view_k):
+            sk = np.flatnonzero(view_k == k)
+            ups_all[sk], upr_all[sk] = search(xs[sk], ws[sk], int(k))
         for j, obj in enumerate(chunk):
             k = int(labels[obj])
             sel = np.flatnonzero(store.single_object[rows_all] == obj)
             if not len(sel):
                 continue
-            ups, upr = search(xs[sel], ws[sel], k)
-            ups = np.where(np.asarray(upr)[:, None], [0.0, 0.0, 1.0], ups)
+            ups = np.where(upr_all[sel][:, None], [0.0, 0.0, 1.0], ups_all[sel])
             dirs, inv = np.unique(np.round(ups, 9), axis=0, return_inverse=True)
             for g, u in enumerate(dirs):
                 upright = bool(bank is None or u[2] >= np.cos(np.deg2rad(IDENTITY_DEG)))
@@ -292,11 +297,20 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
         return out, np.zeros(0, int), np.ones((K, R, H))
     objs = _calibration_objects(store, labels, K, max_objects_per_cluster)
     loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, objs, up, bank, search)  # noqa: E731
+    n_items = len(objs)
     if search is not None:  # the search runs once (its groups are read twice below)
-        groups = list(loo())
+        with bar(progress, "calibration face search", total=len(objs), unit="objects") as b:
+            groups, last = [], -1
+            for g in loo():
+                groups.append(g)
+                obj = int(store.single_object[g[1][0]])
+                if obj != last:  # a group's views are one object's
+                    b.advance(1)
+                    last = obj
         loo = lambda: iter(groups)  # noqa: E731
+        n_items = len(groups)
     poses, own = [], []
-    with bar(progress, "score calibration", total=len(objs) * (2 if reliable else 1), unit="objects") as b:
+    with bar(progress, "score calibration", total=n_items * (2 if reliable else 1), unit="groups" if search else "objects") as b:
         for k, rows, xs, ws, Pk, Vk, upright in loo():
             pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
             out[rows] = pm.D[:, 0]
@@ -342,13 +356,16 @@ def calibration_search(model, aspect: np.ndarray, scales: tuple[float, ...], gri
         return None
     from ..label.matcher import ViewSearch
     faces = pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"])
-    vs = ViewSearch(np.asarray(model.prototypes_, np.float32), np.asarray(model.prototype_weights_, np.float32), aspect,
-                    scales, grid, faces["face_up"], faces["face_symmetry"], exact_faces=bool(m.get("face_pairs", False)),
-                    refine_top=int(m.get("label_refine_top", 0)))
+    P, V = np.asarray(model.prototypes_, np.float32), np.asarray(model.prototype_weights_, np.float32)
+    own: dict[int, ViewSearch] = {}  # one search per prototype: a view is searched against its own only
 
     def search(xs: np.ndarray, ws: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
-        _, _, _, up, upright = vs.poses(xs, ws, only=np.full(len(xs), k))
-        return up[:, k], upright[:, k]
+        if k not in own:
+            own[k] = ViewSearch(P[k:k + 1], V[k:k + 1], np.asarray(aspect)[k:k + 1], scales, grid,
+                                faces["face_up"][k:k + 1], faces["face_symmetry"][k:k + 1],
+                                exact_faces=bool(m.get("face_pairs", False)), refine_top=int(m.get("label_refine_top", 0)))
+        _, _, _, up, upright = own[k].poses(xs, ws)
+        return up[:, 0], upright[:, 0]
     return search
 
 
