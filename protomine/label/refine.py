@@ -10,12 +10,15 @@ and every prototype keeps a scale up to half a step off; the distance grows fast
 the ranking of the nearest few prototypes partly measures how close the grid happened to fall to each one's
 best pose.  This step gives each of a view's ``top`` nearest prototypes the same finer search:
 
-- scales: the library's scales with their geometric midpoints inserted (:func:`fine_scales`), on every pair;
+- scales: the library's scales with their geometric midpoints inserted (:func:`fine_scales`);
 - tilts (pairs matched on another face than the canonical one): a pattern search on the sphere (compass
   search; Kolda, Lewis & Torczon, "Optimization by direct search", SIAM Review 2003, sec. 3): from the pair's
   up direction, the ``ring`` directions at ``step`` degrees around it are tried (copies resampled with
-  ``TiltBank.copies_at``, searched over all yaws by the FFT search and over the fine scales); the best of
-  them and the current one becomes the centre, and the step halves (``steps``).  Directions within
+  ``TiltBank.copies_at``, searched over all yaws by the FFT search and over the fine scales within one fine
+  step of the pair's scale); the best of them and the current one becomes the centre, and the step halves
+  (``steps``: 6, 3, 1.5 degrees; a view's pairs are searched together, one bank of copies per step).
+  Only prototypes within ``within`` (1.5) x the view's nearest distance are refined: the misnamed views are
+  near misses, and a prototype twice as far does not come back.  Directions within
   ``UPRIGHT_GUARD_DEG`` of +z are left out (the canonical face is the prototype itself, which the search has).
   Pairs matched on the canonical face keep it (refining its scale only): an upright object is matched by the
   prototype itself, exactly, and a slightly tilted resampled copy would be scored by the other faces'
