@@ -26,7 +26,8 @@ objects to their own prototype (``single_mu``, ``single_sigma``, learnt at minin
 the fraction of single views of prototype k's own members expected to fit worse than this one (a match on
 another face than the canonical one, a tilted copy, takes the library's ``single_tilt_mu``,
 ``single_tilt_sigma`` when it has them, fitted on the views of members resting on other faces:
-``pipeline.split_calibration``).  It is in
+``pipeline.split_calibration``; with ``[mine] calibrate_searched`` each held-out view's face is the one this
+search, :class:`ViewSearch`, finds for it, so canonical and tilted are told apart as here).  It is in
 [0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
@@ -154,10 +155,9 @@ class ViewSearch:
         self.refiner = (PoseRefiner(P, V, scales, self.bank if tilted else None, top=refine_top)
                         if refine_top > 0 else None)
 
-    def poses(self, X: np.ndarray, W: np.ndarray, only: np.ndarray | None = None):
+    def poses(self, X: np.ndarray, W: np.ndarray):
         """Views X (n, C, R, A, H), W (n, R, A, H) -> D, yaw_deg (raw, in the matched copy's frame), scale (n, K),
-        up (n, K, 3) (the matched copy's up direction in the prototype frame), upright (n, K).  ``only`` (n,):
-        the finer search refines that prototype of each view only (the calibration's own prototype)."""
+        up (n, K, 3) (the matched copy's up direction in the prototype frame), upright (n, K)."""
         n, cs = len(X), self.chunk_size
         parts = [self.bank.match(X[i:i + cs], W[i:i + cs]) for i in range(0, n, cs)]
         D = np.concatenate([p.D for p in parts]).astype(np.float64)
@@ -173,14 +173,7 @@ class ViewSearch:
         if self.refiner is not None:  # the nearest few prototypes: a finer tilt and scale search (label.refine)
             for i in range(0, n, cs):
                 sl = slice(i, i + cs)
-                if only is None:
-                    self.refiner.improve(X[sl], W[sl], D[sl], raw[sl], fit_scale[sl], up[sl], upright[sl])
-                else:  # the other prototypes hidden from the ranking (inf), their poses kept
-                    Dk = np.full_like(D[sl], np.inf)
-                    r = np.arange(sl.start, min(sl.stop, n))
-                    Dk[r - sl.start, only[r]] = D[r, only[r]]
-                    self.refiner.improve(X[sl], W[sl], Dk, raw[sl], fit_scale[sl], up[sl], upright[sl])
-                    D[r, only[r]] = Dk[r - sl.start, only[r]]
+                self.refiner.improve(X[sl], W[sl], D[sl], raw[sl], fit_scale[sl], up[sl], upright[sl])
         return D, raw, fit_scale, up, upright
 
 

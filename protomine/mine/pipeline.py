@@ -9,7 +9,9 @@ Steps
 3. Label-free calibration: robust fits (median, MAD) of the log distances of the members' distances (fused objects) and of the
    leave-one-out distances of the store's one-frame volumes to their object's prototype rebuilt without
    that object (single views; see ``single_view_calibration``), so that
-   ``library.match_score`` is comparable across clusters and usable for single views.
+   ``library.match_score`` is comparable across clusters and usable for single views.  With tilts and
+   ``[mine] calibrate_searched`` each held-out view's face is the one the label search finds for it
+   (:func:`calibration_search`), so the score sees the search's pick among many tilted copies.
 4. Metric size statistics (footprint radius, height) and member scale = sqrt(r h) / median over the
    cluster of sqrt(r h).
 """
