@@ -26,7 +26,8 @@ objects to their own prototype (``single_mu``, ``single_sigma``, learnt at minin
 the fraction of single views of prototype k's own members expected to fit worse than this one (a match on
 another face than the canonical one, a tilted copy, takes the library's ``single_tilt_mu``,
 ``single_tilt_sigma`` when it has them, fitted on the views of members resting on other faces:
-``pipeline.split_calibration``).  It is in
+``pipeline.split_calibration``; with ``[mine] calibrate_searched`` each held-out view's face is the one this
+search, :class:`ViewSearch`, finds for it, so canonical and tilted are told apart as here).  It is in
 [0, 1], higher is more confident, and comparable across prototypes because each prototype's distances
 are measured against its own spread.  The object's cluster is the prototype with the smallest distance,
 the assignment rule of mining itself (an object with no observed cell in common with any prototype gets
@@ -65,6 +66,7 @@ from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, make_bank
 from .. import rotations as rot
+from .refine import PoseRefiner
 from ..rotations import matrix_to_quat
 
 N_ALTERNATIVES = 3
@@ -134,6 +136,47 @@ class ExactFaces:
             upright[better, k] = False
 
 
+class ViewSearch:
+    """The label search of single views against prototypes P (K, C, R, A, H), V (K, R, A, H) (aspects (K,)):
+    the FFT pose search over the tilt grid ``tilts`` x yaw x ``scales`` (``mine.tilts.TiltBank``; a yaw-only
+    PoseBank for the identity grid), then each prototype's exact resting directions (:class:`ExactFaces`, with
+    ``exact_faces``), then the finer search of each view's ``refine_top`` nearest prototypes
+    (``label.refine.PoseRefiner``; 0 = none).  Mining's single-view calibration searches its held-out views with
+    the same object (``mine.pipeline.single_view_calibration``), so the score judges distances found the same way."""
+
+    def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], tilts: TiltGrid,
+                 face_up: np.ndarray, face_symmetry: np.ndarray, *, exact_faces: bool = False, refine_top: int = 0,
+                 chunk_size: int = 512):
+        self.tilts, self.chunk_size = tilts, chunk_size
+        # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
+        self.bank = make_bank(P, V, scales, tilts, aspect)
+        tilted = isinstance(self.bank, TiltBank)
+        self.face_bank = ExactFaces.build(self.bank, face_up, face_symmetry, scales) if exact_faces and tilted else None
+        self.refiner = (PoseRefiner(P, V, scales, self.bank if tilted else None, top=refine_top)
+                        if refine_top > 0 else None)
+
+    def poses(self, X: np.ndarray, W: np.ndarray):
+        """Views X (n, C, R, A, H), W (n, R, A, H) -> D, yaw_deg (raw, in the matched copy's frame), scale (n, K),
+        up (n, K, 3) (the matched copy's up direction in the prototype frame), upright (n, K)."""
+        n, cs = len(X), self.chunk_size
+        parts = [self.bank.match(X[i:i + cs], W[i:i + cs]) for i in range(0, n, cs)]
+        D = np.concatenate([p.D for p in parts]).astype(np.float64)
+        raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
+        tilt = np.concatenate([p.tilt for p in parts])
+        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
+        up = self.tilts.dirs[tilt]
+        upright = self.tilts.is_upright(tilt)
+        if self.face_bank is not None:  # the exact resting directions, where they fit better than the grid's
+            for i in range(0, n, cs):
+                sl = slice(i, i + cs)
+                self.face_bank.improve(X[sl], W[sl], D[sl], raw[sl], fit_scale[sl], up[sl], upright[sl])
+        if self.refiner is not None:  # the nearest few prototypes: a finer tilt and scale search (label.refine)
+            for i in range(0, n, cs):
+                sl = slice(i, i + cs)
+                self.refiner.improve(X[sl], W[sl], D[sl], raw[sl], fit_scale[sl], up[sl], upright[sl])
+        return D, raw, fit_scale, up, upright
+
+
 @dataclass
 class Matcher:
     """A library prepared for matching: prototypes, calibration and the lifting settings it was built with.
@@ -156,6 +199,7 @@ class Matcher:
     exact_faces: bool = False
     tolerant: bool = False
     rings: tuple[int, float] | None = None
+    refine_top: int = 0
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -163,18 +207,18 @@ class Matcher:
     face_bank: ExactFaces | None = field(init=False)
     groups: list[np.ndarray] = field(init=False)
     tilts: TiltGrid = field(init=False)
+    refiner: PoseRefiner | None = field(init=False)
 
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
         self.tilts = TiltGrid.from_config(self.library.tilt_config)
-        # the scaled (and tilted) prototypes' spectra cost more than matching a whole frame: build them once
-        self.bank = make_bank(self.P, self.V, self.scales, self.tilts, self.library.prototypes["aspect"])
-        self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
         pr = self.library.prototypes
-        self.face_bank = (ExactFaces.build(self.bank, pr["face_up"], pr["face_symmetry"], self.scales)
-                          if self.exact_faces and isinstance(self.bank, TiltBank) else None)
+        self.search = ViewSearch(self.P, self.V, pr["aspect"], self.scales, self.tilts, pr["face_up"], pr["face_symmetry"],
+                                 exact_faces=self.exact_faces, refine_top=self.refine_top, chunk_size=self.chunk_size)
+        self.bank, self.face_bank, self.refiner = self.search.bank, self.search.face_bank, self.search.refiner
+        self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
 
     @property
     def K(self) -> int:
@@ -192,20 +236,10 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
-                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
+                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int), "upright": z.astype(bool),
+                    "up": np.zeros((0, self.K, 3)), "yaw_raw": z}
         X, W = self.features(volumes)
-        parts = [self.bank.match(X[i:i + self.chunk_size], W[i:i + self.chunk_size])
-                 for i in range(0, n, self.chunk_size)]
-        D = np.concatenate([p.D for p in parts]).astype(np.float64)
-        raw = np.concatenate([p.yaw_deg for p in parts]).astype(np.float64)
-        tilt = np.concatenate([p.tilt for p in parts])
-        fit_scale = np.concatenate([p.scale for p in parts]).astype(np.float64)
-        up = self.tilts.dirs[tilt]
-        upright = self.tilts.is_upright(tilt)
-        if self.face_bank is not None:  # the exact resting directions, where they fit better than the grid's
-            for i in range(0, n, self.chunk_size):
-                sl = slice(i, i + self.chunk_size)
-                self.face_bank.improve(X[sl], W[sl], D[sl], raw[sl], fit_scale[sl], up[sl], upright[sl])
+        D, raw, fit_scale, up, upright = self.search.poses(X, W)
         # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
         # views, as the library's single-view calibration did (``mine.reliability``; none: the plain distance);
         # the reliability lives in the canonical frame, so matches on another face keep the plain distance
@@ -228,7 +262,7 @@ class Matcher:
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
-                "rotation": rotation, "best": best}
+                "rotation": rotation, "best": best, "upright": upright, "up": up, "yaw_raw": raw}
 
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
@@ -247,7 +281,8 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
     m = lib_cfg["mine"]
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
                    library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)),
-                   tolerant=bool(m.get("tolerant_residual", False)), rings=score_rings(lib_cfg, grid.radial_bins))
+                   tolerant=bool(m.get("tolerant_residual", False)), rings=score_rings(lib_cfg, grid.radial_bins),
+                   refine_top=int(m.get("label_refine_top", 0)))
 
 
 @dataclass

@@ -9,7 +9,9 @@ Steps
 3. Label-free calibration: robust fits (median, MAD) of the log distances of the members' distances (fused objects) and of the
    leave-one-out distances of the store's one-frame volumes to their object's prototype rebuilt without
    that object (single views; see ``single_view_calibration``), so that
-   ``library.match_score`` is comparable across clusters and usable for single views.
+   ``library.match_score`` is comparable across clusters and usable for single views.  With tilts and
+   ``[mine] calibrate_searched`` each held-out view's face is the one the label search finds for it
+   (:func:`calibration_search`), so the score sees the search's pick among many tilted copies.
 4. Metric size statistics (footprint radius, height) and member scale = sqrt(r h) / median over the
    cluster of sqrt(r h).
 """
@@ -154,11 +156,18 @@ def _calibration_objects(store: ObjectStore, labels: np.ndarray, K: int, max_obj
 
 
 def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
-                      scales: tuple[float, ...], objs: np.ndarray, up: np.ndarray | None, bank: TiltBank | None):
+                      scales: tuple[float, ...], objs: np.ndarray, up: np.ndarray | None, bank: TiltBank | None,
+                      search=None):
     """Yield (k, rows, xs, ws, Pk, Vk, upright) per calibration object: its cluster, its single views' row
     indices (m,) and features xs (m, C, R, A, H), ws (m, R, A, H), its prototype rebuilt without it, Pk (1, C,
     R, A, H), Vk (1, R, A, H) (on the object's resting face), and whether that face is the canonical one
-    (see :func:`single_view_calibration`)."""
+    (see :func:`single_view_calibration`).  With ``search`` (views xs, ws and their prototype k -> up
+    directions (m, 3) in the prototype frame and upright (m,): each view's tilt as the label search finds it
+    against prototype k), the face is each view's searched one instead of the object's mined face: one tuple
+    per object and distinct searched direction."""
+    if search is not None:
+        yield from _loo_searched(store, cfg, P, V, labels, scales, objs, bank, search)
+        return
     from .engine import align_to_prototype
     m = cfg["mine"]
     feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
@@ -189,6 +198,48 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
             yield k, rows_all[sel], xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), upright
 
 
+def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
+                  scales: tuple[float, ...], objs: np.ndarray, bank: TiltBank | None, search):
+    """:func:`_loo_single_views` with each view's face from ``search``: the object's views grouped by the
+    direction the search found, each group against the prototype rebuilt without the object on that face."""
+    from .engine import align_to_prototype
+    m = cfg["mine"]
+    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
+    K = P.shape[0]
+    n = np.bincount(labels, minlength=K)
+    for i0 in range(0, len(objs), 256):
+        chunk = objs[i0:i0 + 256]
+        xo, wo = feats(store.read_volume_at(chunk))
+        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
+        xs, ws = feats(store.read_single_views(rows_all))
+        # every view of the chunk searched against its own prototype, one call per prototype
+        view_k = labels[store.single_object[rows_all]]
+        ups_all, upr_all = np.zeros((len(rows_all), 3)), np.ones(len(rows_all), bool)
+        for k in np.unique(view_k):
+            sk = np.flatnonzero(view_k == k)
+            ups_all[sk], upr_all[sk] = search(xs[sk], ws[sk], int(k))
+        for j, obj in enumerate(chunk):
+            k = int(labels[obj])
+            sel = np.flatnonzero(store.single_object[rows_all] == obj)
+            if not len(sel):
+                continue
+            ups = np.where(upr_all[sel][:, None], [0.0, 0.0, 1.0], ups_all[sel])
+            dirs, inv = np.unique(np.round(ups, 9), axis=0, return_inverse=True)
+            for g, u in enumerate(dirs):
+                upright = bool(bank is None or u[2] >= np.cos(np.deg2rad(IDENTITY_DEG)))
+                P1, V1 = (P[k:k + 1], V[k:k + 1]) if upright else (a[None] for a in bank.copy_at(k, u))
+                Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
+                if n[k] > 1:
+                    pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
+                    xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
+                    den = n[k] * Vk - wa
+                    ok = den > 1e-6
+                    Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+                    Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+                gs = sel[np.asarray(inv).reshape(-1) == g]
+                yield k, rows_all[gs], xs[gs], ws[gs], Pk.astype(np.float32), Vk.astype(np.float32), upright
+
+
 def score_rings(cfg: dict, radial_bins: int) -> tuple[int, float] | None:
     """The single-view score's ring beyond the footprint: None (counted like the rest) when ``[mine]
     score_margin_ring`` is 1, else (its first radial bin, ``viewdistance.footprint_rings``; its weight)."""
@@ -212,7 +263,8 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
 def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
                             scales: tuple[float, ...], *, reliable: bool = True, max_objects_per_cluster: int = 64,
                             progress: Callable[[str], None] | None = None, up: np.ndarray | None = None,
-                            bank: TiltBank | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                            bank: TiltBank | None = None, search=None, upright_out: np.ndarray | None = None
+                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
     (inf for views left out of the calibration), (Q,) clusters, and the per-cell reliability (K, R, H) of
     single views (``reliability``; ones when ``reliable`` is False).
@@ -246,12 +298,26 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     if len(store.single_object) == 0:
         return out, np.zeros(0, int), np.ones((K, R, H))
     objs = _calibration_objects(store, labels, K, max_objects_per_cluster)
-    loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, objs, up, bank)  # noqa: E731
+    loo = lambda: _loo_single_views(store, cfg, P, V, labels, scales, objs, up, bank, search)  # noqa: E731
+    n_items = len(objs)
+    if search is not None:  # the search runs once (its groups are read twice below)
+        with bar(progress, "calibration face search", total=len(objs), unit="objects") as b:
+            groups, last = [], -1
+            for g in loo():
+                groups.append(g)
+                obj = int(store.single_object[g[1][0]])
+                if obj != last:  # a group's views are one object's
+                    b.advance(1)
+                    last = obj
+        loo = lambda: iter(groups)  # noqa: E731
+        n_items = len(groups)
     poses, own = [], []
-    with bar(progress, "score calibration", total=len(objs) * (2 if reliable else 1), unit="objects") as b:
+    with bar(progress, "score calibration", total=n_items * (2 if reliable else 1), unit="groups" if search else "objects") as b:
         for k, rows, xs, ws, Pk, Vk, upright in loo():
             pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
             out[rows] = pm.D[:, 0]
+            if upright_out is not None:
+                upright_out[rows] = upright
             poses.append((pm.yaw_deg, pm.scale))
             ok = np.isfinite(pm.D[:, 0])
             a, c = np.zeros((R, H)), np.zeros((R, H))
@@ -276,6 +342,33 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
                 out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
             b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)
+
+
+def calibration_search(model, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid, cfg: dict):
+    """The single-view calibration's face search (``[mine] calibrate_searched``; None when off): each held-out
+    view's up direction and whether it is the canonical face, found against its own prototype by the label
+    search itself (``label.matcher.ViewSearch``: tilt grid, exact resting directions with ``face_pairs``, the
+    finer search of ``label_refine_top``).  The label search picks, per view, the best of many tilted copies, so
+    a view of any object, known or not, fits *some* copy better than its object's own face: a calibration on
+    the mined face alone expects tilted matches to fit worse than the search makes them fit, and scores a
+    never-mined object matched on another face as typical (seed-0 demo: trowels on a tipped L bracket scored
+    0.86-0.92).  Searched the same way, the calibration sees the same selection."""
+    m = cfg["mine"]
+    if not bool(m.get("calibrate_searched", False)):
+        return None
+    from ..label.matcher import ViewSearch
+    faces = pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"])
+    P, V = np.asarray(model.prototypes_, np.float32), np.asarray(model.prototype_weights_, np.float32)
+    own: dict[int, ViewSearch] = {}  # one search per prototype: a view is searched against its own only
+
+    def search(xs: np.ndarray, ws: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+        if k not in own:
+            own[k] = ViewSearch(P[k:k + 1], V[k:k + 1], np.asarray(aspect)[k:k + 1], scales, grid,
+                                faces["face_up"][k:k + 1], faces["face_symmetry"][k:k + 1],
+                                exact_faces=bool(m.get("face_pairs", False)), refine_top=int(m.get("label_refine_top", 0)))
+        _, _, _, up, upright = own[k].poses(xs, ws)
+        return up[:, 0], upright[:, 0]
+    return search
 
 
 MIN_CALIBRATION_VIEWS = 5   # fewer views than this: a prototype borrows the pooled spread (or offset)
@@ -386,11 +479,13 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
               np.array([np.median(store_aspect(store, cfg)[labels == k]) if counts_k else 1.0
                         for k, counts_k in enumerate(np.bincount(labels, minlength=K))]))
     bank = TiltBank(model.prototypes_, model.prototype_weights_, aspect, scales, grid) if grid is not None else None
+    search = calibration_search(model, aspect, scales, grid, cfg) if bank is not None else None
+    sv_up = np.ones(len(store.single_object), bool)  # views matched on the canonical face (the calibration's)
     sv_d, sv_k, reliability = single_view_calibration(store, cfg, model.prototypes_, model.prototype_weights_, labels,
-                                                      scales, progress=progress, up=np.asarray(model.up_), bank=bank)
-    # views of members resting on the canonical face (as the calibration matched them: _loo_single_views)
-    sv_up = (np.ones(len(sv_d), bool) if bank is None else
-             np.asarray(model.up_)[store.single_object, 2] >= np.cos(np.deg2rad(IDENTITY_DEG)))
+                                                      scales, progress=progress, up=np.asarray(model.up_), bank=bank,
+                                                      search=search, upright_out=sv_up)
+    if bank is not None and search is None:  # each view on its object's mined face (_loo_single_views)
+        sv_up = np.asarray(model.up_)[store.single_object, 2] >= np.cos(np.deg2rad(IDENTITY_DEG))
     fin = np.isfinite(sv_d)
     sv_k, sv_d, sv_up = sv_k[fin], sv_d[fin], sv_up[fin]
     pooled_f = float(np.median([s for _, s in fused])) if K else 0.1
