@@ -57,7 +57,8 @@ from .. import rotations as rot
 from scipy.spatial import ConvexHull, QhullError
 
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw
+from .posesearch import (PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw,
+                         _spectra_pool)
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
 OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
@@ -287,6 +288,22 @@ def volume_on_face(vol: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGri
     return out[0].numpy().reshape(vol.shape)
 
 
+# --- small operations on one thread each ----------------------------------------------------------
+
+def _pooled(fn, items: Sequence) -> list:
+    """``[fn(i) for i in items]``, with torch running T > 1 threads spread over T Python threads whose torch ops
+    run on one thread each (``posesearch._spectra_pool``).  For the refinement's many small operations (copies,
+    column factors, a group's product): waking torch's other threads for each of them costs more than the
+    operation on a shared machine (measured at load 7-13: a (36, 77, 672) x (36, 100, 672) product of
+    :func:`posesearch._distances_from_spectra` took 256-315 ms on 2 threads, 38-56 ms on one), and single-threaded
+    kernels give the same result for any number of threads.  Results in the order of ``items``."""
+    import threading
+    threads = torch.get_num_threads()
+    if threads == 1 or threading.current_thread().name.startswith("spectra"):
+        return [fn(i) for i in items]
+    return list(_spectra_pool(threads).map(fn, items))
+
+
 # --- spectra of the refinement's columns -------------------------------------------------------
 
 def _scale_matrix(n: int, sigma: float) -> tuple[np.ndarray, np.ndarray]:
@@ -324,9 +341,11 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     rows = dft.shape[0]
     pn = torch.empty((rows, M, (C + 2) * R * H), dtype=torch.float32)
     pd = torch.empty((rows, M, R * H), dtype=torch.float32)
-    # a few copies at a time, so the steps' temporaries stay in cache (each column's arithmetic is the same)
+    # a few copies at a time, so the steps' temporaries stay in cache (each column's arithmetic is the same), the
+    # steps spread over the threads (:func:`_pooled`)
     step = max(1, FACTOR_BLOCK_BYTES // (4 * (C + 2) * R * A * H))
-    for m0 in range(0, M, step):
+
+    def run(m0: int) -> None:
         m1 = min(M, m0 + step)
         p, v = pa[m0:m1], va[m0:m1]
         if sigma != 1.0:
@@ -337,6 +356,8 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
         num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (m, C + 2, R, A, H)
         for t, out in ((num, pn), (C * v[:, None], pd)):
             out[:, m0:m1] = torch.mm(dft, t.permute(3, 0, 1, 2, 4).reshape(A, -1)).view(rows, m1 - m0, -1)
+
+    _pooled(run, range(0, M, step))
     return pn, pd
 
 
@@ -359,7 +380,7 @@ GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geom
 # prototypes changed inside their hulls finds them
 _GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
 FACTOR_BLOCK_BYTES = 1 << 20  # factors of the copies that column_factors builds at once (stays in cache)
-COPY_BLOCK = 64        # copies resampled per grid_sample call (bounds its temporaries)
+COPY_BLOCK = 32        # copies resampled per grid_sample call (bounds its temporaries; blocks spread over threads)
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
 PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
@@ -445,12 +466,15 @@ class TiltBank:
             if self.grid.is_upright(t):
                 self._copies[(k, t)] = (self.P[k], self.V[k])
         self._geometries(tilted)
-        for b0 in range(0, len(tilted), COPY_BLOCK):
+
+        def run(b0: int) -> None:
             blk = tilted[b0:b0 + COPY_BLOCK]
             kk = np.array([k for k, _ in blk])
             pc, vc = _resample_copies(self.P[kk], self.V[kk], [self._geom[key] for key in blk], self.aspect[kk])
             for j, key in enumerate(blk):
                 self._copies[key] = (pc[j], vc[j])
+
+        _pooled(run, range(0, len(tilted), COPY_BLOCK))  # blocks spread over the threads
 
     def _drop_refined(self) -> None:
         """Forget the copies of the later levels (the refinement's): a pass needs K x (48 + 192) of them with the
@@ -577,7 +601,7 @@ class TiltBank:
                 ks = np.concatenate([np.full(len(u), k) for _, k, u, _ in blk])
                 ts = np.concatenate([u for _, _, u, _ in blk])
                 factors = column_factors(*self.copies(ks, ts), self.scales[si], self.dft)
-                jobs, dists = [], []
+                jobs, prods = [], []
                 c0 = 0
                 for _, k, u, es in blk:
                     cb = c0  # the group's copies are rows cb .. cb + |u| of the block's factors
@@ -590,22 +614,28 @@ class TiltBank:
                     else:
                         subs = [(None, es)]  # one product against the union
                     for cols, es_p in subs:
-                        if cols is None:
-                            cols, part = u, tuple(f[:, cb:cb + len(u)] for f in factors)
-                        else:
-                            pos = torch.from_numpy(cb + np.searchsorted(u, cols))
-                            part = tuple(f.index_select(1, pos) for f in factors)
+                        pos = None if cols is None else cb + np.searchsorted(u, cols)
+                        cols = u if cols is None else cols
                         rows = ii[es_p]
                         urows, inv = np.unique(rows, return_inverse=True)
-                        og = o.index_select(1, torch.from_numpy(urows))  # the group's objects
-                        d = _distances_from_spectra(og, part, self.A, minov)  # (A, |cols|, nu)
                         mask = None
                         if cols is u and len(ps_) > 1:
                             mask = np.zeros((len(es_p), len(u)), bool)
                             for t in ps_:  # each pair searches its own candidates only
                                 mask[np.ix_(tp == t, np.searchsorted(u, cand[int(t)]))] = True
                         jobs.append((es_p, cols, inv, len(urows), mask))
-                        dists.append(d.view(self.A, -1))
+                        prods.append((cb, len(u), pos, urows))
+
+                def product(job) -> torch.Tensor:
+                    cb, nu_, pos, urows = job
+                    if pos is None:
+                        part = tuple(f[:, cb:cb + nu_] for f in factors)
+                    else:
+                        part = tuple(f.index_select(1, torch.from_numpy(pos)) for f in factors)
+                    og = o.index_select(1, torch.from_numpy(urows))  # the group's objects
+                    return _distances_from_spectra(og, part, self.A, minov).view(self.A, -1)  # (A, |cols| nu)
+
+                dists = _pooled(product, prods)  # the block's products spread over the threads
                 # the best shift of every (copy, object) of the block at once (one scale): the rule of
                 # posesearch._best_pose_nska, column by column
                 Db, yb = _best_shifts(torch.cat(dists, 1) if len(dists) > 1 else dists[0])
