@@ -529,9 +529,17 @@ class TiltBank:
             self._solid[k] = solid_points(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
         gs = copy_geometries(self.shape, float(self.aspect[k]), np.asarray(ups, np.float64), self.grid, self._solid[k])
         M = len(gs)
-        return _resample_copies(np.broadcast_to(self.P[k], (M,) + self.P.shape[1:]),
-                                np.broadcast_to(self.V[k], (M,) + self.shape), gs, np.full(M, self.aspect[k]),
-                                empty_outside=empty_outside)
+        pc = np.empty((M, self.C) + self.shape, np.float32)
+        vc = np.empty((M,) + self.shape, np.float32)
+
+        def run(b0: int) -> None:  # blocks of copies spread over the threads, as in _build
+            b1 = min(M, b0 + COPY_BLOCK)
+            pc[b0:b1], vc[b0:b1] = _resample_copies(np.broadcast_to(self.P[k], (b1 - b0,) + self.P.shape[1:]),
+                                                    np.broadcast_to(self.V[k], (b1 - b0,) + self.shape), gs[b0:b1],
+                                                    np.full(b1 - b0, self.aspect[k]), empty_outside=empty_outside)
+
+        _pooled(run, range(0, M, COPY_BLOCK))
+        return pc, vc
 
     def untilt(self, k: int, t: int, a: np.ndarray) -> np.ndarray:
         """Sums a (..., R, A, H) in the copy frame of (k, t) rotated back into prototype k's frame."""
