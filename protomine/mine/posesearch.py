@@ -261,6 +261,16 @@ SPECTRA_BLOCK_BYTES = 1 << 21  # the object factors of one block of a chunk (sta
 SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
 
 
+def _one_arena() -> bool:
+    """glibc's ``mallopt(M_ARENA_MAX, 1)``: threads started later share the main arena, so memory one thread
+    frees serves the others (the same as ``MALLOC_ARENA_MAX=1`` in the environment).  False where not glibc."""
+    import ctypes
+    try:
+        return bool(ctypes.CDLL("libc.so.6").mallopt(-8, 1))  # M_ARENA_MAX (malloc.h)
+    except (OSError, AttributeError):
+        return False
+
+
 @functools.lru_cache(maxsize=4)
 def _spectra_pool(threads: int) -> ThreadPoolExecutor:
     """``threads`` Python threads whose torch ops run on one thread each, for :func:`_object_spectra`.
@@ -268,7 +278,13 @@ def _spectra_pool(threads: int) -> ThreadPoolExecutor:
     torch's thread count is per thread for its ops (OpenMP's and MKL's settings of the calling thread);
     ``torch.set_num_threads(1)`` in a pool thread also sets the count that threads started later begin with, so
     the pool's threads are all started here (a barrier holds each until all have set theirs) and the caller's
-    count is set back afterwards (which leaves the caller's own ops as they were)."""
+    count is set back afterwards (which leaves the caller's own ops as they were).
+
+    Threads started from here on allocate from the main malloc arena (:func:`_one_arena`): the tilt search runs
+    blocks of tens of megabytes on these threads, and each thread's own arena would keep its largest blocks for
+    good (``cores.reuse_freed_memory``'s top pad), on top of the main arena's (measured on 500 tumbled objects,
+    K = 16: peak RSS 1.57 GB with an arena per thread, 1.30 GB with one, same time)."""
+    _one_arena()
     pool = ThreadPoolExecutor(threads, thread_name_prefix="spectra")
     barrier = threading.Barrier(threads)
 

@@ -572,7 +572,9 @@ class TiltBank:
         """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (A, n, (C + 2) R H)."""
         n, K, T0 = o.shape[1], self.K, self.T0
         # blocks of objects bound the (n, K T0, S, A) distances
-        m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=COARSE_ROWS, run=_pooled)
+        # the blocks run at once on the pool's threads: COARSE_ROWS objects over all of them (memory as one block)
+        rows = max(1, COARSE_ROWS // torch.get_num_threads())
+        m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=rows, run=_pooled)
         D = m.D.reshape(n, K, T0)
         bt = np.argmin(D, axis=2)
         pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
