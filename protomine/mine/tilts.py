@@ -44,6 +44,14 @@ spacing of the pair's previous best (HEALPix's measured covering radius is 0.79-
 about 8 directions per level, at the pair's best coarse scale, and a prototype's pose is replaced by a
 refined one with a lower distance.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
 ``nsides=(0,)`` is the set {+z}: the yaw-only search of the 2-D case, with no resampling at all.
+
+Threads
+-------
+With torch on T > 1 threads, the search's many small operations (blocks of copies, the refinement's column
+factors and its groups' products) and the coarse level's bank and row blocks run on T Python threads whose torch
+ops run on one thread each (:func:`_pooled`, ``posesearch._spectra_pool``), not as ops on T torch threads each:
+the same values to the bit, and on a shared machine far less time lost waking threads (mining 500 tumbled
+objects at load 6-9: 632 s wall / 307 s CPU before, 186 s / 82 s with the pool; identical result).
 """
 from __future__ import annotations
 
