@@ -249,7 +249,9 @@ class _AlignedSums:
             if int(g) not in self.slots:
                 self.slots[int(g)] = len(self.slots)
         if len(self.slots) > self.acc.shape[1]:
-            grow = max(len(self.slots), 2 * self.acc.shape[1]) - self.acc.shape[1]
+            # exactly the new slots: adds come one per chunk, and with tilts most of a chunk's groups are new
+            # (doubling held up to twice the slots, and the concatenation three times, on a pass's second chunk)
+            grow = len(self.slots) - self.acc.shape[1]
             fresh = torch.zeros((self.acc.shape[0], grow, self.n_feat), dtype=torch.complex64)
             # the usual single add per chunk allocates the exact slots once (a concatenation would hold both)
             self.acc = torch.cat([self.acc, fresh], 1) if self.acc.shape[1] else fresh
