@@ -27,6 +27,12 @@ every worker.
   before each cluster pass with the same prototypes (6 passes, min), so that each cluster pass has an
   in-process twin measured under the same load; every ``ratio_*`` below is the median over the 3 rounds
   of the 2-worker cluster (``..._1worker``: of the 1-worker cluster) of the pass's ratio to its twin;
+- ``tasks_per_worker_2workers`` (each 2-worker pass), ``tail_idle_s`` (median over those passes: how long the
+  first worker to finish waited for the last), ``idle_fraction`` (the share of the two workers' time between
+  the first task's start and the last one's end with no task of theirs running): a pass's runs of chunks are
+  handed out as the workers free up (guided self-scheduling, :meth:`protomine.scale.executor.DaskExecutor.map`
+  with ``balanced``), so a worker slowed by other processes (or by the caller's own threads: client,
+  scheduler, folding, which share the 2 cores) does fewer chunks instead of holding up the pass;
 - ``caller_cpu_s_per_pass`` (2 workers): CPU seconds of this process (client, scheduler, folding) per pass,
   which compete with the workers for the cores of a local cluster; ``worker_overhead_cpu_fraction``: the
   worker processes' CPU beyond the task threads' (Dask's own threads: communication, monitors) / the tasks';
@@ -68,7 +74,8 @@ Projection model (one pass, N objects, W workers, chunks of c objects, n = ceil(
   sums) on a core of its own, measured as the workers' CPU seconds for their chunks / N (their wall times,
   ``t_obj_wall_s``, also count the time other processes of a shared machine held the core);
 - ``t_task``: scheduling overhead per task = (cluster wall time - max worker busy time) / (tasks / W) (a task
-  is a run of chunks, ``mine.distributed.TASKS_PER_WORKER`` per worker, at most ``MAX_CHUNKS_PER_TASK`` chunks);
+  is a run of chunks handed out as the workers free up, ``scale.executor.DaskExecutor._map_runs``; the
+  projection counts one task per chunk, an upper bound);
 - ``t_fold``: the caller's seconds to fold one chunk's sums (measured, total reduce time / n);
 - ``b_part``: bytes of one chunk's result (K (C + 2) R A H float64 sums + 16 bytes per object);
 - ``bandwidth``: 1.25e9 B/s (10 Gbit/s Ethernet, common practice for a compute cluster; an assumption, not
@@ -124,6 +131,17 @@ def _process_cpu_s() -> float:
     return r.ru_utime + r.ru_stime
 
 
+def _tail_idle(spans: list, workers: np.ndarray, n_workers: int) -> tuple[float, float, list]:
+    """From a pass's task spans (start, end) on the wall clock and the worker of each task: the seconds the
+    first worker to finish waited for the last (idle at the end of the pass), the fraction of the workers'
+    time between the first start and the last end that no task of theirs ran, and the tasks' workers."""
+    sp = np.array(spans, float).reshape(-1, 2)
+    ends = [sp[workers == j, 1].max() for j in range(n_workers) if np.any(workers == j)]
+    span = sp[:, 1].max() - sp[:, 0].min()
+    idle = 1.0 - float(np.sum(sp[:, 1] - sp[:, 0])) / max(n_workers * span, 1e-12)
+    return float(max(ends) - min(ends)), idle, workers.tolist()
+
+
 def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, project_workers: int = 50) -> dict:
     """Measured local vs 2-worker LocalCluster pass times and the projection (module docstring)."""
     import dask
@@ -131,7 +149,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
 
     from .. import cores
     from ..config import load_config
-    from ..mine.distributed import MAX_CHUNKS_PER_TASK, TASKS_PER_WORKER, ExecutorSource, NpySpec
+    from ..mine.distributed import ExecutorSource, NpySpec
     from ..mine.engine import ArraySource, _assign_pass
     from .executor import DaskExecutor
     from .streamed import write_synthetic
@@ -168,7 +186,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
             cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
                                    dashboard_address=None)
             client = Client(cluster, set_as_default=False)
-            runs, cpu_best, rounds = {}, {}, {}
+            runs, cpu_best, rounds, tails = {}, {}, {}, {}
             same, max_rel, n_pass = True, 0.0, 0
             try:
                 for n_workers in (1, 2):
@@ -177,7 +195,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                     ex = DaskExecutor(client=client, min_workers=n_workers)
                     dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
                     dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
-                    walls, busy, rounds[n_workers] = [], [], []
+                    walls, busy, rounds[n_workers], tails[n_workers] = [], [], [], []
                     for _ in range(3):
                         # new prototypes every pass, as in a Lloyd iteration: each pass builds its pose bank, in
                         # this process and on every worker; the in-process pass runs just before the cluster's
@@ -193,9 +211,11 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                         secs = np.array(dsrc.last_seconds)
                         task_cpu = float(np.sum(dsrc.last_cpu_seconds))
                         task_wait = float(np.sum(dsrc.last_wait_seconds))
-                        # task i ran on worker i mod n (preferred); the busiest worker bounds the wall time
-                        busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers)),
+                        # the busiest worker bounds the wall time (tasks are handed out as workers free up)
+                        tw = np.array(dsrc.last_task_workers)
+                        busy.append((secs.sum(), max(secs[tw == j].sum() for j in range(n_workers)),
                                      task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu, len(secs)))
+                        tails[n_workers].append(_tail_idle(dsrc.last_spans, tw, n_workers))
                         rounds[n_workers].append((loc, (secs.sum(), task_cpu, task_wait)))
                         same &= bool(np.array_equal(got[0], ref[0]))
                         max_rel = max(max_rel, float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12)))
@@ -234,7 +254,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
     proj_chunk = int(load_config(None)["mine"]["chunk_size"])
     N, Wk = project_objects, project_workers
     nc = math.ceil(N / proj_chunk)
-    n_proj_tasks = min(nc, max(TASKS_PER_WORKER * Wk, math.ceil(nc / MAX_CHUNKS_PER_TASK)))
+    n_proj_tasks = nc  # a Dask cluster runs one chunk per task (mine.distributed.ExecutorSource._tasks)
     b_proj = part.nbytes + 16 * proj_chunk
     terms = {"compute_s": t_obj * N / Wk, "scheduling_s": t_task * n_proj_tasks / Wk, "fold_s": fold_s * nc,
              "transfer_s": b_proj * nc / BANDWIDTH_BPS}
@@ -260,6 +280,9 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "ratio_worker_local_cpu_per_object_1worker": paired(1, lambda c, loc: c[1] / loc[1]),
         "caller_cpu_s_per_pass": caller_cpu, "caller_cpu_s_per_pass_1worker": runs[1][4],
         "worker_overhead_cpu_fraction": overhead_cpu / max(runs[2][3], 1e-9),
+        "tasks_per_worker_2workers": [[int(np.sum(np.array(t[2]) == j)) for j in range(2)] for t in tails[2]],
+        "tail_idle_s": float(statistics.median(t[0] for t in tails[2])),
+        "idle_fraction": float(statistics.median(t[1] for t in tails[2])),
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
         "cluster_equal_labels": same, "cluster_max_rel_sum_diff": max_rel,
         "worker_rss_mb_after": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),
