@@ -18,14 +18,18 @@ every worker.
 
 - ``local_s``: ``engine._assign_pass`` in this process with every usable core as torch threads (min of 2);
 - ``cluster_1worker_s``, ``cluster_s``: the same pass through :class:`protomine.mine.distributed.ExecutorSource`
-  on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1, then 2 workers, median of 3
-  passes after a warm-up; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores), ``speedup`` = local_s /
-  cluster_s, and the results are checked equal to the in-process pass's (same labels).  The cluster runs
-  with ``DASK_CONFIG_FOR_MINING`` (no statistical profiler in the workers, a 1 s event-loop tick, slower
-  periodic monitors; measured costs beside it);
+  on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1 and with 2 workers, both clusters up
+  side by side after a warm-up pass each, their passes alternating in ``ROUNDS`` rounds (a 1-worker pass,
+  then a 2-worker pass), medians; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores): the median over the
+  rounds of the round's 1-worker wall time / its 2-worker wall time (``..._rounds``: each round's; a
+  machine shared with other sessions changes its load over minutes, and a ratio of two passes run seconds
+  apart follows it less than one of two phases run minutes apart, ``..._of_medians``), ``speedup`` =
+  local_s / cluster_s, and the results are checked equal to the in-process pass's (same labels).  The
+  clusters run with ``DASK_CONFIG_FOR_MINING`` (no statistical profiler in the workers, a 1 s event-loop
+  tick, slower periodic monitors; measured costs beside it; the idle cluster costs under 1% of a core);
 - ``local_1thread_s``: the in-process pass with 1 torch thread (one core: what a worker has), run just
-  before each cluster pass with the same prototypes (6 passes, min), so that each cluster pass has an
-  in-process twin measured under the same load; every ``ratio_*`` below is the median over the 3 rounds
+  before each cluster pass with the same prototypes (min over all), so that each cluster pass has an
+  in-process twin measured under the same load; every ``ratio_*`` below is the median over the rounds
   of the 2-worker cluster (``..._1worker``: of the 1-worker cluster) of the pass's ratio to its twin;
 - ``tasks_per_worker_2workers`` (each 2-worker pass), ``tail_idle_s`` (median over those passes: how long the
   first worker to finish waited for the last), ``idle_fraction`` (the share of the two workers' time between
@@ -99,6 +103,7 @@ from pathlib import Path
 import numpy as np
 
 BANDWIDTH_BPS = 1.25e9  # 10 Gbit/s Ethernet (common practice; assumed)
+ROUNDS = 5  # rounds of (1-worker pass, 2-worker pass), each pass with its in-process twin just before it
 
 # Dask settings of the bench's cluster (README: the same for a mining cluster).  Measured on 2 cores at load
 # ~5: the statistical profiler (every worker thread's stack sampled each 10 ms) cost 12-17% of the workers'
@@ -181,22 +186,25 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
             c1, q1 = cores.thread_clock()
             return out, (time.perf_counter() - t0, c1 - c0, q1 - q0)
 
-        # the cluster's config (each nanny passes it on to its worker): DASK_CONFIG_FOR_MINING
+        # the cluster's config (each nanny passes it on to its worker): DASK_CONFIG_FOR_MINING.  A 1-worker and a
+        # 2-worker cluster are up side by side and their passes alternate, round by round, so that both see the
+        # same load (a machine shared with other sessions drifts over minutes)
         with dask.config.set(DASK_CONFIG_FOR_MINING):
-            cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
-                                   dashboard_address=None)
-            client = Client(cluster, set_as_default=False)
-            runs, cpu_best, rounds, tails = {}, {}, {}, {}
+            clusters, clients, srcs = {}, {}, {}
+            runs, cpu_best, rounds, tails, walls, busy = {}, {}, {}, {}, {}, {}
             same, max_rel, n_pass = True, 0.0, 0
             try:
                 for n_workers in (1, 2):
-                    if n_workers > 1:
-                        cluster.scale(n_workers)
-                    ex = DaskExecutor(client=client, min_workers=n_workers)
-                    dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
-                    dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
-                    walls, busy, rounds[n_workers], tails[n_workers] = [], [], [], []
-                    for _ in range(3):
+                    clusters[n_workers] = LocalCluster(n_workers=n_workers, processes=True, threads_per_worker=1,
+                                                       host="127.0.0.1", dashboard_address=None)
+                    clients[n_workers] = Client(clusters[n_workers], set_as_default=False)
+                    ex = DaskExecutor(client=clients[n_workers], min_workers=n_workers)
+                    srcs[n_workers] = ExecutorSource(spec, ex, cache_mb=0.0)
+                    srcs[n_workers].assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
+                    walls[n_workers], busy[n_workers], rounds[n_workers], tails[n_workers] = [], [], [], []
+                for _ in range(2 if quick else ROUNDS):
+                    for n_workers in (1, 2):
+                        client, dsrc = clients[n_workers], srcs[n_workers]
                         # new prototypes every pass, as in a Lloyd iteration: each pass builds its pose bank, in
                         # this process and on every worker; the in-process pass runs just before the cluster's
                         n_pass += 1
@@ -205,7 +213,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                         w0 = client.run(_process_cpu_s)
                         t0, c0 = time.perf_counter(), time.process_time()
                         got = dsrc.assign_pass(Pr, V, scales, chunk, True, 0)
-                        walls.append(time.perf_counter() - t0)
+                        walls[n_workers].append(time.perf_counter() - t0)
                         caller_cpu = time.process_time() - c0
                         w1 = client.run(_process_cpu_s)
                         secs = np.array(dsrc.last_seconds)
@@ -213,22 +221,26 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                         task_wait = float(np.sum(dsrc.last_wait_seconds))
                         # the busiest worker bounds the wall time (tasks are handed out as workers free up)
                         tw = np.array(dsrc.last_task_workers)
-                        busy.append((secs.sum(), max(secs[tw == j].sum() for j in range(n_workers)),
-                                     task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu, len(secs)))
+                        busy[n_workers].append((secs.sum(), max(secs[tw == j].sum() for j in range(n_workers)),
+                                                task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu,
+                                                len(secs)))
                         tails[n_workers].append(_tail_idle(dsrc.last_spans, tw, n_workers))
                         rounds[n_workers].append((loc, (secs.sum(), task_cpu, task_wait)))
                         same &= bool(np.array_equal(got[0], ref[0]))
                         max_rel = max(max_rel, float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12)))
-                    k = int(np.argsort(walls)[len(walls) // 2])
-                    runs[n_workers] = (statistics.median(walls), *busy[k])
+                for n_workers in (1, 2):
+                    w = walls[n_workers]
+                    k = int(np.argsort(w)[len(w) // 2])
+                    runs[n_workers] = (statistics.median(w), *busy[n_workers][k])
                     # CPU seconds from the least disturbed pass (fewest task CPU seconds)
-                    cpu_best[n_workers] = min(b[2] for b in busy)
+                    cpu_best[n_workers] = min(b[2] for b in busy[n_workers])
                     print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
-                worker_rss = client.run(_rss_mb)
-                ex.close()
+                worker_rss = clients[2].run(_rss_mb)
             finally:
-                client.close()
-                cluster.close()
+                for c in clients.values():
+                    c.close()
+                for c in clusters.values():
+                    c.close()
         # the caller's fold cost per chunk: add one chunk's sums into an accumulator, as the reduce does
         part = np.zeros_like(ref[4], shape=(K, P.shape[1] + 2) + P.shape[2:])
         acc = np.zeros_like(part)
@@ -266,7 +278,9 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "n_tasks": n_tasks,
         "local_s": local_s, "local_threads": cores.usable_cores(), "local_1thread_s": local_1t,
         "cluster_1worker_s": runs[1][0], "cluster_workers": 2, "cluster_s": cluster_s,
-        "speedup_2_vs_1_worker": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
+        "speedup_2_vs_1_worker": float(statistics.median(a / b for a, b in zip(walls[1], walls[2]))),
+        "speedup_2_vs_1_worker_rounds": [a / b for a, b in zip(walls[1], walls[2])],
+        "speedup_2_vs_1_worker_of_medians": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
         "worker_s_per_object": worker_total / n, "local_1thread_s_per_object": local_1t / n,
         "ratio_worker_local_per_object": paired(2, lambda c, loc: c[0] / loc[0]),
         "ratio_worker_local_per_object_1worker": paired(1, lambda c, loc: c[0] / loc[0]),
