@@ -75,6 +75,14 @@ def test_balanced_map_hands_out_consecutive_runs_covering_every_item_once(dask_e
         dask_exec.map(_scaled_run, [1, 2, -1, 4, 5], shared=1, balanced=True)
 
 
+def test_results_come_straight_from_workers_only_on_loopback(dask_exec):
+    """Loopback: 127.0.0.0/8 (RFC 1122 3.2.1.3) and ::1 (RFC 4291 2.5.3); the module's cluster binds 127.0.0.1."""
+    from protomine.scale.executor import _loopback
+    assert dask_exec.direct and dask_exec.map(_square, [1, 2, 3], shared=1) == [1, 4, 9]
+    assert _loopback("tcp://127.0.0.2:40000") and _loopback("tcp://[::1]:40000") and _loopback("tcp://localhost:1")
+    assert not _loopback("tcp://10.0.0.5:8786") and not _loopback("tls://sched-host:8786")
+
+
 def test_make_executor_from_config_and_flags():
     cfg = load_config(None)
     assert isinstance(make_executor(cfg), InlineExecutor)  # the default runs in this process
