@@ -4,13 +4,19 @@ Conventions: as in :mod:`protomine.mine.engine` (X (N, C, R, A, H), W (N, R, A, 
 P (K, C, R, A, H), V (K, R, A, H)).
 
 Map (a worker, per task: a run of consecutive chunks of objects [i0, i1) or of explicit index lists)
-    A pass has few tasks (``TASKS_PER_WORKER`` per worker, each at most ``MAX_CHUNKS_PER_TASK`` chunks), so
-    scheduling costs per task, not per chunk.  The worker opens the source itself (:class:`StoreSpec`: the
+    A pass has few tasks, so scheduling costs per task, not per chunk.  On a Dask cluster the caller hands
+    each worker runs of consecutive chunks as it frees up (guided self-scheduling,
+    :meth:`protomine.scale.executor.DaskExecutor.map` with ``balanced``: worker j owns the j-th share of the
+    chunks, the same every pass, and takes half of what remains of it each time, e.g. runs of 4, 2, 1, 1
+    chunks of a share of 8; a worker done with its share takes the last chunk of the longest other share),
+    so that a worker slowed by other processes does fewer chunks instead of holding up the pass; other
+    executors get ``TASKS_PER_WORKER`` runs per worker, each at most ``MAX_CHUNKS_PER_TASK`` chunks, which
+    a pool's workers take as they free up.  The worker opens the source itself (:class:`StoreSpec`: the
     object store on a shared file system; :class:`NpySpec`: two ``.npy`` files read by
     :class:`NpyFileSource`), so volumes never cross the network.  It receives the prototypes (P, V, a few
     MB) and builds their pose bank (the K x S scaled spectra, 14x the bytes) itself, once per pass; then, chunk
     by chunk, it transforms the chunk (object spectra, kept in a per-process cache of ``cache_mb`` for the
-    next passes; task i goes to worker i mod n, so the same worker sees the same chunks every pass), finds
+    next passes; a worker's share of the chunks is the same every pass, so it mostly sees the same chunks), finds
     the best pose per (object, prototype), and sums the chunk's members aligned into their prototype's
     frame.  It returns, per chunk, 4 numbers per object (label, yaw, scale, distance) and the chunk's
     aligned sums (K, C + 2, R, A, H) float64 (and, on the last pass, the symmetry moments).

@@ -67,6 +67,25 @@ runs tasks in a thread other than the main one, which glibc's malloc serves from
 zero-filled page by page again: +20-24% CPU per object (194,000 page faults and 0.5 s of system time per
 pass of 8,192 objects), until ``cores.reuse_freed_memory`` set a 64 MB top pad.
 
+What two workers on 2 cores cost beyond one (measured at load 8-10 on the bench machine, 2 cores of an AMD
+EPYC under KVM, 2 MB L2 each, 32 MB shared L3; chunks of 512, K = 16, 5 scales, 1 thread per process):
+- the cores' shared cache and memory: two processes running the same chunks pinned to two cores took 3-7%
+  more CPU per chunk than pinned to one core (time-sharing it), 139-157 vs 135-147 ms (medians, 2 rounds);
+  running the chunk in sub-blocks of 128 or 64 objects (spectra, search and sums of a block while they sit
+  in the cache; results identical to the bit) cost more CPU than the whole chunk on one core or two
+  (151-173 / 176-223 vs 135-169 ms), as did the search alone in row blocks;
+- page faults: glibc 2.36's ``posix_memalign`` (torch aligns every tensor to 64 bytes) cannot reuse a freed
+  block of exactly the size asked for when a small allocation took the bytes after it, so part of a chunk's
+  tensors land on fresh pages: ~2,800 minor faults per chunk of 512 (~3% of its CPU), in one worker as in two;
+- the caller's threads (client, scheduler, folding: 0.12-0.15 s of CPU per pass) and each worker's event
+  loop (~0.05 s) share the 2 cores with the tasks; fetching results straight from the workers
+  (``DaskExecutor.direct`` on a local cluster) saved ~20% of both;
+- a worker that other processes slow holds up the pass when each worker has a fixed share: the end of a
+  pass waited 0.07-0.41 s (median 0.22 s) for the last worker with 2 fixed tasks per worker, ~0.12 s with
+  the runs handed out as workers free up (``tail_idle_s``);
+- no extra threads: each worker process runs 4 threads, torch with 1 intra-op thread in the task thread,
+  which is the same thread for every task.
+
 Each worker process runs torch with one thread (:mod:`protomine.cores`); it builds the pose bank (the
 scaled prototypes' spectra) once per pass, not once per chunk.
 
