@@ -81,8 +81,9 @@ EPYC under KVM, 2 MB L2 each, 32 MB shared L3; chunks of 512, K = 16, 5 scales, 
   loop (~0.05 s) share the 2 cores with the tasks; fetching results straight from the workers
   (``DaskExecutor.direct`` on a local cluster) saved ~20% of both;
 - a worker that other processes slow holds up the pass when each worker has a fixed share: the end of a
-  pass waited 0.07-0.41 s (median 0.22 s) for the last worker with 2 fixed tasks per worker, ~0.12 s with
-  the runs handed out as workers free up (``tail_idle_s``);
+  pass waited 0.07-0.41 s (median 0.22 s, 6 passes) for the last worker with 2 fixed tasks per worker,
+  0.05-0.55 s (median 0.12 s, 3 passes) with the runs handed out as workers free up (``tail_idle_s``; at
+  that load the last chunk's own wait for a core is most of it);
 - no extra threads: each worker process runs 4 threads, torch with 1 intra-op thread in the task thread,
   which is the same thread for every task.
 
