@@ -71,6 +71,7 @@ def test_balanced_map_hands_out_consecutive_runs_covering_every_item_once(dask_e
     assert {j for *_, j in runs} == {0, 1} and len(runs) < len(items)        # both workers, fewer tasks than items
     assert max(b - a for a, b, _ in runs) == 6                                # the first run: half of the larger share (12 items)
     assert dask_exec.map(_scaled_run, items[:1], shared=2, balanced=True) == [[0]]
+    assert dask_exec.map(_scaled_run, [], shared=2, balanced=True) == []
     with pytest.raises(InputError, match="negative item"):
         dask_exec.map(_scaled_run, [1, 2, -1, 4, 5], shared=1, balanced=True)
 
