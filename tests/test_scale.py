@@ -53,6 +53,37 @@ def test_executor_map_keeps_item_order_and_reraises_input_errors(dask_exec):
     assert dask_exec.n_workers == 2
 
 
+def _scaled_run(shared: int, run: list[int]) -> list[int]:
+    if any(i < 0 for i in run):
+        raise InputError("x.csv", "row", f"negative item in {run}")
+    return [shared * i for i in run]
+
+
+def test_balanced_map_hands_out_consecutive_runs_covering_every_item_once(dask_exec):
+    """Guided self-scheduling (Polychronopoulos & Kuck 1987: each request takes a share of what remains): the
+    runs tile the items in order, each item exactly once, folded in item order whatever the completion order."""
+    items = list(range(23))
+    got = dask_exec.map(_scaled_run, items, shared=3, balanced=True, fold=lambda acc, r: (acc or []) + r)
+    assert got == [3 * i for i in items]
+    runs = dask_exec.last_runs
+    assert runs[0][0] == 0 and runs[-1][1] == len(items)
+    assert all(b0 == a1 for (_, b0, _), (a1, _, _) in zip(runs[:-1], runs[1:]))  # consecutive, no overlap
+    assert {j for *_, j in runs} == {0, 1} and len(runs) < len(items)        # both workers, fewer tasks than items
+    assert max(b - a for a, b, _ in runs) == 6                                # the first run: half of the larger share (12 items)
+    assert dask_exec.map(_scaled_run, items[:1], shared=2, balanced=True) == [[0]]
+    assert dask_exec.map(_scaled_run, [], shared=2, balanced=True) == []
+    with pytest.raises(InputError, match="negative item"):
+        dask_exec.map(_scaled_run, [1, 2, -1, 4, 5], shared=1, balanced=True)
+
+
+def test_results_come_straight_from_workers_only_on_loopback(dask_exec):
+    """Loopback: 127.0.0.0/8 (RFC 1122 3.2.1.3) and ::1 (RFC 4291 2.5.3); the module's cluster binds 127.0.0.1."""
+    from protomine.scale.executor import _loopback
+    assert dask_exec.direct and dask_exec.map(_square, [1, 2, 3], shared=1) == [1, 4, 9]
+    assert _loopback("tcp://127.0.0.2:40000") and _loopback("tcp://[::1]:40000") and _loopback("tcp://localhost:1")
+    assert not _loopback("tcp://10.0.0.5:8786") and not _loopback("tls://sched-host:8786")
+
+
 def test_make_executor_from_config_and_flags():
     cfg = load_config(None)
     assert isinstance(make_executor(cfg), InlineExecutor)  # the default runs in this process

@@ -4,13 +4,19 @@ Conventions: as in :mod:`protomine.mine.engine` (X (N, C, R, A, H), W (N, R, A, 
 P (K, C, R, A, H), V (K, R, A, H)).
 
 Map (a worker, per task: a run of consecutive chunks of objects [i0, i1) or of explicit index lists)
-    A pass has few tasks (``TASKS_PER_WORKER`` per worker, each at most ``MAX_CHUNKS_PER_TASK`` chunks), so
-    scheduling costs per task, not per chunk.  The worker opens the source itself (:class:`StoreSpec`: the
+    A pass has few tasks, so scheduling costs per task, not per chunk.  On a Dask cluster the caller hands
+    each worker runs of consecutive chunks as it frees up (guided self-scheduling,
+    :meth:`protomine.scale.executor.DaskExecutor.map` with ``balanced``: worker j owns the j-th share of the
+    chunks, the same every pass, and takes half of what remains of it each time, e.g. runs of 4, 2, 1, 1
+    chunks of a share of 8; a worker done with its share takes the last chunk of the longest other share),
+    so that a worker slowed by other processes does fewer chunks instead of holding up the pass; other
+    executors get ``TASKS_PER_WORKER`` runs per worker, each at most ``MAX_CHUNKS_PER_TASK`` chunks, which
+    a pool's workers take as they free up.  The worker opens the source itself (:class:`StoreSpec`: the
     object store on a shared file system; :class:`NpySpec`: two ``.npy`` files read by
     :class:`NpyFileSource`), so volumes never cross the network.  It receives the prototypes (P, V, a few
     MB) and builds their pose bank (the K x S scaled spectra, 14x the bytes) itself, once per pass; then, chunk
     by chunk, it transforms the chunk (object spectra, kept in a per-process cache of ``cache_mb`` for the
-    next passes; task i goes to worker i mod n, so the same worker sees the same chunks every pass), finds
+    next passes; a worker's share of the chunks is the same every pass, so it mostly sees the same chunks), finds
     the best pose per (object, prototype), and sums the chunk's members aligned into their prototype's
     frame.  It returns, per chunk, 4 numbers per object (label, yaw, scale, distance) and the chunk's
     aligned sums (K, C + 2, R, A, H) float64 (and, on the last pass, the symmetry moments).
@@ -214,16 +220,17 @@ def _bank_key(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]) -> bytes:
     return h.digest()
 
 
-def _chunk_pass(shared: tuple, item: list[tuple]) -> tuple[list[_Part], float, float, float]:
+def _chunk_pass(shared: tuple, item: list[tuple]) -> tuple[list[_Part], float, float, float, tuple[float, float]]:
     """Worker: one task of one assignment pass, a run of consecutive chunks (module docstring).  Returns each
-    chunk's part (the caller folds them in chunk order, as one process sums its chunks) and the task's wall
-    seconds, CPU seconds and seconds waiting for a core (:func:`protomine.cores.thread_clock`)."""
+    chunk's part (the caller folds them in chunk order, as one process sums its chunks), the task's wall
+    seconds, CPU seconds and seconds waiting for a core (:func:`protomine.cores.thread_clock`), and its start
+    and end on the wall clock (``time.time``: a timeline of the pass on a machine whose processes share it)."""
     spec, protos, shape, accumulate, moments, chunk_size, cache_bytes = shared
-    t0, (c0, q0) = time.perf_counter(), thread_clock()
+    t0, (c0, q0), start = time.perf_counter(), thread_clock(), time.time()
     bank = _bank(*protos)
     parts = [_one_chunk(spec, bank, shape, accumulate, moments, chunk_size, cache_bytes, c) for c in item]
     c1, q1 = thread_clock()
-    return parts, time.perf_counter() - t0, c1 - c0, q1 - q0
+    return parts, time.perf_counter() - t0, c1 - c0, q1 - q0, (start, time.time())
 
 
 def _one_chunk(spec, bank: PoseBank, shape: tuple, accumulate: bool, moments: bool, chunk_size: int,
@@ -278,6 +285,7 @@ class _Reduced:
     seconds: list
     cpu_seconds: list
     wait_seconds: list
+    spans: list
     tot: np.ndarray | None
     extra: np.ndarray | None
 
@@ -286,7 +294,7 @@ def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
     """Fold one chunk's part into the reduction (called in chunk order, so sums never depend on which
     worker finished first)."""
     if acc is None:
-        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [], [], [],
+        return _Reduced([p.labels], [p.yaw], [p.scale], [p.dist], [], [], [], [],
                         None if p.tot is None else p.tot.copy(), None if p.extra is None else p.extra.copy())
     for name in ("labels", "yaw", "scale", "dist"):
         getattr(acc, name).append(getattr(p, name))
@@ -297,14 +305,15 @@ def _fold_parts(acc: _Reduced | None, p: _Part) -> _Reduced:
     return acc
 
 
-def _fold_task(acc: _Reduced | None, task: tuple[list[_Part], float, float, float]) -> _Reduced:
+def _fold_task(acc: _Reduced | None, task: tuple[list[_Part], float, float, float, tuple[float, float]]) -> _Reduced:
     """Fold one task's chunk parts in chunk order (tasks arrive in task order), and keep its seconds."""
-    parts, seconds, cpu_seconds, wait_seconds = task
+    parts, seconds, cpu_seconds, wait_seconds, span = task
     for p in parts:
         acc = _fold_parts(acc, p)
     acc.seconds.append(seconds)        # the worker's time for the task (read, transform, match, sums)
     acc.cpu_seconds.append(cpu_seconds)  # the CPU time of the worker thread that ran it (the same work)
     acc.wait_seconds.append(wait_seconds)  # and its time runnable but waiting for a core (other threads')
+    acc.spans.append(span)  # (start, end) on the wall clock
     return acc
 
 
@@ -357,10 +366,17 @@ class ExecutorSource:
         return [(i0, i1, cut(self.indices, i0, i1), cut(forced, i0, i1), cut(window, i0, i1))
                 for i0, i1 in _chunks(len(self), cs)]
 
+    def _balanced(self) -> bool:
+        """Whether passes hand out runs of chunks as the workers free up (a Dask cluster: ``DaskExecutor.map``
+        with ``balanced``) rather than a fixed share per worker (a pool's workers take the next task
+        themselves; one process takes all)."""
+        return getattr(self.executor, "kind", None) == "dask"
+
     def _tasks(self, chunks: list) -> list[list]:
         """The chunks in runs of consecutive ones: ``tasks_per_worker`` runs per worker, more when a run
         would exceed MAX_CHUNKS_PER_TASK chunks (its parts wait on the worker until the task ends), fewer
-        when there are fewer chunks.  Results do not depend on the runs (the caller folds chunk by chunk)."""
+        when there are fewer chunks (a Dask cluster chooses the runs as its workers free up instead:
+        :meth:`_balanced`).  Results do not depend on the runs (the caller folds chunk by chunk)."""
         n = max(self.tasks_per_worker * int(getattr(self.executor, "n_workers", 1)),
                 -(-len(chunks) // MAX_CHUNKS_PER_TASK))
         n = min(len(chunks), max(1, n))
@@ -379,8 +395,16 @@ class ExecutorSource:
         P, V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         shared = (self.spec, (P, V, tuple(scales), _bank_key(P, V, scales)), P.shape, accumulate,
                   moments, cs, int(self.cache_mb * 2**20))
-        red = self.executor.map(_chunk_pass, self._tasks(self._items(chunk_size, forced, scale_index)),
-                                shared=shared, fold=_fold_task)
+        chunks = self._items(chunk_size, forced, scale_index)
+        if self._balanced():  # runs of chunks handed out as the workers free up
+            red = self.executor.map(_chunk_pass, chunks, shared=shared, fold=_fold_task, balanced=True)
+            self.last_task_workers = [j for *_, j in self.executor.last_runs]
+        else:
+            tasks = self._tasks(chunks)
+            red = self.executor.map(_chunk_pass, tasks, shared=shared, fold=_fold_task)
+            nw = max(1, int(getattr(self.executor, "n_workers", 1)))
+            self.last_task_workers = [i % nw for i in range(len(tasks))]  # the worker each task was sent to
+        self.last_spans = red.spans  # each task's (start, end) on the wall clock
         self.last_seconds = red.seconds  # the workers' seconds per task, for the scale benchmark
         self.last_cpu_seconds = red.cpu_seconds  # and their CPU seconds (a shared machine's load aside)
         self.last_wait_seconds = red.wait_seconds  # and their seconds waiting for a core held by other threads

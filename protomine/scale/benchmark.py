@@ -18,15 +18,31 @@ every worker.
 
 - ``local_s``: ``engine._assign_pass`` in this process with every usable core as torch threads (min of 2);
 - ``cluster_1worker_s``, ``cluster_s``: the same pass through :class:`protomine.mine.distributed.ExecutorSource`
-  on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1, then 2 workers, median of 3
-  passes after a warm-up; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores), ``speedup`` = local_s /
-  cluster_s, and the results are checked equal to the in-process pass's (same labels).  The cluster runs
-  with ``DASK_CONFIG_FOR_MINING`` (no statistical profiler in the workers, a 1 s event-loop tick, slower
-  periodic monitors; measured costs beside it);
+  on a ``LocalCluster(threads_per_worker=1)`` bound to 127.0.0.1 with 1 and with 2 workers, both clusters up
+  side by side after a warm-up pass each, their passes alternating in ``ROUNDS`` rounds (a 1-worker pass,
+  then a 2-worker pass), medians; ``speedup_2_vs_1_worker`` (target >= 1.6 on 2 cores): the median over the
+  rounds of the round's 1-worker wall time / its 2-worker wall time (``..._rounds``: each round's; a
+  machine shared with other sessions changes its load over minutes, and a ratio of two passes run seconds
+  apart follows it less than one of two phases run minutes apart, ``..._of_medians``), ``speedup`` =
+  local_s / cluster_s, and the results are checked equal to the in-process pass's (same labels).  The
+  clusters run with ``DASK_CONFIG_FOR_MINING`` (no statistical profiler in the workers, a 1 s event-loop
+  tick, slower periodic monitors; measured costs beside it; the idle cluster costs under 1% of a core);
+- ``speedup_2_vs_1_worker_cpu_model``: what the speedup would be on 2 free cores if the CPU seconds stayed
+  as measured (median over the rounds): a pass lasts at least its busiest worker's task CPU seconds and at
+  least the CPU seconds of everything that ran on the 2 cores (tasks, the caller's threads, the workers' own
+  threads) / 2; for 1 worker its task CPU seconds (the rest runs on the other core).  A CPU-time model that
+  holds whatever the load, not a wall-time measurement: it leaves out the waits between tasks and counts
+  the two workers' cache sharing only as far as they ran at the same time during the bench;
 - ``local_1thread_s``: the in-process pass with 1 torch thread (one core: what a worker has), run just
-  before each cluster pass with the same prototypes (6 passes, min), so that each cluster pass has an
-  in-process twin measured under the same load; every ``ratio_*`` below is the median over the 3 rounds
+  before each cluster pass with the same prototypes (min over all), so that each cluster pass has an
+  in-process twin measured under the same load; every ``ratio_*`` below is the median over the rounds
   of the 2-worker cluster (``..._1worker``: of the 1-worker cluster) of the pass's ratio to its twin;
+- ``tasks_per_worker_2workers`` (each 2-worker pass), ``tail_idle_s`` (median over those passes: how long the
+  first worker to finish waited for the last), ``idle_fraction`` (the share of the two workers' time between
+  the first task's start and the last one's end with no task of theirs running): a pass's runs of chunks are
+  handed out as the workers free up (guided self-scheduling, :meth:`protomine.scale.executor.DaskExecutor.map`
+  with ``balanced``), so a worker slowed by other processes (or by the caller's own threads: client,
+  scheduler, folding, which share the 2 cores) does fewer chunks instead of holding up the pass;
 - ``caller_cpu_s_per_pass`` (2 workers): CPU seconds of this process (client, scheduler, folding) per pass,
   which compete with the workers for the cores of a local cluster; ``worker_overhead_cpu_fraction``: the
   worker processes' CPU beyond the task threads' (Dask's own threads: communication, monitors) / the tasks';
@@ -57,6 +73,26 @@ runs tasks in a thread other than the main one, which glibc's malloc serves from
 zero-filled page by page again: +20-24% CPU per object (194,000 page faults and 0.5 s of system time per
 pass of 8,192 objects), until ``cores.reuse_freed_memory`` set a 64 MB top pad.
 
+What two workers on 2 cores cost beyond one (measured at load 8-10 on the bench machine, 2 cores of an AMD
+EPYC under KVM, 2 MB L2 each, 32 MB shared L3; chunks of 512, K = 16, 5 scales, 1 thread per process):
+- the cores' shared cache and memory: two processes running the same chunks pinned to two cores took 3-7%
+  more CPU per chunk than pinned to one core (time-sharing it), 139-157 vs 135-147 ms (medians, 2 rounds);
+  running the chunk in sub-blocks of 128 or 64 objects (spectra, search and sums of a block while they sit
+  in the cache; results identical to the bit) cost more CPU than the whole chunk on one core or two
+  (151-173 / 176-223 vs 135-169 ms), as did the search alone in row blocks;
+- page faults: glibc 2.36's ``posix_memalign`` (torch aligns every tensor to 64 bytes) cannot reuse a freed
+  block of exactly the size asked for when a small allocation took the bytes after it, so part of a chunk's
+  tensors land on fresh pages: ~2,800 minor faults per chunk of 512 (~3% of its CPU), in one worker as in two;
+- the caller's threads (client, scheduler, folding: 0.12-0.15 s of CPU per pass) and each worker's event
+  loop (~0.05 s) share the 2 cores with the tasks; fetching results straight from the workers
+  (``DaskExecutor.direct`` on a local cluster) saved ~20% of both;
+- a worker that other processes slow holds up the pass when each worker has a fixed share: the end of a
+  pass waited 0.07-0.41 s (median 0.22 s, 6 passes) for the last worker with 2 fixed tasks per worker,
+  0.05-0.55 s (median 0.12 s, 3 passes) with the runs handed out as workers free up (``tail_idle_s``; at
+  that load the last chunk's own wait for a core is most of it);
+- no extra threads: each worker process runs 4 threads, torch with 1 intra-op thread in the task thread,
+  which is the same thread for every task.
+
 Each worker process runs torch with one thread (:mod:`protomine.cores`); it builds the pose bank (the
 scaled prototypes' spectra) once per pass, not once per chunk.
 
@@ -68,7 +104,8 @@ Projection model (one pass, N objects, W workers, chunks of c objects, n = ceil(
   sums) on a core of its own, measured as the workers' CPU seconds for their chunks / N (their wall times,
   ``t_obj_wall_s``, also count the time other processes of a shared machine held the core);
 - ``t_task``: scheduling overhead per task = (cluster wall time - max worker busy time) / (tasks / W) (a task
-  is a run of chunks, ``mine.distributed.TASKS_PER_WORKER`` per worker, at most ``MAX_CHUNKS_PER_TASK`` chunks);
+  is a run of chunks handed out as the workers free up, ``scale.executor.DaskExecutor._map_runs``; the
+  projection counts one task per chunk, an upper bound);
 - ``t_fold``: the caller's seconds to fold one chunk's sums (measured, total reduce time / n);
 - ``b_part``: bytes of one chunk's result (K (C + 2) R A H float64 sums + 16 bytes per object);
 - ``bandwidth``: 1.25e9 B/s (10 Gbit/s Ethernet, common practice for a compute cluster; an assumption, not
@@ -92,6 +129,7 @@ from pathlib import Path
 import numpy as np
 
 BANDWIDTH_BPS = 1.25e9  # 10 Gbit/s Ethernet (common practice; assumed)
+ROUNDS = 5  # rounds of (1-worker pass, 2-worker pass), each pass with its in-process twin just before it
 
 # Dask settings of the bench's cluster (README: the same for a mining cluster).  Measured on 2 cores at load
 # ~5: the statistical profiler (every worker thread's stack sampled each 10 ms) cost 12-17% of the workers'
@@ -124,6 +162,17 @@ def _process_cpu_s() -> float:
     return r.ru_utime + r.ru_stime
 
 
+def _tail_idle(spans: list, workers: np.ndarray, n_workers: int) -> tuple[float, float, list]:
+    """From a pass's task spans (start, end) on the wall clock and the worker of each task: the seconds the
+    first worker to finish waited for the last (idle at the end of the pass), the fraction of the workers'
+    time between the first start and the last end that no task of theirs ran, and the tasks' workers."""
+    sp = np.array(spans, float).reshape(-1, 2)
+    ends = [sp[workers == j, 1].max() for j in range(n_workers) if np.any(workers == j)]
+    span = sp[:, 1].max() - sp[:, 0].min()
+    idle = 1.0 - float(np.sum(sp[:, 1] - sp[:, 0])) / max(n_workers * span, 1e-12)
+    return float(max(ends) - min(ends)), idle, workers.tolist()
+
+
 def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, project_workers: int = 50) -> dict:
     """Measured local vs 2-worker LocalCluster pass times and the projection (module docstring)."""
     import dask
@@ -131,7 +180,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
 
     from .. import cores
     from ..config import load_config
-    from ..mine.distributed import MAX_CHUNKS_PER_TASK, TASKS_PER_WORKER, ExecutorSource, NpySpec
+    from ..mine.distributed import ExecutorSource, NpySpec
     from ..mine.engine import ArraySource, _assign_pass
     from .executor import DaskExecutor
     from .streamed import write_synthetic
@@ -163,22 +212,26 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
             c1, q1 = cores.thread_clock()
             return out, (time.perf_counter() - t0, c1 - c0, q1 - q0)
 
-        # the cluster's config (each nanny passes it on to its worker): DASK_CONFIG_FOR_MINING
+        # the cluster's config (each nanny passes it on to its worker): DASK_CONFIG_FOR_MINING.  A 1-worker and a
+        # 2-worker cluster are up side by side and their passes alternate, round by round, so that both see the
+        # same load (a machine shared with other sessions drifts over minutes)
         with dask.config.set(DASK_CONFIG_FOR_MINING):
-            cluster = LocalCluster(n_workers=1, processes=True, threads_per_worker=1, host="127.0.0.1",
-                                   dashboard_address=None)
-            client = Client(cluster, set_as_default=False)
-            runs, cpu_best, rounds = {}, {}, {}
+            clusters, clients, srcs = {}, {}, {}
+            runs, cpu_best, rounds, tails, walls, busy, bound = {}, {}, {}, {}, {}, {}, {}
             same, max_rel, n_pass = True, 0.0, 0
             try:
                 for n_workers in (1, 2):
-                    if n_workers > 1:
-                        cluster.scale(n_workers)
-                    ex = DaskExecutor(client=client, min_workers=n_workers)
-                    dsrc = ExecutorSource(spec, ex, cache_mb=0.0)
-                    dsrc.assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
-                    walls, busy, rounds[n_workers] = [], [], []
-                    for _ in range(3):
+                    clusters[n_workers] = LocalCluster(n_workers=n_workers, processes=True, threads_per_worker=1,
+                                                       host="127.0.0.1", dashboard_address=None)
+                    clients[n_workers] = Client(clusters[n_workers], set_as_default=False)
+                    ex = DaskExecutor(client=clients[n_workers], min_workers=n_workers)
+                    srcs[n_workers] = ExecutorSource(spec, ex, cache_mb=0.0)
+                    srcs[n_workers].assign_pass(P, V, scales, chunk, True, 0)  # warm-up: imports, first reads
+                    walls[n_workers], busy[n_workers], rounds[n_workers], tails[n_workers] = [], [], [], []
+                    bound[n_workers] = []
+                for _ in range(2 if quick else ROUNDS):
+                    for n_workers in (1, 2):
+                        client, dsrc = clients[n_workers], srcs[n_workers]
                         # new prototypes every pass, as in a Lloyd iteration: each pass builds its pose bank, in
                         # this process and on every worker; the in-process pass runs just before the cluster's
                         n_pass += 1
@@ -187,28 +240,37 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
                         w0 = client.run(_process_cpu_s)
                         t0, c0 = time.perf_counter(), time.process_time()
                         got = dsrc.assign_pass(Pr, V, scales, chunk, True, 0)
-                        walls.append(time.perf_counter() - t0)
+                        walls[n_workers].append(time.perf_counter() - t0)
                         caller_cpu = time.process_time() - c0
                         w1 = client.run(_process_cpu_s)
                         secs = np.array(dsrc.last_seconds)
                         task_cpu = float(np.sum(dsrc.last_cpu_seconds))
                         task_wait = float(np.sum(dsrc.last_wait_seconds))
-                        # task i ran on worker i mod n (preferred); the busiest worker bounds the wall time
-                        busy.append((secs.sum(), max(secs[j::n_workers].sum() for j in range(n_workers)),
-                                     task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu, len(secs)))
+                        # the busiest worker bounds the wall time (tasks are handed out as workers free up)
+                        tw = np.array(dsrc.last_task_workers)
+                        busy[n_workers].append((secs.sum(), max(secs[tw == j].sum() for j in range(n_workers)),
+                                                task_cpu, caller_cpu, sum(w1[a] - w0[a] for a in w0) - task_cpu,
+                                                len(secs)))
+                        tails[n_workers].append(_tail_idle(dsrc.last_spans, tw, n_workers))
+                        tcpu = np.array(dsrc.last_cpu_seconds)
+                        bound[n_workers].append(max(max(tcpu[tw == j].sum() for j in range(n_workers)),
+                                                    (task_cpu + caller_cpu + busy[n_workers][-1][4]) / n_workers))
                         rounds[n_workers].append((loc, (secs.sum(), task_cpu, task_wait)))
                         same &= bool(np.array_equal(got[0], ref[0]))
                         max_rel = max(max_rel, float(np.max(np.abs(got[4] - ref[4])) / max(np.max(np.abs(ref[4])), 1e-12)))
-                    k = int(np.argsort(walls)[len(walls) // 2])
-                    runs[n_workers] = (statistics.median(walls), *busy[k])
+                for n_workers in (1, 2):
+                    w = walls[n_workers]
+                    k = int(np.argsort(w)[len(w) // 2])
+                    runs[n_workers] = (statistics.median(w), *busy[n_workers][k])
                     # CPU seconds from the least disturbed pass (fewest task CPU seconds)
-                    cpu_best[n_workers] = min(b[2] for b in busy)
+                    cpu_best[n_workers] = min(b[2] for b in busy[n_workers])
                     print(f"[bench] {n_workers}-worker pass: {runs[n_workers][0]:.2f} s", file=sys.stderr, flush=True)
-                worker_rss = client.run(_rss_mb)
-                ex.close()
+                worker_rss = clients[2].run(_rss_mb)
             finally:
-                client.close()
-                cluster.close()
+                for c in clients.values():
+                    c.close()
+                for c in clusters.values():
+                    c.close()
         # the caller's fold cost per chunk: add one chunk's sums into an accumulator, as the reduce does
         part = np.zeros_like(ref[4], shape=(K, P.shape[1] + 2) + P.shape[2:])
         acc = np.zeros_like(part)
@@ -234,7 +296,7 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
     proj_chunk = int(load_config(None)["mine"]["chunk_size"])
     N, Wk = project_objects, project_workers
     nc = math.ceil(N / proj_chunk)
-    n_proj_tasks = min(nc, max(TASKS_PER_WORKER * Wk, math.ceil(nc / MAX_CHUNKS_PER_TASK)))
+    n_proj_tasks = nc  # a Dask cluster runs one chunk per task (mine.distributed.ExecutorSource._tasks)
     b_proj = part.nbytes + 16 * proj_chunk
     terms = {"compute_s": t_obj * N / Wk, "scheduling_s": t_task * n_proj_tasks / Wk, "fold_s": fold_s * nc,
              "transfer_s": b_proj * nc / BANDWIDTH_BPS}
@@ -246,7 +308,10 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "n_tasks": n_tasks,
         "local_s": local_s, "local_threads": cores.usable_cores(), "local_1thread_s": local_1t,
         "cluster_1worker_s": runs[1][0], "cluster_workers": 2, "cluster_s": cluster_s,
-        "speedup_2_vs_1_worker": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
+        "speedup_2_vs_1_worker": float(statistics.median(a / b for a, b in zip(walls[1], walls[2]))),
+        "speedup_2_vs_1_worker_rounds": [a / b for a, b in zip(walls[1], walls[2])],
+        "speedup_2_vs_1_worker_of_medians": runs[1][0] / cluster_s, "speedup": local_s / cluster_s,
+        "speedup_2_vs_1_worker_cpu_model": float(statistics.median(a / b for a, b in zip(bound[1], bound[2]))),
         "worker_s_per_object": worker_total / n, "local_1thread_s_per_object": local_1t / n,
         "ratio_worker_local_per_object": paired(2, lambda c, loc: c[0] / loc[0]),
         "ratio_worker_local_per_object_1worker": paired(1, lambda c, loc: c[0] / loc[0]),
@@ -260,6 +325,9 @@ def bench_scale(quick: bool, seed: int, *, project_objects: int = 1_000_000, pro
         "ratio_worker_local_cpu_per_object_1worker": paired(1, lambda c, loc: c[1] / loc[1]),
         "caller_cpu_s_per_pass": caller_cpu, "caller_cpu_s_per_pass_1worker": runs[1][4],
         "worker_overhead_cpu_fraction": overhead_cpu / max(runs[2][3], 1e-9),
+        "tasks_per_worker_2workers": [[int(np.sum(np.array(t[2]) == j)) for j in range(2)] for t in tails[2]],
+        "tail_idle_s": float(statistics.median(t[0] for t in tails[2])),
+        "idle_fraction": float(statistics.median(t[1] for t in tails[2])),
         "local_objects_per_s": n / local_s, "cluster_objects_per_s": n / cluster_s,
         "cluster_equal_labels": same, "cluster_max_rel_sum_diff": max_rel,
         "worker_rss_mb_after": float(max(worker_rss.values())), "caller_peak_rss_mb": _peak_rss_mb(),

@@ -116,6 +116,9 @@ class PoolExecutor:
         return f"a pool of {self.n_workers} processes"
 
 
+BALANCED_DEPTH = 2  # runs in flight per worker in DaskExecutor.map(balanced=True): one running, one queued
+
+
 class DaskExecutor:
     """A ``dask.distributed`` cluster: ``DaskExecutor(address="tcp://host:8786")`` or ``DaskExecutor(client=c)``.
 
@@ -142,6 +145,13 @@ class DaskExecutor:
             self.close()
             raise InputError(None, "--workers", f"fewer than {min_workers} workers joined the scheduler at "
                              f"{client.scheduler.address} within {timeout:.0f} s ({e})") from None
+        # results fetched straight from the workers when they all listen on this machine's loopback (a local
+        # cluster: they are surely reachable), else through the scheduler (Dask's default for a client outside
+        # the cluster, whose workers it may not reach).  Measured on a 2-worker local cluster, 8,192 objects,
+        # chunks of 512 (16 chunk results of 3.1 MB per pass), median of 4 alternating passes at load 8-10: the
+        # caller's CPU per pass 0.152 -> 0.121 s and the workers' CPU beside their tasks 0.134 -> 0.106 s, CPU
+        # that the workers of a local cluster otherwise lose on the same cores
+        self.direct = all(_loopback(a) for a in self.workers)
 
     @property
     def workers(self) -> list[str]:
@@ -151,17 +161,108 @@ class DaskExecutor:
     def n_workers(self) -> int:
         return len(self.workers)
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
+    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None,
+            balanced: bool = False) -> Any:
+        """``fn(shared, item)`` for every item, results in item order (or folded in item order); every item
+        submitted at once, item i to worker i mod n.
+
+        ``balanced``: ``fn(shared, items[a:b])`` for runs of consecutive items handed out as the workers free
+        up (:meth:`_map_runs`), one result per run, in run order; the runs depend on the workers' speeds, so
+        ``fn`` and ``fold`` must give the same result whatever the runs (e.g. per-item results in a list).
+        """
         workers = self.workers
         shared_f = self.client.scatter([shared], broadcast=True, hash=False)[0]
+        if balanced:
+            try:
+                return self._map_runs(fn, items, shared_f, fold, workers)
+            finally:
+                del shared_f
+        self.last_runs = [(i, i + 1, i % len(workers)) for i in range(len(items))]
         futs = [self.client.submit(_call_in_worker, fn, shared_f, it, workers=[workers[i % len(workers)]],
                                    allow_other_workers=True, pure=False) for i, it in enumerate(items)]
         try:
             # taken in submission order; a result is released on the worker once fetched
-            return _collect(_in_order(futs, lambda f: f.result()), fold)
+            return _collect(_in_order(futs, self._result), fold)
         finally:
             futs.clear()  # dropping a Future releases its result on the cluster
             del shared_f
+
+    def _result(self, fut) -> Any:
+        """A future's result, fetched straight from the worker that holds it when ``direct``."""
+        if self.direct:
+            return self.client.gather(fut, direct=True)
+        return fut.result()
+
+    def _map_runs(self, fn: Callable, items: Sequence, shared_f, fold: Callable | None, workers: list[str]) -> Any:
+        """Guided self-scheduling from the caller.  Worker j owns the j-th share of consecutive items (the same
+        share on every call with the same items, so per-worker caches keep serving it).  Each time it needs
+        work it gets the first half of what remains of its share (at least one item), so its runs shrink
+        towards the end of the pass (e.g. 4, 2, 1, 1 items of a share of 8): few tasks, hence little
+        scheduling, yet the last ones are short.  It keeps ``BALANCED_DEPTH`` runs in flight while its share
+        keeps an item after it, so it rarely waits for the caller between runs; a worker whose share is done
+        takes the last item of the longest remaining share, so no worker idles while another still has
+        items that no worker has started.  Results are folded in run order as soon as the runs before them are in.
+        ``last_runs``: (first item, end, worker index into the sorted workers) of every run, in item order."""
+        from collections import deque
+
+        from distributed import as_completed
+        n, nw = len(items), len(workers)
+        shares = [deque(range(j * n // nw, (j + 1) * n // nw)) for j in range(nw)]
+        inflight = [0] * nw
+        sent: dict[str, tuple[int, int, int, Any]] = {}  # future key -> (worker, first item, end, future)
+        runs: list[tuple[int, int, int]] = []
+        pending = as_completed(loop=self.client.loop)
+
+        def submit(j: int) -> bool:
+            own = shares[j]
+            if own:
+                take = [own.popleft() for _ in range(-(-len(own) // 2))]
+            else:
+                other = max(shares, key=len)
+                if not other:
+                    return False
+                take = [other.pop()]  # the end of the longest share: its owner would reach it last
+            a, b = take[0], take[-1] + 1
+            fut = self.client.submit(_call_in_worker, fn, shared_f, list(items[a:b]), workers=[workers[j]],
+                                     allow_other_workers=True, pure=False)
+            sent[fut.key] = (j, a, b, fut)
+            inflight[j] += 1
+            runs.append((a, b, j))
+            pending.add(fut)
+            return True
+
+        def top_up(j: int) -> None:
+            # a run queued behind the running one only while the share keeps an item after it: the share's last
+            # item waits in the caller, where an idle worker can still take it
+            while (inflight[j] == 0 or (inflight[j] < BALANCED_DEPTH and len(shares[j]) >= 2)) and submit(j):
+                pass
+
+        results: dict[int, tuple[int, Any]] = {}  # first item -> (end, result)
+        out, acc, nxt = [], None, 0
+        try:
+            for j in range(nw):  # every worker's first run first, then the others
+                submit(j)
+            for j in range(nw):
+                top_up(j)
+            for fut in pending:
+                j, a, b, _f = sent.pop(fut.key)
+                inflight[j] -= 1
+                results[a] = (b, _check(self._result(fut)))
+                fut.release()
+                top_up(j)
+                while nxt in results:
+                    b, r = results.pop(nxt)
+                    if fold is None:
+                        out.append(r)
+                    else:
+                        acc = fold(acc, r)
+                    nxt = b
+        finally:
+            if sent:  # a run failed: the others are not needed
+                self.client.cancel([f for *_, f in sent.values()])
+                sent.clear()
+        self.last_runs = sorted(runs)
+        return out if fold is None else acc
 
     def close(self) -> None:
         if self._own:
@@ -172,6 +273,20 @@ class DaskExecutor:
 
 
 Executor = InlineExecutor | PoolExecutor | DaskExecutor
+
+
+def _loopback(address: str) -> bool:
+    """Whether a Dask address (``tcp://127.0.0.1:40000``, ``tcp://[::1]:40000``, ``inproc://...``) is on this
+    machine's loopback."""
+    import ipaddress
+    from urllib.parse import urlsplit
+    u = urlsplit(address)
+    if u.scheme == "inproc":
+        return True
+    try:
+        return ipaddress.ip_address(u.hostname or "").is_loopback
+    except ValueError:
+        return u.hostname == "localhost"
 
 
 def _in_order(futs: list, get: Callable) -> Iterator:
