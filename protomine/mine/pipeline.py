@@ -168,16 +168,8 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
     if search is not None:
         yield from _loo_searched(store, cfg, P, V, labels, scales, objs, bank, search)
         return
-    from .engine import align_to_prototype
-    m = cfg["mine"]
-    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
-    K = P.shape[0]
-    n = np.bincount(labels, minlength=K)
-    for i0 in range(0, len(objs), 256):
-        chunk = objs[i0:i0 + 256]
-        xo, wo = feats(store.read_volume_at(chunk))
-        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
-        xs, ws = feats(store.read_single_views(rows_all))
+    n = np.bincount(labels, minlength=P.shape[0])
+    for chunk, xo, wo, rows_all, xs, ws in _calibration_chunks(store, cfg, objs):
         for j, obj in enumerate(chunk):
             k = int(labels[obj])
             P1, V1 = P[k:k + 1], V[k:k + 1]
@@ -185,33 +177,47 @@ def _loo_single_views(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarra
             if not upright:
                 Pc, Vc = bank.copy_at(k, up[obj])
                 P1, V1 = Pc[None], Vc[None]
-            Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
-            if n[k] > 1:
-                pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
-                xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
-                den = n[k] * Vk - wa
-                ok = den > 1e-6
-                # (1, C, R, A, H): the weighted sum without the object, over the weight left
-                Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
-                Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+            Pk, Vk = _without_object(xo[j:j + 1], wo[j:j + 1], P1, V1, int(n[k]), scales)
             sel = np.flatnonzero(store.single_object[rows_all] == obj)
-            yield k, rows_all[sel], xs[sel], ws[sel], Pk.astype(np.float32), Vk.astype(np.float32), upright
+            yield k, rows_all[sel], xs[sel], ws[sel], Pk, Vk, upright
+
+
+def _calibration_chunks(store: ObjectStore, cfg: dict, objs: np.ndarray, size: int = 256):
+    """Yield (chunk, xo, wo, rows, xs, ws) per run of ``size`` calibration objects: their fused volumes' matching
+    features, their single views' store rows and those views' features."""
+    m = cfg["mine"]
+    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
+    for i0 in range(0, len(objs), size):
+        chunk = objs[i0:i0 + size]
+        xo, wo = feats(store.read_volume_at(chunk))
+        rows = np.flatnonzero(np.isin(store.single_object, chunk))
+        xs, ws = feats(store.read_single_views(rows))
+        yield chunk, xo, wo, rows, xs, ws
+
+
+def _without_object(xo: np.ndarray, wo: np.ndarray, P1: np.ndarray, V1: np.ndarray, n: int,
+                    scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray]:
+    """The prototype P1 (1, C, R, A, H), V1 (1, R, A, H) of n members rebuilt without one of them, xo (1, C, R,
+    A, H), wo (1, R, A, H) (aligned to it by the pose search first), as float32; unchanged when n is 1."""
+    from .engine import align_to_prototype
+    Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
+    if n > 1:
+        pm = pose_distances(xo, wo, P1, V1, scales=scales)
+        xa, wa = align_to_prototype(xo, wo, pm.yaw_deg[:, 0], pm.scale[:, 0])
+        den = n * Vk - wa
+        ok = den > 1e-6
+        # (1, C, R, A, H): the weighted sum without the object, over the weight left
+        Pk = np.where(ok[:, None], (n * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
+        Vk = np.where(ok, den, 0.0) / (n - 1)
+    return Pk.astype(np.float32), Vk.astype(np.float32)
 
 
 def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
                   scales: tuple[float, ...], objs: np.ndarray, bank: TiltBank | None, search):
     """:func:`_loo_single_views` with each view's face from ``search``: the object's views grouped by the
     direction the search found, each group against the prototype rebuilt without the object on that face."""
-    from .engine import align_to_prototype
-    m = cfg["mine"]
-    feats = lambda vols: matching_features(vols, free_weight=m["free_weight"], colour_weight=m["colour_weight"])  # noqa: E731
-    K = P.shape[0]
-    n = np.bincount(labels, minlength=K)
-    for i0 in range(0, len(objs), 256):
-        chunk = objs[i0:i0 + 256]
-        xo, wo = feats(store.read_volume_at(chunk))
-        rows_all = np.flatnonzero(np.isin(store.single_object, chunk))
-        xs, ws = feats(store.read_single_views(rows_all))
+    n = np.bincount(labels, minlength=P.shape[0])
+    for chunk, xo, wo, rows_all, xs, ws in _calibration_chunks(store, cfg, objs):
         # every view of the chunk searched against its own prototype, one call per prototype
         view_k = labels[store.single_object[rows_all]]
         ups_all, upr_all = np.zeros((len(rows_all), 3)), np.ones(len(rows_all), bool)
@@ -228,16 +234,9 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
             for g, u in enumerate(dirs):
                 upright = bool(bank is None or u[2] >= np.cos(np.deg2rad(IDENTITY_DEG)))
                 P1, V1 = (P[k:k + 1], V[k:k + 1]) if upright else (a[None] for a in bank.copy_at(k, u))
-                Pk, Vk = P1.astype(np.float64), V1.astype(np.float64)
-                if n[k] > 1:
-                    pm = pose_distances(xo[j:j + 1], wo[j:j + 1], P1, V1, scales=scales)
-                    xa, wa = align_to_prototype(xo[j:j + 1], wo[j:j + 1], pm.yaw_deg[:, 0], pm.scale[:, 0])
-                    den = n[k] * Vk - wa
-                    ok = den > 1e-6
-                    Pk = np.where(ok[:, None], (n[k] * Vk[:, None] * Pk - wa[:, None] * xa) / np.where(ok, den, 1.0)[:, None], 0.0)
-                    Vk = np.where(ok, den, 0.0) / (n[k] - 1)
+                Pk, Vk = _without_object(xo[j:j + 1], wo[j:j + 1], P1, V1, int(n[k]), scales)
                 gs = sel[np.asarray(inv).reshape(-1) == g]
-                yield k, rows_all[gs], xs[gs], ws[gs], Pk.astype(np.float32), Vk.astype(np.float32), upright
+                yield k, rows_all[gs], xs[gs], ws[gs], Pk, Vk, upright
 
 
 def score_rings(cfg: dict, radial_bins: int) -> tuple[int, float] | None:
