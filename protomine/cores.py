@@ -91,7 +91,7 @@ def thread_clock() -> tuple[float, float]:
 
 
 # glibc mallopt parameters (malloc.h)
-_M_TRIM_THRESHOLD, _M_TOP_PAD, _M_MMAP_THRESHOLD = -1, -2, -3
+_M_TRIM_THRESHOLD, _M_TOP_PAD, _M_MMAP_THRESHOLD, _M_ARENA_MAX = -1, -2, -3, -8
 
 
 def reuse_freed_memory(mmap_threshold: int = 64 * 2**20, trim_threshold: int = 256 * 2**20,
@@ -126,5 +126,15 @@ def reuse_freed_memory(mmap_threshold: int = 64 * 2**20, trim_threshold: int = 2
         libc = ctypes.CDLL("libc.so.6")
         return (bool(libc.mallopt(_M_MMAP_THRESHOLD, mmap_threshold)) and bool(libc.mallopt(_M_TRIM_THRESHOLD, trim_threshold))
                 and bool(libc.mallopt(_M_TOP_PAD, top_pad)))
+    except (OSError, AttributeError):
+        return False
+
+
+def one_malloc_arena() -> bool:
+    """glibc's ``mallopt(M_ARENA_MAX, 1)``: threads started later share the main arena, so memory one thread
+    frees serves the others (the same as ``MALLOC_ARENA_MAX=1`` in the environment; the tilt search's thread
+    pool, ``mine.posesearch._spectra_pool``).  False where not glibc."""
+    try:
+        return bool(ctypes.CDLL("libc.so.6").mallopt(_M_ARENA_MAX, 1))
     except (OSError, AttributeError):
         return False

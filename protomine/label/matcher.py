@@ -203,11 +203,9 @@ class Matcher:
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
-    bank: PoseBank | TiltBank = field(init=False)
-    face_bank: ExactFaces | None = field(init=False)
+    search: ViewSearch = field(init=False)
     groups: list[np.ndarray] = field(init=False)
     tilts: TiltGrid = field(init=False)
-    refiner: PoseRefiner | None = field(init=False)
 
     def __post_init__(self) -> None:
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
@@ -217,7 +215,6 @@ class Matcher:
         pr = self.library.prototypes
         self.search = ViewSearch(self.P, self.V, pr["aspect"], self.scales, self.tilts, pr["face_up"], pr["face_symmetry"],
                                  exact_faces=self.exact_faces, refine_top=self.refine_top, chunk_size=self.chunk_size)
-        self.bank, self.face_bank, self.refiner = self.search.bank, self.search.face_bank, self.search.refiner
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
 
     @property
@@ -236,8 +233,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
-                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int), "upright": z.astype(bool),
-                    "up": np.zeros((0, self.K, 3)), "yaw_raw": z}
+                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
         # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
@@ -249,9 +245,9 @@ class Matcher:
         if lam is not None or again:
             Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale, tolerant=self.tolerant,
                                                       rings=self.rings), D)
-        if again and isinstance(self.bank, TiltBank):  # other faces: the same distance against the copy
+        if again and isinstance(self.search.bank, TiltBank):  # other faces: the same distance against the copy
             tilted = ~upright & np.isfinite(D)
-            Dr = np.where(tilted, tilted_distances(self.bank, X, W, up, raw, fit_scale, tilted, tolerant=self.tolerant,
+            Dr = np.where(tilted, tilted_distances(self.search.bank, X, W, up, raw, fit_scale, tilted, tolerant=self.tolerant,
                                                    rings=self.rings), Dr)
         S = self.library.score(Dr, np.arange(self.K)[None, :], single_view=True, upright=upright)
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
@@ -262,7 +258,7 @@ class Matcher:
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
-                "rotation": rotation, "best": best, "upright": upright, "up": up, "yaw_raw": raw}
+                "rotation": rotation, "best": best}
 
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:

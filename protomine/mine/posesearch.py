@@ -261,16 +261,6 @@ SPECTRA_BLOCK_BYTES = 1 << 21  # the object factors of one block of a chunk (sta
 SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
 
 
-def _one_arena() -> bool:
-    """glibc's ``mallopt(M_ARENA_MAX, 1)``: threads started later share the main arena, so memory one thread
-    frees serves the others (the same as ``MALLOC_ARENA_MAX=1`` in the environment).  False where not glibc."""
-    import ctypes
-    try:
-        return bool(ctypes.CDLL("libc.so.6").mallopt(-8, 1))  # M_ARENA_MAX (malloc.h)
-    except (OSError, AttributeError):
-        return False
-
-
 @functools.lru_cache(maxsize=4)
 def _spectra_pool(threads: int) -> ThreadPoolExecutor:
     """``threads`` Python threads whose torch ops run on one thread each, for :func:`_object_spectra`.
@@ -280,11 +270,12 @@ def _spectra_pool(threads: int) -> ThreadPoolExecutor:
     the pool's threads are all started here (a barrier holds each until all have set theirs) and the caller's
     count is set back afterwards (which leaves the caller's own ops as they were).
 
-    Threads started from here on allocate from the main malloc arena (:func:`_one_arena`): the tilt search runs
+    Threads started from here on allocate from the main malloc arena (``cores.one_malloc_arena``): the tilt search runs
     blocks of tens of megabytes on these threads, and each thread's own arena would keep its largest blocks for
     good (``cores.reuse_freed_memory``'s top pad), on top of the main arena's (measured on 500 tumbled objects,
     K = 16: peak RSS 1.57 GB with an arena per thread, 1.30 GB with one, same time)."""
-    _one_arena()
+    from ..cores import one_malloc_arena
+    one_malloc_arena()
     pool = ThreadPoolExecutor(threads, thread_name_prefix="spectra")
     barrier = threading.Barrier(threads)
 
@@ -601,16 +592,46 @@ class PoseBank:
     the K * S scaled prototypes.
     """
 
-    def __init__(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]):
+    def __init__(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], run=None):
+        """``run(fn, items)``, when given, builds the bank a scale and a block of 64 scaled prototypes at a time
+        (the same arithmetic; the tilt search spreads them over threads, ``tilts._pooled``)."""
         K, C, R, A, H = P.shape
         self.K, self.C, self.A, self.scales = K, C, A, scales
-        Ps, Vs = scale_prototypes(P, V, scales)
         S = len(scales)
         self.dft = _dft_matrix(A)
+        if run is not None:
+            self.factors = self._blocked_factors(P, V, run)
+            return
+        Ps, Vs = scale_prototypes(P, V, scales)
         # scale-major order (index s K + k), so that a window of neighbouring scales is a column slice
         self.factors = _prototype_spectra(torch.from_numpy(np.ascontiguousarray(Ps.swapaxes(0, 1)).reshape(S * K, C, R, A, H)),
                                           torch.from_numpy(np.ascontiguousarray(Vs.swapaxes(0, 1)).reshape(S * K, R, A, H)),
                                           self.dft)
+
+    def _blocked_factors(self, P: np.ndarray, V: np.ndarray, run) -> tuple[torch.Tensor, torch.Tensor]:
+        """The bank's factors built a scale (``scale_prototypes``) and a block of 64 scaled prototypes
+        (``_prototype_spectra``) per item of ``run``; scale-major order as in ``__init__``."""
+        K, C, R, A, H = P.shape
+        S = len(self.scales)
+        Ps = np.empty((S, K, C, R, A, H), np.float32)
+        Vs = np.empty((S, K, R, A, H), np.float32)
+
+        def scale(si: int) -> None:
+            p, v = scale_prototypes(P, V, (self.scales[si],))
+            Ps[si], Vs[si] = p[:, 0], v[:, 0]
+
+        run(scale, range(S))
+        Ps, Vs = torch.from_numpy(Ps.reshape(S * K, C, R, A, H)), torch.from_numpy(Vs.reshape(S * K, R, A, H))
+        rows = self.dft.shape[0]
+        pn = torch.empty((rows, S * K, (C + 2) * R * H), dtype=torch.float32)
+        pd = torch.empty((rows, S * K, R * H), dtype=torch.float32)
+
+        def spectra(m0: int) -> None:
+            bn, bd = _prototype_spectra(Ps[m0:m0 + 64], Vs[m0:m0 + 64], self.dft)
+            pn[:, m0:m0 + 64], pd[:, m0:m0 + 64] = bn, bd
+
+        run(spectra, range(0, S * K, 64))
+        return pn, pd
 
     def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
         """Object spectra (A, n, (C + 2) R H) of x (n, C, R, A, H), w (n, R, A, H), reusable by callers."""

@@ -65,8 +65,7 @@ from .. import rotations as rot
 from scipy.spatial import ConvexHull, QhullError
 
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import (PoseBank, PoseMatch, _dft_matrix, _distances_from_spectra, _first_min, _prepare,
-                         _prototype_spectra, _refined_yaw, _spectra_pool, scale_prototypes)
+from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw, _spectra_pool
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
 OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
@@ -396,36 +395,6 @@ SPLIT_WASTE = 1.5      # a refinement group runs one product per previous direct
 SPLIT_OVERHEAD = 200   # exceeds SPLIT_WASTE x the candidates' own plus this many (object, copy) pairs per product
 
 
-def _pooled_bank(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]) -> PoseBank:
-    """``PoseBank(P, V, scales)`` built with its scales and its blocks of 64 prototypes spread over the threads
-    (:func:`_pooled`): the same arithmetic, each scale by ``posesearch.scale_prototypes`` and each block by
-    ``posesearch._prototype_spectra``, on one thread each."""
-    K, C, R, A, H = P.shape
-    S = len(scales)
-    bank = object.__new__(PoseBank)
-    bank.K, bank.C, bank.A, bank.scales, bank.dft = K, C, A, scales, _dft_matrix(A)
-    Ps = np.empty((S, K, C, R, A, H), np.float32)
-    Vs = np.empty((S, K, R, A, H), np.float32)
-
-    def scale(si: int) -> None:
-        p, v = scale_prototypes(P, V, (scales[si],))
-        Ps[si], Vs[si] = p[:, 0], v[:, 0]
-
-    _pooled(scale, range(S))
-    Ps, Vs = torch.from_numpy(Ps.reshape(S * K, C, R, A, H)), torch.from_numpy(Vs.reshape(S * K, R, A, H))
-    rows = bank.dft.shape[0]
-    pn = torch.empty((rows, S * K, (C + 2) * R * H), dtype=torch.float32)
-    pd = torch.empty((rows, S * K, R * H), dtype=torch.float32)
-
-    def spectra(m0: int) -> None:
-        bn, bd = _prototype_spectra(Ps[m0:m0 + 64], Vs[m0:m0 + 64], bank.dft)
-        pn[:, m0:m0 + 64], pd[:, m0:m0 + 64] = bn, bd
-
-    _pooled(spectra, range(0, S * K, 64))
-    bank.factors = (pn, pd)
-    return bank
-
-
 class TiltBank:
     """Prototypes P (K, C, R, A, H), V (K, R, A, H) with aspects (K,), searched over tilts x yaw x scale.
 
@@ -453,7 +422,7 @@ class TiltBank:
         lvl0 = grid.level(0)
         Pc, Vc = self.copies(np.repeat(np.arange(self.K), len(lvl0)), np.tile(lvl0, self.K))
         self.T0 = len(lvl0)
-        self.coarse = _pooled_bank(Pc, Vc, scales)
+        self.coarse = PoseBank(Pc, Vc, scales, run=_pooled)  # its blocks spread over the threads
         self.dft = self.coarse.dft
 
     def _geometries(self, pairs: Sequence[tuple[int, int]]) -> None:
