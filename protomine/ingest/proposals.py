@@ -64,6 +64,7 @@ class FrameData:
     points: np.ndarray        # (M, 3) world points of every valid pixel
     pixels: np.ndarray        # (M,) flat pixel indices
     steady: np.ndarray        # (M,) bool: not a flying pixel (see flying_pixels); only these may join objects
+    flying: np.ndarray | None = None  # (H, W) bool: flying_pixels(depth), for lifting (once a frame, not an object)
 
 
 @dataclass
@@ -88,7 +89,7 @@ class SceneObjects:
         out = []
         for fd in self.frames:
             if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
-                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id]))
+                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying))
         return out
 
 
@@ -107,8 +108,9 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
             raise InputError(cap.frame_file("rgb", fr.id), "size", f"expected {depth.shape[::-1]} like the depth image, got {rgb.shape[1::-1]}")
         mask = cap.mask(fr.id)
         pc, idx = depth_to_points(depth, K)
-        steady = ~flying_pixels(depth).reshape(-1)[idx]
-        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx, steady))
+        flying = flying_pixels(depth)
+        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx,
+                             ~flying.reshape(-1)[idx], flying))
         detail(progress, f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
     for fd, bad in zip(out, free_space_violations(out, K)):
         fd.steady &= ~bad

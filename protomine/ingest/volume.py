@@ -67,12 +67,15 @@ class View:
 
     depth (H, W) metres (0 = no reading); rgb (H, W, 3) uint8; K (3, 3); cam_to_world (4, 4);
     pixels: flat indices (M,) into (H, W) of the pixels that belong to the object.
+    flying: (H, W) bool ``depthedges.flying_pixels(depth)`` when the caller has it (a frame's, computed once for
+    all its objects); None: lifting tests the pixels it reads (``depthedges.steady_depth_at``, the same flags).
     """
     depth: np.ndarray
     rgb: np.ndarray
     K: np.ndarray
     cam_to_world: np.ndarray
     pixels: np.ndarray
+    flying: np.ndarray | None = None
 
 
 @dataclass
@@ -177,8 +180,12 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         r = np.rint(uv[:, 1]).astype(np.intp)
         inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
         d = np.zeros(n_cells)
-        # depth at the cells' pixels, flying pixels read as 0 (tested at those pixels only)
-        d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
+        # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
+        if v.flying is None:
+            d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
+        else:
+            at = r[inside] * w + u[inside]
+            d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
         if grid.carve_to_plane:
