@@ -30,6 +30,7 @@ volume is partial (observed = 0 where unseen).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -105,6 +106,15 @@ def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarr
     return local @ basis + frame.origin
 
 
+@lru_cache(maxsize=64)
+def _basis(up: bytes) -> np.ndarray:
+    """``plane_basis`` of the up vector (3,) float64 given by its bytes, read-only: the objects of a capture
+    share their plane's up, and the basis costs more than a thousand of their cells' arithmetic."""
+    b = plane_basis(np.frombuffer(up, np.float64))
+    b.setflags(write=False)
+    return b
+
+
 def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.ndarray,
            basis: np.ndarray | None = None) -> np.ndarray:
     """Trilinear splat of values (M, V) at world points (M, 3) into (V+1, R, A, H): weight, weighted values.
@@ -164,7 +174,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    basis = plane_basis(frame.up)                     # once per object: the centres and the splat share it
+    basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
     centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
     cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
     margin = grid.carve_margin_cells * cell
