@@ -327,9 +327,11 @@ def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0
     return ObjectFrame(origin=origin, up=up, radius=max(radius, 1e-3), height=height), centre
 
 
-def outlier_sigma(cfg: dict) -> float:
-    """``[ingest] footprint_outlier_sigma`` (0, the filter off, for a config recorded before the key existed)."""
-    return float(cfg["ingest"].get("footprint_outlier_sigma", 0.0))
+def outlier_sigma(cfg: dict, n_frames: int) -> float:
+    """``[ingest] footprint_outlier_sigma`` for a point set fused from ``n_frames`` frames: 0 (the filter off) for
+    a single frame, where a thin part is a strip of pixels a few wide whose neighbour distances exceed a surface
+    patch's and the test would cut it, and for a config recorded before the key existed."""
+    return float(cfg["ingest"].get("footprint_outlier_sigma", 0.0)) if n_frames > 1 else 0.0
 
 
 def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
@@ -349,7 +351,7 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
         pts = np.concatenate(pts_id[oid])
         if len(pts) < 10:
             continue
-        fr, centre = object_frame(pts, plane, outlier_sigma(cfg))
+        fr, centre = object_frame(pts, plane, outlier_sigma(cfg, len(per_id[oid])))
         props.append(Proposal(f"{cap.name}/{oid}", str(oid), fr, centre, len(pts), per_id[oid]))
     return props
 
@@ -385,7 +387,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         sel = lab == l
         if sel.sum() < c["cluster_min_points"]:
             continue
-        fr, centre = object_frame(vox[sel], plane, outlier_sigma(cfg))
+        fr, centre = object_frame(vox[sel], plane, outlier_sigma(cfg, len(frames)))
         if fr.height < c["min_object_height_m"] or not (c["min_object_radius_m"] <= fr.radius <= c["max_object_radius_m"]):
             continue
         clusters.append((vox[sel], fr, centre))
@@ -501,7 +503,7 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         # the frame from every point the object holds now, its low band included (a base disc widens the
         # footprint), like a mask's pixels
         # (each within LOW_GROW_M of its grouped voxels: a base disc reaches farther out than its pegs do)
-        p.frame, p.center_world = object_frame(np.concatenate(g), plane, outlier_sigma(cfg))
+        p.frame, p.center_world = object_frame(np.concatenate(g), plane, outlier_sigma(cfg, len(g)))
         out.append(p)
     return out
 
