@@ -101,6 +101,30 @@ def reweight_free(model, cfg: dict) -> bool:
     return True
 
 
+def k_group_min(cfg: dict) -> int | None:
+    """``[mine] k_group_min`` for ``choosek.group_count``: None (0 in the config) = the neighbours + 1 rule."""
+    g = int(cfg["mine"].get("k_group_min", 0))
+    return g or None
+
+
+def fit_restarts(cfg: dict, grid: TiltGrid | None) -> int:
+    """Restarts of the pose-aware fit: ``[mine] n_init``, or 1 with ``[mine] face_one_start`` when the seeding
+    searches stable resting faces (``face_pairs`` with a tilt ``grid``).
+
+    Why: restart 0 starts from the lowest-cost k-medoids partition of the stable-face matrix (itself the
+    best of ``seeding.KMEDOIDS_STARTS`` + 1 starts), the others from one k-means++ draw each, and the
+    restarts are compared by their summed distance over the tilt *grid*.  That cost is biased towards
+    clusters of one resting face: a same-face member sits exactly on the grid's identity, a member on
+    another face up to the grid's covering radius off its tilt, and the distance is sharp in tilt (README,
+    "Why classes split by face").  A restart that groups faces of different classes then wins over one
+    that groups the faces of each class.  Measured on the tools family with touching objects, half tumbled
+    (7 captures x 8 frames, with masks, K = 8 given, seed 0): n_init 4 purity 0.804 / NMI 0.811, restart 0
+    alone 0.935 / 0.914."""
+    m = cfg["mine"]
+    faces = bool(m.get("face_pairs", False)) and grid is not None and not grid.is_identity
+    return 1 if faces and bool(m.get("face_one_start", False)) else int(m["n_init"])
+
+
 def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
                progress: Callable[[str], None] | None = None, executor=None):
     """Fit the clustering; ``executor`` (``protomine.scale.executor``) runs its passes as a map-reduce
@@ -116,7 +140,7 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
         raise InputError(store.path, "objects", f"--clusters={k} must be <= the number of objects in the store ({len(store)})")
     if progress and grid is None and tilt_grid(cfg) is not None:
         progress("the tilt search runs in this process only: this run searches yaw about up and scale")
-    common = dict(scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
+    common = dict(scales=tuple(m["scales"]), n_init=fit_restarts(cfg, grid), max_iter=m["max_iter"], tol=m["tol"],
                   chunk_size=m["chunk_size"], random_state=seed, progress=progress, tilts=grid,
                   face_pairs=bool(m.get("face_pairs", False)))
     if cfg.get("scale", {}).get("batch_size", 0):
@@ -127,7 +151,8 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
         if progress:
             progress(f"choosing K in 2..{min(m['max_clusters'], len(store) - 1)} on pose-minimised distances")
         model, table = fit_auto(src, max_k=min(m["max_clusters"], len(store) - 1), merge_threshold=m["merge_threshold"],
-                                one_se=bool(m.get("k_one_se", False)),
+                                one_se=bool(m.get("k_one_se", False)), group_min=k_group_min(cfg),
+                                climb=bool(m.get("k_climb", False)),
                                 symmetry_factor=m["symmetry_factor"], symmetry_tol=m["symmetry_tol"], **common)
         return model, table
     model = PoseKMeans(n_clusters=k, symmetry_factor=m["symmetry_factor"], symmetry_tol=m["symmetry_tol"], **common).fit(src)
