@@ -653,19 +653,22 @@ class TiltBank:
                         jobs.append((es_p, cols, inv, len(urows), mask))
                         prods.append((cb, len(u), pos, urows))
 
-                def product(job) -> torch.Tensor:
+                def product(job) -> tuple[np.ndarray, np.ndarray]:
                     cb, nu_, pos, urows = job
                     if pos is None:
                         part = tuple(f[:, cb:cb + nu_] for f in factors)
                     else:
                         part = tuple(f.index_select(1, torch.from_numpy(pos)) for f in factors)
                     og = o.index_select(1, torch.from_numpy(urows))  # the group's objects
-                    return _distances_from_spectra(og, part, self.A, minov).view(self.A, -1)  # (A, |cols| nu)
+                    # the best shift of every (copy, object) of the product (one scale): the rule of
+                    # posesearch._best_pose_nska, column by column, so only D and yaw outlive the product (the
+                    # distances for every shift of a block's products were 100+ MB when one prototype held most
+                    # objects' best pairs, and their concatenation as much again)
+                    return _best_shifts(_distances_from_spectra(og, part, self.A, minov).view(self.A, -1))
 
-                dists = _pooled(product, prods)  # the block's products spread over the threads
-                # the best shift of every (copy, object) of the block at once (one scale): the rule of
-                # posesearch._best_pose_nska, column by column
-                Db, yb = _best_shifts(torch.cat(dists, 1) if len(dists) > 1 else dists[0])
+                best = _pooled(product, prods)  # the block's products spread over the threads
+                Db = np.concatenate([d for d, _ in best])  # (sum of |cols| nu) in the products' order
+                yb = np.concatenate([y for _, y in best])
                 c0 = 0
                 for es_p, cols, inv, nu, mask in jobs:
                     c1 = c0 + len(cols) * nu
