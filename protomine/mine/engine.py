@@ -42,7 +42,8 @@ Algorithm
    (0 if continuous).
 
 Memory: object spectra (about 0.1 MB per object on the 5 x 8 x 36 x 12 grid) are cached between passes
-up to ``cache_mb``; later chunks are re-read and re-transformed each pass.  Besides the per-object result
+up to ``cache_mb``; later chunks are re-read and re-transformed each pass.  A chunk's aligned sums are summed a
+piece of groups at a time from the chunk's spectra (:class:`_AlignedSums`), not held per group beside them.  Besides the per-object result
 arrays, the rest is bounded by one chunk, the seeding subsample and the prototypes.
 
 Public API
@@ -404,6 +405,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
     extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     for i0, i1 in _chunks(N, chunk_size):
+        if T > 1:  # the tilt search's blocks of many sizes leave gaps: give their pages back before each chunk
+            cores.return_free_memory()
         sums = _AlignedSums(K, S, A, (C + 2) * R * H, T) if accumulate else None
         msums = _AlignedSums(K, S, A, (C + 1) * R * H, T) if moments else None
         o = cache.get(i0) if cache is not None else None
