@@ -130,6 +130,18 @@ def reuse_freed_memory(mmap_threshold: int = 64 * 2**20, trim_threshold: int = 2
         return False
 
 
+def return_free_memory() -> bool:
+    """glibc's ``malloc_trim(0)``: the free pages of every arena, also those between blocks still in use, go back
+    to the kernel.  :func:`reuse_freed_memory` keeps freed memory for reuse, which also keeps the gaps a phase
+    of different block sizes leaves resident; the tilt search calls this between chunks (a few faults per chunk
+    against its seconds of work).  False where not glibc."""
+    try:
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+        return True
+    except (OSError, AttributeError):
+        return False
+
+
 def one_malloc_arena() -> bool:
     """glibc's ``mallopt(M_ARENA_MAX, 1)``: threads started later share the main arena, so memory one thread
     frees serves the others (the same as ``MALLOC_ARENA_MAX=1`` in the environment; the tilt search's thread

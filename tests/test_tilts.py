@@ -117,3 +117,21 @@ def test_mining_tumbled_solids_gives_one_cluster_per_class():
         O = rel[np.argmin(errs)]  # the medoid offset
         e = rot.geodesic_deg(model.rotation_[sel] @ O, rots[sel])
         assert np.median(e) < 20.0, (k, np.median(e))
+
+
+def test_mining_invented_prototypes_without_an_empty_margin():
+    """The bench's tumbled objects (mine/tiltbench.py): invented smooth prototypes that fill their whole grid (no
+    empty margin), tipped onto random up directions.  Their margin is not empty space, so a tilted copy's cells
+    beyond the prototype's cylinder must stay unknown: taking the margin as empty space put almost every object
+    in one cluster (measured below)."""
+    from protomine.mine.synthetic import synthetic_prototypes
+    from protomine.mine.tiltbench import tumbled_objects
+    rng = np.random.default_rng(0)
+    grid = TiltGrid(nsides=(1, 2))
+    P = np.abs(synthetic_prototypes(rng, 4))
+    X, W, asp, lab = tumbled_objects(rng, P, 80, grid)
+    model = PoseKMeans(n_clusters=4, n_init=1, max_iter=6, random_state=0, tilts=grid).fit(ArraySource(X, W, asp))
+    # NMI: scikit-learn reference implementation.  Measured 0.928 (cluster sizes 17 22 21 20 for 18 22 22 18);
+    # with the margin taken as empty space 0.227 (sizes 5 68 4 3)
+    nmi = normalized_mutual_info_score(lab, model.labels_)
+    assert nmi > 0.8, nmi

@@ -42,7 +42,8 @@ Algorithm
    (0 if continuous).
 
 Memory: object spectra (about 0.1 MB per object on the 5 x 8 x 36 x 12 grid) are cached between passes
-up to ``cache_mb``; later chunks are re-read and re-transformed each pass.  Besides the per-object result
+up to ``cache_mb``; later chunks are re-read and re-transformed each pass.  A chunk's aligned sums are summed a
+piece of groups at a time from the chunk's spectra (:class:`_AlignedSums`), not held per group beside them.  Besides the per-object result
 arrays, the rest is bounded by one chunk, the seeding subsample and the prototypes.
 
 Public API
@@ -233,43 +234,49 @@ class _AlignedSums:
     ``posesearch.spectrum_rows``); the roll by -yaw is a per-member phase, and members
     of the same group, key (k T + t) S + s for prototype k, tilt t (of T, 1 for a yaw-only search) and
     scale s, are summed with ``index_add_``, so the cost is linear in the number of members and
-    independent of K.  Groups get their accumulator slot when their first member arrives (with tilts most
-    (k, t, s) groups stay empty).  :meth:`result` transforms back once, resamples each group's sum by
-    1 / scale and untilts it into the prototype frame (both are linear, so transforming the sum equals
-    summing the transformed members).
+    independent of K.  :meth:`result` transforms back once, resamples each group's sum by 1 / scale and
+    untilts it into the prototype frame (both are linear, so transforming the sum equals summing the
+    transformed members).
+
+    The adds are recorded and summed in :meth:`result`, a piece of groups at a time (the pieces the transforms
+    work on): only one piece's accumulators exist at once.  With tilts nearly every member of a chunk is a
+    group of its own, so accumulators for all groups held a chunk's spectra over again (209 MB for 2,048
+    objects on the 5 x 8 x 36 x 12 grid, 179 MB more for the moments), beside the spectra the adds read from.
+    Each group's members are summed in member order as before, and the pieces are the same: the same values
+    to the bit.
     """
 
     def __init__(self, K: int, S: int, A: int, n_feat: int, T: int = 1):
         self.K, self.S, self.A, self.T, self.n_feat = K, S, A, T, n_feat
-        self.slots: dict[int, int] = {}
-        self.acc = torch.zeros((A // 2 + 1, 0, n_feat), dtype=torch.complex64)
+        self.adds: list[tuple] = []
 
-    def _slots_of(self, group: np.ndarray) -> np.ndarray:
-        for g in np.unique(group):
-            if int(g) not in self.slots:
-                self.slots[int(g)] = len(self.slots)
-        if len(self.slots) > self.acc.shape[1]:
-            # exactly the new slots: adds come one per chunk, and with tilts most of a chunk's groups are new
-            # (doubling held up to twice the slots, and the concatenation three times, on a pass's second chunk)
-            grow = len(self.slots) - self.acc.shape[1]
-            fresh = torch.zeros((self.acc.shape[0], grow, self.n_feat), dtype=torch.complex64)
-            # the usual single add per chunk allocates the exact slots once (a concatenation would hold both)
-            self.acc = torch.cat([self.acc, fresh], 1) if self.acc.shape[1] else fresh
-        return np.array([self.slots[int(g)] for g in group], np.int64)
-
-    def add(self, spec: torch.Tensor, yaw_deg: np.ndarray, group: np.ndarray, rows: np.ndarray | None = None) -> None:
+    def add(self, spec, yaw_deg: np.ndarray, group: np.ndarray, rows: np.ndarray | None = None) -> None:
         """Add members: real spectra ``spec`` (A, n, n_feat) (``posesearch.spectrum_rows`` layout; or its columns
-        ``rows`` (m,) only), their yaws and groups (m,).  The complex copy of the spectra is made ``ADD_BLOCK`` members at a time (``index_add_`` adds them in
-        member order, so the sums are those of one add of all members)."""
-        group = np.asarray(group)
-        slots = torch.from_numpy(self._slots_of(group))  # may grow self.acc: before the adds
-        phase = _align_phase(yaw_deg, self.A)
-        for b0 in range(0, len(group), ADD_BLOCK):
-            b1 = min(len(group), b0 + ADD_BLOCK)
-            part = spec[:, b0:b1] if rows is None else spec.index_select(1, torch.from_numpy(np.asarray(rows[b0:b1], np.int64)))
-            c = complex_spectra(part, self.A)
-            c.mul_(phase[:, b0:b1, None])
-            self.acc.index_add_(1, slots[b0:b1], c)
+        ``rows`` (m,) only), their yaws and groups (m,).  ``spec`` may also be a function of member positions
+        (p,) (indices into this add's members) returning their spectra (A, p, n_feat), computed when summed.
+        Nothing is summed here; ``spec`` is kept until :meth:`result`."""
+        group = np.asarray(group, np.int64)
+        if callable(spec):
+            get = spec
+        elif rows is None:
+            get = lambda pos: spec.index_select(1, torch.from_numpy(pos))  # noqa: E731
+        else:
+            rows = np.asarray(rows, np.int64)
+            get = lambda pos: spec.index_select(1, torch.from_numpy(rows[pos]))  # noqa: E731
+        self.adds.append((get, _align_phase(yaw_deg, self.A), group))
+
+    def _piece_sums(self, keys: np.ndarray) -> torch.Tensor:
+        """(F, len(keys), n_feat) complex sums of the groups ``keys`` (sorted), members in add and member order,
+        ``ADD_BLOCK`` members' complex spectra at a time (``index_add_`` adds them in member order)."""
+        acc = torch.zeros((self.A // 2 + 1, len(keys), self.n_feat), dtype=torch.complex64)
+        for get, phase, group in self.adds:
+            pos = np.flatnonzero(np.isin(group, keys))
+            for b0 in range(0, pos.size, ADD_BLOCK):
+                pb = pos[b0:b0 + ADD_BLOCK]
+                c = complex_spectra(get(pb), self.A)
+                c.mul_(phase[:, torch.from_numpy(pb), None])
+                acc.index_add_(1, torch.from_numpy(np.searchsorted(keys, group[pb])), c)
+        return acc
 
     def result(self, scales: tuple[float, ...], shape: tuple[int, int, int], untilt=None) -> np.ndarray:
         """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``untilt(ks, ts, a)``
@@ -278,9 +285,9 @@ class _AlignedSums:
         untilted in one resampling."""
         B, R, H = shape
         out = np.zeros((self.K, B, R, self.A, H))
-        if not self.slots:
+        if not self.adds:
             return out
-        keys = np.array(sorted(self.slots), np.int64)
+        keys = np.unique(np.concatenate([g for _, _, g in self.adds]))
         # blocks of groups bound the float64 temporaries (a 3-D search fills up to one group per member); each
         # block of RESULT_BLOCK keys is cut further, between (prototype, tilt)s, into pieces of about
         # RESULT_PIECE groups: a (prototype, tilt)'s scales are still summed together before one untilt, in the
@@ -288,14 +295,13 @@ class _AlignedSums:
         for g0 in range(0, len(keys), RESULT_BLOCK):
             blk = keys[g0:g0 + RESULT_BLOCK]
             for p0, p1 in _pieces(blk // self.S, RESULT_PIECE):
-                self._add_block(out, blk[p0:p1], scales, shape, untilt)
+                self._add_block(out, blk[p0:p1], self._piece_sums(blk[p0:p1]), scales, shape, untilt)
         return out
 
-    def _add_block(self, out: np.ndarray, keys: np.ndarray, scales: tuple[float, ...], shape: tuple[int, int, int],
-                   untilt) -> None:
+    def _add_block(self, out: np.ndarray, keys: np.ndarray, acc: torch.Tensor, scales: tuple[float, ...],
+                   shape: tuple[int, int, int], untilt) -> None:
         B, R, H = shape
-        cols = torch.from_numpy(np.array([self.slots[int(g)] for g in keys], np.int64))
-        a = torch.fft.irfft(self.acc[:, cols], n=self.A, dim=0).numpy().astype(np.float64)  # (A, G, B R H)
+        a = torch.fft.irfft(acc, n=self.A, dim=0).numpy().astype(np.float64)  # (A, G, B R H)
         a = a.reshape(self.A, len(keys), B, R, H).transpose(1, 2, 3, 0, 4)  # (G, B, R, A, H)
         kts, sis = np.divmod(keys, self.S)
         ukt, which = np.unique(kts, return_inverse=True)
@@ -399,6 +405,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
     extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     for i0, i1 in _chunks(N, chunk_size):
+        if T > 1:  # the tilt search's blocks of many sizes leave gaps: give their pages back before each chunk
+            cores.return_free_memory()
         sums = _AlignedSums(K, S, A, (C + 2) * R * H, T) if accumulate else None
         msums = _AlignedSums(K, S, A, (C + 1) * R * H, T) if moments else None
         o = cache.get(i0) if cache is not None else None
@@ -413,12 +421,13 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
-        o = x = w = None  # the chunk's spectra (unless cached) and volumes are freed before the sums' transforms
+        o = x = w = None  # the sums hold the chunk's spectra and volumes until they are summed
         if accumulate:
             tot += sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
-            sums = None
+            sums = None  # frees the chunk's spectra (unless cached)
         if moments:
             extra += msums.result(scales, (C + 1, R, H), untilt)
+            msums = None
         if advance is not None:
             advance(i1 - i0)
     if tilts is not None:
@@ -455,11 +464,8 @@ def _chunk_step(bank: PoseBank | TiltBank, o: torch.Tensor, x: np.ndarray | None
         group = (lab[ok] * sums.T + tilt[ok]) * S + np.array([scale_pos[float(s)] for s in scale[ok]], np.int64)
         # all members usually match; the sums read the matched members' columns a block at a time
         sums.add(o, yaw[ok], group, None if ok.size == n else ok)
-        if msums is not None:
-            msums._slots_of(group)  # every group's slot at once: the blocks below find theirs
-            for b0 in range(0, ok.size, ADD_BLOCK):  # the moments' spectra a block of members at a time
-                sel = ok[b0:b0 + ADD_BLOCK]
-                msums.add(_moment_spectra(x[sel], w[sel], bank.dft), yaw[sel], group[b0:b0 + ADD_BLOCK])
+        if msums is not None:  # the moments' spectra are computed when summed, a block of a piece's members at a time
+            msums.add(lambda pos: _moment_spectra(x[ok[pos]], w[ok[pos]], bank.dft), yaw[ok], group)
     return lab.astype(np.int64), yaw, scale, d
 
 

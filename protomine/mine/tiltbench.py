@@ -22,6 +22,9 @@ process (first run of the tilt search; on a shared machine the wall clock also c
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
 level's row blocks on ``posesearch._spectra_pool``'s threads, one torch thread each (``tilts._pooled``).
 
+The mining row's invented prototypes fill their whole grid (no empty margin around the object, unlike a lifted
+volume), so a tilted copy's cells beyond its prototype's cylinder stay unknown (``tilts.empty_margin``).
+
 The mining row (``bench_tilt_mining``) reports ``seconds`` and ``cpu_s`` (wall and CPU seconds of the fit),
 ``peak_rss_mb``, ``n_iter`` and ``nmi``.
 """
