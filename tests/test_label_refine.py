@@ -1,4 +1,4 @@
-"""The label stage's finer pose search for a view's nearest prototypes (``label.refine``).  Volumes are built
+"""The label stage's finer pose search for a view's nearest prototypes (``mine.refine``).  Volumes are built
 from the definition of the grid by counting sample points per cell (``test_tilts``), without the lifting code
 or the tilt resampler; rotations are checked with ``scipy.spatial.transform.Rotation``."""
 from __future__ import annotations
@@ -7,7 +7,7 @@ import numpy as np
 from scipy.spatial.transform import Rotation
 
 from protomine import rotations as rot
-from protomine.label.refine import PoseRefiner, fine_scales, ring_directions
+from protomine.mine.refine import PoseRefiner, fine_scales, ring_directions
 from protomine.mine.tilts import TiltBank, TiltGrid
 from test_tilts import MARGINS, _posed
 

@@ -126,10 +126,10 @@ def test_choose_k_on_the_stable_face_matrix_joins_each_class_across_its_faces():
 
 
 def test_label_search_of_exact_resting_faces_finds_a_view_resting_on_a_side():
-    # the matcher's exact-face search (label.matcher.ExactFaces): a box prototype and a view of it resting on a
+    # the matcher's exact-face search (mine.viewsearch.ExactFaces): a box prototype and a view of it resting on a
     # side at a yaw; the view must get the minimum over the box's resting copies (reference twin:
     # posesearch.pose_distances_naive on the copies) and that copy's up, within the stable_ups tolerance above
-    from protomine.label.matcher import ExactFaces
+    from protomine.mine.viewsearch import ExactFaces
     from protomine.mine.tilts import TiltBank
     box = _solid(lambda x, y, z: (np.abs(x) < 0.35) & (np.abs(y) < 0.2) & (z > 0.05) & (z < 0.5))
     P = np.stack([box, 0.5 * box])[None]

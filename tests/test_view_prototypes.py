@@ -1,5 +1,5 @@
 """View prototypes (protomine.mine.pipeline.view_prototypes) and their vote in the label search
-(protomine.label.matcher.ViewSearch.vote).
+(protomine.mine.viewsearch.ViewSearch.vote).
 
 References: the observation-weighted mean written from its definition (sum_i w_i x_i / sum_i w_i per cell, common
 practice) over views rolled back by whole azimuth bins with numpy.roll (DEVELOPERS.md: yawing an object by +d degrees

@@ -371,7 +371,7 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
 def calibration_search(model, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid, cfg: dict):
     """The single-view calibration's face search (``[mine] calibrate_searched``; None when off): each held-out
     view's up direction and whether it is the canonical face, found against its own prototype by the label
-    search itself (``label.matcher.ViewSearch``: tilt grid, exact resting directions with ``face_pairs``, the
+    search itself (``mine.viewsearch.ViewSearch``: tilt grid, exact resting directions with ``face_pairs``, the
     finer search of ``label_refine_top``).  The label search picks, per view, the best of many tilted copies, so
     a view of any object, known or not, fits *some* copy better than its object's own face: a calibration on
     the mined face alone expects tilted matches to fit worse than the search makes them fit, and scores a
@@ -380,7 +380,7 @@ def calibration_search(model, aspect: np.ndarray, scales: tuple[float, ...], gri
     m = cfg["mine"]
     if not bool(m.get("calibrate_searched", False)):
         return None
-    from ..label.matcher import ViewSearch
+    from .viewsearch import ViewSearch
     faces = pad_faces(model.faces_["up"], model.faces_["count"], model.faces_["symmetry"])
     P, V = np.asarray(model.prototypes_, np.float32), np.asarray(model.prototype_weights_, np.float32)
     own: dict[int, ViewSearch] = {}  # one search per prototype: a view is searched against its own only
@@ -405,7 +405,7 @@ def view_prototypes(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray,
     otherwise.  So the mean lies in the frame of that face, and it is what one frame of an object resting so
     looks like (the parts a single view hides, the footprint and base centre it misplaces), where the 3-D
     prototype is fused over many views and, on other faces, resampled.  The label search lets them vote on the
-    class only (``label.matcher.ViewSearch``): pose and score still come from the 3-D prototype.
+    class only (``mine.viewsearch.ViewSearch``): pose and score still come from the 3-D prototype.
 
     P (K, C, R, A, H), V (K, R, A, H) the library's prototypes (its channel weights); labels, face (N,) the
     members' prototype and resting face; face_up (K, F, 3), face_symmetry (K, F) (-1 = padding).  Returns

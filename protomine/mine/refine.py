@@ -34,8 +34,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import rotations as rot
-from ..mine.posesearch import PoseBank
-from ..mine.tilts import IDENTITY_DEG, TiltBank
+from .posesearch import PoseBank
+from .tilts import IDENTITY_DEG, TiltBank
 
 UPRIGHT_GUARD_DEG = 3.0 * IDENTITY_DEG
 
