@@ -89,3 +89,17 @@ def test_choose_k_is_not_taken_by_far_outliers():
         k, table = choose_k(src, max_k=8, random_state=0)
         assert k == 4, table
         assert table[0]["outlying"] >= 2
+
+
+def test_one_restart_only_when_the_seeding_searches_resting_faces():
+    # [mine] face_one_start (README "Small tumbled stores"): one restart with face_pairs and a tilt grid,
+    # n_init restarts otherwise (yaw-only grid, face_pairs off, or the key off)
+    from protomine.config import load_config
+    from protomine.mine.pipeline import fit_restarts, tilt_grid
+    cfg = load_config("default")
+    grid = tilt_grid(cfg)
+    n = cfg["mine"]["n_init"]
+    assert n > 1 and fit_restarts(cfg, grid) == 1
+    assert fit_restarts(cfg, None) == n
+    assert fit_restarts(load_config("default", {"mine": {"face_pairs": False}}), grid) == n
+    assert fit_restarts(load_config("default", {"mine": {"face_one_start": False}}), grid) == n

@@ -143,3 +143,22 @@ def test_flags_equal_their_definition(seed, monkeypatch):
     np.testing.assert_array_equal(DE.flying_pixels(d), ref)
     monkeypatch.setattr(DE, "WIDE_WINDOW", 0)
     assert (ref & ~DE.flying_pixels(d)).any()                    # the wide test flags readings of its own
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_steady_depth_at_equals_the_definition_at_scattered_pixels(seed):
+    """The patch path (the wide test run only at the asked pixels, their patch mirrored where it meets the
+    image border) against the pixel-by-pixel twin above: scattered pixel sets, sets in a corner, one pixel."""
+    rng = np.random.default_rng(10 + seed)
+    d = 0.6 + 0.1 * rng.random((26, 34))
+    d[6:20, 12:26] = 0.45                                         # a box in front, its edges inside the image
+    d[6:20, 9:12] = 0.45 + 0.15 * rng.random((14, 3))             # a mixed band beside it
+    d[:5, :8] = 0.45 + 0.15 * rng.random((5, 8))                  # mixed readings in a corner (mirrored border)
+    d[rng.random(d.shape) < 0.25] = 0.0
+    ref = np.where(_reference_flags(d), 0.0, d)
+    assert (ref != d).sum() > 10
+    for r, u in [(rng.integers(0, 26, 150), rng.integers(0, 34, 150)),
+                 (rng.integers(4, 22, 60), rng.integers(6, 16, 60)),
+                 (rng.integers(0, 4, 20), rng.integers(0, 5, 20)),
+                 (np.array([25, 0]), np.array([33, 0])), (np.array([12]), np.array([10]))]:
+        np.testing.assert_array_equal(DE.steady_depth_at(d, r, u), ref[r, u])

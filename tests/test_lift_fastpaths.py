@@ -1,5 +1,6 @@
 """Fast paths of lifting and labelling against what they replace: the carving depth's flying-pixel test on a
-patch (scipy.ndimage filters over the whole image as reference), the splat (a per-point, per-corner loop
+patch (scipy.ndimage filters over the whole image as reference), lifting with a frame's flags computed once
+(against lifting that tests the pixels it reads), the splat (a per-point, per-corner loop
 from the trilinear definition in ``ingest.volume``'s docstring), the segmentation RLE (the image-sized mask
 encoded by ``records.mask_to_rle``) and the batched face / pose reduction of the matcher (``faces.face_pose``
 called once per prototype)."""
@@ -10,8 +11,8 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 from protomine.geometry import plane_basis
-from protomine.ingest.depthedges import steady_depth, steady_depth_at
-from protomine.ingest.volume import Grid, ObjectFrame, _splat
+from protomine.ingest.depthedges import flying_pixels, steady_depth, steady_depth_at
+from protomine.ingest.volume import Grid, ObjectFrame, View, _splat, lift
 from protomine.mine.faces import face_poses
 from protomine.mine.faces import face_pose
 from protomine.mine.symmetry import group_elements
@@ -32,6 +33,25 @@ def test_steady_depth_at_pixels_equals_the_whole_image_filter(seed):
                  (rng.integers(10, 20, 50), rng.integers(30, 40, 50)), (np.array([5]), np.array([7]))]:
         np.testing.assert_array_equal(steady_depth_at(depth, r, u), ref[r, u])
     assert steady_depth_at(depth, np.zeros(0, int), np.zeros(0, int)).shape == (0,)
+
+
+def test_lifting_with_the_frames_flags_equals_testing_the_pixels_read():
+    """A view given its frame's flying-pixel flags (``View.flying``, computed once a frame) lifts to the same
+    volume, to the bit, as one that tests the pixels it reads; the flags matter (all-clear flags differ)."""
+    from protomine.scenes.render import look_at
+    from protomine.scenes.noise import StereoSensor, stereo_depth
+    from test_stereo_depth import _box_frame
+    fr, K = _box_frame(160, 150.0, 0.6, 0.2)
+    depth = stereo_depth(fr, K.fx, np.random.default_rng(0), StereoSensor(sigma_px=0.0, subpixel=0.0), dropout=0.0)
+    T = look_at(np.array([0.0, 0.0, 0.6]), np.zeros(3), np.array([0.0, 1.0, 0.0]))
+    rgb = (fr.rgb * 255).astype(np.uint8)
+    pix = np.flatnonzero((fr.mask.reshape(-1) > 0) & (depth.reshape(-1) > 0))
+    frame = ObjectFrame(origin=np.zeros(3), up=np.array([0.0, 0.0, 1.0]), radius=0.09, height=0.2)
+    grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=8)
+    flags = flying_pixels(depth)
+    per_pixel = lift([View(depth, rgb, K.K, T, pix)], frame, grid)
+    np.testing.assert_array_equal(lift([View(depth, rgb, K.K, T, pix, flags)], frame, grid), per_pixel)
+    assert not np.array_equal(lift([View(depth, rgb, K.K, T, pix, np.zeros_like(flags))], frame, grid), per_pixel)
 
 
 def _splat_reference(grid: Grid, frame: ObjectFrame, pts: np.ndarray, values: np.ndarray) -> np.ndarray:

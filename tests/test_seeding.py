@@ -13,7 +13,7 @@ from sklearn.metrics import normalized_mutual_info_score
 from protomine.config import load_config
 from protomine.ingest.pipeline import ingest_captures
 from protomine.ingest.sharded import open_store
-from protomine.mine.choosek import knn_components
+from protomine.mine.choosek import group_count, knn_components, silhouette_climb
 from protomine.mine.evaluate import read_truth_table
 from protomine.mine.pipeline import fit_engine
 from protomine.mine.seeding import PoseSeeder, kmedoids_plusplus
@@ -33,6 +33,38 @@ def test_knn_components_count_separated_groups():
     S2 = S.copy()
     S2[0, 5:8] = S2[5:8, 0] = 0.01
     assert knn_components(S2, 3) == 3
+
+
+def test_group_count_small_group():
+    # mutual 4-nearest-neighbour graph (von Luxburg 2007, sec. 2.2, from memory), worked by hand: groups of 6, 6
+    # and 4 objects, within-group distances below any between-group one.  Every member of a 6-group has its
+    # 4 nearest inside its group; a 4-group member's 4th nearest lies outside, but that object's 4 nearest do
+    # not include it, so the link is not mutual: the components have 6, 6 and 4 objects.  Counting components
+    # of at least neighbours + 1 = 5 objects sees 2 groups, of at least 4 objects all 3.
+    rng = np.random.default_rng(1)
+    lab = np.repeat(np.arange(3), [6, 6, 4])
+    n = len(lab)
+    S = np.where(lab[:, None] == lab[None, :], rng.uniform(0.1, 0.2, (n, n)), rng.uniform(0.3, 0.5, (n, n)))
+    S = 0.5 * (S + S.T)
+    np.fill_diagonal(S, 0.0)
+    assert knn_components(S, 4, mutual=True) == 2
+    assert group_count(S) == 2
+    assert group_count(S, 4) == 3
+    # a lone object (its group's other members gone) is never counted, whatever the least size
+    assert group_count(S[:13][:, :13], 4) == 2
+
+
+def test_silhouette_climb_worked_example():
+    # the one-SE rule (Breiman et al. 1984, "Classification and Regression Trees", from memory) worked by hand
+    # on a K scan: best silhouette 0.41 at K = 11 with SE 0.03, so K >= 0.38 is within one SE of it; a step
+    # counts when it rises by more than the current K's SE (0.02 here)
+    sil = {2: 0.20, 3: 0.25, 4: 0.30, 5: 0.31, 6: 0.357, 7: 0.391, 8: 0.397, 9: 0.379, 10: 0.379, 11: 0.41}
+    table = [{"k": k, "silhouette": v, "silhouette_se": 0.03 if k == 11 else 0.02} for k, v in sil.items()]
+    assert silhouette_climb(table, 5) == 7   # 5 -> 6 -> 7 (rises of 0.047, 0.034; 0.391 is within one SE: stop)
+    assert silhouette_climb(table, 2) == 4   # 2 -> 3 -> 4 (rises of 0.05); 4 -> 5 rises by 0.01 only
+    assert silhouette_climb(table, 8) == 8   # 0.397 is within one SE of the best
+    assert silhouette_climb(table, 9) == 9   # 10 does not rise above 9
+    assert silhouette_climb(table, 11) == 11 and silhouette_climb(table, 16) == 16  # end / outside the scan
 
 
 def test_kmedoids_plusplus_spreads_over_far_groups():

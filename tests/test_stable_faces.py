@@ -119,6 +119,9 @@ def test_choose_k_on_the_stable_face_matrix_joins_each_class_across_its_faces():
     src = ArraySource(X, W, np.array(aspect))
     k_faces, _ = choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect))
     assert k_faces == 2
+    # the defaults' K rule ([mine] k_group_min = 4, k_climb) keeps the two classes: the faces do not split off
+    assert choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect),
+                    group_min=4, climb=True)[0] == 2
     assert choose_k(src, max_k=6, scales=(1.0,), random_state=0)[0] > 2  # yaw and scale only: split by face
 
 

@@ -36,7 +36,7 @@ from ..rotations import geodesic_deg
 __all__ = [
     "contingency", "purity_score", "inverse_purity_score", "hungarian_accuracy_score",
     "clustering_scores", "symmetry_to_period_deg", "yaw_offset_deg", "yaw_error_deg", "rotation_offset",
-    "rotation_error_deg",
+    "rotation_error_deg", "about_z_geodesic_deg",
 ]
 
 
@@ -146,15 +146,33 @@ def yaw_error_deg(truth_deg, pred_deg, offset_deg: float, period: float = 360.0)
 
 # --- rotations ------------------------------------------------------------------------------
 
-def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray) -> np.ndarray:
+def about_z_geodesic_deg(A: np.ndarray, B: np.ndarray) -> np.ndarray:
+    """Least geodesic angle (degrees) between A and B Rz(t) over every angle t, for (..., 3, 3) rotations: the
+    distance modulo a continuous symmetry about z.  With M = A^T B, trace(M Rz(t)) = (M00 + M11) cos t +
+    (M01 - M10) sin t + M22, largest at M22 + hypot(M00 + M11, M01 - M10); the angle is acos((trace - 1) / 2)."""
+    M = np.einsum("...ji,...jk->...ik", np.asarray(A, np.float64), np.asarray(B, np.float64))
+    tr = M[..., 2, 2] + np.hypot(M[..., 0, 0] + M[..., 1, 1], M[..., 0, 1] - M[..., 1, 0])
+    return np.rad2deg(np.arccos(np.clip((tr - 1.0) / 2.0, -1.0, 1.0)))
+
+
+def _modulo_group(A: np.ndarray, B: np.ndarray, group: np.ndarray | None) -> np.ndarray:
+    """Least geodesic angle between A (..., 3, 3) and B g over g in ``group`` (G, 3, 3); ``None`` = every
+    rotation about z (a continuous symmetry)."""
+    if group is None:
+        return about_z_geodesic_deg(A, B)
+    return np.min(geodesic_deg(A[..., None, :, :], B[..., None, :, :] @ group), axis=-1)
+
+
+def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray | None) -> np.ndarray:
     """One offset O (3, 3) with R_true ~ R_pred O: the geodesic medoid of R_pred^T R_true over members
-    R_pred, R_true (n, 3, 3), distances taken modulo the symmetry group (G, 3, 3) on the right (the medoid, not
-    a mean, so a few flipped members do not move it)."""
+    R_pred, R_true (n, 3, 3), distances taken modulo the symmetry group (G, 3, 3) on the right, ``None`` for
+    a continuous symmetry about z (the medoid, not a mean, so a few flipped members do not move it)."""
     O = np.einsum("nji,njk->nik", R_pred, R_true)  # each defined up to O g
-    d = np.min(geodesic_deg(O[:, None, None], O[None, :, None] @ group[None, None]), axis=2)  # (n, n)
+    d = _modulo_group(O[:, None], np.broadcast_to(O[None, :], (len(O),) + O.shape), group)  # (n, n)
     return O[int(np.argmin(d.sum(axis=1)))]
 
 
-def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray) -> np.ndarray:
-    """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetry group."""
-    return np.min(geodesic_deg((R_pred @ O)[:, None], R_true[:, None] @ group[None]), axis=1)
+def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray | None) -> np.ndarray:
+    """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetry group (``None``:
+    every rotation about z, exactly)."""
+    return _modulo_group(R_pred @ O, R_true, group)

@@ -53,61 +53,80 @@ def _half() -> int:
     return max(FLYING_WINDOW, WIDE_WINDOW) // 2
 
 
-def _between(d: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
-    """Readings d (0 = none) more than the tolerance above their window's least reading lo and below its
-    greatest hi: the close test, given the window's extremes."""
-    tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * d)
-    return (d > 0) & (d - lo > tol) & (hi - d > tol)
-
-
-def _extremes(p: np.ndarray, half: int, shape: tuple[int, int], size: int) -> tuple[np.ndarray, np.ndarray]:
-    """Greatest and least reading (0 = none is skipped) in the size x size square about each pixel of the
-    interior (shape) of the padded array p (border ``half``): running maxima / minima of shifted slices,
-    along columns then rows (exact: no rounding in max/min)."""
+def _extremes(p: np.ndarray, half: int, shape: tuple[int, int], sizes: tuple[int, ...]) -> dict[int, tuple]:
+    """Greatest and least reading in the s x s square about each pixel of the interior (shape) of the padded
+    array p (border ``half``), for each odd size s in ``sizes``: {s: (hi, lo)}, NaN where the square holds no
+    reading.  p holds NaN where there is no reading, which numpy's fmax / fmin skip.  Running extremes of
+    shifted slices, along rows then columns; the s + 2 square's row extremes are two shifted s ones (their
+    windows overlap), so the wide square costs one step more than the close one.  Exact: no rounding."""
     ph, pw = shape
-    k = size // 2
-    valid = p > 0
-    p_hi, p_lo = np.where(valid, p, 0.0), np.where(valid, p, np.inf)
-    rows = slice(half - k, half + k + ph)
-    row_hi, row_lo = p_hi[rows, half - k:half - k + pw].copy(), p_lo[rows, half - k:half - k + pw].copy()
-    for j in range(1, size):
-        np.maximum(row_hi, p_hi[rows, half - k + j:half - k + j + pw], out=row_hi)
-        np.minimum(row_lo, p_lo[rows, half - k + j:half - k + j + pw], out=row_lo)
-    hi, lo = row_hi[:ph].copy(), row_lo[:ph].copy()
-    for i in range(1, size):
-        np.maximum(hi, row_hi[i:i + ph], out=hi)
-        np.minimum(lo, row_lo[i:i + ph], out=lo)
-    return hi, lo
+    out = {}
+    for fn, pos in ((np.fmax, 0), (np.fmin, 1)):
+        for s, rows in _running(fn, p, 1, half, pw, sizes).items():
+            out.setdefault(s, [None, None])[pos] = _running(fn, rows, 0, half, ph, (s,))[s]
+    return {s: tuple(v) for s, v in out.items()}
 
 
-def _flags(p: np.ndarray, half: int, shape: tuple[int, int]) -> np.ndarray:
+def _running(fn, a: np.ndarray, axis: int, half: int, n: int, sizes: tuple[int, ...]) -> dict[int, np.ndarray]:
+    """{s: running fn (fmax / fmin) over s consecutive entries of a along axis} for the n entries past the
+    border ``half``, for each odd size s in ``sizes``."""
+    def cut(x, lo, hi):
+        return x[:, lo:hi] if axis == 1 else x[lo:hi]
+    m, ext, out = a, half, {}                       # m: running extreme of size s over n + 2 ext entries
+    for s in range(1, max(sizes) + 1, 2):
+        if s == 3:
+            m = fn(fn(cut(m, 0, -2), cut(m, 1, -1)), cut(m, 2, None))
+            ext -= 1
+        elif s > 3:
+            m = fn(cut(m, 0, -2), cut(m, 2, None))
+            ext -= 1
+        if s in sizes:
+            out[s] = cut(m, ext, ext + n)
+    return out
+
+
+def _flags(p: np.ndarray, half: int, shape: tuple[int, int], want: np.ndarray | None = None) -> np.ndarray:
     """Flags (shape) of the readings p[half:-half, half:-half] of a padded depth array p: both tests.  The wide
-    test's counts are taken at the readings with a jump in the wide square only (a few percent of them)."""
+    test runs at the readings with a jump in the wide square and no supporting adjacent neighbour only (well
+    under 1% of them; with ``want`` (shape) bool, only among those pixels: elsewhere the flags are the close
+    test's only): their neighbours are gathered, the adjacent ones first."""
     ph, pw = shape
-    d = p[half:half + ph, half:half + pw]
+    pn = np.where(p > 0, p, np.nan)                  # no reading: NaN (fails every comparison, skipped by fmax)
+    d = pn[half:half + ph, half:half + pw]
     tol = np.maximum(FLYING_TOL_M, FLYING_TOL_REL * d)
-    flags = _between(d, *_extremes(p, half, shape, FLYING_WINDOW)[::-1])
+    sizes = (FLYING_WINDOW, WIDE_WINDOW) if WIDE_WINDOW else (FLYING_WINDOW,)
+    ext = _extremes(pn, half, shape, sizes)
+    hi, lo = ext[FLYING_WINDOW]
+    flags = (d - lo > tol) & (hi - d > tol)          # the close test (NaN: no reading, false)
     if not WIDE_WINDOW:
         return flags
-    hi, lo = _extremes(p, half, shape, WIDE_WINDOW)
-    cand = (d > 0) & ~flags & ((d - lo > tol) | (hi - d > tol))
-    r, u = np.nonzero(cand)
-    if len(r) == 0:
+    hi, lo = ext[WIDE_WINDOW]
+    cand = ((d - lo > tol) | (hi - d > tol)) & ~flags
+    if want is not None:
+        cand &= want
+    c = np.flatnonzero(cand)
+    if len(c) == 0:
         return flags
+    width = pw + 2 * half
+    at = (c // pw + half) * width + c % pw + half    # the candidates' flat indices into pn
+    flat = pn.reshape(-1)
+    dc, tc = d.reshape(-1)[c][:, None], tol.reshape(-1)[c][:, None]
+    stc = SUPPORT_REL * tc
+    adj = np.array([i * width + j for i in (-1, 0, 1) for j in (-1, 0, 1) if i or j])
+    adjacent = np.count_nonzero(np.abs(flat[at[:, None] + adj] - dc) <= stc, axis=1)
+    keep = adjacent < WIDE_ADJACENT_SUPPORT          # a supported reading is never flagged: the rest are done
+    c, at, dc, tc, stc = c[keep], at[keep], dc[keep], tc[keep], stc[keep]
     w = WIDE_WINDOW // 2
-    off = np.array([(i, j) for i in range(-w, w + 1) for j in range(-w, w + 1) if i or j])
-    q = p[r[:, None] + half + off[:, 0], u[:, None] + half + off[:, 1]]          # (n, window - 1) neighbours
-    dc, tc = d[r, u][:, None], tol[r, u][:, None]
-    ok = q > 0
-    near = (ok & (dc - q > tc)).any(1)
-    far = (ok & (q - dc > tc)).any(1)
-    sup = ok & (np.abs(q - dc) <= SUPPORT_REL * tc)
-    support = sup.sum(1)
-    adjacent = sup[:, (np.abs(off) <= 1).all(1)].sum(1)
-    missing = (~ok).sum(1)
+    off = np.array([i * width + j for i in range(-w, w + 1) for j in range(-w, w + 1) if i or j])
+    q = flat[at[:, None] + off]                      # (n, window^2 - 1) neighbours, NaN without a reading
+    diff = q - dc
+    near = (diff < -tc).any(1)                       # dc - q > tc, exactly (IEEE subtraction is antisymmetric)
+    far = (diff > tc).any(1)
+    support = np.count_nonzero(np.abs(diff) <= stc, axis=1)
+    missing = np.count_nonzero(np.isnan(q), axis=1)
     both = near & far & (support < WIDE_SUPPORT_BOTH)
     one = (near ^ far) & (support < WIDE_SUPPORT_ONE) & (missing >= WIDE_MISSING)
-    flags[r, u] = (both | one) & (adjacent < WIDE_ADJACENT_SUPPORT)
+    flags.reshape(-1)[c[both | one]] = True
     return flags
 
 
@@ -119,7 +138,7 @@ def steady_depth(depth: np.ndarray) -> np.ndarray:
 def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarray:
     """``steady_depth(depth)[r, u]`` for pixels (r, u) (M,): the tests of :func:`flying_pixels` run on the
     patch the pixels span only (lifting asks for one object's few thousand cells), with a border of half the
-    widest window (beyond the image mirrored as there)."""
+    widest window (beyond the image mirrored as there), the wide test at those pixels only."""
     if len(r) == 0:
         return np.zeros(0, np.asarray(depth).dtype)
     h, w = depth.shape
@@ -132,6 +151,9 @@ def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarr
     if any(p for side in pad for p in side):
         d = np.pad(d, pad, mode="symmetric")      # numpy's 'symmetric' is scipy.ndimage's 'reflect'
     ph, pw = r1 - r0, u1 - u0
-    flying = _flags(d, half, (ph, pw))
+    at = (np.asarray(r) - r0) * pw + (np.asarray(u) - u0)
+    want = np.zeros(ph * pw, bool)
+    want[at] = True
+    flying = _flags(d, half, (ph, pw), want.reshape(ph, pw))
     steady = np.where(flying, 0.0, depth[r0:r1, u0:u1])
-    return steady.reshape(-1).take((np.asarray(r) - r0) * pw + (np.asarray(u) - u0))
+    return steady.reshape(-1).take(at)

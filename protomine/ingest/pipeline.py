@@ -76,7 +76,7 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
             sel = np.isin(fd.pixels, p.pixels[fid])
             if sel.sum() < 10:
                 continue
-            sframe, _ = object_frame(fd.points[sel], scene.plane)
+            sframe, _ = object_frame(fd.points[sel], scene.plane)  # one frame: no outlier test (proposals.outlier_sigma)
             singles.append((fid, lift(scene.views(p, [fid]), sframe, grid)))
         out.append(ObjectRecord(
             id=p.object_id, capture=scene.capture.name, key=p.key, origin=p.frame.origin, up=p.frame.up,

@@ -33,6 +33,7 @@ from .volume import ObjectFrame, View
 
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
+OUTLIER_NEIGHBOURS = 8      # neighbours of the statistical outlier test before the footprint (Rusu et al. 2008)
 DBSCAN_MIN_SAMPLES = 5
 FREE_SPACE_VOTES = 2         # other views that must see through a reading to drop it
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
@@ -64,6 +65,7 @@ class FrameData:
     points: np.ndarray        # (M, 3) world points of every valid pixel
     pixels: np.ndarray        # (M,) flat pixel indices
     steady: np.ndarray        # (M,) bool: not a flying pixel (see flying_pixels); only these may join objects
+    flying: np.ndarray | None = None  # (H, W) bool: flying_pixels(depth), for lifting (once a frame, not an object)
 
 
 @dataclass
@@ -88,7 +90,7 @@ class SceneObjects:
         out = []
         for fd in self.frames:
             if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
-                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id]))
+                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying))
         return out
 
 
@@ -107,8 +109,9 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
             raise InputError(cap.frame_file("rgb", fr.id), "size", f"expected {depth.shape[::-1]} like the depth image, got {rgb.shape[1::-1]}")
         mask = cap.mask(fr.id)
         pc, idx = depth_to_points(depth, K)
-        steady = ~flying_pixels(depth).reshape(-1)[idx]
-        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx, steady))
+        flying = flying_pixels(depth)
+        out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx,
+                             ~flying.reshape(-1)[idx], flying))
         detail(progress, f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
     for fd, bad in zip(out, free_space_violations(out, K)):
         fd.steady &= ~bad
@@ -287,8 +290,30 @@ def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
     return np.array([cx, cy]), float(r)
 
 
-def object_frame(points: np.ndarray, plane: PlaneFit) -> tuple[ObjectFrame, np.ndarray]:
-    """Object frame and centre (3,) from the object's world points (M, 3)."""
+def statistical_outliers(points: np.ndarray, sigma: float, k: int = OUTLIER_NEIGHBOURS) -> np.ndarray:
+    """(M,) bool: the points (M, 3) whose mean distance to their ``k`` nearest neighbours exceeds the mean of
+    that figure over all points by more than ``sigma`` standard deviations (statistical outlier removal: Rusu,
+    Marton, Blodow, Dolha & Beetz 2008, "Towards 3D point cloud based object maps for household environments",
+    the filter PCL ships as StatisticalOutlierRemoval).  None is an outlier with ``sigma`` <= 0 or k or fewer
+    points."""
+    pts = np.asarray(points, np.float64)
+    if not sigma > 0 or len(pts) <= k:
+        return np.zeros(len(pts), bool)
+    d, _ = cKDTree(pts).query(pts, k + 1)  # the nearest is the point itself
+    md = d[:, 1:].mean(axis=1)
+    return md > md.mean() + sigma * md.std()
+
+
+def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0) -> tuple[ObjectFrame, np.ndarray]:
+    """Object frame and centre (3,) from the object's world points (M, 3).
+
+    ``outlier_sigma`` > 0 (``[ingest] footprint_outlier_sigma``) first drops the :func:`statistical_outliers`:
+    stray readings (mixed depths at silhouettes, a neighbour's edge) lie apart from the object's surface, and a
+    few of them move the minimum enclosing circle, hence the base centre every azimuth is measured about."""
+    points = np.asarray(points)
+    out = statistical_outliers(points, outlier_sigma)
+    if out.any():
+        points = points[~out]
     up = plane.normal
     B = plane_basis(up)
     heights = plane.height(points)
@@ -302,6 +327,13 @@ def object_frame(points: np.ndarray, plane: PlaneFit) -> tuple[ObjectFrame, np.n
     origin = c2 @ B[:2] + plane.offset * up
     centre = origin + 0.5 * height * up
     return ObjectFrame(origin=origin, up=up, radius=max(radius, 1e-3), height=height), centre
+
+
+def outlier_sigma(cfg: dict, n_frames: int) -> float:
+    """``[ingest] footprint_outlier_sigma`` for a point set fused from ``n_frames`` frames: 0 (the filter off) for
+    a single frame, where a thin part is a strip of pixels a few wide whose neighbour distances exceed a surface
+    patch's and the test would cut it, and for a config recorded before the key existed."""
+    return float(cfg["ingest"].get("footprint_outlier_sigma", 0.0)) if n_frames > 1 else 0.0
 
 
 def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
@@ -321,7 +353,7 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
         pts = np.concatenate(pts_id[oid])
         if len(pts) < 10:
             continue
-        fr, centre = object_frame(pts, plane)
+        fr, centre = object_frame(pts, plane, outlier_sigma(cfg, len(per_id[oid])))
         props.append(Proposal(f"{cap.name}/{oid}", str(oid), fr, centre, len(pts), per_id[oid]))
     return props
 
@@ -357,7 +389,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         sel = lab == l
         if sel.sum() < c["cluster_min_points"]:
             continue
-        fr, centre = object_frame(vox[sel], plane)
+        fr, centre = object_frame(vox[sel], plane, outlier_sigma(cfg, len(frames)))
         if fr.height < c["min_object_height_m"] or not (c["min_object_radius_m"] <= fr.radius <= c["max_object_radius_m"]):
             continue
         clusters.append((vox[sel], fr, centre))
@@ -473,7 +505,7 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         # the frame from every point the object holds now, its low band included (a base disc widens the
         # footprint), like a mask's pixels
         # (each within LOW_GROW_M of its grouped voxels: a base disc reaches farther out than its pegs do)
-        p.frame, p.center_world = object_frame(np.concatenate(g), plane)
+        p.frame, p.center_world = object_frame(np.concatenate(g), plane, outlier_sigma(cfg, len(g)))
         out.append(p)
     return out
 

@@ -30,6 +30,7 @@ volume is partial (observed = 0 where unseen).
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -67,12 +68,15 @@ class View:
 
     depth (H, W) metres (0 = no reading); rgb (H, W, 3) uint8; K (3, 3); cam_to_world (4, 4);
     pixels: flat indices (M,) into (H, W) of the pixels that belong to the object.
+    flying: (H, W) bool ``depthedges.flying_pixels(depth)`` when the caller has it (a frame's, computed once for
+    all its objects); None: lifting tests the pixels it reads (``depthedges.steady_depth_at``, the same flags).
     """
     depth: np.ndarray
     rgb: np.ndarray
     K: np.ndarray
     cam_to_world: np.ndarray
     pixels: np.ndarray
+    flying: np.ndarray | None = None
 
 
 @dataclass
@@ -100,6 +104,15 @@ def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarr
     local[..., 1] = rho[:, None, None] * np.sin(phi)[None, :, None]
     local[..., 2] = z[None, None, :]
     return local @ basis + frame.origin
+
+
+@lru_cache(maxsize=64)
+def _basis(up: bytes) -> np.ndarray:
+    """``plane_basis`` of the up vector (3,) float64 given by its bytes, read-only: the objects of a capture
+    share their plane's up, and the basis costs more than a thousand of their cells' arithmetic."""
+    b = plane_basis(np.frombuffer(up, np.float64))
+    b.setflags(write=False)
+    return b
 
 
 def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.ndarray,
@@ -161,7 +174,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    basis = plane_basis(frame.up)                     # once per object: the centres and the splat share it
+    basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
     centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
     cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
     margin = grid.carve_margin_cells * cell
@@ -177,8 +190,12 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         r = np.rint(uv[:, 1]).astype(np.intp)
         inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
         d = np.zeros(n_cells)
-        # depth at the cells' pixels, flying pixels read as 0 (tested at those pixels only)
-        d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
+        # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
+        if v.flying is None:
+            d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
+        else:
+            at = r[inside] * w + u[inside]
+            d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
         if grid.carve_to_plane:

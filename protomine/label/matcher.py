@@ -154,6 +154,27 @@ class ViewSearch:
         self.face_bank = ExactFaces.build(self.bank, face_up, face_symmetry, scales) if exact_faces and tilted else None
         self.refiner = (PoseRefiner(P, V, scales, self.bank if tilted else None, top=refine_top)
                         if refine_top > 0 else None)
+        self.views = None   # view prototypes (see :meth:`vote`), set by the Matcher of a library that has them
+        self.K = int(P.shape[0])
+
+    def set_views(self, owner: np.ndarray, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...]) -> None:
+        """View prototypes owner (M,) (their prototypes), P (M, C, R, A, H), V (M, R, A, H) (``mine.pipeline.view_prototypes``)."""
+        owner = np.asarray(owner, np.int64)
+        self.views = (owner, PoseBank(np.asarray(P, np.float32), np.asarray(V, np.float32), scales)) if len(owner) else None
+
+    def vote(self, X: np.ndarray, W: np.ndarray, D: np.ndarray) -> np.ndarray:
+        """The distances (n, K) that decide the class: per prototype the nearer of its pose-searched distance D
+        (n, K) and its view prototypes' (searched over yaw x scale in their face's frame); D itself without
+        view prototypes."""
+        if self.views is None:
+            return D
+        owner, bank = self.views
+        cs = self.chunk_size
+        Dv = np.concatenate([bank.match(X[i:i + cs], W[i:i + cs]).D for i in range(0, len(X), cs)]).astype(np.float64)
+        Dv = np.where(np.isfinite(Dv), Dv, np.inf)
+        best = np.full((len(X), self.K), np.inf)
+        np.minimum.at(best.T, owner, Dv.T)   # per prototype, its nearest view prototype
+        return np.fmin(D, best)
 
     def poses(self, X: np.ndarray, W: np.ndarray):
         """Views X (n, C, R, A, H), W (n, R, A, H) -> D, yaw_deg (raw, in the matched copy's frame), scale (n, K),
@@ -216,6 +237,9 @@ class Matcher:
         self.search = ViewSearch(self.P, self.V, pr["aspect"], self.scales, self.tilts, pr["face_up"], pr["face_symmetry"],
                                  exact_faces=self.exact_faces, refine_top=self.refine_top, chunk_size=self.chunk_size)
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
+        if "view_owner" in pr and len(pr["view_owner"]):
+            vv = np.asarray(pr["view_weights"], np.float32)
+            self.search.set_views(pr["view_owner"], pr["view_features"], vv if self.weighted else np.ones_like(vv), self.scales)
 
     @property
     def K(self) -> int:
@@ -253,6 +277,8 @@ class Matcher:
         S = np.where(np.isfinite(D) & np.isfinite(Dr), S, 0.0)
         # the assignment rule of mining (engine: argmin of the pose-minimised distance); the calibrated
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
+        # view prototypes (when the library has them) vote on the class; pose and score stay the 3-D prototype's
+        D = self.search.vote(X, W, D)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         pr = self.library.prototypes
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],

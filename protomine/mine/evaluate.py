@@ -102,11 +102,14 @@ def cluster_yaw_offsets(lib: Library, truth: dict[str, dict], *, prototype_perio
     return out
 
 
-def symmetry_rotations(symmetry: str) -> np.ndarray:
-    """(G, 3, 3) rotations about z that leave a class with this truth symmetry unchanged (continuous: every
-    10 degrees, finer than any error that matters here)."""
+def symmetry_rotations(symmetry: str) -> np.ndarray | None:
+    """(G, 3, 3) rotations about z that leave a class with this truth symmetry unchanged; None for a continuous
+    symmetry (``audit.metrics`` then takes the least angle over every rotation about z exactly: sampled every
+    10 degrees it read up to 5 degrees of error into a perfectly posed cylinder)."""
     per = class_period(symmetry)
-    n = 36 if per == 0 else int(round(360.0 / per))
+    if per == 0:
+        return None
+    n = int(round(360.0 / per))
     return rot.yaw_matrix(np.arange(n) * 360.0 / n)
 
 

@@ -27,7 +27,10 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  the single-view calibration of matches on a face other than the canonical one (a tilted
                  copy is resampled, so the same object fits it worse than the canonical prototype;
                  single_mu, single_sigma then calibrate the canonical face's matches only).  A library
-                 without them scores every match with single_mu, single_sigma
+                 without them scores every match with single_mu, single_sigma; optional view_owner,
+                 view_face (M,), view_features (M, C, R, A, H), view_weights (M, R, A, H): view prototypes
+                 (``pipeline.view_prototypes``, ``[mine] view_prototype_members``), the mean aligned single
+                 views of the members resting on one face of a prototype, in the frame of that face
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
@@ -69,7 +72,11 @@ PROTO_STR = ("origin", "name", "name_example")
 PROTO_OPTIONAL = ("cell_reliability",     # (K, R, H) single-view cell weights (``reliability``); libraries before it have none
                   "symmetry_rotations",   # (K, S, 4) symmetries that move up (``symmetry.tilt_symmetries``); none before it
                   "single_tilt_mu",       # (K,) single-view calibration of matches on another face; none before it
-                  "single_tilt_sigma")
+                  "single_tilt_sigma",
+                  "view_owner",           # (M,) view prototypes (``pipeline.view_prototypes``): prototype of each,
+                  "view_face",            # (M,) its resting face,
+                  "view_features",        # (M, C, R, A, H), (M, R, A, H) mean aligned single views; none when off
+                  "view_weights")
 MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance",
                  "face", "rotation")
 
