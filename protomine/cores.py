@@ -168,7 +168,8 @@ def large_blocks_mapped(threshold: int = TILT_MMAP_THRESHOLD):
     (in use: a steady ~300 MB).  Measured on 600 tumbled objects (K = 16, the bench's tilt_mining settings, 2 threads,
     34 passes, same session): peak RSS crept 975 -> 1,705 MB over the passes with the 64 MB threshold, 898 -> 1,152 MB
     with 8 MB (the heap 1.75 GB -> 0.45 GB of address space), 332 s -> 245 s at load 2.5-6; on the row's 3,000
-    objects (same session) peak RSS 2,052 -> 1,682 MB, CPU 565 s -> 542 s.  Fitted arrays identical to the bit."""
+    objects (same session) peak RSS 2,052 -> 1,682 MB, CPU 565 s -> 542 s.  Fitted arrays identical to the bit.
+    4 MB: 841 -> 1,052 MB on the 600, but 1,675 MB and 722 s CPU on the 3,000 (more blocks mapped and zeroed afresh)."""
     changed = reuse_freed_memory(mmap_threshold=threshold)
     try:
         yield changed
