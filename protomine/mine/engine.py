@@ -651,6 +651,12 @@ class PoseKMeans:
         """Fit prototypes to every object of ``source``; returns self."""
         scales = self._validate(source)
         use_cores()
+        if self._grid() is None:
+            return self._fit(source, scales)
+        with cores.large_blocks_mapped():  # the tilt search's large blocks of many sizes would fragment the heap
+            return self._fit(source, scales)
+
+    def _fit(self, source: Source, scales: tuple[float, ...]) -> PoseKMeans:
         rng = np.random.default_rng(self.random_state)
         N, K = len(source), self.n_clusters
         if self.init is not None:
