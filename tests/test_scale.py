@@ -400,26 +400,35 @@ def test_pass_in_few_tasks_sums_chunk_by_chunk_like_one_process(tmp_path):
     assert len(many._tasks(list(range(3 * dist.MAX_CHUNKS_PER_TASK + 1)))) == 4     # capped run length
 
 
+_LARGE_BLOCKS_CHILD = """
+import numpy as np
+from protomine import cores
+
+def in_heap(a):  # proc(5), /proc/[pid]/maps: the main arena's brk heap is "[heap]"
+    addr = a.__array_interface__["data"][0]
+    for line in open("/proc/self/maps"):
+        if line.rstrip().endswith("[heap]"):
+            lo, hi = (int(v, 16) for v in line.split()[0].split("-"))
+            if lo <= addr < hi:
+                return True
+    return False
+
+n = 48 * 2**20 // 8  # 48 MB: above 8 MB, below protomine's usual 64 MB
+with cores.large_blocks_mapped(8 * 2**20) as changed:
+    cores.return_free_memory()
+    inside = np.ones(n)
+cores.return_free_memory()
+outside = np.ones(n)  # the 64 MB threshold again: the heap grows
+print(bool(changed), in_heap(inside), in_heap(outside))
+"""
+
+
 @pytest.mark.skipif(__import__("platform").libc_ver()[0] != "glibc", reason="glibc's malloc")
 def test_large_blocks_mapped_maps_large_blocks_on_their_own_only_within_the_block():
-    from protomine import cores
-
-    def in_heap(a: np.ndarray) -> bool:  # proc(5), /proc/[pid]/maps: the main arena's brk heap is "[heap]"
-        addr = a.__array_interface__["data"][0]
-        for line in open("/proc/self/maps"):
-            if line.rstrip().endswith("[heap]"):
-                lo, hi = (int(v, 16) for v in line.split()[0].split("-"))
-                if lo <= addr < hi:
-                    return True
-        return False
-
-    # mallopt(3), M_MMAP_THRESHOLD: a request of at least the threshold that the heap's free memory cannot serve gets
-    # its own mmap instead of growing the heap (malloc_trim(3) first gives the heap's free top back)
-    n = 48 * 2**20 // 8  # 48 MB: above 8 MB, below protomine's usual 64 MB
-    with cores.large_blocks_mapped(8 * 2**20) as changed:
-        cores.return_free_memory()
-        inside = np.ones(n)
-    assert changed and not in_heap(inside)
-    cores.return_free_memory()
-    outside = np.ones(n)  # the 64 MB threshold again: the heap grows
-    assert in_heap(outside)
+    # mallopt(3), M_MMAP_THRESHOLD: a request of at least the threshold that the heap's free memory cannot serve
+    # gets its own mmap instead of growing the heap.  Run in a fresh interpreter: in the test process the heap
+    # may already hold 48 MB of free memory left by earlier tests, which would serve the block either way.
+    import subprocess
+    import sys
+    out = subprocess.run([sys.executable, "-c", _LARGE_BLOCKS_CHILD], capture_output=True, text=True, check=True)
+    assert out.stdout.split() == ["True", "False", "True"]
