@@ -20,6 +20,7 @@ import numpy as np
 
 from .. import cores
 from ..config import load_config
+from ..ingest.depthedges import flying_pixels
 from ..mine.library import Library
 from ..mine.synthetic import synthetic_prototypes
 
@@ -67,7 +68,6 @@ def bench_label(quick: bool, seed: int) -> dict:
     cores.set_torch_threads(1)
     matcher.match(np.concatenate([lift_frame(sc, fid, matcher.grid, w, geometry_ids=False).volumes
                                   for sc, fid, w in scenes[:1]]))
-    from ..ingest.depthedges import flying_pixels
     n_obj, lift_s, match_s, cpu_s, flags_s = 0, 0.0, 0.0, 0.0, 0.0
     load0 = os.getloadavg()[0]
     for _ in range(passes):

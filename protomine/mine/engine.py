@@ -493,13 +493,20 @@ def _pass_outputs(source: Source, labels: np.ndarray, yaw: np.ndarray, scale: np
 MIN_MEAN_WEIGHT = 1e-4
 
 
-def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: np.ndarray, V_old: np.ndarray):
-    """New prototypes from the aligned sums; empty clusters take the worst-fitting objects."""
+def weighted_means(num: np.ndarray, den: np.ndarray, count: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Prototypes P (K, C, R, A, H) and weights V (K, R, A, H) (float32) from aligned sums num = sum w x
+    (K, C, R, A, H), den = sum w (K, R, A, H) of count (K,) members each."""
     # a cell counts as observed when its mean member weight exceeds MIN_MEAN_WEIGHT: far above the
     # rounding noise of the Fourier-domain sums (~1e-6), so never-seen cells stay exactly 0
     thr = MIN_MEAN_WEIGHT * np.maximum(count, 1)[:, None, None, None]
     P = np.where(den[:, None] > thr[:, None], num / np.maximum(den[:, None], thr[:, None]), 0.0).astype(np.float32)
     V = np.clip(den / np.maximum(count, 1)[:, None, None, None], 0.0, 1.0).astype(np.float32)
+    return P, V
+
+
+def _update(num: np.ndarray, den: np.ndarray, count: np.ndarray, worst, P_old: np.ndarray, V_old: np.ndarray):
+    """New prototypes from the aligned sums; empty clusters take the worst-fitting objects."""
+    P, V = weighted_means(num, den, count)
     wx, ww = worst
     empty = np.flatnonzero(count == 0)
     for j, k in enumerate(empty):

@@ -410,7 +410,7 @@ def view_prototypes(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray,
     P (K, C, R, A, H), V (K, R, A, H) the library's prototypes (its channel weights); labels, face (N,) the
     members' prototype and resting face; face_up (K, F, 3), face_symmetry (K, F) (-1 = padding).  Returns
     view_owner, view_face (M,), view_features (M, C, R, A, H), view_weights (M, R, A, H) (M = 0: none)."""
-    from .engine import MIN_MEAN_WEIGHT, align_to_prototype
+    from .engine import align_to_prototype, weighted_means
     m = cfg["mine"]
     K, C, R, A, H = P.shape
     owner, fidx, Ps, Vs = [], [], [], []
@@ -430,12 +430,10 @@ def view_prototypes(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray,
             if not ok.any():
                 continue
             xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
-            n = int(ok.sum())
-            den = wa.sum(axis=0, dtype=np.float64)
-            thr = MIN_MEAN_WEIGHT * n   # as the engine's update: cells no view saw stay exactly 0
             num = np.einsum("nrah,ncrah->crah", wa.astype(np.float64), xa.astype(np.float64))
-            Ps.append(np.where(den[None] > thr, num / np.maximum(den[None], thr), 0.0))
-            Vs.append(np.clip(den / n, 0.0, 1.0))
+            pv, vv = weighted_means(num[None], wa.sum(axis=0, dtype=np.float64)[None], np.array([ok.sum()]))
+            Ps.append(pv[0])   # as the engine's update: cells no view saw stay exactly 0
+            Vs.append(vv[0])
             owner.append(k)
             fidx.append(int(f))
     return {"view_owner": np.asarray(owner, np.int64), "view_face": np.asarray(fidx, np.int64),
