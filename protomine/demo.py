@@ -69,7 +69,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     from .curate.oneshot import find_similar, retrieval_scores
     from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
-    from .label.evaluate import evaluate_labels
+    from .label.evaluate import evaluate_labels, record_groups
     from .label.matcher import label_captures
     from .label.overlays import write_overlays
     from .provenance import file_fingerprint, provenance
@@ -89,11 +89,11 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
                f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
                f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")
     depth_model = json.loads((scenes / "scenario.json").read_text()).get("depth_model", {})
-    models = sorted({depth_model.get(c.name, "gaussian") for c in singles})
-    for model in models if len(models) > 1 else []:
-        sub = [r for r in recs if depth_model.get(r["capture"], "gaussian") == model]
+    for name, sub in record_groups(recs, depth_model):
         e = evaluate_labels(sub, scenes / "truth_full.csv", lib, scenes / "truth_full.csv")
-        typer.echo(f"       {model} depth ({len({r['capture'] for r in sub})} views): accuracy {e['accuracy']:.3f}, "
+        size = (f"{len({r['capture'] for r in sub})} views" if name.endswith("depth") else
+                f"{e['n_known']} known, {e['n_unknown']} never-mined objects")
+        typer.echo(f"       {name} ({size}): accuracy {e['accuracy']:.3f}, "
                    f"unknown AUROC {e['auroc']:.3f}, flagged {e['unknown_flagged']:.0%} of unknown, "
                    f"{e['known_flagged']:.0%} of known")
     # one-shot: the user scans new items; one example of a class mining never saw finds the others

@@ -149,3 +149,21 @@ def test_deciding_by_distance_is_at_least_as_accurate_as_by_score(labelled):
     out = labelled["out"]
     ev = evaluate_labels(recs, out / "truth_full.csv", labelled["lib"], out / "truth_full.csv", scores=S)
     assert ev["accuracy"] >= ev["accuracy_by_score"]
+
+
+def test_record_groups_split_by_depth_model_and_by_the_face_matched():
+    """The demo's breakdown (label.evaluate.record_groups): the depth-model groups and the face groups each
+    partition the records, by the record's capture (its model, "gaussian" when the scenario names none) and by
+    whether it matched on the canonical face (face 0); checked against a partition written out by hand
+    (common practice: every record in exactly one group of each kind)."""
+    from protomine.label.evaluate import record_groups
+    recs = [{"capture": c, "face": f, "i": i} for i, (c, f) in enumerate(
+        [("a", 0), ("a", 2), ("b", 0), ("b", None), ("c", 1), ("c", 0)])]
+    groups = dict(record_groups(recs, {"a": "gaussian", "b": "stereo"}))   # c: not named -> gaussian
+    assert list(groups) == ["gaussian depth", "stereo depth", "canonical face", "other face"]
+    ids = lambda name: [r["i"] for r in groups[name]]  # noqa: E731
+    assert ids("gaussian depth") == [0, 1, 4, 5] and ids("stereo depth") == [2, 3]
+    assert ids("canonical face") == [0, 2, 5] and ids("other face") == [1, 3, 4]
+    # one depth model: no depth groups; a kind no record has: left out
+    one = record_groups([r for r in recs if r["face"] == 0], {"a": "stereo", "b": "stereo", "c": "stereo"})
+    assert [name for name, _ in one] == ["canonical face"]

@@ -58,6 +58,24 @@ def evaluate_labels(records: list[dict], truth_full_csv: str | Path, library: Li
     return _evaluate(records, truth, library, mined, radius_m, scores)
 
 
+def record_groups(records: list[dict], depth_model: dict[str, str] | None = None) -> list[tuple[str, list[dict]]]:
+    """The subsets of ``records`` the demo reports apart, as (name, records) in a fixed order: per depth model of
+    their capture (``depth_model``: capture -> model, "gaussian" when absent; only when the records span more
+    than one), then per kind of match: "canonical face" (``face`` 0: the matched pose rests the prototype on its
+    canonical face, its +z) and "other face" (on a copy resting on another face, tilted; a record no prototype
+    matched, ``face`` None, counts here).  The score separates never-mined objects far better on the first kind
+    than on the second (README "Score"), so the two are measured apart.  Empty subsets are left out."""
+    depth_model = depth_model or {}
+    out: list[tuple[str, list[dict]]] = []
+    models = sorted({depth_model.get(r["capture"], "gaussian") for r in records})
+    for model in models if len(models) > 1 else []:
+        out.append((f"{model} depth", [r for r in records if depth_model.get(r["capture"], "gaussian") == model]))
+    canonical = [r for r in records if r.get("face") == 0]
+    other = [r for r in records if r.get("face") != 0]
+    out += [("canonical face", canonical), ("other face", other)]
+    return [(name, sub) for name, sub in out if sub]
+
+
 def match_records(records: list[dict], truth: dict[str, dict], radius_m: float) -> list[str | None]:
     """Truth object id of every record (None when unmatched): by id, else by base point within radius_m."""
     out: list[str | None] = [r["object"] if r["object"] in truth else None for r in records]
