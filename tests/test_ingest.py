@@ -232,3 +232,41 @@ def test_object_frame_centre_ignores_stray_readings():
     assert np.linalg.norm(plain.origin[:2]) > 0.015
     assert np.linalg.norm(filtered.origin[:2]) < 0.003
     assert abs(filtered.radius - 0.13) < 0.003
+
+
+def test_centre_candidates_recover_a_circle_from_its_camera_facing_arc():
+    """Geometry of a circle's partial arc (from memory, elementary): the points of an arc of half-angle theta
+    <= 90 deg of a circle (centre c, radius R) have as minimum enclosing circle the chord's diametral circle,
+    centred at the chord's midpoint, R cos(theta) from c toward the arc, radius R sin(theta).  A view that sees
+    only the camera-facing arc (a tripod's legs, the far one hidden) so places the base centre too near the camera
+    and the footprint too small; the candidate moved cot(theta) visible radii away from the camera, with the radius
+    of the smallest circle about it that holds the arc, is the whole circle again (c, R).  In a tilted world frame
+    with the plane off the origin, so nothing depends on world axes."""
+    from protomine.geometry import plane_basis
+    from protomine.ingest.plane import PlaneFit
+    from protomine.ingest.proposals import centre_candidates, object_frame
+    rng = np.random.default_rng(4)
+    up = np.array([0.3, -0.5, 0.81])
+    up /= np.linalg.norm(up)
+    plane = PlaneFit(up, 0.7, 0.8, 0.002, 10)
+    B = plane_basis(up)
+    c2, R, theta = np.array([0.4, -0.2]), 0.12, np.deg2rad(60.0)
+    toward = np.array([np.cos(2.0), np.sin(2.0)])              # in-plane direction from the centre to the camera
+    a = np.arctan2(toward[1], toward[0]) + rng.uniform(-theta, theta, 3000)
+    a[:2] = np.arctan2(toward[1], toward[0]) + np.array([-theta, theta])   # the arc's ends are seen
+    xy = c2 + R * np.stack([np.cos(a), np.sin(a)], 1)
+    h = rng.uniform(0.0, 0.05, len(xy))
+    pts = xy @ B[:2] + (plane.offset + h)[:, None] * up
+    camera = (c2 + 0.8 * toward) @ B[:2] + (plane.offset + 0.5) * up
+    frame, _ = object_frame(pts, plane)
+    seen = frame.origin @ B[:2].T
+    np.testing.assert_allclose(seen, c2 + R * np.cos(theta) * toward, atol=1e-3)
+    assert abs(frame.radius - R * np.sin(theta)) < 1e-3
+    cands = centre_candidates(pts, frame, camera, (0.0, 1.0 / np.tan(theta)))
+    assert cands[0] is frame                                    # offset 0: the visible circle itself
+    np.testing.assert_allclose(cands[1].origin @ B[:2].T, c2, atol=1e-3)
+    assert abs(float(cands[1].origin @ up) - plane.offset) < 1e-9  # still on the plane
+    assert abs(cands[1].radius - R) < 1e-3
+    assert cands[1].height == frame.height
+    # a camera straight above the centre has no direction away from it: the visible circle only
+    assert centre_candidates(pts, frame, frame.origin + 0.5 * up, (0.0, 0.5)) == [frame]

@@ -167,3 +167,38 @@ def test_record_groups_split_by_depth_model_and_by_the_face_matched():
     # one depth model: no depth groups; a kind no record has: left out
     one = record_groups([r for r in recs if r["face"] == 0], {"a": "stereo", "b": "stereo", "c": "stereo"})
     assert [name for name, _ in one] == ["canonical face"]
+
+
+def test_candidate_centres_keep_per_prototype_the_nearest_candidate(labelled):
+    """``Matcher.match`` on volumes (n, C, ...) (each object lifted about C candidate base centres,
+    ``[mine] view_centre_offsets``) gives, per object and prototype, every figure of the candidate at the least
+    distance, by definition: checked against C separate matches of (n, ...) volumes and an explicit argmin."""
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    st = open_store(labelled["out"] / "objects.h5")
+    vols = st.read_single_views(np.arange(min(12, len(st.single_object))))
+    mt = make_matcher(labelled["lib"], labelled["cfg"])
+    cand = np.stack([vols, vols[::-1], np.roll(vols, 1, axis=0)], axis=1)        # (n, 3, 6, R, A, H)
+    got = mt.match(cand)
+    each = [mt.match(np.ascontiguousarray(cand[:, c])) for c in range(3)]
+    n, K = len(vols), mt.K
+    for i in range(n):
+        for k in range(K):
+            d = [e["distance"][i, k] for e in each]
+            c = int(np.argmin([x if np.isfinite(x) else np.inf for x in d]))
+            assert got["centre"][i, k] == c
+            for key in ("distance", "score", "yaw_deg", "fit_scale", "face"):
+                assert got[key][i, k] == each[c][key][i, k] or (np.isnan(got[key][i, k]) and np.isnan(each[c][key][i, k]))
+        row = np.where(np.isfinite(got["distance"][i]), got["distance"][i], np.inf)
+        assert got["best"][i] == (int(np.argmin(row)) if np.isfinite(row).any() else -1)
+    # label_captures with the switch on: one record per object, each lifted about three candidate centres
+    lib = labelled["lib"]
+    cfg_lib = lib.config
+    cfg_lib["mine"]["view_centre_offsets"] = [0.0, 0.25, 0.5]
+    lib.attrs["config"], before = json.dumps(cfg_lib), lib.attrs["config"]
+    try:
+        recs = label_captures(lib, labelled["singles"][:2], labelled["cfg"], seed=0)
+    finally:
+        lib.attrs["config"] = before
+    base = [r for r in labelled["weighted"] if r["capture"] in {p.name for p in labelled["singles"][:2]}]
+    assert [r["object"] for r in recs] == [r["object"] for r in base]

@@ -304,6 +304,45 @@ def statistical_outliers(points: np.ndarray, sigma: float, k: int = OUTLIER_NEIG
     return md > md.mean() + sigma * md.std()
 
 
+def footprint(points: np.ndarray, basis: np.ndarray) -> np.ndarray:
+    """In-plane coordinates (M', 2) of an object's world points (M, 3) (``basis``: the plane's ``plane_basis``),
+    without the far stragglers (beyond ``FOOTPRINT_TRIM`` percent of the distances from the median, x 1.15)."""
+    xy = np.asarray(points) @ basis[:2].T
+    r = np.linalg.norm(xy - np.median(xy, axis=0), axis=1)
+    return xy[r <= np.percentile(r, FOOTPRINT_TRIM) * 1.15]
+
+
+def centre_candidates(points: np.ndarray, frame: ObjectFrame, camera: np.ndarray, offsets: tuple[float, ...]
+                      ) -> list[ObjectFrame]:
+    """Object frames for a view of one object from one camera: ``frame`` (the visible footprint's minimum
+    enclosing circle, :func:`object_frame`) moved by each of ``offsets`` x its radius along the in-plane
+    direction away from the camera (world position ``camera`` (3,)), each with the radius of the smallest circle
+    about the new centre that still holds the visible footprint.  One view shows the side facing the camera only:
+    the hidden side lies beyond the visible points, so the whole footprint's centre lies at or beyond the visible
+    one's, and a part hidden in this view (a leg behind the column) pulls the visible circle toward the camera and
+    shrinks it.  The view search picks the candidate whose volume fits a prototype best.  Offset 0 is ``frame``
+    itself; a camera straight above the centre (no direction away from it) gives ``frame`` only."""
+    up = np.asarray(frame.up, np.float64)
+    B = plane_basis(up)
+    away = (np.asarray(frame.origin, np.float64) - np.asarray(camera, np.float64)) @ B[:2].T
+    n = float(np.linalg.norm(away))
+    if n < 1e-9 * max(frame.radius, 1e-9) or not offsets:
+        return [frame]
+    away /= n
+    xy = footprint(points, B)
+    c0 = np.asarray(frame.origin, np.float64) @ B[:2].T
+    out = []
+    for o in offsets:
+        if o == 0:
+            out.append(frame)
+            continue
+        c = c0 + o * frame.radius * away
+        r = float(np.max(np.linalg.norm(xy - c, axis=1))) if len(xy) else frame.radius
+        origin = np.asarray(frame.origin, np.float64) + (o * frame.radius * away) @ B[:2]
+        out.append(ObjectFrame(origin=origin, up=frame.up, radius=max(r, frame.radius), height=frame.height))
+    return out
+
+
 def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0) -> tuple[ObjectFrame, np.ndarray]:
     """Object frame and centre (3,) from the object's world points (M, 3).
 
@@ -318,11 +357,7 @@ def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0
     B = plane_basis(up)
     heights = plane.height(points)
     height = max(float(np.percentile(heights, HEIGHT_QUANTILE)), 1e-3)
-    xy = points @ B[:2].T                                    # (M, 2) in-plane coordinates
-    med = np.median(xy, axis=0)
-    r = np.linalg.norm(xy - med, axis=1)
-    keep = r <= np.percentile(r, FOOTPRINT_TRIM) * 1.15
-    c2, radius = min_enclosing_circle(xy[keep])
+    c2, radius = min_enclosing_circle(footprint(points, B))
     # base centre: the circle's centre, on the plane
     origin = c2 @ B[:2] + plane.offset * up
     centre = origin + 0.5 * height * up

@@ -52,7 +52,7 @@ import numpy as np
 from ..capture import Capture, read_capture
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
-from ..ingest.proposals import SceneObjects, find_objects
+from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
 from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..geometry import plane_basis
@@ -101,6 +101,7 @@ class Matcher:
     tolerant: bool = False
     rings: tuple[int, float] | None = None
     refine_top: int = 0
+    centre_offsets: tuple[float, ...] = ()
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -132,7 +133,23 @@ class Matcher:
 
     def match(self, volumes: np.ndarray) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
-        (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none)."""
+        (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
+        Volumes (n, C, 6, R, A, H): C candidate object frames of each object (:func:`lift_frame` with
+        ``centre_offsets``); per object and prototype the candidate at the least distance gives every figure,
+        and ``centre`` (n, K) says which."""
+        if volumes.ndim == 6:
+            n, C = volumes.shape[:2]
+            m = self.match(volumes.reshape((n * C,) + volumes.shape[2:]))
+            if n == 0:
+                return {**m, "centre": np.zeros((0, self.K), int)}
+            D = m["distance"].reshape(n, C, self.K)
+            c = np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)          # (n, K)
+            i, k = np.arange(n)[:, None], np.arange(self.K)[None, :]
+            out = {key: m[key].reshape((n, C) + m[key].shape[1:])[i, c, k] for key in m if key != "best"}
+            out["best"] = np.where(np.isfinite(out["distance"]).any(axis=1),
+                                   np.argmin(np.where(np.isfinite(out["distance"]), out["distance"], np.inf), axis=1), -1)
+            out["centre"] = c
+            return out
         n = volumes.shape[0]
         if n == 0:
             z = np.zeros((0, self.K))
@@ -167,6 +184,12 @@ class Matcher:
                 "rotation": rotation, "best": best}
 
 
+def view_centre_offsets(cfg: dict) -> tuple[float, ...]:
+    """``[mine] view_centre_offsets`` of a library's config: () when off ([0.0], or a library mined before the key)."""
+    offs = tuple(float(o) for o in (cfg["mine"].get("view_centre_offsets") or [0.0]))
+    return () if offs == (0.0,) else offs
+
+
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
     volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
@@ -184,7 +207,8 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
     return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
                    library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)),
                    tolerant=bool(m.get("tolerant_residual", False)), rings=score_rings(lib_cfg, grid.radial_bins),
-                   refine_top=int(m.get("label_refine_top", 0)))
+                   refine_top=int(m.get("label_refine_top", 0)),
+                   centre_offsets=view_centre_offsets(lib_cfg))
 
 
 @dataclass
@@ -195,8 +219,12 @@ class FrameObjects:
     facts: list[dict]
 
 
-def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool) -> FrameObjects:
-    """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields."""
+def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool,
+               centre_offsets: tuple[float, ...] = ()) -> FrameObjects:
+    """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields.
+    With ``centre_offsets`` (``[mine] view_centre_offsets``) each object is lifted about each candidate base
+    centre of ``ingest.proposals.centre_candidates`` (the visible footprint's circle moved away from the camera):
+    volumes (n, C, 6, R, A, H), C = len(centre_offsets), which :meth:`Matcher.match` searches together."""
     height = scene.capture.intrinsics.height
     fd = next((f for f in scene.frames if f.id == frame_id), None)
     mask = None if geometry_ids or fd is None or fd.mask is None else fd.mask.reshape(-1)
@@ -205,7 +233,14 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         pix = p.pixels.get(frame_id)
         if pix is None or len(pix) < MIN_PIXELS:
             continue
-        vols.append(lift(scene.views(p, [frame_id]), p.frame, grid))
+        views = scene.views(p, [frame_id])
+        if centre_offsets:
+            pts = fd.points[np.isin(fd.pixels, pix)]
+            frames = centre_candidates(pts, p.frame, fd.cam_to_world[:3, 3], centre_offsets)
+            frames += [frames[0]] * (len(centre_offsets) - len(frames))   # camera above the centre: repeats
+            vols.append(np.stack([lift(views, f, grid) for f in frames]))
+        else:
+            vols.append(lift(views, p.frame, grid))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
         # the picture's extent: the whole mask region when masks name the object (pixels without a depth
@@ -217,7 +252,8 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
                       "base_world": [float(x) for x in p.frame.origin], "up": [float(x) for x in p.frame.up],
                       "size_m": [float(p.frame.radius), float(p.frame.height)]})
     R, A, H = grid.shape
-    stack = np.stack(vols) if vols else np.zeros((0, 6, R, A, H), np.float32)
+    stack = np.stack(vols) if vols else np.zeros((0,) + ((len(centre_offsets),) if centre_offsets else ()) + (6, R, A, H),
+                                                   np.float32)
     return FrameObjects(frame_id, stack, facts)
 
 
@@ -359,7 +395,7 @@ def _lift_capture(matcher: Matcher, cap: Capture, cfg: dict, seed: int, use_mask
     for fr in cap.frames:
         scene = find_objects(cap, cfg, rng, frame_ids=[fr.id], use_masks=masks)
         t0 = time.perf_counter()
-        fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks)
+        fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks, centre_offsets=matcher.centre_offsets)
         st["lift_s"] += time.perf_counter() - t0
         lifted.append((cap.name, fo))
         b.advance()
