@@ -40,6 +40,22 @@ when the library has them) the same with the library's median shift single_tilt_
 max(single_sigma, median_k single_tilt_sigma_k).
 Symmetry of the one-shot prototype: ``symmetry.detect_symmetry`` with the instance noise level
 exp(mu_1) / 2 per cell (a distance is a mean squared difference of two noisy instances).
+
+Query expansion (``[mine] find_expand`` = k > 0; default 0 = off)
+-----------------------------------------------------------------
+A single view shows one side, so its nearest matches are the views of a similar side.  Average query expansion
+(Chum et al., "Total Recall", ICCV 2007): the example's k nearest matches (ties by object id) are aligned into its
+frame with the poses the search found (yaw and scale undone by ``engine.align_to_prototype``, the tilt by
+``TiltBank.untilt_many``, as mining aligns members into their prototype) and fused with the example by
+``engine.weighted_means`` (observation-weighted mean; the example weighs 1, a match its one-shot score, so a poor
+top match does little), and every object is searched again against the fused prototype, which has seen more
+sides.  With ``[mine] find_reciprocal`` = r > 0 a match joins only when it is a k-reciprocal neighbour (Zhong et
+al., CVPR 2017): its 2k nearest are each searched against the store as prototypes, and a match passes when fewer
+than r other objects are nearer to it than the example.  No match passing: no expansion.  The score of the
+expanded search is calibrated the same way with expanded exemplars: each calibration exemplar is fused with its k
+nearest fellow members (weighted by their single-exemplar scores) and the fit uses its other members only (clusters
+need k + ``MIN_CAL_MEMBERS`` members in the store).  The prototype returned (and added by ``--add``) is the fused
+one; its picture volume fuses the store volumes the same way.
 """
 from __future__ import annotations
 
