@@ -52,9 +52,11 @@ top match does little), and every object is searched again against the fused pro
 sides.  With ``[mine] find_reciprocal`` = r > 0 a match joins only when it is a k-reciprocal neighbour (Zhong et
 al., CVPR 2017): its 2k nearest are each searched against the store as prototypes, and a match passes when fewer
 than r other objects are nearer to it than the example.  No match passing: no expansion.  The score of the
-expanded search is calibrated the same way with expanded exemplars: each calibration exemplar is fused with its k
-nearest fellow members (weighted by their single-exemplar scores) and the fit uses its other members only (clusters
-need k + ``MIN_CAL_MEMBERS`` members in the store).  The prototype returned (and added by ``--add``) is the fused
+expanded search is calibrated the same way with expanded exemplars: a calibration exemplar's other members
+alternate (in the order of their mined distance) between two halves; the exemplar is fused with its k nearest of the
+first half (weighted by their single-exemplar scores) and the fit uses the second half (near and far members alike;
+fitting on the members left after taking the k nearest read the distances as larger than before expansion).
+Clusters need ``MIN_CAL_MEMBERS`` + max(k, ``MIN_CAL_MEMBERS``) members in the store.  The prototype returned (and added by ``--add``) is the fused
 one; its picture volume fuses the store volumes the same way.
 """
 from __future__ import annotations
@@ -152,14 +154,15 @@ def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float
                single: tuple[float, float] | None = None) -> tuple[float, float, str]:
     """(mu_1, sigma_1, how) of the one-shot score (module docstring).  ``expand`` > 0: of an expanded one-shot
     prototype; each exemplar is expanded with its ``expand`` nearest fellow members (weighted by their scores
-    under the single-exemplar calibration ``single``) and the fit uses the other members only."""
+    under the single-exemplar calibration ``single``) taken from every other member (in the order of their mined
+    distance) and the fit uses the rest."""
     m = library.members
     store_index = {oid: i for i, oid in enumerate(store.ids)}
     in_store = np.array([str(o) in store_index for o in m["object"]])
     exemplars, groups = [], []
     for k in range(library.n_clusters):
         rows = np.flatnonzero((m["cluster"] == k) & in_store & np.isfinite(m["distance"]))
-        if len(rows) < MIN_CAL_MEMBERS + expand:
+        if len(rows) < MIN_CAL_MEMBERS + (expand and max(expand, MIN_CAL_MEMBERS)):
             continue
         by_d = rows[np.argsort(m["distance"][rows], kind="stable")]
         ex = by_d[len(by_d) // 2]
@@ -181,12 +184,14 @@ def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float
             mu1, sigma1 = single
             P2, V2 = np.empty_like(Pe), np.empty_like(Ve)
             for j, r in enumerate(rows):
-                r = r[np.isfinite(D[r, j])]
+                # members alternate (in the order of their mined distance) between the half the exemplar is expanded
+                # from and the half the fit measures: the fit sees near and far members alike
+                r = r[0::2][np.isfinite(D[r[0::2], j])]
                 near = r[np.argsort(D[r, j], kind="stable")[:expand]]
                 P2[j], V2[j] = expanded_prototype(Pe[j], Ve[j], Xo[near], Wo[near], pm.yaw_deg[near, j], pm.scale[near, j],
                                                   pm.tilt[near, j], match_score(D[near, j], mu1, sigma1), float(aspects[j]),
                                                   scales, grid)
-                rows[j] = np.setdiff1d(rows[j], near)
+                rows[j] = rows[j][1::2]
             D = tilt_pose_distances(Xo, Wo, P2, V2, aspect=aspects, scales=scales, grid=grid).D
         fits = [log_distance_fit(D[r, j][np.isfinite(D[r, j])]) for j, r in enumerate(rows)]
         fits = [f for f in fits if np.isfinite(f[0])]
