@@ -40,6 +40,24 @@ when the library has them) the same with the library's median shift single_tilt_
 max(single_sigma, median_k single_tilt_sigma_k).
 Symmetry of the one-shot prototype: ``symmetry.detect_symmetry`` with the instance noise level
 exp(mu_1) / 2 per cell (a distance is a mean squared difference of two noisy instances).
+
+Query expansion (``[mine] find_expand`` = k > 0; default 0 = off)
+-----------------------------------------------------------------
+A single view shows one side, so its nearest matches are the views of a similar side.  Average query expansion
+(Chum et al., "Total Recall", ICCV 2007): the example's k nearest matches (ties by object id) are aligned into its
+frame with the poses the search found (yaw and scale undone by ``engine.align_to_prototype``, the tilt by
+``TiltBank.untilt_many``, as mining aligns members into their prototype) and fused with the example by
+``engine.weighted_means`` (observation-weighted mean; the example weighs 1, a match its one-shot score, so a poor
+top match does little), and every object is searched again against the fused prototype, which has seen more
+sides.  With ``[mine] find_reciprocal`` = r > 0 a match joins only when it is a k-reciprocal neighbour (Zhong et
+al., CVPR 2017): its 2k nearest are each searched against the store as prototypes, and a match passes when fewer
+than r other objects are nearer to it than the example.  No match passing: no expansion.  The score of the
+expanded search is calibrated the same way with expanded exemplars: a calibration exemplar's other members
+alternate (in the order of their mined distance) between two halves; the exemplar is fused with its k nearest of the
+first half (weighted by their single-exemplar scores) and the fit uses the second half (near and far members alike;
+fitting on the members left after taking the k nearest read the distances as larger than before expansion).
+Clusters need ``MIN_CAL_MEMBERS`` + max(k, ``MIN_CAL_MEMBERS``) members in the store.  The prototype returned (and added by ``--add``) is the fused
+one; its picture volume fuses the store volumes the same way.
 """
 from __future__ import annotations
 
@@ -55,6 +73,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
+from ..mine.engine import align_to_prototype, weighted_means
 from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
 from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_assignments
@@ -131,30 +150,50 @@ def _features(store: ObjectStore, idx: np.ndarray, weights: tuple[float, float])
 
 
 def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float], scales: tuple[float, ...],
-               example_idx: int, P: np.ndarray, V: np.ndarray, d_all: np.ndarray) -> tuple[float, float, str]:
-    """(mu_1, sigma_1, how) of the one-shot score (module docstring)."""
+               example_idx: int, d_all: np.ndarray, grid: TiltGrid | None, *, expand: int = 0,
+               single: tuple[float, float] | None = None) -> tuple[float, float, str]:
+    """(mu_1, sigma_1, how) of the one-shot score (module docstring).  ``expand`` > 0: of an expanded one-shot
+    prototype; each exemplar is expanded with its ``expand`` nearest fellow members (weighted by their scores
+    under the single-exemplar calibration ``single``) taken from every other member (in the order of their mined
+    distance) and the fit uses the rest."""
     m = library.members
     store_index = {oid: i for i, oid in enumerate(store.ids)}
     in_store = np.array([str(o) in store_index for o in m["object"]])
     exemplars, groups = [], []
     for k in range(library.n_clusters):
         rows = np.flatnonzero((m["cluster"] == k) & in_store & np.isfinite(m["distance"]))
-        if len(rows) < MIN_CAL_MEMBERS:
+        if len(rows) < MIN_CAL_MEMBERS + (expand and max(expand, MIN_CAL_MEMBERS)):
             continue
         by_d = rows[np.argsort(m["distance"][rows], kind="stable")]
         ex = by_d[len(by_d) // 2]
         others = by_d[by_d != ex]
-        others = others[np.unique(np.linspace(0, len(others) - 1, min(len(others), MAX_CAL_MEMBERS)).round().astype(int))]
+        others = others[np.unique(np.linspace(0, len(others) - 1, min(len(others), MAX_CAL_MEMBERS + expand)).round().astype(int))]
         exemplars.append(store_index[str(m["object"][ex])])
         groups.append([store_index[str(m["object"][r])] for r in others])
     if exemplars:
-        Pe, Ve = _features(store, np.array(exemplars), weights)
+        ex_idx = np.array(exemplars)
+        Pe, Ve = _features(store, ex_idx, weights)
         flat = np.array(sorted({i for g in groups for i in g}))
         Xo, Wo = _features(store, flat, weights)
-        D = tilt_pose_distances(Xo, Wo, Pe, Ve, aspect=_aspects(store, np.array(exemplars)), scales=scales,
-                                grid=_grid(library)).D
+        aspects = _aspects(store, ex_idx)
+        pm = tilt_pose_distances(Xo, Wo, Pe, Ve, aspect=aspects, scales=scales, grid=grid)
+        D = pm.D
         pos = {int(i): j for j, i in enumerate(flat)}
-        fits = [log_distance_fit(D[[pos[i] for i in g], j][np.isfinite(D[[pos[i] for i in g], j])]) for j, g in enumerate(groups)]
+        rows = [np.array([pos[i] for i in g]) for g in groups]
+        if expand:
+            mu1, sigma1 = single
+            P2, V2 = np.empty_like(Pe), np.empty_like(Ve)
+            for j, r in enumerate(rows):
+                # members alternate (in the order of their mined distance) between the half the exemplar is expanded
+                # from and the half the fit measures: the fit sees near and far members alike
+                r = r[0::2][np.isfinite(D[r[0::2], j])]
+                near = r[np.argsort(D[r, j], kind="stable")[:expand]]
+                P2[j], V2[j] = expanded_prototype(Pe[j], Ve[j], Xo[near], Wo[near], pm.yaw_deg[near, j], pm.scale[near, j],
+                                                  pm.tilt[near, j], match_score(D[near, j], mu1, sigma1), float(aspects[j]),
+                                                  scales, grid)
+                rows[j] = rows[j][1::2]
+            D = tilt_pose_distances(Xo, Wo, P2, V2, aspect=aspects, scales=scales, grid=grid).D
+        fits = [log_distance_fit(D[r, j][np.isfinite(D[r, j])]) for j, r in enumerate(rows)]
         fits = [f for f in fits if np.isfinite(f[0])]
         if fits:
             return float(np.median([f[0] for f in fits])), float(np.median([f[1] for f in fits])), f"exemplars of {len(fits)} clusters"
@@ -186,17 +225,29 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     X1, W1 = _features(store, np.array([ex]), weights)
     if not np.any(W1 > 0):
         raise InputError(store.path, f"objects[{store.ids[ex]}]", "the example has no observed cell; choose another example")
-    N, chunk = len(store), int(cfg["mine"]["chunk_size"])
-    D, yaw, fit = (np.empty(N, np.float64) for _ in range(3))
-    tilt = np.zeros(N, np.int64)
+    chunk = int(cfg["mine"]["chunk_size"])
     grid, aspect = _grid(library), float(_aspects(store, np.array([ex]))[0])
     src = store.source({"mine": {"free_weight": weights[0], "colour_weight": weights[1]}})
-    for i0 in range(0, N, chunk):
-        X, W = src.read(i0, min(N, i0 + chunk))
-        pm = tilt_pose_distances(X, W, X1, W1, aspect=[aspect], scales=scales, grid=grid)
-        D[i0:i0 + len(X)], yaw[i0:i0 + len(X)], fit[i0:i0 + len(X)] = pm.D[:, 0], pm.yaw_deg[:, 0], pm.scale[:, 0]
-        tilt[i0:i0 + len(X)] = pm.tilt[:, 0]
-    mu, sigma, how = _calibrate(library, store, weights, scales, ex, X1, W1, D)
+    D, yaw, fit, tilt = _search(src, X1, W1, aspect, scales, grid, chunk)
+    mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid)
+    vol1 = store.read_volume_at(np.array([ex]))[0]
+    k_exp, r_rec = int(cfg["mine"]["find_expand"]), int(cfg["mine"]["find_reciprocal"])
+    nb = _expansion_set(src, store, ex, D, weights, scales, grid, chunk, k_exp, r_rec) if k_exp else np.zeros(0, np.int64)
+    if len(nb):
+        # average query expansion: the example fused with its nearest matches (their found poses undone),
+        # weighted by their one-shot scores; then every object is searched again against the fused prototype
+        a = match_score(D[nb], mu, sigma)
+        Xn, Wn = _features(store, nb, weights)
+        P2, V2 = expanded_prototype(X1[0], W1[0], Xn, Wn, yaw[nb], fit[nb], tilt[nb], a, aspect, scales, grid)
+        vols = store.read_volume_at(nb)
+        obs = np.clip(vols[:, 2], 0.0, 1.0)
+        vol1, v_obs = expanded_prototype(vol1, np.clip(vol1[2], 0.0, 1.0), vols, obs, yaw[nb], fit[nb], tilt[nb], a,
+                                         aspect, scales, grid)
+        vol1[2] = v_obs                       # the picture's observed channel: the mean observation (mine.aligned)
+        X1, W1 = P2[None], V2[None]
+        D, yaw, fit, tilt = _search(src, X1, W1, aspect, scales, grid, chunk)
+        mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid, expand=k_exp, single=(mu, sigma))
+        how += f", expanded with {len(nb)} matches"
     p = library.prototypes
     off = float(np.median(np.asarray(p["single_mu"]) - np.asarray(p["fused_mu"]))) if library.n_clusters else 0.0
     s_sigma = max(sigma, float(np.median(p["single_sigma"]))) if library.n_clusters else sigma
@@ -212,13 +263,72 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     face, R_obj, yaw = face_pose(R_obj, ups[0], np.array(fsym))
     faces = {"face_up": ups[0], "face_count": np.bincount(face[fit_ok], minlength=len(ups[0])),
              "face_symmetry": np.array(fsym, np.int64)}
-    proto = OneShotPrototype(str(store.ids[ex]), X1[0], W1[0], store.read_volume_at(np.array([ex]))[0], symmetry,
+    proto = OneShotPrototype(str(store.ids[ex]), X1[0], W1[0], vol1, symmetry,
                              mu, sigma, mu + off, s_sigma, how, aspect, faces)
     gsize = np.sqrt(store.objects["radius_m"] * store.objects["height_m"])
     cl = {str(o): int(k) for o, k in zip(library.members["object"], library.members["cluster"])}
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
                    world_quaternions(R_obj, store.objects["up"]), face, ex)
+
+
+def _search(src, P: np.ndarray, V: np.ndarray, aspect: float, scales: tuple[float, ...], grid: TiltGrid | None,
+            chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """(D, yaw_deg, fit_scale, tilt) (N,) of every object of ``src`` against the one prototype P (1, C, R, A, H)."""
+    N = len(src)
+    D, yaw, fit = (np.empty(N, np.float64) for _ in range(3))
+    tilt = np.zeros(N, np.int64)
+    for i0 in range(0, N, chunk):
+        X, W = src.read(i0, min(N, i0 + chunk))
+        pm = tilt_pose_distances(X, W, P, V, aspect=[aspect], scales=scales, grid=grid)
+        D[i0:i0 + len(X)], yaw[i0:i0 + len(X)], fit[i0:i0 + len(X)] = pm.D[:, 0], pm.yaw_deg[:, 0], pm.scale[:, 0]
+        tilt[i0:i0 + len(X)] = pm.tilt[:, 0]
+    return D, yaw, fit, tilt
+
+
+def _search_many(src, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...],
+                 grid: TiltGrid | None, chunk: int) -> np.ndarray:
+    """Distances (N, M) of every object of ``src`` to M prototypes P (M, C, R, A, H) with aspects (M,)."""
+    N = len(src)
+    out = np.empty((N, len(P)))
+    for i0 in range(0, N, chunk):
+        X, W = src.read(i0, min(N, i0 + chunk))
+        out[i0:i0 + len(X)] = tilt_pose_distances(X, W, P, V, aspect=aspect, scales=scales, grid=grid).D
+    return out
+
+
+def _expansion_set(src, store: ObjectStore, ex: int, D: np.ndarray, weights: tuple[float, float],
+                   scales: tuple[float, ...], grid: TiltGrid | None, chunk: int, k: int, r: int) -> np.ndarray:
+    """Store rows (<= k,) of the matches the example is expanded with: its k nearest (ties by object id) that
+    pass the reciprocal check, best first.  Check (r > 0): the 2k nearest are each searched against the
+    whole store as prototypes; a match passes when fewer than r other objects are nearer to it than the
+    example (the example is among its r nearest: k-reciprocal neighbours, Zhong et al., CVPR 2017)."""
+    order = np.lexsort((np.asarray(store.ids).astype(str), D))
+    nb = order[(order != ex) & np.isfinite(D[order])]
+    if r > 0:
+        pool = nb[:2 * k]
+        Dp = _search_many(src, *_features(store, pool, weights), _aspects(store, pool), scales, grid, chunk)
+        Dp[pool, np.arange(len(pool))] = np.inf                 # a match is not its own neighbour
+        nb = pool[np.sum(Dp < Dp[ex][None, :], axis=0) < r]
+    return nb[:k]
+
+
+def expanded_prototype(x: np.ndarray, w: np.ndarray, Xn: np.ndarray, Wn: np.ndarray, yaw_deg: np.ndarray,
+                       fit_scale: np.ndarray, tilt: np.ndarray, a: np.ndarray, aspect: float,
+                       scales: tuple[float, ...], grid: TiltGrid | None) -> tuple[np.ndarray, np.ndarray]:
+    """The example x (C, R, A, H), w (R, A, H) fused with matches Xn (n, C, R, A, H), Wn (n, R, A, H) aligned into
+    its frame by their found poses (yaw, fit scale, tilt), each weighted by a (n,): (P (C, R, A, H), V (R, A, H))."""
+    wx = np.concatenate([Wn[:, None] * Xn, Wn[:, None]], axis=1)          # (n, C + 1, R, A, H)
+    al, alw = align_to_prototype(wx, Wn, yaw_deg, fit_scale)                # undo yaw and scale: the copy's frame
+    al[:, :-1] *= alw[:, None] > 0                                          # cells scaled in from outside the grid: unknown
+    al[:, -1] = alw
+    if grid is not None and len(Xn):
+        al = TiltBank(x[None], w[None], [aspect], scales, grid).untilt_many(np.zeros(len(Xn), np.int64), tilt, al)
+    a = np.asarray(a, np.float64)
+    num = x * w[None] + np.tensordot(a, al[:, :-1], axes=1)
+    den = w + np.tensordot(a, al[:, -1], axes=1)
+    P, V = weighted_means(num[None], den[None], np.array([1.0 + a.sum()]))
+    return P[0], V[0]
 
 
 def _grid(library: Library) -> TiltGrid | None:
