@@ -111,16 +111,21 @@ def test_column_factors_equal_posesearch_spectra():
         Ps, Vs = scale_prototypes(P, V, (s,))
         ref = _prototype_spectra(torch.from_numpy(Ps[:, 0]), torch.from_numpy(Vs[:, 0]))
         got = column_factors(P, V, s, _dft_matrix(SHAPE[1]))
-        for r, g in zip(ref, got):
+        # the same copies given one by one (each step stacks its own): the same tensors
+        listed = column_factors(list(P), list(V), s, _dft_matrix(SHAPE[1]))
+        for r, g, gl in zip(ref, got, listed):
             assert r.shape == g.shape
             np.testing.assert_allclose(g.numpy(), r.numpy(), atol=1e-4 * float(r.abs().max()))
+            np.testing.assert_allclose(gl.numpy(), r.numpy(), atol=1e-4 * float(r.abs().max()))
 
 
-@pytest.mark.parametrize("split", [False, True])
-def test_refinement_equals_its_definition(split, monkeypatch):
+@pytest.mark.parametrize("split,task_pairs", [(False, 8192), (True, 8192), (True, 1)])
+def test_refinement_equals_its_definition(split, task_pairs, monkeypatch):
     # both ways of running a refinement group (one product against the union of its candidates, or one per
-    # previous direction) must give the definition's poses
+    # previous direction) must give the definition's poses, whether a pool task reduces a run of products or
+    # each product alone (task_pairs 1)
     monkeypatch.setattr(tilts, "SPLIT_WASTE", 0.0 if split else np.inf)
+    monkeypatch.setattr(tilts, "TASK_PAIRS", task_pairs)
     monkeypatch.setattr(tilts, "SPLIT_OVERHEAD", 0.0)
     rng = np.random.default_rng(2)
     P, V = _protos(rng, K=3)

@@ -13,6 +13,7 @@ minimum enclosing circle of the footprint, robust to one-sided views of round ob
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 from typing import Callable
@@ -235,6 +236,15 @@ def above_plane_margin(plane: PlaneFit, cfg: dict) -> float:
     return max(cfg["ingest"]["above_plane_m"], NOISE_MARGIN * plane.residual_m)
 
 
+@functools.lru_cache(maxsize=512)
+def _fixed_order(n: int) -> np.ndarray:
+    """The fixed random order of n points of :func:`min_enclosing_circle` (kept: a generator costs more than
+    the circle of a small hull)."""
+    order = np.random.default_rng(0).permutation(n)
+    order.flags.writeable = False
+    return order
+
+
 def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
     """Smallest circle (centre (2,), radius) containing points (N, 2); Welzl's algorithm on the hull.
 
@@ -247,7 +257,7 @@ def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
             pts = pts[ConvexHull(pts).vertices]
         except QhullError:
             pass
-    pts = pts[np.random.default_rng(0).permutation(len(pts))]  # fixed order: deterministic result
+    pts = pts[_fixed_order(len(pts))]  # fixed order: deterministic result
     if len(pts) == 0:
         return np.zeros(2), 0.0
     P = pts.tolist()

@@ -290,10 +290,12 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
     if not empty_outside:
         return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
     # the cells sample_volumes left out of the prototype's cylinder take its empty margin
+    # (in float32: the margin's float64 values are selected, then cast, so casting them first is the same)
     fx, fw = empty_margin(P, V)
-    pc = np.where(inside[:, None], pc, np.where(fw[:, None] > 0, fx, 0.0)[:, :, None])  # unknown cells: 0, as inside
-    v = np.where(inside, v, fw[:, None])
-    return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
+    fx = np.where(fw[:, None] > 0, fx, 0.0).astype(np.float32)  # unknown cells: 0, as inside
+    pc = np.where(inside[:, None], pc, fx[:, :, None])
+    v = np.where(inside, v, fw[:, None].astype(np.float32))
+    return pc.reshape((m, C) + shape), v.reshape((m,) + shape)
 
 
 def volume_on_face(vol: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGrid) -> np.ndarray:
@@ -346,15 +348,18 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     same tensors as ``posesearch._prototype_spectra(*scale_prototypes(Pc, Vc, (sigma,)))`` (layout (A, M,
     features), ``posesearch.spectrum_rows``), built for many small products: the scaling as two small
     matrices (radial, height) and the azimuthal transform as one product with the real DFT matrix ``dft`` (A, A) (``PoseBank.dft``), whose
-    result is already the products' layout."""
-    M, C, R, A, H = Pc.shape
+    result is already the products' layout.  ``Pc``, ``Vc`` may also be sequences of single copies (C, R, A, H),
+    (R, A, H): each step then stacks its own copies, on its pool thread, instead of the caller stacking all."""
+    listed = isinstance(Pc, (list, tuple))
+    M, (C, R, A, H) = (len(Pc), Pc[0].shape) if listed else (Pc.shape[0], Pc.shape[1:])
     Sr, mr = _scale_matrix(R, sigma)
     Sh, mh = _scale_matrix(H, sigma)
     mask = torch.from_numpy((mr[:, None] & mh[None, :]).astype(np.float32))[:, None, :]  # (R, 1, H)
     Sr = torch.from_numpy(Sr.astype(np.float32))
     Sh = torch.from_numpy(Sh.astype(np.float32))
-    pa = torch.from_numpy(np.ascontiguousarray(Pc, np.float32))
-    va = torch.from_numpy(np.ascontiguousarray(Vc, np.float32))
+    if not listed:
+        pa = torch.from_numpy(np.ascontiguousarray(Pc, np.float32))
+        va = torch.from_numpy(np.ascontiguousarray(Vc, np.float32))
     rows = dft.shape[0]
     pn = torch.empty((rows, M, (C + 2) * R * H), dtype=torch.float32)
     pd = torch.empty((rows, M, R * H), dtype=torch.float32)
@@ -364,7 +369,11 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
 
     def run(m0: int) -> None:
         m1 = min(M, m0 + step)
-        p, v = pa[m0:m1], va[m0:m1]
+        if listed:
+            p = torch.from_numpy(np.stack(Pc[m0:m1]).astype(np.float32, copy=False))
+            v = torch.from_numpy(np.stack(Vc[m0:m1]).astype(np.float32, copy=False))
+        else:
+            p, v = pa[m0:m1], va[m0:m1]
         if sigma != 1.0:
             # (..., R, A, H): radial then height interpolation, as matrix products over the other axes
             scale = lambda a: (torch.matmul(Sr, a.reshape(-1, R, A * H)).reshape(a.shape) @ Sh.T) * mask  # noqa: E731
@@ -376,6 +385,20 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
 
     _pooled(run, range(0, M, step))
     return pn, pd
+
+
+def _runs(sizes: Sequence[int], budget: int) -> list[tuple[int, int]]:
+    """Consecutive runs (start, stop) of items with ``sizes``, each adding items while its total stays within
+    ``budget`` (an item larger than it is a run of its own)."""
+    runs, start, total = [], 0, 0
+    for i, s in enumerate(sizes):
+        if i > start and total + s > budget:
+            runs.append((start, i))
+            start, total = i, 0
+        total += s
+    if len(sizes):
+        runs.append((start, len(sizes)))
+    return runs
 
 
 def _best_shifts(d: torch.Tensor) -> tuple[np.ndarray, np.ndarray]:
@@ -401,6 +424,7 @@ COPY_BLOCK = 32        # copies resampled per grid_sample call (bounds its tempo
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
 PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
+TASK_PAIRS = 8192      # (copy, object) pairs of a run of refinement products reduced at once (A x 4 bytes each)
 SPLIT_WASTE = 1.5      # a refinement group runs one product per previous direction when the union's arithmetic
 SPLIT_OVERHEAD = 200   # exceeds SPLIT_WASTE x the candidates' own plus this many (object, copy) pairs per product
 
@@ -475,6 +499,13 @@ class TiltBank:
             return np.zeros((0, self.C) + self.shape, np.float32), np.zeros((0,) + self.shape, np.float32)
         got = [self._copies[(int(k), int(t))] for k, t in zip(ks, ts)]
         return np.stack([g[0] for g in got]), np.stack([g[1] for g in got])
+
+    def copy_list(self, ks: np.ndarray, ts: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
+        """:meth:`copies` as two lists of single copies (C, R, A, H), (R, A, H), not stacked (views of the kept
+        copies: read only)."""
+        self._build(list(zip((int(k) for k in ks), (int(t) for t in ts))))
+        got = [self._copies[(int(k), int(t))] for k, t in zip(ks, ts)]
+        return [g[0] for g in got], [g[1] for g in got]
 
     def _build(self, pairs: list[tuple[int, int]]) -> None:
         todo = sorted(set(pairs) - set(self._copies))
@@ -627,7 +658,7 @@ class TiltBank:
                 blk, b = groups[b:e], e
                 ks = np.concatenate([np.full(len(u), k) for _, k, u, _ in blk])
                 ts = np.concatenate([u for _, _, u, _ in blk])
-                factors = column_factors(*self.copies(ks, ts), self.scales[si], self.dft)
+                factors = column_factors(*self.copy_list(ks, ts), self.scales[si], self.dft)
                 jobs, prods = [], []
                 c0 = 0
                 for _, k, u, es in blk:
@@ -653,20 +684,25 @@ class TiltBank:
                         jobs.append((es_p, cols, inv, len(urows), mask))
                         prods.append((cb, len(u), pos, urows))
 
-                def product(job) -> tuple[np.ndarray, np.ndarray]:
+                def product(job) -> torch.Tensor:
                     cb, nu_, pos, urows = job
                     if pos is None:
                         part = tuple(f[:, cb:cb + nu_] for f in factors)
                     else:
                         part = tuple(f.index_select(1, torch.from_numpy(pos)) for f in factors)
                     og = o.index_select(1, torch.from_numpy(urows))  # the group's objects
-                    # the best shift of every (copy, object) of the product (one scale): the rule of
-                    # posesearch._best_pose_nska, column by column, so only D and yaw outlive the product (the
-                    # distances for every shift of a block's products were 100+ MB when one prototype held most
-                    # objects' best pairs, and their concatenation as much again)
-                    return _best_shifts(_distances_from_spectra(og, part, self.A, minov).view(self.A, -1))
+                    return _distances_from_spectra(og, part, self.A, minov).view(self.A, -1)  # (A, |cols| nu)
 
-                best = _pooled(product, prods)  # the block's products spread over the threads
+                def task(span: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
+                    # a run of the block's products, then the best shift of every (copy, object) of the run at once
+                    # (one scale): the rule of posesearch._best_pose_nska, column by column, so only D and yaw
+                    # outlive the run (the distances for every shift of a block's products were 100+ MB when one
+                    # prototype held most objects' best pairs); one reduction per run, not per product (its fixed
+                    # cost, ~2 ms of small ops, was most of a small product's)
+                    d = [product(prods[i]) for i in range(*span)]
+                    return _best_shifts(torch.cat(d, 1) if len(d) > 1 else d[0])
+
+                best = _pooled(task, _runs([len(j[1]) * j[3] for j in jobs], TASK_PAIRS))  # runs over the threads
                 Db = np.concatenate([d for d, _ in best])  # (sum of |cols| nu) in the products' order
                 yb = np.concatenate([y for _, y in best])
                 c0 = 0
