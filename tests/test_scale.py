@@ -71,6 +71,20 @@ def test_pool_map_takes_items_from_an_iterator_in_order(pool_exec):
         pool_exec.map(_square, iter([1, -1, 2]), shared=1, fold=lambda acc, r: r)
 
 
+def _thread_pools(shared: None, item: int) -> tuple[list[int], int]:
+    from threadpoolctl import threadpool_info
+    import scipy.linalg  # noqa: F401  (scipy's own BLAS, loaded here if not yet)
+    import torch
+    return [p["num_threads"] for p in threadpool_info()], torch.get_num_threads()
+
+
+def test_pool_workers_run_every_thread_pool_with_one_thread(pool_exec):
+    """protomine.cores policy: a worker process has one thread in torch and in every BLAS / OpenMP pool
+    (as threadpoolctl, scikit-learn's thread-pool inspector, reports them)."""
+    for pools, torch_threads in pool_exec.map(_thread_pools, range(4)):
+        assert pools and set(pools) == {1} and torch_threads == 1
+
+
 def _scaled_run(shared: int, run: list[int]) -> list[int]:
     if any(i < 0 for i in run):
         raise InputError("x.csv", "row", f"negative item in {run}")
