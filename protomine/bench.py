@@ -30,8 +30,8 @@ absolute times grow with it, so the targets are ratios measured side by side in 
 (c) peer [``peer``]: scikit-learn ``KMeans`` (k-means++, pose-unaware, the same n_init = 2) on the same 2,000
     objects flattened (w x), against our mining (K = 32, 5 scales): ``ratio_ours_kmeans`` (time), ``ours_nmi``,
     ``kmeans_nmi`` against the synthetic labels: what pose-awareness costs and what it buys.
-(d) label [``label``]: lifting + matching single views in one process with one torch thread
-    (``protomine/label/throughput.py``; target >= 500 objects per second).
+(d) label [``label``]: lifting + matching single views in one process with one thread in torch and in BLAS, as
+    a label worker runs (``protomine/label/throughput.py``; target >= 500 objects per second).
 (e) large [``large``]: mini-batch mining of ``--size`` objects streamed from disk, and its quality against
     full batches on 10,000 (``protomine/scale/streamed.py``; targets at 100,000: < 10 minutes, < 4 GB).
 (e') tilt mining [``tilt_mining``]: mining ``--tilt-size`` tumbled objects (default 3,000) with the default tilt

@@ -3,9 +3,10 @@
 Policy: **processes across independent work, one torch thread in each; all cores as threads when one
 process works alone.**
 
-- Ingest and label spread captures over worker processes (``--workers auto`` = :func:`usable_cores`).
-  Each worker process runs torch with a single intra-op thread (:func:`enter_worker`, called by every
-  executor before it runs an item), so N workers on N cores never run N x N threads.
+- Ingest, label and the demo's scene rendering spread captures over worker processes (``--workers auto`` =
+  :func:`usable_cores`).  Each worker process runs torch, and numpy's and scipy's BLAS, with a single thread
+  (:func:`enter_worker`, called by every executor before it runs an item), so N workers on N cores never run
+  N x N threads.
 - A process that does the work itself (mining in the command's process, a ``--workers 1`` run) gives
   torch every usable core (:func:`threads_for_this_process`), set by the engine when a fit starts.
 
@@ -65,14 +66,39 @@ def set_torch_threads(n: int) -> None:
         torch.set_num_threads(n)
 
 
+_ONE_THREAD_VARS = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+def one_thread_per_library() -> None:
+    """Every thread pool of this process down to one thread: the BLAS (OpenBLAS, MKL) and OpenMP libraries
+    already loaded (numpy's and scipy's OpenBLAS, torch's OpenMP) through threadpoolctl, and those loaded
+    later through their environment variables, which they read when they load.
+
+    Setting torch's threads alone left numpy's and scipy's OpenBLAS with a pool of one thread per core in
+    every worker process: 2 workers on 2 cores ran 4 busy threads, and OpenBLAS's idle threads spin while
+    they wait for the next call.  Measured (same session, 2 cores at load 11-14): ingest of 3 demo captures
+    in a worker took 6.8-8.1 s CPU and 26-30 s wall with numpy's default pool, 1.9-2.0 s CPU and 7.1-7.6 s
+    wall with one thread; in the demo's ingest each worker's second thread had used 7.6 s of CPU against
+    its main thread's 10 s.  The store was identical to the bit."""
+    for var in _ONE_THREAD_VARS:
+        os.environ[var] = "1"
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # scikit-learn's dependency; without it only libraries loaded from here on are limited
+        return
+    threadpool_limits(limits=1)
+
+
 def enter_worker() -> None:
-    """Mark this process as an executor's worker: torch gets one thread (the module policy) and freed
-    chunk-sized memory is reused (:func:`reuse_freed_memory`; again here, because Dask's nanny sets
-    ``MALLOC_TRIM_THRESHOLD_`` in its workers' environment)."""
+    """Mark this process as an executor's worker: torch, BLAS and OpenMP get one thread each (the module
+    policy; :func:`one_thread_per_library`) and freed chunk-sized memory is reused
+    (:func:`reuse_freed_memory`; again here, because Dask's nanny sets ``MALLOC_TRIM_THRESHOLD_`` in its
+    workers' environment)."""
     global _WORKER
     if not _WORKER:
         _WORKER = True
         set_torch_threads(1)
+        one_thread_per_library()
         reuse_freed_memory()
 
 

@@ -202,17 +202,18 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     typer.echo(f"      gallery {out / 'gallery.png'}; assignments {out / 'assignments.csv'}")
 
     # name each cluster from one example, as a user would after a glance at the gallery
-    from .curate.names import name_cluster
+    from .curate.names import name_clusters
     rng = np.random.default_rng(seed)
-    right = 0
+    right, named = 0, []
     for k in range(lib.n_clusters):
         members = [o for o, c in zip(lib.members["object"], lib.members["cluster"]) if c == k]
         if not members:
             continue
         example = str(members[rng.integers(len(members))])
         name = truth[example]["label"] if example in truth else f"item-{k}"
-        lib = name_cluster(library, name=name, object_id=example)
+        named.append((example, name))
         right += sum(truth.get(o, {}).get("label") == name for o in members)
+    lib = name_clusters(library, named)  # one library rewrite and one gallery for all the names
     typer.echo(f"tag: each cluster named from one random member; the names are right for {right}/{len(lib.members['object'])} "
                f"mined objects ({right / max(len(lib.members['object']), 1):.3f})")
 

@@ -74,6 +74,27 @@ def test_tag_names_rename_clear_and_gallery(world, tmp_path):
     np.testing.assert_array_equal(lib.members["cluster"], lib0.members["cluster"])
 
 
+def test_naming_several_clusters_at_once_equals_naming_them_one_by_one(world, tmp_path):
+    """``name_clusters`` (one rewrite, one gallery) leaves the same library, gallery and member sheets as
+    ``name_cluster`` called for each pair in turn (the reference), a later pair for a cluster winning."""
+    from protomine.curate.names import name_clusters
+    one = _copy_lib(world, tmp_path / "one")
+    many = _copy_lib(world, tmp_path / "many")
+    lib0 = read_library(one)
+    firsts = {}
+    for o, c in zip(lib0.members["object"], lib0.members["cluster"]):
+        firsts.setdefault(int(c), str(o))
+    pairs = [(o, f"item {k}") for k, o in sorted(firsts.items())] + [(firsts[min(firsts)], "renamed")]
+    for oid, name in pairs:
+        name_cluster(one, name=name, object_id=oid)
+    name_clusters(many, pairs)
+    a, b = read_library(one), read_library(many)
+    assert a.names == b.names and a.names[min(firsts)] == "renamed" and len(a.names) == len(firsts) >= 2
+    assert list(a.prototypes["name_example"]) == list(b.prototypes["name_example"])
+    for f in sorted(p.relative_to(one.parent) for p in one.parent.rglob("*.png")):
+        assert (one.parent / f).read_bytes() == (many.parent / f).read_bytes(), f
+
+
 @pytest.mark.parametrize("kwargs, field", [
     ({"name": "x", "object_id": "no/such"}, "members.object"),
     ({"name": "x", "cluster": 99}, "prototypes"),

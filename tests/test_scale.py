@@ -53,6 +53,38 @@ def test_executor_map_keeps_item_order_and_reraises_input_errors(dask_exec):
     assert dask_exec.n_workers == 2
 
 
+def test_pool_map_takes_items_from_an_iterator_in_order(pool_exec):
+    """Items drawn from a generator (submitted as they are drawn) come back folded in item order, as from a
+    list (reference: the same comprehension in this process)."""
+    items = list(range(9, -1, -1))
+    drawn = []
+
+    def gen():
+        for i in items:
+            drawn.append(i)
+            yield i
+
+    got = pool_exec.map(_square, gen(), shared=2, fold=lambda acc, r: (acc or []) + [r])
+    assert got == [2 * i * i for i in items] and drawn == items
+    assert pool_exec.map(_square, iter(items), shared=2) == [2 * i * i for i in items]
+    with pytest.raises(InputError, match="negative item -1"):
+        pool_exec.map(_square, iter([1, -1, 2]), shared=1, fold=lambda acc, r: r)
+
+
+def _thread_pools(shared: None, item: int) -> tuple[list[int], int]:
+    from threadpoolctl import threadpool_info
+    import scipy.linalg  # noqa: F401  (scipy's own BLAS, loaded here if not yet)
+    import torch
+    return [p["num_threads"] for p in threadpool_info()], torch.get_num_threads()
+
+
+def test_pool_workers_run_every_thread_pool_with_one_thread(pool_exec):
+    """protomine.cores policy: a worker process has one thread in torch and in every BLAS / OpenMP pool
+    (as threadpoolctl, scikit-learn's thread-pool inspector, reports them)."""
+    for pools, torch_threads in pool_exec.map(_thread_pools, range(4)):
+        assert pools and set(pools) == {1} and torch_threads == 1
+
+
 def _scaled_run(shared: int, run: list[int]) -> list[int]:
     if any(i < 0 for i in run):
         raise InputError("x.csv", "row", f"negative item in {run}")
@@ -316,7 +348,8 @@ def test_label_and_scenes_in_worker_processes_equal_this_process(tiny_world, poo
     here = label_captures(lib, copies, tiny_world["cfg"], seed=0)
     there = label_captures(lib, copies, tiny_world["cfg"], seed=0, executor=pool_exec, stats=st)
     assert there == here and st["workers"] == 2
-    kw = dict(n_mining=2, n_single=1, frames=1, width=32, height=24, seed=3)
+    # tumbled instances: the workers replay the resting poses the caller's layouts computed
+    kw = dict(n_mining=2, n_single=1, frames=1, width=32, height=24, seed=3, tumbled_fraction=0.5)
     generate_scenario(tmp_path / "s1", **kw)
     generate_scenario(tmp_path / "s2", executor=pool_exec, **kw)
     files = sorted(p.relative_to(tmp_path / "s1") for p in (tmp_path / "s1").rglob("*") if p.is_file())

@@ -268,3 +268,28 @@ def test_classes_separate_at_coarse_scale_and_asymmetric_ones_have_azimuthal_str
             assert change[36 // n] < 0.05 and change.max() > 0.1, c.name
         else:
             assert change[18] > 0.25 and change[1:].min() > 0.02, (c.name, change[18])
+
+
+def test_layout_drawn_again_from_recorded_resting_poses_is_the_computed_one():
+    """A capture's layout is drawn once in the caller (computing the resting poses) and again in the worker
+    that renders it, from the poses the first draw recorded: the same instances, faces, rest transforms and
+    placements as computing them afresh (the reference: ``shape_resting_poses`` called directly, the
+    layout's default); a replay that strays from the recorded draw fails."""
+    import copy
+
+    from protomine.scenes.scenario import _layout, _RestingRecord
+    pool = [c for c in load_item_classes() if c.family == "tools" and not c.held_out]
+    rng = np.random.default_rng(11)
+    direct_posed, direct_pos = _layout(pool, copy.deepcopy(rng), {}, 0.5)
+    rec = _RestingRecord()
+    _layout(pool, copy.deepcopy(rng), {}, 0.5, rec.compute)
+    assert len(rec.poses) >= len(direct_posed)
+    posed, pos = _layout(pool, copy.deepcopy(rng), {}, 0.5, _RestingRecord(rec.poses).replay)
+    assert pos == direct_pos and len(posed) == len(direct_posed)
+    assert any(p.tumbled for p in posed)
+    for a, b in zip(posed, direct_posed):
+        assert (a.inst.item.name, a.face, a.tumbled) == (b.inst.item.name, b.face, b.tumbled)
+        assert np.array_equal(a.R, b.R) and np.array_equal(a.s, b.s)
+        assert tuple(a.shape.lo) == tuple(b.shape.lo) and tuple(a.shape.hi) == tuple(b.shape.hi)
+    with pytest.raises(RuntimeError, match="other resting poses"):
+        _layout(pool, np.random.default_rng(12), {}, 0.5, _RestingRecord(rec.poses).replay)

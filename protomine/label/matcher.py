@@ -193,6 +193,12 @@ def view_centre_offsets(cfg: dict) -> tuple[float, ...]:
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
     volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
+    a, kw = _matcher_args(library, cfg, weighted)
+    return Matcher(*a, **kw)
+
+
+def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, dict]:
+    """The checked arguments of :func:`make_matcher`'s Matcher (InputError for a library it cannot match against)."""
     lib_cfg = library.config
     if "volume" not in lib_cfg or "mine" not in lib_cfg:
         raise InputError(library.path, "config", "library does not record the [volume] and [mine] config it was mined with")
@@ -204,11 +210,11 @@ def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Match
     if library.n_clusters < 1:
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
-    return Matcher(library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-                   library_cut(library), weighted, exact_faces=bool(m.get("face_pairs", False)),
-                   tolerant=bool(m.get("tolerant_residual", False)), rings=score_rings(lib_cfg, grid.radial_bins),
-                   refine_top=int(m.get("label_refine_top", 0)),
-                   centre_offsets=view_centre_offsets(lib_cfg))
+    return ((library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
+             library_cut(library), weighted),
+            dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
+                 rings=score_rings(lib_cfg, grid.radial_bins), refine_top=int(m.get("label_refine_top", 0)),
+                 centre_offsets=view_centre_offsets(lib_cfg)))
 
 
 @dataclass
@@ -319,7 +325,6 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     """
     unique_capture_names(capture_paths)
     t0 = time.perf_counter()
-    matcher = make_matcher(library, cfg, weighted=weighted)
     groups = [[str(p) for p in capture_paths[i:i + CAPTURES_PER_ITEM]]
               for i in range(0, len(capture_paths), CAPTURES_PER_ITEM)]
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
@@ -327,6 +332,10 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     scores: list[np.ndarray] = []
 
     n_workers = 1 if executor is None else min(executor.n_workers, len(groups))
+    # the matcher (its prototype spectra: ~1 s for 8 prototypes) is built here only when this process labels;
+    # with workers, each builds its own, in parallel, and this process only checks the library
+    args = _matcher_args(library, cfg, weighted)
+    K = int(library.prototypes["features"].shape[0])
     total = sum(len(read_capture(p, check_images=False).frames) for p in capture_paths)
     with bar(progress, "label", total=total, unit="frames") as b:
 
@@ -340,18 +349,19 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
                 b.advance(res[1]["frames"])
 
         if n_workers <= 1:
+            matcher = Matcher(*args[0], **args[1])
             for g in groups:
                 add(_label_group(matcher, g, cfg, seed, use_masks, batch_objects, progress, b), False)
         else:
             detail(progress, f"{len(capture_paths)} captures on {executor.describe()}")
-            token = f"{id(matcher):x}-{time.time_ns():x}"
+            token = f"{id(args):x}-{time.time_ns():x}"
             executor.map(_label_item, groups, shared=(token, library, cfg, weighted, seed, use_masks, batch_objects),
                          fold=lambda _, res: add(res, True))
     st["objects_per_second"] = st["objects"] / max(st["lift_s"] + st["match_s"], 1e-9)
     st["seconds"] = time.perf_counter() - t0
     st["workers"] = n_workers
     # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
-    st["scores"] = np.concatenate(scores or [np.zeros((0, matcher.K))])
+    st["scores"] = np.concatenate(scores or [np.zeros((0, K))])
     if stats is not None:
         stats.update(st)
     return out

@@ -64,30 +64,33 @@ def bench_label(quick: bool, seed: int) -> dict:
     from ..ingest.volume import Grid
     grid = Grid.from_config(cfg)
     matcher = make_matcher(synthetic_library(rng, N_PROTOTYPES, grid.shape, cfg), cfg)
-    # one label worker: one torch thread (protomine.cores policy); a warm-up pass first (thread pools, allocator)
+    # one label worker: one thread in torch and in numpy's and scipy's BLAS, as a worker process runs
+    # (protomine.cores.enter_worker); a warm-up pass first (thread pools, allocator)
+    from threadpoolctl import threadpool_limits
     cores.set_torch_threads(1)
-    matcher.match(np.concatenate([lift_frame(sc, fid, matcher.grid, w, geometry_ids=False).volumes
-                                  for sc, fid, w in scenes[:1]]))
-    n_obj, lift_s, match_s, cpu_s, flags_s = 0, 0.0, 0.0, 0.0, 0.0
-    load0 = os.getloadavg()[0]
-    for _ in range(passes):
-        c0 = time.process_time()
-        t0 = time.perf_counter()
-        lifted = [lift_frame(sc, fid, matcher.grid, w, geometry_ids=False) for sc, fid, w in scenes]
-        t1 = time.perf_counter()
-        matcher.match(np.concatenate([fo.volumes for fo in lifted]))   # one batch, as label_captures does
-        t2 = time.perf_counter()
-        for sc, fid, _ in scenes:
-            flying_pixels(next(f for f in sc.frames if f.id == fid).depth)
-        t3 = time.perf_counter()
-        cpu_s += time.process_time() - c0
-        lift_s += t1 - t0
-        match_s += t2 - t1
-        flags_s += t3 - t2
-        n_obj += sum(len(fo.facts) for fo in lifted)
+    with threadpool_limits(limits=1):
+        matcher.match(np.concatenate([lift_frame(sc, fid, matcher.grid, w, geometry_ids=False).volumes
+                                      for sc, fid, w in scenes[:1]]))
+        n_obj, lift_s, match_s, cpu_s, flags_s = 0, 0.0, 0.0, 0.0, 0.0
+        load0 = os.getloadavg()[0]
+        for _ in range(passes):
+            c0 = time.process_time()
+            t0 = time.perf_counter()
+            lifted = [lift_frame(sc, fid, matcher.grid, w, geometry_ids=False) for sc, fid, w in scenes]
+            t1 = time.perf_counter()
+            matcher.match(np.concatenate([fo.volumes for fo in lifted]))   # one batch, as label_captures does
+            t2 = time.perf_counter()
+            for sc, fid, _ in scenes:
+                flying_pixels(next(f for f in sc.frames if f.id == fid).depth)
+            t3 = time.perf_counter()
+            cpu_s += time.process_time() - c0
+            lift_s += t1 - t0
+            match_s += t2 - t1
+            flags_s += t3 - t2
+            n_obj += sum(len(fo.facts) for fo in lifted)
     cores.set_torch_threads(cores.usable_cores())
     return {"n_objects": n_obj, "n_prototypes": N_PROTOTYPES, "n_scales": len(matcher.scales), "torch_threads": 1,
-            "lift_s": lift_s, "match_s": match_s, "frame_flags_s": flags_s,
+            "blas_threads": 1, "lift_s": lift_s, "match_s": match_s, "frame_flags_s": flags_s,
             "objects_per_second": n_obj / max(lift_s + match_s + flags_s, 1e-9),
             "cpu_s": cpu_s, "objects_per_cpu_second": n_obj / max(cpu_s, 1e-9),
             "load_1m_start": load0, "load_1m": os.getloadavg()[0]}

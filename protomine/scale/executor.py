@@ -6,7 +6,10 @@ Contract (every executor)
 order of ``items``, whatever order the workers finish in; callers reduce the results in that fixed order,
 so a result never depends on scheduling.  With ``fold=f`` it returns ``f(...f(f(None, r_0), r_1)..., r_n)``
 instead, taking each result in item order as soon as the earlier ones are folded and dropping it after,
-so the caller holds one accumulator, not every result.  ``fn`` is a module-level function (pickled by reference).
+so the caller holds one accumulator, not every result.  ``items`` may also be an iterator that prepares
+each item as it is drawn: the pool submits each one at once, so its workers run the first items while the
+caller prepares the next (a pipeline; Dask takes the whole list first).  ``fn`` is a module-level function
+(pickled by reference).
 ``shared`` (prototypes, settings) is sent once per worker, not once per item (Dask: scattered with
 ``broadcast=True``).  Item i prefers worker ``i mod n_workers`` (Dask ``workers=`` with
 ``allow_other_workers=True``), so a worker sees the same chunks on every pass and its per-chunk caches hit.
@@ -84,7 +87,7 @@ class InlineExecutor:
     kind = "inline"
     n_workers = 1
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
+    def map(self, fn: Callable, items: Iterable, *, shared: Any = None, fold: Callable | None = None) -> Any:
         return _collect((_call(fn, shared, it) for it in items), fold)
 
     def close(self) -> None:
@@ -105,9 +108,25 @@ class PoolExecutor:
         self.n_workers = workers
         self._pool = cf.ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"))
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None) -> Any:
-        futs = [self._pool.submit(_call_in_worker, fn, shared, it) for it in items]
-        return _collect(_in_order(futs, lambda f: f.result()), fold)  # submission order, not completion order
+    def map(self, fn: Callable, items: Iterable, *, shared: Any = None, fold: Callable | None = None) -> Any:
+        """Items may come from an iterator (a generator that prepares each item): each is submitted as soon
+        as it is drawn, so the workers start on the first ones while this process prepares the rest, and
+        with ``fold`` the results already in (in item order) are folded between draws."""
+        futs: list = []
+        if fold is None:
+            futs = [self._pool.submit(_call_in_worker, fn, shared, it) for it in items]
+            return _collect(_in_order(futs, lambda f: f.result()), fold)  # submission order, not completion order
+        acc, nxt = None, 0
+        for it in items:
+            futs.append(self._pool.submit(_call_in_worker, fn, shared, it))
+            while futs[nxt].done():
+                acc = fold(acc, _check(futs[nxt].result()))
+                futs[nxt] = None
+                nxt += 1
+        for i in range(nxt, len(futs)):
+            acc = fold(acc, _check(futs[i].result()))
+            futs[i] = None
+        return acc
 
     def close(self) -> None:
         self._pool.shutdown(wait=True, cancel_futures=True)
@@ -161,7 +180,7 @@ class DaskExecutor:
     def n_workers(self) -> int:
         return len(self.workers)
 
-    def map(self, fn: Callable, items: Sequence, *, shared: Any = None, fold: Callable | None = None,
+    def map(self, fn: Callable, items: Iterable, *, shared: Any = None, fold: Callable | None = None,
             balanced: bool = False) -> Any:
         """``fn(shared, item)`` for every item, results in item order (or folded in item order); every item
         submitted at once, item i to worker i mod n.
@@ -170,6 +189,7 @@ class DaskExecutor:
         up (:meth:`_map_runs`), one result per run, in run order; the runs depend on the workers' speeds, so
         ``fn`` and ``fold`` must give the same result whatever the runs (e.g. per-item results in a list).
         """
+        items = items if isinstance(items, Sequence) else list(items)
         workers = self.workers
         shared_f = self.client.scatter([shared], broadcast=True, hash=False)[0]
         if balanced:

@@ -47,7 +47,7 @@ from ..geometry import direction_to_yaw
 from ..progress import bar, detail
 from .noise import add_sensor_noise, stereo_depth
 from .render import Scene, SceneObject, look_at, render
-from .resting import rest_shape, shape_resting_poses
+from .resting import RestingPoses, rest_shape, shape_resting_poses
 from .shapes import Shape
 
 SCENARIO_FORMAT = "protomine.scenario/1"
@@ -78,7 +78,8 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
     from the active-stereo model (``noise.stereo_depth``) instead of the gaussian one; the scenes, poses and
     RGB are the same for either model at one seed, only the depth differs.
     executor (``protomine.scale.executor``; None = this process) renders the captures in its worker
-    processes; the layouts are drawn here, in capture order, so the scenario does not depend on it.
+    processes; the layouts are drawn here, in capture order, so the scenario does not depend on it, and each
+    capture goes to a worker as soon as its layout is drawn.
     """
     if n_mining < 1 or n_single < 0 or frames < 1:
         raise InputError(None, "captures/single/frames", f"expected captures >= 1, single >= 0, frames >= 1, got {n_mining}, {n_single}, {frames}")
@@ -123,15 +124,21 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
     depth_model = {name: "stereo" if np.floor((i + 1) * stereo_fraction) > np.floor(i * stereo_fraction) else "gaussian"
                    for split in ("mining", "single") for i, name in enumerate(p[0] for p in plan if p[1] == split)}
     used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
-    # each capture's layout depends on the class counts of the captures before it: draw the layouts here,
-    # in order, and hand each capture its generator and counts as they were before its layout, so that a
-    # worker redraws the same layout and renders it
-    items = []
-    for name, split, pool, n_frames_cap in plan:
-        cap_rng = rng.spawn(1)[0]
-        items.append((str(out / name), split, [c.name for c in pool], n_frames_cap, K, copy.deepcopy(cap_rng),
-                      dict(used[split]), tumbled_fraction, touching, depth_model[name] == "stereo"))
-        _layout(pool, cap_rng, used[split], tumbled_fraction)
+
+    def layouts():
+        # each capture's layout depends on the class counts of the captures before it: draw the layouts here,
+        # in order, and hand each capture its generator and counts as they were before its layout, plus the
+        # resting poses its layout asked for (the costly part of a layout), so that a worker redraws the same
+        # layout without computing them again and renders it.  A generator: the executor submits each capture
+        # as soon as its layout is drawn, so the workers render while this process draws the next layouts.
+        for name, split, pool, n_frames_cap in plan:
+            cap_rng = rng.spawn(1)[0]
+            start_rng, start_used = copy.deepcopy(cap_rng), dict(used[split])
+            resting = _RestingRecord()
+            _layout(pool, cap_rng, used[split], tumbled_fraction, resting.compute)
+            yield (str(out / name), split, [c.name for c in pool], n_frames_cap, K, start_rng, start_used,
+                   tumbled_fraction, touching, depth_model[name] == "stereo", resting.poses)
+
     rows: list[dict] = []
     timing = {"render_s": 0.0, "frames": 0}
     with bar(progress, "render", total=sum(p[3] for p in plan), unit="frames") as b:
@@ -145,10 +152,10 @@ def _generate(out: Path, n_mining: int, n_single: int, frames: int, width: int, 
             detail(progress, f"{name}: {len(cap_rows)} objects, {n_frames_cap} frame(s), {wall:.2f}s")
 
         if executor is None:
-            for it in items:
+            for it in layouts():
                 add(_capture_item(None, it))
         else:
-            executor.map(_capture_item, items, fold=lambda _, res: add(res))
+            executor.map(_capture_item, layouts(), fold=lambda _, res: add(res))
     render_s, n_frames = timing["render_s"], timing["frames"]
     _write_truth(out, rows)
     held = sorted({c.name for c in single} - {c.name for c in mining})
@@ -182,13 +189,41 @@ class Posed:
     tumbled: bool
 
 
-def _pose(inst: Instance, rng: np.random.Generator, tumbled_fraction: float) -> Posed:
+class _RestingRecord:
+    """The resting poses a layout asks for, in the order it asks (:meth:`compute`), and the same handed back
+    in that order when the layout is drawn again from the same generator (:meth:`replay`).  Each is keyed
+    by its shape's bounds, so a replay that strays from the recorded draw fails instead of posing the wrong
+    shape."""
+
+    def __init__(self, poses: tuple = ()):
+        self.poses: tuple = tuple(poses)
+        self._next = 0
+
+    @staticmethod
+    def _key(shape: Shape) -> tuple:
+        return tuple(np.asarray(shape.lo, float).tolist()) + tuple(np.asarray(shape.hi, float).tolist())
+
+    def compute(self, shape: Shape) -> RestingPoses:
+        poses = shape_resting_poses(shape)
+        self.poses += ((self._key(shape), poses),)
+        return poses
+
+    def replay(self, shape: Shape) -> RestingPoses:
+        if self._next >= len(self.poses) or self.poses[self._next][0] != self._key(shape):
+            raise RuntimeError("a capture's layout drawn again asked for other resting poses than when it was first drawn")
+        self._next += 1
+        return self.poses[self._next - 1][1]
+
+
+def _pose(inst: Instance, rng: np.random.Generator, tumbled_fraction: float,
+          resting: Callable[[Shape], RestingPoses] = shape_resting_poses) -> Posed:
     """Upright as built, or (with probability ``tumbled_fraction``) dropped on a face drawn by its probability.
-    All-upright scenes draw nothing here, so they stay the scenes they were before resting poses existed."""
+    All-upright scenes draw nothing here, so they stay the scenes they were before resting poses existed.
+    ``resting``: the shape's resting poses (:func:`shape_resting_poses`, or a record of them)."""
     if tumbled_fraction <= 0.0:
         return Posed(inst, inst.shape, np.eye(3), np.zeros(3), None, False)
     tumbled = bool(rng.random() < tumbled_fraction)
-    poses = shape_resting_poses(inst.shape)
+    poses = resting(inst.shape)
     if not tumbled:
         return Posed(inst, inst.shape, np.eye(3), np.zeros(3), poses.face_towards(np.array([0.0, 0.0, -1.0])), False)
     face = int(rng.choice(len(poses.faces), p=poses.probabilities / poses.probabilities.sum()))
@@ -281,15 +316,16 @@ def place_touching(shapes: list[Shape], yaws: np.ndarray, rng: np.random.Generat
     return [tuple(pos[i]) for i in range(len(shapes))]
 
 
-def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int],
-            tumbled_fraction: float) -> tuple[list[Posed], list[tuple[float, float]]]:
+def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int], tumbled_fraction: float,
+            resting: Callable[[Shape], RestingPoses] = shape_resting_poses) -> tuple[list[Posed], list[tuple[float, float]]]:
     """5-8 new instances with resting poses and placements.  ``used`` counts instances per class so far
-    (updated here): each scene takes the least-used classes (random tie-break), which keeps them balanced."""
+    (updated here): each scene takes the least-used classes (random tie-break), which keeps them balanced.
+    ``resting`` gives an instance's resting poses (see :func:`_pose`)."""
     target = int(rng.integers(5, 9))
     for attempt in range(60):
         n = max(5, target - attempt // 15)     # a crowded draw gives up one object every 15 attempts
         order = sorted(pool, key=lambda c: (used.get(c.name, 0), rng.random()))
-        posed = [_pose(make_instance(order[i % len(order)], rng), rng, tumbled_fraction) for i in range(n)]
+        posed = [_pose(make_instance(order[i % len(order)], rng), rng, tumbled_fraction, resting) for i in range(n)]
         pos = _place(posed, rng)
         if pos is not None:
             for p in posed:
@@ -300,18 +336,19 @@ def _layout(pool: list[ItemClass], rng: np.random.Generator, used: dict[str, int
 
 def _capture_item(shared: None, item: tuple) -> tuple[list[dict], float, str, int, float]:
     """One capture (an executor item): its truth rows, render seconds, name, frames and wall seconds."""
-    folder, split, names, n_frames, K, rng, used, tumbled_fraction, touching, stereo = item
+    folder, split, names, n_frames, K, rng, used, tumbled_fraction, touching, stereo, poses = item
     t1 = time.monotonic()
     by_name = {c.name: c for c in load_item_classes()}
     rows, dt = _one_capture(Path(folder), split, [by_name[n] for n in names], n_frames, K, rng, used,
-                            tumbled_fraction, touching, stereo)
+                            tumbled_fraction, touching, stereo, _RestingRecord(poses).replay)
     return rows, dt, Path(folder).name, n_frames, time.monotonic() - t1
 
 
 def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int, K: Intrinsics,
                  rng: np.random.Generator, used: dict[str, int], tumbled_fraction: float,
-                 touching: bool = False, stereo: bool = False) -> tuple[list[dict], float]:
-    posed, pos = _layout(pool, rng, used, tumbled_fraction)
+                 touching: bool = False, stereo: bool = False,
+                 resting: Callable[[Shape], RestingPoses] = shape_resting_poses) -> tuple[list[dict], float]:
+    posed, pos = _layout(pool, rng, used, tumbled_fraction, resting)
     yaws = rng.uniform(0.0, 360.0, len(posed))
     if touching and len(posed) > 1:
         pos = place_touching([p.shape for p in posed], yaws, rng)
