@@ -119,7 +119,7 @@ class PoolExecutor:
         acc, nxt = None, 0
         for it in items:
             futs.append(self._pool.submit(_call_in_worker, fn, shared, it))
-            while futs[nxt].done():
+            while nxt < len(futs) and futs[nxt].done():  # the one just submitted may already be done
                 acc = fold(acc, _check(futs[nxt].result()))
                 futs[nxt] = None
                 nxt += 1
