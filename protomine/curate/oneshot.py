@@ -275,26 +275,24 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
 def _search(src, P: np.ndarray, V: np.ndarray, aspect: float, scales: tuple[float, ...], grid: TiltGrid | None,
             chunk: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """(D, yaw_deg, fit_scale, tilt) (N,) of every object of ``src`` against the one prototype P (1, C, R, A, H)."""
-    N = len(src)
-    D, yaw, fit = (np.empty(N, np.float64) for _ in range(3))
-    tilt = np.zeros(N, np.int64)
-    for i0 in range(0, N, chunk):
-        X, W = src.read(i0, min(N, i0 + chunk))
-        pm = tilt_pose_distances(X, W, P, V, aspect=[aspect], scales=scales, grid=grid)
-        D[i0:i0 + len(X)], yaw[i0:i0 + len(X)], fit[i0:i0 + len(X)] = pm.D[:, 0], pm.yaw_deg[:, 0], pm.scale[:, 0]
-        tilt[i0:i0 + len(X)] = pm.tilt[:, 0]
-    return D, yaw, fit, tilt
+    D, yaw, fit, tilt = _search_many(src, P, V, [aspect], scales, grid, chunk, poses=True)
+    return D[:, 0], yaw[:, 0], fit[:, 0], tilt[:, 0]
 
 
-def _search_many(src, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...],
-                 grid: TiltGrid | None, chunk: int) -> np.ndarray:
-    """Distances (N, M) of every object of ``src`` to M prototypes P (M, C, R, A, H) with aspects (M,)."""
-    N = len(src)
-    out = np.empty((N, len(P)))
+def _search_many(src, P: np.ndarray, V: np.ndarray, aspect, scales: tuple[float, ...], grid: TiltGrid | None,
+                 chunk: int, *, poses: bool = False):
+    """Distances (N, M) of every object of ``src`` to M prototypes P (M, C, R, A, H) with aspects (M,); with
+    ``poses`` also their yaw_deg, fit scale and tilt (N, M): (D, yaw, fit, tilt)."""
+    N, M = len(src), len(P)
+    D, yaw, fit = (np.empty((N, M), np.float64) for _ in range(3))
+    tilt = np.zeros((N, M), np.int64)
     for i0 in range(0, N, chunk):
         X, W = src.read(i0, min(N, i0 + chunk))
-        out[i0:i0 + len(X)] = tilt_pose_distances(X, W, P, V, aspect=aspect, scales=scales, grid=grid).D
-    return out
+        pm = tilt_pose_distances(X, W, P, V, aspect=aspect, scales=scales, grid=grid)
+        D[i0:i0 + len(X)] = pm.D
+        if poses:
+            yaw[i0:i0 + len(X)], fit[i0:i0 + len(X)], tilt[i0:i0 + len(X)] = pm.yaw_deg, pm.scale, pm.tilt
+    return (D, yaw, fit, tilt) if poses else D
 
 
 def _expansion_set(src, store: ObjectStore, ex: int, D: np.ndarray, weights: tuple[float, float],
