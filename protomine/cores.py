@@ -80,12 +80,9 @@ def one_thread_per_library() -> None:
     in a worker took 6.8-8.1 s CPU and 26-30 s wall with numpy's default pool, 1.9-2.0 s CPU and 7.1-7.6 s
     wall with one thread; in the demo's ingest each worker's second thread had used 7.6 s of CPU against
     its main thread's 10 s.  The store was identical to the bit."""
+    from threadpoolctl import threadpool_limits
     for var in _ONE_THREAD_VARS:
         os.environ[var] = "1"
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # scikit-learn's dependency; without it only libraries loaded from here on are limited
-        return
     threadpool_limits(limits=1)
 
 

@@ -494,11 +494,10 @@ class TiltBank:
         Copies are kept (the finer levels and later chunks ask for the same ones) until the refinement drops
         its levels' copies (:meth:`_drop_refined`); new ones are resampled together.
         """
-        self._build(list(zip((int(k) for k in ks), (int(t) for t in ts))))
-        if not len(ks):
+        Pc, Vc = self.copy_list(ks, ts)
+        if not Pc:
             return np.zeros((0, self.C) + self.shape, np.float32), np.zeros((0,) + self.shape, np.float32)
-        got = [self._copies[(int(k), int(t))] for k, t in zip(ks, ts)]
-        return np.stack([g[0] for g in got]), np.stack([g[1] for g in got])
+        return np.stack(Pc), np.stack(Vc)
 
     def copy_list(self, ks: np.ndarray, ts: np.ndarray) -> tuple[list[np.ndarray], list[np.ndarray]]:
         """:meth:`copies` as two lists of single copies (C, R, A, H), (R, A, H), not stacked (views of the kept
