@@ -14,7 +14,6 @@ from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..mine.gallery import render_gallery
 from ..mine.library import Library, read_library
-from ..mine.openset import library_cut
 from ..mine.pipeline import library_gallery_faces
 from ..progress import bar
 from ..provenance import file_fingerprint, provenance, record_outputs
@@ -115,7 +114,8 @@ def open_set_on_labelled(lib: Library, st, doc: dict, cfg: dict) -> dict:
     views of labelled objects whose label disagrees with their cluster's majority.
     """
     from ..label.matcher import make_matcher
-    cut = library_cut(lib)
+    matcher = make_matcher(lib, cfg)
+    cut = matcher.unknown_cut   # the library's cut, or its other-face rule's (mine.openset)
     info = {"alpha": float(lib.attrs.get("unknown_alpha", float("nan"))), "cut": cut,
             "calibration_views": int(lib.attrs.get("unknown_calibration_views", 0)),
             "note": ("Views stored at ingest (one frame each), matched like a new frame; these objects helped build "
@@ -131,7 +131,7 @@ def open_set_on_labelled(lib: Library, st, doc: dict, cfg: dict) -> dict:
                 disagreeing=0, flagged_disagreeing=0)
     if rows.size == 0:
         return info
-    res = make_matcher(lib, cfg).match(st.read_single_views(rows))
+    res = matcher.match(st.read_single_views(rows))
     best = res["best"]
     score = np.where(best >= 0, res["score"][np.arange(best.size), np.maximum(best, 0)], 0.0)
     flagged = (best < 0) | (score < cut)

@@ -57,7 +57,7 @@ from ..ingest.volume import Grid, lift, matching_features
 from ..mine.library import Library
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import library_cut
+from ..mine.openset import best_second_ratio, library_cut, rule_scores
 from ..mine.pipeline import reduce_yaw, score_rings
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import tilted_distances
@@ -108,8 +108,11 @@ class Matcher:
     search: ViewSearch = field(init=False)
     groups: list[np.ndarray] = field(init=False)
     tilts: TiltGrid = field(init=False)
+    tilt_ratios: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
+        rule = self.library.attrs.get("unknown_tilt_ratios")
+        self.tilt_ratios = None if rule is None or not self.weighted else np.asarray(rule, np.float64)
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -154,7 +157,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
-                    "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
+                    "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
         # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
@@ -176,11 +179,13 @@ class Matcher:
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         # view prototypes (when the library has them) vote on the class; pose and score stay the 3-D prototype's
         D = self.search.vote(X, W, D)
+        if self.tilt_ratios is not None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
+            S = rule_scores(S, best_second_ratio(D), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         pr = self.library.prototypes
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
-        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face,
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face, "upright": upright,
                 "rotation": rotation, "best": best}
 
 
@@ -210,8 +215,11 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
     if library.n_clusters < 1:
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
+    cut = library_cut(library)
+    if weighted and "unknown_tilt_ratios" in library.attrs:   # the other-face rule's own cut (mine.openset)
+        cut = float(library.attrs["unknown_rule_cut"])
     return ((library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
-             library_cut(library), weighted),
+             cut, weighted),
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
                  rings=score_rings(lib_cfg, grid.radial_bins), refine_top=int(m.get("label_refine_top", 0)),
                  centre_offsets=view_centre_offsets(lib_cfg)))

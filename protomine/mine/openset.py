@@ -55,3 +55,91 @@ def library_cut(library) -> float:
         raise InputError(library.path, "unknown_cut", "library records no unknown cut (mined before the calibrated "
                          "unknown was added); mine it again")
     return float(library.attrs["unknown_cut"])
+
+
+# --- the other-face rule (``[mine] unknown_ratio``) --------------------------------------------------------------
+#
+# A view matched on another face than its prototype's canonical one is matched against the best of many tilted
+# copies, which fit the prototype's own members loosely; a never-mined object then fits the best copy about as
+# well as a known object does, and its calibrated score looks typical.  What tells them apart there is how much
+# nearer the best prototype is than the next one: for a known object one prototype stands out, for a never-mined
+# one several fit about equally.  The rule:
+#
+#     canonical-face match: the calibrated score s (``library.match_score``), unchanged;
+#     other-face match:     the conformal p-value of the ratio r = d_best / d_second among the ratios r_1..r_m
+#                           of the held-out views whose own label search also picked another face,
+#                               p(r) = (1 + #{i: r_i >= r}) / (m + 1)
+#                           (Vovk, Gammerman & Shafer 2005; Angelopoulos & Bates 2021, sec. 1: for a view
+#                           exchangeable with those, P(p <= a) <= a; large ratios are the nonconforming ones);
+#
+# both are tail probabilities of known views, so one split-conformal cut (``conformal_cut``) on the rule's value
+# over all held-out views (each held-out view's own p-value leaves that view out) keeps the known-flag rate at
+# alpha.  Held-out views mimic the label decision: the view's distance to its own prototype is the leave-one-out
+# one (``pipeline.single_view_calibration``), to every other prototype the label search's; the nearest decides
+# the face, the ratio and the score.  Fitted on mined objects' single views only (no unknowns are needed).
+
+RATIO_ATTRS = ("unknown_tilt_ratios", "unknown_rule_cut")
+MIN_RATIO_VIEWS = 19   # with m ratios a p-value is at least 1 / (m + 1): fewer than 1 / alpha - 1 cannot flag at 0.05
+
+
+def best_second_ratio(D) -> np.ndarray:
+    """(n, K) distances -> (n, K) r_j = D_j / min over i != j of D_i (the ratio of the best to the second-best
+    distance at the best prototype, above 1 at every other); NaN where D_j is not finite, 0 where no other
+    prototype has a finite distance (nothing competes)."""
+    D = np.asarray(D, np.float64)
+    n, K = D.shape
+    Df = np.where(np.isfinite(D), D, np.inf)
+    if K < 2:
+        other = np.full((n, K), np.inf)
+    else:
+        part = np.sort(Df, axis=1)[:, :2]                        # the two least distances of each row
+        is_min = Df == part[:, :1]
+        other = np.where(is_min, part[:, 1:2], part[:, :1])      # min over the others: the second at the min, else the min
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(np.isfinite(other), Df / np.where(np.isfinite(other), other, 1.0), 0.0)
+    return np.where(np.isfinite(D), r, np.nan)
+
+
+def ratio_pvalue(calibration, r) -> np.ndarray:
+    """Conformal p-value (1 + #{calibration >= r}) / (m + 1) of ratios ``r`` among m calibration ratios."""
+    c = np.sort(np.asarray(calibration, np.float64).ravel())
+    r = np.asarray(r, np.float64)
+    ge = c.size - np.searchsorted(c, r, side="left")
+    return (1.0 + ge) / (c.size + 1.0)
+
+
+def loo_ratio_pvalues(calibration) -> np.ndarray:
+    """Each calibration ratio's p-value among the others: (1 + #{j != i: r_j >= r_i}) / m."""
+    c = np.asarray(calibration, np.float64).ravel()
+    s = np.sort(c)
+    ge = c.size - np.searchsorted(s, c, side="left")             # counts r_i itself
+    return ge / max(c.size, 1)
+
+
+def rule_scores(score, ratio, upright, tilt_ratios) -> np.ndarray:
+    """The rule's value (broadcast together): the score on the canonical face, the ratio's p-value elsewhere."""
+    p = ratio_pvalue(tilt_ratios, np.nan_to_num(np.asarray(ratio, np.float64), nan=np.inf))
+    return np.where(np.asarray(upright, bool), score, np.where(np.isfinite(np.asarray(ratio, np.float64)), p, 0.0))
+
+
+def calibrate_rule(D, S, U, own, own_d, own_s, own_up, alpha: float) -> dict | None:
+    """The rule's calibration from held-out views: D, S, U (Q, K) distance, score and face kind (canonical) of
+    each view against every prototype as the label search gives them; own (Q,) its object's prototype and own_d,
+    own_s, own_up (Q,) the leave-one-out distance, score and face kind there.  Returns {"unknown_tilt_ratios":
+    sorted ratios of views whose decision is another face, "unknown_rule_cut"}, or None when fewer than
+    ``MIN_RATIO_VIEWS`` views decide on another face (the plain score then stays the rule)."""
+    D, S, U = (np.array(a) for a in (D, S, U))
+    i = np.arange(len(own))
+    D[i, own], S[i, own], U[i, own] = own_d, own_s, own_up
+    D = np.where(np.isfinite(D), D, np.inf)
+    ok = np.isfinite(D).any(axis=1)
+    D, S, U = D[ok], S[ok], U[ok].astype(bool)
+    b = np.argmin(D, axis=1)
+    j = np.arange(len(b))
+    r, s, u = best_second_ratio(D)[j, b], S[j, b], U[j, b]
+    tilted = ~u
+    if tilted.sum() < MIN_RATIO_VIEWS:
+        return None
+    value = s.astype(np.float64).copy()
+    value[tilted] = loo_ratio_pvalues(r[tilted])
+    return {"unknown_tilt_ratios": np.sort(r[tilted]), "unknown_rule_cut": conformal_cut(value, alpha)}

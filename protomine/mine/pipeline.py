@@ -287,8 +287,8 @@ def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.nd
 def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,
                             scales: tuple[float, ...], *, reliable: bool = True, max_objects_per_cluster: int = 64,
                             progress: Callable[[str], None] | None = None, up: np.ndarray | None = None,
-                            bank: TiltBank | None = None, search=None, upright_out: np.ndarray | None = None
-                            ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                            bank: TiltBank | None = None, search=None, upright_out: np.ndarray | None = None,
+                            raw_out: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Leave-one-out distances of the store's one-frame volumes to their object's prototype: (Q,) distances
     (inf for views left out of the calibration), (Q,) clusters, and the per-cell reliability (K, R, H) of
     single views (``reliability``; ones when ``reliable`` is False).
@@ -309,6 +309,9 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     lives in the canonical frame), as the matcher does for tilted matches.  With ``[mine] tolerant_residual``
     or ``[mine] score_margin_ring`` below 1 every view's distance is the one of ``viewdistance`` (views on
     another face against the copy resting on it, without reliability), the distance the matcher then scores.
+    ``upright_out`` (Q,) and ``raw_out`` (Q,), when given, receive each calibrated view's face kind (canonical or
+    not) and its plain pose-search distance (before the reliability or ``viewdistance`` re-weighting): the
+    distance the label search ranks prototypes by (``mine.openset``'s ratio calibration uses it).
     """
     from .engine import align_to_prototype
     from .reliability import reliable_distances, residual_sums
@@ -340,6 +343,8 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
         for k, rows, xs, ws, Pk, Vk, upright in loo():
             pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
             out[rows] = pm.D[:, 0]
+            if raw_out is not None:  # the pose search's own distance, before any re-weighting
+                raw_out[rows] = pm.D[:, 0]
             if upright_out is not None:
                 upright_out[rows] = upright
             poses.append((pm.yaw_deg, pm.scale))
@@ -366,6 +371,29 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
                 out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
             b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)
+
+
+def rule_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np.ndarray, own_d: np.ndarray,
+                     own_s: np.ndarray, own_up: np.ndarray, alpha: float, *, chunk: int = 256,
+                     progress: Callable[[str], None] | None = None) -> dict | None:
+    """The other-face rule's calibration (``[mine] unknown_ratio``; ``openset.calibrate_rule``): the held-out
+    single views (store rows ``rows``, their prototypes ``own``, leave-one-out plain distances ``own_d``, scores
+    ``own_s`` and face kinds ``own_up``, from :func:`single_view_calibration`) matched against every prototype by
+    the label stage's own matcher, so the ratio of the best to the second-best distance is the label decision's.
+    Returns the library attributes of ``openset.RATIO_ATTRS``, or None (too few other-face decisions)."""
+    from ..label.matcher import make_matcher
+    from .openset import calibrate_rule
+    if len(rows) == 0 or lib.n_clusters < 2:
+        return None
+    matcher = make_matcher(lib, lib.config)
+    parts = []
+    with bar(progress, "unknown rule calibration", total=len(rows), unit="views") as b:
+        for i0 in range(0, len(rows), chunk):
+            m = matcher.match(store.read_single_views(rows[i0:i0 + chunk]))
+            parts.append((m["distance"], m["score"], m["upright"]))
+            b.advance(len(m["distance"]))
+    D, S, U = (np.concatenate(a) for a in zip(*parts))
+    return calibrate_rule(D, S, U, own, own_d, own_s, own_up, alpha)
 
 
 def calibration_search(model, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid, cfg: dict):
@@ -551,13 +579,15 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     bank = TiltBank(model.prototypes_, model.prototype_weights_, aspect, scales, grid) if grid is not None else None
     search = calibration_search(model, aspect, scales, grid, cfg) if bank is not None else None
     sv_up = np.ones(len(store.single_object), bool)  # views matched on the canonical face (the calibration's)
+    sv_raw = np.full(len(store.single_object), np.inf)  # their plain pose-search distances (the rule's ratio)
     sv_d, sv_k, reliability = single_view_calibration(store, cfg, model.prototypes_, model.prototype_weights_, labels,
                                                       scales, progress=progress, up=np.asarray(model.up_), bank=bank,
-                                                      search=search, upright_out=sv_up)
+                                                      search=search, upright_out=sv_up, raw_out=sv_raw)
     if bank is not None and search is None:  # each view on its object's mined face (_loo_single_views)
         sv_up = np.asarray(model.up_)[store.single_object, 2] >= np.cos(np.deg2rad(IDENTITY_DEG))
     fin = np.isfinite(sv_d)
-    sv_k, sv_d, sv_up = sv_k[fin], sv_d[fin], sv_up[fin]
+    sv_rows = np.flatnonzero(fin)
+    sv_k, sv_d, sv_up, sv_raw = sv_k[fin], sv_d[fin], sv_up[fin], sv_raw[fin]
     pooled_f = float(np.median([s for _, s in fused])) if K else 0.1
     fused_mu = np.array([f[0] for f in fused]); fused_sigma = np.array([max(f[1], pooled_f) if np.sum(labels == k) < 5 else f[1] for k, f in enumerate(fused)])
     single_mu, single_sigma, tilt_mu, tilt_sigma = split_calibration(sv_d, sv_k, sv_up, K, fused)
@@ -599,10 +629,14 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
     # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
     alpha = float(cfg["mine"]["unknown_alpha"])
+    sv_s = match_score(sv_d, np.where(sv_up, single_mu[sv_k], tilt_mu[sv_k]), np.where(sv_up, single_sigma[sv_k], tilt_sigma[sv_k]))
     attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
-                  "unknown_cut": conformal_cut(match_score(sv_d, np.where(sv_up, single_mu[sv_k], tilt_mu[sv_k]),
-                                                           np.where(sv_up, single_sigma[sv_k], tilt_sigma[sv_k])), alpha)})
+                  "unknown_cut": conformal_cut(sv_s, alpha)})
     lib = Library(protos, members, attrs)
+    if bank is not None and bool(cfg["mine"].get("unknown_ratio", False)):
+        rule = rule_calibration(lib, store, sv_rows, sv_k, sv_raw, sv_s, sv_up, alpha, progress=progress)
+        if rule is not None:
+            lib.attrs.update(rule)
     pause_point("inputs_read")
     write_library(library_path, lib)
     out = Path(library_path).parent
