@@ -35,6 +35,9 @@ cluster None and score 0); alternatives are the next nearest prototypes, with th
 "unknown" when that score is below the library's ``unknown_cut`` (``mine.openset``: the split-conformal
 cut at ``unknown_alpha`` on held-out single views of mined objects, so at most that share of known-class
 views is flagged), i.e. the per-prototype distance threshold ``exp(mu_k + sigma_k * T_4^-1(1 - unknown_cut))``.
+A library mined with ``[mine] unknown_ratio`` (attributes ``unknown_tilt_ratios``, ``unknown_rule_cut``) scores a
+match on another face by the conformal p-value of its best/second-best distance ratio instead, and flags by
+``unknown_rule_cut`` (``mine.openset``, the other-face rule).
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in

@@ -6,7 +6,8 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
     attrs        format, conventions, grid, features, scales, tilts (JSON: the up-direction grid searched,
                  ``mine.tilts.TiltGrid.to_config``), store_path, store_fingerprint, config, seed,
                  provenance (code version, inputs), unknown_alpha, unknown_cut,
-                 unknown_calibration_views (the open-set cut, ``mine.openset``)
+                 unknown_calibration_views (the open-set cut, ``mine.openset``); optional unknown_tilt_ratios,
+                 unknown_rule_cut (the other-face rule of ``[mine] unknown_ratio``, ``mine.openset``)
     prototypes/  features (K, C, R, A, H), weights (K, R, A, H) matching features and observation weights
                  in the canonical frame; volumes (K, 6, R, A, H) mean aligned store volumes (pictures);
                  symmetry (K,) 0 = continuous, 1 = none, n = n-fold; period_deg (K,) 360/n (0 = any yaw);
