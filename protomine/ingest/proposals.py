@@ -85,14 +85,29 @@ class SceneObjects:
     plane: PlaneFit
     frames: list[FrameData]
     proposals: list[Proposal]
+    _held: dict = field(default_factory=dict, repr=False, compare=False)
 
     def views(self, p: Proposal, frame_ids: list[str] | None = None) -> list[View]:
+        """The frames that see ``p``, each with the pixels other proposals of the scene hold there (View.others)."""
         K = self.capture.intrinsics.K
         out = []
         for fd in self.frames:
             if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
-                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying))
+                held = self.held(fd)
+                others = held.copy()
+                others[p.pixels[fd.id]] -= 1
+                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying, others > 0))
         return out
+
+    def held(self, fd: FrameData) -> np.ndarray:
+        """(H * W,) how many proposals hold each pixel of frame ``fd`` (counted once a frame)."""
+        if fd.id not in self._held:
+            n = np.zeros(fd.depth.size, np.int32)
+            for q in self.proposals:
+                if fd.id in q.pixels:
+                    np.add.at(n, q.pixels[fd.id], 1)
+            self._held[fd.id] = n
+        return self._held[fd.id]
 
 
 def load_frames(cap: Capture, frame_ids: list[str] | None = None,

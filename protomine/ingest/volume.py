@@ -16,7 +16,9 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
             ``carve_to_plane``, where the reading lies on the support plane, cell depth < measured depth:
             the space above an empty plane is free right down to it, so free space does not depend on
             which face is down)
-  observed  number of frames that observed the cell (in front of or at the measured surface)
+  observed  number of frames that observed the cell (in front of or at the measured surface; with
+            ``others_unseen``, only in front of a reading another object holds: a touching neighbour's
+            surface is not evidence about this object)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
 "unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A cell
@@ -52,6 +54,7 @@ class Grid:
     carve_margin_cells: float = 0.75
     carve_to_plane: bool = False
     unread_min_surface: float = 0.0
+    others_unseen: bool = False
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -70,6 +73,8 @@ class View:
     pixels: flat indices (M,) into (H, W) of the pixels that belong to the object.
     flying: (H, W) bool ``depthedges.flying_pixels(depth)`` when the caller has it (a frame's, computed once for
     all its objects); None: lifting tests the pixels it reads (``depthedges.steady_depth_at``, the same flags).
+    others: (H * W,) bool, the pixels whose readings other objects of the frame hold (their masks or proposals),
+    when the caller has them; with ``Grid.others_unseen`` a cell at such a reading is not observed.
     """
     depth: np.ndarray
     rgb: np.ndarray
@@ -77,6 +82,7 @@ class View:
     cam_to_world: np.ndarray
     pixels: np.ndarray
     flying: np.ndarray | None = None
+    others: np.ndarray | None = None
 
 
 @dataclass
@@ -198,6 +204,13 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
             d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
         seen = inside & (d > 0) & (zc < d + margin)
         free = seen & (zc < d - margin)
+        if grid.others_unseen and v.others is not None:
+            # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
+            # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
+            # this object's margin, a wall no instance standing alone has; those cells stay unobserved
+            theirs = np.zeros(n_cells, bool)
+            theirs[inside] = v.others[r[inside] * w + u[inside]]
+            seen &= ~theirs | free
         if grid.carve_to_plane:
             free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
         # the object's own points: back-project its pixels
