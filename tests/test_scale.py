@@ -71,6 +71,21 @@ def test_pool_map_takes_items_from_an_iterator_in_order(pool_exec):
         pool_exec.map(_square, iter([1, -1, 2]), shared=1, fold=lambda acc, r: r)
 
 
+def test_submit_runs_one_item_beside_the_caller_and_reraises_input_errors(pool_exec):
+    """``submit`` (the demo's work beside its own stages): fn(shared, item) as computed here (reference: the
+    same call in this process), with map items submitted after it still in item order; a worker's InputError
+    comes back as such from ``result()``, and the inline executor runs the item at once."""
+    pending = [pool_exec.submit(_square, 3, i) for i in (4, 5)]
+    assert pool_exec.map(_square, [1, 2], shared=2) == [2, 8]
+    assert [p.result() for p in pending] == [3 * 16, 3 * 25]
+    bad = pool_exec.submit(_square, 1, -2)
+    with pytest.raises(InputError, match="negative item -2"):
+        bad.result()
+    assert InlineExecutor().submit(_square, 2, 7).result() == 98
+    with pytest.raises(InputError, match="negative item -1"):
+        InlineExecutor().submit(_square, 1, -1).result()
+
+
 def _thread_pools(shared: None, item: int) -> tuple[list[int], int]:
     from threadpoolctl import threadpool_info
     import scipy.linalg  # noqa: F401  (scipy's own BLAS, loaded here if not yet)

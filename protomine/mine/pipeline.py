@@ -485,15 +485,18 @@ def split_calibration(d: np.ndarray, k: np.ndarray, upright: np.ndarray, K: int,
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
                n_clusters: int | None = None, progress: Callable[[str], None] | None = None,
-               executor=None) -> tuple[Library, dict]:
+               executor=None, pictures=None) -> tuple[Library, dict]:
     """Mine the store and write the library, and beside it assignments.csv, gallery.png and members/
     (one sheet of member crops per cluster, :mod:`protomine.mine.members`).
+
+    ``pictures`` (an executor with ``submit``, e.g. the demo's process pool): gallery.png and members/ are drawn
+    on one of its workers while the caller goes on; ``info["pictures"]`` is then the pending drawing, whose
+    ``result()`` (the progress lines, for ``progress.replay``) the caller waits for before anything else writes
+    those files.  None: drawn here, before this returns.
 
     ``executor`` (``protomine.scale.executor``; None = this process, as before) runs the clustering passes,
     the final match and the picture volumes as map-reduces over chunks of objects.
     """
-    from .gallery import render_gallery
-    from .members import write_member_sheets
     store = open_store(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
@@ -607,12 +610,29 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     write_library(library_path, lib)
     out = Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
-    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"],
-                   faces=gallery_faces(vols, protos, grid))
-    record_outputs([out / "gallery.png"], prov)
-    write_member_sheets(out / "members", lib, store, progress=progress)
+    item = (lib, store.path, out, gallery_faces(vols, protos, grid), prov)
+    drawn = pictures.submit(draw_pictures, None, item) if pictures is not None else None
+    if drawn is None:
+        draw_pictures(None, item, progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
-                 "k_selection": k_table, "notices": notices}
+                 "k_selection": k_table, "notices": notices, "pictures": drawn}
+
+
+def draw_pictures(_, item: tuple, progress: Callable[[str], None] | None = None) -> list:
+    """gallery.png and members/ beside a mined library: ``item`` = (library, store path, folder, the gallery's
+    other-face pictures (:func:`gallery_faces`), provenance).  Module-level, so that a worker of an executor can
+    draw them (``mine_store(pictures=...)``); returns the lines of its progress (``progress.Recorder``) there."""
+    from ..progress import Recorder
+    from .gallery import render_gallery
+    from .members import write_member_sheets
+    lib, store_path, out, faces, prov = item
+    rec = Recorder() if progress is None else progress
+    p = lib.prototypes
+    render_gallery(out / "gallery.png", p["volumes"], counts=p["count"], symmetry=p["symmetry"], names=p["name"],
+                   faces=faces)
+    record_outputs([out / "gallery.png"], prov)
+    write_member_sheets(out / "members", lib, open_store(store_path), progress=rec)
+    return rec.lines if progress is None else []
 
 
 def library_gallery_faces(lib: Library) -> list | None:
