@@ -90,6 +90,15 @@ def _overlays_item(_, item: tuple) -> list:
     return rec.lines
 
 
+def _scans_item(_, item: tuple) -> list:
+    from .ingest.pipeline import ingest_captures
+    from .progress import Recorder
+    singles, scans, cfg, seed = item
+    rec = Recorder()
+    ingest_captures(singles, scans, cfg, seed=seed, progress=rec)
+    return rec.lines
+
+
 def _pictures_item(_, item: tuple) -> None:
     from .curate.names import refresh_gallery
     lib, library, clusters = item
@@ -115,11 +124,11 @@ def _audit_item(_, item: tuple) -> tuple[str, list]:
 
 
 def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
-                       truth: dict, say, executor, before=None) -> None:
-    """Label held-out single views; then a one-shot search for a class that mining never saw.  ``before()`` runs
-    before the first line is printed (the lines of the stages before, waiting for work in the pool)."""
+                       truth: dict, say, executor, scanned, before=None) -> None:
+    """Label held-out single views; then a one-shot search for a class that mining never saw, among the new scans
+    ``scanned`` (pending: ingested into out/new_scans.h5 on a worker since mining began).  ``before()`` runs before
+    the first line is printed (the lines of the stages before, waiting for work in the pool)."""
     from .curate.oneshot import find_similar, retrieval_scores
-    from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
     from .label.evaluate import evaluate_labels, record_groups
     from .label.matcher import label_captures
@@ -131,7 +140,7 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=say, executor=executor)
     prov = provenance(cfg, seed, {"library": file_fingerprint(library)}, command="demo")
     write_records(out / "labels.jsonl", recs, prov)
-    # the overlays are pictures only: drawn on a worker while this process ingests the new scans below
+    # the overlays are pictures only: drawn on a worker while this process goes on
     overlays = _later(executor, _overlays_item, (out / "overlays", singles[:6], recs, prov))
     ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv", scores=stats["scores"])
     if before is not None:
@@ -152,12 +161,9 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
                    f"unknown AUROC {e['auroc']:.3f}, flagged {e['unknown_flagged']:.0%} of unknown, "
                    f"{e['known_flagged']:.0%} of known")
     # one-shot: the user scans new items; one example of a class mining never saw finds the others
-    scans = out / "new_scans.h5"
-    if scans.exists():
-        scans.unlink()
-    ingest_captures(singles, scans, cfg, seed=seed, progress=say, executor=executor)
+    replay(say, scanned.result())
     replay(say, overlays.result())
-    st = open_store(scans)
+    st = open_store(out / "new_scans.h5")
     labels = np.array([truth.get(o, {}).get("label") for o in st.ids], dtype=object)
     mined_classes = {truth[o]["label"] for o in lib.members["object"] if o in truth}
     new_classes = sorted({l for l in labels if l and l not in mined_classes})
@@ -194,7 +200,9 @@ def demo(
     """Run the whole job on the built-in scenario and print how well it did.
 
     Rendering, ingest and label spread their captures over worker processes ([scale] workers, default
-    auto = the usable cores); mining runs in this process with the cores as torch threads.
+    auto = the usable cores); mining runs in this process with the cores as torch threads, while the workers
+    ingest the new scans; pictures, the pose-unaware baseline, export and audit run on a worker beside the
+    next stage, their lines printed in the usual order.
     """
     with executor_for(config_from(config), None, None, processes=True) as ex:
         _demo(out, captures, single, frames, quick, rerender, config, seed, quiet, verbose, ex)
@@ -243,6 +251,16 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     resid = [c["plane_residual_m"] * 1000 for c in res["captures"]]
     typer.echo(f"ingest: {res['objects']} objects from {len(mining)} captures, {res['frames_per_second']:.1f} frames/s, "
                f"plane residual median {np.median(resid):.2f} mm")
+
+    singles = [scenes / c for c in scen["single"]]
+    scanned = None
+    if singles:
+        # the one-shot search's new scans (the single views, ingested as a user would scan new items) do not
+        # depend on mining: ingested on a worker while this process mines, when the pool is otherwise idle
+        scans = out / "new_scans.h5"
+        if scans.exists():
+            scans.unlink()
+        scanned = _later(executor, _scans_item, (singles, scans, cfg, seed))
 
     library = out / "library.h5"
     # the gallery and the member sheets are drawn on a worker of the pool while this process goes on
@@ -298,9 +316,9 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
         typer.echo(f"tag: each cluster named from one random member; the names are right for {right}/{len(lib.members['object'])} "
                    f"mined objects ({right / max(len(lib.members['object']), 1):.3f})")
 
-    singles = [scenes / c for c in scen["single"]]
     if singles:
-        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say, executor, before=mine_and_tag_lines)
+        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say, executor, scanned,
+                           before=mine_and_tag_lines)
     else:
         mine_and_tag_lines()
 

@@ -40,7 +40,7 @@ from .library import Library, log_distance_fit, match_score, pad_quaternions, wr
 from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
-from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
+from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, _pooled, grid_aspect, volume_on_face
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -246,9 +246,13 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
         # every view of the chunk searched against its own prototype, one call per prototype
         view_k = labels[store.single_object[rows_all]]
         ups_all, upr_all = np.zeros((len(rows_all), 3)), np.ones(len(rows_all), bool)
-        for k in np.unique(view_k):
-            sk = np.flatnonzero(view_k == k)
-            ups_all[sk], upr_all[sk] = search(xs[sk], ws[sk], int(k))
+        ks = np.unique(view_k)
+        sel_k = [np.flatnonzero(view_k == k) for k in ks]
+        # the prototypes' searches are independent: one per thread of the spectra pool (tilts._pooled), each
+        # with one torch thread, results taken in prototype order
+        found = _pooled(lambda i: search(xs[sel_k[i]], ws[sel_k[i]], int(ks[i])), range(len(ks)))
+        for sk, (u, r) in zip(sel_k, found):
+            ups_all[sk], upr_all[sk] = u, r
         for j, obj in enumerate(chunk):
             k = int(labels[obj])
             sel = np.flatnonzero(store.single_object[rows_all] == obj)
@@ -335,35 +339,54 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
                     last = obj
         loo = lambda: iter(groups)  # noqa: E731
         n_items = len(groups)
+
+    def first(g):   # a group's distances and poses, and its residual sums for the reliability
+        k, rows, xs, ws, Pk, Vk, upright = g
+        pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        ok = np.isfinite(pm.D[:, 0])
+        a, c = np.zeros((R, H)), np.zeros((R, H))
+        if reliable and upright and ok.any():
+            xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
+            a, c = residual_sums(xa, wa, Pk[0], Vk[0])
+        return pm, a, c
+
+    def second(g, pose, sums):   # a group's distances re-weighted by the reliability without its object
+        k, rows, xs, ws, Pk, Vk, upright = g
+        (yaw, sc), (a, c) = pose, sums
+        if upright:
+            lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
+            return reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings)[:, 0]
+        if again and len(rows):  # another face: the same distance against the copy, no reliability
+            return pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
+                                  np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0],
+                                  tolerant=tolerant, rings=rings)
+        return None
+
+    # with the searched faces the groups are in memory: each pass runs them on the spectra pool's threads
+    # (tilts._pooled, one torch thread each) and takes their results in group order, so the sums below add up
+    # in the same order as one after the other
+    def each(fn, items):  # (item, fn(item)) in item order
+        if search is None:
+            return ((it, fn(it)) for it in items)
+        items = list(items)
+        return zip(items, _pooled(fn, items))
+
     poses, own = [], []
     with bar(progress, "score calibration", total=n_items * (2 if reliable else 1), unit="groups" if search else "objects") as b:
-        for k, rows, xs, ws, Pk, Vk, upright in loo():
-            pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        for (k, rows, xs, ws, Pk, Vk, upright), (pm, a, c) in each(first, loo()):
             out[rows] = pm.D[:, 0]
             if upright_out is not None:
                 upright_out[rows] = upright
             poses.append((pm.yaw_deg, pm.scale))
-            ok = np.isfinite(pm.D[:, 0])
-            a, c = np.zeros((R, H)), np.zeros((R, H))
-            if reliable and upright and ok.any():
-                xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
-                a, c = residual_sums(xa, wa, Pk[0], Vk[0])
             own.append((a, c))
             num[k] += a
             den[k] += c
             b.advance(1)
         if not reliable:
             return out, labels[store.single_object], np.ones((K, R, H))
-        for (k, rows, xs, ws, Pk, Vk, upright), (yaw, sc), (a, c) in zip(loo(), poses, own):
-            if upright:
-                lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
-                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings)[:, 0]
-                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
-            elif again and len(rows):  # another face: the same distance against the copy, no reliability
-                d = pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
-                                   np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0],
-                                   tolerant=tolerant, rings=rings)
-                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+        for (g, _, _), d in each(lambda t: second(*t), zip(loo(), poses, own)):
+            if d is not None:
+                out[g[1]] = np.where(np.isfinite(out[g[1]]), d, np.inf)
             b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)
 
