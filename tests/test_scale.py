@@ -336,6 +336,21 @@ def pool_exec():
     ex.close()
 
 
+def test_mine_pictures_drawn_on_a_worker_equal_those_drawn_here(tiny_world, pool_exec, tmp_path):
+    """mine_store(pictures=pool): gallery.png and the member sheets drawn on a worker process are byte-identical to
+    those drawn in this process (reference: the same call without ``pictures``), beside the same assignments."""
+    from protomine.mine.pipeline import mine_store
+    cfg = tiny_world["cfg"]
+    mine_store(tiny_world["store"], tmp_path / "h" / "library.h5", cfg, seed=3, n_clusters=2)
+    _, info = mine_store(tiny_world["store"], tmp_path / "w" / "library.h5", cfg, seed=3, n_clusters=2,
+                         pictures=pool_exec)
+    info["pictures"].result()
+    names = ["gallery.png"] + [f"members/{p.name}" for p in sorted((tmp_path / "h" / "members").glob("*.png"))]
+    assert len(names) == 3
+    for name in names + ["assignments.csv"]:
+        assert (tmp_path / "w" / name).read_bytes() == (tmp_path / "h" / name).read_bytes(), name
+
+
 def test_local_process_pool_ingest_equals_single_file_store(tiny_world, pool_exec, tmp_path):
     ingest_sharded(tiny_world["caps"], tmp_path / "objects.h5", tiny_world["cfg"], executor=pool_exec)
     _tables_equal(open_store(tmp_path / "objects.h5"), ObjectStore(tiny_world["store"]))
