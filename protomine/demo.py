@@ -62,16 +62,77 @@ def _export_line(summary: dict) -> str:
     return ", ".join(f"{summary[k]} {k}" for k in keys) if keys else "written"
 
 
-def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
-                       truth: dict, say, executor) -> None:
-    """Label held-out single views; then a one-shot search for a class that mining never saw."""
+# --- work the demo runs beside its own, on a worker of its pool (module-level: pickled by reference) ---------
+
+def _later(executor, fn, item):
+    """``fn(None, item)`` started now on a worker of the demo's pool (``executor.submit``), or run here at once
+    when the executor has no workers to spare (``--workers 1``, Dask): something with ``result()``."""
+    if getattr(executor, "submit", None) is None:
+        from .scale.executor import InlineExecutor
+        executor = InlineExecutor()
+    return executor.submit(fn, None, item)
+
+
+def _baseline_item(_, item: tuple) -> dict:
+    from .ingest.sharded import open_store
+    from .mine.evaluate import kmeans_baseline
+    store, cfg, truth, k, seed = item
+    return kmeans_baseline(open_store(store), cfg, truth, k, seed)
+
+
+def _overlays_item(_, item: tuple) -> list:
     from .capture import read_capture
-    from .curate.oneshot import find_similar, retrieval_scores
+    from .label.overlays import write_overlays
+    from .progress import Recorder
+    folder, captures, recs, prov = item
+    rec = Recorder()
+    write_overlays(folder, [read_capture(c) for c in captures], recs, prov, progress=rec)
+    return rec.lines
+
+
+def _scans_item(_, item: tuple) -> list:
     from .ingest.pipeline import ingest_captures
+    from .progress import Recorder
+    singles, scans, cfg, seed = item
+    rec = Recorder()
+    ingest_captures(singles, scans, cfg, seed=seed, progress=rec)
+    return rec.lines
+
+
+def _pictures_item(_, item: tuple) -> None:
+    from .curate.names import refresh_gallery
+    lib, library, clusters = item
+    refresh_gallery(lib, library, clusters=clusters)
+
+
+def _export_item(_, item: tuple) -> tuple[dict, list]:
+    from .curate.export import export_labels
+    from .ingest.sharded import open_store
+    from .progress import Recorder
+    lib, store, mining, folder, cfg = item
+    rec = Recorder()
+    return export_labels(lib, open_store(store), mining, folder, cfg, progress=rec), rec.lines
+
+
+def _audit_item(_, item: tuple) -> tuple[str, list]:
+    from .audit.run import run_audit, summary_line
+    from .progress import Recorder
+    library, held, folder, cfg, store, seed = item
+    rec = Recorder()
+    doc = run_audit(library, held, folder, cfg, store=store, seed=seed, progress=rec)
+    return summary_line(doc, folder), rec.lines
+
+
+def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, out: Path, cfg: dict, seed: int,
+                       truth: dict, say, executor, scanned, before=None) -> None:
+    """Label held-out single views; then a one-shot search for a class that mining never saw, among the new scans
+    ``scanned`` (pending: ingested into out/new_scans.h5 on a worker since mining began).  ``before()`` runs before
+    the first line is printed (the lines of the stages before, waiting for work in the pool)."""
+    from .curate.oneshot import find_similar, retrieval_scores
     from .ingest.sharded import open_store
     from .label.evaluate import evaluate_labels, record_groups
     from .label.matcher import label_captures
-    from .label.overlays import write_overlays
+    from .progress import replay
     from .provenance import file_fingerprint, provenance
     from .records import write_records
 
@@ -79,8 +140,11 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
     recs = label_captures(lib, singles, cfg, seed=seed, stats=stats, progress=say, executor=executor)
     prov = provenance(cfg, seed, {"library": file_fingerprint(library)}, command="demo")
     write_records(out / "labels.jsonl", recs, prov)
-    write_overlays(out / "overlays", [read_capture(c) for c in singles[:6]], recs, prov, progress=say)
+    # the overlays are pictures only: drawn on a worker while this process goes on
+    overlays = _later(executor, _overlays_item, (out / "overlays", singles[:6], recs, prov))
     ev = evaluate_labels(recs, scenes / "truth_full.csv", lib, scenes / "truth_full.csv", scores=stats["scores"])
+    if before is not None:
+        before()
     typer.echo(f"label: {ev['n_known']} known and {ev['n_unknown']} never-mined objects in {len(singles)} single views; "
                f"known-class accuracy {ev['accuracy']:.3f} (deciding by score instead: {ev['accuracy_by_score']:.3f}), "
                f"median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg, "
@@ -97,11 +161,9 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
                    f"unknown AUROC {e['auroc']:.3f}, flagged {e['unknown_flagged']:.0%} of unknown, "
                    f"{e['known_flagged']:.0%} of known")
     # one-shot: the user scans new items; one example of a class mining never saw finds the others
-    scans = out / "new_scans.h5"
-    if scans.exists():
-        scans.unlink()
-    ingest_captures(singles, scans, cfg, seed=seed, progress=say, executor=executor)
-    st = open_store(scans)
+    replay(say, scanned.result())
+    replay(say, overlays.result())
+    st = open_store(out / "new_scans.h5")
     labels = np.array([truth.get(o, {}).get("label") for o in st.ids], dtype=object)
     mined_classes = {truth[o]["label"] for o in lib.members["object"] if o in truth}
     new_classes = sorted({l for l in labels if l and l not in mined_classes})
@@ -138,7 +200,9 @@ def demo(
     """Run the whole job on the built-in scenario and print how well it did.
 
     Rendering, ingest and label spread their captures over worker processes ([scale] workers, default
-    auto = the usable cores); mining runs in this process with the cores as torch threads.
+    auto = the usable cores); mining runs in this process with the cores as torch threads, while the workers
+    ingest the new scans; pictures, the pose-unaware baseline, export and audit run on a worker beside the
+    next stage, their lines printed in the usual order.
     """
     with executor_for(config_from(config), None, None, processes=True) as ex:
         _demo(out, captures, single, frames, quick, rerender, config, seed, quiet, verbose, ex)
@@ -148,8 +212,9 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
           config, seed: int, quiet: bool, verbose: bool, executor) -> None:
     from .ingest.pipeline import ingest_captures
     from .ingest.sharded import open_store
-    from .mine.evaluate import evaluate_mining, kmeans_baseline, read_truth_table
+    from .mine.evaluate import evaluate_mining, read_truth_table
     from .mine.pipeline import mine_store
+    from .progress import replay
     from .scenes.scenario import generate_scenario
 
     cfg = config_from(config if config is not None or not quick else "fast")
@@ -187,22 +252,30 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     typer.echo(f"ingest: {res['objects']} objects from {len(mining)} captures, {res['frames_per_second']:.1f} frames/s, "
                f"plane residual median {np.median(resid):.2f} mm")
 
+    singles = [scenes / c for c in scen["single"]]
+    scanned = None
+    if singles:
+        # the one-shot search's new scans (the single views, ingested as a user would scan new items) do not
+        # depend on mining: ingested on a worker while this process mines, when the pool is otherwise idle
+        scans = out / "new_scans.h5"
+        if scans.exists():
+            scans.unlink()
+        scanned = _later(executor, _scans_item, (singles, scans, cfg, seed))
+
     library = out / "library.h5"
-    lib, info = mine_store(store, library, cfg, seed=seed, progress=say)
+    # the gallery and the member sheets are drawn on a worker of the pool while this process goes on
+    lib, info = mine_store(store, library, cfg, seed=seed, progress=say,
+                           pictures=executor if getattr(executor, "submit", None) else None)
     t_mine = time.monotonic() - t0 - t_scenes - t_ingest
+    # from here on, work whose results are only printed or written to their own folder (the pose-unaware
+    # baseline, overlays, export, audit) runs on a worker of the pool beside this process's next stage; its
+    # lines are printed where they always were, in the same order
+    baseline = _later(executor, _baseline_item, (store, cfg, truth, lib.n_clusters, seed))
     ev = evaluate_mining(lib, truth)
     n_classes = ev["n_classes"]
-    base = kmeans_baseline(open_store(store), cfg, truth, lib.n_clusters, seed)
-    typer.echo(f"mine: K={lib.n_clusters} (true classes {n_classes}); purity {ev['purity']:.3f}, NMI {ev['nmi']:.3f}; "
-               f"yaw error median {ev['yaw_error_median_deg']:.1f} deg, p90 {ev['yaw_error_p90_deg']:.1f} deg "
-               f"(per-cluster offset, modulo symmetry); rotation error median {ev['rotation_error_median_deg']:.1f} deg, "
-               f"p90 {ev['rotation_error_p90_deg']:.1f} deg; symmetry right for {ev['symmetry_correct']}/{ev['symmetry_total']} clusters")
-    typer.echo(f"      pose-unaware baseline (scikit-learn KMeans on flattened volumes, same K): "
-               f"purity {base['purity']:.3f}, NMI {base['nmi']:.3f}")
-    typer.echo(f"      gallery {out / 'gallery.png'}; assignments {out / 'assignments.csv'}")
 
     # name each cluster from one example, as a user would after a glance at the gallery
-    from .curate.names import name_clusters
+    from .curate.names import cluster_of, name_clusters
     rng = np.random.default_rng(seed)
     right, named = 0, []
     for k in range(lib.n_clusters):
@@ -213,25 +286,51 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
         name = truth[example]["label"] if example in truth else f"item-{k}"
         named.append((example, name))
         right += sum(truth.get(o, {}).get("label") == name for o in members)
-    lib = name_clusters(library, named)  # one library rewrite and one gallery for all the names
-    typer.echo(f"tag: each cluster named from one random member; the names are right for {right}/{len(lib.members['object'])} "
-               f"mined objects ({right / max(len(lib.members['object']), 1):.3f})")
+    # one library rewrite for all the names; the gallery and the member sheets with the names are drawn on a
+    # worker (nothing below reads them)
+    lib = name_clusters(library, named, pictures=False)
+    named_clusters = sorted({cluster_of(lib, o) for o, _ in named})
 
-    singles = [scenes / c for c in scen["single"]]
-    if singles:
-        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say, executor)
-
-    from .curate.export import export_labels
-    exp = export_labels(lib, open_store(store), mining, out / "export", cfg, progress=say)
-    typer.echo(f"export: {_export_line(exp)} -> {out / 'export'}")
-
-    # audit against a held-out subset of the truth, as a user with a few dozen hand labels would
-    from .audit.run import run_audit, summary_line
+    # export and audit read the named library and the store only, and write their own folders
+    export = _later(executor, _export_item, (lib, store, mining, out / "export", cfg))
     held = out / "heldout.csv"
     n_held = heldout_subset(scenes / "truth_full.csv", list(lib.members["object"]), held, AUDIT_FRACTION,
                             np.random.default_rng(seed))
-    doc = run_audit(library, held, out / "report", cfg, store=store, seed=seed, progress=say)
-    typer.echo(f"audit ({n_held} hand labels): " + summary_line(doc, out / "report"))
+    audit = _later(executor, _audit_item, (library, held, out / "report", cfg, store, seed))
+
+    pictures = None
+
+    def mine_and_tag_lines() -> None:
+        nonlocal pictures
+        if info["pictures"] is not None:   # mining's pictures are drawn: now the named ones over them
+            replay(say, info["pictures"].result())
+        pictures = _later(executor, _pictures_item, (lib, library, named_clusters))
+        base = baseline.result()
+        typer.echo(f"mine: K={lib.n_clusters} (true classes {n_classes}); purity {ev['purity']:.3f}, NMI {ev['nmi']:.3f}; "
+                   f"yaw error median {ev['yaw_error_median_deg']:.1f} deg, p90 {ev['yaw_error_p90_deg']:.1f} deg "
+                   f"(per-cluster offset, modulo symmetry); rotation error median {ev['rotation_error_median_deg']:.1f} deg, "
+                   f"p90 {ev['rotation_error_p90_deg']:.1f} deg; symmetry right for {ev['symmetry_correct']}/{ev['symmetry_total']} clusters")
+        typer.echo(f"      pose-unaware baseline (scikit-learn KMeans on flattened volumes, same K): "
+                   f"purity {base['purity']:.3f}, NMI {base['nmi']:.3f}")
+        typer.echo(f"      gallery {out / 'gallery.png'}; assignments {out / 'assignments.csv'}")
+        typer.echo(f"tag: each cluster named from one random member; the names are right for {right}/{len(lib.members['object'])} "
+                   f"mined objects ({right / max(len(lib.members['object']), 1):.3f})")
+
+    if singles:
+        _label_and_oneshot(lib, library, singles, scenes, out, cfg, seed, truth, say, executor, scanned,
+                           before=mine_and_tag_lines)
+    else:
+        mine_and_tag_lines()
+
+    pictures.result()
+    exp, lines = export.result()
+    replay(say, lines)
+    typer.echo(f"export: {_export_line(exp)} -> {out / 'export'}")
+
+    # audit against a held-out subset of the truth, as a user with a few dozen hand labels would
+    line, lines = audit.result()
+    replay(say, lines)
+    typer.echo(f"audit ({n_held} hand labels): " + line)
     typer.echo(f"done in {time.monotonic() - t0:.0f} s (scenes {t_scenes:.0f} s, ingest {t_ingest:.0f} s, mine {t_mine:.0f} s). "
                "The labels are bootstrapped, not ground truth: audit them (see the report) before training anything "
                "whose mistakes can hurt someone.")

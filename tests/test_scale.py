@@ -71,6 +71,21 @@ def test_pool_map_takes_items_from_an_iterator_in_order(pool_exec):
         pool_exec.map(_square, iter([1, -1, 2]), shared=1, fold=lambda acc, r: r)
 
 
+def test_submit_runs_one_item_beside_the_caller_and_reraises_input_errors(pool_exec):
+    """``submit`` (the demo's work beside its own stages): fn(shared, item) as computed here (reference: the
+    same call in this process), with map items submitted after it still in item order; a worker's InputError
+    comes back as such from ``result()``, and the inline executor runs the item at once."""
+    pending = [pool_exec.submit(_square, 3, i) for i in (4, 5)]
+    assert pool_exec.map(_square, [1, 2], shared=2) == [2, 8]
+    assert [p.result() for p in pending] == [3 * 16, 3 * 25]
+    bad = pool_exec.submit(_square, 1, -2)
+    with pytest.raises(InputError, match="negative item -2"):
+        bad.result()
+    assert InlineExecutor().submit(_square, 2, 7).result() == 98
+    with pytest.raises(InputError, match="negative item -1"):
+        InlineExecutor().submit(_square, 1, -1).result()
+
+
 def _thread_pools(shared: None, item: int) -> tuple[list[int], int]:
     from threadpoolctl import threadpool_info
     import scipy.linalg  # noqa: F401  (scipy's own BLAS, loaded here if not yet)
@@ -319,6 +334,21 @@ def pool_exec():
     ex = PoolExecutor(2)
     yield ex
     ex.close()
+
+
+def test_mine_pictures_drawn_on_a_worker_equal_those_drawn_here(tiny_world, pool_exec, tmp_path):
+    """mine_store(pictures=pool): gallery.png and the member sheets drawn on a worker process are byte-identical to
+    those drawn in this process (reference: the same call without ``pictures``), beside the same assignments."""
+    from protomine.mine.pipeline import mine_store
+    cfg = tiny_world["cfg"]
+    mine_store(tiny_world["store"], tmp_path / "h" / "library.h5", cfg, seed=3, n_clusters=2)
+    _, info = mine_store(tiny_world["store"], tmp_path / "w" / "library.h5", cfg, seed=3, n_clusters=2,
+                         pictures=pool_exec)
+    info["pictures"].result()
+    names = ["gallery.png"] + [f"members/{p.name}" for p in sorted((tmp_path / "h" / "members").glob("*.png"))]
+    assert len(names) == 3
+    for name in names + ["assignments.csv"]:
+        assert (tmp_path / "w" / name).read_bytes() == (tmp_path / "h" / name).read_bytes(), name
 
 
 def test_local_process_pool_ingest_equals_single_file_store(tiny_world, pool_exec, tmp_path):

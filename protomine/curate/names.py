@@ -56,31 +56,34 @@ def name_cluster(library_path: str | Path, *, name: str | None, object_id: str |
     return _set_name(lib, library_path, k, name, "" if clear or object_id is None else str(object_id))
 
 
-def name_clusters(library_path: str | Path, named: list[tuple[str, str]]) -> Library:
+def name_clusters(library_path: str | Path, named: list[tuple[str, str]], *, pictures: bool = True) -> Library:
     """Name several clusters, each from one of its members: ``named`` is [(object id, name), ...].  The same
     library, member sheets and gallery as :func:`name_cluster` called for each pair in turn (a later pair for
     the same cluster wins), with one rewrite of the library and one gallery instead of one per name (the
-    gallery alone is ~1.3 s of CPU for 8 prototypes).  Returns the rewritten library."""
+    gallery alone is ~1.3 s of CPU for 8 prototypes).  Returns the rewritten library.  ``pictures`` False: the
+    library only; the caller redraws the gallery and the named clusters' sheets (:func:`refresh_gallery`), e.g.
+    on another core while it goes on (the demo)."""
     library_path = Path(library_path)
     lib = read_library(library_path)
     changes = [(cluster_of(lib, str(oid)), check_name(name), str(oid)) for oid, name in named]
     if not changes:
         return lib
-    return _set_names(lib, library_path, changes)
+    return _set_names(lib, library_path, changes, pictures=pictures)
 
 
 def _set_name(lib: Library, path: Path, k: int, name: str, example: str) -> Library:
     return _set_names(lib, path, [(k, name, example)])
 
 
-def _set_names(lib: Library, path: Path, changes: list[tuple[int, str, str]]) -> Library:
+def _set_names(lib: Library, path: Path, changes: list[tuple[int, str, str]], pictures: bool = True) -> Library:
     names = np.array([str(x) for x in lib.prototypes["name"]], dtype=object)
     examples = np.array([str(x) for x in lib.prototypes["name_example"]], dtype=object)
     for k, name, example in changes:
         names[k], examples[k] = name, example
     lib.prototypes["name"], lib.prototypes["name_example"] = names, examples
     write_library(path, lib)
-    refresh_gallery(lib, path, clusters=sorted({k for k, _, _ in changes}))
+    if pictures:
+        refresh_gallery(lib, path, clusters=sorted({k for k, _, _ in changes}))
     return lib
 
 

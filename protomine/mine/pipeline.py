@@ -40,7 +40,7 @@ from .library import Library, log_distance_fit, match_score, pad_quaternions, wr
 from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
-from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
+from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, _pooled, grid_aspect, volume_on_face
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -246,9 +246,13 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
         # every view of the chunk searched against its own prototype, one call per prototype
         view_k = labels[store.single_object[rows_all]]
         ups_all, upr_all = np.zeros((len(rows_all), 3)), np.ones(len(rows_all), bool)
-        for k in np.unique(view_k):
-            sk = np.flatnonzero(view_k == k)
-            ups_all[sk], upr_all[sk] = search(xs[sk], ws[sk], int(k))
+        ks = np.unique(view_k)
+        sel_k = [np.flatnonzero(view_k == k) for k in ks]
+        # the prototypes' searches are independent: one per thread of the spectra pool (tilts._pooled), each
+        # with one torch thread, results taken in prototype order
+        found = _pooled(lambda i: search(xs[sel_k[i]], ws[sel_k[i]], int(ks[i])), range(len(ks)))
+        for sk, (u, r) in zip(sel_k, found):
+            ups_all[sk], upr_all[sk] = u, r
         for j, obj in enumerate(chunk):
             k = int(labels[obj])
             sel = np.flatnonzero(store.single_object[rows_all] == obj)
@@ -338,37 +342,56 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
                     last = obj
         loo = lambda: iter(groups)  # noqa: E731
         n_items = len(groups)
+
+    def first(g):   # a group's distances and poses, and its residual sums for the reliability
+        k, rows, xs, ws, Pk, Vk, upright = g
+        pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        ok = np.isfinite(pm.D[:, 0])
+        a, c = np.zeros((R, H)), np.zeros((R, H))
+        if reliable and upright and ok.any():
+            xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
+            a, c = residual_sums(xa, wa, Pk[0], Vk[0])
+        return pm, a, c
+
+    def second(g, pose, sums):   # a group's distances re-weighted by the reliability without its object
+        k, rows, xs, ws, Pk, Vk, upright = g
+        (yaw, sc), (a, c) = pose, sums
+        if upright:
+            lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
+            return reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings)[:, 0]
+        if again and len(rows):  # another face: the same distance against the copy, no reliability
+            return pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
+                                  np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0],
+                                  tolerant=tolerant, rings=rings)
+        return None
+
+    # with the searched faces the groups are in memory: each pass runs them on the spectra pool's threads
+    # (tilts._pooled, one torch thread each) and takes their results in group order, so the sums below add up
+    # in the same order as one after the other
+    def each(fn, items):  # (item, fn(item)) in item order
+        if search is None:
+            return ((it, fn(it)) for it in items)
+        items = list(items)
+        return zip(items, _pooled(fn, items))
+
     poses, own = [], []
     with bar(progress, "score calibration", total=n_items * (2 if reliable else 1), unit="groups" if search else "objects") as b:
-        for k, rows, xs, ws, Pk, Vk, upright in loo():
-            pm = pose_distances(xs, ws, Pk, Vk, scales=scales)
+        for (k, rows, xs, ws, Pk, Vk, upright), (pm, a, c) in each(first, loo()):
             out[rows] = pm.D[:, 0]
             if raw_out is not None:  # the pose search's own distance, before any re-weighting
                 raw_out[rows] = pm.D[:, 0]
             if upright_out is not None:
                 upright_out[rows] = upright
             poses.append((pm.yaw_deg, pm.scale))
-            ok = np.isfinite(pm.D[:, 0])
-            a, c = np.zeros((R, H)), np.zeros((R, H))
-            if reliable and upright and ok.any():
-                xa, wa = align_to_prototype(xs[ok], ws[ok], pm.yaw_deg[ok, 0], pm.scale[ok, 0])
-                a, c = residual_sums(xa, wa, Pk[0], Vk[0])
             own.append((a, c))
             num[k] += a
             den[k] += c
             b.advance(1)
         if not reliable:
             return out, labels[store.single_object], np.ones((K, R, H))
-        for (k, rows, xs, ws, Pk, Vk, upright), (yaw, sc), (a, c) in zip(loo(), poses, own):
-            if upright:
-                lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
-                d = reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings)[:, 0]
-                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
-            elif again and len(rows):  # another face: the same distance against the copy, no reliability
-                d = pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
-                                   np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0],
-                                   tolerant=tolerant, rings=rings)
-                out[rows] = np.where(np.isfinite(out[rows]), d, np.inf)
+        for (g, _, _), d in each(lambda t: second(*t), zip(loo(), poses, own)):
+            if d is not None:
+                out[g[1]] = np.where(np.isfinite(out[g[1]]), d, np.inf)
             b.advance(1)
     return out, labels[store.single_object], cell_reliability(num, den)
 
@@ -513,15 +536,18 @@ def split_calibration(d: np.ndarray, k: np.ndarray, upright: np.ndarray, K: int,
 
 def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, seed: int = 0,
                n_clusters: int | None = None, progress: Callable[[str], None] | None = None,
-               executor=None) -> tuple[Library, dict]:
+               executor=None, pictures=None) -> tuple[Library, dict]:
     """Mine the store and write the library, and beside it assignments.csv, gallery.png and members/
     (one sheet of member crops per cluster, :mod:`protomine.mine.members`).
+
+    ``pictures`` (an executor with ``submit``, e.g. the demo's process pool): gallery.png and members/ are drawn
+    on one of its workers while the caller goes on; ``info["pictures"]`` is then the pending drawing, whose
+    ``result()`` (the progress lines, for ``progress.replay``) the caller waits for before anything else writes
+    those files.  None: drawn here, before this returns.
 
     ``executor`` (``protomine.scale.executor``; None = this process, as before) runs the clustering passes,
     the final match and the picture volumes as map-reduces over chunks of objects.
     """
-    from .gallery import render_gallery
-    from .members import write_member_sheets
     store = open_store(store_path)
     if len(store) < 2:
         raise InputError(store.path, "objects", f"mining needs at least 2 objects, the store has {len(store)}")
@@ -641,12 +667,29 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     write_library(library_path, lib)
     out = Path(library_path).parent
     write_assignments(out / "assignments.csv", lib)
-    render_gallery(out / "gallery.png", vols, counts=counts, symmetry=protos["symmetry"], names=protos["name"],
-                   faces=gallery_faces(vols, protos, grid))
-    record_outputs([out / "gallery.png"], prov)
-    write_member_sheets(out / "members", lib, store, progress=progress)
+    item = (lib, store.path, out, gallery_faces(vols, protos, grid), prov)
+    drawn = pictures.submit(draw_pictures, None, item) if pictures is not None else None
+    if drawn is None:
+        draw_pictures(None, item, progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
-                 "k_selection": k_table, "notices": notices}
+                 "k_selection": k_table, "notices": notices, "pictures": drawn}
+
+
+def draw_pictures(_, item: tuple, progress: Callable[[str], None] | None = None) -> list:
+    """gallery.png and members/ beside a mined library: ``item`` = (library, store path, folder, the gallery's
+    other-face pictures (:func:`gallery_faces`), provenance).  Module-level, so that a worker of an executor can
+    draw them (``mine_store(pictures=...)``); returns the lines of its progress (``progress.Recorder``) there."""
+    from ..progress import Recorder
+    from .gallery import render_gallery
+    from .members import write_member_sheets
+    lib, store_path, out, faces, prov = item
+    rec = Recorder() if progress is None else progress
+    p = lib.prototypes
+    render_gallery(out / "gallery.png", p["volumes"], counts=p["count"], symmetry=p["symmetry"], names=p["name"],
+                   faces=faces)
+    record_outputs([out / "gallery.png"], prov)
+    write_member_sheets(out / "members", lib, open_store(store_path), progress=rec)
+    return rec.lines if progress is None else []
 
 
 def library_gallery_faces(lib: Library) -> list | None:

@@ -101,22 +101,23 @@ class FaceDistance:
 
     def _build(self, P: np.ndarray, V: np.ndarray) -> None:
         from .faces import stable_ups
-        from .tilts import _resample_copies, copy_geometries, solid_points
+        from .tilts import _pooled, _resample_copies, copy_geometries, solid_points
         P, V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         if len(self.aspect) != len(P):
             raise ValueError(f"FaceDistance: {len(self.aspect)} aspects for {len(P)} prototypes")
-        owner, Pc, Vc = [], [], []
-        for k in range(len(P)):
+
+        def copies(k: int) -> tuple[np.ndarray, np.ndarray]:
             a = float(self.aspect[k])
             ups = stable_ups(P[k, 0], V[k], a)
             gs = copy_geometries(P.shape[2:], a, ups, self.grid, solid_points(P[k, 0], V[k], a, self.grid))
             pc, vc = _resample_copies(np.broadcast_to(P[k], (len(gs),) + P.shape[1:]),
                                       np.broadcast_to(V[k], (len(gs),) + V.shape[1:]), gs, np.full(len(gs), a))
             pc[0], vc[0] = P[k], V[k]  # +z: the prototype as it is, not resampled
-            owner += [k] * len(gs)
-            Pc.append(pc)
-            Vc.append(vc)
-        owner = np.asarray(owner)
+            return pc, vc
+
+        # each object's copies on its own: on the spectra pool's threads (tilts._pooled), in object order
+        Pc, Vc = zip(*_pooled(copies, range(len(P))))
+        owner = np.concatenate([np.full(len(pc), k, np.int64) for k, pc in enumerate(Pc)])
         Pc, Vc = np.concatenate(Pc), np.concatenate(Vc)
         self._banks = [(owner[b:b + self.BLOCK], PoseBank(Pc[b:b + self.BLOCK], Vc[b:b + self.BLOCK], self.scales))
                        for b in range(0, len(owner), self.BLOCK)]

@@ -71,6 +71,17 @@ def _check(r: Any) -> Any:
     return r
 
 
+class Pending:
+    """The result of :meth:`PoolExecutor.submit` to come: ``result()`` waits for it (a worker's InputError is
+    raised as such)."""
+
+    def __init__(self, future: cf.Future):
+        self._future = future
+
+    def result(self) -> Any:
+        return _check(self._future.result())
+
+
 def _collect(results: Iterable, fold: Callable | None) -> Any:
     """Results (an iterable in item order) as a list, or folded one by one."""
     if fold is None:
@@ -89,6 +100,12 @@ class InlineExecutor:
 
     def map(self, fn: Callable, items: Iterable, *, shared: Any = None, fold: Callable | None = None) -> Any:
         return _collect((_call(fn, shared, it) for it in items), fold)
+
+    def submit(self, fn: Callable, shared: Any = None, item: Any = None) -> "Pending":
+        """``fn(shared, item)`` run here and now (see :meth:`PoolExecutor.submit`)."""
+        done: cf.Future = cf.Future()
+        done.set_result(_call(fn, shared, item))
+        return Pending(done)
 
     def close(self) -> None:
         pass
@@ -127,6 +144,12 @@ class PoolExecutor:
             acc = fold(acc, _check(futs[i].result()))
             futs[i] = None
         return acc
+
+    def submit(self, fn: Callable, shared: Any = None, item: Any = None) -> "Pending":
+        """``fn(shared, item)`` on the next free worker, started now: a :class:`Pending` whose ``result()`` waits
+        for it.  For independent work the caller does beside its own (the demo's baseline, export and audit),
+        queued with the items of later ``map`` calls in submission order."""
+        return Pending(self._pool.submit(_call_in_worker, fn, shared, item))
 
     def close(self) -> None:
         self._pool.shutdown(wait=True, cancel_futures=True)
