@@ -414,7 +414,8 @@ def _scale_matrix(n: int, sigma: float) -> tuple[np.ndarray, np.ndarray]:
     return S, inside
 
 
-def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tensor) -> tuple[torch.Tensor, ...]:
+def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tensor, out: tuple | None = None
+                   ) -> tuple[torch.Tensor, ...]:
     """Prototype factors (Pn, Pd) of copies Pc (M, C, R, A, H), Vc (M, R, A, H) scaled by ``sigma``: the
     same tensors as ``posesearch._prototype_spectra(*scale_prototypes(Pc, Vc, (sigma,)))`` (layout (A, M,
     features), ``posesearch.spectrum_rows``) up to float rounding, built for many small products.
@@ -427,7 +428,8 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     the result, which is already the products' layout; the denominator factor C v is C times the numerator's v
     block (the transform is linear: one product fewer, equal up to rounding).  ``Pc``, ``Vc`` may also be
     sequences of single copies (C, R, A, H), (R, A, H): each step then stages its own copies, on its pool thread,
-    instead of the caller stacking all."""
+    instead of the caller stacking all.  ``out``: tensors (A, M, (C + 2) R H), (A, M, R H) to write into (views of
+    a larger bank's factors: each row's (M, features) block contiguous)."""
     from .posesearch import _half_dfts
     listed = isinstance(Pc, (list, tuple))
     M, (C, R, A, H) = (len(Pc), Pc[0].shape) if listed else (Pc.shape[0], Pc.shape[1:])
@@ -438,8 +440,11 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     ShT = torch.from_numpy((Sh * mh[:, None]).T.astype(np.float32).copy())
     rows = dft.shape[0]
     feat, RH = (C + 2) * R * H, R * H
-    pn = torch.empty((rows, M, feat), dtype=torch.float32)
-    pd = torch.empty((rows, M, RH), dtype=torch.float32)
+    if out is None:
+        pn = torch.empty((rows, M, feat), dtype=torch.float32)
+        pd = torch.empty((rows, M, RH), dtype=torch.float32)
+    else:
+        pn, pd = out
     flat = pn.view(rows, M * feat)
     halves = _half_dfts(dft)
     h = A // 2
@@ -554,7 +559,17 @@ class TiltBank:
         lvl0 = grid.level(0)
         Pc, Vc = self.copies(np.repeat(np.arange(self.K), len(lvl0)), np.tile(lvl0, self.K))
         self.T0 = len(lvl0)
-        self.coarse = PoseBank(Pc, Vc, scales, run=_pooled)  # its blocks spread over the threads
+
+        def factors(dft: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:  # scale-major: index s K T0 + k T0 + t
+            M, (C, R, A, H) = len(Pc), Pc.shape[1:]
+            pn = torch.empty((dft.shape[0], len(scales) * M, (C + 2) * R * H), dtype=torch.float32)
+            pd = torch.empty((dft.shape[0], len(scales) * M, R * H), dtype=torch.float32)
+            for si, sigma in enumerate(scales):
+                column_factors(Pc, Vc, sigma, dft, out=(pn[:, si * M:(si + 1) * M], pd[:, si * M:(si + 1) * M]))
+            return pn, pd
+
+        # the first level's copies at every scale: the refinement's column factors (blocks spread over the threads)
+        self.coarse = PoseBank(Pc, Vc, scales, factors=factors)
         self.dft = self.coarse.dft
 
     def _geometries(self, pairs: Sequence[tuple[int, int]]) -> None:
