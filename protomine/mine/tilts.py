@@ -346,13 +346,18 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
     if index is None:
         out = sample(padded(P, V), torch.from_numpy(grid).view(m, -1, 1, 1, 3))[:, :, :, 0, 0].numpy()
     else:
+        # only the points inside the cylinder are read (a tipped copy's cylinder reaches beyond the prototype's: on
+        # the bench row's copies about half of the cells lie outside), the others are 0 (as sample_volumes leaves them)
         index = np.asarray(index, np.int64)
-        out = np.empty((m, 1 + C, R * A * H), np.float32)
+        out = np.zeros((m, 1 + C, R * A * H), np.float32)
         for u in np.unique(index):
             sel = np.flatnonzero(index == u)
-            s = sample(padded(P[u:u + 1], V[u:u + 1]), torch.from_numpy(np.ascontiguousarray(grid[sel])).view(1, -1, 1, 1, 3))
-            out[sel] = s.view(1 + C, len(sel), -1).permute(1, 0, 2).numpy()
-    if not empty_outside:
+            ins = inside[sel]
+            s = sample(padded(P[u:u + 1], V[u:u + 1]), torch.from_numpy(grid[sel][ins]).view(1, -1, 1, 1, 3))
+            part = np.zeros((1 + C,) + ins.shape, np.float32)
+            part[:, ins] = s.view(1 + C, -1).numpy()
+            out[sel] = part.transpose(1, 0, 2)
+    if not empty_outside and index is None:
         out *= inside[:, None]
     v = out[:, 0]
     pc = np.where(v[:, None] > 1e-6, out[:, 1:] / np.maximum(v[:, None], 1e-6), 0.0)
