@@ -21,8 +21,8 @@ centre b, footprint radius r' and height h', so the copy is re-normalised by its
 exactly as an object lying that way would be lifted.  Every cell of the copy's grid is mapped back,
 p = M^T (q + b) + c0, into the prototype's grid and sampled there by trilinear interpolation (azimuth
 wraps; below the first radial bin centre the first bin is used; outside the prototype's cylinder the
-copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per block
-(:func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
+copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per prototype of a
+block over its copies' cells inside the cylinder (:func:`_resample_copies`, :func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
 the hull of a prototype's solid cells and its aspect do not change.
 
 Untilting (inverse map)
@@ -528,7 +528,7 @@ GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geom
 # prototypes changed inside their hulls finds them
 _GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
 FACTOR_BLOCK_BYTES = 1 << 20  # factors of the copies that column_factors builds at once (stays in cache)
-COPY_BLOCK = 32        # copies resampled per grid_sample call (bounds its temporaries; blocks spread over threads)
+COPY_BLOCK = 32        # copies resampled per block (bounds its temporaries; blocks spread over threads)
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
 PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
@@ -547,7 +547,7 @@ class TiltBank:
     Kept for the bank's life (a pass): each (prototype, tilt)'s geometry, and the first level's copies; the
     later levels' copies only while the refinement works on their batch of prototypes (``PROTOTYPE_BATCH``:
     all of them would hold about 330 MB).  All built when first needed, many at once (one enclosing circle
-    per copy, one ``grid_sample`` per block of copies).
+    per copy, one ``grid_sample`` per prototype of a block of copies).
     """
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid):
