@@ -592,13 +592,18 @@ class PoseBank:
     the K * S scaled prototypes.
     """
 
-    def __init__(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], run=None):
+    def __init__(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], run=None, factors=None):
         """``run(fn, items)``, when given, builds the bank a scale and a block of 64 scaled prototypes at a time
-        (the same arithmetic; the tilt search spreads them over threads, ``tilts._pooled``)."""
+        (the same arithmetic; the tilt search spreads them over threads, ``tilts._pooled``).  ``factors(dft)``, when
+        given, builds the factors (Pn, Pd) of the scaled prototypes in the scale-major order of ``__init__`` instead
+        (``tilts.TiltBank``: its column factors)."""
         K, C, R, A, H = P.shape
         self.K, self.C, self.A, self.scales = K, C, A, scales
         S = len(scales)
         self.dft = _dft_matrix(A)
+        if factors is not None:
+            self.factors = factors(self.dft)
+            return
         if run is not None:
             self.factors = self._blocked_factors(P, V, run)
             return

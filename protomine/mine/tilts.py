@@ -21,8 +21,8 @@ centre b, footprint radius r' and height h', so the copy is re-normalised by its
 exactly as an object lying that way would be lifted.  Every cell of the copy's grid is mapped back,
 p = M^T (q + b) + c0, into the prototype's grid and sampled there by trilinear interpolation (azimuth
 wraps; below the first radial bin centre the first bin is used; outside the prototype's cylinder the
-copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per block
-(:func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
+copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per prototype of a
+block over its copies' cells inside the cylinder (:func:`_resample_copies`, :func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
 the hull of a prototype's solid cells and its aspect do not change.
 
 Untilting (inverse map)
@@ -55,6 +55,7 @@ objects at load 6-9: 632 s wall / 307 s CPU before, 186 s / 82 s with the pool; 
 """
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 from typing import Sequence
 
@@ -154,22 +155,44 @@ def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray,
     # coordinates in numpy, in the volume's precision (cheaper than small threaded tensor operations)
     dt = np.float64 if vol.dtype == torch.float64 else np.float32
     pts = np.asarray(pts, dt)
+    grid, inside = _grid_coords(pts[..., 0], pts[..., 1], pts[..., 2], rho_max, z_max, (R, A, H), dt)
+    padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3)
+    out = torch.nn.functional.grid_sample(padded, torch.from_numpy(grid).view(m, -1, 1, 1, 3), mode="bilinear",
+                                          padding_mode="border", align_corners=True)
+    out = out[:, :, :, 0, 0] * torch.from_numpy(inside).to(vol.dtype)[:, None]
+    return (out, inside) if with_inside else out
+
+
+def _grid_coords(x: np.ndarray, y: np.ndarray, z: np.ndarray, rho_max, z_max, shape: tuple[int, int, int], dt
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """``grid_sample`` coordinates (m, N, 3) (dtype ``dt``) of points x, y, z (m, N) (cast to ``dt``) of cylindrical
+    grids of ``shape`` (R, A, H) with extents ``rho_max``, ``z_max`` (m,), and the (m, N) mask of the points inside
+    the grid's cylinder (:func:`sample_volumes`)."""
+    R, A, H = shape
+    m = x.shape[0]
+    x, y, z = (np.asarray(a, dt) for a in (x, y, z))
     rho_max = np.asarray(rho_max, dt).reshape(m, 1)
     z_max = np.asarray(z_max, dt).reshape(m, 1)
-    x, y, z = pts[..., 0], pts[..., 1], pts[..., 2]
     fi = np.hypot(x, y) / rho_max * R - 0.5
-    fj = np.mod(np.arctan2(y, x), 2 * np.pi) / (2 * np.pi) * A - 0.5
+    phi = np.arctan2(y, x)  # in [-pi, pi]: np.mod(phi, 2 pi) is phi + 2 pi below 0 (the same float32 values)
+    np.add(phi, dt(2 * np.pi), out=phi, where=phi < 0)
+    fj = phi / (2 * np.pi) * A - 0.5
     fk = z / z_max * H - 0.5
     inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
     # grid_sample's coordinates with align_corners: -1 and +1 are the first and last samples' centres
-    norm = lambda f, n: f * (2.0 / (n - 1)) - 1.0 if n > 1 else np.zeros_like(f)  # noqa: E731
-    grid = torch.from_numpy(np.stack([norm(np.clip(fk, 0.0, H - 1), H), norm(fj + 1.0, A + 2),
-                                      norm(np.clip(fi, 0.0, R - 1), R)], -1).astype(dt))
-    padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3)
-    out = torch.nn.functional.grid_sample(padded, grid.view(m, -1, 1, 1, 3), mode="bilinear", padding_mode="border",
-                                          align_corners=True)
-    out = out[:, :, :, 0, 0] * torch.from_numpy(inside).to(vol.dtype)[:, None]
-    return (out, inside) if with_inside else out
+    grid = np.empty(x.shape + (3,), dt)
+    for j, (f, n) in enumerate(((fk, H), (fj, A + 2), (fi, R))):
+        if n == 1:
+            grid[..., j] = 0.0
+            continue
+        if j == 1:
+            f += 1.0
+        else:
+            np.clip(f, 0.0, n - 1, out=f)
+        f *= 2.0 / (n - 1)
+        f -= 1.0
+        grid[..., j] = f
+    return grid, inside
 
 
 @dataclass
@@ -239,6 +262,29 @@ def forward_points(gs: Sequence[CopyGeometry], shape: tuple[int, int, int]) -> n
     return np.matmul(q, np.stack([g.M for g in gs])) + np.stack([g.c0 for g in gs])[:, None]
 
 
+@functools.lru_cache(maxsize=8)
+def _unit_rows(shape: tuple[int, int, int]) -> np.ndarray:
+    """The unit grid's cell centres as contiguous rows (3, R A H) (x, y, z): a matrix product with a transposed
+    view of (N, 3) ran 400x slower in numpy (no BLAS for that layout)."""
+    out = np.ascontiguousarray(_cell_points(*shape, 1.0, 1.0).T)
+    out.flags.writeable = False
+    return out
+
+
+def _forward_xyz(gs: Sequence[CopyGeometry], shape: tuple[int, int, int]) -> np.ndarray:
+    """:func:`forward_points` as rows (m, 3, R A H) (x, y, z of each copy's cells), one matrix product for all copies:
+    p = M^T (diag(ext) u + b) + c0 = (diag(ext) M)^T u + (M^T b + c0) for the unit grid's cell centres u."""
+    unit = _unit_rows(tuple(shape))  # (3, N)
+    m = len(gs)
+    ext = np.array([[g.rho_max, g.rho_max, g.z_max] for g in gs])  # (m, 3)
+    Ms = np.stack([g.M for g in gs])  # (m, 3, 3)
+    lin = (ext[:, :, None] * Ms).transpose(0, 2, 1).reshape(3 * m, 3)  # row 3 m' + j: column j of diag(ext) M
+    off = np.einsum("mi,mij->mj", np.stack([g.base for g in gs]), Ms) + np.stack([g.c0 for g in gs])
+    out = lin @ unit
+    out += off.reshape(3 * m, 1)
+    return out.reshape(m, 3, -1)
+
+
 def inverse_points(gs: Sequence[CopyGeometry], shape: tuple[int, int, int], aspect: np.ndarray) -> np.ndarray:
     """Prototype cell centres (m, R A H, 3) mapped into each copy's frame, q = M (p - c0) - b."""
     unit = _cell_points(*shape, 1.0, 1.0)
@@ -269,29 +315,59 @@ def empty_margin(P: np.ndarray, V: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], aspect: np.ndarray, *,
-                     empty_outside: bool = True) -> tuple[np.ndarray, np.ndarray]:
+                     empty_outside: bool = True, index: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Copies (m, C, R, A, H), (m, R, A, H) of prototypes P (m, C, R, A, H), V (m, R, A, H) (one per
-    geometry, with their aspects (m,)).  Features are means: w x is sampled and divided by the sampled w,
-    so unseen cells do not dilute the seen ones.  A copy's cells outside the prototype's grid (the corners
-    of a tipped object's new cylinder) are empty space the prototype's margin already shows: they take its
+    geometry, with their aspects (m,)); with ``index`` (m,), P and V hold distinct prototypes (u, ...) and copy i
+    is of prototype ``index[i]`` (each prototype is then sampled once for all its copies: one ``grid_sample`` over
+    all their cells, the same values as one volume per copy).  Features are means: w x is sampled and divided by
+    the sampled w, so unseen cells do not dilute the seen ones.  A copy's cells outside the prototype's grid (the
+    corners of a tipped object's new cylinder) are empty space the prototype's margin already shows: they take its
     :func:`empty_margin` features and weight, not weight 0.  With weight 0 a copy would be compared on only
     the part of a view it happens to cover, and a copy tipped so that it covers little of the view fits any
     object (on the demo, single views of six classes went to a tipped L bracket covering 2-40% of them).  A
     prototype whose margin is not empty (:func:`empty_margin`) leaves them at weight 0.
     ``empty_outside=False`` leaves those cells at weight 0 (the 3-D symmetry test compares a prototype with its
     own copies on what both have seen, ``symmetry.tilt_symmetries``)."""
-    m, C = P.shape[:2]
+    C = P.shape[1]
     shape = P.shape[2:]
-    stack = torch.from_numpy(np.concatenate([V[:, None], V[:, None] * P], axis=1).astype(np.float32))
-    out, inside = sample_volumes(stack, forward_points(gs, shape), np.ones(m), aspect, with_inside=True)
-    out = out.numpy()  # (m, 1 + C, R A H)
+    R, A, H = shape
+    m = len(gs)
+    aspect = np.broadcast_to(np.asarray(aspect, np.float64), (m,))
+    xyz = _forward_xyz(gs, shape)  # (m, 3, N)
+    grid, inside = _grid_coords(xyz[:, 0], xyz[:, 1], xyz[:, 2], np.ones(m), aspect, shape, np.float32)
+
+    def padded(p: np.ndarray, v: np.ndarray) -> torch.Tensor:  # [v, v x] (u, 1 + C, R, A + 2, H), azimuth wrapped
+        vol = np.concatenate([v[:, None], v[:, None] * p], axis=1).astype(np.float32)
+        return torch.from_numpy(np.concatenate([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], axis=3))
+
+    # sample_volumes' trilinear reading (the points outside the cylinder are replaced below, so not zeroed there)
+    sample = lambda vol, g: torch.nn.functional.grid_sample(vol, g, mode="bilinear", padding_mode="border",  # noqa: E731
+                                                            align_corners=True)
+    if index is None:
+        out = sample(padded(P, V), torch.from_numpy(grid).view(m, -1, 1, 1, 3))[:, :, :, 0, 0].numpy()
+    else:
+        # only the points inside the cylinder are read (a tipped copy's cylinder reaches beyond the prototype's: on
+        # the bench row's copies about half of the cells lie outside), the others are 0 (as sample_volumes leaves them)
+        index = np.asarray(index, np.int64)
+        out = np.zeros((m, 1 + C, R * A * H), np.float32)
+        for u in np.unique(index):
+            sel = np.flatnonzero(index == u)
+            ins = inside[sel]
+            s = sample(padded(P[u:u + 1], V[u:u + 1]), torch.from_numpy(grid[sel][ins]).view(1, -1, 1, 1, 3))
+            part = np.zeros((1 + C,) + ins.shape, np.float32)
+            part[:, ins] = s.view(1 + C, -1).numpy()
+            out[sel] = part.transpose(1, 0, 2)
+    if not empty_outside and index is None:
+        out *= inside[:, None]
     v = out[:, 0]
     pc = np.where(v[:, None] > 1e-6, out[:, 1:] / np.maximum(v[:, None], 1e-6), 0.0)
     if not empty_outside:
         return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
-    # the cells sample_volumes left out of the prototype's cylinder take its empty margin
+    # the cells outside the prototype's cylinder take its empty margin
     # (in float32: the margin's float64 values are selected, then cast, so casting them first is the same)
     fx, fw = empty_margin(P, V)
+    if index is not None:
+        fx, fw = fx[index], fw[index]
     fx = np.where(fw[:, None] > 0, fx, 0.0).astype(np.float32)  # unknown cells: 0, as inside
     pc = np.where(inside[:, None], pc, fx[:, :, None])
     v = np.where(inside, v, fw[:, None].astype(np.float32))
@@ -343,45 +419,77 @@ def _scale_matrix(n: int, sigma: float) -> tuple[np.ndarray, np.ndarray]:
     return S, inside
 
 
-def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tensor) -> tuple[torch.Tensor, ...]:
+def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tensor, out: tuple | None = None
+                   ) -> tuple[torch.Tensor, ...]:
     """Prototype factors (Pn, Pd) of copies Pc (M, C, R, A, H), Vc (M, R, A, H) scaled by ``sigma``: the
     same tensors as ``posesearch._prototype_spectra(*scale_prototypes(Pc, Vc, (sigma,)))`` (layout (A, M,
-    features), ``posesearch.spectrum_rows``), built for many small products: the scaling as two small
-    matrices (radial, height) and the azimuthal transform as one product with the real DFT matrix ``dft`` (A, A) (``PoseBank.dft``), whose
-    result is already the products' layout.  ``Pc``, ``Vc`` may also be sequences of single copies (C, R, A, H),
-    (R, A, H): each step then stacks its own copies, on its pool thread, instead of the caller stacking all."""
+    features), ``posesearch.spectrum_rows``) up to float rounding, built for many small products.
+
+    Per block of a few copies (staged as [v, mu] in one buffer): the scaling as two small matrices (radial, height)
+    whose rows beyond the grid are zero (the scaled cells outside it are unknown, :func:`_scale_matrix`); the
+    numerator factors [v, v |mu|^2, -2 v mu]; their azimuthal transform with the real DFT matrix ``dft`` (A, A)
+    (``PoseBank.dft``) as two half-size products on the radix-2 folds (``posesearch._half_dfts``, half the
+    arithmetic of the full product; the full product when 4 does not divide A), written into every other row of
+    the result, which is already the products' layout; the denominator factor C v is C times the numerator's v
+    block (the transform is linear: one product fewer, equal up to rounding).  ``Pc``, ``Vc`` may also be
+    sequences of single copies (C, R, A, H), (R, A, H): each step then stages its own copies, on its pool thread,
+    instead of the caller stacking all.  ``out``: tensors (A, M, (C + 2) R H), (A, M, R H) to write into (views of
+    a larger bank's factors: each row's (M, features) block contiguous)."""
+    from .posesearch import _half_dfts
     listed = isinstance(Pc, (list, tuple))
     M, (C, R, A, H) = (len(Pc), Pc[0].shape) if listed else (Pc.shape[0], Pc.shape[1:])
     Sr, mr = _scale_matrix(R, sigma)
     Sh, mh = _scale_matrix(H, sigma)
-    mask = torch.from_numpy((mr[:, None] & mh[None, :]).astype(np.float32))[:, None, :]  # (R, 1, H)
-    Sr = torch.from_numpy(Sr.astype(np.float32))
-    Sh = torch.from_numpy(Sh.astype(np.float32))
-    if not listed:
-        pa = torch.from_numpy(np.ascontiguousarray(Pc, np.float32))
-        va = torch.from_numpy(np.ascontiguousarray(Vc, np.float32))
+    scaled = sigma != 1.0 and (R > 1 or H > 1)
+    Sr = torch.from_numpy((Sr * mr[:, None]).astype(np.float32))  # rows of cells beyond the grid: 0 (unknown)
+    ShT = torch.from_numpy((Sh * mh[:, None]).T.astype(np.float32).copy())
     rows = dft.shape[0]
-    pn = torch.empty((rows, M, (C + 2) * R * H), dtype=torch.float32)
-    pd = torch.empty((rows, M, R * H), dtype=torch.float32)
+    feat, RH = (C + 2) * R * H, R * H
+    if out is None:
+        pn = torch.empty((rows, M, feat), dtype=torch.float32)
+        pd = torch.empty((rows, M, RH), dtype=torch.float32)
+    else:
+        pn, pd = out
+    flat = pn.view(rows, M * feat)
+    halves = _half_dfts(dft)
+    h = A // 2
     # a few copies at a time, so the steps' temporaries stay in cache (each column's arithmetic is the same), the
     # steps spread over the threads (:func:`_pooled`)
     step = max(1, FACTOR_BLOCK_BYTES // (4 * (C + 2) * R * A * H))
 
     def run(m0: int) -> None:
         m1 = min(M, m0 + step)
+        b = m1 - m0
+        stage = np.empty((b, C + 1, R, A, H), np.float32)  # [v, mu_1 .. mu_C] of each copy
         if listed:
-            p = torch.from_numpy(np.stack(Pc[m0:m1]).astype(np.float32, copy=False))
-            v = torch.from_numpy(np.stack(Vc[m0:m1]).astype(np.float32, copy=False))
+            for j in range(b):
+                stage[j, 0] = Vc[m0 + j]
+                stage[j, 1:] = Pc[m0 + j]
         else:
-            p, v = pa[m0:m1], va[m0:m1]
-        if sigma != 1.0:
+            stage[:, 0] = Vc[m0:m1]
+            stage[:, 1:] = Pc[m0:m1]
+        a = torch.from_numpy(stage)
+        if scaled:
             # (..., R, A, H): radial then height interpolation, as matrix products over the other axes
-            scale = lambda a: (torch.matmul(Sr, a.reshape(-1, R, A * H)).reshape(a.shape) @ Sh.T) * mask  # noqa: E731
-            v, p = scale(v), scale(p)
-        vmu = v[:, None] * p
-        num = torch.cat([v[:, None], (vmu * p).sum(1)[:, None], -2.0 * vmu], dim=1)  # (m, C + 2, R, A, H)
-        for t, out in ((num, pn), (C * v[:, None], pd)):
-            out[:, m0:m1] = torch.mm(dft, t.permute(3, 0, 1, 2, 4).reshape(A, -1)).view(rows, m1 - m0, -1)
+            a = torch.matmul(Sr, a.reshape(-1, R, A * H)).reshape(a.shape) @ ShT
+        v, p = a[:, :1], a[:, 1:]
+        vmu = v * p
+        num = torch.empty((b, C + 2, R, A, H), dtype=torch.float32)
+        num[:, :1] = v
+        torch.sum(vmu * p, dim=1, keepdim=True, out=num[:, 1:2])
+        torch.mul(vmu, -2.0, out=num[:, 2:])
+        az = num.permute(3, 0, 1, 2, 4)  # (A, b, C + 2, R, H)
+        cols = flat[:, m0 * feat:m1 * feat]
+        if halves is None:
+            torch.mm(dft, az.reshape(A, -1), out=cols)
+        else:
+            st = torch.empty((A, b, C + 2, R, H), dtype=torch.float32)
+            torch.add(az[:h], az[h:], out=st[:h])  # folds for the even bins
+            torch.sub(az[:h], az[h:], out=st[h:])  # and for the odd bins
+            f = st.view(A, -1)
+            torch.mm(halves[0], f[:h], out=cols[0::2])
+            torch.mm(halves[1], f[h:], out=cols[1::2])
+        torch.mul(pn[:, m0:m1, :RH], float(C), out=pd[:, m0:m1])
 
     _pooled(run, range(0, M, step))
     return pn, pd
@@ -420,7 +528,7 @@ GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geom
 # prototypes changed inside their hulls finds them
 _GEOMETRY_CACHE: dict[tuple, dict[int, CopyGeometry]] = {}
 FACTOR_BLOCK_BYTES = 1 << 20  # factors of the copies that column_factors builds at once (stays in cache)
-COPY_BLOCK = 32        # copies resampled per grid_sample call (bounds its temporaries; blocks spread over threads)
+COPY_BLOCK = 32        # copies resampled per block (bounds its temporaries; blocks spread over threads)
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
 PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
@@ -439,7 +547,7 @@ class TiltBank:
     Kept for the bank's life (a pass): each (prototype, tilt)'s geometry, and the first level's copies; the
     later levels' copies only while the refinement works on their batch of prototypes (``PROTOTYPE_BATCH``:
     all of them would hold about 330 MB).  All built when first needed, many at once (one enclosing circle
-    per copy, one ``grid_sample`` per block of copies).
+    per copy, one ``grid_sample`` per prototype of a block of copies).
     """
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid):
@@ -456,7 +564,17 @@ class TiltBank:
         lvl0 = grid.level(0)
         Pc, Vc = self.copies(np.repeat(np.arange(self.K), len(lvl0)), np.tile(lvl0, self.K))
         self.T0 = len(lvl0)
-        self.coarse = PoseBank(Pc, Vc, scales, run=_pooled)  # its blocks spread over the threads
+
+        def factors(dft: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:  # scale-major: index s K T0 + k T0 + t
+            M, (C, R, A, H) = len(Pc), Pc.shape[1:]
+            pn = torch.empty((dft.shape[0], len(scales) * M, (C + 2) * R * H), dtype=torch.float32)
+            pd = torch.empty((dft.shape[0], len(scales) * M, R * H), dtype=torch.float32)
+            for si, sigma in enumerate(scales):
+                column_factors(Pc, Vc, sigma, dft, out=(pn[:, si * M:(si + 1) * M], pd[:, si * M:(si + 1) * M]))
+            return pn, pd
+
+        # the first level's copies at every scale: the refinement's column factors (blocks spread over the threads)
+        self.coarse = PoseBank(Pc, Vc, scales, factors=factors)
         self.dft = self.coarse.dft
 
     def _geometries(self, pairs: Sequence[tuple[int, int]]) -> None:
@@ -517,7 +635,9 @@ class TiltBank:
         def run(b0: int) -> None:
             blk = tilted[b0:b0 + COPY_BLOCK]
             kk = np.array([k for k, _ in blk])
-            pc, vc = _resample_copies(self.P[kk], self.V[kk], [self._geom[key] for key in blk], self.aspect[kk])
+            uk, inv = np.unique(kk, return_inverse=True)
+            pc, vc = _resample_copies(self.P[uk], self.V[uk], [self._geom[key] for key in blk], self.aspect[kk],
+                                      index=inv)
             for j, key in enumerate(blk):
                 self._copies[key] = (pc[j], vc[j])
 
@@ -551,9 +671,9 @@ class TiltBank:
 
         def run(b0: int) -> None:  # blocks of copies spread over the threads, as in _build
             b1 = min(M, b0 + COPY_BLOCK)
-            pc[b0:b1], vc[b0:b1] = _resample_copies(np.broadcast_to(self.P[k], (b1 - b0,) + self.P.shape[1:]),
-                                                    np.broadcast_to(self.V[k], (b1 - b0,) + self.shape), gs[b0:b1],
-                                                    np.full(b1 - b0, self.aspect[k]), empty_outside=empty_outside)
+            pc[b0:b1], vc[b0:b1] = _resample_copies(self.P[k][None], self.V[k][None], gs[b0:b1],
+                                                    np.full(b1 - b0, self.aspect[k]), empty_outside=empty_outside,
+                                                    index=np.zeros(b1 - b0, np.int64))
 
         _pooled(run, range(0, M, COPY_BLOCK))
         return pc, vc
