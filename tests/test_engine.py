@@ -105,6 +105,40 @@ def test_same_random_state_same_result():
     assert a.member_stats_["count"].sum() == 90
 
 
+class _ReadCountingSource:
+    """A source that is not in memory as far as the engine knows (not an ArraySource): the engine reads its next
+    chunk ahead on another thread.  Records the chunks read."""
+
+    def __init__(self, X, W):
+        self.X, self.W, self.reads = X, W, []
+
+    def __len__(self):
+        return len(self.X)
+
+    def read(self, i0, i1):
+        self.reads.append((i0, i1))
+        return self.X[i0:i1].copy(), self.W[i0:i1].copy()
+
+
+def test_read_ahead_of_a_disk_source_gives_the_in_memory_fit():
+    """Reading a source's chunks ahead on a thread changes nothing (determinism, common practice): the same labels,
+    prototypes and yaws as the in-memory source, every pass re-reading its chunks (no spectra cache), each chunk
+    read once per pass, in order."""
+    rng = np.random.default_rng(4)
+    P = _symmetric_prototypes(rng)
+    X, W, _, _ = _objects(rng, P, 90, noise=0.5)
+    kw = dict(n_clusters=3, n_init=1, random_state=3, chunk_size=16, cache_mb=0.0, max_iter=4)
+    src = _ReadCountingSource(X, W)
+    a = PoseKMeans(**kw).fit(ArraySource(X, W))
+    b = PoseKMeans(**kw).fit(src)
+    np.testing.assert_array_equal(a.labels_, b.labels_)
+    np.testing.assert_array_equal(a.prototypes_, b.prototypes_)
+    np.testing.assert_array_equal(a.yaw_deg_, b.yaw_deg_)
+    chunks = [(i, min(90, i + 16)) for i in range(0, 90, 16)]
+    # the subsample's read, every Lloyd pass and the final one: each chunk once per pass, in order
+    assert src.reads == chunks * (b.n_iter_ + 2)
+
+
 def _polar(images: np.ndarray, R: int = 8, radius: float = 6.0) -> np.ndarray:
     """(N, h, w) images -> (N, 1, R, A, 1) polar grids centred on each image's intensity centroid.
 
