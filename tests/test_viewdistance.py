@@ -200,7 +200,7 @@ def test_distance_with_the_margin_ring_down_weighted_matches_the_definition():
 
 def test_score_rings_from_the_config():
     from protomine.config import load_config
-    from protomine.mine.pipeline import score_rings
+    from protomine.mine.viewdistance import score_rings
     cfg = load_config(None)
     assert score_rings(cfg, 8) is None                                   # default: counted like the rest
     half = load_config(None, {"mine": {"score_margin_ring": 0.5}})

@@ -61,7 +61,8 @@ from ..mine.library import Library
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import best_second_ratio, library_cut, rule_scores
-from ..mine.pipeline import reduce_yaw, score_rings
+from ..mine.library import reduce_yaw
+from ..mine.viewdistance import score_rings
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay

@@ -242,3 +242,9 @@ def write_library(path: str | Path, lib: Library) -> None:
                 else:
                     g.create_dataset(k, data=np.asarray(a))
     lib.path = path
+
+
+def reduce_yaw(yaw: np.ndarray, period: np.ndarray) -> np.ndarray:
+    """Yaw modulo the period (0 -> 0)."""
+    p = np.asarray(period, dtype=np.float64)
+    return np.where(p > 0, np.mod(yaw, np.where(p > 0, p, 1.0)), 0.0)

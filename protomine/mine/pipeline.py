@@ -40,6 +40,7 @@ from .library import Library, log_distance_fit, match_score, pad_quaternions, wr
 from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
+from .viewdistance import score_rings
 from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, _pooled, grid_aspect, volume_on_face
 
 
@@ -47,12 +48,6 @@ def period_of(symmetry: np.ndarray) -> np.ndarray:
     """Yaw period in degrees per prototype: 0 for continuous symmetry (any yaw), 360/n otherwise."""
     s = np.asarray(symmetry)
     return np.where(s == 0, 0.0, 360.0 / np.maximum(s, 1))
-
-
-def reduce_yaw(yaw: np.ndarray, period: np.ndarray) -> np.ndarray:
-    """Yaw modulo the period (0 -> 0)."""
-    p = np.asarray(period, dtype=np.float64)
-    return np.where(p > 0, np.mod(yaw, np.where(p > 0, p, 1.0)), 0.0)
 
 
 def tilt_grid(cfg: dict, path=None) -> TiltGrid | None:
@@ -266,15 +261,6 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
                 Pk, Vk = _without_object(xo[j:j + 1], wo[j:j + 1], P1, V1, int(n[k]), scales)
                 gs = sel[np.asarray(inv).reshape(-1) == g]
                 yield k, rows_all[gs], xs[gs], ws[gs], Pk, Vk, upright
-
-
-def score_rings(cfg: dict, radial_bins: int) -> tuple[int, float] | None:
-    """The single-view score's ring beyond the footprint: None (counted like the rest) when ``[mine]
-    score_margin_ring`` is 1, else (its first radial bin, ``viewdistance.footprint_rings``; its weight)."""
-    from .viewdistance import footprint_rings
-    weight = float(cfg["mine"].get("score_margin_ring", 1.0))
-    first = footprint_rings(radial_bins, float(cfg["volume"]["radial_margin"]))
-    return None if weight == 1.0 or first >= radial_bins else (first, weight)
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,

@@ -127,3 +127,11 @@ def tilted_distances(bank, X: np.ndarray, W: np.ndarray, up: np.ndarray, yaw_deg
         out[rows, k] = pair_distances(X[rows], W[rows], Pc[inv], Vc[inv], yaw_deg[rows, k], scale[rows, k],
                                       tolerant=tolerant, rings=rings)
     return out
+
+
+def score_rings(cfg: dict, radial_bins: int) -> tuple[int, float] | None:
+    """The single-view score's ring beyond the footprint: None (counted like the rest) when ``[mine]
+    score_margin_ring`` is 1, else (its first radial bin, :func:`footprint_rings`; its weight)."""
+    weight = float(cfg["mine"].get("score_margin_ring", 1.0))
+    first = footprint_rings(radial_bins, float(cfg["volume"]["radial_margin"]))
+    return None if weight == 1.0 or first >= radial_bins else (first, weight)
