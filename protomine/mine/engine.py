@@ -84,9 +84,9 @@ from . import faces
 from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
-from .posesearch import PoseBank, _spectra_pool, complex_spectra
+from .posesearch import PoseBank, complex_spectra
 from .seeding import SEED_SIZE, PoseSeeder
-from .tilts import TiltBank, TiltGrid, make_bank
+from .tilts import TiltBank, TiltGrid, _ordered_map, _pooled, make_bank
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
 
@@ -292,11 +292,10 @@ class _AlignedSums:
                 acc.index_add_(1, torch.from_numpy(np.searchsorted(keys, group[pb])), c)
         return acc
 
-    def result(self, scales: tuple[float, ...], shape: tuple[int, int, int], untilt=None) -> np.ndarray:
-        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``untilt(ks, ts, a)``
-        rotates sums a (G, B, R, A, H) of tilts ts (G,) back into their prototypes ks' frames
-        (``TiltBank.untilt_many``): a group's scales are summed first, then every (prototype, tilt) is
-        untilted in one resampling."""
+    def result(self, scales: tuple[float, ...], shape: tuple[int, int, int], tilts: TiltBank | None = None) -> np.ndarray:
+        """(K, B, R, A, H) float64 sums in the prototype frame; shape = (B, R, H).  ``tilts.untilt_many(ks, ts, a)``
+        rotates sums a (G, B, R, A, H) of tilts ts (G,) back into their prototypes ks' frames: a group's scales are
+        summed first, then every (prototype, tilt) is untilted in one resampling."""
         B, R, H = shape
         out = np.zeros((self.K, B, R, self.A, H))
         if not self.adds:
@@ -308,13 +307,9 @@ class _AlignedSums:
         # same order, so the pieces add exactly what their block would
         pieces = [blk[p0:p1] for g0 in range(0, len(keys), RESULT_BLOCK)
                   for blk in (keys[g0:g0 + RESULT_BLOCK],) for p0, p1 in _pieces(blk // self.S, RESULT_PIECE)]
-        bank = getattr(untilt, "__self__", None)  # the TiltBank of a bound untilt_many
-        if bank is not None and hasattr(bank, "_geometries"):
-            # every group's copy geometry now, on this thread: the pieces' untilts, on other threads, then only
-            # read the bank's (its caches are filled by one thread only)
-            ks, ts = np.divmod(np.unique(keys // self.S), self.T)
-            tilted = ~bank.grid.is_upright(ts)
-            bank._geometries(list(zip(ks[tilted].tolist(), ts[tilted].tolist())))
+        untilt = None if tilts is None else tilts.untilt_many
+        if tilts is not None:  # every group's copy geometry now, on this thread (the pieces' untilts run on others)
+            tilts.prepare_untilt(*np.divmod(np.unique(keys // self.S), self.T))
 
         def piece(keys_p: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
             return self._piece_parts(keys_p, self._piece_sums(keys_p), scales, shape, untilt)
@@ -350,24 +345,6 @@ class _AlignedSums:
             parts = untilt(ks, ts, parts)
         return ks, parts
 
-
-def _ordered_map(fn, items: list):
-    """``fn`` over ``items`` on the pool's threads (``tilts._pooled``'s pool, one torch thread each) when torch runs
-    T > 1 threads, results yielded in the order of ``items`` as they are ready (at most about T + 1 results held);
-    in the calling thread otherwise."""
-    import threading
-    threads = torch.get_num_threads()
-    if threads == 1 or len(items) < 2 or threading.current_thread().name.startswith("spectra"):
-        yield from (fn(i) for i in items)
-        return
-    pool = _spectra_pool(threads)
-    pending = [pool.submit(fn, i) for i in items[:threads + 1]]
-    for j in range(len(items)):
-        res = pending[j].result()
-        pending[j] = None  # the caller holds the result from here on
-        if j + threads + 1 < len(items):
-            pending.append(pool.submit(fn, items[j + threads + 1]))
-        yield res
 
 
 class _SpectraCache:
@@ -442,7 +419,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     S = len(scales)
     bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect)
     T = 1 if tilts is None else len(tilts.grid.dirs)
-    untilt = getattr(bank, "untilt_many", None)
+    tilt_bank = bank if isinstance(bank, TiltBank) else None
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
@@ -482,10 +459,10 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
         o = x = w = None  # the sums hold the chunk's spectra and volumes until they are summed
         if accumulate:
-            tot += sums.result(scales, (C + 2, R, H), untilt)  # blocks [w |x|^2, w, w x_1 .. w x_C]
+            tot += sums.result(scales, (C + 2, R, H), tilt_bank)  # blocks [w |x|^2, w, w x_1 .. w x_C]
             sums = None  # frees the chunk's spectra (unless cached)
         if moments:
-            extra += msums.result(scales, (C + 1, R, H), untilt)
+            extra += msums.result(scales, (C + 1, R, H), tilt_bank)
             msums = None
         if advance is not None:
             advance(i1 - i0)
@@ -829,7 +806,7 @@ class PoseKMeans:
             self.up_ = self.rotation_[:, 2, :]
             ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
             fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol,
-                                         run=lambda fn, items: list(_ordered_map(fn, list(items))))
+                                         run=_pooled)
         self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
         period = np.array([sym.period_deg(fsym[k][f]) for k, f in zip(res.labels, self.face_)], np.float64)
         self.rotation_, yaw = faces.reduce_rotation(self.rotation_, period)

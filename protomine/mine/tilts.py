@@ -157,10 +157,15 @@ def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray,
     pts = np.asarray(pts, dt)
     grid, inside = _grid_coords(pts[..., 0], pts[..., 1], pts[..., 2], rho_max, z_max, (R, A, H), dt)
     padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3)
-    out = torch.nn.functional.grid_sample(padded, torch.from_numpy(grid).view(m, -1, 1, 1, 3), mode="bilinear",
-                                          padding_mode="border", align_corners=True)
-    out = out[:, :, :, 0, 0] * torch.from_numpy(inside).to(vol.dtype)[:, None]
+    out = _trilinear(padded, grid) * torch.from_numpy(inside).to(vol.dtype)[:, None]
     return (out, inside) if with_inside else out
+
+
+def _trilinear(padded: torch.Tensor, grid: np.ndarray) -> torch.Tensor:
+    """``grid_sample``'s trilinear reading (m, ch, N) of volumes (m, ch, R, A + 2, H) padded by one azimuth bin on
+    each side (the wrap) at coordinates ``grid`` (m, N, 3) of :func:`_grid_coords`."""
+    return torch.nn.functional.grid_sample(padded, torch.from_numpy(grid).view(len(padded), -1, 1, 1, 3), mode="bilinear",
+                                           padding_mode="border", align_corners=True)[:, :, :, 0, 0]
 
 
 def _grid_coords(x: np.ndarray, y: np.ndarray, z: np.ndarray, rho_max, z_max, shape: tuple[int, int, int], dt
@@ -341,10 +346,8 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
         return torch.from_numpy(np.concatenate([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], axis=3))
 
     # sample_volumes' trilinear reading (the points outside the cylinder are replaced below, so not zeroed there)
-    sample = lambda vol, g: torch.nn.functional.grid_sample(vol, g, mode="bilinear", padding_mode="border",  # noqa: E731
-                                                            align_corners=True)
     if index is None:
-        out = sample(padded(P, V), torch.from_numpy(grid).view(m, -1, 1, 1, 3))[:, :, :, 0, 0].numpy()
+        out = _trilinear(padded(P, V), grid).numpy()
     else:
         # only the points inside the cylinder are read (a tipped copy's cylinder reaches beyond the prototype's: on
         # the bench row's copies about half of the cells lie outside), the others are 0 (as sample_volumes leaves them)
@@ -353,9 +356,9 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
         for u in np.unique(index):
             sel = np.flatnonzero(index == u)
             ins = inside[sel]
-            s = sample(padded(P[u:u + 1], V[u:u + 1]), torch.from_numpy(grid[sel][ins]).view(1, -1, 1, 1, 3))
+            s = _trilinear(padded(P[u:u + 1], V[u:u + 1]), grid[sel][ins][None])
             part = np.zeros((1 + C,) + ins.shape, np.float32)
-            part[:, ins] = s.view(1 + C, -1).numpy()
+            part[:, ins] = s[0].numpy()
             out[sel] = part.transpose(1, 0, 2)
     if not empty_outside and index is None:
         out *= inside[:, None]
@@ -392,11 +395,35 @@ def _pooled(fn, items: Sequence) -> list:
     operation on a shared machine (measured at load 7-13: a (36, 77, 672) x (36, 100, 672) product of
     :func:`posesearch._distances_from_spectra` took 256-315 ms on 2 threads, 38-56 ms on one), and single-threaded
     kernels give the same result for any number of threads.  Results in the order of ``items``."""
+    pool = _pool_here()
+    return [fn(i) for i in items] if pool is None else list(pool.map(fn, items))
+
+
+def _pool_here():
+    """The search's pool (``posesearch._spectra_pool``) when torch runs T > 1 threads and this is not one of the
+    pool's own threads; None: run here, one item after another."""
     import threading
     threads = torch.get_num_threads()
     if threads == 1 or threading.current_thread().name.startswith("spectra"):
-        return [fn(i) for i in items]
-    return list(_spectra_pool(threads).map(fn, items))
+        return None
+    return _spectra_pool(threads)
+
+
+def _ordered_map(fn, items: list):
+    """``fn`` over ``items`` as :func:`_pooled`, but results yielded in the order of ``items`` as they are ready,
+    with at most about T + 1 of them held (T pool threads): for results too large to hold all at once."""
+    pool = _pool_here()
+    if pool is None or len(items) < 2:
+        yield from (fn(i) for i in items)
+        return
+    ahead = torch.get_num_threads() + 1
+    pending = [pool.submit(fn, i) for i in items[:ahead]]
+    for j in range(len(items)):
+        res = pending[j].result()
+        pending[j] = None  # the caller holds the result from here on
+        if j + ahead < len(items):
+            pending.append(pool.submit(fn, items[j + ahead]))
+        yield res
 
 
 def _overlapped(prepare, run, pairs: list[tuple[int, int]]) -> None:
@@ -405,13 +432,11 @@ def _overlapped(prepare, run, pairs: list[tuple[int, int]]) -> None:
     runs a prototype at a time, and each block is started as soon as its pairs (sorted by prototype) are prepared,
     so this thread's share overlaps the threads' resampling.  The same blocks as ``prepare(pairs)`` then
     ``_pooled(run, ...)``; ``prepare`` is only ever called on this thread."""
-    import threading
-    threads = torch.get_num_threads()
-    if threads == 1 or threading.current_thread().name.startswith("spectra") or len(pairs) <= COPY_BLOCK:
+    pool = _pool_here()
+    if pool is None or len(pairs) <= COPY_BLOCK:
         prepare(pairs)
         _pooled(run, range(0, len(pairs), COPY_BLOCK))
         return
-    pool = _spectra_pool(threads)
     futures, done, b0 = [], 0, 0
     ks = np.array([k for k, _ in pairs])
     cuts = np.flatnonzero(np.r_[True, ks[1:] != ks[:-1]]).tolist() + [len(pairs)]
@@ -716,6 +741,13 @@ class TiltBank:
             return a
         a = np.asarray(a)
         return self.untilt_many(np.array([k]), np.array([t]), a.reshape((1, -1) + self.shape))[0].reshape(a.shape)
+
+    def prepare_untilt(self, ks: np.ndarray, ts: np.ndarray) -> None:
+        """Compute now the geometries :meth:`untilt_many` of (ks, ts) reads, so that its calls (e.g. on the pool's
+        threads) only read the bank's caches (they are filled by one thread only)."""
+        ks, ts = np.asarray(ks, np.int64), np.asarray(ts, np.int64)
+        tilted = ~self.grid.is_upright(ts)
+        self._geometries(list(zip(ks[tilted].tolist(), ts[tilted].tolist())))
 
     def untilt_many(self, ks: np.ndarray, ts: np.ndarray, a: np.ndarray) -> np.ndarray:
         """Sums a (G, B, R, A, H) in the copy frames of (ks[g], ts[g]) rotated back into their prototypes'
