@@ -77,8 +77,8 @@ def test_scene_views_hand_each_object_the_pixels_the_others_hold():
     b = Proposal("c/b", "b", frame, np.zeros(3), 2, {"f0": np.array([7, 8])})
     c = Proposal("c/c", "c", frame, np.zeros(3), 0, {})
     scene = SceneObjects(SimpleNamespace(intrinsics=SimpleNamespace(K=K)), None, [fd], [a, b, c])
-    (va,) = scene.views(a)
-    (vb,) = scene.views(b)
+    (va,) = scene.views(a, others=True)
+    (vb,) = scene.views(b, others=True)
     assert np.flatnonzero(va.others).tolist() == [7, 8]
     assert np.flatnonzero(vb.others).tolist() == [0, 1, 2]
-    assert scene.views(c) == []
+    assert scene.views(c, others=True) == []

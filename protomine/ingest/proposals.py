@@ -87,16 +87,19 @@ class SceneObjects:
     proposals: list[Proposal]
     _held: dict = field(default_factory=dict, repr=False, compare=False)
 
-    def views(self, p: Proposal, frame_ids: list[str] | None = None) -> list[View]:
-        """The frames that see ``p``, each with the pixels other proposals of the scene hold there (View.others)."""
+    def views(self, p: Proposal, frame_ids: list[str] | None = None, *, others: bool = False) -> list[View]:
+        """The frames that see ``p``; with ``others`` (``Grid.others_unseen``, the only reader), each with the
+        pixels other proposals of the scene hold there (View.others)."""
         K = self.capture.intrinsics.K
         out = []
         for fd in self.frames:
             if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
-                held = self.held(fd)
-                others = held.copy()
-                others[p.pixels[fd.id]] -= 1
-                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying, others > 0))
+                theirs = None
+                if others:
+                    theirs = self.held(fd).copy()
+                    theirs[p.pixels[fd.id]] -= 1
+                    theirs = theirs > 0
+                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying, theirs))
         return out
 
     def held(self, fd: FrameData) -> np.ndarray:

@@ -57,14 +57,12 @@ from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
 from ..ingest.volume import Grid, lift, matching_features
-from ..mine.library import Library
+from ..mine.library import Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import best_second_ratio, library_cut, rule_scores
-from ..mine.library import reduce_yaw
-from ..mine.viewdistance import score_rings
 from ..mine.reliability import reliable_distances
-from ..mine.viewdistance import tilted_distances
+from ..mine.viewdistance import score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid
@@ -251,7 +249,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         pix = p.pixels.get(frame_id)
         if pix is None or len(pix) < MIN_PIXELS:
             continue
-        views = scene.views(p, [frame_id])
+        views = scene.views(p, [frame_id], others=grid.others_unseen)
         if centre_offsets:
             pts = fd.points[np.isin(fd.pixels, pix)]
             frames = centre_candidates(pts, p.frame, fd.cam_to_world[:3, 3], centre_offsets)
