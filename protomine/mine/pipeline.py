@@ -248,6 +248,7 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
         found = _pooled(lambda i: search(xs[sel_k[i]], ws[sel_k[i]], int(ks[i])), range(len(ks)))
         for sk, (u, r) in zip(sel_k, found):
             ups_all[sk], upr_all[sk] = u, r
+        groups = []  # (j, k, u, upright, the group's views): one per object and searched direction
         for j, obj in enumerate(chunk):
             k = int(labels[obj])
             sel = np.flatnonzero(store.single_object[rows_all] == obj)
@@ -257,10 +258,17 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
             dirs, inv = np.unique(np.round(ups, 9), axis=0, return_inverse=True)
             for g, u in enumerate(dirs):
                 upright = bool(bank is None or u[2] >= np.cos(np.deg2rad(IDENTITY_DEG)))
-                P1, V1 = (P[k:k + 1], V[k:k + 1]) if upright else (a[None] for a in bank.copy_at(k, u))
-                Pk, Vk = _without_object(xo[j:j + 1], wo[j:j + 1], P1, V1, int(n[k]), scales)
-                gs = sel[np.asarray(inv).reshape(-1) == g]
-                yield k, rows_all[gs], xs[gs], ws[gs], Pk, Vk, upright
+                groups.append((j, k, u, upright, sel[np.asarray(inv).reshape(-1) == g]))
+
+        def rebuilt(group):  # the group's prototype (its copy on the searched face) without the group's object
+            j, k, u, upright, _ = group
+            P1, V1 = (P[k:k + 1], V[k:k + 1]) if upright else (a[None] for a in bank.copy_at(k, u))
+            return _without_object(xo[j:j + 1], wo[j:j + 1], P1, V1, int(n[k]), scales)
+
+        # the groups are independent: on the spectra pool's threads as the search above (one torch thread each),
+        # results in group order
+        for (j, k, u, upright, gs), (Pk, Vk) in zip(groups, _pooled(rebuilt, groups)):
+            yield k, rows_all[gs], xs[gs], ws[gs], Pk, Vk, upright
 
 
 def single_view_distances(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, labels: np.ndarray,

@@ -119,7 +119,9 @@ class FaceDistance:
         Pc, Vc = zip(*_pooled(copies, range(len(P))))
         owner = np.concatenate([np.full(len(pc), k, np.int64) for k, pc in enumerate(Pc)])
         Pc, Vc = np.concatenate(Pc), np.concatenate(Vc)
-        self._banks = [(owner[b:b + self.BLOCK], PoseBank(Pc[b:b + self.BLOCK], Vc[b:b + self.BLOCK], self.scales))
+        # each bank's scales and blocks of spectra on the pool's threads too (PoseBank's run: the same arithmetic)
+        self._banks = [(owner[b:b + self.BLOCK], PoseBank(Pc[b:b + self.BLOCK], Vc[b:b + self.BLOCK], self.scales,
+                                                          run=_pooled))
                        for b in range(0, len(owner), self.BLOCK)]
         self._k = len(P)
         self._P = P
