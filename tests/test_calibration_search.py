@@ -60,3 +60,30 @@ def test_views_the_search_finds_on_another_face_are_calibrated_against_the_copy_
     # which fits an upright view worse (the copy covers another shape)
     assert np.allclose(d[fin & flags], d_up[fin & flags], rtol=1e-5)
     assert np.median(d[fin & ~flags]) > np.median(d_up[fin & ~flags])
+
+
+def test_the_pooled_leave_one_out_prototypes_change_no_bit(tiny_world):
+    # on T > 1 torch threads the groups' prototypes without their object are rebuilt on the tilt search's thread
+    # pool (tilts._pooled); on one thread one after another here: the serial run is the reference, and the pool
+    # must give every distance and reliability cell to the bit (the determinism rule of DEVELOPERS.md)
+    import torch
+    lib, st, P, V, labels = _world(tiny_world)
+    cfg = tiny_world["cfg"]
+    grid = TiltGrid(nsides=(1,), radial_margin=float(cfg["volume"]["radial_margin"]),
+                    height_margin=float(cfg["volume"]["height_margin"]))
+    bank = TiltBank(P, V, lib.prototypes["aspect"], tuple(lib.scales), grid)
+
+    def alternate(xs, ws, k):                # every other view "found" on a coarse direction far from +z
+        up = np.tile([0.0, 0.0, 1.0], (len(xs), 1))
+        up[1::2] = grid.dirs[4 + k]
+        return up, np.arange(len(xs)) % 2 == 0
+    saved, out = torch.get_num_threads(), []
+    try:
+        for n in (1, 2):
+            torch.set_num_threads(n)
+            out.append(single_view_calibration(st, cfg, P, V, labels, tuple(lib.scales), bank=bank, search=alternate))
+    finally:
+        torch.set_num_threads(saved)
+    (d1, k1, r1), (d2, k2, r2) = out
+    assert np.isfinite(d1).sum() >= 4
+    assert np.array_equal(d1, d2) and np.array_equal(k1, k2) and np.array_equal(r1, r2)

@@ -258,7 +258,8 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     fit_ok = score >= library_cut(library)
     ups, counts, _ = group_faces(R_obj[fit_ok, 2, :], np.zeros(int(fit_ok.sum()), np.int64), 1)
     bank = TiltBank(X1, W1, [aspect], scales, grid) if grid is not None and len(ups[0]) > 1 else None
-    # each other face's symmetry on its own: on the tilt search's thread pool (tilts._pooled), in face order
+    # each other face's symmetry on its own: on the tilt search's thread pool (tilts._pooled), in face order (copy_at's
+    # one write, the prototype's solid cells, is the same from any thread)
     fsym = [symmetry] + _pooled(lambda u: int(detect_symmetry(*(a[None] for a in bank.copy_at(0, u)),
                                                               np.exp(mu) / 2.0)[0]),
                                 list(ups[0][1:])) if bank is not None else [symmetry] * len(ups[0])

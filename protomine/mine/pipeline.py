@@ -266,7 +266,7 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
             return _without_object(xo[j:j + 1], wo[j:j + 1], P1, V1, int(n[k]), scales)
 
         # the groups are independent: on the spectra pool's threads as the search above (one torch thread each),
-        # results in group order
+        # results in group order (copy_at's one write, a prototype's solid cells, is the same from any thread)
         for (j, k, u, upright, gs), (Pk, Vk) in zip(groups, _pooled(rebuilt, groups)):
             yield k, rows_all[gs], xs[gs], ws[gs], Pk, Vk, upright
 
