@@ -16,7 +16,8 @@ from protomine.ingest.sharded import open_store
 from protomine.mine.choosek import group_count, knn_components, silhouette_climb
 from protomine.mine.evaluate import read_truth_table
 from protomine.mine.pipeline import fit_engine
-from protomine.mine.seeding import PoseSeeder, kmedoids_plusplus
+from protomine.mine.posesearch import pose_distances
+from protomine.mine.seeding import PoseSeeder, kmedoids_plusplus, pairwise_pose_distances, symmetric_distances
 from protomine.scenes.scenario import generate_scenario
 
 
@@ -128,6 +129,28 @@ def test_pose_seeder_uses_the_given_distance():
     labels, refs = seeder.partition(4, 1, rng)
     assert calls[0] == (10, 10) and calls[1] == (len(X) - 10, 4)
     assert labels.shape == (len(X),) and len(refs) == 4
+
+
+def test_the_kept_matrix_is_handed_out_only_for_the_same_objects_and_search():
+    # the last matrix is kept (automatic K and the seeder ask for the same one); every answer must equal the matrix
+    # computed from its definition: the yaw x scale search between every pair (posesearch.pose_distances),
+    # symmetrised
+    rng = np.random.default_rng(6)
+    X, W, _ = _mirror_volumes(rng, n_per=3)
+
+    def fresh(x, w, scales):
+        return symmetric_distances(pose_distances(x, w, x, w, scales=scales).D)
+    first = pairwise_pose_distances(X, W, scales=(1.0,))
+    again = pairwise_pose_distances(X.copy(), W.copy(), scales=(1.0,))   # equal contents, other arrays
+    assert np.array_equal(first, fresh(X, W, (1.0,))) and np.array_equal(again, first)
+    again[0, 1] = -1.0                                                    # a caller's edit does not reach the kept one
+    assert np.array_equal(pairwise_pose_distances(X, W, scales=(1.0,)), first)
+    other = pairwise_pose_distances(X, W, scales=(0.9, 1.0))              # another search
+    assert np.array_equal(other, fresh(X, W, (0.9, 1.0))) and not np.array_equal(other, first)
+    X2 = X.copy()
+    X2[0] = X[1]                                                          # another object
+    moved = pairwise_pose_distances(X2, W, scales=(1.0,))
+    assert np.array_equal(moved, fresh(X2, W, (1.0,))) and not np.array_equal(moved, first)
 
 
 @pytest.fixture(scope="module")
