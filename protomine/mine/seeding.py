@@ -40,9 +40,11 @@ Public API
 """
 from __future__ import annotations
 
+import hashlib
 from typing import Callable, Sequence
 
 import numpy as np
+import torch
 from sklearn.cluster import AgglomerativeClustering
 
 from ..progress import bar
@@ -144,9 +146,6 @@ def _matrix_key(X: np.ndarray, W: np.ndarray, distance, scales: Sequence[float])
     """What a :func:`pairwise_pose_distances` matrix is a function of: the objects' contents, the search and its
     settings, and torch's threads (the last float digits may depend on them; None: a distance function of unknown
     settings, never reused)."""
-    import hashlib
-
-    import torch
     if distance is None:
         kind = ("yaw-scale", tuple(float(s) for s in scales))
     elif type(distance) is FaceDistance:
