@@ -324,7 +324,7 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
     """Copies (m, C, R, A, H), (m, R, A, H) of prototypes P (m, C, R, A, H), V (m, R, A, H) (one per
     geometry, with their aspects (m,)); with ``index`` (m,), P and V hold distinct prototypes (u, ...) and copy i
     is of prototype ``index[i]`` (each prototype is then sampled once for all its copies: one ``grid_sample`` over
-    all their cells, the same values as one volume per copy).  Features are means: w x is sampled and divided by
+    all their cells inside its cylinder, :func:`_resample_inside`, the same values as one volume per copy).  Features are means: w x is sampled and divided by
     the sampled w, so unseen cells do not dilute the seen ones.  A copy's cells outside the prototype's grid (the
     corners of a tipped object's new cylinder) are empty space the prototype's margin already shows: they take its
     :func:`empty_margin` features and weight, not weight 0.  With weight 0 a copy would be compared on only
