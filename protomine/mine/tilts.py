@@ -324,7 +324,7 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
     """Copies (m, C, R, A, H), (m, R, A, H) of prototypes P (m, C, R, A, H), V (m, R, A, H) (one per
     geometry, with their aspects (m,)); with ``index`` (m,), P and V hold distinct prototypes (u, ...) and copy i
     is of prototype ``index[i]`` (each prototype is then sampled once for all its copies: one ``grid_sample`` over
-    all their cells, the same values as one volume per copy).  Features are means: w x is sampled and divided by
+    all their cells inside its cylinder, :func:`_resample_inside`, the same values as one volume per copy).  Features are means: w x is sampled and divided by
     the sampled w, so unseen cells do not dilute the seen ones.  A copy's cells outside the prototype's grid (the
     corners of a tipped object's new cylinder) are empty space the prototype's margin already shows: they take its
     :func:`empty_margin` features and weight, not weight 0.  With weight 0 a copy would be compared on only
@@ -339,28 +339,13 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
     m = len(gs)
     aspect = np.broadcast_to(np.asarray(aspect, np.float64), (m,))
     xyz = _forward_xyz(gs, shape)  # (m, 3, N)
+    if index is not None:
+        return _resample_inside(P, V, xyz, aspect, np.asarray(index, np.int64), empty_outside)
     grid, inside = _grid_coords(xyz[:, 0], xyz[:, 1], xyz[:, 2], np.ones(m), aspect, shape, np.float32)
 
-    def padded(p: np.ndarray, v: np.ndarray) -> torch.Tensor:  # [v, v x] (u, 1 + C, R, A + 2, H), azimuth wrapped
-        vol = np.concatenate([v[:, None], v[:, None] * p], axis=1).astype(np.float32)
-        return torch.from_numpy(np.concatenate([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], axis=3))
-
     # sample_volumes' trilinear reading (the points outside the cylinder are replaced below, so not zeroed there)
-    if index is None:
-        out = _trilinear(padded(P, V), grid).numpy()
-    else:
-        # only the points inside the cylinder are read (a tipped copy's cylinder reaches beyond the prototype's: on
-        # the bench row's copies about half of the cells lie outside), the others are 0 (as sample_volumes leaves them)
-        index = np.asarray(index, np.int64)
-        out = np.zeros((m, 1 + C, R * A * H), np.float32)
-        for u in np.unique(index):
-            sel = np.flatnonzero(index == u)
-            ins = inside[sel]
-            s = _trilinear(padded(P[u:u + 1], V[u:u + 1]), grid[sel][ins][None])
-            part = np.zeros((1 + C,) + ins.shape, np.float32)
-            part[:, ins] = s[0].numpy()
-            out[sel] = part.transpose(1, 0, 2)
-    if not empty_outside and index is None:
+    out = _trilinear(_wrapped(P, V), grid).numpy()
+    if not empty_outside:
         out *= inside[:, None]
     v = out[:, 0]
     pc = np.where(v[:, None] > 1e-6, out[:, 1:] / np.maximum(v[:, None], 1e-6), 0.0)
@@ -368,12 +353,81 @@ def _resample_copies(P: np.ndarray, V: np.ndarray, gs: Sequence[CopyGeometry], a
         return pc.reshape((m, C) + shape).astype(np.float32), v.reshape((m,) + shape).astype(np.float32)
     # the cells outside the prototype's cylinder take its empty margin
     # (in float32: the margin's float64 values are selected, then cast, so casting them first is the same)
-    fx, fw = empty_margin(P, V)
-    if index is not None:
-        fx, fw = fx[index], fw[index]
-    fx = np.where(fw[:, None] > 0, fx, 0.0).astype(np.float32)  # unknown cells: 0, as inside
+    fx, fw = _margin_fill(P, V)
     pc = np.where(inside[:, None], pc, fx[:, :, None])
-    v = np.where(inside, v, fw[:, None].astype(np.float32))
+    v = np.where(inside, v, fw[:, None])
+    return pc.reshape((m, C) + shape), v.reshape((m,) + shape)
+
+
+def _wrapped(p: np.ndarray, v: np.ndarray) -> torch.Tensor:
+    """[v, v x] (u, 1 + C, R, A + 2, H) of volumes p (u, C, R, A, H), v (u, R, A, H), the azimuth wrapped by one bin
+    on each side (the reading of :func:`_trilinear`)."""
+    vol = np.concatenate([v[:, None], v[:, None] * p], axis=1).astype(np.float32)
+    return torch.from_numpy(np.concatenate([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], axis=3))
+
+
+def _margin_fill(P: np.ndarray, V: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Features (u, C) and weights (u,) float32 that the cells of a copy outside prototype P, V's cylinder take:
+    its :func:`empty_margin`, features 0 where the margin's weight is 0 (unknown cells: 0, as inside)."""
+    fx, fw = empty_margin(P, V)
+    return np.where(fw[:, None] > 0, fx, 0.0).astype(np.float32), fw.astype(np.float32)
+
+
+def _resample_inside(P: np.ndarray, V: np.ndarray, xyz: np.ndarray, aspect: np.ndarray, index: np.ndarray,
+                     empty_outside: bool) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_resample_copies` with ``index``: copy i of prototype ``index[i]`` of P (u, C, R, A, H), V (u, R, A, H),
+    its cells at prototype-frame points ``xyz`` (m, 3, R A H) (:func:`_forward_xyz`), grid aspects ``aspect`` (m,).
+
+    Only the cells inside the prototype's cylinder are read (a tipped copy's cylinder reaches beyond the prototype's:
+    on the bench row's copies about half of the cells lie outside): their azimuths and ``grid_sample`` coordinates
+    are computed for them alone, each prototype sampled once for all its copies' inside cells, and the means written
+    into outputs that already hold the outside cells' values (the prototype's :func:`_margin_fill`, or 0).  The
+    same float32 operations as :func:`_grid_coords` and :func:`_resample_copies`' full reading, so the same values."""
+    C, shape = P.shape[1], P.shape[2:]
+    R, A, H = shape
+    m, N = xyz.shape[0], xyz.shape[2]
+    dt = np.float32
+    x, y, z = (np.asarray(xyz[:, j], dt) for j in range(3))
+    fi = np.hypot(x, y) / np.ones((m, 1), dt) * R - 0.5
+    fk = z / np.asarray(aspect, dt).reshape(m, 1) * H - 0.5
+    inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
+    flat = np.flatnonzero(inside)  # (copy, cell) order: copy flat // N, cell flat % N
+    x, y, fi, fk = (a.reshape(-1)[flat] for a in (x, y, fi, fk))
+    phi = np.arctan2(y, x)  # as _grid_coords
+    np.add(phi, dt(2 * np.pi), out=phi, where=phi < 0)
+    fj = phi / (2 * np.pi) * A - 0.5
+    grid = np.empty((len(flat), 3), dt)
+    for j, (f, n) in enumerate(((fk, H), (fj, A + 2), (fi, R))):
+        if n == 1:
+            grid[:, j] = 0.0
+            continue
+        if j == 1:
+            f += 1.0
+        else:
+            np.clip(f, 0.0, n - 1, out=f)
+        f *= 2.0 / (n - 1)
+        f -= 1.0
+        grid[:, j] = f
+    pc = np.zeros((m, C, N), dt)
+    v = np.zeros((m, N), dt)
+    if empty_outside:
+        fx, fw = _margin_fill(P, V)
+        pc[:] = fx[index][:, :, None]
+        v[:] = fw[index][:, None]
+    rows = flat // N
+    at_pc = flat + rows * ((C - 1) * N)  # the points' positions in pc's channel 0, (copy C + 0) N + cell
+    owner = index[rows]
+    pcf, vf = pc.reshape(-1), v.reshape(-1)
+    protos = np.unique(index)
+    for u in protos:
+        at = np.flatnonzero(owner == u) if len(protos) > 1 else slice(None)
+        s = _trilinear(_wrapped(P[u:u + 1], V[u:u + 1]), grid[at][None])[0].numpy()  # (1 + C, points)
+        vs = s[0]
+        vf[flat[at]] = vs
+        means = np.where(vs > 1e-6, s[1:] / np.maximum(vs, 1e-6), 0.0)
+        base = at_pc[at]
+        for c in range(C):
+            pcf[base + c * N] = means[c]
     return pc.reshape((m, C) + shape), v.reshape((m,) + shape)
 
 
