@@ -8,6 +8,14 @@ random fraction of the height).
 Rows (JSON keys in brackets); every row records the 1-minute load average (``load_1m``): on a shared machine
 absolute times grow with it, so the targets are ratios measured side by side in one run.
 
+CPU beside wall time: every row also reports ``row_s`` and ``row_cpu_s``, the whole row's wall and CPU seconds (its
+data generation, warm-ups and subprocesses included: ``getrusage`` of this process and of its finished children),
+and every timed figure with CPU seconds beside it (``cpu_s`` beside ``seconds``, ``<x>_cpu_s`` beside ``<x>_s``)
+gets ``<x>_cpu_pct`` = 100 CPU / wall: 100% is one core busy all along, ``usable_cores`` x 100% every core.  At
+a low load it shows which rows leave a core idle; at a high load the wall time grows and the percentage falls
+while the CPU seconds barely move.  The label row is one process with one thread by definition (a label worker;
+more cores label more captures at once, in more processes) and says so (``single_process``).
+
 (a) assignment of the same N = 4,096 objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
     ``naive_s`` (explicitly rolling every prototype for every shift, timed on N / 16 objects and scaled),
@@ -20,7 +28,7 @@ absolute times grow with it, so the targets are ratios measured side by side in 
     (``protomine/__init__.py``); before that the 50 MB temporaries of a 512-object chunk were mapped and
     zero-filled afresh on every chunk, which cost the dense pass more than its arithmetic.
 (b) mining with fixed K = 32 and the default 5 scales (``SCALES``) [``mining``]: ``sizes``, a list of
-    {``n_objects``, ``seconds``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
+    {``n_objects``, ``seconds``, ``cpu_s``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
     subprocess so its peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``, which includes
     the 0.83 GB of synthetic volumes at 10,000 objects) is its own; ``load_1m`` is the machine's 1-minute
     load average when the size finished (timings on a shared machine grow with it);
@@ -28,7 +36,8 @@ absolute times grow with it, so the targets are ratios measured side by side in 
     n_init = 2, max_iter = 15, chunk_size = 256, sample_size = 2048, cache_mb = 128.  Targets (full run:
     1,000 / 3,000 / 10,000 objects): 10,000 objects under 300 s, under 2 GB.
 (c) peer [``peer``]: scikit-learn ``KMeans`` (k-means++, pose-unaware, the same n_init = 2) on the same 2,000
-    objects flattened (w x), against our mining (K = 32, 5 scales): ``ratio_ours_kmeans`` (time), ``ours_nmi``,
+    objects flattened (w x), against our mining (K = 32, 5 scales): ``ours_s``, ``ours_cpu_s``, ``kmeans_s``,
+    ``kmeans_cpu_s``, ``ratio_ours_kmeans`` (time), ``ours_nmi``,
     ``kmeans_nmi`` against the synthetic labels: what pose-awareness costs and what it buys.
 (d) label [``label``]: lifting + matching single views in one process with one thread in torch and in BLAS, as
     a label worker runs (``protomine/label/throughput.py``; target >= 500 objects per second).
