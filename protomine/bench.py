@@ -13,8 +13,12 @@ data generation, warm-ups and subprocesses included: ``getrusage`` of this proce
 and every timed figure with CPU seconds beside it (``cpu_s`` beside ``seconds``, ``<x>_cpu_s`` beside ``<x>_s``)
 gets ``<x>_cpu_pct`` = 100 CPU / wall: 100% is one core busy all along, ``usable_cores`` x 100% every core.  At
 a low load it shows which rows leave a core idle; at a high load the wall time grows and the percentage falls
-while the CPU seconds barely move.  The label row is one process with one thread by definition (a label worker;
-more cores label more captures at once, in more processes) and says so (``single_process``).
+while the CPU seconds barely move.  What does not fall with the load is ``ready_threads`` (``row_ready_threads`` for a
+row run in this process, ``ready_threads`` of each fit run in a subprocess of its own): the mean number of the
+process's threads on a CPU or ready to run, waiting only for a core (``protomine.cores.ready_clock``, the kernel's
+``schedstat``); near 2 a row would keep both of 2 idle cores busy, near 1 it leaves one idle whatever the load.
+The label row is one process with one thread by definition (a label worker; more cores label more captures at once,
+in more processes) and says so (``single_process``).
 
 (a) assignment of the same N = 4,096 objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
@@ -182,15 +186,15 @@ def _mine_once(n: int, k: int, seed: int) -> dict:
     W = np.empty((n,) + P.shape[2:], np.float32)
     for i in range(0, n, 1000):
         X[i:i + 1000], W[i:i + 1000] = synthetic_objects(rng, P, min(1000, n - i))[:2]
-    t0, c0 = time.perf_counter(), time.process_time()
+    t0, c0, r0 = time.perf_counter(), time.process_time(), cores.ready_clock()
     # chunks of 256 objects keep the per-chunk transients near 0.1 GB; 128 MB of cached object spectra
     # (about 1,250 objects) leave room for the 0.8 GB of volumes at 10,000 objects
     model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=2, max_iter=15, chunk_size=256, random_state=seed,
                        sample_size=2048, cache_mb=128).fit(ArraySource(X, W))
     secs, cpu = time.perf_counter() - t0, time.process_time() - c0
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB
-    return {"n_objects": n, "seconds": secs, "cpu_s": cpu, "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_),
-            "load_1m": os.getloadavg()[0]}
+    return {"n_objects": n, "seconds": secs, "cpu_s": cpu, "ready_threads": cores.ready_threads(r0, secs),
+            "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_), "load_1m": os.getloadavg()[0]}
 
 
 def bench_mining(quick: bool, seed: int) -> dict:
@@ -259,10 +263,18 @@ def _cpu_clock() -> float:
 def _run_row(fn: Callable[[bool, int], dict], quick: bool, seed: int) -> dict:
     """A row's figures with the whole row's wall and CPU seconds (its data generation, warm-ups and subprocesses
     included: ``row_s``, ``row_cpu_s``) and every CPU figure's share of its wall time (:func:`_with_cpu_pct`)."""
-    t0, c0 = time.perf_counter(), _cpu_clock()
+    t0, c0, k0, r0 = time.perf_counter(), _cpu_clock(), _children_cpu(), cores.ready_clock()
     figures = fn(quick, seed)
-    figures.update(row_s=time.perf_counter() - t0, row_cpu_s=_cpu_clock() - c0)
+    wall = time.perf_counter() - t0
+    figures.update(row_s=wall, row_cpu_s=_cpu_clock() - c0)
+    if _children_cpu() - k0 < 0.01 * figures["row_cpu_s"]:  # the row ran in this process (else its subprocesses report)
+        figures["row_ready_threads"] = cores.ready_threads(r0, wall)
     return _with_cpu_pct(figures)
+
+
+def _children_cpu() -> float:
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return kids.ru_utime + kids.ru_stime
 
 
 def _with_cpu_pct(figures: dict) -> dict:

@@ -104,3 +104,21 @@ def test_bench_reports_cpu_percent_beside_each_wall_time():
         return {}
     row = _run_row(spin, True, 0)
     assert 0.15 < row["row_cpu_s"] <= row["row_s"] * 2.5 and row["row_cpu_pct"] > 0
+
+
+def test_ready_threads_counts_a_busy_thread_and_not_a_sleeping_one():
+    """The kernel's /proc/<pid>/task/<tid>/schedstat: time on a CPU and time waiting in a run queue, in ns
+    (Documentation/scheduler/sched-stats.rst, from memory): a spinning thread is one of them all along, at any load,
+    a sleeping one neither."""
+    import time
+
+    from protomine.cores import ready_clock, ready_threads
+    if not ready_clock():
+        pytest.skip("no /proc/self/task/*/schedstat here")
+    r0, t0 = ready_clock(), time.perf_counter()
+    time.sleep(0.3)
+    assert ready_threads(r0, time.perf_counter() - t0) < 0.3
+    r0, t0 = ready_clock(), time.perf_counter()
+    while time.perf_counter() - t0 < 0.3:
+        pass
+    assert 0.8 < ready_threads(r0, time.perf_counter() - t0) < 1.3
