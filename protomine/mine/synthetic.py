@@ -112,8 +112,12 @@ def _resample_rows(x: np.ndarray, scale: np.ndarray) -> np.ndarray:
 
 @functools.lru_cache(maxsize=1)
 def _pool() -> ThreadPoolExecutor:
-    """The threads that pose objects (one per usable core)."""
-    from ..cores import usable_cores
+    """The threads that pose objects (one per usable core).  They allocate from the main malloc arena
+    (``cores.one_malloc_arena``, as the search's pools), so what they free serves the fit that follows instead of
+    staying resident in arenas of their own (after 10,000 objects: 976 -> 950 MB resident, 791 MB of them the
+    volumes)."""
+    from ..cores import one_malloc_arena, usable_cores
+    one_malloc_arena()
     return ThreadPoolExecutor(usable_cores(), thread_name_prefix="synthetic")
 
 
