@@ -8,6 +8,18 @@ random fraction of the height).
 Rows (JSON keys in brackets); every row records the 1-minute load average (``load_1m``): on a shared machine
 absolute times grow with it, so the targets are ratios measured side by side in one run.
 
+CPU beside wall time: every row also reports ``row_s`` and ``row_cpu_s``, the whole row's wall and CPU seconds (its
+data generation, warm-ups and subprocesses included: ``getrusage`` of this process and of its finished children),
+and every timed figure with CPU seconds beside it (``cpu_s`` beside ``seconds``, ``<x>_cpu_s`` beside ``<x>_s``)
+gets ``<x>_cpu_pct`` = 100 CPU / wall: 100% is one core busy all along, ``usable_cores`` x 100% every core.  At
+a low load it shows which rows leave a core idle; at a high load the wall time grows and the percentage falls
+while the CPU seconds barely move.  What does not fall with the load is ``ready_threads`` (``row_ready_threads`` for a
+row run in this process, ``ready_threads`` of each fit run in a subprocess of its own): the mean number of the
+process's threads on a CPU or ready to run, waiting only for a core (``protomine.cores.ready_clock``, the kernel's
+``schedstat``); near 2 a row would keep both of 2 idle cores busy, near 1 it leaves one idle whatever the load.
+The label row is one process with one thread by definition (a label worker; more cores label more captures at once,
+in more processes) and says so (``single_process``).
+
 (a) assignment of the same N = 4,096 objects to K = 32 prototypes [``assignment``]:
     ``fft_s`` (all 36 yaw shifts by FFT correlation), ``dense_s`` (one pose-unaware dense pass),
     ``naive_s`` (explicitly rolling every prototype for every shift, timed on N / 16 objects and scaled),
@@ -20,7 +32,7 @@ absolute times grow with it, so the targets are ratios measured side by side in 
     (``protomine/__init__.py``); before that the 50 MB temporaries of a 512-object chunk were mapped and
     zero-filled afresh on every chunk, which cost the dense pass more than its arithmetic.
 (b) mining with fixed K = 32 and the default 5 scales (``SCALES``) [``mining``]: ``sizes``, a list of
-    {``n_objects``, ``seconds``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
+    {``n_objects``, ``seconds``, ``cpu_s``, ``peak_rss_mb``, ``n_iter``, ``load_1m``}, each size run in its own
     subprocess so its peak resident memory (``resource.getrusage(RUSAGE_SELF).ru_maxrss``, which includes
     the 0.83 GB of synthetic volumes at 10,000 objects) is its own; ``load_1m`` is the machine's 1-minute
     load average when the size finished (timings on a shared machine grow with it);
@@ -28,7 +40,8 @@ absolute times grow with it, so the targets are ratios measured side by side in 
     n_init = 2, max_iter = 15, chunk_size = 256, sample_size = 2048, cache_mb = 128.  Targets (full run:
     1,000 / 3,000 / 10,000 objects): 10,000 objects under 300 s, under 2 GB.
 (c) peer [``peer``]: scikit-learn ``KMeans`` (k-means++, pose-unaware, the same n_init = 2) on the same 2,000
-    objects flattened (w x), against our mining (K = 32, 5 scales): ``ratio_ours_kmeans`` (time), ``ours_nmi``,
+    objects flattened (w x), against our mining (K = 32, 5 scales): ``ours_s``, ``ours_cpu_s``, ``kmeans_s``,
+    ``kmeans_cpu_s``, ``ratio_ours_kmeans`` (time), ``ours_nmi``,
     ``kmeans_nmi`` against the synthetic labels: what pose-awareness costs and what it buys.
 (d) label [``label``]: lifting + matching single views in one process with one thread in torch and in BLAS, as
     a label worker runs (``protomine/label/throughput.py``; target >= 500 objects per second).
@@ -147,16 +160,16 @@ def bench_peer(quick: bool, seed: int) -> dict:
     X, W, labels, *_ = synthetic_objects(rng, P, n)
     n_init = 2
     load0 = os.getloadavg()[0]
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     ours = PoseKMeans(n_clusters=k, scales=SCALES, n_init=n_init, max_iter=15, chunk_size=256, random_state=seed,
                       sample_size=2048).fit(ArraySource(X, W))
-    ours_s = time.perf_counter() - t0
+    ours_s, ours_cpu = time.perf_counter() - t0, time.process_time() - c0
     flat = (W[:, None] * X).reshape(n, -1)
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     peer = KMeans(n_clusters=k, n_init=n_init, max_iter=300, random_state=seed).fit(flat)
-    peer_s = time.perf_counter() - t0
-    return {"n_objects": n, "n_prototypes": k, "n_init": n_init, "ours_s": ours_s, "kmeans_s": peer_s,
-            "ratio_ours_kmeans": ours_s / peer_s,
+    peer_s, peer_cpu = time.perf_counter() - t0, time.process_time() - c0
+    return {"n_objects": n, "n_prototypes": k, "n_init": n_init, "ours_s": ours_s, "ours_cpu_s": ours_cpu,
+            "kmeans_s": peer_s, "kmeans_cpu_s": peer_cpu, "ratio_ours_kmeans": ours_s / peer_s,
             "ours_nmi": float(normalized_mutual_info_score(labels, ours.labels_)),
             "kmeans_nmi": float(normalized_mutual_info_score(labels, peer.labels_)),
             "load_1m_start": load0, "load_1m": os.getloadavg()[0]}
@@ -173,15 +186,15 @@ def _mine_once(n: int, k: int, seed: int) -> dict:
     W = np.empty((n,) + P.shape[2:], np.float32)
     for i in range(0, n, 1000):
         X[i:i + 1000], W[i:i + 1000] = synthetic_objects(rng, P, min(1000, n - i))[:2]
-    t0 = time.perf_counter()
+    t0, c0, r0 = time.perf_counter(), time.process_time(), cores.ready_clock()
     # chunks of 256 objects keep the per-chunk transients near 0.1 GB; 128 MB of cached object spectra
     # (about 1,250 objects) leave room for the 0.8 GB of volumes at 10,000 objects
     model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=2, max_iter=15, chunk_size=256, random_state=seed,
                        sample_size=2048, cache_mb=128).fit(ArraySource(X, W))
-    secs = time.perf_counter() - t0
+    secs, cpu = time.perf_counter() - t0, time.process_time() - c0
     rss_mb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux reports KiB
-    return {"n_objects": n, "seconds": secs, "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_),
-            "load_1m": os.getloadavg()[0]}
+    return {"n_objects": n, "seconds": secs, "cpu_s": cpu, "ready_threads": cores.ready_threads(r0, secs),
+            "peak_rss_mb": rss_mb, "n_iter": int(model.n_iter_), "load_1m": os.getloadavg()[0]}
 
 
 def bench_mining(quick: bool, seed: int) -> dict:
@@ -209,9 +222,14 @@ BENCH_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [
 
 
 def _bench_label(quick: bool, seed: int) -> dict:
-    """(c) single-view lifting + matching against K = 32 prototypes [``label``] (protomine/label/throughput.py)."""
+    """(c) single-view lifting + matching against K = 32 prototypes [``label``] (protomine/label/throughput.py):
+    one label worker, a single process with one thread by definition (more cores label more captures at once in
+    more worker processes, not one capture faster), so its CPU is at most 100% of one core."""
     from .label.throughput import bench_label
-    return bench_label(quick, seed)
+    row = bench_label(quick, seed)
+    row["seconds"] = row["lift_s"] + row["match_s"] + row["frame_flags_s"]  # the wall time cpu_s was taken over
+    row["single_process"] = True
+    return row
 
 
 BENCH_ROWS.append(("label", _bench_label))
@@ -235,8 +253,47 @@ BENCH_ROWS.append(("tilts", _bench_tilts))
 SCALE_ROWS: list[tuple[str, Callable[[bool, int], dict]]] = [("scale", _bench_scale)]
 
 
+def _cpu_clock() -> float:
+    """CPU seconds so far of this process (all its threads) and of its finished children (the rows that fit
+    in a subprocess of their own)."""
+    me, kids = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return me.ru_utime + me.ru_stime + kids.ru_utime + kids.ru_stime
+
+
+def _run_row(fn: Callable[[bool, int], dict], quick: bool, seed: int) -> dict:
+    """A row's figures with the whole row's wall and CPU seconds (its data generation, warm-ups and subprocesses
+    included: ``row_s``, ``row_cpu_s``) and every CPU figure's share of its wall time (:func:`_with_cpu_pct`)."""
+    t0, c0, k0, r0 = time.perf_counter(), _cpu_clock(), _children_cpu(), cores.ready_clock()
+    figures = fn(quick, seed)
+    wall = time.perf_counter() - t0
+    figures.update(row_s=wall, row_cpu_s=_cpu_clock() - c0)
+    if _children_cpu() - k0 < 0.01 * figures["row_cpu_s"]:  # the row ran in this process (else its subprocesses report)
+        figures["row_ready_threads"] = cores.ready_threads(r0, wall)
+    return _with_cpu_pct(figures)
+
+
+def _children_cpu() -> float:
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return kids.ru_utime + kids.ru_stime
+
+
+def _with_cpu_pct(figures: dict) -> dict:
+    """``figures`` with ``<x>cpu_pct`` = 100 ``<x>cpu_s`` / its wall time (``<x>s``; ``seconds`` beside ``cpu_s``)
+    after each CPU figure, also in lists of rows: 100% is one core busy all along, ``usable_cores`` x 100% every
+    core.  Under load the wall time grows, so the percentage falls; the thread structure does not."""
+    out: dict = {}
+    for key, val in figures.items():
+        out[key] = [_with_cpu_pct(r) if isinstance(r, dict) else r for r in val] if isinstance(val, list) else val
+        if key.endswith("cpu_s") and not isinstance(val, bool) and isinstance(val, (int, float)):
+            wall = figures.get("seconds" if key == "cpu_s" else key[:-len("cpu_s")] + "s")
+            if isinstance(wall, (int, float)) and wall > 0:
+                out[key[:-2] + "_pct"] = 100.0 * val / wall
+    return out
+
+
 def _print_section(name: str, figures: dict) -> None:
-    print(f"== {name}")
+    print(f"== {name}" + ("  (a single process with one thread by definition: at most 100% CPU)"
+                          if figures.get("single_process") else ""))
     for key, val in figures.items():
         if isinstance(val, list) and not all(isinstance(row, dict) for row in val):
             print(f"   {key:<22} {val}")
@@ -276,7 +333,7 @@ def bench(json: Annotated[Optional[Path], typer.Option("--json", help="Also writ
                "load_1m_start": os.getloadavg()[0]}
     for name, fn in rows:
         if name in names:
-            results[name] = fn(quick, seed)
+            results[name] = _run_row(fn, quick, seed)
             _print_section(name, results[name])
     results["load_1m_end"] = os.getloadavg()[0]
     if json is not None:

@@ -114,6 +114,36 @@ def thread_clock() -> tuple[float, float]:
         return time.thread_time(), float("nan")
 
 
+def ready_clock() -> dict[int, float]:
+    """Per thread of this process (by thread id): seconds so far on a CPU or runnable in a run queue (waiting only
+    for a core), from ``/proc/self/task/*/schedstat``; empty where that is missing.  Between two readings,
+    :func:`ready_threads` is the mean number of the process's threads that could have run: what it would keep
+    busy on idle cores, nearly whatever else the machine runs (CPU seconds / wall seconds falls with the load)."""
+    out: dict[int, float] = {}
+    try:
+        tids = os.listdir("/proc/self/task")
+    except OSError:
+        return out
+    for tid in tids:
+        try:
+            with open(f"/proc/self/task/{tid}/schedstat") as f:
+                on_cpu, waiting = f.read().split()[:2]
+            out[int(tid)] = (int(on_cpu) + int(waiting)) / 1e9
+        except (OSError, ValueError):
+            pass  # the thread ended
+    return out
+
+
+def ready_threads(start: dict[int, float], wall_s: float) -> float:
+    """Mean number of this process's threads on a CPU or ready to run since ``start`` (a :func:`ready_clock`),
+    over ``wall_s`` seconds; threads started since count from zero, threads ended since are not counted.  NaN
+    where the kernel does not say."""
+    now = ready_clock()
+    if not now or wall_s <= 0:
+        return float("nan")
+    return sum(v - start.get(tid, 0.0) for tid, v in now.items()) / wall_s
+
+
 # glibc mallopt parameters (malloc.h)
 _M_TRIM_THRESHOLD, _M_TOP_PAD, _M_MMAP_THRESHOLD, _M_ARENA_MAX = -1, -2, -3, -8
 

@@ -404,6 +404,10 @@ def test_npy_file_source_reads_what_numpy_loads(tmp_path):
     sub = src.subset(idx)
     x, w = sub.read(2, 6)
     assert len(sub) == 7 and np.array_equal(x, X[idx[2:6]]) and np.array_equal(w, W[idx[2:6]])
+    x, w = src.read(37, 45)  # past the end: the rows there are, as numpy's slicing gives
+    assert np.array_equal(x, X[37:45]) and np.array_equal(w, W[37:45])
+    x, w = src.gather(np.array([], np.int64))
+    assert x.shape == (0,) + X.shape[1:] and w.shape == (0,) + W.shape[1:]
 
 
 def test_workers_auto_is_the_usable_cores():
