@@ -103,3 +103,44 @@ def test_one_restart_only_when_the_seeding_searches_resting_faces():
     assert fit_restarts(cfg, None) == n
     assert fit_restarts(load_config("default", {"mine": {"face_pairs": False}}), grid) == n
     assert fit_restarts(load_config("default", {"mine": {"face_one_start": False}}), grid) == n
+
+
+def test_silhouette_raise_is_the_paired_one_se_rule():
+    # reference twin from the definition: the smallest K >= start whose per-object silhouettes are not
+    # significantly below the best K's, significance by scipy.stats.ttest_rel's t statistic (paired t test)
+    # above 1.96 (the two-sided 5% level of the normal distribution; from memory)
+    from scipy.stats import ttest_rel
+    from protomine.mine.choosek import silhouette_raise
+    seen = set()
+    for seed in range(40):
+        rng = np.random.default_rng(seed)
+        n, start = 40, int(rng.integers(2, 5))
+        base = rng.uniform(-0.2, 0.8, n)
+        sil = {k: np.clip(base + rng.normal(0.03 * (k - 2) * rng.uniform(-1, 2), 0.08, n), -1, 1) for k in range(2, 9)}
+        cand = [k for k in sil if k >= start]
+        best = max(cand, key=lambda k: (sil[k].mean(), -k))
+        ref = next(k for k in cand if k == best or ttest_rel(sil[best], sil[k]).statistic <= 1.96)
+        got = silhouette_raise(sil, start)
+        assert got == ref, (seed, got, ref)
+        seen.add("start" if ref == start else "best" if ref == best else "between")
+    assert seen == {"start", "best", "between"}  # the cases exercise every branch
+
+
+def test_silhouette_raise_finds_classes_too_small_for_the_group_count():
+    # eight classes of 3 points (scikit-learn make_blobs, well apart): no mutual 4-nearest-neighbour group of
+    # 4 exists, so the group count sees none, while the silhouettes (scikit-learn silhouette_samples) of the
+    # k-medoids partitions pick the eight classes (the generating labels: adjusted Rand index 1)
+    from sklearn.datasets import make_blobs
+    from sklearn.metrics import adjusted_rand_score, pairwise_distances, silhouette_samples
+    from protomine.mine.choosek import group_count, silhouette_raise
+    from protomine.mine.seeding import best_kmedoids
+    X, y = make_blobs(n_samples=[3] * 8, centers=None, n_features=4, cluster_std=0.3, center_box=(-10, 10),
+                      random_state=3)
+    S = pairwise_distances(X)
+    start = max(2, group_count(S, 4))
+    assert start < 8
+    rng = np.random.default_rng(0)
+    parts = {k: best_kmedoids(S, k, rng)[0] for k in range(2, 13)}
+    sil = {k: silhouette_samples(S, lab, metric="precomputed") for k, lab in parts.items()}
+    k = silhouette_raise(sil, start)
+    assert k == 8 and adjusted_rand_score(y, parts[k]) == 1.0
