@@ -166,7 +166,7 @@ def _taken_in_scratch(a: np.ndarray, sel: np.ndarray) -> torch.Tensor:
     """``torch.from_numpy(np.ascontiguousarray(a[sel]))`` (the same values) in this thread's reusable buffer
     (``cores.scratch``; a fresh tensor outside ``cores.reused_scratch``)."""
     src = scratch("taken", (len(sel),) + a.shape[1:], torch.from_numpy(a[:0]).dtype)
-    np.take(a, sel, axis=0, out=src.numpy())
+    np.take(a, sel, axis=0, out=src.numpy(), mode="clip")  # indices in range; "raise" would buffer the result
     return src
 
 
@@ -569,6 +569,18 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     return pn, pd
 
 
+def _block_factors(Pc, Vc, sigma: float, dft: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """:func:`column_factors` (the same values) written into this thread's reusable buffers (``cores.scratch``):
+    valid until this thread builds the next block's.  A refinement block's factors (up to ``COLUMN_BUDGET``
+    columns, ~40 MB) were otherwise a fresh block each, mapped and page-faulted by the matrix products that fill
+    them (``cores.large_blocks_mapped``): on 600 tumbled objects (the tilt_mining row's settings) the largest share
+    of the run's 6.6 million minor page faults."""
+    M, (C, R, A, H) = (len(Pc), Pc[0].shape) if isinstance(Pc, (list, tuple)) else (Pc.shape[0], Pc.shape[1:])
+    rows = dft.shape[0]
+    out = (scratch("column_pn", (rows, M, (C + 2) * R * H)), scratch("column_pd", (rows, M, R * H)))
+    return column_factors(Pc, Vc, sigma, dft, out=out)
+
+
 def _runs(sizes: Sequence[int], budget: int) -> list[tuple[int, int]]:
     """Consecutive runs (start, stop) of items with ``sizes``, each adding items while its total stays within
     ``budget`` and, with torch on T > 1 threads, within an even share of the whole, ceil(total / T): a block whose
@@ -806,7 +818,8 @@ class TiltBank:
         pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
         out = PoseMatch(pick(m.D), pick(m.yaw_deg), pick(m.scale), None, tilt=self.grid.level(0)[bt])
         if len(self.grid.nsides) > 1:
-            self._refine(o, m, out, min_overlap)
+            with reused_scratch():  # one buffer for every block's column factors (_block_factors)
+                self._refine(o, m, out, min_overlap)
         return out
 
     def _refine(self, o: torch.Tensor, coarse: PoseMatch, out: PoseMatch, min_overlap: float) -> None:
@@ -866,7 +879,7 @@ class TiltBank:
                 blk, b = groups[b:e], e
                 ks = np.concatenate([np.full(len(u), k) for _, k, u, _ in blk])
                 ts = np.concatenate([u for _, _, u, _ in blk])
-                factors = column_factors(*self.copy_list(ks, ts), self.scales[si], self.dft)
+                factors = _block_factors(*self.copy_list(ks, ts), self.scales[si], self.dft)
                 jobs, prods = [], []
                 c0 = 0
                 for _, k, u, es in blk:
