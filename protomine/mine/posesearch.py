@@ -723,6 +723,10 @@ class PoseBank:
                     og = o
                 elif rows is None:
                     og = o[:, r0:r1]
+                elif reuse:  # the block's objects gathered into this thread's reusable buffer
+                    from ..cores import scratch
+                    og = torch.index_select(o, 1, torch.from_numpy(rows[r0:r1]),
+                                            out=scratch("rows", (o.shape[0], r1 - r0) + tuple(o.shape[2:])))
                 else:
                     og = o.index_select(1, torch.from_numpy(rows[r0:r1]))
                 dist = _distances_in_scratch if reuse else _distances_from_spectra
