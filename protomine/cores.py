@@ -229,3 +229,69 @@ def large_blocks_mapped(threshold: int = TILT_MMAP_THRESHOLD):
     finally:
         if changed:
             reuse_freed_memory()
+
+
+# --- reusable scratch buffers ------------------------------------------------------------------
+
+_SCRATCH: dict[tuple[int, str, object], object] = {}  # (thread, name, dtype) -> flat torch tensor
+_SCRATCH_DEPTH = 0  # open reused_scratch() scopes
+_SCRATCH_LOCK = None
+
+
+def _scratch_lock():
+    global _SCRATCH_LOCK
+    if _SCRATCH_LOCK is None:
+        import threading
+        _SCRATCH_LOCK = threading.Lock()
+    return _SCRATCH_LOCK
+
+
+@contextlib.contextmanager
+def reused_scratch():
+    """Within the block, :func:`scratch` hands each thread the same buffer for the same name again (grown when a
+    larger one is asked for), instead of a fresh allocation; all buffers are freed when the outermost block ends.
+
+    For the tilt search's per-block temporaries (a coarse row block's partial sums and distances, an untilt's
+    padded volumes and samples): blocks from 8 MB up are mapped afresh on every allocation while the search runs
+    (:func:`large_blocks_mapped`), so each of them was page-faulted and zero-filled by the kernel again, block
+    after block, chunk after chunk.  Users: ``posesearch._distances_in_scratch`` and the gathered rows and stacked
+    factors of ``PoseBank.match_spectra(reuse=True)`` (the coarse level), ``tilts._block_factors`` (a refinement
+    block's column factors), ``tilts._taken_in_scratch`` / ``_sample_in_scratch`` and the engine's float64 transform
+    of an aligned-sums piece (the untilt).  Measured on 600 tumbled objects (the tilt_mining row's settings, seed 0,
+    back to back at load 2-3): 7.25 -> 4.15 million minor page faults, system time 21.2 -> 14.9 s, CPU 166 -> 160 s,
+    wall 118 -> 98 s, peak RSS 1,127 -> 1,138 MB; every fitted array identical to the bit.  User time is unchanged
+    (146 s): the faults cost system time only.  A scope ends with its call (a coarse level, a refinement, an
+    aligned-sums result), so the buffers add nothing to the memory between them."""
+    global _SCRATCH_DEPTH
+    with _scratch_lock():
+        _SCRATCH_DEPTH += 1
+    try:
+        yield
+    finally:
+        with _scratch_lock():
+            _SCRATCH_DEPTH -= 1
+            if _SCRATCH_DEPTH == 0:
+                _SCRATCH.clear()
+
+
+def scratch(name: str, shape: tuple[int, ...], dtype=None):
+    """An uninitialised torch tensor of ``shape`` (``dtype``, float32 by default): inside :func:`reused_scratch`, a
+    view of the calling thread's buffer ``name`` (valid until this thread asks for ``name`` again: only for
+    temporaries that do not outlive their block), else a fresh ``torch.empty``."""
+    import threading
+
+    import torch
+    dtype = torch.float32 if dtype is None else dtype
+    n = 1
+    for s in shape:
+        n *= int(s)
+    if not _SCRATCH_DEPTH:
+        return torch.empty(shape, dtype=dtype)
+    key = (threading.get_ident(), name, dtype)
+    buf = _SCRATCH.get(key)
+    if buf is None or buf.numel() < n:
+        buf = torch.empty(n, dtype=dtype)
+        with _scratch_lock():
+            if _SCRATCH_DEPTH:
+                _SCRATCH[key] = buf
+    return buf[:n].view(shape)

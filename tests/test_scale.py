@@ -499,3 +499,32 @@ def test_large_blocks_mapped_maps_large_blocks_on_their_own_only_within_the_bloc
     import sys
     out = subprocess.run([sys.executable, "-c", _LARGE_BLOCKS_CHILD], capture_output=True, text=True, check=True)
     assert out.stdout.split() == ["True", "False", "True"]
+
+
+def test_scratch_buffers_are_reused_per_thread_within_the_block_only():
+    """``cores.scratch`` (common practice: a workspace reused across calls instead of fresh allocations): inside
+    ``cores.reused_scratch`` a thread asking for the same name gets the same memory again (grown when a larger
+    shape is asked for), another name or another thread other memory; outside, a fresh tensor each time; the
+    buffers are dropped when the outermost block ends."""
+    import threading
+
+    import torch
+
+    from protomine import cores
+    a, b = cores.scratch("t", (4, 5)), cores.scratch("t", (4, 5))
+    assert a.shape == (4, 5) and a.dtype == torch.float32 and a.data_ptr() != b.data_ptr()
+    with cores.reused_scratch():
+        x = cores.scratch("t", (4, 5))
+        with cores.reused_scratch():
+            assert cores.scratch("t", (2, 10)).data_ptr() == x.data_ptr()
+            assert cores.scratch("u", (4, 5)).data_ptr() != x.data_ptr()
+            assert cores.scratch("t", (3,), torch.bool).data_ptr() != x.data_ptr()
+        assert cores.scratch("t", (20,)).data_ptr() == x.data_ptr()  # inner block ended, outer still open
+        other = []
+        th = threading.Thread(target=lambda: other.append(cores.scratch("t", (4, 5)).data_ptr()))
+        th.start()
+        th.join()
+        assert other[0] != x.data_ptr()
+        big = cores.scratch("t", (100, 100))
+        assert big.shape == (100, 100) and cores.scratch("t", (100, 100)).data_ptr() == big.data_ptr()
+    assert not cores._SCRATCH

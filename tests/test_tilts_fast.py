@@ -206,3 +206,55 @@ def test_aligned_sums_untilt_each_member_into_its_prototype(monkeypatch, piece, 
         q = (_centres(1.0, aspect[k[i]]) - g.c0) @ g.M.T - g.base
         ref[k[i]] += _read(blocks, q, g.rho_max, g.z_max).reshape(blocks.shape)
     np.testing.assert_allclose(got, ref, atol=1e-4)
+
+
+def test_untilt_in_place_and_in_reused_scratch_equals_the_twin():
+    """``untilt_many(..., in_place=True)`` inside ``cores.reused_scratch`` (the engine's untilt of a piece: its
+    padded volumes and inputs in the thread's reusable buffers) writes into the given array and gives the values
+    of the copying call outside any scope, to the bit, and those equal the twin's trilinear reading
+    (scipy.ndimage.map_coordinates, as above); called twice, the second call reads the same buffers again."""
+    from protomine import cores
+    rng = np.random.default_rng(1)
+    P, V = _protos(rng)
+    aspect = np.array([0.9, 1.4])
+    bank = TiltBank(P, V, aspect, (1.0,), TiltGrid(nsides=(1, 2)))
+    ks, ts = np.array([0, 1, 1, 0, 1]), np.array([3, 0, 20, 40, 7])  # tilt 0 is +z: left as it is
+    a = rng.random((len(ks), 2) + SHAPE)
+    ref = bank.untilt_many(ks, ts, a)
+    with cores.reused_scratch():
+        for _ in range(2):
+            b = a.copy()
+            got = bank.untilt_many(ks, ts, b, in_place=True)
+            assert got is b
+            np.testing.assert_array_equal(got, ref)
+    np.testing.assert_array_equal(ref[1], a[1])
+    for m in (0, 2, 3, 4):
+        g = bank.geometry(ks[m], ts[m])
+        q = (_centres(1.0, aspect[ks[m]]) - g.c0) @ g.M.T - g.base
+        np.testing.assert_allclose(ref[m].reshape(2, -1), _read(a[m], q, g.rho_max, g.z_max), atol=1e-9)
+
+
+def test_coarse_search_in_reused_scratch_equals_fresh_buffers_and_naive_search():
+    """The coarse level's row blocks with their temporaries in each thread's reusable buffers
+    (``PoseBank.match_spectra(reuse=True)`` inside ``cores.reused_scratch``, as ``TiltBank.match_spectra`` runs it)
+    give the fresh buffers' distances, yaws and scales to the bit, over every scale and over scale windows, and the
+    distances equal ``posesearch.pose_distances_naive`` (explicit rolls, no FFT) on the bank's copies."""
+    from protomine import cores
+    rng = np.random.default_rng(2)
+    P, V = _protos(rng, K=2, C=2)
+    scales = (0.9, 1.0, 1.1)
+    bank = TiltBank(P, V, np.array([0.9, 1.4]), scales, TiltGrid(nsides=(1,)))
+    X = np.abs(rng.normal(size=(13, 2) + SHAPE)).astype(np.float32)
+    W = rng.uniform(0.0, 1.0, size=(13,) + SHAPE).astype(np.float32)
+    o = bank.spectra(X, W)
+    full = None
+    for si in (None, np.array([0, 1, 2, 2, 1, 0, 0, 1, 2, 2, 1, 0, 1])):
+        fresh = bank.coarse.match_spectra(o, scale_index=si, window=0, row_block=4)
+        with cores.reused_scratch():
+            reused = bank.coarse.match_spectra(o, scale_index=si, window=0, row_block=4, reuse=True)
+        for name in ("D", "yaw_deg", "scale"):
+            np.testing.assert_array_equal(getattr(reused, name), getattr(fresh, name))
+        full = fresh if full is None else full
+    Pc, Vc = bank.copies(np.repeat([0, 1], bank.T0), np.tile(bank.grid.level(0), 2))
+    naive = pose_distances_naive(X, W, Pc, Vc, scales=scales)
+    np.testing.assert_allclose(full.D, naive.D, rtol=1e-4, atol=1e-5)

@@ -316,9 +316,10 @@ class _AlignedSums:
 
         # the pieces (sums, transform, scaling, untilt) are independent: they run on the pool's threads
         # (``tilts._pooled``, one torch thread each), and their parts are added here in piece order, as before
-        for ks, parts in _ordered_map(piece, pieces):
-            for k, part in zip(ks.tolist(), parts):  # np.add.at's sums (in order), one vector add per group
-                out[k] += part
+        with cores.reused_scratch():  # the pieces' temporaries in each pool thread's buffers (tilts._sample_in_scratch)
+            for ks, parts in _ordered_map(piece, pieces):
+                for k, part in zip(ks.tolist(), parts):  # np.add.at's sums (in order), one vector add per group
+                    out[k] += part
         return out
 
     def _piece_parts(self, keys: np.ndarray, acc: torch.Tensor, scales: tuple[float, ...],
@@ -326,7 +327,7 @@ class _AlignedSums:
         """A piece's sums in their prototypes' frames: prototype indices ks (G',) and parts (G', B, R, A, H), one per
         (prototype, tilt) of the piece (its scales summed first, in key order)."""
         B, R, H = shape
-        a = torch.fft.irfft(acc, n=self.A, dim=0).numpy().astype(np.float64)  # (A, G, B R H)
+        a = _as_float64_scratch(torch.fft.irfft(acc, n=self.A, dim=0))  # (A, G, B R H)
         a = a.reshape(self.A, len(keys), B, R, H).transpose(1, 2, 3, 0, 4)  # (G, B, R, A, H)
         kts, sis = np.divmod(keys, self.S)
         ukt, which = np.unique(kts, return_inverse=True)
@@ -342,9 +343,17 @@ class _AlignedSums:
             parts[which[j]] += part
         ks, ts = np.divmod(ukt, self.T)
         if untilt is not None and np.any(ts):
-            parts = untilt(ks, ts, parts)
+            parts = untilt(ks, ts, parts, in_place=True)  # parts is this piece's own
         return ks, parts
 
+
+
+def _as_float64_scratch(t: torch.Tensor) -> np.ndarray:
+    """``t.numpy().astype(np.float64)`` (the same values) in this thread's reusable buffer (``cores.scratch``): valid
+    until this thread asks for it again."""
+    out = cores.scratch("float64", tuple(t.shape), torch.float64).numpy()
+    np.copyto(out, t.numpy())
+    return out
 
 
 class _SpectraCache:

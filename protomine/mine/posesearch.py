@@ -455,17 +455,20 @@ def _idft_of_partials(A: int) -> torch.Tensor:
     return torch.cat([m[:, _real_bins(A)], cplx], 1).contiguous()
 
 
-def stack_complex(p: torch.Tensor) -> torch.Tensor:
+def stack_complex(p: torch.Tensor, out: torch.Tensor | None = None) -> torch.Tensor:
     """Real spectra p (A, M, f) (:func:`spectrum_rows`) -> (Fc, 2 M, f): per complex bin, the M real parts' rows
     then the M imaginary parts' rows, the prototype operand of :func:`_cross_spectra`'s batched products.  A
     bank lays its factors out this way once (:meth:`PoseBank.match_spectra`, once per scale window and call)
-    instead of once per product."""
+    instead of once per product.  ``out``: a contiguous tensor (Fc, 2, M, f) to write into."""
     A, M = p.shape[:2]
     F, Fc = spectrum_rows(A)
+    if out is not None:
+        return torch.stack([p[1:Fc + 1], p[F:]], 1, out=out).view(Fc, 2 * M, -1)
     return torch.stack([p[1:Fc + 1], p[F:]], 1).view(Fc, 2 * M, -1)
 
 
-def _cross_spectra(p: torch.Tensor, ob: torch.Tensor, ps: torch.Tensor | None = None) -> torch.Tensor:
+def _cross_spectra(p: torch.Tensor, ob: torch.Tensor, ps: torch.Tensor | None = None, out: torch.Tensor | None = None
+                   ) -> torch.Tensor:
     """Per-frequency partial sums over features of ob conj(p): p (A, M, f), ob (A, n, f) real spectra
     (:func:`spectrum_rows`) -> (nr + 4 Fc, M n) rows (see :func:`_idft_of_partials`) of prototype-major (M, n)
     blocks; :func:`_idft_of_partials` turns them into distances.  The real-only bins need one product each,
@@ -474,13 +477,14 @@ def _cross_spectra(p: torch.Tensor, ob: torch.Tensor, ps: torch.Tensor | None = 
     the complex product written out (measured 17 ms instead of 37 ms for 512 objects x 32 prototypes with the
     inverse transform, two threads), and the combination into real and imaginary parts rides on the inverse
     transform's product.  The objects enter transposed (a view), so the result already has the (rows,
-    prototype, object) layout that the inverse transform reads as one matrix, with no copy in between."""
+    prototype, object) layout that the inverse transform reads as one matrix, with no copy in between.  ``out``: a
+    contiguous float32 tensor ((nr + 4 Fc) M, n) to write into (:func:`_distances_in_scratch`)."""
     A = p.shape[0]
     F, Fc = spectrum_rows(A)
     M, n = p.shape[1], ob.shape[1]
     rb = _real_bins(A)
     nr = len(range(*rb.indices(A)))
-    t = torch.empty((nr + 4 * Fc) * M, n, dtype=torch.float32)
+    t = torch.empty((nr + 4 * Fc) * M, n, dtype=torch.float32) if out is None else out
     torch.bmm(p[rb], ob[rb].transpose(1, 2), out=t[:nr * M].view(nr, M, n))
     if Fc:
         ps = stack_complex(p) if ps is None else ps  # (Fc, [pr; pi], f), 1/n of the products' bytes
@@ -507,6 +511,29 @@ def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], 
     num = torch.mm(idft, _cross_spectra(pn, o, sn))
     den = torch.mm(idft, _cross_spectra(pd, o[:, :, RH:2 * RH], sd))  # the w block
     unseen = den <= min_overlap
+    d = num.clamp_min_(0.0).div_(den.add_(EPS))
+    d.masked_fill_(unseen, float("inf"))
+    return d.view(A, M, n)
+
+
+def _distances_in_scratch(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A: int, min_overlap: float,
+                          stacked: tuple[torch.Tensor, ...] | None = None) -> torch.Tensor:
+    """:func:`_distances_from_spectra` (the same operations, the same values) with its partial sums, distances and
+    mask in the calling thread's reusable buffers (``cores.scratch``, inside ``cores.reused_scratch``): the result
+    is valid until this thread's next call.  For the tilt search's coarse row blocks, whose temporaries (about 70 MB
+    a block of 128 objects against its 960 copies x scales) were otherwise mapped and page-faulted afresh, block
+    after block (``cores.large_blocks_mapped``)."""
+    from ..cores import scratch
+    pn, pd = factors
+    sn, sd = (None, None) if stacked is None else stacked
+    n, M, RH = o.shape[1], pn.shape[1], pd.shape[2]
+    idft = _idft_of_partials(A)
+    rows = idft.shape[1]
+    num = torch.mm(idft, _cross_spectra(pn, o, sn, out=scratch("partials", (rows * M, n))),
+                   out=scratch("num", (A, M * n)))
+    den = torch.mm(idft, _cross_spectra(pd, o[:, :, RH:2 * RH], sd, out=scratch("partials", (rows * M, n))),
+                   out=scratch("den", (A, M * n)))
+    unseen = torch.le(den, min_overlap, out=scratch("unseen", (A, M * n), torch.bool))
     d = num.clamp_min_(0.0).div_(den.add_(EPS))
     d.masked_fill_(unseen, float("inf"))
     return d.view(A, M, n)
@@ -659,7 +686,7 @@ class PoseBank:
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
                       scale_index: np.ndarray | None = None, window: int = 1, row_block: int | None = None,
-                      run=None) -> PoseMatch:
+                      run=None, reuse: bool = False) -> PoseMatch:
         """Best pose from object spectra o (A, n, (C + 2) R H) (see :meth:`spectra`).
 
         With ``scale_index`` (n,) (each object's current best scale, an index into the scales), only
@@ -668,7 +695,8 @@ class PoseBank:
         scales at a time (the window's prototype factors laid out for the products once,
         :func:`stack_complex`) and, with ``row_block``, in blocks of that many objects (bounds the per-shift
         distances' memory).  ``run(fn, items)``, when given, runs the blocks (``[fn(i) for i in items]`` by default;
-        the tilt search spreads them over threads, ``tilts._pooled``).
+        the tilt search spreads them over threads, ``tilts._pooled``).  ``reuse``: each block's temporaries in its
+        thread's reusable buffers (:func:`_distances_in_scratch`; the caller opens ``cores.reused_scratch``).
         """
         n, S, K, A = o.shape[1], len(self.scales), self.K, self.A
         span = 2 * window + 1
@@ -685,7 +713,7 @@ class PoseBank:
         step = row_block or max(n, 1)
         for lo, sp, rows in windows:
             part = tuple(f[:, lo * K:(lo + sp) * K] for f in self.factors) if sp < S else self.factors
-            stacked = tuple(stack_complex(f) for f in part) if spectrum_rows(A)[1] else None
+            stacked = self._stacked(part, reuse) if spectrum_rows(A)[1] else None
             m = n if rows is None else rows.size
 
             def block(r0: int) -> None:
@@ -695,9 +723,14 @@ class PoseBank:
                     og = o
                 elif rows is None:
                     og = o[:, r0:r1]
+                elif reuse:  # the block's objects gathered into this thread's reusable buffer
+                    from ..cores import scratch
+                    og = torch.index_select(o, 1, torch.from_numpy(rows[r0:r1]),
+                                            out=scratch("rows", (o.shape[0], r1 - r0) + tuple(o.shape[2:])))
                 else:
                     og = o.index_select(1, torch.from_numpy(rows[r0:r1]))
-                d = _distances_from_spectra(og, part, A, self.C * min_overlap, stacked).view(A, sp, K, r1 - r0)
+                dist = _distances_in_scratch if reuse else _distances_from_spectra
+                d = dist(og, part, A, self.C * min_overlap, stacked).view(A, sp, K, r1 - r0)
                 Db, yb, sb = _best_pose_nska(d.permute(3, 1, 2, 0), self.scales[lo:lo + sp])
                 if sp < S:  # as the search over every scale with inf outside the window: no overlap -> scales[0]
                     sb = np.where(np.isfinite(Db), sb, np.float32(self.scales[0]))
@@ -705,6 +738,15 @@ class PoseBank:
 
             (run or (lambda fn, items: [fn(i) for i in items]))(block, range(0, m, step))
         return PoseMatch(D, yaw, sc, None, tilt=np.zeros(D.shape, np.int64))
+
+    @staticmethod
+    def _stacked(part: tuple[torch.Tensor, ...], reuse: bool) -> tuple[torch.Tensor, ...]:
+        """:func:`stack_complex` of each factor; with ``reuse`` in this thread's reusable buffers (``cores.scratch``)."""
+        if not reuse:
+            return tuple(stack_complex(f) for f in part)
+        from ..cores import scratch
+        Fc = spectrum_rows(part[0].shape[0])[1]
+        return tuple(stack_complex(f, out=scratch(f"stacked{i}", (Fc, 2) + tuple(f.shape[1:]))) for i, f in enumerate(part))
 
     def _match_all(self, o: torch.Tensor, min_overlap: float, scale_index: np.ndarray | None,
                    window: int) -> PoseMatch:

@@ -63,6 +63,7 @@ import numpy as np
 import torch
 
 from .. import rotations as rot
+from ..cores import reused_scratch, scratch
 from scipy.spatial import ConvexHull, QhullError
 
 from ..ingest.proposals import min_enclosing_circle
@@ -159,6 +160,28 @@ def sample_volumes(vol, pts: np.ndarray, rho_max: np.ndarray, z_max: np.ndarray,
     padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3)
     out = _trilinear(padded, grid) * torch.from_numpy(inside).to(vol.dtype)[:, None]
     return (out, inside) if with_inside else out
+
+
+def _taken_in_scratch(a: np.ndarray, sel: np.ndarray) -> torch.Tensor:
+    """``torch.from_numpy(np.ascontiguousarray(a[sel]))`` (the same values) in this thread's reusable buffer
+    (``cores.scratch``; a fresh tensor outside ``cores.reused_scratch``)."""
+    src = scratch("taken", (len(sel),) + a.shape[1:], torch.from_numpy(a[:0]).dtype)
+    np.take(a, sel, axis=0, out=src.numpy(), mode="clip")  # indices in range; "raise" would buffer the result
+    return src
+
+
+def _sample_in_scratch(vol: torch.Tensor, pts: np.ndarray, rho_max, z_max) -> torch.Tensor:
+    """:func:`sample_volumes` (the same values) with the padded volumes in this thread's reusable buffer
+    (``cores.scratch``) and the samples outside the cylinders zeroed in place: for the untilt's pieces
+    (:meth:`TiltBank.untilt_many`), whose float64 temporaries of ~10 MB were mapped and page-faulted afresh
+    for every piece while the search runs (``cores.large_blocks_mapped``)."""
+    m, c, R, A, H = vol.shape
+    dt = np.float64 if vol.dtype == torch.float64 else np.float32
+    pts = np.asarray(pts, dt)
+    grid, inside = _grid_coords(pts[..., 0], pts[..., 1], pts[..., 2], rho_max, z_max, (R, A, H), dt)
+    padded = torch.cat([vol[:, :, :, -1:], vol, vol[:, :, :, :1]], dim=3,
+                       out=scratch("padded", (m, c, R, A + 2, H), vol.dtype))
+    return _trilinear(padded, grid).mul_(torch.from_numpy(inside).to(vol.dtype)[:, None])
 
 
 def _trilinear(padded: torch.Tensor, grid: np.ndarray) -> torch.Tensor:
@@ -600,6 +623,18 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     return pn, pd
 
 
+def _block_factors(Pc, Vc, sigma: float, dft: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """:func:`column_factors` (the same values) written into this thread's reusable buffers (``cores.scratch``):
+    valid until this thread builds the next block's.  A refinement block's factors (up to ``COLUMN_BUDGET``
+    columns, ~40 MB) were otherwise a fresh block each, mapped and page-faulted by the matrix products that fill
+    them (``cores.large_blocks_mapped``): on 600 tumbled objects (the tilt_mining row's settings) the largest share
+    of the run's 6.6 million minor page faults."""
+    M, (C, R, A, H) = (len(Pc), Pc[0].shape) if isinstance(Pc, (list, tuple)) else (Pc.shape[0], Pc.shape[1:])
+    rows = dft.shape[0]
+    out = (scratch("column_pn", (rows, M, (C + 2) * R * H)), scratch("column_pd", (rows, M, R * H)))
+    return column_factors(Pc, Vc, sigma, dft, out=out)
+
+
 def _runs(sizes: Sequence[int], budget: int) -> list[tuple[int, int]]:
     """Consecutive runs (start, stop) of items with ``sizes``, each adding items while its total stays within
     ``budget`` and, with torch on T > 1 threads, within an even share of the whole, ceil(total / T): a block whose
@@ -803,20 +838,20 @@ class TiltBank:
         tilted = ~self.grid.is_upright(ts)
         self._geometries(list(zip(ks[tilted].tolist(), ts[tilted].tolist())))
 
-    def untilt_many(self, ks: np.ndarray, ts: np.ndarray, a: np.ndarray) -> np.ndarray:
+    def untilt_many(self, ks: np.ndarray, ts: np.ndarray, a: np.ndarray, *, in_place: bool = False) -> np.ndarray:
         """Sums a (G, B, R, A, H) in the copy frames of (ks[g], ts[g]) rotated back into their prototypes'
-        frames (cells a copy does not cover get 0), all groups in one resampling; the dtype is kept."""
+        frames (cells a copy does not cover get 0), all groups in one resampling; the dtype is kept.
+        ``in_place``: written into ``a`` (a C-contiguous array), which is returned."""
         ks, ts = np.asarray(ks, np.int64), np.asarray(ts, np.int64)
-        out = np.array(a, copy=True)
+        out = a if in_place else np.array(a, copy=True)
         sel = np.flatnonzero(~self.grid.is_upright(ts))
         if sel.size:
             pairs = [(int(ks[g]), int(ts[g])) for g in sel]
             self._geometries(pairs)
             gs = [self._geom[p] for p in pairs]
             pts = inverse_points(gs, self.shape, self.aspect[ks[sel]])
-            res = sample_volumes(torch.from_numpy(np.ascontiguousarray(out[sel])), pts,
-                                 [g.rho_max for g in gs], [g.z_max for g in gs])
-            out[sel] = res.numpy().reshape(out[sel].shape)
+            res = _sample_in_scratch(_taken_in_scratch(out, sel), pts, [g.rho_max for g in gs], [g.z_max for g in gs])
+            out[sel] = res.numpy().reshape((len(sel),) + out.shape[1:])
         return out
 
     def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
@@ -829,13 +864,16 @@ class TiltBank:
         # blocks of objects bound the (n, K T0, S, A) distances
         # the blocks run at once on the pool's threads: COARSE_ROWS objects over all of them (memory as one block)
         rows = max(1, COARSE_ROWS // torch.get_num_threads())
-        m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=rows, run=_pooled)
+        with reused_scratch():  # the row blocks' temporaries in each thread's buffers, freed before the refinement
+            m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=rows, run=_pooled,
+                                          reuse=True)
         D = m.D.reshape(n, K, T0)
         bt = np.argmin(D, axis=2)
         pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
         out = PoseMatch(pick(m.D), pick(m.yaw_deg), pick(m.scale), None, tilt=self.grid.level(0)[bt])
         if len(self.grid.nsides) > 1:
-            self._refine(o, m, out, min_overlap)
+            with reused_scratch():  # one buffer for every block's column factors (_block_factors)
+                self._refine(o, m, out, min_overlap)
         return out
 
     def _refine(self, o: torch.Tensor, coarse: PoseMatch, out: PoseMatch, min_overlap: float) -> None:
@@ -895,7 +933,7 @@ class TiltBank:
                 blk, b = groups[b:e], e
                 ks = np.concatenate([np.full(len(u), k) for _, k, u, _ in blk])
                 ts = np.concatenate([u for _, _, u, _ in blk])
-                factors = column_factors(*self.copy_list(ks, ts), self.scales[si], self.dft)
+                factors = _block_factors(*self.copy_list(ks, ts), self.scales[si], self.dft)
                 jobs, prods = [], []
                 c0 = 0
                 for _, k, u, es in blk:
