@@ -199,7 +199,7 @@ def return_free_memory() -> bool:
 def one_malloc_arena() -> bool:
     """glibc's ``mallopt(M_ARENA_MAX, 1)``: threads started later share the main arena, so memory one thread
     frees serves the others (the same as ``MALLOC_ARENA_MAX=1`` in the environment; the tilt search's thread
-    pool, ``mine.posesearch._spectra_pool``).  False where not glibc."""
+    pool, ``mine.searchpool.spectra_pool``).  False where not glibc."""
     try:
         return bool(ctypes.CDLL("libc.so.6").mallopt(_M_ARENA_MAX, 1))
     except (OSError, AttributeError):

@@ -64,7 +64,7 @@ def test_views_the_search_finds_on_another_face_are_calibrated_against_the_copy_
 
 def test_the_pooled_leave_one_out_prototypes_change_no_bit(tiny_world):
     # on T > 1 torch threads the groups' prototypes without their object are rebuilt on the tilt search's thread
-    # pool (tilts._pooled); on one thread one after another here: the serial run is the reference, and the pool
+    # pool (searchpool.pooled); on one thread one after another here: the serial run is the reference, and the pool
     # must give every distance and reliability cell to the bit (the determinism rule of DEVELOPERS.md)
     import torch
     lib, st, P, V, labels = _world(tiny_world)

@@ -78,7 +78,8 @@ from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
 from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_assignments
 from ..mine.symmetry import detect_symmetry
-from ..mine.tilts import TiltBank, TiltGrid, _pooled, rotation_of, tilt_pose_distances
+from ..mine.searchpool import pooled
+from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
 from .names import check_name, refresh_gallery
 
 MIN_CAL_MEMBERS = 3
@@ -258,9 +259,9 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     fit_ok = score >= library_cut(library)
     ups, counts, _ = group_faces(R_obj[fit_ok, 2, :], np.zeros(int(fit_ok.sum()), np.int64), 1)
     bank = TiltBank(X1, W1, [aspect], scales, grid) if grid is not None and len(ups[0]) > 1 else None
-    # each other face's symmetry on its own: on the tilt search's thread pool (tilts._pooled), in face order (copy_at's
+    # each other face's symmetry on its own: on the tilt search's thread pool (searchpool.pooled), in face order (copy_at's
     # one write, the prototype's solid cells, is the same from any thread)
-    fsym = [symmetry] + _pooled(lambda u: int(detect_symmetry(*(a[None] for a in bank.copy_at(0, u)),
+    fsym = [symmetry] + pooled(lambda u: int(detect_symmetry(*(a[None] for a in bank.copy_at(0, u)),
                                                               np.exp(mu) / 2.0)[0]),
                                 list(ups[0][1:])) if bank is not None else [symmetry] * len(ups[0])
     face, R_obj, yaw = face_pose(R_obj, ups[0], np.array(fsym))

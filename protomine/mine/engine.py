@@ -49,7 +49,7 @@ memory (not an :class:`ArraySource`) has its next chunk read ahead on a thread o
 matched: one more chunk of volumes.
 
 Threads: with torch on T > 1 threads, the phases of a fit that ran on one core while the other idled run on the
-search's pool (``posesearch._spectra_pool``, one torch thread each, as ``tilts._pooled``): a chunk's aligned sums
+search's pool (``searchpool.spectra_pool``, one torch thread each, as ``searchpool.pooled``): a chunk's aligned sums
 piece by piece (sums, inverse transform, scaling, untilt; the parts are added in piece order, so the same values to
 the bit), the 3-D symmetry and face tests prototype by prototype, and the tilted copies' geometries overlap their
 resampling (``tilts._overlapped``).  Measured per phase (wall and process CPU, main-thread CPU by
@@ -86,7 +86,8 @@ from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
 from .posesearch import PoseBank, complex_spectra
 from .seeding import SEED_SIZE, PoseSeeder
-from .tilts import TiltBank, TiltGrid, _ordered_map, _pooled, make_bank
+from .searchpool import ordered_map, pooled
+from .tilts import TiltBank, TiltGrid, make_bank
 
 QUANTILES = (0.05, 0.25, 0.75, 0.95)
 
@@ -315,9 +316,9 @@ class _AlignedSums:
             return self._piece_parts(keys_p, self._piece_sums(keys_p), scales, shape, untilt)
 
         # the pieces (sums, transform, scaling, untilt) are independent: they run on the pool's threads
-        # (``tilts._pooled``, one torch thread each), and their parts are added here in piece order, as before
+        # (``searchpool.pooled``, one torch thread each), and their parts are added here in piece order, as before
         with cores.reused_scratch():  # the pieces' temporaries in each pool thread's buffers (tilts._sample_in_scratch)
-            for ks, parts in _ordered_map(piece, pieces):
+            for ks, parts in ordered_map(piece, pieces):
                 for k, part in zip(ks.tolist(), parts):  # np.add.at's sums (in order), one vector add per group
                     out[k] += part
         return out
@@ -805,7 +806,7 @@ class PoseKMeans:
 
             # prototypes are independent: they run on the pool's threads (one torch thread each), in order
             with bar(self.progress, "symmetry in 3-D", total=self.n_clusters, unit="prototypes") as b:
-                for reps in _ordered_map(tilt_symmetry, list(range(self.n_clusters))):
+                for reps in ordered_map(tilt_symmetry, list(range(self.n_clusters))):
                     self.symmetry_rotations_.append(reps)
                     b.advance()
             for k, reps in enumerate(self.symmetry_rotations_):
@@ -815,7 +816,7 @@ class PoseKMeans:
             self.up_ = self.rotation_[:, 2, :]
             ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
             fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol,
-                                         run=_pooled)
+                                         run=pooled)
         self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
         period = np.array([sym.period_deg(fsym[k][f]) for k, f in zip(res.labels, self.face_)], np.float64)
         self.rotation_, yaw = faces.reduce_rotation(self.rotation_, period)

@@ -41,7 +41,8 @@ from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
 from .viewdistance import score_rings
-from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, _pooled, grid_aspect, volume_on_face
+from .searchpool import pooled
+from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
 
 def period_of(symmetry: np.ndarray) -> np.ndarray:
@@ -243,9 +244,9 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
         ups_all, upr_all = np.zeros((len(rows_all), 3)), np.ones(len(rows_all), bool)
         ks = np.unique(view_k)
         sel_k = [np.flatnonzero(view_k == k) for k in ks]
-        # the prototypes' searches are independent: one per thread of the spectra pool (tilts._pooled), each
+        # the prototypes' searches are independent: one per thread of the spectra pool (searchpool.pooled), each
         # with one torch thread, results taken in prototype order
-        found = _pooled(lambda i: search(xs[sel_k[i]], ws[sel_k[i]], int(ks[i])), range(len(ks)))
+        found = pooled(lambda i: search(xs[sel_k[i]], ws[sel_k[i]], int(ks[i])), range(len(ks)))
         for sk, (u, r) in zip(sel_k, found):
             ups_all[sk], upr_all[sk] = u, r
         groups = []  # (j, k, u, upright, the group's views): one per object and searched direction
@@ -267,7 +268,7 @@ def _loo_searched(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.ndarray, l
 
         # the groups are independent: on the spectra pool's threads as the search above (one torch thread each),
         # results in group order (copy_at's one write, a prototype's solid cells, is the same from any thread)
-        for (j, k, u, upright, gs), (Pk, Vk) in zip(groups, _pooled(rebuilt, groups)):
+        for (j, k, u, upright, gs), (Pk, Vk) in zip(groups, pooled(rebuilt, groups)):
             yield k, rows_all[gs], xs[gs], ws[gs], Pk, Vk, upright
 
 
@@ -360,13 +361,13 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
         return None
 
     # with the searched faces the groups are in memory: each pass runs them on the spectra pool's threads
-    # (tilts._pooled, one torch thread each) and takes their results in group order, so the sums below add up
+    # (searchpool.pooled, one torch thread each) and takes their results in group order, so the sums below add up
     # in the same order as one after the other
     def each(fn, items):  # (item, fn(item)) in item order
         if search is None:
             return ((it, fn(it)) for it in items)
         items = list(items)
-        return zip(items, _pooled(fn, items))
+        return zip(items, pooled(fn, items))
 
     poses, own = [], []
     with bar(progress, "score calibration", total=n_items * (2 if reliable else 1), unit="groups" if search else "objects") as b:

@@ -71,14 +71,13 @@ Public API
 from __future__ import annotations
 
 import functools
-import os
-import threading
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Sequence
 
 import numpy as np
 import torch
+
+from .searchpool import pool_here
 
 EPS = 1e-6
 
@@ -261,39 +260,6 @@ SPECTRA_BLOCK_BYTES = 1 << 21  # the object factors of one block of a chunk (sta
 SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
 
 
-@functools.lru_cache(maxsize=4)
-def _spectra_pool(threads: int) -> ThreadPoolExecutor:
-    """``threads`` Python threads whose torch ops run on one thread each, for :func:`_object_spectra`.
-
-    torch's thread count is per thread for its ops (OpenMP's and MKL's settings of the calling thread);
-    ``torch.set_num_threads(1)`` in a pool thread also sets the count that threads started later begin with, so
-    the pool's threads are all started here (a barrier holds each until all have set theirs) and the caller's
-    count is set back afterwards (which leaves the caller's own ops as they were).
-
-    Threads started from here on allocate from the main malloc arena (``cores.one_malloc_arena``): the tilt search runs
-    blocks of tens of megabytes on these threads, and each thread's own arena would keep its largest blocks for
-    good (``cores.reuse_freed_memory``'s top pad), on top of the main arena's (measured on 500 tumbled objects,
-    K = 16: peak RSS 1.57 GB with an arena per thread, 1.30 GB with one, same time)."""
-    from ..cores import one_malloc_arena
-    one_malloc_arena()
-    pool = ThreadPoolExecutor(threads, thread_name_prefix="spectra")
-    barrier = threading.Barrier(threads)
-
-    def init(_):
-        # torch initialises a thread's intra-op count on its first parallel op from the process-wide count, which
-        # the caller sets back below: without this first query (which runs that initialisation now) the pool's
-        # elementwise ops would run on the caller's threads count again (measured: 2 OpenMP threads each)
-        torch.get_num_threads()
-        torch.set_num_threads(1)
-        barrier.wait()
-
-    list(pool.map(init, range(threads)))
-    torch.set_num_threads(threads)
-    return pool
-
-
-# a forked child has none of the parent's pool threads: it starts its own pool when it needs one
-os.register_at_fork(after_in_child=_spectra_pool.cache_clear)
 
 
 def _half_dfts(dft: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor] | None:
@@ -370,7 +336,7 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     temporaries, which went through memory four times).  Column blocks do not change any column's
     arithmetic: the result is the same to the bit, whatever the blocks, shares and threads.
 
-    When torch runs T > 1 threads, T Python threads (:func:`_spectra_pool`) build the objects' blocks with
+    When torch runs T > 1 threads, T Python threads (``searchpool.spectra_pool``) build the objects' blocks with
     single-threaded ops, ``SPECTRA_SHARES`` x T contiguous shares of the objects taken in turn: a block's ops
     are too small to pay for waking torch's other threads for every one of them (on a shared machine, 512
     objects took 290 ms wall at load 3 that way, whole-chunk ops on both threads 108 ms, this 76 ms; 23 / 34 /
@@ -382,7 +348,8 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     flat = out.view(dft.shape[0], n * feat)
     threads = torch.get_num_threads()
     b = max(1, SPECTRA_BLOCK_BYTES // (4 * A * feat))
-    if threads == 1 or threading.current_thread().name.startswith("spectra"):
+    pool = pool_here()
+    if pool is None:
         _object_spectra_rows(x, w, dft, flat, 0, n)
         return out
     # a few shares per thread, taken in turn: a thread that the machine's other work slows takes fewer.  Even one
@@ -390,7 +357,7 @@ def _object_spectra(x: torch.Tensor, w: torch.Tensor, dft: torch.Tensor) -> torc
     # kernels round differently from its single-threaded ones for some shapes (measured: (6, 6) @ (6, 4,032) on 2
     # threads vs 1), and a chunk's spectra must not depend on the threads (worker processes run one)
     cuts = np.linspace(0, n, min(SPECTRA_SHARES * threads, -(-n // b)) + 1).round().astype(int)
-    list(_spectra_pool(threads).map(lambda ij: _object_spectra_rows(x, w, dft, flat, *ij), zip(cuts[:-1], cuts[1:])))
+    list(pool.map(lambda ij: _object_spectra_rows(x, w, dft, flat, *ij), zip(cuts[:-1], cuts[1:])))
     return out
 
 
@@ -621,7 +588,7 @@ class PoseBank:
 
     def __init__(self, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], run=None, factors=None):
         """``run(fn, items)``, when given, builds the bank a scale and a block of 64 scaled prototypes at a time
-        (the same arithmetic; the tilt search spreads them over threads, ``tilts._pooled``).  ``factors(dft)``, when
+        (the same arithmetic; the tilt search spreads them over threads, ``searchpool.pooled``).  ``factors(dft)``, when
         given, builds the factors (Pn, Pd) of the scaled prototypes in the scale-major order of ``__init__`` instead
         (``tilts.TiltBank``: its column factors)."""
         K, C, R, A, H = P.shape
@@ -695,7 +662,7 @@ class PoseBank:
         scales at a time (the window's prototype factors laid out for the products once,
         :func:`stack_complex`) and, with ``row_block``, in blocks of that many objects (bounds the per-shift
         distances' memory).  ``run(fn, items)``, when given, runs the blocks (``[fn(i) for i in items]`` by default;
-        the tilt search spreads them over threads, ``tilts._pooled``).  ``reuse``: each block's temporaries in its
+        the tilt search spreads them over threads, ``searchpool.pooled``).  ``reuse``: each block's temporaries in its
         thread's reusable buffers (:func:`_distances_in_scratch`; the caller opens ``cores.reused_scratch``).
         """
         n, S, K, A = o.shape[1], len(self.scales), self.K, self.A

@@ -103,7 +103,8 @@ class FaceDistance:
 
     def _build(self, P: np.ndarray, V: np.ndarray) -> None:
         from .faces import stable_ups
-        from .tilts import _pooled, _resample_copies, copy_geometries, solid_points
+        from .searchpool import pooled
+        from .tilts import _resample_copies, copy_geometries, solid_points
         P, V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         if len(self.aspect) != len(P):
             raise ValueError(f"FaceDistance: {len(self.aspect)} aspects for {len(P)} prototypes")
@@ -117,13 +118,13 @@ class FaceDistance:
             pc[0], vc[0] = P[k], V[k]  # +z: the prototype as it is, not resampled
             return pc, vc
 
-        # each object's copies on its own: on the spectra pool's threads (tilts._pooled), in object order
-        Pc, Vc = zip(*_pooled(copies, range(len(P))))
+        # each object's copies on its own: on the spectra pool's threads (searchpool.pooled), in object order
+        Pc, Vc = zip(*pooled(copies, range(len(P))))
         owner = np.concatenate([np.full(len(pc), k, np.int64) for k, pc in enumerate(Pc)])
         Pc, Vc = np.concatenate(Pc), np.concatenate(Vc)
         # each bank's scales and blocks of spectra on the pool's threads too (PoseBank's run: the same arithmetic)
         self._banks = [(owner[b:b + self.BLOCK], PoseBank(Pc[b:b + self.BLOCK], Vc[b:b + self.BLOCK], self.scales,
-                                                          run=_pooled))
+                                                          run=pooled))
                        for b in range(0, len(owner), self.BLOCK)]
         self._k = len(P)
         self._P = P

@@ -20,7 +20,7 @@ spread over the K x S (prototype, scale) pairs of a yaw-only search; ``ratio`` =
 copies does not dominate); ``yaw_cpu_s``, ``tilt_cpu_s``, ``ratio_per_tilt_cpu``: the same in CPU seconds of the
 process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core).  The
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
-level's row blocks on ``posesearch._spectra_pool``'s threads, one torch thread each (``tilts._pooled``).
+level's row blocks on ``searchpool.spectra_pool``'s threads, one torch thread each (``searchpool.pooled``).
 
 The mining row's invented prototypes fill their whole grid (no empty margin around the object, unlike a lifted
 volume), so a tilted copy's cells beyond its prototype's cylinder stay unknown (``tilts.empty_margin``).

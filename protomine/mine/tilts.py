@@ -49,7 +49,7 @@ Threads
 -------
 With torch on T > 1 threads, the search's many small operations (blocks of copies, the refinement's column
 factors and its groups' products) and the coarse level's bank and row blocks run on T Python threads whose torch
-ops run on one thread each (:func:`_pooled`, ``posesearch._spectra_pool``), not as ops on T torch threads each:
+ops run on one thread each (:func:`pooled`, ``searchpool.spectra_pool``), not as ops on T torch threads each:
 the same values to the bit, and on a shared machine far less time lost waking threads (mining 500 tumbled
 objects at load 6-9: 632 s wall / 307 s CPU before, 186 s / 82 s with the pool; identical result).
 """
@@ -61,13 +61,13 @@ from typing import Sequence
 
 import numpy as np
 import torch
+from scipy.spatial import ConvexHull, QhullError
 
 from .. import rotations as rot
 from ..cores import reused_scratch, scratch
-from scipy.spatial import ConvexHull, QhullError
-
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw, _spectra_pool
+from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw
+from .searchpool import pool_here, pooled
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
 OBSERVED_MIN = 0.05    # ... where its observation weight is at least this
@@ -463,56 +463,18 @@ def volume_on_face(vol: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGri
     return out[0].numpy().reshape(vol.shape)
 
 
-# --- small operations on one thread each ----------------------------------------------------------
-
-def _pooled(fn, items: Sequence) -> list:
-    """``[fn(i) for i in items]``, with torch running T > 1 threads spread over T Python threads whose torch ops
-    run on one thread each (``posesearch._spectra_pool``).  For the refinement's many small operations (copies,
-    column factors, a group's product): waking torch's other threads for each of them costs more than the
-    operation on a shared machine (measured at load 7-13: a (36, 77, 672) x (36, 100, 672) product of
-    :func:`posesearch._distances_from_spectra` took 256-315 ms on 2 threads, 38-56 ms on one), and single-threaded
-    kernels give the same result for any number of threads.  Results in the order of ``items``."""
-    pool = _pool_here()
-    return [fn(i) for i in items] if pool is None else list(pool.map(fn, items))
-
-
-def _pool_here():
-    """The search's pool (``posesearch._spectra_pool``) when torch runs T > 1 threads and this is not one of the
-    pool's own threads; None: run here, one item after another."""
-    import threading
-    threads = torch.get_num_threads()
-    if threads == 1 or threading.current_thread().name.startswith("spectra"):
-        return None
-    return _spectra_pool(threads)
-
-
-def _ordered_map(fn, items: list):
-    """``fn`` over ``items`` as :func:`_pooled`, but results yielded in the order of ``items`` as they are ready,
-    with at most about T + 1 of them held (T pool threads): for results too large to hold all at once."""
-    pool = _pool_here()
-    if pool is None or len(items) < 2:
-        yield from (fn(i) for i in items)
-        return
-    ahead = torch.get_num_threads() + 1
-    pending = [pool.submit(fn, i) for i in items[:ahead]]
-    for j in range(len(items)):
-        res = pending[j].result()
-        pending[j] = None  # the caller holds the result from here on
-        if j + ahead < len(items):
-            pending.append(pool.submit(fn, items[j + ahead]))
-        yield res
-
+# --- the copies' blocks on the search's pool (searchpool) --------------------------------------------
 
 def _overlapped(prepare, run, pairs: list[tuple[int, int]]) -> None:
     """``prepare(pairs)`` then ``run(b0)`` for every block start b0 of ``COPY_BLOCK`` pairs, the blocks on the pool's
-    threads as in :func:`_pooled`; ``prepare`` (the copies' geometries: enclosing circles in Python, on this thread)
+    threads as in :func:`pooled`; ``prepare`` (the copies' geometries: enclosing circles in Python, on this thread)
     runs a prototype at a time, and each block is started as soon as its pairs (sorted by prototype) are prepared,
     so this thread's share overlaps the threads' resampling.  The same blocks as ``prepare(pairs)`` then
-    ``_pooled(run, ...)``; ``prepare`` is only ever called on this thread."""
-    pool = _pool_here()
+    ``pooled(run, ...)``; ``prepare`` is only ever called on this thread."""
+    pool = pool_here()
     if pool is None or len(pairs) <= COPY_BLOCK:
         prepare(pairs)
-        _pooled(run, range(0, len(pairs), COPY_BLOCK))
+        pooled(run, range(0, len(pairs), COPY_BLOCK))
         return
     futures, done, b0 = [], 0, 0
     ks = np.array([k for k, _ in pairs])
@@ -582,7 +544,7 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
     halves = _half_dfts(dft)
     h = A // 2
     # a few copies at a time, so the steps' temporaries stay in cache (each column's arithmetic is the same), the
-    # steps spread over the threads (:func:`_pooled`)
+    # steps spread over the threads (:func:`pooled`)
     step = max(1, FACTOR_BLOCK_BYTES // (4 * (C + 2) * R * A * H))
 
     def run(m0: int) -> None:
@@ -619,7 +581,7 @@ def column_factors(Pc: np.ndarray, Vc: np.ndarray, sigma: float, dft: torch.Tens
             torch.mm(halves[1], f[h:], out=cols[1::2])
         torch.mul(pn[:, m0:m1, :RH], float(C), out=pd[:, m0:m1])
 
-    _pooled(run, range(0, M, step))
+    pooled(run, range(0, M, step))
     return pn, pd
 
 
@@ -821,7 +783,7 @@ class TiltBank:
                                                     np.full(b1 - b0, self.aspect[k]), empty_outside=empty_outside,
                                                     index=np.zeros(b1 - b0, np.int64))
 
-        _pooled(run, range(0, M, COPY_BLOCK))
+        pooled(run, range(0, M, COPY_BLOCK))
         return pc, vc
 
     def untilt(self, k: int, t: int, a: np.ndarray) -> np.ndarray:
@@ -865,7 +827,7 @@ class TiltBank:
         # the blocks run at once on the pool's threads: COARSE_ROWS objects over all of them (memory as one block)
         rows = max(1, COARSE_ROWS // torch.get_num_threads())
         with reused_scratch():  # the row blocks' temporaries in each thread's buffers, freed before the refinement
-            m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=rows, run=_pooled,
+            m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=rows, run=pooled,
                                           reuse=True)
         D = m.D.reshape(n, K, T0)
         bt = np.argmin(D, axis=2)
@@ -977,7 +939,7 @@ class TiltBank:
                     d = [product(prods[i]) for i in range(*span)]
                     return _best_shifts(torch.cat(d, 1) if len(d) > 1 else d[0])
 
-                best = _pooled(task, _runs([len(j[1]) * j[3] for j in jobs], TASK_PAIRS))  # runs over the threads
+                best = pooled(task, _runs([len(j[1]) * j[3] for j in jobs], TASK_PAIRS))  # runs over the threads
                 Db = np.concatenate([d for d, _ in best])  # (sum of |cols| nu) in the products' order
                 yb = np.concatenate([y for _, y in best])
                 c0 = 0
