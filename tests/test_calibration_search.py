@@ -20,6 +20,13 @@ def _world(tiny_world):
     return lib, st, P, V, np.asarray(lib.members["cluster"])
 
 
+def _coarse_bank(lib, P, V, cfg):
+    """The coarse tilt grid (N_side 1) and the prototypes' bank of copies on it."""
+    grid = TiltGrid(nsides=(1,), radial_margin=float(cfg["volume"]["radial_margin"]),
+                    height_margin=float(cfg["volume"]["height_margin"]))
+    return grid, TiltBank(P, V, lib.prototypes["aspect"], tuple(lib.scales), grid)
+
+
 def test_a_search_that_finds_every_view_upright_gives_the_mined_face_calibration(tiny_world):
     lib, st, P, V, labels = _world(tiny_world)
     cfg = tiny_world["cfg"]
@@ -41,9 +48,7 @@ def test_a_search_that_finds_every_view_upright_gives_the_mined_face_calibration
 def test_views_the_search_finds_on_another_face_are_calibrated_against_the_copy_there(tiny_world):
     lib, st, P, V, labels = _world(tiny_world)
     cfg = tiny_world["cfg"]
-    grid = TiltGrid(nsides=(1,), radial_margin=float(cfg["volume"]["radial_margin"]),
-                    height_margin=float(cfg["volume"]["height_margin"]))
-    bank = TiltBank(P, V, lib.prototypes["aspect"], tuple(lib.scales), grid)
+    grid, bank = _coarse_bank(lib, P, V, cfg)
     side = grid.dirs[4]                      # a direction of the coarse grid, far from +z
 
     def alternate(xs, ws, k):                # every other view of a prototype "found" lying on that side
@@ -69,9 +74,7 @@ def test_the_pooled_leave_one_out_prototypes_change_no_bit(tiny_world):
     import torch
     lib, st, P, V, labels = _world(tiny_world)
     cfg = tiny_world["cfg"]
-    grid = TiltGrid(nsides=(1,), radial_margin=float(cfg["volume"]["radial_margin"]),
-                    height_margin=float(cfg["volume"]["height_margin"]))
-    bank = TiltBank(P, V, lib.prototypes["aspect"], tuple(lib.scales), grid)
+    grid, bank = _coarse_bank(lib, P, V, cfg)
 
     def alternate(xs, ws, k):                # every other view "found" on a coarse direction far from +z
         up = np.tile([0.0, 0.0, 1.0], (len(xs), 1))

@@ -191,6 +191,26 @@ def _trilinear(padded: torch.Tensor, grid: np.ndarray) -> torch.Tensor:
                                            padding_mode="border", align_corners=True)[:, :, :, 0, 0]
 
 
+def _sample_coords(fk: np.ndarray, fj: np.ndarray, fi: np.ndarray, shape: tuple[int, int, int], dt) -> np.ndarray:
+    """``grid_sample`` coordinates (..., 3) from fractional cell indices ``fk`` (height), ``fj`` (azimuth, before
+    the one-bin wrap pad) and ``fi`` (radius) of a grid of ``shape`` (R, A, H), with align_corners: -1 and +1 are
+    the first and last samples' centres.  Height and radius are clamped to the grid; the inputs are overwritten."""
+    R, A, H = shape
+    grid = np.empty(fk.shape + (3,), dt)
+    for j, (f, n) in enumerate(((fk, H), (fj, A + 2), (fi, R))):
+        if n == 1:
+            grid[..., j] = 0.0
+            continue
+        if j == 1:
+            f += 1.0
+        else:
+            np.clip(f, 0.0, n - 1, out=f)
+        f *= 2.0 / (n - 1)
+        f -= 1.0
+        grid[..., j] = f
+    return grid
+
+
 def _grid_coords(x: np.ndarray, y: np.ndarray, z: np.ndarray, rho_max, z_max, shape: tuple[int, int, int], dt
                  ) -> tuple[np.ndarray, np.ndarray]:
     """``grid_sample`` coordinates (m, N, 3) (dtype ``dt``) of points x, y, z (m, N) (cast to ``dt``) of cylindrical
@@ -207,20 +227,7 @@ def _grid_coords(x: np.ndarray, y: np.ndarray, z: np.ndarray, rho_max, z_max, sh
     fj = phi / (2 * np.pi) * A - 0.5
     fk = z / z_max * H - 0.5
     inside = (fi <= R - 0.5) & (fk >= -0.5) & (fk <= H - 0.5)
-    # grid_sample's coordinates with align_corners: -1 and +1 are the first and last samples' centres
-    grid = np.empty(x.shape + (3,), dt)
-    for j, (f, n) in enumerate(((fk, H), (fj, A + 2), (fi, R))):
-        if n == 1:
-            grid[..., j] = 0.0
-            continue
-        if j == 1:
-            f += 1.0
-        else:
-            np.clip(f, 0.0, n - 1, out=f)
-        f *= 2.0 / (n - 1)
-        f -= 1.0
-        grid[..., j] = f
-    return grid, inside
+    return _sample_coords(fk, fj, fi, (R, A, H), dt), inside
 
 
 @dataclass
@@ -419,18 +426,7 @@ def _resample_inside(P: np.ndarray, V: np.ndarray, xyz: np.ndarray, aspect: np.n
     phi = np.arctan2(y, x)  # as _grid_coords
     np.add(phi, dt(2 * np.pi), out=phi, where=phi < 0)
     fj = phi / (2 * np.pi) * A - 0.5
-    grid = np.empty((len(flat), 3), dt)
-    for j, (f, n) in enumerate(((fk, H), (fj, A + 2), (fi, R))):
-        if n == 1:
-            grid[:, j] = 0.0
-            continue
-        if j == 1:
-            f += 1.0
-        else:
-            np.clip(f, 0.0, n - 1, out=f)
-        f *= 2.0 / (n - 1)
-        f -= 1.0
-        grid[:, j] = f
+    grid = _sample_coords(fk, fj, fi, (R, A, H), dt)
     pc = np.zeros((m, C, N), dt)
     v = np.zeros((m, N), dt)
     if empty_outside:
