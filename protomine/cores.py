@@ -32,6 +32,7 @@ from __future__ import annotations
 import contextlib
 import ctypes
 import os
+import threading
 
 _WORKER = False  # True in a worker process of an executor (set by enter_worker)
 
@@ -235,15 +236,7 @@ def large_blocks_mapped(threshold: int = TILT_MMAP_THRESHOLD):
 
 _SCRATCH: dict[tuple[int, str, object], object] = {}  # (thread, name, dtype) -> flat torch tensor
 _SCRATCH_DEPTH = 0  # open reused_scratch() scopes
-_SCRATCH_LOCK = None
-
-
-def _scratch_lock():
-    global _SCRATCH_LOCK
-    if _SCRATCH_LOCK is None:
-        import threading
-        _SCRATCH_LOCK = threading.Lock()
-    return _SCRATCH_LOCK
+_SCRATCH_LOCK = threading.Lock()  # guards _SCRATCH_DEPTH and the registration of new buffers
 
 
 @contextlib.contextmanager
@@ -263,12 +256,12 @@ def reused_scratch():
     (146 s): the faults cost system time only.  A scope ends with its call (a coarse level, a refinement, an
     aligned-sums result), so the buffers add nothing to the memory between them."""
     global _SCRATCH_DEPTH
-    with _scratch_lock():
+    with _SCRATCH_LOCK:
         _SCRATCH_DEPTH += 1
     try:
         yield
     finally:
-        with _scratch_lock():
+        with _SCRATCH_LOCK:
             _SCRATCH_DEPTH -= 1
             if _SCRATCH_DEPTH == 0:
                 _SCRATCH.clear()
@@ -278,8 +271,6 @@ def scratch(name: str, shape: tuple[int, ...], dtype=None):
     """An uninitialised torch tensor of ``shape`` (``dtype``, float32 by default): inside :func:`reused_scratch`, a
     view of the calling thread's buffer ``name`` (valid until this thread asks for ``name`` again: only for
     temporaries that do not outlive their block), else a fresh ``torch.empty``."""
-    import threading
-
     import torch
     dtype = torch.float32 if dtype is None else dtype
     n = 1
@@ -291,7 +282,7 @@ def scratch(name: str, shape: tuple[int, ...], dtype=None):
     buf = _SCRATCH.get(key)
     if buf is None or buf.numel() < n:
         buf = torch.empty(n, dtype=dtype)
-        with _scratch_lock():
+        with _SCRATCH_LOCK:
             if _SCRATCH_DEPTH:
                 _SCRATCH[key] = buf
     return buf[:n].view(shape)
