@@ -628,7 +628,9 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
                    None if ts is None else ts.tilt, None if ts is None else ts.aspect)
 
 
-HELD_UPDATES = 1  # prototype updates with the labels held fixed after the seeding's own (_held_fit)
+HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seeding's own (_held_fit); demo seed 0
+# with seed_check, 1 -> 3: accuracy 0.844 -> 0.836, unknown AUROC 0.908 -> 0.934, symmetry right 6 -> 7 of 8; seed 1
+# accuracy 0.908 -> 0.916, AUROC 0.881 -> 0.885 (the partition, and so purity, is the same)
 
 
 def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, *, scales, chunk_size: int,
