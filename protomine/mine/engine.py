@@ -35,7 +35,9 @@ Algorithm
    best scale +-1 only (3 of the default 5 scales).
 3. ``n_init`` restarts, the lowest final cost wins.  When N > ``sample_size`` the restarts run on the
    subsample and only the winner is iterated on all objects (restarts on everything would multiply the
-   cost of a large fit by n_init).
+   cost of a large fit by n_init).  With ``seed_check`` (and ``face_pairs``) each restart's partition is judged by
+   its k-medoids cost on the stable-face seeding matrix instead, and the seed partition itself, its labels held
+   (:func:`_held_fit`), is kept when the passes did not lower that cost.
 4. Symmetry (``symmetry.detect_symmetry``: each prototype's asymmetry under candidate rotations against
    the variance of its mean from the members' aligned moments) and the canonical yaw rule: prototypes
    are rolled into their canonical frame and member yaws are reported in it, modulo the symmetry period
