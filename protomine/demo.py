@@ -232,7 +232,7 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
             f"({stereo:.0%} with active-stereo depth)")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, width=size[0], height=size[1], seed=seed,
                           family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
-                          stereo_fraction=stereo, progress=say, executor=executor)
+                          touching=cfg["scenes"]["touching"], stereo_fraction=stereo, progress=say, executor=executor)
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))

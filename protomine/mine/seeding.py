@@ -32,6 +32,7 @@ Public API
 - ``pairwise_pose_distances(X, W, distance=None, *, scales=(1.0,), progress=None) -> S``
 - ``kmedoids_plusplus(S, K, rng) -> medoids (K,)``
 - ``best_kmedoids(S, K, rng, starts=KMEDOIDS_STARTS) -> (labels, cost)``
+- ``medoid_cost(S, labels) -> float``: the k-medoids cost of any partition (each cluster's best medoid)
 - ``outlying(S) -> (n,) bool``: objects far from every other one (Tukey's fence on nearest-neighbour distances)
 - ``FaceDistance(aspect, scales, grid)``: a ``distance`` over yaw x scale x each prototype's stable resting
   directions (``faces.stable_ups``, exact directions instead of a tilt grid; ``[mine] face_pairs``)
@@ -224,6 +225,15 @@ def best_kmedoids(S: np.ndarray, K: int, rng: np.random.Generator, starts: int =
         if run[1] < best[1] - 1e-12:
             best = run
     return best
+
+
+def medoid_cost(S: np.ndarray, labels: np.ndarray) -> float:
+    """The k-medoids cost of a partition labels (n,) of the (n, n) distance matrix S: per cluster, the least summed
+    distance of one member (its medoid) to the others, summed over the clusters (Kaufman & Rousseeuw 1990, the
+    objective :func:`kmedoids` lowers; any labels, empty clusters cost nothing)."""
+    labels = np.asarray(labels)
+    return float(sum(S[np.ix_(m, m)].sum(axis=1).min() for k in np.unique(labels)
+                     for m in (np.flatnonzero(labels == k),)))
 
 
 OUTLIER_FENCE = 1.5  # Tukey's inner fence: Q3 + 1.5 IQR

@@ -1,0 +1,125 @@
+"""The fit that keeps its seed partition (``[mine] seed_check``: ``seeding.medoid_cost``, ``engine._held_fit``).
+
+References: the k-medoids objective, each cluster's summed distance to its best medoid (Kaufman & Rousseeuw 1990,
+"Finding groups in data", from memory), written out here by brute force over every candidate medoid; the prototype
+update of k-means on rolled volumes, the observation-weighted mean of the members rolled back by their yaw (common
+practice), written with ``numpy.roll``; the adjusted Rand index of scikit-learn.
+"""
+from __future__ import annotations
+
+import numpy as np
+from sklearn.metrics import adjusted_rand_score
+
+from protomine.mine.engine import ArraySource, PoseKMeans, _held_fit
+from protomine.mine.seeding import FaceDistance, medoid_cost, pairwise_pose_distances
+from protomine.mine.tilts import TiltGrid
+
+A = 36
+
+
+def _brute_medoid_cost(S: np.ndarray, labels: np.ndarray) -> float:
+    total = 0.0
+    for k in set(labels.tolist()):
+        members = [i for i in range(len(S)) if labels[i] == k]
+        total += min(sum(S[m, j] for j in members) for m in members)
+    return total
+
+
+def test_medoid_cost_is_the_k_medoids_objective_of_any_partition():
+    rng = np.random.default_rng(3)
+    pts = rng.normal(size=(17, 2))
+    S = np.linalg.norm(pts[:, None] - pts[None], axis=2)
+    for _ in range(5):
+        labels = rng.integers(0, 4, 17)
+        assert np.isclose(medoid_cost(S, labels), _brute_medoid_cost(S, labels))
+    # one cluster of everything costs the 1-medoid sum; singletons cost nothing
+    assert np.isclose(medoid_cost(S, np.zeros(17, int)), S.sum(axis=1).min())
+    assert medoid_cost(S, np.arange(17)) == 0.0
+
+
+def test_held_fit_keeps_the_labels_and_averages_the_members_rolled_back():
+    # two invented profiles on a (C 2, R 3, A 36, H 2) grid, each object a whole-bin yaw of its class's profile
+    rng = np.random.default_rng(0)
+    base = rng.random((2, 2, 3, A, 2)).astype(np.float32)
+    truth = np.repeat([0, 1], 6)
+    yaws = rng.integers(0, A, len(truth))
+    X = np.stack([np.roll(base[k], s, axis=2) for k, s in zip(truth, yaws)]).astype(np.float32)
+    X += 0.01 * rng.standard_normal(X.shape).astype(np.float32)
+    X[::2] += 0.2  # every other object brighter: where it is seen less, the weighted mean is darker
+    W = np.ones((len(X),) + X.shape[2:], np.float32)
+    W[::2, :, :A // 2] = 0.2  # ... on the half of its azimuth it is seen less
+    start = base  # each class's profile as it is: its members' poses against it are their yaws
+    fit = lambda labels: _held_fit(ArraySource(X, W), labels, start, np.ones((2,) + X.shape[2:], np.float32),  # noqa: E731
+                                   scales=(1.0,), chunk_size=64, moments=True, cache=None, grid=None, aspect=None)
+    given = truth.copy()
+    given[[0, 7]] = [1, 0]  # not the partition a Lloyd pass would reach: held anyway
+    assert np.array_equal(fit(given).labels, given)
+    given = truth
+    res = fit(given)
+    # the update's poses were found against the start, the reported ones against the update: the same whole bins
+    shift = np.round(np.asarray(res.yaw) / (360.0 / A)).astype(int)
+    np.testing.assert_allclose(np.asarray(res.yaw)[given == truth], (yaws * 360.0 / A)[given == truth], atol=1.0)
+    for k in range(2):
+        m = np.flatnonzero(given == k)
+        xa = np.stack([np.roll(X[i], -shift[i], axis=2) for i in m])
+        wa = np.stack([np.roll(W[i], -shift[i], axis=1) for i in m])
+        ref = (wa[:, None] * xa).sum(axis=0) / wa.sum(axis=0)[None]
+        # within the sub-bin yaw's interpolation; the unweighted mean lies ~0.05 away
+        np.testing.assert_allclose(res.P[k], ref, atol=5e-3)
+        assert np.abs(xa.mean(axis=0) - ref).max() > 0.03
+
+
+def _boxes(rng, n_each=6):
+    """Two invented box-like classes, each object resting on one of its class's stable faces (as
+    ``test_stable_faces``), random yaw, a little noise."""
+    from protomine.mine.faces import stable_ups
+    from protomine.mine.posesearch import shift_volume
+    from protomine.mine.tilts import _cell_points, _resample_copies, copy_geometries, solid_points
+    r, a, h, asp = 8, A, 12, 1.0
+    x, y, z = _cell_points(r, a, h, 1.0, asp).T
+    shapes = [(np.abs(x) < 0.6) & (np.abs(y) < 0.25) & (z > 0.1) & (z < 0.4),
+              ((np.abs(x) < 0.3) & (np.abs(y) < 0.3) & (z > 0.05) & (z < 0.9)) | ((np.hypot(x, y) < 0.15) & (z > 0.05))]
+    grid = TiltGrid(nsides=(1,), radial_margin=1.15, height_margin=1.10)
+    X, W, aspect, labels = [], [], [], []
+    for k, s in enumerate(shapes):
+        surf = s.reshape(r, a, h).astype(np.float32)
+        P, V = np.stack([surf, 0.5 * surf])[None], np.ones((1, r, a, h), np.float32)
+        ups = stable_ups(surf, V[0], asp)[:3]
+        gs = copy_geometries((r, a, h), asp, ups, grid, solid_points(surf, V[0], asp, grid))
+        pc, vc = _resample_copies(np.repeat(P, len(gs), 0), np.repeat(V, len(gs), 0), gs, np.full(len(gs), asp))
+        for i in range(n_each):
+            f, yaw = i % len(gs), rng.uniform(0, a)
+            X.append(shift_volume(pc[f][None], yaw, axis=3)[0] + 0.05 * rng.standard_normal(pc[f].shape).astype(np.float32))
+            W.append(shift_volume(vc[f][None], yaw, axis=2)[0])
+            aspect.append(gs[f].z_max / gs[f].rho_max)
+            labels.append(k)
+    return np.clip(np.stack(X), 0, 1).astype(np.float32), np.stack(W).astype(np.float32), np.array(aspect), \
+        np.array(labels), grid
+
+
+def test_seed_check_keeps_the_partition_of_lower_stable_face_cost(monkeypatch):
+    # the fit is made to drift (its passes' partition has two objects swapped between the classes, as the tilt-grid
+    # passes moved a spool and an L bracket on touching stores): the check keeps the seed partition, the plain fit
+    # keeps the drift
+    from protomine.mine import engine
+    rng = np.random.default_rng(1)
+    X, W, aspect, truth, grid = _boxes(rng)
+    src = ArraySource(X, W, aspect)
+    lloyd = engine._lloyd
+
+    def drifting(*args, **kwargs):
+        res = lloyd(*args, **kwargs)
+        a, b = np.flatnonzero(res.labels == 0)[0], np.flatnonzero(res.labels == 1)[0]
+        res.labels[[a, b]] = res.labels[[b, a]]
+        return res
+
+    monkeypatch.setattr(engine, "_lloyd", drifting)
+    common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True)
+    plain = PoseKMeans(**common).fit(src)
+    kept = PoseKMeans(seed_check=True, **common).fit(src)
+    S = pairwise_pose_distances(X, W, FaceDistance(aspect, (1.0,), grid))
+    # the one objective: the kept partition's k-medoids cost on the stable-face matrix is below the drifted one's
+    assert medoid_cost(S, kept.labels_) < medoid_cost(S, plain.labels_)
+    assert adjusted_rand_score(truth, kept.labels_) == 1.0  # scikit-learn: the two classes, across their faces
+    assert adjusted_rand_score(truth, plain.labels_) < 1.0
+    assert np.all(np.isfinite(kept.distance_)) and kept.prototypes_.shape == plain.prototypes_.shape
