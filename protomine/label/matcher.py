@@ -67,6 +67,7 @@ from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid
 from .. import rotations as rot
+from ..mine.viewnorm import ViewNormaliser
 from ..mine.viewsearch import ExactFaces, ViewSearch  # noqa: F401  (ExactFaces: the label search's part, re-exported)
 from ..rotations import matrix_to_quat
 
@@ -104,6 +105,7 @@ class Matcher:
     rings: tuple[int, float] | None = None
     refine_top: int = 0
     centre_offsets: tuple[float, ...] = ()
+    view_top: int = 0
     chunk_size: int = 512
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -111,6 +113,7 @@ class Matcher:
     groups: list[np.ndarray] = field(init=False)
     tilts: TiltGrid = field(init=False)
     tilt_ratios: np.ndarray | None = field(init=False)
+    normaliser: ViewNormaliser | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -123,6 +126,9 @@ class Matcher:
         self.search = ViewSearch(self.P, self.V, pr["aspect"], self.scales, self.tilts, pr["face_up"], pr["face_symmetry"],
                                  exact_faces=self.exact_faces, refine_top=self.refine_top, chunk_size=self.chunk_size)
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
+        self.normaliser = (ViewNormaliser(self.P, self.V, pr["aspect"], self.scales, self.tilts,
+                                          (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top)
+                           if self.view_top > 0 else None)
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
             self.search.set_views(pr["view_owner"], pr["view_features"], vv if self.weighted else np.ones_like(vv), self.scales)
@@ -136,15 +142,19 @@ class Matcher:
         X, W = matching_features(volumes, free_weight=self.free_weight, colour_weight=self.colour_weight)
         return X, (W if self.weighted else np.ones_like(W))
 
-    def match(self, volumes: np.ndarray) -> dict[str, np.ndarray]:
+    def match(self, volumes: np.ndarray, cameras: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
         (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
+        ``cameras`` (n, 3): each view's camera direction in its object frame (:func:`lift_frame`); with the
+        library's ``[mine] view_normalise_top`` the decision distances of each view's nearest prototypes also take
+        the copies gridded as seen from that camera (``mine.viewnorm``; None: not).
         Volumes (n, C, 6, R, A, H): C candidate object frames of each object (:func:`lift_frame` with
         ``centre_offsets``); per object and prototype the candidate at the least distance gives every figure,
         and ``centre`` (n, K) says which."""
         if volumes.ndim == 6:
             n, C = volumes.shape[:2]
-            m = self.match(volumes.reshape((n * C,) + volumes.shape[2:]))
+            m = self.match(volumes.reshape((n * C,) + volumes.shape[2:]),
+                           None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0))
             if n == 0:
                 return {**m, "centre": np.zeros((0, self.K), int)}
             D = m["distance"].reshape(n, C, self.K)
@@ -181,6 +191,8 @@ class Matcher:
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         # view prototypes (when the library has them) vote on the class; pose and score stay the 3-D prototype's
         D = self.search.vote(X, W, D)
+        if self.normaliser is not None and cameras is not None:  # the prototypes gridded as seen from the camera
+            D = self.normaliser.improve(X, W, D, up, cameras)
         if self.tilt_ratios is not None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, best_second_ratio(D), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
@@ -224,15 +236,17 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
              cut, weighted),
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
                  rings=score_rings(lib_cfg, grid.radial_bins), refine_top=int(m.get("label_refine_top", 0)),
-                 centre_offsets=view_centre_offsets(lib_cfg)))
+                 centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0))))
 
 
 @dataclass
 class FrameObjects:
-    """The objects found in one frame, lifted: volumes (n, 6, R, A, H) and their per-object facts."""
+    """The objects found in one frame, lifted: volumes (n, 6, R, A, H), their per-object facts and cameras (n, 3)
+    (the direction from each object's centre to the frame's camera, in its object frame: ``plane_basis(up)``)."""
     frame: str
     volumes: np.ndarray
     facts: list[dict]
+    cameras: np.ndarray | None = None
 
 
 def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool,
@@ -244,7 +258,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
     height = scene.capture.intrinsics.height
     fd = next((f for f in scene.frames if f.id == frame_id), None)
     mask = None if geometry_ids or fd is None or fd.mask is None else fd.mask.reshape(-1)
-    vols, facts = [], []
+    vols, facts, cams = [], [], []
     for p in scene.proposals:
         pix = p.pixels.get(frame_id)
         if pix is None or len(pix) < MIN_PIXELS:
@@ -257,6 +271,9 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
             vols.append(np.stack([lift(views, f, grid) for f in frames]))
         else:
             vols.append(lift(views, p.frame, grid))
+        centre = np.asarray(p.frame.origin, np.float64) + 0.5 * float(p.frame.height) * np.asarray(p.frame.up, np.float64)
+        cams.append(plane_basis(np.asarray(p.frame.up, np.float64)) @ (fd.cam_to_world[:3, 3] - centre)
+                    if fd is not None else np.zeros(3))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
         # the picture's extent: the whole mask region when masks name the object (pixels without a depth
@@ -270,7 +287,9 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
     R, A, H = grid.shape
     stack = np.stack(vols) if vols else np.zeros((0,) + ((len(centre_offsets),) if centre_offsets else ()) + (6, R, A, H),
                                                    np.float32)
-    return FrameObjects(frame_id, stack, facts)
+    cam = np.asarray(cams, np.float64).reshape(-1, 3)
+    cam = cam / np.maximum(np.linalg.norm(cam, axis=1, keepdims=True), 1e-12)
+    return FrameObjects(frame_id, stack, facts, cam)
 
 
 def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.ndarray]) -> list[dict]:
@@ -429,7 +448,8 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
     if not lifted:
         return []
     t0 = time.perf_counter()
-    m = matcher.match(np.concatenate([fo.volumes for _, fo in lifted]))
+    m = matcher.match(np.concatenate([fo.volumes for _, fo in lifted]),
+                      np.concatenate([fo.cameras for _, fo in lifted]))
     st["match_s"] += time.perf_counter() - t0
     out, i0 = [], 0
     for cap_name, fo in lifted:
