@@ -12,7 +12,8 @@ from sklearn.metrics import adjusted_rand_score
 
 from protomine.mine.engine import ArraySource, PoseKMeans, _held_fit
 from protomine.mine.seeding import FaceDistance, medoid_cost, pairwise_pose_distances
-from protomine.mine.tilts import TiltGrid
+
+from box_classes import resting_boxes
 
 A = 36
 
@@ -69,41 +70,13 @@ def test_held_fit_keeps_the_labels_and_averages_the_members_rolled_back():
         assert np.abs(xa.mean(axis=0) - ref).max() > 0.03
 
 
-def _boxes(rng, n_each=6):
-    """Two invented box-like classes, each object resting on one of its class's stable faces (as
-    ``test_stable_faces``), random yaw, a little noise."""
-    from protomine.mine.faces import stable_ups
-    from protomine.mine.posesearch import shift_volume
-    from protomine.mine.tilts import _cell_points, _resample_copies, copy_geometries, solid_points
-    r, a, h, asp = 8, A, 12, 1.0
-    x, y, z = _cell_points(r, a, h, 1.0, asp).T
-    shapes = [(np.abs(x) < 0.6) & (np.abs(y) < 0.25) & (z > 0.1) & (z < 0.4),
-              ((np.abs(x) < 0.3) & (np.abs(y) < 0.3) & (z > 0.05) & (z < 0.9)) | ((np.hypot(x, y) < 0.15) & (z > 0.05))]
-    grid = TiltGrid(nsides=(1,), radial_margin=1.15, height_margin=1.10)
-    X, W, aspect, labels = [], [], [], []
-    for k, s in enumerate(shapes):
-        surf = s.reshape(r, a, h).astype(np.float32)
-        P, V = np.stack([surf, 0.5 * surf])[None], np.ones((1, r, a, h), np.float32)
-        ups = stable_ups(surf, V[0], asp)[:3]
-        gs = copy_geometries((r, a, h), asp, ups, grid, solid_points(surf, V[0], asp, grid))
-        pc, vc = _resample_copies(np.repeat(P, len(gs), 0), np.repeat(V, len(gs), 0), gs, np.full(len(gs), asp))
-        for i in range(n_each):
-            f, yaw = i % len(gs), rng.uniform(0, a)
-            X.append(shift_volume(pc[f][None], yaw, axis=3)[0] + 0.05 * rng.standard_normal(pc[f].shape).astype(np.float32))
-            W.append(shift_volume(vc[f][None], yaw, axis=2)[0])
-            aspect.append(gs[f].z_max / gs[f].rho_max)
-            labels.append(k)
-    return np.clip(np.stack(X), 0, 1).astype(np.float32), np.stack(W).astype(np.float32), np.array(aspect), \
-        np.array(labels), grid
-
-
 def test_seed_check_keeps_the_partition_of_lower_stable_face_cost(monkeypatch):
     # the fit is made to drift (its passes' partition has two objects swapped between the classes, as the tilt-grid
     # passes moved a spool and an L bracket on touching stores): the check keeps the seed partition, the plain fit
     # keeps the drift
     from protomine.mine import engine
     rng = np.random.default_rng(1)
-    X, W, aspect, truth, grid = _boxes(rng)
+    X, W, aspect, truth, grid = resting_boxes(rng, 6, A)
     src = ArraySource(X, W, aspect)
     lloyd = engine._lloyd
 

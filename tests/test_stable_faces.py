@@ -17,6 +17,8 @@ from protomine.mine.posesearch import pose_distances_naive
 from protomine.mine.seeding import FaceDistance
 from protomine.mine.tilts import TiltGrid, _cell_points, _resample_copies, copy_geometries, solid_points
 
+from box_classes import resting_boxes
+
 R, A, H, ASPECT = 16, 72, 24, 0.6
 
 
@@ -92,30 +94,8 @@ def test_choose_k_on_the_stable_face_matrix_joins_each_class_across_its_faces():
     # yaw: the stable-face matrix's groups are the two classes (the statics above), the yaw-only matrix's are not
     from protomine.mine.choosek import choose_k
     from protomine.mine.engine import ArraySource
-    from protomine.mine.posesearch import shift_volume
     rng = np.random.default_rng(1)
-    r, a, h, asp = 8, 36, 12, 1.0
-    pts = _cell_points(r, a, h, 1.0, asp)
-    x, y, z = pts.T
-    shapes = [(np.abs(x) < 0.6) & (np.abs(y) < 0.25) & (z > 0.1) & (z < 0.4),
-              ((np.abs(x) < 0.3) & (np.abs(y) < 0.3) & (z > 0.05) & (z < 0.9)) | ((np.hypot(x, y) < 0.15) & (z > 0.05))]
-    grid = TiltGrid(nsides=(1,), radial_margin=1.15, height_margin=1.10)
-    X, W, aspect, labels = [], [], [], []
-    for k, s in enumerate(shapes):
-        surf = s.reshape(r, a, h).astype(np.float32)
-        P = np.stack([surf, 0.5 * surf])[None]
-        V = np.ones((1, r, a, h), np.float32)
-        ups = stable_ups(surf, V[0], asp)[:3]
-        gs = copy_geometries((r, a, h), asp, ups, grid, solid_points(surf, V[0], asp, grid))
-        pc, vc = _resample_copies(np.repeat(P, len(gs), 0), np.repeat(V, len(gs), 0), gs, np.full(len(gs), asp))
-        for i in range(9):
-            f = i % len(gs)
-            yaw = rng.uniform(0, a)
-            X.append(shift_volume(pc[f][None], yaw, axis=3)[0] + 0.05 * rng.standard_normal(pc[f].shape).astype(np.float32))
-            W.append(shift_volume(vc[f][None], yaw, axis=2)[0])
-            aspect.append(gs[f].z_max / gs[f].rho_max)
-            labels.append(k)
-    X, W = np.clip(np.stack(X), 0, 1).astype(np.float32), np.stack(W).astype(np.float32)
+    X, W, aspect, _, grid = resting_boxes(rng, 9)
     src = ArraySource(X, W, np.array(aspect))
     k_faces, _ = choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect))
     assert k_faces == 2
