@@ -241,17 +241,22 @@ class CopyGeometry:
     z_max: float
 
 
-def solid_points(surface: np.ndarray, weight: np.ndarray, aspect: float, grid: TiltGrid) -> tuple[np.ndarray, np.ndarray]:
-    """Centre c0 (3,) of a volume (surface, weight (R, A, H)) and its solid cells' centres about c0 (m, 3),
-    reduced to their convex hull's vertices (the extents and the enclosing circle of any rotation of the
-    points are those of the hull's vertices)."""
+def solid_cells(surface: np.ndarray, weight: np.ndarray, aspect: float, grid: TiltGrid) -> tuple[np.ndarray, np.ndarray]:
+    """Centre c0 (3,) of a volume (surface, weight (R, A, H), grid aspect) and its solid cells' centres about c0
+    (m, 3), in units of the volume's rho_max (every cell when fewer than 4 are solid)."""
     R, A, H = surface.shape
     pts = _cell_points(R, A, H, 1.0, aspect)
     occ = ((surface >= SURFACE_MIN) & (weight >= OBSERVED_MIN)).reshape(-1)
     if occ.sum() < 4:  # nothing solid seen: the whole bounding cylinder stands for the object
         occ = np.ones(len(pts), bool)
     c0 = np.array([0.0, 0.0, 0.5 * aspect / grid.height_margin])
-    p = pts[occ] - c0
+    return c0, pts[occ] - c0
+
+
+def solid_points(surface: np.ndarray, weight: np.ndarray, aspect: float, grid: TiltGrid) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`solid_cells` reduced to their convex hull's vertices (the extents and the enclosing circle of any
+    rotation of the points are those of the hull's vertices)."""
+    c0, p = solid_cells(surface, weight, aspect, grid)
     try:
         p = p[ConvexHull(p).vertices]
     except QhullError:  # flat or degenerate: keep every point

@@ -11,7 +11,7 @@ pose (the true class at its true pose was farther than the winner), one was a se
 
 This module gives the reference the same normalisation (analysis by synthesis, with the camera known): for a
 prototype resting on a face (up direction u in its frame) and seen from a camera direction c (in the copy's
-frame), its solid cells (``tilts.SURFACE_MIN``, ``tilts.OBSERVED_MIN``) are rotated onto the face and projected
+frame), its solid cells (``tilts.solid_cells``) are rotated onto the face and projected
 orthographically along c onto a pixel grid of ``pixel`` cells; a cell is visible when it lies within ``depth_tol``
 cells of the nearest cell of its pixel (a z-buffer).  The copy's base centre and footprint radius are the smallest
 enclosing circle of the visible cells (``min_enclosing_circle``), its height the highest visible cell above the
@@ -34,21 +34,9 @@ import numpy as np
 from .. import rotations as rot
 from ..ingest.proposals import min_enclosing_circle
 from .posesearch import PoseBank
-from .tilts import IDENTITY_DEG, OBSERVED_MIN, SURFACE_MIN, CopyGeometry, TiltGrid, _cell_points, _resample_copies
+from .tilts import IDENTITY_DEG, CopyGeometry, TiltGrid, _resample_copies, solid_cells
 
 SAME_FACE_DEG = 10.0     # resting directions this close are searched once
-
-
-def solid_cells(surface: np.ndarray, weight: np.ndarray, aspect: float, grid: TiltGrid) -> tuple[np.ndarray, np.ndarray]:
-    """Centre c0 (3,) of a volume (surface, weight (R, A, H), grid aspect) and its solid cells' centres about c0
-    (m, 3) (every cell when fewer than 4 are solid), in units of the volume's rho_max."""
-    R, A, H = surface.shape
-    pts = _cell_points(R, A, H, 1.0, aspect)
-    occ = ((surface >= SURFACE_MIN) & (weight >= OBSERVED_MIN)).reshape(-1)
-    if occ.sum() < 4:
-        occ = np.ones(len(pts), bool)
-    c0 = np.array([0.0, 0.0, 0.5 * aspect / grid.height_margin])
-    return c0, pts[occ] - c0
 
 
 def visible_mask(q: np.ndarray, camera: np.ndarray, pixel: float, depth_tol: float, splat: int = 1) -> np.ndarray:
