@@ -7,7 +7,8 @@ from __future__ import annotations
 import numpy as np
 
 from protomine.mine.tilts import TiltGrid
-from protomine.mine.viewnorm import ViewNormaliser, face_candidates, visible_geometry, visible_mask
+from protomine.mine.viewnorm import (ViewNormaliser, face_candidates, object_factors, shifted_distances,
+                                      visible_geometry, visible_mask, visible_masks)
 from test_tilts import MARGINS, _solid, _volume
 
 GRID_T = TiltGrid(nsides=(1,), radial_margin=MARGINS[0], height_margin=MARGINS[1])
@@ -77,3 +78,110 @@ def test_a_view_lifted_about_its_visible_part_fits_its_view_normalised_prototype
     assert out[0, 0] < 0.7 * plain, (out, plain)
     # no camera: nothing changes
     assert norm.improve(X[None], Wv[None], D, np.array([[[0.0, 0.0, 1.0]]]), np.zeros((1, 3)))[0, 0] == plain
+
+
+# --- the fast path against its definition -------------------------------------------------------------------
+
+def _zbuffer_by_points(q: np.ndarray, camera: np.ndarray, pixel: float, depth_tol: float, splat: int = 1) -> np.ndarray:
+    """The z-buffer written out point by point (the definition in ``visible_mask``'s docstring): a point is seen
+    when no point whose pixel lies within ``splat`` pixels of its own is nearer the camera by more than
+    ``depth_tol``.  The image plane: e1 = d x a (a = x, or y when d is near x), e2 = d x e1."""
+    d = camera / np.linalg.norm(camera)
+    a = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = np.cross(d, a)
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(d, e1)
+    pix = [(int(np.floor(p @ e1 / pixel)), int(np.floor(p @ e2 / pixel))) for p in q]
+    depth = [float(p @ d) for p in q]
+    out = []
+    for i, (pi, di) in enumerate(zip(pix, depth)):
+        hidden = any(abs(pj[0] - pi[0]) <= splat and abs(pj[1] - pi[1]) <= splat and dj > di + depth_tol
+                     for pj, dj in zip(pix, depth))
+        out.append(not hidden)
+    return np.array(out)
+
+
+def test_visible_masks_of_many_cameras_equal_the_point_by_point_zbuffer():
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        q = rng.normal(size=(int(rng.integers(2, 60)), 3))
+        cams = rng.normal(size=(4, 3))
+        pixel, tol = float(rng.uniform(0.1, 0.6)), float(rng.uniform(0.0, 0.3))
+        many = visible_masks(q, cams, pixel, tol)
+        for c, m in zip(cams, many):
+            assert np.array_equal(m, _zbuffer_by_points(q, c, pixel, tol))
+            assert np.array_equal(m, visible_mask(q, c, pixel, tol))
+
+
+def _random_pair(rng: np.random.Generator, n: int = 3):
+    """A view (C, R, A, H), (R, A, H) with unseen cells and n copies (n, C, R, A, H), (n, R, A, H) with unknown ones."""
+    C, (R, A, H) = 3, (4, 12, 5)
+    x = rng.random((C, R, A, H), dtype=np.float32)
+    w = (rng.random((R, A, H)) * (rng.random((R, A, H)) > 0.3)).astype(np.float32)
+    pc = rng.random((n, C, R, A, H), dtype=np.float32)
+    vc = (rng.random((n, R, A, H)) * (rng.random((n, R, A, H)) > 0.2)).astype(np.float32)
+    return x, w, pc, vc
+
+
+def test_shifted_distances_follow_the_definition_and_the_fft_search():
+    from protomine.mine.posesearch import EPS, PoseBank, scale_prototypes
+    rng = np.random.default_rng(4)
+    x, w, pc, vc = _random_pair(rng)
+    scales = (0.9, 1.0, 1.12)
+    d = shifted_distances(object_factors(x, w), pc, vc, scales)          # (n, S, A)
+    # the definition (posesearch's module docstring), in float64: the copy scaled, rolled by s (roll(a, s)[j] =
+    # a[j - s]), D = sum w v |x - mu|^2 / (C sum w v + eps)
+    Ps, Vs = scale_prototypes(pc, vc, scales)
+    C, A = x.shape[0], x.shape[2]
+    ref = np.empty(d.shape)
+    for i in range(len(pc)):
+        for si in range(len(scales)):
+            for s in range(A):
+                mu = np.roll(Ps[i, si].astype(np.float64), s, axis=2)
+                v = np.roll(Vs[i, si].astype(np.float64), s, axis=1)
+                den = C * (w * v).sum()
+                ref[i, si, s] = np.inf if den <= C * 1e-3 else (w * v * ((x - mu) ** 2).sum(0)).sum() / (den + EPS)
+    assert np.array_equal(np.isinf(d), np.isinf(ref))
+    f = np.isfinite(ref)
+    assert f.mean() > 0.9
+    np.testing.assert_allclose(d[f], ref[f], rtol=1e-4)
+    # the FFT search over every shift (the slow path this replaces) gives the same distances
+    fft = PoseBank(pc, vc, scales).match(x[None], w[None], return_all=True).all_D[0]   # (n, S, A)
+    np.testing.assert_allclose(d[f], fft[f], rtol=1e-4)
+
+
+def _reference_distance(norm: ViewNormaliser, x, w, k, ups, camera) -> float:
+    """The view-normalised distance as first written: one copy per face and yaw step (``visible_geometry`` each),
+    every copy matched at every shift by the FFT pose search (``PoseBank``), the shifts within the yaw window
+    of the copy's own yaw kept."""
+    from protomine.mine.posesearch import PoseBank
+    from protomine.mine.tilts import _resample_copies
+    from protomine import rotations as rot
+    y0 = np.arange(0.0, 360.0, norm.yaw_step)
+    cams = rot.yaw_matrix(-y0) @ camera
+    gs = [visible_geometry(norm.P[k, 0], norm.V[k], float(norm.aspect[k]), u, c, norm.grid) for u in ups for c in cams]
+    pc, vc = _resample_copies(norm.P[k][None], norm.V[k][None], gs, np.full(len(gs), float(norm.aspect[k])),
+                              index=np.zeros(len(gs), np.int64))
+    allD = PoseBank(pc, vc, norm.scales).match(x, w, return_all=True).all_D[0]
+    A = allD.shape[-1]
+    made = np.tile(y0, len(ups))
+    ok = np.abs((np.arange(A)[None] * 360.0 / A - made[:, None] + 180.0) % 360.0 - 180.0) <= norm.yaw_window + 1e-9
+    return float(np.where(ok[:, None, :] & np.isfinite(allD), allD, np.inf).min())
+
+
+def test_view_normalised_distance_equals_the_copy_by_copy_search():
+    rng = np.random.default_rng(5)
+    pts, part = _solid("tee", rng)
+    P, V, aspect = _volume(pts, part)
+    front = pts[:, 1] < 0.0                                   # a view of the half facing -y
+    X, _, _ = _volume(pts[front], part[front])
+    Wv = np.where(X[0] > 0.05, 1.0, 0.3).astype(np.float32)
+    faces = (np.array([[[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]]]), np.array([[2, 1]]), np.array([[1, 1]]))
+    norm = ViewNormaliser(P[None], V[None], np.array([aspect]), (0.9, 1.0, 1.1), GRID_T, faces, top=1)
+    ups = face_candidates(np.array([0.0, 1.0, 0.0]), *(f[0] for f in faces))
+    assert len(ups) == 3                                      # found (+y), +z and the recorded +x
+    for cam in (np.array([0.0, -1.0, 0.4]), np.array([0.3, -1.0, 0.05]), np.array([0.0, 0.0, 1.0])):
+        cam = cam / np.linalg.norm(cam)
+        fast = norm.distance(X[None], Wv[None], 0, ups, cam)
+        ref = _reference_distance(norm, X[None], Wv[None], 0, ups, cam)
+        assert np.isfinite(ref) and abs(fast - ref) <= 1e-4 * ref, (fast, ref)

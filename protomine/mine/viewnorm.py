@@ -30,13 +30,26 @@ stay those of the pose search (the score's calibration judges the plain distance
 from __future__ import annotations
 
 import numpy as np
+import torch
 
 from .. import rotations as rot
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import PoseBank
+from .posesearch import EPS, scale_prototypes
 from .tilts import IDENTITY_DEG, CopyGeometry, TiltGrid, _resample_copies, solid_cells
 
 SAME_FACE_DEG = 10.0     # resting directions this close are searched once
+
+
+def _projection(q: np.ndarray, camera: np.ndarray, pixel: float) -> tuple[np.ndarray, np.ndarray]:
+    """Pixel indices (m, 2) int64 and depths (m,) of points q (m, 3) seen from direction ``camera`` (3,): an
+    orthographic image plane across the line of sight, pixels of side ``pixel`` (:func:`visible_mask`)."""
+    d = np.asarray(camera, np.float64)
+    d = d / max(float(np.linalg.norm(d)), 1e-12)
+    a = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
+    e1 = np.cross(d, a)
+    e1 /= np.linalg.norm(e1)
+    e2 = np.cross(d, e1)
+    return np.floor(np.stack([q @ e1, q @ e2], 1) / pixel).astype(np.int64), q @ d
 
 
 def visible_mask(q: np.ndarray, camera: np.ndarray, pixel: float, depth_tol: float, splat: int = 1) -> np.ndarray:
@@ -44,23 +57,35 @@ def visible_mask(q: np.ndarray, camera: np.ndarray, pixel: float, depth_tol: flo
     ``pixel``, the points within ``depth_tol`` of the nearest point to the camera; each point also occludes the
     pixels within ``splat`` of its own, so the gaps between the sparse cell centres of a surface do not show what
     lies behind it)."""
-    d = np.asarray(camera, np.float64)
-    d = d / max(float(np.linalg.norm(d)), 1e-12)
-    a = np.array([1.0, 0.0, 0.0]) if abs(d[0]) < 0.9 else np.array([0.0, 1.0, 0.0])
-    e1 = np.cross(d, a)
-    e1 /= np.linalg.norm(e1)
-    e2 = np.cross(d, e1)
-    ij = np.floor(np.stack([q @ e1, q @ e2], 1) / pixel).astype(np.int64)
-    if not len(ij):
-        return np.zeros(0, bool)
-    ij -= ij.min(axis=0) - splat
-    n0, n1 = (ij.max(axis=0) + splat + 1).tolist()
-    depth = q @ d
-    near = np.full((n0, n1), -np.inf)
+    return visible_masks(q, np.asarray(camera, np.float64)[None], pixel, depth_tol, splat)[0]
+
+
+def visible_masks(q: np.ndarray, cameras: np.ndarray, pixel: float, depth_tol: float, splat: int = 1) -> np.ndarray:
+    """(Y, m) bool: :func:`visible_mask` of points q (m, 3) from each of the directions ``cameras`` (Y, 3), all
+    images in one z-buffer: each point written once into its own pixel (the nearest depth per pixel), then
+    every pixel takes the nearest of the pixels within ``splat`` of it (the same maxima as writing each point into
+    all those pixels, with one scatter instead of (2 splat + 1)^2)."""
+    cams = np.asarray(cameras, np.float64).reshape(-1, 3)
+    Y, m = len(cams), len(q)
+    if not m:
+        return np.zeros((Y, 0), bool)
+    proj = [_projection(q, c, pixel) for c in cams]
+    ij = np.stack([p[0] for p in proj])                         # (Y, m, 2)
+    depth = np.stack([p[1] for p in proj])                      # (Y, m)
+    ij -= ij.min(axis=1, keepdims=True) - splat
+    n0, n1 = (ij.max(axis=(0, 1)) + splat + 1).tolist()
+    flat = (np.arange(Y)[:, None] * n0 + ij[..., 0]) * n1 + ij[..., 1]
+    own = np.full(Y * n0 * n1, -np.inf)
+    np.maximum.at(own, flat.reshape(-1), depth.reshape(-1))
+    own = own.reshape(Y, n0, n1)
+    near = own.copy()
     for di in range(-splat, splat + 1):
         for dj in range(-splat, splat + 1):
-            np.maximum.at(near, (ij[:, 0] + di, ij[:, 1] + dj), depth)
-    return depth >= near[ij[:, 0], ij[:, 1]] - depth_tol
+            if di or dj:   # near[i, j] = max over |di|, |dj| <= splat of own[i - di, j - dj]
+                np.maximum(near[:, max(di, 0):n0 + min(di, 0), max(dj, 0):n1 + min(dj, 0)],
+                           own[:, max(-di, 0):n0 + min(-di, 0), max(-dj, 0):n1 + min(-dj, 0)],
+                           out=near[:, max(di, 0):n0 + min(di, 0), max(dj, 0):n1 + min(dj, 0)])
+    return depth >= near.reshape(-1)[flat] - depth_tol
 
 
 def visible_geometry(surface: np.ndarray, weight: np.ndarray, aspect: float, up: np.ndarray, camera: np.ndarray,
@@ -69,20 +94,79 @@ def visible_geometry(surface: np.ndarray, weight: np.ndarray, aspect: float, up:
     """Geometry of the copy of a prototype (surface, weight (R, A, H), ``aspect``) resting with ``up`` (3,) pointing
     up, gridded about the footprint and height of its cells visible from ``camera`` (3,, the copy's frame);
     ``pixel`` and ``depth_tol`` in cells (module docstring); ``solid``: :func:`solid_cells` when known."""
-    R, A, H = surface.shape
-    c0, p = solid if solid is not None else solid_cells(surface, weight, aspect, grid)
+    solid = solid if solid is not None else solid_cells(surface, weight, aspect, grid)
+    rest = resting_cells(surface.shape, aspect, up, solid)
+    return visible_geometries(rest, np.asarray(camera, np.float64)[None], grid, pixel=pixel, depth_tol=depth_tol)[0]
+
+
+def resting_cells(shape: tuple[int, int, int], aspect: float, up: np.ndarray, solid: tuple[np.ndarray, np.ndarray]
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray, float, float]:
+    """The solid cells ``solid`` (:func:`solid_cells`) of a prototype (grid ``shape`` (R, A, H), ``aspect``) resting
+    with ``up`` (3,) pointing up: (M (3, 3), c0 (3,), the rotated cells q (m, 3), the lowest cell's height, half a
+    cell); the part of :func:`visible_geometry` that does not depend on the camera."""
+    R, A, H = shape
+    c0, p = solid
     u = np.asarray(up, np.float64)
     u = u / max(float(np.linalg.norm(u)), 1e-12)
     M = np.eye(3) if u[2] >= np.cos(np.deg2rad(IDENTITY_DEG)) else rot.tilt_matrix(u)
     q = p @ M.T
-    lo = float(q[:, 2].min())
-    half = 0.5 * max(1.0 / R, aspect / H)
-    qv = q[visible_mask(q, camera, pixel * 2 * half, depth_tol * 2 * half)]
-    centre, radius = min_enclosing_circle(qv[:, :2])
-    height = max(float(qv[:, 2].max()) - lo + half, 1e-3)
-    radius = max(radius + 0.5 * half, 1e-3)
-    base = np.array([centre[0], centre[1], lo - 0.5 * half])
-    return CopyGeometry(M, c0, base, grid.radial_margin * radius, grid.height_margin * height)
+    return M, c0, q, float(q[:, 2].min()), 0.5 * max(1.0 / R, aspect / H)
+
+
+def visible_geometries(rest: tuple[np.ndarray, np.ndarray, np.ndarray, float, float], cameras: np.ndarray,
+                       grid: TiltGrid, *, pixel: float = 1.0, depth_tol: float = 1.0) -> list[CopyGeometry]:
+    """:func:`visible_geometry` of one resting prototype (:func:`resting_cells`) seen from each of ``cameras``
+    (Y, 3): one z-buffer for all (:func:`visible_masks`), one enclosing circle each."""
+    M, c0, q, lo, half = rest
+    out = []
+    for seen in visible_masks(q, cameras, pixel * 2 * half, depth_tol * 2 * half):
+        qv = q[seen]
+        centre, radius = min_enclosing_circle(qv[:, :2])
+        height = max(float(qv[:, 2].max()) - lo + half, 1e-3)
+        radius = max(radius + 0.5 * half, 1e-3)
+        base = np.array([centre[0], centre[1], lo - 0.5 * half])
+        out.append(CopyGeometry(M, c0, base, grid.radial_margin * radius, grid.height_margin * height))
+    return out
+
+
+def window_shifts(A: int, made: np.ndarray, window: float) -> np.ndarray:
+    """(Y, A) bool: for each yaw ``made`` (Y,) (degrees) the azimuth shifts of an A-bin grid within ``window``
+    degrees of it."""
+    yaws = np.arange(A) * 360.0 / A
+    return np.abs((yaws[None, :] - np.asarray(made, np.float64)[:, None] + 180.0) % 360.0 - 180.0) <= window + 1e-9
+
+
+def object_factors(x: np.ndarray, w: np.ndarray) -> tuple[torch.Tensor, torch.Tensor]:
+    """The factors of one view x (C, R, A, H), w (R, A, H) for :func:`shifted_distances`, at every azimuth shift
+    s: numerator [w |x|^2, w, w x_1 .. w x_C] (A, (C + 2) R A H) and denominator w (A, R A H), each rolled by
+    -s (row s: the factor at azimuth j + s, met by the posed prototype's j)."""
+    xt = torch.from_numpy(np.ascontiguousarray(x, np.float32))
+    wt = torch.from_numpy(np.ascontiguousarray(w, np.float32))
+    C, R, A, H = xt.shape
+    num = torch.cat([(wt * (xt * xt).sum(0))[None], wt[None], wt[None] * xt], 0)   # (C + 2, R, A, H)
+    idx = (torch.arange(A)[:, None] + torch.arange(A)[None, :]) % A                 # (shift, j) -> j + s
+    return (num[:, :, idx].permute(2, 0, 1, 3, 4).reshape(A, -1).contiguous(),
+            wt[:, idx].permute(1, 0, 2, 3).reshape(A, -1).contiguous())
+
+
+def shifted_distances(obj: tuple[torch.Tensor, torch.Tensor], pc: np.ndarray, vc: np.ndarray,
+                      scales: tuple[float, ...], min_overlap: float = 1e-3) -> np.ndarray:
+    """Distances (n, S, A) of one view (:func:`object_factors`) to copies pc (n, C, R, A, H), vc (n, R, A, H) at
+    every scale and azimuth shift: the distance of ``posesearch`` (module docstring there: D = sum w v |x - mu|^2 /
+    (C sum w v + eps), the posed prototype scaled by ``scale_prototypes`` and rolled by the shift; inf where
+    C sum w v <= C ``min_overlap``), its sums taken directly, two matrix products of the copies' factors with the
+    view's rolled ones, instead of through the spectra of ``PoseBank`` (which would transform every copy)."""
+    n, C = pc.shape[:2]
+    S, A = len(scales), pc.shape[3]
+    Ps, Vs = scale_prototypes(pc, vc, scales)                       # (n, S, C, R, A, H), (n, S, R, A, H)
+    p, v = torch.from_numpy(Ps), torch.from_numpy(Vs)
+    vmu = v[:, :, None] * p
+    fnum = torch.cat([v[:, :, None], (vmu * p).sum(2)[:, :, None], -2.0 * vmu], 2).reshape(n * S, -1)
+    num = torch.mm(fnum, obj[0].T)                                  # (n S, A)
+    den = torch.mm((C * v).reshape(n * S, -1), obj[1].T)
+    d = num.clamp_min(0.0) / (den + EPS)
+    d = torch.where(den <= C * min_overlap, torch.full_like(d, float("inf")), d)
+    return d.reshape(n, S, A).numpy()
 
 
 def face_candidates(found: np.ndarray, face_up: np.ndarray, face_count: np.ndarray, face_symmetry: np.ndarray
@@ -117,28 +201,49 @@ class ViewNormaliser:
         self.top, self.within = int(top), float(within)
         self.yaw_step, self.yaw_window, self.pixel, self.depth_tol = yaw_step, yaw_window, pixel, depth_tol
         self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        self._rest_cache: dict[tuple, tuple] = {}
 
-    def distance(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray) -> float:
+    def _rest(self, k: int, up: np.ndarray) -> tuple:
+        """:func:`resting_cells` of prototype k on ``up`` (kept: the pose search's faces repeat across views)."""
+        key = (k, np.asarray(up, np.float64).tobytes())
+        if key not in self._rest_cache:
+            if k not in self._solid:
+                self._solid[k] = solid_cells(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
+            self._rest_cache[key] = resting_cells(self.P.shape[2:], float(self.aspect[k]), up, self._solid[k])
+        return self._rest_cache[key]
+
+    def distance(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray,
+                 obj: tuple[torch.Tensor, torch.Tensor] | None = None) -> float:
         """Least distance of one view x (1, C, R, A, H), w (1, R, A, H) (camera direction ``camera`` (3,) in its
         object frame) to prototype k's copies resting on ``ups``, each gridded as seen from the camera at every
-        ``yaw_step`` degrees of yaw, the FFT yaw kept within ``yaw_window`` of it."""
+        ``yaw_step`` degrees of yaw, the yaw kept within ``yaw_window`` of it (``obj``: the view's
+        :func:`object_factors` when known).  Copies of one face whose geometry is the same for several yaws (the
+        same visible circle and height) are resampled and compared once, at all those yaws' shifts."""
         k = int(k)
-        if k not in self._solid:
-            self._solid[k] = solid_cells(self.P[k, 0], self.V[k], float(self.aspect[k]), self.grid)
         y0 = np.arange(0.0, 360.0, self.yaw_step)
         cams = rot.yaw_matrix(-y0) @ np.asarray(camera, np.float64)   # (Y, 3): the camera in the copy's frame
-        gs = [visible_geometry(self.P[k, 0], self.V[k], float(self.aspect[k]), u, c, self.grid, pixel=self.pixel,
-                               depth_tol=self.depth_tol, solid=self._solid[k]) for u in ups for c in cams]
+        ok = window_shifts(x.shape[3], y0, self.yaw_window)           # (Y, A)
+        gs: list[CopyGeometry] = []
+        shifts: list[np.ndarray] = []
+        for u in ups:
+            seen: dict[bytes, int] = {}
+            for g, row in zip(visible_geometries(self._rest(k, u), cams, self.grid, pixel=self.pixel,
+                                                 depth_tol=self.depth_tol), ok):
+                key = np.concatenate([g.base, [g.rho_max, g.z_max]]).tobytes()
+                if key in seen:
+                    shifts[seen[key]] = shifts[seen[key]] | row
+                else:
+                    seen[key] = len(gs)
+                    gs.append(g)
+                    shifts.append(row)
         n = len(gs)
+        if not n:
+            return np.inf
         pc, vc = _resample_copies(self.P[k][None], self.V[k][None], gs, np.full(n, float(self.aspect[k])),
                                   index=np.zeros(n, np.int64))
-        allD = PoseBank(pc, vc, self.scales).match(x, w, return_all=True).all_D[0]   # (n, S, A)
-        A = allD.shape[-1]
-        yaws = np.arange(A) * 360.0 / A
-        made = np.tile(y0, len(ups))
-        ok = np.abs((yaws[None, :] - made[:, None] + 180.0) % 360.0 - 180.0) <= self.yaw_window + 1e-9
-        d = np.where(ok[:, None, :] & np.isfinite(allD), allD, np.inf)
-        return float(d.min()) if d.size else np.inf
+        obj = obj if obj is not None else object_factors(x[0], w[0])
+        d = shifted_distances(obj, pc, vc, self.scales)               # (n, S, A)
+        return float(np.where(np.stack(shifts)[:, None, :], d, np.inf).min())
 
     def improve(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
         """Decision distances (n, K): D (n, K) of views X (n, C, R, A, H), W (n, R, A, H), with each view's ``top``
@@ -155,7 +260,8 @@ class ViewNormaliser:
             order = np.argsort(Df, kind="stable")[:self.top]
             if not np.isfinite(Df[order[0]]):
                 continue
+            obj = object_factors(X[i], W[i])
             for k in order[Df[order] <= self.within * Df[order[0]]]:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
-                out[i, k] = min(out[i, k], self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam))
+                out[i, k] = min(out[i, k], self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj))
         return out
