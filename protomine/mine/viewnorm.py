@@ -158,15 +158,27 @@ def shifted_distances(obj: tuple[torch.Tensor, torch.Tensor], pc: np.ndarray, vc
     view's rolled ones, instead of through the spectra of ``PoseBank`` (which would transform every copy)."""
     n, C = pc.shape[:2]
     S, A = len(scales), pc.shape[3]
+    fnum, fden = copy_factors(pc, vc, scales)
+    return _distances(torch.mm(fnum.reshape(n * S, -1), obj[0].T), torch.mm(fden.reshape(n * S, -1), obj[1].T),
+                      C, min_overlap).reshape(n, S, A).numpy()
+
+
+def copy_factors(pc: np.ndarray, vc: np.ndarray, scales: tuple[float, ...]) -> tuple[torch.Tensor, torch.Tensor]:
+    """The factors of copies pc (n, C, R, A, H), vc (n, R, A, H) scaled by every scale (``scale_prototypes``), met
+    by the view's :func:`object_factors`: numerator [v, v |mu|^2, -2 v mu_1 .. -2 v mu_C] (n, S, (C + 2) R A H)
+    and denominator C v (n, S, R A H)."""
+    n, C = pc.shape[:2]
     Ps, Vs = scale_prototypes(pc, vc, scales)                       # (n, S, C, R, A, H), (n, S, R, A, H)
     p, v = torch.from_numpy(Ps), torch.from_numpy(Vs)
     vmu = v[:, :, None] * p
-    fnum = torch.cat([v[:, :, None], (vmu * p).sum(2)[:, :, None], -2.0 * vmu], 2).reshape(n * S, -1)
-    num = torch.mm(fnum, obj[0].T)                                  # (n S, A)
-    den = torch.mm((C * v).reshape(n * S, -1), obj[1].T)
+    fnum = torch.cat([v[:, :, None], (vmu * p).sum(2)[:, :, None], -2.0 * vmu], 2).reshape(n, len(scales), -1)
+    return fnum, (C * v).reshape(n, len(scales), -1)
+
+
+def _distances(num: torch.Tensor, den: torch.Tensor, C: int, min_overlap: float) -> torch.Tensor:
+    """The distance from its sums (``posesearch``: clamped at 0, inf where den <= C ``min_overlap``)."""
     d = num.clamp_min(0.0) / (den + EPS)
-    d = torch.where(den <= C * min_overlap, torch.full_like(d, float("inf")), d)
-    return d.reshape(n, S, A).numpy()
+    return torch.where(den <= C * min_overlap, torch.full_like(d, float("inf")), d)
 
 
 def face_candidates(found: np.ndarray, face_up: np.ndarray, face_count: np.ndarray, face_symmetry: np.ndarray
@@ -194,12 +206,14 @@ class ViewNormaliser:
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid,
                  faces: tuple[np.ndarray, np.ndarray, np.ndarray], *, top: int = 4, within: float = 1.5,
-                 yaw_step: float = 30.0, yaw_window: float = 15.0, pixel: float = 1.0, depth_tol: float = 1.0):
+                 yaw_step: float = 30.0, yaw_window: float = 15.0, pixel: float = 1.0, depth_tol: float = 1.0,
+                 max_faces: int = 0):
         self.P, self.V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         self.aspect = np.asarray(aspect, np.float64)
         self.scales, self.grid, self.faces = tuple(scales), grid, faces
         self.top, self.within = int(top), float(within)
         self.yaw_step, self.yaw_window, self.pixel, self.depth_tol = yaw_step, yaw_window, pixel, depth_tol
+        self.max_faces = int(max_faces)
         self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._rest_cache: dict[tuple, tuple] = {}
 
@@ -242,8 +256,14 @@ class ViewNormaliser:
         pc, vc = _resample_copies(self.P[k][None], self.V[k][None], gs, np.full(n, float(self.aspect[k])),
                                   index=np.zeros(n, np.int64))
         obj = obj if obj is not None else object_factors(x[0], w[0])
-        d = shifted_distances(obj, pc, vc, self.scales)               # (n, S, A)
-        return float(np.where(np.stack(shifts)[:, None, :], d, np.inf).min())
+        fnum, fden = copy_factors(pc, vc, self.scales)                # (n, S, L), (n, S, R A H)
+        best = np.inf
+        for m, row in enumerate(shifts):                              # each copy at its own shifts only
+            sh = torch.from_numpy(np.flatnonzero(row))
+            d = _distances(torch.mm(obj[0].index_select(0, sh), fnum[m].T),
+                           torch.mm(obj[1].index_select(0, sh), fden[m].T), x.shape[1], 1e-3)
+            best = min(best, float(d.min()))
+        return best
 
     def improve(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
         """Decision distances (n, K): D (n, K) of views X (n, C, R, A, H), W (n, R, A, H), with each view's ``top``
@@ -263,5 +283,6 @@ class ViewNormaliser:
             obj = object_factors(X[i], W[i])
             for k in order[Df[order] <= self.within * Df[order[0]]]:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
+                ups = ups[:self.max_faces] if self.max_faces > 0 else ups
                 out[i, k] = min(out[i, k], self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj))
         return out
