@@ -58,6 +58,15 @@ first half (weighted by their single-exemplar scores) and the fit uses the secon
 fitting on the members left after taking the k nearest read the distances as larger than before expansion).
 Clusters need ``MIN_CAL_MEMBERS`` + max(k, ``MIN_CAL_MEMBERS``) members in the store.  The prototype returned (and added by ``--add``) is the fused
 one; its picture volume fuses the store volumes the same way.
+
+Symmetric re-ranking (``[mine] find_symmetric`` = M > 0; default 0 = off)
+------------------------------------------------------------------------
+The search is one-way: the example is the prototype, so only its side is tilted, scaled and resampled, while each
+object stays as gridded about its own visible footprint.  The M nearest objects by distance (ties by object id) are
+also searched the other way, each as the one prototype against the example (after expansion: the fused prototype)
+as the object (``Matches.reverse``), and ranked by the mean of the two directions; the rest follow by distance
+(``ranking_key``, ``Matches.rank_key``).  ``distance`` and ``score`` stay the one-way search's, which the score's
+calibration measures.
 """
 from __future__ import annotations
 
