@@ -103,3 +103,27 @@ def test_ranking_key_orders_shortlist_first():
     # hand-worked: shortlist keys 0.5 and 0.15 (object 1 first), then 2 and 3 by distance, the unmatched last
     assert list(np.argsort(key, kind="stable")) == [1, 0, 2, 3, 4]
     assert key[1] == 0.5 * (0.2 + 0.1) and np.isinf(key[4])
+
+
+def test_expansion_takes_the_symmetric_ranking(monkeypatch):
+    """With find_expand, the matches the example is fused with are taken in the symmetric ranking of the first search
+    (the key handed to the expansion is the shortlist's mean of both directions, then the rest)."""
+    import json
+    from protomine.curate import oneshot
+    store, grid = _tilted_store()
+    lib = _library()
+    lib.attrs["tilts"] = json.dumps(grid.to_config())
+    first = find_similar(lib, store, "c0/0", _cfg(5))
+    seen = {}
+    real = oneshot._expansion_set
+
+    def spy(src, st, ex, key, *args):
+        seen["key"] = np.array(key)
+        return real(src, st, ex, key, *args)
+    monkeypatch.setattr(oneshot, "_expansion_set", spy)
+    cfg = _cfg(5)
+    cfg["mine"]["find_expand"], cfg["mine"]["find_reciprocal"] = 2, 0
+    mt = find_similar(lib, store, "c0/0", cfg)
+    np.testing.assert_array_equal(seen["key"], first.rank_key)
+    # the expanded search ranks its own shortlist both ways again
+    assert np.sum(np.isfinite(mt.reverse)) == 5

@@ -66,7 +66,8 @@ object stays as gridded about its own visible footprint.  The M nearest objects 
 also searched the other way, each as the one prototype against the example (after expansion: the fused prototype)
 as the object (``Matches.reverse``), and ranked by the mean of the two directions; the rest follow by distance
 (``ranking_key``, ``Matches.rank_key``).  ``distance`` and ``score`` stay the one-way search's, which the score's
-calibration measures.
+calibration measures.  With ``find_expand`` as well, the expansion takes its k nearest by the symmetric ranking of
+the first search, and the expanded search's shortlist is searched both ways again.
 """
 from __future__ import annotations
 
@@ -246,7 +247,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid)
     vol1 = store.read_volume_at(np.array([ex]))[0]
     k_exp, r_rec = int(cfg["mine"]["find_expand"]), int(cfg["mine"]["find_reciprocal"])
-    nb = _expansion_set(src, store, ex, D, weights, scales, grid, chunk, k_exp, r_rec) if k_exp else np.zeros(0, np.int64)
+    n_sym = int(cfg["mine"].get("find_symmetric", 0))
+    key = D
+    if k_exp and n_sym:   # the expansion takes the nearest by the symmetric ranking
+        key = ranking_key(D, _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym))
+    nb = _expansion_set(src, store, ex, key, weights, scales, grid, chunk, k_exp, r_rec) if k_exp else np.zeros(0, np.int64)
     if len(nb):
         # average query expansion: the example fused with its nearest matches (their found poses undone),
         # weighted by their one-shot scores; then every object is searched again against the fused prototype
@@ -262,7 +267,6 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         D, yaw, fit, tilt = _search(src, X1, W1, aspect, scales, grid, chunk)
         mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid, expand=k_exp, single=(mu, sigma))
         how += f", expanded with {len(nb)} matches"
-    n_sym = int(cfg["mine"].get("find_symmetric", 0))
     reverse = _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym) if n_sym else None
     p = library.prototypes
     off = float(np.median(np.asarray(p["single_mu"]) - np.asarray(p["fused_mu"]))) if library.n_clusters else 0.0
@@ -351,7 +355,8 @@ def ranking_key(distance: np.ndarray, reverse: np.ndarray | None) -> np.ndarray:
 
 def _expansion_set(src, store: ObjectStore, ex: int, D: np.ndarray, weights: tuple[float, float],
                    scales: tuple[float, ...], grid: TiltGrid | None, chunk: int, k: int, r: int) -> np.ndarray:
-    """Store rows (<= k,) of the matches the example is expanded with: its k nearest (ties by object id) that
+    """Store rows (<= k,) of the matches the example is expanded with: its k nearest by D (the distance, or the
+    symmetric ranking key with ``[mine] find_symmetric``; ties by object id) that
     pass the reciprocal check, best first.  Check (r > 0): the 2k nearest are each searched against the
     whole store as prototypes; a match passes when fewer than r other objects are nearer to it than the
     example (the example is among its r nearest: k-reciprocal neighbours, Zhong et al., CVPR 2017)."""
