@@ -58,6 +58,16 @@ first half (weighted by their single-exemplar scores) and the fit uses the secon
 fitting on the members left after taking the k nearest read the distances as larger than before expansion).
 Clusters need ``MIN_CAL_MEMBERS`` + max(k, ``MIN_CAL_MEMBERS``) members in the store.  The prototype returned (and added by ``--add``) is the fused
 one; its picture volume fuses the store volumes the same way.
+
+Symmetric re-ranking (``[mine] find_symmetric`` = M > 0; default 0 = off)
+------------------------------------------------------------------------
+The search is one-way: the example is the prototype, so only its side is tilted, scaled and resampled, while each
+object stays as gridded about its own visible footprint.  The M nearest objects by distance (ties by object id) are
+also searched the other way, each as the one prototype against the example (after expansion: the fused prototype)
+as the object (``Matches.reverse``), and ranked by the mean of the two directions; the rest follow by distance
+(``ranking_key``, ``Matches.rank_key``).  ``distance`` and ``score`` stay the one-way search's, which the score's
+calibration measures.  With ``find_expand`` as well, the expansion takes its k nearest by the symmetric ranking of
+the first search, and the expanded search's shortlist is searched both ways again.
 """
 from __future__ import annotations
 
@@ -118,12 +128,16 @@ class Matches:
     rotation: np.ndarray                # (N, 4) quaternions [qx, qy, qz, qw], world <- example frame
     face: np.ndarray                    # (N,) face of the one-shot prototype
     example_index: int = -1             # the example's own row: matched (distance 0) but left out of ``order``
+    reverse: np.ndarray | None = None   # (N,) ``[mine] find_symmetric``: the example searched against the object as the
+                                        # prototype; NaN beyond the shortlist; None when off
     order: np.ndarray = field(init=False)
+    rank_key: np.ndarray = field(init=False)
 
     def __post_init__(self) -> None:
         # ascending distance; unmatched (inf) last; ties broken by object id for determinism; the example
-        # itself is not a find
-        order = np.lexsort((self.object.astype(str), self.distance))
+        # itself is not a find.  With ``reverse``: the shortlist by its symmetric distance, then the rest by distance
+        self.rank_key = ranking_key(self.distance, self.reverse)
+        order = np.lexsort((self.object.astype(str), self.rank_key))
         self.order = order[order != self.example_index]
 
     def rows(self, top: int | None = None) -> list[dict]:
@@ -233,7 +247,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid)
     vol1 = store.read_volume_at(np.array([ex]))[0]
     k_exp, r_rec = int(cfg["mine"]["find_expand"]), int(cfg["mine"]["find_reciprocal"])
-    nb = _expansion_set(src, store, ex, D, weights, scales, grid, chunk, k_exp, r_rec) if k_exp else np.zeros(0, np.int64)
+    n_sym = int(cfg["mine"].get("find_symmetric", 0))
+    key = D
+    if k_exp and n_sym:   # the expansion takes the nearest by the symmetric ranking
+        key = ranking_key(D, _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym))
+    nb = _expansion_set(src, store, ex, key, weights, scales, grid, chunk, k_exp, r_rec) if k_exp else np.zeros(0, np.int64)
     if len(nb):
         # average query expansion: the example fused with its nearest matches (their found poses undone),
         # weighted by their one-shot scores; then every object is searched again against the fused prototype
@@ -249,6 +267,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         D, yaw, fit, tilt = _search(src, X1, W1, aspect, scales, grid, chunk)
         mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid, expand=k_exp, single=(mu, sigma))
         how += f", expanded with {len(nb)} matches"
+    reverse = _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym) if n_sym else None
     p = library.prototypes
     off = float(np.median(np.asarray(p["single_mu"]) - np.asarray(p["fused_mu"]))) if library.n_clusters else 0.0
     s_sigma = max(sigma, float(np.median(p["single_sigma"]))) if library.n_clusters else sigma
@@ -273,7 +292,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     cl = {str(o): int(k) for o, k in zip(library.members["object"], library.members["cluster"])}
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
-                   world_quaternions(R_obj, store.objects["up"]), face, ex)
+                   world_quaternions(R_obj, store.objects["up"]), face, ex, reverse)
 
 
 def _search(src, P: np.ndarray, V: np.ndarray, aspect: float, scales: tuple[float, ...], grid: TiltGrid | None,
@@ -299,9 +318,45 @@ def _search_many(src, P: np.ndarray, V: np.ndarray, aspect, scales: tuple[float,
     return (D, yaw, fit, tilt) if poses else D
 
 
+def _reverse_distances(store: ObjectStore, ex: int, D: np.ndarray, x: np.ndarray, w: np.ndarray,
+                       weights: tuple[float, float], scales: tuple[float, ...], grid: TiltGrid | None, n: int) -> np.ndarray:
+    """Reverse distances (N,) of the ``n`` nearest objects by D (ties by object id; the example and unmatched objects
+    left out): the one-shot prototype x (C, R, A, H), w (R, A, H) searched as the object against each of them as the
+    prototype (tilts x yaw x scale, one search per object, so each gets the tilt refinement a find gives its
+    prototype); NaN elsewhere."""
+    order = np.lexsort((np.asarray(store.ids).astype(str), D))
+    short = order[(order != ex) & np.isfinite(D[order])][:n]
+    rev = np.full(len(D), np.nan)
+    if len(short):
+        Xs, Ws = _features(store, short, weights)
+        aspects = _aspects(store, short)
+        for i, j in enumerate(short):
+            rev[j] = tilt_pose_distances(x[None], w[None], Xs[i:i + 1], Ws[i:i + 1], aspect=aspects[i:i + 1],
+                                         scales=scales, grid=grid).D[0, 0]
+    return rev
+
+
+def ranking_key(distance: np.ndarray, reverse: np.ndarray | None) -> np.ndarray:
+    """The key ``find`` ranks by (ascending): the distance; with reverse distances (``[mine] find_symmetric``) the
+    objects that have one (the shortlist) by the mean of the two directions, then every other object by its distance,
+    offset past the shortlist's keys (so a key's order is the ranking; unmatched objects stay inf, last)."""
+    d = np.asarray(distance, np.float64)
+    if reverse is None:
+        return d
+    r = np.asarray(reverse, np.float64)
+    has = np.isfinite(r) & np.isfinite(d)
+    key = d.copy()
+    if has.any():
+        key[has] = 0.5 * (d[has] + r[has])
+        rest = ~has & np.isfinite(d)
+        key[rest] = d[rest] + key[has].max() + 1.0
+    return key
+
+
 def _expansion_set(src, store: ObjectStore, ex: int, D: np.ndarray, weights: tuple[float, float],
                    scales: tuple[float, ...], grid: TiltGrid | None, chunk: int, k: int, r: int) -> np.ndarray:
-    """Store rows (<= k,) of the matches the example is expanded with: its k nearest (ties by object id) that
+    """Store rows (<= k,) of the matches the example is expanded with: its k nearest by D (the distance, or the
+    symmetric ranking key with ``[mine] find_symmetric``; ties by object id) that
     pass the reciprocal check, best first.  Check (r > 0): the 2k nearest are each searched against the
     whole store as prototypes; a match passes when fewer than r other objects are nearer to it than the
     example (the example is among its r nearest: k-reciprocal neighbours, Zhong et al., CVPR 2017)."""
@@ -506,10 +561,11 @@ def retrieval_scores(matches: Matches, others: np.ndarray, relevant: np.ndarray)
     """(k, precision at k, average precision) of the ranking of objects ``others`` (indices) by distance.
 
     relevant: (len(others),) bool, same class as the example.  k = min(10, number relevant); ties in
-    distance are broken by object id.  AP: ``sklearn.metrics.average_precision_score``.
+    distance are broken by object id.  AP: ``sklearn.metrics.average_precision_score``.  The ranking is the matches'
+    ``rank_key`` when they have one (the distance, or the symmetric one of ``[mine] find_symmetric``).
     """
     from sklearn.metrics import average_precision_score
-    d = matches.distance[others]
+    d = np.asarray(getattr(matches, "rank_key", matches.distance))[others]
     d = np.where(np.isfinite(d), d, np.finfo(np.float64).max)
     k = min(10, int(relevant.sum()))
     order = np.lexsort((matches.object[others].astype(str), d))
