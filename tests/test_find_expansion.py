@@ -103,9 +103,11 @@ def _scene():
     return _Store(ids, np.stack(vols)), np.array(kind)
 
 
-def _cfg(expand: int) -> dict:
+def _cfg(expand: int = 0, symmetric: int = 0) -> dict:
+    """The default config with find's query expansion and symmetric re-ranking set (both off unless given)."""
     cfg = load_config(None)
     cfg["mine"]["find_expand"] = expand
+    cfg["mine"]["find_symmetric"] = symmetric
     return cfg
 
 

@@ -12,17 +12,14 @@ from __future__ import annotations
 import numpy as np
 from sklearn.metrics import average_precision_score
 
-from protomine.config import load_config
 from protomine.curate.oneshot import find_similar, ranking_key, retrieval_scores
 from protomine.ingest.volume import matching_features
 from protomine.mine.tilts import TiltGrid, tilt_pose_distances
-from test_find_expansion import A, H, R, _library, _scene, _Store, _view
+from test_find_expansion import A, H, R, _cfg as _both, _library, _scene, _Store, _view
 
 
 def _cfg(n: int) -> dict:
-    cfg = load_config(None)
-    cfg["mine"]["find_symmetric"] = n
-    return cfg
+    return _both(symmetric=n)
 
 
 def test_off_leaves_the_ranking_to_the_distance():
