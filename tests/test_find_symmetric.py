@@ -10,6 +10,7 @@ ranking.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from sklearn.metrics import average_precision_score
 
 from protomine.curate.oneshot import find_similar, ranking_key, retrieval_scores
@@ -84,6 +85,18 @@ def test_reverse_is_the_swapped_search_and_ranks_the_shortlist():
     rest = [i for i in np.lexsort((np.array(store.ids), fwd)) if i != ex and i not in sym]
     expected = sorted(cand, key=lambda j: (sym[j], store.ids[j])) + rest
     assert list(mt.order) == expected
+    # matches.csv: best first, the shortlist's symmetric distance in both_ways, empty for the rest
+    import csv
+    import tempfile
+    from pathlib import Path
+    from protomine.curate.oneshot import write_matches
+    with tempfile.TemporaryDirectory() as tmp:
+        rows = list(csv.DictReader(write_matches(Path(tmp) / "m.csv", mt).open()))
+    assert [r["object"] for r in rows] == [store.ids[j] for j in expected]
+    for r, j in zip(rows, expected):
+        assert (r["both_ways"] == "") == (j not in sym)
+        if j in sym:
+            assert float(r["both_ways"]) == pytest.approx(sym[j], rel=1e-5)
     # average precision of that ranking (scikit-learn, scored by the negated position)
     others = np.array([i for i in range(len(store)) if i != ex])
     rel = np.array([store.ids[i].startswith("c0/") for i in others])

@@ -94,7 +94,8 @@ from .names import check_name, refresh_gallery
 
 MIN_CAL_MEMBERS = 3
 MAX_CAL_MEMBERS = 64
-MATCH_COLUMNS = ("object", "distance", "score", "yaw_deg", "scale", "cluster", "qx", "qy", "qz", "qw", "face")
+MATCH_COLUMNS = ("object", "distance", "both_ways", "score", "yaw_deg", "scale", "cluster", "qx", "qy", "qz", "qw",
+                 "face")
 
 
 @dataclass
@@ -142,7 +143,11 @@ class Matches:
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
-        return [{"object": str(self.object[i]), "distance": float(self.distance[i]), "score": float(self.score[i]),
+        # the shortlist's symmetric distance (the mean of the search both ways); None beyond it or without it
+        both = [None] * len(self.distance) if self.reverse is None else \
+            [float(0.5 * (d + r)) if np.isfinite(r) else None for d, r in zip(self.distance, self.reverse)]
+        return [{"object": str(self.object[i]), "distance": float(self.distance[i]), "both_ways": both[i],
+                 "score": float(self.score[i]),
                  "yaw_deg": float(self.yaw_deg[i]), "scale": float(self.scale[i]), "cluster": int(self.cluster[i]),
                  "rotation": [float(v) for v in self.rotation[i]], "face": int(self.face[i])}
                 for i in idx]
@@ -399,12 +404,15 @@ def _aspects(store: ObjectStore, idx: np.ndarray) -> np.ndarray:
 
 
 def write_matches(path: str | Path, matches: Matches, top: int | None = None) -> Path:
-    """matches.csv (atomic): object, distance, score, yaw_deg, scale, cluster; best first."""
+    """matches.csv (atomic), best first: object, distance (the one-way search's), both_ways (``[mine]
+    find_symmetric``: the mean of the search both ways, which ranks the shortlist; empty beyond it), score,
+    yaw_deg, scale, cluster, rotation (qx, qy, qz, qw), face."""
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(MATCH_COLUMNS)
     for r in matches.rows(top):
-        w.writerow([r["object"], f"{r['distance']:.6g}", f"{r['score']:.4f}", f"{r['yaw_deg']:.2f}",
+        both = "" if r["both_ways"] is None else f"{r['both_ways']:.6g}"
+        w.writerow([r["object"], f"{r['distance']:.6g}", both, f"{r['score']:.4f}", f"{r['yaw_deg']:.2f}",
                     f"{r['scale']:.4f}", r["cluster"], *(f"{v:.6f}" for v in r["rotation"]), r["face"]])
     write_text(path, buf.getvalue())
     return Path(path)
