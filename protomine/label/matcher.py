@@ -68,6 +68,8 @@ from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid
 from .. import rotations as rot
 from ..mine.viewnorm import ViewNormaliser
+from ..mine.tilts import grid_aspect
+from . import symmetric as sym
 from ..mine.viewsearch import ExactFaces, ViewSearch  # noqa: F401  (ExactFaces: the label search's part, re-exported)
 from ..rotations import matrix_to_quat
 
@@ -107,6 +109,7 @@ class Matcher:
     centre_offsets: tuple[float, ...] = ()
     view_top: int = 0
     chunk_size: int = 512
+    symmetric_top: int = 0
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -142,7 +145,8 @@ class Matcher:
         X, W = matching_features(volumes, free_weight=self.free_weight, colour_weight=self.colour_weight)
         return X, (W if self.weighted else np.ones_like(W))
 
-    def match(self, volumes: np.ndarray, cameras: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    def match(self, volumes: np.ndarray, cameras: np.ndarray | None = None,
+              sizes: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
         (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
         ``cameras`` (n, 3): each view's camera direction in its object frame (:func:`lift_frame`); with the
@@ -150,11 +154,14 @@ class Matcher:
         the copies gridded as seen from that camera (``mine.viewnorm``; None: not).
         Volumes (n, C, 6, R, A, H): C candidate object frames of each object (:func:`lift_frame` with
         ``centre_offsets``); per object and prototype the candidate at the least distance gives every figure,
-        and ``centre`` (n, K) says which."""
+        and ``centre`` (n, K) says which.
+        ``sizes`` (n, 2): each view's footprint radius and height (m); with ``symmetric_top`` (the library's
+        ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``)."""
         if volumes.ndim == 6:
             n, C = volumes.shape[:2]
             m = self.match(volumes.reshape((n * C,) + volumes.shape[2:]),
-                           None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0))
+                           None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0),
+                           None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0))
             if n == 0:
                 return {**m, "centre": np.zeros((0, self.K), int)}
             D = m["distance"].reshape(n, C, self.K)
@@ -196,6 +203,13 @@ class Matcher:
         if self.tilt_ratios is not None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, best_second_ratio(D), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
+        if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
+            sz = np.asarray(sizes, np.float64).reshape(-1, 2)
+            rev = sym.reverse_distances(X, W, grid_aspect(sz[:, 0], sz[:, 1], self.tilts.radial_margin,
+                                                          self.tilts.height_margin),
+                                        self.P, self.V, sym.shortlist(D, self.symmetric_top, sym.RATIO), self.scales,
+                                        None if self.tilts.is_identity else self.tilts)
+            best = sym.symmetric_best(D, rev)
         pr = self.library.prototypes
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
@@ -236,7 +250,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
              cut, weighted),
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
                  rings=score_rings(lib_cfg, grid.radial_bins), refine_top=int(m.get("label_refine_top", 0)),
-                 centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0))))
+                 centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
+                 symmetric_top=int(m.get("label_symmetric", 0))))
 
 
 @dataclass
@@ -449,7 +464,8 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
         return []
     t0 = time.perf_counter()
     m = matcher.match(np.concatenate([fo.volumes for _, fo in lifted]),
-                      np.concatenate([fo.cameras for _, fo in lifted]))
+                      np.concatenate([fo.cameras for _, fo in lifted]),
+                      np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2))
     st["match_s"] += time.perf_counter() - t0
     out, i0 = [], 0
     for cap_name, fo in lifted:
