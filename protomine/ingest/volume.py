@@ -162,6 +162,20 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     return out.reshape(-1, R, A, H)
 
 
+def _percentile75(x: np.ndarray) -> float:
+    """``np.percentile(x, 75)`` (numpy's default linear method) of a non-empty 1-D float64 array, the same float:
+    the two order statistics by a partition and numpy's interpolation step, without its general machinery (which
+    costs more than the rest of a single-view cell's arithmetic)."""
+    n = len(x)
+    vi = 0.75 * n - 0.75                             # numpy's virtual index n q + (1 - q) - 1 for q = 0.75
+    lo = int(np.floor(vi))
+    hi = min(lo + 1, n - 1)
+    part = np.partition(x, (lo, hi)) if hi != lo else np.partition(x, lo)
+    a, b, t = part[lo], part[hi], vi - lo
+    diff = b - a
+    return float(b - diff * (1 - t)) if t >= 0.5 else float(a + diff * t)   # numpy's _lerp
+
+
 def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: ObjectFrame, tol: float) -> np.ndarray:
     """True where the reading d (M,) at pixel (u, r) (M,) lies within ``tol`` of the support plane (the plane
     through ``frame.origin`` normal to ``frame.up``) and is not one of the object's own pixels (a long, low
@@ -224,7 +238,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         # point density depends on resolution and distance: measure splat weight against this frame's
         # typical occupied-cell weight so that evidence is the same for near and far, small and large
         hit = sp[0] > 0
-        typical = np.percentile(sp[0][hit], 75) if hit.any() else 1.0
+        typical = _percentile75(sp[0][hit]) if hit.any() else 1.0
         surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
         # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
         # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
