@@ -102,14 +102,33 @@ def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
 def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarray:
     """:func:`cell_centres` with the object frame's ``plane_basis`` (3, 3) already computed."""
     R, A, H = grid.shape
-    rho = (np.arange(R) + 0.5) / R * grid.radial_margin * frame.radius
-    phi = (np.arange(A) + 0.5) / A * 2 * np.pi
-    z = (np.arange(H) + 0.5) / H * grid.height_margin * frame.height
+    rho_unit, cos_phi, sin_phi, z_unit = _cell_axes(R, A, H, grid.radial_margin, grid.height_margin)
+    rho = rho_unit * frame.radius
+    z = z_unit * frame.height
     local = np.empty((R, A, H, 3))  # the products of a meshgrid, by broadcasting (same values, no grids)
-    local[..., 0] = rho[:, None, None] * np.cos(phi)[None, :, None]
-    local[..., 1] = rho[:, None, None] * np.sin(phi)[None, :, None]
+    local[..., 0] = rho[:, None, None] * cos_phi[None, :, None]
+    local[..., 1] = rho[:, None, None] * sin_phi[None, :, None]
     local[..., 2] = z[None, None, :]
     return local @ basis + frame.origin
+
+
+@lru_cache(maxsize=16)
+def _cell_axes(R: int, A: int, H: int, radial_margin: float, height_margin: float) -> tuple[np.ndarray, ...]:
+    """The grid's cell-centre axes before the object's size: (i + 0.5) / R * radial_margin (R,), cos and sin of
+    the azimuths (A,), (k + 0.5) / H * height_margin (H,) (read-only; times the radius and the height they are the
+    same floats as computed in one expression, which multiplies left to right)."""
+    rho = (np.arange(R) + 0.5) / R * radial_margin
+    phi = (np.arange(A) + 0.5) / A * 2 * np.pi
+    z = (np.arange(H) + 0.5) / H * height_margin
+    out = (rho, np.cos(phi), np.sin(phi), z)
+    for a in out:
+        a.setflags(write=False)
+    return out
+
+
+def up_basis(up: np.ndarray) -> np.ndarray:
+    """``plane_basis(up)`` (3, 3), read-only, cached by the up vector's float64 value."""
+    return _basis(np.asarray(up, np.float64).tobytes())
 
 
 @lru_cache(maxsize=64)
