@@ -39,6 +39,9 @@ import numpy as np
 from ..geometry import camera_to_world, pixels_to_camera, plane_basis, world_to_pixel
 from .depthedges import steady_depth_at
 
+_UNIT_BYTE = np.arange(256) / 255.0    # each byte's value in [0, 1], float64
+_UNIT_BYTE.setflags(write=False)
+
 CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
 FEATURES = ("surface", "free", "red*surface", "green*surface", "blue*surface")
 
@@ -109,7 +112,7 @@ def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarr
     local[..., 0] = rho[:, None, None] * cos_phi[None, :, None]
     local[..., 1] = rho[:, None, None] * sin_phi[None, :, None]
     local[..., 2] = z[None, None, :]
-    return local @ basis + frame.origin
+    return (local.reshape(-1, 3) @ basis + frame.origin).reshape(R, A, H, 3)   # one (R A H, 3) product, not R A small ones
 
 
 @lru_cache(maxsize=16)
@@ -176,8 +179,8 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     # end, dropped after: one bincount per channel over every corner, no masked copies of the arrays
     flat = np.where(ok, flat, n_cells).reshape(-1)
     out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=n_cells + 1)[:n_cells]
-    for c in range(values.shape[1]):
-        out[c + 1] = np.bincount(flat, weights=(w * values[:, c]).reshape(-1), minlength=n_cells + 1)[:n_cells]
+    for c, vc in enumerate(np.ascontiguousarray(values.T)):   # each channel's values contiguous
+        out[c + 1] = np.bincount(flat, weights=(w * vc).reshape(-1), minlength=n_cells + 1)[:n_cells]
     return out.reshape(-1, R, A, H)
 
 
@@ -252,7 +255,8 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         good = z > 0
         vv, uu, z = vv[good], uu[good], z[good]
         pw = camera_to_world(pixels_to_camera(uu, vv, z, v.K), v.cam_to_world)
-        rgb = v.rgb.reshape(-1, 3)[v.pixels[good]].astype(np.float64) / 255.0
+        rgb = v.rgb.reshape(-1, 3)[v.pixels[good]]
+        rgb = _UNIT_BYTE[rgb] if rgb.dtype == np.uint8 else rgb.astype(np.float64) / 255.0   # the same floats
         sp = _splat(grid, frame, pw, rgb, basis).reshape(4, -1)
         # point density depends on resolution and distance: measure splat weight against this frame's
         # typical occupied-cell weight so that evidence is the same for near and far, small and large
