@@ -36,7 +36,7 @@ from functools import lru_cache
 
 import numpy as np
 
-from ..geometry import camera_to_world, pixels_to_camera, plane_basis, world_to_pixel
+from ..geometry import EPS, camera_to_world, invert_rigid, pixels_to_camera, plane_basis, transform_points
 from .depthedges import steady_depth_at
 
 _UNIT_BYTE = np.arange(256) / 255.0    # each byte's value in [0, 1], float64
@@ -166,7 +166,7 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     # the 8 corners at once: index and weight arrays (2, 2, 2, M), corner (di, dj, dk) along the first axes;
     # points just inside the axis or the rim/top keep their whole weight in the edge bin
     step = np.arange(2)[:, None]
-    ii = np.clip(i0.astype(np.intp) + step, 0, R - 1)
+    ii = np.minimum(np.maximum(i0.astype(np.intp) + step, 0), R - 1)   # np.clip, without its dispatch
     jj = j0.astype(np.intp) + step                    # in [-1, A]: wrapped about the axis
     jj[jj < 0] += A
     jj[jj >= A] -= A
@@ -227,9 +227,12 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     colw = np.zeros(n_cells)
     for v in views:
         h, w = v.depth.shape
-        uv, zc = world_to_pixel(centres, v.cam_to_world, v.K)
-        u = np.rint(uv[:, 0]).astype(np.intp)
-        r = np.rint(uv[:, 1]).astype(np.intp)
+        # geometry.world_to_pixel written out (the same operations), without stacking (u, v) to take them apart
+        pc = transform_points(invert_rigid(v.cam_to_world), centres)
+        zc = pc[:, 2]
+        zs = np.where(np.abs(zc) < EPS, EPS, zc)
+        u = np.rint(v.K[0, 0] * pc[:, 0] / zs + v.K[0, 2]).astype(np.intp)
+        r = np.rint(v.K[1, 1] * pc[:, 1] / zs + v.K[1, 2]).astype(np.intp)
         inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
         d = np.zeros(n_cells)
         # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
