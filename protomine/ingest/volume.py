@@ -149,18 +149,30 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
 
     ``basis``: the object frame's ``plane_basis`` when the caller has it already.
     """
+    return _splat_many(grid, [(frame, pts_world, values, basis)])[0]
+
+
+def _splat_many(grid: Grid, items: list[tuple]) -> list[np.ndarray]:
+    """:func:`_splat` of each (frame, pts_world (M, 3), values (M, V), basis or None), V the same for all: the
+    same arrays (the same floats), by one set of array operations over all the items' points (each item's object
+    frame repeated per point; a scalar and an array of it give the same IEEE results) and one bincount a channel,
+    item i's corners in bins i (n_cells + 1) + cell, each bin summing the same products in the same order."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    out = np.zeros((values.shape[1] + 1, n_cells))
-    if len(pts_world) == 0:
-        return out.reshape(-1, R, A, H)
-    basis = plane_basis(frame.up) if basis is None else basis
-    local = (pts_world - frame.origin) @ basis.T
-    rho = np.hypot(local[:, 0], local[:, 1]) / (grid.radial_margin * frame.radius) * R - 0.5
+    nv = items[0][2].shape[1] + 1 if items else 1
+    counts = np.array([len(it[1]) for it in items], np.intp)
+    if counts.sum() == 0:
+        return [np.zeros((nv, R, A, H)) for _ in items]
+    local = np.concatenate([(pts - fr.origin) @ (plane_basis(fr.up) if bs is None else bs).T
+                            for fr, pts, _, bs in items if len(pts)])
+    values = np.concatenate([vals for _, pts, vals, _ in items if len(pts)])
+    rad = np.repeat([grid.radial_margin * fr.radius for fr, *_ in items], counts)
+    hgt = np.repeat([grid.height_margin * fr.height for fr, *_ in items], counts)
+    rho = np.hypot(local[:, 0], local[:, 1]) / rad * R - 0.5
     phi = np.arctan2(local[:, 1], local[:, 0])
     phi += np.where(phi < 0, 2 * np.pi, 0.0)          # [0, 2 pi): np.mod(phi, 2 pi) for phi in [-pi, pi]
     phi = phi / (2 * np.pi) * A - 0.5
-    z = local[:, 2] / (grid.height_margin * frame.height) * H - 0.5
+    z = local[:, 2] / hgt * H - 0.5
     i0, j0, k0 = np.floor(rho), np.floor(phi), np.floor(z)
     fr, fp, fz = rho - i0, phi - j0, z - k0
     # the 8 corners at once: index and weight arrays (2, 2, 2, M), corner (di, dj, dk) along the first axes;
@@ -176,12 +188,14 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     w = wi[:, None, None] * wj[None, :, None] * wk[None, None, :]
     ok = ((kk >= 0) & (kk < H))[None, None, :] & (rho < R)
     # corners outside the grid (below the base, above the top, beyond the rim) go to a spare bin past the
-    # end, dropped after: one bincount per channel over every corner, no masked copies of the arrays
-    flat = np.where(ok, flat, n_cells).reshape(-1)
-    out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=n_cells + 1)[:n_cells]
+    # end of their item's block, dropped after: one bincount per channel over every corner, no masked copies
+    flat = (np.where(ok, flat, n_cells) + np.repeat(np.arange(len(items)) * (n_cells + 1), counts)).reshape(-1)
+    size = len(items) * (n_cells + 1)
+    out = np.empty((nv, len(items), n_cells))
+    out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=size).reshape(len(items), -1)[:, :n_cells]
     for c, vc in enumerate(np.ascontiguousarray(values.T)):   # each channel's values contiguous
-        out[c + 1] = np.bincount(flat, weights=(w * vc).reshape(-1), minlength=n_cells + 1)[:n_cells]
-    return out.reshape(-1, R, A, H)
+        out[c + 1] = np.bincount(flat, weights=(w * vc).reshape(-1), minlength=size).reshape(len(items), -1)[:, :n_cells]
+    return [out[:, i].reshape(nv, R, A, H) for i in range(len(items))]
 
 
 def _percentile75(x: np.ndarray) -> float:
@@ -214,53 +228,29 @@ def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: Obj
 
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
+    return lift_many([(views, frame)], grid)[0]
+
+
+def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list[np.ndarray]:
+    """:func:`lift` of each (views, frame): the same volumes, with the splats of every view of every object done
+    together (:func:`_splat_many`: a single-view object's splat is a few dozen array operations on a few thousand
+    points, whose fixed cost, paid once for a frame's objects instead of once each, was most of it)."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
-    centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
-    cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
-    margin = grid.carve_margin_cells * cell
-    surf_sum = np.zeros(n_cells)
-    free_sum = np.zeros(n_cells)
-    obs = np.zeros(n_cells)
-    col = np.zeros((3, n_cells))
-    colw = np.zeros(n_cells)
-    for v in views:
-        h, w = v.depth.shape
-        # geometry.world_to_pixel written out (the same operations), without stacking (u, v) to take them apart
-        pc = transform_points(invert_rigid(v.cam_to_world), centres)
-        zc = pc[:, 2]
-        zs = np.where(np.abs(zc) < EPS, EPS, zc)
-        u = np.rint(v.K[0, 0] * pc[:, 0] / zs + v.K[0, 2]).astype(np.intp)
-        r = np.rint(v.K[1, 1] * pc[:, 1] / zs + v.K[1, 2]).astype(np.intp)
-        inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
-        d = np.zeros(n_cells)
-        # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
-        if v.flying is None:
-            d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
-        else:
-            at = r[inside] * w + u[inside]
-            d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
-        seen = inside & (d > 0) & (zc < d + margin)
-        free = seen & (zc < d - margin)
-        if grid.others_unseen and v.others is not None:
-            # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
-            # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
-            # this object's margin, a wall no instance standing alone has; those cells stay unobserved
-            theirs = np.zeros(n_cells, bool)
-            theirs[inside] = v.others[r[inside] * w + u[inside]]
-            seen &= ~theirs | free
-        if grid.carve_to_plane:
-            free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
-        # the object's own points: back-project its pixels
-        vv, uu = np.divmod(v.pixels, w)
-        z = v.depth.reshape(-1)[v.pixels]
-        good = z > 0
-        vv, uu, z = vv[good], uu[good], z[good]
-        pw = camera_to_world(pixels_to_camera(uu, vv, z, v.K), v.cam_to_world)
-        rgb = v.rgb.reshape(-1, 3)[v.pixels[good]]
-        rgb = _UNIT_BYTE[rgb] if rgb.dtype == np.uint8 else rgb.astype(np.float64) / 255.0   # the same floats
-        sp = _splat(grid, frame, pw, rgb, basis).reshape(4, -1)
+    states, reads = [], []
+    for views, frame in objects:
+        basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
+        centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
+        cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
+        margin = grid.carve_margin_cells * cell
+        # surf_sum, free_sum, obs, col, colw
+        states.append((np.zeros(n_cells), np.zeros(n_cells), np.zeros(n_cells), np.zeros((3, n_cells)), np.zeros(n_cells)))
+        for v in views:
+            reads.append((len(states) - 1, frame, basis) + _read_view(v, centres, margin, frame, grid))
+    sps = _splat_many(grid, [(frame, pw, rgb, basis) for _, frame, basis, _, _, _, pw, rgb in reads])
+    for (k, _, _, d, seen, free, _, _), sp in zip(reads, sps):
+        surf_sum, free_sum, obs, col, colw = states[k]
+        sp = sp.reshape(4, -1)
         # point density depends on resolution and distance: measure splat weight against this frame's
         # typical occupied-cell weight so that evidence is the same for near and far, small and large
         hit = sp[0] > 0
@@ -276,13 +266,57 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
         free_sum += free
         col += sp[1:]
         colw += sp[0]
-    n = np.maximum(obs, 1.0)
-    out = np.zeros((len(CHANNELS), n_cells))
-    out[0] = surf_sum / n
-    out[1] = free_sum / n
-    out[2] = obs
-    out[3:6] = col / np.maximum(colw, 1e-9)
-    return out.reshape(len(CHANNELS), R, A, H).astype(np.float32)
+    vols = []
+    for surf_sum, free_sum, obs, col, colw in states:
+        n = np.maximum(obs, 1.0)
+        out = np.zeros((len(CHANNELS), n_cells))
+        out[0] = surf_sum / n
+        out[1] = free_sum / n
+        out[2] = obs
+        out[3:6] = col / np.maximum(colw, 1e-9)
+        vols.append(out.reshape(len(CHANNELS), R, A, H).astype(np.float32))
+    return vols
+
+
+def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, grid: Grid) -> tuple[np.ndarray, ...]:
+    """One view of one object, before its splat: the depth read at each cell's pixel d (n_cells,), the cells it
+    sees and sees free (bool), and the object's own points in world coordinates (M, 3) with their colours (M, 3)."""
+    n_cells = len(centres)
+    h, w = v.depth.shape
+    # geometry.world_to_pixel written out (the same operations), without stacking (u, v) to take them apart
+    pc = transform_points(invert_rigid(v.cam_to_world), centres)
+    zc = pc[:, 2]
+    zs = np.where(np.abs(zc) < EPS, EPS, zc)
+    u = np.rint(v.K[0, 0] * pc[:, 0] / zs + v.K[0, 2]).astype(np.intp)
+    r = np.rint(v.K[1, 1] * pc[:, 1] / zs + v.K[1, 2]).astype(np.intp)
+    inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
+    d = np.zeros(n_cells)
+    # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
+    if v.flying is None:
+        d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
+    else:
+        at = r[inside] * w + u[inside]
+        d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
+    seen = inside & (d > 0) & (zc < d + margin)
+    free = seen & (zc < d - margin)
+    if grid.others_unseen and v.others is not None:
+        # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
+        # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
+        # this object's margin, a wall no instance standing alone has; those cells stay unobserved
+        theirs = np.zeros(n_cells, bool)
+        theirs[inside] = v.others[r[inside] * w + u[inside]]
+        seen &= ~theirs | free
+    if grid.carve_to_plane:
+        free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
+    # the object's own points: back-project its pixels
+    vv, uu = np.divmod(v.pixels, w)
+    z = v.depth.reshape(-1)[v.pixels]
+    good = z > 0
+    vv, uu, z = vv[good], uu[good], z[good]
+    pw = camera_to_world(pixels_to_camera(uu, vv, z, v.K), v.cam_to_world)
+    rgb = v.rgb.reshape(-1, 3)[v.pixels[good]]
+    rgb = _UNIT_BYTE[rgb] if rgb.dtype == np.uint8 else rgb.astype(np.float64) / 255.0   # the same floats
+    return d, seen, free, pw, rgb
 
 
 def matching_features(volumes: np.ndarray, *, free_weight: float = 0.5, colour_weight: float = 0.15,
