@@ -153,7 +153,14 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
 
 
 def _splat_many(grid: Grid, items: list[tuple]) -> list[np.ndarray]:
-    """:func:`_splat` of each (frame, pts_world (M, 3), values (M, V), basis or None), V the same for all: the
+    """:func:`_splat` of each item (:func:`_splat_stack`)."""
+    R, A, H = grid.shape
+    out = _splat_stack(grid, items)
+    return [out[:, i].reshape(-1, R, A, H) for i in range(len(items))]
+
+
+def _splat_stack(grid: Grid, items: list[tuple]) -> np.ndarray:
+    """(V+1, len(items), R A H): :func:`_splat` of each (frame, pts_world (M, 3), values (M, V), basis or None), V the same for all: the
     same arrays (the same floats), by one set of array operations over all the items' points (each item's object
     frame repeated per point; a scalar and an array of it give the same IEEE results) and one bincount a channel,
     item i's corners in bins i (n_cells + 1) + cell, each bin summing the same products in the same order."""
@@ -162,7 +169,7 @@ def _splat_many(grid: Grid, items: list[tuple]) -> list[np.ndarray]:
     nv = items[0][2].shape[1] + 1 if items else 1
     counts = np.array([len(it[1]) for it in items], np.intp)
     if counts.sum() == 0:
-        return [np.zeros((nv, R, A, H)) for _ in items]
+        return np.zeros((nv, len(items), n_cells))
     local = np.concatenate([(pts - fr.origin) @ (plane_basis(fr.up) if bs is None else bs).T
                             for fr, pts, _, bs in items if len(pts)])
     values = np.concatenate([vals for _, pts, vals, _ in items if len(pts)])
@@ -195,7 +202,7 @@ def _splat_many(grid: Grid, items: list[tuple]) -> list[np.ndarray]:
     out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=size).reshape(len(items), -1)[:, :n_cells]
     for c, vc in enumerate(np.ascontiguousarray(values.T)):   # each channel's values contiguous
         out[c + 1] = np.bincount(flat, weights=(w * vc).reshape(-1), minlength=size).reshape(len(items), -1)[:, :n_cells]
-    return [out[:, i].reshape(nv, R, A, H) for i in range(len(items))]
+    return out
 
 
 def _percentile75(x: np.ndarray) -> float:
@@ -243,39 +250,46 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
         centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
         cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
         margin = grid.carve_margin_cells * cell
-        # surf_sum, free_sum, obs, col, colw
-        states.append((np.zeros(n_cells), np.zeros(n_cells), np.zeros(n_cells), np.zeros((3, n_cells)), np.zeros(n_cells)))
         for v in views:
-            reads.append((len(states) - 1, frame, basis) + _read_view(v, centres, margin, frame, grid))
-    sps = _splat_many(grid, [(frame, pw, rgb, basis) for _, frame, basis, _, _, _, pw, rgb in reads])
-    for (k, _, _, d, seen, free, _, _), sp in zip(reads, sps):
-        surf_sum, free_sum, obs, col, colw = states[k]
-        sp = sp.reshape(4, -1)
-        # point density depends on resolution and distance: measure splat weight against this frame's
-        # typical occupied-cell weight so that evidence is the same for near and far, small and large
-        hit = sp[0] > 0
-        typical = _percentile75(sp[0][hit]) if hit.any() else 1.0
-        surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
-        # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
-        # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
-        # points alone says nothing about whether it is empty
-        seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
-        free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
-        obs += seen
-        surf_sum += surf * seen
-        free_sum += free
-        col += sp[1:]
-        colw += sp[0]
-    vols = []
-    for surf_sum, free_sum, obs, col, colw in states:
-        n = np.maximum(obs, 1.0)
-        out = np.zeros((len(CHANNELS), n_cells))
-        out[0] = surf_sum / n
-        out[1] = free_sum / n
-        out[2] = obs
-        out[3:6] = col / np.maximum(colw, 1e-9)
-        vols.append(out.reshape(len(CHANNELS), R, A, H).astype(np.float32))
-    return vols
+            reads.append((len(states), frame, basis) + _read_view(v, centres, margin, frame, grid))
+        states.append(frame)
+    if not reads:
+        return [np.zeros((len(CHANNELS), R, A, H), np.float32) for _ in objects]
+    sp = _splat_stack(grid, [(frame, pw, rgb, basis) for _, frame, basis, _, _, _, pw, rgb in reads])
+    d = np.stack([rd[3] for rd in reads])             # (views, n_cells), every object's views in turn
+    seen = np.stack([rd[4] for rd in reads])
+    free = np.stack([rd[5] for rd in reads])
+    # point density depends on resolution and distance: measure splat weight against this frame's
+    # typical occupied-cell weight so that evidence is the same for near and far, small and large
+    hit = sp[0] > 0
+    typical = np.array([_percentile75(sp[0, i][hit[i]]) if hit[i].any() else 1.0 for i in range(len(reads))])
+    surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical)[:, None])
+    # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
+    # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
+    # points alone says nothing about whether it is empty
+    seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
+    free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
+    k = np.array([rd[0] for rd in reads])
+    if np.array_equal(k, np.arange(len(objects))):   # one view each (single-view labelling): the sums are the
+        obs, surf_sum, free_sum = seen.astype(np.float64), surf * seen, free.astype(np.float64)   # terms (0 + x = x)
+        col, colw = sp[1:], sp[0]
+    else:                                            # each object's sums over its views, in view order
+        obs, surf_sum, free_sum = (np.zeros((len(objects), n_cells)) for _ in range(3))
+        col = np.zeros((3, len(objects), n_cells))
+        colw = np.zeros((len(objects), n_cells))
+        for i, o in enumerate(k):
+            obs[o] += seen[i]
+            surf_sum[o] += surf[i] * seen[i]
+            free_sum[o] += free[i]
+            col[:, o] += sp[1:, i]
+            colw[o] += sp[0, i]
+    n = np.maximum(obs, 1.0)
+    out = np.zeros((len(objects), len(CHANNELS), n_cells))
+    out[:, 0] = surf_sum / n
+    out[:, 1] = free_sum / n
+    out[:, 2] = obs
+    out[:, 3:6] = (col / np.maximum(colw, 1e-9)).transpose(1, 0, 2)
+    return list(out.reshape(len(objects), len(CHANNELS), R, A, H).astype(np.float32))
 
 
 def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, grid: Grid) -> tuple[np.ndarray, ...]:
