@@ -36,8 +36,11 @@ from functools import lru_cache
 
 import numpy as np
 
-from ..geometry import camera_to_world, pixels_to_camera, plane_basis, world_to_pixel
+from ..geometry import EPS, camera_to_world, invert_rigid, pixels_to_camera, plane_basis, transform_points
 from .depthedges import steady_depth_at
+
+_UNIT_BYTE = np.arange(256) / 255.0    # each byte's value in [0, 1], float64
+_UNIT_BYTE.setflags(write=False)
 
 CHANNELS = ("surface", "free", "observed", "red", "green", "blue")
 FEATURES = ("surface", "free", "red*surface", "green*surface", "blue*surface")
@@ -102,14 +105,33 @@ def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
 def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarray:
     """:func:`cell_centres` with the object frame's ``plane_basis`` (3, 3) already computed."""
     R, A, H = grid.shape
-    rho = (np.arange(R) + 0.5) / R * grid.radial_margin * frame.radius
-    phi = (np.arange(A) + 0.5) / A * 2 * np.pi
-    z = (np.arange(H) + 0.5) / H * grid.height_margin * frame.height
+    rho_unit, cos_phi, sin_phi, z_unit = _cell_axes(R, A, H, grid.radial_margin, grid.height_margin)
+    rho = rho_unit * frame.radius
+    z = z_unit * frame.height
     local = np.empty((R, A, H, 3))  # the products of a meshgrid, by broadcasting (same values, no grids)
-    local[..., 0] = rho[:, None, None] * np.cos(phi)[None, :, None]
-    local[..., 1] = rho[:, None, None] * np.sin(phi)[None, :, None]
+    local[..., 0] = rho[:, None, None] * cos_phi[None, :, None]
+    local[..., 1] = rho[:, None, None] * sin_phi[None, :, None]
     local[..., 2] = z[None, None, :]
-    return local @ basis + frame.origin
+    return (local.reshape(-1, 3) @ basis + frame.origin).reshape(R, A, H, 3)   # one (R A H, 3) product, not R A small ones
+
+
+@lru_cache(maxsize=16)
+def _cell_axes(R: int, A: int, H: int, radial_margin: float, height_margin: float) -> tuple[np.ndarray, ...]:
+    """The grid's cell-centre axes before the object's size: (i + 0.5) / R * radial_margin (R,), cos and sin of
+    the azimuths (A,), (k + 0.5) / H * height_margin (H,) (read-only; times the radius and the height they are the
+    same floats as computed in one expression, which multiplies left to right)."""
+    rho = (np.arange(R) + 0.5) / R * radial_margin
+    phi = (np.arange(A) + 0.5) / A * 2 * np.pi
+    z = (np.arange(H) + 0.5) / H * height_margin
+    out = (rho, np.cos(phi), np.sin(phi), z)
+    for a in out:
+        a.setflags(write=False)
+    return out
+
+
+def up_basis(up: np.ndarray) -> np.ndarray:
+    """``plane_basis(up)`` (3, 3), read-only, cached by the up vector's float64 value."""
+    return _basis(np.asarray(up, np.float64).tobytes())
 
 
 @lru_cache(maxsize=64)
@@ -127,24 +149,43 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
 
     ``basis``: the object frame's ``plane_basis`` when the caller has it already.
     """
+    return _splat_many(grid, [(frame, pts_world, values, basis)])[0]
+
+
+def _splat_many(grid: Grid, items: list[tuple]) -> list[np.ndarray]:
+    """:func:`_splat` of each item (:func:`_splat_stack`)."""
+    R, A, H = grid.shape
+    out = _splat_stack(grid, items)
+    return [out[:, i].reshape(-1, R, A, H) for i in range(len(items))]
+
+
+def _splat_stack(grid: Grid, items: list[tuple]) -> np.ndarray:
+    """(V+1, len(items), R A H): :func:`_splat` of each (frame, pts_world (M, 3), values (M, V), basis or None), V the same for all: the
+    same arrays (the same floats), by one set of array operations over all the items' points (each item's object
+    frame repeated per point; a scalar and an array of it give the same IEEE results) and one bincount a channel,
+    item i's corners in bins i (n_cells + 1) + cell, each bin summing the same products in the same order."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    out = np.zeros((values.shape[1] + 1, n_cells))
-    if len(pts_world) == 0:
-        return out.reshape(-1, R, A, H)
-    basis = plane_basis(frame.up) if basis is None else basis
-    local = (pts_world - frame.origin) @ basis.T
-    rho = np.hypot(local[:, 0], local[:, 1]) / (grid.radial_margin * frame.radius) * R - 0.5
+    nv = items[0][2].shape[1] + 1 if items else 1
+    counts = np.array([len(it[1]) for it in items], np.intp)
+    if counts.sum() == 0:
+        return np.zeros((nv, len(items), n_cells))
+    local = np.concatenate([(pts - fr.origin) @ (plane_basis(fr.up) if bs is None else bs).T
+                            for fr, pts, _, bs in items if len(pts)])
+    values = np.concatenate([vals for _, pts, vals, _ in items if len(pts)])
+    rad = np.repeat([grid.radial_margin * fr.radius for fr, *_ in items], counts)
+    hgt = np.repeat([grid.height_margin * fr.height for fr, *_ in items], counts)
+    rho = np.hypot(local[:, 0], local[:, 1]) / rad * R - 0.5
     phi = np.arctan2(local[:, 1], local[:, 0])
     phi += np.where(phi < 0, 2 * np.pi, 0.0)          # [0, 2 pi): np.mod(phi, 2 pi) for phi in [-pi, pi]
     phi = phi / (2 * np.pi) * A - 0.5
-    z = local[:, 2] / (grid.height_margin * frame.height) * H - 0.5
+    z = local[:, 2] / hgt * H - 0.5
     i0, j0, k0 = np.floor(rho), np.floor(phi), np.floor(z)
     fr, fp, fz = rho - i0, phi - j0, z - k0
     # the 8 corners at once: index and weight arrays (2, 2, 2, M), corner (di, dj, dk) along the first axes;
     # points just inside the axis or the rim/top keep their whole weight in the edge bin
     step = np.arange(2)[:, None]
-    ii = np.clip(i0.astype(np.intp) + step, 0, R - 1)
+    ii = np.minimum(np.maximum(i0.astype(np.intp) + step, 0), R - 1)   # np.clip, without its dispatch
     jj = j0.astype(np.intp) + step                    # in [-1, A]: wrapped about the axis
     jj[jj < 0] += A
     jj[jj >= A] -= A
@@ -154,12 +195,28 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
     w = wi[:, None, None] * wj[None, :, None] * wk[None, None, :]
     ok = ((kk >= 0) & (kk < H))[None, None, :] & (rho < R)
     # corners outside the grid (below the base, above the top, beyond the rim) go to a spare bin past the
-    # end, dropped after: one bincount per channel over every corner, no masked copies of the arrays
-    flat = np.where(ok, flat, n_cells).reshape(-1)
-    out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=n_cells + 1)[:n_cells]
-    for c in range(values.shape[1]):
-        out[c + 1] = np.bincount(flat, weights=(w * values[:, c]).reshape(-1), minlength=n_cells + 1)[:n_cells]
-    return out.reshape(-1, R, A, H)
+    # end of their item's block, dropped after: one bincount per channel over every corner, no masked copies
+    flat = (np.where(ok, flat, n_cells) + np.repeat(np.arange(len(items)) * (n_cells + 1), counts)).reshape(-1)
+    size = len(items) * (n_cells + 1)
+    out = np.empty((nv, len(items), n_cells))
+    out[0] = np.bincount(flat, weights=w.reshape(-1), minlength=size).reshape(len(items), -1)[:, :n_cells]
+    for c, vc in enumerate(np.ascontiguousarray(values.T)):   # each channel's values contiguous
+        out[c + 1] = np.bincount(flat, weights=(w * vc).reshape(-1), minlength=size).reshape(len(items), -1)[:, :n_cells]
+    return out
+
+
+def _percentile75(x: np.ndarray) -> float:
+    """``np.percentile(x, 75)`` (numpy's default linear method) of a non-empty 1-D float64 array, the same float:
+    the two order statistics by a partition and numpy's interpolation step, without its general machinery (which
+    costs more than the rest of a single-view cell's arithmetic)."""
+    n = len(x)
+    vi = 0.75 * n - 0.75                             # numpy's virtual index n q + (1 - q) - 1 for q = 0.75
+    lo = int(np.floor(vi))
+    hi = min(lo + 1, n - 1)
+    part = np.partition(x, (lo, hi)) if hi != lo else np.partition(x, lo)
+    a, b, t = part[lo], part[hi], vi - lo
+    diff = b - a
+    return float(b - diff * (1 - t)) if t >= 0.5 else float(a + diff * t)   # numpy's _lerp
 
 
 def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: ObjectFrame, tol: float) -> np.ndarray:
@@ -178,71 +235,102 @@ def _on_support(v: View, u: np.ndarray, r: np.ndarray, d: np.ndarray, frame: Obj
 
 def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
     """Fuse views of one object into a volume (len(CHANNELS), R, A, H) float32."""
+    return lift_many([(views, frame)], grid)[0]
+
+
+def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list[np.ndarray]:
+    """:func:`lift` of each (views, frame): the same volumes, with the splats of every view of every object done
+    together (:func:`_splat_many`: a single-view object's splat is a few dozen array operations on a few thousand
+    points, whose fixed cost, paid once for a frame's objects instead of once each, was most of it)."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
-    centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
-    cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
-    margin = grid.carve_margin_cells * cell
-    surf_sum = np.zeros(n_cells)
-    free_sum = np.zeros(n_cells)
-    obs = np.zeros(n_cells)
-    col = np.zeros((3, n_cells))
-    colw = np.zeros(n_cells)
-    for v in views:
-        h, w = v.depth.shape
-        uv, zc = world_to_pixel(centres, v.cam_to_world, v.K)
-        u = np.rint(uv[:, 0]).astype(np.intp)
-        r = np.rint(uv[:, 1]).astype(np.intp)
-        inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
-        d = np.zeros(n_cells)
-        # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
-        if v.flying is None:
-            d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
-        else:
-            at = r[inside] * w + u[inside]
-            d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
-        seen = inside & (d > 0) & (zc < d + margin)
-        free = seen & (zc < d - margin)
-        if grid.others_unseen and v.others is not None:
-            # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
-            # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
-            # this object's margin, a wall no instance standing alone has; those cells stay unobserved
-            theirs = np.zeros(n_cells, bool)
-            theirs[inside] = v.others[r[inside] * w + u[inside]]
-            seen &= ~theirs | free
-        if grid.carve_to_plane:
-            free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
-        # the object's own points: back-project its pixels
-        vv, uu = np.divmod(v.pixels, w)
-        z = v.depth.reshape(-1)[v.pixels]
-        good = z > 0
-        vv, uu, z = vv[good], uu[good], z[good]
-        pw = camera_to_world(pixels_to_camera(uu, vv, z, v.K), v.cam_to_world)
-        rgb = v.rgb.reshape(-1, 3)[v.pixels[good]].astype(np.float64) / 255.0
-        sp = _splat(grid, frame, pw, rgb, basis).reshape(4, -1)
-        # point density depends on resolution and distance: measure splat weight against this frame's
-        # typical occupied-cell weight so that evidence is the same for near and far, small and large
-        hit = sp[0] > 0
-        typical = np.percentile(sp[0][hit], 75) if hit.any() else 1.0
-        surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical))
-        # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
-        # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
-        # points alone says nothing about whether it is empty
-        seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
-        free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
-        obs += seen
-        surf_sum += surf * seen
-        free_sum += free
-        col += sp[1:]
-        colw += sp[0]
+    states, reads = [], []
+    for views, frame in objects:
+        basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
+        centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
+        cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
+        margin = grid.carve_margin_cells * cell
+        for v in views:
+            reads.append((len(states), frame, basis) + _read_view(v, centres, margin, frame, grid))
+        states.append(frame)
+    if not reads:
+        return [np.zeros((len(CHANNELS), R, A, H), np.float32) for _ in objects]
+    sp = _splat_stack(grid, [(frame, pw, rgb, basis) for _, frame, basis, _, _, _, pw, rgb in reads])
+    d = np.stack([rd[3] for rd in reads])             # (views, n_cells), every object's views in turn
+    seen = np.stack([rd[4] for rd in reads])
+    free = np.stack([rd[5] for rd in reads])
+    # point density depends on resolution and distance: measure splat weight against this frame's
+    # typical occupied-cell weight so that evidence is the same for near and far, small and large
+    hit = sp[0] > 0
+    typical = np.array([_percentile75(sp[0, i][hit[i]]) if hit[i].any() else 1.0 for i in range(len(reads))])
+    surf = 1.0 - np.exp(-sp[0] / (grid.surface_points_per_cell * typical)[:, None])
+    # a cell observed through the object's points only (no reading at its own pixel: a shadow, a dropout, a
+    # flying pixel) is observed where those points make it surface; the trilinear spill of a neighbour's
+    # points alone says nothing about whether it is empty
+    seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
+    free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
+    k = np.array([rd[0] for rd in reads])
+    if np.array_equal(k, np.arange(len(objects))):   # one view each (single-view labelling): the sums are the
+        obs, surf_sum, free_sum = seen.astype(np.float64), surf * seen, free.astype(np.float64)   # terms (0 + x = x)
+        col, colw = sp[1:], sp[0]
+    else:                                            # each object's sums over its views, in view order
+        obs, surf_sum, free_sum = (np.zeros((len(objects), n_cells)) for _ in range(3))
+        col = np.zeros((3, len(objects), n_cells))
+        colw = np.zeros((len(objects), n_cells))
+        for i, o in enumerate(k):
+            obs[o] += seen[i]
+            surf_sum[o] += surf[i] * seen[i]
+            free_sum[o] += free[i]
+            col[:, o] += sp[1:, i]
+            colw[o] += sp[0, i]
     n = np.maximum(obs, 1.0)
-    out = np.zeros((len(CHANNELS), n_cells))
-    out[0] = surf_sum / n
-    out[1] = free_sum / n
-    out[2] = obs
-    out[3:6] = col / np.maximum(colw, 1e-9)
-    return out.reshape(len(CHANNELS), R, A, H).astype(np.float32)
+    out = np.zeros((len(objects), len(CHANNELS), n_cells))
+    out[:, 0] = surf_sum / n
+    out[:, 1] = free_sum / n
+    out[:, 2] = obs
+    out[:, 3:6] = (col / np.maximum(colw, 1e-9)).transpose(1, 0, 2)
+    return list(out.reshape(len(objects), len(CHANNELS), R, A, H).astype(np.float32))
+
+
+def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, grid: Grid) -> tuple[np.ndarray, ...]:
+    """One view of one object, before its splat: the depth read at each cell's pixel d (n_cells,), the cells it
+    sees and sees free (bool), and the object's own points in world coordinates (M, 3) with their colours (M, 3)."""
+    n_cells = len(centres)
+    h, w = v.depth.shape
+    # geometry.world_to_pixel written out (the same operations), without stacking (u, v) to take them apart
+    pc = transform_points(invert_rigid(v.cam_to_world), centres)
+    zc = pc[:, 2]
+    zs = np.where(np.abs(zc) < EPS, EPS, zc)
+    u = np.rint(v.K[0, 0] * pc[:, 0] / zs + v.K[0, 2]).astype(np.intp)
+    r = np.rint(v.K[1, 1] * pc[:, 1] / zs + v.K[1, 2]).astype(np.intp)
+    inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
+    d = np.zeros(n_cells)
+    # depth at the cells' pixels, flying pixels read as 0 (the frame's flags, else tested at those pixels only)
+    if v.flying is None:
+        d[inside] = steady_depth_at(v.depth, r[inside], u[inside])
+    else:
+        at = r[inside] * w + u[inside]
+        d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
+    seen = inside & (d > 0) & (zc < d + margin)
+    free = seen & (zc < d - margin)
+    if grid.others_unseen and v.others is not None:
+        # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
+        # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
+        # this object's margin, a wall no instance standing alone has; those cells stay unobserved
+        theirs = np.zeros(n_cells, bool)
+        theirs[inside] = v.others[r[inside] * w + u[inside]]
+        seen &= ~theirs | free
+    if grid.carve_to_plane:
+        free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
+    # the object's own points: back-project its pixels
+    vv, uu = np.divmod(v.pixels, w)
+    z = v.depth.reshape(-1)[v.pixels]
+    good = z > 0
+    vv, uu, z = vv[good], uu[good], z[good]
+    pw = camera_to_world(pixels_to_camera(uu, vv, z, v.K), v.cam_to_world)
+    rgb = v.rgb.reshape(-1, 3)[v.pixels[good]]
+    rgb = _UNIT_BYTE[rgb] if rgb.dtype == np.uint8 else rgb.astype(np.float64) / 255.0   # the same floats
+    return d, seen, free, pw, rgb
 
 
 def matching_features(volumes: np.ndarray, *, free_weight: float = 0.5, colour_weight: float = 0.15,

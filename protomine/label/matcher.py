@@ -56,7 +56,7 @@ from ..capture import Capture, read_capture
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
-from ..ingest.volume import Grid, lift, matching_features
+from ..ingest.volume import Grid, lift, lift_many, matching_features, up_basis
 from ..mine.library import Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
@@ -285,9 +285,9 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
             frames += [frames[0]] * (len(centre_offsets) - len(frames))   # camera above the centre: repeats
             vols.append(np.stack([lift(views, f, grid) for f in frames]))
         else:
-            vols.append(lift(views, p.frame, grid))
+            vols.append((views, p.frame))              # lifted together below (lift_many: the same volumes)
         centre = np.asarray(p.frame.origin, np.float64) + 0.5 * float(p.frame.height) * np.asarray(p.frame.up, np.float64)
-        cams.append(plane_basis(np.asarray(p.frame.up, np.float64)) @ (fd.cam_to_world[:3, 3] - centre)
+        cams.append(up_basis(p.frame.up) @ (fd.cam_to_world[:3, 3] - centre)
                     if fd is not None else np.zeros(3))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
@@ -299,6 +299,8 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
                       "center_world": [float(x) for x in p.center_world],
                       "base_world": [float(x) for x in p.frame.origin], "up": [float(x) for x in p.frame.up],
                       "size_m": [float(p.frame.radius), float(p.frame.height)]})
+    if vols and not centre_offsets:
+        vols = lift_many(vols, grid)
     R, A, H = grid.shape
     stack = np.stack(vols) if vols else np.zeros((0,) + ((len(centre_offsets),) if centre_offsets else ()) + (6, R, A, H),
                                                    np.float32)
