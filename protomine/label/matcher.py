@@ -65,10 +65,9 @@ from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
-from ..mine.tilts import TiltBank, TiltGrid
+from ..mine.tilts import TiltBank, TiltGrid, grid_aspect
 from .. import rotations as rot
 from ..mine.viewnorm import ViewNormaliser
-from ..mine.tilts import grid_aspect
 from . import symmetric as sym
 from ..mine.viewsearch import ExactFaces, ViewSearch  # noqa: F401  (ExactFaces: the label search's part, re-exported)
 from ..rotations import matrix_to_quat
