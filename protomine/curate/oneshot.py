@@ -59,8 +59,8 @@ fitting on the members left after taking the k nearest read the distances as lar
 Clusters need ``MIN_CAL_MEMBERS`` + max(k, ``MIN_CAL_MEMBERS``) members in the store.  The prototype returned (and added by ``--add``) is the fused
 one; its picture volume fuses the store volumes the same way.
 
-Symmetric re-ranking (``[mine] find_symmetric`` = M > 0; default 0 = off)
-------------------------------------------------------------------------
+Symmetric re-ranking (``[mine] find_symmetric`` = M > 0; default 64, 0 = off)
+-----------------------------------------------------------------------------
 The search is one-way: the example is the prototype, so only its side is tilted, scaled and resampled, while each
 object stays as gridded about its own visible footprint.  The M nearest objects by distance (ties by object id) are
 also searched the other way, each as the one prototype against the example (after expansion: the fused prototype)
@@ -143,10 +143,10 @@ class Matches:
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
-        # the shortlist's symmetric distance (the mean of the search both ways); None beyond it or without it
-        both = [None] * len(self.distance) if self.reverse is None else \
-            [float(0.5 * (d + r)) if np.isfinite(r) else None for d, r in zip(self.distance, self.reverse)]
-        return [{"object": str(self.object[i]), "distance": float(self.distance[i]), "both_ways": both[i],
+        # both_ways: the shortlist's symmetric distance, its ranking key (None beyond it or without it)
+        return [{"object": str(self.object[i]), "distance": float(self.distance[i]),
+                 "both_ways": (None if self.reverse is None or not np.isfinite(self.reverse[i])
+                               else float(self.rank_key[i])),
                  "score": float(self.score[i]),
                  "yaw_deg": float(self.yaw_deg[i]), "scale": float(self.scale[i]), "cluster": int(self.cluster[i]),
                  "rotation": [float(v) for v in self.rotation[i]], "face": int(self.face[i])}
@@ -253,9 +253,10 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     vol1 = store.read_volume_at(np.array([ex]))[0]
     k_exp, r_rec = int(cfg["mine"]["find_expand"]), int(cfg["mine"]["find_reciprocal"])
     n_sym = int(cfg["mine"].get("find_symmetric", 0))
-    key = D
+    key, reverse = D, None
     if k_exp and n_sym:   # the expansion takes the nearest by the symmetric ranking
-        key = ranking_key(D, _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym))
+        reverse = _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym)
+        key = ranking_key(D, reverse)
     nb = _expansion_set(src, store, ex, key, weights, scales, grid, chunk, k_exp, r_rec) if k_exp else np.zeros(0, np.int64)
     if len(nb):
         # average query expansion: the example fused with its nearest matches (their found poses undone),
@@ -272,7 +273,9 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         D, yaw, fit, tilt = _search(src, X1, W1, aspect, scales, grid, chunk)
         mu, sigma, how = _calibrate(library, store, weights, scales, ex, D, grid, expand=k_exp, single=(mu, sigma))
         how += f", expanded with {len(nb)} matches"
-    reverse = _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym) if n_sym else None
+        reverse = None                        # the expanded search's shortlist is searched both ways again
+    if n_sym and reverse is None:
+        reverse = _reverse_distances(store, ex, D, X1[0], W1[0], weights, scales, grid, n_sym)
     p = library.prototypes
     off = float(np.median(np.asarray(p["single_mu"]) - np.asarray(p["fused_mu"]))) if library.n_clusters else 0.0
     s_sigma = max(sigma, float(np.median(p["single_sigma"]))) if library.n_clusters else sigma
