@@ -149,14 +149,7 @@ def _splat(grid: Grid, frame: ObjectFrame, pts_world: np.ndarray, values: np.nda
 
     ``basis``: the object frame's ``plane_basis`` when the caller has it already.
     """
-    return _splat_many(grid, [(frame, pts_world, values, basis)])[0]
-
-
-def _splat_many(grid: Grid, items: list[tuple]) -> list[np.ndarray]:
-    """:func:`_splat` of each item (:func:`_splat_stack`)."""
-    R, A, H = grid.shape
-    out = _splat_stack(grid, items)
-    return [out[:, i].reshape(-1, R, A, H) for i in range(len(items))]
+    return _splat_stack(grid, [(frame, pts_world, values, basis)])[:, 0].reshape((-1,) + grid.shape)
 
 
 def _splat_stack(grid: Grid, items: list[tuple]) -> np.ndarray:
@@ -240,7 +233,7 @@ def lift(views: list[View], frame: ObjectFrame, grid: Grid) -> np.ndarray:
 
 def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list[np.ndarray]:
     """:func:`lift` of each (views, frame): the same volumes, with the splats of every view of every object done
-    together (:func:`_splat_many`: a single-view object's splat is a few dozen array operations on a few thousand
+    together (:func:`_splat_stack`: a single-view object's splat is a few dozen array operations on a few thousand
     points, whose fixed cost, paid once for a frame's objects instead of once each, was most of it)."""
     R, A, H = grid.shape
     n_cells = R * A * H
