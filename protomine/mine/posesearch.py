@@ -477,10 +477,15 @@ def _distances_from_spectra(o: torch.Tensor, factors: tuple[torch.Tensor, ...], 
     idft = _idft_of_partials(A)
     num = torch.mm(idft, _cross_spectra(pn, o, sn))
     den = torch.mm(idft, _cross_spectra(pd, o[:, :, RH:2 * RH], sd))  # the w block
+    return distance_of_sums(num, den, min_overlap).view(A, M, n)
+
+
+def distance_of_sums(num: torch.Tensor, den: torch.Tensor, min_overlap: float) -> torch.Tensor:
+    """The distance from its sums (module docstring): num / (den + eps), num clamped at 0, inf where den <=
+    ``min_overlap`` (the caller's C x its per-channel threshold); in place, into ``num`` (``den`` is changed too)."""
     unseen = den <= min_overlap
     d = num.clamp_min_(0.0).div_(den.add_(EPS))
-    d.masked_fill_(unseen, float("inf"))
-    return d.view(A, M, n)
+    return d.masked_fill_(unseen, float("inf"))
 
 
 def _distances_in_scratch(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A: int, min_overlap: float,

@@ -46,7 +46,7 @@ import torch
 
 from .. import rotations as rot
 from ..ingest.proposals import min_enclosing_circle
-from .posesearch import EPS, scale_prototypes
+from .posesearch import distance_of_sums, scale_prototypes
 from .tilts import IDENTITY_DEG, CopyGeometry, TiltGrid, _resample_copies, solid_cells
 
 SAME_FACE_DEG = 10.0     # resting directions this close are searched once
@@ -171,8 +171,8 @@ def shifted_distances(obj: tuple[torch.Tensor, torch.Tensor], pc: np.ndarray, vc
     n, C = pc.shape[:2]
     S, A = len(scales), pc.shape[3]
     fnum, fden = copy_factors(pc, vc, scales)
-    return _distances(torch.mm(fnum.reshape(n * S, -1), obj[0].T), torch.mm(fden.reshape(n * S, -1), obj[1].T),
-                      C, min_overlap).reshape(n, S, A).numpy()
+    return distance_of_sums(torch.mm(fnum.reshape(n * S, -1), obj[0].T), torch.mm(fden.reshape(n * S, -1), obj[1].T),
+                            C * min_overlap).reshape(n, S, A).numpy()
 
 
 def copy_factors(pc: np.ndarray, vc: np.ndarray, scales: tuple[float, ...]) -> tuple[torch.Tensor, torch.Tensor]:
@@ -187,10 +187,6 @@ def copy_factors(pc: np.ndarray, vc: np.ndarray, scales: tuple[float, ...]) -> t
     return fnum, (C * v).reshape(n, len(scales), -1)
 
 
-def _distances(num: torch.Tensor, den: torch.Tensor, C: int, min_overlap: float) -> torch.Tensor:
-    """The distance from its sums (``posesearch``: clamped at 0, inf where den <= C ``min_overlap``)."""
-    d = num.clamp_min(0.0) / (den + EPS)
-    return torch.where(den <= C * min_overlap, torch.full_like(d, float("inf")), d)
 
 
 def face_candidates(found: np.ndarray, face_up: np.ndarray, face_count: np.ndarray, face_symmetry: np.ndarray
@@ -273,8 +269,8 @@ class ViewNormaliser:
         best = np.inf
         for m, row in enumerate(shifts):                              # each copy at its own shifts only
             sh = torch.from_numpy(np.flatnonzero(row))
-            d = _distances(torch.mm(obj[0].index_select(0, sh), fnum[m].T),
-                           torch.mm(obj[1].index_select(0, sh), fden[m].T), x.shape[1], 1e-3)
+            d = distance_of_sums(torch.mm(obj[0].index_select(0, sh), fnum[m].T),
+                                 torch.mm(obj[1].index_select(0, sh), fden[m].T), x.shape[1] * 1e-3)
             best = min(best, float(d.min()))
         return best
 
