@@ -5,6 +5,7 @@ sight hides what lies behind it)."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from protomine.mine.tilts import TiltGrid
 from protomine.mine.viewnorm import (ViewNormaliser, face_candidates, object_factors, shifted_distances,
@@ -185,3 +186,51 @@ def test_view_normalised_distance_equals_the_copy_by_copy_search():
         fast = norm.distance(X[None], Wv[None], 0, ups, cam)
         ref = _reference_distance(norm, X[None], Wv[None], 0, ups, cam)
         assert np.isfinite(ref) and abs(fast - ref) <= 1e-4 * ref, (fast, ref)
+
+
+def test_switch_scores_a_match_by_the_better_of_its_two_distances(tiny_world):
+    """[mine] view_normalise_score: the class decision is that of view_normalise_top alone; the score of every
+    (view, prototype) pair whose view-normalised distance was computed is the higher of the pose search's score and
+    the library's calibrated score of that distance, 1 - T_4((ln d - mu_k) / sigma_k) (README "Score"; the Student-t
+    tail from scipy here), and every other pair keeps the pose search's score.  The view-normalised distances are
+    recomputed pair by pair on each view's shortlist written out from its definition (the ``top`` nearest within
+    1.5 x the nearest)."""
+    import json
+    from scipy.stats import t as student_t
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.library import read_library
+
+    def matcher(top: int, score: bool):
+        lib = read_library(tiny_world["library"])
+        c = lib.config
+        c["mine"].update(view_normalise_top=top, view_normalise_score=score)
+        lib.attrs["config"] = json.dumps(c)
+        return make_matcher(lib, tiny_world["cfg"])
+
+    st = open_store(tiny_world["store"])
+    vols = st.read_single_views()
+    az = np.random.default_rng(2).uniform(0.0, 2 * np.pi, len(vols))   # cameras 50 degrees up, as the captures'
+    cams = np.stack([np.cos(az), np.sin(az), np.full(len(vols), np.tan(np.deg2rad(50.0)))], 1)
+    cams /= np.linalg.norm(cams, axis=1, keepdims=True)
+    plain, dec, both = matcher(0, False).match(vols, cams), matcher(2, False).match(vols, cams), matcher(2, True)
+    got = both.match(vols, cams)
+    np.testing.assert_array_equal(got["best"], dec["best"])
+    np.testing.assert_array_equal(got["distance"], dec["distance"])
+    pr = both.library.prototypes
+    X, W = both.features(vols)
+    raised = 0
+    for i in range(len(vols)):
+        D = plain["distance"][i]
+        near = sorted(range(both.K), key=lambda k: (D[k], k))[:2]
+        for k in range(both.K):
+            want = plain["score"][i, k]
+            if k in near and D[k] <= 1.5 * min(D):
+                ups = face_candidates(np.array([0.0, 0.0, 1.0]), pr["face_up"][k], pr["face_count"][k],
+                                      pr["face_symmetry"][k])
+                dv = both.normaliser.distance(X[i:i + 1], W[i:i + 1], k, ups, cams[i])
+                sv = student_t.sf((np.log(dv) - pr["single_mu"][k]) / pr["single_sigma"][k], 4)
+                raised += sv > want + 1e-6
+                want = max(want, sv)
+            assert got["score"][i, k] == pytest.approx(want, abs=1e-6), (i, k)
+    assert raised > 0      # the test sees the switch act (measured: 3 of the 36 pairs)

@@ -107,6 +107,7 @@ class Matcher:
     refine_top: int = 0
     centre_offsets: tuple[float, ...] = ()
     view_top: int = 0
+    view_score: bool = False
     chunk_size: int = 512
     symmetric_top: int = 0
     P: np.ndarray = field(init=False)
@@ -150,7 +151,9 @@ class Matcher:
         (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
         ``cameras`` (n, 3): each view's camera direction in its object frame (:func:`lift_frame`); with the
         library's ``[mine] view_normalise_top`` the decision distances of each view's nearest prototypes also take
-        the copies gridded as seen from that camera (``mine.viewnorm``; None: not).
+        the copies gridded as seen from that camera (``mine.viewnorm``; None: not), and with ``view_score`` (``[mine]
+        view_normalise_score``) their scores the higher of the pose search's and that of the view-normalised distance
+        (the same calibration, the face kind of the pose search's match).
         Volumes (n, C, 6, R, A, H): C candidate object frames of each object (:func:`lift_frame` with
         ``centre_offsets``); per object and prototype the candidate at the least distance gives every figure,
         and ``centre`` (n, K) says which.
@@ -198,7 +201,11 @@ class Matcher:
         # view prototypes (when the library has them) vote on the class; pose and score stay the 3-D prototype's
         D = self.search.vote(X, W, D)
         if self.normaliser is not None and cameras is not None:  # the prototypes gridded as seen from the camera
-            D = self.normaliser.improve(X, W, D, up, cameras)
+            Dv = self.normaliser.distances(X, W, D, up, cameras)
+            D = np.fmin(D, Dv)
+            if self.view_score:  # ``[mine] view_normalise_score``: the better of the two distances' scores
+                Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
+                S = np.where(np.isfinite(Dv), np.maximum(S, Sv), S)
         if self.tilt_ratios is not None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, best_second_ratio(D), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
@@ -250,6 +257,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
                  rings=score_rings(lib_cfg, grid.radial_bins), refine_top=int(m.get("label_refine_top", 0)),
                  centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
+                 view_score=bool(m.get("view_normalise_score", False)),
                  symmetric_top=int(m.get("label_symmetric", 0))))
 
 

@@ -274,12 +274,12 @@ class ViewNormaliser:
             best = min(best, float(d.min()))
         return best
 
-    def improve(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
-        """Decision distances (n, K): D (n, K) of views X (n, C, R, A, H), W (n, R, A, H), with each view's ``top``
-        nearest prototypes (within ``within`` x its nearest) taking the lesser of D and the view-normalised
-        distance; ``up`` (n, K, 3) the faces the pose search found, ``cameras`` (n, 3) the camera directions in the
-        views' object frames (a row of zeros or NaN: none, D kept)."""
-        out = np.array(D, np.float64, copy=True)
+    def distances(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
+        """View-normalised distances (n, K) of views X (n, C, R, A, H), W (n, R, A, H) to each view's ``top`` nearest
+        prototypes by D (n, K) (within ``within`` x its nearest), NaN for every other pair; ``up`` (n, K, 3) the faces
+        the pose search found, ``cameras`` (n, 3) the camera directions in the views' object frames (a row of zeros
+        or NaN: none, the row all NaN)."""
+        out = np.full(np.shape(D), np.nan)
         face_up, face_count, face_symmetry = self.faces
         for i in range(len(D)):
             cam = np.asarray(cameras[i], np.float64)
@@ -293,5 +293,11 @@ class ViewNormaliser:
             for k in order[Df[order] <= self.within * Df[order[0]]]:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
-                out[i, k] = min(out[i, k], self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj))
+                out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj)
         return out
+
+    def improve(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
+        """Decision distances (n, K): D (n, K) of views X (n, C, R, A, H), W (n, R, A, H), with each view's ``top``
+        nearest prototypes (within ``within`` x its nearest) taking the lesser of D and the view-normalised
+        distance (:meth:`distances`; arguments as there)."""
+        return np.fmin(np.asarray(D, np.float64), self.distances(X, W, D, up, cameras))
