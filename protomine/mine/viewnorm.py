@@ -37,7 +37,9 @@ canonical 0.844 / 0.949, a copy every 60 degrees compared within 30 0.852 / 0.93
 Used by the label decision only (``[mine] view_normalise_top``, :meth:`label.matcher.Matcher.match` with the views'
 camera directions): each view's ``top`` nearest prototypes (within ``within`` x its nearest distance) take the
 lesser of their pose-searched distance and this one, and the nearest then names the class; the pose and the score
-stay those of the pose search (the score's calibration judges the plain distance).
+stay those of the pose search (the score's calibration judges the plain distance), unless ``[mine]
+view_normalise_score``: then each shortlisted prototype's score is the higher of the pose search's and that of this
+distance (:meth:`ViewNormaliser.distances`, read by ``label.matcher``).
 """
 from __future__ import annotations
 
