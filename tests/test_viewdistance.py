@@ -205,3 +205,64 @@ def test_score_rings_from_the_config():
     assert score_rings(cfg, 8) is None                                   # default: counted like the rest
     half = load_config(None, {"mine": {"score_margin_ring": 0.5}})
     assert score_rings(half, 8) == (7, 0.5)                               # R = 8, margin 1.15: bin 7 is beyond
+
+
+def test_surface_mass_factor_matches_the_definition():
+    """[mine] score_surface_mass: the distance at the pose times exp(a |ln((sum w v x_s + e) / (sum w v mu_s + e))|),
+    written out as an explicit loop over cells (module docstring of mine.viewdistance)."""
+    from protomine.mine.viewdistance import MASS_EPS
+    rng = np.random.default_rng(8)
+    x, w = rng.random((2, C, R, A, H)), rng.random((2, R, A, H))
+    P, V = rng.random((1, C, R, A, H)), rng.random((1, R, A, H))
+    x[1, 0] *= 0.3                                          # the second view saw far less surface
+    plain = reliable_distances(x, w, P, V, None, np.zeros((2, 1)), np.ones((2, 1)))[:, 0]
+    got = reliable_distances(x, w, P, V, None, np.zeros((2, 1)), np.ones((2, 1)), mass=0.7)[:, 0]
+    for i in range(2):
+        mv = mp = 0.0
+        for r in range(R):
+            for a in range(A):
+                for h in range(H):
+                    mv += w[i, r, a, h] * V[0, r, a, h] * x[i, 0, r, a, h]
+                    mp += w[i, r, a, h] * V[0, r, a, h] * P[0, 0, r, a, h]
+        np.testing.assert_allclose(got[i], plain[i] * np.exp(0.7 * abs(np.log((mv + MASS_EPS) / (mp + MASS_EPS)))),
+                                   rtol=1e-6)
+    assert got[1] / plain[1] > got[0] / plain[0]
+
+
+def test_half_the_surface_costs_a_factor_two_to_the_weight():
+    """By arithmetic: a view holding half the prototype's surface in every cell it saw has a mass ratio of 1/2,
+    so its distance grows by exp(a ln 2) = 2^a; twice the surface costs the same (|ln 2|)."""
+    p = np.zeros((1, C, R, A, H))
+    p[0, 0, :2, :, :3] = 1.0
+    ones = np.ones((1, R, A, H))
+    for scale in (0.5, 2.0):
+        x = p * np.array([scale, 1.0])[None, :, None, None, None]
+        plain = reliable_distances(x, ones, p, ones, None, np.zeros((1, 1)), np.ones((1, 1)))[0, 0]
+        got = reliable_distances(x, ones, p, ones, None, np.zeros((1, 1)), np.ones((1, 1)), mass=1.5)[0, 0]
+        np.testing.assert_allclose(got / plain, 2.0 ** 1.5, rtol=1e-4)   # e = 1e-3 against a mass of 108 cells
+
+
+def test_mass_switch_scores_views_by_the_distance_the_library_was_calibrated_on(tiny_world, tmp_path):
+    """[mine] score_surface_mass: the calibration and the matcher both multiply the canonical face's distance by the
+    mass factor (each view's score is the library's score of that distance at the found pose), so the calibrated
+    location is at or above the plain one's (the factor is >= 1)."""
+    from protomine.config import load_config
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.library import read_library
+    from protomine.mine.pipeline import mine_store
+    cfg = load_config(tiny_world["config"], {"mine": {"score_surface_mass": 1.0}})
+    lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    plain = read_library(tiny_world["library"])
+    assert np.all(lib.prototypes["single_mu"] >= plain.prototypes["single_mu"] - 1e-9)
+    assert np.any(lib.prototypes["single_mu"] > plain.prototypes["single_mu"] + 1e-6)
+    st = open_store(tiny_world["store"])
+    vols = st.read_single_views(np.arange(min(4, len(st.single_object))))
+    m = make_matcher(lib, cfg)
+    assert m.mass == 1.0 and make_matcher(plain, tiny_world["cfg"]).mass == 0.0
+    got = m.match(vols)
+    X, W = m.features(vols)
+    pm = pose_distances(X, W, m.P, m.V, scales=m.scales)
+    Dm = reliable_distances(X, W, m.P, m.V, lib.prototypes["cell_reliability"], pm.yaw_deg, pm.scale, mass=1.0)
+    np.testing.assert_allclose(got["score"], lib.score(Dm, np.arange(lib.n_clusters)[None, :], single_view=True),
+                               atol=1e-5)

@@ -62,7 +62,7 @@ from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import best_second_ratio, library_cut, rule_scores
 from ..mine.reliability import reliable_distances
-from ..mine.viewdistance import score_rings, tilted_distances
+from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, grid_aspect
@@ -104,6 +104,7 @@ class Matcher:
     exact_faces: bool = False
     tolerant: bool = False
     rings: tuple[int, float] | None = None
+    mass: float = 0.0
     refine_top: int = 0
     centre_offsets: tuple[float, ...] = ()
     view_top: int = 0
@@ -187,9 +188,9 @@ class Matcher:
         lam = self.library.prototypes.get("cell_reliability") if self.weighted else None
         Dr = D
         again = self.tolerant or self.rings is not None
-        if lam is not None or again:
+        if lam is not None or again or self.mass > 0:
             Dr = np.where(upright, reliable_distances(X, W, self.P, self.V, lam, raw, fit_scale, tolerant=self.tolerant,
-                                                      rings=self.rings), D)
+                                                      rings=self.rings, mass=self.mass), D)
         if again and isinstance(self.search.bank, TiltBank):  # other faces: the same distance against the copy
             tilted = ~upright & np.isfinite(D)
             Dr = np.where(tilted, tilted_distances(self.search.bank, X, W, up, raw, fit_scale, tilted, tolerant=self.tolerant,
@@ -255,7 +256,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
     return ((library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
              cut, weighted),
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
-                 rings=score_rings(lib_cfg, grid.radial_bins), refine_top=int(m.get("label_refine_top", 0)),
+                 rings=score_rings(lib_cfg, grid.radial_bins), mass=score_mass(lib_cfg), refine_top=int(m.get("label_refine_top", 0)),
                  centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
                  view_score=bool(m.get("view_normalise_score", False)),
                  symmetric_top=int(m.get("label_symmetric", 0))))

@@ -40,7 +40,7 @@ from .library import Library, log_distance_fit, match_score, pad_quaternions, wr
 from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
-from .viewdistance import score_rings
+from .viewdistance import score_mass, score_rings
 from .searchpool import pooled
 from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
@@ -318,6 +318,7 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
     K, _, R, _, H = P.shape
     tolerant = bool(cfg["mine"].get("tolerant_residual", False))
     rings = score_rings(cfg, R)
+    mass = score_mass(cfg)
     again = tolerant or rings is not None   # views on another face are re-scored, not given the search distance
     out = np.full(len(store.single_object), np.inf)
     num, den = np.zeros((K, R, H)), np.zeros((K, R, H))
@@ -353,7 +354,7 @@ def single_view_calibration(store: ObjectStore, cfg: dict, P: np.ndarray, V: np.
         (yaw, sc), (a, c) = pose, sums
         if upright:
             lam = cell_reliability((num[k] - a)[None], (den[k] - c)[None])
-            return reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings)[:, 0]
+            return reliable_distances(xs, ws, Pk, Vk, lam, yaw, sc, tolerant=tolerant, rings=rings, mass=mass)[:, 0]
         if again and len(rows):  # another face: the same distance against the copy, no reliability
             return pair_distances(xs, ws, np.broadcast_to(Pk, (len(rows),) + Pk.shape[1:]),
                                   np.broadcast_to(Vk, (len(rows),) + Vk.shape[1:]), yaw[:, 0], sc[:, 0],

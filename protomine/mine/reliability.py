@@ -61,15 +61,16 @@ def cell_reliability(num: np.ndarray, den: np.ndarray, *, floor: float = FLOOR, 
 
 def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, reliability: np.ndarray | None,
                        yaw_deg: np.ndarray, scale: np.ndarray, *, min_overlap: float = 1e-3,
-                       tolerant: bool = False, rings: int | tuple[int, float] | None = None) -> np.ndarray:
+                       tolerant: bool = False, rings: int | tuple[int, float] | None = None,
+                       mass: float = 0.0) -> np.ndarray:
     """(n, K) re-weighted distances of single views X (n, C, R, A, H), W (n, R, A, H) to prototypes
     P (K, C, R, A, H), V (K, R, A, H) at their best poses yaw_deg, scale (n, K) (the pose search's, object ~=
     prototype rolled by yaw and scaled); inf where the view and the prototype share too little weight.
     reliability (K, R, H) or None (= 1: the plain distance at that pose).  ``tolerant``: per-cell residuals
     of ``viewdistance.tolerant_residuals`` instead of the squared ones; ``rings``: radial bins left out or down-weighted (None: none;
-    ``viewdistance.ring_weights``)."""
+    ``viewdistance.ring_weights``); ``mass``: the surface-mass weight (``viewdistance.mass_factor``; 0 = off)."""
     from .engine import align_to_prototype
-    from .viewdistance import residuals, ring_weights, weighted_mean
+    from .viewdistance import mass_factor, residuals, ring_weights, weighted_mean
     X, W = np.asarray(X, np.float32), np.asarray(W, np.float32)
     n, K = X.shape[0], P.shape[0]
     out = np.full((n, K), np.inf)
@@ -82,5 +83,6 @@ def reliable_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarra
             continue
         xa, wa = align_to_prototype(X[ok], W[ok], yaw_deg[ok, k], scale[ok, k])
         omega = ring_weights(wa.astype(np.float64) * V[k][None] * lam[k][None, :, None, :], rings)
-        out[ok, k] = weighted_mean(residuals(xa, P[k][None], tolerant), omega, min_overlap)
+        out[ok, k] = (weighted_mean(residuals(xa, P[k][None], tolerant), omega, min_overlap)
+                      * mass_factor(xa, wa, P[k][None], V[k][None], mass))
     return out
