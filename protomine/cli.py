@@ -100,3 +100,7 @@ _register()
 
 def main() -> None:
     app()
+
+
+if __name__ == "__main__":  # python -m protomine.cli
+    main()

@@ -238,3 +238,14 @@ def test_label_lists_every_bad_capture_before_work(tmp_path, tiny_world):
     assert res.exit_code == 2 and not (tmp_path / "l.jsonl").exists()
     lines = res.stderr.strip().splitlines()
     assert len(lines) == 2 and str(a) in lines[0] and str(b) in lines[1]
+
+
+@pytest.mark.parametrize("module", ["protomine", "protomine.cli"])
+def test_python_dash_m_runs_the_same_command_line(module):
+    """``python -m protomine`` and ``python -m protomine.cli`` run the app (Python's documented ``-m`` behaviour:
+    the package's ``__main__`` / the module run as ``__main__``), listing every pipeline command."""
+    import subprocess
+    import sys
+    out = subprocess.run([sys.executable, "-m", module, "--help"], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert all(cmd in out.stdout for cmd in PIPELINE)
