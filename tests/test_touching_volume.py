@@ -82,3 +82,30 @@ def test_scene_views_hand_each_object_the_pixels_the_others_hold():
     assert np.flatnonzero(va.others).tolist() == [7, 8]
     assert np.flatnonzero(vb.others).tolist() == [0, 1, 2]
     assert scene.views(c, others=True) == []
+
+
+def test_with_others_free_the_touching_object_lifts_as_it_stands_alone():
+    """[volume] others_free: the neighbour's surface inside the grid reads free of the object.  Here the neighbour
+    hides none of the object, so carving (Curless & Levoy 1996) from the scene without the neighbour gives the
+    expected volume on every cell the scene with it observes (the cells behind the neighbour stay unobserved)."""
+    T = look_at(np.array([0.0, -0.45, 0.40]), np.array([0.0, 0.0, 0.05]), np.array([0.0, 0.0, 1.0]))
+    alone, _ = _cast(T, [BOX])
+    touch, ids_touch = _cast(T, [BOX, NEIGHBOUR])
+    own = np.flatnonzero(ids_touch.reshape(-1) == 1)
+    theirs = ids_touch.reshape(-1) == 2
+    rgb = np.full((H, W, 3), 128, np.uint8)
+    frame = ObjectFrame(origin=np.zeros(3), up=np.array([0.0, 0.0, 1.0]), radius=0.05, height=0.10)
+    grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=12)
+    ref = lift([View(alone, rgb, K, T, own)], frame, grid).reshape(6, -1)
+    off = lift([View(touch, rgb, K, T, own, None, theirs)], frame, grid).reshape(6, -1)
+    on = lift([View(touch, rgb, K, T, own, None, theirs)], frame, replace(grid, others_free=True)).reshape(6, -1)
+    assert (np.abs(off[:3] - ref[:3]).max(0) > 0).sum() >= 10       # without it: the wall
+    seen = on[2] > 0
+    assert seen.sum() > 200 and (ref[2][seen] > 0).all()
+    np.testing.assert_array_equal(on[:3, seen], ref[:3, seen])       # surface, free, observed: as alone
+    unseen = replace(grid, others_unseen=True)
+    assert seen.sum() > (lift([View(touch, rgb, K, T, own, None, theirs)], frame, unseen)[2] > 0).sum()
+    # it wins over others_unseen (both set: the cells read free, not unobserved)
+    both = lift([View(touch, rgb, K, T, own, None, theirs)], frame,
+                replace(grid, others_free=True, others_unseen=True)).reshape(6, -1)
+    np.testing.assert_array_equal(both, on)

@@ -88,8 +88,8 @@ class SceneObjects:
     _held: dict = field(default_factory=dict, repr=False, compare=False)
 
     def views(self, p: Proposal, frame_ids: list[str] | None = None, *, others: bool = False) -> list[View]:
-        """The frames that see ``p``; with ``others`` (``Grid.others_unseen``, the only reader), each with the
-        pixels other proposals of the scene hold there (View.others)."""
+        """The frames that see ``p``; with ``others`` (``Grid.others_unseen`` or ``others_free``, the only readers),
+        each with the pixels other proposals of the scene hold there (View.others)."""
         K = self.capture.intrinsics.K
         out = []
         for fd in self.frames:

@@ -19,6 +19,8 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
   observed  number of frames that observed the cell (in front of or at the measured surface; with
             ``others_unseen``, only in front of a reading another object holds: a touching neighbour's
             surface is not evidence about this object)
+            With ``others_free`` a cell at a reading another object holds counts as free instead (the
+            neighbour, not this object, fills it: what the object standing alone would show there)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
 "unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A cell
@@ -58,6 +60,7 @@ class Grid:
     carve_to_plane: bool = False
     unread_min_surface: float = 0.0
     others_unseen: bool = False
+    others_free: bool = False
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -77,7 +80,8 @@ class View:
     flying: (H, W) bool ``depthedges.flying_pixels(depth)`` when the caller has it (a frame's, computed once for
     all its objects); None: lifting tests the pixels it reads (``depthedges.steady_depth_at``, the same flags).
     others: (H * W,) bool, the pixels whose readings other objects of the frame hold (their masks or proposals),
-    when the caller has them; with ``Grid.others_unseen`` a cell at such a reading is not observed.
+    when the caller has them; with ``Grid.others_unseen`` a cell at such a reading is not observed, with
+    ``Grid.others_free`` it is free.
     """
     depth: np.ndarray
     rgb: np.ndarray
@@ -306,13 +310,17 @@ def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, 
         d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
     seen = inside & (d > 0) & (zc < d + margin)
     free = seen & (zc < d - margin)
-    if grid.others_unseen and v.others is not None:
+    if (grid.others_unseen or grid.others_free) and v.others is not None:
         # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
         # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
-        # this object's margin, a wall no instance standing alone has; those cells stay unobserved
+        # this object's margin, a wall no instance standing alone has; those cells stay unobserved, or with
+        # others_free read free of this object (the neighbour holds them; with it away the ray went on past)
         theirs = np.zeros(n_cells, bool)
         theirs[inside] = v.others[r[inside] * w + u[inside]]
-        seen &= ~theirs | free
+        if grid.others_free:
+            free |= seen & theirs
+        else:
+            seen &= ~theirs | free
     if grid.carve_to_plane:
         free |= seen & (zc < d) & _on_support(v, u, r, d, frame, margin)
     # the object's own points: back-project its pixels
