@@ -258,3 +258,77 @@ def test_coarse_search_in_reused_scratch_equals_fresh_buffers_and_naive_search()
     Pc, Vc = bank.copies(np.repeat([0, 1], bank.T0), np.tile(bank.grid.level(0), 2))
     naive = pose_distances_naive(X, W, Pc, Vc, scales=scales)
     np.testing.assert_allclose(full.D, naive.D, rtol=1e-4, atol=1e-5)
+
+
+def _blas_threads() -> list[int]:
+    """numpy's and scipy's BLAS pools' thread counts, as threadpoolctl (scikit-learn's thread-pool inspector) reports."""
+    from threadpoolctl import threadpool_info
+    return [p["num_threads"] for p in threadpool_info() if p["user_api"] == "blas"]
+
+
+def test_copy_geometry_products_equal_on_one_and_two_blas_threads():
+    """The copies' geometry (tilts.copy_geometries, _forward_xyz, inverse_points: numpy products that the tilt fit runs
+    on one BLAS thread, cores.one_blas_thread) gives the same bits on OpenBLAS's pool of two threads."""
+    from threadpoolctl import threadpool_limits
+    rng = np.random.default_rng(3)
+    P, V = _protos(rng, K=3)
+    grid = TiltGrid()
+
+    def run() -> list[np.ndarray]:
+        out = []
+        for k in range(len(P)):
+            aspect = 0.6 + 0.3 * k
+            gs = tilts.copy_geometries(SHAPE, aspect, grid.dirs, grid, tilts.solid_points(P[k, 0], V[k], aspect, grid))
+            out.append(np.array([np.r_[g.rho_max, g.z_max, g.base, g.M.ravel()] for g in gs]))
+            for b in range(0, len(gs), 32):
+                out.append(tilts._forward_xyz(gs[b:b + 32], SHAPE))
+                out.append(tilts.inverse_points(gs[b:b + 32], SHAPE, np.full(len(gs[b:b + 32]), aspect)))
+        return out
+
+    with threadpool_limits(limits=2, user_api="blas"):
+        many = run()
+    with threadpool_limits(limits=1, user_api="blas"):
+        one = run()
+    assert len(one) == len(many) > 3
+    for a, b in zip(one, many):
+        np.testing.assert_array_equal(a, b)
+
+
+def test_tilt_fit_runs_numpy_blas_on_one_thread_with_the_same_result(monkeypatch):
+    """Inside PoseKMeans.fit with a tilt grid numpy's BLAS runs one thread (its previous count again afterwards), and
+    the fit equals the same fit on OpenBLAS's pool of two threads (every fitted array, to the bit)."""
+    from threadpoolctl import threadpool_limits
+
+    from protomine import cores
+    from protomine.mine.engine import ArraySource, PoseKMeans
+    from protomine.mine.synthetic import synthetic_prototypes
+    from protomine.mine.tiltbench import tumbled_objects
+    rng = np.random.default_rng(0)
+    grid = TiltGrid(nsides=(1, 2))
+    P = np.abs(synthetic_prototypes(rng, 3))
+    X, W, asp, _ = tumbled_objects(rng, P, 24, grid)
+    seen = []
+    forward = tilts._forward_xyz
+
+    def spy(gs, shape):
+        if not seen:
+            seen.append(_blas_threads())
+        return forward(gs, shape)
+
+    monkeypatch.setattr(tilts, "_forward_xyz", spy)
+    names = ("prototypes_", "prototype_weights_", "labels_", "yaw_deg_", "scale_", "distance_", "tilt_", "rotation_")
+
+    def fit():
+        m = PoseKMeans(n_clusters=3, n_init=1, max_iter=2, random_state=0, tilts=grid, scales=(0.9, 1.0, 1.1))
+        return m.fit(ArraySource(X, W, asp))
+
+    with threadpool_limits(limits=2, user_api="blas"):
+        fast = fit()
+        assert seen and all(n == 1 for n in seen[0]), seen
+        assert all(n == 2 for n in _blas_threads())  # set back after the fit
+        monkeypatch.setattr(cores, "one_blas_thread", __import__("contextlib").nullcontext)
+        seen.clear()
+        twin = fit()
+        assert seen and all(n == 2 for n in seen[0]), seen
+    for name in names:
+        np.testing.assert_array_equal(getattr(fast, name), getattr(twin, name), err_msg=name)

@@ -863,7 +863,9 @@ class PoseKMeans:
         use_cores()
         if self._grid() is None:
             return self._fit(source, scales)
-        with cores.large_blocks_mapped():  # the tilt search's large blocks of many sizes would fragment the heap
+        # the tilt search's large blocks of many sizes would fragment the heap; its tiny numpy products on the pool's
+        # threads ran on OpenBLAS's own thread pool as well (cores.one_blas_thread)
+        with cores.large_blocks_mapped(), cores.one_blas_thread():
             return self._fit(source, scales)
 
     def _fit(self, source: Source, scales: tuple[float, ...]) -> PoseKMeans:
