@@ -41,7 +41,9 @@ def _cast(T: np.ndarray, boxes: list[tuple[np.ndarray, np.ndarray]]) -> tuple[np
     return np.where(np.isfinite(t), t, 0.0).reshape(H, W), ids.reshape(H, W)
 
 
-def test_a_touching_neighbours_surface_is_unobserved_not_a_wall():
+def _box_scene():
+    """The box alone and beside its neighbour, seen from one camera: (alone depth, touching depth, the box's own
+    pixels, the neighbour's pixels as a mask, rgb, the box's object frame, the grid)."""
     T = look_at(np.array([0.0, -0.45, 0.40]), np.array([0.0, 0.0, 0.05]), np.array([0.0, 0.0, 1.0]))
     alone, ids_alone = _cast(T, [BOX])
     touch, ids_touch = _cast(T, [BOX, NEIGHBOUR])
@@ -51,7 +53,11 @@ def test_a_touching_neighbours_surface_is_unobserved_not_a_wall():
     theirs = ids_touch.reshape(-1) == 2
     rgb = np.full((H, W, 3), 128, np.uint8)
     frame = ObjectFrame(origin=np.zeros(3), up=np.array([0.0, 0.0, 1.0]), radius=0.05, height=0.10)
-    grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=12)
+    return T, alone, touch, own, theirs, rgb, frame, Grid(radial_bins=8, azimuth_bins=36, height_bins=12)
+
+
+def test_a_touching_neighbours_surface_is_unobserved_not_a_wall():
+    T, alone, touch, own, theirs, rgb, frame, grid = _box_scene()
     ref = lift([View(alone, rgb, K, T, own)], frame, grid).reshape(6, -1)
     off = lift([View(touch, rgb, K, T, own, None, theirs)], frame, grid).reshape(6, -1)
     on = lift([View(touch, rgb, K, T, own, None, theirs)], frame, replace(grid, others_unseen=True)).reshape(6, -1)
@@ -88,14 +94,7 @@ def test_with_others_free_the_touching_object_lifts_as_it_stands_alone():
     """[volume] others_free: the neighbour's surface inside the grid reads free of the object.  Here the neighbour
     hides none of the object, so carving (Curless & Levoy 1996) from the scene without the neighbour gives the
     expected volume on every cell the scene with it observes (the cells behind the neighbour stay unobserved)."""
-    T = look_at(np.array([0.0, -0.45, 0.40]), np.array([0.0, 0.0, 0.05]), np.array([0.0, 0.0, 1.0]))
-    alone, _ = _cast(T, [BOX])
-    touch, ids_touch = _cast(T, [BOX, NEIGHBOUR])
-    own = np.flatnonzero(ids_touch.reshape(-1) == 1)
-    theirs = ids_touch.reshape(-1) == 2
-    rgb = np.full((H, W, 3), 128, np.uint8)
-    frame = ObjectFrame(origin=np.zeros(3), up=np.array([0.0, 0.0, 1.0]), radius=0.05, height=0.10)
-    grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=12)
+    T, alone, touch, own, theirs, rgb, frame, grid = _box_scene()
     ref = lift([View(alone, rgb, K, T, own)], frame, grid).reshape(6, -1)
     off = lift([View(touch, rgb, K, T, own, None, theirs)], frame, grid).reshape(6, -1)
     on = lift([View(touch, rgb, K, T, own, None, theirs)], frame, replace(grid, others_free=True)).reshape(6, -1)
