@@ -53,6 +53,7 @@ from typing import Callable
 import numpy as np
 
 from ..capture import Capture, read_capture
+from ..cores import one_blas_thread
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
@@ -441,12 +442,13 @@ def _label_group(matcher: Matcher, paths: list[str], cfg: dict, seed: int, use_m
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
     pending: list[tuple[str, FrameObjects]] = []
-    for path in paths:
-        pending += _lift_capture(matcher, read_capture(path, check_images=False), cfg, seed, use_masks, progress, st, b)
-        if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
-            out += _match_batch(matcher, pending, st)
-            pending = []
-    out += _match_batch(matcher, pending, st)
+    with one_blas_thread():  # the planes' fits, the pose search's pool: many small numpy products (cores.one_blas_thread)
+        for path in paths:
+            pending += _lift_capture(matcher, read_capture(path, check_images=False), cfg, seed, use_masks, progress, st, b)
+            if sum(len(fo.facts) for _, fo in pending) >= batch_objects:
+                out += _match_batch(matcher, pending, st)
+                pending = []
+        out += _match_batch(matcher, pending, st)
     return out, st
 
 
