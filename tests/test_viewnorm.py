@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 
 from protomine.mine.tilts import TiltGrid
-from protomine.mine.viewnorm import (ViewNormaliser, face_candidates, object_factors, shifted_distances,
+from protomine.mine.viewnorm import (ViewNormaliser, _cross3, face_candidates, object_factors, shifted_distances,
                                       visible_geometry, visible_mask, visible_masks)
 from test_tilts import MARGINS, _solid, _volume
 
@@ -49,6 +49,14 @@ def test_footprint_seen_along_the_pair_holds_the_near_pillar_only():
     # one pillar (half-diagonal 0.028 of the whole footprint's radius 0.0775: a ratio of 0.37)
     assert along.base[0] > 0.35 * r_full
     assert along.rho_max / MARGINS[0] < 0.6 * r_full
+
+
+def test_cross3_equals_numpy_cross_to_the_bit():
+    # reference: numpy's own np.cross (the function it replaces on the projection's 3-vectors)
+    rng = np.random.default_rng(3)
+    for a, b in zip(rng.normal(size=(500, 3)) * 10.0 ** rng.integers(-6, 6, (500, 1)), rng.normal(size=(500, 3))):
+        assert np.cross(a, b).tobytes() == _cross3(a, b).tobytes()
+    assert _cross3(np.array([1.0, 0.0, 0.0]), np.array([0.0, 1.0, 0.0])).tolist() == [0.0, 0.0, 1.0]
 
 
 def test_face_candidates_merge_near_directions():
