@@ -82,11 +82,11 @@ def test_a_view_lifted_about_its_visible_part_fits_its_view_normalised_prototype
     plain = float(PoseBank(P[None], V[None], scales).match(X[None], Wv[None]).D[0, 0])
     cam = np.array([1.0, 0.0, 0.05]) / np.hypot(1.0, 0.05)
     D = np.array([[plain]])
-    out = norm.improve(X[None], Wv[None], D, np.array([[[0.0, 0.0, 1.0]]]), cam[None])
+    out = np.fmin(D, norm.distances(X[None], Wv[None], D, np.array([[[0.0, 0.0, 1.0]]]), cam[None]))  # the label decision's
     assert out[0, 0] <= plain
     assert out[0, 0] < 0.7 * plain, (out, plain)
     # no camera: nothing changes
-    assert norm.improve(X[None], Wv[None], D, np.array([[[0.0, 0.0, 1.0]]]), np.zeros((1, 3)))[0, 0] == plain
+    assert np.fmin(D, norm.distances(X[None], Wv[None], D, np.array([[[0.0, 0.0, 1.0]]]), np.zeros((1, 3))))[0, 0] == plain
 
 
 # --- the fast path against its definition -------------------------------------------------------------------

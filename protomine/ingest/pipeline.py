@@ -61,7 +61,7 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
     out = []
     by_id = {fd.id: fd for fd in scene.frames}
     for p in scene.proposals:
-        views = scene.views(p, frame_ids, others=grid.others_unseen or grid.others_free)
+        views = scene.views(p, frame_ids, others=grid.reads_others)
         if not views:
             continue
         vol = lift(views, p.frame, grid)
@@ -77,7 +77,7 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
             if sel.sum() < 10:
                 continue
             sframe, _ = object_frame(fd.points[sel], scene.plane)  # one frame: no outlier test (proposals.outlier_sigma)
-            singles.append((fid, lift(scene.views(p, [fid], others=grid.others_unseen or grid.others_free), sframe, grid)))
+            singles.append((fid, lift(scene.views(p, [fid], others=grid.reads_others), sframe, grid)))
         out.append(ObjectRecord(
             id=p.object_id, capture=scene.capture.name, key=p.key, origin=p.frame.origin, up=p.frame.up,
             center=p.center_world, radius_m=p.frame.radius, height_m=p.frame.height, n_points=p.n_points,

@@ -70,6 +70,11 @@ class Grid:
     def shape(self) -> tuple[int, int, int]:
         return (self.radial_bins, self.azimuth_bins, self.height_bins)
 
+    @property
+    def reads_others(self) -> bool:
+        """Whether lifting reads the pixels other objects hold (``others_unseen`` or ``others_free``)."""
+        return self.others_unseen or self.others_free
+
 
 @dataclass
 class View:
@@ -310,7 +315,7 @@ def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, 
         d[inside] = np.where(v.flying.reshape(-1)[at], 0.0, v.depth.reshape(-1)[at])
     seen = inside & (d > 0) & (zc < d + margin)
     free = seen & (zc < d - margin)
-    if (grid.others_unseen or grid.others_free) and v.others is not None:
+    if grid.reads_others and v.others is not None:
         # a ray that ends on another object (a touching neighbour) says the cells in front of that reading
         # are empty, but not what lies at it: the neighbour's own surface would read "seen, not free" in
         # this object's margin, a wall no instance standing alone has; those cells stay unobserved, or with

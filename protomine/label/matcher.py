@@ -287,7 +287,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         pix = p.pixels.get(frame_id)
         if pix is None or len(pix) < MIN_PIXELS:
             continue
-        views = scene.views(p, [frame_id], others=grid.others_unseen or grid.others_free)
+        views = scene.views(p, [frame_id], others=grid.reads_others)
         if centre_offsets:
             pts = fd.points[np.isin(fd.pixels, pix)]
             frames = centre_candidates(pts, p.frame, fd.cam_to_world[:3, 3], centre_offsets)

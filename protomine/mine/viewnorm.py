@@ -312,9 +312,3 @@ class ViewNormaliser:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
                 out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj)
-
-    def improve(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
-        """Decision distances (n, K): D (n, K) of views X (n, C, R, A, H), W (n, R, A, H), with each view's ``top``
-        nearest prototypes (within ``within`` x its nearest) taking the lesser of D and the view-normalised
-        distance (:meth:`distances`; arguments as there)."""
-        return np.fmin(np.asarray(D, np.float64), self.distances(X, W, D, up, cameras))
