@@ -318,6 +318,104 @@ def min_enclosing_circle(xy: np.ndarray) -> tuple[np.ndarray, float]:
     return np.array([cx, cy]), float(r)
 
 
+CIRCLES_START = 6     # candidate points per set of min_enclosing_circles' first round (the farthest from a centre)
+CIRCLES_GROW = 3      # ... added per round to the sets whose circle left a point out (the farthest from it)
+CIRCLES_MAX = 32      # sets still open beyond this many candidates get min_enclosing_circle, one by one
+
+
+@functools.lru_cache(maxsize=64)
+def _pairs_triples(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Index pairs (p, 2) and triples (t, 3) of n items, ascending within each."""
+    i = np.arange(n)
+    pairs = np.stack(np.triu_indices(n, 1), 1)
+    a, b, c = np.meshgrid(i, i, i, indexing="ij")
+    keep = (a < b) & (b < c)
+    triples = np.stack([a[keep], b[keep], c[keep]], 1)
+    for x in (pairs, triples):
+        x.flags.writeable = False
+    return pairs, triples
+
+
+def _circles_of_few(q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Smallest circles (centres (T, 2), radii (T,)) of T small point sets q (T, L, 2), by exhaustion: every pair's
+    diametral circle and every triple's circumcircle (triples within 1e-15 of collinear skipped: a pair's circle
+    holds them), the smallest holding all L points (within :func:`min_enclosing_circle`'s tolerance, compared in
+    squares); the smallest circle of a set is one of these (it touches 2 or 3 of its points), and holds them.  The
+    candidates are compared by squared radius; the radius returned is the distance from the winner's first point
+    to its centre, as :func:`min_enclosing_circle` measures it."""
+    T, L = q.shape[:2]
+    pairs, triples = _pairs_triples(L)
+    x, y = q[..., 0], q[..., 1]
+    ax, ay, bx, by = x[:, pairs[:, 0]], y[:, pairs[:, 0]], x[:, pairs[:, 1]], y[:, pairs[:, 1]]
+    px, py = (ax + bx) / 2, (ay + by) / 2
+    p2 = (ax - px) ** 2 + (ay - py) ** 2
+    ax, ay, bx, by = x[:, triples[:, 0]], y[:, triples[:, 0]], x[:, triples[:, 1]], y[:, triples[:, 1]]
+    cx, cy = x[:, triples[:, 2]], y[:, triples[:, 2]]
+    d = 2 * (ax * (by - cy) + bx * (cy - ay) + cx * (ay - by))
+    ok = np.abs(d) >= 1e-15
+    d[~ok] = 1.0
+    aa, bb, cc = ax * ax + ay * ay, bx * bx + by * by, cx * cx + cy * cy
+    ux = (aa * (by - cy) + bb * (cy - ay) + cc * (ay - by)) / d
+    uy = (aa * (cx - bx) + bb * (ax - cx) + cc * (bx - ax)) / d
+    u2 = (ax - ux) ** 2 + (ay - uy) ** 2
+    u2[~ok] = np.inf
+    cenx, ceny = np.concatenate([px, ux], 1), np.concatenate([py, uy], 1)  # (T, n circles)
+    rad2 = np.concatenate([p2, u2], 1)
+    lim = np.sqrt(rad2) * (1 + 1e-9) + 1e-12
+    dx = x[:, None, :] - cenx[..., None]
+    dy = y[:, None, :] - ceny[..., None]
+    holds = np.all(dx * dx + dy * dy <= (lim * lim)[..., None], axis=2)  # (T, n circles)
+    best = np.argmin(np.where(holds, rad2, np.inf), axis=1)  # the first of equal radii: deterministic
+    t = np.arange(T)
+    first = np.concatenate([pairs[:, 0], triples[:, 0]])[best]
+    cen = np.stack([cenx[t, best], ceny[t, best]], 1)
+    return cen, np.hypot(x[t, first] - cen[:, 0], y[t, first] - cen[:, 1])
+
+
+def min_enclosing_circles(xy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Smallest circles (centres (T, 2), radii (T,)) containing each of T point sets xy (T, N, 2): all sets at
+    once, the same circles as :func:`min_enclosing_circle` of each (up to float rounding: the circle is unique,
+    though not which of several points on it define it).
+
+    Rounds over all open sets at once: a candidate subset (first the ``CIRCLES_START`` points farthest from the
+    bounding box's centre) gets its smallest circle by exhaustion (:func:`_circles_of_few`).  The smallest circle
+    of a subset is no larger than the whole set's, so when it holds every point (the tolerance of
+    :func:`min_enclosing_circle`) it is the whole set's; a set with points outside gets its ``CIRCLES_GROW``
+    farthest points from that circle's centre added, and goes another round (the core-set iteration of Badoiu
+    & Clarkson, "Smaller core-sets for balls", SODA 2003, from memory, with exact circles of the subsets).  Sets
+    still open at ``CIRCLES_MAX`` candidates fall back to :func:`min_enclosing_circle`."""
+    pts = np.asarray(xy, dtype=np.float64)
+    T, N = pts.shape[:2]
+    centres, radii = np.zeros((T, 2)), np.zeros(T)
+    if T == 0 or N == 0:
+        return centres, radii
+    if N < 3:  # no triple: one by one
+        for i in range(T):
+            centres[i], radii[i] = min_enclosing_circle(pts[i])
+        return centres, radii
+    t = np.arange(T)
+    mid = (pts.min(axis=1) + pts.max(axis=1)) / 2
+    far = np.hypot(pts[..., 0] - mid[:, 0, None], pts[..., 1] - mid[:, 1, None])
+    L = min(N, CIRCLES_START)
+    cand = np.argsort(-far, axis=1, kind="stable")[:, :L]  # (T, L) indices of the farthest points
+    while t.size:
+        c, r = _circles_of_few(np.take_along_axis(pts[t], cand[:, :, None], axis=1))
+        dist = np.hypot(pts[t, :, 0] - c[:, 0, None], pts[t, :, 1] - c[:, 1, None])  # (t, N)
+        out = dist > r[:, None] * (1 + 1e-9) + 1e-12
+        done = ~out.any(axis=1)
+        centres[t[done]], radii[t[done]] = c[done], r[done]
+        t, cand, dist = t[~done], cand[~done], dist[~done]
+        if not t.size:
+            break
+        if cand.shape[1] >= CIRCLES_MAX:
+            for i in t:
+                centres[i], radii[i] = min_enclosing_circle(pts[i])
+            break
+        grow = np.argsort(-dist, axis=1, kind="stable")[:, :CIRCLES_GROW]
+        cand = np.concatenate([cand, grow], axis=1)
+    return centres, radii
+
+
 def statistical_outliers(points: np.ndarray, sigma: float, k: int = OUTLIER_NEIGHBOURS) -> np.ndarray:
     """(M,) bool: the points (M, 3) whose mean distance to their ``k`` nearest neighbours exceeds the mean of
     that figure over all points by more than ``sigma`` standard deviations (statistical outlier removal: Rusu,

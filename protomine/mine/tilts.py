@@ -65,7 +65,7 @@ from scipy.spatial import ConvexHull, QhullError
 
 from .. import rotations as rot
 from ..cores import reused_scratch, scratch
-from ..ingest.proposals import min_enclosing_circle
+from ..ingest.proposals import min_enclosing_circles
 from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw
 from .searchpool import pool_here, pooled
 
@@ -276,9 +276,9 @@ def copy_geometries(shape: tuple[int, int, int], aspect: float, ups: np.ndarray,
     zmin, zmax = q[..., 2].min(axis=1), q[..., 2].max(axis=1)
     # the cell centres sit up to half a cell inside the surface: grow by half a cell
     half = 0.5 * max(1.0 / R, aspect / H)
+    centres, radii = min_enclosing_circles(q[..., :2])  # all directions' footprints at once
     out = []
-    for M, qt, lo, hi in zip(Ms, q, zmin, zmax):
-        centre, radius = min_enclosing_circle(qt[:, :2])
+    for M, centre, radius, lo, hi in zip(Ms, centres, radii, zmin, zmax):
         height = max(hi - lo + half, 1e-3)
         radius = max(radius + 0.5 * half, 1e-3)
         base = np.array([centre[0], centre[1], lo - 0.5 * half])
