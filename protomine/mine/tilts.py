@@ -22,7 +22,7 @@ exactly as an object lying that way would be lifted.  Every cell of the copy's g
 p = M^T (q + b) + c0, into the prototype's grid and sampled there by trilinear interpolation (azimuth
 wraps; below the first radial bin centre the first bin is used; outside the prototype's cylinder the
 copy's weight is 0 = unknown).  A bank resamples its copies in blocks, one ``grid_sample`` per prototype of a
-block over its copies' cells inside the cylinder (:func:`_resample_copies`, :func:`sample_volumes`); the geometries (one enclosing circle per copy) are kept across passes for as long as
+block over its copies' cells inside the cylinder (:func:`_resample_copies`, :func:`sample_volumes`); the geometries (one enclosing circle per copy, all of a prototype's at once: ``ingest.proposals.min_enclosing_circles``) are kept across passes for as long as
 the hull of a prototype's solid cells and its aspect do not change.
 
 Untilting (inverse map)
@@ -268,7 +268,8 @@ def copy_geometries(shape: tuple[int, int, int], aspect: float, ups: np.ndarray,
                     solid: tuple[np.ndarray, np.ndarray]) -> list[CopyGeometry]:
     """Geometries of the copies of one prototype (grid ``shape`` (R, A, H), ``aspect``, solid cells ``solid``
     of :func:`solid_points`) resting with each direction ``ups`` (T, 3) pointing up: all directions rotated
-    at once, one enclosing circle each."""
+    at once, their enclosing circles computed together (``min_enclosing_circles``; one Python Welzl per direction
+    cost 0.34 ms, ~25 s CPU of 210 in mining 300 tumbled objects (tilt_mining row settings), the batch 0.03 ms)."""
     R, A, H = shape
     c0, p = solid
     Ms = rot.tilt_matrix(np.asarray(ups, np.float64).reshape(-1, 3))
@@ -468,7 +469,7 @@ def volume_on_face(vol: np.ndarray, aspect: float, up: np.ndarray, grid: TiltGri
 
 def _overlapped(prepare, run, pairs: list[tuple[int, int]]) -> None:
     """``prepare(pairs)`` then ``run(b0)`` for every block start b0 of ``COPY_BLOCK`` pairs, the blocks on the pool's
-    threads as in :func:`pooled`; ``prepare`` (the copies' geometries: enclosing circles in Python, on this thread)
+    threads as in :func:`pooled`; ``prepare`` (the copies' geometries, on this thread)
     runs a prototype at a time, and each block is started as soon as its pairs (sorted by prototype) are prepared,
     so this thread's share overlaps the threads' resampling.  The same blocks as ``prepare(pairs)`` then
     ``pooled(run, ...)``; ``prepare`` is only ever called on this thread."""
