@@ -514,12 +514,20 @@ def _distances_in_scratch(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A:
 def _first_min(t: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Minimum of t (L, ...) over its first axis and the first index holding it, as ``t.min(dim=0)``: the values
     by ``amin`` (a vectorised reduction; with indices, torch's reduction over the outer axis of a (36, 16,384)
-    block took 2.1 ms instead of 0.07), the index by one comparison per row, last row first."""
+    block took 2.1 ms instead of 0.07), the index by one comparison of every row with it, as bytes (1 where equal)
+    times the row's rank L - s, whose greatest value over the rows (vectorised like the values) is the first row
+    holding the minimum; none (a NaN minimum) gives index 0.  (36, 16,384): 0.9-1.2 ms instead of 1.7-2.6 ms for a
+    masked fill per row, last row first; the same indices.)"""
     D = t.amin(dim=0)
-    idx = torch.zeros(D.shape, dtype=torch.int64)
-    for s in range(t.shape[0] - 1, -1, -1):
-        idx.masked_fill_(t[s] == D, s)
-    return D, idx
+    L = t.shape[0]
+    if L > 255:  # ranks beyond a byte: one masked fill per row, last row first
+        idx = torch.zeros(D.shape, dtype=torch.int64)
+        for s in range(L - 1, -1, -1):
+            idx.masked_fill_(t[s] == D, s)
+        return D, idx
+    rank = torch.arange(L, 0, -1, dtype=torch.uint8).view((L,) + (1,) * (t.dim() - 1))
+    top = torch.eq(t, D).view(torch.uint8).mul_(rank).amax(dim=0).to(torch.int64)
+    return D, torch.where(top > 0, L - top, 0)
 
 
 def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
