@@ -112,3 +112,22 @@ def test_scale_window_search_matches_the_naive_twin_within_each_window(row_block
     si = np.argmin(flat, axis=2) // P.shape[3]
     np.testing.assert_array_equal(got.scale[1:], np.asarray(scales, np.float32)[si[1:]])
     assert np.all(np.isinf(got.D[0])) and np.all(got.scale[0] == np.float32(scales[0]))
+
+
+@pytest.mark.parametrize("shape", [(36, 64), (36, 5, 7), (300, 9)])
+def test_first_min_is_the_first_index_of_the_least(shape):
+    # ties (small integers), inf rows and all-inf columns: the index is numpy.argmin's, the first occurrence of
+    # the minimum (numpy's documented rule); a column whose minimum is NaN gets index 0 (the module's rule)
+    import torch
+    from protomine.mine.posesearch import _first_min
+    rng = np.random.default_rng(11)
+    t = rng.integers(0, 4, shape).astype(np.float32)
+    t[rng.random(shape) < 0.2] = np.inf
+    flat = t.reshape(shape[0], -1)
+    flat[:, 0] = np.inf
+    D, idx = _first_min(torch.from_numpy(t))
+    np.testing.assert_array_equal(D.numpy(), t.min(axis=0))
+    np.testing.assert_array_equal(idx.numpy(), np.argmin(t, axis=0))
+    flat[3, 1] = np.nan
+    D, idx = _first_min(torch.from_numpy(t))
+    assert np.isnan(D.numpy().reshape(-1)[1]) and idx.numpy().reshape(-1)[1] == 0

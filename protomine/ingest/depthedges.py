@@ -113,8 +113,7 @@ def _flags(p: np.ndarray, half: int, shape: tuple[int, int], want: np.ndarray | 
     dc, tc = d.reshape(-1)[c][:, None], tol.reshape(-1)[c][:, None]
     stc = SUPPORT_REL * tc
     adj = np.array([i * width + j for i in (-1, 0, 1) for j in (-1, 0, 1) if i or j])
-    adjacent = np.count_nonzero(np.abs(flat[at[:, None] + adj] - dc) <= stc, axis=1)
-    keep = adjacent < WIDE_ADJACENT_SUPPORT          # a supported reading is never flagged: the rest are done
+    keep = _unsupported(flat, at, adj, dc[:, 0], stc[:, 0])   # a supported reading is never flagged: the rest are done
     c, at, dc, tc, stc = c[keep], at[keep], dc[keep], tc[keep], stc[keep]
     w = WIDE_WINDOW // 2
     off = np.array([i * width + j for i in range(-w, w + 1) for j in range(-w, w + 1) if i or j])
@@ -128,6 +127,25 @@ def _flags(p: np.ndarray, half: int, shape: tuple[int, int], want: np.ndarray | 
     one = (near ^ far) & (support < WIDE_SUPPORT_ONE) & (missing >= WIDE_MISSING)
     flags.reshape(-1)[c[both | one]] = True
     return flags
+
+
+def _unsupported(flat: np.ndarray, at: np.ndarray, adj: np.ndarray, dc: np.ndarray, stc: np.ndarray) -> np.ndarray:
+    """(n,) bool: the candidates at flat indices ``at`` (n,) of ``flat`` with fewer than ``WIDE_ADJACENT_SUPPORT`` of
+    their neighbours at offsets ``adj`` within ``stc`` of their reading ``dc`` (n,) (NaN neighbours support nothing).
+    With the threshold 1 (a supported reading: at least one) the neighbours are tried one offset at a time among
+    the candidates none has supported yet: almost every candidate (a pixel beside a true edge) is supported by its
+    first or second neighbour (demo frames: 66 of 38,890 candidates unsupported), so most of the (n, 8) gather and
+    its tests are never done.  The same candidates as counting all of them."""
+    if WIDE_ADJACENT_SUPPORT != 1:
+        return np.count_nonzero(np.abs(flat[at[:, None] + adj] - dc[:, None]) <= stc[:, None], axis=1) < WIDE_ADJACENT_SUPPORT
+    left = np.arange(len(at))                        # candidates without a supporting neighbour so far
+    for off in adj:
+        left = left[~(np.abs(flat[at[left] + off] - dc[left]) <= stc[left])]
+        if not len(left):
+            break
+    keep = np.zeros(len(at), bool)
+    keep[left] = True
+    return keep
 
 
 def steady_depth(depth: np.ndarray) -> np.ndarray:

@@ -258,6 +258,8 @@ def complex_spectra(spec: torch.Tensor, A: int) -> torch.Tensor:
 SPECTRA_BLOCK_BYTES = 1 << 21  # the object factors of one block of a chunk (stays in cache; 2 MB: 0.173 s instead of
 # 0.19 s for 1 MB, spectra of 4,096 objects, 1 thread, best of 5 interleaved at load 3)
 SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
+MATCH_SHARES = 1  # blocks of a chunk's objects per thread when several threads match them (PoseBank.match_spectra)
+MATCH_MIN_BLOCK = 32  # ... of at least this many objects (fewer: one block on torch's threads, as before)
 
 
 
@@ -514,12 +516,20 @@ def _distances_in_scratch(o: torch.Tensor, factors: tuple[torch.Tensor, ...], A:
 def _first_min(t: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
     """Minimum of t (L, ...) over its first axis and the first index holding it, as ``t.min(dim=0)``: the values
     by ``amin`` (a vectorised reduction; with indices, torch's reduction over the outer axis of a (36, 16,384)
-    block took 2.1 ms instead of 0.07), the index by one comparison per row, last row first."""
+    block took 2.1 ms instead of 0.07), the index by one comparison of every row with it, as bytes (1 where equal)
+    times the row's rank L - s, whose greatest value over the rows (vectorised like the values) is the first row
+    holding the minimum; none (a NaN minimum) gives index 0.  (36, 16,384): 0.9-1.2 ms instead of 1.7-2.6 ms for a
+    masked fill per row, last row first; the same indices.)"""
     D = t.amin(dim=0)
-    idx = torch.zeros(D.shape, dtype=torch.int64)
-    for s in range(t.shape[0] - 1, -1, -1):
-        idx.masked_fill_(t[s] == D, s)
-    return D, idx
+    L = t.shape[0]
+    if L > 255:  # ranks beyond a byte: one masked fill per row, last row first
+        idx = torch.zeros(D.shape, dtype=torch.int64)
+        for s in range(L - 1, -1, -1):
+            idx.masked_fill_(t[s] == D, s)
+        return D, idx
+    rank = torch.arange(L, 0, -1, dtype=torch.uint8).view((L,) + (1,) * (t.dim() - 1))
+    top = torch.eq(t, D).view(torch.uint8).mul_(rank).amax(dim=0).to(torch.int64)
+    return D, torch.where(top > 0, L - top, 0)
 
 
 def _best_pose_nska(d: torch.Tensor, scales: tuple[float, ...]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -669,11 +679,25 @@ class PoseBank:
         distances' memory).  ``run(fn, items)``, when given, runs the blocks (``[fn(i) for i in items]`` by default;
         the tilt search spreads them over threads, ``searchpool.pooled``).  ``reuse``: each block's temporaries in its
         thread's reusable buffers (:func:`_distances_in_scratch`; the caller opens ``cores.reused_scratch``).
+
+        Given neither ``run`` nor ``row_block``, with torch at T > 1 threads (and not on one of the search pool's
+        threads) the objects are matched in ``MATCH_SHARES`` x T blocks on the search's pool, one torch thread each
+        (``searchpool.pooled``), instead of one block whose products and transforms run on torch's T threads: each
+        block's products are single-threaded kernels, which give the same values as the threaded ones on the whole
+        chunk (the distances, yaws and scales of the bench's 4,096 objects x 32 prototypes identical to the bit), and
+        the threads never wait for each other within a chunk.  Bench assignment data, 2 threads, load 11, median of
+        4: 9.8 s wall / 1.90 s CPU -> 5.7 s / 1.02 s; see the commit for the bench row at lower load.
         """
         n, S, K, A = o.shape[1], len(self.scales), self.K, self.A
         span = 2 * window + 1
         if return_all:
             return self._match_all(o, min_overlap, scale_index, window)
+        if run is None and row_block is None:
+            pool = pool_here()
+            threads = torch.get_num_threads()
+            if pool is not None and n >= 2 * MATCH_MIN_BLOCK:
+                row_block = max(MATCH_MIN_BLOCK, -(-n // (MATCH_SHARES * threads)))
+                run = lambda fn, items: list(pool.map(fn, items))  # noqa: E731
         if scale_index is None or span >= S:
             windows = [(0, S, None)]
         else:
@@ -782,12 +806,24 @@ def _dense(x: np.ndarray, w: np.ndarray, P: np.ndarray, V: np.ndarray, min_overl
 
 def dense_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *,
                     chunk_size: int = 1024, min_overlap: float = 1e-3) -> np.ndarray:
-    """Pose-unaware distance (prototype as is, one pose): (N, K) float32.  Baseline for the bench."""
+    """Pose-unaware distance (prototype as is, one pose): (N, K) float32.  Baseline for the bench.
+
+    Threaded as :meth:`PoseBank.match_spectra` matches a chunk: with torch at T > 1 threads each chunk's objects
+    in ``MATCH_SHARES`` x T blocks (of at least ``MATCH_MIN_BLOCK``) on the search's pool, one torch thread each,
+    so that the bench compares the two searches run the same way."""
     X = np.asarray(X, dtype=np.float32)
     W = np.asarray(W, dtype=np.float32)
     _check_arrays(X, W, np.asarray(P), np.asarray(V))
-    out = [_dense(X[i:i + chunk_size], W[i:i + chunk_size], P, V, min_overlap)
-           for i in range(0, X.shape[0], chunk_size)]
+    pool = pool_here()
+    out = []
+    for i in range(0, X.shape[0], chunk_size):
+        n = min(chunk_size, X.shape[0] - i)
+        if pool is None or n < 2 * MATCH_MIN_BLOCK:
+            out.append(_dense(X[i:i + n], W[i:i + n], P, V, min_overlap))
+            continue
+        b = max(MATCH_MIN_BLOCK, -(-n // (MATCH_SHARES * torch.get_num_threads())))
+        out += pool.map(lambda j: _dense(X[j:min(j + b, i + n)], W[j:min(j + b, i + n)], P, V, min_overlap),
+                        range(i, i + n, b))
     return np.concatenate(out) if out else np.zeros((0, P.shape[0]), np.float32)
 
 
