@@ -38,7 +38,9 @@ Algorithm
    cost of a large fit by n_init).  With ``seed_check`` (and ``face_pairs``) each restart's partition is judged by
    its k-medoids cost on the stable-face seeding matrix instead, and the seed partition itself, its labels held
    (:func:`_held_fit`; members far from their prototype join it turned onto one of their own resting faces,
-   :func:`_own_faces`), is kept when the passes did not lower that cost.
+   :func:`_own_faces`), is kept when the passes did not lower that cost.  With ``seed_hold_t`` instead, the seed
+   partition is held so only when the fit's is significantly costlier on that matrix (a paired t over its objects,
+   ``seeding.paired_worse_t``); every other fit stands.
 4. Symmetry (``symmetry.detect_symmetry``: each prototype's asymmetry under candidate rotations against
    the variance of its mean from the members' aligned moments) and the canonical yaw rule: prototypes
    are rolled into their canonical frame and member yaws are reported in it, modulo the symmetry period
