@@ -38,7 +38,9 @@ Algorithm
    cost of a large fit by n_init).  With ``seed_check`` (and ``face_pairs``) each restart's partition is judged by
    its k-medoids cost on the stable-face seeding matrix instead, and the seed partition itself, its labels held
    (:func:`_held_fit`; members far from their prototype join it turned onto one of their own resting faces,
-   :func:`_own_faces`), is kept when the passes did not lower that cost.
+   :func:`_own_faces`), is kept when the passes did not lower that cost.  With ``seed_hold_t`` instead, the seed
+   partition is held so only when the fit's is significantly costlier on that matrix (a paired t over its objects,
+   ``seeding.paired_worse_t``); every other fit stands.
 4. Symmetry (``symmetry.detect_symmetry``: each prototype's asymmetry under candidate rotations against
    the variance of its mean from the members' aligned moments) and the canonical yaw rule: prototypes
    are rolled into their canonical frame and member yaws are reported in it, modulo the symmetry period
@@ -88,7 +90,7 @@ from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
 from .posesearch import PoseBank, complex_spectra
-from .seeding import SEED_SIZE, PoseSeeder, medoid_cost
+from .seeding import SEED_SIZE, PoseSeeder, medoid_cost, paired_worse_t
 from .searchpool import ordered_map, pooled
 from .tilts import TiltBank, TiltGrid, make_bank
 
@@ -805,6 +807,10 @@ class PoseKMeans:
         from by their k-medoids cost on the stable-face matrix (``seeding.medoid_cost``, the objective the seeding
         lowered), and the seed partition is kept, its prototypes updated with the labels held fixed, unless the
         fit's cost is lower; the restarts are compared by that cost too (:meth:`_fit_restarts`).
+    seed_hold_t : > 0, with ``face_pairs`` and without ``seed_check``: the seed partition is held as ``seed_check``
+        holds it only when the fit's partition is significantly worse on the stable-face matrix: the paired t over
+        the seeding matrix's objects of their distance to their cluster's medoid, fit minus seed
+        (``seeding.paired_worse_t``), above this; otherwise the fit stands unchanged (0 = off).
 
     Fitted with tilts besides the above: ``tilt_`` (N,) indices into ``tilts.dirs`` (in the search frame),
     ``rotation_`` (N, 3, 3) object frame <- canonical prototype frame, ``up_`` (N, 3) each member's up
@@ -816,10 +822,12 @@ class PoseKMeans:
                  tol: float = 1e-4, chunk_size: int = 2048, random_state: int | None = None,
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
-                 tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False):
+                 tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
+                 seed_hold_t: float = 0.0):
         self.n_clusters = n_clusters
         self.face_pairs = face_pairs
         self.seed_check = seed_check
+        self.seed_hold_t = seed_hold_t
         self.scales = scales
         self.n_init = n_init
         self.max_iter = max_iter
@@ -903,6 +911,7 @@ class PoseKMeans:
         cache = self._new_cache()
         best, best_cost = None, np.inf
         check = self.seed_check and faces
+        hold_t = float(self.seed_hold_t) if faces and not check else 0.0
         for r in range(self.n_init):
             labels, refs = seeder.partition(K, r, rng)
             P0, V0, *a0 = _partition_seeds(sub, labels, refs, scales, self.chunk_size, cache, grid)
@@ -918,6 +927,10 @@ class PoseKMeans:
                     res, cost = _held_fit(fit_on, labels, P0, V0, scales=scales, chunk_size=self.chunk_size,
                                           moments=fit_on is source, cache=cache, grid=grid,
                                           aspect=a0[0] if a0 else None), held
+            elif hold_t > 0 and paired_worse_t(seeder.S, res.labels[seeder.index], labels[seeder.index]) > hold_t:
+                res = _held_fit(fit_on, labels, P0, V0, scales=scales, chunk_size=self.chunk_size,
+                                moments=fit_on is source, cache=cache, grid=grid, aspect=a0[0] if a0 else None)
+                cost = res.cost
             if best is None or cost < best_cost:
                 best, best_cost = res, cost
         if fit_on is not source:

@@ -33,6 +33,8 @@ Public API
 - ``kmedoids_plusplus(S, K, rng) -> medoids (K,)``
 - ``best_kmedoids(S, K, rng, starts=KMEDOIDS_STARTS) -> (labels, cost)``
 - ``medoid_cost(S, labels) -> float``: the k-medoids cost of any partition (each cluster's best medoid)
+- ``medoid_distances(S, labels) -> (n,)``, ``paired_worse_t(S, labels, reference) -> t``: per object, and the paired t
+  of one partition against another (``[mine] seed_hold_t``)
 - ``outlying(S) -> (n,) bool``: objects far from every other one (Tukey's fence on nearest-neighbour distances)
 - ``FaceDistance(aspect, scales, grid)``: a ``distance`` over yaw x scale x each prototype's stable resting
   directions (``faces.stable_ups``, exact directions instead of a tilt grid; ``[mine] face_pairs``)
@@ -234,6 +236,32 @@ def medoid_cost(S: np.ndarray, labels: np.ndarray) -> float:
     labels = np.asarray(labels)
     return float(sum(S[np.ix_(m, m)].sum(axis=1).min() for k in np.unique(labels)
                      for m in (np.flatnonzero(labels == k),)))
+
+
+def medoid_distances(S: np.ndarray, labels: np.ndarray) -> np.ndarray:
+    """(n,) each object's distance in the (n, n) matrix S to the medoid of its cluster under labels (n,) (the
+    member of least summed distance to the others, as :func:`medoid_cost`; their sum is that cost)."""
+    labels = np.asarray(labels)
+    out = np.empty(len(S), np.float64)
+    for k in np.unique(labels):
+        m = np.flatnonzero(labels == k)
+        out[m] = S[m, m[np.argmin(S[np.ix_(m, m)].sum(axis=1))]]
+    return out
+
+
+def paired_worse_t(S: np.ndarray, labels: np.ndarray, reference: np.ndarray) -> float:
+    """The paired t statistic over the objects of (distance to its medoid under ``labels`` minus that under
+    ``reference``) on the (n, n) matrix S (:func:`medoid_distances`): mean difference / its standard error
+    (Student's paired t; positive when ``labels`` is the costlier partition).  0 when no object's distance
+    differs; +inf when every difference is equal and positive."""
+    d = medoid_distances(S, labels) - medoid_distances(S, reference)
+    if len(d) < 2 or not np.any(d):
+        return 0.0
+    se = float(np.std(d, ddof=1)) / np.sqrt(len(d))
+    m = float(d.mean())
+    if se == 0.0:
+        return float(np.sign(m) * np.inf)
+    return m / se
 
 
 OUTLIER_FENCE = 1.5  # Tukey's inner fence: Q3 + 1.5 IQR
