@@ -39,6 +39,14 @@ A library mined with ``[mine] unknown_ratio`` (attributes ``unknown_tilt_ratios`
 match on another face by the conformal p-value of its best/second-best distance ratio instead, and flags by
 ``unknown_rule_cut`` (``mine.openset``, the other-face rule).
 
+A library mined with ``[mine] view_normalise_calibrate`` (fields ``single_view_mu`` ..., attribute ``unknown_view_cut``;
+:func:`view_calibration`) scores instead the lesser of the scored distance and the view-normalised one by its own
+calibration, fitted on the held-out views with their cameras (``pipeline.view_calibration``), and flags by
+``unknown_view_cut``; with ``[mine] view_normalise_ratio`` (``unknown_view_ratios``, ``unknown_view_ratio_cut``) that
+score is joined with the conformal p-value of the best/second-best decision-distance ratio by Fisher's combination
+(``openset.fisher_combine``) and flagged by ``unknown_view_ratio_cut``.  ``match`` also returns ``scored_distance``
+(the distance the pose search's calibration scores) and ``view_distance`` (NaN where none) for that calibration.
+
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
 decision order, each with its distance and score); with ``rotation`` [qx, qy, qz, qw] and ``face`` (see above).

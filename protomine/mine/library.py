@@ -31,7 +31,13 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  without them scores every match with single_mu, single_sigma; optional view_owner,
                  view_face (M,), view_features (M, C, R, A, H), view_weights (M, R, A, H): view prototypes
                  (``pipeline.view_prototypes``, ``[mine] view_prototype_members``), the mean aligned single
-                 views of the members resting on one face of a prototype, in the frame of that face
+                 views of the members resting on one face of a prototype, in the frame of that face; optional
+                 single_view_mu, single_view_sigma, single_view_tilt_mu, single_view_tilt_sigma (K,): the
+                 calibration of the lesser of the scored and the view-normalised distance (``[mine]
+                 view_normalise_calibrate``, ``pipeline.view_calibration``), read with the attributes
+                 unknown_view_cut (and, with ``[mine] view_normalise_ratio``, unknown_view_ratios, the sorted
+                 best/second distance ratios of the held-out views, and unknown_view_ratio_cut); a library without
+                 them scores as before
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
