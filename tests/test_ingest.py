@@ -270,3 +270,27 @@ def test_centre_candidates_recover_a_circle_from_its_camera_facing_arc():
     assert cands[1].height == frame.height
     # a camera straight above the centre has no direction away from it: the visible circle only
     assert centre_candidates(pts, frame, frame.origin + 0.5 * up, (0.0, 0.5)) == [frame]
+
+
+def test_single_views_keep_their_camera_direction_in_their_object_frame(tmp_path, cfg):
+    """single/camera: unit vectors whose elevation above the support plane is the camera's as seen from the object's
+    centre (geometry of ``_capture``'s orbit, from memory: sin el = (d sin 45 - h / 2) / |eye - centre|), and the
+    direction the label stage's ``lift_frame`` gives the same object in the same frame (label.matcher)."""
+    from protomine.label.matcher import lift_frame
+    h = 0.08
+    _capture(tmp_path / "c", [(S.cylinder(0.04, h), 0.0, (0.0, 0.0), (0.2, 0.3, 0.8))], n_frames=4, world_seed=3)
+    ingest_captures([tmp_path / "c"], tmp_path / "objects.h5", cfg)
+    st = open_store(tmp_path / "objects.h5")
+    cams = st.single_camera
+    assert cams is not None and cams.shape == (len(st.single_object), 3) and len(cams) >= 2
+    assert np.allclose(np.linalg.norm(cams, axis=1), 1.0)
+    d, el = 0.7, np.deg2rad(45.0)
+    want = np.arcsin((d * np.sin(el) - h / 2) / np.hypot(d * np.cos(el), d * np.sin(el) - h / 2))
+    assert np.allclose(np.arcsin(cams[:, 2]), want, atol=np.deg2rad(2.0))
+    cap = read_capture(tmp_path / "c")
+    grid = Grid.from_config(cfg)
+    for cam, fid in zip(cams, st.single_frame):
+        scene = find_objects(cap, cfg, np.random.default_rng(0), frame_ids=[fid])
+        fo = lift_frame(scene, fid, grid, W, geometry_ids=False)
+        assert len(fo.cameras) == 1
+        assert np.degrees(np.arccos(np.clip(fo.cameras[0] @ cam, -1, 1))) < 1.0

@@ -37,7 +37,8 @@ sigma_1 = s (objects two robust standard deviations closer than the bulk score 0
 Single-view calibration of an added prototype: single_mu = mu_1 + median_k(single_mu_k - fused_mu_k),
 single_sigma = max(sigma_1, median_k single_sigma_k); on other faces (``single_tilt_mu``, ``single_tilt_sigma``,
 when the library has them) the same with the library's median shift single_tilt_mu_k - single_mu_k and
-max(single_sigma, median_k single_tilt_sigma_k).
+max(single_sigma, median_k single_tilt_sigma_k); the view-normalised calibration (``single_view_mu`` ... ``[mine]
+view_normalise_calibrate``, when the library has it) likewise, each field shifted by its median from single_mu_k.
 Symmetry of the one-shot prototype: ``symmetry.detect_symmetry`` with the instance noise level
 exp(mu_1) / 2 per cell (a distance is a mean squared difference of two noisy instances).
 
@@ -505,6 +506,11 @@ def _add(lib: Library, path: Path, store: ObjectStore, mt: Matches, name: str, c
     if "single_tilt_mu" in p:  # other faces: the library's median shift from the canonical calibration
         new_proto["single_tilt_mu"] = np.array([op.single_mu + float(np.median(p["single_tilt_mu"] - p["single_mu"]))])
         new_proto["single_tilt_sigma"] = np.array([max(op.single_sigma, float(np.median(p["single_tilt_sigma"])))])
+    if "single_view_mu" in p:  # the view-normalised calibration ([mine] view_normalise_calibrate): the same shifts
+        for kind, base in (("single_view_mu", op.single_mu), ("single_view_tilt_mu", op.single_mu)):
+            new_proto[kind] = np.array([base + float(np.median(p[kind] - p["single_mu"]))])
+        for kind in ("single_view_sigma", "single_view_tilt_sigma"):
+            new_proto[kind] = np.array([max(op.single_sigma, float(np.median(p[kind])))])
     if "symmetry_rotations" in p:  # a one-shot prototype: no symmetry that moves up is tested (identity only)
         new_proto["symmetry_rotations"] = _pad_axis1(np.array([[[0.0, 0.0, 0.0, 1.0]]]), p["symmetry_rotations"].shape[1], 0.0)
     protos = {k: np.concatenate([p[k].astype(object) if p[k].dtype == object else p[k], new_proto[k].astype(p[k].dtype)])

@@ -15,7 +15,7 @@ from ..progress import Recorder, bar, detail, replay
 from ..provenance import folder_fingerprint, provenance
 from .proposals import SceneObjects, find_objects, object_frame
 from .store import CaptureRecord, ObjectRecord, ObjectStore, write_store
-from .volume import Grid, lift
+from .volume import Grid, lift, up_basis
 
 
 def capture_rng(seed: int, name: str) -> np.random.Generator:
@@ -54,6 +54,13 @@ def spread(items: list, n: int) -> list:
     return [items[int(round(i))] for i in np.linspace(0, len(items) - 1, n)] if n > 0 else []
 
 
+def view_camera(up: np.ndarray, centre: np.ndarray, cam_to_world: np.ndarray) -> np.ndarray:
+    """(3,) unit direction from an object's centre (world) to the camera of ``cam_to_world`` (4, 4), in the object
+    frame of ``up`` (``volume.up_basis``): the camera of a single view as the label stage's ``lift_frame`` gives it."""
+    v = up_basis(np.asarray(up, np.float64)) @ (np.asarray(cam_to_world, np.float64)[:3, 3] - np.asarray(centre, np.float64))
+    return v / max(float(np.linalg.norm(v)), 1e-12)
+
+
 def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[str] | None = None) -> list[ObjectRecord]:
     """Lift every proposal of a scene into an ObjectRecord (volume, views, crops)."""
     c = cfg["ingest"]
@@ -70,18 +77,20 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
         # thumbnails: the frames with the most pixels of the object, at most max_crops_per_object
         best = sorted(seen, key=lambda fid: -len(p.pixels[fid]))[: c["max_crops_per_object"]]
         crops = [(fid,) + make_crop(by_id[fid].rgb, by_id[fid].depth, p.pixels[fid], c["crop_size"]) for fid in best]
-        singles = []
+        singles, cams = [], []
         for fid in spread(seen, c["single_views_per_object"]):
             fd = by_id[fid]
             sel = np.isin(fd.pixels, p.pixels[fid])
             if sel.sum() < 10:
                 continue
-            sframe, _ = object_frame(fd.points[sel], scene.plane)  # one frame: no outlier test (proposals.outlier_sigma)
+            sframe, centre = object_frame(fd.points[sel], scene.plane)  # one frame: no outlier test (proposals.outlier_sigma)
             singles.append((fid, lift(scene.views(p, [fid], others=grid.reads_others), sframe, grid)))
+            cams.append(view_camera(sframe.up, centre, fd.cam_to_world))
         out.append(ObjectRecord(
             id=p.object_id, capture=scene.capture.name, key=p.key, origin=p.frame.origin, up=p.frame.up,
             center=p.center_world, radius_m=p.frame.radius, height_m=p.frame.height, n_points=p.n_points,
-            n_frames=len(seen), volume=vol, views=view_rows, crops=crops, single_views=singles))
+            n_frames=len(seen), volume=vol, views=view_rows, crops=crops, single_views=singles,
+            single_cameras=cams))
     return out
 
 

@@ -118,7 +118,7 @@ class ShardedObjectStore(ObjectStore):
         live_of = [{c for s, c in live if s == j} for j in range(len(rel))]
         obj, views, caps = {}, {}, {}
         crop_o, crop_f, crop_loc = [], [], []
-        sing_o, sing_f, sing_loc = [], [], []
+        sing_o, sing_f, sing_loc, sing_c = [], [], [], []
         shard_of, local = [], []
         n = 0
         for j, sh in enumerate(self.shards):
@@ -140,6 +140,8 @@ class ShardedObjectStore(ObjectStore):
             crop_loc.append(np.stack([np.full(len(rows), j), rows], 1))
             rows = np.flatnonzero(remap[sh.single_object] >= 0) if len(sh.single_object) else np.zeros(0, int)
             sing_o.append(remap[sh.single_object[rows]]); sing_f.append(sh.single_frame[rows])
+            sing_c.append(sh.single_camera[rows] if getattr(sh, "single_camera", None) is not None
+                          else np.full((len(rows), 3), np.nan))
             sing_loc.append(np.stack([np.full(len(rows), j), rows], 1))
             shard_of.append(np.full(len(keep), j, np.int64)); local.append(keep)
             n += len(keep)
@@ -149,6 +151,7 @@ class ShardedObjectStore(ObjectStore):
         self.crop_object, self.crop_frame = _concat(crop_o).astype(np.int64), _concat(crop_f)
         self.single_object, self.single_frame = _concat(sing_o).astype(np.int64), _concat(sing_f)
         self._crop_loc = _concat(crop_loc).reshape(-1, 2).astype(np.int64)
+        self.single_camera = _concat(sing_c).reshape(-1, 3).astype(np.float64) if sing_c else None
         self._single_loc = _concat(sing_loc).reshape(-1, 2).astype(np.int64)
         self._shard_of = _concat(shard_of).astype(np.int64)
         self._local = _concat(local).astype(np.int64)

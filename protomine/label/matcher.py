@@ -39,6 +39,14 @@ A library mined with ``[mine] unknown_ratio`` (attributes ``unknown_tilt_ratios`
 match on another face by the conformal p-value of its best/second-best distance ratio instead, and flags by
 ``unknown_rule_cut`` (``mine.openset``, the other-face rule).
 
+A library mined with ``[mine] view_normalise_calibrate`` (fields ``single_view_mu`` ..., attribute ``unknown_view_cut``;
+:func:`view_calibration`) scores instead the lesser of the scored distance and the view-normalised one by its own
+calibration, fitted on the held-out views with their cameras (``pipeline.view_calibration``), and flags by
+``unknown_view_cut``; with ``[mine] view_normalise_ratio`` (``unknown_view_ratios``, ``unknown_view_ratio_cut``) that
+score is joined with the conformal p-value of the best/second-best decision-distance ratio by Fisher's combination
+(``openset.fisher_combine``) and flagged by ``unknown_view_ratio_cut``.  ``match`` also returns ``scored_distance``
+(the distance the pose search's calibration scores) and ``view_distance`` (NaN where none) for that calibration.
+
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
 decision order, each with its distance and score); with ``rotation`` [qx, qy, qz, qw] and ``face`` (see above).
@@ -58,10 +66,10 @@ from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
 from ..ingest.volume import Grid, lift, lift_many, matching_features, up_basis
-from ..mine.library import Library, reduce_yaw
+from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import best_second_ratio, library_cut, rule_scores
+from ..mine.openset import best_second_ratio, fisher_combine, library_cut, ratio_pvalue, rule_scores
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
@@ -110,6 +118,7 @@ class Matcher:
     centre_offsets: tuple[float, ...] = ()
     view_top: int = 0
     view_score: bool = False
+    view_calibrated: bool = False
     chunk_size: int = 512
     symmetric_top: int = 0
     P: np.ndarray = field(init=False)
@@ -119,10 +128,14 @@ class Matcher:
     tilts: TiltGrid = field(init=False)
     tilt_ratios: np.ndarray | None = field(init=False)
     normaliser: ViewNormaliser | None = field(init=False)
+    view_ratios: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
         self.tilt_ratios = None if rule is None or not self.weighted else np.asarray(rule, np.float64)
+        vr = self.library.attrs.get("unknown_view_ratios")
+        self.view_ratios = (np.asarray(vr, np.float64) if self.view_calibrated and vr is not None
+                            and "unknown_view_ratio_cut" in self.library.attrs else None)
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -180,6 +193,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
+                    "scored_distance": z, "view_distance": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
@@ -202,13 +216,22 @@ class Matcher:
         # score then judges that match (argmax of the score lets a loosely calibrated prototype win)
         # view prototypes (when the library has them) vote on the class; pose and score stay the 3-D prototype's
         D = self.search.vote(X, W, D)
+        Dv = np.full(D.shape, np.nan)
         if self.normaliser is not None and cameras is not None:  # the prototypes gridded as seen from the camera
             Dv = self.normaliser.distances(X, W, D, up, cameras)
             D = np.fmin(D, Dv)
-            if self.view_score:  # ``[mine] view_normalise_score``: the better of the two distances' scores
+            if self.view_score and not self.view_calibrated:  # ``[mine] view_normalise_score``: the better of the two
                 Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
                 S = np.where(np.isfinite(Dv), np.maximum(S, Sv), S)
-        if self.tilt_ratios is not None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
+        if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
+            Dm = np.fmin(Dr, Dv)
+            S = self.library.score(np.where(np.isfinite(Dm), Dm, 1.0), np.arange(self.K)[None, :], single_view=True,
+                                   upright=upright, view_normalised=True)
+            S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
+            if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
+                r = best_second_ratio(D)
+                S = fisher_combine(S, np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0))
+        if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, best_second_ratio(D), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
@@ -222,6 +245,7 @@ class Matcher:
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face, "upright": upright,
+                "scored_distance": Dr, "view_distance": Dv,
                 "rotation": rotation, "best": best}
 
 
@@ -229,6 +253,15 @@ def view_centre_offsets(cfg: dict) -> tuple[float, ...]:
     """``[mine] view_centre_offsets`` of a library's config: () when off ([0.0], or a library mined before the key)."""
     offs = tuple(float(o) for o in (cfg["mine"].get("view_centre_offsets") or [0.0]))
     return () if offs == (0.0,) else offs
+
+
+def view_calibration(library: Library) -> bool:
+    """Whether ``library`` scores single views by the calibration of the view-normalised distance (``[mine]
+    view_normalise_calibrate``, ``mine.pipeline.view_calibration``): it has the fields and the cut, and the
+    view-normalised decision with its score is on.  A library without them keeps the pose search's calibration."""
+    m = library.config.get("mine", {})
+    return (all(k in library.prototypes for k in VIEW_CALIBRATION_FIELDS) and "unknown_view_cut" in library.attrs
+            and int(m.get("view_normalise_top", 0)) > 0 and bool(m.get("view_normalise_score", False)))
 
 
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
@@ -252,14 +285,19 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
         raise InputError(library.path, "prototypes", "library has no prototypes")
     m = lib_cfg["mine"]
     cut = library_cut(library)
-    if weighted and "unknown_tilt_ratios" in library.attrs:   # the other-face rule's own cut (mine.openset)
+    view_calibrated = bool(weighted and view_calibration(library))
+    if view_calibrated:   # the cut on the score of the view-normalised calibration (``[mine] view_normalise_calibrate``)
+        cut = float(library.attrs["unknown_view_cut"])
+        if "unknown_view_ratios" in library.attrs and "unknown_view_ratio_cut" in library.attrs:  # ``view_normalise_ratio``
+            cut = float(library.attrs["unknown_view_ratio_cut"])
+    if weighted and "unknown_tilt_ratios" in library.attrs and not view_calibrated:   # the other-face rule's own cut (mine.openset)
         cut = float(library.attrs["unknown_rule_cut"])
     return ((library, grid, float(m["free_weight"]), float(m["colour_weight"]), tuple(library.scales),
              cut, weighted),
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
                  rings=score_rings(lib_cfg, grid.radial_bins), mass=score_mass(lib_cfg), refine_top=int(m.get("label_refine_top", 0)),
                  centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
-                 view_score=bool(m.get("view_normalise_score", False)),
+                 view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  symmetric_top=int(m.get("label_symmetric", 0))))
 
 

@@ -31,7 +31,13 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  without them scores every match with single_mu, single_sigma; optional view_owner,
                  view_face (M,), view_features (M, C, R, A, H), view_weights (M, R, A, H): view prototypes
                  (``pipeline.view_prototypes``, ``[mine] view_prototype_members``), the mean aligned single
-                 views of the members resting on one face of a prototype, in the frame of that face
+                 views of the members resting on one face of a prototype, in the frame of that face; optional
+                 single_view_mu, single_view_sigma, single_view_tilt_mu, single_view_tilt_sigma (K,): the
+                 calibration of the lesser of the scored and the view-normalised distance (``[mine]
+                 view_normalise_calibrate``, ``pipeline.view_calibration``), read with the attributes
+                 unknown_view_cut (and, with ``[mine] view_normalise_ratio``, unknown_view_ratios, the sorted
+                 best/second distance ratios of the held-out views, and unknown_view_ratio_cut); a library without
+                 them scores as before
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the
@@ -77,7 +83,11 @@ PROTO_OPTIONAL = ("cell_reliability",     # (K, R, H) single-view cell weights (
                   "view_owner",           # (M,) view prototypes (``pipeline.view_prototypes``): prototype of each,
                   "view_face",            # (M,) its resting face,
                   "view_features",        # (M, C, R, A, H), (M, R, A, H) mean aligned single views; none when off
-                  "view_weights")
+                  "view_weights",
+                  # (K,) each: the single-view calibration of min(scored distance, view-normalised distance), canonical
+                  # face and other faces (``pipeline.view_calibration``, ``[mine] view_normalise_calibrate``); none when off
+                  "single_view_mu", "single_view_sigma", "single_view_tilt_mu", "single_view_tilt_sigma")
+VIEW_CALIBRATION_FIELDS = ("single_view_mu", "single_view_sigma", "single_view_tilt_mu", "single_view_tilt_sigma")
 MEMBER_FIELDS = ("object", "cluster", "yaw_deg", "scale", "fit_scale", "distance", "score", "second_cluster", "second_distance",
                  "face", "rotation")
 
@@ -158,10 +168,17 @@ class Library:
         return int(hits[0])
 
     def score(self, distance: np.ndarray, cluster: np.ndarray, *, single_view: bool,
-              upright: np.ndarray | None = None) -> np.ndarray:
+              upright: np.ndarray | None = None, view_normalised: bool = False) -> np.ndarray:
         """Calibrated score of distances to prototypes ``cluster`` (broadcast together); single views matched
         on another face than the canonical one (``upright`` False, broadcast too) take the library's
-        single_tilt_mu, single_tilt_sigma when it has them."""
+        single_tilt_mu, single_tilt_sigma when it has them.  ``view_normalised``: the calibration of the lesser of
+        the scored and the view-normalised distance (``VIEW_CALIBRATION_FIELDS``; the library must have them)."""
+        if view_normalised:
+            p = self.prototypes
+            up = np.ones((), bool) if upright is None else np.asarray(upright, bool)
+            mu = np.where(up, np.asarray(p["single_view_mu"])[cluster], np.asarray(p["single_view_tilt_mu"])[cluster])
+            sg = np.where(up, np.asarray(p["single_view_sigma"])[cluster], np.asarray(p["single_view_tilt_sigma"])[cluster])
+            return match_score(distance, mu, sg)
         mu = self.prototypes["single_mu" if single_view else "fused_mu"][cluster]
         sg = self.prototypes["single_sigma" if single_view else "fused_sigma"][cluster]
         if single_view and upright is not None and "single_tilt_mu" in self.prototypes:

@@ -22,7 +22,7 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["conformal_rank", "conformal_cut", "library_cut", "ATTRS"]
+__all__ = ["conformal_rank", "conformal_cut", "library_cut", "ATTRS", "fisher_combine"]
 
 ATTRS = ("unknown_alpha", "unknown_cut", "unknown_calibration_views")
 
@@ -148,3 +148,13 @@ def calibrate_rule(D, S, U, own, own_d, own_s, own_up, alpha: float) -> dict | N
     own_up = np.asarray(own_up, bool)[ok]
     value = np.concatenate([np.asarray(own_s, np.float64)[ok][own_up], loo_ratio_pvalues(r[tilted])])
     return {"unknown_tilt_ratios": np.sort(r[tilted]), "unknown_rule_cut": conformal_cut(value, alpha)}
+
+
+def fisher_combine(s, p) -> np.ndarray:
+    """Fisher's combination of two tail probabilities (broadcast together): P(chi2_4 >= -2 ln(s p)) = x (1 - ln x),
+    x = s p (Fisher 1925, "Statistical methods for research workers", sec. 21.1); in [0, 1], 0 where either is 0.
+    Used by ``[mine] view_normalise_ratio`` to join the calibrated score and the best/second ratio's p-value."""
+    x = np.asarray(s, np.float64) * np.asarray(p, np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = x * (1.0 - np.log(np.where(x > 0, x, 1.0)))
+    return np.where(x > 0, np.minimum(out, 1.0), 0.0)

@@ -416,6 +416,86 @@ def rule_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     return calibrate_rule(D, S, U, own, own_d, own_s, own_up, alpha)
 
 
+def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np.ndarray, own_d: np.ndarray,
+                     own_up: np.ndarray, fallback: list[tuple[float, float]], alpha: float, *, chunk: int = 64,
+                     progress: Callable[[str], None] | None = None) -> tuple[dict, dict] | None:
+    """The calibration of the distance the label stage scores with ``[mine] view_normalise_calibrate``: the lesser
+    of the pose search's scored distance Dr and the view-normalised distance Dv (``mine.viewnorm``), instead of Dr's.
+
+    The held-out single views (store rows ``rows``, their prototypes ``own``, leave-one-out distances ``own_d`` and
+    face kinds ``own_up`` from :func:`single_view_calibration`) are matched by the label stage's own matcher with
+    their cameras (``single/camera`` of the store), which gives Dr and Dv against the whole prototype.  The
+    prototype was built with the view's own object, so each view's leave-one-out distance is carried over by the
+    factor view normalisation takes off: d = own_d x min(1, Dv / Dr) (the same object's leave-one-out bias assumed
+    for both distances).  Then :func:`split_calibration` as for Dr, and the split-conformal cut (``mine.openset``)
+    on the scores of the same views.  Returns (prototype fields ``library.VIEW_CALIBRATION_FIELDS``, {"unknown_view_cut",
+    "unknown_view_calibration_views"}), or None when the store keeps no cameras of its single views (a store
+    ingested before they were kept: the library keeps the pose search's calibration) or none is left."""
+    from ..label.matcher import make_matcher
+    cams = getattr(store, "single_camera", None)
+    if cams is None or len(rows) == 0:
+        return None
+    cams = np.asarray(cams, np.float64)[rows]
+    has = np.all(np.isfinite(cams), axis=1)
+    if not has.any():
+        return None
+    rows, own, own_d, own_up, cams = rows[has], own[has], own_d[has], own_up[has], cams[has]
+    matcher = make_matcher(lib, lib.config)
+    factor = np.ones(len(rows))
+    decide = []
+    with bar(progress, "view-normalised calibration", total=len(rows), unit="views") as b:
+        for i0 in range(0, len(rows), chunk):
+            sl = slice(i0, i0 + chunk)
+            m = matcher.match(store.read_single_views(rows[sl]), cams[sl])
+            j = np.arange(len(m["distance"]))
+            dr, dv = m["scored_distance"][j, own[sl]], m["view_distance"][j, own[sl]]
+            ok = np.isfinite(dr) & np.isfinite(dv) & (dr > 0)
+            factor[sl] = np.where(ok, np.minimum(1.0, np.where(ok, dv, 1.0) / np.where(ok, dr, 1.0)), 1.0)
+            # the decision distances, the own prototype's carried to leave-one-out by the scored distance's own factor
+            Dd = np.array(m["distance"], np.float64)
+            loo = np.where(np.isfinite(dr) & (dr > 0), own_d[sl] / np.where(np.isfinite(dr) & (dr > 0), dr, 1.0), 1.0)
+            Dd[j, own[sl]] = Dd[j, own[sl]] * loo
+            decide.append(Dd)
+            b.advance(len(j))
+    fields, attrs = view_calibrated_fields(own_d, factor, own, own_up, lib.n_clusters, fallback, alpha)
+    if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
+        attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha))
+    return fields, attrs
+
+
+def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
+                           alpha: float) -> dict:
+    """``[mine] view_normalise_ratio``: the held-out views' ratios of their best to their second-best decision distance
+    (``openset.best_second_ratio`` of D (Q, K), at the nearest prototype) and the split-conformal cut on the Fisher
+    combination (``openset.fisher_combine``) of each view's calibrated score (of d (Q,) at its own prototype) and its
+    ratio's p-value among the other views' (``openset.loo_ratio_pvalues``).  Returns {"unknown_view_ratios" (sorted),
+    "unknown_view_ratio_cut"}."""
+    from .openset import best_second_ratio, fisher_combine, loo_ratio_pvalues
+    D = np.where(np.isfinite(D), D, np.inf)
+    ok = np.isfinite(D).any(axis=1)
+    b = np.argmin(D[ok], axis=1)
+    r = best_second_ratio(D[ok])[np.arange(len(b)), b]
+    up = np.asarray(own_up, bool)[ok]
+    k = np.asarray(own)[ok]
+    s = match_score(np.asarray(d)[ok], np.where(up, fields["single_view_mu"][k], fields["single_view_tilt_mu"][k]),
+                    np.where(up, fields["single_view_sigma"][k], fields["single_view_tilt_sigma"][k]))
+    value = fisher_combine(s, loo_ratio_pvalues(r))
+    return {"unknown_view_ratios": np.sort(r), "unknown_view_ratio_cut": conformal_cut(value, alpha)}
+
+
+def view_calibrated_fields(own_d: np.ndarray, factor: np.ndarray, own: np.ndarray, own_up: np.ndarray, K: int,
+                           fallback: list[tuple[float, float]], alpha: float) -> tuple[dict, dict]:
+    """:func:`view_calibration`'s fit from the held-out views' leave-one-out distances ``own_d`` (Q,), the factors
+    min(1, Dv / Dr) (Q,), their prototypes ``own`` and face kinds ``own_up``: d = own_d x factor, split by face kind
+    (:func:`split_calibration`), and the split-conformal cut at ``alpha`` on the scores of those same d."""
+    d = np.asarray(own_d, np.float64) * np.asarray(factor, np.float64)
+    own, own_up = np.asarray(own, np.int64), np.asarray(own_up, bool)
+    mu, sigma, t_mu, t_sigma = split_calibration(d, own, own_up, K, fallback)
+    s = match_score(d, np.where(own_up, mu[own], t_mu[own]), np.where(own_up, sigma[own], t_sigma[own]))
+    return ({"single_view_mu": mu, "single_view_sigma": sigma, "single_view_tilt_mu": t_mu, "single_view_tilt_sigma": t_sigma},
+            {"unknown_view_cut": conformal_cut(s, alpha), "unknown_view_calibration_views": int(len(d))})
+
+
 def calibration_search(model, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid, cfg: dict):
     """The single-view calibration's face search (``[mine] calibrate_searched``; None when off): each held-out
     view's up direction and whether it is the canonical face, found against its own prototype by the label
@@ -656,6 +736,16 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
     attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
                   "unknown_cut": conformal_cut(sv_s, alpha)})
     lib = Library(protos, members, attrs)
+    if bool(cfg["mine"].get("view_normalise_calibrate", False)) and int(cfg["mine"].get("view_normalise_top", 0)) > 0 \
+            and bool(cfg["mine"].get("view_normalise_score", False)):
+        vc = view_calibration(lib, store, sv_rows, sv_k, sv_d, sv_up, fused, alpha, progress=progress)
+        if vc is None:
+            notices.append(f"{store.path} keeps no camera directions of its single views (ingested before they were "
+                           "kept); [mine] view_normalise_calibrate needs them: re-ingest, meanwhile the library scores "
+                           "with the pose search's calibration")
+        else:
+            lib.prototypes.update(vc[0])
+            lib.attrs.update(vc[1])
     if bank is not None and bool(cfg["mine"].get("unknown_ratio", False)):
         rule = rule_calibration(lib, store, sv_rows, sv_k, sv_raw, sv_s, sv_up, alpha, progress=progress)
         if rule is not None:

@@ -1,0 +1,128 @@
+"""The calibration of the view-normalised distance (``[mine] view_normalise_calibrate``): ``pipeline.view_calibrated_fields``,
+``Library.score(view_normalised=True)`` and the matcher's choice of calibration (``label.matcher.view_calibration``).
+
+References: the score is 1 - T_4(z) against ``scipy.stats.t.sf``; the location of each fit is the median of the log
+distances (numpy, by definition of the robust fit); the split-conformal cut flags at most alpha (and, with continuous
+scores, at least alpha - 1 / (n + 1)) of fresh views exchangeable with the calibration views (Angelopoulos & Bates
+2021, "A gentle introduction to conformal prediction", sec. 1 and appendix D), checked on fresh draws within a
+binomial tolerance.
+"""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+from scipy import stats
+
+from protomine.label.matcher import view_calibration
+from protomine.mine.library import VIEW_CALIBRATION_FIELDS, Library
+from protomine.mine.openset import fisher_combine
+from protomine.mine.pipeline import view_calibrated_fields, view_ratio_calibration
+
+MU = np.array([-4.5, -3.9, -4.2])
+TILT_SHIFT = 0.6
+
+
+def _views(rng, n):
+    """n held-out views per prototype: leave-one-out distances (log-normal, other faces farther), the factor
+    min(1, Dv / Dr) view normalisation takes off, prototypes and face kinds."""
+    own = np.repeat(np.arange(len(MU)), n)
+    up = rng.random(len(own)) < 0.6
+    d = np.exp(MU[own] + np.where(up, 0.0, TILT_SHIFT) + rng.normal(0, 0.35, len(own)))
+    factor = np.minimum(1.0, np.exp(rng.normal(-0.2, 0.3, len(own))))
+    return d, factor, own, up
+
+
+def test_fit_locates_the_scored_distance_and_the_cut_flags_about_alpha_of_fresh_known_views():
+    rng = np.random.default_rng(0)
+    d, f, own, up = _views(rng, 150)
+    fields, attrs = view_calibrated_fields(d, f, own, up, len(MU), [(0.0, 1.0)] * len(MU), 0.05)
+    assert set(fields) == set(VIEW_CALIBRATION_FIELDS)
+    ld = np.log(d * f)
+    for k in range(len(MU)):   # the robust fit's location: the median of the log of the distance scored
+        assert np.isclose(fields["single_view_mu"][k], np.median(ld[(own == k) & up]))
+        assert np.isclose(fields["single_view_tilt_mu"][k], np.median(ld[(own == k) & ~up]))
+    # the fit is of d x factor, not of d: its location lies below the plain distances' by about the factor's median
+    assert np.all(fields["single_view_mu"] < np.array([np.median(np.log(d)[(own == k) & up]) for k in range(3)]) - 0.1)
+    assert attrs["unknown_view_calibration_views"] == len(d)
+    # the cut flags about alpha of fresh known views: averaged over calibration draws (the realised rate of one draw
+    # spreads by about sqrt(alpha (1 - alpha) / n) = 0.01 here; the fit is made on the same views as the cut, which
+    # measured +0.007 on average over 30 draws: the tolerance above alpha allows for it)
+    rates, plain = [], []
+    for seed in range(12):
+        d, f, own, up = _views(np.random.default_rng(100 + seed), 150)
+        fields, attrs = view_calibrated_fields(d, f, own, up, len(MU), [(0.0, 1.0)] * len(MU), 0.05)
+        lib = Library({**fields}, {}, {})
+        d2, f2, own2, up2 = _views(np.random.default_rng(1000 + seed), 2000)
+        s = lib.score(d2 * f2, own2, single_view=True, upright=up2, view_normalised=True)
+        rates.append(float(np.mean(s < attrs["unknown_view_cut"])))
+        # a trivial baseline: the plain distances under the same fit (the factor left out) flag far more
+        plain.append(float(np.mean(lib.score(d2, own2, single_view=True, upright=up2, view_normalised=True)
+                                   < attrs["unknown_view_cut"])))
+    assert 0.04 <= np.mean(rates) <= 0.07, rates
+    assert all(0.02 <= r <= 0.10 for r in rates), rates
+    assert np.mean(plain) > 2 * np.mean(rates)
+
+def test_view_normalised_score_is_the_student_t_tail_of_its_own_fields():
+    rng = np.random.default_rng(2)
+    p = {"single_view_mu": np.array([-4.0, -3.0]), "single_view_sigma": np.array([0.3, 0.5]),
+         "single_view_tilt_mu": np.array([-3.5, -2.0]), "single_view_tilt_sigma": np.array([0.4, 0.6]),
+         "single_mu": np.array([9.0, 9.0]), "single_sigma": np.array([1.0, 1.0])}
+    lib = Library(p, {}, {})
+    d = np.exp(rng.normal(-3.5, 1.0, 200))
+    k = rng.integers(0, 2, 200)
+    up = rng.random(200) < 0.5
+    mu = np.where(up, p["single_view_mu"][k], p["single_view_tilt_mu"][k])
+    sg = np.where(up, p["single_view_sigma"][k], p["single_view_tilt_sigma"][k])
+    ref = stats.t.sf((np.log(d) - mu) / sg, 4)
+    assert np.allclose(lib.score(d, k, single_view=True, upright=up, view_normalised=True), ref)
+    # the other calibration (single_mu) is not read
+    assert not np.allclose(lib.score(d, k, single_view=True, upright=up), ref)
+
+
+def test_matcher_uses_the_view_calibration_only_when_the_library_has_it_and_the_keys_are_on():
+    fields = {f: np.zeros(2) for f in VIEW_CALIBRATION_FIELDS}
+    on = {"mine": {"view_normalise_top": 4, "view_normalise_score": True}}
+    assert view_calibration(Library(dict(fields), {}, {"config": json.dumps(on), "unknown_view_cut": 0.01}))
+    # a library mined before it (or with the key off): the pose search's calibration
+    assert not view_calibration(Library({}, {}, {"config": json.dumps(on), "unknown_cut": 0.01}))
+    assert not view_calibration(Library(dict(fields), {}, {"config": json.dumps(on)}))
+    off = {"mine": {"view_normalise_top": 4, "view_normalise_score": False}}
+    assert not view_calibration(Library(dict(fields), {}, {"config": json.dumps(off), "unknown_view_cut": 0.01}))
+    off = {"mine": {"view_normalise_top": 0, "view_normalise_score": True}}
+    assert not view_calibration(Library(dict(fields), {}, {"config": json.dumps(off), "unknown_view_cut": 0.01}))
+
+
+def test_fisher_combination_matches_scipy():
+    rng = np.random.default_rng(3)
+    s, p = rng.uniform(1e-6, 1, 300), rng.uniform(1e-6, 1, 300)
+    ref = np.array([stats.combine_pvalues([a, b], method="fisher")[1] for a, b in zip(s, p)])
+    assert np.allclose(fisher_combine(s, p), ref, rtol=1e-9, atol=1e-12)
+    assert fisher_combine(0.0, 0.5) == 0.0 and np.isclose(fisher_combine(1.0, 1.0), 1.0)
+    # monotone in each argument: a worse ratio never raises the score
+    assert np.all(np.diff(fisher_combine(0.3, np.linspace(0.01, 1, 50))) > 0)
+
+
+def test_view_ratio_calibration_cut_flags_about_alpha_of_fresh_views():
+    """Held-out views' decision distances: the own prototype nearest by a log-normal margin; the cut on the Fisher
+    combination flags about alpha of fresh views drawn the same way (split-conformal, as above)."""
+    from protomine.mine.openset import best_second_ratio, ratio_pvalue
+
+    def draw(rng, n):
+        own = rng.integers(0, 3, n)
+        D = np.exp(rng.normal(-3.0, 0.3, (n, 3)))
+        D[np.arange(n), own] = D.min(axis=1) * np.exp(-np.abs(rng.normal(0.3, 0.3, n)))
+        up = rng.random(n) < 0.7
+        return D, D[np.arange(n), own], own, up
+    rates = []
+    for seed in range(10):
+        D, d, own, up = draw(np.random.default_rng(seed), 450)
+        fields, attrs = view_calibrated_fields(d, np.ones(len(d)), own, up, 3, [(0.0, 1.0)] * 3, 0.05)
+        attrs = view_ratio_calibration(D, d, own, up, fields, 0.05)
+        assert np.all(np.diff(attrs["unknown_view_ratios"]) >= 0)
+        D2, d2, own2, up2 = draw(np.random.default_rng(100 + seed), 2000)
+        s = Library(fields, {}, {}).score(d2, own2, single_view=True, upright=up2, view_normalised=True)
+        r = best_second_ratio(D2)[np.arange(len(own2)), own2]
+        v = fisher_combine(s, ratio_pvalue(attrs["unknown_view_ratios"], r))
+        rates.append(float(np.mean(v < attrs["unknown_view_ratio_cut"])))
+    assert 0.035 <= np.mean(rates) <= 0.07, rates
