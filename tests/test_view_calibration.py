@@ -126,3 +126,33 @@ def test_view_ratio_calibration_cut_flags_about_alpha_of_fresh_views():
         v = fisher_combine(s, ratio_pvalue(attrs["unknown_view_ratios"], r))
         rates.append(float(np.mean(v < attrs["unknown_view_ratio_cut"])))
     assert 0.035 <= np.mean(rates) <= 0.07, rates
+
+
+def test_mining_with_the_view_calibration_fits_it_from_the_stores_cameras_and_labels_by_it(tiny_world, tmp_path):
+    """End to end with the keys on (the defaults): the store keeps every single view's camera, mining fits the
+    view-normalised calibration and its ratio cut from them, and the matcher scores and flags by them.  Reference:
+    the tiny world's two shapes are far apart (a box with a side block, a cylinder: common practice, any matcher
+    names them apart), so nearly every held-out view's best match is its own object's cluster (17 of 18 measured; a
+    constant answer gets half) and, the cut being a
+    split-conformal one at alpha on these very views, at most about alpha of them (and at least half) are flagged."""
+    from protomine.config import load_config
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.pipeline import mine_store
+    cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True}})
+    lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    assert all(k in lib.prototypes for k in VIEW_CALIBRATION_FIELDS)
+    assert "unknown_view_ratio_cut" in lib.attrs and view_calibration(lib)
+    st = open_store(tiny_world["store"])
+    cams = np.asarray(st.single_camera)
+    assert cams.shape == (len(st.single_object), 3) and np.isfinite(cams).all()
+    m = make_matcher(lib, cfg)
+    assert m.view_calibrated and m.unknown_cut == float(lib.attrs["unknown_view_ratio_cut"])
+    rows = np.arange(len(st.single_object))
+    got = m.match(st.read_single_views(rows), cams)
+    own = np.asarray(lib.members["cluster"])[np.asarray(st.single_object)]
+    assert np.mean(got["best"] == own) >= 0.85
+    s = got["score"][rows, own]
+    assert np.all((s >= 0) & (s <= 1))
+    flagged = float(np.mean(s < m.unknown_cut))
+    assert flagged <= 0.5, flagged
