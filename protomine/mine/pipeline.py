@@ -20,6 +20,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import threading
 from dataclasses import asdict
 from pathlib import Path
 from typing import Callable
@@ -27,6 +28,7 @@ from typing import Callable
 import numpy as np
 
 from ..atomic import pause_point, write_text
+from ..cores import one_blas_thread
 from ..errors import InputError
 from ..ingest.sharded import open_store
 from ..ingest.store import ObjectStore
@@ -41,7 +43,7 @@ from .openset import conformal_cut
 from .posesearch import pose_distances
 from .reliability import cell_reliability
 from .viewdistance import score_mass, score_rings
-from .searchpool import pooled
+from .searchpool import ordered_map, pooled
 from .tilts import IDENTITY_DEG, TiltBank, TiltGrid, grid_aspect, volume_on_face
 
 
@@ -440,13 +442,23 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     if not has.any():
         return None
     rows, own, own_d, own_up, cams = rows[has], own[has], own_d[has], own_up[has], cams[has]
-    matcher = make_matcher(lib, lib.config)
     factor = np.ones(len(rows))
     decide = []
-    with bar(progress, "view-normalised calibration", total=len(rows), unit="views") as b:
-        for i0 in range(0, len(rows), chunk):
-            sl = slice(i0, i0 + chunk)
-            m = matcher.match(store.read_single_views(rows[sl]), cams[sl])
+    slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
+    views = [store.read_single_views(rows[sl]) for sl in slices]
+    # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
+    # thread with a matcher of its own (a matcher's tilt bank fills a cache of copies as it goes: not to be shared
+    # between threads), numpy's BLAS held to one thread around them all (the view normaliser's own hold inside each
+    # then leaves nothing behind); results taken in chunk order: the same bits as one chunk after another
+    local = threading.local()
+
+    def match(i: int) -> dict:
+        if getattr(local, "matcher", None) is None:
+            local.matcher = make_matcher(lib, lib.config)
+        return local.matcher.match(views[i], cams[slices[i]])
+
+    with bar(progress, "view-normalised calibration", total=len(rows), unit="views") as b, one_blas_thread():
+        for sl, m in zip(slices, ordered_map(match, range(len(slices)))):
             j = np.arange(len(m["distance"]))
             dr, dv = m["scored_distance"][j, own[sl]], m["view_distance"][j, own[sl]]
             ok = np.isfinite(dr) & np.isfinite(dv) & (dr > 0)
