@@ -140,7 +140,7 @@ class ShardedObjectStore(ObjectStore):
             crop_loc.append(np.stack([np.full(len(rows), j), rows], 1))
             rows = np.flatnonzero(remap[sh.single_object] >= 0) if len(sh.single_object) else np.zeros(0, int)
             sing_o.append(remap[sh.single_object[rows]]); sing_f.append(sh.single_frame[rows])
-            sing_c.append(sh.single_camera[rows] if getattr(sh, "single_camera", None) is not None
+            sing_c.append(sh.single_camera[rows] if sh.single_camera is not None
                           else np.full((len(rows), 3), np.nan))
             sing_loc.append(np.stack([np.full(len(rows), j), rows], 1))
             shard_of.append(np.full(len(keep), j, np.int64)); local.append(keep)

@@ -335,8 +335,7 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
                     sv[s0:s0 + len(rows_)] = fo["single/volumes"][rows_]
             so += [remap[int(x)] for x in old.single_object[old_rows]]
             sf += list(old.single_frame[old_rows])
-            cams = getattr(old, "single_camera", None)
-            sc += list(cams[old_rows]) if cams is not None else [np.full(3, np.nan)] * len(old_rows)
+            sc += list(old.single_camera[old_rows]) if old.single_camera is not None else [np.full(3, np.nan)] * len(old_rows)
         r = len(old_rows)
         for i, o in enumerate(objects):
             cams = list(o.single_cameras) + [np.full(3, np.nan)] * (len(o.single_views) - len(o.single_cameras))

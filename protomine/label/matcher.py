@@ -63,9 +63,9 @@ import numpy as np
 from ..capture import Capture, read_capture
 from ..cores import one_blas_thread
 from ..errors import InputError
-from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names
+from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names, view_camera
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
-from ..ingest.volume import Grid, lift, lift_many, matching_features, up_basis
+from ..ingest.volume import Grid, lift, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
@@ -334,8 +334,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         else:
             vols.append((views, p.frame))              # lifted together below (lift_many: the same volumes)
         centre = np.asarray(p.frame.origin, np.float64) + 0.5 * float(p.frame.height) * np.asarray(p.frame.up, np.float64)
-        cams.append(up_basis(p.frame.up) @ (fd.cam_to_world[:3, 3] - centre)
-                    if fd is not None else np.zeros(3))
+        cams.append(view_camera(p.frame.up, centre, fd.cam_to_world) if fd is not None else np.zeros(3))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
         # the picture's extent: the whole mask region when masks name the object (pixels without a depth
@@ -351,9 +350,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
     R, A, H = grid.shape
     stack = np.stack(vols) if vols else np.zeros((0,) + ((len(centre_offsets),) if centre_offsets else ()) + (6, R, A, H),
                                                    np.float32)
-    cam = np.asarray(cams, np.float64).reshape(-1, 3)
-    cam = cam / np.maximum(np.linalg.norm(cam, axis=1, keepdims=True), 1e-12)
-    return FrameObjects(frame_id, stack, facts, cam)
+    return FrameObjects(frame_id, stack, facts, np.asarray(cams, np.float64).reshape(-1, 3))
 
 
 def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.ndarray]) -> list[dict]:

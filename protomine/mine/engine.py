@@ -919,18 +919,17 @@ class PoseKMeans:
                          chunk_size=self.chunk_size, moments=fit_on is source, cache=cache, grid=grid,
                          aspect=a0[0] if a0 else None,
                          progress=self.progress, what=f"K={K} restart {r + 1}/{self.n_init} passes")
-            cost = res.cost
+            cost, hold = res.cost, False
             if check:  # one objective for the fit, its seed partition and the restarts: the stable-face matrix's
                 cost = medoid_cost(seeder.S, res.labels[seeder.index])
                 held = medoid_cost(seeder.S, labels[seeder.index])
-                if held <= cost:
-                    res, cost = _held_fit(fit_on, labels, P0, V0, scales=scales, chunk_size=self.chunk_size,
-                                          moments=fit_on is source, cache=cache, grid=grid,
-                                          aspect=a0[0] if a0 else None), held
-            elif hold_t > 0 and paired_worse_t(seeder.S, res.labels[seeder.index], labels[seeder.index]) > hold_t:
+                hold = held <= cost
+            elif hold_t > 0:  # the seed partition only when the fit's is significantly worse on that matrix
+                hold = paired_worse_t(seeder.S, res.labels[seeder.index], labels[seeder.index]) > hold_t
+            if hold:
                 res = _held_fit(fit_on, labels, P0, V0, scales=scales, chunk_size=self.chunk_size,
                                 moments=fit_on is source, cache=cache, grid=grid, aspect=a0[0] if a0 else None)
-                cost = res.cost
+                cost = held if check else res.cost
             if best is None or cost < best_cost:
                 best, best_cost = res, cost
         if fit_on is not source:

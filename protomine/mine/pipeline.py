@@ -461,18 +461,26 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
         for sl, m in zip(slices, ordered_map(match, range(len(slices)))):
             j = np.arange(len(m["distance"]))
             dr, dv = m["scored_distance"][j, own[sl]], m["view_distance"][j, own[sl]]
-            ok = np.isfinite(dr) & np.isfinite(dv) & (dr > 0)
-            factor[sl] = np.where(ok, np.minimum(1.0, np.where(ok, dv, 1.0) / np.where(ok, dr, 1.0)), 1.0)
+            good = np.isfinite(dr) & (dr > 0)
+            den = np.where(good, dr, 1.0)
+            ok = good & np.isfinite(dv)
+            factor[sl] = np.where(ok, np.minimum(1.0, np.where(ok, dv, 1.0) / den), 1.0)
             # the decision distances, the own prototype's carried to leave-one-out by the scored distance's own factor
             Dd = np.array(m["distance"], np.float64)
-            loo = np.where(np.isfinite(dr) & (dr > 0), own_d[sl] / np.where(np.isfinite(dr) & (dr > 0), dr, 1.0), 1.0)
-            Dd[j, own[sl]] = Dd[j, own[sl]] * loo
+            Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
             b.advance(len(j))
     fields, attrs = view_calibrated_fields(own_d, factor, own, own_up, lib.n_clusters, fallback, alpha)
     if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
         attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha))
     return fields, attrs
+
+
+def face_kind_scores(d: np.ndarray, own: np.ndarray, own_up: np.ndarray, mu: np.ndarray, sigma: np.ndarray,
+                     t_mu: np.ndarray, t_sigma: np.ndarray) -> np.ndarray:
+    """``library.match_score`` of distances d (Q,) to prototypes ``own`` by the canonical-face fit (mu, sigma) where
+    ``own_up`` and the other-face fit (t_mu, t_sigma) elsewhere (the split of :func:`split_calibration`)."""
+    return match_score(d, np.where(own_up, mu[own], t_mu[own]), np.where(own_up, sigma[own], t_sigma[own]))
 
 
 def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
@@ -489,8 +497,8 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     r = best_second_ratio(D[ok])[np.arange(len(b)), b]
     up = np.asarray(own_up, bool)[ok]
     k = np.asarray(own)[ok]
-    s = match_score(np.asarray(d)[ok], np.where(up, fields["single_view_mu"][k], fields["single_view_tilt_mu"][k]),
-                    np.where(up, fields["single_view_sigma"][k], fields["single_view_tilt_sigma"][k]))
+    s = face_kind_scores(np.asarray(d)[ok], k, up, fields["single_view_mu"], fields["single_view_sigma"],
+                         fields["single_view_tilt_mu"], fields["single_view_tilt_sigma"])
     value = fisher_combine(s, loo_ratio_pvalues(r))
     return {"unknown_view_ratios": np.sort(r), "unknown_view_ratio_cut": conformal_cut(value, alpha)}
 
@@ -503,7 +511,7 @@ def view_calibrated_fields(own_d: np.ndarray, factor: np.ndarray, own: np.ndarra
     d = np.asarray(own_d, np.float64) * np.asarray(factor, np.float64)
     own, own_up = np.asarray(own, np.int64), np.asarray(own_up, bool)
     mu, sigma, t_mu, t_sigma = split_calibration(d, own, own_up, K, fallback)
-    s = match_score(d, np.where(own_up, mu[own], t_mu[own]), np.where(own_up, sigma[own], t_sigma[own]))
+    s = face_kind_scores(d, own, own_up, mu, sigma, t_mu, t_sigma)
     return ({"single_view_mu": mu, "single_view_sigma": sigma, "single_view_tilt_mu": t_mu, "single_view_tilt_sigma": t_sigma},
             {"unknown_view_cut": conformal_cut(s, alpha), "unknown_view_calibration_views": int(len(d))})
 
@@ -744,7 +752,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
                   "k_selection": json.dumps(k_table if k_table is not None else {"given": K}, default=float)})
     # the unknown cut: split-conformal on the held-out single views' scores (mine.openset)
     alpha = float(cfg["mine"]["unknown_alpha"])
-    sv_s = match_score(sv_d, np.where(sv_up, single_mu[sv_k], tilt_mu[sv_k]), np.where(sv_up, single_sigma[sv_k], tilt_sigma[sv_k]))
+    sv_s = face_kind_scores(sv_d, sv_k, sv_up, single_mu, single_sigma, tilt_mu, tilt_sigma)
     attrs.update({"unknown_alpha": alpha, "unknown_calibration_views": int(sv_d.size),
                   "unknown_cut": conformal_cut(sv_s, alpha)})
     lib = Library(protos, members, attrs)
