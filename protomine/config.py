@@ -59,6 +59,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.label_refine_top": (0, 64),
     "mine.view_prototype_members": (0, 100000),
     "mine.view_centre_offsets": (0.0, 2.0),
+    "mine.view_cut_offsets": (0.0, 2.0),
     "mine.label_symmetric": (0, 64),
     "mine.find_expand": (0, 1000),
     "mine.find_reciprocal": (0, 1_000_000),

@@ -237,3 +237,61 @@ def test_symmetric_decision_is_the_mean_of_both_searches(labelled):
         got = int(on["best"][i])
         # the decision's key is the definition's (the batched search may differ in the last float bits)
         assert got == want or np.isclose(key[got], key[want], rtol=1e-5)
+
+
+def test_views_cut_by_the_image_border_get_frames_moved_toward_it(labelled):
+    """``[mine] view_cut_offsets``: an object whose mask runs off the image is also lifted about its visible circle
+    moved toward the border (``ingest.truncation``); an object wholly in view and clear of nearer objects repeats its
+    visible circle, and its record is the one of the switch off (the repeated candidate is searched once).  The
+    expected side is plain projection (from memory): the moved base centre projects nearer the image edge the mask
+    touches than the visible circle's centre does."""
+    from protomine.capture import read_capture
+    from protomine.geometry import camera_to_pixel, world_to_camera
+    from protomine.ingest.pipeline import capture_rng
+    from protomine.ingest.proposals import find_objects
+    from protomine.label.matcher import lift_frame, make_matcher
+    mt = make_matcher(labelled["lib"], labelled["cfg"])
+    moved = distinct = 0
+    for path in labelled["singles"]:
+        cap = read_capture(path, check_images=False)
+        fr = cap.frames[0]
+        scene = find_objects(cap, labelled["cfg"], capture_rng(0, cap.name), frame_ids=[fr.id])
+        fo = lift_frame(scene, fr.id, mt.grid, cap.intrinsics.width, geometry_ids=False, cut_offsets=(0.25,))
+        H, W = cap.intrinsics.height, cap.intrinsics.width
+        fd = scene.frames[0]
+        props = [p for p in scene.proposals if len(p.pixels.get(fr.id, ())) >= 10]
+        assert fo.volumes.shape[:2] == (len(props), 2)
+        for p, v in zip(props, fo.volumes):
+            pix = p.pixels[fr.id]
+            r, c = pix // W, pix % W
+            edges = {"top": int(r.min() < 2), "bottom": int(r.max() >= H - 2), "left": int(c.min() < 2),
+                     "right": int(c.max() >= W - 2)}
+            if np.array_equal(v[0], v[1]):
+                continue    # not cut, cut all round, or its cut points straddle the centre: no one direction
+            distinct += 1
+            if not any(edges.values()) or sum(edges.values()) > 1:
+                continue    # cut by a nearer object only, or at a corner
+            moved += 1
+            # where the moved frame's origin is: redo the one frame and project both origins
+            from protomine.label.matcher import _cut_frames
+            sel = np.isin(fd.pixels, pix)
+            f1 = _cut_frames(scene, fd, p, pix, fd.points[sel], fd.pixels[sel], (0.25,))[0]
+            K = cap.intrinsics.K
+            uv0, _ = camera_to_pixel(world_to_camera(np.asarray(p.frame.origin)[None], fd.cam_to_world), K)
+            uv1, _ = camera_to_pixel(world_to_camera(np.asarray(f1.origin)[None], fd.cam_to_world), K)
+            gap = lambda uv: min([uv[0, 1]] * edges["top"] + [H - 1 - uv[0, 1]] * edges["bottom"]  # noqa: E731
+                                 + [uv[0, 0]] * edges["left"] + [W - 1 - uv[0, 0]] * edges["right"])
+            assert gap(uv1) < gap(uv0), (p.object_id, edges)
+    assert moved >= 1
+    # the switch on: records of the objects not cut are those of the switch off
+    lib = labelled["lib"]
+    cfg_lib = lib.config
+    cfg_lib["mine"]["view_cut_offsets"] = [0.25]
+    lib.attrs["config"], before = json.dumps(cfg_lib), lib.attrs["config"]
+    try:
+        recs = label_captures(lib, labelled["singles"], labelled["cfg"], seed=0)
+    finally:
+        lib.attrs["config"] = before
+    base = labelled["weighted"]
+    assert [r["object"] for r in recs] == [r["object"] for r in base]
+    assert sum(a == b for a, b in zip(recs, base)) >= len(base) - distinct

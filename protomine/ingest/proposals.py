@@ -454,7 +454,17 @@ def centre_candidates(points: np.ndarray, frame: ObjectFrame, camera: np.ndarray
     n = float(np.linalg.norm(away))
     if n < 1e-9 * max(frame.radius, 1e-9) or not offsets:
         return [frame]
-    away /= n
+    return shifted_frames(points, frame, (away / n) @ B[:2], offsets)
+
+
+def shifted_frames(points: np.ndarray, frame: ObjectFrame, direction: np.ndarray, offsets: tuple[float, ...]
+                   ) -> list[ObjectFrame]:
+    """``frame`` moved by each of ``offsets`` x its radius along the in-plane unit ``direction`` (3,) (world), each
+    with the radius of the smallest circle about the new centre that still holds the visible footprint of the
+    object's world ``points`` (M, 3); offset 0 is ``frame`` itself (:func:`centre_candidates`,
+    ``ingest.truncation``)."""
+    B = plane_basis(np.asarray(frame.up, np.float64))
+    away = np.asarray(direction, np.float64) @ B[:2].T
     xy = footprint(points, B)
     c0 = np.asarray(frame.origin, np.float64) @ B[:2].T
     out = []

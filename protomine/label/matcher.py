@@ -64,8 +64,9 @@ from ..capture import Capture, read_capture
 from ..cores import one_blas_thread
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names, view_camera
-from ..ingest.proposals import SceneObjects, centre_candidates, find_objects
-from ..ingest.volume import Grid, lift, lift_many, matching_features
+from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, shifted_frames
+from ..ingest.truncation import cut_direction, cut_pixels
+from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
@@ -116,6 +117,7 @@ class Matcher:
     mass: float = 0.0
     refine_top: int = 0
     centre_offsets: tuple[float, ...] = ()
+    cut_offsets: tuple[float, ...] = ()
     view_top: int = 0
     view_score: bool = False
     view_calibrated: bool = False
@@ -176,11 +178,17 @@ class Matcher:
         ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``)."""
         if volumes.ndim == 6:
             n, C = volumes.shape[:2]
-            m = self.match(volumes.reshape((n * C,) + volumes.shape[2:]),
-                           None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0),
-                           None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0))
+            # a candidate equal to the object's first (a view not cut, a camera above the centre) is searched once
+            same = np.array([[c > 0 and np.array_equal(volumes[i, c], volumes[i, 0]) for c in range(C)]
+                             for i in range(n)], bool).reshape(n, C)
+            keep = np.flatnonzero(~same.reshape(-1))
+            m = self.match(volumes.reshape((n * C,) + volumes.shape[2:])[keep],
+                           None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0)[keep],
+                           None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0)[keep])
             if n == 0:
                 return {**m, "centre": np.zeros((0, self.K), int)}
+            src = np.searchsorted(keep, np.where(same, np.arange(n)[:, None] * C, np.arange(n * C).reshape(n, C)).reshape(-1))
+            m = {key: v[src] for key, v in m.items()}
             D = m["distance"].reshape(n, C, self.K)
             c = np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)          # (n, K)
             i, k = np.arange(n)[:, None], np.arange(self.K)[None, :]
@@ -255,6 +263,12 @@ def view_centre_offsets(cfg: dict) -> tuple[float, ...]:
     return () if offs == (0.0,) else offs
 
 
+def view_cut_offsets(cfg: dict) -> tuple[float, ...]:
+    """``[mine] view_cut_offsets`` of a library's config, its non-zero entries: () when off ([0.0], or a library mined
+    before the key)."""
+    return tuple(float(o) for o in (cfg["mine"].get("view_cut_offsets") or [0.0]) if float(o) != 0.0)
+
+
 def view_calibration(library: Library) -> bool:
     """Whether ``library`` scores single views by the calibration of the view-normalised distance (``[mine]
     view_normalise_calibrate``, ``mine.pipeline.view_calibration``): it has the fields and the cut, and the
@@ -296,7 +310,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
              cut, weighted),
             dict(exact_faces=bool(m.get("face_pairs", False)), tolerant=bool(m.get("tolerant_residual", False)),
                  rings=score_rings(lib_cfg, grid.radial_bins), mass=score_mass(lib_cfg), refine_top=int(m.get("label_refine_top", 0)),
-                 centre_offsets=view_centre_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
+                 centre_offsets=view_centre_offsets(lib_cfg),
+                 cut_offsets=view_cut_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  symmetric_top=int(m.get("label_symmetric", 0))))
 
@@ -312,25 +327,35 @@ class FrameObjects:
 
 
 def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool,
-               centre_offsets: tuple[float, ...] = ()) -> FrameObjects:
+               centre_offsets: tuple[float, ...] = (), cut_offsets: tuple[float, ...] = ()) -> FrameObjects:
     """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields.
     With ``centre_offsets`` (``[mine] view_centre_offsets``) each object is lifted about each candidate base
     centre of ``ingest.proposals.centre_candidates`` (the visible footprint's circle moved away from the camera):
-    volumes (n, C, 6, R, A, H), C = len(centre_offsets), which :meth:`Matcher.match` searches together."""
+    volumes (n, C, 6, R, A, H), C = len(centre_offsets), which :meth:`Matcher.match` searches together.
+    With ``cut_offsets`` (``[mine] view_cut_offsets``) an object the view cuts off (the image border, a nearer
+    object: ``ingest.truncation``) is also lifted about its visible circle moved by each of them x its radius toward
+    the cut (``proposals.shifted_frames``); an object not cut repeats its first candidate there (C grows by
+    len(cut_offsets))."""
     height = scene.capture.intrinsics.height
     fd = next((f for f in scene.frames if f.id == frame_id), None)
     mask = None if geometry_ids or fd is None or fd.mask is None else fd.mask.reshape(-1)
     vols, facts, cams = [], [], []
+    several = bool(centre_offsets or cut_offsets)
     for p in scene.proposals:
         pix = p.pixels.get(frame_id)
         if pix is None or len(pix) < MIN_PIXELS:
             continue
         views = scene.views(p, [frame_id], others=grid.reads_others)
-        if centre_offsets:
-            pts = fd.points[np.isin(fd.pixels, pix)]
-            frames = centre_candidates(pts, p.frame, fd.cam_to_world[:3, 3], centre_offsets)
-            frames += [frames[0]] * (len(centre_offsets) - len(frames))   # camera above the centre: repeats
-            vols.append(np.stack([lift(views, f, grid) for f in frames]))
+        if several:
+            sel = np.isin(fd.pixels, pix)
+            pts = fd.points[sel]
+            frames = [p.frame]
+            if centre_offsets:
+                frames = centre_candidates(pts, p.frame, fd.cam_to_world[:3, 3], centre_offsets)
+                frames += [frames[0]] * (len(centre_offsets) - len(frames))   # camera above the centre: repeats
+            if cut_offsets:
+                frames += _cut_frames(scene, fd, p, pix, pts, fd.pixels[sel], cut_offsets)
+            vols.append([(views, f) for f in frames])   # lifted together below
         else:
             vols.append((views, p.frame))              # lifted together below (lift_many: the same volumes)
         centre = np.asarray(p.frame.origin, np.float64) + 0.5 * float(p.frame.height) * np.asarray(p.frame.up, np.float64)
@@ -345,12 +370,30 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
                       "center_world": [float(x) for x in p.center_world],
                       "base_world": [float(x) for x in p.frame.origin], "up": [float(x) for x in p.frame.up],
                       "size_m": [float(p.frame.radius), float(p.frame.height)]})
-    if vols and not centre_offsets:
-        vols = lift_many(vols, grid)
     R, A, H = grid.shape
-    stack = np.stack(vols) if vols else np.zeros((0,) + ((len(centre_offsets),) if centre_offsets else ()) + (6, R, A, H),
-                                                   np.float32)
+    C = max(len(centre_offsets), 1) + len(cut_offsets)
+    if vols and not several:
+        vols = lift_many(vols, grid)
+    elif vols:   # every candidate of every object in one call, back to (C, 6, R, A, H) per object
+        flat = lift_many([pair for cands in vols for pair in cands], grid)
+        vols = [np.stack(flat[i * C:(i + 1) * C]) for i in range(len(vols))]
+    stack = np.stack(vols) if vols else np.zeros((0,) + ((C,) if several else ()) + (6, R, A, H), np.float32)
     return FrameObjects(frame_id, stack, facts, np.asarray(cams, np.float64).reshape(-1, 3))
+
+
+def _cut_frames(scene: SceneObjects, fd, p, pix: np.ndarray, points: np.ndarray, point_pixels: np.ndarray,
+                offsets: tuple[float, ...]) -> list:
+    """len(offsets) object frames of proposal ``p`` in frame ``fd``: its visible circle moved toward where the view
+    cuts it off (``ingest.truncation``); ``p.frame`` repeated when the view does not cut it."""
+    held = scene.held(fd).copy()
+    held[pix] -= 1
+    cut = cut_pixels(pix, fd.depth, (held > 0).reshape(fd.depth.shape))
+    on_cut = np.zeros(fd.depth.size, bool)
+    on_cut[pix[cut]] = True
+    d = cut_direction(points, on_cut[point_pixels], p.frame.origin, p.frame.up)
+    if d is None:
+        return [p.frame] * len(offsets)
+    return shifted_frames(points, p.frame, d, offsets)
 
 
 def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.ndarray]) -> list[dict]:
@@ -496,7 +539,8 @@ def _lift_capture(matcher: Matcher, cap: Capture, cfg: dict, seed: int, use_mask
     for fr in cap.frames:
         scene = find_objects(cap, cfg, rng, frame_ids=[fr.id], use_masks=masks)
         t0 = time.perf_counter()
-        fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks, centre_offsets=matcher.centre_offsets)
+        fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks, centre_offsets=matcher.centre_offsets,
+                        cut_offsets=matcher.cut_offsets)
         st["lift_s"] += time.perf_counter() - t0
         lifted.append((cap.name, fo))
         b.advance()

@@ -1,0 +1,68 @@
+"""Where a single view cuts its object off: the image border, or a nearer object in front of it.
+
+A view whose object runs off the image, or hides behind a nearer object, shows only part of the footprint: the
+visible footprint's minimum enclosing circle (``proposals.object_frame``) is then too small and lies off the
+whole footprint's centre, toward the visible part, and every cell of the scale-normalised grid is measured about
+the wrong centre and radius.  The hidden part lies on the side of the cut, so candidate frames move the circle's
+centre that way (``proposals.shifted_frames``, as ``centre_candidates`` moves it away from the camera) and the view
+search keeps, per prototype, the candidate that fits best (``label.matcher.lift_frame``, ``[mine]
+view_cut_offsets``).
+
+The cut's direction (in-plane, unit) is the mean of the directions from the visible footprint's centre to the
+object's points on a cut pixel: a pixel within ``BORDER_PX`` of the image border, or next to (within
+``NEIGHBOUR_PX``, 8-connected dilation) a pixel of another object (a mask id, or another proposal's pixel) whose
+reading is nearer the camera by at least ``NEARER_M``.  A view with no cut pixel, or whose cut pixels surround
+its centre evenly (the mean direction shorter than ``MIN_RESULTANT`` of a unit), has no direction: it is not cut
+(or cut on every side, where no one direction helps).
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import ndimage
+
+from ..geometry import plane_basis
+
+BORDER_PX = 2          # pixels this close to the image border are on the cut (the renderer's / sensor's edge)
+NEIGHBOUR_PX = 2       # ... and pixels this close to a nearer object's pixel
+NEARER_M = 0.02        # a neighbour's reading this much nearer the camera than ours hides part of the object
+MIN_RESULTANT = 0.3    # cut pixels all round the object (mean unit direction shorter than this): no one direction
+
+
+def cut_pixels(pixels: np.ndarray, depth: np.ndarray, others: np.ndarray | None) -> np.ndarray:
+    """(len(pixels),) bool: which of an object's flat pixel indices ``pixels`` lie on a cut.  ``depth`` (H, W)
+    metres (0 = no reading); ``others`` (H, W) bool: pixels another object holds (None: none known)."""
+    H, W = depth.shape
+    pix = np.asarray(pixels, np.int64)
+    r, c = pix // W, pix % W
+    cut = (r < BORDER_PX) | (r >= H - BORDER_PX) | (c < BORDER_PX) | (c >= W - BORDER_PX)
+    if others is not None and others.any():
+        ours = np.zeros(H * W, bool)
+        ours[pix] = True
+        ours = ours.reshape(H, W)
+        d_ours = depth.reshape(-1)[pix]
+        ref = float(np.median(d_ours[d_ours > 0])) if np.any(d_ours > 0) else 0.0
+        nearer = others & ~ours & (depth > 0) & (depth < ref - NEARER_M)
+        if ref > 0 and nearer.any():
+            near = ndimage.binary_dilation(nearer, structure=np.ones((3, 3), bool), iterations=NEIGHBOUR_PX)
+            cut |= near.reshape(-1)[pix]
+    return cut
+
+
+def cut_direction(points: np.ndarray, cut: np.ndarray, origin: np.ndarray, up: np.ndarray) -> np.ndarray | None:
+    """In-plane unit direction (3,) (world) from the visible footprint's centre ``origin`` toward the cut: the mean
+    of the unit directions to the object's world points ``points`` (M, 3) on a cut (``cut`` (M,) bool), None when
+    none is on a cut or they surround the centre (mean shorter than ``MIN_RESULTANT``)."""
+    pts = np.asarray(points, np.float64)[np.asarray(cut, bool)]
+    if not len(pts):
+        return None
+    B = plane_basis(np.asarray(up, np.float64))
+    xy = (pts - np.asarray(origin, np.float64)) @ B[:2].T
+    n = np.linalg.norm(xy, axis=1)
+    xy = xy[n > 1e-9] / n[n > 1e-9, None]
+    if not len(xy):
+        return None
+    m = xy.mean(axis=0)
+    if np.linalg.norm(m) < MIN_RESULTANT:
+        return None
+    m /= np.linalg.norm(m)
+    return m @ B[:2]
