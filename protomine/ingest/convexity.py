@@ -117,9 +117,13 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
             if back.any():
                 keep = pairs[~concave | back]
                 g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
-                _, comp = connected_components(g, directed=False)
-                size = np.bincount(comp, minlength=V)
-                small = (size[comp] < CRUMB_VOXELS) & (labels >= 0)
+                _, again = connected_components(g, directed=False)
+                n_again = np.bincount(again, minlength=V)
+                # a run of crumbs becomes a part only when it is large (a leg, a foot); a few of them together
+                # (a patch of the table's noise over the margin, a sliver of an edge) stay crumbs
+                grown = small & (n_again[again] >= REGROUP_VOXELS)
+                comp = np.where(grown, V + again, comp)
+                small &= ~grown
         big = np.flatnonzero(~small & (labels >= 0))
         if small.any() and len(big):
             for l in np.unique(labels[small]):
@@ -133,6 +137,7 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     return np.where(labels >= 0, comp, -1), pairs
 
 
+REGROUP_VOXELS = 50        # with regroup, a run of crumbs of at least this many voxels becomes a part of its own
 CRUMB_REACH_M = 0.03      # with regroup, a crumb takes the part of its nearest voxel of its own colour within this
                           # distance (``_crumb_targets``); none there: its nearest voxel, as without colours
 
