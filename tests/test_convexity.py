@@ -284,3 +284,27 @@ def test_regrouped_crumbs_keep_a_thin_leg_apart_from_its_neighbour():
     on, _ = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0, votes=votes, colours=rgb, regroup=True)
     want = np.where(what == 3, 0, np.minimum(what, 1))      # patch + noise, leg + stub
     assert adjusted_rand_score(want, on) == 1.0
+
+
+def test_a_run_of_crumbs_mixing_two_colours_is_not_a_part():
+    """A red and a blue 4 x 4 cm patch (voted: one segment each) 24 cm apart, joined by a line of 60 unvoted
+    crumbs whose RGB runs from red to blue in small steps (no colour step cuts it: the readings where two
+    objects touch, mixed): the run is long enough (>= REGROUP_VOXELS) but not of one colour, so it stays crumbs
+    and each goes to a patch; two parts, not three.  Expected answer by construction."""
+    from protomine.ingest.convexity import view_votes
+    s = 0.004
+    g = np.stack(np.meshgrid(np.arange(11) * s, np.arange(11) * s, indexing="ij"), -1).reshape(-1, 2)
+    run = np.c_[0.044 + np.arange(60) * s, np.full(60, 0.02)]
+    xy = np.concatenate([g, run, g + [0.284, 0.0]])
+    pts = np.c_[xy, np.zeros(len(xy))]
+    red, blue = np.array([200.0, 40.0, 20.0]), np.array([30.0, 60.0, 190.0])
+    t = np.linspace(0.0, 1.0, 60)[:, None]
+    rgb = np.concatenate([np.tile(red, (len(g), 1)), (1 - t) * red + t * blue, np.tile(blue, (len(g), 1))])
+    V = len(pts)
+    seg = np.r_[np.zeros(len(g), int), np.full(60, -1), np.ones(len(g), int)]
+    votes = view_votes(np.arange(V), seg, np.zeros(V, int), V)
+    normals = np.tile([0.0, 0.0, 1.0], (V, 1))
+    parts, _ = convex_parts(pts, normals, np.zeros(V, int), adjacency=0.006, concave_deg=15.0, votes=votes,
+                            colours=rgb, regroup=True)
+    assert len(np.unique(parts)) == 2
+    assert parts[0] != parts[-1]

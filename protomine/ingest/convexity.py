@@ -122,6 +122,12 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
                 # a run of crumbs becomes a part only when it is large (a leg, a foot); a few of them together
                 # (a patch of the table's noise over the margin, a sliver of an edge) stay crumbs
                 grown = small & (n_again[again] >= REGROUP_VOXELS)
+                if colours is not None:
+                    # ... and is of one colour: a run through the mixed readings where two objects touch is not
+                    for r in np.unique(again[grown]):
+                        run = grown & (again == r)
+                        if not one_colour(colours[run], COLOUR_STEP):
+                            grown &= ~run
                 comp = np.where(grown, V + again, comp)
                 small &= ~grown
         big = np.flatnonzero(~small & (labels >= 0))
@@ -137,7 +143,8 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     return np.where(labels >= 0, comp, -1), pairs
 
 
-REGROUP_VOXELS = 50        # with regroup, a run of crumbs of at least this many voxels becomes a part of its own
+REGROUP_VOXELS = 50        # with regroup, a run of crumbs of at least this many voxels, of one colour (one_colour within
+                           # COLOUR_STEP), becomes a part of its own
 CRUMB_REACH_M = 0.03      # with regroup, a crumb takes the part of its nearest voxel of its own colour within this
                           # distance (``_crumb_targets``); none there: its nearest voxel, as without colours
 
