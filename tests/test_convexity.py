@@ -245,3 +245,66 @@ def test_shading_and_dark_readings_do_not_cut_one_colour():
     rgb[::17] = [5.0, 30.0, 10.0]                       # dark: sum 45 < DARK_RGB, a greenish hue
     parts, _ = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0, colours=rgb)
     assert len(np.unique(parts)) == 1
+
+
+def _patch_and_thin_leg():
+    """A red 4 x 4 cm patch (z = 0, normals up, 4 mm grid) that one frame sees as one segment, and, all of them on
+    a boundary in that frame (unvoted: the view check cuts every pair they are in), a blue thin leg (2 x 40
+    voxels running off the patch's edge 4 mm away, like a tripod's leg on an occluding edge in every frame), a
+    blue stub of 6 voxels just beyond the patch's top edge (nearer the patch than the leg, 18 mm from the leg),
+    and a grey patch of 12 voxels of the table's noise beside the patch, far from the leg."""
+    s = 0.004
+    g = np.stack(np.meshgrid(np.arange(11) * s, np.arange(11) * s, indexing="ij"), -1).reshape(-1, 2)
+    leg = np.stack(np.meshgrid(0.044 + np.arange(40) * s, [0.032, 0.036], indexing="ij"), -1).reshape(-1, 2)
+    stub = np.stack(np.meshgrid([0.036, 0.040], [0.044, 0.048, 0.052], indexing="ij"), -1).reshape(-1, 2)
+    noise = np.stack(np.meshgrid([-0.004, -0.008, -0.012], [0.0, 0.004, 0.008, 0.012], indexing="ij"), -1).reshape(-1, 2)
+    xy = np.concatenate([g, leg, stub, noise])
+    pts = np.c_[xy, np.zeros(len(xy))]
+    what = np.r_[np.zeros(len(g), int), np.ones(len(leg), int), np.full(len(stub), 2), np.full(len(noise), 3)]
+    rgb = np.array([[200, 40, 20], [30, 60, 190], [30, 60, 190], [120, 120, 120]], float)[what]
+    return pts, what, rgb
+
+
+def test_regrouped_crumbs_keep_a_thin_leg_apart_from_its_neighbour():
+    """[ingest] crumb_regroup.  Without it every unvoted voxel is a crumb taken by its nearest big voxel: the
+    leg, the stub and the noise all go to the red patch (one part).  With it the leg's 80 crumbs, linked where
+    the fused cloud shows no cut (flat, one colour), are a part of their own; the stub (6 < REGROUP_VOXELS) joins
+    the nearest voxel of its own colour within CRUMB_REACH_M (the leg), and the grey noise, with no voxel of
+    its colour near, its nearest voxel (the patch).  Expected answer by construction; the partition is compared
+    with scikit-learn's adjusted_rand_score (reference implementation)."""
+    from sklearn.metrics import adjusted_rand_score
+    from protomine.ingest.convexity import view_votes
+    pts, what, rgb = _patch_and_thin_leg()
+    V = len(pts)
+    votes = view_votes(np.arange(V), np.where(what == 0, 0, -1), np.zeros(V, int), V)
+    normals = np.tile([0.0, 0.0, 1.0], (V, 1))
+    lab = np.zeros(V, int)
+    off, _ = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0, votes=votes, colours=rgb)
+    assert len(np.unique(off)) == 1
+    on, _ = convex_parts(pts, normals, lab, adjacency=0.006, concave_deg=15.0, votes=votes, colours=rgb, regroup=True)
+    want = np.where(what == 3, 0, np.minimum(what, 1))      # patch + noise, leg + stub
+    assert adjusted_rand_score(want, on) == 1.0
+
+
+def test_a_run_of_crumbs_mixing_two_colours_is_not_a_part():
+    """A red and a blue 4 x 4 cm patch (voted: one segment each) 24 cm apart, joined by a line of 60 unvoted
+    crumbs whose RGB runs from red to blue in small steps (no colour step cuts it: the readings where two
+    objects touch, mixed): the run is long enough (>= REGROUP_VOXELS) but not of one colour, so it stays crumbs
+    and each goes to a patch; two parts, not three.  Expected answer by construction."""
+    from protomine.ingest.convexity import view_votes
+    s = 0.004
+    g = np.stack(np.meshgrid(np.arange(11) * s, np.arange(11) * s, indexing="ij"), -1).reshape(-1, 2)
+    run = np.c_[0.044 + np.arange(60) * s, np.full(60, 0.02)]
+    xy = np.concatenate([g, run, g + [0.284, 0.0]])
+    pts = np.c_[xy, np.zeros(len(xy))]
+    red, blue = np.array([200.0, 40.0, 20.0]), np.array([30.0, 60.0, 190.0])
+    t = np.linspace(0.0, 1.0, 60)[:, None]
+    rgb = np.concatenate([np.tile(red, (len(g), 1)), (1 - t) * red + t * blue, np.tile(blue, (len(g), 1))])
+    V = len(pts)
+    seg = np.r_[np.zeros(len(g), int), np.full(60, -1), np.ones(len(g), int)]
+    votes = view_votes(np.arange(V), seg, np.zeros(V, int), V)
+    normals = np.tile([0.0, 0.0, 1.0], (V, 1))
+    parts, _ = convex_parts(pts, normals, np.zeros(V, int), adjacency=0.006, concave_deg=15.0, votes=votes,
+                            colours=rgb, regroup=True)
+    assert len(np.unique(parts)) == 2
+    assert parts[0] != parts[-1]

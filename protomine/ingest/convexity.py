@@ -78,13 +78,17 @@ def voxel_normals(points: np.ndarray, views: np.ndarray, labels: np.ndarray, rad
 
 
 def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *, adjacency: float,
-                 concave_deg: float, votes=None, colours: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+                 concave_deg: float, votes=None, colours: np.ndarray | None = None,
+                 regroup: bool = False) -> tuple[np.ndarray, np.ndarray]:
     """Parts (V,) (-1 where ``labels`` is -1) and the adjacency pairs (E, 2) within a group.
 
     votes: optional per-frame segment shares of the voxels (``view_votes``); pairs the frames seeing both
     mostly put in different segments (``view_disagreement``) are cut as well.
     colours: optional (V, 3) RGB of the voxels; pairs farther apart in chromaticity than one object's own
-    readings ever are (``colour_steps``) are cut as well."""
+    readings ever are (``colour_steps``) are cut as well.
+    regroup (``[ingest] crumb_regroup``): the crumbs the view check leaves stay linked to one another where
+    the fused cloud shows no cut (no concave crease, no colour step), and with colours each crumb still
+    alone takes the part of its nearest voxel of its own colour (``_crumb_targets``)."""
     V = len(points)
     pairs = cKDTree(points).query_pairs(adjacency, output_type="ndarray") if V > 1 else np.zeros((0, 2), int)
     pairs = pairs[(labels[pairs[:, 0]] == labels[pairs[:, 1]]) & (labels[pairs[:, 0]] >= 0)]
@@ -93,10 +97,11 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     bend = np.einsum("ei,ei->e", dn, points[i] - points[j])                    # > 0 convex, < 0 concave
     cos = np.einsum("ei,ei->e", normals[i], normals[j])
     concave = (bend < 0) & (cos < np.cos(np.deg2rad(concave_deg)))
-    if votes is not None:
-        concave |= view_disagreement(pairs, votes)
     if colours is not None:
         concave |= colour_steps(colours, pairs)
+    fused = concave.copy()                       # the cuts the fused cloud itself shows
+    if votes is not None:
+        concave |= view_disagreement(pairs, votes)
     keep = pairs[~concave]
     g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
     _, comp = connected_components(g, directed=False)
@@ -105,14 +110,74 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
         # of at least CRUMB_VOXELS within its group
         size = np.bincount(comp, minlength=V)
         small = (size[comp] < CRUMB_VOXELS) & (labels >= 0)
+        if votes is not None and regroup and small.any():
+            # a thin part (a tripod's legs, a handle) lies on an edge in every frame and the view check leaves
+            # all of it in crumbs: crumbs stay linked to one another where the fused cloud shows no cut
+            back = small[i] & small[j] & ~fused
+            if back.any():
+                keep = pairs[~concave | back]
+                g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
+                _, again = connected_components(g, directed=False)
+                n_again = np.bincount(again, minlength=V)
+                # a run of crumbs becomes a part only when it is large (a leg, a foot); a few of them together
+                # (a patch of the table's noise over the margin, a sliver of an edge) stay crumbs
+                grown = small & (n_again[again] >= REGROUP_VOXELS)
+                if colours is not None:
+                    # ... and is of one colour: a run through the mixed readings where two objects touch is not
+                    for r in np.unique(again[grown]):
+                        run = grown & (again == r)
+                        if not one_colour(colours[run], COLOUR_STEP):
+                            grown &= ~run
+                comp = np.where(grown, V + again, comp)
+                small &= ~grown
         big = np.flatnonzero(~small & (labels >= 0))
         if small.any() and len(big):
             for l in np.unique(labels[small]):
                 sm, bg = np.flatnonzero(small & (labels == l)), big[labels[big] == l]
                 if len(bg):
                     _, j = cKDTree(points[bg]).query(points[sm])
-                    comp[sm] = comp[bg[j]]
+                    take = bg[j]
+                    if colours is not None and regroup:
+                        take = _crumb_targets(points, colours, sm, bg, take)
+                    comp[sm] = comp[take]
     return np.where(labels >= 0, comp, -1), pairs
+
+
+REGROUP_VOXELS = 50        # with regroup, a run of crumbs of at least this many voxels, of one colour (one_colour within
+                           # COLOUR_STEP), becomes a part of its own
+CRUMB_REACH_M = 0.03      # with regroup, a crumb takes the part of its nearest voxel of its own colour within this
+                          # distance (``_crumb_targets``); none there: its nearest voxel, as without colours
+
+
+def _crumb_targets(points: np.ndarray, colours: np.ndarray, crumbs: np.ndarray, big: np.ndarray,
+                   nearest: np.ndarray) -> np.ndarray:
+    """(C,) voxel whose part each crumb voxel (``crumbs`` (C,), indices into points (V, 3) / colours (V, 3) RGB)
+    takes: the nearest voxel of ``big`` (indices) within CRUMB_REACH_M whose chromaticity lies within
+    COLOUR_STEP of the crumb's own (both bright enough to have one, DARK_RGB); a crumb too dark, or with no
+    such voxel near, keeps ``nearest`` (C,) (its nearest big voxel).
+
+    Where a thin part (a tripod's legs and feet, a handle) lies on an occluding edge or a crease in every
+    frame, the view check leaves all of it in crumbs; taken by the nearest big voxel, a whole foot goes to
+    the touching neighbour whose body is nearer than the object's own (measured, tools demo touching scenes:
+    a tripod stand's feet absorbed into a hand plane's part, the stand's legs then joined the plane)."""
+    rgb = np.asarray(colours, dtype=np.float64)
+    s = rgb.sum(axis=1)
+    ch = rgb / np.maximum(s, 1e-9)[:, None]
+    out = nearest.copy()
+    lit = s[crumbs] >= DARK_RGB
+    if not lit.any():
+        return out
+    c = crumbs[lit]
+    near = cKDTree(points[c]).sparse_distance_matrix(cKDTree(points[big]), CRUMB_REACH_M, output_type="coo_matrix")
+    r, b, d = near.row, big[near.col], near.data
+    ok = (s[b] >= DARK_RGB) & (np.linalg.norm(ch[b] - ch[c[r]], axis=1) <= COLOUR_STEP)
+    r, b, d = r[ok], b[ok], d[ok]
+    if len(r):
+        order = np.lexsort((b, d, r))                    # per crumb the nearest such voxel (ties: lowest index)
+        r, b = r[order], b[order]
+        first = np.r_[True, r[1:] != r[:-1]]
+        out[np.flatnonzero(lit)[r[first]]] = b[first]
+    return out
 
 
 COLOUR_STEP = 0.08       # chromaticity distance between adjacent voxels that cuts them apart: twice the spread of
