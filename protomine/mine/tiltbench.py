@@ -27,6 +27,29 @@ volume), so a tilted copy's cells beyond its prototype's cylinder stay unknown (
 
 The mining row (``bench_tilt_mining``) reports ``seconds`` and ``cpu_s`` (wall and CPU seconds of the fit),
 ``peak_rss_mb``, ``n_iter`` and ``nmi``.
+
+Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool's work is seen, machine at load 6-9)
+----------------------------------------------------------------------------------------------------------------
+- The row's search, 2,048 objects x 16 prototypes, cold: yaw-only 0.32 s; tilt search 6.9 s = the first level's
+  products 3.3 s (12 tilts x 5 scales, 0.87 yaw-only searches a tilt) + its copies and factors 0.24 s + the
+  refinement 3.35 s.  The refinement is counted as 0.64 of the T = 12.6 tilts but costs ~10 yaw-only searches: it
+  builds almost every copy of the later levels (48 + 192 a prototype: the pairs' candidates cover them), each
+  resampled (0.85 s, half of it ``grid_sample``'s scalar 3-D kernel, half the coordinates' numpy work; geometries
+  0.2 s) and factored at every scale a pair needs it (0.84 s, ~2.2 scales a copy), and runs 1,098 small products
+  (1.24 s for 123 k (object, copy) pairs, 105 k of them needed; ~1 ms of fixed cost each).
+- Mining 600 tumbled objects (this row's settings, 311 s CPU on one core): refinement 61% (resampling 22%,
+  column factors 20%, products 15%, geometries 4%), the first level 14%, aligned sums and their untilt 11%, the fit's
+  finish (3-D symmetry, faces) 7%, seeding 5%.  The copies are a fixed cost per chunk and pass (the same whatever
+  the chunk's objects), so a pass of two chunks builds them twice.
+- Two threads, 300 tumbled objects: the pool's threads used 80.6 and 80.3 s CPU, the main thread 19.8 s (11% of
+  184 s), so the wall clock can come down to about 0.55 x the CPU seconds on 2 free cores.  3,000 tumbled objects
+  (this row, seed 0, load 7-9): 883 s CPU, 2,627 s wall, peak 1,618 MB, NMI 0.952.
+- Kept exact, little is left to cut: no prototype was identical to the bank's before it in 35 passes (300
+  objects; copies kept across passes would never be used), the geometries were recomputed for nearly every
+  prototype and level in every pass (each pass's aspects move the hull; 1,929 batches in 35 passes of 600 objects),
+  a ``grid_sample`` twin by gathers gave the same bits but ran 1.05-1.6x slower (blocks of 3,456-50,000 points),
+  and regrouping the refinement's products (``SPLIT_OVERHEAD`` 100, 500, 1,000) changed the last bits of their
+  distances (the batched products' sums depend on the shapes) without a measurable gain.
 """
 from __future__ import annotations
 
