@@ -102,34 +102,14 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     fused = concave.copy()                       # the cuts the fused cloud itself shows
     if votes is not None:
         concave |= view_disagreement(pairs, votes)
-    keep = pairs[~concave]
-    g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
-    _, comp = connected_components(g, directed=False)
+    comp = _components(pairs[~concave], V)
     if votes is not None or colours is not None:
         # the crease and edge bands leave single voxels: each takes the part of its nearest voxel in a part
         # of at least CRUMB_VOXELS within its group
         size = np.bincount(comp, minlength=V)
         small = (size[comp] < CRUMB_VOXELS) & (labels >= 0)
         if votes is not None and regroup and small.any():
-            # a thin part (a tripod's legs, a handle) lies on an edge in every frame and the view check leaves
-            # all of it in crumbs: crumbs stay linked to one another where the fused cloud shows no cut
-            back = small[i] & small[j] & ~fused
-            if back.any():
-                keep = pairs[~concave | back]
-                g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
-                _, again = connected_components(g, directed=False)
-                n_again = np.bincount(again, minlength=V)
-                # a run of crumbs becomes a part only when it is large (a leg, a foot); a few of them together
-                # (a patch of the table's noise over the margin, a sliver of an edge) stay crumbs
-                grown = small & (n_again[again] >= REGROUP_VOXELS)
-                if colours is not None:
-                    # ... and is of one colour: a run through the mixed readings where two objects touch is not
-                    for r in np.unique(again[grown]):
-                        run = grown & (again == r)
-                        if not one_colour(colours[run], COLOUR_STEP):
-                            grown &= ~run
-                comp = np.where(grown, V + again, comp)
-                small &= ~grown
+            comp, small = _regroup_crumbs(pairs, concave, fused, comp, small, colours)
         big = np.flatnonzero(~small & (labels >= 0))
         if small.any() and len(big):
             for l in np.unique(labels[small]):
@@ -141,6 +121,34 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
                         take = _crumb_targets(points, colours, sm, bg, take)
                     comp[sm] = comp[take]
     return np.where(labels >= 0, comp, -1), pairs
+
+
+def _components(keep: np.ndarray, V: int) -> np.ndarray:
+    """(V,) connected-component id of each voxel over the kept adjacency pairs ``keep`` (E, 2)."""
+    g = coo_matrix((np.ones(len(keep)), (keep[:, 0], keep[:, 1])), shape=(V, V))
+    return connected_components(g, directed=False)[1]
+
+
+def _regroup_crumbs(pairs: np.ndarray, cut: np.ndarray, fused: np.ndarray, comp: np.ndarray, small: np.ndarray,
+                    colours: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """``[ingest] crumb_regroup``: (comp, small) with runs of crumbs made parts of their own.  A thin part (a
+    tripod's legs, a handle) lies on an edge in every frame and the view check leaves all of it in crumbs, so
+    crumbs stay linked to one another where the fused cloud shows no cut (``fused`` (E,), of the ``cut`` (E,)
+    pairs); a run becomes a part only when it is large (REGROUP_VOXELS: a leg, a foot; a patch of the table's
+    noise over the margin or a sliver of an edge stays crumbs) and, with ``colours``, of one colour (a run
+    through the mixed readings where two objects touch is not)."""
+    back = small[pairs[:, 0]] & small[pairs[:, 1]] & ~fused
+    if not back.any():
+        return comp, small
+    V = len(comp)
+    again = _components(pairs[~cut | back], V)
+    grown = small & (np.bincount(again, minlength=V)[again] >= REGROUP_VOXELS)
+    if colours is not None:
+        for r in np.unique(again[grown]):
+            run = grown & (again == r)
+            if not one_colour(colours[run], COLOUR_STEP):
+                grown &= ~run
+    return np.where(grown, V + again, comp), small & ~grown
 
 
 REGROUP_VOXELS = 50        # with regroup, a run of crumbs of at least this many voxels, of one colour (one_colour within
@@ -160,9 +168,7 @@ def _crumb_targets(points: np.ndarray, colours: np.ndarray, crumbs: np.ndarray, 
     frame, the view check leaves all of it in crumbs; taken by the nearest big voxel, a whole foot goes to
     the touching neighbour whose body is nearer than the object's own (measured, tools demo touching scenes:
     a tripod stand's feet absorbed into a hand plane's part, the stand's legs then joined the plane)."""
-    rgb = np.asarray(colours, dtype=np.float64)
-    s = rgb.sum(axis=1)
-    ch = rgb / np.maximum(s, 1e-9)[:, None]
+    s, ch = _chromaticities(colours)
     out = nearest.copy()
     lit = s[crumbs] >= DARK_RGB
     if not lit.any():
@@ -184,6 +190,13 @@ COLOUR_STEP = 0.08       # chromaticity distance between adjacent voxels that cu
                          # one object's readings (98% within 0.03-0.04 of its median; proposals.GROW_CHROMA)
 
 
+def _chromaticities(colours: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Brightness (V,) (r + g + b) and chromaticity (V, 3) (r, g, b) / (r + g + b) of RGB ``colours`` (V, 3)."""
+    rgb = np.asarray(colours, dtype=np.float64)
+    s = rgb.sum(axis=1)
+    return s, rgb / np.maximum(s, 1e-9)[:, None]
+
+
 def colour_steps(colours: np.ndarray, pairs: np.ndarray) -> np.ndarray:
     """(E,) bool: adjacent voxel pairs (E, 2) whose chromaticities (r, g, b) / (r + g + b) of their RGB
     ``colours`` (V, 3) lie farther apart than COLOUR_STEP (pairs with a voxel too dark to have one, DARK_RGB,
@@ -196,9 +209,7 @@ def colour_steps(colours: np.ndarray, pairs: np.ndarray) -> np.ndarray:
     from one object's colour to the other's, or to the mixed voxel between them, is a boundary too.  Two
     touching objects of one colour are not cut (no colour cue); an object of several colours is cut into
     pieces of one colour, which ``join_parts`` puts back together by support like any other parts."""
-    rgb = np.asarray(colours, dtype=np.float64)
-    s = rgb.sum(axis=1)
-    ch = rgb / np.maximum(s, 1e-9)[:, None]
+    s, ch = _chromaticities(colours)
     i, j = pairs[:, 0], pairs[:, 1]
     lit = (s[i] >= DARK_RGB) & (s[j] >= DARK_RGB)
     return lit & (np.linalg.norm(ch[i] - ch[j], axis=1) > COLOUR_STEP)

@@ -179,8 +179,8 @@ class Matcher:
         if volumes.ndim == 6:
             n, C = volumes.shape[:2]
             # a candidate equal to the object's first (a view not cut, a camera above the centre) is searched once
-            same = np.array([[c > 0 and np.array_equal(volumes[i, c], volumes[i, 0]) for c in range(C)]
-                             for i in range(n)], bool).reshape(n, C)
+            same = (volumes == volumes[:, :1]).all(axis=tuple(range(2, volumes.ndim)))
+            same[:, 0] = False
             keep = np.flatnonzero(~same.reshape(-1))
             m = self.match(volumes.reshape((n * C,) + volumes.shape[2:])[keep],
                            None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0)[keep],
