@@ -1,6 +1,7 @@
 """Invented test data: two box-like classes, each object resting on one of its class's stable faces
 (``faces.stable_ups``, the first three) at a random yaw, with a little noise.  Used by test_stable_faces (the K
-scan joins each class's faces) and test_seed_check (the fit's partition against its seed partition)."""
+scan joins each class's faces) and test_seed_check / test_seed_hold (the fit's partition against its seed partition; ``drifting_fit`` makes the fit
+drift)."""
 from __future__ import annotations
 
 import numpy as np
@@ -32,3 +33,17 @@ def resting_boxes(rng: np.random.Generator, n_each: int, azimuth_bins: int = 36)
             labels.append(k)
     return np.clip(np.stack(X), 0, 1).astype(np.float32), np.stack(W).astype(np.float32), np.array(aspect), \
         np.array(labels), grid
+
+
+def drifting_fit(monkeypatch, swaps: int) -> None:
+    """Make ``engine._lloyd`` drift: its passes' partition has ``swaps`` objects of class 0 and of class 1 swapped."""
+    from protomine.mine import engine
+    lloyd = engine._lloyd
+
+    def drifting(*args, **kwargs):
+        res = lloyd(*args, **kwargs)
+        a, b = np.flatnonzero(res.labels == 0)[:swaps], np.flatnonzero(res.labels == 1)[:swaps]
+        res.labels[np.concatenate([a, b])] = res.labels[np.concatenate([b, a])]
+        return res
+
+    monkeypatch.setattr(engine, "_lloyd", drifting)

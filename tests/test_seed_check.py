@@ -13,7 +13,7 @@ from sklearn.metrics import adjusted_rand_score
 from protomine.mine.engine import ArraySource, PoseKMeans, _held_fit
 from protomine.mine.seeding import FaceDistance, medoid_cost, pairwise_pose_distances
 
-from box_classes import resting_boxes
+from box_classes import drifting_fit, resting_boxes
 
 A = 36
 
@@ -74,19 +74,10 @@ def test_seed_check_keeps_the_partition_of_lower_stable_face_cost(monkeypatch):
     # the fit is made to drift (its passes' partition has two objects swapped between the classes, as the tilt-grid
     # passes moved a spool and an L bracket on touching stores): the check keeps the seed partition, the plain fit
     # keeps the drift
-    from protomine.mine import engine
     rng = np.random.default_rng(1)
     X, W, aspect, truth, grid = resting_boxes(rng, 6, A)
     src = ArraySource(X, W, aspect)
-    lloyd = engine._lloyd
-
-    def drifting(*args, **kwargs):
-        res = lloyd(*args, **kwargs)
-        a, b = np.flatnonzero(res.labels == 0)[0], np.flatnonzero(res.labels == 1)[0]
-        res.labels[[a, b]] = res.labels[[b, a]]
-        return res
-
-    monkeypatch.setattr(engine, "_lloyd", drifting)
+    drifting_fit(monkeypatch, 1)
     common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True)
     plain = PoseKMeans(**common).fit(src)
     kept = PoseKMeans(seed_check=True, **common).fit(src)

@@ -14,7 +14,7 @@ from sklearn.metrics import adjusted_rand_score
 from protomine.mine.engine import ArraySource, PoseKMeans
 from protomine.mine.seeding import medoid_cost, medoid_distances, paired_worse_t
 
-from box_classes import resting_boxes
+from box_classes import drifting_fit, resting_boxes
 
 A = 36
 
@@ -50,26 +50,12 @@ def test_medoid_distances_and_the_paired_t_against_scipy():
     assert paired_worse_t(S, swapped, truth) > 1.96 and paired_worse_t(S, truth, swapped) < -1.96
 
 
-def _drifting(monkeypatch, swaps: int):
-    # the fit is made to drift: its passes' partition has `swaps` objects of each class swapped to the other
-    from protomine.mine import engine
-    lloyd = engine._lloyd
-
-    def drifting(*args, **kwargs):
-        res = lloyd(*args, **kwargs)
-        a, b = np.flatnonzero(res.labels == 0)[:swaps], np.flatnonzero(res.labels == 1)[:swaps]
-        res.labels[np.concatenate([a, b])] = res.labels[np.concatenate([b, a])]
-        return res
-
-    monkeypatch.setattr(engine, "_lloyd", drifting)
-
-
 def test_seed_hold_holds_a_significantly_worse_fit_and_leaves_a_close_one(monkeypatch):
     rng = np.random.default_rng(1)
     X, W, aspect, truth, grid = resting_boxes(rng, 9, A)
     src = ArraySource(X, W, aspect)
     common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True)
-    _drifting(monkeypatch, 3)  # 6 of 18 objects in the wrong class
+    drifting_fit(monkeypatch, 3)  # 6 of 18 objects in the wrong class
     plain = PoseKMeans(**common).fit(src)
     held = PoseKMeans(seed_hold_t=1.96, **common).fit(src)
     assert adjusted_rand_score(truth, plain.labels_) < 0.5  # scikit-learn
