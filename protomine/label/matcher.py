@@ -122,6 +122,7 @@ class Matcher:
     view_score: bool = False
     view_calibrated: bool = False
     view_cut: bool = False
+    view_cut_within: float | None = None
     chunk_size: int = 512
     symmetric_top: int = 0
     P: np.ndarray = field(init=False)
@@ -148,7 +149,8 @@ class Matcher:
                                  exact_faces=self.exact_faces, refine_top=self.refine_top, chunk_size=self.chunk_size)
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
         self.normaliser = (ViewNormaliser(self.P, self.V, pr["aspect"], self.scales, self.tilts,
-                                          (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top)
+                                          (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top,
+                                          cut_within=self.view_cut_within)
                            if self.view_top > 0 else None)
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
@@ -317,7 +319,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  centre_offsets=view_centre_offsets(lib_cfg),
                  cut_offsets=view_cut_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
-                 view_cut=bool(m.get("view_normalise_cut", False)),
+                 view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
                  symmetric_top=int(m.get("label_symmetric", 0))))
 
 

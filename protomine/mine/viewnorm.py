@@ -164,9 +164,10 @@ def cut_cells(qv: np.ndarray, lo: float, half: float, yaw: float, cut: ViewCut) 
     """(m,) bool: which of a copy's visible cells qv (m, 3) (its frame, prototype units; lowest cell ``lo``, half a
     cell ``half``) the cut view ``cut`` would see, the copy turned by ``yaw`` degrees into the view's object frame.
 
-    The copy is placed as the view's object would be if it were this copy (analysis by synthesis): in metres at the
-    scale that gives its visible height the view's (``cut.height`` over the copy's height, grown by half a cell as
-    :func:`visible_geometries` grows it), its base on the support plane, and its footprint's centre on the view's
+    The copy is placed as the view's object would be if it were this copy (analysis by synthesis): in metres, at the
+    least scale the view allows (the copy's visible radius and height, grown by half a cell as
+    :func:`visible_geometries` grows them, scaled to the view's ``cut.radius`` and ``cut.height``: a cut only shrinks
+    a view, so the larger of the two scales), its base on the support plane, and its footprint's centre on the view's
     origin.  But the view's origin is the centre of what the view *sees* of its footprint (the cut part left out),
     so the centre placed there is that of the cells left after the cut: starting from every visible cell, the copy
     is placed, the cells :meth:`ViewCut.hidden` hides dropped, and the copy placed again about the remaining cells'
@@ -177,10 +178,10 @@ def cut_cells(qv: np.ndarray, lo: float, half: float, yaw: float, cut: ViewCut) 
         return keep
     R = rot.yaw_matrix(float(yaw))
     base = lo - 0.5 * half
+    _, r0 = min_enclosing_circle(qv[:, :2])
+    s = max(cut.radius / max(r0 + 0.5 * half, 1e-6), cut.height / max(float(qv[:, 2].max()) - lo + half, 1e-6))
     for _ in range(CUT_ITERATIONS):
-        kept = qv[keep]
-        centre, _ = min_enclosing_circle(kept[:, :2])
-        s = cut.height / max(float(kept[:, 2].max()) - lo + half, 1e-6)
+        centre, _ = min_enclosing_circle(qv[keep][:, :2])
         pts = (qv - np.array([centre[0], centre[1], base])) @ (s * R).T
         new = ~cut.hidden(pts)
         if new.sum() < MIN_CUT_CELLS or np.array_equal(new, keep):
@@ -259,18 +260,20 @@ class ViewNormaliser:
     """The distances of single views to prototypes P (K, C, R, A, H), V (K, R, A, H) (grid aspects (K,)) normalised as
     views from their cameras (module docstring); ``faces`` = (face_up (K, F, 3), face_count (K, F), face_symmetry
     (K, F)) of the library; ``max_faces``: only the first that many of :func:`face_candidates` (0 = all; fewer lost
-    accuracy, module docstring)."""
+    accuracy, module docstring); ``cut_within``: ``within`` for the views given a cut (:meth:`distances`; None: the
+    same ``within``)."""
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid,
                  faces: tuple[np.ndarray, np.ndarray, np.ndarray], *, top: int = 4, within: float = 1.5,
                  yaw_step: float = 30.0, yaw_window: float = 15.0, pixel: float = 1.0, depth_tol: float = 1.0,
-                 max_faces: int = 0):
+                 max_faces: int = 0, cut_within: float | None = None):
         self.P, self.V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         self.aspect = np.asarray(aspect, np.float64)
         self.scales, self.grid, self.faces = tuple(scales), grid, faces
         self.top, self.within = int(top), float(within)
         self.yaw_step, self.yaw_window, self.pixel, self.depth_tol = yaw_step, yaw_window, pixel, depth_tol
         self.max_faces = int(max_faces)
+        self.cut_within = self.within if cut_within is None else float(cut_within)   # a cut view's shortlist
         self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._rest_cache: dict[tuple, tuple] = {}
 
@@ -345,11 +348,12 @@ class ViewNormaliser:
             if not np.all(np.isfinite(cam)) or np.linalg.norm(cam) < 1e-9:
                 continue
             Df = np.where(np.isfinite(D[i]), D[i], np.inf)
+            cut = cuts[i] is not None
             order = np.argsort(Df, kind="stable")[:self.top]
             if not np.isfinite(Df[order[0]]):
                 continue
             obj = object_factors(X[i], W[i])
-            for k in order[Df[order] <= self.within * Df[order[0]]]:
+            for k in order[Df[order] <= (self.cut_within if cut else self.within) * Df[order[0]]]:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
                 out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj, cuts[i])
