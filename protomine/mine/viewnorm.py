@@ -40,6 +40,12 @@ lesser of their pose-searched distance and this one, and the nearest then names 
 stay those of the pose search (the score's calibration judges the plain distance), unless ``[mine]
 view_normalise_score``: then each shortlisted prototype's score is the higher of the pose search's and that of this
 distance (:meth:`ViewNormaliser.distances`, read by ``label.matcher``).
+
+A view that cuts its object off (the image border, a nearer object: ``ingest.truncation``) is gridded about what it
+sees of the object, less than the camera would see of the whole: with ``[mine] view_normalise_cut`` its copies also
+lose the cells the view could not see (:func:`cut_cells`: the copy placed in the view's object frame, its cells
+projected with the view's intrinsics and pose), so that the copy's footprint and height are the cut view's.  A cut
+view's shortlist takes ``cut_within`` instead of ``within`` (``[mine] view_normalise_cut_within``).
 """
 from __future__ import annotations
 
