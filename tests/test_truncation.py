@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 
 from protomine.ingest.proposals import centre_candidates, shifted_frames
-from protomine.ingest.truncation import BORDER_PX, NEIGHBOUR_PX, cut_direction, cut_pixels
+from protomine.ingest.truncation import BORDER_PX, NEIGHBOUR_PX, cut_direction, cut_pixels, view_cut
 from protomine.ingest.volume import ObjectFrame
 
 
@@ -74,3 +74,40 @@ def test_shifted_frames_move_the_centre_and_still_hold_the_footprint():
     a = centre_candidates(pts, frame, cam, (0.0, 0.5))
     b = shifted_frames(pts, frame, np.array([1.0, 0.0, 0.0]), (0.0, 0.5))
     assert np.allclose(a[1].origin, b[1].origin) and np.isclose(a[1].radius, b[1].radius)
+
+
+def _down_camera(height: float, f: float, W: int, H: int):
+    """A pinhole camera ``height`` m above the origin looking straight down (camera x = world x, camera y = world -y,
+    forward = world -z), pixel centres at integer coordinates (cx = (W - 1) / 2)."""
+    K = np.array([[f, 0.0, (W - 1) / 2], [0.0, f, (H - 1) / 2], [0.0, 0.0, 1.0]])
+    c2w = np.eye(4)
+    c2w[:3, :3] = np.diag([1.0, -1.0, -1.0])
+    c2w[:3, 3] = [0.0, 0.0, height]
+    return K, c2w
+
+
+def test_view_cut_hides_what_projects_outside_the_image_or_behind_a_nearer_object():
+    # pinhole projection worked out by hand (from memory: u = f X / Z + cx, v = f Y / Z + cy, Z the depth along
+    # the optical axis); the sensor spans u, v in [-0.5, W - 0.5), [-0.5, H - 0.5)
+    W, H, f, cam_h = 40, 30, 50.0, 1.0
+    K, c2w = _down_camera(cam_h, f, W, H)
+    depth = np.full((H, W), cam_h)
+    others = np.zeros((H, W), bool)
+    others[:, 30:] = True                       # another object's pixels at columns 30.. (u >= 29.5) ...
+    depth[:, 30:] = 0.8                         # ... 0.2 m above the table, nearer the camera
+    ours = _block(H, W, 10, 20, 0, 10)          # ours runs off the left border: cut
+    vc = view_cut(depth, K, c2w, ours, others.reshape(-1), np.zeros(3), np.array([0.0, 0.0, 1.0]), 0.1, 0.05)
+    assert vc is not None
+    x_left = -(W / 2) / f * cam_h                # u = -0.5 at depth 1: X = (-0.5 - cx) Z / f = -0.4 m
+    x_other = (29.5 - (W - 1) / 2) / f * cam_h   # u = 29.5: X = 0.2 m
+    pts = np.array([[x_left - 0.01, 0.0, 0.0],   # left of the image: hidden
+                    [x_left + 0.01, 0.0, 0.0],   # just inside: seen
+                    [x_other + 0.01, 0.0, 0.0],  # on the other object's pixels, below its reading: hidden
+                    [x_other - 0.01, 0.0, 0.0],  # just beside it: seen
+                    [0.0, 0.0, 1.5]])            # behind the camera: hidden
+    assert vc.hidden(pts).tolist() == [True, False, True, False, True]
+    # a point in front of the other object is seen: 0.85 m up (depth 0.15 m) at X = 0.04 m projects to
+    # u = 50 x 0.04 / 0.15 + 19.5 = 32.8, a pixel of the other object, whose reading (0.8 m) lies behind it
+    assert not vc.hidden(np.array([[0.04, 0.0, 0.85]]))[0]
+    assert view_cut(depth, K, c2w, _block(H, W, 10, 20, 12, 20), others.reshape(-1), np.zeros(3),
+                    np.array([0.0, 0.0, 1.0]), 0.1, 0.05) is None   # wholly in view, beside no nearer object

@@ -242,3 +242,41 @@ def test_switch_scores_a_match_by_the_better_of_its_two_distances(tiny_world):
                 want = max(want, sv)
             assert got["score"][i, k] == pytest.approx(want, abs=1e-6), (i, k)
     assert raised > 0      # the test sees the switch act (measured: 3 of the 36 pairs)
+
+
+def test_a_copy_cut_by_the_image_border_keeps_the_part_the_view_sees():
+    # a flat square of cells (20 x 20 at 0.1 prototype units, one layer) under a camera looking straight down whose
+    # image's right border crosses it; expected figures worked out by hand from the pinhole projection (from memory:
+    # u = f X / Z + cx, the sensor ending at u = W - 0.5) and the smallest circle of a rectangle (centred on it).
+    from protomine.ingest.truncation import ViewCut
+    from protomine.mine.viewnorm import cut_cells
+    xs = np.arange(-0.95, 1.0, 0.1)
+    gx, gy = np.meshgrid(xs, xs, indexing="ij")
+    qv = np.stack([gx.ravel(), gy.ravel(), np.zeros(gx.size)], 1)
+    lo, half, a = 0.0, 0.05, 0.1             # a: metres per prototype unit of the object the view shows
+    c_true = 0.3                             # the object's centre, world x (m)
+    x_b = c_true + 0.1 * 0.21                # the image's right border at the cells' depth: cells x <= 0.15 seen
+    f, W, H = 100.0, 200, 100
+    z = (lo - (lo - 0.5 * half)) * a         # the cells' height above the plane once placed: 0.0025 m
+    cam_h = 1.0
+    Z = cam_h - z
+    cx = (W - 0.5) - f * x_b / Z             # puts u = W - 0.5 at world x = x_b
+    K = np.array([[f, 0.0, cx], [0.0, f, (H - 1) / 2], [0.0, 0.0, 1.0]])
+    w2c = np.eye(4)
+    w2c[:3, :3] = np.diag([1.0, -1.0, -1.0])  # camera above the world origin, looking down
+    w2c[:3, 3] = [0.0, 0.0, cam_h]
+    seen = xs[xs < 0.21]                     # the columns the view sees: x from -0.95 to 0.15
+    origin_x = c_true + a * 0.5 * (seen[0] + seen[-1])   # the view's origin: the centre of its visible footprint
+    r_view = a * np.hypot(0.5 * (seen[-1] - seen[0]), 0.95)
+    cut = ViewCut(K, (W, H), w2c, np.array([origin_x, 0.0, 0.0]), np.eye(3), r_view, a * half,
+                  np.zeros(0, np.int64), np.zeros(0))
+    keep = cut_cells(qv, lo, half, 0.0, cut)
+    kept_x = np.unique(np.round(qv[keep, 0], 6))
+    assert all(np.sum(np.isclose(qv[keep, 0], x)) == len(xs) for x in kept_x)   # whole columns (the border is straight)
+    # the iteration halves the placement's error each step; on cells it stops within one column of the truth
+    # (0.15), the whole (0.95) or the first placement's cut (0.55) would be far off
+    assert kept_x.min() == pytest.approx(-0.95) and abs(kept_x.max() - 0.15) <= 0.1 + 1e-9
+    # nothing to cut (the border far off): every cell kept
+    far = ViewCut(np.array([[f, 0.0, W / 2], [0.0, f, (H - 1) / 2], [0.0, 0.0, 1.0]]), (W * 10, H), w2c,
+                  np.array([origin_x, 0.0, 0.0]), np.eye(3), r_view, a * half, np.zeros(0, np.int64), np.zeros(0))
+    assert cut_cells(qv, lo, half, 0.0, far).all()

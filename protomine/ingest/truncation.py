@@ -17,6 +17,8 @@ its centre evenly (the mean direction shorter than ``MIN_RESULTANT`` of a unit),
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy import ndimage
 
@@ -66,3 +68,60 @@ def cut_direction(points: np.ndarray, cut: np.ndarray, origin: np.ndarray, up: n
         return None
     m /= np.linalg.norm(m)
     return m @ B[:2]
+
+
+@dataclass(frozen=True)
+class ViewCut:
+    """What a single view could not see of the space about its object: the cells that project outside the image, and
+    those behind a nearer object (``[mine] view_normalise_cut``, ``mine.viewnorm``).  Points are given in the view's
+    object frame, metres (origin the visible footprint's base centre, axes ``plane_basis(up)``); ``K`` (3, 3) the
+    intrinsics, ``size`` (width, height) pixels, ``world_to_cam`` (4, 4); ``origin`` (3,), ``basis`` (3, 3) the object
+    frame; ``radius``, ``height`` the view's visible footprint radius and height (m); ``others`` the sorted flat pixel
+    indices held by other objects of the frame and ``others_depth`` their readings (m)."""
+    K: np.ndarray
+    size: tuple[int, int]
+    world_to_cam: np.ndarray
+    origin: np.ndarray
+    basis: np.ndarray
+    radius: float
+    height: float
+    others: np.ndarray
+    others_depth: np.ndarray
+
+    def hidden(self, points: np.ndarray) -> np.ndarray:
+        """(m,) bool: object-frame points (m, 3) (metres) the view's camera cannot see: behind the camera, projecting
+        outside the image (perspective, the pixel centres at integer coordinates), or onto another object's pixel
+        whose reading is nearer than the point by more than ``NEARER_M`` (the point lies behind that object)."""
+        pts = np.asarray(points, np.float64)
+        world = self.origin + pts @ self.basis
+        cam = world @ self.world_to_cam[:3, :3].T + self.world_to_cam[:3, 3]
+        z = cam[:, 2]
+        front = z > 1e-6
+        zs = np.where(front, z, 1.0)
+        u = self.K[0, 0] * cam[:, 0] / zs + self.K[0, 1] * cam[:, 1] / zs + self.K[0, 2]
+        v = self.K[1, 1] * cam[:, 1] / zs + self.K[1, 2]
+        w, h = self.size
+        c, r = np.floor(u + 0.5), np.floor(v + 0.5)
+        inside = front & (c >= 0) & (c < w) & (r >= 0) & (r < h)
+        out = ~inside
+        if len(self.others) and inside.any():
+            flat = (r[inside] * w + c[inside]).astype(np.int64)
+            j = np.minimum(np.searchsorted(self.others, flat), len(self.others) - 1)
+            behind = (self.others[j] == flat) & (self.others_depth[j] < z[inside] - NEARER_M)
+            out[np.flatnonzero(inside)[behind]] = True
+        return out
+
+
+def view_cut(depth: np.ndarray, K: np.ndarray, cam_to_world: np.ndarray, pixels: np.ndarray, others: np.ndarray,
+             origin: np.ndarray, up: np.ndarray, radius: float, height: float) -> ViewCut | None:
+    """The :class:`ViewCut` of an object (flat pixel indices ``pixels``, visible footprint ``origin``, ``up``,
+    ``radius``, ``height``) in a frame (``depth`` (H, W) metres, ``K``, ``cam_to_world``; ``others`` (H * W,) bool
+    the pixels other objects hold), None when the view does not cut it (no pixel on a cut, :func:`cut_pixels`)."""
+    H, W = depth.shape
+    others = np.asarray(others, bool).reshape(-1)
+    if not cut_pixels(pixels, depth, others.reshape(H, W)).any():
+        return None
+    idx = np.flatnonzero(others & (depth.reshape(-1) > 0))
+    return ViewCut(np.asarray(K, np.float64), (int(W), int(H)), np.linalg.inv(np.asarray(cam_to_world, np.float64)),
+                   np.asarray(origin, np.float64), plane_basis(np.asarray(up, np.float64)), float(radius), float(height),
+                   idx, depth.reshape(-1)[idx].astype(np.float64))

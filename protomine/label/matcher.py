@@ -65,7 +65,7 @@ from ..cores import one_blas_thread
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names, view_camera
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, shifted_frames
-from ..ingest.truncation import cut_direction, cut_pixels
+from ..ingest.truncation import cut_direction, cut_pixels, view_cut
 from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
@@ -121,6 +121,8 @@ class Matcher:
     view_top: int = 0
     view_score: bool = False
     view_calibrated: bool = False
+    view_cut: bool = False
+    view_cut_within: float | None = None
     chunk_size: int = 512
     symmetric_top: int = 0
     P: np.ndarray = field(init=False)
@@ -147,7 +149,8 @@ class Matcher:
                                  exact_faces=self.exact_faces, refine_top=self.refine_top, chunk_size=self.chunk_size)
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
         self.normaliser = (ViewNormaliser(self.P, self.V, pr["aspect"], self.scales, self.tilts,
-                                          (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top)
+                                          (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top,
+                                          cut_within=self.view_cut_within)
                            if self.view_top > 0 else None)
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
@@ -163,7 +166,7 @@ class Matcher:
         return X, (W if self.weighted else np.ones_like(W))
 
     def match(self, volumes: np.ndarray, cameras: np.ndarray | None = None,
-              sizes: np.ndarray | None = None) -> dict[str, np.ndarray]:
+              sizes: np.ndarray | None = None, cuts: list | None = None) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
         (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
         ``cameras`` (n, 3): each view's camera direction in its object frame (:func:`lift_frame`); with the
@@ -175,7 +178,9 @@ class Matcher:
         ``centre_offsets``); per object and prototype the candidate at the least distance gives every figure,
         and ``centre`` (n, K) says which.
         ``sizes`` (n, 2): each view's footprint radius and height (m); with ``symmetric_top`` (the library's
-        ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``)."""
+        ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``).
+        ``cuts`` (n,): each view's ``ingest.truncation.ViewCut`` or None (``[mine] view_normalise_cut``: the copies
+        seen from the camera also lose what the view could not see; None: none)."""
         if volumes.ndim == 6:
             n, C = volumes.shape[:2]
             # a candidate equal to the object's first (a view not cut, a camera above the centre) is searched once
@@ -184,7 +189,8 @@ class Matcher:
             keep = np.flatnonzero(~same.reshape(-1))
             m = self.match(volumes.reshape((n * C,) + volumes.shape[2:])[keep],
                            None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0)[keep],
-                           None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0)[keep])
+                           None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0)[keep],
+                           None if cuts is None else [cuts[j // C] for j in keep])
             if n == 0:
                 return {**m, "centre": np.zeros((0, self.K), int)}
             src = np.searchsorted(keep, np.where(same, np.arange(n)[:, None] * C, np.arange(n * C).reshape(n, C)).reshape(-1))
@@ -226,7 +232,7 @@ class Matcher:
         D = self.search.vote(X, W, D)
         Dv = np.full(D.shape, np.nan)
         if self.normaliser is not None and cameras is not None:  # the prototypes gridded as seen from the camera
-            Dv = self.normaliser.distances(X, W, D, up, cameras)
+            Dv = self.normaliser.distances(X, W, D, up, cameras, cuts)
             D = np.fmin(D, Dv)
             if self.view_score and not self.view_calibrated:  # ``[mine] view_normalise_score``: the better of the two
                 Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
@@ -313,6 +319,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  centre_offsets=view_centre_offsets(lib_cfg),
                  cut_offsets=view_cut_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
+                 view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
                  symmetric_top=int(m.get("label_symmetric", 0))))
 
 
@@ -324,10 +331,12 @@ class FrameObjects:
     volumes: np.ndarray
     facts: list[dict]
     cameras: np.ndarray | None = None
+    cuts: list | None = None     # (n,) ``ingest.truncation.ViewCut`` or None per object (``[mine] view_normalise_cut``)
 
 
 def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, geometry_ids: bool,
-               centre_offsets: tuple[float, ...] = (), cut_offsets: tuple[float, ...] = ()) -> FrameObjects:
+               centre_offsets: tuple[float, ...] = (), cut_offsets: tuple[float, ...] = (),
+               view_cuts: bool = False) -> FrameObjects:
     """Lift every proposal of a one-frame scene into its own volume; facts are the record's geometric fields.
     With ``centre_offsets`` (``[mine] view_centre_offsets``) each object is lifted about each candidate base
     centre of ``ingest.proposals.centre_candidates`` (the visible footprint's circle moved away from the camera):
@@ -335,11 +344,12 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
     With ``cut_offsets`` (``[mine] view_cut_offsets``) an object the view cuts off (the image border, a nearer
     object: ``ingest.truncation``) is also lifted about its visible circle moved by each of them x its radius toward
     the cut (``proposals.shifted_frames``); an object not cut repeats its first candidate there (C grows by
-    len(cut_offsets))."""
+    len(cut_offsets)).  With ``view_cuts`` each object's ``ingest.truncation.view_cut`` (None when not cut) goes with it.
+    """
     height = scene.capture.intrinsics.height
     fd = next((f for f in scene.frames if f.id == frame_id), None)
     mask = None if geometry_ids or fd is None or fd.mask is None else fd.mask.reshape(-1)
-    vols, facts, cams = [], [], []
+    vols, facts, cams, cuts = [], [], [], []
     several = bool(centre_offsets or cut_offsets)
     for p in scene.proposals:
         pix = p.pixels.get(frame_id)
@@ -360,6 +370,11 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
             vols.append((views, p.frame))              # lifted together below (lift_many: the same volumes)
         centre = np.asarray(p.frame.origin, np.float64) + 0.5 * float(p.frame.height) * np.asarray(p.frame.up, np.float64)
         cams.append(view_camera(p.frame.up, centre, fd.cam_to_world) if fd is not None else np.zeros(3))
+        if view_cuts:
+            held = scene.held(fd).copy()
+            held[pix] -= 1
+            cuts.append(view_cut(fd.depth, scene.capture.intrinsics.K, fd.cam_to_world, pix, held > 0, p.frame.origin,
+                                 p.frame.up, p.frame.radius, p.frame.height))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
         # the picture's extent: the whole mask region when masks name the object (pixels without a depth
@@ -378,7 +393,7 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         flat = lift_many([pair for cands in vols for pair in cands], grid)
         vols = [np.stack(flat[i * C:(i + 1) * C]) for i in range(len(vols))]
     stack = np.stack(vols) if vols else np.zeros((0,) + ((C,) if several else ()) + (6, R, A, H), np.float32)
-    return FrameObjects(frame_id, stack, facts, np.asarray(cams, np.float64).reshape(-1, 3))
+    return FrameObjects(frame_id, stack, facts, np.asarray(cams, np.float64).reshape(-1, 3), cuts if view_cuts else None)
 
 
 def _cut_frames(scene: SceneObjects, fd, p, pix: np.ndarray, points: np.ndarray, point_pixels: np.ndarray,
@@ -540,7 +555,7 @@ def _lift_capture(matcher: Matcher, cap: Capture, cfg: dict, seed: int, use_mask
         scene = find_objects(cap, cfg, rng, frame_ids=[fr.id], use_masks=masks)
         t0 = time.perf_counter()
         fo = lift_frame(scene, fr.id, matcher.grid, width, geometry_ids=not masks, centre_offsets=matcher.centre_offsets,
-                        cut_offsets=matcher.cut_offsets)
+                        cut_offsets=matcher.cut_offsets, view_cuts=matcher.view_cut and matcher.normaliser is not None)
         st["lift_s"] += time.perf_counter() - t0
         lifted.append((cap.name, fo))
         b.advance()
@@ -556,7 +571,8 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
     t0 = time.perf_counter()
     m = matcher.match(np.concatenate([fo.volumes for _, fo in lifted]),
                       np.concatenate([fo.cameras for _, fo in lifted]),
-                      np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2))
+                      np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2),
+                      [c for _, fo in lifted for c in fo.cuts] if matcher.view_cut and matcher.normaliser is not None else None)
     st["match_s"] += time.perf_counter() - t0
     out, i0 = [], 0
     for cap_name, fo in lifted:

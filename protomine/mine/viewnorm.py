@@ -40,6 +40,12 @@ lesser of their pose-searched distance and this one, and the nearest then names 
 stay those of the pose search (the score's calibration judges the plain distance), unless ``[mine]
 view_normalise_score``: then each shortlisted prototype's score is the higher of the pose search's and that of this
 distance (:meth:`ViewNormaliser.distances`, read by ``label.matcher``).
+
+A view that cuts its object off (the image border, a nearer object: ``ingest.truncation``) is gridded about what it
+sees of the object, less than the camera would see of the whole: with ``[mine] view_normalise_cut`` its copies also
+lose the cells the view could not see (:func:`cut_cells`: the copy placed in the view's object frame, its cells
+projected with the view's intrinsics and pose), so that the copy's footprint and height are the cut view's.  A cut
+view's shortlist takes ``cut_within`` instead of ``within`` (``[mine] view_normalise_cut_within``).
 """
 from __future__ import annotations
 
@@ -49,10 +55,13 @@ import torch
 from .. import rotations as rot
 from ..cores import one_blas_thread
 from ..ingest.proposals import min_enclosing_circle
+from ..ingest.truncation import ViewCut
 from .posesearch import distance_of_sums, scale_prototypes
 from .tilts import IDENTITY_DEG, CopyGeometry, TiltGrid, _resample_copies, solid_cells
 
 SAME_FACE_DEG = 10.0     # resting directions this close are searched once
+CUT_ITERATIONS = 4       # placements of a copy about the cells a cut view would see (cut_cells)
+MIN_CUT_CELLS = 4        # a cut leaving fewer of a copy's visible cells is not applied
 
 
 def _cross3(a: np.ndarray, b: np.ndarray) -> np.ndarray:
@@ -137,19 +146,54 @@ def resting_cells(shape: tuple[int, int, int], aspect: float, up: np.ndarray, so
 
 
 def visible_geometries(rest: tuple[np.ndarray, np.ndarray, np.ndarray, float, float], cameras: np.ndarray,
-                       grid: TiltGrid, *, pixel: float = 1.0, depth_tol: float = 1.0) -> list[CopyGeometry]:
+                       grid: TiltGrid, *, pixel: float = 1.0, depth_tol: float = 1.0, cut: ViewCut | None = None,
+                       yaws: np.ndarray | None = None) -> list[CopyGeometry]:
     """:func:`visible_geometry` of one resting prototype (:func:`resting_cells`) seen from each of ``cameras``
-    (Y, 3): one z-buffer for all (:func:`visible_masks`), one enclosing circle each."""
+    (Y, 3): one z-buffer for all (:func:`visible_masks`), one enclosing circle each.  With ``cut`` (the view's
+    :class:`ingest.truncation.ViewCut`) and ``yaws`` (Y,) (degrees: camera y is the view's camera seen from the copy
+    turned by yaws[y]) the visible cells also lose those the view could not see (:func:`cut_cells`)."""
     M, c0, q, lo, half = rest
     out = []
-    for seen in visible_masks(q, cameras, pixel * 2 * half, depth_tol * 2 * half):
+    for y, seen in enumerate(visible_masks(q, cameras, pixel * 2 * half, depth_tol * 2 * half)):
         qv = q[seen]
+        if cut is not None:
+            qv = qv[cut_cells(qv, lo, half, float(yaws[y]), cut)]
         centre, radius = min_enclosing_circle(qv[:, :2])
         height = max(float(qv[:, 2].max()) - lo + half, 1e-3)
         radius = max(radius + 0.5 * half, 1e-3)
         base = np.array([centre[0], centre[1], lo - 0.5 * half])
         out.append(CopyGeometry(M, c0, base, grid.radial_margin * radius, grid.height_margin * height))
     return out
+
+
+def cut_cells(qv: np.ndarray, lo: float, half: float, yaw: float, cut: ViewCut) -> np.ndarray:
+    """(m,) bool: which of a copy's visible cells qv (m, 3) (its frame, prototype units; lowest cell ``lo``, half a
+    cell ``half``) the cut view ``cut`` would see, the copy turned by ``yaw`` degrees into the view's object frame.
+
+    The copy is placed as the view's object would be if it were this copy (analysis by synthesis): in metres, at the
+    least scale the view allows (the copy's visible radius and height, grown by half a cell as
+    :func:`visible_geometries` grows them, scaled to the view's ``cut.radius`` and ``cut.height``: a cut only shrinks
+    a view, so the larger of the two scales), its base on the support plane, and its footprint's centre on the view's
+    origin.  But the view's origin is the centre of what the view *sees* of its footprint (the cut part left out),
+    so the centre placed there is that of the cells left after the cut: starting from every visible cell, the copy
+    is placed, the cells :meth:`ViewCut.hidden` hides dropped, and the copy placed again about the remaining cells'
+    enclosing circle and height, until the kept cells no longer change (at most ``CUT_ITERATIONS`` times).  A cut
+    that would leave fewer than ``MIN_CUT_CELLS`` cells keeps the cells of the step before."""
+    keep = np.ones(len(qv), bool)
+    if len(qv) < MIN_CUT_CELLS:
+        return keep
+    R = rot.yaw_matrix(float(yaw))
+    base = lo - 0.5 * half
+    _, r0 = min_enclosing_circle(qv[:, :2])
+    s = max(cut.radius / max(r0 + 0.5 * half, 1e-6), cut.height / max(float(qv[:, 2].max()) - lo + half, 1e-6))
+    for _ in range(CUT_ITERATIONS):
+        centre, _ = min_enclosing_circle(qv[keep][:, :2])
+        pts = (qv - np.array([centre[0], centre[1], base])) @ (s * R).T
+        new = ~cut.hidden(pts)
+        if new.sum() < MIN_CUT_CELLS or np.array_equal(new, keep):
+            break
+        keep = new
+    return keep
 
 
 def window_shifts(A: int, made: np.ndarray, window: float) -> np.ndarray:
@@ -222,18 +266,20 @@ class ViewNormaliser:
     """The distances of single views to prototypes P (K, C, R, A, H), V (K, R, A, H) (grid aspects (K,)) normalised as
     views from their cameras (module docstring); ``faces`` = (face_up (K, F, 3), face_count (K, F), face_symmetry
     (K, F)) of the library; ``max_faces``: only the first that many of :func:`face_candidates` (0 = all; fewer lost
-    accuracy, module docstring)."""
+    accuracy, module docstring); ``cut_within``: ``within`` for the views given a cut (:meth:`distances`; None: the
+    same ``within``)."""
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid,
                  faces: tuple[np.ndarray, np.ndarray, np.ndarray], *, top: int = 4, within: float = 1.5,
                  yaw_step: float = 30.0, yaw_window: float = 15.0, pixel: float = 1.0, depth_tol: float = 1.0,
-                 max_faces: int = 0):
+                 max_faces: int = 0, cut_within: float | None = None):
         self.P, self.V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         self.aspect = np.asarray(aspect, np.float64)
         self.scales, self.grid, self.faces = tuple(scales), grid, faces
         self.top, self.within = int(top), float(within)
         self.yaw_step, self.yaw_window, self.pixel, self.depth_tol = yaw_step, yaw_window, pixel, depth_tol
         self.max_faces = int(max_faces)
+        self.cut_within = self.within if cut_within is None else float(cut_within)   # a cut view's shortlist
         self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._rest_cache: dict[tuple, tuple] = {}
 
@@ -247,12 +293,14 @@ class ViewNormaliser:
         return self._rest_cache[key]
 
     def distance(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray,
-                 obj: tuple[torch.Tensor, torch.Tensor] | None = None) -> float:
+                 obj: tuple[torch.Tensor, torch.Tensor] | None = None, cut: ViewCut | None = None) -> float:
         """Least distance of one view x (1, C, R, A, H), w (1, R, A, H) (camera direction ``camera`` (3,) in its
         object frame) to prototype k's copies resting on ``ups``, each gridded as seen from the camera at every
         ``yaw_step`` degrees of yaw, the yaw kept within ``yaw_window`` of it (``obj``: the view's
         :func:`object_factors` when known).  Copies of one face whose geometry is the same for several yaws (the
-        same visible circle and height) are resampled and compared once, at all those yaws' shifts."""
+        same visible circle and height) are resampled and compared once, at all those yaws' shifts.  ``cut``: the
+        view's :class:`ingest.truncation.ViewCut` (``[mine] view_normalise_cut``; None: the copies keep every cell the
+        camera sees)."""
         k = int(k)
         y0 = np.arange(0.0, 360.0, self.yaw_step)
         cams = rot.yaw_matrix(-y0) @ np.asarray(camera, np.float64)   # (Y, 3): the camera in the copy's frame
@@ -262,7 +310,7 @@ class ViewNormaliser:
         for u in ups:
             seen: dict[bytes, int] = {}
             for g, row in zip(visible_geometries(self._rest(k, u), cams, self.grid, pixel=self.pixel,
-                                                 depth_tol=self.depth_tol), ok):
+                                                 depth_tol=self.depth_tol, cut=cut, yaws=y0), ok):
                 key = np.concatenate([g.base, [g.rho_max, g.z_max]]).tobytes()
                 if key in seen:
                     shifts[seen[key]] = shifts[seen[key]] | row
@@ -285,18 +333,20 @@ class ViewNormaliser:
             best = min(best, float(d.min()))
         return best
 
-    def distances(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray) -> np.ndarray:
+    def distances(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray,
+                  cuts: list[ViewCut | None] | None = None) -> np.ndarray:
         """View-normalised distances (n, K) of views X (n, C, R, A, H), W (n, R, A, H) to each view's ``top`` nearest
         prototypes by D (n, K) (within ``within`` x its nearest), NaN for every other pair; ``up`` (n, K, 3) the faces
         the pose search found, ``cameras`` (n, 3) the camera directions in the views' object frames (a row of zeros
-        or NaN: none, the row all NaN)."""
+        or NaN: none, the row all NaN); ``cuts`` (n,): each view's :class:`ingest.truncation.ViewCut` or None (None:
+        none)."""
         out = np.full(np.shape(D), np.nan)
         with one_blas_thread():  # many small numpy products (``tilts._forward_xyz``, the projections): no BLAS pool
-            self._fill(out, X, W, D, up, cameras)
+            self._fill(out, X, W, D, up, cameras, cuts if cuts is not None else [None] * len(D))
         return out
 
     def _fill(self, out: np.ndarray, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray,
-              cameras: np.ndarray) -> None:
+              cameras: np.ndarray, cuts: list[ViewCut | None]) -> None:
         """:meth:`distances` into ``out`` (n, K)."""
         face_up, face_count, face_symmetry = self.faces
         for i in range(len(D)):
@@ -304,11 +354,12 @@ class ViewNormaliser:
             if not np.all(np.isfinite(cam)) or np.linalg.norm(cam) < 1e-9:
                 continue
             Df = np.where(np.isfinite(D[i]), D[i], np.inf)
+            cut = cuts[i] is not None
             order = np.argsort(Df, kind="stable")[:self.top]
             if not np.isfinite(Df[order[0]]):
                 continue
             obj = object_factors(X[i], W[i])
-            for k in order[Df[order] <= self.within * Df[order[0]]]:
+            for k in order[Df[order] <= (self.cut_within if cut else self.within) * Df[order[0]]]:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
-                out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj)
+                out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj, cuts[i])
