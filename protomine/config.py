@@ -61,6 +61,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.view_centre_offsets": (0.0, 2.0),
     "mine.view_cut_offsets": (0.0, 2.0),
     "mine.label_symmetric": (0, 64),
+    "mine.unseen_charge": (0.0, 1.0),
     "mine.find_expand": (0, 1000),
     "mine.find_reciprocal": (0, 1_000_000),
     "mine.find_symmetric": (0, 1_000_000),

@@ -77,6 +77,7 @@ from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, grid_aspect
 from .. import rotations as rot
+from ..mine.unseen import unseen_shares
 from ..mine.viewnorm import ViewNormaliser
 from . import symmetric as sym
 from ..mine.viewsearch import ExactFaces, ViewSearch  # noqa: F401  (ExactFaces: the label search's part, re-exported)
@@ -101,7 +102,8 @@ class Matcher:
     directions (:class:`ExactFaces`).  ``tolerant`` (the library's ``[mine] tolerant_residual``): scores judge
     the tolerant distance of ``mine.viewdistance`` on every face, as the library's calibration did; ``rings``
     (the ring beyond the footprint and its weight, None = counted like the rest: the library's ``[mine]
-    score_margin_ring``) likewise.
+    score_margin_ring``) likewise.  ``unseen`` (the library's ``[mine] unseen_charge``): every decision distance grows
+    by it x the share of the view's surface the posed prototype has not observed (``mine.unseen``).
     """
 
     library: Library
@@ -125,6 +127,7 @@ class Matcher:
     view_cut_within: float | None = None
     chunk_size: int = 512
     symmetric_top: int = 0
+    unseen: float = 0.0
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -237,6 +240,8 @@ class Matcher:
             if self.view_score and not self.view_calibrated:  # ``[mine] view_normalise_score``: the better of the two
                 Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
                 S = np.where(np.isfinite(Dv), np.maximum(S, Sv), S)
+        if self.unseen > 0:  # ``[mine] unseen_charge``: the share of the view's surface the posed prototype has not seen
+            D = D + self.unseen * unseen_shares(self.V, self.search.bank, X, W, up, raw, fit_scale, upright)
         if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
             Dm = np.fmin(Dr, Dv)
             S = self.library.score(np.where(np.isfinite(Dm), Dm, 1.0), np.arange(self.K)[None, :], single_view=True,
@@ -320,7 +325,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  cut_offsets=view_cut_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
-                 symmetric_top=int(m.get("label_symmetric", 0))))
+                 symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0))))
 
 
 @dataclass
