@@ -9,10 +9,10 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    library's matcher and its score; the example's camera direction from the store's ``single/camera`` when the store
    has one for it): best prototype b and its score s.  The route is taken when s >= max(t, the library's unknown cut),
    t = ``find_prototype``.  The unknown cut alone lets through the never-mined views that the label stage takes for a
-   known class (unknown AUROC is below 1; on the default demo 44% of them): their score is mostly low (default demo
-   stores, every new scan as the example, never-mined views above the cut: median s 0.02-0.08, 90th percentile
-   0.03-0.15; views of mined classes: median 0.55-0.65, 10th percentile 0.10-0.18), and such an example loses its own
-   class to b's members.  t keeps the route to examples the label stage is sure of.
+   known class (unknown AUROC is below 1; on the default demo 44% of them): their score is mostly low (the three demo
+   stores, every new scan as the example, never-mined views above the cut: median s 0.02-0.08, 1 of 94 above 0.3;
+   views of mined classes: median 0.55-0.65, 10th percentile 0.10-0.18), and such an example loses its own class to
+   b's members.  t keeps the route to examples the label stage is sure of (default 0.3; README "Find").
 2. Ranking by b.  Every store object is pose-searched against every prototype (tilts x yaw x scale, as mining assigns
    its members: ``tilts.tilt_pose_distances``); the key is the assignment margin
 
