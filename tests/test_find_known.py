@@ -16,7 +16,7 @@ import copy
 import numpy as np
 
 from protomine.config import load_config
-from protomine.curate.knownclass import margin_key
+from protomine.curate.knownclass import AGREE_MIN, agreement, margin_key
 from protomine.curate.oneshot import find_similar, ranking_key
 from protomine.ingest.volume import matching_features
 from protomine.mine.library import Library
@@ -40,9 +40,10 @@ def _view(profile: np.ndarray, alpha_deg: float, window_deg: float, roll: int, r
     return np.roll(v, roll, axis=2)
 
 
-def _cfg(t: float) -> dict:
+def _cfg(t: float, weak: float = 0.0) -> dict:
     cfg = load_config(None)
     cfg["mine"]["find_prototype"] = t
+    cfg["mine"]["find_prototype_weak"] = weak
     cfg["mine"]["find_expand"] = 0
     cfg["mine"]["find_symmetric"] = 16
     return cfg
@@ -132,3 +133,34 @@ def test_margin_key_definition():
     D = np.array([[1.0, 2.0, 4.0], [3.0, 1.5, np.inf], [np.inf, 1.0, 1.0], [2.0, np.nan, 8.0]])
     # d_ib / min over the other prototypes' finite distances; unmatched d_ib: inf
     np.testing.assert_allclose(margin_key(D, 0), [0.5, 2.0, np.inf, 0.25])
+
+
+def test_weak_score_needs_the_rankings_to_agree():
+    lib, store, kind = _world()
+    off = find_similar(lib, store, "t/example", _cfg(0.0))
+    # the sure threshold above the example's score: only the weak band can take it, when the two top-10s agree
+    weak = find_similar(lib, store, "t/example", _cfg(1.0, 0.1))
+    ex = off.example_index
+    top_off = [i for i in off.order[:10]]
+    key_top = [i for i in np.lexsort((np.asarray(store.ids), weak.route.key)) if i != ex][:10]
+    assert weak.route.agree == len(set(top_off) & set(key_top))
+    assert weak.route.taken == (weak.route.agree >= AGREE_MIN)
+    assert weak.route.taken and set(kind[weak.order[:10]]) == {"target"}     # 5 target views shared: taken
+    # the same band with fewer in common than AGREE_MIN: not taken (the agreement read from the route, the rule from
+    # the module docstring)
+    import protomine.curate.knownclass as kc
+    old = kc.AGREE_MIN
+    try:
+        kc.AGREE_MIN = weak.route.agree + 1
+        assert not find_similar(lib, store, "t/example", _cfg(1.0, 0.1)).route.taken
+    finally:
+        kc.AGREE_MIN = old
+
+
+def test_agreement_hand_worked():
+    ids = np.array(["a", "b", "c", "d", "e"])
+    a = np.array([0.0, 1.0, 2.0, 3.0, 4.0])
+    b = np.array([0.0, 4.0, 3.0, 1.0, np.inf])
+    # the example (0) left out: first 2 of a are b, c; of b are d, c -> one in common
+    assert agreement(a, b, ids, 0, top=2) == 1
+    assert agreement(a, a, ids, 0, top=3) == 3

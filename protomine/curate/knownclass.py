@@ -8,11 +8,16 @@ view of a mined class, the prototype is the better query; when it is not, the pr
 1. Decision.  The example's store volume is labelled as the label stage labels a single view (``label.matcher``: the
    library's matcher and its score; the example's camera direction from the store's ``single/camera`` when the store
    has one for it): best prototype b and its score s.  The route is taken when s >= max(t, the library's unknown cut),
-   t = ``find_prototype``.  The unknown cut alone lets through the never-mined views that the label stage takes for a
-   known class (unknown AUROC is below 1; on the default demo 44% of them): their score is mostly low (the three demo
-   stores, every new scan as the example, never-mined views above the cut: median s 0.02-0.08, 1 of 94 above 0.3;
-   views of mined classes: median 0.55-0.65, 10th percentile 0.10-0.18), and such an example loses its own class to
-   b's members.  t keeps the route to examples the label stage is sure of (default 0.3; README "Find").
+   t = ``find_prototype`` (sure), or when s >= max(t_weak, the cut), t_weak = ``find_prototype_weak``, and the two
+   rankings agree: at least ``AGREE_MIN`` of the first ``AGREE_TOP`` objects by the key below are among the first
+   ``AGREE_TOP`` of the one-shot ranking (the example left out of both).  The unknown cut alone lets through the
+   never-mined views that the label stage takes for a known class (unknown AUROC is below 1; on the default demo 44%
+   of them): their score is mostly low (the three demo stores, every new scan as the example, never-mined views
+   above the cut: median s 0.02-0.08, 1 of 94 above 0.3; views of mined classes: median 0.55-0.65, 10th percentile
+   0.10-0.18), and such an example loses its own class to b's members.  Between t_weak and t the agreement tells
+   the two apart on the demo stores (README "Find"): a never-mined example (or one the label stage names wrongly)
+   finds its own class by itself and b's members by the key, so the lists share 0-2 objects; a view of b finds
+   mostly b both ways (4-9 shared).  Below t_weak it does not (an L bracket view at s 0.04 shares 4 and loses).
 2. Ranking by b.  Every store object is pose-searched against every prototype (tilts x yaw x scale, as mining assigns
    its members: ``tilts.tilt_pose_distances``); the key is the assignment margin
 
@@ -36,6 +41,9 @@ import numpy as np
 from ..mine.library import Library
 from ..mine.tilts import TiltGrid
 
+AGREE_TOP = 10
+AGREE_MIN = 4
+
 
 @dataclass
 class KnownRoute:
@@ -43,6 +51,7 @@ class KnownRoute:
     cluster: int            # b: the example's label decision (-1: none)
     example_score: float    # its score
     cut: float              # the matcher's unknown cut
+    agree: int              # objects in common among the first AGREE_TOP of the key's and the one-shot ranking
     taken: bool
     key: np.ndarray         # d_ib / min_{j != b} d_ij (inf where unmatched)
     distance: np.ndarray    # d_ib
@@ -85,19 +94,35 @@ def margin_key(D: np.ndarray, b: int) -> np.ndarray:
     return np.where(np.isfinite(d), key, np.inf)
 
 
+def agreement(a: np.ndarray, b: np.ndarray, ids: np.ndarray, ex: int, top: int = AGREE_TOP) -> int:
+    """Objects in common among the first ``top`` of two rankings by keys a, b (N,) (ascending, ties by id, ``ex`` left
+    out)."""
+    return len(set(_first(a, ids, ex, top).tolist()) & set(_first(b, ids, ex, top).tolist()))
+
+
+def _first(key: np.ndarray, ids: np.ndarray, ex: int, top: int) -> np.ndarray:
+    k = np.where(np.isfinite(key), key, np.finfo(np.float64).max)
+    order = np.lexsort((ids, k))
+    return order[order != ex][:top]
+
+
 def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt: np.ndarray, grid: TiltGrid | None,
-                min_score: float) -> KnownRoute:
+                one_shot_key: np.ndarray, sure: float, weak: float = 0.0) -> KnownRoute:
     """The route for example ``ex``: D (N, K), tilt (N, K) every store object's pose search against every prototype;
-    taken when the example's label decision b scores >= max(``min_score``, the unknown cut)."""
+    ``one_shot_key`` (N,) the one-shot ranking's key.  Taken when the example's label decision b scores >= max(``sure``,
+    the unknown cut), or >= max(``weak``, the cut) (``weak`` > 0) with >= ``AGREE_MIN`` objects agreeing."""
     b, s, cut = example_decision(library, store, ex, cfg)
     N = len(store)
     if b < 0:
         z = np.full(N, np.inf)
-        return KnownRoute(-1, 0.0, cut, False, z, z, np.zeros(N))
+        return KnownRoute(-1, 0.0, cut, 0, False, z, z, np.zeros(N))
+    key = margin_key(D, b)
+    agree = agreement(key, np.asarray(one_shot_key, np.float64), np.asarray(store.ids).astype(str), ex)
     d = np.asarray(D[:, b], np.float64)
     single = np.asarray(store.objects.get("n_frames", np.ones(N)))[:N] == 1
     upright = (grid or TiltGrid.identity()).is_upright(np.asarray(tilt[:, b]))
     ok = np.isfinite(d)
     dd = np.where(ok, d, 1.0)
     sc = np.where(single, library.score(dd, b, single_view=True, upright=upright), library.score(dd, b, single_view=False))
-    return KnownRoute(b, s, cut, bool(s >= max(min_score, cut)), margin_key(D, b), d, np.where(ok, sc, 0.0))
+    taken = s >= max(sure, cut) or (weak > 0 and s >= max(weak, cut) and agree >= AGREE_MIN)
+    return KnownRoute(b, s, cut, agree, bool(taken), key, d, np.where(ok, sc, 0.0))

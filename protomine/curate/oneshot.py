@@ -312,7 +312,8 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         p = library.prototypes
         Dk, _, _, tk = _search_many(src, np.asarray(p["features"], np.float32), np.asarray(p["weights"], np.float32),
                                     np.asarray(p["aspect"], np.float64), scales, grid, chunk, poses=True)
-        route = known_route(library, store, ex, cfg, Dk, tk, grid, t_route)
+        route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
+                            float(cfg["mine"].get("find_prototype_weak", 0.0)))
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
                    world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route)
