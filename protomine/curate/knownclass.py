@@ -17,7 +17,7 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    0.10-0.18), and such an example loses its own class to b's members.  Between t_weak and t the agreement tells
    the two apart on the demo stores (README "Find"): a never-mined example (or one the label stage names wrongly)
    finds its own class by itself and b's members by the key, so the lists share 0-2 objects; a view of b finds
-   mostly b both ways (4-9 shared).  Below t_weak it does not (an L bracket view at s 0.04 shares 4 and loses).
+   mostly b both ways (4-9 shared; one upright mallet view shares 2 and is left out).  Below t_weak it does not (an L bracket view at s 0.04 shares 4 and loses).
 2. Ranking by b.  Every store object is pose-searched against every prototype (tilts x yaw x scale, as mining assigns
    its members: ``tilts.tilt_pose_distances``); the key is the assignment margin
 
