@@ -47,7 +47,8 @@ def find(
     out: Annotated[Path, typer.Option("--out", "-o", metavar="MATCHES.csv", show_default=False,
                                       help="CSV to write, best first: object, distance, both_ways (the "
                                       "shortlist's mean of the search both ways, which ranks it), score, yaw_deg, "
-                                      "scale, cluster, qx, qy, qz, qw, face (the example itself is left out).")],
+                                      "scale, cluster, qx, qy, qz, qw, face, prototype, prototype_score (with [mine] find_prototype: the "
+                                      "known prototype that ranks, its calibrated score; the example itself is left out).")],
     top: Annotated[Optional[int], typer.Option("--top", min=1, max=10_000_000, metavar="N",
                                                help="Write only the best N rows.")] = None,
     add: Annotated[Optional[str], typer.Option("--add", metavar="NAME", help="Add the one-shot prototype to the "

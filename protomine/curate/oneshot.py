@@ -91,12 +91,13 @@ from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_as
 from ..mine.symmetry import detect_symmetry
 from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
+from .knownclass import KnownRoute, known_route
 from .names import check_name, refresh_gallery
 
 MIN_CAL_MEMBERS = 3
 MAX_CAL_MEMBERS = 64
 MATCH_COLUMNS = ("object", "distance", "both_ways", "score", "yaw_deg", "scale", "cluster", "qx", "qy", "qz", "qw",
-                 "face")
+                 "face", "prototype", "prototype_score")
 
 
 @dataclass
@@ -132,23 +133,29 @@ class Matches:
     example_index: int = -1             # the example's own row: matched (distance 0) but left out of ``order``
     reverse: np.ndarray | None = None   # (N,) ``[mine] find_symmetric``: the example searched against the object as the
                                         # prototype; NaN beyond the shortlist; None when off
+    route: KnownRoute | None = None     # ``[mine] find_prototype``: the known-class route (``curate.knownclass``); None
+                                        # when off; when ``route.taken`` its key ranks
     order: np.ndarray = field(init=False)
     rank_key: np.ndarray = field(init=False)
 
     def __post_init__(self) -> None:
         # ascending distance; unmatched (inf) last; ties broken by object id for determinism; the example
         # itself is not a find.  With ``reverse``: the shortlist by its symmetric distance, then the rest by distance
-        self.rank_key = ranking_key(self.distance, self.reverse)
+        self.rank_key = (self.route.key if self.route is not None and self.route.taken
+                         else ranking_key(self.distance, self.reverse))
         order = np.lexsort((self.object.astype(str), self.rank_key))
         self.order = order[order != self.example_index]
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
         # both_ways: the shortlist's symmetric distance, its ranking key (None beyond it or without it)
+        taken = self.route is not None and self.route.taken
         return [{"object": str(self.object[i]), "distance": float(self.distance[i]),
-                 "both_ways": (None if self.reverse is None or not np.isfinite(self.reverse[i])
+                 "both_ways": (None if taken or self.reverse is None or not np.isfinite(self.reverse[i])
                                else float(self.rank_key[i])),
                  "score": float(self.score[i]),
+                 "prototype": int(self.route.cluster) if taken else None,
+                 "prototype_score": float(self.route.score[i]) if taken else None,
                  "yaw_deg": float(self.yaw_deg[i]), "scale": float(self.scale[i]), "cluster": int(self.cluster[i]),
                  "rotation": [float(v) for v in self.rotation[i]], "face": int(self.face[i])}
                 for i in idx]
@@ -179,7 +186,7 @@ def _calibrate(library: Library, store: ObjectStore, weights: tuple[float, float
     distance) and the fit uses the rest."""
     m = library.members
     store_index = {oid: i for i, oid in enumerate(store.ids)}
-    in_store = np.array([str(o) in store_index for o in m["object"]])
+    in_store = np.array([str(o) in store_index for o in m["object"]], dtype=bool)
     exemplars, groups = [], []
     for k in range(library.n_clusters):
         rows = np.flatnonzero((m["cluster"] == k) & in_store & np.isfinite(m["distance"]))
@@ -299,9 +306,17 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
                              mu, sigma, mu + off, s_sigma, how, aspect, faces)
     gsize = np.sqrt(store.objects["radius_m"] * store.objects["height_m"])
     cl = {str(o): int(k) for o, k in zip(library.members["object"], library.members["cluster"])}
+    route = None
+    t_route = float(cfg["mine"].get("find_prototype", 0.0))
+    if t_route > 0 and library.n_clusters >= 1:   # the known-class route (``curate.knownclass``)
+        p = library.prototypes
+        Dk, _, _, tk = _search_many(src, np.asarray(p["features"], np.float32), np.asarray(p["weights"], np.float32),
+                                    np.asarray(p["aspect"], np.float64), scales, grid, chunk, poses=True)
+        route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
+                            float(cfg["mine"].get("find_prototype_weak", 0.0)))
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
-                   world_quaternions(R_obj, store.objects["up"]), face, ex, reverse)
+                   world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route)
 
 
 def _search(src, P: np.ndarray, V: np.ndarray, aspect: float, scales: tuple[float, ...], grid: TiltGrid | None,
@@ -417,7 +432,9 @@ def write_matches(path: str | Path, matches: Matches, top: int | None = None) ->
     for r in matches.rows(top):
         both = "" if r["both_ways"] is None else f"{r['both_ways']:.6g}"
         w.writerow([r["object"], f"{r['distance']:.6g}", both, f"{r['score']:.4f}", f"{r['yaw_deg']:.2f}",
-                    f"{r['scale']:.4f}", r["cluster"], *(f"{v:.6f}" for v in r["rotation"]), r["face"]])
+                    f"{r['scale']:.4f}", r["cluster"], *(f"{v:.6f}" for v in r["rotation"]), r["face"],
+                    "" if r["prototype"] is None else r["prototype"],
+                    "" if r["prototype_score"] is None else f"{r['prototype_score']:.4f}"])
     write_text(path, buf.getvalue())
     return Path(path)
 

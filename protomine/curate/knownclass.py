@@ -1,0 +1,128 @@
+"""find's known-class route (``[mine] find_prototype`` = t > 0; 0 = off): an example of a class the library already
+knows ranks the store by that class's mined prototype instead of by its own one view.
+
+A single example is one partial view: cut by the image border, hidden behind a nearer object or tumbled onto a face
+that shows little.  A mined prototype is a fused mean of many members seen from many sides.  When the example is a
+view of a mined class, the prototype is the better query; when it is not, the prototype is the wrong one.  So:
+
+1. Decision.  The example's store volume is labelled as the label stage labels a single view (``label.matcher``: the
+   library's matcher and its score; the example's camera direction from the store's ``single/camera`` when the store
+   has one for it): best prototype b and its score s.  The route is taken when s >= max(t, the library's unknown cut),
+   t = ``find_prototype`` (sure), or when s >= max(t_weak, the cut), t_weak = ``find_prototype_weak``, and the two
+   rankings agree: at least ``AGREE_MIN`` of the first ``AGREE_TOP`` objects by the key below are among the first
+   ``AGREE_TOP`` of the one-shot ranking (the example left out of both).  The unknown cut alone lets through the
+   never-mined views that the label stage takes for a known class (unknown AUROC is below 1; on the default demo 44%
+   of them): their score is mostly low (the three demo stores, every new scan as the example, never-mined views
+   above the cut: median s 0.02-0.08, 1 of 94 above 0.3; views of mined classes: median 0.55-0.65, 10th percentile
+   0.10-0.18), and such an example loses its own class to b's members.  Between t_weak and t the agreement tells
+   the two apart on the demo stores (README "Find"): a never-mined example (or one the label stage names wrongly)
+   finds its own class by itself and b's members by the key, so the lists share 0-2 objects; a view of b finds
+   mostly b both ways (4-9 shared; one upright mallet view shares 2 and is left out).  Below t_weak it does not (an L bracket view at s 0.04 shares 4 and loses).
+2. Ranking by b.  Every store object is pose-searched against every prototype (tilts x yaw x scale, as mining assigns
+   its members: ``tilts.tilt_pose_distances``); the key is the assignment margin
+
+       key_i = d_ib / min_{j != b} d_ij
+
+   (below 1: mining's rule would assign object i to b; the lower, the more clearly).  Ties by object id.  The margin
+   ranks better than d_ib alone: an object near every prototype (a small, plain view) is not a member of b.
+
+What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
+``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
+``prototype_score`` are added: the library's calibrated score of d_ib (``Library.score``: single-view calibration for
+objects seen in one frame, on the canonical or another face by the search's tilt; the fused one otherwise), the
+fraction of prototype b's own members expected to fit it worse, as in ``assignments.csv`` and the label stage.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..mine.library import Library
+from ..mine.tilts import TiltGrid
+
+AGREE_TOP = 10
+AGREE_MIN = 4
+
+
+@dataclass
+class KnownRoute:
+    """The route's decision and ranking for one example: arrays (N,) in store order."""
+    cluster: int            # b: the example's label decision (-1: none)
+    example_score: float    # its score
+    cut: float              # the matcher's unknown cut
+    agree: int              # objects in common among the first AGREE_TOP of the key's and the one-shot ranking
+    taken: bool
+    key: np.ndarray         # d_ib / min_{j != b} d_ij (inf where unmatched)
+    distance: np.ndarray    # d_ib
+    score: np.ndarray       # the library's calibrated score of d_ib
+
+
+def example_decision(library: Library, store, ex: int, cfg: dict) -> tuple[int, float, float]:
+    """(b, score, cut): the label stage's decision on store object ``ex``'s volume (``label.matcher``)."""
+    from ..label.matcher import make_matcher
+    mt = make_matcher(library, cfg)
+    cam = _camera(store, ex)
+    vol = store.read_volume_at(np.array([ex]))
+    sizes = np.array([[store.objects["radius_m"][ex], store.objects["height_m"][ex]]], np.float64)
+    m = mt.match(vol, None if cam is None else cam[None], sizes)
+    b = int(m["best"][0])
+    return b, (float(m["score"][0, b]) if b >= 0 else 0.0), float(mt.unknown_cut)
+
+
+def _camera(store, ex: int) -> np.ndarray | None:
+    """The example's camera direction in its object frame (the store's single/camera row of its one-frame view), or
+    None (a store without it, an object seen in several frames, a NaN row)."""
+    cams = getattr(store, "single_camera", None)
+    owner = getattr(store, "single_object", None)
+    if cams is None or owner is None or int(np.asarray(store.objects.get("n_frames", [1] * len(store)))[ex]) != 1:
+        return None
+    rows = np.flatnonzero(np.asarray(owner) == ex)
+    if not len(rows) or not np.all(np.isfinite(cams[rows[0]])):
+        return None
+    return np.asarray(cams[rows[0]], np.float64)
+
+
+def margin_key(D: np.ndarray, b: int) -> np.ndarray:
+    """d_ib / min_{j != b} d_ij (N,) of distances D (N, K); inf where d_ib is not finite, 0-divided guarded."""
+    D = np.asarray(D, np.float64)
+    d = D[:, b]
+    if D.shape[1] < 2:
+        return np.where(np.isfinite(d), d, np.inf)
+    other = np.min(np.where(np.isfinite(np.delete(D, b, axis=1)), np.delete(D, b, axis=1), np.inf), axis=1)
+    key = d / np.maximum(other, 1e-12)
+    return np.where(np.isfinite(d), key, np.inf)
+
+
+def agreement(a: np.ndarray, b: np.ndarray, ids: np.ndarray, ex: int, top: int = AGREE_TOP) -> int:
+    """Objects in common among the first ``top`` of two rankings by keys a, b (N,) (ascending, ties by id, ``ex`` left
+    out)."""
+    return len(set(_first(a, ids, ex, top).tolist()) & set(_first(b, ids, ex, top).tolist()))
+
+
+def _first(key: np.ndarray, ids: np.ndarray, ex: int, top: int) -> np.ndarray:
+    k = np.where(np.isfinite(key), key, np.finfo(np.float64).max)
+    order = np.lexsort((ids, k))
+    return order[order != ex][:top]
+
+
+def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt: np.ndarray, grid: TiltGrid | None,
+                one_shot_key: np.ndarray, sure: float, weak: float = 0.0) -> KnownRoute:
+    """The route for example ``ex``: D (N, K), tilt (N, K) every store object's pose search against every prototype;
+    ``one_shot_key`` (N,) the one-shot ranking's key.  Taken when the example's label decision b scores >= max(``sure``,
+    the unknown cut), or >= max(``weak``, the cut) (``weak`` > 0) with >= ``AGREE_MIN`` objects agreeing."""
+    b, s, cut = example_decision(library, store, ex, cfg)
+    N = len(store)
+    if b < 0:
+        z = np.full(N, np.inf)
+        return KnownRoute(-1, 0.0, cut, 0, False, z, z, np.zeros(N))
+    key = margin_key(D, b)
+    agree = agreement(key, np.asarray(one_shot_key, np.float64), np.asarray(store.ids).astype(str), ex)
+    d = np.asarray(D[:, b], np.float64)
+    single = np.asarray(store.objects.get("n_frames", np.ones(N)))[:N] == 1
+    upright = (grid or TiltGrid.identity()).is_upright(np.asarray(tilt[:, b]))
+    ok = np.isfinite(d)
+    dd = np.where(ok, d, 1.0)
+    sc = np.where(single, library.score(dd, b, single_view=True, upright=upright), library.score(dd, b, single_view=False))
+    taken = s >= max(sure, cut) or (weak > 0 and s >= max(weak, cut) and agree >= AGREE_MIN)
+    return KnownRoute(b, s, cut, agree, bool(taken), key, d, np.where(ok, sc, 0.0))
