@@ -435,7 +435,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     N = len(source)
     K, C, R, A, H = P.shape
     S = len(scales)
-    bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect)
+    bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect,
+                     0.0 if tilts is None else tilts.grid.refine_margin)
     T = 1 if tilts is None else len(tilts.grid.dirs)
     tilt_bank = bank if isinstance(bank, TiltBank) else None
     labels = np.empty(N, np.int64)
@@ -472,6 +473,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             o = bank.spectra(x, w)
             if cache is not None:
                 cache.put(i0, o)
+        if tilt_bank is not None:  # the refinement's copies are built once per pass, kept for the later chunks
+            tilt_bank.more_chunks(j + 1 < len(chunks))
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
@@ -513,7 +516,10 @@ def _chunk_step(bank: PoseBank | TiltBank, o: torch.Tensor, x: np.ndarray | None
     fixes the labels; ``scale_window`` (n,) limits the scale search (see :func:`_assign_pass`).
     Returns labels (n,) int64, yaw_deg, scale, dist (n,) float32; ``tilt_out`` (n,) receives the tilts.
     """
-    m = bank.match_spectra(o, scale_index=scale_window)
+    if isinstance(bank, TiltBank):  # with labels held fixed only their prototype's pose is refined
+        m = bank.match_spectra(o, scale_index=scale_window, focus=forced)
+    else:
+        m = bank.match_spectra(o, scale_index=scale_window)
     n = o.shape[1]
     lab = np.argmin(m.D, axis=1) if forced is None else np.asarray(forced)
     r = np.arange(n)
