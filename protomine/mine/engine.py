@@ -404,6 +404,7 @@ class TiltState:
         self.grid = grid
         self.aspect = np.asarray(aspect, np.float64)
         self.tilt: np.ndarray | None = None
+        self.levels = 0  # > 0: the pass searches only the grid's first levels (grid.pass_levels, _lloyd_passes)
 
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
@@ -439,6 +440,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
                      0.0 if tilts is None else tilts.grid.refine_margin)
     T = 1 if tilts is None else len(tilts.grid.dirs)
     tilt_bank = bank if isinstance(bank, TiltBank) else None
+    if tilt_bank is not None:
+        tilt_bank.levels = tilts.levels
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
@@ -613,7 +616,10 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
     n_iter = 0
     sidx = None
     scale_arr = np.asarray(scales, np.float32)
+    coarse = ts is not None and grid.pass_levels > 0
     for n_iter in range(1, max_iter + 1):
+        if ts is not None:  # with grid.pass_levels, the passes between the first and the last search the first levels
+            ts.levels = grid.pass_levels if coarse and 1 < n_iter < max_iter else 0
         labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
                                                                            cache=cache, scale_index=sidx,
                                                                            advance=b.advance, tilts=ts)
@@ -622,9 +628,16 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
         cost = float(dist[np.isfinite(dist)].sum())
         stable = prev_labels is not None and np.array_equal(labels, prev_labels)
         small = np.isfinite(prev_cost) and abs(prev_cost - cost) <= tol * max(abs(cost), 1e-12)
+        key = np.asarray(labels, np.int64).tobytes()
+        if ts is not None and ts.levels and count.min() > 0 and (stable or key in seen or small):
+            # converged on the first levels: the prototypes are updated from every level's poses before the end
+            coarse, seen, switched = False, set(), True
+            stable = small = False
+            key = b""
+        else:
+            switched = False
         if stable and count.min() > 0:
             break  # prototypes already reflect these assignments
-        key = np.asarray(labels, np.int64).tobytes()
         if key in seen and count.min() > 0:
             break  # a cycle (the tilt and scale windows make passes not strictly descending): more passes repeat it
         seen.add(key)
@@ -633,8 +646,10 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
             ts.aspect = _update_aspect(ts, labels, obj_aspect)
         if small and count.min() > 0:
             break
-        prev_labels, prev_cost = labels, cost
+        prev_labels, prev_cost = (None, np.inf) if switched else (labels, cost)
     b.set_total(b.done + len(source))
+    if ts is not None:
+        ts.levels = 0  # the final pass searches every level
     labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments,
                                                  cache=cache, advance=b.advance, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())

@@ -161,8 +161,11 @@ def tumbled_objects(rng: np.random.Generator, P: np.ndarray, n: int, grid: TiltG
     return X, W, aspect, labels
 
 
-def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15) -> dict:
-    """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS."""
+def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15, refine_margin: float = 0.0,
+                       pass_levels: int = 0) -> dict:
+    """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS.
+    ``refine_margin``, ``pass_levels``: the mining's ``TiltGrid`` switches (``[mine] tilt_refine_margin``,
+    ``tilt_pass_levels``)."""
     import resource
 
     from sklearn.metrics import normalized_mutual_info_score
@@ -173,6 +176,7 @@ def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int
     grid = TiltGrid()
     P = np.abs(synthetic_prototypes(rng, k))
     X, W, aspect, labels = tumbled_objects(rng, P, n, grid)
+    grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels)
     usage = resource.getrusage(resource.RUSAGE_SELF)
     c0 = usage.ru_utime + usage.ru_stime
     t0 = time.perf_counter()

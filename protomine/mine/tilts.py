@@ -89,6 +89,7 @@ class TiltGrid:
     height_margin: float = 1.10
     refine_top: int = 3
     refine_margin: float = 0.0  # mining passes only (the engine's banks): see _refine_pairs; not kept in a library
+    pass_levels: int = 0  # > 0: Lloyd's intermediate passes search only this many levels (engine; not in a library)
     dirs: np.ndarray = field(init=False, repr=False, compare=False)
     offsets: tuple[int, ...] = field(init=False, repr=False, compare=False)
 
@@ -685,6 +686,7 @@ class TiltBank:
         # True: the refinement keeps every later-level copy it builds (a pass's earlier chunks: the later chunks
         # need nearly the same copies; set by the engine), False: it drops them batch by batch (_drop_refined)
         self.keep_refined = False
+        self.levels = 0  # > 0: the search stops after this many levels of the grid (0: all; the engine's passes)
         self.P = np.asarray(P, np.float32)
         self.V = np.asarray(V, np.float32)
         self.K, self.C = self.P.shape[:2]
@@ -911,7 +913,7 @@ class TiltBank:
         scales32 = np.asarray(self.scales, np.float32)
         psi = np.argmin(np.abs(psc[..., None] - scales32), axis=-1)  # (n, m) scale index of each pair
         minov = self.C * min_overlap
-        for level in range(1, len(self.grid.nsides)):
+        for level in range(1, self.levels or len(self.grid.nsides)):
             # with a margin, each level refines the pairs within it of the object's best so far
             ii, jj = np.nonzero(_refine_pairs(pd, pk, focus, self.refine_margin) < np.inf)
             if not ii.size:
