@@ -18,7 +18,9 @@ yaw-only searches: T0 at all S scales, plus ``refine_top`` x the candidates of t
 spread over the K x S (prototype, scale) pairs of a yaw-only search; ``ratio`` = tilt_s / yaw_s and
 ``ratio_per_tilt`` = ratio / T (target <= 1.3: the cost grows linearly with the tilts and building the
 copies does not dominate); ``yaw_cpu_s``, ``tilt_cpu_s``, ``ratio_per_tilt_cpu``: the same in CPU seconds of the
-process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core).  The
+process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core);
+``tilt_margin_cpu_s``: the CPU seconds of the same search, cold, refining only the pairs within ``BENCH_MARGIN`` of
+each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default).  The
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
 level's row blocks on ``searchpool.spectra_pool``'s threads, one torch thread each (``searchpool.pooled``).
 
@@ -64,6 +66,9 @@ from .posesearch import PoseBank
 from .tilts import TiltBank, TiltGrid
 
 
+BENCH_MARGIN = 0.25  # the row's search with [mine] tilt_refine_margin at this value (tilt_margin_cpu_s)
+
+
 def bench_tilts(quick: bool, seed: int, n: int | None = None) -> dict:
     """The row's figures (module docstring); ``n`` overrides the number of objects."""
     from .synthetic import SCALES, synthetic_objects, synthetic_prototypes
@@ -100,6 +105,11 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
         runs.append((t2 - t1, t3 - t2))
         cpus.append(c3 - c1)
         yaw_s, yaw_cpu = min(yaw_s, t1 - t0), min(yaw_cpu, c1 - c0)
+    # the same search, cold, refining only the pairs within BENCH_MARGIN of each object's best ([mine] tilt_refine_margin)
+    tilts._GEOMETRY_CACHE.clear()
+    c0 = _cpu()
+    TiltBank(P, V, np.ones(K), SCALES, grid, refine_margin=BENCH_MARGIN).match_spectra(o)
+    margin_cpu = _cpu() - c0
     (build_s, search_s), warm = runs[0], sum(runs[1])
     tilt_s = build_s + search_s
     T0 = len(grid.level(0))
@@ -111,6 +121,7 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
             "tilt_search_s": search_s, "ratio": ratio, "ratio_per_tilt": ratio / per_pair,
             "tilt_warm_s": warm, "ratio_per_tilt_warm": warm / yaw_s / per_pair,
             "yaw_cpu_s": yaw_cpu, "tilt_cpu_s": cpus[0], "ratio_per_tilt_cpu": cpus[0] / max(yaw_cpu, 1e-9) / per_pair,
+            "tilt_margin_cpu_s": margin_cpu,
             "load_1m": os.getloadavg()[0]}
 
 
