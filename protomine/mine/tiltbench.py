@@ -52,6 +52,20 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   a ``grid_sample`` twin by gathers gave the same bits but ran 1.05-1.6x slower (blocks of 3,456-50,000 points),
   and regrouping the refinement's products (``SPLIT_OVERHEAD`` 100, 500, 1,000) changed the last bits of their
   distances (the batched products' sums depend on the shapes) without a measurable gain.
+- Later (cProfile, process-time clock, one torch thread, load ~5): the row's search 8.6 s CPU = the first level 3.8 s
+  + the refinement 4.7 s: its products 1.8 s (1,098 of them; the products proper 1.3 s, gathering the objects'
+  spectra 0.4 s), its copies 1.5 s (resampling; geometries 0.26 s), their column factors 1.2 s.  The copies are
+  what a smaller search cannot shed: a full search of 600 tumbled objects against their 16 true prototypes built
+  3,564 of the 3,840 finer copies; refining only the pairs within 1.25 x the object's best (``refine_margin``
+  0.25) built 3,271 and cut its CPU 6.0 -> 4.2 s (same labels, 97.7% the same tilts).  Fewer copies need fewer
+  directions per pass: ``pass_levels``.
+- Mining 600 tumbled objects (``_mine_tumbled_once(600, 16, 0)``, n_iter 15 in every run, load 6-7): before
+  233 s CPU, NMI 0.989, peak 1,137 MB; with the passes' ``focus`` (a pass with labels held fixed refines only the
+  held prototype's pairs: one such pass of 900 objects 11.9 -> 9.0 s CPU, 2 of 900 tilts differing by float
+  rounding) and the finer copies kept across a pass's chunks (3 chunks of 300: 14.2 -> 13.7 s, identical): 212 s,
+  NMI 0.981 (a different trajectory from the rounding), 1,046 MB.  Switches: ``pass_levels`` 2: 137 s, NMI
+  0.975, 1,011 MB; ``refine_margin`` 0.25: 191 s, NMI 0.984.  The row itself (2 threads, load 5.3):
+  ``ratio_per_tilt_cpu`` 1.97 (target 1.3, not met: the refinement builds ~20 x the copies the first level does).
 """
 from __future__ import annotations
 

@@ -43,6 +43,12 @@ of that level, every later level searches its directions within ``COVER_FACTOR``
 spacing of the pair's previous best (HEALPix's measured covering radius is 0.79-0.81 x the mean spacing),
 about 8 directions per level, at the pair's best coarse scale, and a prototype's pose is replaced by a
 refined one with a lower distance.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
+What the engine's passes ask for less (:func:`_refine_pairs`): with labels held fixed (``focus``), only the held
+prototype's pairs are refined (the others' poses could not change its pose); with ``TiltGrid.refine_margin``
+(``[mine] tilt_refine_margin``, off) each level refines only the pairs within 1 + margin of the object's best so
+far; with ``TiltGrid.pass_levels`` (``[mine] tilt_pass_levels``, off) Lloyd's intermediate passes stop after
+that many levels (``TiltBank.levels``).  A pass of several chunks keeps the finer copies for its later chunks
+(:meth:`TiltBank.more_chunks`, up to ``KEEP_REFINED_BYTES``).
 ``nsides=(0,)`` is the set {+z}: the yaw-only search of the 2-D case, with no resampling at all.
 
 Threads
