@@ -56,6 +56,8 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.tilt_nsides": (0, 16),
     "mine.score_margin_ring": (0.0, 1.0),
     "mine.tilt_refine_top": (1, 64),
+    "mine.tilt_refine_margin": (0.0, 100.0),
+    "mine.tilt_pass_levels": (0, 16),
     "mine.label_refine_top": (0, 64),
     "mine.view_prototype_members": (0, 100000),
     "mine.view_centre_offsets": (0.0, 2.0),

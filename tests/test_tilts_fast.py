@@ -169,6 +169,74 @@ def test_refinement_equals_its_definition(split, task_pairs, monkeypatch):
                 abs(got.D[i, k] - dk[k][0]) < 1e-5, (i, k, got.tilt[i, k], dk[k][2])
 
 
+@pytest.mark.parametrize("focused,margin,levels", [(True, 0.0, 0), (False, 0.3, 0), (True, 0.3, 0), (False, 0.0, 2)])
+def test_pruned_refinement_equals_its_definition(focused, margin, levels):
+    # the refinement restricted to a focus prototype per object (a pass with labels held), to the pairs within a
+    # margin of the object's best so far, or to the first levels, against the definition as above (naive distances
+    # by explicit rolls on each copy), with those rules applied level by level
+    rng = np.random.default_rng(3)
+    P, V = _protos(rng, K=3)
+    scales = (0.9, 1.0, 1.1)
+    grid = TiltGrid(nsides=(1, 2, 4), refine_top=3)
+    bank = TiltBank(P, V, np.array([1.0, 1.2, 0.8]), scales, grid, refine_margin=margin)
+    bank.levels = levels
+    X, W = bank.copies(np.array([0, 1, 2, 0, 1, 2]), np.array([7, 30, 100, 150, 4, 0]))
+    X = np.roll(X + 0.05 * rng.normal(size=X.shape).astype(np.float32), 5, axis=3)
+    W = W * (np.arange(SHAPE[1]) < 10)[None, :, None]
+    n, K = len(X), len(P)
+    focus = np.array([1, 0, 2, 2, 1, 0]) if focused else None
+    got = bank.match_spectra(bank.spectra(X, W), focus=focus)
+    coarse = grid.level(0)
+
+    def best(i, k, ts, sc):
+        Pc, Vc = bank.copies(np.full(len(ts), k), np.asarray(ts))
+        m = pose_distances_naive(X[i:i + 1], W[i:i + 1], Pc, Vc, scales=sc)
+        j = int(np.argmin(m.D[0]))
+        return float(m.D[0, j]), int(ts[j])
+
+    for i in range(n):
+        pairs = []
+        for k in range(K):
+            Pc, Vc = bank.copies(np.full(len(coarse), k), coarse)
+            m = pose_distances_naive(X[i:i + 1], W[i:i + 1], Pc, Vc, scales=scales)
+            pairs += [(float(m.D[0, j]), k, int(coarse[j]), float(m.scale[0, j])) for j in range(len(coarse))]
+        dk = {k: min(p for p in pairs if p[1] == k) for k in range(K)}
+        top = [list(p) for p in sorted(pairs, key=lambda p: p[0])[:grid.refine_top]]
+        live = [focus is None or p[1] == focus[i] for p in top]
+        for level in range(1, levels or 3):
+            ref = min([p[0] for p, a in zip(top, live) if a], default=np.inf)
+            for p, a in zip(top, live):
+                if a and (margin == 0 or p[0] <= ref * (1 + margin)):
+                    d2, t2 = best(i, p[1], grid.candidates(level, p[2]), (p[3],))
+                    if d2 < p[0]:
+                        p[0], p[2] = d2, t2
+        for p in top:
+            if p[0] < dk[p[1]][0]:
+                dk[p[1]] = tuple(p)
+        for k in range(K):
+            np.testing.assert_allclose(got.D[i, k], dk[k][0], rtol=2e-4, atol=1e-6)
+
+
+def test_refinement_copies_kept_across_chunks_give_the_same_values():
+    # a pass of several chunks keeps the refinement's copies for its later chunks (TiltBank.more_chunks): each chunk's
+    # poses equal those of a fresh bank (whose copies are all built anew), to the bit
+    rng = np.random.default_rng(4)
+    P, V = _protos(rng, K=3)
+    grid = TiltGrid(nsides=(1, 2, 4), refine_top=2)
+    aspect = np.array([1.0, 1.2, 0.8])
+    kept = TiltBank(P, V, aspect, (0.9, 1.0), grid)
+    X, W = kept.copies(np.array([0, 1, 2, 0, 1, 2, 1, 0]), np.array([7, 30, 100, 150, 4, 0, 60, 200]))
+    X = np.roll(X + 0.05 * rng.normal(size=X.shape).astype(np.float32), 3, axis=3)
+    for c, more in ((slice(0, 4), True), (slice(4, 8), False)):
+        kept.more_chunks(more)
+        a = kept.match(X[c], W[c])
+        assert kept.keep_refined == more
+        assert more == any(t >= grid.offsets[1] for _, t in kept._copies)  # the later levels' copies kept or dropped
+        b = TiltBank(P, V, aspect, (0.9, 1.0), grid).match(X[c], W[c])
+        for name in ("D", "yaw_deg", "scale", "tilt"):
+            np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
+
+
 @pytest.mark.parametrize("piece, block, subset", [(64, 256, False), (1, 2, True)])
 def test_aligned_sums_untilt_each_member_into_its_prototype(monkeypatch, piece, block, subset):
     """The engine's per-(prototype, tilt, scale) sums, untilted in one resampling, equal the sum of each member

@@ -404,6 +404,7 @@ class TiltState:
         self.grid = grid
         self.aspect = np.asarray(aspect, np.float64)
         self.tilt: np.ndarray | None = None
+        self.levels = 0  # > 0: the pass searches only the grid's first levels (grid.pass_levels, _lloyd_passes)
 
 
 def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], chunk_size: int,
@@ -435,9 +436,12 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     N = len(source)
     K, C, R, A, H = P.shape
     S = len(scales)
-    bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect)
+    bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect,
+                     0.0 if tilts is None else tilts.grid.refine_margin)
     T = 1 if tilts is None else len(tilts.grid.dirs)
     tilt_bank = bank if isinstance(bank, TiltBank) else None
+    if tilt_bank is not None:
+        tilt_bank.levels = tilts.levels
     labels = np.empty(N, np.int64)
     yaw = np.empty(N, np.float32)
     scale = np.empty(N, np.float32)
@@ -472,6 +476,8 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             o = bank.spectra(x, w)
             if cache is not None:
                 cache.put(i0, o)
+        if tilt_bank is not None:  # the refinement's copies are built once per pass, kept for the later chunks
+            tilt_bank.more_chunks(j + 1 < len(chunks))
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(
             bank, o, x if moments else None, w if moments else None, None if forced is None else forced[i0:i1],
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
@@ -513,7 +519,10 @@ def _chunk_step(bank: PoseBank | TiltBank, o: torch.Tensor, x: np.ndarray | None
     fixes the labels; ``scale_window`` (n,) limits the scale search (see :func:`_assign_pass`).
     Returns labels (n,) int64, yaw_deg, scale, dist (n,) float32; ``tilt_out`` (n,) receives the tilts.
     """
-    m = bank.match_spectra(o, scale_index=scale_window)
+    if isinstance(bank, TiltBank):  # with labels held fixed only their prototype's pose is refined
+        m = bank.match_spectra(o, scale_index=scale_window, focus=forced)
+    else:
+        m = bank.match_spectra(o, scale_index=scale_window)
     n = o.shape[1]
     lab = np.argmin(m.D, axis=1) if forced is None else np.asarray(forced)
     r = np.arange(n)
@@ -607,7 +616,10 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
     n_iter = 0
     sidx = None
     scale_arr = np.asarray(scales, np.float32)
+    coarse = ts is not None and grid.pass_levels > 0
     for n_iter in range(1, max_iter + 1):
+        if ts is not None:  # with grid.pass_levels, the passes between the first and the last search the first levels
+            ts.levels = grid.pass_levels if coarse and 1 < n_iter < max_iter else 0
         labels, yaw, scale, dist, num, den, count, worst, _ = _assign_pass(source, P, V, scales, chunk_size, True, K,
                                                                            cache=cache, scale_index=sidx,
                                                                            advance=b.advance, tilts=ts)
@@ -616,9 +628,16 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
         cost = float(dist[np.isfinite(dist)].sum())
         stable = prev_labels is not None and np.array_equal(labels, prev_labels)
         small = np.isfinite(prev_cost) and abs(prev_cost - cost) <= tol * max(abs(cost), 1e-12)
+        key = np.asarray(labels, np.int64).tobytes()
+        if ts is not None and ts.levels and count.min() > 0 and (stable or key in seen or small):
+            # converged on the first levels: the prototypes are updated from every level's poses before the end
+            coarse, seen, switched = False, set(), True
+            stable = small = False
+            key = b""
+        else:
+            switched = False
         if stable and count.min() > 0:
             break  # prototypes already reflect these assignments
-        key = np.asarray(labels, np.int64).tobytes()
         if key in seen and count.min() > 0:
             break  # a cycle (the tilt and scale windows make passes not strictly descending): more passes repeat it
         seen.add(key)
@@ -627,8 +646,10 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
             ts.aspect = _update_aspect(ts, labels, obj_aspect)
         if small and count.min() > 0:
             break
-        prev_labels, prev_cost = labels, cost
+        prev_labels, prev_cost = (None, np.inf) if switched else (labels, cost)
     b.set_total(b.done + len(source))
+    if ts is not None:
+        ts.levels = 0  # the final pass searches every level
     labels, yaw, scale, dist, *rest = _assign_pass(source, P, V, scales, chunk_size, moments, 0, moments=moments,
                                                  cache=cache, advance=b.advance, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())

@@ -18,7 +18,9 @@ yaw-only searches: T0 at all S scales, plus ``refine_top`` x the candidates of t
 spread over the K x S (prototype, scale) pairs of a yaw-only search; ``ratio`` = tilt_s / yaw_s and
 ``ratio_per_tilt`` = ratio / T (target <= 1.3: the cost grows linearly with the tilts and building the
 copies does not dominate); ``yaw_cpu_s``, ``tilt_cpu_s``, ``ratio_per_tilt_cpu``: the same in CPU seconds of the
-process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core).  The
+process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core);
+``tilt_margin_cpu_s``: the CPU seconds of the same search, cold, refining only the pairs within ``BENCH_MARGIN`` of
+each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default).  The
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
 level's row blocks on ``searchpool.spectra_pool``'s threads, one torch thread each (``searchpool.pooled``).
 
@@ -50,6 +52,20 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   a ``grid_sample`` twin by gathers gave the same bits but ran 1.05-1.6x slower (blocks of 3,456-50,000 points),
   and regrouping the refinement's products (``SPLIT_OVERHEAD`` 100, 500, 1,000) changed the last bits of their
   distances (the batched products' sums depend on the shapes) without a measurable gain.
+- Later (cProfile, process-time clock, one torch thread, load ~5): the row's search 8.6 s CPU = the first level 3.8 s
+  + the refinement 4.7 s: its products 1.8 s (1,098 of them; the products proper 1.3 s, gathering the objects'
+  spectra 0.4 s), its copies 1.5 s (resampling; geometries 0.26 s), their column factors 1.2 s.  The copies are
+  what a smaller search cannot shed: a full search of 600 tumbled objects against their 16 true prototypes built
+  3,564 of the 3,840 finer copies; refining only the pairs within 1.25 x the object's best (``refine_margin``
+  0.25) built 3,271 and cut its CPU 6.0 -> 4.2 s (same labels, 97.7% the same tilts).  Fewer copies need fewer
+  directions per pass: ``pass_levels``.
+- Mining 600 tumbled objects (``_mine_tumbled_once(600, 16, 0)``, n_iter 15 in every run, load 6-7): before
+  233 s CPU, NMI 0.989, peak 1,137 MB; with the passes' ``focus`` (a pass with labels held fixed refines only the
+  held prototype's pairs: one such pass of 900 objects 11.9 -> 9.0 s CPU, 2 of 900 tilts differing by float
+  rounding) and the finer copies kept across a pass's chunks (3 chunks of 300: 14.2 -> 13.7 s, identical): 212 s,
+  NMI 0.981 (a different trajectory from the rounding), 1,046 MB.  Switches: ``pass_levels`` 2: 137 s, NMI
+  0.975, 1,011 MB; ``refine_margin`` 0.25: 191 s, NMI 0.984.  The row itself (2 threads, load 5.3):
+  ``ratio_per_tilt_cpu`` 1.97 (target 1.3, not met: the refinement builds ~20 x the copies the first level does).
 """
 from __future__ import annotations
 
@@ -62,6 +78,9 @@ from ..cores import one_blas_thread
 from . import tilts
 from .posesearch import PoseBank
 from .tilts import TiltBank, TiltGrid
+
+
+BENCH_MARGIN = 0.25  # the row's search with [mine] tilt_refine_margin at this value (tilt_margin_cpu_s)
 
 
 def bench_tilts(quick: bool, seed: int, n: int | None = None) -> dict:
@@ -100,6 +119,11 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
         runs.append((t2 - t1, t3 - t2))
         cpus.append(c3 - c1)
         yaw_s, yaw_cpu = min(yaw_s, t1 - t0), min(yaw_cpu, c1 - c0)
+    # the same search, cold, refining only the pairs within BENCH_MARGIN of each object's best ([mine] tilt_refine_margin)
+    tilts._GEOMETRY_CACHE.clear()
+    c0 = _cpu()
+    TiltBank(P, V, np.ones(K), SCALES, grid, refine_margin=BENCH_MARGIN).match_spectra(o)
+    margin_cpu = _cpu() - c0
     (build_s, search_s), warm = runs[0], sum(runs[1])
     tilt_s = build_s + search_s
     T0 = len(grid.level(0))
@@ -111,6 +135,7 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
             "tilt_search_s": search_s, "ratio": ratio, "ratio_per_tilt": ratio / per_pair,
             "tilt_warm_s": warm, "ratio_per_tilt_warm": warm / yaw_s / per_pair,
             "yaw_cpu_s": yaw_cpu, "tilt_cpu_s": cpus[0], "ratio_per_tilt_cpu": cpus[0] / max(yaw_cpu, 1e-9) / per_pair,
+            "tilt_margin_cpu_s": margin_cpu,
             "load_1m": os.getloadavg()[0]}
 
 
@@ -161,8 +186,11 @@ def tumbled_objects(rng: np.random.Generator, P: np.ndarray, n: int, grid: TiltG
     return X, W, aspect, labels
 
 
-def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15) -> dict:
-    """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS."""
+def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15, refine_margin: float = 0.0,
+                       pass_levels: int = 0) -> dict:
+    """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS.
+    ``refine_margin``, ``pass_levels``: the mining's ``TiltGrid`` switches (``[mine] tilt_refine_margin``,
+    ``tilt_pass_levels``)."""
     import resource
 
     from sklearn.metrics import normalized_mutual_info_score
@@ -173,6 +201,7 @@ def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int
     grid = TiltGrid()
     P = np.abs(synthetic_prototypes(rng, k))
     X, W, aspect, labels = tumbled_objects(rng, P, n, grid)
+    grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels)
     usage = resource.getrusage(resource.RUSAGE_SELF)
     c0 = usage.ru_utime + usage.ru_stime
     t0 = time.perf_counter()

@@ -43,6 +43,12 @@ of that level, every later level searches its directions within ``COVER_FACTOR``
 spacing of the pair's previous best (HEALPix's measured covering radius is 0.79-0.81 x the mean spacing),
 about 8 directions per level, at the pair's best coarse scale, and a prototype's pose is replaced by a
 refined one with a lower distance.  Tilt indices index ``TiltGrid.dirs``, the levels' directions stacked.
+What the engine's passes ask for less (:func:`_refine_pairs`): with labels held fixed (``focus``), only the held
+prototype's pairs are refined (the others' poses could not change its pose); with ``TiltGrid.refine_margin``
+(``[mine] tilt_refine_margin``, off) each level refines only the pairs within 1 + margin of the object's best so
+far; with ``TiltGrid.pass_levels`` (``[mine] tilt_pass_levels``, off) Lloyd's intermediate passes stop after
+that many levels (``TiltBank.levels``).  A pass of several chunks keeps the finer copies for its later chunks
+(:meth:`TiltBank.more_chunks`, up to ``KEEP_REFINED_BYTES``).
 ``nsides=(0,)`` is the set {+z}: the yaw-only search of the 2-D case, with no resampling at all.
 
 Threads
@@ -88,6 +94,8 @@ class TiltGrid:
     radial_margin: float = 1.15
     height_margin: float = 1.10
     refine_top: int = 3
+    refine_margin: float = 0.0  # mining passes only (the engine's banks): see _refine_pairs; not kept in a library
+    pass_levels: int = 0  # > 0: Lloyd's intermediate passes search only this many levels (engine; not in a library)
     dirs: np.ndarray = field(init=False, repr=False, compare=False)
     offsets: tuple[int, ...] = field(init=False, repr=False, compare=False)
 
@@ -643,9 +651,26 @@ COPY_BLOCK = 32        # copies resampled per block (bounds its temporaries; blo
 COARSE_ROWS = 256      # objects per product of the coarse level (bounds the per-shift distances' memory)
 COLUMN_BUDGET = 384    # (copy, scale) columns whose spectra a refinement block holds at once (~90 MB)
 PROTOTYPE_BATCH = 4    # prototypes whose refinement copies are held at once (TiltBank._drop_refined)
+KEEP_REFINED_BYTES = 512 << 20  # a pass of several chunks keeps the refinement's copies up to this (more_chunks)
 TASK_PAIRS = 8192      # (copy, object) pairs of a run of refinement products reduced at once (A x 4 bytes each)
 SPLIT_WASTE = 1.5      # a refinement group runs one product per previous direction when the union's arithmetic
 SPLIT_OVERHEAD = 200   # exceeds SPLIT_WASTE x the candidates' own plus this many (object, copy) pairs per product
+
+
+def _refine_pairs(pd: np.ndarray, pk: np.ndarray, focus: np.ndarray | None, margin: float) -> np.ndarray:
+    """The distances pd (n, m) of each object's ``refine_top`` starting pairs (prototypes pk (n, m)) so far, inf
+    where a pair is not refined at the next level.  With ``focus`` (n,) only the pairs of that prototype are refined
+    (exact for the focus prototype's pose: each pair is refined on its own).  With ``margin`` > 0 only the pairs
+    within a factor 1 + margin of the object's best pair so far (of the focus prototype's, with ``focus``): a
+    pair that far behind rarely wins after refinement, and an assignment needs only the winner's pose (a
+    heuristic, ``[mine] tilt_refine_margin``; measured in configs/default.toml)."""
+    keep = np.isfinite(pd)
+    if focus is not None:
+        keep &= pk == np.asarray(focus)[:, None]
+    if margin > 0:
+        best = np.min(np.where(keep, pd, np.inf), axis=1, keepdims=True)
+        keep &= pd <= best * (1.0 + margin)
+    return np.where(keep, pd, np.inf)
 
 
 class TiltBank:
@@ -661,7 +686,13 @@ class TiltBank:
     per copy, one ``grid_sample`` per prototype of a block of copies).
     """
 
-    def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid):
+    def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid,
+                 *, refine_margin: float = 0.0):
+        self.refine_margin = float(refine_margin)  # > 0: see _refine_pairs
+        # True: the refinement keeps every later-level copy it builds (a pass's earlier chunks: the later chunks
+        # need nearly the same copies; set by the engine), False: it drops them batch by batch (_drop_refined)
+        self.keep_refined = False
+        self.levels = 0  # > 0: the search stops after this many levels of the grid (0: all; the engine's passes)
         self.P = np.asarray(P, np.float32)
         self.V = np.asarray(V, np.float32)
         self.K, self.C = self.P.shape[:2]
@@ -753,14 +784,32 @@ class TiltBank:
 
         _overlapped(self._geometries, run, tilted)  # blocks spread over the threads
 
-    def _drop_refined(self) -> None:
-        """Forget the copies of the later levels (the refinement's): a pass needs K x (48 + 192) of them with the
+    def more_chunks(self, more: bool) -> None:
+        """Tell the bank whether more chunks of the same pass follow the next search: if so, and all of the later
+        levels' copies fit in ``KEEP_REFINED_BYTES``, the refinement keeps the copies it builds for them (built
+        once per pass, not once per chunk: the same copies, so the same values); the last chunk drops them as it
+        goes."""
+        n = self.K * (len(self.grid.dirs) - self.T0)
+        self.keep_refined = more and n * (self.C + 1) * int(np.prod(self.shape)) * 4 <= KEEP_REFINED_BYTES
+
+    def _drop_refined(self, level: int | None = None, batch: int = 0) -> None:
+        """Forget copies of the later levels (the refinement's): a pass needs K x (48 + 192) of them with the
         default grid, about 330 MB on the 5 x 8 x 36 x 12 grid, so the refinement builds them a batch of
-        prototypes at a time (a later chunk of the pass builds them again)."""
+        prototypes at a time.  All of them (``level`` None), or, while level ``level``'s batch ``batch`` of
+        prototypes is refined, those of the earlier levels and of that level's earlier batches (copies a previous
+        chunk kept for the later batches stay, :attr:`keep_refined`)."""
         first = self.grid.offsets[1] if len(self.grid.offsets) > 2 else None
-        if first is not None:
-            for key in [key for key in self._copies if key[1] >= first]:
-                del self._copies[key]
+        if first is None:
+            return
+        if level is None:
+            gone = [key for key in self._copies if key[1] >= first]
+        else:
+            lo = self.grid.offsets[level]
+            gone = [key for key in self._copies
+                    if first <= key[1] < lo or (key[1] >= lo and key[1] < self.grid.offsets[level + 1]
+                                                and key[0] // PROTOTYPE_BATCH < batch)]
+        for key in gone:
+            del self._copies[key]
 
     def copy_at(self, k: int, up: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Copy (C, R, A, H), (R, A, H) of prototype k resting with any direction ``up`` (3,) pointing up."""
@@ -822,8 +871,12 @@ class TiltBank:
         return self.coarse.spectra(x, w)
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
-                      scale_index: np.ndarray | None = None, window: int = 1) -> PoseMatch:
-        """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (A, n, (C + 2) R H)."""
+                      scale_index: np.ndarray | None = None, window: int = 1, focus: np.ndarray | None = None
+                      ) -> PoseMatch:
+        """Best (tilt, yaw, scale) per (object, prototype) from object spectra o (A, n, (C + 2) R H).  ``focus`` (n,):
+        the one prototype whose pose is wanted for each object (a pass with labels held fixed): the refinement
+        skips the other prototypes' pairs, whose refined poses could not change that prototype's (their distances
+        stay the first level's)."""
         n, K, T0 = o.shape[1], self.K, self.T0
         # blocks of objects bound the (n, K T0, S, A) distances
         # the blocks run at once on the pool's threads: COARSE_ROWS objects over all of them (memory as one block)
@@ -837,10 +890,11 @@ class TiltBank:
         out = PoseMatch(pick(m.D), pick(m.yaw_deg), pick(m.scale), None, tilt=self.grid.level(0)[bt])
         if len(self.grid.nsides) > 1:
             with reused_scratch():  # one buffer for every block's column factors (_block_factors)
-                self._refine(o, m, out, min_overlap)
+                self._refine(o, m, out, min_overlap, focus)
         return out
 
-    def _refine(self, o: torch.Tensor, coarse: PoseMatch, out: PoseMatch, min_overlap: float) -> None:
+    def _refine(self, o: torch.Tensor, coarse: PoseMatch, out: PoseMatch, min_overlap: float,
+                focus: np.ndarray | None = None) -> None:
         """Coarse-to-fine over the later levels from each object's ``refine_top`` best (prototype, coarse tilt)
         pairs (in place: a refined pose replaces the prototype's pose when its distance is lower).  Several
         starting pairs, not one per prototype: the best coarse tilt can be a neighbour basin's.  The finer
@@ -859,14 +913,15 @@ class TiltBank:
         top = np.argsort(flat, axis=1, kind="stable")[:, :self.grid.refine_top]  # (n, m) of k T0 + t
         r = np.arange(n)[:, None]
         pk, pt = top // T0, self.grid.level(0)[top % T0]
-        pd = flat[r, top]
+        pd = _refine_pairs(flat[r, top], pk, focus, 0.0)  # pairs of other prototypes than the focus: inf
         pyaw = coarse.yaw_deg.reshape(n, K * T0)[r, top]
         psc = coarse.scale.reshape(n, K * T0)[r, top]
         scales32 = np.asarray(self.scales, np.float32)
         psi = np.argmin(np.abs(psc[..., None] - scales32), axis=-1)  # (n, m) scale index of each pair
         minov = self.C * min_overlap
-        for level in range(1, len(self.grid.nsides)):
-            ii, jj = np.nonzero(np.isfinite(pd))
+        for level in range(1, self.levels or len(self.grid.nsides)):
+            # with a margin, each level refines the pairs within it of the object's best so far
+            ii, jj = np.nonzero(_refine_pairs(pd, pk, focus, self.refine_margin) < np.inf)
             if not ii.size:
                 break
             prev, gk, gs = pt[ii, jj], pk[ii, jj], psi[ii, jj]
@@ -885,7 +940,8 @@ class TiltBank:
             b, bend = 0, 0
             while b < len(groups):  # blocks of groups of one scale, about COLUMN_BUDGET columns each
                 if b == bend:  # a new batch of prototypes: the previous batch's copies go, this one's are built
-                    self._drop_refined()
+                    if not self.keep_refined:
+                        self._drop_refined(level, groups[b][1] // PROTOTYPE_BATCH)
                     bend = b
                     while bend < len(groups) and groups[bend][1] // PROTOTYPE_BATCH == groups[b][1] // PROTOTYPE_BATCH:
                         bend += 1
@@ -960,7 +1016,8 @@ class TiltBank:
                     pd[ri, ci] = De[rr, j][better]
                     pyaw[ri, ci] = yg[inv, j][better]
                     pt[ri, ci] = cols[j[better]]
-        self._drop_refined()
+        if not self.keep_refined:
+            self._drop_refined()
         for j in range(pk.shape[1]):
             i = np.flatnonzero(pd[:, j] < out.D[np.arange(n), pk[:, j]])
             k = pk[i, j]
@@ -971,13 +1028,13 @@ class TiltBank:
 
 
 def make_bank(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], grid: TiltGrid | None = None,
-              aspect: np.ndarray | None = None):
+              aspect: np.ndarray | None = None, refine_margin: float = 0.0):
     """A PoseBank (yaw-only grid or none) or a TiltBank; both give PoseMatch with ``tilt`` (n, K)."""
     if grid is None or grid.is_identity:
         return PoseBank(P, V, scales)
     if aspect is None:
         raise ValueError("a tilt search needs the prototypes' aspects (z_max / rho_max), got None")
-    return TiltBank(P, V, aspect, scales, grid)
+    return TiltBank(P, V, aspect, scales, grid, refine_margin=refine_margin)
 
 
 def tilt_pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *, aspect: np.ndarray,
@@ -988,7 +1045,11 @@ def tilt_pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarr
     objects); ``aspect`` (K,) are the prototypes' z_max / rho_max (:func:`grid_aspect`)."""
     X, W, P, V, scales = _prepare(X, W, P, V, scales)
     bank = make_bank(P, V, scales, grid, aspect)
-    parts = [bank.match(X[i:i + chunk_size], W[i:i + chunk_size], min_overlap) for i in range(0, len(X), chunk_size)]
+    parts = []
+    for i in range(0, len(X), chunk_size):
+        if isinstance(bank, TiltBank):
+            bank.more_chunks(i + chunk_size < len(X))
+        parts.append(bank.match(X[i:i + chunk_size], W[i:i + chunk_size], min_overlap))
     K = P.shape[0]
     if not parts:
         z = np.zeros((0, K), np.float32)
