@@ -21,13 +21,14 @@ R, A, H = 8, 36, 3
 WINDOW_DEG = 70.0          # a single view sees the azimuths within this angle of its viewing direction
 
 
-def _view(profile: np.ndarray, alpha_deg: float, roll: int, rng: np.random.Generator) -> np.ndarray:
+def _view(profile: np.ndarray, alpha_deg: float, roll: int, rng: np.random.Generator,
+          window_deg: float = WINDOW_DEG) -> np.ndarray:
     """Store volume (6, R, A, H) of an object (surface at radial bin profile[j, k] in azimuth bin j, height k) seen
-    from direction alpha (object frame): cells of the seen azimuths at or beyond the surface are observed (twice),
-    the object then turned by ``roll`` azimuth bins (its yaw in the store)."""
+    from direction alpha (object frame; the azimuths within ``window_deg`` of it): cells of the seen azimuths at or
+    beyond the surface are observed (twice), the object then turned by ``roll`` azimuth bins (its yaw in the store)."""
     v = np.zeros((6, R, A, H), np.float32)
     phi = (np.arange(A) + 0.5) * 360.0 / A
-    seen = np.abs((phi - alpha_deg + 180.0) % 360.0 - 180.0) <= WINDOW_DEG
+    seen = np.abs((phi - alpha_deg + 180.0) % 360.0 - 180.0) <= window_deg
     r = np.arange(R)[:, None]
     for j in np.flatnonzero(seen):
         v[0, :, j, :] = (r == profile[j][None]) + rng.normal(0.0, 0.05, (R, H))

@@ -20,24 +20,9 @@ from protomine.curate.knownclass import AGREE_MIN, agreement, margin_key
 from protomine.curate.oneshot import find_similar, ranking_key
 from protomine.ingest.volume import matching_features
 from protomine.mine.library import Library
-from test_find_expansion import A, H, R, _Store
+from test_find_expansion import A, H, R, _Store, _view
 
 STRIP_DEG = 20.0
-
-
-def _view(profile: np.ndarray, alpha_deg: float, window_deg: float, roll: int, rng: np.random.Generator) -> np.ndarray:
-    """Store volume (6, R, A, H) of an outline (surface at radial bin profile[j, k]) seen from direction alpha with the
-    azimuths within ``window_deg`` of it observed, then turned by ``roll`` azimuth bins."""
-    v = np.zeros((6, R, A, H), np.float32)
-    phi = (np.arange(A) + 0.5) * 360.0 / A
-    seen = np.abs((phi - alpha_deg + 180.0) % 360.0 - 180.0) <= window_deg
-    r = np.arange(R)[:, None]
-    for j in np.flatnonzero(seen):
-        v[0, :, j, :] = (r == profile[j][None]) + rng.normal(0.0, 0.05, (R, H))
-        v[1, :, j, :] = r > profile[j][None]
-        v[2, :, j, :] = 2.0 * (r >= profile[j][None])
-        v[3:6, :, j, :] = 0.5
-    return np.roll(v, roll, axis=2)
 
 
 def _cfg(t: float, weak: float = 0.0) -> dict:
@@ -59,7 +44,7 @@ def _world():
     fw, cw = cfg["mine"]["free_weight"], cfg["mine"]["colour_weight"]
     # the library: each class's prototype a full view (every azimuth observed), its single-view calibration fitted on
     # partial views of the class (median and scaled MAD of log distances, as mining fits it)
-    full = np.stack([_view(p, 0.0, 180.0, 0, rng) for p in (target, other)])
+    full = np.stack([_view(p, 0.0, 0, rng, 180.0) for p in (target, other)])
     P, V = matching_features(full, free_weight=fw, colour_weight=cw)
     lib_cfg = copy.deepcopy(cfg)
     lib_cfg["volume"].update(radial_bins=R, azimuth_bins=A, height_bins=H)
@@ -75,22 +60,22 @@ def _world():
     members = {"object": np.zeros(0, dtype=object), "cluster": np.zeros(0, np.int64), "distance": np.zeros(0)}
     lib = Library(protos, members, {"scales": "[1.0]", "tilts": json.dumps({"nsides": [0]}), "unknown_cut": 0.05,
                                     "grid": [R, A, H], "config": json.dumps(lib_cfg)})
-    ids, vols, kind = ["t/example"], [_view(target, 0.0, STRIP_DEG, int(rng.integers(A)), rng)], ["example"]
+    ids, vols, kind = ["t/example"], [_view(target, 0.0, int(rng.integers(A)), rng, STRIP_DEG)], ["example"]
     for i, a in enumerate(np.linspace(0.0, 360.0, 10, endpoint=False) + 18.0):      # target views from every side
         ids.append(f"t/{i}")
-        vols.append(_view(target, float(a), 70.0, int(rng.integers(A)), rng))
+        vols.append(_view(target, float(a), int(rng.integers(A)), rng, 70.0))
         kind.append("target")
     for i, a in enumerate((-15.0, -5.0, 0.0, 5.0, 15.0, 10.0)):                      # the twin's strip side
         ids.append(f"w/{i}")
-        vols.append(_view(twin, a, 45.0, int(rng.integers(A)), rng))
+        vols.append(_view(twin, a, int(rng.integers(A)), rng, 45.0))
         kind.append("twin")
     for i, a in enumerate((0.0, 120.0, 240.0)):                                      # the other mined class
         ids.append(f"o/{i}")
-        vols.append(_view(other, a, 70.0, int(rng.integers(A)), rng))
+        vols.append(_view(other, a, int(rng.integers(A)), rng, 70.0))
         kind.append("other")
     # a view of a never-mined class with nothing in common with either prototype
     ids.append("n/0")
-    vols.append(_view(rng.integers(1, 6, (A, H)), 0.0, 70.0, 0, rng))
+    vols.append(_view(rng.integers(1, 6, (A, H)), 0.0, 0, rng, 70.0))
     kind.append("new")
     return lib, _Store(ids, np.stack(vols)), np.array(kind)
 

@@ -119,6 +119,25 @@ def test_column_factors_equal_posesearch_spectra():
             np.testing.assert_allclose(gl.numpy(), r.numpy(), atol=1e-4 * float(r.abs().max()))
 
 
+def _naive_best(bank, x, w, k, tilts, scales):
+    """The definition of a refinement step: prototype k's copies at ``tilts``, the naive distance (explicit rolls) of one
+    object (x, w) on each; the least distance and its tilt."""
+    Pc, Vc = bank.copies(np.full(len(tilts), k), np.asarray(tilts))
+    m = pose_distances_naive(x[None], w[None], Pc, Vc, scales=scales)
+    j = int(np.argmin(m.D[0]))
+    return float(m.D[0, j]), int(tilts[j])
+
+
+def _naive_coarse_pairs(bank, x, w, K, coarse, scales):
+    """The first level by the definition: (distance, prototype, tilt, scale) of one object on every coarse copy."""
+    pairs = []
+    for k in range(K):
+        Pc, Vc = bank.copies(np.full(len(coarse), k), coarse)
+        m = pose_distances_naive(x[None], w[None], Pc, Vc, scales=scales)
+        pairs += [(float(m.D[0, j]), k, int(coarse[j]), float(m.scale[0, j])) for j in range(len(coarse))]
+    return pairs
+
+
 @pytest.mark.parametrize("split,task_pairs", [(False, 8192), (True, 8192), (True, 1)])
 def test_refinement_equals_its_definition(split, task_pairs, monkeypatch):
     # both ways of running a refinement group (one product against the union of its candidates, or one per
@@ -140,23 +159,12 @@ def test_refinement_equals_its_definition(split, task_pairs, monkeypatch):
     # the definition, level by level, with the naive distance on each copy
     coarse = grid.level(0)
     n, K = len(X), len(P)
-
-    def best(i, k, tilts, sc):
-        Pc, Vc = bank.copies(np.full(len(tilts), k), np.asarray(tilts))
-        m = pose_distances_naive(X[i:i + 1], W[i:i + 1], Pc, Vc, scales=sc)
-        j = int(np.argmin(m.D[0]))
-        return float(m.D[0, j]), int(tilts[j]), float(m.scale[0, j])
-
     for i in range(n):
-        pairs = []
-        for k in range(K):
-            Pc, Vc = bank.copies(np.full(len(coarse), k), coarse)
-            m = pose_distances_naive(X[i:i + 1], W[i:i + 1], Pc, Vc, scales=scales)
-            pairs += [(float(m.D[0, j]), k, int(coarse[j]), float(m.scale[0, j])) for j in range(len(coarse))]
+        pairs = _naive_coarse_pairs(bank, X[i], W[i], K, coarse, scales)
         dk = {k: min(p for p in pairs if p[1] == k) for k in range(K)}  # coarse best per prototype
         for d, k, t, sc in sorted(pairs, key=lambda p: p[0])[:grid.refine_top]:
             for level in (1, 2):
-                d2, t2, _ = best(i, k, grid.candidates(level, t), (sc,))
+                d2, t2 = _naive_best(bank, X[i], W[i], k, grid.candidates(level, t), (sc,))
                 if d2 < d:
                     d, t = d2, t2
             if d < dk[k][0]:
@@ -187,19 +195,8 @@ def test_pruned_refinement_equals_its_definition(focused, margin, levels):
     focus = np.array([1, 0, 2, 2, 1, 0]) if focused else None
     got = bank.match_spectra(bank.spectra(X, W), focus=focus)
     coarse = grid.level(0)
-
-    def best(i, k, ts, sc):
-        Pc, Vc = bank.copies(np.full(len(ts), k), np.asarray(ts))
-        m = pose_distances_naive(X[i:i + 1], W[i:i + 1], Pc, Vc, scales=sc)
-        j = int(np.argmin(m.D[0]))
-        return float(m.D[0, j]), int(ts[j])
-
     for i in range(n):
-        pairs = []
-        for k in range(K):
-            Pc, Vc = bank.copies(np.full(len(coarse), k), coarse)
-            m = pose_distances_naive(X[i:i + 1], W[i:i + 1], Pc, Vc, scales=scales)
-            pairs += [(float(m.D[0, j]), k, int(coarse[j]), float(m.scale[0, j])) for j in range(len(coarse))]
+        pairs = _naive_coarse_pairs(bank, X[i], W[i], K, coarse, scales)
         dk = {k: min(p for p in pairs if p[1] == k) for k in range(K)}
         top = [list(p) for p in sorted(pairs, key=lambda p: p[0])[:grid.refine_top]]
         live = [focus is None or p[1] == focus[i] for p in top]
@@ -207,7 +204,7 @@ def test_pruned_refinement_equals_its_definition(focused, margin, levels):
             ref = min([p[0] for p, a in zip(top, live) if a], default=np.inf)
             for p, a in zip(top, live):
                 if a and (margin == 0 or p[0] <= ref * (1 + margin)):
-                    d2, t2 = best(i, p[1], grid.candidates(level, p[2]), (p[3],))
+                    d2, t2 = _naive_best(bank, X[i], W[i], p[1], grid.candidates(level, p[2]), (p[3],))
                     if d2 < p[0]:
                         p[0], p[2] = d2, t2
         for p in top:
