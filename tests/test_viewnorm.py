@@ -280,3 +280,69 @@ def test_a_copy_cut_by_the_image_border_keeps_the_part_the_view_sees():
     far = ViewCut(np.array([[f, 0.0, W / 2], [0.0, f, (H - 1) / 2], [0.0, 0.0, 1.0]]), (W * 10, H), w2c,
                   np.array([origin_x, 0.0, 0.0]), np.eye(3), r_view, a * half, np.zeros(0, np.int64), np.zeros(0))
     assert cut_cells(qv, lo, half, 0.0, far).all()
+
+
+def test_cut_decide_lets_the_wider_shortlist_decide_and_keeps_the_ratio_of_the_narrow_one(tiny_world):
+    """[mine] view_normalise_cut_decide: for a view given a cut the class is decided with the view-normalised
+    distances of the wider shortlist (the same decision and distances as view_normalise_cut_within = the wider
+    factor), while the best/second-best ratio joined to the score is that of the distances whose view-normalised
+    part stays on the shortlist of view_normalise_cut_within.  The score is written out from its definitions:
+    the calibrated Student-t tail 1 - T_4((ln d - mu_k) / sigma_k) of the lesser distance (scipy), the conformal
+    p-value (1 + #{c >= r}) / (m + 1) of the ratio (split conformal, Angelopoulos & Bates 2021) and Fisher's
+    combination P(chi2_4 >= -2 ln(s p)) (Fisher 1925; scipy)."""
+    import json
+    from scipy.stats import chi2, t as student_t
+    from protomine.ingest.sharded import open_store
+    from protomine.ingest.truncation import ViewCut
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.library import read_library
+
+    calib = np.linspace(0.4, 1.0, 19)                 # the held-out views' ratios (invented, sorted)
+
+    def matcher(within: float, decide: float):
+        lib = read_library(tiny_world["library"])
+        pr = lib.prototypes                           # the view calibration: the pose search's fields, both faces
+        pr.update(single_view_mu=pr["single_mu"], single_view_sigma=pr["single_sigma"],
+                  single_view_tilt_mu=pr["single_mu"], single_view_tilt_sigma=pr["single_sigma"])
+        lib.attrs.update(unknown_view_cut=0.01, unknown_view_ratios=calib, unknown_view_ratio_cut=0.01)
+        c = lib.config
+        c["mine"].update(view_normalise_top=2, view_normalise_score=True, view_normalise_calibrate=True,
+                         view_normalise_ratio=True, view_normalise_cut=True, view_normalise_cut_within=within,
+                         view_normalise_cut_decide=decide, unseen_charge=0.0)
+        lib.attrs["config"] = json.dumps(c)
+        return make_matcher(lib, tiny_world["cfg"])
+
+    st = open_store(tiny_world["store"])
+    vols = st.read_single_views()
+    n = len(vols)
+    az = np.random.default_rng(2).uniform(0.0, 2 * np.pi, n)   # cameras 50 degrees up, as the captures'
+    cams = np.stack([np.cos(az), np.sin(az), np.full(n, np.tan(np.deg2rad(50.0)))], 1)
+    cams /= np.linalg.norm(cams, axis=1, keepdims=True)
+    w2c = np.eye(4)
+    w2c[:3, :3] = np.diag([1.0, -1.0, -1.0])                   # looking down from 1 m, an image far wider than the view
+    w2c[:3, 3] = [0.0, 0.0, 1.0]
+    cut = ViewCut(np.array([[100.0, 0.0, 1000.0], [0.0, 100.0, 500.0], [0.0, 0.0, 1.0]]), (2000, 1000), w2c,
+                  np.zeros(3), np.eye(3), 0.05, 0.05, np.zeros(0, np.int64), np.zeros(0))
+    cuts = [cut] * n
+    narrow, wide = matcher(1.0, 0.0), matcher(100.0, 0.0)
+    got_m = matcher(1.0, 100.0)
+    assert got_m.view_cut_decide == 100.0
+    a, b = narrow.match(vols, cams, cuts=cuts), wide.match(vols, cams, cuts=cuts)
+    got = got_m.match(vols, cams, cuts=cuts)
+    np.testing.assert_array_equal(got["best"], b["best"])          # the wider shortlist decides
+    np.testing.assert_array_equal(got["distance"], b["distance"])
+    pr = got_m.library.prototypes
+    Da = np.where(np.isfinite(a["distance"]), a["distance"], np.inf)
+    differs = 0
+    for i in range(n):
+        for k in range(got_m.K):
+            others = np.delete(Da[i], k)
+            r = Da[i, k] / others.min() if np.isfinite(others.min()) else 0.0
+            p = (1.0 + np.sum(calib >= r)) / (len(calib) + 1.0)
+            d = np.fmin(got["scored_distance"][i, k], got["view_distance"][i, k])
+            s = student_t.sf((np.log(d) - pr["single_mu"][k]) / pr["single_sigma"][k], 4)
+            want = min(1.0, chi2.sf(-2.0 * np.log(s * p), 4)) if s * p > 0 else 0.0
+            assert got["score"][i, k] == pytest.approx(want, abs=1e-6), (i, k)
+            differs += abs(got["score"][i, k] - b["score"][i, k]) > 1e-6
+    # the test sees the ratio differ from the wider shortlist's (measured: see the assertion message)
+    assert differs > 0, differs

@@ -125,6 +125,8 @@ class Matcher:
     view_calibrated: bool = False
     view_cut: bool = False
     view_cut_within: float | None = None
+    view_cut_decide: float = 0.0
+    view_cut_ratio_moves: bool = False
     chunk_size: int = 512
     symmetric_top: int = 0
     unseen: float = 0.0
@@ -153,7 +155,8 @@ class Matcher:
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
         self.normaliser = (ViewNormaliser(self.P, self.V, pr["aspect"], self.scales, self.tilts,
                                           (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top,
-                                          cut_within=self.view_cut_within)
+                                          cut_within=(self.view_cut_decide if self.view_cut_decide > 0
+                                                      else self.view_cut_within))
                            if self.view_top > 0 else None)
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
@@ -234,24 +237,35 @@ class Matcher:
         # view prototypes (when the library has them) vote on the class; pose and score stay the 3-D prototype's
         D = self.search.vote(X, W, D)
         Dv = np.full(D.shape, np.nan)
+        Dq = None   # the distances of the best/second-best ratio when not D (``[mine] view_normalise_cut_decide``)
         if self.normaliser is not None and cameras is not None:  # the prototypes gridded as seen from the camera
             Dv = self.normaliser.distances(X, W, D, up, cameras, cuts)
+            if self.view_cut_decide > 0 and cuts is not None and any(c is not None for c in cuts):
+                # a cut view's wider shortlist decides the class; the ratio keeps the shortlist of cut_within
+                keep = self.normaliser.shortlist_mask(D, cuts, self.view_cut_within if self.view_cut_within is not None
+                                                       else self.normaliser.within)
+                Dq = np.fmin(D, np.where(keep, Dv, np.nan))
             D = np.fmin(D, Dv)
             if self.view_score and not self.view_calibrated:  # ``[mine] view_normalise_score``: the better of the two
                 Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
                 S = np.where(np.isfinite(Dv), np.maximum(S, Sv), S)
         if self.unseen > 0:  # ``[mine] unseen_charge``: the share of the view's surface the posed prototype has not seen
-            D = D + self.unseen * unseen_shares(self.V, self.search.bank, X, W, up, raw, fit_scale, upright)
+            charge = self.unseen * unseen_shares(self.V, self.search.bank, X, W, up, raw, fit_scale, upright)
+            D = D + charge
+            Dq = None if Dq is None else Dq + charge
+        Dq = D if Dq is None else Dq
         if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
             Dm = np.fmin(Dr, Dv)
             S = self.library.score(np.where(np.isfinite(Dm), Dm, 1.0), np.arange(self.K)[None, :], single_view=True,
                                    upright=upright, view_normalised=True)
             S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
-                r = best_second_ratio(D)
+                r = best_second_ratio(Dq)
+                if self.view_cut_ratio_moves and Dq is not D:   # the decided class takes the narrow best's ratio
+                    r = moved_ratios(r, D, Dq)
                 S = fisher_combine(S, np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0))
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
-            S = rule_scores(S, best_second_ratio(D), upright, self.tilt_ratios)
+            S = rule_scores(S, best_second_ratio(Dq), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
             sz = np.asarray(sizes, np.float64).reshape(-1, 2)
@@ -266,6 +280,18 @@ class Matcher:
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv,
                 "rotation": rotation, "best": best}
+
+
+def moved_ratios(r: np.ndarray, D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
+    """Ratios r (n, K) of ``best_second_ratio(Dq)`` with, in each row whose least D and least Dq fall on different
+    prototypes, the least D's prototype given the ratio of the least Dq's (``[mine] view_normalise_cut_decide``)."""
+    r = np.array(r, np.float64)
+    fin = np.isfinite(D).any(axis=1) & np.isfinite(Dq).any(axis=1)
+    bd = np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)
+    bq = np.argmin(np.where(np.isfinite(Dq), Dq, np.inf), axis=1)
+    rows = np.flatnonzero(fin & (bd != bq))
+    r[rows, bd[rows]] = r[rows, bq[rows]]
+    return r
 
 
 def view_centre_offsets(cfg: dict) -> tuple[float, ...]:
@@ -325,6 +351,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  cut_offsets=view_cut_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
+                 view_cut_decide=float(m.get("view_normalise_cut_decide", 0.0)),
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0))))
 
 

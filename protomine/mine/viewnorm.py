@@ -345,6 +345,23 @@ class ViewNormaliser:
             self._fill(out, X, W, D, up, cameras, cuts if cuts is not None else [None] * len(D))
         return out
 
+    def listed(self, d: np.ndarray, cut: bool, cut_within: float | None = None) -> np.ndarray:
+        """The shortlist of one view's distances d (K,): its ``top`` nearest prototypes within ``within`` (a cut view:
+        ``cut_within``, or the argument when given) x its nearest, nearest first (none when no distance is finite)."""
+        Df = np.where(np.isfinite(d), d, np.inf)
+        order = np.argsort(Df, kind="stable")[:self.top]
+        if not len(order) or not np.isfinite(Df[order[0]]):
+            return order[:0]
+        f = (self.cut_within if cut_within is None else float(cut_within)) if cut else self.within
+        return order[Df[order] <= f * Df[order[0]]]
+
+    def shortlist_mask(self, D: np.ndarray, cuts: list | None, cut_within: float | None = None) -> np.ndarray:
+        """(n, K) True at each view's :meth:`listed` prototypes (``cuts`` (n,): a view's cut or None)."""
+        mask = np.zeros(np.shape(D), bool)
+        for i in range(len(D)):
+            mask[i, self.listed(D[i], cuts is not None and cuts[i] is not None, cut_within)] = True
+        return mask
+
     def _fill(self, out: np.ndarray, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray,
               cameras: np.ndarray, cuts: list[ViewCut | None]) -> None:
         """:meth:`distances` into ``out`` (n, K)."""
@@ -353,13 +370,11 @@ class ViewNormaliser:
             cam = np.asarray(cameras[i], np.float64)
             if not np.all(np.isfinite(cam)) or np.linalg.norm(cam) < 1e-9:
                 continue
-            Df = np.where(np.isfinite(D[i]), D[i], np.inf)
-            cut = cuts[i] is not None
-            order = np.argsort(Df, kind="stable")[:self.top]
-            if not np.isfinite(Df[order[0]]):
+            listed = self.listed(D[i], cuts[i] is not None)
+            if not len(listed):
                 continue
             obj = object_factors(X[i], W[i])
-            for k in order[Df[order] <= (self.cut_within if cut else self.within) * Df[order[0]]]:
+            for k in listed:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
                 out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj, cuts[i])
