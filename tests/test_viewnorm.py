@@ -286,7 +286,8 @@ def test_cut_decide_lets_the_wider_shortlist_decide_and_keeps_the_ratio_of_the_n
     """[mine] view_normalise_cut_decide: for a view given a cut the class is decided with the view-normalised
     distances of the wider shortlist (the same decision and distances as view_normalise_cut_within = the wider
     factor), while the best/second-best ratio joined to the score is that of the distances whose view-normalised
-    part stays on the shortlist of view_normalise_cut_within.  The score is written out from its definitions:
+    part stays on the shortlist of view_normalise_cut_within (the decided class: that of the narrow shortlist's
+    best).  The score is written out from its definitions:
     the calibrated Student-t tail 1 - T_4((ln d - mu_k) / sigma_k) of the lesser distance (scipy), the conformal
     p-value (1 + #{c >= r}) / (m + 1) of the ratio (split conformal, Angelopoulos & Bates 2021) and Fisher's
     combination P(chi2_4 >= -2 ln(s p)) (Fisher 1925; scipy)."""
@@ -336,13 +337,24 @@ def test_cut_decide_lets_the_wider_shortlist_decide_and_keeps_the_ratio_of_the_n
     differs = 0
     for i in range(n):
         for k in range(got_m.K):
-            others = np.delete(Da[i], k)
-            r = Da[i, k] / others.min() if np.isfinite(others.min()) else 0.0
+            j = a["best"][i] if k == got["best"][i] else k   # the decided class: the narrow best's ratio
+            others = np.delete(Da[i], j)
+            r = Da[i, j] / others.min() if np.isfinite(others.min()) else 0.0
             p = (1.0 + np.sum(calib >= r)) / (len(calib) + 1.0)
             d = np.fmin(got["scored_distance"][i, k], got["view_distance"][i, k])
             s = student_t.sf((np.log(d) - pr["single_mu"][k]) / pr["single_sigma"][k], 4)
             want = min(1.0, chi2.sf(-2.0 * np.log(s * p), 4)) if s * p > 0 else 0.0
             assert got["score"][i, k] == pytest.approx(want, abs=1e-6), (i, k)
             differs += abs(got["score"][i, k] - b["score"][i, k]) > 1e-6
-    # the test sees the ratio differ from the wider shortlist's (measured: see the assertion message)
+    # the test sees the ratio differ from the wider shortlist's (measured: 3 of the 36 pairs)
     assert differs > 0, differs
+
+
+def test_decided_ratios_give_the_wider_decision_the_narrow_best_ratio():
+    # worked by hand from the definition (best/second-best ratio, openset.best_second_ratio): Dq's ratios are
+    # 1 / 1.6, 1.6 / 1, 2 / 1; the decision (least D) is prototype 1, which takes the narrow best's 0.625
+    from protomine.label.matcher import decided_ratios
+    D = np.array([[1.0, 0.8, 2.0], [1.0, 1.6, 2.0]])
+    Dq = np.array([[1.0, 1.6, 2.0], [1.0, 1.6, 2.0]])
+    np.testing.assert_allclose(decided_ratios(D, Dq), [[0.625, 0.625, 2.0], [0.625, 1.6, 2.0]])
+    np.testing.assert_allclose(decided_ratios(Dq, Dq), [[0.625, 1.6, 2.0]] * 2)   # off: the plain ratios

@@ -126,7 +126,6 @@ class Matcher:
     view_cut: bool = False
     view_cut_within: float | None = None
     view_cut_decide: float = 0.0
-    view_cut_ratio_moves: bool = False
     chunk_size: int = 512
     symmetric_top: int = 0
     unseen: float = 0.0
@@ -260,12 +259,10 @@ class Matcher:
                                    upright=upright, view_normalised=True)
             S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
-                r = best_second_ratio(Dq)
-                if self.view_cut_ratio_moves and Dq is not D:   # the decided class takes the narrow best's ratio
-                    r = moved_ratios(r, D, Dq)
+                r = decided_ratios(D, Dq)
                 S = fisher_combine(S, np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0))
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
-            S = rule_scores(S, best_second_ratio(Dq), upright, self.tilt_ratios)
+            S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
             sz = np.asarray(sizes, np.float64).reshape(-1, 2)
@@ -282,10 +279,14 @@ class Matcher:
                 "rotation": rotation, "best": best}
 
 
-def moved_ratios(r: np.ndarray, D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
-    """Ratios r (n, K) of ``best_second_ratio(Dq)`` with, in each row whose least D and least Dq fall on different
-    prototypes, the least D's prototype given the ratio of the least Dq's (``[mine] view_normalise_cut_decide``)."""
-    r = np.array(r, np.float64)
+def decided_ratios(D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
+    """``best_second_ratio(Dq)`` (n, K), the ratios of the shortlist the score keeps (``[mine]
+    view_normalise_cut_decide``; Dq is D when off), with, in each row whose least D (the decision) and least Dq fall
+    on different prototypes, the decided prototype given the ratio of Dq's least: the view's best/second-best ratio
+    is the one the narrower shortlist gives it, whichever class the wider one decides."""
+    r = best_second_ratio(Dq)
+    if Dq is D:
+        return r
     fin = np.isfinite(D).any(axis=1) & np.isfinite(Dq).any(axis=1)
     bd = np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)
     bq = np.argmin(np.where(np.isfinite(Dq), Dq, np.inf), axis=1)
