@@ -89,7 +89,8 @@ def margin_key(D: np.ndarray, b: int) -> np.ndarray:
     d = D[:, b]
     if D.shape[1] < 2:
         return np.where(np.isfinite(d), d, np.inf)
-    other = np.min(np.where(np.isfinite(np.delete(D, b, axis=1)), np.delete(D, b, axis=1), np.inf), axis=1)
+    rest = np.delete(D, b, axis=1)
+    other = np.where(np.isfinite(rest), rest, np.inf).min(axis=1)
     key = d / np.maximum(other, 1e-12)
     return np.where(np.isfinite(d), key, np.inf)
 

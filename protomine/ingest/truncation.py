@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
-from ..geometry import plane_basis
+from ..geometry import camera_to_pixel, invert_rigid, plane_basis, transform_points
 
 BORDER_PX = 2          # pixels this close to the image border are on the cut (the renderer's / sensor's edge)
 NEIGHBOUR_PX = 2       # ... and pixels this close to a nearer object's pixel
@@ -92,16 +92,11 @@ class ViewCut:
         """(m,) bool: object-frame points (m, 3) (metres) the view's camera cannot see: behind the camera, projecting
         outside the image (perspective, the pixel centres at integer coordinates), or onto another object's pixel
         whose reading is nearer than the point by more than ``NEARER_M`` (the point lies behind that object)."""
-        pts = np.asarray(points, np.float64)
-        world = self.origin + pts @ self.basis
-        cam = world @ self.world_to_cam[:3, :3].T + self.world_to_cam[:3, 3]
-        z = cam[:, 2]
+        world = self.origin + np.asarray(points, np.float64) @ self.basis
+        uv, z = camera_to_pixel(transform_points(self.world_to_cam, world), self.K)
         front = z > 1e-6
-        zs = np.where(front, z, 1.0)
-        u = self.K[0, 0] * cam[:, 0] / zs + self.K[0, 1] * cam[:, 1] / zs + self.K[0, 2]
-        v = self.K[1, 1] * cam[:, 1] / zs + self.K[1, 2]
         w, h = self.size
-        c, r = np.floor(u + 0.5), np.floor(v + 0.5)
+        c, r = np.floor(uv[:, 0] + 0.5), np.floor(uv[:, 1] + 0.5)
         inside = front & (c >= 0) & (c < w) & (r >= 0) & (r < h)
         out = ~inside
         if len(self.others) and inside.any():
@@ -122,6 +117,6 @@ def view_cut(depth: np.ndarray, K: np.ndarray, cam_to_world: np.ndarray, pixels:
     if not cut_pixels(pixels, depth, others.reshape(H, W)).any():
         return None
     idx = np.flatnonzero(others & (depth.reshape(-1) > 0))
-    return ViewCut(np.asarray(K, np.float64), (int(W), int(H)), np.linalg.inv(np.asarray(cam_to_world, np.float64)),
+    return ViewCut(np.asarray(K, np.float64), (int(W), int(H)), invert_rigid(np.asarray(cam_to_world, np.float64)),
                    np.asarray(origin, np.float64), plane_basis(np.asarray(up, np.float64)), float(radius), float(height),
                    idx, depth.reshape(-1)[idx].astype(np.float64))
