@@ -69,6 +69,24 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
 - 3,000 tumbled objects (this row, seed 0): defaults 668 s CPU, 412 s wall at load 1.7, peak 1,841 MB (the finer
   copies kept across the full passes' two chunks: +~220 MB), NMI 0.951 (before: 883 s CPU, 1,618 MB, NMI 0.952);
   with ``pass_levels`` 2 and ``refine_margin`` 0.25: 443 s CPU, 448 s wall at load 4, 1,772 MB, NMI 0.940.
+- Again (cProfile, process-time clock, one torch thread, load 8-11): the row's search 8.2 s CPU against 0.33 s yaw-only
+  (ratio per tilt 1.97) = the first level 3.7 s (0.94 yaw-only searches a tilt: at its floor) + the refinement 4.2 s:
+  products 1.5 s, copies 1.4 s (2,729 resampled, geometries 0.26 s of it), column factors 1.1 s (7,178 (copy, scale)
+  columns, 2.6 scales a copy, 0.11 ms a column of which the two half-size DFT products are 37 us).  The products are
+  small (1,098 of them, median 5 objects x 8 copies, 123 k (object, copy) pairs): 12 us a pair against the first
+  level's 1.9.  For the 1.3 target the refinement would have to cost ~1.3 s.
+- Tried, not kept: (1) the products of fewer than 32 objects padded to their batch's largest and run ~25 at a time
+  (one batched product per spectrum row, the objects and columns gathered once per batch): the refinement's products
+  1.58 -> 1.67 s, no gain (the gathers and the products of small matrices cost as much batched as one by one).
+  (2) The last level's candidates within 0.6 x the previous spacing (5.0 instead of 8.75 a pair): the row 7.4 ->
+  6.3 s CPU (ratio per tilt 1.58 -> 1.40 in that run), 95% of the row's labels and 81% of its best tilts kept;
+  mining 600 tumbled objects (``_mine_tumbled_once(600, 16, 0)``, back to back, load 10-11): 225 -> 180 s CPU, NMI
+  0.981 -> 0.954, peak 1,045 -> 1,057 MB: a worse trade than ``pass_levels`` 2, so no switch was added.
+- Mining 1,000 tumbled objects (``_mine_tumbled_once(1000, 16, 0)``, the pool's threads on, 323 s CPU, NMI 0.892;
+  the process's CPU clock charged to the main thread's calls, so work the pool did meanwhile counts there too): the
+  refinement 176 s (its copies ~66 s with their geometries, column factors 50 s; all geometries 27 s, of which
+  enclosing circles 15 s), the first level 62 s, the aligned sums' transform and untilt 45 s, the fit's finish 18 s,
+  the seeding 12 s.
 """
 from __future__ import annotations
 
