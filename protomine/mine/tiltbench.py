@@ -82,6 +82,9 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   6.3 s CPU (ratio per tilt 1.58 -> 1.40 in that run), 95% of the row's labels and 81% of its best tilts kept;
   mining 600 tumbled objects (``_mine_tumbled_once(600, 16, 0)``, back to back, load 10-11): 225 -> 180 s CPU, NMI
   0.981 -> 0.954, peak 1,045 -> 1,057 MB: a worse trade than ``pass_levels`` 2, so no switch was added.
+  (3) Fewer pairs refined (``refine_top`` 2 / 1): the row 6.9 / 7.1 s CPU against 7.4 (noise of the same order),
+  79% / 53% of its labels kept: at 2,048 objects the pairs' candidates cover nearly every finer copy whatever their
+  number, so the copies and their factors (~2.5 s) stay and only the products shrink.
 - Mining 1,000 tumbled objects (``_mine_tumbled_once(1000, 16, 0)``, the pool's threads on, 323 s CPU, NMI 0.892;
   the process's CPU clock charged to the main thread's calls, so work the pool did meanwhile counts there too): the
   refinement 176 s (its copies ~66 s with their geometries, column factors 50 s; all geometries 27 s, of which
