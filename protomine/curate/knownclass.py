@@ -36,9 +36,11 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    distance of each object's profile to the example's (``profile_key``).  Every prototype c's margin ranking is
    compared with it (objects in common among the first ``AGREE_TOP``, the example left out); the prototype sharing
    the most (ties: the lower index) replaces b when it shares at least z and more than b does.  Measured on the demo
-   stores (README "Find"): it rescues seed 0's tripod stand behind a jug (named hand plane at 0.56: 0.0 -> 0.9) but,
-   every new scan as the example with the one-way search, also moves two correctly named seed 1 views (funnel at
-   0.61, tripod stand at 0.62: 1.0 -> 0.0), so it stays off.
+   stores (README "Find"), z = 3, every new scan as the example: it rescues seed 0's tripod stand behind a jug (named
+   hand plane at 0.56: 0.0 -> 0.9) and a seed 1 tile box (named L bracket at 0.30: 0.0 -> 1.0), but also moves two
+   rightly named seed 1 views (funnel at 0.61, tripod stand at 0.62: 1.0 -> 0.0), so it stays off.  The prototype
+   that ranks is then the overruling one (``KnownRoute.cluster``, matches' ``prototype``); ``named`` keeps the label
+   decision's, ``example_score`` and ``agree`` stay its.
 
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
