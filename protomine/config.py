@@ -39,6 +39,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "volume.radial_margin": (1.0, 3.0),
     "volume.height_margin": (1.0, 3.0),
     "volume.unread_min_surface": (0.0, 1.0),
+    "volume.plane_band": (0.0, 10.0),
     "scenes.tumbled_fraction": (0.0, 1.0),
     "mine.clusters": (0, 100000),
     "mine.max_clusters": (1, 100000),

@@ -85,6 +85,7 @@ class SceneObjects:
     plane: PlaneFit
     frames: list[FrameData]
     proposals: list[Proposal]
+    cut_m: float = 0.0   # the height above the plane at or below which no reading is an object's (:func:`object_cut`)
     _held: dict = field(default_factory=dict, repr=False, compare=False)
 
     def views(self, p: Proposal, frame_ids: list[str] | None = None, *, others: bool = False) -> list[View]:
@@ -99,7 +100,7 @@ class SceneObjects:
                     theirs = self.held(fd).copy()
                     theirs[p.pixels[fd.id]] -= 1
                     theirs = theirs > 0
-                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying, theirs))
+                out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying, theirs, self.cut_m))
         return out
 
     def held(self, fd: FrameData) -> np.ndarray:
@@ -507,8 +508,14 @@ def outlier_sigma(cfg: dict, n_frames: int) -> float:
     return float(cfg["ingest"].get("footprint_outlier_sigma", 0.0)) if n_frames > 1 else 0.0
 
 
+def object_cut(plane: PlaneFit, cfg: dict) -> float:
+    """The height (m) above the plane at or below which no reading is given to an object, with masks or without:
+    half the :func:`above_plane_margin` (the plane's own noise, or the configured margin)."""
+    return 0.5 * above_plane_margin(plane, cfg)
+
+
 def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
-    above = 0.5 * above_plane_margin(plane, cfg)
+    above = object_cut(plane, cfg)
     per_id: dict[int, dict[str, np.ndarray]] = {}
     pts_id: dict[int, list[np.ndarray]] = {}
     for fd in frames:
@@ -661,7 +668,7 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
             labels[new[(near != own) & alike]] = -1
         # like a mask's pixels: readings from half the grouping margin up (the band under it only carried
         # the growth across a base's low rim; lower readings are the table's as much as the object's)
-        labels[h <= 0.5 * above_plane_margin(plane, cfg)] = -1
+        labels[h <= object_cut(plane, cfg)] = -1
         for i, p in enumerate(props):
             pix = np.flatnonzero(labels == i)
             if len(pix):
@@ -917,4 +924,4 @@ def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids
         props = _mask_proposals(cap, frames, plane, cfg)
     else:
         props = _geometry_proposals(cap, frames, plane, cfg)
-    return SceneObjects(cap, plane, frames, props)
+    return SceneObjects(cap, plane, frames, props, object_cut(plane, cfg))

@@ -21,6 +21,11 @@ Channels (``CHANNELS``), per cell, fused over the frames that observed it:
             surface is not evidence about this object)
             With ``others_free`` a cell at a reading another object holds counts as free instead (the
             neighbour, not this object, fills it: what the object standing alone would show there)
+            With ``plane_band`` > 0 a frame counts for less than one at a cell in the band just above the
+            support plane that reads empty (seen, not free, none of the object's points): the ingest gives no
+            reading at or under its cut height to an object, so a part lying flush with the plane and the bare
+            plane read alike there (:func:`band_discount`; the band is ``plane_band`` x that cut, which the
+            plane fit's own noise sets: ``ingest.proposals.object_cut``)
   red, green, blue   mean colour of the points splatted into the cell, in [0, 1]
 A cell behind a surface (occluded) or at a pixel with no depth reading is not observed in that frame, so
 "unseen" is never confused with "empty": a projector shadow or a dropout leaves its cells unobserved.  A cell
@@ -61,6 +66,7 @@ class Grid:
     unread_min_surface: float = 0.0
     others_unseen: bool = False
     others_free: bool = False
+    plane_band: float = 0.0
 
     @classmethod
     def from_config(cls, cfg: dict) -> "Grid":
@@ -87,6 +93,9 @@ class View:
     others: (H * W,) bool, the pixels whose readings other objects of the frame hold (their masks or proposals),
     when the caller has them; with ``Grid.others_unseen`` a cell at such a reading is not observed, with
     ``Grid.others_free`` it is free.
+    cut_m: the height (m) above the support plane at or below which none of this frame's readings is the object's
+    (``ingest.proposals.object_cut``, from the plane fit's own noise); with ``Grid.plane_band`` > 0 the cells in the
+    band up to ``plane_band`` x cut_m that read empty count less (:func:`band_discount`).
     """
     depth: np.ndarray
     rgb: np.ndarray
@@ -95,6 +104,7 @@ class View:
     pixels: np.ndarray
     flying: np.ndarray | None = None
     others: np.ndarray | None = None
+    cut_m: float = 0.0
 
 
 @dataclass
@@ -246,7 +256,7 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
     points, whose fixed cost, paid once for a frame's objects instead of once each, was most of it)."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    states, reads = [], []
+    states, reads, bands = [], [], []
     for views, frame in objects:
         basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
         centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
@@ -254,6 +264,7 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
         margin = grid.carve_margin_cells * cell
         for v in views:
             reads.append((len(states), frame, basis) + _read_view(v, centres, margin, frame, grid))
+            bands.append(band_fractions(grid, frame, grid.plane_band * v.cut_m) if grid.plane_band > 0 else None)
         states.append(frame)
     if not reads:
         return [np.zeros((len(CHANNELS), R, A, H), np.float32) for _ in objects]
@@ -272,6 +283,8 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
     seen |= hit & ((d > 0) | (surf >= grid.unread_min_surface))
     free &= sp[0] <= 0.5 * grid.surface_points_per_cell  # a cell with object points is not free
     k = np.array([rd[0] for rd in reads])
+    if grid.plane_band > 0:   # ``plane_band``: a cell in the band that reads empty (seen, not free, no point) counts less
+        seen = band_discount(seen, free, hit, np.stack([np.zeros(n_cells) if b is None else b for b in bands]))
     if np.array_equal(k, np.arange(len(objects))):   # one view each (single-view labelling): the sums are the
         obs, surf_sum, free_sum = seen.astype(np.float64), surf * seen, free.astype(np.float64)   # terms (0 + x = x)
         col, colw = sp[1:], sp[0]
@@ -285,6 +298,7 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
             free_sum[o] += free[i]
             col[:, o] += sp[1:, i]
             colw[o] += sp[0, i]
+    # the mean over the observing views; with ``plane_band`` a count below one sums empty readings only (0 / 1 = 0)
     n = np.maximum(obs, 1.0)
     out = np.zeros((len(objects), len(CHANNELS), n_cells))
     out[:, 0] = surf_sum / n
@@ -292,6 +306,24 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
     out[:, 2] = obs
     out[:, 3:6] = (col / np.maximum(colw, 1e-9)).transpose(1, 0, 2)
     return list(out.reshape(len(objects), len(CHANNELS), R, A, H).astype(np.float32))
+
+
+def band_fractions(grid: Grid, frame: ObjectFrame, band_m: float) -> np.ndarray:
+    """(R A H,) the share of each cell's height extent [k, k + 1) z_max / H that lies below ``band_m`` metres above
+    the support plane (the object frame's base): 1 for a cell wholly in the band, 0 above it."""
+    R, A, H = grid.shape
+    dz = grid.height_margin * frame.height / H
+    q = np.clip(band_m / dz - np.arange(H), 0.0, 1.0)
+    return np.tile(q, R * A)
+
+
+def band_discount(seen: np.ndarray, free: np.ndarray, hit: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """Observation weights (views, n_cells) of ``[volume] plane_band``: 1 where seen, times 1 - q where the cell reads
+    empty (seen, not free, none of the object's points: ``hit`` False), q (views, n_cells) the share of the cell in the
+    band (:func:`band_fractions`).  Under the ingest's cut a part of the object gives no reading, so "seen, nothing
+    here" there is what a flush part and the bare plane both show; a free cell (the ray went on past it) and a cell
+    with the object's points keep their weight."""
+    return seen * (1.0 - q * (seen & ~free & ~hit))
 
 
 def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, grid: Grid) -> tuple[np.ndarray, ...]:
