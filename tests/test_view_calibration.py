@@ -156,3 +156,99 @@ def test_mining_with_the_view_calibration_fits_it_from_the_stores_cameras_and_la
     assert np.all((s >= 0) & (s <= 1))
     flagged = float(np.mean(s < m.unknown_cut))
     assert flagged <= 0.5, flagged
+
+
+def test_fisher_combination_of_three_matches_scipy():
+    """``openset.fisher_combine_many`` against scipy.stats.combine_pvalues (method "fisher": the chi-squared tail of
+    -2 sum ln p_i with 2m degrees of freedom); with two it is ``fisher_combine``."""
+    from protomine.mine.openset import fisher_combine_many
+    rng = np.random.default_rng(5)
+    a, b, c = rng.uniform(1e-6, 1, (3, 300))
+    ref = np.array([stats.combine_pvalues([x, y, z], method="fisher")[1] for x, y, z in zip(a, b, c)])
+    assert np.allclose(fisher_combine_many(a, b, c), ref, rtol=1e-9, atol=1e-12)
+    assert np.allclose(fisher_combine_many(a, b), fisher_combine(a, b), rtol=1e-12, atol=0)
+    assert fisher_combine_many(0.5, 0.0, 0.5) == 0.0 and np.isclose(fisher_combine_many(1.0, 1.0, 1.0), 1.0)
+    assert np.all(np.diff(fisher_combine_many(0.3, 0.4, np.linspace(0.01, 1, 50))) > 0)
+
+
+def test_view_ratio_calibration_with_unseen_shares_is_the_three_way_fisher_cut():
+    """``[mine] view_normalise_unseen``: the held-out views' unseen shares at their nearest prototype are kept sorted,
+    and the cut is the split-conformal cut (``conformal_cut``) of Fisher's combination of three, written out here: the
+    calibrated score, the ratio's and the share's leave-one-out p-values, (#{j: x_j >= x_i}) / m counting the view
+    itself (Vovk, Gammerman & Shafer 2005).  Fresh views drawn the same way are flagged about alpha (as above)."""
+    from protomine.mine.openset import best_second_ratio, conformal_cut, ratio_pvalue
+
+    def draw(rng, n):
+        own = rng.integers(0, 3, n)
+        D = np.exp(rng.normal(-3.0, 0.3, (n, 3)))
+        D[np.arange(n), own] = D.min(axis=1) * np.exp(-np.abs(rng.normal(0.3, 0.3, n)))
+        return D, D[np.arange(n), own], own, rng.random(n) < 0.7, rng.beta(1.0, 8.0, (n, 3))
+
+    def loo(x):
+        return np.array([np.mean(x >= v) for v in x])
+    rates = []
+    for seed in range(10):
+        D, d, own, up, U = draw(np.random.default_rng(seed), 450)
+        fields, _ = view_calibrated_fields(d, np.ones(len(d)), own, up, 3, [(0.0, 1.0)] * 3, 0.05)
+        attrs = view_ratio_calibration(D, d, own, up, fields, 0.05, unseen=U)
+        j = np.arange(len(d))
+        s = Library(fields, {}, {}).score(d, own, single_view=True, upright=up, view_normalised=True)
+        r, u = best_second_ratio(D)[j, own], U[j, own]        # own is the nearest by construction
+        assert np.array_equal(attrs["unknown_view_unseen"], np.sort(u))
+        x = s * loo(r) * loo(u)
+        fisher3 = x * (1 - np.log(x) + np.log(x) ** 2 / 2)
+        assert np.isclose(attrs["unknown_view_ratio_cut"], conformal_cut(fisher3, 0.05), rtol=1e-12)
+        D2, d2, own2, up2, U2 = draw(np.random.default_rng(100 + seed), 2000)
+        j2 = np.arange(len(d2))
+        s2 = Library(fields, {}, {}).score(d2, own2, single_view=True, upright=up2, view_normalised=True)
+        x2 = (s2 * ratio_pvalue(attrs["unknown_view_ratios"], best_second_ratio(D2)[j2, own2])
+              * ratio_pvalue(attrs["unknown_view_unseen"], U2[j2, own2]))
+        v2 = x2 * (1 - np.log(x2) + np.log(x2) ** 2 / 2)
+        rates.append(float(np.mean(v2 < attrs["unknown_view_ratio_cut"])))
+    assert 0.035 <= np.mean(rates) <= 0.07, rates
+
+
+def test_mining_with_the_unseen_share_keeps_its_calibration_and_labels_by_three(tiny_world, tmp_path):
+    """End to end with ``[mine] view_normalise_unseen`` on: the library keeps the held-out views' sorted shares, the
+    matcher returns each view's share in [0, 1] and scores by the three-way combination, written out here from the
+    matcher's own parts (the two-way score with the key off, the share's conformal p-value among the library's);
+    the same references as the test above (17 of 18 held-out views to their own cluster, at most half flagged)."""
+    from protomine.config import load_config
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.openset import fisher_combine_many, ratio_pvalue
+    from protomine.mine.pipeline import mine_store
+    cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True,
+                                                      "view_normalise_unseen": True}})
+    lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    u = np.asarray(lib.attrs["unknown_view_unseen"])
+    assert len(u) == len(lib.attrs["unknown_view_ratios"]) and np.all(np.diff(u) >= 0) and u.min() >= 0 and u.max() <= 1
+    st = open_store(tiny_world["store"])
+    rows = np.arange(len(st.single_object))
+    views, cams = st.read_single_views(rows), np.asarray(st.single_camera)
+    m = make_matcher(lib, cfg)
+    assert m.view_unseen is not None
+    got = m.match(views, cams)
+    own = np.asarray(lib.members["cluster"])[np.asarray(st.single_object)]
+    assert np.mean(got["best"] == own) >= 0.85
+    share = got["unseen_share"]
+    assert np.all((share >= 0) & (share <= 1))
+    # the two-way score (the same library without its shares: scored as with the key off) joined by hand with the
+    # share's p-value
+    off = make_matcher(Library(lib.prototypes, lib.members, {k: v for k, v in lib.attrs.items()
+                                                             if k != "unknown_view_unseen"}, lib.path), cfg)
+    assert off.view_unseen is None
+    two = off.match(views, cams)["score"]
+    # fisher_combine(s, p) = x (1 - ln x) with x = s p; recover the product s p from it, then join the third
+    x = np.empty_like(two)
+    for idx, v in np.ndenumerate(two):
+        lo, hi = 0.0, 1.0
+        for _ in range(200):   # bisection: x (1 - ln x) rises from 0 to 1 on (0, 1]
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if mid * (1 - np.log(mid)) < v else (lo, mid)
+        x[idx] = 0.5 * (lo + hi) if v > 0 else 0.0
+    q = ratio_pvalue(u, share)
+    want = fisher_combine_many(x, np.ones_like(x), q)
+    assert np.allclose(got["score"], want, atol=1e-6)
+    s = got["score"][rows, own]
+    assert float(np.mean(s < m.unknown_cut)) <= 0.5

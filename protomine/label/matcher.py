@@ -44,7 +44,9 @@ A library mined with ``[mine] view_normalise_calibrate`` (fields ``single_view_m
 calibration, fitted on the held-out views with their cameras (``pipeline.view_calibration``), and flags by
 ``unknown_view_cut``; with ``[mine] view_normalise_ratio`` (``unknown_view_ratios``, ``unknown_view_ratio_cut``) that
 score is joined with the conformal p-value of the best/second-best decision-distance ratio by Fisher's combination
-(``openset.fisher_combine``) and flagged by ``unknown_view_ratio_cut``.  ``match`` also returns ``scored_distance``
+(``openset.fisher_combine``) and flagged by ``unknown_view_ratio_cut``; with ``[mine] view_normalise_unseen`` (attribute
+``unknown_view_unseen``) the conformal p-value of the view's unseen share (``mine.unseen``) joins them (Fisher's
+combination of three, ``openset.fisher_combine_many``), and ``match`` returns ``unseen_share`` (NaN where not computed).  ``match`` also returns ``scored_distance``
 (the distance the pose search's calibration scores) and ``view_distance`` (NaN where none) for that calibration.
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
@@ -70,7 +72,7 @@ from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import best_second_ratio, fisher_combine, library_cut, ratio_pvalue, rule_scores
+from ..mine.openset import best_second_ratio, fisher_combine, fisher_combine_many, library_cut, ratio_pvalue, rule_scores
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
@@ -129,6 +131,7 @@ class Matcher:
     chunk_size: int = 512
     symmetric_top: int = 0
     unseen: float = 0.0
+    unseen_score: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -137,6 +140,7 @@ class Matcher:
     tilt_ratios: np.ndarray | None = field(init=False)
     normaliser: ViewNormaliser | None = field(init=False)
     view_ratios: np.ndarray | None = field(init=False)
+    view_unseen: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -144,6 +148,9 @@ class Matcher:
         vr = self.library.attrs.get("unknown_view_ratios")
         self.view_ratios = (np.asarray(vr, np.float64) if self.view_calibrated and vr is not None
                             and "unknown_view_ratio_cut" in self.library.attrs else None)
+        vu = self.library.attrs.get("unknown_view_unseen")
+        self.view_unseen = (np.asarray(vu, np.float64) if self.view_ratios is not None and self.unseen_score
+                            and vu is not None else None)
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -212,7 +219,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
-                    "scored_distance": z, "view_distance": z,
+                    "scored_distance": z, "view_distance": z, "unseen_share": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
@@ -248,8 +255,11 @@ class Matcher:
             if self.view_score and not self.view_calibrated:  # ``[mine] view_normalise_score``: the better of the two
                 Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
                 S = np.where(np.isfinite(Dv), np.maximum(S, Sv), S)
-        if self.unseen > 0:  # ``[mine] unseen_charge``: the share of the view's surface the posed prototype has not seen
-            charge = self.unseen * unseen_shares(self.V, self.search.bank, X, W, up, raw, fit_scale, upright)
+        share = np.full(D.shape, np.nan)
+        if self.unseen > 0 or self.unseen_score:  # the share of the view's surface the posed prototype has not seen
+            share = unseen_shares(self.V, self.search.bank, X, W, up, raw, fit_scale, upright)
+        if self.unseen > 0:  # ``[mine] unseen_charge``
+            charge = self.unseen * share
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
@@ -260,7 +270,11 @@ class Matcher:
             S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
                 r = decided_ratios(D, Dq)
-                S = fisher_combine(S, np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0))
+                pr = np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0)
+                if self.view_unseen is None:
+                    S = fisher_combine(S, pr)
+                else:  # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
+                    S = fisher_combine_many(S, pr, ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)))
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
@@ -275,7 +289,7 @@ class Matcher:
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face, "upright": upright,
-                "scored_distance": Dr, "view_distance": Dv,
+                "scored_distance": Dr, "view_distance": Dv, "unseen_share": share,
                 "rotation": rotation, "best": best}
 
 
@@ -353,7 +367,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
                  view_cut_decide=float(m.get("view_normalise_cut_decide", 0.0)),
-                 symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0))))
+                 symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
+                 unseen_score=bool(weighted and m.get("view_normalise_unseen", False))))
 
 
 @dataclass

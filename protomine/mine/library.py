@@ -36,8 +36,9 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  calibration of the lesser of the scored and the view-normalised distance (``[mine]
                  view_normalise_calibrate``, ``pipeline.view_calibration``), read with the attributes
                  unknown_view_cut (and, with ``[mine] view_normalise_ratio``, unknown_view_ratios, the sorted
-                 best/second distance ratios of the held-out views, and unknown_view_ratio_cut); a library without
-                 them scores as before
+                 best/second distance ratios of the held-out views, and unknown_view_ratio_cut; with ``[mine]
+                 view_normalise_unseen`` also unknown_view_unseen, the sorted unseen shares of ``mine.unseen``); a
+                 library without them scores as before
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion
                  [qx, qy, qz, qw] of R with x_world = R x_prototype + t (capture world frame), modulo the

@@ -22,7 +22,8 @@ import numpy as np
 
 from ..errors import InputError
 
-__all__ = ["conformal_rank", "conformal_cut", "library_cut", "ATTRS", "fisher_combine"]
+__all__ = ["conformal_rank", "conformal_cut", "library_cut", "ATTRS", "fisher_combine", "fisher_combine_many",
+           "loo_ratio_pvalues", "ratio_pvalue"]
 
 ATTRS = ("unknown_alpha", "unknown_cut", "unknown_calibration_views")
 
@@ -158,3 +159,22 @@ def fisher_combine(s, p) -> np.ndarray:
     with np.errstate(divide="ignore", invalid="ignore"):
         out = x * (1.0 - np.log(np.where(x > 0, x, 1.0)))
     return np.where(x > 0, np.minimum(out, 1.0), 0.0)
+
+
+def fisher_combine_many(*ps) -> np.ndarray:
+    """Fisher's combination of m tail probabilities (broadcast together): P(chi2_2m >= -2 ln x), x = prod p_i, which is
+    x sum_{i < m} (-ln x)^i / i! (the chi-squared tail of even degrees of freedom as a Poisson sum; Fisher 1925, sec.
+    21.1); in [0, 1], 0 where any is 0.  With two it is :func:`fisher_combine`.  Used by ``[mine] view_normalise_unseen``
+    to join the calibrated score, the ratio's p-value and the unseen share's p-value."""
+    if not ps:
+        raise ValueError("expected at least one tail probability")
+    x = np.ones(np.broadcast(*[np.asarray(p) for p in ps]).shape) if len(ps) > 1 else np.ones(np.shape(ps[0]))
+    for p in ps:
+        x = x * np.asarray(p, np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t = -np.log(np.where(x > 0, x, 1.0))
+    total, term = np.zeros_like(t), np.ones_like(t)
+    for i in range(len(ps)):
+        total = total + term
+        term = term * t / (i + 1)
+    return np.where(x > 0, np.minimum(x * total, 1.0), 0.0)

@@ -444,7 +444,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
         return None
     rows, own, own_d, own_up, cams = rows[has], own[has], own_d[has], own_up[has], cams[has]
     factor = np.ones(len(rows))
-    decide = []
+    decide, shares = [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
     views = [store.read_single_views(rows[sl]) for sl in slices]
     # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
@@ -470,10 +470,13 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
             Dd = np.array(m["distance"], np.float64)
             Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
+            shares.append(m["unseen_share"])
             b.advance(len(j))
     fields, attrs = view_calibrated_fields(own_d, factor, own, own_up, lib.n_clusters, fallback, alpha)
     if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
-        attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha))
+        unseen = bool(lib.config["mine"].get("view_normalise_unseen", False))
+        attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha,
+                                            unseen=np.concatenate(shares) if unseen else None))
     return fields, attrs
 
 
@@ -485,13 +488,17 @@ def face_kind_scores(d: np.ndarray, own: np.ndarray, own_up: np.ndarray, mu: np.
 
 
 def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
-                           alpha: float) -> dict:
+                           alpha: float, unseen: np.ndarray | None = None) -> dict:
     """``[mine] view_normalise_ratio``: the held-out views' ratios of their best to their second-best decision distance
     (``openset.best_second_ratio`` of D (Q, K), at the nearest prototype) and the split-conformal cut on the Fisher
     combination (``openset.fisher_combine``) of each view's calibrated score (of d (Q,) at its own prototype) and its
     ratio's p-value among the other views' (``openset.loo_ratio_pvalues``).  Returns {"unknown_view_ratios" (sorted),
-    "unknown_view_ratio_cut"}."""
-    from .openset import best_second_ratio, fisher_combine, loo_ratio_pvalues
+    "unknown_view_ratio_cut"}.
+    ``unseen`` (Q, K) (``[mine] view_normalise_unseen``; None: off): each view's share of its surface cells the posed
+    prototype has not observed (``mine.unseen``), as the matcher gives it; at the nearest prototype, its leave-one-out
+    p-value among the other views' (larger shares less conforming) joins the two by Fisher's combination of three
+    (``openset.fisher_combine_many``), and the sorted shares are returned too ("unknown_view_unseen")."""
+    from .openset import best_second_ratio, fisher_combine, fisher_combine_many, loo_ratio_pvalues
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
     b = np.argmin(D[ok], axis=1)
@@ -500,8 +507,13 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     k = np.asarray(own)[ok]
     s = face_kind_scores(np.asarray(d)[ok], k, up, fields["single_view_mu"], fields["single_view_sigma"],
                          fields["single_view_tilt_mu"], fields["single_view_tilt_sigma"])
-    value = fisher_combine(s, loo_ratio_pvalues(r))
-    return {"unknown_view_ratios": np.sort(r), "unknown_view_ratio_cut": conformal_cut(value, alpha)}
+    if unseen is None:
+        value = fisher_combine(s, loo_ratio_pvalues(r))
+        return {"unknown_view_ratios": np.sort(r), "unknown_view_ratio_cut": conformal_cut(value, alpha)}
+    u = np.nan_to_num(np.asarray(unseen, np.float64)[ok][np.arange(len(b)), b], nan=1.0)
+    value = fisher_combine_many(s, loo_ratio_pvalues(r), loo_ratio_pvalues(u))
+    return {"unknown_view_ratios": np.sort(r), "unknown_view_unseen": np.sort(u),
+            "unknown_view_ratio_cut": conformal_cut(value, alpha)}
 
 
 def view_calibrated_fields(own_d: np.ndarray, factor: np.ndarray, own: np.ndarray, own_up: np.ndarray, K: int,

@@ -23,6 +23,9 @@ demo are mostly 0.01-0.05).  The score's distance (its calibration) is not charg
 views through the same matcher, so it sees them too).  Measured (c = 0.01, stores re-mined), accuracy / AUROC: seed 0
 0.859 / 0.953 -> 0.875 / 0.948, seed 1 0.891 / 0.920 -> 0.899 / 0.932, upright 0.954 / 0.981 -> 0.962 / 0.966: off by
 default (README "Score").
+
+With ``[mine] view_normalise_unseen`` the share at each prototype also enters the label score, as its conformal p-value
+among the held-out views' shares at their nearest prototype (``pipeline.view_ratio_calibration``; off by default).
 """
 from __future__ import annotations
 
