@@ -818,39 +818,37 @@ def _face_assign(source: Source, res: _Result, *, scales: tuple[float, ...], chu
     bank = make_bank(res.P, res.V, scales, grid, res.aspect, grid.refine_margin)
     upright = PoseBank(res.P, res.V, scales)
     aspect = _source_aspect(source)
-    D = np.full((N, K), np.inf)
-    Du = np.full((N, K), np.inf)
-    best_copy = np.zeros((N, K), np.int64)
-    copies: dict[int, tuple] = {}
+    labels = np.asarray(res.labels, np.int64).copy()
+    turned, pre, aspect_t = {}, None, aspect.copy()
     for i0, i1 in _chunks(N, chunk_size):
         x, w = source.read(i0, i1)
         x, w = np.asarray(x, np.float32), np.asarray(w, np.float32)
         d = np.asarray(bank.match(x, w).D, np.float64)
-        D[i0:i1] = np.where(np.isfinite(d), d, np.inf)
-        for j, got in enumerate(pooled(lambda j: _turned_copies(x[j], w[j], float(aspect[i0 + j]), grid),
-                                       list(range(i1 - i0)))):
-            if got is None:
-                continue
-            gs, pc, vc = got
-            du = np.asarray(upright.match(pc, vc).D, np.float64)
-            du = np.where(np.isfinite(du), du, np.inf)
-            Du[i0 + j], best_copy[i0 + j] = du.min(axis=0), du.argmin(axis=0)
-            copies[i0 + j] = (gs, pc, vc)
-    both = np.minimum(D, Du)
-    labels = np.where(np.isfinite(both).any(axis=1), np.argmin(both, axis=1), res.labels)
-    r = np.arange(N)
-    turn = np.flatnonzero(Du[r, labels] < D[r, labels])
-    if not turn.size:
+        d = np.where(np.isfinite(d), d, np.inf)
+        # each object's copies one at a time (ordered_map holds a few): only the one it is turned to is kept
+        for j, got in enumerate(ordered_map(lambda j: _turned_copies(x[j], w[j], float(aspect[i0 + j]), grid),
+                                            list(range(i1 - i0)))):
+            i = i0 + j
+            du = np.full(K, np.inf)
+            if got is not None:
+                gs, pc, vc = got
+                m = np.asarray(upright.match(pc, vc).D, np.float64)
+                m = np.where(np.isfinite(m), m, np.inf)
+                du, b = m.min(axis=0), m.argmin(axis=0)
+            both = np.minimum(d[j], du)
+            if not np.isfinite(both).any():
+                continue  # matches nothing: the fit's label stands
+            labels[i] = k = int(np.argmin(both))
+            if du[k] < d[j, k]:
+                c = int(b[k])
+                turned[i] = (pc[c].copy(), vc[c].copy())
+                aspect_t[i] = gs[c].z_max / gs[c].rho_max
+                if pre is None:
+                    pre = np.broadcast_to(np.eye(3), (N, 3, 3)).copy()
+                pre[i] = gs[c].M
+    if pre is None:
         return labels, source, None
-    pre = np.broadcast_to(np.eye(3), (N, 3, 3)).copy()
-    turned, aspect = {}, aspect.copy()
-    for i in turn:
-        gs, pc, vc = copies[int(i)]
-        b = int(best_copy[i, labels[i]])
-        turned[int(i)] = (pc[b], vc[b])
-        aspect[i] = gs[b].z_max / gs[b].rho_max
-        pre[i] = gs[b].M
-    return labels, _TurnedSource(source, turned, aspect), pre
+    return labels, _TurnedSource(source, turned, aspect_t), pre
 
 
 def _source_aspect(source: Source) -> np.ndarray:
