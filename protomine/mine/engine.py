@@ -664,14 +664,15 @@ HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seedi
 
 def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, *, scales, chunk_size: int,
               moments: bool, cache: _SpectraCache | None, grid: TiltGrid | None, aspect: np.ndarray | None,
-              own_faces: bool = True) -> _Result:
+              own_faces: bool = True, turned: tuple | None = None) -> _Result:
     """A fit whose partition is given: labels (N,) held fixed, the prototypes (P, V) (the seeding's, members
     aligned to their medoid) updated ``HELD_UPDATES`` times from the members aligned to them (a Lloyd update
     without the assignment), then the final pass of :func:`_lloyd` with the labels still fixed.  With ``own_faces``
     and a tilt ``grid``, after the first assignment the members far from their prototype that fit it better turned
     onto one of their own resting faces are replaced by that copy for the rest of the fit (:func:`_own_faces`; the
     first update is made again): they are averaged in on the right face, their pose (``_Result.pre``) and face are
-    reported through it.
+    reported through it.  ``turned`` (source, pre), as :func:`_own_faces` returns them: the members to fit turned are
+    given (:func:`_face_assign`), and no other is turned.
 
     Why (``seed_check``): on small stores of touching objects, half tumbled (tools family, 43-46 objects, 8
     classes), the seeding's k-medoids partition of the stable-face matrix was purer than the pose-aware fit
@@ -682,11 +683,11 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     K = P.shape[0]
     ts = None if grid is None else TiltState(grid, aspect)
     labels = np.asarray(labels, np.int64)
-    src, pre = source, None
+    src, pre = (source, None) if turned is None else turned
     for u in range(HELD_UPDATES):
         _, _, _, d, num, den, count, worst, _ = _assign_pass(src, P, V, scales, chunk_size, True, K, forced=labels,
                                                              cache=cache, tilts=ts)
-        if u == 0 and own_faces and ts is not None:
+        if u == 0 and own_faces and ts is not None and turned is None:
             # objects that fit their held prototype better turned onto one of their own resting faces than by
             # the tilt search over the prototype's copies join it so (their pass is run again)
             src, pre = _own_faces(source, labels, P, V, d, scales, grid, chunk_size)
@@ -729,6 +730,22 @@ OWN_FACE_FACTOR = 3.0  # _own_faces: members this many times their held prototyp
 # 0.777 -> 0.804 / 0.863.  Every member whose own face fits better (no factor): seed 1 AUROC 0.871, accuracy 0.908
 
 
+def _turned_copies(x: np.ndarray, w: np.ndarray, a: float, grid: TiltGrid):
+    """One object x (C, R, A, H), w (R, A, H) of aspect ``a`` turned onto each of its own stable resting faces but the
+    one it lies on (``faces.stable_ups``, the exact directions of the seeding's ``seeding.FaceDistance``), each copy
+    re-normalised by its own footprint and height as the tilt search's copies are (``tilts.copy_geometries``):
+    (geometries, copies (M, C, R, A, H), weights (M, R, A, H)), or None when it has no other face."""
+    from .faces import stable_ups
+    from .tilts import _resample_copies, copy_geometries, solid_points
+    ups = stable_ups(x[0], w, a)[1:]  # the first is the face it lies on
+    if not len(ups):
+        return None
+    gs = copy_geometries(x.shape[1:], a, ups, grid, solid_points(x[0], w, a, grid))
+    pc, vc = _resample_copies(np.broadcast_to(x, (len(gs),) + x.shape), np.broadcast_to(w, (len(gs),) + w.shape), gs,
+                              np.full(len(gs), a))
+    return gs, pc, vc
+
+
 def _own_faces(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, dist: np.ndarray,
                scales: tuple[float, ...], grid: TiltGrid, chunk_size: int) -> tuple[Source, np.ndarray | None]:
     """Members far from their held prototype (``labels`` (N,); their distance ``dist`` (N,) by the tilt search over
@@ -745,8 +762,6 @@ def _own_faces(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray,
     at ~3x its other members' distance (0.023-0.032 against 0.005-0.008), so the held labels averaged them into the
     prototype as they lay, blurring it (and its single-view calibration); turned onto their own face they fit it
     at 0.013 (0.0105 once the prototype is built with them so) and are recorded on that face."""
-    from .faces import stable_ups
-    from .tilts import _resample_copies, copy_geometries, solid_points
     N = len(source)
     med = np.array([np.median(dist[labels == k]) if np.any(labels == k) else np.inf for k in range(len(P))])
     far = dist > OWN_FACE_FACTOR * med[labels]
@@ -763,14 +778,7 @@ def _own_faces(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray,
         x, w = np.asarray(x, np.float32), np.asarray(w, np.float32)
 
         def copies(j: int):
-            a = float(aspect[i0 + j])
-            ups = stable_ups(x[j, 0], w[j], a)[1:]  # the first is the face it lies on
-            if not len(ups):
-                return None
-            gs = copy_geometries(x.shape[2:], a, ups, grid, solid_points(x[j, 0], w[j], a, grid))
-            pc, vc = _resample_copies(np.broadcast_to(x[j], (len(gs),) + x.shape[1:]),
-                                      np.broadcast_to(w[j], (len(gs),) + w.shape[1:]), gs, np.full(len(gs), a))
-            return gs, pc, vc
+            return _turned_copies(x[j], w[j], float(aspect[i0 + j]), grid)
 
         for j, got in zip(rows, pooled(copies, rows.tolist())):
             if got is None:
@@ -789,6 +797,58 @@ def _own_faces(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray,
     if pre is None:
         return source, None
     return _TurnedSource(source, turned, aspect), pre
+
+
+def _face_assign(source: Source, res: _Result, *, scales: tuple[float, ...], chunk_size: int, grid: TiltGrid
+                 ) -> tuple[np.ndarray, Source, np.ndarray | None]:
+    """Each object's prototype by the lesser of two searches against the fit's prototypes ``res.P``, ``res.V``: the
+    tilt search over the prototypes' tilted copies (the fit's own assignment), and the object's own copies turned
+    onto each of its other stable resting faces (:func:`_turned_copies`) against the prototypes as they stand
+    (yaw x scale).  Returns labels (N,) (the fit's where an object matches nothing), the source with every object
+    whose label came from a turned copy replaced by that copy, and each object's rotation onto it, copy frame <-
+    object frame (N, 3, 3), or None when no object is turned (as :func:`_own_faces`).
+
+    Why (``[mine] face_assign``): a prototype is mostly its upright members' mean, so its tilted copy knows little of
+    the faces those members stood on, and an object lying on a face few of its class lie on fits another class's
+    blurred mean copy a little better than its own.  Seen the other way round, turned back upright, it is compared
+    with what its class's members showed.  On the touching demo seed 1 (masks) the fit's 6 misplaced objects were
+    such: 3 of them the only one of their class on their face, 2 one of 2, every one's nearest object on the
+    stable-face matrix of its own class; the lesser distance placed 4 of the 6 right with the fit's prototypes."""
+    N, K = len(source), res.P.shape[0]
+    bank = make_bank(res.P, res.V, scales, grid, res.aspect, grid.refine_margin)
+    upright = PoseBank(res.P, res.V, scales)
+    aspect = _source_aspect(source)
+    labels = np.asarray(res.labels, np.int64).copy()
+    turned, pre, aspect_t = {}, None, aspect.copy()
+    for i0, i1 in _chunks(N, chunk_size):
+        x, w = source.read(i0, i1)
+        x, w = np.asarray(x, np.float32), np.asarray(w, np.float32)
+        d = np.asarray(bank.match(x, w).D, np.float64)
+        d = np.where(np.isfinite(d), d, np.inf)
+        # each object's copies one at a time (ordered_map holds a few): only the one it is turned to is kept
+        for j, got in enumerate(ordered_map(lambda j: _turned_copies(x[j], w[j], float(aspect[i0 + j]), grid),
+                                            list(range(i1 - i0)))):
+            i = i0 + j
+            du = np.full(K, np.inf)
+            if got is not None:
+                gs, pc, vc = got
+                m = np.asarray(upright.match(pc, vc).D, np.float64)
+                m = np.where(np.isfinite(m), m, np.inf)
+                du, b = m.min(axis=0), m.argmin(axis=0)
+            both = np.minimum(d[j], du)
+            if not np.isfinite(both).any():
+                continue  # matches nothing: the fit's label stands
+            labels[i] = k = int(np.argmin(both))
+            if du[k] < d[j, k]:
+                c = int(b[k])
+                turned[i] = (pc[c].copy(), vc[c].copy())
+                aspect_t[i] = gs[c].z_max / gs[c].rho_max
+                if pre is None:
+                    pre = np.broadcast_to(np.eye(3), (N, 3, 3)).copy()
+                pre[i] = gs[c].M
+    if pre is None:
+        return labels, source, None
+    return labels, _TurnedSource(source, turned, aspect_t), pre
 
 
 def _source_aspect(source: Source) -> np.ndarray:
@@ -828,6 +888,9 @@ class PoseKMeans:
         from by their k-medoids cost on the stable-face matrix (``seeding.medoid_cost``, the objective the seeding
         lowered), and the seed partition is kept, its prototypes updated with the labels held fixed, unless the
         fit's cost is lower; the restarts are compared by that cost too (:meth:`_fit_restarts`).
+    face_assign : with tilts, after the fit each object takes the prototype of the lesser distance of the tilt search
+        and of its own copies turned onto its other stable faces against the prototypes as they stand; a partition
+        so moved is held (:meth:`_face_reassign`, ``[mine] face_assign``).
     seed_hold_t : > 0, with ``face_pairs`` and without ``seed_check``: the seed partition is held as ``seed_check``
         holds it only when the fit's partition is significantly worse on the stable-face matrix: the paired t over
         the seeding matrix's objects of their distance to their cluster's medoid, fit minus seed
@@ -844,8 +907,9 @@ class PoseKMeans:
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
-                 seed_hold_t: float = 0.0):
+                 seed_hold_t: float = 0.0, face_assign: bool = False):
         self.n_clusters = n_clusters
+        self.face_assign = face_assign
         self.face_pairs = face_pairs
         self.seed_check = seed_check
         self.seed_hold_t = seed_hold_t
@@ -914,8 +978,22 @@ class PoseKMeans:
                           progress=self.progress, what=f"K={K} passes")
         else:
             best = self._fit_restarts(source, scales, rng)
+        if self.face_assign and self._grid() is not None:
+            best = self._face_reassign(source, best, scales)
         self._finish(best, source, scales)
         return self
+
+    def _face_reassign(self, source: Source, res: _Result, scales: tuple[float, ...]) -> _Result:
+        """``face_assign``: the fit's partition moved to the lesser of the tilt search and the objects turned onto
+        their own faces (:func:`_face_assign`); when that moves any object, the new partition is held as
+        ``seed_check`` holds its seed partition (:func:`_held_fit`, from the fit's prototypes), with the members
+        whose label came from a turned copy averaged in turned.  The fit stands unchanged when none moves."""
+        grid = self._grid()
+        labels, src, pre = _face_assign(source, res, scales=scales, chunk_size=self.chunk_size, grid=grid)
+        if np.array_equal(labels, res.labels) or np.bincount(labels, minlength=self.n_clusters).min() == 0:
+            return res
+        return _held_fit(source, labels, res.P, res.V, scales=scales, chunk_size=self.chunk_size, moments=True,
+                         cache=None, grid=grid, aspect=res.aspect, turned=None if pre is None else (src, pre))
 
     def _fit_restarts(self, source: Source, scales: tuple[float, ...], rng: np.random.Generator) -> _Result:
         N, K = len(source), self.n_clusters

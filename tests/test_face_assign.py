@@ -1,0 +1,94 @@
+"""The fit's partition by the lesser of the tilt search and the object turned onto its own faces (``[mine]
+face_assign``: ``engine._face_assign``, ``PoseKMeans(face_assign=True)``).
+
+References: the definition written out here (the lesser of the two distances, the argmin over prototypes), with the
+turned copies' distances by ``posesearch.pose_distances_naive`` (every shift rolled explicitly); the adjusted Rand
+index of scikit-learn; a box's resting faces are perpendicular (from memory).
+"""
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+from sklearn.metrics import adjusted_rand_score
+
+from protomine.mine.engine import ArraySource, PoseKMeans, _face_assign
+from protomine.mine.faces import stable_ups
+from protomine.mine.posesearch import pose_distances_naive
+from protomine.mine.tilts import _resample_copies, copy_geometries, solid_points, tilt_pose_distances
+
+from box_classes import resting_boxes
+
+A = 36
+
+
+def _boxes(seed: int):
+    # two invented classes (a slab, a box on a post), six objects each on three of their resting faces; the
+    # prototypes are one upright member of each (as a mined prototype is mostly its upright members' mean)
+    X, W, aspect, truth, grid = resting_boxes(np.random.default_rng(seed), 6, A)
+    return X, W, aspect, truth, grid, X[[0, 6]], W[[0, 6]], aspect[[0, 6]]
+
+
+def test_face_assign_is_the_lesser_of_the_two_searches():
+    X, W, aspect, truth, grid, P, V, pa = _boxes(0)
+    D = np.asarray(tilt_pose_distances(X, W, P, V, aspect=pa, scales=(1.0,), grid=grid).D, np.float64)
+    D = np.where(np.isfinite(D), D, np.inf)
+    Du = np.full_like(D, np.inf)
+    for i in range(len(X)):  # each object turned onto each of its stable faces but the one it lies on
+        a = float(aspect[i])
+        ups = stable_ups(X[i, 0], W[i], a)[1:]
+        gs = copy_geometries(X.shape[2:], a, ups, grid, solid_points(X[i, 0], W[i], a, grid))
+        pc, vc = _resample_copies(np.repeat(X[i:i + 1], len(gs), 0), np.repeat(W[i:i + 1], len(gs), 0), gs,
+                                  np.full(len(gs), a))
+        du = np.asarray(pose_distances_naive(pc, vc, P, V, scales=(1.0,)).D, np.float64)
+        Du[i] = np.where(np.isfinite(du), du, np.inf).min(axis=0)
+    want = np.argmin(np.minimum(D, Du), axis=1)
+    res = SimpleNamespace(P=P, V=V, aspect=pa, labels=np.argmin(D, axis=1))
+    labels, src, pre = _face_assign(ArraySource(X, W, aspect), res, scales=(1.0,), chunk_size=5, grid=grid)
+    np.testing.assert_array_equal(labels, want)
+    # the tilt search alone puts the box on a post lying on its sides with the slab; turned back up, they fit theirs
+    assert adjusted_rand_score(truth, np.argmin(D, axis=1)) < 0.5
+    assert adjusted_rand_score(truth, labels) == 1.0
+    # exactly the objects whose label came from a turned copy are replaced, by a proper rotation onto a face a right
+    # angle from the one they lie on, and the copy fits its prototype at the lesser distance
+    r = np.arange(len(X))
+    turned = np.flatnonzero(Du[r, labels] < D[r, labels])
+    moved = np.flatnonzero(~np.all(np.isclose(pre, np.eye(3)), axis=(1, 2)))
+    np.testing.assert_array_equal(moved, turned)
+    xt, wt = src.read(0, len(X))
+    keep = np.setdiff1d(r, turned)
+    np.testing.assert_array_equal(xt[keep], X[keep])
+    for i in turned:
+        assert np.allclose(pre[i] @ pre[i].T, np.eye(3), atol=1e-9) and np.isclose(np.linalg.det(pre[i]), 1.0)
+        assert abs(np.degrees(np.arccos(np.clip(pre[i][2, 2], -1, 1))) - 90.0) < 8.0
+        d = pose_distances_naive(xt[i:i + 1], wt[i:i + 1], P, V, scales=(1.0,)).D[0, labels[i]]
+        np.testing.assert_allclose(d, Du[i, labels[i]], rtol=1e-4)
+
+
+def test_fit_with_face_assign_keeps_each_class_across_its_faces():
+    # started from one upright member of each class, the fit's passes keep the lying boxes on a post with the slab;
+    # with face_assign they join their class, and the partition is held there
+    X, W, aspect, truth, grid, P, V, pa = _boxes(0)
+    common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
+                  init=(P, V, pa))
+    plain = PoseKMeans(**common).fit(ArraySource(X, W, aspect))
+    fa = PoseKMeans(face_assign=True, **common).fit(ArraySource(X, W, aspect))
+    assert adjusted_rand_score(truth, plain.labels_) < 0.5
+    assert adjusted_rand_score(truth, fa.labels_) == 1.0
+    assert np.all(np.isfinite(fa.distance_))
+    # the lying ones are reported on their own face: a right angle from the standing ones' up
+    angle = lambda u, v: np.degrees(np.arccos(np.clip(u @ v, -1.0, 1.0)))  # noqa: E731
+    assert abs(angle(fa.up_[7], fa.up_[6]) - 90.0) < 10.0
+
+
+def test_face_assign_leaves_a_fit_it_does_not_move():
+    # seed 1's boxes: the tilt search already places every object right, so the fit is the same to the bit
+    X, W, aspect, truth, grid, P, V, pa = _boxes(1)
+    common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
+                  init=(P, V, pa))
+    plain = PoseKMeans(**common).fit(ArraySource(X, W, aspect))
+    fa = PoseKMeans(face_assign=True, **common).fit(ArraySource(X, W, aspect))
+    assert adjusted_rand_score(truth, plain.labels_) == 1.0
+    np.testing.assert_array_equal(fa.labels_, plain.labels_)
+    np.testing.assert_array_equal(fa.prototypes_, plain.prototypes_)
+    np.testing.assert_array_equal(fa.distance_, plain.distance_)
