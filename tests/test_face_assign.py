@@ -65,14 +65,20 @@ def test_face_assign_is_the_lesser_of_the_two_searches():
         np.testing.assert_allclose(d, Du[i, labels[i]], rtol=1e-4)
 
 
-def test_fit_with_face_assign_keeps_each_class_across_its_faces():
-    # started from one upright member of each class, the fit's passes keep the lying boxes on a post with the slab;
-    # with face_assign they join their class, and the partition is held there
-    X, W, aspect, truth, grid, P, V, pa = _boxes(0)
+def _fits(seed: int):
+    """The boxes of ``seed`` fitted from one upright member of each class, without and with face_assign."""
+    X, W, aspect, truth, grid, P, V, pa = _boxes(seed)
     common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
                   init=(P, V, pa))
     plain = PoseKMeans(**common).fit(ArraySource(X, W, aspect))
     fa = PoseKMeans(face_assign=True, **common).fit(ArraySource(X, W, aspect))
+    return truth, plain, fa
+
+
+def test_fit_with_face_assign_keeps_each_class_across_its_faces():
+    # started from one upright member of each class, the fit's passes keep the lying boxes on a post with the slab;
+    # with face_assign they join their class, and the partition is held there
+    truth, plain, fa = _fits(0)
     assert adjusted_rand_score(truth, plain.labels_) < 0.5
     assert adjusted_rand_score(truth, fa.labels_) == 1.0
     assert np.all(np.isfinite(fa.distance_))
@@ -83,11 +89,7 @@ def test_fit_with_face_assign_keeps_each_class_across_its_faces():
 
 def test_face_assign_leaves_a_fit_it_does_not_move():
     # seed 1's boxes: the tilt search already places every object right, so the fit is the same to the bit
-    X, W, aspect, truth, grid, P, V, pa = _boxes(1)
-    common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
-                  init=(P, V, pa))
-    plain = PoseKMeans(**common).fit(ArraySource(X, W, aspect))
-    fa = PoseKMeans(face_assign=True, **common).fit(ArraySource(X, W, aspect))
+    truth, plain, fa = _fits(1)
     assert adjusted_rand_score(truth, plain.labels_) == 1.0
     np.testing.assert_array_equal(fa.labels_, plain.labels_)
     np.testing.assert_array_equal(fa.prototypes_, plain.prototypes_)
