@@ -46,8 +46,9 @@ calibration, fitted on the held-out views with their cameras (``pipeline.view_ca
 score is joined with the conformal p-value of the best/second-best decision-distance ratio by Fisher's combination
 (``openset.fisher_combine``) and flagged by ``unknown_view_ratio_cut``; with ``[mine] view_normalise_unseen`` (attribute
 ``unknown_view_unseen``) the conformal p-value of the view's unseen share (``mine.unseen``) joins them (Fisher's
-combination of three, ``openset.fisher_combine_many``), and ``match`` returns ``unseen_share`` (NaN where not computed).  ``match`` also returns ``scored_distance``
-(the distance the pose search's calibration scores) and ``view_distance`` (NaN where none) for that calibration.
+combination of three, ``openset.fisher_combine_many``), and ``match`` returns ``unseen_share`` (NaN where not
+computed).  ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
+``view_distance`` (NaN where none) for that calibration.
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in

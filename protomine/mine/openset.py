@@ -155,10 +155,7 @@ def fisher_combine(s, p) -> np.ndarray:
     """Fisher's combination of two tail probabilities (broadcast together): P(chi2_4 >= -2 ln(s p)) = x (1 - ln x),
     x = s p (Fisher 1925, "Statistical methods for research workers", sec. 21.1); in [0, 1], 0 where either is 0.
     Used by ``[mine] view_normalise_ratio`` to join the calibrated score and the best/second ratio's p-value."""
-    x = np.asarray(s, np.float64) * np.asarray(p, np.float64)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        out = x * (1.0 - np.log(np.where(x > 0, x, 1.0)))
-    return np.where(x > 0, np.minimum(out, 1.0), 0.0)
+    return fisher_combine_many(s, p)
 
 
 def fisher_combine_many(*ps) -> np.ndarray:
@@ -168,7 +165,7 @@ def fisher_combine_many(*ps) -> np.ndarray:
     to join the calibrated score, the ratio's p-value and the unseen share's p-value."""
     if not ps:
         raise ValueError("expected at least one tail probability")
-    x = np.ones(np.broadcast(*[np.asarray(p) for p in ps]).shape) if len(ps) > 1 else np.ones(np.shape(ps[0]))
+    x = np.asarray(1.0)
     for p in ps:
         x = x * np.asarray(p, np.float64)
     with np.errstate(divide="ignore", invalid="ignore"):
