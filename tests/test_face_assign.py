@@ -94,8 +94,8 @@ def test_face_assign_leaves_a_fit_it_does_not_move():
     np.testing.assert_array_equal(fa.distance_, plain.distance_)
 
 
-def test_face_assign_keep_moves_labels_and_keeps_the_fit_prototypes():
-    # [mine] face_assign_keep: the same partition as face_assign, but the fit's prototypes as they stand (no held
+def test_face_assign_updates_0_moves_labels_and_keeps_the_fit_prototypes():
+    # [mine] face_assign_updates = 0: the same partition as face_assign, but the fit's prototypes as they stand (no held
     # update), each object placed at the lesser distance of the two searches, so no object is farther than the plain
     # fit put it (the definition: min over prototypes of min(D, Du) <= min over prototypes of D)
     X, W, aspect, truth, grid, P, V, pa = _boxes(0)
@@ -103,7 +103,7 @@ def test_face_assign_keep_moves_labels_and_keeps_the_fit_prototypes():
                   init=(P, V, pa))
     plain = PoseKMeans(**common).fit(ArraySource(X, W, aspect))
     held = PoseKMeans(face_assign=True, **common).fit(ArraySource(X, W, aspect))
-    keep = PoseKMeans(face_assign=True, face_keep=True, **common).fit(ArraySource(X, W, aspect))
+    keep = PoseKMeans(face_assign=True, face_updates=0, **common).fit(ArraySource(X, W, aspect))
     assert adjusted_rand_score(truth, plain.labels_) < 0.5
     assert adjusted_rand_score(truth, keep.labels_) == 1.0
     np.testing.assert_array_equal(keep.labels_, held.labels_)
