@@ -65,14 +65,14 @@ def test_face_assign_is_the_lesser_of_the_two_searches():
         np.testing.assert_allclose(d, Du[i, labels[i]], rtol=1e-4)
 
 
-def _fits(seed: int):
-    """The boxes of ``seed`` fitted from one upright member of each class, without and with face_assign."""
+def _fits(seed: int, *options: dict):
+    """The boxes of ``seed`` fitted from one upright member of each class: truth, the plain fit, and one fit per
+    ``options`` (PoseKMeans keywords; default: face_assign)."""
     X, W, aspect, truth, grid, P, V, pa = _boxes(seed)
     common = dict(n_clusters=2, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
                   init=(P, V, pa))
-    plain = PoseKMeans(**common).fit(ArraySource(X, W, aspect))
-    fa = PoseKMeans(face_assign=True, **common).fit(ArraySource(X, W, aspect))
-    return truth, plain, fa
+    return (truth,) + tuple(PoseKMeans(**o, **common).fit(ArraySource(X, W, aspect))
+                            for o in ({},) + (options or ({"face_assign": True},)))
 
 
 def test_fit_with_face_assign_keeps_each_class_across_its_faces():
@@ -94,3 +94,19 @@ def test_face_assign_leaves_a_fit_it_does_not_move():
     np.testing.assert_array_equal(fa.labels_, plain.labels_)
     np.testing.assert_array_equal(fa.prototypes_, plain.prototypes_)
     np.testing.assert_array_equal(fa.distance_, plain.distance_)
+
+
+def test_face_assign_updates_0_moves_labels_and_keeps_the_fit_prototypes():
+    # [mine] face_assign_updates = 0: the same partition as face_assign, but the fit's prototypes as they stand (no held
+    # update), each object placed at the lesser distance of the two searches, so no object is farther than the plain
+    # fit put it (the definition: min over prototypes of min(D, Du) <= min over prototypes of D)
+    truth, plain, held, keep = _fits(0, {"face_assign": True}, {"face_assign": True, "face_updates": 0})
+    assert adjusted_rand_score(truth, plain.labels_) < 0.5
+    assert adjusted_rand_score(truth, keep.labels_) == 1.0
+    np.testing.assert_array_equal(keep.labels_, held.labels_)
+    np.testing.assert_array_equal(keep.prototypes_, plain.prototypes_)
+    assert not np.array_equal(held.prototypes_, plain.prototypes_)
+    assert np.all(np.isfinite(keep.distance_))
+    assert np.all(keep.distance_ <= plain.distance_ * (1 + 1e-4) + 1e-9)
+    angle = lambda u, v: np.degrees(np.arccos(np.clip(u @ v, -1.0, 1.0)))  # noqa: E731
+    assert abs(angle(keep.up_[7], keep.up_[6]) - 90.0) < 10.0

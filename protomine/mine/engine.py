@@ -664,7 +664,7 @@ HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seedi
 
 def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, *, scales, chunk_size: int,
               moments: bool, cache: _SpectraCache | None, grid: TiltGrid | None, aspect: np.ndarray | None,
-              own_faces: bool = True, turned: tuple | None = None) -> _Result:
+              own_faces: bool = True, turned: tuple | None = None, updates: int | None = None) -> _Result:
     """A fit whose partition is given: labels (N,) held fixed, the prototypes (P, V) (the seeding's, members
     aligned to their medoid) updated ``HELD_UPDATES`` times from the members aligned to them (a Lloyd update
     without the assignment), then the final pass of :func:`_lloyd` with the labels still fixed.  With ``own_faces``
@@ -672,7 +672,8 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     onto one of their own resting faces are replaced by that copy for the rest of the fit (:func:`_own_faces`; the
     first update is made again): they are averaged in on the right face, their pose (``_Result.pre``) and face are
     reported through it.  ``turned`` (source, pre), as :func:`_own_faces` returns them: the members to fit turned are
-    given (:func:`_face_assign`), and no other is turned.
+    given (:func:`_face_assign`), and no other is turned.  ``updates`` (None: ``HELD_UPDATES``): the number of
+    prototype updates; 0 keeps (P, V) as given and only runs the final pass (``[mine] face_assign_updates``).
 
     Why (``seed_check``): on small stores of touching objects, half tumbled (tools family, 43-46 objects, 8
     classes), the seeding's k-medoids partition of the stable-face matrix was purer than the pose-aware fit
@@ -684,7 +685,8 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     ts = None if grid is None else TiltState(grid, aspect)
     labels = np.asarray(labels, np.int64)
     src, pre = (source, None) if turned is None else turned
-    for u in range(HELD_UPDATES):
+    n_updates = HELD_UPDATES if updates is None else int(updates)
+    for u in range(n_updates):
         _, _, _, d, num, den, count, worst, _ = _assign_pass(src, P, V, scales, chunk_size, True, K, forced=labels,
                                                              cache=cache, tilts=ts)
         if u == 0 and own_faces and ts is not None and turned is None:
@@ -701,7 +703,7 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     labels, yaw, scale, dist, *rest = _assign_pass(src, P, V, scales, chunk_size, moments, 0, moments=moments,
                                                  forced=labels, cache=cache, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(P, V, labels, yaw, scale, dist, cost, HELD_UPDATES, rest[-1] if moments else None,
+    return _Result(P, V, labels, yaw, scale, dist, cost, n_updates, rest[-1] if moments else None,
                    None if ts is None else ts.tilt, None if ts is None else ts.aspect, pre)
 
 
@@ -891,6 +893,9 @@ class PoseKMeans:
     face_assign : with tilts, after the fit each object takes the prototype of the lesser distance of the tilt search
         and of its own copies turned onto its other stable faces against the prototypes as they stand; a partition
         so moved is held (:meth:`_face_reassign`, ``[mine] face_assign``).
+    face_updates : with ``face_assign``, the held fit's prototype updates (:func:`_held_fit`; ``HELD_UPDATES``, 3);
+        0 keeps the fit's prototypes, only the labels and poses move, each object's pose from the search that placed
+        it (``[mine] face_assign_updates``).
     seed_hold_t : > 0, with ``face_pairs`` and without ``seed_check``: the seed partition is held as ``seed_check``
         holds it only when the fit's partition is significantly worse on the stable-face matrix: the paired t over
         the seeding matrix's objects of their distance to their cluster's medoid, fit minus seed
@@ -907,9 +912,11 @@ class PoseKMeans:
                  sample_size: int = 4096, symmetry_factor: float = sym.DEFAULT_FACTOR, symmetry_tol: float = sym.DEFAULT_TOL,
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
-                 seed_hold_t: float = 0.0, face_assign: bool = False):
+                 seed_hold_t: float = 0.0, face_assign: bool = False,
+                 face_updates: int = HELD_UPDATES):
         self.n_clusters = n_clusters
         self.face_assign = face_assign
+        self.face_updates = face_updates
         self.face_pairs = face_pairs
         self.seed_check = seed_check
         self.seed_hold_t = seed_hold_t
@@ -987,13 +994,17 @@ class PoseKMeans:
         """``face_assign``: the fit's partition moved to the lesser of the tilt search and the objects turned onto
         their own faces (:func:`_face_assign`); when that moves any object, the new partition is held as
         ``seed_check`` holds its seed partition (:func:`_held_fit`, from the fit's prototypes), with the members
-        whose label came from a turned copy averaged in turned.  The fit stands unchanged when none moves."""
+        whose label came from a turned copy averaged in turned.  The fit stands unchanged when none moves.  The held
+        fit makes ``face_updates`` prototype updates; with 0 the prototypes stay the fit's: the held fit's final pass
+        only (labels fixed, the turned objects searched as their turned copy), so the poses are those of the search
+        that placed each object."""
         grid = self._grid()
         labels, src, pre = _face_assign(source, res, scales=scales, chunk_size=self.chunk_size, grid=grid)
         if np.array_equal(labels, res.labels) or np.bincount(labels, minlength=self.n_clusters).min() == 0:
             return res
         return _held_fit(source, labels, res.P, res.V, scales=scales, chunk_size=self.chunk_size, moments=True,
-                         cache=None, grid=grid, aspect=res.aspect, turned=None if pre is None else (src, pre))
+                         cache=None, grid=grid, aspect=res.aspect, turned=None if pre is None else (src, pre),
+                         updates=self.face_updates)
 
     def _fit_restarts(self, source: Source, scales: tuple[float, ...], rng: np.random.Generator) -> _Result:
         N, K = len(source), self.n_clusters
