@@ -73,7 +73,7 @@ from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import best_second_ratio, fisher_combine, fisher_combine_many, library_cut, ratio_pvalue, rule_scores
+from ..mine.openset import best_second_ratio, fisher_combine_many, library_cut, ratio_pvalue, rule_scores
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
@@ -272,10 +272,9 @@ class Matcher:
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
                 r = decided_ratios(D, Dq)
                 pr = np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0)
-                if self.view_unseen is None:
-                    S = fisher_combine(S, pr)
-                else:  # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
-                    S = fisher_combine_many(S, pr, ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)))
+                # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
+                pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
+                S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)

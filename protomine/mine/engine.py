@@ -664,7 +664,7 @@ HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seedi
 
 def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, *, scales, chunk_size: int,
               moments: bool, cache: _SpectraCache | None, grid: TiltGrid | None, aspect: np.ndarray | None,
-              own_faces: bool = True, turned: tuple | None = None, updates: int | None = None) -> _Result:
+              own_faces: bool = True, turned: tuple | None = None, updates: int = HELD_UPDATES) -> _Result:
     """A fit whose partition is given: labels (N,) held fixed, the prototypes (P, V) (the seeding's, members
     aligned to their medoid) updated ``HELD_UPDATES`` times from the members aligned to them (a Lloyd update
     without the assignment), then the final pass of :func:`_lloyd` with the labels still fixed.  With ``own_faces``
@@ -672,7 +672,7 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     onto one of their own resting faces are replaced by that copy for the rest of the fit (:func:`_own_faces`; the
     first update is made again): they are averaged in on the right face, their pose (``_Result.pre``) and face are
     reported through it.  ``turned`` (source, pre), as :func:`_own_faces` returns them: the members to fit turned are
-    given (:func:`_face_assign`), and no other is turned.  ``updates`` (None: ``HELD_UPDATES``): the number of
+    given (:func:`_face_assign`), and no other is turned.  ``updates``: the number of
     prototype updates; 0 keeps (P, V) as given and only runs the final pass (``[mine] face_assign_updates``).
 
     Why (``seed_check``): on small stores of touching objects, half tumbled (tools family, 43-46 objects, 8
@@ -685,8 +685,7 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     ts = None if grid is None else TiltState(grid, aspect)
     labels = np.asarray(labels, np.int64)
     src, pre = (source, None) if turned is None else turned
-    n_updates = HELD_UPDATES if updates is None else int(updates)
-    for u in range(n_updates):
+    for u in range(updates):
         _, _, _, d, num, den, count, worst, _ = _assign_pass(src, P, V, scales, chunk_size, True, K, forced=labels,
                                                              cache=cache, tilts=ts)
         if u == 0 and own_faces and ts is not None and turned is None:
@@ -703,7 +702,7 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     labels, yaw, scale, dist, *rest = _assign_pass(src, P, V, scales, chunk_size, moments, 0, moments=moments,
                                                  forced=labels, cache=cache, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(P, V, labels, yaw, scale, dist, cost, n_updates, rest[-1] if moments else None,
+    return _Result(P, V, labels, yaw, scale, dist, cost, updates, rest[-1] if moments else None,
                    None if ts is None else ts.tilt, None if ts is None else ts.aspect, pre)
 
 

@@ -128,7 +128,7 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
                progress: Callable[[str], None] | None = None, executor=None):
     """Fit the clustering; ``executor`` (``protomine.scale.executor``) runs its passes as a map-reduce
     (yaw-only: the tilt search runs in this process)."""
-    from .engine import PoseKMeans
+    from .engine import HELD_UPDATES, PoseKMeans
     cfg = clustering_config(cfg)
     m = cfg["mine"]
     grid = tilt_grid(cfg) if executor is None and not cfg.get("scale", {}).get("batch_size", 0) else None
@@ -143,7 +143,7 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
                   chunk_size=m["chunk_size"], random_state=seed, progress=progress, tilts=grid,
                   face_pairs=bool(m.get("face_pairs", False)), seed_check=bool(m.get("seed_check", False)),
                   seed_hold_t=float(m.get("seed_hold_t", 0.0)), face_assign=bool(m.get("face_assign", False)),
-                  face_updates=int(m.get("face_assign_updates", 3)))
+                  face_updates=int(m.get("face_assign_updates", HELD_UPDATES)))
     if cfg.get("scale", {}).get("batch_size", 0):
         from .minibatch import fit_minibatch  # yaw-only (grid is None in this mode)
         return fit_minibatch(src, cfg, seed, k, max_k=min(m["max_clusters"], len(store) - 1), progress=progress)
@@ -499,7 +499,7 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     prototype has not observed (``mine.unseen``), as the matcher gives it; at the nearest prototype, its leave-one-out
     p-value among the other views' (larger shares less conforming) joins the two by Fisher's combination of three
     (``openset.fisher_combine_many``), and the sorted shares are returned too ("unknown_view_unseen")."""
-    from .openset import best_second_ratio, fisher_combine, fisher_combine_many, loo_ratio_pvalues
+    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
     b = np.argmin(D[ok], axis=1)
@@ -508,13 +508,13 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     k = np.asarray(own)[ok]
     s = face_kind_scores(np.asarray(d)[ok], k, up, fields["single_view_mu"], fields["single_view_sigma"],
                          fields["single_view_tilt_mu"], fields["single_view_tilt_sigma"])
-    if unseen is None:
-        value = fisher_combine(s, loo_ratio_pvalues(r))
-        return {"unknown_view_ratios": np.sort(r), "unknown_view_ratio_cut": conformal_cut(value, alpha)}
-    u = np.nan_to_num(np.asarray(unseen, np.float64)[ok][np.arange(len(b)), b], nan=1.0)
-    value = fisher_combine_many(s, loo_ratio_pvalues(r), loo_ratio_pvalues(u))
-    return {"unknown_view_ratios": np.sort(r), "unknown_view_unseen": np.sort(u),
-            "unknown_view_ratio_cut": conformal_cut(value, alpha)}
+    out = {"unknown_view_ratios": np.sort(r)}
+    pu = ()
+    if unseen is not None:
+        u = np.nan_to_num(np.asarray(unseen, np.float64)[ok][np.arange(len(b)), b], nan=1.0)
+        out["unknown_view_unseen"], pu = np.sort(u), (loo_ratio_pvalues(u),)
+    out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
+    return out
 
 
 def view_calibrated_fields(own_d: np.ndarray, factor: np.ndarray, own: np.ndarray, own_up: np.ndarray, K: int,
