@@ -61,6 +61,7 @@ from ..mine.tilts import TiltGrid
 AGREE_TOP = 10
 AGREE_MIN = 4
 OVERRULE_AGREE_MAX = 1
+CLAIM_MARGIN = 0.9      # ``[mine] find_prototype_fuse``: the objects prototype b claims, margin below this
 
 
 @dataclass
@@ -154,6 +155,18 @@ def _first(key: np.ndarray, ids: np.ndarray, ex: int, top: int) -> np.ndarray:
     return order[order != ex][:top]
 
 
+def fused_key(margin: np.ndarray, one_shot: np.ndarray, power: float, claim: float = CLAIM_MARGIN) -> np.ndarray:
+    """The route's key with the example's own distance (``[mine] find_prototype_fuse`` = power > 0; module docstring,
+    4.): the objects prototype b claims (margin (N,) below ``claim``, one-shot distance (N,) finite) ranked by
+    margin x one_shot ** power, then every other object by its margin, after them (their order kept); inf stays inf."""
+    m = np.asarray(margin, np.float64)
+    d = np.asarray(one_shot, np.float64)
+    claimed = np.isfinite(m) & np.isfinite(d) & (d >= 0) & (m < claim)
+    prod = m * np.where(claimed, d, 1.0) ** power
+    top = float(prod[claimed].max()) if claimed.any() else 0.0
+    return np.where(claimed, prod, np.where(np.isfinite(m), top + 1.0 + m, np.inf))
+
+
 def decide(D: np.ndarray, b: int, s: float, cut: float, one_shot_key: np.ndarray, ids: np.ndarray, ex: int,
            sure: float, weak: float = 0.0, overrule_at: int = 0) -> tuple[int, int, bool, tuple]:
     """(prototype that ranks, agree, taken, profile shares) for example ``ex`` named b with score s: the rules of the
@@ -168,12 +181,14 @@ def decide(D: np.ndarray, b: int, s: float, cut: float, one_shot_key: np.ndarray
 
 
 def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt: np.ndarray, grid: TiltGrid | None,
-                one_shot_key: np.ndarray, sure: float, weak: float = 0.0, overrule_at: int = 0) -> KnownRoute:
+                one_shot_key: np.ndarray, sure: float, weak: float = 0.0, overrule_at: int = 0,
+                one_shot_distance: np.ndarray | None = None, fuse: float = 0.0) -> KnownRoute:
     """The route for example ``ex``: D (N, K), tilt (N, K) every store object's pose search against every prototype;
     ``one_shot_key`` (N,) the one-shot ranking's key.  Taken when the example's label decision b scores >= max(``sure``,
     the unknown cut), or >= max(``weak``, the cut) (``weak`` > 0) with >= ``AGREE_MIN`` objects agreeing.
     ``overrule_at`` > 0 (``[mine] find_overrule``): a taken route sharing at most ``OVERRULE_AGREE_MAX`` with the
-    one-shot ranking ranks by the prototype ``overrule`` picks (module docstring, 3.)."""
+    one-shot ranking ranks by the prototype ``overrule`` picks (module docstring, 3.).  ``fuse`` > 0 (``[mine]
+    find_prototype_fuse``) with ``one_shot_distance`` (N,): the key is ``fused_key`` (module docstring, 4.)."""
     b, s, cut = example_decision(library, store, ex, cfg)
     N = len(store)
     if b < 0:
@@ -183,6 +198,8 @@ def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt
     b, agree, taken, shares = decide(D, b, s, cut, one_shot_key, np.asarray(store.ids).astype(str), ex, sure, weak,
                                      overrule_at)
     key = margin_key(D, b)
+    if taken and fuse > 0 and one_shot_distance is not None:
+        key = fused_key(key, one_shot_distance, fuse)
     d = np.asarray(D[:, b], np.float64)
     single = np.asarray(store.objects.get("n_frames", np.ones(N)))[:N] == 1
     upright = (grid or TiltGrid.identity()).is_upright(np.asarray(tilt[:, b]))
