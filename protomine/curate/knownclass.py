@@ -43,6 +43,17 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    that ranks is then the overruling one (``KnownRoute.cluster``, matches' ``prototype``); ``named`` keeps the label
    decision's, ``example_score`` and ``agree`` stay its.
 
+4. Fusion (``[mine] find_prototype_fuse`` = p > 0; default 0.5).  A prototype's margin ranks a class the library never
+   mined that lies next to b as b's own: on the seed-1 demo store the L-bracket prototype's first 10 by margin hold
+   5 trowels (margins 0.64-0.79, among the L brackets' 0.61-0.85), so every L-bracket example taking the route found
+   0.3.  The example itself tells them apart (its one-shot ranking puts L brackets first: 0.7-0.9).  So a taken
+   route ranks the objects b claims, margin below ``CLAIM_MARGIN``, by margin x d1 ** p, d1 the example's one-shot
+   distance to the object (both ways on the ``find_symmetric`` shortlist, one-way beyond; the product of the two
+   ratio-scale distances, the sum of their logs: CombSUM score fusion, Fox & Shaw, TREC-2 1994), and every other
+   object after them by its margin (``fused_key``).  What b does not claim keeps its place behind, so an example
+   whose own view is poor (a tumbled jug whose one-shot list is mostly tile boxes) cannot pull other classes in
+   front of b's members; it can only reorder what b claims.  Measured in README "Find".
+
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
 ``prototype_score`` are added: the library's calibrated score of d_ib (``Library.score``: single-view calibration for
@@ -72,7 +83,7 @@ class KnownRoute:
     cut: float              # the matcher's unknown cut
     agree: int              # objects in common among the first AGREE_TOP of the key's and the one-shot ranking
     taken: bool
-    key: np.ndarray         # d_ib / min_{j != b} d_ij (inf where unmatched)
+    key: np.ndarray         # d_ib / min_{j != b} d_ij (inf where unmatched); taken with ``[mine] find_prototype_fuse``: fused_key
     distance: np.ndarray    # d_ib
     score: np.ndarray       # the library's calibrated score of d_ib
     named: int = -1         # the label decision's prototype; differs from ``cluster`` when ``[mine] find_overrule``
