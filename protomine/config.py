@@ -71,6 +71,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.find_prototype": (0.0, 1.0),
     "mine.find_prototype_weak": (0.0, 1.0),
     "mine.find_overrule": (0, 10),
+    "mine.find_prototype_fuse": (0.0, 10.0),
     "mine.face_assign_updates": (0, 10),
     "audit.bootstrap": (10, 100000),
     "audit.match_radius_m": (1e-4, 10.0),

@@ -43,6 +43,17 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    that ranks is then the overruling one (``KnownRoute.cluster``, matches' ``prototype``); ``named`` keeps the label
    decision's, ``example_score`` and ``agree`` stay its.
 
+4. Fusion (``[mine] find_prototype_fuse`` = p > 0; default 0.5).  A prototype's margin ranks a class the library never
+   mined that lies next to b as b's own: on the seed-1 demo store the L-bracket prototype's first 10 by margin hold
+   5 trowels (margins 0.64-0.79, among the L brackets' 0.61-0.85), so every L-bracket example taking the route found
+   0.3.  The example itself tells them apart (its one-shot ranking puts L brackets first: 0.7-0.9).  So a taken
+   route ranks the objects b claims, margin below ``CLAIM_MARGIN``, by margin x d1 ** p, d1 the example's one-shot
+   distance to the object (both ways on the ``find_symmetric`` shortlist, one-way beyond; the product of the two
+   ratio-scale distances, the sum of their logs: CombSUM score fusion, Fox & Shaw, TREC-2 1994), and every other
+   object after them by its margin (``fused_key``).  What b does not claim keeps its place behind, so an example
+   whose own view is poor (a tumbled jug whose one-shot list is mostly tile boxes) cannot pull other classes in
+   front of b's members; it can only reorder what b claims.  Measured in README "Find".
+
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
 ``prototype_score`` are added: the library's calibrated score of d_ib (``Library.score``: single-view calibration for
@@ -61,6 +72,7 @@ from ..mine.tilts import TiltGrid
 AGREE_TOP = 10
 AGREE_MIN = 4
 OVERRULE_AGREE_MAX = 1
+CLAIM_MARGIN = 0.9      # ``[mine] find_prototype_fuse``: the objects prototype b claims, margin below this
 
 
 @dataclass
@@ -71,7 +83,7 @@ class KnownRoute:
     cut: float              # the matcher's unknown cut
     agree: int              # objects in common among the first AGREE_TOP of the key's and the one-shot ranking
     taken: bool
-    key: np.ndarray         # d_ib / min_{j != b} d_ij (inf where unmatched)
+    key: np.ndarray         # d_ib / min_{j != b} d_ij (inf where unmatched); taken with ``[mine] find_prototype_fuse``: fused_key
     distance: np.ndarray    # d_ib
     score: np.ndarray       # the library's calibrated score of d_ib
     named: int = -1         # the label decision's prototype; differs from ``cluster`` when ``[mine] find_overrule``
@@ -154,6 +166,18 @@ def _first(key: np.ndarray, ids: np.ndarray, ex: int, top: int) -> np.ndarray:
     return order[order != ex][:top]
 
 
+def fused_key(margin: np.ndarray, one_shot: np.ndarray, power: float, claim: float = CLAIM_MARGIN) -> np.ndarray:
+    """The route's key with the example's own distance (``[mine] find_prototype_fuse`` = power > 0; module docstring,
+    4.): the objects prototype b claims (margin (N,) below ``claim``, one-shot distance (N,) finite) ranked by
+    margin x one_shot ** power, then every other object by its margin, after them (their order kept); inf stays inf."""
+    m = np.asarray(margin, np.float64)
+    d = np.asarray(one_shot, np.float64)
+    claimed = np.isfinite(m) & np.isfinite(d) & (d >= 0) & (m < claim)
+    prod = m * np.where(claimed, d, 1.0) ** power
+    top = float(prod[claimed].max()) if claimed.any() else 0.0
+    return np.where(claimed, prod, np.where(np.isfinite(m), top + 1.0 + m, np.inf))
+
+
 def decide(D: np.ndarray, b: int, s: float, cut: float, one_shot_key: np.ndarray, ids: np.ndarray, ex: int,
            sure: float, weak: float = 0.0, overrule_at: int = 0) -> tuple[int, int, bool, tuple]:
     """(prototype that ranks, agree, taken, profile shares) for example ``ex`` named b with score s: the rules of the
@@ -168,12 +192,14 @@ def decide(D: np.ndarray, b: int, s: float, cut: float, one_shot_key: np.ndarray
 
 
 def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt: np.ndarray, grid: TiltGrid | None,
-                one_shot_key: np.ndarray, sure: float, weak: float = 0.0, overrule_at: int = 0) -> KnownRoute:
+                one_shot_key: np.ndarray, sure: float, weak: float = 0.0, overrule_at: int = 0,
+                one_shot_distance: np.ndarray | None = None, fuse: float = 0.0) -> KnownRoute:
     """The route for example ``ex``: D (N, K), tilt (N, K) every store object's pose search against every prototype;
     ``one_shot_key`` (N,) the one-shot ranking's key.  Taken when the example's label decision b scores >= max(``sure``,
     the unknown cut), or >= max(``weak``, the cut) (``weak`` > 0) with >= ``AGREE_MIN`` objects agreeing.
     ``overrule_at`` > 0 (``[mine] find_overrule``): a taken route sharing at most ``OVERRULE_AGREE_MAX`` with the
-    one-shot ranking ranks by the prototype ``overrule`` picks (module docstring, 3.)."""
+    one-shot ranking ranks by the prototype ``overrule`` picks (module docstring, 3.).  ``fuse`` > 0 (``[mine]
+    find_prototype_fuse``) with ``one_shot_distance`` (N,): the key is ``fused_key`` (module docstring, 4.)."""
     b, s, cut = example_decision(library, store, ex, cfg)
     N = len(store)
     if b < 0:
@@ -183,6 +209,8 @@ def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt
     b, agree, taken, shares = decide(D, b, s, cut, one_shot_key, np.asarray(store.ids).astype(str), ex, sure, weak,
                                      overrule_at)
     key = margin_key(D, b)
+    if taken and fuse > 0 and one_shot_distance is not None:
+        key = fused_key(key, one_shot_distance, fuse)
     d = np.asarray(D[:, b], np.float64)
     single = np.asarray(store.objects.get("n_frames", np.ones(N)))[:N] == 1
     upright = (grid or TiltGrid.identity()).is_upright(np.asarray(tilt[:, b]))

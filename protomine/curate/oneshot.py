@@ -312,8 +312,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         p = library.prototypes
         Dk, _, _, tk = _search_many(src, np.asarray(p["features"], np.float32), np.asarray(p["weights"], np.float32),
                                     np.asarray(p["aspect"], np.float64), scales, grid, chunk, poses=True)
+        # the example's own distance for ``find_prototype_fuse``: both ways on the symmetric shortlist, one-way beyond
+        d1 = D if reverse is None else np.where(np.isfinite(reverse), 0.5 * (D + np.nan_to_num(reverse)), D)
         route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
-                            float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)))
+                            float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)),
+                            d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
                    world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route)
