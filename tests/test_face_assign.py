@@ -130,12 +130,14 @@ def _three_classes(seed: int):
 
 
 def test_face_assign_leaves_the_clusters_it_does_not_move_as_the_fit_left_them():
-    # common practice for a partial refit (and the definition of the fix): a cluster no object joined or left keeps
-    # the fit's prototype, its members' poses and distances to the bit; only the clusters that changed are refitted
+    # [mine] face_assign_hold_unmoved, by its definition (common practice for a partial refit): a cluster no object
+    # joined or left keeps the fit's prototype, its members' poses and distances to the bit; only the clusters that
+    # changed are refitted
     X, W, aspect, truth, grid = _three_classes(0)
     common = dict(n_clusters=3, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
                   init=(X[[0, 6, 12]], W[[0, 6, 12]], aspect[[0, 6, 12]]))
-    plain, fa = (PoseKMeans(**o, **common).fit(ArraySource(X, W, aspect)) for o in ({}, {"face_assign": True}))
+    plain, fa, upd = (PoseKMeans(**o, **common).fit(ArraySource(X, W, aspect))
+                      for o in ({}, {"face_assign": True, "face_hold_unmoved": True}, {"face_assign": True}))
     moved = np.flatnonzero(plain.labels_ != fa.labels_)
     assert len(moved) and adjusted_rand_score(truth, fa.labels_) == 1.0
     kept = np.setdiff1d(np.arange(3), np.concatenate([plain.labels_[moved], fa.labels_[moved]]))
@@ -149,6 +151,9 @@ def test_face_assign_leaves_the_clusters_it_does_not_move_as_the_fit_left_them()
     np.testing.assert_array_equal(fa.distance_[members], plain.distance_[members])
     np.testing.assert_array_equal(fa.yaw_deg_[members], plain.yaw_deg_[members])
     np.testing.assert_array_equal(fa.rotation_[members], plain.rotation_[members])
-    # the clusters that changed are refitted from their new members
+    # the clusters that changed are refitted from their new members, as without the switch
+    np.testing.assert_array_equal(fa.labels_, upd.labels_)
     for j in np.setdiff1d(np.arange(3), kept):
         assert not np.array_equal(fa.prototypes_[j], plain.prototypes_[j])
+    # without it the held fit's update moves the unmoved cluster's prototype too (what the switch is for)
+    assert not np.array_equal(upd.prototypes_[k], plain.prototypes_[k])

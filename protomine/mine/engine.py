@@ -873,11 +873,13 @@ def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
     fit ``fit`` left them: prototypes, aspects, their members' poses, distances and rotations onto a face (none:
     they lie as they are), and the moments of the symmetry test.
 
-    Why (``[mine] face_assign``): the held fit's final pass holds every label, so its tilt refinement searches
-    each member's own prototype only (``TiltBank.match_spectra(focus=...)``), and its updates average in again the
-    members of clusters nothing moved, some turned onto their own faces; both moved those clusters' prototypes and
-    poses a little, and so their single-view calibration (the default demo seed 0: the hand plane's, which none
-    left or joined, single-view sigma 0.210 -> 0.301, its never-mined views' median score 0.010 -> 0.028)."""
+    Why (``[mine] face_assign_hold_unmoved``): the held fit updates every prototype again, the clusters nothing moved
+    too, from members of which some now lie turned onto their own faces (``_face_assign`` turns every object whose
+    turned copy beats the tilt search, moved or not), and re-estimates their aspects; its final pass holds every
+    label, so its tilt refinement searches each member's own prototype only (``TiltBank.match_spectra(focus=...)``).
+    So those clusters' prototypes and single-view calibration moved (the default demo seed 0, one update: the hand
+    plane's, none left or joined, single-view sigma 0.210 -> 0.301).  Kept, they do not, but the label figures do
+    not gain (README "Touching against apart")."""
     m = keep[fit.labels]  # (N,) the kept clusters' members
     P, V = held.P.copy(), held.V.copy()
     P[keep], V[keep] = fit.P[keep], fit.V[keep]
@@ -946,6 +948,9 @@ class PoseKMeans:
     face_updates : with ``face_assign``, the held fit's prototype updates (:func:`_held_fit`; ``HELD_UPDATES``, 3);
         0 keeps the fit's prototypes, only the labels and poses move, each object's pose from the search that placed
         it (``[mine] face_assign_updates``).
+    face_hold_unmoved : with ``face_assign``, the clusters no object joined or left keep the fit's prototypes,
+        aspects, their members' poses and distances and the symmetry test's moments to the bit; only the others are
+        updated (:func:`_kept_from`, ``[mine] face_assign_hold_unmoved``).
     seed_hold_t : > 0, with ``face_pairs`` and without ``seed_check``: the seed partition is held as ``seed_check``
         holds it only when the fit's partition is significantly worse on the stable-face matrix: the paired t over
         the seeding matrix's objects of their distance to their cluster's medoid, fit minus seed
@@ -963,10 +968,11 @@ class PoseKMeans:
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
                  seed_hold_t: float = 0.0, face_assign: bool = False,
-                 face_updates: int = HELD_UPDATES):
+                 face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False):
         self.n_clusters = n_clusters
         self.face_assign = face_assign
         self.face_updates = face_updates
+        self.face_hold_unmoved = face_hold_unmoved
         self.face_pairs = face_pairs
         self.seed_check = seed_check
         self.seed_hold_t = seed_hold_t
@@ -1047,16 +1053,17 @@ class PoseKMeans:
         whose label came from a turned copy averaged in turned.  The fit stands unchanged when none moves.  The held
         fit makes ``face_updates`` prototype updates; with 0 the prototypes stay the fit's: the held fit's final pass
         only (labels fixed, the turned objects searched as their turned copy), so the poses are those of the search
-        that placed each object."""
+        that placed each object.  With ``face_hold_unmoved`` the clusters no object joined or left stay as the fit
+        left them (:func:`_kept_from`)."""
         grid = self._grid()
         labels, src, pre = _face_assign(source, res, scales=scales, chunk_size=self.chunk_size, grid=grid)
         if np.array_equal(labels, res.labels) or np.bincount(labels, minlength=self.n_clusters).min() == 0:
             return res
-        keep = unmoved_clusters(res.labels, labels, self.n_clusters)
+        keep = unmoved_clusters(res.labels, labels, self.n_clusters) if self.face_hold_unmoved else None
         held = _held_fit(source, labels, res.P, res.V, scales=scales, chunk_size=self.chunk_size, moments=True,
                          cache=None, grid=grid, aspect=res.aspect, turned=None if pre is None else (src, pre),
                          updates=self.face_updates, keep=keep)
-        return _kept_from(held, res, keep)
+        return held if keep is None else _kept_from(held, res, keep)
 
     def _fit_restarts(self, source: Source, scales: tuple[float, ...], rng: np.random.Generator) -> _Result:
         N, K = len(source), self.n_clusters
