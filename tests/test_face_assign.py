@@ -110,3 +110,50 @@ def test_face_assign_updates_0_moves_labels_and_keeps_the_fit_prototypes():
     assert np.all(keep.distance_ <= plain.distance_ * (1 + 1e-4) + 1e-9)
     angle = lambda u, v: np.degrees(np.arccos(np.clip(u @ v, -1.0, 1.0)))  # noqa: E731
     assert abs(angle(keep.up_[7], keep.up_[6]) - 90.0) < 10.0
+
+
+def _three_classes(seed: int):
+    """The boxes of ``seed`` and a third invented class: six upright posts with a side arm at random yaws, which
+    neither search confuses with the boxes (no object of theirs moves)."""
+    from protomine.mine.posesearch import shift_volume
+    from protomine.mine.tilts import _cell_points
+    X, W, aspect, truth, grid = resting_boxes(np.random.default_rng(seed), 6, A)
+    rng = np.random.default_rng(seed + 100)
+    x, y, z = _cell_points(8, A, 12, 1.0, 1.0).T
+    post = ((np.hypot(x, y) < 0.3) | ((np.abs(y) < 0.12) & (x > 0) & (x < 0.8) & (z < 0.3))) & (z < 0.95)
+    surf = post.reshape(8, A, 12).astype(np.float32)
+    x3 = [np.clip(shift_volume(np.stack([surf, 0.5 * surf])[None], rng.uniform(0, A), axis=3)[0]
+                  + 0.05 * rng.standard_normal((2, 8, A, 12)), 0, 1) for _ in range(6)]
+    X = np.concatenate([X, np.stack(x3).astype(np.float32)])
+    W = np.concatenate([W, np.ones((6, 8, A, 12), np.float32)])
+    return X, W, np.concatenate([aspect, np.ones(6)]), np.concatenate([truth, np.full(6, 2)]), grid
+
+
+def test_face_assign_leaves_the_clusters_it_does_not_move_as_the_fit_left_them():
+    # [mine] face_assign_hold_unmoved, by its definition (common practice for a partial refit): a cluster no object
+    # joined or left keeps the fit's prototype, its members' poses and distances to the bit; only the clusters that
+    # changed are refitted
+    X, W, aspect, truth, grid = _three_classes(0)
+    common = dict(n_clusters=3, scales=(1.0,), n_init=1, max_iter=5, random_state=0, tilts=grid, face_pairs=True,
+                  init=(X[[0, 6, 12]], W[[0, 6, 12]], aspect[[0, 6, 12]]))
+    plain, fa, upd = (PoseKMeans(**o, **common).fit(ArraySource(X, W, aspect))
+                      for o in ({}, {"face_assign": True, "face_hold_unmoved": True}, {"face_assign": True}))
+    moved = np.flatnonzero(plain.labels_ != fa.labels_)
+    assert len(moved) and adjusted_rand_score(truth, fa.labels_) == 1.0
+    kept = np.setdiff1d(np.arange(3), np.concatenate([plain.labels_[moved], fa.labels_[moved]]))
+    assert len(kept) == 1
+    k = int(kept[0])
+    members = np.flatnonzero(fa.labels_ == k)
+    np.testing.assert_array_equal(members, np.flatnonzero(plain.labels_ == k))
+    np.testing.assert_array_equal(fa.prototypes_[k], plain.prototypes_[k])
+    np.testing.assert_array_equal(fa.prototype_weights_[k], plain.prototype_weights_[k])
+    assert fa.aspect_[k] == plain.aspect_[k] and fa.symmetry_[k] == plain.symmetry_[k]
+    np.testing.assert_array_equal(fa.distance_[members], plain.distance_[members])
+    np.testing.assert_array_equal(fa.yaw_deg_[members], plain.yaw_deg_[members])
+    np.testing.assert_array_equal(fa.rotation_[members], plain.rotation_[members])
+    # the clusters that changed are refitted from their new members, as without the switch
+    np.testing.assert_array_equal(fa.labels_, upd.labels_)
+    for j in np.setdiff1d(np.arange(3), kept):
+        assert not np.array_equal(fa.prototypes_[j], plain.prototypes_[j])
+    # without it the held fit's update moves the unmoved cluster's prototype too (what the switch is for)
+    assert not np.array_equal(upd.prototypes_[k], plain.prototypes_[k])

@@ -664,7 +664,8 @@ HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seedi
 
 def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, *, scales, chunk_size: int,
               moments: bool, cache: _SpectraCache | None, grid: TiltGrid | None, aspect: np.ndarray | None,
-              own_faces: bool = True, turned: tuple | None = None, updates: int = HELD_UPDATES) -> _Result:
+              own_faces: bool = True, turned: tuple | None = None, updates: int = HELD_UPDATES,
+              keep: np.ndarray | None = None) -> _Result:
     """A fit whose partition is given: labels (N,) held fixed, the prototypes (P, V) (the seeding's, members
     aligned to their medoid) updated ``HELD_UPDATES`` times from the members aligned to them (a Lloyd update
     without the assignment), then the final pass of :func:`_lloyd` with the labels still fixed.  With ``own_faces``
@@ -674,6 +675,8 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     reported through it.  ``turned`` (source, pre), as :func:`_own_faces` returns them: the members to fit turned are
     given (:func:`_face_assign`), and no other is turned.  ``updates``: the number of
     prototype updates; 0 keeps (P, V) as given and only runs the final pass (``[mine] face_assign_updates``).
+    ``keep`` (K,) bool: these prototypes (and their aspects) stay as given through the updates (:meth:`PoseKMeans.
+    _face_reassign`: the clusters whose members did not move).
 
     Why (``seed_check``): on small stores of touching objects, half tumbled (tools family, 43-46 objects, 8
     classes), the seeding's k-medoids partition of the stable-face matrix was purer than the pose-aware fit
@@ -696,9 +699,13 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
                 cache = None if cache is None else _SpectraCache(cache.budget)  # the turned objects' spectra differ
                 _, _, _, _, num, den, count, worst, _ = _assign_pass(src, P, V, scales, chunk_size, True, K,
                                                                      forced=labels, cache=cache, tilts=ts)
-        P, V = _update(num, den, count, worst, P, V)
+        P_new, V_new = _update(num, den, count, worst, P, V)
+        if keep is not None:  # (K,) bool: these stay as given
+            P_new[keep], V_new[keep] = P[keep], V[keep]
+        P, V = P_new, V_new
         if ts is not None:
-            ts.aspect = _update_aspect(ts, labels, _source_aspect(src))
+            a = _update_aspect(ts, labels, _source_aspect(src))
+            ts.aspect = a if keep is None else np.where(keep, ts.aspect, a)
     labels, yaw, scale, dist, *rest = _assign_pass(src, P, V, scales, chunk_size, moments, 0, moments=moments,
                                                  forced=labels, cache=cache, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())
@@ -852,6 +859,53 @@ def _face_assign(source: Source, res: _Result, *, scales: tuple[float, ...], chu
     return labels, _TurnedSource(source, turned, aspect_t), pre
 
 
+def unmoved_clusters(before: np.ndarray, after: np.ndarray, n_clusters: int) -> np.ndarray:
+    """(K,) bool: the clusters no object joined or left between two partitions ``before``, ``after`` (N,)."""
+    moved = np.asarray(before) != np.asarray(after)
+    keep = np.ones(n_clusters, bool)
+    keep[np.asarray(before)[moved]] = False
+    keep[np.asarray(after)[moved]] = False
+    return keep
+
+
+def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
+    """The held fit ``held`` with the clusters ``keep`` (K,) bool (their members the same in both) exactly as the
+    fit ``fit`` left them: prototypes, aspects, their members' poses, distances and rotations onto a face (none:
+    they lie as they are), and the moments of the symmetry test.
+
+    Why (``[mine] face_assign_hold_unmoved``): the held fit updates every prototype again, the clusters nothing moved
+    too, from members of which some now lie turned onto their own faces (``_face_assign`` turns every object whose
+    turned copy beats the tilt search, moved or not), and re-estimates their aspects; its final pass holds every
+    label, so its tilt refinement searches each member's own prototype only (``TiltBank.match_spectra(focus=...)``).
+    So those clusters' prototypes and single-view calibration moved (the default demo seed 0, one update: the hand
+    plane's, none left or joined, single-view sigma 0.210 -> 0.301; all-stereo seed 1 the L bracket's 0.086 -> 0.366,
+    unknown AUROC 0.811 -> 0.690).  Kept, they do not (all-stereo seed 1 0.810), but three other demos lose a little
+    (README "Touching against apart")."""
+    m = keep[fit.labels]  # (N,) the kept clusters' members
+    P, V = held.P.copy(), held.V.copy()
+    P[keep], V[keep] = fit.P[keep], fit.V[keep]
+    out = []
+    for a, b in ((held.yaw, fit.yaw), (held.scale, fit.scale), (held.dist, fit.dist), (held.tilt, fit.tilt)):
+        if a is None or b is None:
+            out.append(a)
+            continue
+        a = np.array(a, copy=True)
+        a[m] = b[m]
+        out.append(a)
+    yaw, scale, dist, tilt = out
+    aspect = None if held.aspect is None else np.where(keep, fit.aspect, held.aspect)
+    moments = held.moments
+    if moments is not None and fit.moments is not None:
+        moments = tuple(np.where(keep.reshape((-1,) + (1,) * (np.ndim(h) - 1)), f, h)
+                        for h, f in zip(held.moments, fit.moments))
+    pre = held.pre
+    if pre is not None:
+        pre = pre.copy()
+        pre[m] = np.eye(3) if fit.pre is None else fit.pre[m]
+    cost = float(dist[np.isfinite(dist)].sum())
+    return _Result(P, V, held.labels, yaw, scale, dist, cost, held.n_iter, moments, tilt, aspect, pre)
+
+
 def _source_aspect(source: Source) -> np.ndarray:
     """The source's per-object aspects (N,) (needed by the tilt search)."""
     a = getattr(source, "aspect", None)
@@ -895,6 +949,9 @@ class PoseKMeans:
     face_updates : with ``face_assign``, the held fit's prototype updates (:func:`_held_fit`; ``HELD_UPDATES``, 3);
         0 keeps the fit's prototypes, only the labels and poses move, each object's pose from the search that placed
         it (``[mine] face_assign_updates``).
+    face_hold_unmoved : with ``face_assign``, the clusters no object joined or left keep the fit's prototypes,
+        aspects, their members' poses and distances and the symmetry test's moments to the bit; only the others are
+        updated (:func:`_kept_from`, ``[mine] face_assign_hold_unmoved``).
     seed_hold_t : > 0, with ``face_pairs`` and without ``seed_check``: the seed partition is held as ``seed_check``
         holds it only when the fit's partition is significantly worse on the stable-face matrix: the paired t over
         the seeding matrix's objects of their distance to their cluster's medoid, fit minus seed
@@ -912,10 +969,11 @@ class PoseKMeans:
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
                  seed_hold_t: float = 0.0, face_assign: bool = False,
-                 face_updates: int = HELD_UPDATES):
+                 face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False):
         self.n_clusters = n_clusters
         self.face_assign = face_assign
         self.face_updates = face_updates
+        self.face_hold_unmoved = face_hold_unmoved
         self.face_pairs = face_pairs
         self.seed_check = seed_check
         self.seed_hold_t = seed_hold_t
@@ -996,14 +1054,17 @@ class PoseKMeans:
         whose label came from a turned copy averaged in turned.  The fit stands unchanged when none moves.  The held
         fit makes ``face_updates`` prototype updates; with 0 the prototypes stay the fit's: the held fit's final pass
         only (labels fixed, the turned objects searched as their turned copy), so the poses are those of the search
-        that placed each object."""
+        that placed each object.  With ``face_hold_unmoved`` the clusters no object joined or left stay as the fit
+        left them (:func:`_kept_from`)."""
         grid = self._grid()
         labels, src, pre = _face_assign(source, res, scales=scales, chunk_size=self.chunk_size, grid=grid)
         if np.array_equal(labels, res.labels) or np.bincount(labels, minlength=self.n_clusters).min() == 0:
             return res
-        return _held_fit(source, labels, res.P, res.V, scales=scales, chunk_size=self.chunk_size, moments=True,
+        keep = unmoved_clusters(res.labels, labels, self.n_clusters) if self.face_hold_unmoved else None
+        held = _held_fit(source, labels, res.P, res.V, scales=scales, chunk_size=self.chunk_size, moments=True,
                          cache=None, grid=grid, aspect=res.aspect, turned=None if pre is None else (src, pre),
-                         updates=self.face_updates)
+                         updates=self.face_updates, keep=keep)
+        return held if keep is None else _kept_from(held, res, keep)
 
     def _fit_restarts(self, source: Source, scales: tuple[float, ...], rng: np.random.Generator) -> _Result:
         N, K = len(source), self.n_clusters
