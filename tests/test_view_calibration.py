@@ -12,6 +12,7 @@ from __future__ import annotations
 import json
 
 import numpy as np
+import pytest
 from scipy import stats
 
 from protomine.label.matcher import view_calibration
@@ -219,7 +220,7 @@ def test_mining_with_the_unseen_share_keeps_its_calibration_and_labels_by_three(
     from protomine.mine.openset import fisher_combine_many, ratio_pvalue
     from protomine.mine.pipeline import mine_store
     cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True,
-                                                      "view_normalise_unseen": True}})
+                                                      "view_normalise_unseen": True, "view_normalise_stretch": False}})
     lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
     u = np.asarray(lib.attrs["unknown_view_unseen"])
     assert len(u) == len(lib.attrs["unknown_view_ratios"]) and np.all(np.diff(u) >= 0) and u.min() >= 0 and u.max() <= 1
@@ -252,3 +253,90 @@ def test_mining_with_the_unseen_share_keeps_its_calibration_and_labels_by_three(
     assert np.allclose(got["score"], want, atol=1e-6)
     s = got["score"][rows, own]
     assert float(np.mean(s < m.unknown_cut)) <= 0.5
+
+
+def test_scale_stretch_is_the_absolute_log_of_the_scale():
+    """``openset.scale_stretch``: |ln sigma| by definition (math.log, element by element), 0 at sigma = 1, the same for
+    sigma and 1 / sigma, inf where there is no scale (NaN, 0: no match)."""
+    import math
+    from protomine.mine.openset import scale_stretch
+    s = np.array([[0.87, 0.93, 1.0], [1.07, 1.15, 1 / 1.15], [np.nan, 0.0, np.inf]])
+    got = scale_stretch(s)
+    for idx, v in np.ndenumerate(s):
+        want = abs(math.log(v)) if math.isfinite(v) and v > 0 else math.inf
+        assert got[idx] == pytest.approx(want, rel=1e-12) if math.isfinite(want) else got[idx] == math.inf
+    assert got[0, 2] == 0.0 and got[1, 1] == pytest.approx(got[1, 2], rel=1e-12)
+
+
+def test_view_ratio_calibration_with_the_stretch_is_the_fisher_cut():
+    """``[mine] view_normalise_stretch``: the held-out views' stretches |ln scale| at their nearest prototype are kept
+    sorted, and the cut is the split-conformal cut of Fisher's combination of the calibrated score, the ratio's and the
+    stretch's leave-one-out p-values, #{j: x_j >= x_i} / m counting the view itself (Vovk, Gammerman & Shafer 2005),
+    the combination taken from scipy.stats.combine_pvalues ("fisher"); with the unseen shares too it is the four-way
+    one.  A view the search matched at a larger stretch scores lower, all else equal."""
+    from protomine.mine.openset import best_second_ratio, conformal_cut, ratio_pvalue
+    rng = np.random.default_rng(7)
+    n = 300
+    own = rng.integers(0, 3, n)
+    D = np.exp(rng.normal(-3.0, 0.3, (n, 3)))
+    D[np.arange(n), own] = D.min(axis=1) * np.exp(-np.abs(rng.normal(0.3, 0.3, n)))
+    d, up = D[np.arange(n), own], rng.random(n) < 0.7
+    scales = rng.choice([0.87, 0.93, 1.0, 1.07, 1.15], (n, 3), p=[0.1, 0.15, 0.5, 0.15, 0.1])
+    U = rng.beta(1.0, 8.0, (n, 3))
+    fields, _ = view_calibrated_fields(d, np.ones(n), own, up, 3, [(0.0, 1.0)] * 3, 0.05)
+    s = Library(fields, {}, {}).score(d, own, single_view=True, upright=up, view_normalised=True)
+    j = np.arange(n)
+    r, x, u = best_second_ratio(D)[j, own], np.abs(np.log(scales[j, own])), U[j, own]   # own is the nearest
+
+    def loo(v):
+        return np.array([np.mean(v >= w) for w in v])
+
+    def fisher(*ps):
+        return np.array([stats.combine_pvalues(list(p), method="fisher")[1] for p in zip(*ps)])
+    attrs = view_ratio_calibration(D, d, own, up, fields, 0.05, fit_scale=scales)
+    assert np.allclose(attrs["unknown_view_stretch"], np.sort(x), rtol=1e-12) and "unknown_view_unseen" not in attrs
+    assert np.isclose(attrs["unknown_view_ratio_cut"], conformal_cut(fisher(s, loo(r), loo(x)), 0.05), rtol=1e-9)
+    both = view_ratio_calibration(D, d, own, up, fields, 0.05, unseen=U, fit_scale=scales)
+    assert np.isclose(both["unknown_view_ratio_cut"], conformal_cut(fisher(s, loo(r), loo(u), loo(x)), 0.05), rtol=1e-9)
+    # the p-value of a fresh view's stretch among the held-out ones falls as the stretch grows (scale 1 conforms most)
+    p = ratio_pvalue(attrs["unknown_view_stretch"], np.abs(np.log([1.0, 1.07, 1.15])))
+    assert p[0] == 1.0 and p[0] > p[1] > p[2]
+
+
+def test_mining_with_the_stretch_keeps_its_calibration_and_labels_with_it(tiny_world, tmp_path):
+    """End to end with ``[mine] view_normalise_stretch`` on: the library keeps the held-out views' sorted stretches,
+    and the matcher's score is the two-way score (the same library without the stretches, as with the key off) joined
+    by Fisher's combination with the conformal p-value of |ln fit_scale| among the library's, written out here from
+    the matcher's own parts; the same references as the unseen-share test above."""
+    from protomine.config import load_config
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.openset import fisher_combine_many, ratio_pvalue
+    from protomine.mine.pipeline import mine_store
+    cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True,
+                                                      "view_normalise_unseen": False, "view_normalise_stretch": True}})
+    lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    x = np.asarray(lib.attrs["unknown_view_stretch"])
+    assert len(x) == len(lib.attrs["unknown_view_ratios"]) and np.all(np.diff(x) >= 0) and x.min() >= 0
+    st = open_store(tiny_world["store"])
+    rows = np.arange(len(st.single_object))
+    views, cams = st.read_single_views(rows), np.asarray(st.single_camera)
+    m = make_matcher(lib, cfg)
+    assert m.view_stretch is not None and m.view_unseen is None
+    got = m.match(views, cams)
+    off = make_matcher(Library(lib.prototypes, lib.members, {k: v for k, v in lib.attrs.items()
+                                                             if k != "unknown_view_stretch"}, lib.path), cfg)
+    assert off.view_stretch is None
+    two = off.match(views, cams)["score"]
+    xs = np.empty_like(two)   # fisher_combine(s, p) = x (1 - ln x): recover x = s p by bisection
+    for idx, v in np.ndenumerate(two):
+        lo, hi = 0.0, 1.0
+        for _ in range(200):
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if mid * (1 - np.log(mid)) < v else (lo, mid)
+        xs[idx] = 0.5 * (lo + hi) if v > 0 else 0.0
+    q = ratio_pvalue(x, np.abs(np.log(np.asarray(got["fit_scale"], np.float64))))
+    assert np.allclose(got["score"], fisher_combine_many(xs, np.ones_like(xs), q), atol=1e-6)
+    own = np.asarray(lib.members["cluster"])[np.asarray(st.single_object)]
+    assert np.mean(got["best"] == own) >= 0.85
+    assert float(np.mean(got["score"][rows, own] < m.unknown_cut)) <= 0.5

@@ -47,7 +47,9 @@ score is joined with the conformal p-value of the best/second-best decision-dist
 (``openset.fisher_combine``) and flagged by ``unknown_view_ratio_cut``; with ``[mine] view_normalise_unseen`` (attribute
 ``unknown_view_unseen``) the conformal p-value of the view's unseen share (``mine.unseen``) joins them (Fisher's
 combination of three, ``openset.fisher_combine_many``), and ``match`` returns ``unseen_share`` (NaN where not
-computed).  ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
+computed); with ``[mine] view_normalise_stretch`` (attribute ``unknown_view_stretch``) the conformal p-value of the
+stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too.
+``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
 ``view_distance`` (NaN where none) for that calibration.
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
@@ -73,7 +75,7 @@ from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import best_second_ratio, fisher_combine_many, library_cut, ratio_pvalue, rule_scores
+from ..mine.openset import best_second_ratio, fisher_combine_many, library_cut, ratio_pvalue, rule_scores, scale_stretch
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
@@ -133,6 +135,7 @@ class Matcher:
     symmetric_top: int = 0
     unseen: float = 0.0
     unseen_score: bool = False
+    stretch_score: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -142,6 +145,7 @@ class Matcher:
     normaliser: ViewNormaliser | None = field(init=False)
     view_ratios: np.ndarray | None = field(init=False)
     view_unseen: np.ndarray | None = field(init=False)
+    view_stretch: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -152,6 +156,9 @@ class Matcher:
         vu = self.library.attrs.get("unknown_view_unseen")
         self.view_unseen = (np.asarray(vu, np.float64) if self.view_ratios is not None and self.unseen_score
                             and vu is not None else None)
+        vs = self.library.attrs.get("unknown_view_stretch")   # ``[mine] view_normalise_stretch``
+        self.view_stretch = (np.asarray(vs, np.float64) if self.view_ratios is not None and self.stretch_score
+                             and vs is not None else None)
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -274,6 +281,8 @@ class Matcher:
                 pr = np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0)
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
+                # ``[mine] view_normalise_stretch``: and with the p-value of the stretch the pose search needed
+                pu += () if self.view_stretch is None else (ratio_pvalue(self.view_stretch, scale_stretch(fit_scale)),)
                 S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
@@ -368,7 +377,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
                  view_cut_decide=float(m.get("view_normalise_cut_decide", 0.0)),
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
-                 unseen_score=bool(weighted and m.get("view_normalise_unseen", False))))
+                 unseen_score=bool(weighted and m.get("view_normalise_unseen", False)),
+                 stretch_score=bool(weighted and m.get("view_normalise_stretch", False))))
 
 
 @dataclass

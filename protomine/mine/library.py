@@ -37,7 +37,9 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  view_normalise_calibrate``, ``pipeline.view_calibration``), read with the attributes
                  unknown_view_cut (and, with ``[mine] view_normalise_ratio``, unknown_view_ratios, the sorted
                  best/second distance ratios of the held-out views, and unknown_view_ratio_cut; with ``[mine]
-                 view_normalise_unseen`` also unknown_view_unseen, the sorted unseen shares of ``mine.unseen``); a
+                 view_normalise_unseen`` also unknown_view_unseen, the sorted unseen shares of ``mine.unseen``; with
+                 ``[mine] view_normalise_stretch`` unknown_view_stretch, the sorted stretches |ln fit_scale| of
+                 ``openset.scale_stretch``); a
                  library without them scores as before
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion

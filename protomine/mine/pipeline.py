@@ -446,7 +446,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
         return None
     rows, own, own_d, own_up, cams = rows[has], own[has], own_d[has], own_up[has], cams[has]
     factor = np.ones(len(rows))
-    decide, shares = [], []
+    decide, shares, scales_found = [], [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
     views = [store.read_single_views(rows[sl]) for sl in slices]
     # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
@@ -473,12 +473,15 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
             Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
             shares.append(m["unseen_share"])
+            scales_found.append(m["fit_scale"])
             b.advance(len(j))
     fields, attrs = view_calibrated_fields(own_d, factor, own, own_up, lib.n_clusters, fallback, alpha)
     if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
         unseen = bool(lib.config["mine"].get("view_normalise_unseen", False))
+        stretch = bool(lib.config["mine"].get("view_normalise_stretch", False))
         attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha,
-                                            unseen=np.concatenate(shares) if unseen else None))
+                                            unseen=np.concatenate(shares) if unseen else None,
+                                            fit_scale=np.concatenate(scales_found) if stretch else None))
     return fields, attrs
 
 
@@ -490,7 +493,7 @@ def face_kind_scores(d: np.ndarray, own: np.ndarray, own_up: np.ndarray, mu: np.
 
 
 def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
-                           alpha: float, unseen: np.ndarray | None = None) -> dict:
+                           alpha: float, unseen: np.ndarray | None = None, fit_scale: np.ndarray | None = None) -> dict:
     """``[mine] view_normalise_ratio``: the held-out views' ratios of their best to their second-best decision distance
     (``openset.best_second_ratio`` of D (Q, K), at the nearest prototype) and the split-conformal cut on the Fisher
     combination (``openset.fisher_combine``) of each view's calibrated score (of d (Q,) at its own prototype) and its
@@ -499,8 +502,12 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     ``unseen`` (Q, K) (``[mine] view_normalise_unseen``; None: off): each view's share of its surface cells the posed
     prototype has not observed (``mine.unseen``), as the matcher gives it; at the nearest prototype, its leave-one-out
     p-value among the other views' (larger shares less conforming) joins the two by Fisher's combination of three
-    (``openset.fisher_combine_many``), and the sorted shares are returned too ("unknown_view_unseen")."""
-    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues
+    (``openset.fisher_combine_many``), and the sorted shares are returned too ("unknown_view_unseen").
+    ``fit_scale`` (Q, K) (``[mine] view_normalise_stretch``; None: off): each view's scale of the pose search at every
+    prototype, as the matcher gives it; the stretch |ln scale| at the nearest prototype (``openset.scale_stretch``) joins
+    the combination by its leave-one-out p-value among the other views' (larger stretches less conforming), and the
+    sorted stretches are returned too ("unknown_view_stretch")."""
+    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, scale_stretch
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
     b = np.argmin(D[ok], axis=1)
@@ -514,6 +521,10 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     if unseen is not None:
         u = np.nan_to_num(np.asarray(unseen, np.float64)[ok][np.arange(len(b)), b], nan=1.0)
         out["unknown_view_unseen"], pu = np.sort(u), (loo_ratio_pvalues(u),)
+    if fit_scale is not None:
+        x = scale_stretch(np.asarray(fit_scale, np.float64)[ok][np.arange(len(b)), b])
+        out["unknown_view_stretch"] = np.sort(x)
+        pu = pu + (loo_ratio_pvalues(x),)
     out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
     return out
 
