@@ -413,3 +413,49 @@ def test_face_distances_are_each_face_searched_alone_and_rest_takes_the_resting_
                          [None, wide], rest)
     np.testing.assert_allclose(out[:, 0], per.min(), rtol=1e-6)
     np.testing.assert_allclose(rest[:, 0], [per.min(), per[on].min()], rtol=1e-6)
+
+
+def test_cut_rest_decides_by_the_resting_copies_and_scores_as_before(tiny_world):
+    """[mine] view_normalise_cut_rest: a cut view's deciding distance is the lesser of the pose search's and the
+    view-normalised distance over its copies on resting faces (ViewNormaliser.distances' ``rest``); the score's
+    view-normalised distance and every view without a cut are those of the switch off (bit for bit).  The tiny world's
+    objects stand upright, so here the resting copies hold the nearest one: what is left out is checked by
+    test_face_distances_are_each_face_searched_alone_and_rest_takes_the_resting_ones."""
+    import json
+    from protomine.ingest.sharded import open_store
+    from protomine.ingest.truncation import ViewCut
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.library import read_library
+
+    def matcher(rest: bool):
+        lib = read_library(tiny_world["library"])
+        c = lib.config
+        c["mine"].update(view_normalise_top=2, view_normalise_score=True, view_normalise_cut=True,
+                         view_normalise_cut_rest=rest, view_normalise_cut_decide=0.0, unseen_charge=0.0)
+        lib.attrs["config"] = json.dumps(c)
+        return make_matcher(lib, tiny_world["cfg"])
+
+    vols = open_store(tiny_world["store"]).read_single_views()
+    n = len(vols)
+    az = np.random.default_rng(2).uniform(0.0, 2 * np.pi, n)
+    cams = np.stack([np.cos(az), np.sin(az), np.full(n, np.tan(np.deg2rad(50.0)))], 1)
+    cams /= np.linalg.norm(cams, axis=1, keepdims=True)
+    w2c = np.eye(4)
+    w2c[:3, :3] = np.diag([1.0, -1.0, -1.0])
+    w2c[:3, 3] = [0.0, 0.0, 1.0]
+    cut = ViewCut(np.array([[100.0, 0.0, 1000.0], [0.0, 100.0, 500.0], [0.0, 0.0, 1.0]]), (2000, 1000), w2c,
+                  np.zeros(3), np.eye(3), 0.05, 0.05, np.zeros(0, np.int64), np.zeros(0))
+    cuts = [cut if i % 2 else None for i in range(n)]            # every other view cut
+    on, off = matcher(True), matcher(False)
+    assert on.view_cut_rest and not off.view_cut_rest
+    a, b = on.match(vols, cams, cuts=cuts), off.match(vols, cams, cuts=cuts)
+    np.testing.assert_array_equal(a["view_distance"], b["view_distance"])
+    plain = np.array([c is None for c in cuts])
+    np.testing.assert_array_equal(a["distance"][plain], b["distance"][plain])
+    np.testing.assert_array_equal(a["score"][plain], b["score"][plain])
+    X, W = on.features(vols)
+    D, _, _, up, _ = on.search.poses(X, W)
+    rest = np.full(D.shape, np.nan)
+    on.normaliser.distances(X, W, D, up, cams, cuts, rest)
+    np.testing.assert_allclose(a["distance"], np.fmin(D, rest), rtol=1e-12)
+    assert np.all(a["distance"][~plain] >= b["distance"][~plain])   # fewer copies: never nearer
