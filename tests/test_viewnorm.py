@@ -358,3 +358,104 @@ def test_decided_ratios_give_the_wider_decision_the_narrow_best_ratio():
     Dq = np.array([[1.0, 1.6, 2.0], [1.0, 1.6, 2.0]])
     np.testing.assert_allclose(decided_ratios(D, Dq), [[0.625, 0.625, 2.0], [0.625, 1.6, 2.0]])
     np.testing.assert_allclose(decided_ratios(Dq, Dq), [[0.625, 1.6, 2.0]] * 2)   # off: the plain ratios
+
+
+def test_rest_mask_keeps_the_resting_faces_and_drops_a_tilt_no_member_rests_on():
+    # worked by hand from the definition (the angle between unit vectors, arccos of their dot product, against
+    # SAME_FACE_DEG = 10): recorded faces +z (canonical), +x (3 members), -y (0 members: not a resting face) and a
+    # padding row (symmetry -1)
+    from protomine.mine.viewnorm import rest_mask
+    face_up = np.array([[0.0, 0.0, 1.0], [1.0, 0.0, 0.0], [0.0, -1.0, 0.0], [0.0, 0.0, 0.0]])
+    count, sym = np.array([5, 3, 0, 0]), np.array([1, 1, 1, -1])
+    t5, t20 = np.deg2rad(5.0), np.deg2rad(20.0)
+    ups = [np.array([np.sin(t5), 0.0, np.cos(t5)]),     # 5 deg off +z: the canonical face
+           np.array([np.cos(t20), 0.0, np.sin(t20)]),   # 20 deg off +x, 70 off +z: no face
+           np.array([0.0, -1.0, 0.0]),                  # the face without members
+           2.0 * np.array([np.cos(t5), np.sin(t5), 0.0]),   # 5 deg off +x, not unit length
+           np.array([0.0, 0.0, 1.0])]
+    np.testing.assert_array_equal(rest_mask(ups, face_up, count, sym), [True, False, False, True, True])
+
+
+def test_face_distances_are_each_face_searched_alone_and_rest_takes_the_resting_ones():
+    # each entry of face_distances equals the copy-by-copy reference twin searched on that face alone (the FFT pose
+    # search, _reference_distance); ViewNormaliser.distances' ``rest`` is the least over every face for a view
+    # without a cut, and with cut_rest for a cut view the least over the faces rest_mask keeps (here the pose search's
+    # found +y, not a recorded face, is left out)
+    from protomine.ingest.truncation import ViewCut
+    from protomine.mine.viewnorm import rest_mask
+    rng = np.random.default_rng(5)
+    pts, part = _solid("tee", rng)
+    P, V, aspect = _volume(pts, part)
+    turned = pts @ np.array([[1.0, 0.0, 0.0], [0.0, 0.0, -1.0], [0.0, 1.0, 0.0]]).T   # the tee lying with its +y up
+    front = turned[:, 1] < 0.0
+    X, _, _ = _volume(turned[front], part[front])
+    Wv = np.where(X[0] > 0.05, 1.0, 0.3).astype(np.float32)
+    faces = (np.array([[[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]]]), np.array([[2, 1]]), np.array([[1, 1]]))
+    ups = face_candidates(np.array([0.0, 1.0, 0.0]), *(f[0] for f in faces))
+    cam = np.array([0.3, -1.0, 0.4]) / np.linalg.norm([0.3, -1.0, 0.4])
+    norm = ViewNormaliser(P[None], V[None], np.array([aspect]), (0.9, 1.0, 1.1), GRID_T, faces, top=1, cut_rest=True)
+    per = norm.face_distances(X[None], Wv[None], 0, ups, cam)
+    for j, u in enumerate(ups):
+        ref = _reference_distance(norm, X[None], Wv[None], 0, [u], cam)
+        assert abs(per[j] - ref) <= 1e-4 * ref, (j, per[j], ref)
+    on = rest_mask(ups, *(f[0] for f in faces))
+    np.testing.assert_array_equal(on, [False, True, True])
+    assert per[0] < per[on].min()                    # the view rests on the found +y: leaving it out matters
+    # an image far wider than the view (nothing hidden): the copies keep every cell, so the cut changes no distance
+    w2c = np.eye(4)
+    w2c[:3, :3] = np.diag([1.0, -1.0, -1.0])
+    w2c[:3, 3] = [0.0, 0.0, 1.0]
+    wide = ViewCut(np.array([[100.0, 0.0, 1000.0], [0.0, 100.0, 500.0], [0.0, 0.0, 1.0]]), (2000, 1000), w2c,
+                   np.zeros(3), np.eye(3), 0.05, 0.05, np.zeros(0, np.int64), np.zeros(0))
+    up = np.array([[[0.0, 1.0, 0.0]], [[0.0, 1.0, 0.0]]])
+    rest = np.full((2, 1), np.nan)
+    out = norm.distances(np.stack([X, X]), np.stack([Wv, Wv]), np.ones((2, 1)), up, np.stack([cam, cam]),
+                         [None, wide], rest)
+    np.testing.assert_allclose(out[:, 0], per.min(), rtol=1e-6)
+    np.testing.assert_allclose(rest[:, 0], [per.min(), per[on].min()], rtol=1e-6)
+
+
+def test_cut_rest_decides_by_the_resting_copies_and_scores_as_before(tiny_world):
+    """[mine] view_normalise_cut_rest: a cut view's deciding distance is the lesser of the pose search's and the
+    view-normalised distance over its copies on resting faces (ViewNormaliser.distances' ``rest``); the score's
+    view-normalised distance and every view without a cut are those of the switch off (bit for bit).  The tiny world's
+    objects stand upright, so here the resting copies hold the nearest one: what is left out is checked by
+    test_face_distances_are_each_face_searched_alone_and_rest_takes_the_resting_ones."""
+    import json
+    from protomine.ingest.sharded import open_store
+    from protomine.ingest.truncation import ViewCut
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.library import read_library
+
+    def matcher(rest: bool):
+        lib = read_library(tiny_world["library"])
+        c = lib.config
+        c["mine"].update(view_normalise_top=2, view_normalise_score=True, view_normalise_cut=True,
+                         view_normalise_cut_rest=rest, view_normalise_cut_decide=0.0, unseen_charge=0.0)
+        lib.attrs["config"] = json.dumps(c)
+        return make_matcher(lib, tiny_world["cfg"])
+
+    vols = open_store(tiny_world["store"]).read_single_views()
+    n = len(vols)
+    az = np.random.default_rng(2).uniform(0.0, 2 * np.pi, n)
+    cams = np.stack([np.cos(az), np.sin(az), np.full(n, np.tan(np.deg2rad(50.0)))], 1)
+    cams /= np.linalg.norm(cams, axis=1, keepdims=True)
+    w2c = np.eye(4)
+    w2c[:3, :3] = np.diag([1.0, -1.0, -1.0])
+    w2c[:3, 3] = [0.0, 0.0, 1.0]
+    cut = ViewCut(np.array([[100.0, 0.0, 1000.0], [0.0, 100.0, 500.0], [0.0, 0.0, 1.0]]), (2000, 1000), w2c,
+                  np.zeros(3), np.eye(3), 0.05, 0.05, np.zeros(0, np.int64), np.zeros(0))
+    cuts = [cut if i % 2 else None for i in range(n)]            # every other view cut
+    on, off = matcher(True), matcher(False)
+    assert on.view_cut_rest and not off.view_cut_rest
+    a, b = on.match(vols, cams, cuts=cuts), off.match(vols, cams, cuts=cuts)
+    np.testing.assert_array_equal(a["view_distance"], b["view_distance"])
+    plain = np.array([c is None for c in cuts])
+    np.testing.assert_array_equal(a["distance"][plain], b["distance"][plain])
+    np.testing.assert_array_equal(a["score"][plain], b["score"][plain])
+    X, W = on.features(vols)
+    D, _, _, up, _ = on.search.poses(X, W)
+    rest = np.full(D.shape, np.nan)
+    on.normaliser.distances(X, W, D, up, cams, cuts, rest)
+    np.testing.assert_allclose(a["distance"], np.fmin(D, rest), rtol=1e-12)
+    assert np.all(a["distance"][~plain] >= b["distance"][~plain])   # fewer copies: never nearer

@@ -131,6 +131,7 @@ class Matcher:
     view_cut: bool = False
     view_cut_within: float | None = None
     view_cut_decide: float = 0.0
+    view_cut_rest: bool = False
     chunk_size: int = 512
     symmetric_top: int = 0
     unseen: float = 0.0
@@ -170,7 +171,7 @@ class Matcher:
         self.normaliser = (ViewNormaliser(self.P, self.V, pr["aspect"], self.scales, self.tilts,
                                           (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top,
                                           cut_within=(self.view_cut_decide if self.view_cut_decide > 0
-                                                      else self.view_cut_within))
+                                                      else self.view_cut_within), cut_rest=self.view_cut_rest)
                            if self.view_top > 0 else None)
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
@@ -253,13 +254,19 @@ class Matcher:
         Dv = np.full(D.shape, np.nan)
         Dq = None   # the distances of the best/second-best ratio when not D (``[mine] view_normalise_cut_decide``)
         if self.normaliser is not None and cameras is not None:  # the prototypes gridded as seen from the camera
-            Dv = self.normaliser.distances(X, W, D, up, cameras, cuts)
+            # ``[mine] view_normalise_cut_rest``: a cut view's deciding distances take its copies on resting faces only
+            # (Dd); the score keeps the least over every copy (Dv), as the library's calibration saw it
+            Dd = np.full(D.shape, np.nan) if self.view_cut_rest and cuts is not None else None
+            Dv = self.normaliser.distances(X, W, D, up, cameras, cuts, Dd)
+            Dd = Dv if Dd is None else Dd
             if self.view_cut_decide > 0 and cuts is not None and any(c is not None for c in cuts):
                 # a cut view's wider shortlist decides the class; the ratio keeps the shortlist of cut_within
                 keep = self.normaliser.shortlist_mask(D, cuts, self.view_cut_within if self.view_cut_within is not None
                                                        else self.normaliser.within)
                 Dq = np.fmin(D, np.where(keep, Dv, np.nan))
-            D = np.fmin(D, Dv)
+            elif Dd is not Dv:   # the best/second-best ratio, as the score, of the least over every copy
+                Dq = np.fmin(D, Dv)
+            D = np.fmin(D, Dd)
             if self.view_score and not self.view_calibrated:  # ``[mine] view_normalise_score``: the better of the two
                 Sv = self.library.score(np.where(np.isfinite(Dv), Dv, 1.0), np.arange(self.K)[None, :], single_view=True, upright=upright)
                 S = np.where(np.isfinite(Dv), np.maximum(S, Sv), S)
@@ -376,6 +383,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
                  view_cut_decide=float(m.get("view_normalise_cut_decide", 0.0)),
+                 view_cut_rest=bool(m.get("view_normalise_cut_rest", False)),
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
                  unseen_score=bool(weighted and m.get("view_normalise_unseen", False)),
                  stretch_score=bool(weighted and m.get("view_normalise_stretch", False))))

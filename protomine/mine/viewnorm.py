@@ -262,6 +262,20 @@ def face_candidates(found: np.ndarray, face_up: np.ndarray, face_count: np.ndarr
     return keep
 
 
+def rest_mask(ups: list[np.ndarray], face_up: np.ndarray, face_count: np.ndarray, face_symmetry: np.ndarray
+              ) -> np.ndarray:
+    """(len(ups),) bool: which of the up directions ``ups`` (:func:`face_candidates`) lie within ``SAME_FACE_DEG`` of a
+    resting face of the prototype, +z or a recorded face with members (face_up (F, 3), face_count (F,),
+    face_symmetry (F,), -1 = padding): the pose search's found direction, first in ``ups``, may be a tilt of the grid
+    no member rests on."""
+    fu = np.asarray(face_up, np.float64).reshape(-1, 3)
+    faces = np.concatenate([[[0.0, 0.0, 1.0]], fu[(np.asarray(face_symmetry) >= 0) & (np.asarray(face_count) > 0)]])
+    faces = faces / np.maximum(np.linalg.norm(faces, axis=1, keepdims=True), 1e-12)
+    cos_same = np.cos(np.deg2rad(SAME_FACE_DEG))
+    return np.array([bool(np.any(faces @ (np.asarray(u, np.float64) / max(float(np.linalg.norm(u)), 1e-12)) >= cos_same))
+                     for u in ups], bool).reshape(-1)
+
+
 class ViewNormaliser:
     """The distances of single views to prototypes P (K, C, R, A, H), V (K, R, A, H) (grid aspects (K,)) normalised as
     views from their cameras (module docstring); ``faces`` = (face_up (K, F, 3), face_count (K, F), face_symmetry
@@ -272,7 +286,7 @@ class ViewNormaliser:
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid,
                  faces: tuple[np.ndarray, np.ndarray, np.ndarray], *, top: int = 4, within: float = 1.5,
                  yaw_step: float = 30.0, yaw_window: float = 15.0, pixel: float = 1.0, depth_tol: float = 1.0,
-                 max_faces: int = 0, cut_within: float | None = None):
+                 max_faces: int = 0, cut_within: float | None = None, cut_rest: bool = False):
         self.P, self.V = np.asarray(P, np.float32), np.asarray(V, np.float32)
         self.aspect = np.asarray(aspect, np.float64)
         self.scales, self.grid, self.faces = tuple(scales), grid, faces
@@ -280,6 +294,7 @@ class ViewNormaliser:
         self.yaw_step, self.yaw_window, self.pixel, self.depth_tol = yaw_step, yaw_window, pixel, depth_tol
         self.max_faces = int(max_faces)
         self.cut_within = self.within if cut_within is None else float(cut_within)   # a cut view's shortlist
+        self.cut_rest = bool(cut_rest)   # a cut view's deciding distance: copies on resting faces only (``rest_mask``)
         self._solid: dict[int, tuple[np.ndarray, np.ndarray]] = {}
         self._rest_cache: dict[tuple, tuple] = {}
 
@@ -294,8 +309,14 @@ class ViewNormaliser:
 
     def distance(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray,
                  obj: tuple[torch.Tensor, torch.Tensor] | None = None, cut: ViewCut | None = None) -> float:
-        """Least distance of one view x (1, C, R, A, H), w (1, R, A, H) (camera direction ``camera`` (3,) in its
-        object frame) to prototype k's copies resting on ``ups``, each gridded as seen from the camera at every
+        """The least of :meth:`face_distances` (inf when ``ups`` is empty)."""
+        per = self.face_distances(x, w, k, ups, camera, obj, cut)
+        return float(per.min()) if len(per) else np.inf
+
+    def face_distances(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray,
+                       obj: tuple[torch.Tensor, torch.Tensor] | None = None, cut: ViewCut | None = None) -> np.ndarray:
+        """Least distances (len(ups),) of one view x (1, C, R, A, H), w (1, R, A, H) (camera direction ``camera`` (3,) in
+        its object frame) to prototype k's copies resting on each of ``ups``, each gridded as seen from the camera at every
         ``yaw_step`` degrees of yaw, the yaw kept within ``yaw_window`` of it (``obj``: the view's
         :func:`object_factors` when known).  Copies of one face whose geometry is the same for several yaws (the
         same visible circle and height) are resampled and compared once, at all those yaws' shifts.  ``cut``: the
@@ -307,7 +328,8 @@ class ViewNormaliser:
         ok = window_shifts(x.shape[3], y0, self.yaw_window)           # (Y, A)
         gs: list[CopyGeometry] = []
         shifts: list[np.ndarray] = []
-        for u in ups:
+        face: list[int] = []                                          # the index in ``ups`` of each copy
+        for f, u in enumerate(ups):
             seen: dict[bytes, int] = {}
             for g, row in zip(visible_geometries(self._rest(k, u), cams, self.grid, pixel=self.pixel,
                                                  depth_tol=self.depth_tol, cut=cut, yaws=y0), ok):
@@ -318,31 +340,34 @@ class ViewNormaliser:
                     seen[key] = len(gs)
                     gs.append(g)
                     shifts.append(row)
+                    face.append(f)
+        best = np.full(len(ups), np.inf)
         n = len(gs)
         if not n:
-            return np.inf
+            return best
         pc, vc = _resample_copies(self.P[k][None], self.V[k][None], gs, np.full(n, float(self.aspect[k])),
                                   index=np.zeros(n, np.int64))
         obj = obj if obj is not None else object_factors(x[0], w[0])
         fnum, fden = copy_factors(pc, vc, self.scales)                # (n, S, L), (n, S, R A H)
-        best = np.inf
         for m, row in enumerate(shifts):                              # each copy at its own shifts only
             sh = torch.from_numpy(np.flatnonzero(row))
             d = distance_of_sums(torch.mm(obj[0].index_select(0, sh), fnum[m].T),
                                  torch.mm(obj[1].index_select(0, sh), fden[m].T), x.shape[1] * 1e-3)
-            best = min(best, float(d.min()))
+            best[face[m]] = min(best[face[m]], float(d.min()))
         return best
 
     def distances(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray, cameras: np.ndarray,
-                  cuts: list[ViewCut | None] | None = None) -> np.ndarray:
+                  cuts: list[ViewCut | None] | None = None, rest: np.ndarray | None = None) -> np.ndarray:
         """View-normalised distances (n, K) of views X (n, C, R, A, H), W (n, R, A, H) to each view's ``top`` nearest
         prototypes by D (n, K) (within ``within`` x its nearest), NaN for every other pair; ``up`` (n, K, 3) the faces
         the pose search found, ``cameras`` (n, 3) the camera directions in the views' object frames (a row of zeros
         or NaN: none, the row all NaN); ``cuts`` (n,): each view's :class:`ingest.truncation.ViewCut` or None (None:
-        none)."""
+        none).  ``rest`` (n, K), filled in place when given: the same distances, but for a view given a cut, with
+        ``cut_rest`` (``[mine] view_normalise_cut_rest``), the least over the copies on the prototype's resting faces
+        (:func:`rest_mask`; not the pose search's found direction when it is none of them)."""
         out = np.full(np.shape(D), np.nan)
         with one_blas_thread():  # many small numpy products (``tilts._forward_xyz``, the projections): no BLAS pool
-            self._fill(out, X, W, D, up, cameras, cuts if cuts is not None else [None] * len(D))
+            self._fill(out, X, W, D, up, cameras, cuts if cuts is not None else [None] * len(D), rest)
         return out
 
     def listed(self, d: np.ndarray, cut: bool, cut_within: float | None = None) -> np.ndarray:
@@ -363,8 +388,8 @@ class ViewNormaliser:
         return mask
 
     def _fill(self, out: np.ndarray, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray,
-              cameras: np.ndarray, cuts: list[ViewCut | None]) -> None:
-        """:meth:`distances` into ``out`` (n, K)."""
+              cameras: np.ndarray, cuts: list[ViewCut | None], rest: np.ndarray | None = None) -> None:
+        """:meth:`distances` into ``out`` (n, K) (and ``rest`` (n, K) when given)."""
         face_up, face_count, face_symmetry = self.faces
         for i in range(len(D)):
             cam = np.asarray(cameras[i], np.float64)
@@ -377,4 +402,9 @@ class ViewNormaliser:
             for k in listed:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
-                out[i, k] = self.distance(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj, cuts[i])
+                per = self.face_distances(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj, cuts[i])
+                out[i, k] = float(per.min()) if len(per) else np.inf
+                if rest is not None:
+                    on = (rest_mask(ups, face_up[k], face_count[k], face_symmetry[k])
+                          if self.cut_rest and cuts[i] is not None else np.ones(len(ups), bool))
+                    rest[i, k] = float(per[on].min()) if on.any() else np.inf
