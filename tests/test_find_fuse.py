@@ -12,7 +12,7 @@ first.  Precision at 10 by its definition and average precision by scikit-learn
 from __future__ import annotations
 
 import numpy as np
-from sklearn.metrics import average_precision_score
+from ranking_measures import p10_ap
 
 from protomine.curate.knownclass import CLAIM_MARGIN, decide, fused_key, margin_key
 
@@ -33,24 +33,14 @@ def _store(seed: int = 0):
     return D, one, cls, ids, len(D) - 1
 
 
-def _p10_ap(key, cls, ids, ex, target):
-    """Precision at 10 (the share of the example's class among the first 10, ties by id, the example left out) and
-    average precision (scikit-learn) of ranking by ``key`` ascending."""
-    others = np.array([i for i in range(len(key)) if i != ex])
-    k = np.where(np.isfinite(key[others]), key[others], np.finfo(np.float64).max)
-    order = others[np.lexsort((ids[others], k))]
-    rel = cls[others] == target
-    return float(np.mean(cls[order[:10]] == target)), float(average_precision_score(rel, -k))
-
-
 def test_fused_key_puts_the_examples_class_before_a_never_mined_neighbour():
     D, one, cls, ids, ex = _store()
     b, agree, taken, _ = decide(D, 0, 0.9, 0.05, one, ids, ex, sure=0.5)
     assert (b, taken) == (0, True)
     m = margin_key(D, 0)
     assert np.all(m[cls == 1] < CLAIM_MARGIN) and np.all(m[cls == 2] > 1.0)   # A claims T's views too
-    p_m, ap_m = _p10_ap(m, cls, ids, ex, 0)
-    p_f, ap_f = _p10_ap(fused_key(m, one, 1.0), cls, ids, ex, 0)
+    p_m, ap_m = p10_ap(m, cls, ids, ex, 0)
+    p_f, ap_f = p10_ap(fused_key(m, one, 1.0), cls, ids, ex, 0)
     assert p_m <= 0.8, p_m                                                     # the margin mixes A and T
     assert p_f == 1.0 and ap_f > ap_m + 0.1, (p_f, ap_f, ap_m)
 

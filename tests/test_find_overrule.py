@@ -11,7 +11,7 @@ definition and average precision by scikit-learn (``sklearn.metrics.average_prec
 from __future__ import annotations
 
 import numpy as np
-from sklearn.metrics import average_precision_score
+from ranking_measures import p10_ap
 
 from protomine.curate.knownclass import AGREE_TOP, decide, margin_key, overrule, profile_key
 
@@ -43,16 +43,6 @@ def _one_shot(cls):
     return np.where(cls >= 2, 0.0, 1.0) + np.arange(len(cls)) * 1e-3
 
 
-def _p10_ap(key, cls, ids, ex, target):
-    """Precision at 10 (definition: the share of the example's class among the first 10, ties by id, the example
-    left out) and average precision (scikit-learn) of ranking by ``key`` ascending."""
-    others = np.array([i for i in range(len(key)) if i != ex])
-    k = np.where(np.isfinite(key[others]), key[others], np.finfo(np.float64).max)
-    order = others[np.lexsort((ids[others], k))]
-    rel = cls[others] == target
-    return float(np.mean(cls[order[:10]] == target)), float(average_precision_score(rel, -k))
-
-
 def test_wrong_name_is_overruled_by_the_profile():
     D, cls, ids, ex = _store()
     assert int(np.argmin(D[ex])) == 1                        # by construction the example is nearest to B
@@ -60,12 +50,12 @@ def test_wrong_name_is_overruled_by_the_profile():
     # named B with a sure score: without the overrule the route ranks B's views first
     b0, agree, taken, shares = decide(D, 1, 0.9, 0.05, one_shot, ids, ex, sure=0.3)
     assert (b0, taken, shares) == (1, True, ())
-    p_named, ap_named = _p10_ap(margin_key(D, 1), cls, ids, ex, 0)
+    p_named, ap_named = p10_ap(margin_key(D, 1), cls, ids, ex, 0)
     assert p_named == 0.0 and agree == 0
     b1, agree1, taken1, shares1 = decide(D, 1, 0.9, 0.05, one_shot, ids, ex, sure=0.3, overrule_at=3)
     assert (b1, agree1, taken1) == (0, agree, True)
     assert len(shares1) == 4 and shares1[0] == max(shares1) >= 3 and shares1[0] > shares1[1]
-    p_over, ap_over = _p10_ap(margin_key(D, b1), cls, ids, ex, 0)
+    p_over, ap_over = p10_ap(margin_key(D, b1), cls, ids, ex, 0)
     assert p_over == 1.0 and ap_over > 0.95 > ap_named + 0.5, (p_over, ap_over, ap_named)
 
 
