@@ -869,8 +869,8 @@ def unmoved_clusters(before: np.ndarray, after: np.ndarray, n_clusters: int) -> 
 
 
 def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
-    """The held fit ``held`` with the clusters ``keep`` (K,) bool (their members the same in both) exactly as the
-    fit ``fit`` left them: prototypes, aspects, their members' poses, distances and rotations onto a face (none:
+    """The held fit ``held`` (made with ``keep``: those prototypes and aspects already the fit's) with the clusters
+    ``keep`` (K,) bool (their members the same in both) exactly as the fit ``fit`` left them: their members' poses, distances and rotations onto a face (none:
     they lie as they are), and the moments of the symmetry test.
 
     Why (``[mine] face_assign_hold_unmoved``): the held fit updates every prototype again, the clusters nothing moved
@@ -881,9 +881,7 @@ def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
     plane's, none left or joined, single-view sigma 0.210 -> 0.301; all-stereo seed 1 the L bracket's 0.086 -> 0.366,
     unknown AUROC 0.811 -> 0.690).  Kept, they do not (all-stereo seed 1 0.810), but three other demos lose a little
     (README "Touching against apart")."""
-    m = keep[fit.labels]  # (N,) the kept clusters' members
-    P, V = held.P.copy(), held.V.copy()
-    P[keep], V[keep] = fit.P[keep], fit.V[keep]
+    m = keep[fit.labels]  # (N,) the kept clusters' members; their prototypes and aspects _held_fit(keep=) kept
     out = []
     for a, b in ((held.yaw, fit.yaw), (held.scale, fit.scale), (held.dist, fit.dist), (held.tilt, fit.tilt)):
         if a is None or b is None:
@@ -893,7 +891,6 @@ def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
         a[m] = b[m]
         out.append(a)
     yaw, scale, dist, tilt = out
-    aspect = None if held.aspect is None else np.where(keep, fit.aspect, held.aspect)
     moments = held.moments
     if moments is not None and fit.moments is not None:
         moments = tuple(np.where(keep.reshape((-1,) + (1,) * (np.ndim(h) - 1)), f, h)
@@ -903,7 +900,7 @@ def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
         pre = pre.copy()
         pre[m] = np.eye(3) if fit.pre is None else fit.pre[m]
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(P, V, held.labels, yaw, scale, dist, cost, held.n_iter, moments, tilt, aspect, pre)
+    return _Result(held.P, held.V, held.labels, yaw, scale, dist, cost, held.n_iter, moments, tilt, held.aspect, pre)
 
 
 def _source_aspect(source: Source) -> np.ndarray:

@@ -244,15 +244,21 @@ def copy_factors(pc: np.ndarray, vc: np.ndarray, scales: tuple[float, ...]) -> t
 
 
 
+def _resting_ups(face_up: np.ndarray, face_count: np.ndarray, face_symmetry: np.ndarray) -> np.ndarray:
+    """The prototype's resting up directions (F', 3), not normalised: +z, then its recorded faces with members
+    (face_up (F, 3), face_count (F,), face_symmetry (F,), -1 = padding)."""
+    fu = np.asarray(face_up, np.float64).reshape(-1, 3)
+    have = (np.asarray(face_symmetry) >= 0) & (np.asarray(face_count) > 0)
+    return np.concatenate([[[0.0, 0.0, 1.0]], fu[have]])
+
+
 def face_candidates(found: np.ndarray, face_up: np.ndarray, face_count: np.ndarray, face_symmetry: np.ndarray
                     ) -> list[np.ndarray]:
     """Up directions searched for one (view, prototype): the one the pose search found, +z, and the prototype's
     recorded faces with members, those within ``SAME_FACE_DEG`` of an earlier one left out."""
-    fu = np.asarray(face_up, np.float64).reshape(-1, 3)
-    have = (np.asarray(face_symmetry) >= 0) & (np.asarray(face_count) > 0)
     cos_same = np.cos(np.deg2rad(SAME_FACE_DEG))
     keep: list[np.ndarray] = []
-    for u in [np.asarray(found, np.float64), np.array([0.0, 0.0, 1.0]), *fu[have]]:
+    for u in [np.asarray(found, np.float64), *_resting_ups(face_up, face_count, face_symmetry)]:
         n = float(np.linalg.norm(u))
         if n < 1e-9:
             continue
@@ -268,12 +274,16 @@ def rest_mask(ups: list[np.ndarray], face_up: np.ndarray, face_count: np.ndarray
     resting face of the prototype, +z or a recorded face with members (face_up (F, 3), face_count (F,),
     face_symmetry (F,), -1 = padding): the pose search's found direction, first in ``ups``, may be a tilt of the grid
     no member rests on."""
-    fu = np.asarray(face_up, np.float64).reshape(-1, 3)
-    faces = np.concatenate([[[0.0, 0.0, 1.0]], fu[(np.asarray(face_symmetry) >= 0) & (np.asarray(face_count) > 0)]])
+    faces = _resting_ups(face_up, face_count, face_symmetry)
     faces = faces / np.maximum(np.linalg.norm(faces, axis=1, keepdims=True), 1e-12)
     cos_same = np.cos(np.deg2rad(SAME_FACE_DEG))
     return np.array([bool(np.any(faces @ (np.asarray(u, np.float64) / max(float(np.linalg.norm(u)), 1e-12)) >= cos_same))
                      for u in ups], bool).reshape(-1)
+
+
+def _least(d: np.ndarray) -> float:
+    """The least of distances d (n,), inf when there are none."""
+    return float(d.min()) if len(d) else np.inf
 
 
 class ViewNormaliser:
@@ -310,8 +320,7 @@ class ViewNormaliser:
     def distance(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray,
                  obj: tuple[torch.Tensor, torch.Tensor] | None = None, cut: ViewCut | None = None) -> float:
         """The least of :meth:`face_distances` (inf when ``ups`` is empty)."""
-        per = self.face_distances(x, w, k, ups, camera, obj, cut)
-        return float(per.min()) if len(per) else np.inf
+        return _least(self.face_distances(x, w, k, ups, camera, obj, cut))
 
     def face_distances(self, x: np.ndarray, w: np.ndarray, k: int, ups: list[np.ndarray], camera: np.ndarray,
                        obj: tuple[torch.Tensor, torch.Tensor] | None = None, cut: ViewCut | None = None) -> np.ndarray:
@@ -403,8 +412,7 @@ class ViewNormaliser:
                 ups = face_candidates(up[i, k], face_up[k], face_count[k], face_symmetry[k])
                 ups = ups[:self.max_faces] if self.max_faces > 0 else ups
                 per = self.face_distances(X[i:i + 1], W[i:i + 1], int(k), ups, cam, obj, cuts[i])
-                out[i, k] = float(per.min()) if len(per) else np.inf
+                out[i, k] = _least(per)
                 if rest is not None:
-                    on = (rest_mask(ups, face_up[k], face_count[k], face_symmetry[k])
-                          if self.cut_rest and cuts[i] is not None else np.ones(len(ups), bool))
-                    rest[i, k] = float(per[on].min()) if on.any() else np.inf
+                    rest[i, k] = (_least(per[rest_mask(ups, face_up[k], face_count[k], face_symmetry[k])])
+                                  if self.cut_rest and cuts[i] is not None else out[i, k])
