@@ -313,7 +313,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         Dk, _, _, tk = _search_many(src, np.asarray(p["features"], np.float32), np.asarray(p["weights"], np.float32),
                                     np.asarray(p["aspect"], np.float64), scales, grid, chunk, poses=True)
         # the example's own distance for ``find_prototype_fuse``: both ways on the symmetric shortlist, one-way beyond
-        d1 = D if reverse is None else np.where(np.isfinite(reverse), 0.5 * (D + np.nan_to_num(reverse)), D)
+        d1 = both_ways(D, reverse)
         route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
                             float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)),
                             d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
@@ -370,14 +370,24 @@ def ranking_key(distance: np.ndarray, reverse: np.ndarray | None) -> np.ndarray:
     d = np.asarray(distance, np.float64)
     if reverse is None:
         return d
-    r = np.asarray(reverse, np.float64)
-    has = np.isfinite(r) & np.isfinite(d)
-    key = d.copy()
+    key = both_ways(d, reverse)
+    has = np.isfinite(np.asarray(reverse, np.float64)) & np.isfinite(d)
     if has.any():
-        key[has] = 0.5 * (d[has] + r[has])
         rest = ~has & np.isfinite(d)
         key[rest] = d[rest] + key[has].max() + 1.0
     return key
+
+
+def both_ways(distance: np.ndarray, reverse: np.ndarray | None) -> np.ndarray:
+    """The example's distance to each object (N,): the mean of the two directions where the reverse search ran (the
+    ``find_symmetric`` shortlist), the one-way distance elsewhere (a new array)."""
+    d = np.array(distance, np.float64)
+    if reverse is None:
+        return d
+    r = np.asarray(reverse, np.float64)
+    has = np.isfinite(r) & np.isfinite(d)
+    d[has] = 0.5 * (d[has] + r[has])
+    return d
 
 
 def _expansion_set(src, store: ObjectStore, ex: int, D: np.ndarray, weights: tuple[float, float],
