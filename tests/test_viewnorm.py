@@ -202,7 +202,7 @@ def test_switch_scores_a_match_by_the_better_of_its_two_distances(tiny_world):
     the library's calibrated score of that distance, 1 - T_4((ln d - mu_k) / sigma_k) (README "Score"; the Student-t
     tail from scipy here), and every other pair keeps the pose search's score.  The view-normalised distances are
     recomputed pair by pair on each view's shortlist written out from its definition (the ``top`` nearest within
-    1.5 x the nearest)."""
+    1.5 x the nearest, ``view_normalise_within`` set to 1.5)."""
     import json
     from scipy.stats import t as student_t
     from protomine.ingest.sharded import open_store
@@ -212,7 +212,7 @@ def test_switch_scores_a_match_by_the_better_of_its_two_distances(tiny_world):
     def matcher(top: int, score: bool):
         lib = read_library(tiny_world["library"])
         c = lib.config
-        c["mine"].update(view_normalise_top=top, view_normalise_score=score)
+        c["mine"].update(view_normalise_top=top, view_normalise_score=score, view_normalise_within=1.5)
         lib.attrs["config"] = json.dumps(c)
         return make_matcher(lib, tiny_world["cfg"])
 
