@@ -202,7 +202,7 @@ def test_switch_scores_a_match_by_the_better_of_its_two_distances(tiny_world):
     the library's calibrated score of that distance, 1 - T_4((ln d - mu_k) / sigma_k) (README "Score"; the Student-t
     tail from scipy here), and every other pair keeps the pose search's score.  The view-normalised distances are
     recomputed pair by pair on each view's shortlist written out from its definition (the ``top`` nearest within
-    1.5 x the nearest)."""
+    1.5 x the nearest, ``view_normalise_within`` set to 1.5)."""
     import json
     from scipy.stats import t as student_t
     from protomine.ingest.sharded import open_store
@@ -212,7 +212,7 @@ def test_switch_scores_a_match_by_the_better_of_its_two_distances(tiny_world):
     def matcher(top: int, score: bool):
         lib = read_library(tiny_world["library"])
         c = lib.config
-        c["mine"].update(view_normalise_top=top, view_normalise_score=score)
+        c["mine"].update(view_normalise_top=top, view_normalise_score=score, view_normalise_within=1.5)
         lib.attrs["config"] = json.dumps(c)
         return make_matcher(lib, tiny_world["cfg"])
 
@@ -459,3 +459,43 @@ def test_cut_rest_decides_by_the_resting_copies_and_scores_as_before(tiny_world)
     on.normaliser.distances(X, W, D, up, cams, cuts, rest)
     np.testing.assert_allclose(a["distance"], np.fmin(D, rest), rtol=1e-12)
     assert np.all(a["distance"][~plain] >= b["distance"][~plain])   # fewer copies: never nearer
+
+
+def test_within_sets_which_prototypes_an_uncut_view_also_compares_as_seen_from_its_camera(tiny_world):
+    """[mine] view_normalise_within: a view not cut off takes the view-normalised distance for the prototypes that
+    are among its view_normalise_top nearest by the pose search's distance *and* within this factor of its nearest
+    (the shortlist written out from that definition here, from the distances of a matcher without the view
+    normaliser); every other prototype keeps no view-normalised distance (NaN), and the decision is the nearest
+    of the lesser of the two distances."""
+    import json
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.library import read_library
+
+    def matcher(top: int, within: float):
+        lib = read_library(tiny_world["library"])
+        c = lib.config
+        c["mine"].update(view_normalise_top=top, view_normalise_within=within, view_normalise_score=False,
+                         view_normalise_calibrate=False, unseen_charge=0.0)
+        lib.attrs["config"] = json.dumps(c)
+        return make_matcher(lib, tiny_world["cfg"])
+
+    vols = open_store(tiny_world["store"]).read_single_views()
+    n = len(vols)
+    az = np.random.default_rng(3).uniform(0.0, 2 * np.pi, n)   # cameras 50 degrees up, as the captures'
+    cams = np.stack([np.cos(az), np.sin(az), np.full(n, np.tan(np.deg2rad(50.0)))], 1)
+    D = matcher(0, 1.5).match(vols, cams)["distance"]        # the pose search's distances alone
+    lists = {}
+    for within in (1.0, 100.0):
+        mt = matcher(2, within)
+        assert mt.normaliser.within == within
+        got = mt.match(vols, cams)
+        want = np.zeros(D.shape, bool)
+        for i in range(n):
+            fin = [k for k in np.argsort(D[i], kind="stable") if np.isfinite(D[i, k])][:2]
+            want[i, [k for k in fin if D[i, k] <= within * D[i, fin[0]]]] = True
+        np.testing.assert_array_equal(np.isfinite(got["view_distance"]), want)
+        np.testing.assert_array_equal(got["distance"], np.fmin(D, got["view_distance"]))
+        np.testing.assert_array_equal(got["best"], np.argmin(np.where(np.isfinite(got["distance"]), got["distance"], np.inf), 1))
+        lists[within] = want
+    assert lists[100.0].sum() > lists[1.0].sum()             # the wider factor lists more prototypes

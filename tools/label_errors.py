@@ -1,7 +1,10 @@
 """Where a demo's single-view errors are: every known view labelled again with the demo's library, broken down by
 true class (confusion matrix), wrong class vs flagged, the view's resting face (upright / tumbled, and how many mined
 members of its class rest on that face), the rotation error of the search's pose on its true class's prototype, and
-whether the view cuts the object off (its mask touches the image border, or lies beside a nearer object's mask).
+whether the view cuts the object off (its mask touches the image border, or lies beside a nearer object's mask), and
+for each misnamed view whether its true class's prototype was on the view-normalised shortlist (``[mine]
+view_normalise_top`` / ``view_normalise_within``: the prototypes also compared as seen from the view's camera) and the
+decision distances of its true class and of the class it was given.
 
     PYTHONPATH=. python tools/label_errors.py DEMO_OUT [CONFIG]
 
@@ -63,7 +66,7 @@ def main(folder: Path, config: str | None) -> None:
     M.Matcher.match = keep
     recs = M.label_captures(lib, [scenes / c for c in scen["single"]], cfg, seed=scen["demo_params"]["seed"])
     M.Matcher.match = orig
-    m = {k: np.concatenate([x[k] for x in kept]) for k in ("distance", "rotation")}
+    m = {k: np.concatenate([x[k] for x in kept]) for k in ("distance", "rotation", "view_distance")}
     rows = []
     for i, r in enumerate(recs):
         t = full.get(r["object"])
@@ -78,7 +81,9 @@ def main(folder: Path, config: str | None) -> None:
         border, occluded = cut_flags(scenes, r["object"])
         rows.append(dict(obj=r["object"], cls=c, pred=pred, ok=pred == c, flag=r["unknown"], tumbled=t["tumbled"] == "1",
                          face=t["face"], on_face=on_face[(c, t["face"])], border=border, occluded=occluded,
-                         rot=float(rotation_error_deg(Rw[None], Rt, O, g)[0])))
+                         rot=float(rotation_error_deg(Rw[None], Rt, O, g)[0]),
+                         listed=bool(np.isfinite(m["view_distance"][i, kt])), d_true=float(m["distance"][i, kt]),
+                         d_named=float(m["distance"][i, r["cluster"]]) if r["cluster"] is not None else float("nan")))
     acc = lambda xs: f"n {len(xs):3d} accuracy {np.mean([x['ok'] for x in xs]):.3f}" if xs else "n   0"  # noqa: E731
     print(f"{folder}: known views {acc(rows)}, flagged {np.mean([x['flag'] for x in rows]):.3f}")
     names = sorted(known)
@@ -95,11 +100,13 @@ def main(folder: Path, config: str | None) -> None:
         print(f"  {name:32s} {acc([x for x in rows if sel(x)])}")
     bad = [x for x in rows if not x["ok"]]
     print(f"wrong {len(bad)}: {sum(not x['flag'] for x in bad)} named another class, {sum(x['flag'] for x in bad)} also "
-          f"flagged; true-class pose within 30 deg for {sum(x['rot'] <= 30 for x in bad)}")
+          f"flagged; true-class pose within 30 deg for {sum(x['rot'] <= 30 for x in bad)}, true class on the "
+          f"view-normalised shortlist for {sum(x['listed'] for x in bad)}")
     for x in sorted(bad, key=lambda x: (x["cls"], x["obj"])):
         print(f"  {x['obj']:14s} {x['cls']:13s} -> {str(x['pred']):13s} flagged {x['flag']:d} tumbled {x['tumbled']:d} "
               f"face {x['face']:>2s} (mined on it {x['on_face']:2d}) border {x['border']:d} beside nearer {x['occluded']:d} "
-              f"true-class rotation error {x['rot']:5.1f}")
+              f"true-class rotation error {x['rot']:5.1f} on the shortlist {x['listed']:d} "
+              f"distance true {x['d_true']:.4f} named {x['d_named']:.4f}")
 
 
 if __name__ == "__main__":

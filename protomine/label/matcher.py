@@ -126,6 +126,7 @@ class Matcher:
     centre_offsets: tuple[float, ...] = ()
     cut_offsets: tuple[float, ...] = ()
     view_top: int = 0
+    view_within: float = 1.5
     view_score: bool = False
     view_calibrated: bool = False
     view_cut: bool = False
@@ -170,7 +171,7 @@ class Matcher:
         self.groups = [self.library.symmetry_group(k) for k in range(self.K)]   # once, not once per batch
         self.normaliser = (ViewNormaliser(self.P, self.V, pr["aspect"], self.scales, self.tilts,
                                           (pr["face_up"], pr["face_count"], pr["face_symmetry"]), top=self.view_top,
-                                          cut_within=(self.view_cut_decide if self.view_cut_decide > 0
+                                          within=self.view_within, cut_within=(self.view_cut_decide if self.view_cut_decide > 0
                                                       else self.view_cut_within), cut_rest=self.view_cut_rest)
                            if self.view_top > 0 else None)
         if "view_owner" in pr and len(pr["view_owner"]):
@@ -380,6 +381,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  rings=score_rings(lib_cfg, grid.radial_bins), mass=score_mass(lib_cfg), refine_top=int(m.get("label_refine_top", 0)),
                  centre_offsets=view_centre_offsets(lib_cfg),
                  cut_offsets=view_cut_offsets(lib_cfg), view_top=int(m.get("view_normalise_top", 0)),
+                 view_within=float(m.get("view_normalise_within", 1.5)),
                  view_score=bool(m.get("view_normalise_score", False)), view_calibrated=view_calibrated,
                  view_cut=bool(m.get("view_normalise_cut", False)), view_cut_within=m.get("view_normalise_cut_within"),
                  view_cut_decide=float(m.get("view_normalise_cut_decide", 0.0)),
