@@ -329,7 +329,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     if k_rr > 0 and (route is None or not route.taken):   # k-reciprocal re-ranking of the shortlist (``curate.rerank``)
         rerank = _reranked(store, ex, D, ranking_key(D, reverse), X1[0], W1[0], aspect, weights, scales, grid, k_rr,
                            int(cfg["mine"].get("find_rerank_shortlist", 48)),
-                           float(cfg["mine"].get("find_rerank_weight", 0.1)))
+                           float(cfg["mine"].get("find_rerank_weight", 0.3)))
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
                    world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route, rerank)
