@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 from ranking_measures import p10_ap
 
 from protomine.curate.oneshot import find_similar, ranking_key
@@ -123,6 +124,13 @@ def test_find_ranks_by_the_rerank_only_when_on():
     assert set(on.order[:8]) == set(off.order[:8])
     assert list(on.order[8:]) == list(off.order[8:])
     np.testing.assert_array_equal(on.rank_key, on.rerank)
+    # matches.csv's both_ways stays the symmetric distance (the mean of the two directions), not the re-ranking's key
+    bw = {r["object"]: r["both_ways"] for r in off.rows()}
+    for r in on.rows():
+        assert r["both_ways"] == bw[r["object"]]
+        if r["both_ways"] is not None:
+            j = list(on.object).index(r["object"])
+            assert r["both_ways"] == pytest.approx(0.5 * (on.distance[j] + on.reverse[j]))
 
 
 def _cfg(k: int) -> dict:

@@ -69,6 +69,13 @@ as the object (``Matches.reverse``), and ranked by the mean of the two direction
 (``ranking_key``, ``Matches.rank_key``).  ``distance`` and ``score`` stay the one-way search's, which the score's
 calibration measures.  With ``find_expand`` as well, the expansion takes its k nearest by the symmetric ranking of
 the first search, and the expanded search's shortlist is searched both ways again.
+
+k-reciprocal re-ranking (``[mine] find_rerank`` = k > 0; default 13, 0 = off)
+------------------------------------------------------------------------------
+When the known-class route does not rank, the first ``find_rerank_shortlist`` objects of the ranking above are
+re-ranked by their k-reciprocal neighbourhoods among themselves and the example (``curate.rerank``: each is searched
+as the one prototype against the others; Zhong et al., CVPR 2017).  ``Matches.rerank`` holds the key; ``distance``,
+``score`` and ``both_ways`` stay as above.
 """
 from __future__ import annotations
 
@@ -155,11 +162,12 @@ class Matches:
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
-        # both_ways: the shortlist's symmetric distance, its ranking key (None beyond it or without it)
+        # both_ways: the shortlist's symmetric distance (None beyond it or without it; it ranks unless the route or
+        # ``[mine] find_rerank`` does)
         taken = self.route is not None and self.route.taken
+        bw = None if self.reverse is None else both_ways(self.distance, self.reverse)
         return [{"object": str(self.object[i]), "distance": float(self.distance[i]),
-                 "both_ways": (None if taken or self.reverse is None or not np.isfinite(self.reverse[i])
-                               else float(self.rank_key[i])),
+                 "both_ways": (None if taken or bw is None or not np.isfinite(self.reverse[i]) else float(bw[i])),
                  "score": float(self.score[i]),
                  "prototype": int(self.route.cluster) if taken else None,
                  "prototype_score": float(self.route.score[i]) if taken else None,
