@@ -17,7 +17,7 @@ example's class are near *each other* as well, from more sides than the example 
 4. The Jaccard distance of the example to object i, 1 - sum_j min(V_ej, V_ij) / sum_j max(V_ej, V_ij), mixed with the
    example's own divided distance: d* = (1 - w) d_J + w d (the paper's final distance; w = ``find_rerank_weight``).
    S is ranked by d*; every object beyond S follows in its one-shot order.  The paper's local query expansion (k2)
-   is not used (it lowered precision on the demo stores: README "Find").
+   is not used (k2 = 3 lost the upright demo's draw: README "Find").
 
 Used only when the known-class route (``curate.knownclass``) does not rank: an example the route takes ranks by its
 prototype.  ``distance``, ``score``, ``both_ways`` and ``--add`` stay the one-shot search's.  Cost: n one-prototype
