@@ -105,10 +105,12 @@ def _scene():
 
 
 def _cfg(expand: int = 0, symmetric: int = 0) -> dict:
-    """The default config with find's query expansion and symmetric re-ranking set (both off unless given)."""
+    """The default config with find's query expansion and symmetric re-ranking set (both off unless given), the
+    k-reciprocal re-ranking off."""
     cfg = load_config(None)
     cfg["mine"]["find_expand"] = expand
     cfg["mine"]["find_symmetric"] = symmetric
+    cfg["mine"]["find_rerank"] = 0                # the k-reciprocal re-ranking (tests/test_find_rerank.py) not under test
     return cfg
 
 

@@ -31,6 +31,7 @@ def _cfg(t: float, weak: float = 0.0) -> dict:
     cfg["mine"]["find_prototype_weak"] = weak
     cfg["mine"]["find_expand"] = 0
     cfg["mine"]["find_symmetric"] = 16
+    cfg["mine"]["find_rerank"] = 0                # the fallback is the one-shot ranking itself (tests/test_find_rerank.py)
     return cfg
 
 

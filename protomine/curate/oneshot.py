@@ -69,6 +69,13 @@ as the object (``Matches.reverse``), and ranked by the mean of the two direction
 (``ranking_key``, ``Matches.rank_key``).  ``distance`` and ``score`` stay the one-way search's, which the score's
 calibration measures.  With ``find_expand`` as well, the expansion takes its k nearest by the symmetric ranking of
 the first search, and the expanded search's shortlist is searched both ways again.
+
+k-reciprocal re-ranking (``[mine] find_rerank`` = k > 0; default 13, 0 = off)
+------------------------------------------------------------------------------
+When the known-class route does not rank, the first ``find_rerank_shortlist`` objects of the ranking above are
+re-ranked by their k-reciprocal neighbourhoods among themselves and the example (``curate.rerank``: each is searched
+as the one prototype against the others; Zhong et al., CVPR 2017).  ``Matches.rerank`` holds the key; ``distance``,
+``score`` and ``both_ways`` stay as above.
 """
 from __future__ import annotations
 
@@ -93,6 +100,7 @@ from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
 from .knownclass import KnownRoute, known_route
 from .names import check_name, refresh_gallery
+from .rerank import rerank_pairwise, reranked_key
 
 MIN_CAL_MEMBERS = 3
 MAX_CAL_MEMBERS = 64
@@ -135,24 +143,31 @@ class Matches:
                                         # prototype; NaN beyond the shortlist; None when off
     route: KnownRoute | None = None     # ``[mine] find_prototype``: the known-class route (``curate.knownclass``); None
                                         # when off; when ``route.taken`` its key ranks
+    rerank: np.ndarray | None = None    # (N,) ``[mine] find_rerank``: the k-reciprocal re-ranking's key
+                                        # (``curate.rerank``), which ranks when the route does not; None when off
     order: np.ndarray = field(init=False)
     rank_key: np.ndarray = field(init=False)
 
     def __post_init__(self) -> None:
         # ascending distance; unmatched (inf) last; ties broken by object id for determinism; the example
         # itself is not a find.  With ``reverse``: the shortlist by its symmetric distance, then the rest by distance
-        self.rank_key = (self.route.key if self.route is not None and self.route.taken
-                         else ranking_key(self.distance, self.reverse))
+        if self.route is not None and self.route.taken:
+            self.rank_key = self.route.key
+        elif self.rerank is not None:
+            self.rank_key = self.rerank
+        else:
+            self.rank_key = ranking_key(self.distance, self.reverse)
         order = np.lexsort((self.object.astype(str), self.rank_key))
         self.order = order[order != self.example_index]
 
     def rows(self, top: int | None = None) -> list[dict]:
         idx = self.order if top is None else self.order[:top]
-        # both_ways: the shortlist's symmetric distance, its ranking key (None beyond it or without it)
+        # both_ways: the shortlist's symmetric distance (None beyond it or without it; it ranks unless the route or
+        # ``[mine] find_rerank`` does)
         taken = self.route is not None and self.route.taken
+        bw = None if self.reverse is None else both_ways(self.distance, self.reverse)
         return [{"object": str(self.object[i]), "distance": float(self.distance[i]),
-                 "both_ways": (None if taken or self.reverse is None or not np.isfinite(self.reverse[i])
-                               else float(self.rank_key[i])),
+                 "both_ways": (None if taken or bw is None or not np.isfinite(self.reverse[i]) else float(bw[i])),
                  "score": float(self.score[i]),
                  "prototype": int(self.route.cluster) if taken else None,
                  "prototype_score": float(self.route.score[i]) if taken else None,
@@ -317,9 +332,32 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
                             float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)),
                             d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
+    rerank = None
+    k_rr = int(cfg["mine"].get("find_rerank", 0))
+    if k_rr > 0 and (route is None or not route.taken):   # k-reciprocal re-ranking of the shortlist (``curate.rerank``)
+        rerank = _reranked(store, ex, D, ranking_key(D, reverse), X1[0], W1[0], aspect, weights, scales, grid, k_rr,
+                           int(cfg["mine"].get("find_rerank_shortlist", 48)),
+                           float(cfg["mine"].get("find_rerank_weight", 0.3)))
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
-                   world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route)
+                   world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route, rerank)
+
+
+def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np.ndarray, w: np.ndarray, aspect: float,
+              weights: tuple[float, float], scales: tuple[float, ...], grid: TiltGrid | None, k: int, n: int,
+              weight: float) -> np.ndarray | None:
+    """``[mine] find_rerank``: the k-reciprocal key (N,) of the first ``n`` objects by ``key`` (ties by object id; the
+    example and unmatched objects left out), the rest after them (``curate.rerank``); None with fewer than 2 to
+    re-rank.  x (C, R, A, H), w (R, A, H): the one-shot prototype, the example's row of the pairwise search is D."""
+    order = np.lexsort((np.asarray(store.ids).astype(str), key))
+    short = order[(order != ex) & np.isfinite(key[order])][:n]
+    if len(short) < 2:
+        return None
+    Xs, Ws = _features(store, short, weights)
+    X = np.concatenate([x[None], Xs]); W = np.concatenate([w[None], Ws])
+    aspects = np.concatenate([[aspect], _aspects(store, short)])
+    pair = rerank_pairwise(X, W, aspects, scales, grid, np.concatenate([[0.0], D[short]]))
+    return reranked_key(key, short, pair, k, weight)
 
 
 def _search(src, P: np.ndarray, V: np.ndarray, aspect: float, scales: tuple[float, ...], grid: TiltGrid | None,
