@@ -28,7 +28,9 @@ The mining row's invented prototypes fill their whole grid (no empty margin arou
 volume), so a tilted copy's cells beyond its prototype's cylinder stay unknown (``tilts.empty_margin``).
 
 The mining row (``bench_tilt_mining``) reports ``seconds`` and ``cpu_s`` (wall and CPU seconds of the fit),
-``peak_rss_mb``, ``n_iter`` and ``nmi``.
+``main_thread_cpu_s`` (the CPU seconds of the fit's own thread, work the pool's threads do not share),
+``ready_threads`` (``cores.ready_threads`` over the fit: the mean number of its threads running or waiting only
+for a core, which the load barely moves), ``peak_rss_mb``, ``n_iter`` and ``nmi``.
 
 Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool's work is seen, machine at load 6-9)
 ----------------------------------------------------------------------------------------------------------------
@@ -98,6 +100,7 @@ import time
 
 import numpy as np
 
+from .. import cores
 from ..cores import one_blas_thread
 from . import tilts
 from .posesearch import PoseBank
@@ -228,14 +231,19 @@ def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int
     grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels)
     usage = resource.getrusage(resource.RUSAGE_SELF)
     c0 = usage.ru_utime + usage.ru_stime
+    r0, m0 = cores.ready_clock(), time.thread_time()
     t0 = time.perf_counter()
     # the mining row's engine settings (protomine/bench.py), the default config's chunk and tilt grid
     model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=n_init, max_iter=max_iter, chunk_size=2048, random_state=seed,
                        sample_size=2048, cache_mb=128, tilts=grid).fit(ArraySource(X, W, aspect))
     secs = time.perf_counter() - t0
+    main_cpu = time.thread_time() - m0
     usage = resource.getrusage(resource.RUSAGE_SELF)
-    # CPU seconds beside the wall clock: on a shared machine the wall clock also counts the waits for a core
+    # CPU seconds beside the wall clock: on a shared machine the wall clock also counts the waits for a core;
+    # the main thread's own CPU seconds (the part the pool's threads cannot share) and the mean number of threads
+    # ready to run (cores.ready_threads) say what the wall clock would be on idle cores, whatever the load
     return {"n_objects": n, "seconds": secs, "cpu_s": usage.ru_utime + usage.ru_stime - c0,
+            "main_thread_cpu_s": main_cpu, "ready_threads": cores.ready_threads(r0, secs),
             "peak_rss_mb": usage.ru_maxrss / 1024.0,
             "n_iter": int(model.n_iter_), "nmi": float(normalized_mutual_info_score(labels, model.labels_)),
             "load_1m": os.getloadavg()[0]}
