@@ -92,6 +92,28 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   refinement 176 s (its copies ~66 s with their geometries, column factors 50 s; all geometries 27 s, of which
   enclosing circles 15 s), the first level 62 s, the aligned sums' transform and untilt 45 s, the fit's finish 18 s,
   the seeding 12 s.
+- Again (issue 13; cProfile with a process-time clock, one torch thread, load 6-10): the row's refinement 3.5-4.6 s,
+  of which products ~1.45 s, copies ~1.0 s (resampling 0.26 ms a copy: ``grid_sample`` 46%, the inside points'
+  numpy 27%), column factors ~1.0 s (0.06 ms a column at scale 1, 0.09-0.12 at the others: the radial and height
+  scaling products are ~45% of a scaled column).  The products by kind: level 1, 273 products per previous
+  direction (median 8 copies x 9 objects) and 22 against a group's union (24.5 x 21.5); level 2, 785 (9 x 4) and
+  18 (35 x 20.5).  A product costs ~0.15 ms + ~40 us a copy (its factors, 97 KB, gathered from the block's and
+  stacked) + ~20 us an object (gathered) + ~4 us a (copy, object) pair: moving data, not arithmetic (the
+  refinement's 13 GFLOP of products would take ~0.25 s at the first level's rate).  Mining 400 tumbled objects
+  (process-time cProfile, the pool on; the clock counts the pool's work under the main thread's calls): 160 s CPU,
+  the search 117 s (the refinement 92 s: copies 41 s with their geometries 17 s, column factors 34 s; the first
+  level 36 s), aligned sums 15 s, the fit's finish 11.5 s, seeding 5 s.  Mining 300 (2 threads, load 8): 144 s
+  CPU, the main thread 25 s of it (the refinement's bookkeeping 17 s, of which the copies' geometries 8.8 s:
+  enclosing circles 5.3 s, hulls 1.2 s), ``ready_threads`` 2.0.
+- Tried, not kept: (4) the column factors' azimuthal transform by ``torch.fft.rfft`` (and its real and imaginary
+  rows copied into place) instead of the two half-size DFT products: 790-970 us a block of 10 copies against 330.
+  (5) The complex products with the objects' real and imaginary parts stacked, [o_re; o_im] ((M, 2 n) products),
+  not the copies' ((2 M, n)): no per-product stacking of the copies' factors, but ``bmm`` sums small shapes in
+  another order (the same dot products differ in the last bits at (M, n) = (8, 5), (48, 5), (9, 7); equal at
+  (8, 20), (48, 30)), so not the same values.  (6) One stacked layout of a block's factors for all its products:
+  the stacking it saves copies a product's gathered columns, already in cache (0.16 s of the row's refinement).
+  At the row's settings the 1.3 target needs the refinement at ~1.3-1.6 s: below what the copies and their factors
+  alone cost (~2 s, a fixed cost of ~3,500 finer copies a pass whatever the number of objects).
 """
 from __future__ import annotations
 
