@@ -52,7 +52,8 @@ in more processes) and says so (``single_process``).
 (e) large [``large``]: mini-batch mining of ``--size`` objects streamed from disk, and its quality against
     full batches on 10,000 (``protomine/scale/streamed.py``; targets at 100,000: < 10 minutes, < 4 GB).
 (e') tilt mining [``tilt_mining``]: mining ``--tilt-size`` tumbled objects (default 3,000) with the default tilt
-    grid, K = 16, in its own subprocess: ``seconds``, ``cpu_s``, ``peak_rss_mb``, ``n_iter``, ``nmi`` (targets at 3,000: under
+    grid, K = 16, in its own subprocess: ``seconds``, ``cpu_s``, ``main_thread_cpu_s`` (the fit's own thread),
+    ``ready_threads``, ``peak_rss_mb``, ``n_iter``, ``nmi`` (targets at 3,000: under
     5 minutes and 2 GB on 2 cores; ``protomine/mine/tiltbench.py``).
 (f) ``--scale`` only: this process against a local Dask cluster of 1 and 2 workers
     (``protomine/scale/benchmark.py``).

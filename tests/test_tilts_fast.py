@@ -397,3 +397,19 @@ def test_tilt_fit_runs_numpy_blas_on_one_thread_with_the_same_result(monkeypatch
         assert seen and all(n == 2 for n in seen[0]), seen
     for name in names:
         np.testing.assert_array_equal(getattr(fast, name), getattr(twin, name), err_msg=name)
+
+
+@pytest.mark.parametrize("shape, rho_max, z_max", [((5, 16, 6), 1.0, 0.73), ((5, 16, 6), 1.0, 1.91), ((3, 7, 4), 1.3, 0.5)])
+def test_cell_points_equal_the_cylindrical_cell_centres(shape, rho_max, z_max):
+    """The grid's cell centres (DEVELOPERS.md conventions: radial bin i at (i + 1/2) / R rho_max, azimuth bin j at
+    (j + 1/2) 360 / A degrees from x, height bin k at (k + 1/2) / H z_max), one cell at a time with math's cos and sin,
+    against :func:`tilts._cell_points` (its x, y kept per grid, only z computed per call): asked twice with
+    different heights, so a kept x, y that depended on z_max would fail."""
+    import math
+    R, A, H = shape
+    tilts._cell_points(R, A, H, rho_max, 2.5 * z_max)  # the kept x, y filled by another height first
+    got = tilts._cell_points(R, A, H, rho_max, z_max)
+    want = np.array([[(i + 0.5) / R * rho_max * math.cos((j + 0.5) / A * 2 * math.pi),
+                      (i + 0.5) / R * rho_max * math.sin((j + 0.5) / A * 2 * math.pi), (k + 0.5) / H * z_max]
+                     for i in range(R) for j in range(A) for k in range(H)])
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)

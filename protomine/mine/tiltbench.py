@@ -28,7 +28,9 @@ The mining row's invented prototypes fill their whole grid (no empty margin arou
 volume), so a tilted copy's cells beyond its prototype's cylinder stay unknown (``tilts.empty_margin``).
 
 The mining row (``bench_tilt_mining``) reports ``seconds`` and ``cpu_s`` (wall and CPU seconds of the fit),
-``peak_rss_mb``, ``n_iter`` and ``nmi``.
+``main_thread_cpu_s`` (the CPU seconds of the fit's own thread, work the pool's threads do not share),
+``ready_threads`` (``cores.ready_threads`` over the fit: the mean number of its threads running or waiting only
+for a core, which the load barely moves), ``peak_rss_mb``, ``n_iter`` and ``nmi``.
 
 Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool's work is seen, machine at load 6-9)
 ----------------------------------------------------------------------------------------------------------------
@@ -90,6 +92,37 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   refinement 176 s (its copies ~66 s with their geometries, column factors 50 s; all geometries 27 s, of which
   enclosing circles 15 s), the first level 62 s, the aligned sums' transform and untilt 45 s, the fit's finish 18 s,
   the seeding 12 s.
+- Again (issue 13; cProfile with a process-time clock, one torch thread, load 6-10): the row's refinement 3.5-4.6 s,
+  of which products ~1.45 s, copies ~1.0 s (resampling 0.26 ms a copy: ``grid_sample`` 46%, the inside points'
+  numpy 27%), column factors ~1.0 s (0.06 ms a column at scale 1, 0.09-0.12 at the others: the radial and height
+  scaling products are ~45% of a scaled column).  The products by kind: level 1, 273 products per previous
+  direction (median 8 copies x 9 objects) and 22 against a group's union (24.5 x 21.5); level 2, 785 (9 x 4) and
+  18 (35 x 20.5).  A product costs ~0.15 ms + ~40 us a copy (its factors, 97 KB, gathered from the block's and
+  stacked) + ~20 us an object (gathered) + ~4 us a (copy, object) pair: moving data, not arithmetic (the
+  refinement's 13 GFLOP of products would take ~0.25 s at the first level's rate).  Mining 400 tumbled objects
+  (process-time cProfile, the pool on; the clock counts the pool's work under the main thread's calls): 160 s CPU,
+  the search 117 s (the refinement 92 s: copies 41 s with their geometries 17 s, column factors 34 s; the first
+  level 36 s), aligned sums 15 s, the fit's finish 11.5 s, seeding 5 s.  Mining 300 (2 threads, load 8): 144 s
+  CPU, the main thread 25 s of it (the refinement's bookkeeping 17 s, of which the copies' geometries 8.8 s:
+  enclosing circles 5.3 s, hulls 1.2 s), ``ready_threads`` 2.0.
+- Tried, not kept: (4) the column factors' azimuthal transform by ``torch.fft.rfft`` (and its real and imaginary
+  rows copied into place) instead of the two half-size DFT products: 790-970 us a block of 10 copies against 330.
+  (5) The complex products with the objects' real and imaginary parts stacked, [o_re; o_im] ((M, 2 n) products),
+  not the copies' ((2 M, n)): no per-product stacking of the copies' factors, but ``bmm`` sums small shapes in
+  another order (the same dot products differ in the last bits at (M, n) = (8, 5), (48, 5), (9, 7); equal at
+  (8, 20), (48, 30)), so not the same values.  (6) One stacked layout of a block's factors for all its products:
+  the stacking it saves copies a product's gathered columns, already in cache (0.16 s of the row's refinement).
+  At the row's settings the 1.3 target needs the refinement at ~1.3-1.6 s: below what the copies and their factors
+  alone cost (~2 s, a fixed cost of ~3,500 finer copies a pass whatever the number of objects).
+- 3,000 tumbled objects (this row, seed 0, this code, load 4-7): 590.7 s CPU, 1,077 s wall, the main thread 32 s,
+  ``ready_threads`` 1.99, peak 1,848 MB, n_iter 15, NMI 0.9485.
+- Not tried in the search (``posesearch``, every pose search's products; it changes the last bits): the complex
+  products by Gauss's three real products instead of four, k1 = p_re (o_re + o_im), k2 = (p_re + p_im) o_re,
+  k3 = (p_re - p_im) o_im, Re = k1 - k3, Im = k1 - k2 (the combination would ride on the inverse transform's
+  matrix).  Measured alone, one thread, load 8: 17 bins x 672 features, 160 prototypes x 512 objects 89.5 -> 72.3 ms,
+  960 x 256 315 -> 214 ms, 16 x 8 0.40 -> 0.38 ms; largest error against float64 3.6e-7 -> 6.6e-7 of the largest
+  value.  It would cut the yaw search, the first level and the refinement's products alike (the ``assignment`` row's
+  FFT / dense ratio, issue 16), not this row's ratio.
 """
 from __future__ import annotations
 
@@ -98,6 +131,7 @@ import time
 
 import numpy as np
 
+from .. import cores
 from ..cores import one_blas_thread
 from . import tilts
 from .posesearch import PoseBank
@@ -228,14 +262,19 @@ def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int
     grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels)
     usage = resource.getrusage(resource.RUSAGE_SELF)
     c0 = usage.ru_utime + usage.ru_stime
+    r0, m0 = cores.ready_clock(), time.thread_time()
     t0 = time.perf_counter()
     # the mining row's engine settings (protomine/bench.py), the default config's chunk and tilt grid
     model = PoseKMeans(n_clusters=k, scales=SCALES, n_init=n_init, max_iter=max_iter, chunk_size=2048, random_state=seed,
                        sample_size=2048, cache_mb=128, tilts=grid).fit(ArraySource(X, W, aspect))
     secs = time.perf_counter() - t0
+    main_cpu = time.thread_time() - m0
     usage = resource.getrusage(resource.RUSAGE_SELF)
-    # CPU seconds beside the wall clock: on a shared machine the wall clock also counts the waits for a core
+    # CPU seconds beside the wall clock: on a shared machine the wall clock also counts the waits for a core;
+    # the main thread's own CPU seconds (the part the pool's threads cannot share) and the mean number of threads
+    # ready to run (cores.ready_threads) say what the wall clock would be on idle cores, whatever the load
     return {"n_objects": n, "seconds": secs, "cpu_s": usage.ru_utime + usage.ru_stime - c0,
+            "main_thread_cpu_s": main_cpu, "ready_threads": cores.ready_threads(r0, secs),
             "peak_rss_mb": usage.ru_maxrss / 1024.0,
             "n_iter": int(model.n_iter_), "nmi": float(normalized_mutual_info_score(labels, model.labels_)),
             "load_1m": os.getloadavg()[0]}
