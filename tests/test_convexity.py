@@ -308,3 +308,138 @@ def test_a_run_of_crumbs_mixing_two_colours_is_not_a_part():
                             colours=rgb, regroup=True)
     assert len(np.unique(parts)) == 2
     assert parts[0] != parts[-1]
+
+
+def _strip_between(a_rgb, leg_rgb, b_rgb):
+    """A 4 x 4 cm patch A (x 0-4 cm, 4 mm grid, one frame sees it as one segment), a 4 x 4 cm patch B 24 cm
+    along x (its own segment) and between them a strip 2 voxels wide (x 4.4-23.6 cm, 98 voxels), all of it on
+    a boundary in that frame (unvoted: a thin part on an edge in every frame, like a tripod's leg), flat: its
+    near end 4 mm from A, its far end 4 mm from B.  Colours A / strip / B given as RGB."""
+    from protomine.ingest.convexity import view_votes
+    s = 0.004
+    g = np.stack(np.meshgrid(np.arange(11) * s, np.arange(11) * s, indexing="ij"), -1).reshape(-1, 2)
+    strip = np.stack(np.meshgrid(0.044 + np.arange(49) * s, [0.016, 0.020], indexing="ij"), -1).reshape(-1, 2)
+    xy = np.concatenate([g, strip, g + [0.24, 0.0]])
+    what = np.r_[np.zeros(len(g), int), np.ones(len(strip), int), np.full(len(g), 2)]
+    pts = np.c_[xy, np.zeros(len(xy))]
+    rgb = np.array([a_rgb, leg_rgb, b_rgb], float)[what]
+    V = len(pts)
+    votes = view_votes(np.arange(V), np.array([0, -1, 1])[what], np.zeros(V, int), V)
+    return pts, what, rgb, votes
+
+
+def test_grown_crumbs_take_the_body_their_surface_comes_from():
+    """[ingest] crumb_grow.  A blue strip of crumbs runs from a blue body B (flat, one colour: the surface goes on
+    unbroken) to 4 mm beside a red patch A (a colour step cuts it from A).  By nearest voxel (neither switch) the
+    strip's half nearer A goes to A; as a run of its own (crumb_regroup) it is a third part; grown along the
+    surface it is all B's: two parts, A and B with the strip.  Expected answer by construction; partitions
+    compared with scikit-learn's adjusted_rand_score (reference implementation)."""
+    from sklearn.metrics import adjusted_rand_score
+    red, blue = [200, 40, 20], [30, 60, 190]
+    pts, what, rgb, votes = _strip_between(red, blue, blue)
+    V = len(pts)
+    normals, lab = np.tile([0.0, 0.0, 1.0], (V, 1)), np.zeros(V, int)
+    kw = dict(adjacency=0.006, concave_deg=15.0, votes=votes, colours=rgb)
+    want = np.minimum(what, 1)                                   # A | strip + B
+    near, _ = convex_parts(pts, normals, lab, **kw)
+    assert adjusted_rand_score(want, near) < 0.9
+    assert len(np.unique(convex_parts(pts, normals, lab, regroup=True, **kw)[0])) == 3
+    grown, _ = convex_parts(pts, normals, lab, grow=True, **kw)
+    assert adjusted_rand_score(want, grown) == 1.0
+
+
+def test_grown_crumbs_stop_at_a_close_colour(monkeypatch):
+    """[ingest] crumb_grow's colour test.  A red patch A and an orange body B with an orange strip of crumbs
+    between them: red and orange chromaticities lie 0.05 apart, under the colour step (0.08: no cut between
+    the strip and A) but over CRUMB_CHROMA (0.03), so A may not grow into the strip and all of it is B's.
+    With the test widened (CRUMB_CHROMA 1.0) A takes the strip's half nearer it.  Expected answers by
+    construction (chromaticity r / (r + g + b): red (0.769, 0.154, 0.077), orange (0.735, 0.191, 0.074))."""
+    import protomine.ingest.convexity as cx
+    red, orange = [200, 40, 20], [200, 52, 20]
+    pts, what, rgb, votes = _strip_between(red, orange, orange)
+    V = len(pts)
+    normals, lab = np.tile([0.0, 0.0, 1.0], (V, 1)), np.zeros(V, int)
+    kw = dict(adjacency=0.006, concave_deg=15.0, votes=votes, colours=rgb, grow=True)
+    parts, _ = convex_parts(pts, normals, lab, **kw)
+    assert len(np.unique(parts)) == 2
+    assert (parts[what == 1] == parts[what == 2][0]).all() and parts[0] != parts[-1]
+    monkeypatch.setattr(cx, "CRUMB_CHROMA", 1.0)
+    wide, _ = convex_parts(pts, normals, lab, **kw)
+    strip = wide[what == 1]
+    assert (strip == wide[0]).sum() >= 40 and (strip == wide[-1]).sum() >= 40
+
+
+def _grow_naive(points, pairs, fused, comp, small, colours, tol, dark):
+    """Reference twin of convexity._grow_crumbs from its definition: per part, Bellman-Ford relaxation (repeat
+    over every admissible pair until no distance drops) from its voxels next to a crumb, through crumbs whose
+    chromaticity r / (r + g + b) lies within tol of the median of the part's own bright voxels' (or that are
+    too dark to have one); each crumb to the part of the least distance (ties: the lower part id)."""
+    V = len(points)
+    best, take = [float("inf")] * V, list(comp)
+    def chroma(c):
+        t = float(sum(c))
+        return [c[0] / t, c[1] / t, c[2] / t]
+    parts = sorted({int(comp[v]) for v in range(V) if not small[v]})
+    for p in parts:
+        own = [v for v in range(V) if comp[v] == p and not small[v]]
+        bright = [chroma(colours[v]) for v in own if sum(colours[v]) >= dark]
+        med = [float(np.median([c[k] for c in bright])) for k in range(3)]
+        def open_(v):
+            if comp[v] == p and not small[v]:
+                return True
+            if not small[v]:
+                return False
+            if sum(colours[v]) < dark:
+                return True
+            c = chroma(colours[v])
+            return sum((c[k] - med[k]) ** 2 for k in range(3)) ** 0.5 <= tol
+        edges = []
+        for (a, b), f in zip(pairs, fused):
+            if f or not (small[a] or small[b]) or not (open_(a) and open_(b)):
+                continue
+            w = max(float(np.linalg.norm(points[a] - points[b])), 1e-9)
+            edges.append((a, b, w))
+        dist = [float("inf")] * V
+        for a, b, _ in edges:
+            for v in (a, b):
+                if comp[v] == p and not small[v]:
+                    dist[v] = 0.0
+        changed = True
+        while changed:
+            changed = False
+            for a, b, w in edges:
+                for x, y in ((a, b), (b, a)):
+                    if dist[x] + w < dist[y]:
+                        dist[y] = dist[x] + w
+                        changed = True
+        for v in range(V):
+            if small[v] and dist[v] < best[v]:
+                best[v], take[v] = dist[v], p
+    reached = [small[v] and best[v] < float("inf") for v in range(V)]
+    return np.array([take[v] if reached[v] else comp[v] for v in range(V)]), np.array(
+        [small[v] and not reached[v] for v in range(V)])
+
+
+def test_grow_crumbs_matches_its_naive_twin():
+    """_grow_crumbs (sparse Dijkstra per part) against _grow_naive (Bellman-Ford from the definition) on random
+    voxel sets: 3 parts, a third of the voxels crumbs, a fifth of the pairs cut, colours from three hues
+    with noise and a few too dark."""
+    from scipy.spatial import cKDTree
+    from protomine.ingest.convexity import CRUMB_CHROMA, DARK_RGB, _grow_crumbs
+    for seed in range(4):
+        rng = np.random.default_rng(seed)
+        V = 90
+        pts = rng.uniform(0.0, 0.05, size=(V, 3))
+        pairs = cKDTree(pts).query_pairs(0.012, output_type="ndarray")
+        fused = rng.uniform(size=len(pairs)) < 0.2
+        small = rng.uniform(size=V) < 0.35
+        comp = np.where(small, np.arange(V) + 100, rng.integers(0, 3, V))
+        hue = np.array([[200.0, 40.0, 20.0], [200.0, 48.0, 20.0], [30.0, 60.0, 190.0]])
+        rgb = hue[rng.integers(0, 3, V)] + rng.normal(0.0, 4.0, (V, 3))
+        rgb[rng.uniform(size=V) < 0.1] = [10.0, 10.0, 10.0]
+        rgb = np.clip(rgb, 1.0, 255.0)
+        got_c, got_s = _grow_crumbs(pts, pairs, fused, comp, small, rgb)
+        want_c, want_s = _grow_naive(pts, pairs, fused, comp, small, rgb, CRUMB_CHROMA, DARK_RGB)
+        assert (got_s == want_s).all()
+        assert (got_c == want_c).all()
+        assert 0 < (small & ~got_s).sum() < small.sum()        # some crumbs grown, some not: the case is not trivial

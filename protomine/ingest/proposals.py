@@ -556,7 +556,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
         votes = _frame_votes(cap, frames, above_sel, pts, eps / 3.0, c["concave_deg"]) if VIEW_CHECK else None
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
-                                colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)))
+                                colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)),
+                                grow=bool(c.get("crumb_grow", False)))
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0)
