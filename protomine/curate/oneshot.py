@@ -349,8 +349,7 @@ def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np
     """``[mine] find_rerank``: the k-reciprocal key (N,) of the first ``n`` objects by ``key`` (ties by object id; the
     example and unmatched objects left out), the rest after them (``curate.rerank``); None with fewer than 2 to
     re-rank.  x (C, R, A, H), w (R, A, H): the one-shot prototype, the example's row of the pairwise search is D."""
-    order = np.lexsort((np.asarray(store.ids).astype(str), key))
-    short = order[(order != ex) & np.isfinite(key[order])][:n]
+    short = _nearest(store, ex, key)[:n]
     if len(short) < 2:
         return None
     Xs, Ws = _features(store, short, weights)
@@ -389,8 +388,7 @@ def _reverse_distances(store: ObjectStore, ex: int, D: np.ndarray, x: np.ndarray
     left out): the one-shot prototype x (C, R, A, H), w (R, A, H) searched as the object against each of them as the
     prototype (tilts x yaw x scale, one search per object, so each gets the tilt refinement a find gives its
     prototype); NaN elsewhere."""
-    order = np.lexsort((np.asarray(store.ids).astype(str), D))
-    short = order[(order != ex) & np.isfinite(D[order])][:n]
+    short = _nearest(store, ex, D)[:n]
     rev = np.full(len(D), np.nan)
     if len(short):
         Xs, Ws = _features(store, short, weights)
@@ -399,6 +397,13 @@ def _reverse_distances(store: ObjectStore, ex: int, D: np.ndarray, x: np.ndarray
             rev[j] = tilt_pose_distances(x[None], w[None], Xs[i:i + 1], Ws[i:i + 1], aspect=aspects[i:i + 1],
                                          scales=scales, grid=grid).D[0, 0]
     return rev
+
+
+def _nearest(store: ObjectStore, ex: int, key: np.ndarray) -> np.ndarray:
+    """Store rows by ascending ``key`` (ties by object id), the example and unmatched (not finite) objects left out:
+    the order the symmetric shortlist, the expansion and the re-ranking take their first matches in."""
+    order = np.lexsort((np.asarray(store.ids).astype(str), key))
+    return order[(order != ex) & np.isfinite(key[order])]
 
 
 def ranking_key(distance: np.ndarray, reverse: np.ndarray | None) -> np.ndarray:
@@ -435,8 +440,7 @@ def _expansion_set(src, store: ObjectStore, ex: int, D: np.ndarray, weights: tup
     pass the reciprocal check, best first.  Check (r > 0): the 2k nearest are each searched against the
     whole store as prototypes; a match passes when fewer than r other objects are nearer to it than the
     example (the example is among its r nearest: k-reciprocal neighbours, Zhong et al., CVPR 2017)."""
-    order = np.lexsort((np.asarray(store.ids).astype(str), D))
-    nb = order[(order != ex) & np.isfinite(D[order])]
+    nb = _nearest(store, ex, D)
     if r > 0:
         pool = nb[:2 * k]
         Dp = _search_many(src, *_features(store, pool, weights), _aspects(store, pool), scales, grid, chunk)
