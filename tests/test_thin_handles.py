@@ -1,0 +1,143 @@
+"""Thin parts that lie low over the table, without masks: a family of our own whose classes differ only in
+their handles (a post with thin handles lying 5-15 mm over the table, across the 8 mm grouping margin), every
+object touching another, 4 captures x 4 classes.  Each handle's readings stay with its post (the renderer's
+masks as truth).  Mask-free mining within 0.05 NMI of mining with masks (scikit-learn's
+normalized_mutual_info_score as reference): met with ``[ingest] crumb_grow`` on this draw, not without it (a
+strict expected failure, so it fails the day it passes); on other draws of the family neither meets it every
+time (README "Importing captures you already have", the paragraph after crumb_grow's)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial.transform import Rotation
+from sklearn.metrics import normalized_mutual_info_score
+
+from protomine.capture import Intrinsics, read_capture, write_capture
+from protomine.config import load_config
+from protomine.ingest.pipeline import ingest_captures
+from protomine.ingest.proposals import find_objects
+from protomine.ingest.sharded import open_store
+from protomine.mine.pipeline import mine_store
+from protomine.scenes import shapes as S
+from protomine.scenes.noise import add_sensor_noise
+from protomine.scenes.render import Scene, SceneObject, look_at, render
+from protomine.scenes.scenario import place_touching
+
+W, H = 160, 120
+INTR = Intrinsics(W, H, 150.0, 150.0, (W - 1) / 2, (H - 1) / 2)
+# azimuths (deg) of the handles, each 7 cm long from the post's axis
+HANDLES = {"one": (0,), "opposite": (0, 180), "square": (0, 90), "three": (0, 120, 240)}
+HANDLE_R = 0.005     # handle radius: its top 1.5 cm over the table, its bottom 5 mm
+HANDLE_Z = 0.010
+
+
+def handled_post(kind: str) -> S.Shape:
+    """A post (r 2.5 cm, 8 cm) with thin handles (r 5 mm) lying 5 mm over the table out to 7 cm."""
+    parts = [S.cylinder(0.025, 0.08)]
+    for az in HANDLES[kind]:
+        a = np.deg2rad(az)
+        parts.append(S.capsule((0.0, 0.0, HANDLE_Z), (0.07 * np.cos(a), 0.07 * np.sin(a), HANDLE_Z), HANDLE_R))
+    return S.union(*parts)
+
+
+def _capture(folder, kinds, rng):
+    shapes = [handled_post(k) for k in kinds]
+    yaws = rng.uniform(0, 360, len(kinds))
+    pos = place_touching(shapes, yaws, rng)
+    cols = [tuple(rng.uniform(0.2, 0.9, 3)) for _ in kinds]
+    scene = Scene([SceneObject(s, float(y), p, c) for s, y, p, c in zip(shapes, yaws, pos, cols)])
+    Tw = np.eye(4)
+    Tw[:3, :3] = Rotation.random(random_state=rng.integers(1 << 30)).as_matrix()
+    frames = []
+    for i in range(5):
+        a, el = 2 * np.pi * i / 5 + rng.uniform(0, 1), np.deg2rad(rng.uniform(35, 55))
+        eye = 0.5 * np.array([np.cos(el) * np.cos(a), np.cos(el) * np.sin(a), np.sin(el)])
+        T = look_at(eye, np.array([0, 0, 0.03]), np.array([0, 0, 1.0]))
+        r = render(scene, INTR, T)
+        depth, rgb = add_sensor_noise(r, rng)
+        frames.append(dict(id=f"{i:06d}", cam_to_world=Tw @ T, rgb=rgb, depth_m=depth, mask=r.mask))
+    write_capture(folder, intrinsics=INTR, depth_scale=1000.0, frames=frames)
+    bases = [Tw[:3, :3] @ np.array([p[0], p[1], 0.0]) + Tw[:3, 3] for p in pos]
+    return list(zip(kinds, bases))
+
+
+def _cfg(grow: bool) -> dict:
+    cfg = load_config("fast")
+    cfg["ingest"]["crumb_grow"] = grow
+    return cfg
+
+
+@pytest.fixture(scope="module")
+def family(tmp_path_factory):
+    root = tmp_path_factory.mktemp("handles")
+    rng = np.random.default_rng(10)
+    truth, caps = {}, []
+    for c in range(4):
+        folder = root / f"cap{c}"
+        truth[folder.name] = _capture(folder, list(HANDLES), rng)
+        caps.append(folder)
+    return {"root": root, "caps": caps, "truth": truth}
+
+
+def _nmi(fam, use_masks, cfg, tag):
+    """Objects in the store, objects matched to a truth base within 4 cm, NMI of the mined clusters against
+    the truth classes with K = 4 given (choosing K is mining's, not the ingest's), K."""
+    st = fam["root"] / f"o_{tag}.h5"
+    if tag not in fam.setdefault("done", set()):
+        ingest_captures(fam["caps"], st, cfg, seed=0, use_masks=use_masks)
+        fam["done"].add(tag)
+    cfg = {**cfg, "mine": {**cfg["mine"], "clusters": len(HANDLES)}}
+    lib, _ = mine_store(st, fam["root"] / f"lib_{tag}" / "library.h5", cfg, seed=0)
+    store = open_store(st)
+    cl = dict(zip(lib.members["object"], lib.members["cluster"]))
+    pred, lab = [], []
+    for oid, cap, base in zip(store.objects["id"], store.objects["capture"], store.objects["origin"]):
+        kinds = fam["truth"][cap]
+        d = [np.linalg.norm(b - base) for _, b in kinds]
+        if min(d) < 0.04:
+            pred.append(cl[oid])
+            lab.append(kinds[int(np.argmin(d))][0])
+    return len(store.objects["id"]), len(lab), normalized_mutual_info_score(lab, pred), lib.n_clusters
+
+
+def _within_005(fam, grow):
+    n_m, k_m, nmi_m, c_m = _nmi(fam, True, _cfg(False), "masked")     # masks: crumbs never run
+    n_f, k_f, nmi_f, c_f = _nmi(fam, False, _cfg(grow), f"free_{grow}")
+    print("grow", grow, "masked", n_m, k_m, round(nmi_m, 3), c_m, "mask-free", n_f, k_f, round(nmi_f, 3), c_f)
+    assert n_f == n_m == k_f == k_m == 16
+    assert nmi_f >= nmi_m - 0.05, (nmi_m, nmi_f)
+
+
+def test_mask_free_mining_of_low_handles_within_005_nmi_of_masked_with_crumb_grow(family):
+    """Measured: masked 1.000, mask-free with crumb_grow 1.000."""
+    _within_005(family, True)
+
+
+@pytest.mark.xfail(strict=True, reason="measured: masked NMI 1.000, mask-free without crumb_grow 0.620: handle "
+                                       "crumbs taken by the nearest voxel, a touching neighbour's")
+def test_mask_free_mining_of_low_handles_within_005_nmi_of_masked_without_crumb_grow(family):
+    _within_005(family, False)
+
+
+@pytest.mark.parametrize("grow", [
+    pytest.param(False, id="crumb_grow off", marks=pytest.mark.xfail(
+        strict=True, reason="measured: one post keeps 0.940 of its readings, 0.049 go to a touching neighbour")),
+    pytest.param(True, id="crumb_grow on")])
+def test_low_handles_stay_with_their_post(family, grow):
+    """Every object's masked readings (those over the ingest's cut) go mostly to one mask-free proposal, which
+    holds little of any other object: a handle lying on the table beside a touching neighbour is neither cut
+    off nor given to the neighbour.  Expected answer by construction (the renderer's masks)."""
+    cfg = _cfg(grow)
+    for folder in family["caps"]:
+        cap = read_capture(folder)
+        free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
+        masked = find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals
+        assert len(free.proposals) == len(masked) == 4, folder.name
+        owner = {fd.id: np.full(fd.depth.size, -1) for fd in free.frames}
+        for k, p in enumerate(free.proposals):
+            for f, pix in p.pixels.items():
+                owner[f][pix] = k
+        for m in masked:
+            got = np.concatenate([owner[f][pix] for f, pix in m.pixels.items()])
+            share = np.bincount(got[got >= 0], minlength=len(free.proposals)) / len(got)
+            assert share.max() >= 0.95, (folder.name, m.key, share)
