@@ -54,6 +54,16 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    whose own view is poor (a tumbled jug whose one-shot list is mostly tile boxes) cannot pull other classes in
    front of b's members; it can only reorder what b claims.  Measured in README "Find".
 
+5. Soft route (``[mine] find_route_soft`` = k > 0; 0 = off, the default).  A taken route whose ranking shares at most
+   ``OVERRULE_AGREE_MAX`` of its first ``AGREE_TOP`` with the one-shot ranking (b's agreement) may have been named
+   wrongly, and nothing in the route's signals says which (README "Find").  Such a route does not choose: the store
+   is ranked by reciprocal-rank fusion (Cormack, Clarke & Buettcher, "Reciprocal Rank Fusion outperforms Condorcet
+   and individual Rank Learning Methods", SIGIR 2009) of the route's ranking and the one the example falls back to
+   when the route is not taken (the k-reciprocal re-ranking of ``[mine] find_rerank``, else the one-shot ranking):
+   score_i = sum over the two rankings of 1 / (k + rank_i), rank from 1, the example left out (``rank_fusion``).  A
+   wrong prototype's members then share the first places with the example's own neighbours instead of taking them
+   all; a right one's keep about half.  Measured in README "Find"; it stays off.
+
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
 ``prototype_score`` are added: the library's calibrated score of d_ib (``Library.score``: single-view calibration for
@@ -176,6 +186,27 @@ def fused_key(margin: np.ndarray, one_shot: np.ndarray, power: float, claim: flo
     prod = m * np.where(claimed, d, 1.0) ** power
     top = float(prod[claimed].max()) if claimed.any() else 0.0
     return np.where(claimed, prod, np.where(np.isfinite(m), top + 1.0 + m, np.inf))
+
+
+def rank_fusion(keys: list[np.ndarray], ids: np.ndarray, ex: int, k: float) -> np.ndarray:
+    """Reciprocal-rank fusion (module docstring, 5.) of rankings by ascending keys (each (N,); ties by ``ids``, the
+    example ``ex`` left out, rank 1 first): the key (N,) -sum_r 1 / (k + rank_r(i)), ascending; an object no ranking
+    can place (every key non-finite) stays inf, the example gets -inf (it is not a find)."""
+    ids = np.asarray(ids).astype(str)
+    N = len(ids)
+    total = np.zeros(N)
+    placed = np.zeros(N, bool)
+    for key in keys:
+        key = np.asarray(key, np.float64)
+        order = np.lexsort((ids, np.where(np.isfinite(key), key, np.finfo(np.float64).max)))
+        order = order[order != ex]
+        rank = np.empty(N)
+        rank[order] = np.arange(1, len(order) + 1)
+        total[order] += 1.0 / (k + rank[order])
+        placed |= np.isfinite(key)
+    out = np.where(placed, -total, np.inf)
+    out[ex] = -np.inf
+    return out
 
 
 def decide(D: np.ndarray, b: int, s: float, cut: float, one_shot_key: np.ndarray, ids: np.ndarray, ex: int,

@@ -76,12 +76,15 @@ When the known-class route does not rank, the first ``find_rerank_shortlist`` ob
 re-ranked by their k-reciprocal neighbourhoods among themselves and the example (``curate.rerank``: each is searched
 as the one prototype against the others; Zhong et al., CVPR 2017).  ``Matches.rerank`` holds the key; ``distance``,
 ``score`` and ``both_ways`` stay as above.
+With ``[mine] find_route_soft`` = k > 0 (off by default) a taken route that shares at most one of its first 10 with
+the one-shot ranking is re-ranked too, and ranks by the reciprocal-rank fusion of the route's key and the re-ranked
+one (``knownclass.rank_fusion``; ``Matches.route.key`` then holds the fused key, ``prototype`` stays b).
 """
 from __future__ import annotations
 
 import csv
 import io
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 import numpy as np
@@ -98,7 +101,7 @@ from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_as
 from ..mine.symmetry import detect_symmetry
 from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
-from .knownclass import KnownRoute, known_route
+from .knownclass import OVERRULE_AGREE_MAX, KnownRoute, known_route, rank_fusion
 from .names import check_name, refresh_gallery
 from .rerank import rerank_pairwise, reranked_key
 
@@ -334,10 +337,17 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
                             d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
     rerank = None
     k_rr = int(cfg["mine"].get("find_rerank", 0))
-    if k_rr > 0 and (route is None or not route.taken):   # k-reciprocal re-ranking of the shortlist (``curate.rerank``)
+    k_soft = int(cfg["mine"].get("find_route_soft", 0))
+    # ``[mine] find_route_soft``: a taken route that shares at most OVERRULE_AGREE_MAX with the one-shot ranking is
+    # fused with the ranking the example would fall back to (``knownclass.rank_fusion``)
+    soft = k_soft > 0 and route is not None and route.taken and route.agree <= OVERRULE_AGREE_MAX
+    if k_rr > 0 and (route is None or not route.taken or soft):   # k-reciprocal re-ranking of the shortlist (``curate.rerank``)
         rerank = _reranked(store, ex, D, ranking_key(D, reverse), X1[0], W1[0], aspect, weights, scales, grid, k_rr,
                            int(cfg["mine"].get("find_rerank_shortlist", 48)),
                            float(cfg["mine"].get("find_rerank_weight", 0.3)))
+    if soft:
+        own = rerank if rerank is not None else ranking_key(D, reverse)
+        route = replace(route, key=rank_fusion([route.key, own], np.asarray(store.ids).astype(str), ex, k_soft))
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
                    world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route, rerank)
