@@ -30,12 +30,13 @@ Expanding the square gives, for every shift s at once, four cross-correlations a
 
 By the correlation theorem ``corr(f, g) = irfft(rfft(f) * conj(rfft(g)))``, so per azimuthal frequency
 the sums over (C, R, H) become one complex matrix product (prototypes x features) @ (features x
-objects), run as two real ones (real and imaginary prototype parts stacked, against the objects' real
-and imaginary parts) whose four partial products the inverse transform combines; the denominator involves
+objects), run as three real ones by Gauss's method (p_re (o_re + o_im), (p_re + p_im) o_re, (p_re - p_im) o_im)
+whose partial products the inverse transform combines (``_cross_spectra``); the denominator involves
 w alone, so its product runs on the w block of the object factors only.  The data are real, so the rfft's
 bin 0 (and the Nyquist bin when A is even) are real: spectra are stored as A real rows (the F real parts,
 then the imaginary parts of the complex bins only, ``spectrum_rows``), and those bins need one real
-product instead of a complex one (70 instead of 76 (M, f) @ (f, n) products for A = 36).  Object and prototype factors share one layout (frequency, item, feature), and
+product instead of a complex one (53 instead of 76 (M, f) @ (f, n) products for A = 36: 2 real bins, 17 complex
+bins of 3).  Object and prototype factors share one layout (frequency, item, feature), and
 the products' output (frequency, prototype, object) is what the inverse transform reads as one matrix,
 so distances come out (shift, prototype, object) without a transposing copy anywhere.  Objects are
 processed in chunks so memory is bounded by the chunk size.  The pose bank orders its scaled prototypes
