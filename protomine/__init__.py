@@ -16,6 +16,11 @@ import os as _os
 # torch's OpenMP threads wait for work passively instead of spinning (protomine.cores explains why); read
 # once, when torch loads, so it is set here, before any stage imports torch
 _os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+# torch's CPU tensors of 2 MB and more on transparent huge pages where the kernel offers them on request (madvise;
+# numpy already asks for its own large arrays): the tilt search's blocks of tens of megabytes, mapped afresh, took a
+# page fault every 4 KB (protomine.cores.large_blocks_mapped explains why they are mapped); read by torch at its
+# first allocation, so set here too
+_os.environ.setdefault("THP_MEM_ALLOC_ENABLE", "1")
 
 # freed chunk-sized temporaries (up to 64 MB) stay in the heap for the next chunk instead of being unmapped
 # and zero-filled again on first touch (protomine.cores.reuse_freed_memory; a no-op where this is not glibc)

@@ -43,3 +43,21 @@ def test_layout_round_trip_and_inverse(A):
     spec = _dft_matrix(A).double() @ torch.from_numpy(f)
     np.testing.assert_allclose(complex_spectra(spec, A).numpy(), np.fft.rfft(f, axis=0), atol=1e-5)
     np.testing.assert_allclose((_idft_matrix(A).double() @ spec).numpy(), f, atol=1e-5)
+
+
+@pytest.mark.parametrize("A", [36, 10, 9])
+def test_gauss_products_give_the_circular_cross_correlation(A):
+    # reference: the correlation theorem written with numpy's FFT, corr(s) = sum_f irfft(conj(P_f) O_f)(s) =
+    # sum_f sum_j o_f[j] p_f[j - s] (computed directly from that sum, in float64), against the three real products of
+    # Gauss's method (_cross_spectra) and the inverse transform of their partial sums (_idft_of_partials)
+    from protomine.mine.posesearch import _cross_spectra, _idft_of_partials
+    rng = np.random.default_rng(A)
+    M, n, f = 3, 4, 5
+    p = rng.normal(size=(M, f, A))
+    o = rng.normal(size=(n, f, A))
+    spec = lambda a: torch.tensordot(_dft_matrix(A), torch.from_numpy(a.astype(np.float32)), dims=([1], [2]))  # noqa: E731
+    got = (_idft_of_partials(A) @ _cross_spectra(spec(p), spec(o))).numpy().reshape(A, M, n)
+    ref = np.zeros((A, M, n))
+    for s in range(A):  # sum_j o[j] p[j - s]
+        ref[s] = np.einsum("mfj,nfj->mn", np.roll(p, s, axis=2), o)
+    np.testing.assert_allclose(got, ref, atol=1e-4 * np.abs(ref).max())

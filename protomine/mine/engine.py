@@ -377,6 +377,7 @@ class _SpectraCache:
         self.budget = budget_bytes
         self.used = 0
         self.store: dict[int, torch.Tensor] = {}
+        self._spare: torch.Tensor | None = None
 
     def get(self, i0: int) -> torch.Tensor | None:
         return self.store.get(i0)
@@ -386,6 +387,21 @@ class _SpectraCache:
         if self.used + size <= self.budget:
             self.store[i0] = o
             self.used += size
+
+    def fits(self, shape: tuple[int, ...]) -> bool:
+        """Whether :meth:`put` would keep float32 spectra of ``shape``."""
+        return self.used + 4 * int(np.prod(shape)) <= self.budget
+
+    def spare(self, shape: tuple[int, ...]) -> torch.Tensor:
+        """A float32 tensor of ``shape`` for the spectra of a chunk the cache does not keep: the same buffer every
+        time (grown when a larger one is asked for), valid until the next call.  The spectra of the chunks past the
+        budget were otherwise a fresh block of ~0.1 MB an object every pass, mapped and zero-filled page by page by
+        the kernel (``cores.large_blocks_mapped``) as the transform wrote it."""
+        n = int(np.prod(shape))
+        if self._spare is None or self._spare.numel() < n:
+            self._spare = None  # the old one goes first
+            self._spare = torch.empty(n, dtype=torch.float32)
+        return self._spare[:n].view(shape)
 
 
 def _moment_spectra(x: np.ndarray, w: np.ndarray, dft: torch.Tensor) -> torch.Tensor:
@@ -473,9 +489,13 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             x = np.asarray(x, np.float32)
             w = np.asarray(w, np.float32)
         if o is None:
-            o = bank.spectra(x, w)
-            if cache is not None:
-                cache.put(i0, o)
+            shape = (A, i1 - i0, (C + 2) * R * H)
+            if cache is not None and not cache.fits(shape):  # not kept: written into the cache's one spare buffer
+                o = bank.spectra(x, w, out=cache.spare(shape))
+            else:
+                o = bank.spectra(x, w)
+                if cache is not None:
+                    cache.put(i0, o)
         if tilt_bank is not None:  # the refinement's copies are built once per pass, kept for the later chunks
             tilt_bank.more_chunks(j + 1 < len(chunks))
         labels[i0:i1], yaw[i0:i1], scale[i0:i1], dist[i0:i1] = _chunk_step(

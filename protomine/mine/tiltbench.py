@@ -116,13 +116,24 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   alone cost (~2 s, a fixed cost of ~3,500 finer copies a pass whatever the number of objects).
 - 3,000 tumbled objects (this row, seed 0, this code, load 4-7): 590.7 s CPU, 1,077 s wall, the main thread 32 s,
   ``ready_threads`` 1.99, peak 1,848 MB, n_iter 15, NMI 0.9485.
-- Not tried in the search (``posesearch``, every pose search's products; it changes the last bits): the complex
-  products by Gauss's three real products instead of four, k1 = p_re (o_re + o_im), k2 = (p_re + p_im) o_re,
-  k3 = (p_re - p_im) o_im, Re = k1 - k3, Im = k1 - k2 (the combination would ride on the inverse transform's
-  matrix).  Measured alone, one thread, load 8: 17 bins x 672 features, 160 prototypes x 512 objects 89.5 -> 72.3 ms,
-  960 x 256 315 -> 214 ms, 16 x 8 0.40 -> 0.38 ms; largest error against float64 3.6e-7 -> 6.6e-7 of the largest
-  value.  It would cut the yaw search, the first level and the refinement's products alike (the ``assignment`` row's
-  FFT / dense ratio, issue 16), not this row's ratio.
+- Issues 13 / 16 (this row and the mining row before -> after, run back to back in one ``protomine bench`` each,
+  load 6-9): Gauss's three real products per complex bin (``posesearch._cross_spectra``: k1 = p_re (o_re + o_im),
+  k2 = (p_re + p_im) o_re, k3 = (p_re - p_im) o_im, Re = k1 - k3, Im = k1 - k2, the combination on the inverse
+  transform's matrix; 53 (M, f) @ (f, n) products instead of 70 for A = 36), torch's large tensors on transparent
+  huge pages (``THP_MEM_ALLOC_ENABLE``, ``protomine/__init__.py``) and one reused buffer for the spectra of a chunk
+  the spectra cache does not keep (``engine._SpectraCache.spare``).  This row: ``tilt_cpu_s`` 8.36 -> 6.45 s,
+  ``ratio_per_tilt_cpu`` 2.18 -> 1.47 (yaw-only 0.30 -> 0.35 s, noise); a coarse row block (960 copies x 128
+  objects, one thread) 200.7 -> 158.3 ms, of which the numerator's products 106 ms, the denominator's 18 ms, the
+  two inverse transforms 10 ms each and the distance's elementwise steps ~21 ms.  The mining row at 3,000: 559.5 ->
+  554.5 s CPU, NMI 0.9485 -> 0.9533 (another trajectory from the last bits), peak 1,859 -> 1,824 MB, the bench
+  process's minor faults 12.0 -> 3.5 million but system time 53 -> 51 s (the kernel still zeroes every page mapped
+  afresh, 2 MB at a time).  Short fits of 3,000 (``_mine_tumbled_once(3000, 16, 0, 1, 3)``, base and this code
+  alternating, load 6-8): 133.5 / 131.8 s CPU before, 133.1 / 115.6 s after.  One core, 1,500 objects, 6 passes:
+  79.6 s before, 70.4 s with huge pages alone (the same fit), 66.4 s with all three (the coarse level's distances
+  15.1 -> 11.6 s).  The products alone at small M gain nothing (32 x 256: 15.8 vs 16.0 ms; 8 x 8: 0.30 ms both), so
+  the assignment row's FFT search (32 prototypes, one scale) costs what it did; its products by the thread's CPU
+  clock run at 53 GFLOP/s, 0.58 of one thread's matmul peak (91 GFLOP/s).  Still to cut for 1.3: the refinement's
+  copies (``grid_sample`` 46% of a copy) and column factors (~0.1 ms a column, ~4x its memory traffic).
 """
 from __future__ import annotations
 

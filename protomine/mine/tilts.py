@@ -885,8 +885,8 @@ class TiltBank:
             out[sel] = res.numpy().reshape((len(sel),) + out.shape[1:])
         return out
 
-    def spectra(self, x: np.ndarray, w: np.ndarray) -> torch.Tensor:
-        return self.coarse.spectra(x, w)
+    def spectra(self, x: np.ndarray, w: np.ndarray, out: torch.Tensor | None = None) -> torch.Tensor:
+        return self.coarse.spectra(x, w, out)
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
                       scale_index: np.ndarray | None = None, window: int = 1, focus: np.ndarray | None = None
