@@ -28,7 +28,7 @@ from ..cores import one_blas_thread
 from ..progress import bar
 from .library import Library
 
-__all__ = ["free_weight_choices", "reweighted_library", "own_prototype_rate", "heldout_own_rates"]
+__all__ = ["free_weight_choices", "reweighted_library", "own_prototype_rate", "with_cameras", "heldout_own_rates"]
 
 
 def free_weight_choices(cfg: dict) -> list[float]:
@@ -68,6 +68,17 @@ def own_prototype_rate(D: np.ndarray, own: np.ndarray, loo: np.ndarray) -> float
     return float(np.mean(ok & (np.argmin(D, axis=1) == own))) if len(D) else 0.0
 
 
+def with_cameras(store, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Which of the store's single views ``rows`` (Q,) keep a camera direction (``single/camera``; a store ingested
+    before they were kept has none): (Q,) bool and those views' directions (q, 3), or None when none does."""
+    cams = getattr(store, "single_camera", None)
+    if cams is None or len(rows) == 0:
+        return None
+    cams = np.asarray(cams, np.float64)[rows]
+    has = np.all(np.isfinite(cams), axis=1)
+    return (has, cams[has]) if has.any() else None
+
+
 def heldout_own_rates(lib: Library, store, rows: np.ndarray, own: np.ndarray, own_d: np.ndarray, weights: list[float],
                       *, chunk: int = 64, progress: Callable[[str], None] | None = None) -> np.ndarray | None:
     """(len(weights),) the held-out single views' own-prototype rates in the label decision at each weight (module
@@ -75,14 +86,11 @@ def heldout_own_rates(lib: Library, store, rows: np.ndarray, own: np.ndarray, ow
     leave-one-out scored distances ``own_d`` (``pipeline.single_view_calibration``), those with a camera direction
     (``single/camera``).  None when the store keeps no cameras."""
     from ..label.matcher import make_matcher   # the label stage's decision (imported here: label imports mine)
-    cams = getattr(store, "single_camera", None)
-    if cams is None or len(rows) == 0:
+    got = with_cameras(store, rows)
+    if got is None:
         return None
-    cams = np.asarray(cams, np.float64)[rows]
-    has = np.all(np.isfinite(cams), axis=1)
-    if not has.any():
-        return None
-    rows, own, own_d, cams = rows[has], np.asarray(own, np.int64)[has], np.asarray(own_d, np.float64)[has], cams[has]
+    has, cams = got
+    rows, own, own_d = rows[has], np.asarray(own, np.int64)[has], np.asarray(own_d, np.float64)[has]
     views = [store.read_single_views(rows[i0:i0 + chunk]) for i0 in range(0, len(rows), chunk)]
     j = np.arange(len(rows))
     rates, loo = [], None

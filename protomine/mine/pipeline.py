@@ -38,7 +38,7 @@ from ..rotations import matrix_to_quat
 from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
-from .freeweight import free_weight_choices, heldout_own_rates
+from .freeweight import free_weight_choices, heldout_own_rates, with_cameras
 from .library import Library, log_distance_fit, match_score, pad_quaternions, write_library
 from .openset import conformal_cut
 from .posesearch import pose_distances
@@ -438,14 +438,11 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     "unknown_view_calibration_views"}), or None when the store keeps no cameras of its single views (a store
     ingested before they were kept: the library keeps the pose search's calibration) or none is left."""
     from ..label.matcher import make_matcher
-    cams = getattr(store, "single_camera", None)
-    if cams is None or len(rows) == 0:
+    got = with_cameras(store, rows)
+    if got is None:
         return None
-    cams = np.asarray(cams, np.float64)[rows]
-    has = np.all(np.isfinite(cams), axis=1)
-    if not has.any():
-        return None
-    rows, own, own_d, own_up, cams = rows[has], own[has], own_d[has], own_up[has], cams[has]
+    has, cams = got
+    rows, own, own_d, own_up = rows[has], own[has], own_d[has], own_up[has]
     factor = np.ones(len(rows))
     decide, shares, scales_found = [], [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
