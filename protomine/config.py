@@ -61,6 +61,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.tilt_pass_levels": (0, 16),
     "mine.label_refine_top": (0, 64),
     "mine.view_prototype_members": (0, 100000),
+    "mine.free_weight_factors": (0.0, 16.0),
     "mine.view_centre_offsets": (0.0, 2.0),
     "mine.view_cut_offsets": (0.0, 2.0),
     "mine.label_symmetric": (0, 64),

@@ -38,6 +38,7 @@ from ..rotations import matrix_to_quat
 from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
+from .freeweight import free_weight_choices, heldout_own_rates, with_cameras
 from .library import Library, log_distance_fit, match_score, pad_quaternions, write_library
 from .openset import conformal_cut
 from .posesearch import pose_distances
@@ -437,14 +438,11 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     "unknown_view_calibration_views"}), or None when the store keeps no cameras of its single views (a store
     ingested before they were kept: the library keeps the pose search's calibration) or none is left."""
     from ..label.matcher import make_matcher
-    cams = getattr(store, "single_camera", None)
-    if cams is None or len(rows) == 0:
+    got = with_cameras(store, rows)
+    if got is None:
         return None
-    cams = np.asarray(cams, np.float64)[rows]
-    has = np.all(np.isfinite(cams), axis=1)
-    if not has.any():
-        return None
-    rows, own, own_d, own_up, cams = rows[has], own[has], own_d[has], own_up[has], cams[has]
+    has, cams = got
+    rows, own, own_d, own_up = rows[has], own[has], own_d[has], own_up[has]
     factor = np.ones(len(rows))
     decide, shares, scales_found = [], [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
@@ -687,6 +685,43 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         cfg = {**cfg, "volume": dict(lifted)}
     say(progress, f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
     model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
+    fitted = np.array(model.prototypes_, copy=True)   # at the clustering's free-space weight
+    lib, part = _library_of_fit(store, store_path, cfg, seed, model, k_table, executor, progress, notices)
+    weights = free_weight_choices(cfg)
+    rates = heldout_own_rates(lib, store, part["rows"], part["own"], part["own_d"], weights, progress=progress) \
+        if weights else None
+    if rates is not None:   # ``[mine] free_weight_factors``: the held-out views choose the library's free-space weight
+        chosen = weights[int(np.argmax(rates))]   # the first of the best: the configured weight wins ties
+        say(progress, "free-space weight, held-out views naming their own prototype: " +
+            ", ".join(f"{w:g} {r:.3f}" for w, r in zip(weights, rates)) + f"; {chosen:g} kept")
+        if chosen != float(cfg["mine"]["free_weight"]):
+            model.prototypes_ = fitted
+            cfg = {**cfg, "mine": {**cfg["mine"], "free_weight": chosen}}
+            lib, part = _library_of_fit(store, store_path, cfg, seed, model, k_table, executor, progress, [])
+        lib.attrs.update({"free_weight_choices": json.dumps(weights),
+                          "free_weight_own_rates": json.dumps([round(float(r), 6) for r in rates])})
+    elif weights:
+        notices.append(f"{store.path} keeps no camera directions of its single views; [mine] free_weight_factors "
+                       "needs them: the configured free_weight is kept")
+    K, vols, protos, grid, prov = part["K"], part["vols"], part["protos"], part["grid"], part["prov"]
+    pause_point("inputs_read")
+    write_library(library_path, lib)
+    out = Path(library_path).parent
+    write_assignments(out / "assignments.csv", lib)
+    item = (lib, store.path, out, gallery_faces(vols, protos, grid), prov)
+    drawn = pictures.submit(draw_pictures, None, item) if pictures is not None else None
+    if drawn is None:
+        draw_pictures(None, item, progress)
+    return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
+                 "k_selection": k_table, "notices": notices, "pictures": drawn}
+
+
+def _library_of_fit(store: ObjectStore, store_path: str | Path, cfg: dict, seed: int, model, k_table, executor,
+                    progress: Callable[[str], None] | None, notices: list[str]) -> tuple[Library, dict]:
+    """The library of a fitted model (:func:`mine_store` from the fit on): prototypes at ``[mine] free_weight``, the
+    members' alignment and distances, the score's calibrations and the unknown cuts.  Returns it and the parts
+    mine_store goes on with: K, the picture volumes, the prototype fields, the tilt grid, the provenance, and the
+    held-out single views' store rows, prototypes and leave-one-out scored distances ("rows", "own", "own_d")."""
     reweighted = reweight_free(model, cfg)  # from here on, distances weigh free space by mine.free_weight
     K = int(model.prototypes_.shape[0])
     labels = np.asarray(model.labels_)
@@ -796,16 +831,8 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         rule = rule_calibration(lib, store, sv_rows, sv_k, sv_raw, sv_s, sv_up, alpha, progress=progress)
         if rule is not None:
             lib.attrs.update(rule)
-    pause_point("inputs_read")
-    write_library(library_path, lib)
-    out = Path(library_path).parent
-    write_assignments(out / "assignments.csv", lib)
-    item = (lib, store.path, out, gallery_faces(vols, protos, grid), prov)
-    drawn = pictures.submit(draw_pictures, None, item) if pictures is not None else None
-    if drawn is None:
-        draw_pictures(None, item, progress)
-    return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
-                 "k_selection": k_table, "notices": notices, "pictures": drawn}
+    return lib, {"K": K, "vols": vols, "protos": protos, "grid": grid, "prov": prov, "rows": sv_rows, "own": sv_k,
+                 "own_d": sv_d}
 
 
 def draw_pictures(_, item: tuple, progress: Callable[[str], None] | None = None) -> list:
