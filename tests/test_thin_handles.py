@@ -9,22 +9,17 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy.spatial.transform import Rotation
 from sklearn.metrics import normalized_mutual_info_score
 
-from protomine.capture import Intrinsics, read_capture, write_capture
+from protomine.capture import read_capture
 from protomine.config import load_config
 from protomine.ingest.pipeline import ingest_captures
 from protomine.ingest.proposals import find_objects
 from protomine.ingest.sharded import open_store
 from protomine.mine.pipeline import mine_store
 from protomine.scenes import shapes as S
-from protomine.scenes.noise import add_sensor_noise
-from protomine.scenes.render import Scene, SceneObject, look_at, render
-from protomine.scenes.scenario import place_touching
+from shape_family import matched_clusters, write_family_capture
 
-W, H = 160, 120
-INTR = Intrinsics(W, H, 150.0, 150.0, (W - 1) / 2, (H - 1) / 2)
 # azimuths (deg) of the handles, each 7 cm long from the post's axis
 HANDLES = {"one": (0,), "opposite": (0, 180), "square": (0, 90), "three": (0, 120, 240)}
 HANDLE_R = 0.005     # handle radius: its top 1.5 cm over the table, its bottom 5 mm
@@ -41,24 +36,8 @@ def handled_post(kind: str) -> S.Shape:
 
 
 def _capture(folder, kinds, rng):
-    shapes = [handled_post(k) for k in kinds]
-    yaws = rng.uniform(0, 360, len(kinds))
-    pos = place_touching(shapes, yaws, rng)
-    cols = [tuple(rng.uniform(0.2, 0.9, 3)) for _ in kinds]
-    scene = Scene([SceneObject(s, float(y), p, c) for s, y, p, c in zip(shapes, yaws, pos, cols)])
-    Tw = np.eye(4)
-    Tw[:3, :3] = Rotation.random(random_state=rng.integers(1 << 30)).as_matrix()
-    frames = []
-    for i in range(5):
-        a, el = 2 * np.pi * i / 5 + rng.uniform(0, 1), np.deg2rad(rng.uniform(35, 55))
-        eye = 0.5 * np.array([np.cos(el) * np.cos(a), np.cos(el) * np.sin(a), np.sin(el)])
-        T = look_at(eye, np.array([0, 0, 0.03]), np.array([0, 0, 1.0]))
-        r = render(scene, INTR, T)
-        depth, rgb = add_sensor_noise(r, rng)
-        frames.append(dict(id=f"{i:06d}", cam_to_world=Tw @ T, rgb=rgb, depth_m=depth, mask=r.mask))
-    write_capture(folder, intrinsics=INTR, depth_scale=1000.0, frames=frames)
-    bases = [Tw[:3, :3] @ np.array([p[0], p[1], 0.0]) + Tw[:3, 3] for p in pos]
-    return list(zip(kinds, bases))
+    return write_family_capture(folder, {k: handled_post(k) for k in kinds}, kinds, rng, touching=True,
+                                target_z=0.03, noisy=True)
 
 
 def _cfg(grow: bool) -> dict:
@@ -89,14 +68,7 @@ def _nmi(fam, use_masks, cfg, tag):
     cfg = {**cfg, "mine": {**cfg["mine"], "clusters": len(HANDLES)}}
     lib, _ = mine_store(st, fam["root"] / f"lib_{tag}" / "library.h5", cfg, seed=0)
     store = open_store(st)
-    cl = dict(zip(lib.members["object"], lib.members["cluster"]))
-    pred, lab = [], []
-    for oid, cap, base in zip(store.objects["id"], store.objects["capture"], store.objects["origin"]):
-        kinds = fam["truth"][cap]
-        d = [np.linalg.norm(b - base) for _, b in kinds]
-        if min(d) < 0.04:
-            pred.append(cl[oid])
-            lab.append(kinds[int(np.argmin(d))][0])
+    pred, lab = matched_clusters(store, lib, fam["truth"], 0.04)
     return len(store.objects["id"]), len(lab), normalized_mutual_info_score(lab, pred), lib.n_clusters
 
 
