@@ -28,7 +28,8 @@ from ..cores import one_blas_thread
 from ..progress import bar
 from .library import Library
 
-__all__ = ["free_weight_choices", "reweighted_library", "own_prototype_rate", "with_cameras", "heldout_own_rates"]
+__all__ = ["free_rescaled", "free_weight_choices", "reweighted_library", "own_prototype_rate", "with_cameras",
+           "heldout_own_rates"]
 
 
 def free_weight_choices(cfg: dict) -> list[float]:
@@ -42,6 +43,14 @@ def free_weight_choices(cfg: dict) -> list[float]:
     return out if len(out) > 1 else []
 
 
+def free_rescaled(P: np.ndarray, new: float, old: float) -> np.ndarray:
+    """A float32 copy of prototypes P (K, C, R, A, H) fitted at free-space weight ``old`` (> 0) as at ``new``: the free
+    channel (feature 1, sqrt(weight) x free; prototypes are weighted means of their members) times sqrt(new / old)."""
+    P = np.array(P, np.float32, copy=True)
+    P[:, 1] *= np.float32(np.sqrt(new / old))
+    return P
+
+
 def reweighted_library(lib: Library, free_weight: float) -> Library:
     """``lib`` with its distance's free-space weight set to ``free_weight``: the prototypes' free channel (feature 1,
     sqrt(weight) x free) rescaled by sqrt(free_weight / the library's weight), the recorded config's ``free_weight``
@@ -51,8 +60,8 @@ def reweighted_library(lib: Library, free_weight: float) -> Library:
     old = float(conf["mine"]["free_weight"])
     if old <= 0 and free_weight != old:
         raise ValueError(f"free_weight={old} of the library must be > 0 to rescale its free channel to {free_weight}")
-    P = np.array(lib.prototypes["features"], np.float32, copy=True)
-    P[:, 1] *= np.float32(np.sqrt(free_weight / old)) if old > 0 else np.float32(1.0)
+    P = free_rescaled(lib.prototypes["features"], free_weight, old) if old > 0 else \
+        np.array(lib.prototypes["features"], np.float32, copy=True)
     conf["mine"]["free_weight"] = float(free_weight)
     return Library({**lib.prototypes, "features": P}, lib.members, {**lib.attrs, "config": json.dumps(conf)}, lib.path)
 

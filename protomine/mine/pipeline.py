@@ -38,7 +38,7 @@ from ..rotations import matrix_to_quat
 from ..progress import bar, say
 from ..provenance import provenance, provenance_of, record_outputs
 from .aligned import aligned_mean_volumes
-from .freeweight import free_weight_choices, heldout_own_rates, with_cameras
+from .freeweight import free_rescaled, free_weight_choices, heldout_own_rates, with_cameras
 from .library import Library, log_distance_fit, match_score, pad_quaternions, write_library
 from .openset import conformal_cut
 from .posesearch import pose_distances
@@ -95,9 +95,7 @@ def reweight_free(model, cfg: dict) -> bool:
     fw, fw_c = float(cfg["mine"]["free_weight"]), float(clustering_config(cfg)["mine"]["free_weight"])
     if fw_c == fw:
         return False
-    P = np.array(model.prototypes_, np.float32, copy=True)
-    P[:, 1] *= np.float32(np.sqrt(fw / fw_c))
-    model.prototypes_ = P
+    model.prototypes_ = free_rescaled(model.prototypes_, fw, fw_c)
     return True
 
 

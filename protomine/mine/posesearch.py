@@ -398,10 +398,9 @@ def _spectra_of(x: np.ndarray, w: np.ndarray, dft: torch.Tensor, out: torch.Tens
     return _object_spectra(xt, wt, dft, out)
 
 
-@functools.lru_cache(maxsize=8)
-def _idft_matrix(A: int) -> torch.Tensor:
-    """(A, A) inverse of :func:`_dft_matrix`: for real spectra Z (A, L) (rows [Re_0 .. Re_{F-1}, Im_1 .. Im_Fc]),
-    ``M @ Z`` equals ``irfft(Z, n=A, dim=0)`` of the complex bins."""
+def _idft_coefficients(A: int) -> tuple[np.ndarray, np.ndarray]:
+    """float64 (A, F) and (A, Fc): the inverse transform's coefficients of the real parts Re_0 .. Re_{F-1} and of the
+    imaginary parts Im_1 .. Im_Fc of real spectra (:func:`spectrum_rows`), before the division by A."""
     F, Fc = spectrum_rows(A)
     s = np.arange(A)[:, None]
     c = np.full(F, 2.0)
@@ -410,6 +409,14 @@ def _idft_matrix(A: int) -> torch.Tensor:
         c[-1] = 1.0  # the Nyquist bin of an even A
     re = c * np.cos(2.0 * np.pi * s * np.arange(F)[None, :] / A)
     im = -2.0 * np.sin(2.0 * np.pi * s * np.arange(1, Fc + 1)[None, :] / A)
+    return re, im
+
+
+@functools.lru_cache(maxsize=8)
+def _idft_matrix(A: int) -> torch.Tensor:
+    """(A, A) inverse of :func:`_dft_matrix`: for real spectra Z (A, L) (rows [Re_0 .. Re_{F-1}, Im_1 .. Im_Fc]),
+    ``M @ Z`` equals ``irfft(Z, n=A, dim=0)`` of the complex bins."""
+    re, im = _idft_coefficients(A)
     return torch.from_numpy((np.concatenate([re, im], axis=1) / A).astype(np.float32))
 
 
@@ -423,14 +430,8 @@ def _idft_of_partials(A: int) -> torch.Tensor:
     with :func:`_idft_matrix`'s coefficients re_k (of Re_k) and im_k (of Im_k) a shift's sum re_k Re_k + im_k Im_k
     is (re_k + im_k) k1 - im_k k2 - re_k k3: those three columns (computed in float64, then rounded)."""
     F, Fc = spectrum_rows(A)
-    s = np.arange(A)[:, None]
-    c = np.full(F, 2.0)
-    c[0] = 1.0
-    if F - 1 > Fc:
-        c[-1] = 1.0  # the Nyquist bin of an even A
-    real = (c * np.cos(2.0 * np.pi * s * np.arange(F)[None, :] / A))[:, range(*_real_bins(A).indices(F))]
-    re = 2.0 * np.cos(2.0 * np.pi * s * np.arange(1, Fc + 1)[None, :] / A)
-    im = -2.0 * np.sin(2.0 * np.pi * s * np.arange(1, Fc + 1)[None, :] / A)
+    re_all, im = _idft_coefficients(A)
+    real, re = re_all[:, range(*_real_bins(A).indices(F))], re_all[:, 1:Fc + 1]   # complex bins' c is 2
     return torch.from_numpy((np.concatenate([real, re + im, -im, -re], axis=1) / A).astype(np.float32))
 
 
