@@ -85,10 +85,10 @@ from . import atomic, cores
 from .mine.synthetic import GRID, SCALES, synthetic_objects, synthetic_prototypes
 
 
-def _time(fn: Callable[[], object]) -> float:
-    t0 = time.perf_counter()
+def _time(fn: Callable[[], object], clock: Callable[[], float] = time.perf_counter) -> float:
+    t0 = clock()
     fn()
-    return time.perf_counter() - t0
+    return clock() - t0
 
 
 def _times(fn: Callable[[], object], repeats: int) -> tuple[float, float]:
@@ -102,29 +102,16 @@ def _times(fn: Callable[[], object], repeats: int) -> tuple[float, float]:
     return min(wall), min(cpu)
 
 
-def matmul_peak_gflops(n: int, repeats: int = 3) -> float:
+def matmul_peak_gflops(n: int, repeats: int = 3, clock: Callable[[], float] = time.perf_counter) -> float:
     """The machine's float32 matrix-multiply rate in this process: best of ``repeats`` (n, n) @ (n, n)
-    torch products, 2 n^3 floating-point operations each (the usual count of a multiply-add as 2)."""
+    torch products, 2 n^3 floating-point operations each (the usual count of a multiply-add as 2).  ``clock``:
+    wall time by default; ``time.thread_time`` (torch at one thread) gives the rate while the product runs,
+    whatever the waits for a core on a shared machine."""
     import torch
     g = torch.Generator().manual_seed(0)
     a, b = torch.randn(n, n, generator=g), torch.randn(n, n, generator=g)
     a @ b  # warm-up
-    return 2.0 * n ** 3 / min(_time(lambda: a @ b) for _ in range(repeats)) / 1e9
-
-
-def matmul_peak_cpu_gflops(n: int, repeats: int = 3) -> float:
-    """:func:`matmul_peak_gflops` by the calling thread's CPU clock (``time.thread_time``; torch at one thread): the
-    rate while the product runs, whatever the waits for a core on a shared machine."""
-    import torch
-    g = torch.Generator().manual_seed(0)
-    a, b = torch.randn(n, n, generator=g), torch.randn(n, n, generator=g)
-    a @ b  # warm-up
-    best = np.inf
-    for _ in range(repeats):
-        c0 = time.thread_time()
-        a @ b
-        best = min(best, time.thread_time() - c0)
-    return 2.0 * n ** 3 / best / 1e9
+    return 2.0 * n ** 3 / min(_time(lambda: a @ b, clock) for _ in range(repeats)) / 1e9
 
 
 def _product_cpu_and_flops(run: Callable[[], object]) -> tuple[float, float]:
@@ -188,7 +175,7 @@ def bench_assignment(quick: bool, seed: int) -> dict:
     peak1 = matmul_peak_gflops(1024 if quick else 4096)
     search1_s, _ = _times(lambda: pose_distances(X, W, P, V, chunk_size=512), 1)
     prod_s, prod_flops = _product_time_and_flops(lambda: pose_distances(X, W, P, V, chunk_size=512))
-    peak1_cpu = matmul_peak_cpu_gflops(1024 if quick else 4096)
+    peak1_cpu = matmul_peak_gflops(1024 if quick else 4096, clock=time.thread_time)
     prod_cpu, prod_cpu_flops = _product_cpu_and_flops(lambda: pose_distances(X, W, P, V, chunk_size=512))
     cores.set_torch_threads(cores.usable_cores())
     m = max(32, n // 16)  # the naive way is slow: time a slice and scale up
