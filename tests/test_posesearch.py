@@ -131,3 +131,23 @@ def test_first_min_is_the_first_index_of_the_least(shape):
     flat[3, 1] = np.nan
     D, idx = _first_min(torch.from_numpy(t))
     assert np.isnan(D.numpy().reshape(-1)[1]) and idx.numpy().reshape(-1)[1] == 0
+
+
+@pytest.mark.parametrize("keep_bytes", [0, 1 << 30])
+def test_bank_matched_again_keeps_its_answers(keep_bytes, monkeypatch):
+    # a bank lays its factors out for Gauss's products once and keeps them when small (PoseBank._kept_stacked):
+    # every call must still answer as the explicit-roll twin (reference: pose_distances_naive, which never
+    # transforms), and the same bits as the first call, kept or not
+    import protomine.mine.posesearch as ps
+    monkeypatch.setattr(ps, "STACKED_KEEP_BYTES", keep_bytes)
+    X, W, P, V = _random(np.random.default_rng(7), n=9, k=3)
+    scales = (0.9, 1.0, 1.1)
+    bank = ps.PoseBank(P, V, scales)
+    first, again = bank.match(X, W), bank.match(X, W)
+    assert (getattr(bank, "_stacked_full", None) is not None) == (keep_bytes > 0)
+    slow = pose_distances_naive(X, W, P, V, scales=scales)
+    for m in (first, again):
+        np.testing.assert_allclose(m.D, slow.D, rtol=1e-4, atol=1e-5)
+        np.testing.assert_array_equal(m.scale, slow.scale)
+    np.testing.assert_array_equal(again.D, first.D)
+    np.testing.assert_array_equal(again.yaw_deg, first.yaw_deg)

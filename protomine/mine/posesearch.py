@@ -261,6 +261,7 @@ SPECTRA_BLOCK_BYTES = 1 << 21  # the object factors of one block of a chunk (sta
 SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
 MATCH_SHARES = 1  # blocks of a chunk's objects per thread when several threads match them (PoseBank.match_spectra)
 MATCH_MIN_BLOCK = 32  # ... of at least this many objects (fewer: one block on torch's threads, as before)
+STACKED_KEEP_BYTES = 64 << 20  # a bank keeps its factors laid out for Gauss's products up to this size (_kept_stacked)
 
 
 
@@ -738,7 +739,9 @@ class PoseBank:
         step = row_block or max(n, 1)
         for lo, sp, rows in windows:
             part = tuple(f[:, lo * K:(lo + sp) * K] for f in self.factors) if sp < S else self.factors
-            stacked = self._stacked(part, reuse) if spectrum_rows(A)[1] else None
+            stacked = None
+            if spectrum_rows(A)[1]:
+                stacked = self._kept_stacked() if sp == S and not reuse else self._stacked(part, reuse)
             m = n if rows is None else rows.size
 
             def block(r0: int) -> None:
@@ -763,6 +766,18 @@ class PoseBank:
 
             (run or (lambda fn, items: [fn(i) for i in items]))(block, range(0, m, step))
         return PoseMatch(D, yaw, sc, None, tilt=np.zeros(D.shape, np.int64))
+
+    def _kept_stacked(self) -> tuple[torch.Tensor, ...]:
+        """:func:`stack_complex` of the whole bank's factors, laid out on the first call and kept when they take at most
+        ``STACKED_KEEP_BYTES`` (a bank matched many times, as the label stage's, then pays for them once: for 52 views
+        against 32 prototypes x 5 scales they were 1.5 ms of a 22 ms search, one thread); larger ones are laid out
+        for every call, as before (a seeding bank of 512 objects x 5 scales would keep 0.27 GB)."""
+        kept = getattr(self, "_stacked_full", None)   # banks made by ``subset`` start without one
+        if kept is None:
+            kept = self._stacked(self.factors, False)
+            if sum(t.numel() for t in kept) * 4 <= STACKED_KEEP_BYTES:
+                self._stacked_full = kept
+        return kept
 
     @staticmethod
     def _stacked(part: tuple[torch.Tensor, ...], reuse: bool) -> tuple[torch.Tensor, ...]:
