@@ -155,3 +155,40 @@ def test_lifting_objects_together_equals_lifting_each():
     for n in list(range(1, 40)) + [257, 1000, 3455]:
         x = rng.exponential(size=n) * rng.integers(0, 3, n)                                     # ties and zeros
         assert _percentile75(x) == np.percentile(x, 75)
+
+
+@pytest.mark.parametrize("options", [{}, {"carve_to_plane": True}, {"others_unseen": True}, {"others_free": True},
+                                     {"unread_min_surface": 0.3, "carve_to_plane": True, "others_unseen": True}])
+def test_reading_a_frames_objects_together_equals_reading_each(options):
+    """The views of one frame read together (``volume._read_views``: every object's cells and points in one set of
+    array operations, their cell centres in one product for objects on one plane, ``_cell_centres_many``) lift each
+    object to the volume ``lift`` gives it alone, to the bit: objects on one plane of different sizes and places,
+    one with one point, one with none, with the pixels other objects hold (``View.others``) for the options that
+    read them."""
+    from protomine.ingest.volume import lift_many
+    from protomine.scenes.render import look_at
+    from protomine.scenes.noise import StereoSensor, stereo_depth
+    from test_stereo_depth import _box_frame
+    fr, K = _box_frame(160, 150.0, 0.6, 0.2)
+    depth = stereo_depth(fr, K.fx, np.random.default_rng(1), StereoSensor(sigma_px=0.5, subpixel=0.1), dropout=0.02)
+    T = look_at(np.array([0.0, 0.1, 0.6]), np.zeros(3), np.array([0.0, 1.0, 0.0]))
+    rgb = (fr.rgb * 255).astype(np.uint8)
+    pix = np.flatnonzero((fr.mask.reshape(-1) > 0) & (depth.reshape(-1) > 0))
+    flags = flying_pixels(depth)
+    grid = Grid(radial_bins=6, azimuth_bins=24, height_bins=8, **options)
+    up = plane_basis(np.array([0.02, -0.03, 1.0]))[2]
+    parts = [pix[::3], pix[1::3], pix[2::5], pix[:1], pix[:0]]
+    held = np.zeros(depth.size, np.int32)
+    for p in parts:
+        np.add.at(held, p, 1)
+    def view(p):
+        theirs = held.copy()
+        theirs[p] -= 1
+        return View(depth, rgb, K.K, T, p, flags, theirs > 0)
+    objects = [([view(p)], ObjectFrame(origin=np.array([0.01 * k, -0.004 * k, 0.0]), up=up, radius=0.06 + 0.01 * k,
+                                       height=0.12 + 0.03 * k)) for k, p in enumerate(parts)]
+    together = lift_many(objects, grid)
+    for (views, frame), vol in zip(objects, together):
+        np.testing.assert_array_equal(vol, lift(views, frame, grid))
+    assert not np.array_equal(together[0], together[1])
+    assert together[3][2].any() and not np.array_equal(together[3], together[4])   # one point: seen cells, a volume of its own
