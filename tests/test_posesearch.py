@@ -151,3 +151,28 @@ def test_bank_matched_again_keeps_its_answers(keep_bytes, monkeypatch):
         np.testing.assert_array_equal(m.scale, slow.scale)
     np.testing.assert_array_equal(again.D, first.D)
     np.testing.assert_array_equal(again.yaw_deg, first.yaw_deg)
+
+
+def test_bank_built_on_the_search_pool_equals_one_built_on_one_thread():
+    # with torch at 2 threads a PoseBank builds its factors on the search pool's threads (one torch thread each):
+    # the factors must be those of a bank built with torch at one thread, to the bit, and its search must agree
+    # with the explicit-roll twin (reference: pose_distances_naive, which never transforms)
+    import torch
+    import protomine.mine.posesearch as ps
+    from protomine import cores
+    X, W, P, V = _random(np.random.default_rng(5), n=6, k=70)       # more than one block of 64 prototypes
+    scales = (0.9, 1.0, 1.1)
+    before = torch.get_num_threads()
+    try:
+        cores.set_torch_threads(1)
+        one = ps.PoseBank(P, V, scales)
+        cores.set_torch_threads(2)
+        two = ps.PoseBank(P, V, scales)
+        m = two.match(X, W)
+    finally:
+        cores.set_torch_threads(before)
+    for a, b in zip(one.factors, two.factors):
+        assert torch.equal(a, b)
+    slow = pose_distances_naive(X, W, P, V, scales=scales)
+    np.testing.assert_allclose(m.D, slow.D, rtol=1e-4, atol=1e-5)
+    np.testing.assert_array_equal(m.scale, slow.scale)

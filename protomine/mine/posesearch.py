@@ -78,7 +78,7 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from .searchpool import pool_here
+from .searchpool import pool_here, pooled
 
 EPS = 1e-6
 
@@ -634,7 +634,14 @@ class PoseBank:
         """``run(fn, items)``, when given, builds the bank a scale and a block of 64 scaled prototypes at a time
         (the same arithmetic; the tilt search spreads them over threads, ``searchpool.pooled``).  ``factors(dft)``, when
         given, builds the factors (Pn, Pd) of the scaled prototypes in the scale-major order of ``__init__`` instead
-        (``tilts.TiltBank``: its column factors)."""
+        (``tilts.TiltBank``: its column factors).
+
+        Without ``run``, with torch at T > 1 threads (and not on one of the search pool's threads) the bank is built
+        that way on the search's pool (``searchpool.pooled``, one torch thread each) rather than here on torch's T
+        threads: its transforms are small products and elementwise ops, each of which woke torch's other thread and
+        waited for it, and on a shared machine the waits cost more than the work.  Measured at load 7, 2 threads, CPU
+        of the whole process: K = 32 at one scale 142 -> 16 ms, K = 64 x 5 scales 963 -> 141 ms, 256 x 3 1159 -> 427
+        ms; the factors identical to the bit (K = 7, 8, 32, 64, 100, 256 at 1, 3, 5 scales)."""
         K, C, R, A, H = P.shape
         self.K, self.C, self.A, self.scales = K, C, A, scales
         S = len(scales)
@@ -642,6 +649,8 @@ class PoseBank:
         if factors is not None:
             self.factors = factors(self.dft)
             return
+        if run is None and pool_here() is not None:
+            run = pooled
         if run is not None:
             self.factors = self._blocked_factors(P, V, run)
             return
@@ -782,8 +791,8 @@ class PoseBank:
     @staticmethod
     def _stacked(part: tuple[torch.Tensor, ...], reuse: bool) -> tuple[torch.Tensor, ...]:
         """:func:`stack_complex` of each factor; with ``reuse`` in this thread's reusable buffers (``cores.scratch``)."""
-        if not reuse:
-            return tuple(stack_complex(f) for f in part)
+        if not reuse:   # on the search's pool when torch runs T > 1 threads (as the bank's factors, :meth:`__init__`)
+            return tuple(pooled(stack_complex, part))
         from ..cores import scratch
         Fc = spectrum_rows(part[0].shape[0])[1]
         return tuple(stack_complex(f, out=scratch(f"stacked{i}", (2, Fc) + tuple(f.shape[1:]))) for i, f in enumerate(part))
