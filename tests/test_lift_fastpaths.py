@@ -127,20 +127,25 @@ def test_batched_face_poses_equal_face_pose_per_prototype():
         np.testing.assert_allclose(yaw[:, k], y_ref, atol=1e-9)
 
 
+def _stereo_box(seed: int, eye: np.ndarray):
+    """A rendered box seen from ``eye`` with active-stereo depth (tests/test_stereo_depth.py's frame): depth, rgb
+    (uint8), intrinsics, cam_to_world, the box's pixels with a reading and the frame's flying-pixel flags."""
+    from protomine.scenes.render import look_at
+    from protomine.scenes.noise import StereoSensor, stereo_depth
+    from test_stereo_depth import _box_frame
+    fr, K = _box_frame(160, 150.0, 0.6, 0.2)
+    depth = stereo_depth(fr, K.fx, np.random.default_rng(seed), StereoSensor(sigma_px=0.5, subpixel=0.1), dropout=0.02)
+    T = look_at(eye, np.zeros(3), np.array([0.0, 1.0, 0.0]))
+    pix = np.flatnonzero((fr.mask.reshape(-1) > 0) & (depth.reshape(-1) > 0))
+    return depth, (fr.rgb * 255).astype(np.uint8), K, T, pix, flying_pixels(depth)
+
+
 def test_lifting_objects_together_equals_lifting_each():
     """``lift_many`` (a frame's objects' splats and sums done together) gives each object the volume ``lift`` gives
     it alone, to the bit: objects of different sizes and places, one with no points, one seen twice; and the 75th
     percentile it takes of the splat weights is numpy's ``np.percentile(x, 75)`` (reference), float for float."""
     from protomine.ingest.volume import _percentile75, lift_many
-    from protomine.scenes.render import look_at
-    from protomine.scenes.noise import StereoSensor, stereo_depth
-    from test_stereo_depth import _box_frame
-    fr, K = _box_frame(160, 150.0, 0.6, 0.2)
-    depth = stereo_depth(fr, K.fx, np.random.default_rng(0), StereoSensor(sigma_px=0.5, subpixel=0.1), dropout=0.02)
-    T = look_at(np.array([0.0, 0.0, 0.6]), np.zeros(3), np.array([0.0, 1.0, 0.0]))
-    rgb = (fr.rgb * 255).astype(np.uint8)
-    pix = np.flatnonzero((fr.mask.reshape(-1) > 0) & (depth.reshape(-1) > 0))
-    flags = flying_pixels(depth)
+    depth, rgb, K, T, pix, flags = _stereo_box(0, np.array([0.0, 0.0, 0.6]))
     grid = Grid(radial_bins=8, azimuth_bins=36, height_bins=8)
     objects = [([View(depth, rgb, K.K, T, pix[::k], flags)],
                 ObjectFrame(origin=np.array([0.01 * k, -0.005 * k, 0.0]), up=plane_basis(np.array([0.05 * k, 0.0, 1.0]))[2],
@@ -155,3 +160,32 @@ def test_lifting_objects_together_equals_lifting_each():
     for n in list(range(1, 40)) + [257, 1000, 3455]:
         x = rng.exponential(size=n) * rng.integers(0, 3, n)                                     # ties and zeros
         assert _percentile75(x) == np.percentile(x, 75)
+
+
+@pytest.mark.parametrize("options", [{}, {"carve_to_plane": True}, {"others_unseen": True}, {"others_free": True},
+                                     {"unread_min_surface": 0.3, "carve_to_plane": True, "others_unseen": True}])
+def test_reading_a_frames_objects_together_equals_reading_each(options):
+    """The views of one frame read together (``volume._read_views``: every object's cells and points in one set of
+    array operations, their cell centres in one product for objects on one plane, ``_cell_centres_many``) lift each
+    object to the volume ``lift`` gives it alone, to the bit: objects on one plane of different sizes and places,
+    one with one point, one with none, with the pixels other objects hold (``View.others``) for the options that
+    read them."""
+    from protomine.ingest.volume import lift_many
+    depth, rgb, K, T, pix, flags = _stereo_box(1, np.array([0.0, 0.1, 0.6]))
+    grid = Grid(radial_bins=6, azimuth_bins=24, height_bins=8, **options)
+    up = plane_basis(np.array([0.02, -0.03, 1.0]))[2]
+    parts = [pix[::3], pix[1::3], pix[2::5], pix[:1], pix[:0]]
+    held = np.zeros(depth.size, np.int32)
+    for p in parts:
+        np.add.at(held, p, 1)
+    def view(p):
+        theirs = held.copy()
+        theirs[p] -= 1
+        return View(depth, rgb, K.K, T, p, flags, theirs > 0)
+    objects = [([view(p)], ObjectFrame(origin=np.array([0.01 * k, -0.004 * k, 0.0]), up=up, radius=0.06 + 0.01 * k,
+                                       height=0.12 + 0.03 * k)) for k, p in enumerate(parts)]
+    together = lift_many(objects, grid)
+    for (views, frame), vol in zip(objects, together):
+        np.testing.assert_array_equal(vol, lift(views, frame, grid))
+    assert not np.array_equal(together[0], together[1])
+    assert together[3][2].any() and not np.array_equal(together[3], together[4])   # one point: seen cells, a volume of its own

@@ -131,3 +131,48 @@ def test_first_min_is_the_first_index_of_the_least(shape):
     flat[3, 1] = np.nan
     D, idx = _first_min(torch.from_numpy(t))
     assert np.isnan(D.numpy().reshape(-1)[1]) and idx.numpy().reshape(-1)[1] == 0
+
+
+@pytest.mark.parametrize("keep_bytes", [0, 1 << 30])
+def test_bank_matched_again_keeps_its_answers(keep_bytes, monkeypatch):
+    # a bank lays its factors out for Gauss's products once and keeps them when small (PoseBank._kept_stacked):
+    # every call must still answer as the explicit-roll twin (reference: pose_distances_naive, which never
+    # transforms), and the same bits as the first call, kept or not
+    import protomine.mine.posesearch as ps
+    monkeypatch.setattr(ps, "STACKED_KEEP_BYTES", keep_bytes)
+    X, W, P, V = _random(np.random.default_rng(7), n=9, k=3)
+    scales = (0.9, 1.0, 1.1)
+    bank = ps.PoseBank(P, V, scales)
+    first, again = bank.match(X, W), bank.match(X, W)
+    assert (getattr(bank, "_stacked_full", None) is not None) == (keep_bytes > 0)
+    slow = pose_distances_naive(X, W, P, V, scales=scales)
+    for m in (first, again):
+        np.testing.assert_allclose(m.D, slow.D, rtol=1e-4, atol=1e-5)
+        np.testing.assert_array_equal(m.scale, slow.scale)
+    np.testing.assert_array_equal(again.D, first.D)
+    np.testing.assert_array_equal(again.yaw_deg, first.yaw_deg)
+
+
+def test_bank_built_on_the_search_pool_equals_one_built_on_one_thread():
+    # with torch at 2 threads a PoseBank builds its factors on the search pool's threads (one torch thread each):
+    # the factors must be those of a bank built with torch at one thread, to the bit, and its search must agree
+    # with the explicit-roll twin (reference: pose_distances_naive, which never transforms)
+    import torch
+    import protomine.mine.posesearch as ps
+    from protomine import cores
+    X, W, P, V = _random(np.random.default_rng(5), n=6, k=70)       # more than one block of 64 prototypes
+    scales = (0.9, 1.0, 1.1)
+    before = torch.get_num_threads()
+    try:
+        cores.set_torch_threads(1)
+        one = ps.PoseBank(P, V, scales)
+        cores.set_torch_threads(2)
+        two = ps.PoseBank(P, V, scales)
+        m = two.match(X, W)
+    finally:
+        cores.set_torch_threads(before)
+    for a, b in zip(one.factors, two.factors):
+        assert torch.equal(a, b)
+    slow = pose_distances_naive(X, W, P, V, scales=scales)
+    np.testing.assert_allclose(m.D, slow.D, rtol=1e-4, atol=1e-5)
+    np.testing.assert_array_equal(m.scale, slow.scale)

@@ -256,16 +256,23 @@ def lift_many(objects: list[tuple[list[View], ObjectFrame]], grid: Grid) -> list
     points, whose fixed cost, paid once for a frame's objects instead of once each, was most of it)."""
     R, A, H = grid.shape
     n_cells = R * A * H
-    states, reads, bands = [], [], []
-    for views, frame in objects:
-        basis = _basis(np.asarray(frame.up, np.float64).tobytes())   # the centres and the splat share it
-        centres = _cell_centres(grid, frame, basis).reshape(-1, 3)
+    states, reads, bands, todo = [], [], [], []
+    bases = [_basis(np.asarray(frame.up, np.float64).tobytes()) for _, frame in objects]   # the centres and the splat share it
+    for (views, frame), basis, centres in zip(objects, bases, _cell_centres_many(grid, [f for _, f in objects], bases)):
         cell = max(grid.radial_margin * frame.radius / R, grid.height_margin * frame.height / H)
         margin = grid.carve_margin_cells * cell
         for v in views:
-            reads.append((len(states), frame, basis) + _read_view(v, centres, margin, frame, grid))
+            todo.append((len(states), frame, basis, v, centres, margin))
             bands.append(band_fractions(grid, frame, grid.plane_band * v.cut_m) if grid.plane_band > 0 else None)
         states.append(frame)
+    i = 0
+    while i < len(todo):   # runs of views of one frame (the same image and camera) read together
+        j = i + 1
+        while j < len(todo) and _same_image(todo[j][3], todo[i][3]):
+            j += 1
+        group = [(v, c, m, f) for _, f, _, v, c, m in todo[i:j]]
+        reads += [t[:3] + rd for t, rd in zip(todo[i:j], _read_views(group, grid))]
+        i = j
     if not reads:
         return [np.zeros((len(CHANNELS), R, A, H), np.float32) for _ in objects]
     sp = _splat_stack(grid, [(frame, pw, rgb, basis) for _, frame, basis, _, _, _, pw, rgb in reads])
@@ -324,6 +331,97 @@ def band_discount(seen: np.ndarray, free: np.ndarray, hit: np.ndarray, q: np.nda
     here" there is what a flush part and the bare plane both show; a free cell (the ray went on past it) and a cell
     with the object's points keep their weight."""
     return seen * (1.0 - q * (seen & ~free & ~hit))
+
+
+def _cell_centres_many(grid: Grid, frames: list[ObjectFrame], bases: list[np.ndarray]) -> list[np.ndarray]:
+    """(R A H, 3) :func:`_cell_centres` of each frame with its basis (3, 3): the same floats, the frames that share a
+    basis object (a frame's objects share their plane's up, :func:`_basis`) by one set of array operations and one
+    (n R A H, 3) x (3, 3) product, whose rows are those of the products one frame at a time (the same sums of three
+    products; a one-row product would take another kernel, and a frame has R A H > 1 rows)."""
+    R, A, H = grid.shape
+    rho_unit, cos_phi, sin_phi, z_unit = _cell_axes(R, A, H, grid.radial_margin, grid.height_margin)
+    out: list = [None] * len(frames)
+    groups: dict[int, list[int]] = {}
+    for i, b in enumerate(bases):
+        groups.setdefault(id(b), []).append(i)
+    for idx in groups.values():
+        if len(idx) == 1:
+            out[idx[0]] = _cell_centres(grid, frames[idx[0]], bases[idx[0]]).reshape(-1, 3)
+            continue
+        rho = rho_unit[None, :] * np.array([frames[i].radius for i in idx], np.float64)[:, None]   # (n, R)
+        z = z_unit[None, :] * np.array([frames[i].height for i in idx], np.float64)[:, None]       # (n, H)
+        local = np.empty((len(idx), R, A, H, 3))
+        local[..., 0] = rho[:, :, None, None] * cos_phi[None, None, :, None]
+        local[..., 1] = rho[:, :, None, None] * sin_phi[None, None, :, None]
+        local[..., 2] = z[:, None, None, :]
+        origins = np.array([np.asarray(frames[i].origin, np.float64) for i in idx])
+        cen = (local.reshape(-1, 3) @ bases[idx[0]]).reshape(len(idx), -1, 3) + origins[:, None, :]
+        for i, c in zip(idx, cen):
+            out[i] = c
+    return out
+
+
+def _same_image(a: View, b: View) -> bool:
+    """Whether views a and b look through one frame: the same depth, colour, flags and camera arrays, equal
+    intrinsics (a capture's intrinsics give a new matrix each time)."""
+    return (a.depth is b.depth and a.rgb is b.rgb and a.flying is b.flying and a.cam_to_world is b.cam_to_world
+            and (a.K is b.K or np.array_equal(a.K, b.K)))
+
+
+def _read_views(group: list[tuple], grid: Grid) -> list[tuple[np.ndarray, ...]]:
+    """:func:`_read_view` of each (view, centres (n_cells, 3), margin, frame) of ``group``, views of one frame
+    (:func:`_same_image`) with its flying-pixel flags: the same arrays, by one set of array operations over all
+    their cells and all their points (a single view's reading is a few dozen array operations on a few thousand
+    cells, whose fixed cost, paid once for a frame's objects instead of once each, was most of it).  The two
+    products (cells into the camera, points out of it) run on the rows of all the views at once, which are the
+    rows of the products one view at a time (the same sums of three products), except for a view of one point,
+    whose one-row product takes another kernel: its points are done on their own."""
+    v0 = group[0][0]
+    if len(group) == 1 or v0.flying is None:
+        return [_read_view(v, c, m, f, grid) for v, c, m, f in group]
+    h, w = v0.depth.shape
+    sizes = np.array([len(c) for _, c, _, _ in group])
+    pc = transform_points(invert_rigid(v0.cam_to_world), np.concatenate([c for _, c, _, _ in group]))
+    zc = pc[:, 2]
+    zs = np.where(np.abs(zc) < EPS, EPS, zc)
+    u = np.rint(v0.K[0, 0] * pc[:, 0] / zs + v0.K[0, 2]).astype(np.intp)
+    r = np.rint(v0.K[1, 1] * pc[:, 1] / zs + v0.K[1, 2]).astype(np.intp)
+    inside = (zc > 0) & (u >= 0) & (u < w) & (r >= 0) & (r < h)
+    d = np.zeros(len(zc))
+    at = r[inside] * w + u[inside]
+    d[inside] = np.where(v0.flying.reshape(-1)[at], 0.0, v0.depth.reshape(-1)[at])
+    margin = np.repeat([m for _, _, m, _ in group], sizes)   # each view's margin at its cells (the same floats)
+    seen = inside & (d > 0) & (zc < d + margin)
+    free = seen & (zc < d - margin)
+    ends = np.cumsum(sizes)
+    cells = [slice(e - n, e) for e, n in zip(ends, sizes)]
+    for (v, _, m, frame), sl in zip(group, cells):   # what depends on the view's own pixels, on its cells (views)
+        if grid.reads_others and v.others is not None:   # as in _read_view
+            theirs = np.zeros(len(zc[sl]), bool)
+            ins = inside[sl]
+            theirs[ins] = v.others[r[sl][ins] * w + u[sl][ins]]
+            if grid.others_free:
+                free[sl] |= seen[sl] & theirs
+            else:
+                seen[sl] &= ~theirs | free[sl]
+        if grid.carve_to_plane:
+            free[sl] |= seen[sl] & (zc[sl] < d[sl]) & _on_support(v, u[sl], r[sl], d[sl], frame, m)
+    pix = np.concatenate([v.pixels for v, *_ in group])
+    vv, uu = np.divmod(pix, w)
+    z = v0.depth.reshape(-1)[pix]
+    good = z > 0
+    vv, uu, z, pg = vv[good], uu[good], z[good], pix[good]
+    upto = np.concatenate([[0], np.cumsum(good)])[np.cumsum([0] + [len(v.pixels) for v, *_ in group])]
+    n_good = np.diff(upto)                              # each view's points with a reading
+    pts = pixels_to_camera(uu, vv, z, v0.K)
+    spans = [slice(a, b) for a, b in zip(upto[:-1], upto[1:])]
+    if (n_good == 1).any():
+        pw = np.concatenate([camera_to_world(pts[sp], v0.cam_to_world) for sp in spans])
+    else:
+        pw = camera_to_world(pts, v0.cam_to_world)
+    rgb = v0.rgb.reshape(-1, 3)[pg]
+    rgb = _UNIT_BYTE[rgb] if rgb.dtype == np.uint8 else rgb.astype(np.float64) / 255.0   # the same floats
+    return [(d[sl], seen[sl], free[sl], pw[sp], rgb[sp]) for sl, sp in zip(cells, spans)]
 
 
 def _read_view(v: View, centres: np.ndarray, margin: float, frame: ObjectFrame, grid: Grid) -> tuple[np.ndarray, ...]:

@@ -78,7 +78,7 @@ from typing import Sequence
 import numpy as np
 import torch
 
-from .searchpool import pool_here
+from .searchpool import pool_here, pooled
 
 EPS = 1e-6
 
@@ -261,6 +261,7 @@ SPECTRA_BLOCK_BYTES = 1 << 21  # the object factors of one block of a chunk (sta
 SPECTRA_SHARES = 4  # shares of a chunk's objects per thread when several threads build the object spectra
 MATCH_SHARES = 1  # blocks of a chunk's objects per thread when several threads match them (PoseBank.match_spectra)
 MATCH_MIN_BLOCK = 32  # ... of at least this many objects (fewer: one block on torch's threads, as before)
+STACKED_KEEP_BYTES = 64 << 20  # a bank keeps its factors laid out for Gauss's products up to this size (_kept_stacked)
 
 
 
@@ -633,7 +634,14 @@ class PoseBank:
         """``run(fn, items)``, when given, builds the bank a scale and a block of 64 scaled prototypes at a time
         (the same arithmetic; the tilt search spreads them over threads, ``searchpool.pooled``).  ``factors(dft)``, when
         given, builds the factors (Pn, Pd) of the scaled prototypes in the scale-major order of ``__init__`` instead
-        (``tilts.TiltBank``: its column factors)."""
+        (``tilts.TiltBank``: its column factors).
+
+        Without ``run``, with torch at T > 1 threads (and not on one of the search pool's threads) the bank is built
+        that way on the search's pool (``searchpool.pooled``, one torch thread each) rather than here on torch's T
+        threads: its transforms are small products and elementwise ops, each of which woke torch's other thread and
+        waited for it, and on a shared machine the waits cost more than the work.  Measured at load 7, 2 threads, CPU
+        of the whole process: K = 32 at one scale 142 -> 16 ms, K = 64 x 5 scales 963 -> 141 ms, 256 x 3 1159 -> 427
+        ms; the factors identical to the bit (K = 7, 8, 32, 64, 100, 256 at 1, 3, 5 scales)."""
         K, C, R, A, H = P.shape
         self.K, self.C, self.A, self.scales = K, C, A, scales
         S = len(scales)
@@ -641,6 +649,8 @@ class PoseBank:
         if factors is not None:
             self.factors = factors(self.dft)
             return
+        if run is None and pool_here() is not None:
+            run = pooled
         if run is not None:
             self.factors = self._blocked_factors(P, V, run)
             return
@@ -738,7 +748,9 @@ class PoseBank:
         step = row_block or max(n, 1)
         for lo, sp, rows in windows:
             part = tuple(f[:, lo * K:(lo + sp) * K] for f in self.factors) if sp < S else self.factors
-            stacked = self._stacked(part, reuse) if spectrum_rows(A)[1] else None
+            stacked = None
+            if spectrum_rows(A)[1]:
+                stacked = self._kept_stacked() if sp == S and not reuse else self._stacked(part, reuse)
             m = n if rows is None else rows.size
 
             def block(r0: int) -> None:
@@ -764,11 +776,23 @@ class PoseBank:
             (run or (lambda fn, items: [fn(i) for i in items]))(block, range(0, m, step))
         return PoseMatch(D, yaw, sc, None, tilt=np.zeros(D.shape, np.int64))
 
+    def _kept_stacked(self) -> tuple[torch.Tensor, ...]:
+        """:func:`stack_complex` of the whole bank's factors, laid out on the first call and kept when they take at most
+        ``STACKED_KEEP_BYTES`` (a bank matched many times, as the label stage's, then pays for them once: for 52 views
+        against 32 prototypes x 5 scales they were 1.5 ms of a 22 ms search, one thread); larger ones are laid out
+        for every call, as before (a seeding bank of 512 objects x 5 scales would keep 0.27 GB)."""
+        kept = getattr(self, "_stacked_full", None)   # banks made by ``subset`` start without one
+        if kept is None:
+            kept = self._stacked(self.factors, False)
+            if sum(t.numel() for t in kept) * 4 <= STACKED_KEEP_BYTES:
+                self._stacked_full = kept
+        return kept
+
     @staticmethod
     def _stacked(part: tuple[torch.Tensor, ...], reuse: bool) -> tuple[torch.Tensor, ...]:
         """:func:`stack_complex` of each factor; with ``reuse`` in this thread's reusable buffers (``cores.scratch``)."""
-        if not reuse:
-            return tuple(stack_complex(f) for f in part)
+        if not reuse:   # on the search's pool when torch runs T > 1 threads (as the bank's factors, :meth:`__init__`)
+            return tuple(pooled(stack_complex, part))
         from ..cores import scratch
         Fc = spectrum_rows(part[0].shape[0])[1]
         return tuple(stack_complex(f, out=scratch(f"stacked{i}", (2, Fc) + tuple(f.shape[1:]))) for i, f in enumerate(part))
