@@ -20,7 +20,9 @@ spread over the K x S (prototype, scale) pairs of a yaw-only search; ``ratio`` =
 copies does not dominate); ``yaw_cpu_s``, ``tilt_cpu_s``, ``ratio_per_tilt_cpu``: the same in CPU seconds of the
 process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core);
 ``tilt_margin_cpu_s``: the CPU seconds of the same search, cold, refining only the pairs within ``BENCH_MARGIN`` of
-each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default).  The
+each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default);
+``tilt_screen_cpu_s``, ``ratio_per_tilt_screen_cpu``: the same search, cold, with its first level a screen on the
+azimuth frequencies 0 .. ``BENCH_BINS`` (``[mine] tilt_coarse_bins``, ``tilts.band_limited``; off by default).  The
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
 level's row blocks on ``searchpool.spectra_pool``'s threads, one torch thread each (``searchpool.pooled``).
 
@@ -150,6 +152,7 @@ from .tilts import TiltBank, TiltGrid
 
 
 BENCH_MARGIN = 0.25  # the row's search with [mine] tilt_refine_margin at this value (tilt_margin_cpu_s)
+BENCH_BINS = 6       # the row's search with [mine] tilt_coarse_bins at this value (tilt_screen_cpu_s)
 
 
 def bench_tilts(quick: bool, seed: int, n: int | None = None) -> dict:
@@ -193,6 +196,11 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
     c0 = _cpu()
     TiltBank(P, V, np.ones(K), SCALES, grid, refine_margin=BENCH_MARGIN).match_spectra(o)
     margin_cpu = _cpu() - c0
+    # and screening the first level on the azimuth frequencies 0 .. BENCH_BINS ([mine] tilt_coarse_bins)
+    tilts._GEOMETRY_CACHE.clear()
+    c0 = _cpu()
+    TiltBank(P, V, np.ones(K), SCALES, grid, coarse_bins=BENCH_BINS).match_spectra(o)
+    screen_cpu = _cpu() - c0
     (build_s, search_s), warm = runs[0], sum(runs[1])
     tilt_s = build_s + search_s
     T0 = len(grid.level(0))
@@ -204,7 +212,8 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
             "tilt_search_s": search_s, "ratio": ratio, "ratio_per_tilt": ratio / per_pair,
             "tilt_warm_s": warm, "ratio_per_tilt_warm": warm / yaw_s / per_pair,
             "yaw_cpu_s": yaw_cpu, "tilt_cpu_s": cpus[0], "ratio_per_tilt_cpu": cpus[0] / max(yaw_cpu, 1e-9) / per_pair,
-            "tilt_margin_cpu_s": margin_cpu,
+            "tilt_margin_cpu_s": margin_cpu, "tilt_screen_cpu_s": screen_cpu,
+            "ratio_per_tilt_screen_cpu": screen_cpu / max(yaw_cpu, 1e-9) / per_pair,
             "load_1m": os.getloadavg()[0]}
 
 
@@ -256,10 +265,10 @@ def tumbled_objects(rng: np.random.Generator, P: np.ndarray, n: int, grid: TiltG
 
 
 def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15, refine_margin: float = 0.0,
-                       pass_levels: int = 0) -> dict:
+                       pass_levels: int = 0, coarse_bins: int = 0) -> dict:
     """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS.
-    ``refine_margin``, ``pass_levels``: the mining's ``TiltGrid`` switches (``[mine] tilt_refine_margin``,
-    ``tilt_pass_levels``)."""
+    ``refine_margin``, ``pass_levels``, ``coarse_bins``: the mining's ``TiltGrid`` switches (``[mine]
+    tilt_refine_margin``, ``tilt_pass_levels``, ``tilt_coarse_bins``)."""
     import resource
 
     from sklearn.metrics import normalized_mutual_info_score
@@ -270,7 +279,7 @@ def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int
     grid = TiltGrid()
     P = np.abs(synthetic_prototypes(rng, k))
     X, W, aspect, labels = tumbled_objects(rng, P, n, grid)
-    grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels)
+    grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels, coarse_bins=coarse_bins)
     usage = resource.getrusage(resource.RUSAGE_SELF)
     c0 = usage.ru_utime + usage.ru_stime
     r0, m0 = cores.ready_clock(), time.thread_time()
