@@ -136,6 +136,17 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   the assignment row's FFT search (32 prototypes, one scale) costs what it did; its products by the thread's CPU
   clock run at 53 GFLOP/s, 0.58 of one thread's matmul peak (91 GFLOP/s).  Still to cut for 1.3: the refinement's
   copies (``grid_sample`` 46% of a copy) and column factors (~0.1 ms a column, ~4x its memory traffic).
+- Issues 13 / 16 again (load 7-8 throughout; main and this code's rows back to back, twice): the first level as a
+  screen on the azimuth frequencies 0 .. 6 (``[mine] tilt_coarse_bins``, ``tilts.band_limited``): ``tilt_cpu_s``
+  7.68 / 7.84 (main) and 7.17 / 7.65 (this code, the same search to the bit) -> ``tilt_screen_cpu_s`` 4.93 / 5.20,
+  ``ratio_per_tilt_screen_cpu`` 1.32 / 1.42 (``ratio_per_tilt_cpu`` 1.64 / 1.70 main, 1.91 / 2.09 here: the yaw-only
+  search 0.37 / 0.37 vs 0.30 / 0.29 s, noise).  Profile of the screened search (one thread, load 7): the first level
+  3.2 -> 1.05 s, the refinement then ~80% of the search (products ~2.1 s, column factors ~1.5 s, copies ~1.2 s under
+  that load).  Mining 3,000 (this row, seed 0): main 595.2 s CPU, 1,169 s wall, 1,820 MB, NMI 0.9533; the screen
+  550 s, 1,055 s wall, 1,820 MB, NMI 0.9349 (a worse trade than ``pass_levels``).  Tried, not kept: a trilinear
+  reading by gathers in torch (8 ``index_select`` of a channels-last volume, or one gather of every channel plane)
+  or by a 2-D ``grid_sample`` over (azimuth, height) with the radial bins as channels then a radial lerp, against
+  the 3-D ``grid_sample`` on 50,000 points of 6 channels: 11.9 / 13.1 / 9.2 ms against 5.6 ms.
 """
 from __future__ import annotations
 
