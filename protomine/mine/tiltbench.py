@@ -143,7 +143,8 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   search 0.37 / 0.37 vs 0.30 / 0.29 s, noise).  Profile of the screened search (one thread, load 7): the first level
   3.2 -> 1.05 s, the refinement then ~80% of the search (products ~2.1 s, column factors ~1.5 s, copies ~1.2 s under
   that load).  Mining 3,000 (this row, seed 0): main 595.2 s CPU, 1,169 s wall, 1,820 MB, NMI 0.9533; the screen
-  550 s, 1,055 s wall, 1,820 MB, NMI 0.9349 (a worse trade than ``pass_levels``).  Tried, not kept: a trilinear
+  550 s, 1,055 s wall, 1,820 MB, NMI 0.9349 (a worse trade than ``pass_levels``); ``refine_margin`` 0.25: 600.1 s,
+  1,304 s wall, 1,811 MB, NMI 0.9493.  Tried, not kept: a trilinear
   reading by gathers in torch (8 ``index_select`` of a channels-last volume, or one gather of every channel plane)
   or by a 2-D ``grid_sample`` over (azimuth, height) with the radial bins as channels then a radial lerp, against
   the 3-D ``grid_sample`` on 50,000 points of 6 channels: 11.9 / 13.1 / 9.2 ms against 5.6 ms.
