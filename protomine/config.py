@@ -59,6 +59,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.tilt_refine_top": (1, 64),
     "mine.tilt_refine_margin": (0.0, 100.0),
     "mine.tilt_pass_levels": (0, 16),
+    "mine.tilt_coarse_bins": (0, 1024),
     "mine.label_refine_top": (0, 64),
     "mine.view_prototype_members": (0, 100000),
     "mine.free_weight_factors": (0.0, 16.0),

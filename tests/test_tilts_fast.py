@@ -17,7 +17,8 @@ import torch
 from scipy import ndimage
 
 from protomine.mine import tilts
-from protomine.mine.posesearch import _dft_matrix, _prototype_spectra, pose_distances_naive, scale_prototypes
+from protomine.mine.posesearch import (_dft_matrix, _distances_from_spectra, _prototype_spectra, pose_distances_naive,
+                                      scale_prototypes)
 from protomine.mine.tilts import TiltBank, TiltGrid, column_factors
 
 SHAPE = (5, 16, 6)
@@ -413,3 +414,61 @@ def test_cell_points_equal_the_cylindrical_cell_centres(shape, rho_max, z_max):
                       (i + 0.5) / R * rho_max * math.sin((j + 0.5) / A * 2 * math.pi), (k + 0.5) / H * z_max]
                      for i in range(R) for j in range(A) for k in range(H)])
     np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+
+
+def _series(f: np.ndarray, bins: int, at: np.ndarray) -> np.ndarray:
+    """The Fourier series of samples f (A,) (numpy.fft.rfft) cut to the frequencies 0 .. bins, evaluated at the
+    positions ``at`` (in samples): (1 / A) (F_0 + 2 Re sum_{k=1..bins} F_k exp(2 pi i k t / A))."""
+    A = len(f)
+    F = np.fft.rfft(f)[:bins + 1]
+    k = np.arange(bins + 1)
+    c = np.where(k == 0, 1.0, 2.0)
+    return (c * F[None] * np.exp(2j * np.pi * k[None] * at[:, None] / A)).real.sum(axis=1) / A
+
+
+def test_band_limited_screen_equals_the_truncated_correlation():
+    # the screen ([mine] tilt_coarse_bins, tilts.band_limited): at each of its A' = 2 L + 1 shifts, the numerator and
+    # the denominator of the documented distance (posesearch module docstring) computed by explicit rolls at every
+    # integer shift, then their Fourier series over the shifts cut to the frequencies 0 .. L (numpy.fft.rfft; common
+    # practice: a band-limited signal between its samples) and evaluated at shift s' A / A', divided
+    rng = np.random.default_rng(5)
+    P, V = _protos(rng, K=2)
+    L, A = 3, SHAPE[1]
+    grid = TiltGrid(nsides=(1, 2))
+    bank = TiltBank(P, V, np.array([1.0, 1.2]), (1.0,), grid, coarse_bins=L)
+    assert bank.coarse.A == 2 * L + 1
+    X = np.abs(rng.normal(size=(3, 2) + SHAPE)).astype(np.float32)
+    W = rng.uniform(0.1, 1.0, size=(3,) + SHAPE).astype(np.float32)
+    o = bank.spectra(X, W).index_select(0, bank.band)
+    d = _distances_from_spectra(o, bank.coarse.factors, 2 * L + 1, 0.0).numpy()  # (A', M, n)
+    T0 = len(grid.level(0))
+    Pc, Vc = bank.copies(np.repeat([0, 1], T0), np.tile(grid.level(0), 2))  # the bank's order, prototype-major
+    at = np.arange(2 * L + 1) * A / (2 * L + 1)
+    for m in range(len(Pc)):
+        for i in range(len(X)):
+            v = [np.roll(Vc[m], s, axis=1) for s in range(A)]
+            num = np.array([np.sum(W[i] * v[s] * (X[i] - np.roll(Pc[m], s, axis=2)) ** 2) for s in range(A)])
+            den = 2 * np.array([np.sum(W[i] * v[s]) for s in range(A)])
+            np.testing.assert_allclose(d[:, m, i], _series(num, L, at) / _series(den, L, at), rtol=2e-4)
+
+
+def test_screened_search_reports_the_exact_distance_of_its_pose():
+    # with the screen, each object's distance to its nearest prototype is the definition's (explicit rolls) on the
+    # copy at the reported tilt, a refined direction, at the reported scale: the screen only ranks the pairs
+    rng = np.random.default_rng(2)
+    P, V = _protos(rng, K=3)
+    scales = (0.9, 1.0, 1.1)
+    grid = TiltGrid(nsides=(1, 2, 4), refine_top=2)
+    bank = TiltBank(P, V, np.array([1.0, 1.2, 0.8]), scales, grid, coarse_bins=3)
+    X, W = bank.copies(np.array([0, 1, 2, 0, 1, 2]), np.array([7, 30, 100, 150, 4, 0]))
+    X = np.roll(X + 0.05 * rng.normal(size=X.shape).astype(np.float32), 5, axis=3)
+    W = W * (np.arange(SHAPE[1]) < 10)[None, :, None]
+    got = bank.match(X, W)
+    for i in range(len(X)):
+        k = int(np.argmin(got.D[i]))
+        t = int(got.tilt[i, k])
+        assert t >= grid.offsets[1]
+        d, _ = _naive_best(bank, X[i], W[i], k, [t], (float(got.scale[i, k]),))
+        np.testing.assert_allclose(got.D[i, k], d, rtol=2e-4, atol=1e-6)
+    # a band as wide as the spectra is no screen: the exact search
+    assert TiltBank(P, V, np.ones(3), scales, grid, coarse_bins=8).band is None

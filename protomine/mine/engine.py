@@ -453,7 +453,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     K, C, R, A, H = P.shape
     S = len(scales)
     bank = make_bank(P, V, scales, None if tilts is None else tilts.grid, None if tilts is None else tilts.aspect,
-                     0.0 if tilts is None else tilts.grid.refine_margin)
+                     0.0 if tilts is None else tilts.grid.refine_margin, 0 if tilts is None else tilts.grid.coarse_bins)
     T = 1 if tilts is None else len(tilts.grid.dirs)
     tilt_bank = bank if isinstance(bank, TiltBank) else None
     if tilt_bank is not None:
@@ -843,7 +843,7 @@ def _face_assign(source: Source, res: _Result, *, scales: tuple[float, ...], chu
     such: 3 of them the only one of their class on their face, 2 one of 2, every one's nearest object on the
     stable-face matrix of its own class; the lesser distance placed 4 of the 6 right with the fit's prototypes."""
     N, K = len(source), res.P.shape[0]
-    bank = make_bank(res.P, res.V, scales, grid, res.aspect, grid.refine_margin)
+    bank = make_bank(res.P, res.V, scales, grid, res.aspect, grid.refine_margin, grid.coarse_bins)
     upright = PoseBank(res.P, res.V, scales)
     aspect = _source_aspect(source)
     labels = np.asarray(res.labels, np.int64).copy()

@@ -64,7 +64,7 @@ def tilt_grid(cfg: dict, path=None) -> TiltGrid | None:
         raise InputError(path, "mine.tilt_nsides", f"expected [0] or increasing HEALPix N_side values, got {list(nsides)}")
     return TiltGrid(nsides=nsides, radial_margin=float(v["radial_margin"]), height_margin=float(v["height_margin"]),
                     refine_top=int(m["tilt_refine_top"]), refine_margin=float(m.get("tilt_refine_margin", 0.0)),
-                    pass_levels=int(m.get("tilt_pass_levels", 0)))
+                    pass_levels=int(m.get("tilt_pass_levels", 0)), coarse_bins=int(m.get("tilt_coarse_bins", 0)))
 
 
 def store_aspect(store: ObjectStore, cfg: dict) -> np.ndarray:

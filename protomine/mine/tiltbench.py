@@ -20,7 +20,9 @@ spread over the K x S (prototype, scale) pairs of a yaw-only search; ``ratio`` =
 copies does not dominate); ``yaw_cpu_s``, ``tilt_cpu_s``, ``ratio_per_tilt_cpu``: the same in CPU seconds of the
 process (first run of the tilt search; on a shared machine the wall clock also counts waits for a core);
 ``tilt_margin_cpu_s``: the CPU seconds of the same search, cold, refining only the pairs within ``BENCH_MARGIN`` of
-each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default).  The
+each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default);
+``tilt_screen_cpu_s``, ``ratio_per_tilt_screen_cpu``: the same search, cold, with its first level a screen on the
+azimuth frequencies 0 .. ``BENCH_BINS`` (``[mine] tilt_coarse_bins``, ``tilts.band_limited``; off by default).  The
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
 level's row blocks on ``searchpool.spectra_pool``'s threads, one torch thread each (``searchpool.pooled``).
 
@@ -134,6 +136,18 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   the assignment row's FFT search (32 prototypes, one scale) costs what it did; its products by the thread's CPU
   clock run at 53 GFLOP/s, 0.58 of one thread's matmul peak (91 GFLOP/s).  Still to cut for 1.3: the refinement's
   copies (``grid_sample`` 46% of a copy) and column factors (~0.1 ms a column, ~4x its memory traffic).
+- Issues 13 / 16 again (load 7-8 throughout; main and this code's rows back to back, twice): the first level as a
+  screen on the azimuth frequencies 0 .. 6 (``[mine] tilt_coarse_bins``, ``tilts.band_limited``): ``tilt_cpu_s``
+  7.68 / 7.84 (main) and 7.17 / 7.65 (this code, the same search to the bit) -> ``tilt_screen_cpu_s`` 4.93 / 5.20,
+  ``ratio_per_tilt_screen_cpu`` 1.32 / 1.42 (``ratio_per_tilt_cpu`` 1.64 / 1.70 main, 1.91 / 2.09 here: the yaw-only
+  search 0.37 / 0.37 vs 0.30 / 0.29 s, noise).  Profile of the screened search (one thread, load 7): the first level
+  3.2 -> 1.05 s, the refinement then ~80% of the search (products ~2.1 s, column factors ~1.5 s, copies ~1.2 s under
+  that load).  Mining 3,000 (this row, seed 0): main 595.2 s CPU, 1,169 s wall, 1,820 MB, NMI 0.9533; the screen
+  550 s, 1,055 s wall, 1,820 MB, NMI 0.9349 (a worse trade than ``pass_levels``); ``refine_margin`` 0.25: 600.1 s,
+  1,304 s wall, 1,811 MB, NMI 0.9493.  Tried, not kept: a trilinear
+  reading by gathers in torch (8 ``index_select`` of a channels-last volume, or one gather of every channel plane)
+  or by a 2-D ``grid_sample`` over (azimuth, height) with the radial bins as channels then a radial lerp, against
+  the 3-D ``grid_sample`` on 50,000 points of 6 channels: 11.9 / 13.1 / 9.2 ms against 5.6 ms.
 """
 from __future__ import annotations
 
@@ -150,6 +164,7 @@ from .tilts import TiltBank, TiltGrid
 
 
 BENCH_MARGIN = 0.25  # the row's search with [mine] tilt_refine_margin at this value (tilt_margin_cpu_s)
+BENCH_BINS = 6       # the row's search with [mine] tilt_coarse_bins at this value (tilt_screen_cpu_s)
 
 
 def bench_tilts(quick: bool, seed: int, n: int | None = None) -> dict:
@@ -193,6 +208,11 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
     c0 = _cpu()
     TiltBank(P, V, np.ones(K), SCALES, grid, refine_margin=BENCH_MARGIN).match_spectra(o)
     margin_cpu = _cpu() - c0
+    # and screening the first level on the azimuth frequencies 0 .. BENCH_BINS ([mine] tilt_coarse_bins)
+    tilts._GEOMETRY_CACHE.clear()
+    c0 = _cpu()
+    TiltBank(P, V, np.ones(K), SCALES, grid, coarse_bins=BENCH_BINS).match_spectra(o)
+    screen_cpu = _cpu() - c0
     (build_s, search_s), warm = runs[0], sum(runs[1])
     tilt_s = build_s + search_s
     T0 = len(grid.level(0))
@@ -204,7 +224,8 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
             "tilt_search_s": search_s, "ratio": ratio, "ratio_per_tilt": ratio / per_pair,
             "tilt_warm_s": warm, "ratio_per_tilt_warm": warm / yaw_s / per_pair,
             "yaw_cpu_s": yaw_cpu, "tilt_cpu_s": cpus[0], "ratio_per_tilt_cpu": cpus[0] / max(yaw_cpu, 1e-9) / per_pair,
-            "tilt_margin_cpu_s": margin_cpu,
+            "tilt_margin_cpu_s": margin_cpu, "tilt_screen_cpu_s": screen_cpu,
+            "ratio_per_tilt_screen_cpu": screen_cpu / max(yaw_cpu, 1e-9) / per_pair,
             "load_1m": os.getloadavg()[0]}
 
 
@@ -256,10 +277,10 @@ def tumbled_objects(rng: np.random.Generator, P: np.ndarray, n: int, grid: TiltG
 
 
 def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int = 15, refine_margin: float = 0.0,
-                       pass_levels: int = 0) -> dict:
+                       pass_levels: int = 0, coarse_bins: int = 0) -> dict:
     """Run in a subprocess: n tumbled objects of k prototypes, mined with the default tilt grid; time, peak RSS.
-    ``refine_margin``, ``pass_levels``: the mining's ``TiltGrid`` switches (``[mine] tilt_refine_margin``,
-    ``tilt_pass_levels``)."""
+    ``refine_margin``, ``pass_levels``, ``coarse_bins``: the mining's ``TiltGrid`` switches (``[mine]
+    tilt_refine_margin``, ``tilt_pass_levels``, ``tilt_coarse_bins``)."""
     import resource
 
     from sklearn.metrics import normalized_mutual_info_score
@@ -270,7 +291,7 @@ def _mine_tumbled_once(n: int, k: int, seed: int, n_init: int = 2, max_iter: int
     grid = TiltGrid()
     P = np.abs(synthetic_prototypes(rng, k))
     X, W, aspect, labels = tumbled_objects(rng, P, n, grid)
-    grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels)
+    grid = TiltGrid(refine_margin=refine_margin, pass_levels=pass_levels, coarse_bins=coarse_bins)
     usage = resource.getrusage(resource.RUSAGE_SELF)
     c0 = usage.ru_utime + usage.ru_stime
     r0, m0 = cores.ready_clock(), time.thread_time()

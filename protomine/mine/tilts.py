@@ -72,7 +72,8 @@ from scipy.spatial import ConvexHull, QhullError
 from .. import rotations as rot
 from ..cores import reused_scratch, scratch
 from ..ingest.proposals import min_enclosing_circles
-from .posesearch import PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw
+from .posesearch import (PoseBank, PoseMatch, _distances_from_spectra, _first_min, _prepare, _refined_yaw,
+                         _spectra_of, spectrum_rows)
 from .searchpool import pool_here, pooled
 
 SURFACE_MIN = 0.4      # surface evidence above which a prototype cell counts as part of the object
@@ -96,6 +97,7 @@ class TiltGrid:
     refine_top: int = 3
     refine_margin: float = 0.0  # mining passes only (the engine's banks): see _refine_pairs; not kept in a library
     pass_levels: int = 0  # > 0: Lloyd's intermediate passes search only this many levels (engine; not in a library)
+    coarse_bins: int = 0  # > 0: mining passes screen the first level on this many azimuth frequencies (not in a library)
     dirs: np.ndarray = field(init=False, repr=False, compare=False)
     offsets: tuple[int, ...] = field(init=False, repr=False, compare=False)
 
@@ -653,6 +655,30 @@ def _best_shifts(d: torch.Tensor) -> tuple[np.ndarray, np.ndarray]:
     return _refined_yaw(D, sh, dm, dp, A)
 
 
+def band_rows(A: int, bins: int) -> np.ndarray:
+    """Rows of real spectra (``posesearch.spectrum_rows`` layout [Re_0 .. Re_{F-1}, Im_1 .. Im_Fc] of A azimuth bins)
+    of the frequencies 0 .. ``bins``: [Re_0 .. Re_bins, Im_1 .. Im_bins], which is the layout of the real spectra of
+    2 bins + 1 azimuth bins (2 bins + 1 < A)."""
+    F = spectrum_rows(A)[0]
+    return np.r_[np.arange(bins + 1), F + np.arange(bins)]
+
+
+def band_limited(bank: PoseBank, bins: int) -> tuple[PoseBank, torch.Tensor]:
+    """A bank of the same prototypes searched on the azimuth frequencies 0 .. ``bins`` of ``bank`` only, and the rows
+    (:func:`band_rows`) to take from the object spectra it is given.  Its A' = 2 bins + 1 shifts are the truncated
+    Fourier series of every correlation sampled at 360 / A' degree steps (the inverse transform of A' bins evaluates
+    exactly that series; its 1 / A' instead of 1 / A scales the numerator and the denominator alike), so its search
+    costs about A' / A of the full one: products over 2 bins + 1 of the A spectrum rows, A' shifts to reduce.  A
+    screen: the distance of azimuthally smoothed correlations, not the distance (``TiltBank``, ``[mine]
+    tilt_coarse_bins``)."""
+    rows = torch.from_numpy(band_rows(bank.A, bins))
+    out = object.__new__(PoseBank)
+    out.K, out.C, out.scales, out.dft = bank.K, bank.C, bank.scales, None
+    out.A = 2 * bins + 1
+    out.factors = tuple(f.index_select(0, rows) for f in bank.factors)
+    return out, rows
+
+
 # --- the bank ----------------------------------------------------------------------------------
 
 GEOMETRY_CACHE_SIZE = 256  # prototypes (solid cells, aspect) whose copies' geometries are kept across passes
@@ -701,7 +727,7 @@ class TiltBank:
     """
 
     def __init__(self, P: np.ndarray, V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid,
-                 *, refine_margin: float = 0.0):
+                 *, refine_margin: float = 0.0, coarse_bins: int = 0):
         self.refine_margin = float(refine_margin)  # > 0: see _refine_pairs
         # True: the refinement keeps every later-level copy it builds (a pass's earlier chunks: the later chunks
         # need nearly the same copies; set by the engine), False: it drops them batch by batch (_drop_refined)
@@ -735,6 +761,11 @@ class TiltBank:
         # the first level's copies at every scale: the refinement's column factors (blocks spread over the threads)
         self.coarse = PoseBank(Pc, Vc, scales, factors=factors)
         self.dft = self.coarse.dft
+        # coarse_bins > 0 (mining passes): the first level is a screen on the azimuth frequencies 0 .. coarse_bins only
+        # (band_limited); its distances rank the pairs to refine, and the refinement's exact ones replace them
+        self.band = None
+        if 0 < coarse_bins and 2 * coarse_bins + 1 < self.A and len(grid.nsides) > 1:
+            self.coarse, self.band = band_limited(self.coarse, coarse_bins)
 
     def _geometries(self, pairs: Sequence[tuple[int, int]]) -> None:
         """Compute the missing geometries of (prototype, tilt) ``pairs``, one batch per prototype.  A geometry
@@ -886,7 +917,7 @@ class TiltBank:
         return out
 
     def spectra(self, x: np.ndarray, w: np.ndarray, out: torch.Tensor | None = None) -> torch.Tensor:
-        return self.coarse.spectra(x, w, out)
+        return _spectra_of(x, w, self.dft, out)
 
     def match_spectra(self, o: torch.Tensor, min_overlap: float = 1e-3, return_all: bool = False,
                       scale_index: np.ndarray | None = None, window: int = 1, focus: np.ndarray | None = None
@@ -899,9 +930,11 @@ class TiltBank:
         # blocks of objects bound the (n, K T0, S, A) distances
         # the blocks run at once on the pool's threads: COARSE_ROWS objects over all of them (memory as one block)
         rows = max(1, COARSE_ROWS // torch.get_num_threads())
+        oc = o if self.band is None else o.index_select(0, self.band)  # the screen's rows of the object spectra
         with reused_scratch():  # the row blocks' temporaries in each thread's buffers, freed before the refinement
-            m = self.coarse.match_spectra(o, min_overlap, False, scale_index, window, row_block=rows, run=pooled,
+            m = self.coarse.match_spectra(oc, min_overlap, False, scale_index, window, row_block=rows, run=pooled,
                                           reuse=True)
+        del oc
         D = m.D.reshape(n, K, T0)
         bt = np.argmin(D, axis=2)
         pick = lambda a: np.take_along_axis(a.reshape(n, K, T0), bt[..., None], axis=2)[..., 0]  # noqa: E731
@@ -937,6 +970,8 @@ class TiltBank:
         scales32 = np.asarray(self.scales, np.float32)
         psi = np.argmin(np.abs(psc[..., None] - scales32), axis=-1)  # (n, m) scale index of each pair
         minov = self.C * min_overlap
+        screened = self.band is not None
+        replaced = np.zeros(pd.shape, bool)  # pairs whose screened distance was replaced by an exact one
         for level in range(1, self.levels or len(self.grid.nsides)):
             # with a margin, each level refines the pairs within it of the object's best so far
             ii, jj = np.nonzero(_refine_pairs(pd, pk, focus, self.refine_margin) < np.inf)
@@ -1033,12 +1068,18 @@ class TiltBank:
                     j = np.argmin(De, axis=1)
                     rr = np.arange(len(es_p))
                     better = De[rr, j] < pd[rows, cols_e]
+                    if screened and level == 1:  # a screened pair takes its exact refined pose whatever the screen said
+                        better |= np.isfinite(De[rr, j])
+                        replaced[rows[better], cols_e[better]] = True
                     ri, ci = rows[better], cols_e[better]
                     pd[ri, ci] = De[rr, j][better]
                     pyaw[ri, ci] = yg[inv, j][better]
                     pt[ri, ci] = cols[j[better]]
         if not self.keep_refined:
             self._drop_refined()
+        if screened:  # a prototype with an exactly refined pair gets that pair's distance, not the screen's
+            ii, jj = np.nonzero(replaced)
+            out.D[ii, pk[ii, jj]] = np.inf
         for j in range(pk.shape[1]):
             i = np.flatnonzero(pd[:, j] < out.D[np.arange(n), pk[:, j]])
             k = pk[i, j]
@@ -1049,13 +1090,14 @@ class TiltBank:
 
 
 def make_bank(P: np.ndarray, V: np.ndarray, scales: tuple[float, ...], grid: TiltGrid | None = None,
-              aspect: np.ndarray | None = None, refine_margin: float = 0.0):
-    """A PoseBank (yaw-only grid or none) or a TiltBank; both give PoseMatch with ``tilt`` (n, K)."""
+              aspect: np.ndarray | None = None, refine_margin: float = 0.0, coarse_bins: int = 0):
+    """A PoseBank (yaw-only grid or none) or a TiltBank; both give PoseMatch with ``tilt`` (n, K).  ``refine_margin``,
+    ``coarse_bins``: the mining passes' switches (:class:`TiltBank`)."""
     if grid is None or grid.is_identity:
         return PoseBank(P, V, scales)
     if aspect is None:
         raise ValueError("a tilt search needs the prototypes' aspects (z_max / rho_max), got None")
-    return TiltBank(P, V, aspect, scales, grid, refine_margin=refine_margin)
+    return TiltBank(P, V, aspect, scales, grid, refine_margin=refine_margin, coarse_bins=coarse_bins)
 
 
 def tilt_pose_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, *, aspect: np.ndarray,
