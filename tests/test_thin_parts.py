@@ -112,21 +112,29 @@ def _flange_post(disc_thick: float) -> S.Shape:
     return S.union(*parts)
 
 
-def test_two_touching_posts_of_one_colour_on_bases_at_the_margin_stay_two_whole_objects(tmp_path):
+@pytest.mark.parametrize("grow", [
+    False, pytest.param(True, id="crumb_grow", marks=pytest.mark.xfail(
+        strict=True, reason="measured: one proposal of both posts; the growth gives 15 crumbs at the contact of "
+                            "the two bases to the other post's base part, whose seam with it then reaches "
+                            "convexity.SEAM_LONG (0.098 >= 0.05) and the same-colour join glues the two"))])
+def test_two_touching_posts_of_one_colour_on_bases_at_the_margin_stay_two_whole_objects(tmp_path, grow):
     """Two pegged posts of one colour whose base discs touch; the discs (7 mm) are as thick as the grouping
     margin (8 mm) give or take the sensor noise, so above it they show only in patches.  Mask-free, the
     capture holds exactly two proposals, each nearly all of one object (purity >= 0.95 of its pixels by the
     rendered masks) holding >= 0.8 of that object's masked pixels: no patch of a base becomes an object of
     its own, and the pieces of one post that meet the other do not glue the two.  Expected answer by
-    construction (the renderer's own masks)."""
+    construction (the renderer's own masks).  Not met with ``[ingest] crumb_grow`` (a strict expected failure:
+    one of the reasons it stays off; README, the paragraph on contact voxels and the second growth)."""
     rng = np.random.default_rng(5)
     shapes = [_flange_post(0.007), _flange_post(0.007)]
     yaws = np.array([10.0, 75.0])
     pos = place_touching(shapes, yaws, rng)
     col = (0.42, 0.2, 0.52)
     scene = Scene([SceneObject(s, float(y), p, col) for s, y, p in zip(shapes, yaws, pos)])
+    cfg = load_config("fast")
+    cfg["ingest"]["crumb_grow"] = grow
     masked, free = ring_proposals(tmp_path, scene, INTR, rng, np.zeros(3), 0.55, (35, 55),
-                                  target=np.array([0, 0, 0.04]))
+                                  target=np.array([0, 0, 0.04]), cfg=cfg)
     assert len(free.proposals) == 2, [p.n_points for p in free.proposals]
     masks = {fd.id: fd.mask.reshape(-1) for fd in free.frames}
     for p in free.proposals:

@@ -13,10 +13,11 @@ from protomine.scenes.render import Scene, look_at, render
 
 def ring_proposals(tmp_path, scene: Scene, intr: Intrinsics, rng: np.random.Generator, centre: np.ndarray,
                    distance: float, elevation_deg: tuple[float, float], target: np.ndarray | None = None,
-                   frames: int = 6):
+                   frames: int = 6, cfg: dict | None = None):
     """Render ``frames`` views from ``distance`` around ``centre`` (azimuths evenly spread, jittered; elevations
     drawn in ``elevation_deg``), looking at ``target`` (default: the centre), with gaussian depth noise; write
-    and read them back as a capture and return (masked proposals by key, the mask-free finding)."""
+    and read them back as a capture and return (masked proposals by key, the mask-free finding), with ``cfg``
+    (default: the fast preset)."""
     target = centre if target is None else target
     views = []
     for i in range(frames):
@@ -28,6 +29,6 @@ def ring_proposals(tmp_path, scene: Scene, intr: Intrinsics, rng: np.random.Gene
         views.append(dict(id=f"{i:06d}", cam_to_world=T, rgb=rgb, depth_m=depth, mask=r.mask))
     write_capture(tmp_path / "pair", intrinsics=intr, depth_scale=1000.0, frames=views)
     cap = read_capture(tmp_path / "pair")
-    cfg = load_config("fast")
+    cfg = load_config("fast") if cfg is None else cfg
     masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
     return masked, find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)

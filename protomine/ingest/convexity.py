@@ -79,7 +79,8 @@ def voxel_normals(points: np.ndarray, views: np.ndarray, labels: np.ndarray, rad
 
 def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *, adjacency: float,
                  concave_deg: float, votes=None, colours: np.ndarray | None = None,
-                 regroup: bool = False, grow: bool = False) -> tuple[np.ndarray, np.ndarray]:
+                 regroup: bool = False, grow: bool = False,
+                 mixed: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Parts (V,) (-1 where ``labels`` is -1) and the adjacency pairs (E, 2) within a group.
 
     votes: optional per-frame segment shares of the voxels (``view_votes``); pairs the frames seeing both
@@ -91,7 +92,10 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     alone takes the part of its nearest voxel of its own colour (``_crumb_targets``).
     grow (``[ingest] crumb_grow``, implies regroup): first, each crumb takes the part that reaches it first
     along the surface the fused cloud shows unbroken, through crumbs of the part's colour (``_grow_crumbs``);
-    only the crumbs no part reaches go on as with regroup."""
+    then, with colours, the crumbs left are grown into the same way across the creases too (only the colour
+    steps and the mixed voxels cut); only the crumbs no part reaches go on as with regroup.
+    mixed: optional (V,) bool, voxels whose readings are of two colours (``contact_voxels``: where two objects
+    touch); with grow, every pair of theirs is cut, in the fused cloud too (they end as crumbs)."""
     regroup = regroup or grow
     V = len(points)
     pairs = cKDTree(points).query_pairs(adjacency, output_type="ndarray") if V > 1 else np.zeros((0, 2), int)
@@ -101,8 +105,10 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     bend = np.einsum("ei,ei->e", dn, points[i] - points[j])                    # > 0 convex, < 0 concave
     cos = np.einsum("ei,ei->e", normals[i], normals[j])
     concave = (bend < 0) & (cos < np.cos(np.deg2rad(concave_deg)))
-    if colours is not None:
-        concave |= colour_steps(colours, pairs)
+    stepped = colour_steps(colours, pairs) if colours is not None else np.zeros(len(pairs), bool)
+    if grow and mixed is not None:
+        stepped |= mixed[i] | mixed[j]
+    concave |= stepped
     fused = concave.copy()                       # the cuts the fused cloud itself shows
     if votes is not None:
         concave |= view_disagreement(pairs, votes)
@@ -114,6 +120,9 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
         small = (size[comp] < CRUMB_VOXELS) & (labels >= 0)
         if votes is not None and grow and small.any():
             comp, small = _grow_crumbs(points, pairs, fused, comp, small, colours)
+            if colours is not None and small.any():
+                # what no part reached along the unbroken surface: grown into across the creases too, by colour
+                comp, small = _grow_crumbs(points, pairs, stepped, comp, small, colours)
         if votes is not None and regroup and small.any():
             comp, small = _regroup_crumbs(pairs, concave, fused, comp, small, colours)
         big = np.flatnonzero(~small & (labels >= 0))
@@ -240,6 +249,42 @@ def _crumb_targets(points: np.ndarray, colours: np.ndarray, crumbs: np.ndarray, 
         first = np.r_[True, r[1:] != r[:-1]]
         out[np.flatnonzero(lit)[r[first]]] = b[first]
     return out
+
+
+def contact_voxels(inv: np.ndarray, colours: np.ndarray, n_voxels: int) -> np.ndarray:
+    """(V,) bool: voxels whose readings are of two colours.  inv: (M,) voxel of each reading; colours: (M, 3)
+    RGB of the readings.  Each voxel's bright readings (DARK_RGB) are split by their chromaticity: those
+    within COLOUR_STEP / 2 of the reading farthest from the voxel's mean, and the rest; the voxel is mixed
+    when both sides hold a reading and their means lie farther apart than COLOUR_STEP.
+
+    Where two objects touch, a voxel (a third of the grouping radius) holds readings of both; its mean
+    colour lies between theirs, within the colour step of either, so two such voxels bridge two objects of
+    different colours that meet flush (measured, thin-handle family draw of seed 9: two posts' tops, 0.16
+    apart in chromaticity, joined through two voxels each holding readings of both, means 0.07 from either).
+    One object's readings lie 98% within 0.03-0.04 of its median (proposals.GROW_CHROMA), so its own voxels
+    are not split."""
+    s, ch = _chromaticities(colours)
+    ok = s >= DARK_RGB
+    inv, ch = inv[ok], ch[ok]
+    out = np.zeros(n_voxels, bool)
+    if not len(inv):
+        return out
+    cnt = np.bincount(inv, minlength=n_voxels).astype(np.float64)
+    mean = np.stack([np.bincount(inv, weights=ch[:, k], minlength=n_voxels) for k in range(3)], 1)
+    mean /= np.maximum(cnt, 1.0)[:, None]
+    d = np.linalg.norm(ch - mean[inv], axis=1)
+    order = np.lexsort((-d, inv))                        # per voxel, its farthest reading first
+    first = order[np.r_[True, inv[order][1:] != inv[order][:-1]]]
+    far = np.zeros((n_voxels, 3))
+    far[inv[first]] = ch[first]
+    side = np.linalg.norm(ch - far[inv], axis=1) <= COLOUR_STEP / 2
+    na = np.bincount(inv, weights=side.astype(np.float64), minlength=n_voxels)
+    nb = cnt - na
+    ma = np.stack([np.bincount(inv, weights=ch[:, k] * side, minlength=n_voxels) for k in range(3)], 1)
+    mb = mean * cnt[:, None] - ma
+    ma /= np.maximum(na, 1.0)[:, None]
+    mb /= np.maximum(nb, 1.0)[:, None]
+    return (na > 0) & (nb > 0) & (np.linalg.norm(ma - mb, axis=1) > COLOUR_STEP)
 
 
 COLOUR_STEP = 0.08       # chromaticity distance between adjacent voxels that cuts them apart: twice the spread of

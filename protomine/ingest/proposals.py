@@ -26,8 +26,8 @@ from ..capture import Capture
 from ..errors import InputError
 from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_basis, world_to_camera
 from ..progress import detail
-from .convexity import (DARK_RGB, SAME_CHROMA, _chroma, convex_parts, frame_segments, join_parts, one_colour, view_votes,
-                        voxel_normals)
+from .convexity import (DARK_RGB, SAME_CHROMA, _chroma, contact_voxels, convex_parts, frame_segments, join_parts,
+                        one_colour, view_votes, voxel_normals)
 from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
@@ -555,9 +555,11 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
         votes = _frame_votes(cap, frames, above_sel, pts, eps / 3.0, c["concave_deg"]) if VIEW_CHECK else None
+        grow = bool(c.get("crumb_grow", False))
+        mixed = contact_voxels(voxel_index(pts, eps / 3.0)[1], rgbs, len(vox)) if grow and COLOUR_CUT else None
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
                                 colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)),
-                                grow=bool(c.get("crumb_grow", False)))
+                                grow=grow, mixed=mixed)
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0)
@@ -644,7 +646,8 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
                                                                                above_plane_margin(plane, cfg)))
         point_of = point_of_frame(fd)
-        labels = _release_low_strays(labels, h, fd, point_of, ch, label_chroma, own_trees)
+        labels = _release_low_strays(labels, h, fd, point_of, ch, label_chroma, own_trees,
+                                     np.inf if cfg["ingest"].get("crumb_grow", False) else SUPPORT_BAND_M)
         seeds = labels.copy()
         steps = grow_steps(fd.depth, seeds >= 0, cap.intrinsics.K, LOW_GROW_M)
         grow_band = band & steady.reshape(fd.depth.shape)
@@ -762,14 +765,14 @@ def point_of_frame(fd: FrameData) -> np.ndarray:
 
 
 def _release_low_strays(labels: np.ndarray, h: np.ndarray, fd: FrameData, point_of: np.ndarray, ch: np.ndarray,
-                        label_chroma: np.ndarray, trees: list) -> np.ndarray:
+                        label_chroma: np.ndarray, trees: list, below: float = SUPPORT_BAND_M) -> np.ndarray:
     """Readings (flat labels (H * W,)) low over the plane (under SUPPORT_BAND_M) that are not of their object's
     colour (chromaticity farther than GROW_CHROMA) but of a neighbour's whose voxels lie within LOW_GROW_M are
     left to no object (the neighbour's growth may take them).  Where two bases touch, the noise peaks of
     one base's rim stand over the grouping margin next to the other object's voxels; in the object's footprint
     (a minimum enclosing circle) a few of them move the base centre by millimetres.  h: (H * W,) heights,
     ch: (H * W, 3) chromaticity (NaN: too dark), label_chroma (L, 3), trees: per object a cKDTree of its voxels."""
-    cand = np.flatnonzero((labels >= 0) & (h < SUPPORT_BAND_M) & ~np.isnan(ch[:, 0]))
+    cand = np.flatnonzero((labels >= 0) & (h < below) & ~np.isnan(ch[:, 0]))
     if not len(cand) or len(label_chroma) < 2:
         return labels
     off = np.linalg.norm(ch[cand] - label_chroma[labels[cand]], axis=1) > GROW_CHROMA
