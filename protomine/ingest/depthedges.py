@@ -25,6 +25,10 @@ Two tests, either flags a reading:
   flagged, gaussian depth: 0.28 and 0.32 per 1000.  Without the adjacent-support rule the wide test caught 75%
   but flagged the topmost readings of a sphere seen from 5 degrees above the table (its rim curves away from
   the pixel in every direction), 0.5 mm of the sphere's height.
+
+A third, with ``[ingest] line_support`` > 0 only (:func:`line_unsupported`, run by ``proposals.load_frames``):
+a reading on none of the 4 lines through two opposite neighbours of its 3x3 square within k x the frame's own
+noise (``depth_noise``), which catches the mixed readings nearer than the tolerance to one of the two surfaces.
 """
 from __future__ import annotations
 
@@ -205,8 +209,9 @@ def depth_noise(depth: np.ndarray, d2: np.ndarray | None = None) -> tuple[np.nda
     the second differences along rows and columns (``second_differences``; on a plane or a gently curved surface
     they are noise, sqrt(1.5) x the depth's std for independent readings), per depth bin (``NOISE_BINS`` quantiles of
     the readings), as the std of a normal whose |x| below its ``NOISE_TRIM`` percentile has the mean that the bin's
-    |second differences| below theirs have (depth edges and creases are the tail the trim leaves out).  Returns the bins' median depths (B,) and the second differences' std there (B,);
-    empty arrays when the frame has too few readings.  Depth from quantised disparity (active stereo) makes the
+    |second differences| below theirs have (depth edges and creases are the tail the trim leaves out).  Returns the
+    bins' median depths (B,) and the second differences' std there (B,); empty arrays when the frame has too few
+    readings.  Depth from quantised disparity (active stereo) makes the
     spread grow with z^2, gaussian axial noise more slowly: the bins follow either."""
     z = np.asarray(depth, np.float64)
     d2 = second_differences(z) if d2 is None else d2
@@ -245,10 +250,10 @@ def line_unsupported(depth: np.ndarray, fx: float, k: float) -> np.ndarray:
     changes linearly (on the silhouette: along the silhouette); a mixed reading at a depth edge, drawn between the
     near and the far surface, fits a line only across the edge and only when it lies near halfway.  Asking the line
     to go on straight through a neighbour (4 or 5 readings) catches those too but drops more true readings beside
-    active-stereo dropouts, and lost on demo frames (README "Flying pixels the line test catches").  tol(z) = k x the
-    frame's own second-difference spread at depth z
-    (``depth_noise``), at least half a pixel's footprint z / (2 fx) (the curvature of a smooth surface over one
-    pixel).  k = 3: noise alone fails all 4 lines with a probability far below 1e-6."""
+    active-stereo dropouts, and lost on demo frames (README "Which sensor effect it is").  tol(z) = k x the frame's
+    own second-difference spread at depth z (``depth_noise``), at least half a pixel's footprint z / (2 fx) (the
+    curvature of a smooth surface over one pixel).  k = 3: noise alone fails all 4 lines with a probability far
+    below 1e-6.  fx: the image's focal length in pixels."""
     z = np.asarray(depth, np.float64)
     d2 = second_differences(z)
     at, spread = depth_noise(z, d2)
