@@ -25,6 +25,10 @@ Two tests, either flags a reading:
   flagged, gaussian depth: 0.28 and 0.32 per 1000.  Without the adjacent-support rule the wide test caught 75%
   but flagged the topmost readings of a sphere seen from 5 degrees above the table (its rim curves away from
   the pixel in every direction), 0.5 mm of the sphere's height.
+
+A third, with ``[ingest] line_support`` > 0 only (:func:`line_unsupported`, run by ``proposals.load_frames``):
+a reading on none of the 4 lines through two opposite neighbours of its 3x3 square within k x the frame's own
+noise (``depth_noise``), which catches the mixed readings nearer than the tolerance to one of the two surfaces.
 """
 from __future__ import annotations
 
@@ -175,3 +179,88 @@ def steady_depth_at(depth: np.ndarray, r: np.ndarray, u: np.ndarray) -> np.ndarr
     flying = _flags(d, half, (ph, pw), want.reshape(ph, pw))
     steady = np.where(flying, 0.0, depth[r0:r1, u0:u1])
     return steady.reshape(-1).take(at)
+
+
+# --- line support: a reading on a surface lies on the line through two opposite neighbours -------------------
+
+LINE_DIRECTIONS = ((0, 1), (1, 0), (1, 1), (1, -1))   # (row, column) steps: the 4 lines through a pixel's 3x3 square
+NOISE_BINS = 8              # depth bins (quantiles of the frame's readings) of the noise estimate
+NOISE_TRIM = 90.0           # percentile of |second difference| per bin kept for the estimate (edges are the rest)
+
+
+def second_differences(depth: np.ndarray) -> np.ndarray:
+    """(4, H, W) z - (z_a + z_b) / 2 for each line (``LINE_DIRECTIONS``) through each pixel of depth (H, W) metres,
+    z_a, z_b its two opposite neighbours on the line; NaN where one of the three has no reading (0) or lies
+    beyond the image."""
+    d = np.asarray(depth, np.float64)
+    H, W = d.shape
+    p = np.pad(np.where(d > 0, d, np.nan), 1, constant_values=np.nan)
+    c = p[1:H + 1, 1:W + 1]
+    out = np.empty((len(LINE_DIRECTIONS), H, W))
+    for k, (dr, dc) in enumerate(LINE_DIRECTIONS):
+        a = p[1 + dr:H + 1 + dr, 1 + dc:W + 1 + dc]
+        b = p[1 - dr:H + 1 - dr, 1 - dc:W + 1 - dc]
+        out[k] = c - 0.5 * (a + b)
+    return out
+
+
+def depth_noise(depth: np.ndarray, d2: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """The frame's own depth noise as a function of depth, from the frame alone (no sensor model): the spread of
+    the second differences along rows and columns (``second_differences``; on a plane or a gently curved surface
+    they are noise, sqrt(1.5) x the depth's std for independent readings), per depth bin (``NOISE_BINS`` quantiles of
+    the readings), as the std of a normal whose |x| below its ``NOISE_TRIM`` percentile has the mean that the bin's
+    |second differences| below theirs have (depth edges and creases are the tail the trim leaves out).  Returns the
+    bins' median depths (B,) and the second differences' std there (B,); empty arrays when the frame has too few
+    readings.  Depth from quantised disparity (active stereo) makes the
+    spread grow with z^2, gaussian axial noise more slowly: the bins follow either."""
+    z = np.asarray(depth, np.float64)
+    d2 = second_differences(z) if d2 is None else d2
+    zz = np.concatenate([z[np.isfinite(d2[k])] for k in (0, 1)])
+    aa = np.abs(np.concatenate([d2[k][np.isfinite(d2[k])] for k in (0, 1)]))
+    if len(zz) < 50 * NOISE_BINS:
+        return np.zeros(0), np.zeros(0)
+    edges = np.quantile(zz, np.linspace(0.0, 1.0, NOISE_BINS + 1))
+    b = np.clip(np.searchsorted(edges, zz, side="right") - 1, 0, NOISE_BINS - 1)
+    at, spread = [], []
+    for i in range(NOISE_BINS):
+        a = aa[b == i]
+        if len(a) < 50:
+            continue
+        a = a[a <= np.percentile(a, NOISE_TRIM)]
+        at.append(float(np.median(zz[b == i])))
+        spread.append(float(a.mean() / _TRIMMED_MEAN_ABS))
+    return np.array(at), np.array(spread)
+
+
+def _trimmed_mean_abs(p: float) -> float:
+    """E[|x| given |x| below its p-quantile] for a standard normal x: 2 (phi(0) - phi(a)) / p, a = Phi^-1((1 + p) / 2)
+    (the half-normal's truncated mean, hand-worked)."""
+    from statistics import NormalDist
+    a = NormalDist().inv_cdf((1 + p) / 2)
+    return 2 * (NormalDist().pdf(0.0) - NormalDist().pdf(a)) / p
+
+
+_TRIMMED_MEAN_ABS = _trimmed_mean_abs(NOISE_TRIM / 100)
+
+
+def line_unsupported(depth: np.ndarray, fx: float, k: float) -> np.ndarray:
+    """(H, W) bool: readings of depth (H, W) metres that lie on no line through two opposite neighbours: for each of
+    the 4 lines through the pixel's 3x3 square, |z - (z_a + z_b) / 2| > tol(z), or a reading missing on it.  A
+    surface, even a slanted one seen at a grazing angle, continues through its pixel, so along some line its depth
+    changes linearly (on the silhouette: along the silhouette); a mixed reading at a depth edge, drawn between the
+    near and the far surface, fits a line only across the edge and only when it lies near halfway.  Asking the line
+    to go on straight through a neighbour (4 or 5 readings) catches those too but drops more true readings beside
+    active-stereo dropouts, and lost on demo frames (README "Which sensor effect it is").  tol(z) = k x the frame's
+    own second-difference spread at depth z (``depth_noise``), at least half a pixel's footprint z / (2 fx) (the
+    curvature of a smooth surface over one pixel).  k = 3: noise alone fails all 4 lines with a probability far
+    below 1e-6.  fx: the image's focal length in pixels."""
+    z = np.asarray(depth, np.float64)
+    d2 = second_differences(z)
+    at, spread = depth_noise(z, d2)
+    valid = z > 0
+    zv = np.where(valid, z, 0.0)
+    sig = np.interp(zv, at, spread) if len(at) else np.zeros_like(zv)
+    tol = np.maximum(k * sig, 0.5 * zv / fx)
+    with np.errstate(invalid="ignore"):
+        fits = (np.abs(d2) <= tol[None]).any(0)      # NaN: no line there
+    return valid & ~fits

@@ -28,7 +28,7 @@ from ..geometry import camera_to_pixel, camera_to_world, depth_to_points, plane_
 from ..progress import detail
 from .convexity import (DARK_RGB, SAME_CHROMA, _chroma, contact_voxels, convex_parts, frame_segments, join_parts,
                         one_colour, view_votes, voxel_normals)
-from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels
+from .depthedges import FLYING_TOL_M, FLYING_TOL_REL, flying_pixels, line_unsupported
 from .plane import PlaneFit, candidate_planes, fit_plane
 from .volume import ObjectFrame, View
 
@@ -115,7 +115,10 @@ class SceneObjects:
 
 
 def load_frames(cap: Capture, frame_ids: list[str] | None = None,
-                progress: Callable[[str], None] | None = None) -> list[FrameData]:
+                progress: Callable[[str], None] | None = None, *, line_support: float = 0.0) -> list[FrameData]:
+    """The frames' readings, world points and flying-pixel flags (``depthedges.flying_pixels``; with
+    ``line_support`` > 0 also the readings on no line through two opposite neighbours within that many x the
+    frame's own noise, ``depthedges.line_unsupported``: ``[ingest] line_support``)."""
     K = cap.intrinsics.K
     out = []
     for fr in cap.frames:
@@ -130,6 +133,8 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
         mask = cap.mask(fr.id)
         pc, idx = depth_to_points(depth, K)
         flying = flying_pixels(depth)
+        if line_support > 0:
+            flying |= line_unsupported(depth, float(K[0, 0]), line_support)
         out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx,
                              ~flying.reshape(-1)[idx], flying))
         detail(progress, f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
@@ -922,7 +927,7 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
 def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids: list[str] | None = None,
                  use_masks: bool = True, progress: Callable[[str], None] | None = None) -> SceneObjects:
     """Support plane and object proposals of a capture (or of the frames ``frame_ids`` only)."""
-    frames = load_frames(cap, frame_ids, progress)
+    frames = load_frames(cap, frame_ids, progress, line_support=cfg["ingest"]["line_support"])
     plane = fit_support_plane(cap, frames, cfg, rng)
     if use_masks and cap.has_masks:
         props = _mask_proposals(cap, frames, plane, cfg)
