@@ -47,16 +47,20 @@ def _cfg(grow: bool) -> dict:
     return cfg
 
 
-@pytest.fixture(scope="module")
-def family(tmp_path_factory):
-    root = tmp_path_factory.mktemp("handles")
-    rng = np.random.default_rng(10)
+def _draw(root, seed: int) -> dict:
+    """Four captures of the family drawn with this seed under root: their folders and truth."""
+    rng = np.random.default_rng(seed)
     truth, caps = {}, []
     for c in range(4):
         folder = root / f"cap{c}"
         truth[folder.name] = _capture(folder, list(HANDLES), rng)
         caps.append(folder)
     return {"root": root, "caps": caps, "truth": truth}
+
+
+@pytest.fixture(scope="module")
+def family(tmp_path_factory):
+    return _draw(tmp_path_factory.mktemp("handles"), 10)
 
 
 def _nmi(fam, use_masks, cfg, tag):
@@ -118,14 +122,7 @@ def test_low_handles_stay_with_their_post(family, grow):
 
 @pytest.fixture(scope="module", params=[7, 9])
 def other_draw(request, tmp_path_factory):
-    root = tmp_path_factory.mktemp(f"handles{request.param}")
-    rng = np.random.default_rng(request.param)
-    truth, caps = {}, []
-    for c in range(4):
-        folder = root / f"cap{c}"
-        truth[folder.name] = _capture(folder, list(HANDLES), rng)
-        caps.append(folder)
-    return {"root": root, "caps": caps, "truth": truth}
+    return _draw(tmp_path_factory.mktemp(f"handles{request.param}"), request.param)
 
 
 def test_mask_free_mining_of_low_handles_within_005_nmi_on_other_draws(other_draw):
