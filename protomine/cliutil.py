@@ -19,7 +19,7 @@ from .errors import InputError
 from .progress import Progress
 
 ConfigOpt = Annotated[Optional[str], typer.Option(
-    "--config", "-c", metavar="PRESET|FILE", help="Preset name (default, fast, fine) or TOML file.")]
+    "--config", "-c", metavar="PRESET|FILE", help="Preset name (default, fast, fine, stereo) or TOML file.")]
 SeedOpt = Annotated[int, typer.Option(
     "--seed", min=0, metavar="N", help="Random seed; same inputs, config and seed give the same result.")]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress output (for scripts); results and errors only.")]

@@ -37,8 +37,9 @@ def test_provenance_records_version_and_commit():
 
 def test_presets_ship_in_the_package_and_configs_links_to_them():
     assert CONFIG_DIR.parent == Path(protomine.__file__).resolve().parent
-    assert {p.name for p in CONFIG_DIR.glob("*.toml")} >= {"default.toml", "fast.toml", "fine.toml"}
+    assert {p.name for p in CONFIG_DIR.glob("*.toml")} >= {"default.toml", "fast.toml", "fine.toml", "stereo.toml"}
     top = ROOT / "configs"
     assert top.resolve() == CONFIG_DIR.resolve(), "configs/ must be the link to protomine/configs (one source of truth)"
-    for name in ("fast", "fine"):
+    for name in ("fast", "fine", "stereo"):
         assert load_config(name) != load_config(None)
+    assert load_config("stereo")["ingest"]["line_support"] > 0
