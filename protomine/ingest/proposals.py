@@ -210,9 +210,11 @@ def voxel_index(pts: np.ndarray, size: float) -> tuple[int, np.ndarray]:
     return len(keys), inv.reshape(-1)
 
 
-def voxel_means(pts: np.ndarray, size: float, *values: np.ndarray) -> tuple[np.ndarray, ...]:
-    """Voxel centroids (V, 3) of points (M, 3) on a grid of ``size``, and the voxel means of each (M, ...) value."""
-    n, inv = voxel_index(pts, size)
+def voxel_means(pts: np.ndarray, size: float, *values: np.ndarray,
+                index: tuple[int, np.ndarray] | None = None) -> tuple[np.ndarray, ...]:
+    """Voxel centroids (V, 3) of points (M, 3) on a grid of ``size``, and the voxel means of each (M, ...) value.
+    index: ``voxel_index(pts, size)`` when the caller has it."""
+    n, inv = voxel_index(pts, size) if index is None else index
     count = np.bincount(inv, minlength=n).astype(np.float64)
     out = []
     for v in (pts,) + values:
@@ -555,13 +557,14 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     views = np.concatenate([fd.cam_to_world[:3, 3] - fd.points[s] for fd, s in zip(frames, above_sel)])
     views /= np.maximum(np.linalg.norm(views, axis=1, keepdims=True), 1e-12)
     rgbs = np.concatenate([fd.rgb.reshape(-1, 3)[fd.pixels[s]] for fd, s in zip(frames, above_sel)]).astype(np.float64)
-    vox, views, colours = voxel_means(pts, eps / 3.0, views, rgbs)
+    index = voxel_index(pts, eps / 3.0)   # the voxels of the means, the frames' votes and the contact voxels
+    vox, views, colours = voxel_means(pts, eps / 3.0, views, rgbs, index=index)
     lab = DBSCAN(eps=eps, min_samples=DBSCAN_MIN_SAMPLES).fit_predict(vox)
     if c["concave_deg"] < 180.0:
         normals = voxel_normals(vox, views, lab, radius=NORMAL_RADIUS * eps)
-        votes = _frame_votes(cap, frames, above_sel, pts, eps / 3.0, c["concave_deg"]) if VIEW_CHECK else None
+        votes = _frame_votes(cap, frames, above_sel, index, c["concave_deg"]) if VIEW_CHECK else None
         grow = bool(c.get("crumb_grow", False))
-        mixed = contact_voxels(voxel_index(pts, eps / 3.0)[1], rgbs, len(vox)) if grow and COLOUR_CUT else None
+        mixed = contact_voxels(index[1], rgbs, len(vox)) if grow and COLOUR_CUT else None
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
                                 colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)),
                                 grow=grow, mixed=mixed)
@@ -697,10 +700,11 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
     return out
 
 
-def _frame_votes(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarray], pts: np.ndarray, size: float,
+def _frame_votes(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarray], index: tuple[int, np.ndarray],
                  concave_deg: float):
     """Each frame's segments (``convexity.frame_segments``) of its readings above the plane, as per-voxel
-    shares (``convexity.view_votes``) on the voxel grid of ``pts`` (the concatenated selected readings)."""
+    shares (``convexity.view_votes``) on the voxel grid ``index`` (``voxel_index`` of the concatenated selected
+    readings)."""
     K = cap.intrinsics.K
     segs, fidx = [], []
     for f, (fd, s) in enumerate(zip(frames, above_sel)):
@@ -709,7 +713,7 @@ def _frame_votes(cap: Capture, frames: list[FrameData], above_sel: list[np.ndarr
         seg = frame_segments(fd.depth, region.reshape(fd.depth.shape), K, concave_deg)
         segs.append(seg.reshape(-1)[fd.pixels[s]])
         fidx.append(np.full(int(s.sum()), f))
-    n, inv = voxel_index(pts, size)
+    n, inv = index
     return view_votes(inv, np.concatenate(segs), np.concatenate(fidx), n)
 
 
@@ -771,7 +775,8 @@ def point_of_frame(fd: FrameData) -> np.ndarray:
 
 def _release_low_strays(labels: np.ndarray, h: np.ndarray, fd: FrameData, point_of: np.ndarray, ch: np.ndarray,
                         label_chroma: np.ndarray, trees: list, below: float = SUPPORT_BAND_M) -> np.ndarray:
-    """Readings (flat labels (H * W,)) low over the plane (under SUPPORT_BAND_M) that are not of their object's
+    """Readings (flat labels (H * W,)) low over the plane (under ``below``: SUPPORT_BAND_M, or every height with
+    ``[ingest] crumb_grow``) that are not of their object's
     colour (chromaticity farther than GROW_CHROMA) but of a neighbour's whose voxels lie within LOW_GROW_M are
     left to no object (the neighbour's growth may take them).  Where two bases touch, the noise peaks of
     one base's rim stand over the grouping margin next to the other object's voxels; in the object's footprint

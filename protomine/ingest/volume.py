@@ -123,15 +123,23 @@ def cell_centres(grid: Grid, frame: ObjectFrame) -> np.ndarray:
 
 def _cell_centres(grid: Grid, frame: ObjectFrame, basis: np.ndarray) -> np.ndarray:
     """:func:`cell_centres` with the object frame's ``plane_basis`` (3, 3) already computed."""
+    local = _local_centres(grid, [frame])[0]
+    return (local.reshape(-1, 3) @ basis + frame.origin).reshape(local.shape)   # one (R A H, 3) product, not R A small ones
+
+
+def _local_centres(grid: Grid, frames: list[ObjectFrame]) -> np.ndarray:
+    """(n, R, A, H, 3) the cell centres of each frame in its own (x, y, up) axes, before its basis and origin: the
+    products of a meshgrid of the grid's axes (times the frame's radius and height), by broadcasting (same values,
+    no grids)."""
     R, A, H = grid.shape
     rho_unit, cos_phi, sin_phi, z_unit = _cell_axes(R, A, H, grid.radial_margin, grid.height_margin)
-    rho = rho_unit * frame.radius
-    z = z_unit * frame.height
-    local = np.empty((R, A, H, 3))  # the products of a meshgrid, by broadcasting (same values, no grids)
-    local[..., 0] = rho[:, None, None] * cos_phi[None, :, None]
-    local[..., 1] = rho[:, None, None] * sin_phi[None, :, None]
-    local[..., 2] = z[None, None, :]
-    return (local.reshape(-1, 3) @ basis + frame.origin).reshape(R, A, H, 3)   # one (R A H, 3) product, not R A small ones
+    rho = rho_unit[None, :] * np.array([f.radius for f in frames], np.float64)[:, None]   # (n, R)
+    z = z_unit[None, :] * np.array([f.height for f in frames], np.float64)[:, None]       # (n, H)
+    local = np.empty((len(frames), R, A, H, 3))
+    local[..., 0] = rho[:, :, None, None] * cos_phi[None, None, :, None]
+    local[..., 1] = rho[:, :, None, None] * sin_phi[None, None, :, None]
+    local[..., 2] = z[:, None, None, :]
+    return local
 
 
 @lru_cache(maxsize=16)
@@ -338,8 +346,6 @@ def _cell_centres_many(grid: Grid, frames: list[ObjectFrame], bases: list[np.nda
     basis object (a frame's objects share their plane's up, :func:`_basis`) by one set of array operations and one
     (n R A H, 3) x (3, 3) product, whose rows are those of the products one frame at a time (the same sums of three
     products; a one-row product would take another kernel, and a frame has R A H > 1 rows)."""
-    R, A, H = grid.shape
-    rho_unit, cos_phi, sin_phi, z_unit = _cell_axes(R, A, H, grid.radial_margin, grid.height_margin)
     out: list = [None] * len(frames)
     groups: dict[int, list[int]] = {}
     for i, b in enumerate(bases):
@@ -348,12 +354,7 @@ def _cell_centres_many(grid: Grid, frames: list[ObjectFrame], bases: list[np.nda
         if len(idx) == 1:
             out[idx[0]] = _cell_centres(grid, frames[idx[0]], bases[idx[0]]).reshape(-1, 3)
             continue
-        rho = rho_unit[None, :] * np.array([frames[i].radius for i in idx], np.float64)[:, None]   # (n, R)
-        z = z_unit[None, :] * np.array([frames[i].height for i in idx], np.float64)[:, None]       # (n, H)
-        local = np.empty((len(idx), R, A, H, 3))
-        local[..., 0] = rho[:, :, None, None] * cos_phi[None, None, :, None]
-        local[..., 1] = rho[:, :, None, None] * sin_phi[None, None, :, None]
-        local[..., 2] = z[:, None, None, :]
+        local = _local_centres(grid, [frames[i] for i in idx])
         origins = np.array([np.asarray(frames[i].origin, np.float64) for i in idx])
         cen = (local.reshape(-1, 3) @ bases[idx[0]]).reshape(len(idx), -1, 3) + origins[:, None, :]
         for i, c in zip(idx, cen):
