@@ -203,16 +203,17 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
         runs.append((t2 - t1, t3 - t2))
         cpus.append(c3 - c1)
         yaw_s, yaw_cpu = min(yaw_s, t1 - t0), min(yaw_cpu, c1 - c0)
-    # the same search, cold, refining only the pairs within BENCH_MARGIN of each object's best ([mine] tilt_refine_margin)
-    tilts._GEOMETRY_CACHE.clear()
-    c0 = _cpu()
-    TiltBank(P, V, np.ones(K), SCALES, grid, refine_margin=BENCH_MARGIN).match_spectra(o)
-    margin_cpu = _cpu() - c0
-    # and screening the first level on the azimuth frequencies 0 .. BENCH_BINS ([mine] tilt_coarse_bins)
-    tilts._GEOMETRY_CACHE.clear()
-    c0 = _cpu()
-    TiltBank(P, V, np.ones(K), SCALES, grid, coarse_bins=BENCH_BINS).match_spectra(o)
-    screen_cpu = _cpu() - c0
+    def cold_cpu(**switch) -> float:
+        """CPU seconds of the same search, cold, with a mining pass's switch."""
+        tilts._GEOMETRY_CACHE.clear()
+        c0 = _cpu()
+        TiltBank(P, V, np.ones(K), SCALES, grid, **switch).match_spectra(o)
+        return _cpu() - c0
+
+    # refining only the pairs within BENCH_MARGIN of each object's best ([mine] tilt_refine_margin), and screening
+    # the first level on the azimuth frequencies 0 .. BENCH_BINS ([mine] tilt_coarse_bins)
+    margin_cpu = cold_cpu(refine_margin=BENCH_MARGIN)
+    screen_cpu = cold_cpu(coarse_bins=BENCH_BINS)
     (build_s, search_s), warm = runs[0], sum(runs[1])
     tilt_s = build_s + search_s
     T0 = len(grid.level(0))
