@@ -97,8 +97,8 @@ def convex_parts(points: np.ndarray, normals: np.ndarray, labels: np.ndarray, *,
     mixed: optional (V,) bool, voxels whose readings are of two colours (``contact_voxels``: where two objects
     touch); with grow, every pair of theirs is cut, in the fused cloud too (they end as crumbs).
     handed: optional (V,) bool, filled in place with grow: the crumbs handed to a part (by the growths or as
-    leftovers; not those of a regrouped run, a part of its own).  ``join_parts`` leaves them out of the seams
-    its same-colour join measures (``_join_same_colour``)."""
+    leftovers; not those of a regrouped run, a part of its own).  In ``join_parts`` a long seam of the
+    same-colour join made of two such crumbs only does not count (``_join_same_colour``)."""
     regroup = regroup or grow
     V = len(points)
     pairs = cKDTree(points).query_pairs(adjacency, output_type="ndarray") if V > 1 else np.zeros((0, 2), int)
@@ -380,7 +380,7 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     component (L,)): a thin base disc is only seen there.  The components a group touches (within
     link_radius / 2) add to its support polygon.  colours: (V, 3) RGB of the voxels; with them, groups of
     one colour meeting along a seam are joined at the end (``_join_same_colour``); handed: (V,) bool, the crumbs
-    ``convex_parts`` handed to a part, left out of those seams.
+    ``convex_parts`` handed to a part: a long seam of two of them only does not count there.
     """
     ids = np.unique(parts[parts >= 0])
     if len(ids) < 2:
@@ -546,8 +546,8 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
     with the other 0.098 of its voxels, over SEAM_LONG, none of it with a voxel of its own).  The crease band
     between one object's own pieces is crumbs too, so the seams themselves keep every voxel: counted without
     the crumbs, the touching demo of seed 0 gave 94 objects for 78 (the longest seams lost), and the long
-    seams alone without them split a hand plane on the default demo of seed 0 (its handle's seam with the body
-    0.099 and 0.254 of the pieces' voxels, 0.043 and 0.032 with a voxel of their own, 0.000 between own voxels
+    seams alone without them split a hand plane on the default demo of seed 0 (two of its pieces' seams with its
+    body 0.099 and 0.254 of their voxels, 0.043 and 0.032 with a voxel of their own, 0.000 between own voxels
     only)."""
     ids = [int(l) for l in np.unique(lab[lab >= 0])]
     if len(ids) < 2:
