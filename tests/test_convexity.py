@@ -537,3 +537,51 @@ def test_crumbs_behind_a_crease_grow_into_their_own_colour_not_a_close_neighbour
                             colours=rgb, grow=True)
     assert len(np.unique(parts)) == 2
     assert (parts[what == 1] == parts[what == 2][0]).all() and parts[0] != parts[-1]
+
+
+def test_crumbs_handed_out_do_not_make_a_long_seam_with_another_object_of_one_colour():
+    """[ingest] crumb_grow and the same-colour join.  Slabs along x, all one colour: post A | base P (its longest
+    seam is with A: 2 of its 14 slices), whose last two slices are crumbs handed to it, and, 9 mm beyond P,
+    the band of crumbs handed to another base B, whose own voxels start 24 mm from P and whose longest seam is
+    with its own post B'.  Counted on every voxel, 1 of P's 14 slices lies on a seam with B (0.071, over
+    SEAM_LONG 0.05): P joins A and B too, one object.  A seam of handed-out crumbs only is no long seam:
+    {A, P} and {B, B'}.  With P's band its own voxels (a piece's own surface meets the other's crumbs, as
+    where a handle's crease band was handed to the body) the seam counts again: one object.  Expected answers
+    by construction."""
+    from protomine.ingest.convexity import SEAM_LONG, _join_same_colour
+    xs = lambda lo, hi: np.arange(lo, hi + 1e-9, 0.004)
+
+    def slab(x):
+        y, z = np.meshgrid(np.arange(0.0, 0.041, 0.004), np.arange(0.0, 0.041, 0.004), indexing="ij")
+        return np.stack([np.full(y.size, x), y.ravel(), z.ravel()], 1)
+
+    sets = [xs(-0.1005, -0.0605), xs(-0.056, -0.012), xs(-0.008, -0.004), xs(0.005, 0.009), xs(0.020, 0.060),
+            xs(0.0645, 0.1045)]                                     # A, P, P's crumbs, B's crumbs, B, B'
+    pts = [np.concatenate([slab(x) for x in xx]) for xx in sets]
+    what = np.concatenate([np.full(len(p), i) for i, p in enumerate(pts)])
+    pts = np.concatenate(pts)
+    lab = np.array([0, 1, 1, 2, 2, 3])[what]
+    rgb = np.tile([90.0, 160.0, 60.0], (len(pts), 1))
+    assert 1 / 14 >= SEAM_LONG
+    assert len(np.unique(_join_same_colour(pts, rgb, lab, 0.012))) == 1
+    out = _join_same_colour(pts, rgb, lab, 0.012, (what == 2) | (what == 3))
+    assert len(np.unique(out)) == 2
+    assert out[what == 0][0] == out[what == 1][0] != out[what == 4][0] == out[what == 5][0]
+    assert len(np.unique(_join_same_colour(pts, rgb, lab, 0.012, what == 3))) == 1
+
+
+def test_convex_parts_reports_the_crumbs_it_hands_out():
+    """``convex_parts(handed=)`` with crumb_grow: the strip of crumbs grown into from B (the test above's
+    layout) is flagged, A's and B's own voxels are not; without crumb_grow nothing is filled in.  Expected
+    answer by construction."""
+    red, blue = [200, 40, 20], [30, 60, 190]
+    pts, what, rgb, votes = _strip_between(red, blue, blue)
+    V = len(pts)
+    normals, lab = np.tile([0.0, 0.0, 1.0], (V, 1)), np.zeros(V, int)
+    kw = dict(adjacency=0.006, concave_deg=15.0, votes=votes, colours=rgb)
+    handed = np.zeros(V, bool)
+    convex_parts(pts, normals, lab, grow=True, handed=handed, **kw)
+    assert (handed == (what == 1)).all()
+    handed[:] = False
+    convex_parts(pts, normals, lab, handed=handed, **kw)
+    assert not handed.any()

@@ -565,12 +565,13 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         votes = _frame_votes(cap, frames, above_sel, index, c["concave_deg"]) if VIEW_CHECK else None
         grow = bool(c.get("crumb_grow", False))
         mixed = contact_voxels(index[1], rgbs, len(vox)) if grow and COLOUR_CUT else None
+        handed = np.zeros(len(vox), bool)        # with crumb_grow: the crumbs handed to a part, out of the seams
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
                                 colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)),
-                                grow=grow, mixed=mixed)
+                                grow=grow, mixed=mixed, handed=handed)
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
-                         low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0)
+                         low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0, handed=handed)
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
