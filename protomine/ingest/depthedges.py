@@ -28,7 +28,10 @@ Two tests, either flags a reading:
 
 A third, with ``[ingest] line_support`` > 0 only (:func:`line_unsupported`, run by ``proposals.load_frames``):
 a reading on none of the 4 lines through two opposite neighbours of its 3x3 square within k x the frame's own
-noise (``depth_noise``), which catches the mixed readings nearer than the tolerance to one of the two surfaces.
+noise (``depth_noise``), which catches the mixed readings nearer than the tolerance to one of the two surfaces;
+with ``[ingest] line_support_one_sided`` (on by default, as is line_support = 3) a reading that continues a surface
+on one side (:func:`one_sided_support`, of its own mask when the capture has masks) is kept: true readings at
+silhouettes, corners and thin parts, which the 4 centred lines reject (README "One-sided support").
 """
 from __future__ import annotations
 
