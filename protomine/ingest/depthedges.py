@@ -28,7 +28,10 @@ Two tests, either flags a reading:
 
 A third, with ``[ingest] line_support`` > 0 only (:func:`line_unsupported`, run by ``proposals.load_frames``):
 a reading on none of the 4 lines through two opposite neighbours of its 3x3 square within k x the frame's own
-noise (``depth_noise``), which catches the mixed readings nearer than the tolerance to one of the two surfaces.
+noise (``depth_noise``), which catches the mixed readings nearer than the tolerance to one of the two surfaces;
+with ``[ingest] line_support_one_sided`` (on by default, as is line_support = 3) a reading that continues a surface
+on one side (:func:`one_sided_support`, of its own mask when the capture has masks) is kept: true readings at
+silhouettes, corners and thin parts, which the 4 centred lines reject (README "One-sided support").
 """
 from __future__ import annotations
 
@@ -243,7 +246,8 @@ def _trimmed_mean_abs(p: float) -> float:
 _TRIMMED_MEAN_ABS = _trimmed_mean_abs(NOISE_TRIM / 100)
 
 
-def line_unsupported(depth: np.ndarray, fx: float, k: float) -> np.ndarray:
+def line_unsupported(depth: np.ndarray, fx: float, k: float, one_sided: bool = False,
+                     labels: np.ndarray | None = None) -> np.ndarray:
     """(H, W) bool: readings of depth (H, W) metres that lie on no line through two opposite neighbours: for each of
     the 4 lines through the pixel's 3x3 square, |z - (z_a + z_b) / 2| > tol(z), or a reading missing on it.  A
     surface, even a slanted one seen at a grazing angle, continues through its pixel, so along some line its depth
@@ -253,7 +257,15 @@ def line_unsupported(depth: np.ndarray, fx: float, k: float) -> np.ndarray:
     active-stereo dropouts, and lost on demo frames (README "Which sensor effect it is").  tol(z) = k x the frame's
     own second-difference spread at depth z (``depth_noise``), at least half a pixel's footprint z / (2 fx) (the
     curvature of a smooth surface over one pixel).  k = 3: noise alone fails all 4 lines with a probability far
-    below 1e-6.  fx: the image's focal length in pixels."""
+    below 1e-6.  fx: the image's focal length in pixels.
+
+    one_sided: a reading that fails the 4 lines is kept when it continues the surface on ONE side
+    (:func:`one_sided_support`): a true reading on a silhouette, a staircase outline, a corner or a crease has
+    its own surface behind it along some direction, which the centred lines, half of them reaching across the
+    edge, miss; a reading mixed between two surfaces lies on neither surface's continuation.  labels (H, W) int, the
+    frame's object masks (0 = none) when the capture has them: only readings of the reading's own label support it
+    (a mixed reading inside one object's mask that continues the touching or farther surface beside it would join
+    the object a jump away from its surface; without masks a proposal groups it with that surface)."""
     z = np.asarray(depth, np.float64)
     d2 = second_differences(z)
     at, spread = depth_noise(z, d2)
@@ -263,4 +275,40 @@ def line_unsupported(depth: np.ndarray, fx: float, k: float) -> np.ndarray:
     tol = np.maximum(k * sig, 0.5 * zv / fx)
     with np.errstate(invalid="ignore"):
         fits = (np.abs(d2) <= tol[None]).any(0)      # NaN: no line there
-    return valid & ~fits
+    flags = valid & ~fits
+    if one_sided:
+        c = np.flatnonzero(flags)
+        flags.reshape(-1)[c[one_sided_support(z, c, EXTRAPOLATION_SCALE * tol.reshape(-1)[c], labels)]] = False
+    return flags
+
+
+SIDE_DIRECTIONS = ((0, 1), (1, 0), (1, 1), (1, -1), (0, -1), (-1, 0), (-1, -1), (-1, 1))   # (row, column) steps
+EXTRAPOLATION_SCALE = 2.0   # sqrt(6 / 1.5): std of z0 - 2 z1 + z2 over that of z0 - (z_a + z_b) / 2, independent readings
+
+
+def one_sided_support(depth: np.ndarray, at: np.ndarray, tol: np.ndarray,
+                      labels: np.ndarray | None = None) -> np.ndarray:
+    """(n,) bool: the readings at flat indices ``at`` (n,) of depth (H, W) metres (0 = none) that continue a surface
+    on one side: along some of the 8 directions (``SIDE_DIRECTIONS``), with z1, z2 the readings one and two steps
+    away, |z0 - (2 z1 - z2)| <= tol (n,) (the straight line through z2 and z1, extrapolated one step).  The
+    residual's noise is sqrt(6) x a reading's (1 + 4 + 1), against sqrt(1.5) for the centred second difference,
+    and its curvature term (z'' h^2) twice the centred one's (z'' h^2 / 2): both ``EXTRAPOLATION_SCALE`` x.  No
+    reading on the line, or beyond the image: no support.  labels (H, W) int or None: z1 and z2 must carry z0's."""
+    z = np.asarray(depth, np.float64)
+    H, W = z.shape
+    p = np.pad(np.where(z > 0, z, np.nan), 2, constant_values=np.nan).reshape(-1)
+    width = W + 4
+    pos = (at // W + 2) * width + at % W + 2
+    z0 = z.reshape(-1)[at]
+    if labels is not None:
+        lab = np.pad(np.asarray(labels).astype(np.int64), 2, constant_values=-1).reshape(-1)
+        l0 = lab[pos]
+    ok = np.zeros(len(at), bool)
+    with np.errstate(invalid="ignore"):
+        for dr, dc in SIDE_DIRECTIONS:
+            step = dr * width + dc
+            fit = np.abs(z0 - 2.0 * p[pos + step] + p[pos + 2 * step]) <= tol
+            if labels is not None:
+                fit &= (lab[pos + step] == l0) & (lab[pos + 2 * step] == l0)
+            ok |= fit
+    return ok

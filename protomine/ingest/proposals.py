@@ -115,10 +115,13 @@ class SceneObjects:
 
 
 def load_frames(cap: Capture, frame_ids: list[str] | None = None,
-                progress: Callable[[str], None] | None = None, *, line_support: float = 0.0) -> list[FrameData]:
+                progress: Callable[[str], None] | None = None, *, line_support: float = 0.0,
+                one_sided: bool = False, use_masks: bool = True) -> list[FrameData]:
     """The frames' readings, world points and flying-pixel flags (``depthedges.flying_pixels``; with
     ``line_support`` > 0 also the readings on no line through two opposite neighbours within that many x the
-    frame's own noise, ``depthedges.line_unsupported``: ``[ingest] line_support``)."""
+    frame's own noise, ``depthedges.line_unsupported``: ``[ingest] line_support``; with ``one_sided`` such a reading
+    that continues a surface on one side, of its own mask when the capture has masks and ``use_masks``, is kept,
+    ``[ingest] line_support_one_sided``)."""
     K = cap.intrinsics.K
     out = []
     for fr in cap.frames:
@@ -134,7 +137,7 @@ def load_frames(cap: Capture, frame_ids: list[str] | None = None,
         pc, idx = depth_to_points(depth, K)
         flying = flying_pixels(depth)
         if line_support > 0:
-            flying |= line_unsupported(depth, float(K[0, 0]), line_support)
+            flying |= line_unsupported(depth, float(K[0, 0]), line_support, one_sided, mask if use_masks else None)
         out.append(FrameData(fr.id, depth, rgb, mask, fr.cam_to_world, camera_to_world(pc, fr.cam_to_world), idx,
                              ~flying.reshape(-1)[idx], flying))
         detail(progress, f"{cap.name}: frame {fr.id} read ({len(idx)} depth points)")
@@ -933,7 +936,8 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
 def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids: list[str] | None = None,
                  use_masks: bool = True, progress: Callable[[str], None] | None = None) -> SceneObjects:
     """Support plane and object proposals of a capture (or of the frames ``frame_ids`` only)."""
-    frames = load_frames(cap, frame_ids, progress, line_support=cfg["ingest"]["line_support"])
+    frames = load_frames(cap, frame_ids, progress, line_support=cfg["ingest"]["line_support"],
+                         one_sided=cfg["ingest"]["line_support_one_sided"], use_masks=use_masks)
     plane = fit_support_plane(cap, frames, cfg, rng)
     if use_masks and cap.has_masks:
         props = _mask_proposals(cap, frames, plane, cfg)
