@@ -236,6 +236,7 @@ def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
 RESULT_BLOCK = 256  # (prototype, tilt, scale) groups transformed back at once by _AlignedSums.result
 RESULT_PIECE = 64   # ... and untilted at once (bounds the float64 temporaries of the untilt)
 ADD_BLOCK = 256     # members whose complex spectra _AlignedSums.add holds at once
+SCALE_BLOCK = 8     # groups of a piece resampled by their scales together (temporaries ~1.3 MB on the default grid)
 
 
 def _pieces(runs: np.ndarray, size: int) -> list[tuple[int, int]]:
@@ -348,20 +349,24 @@ class _AlignedSums:
         a = a.reshape(self.A, len(keys), B, R, H).transpose(1, 2, 3, 0, 4)  # (G, B, R, A, H)
         kts, sis = np.divmod(keys, self.S)
         ukt, which = np.unique(kts, return_inverse=True)
-        scaled = {}  # group j -> its sum resampled by 1 / scale: the groups of one scale in one call (elementwise
-        # interpolation, so the same values as one call per group, which cost ~0.2 ms of overhead each)
-        for si in np.unique(sis).tolist():
-            s = scales[si]
-            if s != 1.0:
-                js = np.flatnonzero(sis == si)
-                m = np.ones((1, 1, R, 1, H), bool)
-                part, m = _resample_axis(a[js], m, 1.0 / s, 2)
-                part, m = _resample_axis(part, m, 1.0 / s, 4)
-                part *= m  # cells the scaled members do not cover stay unknown
-                scaled.update(zip(js.tolist(), part))
         parts = np.zeros((len(ukt), B, R, self.A, H))
-        for j in range(len(keys)):  # a (prototype, tilt)'s scales added in key order
-            parts[which[j]] += scaled.get(j, a[j])
+        for j0 in range(0, len(keys), SCALE_BLOCK):
+            # each group's sum resampled by 1 / its scale, the block's groups of one scale in one call (elementwise
+            # interpolation: the same values as one call per group, whose overhead was ~0.2 ms a group); blocks of a
+            # few groups keep the temporaries below the mapped blocks' threshold (cores.large_blocks_mapped)
+            j1 = min(len(keys), j0 + SCALE_BLOCK)
+            scaled = {}
+            for si in np.unique(sis[j0:j1]).tolist():
+                s = scales[si]
+                if s != 1.0:
+                    js = j0 + np.flatnonzero(sis[j0:j1] == si)
+                    m = np.ones((1, 1, R, 1, H), bool)
+                    part, m = _resample_axis(a[js], m, 1.0 / s, 2)
+                    part, m = _resample_axis(part, m, 1.0 / s, 4)
+                    part *= m  # cells the scaled members do not cover stay unknown
+                    scaled.update(zip(js.tolist(), part))
+            for j in range(j0, j1):  # a (prototype, tilt)'s scales added in key order
+                parts[which[j]] += scaled.get(j, a[j])
         ks, ts = np.divmod(ukt, self.T)
         if untilt is not None and np.any(ts):
             parts = untilt(ks, ts, parts, in_place=True)  # parts is this piece's own
