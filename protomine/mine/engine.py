@@ -284,17 +284,18 @@ class _AlignedSums:
         columns ``rows`` (m,) only), their yaws and groups (m,); only the features from ``first`` on are summed (the
         chunk's object spectra lead with the w |x|^2 block, whose aligned sums nothing reads).  ``spec`` may also be a
         function of member positions (p,) (indices into this add's members) returning their spectra (A, p, n_feat),
-        computed when summed.  Nothing is summed here; ``spec`` is kept until :meth:`result`."""
+        computed when summed (all of whose features are summed).  Nothing is summed here; ``spec`` is kept until
+        :meth:`result`."""
         group = np.asarray(group, np.int64)
+        f0 = self.first
         if callable(spec):
             get = spec
+        elif rows is None:  # gathered whole, then narrowed: a gather from the narrowed view (not contiguous) first
+            # copied the whole chunk's spectra (118 ms instead of 15 ms for 256 of 2,048 objects, one thread)
+            get = lambda pos: spec.index_select(1, torch.from_numpy(pos))[:, :, f0:]  # noqa: E731
         else:
-            spec = spec[:, :, self.first:]  # a view: the gathers below copy the summed features only
-            if rows is None:
-                get = lambda pos: spec.index_select(1, torch.from_numpy(pos))  # noqa: E731
-            else:
-                rows = np.asarray(rows, np.int64)
-                get = lambda pos: spec.index_select(1, torch.from_numpy(rows[pos]))  # noqa: E731
+            rows = np.asarray(rows, np.int64)
+            get = lambda pos: spec.index_select(1, torch.from_numpy(rows[pos]))[:, :, f0:]  # noqa: E731
         self.adds.append((get, _align_phase(yaw_deg, self.A), group))
 
     def _piece_sums(self, keys: np.ndarray) -> torch.Tensor:
