@@ -472,3 +472,52 @@ def test_screened_search_reports_the_exact_distance_of_its_pose():
         np.testing.assert_allclose(got.D[i, k], d, rtol=2e-4, atol=1e-6)
     # a band as wide as the spectra is no screen: the exact search
     assert TiltBank(P, V, np.ones(3), scales, grid, coarse_bins=8).band is None
+
+
+def _scaled_twin(a: np.ndarray, sigma: float) -> np.ndarray:
+    """a (B, R, A, H) resampled by ``sigma`` on the radial and height axes from the definition (engine, posesearch
+    module docstrings): out(i) = a((i + 0.5) / sigma - 0.5) by linear interpolation (numpy's ``np.interp`` as the
+    reference), positions below the first bin centre taking the first bin, cells whose position lies beyond the
+    grid's outer edge (> n - 0.5) unknown (0)."""
+    out = np.array(a, np.float64)
+    for axis in (1, 3):
+        n = out.shape[axis]
+        pos = (np.arange(n) + 0.5) / sigma - 0.5
+        out = np.apply_along_axis(lambda line: np.interp(np.clip(pos, 0, n - 1), np.arange(n), line), axis, out)
+        keep = (pos <= n - 0.5).astype(np.float64)
+        out *= keep.reshape([-1 if d == axis else 1 for d in range(4)])
+    return out
+
+
+def test_aligned_sums_of_the_update_leave_out_the_first_block_and_scale_each_member():
+    """The passes' sums (``first`` = R H: the w |x|^2 block left out) hold, for each prototype, the sum over its
+    members of [w, w x] resampled by 1 / the member's scale (np.interp twin, yaw 0, upright); they are the
+    remaining channels of the sums over every block to the bit (each feature summed, transformed, resampled and
+    untilted on its own), with members at several scales in one piece (a piece's groups of one scale resampled
+    in one call)."""
+    from protomine.mine.engine import _AlignedSums
+    from protomine.mine.posesearch import _object_spectra
+    rng = np.random.default_rng(5)
+    R, A, H = SHAPE
+    P, V = _protos(rng)
+    grid = TiltGrid(nsides=(1, 2))
+    scales = (0.8, 1.0, 1.25)
+    bank = TiltBank(P, V, np.array([1.0, 1.2]), scales, grid)
+    n, C = 9, P.shape[1]
+    x = rng.random((n, C) + SHAPE).astype(np.float32)
+    w = rng.random((n,) + SHAPE).astype(np.float32)
+    k = np.array([0, 1, 1, 0, 1, 0, 1, 0, 0])
+    si = np.array([0, 1, 2, 0, 0, 2, 1, 1, 2])
+    T = len(grid.dirs)
+    spec = _object_spectra(torch.from_numpy(x), torch.from_numpy(w), _dft_matrix(A))
+    got = {}
+    for first, B in ((0, C + 2), (R * H, C + 1)):
+        sums = _AlignedSums(2, len(scales), A, B * R * H, T, first=first)
+        sums.add(spec, np.zeros(n), (k * T) * len(scales) + si)
+        got[first] = sums.result(scales, (B, R, H), bank)
+    np.testing.assert_array_equal(got[R * H], got[0][:, 1:])
+    ref = np.zeros_like(got[R * H])
+    for i in range(n):
+        blocks = np.concatenate([w[i][None], w[i][None] * x[i]])
+        ref[k[i]] += _scaled_twin(blocks, 1.0 / scales[si[i]])
+    np.testing.assert_allclose(got[R * H], ref, atol=1e-4)

@@ -19,7 +19,7 @@ Map (a worker, per task: a run of consecutive chunks of objects [i0, i1) or of e
     next passes; a worker's share of the chunks is the same every pass, so it mostly sees the same chunks), finds
     the best pose per (object, prototype), and sums the chunk's members aligned into their prototype's
     frame.  It returns, per chunk, 4 numbers per object (label, yaw, scale, distance) and the chunk's
-    aligned sums (K, C + 2, R, A, H) float64 (and, on the last pass, the symmetry moments).
+    aligned sums (K, C + 1, R, A, H) float64 (and, on the last pass, the symmetry moments).
 Reduce (the caller)
     Per-object arrays are concatenated and the sums added chunk by chunk in chunk order (fixed, never
     completion order, whatever the tasks), then the engine's own update turns them into prototypes.  Memory
@@ -219,7 +219,7 @@ class _Part:
     yaw: np.ndarray
     scale: np.ndarray
     dist: np.ndarray
-    tot: np.ndarray | None = None      # (K, C + 2, R, A, H) aligned sums [w |x|^2, w, w x_1 .. w x_C]
+    tot: np.ndarray | None = None      # (K, C + 1, R, A, H) aligned sums [w, w x_1 .. w x_C]
     extra: np.ndarray | None = None    # (K, C + 1, R, A, H) moments [w x_1^2 .. w x_C^2, w^2]
 
 
@@ -275,12 +275,12 @@ def _one_chunk(spec, bank: PoseBank, shape: tuple, accumulate: bool, moments: bo
         o = bank.spectra(x, w)
         if cache is not None:
             cache.put(i0, o)
-    sums = _AlignedSums(K, S, A, (C + 2) * R * H) if accumulate else None
+    sums = _AlignedSums(K, S, A, (C + 1) * R * H, first=R * H) if accumulate else None
     msums = _AlignedSums(K, S, A, (C + 1) * R * H) if moments else None
     part = _Part(*_chunk_step(bank, o, x if moments else None, w if moments else None, forced, window, scales,
                               sums, msums))
     if sums is not None:
-        part.tot = sums.result(scales, (C + 2, R, H))
+        part.tot = sums.result(scales, (C + 1, R, H))
     if msums is not None:
         part.extra = msums.result(scales, (C + 1, R, H))
     return part

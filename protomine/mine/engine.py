@@ -236,6 +236,7 @@ def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
 RESULT_BLOCK = 256  # (prototype, tilt, scale) groups transformed back at once by _AlignedSums.result
 RESULT_PIECE = 64   # ... and untilted at once (bounds the float64 temporaries of the untilt)
 ADD_BLOCK = 256     # members whose complex spectra _AlignedSums.add holds at once
+SCALE_BLOCK = 8     # groups of a piece resampled by their scales together (temporaries ~1.3 MB on the default grid)
 
 
 def _pieces(runs: np.ndarray, size: int) -> list[tuple[int, int]]:
@@ -267,25 +268,34 @@ class _AlignedSums:
     objects on the 5 x 8 x 36 x 12 grid, 179 MB more for the moments), beside the spectra the adds read from.
     Each group's members are summed in member order as before, and the pieces are the same: the same values
     to the bit.
+
+    ``first``: the spectra's leading features left out (the passes leave out the w |x|^2 block of the object
+    spectra, ``first`` = R H: the prototype update reads only the sums of w and w x).  Every feature is summed,
+    transformed, resampled and untilted on its own, so the others' sums are the same values to the bit; the sums
+    cost 6 / 7 of the work they did on the 5-channel grid.
     """
 
-    def __init__(self, K: int, S: int, A: int, n_feat: int, T: int = 1):
-        self.K, self.S, self.A, self.T, self.n_feat = K, S, A, T, n_feat
+    def __init__(self, K: int, S: int, A: int, n_feat: int, T: int = 1, first: int = 0):
+        self.K, self.S, self.A, self.T, self.n_feat, self.first = K, S, A, T, n_feat, first
         self.adds: list[tuple] = []
 
     def add(self, spec, yaw_deg: np.ndarray, group: np.ndarray, rows: np.ndarray | None = None) -> None:
-        """Add members: real spectra ``spec`` (A, n, n_feat) (``posesearch.spectrum_rows`` layout; or its columns
-        ``rows`` (m,) only), their yaws and groups (m,).  ``spec`` may also be a function of member positions
-        (p,) (indices into this add's members) returning their spectra (A, p, n_feat), computed when summed.
-        Nothing is summed here; ``spec`` is kept until :meth:`result`."""
+        """Add members: real spectra ``spec`` (A, n, first + n_feat) (``posesearch.spectrum_rows`` layout; or its
+        columns ``rows`` (m,) only), their yaws and groups (m,); only the features from ``first`` on are summed (the
+        chunk's object spectra lead with the w |x|^2 block, whose aligned sums nothing reads).  ``spec`` may also be a
+        function of member positions (p,) (indices into this add's members) returning their spectra (A, p, n_feat),
+        computed when summed (all of whose features are summed).  Nothing is summed here; ``spec`` is kept until
+        :meth:`result`."""
         group = np.asarray(group, np.int64)
+        f0 = self.first
         if callable(spec):
             get = spec
-        elif rows is None:
-            get = lambda pos: spec.index_select(1, torch.from_numpy(pos))  # noqa: E731
+        elif rows is None:  # gathered whole, then narrowed: a gather from the narrowed view (not contiguous) first
+            # copied the whole chunk's spectra (118 ms instead of 15 ms for 256 of 2,048 objects, one thread)
+            get = lambda pos: spec.index_select(1, torch.from_numpy(pos))[:, :, f0:]  # noqa: E731
         else:
             rows = np.asarray(rows, np.int64)
-            get = lambda pos: spec.index_select(1, torch.from_numpy(rows[pos]))  # noqa: E731
+            get = lambda pos: spec.index_select(1, torch.from_numpy(rows[pos]))[:, :, f0:]  # noqa: E731
         self.adds.append((get, _align_phase(yaw_deg, self.A), group))
 
     def _piece_sums(self, keys: np.ndarray) -> torch.Tensor:
@@ -341,15 +351,23 @@ class _AlignedSums:
         kts, sis = np.divmod(keys, self.S)
         ukt, which = np.unique(kts, return_inverse=True)
         parts = np.zeros((len(ukt), B, R, self.A, H))
-        for j, si in enumerate(sis):
-            part = a[j]
-            s = scales[int(si)]
-            if s != 1.0:
-                m = np.ones((1, R, 1, H), bool)
-                part, m = _resample_axis(part, m, 1.0 / s, 1)
-                part, m = _resample_axis(part, m, 1.0 / s, 3)
-                part = part * m  # cells the scaled members do not cover stay unknown
-            parts[which[j]] += part
+        for j0 in range(0, len(keys), SCALE_BLOCK):
+            # each group's sum resampled by 1 / its scale, the block's groups of one scale in one call (elementwise
+            # interpolation: the same values as one call per group, whose overhead was ~0.2 ms a group); blocks of a
+            # few groups keep the temporaries below the mapped blocks' threshold (cores.large_blocks_mapped)
+            j1 = min(len(keys), j0 + SCALE_BLOCK)
+            scaled = {}
+            for si in np.unique(sis[j0:j1]).tolist():
+                s = scales[si]
+                if s != 1.0:
+                    js = j0 + np.flatnonzero(sis[j0:j1] == si)
+                    m = np.ones((1, 1, R, 1, H), bool)
+                    part, m = _resample_axis(a[js], m, 1.0 / s, 2)
+                    part, m = _resample_axis(part, m, 1.0 / s, 4)
+                    part *= m  # cells the scaled members do not cover stay unknown
+                    scaled.update(zip(js.tolist(), part))
+            for j in range(j0, j1):  # a (prototype, tilt)'s scales added in key order
+                parts[which[j]] += scaled.get(j, a[j])
         ks, ts = np.divmod(ukt, self.T)
         if untilt is not None and np.any(ts):
             parts = untilt(ks, ts, parts, in_place=True)  # parts is this piece's own
@@ -465,7 +483,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     tilt = np.zeros(N, np.int64)
     # Each chunk's aligned sums are transformed back and added in float64 in chunk order, exactly as the
     # map-reduce pass of mine.distributed folds its chunk parts, so one process and a cluster sum alike.
-    tot = np.zeros((K, C + 2, R, A, H)) if accumulate else None
+    tot = np.zeros((K, C + 1, R, A, H)) if accumulate else None
     extra = np.zeros((K, C + 1, R, A, H)) if moments else None
     chunks = list(_chunks(N, chunk_size))
     # a source that reads from disk reads the next chunk it will need on a thread of its own while this one is
@@ -475,7 +493,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
     for j, (i0, i1) in enumerate(chunks):
         if T > 1:  # the tilt search's blocks of many sizes leave gaps: give their pages back before each chunk
             cores.return_free_memory()
-        sums = _AlignedSums(K, S, A, (C + 2) * R * H, T) if accumulate else None
+        sums = _AlignedSums(K, S, A, (C + 1) * R * H, T, first=R * H) if accumulate else None
         msums = _AlignedSums(K, S, A, (C + 1) * R * H, T) if moments else None
         o = cache.get(i0) if cache is not None else None
         if o is None or moments:
@@ -503,7 +521,7 @@ def _assign_pass(source: Source, P: np.ndarray, V: np.ndarray, scales: tuple[flo
             None if scale_index is None else scale_index[i0:i1], scales, sums, msums, tilt[i0:i1])
         o = x = w = None  # the sums hold the chunk's spectra and volumes until they are summed
         if accumulate:
-            tot += sums.result(scales, (C + 2, R, H), tilt_bank)  # blocks [w |x|^2, w, w x_1 .. w x_C]
+            tot += sums.result(scales, (C + 1, R, H), tilt_bank)  # blocks [w, w x_1 .. w x_C]
             sums = None  # frees the chunk's spectra (unless cached)
         if moments:
             extra += msums.result(scales, (C + 1, R, H), tilt_bank)
@@ -568,11 +586,11 @@ def _pass_outputs(source: Source, labels: np.ndarray, yaw: np.ndarray, scale: np
                   tot: np.ndarray, extra: np.ndarray | None, P: np.ndarray, V: np.ndarray, n_worst: int,
                   chunk_size: int):
     """An accumulating pass's results (see :func:`_assign_pass`) from its per-object arrays (N,), the summed
-    aligned sums tot (K, C + 2, R, A, H) (blocks [w |x|^2, w, w x_1 .. w x_C]) and moments extra
+    aligned sums tot (K, C + 1, R, A, H) (blocks [w, w x_1 .. w x_C]) and moments extra
     (K, C + 1, R, A, H) or None (the reduce step; ``mine.distributed`` sums them over workers' chunks)."""
     K, C = P.shape[:2]
     count = np.bincount(labels[np.isfinite(dist)], minlength=K)
-    num, den = tot[:, 2:], tot[:, 1]
+    num, den = tot[:, 1:], tot[:, 0]
     worst = (np.empty((0,) + P.shape[1:], np.float32), np.empty((0,) + V.shape[1:], np.float32))
     if n_worst and (count == 0).any():
         # unmatchable objects count as worst

@@ -153,12 +153,33 @@ def mean_variance(s0: np.ndarray, s1: np.ndarray, s2: np.ndarray, sw2: np.ndarra
 
 def _fourier_roll(a: np.ndarray, s: float, axis: int) -> np.ndarray:
     """roll(a, s) along ``axis`` for a possibly fractional s (Fourier shift theorem, real output)."""
-    n = a.shape[axis]
+    return _roll_spectrum(np.fft.rfft(a, axis=axis), s, axis, a.shape[axis])
+
+
+def _roll_spectrum(f: np.ndarray, s: float, axis: int, n: int) -> np.ndarray:
+    """:func:`_fourier_roll` of the array of length n along ``axis`` whose rfft along it is ``f``."""
     k = np.fft.rfftfreq(n, 1.0 / n)
-    shape = [1] * a.ndim
+    shape = [1] * f.ndim
     shape[axis] = k.size
     phase = np.exp(-2j * np.pi * k * s / n).reshape(shape)
-    return np.fft.irfft(np.fft.rfft(a, axis=axis) * phase, n=n, axis=axis)
+    return np.fft.irfft(f * phase, n=n, axis=axis)
+
+
+def _turned(P: np.ndarray, V: np.ndarray, u: np.ndarray, shifts: np.ndarray):
+    """For each shift of ``shifts`` (bins): P (K, C, R, A, H), V (K, R, A, H) and u (P's shape) rolled by it about
+    up, (ps, vs, us): ``np.roll`` for a whole number of bins, else :func:`_fourier_roll` with vs clipped to [0, 1].
+    The three transforms along the azimuth are taken once for all the fractional shifts (the same values as a
+    transform per shift: one call on the same array)."""
+    spectra = None
+    for s in shifts:
+        if float(s).is_integer():
+            yield tuple(np.roll(a, int(s), axis=ax) for a, ax in ((P, 3), (V, 2), (u, 3)))
+            continue
+        if spectra is None:
+            spectra = [np.fft.rfft(a, axis=ax) for a, ax in ((P, 3), (V, 2), (u, 3))]
+        fp, fv, fu = spectra
+        A = P.shape[3]
+        yield _roll_spectrum(fp, s, 3, A), np.clip(_roll_spectrum(fv, s, 2, A), 0.0, 1.0), _roll_spectrum(fu, s, 3, A)
 
 
 def _mismatch(P: np.ndarray, V: np.ndarray, u: np.ndarray, ps: np.ndarray, vs: np.ndarray, us: np.ndarray
@@ -179,6 +200,34 @@ def _mismatch(P: np.ndarray, V: np.ndarray, u: np.ndarray, ps: np.ndarray, vs: n
     return T, E
 
 
+def _ratios(P: np.ndarray, V: np.ndarray, mean_var, shift_bins, which: tuple[bool, bool] = (True, True)
+            ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """(T, E) (K, M) each, :func:`asymmetry_ratio` and :func:`effect_ratio` under each rotation of ``shift_bins``
+    (M,), the rolled copies made once for both (``which``: the ones wanted, None for the other).  E reads the rolled
+    copies without their lowest slab (H > 2): the roll is along the azimuth, so they hold the same values as the
+    slabs above it rolled on their own (checked to the bit for the Fourier shifts)."""
+    P = np.asarray(P, np.float64)
+    V = np.asarray(V, np.float64)
+    u = np.broadcast_to(np.asarray(mean_var, np.float64), P.shape)
+    shifts = np.atleast_1d(np.asarray(shift_bins, np.float64))
+    h0 = 1 if P.shape[4] > 2 else 0
+    Ph, Vh = P[..., h0:], V[..., h0:]
+    Vb = Vh[:, None]
+    m = (Vb * Ph).sum(axis=(2, 3), keepdims=True) / np.maximum(Vb.sum(axis=(2, 3), keepdims=True), 1e-12)
+    var = 2.0 * (Vb * (Ph - m) ** 2).sum(axis=(1, 2, 3, 4))                       # (K,)
+    T = np.empty((P.shape[0], shifts.size)) if which[0] else None
+    E = np.empty((P.shape[0], shifts.size)) if which[1] else None
+    for j, (ps, vs, us) in enumerate(_turned(P, V, u, shifts)):
+        if T is not None:
+            om = (V * vs)[:, None]
+            num = (om * (P - ps) ** 2).sum(axis=(1, 2, 3))  # (K, H): one ratio per height slab
+            den = (om * (u + np.maximum(us, 0.0))).sum(axis=(1, 2, 3))
+            T[:, j] = (num / np.maximum(den, 1e-30)).max(axis=1)
+        if E is not None:
+            E[:, j] = ((Vh * vs[..., h0:])[:, None] * (Ph - ps[..., h0:]) ** 2).sum(axis=(1, 2, 3, 4)) / np.maximum(var, 1e-30)
+    return T, E
+
+
 def asymmetry_ratio(P: np.ndarray, V: np.ndarray, mean_var: np.ndarray, shift_bins) -> np.ndarray:
     """T (K, M): prototype asymmetry under each rotation of ``shift_bins`` (M,) over its noise level
     (largest over height slabs).
@@ -186,22 +235,7 @@ def asymmetry_ratio(P: np.ndarray, V: np.ndarray, mean_var: np.ndarray, shift_bi
     P (K, C, R, A, H), V (K, R, A, H), mean_var broadcastable to P (variance of each cell's mean,
     :func:`mean_variance`); see the module docstring for T.
     """
-    P = np.asarray(P, np.float64)
-    V = np.asarray(V, np.float64)
-    u = np.broadcast_to(np.asarray(mean_var, np.float64), P.shape)
-    shifts = np.atleast_1d(np.asarray(shift_bins, np.float64))
-    out = np.empty((P.shape[0], shifts.size))
-    for j, s in enumerate(shifts):
-        if float(s).is_integer():
-            ps, vs, us = (np.roll(a, int(s), axis=ax) for a, ax in ((P, 3), (V, 2), (u, 3)))
-        else:
-            ps, us = _fourier_roll(P, s, 3), _fourier_roll(u, s, 3)
-            vs = np.clip(_fourier_roll(V, s, 2), 0.0, 1.0)
-        om = (V * vs)[:, None]
-        num = (om * (P - ps) ** 2).sum(axis=(1, 2, 3))  # (K, H): one ratio per height slab
-        den = (om * (u + np.maximum(us, 0.0))).sum(axis=(1, 2, 3))
-        out[:, j] = (num / np.maximum(den, 1e-30)).max(axis=1)
-    return out
+    return _ratios(P, V, mean_var, shift_bins, (True, False))[0]
 
 
 def effect_ratio(P: np.ndarray, V: np.ndarray, shift_bins) -> np.ndarray:
@@ -209,22 +243,7 @@ def effect_ratio(P: np.ndarray, V: np.ndarray, shift_bins) -> np.ndarray:
 
     P (K, C, R, A, H), V (K, R, A, H); see the module docstring (the lowest slab is left out when H > 2).
     """
-    P = np.asarray(P, np.float64)
-    V = np.asarray(V, np.float64)
-    h0 = 1 if P.shape[4] > 2 else 0
-    P, V = P[..., h0:], V[..., h0:]
-    Vb = V[:, None]
-    m = (Vb * P).sum(axis=(2, 3), keepdims=True) / np.maximum(Vb.sum(axis=(2, 3), keepdims=True), 1e-12)
-    var = 2.0 * (Vb * (P - m) ** 2).sum(axis=(1, 2, 3, 4))                       # (K,)
-    shifts = np.atleast_1d(np.asarray(shift_bins, np.float64))
-    out = np.empty((P.shape[0], shifts.size))
-    for j, s in enumerate(shifts):
-        if float(s).is_integer():
-            ps, vs = np.roll(P, int(s), axis=3), np.roll(V, int(s), axis=2)
-        else:
-            ps, vs = _fourier_roll(P, s, 3), np.clip(_fourier_roll(V, s, 2), 0.0, 1.0)
-        out[:, j] = ((V * vs)[:, None] * (P - ps) ** 2).sum(axis=(1, 2, 3, 4)) / np.maximum(var, 1e-30)
-    return out
+    return _ratios(P, V, 0.0, shift_bins, (False, True))[1]
 
 
 DEFAULT_TOL = 0.12
@@ -258,7 +277,8 @@ def _detect(P: np.ndarray, V: np.ndarray, mean_var: np.ndarray, factor: float, t
     # every shift needed once: integers 1..A-1 (continuous) and k A / n for each candidate n
     shifts = sorted({float(s) for s in range(1, A)} | {k * A / n for n in folds for k in range(1, n)})
     index = {s: j for j, s in enumerate(shifts)}
-    ok = (asymmetry_ratio(P, V, mean_var, shifts) <= factor) | (effect_ratio(P, V, shifts) <= tol)  # (K, M)
+    T, E = _ratios(P, V, mean_var, shifts)  # one rolled copy per shift for both ratios
+    ok = (T <= factor) | (E <= tol)  # (K, M)
     out = np.full(P.shape[0], NONE, dtype=np.int64)
     for i in range(P.shape[0]):
         if all(ok[i, index[float(s)]] for s in range(1, A)):

@@ -148,6 +148,30 @@ Where the CPU goes (cProfile with a CPU-time clock, one torch thread so the pool
   reading by gathers in torch (8 ``index_select`` of a channels-last volume, or one gather of every channel plane)
   or by a 2-D ``grid_sample`` over (azimuth, height) with the radial bins as channels then a radial lerp, against
   the 3-D ``grid_sample`` on 50,000 points of 6 channels: 11.9 / 13.1 / 9.2 ms against 5.6 ms.
+- Issues 13 / 16, where a fit of 3,000 goes (cProfile, process-time clock, one core by affinity so every stage is
+  seen, ``_mine_tumbled_once(3000, 16, 0, 1, 3)``: 134 s CPU, load 5-6): the refinement 59 s (its products 23.6 s,
+  of which the objects' and columns' gathers 4.9 s; the copies 16.6 s; column factors 15.9 s), the first level
+  32.5 s, the aligned sums 19.1 s (untilt 10.5 s, of which ``grid_sample`` in float64 ~6 s; the per-group scale
+  resampling 2.3 s; the inverse transform 1.7 s), the fit's finish 17.7 s (face symmetries 13.6 s: Fourier rolls
+  5.2 s, ``np.roll`` 2.7 s), the seeding pass 6.7 s.  ``torch.bmm`` 28.4 s, ``grid_sampler`` 13.4 s, ``torch.mm``
+  10.8 s: kernels, not Python.  Two threads, 600 objects: 198 s CPU, the main thread 24.6 s, ``ready_threads`` 1.90
+  (both cores busy).  Cut without changing any output (every fitted array equal to the bit, the default demo's
+  library and assignments identical): the sums of the w |x|^2 block, which nothing reads (``_AlignedSums(first=)``,
+  1/7 of the sums' work), the scale resampling of a piece's groups of one scale in one call (``SCALE_BLOCK``), and
+  the symmetry test's rolled copies made once for both ratios with one azimuth transform per array
+  (``symmetry._ratios``; 21.8 -> 17.4 ms a prototype).  Measured (main and this code back to back): the mining
+  row at 3,000, 538.5 s CPU, 788 s wall, 1,866 MB, NMI 0.9533 (load 6.6) -> 566.3 s, 742 s, 1,831 MB, NMI 0.9533
+  (load 2.9-5.4): no gain beyond the noise of a shared machine (~10% on CPU seconds between runs of the same code);
+  at 1,000 (two pairs, this code first, load 1.3-3.8): 196.4 / 193.9 s CPU against 233.7 / 201.6 s (206.4 s at
+  load 8), wall 171.5 / 165.1 s against 169.4 / 202.7 s, 1,194 / 1,113 MB against 1,190 / 1,184 MB, NMI 0.8921 and
+  15 passes in every run; the tilts row 6.16 -> 5.82 s CPU, ratio per tilt 1.23 -> 1.24 (the search's code is unchanged); 600 objects,
+  one restart of 4 passes, one core, alternating: 40.5 / 36.3 s -> 36.9 / 34.6 s; the default demo's mining
+  84.5 -> 68.2-77.7 s CPU.  A gather from a narrowed (not contiguous) view of the chunk's spectra copied the
+  whole chunk each time (118 ms against 15 ms for 256 of 2,048 objects): with it the row at 3,000 took 633.7 s,
+  system time 118 s against 43 s, 2,108 MB.  Tried, not kept: the column factors' numerator written straight
+  into the azimuth-first layout their transform reads (a strided ``out``): other bits and 1.25x slower.  The 2x
+  of issue 13 is not within reach of exact changes: what is left is ``bmm``, ``grid_sample`` and ``mm`` at
+  their kernels' rates.
 """
 from __future__ import annotations
 
