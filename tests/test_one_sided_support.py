@@ -171,3 +171,31 @@ def test_with_masks_support_comes_from_the_readings_own_object():
     #                                                                rest sit between two such readings on the outline)
     assert (own & ~some & inside).sum() <= 2                       # measured: 0
     assert not (free & ~own).any()
+
+
+def test_mask_free_ingest_keeps_the_older_tests_unless_asked(tmp_path):
+    """``[ingest] line_support_maskfree``: a capture without masks is read with the two older flying-pixel tests
+    only (the frames' flags equal ``load_frames`` without line_support), and with line_support when the key is on
+    (the centred lines alone here, one-sided support off, so that the box's outline shows the difference: equal to
+    ``load_frames`` with them).  Reference: the same frames read directly."""
+    from protomine.capture import Intrinsics, read_capture, write_capture
+    from protomine.config import load_config
+    from protomine.ingest.proposals import find_objects, load_frames
+    rng = np.random.default_rng(7)
+    depth, _, _, _ = _scene(rng, 0.0015)
+    h, w = depth.shape
+    write_capture(tmp_path / "cap", intrinsics=Intrinsics(w, h, 200.0, 200.0, (w - 1) / 2, (h - 1) / 2),
+                  depth_scale=10000.0, frames=[{"id": "000000", "cam_to_world": np.eye(4), "depth_m": depth,
+                                                "rgb": np.full((h, w, 3), 128, np.uint8)}])
+    cap = read_capture(tmp_path / "cap")
+    assert not cap.has_masks
+    older = load_frames(cap)[0].flying
+    both = load_frames(cap, line_support=3.0, one_sided=False, use_masks=False)[0].flying
+    cfg = load_config(None)
+    cfg["ingest"]["line_support_one_sided"] = False
+    assert cfg["ingest"]["line_support"] > 0 and not cfg["ingest"]["line_support_maskfree"]
+    got = find_objects(cap, cfg, np.random.default_rng(0)).frames[0].flying
+    assert np.array_equal(got, older)
+    cfg["ingest"]["line_support_maskfree"] = True
+    got = find_objects(cap, cfg, np.random.default_rng(0)).frames[0].flying
+    assert np.array_equal(got, both) and (both & ~older).sum() > 100      # measured: the outline, as above

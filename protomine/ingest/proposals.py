@@ -936,10 +936,15 @@ def _merge_overlapping_footprints(pts: np.ndarray, lab: np.ndarray, plane: Plane
 def find_objects(cap: Capture, cfg: dict, rng: np.random.Generator, *, frame_ids: list[str] | None = None,
                  use_masks: bool = True, progress: Callable[[str], None] | None = None) -> SceneObjects:
     """Support plane and object proposals of a capture (or of the frames ``frame_ids`` only)."""
-    frames = load_frames(cap, frame_ids, progress, line_support=cfg["ingest"]["line_support"],
-                         one_sided=cfg["ingest"]["line_support_one_sided"], use_masks=use_masks)
+    masked = use_masks and cap.has_masks
+    ing = cfg["ingest"]
+    # mask-free, line_support only with line_support_maskfree: it cost the geometry-only proposals (configs);
+    # a store's config recorded before these keys existed was made without them
+    k = ing.get("line_support", 0.0) if masked or ing.get("line_support_maskfree", False) else 0.0
+    frames = load_frames(cap, frame_ids, progress, line_support=k,
+                         one_sided=ing.get("line_support_one_sided", False), use_masks=use_masks)
     plane = fit_support_plane(cap, frames, cfg, rng)
-    if use_masks and cap.has_masks:
+    if masked:
         props = _mask_proposals(cap, frames, plane, cfg)
     else:
         props = _geometry_proposals(cap, frames, plane, cfg)
