@@ -78,6 +78,17 @@ def make_tiny_capture(folder: Path, objs: list[tuple] | None = None, *, masks: b
     return write_capture(folder, intrinsics=TINY_INTRINSICS, depth_scale=1000.0, frames=frames)
 
 
+def depth_only_capture(folder: Path, depth: np.ndarray):
+    """A one-frame capture of depth (H, W) metres (fx = fy = 200 px, centred principal point, identity pose, grey
+    colour, no masks), read back."""
+    from protomine.capture import read_capture
+    h, w = depth.shape
+    write_capture(folder, intrinsics=Intrinsics(w, h, 200.0, 200.0, (w - 1) / 2, (h - 1) / 2),
+                  depth_scale=10000.0, frames=[{"id": "000000", "cam_to_world": np.eye(4), "depth_m": depth,
+                                                "rgb": np.full((h, w, 3), 128, np.uint8)}])
+    return read_capture(folder)
+
+
 def two_object_scene(k: int) -> list[tuple]:
     """A box and a cylinder at positions/yaws that vary with k (so captures differ)."""
     return [(tiny_box(), 15.0 + 37.0 * k, (0.06, 0.0), (0.8, 0.3, 0.2)),

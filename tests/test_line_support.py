@@ -15,6 +15,8 @@ import numpy as np
 import pytest
 from scipy.ndimage import correlate
 
+from conftest import depth_only_capture
+
 from protomine.ingest.depthedges import LINE_DIRECTIONS, depth_noise, line_unsupported, second_differences
 
 
@@ -116,17 +118,12 @@ def test_mixed_readings_flagged_surfaces_kept():
 def test_ingest_key_flags_the_mixed_readings(tmp_path):
     """``[ingest] line_support`` reaches the frames' flags (``proposals.load_frames``): mixed readings beside the box
     no longer read as depth for lifting, and the other tests' flags stay."""
-    from protomine.capture import Intrinsics, read_capture, write_capture
     from protomine.ingest.proposals import load_frames
     rng = np.random.default_rng(4)
     depth, box = _box_on_table(rng, 0.0015)
     inner = box & ~(np.roll(box, 1, 0) & np.roll(box, -1, 0) & np.roll(box, 1, 1) & np.roll(box, -1, 1))
     depth = np.where(inner, depth + rng.uniform(0.15, 0.85, depth.shape) * 0.08, depth)
-    h, w = depth.shape
-    write_capture(tmp_path / "cap", intrinsics=Intrinsics(w, h, 200.0, 200.0, (w - 1) / 2, (h - 1) / 2),
-                  depth_scale=10000.0, frames=[{"id": "000000", "cam_to_world": np.eye(4), "depth_m": depth,
-                                                "rgb": np.full((h, w, 3), 128, np.uint8)}])
-    cap = read_capture(tmp_path / "cap")
+    cap = depth_only_capture(tmp_path / "cap", depth)
     off = load_frames(cap)[0].flying
     on = load_frames(cap, line_support=3.0)[0].flying
     assert not (off & ~on).any()

@@ -13,6 +13,7 @@ from __future__ import annotations
 from math import erf, sqrt
 
 import numpy as np
+from conftest import depth_only_capture
 
 from protomine.ingest.depthedges import (EXTRAPOLATION_SCALE, SIDE_DIRECTIONS, line_unsupported,
                                          one_sided_support)
@@ -133,14 +134,10 @@ def test_mixed_readings_on_an_outline_are_still_flagged():
 def test_ingest_key_reaches_the_frames(tmp_path):
     """``[ingest] line_support_one_sided`` reaches the frames' flags (``proposals.load_frames``): the box's true
     outline and corners, which the centred lines drop, read as depth again; the older tests' flags stay."""
-    from protomine.capture import Intrinsics, read_capture, write_capture
     from protomine.ingest.proposals import load_frames
     depth, _, _, _ = _scene(np.random.default_rng(5), 0.0015)
     h, w = depth.shape
-    write_capture(tmp_path / "cap", intrinsics=Intrinsics(w, h, 200.0, 200.0, (w - 1) / 2, (h - 1) / 2),
-                  depth_scale=10000.0, frames=[{"id": "000000", "cam_to_world": np.eye(4), "depth_m": depth,
-                                                "rgb": np.full((h, w, 3), 128, np.uint8)}])
-    cap = read_capture(tmp_path / "cap")
+    cap = depth_only_capture(tmp_path / "cap", depth)
     off = load_frames(cap)[0].flying
     centred = load_frames(cap, line_support=3.0)[0].flying
     sided = load_frames(cap, line_support=3.0, one_sided=True)[0].flying
@@ -178,16 +175,11 @@ def test_mask_free_ingest_keeps_the_older_tests_unless_asked(tmp_path):
     only (the frames' flags equal ``load_frames`` without line_support), and with line_support when the key is on
     (the centred lines alone here, one-sided support off, so that the box's outline shows the difference: equal to
     ``load_frames`` with them).  Reference: the same frames read directly."""
-    from protomine.capture import Intrinsics, read_capture, write_capture
     from protomine.config import load_config
     from protomine.ingest.proposals import find_objects, load_frames
     rng = np.random.default_rng(7)
     depth, _, _, _ = _scene(rng, 0.0015)
-    h, w = depth.shape
-    write_capture(tmp_path / "cap", intrinsics=Intrinsics(w, h, 200.0, 200.0, (w - 1) / 2, (h - 1) / 2),
-                  depth_scale=10000.0, frames=[{"id": "000000", "cam_to_world": np.eye(4), "depth_m": depth,
-                                                "rgb": np.full((h, w, 3), 128, np.uint8)}])
-    cap = read_capture(tmp_path / "cap")
+    cap = depth_only_capture(tmp_path / "cap", depth)
     assert not cap.has_masks
     older = load_frames(cap)[0].flying
     both = load_frames(cap, line_support=3.0, one_sided=False, use_masks=False)[0].flying
