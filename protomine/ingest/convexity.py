@@ -566,6 +566,7 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
     for a in ids:
         best, best_share = -1, SEAM_SHARE
         mine = points[lab == a]
+        mine_handed = handed[lab == a] if handed is not None else None
         for b in ids:
             if b == a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA:
                 continue
@@ -573,7 +574,7 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
             share = float(near.mean())
             long = share >= SEAM_LONG
             if long and handed is not None:       # not a seam of crumbs handed out only
-                kept = near & ~handed[lab == a]
+                kept = near & ~mine_handed
                 if own_trees[b].n:
                     kept |= np.isfinite(own_trees[b].query(mine, distance_upper_bound=radius)[0])
                 long = kept.mean() >= SEAM_SHARE

@@ -568,7 +568,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         votes = _frame_votes(cap, frames, above_sel, index, c["concave_deg"]) if VIEW_CHECK else None
         grow = bool(c.get("crumb_grow", False))
         mixed = contact_voxels(index[1], rgbs, len(vox)) if grow and COLOUR_CUT else None
-        handed = np.zeros(len(vox), bool)        # with crumb_grow: the crumbs handed to a part, out of the seams
+        handed = np.zeros(len(vox), bool) if grow else None   # the crumbs handed to a part, out of the long seams
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
                                 colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)),
                                 grow=grow, mixed=mixed, handed=handed)
