@@ -366,7 +366,7 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                reach: float, support_band: float, inset: float, min_voxels: int,
                low: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
                colours: np.ndarray | None = None, cell: float | None = None,
-               handed: np.ndarray | None = None) -> np.ndarray:
+               handed: np.ndarray | None = None, readings=None, step_share: float = 0.0) -> np.ndarray:
     """Objects (V,) relabelled 0..n-1 from convex parts (V,) of voxels (V, 3) with in-plane coordinates
     (V, 2) and heights above the support plane (V,).
 
@@ -462,7 +462,7 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     lab = _join_bases(points, np.where(ok, group[np.maximum(parts, 0)], -1), heights, low, link_radius / 2,
                       support_band, colours)
     if colours is not None:
-        lab = _join_same_colour(points, colours, lab, link_radius, handed)
+        lab = _join_same_colour(points, colours, lab, link_radius, handed, readings, step_share)
     return _relabel(lab)
 
 
@@ -525,8 +525,69 @@ def one_colour(rgb: np.ndarray, radius: float) -> bool:
     return bool(np.mean(np.linalg.norm(c - _chroma(rgb), axis=1) <= radius) >= ONE_COLOUR_SHARE)
 
 
+SEAM_STEP_PAIRS = 20      # image pixel pairs across a seam that ``seam_steps`` needs to judge it
+
+
+def seam_steps(points: np.ndarray, lab: np.ndarray, radius: float, readings) -> dict:
+    """Per pair of groups (a, b), a < b, that meet in 3-D, the pixel pairs across their seam in the frames:
+    {(a, b): (stepped, flat)}.
+
+    points: voxels (V, 3); lab: their groups (V,) (-1 none); readings: per frame ((h, w), pixels (m,) flat
+    indices, voxels (m,) of the readings, depth (m,) metres).  In each frame the readings are labelled with their
+    voxel's group; pixels 1-3 apart along a row or a column, of two groups, count when one of the two voxels lies
+    within ``radius`` of the other group (the seam itself, not an occlusion elsewhere); such a pair is stepped
+    when their depths differ by more than VIEW_JUMP_M or VIEW_JUMP_REL x depth (an occluding edge, as in
+    ``frame_segments``), else flat.
+
+    Where two solids touch, their surfaces leave the contact in different directions, and a camera on either
+    side sees one in front of the other there: the seam is an occluding edge in most frames.  The crease
+    between two pieces of one object cut apart by local convexity (the two arms of an L bracket) is a concave
+    fold, and a concave fold never makes an occluding contour (a silhouette needs the surface to turn away from
+    the camera): where the frames see the two pieces side by side, their depths meet."""
+    ok = np.flatnonzero(lab >= 0)
+    out: dict = {}
+    if len(ok) < 2 or readings is None:
+        return out
+    G = int(lab.max()) + 1
+    pr = cKDTree(points[ok]).query_pairs(radius, output_type="ndarray")
+    i, j = ok[pr[:, 0]], ok[pr[:, 1]]
+    x = lab[i] != lab[j]
+    near = np.unique(np.r_[i[x] * G + lab[j[x]], j[x] * G + lab[i[x]]])    # (voxel, other group) keys
+    if not len(near):
+        return out
+    stepped = np.zeros(G * G)
+    flat = np.zeros(G * G)
+    for (h, w), pix, vox, z in readings:
+        L = np.full(h * w, -1)
+        L[pix] = lab[vox]
+        Vx = np.full(h * w, -1)
+        Vx[pix] = vox
+        Z = np.zeros(h * w)
+        Z[pix] = z
+        L, Vx, Z = L.reshape(h, w), Vx.reshape(h, w), Z.reshape(h, w)
+        for d in (1, 2, 3):
+            for dy, dx in ((0, d), (d, 0)):
+                la, lb = L[:h - dy, :w - dx], L[dy:, dx:]
+                m = (la >= 0) & (lb >= 0) & (la != lb)
+                if not m.any():
+                    continue
+                la, lb = la[m], lb[m]
+                va, vb = Vx[:h - dy, :w - dx][m], Vx[dy:, dx:][m]
+                seam = np.isin(va * G + lb, near) | np.isin(vb * G + la, near)
+                if not seam.any():
+                    continue
+                za, zb = Z[:h - dy, :w - dx][m][seam], Z[dy:, dx:][m][seam]
+                jump = np.abs(za - zb) > np.maximum(VIEW_JUMP_M, VIEW_JUMP_REL * np.minimum(za, zb))
+                key = np.minimum(la, lb)[seam] * G + np.maximum(la, lb)[seam]
+                stepped += np.bincount(key, weights=jump.astype(np.float64), minlength=G * G)
+                flat += np.bincount(key, weights=(~jump).astype(np.float64), minlength=G * G)
+    for k in np.flatnonzero(stepped + flat):
+        out[(int(k // G), int(k % G))] = (int(stepped[k]), int(flat[k]))
+    return out
+
+
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float,
-                      handed: np.ndarray | None = None) -> np.ndarray:
+                      handed: np.ndarray | None = None, readings=None, step_share: float = 0.0) -> np.ndarray:
     """Join neighbouring groups of one colour (an L-shaped object: two blocks that each stand): each group
     joins the one neighbour of its colour (median chromaticity (r, g, b) / (r + g + b) within SAME_CHROMA)
     along which most of its voxels lie (within ``radius``), when that is at least SEAM_SHARE of them, and
@@ -553,6 +614,11 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
     if len(ids) < 2:
         return lab
     med = {l: _chroma(colours[lab == l]) for l in ids}
+    steps = seam_steps(points, lab, radius, readings) if step_share > 0 and readings is not None else {}
+    apart = set()
+    for (a, b), (st, fl) in steps.items():
+        if st + fl >= SEAM_STEP_PAIRS and st >= step_share * (st + fl):
+            apart |= {(a, b), (b, a)}
     trees = {l: cKDTree(points[lab == l]) for l in ids}
     if handed is not None:
         own_trees = {l: cKDTree(points[(lab == l) & ~handed]) for l in ids}
@@ -568,7 +634,7 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
         mine = points[lab == a]
         mine_handed = handed[lab == a] if handed is not None else None
         for b in ids:
-            if b == a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA:
+            if b == a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA or (a, b) in apart:
                 continue
             near = np.isfinite(trees[b].query(mine, distance_upper_bound=radius)[0])
             share = float(near.mean())
