@@ -5,9 +5,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from protomine.capture import Intrinsics
+from protomine.capture import Intrinsics, write_capture
 from protomine.scenes import shapes as S
-from protomine.scenes.render import Scene, SceneObject
+from protomine.scenes.noise import add_sensor_noise
+from protomine.scenes.render import Scene, SceneObject, look_at, render
 from protomine.scenes.scenario import place_touching
 
 W, H = 200, 150
@@ -41,6 +42,26 @@ def row_scene(kind: str, n: int, rng: np.random.Generator) -> tuple[Scene, list[
     pos = place_touching(shapes, yaws, rng)
     col = COLOURS[int(rng.integers(len(COLOURS)))]
     return Scene([SceneObject(s, float(y), p, col) for s, y, p in zip(shapes, yaws, pos)]), pos
+
+
+def write_row_capture(folder, kind: str, n: int, draw: int) -> None:
+    """Draw ``draw`` of a row of ``n`` items ``kind`` (generator seed 1000 x kind index + 100 n + draw), seen by six
+    cameras on a ring 0.45-0.6 m from the row's centre at 30-50 deg elevation (even draws) or 45-65 (odd), with
+    the demo's gaussian depth noise, written as a capture with the renderer's masks."""
+    rng = np.random.default_rng(1000 * KINDS.index(kind) + 100 * n + draw)
+    scene, pos = row_scene(kind, n, rng)
+    centre = np.array([*np.mean(pos, axis=0), 0.0])
+    dist = rng.uniform(0.45, 0.6)
+    elev = (30, 50) if draw % 2 == 0 else (45, 65)
+    views = []
+    for i in range(6):
+        a, el = 2 * np.pi * i / 6 + rng.uniform(0, 0.5), np.deg2rad(rng.uniform(*elev))
+        eye = centre + dist * np.array([np.cos(el) * np.cos(a), np.cos(el) * np.sin(a), np.sin(el)])
+        r = render(scene, INTR, look_at(eye, centre + [0, 0, 0.04], np.array([0, 0, 1.0])))
+        depth, rgb = add_sensor_noise(r, rng)
+        views.append(dict(id=f"{i:06d}", cam_to_world=look_at(eye, centre + [0, 0, 0.04], np.array([0, 0, 1.0])),
+                          rgb=rgb, depth_m=depth, mask=r.mask))
+    write_capture(folder, intrinsics=INTR, depth_scale=1000.0, frames=views)
 
 
 def separated(free, masked: dict, n: int, purity: float = 0.95, share: float = 0.8) -> tuple[int, list[float]]:

@@ -4,8 +4,10 @@ colour rendered by the demo renderer (the renderer's masks as truth)."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from protomine.ingest.convexity import seam_steps
+from same_colour_rows import separated, write_row_capture
 
 
 def _seam_image(zfun, w=60, h=40, f=100.0):
@@ -42,3 +44,53 @@ def test_only_the_seam_counts_not_an_occlusion_away_from_it():
     # radius of the other, so there is no seam to judge (the pair is absent)
     pts, lab, rd = _seam_image(lambda X: np.where(X < 0, 0.4, 0.5))
     assert seam_steps(pts, lab, 0.03, rd) == {}
+
+
+def test_twins_apart_needs_a_stepped_seam_and_two_copies_of_one_size():
+    # the stepped seam of the first test between two groups of 1200 voxels each: twins when their heights agree
+    # (two copies of one item), not when one is 20% lower (TWIN_HEIGHT_RATIO 0.95), nor across a flat seam (a
+    # groove: the crease inside one object), nor when one group holds 3x the other's voxels.  Expected answer
+    # by construction (the 60 x 40 image of _seam_image, columns 30-59 right of X = 0).
+    from protomine.ingest.convexity import twins_apart
+    pts, lab, rd = _seam_image(lambda X: np.where(X < 0, 0.48, 0.5))
+    assert np.bincount(lab).tolist() == [1200, 1200]
+    h = np.full(len(lab), 0.1)
+    assert twins_apart(pts, h, lab, 0.03, rd, 0.4) == {(0, 1), (1, 0)}
+    assert twins_apart(pts, np.where(lab == 0, 0.08, 0.1), lab, 0.03, rd, 0.4) == set()
+    few = lab.copy()
+    few[(lab == 1) & (np.arange(len(lab)) % 60 >= 54)] = 2          # group 1 keeps 24 of its 30 columns (0.8)
+    assert twins_apart(pts, h, few, 0.03, rd, 0.4) == {(0, 1), (1, 0)}
+    few[(lab == 1) & (np.arange(len(lab)) % 60 >= 33)] = 2          # 3 columns: 120 voxels, under TWIN_VOXELS
+    assert twins_apart(pts, h, few, 0.03, rd, 0.4) == set()
+    pts, lab, rd = _seam_image(lambda X: 0.5 - 0.8 * np.abs(X))
+    assert twins_apart(pts, h, lab, 0.03, rd, 0.4) == set()
+
+
+def _finding(folder, **keys):
+    from protomine.capture import read_capture
+    from protomine.config import load_config
+    from protomine.ingest.proposals import find_objects
+    cap = read_capture(folder)
+    cfg = load_config("default")
+    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
+    out = {}
+    for name, (share, neck) in keys.items():
+        cfg["ingest"]["seam_step_share"], cfg["ingest"]["twin_neck_cut"] = share, neck
+        out[name] = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
+    return masked, out
+
+
+@pytest.mark.parametrize("kind, draw, cues", [("can", 0, "seam"), ("mug", 0, "seam"), ("can", 1, "neck"),
+                                              ("box", 1, "neck")])
+def test_two_identical_items_of_one_colour_touching_are_two_objects(tmp_path, kind, draw, cues):
+    """Two copies of one item, one colour, touching (tests/same_colour_rows.py draws; the renderer's masks as
+    truth).  Without masks and without the cues: one proposal holding both (measured purity 0.50-0.52, the
+    same-colour join or a part whose tops touch).  With ``[ingest] seam_step_share`` (the seam an occluding
+    edge in the frames, convexity.twins_apart) the first two draws are two objects, each >= 0.95 pure with >= 0.8 of
+    its masked pixels; the last two need ``[ingest] twin_neck_cut`` too (their tops touch: one convex part,
+    cut at its neck by spectral bisection, Shi & Malik 2000)."""
+    write_row_capture(tmp_path / "row", kind, 2, draw)
+    masked, runs = _finding(tmp_path / "row", off=(0.0, False), seam=(0.4, False), both=(0.4, True))
+    assert len(runs["off"].proposals) == 1
+    assert separated(runs["both"], masked, 2)[0] == 2
+    assert separated(runs["seam"], masked, 2)[0] == (2 if cues == "seam" else 0)

@@ -577,7 +577,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0, handed=handed,
-                         readings=readings, step_share=step_share)
+                         readings=readings, step_share=step_share,
+                         neck_cut=bool(c.get("twin_neck_cut", False)) and step_share > 0)
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
