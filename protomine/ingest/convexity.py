@@ -635,11 +635,12 @@ def twins_apart(points: np.ndarray, heights: np.ndarray, lab: np.ndarray, radius
     return out
 
 
-NECK_SIDE_SHARE = 0.25     # ... and leaves at least this share of the part's voxels on either side (one of a row of three: 1/3)
+NECK_CONDUCTANCE = 0.008  # with ``[ingest] twin_neck_cut``: a part splits into twins only across a cut this narrow
+                          # (adjacency pairs cut / those of the smaller side; measured: two cans or boxes joined at
+                          # their tops 0.003-0.006, one can or mug cut through its own body 0.012-0.036)
+NECK_SIDE_SHARE = 0.25    # ... leaving at least this share of the part's voxels on either side (a row of three: 1/3)
 NECK_ELONGATION = 1.8     # ... of a part whose footprint is this elongated (variance along / across; two discs side by
                           # side 5, two 7 x 5 cm boxes at least 2; a round part, one item, is not bisected at all)
-NECK_CONDUCTANCE = 0.008  # with ``[ingest] twin_neck_cut``: a part splits into twins only across a cut this narrow
-                          # (adjacency pairs cut / those of the smaller side)
 
 
 def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: np.ndarray, *, adjacency: float,
@@ -653,10 +654,12 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
     crease, no occluding edge, so local convexity and the frames leave them one part joined through a neck a few
     voxels wide.  The part's adjacency graph (pairs within ``adjacency``) is cut by spectral bisection (Shi &
     Malik 2000, normalized cuts: the second eigenvector of the normalized adjacency D^-1/2 A D^-1/2), at the
-    sweep position of least conductance among those leaving the two sides within TWIN_VOXEL_RATIO of one another
-    in voxels; the cut stands when its conductance is under NECK_CONDUCTANCE, both sides are twins (TWIN_VOXELS, heights over
-    the plane within TWIN_HEIGHT_RATIO) and each could stand on the plane by itself (``stands_alone``); the sides
-    are cut again the same way (a row of four: two pairs).
+    sweep position of least conductance among those leaving NECK_SIDE_SHARE of the voxels on either side; the cut
+    stands when its conductance is under NECK_CONDUCTANCE, both sides hold TWIN_VOXELS, stand as high (within
+    TWIN_HEIGHT_RATIO) and could each stand on the plane by itself (``stands_alone``), and, with ``step_share`` > 0,
+    the frames see the seam between them stepped in that share of its pixel pairs (``seam_steps`` of ``readings``
+    within ``radius``; without that check two hand planes and an L bracket of the touching demo were cut at a
+    neck); the sides are tried again (a row of three or four).
     points (V, 3), xy (V, 2) in-plane coordinates, heights (V,) over the plane."""
     from scipy.sparse.linalg import ArpackNoConvergence, eigsh
     out, apart = parts.copy(), set()
@@ -674,7 +677,8 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
         pr = cKDTree(points[v]).query_pairs(adjacency, output_type="ndarray")
         if not len(pr):
             continue
-        A = coo_matrix((np.ones(2 * len(pr)), (np.r_[pr[:, 0], pr[:, 1]], np.r_[pr[:, 1], pr[:, 0]])), shape=(n, n)).tocsr()
+        ends = (np.r_[pr[:, 0], pr[:, 1]], np.r_[pr[:, 1], pr[:, 0]])
+        A = coo_matrix((np.ones(2 * len(pr)), ends), shape=(n, n)).tocsr()                # (n, n) symmetric
         deg = np.asarray(A.sum(axis=1)).ravel()
         dinv = 1.0 / np.sqrt(np.maximum(deg, 1.0))
         M = A.multiply(dinv[:, None]).multiply(dinv[None, :]).tocsr()
