@@ -366,7 +366,8 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                reach: float, support_band: float, inset: float, min_voxels: int,
                low: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
                colours: np.ndarray | None = None, cell: float | None = None,
-               handed: np.ndarray | None = None) -> np.ndarray:
+               handed: np.ndarray | None = None, readings=None, step_share: float = 0.0,
+               neck_cut: bool = False) -> np.ndarray:
     """Objects (V,) relabelled 0..n-1 from convex parts (V,) of voxels (V, 3) with in-plane coordinates
     (V, 2) and heights above the support plane (V,).
 
@@ -381,7 +382,16 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     link_radius / 2) add to its support polygon.  colours: (V, 3) RGB of the voxels; with them, groups of
     one colour meeting along a seam are joined at the end (``_join_same_colour``); handed: (V,) bool, the crumbs
     ``convex_parts`` handed to a part: a long seam of two of them only does not count there.
+    readings: per frame ((h, w), pixels, voxels, depth) of the readings (``seam_steps``); with them and
+    ``step_share`` > 0 (``[ingest] seam_step_share``) twins whose seam the frames see stepped are not joined
+    (``twins_apart``), and with ``neck_cut`` (``[ingest] twin_neck_cut``) parts that are two twins joined by a
+    neck are cut first (``split_twins``).
     """
+    halves = set()
+    if neck_cut:
+        parts, halves = split_twins(points, parts, xy, heights, adjacency=link_radius / 2, support_band=support_band,
+                                    inset=inset, cell=cell, readings=readings,
+                                    step_share=step_share if readings is not None else 0.0, radius=link_radius)
     ids = np.unique(parts[parts >= 0])
     if len(ids) < 2:
         return _relabel(parts)
@@ -462,7 +472,11 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     lab = _join_bases(points, np.where(ok, group[np.maximum(parts, 0)], -1), heights, low, link_radius / 2,
                       support_band, colours)
     if colours is not None:
-        lab = _join_same_colour(points, colours, lab, link_radius, handed)
+        apart = twins_apart(points, heights, lab, link_radius, readings, step_share) if (
+            step_share > 0 and readings is not None) else set()
+        for p, q in halves:                       # the halves of a twin cut, in the groups they ended in
+            apart.add((int(lab[parts == p][0]), int(lab[parts == q][0])))
+        lab = _join_same_colour(points, colours, lab, link_radius, handed, apart)
     return _relabel(lab)
 
 
@@ -525,8 +539,193 @@ def one_colour(rgb: np.ndarray, radius: float) -> bool:
     return bool(np.mean(np.linalg.norm(c - _chroma(rgb), axis=1) <= radius) >= ONE_COLOUR_SHARE)
 
 
+SEAM_STEP_PAIRS = 20      # image pixel pairs across a seam that ``seam_steps`` needs to judge it
+TWIN_VOXELS = 400         # with ``[ingest] seam_step_share``: groups this large (each) ...
+TWIN_VOXEL_RATIO = 0.7    # ... whose voxel counts (smaller / larger) ...
+TWIN_HEIGHT_RATIO = 0.95  # ... and heights (99th percentile over the plane, lower / higher) agree this closely
+                          # are twins: two copies of one item (measured in README "Touching objects of one colour")
+
+
+def seam_steps(points: np.ndarray, lab: np.ndarray, radius: float, readings) -> dict:
+    """Per pair of groups (a, b), a < b, that meet in 3-D, the pixel pairs across their seam in the frames:
+    {(a, b): (stepped, flat)}.
+
+    points: voxels (V, 3); lab: their groups (V,) (-1 none); readings: per frame ((h, w), pixels (m,) flat
+    indices, voxels (m,) of the readings, depth (m,) metres).  In each frame the readings are labelled with their
+    voxel's group; pixels 1-3 apart along a row or a column, of two groups, count when one of the two voxels lies
+    within ``radius`` of the other group (the seam itself, not an occlusion elsewhere); such a pair is stepped
+    when their depths differ by more than VIEW_JUMP_M or VIEW_JUMP_REL x depth (an occluding edge, as in
+    ``frame_segments``), else flat.
+
+    Where two solids touch, their surfaces leave the contact in different directions, and a camera on either
+    side sees one in front of the other there: the seam is an occluding edge in most frames.  The crease
+    between two pieces of one object cut apart by local convexity (the two arms of an L bracket) is a concave
+    fold, and a concave fold never makes an occluding contour (a silhouette needs the surface to turn away from
+    the camera): where the frames see the two pieces side by side, their depths meet.  Near the seam a piece's own
+    silhouette can still hide its body (a jug's handle, a plane's tote), so the share alone does not decide
+    (``twins_apart`` asks for two copies of one item as well)."""
+    ok = np.flatnonzero(lab >= 0)
+    out: dict = {}
+    if len(ok) < 2 or readings is None:
+        return out
+    ids, c = np.unique(lab[ok], return_inverse=True)
+    lab = np.full(len(lab), -1)
+    lab[ok] = c.reshape(-1)                                # groups 0..G-1 here, ids[g] outside
+    G = len(ids)
+    pr = cKDTree(points[ok]).query_pairs(radius, output_type="ndarray")
+    i, j = ok[pr[:, 0]], ok[pr[:, 1]]
+    x = lab[i] != lab[j]
+    near = np.unique(np.r_[i[x] * G + lab[j[x]], j[x] * G + lab[i[x]]])    # (voxel, other group) keys
+    if not len(near):
+        return out
+    keys, jumps = [], []
+    for (h, w), pix, vox, z in readings:
+        L = np.full(h * w, -1)
+        L[pix] = lab[vox]
+        Vx = np.full(h * w, -1)
+        Vx[pix] = vox
+        Z = np.zeros(h * w)
+        Z[pix] = z
+        L, Vx, Z = L.reshape(h, w), Vx.reshape(h, w), Z.reshape(h, w)
+        for d in (1, 2, 3):
+            for dy, dx in ((0, d), (d, 0)):
+                la, lb = L[:h - dy, :w - dx], L[dy:, dx:]
+                m = (la >= 0) & (lb >= 0) & (la != lb)
+                if not m.any():
+                    continue
+                la, lb = la[m], lb[m]
+                va, vb = Vx[:h - dy, :w - dx][m], Vx[dy:, dx:][m]
+                seam = np.isin(va * G + lb, near) | np.isin(vb * G + la, near)
+                if not seam.any():
+                    continue
+                za, zb = Z[:h - dy, :w - dx][m][seam], Z[dy:, dx:][m][seam]
+                jump = np.abs(za - zb) > np.maximum(VIEW_JUMP_M, VIEW_JUMP_REL * np.minimum(za, zb))
+                keys.append(np.minimum(la, lb)[seam] * G + np.maximum(la, lb)[seam])
+                jumps.append(jump)
+    if not keys:
+        return out
+    k, inv = np.unique(np.concatenate(keys), return_inverse=True)
+    stepped = np.bincount(inv.reshape(-1), weights=np.concatenate(jumps).astype(np.float64), minlength=len(k))
+    total = np.bincount(inv.reshape(-1), minlength=len(k))
+    for key, st, n in zip(k, stepped, total):
+        out[(int(ids[key // G]), int(ids[key % G]))] = (int(st), int(n - st))
+    return out
+
+
+def twins_apart(points: np.ndarray, heights: np.ndarray, lab: np.ndarray, radius: float, readings,
+                step_share: float) -> set:
+    """``[ingest] seam_step_share``: the pairs of groups (a, b) (both orders) that are two copies of one item
+    standing side by side: twins (each at least TWIN_VOXELS voxels, voxel counts within TWIN_VOXEL_RATIO, heights
+    over the plane (V,) within TWIN_HEIGHT_RATIO) whose seam the frames see as an occluding edge in at least
+    ``step_share`` of the pixel pairs across it (``seam_steps``, at least SEAM_STEP_PAIRS pairs)."""
+    out: set = set()
+    steps = seam_steps(points, lab, radius, readings)
+    size = {int(l): int(n) for l, n in zip(*np.unique(lab[lab >= 0], return_counts=True))}
+    top = {}
+    for (a, b), (st, fl) in steps.items():
+        if st + fl < SEAM_STEP_PAIRS or st < step_share * (st + fl):
+            continue
+        if min(size[a], size[b]) < TWIN_VOXELS or min(size[a], size[b]) < TWIN_VOXEL_RATIO * max(size[a], size[b]):
+            continue
+        for g in (a, b):
+            if g not in top:
+                top[g] = float(np.percentile(heights[lab == g], 99))
+        if min(top[a], top[b]) >= TWIN_HEIGHT_RATIO * max(top[a], top[b]):
+            out |= {(a, b), (b, a)}
+    return out
+
+
+NECK_CONDUCTANCE = 0.008  # with ``[ingest] twin_neck_cut``: a part splits into twins only across a cut this narrow
+                          # (adjacency pairs cut / those of the smaller side; measured: two cans or boxes joined at
+                          # their tops 0.003-0.006, one can or mug cut through its own body 0.012-0.036)
+NECK_SIDE_SHARE = 0.25    # ... leaving at least this share of the part's voxels on either side (a row of three: 1/3)
+NECK_ELONGATION = 1.8     # ... of a part whose footprint is this elongated (variance along / across; two discs side by
+                          # side 5, two 7 x 5 cm boxes at least 2; a round part, one item, is not bisected at all)
+
+
+def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: np.ndarray, *, adjacency: float,
+                support_band: float, inset: float, cell: float | None, readings=None, step_share: float = 0.0,
+                radius: float = 0.0) -> tuple[np.ndarray, set]:
+    """``[ingest] twin_neck_cut``: parts (V,) with every part that is two copies of one item joined by a narrow neck
+    cut in two, and the pairs (a, b) (both orders) of the two halves.  Only parts of at least 2 x TWIN_VOXELS
+    voxels whose footprint is elongated (NECK_ELONGATION) are tried.
+
+    Two identical items of one height standing side by side meet where their tops touch: coplanar faces, no
+    crease, no occluding edge, so local convexity and the frames leave them one part joined through a neck a few
+    voxels wide.  The part's adjacency graph (pairs within ``adjacency``) is cut by spectral bisection (Shi &
+    Malik 2000, normalized cuts: the second eigenvector of the normalized adjacency D^-1/2 A D^-1/2), at the
+    sweep position of least conductance among those leaving NECK_SIDE_SHARE of the voxels on either side; the cut
+    stands when its conductance is under NECK_CONDUCTANCE, both sides hold TWIN_VOXELS, stand as high (within
+    TWIN_HEIGHT_RATIO) and could each stand on the plane by itself (``stands_alone``), and, with ``step_share`` > 0,
+    the frames see the seam between them stepped in that share of its pixel pairs (``seam_steps`` of ``readings``
+    within ``radius``; without that check two hand planes and an L bracket of the touching demo were cut at a
+    neck); the sides are tried again (a row of three or four).
+    points (V, 3), xy (V, 2) in-plane coordinates, heights (V,) over the plane."""
+    from scipy.sparse.linalg import ArpackNoConvergence, eigsh
+    out, apart = parts.copy(), set()
+    ids, size = np.unique(parts[parts >= 0], return_counts=True)
+    nxt = int(parts.max()) + 1 if len(ids) else 0
+    lo_share = NECK_SIDE_SHARE
+    queue = [int(p) for p in ids[size >= 2 * TWIN_VOXELS]]
+    while queue:                                      # a row of three: one cut, then the pair left
+        p = queue.pop(0)
+        v = np.flatnonzero(out == p)
+        n = len(v)
+        ev = np.linalg.eigvalsh(np.cov(xy[v].T))                  # footprint variances, ascending
+        if ev[1] < NECK_ELONGATION * max(ev[0], 1e-12):
+            continue
+        pr = cKDTree(points[v]).query_pairs(adjacency, output_type="ndarray")
+        if not len(pr):
+            continue
+        ends = (np.r_[pr[:, 0], pr[:, 1]], np.r_[pr[:, 1], pr[:, 0]])
+        A = coo_matrix((np.ones(2 * len(pr)), ends), shape=(n, n)).tocsr()                # (n, n) symmetric
+        deg = np.asarray(A.sum(axis=1)).ravel()
+        dinv = 1.0 / np.sqrt(np.maximum(deg, 1.0))
+        M = A.multiply(dinv[:, None]).multiply(dinv[None, :]).tocsr()
+        try:
+            vals, vecs = eigsh(M, k=2, which="LA", v0=np.linspace(1.0, 2.0, n), tol=1e-6, maxiter=5000)
+        except ArpackNoConvergence:
+            continue
+        f = vecs[:, int(np.argmin(vals))] * dinv
+        order = np.argsort(f, kind="stable")
+        rank = np.empty(n, int)
+        rank[order] = np.arange(n)
+        ra, rb = np.minimum(rank[pr[:, 0]], rank[pr[:, 1]]), np.maximum(rank[pr[:, 0]], rank[pr[:, 1]])
+        diff = np.zeros(n + 1)
+        np.add.at(diff, ra + 1, 1.0)                  # an edge crosses the prefixes k with ra < k <= rb
+        np.add.at(diff, rb + 1, -1.0)
+        cut = np.cumsum(diff)[:n]                     # cut[k]: the first k voxels in order against the rest
+        vol = np.cumsum(deg[order])
+        k = np.arange(n)
+        side = np.minimum(vol[np.maximum(k - 1, 0)], vol[-1] - vol[np.maximum(k - 1, 0)])
+        ok = (k >= lo_share * n) & (k <= (1 - lo_share) * n) & (side > 0)
+        if not ok.any():
+            continue
+        cond = np.where(ok, cut / np.maximum(side, 1.0), np.inf)
+        kb = int(np.argmin(cond))
+        if cond[kb] >= NECK_CONDUCTANCE:
+            continue
+        a, b = v[order[:kb]], v[order[kb:]]
+        ha, hb = np.percentile(heights[a], 99), np.percentile(heights[b], 99)
+        if min(ha, hb) < TWIN_HEIGHT_RATIO * max(ha, hb) or min(len(a), len(b)) < TWIN_VOXELS:
+            continue
+        if not all(stands_alone(xy[s], heights[s], support_band=support_band, inset=inset, cell=cell) for s in (a, b)):
+            continue
+        if step_share > 0:                            # the frames see the seam between the halves as an edge too
+            two = np.full(len(parts), -1)
+            two[a], two[b] = 0, 1
+            st, fl = seam_steps(points, two, radius, readings).get((0, 1), (0, 0))
+            if st + fl < SEAM_STEP_PAIRS or st < step_share * (st + fl):
+                continue
+        out[b] = nxt
+        apart |= {(int(p), nxt), (nxt, int(p))}
+        queue += [q for q, s in ((int(p), a), (nxt, b)) if len(s) >= 2 * TWIN_VOXELS]
+        nxt += 1
+    return out, apart
+
+
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float,
-                      handed: np.ndarray | None = None) -> np.ndarray:
+                      handed: np.ndarray | None = None, apart: set | None = None) -> np.ndarray:
     """Join neighbouring groups of one colour (an L-shaped object: two blocks that each stand): each group
     joins the one neighbour of its colour (median chromaticity (r, g, b) / (r + g + b) within SAME_CHROMA)
     along which most of its voxels lie (within ``radius``), when that is at least SEAM_SHARE of them, and
@@ -553,6 +752,7 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
     if len(ids) < 2:
         return lab
     med = {l: _chroma(colours[lab == l]) for l in ids}
+    apart = apart or set()
     trees = {l: cKDTree(points[lab == l]) for l in ids}
     if handed is not None:
         own_trees = {l: cKDTree(points[(lab == l) & ~handed]) for l in ids}
@@ -568,7 +768,7 @@ def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, 
         mine = points[lab == a]
         mine_handed = handed[lab == a] if handed is not None else None
         for b in ids:
-            if b == a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA:
+            if b == a or np.linalg.norm(med[a] - med[b]) >= SAME_CHROMA or (a, b) in apart:
                 continue
             near = np.isfinite(trees[b].query(mine, distance_upper_bound=radius)[0])
             share = float(near.mean())

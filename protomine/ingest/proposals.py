@@ -572,9 +572,13 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         parts, _ = convex_parts(vox, normals, lab, adjacency=0.5 * eps, concave_deg=c["concave_deg"], votes=votes,
                                 colours=colours if COLOUR_CUT else None, regroup=bool(c.get("crumb_regroup", False)),
                                 grow=grow, mixed=mixed, handed=handed)
+        step_share = float(c.get("seam_step_share", 0.0))
+        readings = _seam_readings(frames, above_sel, index[1]) if step_share > 0 else None
         lab = join_parts(vox, parts, vox @ plane_basis(plane.normal)[:2].T, plane.height(vox), link_radius=eps, reach=3 * eps,
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
-                         low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0, handed=handed)
+                         low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0, handed=handed,
+                         readings=readings, step_share=step_share,
+                         neck_cut=bool(c.get("twin_neck_cut", False)) and step_share > 0)
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
@@ -600,6 +604,17 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         clusters = [t for i, t in enumerate(clusters) if i not in flat]
         props = _grown_proposals(cap, frames, above_sel, plane, cfg, clusters)
     return [p for p in props if p is not None and p.frame.height >= c["min_object_height_m"]]
+
+
+def _seam_readings(frames: list[FrameData], above_sel: list[np.ndarray], inv: np.ndarray) -> list:
+    """Per frame ((h, w), pixels (m,), voxels (m,), depth (m,)) of its readings above the plane, for
+    ``convexity.seam_steps``; inv: (M,) voxel of every selected reading, frames concatenated."""
+    out, at = [], 0
+    for fd, s in zip(frames, above_sel):
+        pix = fd.pixels[s]
+        out.append((fd.depth.shape, pix, inv[at:at + len(pix)], fd.depth.reshape(-1)[pix]))
+        at += len(pix)
+    return out
 
 
 def _over_taller(vox: np.ndarray, p: Proposal, props: list[Proposal | None], plane: PlaneFit, eps: float) -> bool:

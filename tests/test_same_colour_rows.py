@@ -1,0 +1,135 @@
+"""Touching objects of one colour without masks: the seam between two groups as the frames see it
+(``convexity.seam_steps``), on hand-made depth images with known answers, and on rows of identical items of one
+colour rendered by the demo renderer (the renderer's masks as truth)."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from protomine.ingest.convexity import seam_steps
+from same_colour_rows import separated, write_row_capture
+
+
+def _seam_image(zfun, w=60, h=40, f=100.0):
+    """One frame of the surface z = zfun(X) (camera = world frame), labelled 0 left of X = 0 and 1 right of it:
+    voxels = the pixels' own points, and the readings ((h, w), pixels, voxels, depth) of ``seam_steps``."""
+    cx, cy = (w - 1) / 2, (h - 1) / 2
+    v, u = np.mgrid[0:h, 0:w].astype(np.float64)
+    z = np.full((h, w), 0.5)
+    for _ in range(50):                                  # fixed point: z = zfun((u - cx) z / f)
+        z = zfun((u - cx) * z / f)
+    X = (u - cx) * z / f
+    pts = np.stack([X, (v - cy) * z / f, z], -1).reshape(-1, 3)
+    lab = (X.reshape(-1) >= 0).astype(int)
+    pix = np.arange(h * w)
+    return pts, lab, [((h, w), pix, pix, z.reshape(-1))]
+
+
+def test_an_occluding_edge_is_a_stepped_seam_and_a_groove_a_flat_one():
+    # an occluding edge: the left group 2 cm in front of the right one (a depth step over VIEW_JUMP_M, 1 cm, the
+    # occluding-edge test of frame_segments); a groove: the surface folds towards the camera on both sides of
+    # X = 0 (a concave crease, Stein et al. 2014) and the depths meet there.  Expected answer by construction.
+    pts, lab, rd = _seam_image(lambda X: np.where(X < 0, 0.48, 0.5))
+    st, fl = seam_steps(pts, lab, 0.03, rd)[(0, 1)]
+    assert st > 0 and fl == 0, (st, fl)
+    # pixel pairs 1, 2 and 3 apart across the seam: 1 + 2 + 3 per row, 40 rows (the horizontal pairs only)
+    assert st == 40 * 6
+    pts, lab, rd = _seam_image(lambda X: 0.5 - 0.8 * np.abs(X))
+    st, fl = seam_steps(pts, lab, 0.03, rd)[(0, 1)]
+    assert st == 0 and fl == 40 * 6, (st, fl)
+
+
+def test_only_the_seam_counts_not_an_occlusion_away_from_it():
+    # the two groups 10 cm apart in depth: one hides the other in the image, but no voxel of one lies within the
+    # radius of the other, so there is no seam to judge (the pair is absent)
+    pts, lab, rd = _seam_image(lambda X: np.where(X < 0, 0.4, 0.5))
+    assert seam_steps(pts, lab, 0.03, rd) == {}
+
+
+def test_twins_apart_needs_a_stepped_seam_and_two_copies_of_one_size():
+    # the stepped seam of the first test between two groups of 1200 voxels each: twins when their heights agree
+    # (two copies of one item), not when one is 20% lower (TWIN_HEIGHT_RATIO 0.95), nor across a flat seam (a
+    # groove: the crease inside one object), nor when one group holds 3x the other's voxels.  Expected answer
+    # by construction (the 60 x 40 image of _seam_image, columns 30-59 right of X = 0).
+    from protomine.ingest.convexity import twins_apart
+    pts, lab, rd = _seam_image(lambda X: np.where(X < 0, 0.48, 0.5))
+    assert np.bincount(lab).tolist() == [1200, 1200]
+    h = np.full(len(lab), 0.1)
+    assert twins_apart(pts, h, lab, 0.03, rd, 0.4) == {(0, 1), (1, 0)}
+    assert twins_apart(pts, np.where(lab == 0, 0.08, 0.1), lab, 0.03, rd, 0.4) == set()
+    few = lab.copy()
+    few[(lab == 1) & (np.arange(len(lab)) % 60 >= 54)] = 2          # group 1 keeps 24 of its 30 columns (0.8)
+    assert twins_apart(pts, h, few, 0.03, rd, 0.4) == {(0, 1), (1, 0)}
+    few[(lab == 1) & (np.arange(len(lab)) % 60 >= 33)] = 2          # 3 columns: 120 voxels, under TWIN_VOXELS
+    assert twins_apart(pts, h, few, 0.03, rd, 0.4) == set()
+    pts, lab, rd = _seam_image(lambda X: 0.5 - 0.8 * np.abs(X))
+    assert twins_apart(pts, h, lab, 0.03, rd, 0.4) == set()
+
+
+def _finding(folder, **keys):
+    from protomine.capture import read_capture
+    from protomine.config import load_config
+    from protomine.ingest.proposals import find_objects
+    cap = read_capture(folder)
+    cfg = load_config("default")
+    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
+    out = {}
+    for name, (share, neck) in keys.items():
+        cfg["ingest"]["seam_step_share"], cfg["ingest"]["twin_neck_cut"] = share, neck
+        out[name] = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
+    return masked, out
+
+
+@pytest.mark.parametrize("kind, draw, cues", [("can", 0, "seam"), ("mug", 0, "seam"), ("can", 1, "neck"),
+                                              ("box", 1, "neck")])
+def test_two_identical_items_of_one_colour_touching_are_two_objects(tmp_path, kind, draw, cues):
+    """Two copies of one item, one colour, touching (tests/same_colour_rows.py draws; the renderer's masks as
+    truth).  Without masks and without the cues: one proposal holding both (measured purity 0.50-0.52, the
+    same-colour join or a part whose tops touch).  With ``[ingest] seam_step_share`` (the seam an occluding
+    edge in the frames, convexity.twins_apart) the first two draws are two objects, each >= 0.95 pure with >= 0.8 of
+    its masked pixels; the last two need ``[ingest] twin_neck_cut`` too (their tops touch: one convex part,
+    cut at its neck by spectral bisection, Shi & Malik 2000)."""
+    write_row_capture(tmp_path / "row", kind, 2, draw)
+    masked, runs = _finding(tmp_path / "row", off=(0.0, False), seam=(0.4, False), both=(0.4, True))
+    assert len(runs["off"].proposals) == 1
+    assert separated(runs["both"], masked, 2)[0] == 2
+    assert separated(runs["seam"], masked, 2)[0] == (2 if cues == "seam" else 0)
+
+
+def _block(x0: float, height: float, length: float = 0.06, step: float = 0.004) -> np.ndarray:
+    """The seen surface of a block ``length`` x 6 cm standing on the plane z = 0 from x = x0: its top at ``height``
+    and its four walls, sampled every ``step`` (voxel centres)."""
+    gx, g = np.arange(0.0, length + 1e-9, step), np.arange(0.0, 0.06 + 1e-9, step)
+    X, Y = np.meshgrid(gx, g, indexing="ij")
+    top = np.c_[X.ravel() + x0, Y.ravel(), np.full(X.size, height)]
+    z = np.arange(0.0, height, step)
+    walls = [(x0 + a, y, zz) for a in gx for y in (0.0, 0.06) for zz in z]
+    walls += [(x, a, zz) for a in g for x in (x0, x0 + length) for zz in z]
+    return np.unique(np.round(np.concatenate([top, np.array(walls)]), 6), axis=0)
+
+
+def _two_blocks(right_height: float) -> tuple[np.ndarray, np.ndarray]:
+    """Two blocks 1.2 cm apart joined by a bridge one voxel wide on their tops (a neck), as one part."""
+    left, right = _block(0.0, 0.1), _block(0.072, right_height)
+    bridge = np.c_[np.arange(0.064, 0.072, 0.004), np.full(2, 0.032), np.full(2, 0.1)]
+    pts = np.concatenate([left, right, bridge])
+    return pts, np.zeros(len(pts), int)
+
+
+def test_split_twins_cuts_two_blocks_at_their_neck_and_nothing_else():
+    # normalized cut (Shi & Malik 2000): the bridge's few adjacency pairs against a block's thousands is a
+    # conductance far under NECK_CONDUCTANCE; two blocks of one height that each stand are cut apart there, the
+    # same pair with one block 8 cm high (heights within 0.8, under TWIN_HEIGHT_RATIO) is not, nor is one long
+    # block of the pair's footprint, 13.2 x 6 cm (elongated, but no neck).  Expected answer by construction.
+    from protomine.ingest.convexity import split_twins
+    pts, parts = _two_blocks(0.1)
+    kw = dict(adjacency=0.006, support_band=0.025, inset=0.003, cell=0.004)
+    out, halves = split_twins(pts, parts, pts[:, :2], pts[:, 2], **kw)
+    left = pts[:, 0] < 0.066
+    assert halves == {(0, 1), (1, 0)}
+    assert len(np.unique(out[left])) == 1 and len(np.unique(out[pts[:, 0] > 0.070])) == 1
+    assert out[left][0] != out[pts[:, 0] > 0.070][0]
+    pts, parts = _two_blocks(0.08)
+    assert split_twins(pts, parts, pts[:, :2], pts[:, 2], **kw)[1] == set()
+    one = _block(0.0, 0.1, length=0.132)
+    assert split_twins(one, np.zeros(len(one), int), one[:, :2], one[:, 2], **kw)[1] == set()
