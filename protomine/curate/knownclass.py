@@ -64,6 +64,20 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    wrong prototype's members then share the first places with the example's own neighbours instead of taking them
    all; a right one's keep about half.  Measured in README "Find"; it stays off.
 
+6. Members (``[mine] find_members`` = k > 0; default 3).  A prototype is the mean of its members, and a class the
+   library never mined can fit that blurred mean about as well as b's own members do while fitting no single member
+   well (seed 1: trowels among the L-bracket prototype's first 10, tape dispensers among the tile box's).  So a taken
+   route's first ``find_members_shortlist`` objects by its key above are ranked again by the same key (the margin, with
+   the fusion of 4.) computed on the members instead of the prototypes: each of them is pose-searched against every
+   member of the library (its fused store volume, from the store the library was mined from: b's members each as the
+   one prototype, as find searches the example; the other clusters' members in one search of them all, which refines
+   the tilts of each object's 3 best pairs only, as mining's assignment does), and the margin is ``knn_margin``: d_k(i, b) / min_{c != b} d_k(i, c), d_k(i, c) the
+   mean of object i's k smallest distances to the members of cluster c (a nearest-neighbour rule, Cover & Hart 1967,
+   against mining's nearest-prototype rule).  An object is not its own neighbour (a member found by its object id is
+   left out of its own row), so a find on the mined store ranks by the other members.  The rest follow in the
+   route's order.  Without the mined store (the library's ``store_path`` not found, or not holding every member) the
+   route ranks as before.  Measured in README "Find".
+
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
 ``prototype_score`` are added: the library's calibrated score of d_ib (``Library.score``: single-view calibration for
@@ -186,6 +200,40 @@ def fused_key(margin: np.ndarray, one_shot: np.ndarray, power: float, claim: flo
     prod = m * np.where(claimed, d, 1.0) ** power
     top = float(prod[claimed].max()) if claimed.any() else 0.0
     return np.where(claimed, prod, np.where(np.isfinite(m), top + 1.0 + m, np.inf))
+
+
+def class_knn(Dm: np.ndarray, member_cluster: np.ndarray, n_clusters: int, k: int) -> np.ndarray:
+    """d_k (n, K): the mean of each object's k smallest finite distances to the members of each cluster (fewer when the
+    cluster has fewer finite ones; inf when it has none).  Dm (n, M): distances of n objects to M members;
+    member_cluster (M,) their clusters."""
+    Dm = np.asarray(Dm, np.float64)
+    mc = np.asarray(member_cluster, np.int64)
+    out = np.full((len(Dm), n_clusters), np.inf)
+    for c in range(n_clusters):
+        d = np.sort(np.where(np.isfinite(Dm[:, mc == c]), Dm[:, mc == c], np.inf), axis=1)[:, :k]
+        n_fin = np.isfinite(d).sum(axis=1)
+        tot = np.where(np.isfinite(d), d, 0.0).sum(axis=1)
+        out[:, c] = np.where(n_fin > 0, tot / np.maximum(n_fin, 1), np.inf)
+    return out
+
+
+def knn_margin(Dm: np.ndarray, member_cluster: np.ndarray, n_clusters: int, b: int, k: int) -> np.ndarray:
+    """The route's margin on the members (module docstring, 6.): d_k(i, b) / min_{c != b} d_k(i, c) (n,)."""
+    return margin_key(class_knn(Dm, member_cluster, n_clusters, k), b)
+
+
+def members_key(route_key: np.ndarray, shortlist: np.ndarray, short_key: np.ndarray, ids: np.ndarray) -> np.ndarray:
+    """The route's key (N,) with its ``shortlist`` (n,) store rows ranked by ``short_key`` (n,) (ascending, ties by id)
+    ahead of every other object, which keeps its order by ``route_key`` (inf stays inf)."""
+    base = np.asarray(route_key, np.float64)
+    shortlist = np.asarray(shortlist, np.int64)
+    fin = np.isfinite(base)
+    low = float(base[fin].min()) if fin.any() else 0.0
+    key = np.where(fin, base - low + len(shortlist) + 1.0, np.inf)
+    sk = np.asarray(short_key, np.float64)
+    order = np.lexsort((np.asarray(ids).astype(str)[shortlist], np.where(np.isfinite(sk), sk, np.finfo(np.float64).max)))
+    key[shortlist[order]] = np.arange(len(shortlist), dtype=np.float64)
+    return key
 
 
 def rank_fusion(keys: list[np.ndarray], ids: np.ndarray, ex: int, k: float) -> np.ndarray:

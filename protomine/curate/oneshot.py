@@ -101,7 +101,7 @@ from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_as
 from ..mine.symmetry import detect_symmetry
 from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
-from .knownclass import OVERRULE_AGREE_MAX, KnownRoute, known_route, rank_fusion
+from .knownclass import OVERRULE_AGREE_MAX, KnownRoute, fused_key, knn_margin, known_route, members_key, rank_fusion
 from .names import check_name, refresh_gallery
 from .rerank import rerank_pairwise, reranked_key
 
@@ -335,6 +335,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
                             float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)),
                             d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
+    k_mem = int(cfg["mine"].get("find_members", 0))
+    if k_mem > 0 and route is not None and route.taken:   # the taken route's shortlist by its members (``curate.knownclass``)
+        route = _by_members(library, store, ex, route, both_ways(D, reverse), weights, scales, grid, k_mem,
+                            int(cfg["mine"].get("find_members_shortlist", 48)),
+                            float(cfg["mine"].get("find_prototype_fuse", 0.0)))
     rerank = None
     k_rr = int(cfg["mine"].get("find_rerank", 0))
     k_soft = int(cfg["mine"].get("find_route_soft", 0))
@@ -351,6 +356,53 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     return Matches(proto, np.asarray(store.ids, dtype=object), D, score, yaw,
                    gsize / gsize[ex], fit, np.array([cl.get(str(o), -1) for o in store.ids], dtype=np.int64),
                    world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route, rerank)
+
+
+def _member_rows(library: Library, store: ObjectStore) -> tuple[ObjectStore, np.ndarray] | None:
+    """(store, rows (M,)) holding the library's members' fused volumes: the searched store when it holds every member
+    (by object id), else the library's recorded store (as recorded, or beside the library) when it does; None when
+    neither does."""
+    from ..ingest.sharded import open_store
+    ids = [str(o) for o in library.members["object"]]
+    cands = [store]
+    if library.store_path:
+        rec = Path(library.store_path)
+        cands += [open_store(c) for c in (rec, Path(library.path).parent / rec.name) if c.is_file()]
+    for st in cands:
+        index = {str(o): i for i, o in enumerate(st.ids)}
+        if ids and all(o in index for o in ids) and tuple(st.grid_shape) == tuple(store.grid_shape):
+            return st, np.array([index[o] for o in ids], np.int64)
+    return None
+
+
+def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute, d1: np.ndarray,
+                weights: tuple[float, float], scales: tuple[float, ...], grid: TiltGrid | None, k: int, n: int,
+                fuse: float) -> KnownRoute:
+    """``[mine] find_members``: the taken route with its first ``n`` objects (by its key; the example left out) ranked
+    by the margin on the library's members (``knownclass.knn_margin``, k nearest per cluster; fused with the example's
+    own distance d1 (N,) as the route is with ``fuse`` > 0), the rest after them in the route's order.  Unchanged
+    when the members' volumes cannot be found (``_member_rows``)."""
+    found = _member_rows(library, store)
+    short = _nearest(store, ex, route.key)[:n]
+    if found is None or len(short) < 2:
+        return route
+    mstore, rows = found
+    P, V = _features(mstore, rows, weights)
+    asp = _aspects(mstore, rows)
+    Xs, Ws = _features(store, short, weights)
+    mcl = np.asarray(library.members["cluster"])
+    own = np.flatnonzero(mcl == route.cluster)
+    rest = np.flatnonzero(mcl != route.cluster)
+    Dm = np.empty((len(short), len(rows)))
+    for j in own:       # b's members each as the one prototype, as find searches its example (every tilt refined)
+        Dm[:, j] = tilt_pose_distances(Xs, Ws, P[j:j + 1], V[j:j + 1], aspect=asp[j:j + 1], scales=scales, grid=grid).D[:, 0]
+    if len(rest):       # the other members in one search, as mining assigns to its prototypes (a quarter of the CPU)
+        Dm[:, rest] = tilt_pose_distances(Xs, Ws, P[rest], V[rest], aspect=asp[rest], scales=scales, grid=grid).D
+    member_ids = np.asarray(library.members["object"]).astype(str)
+    Dm[np.asarray(store.ids).astype(str)[short][:, None] == member_ids[None, :]] = np.inf   # not its own neighbour
+    km = knn_margin(Dm, mcl, library.n_clusters, route.cluster, k)
+    sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
+    return replace(route, key=members_key(route.key, short, sk, np.asarray(store.ids).astype(str)))
 
 
 def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np.ndarray, w: np.ndarray, aspect: float,
