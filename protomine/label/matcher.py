@@ -82,6 +82,7 @@ from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, grid_aspect
 from .. import rotations as rot
+from ..mine.stretchfit import refined_scales
 from ..mine.unseen import unseen_shares
 from ..mine.viewnorm import ViewNormaliser
 from . import symmetric as sym
@@ -138,6 +139,7 @@ class Matcher:
     unseen: float = 0.0
     unseen_score: bool = False
     stretch_score: bool = False
+    stretch_refine: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -228,7 +230,7 @@ class Matcher:
         n = volumes.shape[0]
         if n == 0:
             z = np.zeros((0, self.K))
-            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
+            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
                     "scored_distance": z, "view_distance": z, "unseen_share": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
@@ -279,6 +281,9 @@ class Matcher:
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
+        # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
+        stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, raw, fit_scale, upright, self.scales)
+                         if self.stretch_refine else fit_scale)
         if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
             Dm = np.fmin(Dr, Dv)
             S = self.library.score(np.where(np.isfinite(Dm), Dm, 1.0), np.arange(self.K)[None, :], single_view=True,
@@ -290,7 +295,7 @@ class Matcher:
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
                 # ``[mine] view_normalise_stretch``: and with the p-value of the stretch the pose search needed
-                pu += () if self.view_stretch is None else (ratio_pvalue(self.view_stretch, scale_stretch(fit_scale)),)
+                pu += () if self.view_stretch is None else (ratio_pvalue(self.view_stretch, scale_stretch(stretch_scale)),)
                 S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
@@ -305,7 +310,8 @@ class Matcher:
         pr = self.library.prototypes
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
-        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face, "upright": upright,
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
+                "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share,
                 "rotation": rotation, "best": best}
 
@@ -388,7 +394,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  view_cut_rest=bool(m.get("view_normalise_cut_rest", False)),
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
                  unseen_score=bool(weighted and m.get("view_normalise_unseen", False)),
-                 stretch_score=bool(weighted and m.get("view_normalise_stretch", False))))
+                 stretch_score=bool(weighted and m.get("view_normalise_stretch", False)),
+                 stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False))))
 
 
 @dataclass

@@ -469,7 +469,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
             Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
             shares.append(m["unseen_share"])
-            scales_found.append(m["fit_scale"])
+            scales_found.append(m.get("stretch_scale", m["fit_scale"]))   # ``[mine] stretch_refine``: the continuous scale
             b.advance(len(j))
     fields, attrs = view_calibrated_fields(own_d, factor, own, own_up, lib.n_clusters, fallback, alpha)
     if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
