@@ -52,7 +52,7 @@ def test_refined_scale_moves_toward_the_true_scale_between_and_beyond_the_set():
         D, yaw, sc = pm.D.astype(np.float64), pm.yaw_deg.astype(np.float64), pm.scale.astype(np.float64)
         assert np.argmin(D[0]) == 0 and D[0, 1] > 2.0 * D[0, 0]
         up = np.tile(np.array([0.0, 0.0, 1.0]), (1, 2, 1))
-        got = refined_scales(P, V, None, X, W, D, up, yaw, sc, np.ones((1, 2), bool), SCALES)
+        got = refined_scales(P, V, None, X, W, D, up, sc, np.ones((1, 2), bool), SCALES)
         before, after = abs(np.log(sc[0, 0] / s_true)), abs(np.log(got[0, 0] / s_true))
         assert after < 0.5 * before, (s_true, sc[0, 0], got[0, 0])
         assert np.sign(np.log(got[0, 0] / sc[0, 0])) == np.sign(np.log(s_true / sc[0, 0]))

@@ -150,6 +150,7 @@ class Matcher:
     view_ratios: np.ndarray | None = field(init=False)
     view_unseen: np.ndarray | None = field(init=False)
     view_stretch: np.ndarray | None = field(init=False)
+    view_stretch_kinds: tuple = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -163,6 +164,10 @@ class Matcher:
         vs = self.library.attrs.get("unknown_view_stretch")   # ``[mine] view_normalise_stretch``
         self.view_stretch = (np.asarray(vs, np.float64) if self.view_ratios is not None and self.stretch_score
                              and vs is not None else None)
+        # ``[mine] view_normalise_stretch_face``: the stretches of the held-out views decided on each face kind
+        self.view_stretch_kinds = tuple(np.asarray(self.library.attrs[a], np.float64)
+                                        if self.view_stretch is not None and a in self.library.attrs else self.view_stretch
+                                        for a in ("unknown_view_stretch_canonical", "unknown_view_stretch_other"))
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -282,7 +287,7 @@ class Matcher:
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
         # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
-        stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, raw, fit_scale, upright, self.scales)
+        stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, fit_scale, upright, self.scales)
                          if self.stretch_refine else fit_scale)
         if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
             Dm = np.fmin(Dr, Dv)
@@ -295,7 +300,9 @@ class Matcher:
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
                 # ``[mine] view_normalise_stretch``: and with the p-value of the stretch the pose search needed
-                pu += () if self.view_stretch is None else (ratio_pvalue(self.view_stretch, scale_stretch(stretch_scale)),)
+                if self.view_stretch is not None:   # (``view_normalise_stretch_face``: among the decided face kind's)
+                    x = scale_stretch(stretch_scale)
+                    pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
                 S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)

@@ -9,8 +9,8 @@ below and above the found scale, h = ln(largest / smallest scale) / (number of s
 the parabola through the three points in ln sigma (three-point quadratic peak interpolation, as for sub-pixel peaks:
 delta = h (d_- - d_+) / (2 (d_- - 2 d_0 + d_+)), kept within one step, |delta| <= h; a curve without a minimum
 (d_- - 2 d_0 + d_+ <= 0) moves a whole step toward the lower side).  The three distances are the plain weighted
-distance of the view aligned into the prototype (or its copy resting on the matched face) at the found yaw
-(``viewdistance.pair_distances``).  Only each view's nearest prototypes are refined (within ``WITHIN`` x its least
+pose search's own distance (``posesearch.pose_distances``: the prototype, or its copy resting on the matched face,
+scaled; the least over yaw) at the three scales.  Only each view's nearest prototypes are refined (within ``WITHIN`` x its least
 decision distance, at most ``TOP``); the others keep the search's scale.  The pose, the decision and the scale
 reported in the record do not change.
 """
@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .viewdistance import pair_distances
+from .posesearch import pose_distances
 
 __all__ = ["scale_step", "vertex_offset", "refined_scales", "WITHIN", "TOP"]
 
@@ -42,13 +42,24 @@ def vertex_offset(dm, d0, dp, h: float) -> np.ndarray:
     return np.clip(delta, -h, h)
 
 
+def _scale_curves(X, W, P1, V1, s0: np.ndarray, h: float) -> np.ndarray:
+    """(n, 3) the search's distance (least over the yaw shifts) of views X, W against one prototype (copy) P1 (1, C,
+    R, A, H), V1 (1, R, A, H) at s0 e^-h, s0, s0 e^h (n,)."""
+    want = s0[:, None] * np.exp(np.array([-h, 0.0, h]))[None, :]
+    ext = np.unique(np.round(want, 9))
+    pm = pose_distances(X, W, P1, V1, scales=tuple(float(x) for x in ext), return_all=True)
+    curve = np.asarray(pm.all_D, np.float64)[:, 0].min(axis=2)         # (n, S): the least over yaw at each scale
+    return curve[np.arange(len(s0))[:, None], np.searchsorted(ext, np.round(want, 9))]
+
+
 def refined_scales(P: np.ndarray, V: np.ndarray, bank, X: np.ndarray, W: np.ndarray, D: np.ndarray, up: np.ndarray,
-                   yaw_deg: np.ndarray, fit_scale: np.ndarray, upright: np.ndarray, scales) -> np.ndarray:
+                   fit_scale: np.ndarray, upright: np.ndarray, scales) -> np.ndarray:
     """(n, K) scales: the search's ``fit_scale`` (n, K), refined (module docstring) for each view's nearest
     prototypes by the decision distances D (n, K).  P (K, C, R, A, H), V (K, R, A, H) the prototypes, ``bank`` the
     search's tilt bank (its ``copies_at`` gives the copies resting on other faces; None or a bank without it: every
-    match is on the canonical face), X (n, C, R, A, H), W (n, R, A, H) the views, up (n, K, 3), yaw_deg (n, K) (in the
-    matched copy's frame) and upright (n, K) the search's poses."""
+    match is on the canonical face), X (n, C, R, A, H), W (n, R, A, H) the views, up (n, K, 3) and upright (n, K) the
+    search's poses.  The three distances are the pose search's own (``posesearch.pose_distances``, the least over yaw)
+    at the three scales, against the prototype or its copy resting on the matched face."""
     out = np.array(fit_scale, np.float64, copy=True)
     h = scale_step(scales)
     n, K = D.shape
@@ -61,19 +72,22 @@ def refined_scales(P: np.ndarray, V: np.ndarray, bank, X: np.ndarray, W: np.ndar
     tilted_bank = hasattr(bank, "copies_at")
     for k in np.flatnonzero(pick.any(axis=0)):
         rows = np.flatnonzero(pick[:, k])
-        Pk = np.broadcast_to(P[k], (len(rows),) + P.shape[1:]).copy()
-        Vk = np.broadcast_to(V[k], (len(rows),) + V.shape[1:]).copy()
-        other = ~np.asarray(upright[rows, k], bool)
-        if tilted_bank and other.any():   # matches on another face: against the copy resting on it
+        other = ~np.asarray(upright[rows, k], bool) if tilted_bank else np.zeros(len(rows), bool)
+        d = np.full((len(rows), 3), np.nan)
+        if (~other).any():
+            r = rows[~other]
+            d[~other] = _scale_curves(X[r], W[r], P[k:k + 1], V[k:k + 1], out[r, k], h)
+        if other.any():   # matches on another face: against the copy resting on it, one copy per direction
             ro = rows[other]
             dirs, inv = np.unique(np.round(np.asarray(up[ro, k], np.float64), 9), axis=0, return_inverse=True)
             Pc, Vc = bank.copies_at(int(k), dirs)
             inv = np.asarray(inv).reshape(-1)
-            Pk[other], Vk[other] = Pc[inv], Vc[inv]
-        s0 = out[rows, k]
-        d = [pair_distances(X[rows], W[rows], Pk, Vk, yaw_deg[rows, k], s0 * np.exp(e), tolerant=False)
-             for e in (-h, 0.0, h)]
-        ok = np.isfinite(d[0]) & np.isfinite(d[1]) & np.isfinite(d[2])
-        delta = np.where(ok, vertex_offset(*(np.where(ok, x, 0.0) for x in d), h), 0.0)
-        out[rows, k] = s0 * np.exp(delta)
+            idx = np.flatnonzero(other)
+            for m in range(len(dirs)):
+                sel = inv == m
+                r = ro[sel]
+                d[idx[sel]] = _scale_curves(X[r], W[r], Pc[m:m + 1], Vc[m:m + 1], out[r, k], h)
+        ok = np.isfinite(d).all(axis=1)
+        delta = np.where(ok, vertex_offset(*(np.where(ok, d[:, c], 0.0) for c in range(3)), h), 0.0)
+        out[rows, k] = out[rows, k] * np.exp(delta)
     return out
