@@ -80,3 +80,41 @@ def test_a_thin_face_kind_keeps_the_pooled_p_values():
     px = _loo(x)
     px[kind] = _loo(x[kind])
     assert np.isclose(got["unknown_view_ratio_cut"], conformal_cut(_fisher(s, _loo(r), px), 0.05), rtol=1e-9)
+
+
+def test_matcher_takes_each_face_kinds_stretches(tiny_world, tmp_path):
+    """The matcher joins the stretch's p-value among the stretches of the match's own face kind: the two-way score
+    (the library without stretches, as with view_normalise_stretch off) joined by Fisher's combination with
+    (1 + #{x_i >= x}) / (m + 1) among the canonical or the other kind's stretches by the match's face kind, written
+    out here; the kinds' arrays are set by hand (two different ones), so each must be read for its own matches."""
+    from protomine.config import load_config
+    from protomine.ingest.sharded import open_store
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.openset import fisher_combine_many
+    from protomine.mine.pipeline import mine_store
+    cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True,
+                                                      "view_normalise_unseen": False, "view_normalise_stretch": True,
+                                                      "view_normalise_stretch_face": True, "tilt_nsides": [1]}})
+    lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    st = open_store(tiny_world["store"])
+    views, cams = st.read_single_views(np.arange(len(st.single_object))), np.asarray(st.single_camera)
+    canon, other = np.array([0.0, 0.0, 0.0, 0.07, 0.14]), np.array([0.07, 0.14, 0.14, 0.14])
+    attrs = {k: v for k, v in lib.attrs.items() if not k.startswith("unknown_view_stretch")}
+    both = Library(lib.prototypes, lib.members, {**attrs, "unknown_view_stretch": np.sort(np.r_[canon, other]),
+                                                 "unknown_view_stretch_canonical": canon,
+                                                 "unknown_view_stretch_other": other}, lib.path)
+    got = make_matcher(both, cfg).match(views, cams)
+    two = make_matcher(Library(lib.prototypes, lib.members, attrs, lib.path), cfg).match(views, cams)["score"]
+    xs = np.empty_like(two)   # fisher_combine(s, p) = x (1 - ln x): recover x = s p by bisection
+    for idx, v in np.ndenumerate(two):
+        lo, hi = 0.0, 1.0
+        for _ in range(200):
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if mid * (1 - np.log(mid)) < v else (lo, mid)
+        xs[idx] = 0.5 * (lo + hi) if v > 0 else 0.0
+    x = np.abs(np.log(np.asarray(got["fit_scale"], np.float64)))
+    pc = np.array([(1 + np.sum(canon >= v - 1e-12)) / (len(canon) + 1) for v in x.ravel()]).reshape(x.shape)
+    po = np.array([(1 + np.sum(other >= v - 1e-12)) / (len(other) + 1) for v in x.ravel()]).reshape(x.shape)
+    up = np.asarray(got["upright"], bool)
+    assert up.any() and (~up).any()
+    assert np.allclose(got["score"], fisher_combine_many(xs, np.ones_like(xs), np.where(up, pc, po)), atol=1e-6)
