@@ -48,7 +48,10 @@ score is joined with the conformal p-value of the best/second-best decision-dist
 ``unknown_view_unseen``) the conformal p-value of the view's unseen share (``mine.unseen``) joins them (Fisher's
 combination of three, ``openset.fisher_combine_many``), and ``match`` returns ``unseen_share`` (NaN where not
 computed); with ``[mine] view_normalise_stretch`` (attribute ``unknown_view_stretch``) the conformal p-value of the
-stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too.
+stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too (with
+``[mine] view_normalise_stretch_face``, attributes ``unknown_view_stretch_canonical`` / ``_other``: among the held-out
+views decided on the same face kind as the match; with ``[mine] stretch_refine`` at the continuous scale of
+``mine.stretchfit``, returned as ``stretch_scale``).
 ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
 ``view_distance`` (NaN where none) for that calibration.
 
