@@ -48,7 +48,10 @@ score is joined with the conformal p-value of the best/second-best decision-dist
 ``unknown_view_unseen``) the conformal p-value of the view's unseen share (``mine.unseen``) joins them (Fisher's
 combination of three, ``openset.fisher_combine_many``), and ``match`` returns ``unseen_share`` (NaN where not
 computed); with ``[mine] view_normalise_stretch`` (attribute ``unknown_view_stretch``) the conformal p-value of the
-stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too.
+stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too (with
+``[mine] view_normalise_stretch_face``, attributes ``unknown_view_stretch_canonical`` / ``_other``: among the held-out
+views decided on the same face kind as the match; with ``[mine] stretch_refine`` at the continuous scale of
+``mine.stretchfit``, returned as ``stretch_scale``).
 ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
 ``view_distance`` (NaN where none) for that calibration.
 
@@ -82,6 +85,7 @@ from ..progress import Bar, Recorder, bar, detail, replay
 from ..records import pixels_to_rle
 from ..mine.tilts import TiltBank, TiltGrid, grid_aspect
 from .. import rotations as rot
+from ..mine.stretchfit import refined_scales
 from ..mine.unseen import unseen_shares
 from ..mine.viewnorm import ViewNormaliser
 from . import symmetric as sym
@@ -138,6 +142,7 @@ class Matcher:
     unseen: float = 0.0
     unseen_score: bool = False
     stretch_score: bool = False
+    stretch_refine: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -148,6 +153,7 @@ class Matcher:
     view_ratios: np.ndarray | None = field(init=False)
     view_unseen: np.ndarray | None = field(init=False)
     view_stretch: np.ndarray | None = field(init=False)
+    view_stretch_kinds: tuple = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -161,6 +167,10 @@ class Matcher:
         vs = self.library.attrs.get("unknown_view_stretch")   # ``[mine] view_normalise_stretch``
         self.view_stretch = (np.asarray(vs, np.float64) if self.view_ratios is not None and self.stretch_score
                              and vs is not None else None)
+        # ``[mine] view_normalise_stretch_face``: the stretches of the held-out views decided on each face kind
+        self.view_stretch_kinds = tuple(np.asarray(self.library.attrs[a], np.float64)
+                                        if self.view_stretch is not None and a in self.library.attrs else self.view_stretch
+                                        for a in ("unknown_view_stretch_canonical", "unknown_view_stretch_other"))
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -228,7 +238,7 @@ class Matcher:
         n = volumes.shape[0]
         if n == 0:
             z = np.zeros((0, self.K))
-            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "face": z.astype(int),
+            return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
                     "scored_distance": z, "view_distance": z, "unseen_share": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
@@ -279,6 +289,9 @@ class Matcher:
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
+        # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
+        stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, fit_scale, upright, self.scales)
+                         if self.stretch_refine else fit_scale)
         if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
             Dm = np.fmin(Dr, Dv)
             S = self.library.score(np.where(np.isfinite(Dm), Dm, 1.0), np.arange(self.K)[None, :], single_view=True,
@@ -290,7 +303,9 @@ class Matcher:
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
                 # ``[mine] view_normalise_stretch``: and with the p-value of the stretch the pose search needed
-                pu += () if self.view_stretch is None else (ratio_pvalue(self.view_stretch, scale_stretch(fit_scale)),)
+                if self.view_stretch is not None:   # (``view_normalise_stretch_face``: among the decided face kind's)
+                    x = scale_stretch(stretch_scale)
+                    pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
                 S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
@@ -305,7 +320,8 @@ class Matcher:
         pr = self.library.prototypes
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
-        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "face": face, "upright": upright,
+        return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
+                "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share,
                 "rotation": rotation, "best": best}
 
@@ -388,7 +404,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  view_cut_rest=bool(m.get("view_normalise_cut_rest", False)),
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
                  unseen_score=bool(weighted and m.get("view_normalise_unseen", False)),
-                 stretch_score=bool(weighted and m.get("view_normalise_stretch", False))))
+                 stretch_score=bool(weighted and m.get("view_normalise_stretch", False)),
+                 stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False))))
 
 
 @dataclass

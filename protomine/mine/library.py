@@ -39,7 +39,9 @@ written before 3-D poses, is refused with a one-line error that says to re-mine)
                  best/second distance ratios of the held-out views, and unknown_view_ratio_cut; with ``[mine]
                  view_normalise_unseen`` also unknown_view_unseen, the sorted unseen shares of ``mine.unseen``; with
                  ``[mine] view_normalise_stretch`` unknown_view_stretch, the sorted stretches |ln fit_scale| of
-                 ``openset.scale_stretch``); a
+                 ``openset.scale_stretch``, and with ``[mine] view_normalise_stretch_face``
+                 unknown_view_stretch_canonical / unknown_view_stretch_other, those of the views decided on each
+                 face kind); a
                  library without them scores as before
     members/     object (N,) str, cluster, yaw_deg, scale, fit_scale, distance, score,
                  second_cluster, second_distance, face (N,) resting face, rotation (N, 4) unit quaternion

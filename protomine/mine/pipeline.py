@@ -442,7 +442,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     has, cams = got
     rows, own, own_d, own_up = rows[has], own[has], own_d[has], own_up[has]
     factor = np.ones(len(rows))
-    decide, shares, scales_found = [], [], []
+    decide, shares, scales_found, kinds = [], [], [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
     views = [store.read_single_views(rows[sl]) for sl in slices]
     # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
@@ -469,7 +469,8 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
             Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
             shares.append(m["unseen_share"])
-            scales_found.append(m["fit_scale"])
+            scales_found.append(m.get("stretch_scale", m["fit_scale"]))   # ``[mine] stretch_refine``: the continuous scale
+            kinds.append(m["upright"])
             b.advance(len(j))
     fields, attrs = view_calibrated_fields(own_d, factor, own, own_up, lib.n_clusters, fallback, alpha)
     if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
@@ -477,7 +478,9 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
         stretch = bool(lib.config["mine"].get("view_normalise_stretch", False))
         attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha,
                                             unseen=np.concatenate(shares) if unseen else None,
-                                            fit_scale=np.concatenate(scales_found) if stretch else None))
+                                            fit_scale=np.concatenate(scales_found) if stretch else None,
+                                            upright=np.concatenate(kinds) if stretch and bool(
+                                                lib.config["mine"].get("view_normalise_stretch_face", False)) else None))
     return fields, attrs
 
 
@@ -488,8 +491,13 @@ def face_kind_scores(d: np.ndarray, own: np.ndarray, own_up: np.ndarray, mu: np.
     return match_score(d, np.where(own_up, mu[own], t_mu[own]), np.where(own_up, sigma[own], t_sigma[own]))
 
 
+MIN_FACE_STRETCH_VIEWS = 19   # ``[mine] view_normalise_stretch_face``: a face kind with fewer held-out views keeps the pooled
+                              # p-values (with m views a p-value is at least 1 / (m + 1): 19 can reach 0.05)
+
+
 def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
-                           alpha: float, unseen: np.ndarray | None = None, fit_scale: np.ndarray | None = None) -> dict:
+                           alpha: float, unseen: np.ndarray | None = None, fit_scale: np.ndarray | None = None,
+                           upright: np.ndarray | None = None) -> dict:
     """``[mine] view_normalise_ratio``: the held-out views' ratios of their best to their second-best decision distance
     (``openset.best_second_ratio`` of D (Q, K), at the nearest prototype) and the split-conformal cut on the Fisher
     combination (``openset.fisher_combine``) of each view's calibrated score (of d (Q,) at its own prototype) and its
@@ -502,7 +510,12 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     ``fit_scale`` (Q, K) (``[mine] view_normalise_stretch``; None: off): each view's scale of the pose search at every
     prototype, as the matcher gives it; the stretch |ln scale| at the nearest prototype (``openset.scale_stretch``) joins
     the combination by its leave-one-out p-value among the other views' (larger stretches less conforming), and the
-    sorted stretches are returned too ("unknown_view_stretch")."""
+    sorted stretches are returned too ("unknown_view_stretch").
+    ``upright`` (Q, K) (``[mine] view_normalise_stretch_face``, with ``fit_scale``; None: off): each view's face kind at
+    every prototype (the canonical face or another), as the matcher gives it; the stretch's p-value is then taken among
+    the views decided on the same face kind (a Mondrian split, Vovk, Gammerman & Shafer 2005), and each kind's sorted
+    stretches are returned too ("unknown_view_stretch_canonical", "unknown_view_stretch_other"), a kind with fewer than
+    ``MIN_FACE_STRETCH_VIEWS`` views keeping the pooled p-values (and no attribute)."""
     from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, scale_stretch
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
@@ -520,7 +533,14 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     if fit_scale is not None:
         x = scale_stretch(np.asarray(fit_scale, np.float64)[ok][np.arange(len(b)), b])
         out["unknown_view_stretch"] = np.sort(x)
-        pu = pu + (loo_ratio_pvalues(x),)
+        px = loo_ratio_pvalues(x)
+        if upright is not None:   # ``[mine] view_normalise_stretch_face``: among the views decided on the same face kind
+            canon = np.asarray(upright, bool)[ok][np.arange(len(b)), b]
+            for kind, sel in (("canonical", canon), ("other", ~canon)):
+                if sel.sum() >= MIN_FACE_STRETCH_VIEWS:   # fewer: that kind keeps the pooled p-values
+                    out[f"unknown_view_stretch_{kind}"] = np.sort(x[sel])
+                    px[sel] = loo_ratio_pvalues(x[sel])
+        pu = pu + (px,)
     out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
     return out
 
