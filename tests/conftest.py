@@ -132,3 +132,16 @@ def demo_small(tmp_path_factory):
     ingest_captures(mining, out / "objects.h5", cfg, seed=0)
     lib, info = mine_store(out / "objects.h5", out / "library.h5", cfg, seed=0)
     return {"out": out, "doc": doc, "cfg": cfg, "mining": mining, "lib": lib, "info": info}
+
+
+def score_without_stretch(two: np.ndarray) -> np.ndarray:
+    """x from the matcher's score s = x (1 - ln x) (Fisher's combination of x with one p-value of 1, the score
+    without its stretch factor), by bisection on [0, 1], element-wise (0 where s is 0)."""
+    xs = np.empty_like(two)
+    for idx, v in np.ndenumerate(two):
+        lo, hi = 0.0, 1.0
+        for _ in range(200):
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if mid * (1 - np.log(mid)) < v else (lo, mid)
+        xs[idx] = 0.5 * (lo + hi) if v > 0 else 0.0
+    return xs

@@ -6,6 +6,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
+from conftest import score_without_stretch
 from protomine.mine.library import Library
 from protomine.mine.openset import best_second_ratio, conformal_cut
 from protomine.mine.pipeline import MIN_FACE_STRETCH_VIEWS, view_calibrated_fields, view_ratio_calibration
@@ -105,13 +106,7 @@ def test_matcher_takes_each_face_kinds_stretches(tiny_world, tmp_path):
                                                  "unknown_view_stretch_other": other}, lib.path)
     got = make_matcher(both, cfg).match(views, cams)
     two = make_matcher(Library(lib.prototypes, lib.members, attrs, lib.path), cfg).match(views, cams)["score"]
-    xs = np.empty_like(two)   # fisher_combine(s, p) = x (1 - ln x): recover x = s p by bisection
-    for idx, v in np.ndenumerate(two):
-        lo, hi = 0.0, 1.0
-        for _ in range(200):
-            mid = 0.5 * (lo + hi)
-            lo, hi = (mid, hi) if mid * (1 - np.log(mid)) < v else (lo, mid)
-        xs[idx] = 0.5 * (lo + hi) if v > 0 else 0.0
+    xs = score_without_stretch(two)   # fisher_combine(s, p) = x (1 - ln x): recover x = s p by bisection
     x = np.abs(np.log(np.asarray(got["fit_scale"], np.float64)))
     pc = np.array([(1 + np.sum(canon >= v - 1e-12)) / (len(canon) + 1) for v in x.ravel()]).reshape(x.shape)
     po = np.array([(1 + np.sum(other >= v - 1e-12)) / (len(other) + 1) for v in x.ravel()]).reshape(x.shape)

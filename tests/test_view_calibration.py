@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from conftest import score_without_stretch
 from protomine.label.matcher import view_calibration
 from protomine.mine.library import VIEW_CALIBRATION_FIELDS, Library
 from protomine.mine.openset import fisher_combine
@@ -328,13 +329,7 @@ def test_mining_with_the_stretch_keeps_its_calibration_and_labels_with_it(tiny_w
                                                              if k != "unknown_view_stretch"}, lib.path), cfg)
     assert off.view_stretch is None
     two = off.match(views, cams)["score"]
-    xs = np.empty_like(two)   # fisher_combine(s, p) = x (1 - ln x): recover x = s p by bisection
-    for idx, v in np.ndenumerate(two):
-        lo, hi = 0.0, 1.0
-        for _ in range(200):
-            mid = 0.5 * (lo + hi)
-            lo, hi = (mid, hi) if mid * (1 - np.log(mid)) < v else (lo, mid)
-        xs[idx] = 0.5 * (lo + hi) if v > 0 else 0.0
+    xs = score_without_stretch(two)   # fisher_combine(s, p) = x (1 - ln x): recover x = s p by bisection
     q = ratio_pvalue(x, np.abs(np.log(np.asarray(got["fit_scale"], np.float64))))
     assert np.allclose(got["score"], fisher_combine_many(xs, np.ones_like(xs), q), atol=1e-6)
     own = np.asarray(lib.members["cluster"])[np.asarray(st.single_object)]
