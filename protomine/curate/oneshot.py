@@ -399,10 +399,11 @@ def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute
     if len(rest):       # the other members in one search, as mining assigns to its prototypes (a quarter of the CPU)
         Dm[:, rest] = tilt_pose_distances(Xs, Ws, P[rest], V[rest], aspect=asp[rest], scales=scales, grid=grid).D
     member_ids = np.asarray(library.members["object"]).astype(str)
-    Dm[np.asarray(store.ids).astype(str)[short][:, None] == member_ids[None, :]] = np.inf   # not its own neighbour
+    ids = np.asarray(store.ids).astype(str)
+    Dm[ids[short][:, None] == member_ids[None, :]] = np.inf   # not its own neighbour
     km = knn_margin(Dm, mcl, library.n_clusters, route.cluster, k)
     sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
-    return replace(route, key=members_key(route.key, short, sk, np.asarray(store.ids).astype(str)))
+    return replace(route, key=members_key(route.key, short, sk, ids))
 
 
 def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np.ndarray, w: np.ndarray, aspect: float,

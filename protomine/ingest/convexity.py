@@ -546,6 +546,23 @@ TWIN_HEIGHT_RATIO = 0.95  # ... and heights (99th percentile over the plane, low
                           # are twins: two copies of one item (measured in README "Touching objects of one colour")
 
 
+def _stepped(stepped: int, flat: int, share: float) -> bool:
+    """Whether a seam's pixel pairs (``seam_steps``) are enough to judge it (SEAM_STEP_PAIRS) and at least ``share``
+    of them stepped."""
+    return stepped + flat >= SEAM_STEP_PAIRS and stepped >= share * (stepped + flat)
+
+
+def _alike(x: float, y: float, ratio: float) -> bool:
+    """Whether the smaller of two sizes is at least ``ratio`` x the larger (twins: voxel counts, heights)."""
+    return min(x, y) >= ratio * max(x, y)
+
+
+def occlusion_tolerance(z: np.ndarray) -> np.ndarray:
+    """The depth step (metres) between nearby readings at depth z beyond which they straddle an occluding edge:
+    VIEW_JUMP_M, or VIEW_JUMP_REL x z when larger."""
+    return np.maximum(VIEW_JUMP_M, VIEW_JUMP_REL * z)
+
+
 def seam_steps(points: np.ndarray, lab: np.ndarray, radius: float, readings) -> dict:
     """Per pair of groups (a, b), a < b, that meet in 3-D, the pixel pairs across their seam in the frames:
     {(a, b): (stepped, flat)}.
@@ -599,7 +616,7 @@ def seam_steps(points: np.ndarray, lab: np.ndarray, radius: float, readings) -> 
                 if not seam.any():
                     continue
                 za, zb = Z[:h - dy, :w - dx][m][seam], Z[dy:, dx:][m][seam]
-                jump = np.abs(za - zb) > np.maximum(VIEW_JUMP_M, VIEW_JUMP_REL * np.minimum(za, zb))
+                jump = np.abs(za - zb) > occlusion_tolerance(np.minimum(za, zb))
                 keys.append(np.minimum(la, lb)[seam] * G + np.maximum(la, lb)[seam])
                 jumps.append(jump)
     if not keys:
@@ -623,14 +640,14 @@ def twins_apart(points: np.ndarray, heights: np.ndarray, lab: np.ndarray, radius
     size = {int(l): int(n) for l, n in zip(*np.unique(lab[lab >= 0], return_counts=True))}
     top = {}
     for (a, b), (st, fl) in steps.items():
-        if st + fl < SEAM_STEP_PAIRS or st < step_share * (st + fl):
+        if not _stepped(st, fl, step_share):
             continue
-        if min(size[a], size[b]) < TWIN_VOXELS or min(size[a], size[b]) < TWIN_VOXEL_RATIO * max(size[a], size[b]):
+        if min(size[a], size[b]) < TWIN_VOXELS or not _alike(size[a], size[b], TWIN_VOXEL_RATIO):
             continue
         for g in (a, b):
             if g not in top:
                 top[g] = float(np.percentile(heights[lab == g], 99))
-        if min(top[a], top[b]) >= TWIN_HEIGHT_RATIO * max(top[a], top[b]):
+        if _alike(top[a], top[b], TWIN_HEIGHT_RATIO):
             out |= {(a, b), (b, a)}
     return out
 
@@ -665,7 +682,6 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
     out, apart = parts.copy(), set()
     ids, size = np.unique(parts[parts >= 0], return_counts=True)
     nxt = int(parts.max()) + 1 if len(ids) else 0
-    lo_share = NECK_SIDE_SHARE
     queue = [int(p) for p in ids[size >= 2 * TWIN_VOXELS]]
     while queue:                                      # a row of three: one cut, then the pair left
         p = queue.pop(0)
@@ -698,7 +714,7 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
         vol = np.cumsum(deg[order])
         k = np.arange(n)
         side = np.minimum(vol[np.maximum(k - 1, 0)], vol[-1] - vol[np.maximum(k - 1, 0)])
-        ok = (k >= lo_share * n) & (k <= (1 - lo_share) * n) & (side > 0)
+        ok = (k >= NECK_SIDE_SHARE * n) & (k <= (1 - NECK_SIDE_SHARE) * n) & (side > 0)
         if not ok.any():
             continue
         cond = np.where(ok, cut / np.maximum(side, 1.0), np.inf)
@@ -707,7 +723,7 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
             continue
         a, b = v[order[:kb]], v[order[kb:]]
         ha, hb = np.percentile(heights[a], 99), np.percentile(heights[b], 99)
-        if min(ha, hb) < TWIN_HEIGHT_RATIO * max(ha, hb) or min(len(a), len(b)) < TWIN_VOXELS:
+        if not _alike(ha, hb, TWIN_HEIGHT_RATIO) or min(len(a), len(b)) < TWIN_VOXELS:
             continue
         if not all(stands_alone(xy[s], heights[s], support_band=support_band, inset=inset, cell=cell) for s in (a, b)):
             continue
@@ -715,7 +731,7 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
             two = np.full(len(parts), -1)
             two[a], two[b] = 0, 1
             st, fl = seam_steps(points, two, radius, readings).get((0, 1), (0, 0))
-            if st + fl < SEAM_STEP_PAIRS or st < step_share * (st + fl):
+            if not _stepped(st, fl, step_share):
                 continue
         out[b] = nxt
         apart |= {(int(p), nxt), (nxt, int(p))}
@@ -861,7 +877,7 @@ def frame_segments(depth: np.ndarray, region: np.ndarray, K: np.ndarray, concave
     v, u = np.mgrid[0:h, 0:w]
     P = np.stack([(u - K[0, 2]) * z / K[0, 0], (v - K[1, 2]) * z / K[1, 1], z], -1)      # (H, W, 3)
     ok = z > 0
-    tol = np.maximum(VIEW_JUMP_M, VIEW_JUMP_REL * z)
+    tol = occlusion_tolerance(z)
 
     def shift(a, dy, dx, fill):
         out = np.full_like(a, fill)
