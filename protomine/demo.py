@@ -147,8 +147,9 @@ def _label_and_oneshot(lib, library: Path, singles: list[Path], scenes: Path, ou
         before()
     typer.echo(f"label: {ev['n_known']} known and {ev['n_unknown']} never-mined objects in {len(singles)} single views; "
                f"known-class accuracy {ev['accuracy']:.3f} (deciding by score instead: {ev['accuracy_by_score']:.3f}), "
-               f"median yaw error {ev['median_yaw_error_deg_oriented']:.1f} deg, "
-               f"rotation error {ev['median_rotation_error_deg']:.1f} deg; "
+               f"yaw error about up median {ev['median_yaw_error_deg']:.1f}, p90 {ev['p90_yaw_error_deg']:.1f} deg "
+               f"(one yaw offset per cluster: median {ev['median_yaw_error_deg_oriented']:.1f} deg), "
+               f"rotation error median {ev['median_rotation_error_deg']:.1f}, p90 {ev['p90_rotation_error_deg']:.1f} deg; "
                f"unknown AUROC {ev['auroc']:.3f}, flagged: {ev['unknown_flagged']:.0%} of unknown, "
                f"{ev['known_flagged']:.0%} of known; {stats.get('objects_per_second', float('nan')):.0f} objects/s "
                f"-> {out / 'labels.jsonl'}, overlays in {out / 'overlays'}")
@@ -308,7 +309,9 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
         base = baseline.result()
         typer.echo(f"mine: K={lib.n_clusters} (true classes {n_classes}); purity {ev['purity']:.3f}, NMI {ev['nmi']:.3f}; "
                    f"yaw error median {ev['yaw_error_median_deg']:.1f} deg, p90 {ev['yaw_error_p90_deg']:.1f} deg "
-                   f"(per-cluster offset, modulo symmetry); rotation error median {ev['rotation_error_median_deg']:.1f} deg, "
+                   f"({ev['yaw_error_kind']}, modulo symmetry; one yaw offset per cluster: median "
+                   f"{ev['yaw_error_median_cluster_offset_deg']:.1f}, p90 {ev['yaw_error_p90_cluster_offset_deg']:.1f} deg); "
+                   f"rotation error median {ev['rotation_error_median_deg']:.1f} deg, "
                    f"p90 {ev['rotation_error_p90_deg']:.1f} deg; symmetry right for {ev['symmetry_correct']}/{ev['symmetry_total']} clusters")
         typer.echo(f"      pose-unaware baseline (scikit-learn KMeans on flattened volumes, same K): "
                    f"purity {base['purity']:.3f}, NMI {base['nmi']:.3f}")

@@ -218,3 +218,69 @@ def test_rotation_error_modulo_a_continuous_symmetry_is_exact():
     np.testing.assert_allclose(rotation_error_deg(tipped.as_matrix(), R_true.as_matrix(), I, None), 7.0, atol=1e-5)
     O = rotation_offset(turned.as_matrix(), R_true.as_matrix(), None)
     np.testing.assert_allclose(rotation_error_deg(turned.as_matrix(), R_true.as_matrix(), O, None), 0.0, atol=1e-5)
+
+
+def test_twist_about_an_axis_is_the_nearest_turn_about_it():
+    """Reference: scipy's Rotation.  The twist of D about a (swing-twist decomposition D = S T) is the turn T about a
+    that leaves the least swing S = D T^-1: a dense sweep of 0.01-degree turns, magnitude of D T^-1 minimised."""
+    from scipy.spatial.transform import Rotation
+    from protomine.audit.metrics import twist_deg
+    rng = np.random.default_rng(11)
+    D = Rotation.random(12, random_state=rng)
+    a = rng.normal(size=(12, 3))
+    a /= np.linalg.norm(a, axis=1, keepdims=True)
+    sweep = np.arange(-180.0, 180.0, 0.01)
+    want = np.array([sweep[np.argmin((d * Rotation.from_rotvec(-np.deg2rad(sweep)[:, None] * ax)).magnitude())]
+                     for d, ax in zip(D, a)])
+    got = twist_deg(D.as_matrix(), a)
+    np.testing.assert_allclose(np.abs(np.mod(got - want + 180.0, 360.0) - 180.0), 0.0, atol=0.02)
+
+
+def test_yaw_about_up_is_defined_on_every_resting_face():
+    """Reference: scipy's Rotation builds the poses.  Members of one class rest on two faces in captures with random
+    world frames; each prediction is the true pose with a known turn psi about up and a known tip beta about a
+    horizontal axis, and one unknown frame offset O.  The yaw error about up is |psi| and the rotation error the
+    magnitude of tip * turn, whatever the face; the older figure (one circular offset of yaw_deg per cluster, yaw_deg
+    read about up from the resting face's tilted frame) counts the two faces' different offsets as errors."""
+    from scipy.spatial.transform import Rotation
+    from protomine.audit.metrics import rotation_error_deg, rotation_offset, yaw_about_up_error_deg
+    from protomine.rotations import matrix_to_tilt_yaw
+    rng = np.random.default_rng(3)
+    n = 16
+    faces = [Rotation.identity(), Rotation.from_euler("x", 90.0, degrees=True)]   # upright, lying on its side
+    f = np.arange(n) % 2
+    W = Rotation.random(n, random_state=rng)                                       # table frame (z up) -> world
+    yaw_true = rng.uniform(0.0, 360.0, n)
+    R_true = [W[i] * Rotation.from_euler("z", yaw_true[i], degrees=True) * faces[f[i]] for i in range(n)]
+    up = W.apply([0.0, 0.0, 1.0])
+    O = Rotation.random(random_state=rng)                                          # prototype frame <- class frame
+    psi = rng.uniform(-8.0, 8.0, n)
+    psi[:2] = [0.0, 0.0]                                                           # two exact members
+    beta = rng.uniform(-5.0, 5.0, n)
+    beta[:2] = [0.0, 0.0]
+    h = np.cross(up, rng.normal(size=(n, 3)))
+    h /= np.linalg.norm(h, axis=1, keepdims=True)
+    delta = [Rotation.from_rotvec(np.deg2rad(beta[i]) * h[i]) * Rotation.from_rotvec(np.deg2rad(psi[i]) * up[i])
+             for i in range(n)]
+    R_pred = np.array([(delta[i].inv() * R_true[i] * O.inv()).as_matrix() for i in range(n)])
+    Rt = np.array([r.as_matrix() for r in R_true])
+    O_hat = rotation_offset(R_pred, Rt, np.eye(3)[None])
+    np.testing.assert_allclose(O_hat, O.as_matrix(), atol=0.3)                     # the medoid: an exact member's
+    yaw = yaw_about_up_error_deg(R_pred, Rt, O.as_matrix(), np.eye(3)[None], up)
+    np.testing.assert_allclose(yaw, np.abs(psi), atol=1e-6)
+    rotn = rotation_error_deg(R_pred, Rt, O.as_matrix(), np.eye(3)[None])
+    np.testing.assert_allclose(rotn, np.rad2deg([d.magnitude() for d in delta]), atol=1e-6)
+    # the older figure on the turns alone: yaw_deg about up in each capture's table frame (Rz(yaw) after the
+    # face's shortest-arc tilt), one circular offset per cluster
+    turned = [Rotation.from_rotvec(-np.deg2rad(psi[i]) * up[i]) * R_true[i] * O.inv() for i in range(n)]
+    _, yaw_pred = matrix_to_tilt_yaw(np.array([(W[i].inv() * turned[i]).as_matrix() for i in range(n)]))
+    old = yaw_error_deg(yaw_true, yaw_pred, yaw_offset_deg(yaw_true, yaw_pred), 360.0)
+    for face in (0, 1):   # right within one face (its own offset: errors within the turns' spread) ...
+        sel = f == face
+        e = yaw_error_deg(yaw_true[sel], yaw_pred[sel], yaw_offset_deg(yaw_true[sel], yaw_pred[sel]), 360.0)
+        assert np.max(e) <= np.ptp(psi[sel]) + 1e-6
+    assert np.median(old) > 20.0   # ... but one offset for both faces reads the faces' offsets as errors
+    # a continuous symmetry about the class's z: upright, a turn about up is no error; lying on its side it is
+    turned = np.array([t.as_matrix() for t in turned])
+    np.testing.assert_allclose(yaw_about_up_error_deg(turned, Rt, O.as_matrix(), None, up),
+                               np.where(f == 0, 0.0, np.abs(psi)), atol=1e-6)

@@ -19,6 +19,13 @@ Conventions:
   predicted ones from the prototype's, so they differ by one unknown offset O per cluster, R_true ~ R_pred O;
   a symmetry group (G, 3, 3) acting on the right of R_true (``rotation_offset``, ``rotation_error_deg``) makes
   R_true g the same pose.  Errors are geodesic angles (rotation angle of A^T B) in degrees.
+- Yaw error about up from rotations (``yaw_about_up_error_deg``): the residual D = R_true g (R_pred O)^T (world <-
+  world, g the symmetry element nearest) is split by the swing-twist decomposition about the world up u (Dobrowolski
+  2015, "Swing-twist decomposition in Clifford algebra"; common practice in animation): D = S T, T a turn about u,
+  S about an axis perpendicular to u.  The yaw error is |angle of T|: the turn about the support normal that is
+  left once the one per-cluster offset is removed, defined for every member whatever face it rests on (the
+  twist's quaternion is the projection of D's onto (u, 1), so T is the turn about u nearest D).  For upright
+  members (R = Rz(yaw) in the plane's frame) it is the plain yaw difference.
 """
 from __future__ import annotations
 
@@ -31,12 +38,12 @@ from sklearn import metrics as skm
 from sklearn.metrics.cluster import contingency_matrix
 
 from ..geometry import angle_diff_deg
-from ..rotations import geodesic_deg
+from ..rotations import geodesic_deg, matrix_to_quat, yaw_matrix
 
 __all__ = [
     "contingency", "purity_score", "inverse_purity_score", "hungarian_accuracy_score",
     "clustering_scores", "symmetry_to_period_deg", "yaw_offset_deg", "yaw_error_deg", "rotation_offset",
-    "rotation_error_deg", "about_z_geodesic_deg",
+    "rotation_error_deg", "about_z_geodesic_deg", "twist_deg", "yaw_about_up_error_deg",
 ]
 
 
@@ -176,3 +183,33 @@ def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, gr
     """Errors (n,) in degrees: geodesic angle of R_pred O to R_true, the least over the symmetry group (``None``:
     every rotation about z, exactly)."""
     return _modulo_group(R_pred @ O, R_true, group)
+
+
+def twist_deg(R: np.ndarray, axis: np.ndarray) -> np.ndarray:
+    """Signed angle (..., ) in degrees, in (-180, 180], of the twist of rotations R (..., 3, 3) about unit
+    axes (..., 3) (swing-twist decomposition R = S T): with R's quaternion (v, w), w >= 0, the twist is
+    2 atan2(v . axis, w).  A rotation of exactly 180 degrees about an axis perpendicular to ``axis`` has no twist
+    (0)."""
+    q = matrix_to_quat(np.asarray(R, np.float64))
+    a = np.asarray(axis, np.float64)
+    a = a / np.maximum(np.linalg.norm(a, axis=-1, keepdims=True), 1e-12)
+    t = 2.0 * np.arctan2(np.sum(q[..., :3] * a, axis=-1), q[..., 3])
+    return np.rad2deg(np.where(t > np.pi, t - 2.0 * np.pi, t))
+
+
+def yaw_about_up_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray | None,
+                           up: np.ndarray) -> np.ndarray:
+    """Yaw errors (n,) in degrees, in [0, 180]: |twist about the world up (n, 3)| of R_true g (R_pred O)^T, g the
+    element of ``group`` (G, 3, 3) nearest R_pred O (least geodesic angle; ``None``: the nearest turn about z,
+    a continuous symmetry, in closed form as in ``about_z_geodesic_deg``).  R_pred, R_true (n, 3, 3) world <-
+    frame; O (3, 3) the cluster's offset (``rotation_offset``)."""
+    A = np.asarray(R_pred, np.float64) @ O
+    B = np.asarray(R_true, np.float64)
+    if group is None:
+        M = np.einsum("nji,njk->nik", A, B)
+        g = yaw_matrix(np.rad2deg(np.arctan2(M[:, 0, 1] - M[:, 1, 0], M[:, 0, 0] + M[:, 1, 1])))
+    else:
+        group = np.asarray(group, np.float64)
+        g = group[np.argmin(geodesic_deg(A[:, None], B[:, None] @ group), axis=1)]
+    D = B @ g @ np.swapaxes(A, -1, -2)
+    return np.abs(twist_deg(D, up))

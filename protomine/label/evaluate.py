@@ -10,11 +10,16 @@ Conventions:
 - Cluster -> class: each prototype is named after the majority truth class of its *mined members*
   (the library's members and the mining truth), so nothing of the labelled views leaks into the mapping.
   A truth class is "known" when some mined member has it, else "unknown" (never mined: held out).
-- Yaw: predicted yaw is relative to the prototype's canonical frame, truth yaw to the capture's
-  reference direction, so they differ by one offset per prototype; that offset is the circular mean of
-  (truth - predicted) over the prototype's mined members of its majority class (``audit.metrics``), and
-  carries over to single views.  Errors are modulo the prototype's period; a continuous prototype has
-  error 0 (``median_yaw_error_deg_oriented`` leaves those out).
+- Yaw (truth with rotations and up): the turn about the support normal left between the record's pose and the
+  true one once the prototype's rotation offset (below) is removed (``audit.metrics.yaw_about_up_error_deg``),
+  modulo the true class's symmetry; classes with continuous symmetry are left out.  The older figure
+  (``*_cluster_offset``; the only one without rotations in the truth): predicted yaw is relative to the prototype's
+  canonical frame, truth yaw to the capture's reference direction, so they differ by one offset per prototype;
+  that offset is the circular mean of (truth - predicted) over the prototype's mined members of its majority
+  class (``audit.metrics``), and carries over to single views.  Errors are modulo the prototype's period; a
+  continuous prototype has error 0 (``median_yaw_error_deg_oriented`` leaves those out).  It compares yaws taken
+  about up from different resting faces' frames as if they were one quantity, so it is right only for views on
+  the face the offset's members mostly rest on.
 - Rotation (truth with qx, qy, qz, qw): the same idea in 3-D, one offset per prototype from its mined
   members (``mine.evaluate.cluster_rotation_offsets``), error = geodesic angle modulo the class's
   symmetry (``median_rotation_error_deg``, correctly classified known records).
@@ -24,8 +29,9 @@ Figures returned (``evaluate_labels``): n_records, n_matched, n_known, n_unknown
 records whose best guess maps to their class, flagged or not), accuracy_by_score (the same if the cluster
 were chosen by the highest score instead of the least distance; needs ``scores`` (n_records, K), NaN
 without), accepted_accuracy (among known records
-not flagged), median_yaw_error_deg (correctly classified known records), median_yaw_error_deg_oriented,
-auroc, unknown_flagged, known_flagged, cluster_to_class, per_class (n, accuracy, flagged).
+not flagged), median_yaw_error_deg and p90_yaw_error_deg (correctly classified known records),
+median_yaw_error_deg_cluster_offset, p90_yaw_error_deg_cluster_offset, median_yaw_error_deg_oriented (the older
+figure's), median_rotation_error_deg and p90_rotation_error_deg, auroc, unknown_flagged, known_flagged, cluster_to_class, per_class (n, accuracy, flagged).
 """
 from __future__ import annotations
 
@@ -35,9 +41,9 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 from sklearn.metrics import roc_auc_score
 
-from ..audit.metrics import rotation_error_deg, symmetry_to_period_deg, yaw_error_deg
+from ..audit.metrics import rotation_error_deg, symmetry_to_period_deg, yaw_about_up_error_deg, yaw_error_deg
 from ..errors import InputError
-from ..mine.evaluate import cluster_rotation_offsets, cluster_yaw_offsets, majority_map, read_truth_table
+from ..mine.evaluate import cluster_rotation_offsets, cluster_yaw_offsets, class_period, majority_map, read_truth_table
 from ..rotations import quat_to_matrix
 from ..mine.library import Library
 
@@ -113,14 +119,20 @@ def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
         rows.append({"class": t["class"], "known": t["class"] in known_classes, "score": float(r["score"]),
                      "correct_by_score": by_score is not None and classes.get(by_score) == t["class"],
                      "flag": bool(r["unknown"]), "correct": k is not None and classes.get(k) == t["class"],
-                     "yaw_err": _yaw_error(library, k, offsets, t["yaw_deg"], r["yaw_deg"]),
+                     "yaw_err_cluster_offset": _yaw_error(library, k, offsets, t["yaw_deg"], r["yaw_deg"]),
+                     "yaw_about_up": _yaw_about_up_error(rot_off, k, t, r.get("rotation")),
                      "rot_err": _rotation_error(rot_off, k, t.get("rotation"), r.get("rotation")),
                      "period": _period(library, k)})
     known = [x for x in rows if x["known"]]
     unknown = [x for x in rows if not x["known"]]
     mean = lambda xs: float(np.mean(xs)) if len(xs) else float("nan")  # noqa: E731
-    yaw_all = [x["yaw_err"] for x in known if x["correct"] and x["yaw_err"] is not None]
-    yaw_or = [x["yaw_err"] for x in known if x["correct"] and x["yaw_err"] is not None and np.isfinite(x["period"])]
+    yaw_co = [x["yaw_err_cluster_offset"] for x in known if x["correct"] and x["yaw_err_cluster_offset"] is not None]
+    yaw_or = [x["yaw_err_cluster_offset"] for x in known
+              if x["correct"] and x["yaw_err_cluster_offset"] is not None and np.isfinite(x["period"])]
+    yaw_up = [x["yaw_about_up"] for x in known if x["correct"] and x["yaw_about_up"] is not None]
+    yaw_all = yaw_up if yaw_up else yaw_co
+    rerr = [x["rot_err"] for x in known if x["correct"] and x["rot_err"] is not None]
+    pct = lambda xs, q: float(np.percentile(xs, q)) if xs else float("nan")  # noqa: E731
     auroc = (float(roc_auc_score([x["known"] for x in rows], [x["score"] for x in rows]))
              if known and unknown else float("nan"))
     per_class = {}
@@ -133,11 +145,11 @@ def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
         "accuracy": mean([x["correct"] for x in known]),
         "accuracy_by_score": mean([x["correct_by_score"] for x in known]) if scores is not None else float("nan"),
         "accepted_accuracy": mean([x["correct"] for x in known if not x["flag"]]),
-        "median_yaw_error_deg": float(np.median(yaw_all)) if yaw_all else float("nan"),
-        "median_yaw_error_deg_oriented": float(np.median(yaw_or)) if yaw_or else float("nan"),
+        "median_yaw_error_deg": pct(yaw_all, 50), "p90_yaw_error_deg": pct(yaw_all, 90),
+        "median_yaw_error_deg_cluster_offset": pct(yaw_co, 50), "p90_yaw_error_deg_cluster_offset": pct(yaw_co, 90),
+        "median_yaw_error_deg_oriented": pct(yaw_or, 50),
         "auroc": auroc,
-        "median_rotation_error_deg": (float(np.median(rerr)) if (rerr := [x["rot_err"] for x in known if x["correct"]
-                                                                          and x["rot_err"] is not None]) else float("nan")),
+        "median_rotation_error_deg": pct(rerr, 50), "p90_rotation_error_deg": pct(rerr, 90),
         "unknown_flagged": mean([x["flag"] for x in unknown]),
         "known_flagged": mean([x["flag"] for x in known]),
         "cluster_to_class": {int(k): v for k, v in classes.items()},
@@ -151,6 +163,15 @@ def _rotation_error(offsets: dict, k: int | None, truth_q, pred_q) -> float | No
     O, group, _ = offsets[k]
     Rp, Rt = quat_to_matrix(np.asarray(pred_q)[None]), quat_to_matrix(np.asarray(truth_q)[None])
     return float(rotation_error_deg(Rp, Rt, O, group)[0])
+
+
+def _yaw_about_up_error(offsets: dict, k: int | None, t: dict, pred_q) -> float | None:
+    if (k is None or t.get("rotation") is None or t.get("up") is None or pred_q is None or k not in offsets
+            or class_period(t["symmetry"]) == 0):
+        return None
+    O, group, _ = offsets[k]
+    Rp, Rt = quat_to_matrix(np.asarray(pred_q)[None]), quat_to_matrix(np.asarray(t["rotation"])[None])
+    return float(yaw_about_up_error_deg(Rp, Rt, O, group, np.asarray(t["up"])[None])[0])
 
 
 def _period(library: Library, k: int | None) -> float:
