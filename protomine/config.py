@@ -52,6 +52,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.cluster_free_weight": (0.0, 10.0),
     "mine.colour_weight": (0.0, 10.0),
     "mine.symmetry_tol": (0.0, 1.0),
+    "mine.symmetry_break_effect": (0.0, 10.0),
     "mine.symmetry_factor": (0.1, 100.0),
     "mine.unknown_alpha": (0.001, 0.5),
     "mine.tilt_nsides": (0, 16),

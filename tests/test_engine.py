@@ -74,6 +74,29 @@ def test_detect_symmetry_on_exact_prototypes():
     assert sym.detect_symmetry(P5, V[:1], noise)[0] == 5
 
 
+def test_break_effect_breaks_a_blurred_handle():
+    """Hand-worked from the effect ratio's definition (mine.symmetry module docstring): one channel, two rings, three
+    slabs; ring 1 is c everywhere (the symmetric body), ring 0 holds one bump b (the handle) in every slab.  Every
+    turn moves 2 b^2 per slab, and a slab's variance about its mean m = (b + 36 c) / 72 is b^2 + 36 c^2 - 72 m^2, so
+    E = b^2 / (b^2 + 36 c^2 - (b + 36 c)^2 / 72) = 0.2006 for b = 1, c = 0.5 at every turn.  A scatter so large that
+    the significance test passes every turn reads it as continuous; break_effect below E makes it asymmetric, above
+    E changes nothing."""
+    P = np.zeros((1, 1, 2, A, 3), np.float32)
+    P[0, 0, 1] = 0.5
+    P[0, 0, 0, 7] = 1.0
+    V = np.ones((1, 2, A, 3), np.float32)
+    E = 1.0 / (1.0 + 36 * 0.25 - (1.0 + 18.0) ** 2 / 72)
+    assert abs(sym.effect_ratio(P, V, [5.0])[0, 0] - E) < 1e-6
+    noise = 1.0   # the members' scatter: T = 2 b^2 / (72 x 2 x noise) per slab, far below the factor
+    assert sym.detect_symmetry(P, V, noise)[0] == sym.CONTINUOUS
+    assert sym.detect_symmetry(P, V, noise, break_effect=0.15)[0] == sym.NONE
+    assert sym.detect_symmetry(P, V, noise, break_effect=0.25)[0] == sym.CONTINUOUS
+    # exactly symmetric prototypes keep their symmetry (E = 0 at their symmetries)
+    Q = _symmetric_prototypes(np.random.default_rng(5))
+    np.testing.assert_array_equal(sym.detect_symmetry(Q, np.ones((3,) + Q.shape[2:], np.float32), 0.01, break_effect=0.15),
+                                  [0, 4, 1])
+
+
 def test_canonical_frame_is_independent_of_the_prototype_roll():
     P = _symmetric_prototypes(np.random.default_rng(6))[2:]
     V = np.ones((1,) + P.shape[2:], np.float32)

@@ -965,6 +965,8 @@ class PoseKMeans:
         (``factor`` of :func:`protomine.mine.symmetry.detect_symmetry`).
     symmetry_tol : the smallest fraction of a prototype's variance a rotation must move to break a symmetry
         (``tol`` of :func:`protomine.mine.symmetry.detect_symmetry`).
+    symmetry_break_effect : a rotation moving more than this fraction of the prototype's variance is no symmetry
+        whatever symmetry_factor says (``break_effect`` of :func:`protomine.mine.symmetry.detect_symmetry`; 0 = off).
     init : optional (P (K, C, R, A, H), V (K, R, A, H)) starting prototypes (skips seeding and restarts).
     cache_mb : memory budget for object spectra kept between passes (about 0.1 MB per object on an
         8 x 36 x 12 grid with 5 channels); objects beyond it are re-read and re-transformed every pass.
@@ -1004,8 +1006,9 @@ class PoseKMeans:
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
                  seed_hold_t: float = 0.0, face_assign: bool = False,
-                 face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False):
+                 face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False, symmetry_break_effect: float = 0.0):
         self.n_clusters = n_clusters
+        self.symmetry_break_effect = symmetry_break_effect
         self.face_assign = face_assign
         self.face_updates = face_updates
         self.face_hold_unmoved = face_hold_unmoved
@@ -1150,7 +1153,7 @@ class PoseKMeans:
     def _finish(self, res: _Result, source: Source, scales: tuple[float, ...]) -> None:
         A = res.P.shape[3]
         symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor,
-                                   tol=self.symmetry_tol)
+                                   tol=self.symmetry_tol, break_effect=self.symmetry_break_effect)
         t = sym.canonical_shift_bins(res.P, res.V, symm)
         self.prototypes_ = shift_volume(res.P, -t, axis=3).astype(np.float32)
         self.prototype_weights_ = shift_volume(res.V, -t, axis=2).astype(np.float32)

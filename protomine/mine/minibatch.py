@@ -130,5 +130,6 @@ def fit_minibatch(source: Source, cfg: dict, seed: int, n_clusters: int | None, 
                                 scales=tuple(m["scales"]), n_init=m["n_init"], max_iter=m["max_iter"], tol=m["tol"],
                                 chunk_size=m["chunk_size"],
                                 random_state=seed if table is None else int(rng.integers(2**31 - 1)),
-                                symmetry_factor=m["symmetry_factor"], symmetry_tol=m["symmetry_tol"]).fit(source)
+                                symmetry_factor=m["symmetry_factor"], symmetry_tol=m["symmetry_tol"],
+                                symmetry_break_effect=float(m.get("symmetry_break_effect", 0.0))).fit(source)
     return model, table
