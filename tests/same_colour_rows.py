@@ -28,10 +28,39 @@ def item(kind: str) -> S.Shape:
         return S.union(S.cylinder(0.04, 0.09), handle)
     if kind == "lamp":
         return S.union(S.cylinder(0.05, 0.006), S.cylinder(0.008, 0.13), S.frustum(0.03, 0.018, 0.04, z0=0.12))
+    if kind in ONE_KINDS:
+        return one_item(kind)
     raise ValueError(f"unknown item {kind!r}")
 
 
 KINDS = ("box", "can", "mug", "lamp")
+
+
+def _lying(shape: S.Shape) -> S.Shape:
+    """A shape built about z laid on its side (its axis along y), base on z = 0."""
+    return S.on_base(S.rotate(shape, S.axis_rotation("x", 90.0)))
+
+
+def one_item(kind: str) -> S.Shape:
+    """Single objects of one colour with two alike ends joined by a narrower part, base on z = 0: a spool lying on
+    its side (flanges r 4 cm, 1 cm thick, core r 2.2 cm, 9 cm long in all), a dumbbell lying on its side (two
+    weights r 3.5 cm, 3 cm thick, a bar r 1 cm, 14 cm long in all), the same dumbbell standing on a weight, a
+    spool standing on a flange, and a double-ended block lying flat (two 5 x 5 x 4 cm blocks joined by a 2 x 2 cm
+    bar, 16 cm long in all)."""
+    if kind in ("spool_side", "spool_up"):
+        s = S.union(S.cylinder(0.022, 0.09), S.cylinder(0.04, 0.01), S.cylinder(0.04, 0.01, 0.08))
+        return _lying(s) if kind == "spool_side" else s
+    if kind in ("dumbbell_side", "dumbbell_up"):
+        s = S.union(S.cylinder(0.01, 0.14), S.cylinder(0.035, 0.03), S.cylinder(0.035, 0.03, 0.11))
+        return _lying(s) if kind == "dumbbell_side" else s
+    if kind == "double_block":
+        return S.on_base(S.union(S.box((0.025, 0.025, 0.02), (-0.055, 0.0, 0.0)),
+                                 S.box((0.025, 0.025, 0.02), (0.055, 0.0, 0.0)),
+                                 S.box((0.03, 0.01, 0.01), (0.0, 0.0, -0.01))))
+    raise ValueError(f"unknown item {kind!r}")
+
+
+ONE_KINDS = ("spool_side", "dumbbell_side", "dumbbell_up", "spool_up", "double_block")
 
 
 def row_scene(kind: str, n: int, rng: np.random.Generator) -> tuple[Scene, list[tuple[float, float]]]:
@@ -48,7 +77,7 @@ def write_row_capture(folder, kind: str, n: int, draw: int) -> None:
     """Draw ``draw`` of a row of ``n`` items ``kind`` (generator seed 1000 x kind index + 100 n + draw), seen by six
     cameras on a ring 0.45-0.6 m from the row's centre at 30-50 deg elevation (even draws) or 45-65 (odd), with
     the demo's gaussian depth noise, written as a capture with the renderer's masks."""
-    rng = np.random.default_rng(1000 * KINDS.index(kind) + 100 * n + draw)
+    rng = np.random.default_rng(1000 * (KINDS + ONE_KINDS).index(kind) + 100 * n + draw)
     scene, pos = row_scene(kind, n, rng)
     centre = np.array([*np.mean(pos, axis=0), 0.0])
     dist = rng.uniform(0.45, 0.6)
