@@ -142,13 +142,15 @@ def test_two_identical_items_of_one_colour_touching_are_two_objects(tmp_path, ki
     assert separated(runs["seam"], masked, 2)[0] == (2 if cues == "seam" else 0)
 
 
-def test_a_dumbbell_lying_on_its_side_stays_one_object_with_the_spread_cue(tmp_path):
-    """A dumbbell of one colour lying on its side (tests/same_colour_rows.py, draw 0; the renderer's masks as
-    truth): its two weights are alike in voxels and height and the frames see the seam stepped (the weights hide the
-    bar next to it), so with ``seam_step_share`` and ``twin_neck_cut`` it is cut in two (measured: 2 proposals, the
-    weight alone against the weight with the bar); with ``twin_spread_ratio`` 0.7 the two groups are not twins
-    (their footprints across 1.3 against 2.0 cm) and the dumbbell is one object, as without the cues."""
-    write_row_capture(tmp_path / "one", "dumbbell_side", 1, 0)
+@pytest.mark.parametrize("kind, draw", [("dumbbell_side", 0), ("double_block", 1)])
+def test_an_object_with_two_alike_ends_stays_one_object_with_the_spread_cue(tmp_path, kind, draw):
+    """A dumbbell of one colour lying on its side, a double-ended block lying flat (tests/same_colour_rows.py; the
+    renderer's masks as truth): the two ends are alike in voxels and height and the frames see the seam stepped (an
+    end hides the bar next to it), so with ``seam_step_share`` and ``twin_neck_cut`` the object is cut in two
+    (measured: 2 proposals, an end alone against the other end with the bar); with ``twin_spread_ratio`` 0.7 the
+    two groups are not twins (footprint spreads across 1.3 against 2.0 cm for the dumbbell, along 1.8 against 2.9
+    for the block) and the object is one, as without the cues."""
+    write_row_capture(tmp_path / "one", kind, 1, draw)
     masked, runs = _finding(tmp_path / "one", off=(0.0, False), both=(0.4, True), spread=(0.4, True, 0.7))
     assert separated(runs["off"], masked, 1)[0] == 1
     assert separated(runs["both"], masked, 1)[0] == 0

@@ -1,6 +1,7 @@
 """Rows of identical items of one colour touching, without masks: render the family of tests/same_colour_rows.py
 (pairs and rows of three boxes, cans, handled mugs, lamps; single objects with two alike ends, a spool and a
-dumbbell lying on their side, standing, a double-ended block; pairs of the lying spools and dumbbells; draws
+dumbbell lying on their side, standing, a double-ended block, and the lying ones with sizes drawn per draw
+(``_v``); pairs of the lying spools and dumbbells; draws
 D0..D1-1) and count, per setting of ``[ingest] seam_step_share`` / ``twin_neck_cut`` / ``twin_spread_ratio``, the
 objects separated (a single object: kept whole) (one mask-free proposal at least 0.95 pure by
 the renderer's masks holding at least 0.8 of the object's masked pixels) and the proposals.  README "Touching
@@ -22,7 +23,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
-from same_colour_rows import KINDS, ONE_KINDS, separated, write_row_capture  # noqa: E402
+from same_colour_rows import KINDS, ONE_KINDS, VARIED_KINDS, separated, write_row_capture  # noqa: E402
 
 from protomine.capture import read_capture  # noqa: E402
 from protomine.config import load_config  # noqa: E402
@@ -30,7 +31,7 @@ from protomine.ingest.proposals import find_objects  # noqa: E402
 
 SETTINGS = {"off": (0.0, False, 0.0), "seam": (0.4, False, 0.0), "seam + neck": (0.4, True, 0.0),
             "seam + neck + spread": (0.4, True, 0.7), "spread 0.6": (0.4, True, 0.6), "spread 0.8": (0.4, True, 0.8)}
-ROWS = [(kind, n) for kind in KINDS for n in (2, 3)] + [(kind, 1) for kind in ONE_KINDS] + [
+ROWS = [(kind, n) for kind in KINDS for n in (2, 3)] + [(kind, 1) for kind in ONE_KINDS + VARIED_KINDS] + [
     ("spool_side", 2), ("dumbbell_side", 2)]
 
 
