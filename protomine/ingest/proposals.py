@@ -578,7 +578,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
                          support_band=SUPPORT_BAND_M, inset=STAND_INSET_M, min_voxels=c["cluster_min_points"],
                          low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0, handed=handed,
                          readings=readings, step_share=step_share,
-                         neck_cut=bool(c.get("twin_neck_cut", False)) and step_share > 0)
+                         neck_cut=bool(c.get("twin_neck_cut", False)) and step_share > 0,
+                         spread_ratio=float(c.get("twin_spread_ratio", 0.0)))
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
