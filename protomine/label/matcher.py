@@ -76,6 +76,7 @@ from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, sh
 from ..ingest.truncation import cut_direction, cut_pixels, view_cut
 from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
+from ..mine.memberknn import Members, class_knn, load_members, searched_distances
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import best_second_ratio, fisher_combine_many, library_cut, ratio_pvalue, rule_scores, scale_stretch
@@ -143,6 +144,10 @@ class Matcher:
     unseen_score: bool = False
     stretch_score: bool = False
     stretch_refine: bool = False
+    member_k: int = 0
+    member_within: float = 0.0
+    member_top: int = 3
+    member_score: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -154,6 +159,8 @@ class Matcher:
     view_unseen: np.ndarray | None = field(init=False)
     view_stretch: np.ndarray | None = field(init=False)
     view_stretch_kinds: tuple = field(init=False)
+    members: Members | None = field(init=False)
+    view_members: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -171,6 +178,15 @@ class Matcher:
         self.view_stretch_kinds = tuple(np.asarray(self.library.attrs[a], np.float64)
                                         if self.view_stretch is not None and a in self.library.attrs else self.view_stretch
                                         for a in ("unknown_view_stretch_canonical", "unknown_view_stretch_other"))
+        # ``[mine] label_members``: the library's members' fused volumes, from the store it was mined from (none found: off)
+        self.members = (load_members(self.library, self.free_weight, self.colour_weight) if self.member_k > 0
+                        and self.library.n_clusters > 1 else None)
+        vm = self.library.attrs.get("unknown_view_members")   # ``[mine] label_members_score``: the held-out statistics
+        self.view_members = (np.asarray(vm, np.float64) if self.members is not None and self.member_score
+                             and self.view_ratios is not None and vm is not None
+                             and "unknown_view_member_cut" in self.library.attrs else None)
+        if self.view_members is not None:
+            self.unknown_cut = float(self.library.attrs["unknown_view_member_cut"])
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -198,7 +214,8 @@ class Matcher:
         return X, (W if self.weighted else np.ones_like(W))
 
     def match(self, volumes: np.ndarray, cameras: np.ndarray | None = None,
-              sizes: np.ndarray | None = None, cuts: list | None = None) -> dict[str, np.ndarray]:
+              sizes: np.ndarray | None = None, cuts: list | None = None,
+              own_members: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
         (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
         ``cameras`` (n, 3): each view's camera direction in its object frame (:func:`lift_frame`); with the
@@ -222,7 +239,8 @@ class Matcher:
             m = self.match(volumes.reshape((n * C,) + volumes.shape[2:])[keep],
                            None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0)[keep],
                            None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0)[keep],
-                           None if cuts is None else [cuts[j // C] for j in keep])
+                           None if cuts is None else [cuts[j // C] for j in keep],
+                           None if own_members is None else np.repeat(np.asarray(own_members), C)[keep])
             if n == 0:
                 return {**m, "centre": np.zeros((0, self.K), int)}
             src = np.searchsorted(keep, np.where(same, np.arange(n)[:, None] * C, np.arange(n * C).reshape(n, C)).reshape(-1))
@@ -239,7 +257,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
-                    "scored_distance": z, "view_distance": z, "unseen_share": z,
+                    "scored_distance": z, "view_distance": z, "unseen_share": z, "member_distance": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
@@ -289,6 +307,10 @@ class Matcher:
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
+        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
+        dk = np.full(D.shape, np.nan)
+        if self.members is not None:   # ``[mine] label_members``: the members decide among close prototypes
+            best, dk = self.member_decision(X, W, D, best, own_members)
         # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
         stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, fit_scale, upright, self.scales)
                          if self.stretch_refine else fit_scale)
@@ -299,6 +321,9 @@ class Matcher:
             S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
                 r = decided_ratios(D, Dq)
+                moved = np.flatnonzero((best >= 0) & (best != np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)))
+                if len(moved):   # a class the members decided takes the ratio of the view's least distance
+                    r[moved, best[moved]] = r[moved, np.argmin(np.where(np.isfinite(D[moved]), D[moved], np.inf), axis=1)]
                 pr = np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0)
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
@@ -306,10 +331,14 @@ class Matcher:
                 if self.view_stretch is not None:   # (``view_normalise_stretch_face``: among the decided face kind's)
                     x = scale_stretch(stretch_scale)
                     pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
-                S = fisher_combine_many(S, pr, *pu)
+                if self.view_members is not None:   # ``[mine] label_members_score``: and with the members' p-value
+                    xm = member_statistic(dk, D)
+                    pm = ratio_pvalue(self.view_members, np.nan_to_num(xm, nan=np.inf))
+                    S = np.where(np.isfinite(xm), fisher_combine_many(S, pr, *pu, pm), 0.0)
+                else:
+                    S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
-        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
             sz = np.asarray(sizes, np.float64).reshape(-1, 2)
             rev = sym.reverse_distances(X, W, grid_aspect(sz[:, 0], sz[:, 1], self.tilts.radial_margin,
@@ -322,8 +351,73 @@ class Matcher:
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
                 "face": face, "upright": upright,
-                "scored_distance": Dr, "view_distance": Dv, "unseen_share": share,
+                "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
                 "rotation": rotation, "best": best}
+
+    def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, best: np.ndarray,
+                        own_members: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """``[mine] label_members`` = k: (best (n,), d_k (n, K)).  A view whose decision distances D (n, K) hold at least
+        two prototypes within ``member_within`` x its least (the first ``member_top`` of them: ``member_shortlist``)
+        is decided among them by d_k, the mean of its k smallest pose-searched distances to each one's members
+        (``mine.memberknn``; Cover & Hart 1967); with ``member_score`` every view's d_k at its decided prototype is
+        computed too.  d_k is NaN where not searched.  ``own_members`` (n,): the member index of each view's own
+        object, left out of its row (-1: none; the held-out views of the calibration)."""
+        n, K = D.shape
+        short = member_shortlist(D, self.member_within, self.member_top)
+        need = short.copy()
+        rows = np.flatnonzero(best >= 0)
+        if self.member_score:
+            need[rows, best[rows]] = True
+        mem = self.members
+        groups = [(np.flatnonzero(need[:, c]), np.flatnonzero(mem.cluster == c)) for c in range(K)]
+        Dm = searched_distances(X, W, mem.P, mem.V, mem.aspect, groups, self.scales,
+                                None if self.tilts.is_identity else self.tilts)
+        if own_members is not None:
+            own = np.asarray(own_members, np.int64)
+            Dm[np.flatnonzero(own >= 0), own[own >= 0]] = np.inf
+        dk = np.where(need, class_knn(Dm, mem.cluster, K, self.member_k), np.nan)
+        return members_decide(D, dk, self.member_within, self.member_top), dk
+
+
+def member_shortlist(D: np.ndarray, within: float, top: int) -> np.ndarray:
+    """(n, K) bool: each view's first ``top`` prototypes by decision distance D (n, K) (ties by index) within ``within``
+    x its least, in rows where at least two are (the views the members decide: ``[mine] label_members_within``);
+    all False when ``within`` < 1."""
+    D = np.where(np.isfinite(D), np.asarray(D, np.float64), np.inf)
+    out = np.zeros(D.shape, bool)
+    if within < 1 or D.shape[1] < 2 or not len(D):
+        return out
+    order = np.argsort(D, axis=1, kind="stable")[:, :max(int(top), 0)]
+    i = np.arange(len(D))[:, None]
+    least = D.min(axis=1, keepdims=True)
+    out[i, order] = np.isfinite(D[i, order]) & (D[i, order] <= within * least)
+    out[out.sum(axis=1) < 2] = False
+    return out
+
+
+def members_decide(D: np.ndarray, dk: np.ndarray, within: float, top: int) -> np.ndarray:
+    """best (n,): each view's prototype of least decision distance D (n, K) (-1: none), except that a view with a
+    ``member_shortlist`` takes, among its shortlisted prototypes with a d_k (n, K) (NaN: not searched), the one of
+    least d_k (ties: the nearer by D)."""
+    Df = np.where(np.isfinite(D), np.asarray(D, np.float64), np.inf)
+    best = np.where(np.isfinite(Df).any(axis=1), np.argmin(Df, axis=1), -1)
+    short = member_shortlist(Df, within, top)
+    dk = np.where(short & np.isfinite(dk), dk, np.inf)
+    amb = np.flatnonzero((short.sum(axis=1) > 1) & np.isfinite(dk).any(axis=1))
+    for i in amb:
+        cand = np.flatnonzero(np.isfinite(dk[i]))
+        best[i] = cand[np.lexsort((Df[i, cand], dk[i, cand]))[0]]
+    return best
+
+
+def member_statistic(dk: np.ndarray, D: np.ndarray) -> np.ndarray:
+    """The members' novelty statistic (n, K) (``[mine] label_members_score``; larger: less like the class's views):
+    d_k / D, the view's k-nearest-member distance over its decision distance to the prototype (a never-mined shape fits
+    the prototype, its members' blurred mean, about as well as the class's views do, but no single member); NaN
+    where either is missing."""
+    dk, D = np.asarray(dk, np.float64), np.asarray(D, np.float64)
+    ok = np.isfinite(dk) & np.isfinite(D) & (D > 0)
+    return np.where(ok, dk / np.where(ok, D, 1.0), np.nan)
 
 
 def decided_ratios(D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
@@ -405,7 +499,10 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
                  unseen_score=bool(weighted and m.get("view_normalise_unseen", False)),
                  stretch_score=bool(weighted and m.get("view_normalise_stretch", False)),
-                 stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False))))
+                 stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False)),
+                 member_k=int(m.get("label_members", 0)) if weighted else 0,
+                 member_within=float(m.get("label_members_within", 0.0)), member_top=int(m.get("label_members_top", 3)),
+                 member_score=bool(m.get("label_members_score", False))))
 
 
 @dataclass

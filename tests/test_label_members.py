@@ -1,0 +1,137 @@
+"""The label stage's member evidence ([mine] label_members, label.matcher.members_decide / member_statistic, the
+calibration in mine.pipeline.view_ratio_calibration).
+
+Sources: the k nearest neighbours of a view within each class, the k-NN rule (Cover & Hart, "Nearest neighbor pattern
+classification", IEEE Trans. Information Theory 1967), with scikit-learn's NearestNeighbors on precomputed distances as
+the reference for each class's k smallest distances; conformal p-values and the split-conformal cut by their
+definitions (Vovk, Gammerman & Shafer 2005; Lei et al. 2018), Fisher's combination by scipy's combine_pvalues
+(Fisher 1925).  The decision test is a construction whose answer is known: a class whose members lie on two sides of
+their mean, a view of a second class that lies nearer the first class's prototype (the members' mean) than its own, but
+next to its own class's members.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy import stats
+from sklearn.neighbors import NearestNeighbors
+
+from protomine.label.matcher import member_shortlist, member_statistic, members_decide
+from protomine.mine.library import Library
+from protomine.mine.memberknn import class_knn
+from protomine.mine.openset import best_second_ratio, conformal_cut
+from protomine.mine.pipeline import view_calibrated_fields, view_ratio_calibration
+
+
+def _knn_sklearn(Dm, mc, K, k):   # each class's k nearest members' mean distance, by scikit-learn
+    out = np.full((len(Dm), K), np.inf)
+    for c in range(K):
+        cols = np.flatnonzero(mc == c)
+        nn = NearestNeighbors(n_neighbors=min(k, len(cols)), metric="precomputed").fit(np.zeros((len(cols), len(cols))))
+        out[:, c] = nn.kneighbors(Dm[:, cols])[0].mean(axis=1)
+    return out
+
+
+def test_shortlist_by_its_definition():
+    rng = np.random.default_rng(3)
+    D = rng.uniform(1.0, 1.6, (200, 5))
+    D[rng.random((200, 5)) < 0.1] = np.inf
+    got = member_shortlist(D, 1.2, 3)
+    for i in range(len(D)):
+        order = sorted(range(5), key=lambda j: (D[i, j], j))[:3]
+        least = D[i].min()
+        want = {j for j in order if np.isfinite(D[i, j]) and D[i, j] <= 1.2 * least}
+        assert set(np.flatnonzero(got[i])) == (want if len(want) >= 2 else set()), i
+    assert not member_shortlist(D, 0.0, 3).any()   # below 1: the members decide nothing
+
+
+def test_members_decide_the_view_the_mean_draws_away():
+    """Line, distance |x - y|: class 0's members at -1 and +1 (prototype 0), class 1's at 0.35 .. 0.45 (prototype 0.4),
+    class 2 at 5 .. 5.2.  A view at 0.18 is nearer class 0's prototype (0.18 against 0.22), so the prototypes name it 0;
+    its nearest members are class 1's.  A view at 1.8 is nearer class 1's prototype (1.4 against 1.8) and class 0's
+    members (0.8 against 1.4).  Views with no second prototype within the ratio (0.41, -0.95) keep their nearest, and a
+    view at 3.0 (prototypes 2 and 1 within the ratio) stays 2, whose members are nearer too.  On random shortlists the
+    decision equals scikit-learn's per-class k-NN among the shortlisted."""
+    members = np.array([-1.0] * 4 + [1.0] * 4 + [0.35, 0.38, 0.4, 0.42, 0.45] + [5.0, 5.1, 5.2])
+    mc = np.array([0] * 8 + [1] * 5 + [2] * 3)
+    protos = np.array([members[mc == c].mean() for c in range(3)])
+    x = np.array([0.18, 1.8, 0.41, -0.95, 3.0])
+    D = np.abs(x[:, None] - protos[None])
+    Dm = np.abs(x[:, None] - members[None])
+    dk = class_knn(Dm, mc, 3, 3)
+    np.testing.assert_allclose(dk, _knn_sklearn(Dm, mc, 3, 3))
+    best = members_decide(D, dk, 1.3, 3)
+    assert list(np.argmin(D, axis=1)) == [0, 1, 1, 0, 2]
+    assert list(best) == [1, 0, 1, 0, 2]
+    # only the shortlist is searched: a NaN d_k is not a candidate, and without two candidates the nearest stays
+    dk_short = np.where(member_shortlist(D, 1.3, 3), dk, np.nan)
+    assert list(members_decide(D, dk_short, 1.3, 3)) == [1, 0, 1, 0, 2]
+    assert list(members_decide(D, np.full(D.shape, np.nan), 1.3, 3)) == list(np.argmin(D, axis=1))
+    # the rule by its definition on random shortlists: among the shortlisted, the least mean of the 3 nearest members
+    rng = np.random.default_rng(5)
+    D = rng.uniform(1.0, 1.5, (100, 4))
+    Dm = rng.uniform(0.1, 2.0, (100, 20))
+    mc = rng.integers(0, 4, 20)
+    mc[:4] = np.arange(4)
+    ref = _knn_sklearn(Dm, mc, 4, 3)
+    short = member_shortlist(D, 1.25, 3)
+    got = members_decide(D, class_knn(Dm, mc, 4, 3), 1.25, 3)
+    for i in range(100):
+        cand = np.flatnonzero(short[i])
+        want = cand[np.argmin(ref[i, cand])] if len(cand) else np.argmin(D[i])
+        assert got[i] == want, i
+
+
+def test_member_statistic():
+    dk = np.array([[0.2, np.nan], [0.3, 0.1]])
+    D = np.array([[0.1, 0.2], [0.0, 0.05]])
+    got = member_statistic(dk, D)
+    assert got[0, 0] == pytest.approx(2.0) and np.isnan(got[0, 1]) and np.isnan(got[1, 0]) and got[1, 1] == pytest.approx(2.0)
+
+
+def _loo(v):   # each value's p-value among all, itself counted: #{j: v_j >= v_i} / m (written out)
+    return np.array([np.mean(v >= w) for w in v])
+
+
+def _fisher(*ps):   # scipy's Fisher combination, one view at a time
+    return np.array([stats.combine_pvalues(list(p), method="fisher")[1] for p in zip(*ps)])
+
+
+def _heldout(rng, n):
+    own = rng.integers(0, 3, n)
+    D = np.exp(rng.normal(-3.0, 0.3, (n, 3)))
+    D[np.arange(n), own] = D.min(axis=1) * np.exp(-np.abs(rng.normal(0.1, 0.2, n)))
+    dk = D * np.exp(rng.normal(0.5, 0.3, (n, 3)))
+    return own, D, dk
+
+
+@pytest.mark.parametrize("within", [0.0, 1.3])
+def test_calibration_joins_the_members_p_value(within):
+    """The held-out views' member statistics d_k / D at the decided prototype (decided as the label stage decides:
+    members_decide) are kept sorted, and the member cut is the split-conformal cut of Fisher's combination of the
+    score, the ratio's leave-one-out p-value (the ratio of the view's least distance) and the statistic's; the cut
+    without the members stays the one computed without them."""
+    rng = np.random.default_rng(17)
+    n = 200
+    own, D, dk = _heldout(rng, n)
+    j = np.arange(n)
+    d, own_up = D[j, own], np.ones(n, bool)
+    fields, _ = view_calibrated_fields(d, np.ones(n), own, own_up, 3, [(0.0, 1.0)] * 3, 0.05)
+    s = Library(fields, {}, {}).score(d, own, single_view=True, upright=own_up, view_normalised=True)
+    least = np.argmin(D, axis=1)
+    r = best_second_ratio(D)[j, least]
+    short = member_shortlist(D, within, 3)
+    b = np.array([np.flatnonzero(short[i])[np.argmin(dk[i, short[i]])] if short[i].any() else least[i] for i in j])
+    if within > 0:
+        assert (b != least).sum() > 10
+    x = dk[j, b] / D[j, b]
+    plain = view_ratio_calibration(D, d, own, own_up, fields, 0.05)
+    got = view_ratio_calibration(D, d, own, own_up, fields, 0.05, members=(dk, within, 3, True))
+    assert np.array_equal(got["unknown_view_members"], np.sort(x))
+    assert got["unknown_view_ratio_cut"] == plain["unknown_view_ratio_cut"]
+    want = conformal_cut(_fisher(s, _loo(r), _loo(x)), 0.05)
+    assert np.isclose(got["unknown_view_member_cut"], want, rtol=1e-9)
+    assert not np.isclose(got["unknown_view_member_cut"], plain["unknown_view_ratio_cut"])
+    # decision only (no score): no member attributes
+    assert "unknown_view_members" not in view_ratio_calibration(D, d, own, own_up, fields, 0.05,
+                                                                members=(dk, within, 3, False))
