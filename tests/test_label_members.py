@@ -60,33 +60,41 @@ def test_members_decide_the_view_the_mean_draws_away():
     Dm = np.abs(x[:, None] - members[None])
     dk = class_knn(Dm, mc, 3, 3)
     np.testing.assert_allclose(dk, _knn_sklearn(Dm, mc, 3, 3))
-    best = members_decide(D, dk, 1.3, 3)
+    best = members_decide(D, dk, D, 1.3, 3, 1.0)   # Dr = D and weight 1: the key is d_k itself
     assert list(np.argmin(D, axis=1)) == [0, 1, 1, 0, 2]
     assert list(best) == [1, 0, 1, 0, 2]
     # only the shortlist is searched: a NaN d_k is not a candidate, and without two candidates the nearest stays
     dk_short = np.where(member_shortlist(D, 1.3, 3), dk, np.nan)
-    assert list(members_decide(D, dk_short, 1.3, 3)) == [1, 0, 1, 0, 2]
-    assert list(members_decide(D, np.full(D.shape, np.nan), 1.3, 3)) == list(np.argmin(D, axis=1))
-    # the rule by its definition on random shortlists: among the shortlisted, the least mean of the 3 nearest members
+    assert list(members_decide(D, dk_short, D, 1.3, 3, 1.0)) == [1, 0, 1, 0, 2]
+    assert list(members_decide(D, np.full(D.shape, np.nan), D, 1.3, 3, 1.0)) == list(np.argmin(D, axis=1))
+    # weight 0: the key is D, the decision the prototypes'
+    assert list(members_decide(D, dk, D, 1.3, 3, 0.0)) == list(np.argmin(D, axis=1))
+    # the rule by its definition on random shortlists: among the shortlisted, the least D x (d_k / Dr) ^ 0.5, d_k the
+    # mean of the 3 nearest members (scikit-learn)
     rng = np.random.default_rng(5)
     D = rng.uniform(1.0, 1.5, (100, 4))
+    Dr = D * rng.uniform(0.8, 1.2, (100, 4))
     Dm = rng.uniform(0.1, 2.0, (100, 20))
     mc = rng.integers(0, 4, 20)
     mc[:4] = np.arange(4)
     ref = _knn_sklearn(Dm, mc, 4, 3)
     short = member_shortlist(D, 1.25, 3)
-    got = members_decide(D, class_knn(Dm, mc, 4, 3), 1.25, 3)
+    got = members_decide(D, class_knn(Dm, mc, 4, 3), Dr, 1.25, 3, 0.5)
+    moved = 0
     for i in range(100):
         cand = np.flatnonzero(short[i])
-        want = cand[np.argmin(ref[i, cand])] if len(cand) else np.argmin(D[i])
+        want = cand[np.argmin(D[i, cand] * np.sqrt(ref[i, cand] / Dr[i, cand]))] if len(cand) else np.argmin(D[i])
         assert got[i] == want, i
+        moved += want != np.argmin(D[i])
+    assert moved > 5
 
 
 def test_member_statistic():
-    dk = np.array([[0.2, np.nan], [0.3, 0.1]])
-    D = np.array([[0.1, 0.2], [0.0, 0.05]])
-    got = member_statistic(dk, D)
-    assert got[0, 0] == pytest.approx(2.0) and np.isnan(got[0, 1]) and np.isnan(got[1, 0]) and got[1, 1] == pytest.approx(2.0)
+    # hand-worked: each searched prototype's d_k over the least d_k among the others; NaN without a rival or a d_k
+    dk = np.array([[0.2, np.nan, 0.4], [0.3, 0.1, 0.6], [np.nan, 0.5, np.nan]])
+    got = member_statistic(dk)
+    want = np.array([[0.5, np.nan, 2.0], [3.0, 1 / 3, 6.0], [np.nan, np.nan, np.nan]])
+    np.testing.assert_allclose(got, want)
 
 
 def _loo(v):   # each value's p-value among all, itself counted: #{j: v_j >= v_i} / m (written out)
@@ -107,8 +115,9 @@ def _heldout(rng, n):
 
 @pytest.mark.parametrize("within", [0.0, 1.3])
 def test_calibration_joins_the_members_p_value(within):
-    """The held-out views' member statistics d_k / D at the decided prototype (decided as the label stage decides:
-    members_decide) are kept sorted, and the member cut is the split-conformal cut of Fisher's combination of the
+    """The held-out views' member statistics (d_k of the decided prototype over the least d_k of the others, by its
+    definition here) at the decided prototype (decided as the label stage decides: D x (d_k / Dr) ^ 0.5 among the
+    shortlisted) are kept sorted, and the member cut is the split-conformal cut of Fisher's combination of the
     score, the ratio's leave-one-out p-value (the ratio of the view's least distance) and the statistic's; the cut
     without the members stays the one computed without them."""
     rng = np.random.default_rng(17)
@@ -121,12 +130,14 @@ def test_calibration_joins_the_members_p_value(within):
     least = np.argmin(D, axis=1)
     r = best_second_ratio(D)[j, least]
     short = member_shortlist(D, within, 3)
-    b = np.array([np.flatnonzero(short[i])[np.argmin(dk[i, short[i]])] if short[i].any() else least[i] for i in j])
+    Dr = D * np.exp(rng.normal(0.0, 0.1, D.shape))
+    key = D * np.sqrt(dk / Dr)
+    b = np.array([np.flatnonzero(short[i])[np.argmin(key[i, short[i]])] if short[i].any() else least[i] for i in j])
     if within > 0:
         assert (b != least).sum() > 10
-    x = dk[j, b] / D[j, b]
+    x = np.array([dk[i, b[i]] / np.delete(dk[i], b[i]).min() for i in j])
     plain = view_ratio_calibration(D, d, own, own_up, fields, 0.05)
-    got = view_ratio_calibration(D, d, own, own_up, fields, 0.05, members=(dk, within, 3, True))
+    got = view_ratio_calibration(D, d, own, own_up, fields, 0.05, members=(dk, Dr, within, 3, 0.5, True))
     assert np.array_equal(got["unknown_view_members"], np.sort(x))
     assert got["unknown_view_ratio_cut"] == plain["unknown_view_ratio_cut"]
     want = conformal_cut(_fisher(s, _loo(r), _loo(x)), 0.05)
@@ -134,4 +145,4 @@ def test_calibration_joins_the_members_p_value(within):
     assert not np.isclose(got["unknown_view_member_cut"], plain["unknown_view_ratio_cut"])
     # decision only (no score): no member attributes
     assert "unknown_view_members" not in view_ratio_calibration(D, d, own, own_up, fields, 0.05,
-                                                                members=(dk, within, 3, False))
+                                                                members=(dk, Dr, within, 3, 0.5, False))

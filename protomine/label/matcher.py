@@ -147,6 +147,7 @@ class Matcher:
     member_k: int = 0
     member_within: float = 0.0
     member_top: int = 3
+    member_weight: float = 0.5
     member_score: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
@@ -310,7 +311,7 @@ class Matcher:
         best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         dk = np.full(D.shape, np.nan)
         if self.members is not None:   # ``[mine] label_members``: the members decide among close prototypes
-            best, dk = self.member_decision(X, W, D, best, own_members)
+            best, dk = self.member_decision(X, W, D, Dr, best, own_members)
         # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
         stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, fit_scale, upright, self.scales)
                          if self.stretch_refine else fit_scale)
@@ -332,9 +333,9 @@ class Matcher:
                     x = scale_stretch(stretch_scale)
                     pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
                 if self.view_members is not None:   # ``[mine] label_members_score``: and with the members' p-value
-                    xm = member_statistic(dk, D)
+                    xm = member_statistic(dk)
                     pm = ratio_pvalue(self.view_members, np.nan_to_num(xm, nan=np.inf))
-                    S = np.where(np.isfinite(xm), fisher_combine_many(S, pr, *pu, pm), 0.0)
+                    S = fisher_combine_many(S, pr, *pu, np.where(np.isfinite(xm), pm, 1.0))
                 else:
                     S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
@@ -354,20 +355,18 @@ class Matcher:
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
                 "rotation": rotation, "best": best}
 
-    def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, best: np.ndarray,
+    def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, Dr: np.ndarray, best: np.ndarray,
                         own_members: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
-        """``[mine] label_members`` = k: (best (n,), d_k (n, K)).  A view whose decision distances D (n, K) hold at least
-        two prototypes within ``member_within`` x its least (the first ``member_top`` of them: ``member_shortlist``)
-        is decided among them by d_k, the mean of its k smallest pose-searched distances to each one's members
-        (``mine.memberknn``; Cover & Hart 1967); with ``member_score`` every view's d_k at its decided prototype is
-        computed too.  d_k is NaN where not searched.  ``own_members`` (n,): the member index of each view's own
-        object, left out of its row (-1: none; the held-out views of the calibration)."""
+        """``[mine] label_members`` = k: (best (n,), d_k (n, K)), d_k the mean of a view's k smallest pose-searched
+        distances to each prototype's members (``mine.memberknn``; the k-NN rule, Cover & Hart 1967), NaN where not
+        searched.  Searched: each view's first ``member_top`` prototypes by decision distance D (n, K) when
+        ``member_score`` (the statistic needs the decided one and its rivals), else only in the views with at least two
+        of them within ``member_within`` x their least (the ones the members decide: ``members_decide``, with the
+        scored distances Dr (n, K)).  ``own_members`` (n,): the member index of each view's own object, left out of its
+        row (-1: none; the held-out views of the calibration)."""
         n, K = D.shape
-        short = member_shortlist(D, self.member_within, self.member_top)
-        need = short.copy()
-        rows = np.flatnonzero(best >= 0)
-        if self.member_score:
-            need[rows, best[rows]] = True
+        need = (member_shortlist(D, np.inf, self.member_top) if self.member_score
+                else member_shortlist(D, self.member_within, self.member_top))
         mem = self.members
         groups = [(np.flatnonzero(need[:, c]), np.flatnonzero(mem.cluster == c)) for c in range(K)]
         Dm = searched_distances(X, W, mem.P, mem.V, mem.aspect, groups, self.scales,
@@ -376,13 +375,16 @@ class Matcher:
             own = np.asarray(own_members, np.int64)
             Dm[np.flatnonzero(own >= 0), own[own >= 0]] = np.inf
         dk = np.where(need, class_knn(Dm, mem.cluster, K, self.member_k), np.nan)
-        return members_decide(D, dk, self.member_within, self.member_top), dk
+        dk = np.where(np.isfinite(dk), dk, np.nan)
+        if self.member_within < 1:
+            return best, dk
+        return members_decide(D, dk, Dr, self.member_within, self.member_top, self.member_weight), dk
 
 
 def member_shortlist(D: np.ndarray, within: float, top: int) -> np.ndarray:
     """(n, K) bool: each view's first ``top`` prototypes by decision distance D (n, K) (ties by index) within ``within``
-    x its least, in rows where at least two are (the views the members decide: ``[mine] label_members_within``);
-    all False when ``within`` < 1."""
+    x its least, in rows where at least two are (``[mine] label_members_within``, ``label_members_top``); all False
+    when ``within`` < 1."""
     D = np.where(np.isfinite(D), np.asarray(D, np.float64), np.inf)
     out = np.zeros(D.shape, bool)
     if within < 1 or D.shape[1] < 2 or not len(D):
@@ -390,34 +392,44 @@ def member_shortlist(D: np.ndarray, within: float, top: int) -> np.ndarray:
     order = np.argsort(D, axis=1, kind="stable")[:, :max(int(top), 0)]
     i = np.arange(len(D))[:, None]
     least = D.min(axis=1, keepdims=True)
-    out[i, order] = np.isfinite(D[i, order]) & (D[i, order] <= within * least)
+    out[i, order] = np.isfinite(D[i, order]) & ((D[i, order] <= within * least) if np.isfinite(within) else True)
     out[out.sum(axis=1) < 2] = False
     return out
 
 
-def members_decide(D: np.ndarray, dk: np.ndarray, within: float, top: int) -> np.ndarray:
+def members_decide(D: np.ndarray, dk: np.ndarray, Dr: np.ndarray, within: float, top: int, weight: float) -> np.ndarray:
     """best (n,): each view's prototype of least decision distance D (n, K) (-1: none), except that a view with a
-    ``member_shortlist`` takes, among its shortlisted prototypes with a d_k (n, K) (NaN: not searched), the one of
-    least d_k (ties: the nearer by D)."""
+    ``member_shortlist`` takes, among its shortlisted prototypes with a d_k (n, K) (NaN: not searched), the least
+    D x (d_k / Dr) ^ weight (ties: the nearer by D): the decision distance corrected by how much better or worse the
+    prototype's nearest members fit the view than the prototype itself does (Dr (n, K): the scored distance, the pose
+    search's against the prototype; d_k is the same search against members)."""
     Df = np.where(np.isfinite(D), np.asarray(D, np.float64), np.inf)
     best = np.where(np.isfinite(Df).any(axis=1), np.argmin(Df, axis=1), -1)
     short = member_shortlist(Df, within, top)
-    dk = np.where(short & np.isfinite(dk), dk, np.inf)
-    amb = np.flatnonzero((short.sum(axis=1) > 1) & np.isfinite(dk).any(axis=1))
+    Dr = np.asarray(Dr, np.float64)
+    ok = short & np.isfinite(dk) & np.isfinite(Dr) & (Dr > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        key = np.where(ok, Df * (np.where(ok, dk, 1.0) / np.where(ok, Dr, 1.0)) ** weight, np.inf)
+    amb = np.flatnonzero((short.sum(axis=1) > 1) & (ok.sum(axis=1) > 1))
     for i in amb:
-        cand = np.flatnonzero(np.isfinite(dk[i]))
-        best[i] = cand[np.lexsort((Df[i, cand], dk[i, cand]))[0]]
+        cand = np.flatnonzero(ok[i])
+        best[i] = cand[np.lexsort((Df[i, cand], key[i, cand]))[0]]
     return best
 
 
-def member_statistic(dk: np.ndarray, D: np.ndarray) -> np.ndarray:
-    """The members' novelty statistic (n, K) (``[mine] label_members_score``; larger: less like the class's views):
-    d_k / D, the view's k-nearest-member distance over its decision distance to the prototype (a never-mined shape fits
-    the prototype, its members' blurred mean, about as well as the class's views do, but no single member); NaN
-    where either is missing."""
-    dk, D = np.asarray(dk, np.float64), np.asarray(D, np.float64)
-    ok = np.isfinite(dk) & np.isfinite(D) & (D > 0)
-    return np.where(ok, dk / np.where(ok, D, 1.0), np.nan)
+def member_statistic(dk: np.ndarray) -> np.ndarray:
+    """The members' novelty statistic (n, K) (``[mine] label_members_score``; larger: less like that class's views):
+    d_k(c) / min over the other searched prototypes c' of d_k(c'), the k-NN margin of prototype c among the view's
+    searched shortlist (dk (n, K), NaN where not searched); NaN where c has no d_k or no rival has one.  A never-mined
+    shape fits a prototype, its members' blurred mean, about as well as the class's own views do, but not the class's
+    single members better than a rival's."""
+    dk = np.asarray(dk, np.float64)
+    fin = np.isfinite(dk)
+    big = np.where(fin, dk, np.inf)
+    part = np.sort(big, axis=1)[:, :2] if dk.shape[1] > 1 else np.full((len(dk), 2), np.inf)
+    other = np.where(big == part[:, :1], part[:, 1:2], part[:, :1])   # the least of the others
+    ok = fin & np.isfinite(other) & (other > 0)
+    return np.where(ok, big / np.where(ok, other, 1.0), np.nan)
 
 
 def decided_ratios(D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
@@ -502,6 +514,7 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False)),
                  member_k=int(m.get("label_members", 0)) if weighted else 0,
                  member_within=float(m.get("label_members_within", 0.0)), member_top=int(m.get("label_members_top", 3)),
+                 member_weight=float(m.get("label_members_weight", 0.5)),
                  member_score=bool(m.get("label_members_score", False))))
 
 

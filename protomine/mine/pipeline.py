@@ -442,7 +442,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     has, cams = got
     rows, own, own_d, own_up = rows[has], own[has], own_d[has], own_up[has]
     factor = np.ones(len(rows))
-    decide, shares, scales_found, kinds, members_dk = [], [], [], [], []
+    decide, shares, scales_found, kinds, members_dk, scored = [], [], [], [], [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
     views = [store.read_single_views(rows[sl]) for sl in slices]
     # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
@@ -474,6 +474,9 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
             Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
             members_dk.append(m["member_distance"])
+            Dr = np.array(m["scored_distance"], np.float64)   # the scored distances, the own prototype's leave-one-out
+            Dr[j, own[sl]] = np.where(good, own_d[sl], Dr[j, own[sl]])
+            scored.append(Dr)
             shares.append(m["unseen_share"])
             scales_found.append(m.get("stretch_scale", m["fit_scale"]))   # ``[mine] stretch_refine``: the continuous scale
             kinds.append(m["upright"])
@@ -490,8 +493,9 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
                                             fit_scale=np.concatenate(scales_found) if stretch else None,
                                             upright=np.concatenate(kinds) if stretch and bool(
                                                 mc.get("view_normalise_stretch_face", False)) else None,
-                                            members=(dk, float(mc.get("label_members_within", 0.0)),
+                                            members=(dk, np.concatenate(scored), float(mc.get("label_members_within", 0.0)),
                                                      int(mc.get("label_members_top", 3)),
+                                                     float(mc.get("label_members_weight", 0.5)),
                                                      bool(mc.get("label_members_score", False)))
                                             if with_members else None))
     return fields, attrs
@@ -529,10 +533,11 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     the views decided on the same face kind (a Mondrian split, Vovk, Gammerman & Shafer 2005), and each kind's sorted
     stretches are returned too ("unknown_view_stretch_canonical", "unknown_view_stretch_other"), a kind with fewer than
     ``MIN_FACE_STRETCH_VIEWS`` views keeping the pooled p-values (and no attribute).
-    ``members`` (``[mine] label_members``; None: off): (d_k (Q, K), within, top, score), each view's k-nearest-member
-    distances as the matcher gives them (its own object left out; NaN where not searched) and the keys
-    label_members_within / _top / _score: each view is decided as the label stage decides it
-    (``label.matcher.members_decide`` on D); with ``score`` its member statistic at the decided prototype
+    ``members`` (``[mine] label_members``; None: off): (d_k (Q, K), Dr (Q, K), within, top, weight, score), each view's
+    k-nearest-member distances as the matcher gives them (its own object left out; NaN where not searched), its scored
+    distances (the own prototype's leave-one-out) and the keys label_members_within / _top / _weight / _score: each
+    view is decided as the label stage decides it (``label.matcher.members_decide`` on D; within < 1: by D); with
+    ``score`` its member statistic at the decided prototype
     (``label.matcher.member_statistic``) joins the combination by its leave-one-out p-value among the other views'
     (larger less conforming; views without one left out), and the sorted statistics ("unknown_view_members") and the
     cut on the joined values ("unknown_view_member_cut") are returned too; "unknown_view_ratio_cut" stays the one
@@ -545,10 +550,11 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     xm = None
     if members is not None:   # ``[mine] label_members``: the class as the label stage decides it; the ratio stays the least's
         from ..label.matcher import member_statistic, members_decide
-        dk, within, top, with_score = members
+        dk, Dr, within, top, weight, with_score = members
         dk = np.asarray(dk, np.float64)[ok]
-        b = members_decide(D[ok], dk, within, top)
-        xm = member_statistic(dk, D[ok])[np.arange(len(b)), b] if with_score else None
+        if within >= 1:
+            b = members_decide(D[ok], dk, np.asarray(Dr, np.float64)[ok], within, top, weight)
+        xm = member_statistic(dk)[np.arange(len(b)), b] if with_score else None
     up = np.asarray(own_up, bool)[ok]
     k = np.asarray(own)[ok]
     s = face_kind_scores(np.asarray(d)[ok], k, up, fields["single_view_mu"], fields["single_view_sigma"],
