@@ -146,3 +146,45 @@ def test_calibration_joins_the_members_p_value(within):
     # decision only (no score): no member attributes
     assert "unknown_view_members" not in view_ratio_calibration(D, d, own, own_up, fields, 0.05,
                                                                 members=(dk, Dr, within, 3, 0.5, False))
+
+
+def test_matcher_joins_the_members_p_value(tiny_world, tmp_path):
+    """A library mined with label_members = 1 and label_members_score records the held-out statistics and their cut;
+    the matcher's d_k is each view's least pose-searched distance to each class's members (their fused volumes read
+    from the mined store, searched here one class at a time, the nearest by scikit-learn), and its score is Fisher's
+    combination (scipy's chi-squared tail) of the score without the members (the library without their attributes)
+    and the statistic's conformal p-value (1 + #{x_i >= x}) / (m + 1), written out; the flag uses the member cut."""
+    from protomine.config import load_config
+    from protomine.ingest.sharded import open_store
+    from protomine.ingest.volume import matching_features
+    from protomine.label.matcher import make_matcher
+    from protomine.mine.pipeline import mine_store, store_aspect
+    from protomine.mine.tilts import tilt_pose_distances
+    cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True,
+                                                      "label_members": 1, "label_members_score": True}})
+    lib, _ = mine_store(tiny_world["store"], tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    assert "unknown_view_members" in lib.attrs and "unknown_view_member_cut" in lib.attrs
+    cal = np.asarray(lib.attrs["unknown_view_members"], np.float64)
+    st = open_store(tiny_world["store"])
+    views, cams = st.read_single_views(np.arange(len(st.single_object))), np.asarray(st.single_camera)
+    mt = make_matcher(lib, cfg)
+    assert mt.unknown_cut == float(lib.attrs["unknown_view_member_cut"])
+    got = mt.match(views, cams)
+    # the twin: each class's members searched apart, d_1 by scikit-learn's nearest neighbour
+    X, W = mt.features(views)
+    rows = np.array([list(st.ids).index(str(o)) for o in lib.members["object"]])
+    P, V = matching_features(st.read_volume_at(rows), free_weight=mt.free_weight, colour_weight=mt.colour_weight)
+    asp = store_aspect(st, cfg)[rows]
+    mc = np.asarray(lib.members["cluster"])
+    dk = np.empty((len(views), 2))
+    for c in range(2):
+        j = np.flatnonzero(mc == c)
+        Dc = tilt_pose_distances(X, W, P[j], V[j], aspect=asp[j], scales=mt.scales, grid=None).D
+        dk[:, c] = _knn_sklearn(Dc, np.zeros(len(j), int), 1, 1)[:, 0]
+    np.testing.assert_allclose(got["member_distance"], dk, rtol=1e-5)
+    attrs = {k: v for k, v in lib.attrs.items() if k not in ("unknown_view_members", "unknown_view_member_cut")}
+    three = make_matcher(Library(lib.prototypes, lib.members, attrs, lib.path), cfg).match(views, cams)["score"]
+    x3 = np.exp(-stats.chi2.isf(np.clip(three, 1e-300, 1.0), 6) / 2)   # S = chi2_6 tail of -2 ln x: x back
+    stat = dk / dk[:, ::-1]
+    pm = np.array([(1 + np.sum(cal >= v - 1e-12)) / (len(cal) + 1) for v in stat.ravel()]).reshape(stat.shape)
+    np.testing.assert_allclose(got["score"], stats.chi2.sf(-2 * np.log(x3 * pm), 8), rtol=1e-6, atol=1e-9)
