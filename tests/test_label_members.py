@@ -105,6 +105,28 @@ def _fisher(*ps):   # scipy's Fisher combination, one view at a time
     return np.array([stats.combine_pvalues(list(p), method="fisher")[1] for p in zip(*ps)])
 
 
+def test_member_p_values_per_class():
+    """Label time: (1 + #{x_i >= x}) / (m + 1) among the held-out values of the column's class when it has >= 19 of
+    them, else among all; 1 where there is no statistic.  Held out: leave-one-out, #{j: x_j >= x_i} / m within the
+    class (or all)."""
+    from protomine.mine.openset import member_loo_pvalues, member_pvalues
+    rng = np.random.default_rng(2)
+    values = np.r_[rng.uniform(0.5, 1.0, 25), rng.uniform(1.0, 2.0, 30), rng.uniform(0.1, 3.0, 5)]
+    classes = np.r_[np.zeros(25, int), np.ones(30, int), np.full(5, 2)]
+    x = rng.uniform(0.3, 2.5, (40, 3))
+    x[3, 1] = np.nan
+    got = member_pvalues(values, classes, x)
+    for i in range(40):
+        for c in range(3):
+            pool = values[classes == c] if c < 2 else values
+            want = 1.0 if np.isnan(x[i, c]) else (1 + np.sum(pool >= x[i, c])) / (len(pool) + 1)
+            assert got[i, c] == pytest.approx(want)
+    loo = member_loo_pvalues(values, classes)
+    for i in range(len(values)):
+        pool = values[classes == classes[i]] if classes[i] < 2 else values
+        assert loo[i] == pytest.approx(np.mean(pool >= values[i]))
+
+
 def _heldout(rng, n):
     own = rng.integers(0, 3, n)
     D = np.exp(rng.normal(-3.0, 0.3, (n, 3)))
@@ -136,11 +158,17 @@ def test_calibration_joins_the_members_p_value(within):
     if within > 0:
         assert (b != least).sum() > 10
     x = np.array([dk[i, b[i]] / np.delete(dk[i], b[i]).min() for i in j])
+    px = np.empty(n)   # among the views decided on the same prototype (each decides >= 19 here)
+    for c in range(3):
+        assert (b == c).sum() >= 19
+        px[b == c] = _loo(x[b == c])
     plain = view_ratio_calibration(D, d, own, own_up, fields, 0.05)
     got = view_ratio_calibration(D, d, own, own_up, fields, 0.05, members=(dk, Dr, within, 3, 0.5, True))
-    assert np.array_equal(got["unknown_view_members"], np.sort(x))
+    order = np.lexsort((x, b))
+    assert np.array_equal(got["unknown_view_members"], x[order])
+    assert np.array_equal(got["unknown_view_member_classes"], b[order])
     assert got["unknown_view_ratio_cut"] == plain["unknown_view_ratio_cut"]
-    want = conformal_cut(_fisher(s, _loo(r), _loo(x)), 0.05)
+    want = conformal_cut(_fisher(s, _loo(r), px), 0.05)
     assert np.isclose(got["unknown_view_member_cut"], want, rtol=1e-9)
     assert not np.isclose(got["unknown_view_member_cut"], plain["unknown_view_ratio_cut"])
     # decision only (no score): no member attributes

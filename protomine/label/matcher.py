@@ -79,7 +79,8 @@ from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..mine.memberknn import Members, class_knn, load_members, searched_distances
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import best_second_ratio, fisher_combine_many, library_cut, ratio_pvalue, rule_scores, scale_stretch
+from ..mine.openset import (best_second_ratio, fisher_combine_many, library_cut, member_pvalues, ratio_pvalue, rule_scores,
+                             scale_stretch)
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
@@ -162,6 +163,7 @@ class Matcher:
     view_stretch_kinds: tuple = field(init=False)
     members: Members | None = field(init=False)
     view_members: np.ndarray | None = field(init=False)
+    view_member_classes: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -186,6 +188,9 @@ class Matcher:
         self.view_members = (np.asarray(vm, np.float64) if self.members is not None and self.member_score
                              and self.view_ratios is not None and vm is not None
                              and "unknown_view_member_cut" in self.library.attrs else None)
+        self.view_member_classes = (np.asarray(self.library.attrs.get("unknown_view_member_classes",
+                                                                      np.full(len(vm), -1)), np.int64)
+                                    if self.view_members is not None else None)
         if self.view_members is not None:
             self.unknown_cut = float(self.library.attrs["unknown_view_member_cut"])
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
@@ -333,9 +338,8 @@ class Matcher:
                     x = scale_stretch(stretch_scale)
                     pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
                 if self.view_members is not None:   # ``[mine] label_members_score``: and with the members' p-value
-                    xm = member_statistic(dk)
-                    pm = ratio_pvalue(self.view_members, np.nan_to_num(xm, nan=np.inf))
-                    S = fisher_combine_many(S, pr, *pu, np.where(np.isfinite(xm), pm, 1.0))
+                    pm = member_pvalues(self.view_members, self.view_member_classes, member_statistic(dk))
+                    S = fisher_combine_many(S, pr, *pu, pm)
                 else:
                     S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)

@@ -538,11 +538,12 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     distances (the own prototype's leave-one-out) and the keys label_members_within / _top / _weight / _score: each
     view is decided as the label stage decides it (``label.matcher.members_decide`` on D; within < 1: by D); with
     ``score`` its member statistic at the decided prototype
-    (``label.matcher.member_statistic``) joins the combination by its leave-one-out p-value among the other views'
-    (larger less conforming; views without one left out), and the sorted statistics ("unknown_view_members") and the
-    cut on the joined values ("unknown_view_member_cut") are returned too; "unknown_view_ratio_cut" stays the one
+    (``label.matcher.member_statistic``) joins the combination by its leave-one-out p-value among the other views
+    decided on the same prototype (``openset.member_loo_pvalues``; larger less conforming; views without one left out), and
+    the statistics with their decided prototypes ("unknown_view_members", "unknown_view_member_classes") and the cut
+    on the joined values ("unknown_view_member_cut") are returned too; "unknown_view_ratio_cut" stays the one
     without them (a label stage that cannot find the members uses it)."""
-    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, scale_stretch
+    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, member_loo_pvalues, scale_stretch
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
     b = np.argmin(D[ok], axis=1)
@@ -578,8 +579,11 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
     if xm is not None and np.isfinite(xm).sum() > 1:
         has = np.isfinite(xm)
-        out["unknown_view_members"] = np.sort(xm[has])
-        joined = fisher_combine_many(s[has], loo_ratio_pvalues(r)[has], *(p[has] for p in pu), loo_ratio_pvalues(xm[has]))
+        order = np.lexsort((xm[has], b[has]))
+        out["unknown_view_members"] = xm[has][order]                       # by decided prototype, then value
+        out["unknown_view_member_classes"] = b[has][order].astype(np.int64)
+        joined = fisher_combine_many(s[has], loo_ratio_pvalues(r)[has], *(p[has] for p in pu),
+                                     member_loo_pvalues(xm[has], b[has]))
         out["unknown_view_member_cut"] = conformal_cut(joined, alpha)
     return out
 
