@@ -413,11 +413,19 @@ def rule_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     parts = []
     with bar(progress, "unknown rule calibration", total=len(rows), unit="views") as b:
         for i0 in range(0, len(rows), chunk):
-            m = matcher.match(store.read_single_views(rows[i0:i0 + chunk]))
+            m = matcher.match(store.read_single_views(rows[i0:i0 + chunk]), own_members=own_members(lib, store, rows[i0:i0 + chunk]))
             parts.append((m["distance"], m["score"], m["upright"]))
             b.advance(len(m["distance"]))
     D, S, U = (np.concatenate(a) for a in zip(*parts))
     return calibrate_rule(D, S, U, own, own_d, own_s, own_up, alpha)
+
+
+def own_members(lib: Library, store: ObjectStore, rows: np.ndarray) -> np.ndarray:
+    """(Q,) the library member index of the object of each of the store's single views ``rows`` (-1: not a member):
+    with ``[mine] label_members`` a held-out view's own object is not its own neighbour (leave-one-object-out)."""
+    mids = {str(o): j for j, o in enumerate(lib.members["object"])}
+    ids = np.asarray(store.ids).astype(str)
+    return np.array([mids.get(ids[o], -1) for o in np.asarray(store.single_object)[rows]], np.int64)
 
 
 def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np.ndarray, own_d: np.ndarray,
@@ -451,10 +459,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     # then leaves nothing behind); results taken in chunk order: the same bits as one chunk after another
     local = threading.local()
 
-    # ``[mine] label_members``: each view's own object is not its own neighbour (leave-one-object-out)
-    mids = {str(o): j for j, o in enumerate(lib.members["object"])}
-    ids = np.asarray(store.ids).astype(str)
-    own_member = np.array([mids.get(ids[o], -1) for o in np.asarray(store.single_object)[rows]], np.int64)
+    own_member = own_members(lib, store, rows)
 
     def match(i: int) -> dict:
         if getattr(local, "matcher", None) is None:
