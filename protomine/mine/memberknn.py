@@ -37,8 +37,10 @@ class Members:
 def member_rows(library, store=None):
     """(store, rows (M,)) holding the library's members' fused volumes: ``store`` when it holds every member (by
     object id, on the same grid), else the library's recorded store (as recorded, or beside the library) when it does;
-    None when none does."""
+    None when none does or the library has no members."""
     from ..ingest.sharded import open_store
+    if not len(library.members.get("object", ())):   # a library without members (an in-memory one of the bench)
+        return None
     ids = [str(o) for o in library.members["object"]]
     cands = [] if store is None else [store]
     if library.store_path:
