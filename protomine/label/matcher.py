@@ -368,7 +368,7 @@ class Matcher:
         of them within ``member_within`` x their least (the ones the members decide: ``members_decide``, with the
         scored distances Dr (n, K)).  ``own_members`` (n,): the member index of each view's own object, left out of its
         row (-1: none; the held-out views of the calibration)."""
-        n, K = D.shape
+        K = D.shape[1]
         need = (member_shortlist(D, np.inf, self.member_top) if self.member_score
                 else member_shortlist(D, self.member_within, self.member_top))
         mem = self.members
@@ -378,8 +378,8 @@ class Matcher:
         if own_members is not None:
             own = np.asarray(own_members, np.int64)
             Dm[np.flatnonzero(own >= 0), own[own >= 0]] = np.inf
-        dk = np.where(need, class_knn(Dm, mem.cluster, K, self.member_k), np.nan)
-        dk = np.where(np.isfinite(dk), dk, np.nan)
+        dk = class_knn(Dm, mem.cluster, K, self.member_k)
+        dk = np.where(need & np.isfinite(dk), dk, np.nan)
         if self.member_within < 1:
             return best, dk
         return members_decide(D, dk, Dr, self.member_within, self.member_top, self.member_weight), dk
