@@ -91,6 +91,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..mine.library import Library
+from ..mine.memberknn import class_knn  # noqa: F401  (the k-nearest-neighbour distance per cluster: its home is mine.memberknn)
 from ..mine.tilts import TiltGrid
 
 AGREE_TOP = 10
@@ -200,21 +201,6 @@ def fused_key(margin: np.ndarray, one_shot: np.ndarray, power: float, claim: flo
     prod = m * np.where(claimed, d, 1.0) ** power
     top = float(prod[claimed].max()) if claimed.any() else 0.0
     return np.where(claimed, prod, np.where(np.isfinite(m), top + 1.0 + m, np.inf))
-
-
-def class_knn(Dm: np.ndarray, member_cluster: np.ndarray, n_clusters: int, k: int) -> np.ndarray:
-    """d_k (n, K): the mean of each object's k smallest finite distances to the members of each cluster (fewer when the
-    cluster has fewer finite ones; inf when it has none).  Dm (n, M): distances of n objects to M members;
-    member_cluster (M,) their clusters."""
-    Dm = np.asarray(Dm, np.float64)
-    mc = np.asarray(member_cluster, np.int64)
-    out = np.full((len(Dm), n_clusters), np.inf)
-    for c in range(n_clusters):
-        d = np.sort(np.where(np.isfinite(Dm[:, mc == c]), Dm[:, mc == c], np.inf), axis=1)[:, :k]
-        n_fin = np.isfinite(d).sum(axis=1)
-        tot = np.where(np.isfinite(d), d, 0.0).sum(axis=1)
-        out[:, c] = np.where(n_fin > 0, tot / np.maximum(n_fin, 1), np.inf)
-    return out
 
 
 def knn_margin(Dm: np.ndarray, member_cluster: np.ndarray, n_clusters: int, b: int, k: int) -> np.ndarray:

@@ -94,6 +94,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
+from ..mine.memberknn import member_rows, searched_distances
 from ..mine.engine import align_to_prototype, weighted_means
 from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
@@ -358,31 +359,14 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
                    world_quaternions(R_obj, store.objects["up"]), face, ex, reverse, route, rerank)
 
 
-def _member_rows(library: Library, store: ObjectStore) -> tuple[ObjectStore, np.ndarray] | None:
-    """(store, rows (M,)) holding the library's members' fused volumes: the searched store when it holds every member
-    (by object id), else the library's recorded store (as recorded, or beside the library) when it does; None when
-    neither does."""
-    from ..ingest.sharded import open_store
-    ids = [str(o) for o in library.members["object"]]
-    cands = [store]
-    if library.store_path:
-        rec = Path(library.store_path)
-        cands += [open_store(c) for c in (rec, Path(library.path).parent / rec.name) if c.is_file()]
-    for st in cands:
-        index = {str(o): i for i, o in enumerate(st.ids)}
-        if ids and all(o in index for o in ids) and tuple(st.grid_shape) == tuple(store.grid_shape):
-            return st, np.array([index[o] for o in ids], np.int64)
-    return None
-
-
 def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute, d1: np.ndarray,
                 weights: tuple[float, float], scales: tuple[float, ...], grid: TiltGrid | None, k: int, n: int,
                 fuse: float) -> KnownRoute:
     """``[mine] find_members``: the taken route with its first ``n`` objects (by its key; the example left out) ranked
     by the margin on the library's members (``knownclass.knn_margin``, k nearest per cluster; fused with the example's
     own distance d1 (N,) as the route is with ``fuse`` > 0), the rest after them in the route's order.  Unchanged
-    when the members' volumes cannot be found (``_member_rows``)."""
-    found = _member_rows(library, store)
+    when the members' volumes cannot be found (``mine.memberknn.member_rows``)."""
+    found = member_rows(library, store)
     short = _nearest(store, ex, route.key)[:n]
     if found is None or len(short) < 2:
         return route
@@ -393,11 +377,10 @@ def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute
     mcl = np.asarray(library.members["cluster"])
     own = np.flatnonzero(mcl == route.cluster)
     rest = np.flatnonzero(mcl != route.cluster)
-    Dm = np.empty((len(short), len(rows)))
-    for j in own:       # b's members each as the one prototype, as find searches its example (every tilt refined)
-        Dm[:, j] = tilt_pose_distances(Xs, Ws, P[j:j + 1], V[j:j + 1], aspect=asp[j:j + 1], scales=scales, grid=grid).D[:, 0]
-    if len(rest):       # the other members in one search, as mining assigns to its prototypes (a quarter of the CPU)
-        Dm[:, rest] = tilt_pose_distances(Xs, Ws, P[rest], V[rest], aspect=asp[rest], scales=scales, grid=grid).D
+    # b's members each as the one prototype, as find searches its example (every tilt refined); the other members in
+    # one search, as mining assigns to its prototypes (a quarter of the CPU)
+    every = np.arange(len(short))
+    Dm = searched_distances(Xs, Ws, P, V, asp, [(every, [j]) for j in own] + [(every, rest)], scales, grid)
     member_ids = np.asarray(library.members["object"]).astype(str)
     ids = np.asarray(store.ids).astype(str)
     Dm[ids[short][:, None] == member_ids[None, :]] = np.inf   # not its own neighbour

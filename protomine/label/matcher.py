@@ -76,9 +76,11 @@ from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, sh
 from ..ingest.truncation import cut_direction, cut_pixels, view_cut
 from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
+from ..mine.memberknn import Members, class_knn, load_members, searched_distances
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
-from ..mine.openset import best_second_ratio, fisher_combine_many, library_cut, ratio_pvalue, rule_scores, scale_stretch
+from ..mine.openset import (best_second_ratio, fisher_combine_many, library_cut, member_pvalues, ratio_pvalue, rule_scores,
+                             scale_stretch)
 from ..mine.reliability import reliable_distances
 from ..mine.viewdistance import score_mass, score_rings, tilted_distances
 from ..progress import Bar, Recorder, bar, detail, replay
@@ -143,6 +145,11 @@ class Matcher:
     unseen_score: bool = False
     stretch_score: bool = False
     stretch_refine: bool = False
+    member_k: int = 0
+    member_within: float = 0.0
+    member_top: int = 3
+    member_weight: float = 0.5
+    member_score: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -154,6 +161,9 @@ class Matcher:
     view_unseen: np.ndarray | None = field(init=False)
     view_stretch: np.ndarray | None = field(init=False)
     view_stretch_kinds: tuple = field(init=False)
+    members: Members | None = field(init=False)
+    view_members: np.ndarray | None = field(init=False)
+    view_member_classes: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -171,6 +181,18 @@ class Matcher:
         self.view_stretch_kinds = tuple(np.asarray(self.library.attrs[a], np.float64)
                                         if self.view_stretch is not None and a in self.library.attrs else self.view_stretch
                                         for a in ("unknown_view_stretch_canonical", "unknown_view_stretch_other"))
+        # ``[mine] label_members``: the library's members' fused volumes, from the store it was mined from (none found: off)
+        self.members = (load_members(self.library, self.free_weight, self.colour_weight) if self.member_k > 0
+                        and self.library.n_clusters > 1 else None)
+        vm = self.library.attrs.get("unknown_view_members")   # ``[mine] label_members_score``: the held-out statistics
+        self.view_members = (np.asarray(vm, np.float64) if self.members is not None and self.member_score
+                             and self.view_ratios is not None and vm is not None
+                             and "unknown_view_member_cut" in self.library.attrs else None)
+        self.view_member_classes = (np.asarray(self.library.attrs.get("unknown_view_member_classes",
+                                                                      np.full(len(vm), -1)), np.int64)
+                                    if self.view_members is not None else None)
+        if self.view_members is not None:
+            self.unknown_cut = float(self.library.attrs["unknown_view_member_cut"])
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -198,7 +220,8 @@ class Matcher:
         return X, (W if self.weighted else np.ones_like(W))
 
     def match(self, volumes: np.ndarray, cameras: np.ndarray | None = None,
-              sizes: np.ndarray | None = None, cuts: list | None = None) -> dict[str, np.ndarray]:
+              sizes: np.ndarray | None = None, cuts: list | None = None,
+              own_members: np.ndarray | None = None) -> dict[str, np.ndarray]:
         """Volumes (n, 6, R, A, H) -> distance, score, yaw_deg, fit_scale, face (n, K), rotation (n, K, 3, 3)
         (object frame <- prototype frame, modulo the face's symmetry) and best (n,) (-1 = none).
         ``cameras`` (n, 3): each view's camera direction in its object frame (:func:`lift_frame`); with the
@@ -222,7 +245,8 @@ class Matcher:
             m = self.match(volumes.reshape((n * C,) + volumes.shape[2:])[keep],
                            None if cameras is None else np.repeat(np.asarray(cameras), C, axis=0)[keep],
                            None if sizes is None else np.repeat(np.asarray(sizes), C, axis=0)[keep],
-                           None if cuts is None else [cuts[j // C] for j in keep])
+                           None if cuts is None else [cuts[j // C] for j in keep],
+                           None if own_members is None else np.repeat(np.asarray(own_members), C)[keep])
             if n == 0:
                 return {**m, "centre": np.zeros((0, self.K), int)}
             src = np.searchsorted(keep, np.where(same, np.arange(n)[:, None] * C, np.arange(n * C).reshape(n, C)).reshape(-1))
@@ -239,7 +263,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
-                    "scored_distance": z, "view_distance": z, "unseen_share": z,
+                    "scored_distance": z, "view_distance": z, "unseen_share": z, "member_distance": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
@@ -289,6 +313,10 @@ class Matcher:
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
+        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
+        dk = np.full(D.shape, np.nan)
+        if self.members is not None:   # ``[mine] label_members``: the members decide among close prototypes
+            best, dk = self.member_decision(X, W, D, Dr, best, own_members)
         # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
         stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, fit_scale, upright, self.scales)
                          if self.stretch_refine else fit_scale)
@@ -299,6 +327,9 @@ class Matcher:
             S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
                 r = decided_ratios(D, Dq)
+                moved = np.flatnonzero((best >= 0) & (best != np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)))
+                if len(moved):   # a class the members decided takes the ratio of the view's least distance
+                    r[moved, best[moved]] = r[moved, np.argmin(np.where(np.isfinite(D[moved]), D[moved], np.inf), axis=1)]
                 pr = np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0)
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)
@@ -306,10 +337,13 @@ class Matcher:
                 if self.view_stretch is not None:   # (``view_normalise_stretch_face``: among the decided face kind's)
                     x = scale_stretch(stretch_scale)
                     pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
-                S = fisher_combine_many(S, pr, *pu)
+                if self.view_members is not None:   # ``[mine] label_members_score``: and with the members' p-value
+                    pm = member_pvalues(self.view_members, self.view_member_classes, member_statistic(dk))
+                    S = fisher_combine_many(S, pr, *pu, pm)
+                else:
+                    S = fisher_combine_many(S, pr, *pu)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
-        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
         if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
             sz = np.asarray(sizes, np.float64).reshape(-1, 2)
             rev = sym.reverse_distances(X, W, grid_aspect(sz[:, 0], sz[:, 1], self.tilts.radial_margin,
@@ -322,8 +356,84 @@ class Matcher:
                                          self.groups)
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
                 "face": face, "upright": upright,
-                "scored_distance": Dr, "view_distance": Dv, "unseen_share": share,
+                "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
                 "rotation": rotation, "best": best}
+
+    def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, Dr: np.ndarray, best: np.ndarray,
+                        own_members: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """``[mine] label_members`` = k: (best (n,), d_k (n, K)), d_k the mean of a view's k smallest pose-searched
+        distances to each prototype's members (``mine.memberknn``; the k-NN rule, Cover & Hart 1967), NaN where not
+        searched.  Searched: each view's first ``member_top`` prototypes by decision distance D (n, K) when
+        ``member_score`` (the statistic needs the decided one and its rivals), else only in the views with at least two
+        of them within ``member_within`` x their least (the ones the members decide: ``members_decide``, with the
+        scored distances Dr (n, K)).  ``own_members`` (n,): the member index of each view's own object, left out of its
+        row (-1: none; the held-out views of the calibration)."""
+        K = D.shape[1]
+        need = (member_shortlist(D, np.inf, self.member_top) if self.member_score
+                else member_shortlist(D, self.member_within, self.member_top))
+        mem = self.members
+        groups = [(np.flatnonzero(need[:, c]), np.flatnonzero(mem.cluster == c)) for c in range(K)]
+        Dm = searched_distances(X, W, mem.P, mem.V, mem.aspect, groups, self.scales,
+                                None if self.tilts.is_identity else self.tilts)
+        if own_members is not None:
+            own = np.asarray(own_members, np.int64)
+            Dm[np.flatnonzero(own >= 0), own[own >= 0]] = np.inf
+        dk = class_knn(Dm, mem.cluster, K, self.member_k)
+        dk = np.where(need & np.isfinite(dk), dk, np.nan)
+        if self.member_within < 1:
+            return best, dk
+        return members_decide(D, dk, Dr, self.member_within, self.member_top, self.member_weight), dk
+
+
+def member_shortlist(D: np.ndarray, within: float, top: int) -> np.ndarray:
+    """(n, K) bool: each view's first ``top`` prototypes by decision distance D (n, K) (ties by index) within ``within``
+    x its least, in rows where at least two are (``[mine] label_members_within``, ``label_members_top``); all False
+    when ``within`` < 1."""
+    D = np.where(np.isfinite(D), np.asarray(D, np.float64), np.inf)
+    out = np.zeros(D.shape, bool)
+    if within < 1 or D.shape[1] < 2 or not len(D):
+        return out
+    order = np.argsort(D, axis=1, kind="stable")[:, :max(int(top), 0)]
+    i = np.arange(len(D))[:, None]
+    least = D.min(axis=1, keepdims=True)
+    out[i, order] = np.isfinite(D[i, order]) & ((D[i, order] <= within * least) if np.isfinite(within) else True)
+    out[out.sum(axis=1) < 2] = False
+    return out
+
+
+def members_decide(D: np.ndarray, dk: np.ndarray, Dr: np.ndarray, within: float, top: int, weight: float) -> np.ndarray:
+    """best (n,): each view's prototype of least decision distance D (n, K) (-1: none), except that a view with a
+    ``member_shortlist`` takes, among its shortlisted prototypes with a d_k (n, K) (NaN: not searched), the least
+    D x (d_k / Dr) ^ weight (ties: the nearer by D): the decision distance corrected by how much better or worse the
+    prototype's nearest members fit the view than the prototype itself does (Dr (n, K): the scored distance, the pose
+    search's against the prototype; d_k is the same search against members)."""
+    Df = np.where(np.isfinite(D), np.asarray(D, np.float64), np.inf)
+    best = np.where(np.isfinite(Df).any(axis=1), np.argmin(Df, axis=1), -1)
+    short = member_shortlist(Df, within, top)
+    Dr = np.asarray(Dr, np.float64)
+    ok = short & np.isfinite(dk) & np.isfinite(Dr) & (Dr > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        key = np.where(ok, Df * (np.where(ok, dk, 1.0) / np.where(ok, Dr, 1.0)) ** weight, np.inf)
+    amb = np.flatnonzero((short.sum(axis=1) > 1) & (ok.sum(axis=1) > 1))
+    for i in amb:
+        cand = np.flatnonzero(ok[i])
+        best[i] = cand[np.lexsort((Df[i, cand], key[i, cand]))[0]]
+    return best
+
+
+def member_statistic(dk: np.ndarray) -> np.ndarray:
+    """The members' novelty statistic (n, K) (``[mine] label_members_score``; larger: less like that class's views):
+    d_k(c) / min over the other searched prototypes c' of d_k(c'), the k-NN margin of prototype c among the view's
+    searched shortlist (dk (n, K), NaN where not searched); NaN where c has no d_k or no rival has one.  A never-mined
+    shape fits a prototype, its members' blurred mean, about as well as the class's own views do, but not the class's
+    single members better than a rival's."""
+    dk = np.asarray(dk, np.float64)
+    fin = np.isfinite(dk)
+    big = np.where(fin, dk, np.inf)
+    part = np.sort(big, axis=1)[:, :2] if dk.shape[1] > 1 else np.full((len(dk), 2), np.inf)
+    other = np.where(big == part[:, :1], part[:, 1:2], part[:, :1])   # the least of the others
+    ok = fin & np.isfinite(other) & (other > 0)
+    return np.where(ok, big / np.where(ok, other, 1.0), np.nan)
 
 
 def decided_ratios(D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
@@ -405,7 +515,11 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  symmetric_top=int(m.get("label_symmetric", 0)), unseen=float(m.get("unseen_charge", 0.0)),
                  unseen_score=bool(weighted and m.get("view_normalise_unseen", False)),
                  stretch_score=bool(weighted and m.get("view_normalise_stretch", False)),
-                 stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False))))
+                 stretch_refine=bool(weighted and m.get("view_normalise_stretch", False) and m.get("stretch_refine", False)),
+                 member_k=int(m.get("label_members", 0)) if weighted else 0,
+                 member_within=float(m.get("label_members_within", 0.0)), member_top=int(m.get("label_members_top", 3)),
+                 member_weight=float(m.get("label_members_weight", 0.5)),
+                 member_score=bool(m.get("label_members_score", False))))
 
 
 @dataclass

@@ -23,7 +23,7 @@ import numpy as np
 from ..errors import InputError
 
 __all__ = ["conformal_rank", "conformal_cut", "library_cut", "ATTRS", "fisher_combine", "fisher_combine_many",
-           "loo_ratio_pvalues", "ratio_pvalue", "scale_stretch"]
+           "loo_ratio_pvalues", "ratio_pvalue", "scale_stretch", "member_loo_pvalues", "member_pvalues"]
 
 ATTRS = ("unknown_alpha", "unknown_cut", "unknown_calibration_views")
 
@@ -196,3 +196,43 @@ def scale_stretch(fit_scale) -> np.ndarray:
     s = np.asarray(fit_scale, np.float64)
     ok = np.isfinite(s) & (s > 0)
     return np.where(ok, np.abs(np.log(np.where(ok, s, 1.0))), np.inf)
+
+
+# --- the members' statistic (``[mine] label_members_score``) ----------------------------------------------------
+#
+# A single view's k-nearest-member margin at its decided prototype (``label.matcher.member_statistic``) enters the
+# label score as its conformal p-value among the held-out views decided on the same prototype (a Mondrian split by
+# class: each class's own views set what is usual for it), joined with the others by Fisher's combination.
+
+MIN_CLASS_MEMBER_VIEWS = 19   # a prototype that decided fewer held-out views takes the pooled p-values (with m views a
+                              # p-value is at least 1 / (m + 1): 19 can reach 0.05)
+
+
+def member_loo_pvalues(x: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """``[mine] label_members_score``: each held-out view's member statistic x (Q,) as a leave-one-out conformal p-value
+    among the views decided on the same prototype k (Q,) (a Mondrian split by class, Vovk, Gammerman & Shafer 2005),
+    or among all when its prototype decided fewer than ``MIN_CLASS_MEMBER_VIEWS`` of them (``openset.loo_ratio_pvalues``:
+    larger values less conforming)."""
+    x, k = np.asarray(x, np.float64), np.asarray(k, np.int64)
+    p = loo_ratio_pvalues(x)
+    for c in np.unique(k):
+        sel = k == c
+        if sel.sum() >= MIN_CLASS_MEMBER_VIEWS:
+            p[sel] = loo_ratio_pvalues(x[sel])
+    return p
+
+
+def member_pvalues(values: np.ndarray, classes: np.ndarray, x: np.ndarray) -> np.ndarray:
+    """``[mine] label_members_score`` at label time: the conformal p-values (n, K) of member statistics x (n, K) (column
+    c: prototype c), (1 + #{x_i >= x}) / (m + 1) among the held-out views decided on c (``values`` with their
+    ``classes``, the library's attributes), or among all of them when c decided fewer than ``MIN_CLASS_MEMBER_VIEWS``
+    (as :func:`member_loo_pvalues`); 1 where x is NaN (no statistic: nothing to join)."""
+    values, classes = np.asarray(values, np.float64), np.asarray(classes, np.int64)
+    x = np.asarray(x, np.float64)
+    xx = np.nan_to_num(x, nan=np.inf)
+    p = ratio_pvalue(values, xx)
+    for c in range(x.shape[1]):
+        sel = classes == c
+        if sel.sum() >= MIN_CLASS_MEMBER_VIEWS:
+            p[:, c] = ratio_pvalue(values[sel], xx[:, c])
+    return np.where(np.isfinite(x), p, 1.0)

@@ -414,11 +414,19 @@ def rule_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     parts = []
     with bar(progress, "unknown rule calibration", total=len(rows), unit="views") as b:
         for i0 in range(0, len(rows), chunk):
-            m = matcher.match(store.read_single_views(rows[i0:i0 + chunk]))
+            m = matcher.match(store.read_single_views(rows[i0:i0 + chunk]), own_members=own_members(lib, store, rows[i0:i0 + chunk]))
             parts.append((m["distance"], m["score"], m["upright"]))
             b.advance(len(m["distance"]))
     D, S, U = (np.concatenate(a) for a in zip(*parts))
     return calibrate_rule(D, S, U, own, own_d, own_s, own_up, alpha)
+
+
+def own_members(lib: Library, store: ObjectStore, rows: np.ndarray) -> np.ndarray:
+    """(Q,) the library member index of the object of each of the store's single views ``rows`` (-1: not a member):
+    with ``[mine] label_members`` a held-out view's own object is not its own neighbour (leave-one-object-out)."""
+    mids = {str(o): j for j, o in enumerate(lib.members["object"])}
+    ids = np.asarray(store.ids).astype(str)
+    return np.array([mids.get(ids[o], -1) for o in np.asarray(store.single_object)[rows]], np.int64)
 
 
 def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np.ndarray, own_d: np.ndarray,
@@ -443,7 +451,7 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     has, cams = got
     rows, own, own_d, own_up = rows[has], own[has], own_d[has], own_up[has]
     factor = np.ones(len(rows))
-    decide, shares, scales_found, kinds = [], [], [], []
+    decide, shares, scales_found, kinds, members_dk, scored = [], [], [], [], [], []
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
     views = [store.read_single_views(rows[sl]) for sl in slices]
     # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
@@ -452,10 +460,12 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     # then leaves nothing behind); results taken in chunk order: the same bits as one chunk after another
     local = threading.local()
 
+    own_member = own_members(lib, store, rows)
+
     def match(i: int) -> dict:
         if getattr(local, "matcher", None) is None:
             local.matcher = make_matcher(lib, lib.config)
-        return local.matcher.match(views[i], cams[slices[i]])
+        return local.matcher.match(views[i], cams[slices[i]], own_members=own_member[slices[i]])
 
     with bar(progress, "view-normalised calibration", total=len(rows), unit="views") as b, one_blas_thread():
         for sl, m in zip(slices, ordered_map(match, range(len(slices)))):
@@ -469,6 +479,10 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
             Dd = np.array(m["distance"], np.float64)
             Dd[j, own[sl]] = Dd[j, own[sl]] * np.where(good, own_d[sl] / den, 1.0)
             decide.append(Dd)
+            members_dk.append(m["member_distance"])
+            Dr = np.array(m["scored_distance"], np.float64)   # the scored distances, the own prototype's leave-one-out
+            Dr[j, own[sl]] = np.where(good, own_d[sl], Dr[j, own[sl]])
+            scored.append(Dr)
             shares.append(m["unseen_share"])
             scales_found.append(m.get("stretch_scale", m["fit_scale"]))   # ``[mine] stretch_refine``: the continuous scale
             kinds.append(m["upright"])
@@ -477,11 +491,19 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     if bool(lib.config["mine"].get("view_normalise_ratio", False)) and lib.n_clusters > 1:
         unseen = bool(lib.config["mine"].get("view_normalise_unseen", False))
         stretch = bool(lib.config["mine"].get("view_normalise_stretch", False))
+        mc = lib.config["mine"]
+        dk = np.concatenate(members_dk)
+        with_members = int(mc.get("label_members", 0)) > 0 and np.isfinite(dk).any()
         attrs.update(view_ratio_calibration(np.concatenate(decide), own_d * factor, own, own_up, fields, alpha,
                                             unseen=np.concatenate(shares) if unseen else None,
                                             fit_scale=np.concatenate(scales_found) if stretch else None,
                                             upright=np.concatenate(kinds) if stretch and bool(
-                                                lib.config["mine"].get("view_normalise_stretch_face", False)) else None))
+                                                mc.get("view_normalise_stretch_face", False)) else None,
+                                            members=(dk, np.concatenate(scored), float(mc.get("label_members_within", 0.0)),
+                                                     int(mc.get("label_members_top", 3)),
+                                                     float(mc.get("label_members_weight", 0.5)),
+                                                     bool(mc.get("label_members_score", False)))
+                                            if with_members else None))
     return fields, attrs
 
 
@@ -498,7 +520,7 @@ MIN_FACE_STRETCH_VIEWS = 19   # ``[mine] view_normalise_stretch_face``: a face k
 
 def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
                            alpha: float, unseen: np.ndarray | None = None, fit_scale: np.ndarray | None = None,
-                           upright: np.ndarray | None = None) -> dict:
+                           upright: np.ndarray | None = None, members: tuple | None = None) -> dict:
     """``[mine] view_normalise_ratio``: the held-out views' ratios of their best to their second-best decision distance
     (``openset.best_second_ratio`` of D (Q, K), at the nearest prototype) and the split-conformal cut on the Fisher
     combination (``openset.fisher_combine``) of each view's calibrated score (of d (Q,) at its own prototype) and its
@@ -516,12 +538,30 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     every prototype (the canonical face or another), as the matcher gives it; the stretch's p-value is then taken among
     the views decided on the same face kind (a Mondrian split, Vovk, Gammerman & Shafer 2005), and each kind's sorted
     stretches are returned too ("unknown_view_stretch_canonical", "unknown_view_stretch_other"), a kind with fewer than
-    ``MIN_FACE_STRETCH_VIEWS`` views keeping the pooled p-values (and no attribute)."""
-    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, scale_stretch
+    ``MIN_FACE_STRETCH_VIEWS`` views keeping the pooled p-values (and no attribute).
+    ``members`` (``[mine] label_members``; None: off): (d_k (Q, K), Dr (Q, K), within, top, weight, score), each view's
+    k-nearest-member distances as the matcher gives them (its own object left out; NaN where not searched), its scored
+    distances (the own prototype's leave-one-out) and the keys label_members_within / _top / _weight / _score: each
+    view is decided as the label stage decides it (``label.matcher.members_decide`` on D; within < 1: by D); with
+    ``score`` its member statistic at the decided prototype
+    (``label.matcher.member_statistic``) joins the combination by its leave-one-out p-value among the other views
+    decided on the same prototype (``openset.member_loo_pvalues``; larger less conforming; views without one left out), and
+    the statistics with their decided prototypes ("unknown_view_members", "unknown_view_member_classes") and the cut
+    on the joined values ("unknown_view_member_cut") are returned too; "unknown_view_ratio_cut" stays the one
+    without them (a label stage that cannot find the members uses it)."""
+    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, member_loo_pvalues, scale_stretch
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
     b = np.argmin(D[ok], axis=1)
     r = best_second_ratio(D[ok])[np.arange(len(b)), b]
+    xm = None
+    if members is not None:   # ``[mine] label_members``: the class as the label stage decides it; the ratio stays the least's
+        from ..label.matcher import member_statistic, members_decide
+        dk, Dr, within, top, weight, with_score = members
+        dk = np.asarray(dk, np.float64)[ok]
+        if within >= 1:
+            b = members_decide(D[ok], dk, np.asarray(Dr, np.float64)[ok], within, top, weight)
+        xm = member_statistic(dk)[np.arange(len(b)), b] if with_score else None
     up = np.asarray(own_up, bool)[ok]
     k = np.asarray(own)[ok]
     s = face_kind_scores(np.asarray(d)[ok], k, up, fields["single_view_mu"], fields["single_view_sigma"],
@@ -543,6 +583,14 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
                     px[sel] = loo_ratio_pvalues(x[sel])
         pu = pu + (px,)
     out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
+    if xm is not None and np.isfinite(xm).sum() > 1:
+        has = np.isfinite(xm)
+        order = np.lexsort((xm[has], b[has]))
+        out["unknown_view_members"] = xm[has][order]                       # by decided prototype, then value
+        out["unknown_view_member_classes"] = b[has][order].astype(np.int64)
+        joined = fisher_combine_many(s[has], loo_ratio_pvalues(r)[has], *(p[has] for p in pu),
+                                     member_loo_pvalues(xm[has], b[has]))
+        out["unknown_view_member_cut"] = conformal_cut(joined, alpha)
     return out
 
 
