@@ -216,3 +216,26 @@ def test_matcher_joins_the_members_p_value(tiny_world, tmp_path):
     stat = dk / dk[:, ::-1]
     pm = np.array([(1 + np.sum(cal >= v - 1e-12)) / (len(cal) + 1) for v in stat.ravel()]).reshape(stat.shape)
     np.testing.assert_allclose(got["score"], stats.chi2.sf(-2 * np.log(x3 * pm), 8), rtol=1e-6, atol=1e-9)
+
+
+def test_member_blocks_give_the_whole_banks_distances(monkeypatch):
+    """Members are searched in blocks of ``memberknn.MEMBER_BLOCK`` (memory); without tilts the pose search is exhaustive
+    over yaw x scale for every (view, member) pair, so a pair's distance cannot depend on the bank it is searched in:
+    blocks of 3 over groups of 7 and 2 members give the one-bank search's distances to the bit, in the right columns,
+    and inf where a group does not reach."""
+    from protomine.mine import memberknn
+    from protomine.mine.synthetic import SCALES, synthetic_objects, synthetic_prototypes
+    from protomine.mine.tilts import tilt_pose_distances
+    rng = np.random.default_rng(11)
+    grid = (5, 4, 12, 6)
+    P = synthetic_prototypes(rng, 3, grid)
+    Xm, Wm, *_ = synthetic_objects(rng, P, 9)
+    X, W, *_ = synthetic_objects(rng, P, 5)
+    asp = np.ones(9)
+    groups = [(np.array([0, 1, 2, 4]), np.arange(7)), (np.array([3]), np.array([7, 8]))]
+    monkeypatch.setattr(memberknn, "MEMBER_BLOCK", 3)
+    got = memberknn.searched_distances(X, W, Xm, Wm, asp, groups, SCALES, None)
+    for views, mem in groups:
+        want = tilt_pose_distances(X[views], W[views], Xm[mem], Wm[mem], aspect=asp[mem], scales=SCALES, grid=None).D
+        np.testing.assert_array_equal(got[np.ix_(views, mem)], want)
+    assert np.isinf(got[3, :7]).all() and np.isinf(got[np.ix_([0, 1, 2, 4], [7, 8])]).all()

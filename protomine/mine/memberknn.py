@@ -22,6 +22,12 @@ import numpy as np
 from ..ingest.volume import matching_features
 from .tilts import TiltGrid, grid_aspect, tilt_pose_distances
 
+# Members searched as one bank at most: a bank's tilted copies and their spectra take ~15 MB a member with the default
+# grid and tilts (48 views against 32 / 128 synthetic members: peak +0.5 / +1.9 GB), so a cluster of a large library,
+# or find's search of every other cluster's members at once, is searched block by block (each block refines each
+# view's best pairs among its own members).  The demos' clusters hold fewer members than this.
+MEMBER_BLOCK = 32
+
 
 @dataclass
 class Members:
@@ -77,14 +83,16 @@ def searched_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarra
                        groups: Sequence[tuple[np.ndarray, np.ndarray]], scales: Sequence[float],
                        grid: TiltGrid | None) -> np.ndarray:
     """Dm (n, M): views X (n, C, R, A, H), W (n, R, A, H) against members P (M, C, R, A, H), V (M, R, A, H) with
-    aspects (M,), one pose search per group (views (v,), members (u,)): those views against those members as one
-    bank, whose search refines each view's best pairs among them (``tilts.tilt_pose_distances``); inf elsewhere."""
+    aspects (M,), one pose search per group (views (v,), members (u,)) and per block of at most ``MEMBER_BLOCK`` of
+    its members: those views against those members as one bank, whose search refines each view's best pairs among
+    them (``tilts.tilt_pose_distances``); inf elsewhere."""
     Dm = np.full((len(X), len(P)), np.inf)
     for views, mem in groups:
         views, mem = np.asarray(views, np.int64), np.asarray(mem, np.int64)
-        if len(views) and len(mem):
-            D = tilt_pose_distances(X[views], W[views], P[mem], V[mem], aspect=aspect[mem], scales=scales, grid=grid).D
-            Dm[np.ix_(views, mem)] = D
+        for i in range(0, len(mem) if len(views) else 0, MEMBER_BLOCK):
+            b = mem[i:i + MEMBER_BLOCK]
+            D = tilt_pose_distances(X[views], W[views], P[b], V[b], aspect=aspect[b], scales=scales, grid=grid).D
+            Dm[np.ix_(views, b)] = D
     return Dm
 
 
