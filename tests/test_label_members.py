@@ -239,3 +239,17 @@ def test_member_blocks_give_the_whole_banks_distances(monkeypatch):
         want = tilt_pose_distances(X[views], W[views], Xm[mem], Wm[mem], aspect=asp[mem], scales=SCALES, grid=None).D
         np.testing.assert_array_equal(got[np.ix_(views, mem)], want)
     assert np.isinf(got[3, :7]).all() and np.isinf(got[np.ix_([0, 1, 2, 4], [7, 8])]).all()
+
+
+def test_cluster_members_bound():
+    """A cluster's searched members: all of them up to the bound, else that many evenly spaced in member order (the
+    first and the last kept, gaps within one of M / cap), never another cluster's."""
+    from protomine.mine.memberknn import cluster_members
+    mc = np.array([0, 1] * 50 + [2] * 5)
+    assert list(cluster_members(mc, 2, 32)) == list(range(100, 105))
+    got = cluster_members(mc, 0, 8)
+    want = np.flatnonzero(mc == 0)
+    assert len(got) == 8 and got[0] == want[0] and got[-1] == want[-1] and set(got) <= set(want)
+    gaps = np.diff(np.searchsorted(want, got))
+    assert gaps.min() >= 1 and gaps.max() - gaps.min() <= 1   # evenly spaced: 49 steps over 7 gaps, 7 each
+    assert list(cluster_members(mc, 1, 0)) == list(np.flatnonzero(mc == 1))   # 0: no bound

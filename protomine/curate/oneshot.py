@@ -94,7 +94,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
-from ..mine.memberknn import member_rows, searched_distances
+from ..mine.memberknn import cluster_members, member_rows, searched_distances
 from ..mine.engine import align_to_prototype, weighted_means
 from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
@@ -375,8 +375,9 @@ def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute
     asp = _aspects(mstore, rows)
     Xs, Ws = _features(store, short, weights)
     mcl = np.asarray(library.members["cluster"])
-    own = np.flatnonzero(mcl == route.cluster)
-    rest = np.flatnonzero(mcl != route.cluster)
+    own = cluster_members(mcl, route.cluster)   # at most MEMBER_CAP of each cluster's members
+    rest = np.sort(np.concatenate([cluster_members(mcl, c) for c in range(library.n_clusters) if c != route.cluster]
+                                  + [np.zeros(0, np.int64)]))
     # b's members each as the one prototype, as find searches its example (every tilt refined); the other members in
     # one search, as mining assigns to its prototypes (a quarter of the CPU)
     every = np.arange(len(short))

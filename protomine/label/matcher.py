@@ -76,7 +76,7 @@ from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, sh
 from ..ingest.truncation import cut_direction, cut_pixels, view_cut
 from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
-from ..mine.memberknn import Members, class_knn, load_members, searched_distances
+from ..mine.memberknn import Members, class_knn, cluster_members, load_members, searched_distances
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import (best_second_ratio, fisher_combine_many, library_cut, member_pvalues, ratio_pvalue, rule_scores,
@@ -372,7 +372,7 @@ class Matcher:
         need = (member_shortlist(D, np.inf, self.member_top) if self.member_score
                 else member_shortlist(D, self.member_within, self.member_top))
         mem = self.members
-        groups = [(np.flatnonzero(need[:, c]), np.flatnonzero(mem.cluster == c)) for c in range(K)]
+        groups = [(np.flatnonzero(need[:, c]), cluster_members(mem.cluster, c)) for c in range(K)]
         Dm = searched_distances(X, W, mem.P, mem.V, mem.aspect, groups, self.scales,
                                 None if self.tilts.is_identity else self.tilts)
         if own_members is not None:

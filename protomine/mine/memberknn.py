@@ -27,6 +27,21 @@ from .tilts import TiltGrid, grid_aspect, tilt_pose_distances
 # or find's search of every other cluster's members at once, is searched block by block (each block refines each
 # view's best pairs among its own members).  The demos' clusters hold fewer members than this.
 MEMBER_BLOCK = 32
+# Members of one cluster searched at most: the searches grow with views x members, so without a bound a library mined
+# from N objects would make the calibration's held-out views (3 a member) and every find cost O(N^2).  A larger cluster
+# is searched through this many of its members, evenly spaced in the library's member order (``cluster_members``).
+# The demos' clusters hold fewer (up to ~16), so nothing there changes.
+MEMBER_CAP = 32
+
+
+def cluster_members(member_cluster: np.ndarray, c: int, cap: int | None = None) -> np.ndarray:
+    """Indices of cluster c's members that are searched: every one when the cluster holds at most ``cap`` (default
+    ``MEMBER_CAP``; 0 = no bound), else ``cap`` of them evenly spaced in the library's member order."""
+    cap = MEMBER_CAP if cap is None else int(cap)
+    idx = np.flatnonzero(np.asarray(member_cluster) == c)
+    if cap <= 0 or len(idx) <= cap:
+        return idx
+    return idx[np.unique(np.round(np.linspace(0, len(idx) - 1, cap)).astype(np.int64))]
 
 
 @dataclass
