@@ -109,7 +109,7 @@ def test_member_p_values_per_class():
     """Label time: (1 + #{x_i >= x}) / (m + 1) among the held-out values of the column's class when it has >= 19 of
     them, else among all; 1 where there is no statistic.  Held out: leave-one-out, #{j: x_j >= x_i} / m within the
     class (or all)."""
-    from protomine.mine.openset import member_loo_pvalues, member_pvalues
+    from protomine.mine.openset import MIN_CLASS_MEMBER_VIEWS, member_pvalues, mondrian_loo_pvalues
     rng = np.random.default_rng(2)
     values = np.r_[rng.uniform(0.5, 1.0, 25), rng.uniform(1.0, 2.0, 30), rng.uniform(0.1, 3.0, 5)]
     classes = np.r_[np.zeros(25, int), np.ones(30, int), np.full(5, 2)]
@@ -121,7 +121,7 @@ def test_member_p_values_per_class():
             pool = values[classes == c] if c < 2 else values
             want = 1.0 if np.isnan(x[i, c]) else (1 + np.sum(pool >= x[i, c])) / (len(pool) + 1)
             assert got[i, c] == pytest.approx(want)
-    loo = member_loo_pvalues(values, classes)
+    loo = mondrian_loo_pvalues(values, classes, MIN_CLASS_MEMBER_VIEWS)
     for i in range(len(values)):
         pool = values[classes == classes[i]] if classes[i] < 2 else values
         assert loo[i] == pytest.approx(np.mean(pool >= values[i]))

@@ -91,7 +91,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..mine.library import Library
-from ..mine.memberknn import class_knn  # noqa: F401  (the k-nearest-neighbour distance per cluster: its home is mine.memberknn)
+from ..mine.memberknn import class_knn
 from ..mine.tilts import TiltGrid
 
 AGREE_TOP = 10

@@ -94,7 +94,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
-from ..mine.memberknn import cluster_members, member_rows, searched_distances
+from ..mine.memberknn import cluster_members, load_members, searched_distances
 from ..mine.engine import align_to_prototype, weighted_means
 from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
@@ -365,26 +365,22 @@ def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute
     """``[mine] find_members``: the taken route with its first ``n`` objects (by its key; the example left out) ranked
     by the margin on the library's members (``knownclass.knn_margin``, k nearest per cluster; fused with the example's
     own distance d1 (N,) as the route is with ``fuse`` > 0), the rest after them in the route's order.  Unchanged
-    when the members' volumes cannot be found (``mine.memberknn.member_rows``)."""
-    found = member_rows(library, store)
+    when the members' volumes cannot be found (``mine.memberknn.load_members``)."""
     short = _nearest(store, ex, route.key)[:n]
-    if found is None or len(short) < 2:
+    mem = load_members(library, weights[0], weights[1], store) if len(short) >= 2 else None
+    if mem is None:
         return route
-    mstore, rows = found
-    P, V = _features(mstore, rows, weights)
-    asp = _aspects(mstore, rows)
     Xs, Ws = _features(store, short, weights)
-    mcl = np.asarray(library.members["cluster"])
+    mcl = mem.cluster
     own = cluster_members(mcl, route.cluster)   # at most MEMBER_CAP of each cluster's members
     rest = np.sort(np.concatenate([cluster_members(mcl, c) for c in range(library.n_clusters) if c != route.cluster]
                                   + [np.zeros(0, np.int64)]))
     # b's members each as the one prototype, as find searches its example (every tilt refined); the other members in
     # one search, as mining assigns to its prototypes (a quarter of the CPU)
     every = np.arange(len(short))
-    Dm = searched_distances(Xs, Ws, P, V, asp, [(every, [j]) for j in own] + [(every, rest)], scales, grid)
-    member_ids = np.asarray(library.members["object"]).astype(str)
+    Dm = searched_distances(Xs, Ws, mem.P, mem.V, mem.aspect, [(every, [j]) for j in own] + [(every, rest)], scales, grid)
     ids = np.asarray(store.ids).astype(str)
-    Dm[ids[short][:, None] == member_ids[None, :]] = np.inf   # not its own neighbour
+    Dm[ids[short][:, None] == mem.ids[None, :]] = np.inf   # not its own neighbour
     km = knn_margin(Dm, mcl, library.n_clusters, route.cluster, k)
     sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
     return replace(route, key=members_key(route.key, short, sk, ids))

@@ -43,7 +43,8 @@ from sklearn.metrics import roc_auc_score
 
 from ..audit.metrics import rotation_error_deg, symmetry_to_period_deg, yaw_about_up_error_deg, yaw_error_deg
 from ..errors import InputError
-from ..mine.evaluate import cluster_rotation_offsets, cluster_yaw_offsets, class_period, majority_map, read_truth_table
+from ..mine.evaluate import (cluster_rotation_offsets, cluster_yaw_offsets, class_period, majority_map, percentile_or_nan,
+                             read_truth_table)
 from ..rotations import quat_to_matrix
 from ..mine.library import Library
 
@@ -132,7 +133,6 @@ def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
     yaw_up = [x["yaw_about_up"] for x in known if x["correct"] and x["yaw_about_up"] is not None]
     yaw_all = yaw_up if yaw_up else yaw_co
     rerr = [x["rot_err"] for x in known if x["correct"] and x["rot_err"] is not None]
-    pct = lambda xs, q: float(np.percentile(xs, q)) if xs else float("nan")  # noqa: E731
     auroc = (float(roc_auc_score([x["known"] for x in rows], [x["score"] for x in rows]))
              if known and unknown else float("nan"))
     per_class = {}
@@ -145,11 +145,12 @@ def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
         "accuracy": mean([x["correct"] for x in known]),
         "accuracy_by_score": mean([x["correct_by_score"] for x in known]) if scores is not None else float("nan"),
         "accepted_accuracy": mean([x["correct"] for x in known if not x["flag"]]),
-        "median_yaw_error_deg": pct(yaw_all, 50), "p90_yaw_error_deg": pct(yaw_all, 90),
-        "median_yaw_error_deg_cluster_offset": pct(yaw_co, 50), "p90_yaw_error_deg_cluster_offset": pct(yaw_co, 90),
-        "median_yaw_error_deg_oriented": pct(yaw_or, 50),
+        "median_yaw_error_deg": percentile_or_nan(yaw_all, 50), "p90_yaw_error_deg": percentile_or_nan(yaw_all, 90),
+        "median_yaw_error_deg_cluster_offset": percentile_or_nan(yaw_co, 50),
+        "p90_yaw_error_deg_cluster_offset": percentile_or_nan(yaw_co, 90),
+        "median_yaw_error_deg_oriented": percentile_or_nan(yaw_or, 50),
         "auroc": auroc,
-        "median_rotation_error_deg": pct(rerr, 50), "p90_rotation_error_deg": pct(rerr, 90),
+        "median_rotation_error_deg": percentile_or_nan(rerr, 50), "p90_rotation_error_deg": percentile_or_nan(rerr, 90),
         "unknown_flagged": mean([x["flag"] for x in unknown]),
         "known_flagged": mean([x["flag"] for x in known]),
         "cluster_to_class": {int(k): v for k, v in classes.items()},

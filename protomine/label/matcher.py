@@ -313,7 +313,8 @@ class Matcher:
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         Dq = D if Dq is None else Dq
-        best = np.where(np.isfinite(D).any(axis=1), np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1), -1)
+        nearest = np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)
+        best = np.where(np.isfinite(D).any(axis=1), nearest, -1)
         dk = np.full(D.shape, np.nan)
         if self.members is not None:   # ``[mine] label_members``: the members decide among close prototypes
             best, dk = self.member_decision(X, W, D, Dr, best, own_members)
@@ -327,9 +328,9 @@ class Matcher:
             S = np.where(np.isfinite(D) & np.isfinite(Dm), S, 0.0)
             if self.view_ratios is not None:  # ``[mine] view_normalise_ratio``: joined with the ratio's p-value
                 r = decided_ratios(D, Dq)
-                moved = np.flatnonzero((best >= 0) & (best != np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)))
+                moved = np.flatnonzero((best >= 0) & (best != nearest))
                 if len(moved):   # a class the members decided takes the ratio of the view's least distance
-                    r[moved, best[moved]] = r[moved, np.argmin(np.where(np.isfinite(D[moved]), D[moved], np.inf), axis=1)]
+                    r[moved, best[moved]] = r[moved, nearest[moved]]
                 pr = np.where(np.isfinite(r), ratio_pvalue(self.view_ratios, np.nan_to_num(r, nan=np.inf)), 0.0)
                 # ``[mine] view_normalise_unseen``: and with the unseen share's p-value among the held-out views'
                 pu = () if self.view_unseen is None else (ratio_pvalue(self.view_unseen, np.nan_to_num(share, nan=1.0)),)

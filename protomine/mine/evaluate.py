@@ -164,7 +164,8 @@ def mined_rotation_errors(lib: Library, truth: dict[str, dict]) -> np.ndarray:
     return mined_pose_errors(lib, truth)["rotation"]
 
 
-def _p(x, q: float) -> float:
+def percentile_or_nan(x, q: float) -> float:
+    """The q-th percentile of x, NaN when x is empty."""
     return float(np.percentile(x, q)) if len(x) else float("nan")
 
 
@@ -202,11 +203,12 @@ def evaluate_mining(lib: Library, truth: dict[str, dict]) -> dict:
     yaw = about_up if len(about_up) else np.asarray(errs)
     return {"n_objects": int(len(objs)), "K": lib.n_clusters, "n_classes": int(len(set(lab))),
             "purity": scores["purity"], "nmi": scores["nmi"], "ari": scores["ari"],
-            "yaw_error_median_deg": _p(yaw, 50), "yaw_error_p90_deg": _p(yaw, 90),
+            "yaw_error_median_deg": percentile_or_nan(yaw, 50), "yaw_error_p90_deg": percentile_or_nan(yaw, 90),
             "yaw_error_kind": "about up" if len(about_up) else "cluster offset",
-            "yaw_error_median_cluster_offset_deg": _p(errs, 50), "yaw_error_p90_cluster_offset_deg": _p(errs, 90),
+            "yaw_error_median_cluster_offset_deg": percentile_or_nan(errs, 50),
+            "yaw_error_p90_cluster_offset_deg": percentile_or_nan(errs, 90),
             "symmetry_correct": int(sum(sym_ok)), "symmetry_total": len(sym_ok), "clusters": per_cluster,
-            "rotation_error_median_deg": _p(rerr, 50), "rotation_error_p90_deg": _p(rerr, 90)}
+            "rotation_error_median_deg": percentile_or_nan(rerr, 50), "rotation_error_p90_deg": percentile_or_nan(rerr, 90)}
 
 
 def kmeans_baseline(store, cfg: dict, truth: dict[str, dict], n_clusters: int, seed: int = 0) -> dict:

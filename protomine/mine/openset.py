@@ -23,7 +23,7 @@ import numpy as np
 from ..errors import InputError
 
 __all__ = ["conformal_rank", "conformal_cut", "library_cut", "ATTRS", "fisher_combine", "fisher_combine_many",
-           "loo_ratio_pvalues", "ratio_pvalue", "scale_stretch", "member_loo_pvalues", "member_pvalues"]
+           "loo_ratio_pvalues", "mondrian_loo_pvalues", "ratio_pvalue", "scale_stretch", "member_pvalues"]
 
 ATTRS = ("unknown_alpha", "unknown_cut", "unknown_calibration_views")
 
@@ -208,16 +208,17 @@ MIN_CLASS_MEMBER_VIEWS = 19   # a prototype that decided fewer held-out views ta
                               # p-value is at least 1 / (m + 1): 19 can reach 0.05)
 
 
-def member_loo_pvalues(x: np.ndarray, k: np.ndarray) -> np.ndarray:
-    """``[mine] label_members_score``: each held-out view's member statistic x (Q,) as a leave-one-out conformal p-value
-    among the views decided on the same prototype k (Q,) (a Mondrian split by class, Vovk, Gammerman & Shafer 2005),
-    or among all when its prototype decided fewer than ``MIN_CLASS_MEMBER_VIEWS`` of them (``openset.loo_ratio_pvalues``:
-    larger values less conforming)."""
-    x, k = np.asarray(x, np.float64), np.asarray(k, np.int64)
+def mondrian_loo_pvalues(x: np.ndarray, groups: np.ndarray, min_views: int) -> np.ndarray:
+    """Each held-out view's statistic x (Q,) as a leave-one-out conformal p-value among the views of its own group
+    (Q,) (a Mondrian split, Vovk, Gammerman & Shafer 2005), or among all views when its group holds fewer than
+    ``min_views`` (``loo_ratio_pvalues``: larger values less conforming).  Used for the member statistic by decided
+    prototype (``[mine] label_members_score``, ``MIN_CLASS_MEMBER_VIEWS``) and the stretch by face kind (``[mine]
+    view_normalise_stretch_face``, ``pipeline.MIN_FACE_STRETCH_VIEWS``)."""
+    x, groups = np.asarray(x, np.float64), np.asarray(groups)
     p = loo_ratio_pvalues(x)
-    for c in np.unique(k):
-        sel = k == c
-        if sel.sum() >= MIN_CLASS_MEMBER_VIEWS:
+    for c in np.unique(groups):
+        sel = groups == c
+        if sel.sum() >= min_views:
             p[sel] = loo_ratio_pvalues(x[sel])
     return p
 
@@ -226,7 +227,7 @@ def member_pvalues(values: np.ndarray, classes: np.ndarray, x: np.ndarray) -> np
     """``[mine] label_members_score`` at label time: the conformal p-values (n, K) of member statistics x (n, K) (column
     c: prototype c), (1 + #{x_i >= x}) / (m + 1) among the held-out views decided on c (``values`` with their
     ``classes``, the library's attributes), or among all of them when c decided fewer than ``MIN_CLASS_MEMBER_VIEWS``
-    (as :func:`member_loo_pvalues`); 1 where x is NaN (no statistic: nothing to join)."""
+    (as :func:`mondrian_loo_pvalues` at calibration); 1 where x is NaN (no statistic: nothing to join)."""
     values, classes = np.asarray(values, np.float64), np.asarray(classes, np.int64)
     x = np.asarray(x, np.float64)
     xx = np.nan_to_num(x, nan=np.inf)

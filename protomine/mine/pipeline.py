@@ -545,11 +545,12 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     view is decided as the label stage decides it (``label.matcher.members_decide`` on D; within < 1: by D); with
     ``score`` its member statistic at the decided prototype
     (``label.matcher.member_statistic``) joins the combination by its leave-one-out p-value among the other views
-    decided on the same prototype (``openset.member_loo_pvalues``; larger less conforming; views without one left out), and
+    decided on the same prototype (``openset.mondrian_loo_pvalues``; larger less conforming; views without one left out), and
     the statistics with their decided prototypes ("unknown_view_members", "unknown_view_member_classes") and the cut
     on the joined values ("unknown_view_member_cut") are returned too; "unknown_view_ratio_cut" stays the one
     without them (a label stage that cannot find the members uses it)."""
-    from .openset import best_second_ratio, fisher_combine_many, loo_ratio_pvalues, member_loo_pvalues, scale_stretch
+    from .openset import (MIN_CLASS_MEMBER_VIEWS, best_second_ratio, fisher_combine_many, loo_ratio_pvalues,
+                          mondrian_loo_pvalues, scale_stretch)
     D = np.where(np.isfinite(D), D, np.inf)
     ok = np.isfinite(D).any(axis=1)
     b = np.argmin(D[ok], axis=1)
@@ -574,13 +575,14 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     if fit_scale is not None:
         x = scale_stretch(np.asarray(fit_scale, np.float64)[ok][np.arange(len(b)), b])
         out["unknown_view_stretch"] = np.sort(x)
-        px = loo_ratio_pvalues(x)
-        if upright is not None:   # ``[mine] view_normalise_stretch_face``: among the views decided on the same face kind
+        if upright is None:
+            px = loo_ratio_pvalues(x)
+        else:   # ``[mine] view_normalise_stretch_face``: among the views decided on the same face kind
             canon = np.asarray(upright, bool)[ok][np.arange(len(b)), b]
+            px = mondrian_loo_pvalues(x, canon, MIN_FACE_STRETCH_VIEWS)   # fewer: that kind keeps the pooled p-values
             for kind, sel in (("canonical", canon), ("other", ~canon)):
-                if sel.sum() >= MIN_FACE_STRETCH_VIEWS:   # fewer: that kind keeps the pooled p-values
+                if sel.sum() >= MIN_FACE_STRETCH_VIEWS:
                     out[f"unknown_view_stretch_{kind}"] = np.sort(x[sel])
-                    px[sel] = loo_ratio_pvalues(x[sel])
         pu = pu + (px,)
     out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
     if xm is not None and np.isfinite(xm).sum() > 1:
@@ -589,7 +591,7 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
         out["unknown_view_members"] = xm[has][order]                       # by decided prototype, then value
         out["unknown_view_member_classes"] = b[has][order].astype(np.int64)
         joined = fisher_combine_many(s[has], loo_ratio_pvalues(r)[has], *(p[has] for p in pu),
-                                     member_loo_pvalues(xm[has], b[has]))
+                                     mondrian_loo_pvalues(xm[has], b[has], MIN_CLASS_MEMBER_VIEWS))
         out["unknown_view_member_cut"] = conformal_cut(joined, alpha)
     return out
 
