@@ -335,3 +335,14 @@ def test_mining_with_the_stretch_keeps_its_calibration_and_labels_with_it(tiny_w
     own = np.asarray(lib.members["cluster"])[np.asarray(st.single_object)]
     assert np.mean(got["best"] == own) >= 0.85
     assert float(np.mean(got["score"][rows, own] < m.unknown_cut)) <= 0.5
+    # ``score_parts`` (tools/unknown_views.py prints them): the score's three tail probabilities, the last the stretch's
+    # conformal p-value counted here from its definition, (1 + #{x_i >= x}) / (m + 1) (Angelopoulos & Bates 2021, sec.
+    # 1), and the score their Fisher combination as scipy.stats.combine_pvalues computes it (Fisher 1925, sec. 21.1)
+    parts = got["score_parts"]
+    assert parts.shape == got["score"].shape + (3,)
+    xv = np.abs(np.log(np.asarray(got["fit_scale"], np.float64)))
+    counted = (1.0 + (x[None, None, :] >= xv[:, :, None]).sum(axis=2)) / (len(x) + 1.0)
+    assert np.allclose(parts[..., 2], counted, rtol=0, atol=1e-12)
+    fin = np.all(parts > 0, axis=2)
+    ref = np.array([stats.combine_pvalues(p, method="fisher")[1] for p in parts[fin]])
+    assert fin.any() and np.allclose(got["score"][fin], ref, rtol=1e-9, atol=1e-12)

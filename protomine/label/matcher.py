@@ -53,7 +53,10 @@ stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale
 views decided on the same face kind as the match; with ``[mine] stretch_refine`` at the continuous scale of
 ``mine.stretchfit``, returned as ``stretch_scale``).
 ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
-``view_distance`` (NaN where none) for that calibration.
+``view_distance`` (NaN where none) for that calibration, and ``score_parts`` (n, K, P): the tail probabilities the
+score joins by Fisher's combination, in that order: the calibrated score, the ratio's p-value, then the p-values of the
+unseen share, the stretch and the members' margin where their keys are on (P = 1: no combination, the score itself;
+``tools/unknown_views.py`` prints them per view).
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
 ``source`` "single-view" and at most ``N_ALTERNATIVES`` alternatives (the next nearest prototypes, in
@@ -263,6 +266,7 @@ class Matcher:
         if n == 0:
             z = np.zeros((0, self.K))
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
+                    "score_parts": z[..., None],
                     "scored_distance": z, "view_distance": z, "unseen_share": z, "member_distance": z,
                     "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
@@ -321,6 +325,7 @@ class Matcher:
         # ``[mine] stretch_refine``: the stretch judged at a continuous scale (``mine.stretchfit``); the record's scale stays
         stretch_scale = (refined_scales(self.P, self.V, self.search.bank, X, W, D, up, fit_scale, upright, self.scales)
                          if self.stretch_refine else fit_scale)
+        parts = None
         if self.view_calibrated:  # ``[mine] view_normalise_calibrate``: the lesser distance, by its own calibration
             Dm = np.fmin(Dr, Dv)
             S = self.library.score(np.where(np.isfinite(Dm), Dm, 1.0), np.arange(self.K)[None, :], single_view=True,
@@ -339,10 +344,9 @@ class Matcher:
                     x = scale_stretch(stretch_scale)
                     pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
                 if self.view_members is not None:   # ``[mine] label_members_score``: and with the members' p-value
-                    pm = member_pvalues(self.view_members, self.view_member_classes, member_statistic(dk))
-                    S = fisher_combine_many(S, pr, *pu, pm)
-                else:
-                    S = fisher_combine_many(S, pr, *pu)
+                    pu += (member_pvalues(self.view_members, self.view_member_classes, member_statistic(dk)),)
+                parts = (S, pr) + pu   # the tail probabilities joined, returned as ``score_parts``
+                S = fisher_combine_many(*parts)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
             S = rule_scores(S, decided_ratios(D, Dq), upright, self.tilt_ratios)
         if self.symmetric_top > 0 and sizes is not None:   # the class by the search both ways (``label.symmetric``)
@@ -355,8 +359,9 @@ class Matcher:
         pr = self.library.prototypes
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
+        parts = (S,) if parts is None else parts   # no combination: the score is its one part
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
-                "face": face, "upright": upright,
+                "score_parts": np.stack(np.broadcast_arrays(*parts), axis=-1), "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
                 "rotation": rotation, "best": best}
 
