@@ -56,7 +56,10 @@ def label_views(out: Path, cfg: dict, seed: int):
         cap = read_capture(out / "scenes" / c, check_images=False)
         lifted += M._lift_capture(matcher, cap, cfg, seed, True, None, st, Bar(None, "label", 0, "frames"))
     vols = np.concatenate([fo.volumes for _, fo in lifted])
-    m = matcher.match(vols)
+    # with each view's camera, size and cut, as the label stage's batches (label.matcher._match_batch)
+    cuts = [c for _, fo in lifted for c in fo.cuts] if matcher.view_cut and matcher.normaliser is not None else None
+    m = matcher.match(vols, np.concatenate([fo.cameras for _, fo in lifted]),
+                      np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2), cuts)
     recs, i0 = [], 0
     for name, fo in lifted:
         n = len(fo.facts)
