@@ -1187,29 +1187,52 @@ class PoseKMeans:
 
     def _pose_sync(self, source: Source, res: _Result, scales: tuple[float, ...]) -> _Result:
         """``pose_sync``: the prototypes rebuilt from their upright members aligned to one another
-        (:func:`_synced_prototypes`); those members keep the synchronised poses, and the symmetry test reads their
-        moments at those poses; the cluster's other members are searched against the rebuilt prototype (a held fit's
-        final pass, labels fixed, the turned members as the fit turned them).  The clusters not rebuilt stay as the
-        fit left them (:func:`_kept_from`)."""
+        (:func:`_synced_prototypes`), with the cluster's other members (tilted, or turned onto a face of their own)
+        searched against that mean and averaged in; the upright members keep the synchronised poses, and the
+        symmetry test reads their moments at those poses; every other member's pose is the search's against the
+        rebuilt prototype (a held fit's final pass, labels fixed, the turned members as the fit turned them).  The
+        clusters not rebuilt stay as the fit left them (:func:`_kept_from`)."""
         grid = self._grid()
         P, V, done = _synced_prototypes(source, res, scales, self.chunk_size, grid)
         if not done:
             return res
-        keep = np.ones(self.n_clusters, bool)
+        K, N = self.n_clusters, len(res.labels)
+        keep = np.ones(K, bool)
         keep[list(done)] = False
         turned = (res.src, res.pre) if res.pre is not None and res.src is not None else None
+        base = source if turned is None else turned[0]
+        synced = np.zeros(N, bool)
+        for idx, *_ in done.values():
+            synced[idx] = True
+        others = np.flatnonzero(~keep[res.labels] & ~synced)
+        mom_t = None
+        if others.size:
+            # the rebuilt clusters' other members, searched against the upright members' mean and summed in
+            x, w = _gather(base, others, self.chunk_size)
+            sub = ArraySource(x, w, None if grid is None else _source_aspect(base)[others])
+            ts = None if grid is None else TiltState(grid, res.aspect)
+            *_, num, den, count, _, _ = _assign_pass(sub, P, V, scales, self.chunk_size, True, 0,
+                                                     forced=res.labels[others], tilts=ts)
+            for k, (idx, _, _, mom, _) in done.items():
+                if count[k]:
+                    Pk, Vk = weighted_means((mom[1] + num[k])[None], (mom[0] + den[k])[None],
+                                            np.array([len(idx) + count[k]]))
+                    P[k], V[k] = Pk[0], Vk[0]
+            ts = None if grid is None else TiltState(grid, res.aspect)
+            mom_t = _assign_pass(sub, P, V, scales, self.chunk_size, True, 0, moments=True,
+                                 forced=res.labels[others], tilts=ts)[-1]
         held = _held_fit(source, res.labels, P, V, scales=scales, chunk_size=self.chunk_size, moments=True, cache=None,
                          grid=grid, aspect=res.aspect, own_faces=False, turned=turned, updates=0, keep=keep)
         out = _kept_from(held, res, keep)
         out.yaw, out.scale = np.array(out.yaw, copy=True), np.array(out.scale, copy=True)
         moments = [np.array(m, copy=True) for m in out.moments]
-        out.member_order = np.full(self.n_clusters, -1, np.int64)
+        out.member_order = np.full(K, -1, np.int64)
         for k, (idx, yaw, scale, mom, order) in done.items():
             out.member_order[k] = order
             out.yaw[idx] = np.mod(yaw, 360.0).astype(out.yaw.dtype)
             out.scale[idx] = scale.astype(out.scale.dtype)
-            for m, v in zip(moments, mom):
-                m[k] = v
+            for j, (m, v) in enumerate(zip(moments, mom)):
+                m[k] = v if mom_t is None else v + mom_t[j][k]
         out.moments = tuple(moments)
         return out
 
@@ -1264,8 +1287,8 @@ class PoseKMeans:
         symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor,
                                    tol=self.symmetry_tol, break_effect=self.symmetry_break_effect)
         order = getattr(res, "member_order", None)
-        if order is not None:  # pose_sync: members with a preferred yaw are not continuous (posesync.member_order)
-            symm = np.where((symm == sym.CONTINUOUS) & (order >= 1), order, symm)
+        if order is not None:  # pose_sync: members showing less symmetry than the test break it (posesync.member_order)
+            symm = np.where((order >= 1) & ((symm == sym.CONTINUOUS) | (order < symm)), order, symm)
         t = sym.canonical_shift_bins(res.P, res.V, symm)
         self.prototypes_ = shift_volume(res.P, -t, axis=3).astype(np.float32)
         self.prototype_weights_ = shift_volume(res.V, -t, axis=2).astype(np.float32)
