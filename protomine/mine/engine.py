@@ -951,6 +951,7 @@ SYNC_WEIGHT_POWER = 4.0  # the pairs' weights raised to this in the synchronisat
 SYNC_ROUNDS = 3        # leave-one-out rounds after the synchronisation
 SYNC_SHARP = 0.1       # posesync.member_order: the mean pair weight from which the members show a preferred yaw
 SYNC_CONSISTENT = 0.95  # ... and the consistency at which their pairs agree modulo 360 / n
+SYNC_AGREE_DEG = 15.0  # the fit's upright members within this of the synchronised yaws (one common turn removed): kept
 
 
 def _loo_yaws(x: np.ndarray, w: np.ndarray, yaw: np.ndarray, scale: np.ndarray, scales: tuple[float, ...],
@@ -979,9 +980,12 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
     onto a face of their own) aligned to one another rather than to the fit's prototype: their yaws synchronised
     from every pair's search (``posesync``), refined leave-one-out (:func:`_loo_yaws`), both on the features without
     their first azimuthal harmonic (``posesync.without_first_harmonic``); the prototype is their weighted mean at those
-    poses.  Returns P (K, C, R, A, H), V (K, R, A, H) (the fit's where not rebuilt) and, per rebuilt cluster k,
-    (member rows (n,), yaw (n,), scale (n,), their aligned moments (s0, s1, s2, sw2) as the symmetry test reads them,
-    the order about up its members show, ``posesync.member_order``).
+    poses.  A cluster is rebuilt only when its members show a preferred yaw (``posesync.member_order`` >= 1) and the
+    fit's yaws of those members disagree with the synchronised ones by more than ``SYNC_AGREE_DEG`` once one common turn
+    is removed (modulo 360 / that order): a fit that aligned them already keeps its prototype, built with every face's
+    members.  Returns P (K, C, R, A, H), V (K, R, A, H) (the fit's where not rebuilt), per rebuilt cluster k (member
+    rows (n,), yaw (n,), scale (n,), their aligned moments (s0, s1, s2, sw2) as the symmetry test reads them, the
+    order), and the order about up each cluster's members show (K,) (-1: none shown, or too few upright members).
 
     Why the members keep these yaws (the search is not run again for them): a prototype of n members keeps about
     1 / sqrt(n) of their off-centre patterns, and each member's own pattern lines up with that remnant before the
@@ -995,6 +999,7 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
     if res.pre is not None:
         upright &= np.all(np.abs(res.pre - np.eye(3)) < 1e-9, axis=(1, 2))
     upright &= np.isfinite(res.dist)
+    orders = np.full(K, -1, np.int64)
     for k in range(K):
         idx = np.flatnonzero((res.labels == k) & upright)
         if len(idx) < SYNC_MIN_MEMBERS:
@@ -1004,15 +1009,22 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
         theta, weight = pairwise_yaws(xh, w, scales)
         if not np.any(weight > 0):
             continue
+        orders[k] = order = member_order(theta, weight, sharp=SYNC_SHARP, consistent=SYNC_CONSISTENT)
+        if order < 1:
+            continue  # no preferred yaw: nothing to align
         yaw, _ = synchronize_yaws(theta, weight ** SYNC_WEIGHT_POWER)
         yaw, scale = _loo_yaws(xh, w, yaw, np.ones(len(idx)), scales, SYNC_ROUNDS)
+        # the fit's yaws agree with the synchronised ones up to one common turn (modulo the members' order): the fit
+        # aligned these members already, and its prototype (with every member's face) stays
+        d = np.deg2rad(order * (np.asarray(res.yaw, np.float64)[idx] - yaw))
+        if np.max(np.abs(np.angle(np.exp(1j * d) * np.conj(np.mean(np.exp(1j * d)))))) <= np.deg2rad(order * SYNC_AGREE_DEG):
+            continue
         xa, wa = align_to_prototype(x, w, yaw, scale)
         s0, s1 = wa.sum(axis=0), (wa[:, None] * xa).sum(axis=0)
         Pk, Vk = weighted_means(s1[None], s0[None], np.array([len(idx)]))
         P[k], V[k] = Pk[0], Vk[0]
-        order = member_order(theta, weight, sharp=SYNC_SHARP, consistent=SYNC_CONSISTENT)
         done[k] = (idx, yaw, scale, (s0, s1, (wa[:, None] * xa * xa).sum(axis=0), (wa * wa).sum(axis=0)), order)
-    return P, V, done
+    return P, V, done, orders
 
 
 def _source_aspect(source: Source) -> np.ndarray:
@@ -1193,8 +1205,9 @@ class PoseKMeans:
         rebuilt prototype (a held fit's final pass, labels fixed, the turned members as the fit turned them).  The
         clusters not rebuilt stay as the fit left them (:func:`_kept_from`)."""
         grid = self._grid()
-        P, V, done = _synced_prototypes(source, res, scales, self.chunk_size, grid)
+        P, V, done, orders = _synced_prototypes(source, res, scales, self.chunk_size, grid)
         if not done:
+            res.member_order = orders
             return res
         K, N = self.n_clusters, len(res.labels)
         keep = np.ones(K, bool)
@@ -1226,9 +1239,8 @@ class PoseKMeans:
         out = _kept_from(held, res, keep)
         out.yaw, out.scale = np.array(out.yaw, copy=True), np.array(out.scale, copy=True)
         moments = [np.array(m, copy=True) for m in out.moments]
-        out.member_order = np.full(K, -1, np.int64)
+        out.member_order = orders
         for k, (idx, yaw, scale, mom, order) in done.items():
-            out.member_order[k] = order
             out.yaw[idx] = np.mod(yaw, 360.0).astype(out.yaw.dtype)
             out.scale[idx] = scale.astype(out.scale.dtype)
             for j, (m, v) in enumerate(zip(moments, mom)):
