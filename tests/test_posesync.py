@@ -12,7 +12,7 @@ import pytest
 from scipy import ndimage
 
 from protomine.mine.engine import ArraySource, PoseKMeans
-from protomine.mine.posesync import pairwise_yaws, synchronize_yaws, without_first_harmonic
+from protomine.mine.posesync import member_order, pairwise_yaws, synchronize_yaws, without_first_harmonic
 
 
 def _circ_err(a, b):
@@ -115,3 +115,22 @@ def test_pose_sync_aligns_a_thin_handle_under_off_centre_members():
     synced = errs(True)
     assert np.max(synced) < 10.0
     assert np.max(errs(False)) > 20.0   # the case is one the plain fit gets wrong (else this checks nothing)
+
+
+def test_member_order_reads_the_symmetry_the_members_show():
+    # the handled body: one handle (none), four handles a quarter turn apart (4-fold), no handle (round: no preferred
+    # yaw); members rolled to random yaws with noise, their pairs searched as pairwise_yaws does
+    rng = np.random.default_rng(7)
+    base = _handled_body()
+    four = base.copy()
+    for q in (9, 18, 27):
+        four[0, 5:7, q, 3:7] = 1.0
+    round_ = base.copy()
+    round_[0, 5:7, 0, 3:7] = 0.0
+    got = {}
+    for name, P in (("one", base), ("four", four), ("round", round_)):
+        X = np.stack([np.roll(P, int(s), axis=2) for s in rng.integers(0, 36, 8)])
+        X = (X + rng.normal(0, 0.05, X.shape)).astype(np.float32)
+        theta, w = pairwise_yaws(X, np.ones((8,) + P.shape[1:], np.float32), (1.0,))
+        got[name] = member_order(theta, w)
+    assert got == {"one": 1, "four": 4, "round": -1}

@@ -217,6 +217,7 @@ class _Result:
         # identity for the objects matched as they lie): the pose (tilt, yaw, scale) is that of the copy
         self.pre = pre
         self.src = None  # the source with those members turned (_held_fit), when pre is not None
+        self.member_order = None  # (K,) with pose_sync: the order about up each cluster's members show (-1: none)
 
 
 def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
@@ -975,7 +976,7 @@ def _loo_yaws(x: np.ndarray, w: np.ndarray, yaw: np.ndarray, scale: np.ndarray, 
 
 
 def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], chunk_size: int,
-                       grid: TiltGrid | None) -> tuple[np.ndarray, np.ndarray, dict]:
+                       grid: TiltGrid | None) -> tuple[np.ndarray, np.ndarray, dict, np.ndarray]:
     """``[mine] pose_sync``: each cluster's prototype rebuilt from its upright members (the identity tilt, not turned
     onto a face of their own) aligned to one another rather than to the fit's prototype: their yaws synchronised
     from every pair's search (``posesync``), refined leave-one-out (:func:`_loo_yaws`), both on the features without
@@ -1298,7 +1299,7 @@ class PoseKMeans:
         A = res.P.shape[3]
         symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor,
                                    tol=self.symmetry_tol, break_effect=self.symmetry_break_effect)
-        order = getattr(res, "member_order", None)
+        order = res.member_order
         if order is not None:  # pose_sync: members showing less symmetry than the test break it (posesync.member_order)
             symm = np.where((order >= 1) & ((symm == sym.CONTINUOUS) | (order < symm)), order, symm)
         t = sym.canonical_shift_bins(res.P, res.V, symm)
