@@ -9,6 +9,12 @@ symmetric classes must put the symmetry axis on z.
 
 To add a class: add an ``[[item]]`` table to items.toml and a function decorated with
 ``@builder("<name>")`` below.
+
+Turn symmetries: ``symmetry`` in items.toml is about the object's up axis only.  A class whose shape (and colour:
+one colour per instance) is also unchanged by a turn that moves up registers it with ``@turns("<name>")``: a function
+of the instance's size and proportions returning [(order, axis (3,))] in the object frame, the axis through the
+solid's centroid (the truth file's ``turns`` column; the pose metrics take poses modulo them).  A spool is the same
+turned end for end; a mallet turned half about its handle.
 """
 from __future__ import annotations
 
@@ -29,6 +35,8 @@ ITEMS_TOML = Path(__file__).with_name("items.toml")
 
 Builder = Callable[[float, dict, np.random.Generator], Shape]
 BUILDERS: dict[str, Builder] = {}
+Turns = Callable[[float, dict], list[tuple[int, tuple[float, float, float]]]]
+TURNS: dict[str, Turns] = {}
 
 
 def builder(name: str) -> Callable[[Builder], Builder]:
@@ -37,6 +45,31 @@ def builder(name: str) -> Callable[[Builder], Builder]:
         BUILDERS[name] = fn
         return fn
     return deco
+
+
+def turns(name: str) -> Callable[[Turns], Turns]:
+    """Register the turn symmetries (module docstring) of an item class."""
+    def deco(fn: Turns) -> Turns:
+        TURNS[name] = fn
+        return fn
+    return deco
+
+
+def instance_turns(inst: "Instance") -> list[tuple[int, tuple[float, float, float]]]:
+    """The instance's turn symmetries that move up: [(order, unit axis (3,))] in its object frame ([] for most)."""
+    fn = TURNS.get(inst.item.name)
+    if fn is None:
+        return []
+    out = []
+    for order, axis in fn(inst.size, inst.params):
+        a = np.asarray(axis, np.float64)
+        out.append((int(order), tuple(float(v) for v in a / np.linalg.norm(a))))
+    return out
+
+
+def format_turns(items: list[tuple[int, tuple[float, float, float]]]) -> str:
+    """Turn symmetries as the truth file writes them: "order:ax,ay,az" joined by ";" ("" for none)."""
+    return ";".join(f"{o}:{a[0]:.6f},{a[1]:.6f},{a[2]:.6f}" for o, a in items)
 
 
 @dataclass(frozen=True)
@@ -153,6 +186,13 @@ def _spool(size: float, p: dict, rng: np.random.Generator) -> Shape:
     return S.union(S.cylinder(rf * p["core_ratio"], size), S.cylinder(rf, ft), S.cylinder(rf, ft, size - ft))
 
 
+@turns("spool")
+def _spool_turns(size: float, p: dict) -> list:
+    # two equal flanges at z = 0 and z = size - ft on one core: end for end it is the same (with the turns about z, a
+    # half turn about any horizontal axis through mid-height)
+    return [(2, (1.0, 0.0, 0.0))]
+
+
 @builder("funnel")
 def _funnel(size: float, p: dict, rng: np.random.Generator) -> Shape:
     rm, hc = size * p["mouth_radius"], size * p["cone_height"]
@@ -194,6 +234,14 @@ def _mallet(size: float, p: dict, rng: np.random.Generator) -> Shape:
     head = S.translate(S.rotate(S.cylinder(rh, lh, -lh / 2), S.axis_rotation("x", 90.0)), (size / 2 - rh, 0.0, rh))
     handle = S.capsule((-size / 2 + rr, 0.0, rr), (size / 2 - rh, 0.0, rh), rr)
     return S.union(head, handle)
+
+
+@turns("mallet")
+def _mallet_turns(size: float, p: dict) -> list:
+    # the handle's axis runs through the head's centre, square to the head's axis (y): a half turn about it maps the
+    # capsule and the centred head cylinder onto themselves
+    rh, rr = size * p["head_radius"], size * p["handle_radius"]
+    return [(2, (size - rh - rr, 0.0, rh - rr))]
 
 
 @builder("jug")

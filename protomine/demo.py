@@ -216,7 +216,7 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     from .mine.evaluate import evaluate_mining, read_truth_table
     from .mine.pipeline import mine_store
     from .progress import replay
-    from .scenes.scenario import generate_scenario
+    from .scenes.scenario import add_truth_turns, generate_scenario
 
     cfg = config_from(config if config is not None or not quick else "fast")
     size = QUICK_SIZE if quick else FULL_SIZE
@@ -239,6 +239,8 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))
     else:
         say(f"reusing rendered scenes in {scenes}")
+        if add_truth_turns(scenes):  # rendered before the truth listed turn symmetries: the layouts drawn again
+            say("truth_full.csv: the turns column added (the scenario's layouts drawn again, nothing rendered)")
     scen = json.loads((scenes / "scenario.json").read_text())
     mining = [scenes / c for c in scen["mining"]]
     truth = read_truth_table(scenes / "truth_full.csv")

@@ -27,7 +27,7 @@ from protomine.audit.metrics import rotation_error_deg
 from protomine.cliutil import config_from
 from protomine.geometry import plane_basis
 from protomine.label import matcher as M
-from protomine.mine.evaluate import cluster_rotation_offsets, majority_map, read_truth_table
+from protomine.mine.evaluate import cluster_rotation_offsets, majority_map, read_truth_table, truth_group
 from protomine.mine.library import read_library
 from protomine.rotations import quat_to_matrix
 
@@ -75,7 +75,7 @@ def main(folder: Path, config: str | None) -> None:
         c = t["class"]
         kt = min((j for j in range(K) if cls.get(j) == c), key=lambda j: m["distance"][i, j])
         Rw = plane_basis(np.asarray(r["up"])).T @ m["rotation"][i, kt]
-        O, g, _ = offs[kt]
+        O, g = offs[kt][0], truth_group(truth[r["object"]])
         Rt = quat_to_matrix(np.array([[float(t[q]) for q in ("qx", "qy", "qz", "qw")]]))
         pred = cls.get(r["cluster"]) if r["cluster"] is not None else None
         border, occluded = cut_flags(scenes, r["object"])

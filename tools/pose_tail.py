@@ -33,8 +33,9 @@ import torch
 from scipy.spatial.transform import Rotation
 
 from demo_scenes.items import load_item_classes, make_instance
-from protomine.audit.metrics import rotation_error_deg, yaw_about_up_error_deg
-from protomine.mine.evaluate import class_period, cluster_rotation_offsets, majority_map, read_truth_table, symmetry_code_of
+from protomine.audit.metrics import AboutZ, rotation_error_deg, yaw_about_up_error_deg
+from protomine.mine.evaluate import (class_period, cluster_rotation_offsets, majority_map, read_truth_table,
+                                     symmetry_code_of, truth_group)
 from protomine.mine.library import read_library
 from protomine.records import read_records
 from protomine.rotations import geodesic_deg, quat_to_matrix
@@ -119,7 +120,7 @@ def pose_rows(items, lib, truth, offsets, maj, shapes: ShapeSymmetry) -> list[di
         t = truth.get(oid)
         if t is None or k not in offsets or t["rotation"] is None or t["label"] != maj.get(k):
             continue
-        O, group, _ = offsets[k]
+        O, group = offsets[k][0], truth_group(t)
         Rp, Rt = quat_to_matrix(np.asarray(q)[None]), quat_to_matrix(t["rotation"][None])
         err = float(rotation_error_deg(Rp, Rt, O, group)[0])
         yaw = (float(yaw_about_up_error_deg(Rp, Rt, O, group, t["up"][None])[0])
@@ -127,7 +128,8 @@ def pose_rows(items, lib, truth, offsets, maj, shapes: ShapeSymmetry) -> list[di
         kind = ""
         if err > BIG_DEG:
             A = Rp[0] @ O
-            if group is None:   # the nearest turn about z, as audit.metrics.yaw_about_up_error_deg
+            continuous = group is None or isinstance(group, AboutZ)
+            if continuous:   # the nearest turn about z, as audit.metrics.yaw_about_up_error_deg (the identity rep)
                 M = Rt[0].T @ A
                 a = np.arctan2(M[0, 1] - M[1, 0], M[0, 0] + M[1, 1])
                 g = Rotation.from_euler("z", a).as_matrix()
@@ -137,7 +139,7 @@ def pose_rows(items, lib, truth, offsets, maj, shapes: ShapeSymmetry) -> list[di
             rv = Rotation.from_matrix(B @ A.T).as_rotvec()
             axis = rv / max(np.linalg.norm(rv), 1e-12)
             up = t["up"] / np.linalg.norm(t["up"])
-            if shapes.is_symmetry(t["label"], B.T @ A, about_z=group is None):
+            if shapes.is_symmetry(t["label"], B.T @ A, about_z=continuous):
                 kind = "shape symmetry"
             elif abs(axis @ up) > np.cos(np.deg2rad(UP_AXIS_DEG)):
                 kind = "about up"

@@ -26,10 +26,15 @@ Conventions:
   left once the one per-cluster offset is removed, defined for every member whatever face it rests on (the
   twist's quaternion is the projection of D's onto (u, 1), so T is the turn about u nearest D).  For upright
   members (R = Rz(yaw) in the plane's frame) it is the plain yaw difference.
+- Symmetry groups: ``None`` = every rotation about z (a continuous symmetry about the class's up); an array (G, 3, 3)
+  = those rotations, or (n, G, 3, 3) = each of n objects its own (a symmetry whose axis depends on the instance's
+  proportions, such as a mallet's handle); :class:`AboutZ` (reps (G, 3, 3) or (n, G, 3, 3)) = every g Rz(t), g in
+  reps: a continuous symmetry about z together with turns that move up (a spool end for end).
 """
 from __future__ import annotations
 
 import math
+from dataclasses import dataclass
 
 import numpy as np
 from scipy.optimize import linear_sum_assignment
@@ -43,8 +48,16 @@ from ..rotations import geodesic_deg, matrix_to_quat, yaw_matrix
 __all__ = [
     "contingency", "purity_score", "inverse_purity_score", "hungarian_accuracy_score",
     "clustering_scores", "symmetry_to_period_deg", "yaw_offset_deg", "yaw_error_deg", "rotation_offset",
-    "rotation_error_deg", "about_z_geodesic_deg", "twist_deg", "yaw_about_up_error_deg",
+    "rotation_error_deg", "about_z_geodesic_deg", "twist_deg", "yaw_about_up_error_deg", "AboutZ",
 ]
+
+
+@dataclass(frozen=True)
+class AboutZ:
+    """The symmetry group {g Rz(t): g in reps, every t}: a continuous symmetry about z with further turns that move up
+    (reps (G, 3, 3), the identity among them, or (n, G, 3, 3) per object)."""
+
+    reps: np.ndarray
 
 
 def _check_pair(clusters, labels) -> tuple[np.ndarray, np.ndarray]:
@@ -162,21 +175,32 @@ def about_z_geodesic_deg(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     return np.rad2deg(np.arccos(np.clip((tr - 1.0) / 2.0, -1.0, 1.0)))
 
 
-def _modulo_group(A: np.ndarray, B: np.ndarray, group: np.ndarray | None) -> np.ndarray:
-    """Least geodesic angle between A (..., 3, 3) and B g over g in ``group`` (G, 3, 3); ``None`` = every
-    rotation about z (a continuous symmetry)."""
+def _modulo_group(A: np.ndarray, B: np.ndarray, group) -> np.ndarray:
+    """Least geodesic angle between A (..., 3, 3) and B g over g in ``group`` (module docstring: None, (G, 3, 3),
+    (..., G, 3, 3) matching B's last batch axis, or :class:`AboutZ`)."""
     if group is None:
         return about_z_geodesic_deg(A, B)
+    if isinstance(group, AboutZ):
+        return np.min(about_z_geodesic_deg(A[..., None, :, :], B[..., None, :, :] @ group.reps), axis=-1)
     return np.min(geodesic_deg(A[..., None, :, :], B[..., None, :, :] @ group), axis=-1)
 
 
 def rotation_offset(R_pred: np.ndarray, R_true: np.ndarray, group: np.ndarray | None) -> np.ndarray:
     """One offset O (3, 3) with R_true ~ R_pred O: the geodesic medoid of R_pred^T R_true over members
-    R_pred, R_true (n, 3, 3), distances taken modulo the symmetry group (G, 3, 3) on the right, ``None`` for
-    a continuous symmetry about z (the medoid, not a mean, so a few flipped members do not move it)."""
+    R_pred, R_true (n, 3, 3), distances taken modulo the symmetry group on the right (module docstring; ``None``
+    for a continuous symmetry about z), each member's candidates turned by its group's elements (the medoid, not a
+    mean, so a few flipped members do not move it)."""
     O = np.einsum("nji,njk->nik", R_pred, R_true)  # each defined up to O g
-    d = _modulo_group(O[:, None], np.broadcast_to(O[None, :], (len(O),) + O.shape), group)  # (n, n)
-    return O[int(np.argmin(d.sum(axis=1)))]
+    if group is not None:
+        # candidates O_j g, g in member j's group (identity first): with per-member groups (an axis per instance) a
+        # member's own symmetry element would otherwise stay in the offset and turn every other member by twice the
+        # angle between their axes
+        reps = group.reps if isinstance(group, AboutZ) else group
+        cand = (O[:, None] @ np.broadcast_to(reps, (len(O),) + np.shape(reps)[-3:])).reshape(-1, 3, 3)
+    else:
+        cand = O
+    d = _modulo_group(cand[:, None], np.broadcast_to(O[None, :], (len(cand),) + O.shape), group)  # (n G, n)
+    return cand[int(np.argmin(d.sum(axis=1)))]
 
 
 def rotation_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray | None) -> np.ndarray:
@@ -200,16 +224,19 @@ def twist_deg(R: np.ndarray, axis: np.ndarray) -> np.ndarray:
 def yaw_about_up_error_deg(R_pred: np.ndarray, R_true: np.ndarray, O: np.ndarray, group: np.ndarray | None,
                            up: np.ndarray) -> np.ndarray:
     """Yaw errors (n,) in degrees, in [0, 180]: |twist about the world up (n, 3)| of R_true g (R_pred O)^T, g the
-    element of ``group`` (G, 3, 3) nearest R_pred O (least geodesic angle; ``None``: the nearest turn about z,
-    a continuous symmetry, in closed form as in ``about_z_geodesic_deg``).  R_pred, R_true (n, 3, 3) world <-
+    element of ``group`` (module docstring) nearest R_pred O (least geodesic angle; ``None``: the nearest turn about
+    z, a continuous symmetry, in closed form as in ``about_z_geodesic_deg``; :class:`AboutZ`: that for each rep).  R_pred, R_true (n, 3, 3) world <-
     frame; O (3, 3) the cluster's offset (``rotation_offset``)."""
     A = np.asarray(R_pred, np.float64) @ O
     B = np.asarray(R_true, np.float64)
-    if group is None:
-        M = np.einsum("nji,njk->nik", A, B)
-        g = yaw_matrix(np.rad2deg(np.arctan2(M[:, 0, 1] - M[:, 1, 0], M[:, 0, 0] + M[:, 1, 1])))
+    if group is None or isinstance(group, AboutZ):
+        reps = np.eye(3)[None] if group is None else np.asarray(group.reps, np.float64)
+        reps = np.broadcast_to(reps, (len(A),) + reps.shape[-3:])                     # (n, G, 3, 3)
+        M = np.einsum("nji,ngjk->ngik", A, B[:, None] @ reps)                         # A^T B g per rep
+        cand = reps @ yaw_matrix(np.rad2deg(np.arctan2(M[..., 0, 1] - M[..., 1, 0], M[..., 0, 0] + M[..., 1, 1])))
     else:
-        group = np.asarray(group, np.float64)
-        g = group[np.argmin(geodesic_deg(A[:, None], B[:, None] @ group), axis=1)]
+        cand = np.broadcast_to(np.asarray(group, np.float64), (len(A),) + np.shape(group)[-3:])
+    pick = np.argmin(geodesic_deg(A[:, None], B[:, None] @ cand), axis=1)
+    g = cand[np.arange(len(A)), pick]
     D = B @ g @ np.swapaxes(A, -1, -2)
     return np.abs(twist_deg(D, up))

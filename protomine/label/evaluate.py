@@ -43,7 +43,7 @@ from sklearn.metrics import roc_auc_score
 
 from ..audit.metrics import rotation_error_deg, symmetry_to_period_deg, yaw_about_up_error_deg, yaw_error_deg
 from ..errors import InputError
-from ..mine.evaluate import (cluster_rotation_offsets, cluster_yaw_offsets, class_period, majority_map, percentile_or_nan,
+from ..mine.evaluate import (truth_group, cluster_rotation_offsets, cluster_yaw_offsets, class_period, majority_map, percentile_or_nan,
                              read_truth_table)
 from ..rotations import quat_to_matrix
 from ..mine.library import Library
@@ -122,7 +122,7 @@ def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
                      "flag": bool(r["unknown"]), "correct": k is not None and classes.get(k) == t["class"],
                      "yaw_err_cluster_offset": _yaw_error(library, k, offsets, t["yaw_deg"], r["yaw_deg"]),
                      "yaw_about_up": _yaw_about_up_error(rot_off, k, t, r.get("rotation")),
-                     "rot_err": _rotation_error(rot_off, k, t.get("rotation"), r.get("rotation")),
+                     "rot_err": _rotation_error(rot_off, k, t, r.get("rotation")),
                      "period": _period(library, k)})
     known = [x for x in rows if x["known"]]
     unknown = [x for x in rows if not x["known"]]
@@ -158,21 +158,21 @@ def _evaluate(records, truth, library, mined, radius_m, scores=None) -> dict:
     }
 
 
-def _rotation_error(offsets: dict, k: int | None, truth_q, pred_q) -> float | None:
-    if k is None or truth_q is None or pred_q is None or k not in offsets:
+def _rotation_error(offsets: dict, k: int | None, t: dict, pred_q) -> float | None:
+    if k is None or t.get("rotation") is None or pred_q is None or k not in offsets:
         return None
-    O, group, _ = offsets[k]
-    Rp, Rt = quat_to_matrix(np.asarray(pred_q)[None]), quat_to_matrix(np.asarray(truth_q)[None])
-    return float(rotation_error_deg(Rp, Rt, O, group)[0])
+    O = offsets[k][0]   # the view's own object's symmetry group (its truth turns, if any)
+    Rp, Rt = quat_to_matrix(np.asarray(pred_q)[None]), quat_to_matrix(np.asarray(t["rotation"])[None])
+    return float(rotation_error_deg(Rp, Rt, O, truth_group(t))[0])
 
 
 def _yaw_about_up_error(offsets: dict, k: int | None, t: dict, pred_q) -> float | None:
     if (k is None or t.get("rotation") is None or t.get("up") is None or pred_q is None or k not in offsets
             or class_period(t["symmetry"]) == 0):
         return None
-    O, group, _ = offsets[k]
+    O = offsets[k][0]
     Rp, Rt = quat_to_matrix(np.asarray(pred_q)[None]), quat_to_matrix(np.asarray(t["rotation"])[None])
-    return float(yaw_about_up_error_deg(Rp, Rt, O, group, np.asarray(t["up"])[None])[0])
+    return float(yaw_about_up_error_deg(Rp, Rt, O, truth_group(t), np.asarray(t["up"])[None])[0])
 
 
 def _period(library: Library, k: int | None) -> float:

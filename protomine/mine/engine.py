@@ -216,6 +216,8 @@ class _Result:
         # (N, 3, 3) or None: each object's rotation onto the own resting face it was matched on (_own_faces;
         # identity for the objects matched as they lie): the pose (tilt, yaw, scale) is that of the copy
         self.pre = pre
+        self.src = None  # the source with those members turned (_held_fit), when pre is not None
+        self.member_order = None  # (K,) with pose_sync: the order about up each cluster's members show (-1: none)
 
 
 def _align_phase(yaw_deg: np.ndarray, A: int) -> torch.Tensor:
@@ -747,8 +749,10 @@ def _held_fit(source: Source, labels: np.ndarray, P: np.ndarray, V: np.ndarray, 
     labels, yaw, scale, dist, *rest = _assign_pass(src, P, V, scales, chunk_size, moments, 0, moments=moments,
                                                  forced=labels, cache=cache, tilts=ts)
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(P, V, labels, yaw, scale, dist, cost, updates, rest[-1] if moments else None,
-                   None if ts is None else ts.tilt, None if ts is None else ts.aspect, pre)
+    out = _Result(P, V, labels, yaw, scale, dist, cost, updates, rest[-1] if moments else None,
+                  None if ts is None else ts.tilt, None if ts is None else ts.aspect, pre)
+    out.src = src if pre is not None else None
+    return out
 
 
 class _TurnedSource:
@@ -938,7 +942,90 @@ def _kept_from(held: _Result, fit: _Result, keep: np.ndarray) -> _Result:
         pre = pre.copy()
         pre[m] = np.eye(3) if fit.pre is None else fit.pre[m]
     cost = float(dist[np.isfinite(dist)].sum())
-    return _Result(held.P, held.V, held.labels, yaw, scale, dist, cost, held.n_iter, moments, tilt, held.aspect, pre)
+    out = _Result(held.P, held.V, held.labels, yaw, scale, dist, cost, held.n_iter, moments, tilt, held.aspect, pre)
+    out.src = held.src
+    return out
+
+
+SYNC_MIN_MEMBERS = 3   # _synced_prototypes: clusters with fewer upright members keep the fit's prototype
+SYNC_WEIGHT_POWER = 4.0  # the pairs' weights raised to this in the synchronisation (the sharp pairs lead)
+SYNC_ROUNDS = 3        # leave-one-out rounds after the synchronisation
+SYNC_SHARP = 0.1       # posesync.member_order: the mean pair weight from which the members show a preferred yaw
+SYNC_CONSISTENT = 0.95  # ... and the consistency at which their pairs agree modulo 360 / n
+SYNC_AGREE_DEG = 15.0  # the fit's upright members within this of the synchronised yaws (one common turn removed): kept
+
+
+def _loo_yaws(x: np.ndarray, w: np.ndarray, yaw: np.ndarray, scale: np.ndarray, scales: tuple[float, ...],
+              rounds: int) -> tuple[np.ndarray, np.ndarray]:
+    """Each member x (n, C, R, A, H), w (n, R, A, H) searched (yaw x scale) against the mean of the others aligned at
+    their current poses, ``rounds`` times (all members at once each round): yaw, scale (n,)."""
+    n = len(x)
+    for _ in range(rounds):
+        xa, wa = align_to_prototype(x.copy(), w.copy(), yaw, scale)
+        num, den = (wa[:, None] * xa).sum(axis=0), wa.sum(axis=0)
+        new_yaw, new_scale = yaw.copy(), scale.copy()
+        for i in range(n):
+            P, V = weighted_means((num - wa[i][None] * xa[i])[None], (den - wa[i])[None], np.array([n - 1]))
+            m = PoseBank(P, V, scales).match(x[i:i + 1], w[i:i + 1])
+            if np.isfinite(m.D[0, 0]):
+                new_yaw[i], new_scale[i] = m.yaw_deg[0, 0], m.scale[0, 0]
+        if np.allclose(new_yaw, yaw) and np.array_equal(new_scale, scale):
+            break
+        yaw, scale = new_yaw, new_scale
+    return yaw, scale
+
+
+def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], chunk_size: int,
+                       grid: TiltGrid | None) -> tuple[np.ndarray, np.ndarray, dict, np.ndarray]:
+    """``[mine] pose_sync``: each cluster's prototype rebuilt from its upright members (the identity tilt, not turned
+    onto a face of their own) aligned to one another rather than to the fit's prototype: their yaws synchronised
+    from every pair's search (``posesync``), refined leave-one-out (:func:`_loo_yaws`), both on the features without
+    their first azimuthal harmonic (``posesync.without_first_harmonic``); the prototype is their weighted mean at those
+    poses.  A cluster is rebuilt only when its members show a preferred yaw (``posesync.member_order`` >= 1) and the
+    fit's yaws of those members disagree with the synchronised ones by more than ``SYNC_AGREE_DEG`` once one common turn
+    is removed (modulo 360 / that order): a fit that aligned them already keeps its prototype, built with every face's
+    members.  Returns P (K, C, R, A, H), V (K, R, A, H) (the fit's where not rebuilt), per rebuilt cluster k (member
+    rows (n,), yaw (n,), scale (n,), their aligned moments (s0, s1, s2, sw2) as the symmetry test reads them, the
+    order), and the order about up each cluster's members show (K,) (-1: none shown, or too few upright members).
+
+    Why the members keep these yaws (the search is not run again for them): a prototype of n members keeps about
+    1 / sqrt(n) of their off-centre patterns, and each member's own pattern lines up with that remnant before the
+    thin part does (a synthetic handled body, tests/test_posesync.py: synchronised within 1 degree, searched again
+    against the synchronised prototype 5-163 degrees out)."""
+    from .posesync import member_order, pairwise_yaws, synchronize_yaws, without_first_harmonic
+    K = res.P.shape[0]
+    P, V = res.P.copy(), res.V.copy()
+    done: dict = {}
+    upright = np.ones(len(res.labels), bool) if grid is None or res.tilt is None else grid.is_upright(res.tilt)
+    if res.pre is not None:
+        upright &= np.all(np.abs(res.pre - np.eye(3)) < 1e-9, axis=(1, 2))
+    upright &= np.isfinite(res.dist)
+    orders = np.full(K, -1, np.int64)
+    for k in range(K):
+        idx = np.flatnonzero((res.labels == k) & upright)
+        if len(idx) < SYNC_MIN_MEMBERS:
+            continue
+        x, w = _gather(source, idx, chunk_size)
+        xh = without_first_harmonic(x)
+        theta, weight = pairwise_yaws(xh, w, scales)
+        if not np.any(weight > 0):
+            continue
+        orders[k] = order = member_order(theta, weight, sharp=SYNC_SHARP, consistent=SYNC_CONSISTENT)
+        if order < 1:
+            continue  # no preferred yaw: nothing to align
+        yaw, _ = synchronize_yaws(theta, weight ** SYNC_WEIGHT_POWER)
+        yaw, scale = _loo_yaws(xh, w, yaw, np.ones(len(idx)), scales, SYNC_ROUNDS)
+        # the fit's yaws agree with the synchronised ones up to one common turn (modulo the members' order): the fit
+        # aligned these members already, and its prototype (with every member's face) stays
+        d = np.deg2rad(order * (np.asarray(res.yaw, np.float64)[idx] - yaw))
+        if np.max(np.abs(np.angle(np.exp(1j * d) * np.conj(np.mean(np.exp(1j * d)))))) <= np.deg2rad(order * SYNC_AGREE_DEG):
+            continue
+        xa, wa = align_to_prototype(x, w, yaw, scale)
+        s0, s1 = wa.sum(axis=0), (wa[:, None] * xa).sum(axis=0)
+        Pk, Vk = weighted_means(s1[None], s0[None], np.array([len(idx)]))
+        P[k], V[k] = Pk[0], Vk[0]
+        done[k] = (idx, yaw, scale, (s0, s1, (wa[:, None] * xa * xa).sum(axis=0), (wa * wa).sum(axis=0)), order)
+    return P, V, done, orders
 
 
 def _source_aspect(source: Source) -> np.ndarray:
@@ -989,6 +1076,9 @@ class PoseKMeans:
     face_hold_unmoved : with ``face_assign``, the clusters no object joined or left keep the fit's prototypes,
         aspects, their members' poses and distances and the symmetry test's moments to the bit; only the others are
         updated (:func:`_kept_from`, ``[mine] face_assign_hold_unmoved``).
+    pose_sync : after the fit, each prototype rebuilt from its upright members aligned to one another (yaw
+        synchronisation of every pair's search on the features without their first azimuthal harmonic, refined leave
+        one out; :func:`_synced_prototypes`, :meth:`_pose_sync`; ``[mine] pose_sync``).
     seed_hold_t : > 0, with ``face_pairs`` and without ``seed_check``: the seed partition is held as ``seed_check``
         holds it only when the fit's partition is significantly worse on the stable-face matrix: the paired t over
         the seeding matrix's objects of their distance to their cluster's medoid, fit minus seed
@@ -1006,8 +1096,10 @@ class PoseKMeans:
                  init: tuple | None = None, cache_mb: float = 384.0, progress=None,
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
                  seed_hold_t: float = 0.0, face_assign: bool = False,
-                 face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False, symmetry_break_effect: float = 0.0):
+                 face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False, symmetry_break_effect: float = 0.0,
+                 pose_sync: bool = False):
         self.n_clusters = n_clusters
+        self.pose_sync = pose_sync
         self.symmetry_break_effect = symmetry_break_effect
         self.face_assign = face_assign
         self.face_updates = face_updates
@@ -1082,6 +1174,8 @@ class PoseKMeans:
             best = self._fit_restarts(source, scales, rng)
         if self.face_assign and self._grid() is not None:
             best = self._face_reassign(source, best, scales)
+        if self.pose_sync:
+            best = self._pose_sync(source, best, scales)
         self._finish(best, source, scales)
         return self
 
@@ -1103,6 +1197,57 @@ class PoseKMeans:
                          cache=None, grid=grid, aspect=res.aspect, turned=None if pre is None else (src, pre),
                          updates=self.face_updates, keep=keep)
         return held if keep is None else _kept_from(held, res, keep)
+
+    def _pose_sync(self, source: Source, res: _Result, scales: tuple[float, ...]) -> _Result:
+        """``pose_sync``: the prototypes rebuilt from their upright members aligned to one another
+        (:func:`_synced_prototypes`), with the cluster's other members (tilted, or turned onto a face of their own)
+        searched against that mean and averaged in; the upright members keep the synchronised poses, and the
+        symmetry test reads their moments at those poses; every other member's pose is the search's against the
+        rebuilt prototype (a held fit's final pass, labels fixed, the turned members as the fit turned them).  The
+        clusters not rebuilt stay as the fit left them (:func:`_kept_from`)."""
+        grid = self._grid()
+        P, V, done, orders = _synced_prototypes(source, res, scales, self.chunk_size, grid)
+        if not done:
+            res.member_order = orders
+            return res
+        K, N = self.n_clusters, len(res.labels)
+        keep = np.ones(K, bool)
+        keep[list(done)] = False
+        turned = (res.src, res.pre) if res.pre is not None and res.src is not None else None
+        base = source if turned is None else turned[0]
+        synced = np.zeros(N, bool)
+        for idx, *_ in done.values():
+            synced[idx] = True
+        others = np.flatnonzero(~keep[res.labels] & ~synced)
+        mom_t = None
+        if others.size:
+            # the rebuilt clusters' other members, searched against the upright members' mean and summed in
+            x, w = _gather(base, others, self.chunk_size)
+            sub = ArraySource(x, w, None if grid is None else _source_aspect(base)[others])
+            ts = None if grid is None else TiltState(grid, res.aspect)
+            *_, num, den, count, _, _ = _assign_pass(sub, P, V, scales, self.chunk_size, True, 0,
+                                                     forced=res.labels[others], tilts=ts)
+            for k, (idx, _, _, mom, _) in done.items():
+                if count[k]:
+                    Pk, Vk = weighted_means((mom[1] + num[k])[None], (mom[0] + den[k])[None],
+                                            np.array([len(idx) + count[k]]))
+                    P[k], V[k] = Pk[0], Vk[0]
+            ts = None if grid is None else TiltState(grid, res.aspect)
+            mom_t = _assign_pass(sub, P, V, scales, self.chunk_size, True, 0, moments=True,
+                                 forced=res.labels[others], tilts=ts)[-1]
+        held = _held_fit(source, res.labels, P, V, scales=scales, chunk_size=self.chunk_size, moments=True, cache=None,
+                         grid=grid, aspect=res.aspect, own_faces=False, turned=turned, updates=0, keep=keep)
+        out = _kept_from(held, res, keep)
+        out.yaw, out.scale = np.array(out.yaw, copy=True), np.array(out.scale, copy=True)
+        moments = [np.array(m, copy=True) for m in out.moments]
+        out.member_order = orders
+        for k, (idx, yaw, scale, mom, order) in done.items():
+            out.yaw[idx] = np.mod(yaw, 360.0).astype(out.yaw.dtype)
+            out.scale[idx] = scale.astype(out.scale.dtype)
+            for j, (m, v) in enumerate(zip(moments, mom)):
+                m[k] = v if mom_t is None else v + mom_t[j][k]
+        out.moments = tuple(moments)
+        return out
 
     def _fit_restarts(self, source: Source, scales: tuple[float, ...], rng: np.random.Generator) -> _Result:
         N, K = len(source), self.n_clusters
@@ -1154,6 +1299,9 @@ class PoseKMeans:
         A = res.P.shape[3]
         symm = sym.detect_symmetry(res.P, res.V, sym.mean_variance(*res.moments), factor=self.symmetry_factor,
                                    tol=self.symmetry_tol, break_effect=self.symmetry_break_effect)
+        order = res.member_order
+        if order is not None:  # pose_sync: members showing less symmetry than the test break it (posesync.member_order)
+            symm = np.where((order >= 1) & ((symm == sym.CONTINUOUS) | (order < symm)), order, symm)
         t = sym.canonical_shift_bins(res.P, res.V, symm)
         self.prototypes_ = shift_volume(res.P, -t, axis=3).astype(np.float32)
         self.prototype_weights_ = shift_volume(res.V, -t, axis=2).astype(np.float32)

@@ -12,7 +12,8 @@
 - rotation error (truth tables with qx, qy, qz, qw: the rotation world <- the class's own frame): per
   cluster one offset O (prototype frame <- class frame) is removed, the geodesic medoid of the members'
   R_pred^T R_true, then each member's error is the geodesic angle between R_pred O and R_true, the least
-  over the class's symmetry rotations about its own z (``mined_rotation_errors``);
+  over the class's symmetry rotations about its own z and, when the truth lists them (column ``turns``: "order:ax,ay,az"
+  joined by ";", in the object's own frame), its turns that move up (``truth_group``; ``mined_rotation_errors``);
 - detected vs true symmetry per cluster (majority class);
 - the pose-unaware baseline: scikit-learn KMeans on the flattened matching features, same K.
 """
@@ -23,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..audit.metrics import (clustering_scores, rotation_error_deg, rotation_offset, symmetry_to_period_deg,
+from ..audit.metrics import (AboutZ, clustering_scores, rotation_error_deg, rotation_offset, symmetry_to_period_deg,
                              yaw_about_up_error_deg, yaw_error_deg, yaw_offset_deg)
 from ..errors import InputError
 from .. import rotations as rot
@@ -32,8 +33,9 @@ from .library import Library
 
 def read_truth_table(path: str | Path) -> dict[str, dict]:
     """Truth CSV (object, class or label, [yaw_deg, symmetry, capture, x, y, z, split, qx, qy, qz, qw, up_x, up_y,
-    up_z, face]) -> {object id: {"label", "class" (the same), "yaw_deg" (or None), "symmetry", "capture", "point"
-    (3,) or None, "split", "rotation" (4,) or None, "up" (3,) or None, "face" (str, "" when absent)}}."""
+    up_z, face, turns]) -> {object id: {"label", "class" (the same), "yaw_deg" (or None), "symmetry", "capture", "point"
+    (3,) or None, "split", "rotation" (4,) or None, "up" (3,) or None, "face" (str, "" when absent), "turns"
+    [(order, unit axis (3,))]}}."""
     path = Path(path)
     if not path.is_file():
         raise InputError(path, None, "truth CSV not found")
@@ -57,9 +59,25 @@ def read_truth_table(path: str | Path) -> dict[str, dict]:
             except ValueError:
                 raise InputError(path, f"row {line}", "expected numbers in qx, qy, qz, qw, up_x, up_y, up_z") from None
             out[oid] = {"label": label, "class": label, "yaw_deg": yaw, "point": point, "rotation": q, "up": up,
+                        "turns": _parse_turns(path, line, row.get("turns") or ""),
                         "face": row.get("face") or "",
                         "symmetry": row.get("symmetry") or "none", "capture": row.get("capture") or oid.split("/")[0],
                         "split": row.get("split", "")}
+    return out
+
+
+def _parse_turns(path: Path, line: int, text: str) -> list[tuple[int, np.ndarray]]:
+    out = []
+    for part in filter(None, text.split(";")):
+        try:
+            order, axis = part.split(":")
+            a = np.array([float(v) for v in axis.split(",")])
+            n = int(order)
+        except ValueError:
+            raise InputError(path, f"row {line}", f"expected turns as 'order:ax,ay,az' joined by ';', got {text!r}") from None
+        if a.shape != (3,) or n < 2 or not np.linalg.norm(a) > 0:
+            raise InputError(path, f"row {line}", f"expected turns as 'order:ax,ay,az' (order >= 2, a non-zero axis), got {text!r}")
+        out.append((n, a / np.linalg.norm(a)))
     return out
 
 
@@ -120,9 +138,35 @@ def symmetry_rotations(symmetry: str) -> np.ndarray | None:
     return rot.yaw_matrix(np.arange(n) * 360.0 / n)
 
 
+def truth_group(t: dict):
+    """The symmetry group of one truth row (``audit.metrics`` conventions): its rotations about z
+    (:func:`symmetry_rotations`; None = continuous) and, with its ``turns``, each turn's powers after them
+    (:class:`audit.metrics.AboutZ` for a continuous symmetry with turns)."""
+    about_z = symmetry_rotations(t["symmetry"])
+    turns = t.get("turns") or []
+    if not turns:
+        return about_z
+    extra = [np.eye(3)] + [rot.axis_angle_to_matrix(a, 360.0 * j / n) for n, a in turns for j in range(1, n)]
+    if about_z is None:
+        return AboutZ(np.stack(extra))
+    return np.stack([z @ e for e in extra for z in about_z])
+
+
+def _members_group(rows: list[dict]):
+    """One group for rows of one class: the class's when no row has turns, else each row's own stacked
+    ((n, G, 3, 3), or :class:`AboutZ` of such reps)."""
+    if not any(r.get("turns") for r in rows):
+        return symmetry_rotations(rows[0]["symmetry"])
+    groups = [truth_group(r) for r in rows]
+    if isinstance(groups[0], AboutZ):
+        return AboutZ(np.stack([g.reps for g in groups]))
+    return np.stack(groups)
+
+
 def cluster_rotation_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
     """Per cluster (offset O, symmetry group, member rows used) from its mined members of the majority class
-    that have a truth rotation (at least 2)."""
+    that have a truth rotation (at least 2).  The group is the class's (:func:`symmetry_rotations`), or with truth
+    turns each member's own (:func:`_members_group`; a single pose's error takes :func:`truth_group` of its row)."""
     m = lib.members
     out = {}
     for k, label in majority_map(lib, truth).items():
@@ -132,7 +176,7 @@ def cluster_rotation_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, 
             continue
         Rp = rot.quat_to_matrix(np.asarray(m["rotation"])[sel])
         Rt = rot.quat_to_matrix(np.array([truth[m["object"][i]]["rotation"] for i in sel]))
-        group = symmetry_rotations(truth[m["object"][sel[0]]]["symmetry"])
+        group = _members_group([truth[m["object"][i]] for i in sel])
         out[k] = (rotation_offset(Rp, Rt, group), group, np.array(sel))
     return out
 

@@ -22,7 +22,10 @@ R and ``tx,ty,tz``; the model frame is the instance's own (base on z = 0, footpr
 that yaw rotates).  ``face`` indexes the instance's stable faces, most probable first (-1: the upright pose
 is not a quasi-static rest; empty: an all-upright scene, where no face analysis runs).  For a tumbled
 instance yaw_deg is the drawn yaw of the resting frame (the model rotated by the smallest rotation that takes
-the face's normal to down).
+the face's normal to down).  ``turns`` lists the instance's symmetries that move up, in the model frame
+("order:ax,ay,az" joined by ";"; ``demo_scenes.items.instance_turns``: a spool end for end, a mallet half turned
+about its handle), beside ``symmetry`` about up; folders rendered before the column existed get it from
+:func:`add_truth_turns` (the layouts drawn again, nothing rendered).
 """
 from __future__ import annotations
 
@@ -38,7 +41,7 @@ from typing import Callable
 import numpy as np
 from scipy.spatial.transform import Rotation
 
-from demo_scenes.items import Instance, ItemClass, load_item_classes, make_instance
+from demo_scenes.items import Instance, ItemClass, format_turns, instance_turns, load_item_classes, make_instance
 
 from ..atomic import clean_stale_temporaries, write_text
 from ..capture import Intrinsics, write_capture
@@ -394,7 +397,8 @@ def _one_capture(folder: Path, split: str, pool: list[ItemClass], n_frames: int,
                      "scale": inst.scale, "size_m": inst.size, "x": base[0], "y": base[1], "z": base[2],
                      "up_x": up[0], "up_y": up[1], "up_z": up[2], "split": split,
                      "qx": q[0], "qy": q[1], "qz": q[2], "qw": q[3], "tx": t_full[0], "ty": t_full[1], "tz": t_full[2],
-                     "face": "" if p.face is None else p.face, "tumbled": int(p.tumbled)})
+                     "face": "" if p.face is None else p.face, "tumbled": int(p.tumbled),
+                     "turns": format_turns(instance_turns(inst))})
     return rows, dt
 
 
@@ -412,5 +416,47 @@ def _write_truth(out: Path, rows: list[dict]) -> None:
     write_text(out / "truth_points.csv", _csv(["capture", "x", "y", "z", "label", "yaw_deg"],
                                                [[r["capture"], r["x"], r["y"], r["z"], r["class"], r["yaw_deg"]] for r in rows]))
     full = ["capture", "mask_id", "object", "class", "symmetry", "yaw_deg", "scale", "size_m", "x", "y", "z",
-            "up_x", "up_y", "up_z", "split", "qx", "qy", "qz", "qw", "tx", "ty", "tz", "face", "tumbled"]
+            "up_x", "up_y", "up_z", "split", "qx", "qy", "qz", "qw", "tx", "ty", "tz", "face", "tumbled", "turns"]
     write_text(out / "truth_full.csv", _csv(full, [[r[k] for k in full] for r in rows]))
+
+
+def scenario_turns(out: str | Path) -> dict[str, tuple[str, str, float]]:
+    """{object id: (class, its ``turns`` entry, size in metres)} of a rendered scenario folder, from its
+    scenario.json: every capture's layout drawn again from the seed as :func:`_generate` draws it (instances, resting
+    poses and placements; nothing rendered)."""
+    out = Path(out)
+    doc = json.loads((out / "scenario.json").read_text())
+    by_name = {c.name: c for c in load_item_classes()}
+    pools = {split: [by_name[n] for n in doc["classes"][split]] for split in ("mining", "single")}
+    plan = [(name, "mining") for name in doc["mining"]] + [(name, "single") for name in doc["single"]]
+    rng = np.random.default_rng(int(doc["seed"]))
+    used: dict[str, dict[str, int]] = {"mining": {}, "single": {}}
+    turns = {}
+    for name, split in plan:
+        posed, _ = _layout(pools[split], rng.spawn(1)[0], used[split], float(doc.get("tumbled_fraction", 0.0)))
+        for mid, p in enumerate(posed, start=1):
+            turns[f"{name}/{mid}"] = (p.inst.item.name, format_turns(instance_turns(p.inst)), p.inst.size)
+    return turns
+
+
+def add_truth_turns(out: str | Path) -> bool:
+    """Give a scenario folder's truth_full.csv the ``turns`` column when it lacks it (:func:`scenario_turns`);
+    True when it was written."""
+    out = Path(out)
+    path = out / "truth_full.csv"
+    with open(path, newline="") as fh:
+        reader = csv.DictReader(fh)
+        header = list(reader.fieldnames or [])
+        rows = list(reader)
+    if "turns" in header:
+        return False
+    turns = scenario_turns(out)
+    # the layouts drawn again must be the ones rendered: the same class and size for every object
+    missing = [r["object"] for r in rows if r["object"] not in turns or turns[r["object"]][0] != r["class"]
+               or abs(turns[r["object"]][2] - float(r["size_m"])) > 1e-5]
+    if missing:
+        raise InputError(path, "object", f"objects the scenario's layouts do not draw again: {missing[:3]}")
+    for r in rows:
+        r["turns"] = turns[r["object"]][1]
+    write_text(path, _csv(header + ["turns"], [[r[k] for k in header + ["turns"]] for r in rows]))
+    return True
