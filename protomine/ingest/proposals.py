@@ -579,7 +579,9 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
                          low=_low_band(frames, plane, cfg, eps), colours=colours, cell=eps / 3.0, handed=handed,
                          readings=readings, step_share=step_share,
                          neck_cut=bool(c.get("twin_neck_cut", False)) and step_share > 0,
-                         spread_ratio=float(c.get("twin_spread_ratio", 0.0)))
+                         spread_ratio=float(c.get("twin_spread_ratio", 0.0)),
+                         neck_twin_share=float(c.get("twin_neck_step_share", 0.0)),
+                         cannot_link=bool(c.get("twin_cannot_link", False)))
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
