@@ -76,6 +76,10 @@ When the known-class route does not rank, the first ``find_rerank_shortlist`` ob
 re-ranked by their k-reciprocal neighbourhoods among themselves and the example (``curate.rerank``: each is searched
 as the one prototype against the others; Zhong et al., CVPR 2017).  ``Matches.rerank`` holds the key; ``distance``,
 ``score`` and ``both_ways`` stay as above.
+With ``[mine] find_member_route`` = r > 0 (default 8) an example the route does not take is first asked by the
+library's members: it ranks as a taken route to its nearest cluster by its k nearest members when it is among that
+cluster's first r by the margin on the members (``knownclass`` module docstring, 7.; ``_member_route``); only when it
+is not does the re-ranking above run.
 With ``[mine] find_route_soft`` = k > 0 (off by default) a taken route that shares at most one of its first 10 with
 the one-shot ranking is re-ranked too, and ranks by the reciprocal-rank fusion of the route's key and the re-ranked
 one (``knownclass.rank_fusion``; ``Matches.route.key`` then holds the fused key, ``prototype`` stays b).
