@@ -92,3 +92,13 @@ def test_member_route_leaves_a_view_no_member_resembles():
     # views, members themselves), so it is no reciprocal neighbour and keeps its own ranking
     assert not on.route.taken and on.route.member_rank >= 8, on.route
     np.testing.assert_array_equal(on.order, off.order)
+
+
+def test_without_the_members_volumes_nothing_changes():
+    lib, store, kind = _world()
+    lib = _with_members(lib, store, kind)
+    lib.members["object"] = np.array([f"elsewhere/{i}" for i in range(len(lib.members["object"]))], dtype=object)
+    off = find_similar(lib, store, "t/example", _cfg(0))
+    on = find_similar(lib, store, "t/example", _cfg(16))
+    assert not on.route.taken and on.route.member_rank == -1
+    np.testing.assert_array_equal(on.rank_key, off.rank_key)

@@ -422,6 +422,8 @@ def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRou
     if fuse > 0:
         base = fused_key(base, d1, fuse)
     short = _nearest(store, ex, base)[:n]
+    if len(short) < 2:                                        # nothing to be a reciprocal neighbour among
+        return route
     rows = np.concatenate([short, [ex]])
     Xs, Ws = _features(store, rows, weights)
     own = cluster_members(mcl, c)
