@@ -98,7 +98,7 @@ def test_without_the_members_volumes_nothing_changes():
     lib, store, kind = _world()
     lib = _with_members(lib, store, kind)
     lib.members["object"] = np.array([f"elsewhere/{i}" for i in range(len(lib.members["object"]))], dtype=object)
-    off = find_similar(lib, store, "t/example", _cfg(0))
-    on = find_similar(lib, store, "t/example", _cfg(16))
-    assert not on.route.taken and on.route.member_rank == -1
-    np.testing.assert_array_equal(on.rank_key, off.rank_key)
+    for example in ("t/example", "n/0"):
+        off, on = (find_similar(lib, store, example, _cfg(r)) for r in (0, 16))
+        assert not on.route.taken and on.route.member_rank == -1
+        np.testing.assert_array_equal(on.rank_key, off.rank_key)

@@ -89,8 +89,8 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    (``reciprocal_member_rank``), counted over the shortlist 6. ranks (c's first ``find_members_shortlist`` by the
    prototype's key, the example searched with them).  A view of c is then about as clear a member as c's other views
    and ranks among them; a never-mined view (on the demo stores) comes after the views of the class it resembles
-   (its rank 11-19 against a cluster holding ~15 of the 150-160 views).  Taken, the example ranks as a taken route to c
-   does (4. and 6.; ``KnownRoute.cluster`` c, ``named`` and ``example_score`` stay the label decision's).
+   (its rank at least 11 against a cluster holding ~15 of the 150-160 views).  Taken, the example ranks as a taken
+   route to c does (4. and 6.; ``KnownRoute.cluster`` c, ``named`` and ``example_score`` stay the label decision's).
 
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
@@ -131,7 +131,7 @@ class KnownRoute:
                                # prototype's margin ranking and the profile ranking (K,)
     member_rank: int = -1   # ``[mine] find_member_route``: asked for an example the route did not take, the shortlisted
                             # objects of ``cluster`` (its nearest by the members) with a lower margin on the members
-                            # than the example's (-1: not asked); taken when below the key (module docstring, 7.)
+                            # than the example's (-1: not asked); taken when below r (module docstring, 7.)
 
 
 def example_decision(library: Library, store, ex: int, cfg: dict) -> tuple[int, float, float]:
