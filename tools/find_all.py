@@ -5,8 +5,8 @@ library's calibration; prints P@10 and AP per example, then the mean and the wor
 replacement; 2 gives the 30-example evaluation of README "Find"); the draw's own figures are printed too.
 ``--store objects.h5``: the mined store instead (its multi-view fused objects are both the examples and the searched
 store, as ``protomine find library.h5 objects.h5 -e ID``; every class is then a mined one).  Each find line says
-how it ranked: the known-class route's prototype (by the majority class of its members) or the one-shot ranking
-("own"); the per-class means are printed at the end.
+how it ranked: the known-class route's prototype (by the majority class of its members; "members" when ``[mine]
+find_member_route`` took it) or the one-shot ranking ("own"); the per-class means are printed at the end.
 The demo's own find runs the never-mined classes only.  Not a test: one store-wide search per example (about 5-10 s
 of CPU each on the default demo).
 
@@ -51,8 +51,8 @@ for cls in sorted({l for l in labels if l}):
         others = np.array([i for i in range(len(st)) if i != e])
         k, p, ap = retrieval_scores(m, others, labels[others] == cls)
         rows.append((cls, drawn, p, ap, cpu))
-        how = (f"route {cnames.get(int(m.route.cluster), '?')} ({m.route.example_score:.2f})"
-               if m.route is not None and m.route.taken else "own")
+        how = (f"{'members' if m.route.member_rank >= 0 else 'route'} {cnames.get(int(m.route.cluster), '?')} "
+               f"({m.route.example_score:.2f})" if m.route is not None and m.route.taken else "own")
         print(f"  {cls:15s} {'mined' if cls in mined else 'never mined':11s} example {st.ids[e]:14s} "
               f"{'draw ' if drawn else 'extra'} P@{k} {p:.2f} AP {ap:.3f} {how:26s} cpu {cpu:.1f} s", flush=True)
 

@@ -78,6 +78,20 @@ view of a mined class, the prototype is the better query; when it is not, the pr
    route's order.  Without the mined store (the library's ``store_path`` not found, or not holding every member) the
    route ranks as before.  Measured in README "Find".
 
+7. Member route (``[mine] find_member_route`` = r > 0; 0 = off).  An example the route does not take (scored under
+   t, or in the weak band without agreement; a view of a mined class seen poorly, one the label decision names
+   wrongly, or a never-mined view) ranks by its own one view (or ``find_rerank``'s re-ranking of it).  The library's
+   members are a second opinion on its class: c, the cluster whose k nearest members (``find_members``'s k) are the
+   nearest on average (``class_knn``; the example pose-searched against every member, one bank per cluster).  A
+   never-mined view also has a nearest cluster, so c alone does not decide; the example must also be a reciprocal
+   neighbour of c (Zhong et al., CVPR 2017, the k-reciprocal test of ``find_rerank`` between an object and a cluster):
+   among c's first r objects of the store by the members' margin, ``member_rank`` below r
+   (``reciprocal_member_rank``), counted over the shortlist 6. ranks (c's first ``find_members_shortlist`` by the
+   prototype's key, the example searched with them).  A view of c is then about as clear a member as c's other views
+   and ranks among them; a never-mined view (on the demo stores) comes after the views of the class it resembles
+   (its rank at least 11 against a cluster holding ~15 of the 150-160 views).  Taken, the example ranks as a taken
+   route to c does (4. and 6.; ``KnownRoute.cluster`` c, ``named`` and ``example_score`` stay the label decision's).
+
 What the route changes: only the ranking (``Matches.rank_key`` = the key; ``both_ways`` is then empty).  ``distance``,
 ``score``, pose and faces stay the one-shot search's (its calibration, ``--add`` unchanged).  ``prototype`` (b) and
 ``prototype_score`` are added: the library's calibrated score of d_ib (``Library.score``: single-view calibration for
@@ -115,6 +129,9 @@ class KnownRoute:
                             # replaced it (``cluster`` is then the prototype that ranks)
     profile_agree: tuple = ()  # with the overrule asked: objects in common among the first AGREE_TOP of each
                                # prototype's margin ranking and the profile ranking (K,)
+    member_rank: int = -1   # ``[mine] find_member_route``: asked for an example the route did not take, the shortlisted
+                            # objects of ``cluster`` (its nearest by the members) with a lower margin on the members
+                            # than the example's (-1: not asked); taken when below r (module docstring, 7.)
 
 
 def example_decision(library: Library, store, ex: int, cfg: dict) -> tuple[int, float, float]:
@@ -208,6 +225,16 @@ def knn_margin(Dm: np.ndarray, member_cluster: np.ndarray, n_clusters: int, b: i
     return margin_key(class_knn(Dm, member_cluster, n_clusters, k), b)
 
 
+def reciprocal_member_rank(short_margin: np.ndarray, example_margin: float) -> int:
+    """``[mine] find_member_route`` (module docstring, 7.): how many of the shortlisted objects' margins on the
+    members (n,) are below the example's (non-finite ones never are); the example is a reciprocal neighbour of the
+    cluster when this is below r.  An example with no finite margin ranks after all of them (n)."""
+    m = np.asarray(short_margin, np.float64)
+    if not np.isfinite(example_margin):
+        return int(len(m))
+    return int(np.sum(np.isfinite(m) & (m < example_margin)))
+
+
 def members_key(route_key: np.ndarray, shortlist: np.ndarray, short_key: np.ndarray, ids: np.ndarray) -> np.ndarray:
     """The route's key (N,) with its ``shortlist`` (n,) store rows ranked by ``short_key`` (n,) (ascending, ties by id)
     ahead of every other object, which keeps its order by ``route_key`` (inf stays inf)."""
@@ -276,10 +303,19 @@ def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt
     key = margin_key(D, b)
     if taken and fuse > 0 and one_shot_distance is not None:
         key = fused_key(key, one_shot_distance, fuse)
+    d, sc = prototype_scores(library, store, D, tilt, grid, b)
+    return KnownRoute(b, s, cut, agree, bool(taken), key, d, sc, named, shares)
+
+
+def prototype_scores(library: Library, store, D: np.ndarray, tilt: np.ndarray, grid: TiltGrid | None,
+                     b: int) -> tuple[np.ndarray, np.ndarray]:
+    """(d_ib (N,), the library's calibrated score of it (N,), 0 where unmatched): single-view calibration for objects
+    seen in one frame (on the canonical or another face by the search's tilt), the fused one otherwise."""
+    N = len(D)
     d = np.asarray(D[:, b], np.float64)
     single = np.asarray(store.objects.get("n_frames", np.ones(N)))[:N] == 1
     upright = (grid or TiltGrid.identity()).is_upright(np.asarray(tilt[:, b]))
     ok = np.isfinite(d)
     dd = np.where(ok, d, 1.0)
     sc = np.where(single, library.score(dd, b, single_view=True, upright=upright), library.score(dd, b, single_view=False))
-    return KnownRoute(b, s, cut, agree, bool(taken), key, d, np.where(ok, sc, 0.0), named, shares)
+    return d, np.where(ok, sc, 0.0)

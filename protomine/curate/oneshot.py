@@ -76,6 +76,10 @@ When the known-class route does not rank, the first ``find_rerank_shortlist`` ob
 re-ranked by their k-reciprocal neighbourhoods among themselves and the example (``curate.rerank``: each is searched
 as the one prototype against the others; Zhong et al., CVPR 2017).  ``Matches.rerank`` holds the key; ``distance``,
 ``score`` and ``both_ways`` stay as above.
+With ``[mine] find_member_route`` = r > 0 (default 8) an example the route does not take is first asked by the
+library's members: it ranks as a taken route to its nearest cluster by its k nearest members when it is among that
+cluster's first r by the margin on the members (``knownclass`` module docstring, 7.; ``_member_route``); only when it
+is not does the re-ranking above run.
 With ``[mine] find_route_soft`` = k > 0 (off by default) a taken route that shares at most one of its first 10 with
 the one-shot ranking is re-ranked too, and ranks by the reciprocal-rank fusion of the route's key and the re-ranked
 one (``knownclass.rank_fusion``; ``Matches.route.key`` then holds the fused key, ``prototype`` stays b).
@@ -94,7 +98,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
-from ..mine.memberknn import cluster_members, load_members, searched_distances
+from ..mine.memberknn import class_knn, cluster_members, load_members, searched_distances
 from ..mine.engine import align_to_prototype, weighted_means
 from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
@@ -102,7 +106,8 @@ from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_as
 from ..mine.symmetry import detect_symmetry
 from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
-from .knownclass import OVERRULE_AGREE_MAX, KnownRoute, fused_key, knn_margin, known_route, members_key, rank_fusion
+from .knownclass import (OVERRULE_AGREE_MAX, KnownRoute, fused_key, knn_margin, known_route, margin_key, members_key,
+                         prototype_scores, rank_fusion, reciprocal_member_rank)
 from .names import check_name, refresh_gallery
 from .rerank import rerank_pairwise, reranked_key
 
@@ -341,6 +346,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         route = _by_members(library, store, ex, route, both_ways(D, reverse), weights, scales, grid, k_mem,
                             int(cfg["mine"].get("find_members_shortlist", 48)),
                             float(cfg["mine"].get("find_prototype_fuse", 0.0)))
+    r_mr = int(cfg["mine"].get("find_member_route", 0))
+    if r_mr > 0 and k_mem > 0 and route is not None and not route.taken:   # the member route (``curate.knownclass``, 7.)
+        route = _member_route(library, store, ex, route, Dk, tk, X1[0], W1[0], both_ways(D, reverse), weights, scales,
+                              grid, k_mem, int(cfg["mine"].get("find_members_shortlist", 48)),
+                              float(cfg["mine"].get("find_prototype_fuse", 0.0)), r_mr)
     rerank = None
     k_rr = int(cfg["mine"].get("find_rerank", 0))
     k_soft = int(cfg["mine"].get("find_route_soft", 0))
@@ -384,6 +394,51 @@ def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute
     km = knn_margin(Dm, mcl, library.n_clusters, route.cluster, k)
     sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
     return replace(route, key=members_key(route.key, short, sk, ids))
+
+
+def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRoute, Dk: np.ndarray, tk: np.ndarray,
+                  x: np.ndarray, w: np.ndarray, d1: np.ndarray, weights: tuple[float, float], scales: tuple[float, ...],
+                  grid: TiltGrid | None, k: int, n: int, fuse: float, r: int) -> KnownRoute:
+    """``[mine] find_member_route``: an untaken route asked again by the members (``knownclass`` module docstring, 7.).
+    c = the example's nearest cluster by its k nearest members (x (C, R, A, H), w (R, A, H) searched against every
+    member, one bank per cluster); c's first ``n`` objects by the prototype's key (fused with the example's own distance
+    d1 (N,) when ``fuse`` > 0) and the example are searched against the members as the taken route's are
+    (``_by_members``); the route to c is taken when fewer than r of them have a lower margin than the example, and
+    ranks as a taken route to c.  Else the route comes back untaken with its ``member_rank``.  Unchanged when the
+    members' volumes cannot be found."""
+    mem = load_members(library, weights[0], weights[1], store)
+    if mem is None:
+        return route
+    K, mcl = library.n_clusters, mem.cluster
+    ids = np.asarray(store.ids).astype(str)
+    De = searched_distances(x[None], w[None], mem.P, mem.V, mem.aspect,
+                            [(np.zeros(1, np.int64), cluster_members(mcl, c)) for c in range(K)], scales, grid)
+    De[0, mem.ids == ids[ex]] = np.inf                       # not its own neighbour (an example from the mined store)
+    kd = class_knn(De, mcl, K, k)[0]
+    if not np.isfinite(kd).any():
+        return route
+    c = int(np.argmin(kd))
+    base = margin_key(Dk, c)
+    if fuse > 0:
+        base = fused_key(base, d1, fuse)
+    short = _nearest(store, ex, base)[:n]
+    if len(short) < 2:                                        # nothing to be a reciprocal neighbour among
+        return route
+    rows = np.concatenate([short, [ex]])
+    Xs, Ws = _features(store, rows, weights)
+    own = cluster_members(mcl, c)
+    rest = np.sort(np.concatenate([cluster_members(mcl, j) for j in range(K) if j != c] + [np.zeros(0, np.int64)]))
+    every = np.arange(len(rows))
+    Dm = searched_distances(Xs, Ws, mem.P, mem.V, mem.aspect, [(every, [j]) for j in own] + [(every, rest)], scales, grid)
+    Dm[ids[rows][:, None] == mem.ids[None, :]] = np.inf      # not its own neighbour
+    km = knn_margin(Dm, mcl, K, c, k)
+    rank = reciprocal_member_rank(km[:-1], float(km[-1]))
+    if rank >= r:
+        return replace(route, member_rank=rank)
+    sk = fused_key(km[:-1], np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km[:-1]
+    d, sc = prototype_scores(library, store, Dk, tk, grid, c)
+    return replace(route, cluster=c, taken=True, key=members_key(base, short, sk, ids), distance=d, score=sc,
+                   member_rank=rank)
 
 
 def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np.ndarray, w: np.ndarray, aspect: float,
