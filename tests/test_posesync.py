@@ -117,6 +117,30 @@ def test_pose_sync_aligns_a_thin_handle_under_off_centre_members():
     assert np.max(errs(False)) > 20.0   # the case is one the plain fit gets wrong (else this checks nothing)
 
 
+def test_pose_sync_synchronises_at_most_the_cap_of_members(monkeypatch):
+    # the pairs' searches grow as n^2: a cluster with more upright members than SYNC_MAX_MEMBERS synchronises that many,
+    # evenly spaced in member order (memberknn.cluster_members), and the rest are searched against their mean.  The
+    # bound by its definition: the pairwise search sees the cap's count.
+    from protomine.mine import engine, posesync
+    seen = []
+    real = posesync.pairwise_yaws
+
+    def spy(X, W, scales):
+        seen.append(len(X))
+        return real(X, W, scales)
+
+    monkeypatch.setattr(posesync, "pairwise_yaws", spy)
+    monkeypatch.setattr(engine, "SYNC_MAX_MEMBERS", 5)
+    rng = np.random.default_rng(3)
+    P = _handled_body()
+    n = 12
+    X = np.stack([np.roll(P, int(b), axis=2) for b in rng.integers(0, P.shape[2], n)])
+    X = (X + rng.normal(0, 0.05, X.shape)).astype(np.float32)
+    W = np.ones((n,) + P.shape[1:], np.float32)
+    PoseKMeans(n_clusters=1, scales=(1.0,), n_init=1, max_iter=10, random_state=0, pose_sync=True).fit(ArraySource(X, W))
+    assert seen == [5]   # without the cap: [12]
+
+
 def test_member_order_reads_the_symmetry_the_members_show():
     # the handled body: one handle (none), four handles a quarter turn apart (4-fold), no handle (round: no preferred
     # yaw); members rolled to random yaws with noise, their pairs searched as pairwise_yaws does

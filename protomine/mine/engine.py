@@ -953,6 +953,8 @@ SYNC_ROUNDS = 3        # leave-one-out rounds after the synchronisation
 SYNC_SHARP = 0.1       # posesync.member_order: the mean pair weight from which the members show a preferred yaw
 SYNC_CONSISTENT = 0.95  # ... and the consistency at which their pairs agree modulo 360 / n
 SYNC_AGREE_DEG = 15.0  # the fit's upright members within this of the synchronised yaws (one common turn removed): kept
+SYNC_MAX_MEMBERS = 32  # at most this many upright members of a cluster synchronised (evenly spaced in member order; the
+                       # pairs' searches and their (n, n, scales, A) distances grow as n^2); the rest join as the others
 
 
 def _loo_yaws(x: np.ndarray, w: np.ndarray, yaw: np.ndarray, scale: np.ndarray, scales: tuple[float, ...],
@@ -985,13 +987,14 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
     fit's yaws of those members disagree with the synchronised ones by more than ``SYNC_AGREE_DEG`` once one common turn
     is removed (modulo 360 / that order): a fit that aligned them already keeps its prototype, built with every face's
     members.  Returns P (K, C, R, A, H), V (K, R, A, H) (the fit's where not rebuilt), per rebuilt cluster k (member
-    rows (n,), yaw (n,), scale (n,), their aligned moments (s0, s1, s2, sw2) as the symmetry test reads them, the
+    rows (n,; at most ``SYNC_MAX_MEMBERS``, evenly spaced: the others are searched as the tilted ones), yaw (n,), scale (n,), their aligned moments (s0, s1, s2, sw2) as the symmetry test reads them, the
     order), and the order about up each cluster's members show (K,) (-1: none shown, or too few upright members).
 
     Why the members keep these yaws (the search is not run again for them): a prototype of n members keeps about
     1 / sqrt(n) of their off-centre patterns, and each member's own pattern lines up with that remnant before the
     thin part does (a synthetic handled body, tests/test_posesync.py: synchronised within 1 degree, searched again
     against the synchronised prototype 5-163 degrees out)."""
+    from .memberknn import cluster_members
     from .posesync import member_order, pairwise_yaws, synchronize_yaws, without_first_harmonic
     K = res.P.shape[0]
     P, V = res.P.copy(), res.V.copy()
@@ -1001,8 +1004,9 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
         upright &= np.all(np.abs(res.pre - np.eye(3)) < 1e-9, axis=(1, 2))
     upright &= np.isfinite(res.dist)
     orders = np.full(K, -1, np.int64)
+    members = np.where(upright, res.labels, -1)
     for k in range(K):
-        idx = np.flatnonzero((res.labels == k) & upright)
+        idx = cluster_members(members, k, SYNC_MAX_MEMBERS)
         if len(idx) < SYNC_MIN_MEMBERS:
             continue
         x, w = _gather(source, idx, chunk_size)
