@@ -55,17 +55,9 @@ def label_views(out: Path, cfg: dict, seed: int):
     for c in scen["single"]:
         cap = read_capture(out / "scenes" / c, check_images=False)
         lifted += M._lift_capture(matcher, cap, cfg, seed, True, None, st, Bar(None, "label", 0, "frames"))
-    vols = np.concatenate([fo.volumes for _, fo in lifted])
-    # with each view's camera, size and cut, as the label stage's batches (label.matcher._match_batch)
-    cuts = [c for _, fo in lifted for c in fo.cuts] if matcher.view_cut and matcher.normaliser is not None else None
-    m = matcher.match(vols, np.concatenate([fo.cameras for _, fo in lifted]),
-                      np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2), cuts)
-    recs, i0 = [], 0
-    for name, fo in lifted:
-        n = len(fo.facts)
-        recs += M._records(matcher, name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
-        i0 += n
-    return lib, matcher, recs, m, matcher.features(vols)[1]
+    m = M.match_lifted(matcher, lifted)   # with each view's camera, size and cut, as the label stage matches
+    recs = M.lifted_records(matcher, lifted, m)
+    return lib, matcher, recs, m, matcher.features(np.concatenate([fo.volumes for _, fo in lifted]))[1]
 
 
 def groups(lib, recs, truth) -> tuple[np.ndarray, list]:

@@ -380,20 +380,27 @@ def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute
     mem = load_members(library, weights[0], weights[1], store) if len(short) >= 2 else None
     if mem is None:
         return route
-    Xs, Ws = _features(store, short, weights)
+    km = _member_margins(store, short, mem, route.cluster, library.n_clusters, weights, scales, grid, k)
+    sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
+    return replace(route, key=members_key(route.key, short, sk, np.asarray(store.ids).astype(str)))
+
+
+def _member_margins(store: ObjectStore, rows: np.ndarray, mem, c: int, K: int, weights: tuple[float, float],
+                    scales: tuple[float, ...], grid: TiltGrid | None, k: int) -> np.ndarray:
+    """The margins (n,) on the members ``mem`` (``memberknn.load_members``) of the store's ``rows`` (n,) for cluster
+    c (``knownclass.knn_margin``, k nearest per cluster; at most MEMBER_CAP members of each cluster searched), an
+    object never its own neighbour."""
+    Xs, Ws = _features(store, rows, weights)
     mcl = mem.cluster
-    own = cluster_members(mcl, route.cluster)   # at most MEMBER_CAP of each cluster's members
-    rest = np.sort(np.concatenate([cluster_members(mcl, c) for c in range(library.n_clusters) if c != route.cluster]
-                                  + [np.zeros(0, np.int64)]))
-    # b's members each as the one prototype, as find searches its example (every tilt refined); the other members in
+    own = cluster_members(mcl, c)
+    rest = np.sort(np.concatenate([cluster_members(mcl, j) for j in range(K) if j != c] + [np.zeros(0, np.int64)]))
+    # c's members each as the one prototype, as find searches its example (every tilt refined); the other members in
     # one search, as mining assigns to its prototypes (a quarter of the CPU)
-    every = np.arange(len(short))
+    every = np.arange(len(rows))
     Dm = searched_distances(Xs, Ws, mem.P, mem.V, mem.aspect, [(every, [j]) for j in own] + [(every, rest)], scales, grid)
     ids = np.asarray(store.ids).astype(str)
-    Dm[ids[short][:, None] == mem.ids[None, :]] = np.inf   # not its own neighbour
-    km = knn_margin(Dm, mcl, library.n_clusters, route.cluster, k)
-    sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
-    return replace(route, key=members_key(route.key, short, sk, ids))
+    Dm[ids[rows][:, None] == mem.ids[None, :]] = np.inf   # not its own neighbour
+    return knn_margin(Dm, mcl, K, c, k)
 
 
 def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRoute, Dk: np.ndarray, tk: np.ndarray,
@@ -424,14 +431,7 @@ def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRou
     short = _nearest(store, ex, base)[:n]
     if len(short) < 2:                                        # nothing to be a reciprocal neighbour among
         return route
-    rows = np.concatenate([short, [ex]])
-    Xs, Ws = _features(store, rows, weights)
-    own = cluster_members(mcl, c)
-    rest = np.sort(np.concatenate([cluster_members(mcl, j) for j in range(K) if j != c] + [np.zeros(0, np.int64)]))
-    every = np.arange(len(rows))
-    Dm = searched_distances(Xs, Ws, mem.P, mem.V, mem.aspect, [(every, [j]) for j in own] + [(every, rest)], scales, grid)
-    Dm[ids[rows][:, None] == mem.ids[None, :]] = np.inf      # not its own neighbour
-    km = knn_margin(Dm, mcl, K, c, k)
+    km = _member_margins(store, np.concatenate([short, [ex]]), mem, c, K, weights, scales, grid, k)
     rank = reciprocal_member_rank(km[:-1], float(km[-1]))
     if rank >= r:
         return replace(route, member_rank=rank)

@@ -774,16 +774,28 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
     if not lifted:
         return []
     t0 = time.perf_counter()
-    m = matcher.match(np.concatenate([fo.volumes for _, fo in lifted]),
-                      np.concatenate([fo.cameras for _, fo in lifted]),
-                      np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2),
-                      [c for _, fo in lifted for c in fo.cuts] if matcher.view_cut and matcher.normaliser is not None else None)
+    m = match_lifted(matcher, lifted)
     st["match_s"] += time.perf_counter() - t0
+    out = lifted_records(matcher, lifted, m)
+    st["objects"] += len(out)
+    st.setdefault("scores", []).append(m["score"])
+    return out
+
+
+def match_lifted(matcher: Matcher, lifted: list[tuple[str, FrameObjects]]) -> dict:
+    """The lifted objects of several frames in one pose search, each view with its camera, size and cut:
+    :meth:`Matcher.match`'s output."""
+    return matcher.match(np.concatenate([fo.volumes for _, fo in lifted]),
+                         np.concatenate([fo.cameras for _, fo in lifted]),
+                         np.array([f["size_m"] for _, fo in lifted for f in fo.facts], np.float64).reshape(-1, 2),
+                         [c for _, fo in lifted for c in fo.cuts] if matcher.view_cut and matcher.normaliser is not None else None)
+
+
+def lifted_records(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], m: dict) -> list[dict]:
+    """The records of the lifted objects (in order) from :func:`match_lifted`'s output ``m``."""
     out, i0 = [], 0
     for cap_name, fo in lifted:
         n = len(fo.facts)
         out += _records(matcher, cap_name, fo, {k: v[i0:i0 + n] for k, v in m.items()})
         i0 += n
-    st["objects"] += i0
-    st.setdefault("scores", []).append(m["score"])
     return out
