@@ -104,15 +104,6 @@ def yaw_matrix(yaw_deg: np.ndarray | float) -> np.ndarray:
 
 # --- tilts -----------------------------------------------------------------------------------
 
-def axis_angle_to_matrix(axis: np.ndarray, angle_deg: float) -> np.ndarray:
-    """Rotation (3, 3) by ``angle_deg`` right-handed about ``axis`` (3,) (normalised here; Rodrigues' formula)."""
-    k = np.asarray(axis, np.float64)
-    k = k / np.linalg.norm(k)
-    a = np.deg2rad(float(angle_deg))
-    K = np.array([[0.0, -k[2], k[1]], [k[2], 0.0, -k[0]], [-k[1], k[0], 0.0]])
-    return np.eye(3) + np.sin(a) * K + (1.0 - np.cos(a)) * (K @ K)
-
-
 def tilt_matrix(up: np.ndarray) -> np.ndarray:
     """Shortest-arc rotation(s) (..., 3, 3) taking unit direction(s) ``up`` (..., 3) to +z.
 

@@ -28,6 +28,7 @@ from ..audit.metrics import (AboutZ, clustering_scores, rotation_error_deg, rota
                              yaw_about_up_error_deg, yaw_error_deg, yaw_offset_deg)
 from ..errors import InputError
 from .. import rotations as rot
+from ..geometry import axis_angle_to_matrix
 from .library import Library
 
 
@@ -146,7 +147,7 @@ def truth_group(t: dict):
     turns = t.get("turns") or []
     if not turns:
         return about_z
-    extra = [np.eye(3)] + [rot.axis_angle_to_matrix(a, 360.0 * j / n) for n, a in turns for j in range(1, n)]
+    extra = [np.eye(3)] + [axis_angle_to_matrix(a, 2.0 * np.pi * j / n) for n, a in turns for j in range(1, n)]
     if about_z is None:
         return AboutZ(np.stack(extra))
     return np.stack([z @ e for e in extra for z in about_z])
