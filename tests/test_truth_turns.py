@@ -89,3 +89,25 @@ def test_metrics_take_poses_modulo_turns_per_object():
     O = Rotation.from_euler("xyz", [10, 20, 30], degrees=True).as_matrix()
     O_hat = rotation_offset(pred @ O.T, R_true, G)       # the offset, found modulo each member's own group
     np.testing.assert_allclose(rotation_error_deg(pred @ O.T, R_true, O_hat, G), 0.0, atol=1e-5)
+
+
+@pytest.mark.parametrize("symmetry", ["none", "continuous"])
+def test_members_group_takes_rows_with_and_without_turns(symmetry):
+    # a class where only some instances list a turn (an older truth file, a shape whose turn depends on its draw):
+    # each row keeps its own group; the error of every member is the one its own row's group gives (scipy Rotation
+    # as the reference for the rotations)
+    from protomine.audit.metrics import AboutZ, rotation_error_deg
+    from protomine.mine.evaluate import _members_group, truth_group
+    rows = [{"symmetry": symmetry, "turns": [(2, np.array([1.0, 0.0, 0.0]))]},
+            {"symmetry": symmetry, "turns": []},
+            {"symmetry": symmetry}]
+    R_true = Rotation.random(3, random_state=4).as_matrix()
+    flip = Rotation.from_euler("x", 180, degrees=True).as_matrix()
+    tip = Rotation.from_euler("x", 5, degrees=True).as_matrix()          # 185 degrees about x in all
+    pred = R_true @ flip @ tip
+    group = _members_group(rows)
+    assert isinstance(group, AboutZ) == (symmetry == "continuous")
+    err = rotation_error_deg(pred, R_true, np.eye(3), group)
+    one = [rotation_error_deg(pred[i:i + 1], R_true[i:i + 1], np.eye(3), truth_group(r))[0] for i, r in enumerate(rows)]
+    np.testing.assert_allclose(err, one, atol=1e-6)
+    np.testing.assert_allclose(err, [5.0, 175.0, 175.0], atol=1e-6)   # the flip is a symmetry of the first row only

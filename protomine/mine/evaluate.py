@@ -155,13 +155,23 @@ def truth_group(t: dict):
 
 def _members_group(rows: list[dict]):
     """One group for rows of one class: the class's when no row has turns, else each row's own stacked
-    ((n, G, 3, 3), or :class:`AboutZ` of such reps)."""
+    ((n, G, 3, 3), or :class:`AboutZ` of such reps; rows with fewer elements, e.g. instances without turns, padded
+    with their identity)."""
     if not any(r.get("turns") for r in rows):
         return symmetry_rotations(rows[0]["symmetry"])
     groups = [truth_group(r) for r in rows]
-    if isinstance(groups[0], AboutZ):
-        return AboutZ(np.stack([g.reps for g in groups]))
-    return np.stack(groups)
+    continuous = [g is None or isinstance(g, AboutZ) for g in groups]
+    if any(continuous) and not all(continuous):
+        raise ValueError("rows of one class disagree on a continuous symmetry about z")
+    if continuous[0]:
+        reps = [np.eye(3)[None] if g is None else g.reps for g in groups]
+    else:
+        reps = list(groups)
+    # rows without turns (or with fewer) have smaller groups: padded with their identity, a repeated element,
+    # which leaves every minimum over the group as it is
+    size = max(len(g) for g in reps)
+    reps = np.stack([np.concatenate([g, np.repeat(g[:1], size - len(g), axis=0)]) for g in reps])
+    return AboutZ(reps) if continuous[0] else reps
 
 
 def cluster_rotation_offsets(lib: Library, truth: dict[str, dict]) -> dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]:
