@@ -392,7 +392,7 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     join's twins must also be alike in their footprints' spreads (``_alike_spread``); with ``cannot_link``
     (``[ingest] twin_cannot_link``) the join never puts two groups kept apart into one object through others.
     normals: (V, 3) voxel normals (``voxel_normals``, ``[ingest] piece_convex_seam``); with them a part that does
-    not stand, hanging on neighbours, joins one it meets along a seam that is not mostly concave before one it
+    not stand, hanging on neighbours, joins one it meets along a convex seam (PIECE_CONVEX_SHARE) before one it
     meets in a concave crease (``concave_deg`` as in ``convex_parts``; ``_seam_concavity``).
     """
     halves = set()
@@ -471,11 +471,14 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                 for other_g in np.flatnonzero((seam >= REST_SEAM_SHARE * seam.max()) & (seam > 0)):
                     group[group == other_g] = target
             elif per_group.max() > 0:
-                if concave_links is not None:
+                if concave_links is not None and len(sel) >= TWIN_VOXELS:
                     # a piece cut from its own object meets it along a convex edge or a surface running on; a
-                    # touching neighbour meets it in a concave crease (two solids in contact, Stein et al. 2014)
+                    # touching neighbour meets it in a concave crease (two solids in contact, Stein et al. 2014).
+                    # Pieces of a twin's size only: along a small piece's short seams (a handle's, a rim's) the
+                    # normals mix surfaces (a handled mug's pieces of 55-171 voxels: 0.09-0.66 concave with
+                    # their own mug, 0.07-0.55 with the neighbour)
                     wc = np.bincount(group, weights=np.asarray(concave_links[mem].sum(axis=0)).ravel(), minlength=n)
-                    convex = (per_group > 0) & (wc < CONTACT_CONCAVE_SHARE * per_group)
+                    convex = (per_group >= REST_SEAM_SHARE * per_group.max()) & (wc < PIECE_CONVEX_SHARE * per_group)
                     convex[g] = False
                     if convex.any():
                         per_group = np.where(convex, per_group, 0.0)
@@ -504,10 +507,13 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     return _relabel(lab)
 
 
-CONTACT_CONCAVE_SHARE = 0.5   # with ``[ingest] piece_convex_seam``: a seam with this share of its voxel pairs concave
-                              # is a contact between two solids (measured, tests/same_colour_rows.py rows of three
-                              # cans, draws 0 and 4: the middle can's wall piece that does not stand, with its own
-                              # other piece 0.004 and 0.000 concave, with the two neighbouring cans 0.55-0.79)
+PIECE_CONVEX_SHARE = 0.1  # with ``[ingest] piece_convex_seam``: a part that does not stand (of TWIN_VOXELS at least)
+                          # joins, among its neighbours met along REST_SEAM_SHARE of its longest seam, those whose
+                          # seam with it has under this share of its voxel pairs concave, when there are any
+                          # (measured, tests/same_colour_rows.py: the middle can's wall piece of rows of three
+                          # draws 0 and 4, with its own other piece 0.004 and 0.000 concave, with the neighbouring
+                          # cans 0.55-0.79; a lying spool's pieces in pairs of spools, draw 3, 0.39-0.85 with every
+                          # neighbour, none acted on)
 
 
 def _seam_concavity(points: np.ndarray, normals: np.ndarray, i: np.ndarray, j: np.ndarray,
