@@ -3,7 +3,7 @@
 dumbbell lying on their side, standing, a double-ended block, and the lying ones with sizes drawn per draw
 (``_v``); pairs of the lying spools and dumbbells; draws
 D0..D1-1) and count, per setting of ``[ingest] seam_step_share`` / ``twin_neck_cut`` / ``twin_spread_ratio`` /
-``twin_neck_step_share`` / ``twin_cannot_link``, the
+``twin_neck_step_share`` / ``twin_cannot_link`` / ``piece_convex_seam``, the
 objects separated (a single object: kept whole) (one mask-free proposal at least 0.95 pure by
 the renderer's masks holding at least 0.8 of the object's masked pixels) and the proposals.  README "Touching
 objects of one colour" gives its figures (draws 0-5).
