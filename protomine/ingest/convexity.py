@@ -476,7 +476,7 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                     # touching neighbour meets it in a concave crease (two solids in contact, Stein et al. 2014).
                     # Pieces of a twin's size only: along a small piece's short seams (a handle's, a rim's) the
                     # normals mix surfaces (a handled mug's pieces of 55-171 voxels: 0.09-0.66 concave with
-                    # their own mug, 0.07-0.55 with the neighbour)
+                    # their own mug, 0.07-1.00 with a neighbour)
                     wc = np.bincount(group, weights=np.asarray(concave_links[mem].sum(axis=0)).ravel(), minlength=n)
                     convex = (per_group >= REST_SEAM_SHARE * per_group.max()) & (wc < PIECE_CONVEX_SHARE * per_group)
                     convex[g] = False
