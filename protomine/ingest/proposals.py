@@ -581,7 +581,9 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
                          neck_cut=bool(c.get("twin_neck_cut", False)) and step_share > 0,
                          spread_ratio=float(c.get("twin_spread_ratio", 0.0)),
                          neck_twin_share=float(c.get("twin_neck_step_share", 0.0)),
-                         cannot_link=bool(c.get("twin_cannot_link", False)))
+                         cannot_link=bool(c.get("twin_cannot_link", False)),
+                         normals=normals if c.get("piece_convex_seam", False) else None,
+                         concave_deg=c["concave_deg"])
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
