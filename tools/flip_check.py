@@ -13,6 +13,10 @@ gives, (R_true g O^T)^T up (g: the truth group's element nearest the mined pose)
 
     PYTHONPATH=. python tools/flip_check.py DEMO_OUT [CONFIG] [--refit]
 
+Every copy is resampled (``copy_at``), the +z one too; the tilt search itself compares a member at the identity tilt
+with the prototype as it is (``TiltBank._build``), so for a member with either up at +z the two can disagree (README
+"Where the mined pose tail is now").
+
 DEMO_OUT is a `protomine demo` folder (library.h5, objects.h5, scenes/truth_full.csv); CONFIG the demo's --config.
 Not a test: about a minute (three more with --refit).
 """
