@@ -255,6 +255,9 @@ class Matcher:
         and ``centre`` (n, K) says which.
         ``sizes`` (n, 2): each view's footprint radius and height (m); with ``symmetric_top`` (the library's
         ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``).
+        With ``size_weight`` (the library's ``[mine] label_size`` = c) every decision distance is multiplied by
+        exp(c x ``mine.metricsize.size_mismatch``): the view's metric size against the prototype resting on the up
+        direction found, at its members' metres per unit (``metres``; the store not found: none).
         ``cuts`` (n,): each view's ``ingest.truncation.ViewCut`` or None (``[mine] view_normalise_cut``: the copies
         seen from the camera also lose what the view could not see; None: none)."""
         if volumes.ndim == 6:
