@@ -79,7 +79,8 @@ from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, sh
 from ..ingest.truncation import cut_direction, cut_pixels, view_cut
 from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
-from ..mine.memberknn import Members, class_knn, cluster_members, load_members, searched_distances
+from ..mine.memberknn import Members, class_knn, cluster_members, load_members, member_rows, searched_distances
+from ..mine.metricsize import member_metres, size_mismatch
 from ..geometry import plane_basis
 from ..mine.faces import face_poses
 from ..mine.openset import (best_second_ratio, fisher_combine_many, library_cut, member_pvalues, ratio_pvalue, rule_scores,
@@ -153,6 +154,7 @@ class Matcher:
     member_top: int = 3
     member_weight: float = 0.5
     member_score: bool = False
+    size_weight: float = 0.0
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -167,6 +169,7 @@ class Matcher:
     members: Members | None = field(init=False)
     view_members: np.ndarray | None = field(init=False)
     view_member_classes: np.ndarray | None = field(init=False)
+    metres: np.ndarray | None = field(init=False)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -209,9 +212,24 @@ class Matcher:
                                           within=self.view_within, cut_within=(self.view_cut_decide if self.view_cut_decide > 0
                                                       else self.view_cut_within), cut_rest=self.view_cut_rest)
                            if self.view_top > 0 else None)
+        # ``[mine] label_size``: each prototype's metres per unit, from its members' metric sizes in the mined store
+        self.metres = self._member_metres() if self.size_weight > 0 else None
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
             self.search.set_views(pr["view_owner"], pr["view_features"], vv if self.weighted else np.ones_like(vv), self.scales)
+
+    def _member_metres(self) -> np.ndarray | None:
+        """(K,) metres per prototype unit (``mine.metricsize.member_metres``) from the members' fused objects' metric
+        footprint radius and height in the store the library was mined from (``mine.memberknn.member_rows``); None
+        when that store is not found."""
+        found = member_rows(self.library)
+        if found is None:
+            return None
+        st, rows = found
+        pr, mem = self.library.prototypes, self.library.members
+        size = np.stack([np.asarray(st.objects["radius_m"], np.float64)[rows],
+                         np.asarray(st.objects["height_m"], np.float64)[rows]], 1)
+        return member_metres(self.P, self.V, pr["aspect"], self.tilts, pr["face_up"], mem["cluster"], mem["face"], size)
 
     @property
     def K(self) -> int:
@@ -237,6 +255,9 @@ class Matcher:
         and ``centre`` (n, K) says which.
         ``sizes`` (n, 2): each view's footprint radius and height (m); with ``symmetric_top`` (the library's
         ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``).
+        With ``size_weight`` (the library's ``[mine] label_size`` = c) every decision distance is multiplied by
+        exp(c x ``mine.metricsize.size_mismatch``): the view's metric size against the prototype resting on the up
+        direction found, at its members' metres per unit (``metres``; the store not found: none).
         ``cuts`` (n,): each view's ``ingest.truncation.ViewCut`` or None (``[mine] view_normalise_cut``: the copies
         seen from the camera also lose what the view could not see; None: none)."""
         if volumes.ndim == 6:
@@ -316,6 +337,11 @@ class Matcher:
             charge = self.unseen * share
             D = D + charge
             Dq = None if Dq is None else Dq + charge
+        if self.metres is not None and sizes is not None:   # ``[mine] label_size``: the view's metric size at the pose found
+            mis = size_mismatch(sizes, up, self.P, self.V, self.library.prototypes["aspect"], self.tilts, self.metres)
+            # the best/second-best ratio keeps the distances without it: the held-out views (no metric size kept) set its cut
+            Dq = D if Dq is None else Dq
+            D = D * np.exp(self.size_weight * mis)
         Dq = D if Dq is None else Dq
         nearest = np.argmin(np.where(np.isfinite(D), D, np.inf), axis=1)
         best = np.where(np.isfinite(D).any(axis=1), nearest, -1)
@@ -525,7 +551,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  member_k=int(m.get("label_members", 0)) if weighted else 0,
                  member_within=float(m.get("label_members_within", 0.0)), member_top=int(m.get("label_members_top", 3)),
                  member_weight=float(m.get("label_members_weight", 0.5)),
-                 member_score=bool(m.get("label_members_score", False))))
+                 member_score=bool(m.get("label_members_score", False)),
+                 size_weight=float(m.get("label_size", 0.0)) if weighted else 0.0))
 
 
 @dataclass
