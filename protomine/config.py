@@ -77,6 +77,7 @@ BOUNDS: dict[str, tuple[float, float]] = {
     "mine.find_route_soft": (0, 1000),
     "mine.find_prototype_fuse": (0.0, 10.0),
     "mine.find_member_route": (0, 1_000_000),
+    "mine.find_members_margin": (0.0, 10.0),
     "mine.find_rerank": (0, 1000),
     "mine.find_rerank_shortlist": (2, 1_000_000),
     "mine.find_rerank_weight": (0.0, 1.0),

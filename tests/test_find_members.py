@@ -141,3 +141,36 @@ def test_without_the_members_volumes_the_route_ranks_as_before():
     off = find_similar(lib, store, "t/example", _cfg(0))
     on = find_similar(lib, store, "t/example", _cfg(2))
     np.testing.assert_array_equal(on.rank_key, off.rank_key)
+
+
+class _Lib:
+    def __init__(self, members):
+        self.members = members
+
+
+def test_sure_members_leaves_out_the_members_mining_was_unsure_of():
+    # hand-worked: ratios d / d2 = 0.2, 0.8, 0.5 (cluster 0), 1.05 (cluster 1), inf second distance (cluster 1: sure);
+    # at 0.75 the 0.8 and 1.05 members go; cluster 2's only member (0.9) stays, as a cluster never loses all of them
+    from protomine.mine.memberknn import sure_members
+    m = {"cluster": np.array([0, 0, 0, 1, 1, 2]), "distance": np.array([0.2, 0.8, 0.5, 1.05, 0.3, 0.9]),
+         "second_distance": np.array([1.0, 1.0, 1.0, 1.0, np.inf, 1.0])}
+    np.testing.assert_array_equal(sure_members(_Lib(m), 0.75), [True, False, True, False, True, True])
+    np.testing.assert_array_equal(sure_members(_Lib(m), 0.0), [True] * 6)
+
+
+def test_edited_members_stop_a_misassigned_member_pulling_its_class_in():
+    # the edited nearest-neighbour rule (Wilson, IEEE Trans. SMC 1972, from memory): a sample of class B filed under A
+    # makes B's objects look like A's to the k-NN rule; left out, they go back to B.  Members: A = 0, 1 and a B object
+    # misfiled under A (index 2, mining margin 0.95); B = 3, 4.  A view of B at distance 0.1 from the misfiled member
+    # and 0.3 from B's members: with it, d_1(A) = 0.1 < d_1(B) = 0.3 (margin for A 1/3, it ranks as an A); edited,
+    # d_1(A) = 0.9 (hand-computed), margin for A 3.0.
+    from protomine.mine.memberknn import Members, subset, sure_members
+    m = {"cluster": np.array([0, 0, 0, 1, 1]), "distance": np.array([0.2, 0.3, 0.95, 0.2, 0.25]),
+         "second_distance": np.ones(5)}
+    Dm = np.array([[0.9, 0.95, 0.1, 0.3, 0.35]])
+    assert knn_margin(Dm, m["cluster"], 2, 0, 1)[0] == pytest.approx(0.1 / 0.3)
+    keep = sure_members(_Lib(m), 0.75)
+    mem = Members(np.zeros((5, 1, 1, 1, 1)), np.zeros((5, 1, 1, 1)), np.ones(5), m["cluster"], np.array(list("abcde")))
+    ed = subset(mem, keep)
+    assert list(ed.ids) == ["a", "b", "d", "e"]
+    assert knn_margin(Dm[:, keep], ed.cluster, 2, 0, 1)[0] == pytest.approx(0.9 / 0.3)

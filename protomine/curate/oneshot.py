@@ -98,7 +98,7 @@ from ..errors import InputError
 from ..ingest.store import ObjectStore
 from ..ingest.volume import matching_features
 from ..mine.library import Library, log_distance_fit, match_score, read_library, write_library
-from ..mine.memberknn import class_knn, cluster_members, load_members, searched_distances
+from ..mine.memberknn import class_knn, cluster_members, load_members, searched_distances, subset, sure_members
 from ..mine.engine import align_to_prototype, weighted_means
 from ..mine.faces import face_pose, group_faces
 from ..mine.openset import library_cut
@@ -342,15 +342,16 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
                             float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)),
                             d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
     k_mem = int(cfg["mine"].get("find_members", 0))
+    m_max = float(cfg["mine"].get("find_members_margin", 0.0))
     if k_mem > 0 and route is not None and route.taken:   # the taken route's shortlist by its members (``curate.knownclass``)
         route = _by_members(library, store, ex, route, both_ways(D, reverse), weights, scales, grid, k_mem,
                             int(cfg["mine"].get("find_members_shortlist", 48)),
-                            float(cfg["mine"].get("find_prototype_fuse", 0.0)))
+                            float(cfg["mine"].get("find_prototype_fuse", 0.0)), m_max)
     r_mr = int(cfg["mine"].get("find_member_route", 0))
     if r_mr > 0 and k_mem > 0 and route is not None and not route.taken:   # the member route (``curate.knownclass``, 7.)
         route = _member_route(library, store, ex, route, Dk, tk, X1[0], W1[0], both_ways(D, reverse), weights, scales,
                               grid, k_mem, int(cfg["mine"].get("find_members_shortlist", 48)),
-                              float(cfg["mine"].get("find_prototype_fuse", 0.0)), r_mr)
+                              float(cfg["mine"].get("find_prototype_fuse", 0.0)), r_mr, m_max)
     rerank = None
     k_rr = int(cfg["mine"].get("find_rerank", 0))
     k_soft = int(cfg["mine"].get("find_route_soft", 0))
@@ -371,18 +372,27 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
 
 def _by_members(library: Library, store: ObjectStore, ex: int, route: KnownRoute, d1: np.ndarray,
                 weights: tuple[float, float], scales: tuple[float, ...], grid: TiltGrid | None, k: int, n: int,
-                fuse: float) -> KnownRoute:
+                fuse: float, margin_max: float = 0.0) -> KnownRoute:
     """``[mine] find_members``: the taken route with its first ``n`` objects (by its key; the example left out) ranked
     by the margin on the library's members (``knownclass.knn_margin``, k nearest per cluster; fused with the example's
     own distance d1 (N,) as the route is with ``fuse`` > 0), the rest after them in the route's order.  Unchanged
     when the members' volumes cannot be found (``mine.memberknn.load_members``)."""
     short = _nearest(store, ex, route.key)[:n]
-    mem = load_members(library, weights[0], weights[1], store) if len(short) >= 2 else None
+    mem = _find_members(library, weights, store, margin_max) if len(short) >= 2 else None
     if mem is None:
         return route
     km = _member_margins(store, short, mem, route.cluster, library.n_clusters, weights, scales, grid, k)
     sk = fused_key(km, np.asarray(d1, np.float64)[short], fuse) if fuse > 0 else km
     return replace(route, key=members_key(route.key, short, sk, np.asarray(store.ids).astype(str)))
+
+
+def _find_members(library: Library, weights: tuple[float, float], store: ObjectStore, margin_max: float):
+    """The members find searches (``mine.memberknn.load_members``), those mining assigned with a margin of at least
+    ``margin_max`` left out (``[mine] find_members_margin``, ``memberknn.sure_members``); None when not found."""
+    mem = load_members(library, weights[0], weights[1], store)
+    if mem is None or margin_max <= 0:
+        return mem
+    return subset(mem, sure_members(library, margin_max))
 
 
 def _member_margins(store: ObjectStore, rows: np.ndarray, mem, c: int, K: int, weights: tuple[float, float],
@@ -405,7 +415,7 @@ def _member_margins(store: ObjectStore, rows: np.ndarray, mem, c: int, K: int, w
 
 def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRoute, Dk: np.ndarray, tk: np.ndarray,
                   x: np.ndarray, w: np.ndarray, d1: np.ndarray, weights: tuple[float, float], scales: tuple[float, ...],
-                  grid: TiltGrid | None, k: int, n: int, fuse: float, r: int) -> KnownRoute:
+                  grid: TiltGrid | None, k: int, n: int, fuse: float, r: int, margin_max: float = 0.0) -> KnownRoute:
     """``[mine] find_member_route``: an untaken route asked again by the members (``knownclass`` module docstring, 7.).
     c = the example's nearest cluster by its k nearest members (x (C, R, A, H), w (R, A, H) searched against every
     member, one bank per cluster); c's first ``n`` objects by the prototype's key (fused with the example's own distance
@@ -413,7 +423,7 @@ def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRou
     (``_by_members``); the route to c is taken when fewer than r of them have a lower margin than the example, and
     ranks as a taken route to c.  Else the route comes back untaken with its ``member_rank``.  Unchanged when the
     members' volumes cannot be found."""
-    mem = load_members(library, weights[0], weights[1], store)
+    mem = _find_members(library, weights, store, margin_max)
     if mem is None:
         return route
     K, mcl = library.n_clusters, mem.cluster

@@ -94,6 +94,34 @@ def load_members(library, free_weight: float, colour_weight: float, store=None) 
                    np.asarray(library.members["cluster"], np.int64), np.asarray(library.members["object"]).astype(str))
 
 
+def sure_members(library, margin_max: float) -> np.ndarray:
+    """Which of the library's members (M,) bool are kept as neighbours by ``[mine] find_members_margin`` = margin_max
+    > 0: those mining assigned surely, distance / second_distance (its own prototype's over the next one's) below
+    margin_max (a member with no second distance is sure).  A cluster that would keep none keeps all of its members.
+    margin_max <= 0: every member.  Editing the reference set of a nearest-neighbour rule (Wilson, "Asymptotic
+    properties of nearest neighbor rules using edited data", IEEE Trans. SMC 1972, removes the samples its own k-NN
+    rule misclassifies); here mining's own margin says which members are in doubt."""
+    m = library.members
+    cl = np.asarray(m["cluster"], np.int64)
+    keep = np.ones(len(cl), bool)
+    if margin_max <= 0 or not len(cl) or "second_distance" not in m:
+        return keep
+    d, d2 = np.asarray(m["distance"], np.float64), np.asarray(m["second_distance"], np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = np.where(np.isfinite(d2) & (d2 > 0), d / d2, 0.0)
+    keep = ~(ratio >= margin_max)
+    for c in np.unique(cl):
+        if not keep[cl == c].any():
+            keep[cl == c] = True
+    return keep
+
+
+def subset(mem: Members, keep: np.ndarray) -> Members:
+    """The members ``keep`` (M,) bool of ``mem``, in their order."""
+    keep = np.asarray(keep, bool)
+    return Members(mem.P[keep], mem.V[keep], mem.aspect[keep], mem.cluster[keep], mem.ids[keep])
+
+
 def searched_distances(X: np.ndarray, W: np.ndarray, P: np.ndarray, V: np.ndarray, aspect: np.ndarray,
                        groups: Sequence[tuple[np.ndarray, np.ndarray]], scales: Sequence[float],
                        grid: TiltGrid | None) -> np.ndarray:
