@@ -36,7 +36,8 @@ def test_yaw_only_reverse_equals_forward_on_the_shortlist():
     short = mt.order[:6]
     # the shortlist: the 6 nearest by distance (example left out), each with a reverse distance; nobody else has one
     assert set(np.flatnonzero(np.isfinite(mt.reverse))) == set(short)
-    np.testing.assert_allclose(mt.reverse[short], mt.distance[short], rtol=1e-4)
+    # float32 sums in another order: on an AVX-512 machine one of six differed by 1.3e-4 of its value (1.6e-7)
+    np.testing.assert_allclose(mt.reverse[short], mt.distance[short], rtol=1e-3)
 
 
 def _tilted_store():
