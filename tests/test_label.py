@@ -252,6 +252,7 @@ def test_views_cut_by_the_image_border_get_frames_moved_toward_it(labelled):
     from protomine.label.matcher import lift_frame, make_matcher
     mt = make_matcher(labelled["lib"], labelled["cfg"])
     moved = distinct = 0
+    cut_ids = set()
     for path in labelled["singles"]:
         cap = read_capture(path, check_images=False)
         fr = cap.frames[0]
@@ -269,6 +270,7 @@ def test_views_cut_by_the_image_border_get_frames_moved_toward_it(labelled):
             if np.array_equal(v[0], v[1]):
                 continue    # not cut, cut all round, or its cut points straddle the centre: no one direction
             distinct += 1
+            cut_ids.add(p.object_id)
             if not any(edges.values()) or sum(edges.values()) > 1:
                 continue    # cut by a nearer object only, or at a corner
             moved += 1
@@ -294,4 +296,10 @@ def test_views_cut_by_the_image_border_get_frames_moved_toward_it(labelled):
         lib.attrs["config"] = before
     base = labelled["weighted"]
     assert [r["object"] for r in recs] == [r["object"] for r in base]
-    assert sum(a == b for a, b in zip(recs, base)) >= len(base) - distinct
+    assert sum(a == b for a, b in zip(recs, base)) >= len(base) - distinct - len(base) // 10
+    # a record of an object not cut differs only where its decision is a near tie that the float rounding of another
+    # batch flips (seen on an AVX-512 CPU: 2 of 44 views, their best prototypes 0.3% and 3% apart, the searched pose
+    # on a near-tied tilt): its decided distance stays within 5%
+    for a, b in zip(recs, base):
+        if a["object"] not in cut_ids and a != b:
+            assert abs(a["distance"] - b["distance"]) <= 0.05 * b["distance"], (a["object"], a["distance"], b["distance"])
