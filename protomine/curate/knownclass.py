@@ -137,10 +137,9 @@ class KnownRoute:
 def example_decision(library: Library, store, ex: int, cfg: dict) -> tuple[int, float, float]:
     """(b, score, cut): the label stage's decision on store object ``ex``'s volume (``label.matcher``)."""
     from ..label.matcher import make_matcher
-    mt = make_matcher(library, cfg)
     # ``[mine] label_size`` stays out of the route's decision: measured on the default seed-0 demo, the size moved the
     # never-mined tape dispenser example onto a known class the route then took (P@10 0.70 -> 0.00)
-    mt.metres = None
+    mt = make_matcher(library, cfg, size=False)
     cam = _camera(store, ex)
     vol = store.read_volume_at(np.array([ex]))
     sizes = np.array([[store.objects["radius_m"][ex], store.objects["height_m"][ex]]], np.float64)

@@ -169,7 +169,7 @@ class Matcher:
     members: Members | None = field(init=False)
     view_members: np.ndarray | None = field(init=False)
     view_member_classes: np.ndarray | None = field(init=False)
-    metres: np.ndarray | None = field(init=False)
+    _metres: tuple | None = field(init=False, default=None)   # (metres,) once computed (:meth:`metres`)
 
     def __post_init__(self) -> None:
         rule = self.library.attrs.get("unknown_tilt_ratios")
@@ -212,16 +212,20 @@ class Matcher:
                                           within=self.view_within, cut_within=(self.view_cut_decide if self.view_cut_decide > 0
                                                       else self.view_cut_within), cut_rest=self.view_cut_rest)
                            if self.view_top > 0 else None)
-        # ``[mine] label_size``: each prototype's metres per unit, from its members' metric sizes in the mined store
-        self.metres = self._member_metres() if self.size_weight > 0 else None
         if "view_owner" in pr and len(pr["view_owner"]):
             vv = np.asarray(pr["view_weights"], np.float32)
             self.search.set_views(pr["view_owner"], pr["view_features"], vv if self.weighted else np.ones_like(vv), self.scales)
 
+    def metres(self) -> np.ndarray | None:
+        """``[mine] label_size``: (K,) metres per prototype unit (``mine.metricsize.member_metres``) from the members'
+        fused objects' metric footprint radius and height in the store the library was mined from
+        (``mine.memberknn.member_rows``), computed on the first match that carries sizes and kept; None when the
+        size is off or that store is not found."""
+        if self._metres is None:
+            self._metres = (self._member_metres() if self.size_weight > 0 else None,)
+        return self._metres[0]
+
     def _member_metres(self) -> np.ndarray | None:
-        """(K,) metres per prototype unit (``mine.metricsize.member_metres``) from the members' fused objects' metric
-        footprint radius and height in the store the library was mined from (``mine.memberknn.member_rows``); None
-        when that store is not found."""
         found = member_rows(self.library)
         if found is None:
             return None
@@ -257,7 +261,7 @@ class Matcher:
         ``[mine] label_symmetric``) the class is decided by the mean of the search both ways (``label.symmetric``).
         With ``size_weight`` (the library's ``[mine] label_size`` = c) every decision distance is multiplied by
         exp(c x ``mine.metricsize.size_mismatch``): the view's metric size against the prototype resting on the up
-        direction found, at its members' metres per unit (``metres``; the store not found: none).
+        direction found, at its members' metres per unit (:meth:`metres`; the store not found: none).
         ``cuts`` (n,): each view's ``ingest.truncation.ViewCut`` or None (``[mine] view_normalise_cut``: the copies
         seen from the camera also lose what the view could not see; None: none)."""
         if volumes.ndim == 6:
@@ -337,8 +341,9 @@ class Matcher:
             charge = self.unseen * share
             D = D + charge
             Dq = None if Dq is None else Dq + charge
-        if self.metres is not None and sizes is not None:   # ``[mine] label_size``: the view's metric size at the pose found
-            mis = size_mismatch(sizes, up, self.P, self.V, self.library.prototypes["aspect"], self.tilts, self.metres)
+        metres = self.metres() if sizes is not None else None
+        if metres is not None:   # ``[mine] label_size``: the view's metric size at the pose found
+            mis = size_mismatch(sizes, up, self.P, self.V, self.library.prototypes["aspect"], self.tilts, metres)
             # the best/second-best ratio keeps the distances without it: the held-out views (no metric size kept) set its cut
             Dq = D if Dq is None else Dq
             D = D * np.exp(self.size_weight * mis)
@@ -505,10 +510,13 @@ def view_calibration(library: Library) -> bool:
             and int(m.get("view_normalise_top", 0)) > 0 and bool(m.get("view_normalise_score", False)))
 
 
-def make_matcher(library: Library, cfg: dict, *, weighted: bool = True) -> Matcher:
+def make_matcher(library: Library, cfg: dict, *, weighted: bool = True, size: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
-    volumes must be lifted exactly as the mined ones were), the unknown cut from the library too."""
+    volumes must be lifted exactly as the mined ones were), the unknown cut from the library too.  ``size`` False:
+    the decision leaves the view's metric size out whatever the library's ``[mine] label_size``."""
     a, kw = _matcher_args(library, cfg, weighted)
+    if not size:
+        kw["size_weight"] = 0.0
     return Matcher(*a, **kw)
 
 

@@ -1014,7 +1014,8 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
         theta, weight = pairwise_yaws(xh, w, scales)
         if not np.any(weight > 0):
             continue
-        orders[k] = order = member_order(theta, weight, sharp=SYNC_SHARP, consistent=SYNC_CONSISTENT)
+        orders[k] = order = member_order(theta, weight, sharp=SYNC_SHARP, consistent=SYNC_CONSISTENT,
+                                         power=SYNC_WEIGHT_POWER)
         if order < 1:
             continue  # no preferred yaw: nothing to align
         yaw, _ = synchronize_yaws(theta, weight ** SYNC_WEIGHT_POWER)

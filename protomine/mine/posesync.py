@@ -109,16 +109,17 @@ def without_first_harmonic(X: np.ndarray) -> np.ndarray:
 
 
 def member_order(theta: np.ndarray, weight: np.ndarray, *, max_fold: int = 8, sharp: float = 0.1,
-                 consistent: float = 0.95) -> int:
+                 consistent: float = 0.95, power: float = 4.0) -> int:
     """The symmetry order about up the members' pairs show (module docstring): theta, weight (n, n) as
     :func:`pairwise_yaws` returns them.  1 (none) or n in 2..max_fold when the mean off-diagonal weight reaches
     ``sharp`` (the least n whose n theta synchronise with consistency >= ``consistent``; 1 when none does), else -1
-    (no preferred yaw: the members do not contradict a continuous symmetry)."""
+    (no preferred yaw: the members do not contradict a continuous symmetry).  The pairs' weights are raised to
+    ``power`` in the synchronisation (the sharp pairs lead), as the engine synchronises the yaws themselves."""
     n = len(theta)
     off = ~np.eye(n, dtype=bool)
     if n < 2 or float(np.mean(weight[off])) < sharp:
         return -1
-    w = np.asarray(weight, np.float64) ** 4
+    w = np.asarray(weight, np.float64) ** power
     for order in range(1, max_fold + 1):
         if synchronize_yaws(np.mod(order * np.asarray(theta, np.float64), 360.0), w)[1] >= consistent:
             return order
