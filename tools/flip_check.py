@@ -36,7 +36,7 @@ from protomine.mine.library import read_library
 from protomine.mine.pipeline import clustering_config, reweight_free, store_aspect, tilt_grid
 from protomine.mine.posesearch import pose_distances
 from protomine.mine.tilts import TiltBank
-from protomine.rotations import geodesic_deg, quat_to_matrix
+from protomine.rotations import geodesic_deg, quat_to_matrix, yaw_matrix
 
 BIG_DEG = 20.0
 
@@ -55,9 +55,7 @@ def tail_members(lib, truth, offsets, maj) -> list[tuple[int, float, np.ndarray,
         if err <= BIG_DEG:
             continue
         if group is None or isinstance(group, AboutZ):   # continuous about z: every 5 degrees of turn about z
-            t_ = np.deg2rad(np.arange(0.0, 360.0, 5.0))
-            Z = np.zeros((len(t_), 3, 3))
-            Z[:, 0, 0], Z[:, 0, 1], Z[:, 1, 0], Z[:, 1, 1], Z[:, 2, 2] = np.cos(t_), -np.sin(t_), np.sin(t_), np.cos(t_), 1.0
+            Z = yaw_matrix(np.arange(0.0, 360.0, 5.0))
             reps = np.eye(3)[None] if group is None else np.asarray(group.reps).reshape(-1, 3, 3)
             G = (Z[:, None] @ reps[None]).reshape(-1, 3, 3)
         else:
@@ -73,8 +71,7 @@ def distances(P, V, aspect, scales, grid, x, w, k, ups, turn_deg=0.0) -> list[fl
     """The member x (C, R, A, H), w (R, A, H) searched against prototype k tilted to each up (the frame turned by
     -turn_deg about z first)."""
     bank = TiltBank(P, V, aspect, scales, grid)
-    a = np.deg2rad(-turn_deg)
-    Rz = np.array([[np.cos(a), -np.sin(a), 0.0], [np.sin(a), np.cos(a), 0.0], [0.0, 0.0, 1.0]])
+    Rz = yaw_matrix(-turn_deg)
     out = []
     for u in ups:
         Pc, Vc = bank.copy_at(k, Rz @ u)
