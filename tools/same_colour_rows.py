@@ -3,7 +3,7 @@
 dumbbell lying on their side, standing, a double-ended block, and the lying ones with sizes drawn per draw
 (``_v``); pairs of the lying spools and dumbbells; draws
 D0..D1-1) and count, per setting of ``[ingest] seam_step_share`` / ``twin_neck_cut`` / ``twin_spread_ratio`` /
-``twin_neck_step_share`` / ``twin_cannot_link`` / ``piece_convex_seam``, the
+``twin_neck_step_share`` / ``twin_cannot_link`` / ``piece_convex_seam`` / ``neck_side_pieces``, the
 objects separated (a single object: kept whole) (one mask-free proposal at least 0.95 pure by
 the renderer's masks holding at least 0.8 of the object's masked pixels) and the proposals.  README "Touching
 objects of one colour" gives its figures (draws 0-5).
@@ -33,7 +33,8 @@ from protomine.ingest.proposals import find_objects  # noqa: E402
 SETTINGS = {"off": (0.0, False, 0.0), "seam": (0.4, False, 0.0), "seam + neck": (0.4, True, 0.0),
             "seam + neck + spread": (0.4, True, 0.7), "spread 0.6": (0.4, True, 0.6), "spread 0.8": (0.4, True, 0.8),
             "cannot link": (0.4, True, 0.8, 0.0, True), "twin neck 0.25": (0.4, True, 0.8, 0.25, False),
-            "rows": (0.4, True, 0.8, 0.25, True), "convex seam": (0.4, True, 0.8, 0.25, True, True)}
+            "rows": (0.4, True, 0.8, 0.25, True), "convex seam": (0.4, True, 0.8, 0.25, True, True),
+            "side pieces": (0.4, True, 0.8, 0.25, True, True, True)}
 ROWS = [(kind, n) for kind in KINDS for n in (2, 3)] + [(kind, 1) for kind in ONE_KINDS + VARIED_KINDS] + [
     ("spool_side", 2), ("dumbbell_side", 2)]
 
@@ -57,6 +58,7 @@ def main(out: Path, d0: int, d1: int, only: list[str] | None = None) -> None:
                 cfg["ingest"]["twin_spread_ratio"] = spread
                 cfg["ingest"]["twin_neck_step_share"], cfg["ingest"]["twin_cannot_link"] = rows[:2] or (0.0, False)
                 cfg["ingest"]["piece_convex_seam"] = bool(rows[2:] and rows[2])
+                cfg["ingest"]["neck_side_pieces"] = bool(rows[3:] and rows[3])
                 free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
                 k, _ = separated(free, masked, n)
                 tot = totals[bucket][name]

@@ -369,7 +369,7 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
                handed: np.ndarray | None = None, readings=None, step_share: float = 0.0,
                neck_cut: bool = False, spread_ratio: float = 0.0, neck_twin_share: float = 0.0,
                cannot_link: bool = False, normals: np.ndarray | None = None,
-               concave_deg: float = 15.0) -> np.ndarray:
+               concave_deg: float = 15.0, side_normals: np.ndarray | None = None) -> np.ndarray:
     """Objects (V,) relabelled 0..n-1 from convex parts (V,) of voxels (V, 3) with in-plane coordinates
     (V, 2) and heights above the support plane (V,).
 
@@ -394,13 +394,15 @@ def join_parts(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: n
     normals: (V, 3) voxel normals (``voxel_normals``, ``[ingest] piece_convex_seam``); with them a part that does
     not stand, hanging on neighbours, joins one it meets along a convex seam (PIECE_CONVEX_SHARE) before one it
     meets in a concave crease (``concave_deg`` as in ``convex_parts``; ``_seam_concavity``).
+    side_normals: (V, 3) voxel normals for the neck cut's sides (``[ingest] neck_side_pieces``, ``split_twins``).
     """
     halves = set()
     if neck_cut:
         parts, halves = split_twins(points, parts, xy, heights, adjacency=link_radius / 2, support_band=support_band,
                                     inset=inset, cell=cell, readings=readings,
                                     step_share=step_share if readings is not None else 0.0, radius=link_radius,
-                                    twin_share=neck_twin_share, spread_ratio=spread_ratio)
+                                    twin_share=neck_twin_share, spread_ratio=spread_ratio,
+                                    normals=side_normals, concave_deg=concave_deg)
     ids = np.unique(parts[parts >= 0])
     if len(ids) < 2:
         return _relabel(parts)
@@ -735,7 +737,8 @@ NECK_ELONGATION = 1.8     # ... of a part whose footprint is this elongated (var
 
 def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: np.ndarray, *, adjacency: float,
                 support_band: float, inset: float, cell: float | None, readings=None, step_share: float = 0.0,
-                radius: float = 0.0, twin_share: float = 0.0, spread_ratio: float = 0.0) -> tuple[np.ndarray, set]:
+                radius: float = 0.0, twin_share: float = 0.0, spread_ratio: float = 0.0,
+                normals: np.ndarray | None = None, concave_deg: float = 15.0) -> tuple[np.ndarray, set]:
     """``[ingest] twin_neck_cut``: parts (V,) with every part that is two copies of one item joined by a narrow neck
     cut in two, and the pairs (a, b) (both orders) of the two halves.  Only parts of at least 2 x TWIN_VOXELS
     voxels whose footprint is elongated (NECK_ELONGATION) are tried.
@@ -757,6 +760,10 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
     of their pairs (tests/same_colour_rows.py), under ``step_share``.  A part of one object cut at a neck into two
     sides of unlike voxel counts (touching demo seed 0: 594 against 908 voxels, seam 0.26) is still held to
     ``step_share``.
+    normals (``[ingest] neck_side_pieces``): (V, 3) voxel normals; with them each side counts the pieces of its own
+    item lying in other parts (``_side_pieces``; a piece both sides meet counts with the one it shares more voxel
+    pairs with) in the stand test (a side that does not stand by itself may stand with them) and in the twin test of
+    ``twin_share`` (voxel counts and spreads with them).
     points (V, 3), xy (V, 2) in-plane coordinates, heights (V,) over the plane."""
     from scipy.sparse.linalg import ArpackNoConvergence, eigsh
     out, apart = parts.copy(), set()
@@ -805,14 +812,24 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
         ha, hb = np.percentile(heights[a], 99), np.percentile(heights[b], 99)
         if not _alike(ha, hb, TWIN_HEIGHT_RATIO) or min(len(a), len(b)) < TWIN_VOXELS:
             continue
-        if not all(stands_alone(xy[s], heights[s], support_band=support_band, inset=inset, cell=cell) for s in (a, b)):
+        whole = (a, b)                                # each side with the pieces of its own item (neck_side_pieces)
+        if normals is not None:
+            pa, pb = (_side_pieces(points, normals, out, p, s, radius, concave_deg) for s in (a, b))
+            whole = tuple(np.concatenate([s, np.flatnonzero(np.isin(out, [q for q, m in mine.items()
+                                                                          if m > other.get(q, 0)]))])
+                          for s, mine, other in ((a, pa, pb), (b, pb, pa)))
+        if not all(stands_alone(xy[s], heights[s], support_band=support_band, inset=inset, cell=cell) or (
+                len(w) > len(s) and stands_alone(xy[w], heights[w], support_band=support_band, inset=inset, cell=cell))
+                   for s, w in zip((a, b), whole)):
             continue
         if step_share > 0:                            # the frames see the seam between the halves as an edge too
             two = np.full(len(parts), -1)
             two[a], two[b] = 0, 1
             st, fl = seam_steps(points, two, radius, readings).get((0, 1), (0, 0))
             share = step_share
-            if twin_share > 0 and _alike(len(a), len(b), TWIN_VOXEL_RATIO) and _alike_spread(xy[a], xy[b], spread_ratio):
+            wa, wb = whole
+            if twin_share > 0 and _alike(len(wa), len(wb), TWIN_VOXEL_RATIO) and _alike_spread(xy[wa], xy[wb],
+                                                                                                 spread_ratio):
                 share = min(step_share, twin_share)
             if not _stepped(st, fl, share):
                 continue
@@ -821,6 +838,40 @@ def split_twins(points: np.ndarray, parts: np.ndarray, xy: np.ndarray, heights: 
         queue += [q for q, s in ((int(p), a), (nxt, b)) if len(s) >= 2 * TWIN_VOXELS]
         nxt += 1
     return out, apart
+
+
+def _side_pieces(points: np.ndarray, normals: np.ndarray, parts: np.ndarray, p: int, side: np.ndarray, radius: float,
+                 concave_deg: float) -> dict:
+    """``[ingest] neck_side_pieces``: the pieces of a neck cut's side's own item lying in other parts, {part: voxel
+    pairs of its seam with the side}: the parts of ``parts`` (V,) other than the cut part ``p``, smaller than the side
+    (voxel indices), that meet it (voxel pairs within ``radius``) along a seam under PIECE_CONVEX_SHARE concave
+    (``_seam_concavity`` of ``normals`` (V, 3) at ``concave_deg``).
+
+    Local convexity leaves an item whose walls its neighbours hide next to the contacts in pieces, and the neck cut
+    gets only the piece holding its top: alone its centre of mass lies outside the walls it shows, or it holds too few
+    voxels to be the twin of the other side (tests/same_colour_rows.py, rows of three cans draws 1 and 7: the end
+    can's side of 1044 and 1142 voxels, its own other piece of 125 and 174 voxels apart; a pair of cans, draw 5, 694
+    voxels against 1354, 1353 with its pieces).  A piece cut from its own item meets it along a convex edge or a
+    surface running on; a touching neighbour meets it in a concave crease (Stein et al. 2014), and a neighbour's
+    part as large as the side is not a piece of it.  A piece both sides meet so counts with the one it shares the
+    more pairs with (``split_twins``).  The pieces count in the cut's tests only; where they go is the join's."""
+    rest = np.flatnonzero((parts >= 0) & (parts != p))
+    if not len(rest):
+        return {}
+    near = cKDTree(points[rest]).query_ball_point(points[side], radius)
+    counts = np.fromiter((len(x) for x in near), int, len(near))
+    if not counts.sum():
+        return {}
+    i = np.repeat(side, counts)
+    j = rest[np.concatenate([np.asarray(x, int) for x in near if len(x)])]
+    ids, inv = np.unique(parts[j], return_inverse=True)
+    inv = inv.reshape(-1)
+    pairs = np.bincount(inv, minlength=len(ids))
+    concave = np.bincount(inv, weights=_seam_concavity(points, normals, i, j, concave_deg).astype(np.float64),
+                          minlength=len(ids))
+    size = np.bincount(parts[rest])
+    return {int(q): int(n) for q, n, c in zip(ids, pairs, concave)
+            if c < PIECE_CONVEX_SHARE * n and size[q] < len(side)}
 
 
 def _join_same_colour(points: np.ndarray, colours: np.ndarray, lab: np.ndarray, radius: float,

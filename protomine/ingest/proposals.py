@@ -583,7 +583,8 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
                          neck_twin_share=float(c.get("twin_neck_step_share", 0.0)),
                          cannot_link=bool(c.get("twin_cannot_link", False)),
                          normals=normals if c.get("piece_convex_seam", False) else None,
-                         concave_deg=c["concave_deg"])
+                         concave_deg=c["concave_deg"],
+                         side_normals=normals if c.get("neck_side_pieces", False) else None)
     lab = _merge_overlapping_footprints(vox, lab, plane, on_plane=ON_PLANE * above_plane_margin(plane, cfg),
                                         colours=colours)
     clusters = []
