@@ -36,8 +36,8 @@ def _heldout(rng, n):
     Dq[np.arange(n), own] = Dq.min(axis=1) * np.exp(-np.abs(rng.normal(0.3, 0.3, n)))
     up = rng.random((n, 3)) < 0.6
     # squared log-size residuals: small at the own prototype, larger elsewhere and on other faces
-    m = rng.gamma(1.0, np.where(up, 0.02, 0.05), (n, 3))
-    m[np.arange(n), own] *= 0.5
+    m = rng.gamma(1.0, np.where(up, 0.15, 0.3), (n, 3))
+    m[np.arange(n), own] *= 0.3
     return own, Dq, Dq * np.exp(m), up, m
 
 
@@ -105,7 +105,7 @@ def test_matcher_joins_the_size_p_value_by_face_kind(tiny_world, tmp_path):
     """The matcher's last score part is the size mismatch's p-value (1 + #{m_i >= m}) / (len + 1) among the canonical
     or the other kind's held-out mismatches by the match's face kind (written out here; the kinds' arrays set by hand,
     two different ones), 1 for a view without a size; the score is scipy's Fisher combination of the parts; and the
-    cut is the library's size cut.  A view given three times its size gets a lower score at its best prototype."""
+    cut is the library's size cut.  A view given three times its size scores lower at its best prototype (most views; the others the same)."""
     from protomine.config import load_config
     from protomine.ingest.sharded import open_store
     from protomine.label.matcher import make_matcher
@@ -141,7 +141,8 @@ def test_matcher_joins_the_size_p_value_by_face_kind(tiny_world, tmp_path):
     assert np.allclose(np.asarray(nosize["score_parts"])[..., -1], 1.0)
     big = mt.match(views, cams, sizes=3.0 * sizes)
     i, k = np.arange(len(rows)), got["best"]
-    assert np.all(big["score"][i, k] < got["score"][i, k])
+    lower = big["score"][i, k] < got["score"][i, k]   # equal where the size's p-value was already the least, 1 / 5
+    assert np.all(lower | np.isclose(big["score"][i, k], got["score"][i, k])) and lower.mean() > 0.5
     # the library's own calibration (the key off in the label config: the library's config decides; a library without
     # the attributes: the ratio cut and two parts)
     plain = make_matcher(Library(lib.prototypes, lib.members, attrs, lib.path), cfg)

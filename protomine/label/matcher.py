@@ -51,11 +51,15 @@ computed); with ``[mine] view_normalise_stretch`` (attribute ``unknown_view_stre
 stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too (with
 ``[mine] view_normalise_stretch_face``, attributes ``unknown_view_stretch_canonical`` / ``_other``: among the held-out
 views decided on the same face kind as the match; with ``[mine] stretch_refine`` at the continuous scale of
-``mine.stretchfit``, returned as ``stretch_scale``).
+``mine.stretchfit``, returned as ``stretch_scale``); with ``[mine] label_size_score`` (attributes ``unknown_view_size``,
+``unknown_view_size_cut``) the conformal p-value of the view's metric size mismatch (``mine.metricsize``) at the
+prototype its shape alone puts nearest (:func:`shape_nearest_size`), among the held-out views' at theirs (per face kind:
+``unknown_view_size_canonical`` / ``_other``), joins them too, flagged by ``unknown_view_size_cut``; ``match`` returns
+``size_mismatch`` (NaN where not computed) and ``ratio_distance`` (the distances of the best/second-best ratio).
 ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
 ``view_distance`` (NaN where none) for that calibration, and ``score_parts`` (n, K, P): the tail probabilities the
 score joins by Fisher's combination, in that order: the calibrated score, the ratio's p-value, then the p-values of the
-unseen share, the stretch and the members' margin where their keys are on (P = 1: no combination, the score itself;
+unseen share, the stretch, the members' margin and the size where their keys are on (P = 1: no combination, the score itself;
 ``tools/unknown_views.py`` prints them per view).
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with

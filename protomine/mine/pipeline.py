@@ -579,9 +579,10 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     ``size`` (``[mine] label_size_score``; None: off): (m (Q, K), Dq (Q, K), upright (Q, K)), each view's metric size
     mismatch at every prototype (``mine.metricsize.size_mismatch``; NaN: none, taken as 0), the distances of its
     best/second-best ratio (the decision's D without the size factor, as the label stage takes the ratio) and its face
-    kinds: the ratio is then Dq's, and m at the decided prototype joins the combination by its leave-one-out p-value
-    among the other views decided on the same face kind (``openset.mondrian_loo_pvalues``, fewer than
-    ``MIN_FACE_STRETCH_VIEWS``: pooled; larger less conforming); returned: the sorted m ("unknown_view_size", per kind
+    kinds: the ratio is then Dq's, and m at the prototype the shape alone puts nearest (Dq's least;
+    ``label.matcher.shape_nearest_size``) joins the combination by its leave-one-out p-value among the other views' of
+    the same face kind there (``openset.mondrian_loo_pvalues``, fewer than ``MIN_FACE_STRETCH_VIEWS``: pooled; larger
+    less conforming); returned: the sorted m ("unknown_view_size", per kind
     "unknown_view_size_canonical" / "_other"), the cut on the combination with it ("unknown_view_size_cut", with the
     members' p-value when that is joined, "unknown_view_size_members" 1) and the other cuts as without it."""
     from .openset import (MIN_CLASS_MEMBER_VIEWS, best_second_ratio, fisher_combine_many, loo_ratio_pvalues,
