@@ -20,7 +20,7 @@ wrong), U-flag / U-miss (never-mined class, flagged or not).  Printed:
 - with ``--views``, one line per view: group, class, decided prototype, the class it is named as, canonical or not,
   score, the parts the score joins by Fisher's combination at the decided prototype (``label.matcher``'s
   ``score_parts``: the calibrated score of the distance, the best / second-best ratio's p-value, then the unseen
-  share's, the stretch's and the members' p-values where their keys are on), the fitted scale, the best /
+  share's, the stretch's, the members' and the size's p-values where their keys are on), the fitted scale, the best /
   second-best distance ratio, the view's pixels without a depth reading (holes: shadows, dropouts) and flagged as
   flying (``ingest.depthedges.flying_pixels``) as shares of its mask, and its observed cells.
 Not a test: it labels the demo's single views once (about a minute).

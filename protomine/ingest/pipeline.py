@@ -77,7 +77,7 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
         # thumbnails: the frames with the most pixels of the object, at most max_crops_per_object
         best = sorted(seen, key=lambda fid: -len(p.pixels[fid]))[: c["max_crops_per_object"]]
         crops = [(fid,) + make_crop(by_id[fid].rgb, by_id[fid].depth, p.pixels[fid], c["crop_size"]) for fid in best]
-        singles, cams = [], []
+        singles, cams, sizes = [], [], []
         for fid in spread(seen, c["single_views_per_object"]):
             fd = by_id[fid]
             sel = np.isin(fd.pixels, p.pixels[fid])
@@ -86,11 +86,12 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
             sframe, centre = object_frame(fd.points[sel], scene.plane)  # one frame: no outlier test (proposals.outlier_sigma)
             singles.append((fid, lift(scene.views(p, [fid], others=grid.reads_others), sframe, grid)))
             cams.append(view_camera(sframe.up, centre, fd.cam_to_world))
+            sizes.append(np.array([sframe.radius, sframe.height], np.float64))   # the label stage's size_m of this view
         out.append(ObjectRecord(
             id=p.object_id, capture=scene.capture.name, key=p.key, origin=p.frame.origin, up=p.frame.up,
             center=p.center_world, radius_m=p.frame.radius, height_m=p.frame.height, n_points=p.n_points,
             n_frames=len(seen), volume=vol, views=view_rows, crops=crops, single_views=singles,
-            single_cameras=cams))
+            single_cameras=cams, single_sizes=sizes))
     return out
 
 

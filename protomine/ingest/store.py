@@ -12,7 +12,9 @@ Layout (format ``protomine.store/1``; readers check the version)::
                object frame), used by mining to calibrate single-view scores without labels:
                object (index), frame, volumes (Q, 6, R, A, H); camera (Q, 3): the unit direction from the view's
                object centre to its frame's camera in the view's object frame (``label.matcher.lift_frame``'s
-               ``cameras``; NaN rows for views of a store written before it was kept, absent in such stores)
+               ``cameras``; NaN rows for views of a store written before it was kept, absent in such stores);
+               size (Q, 2): the view's metric footprint radius and height (m) in its own object frame (``lift_frame``'s
+               ``size_m``; NaN rows for views of a store written before it was kept, absent in such stores)
     crops/     a small thumbnail set per object: object, frame, rgb (Q, S, S, 3) uint8,
                depth (Q, S, S) uint16 millimetres, mask (Q, S, S) bool
     captures/  name, path, fingerprint, plane_normal (n, 3), plane_offset, plane_residual_m,
@@ -66,6 +68,7 @@ class ObjectRecord:
     crops: list[tuple[str, np.ndarray, np.ndarray, np.ndarray]] = field(default_factory=list)  # frame, rgb, depth, mask
     single_views: list[tuple[str, np.ndarray]] = field(default_factory=list)  # frame, (6, R, A, H) one-frame volume
     single_cameras: list[np.ndarray] = field(default_factory=list)  # (3,) per single view: camera direction (see single/)
+    single_sizes: list[np.ndarray] = field(default_factory=list)    # (2,) per single view: radius, height m (see single/)
 
 
 @dataclass
@@ -112,6 +115,8 @@ class ObjectStore:
                 self.single_frame = _decode(f["single/frame"][()])
                 # the single views' camera directions (None: a store written before they were kept)
                 self.single_camera = f["single/camera"][()] if "camera" in f["single"] else None
+                # their metric footprint radius and height (None: a store written before they were kept)
+                self.single_size = f["single/size"][()] if "size" in f["single"] else None
                 n = f["volumes"].shape[0]
         except OSError as e:
             raise InputError(self.path, None, f"not a readable HDF5 object store ({e})") from None
@@ -327,7 +332,7 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
         g = f.create_group("single")
         sv = g.create_dataset("volumes", shape=(q,) + vol_shape, dtype=np.float32,
                               chunks=(max(1, min(q, 4)),) + vol_shape if q else None, compression="gzip" if q else None, shuffle=bool(q))
-        so, sf, sc = [], [], []
+        so, sf, sc, ss = [], [], [], []
         if len(old_rows):
             with h5py.File(old.path, "r") as fo:
                 for s0 in range(0, len(old_rows), 256):
@@ -336,15 +341,20 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
             so += [remap[int(x)] for x in old.single_object[old_rows]]
             sf += list(old.single_frame[old_rows])
             sc += list(old.single_camera[old_rows]) if old.single_camera is not None else [np.full(3, np.nan)] * len(old_rows)
+            old_size = getattr(old, "single_size", None)
+            ss += list(old_size[old_rows]) if old_size is not None else [np.full(2, np.nan)] * len(old_rows)
         r = len(old_rows)
         for i, o in enumerate(objects):
             cams = list(o.single_cameras) + [np.full(3, np.nan)] * (len(o.single_views) - len(o.single_cameras))
-            for (fr, vol), cam in zip(o.single_views, cams):
+            sizes = list(o.single_sizes) + [np.full(2, np.nan)] * (len(o.single_views) - len(o.single_sizes))
+            for (fr, vol), cam, size in zip(o.single_views, cams, sizes):
                 sv[r] = vol
                 so.append(n_old + i); sf.append(fr); sc.append(np.asarray(cam, np.float64)); r += 1
+                ss.append(np.asarray(size, np.float64))
         g.create_dataset("object", data=np.array(so, dtype=np.int64))
         g.create_dataset("frame", data=np.array(sf, dtype=object), dtype=STR)
         g.create_dataset("camera", data=np.array(sc, np.float64).reshape(-1, 3))
+        g.create_dataset("size", data=np.array(ss, np.float64).reshape(-1, 2))
         # captures table
         rows = []
         if old is not None:

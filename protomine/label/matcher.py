@@ -51,11 +51,15 @@ computed); with ``[mine] view_normalise_stretch`` (attribute ``unknown_view_stre
 stretch |ln fit_scale| the pose search needed at each prototype (``openset.scale_stretch``) joins them too (with
 ``[mine] view_normalise_stretch_face``, attributes ``unknown_view_stretch_canonical`` / ``_other``: among the held-out
 views decided on the same face kind as the match; with ``[mine] stretch_refine`` at the continuous scale of
-``mine.stretchfit``, returned as ``stretch_scale``).
+``mine.stretchfit``, returned as ``stretch_scale``); with ``[mine] label_size_score`` (attributes ``unknown_view_size``,
+``unknown_view_size_cut``) the conformal p-value of the view's metric size mismatch (``mine.metricsize``) at the
+prototype its shape alone puts nearest (:func:`shape_nearest_size`), among the held-out views' at theirs (per face kind:
+``unknown_view_size_canonical`` / ``_other``), joins them too, flagged by ``unknown_view_size_cut``; ``match`` returns
+``size_mismatch`` (NaN where not computed) and ``ratio_distance`` (the distances of the best/second-best ratio).
 ``match`` also returns ``scored_distance`` (the distance the pose search's calibration scores) and
 ``view_distance`` (NaN where none) for that calibration, and ``score_parts`` (n, K, P): the tail probabilities the
 score joins by Fisher's combination, in that order: the calibrated score, the ratio's p-value, then the p-values of the
-unseen share, the stretch and the members' margin where their keys are on (P = 1: no combination, the score itself;
+unseen share, the stretch, the members' margin and the size where their keys are on (P = 1: no combination, the score itself;
 ``tools/unknown_views.py`` prints them per view).
 
 Record (one dict per object and frame; JSON-ready): the label record of :mod:`protomine.records`, with
@@ -155,6 +159,7 @@ class Matcher:
     member_weight: float = 0.5
     member_score: bool = False
     size_weight: float = 0.0
+    size_score: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -169,6 +174,8 @@ class Matcher:
     members: Members | None = field(init=False)
     view_members: np.ndarray | None = field(init=False)
     view_member_classes: np.ndarray | None = field(init=False)
+    view_size: np.ndarray | None = field(init=False)
+    view_size_kinds: tuple = field(init=False)
     _metres: tuple | None = field(init=False, default=None)   # (metres,) once computed (:meth:`metres`)
 
     def __post_init__(self) -> None:
@@ -199,6 +206,18 @@ class Matcher:
                                     if self.view_members is not None else None)
         if self.view_members is not None:
             self.unknown_cut = float(self.library.attrs["unknown_view_member_cut"])
+        # ``[mine] label_size_score``: the held-out views' size mismatches at their decided prototype, and the cut on the
+        # combination with them (taken only when the members' p-value is joined here as it was there)
+        at = self.library.attrs
+        vz = at.get("unknown_view_size")
+        self.view_size = (np.asarray(vz, np.float64) if self.size_score and self.view_ratios is not None and vz is not None
+                          and "unknown_view_size_cut" in at
+                          and bool(int(at.get("unknown_view_size_members", 0))) == (self.view_members is not None)
+                          else None)
+        self.view_size_kinds = tuple(np.asarray(at[a], np.float64) if self.view_size is not None and a in at
+                                     else self.view_size for a in ("unknown_view_size_canonical", "unknown_view_size_other"))
+        if self.view_size is not None:
+            self.unknown_cut = float(at["unknown_view_size_cut"])
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -222,7 +241,7 @@ class Matcher:
         (``mine.memberknn.member_rows``), computed on the first match that carries sizes and kept; None when the
         size is off or that store is not found."""
         if self._metres is None:
-            self._metres = (self._member_metres() if self.size_weight > 0 else None,)
+            self._metres = (self._member_metres() if self.size_weight > 0 or self.size_score else None,)
         return self._metres[0]
 
     def _member_metres(self) -> np.ndarray | None:
@@ -293,7 +312,7 @@ class Matcher:
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
                     "score_parts": z[..., None],
                     "scored_distance": z, "view_distance": z, "unseen_share": z, "member_distance": z,
-                    "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
+                    "size_mismatch": z, "ratio_distance": z, "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
         # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
@@ -342,9 +361,11 @@ class Matcher:
             D = D + charge
             Dq = None if Dq is None else Dq + charge
         metres = self.metres() if sizes is not None else None
+        mis = np.full(D.shape, np.nan)
         if metres is not None:   # ``[mine] label_size``: the view's metric size at the pose found
             mis = size_mismatch(sizes, up, self.P, self.V, self.library.prototypes["aspect"], self.tilts, metres)
-            # the best/second-best ratio keeps the distances without it: the held-out views (no metric size kept) set its cut
+        if metres is not None and self.size_weight > 0:
+            # the best/second-best ratio keeps the distances without it (as the library's calibration took it)
             Dq = D if Dq is None else Dq
             D = D * np.exp(self.size_weight * mis)
         Dq = D if Dq is None else Dq
@@ -376,6 +397,9 @@ class Matcher:
                     pu += (np.where(upright, ratio_pvalue(self.view_stretch_kinds[0], x), ratio_pvalue(self.view_stretch_kinds[1], x)),)
                 if self.view_members is not None:   # ``[mine] label_members_score``: and with the members' p-value
                     pu += (member_pvalues(self.view_members, self.view_member_classes, member_statistic(dk)),)
+                if self.view_size is not None:   # ``[mine] label_size_score``: and with the size mismatch's p-value
+                    z, zu = shape_nearest_size(mis, upright, Dq, best)
+                    pu += (np.where(zu, ratio_pvalue(self.view_size_kinds[0], z), ratio_pvalue(self.view_size_kinds[1], z)),)
                 parts = (S, pr) + pu   # the tail probabilities joined, returned as ``score_parts``
                 S = fisher_combine_many(*parts)
         if self.tilt_ratios is not None and self.view_ratios is None:  # the other-face rule (``[mine] unknown_ratio``, ``mine.openset``)
@@ -394,7 +418,7 @@ class Matcher:
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
                 "score_parts": np.stack(np.broadcast_arrays(*parts), axis=-1), "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
-                "rotation": rotation, "best": best}
+                "size_mismatch": mis, "ratio_distance": Dq, "rotation": rotation, "best": best}
 
     def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, Dr: np.ndarray, best: np.ndarray,
                         own_members: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -473,6 +497,22 @@ def member_statistic(dk: np.ndarray) -> np.ndarray:
     return np.where(ok, big / np.where(ok, other, 1.0), np.nan)
 
 
+def shape_nearest_size(mis: np.ndarray, upright: np.ndarray, Dq: np.ndarray, best: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``[mine] label_size_score``'s statistic (n, K) and its face kind (n, K): the size mismatch ``mis`` (n, K)
+    (``mine.metricsize.size_mismatch``; NaN: none, taken as 0) at each prototype, but at the decided one ``best`` (n,)
+    (-1: none) that at the prototype the shape alone puts nearest, the least of ``Dq`` (n, K) (the distances without
+    the size factor, of the best/second-best ratio), with that prototype's face kind (``upright``).  A known view's
+    shape finds its own class, whose size it has; a never-mined one's nearest shape is of any size, and the size then
+    often moves the decision away from it."""
+    z = np.nan_to_num(np.asarray(mis, np.float64), nan=0.0)
+    zu = np.array(upright, bool)
+    Dq = np.where(np.isfinite(Dq), Dq, np.inf)
+    rows = np.flatnonzero((np.asarray(best) >= 0) & np.isfinite(Dq).any(axis=1))
+    bq = np.argmin(Dq[rows], axis=1)
+    z[rows, best[rows]], zu[rows, best[rows]] = z[rows, bq], zu[rows, bq]
+    return z, zu
+
+
 def decided_ratios(D: np.ndarray, Dq: np.ndarray) -> np.ndarray:
     """``best_second_ratio(Dq)`` (n, K), the ratios of the shortlist the score keeps (``[mine]
     view_normalise_cut_decide``; Dq is D when off), with, in each row whose least D (the decision) and least Dq fall
@@ -513,10 +553,11 @@ def view_calibration(library: Library) -> bool:
 def make_matcher(library: Library, cfg: dict, *, weighted: bool = True, size: bool = True) -> Matcher:
     """Matcher for ``library``: the grid and channel weights come from the library's own config (the
     volumes must be lifted exactly as the mined ones were), the unknown cut from the library too.  ``size`` False:
-    the decision leaves the view's metric size out whatever the library's ``[mine] label_size``."""
+    the decision leaves the view's metric size out whatever the library's ``[mine] label_size``, and the score too
+    (``[mine] label_size_score``)."""
     a, kw = _matcher_args(library, cfg, weighted)
     if not size:
-        kw["size_weight"] = 0.0
+        kw["size_weight"], kw["size_score"] = 0.0, False
     return Matcher(*a, **kw)
 
 
@@ -560,7 +601,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  member_within=float(m.get("label_members_within", 0.0)), member_top=int(m.get("label_members_top", 3)),
                  member_weight=float(m.get("label_members_weight", 0.5)),
                  member_score=bool(m.get("label_members_score", False)),
-                 size_weight=float(m.get("label_size", 0.0)) if weighted else 0.0))
+                 size_weight=float(m.get("label_size", 0.0)) if weighted else 0.0,
+                 size_score=bool(weighted and m.get("label_size_score", False))))
 
 
 @dataclass
