@@ -698,7 +698,9 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
 
 
 VETO_UPDATES = 3  # seed_veto_k: prototype updates of the held partition (_held_fit).  0 (only the labels move) on the
-# all-stereo seed-0 store: purity / NMI 1.000 both ways, mined yaw p90 / rotation p90 16.3 / 27.7 -> 20.5 / 54.6
+# all-stereo seed-0 store: purity / NMI 1.000 both ways, mined yaw p90 / rotation p90 16.3 / 27.7 -> 20.5 / 54.6 (own faces
+# off).  1 (own faces on): all-stereo seed 1 120.6 / 154.6 -> 55.4 / 133.7, the others within 3 deg, label AUROC all-stereo
+# seed 0 0.969 -> 0.965, touching seed 0 0.911 -> 0.892 (README "What the all-stereo demo loses in mining")
 VETO_OWN_FACES = True  # seed_veto_k: members far from their held prototype turned onto their own faces (_own_faces), as
 # seed_check's held fit does.  Off -> on, yaw p90 / rotation p90 of all mined members: all-stereo seed 0 16.3 / 27.7 ->
 # 13.7 / 22.2; default seed 0 55.6 / 47.2 -> 70.4 / 70.5 (its members right in both: 15.8 / 9.4 -> 10.5 / 9.4)
