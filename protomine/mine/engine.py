@@ -90,7 +90,7 @@ from ..progress import Bar, bar
 from . import symmetry as sym
 from .posesearch import PoseMatch, _check_scales, _resample_axis, shift_volume
 from .posesearch import PoseBank, complex_spectra
-from .seeding import SEED_SIZE, PoseSeeder, medoid_cost, paired_worse_t
+from .seeding import SEED_SIZE, PoseSeeder, medoid_cost, neighbour_vetoed, paired_worse_t
 from .searchpool import ordered_map, pooled
 from .tilts import TiltBank, TiltGrid, make_bank
 
@@ -697,6 +697,16 @@ def _lloyd_passes(source: Source, P: np.ndarray, V: np.ndarray, scales, max_iter
                    None if ts is None else ts.tilt, None if ts is None else ts.aspect)
 
 
+VETO_UPDATES = 3  # seed_veto_k: prototype updates of the held partition (_held_fit).  0 (only the labels move) on the
+# all-stereo seed-0 store: purity / NMI 1.000 both ways, mined yaw p90 / rotation p90 16.3 / 27.7 -> 20.5 / 54.6 (own faces
+# off).  1 (own faces on): all-stereo seed 1 120.6 / 154.6 -> 55.4 / 133.7, the others within 3 deg, label AUROC all-stereo
+# seed 0 0.969 -> 0.965, touching seed 0 0.911 -> 0.892 (README "What the all-stereo demo loses in mining")
+VETO_OWN_FACES = True  # seed_veto_k: members far from their held prototype turned onto their own faces (_own_faces), as
+# seed_check's held fit does.  Off -> on, yaw p90 / rotation p90 of all mined members: all-stereo seed 0 16.3 / 27.7 ->
+# 13.7 / 22.2; default seed 0 55.6 / 47.2 -> 70.4 / 70.5 (its members right in both: 15.8 / 9.4 -> 10.5 / 9.4)
+VETO_KEEP_UNMOVED = True  # seed_veto_k: the clusters no object joined or left stay as the fit left them (_kept_from)
+
+
 HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seeding's own (_held_fit); demo seed 0
 # with seed_check, 1 -> 3: accuracy 0.844 -> 0.836, unknown AUROC 0.908 -> 0.934, symmetry right 6 -> 7 of 8; seed 1
 # accuracy 0.908 -> 0.916, AUROC 0.881 -> 0.885 (the partition, and so purity, is the same)
@@ -1081,6 +1091,13 @@ class PoseKMeans:
     face_hold_unmoved : with ``face_assign``, the clusters no object joined or left keep the fit's prototypes,
         aspects, their members' poses and distances and the symmetry test's moments to the bit; only the others are
         updated (:func:`_kept_from`, ``[mine] face_assign_hold_unmoved``).
+    seed_veto_k : > 0, with ``face_pairs``, when the seed partition is not held: every object of the seeding matrix
+        the fit moved out of its seed cluster goes back when its k nearest objects on the stable-face matrix among
+        those both partitions keep in its seed cluster are nearer (mean distance) than its k nearest among those both
+        keep in its new cluster (``seeding.neighbour_vetoed``); a partition so changed is held (:func:`_held_fit`
+        from the fit's prototypes, ``VETO_UPDATES`` updates, far members turned onto their own faces with
+        ``VETO_OWN_FACES``, the clusters no object joined or left kept as the fit left them, :func:`_kept_from`;
+        ``[mine] seed_veto_k``; 0 = off).
     pose_sync : after the fit, each prototype rebuilt from its upright members aligned to one another (yaw
         synchronisation of every pair's search on the features without their first azimuthal harmonic, refined leave
         one out; :func:`_synced_prototypes`, :meth:`_pose_sync`; ``[mine] pose_sync``).
@@ -1102,8 +1119,9 @@ class PoseKMeans:
                  tilts: TiltGrid | None = None, face_pairs: bool = False, seed_check: bool = False,
                  seed_hold_t: float = 0.0, face_assign: bool = False,
                  face_updates: int = HELD_UPDATES, face_hold_unmoved: bool = False, symmetry_break_effect: float = 0.0,
-                 pose_sync: bool = False):
+                 pose_sync: bool = False, seed_veto_k: int = 0):
         self.n_clusters = n_clusters
+        self.seed_veto_k = seed_veto_k
         self.pose_sync = pose_sync
         self.symmetry_break_effect = symmetry_break_effect
         self.face_assign = face_assign
@@ -1288,6 +1306,9 @@ class PoseKMeans:
                 res = _held_fit(fit_on, labels, P0, V0, scales=scales, chunk_size=self.chunk_size,
                                 moments=fit_on is source, cache=cache, grid=grid, aspect=a0[0] if a0 else None)
                 cost = held if check else res.cost
+            elif faces and self.seed_veto_k > 0:
+                res = self._vetoed(fit_on, res, labels, seeder, scales, cache, grid)
+                cost = res.cost
             if best is None or cost < best_cost:
                 best, best_cost = res, cost
         if fit_on is not source:
@@ -1296,6 +1317,28 @@ class PoseKMeans:
                           chunk_size=self.chunk_size, moments=True, cache=self._new_cache(), grid=grid,
                           aspect=best.aspect, progress=self.progress, what=f"K={K} all objects passes")
         return best
+
+    def _vetoed(self, source: Source, res: _Result, seed: np.ndarray, seeder: PoseSeeder, scales: tuple[float, ...],
+                cache: _SpectraCache | None, grid: TiltGrid | None) -> _Result:
+        """``seed_veto_k``: the fit ``res`` with the moves out of the ``seed`` partition (N,) that the stable-face matrix
+        contradicts undone (``seeding.neighbour_vetoed`` on the matrix objects ``seeder.index``), the partition so
+        changed held from the fit's prototypes (:func:`_held_fit`, ``VETO_UPDATES`` updates, with ``VETO_OWN_FACES`` the
+        members far from their prototype turned onto their own faces, :func:`_own_faces`);
+        the clusters no object joined or left stay as the fit left them (:func:`_kept_from`).  The fit unchanged when
+        no move is undone."""
+        idx = seeder.index
+        back = neighbour_vetoed(seeder.S, res.labels[idx], seed[idx], int(self.seed_veto_k))
+        if np.array_equal(back, res.labels[idx]):
+            return res
+        labels = np.array(res.labels, np.int64, copy=True)
+        labels[idx] = back
+        if np.bincount(labels, minlength=self.n_clusters).min() == 0:
+            return res
+        keep = unmoved_clusters(res.labels, labels, self.n_clusters) if VETO_KEEP_UNMOVED else None
+        held = _held_fit(source, labels, res.P, res.V, scales=scales, chunk_size=self.chunk_size,
+                         moments=res.moments is not None, cache=cache, grid=grid, aspect=res.aspect, own_faces=VETO_OWN_FACES,
+                         updates=VETO_UPDATES, keep=keep)
+        return held if keep is None else _kept_from(held, res, keep)
 
     def _new_cache(self) -> _SpectraCache:
         return _SpectraCache(int(self.cache_mb * 2**20))
