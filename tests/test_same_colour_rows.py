@@ -257,19 +257,7 @@ def test_a_piece_of_the_middle_can_joins_its_own_can_across_a_convex_seam(tmp_pa
     0.00), with the neighbours concave (0.55-0.79: two solids in contact meet in a concave crease, Stein et al.
     2014).  With ``[ingest] piece_convex_seam`` it joins its own piece and the three cans are three objects (each
     >= 0.95 pure with >= 0.8 of its masked pixels)."""
-    write_row_capture(tmp_path / "row", "can", 3, draw)
-    from protomine.capture import read_capture
-    from protomine.config import load_config
-    from protomine.ingest.proposals import find_objects
-    cap = read_capture(tmp_path / "row")
-    cfg = load_config("default")
-    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
-    found = {}
-    for on in (False, True):
-        cfg["ingest"]["piece_convex_seam"] = on
-        free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
-        found[on] = (separated(free, masked, 3)[0], len(free.proposals))
-    assert found == {False: (0, 1), True: (3, 3)}
+    assert _separated_off_and_on(tmp_path, "can", 3, draw, "piece_convex_seam") == {False: (0, 1), True: (3, 3)}
 
 
 def test_seam_concavity_of_two_touching_spheres_and_of_one_sphere():
@@ -297,6 +285,24 @@ def test_seam_concavity_of_two_touching_spheres_and_of_one_sphere():
     assert not _seam_concavity(pts, nrm, a[a != b], b[a != b], 15.0).any()
 
 
+def _separated_off_and_on(tmp_path, kind: str, count: int, draw: int, key: str) -> dict:
+    """{off, on: (items separated, proposals)} of a row of ``count`` items of ``kind`` (draw ``draw``) found without
+    masks with ``[ingest] key`` off and on, against the proposals found with the renderer's masks."""
+    write_row_capture(tmp_path / "row", kind, count, draw)
+    from protomine.capture import read_capture
+    from protomine.config import load_config
+    from protomine.ingest.proposals import find_objects
+    cap = read_capture(tmp_path / "row")
+    cfg = load_config("default")
+    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
+    found = {}
+    for on in (False, True):
+        cfg["ingest"][key] = on
+        free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
+        found[on] = (separated(free, masked, count)[0], len(free.proposals))
+    return found
+
+
 @pytest.mark.parametrize("kind, draw", [("can", 5), ("box", 3)])
 def test_a_neck_cut_side_counts_the_pieces_of_its_own_item(tmp_path, kind, draw):
     """Two cans / two boxes of one colour touching (tests/same_colour_rows.py, can pair draw 5, box pair draw 3; the
@@ -308,16 +314,4 @@ def test_a_neck_cut_side_counts_the_pieces_of_its_own_item(tmp_path, kind, draw)
     meet in a concave crease, Stein et al. 2014); with ``[ingest] neck_side_pieces`` they count with it (the cans'
     side 1353 voxels with them, standing), the two sides are twins, and the two items are two objects (each >= 0.95
     pure with >= 0.8 of its masked pixels)."""
-    write_row_capture(tmp_path / "row", kind, 2, draw)
-    from protomine.capture import read_capture
-    from protomine.config import load_config
-    from protomine.ingest.proposals import find_objects
-    cap = read_capture(tmp_path / "row")
-    cfg = load_config("default")
-    masked = {p.key: p for p in find_objects(cap, cfg, np.random.default_rng(0), use_masks=True).proposals}
-    found = {}
-    for on in (False, True):
-        cfg["ingest"]["neck_side_pieces"] = on
-        free = find_objects(cap, cfg, np.random.default_rng(0), use_masks=False)
-        found[on] = (separated(free, masked, 2)[0], len(free.proposals))
-    assert found == {False: (0, 1), True: (2, 2)}
+    assert _separated_off_and_on(tmp_path, kind, 2, draw, "neck_side_pieces") == {False: (0, 1), True: (2, 2)}
