@@ -705,6 +705,8 @@ VETO_OWN_FACES = True  # seed_veto_k: members far from their held prototype turn
 # seed_check's held fit does.  Off -> on, yaw p90 / rotation p90 of all mined members: all-stereo seed 0 16.3 / 27.7 ->
 # 13.7 / 22.2; default seed 0 55.6 / 47.2 -> 70.4 / 70.5 (its members right in both: 15.8 / 9.4 -> 10.5 / 9.4)
 VETO_KEEP_UNMOVED = True  # seed_veto_k: the clusters no object joined or left stay as the fit left them (_kept_from)
+FACE_BREAK_EFFECT = 0.0  # a turn of a face's copy (faces.face_symmetries) moving more than this share of its variance is
+# no symmetry (0 = off): README "What the all-stereo demo loses in mining"
 
 
 HELD_UPDATES = 3  # prototype updates with the labels held fixed after the seeding's own (_held_fit); demo seed 0
@@ -1391,6 +1393,7 @@ class PoseKMeans:
             self.up_ = self.rotation_[:, 2, :]
             ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
             fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol,
+                                         break_effect=float(FACE_BREAK_EFFECT),
                                          run=pooled)
         self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
         period = np.array([sym.period_deg(fsym[k][f]) for k, f in zip(res.labels, self.face_)], np.float64)
