@@ -97,6 +97,30 @@ def test_break_effect_breaks_a_blurred_handle():
                                   [0, 4, 1])
 
 
+def test_face_symmetries_pass_break_effect_to_a_face_copy():
+    """faces.face_symmetries tests each face but the first on the prototype's copy resting on it; its break_effect
+    reaches that test.  The copy here is the blurred handle above (hand-worked E = 0.2006 at every turn, a scatter so
+    large that the significance test alone reads it continuous): continuous without break_effect, no symmetry with
+    0.15 below E, continuous with 0.25 above; face 0 keeps the prototype's code either way."""
+    from protomine.mine.faces import face_symmetries
+
+    P = np.zeros((1, 1, 2, A, 3), np.float32)
+    P[0, 0, 1] = 0.5
+    P[0, 0, 0, 7] = 1.0
+    V = np.ones((1, 2, A, 3), np.float32)
+
+    class Bank:  # the copy on every face is the blurred handle
+        def copy_at(self, k, up):
+            return P[0], V[0]
+
+    ups = [np.array([[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]])]
+    canonical = np.array([sym.NONE])
+    assert face_symmetries(Bank(), ups, np.array([1.0]), canonical)[0].tolist() == [sym.NONE, sym.CONTINUOUS]
+    assert face_symmetries(Bank(), ups, np.array([1.0]), canonical, break_effect=0.15)[0].tolist() == [sym.NONE, sym.NONE]
+    assert face_symmetries(Bank(), ups, np.array([1.0]), canonical,
+                           break_effect=0.25)[0].tolist() == [sym.NONE, sym.CONTINUOUS]
+
+
 def test_canonical_frame_is_independent_of_the_prototype_roll():
     P = _symmetric_prototypes(np.random.default_rng(6))[2:]
     V = np.ones((1,) + P.shape[2:], np.float32)

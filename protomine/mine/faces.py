@@ -67,19 +67,22 @@ def group_faces(up: np.ndarray, labels: np.ndarray, K: int, radius_deg: float = 
 
 
 def face_symmetries(bank, face_ups: list[np.ndarray], noise: np.ndarray, canonical: np.ndarray, *,
-                    factor: float = sym.DEFAULT_FACTOR, tol: float = sym.DEFAULT_TOL, run=None) -> list[np.ndarray]:
+                    factor: float = sym.DEFAULT_FACTOR, tol: float = sym.DEFAULT_TOL, run=None,
+                    break_effect: float = 0.0) -> list[np.ndarray]:
     """Symmetry code per face [(F_k,)]: face 0 keeps the prototype's ``canonical`` (K,) code; the others are
     tested on the prototype's copy resting on them.  ``bank`` is a ``tilts.TiltBank`` over the canonical
     prototypes (its grid gives the copies' margins), ``noise`` (K,) each prototype's mean cell variance.
     ``run(fn, items)``, when given, runs the prototypes (independent; ``[fn(k) for k in items]`` by default, the
-    engine spreads them over threads), results in the order of ``items``."""
+    engine spreads them over threads), results in the order of ``items``.  ``break_effect`` > 0: a turn of a face's
+    copy that moves more than this share of its variance is no symmetry (``symmetry.detect_symmetry``)."""
 
     def one(k: int) -> np.ndarray:
         ups = face_ups[k]
         codes = np.full(len(ups), int(canonical[k]), np.int64)
         for f in range(1, len(ups)):
             Pc, Vc = bank.copy_at(k, ups[f])
-            codes[f] = int(sym.detect_symmetry(Pc[None], Vc[None], float(noise[k]), factor=factor, tol=tol)[0])
+            codes[f] = int(sym.detect_symmetry(Pc[None], Vc[None], float(noise[k]), factor=factor, tol=tol,
+                                               break_effect=break_effect)[0])
         return codes
 
     return (run or (lambda fn, items: [fn(i) for i in items]))(one, range(len(face_ups)))
