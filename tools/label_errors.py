@@ -37,6 +37,9 @@ from protomine.mine.evaluate import cluster_rotation_offsets, majority_map, read
 from protomine.mine.library import read_library
 from protomine.rotations import quat_to_matrix
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from relabel import fill_missing_keys  # noqa: E402
+
 
 def cut_flags(scenes: Path, oid: str) -> tuple[bool, bool]:
     """(mask within 2 px of the image border, mask beside a nearer object's mask: 2 px, 20 mm nearer)."""
@@ -55,9 +58,7 @@ def main(folder: Path, config: str | None) -> None:
     cfg = config_from(config)
     scen = json.loads((scenes / "scenario.json").read_text())
     lib = read_library(folder / "library.h5")
-    lcfg = lib.config   # a library mined before a label-time key: filled from the config (module docstring)
-    lcfg["mine"].update({k: v for k, v in cfg["mine"].items() if k not in lcfg["mine"]})
-    lib.attrs["config"] = json.dumps(lcfg)
+    fill_missing_keys(lib, cfg)   # a library mined before a label-time key: filled from the config (module docstring)
     truth = read_truth_table(scenes / "truth_full.csv")
     full = {r["object"]: r for r in csv.DictReader(open(scenes / "truth_full.csv"))}
     cls, K = majority_map(lib, truth), lib.n_clusters

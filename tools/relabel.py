@@ -22,16 +22,24 @@ from protomine.mine.library import read_library
 FIGURES = ("n_known", "n_unknown", "accuracy", "auroc", "unknown_flagged", "known_flagged")
 
 
-def main(argv: list[str]) -> None:
-    demo = Path(argv[0])
-    out = Path(argv[1]) if len(argv) > 1 else None
-    cfg = config_from(Path(argv[2]) if len(argv) > 2 else None)
-    lib = read_library(demo / "library.h5")
+def fill_missing_keys(lib, cfg: dict) -> dict:
+    """The ``[mine]`` keys of ``cfg`` that ``lib``'s recorded config lacks (a library mined before they existed), set
+    in the in-memory library's recorded config to ``cfg``'s values; returns them.  Keys the library records are kept."""
     recorded = lib.config
     filled = {k: v for k, v in cfg["mine"].items() if k not in recorded["mine"]}
     if filled:
         recorded["mine"].update(filled)
         lib.attrs["config"] = json.dumps(recorded)   # Library.config parses this attribute on every read
+    return filled
+
+
+def main(argv: list[str]) -> None:
+    demo = Path(argv[0])
+    out = Path(argv[1]) if len(argv) > 1 else None
+    cfg = config_from(Path(argv[2]) if len(argv) > 2 else None)
+    lib = read_library(demo / "library.h5")
+    filled = fill_missing_keys(lib, cfg)
+    if filled:
         print(f"{demo.name}: filled from the config: " + ", ".join(f"{k}={v}" for k, v in filled.items()))
     scenes = demo / "scenes"
     doc = json.loads((scenes / "scenario.json").read_text())
