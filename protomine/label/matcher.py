@@ -423,16 +423,19 @@ class Matcher:
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         parts = (S,) if parts is None else parts   # no combination: the score is its one part
-        # the unknown cut of each view (n, K): ``[mine] unknown_cut_split``'s cut of its stratum (it cuts its object off
-        # or not: ``cuts``), else the library's one cut
-        cut_row = np.full(n, self.unknown_cut)
-        if self.split_cuts is not None and cuts is not None and len(cuts) == n:
-            cut_row = np.where([c is not None for c in cuts], self.split_cuts[1], self.split_cuts[0])
-        cut_row = np.broadcast_to(cut_row[:, None], D.shape).copy()
+        cut_row = np.broadcast_to(self.view_unknown_cuts(cuts, n)[:, None], D.shape).copy()
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
                 "score_parts": np.stack(np.broadcast_arrays(*parts), axis=-1), "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
                 "size_mismatch": mis, "ratio_distance": Dq, "unknown_cut": cut_row, "rotation": rotation, "best": best}
+
+    def view_unknown_cuts(self, cuts: list | None, n: int) -> np.ndarray:
+        """(n,) the unknown cut of each of n views: with ``[mine] unknown_cut_split`` (the library's per-stratum cuts) the
+        cut of the views that cut their object off where ``cuts`` (n,) holds a ``ingest.truncation.ViewCut`` and the
+        whole views' cut where it holds None; else (or ``cuts`` None) the library's one cut."""
+        if self.split_cuts is None or cuts is None or len(cuts) != n:
+            return np.full(n, float(self.unknown_cut))
+        return np.where(np.array([c is not None for c in cuts], bool), self.split_cuts[1], self.split_cuts[0]).astype(np.float64)
 
     def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, Dr: np.ndarray, best: np.ndarray,
                         own_members: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
