@@ -15,6 +15,7 @@ from ..progress import Recorder, bar, detail, replay
 from ..provenance import folder_fingerprint, provenance
 from .proposals import SceneObjects, find_objects, object_frame
 from .store import CaptureRecord, ObjectRecord, ObjectStore, write_store
+from .truncation import cut_pixels
 from .volume import Grid, lift, up_basis
 
 
@@ -77,7 +78,7 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
         # thumbnails: the frames with the most pixels of the object, at most max_crops_per_object
         best = sorted(seen, key=lambda fid: -len(p.pixels[fid]))[: c["max_crops_per_object"]]
         crops = [(fid,) + make_crop(by_id[fid].rgb, by_id[fid].depth, p.pixels[fid], c["crop_size"]) for fid in best]
-        singles, cams, sizes = [], [], []
+        singles, cams, sizes, cuts = [], [], [], []
         for fid in spread(seen, c["single_views_per_object"]):
             fd = by_id[fid]
             sel = np.isin(fd.pixels, p.pixels[fid])
@@ -87,11 +88,14 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
             singles.append((fid, lift(scene.views(p, [fid], others=grid.reads_others), sframe, grid)))
             cams.append(view_camera(sframe.up, centre, fd.cam_to_world))
             sizes.append(np.array([sframe.radius, sframe.height], np.float64))   # the label stage's size_m of this view
+            held = scene.held(fd).copy()   # does the view cut its object off (the image border, a nearer object), as the
+            held[p.pixels[fid]] -= 1       # label stage's lift_frame finds it (ingest.truncation.cut_pixels)
+            cuts.append(bool(cut_pixels(p.pixels[fid], fd.depth, (held > 0).reshape(fd.depth.shape)).any()))
         out.append(ObjectRecord(
             id=p.object_id, capture=scene.capture.name, key=p.key, origin=p.frame.origin, up=p.frame.up,
             center=p.center_world, radius_m=p.frame.radius, height_m=p.frame.height, n_points=p.n_points,
             n_frames=len(seen), volume=vol, views=view_rows, crops=crops, single_views=singles,
-            single_cameras=cams, single_sizes=sizes))
+            single_cameras=cams, single_sizes=sizes, single_cuts=cuts))
     return out
 
 

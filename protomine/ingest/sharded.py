@@ -118,7 +118,7 @@ class ShardedObjectStore(ObjectStore):
         live_of = [{c for s, c in live if s == j} for j in range(len(rel))]
         obj, views, caps = {}, {}, {}
         crop_o, crop_f, crop_loc = [], [], []
-        sing_o, sing_f, sing_loc, sing_c, sing_s = [], [], [], [], []
+        sing_o, sing_f, sing_loc, sing_c, sing_s, sing_k = [], [], [], [], [], []
         shard_of, local = [], []
         n = 0
         for j, sh in enumerate(self.shards):
@@ -144,6 +144,8 @@ class ShardedObjectStore(ObjectStore):
                           else np.full((len(rows), 3), np.nan))
             sing_s.append(sh.single_size[rows] if getattr(sh, "single_size", None) is not None
                           else np.full((len(rows), 2), np.nan))
+            sing_k.append(sh.single_cut[rows] if getattr(sh, "single_cut", None) is not None
+                          else np.full(len(rows), -1, np.int8))
             sing_loc.append(np.stack([np.full(len(rows), j), rows], 1))
             shard_of.append(np.full(len(keep), j, np.int64)); local.append(keep)
             n += len(keep)
@@ -156,6 +158,8 @@ class ShardedObjectStore(ObjectStore):
         self.single_camera = _concat(sing_c).reshape(-1, 3).astype(np.float64) if sing_c else None
         # the single views' metric sizes (NaN rows: a shard written before they were kept)
         self.single_size = _concat(sing_s).reshape(-1, 2).astype(np.float64) if sing_s else None
+        # whether each cuts its object off (1 / 0; -1: a shard written before it was kept)
+        self.single_cut = _concat(sing_k).reshape(-1).astype(np.int8) if sing_k else None
         self._single_loc = _concat(sing_loc).reshape(-1, 2).astype(np.int64)
         self._shard_of = _concat(shard_of).astype(np.int64)
         self._local = _concat(local).astype(np.int64)

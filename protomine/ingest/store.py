@@ -69,6 +69,7 @@ class ObjectRecord:
     single_views: list[tuple[str, np.ndarray]] = field(default_factory=list)  # frame, (6, R, A, H) one-frame volume
     single_cameras: list[np.ndarray] = field(default_factory=list)  # (3,) per single view: camera direction (see single/)
     single_sizes: list[np.ndarray] = field(default_factory=list)    # (2,) per single view: radius, height m (see single/)
+    single_cuts: list[bool] = field(default_factory=list)           # per single view: it cuts its object off (see single/)
 
 
 @dataclass
@@ -117,6 +118,8 @@ class ObjectStore:
                 self.single_camera = f["single/camera"][()] if "camera" in f["single"] else None
                 # their metric footprint radius and height (None: a store written before they were kept)
                 self.single_size = f["single/size"][()] if "size" in f["single"] else None
+                # whether each cuts its object off (1), does not (0), unknown (-1) (None: written before they were kept)
+                self.single_cut = f["single/cut"][()].astype(np.int8) if "cut" in f["single"] else None
                 n = f["volumes"].shape[0]
         except OSError as e:
             raise InputError(self.path, None, f"not a readable HDF5 object store ({e})") from None
@@ -332,7 +335,7 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
         g = f.create_group("single")
         sv = g.create_dataset("volumes", shape=(q,) + vol_shape, dtype=np.float32,
                               chunks=(max(1, min(q, 4)),) + vol_shape if q else None, compression="gzip" if q else None, shuffle=bool(q))
-        so, sf, sc, ss = [], [], [], []
+        so, sf, sc, ss, sk = [], [], [], [], []
         if len(old_rows):
             with h5py.File(old.path, "r") as fo:
                 for s0 in range(0, len(old_rows), 256):
@@ -343,18 +346,23 @@ def _write(tmp: Path, old: ObjectStore | None, keep: np.ndarray, objects: list[O
             sc += list(old.single_camera[old_rows]) if old.single_camera is not None else [np.full(3, np.nan)] * len(old_rows)
             old_size = getattr(old, "single_size", None)
             ss += list(old_size[old_rows]) if old_size is not None else [np.full(2, np.nan)] * len(old_rows)
+            old_cut = getattr(old, "single_cut", None)
+            sk += list(old_cut[old_rows]) if old_cut is not None else [-1] * len(old_rows)
         r = len(old_rows)
         for i, o in enumerate(objects):
             cams = list(o.single_cameras) + [np.full(3, np.nan)] * (len(o.single_views) - len(o.single_cameras))
             sizes = list(o.single_sizes) + [np.full(2, np.nan)] * (len(o.single_views) - len(o.single_sizes))
-            for (fr, vol), cam, size in zip(o.single_views, cams, sizes):
+            cuts = [int(bool(c)) for c in o.single_cuts] + [-1] * (len(o.single_views) - len(o.single_cuts))
+            for (fr, vol), cam, size, cut in zip(o.single_views, cams, sizes, cuts):
                 sv[r] = vol
+                sk.append(cut)
                 so.append(n_old + i); sf.append(fr); sc.append(np.asarray(cam, np.float64)); r += 1
                 ss.append(np.asarray(size, np.float64))
         g.create_dataset("object", data=np.array(so, dtype=np.int64))
         g.create_dataset("frame", data=np.array(sf, dtype=object), dtype=STR)
         g.create_dataset("camera", data=np.array(sc, np.float64).reshape(-1, 3))
         g.create_dataset("size", data=np.array(ss, np.float64).reshape(-1, 2))
+        g.create_dataset("cut", data=np.array(sk, np.int8).reshape(-1))
         # captures table
         rows = []
         if old is not None:

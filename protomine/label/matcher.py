@@ -160,6 +160,7 @@ class Matcher:
     member_score: bool = False
     size_weight: float = 0.0
     size_score: bool = False
+    cut_split: bool = False
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -176,6 +177,7 @@ class Matcher:
     view_member_classes: np.ndarray | None = field(init=False)
     view_size: np.ndarray | None = field(init=False)
     view_size_kinds: tuple = field(init=False)
+    split_cuts: tuple | None = field(init=False)
     _metres: tuple | None = field(init=False, default=None)   # (metres,) once computed (:meth:`metres`)
 
     def __post_init__(self) -> None:
@@ -218,6 +220,12 @@ class Matcher:
                                      else self.view_size for a in ("unknown_view_size_canonical", "unknown_view_size_other"))
         if self.view_size is not None:
             self.unknown_cut = float(at["unknown_view_size_cut"])
+        # ``[mine] unknown_cut_split``: the cut for views that cut their object off and for whole ones (the ratio's cut
+        # taken apart by stratum; not with the members' or the size's p-value, whose cuts are pooled)
+        self.split_cuts = ((float(at["unknown_view_ratio_cut_whole"]), float(at["unknown_view_ratio_cut_cut"]))
+                           if self.cut_split and self.view_ratios is not None and self.view_members is None
+                           and self.view_size is None and "unknown_view_ratio_cut_whole" in at
+                           and "unknown_view_ratio_cut_cut" in at else None)
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -312,7 +320,7 @@ class Matcher:
             return {"distance": z, "score": z, "yaw_deg": z, "fit_scale": z, "stretch_scale": z, "face": z.astype(int),
                     "score_parts": z[..., None],
                     "scored_distance": z, "view_distance": z, "unseen_share": z, "member_distance": z,
-                    "size_mismatch": z, "ratio_distance": z, "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
+                    "size_mismatch": z, "ratio_distance": z, "unknown_cut": z, "upright": z.astype(bool), "rotation": np.zeros((0, self.K, 3, 3)), "best": np.zeros(0, int)}
         X, W = self.features(volumes)
         D, raw, fit_scale, up, upright = self.search.poses(X, W)
         # the score judges the distance at the found pose re-weighted by the per-cell reliability of single
@@ -415,10 +423,19 @@ class Matcher:
         face, rotation, yaw = face_poses(rot.tilt_yaw_to_matrix(up, raw), pr["face_up"], pr["face_symmetry"],
                                          self.groups)
         parts = (S,) if parts is None else parts   # no combination: the score is its one part
+        cut_row = np.broadcast_to(self.view_unknown_cuts(cuts, n)[:, None], D.shape).copy()
         return {"distance": D, "score": S, "yaw_deg": yaw, "fit_scale": fit_scale, "stretch_scale": stretch_scale,
                 "score_parts": np.stack(np.broadcast_arrays(*parts), axis=-1), "face": face, "upright": upright,
                 "scored_distance": Dr, "view_distance": Dv, "unseen_share": share, "member_distance": dk,
-                "size_mismatch": mis, "ratio_distance": Dq, "rotation": rotation, "best": best}
+                "size_mismatch": mis, "ratio_distance": Dq, "unknown_cut": cut_row, "rotation": rotation, "best": best}
+
+    def view_unknown_cuts(self, cuts: list | None, n: int) -> np.ndarray:
+        """(n,) the unknown cut of each of n views: with ``[mine] unknown_cut_split`` (the library's per-stratum cuts) the
+        cut of the views that cut their object off where ``cuts`` (n,) holds a ``ingest.truncation.ViewCut`` and the
+        whole views' cut where it holds None; else (or ``cuts`` None) the library's one cut."""
+        if self.split_cuts is None or cuts is None or len(cuts) != n:
+            return np.full(n, float(self.unknown_cut))
+        return np.where(np.array([c is not None for c in cuts], bool), self.split_cuts[1], self.split_cuts[0]).astype(np.float64)
 
     def member_decision(self, X: np.ndarray, W: np.ndarray, D: np.ndarray, Dr: np.ndarray, best: np.ndarray,
                         own_members: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
@@ -602,7 +619,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  member_weight=float(m.get("label_members_weight", 0.5)),
                  member_score=bool(m.get("label_members_score", False)),
                  size_weight=float(m.get("label_size", 0.0)) if weighted else 0.0,
-                 size_score=bool(weighted and m.get("label_size_score", False))))
+                 size_score=bool(weighted and m.get("label_size_score", False)),
+                 cut_split=bool(weighted and m.get("unknown_cut_split", False))))
 
 
 @dataclass
@@ -720,7 +738,8 @@ def _records(matcher: Matcher, capture: str, fo: FrameObjects, m: dict[str, np.n
                        symmetry=symmetry_name(face_sym[k, f]),
                        scale=float(np.sqrt(r * h / max(size_med[k, 0] * size_med[k, 1], 1e-12))),
                        fit_scale=float(m["fit_scale"][i, k]), distance=float(m["distance"][i, k]),
-                       score=score, unknown=bool(score < matcher.unknown_cut), alternatives=alts)
+                       score=score, unknown=bool(score < (float(m["unknown_cut"][i, k]) if "unknown_cut" in m
+                                                         else matcher.unknown_cut)), alternatives=alts)
         out.append(rec)
     return out
 

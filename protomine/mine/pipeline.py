@@ -461,6 +461,12 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
     sizes = held_out_sizes(store, rows) if bool(mc.get("label_size_score", False)) and bool(
         mc.get("view_normalise_ratio", False)) else None
     size_mis, ratio_d = [], []
+    # ``[mine] unknown_cut_split``: whether each held-out view cuts its object off (the store's single/cut, as ingest
+    # found it; -1 or a store written before it: no split)
+    got_cut = getattr(store, "single_cut", None)
+    cut_of = (np.asarray(got_cut, np.int64)[rows] if bool(mc.get("unknown_cut_split", False)) and got_cut is not None
+              else None)
+    cut_of = cut_of.astype(bool) if cut_of is not None and (cut_of >= 0).all() else None
     slices = [slice(i0, i0 + chunk) for i0 in range(0, len(rows), chunk)]
     views = [store.read_single_views(rows[sl]) for sl in slices]
     # the chunks are independent: one per thread of the search's pool (searchpool, one torch thread each), each
@@ -519,7 +525,8 @@ def view_calibration(lib: Library, store: ObjectStore, rows: np.ndarray, own: np
                                                      bool(mc.get("label_members_score", False)))
                                             if with_members else None,
                                             size=(np.concatenate(size_mis), np.concatenate(ratio_d), np.concatenate(kinds))
-                                            if sizes is not None else None))
+                                            if sizes is not None else None,
+                                            cut=cut_of))
     return fields, attrs
 
 
@@ -547,7 +554,7 @@ MIN_FACE_STRETCH_VIEWS = 19   # ``[mine] view_normalise_stretch_face``: a face k
 def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up: np.ndarray, fields: dict,
                            alpha: float, unseen: np.ndarray | None = None, fit_scale: np.ndarray | None = None,
                            upright: np.ndarray | None = None, members: tuple | None = None,
-                           size: tuple | None = None) -> dict:
+                           size: tuple | None = None, cut: np.ndarray | None = None) -> dict:
     """``[mine] view_normalise_ratio``: the held-out views' ratios of their best to their second-best decision distance
     (``openset.best_second_ratio`` of D (Q, K), at the nearest prototype) and the split-conformal cut on the Fisher
     combination (``openset.fisher_combine``) of each view's calibrated score (of d (Q,) at its own prototype) and its
@@ -584,7 +591,13 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
     the same face kind there (``openset.mondrian_loo_pvalues``, fewer than ``MIN_FACE_STRETCH_VIEWS``: pooled; larger
     less conforming); returned: the sorted m ("unknown_view_size", per kind
     "unknown_view_size_canonical" / "_other"), the cut on the combination with it ("unknown_view_size_cut", with the
-    members' p-value when that is joined, "unknown_view_size_members" 1) and the other cuts as without it."""
+    members' p-value when that is joined, "unknown_view_size_members" 1) and the other cuts as without it.
+    ``cut`` (Q,) bool (``[mine] unknown_cut_split``; None: off): whether each view cuts its object off (the image border,
+    a nearer object); the split-conformal cut on the joined values is then also taken per stratum, the views that cut
+    their object off and the whole ones apart (a Mondrian split, Vovk, Gammerman & Shafer 2005: for a new view
+    exchangeable with its stratum's, P(flagged) <= alpha whatever the share of cut views among the views labelled),
+    returned as "unknown_view_ratio_cut_cut" / "unknown_view_ratio_cut_whole" when each stratum holds at least
+    ``MIN_FACE_STRETCH_VIEWS`` views ("unknown_view_ratio_cut" stays the pooled one)."""
     from .openset import (MIN_CLASS_MEMBER_VIEWS, best_second_ratio, fisher_combine_many, loo_ratio_pvalues,
                           mondrian_loo_pvalues, scale_stretch)
     D = np.where(np.isfinite(D), D, np.inf)
@@ -624,7 +637,13 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
                 if sel.sum() >= MIN_FACE_STRETCH_VIEWS:
                     out[f"unknown_view_stretch_{kind}"] = np.sort(x[sel])
         pu = pu + (px,)
-    out["unknown_view_ratio_cut"] = conformal_cut(fisher_combine_many(s, loo_ratio_pvalues(r), *pu), alpha)
+    joined = fisher_combine_many(s, loo_ratio_pvalues(r), *pu)
+    out["unknown_view_ratio_cut"] = conformal_cut(joined, alpha)
+    if cut is not None:   # ``[mine] unknown_cut_split``: the cut per stratum, views cutting their object off and whole ones
+        c = np.asarray(cut, bool)[ok]
+        if min(c.sum(), (~c).sum()) >= MIN_FACE_STRETCH_VIEWS:
+            out["unknown_view_ratio_cut_cut"] = conformal_cut(joined[c], alpha)
+            out["unknown_view_ratio_cut_whole"] = conformal_cut(joined[~c], alpha)
     if xm is not None and np.isfinite(xm).sum() > 1:
         has = np.isfinite(xm)
         order = np.lexsort((xm[has], b[has]))
