@@ -41,19 +41,19 @@ def _augmented(D, A):
 
 
 def _naive_key(D, A, k, w):
-    """The shortlist's key by the definition: (1 - w) x the Jaccard distance over the augmented graph + w x the
-    example's own distance divided by its largest (over the objects only)."""
+    """The shortlist's key by the definition: (1 - w) x the Jaccard distance over the augmented graph, the example's
+    vector without the anchors, + w x the example's own distance divided by its largest (over the objects only)."""
     aug = _augmented(D, A)
     big = 1e300
     finite = [[v if math.isfinite(v) else big for v in row] for row in aug]
-    dj = _naive_jaccard_inf(finite, k, big)
+    dj = _naive_jaccard_inf(finite, k, big, len(D))
     top = max(D[0])
     return [(1 - w) * dj[i] + w * D[0][i] / top for i in range(1, len(D))]
 
 
-def _naive_jaccard_inf(D, k, big):
+def _naive_jaccard_inf(D, k, big, m):
     """tests/test_find_rerank.py's twin, with a non-finite pair (read as ``big`` for the nearest-neighbour order)
-    given no weight: exp(-d / the row's largest finite distance) on the finite pairs only."""
+    given weight exp(0) and the example's (row 0's) set cut to the first m nodes (the objects)."""
     n = len(D)
 
     def nearest(i, kk):
@@ -70,7 +70,7 @@ def _naive_jaccard_inf(D, k, big):
             h = recip(q, max(1, k // 2))
             if 3 * len(h & r) >= 2 * len(h):
                 s |= h
-        star.append(s)
+        star.append(s if i else {j for j in s if j < m})
     vecs = []
     for i in range(n):
         top = max(v for v in D[i] if v < big)
