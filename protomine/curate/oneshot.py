@@ -359,9 +359,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     # fused with the ranking the example would fall back to (``knownclass.rank_fusion``)
     soft = k_soft > 0 and route is not None and route.taken and route.agree <= OVERRULE_AGREE_MAX
     if k_rr > 0 and (route is None or not route.taken or soft):   # k-reciprocal re-ranking of the shortlist (``curate.rerank``)
+        # ``[mine] find_rerank_anchors``: the prototypes as anchor nodes, by the route's search of every object (``Dk``)
+        anchor_d = Dk if route is not None and bool(cfg["mine"].get("find_rerank_anchors", False)) else None
         rerank = _reranked(store, ex, D, ranking_key(D, reverse), X1[0], W1[0], aspect, weights, scales, grid, k_rr,
                            int(cfg["mine"].get("find_rerank_shortlist", 48)),
-                           float(cfg["mine"].get("find_rerank_weight", 0.3)))
+                           float(cfg["mine"].get("find_rerank_weight", 0.3)), anchor_d)
     if soft:
         own = rerank if rerank is not None else ranking_key(D, reverse)
         route = replace(route, key=rank_fusion([route.key, own], np.asarray(store.ids).astype(str), ex, k_soft))
@@ -453,10 +455,12 @@ def _member_route(library: Library, store: ObjectStore, ex: int, route: KnownRou
 
 def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np.ndarray, w: np.ndarray, aspect: float,
               weights: tuple[float, float], scales: tuple[float, ...], grid: TiltGrid | None, k: int, n: int,
-              weight: float) -> np.ndarray | None:
+              weight: float, anchor_d: np.ndarray | None = None) -> np.ndarray | None:
     """``[mine] find_rerank``: the k-reciprocal key (N,) of the first ``n`` objects by ``key`` (ties by object id; the
     example and unmatched objects left out), the rest after them (``curate.rerank``); None with fewer than 2 to
-    re-rank.  x (C, R, A, H), w (R, A, H): the one-shot prototype, the example's row of the pairwise search is D."""
+    re-rank.  x (C, R, A, H), w (R, A, H): the one-shot prototype, the example's row of the pairwise search is D.
+    ``anchor_d`` (N, K): every store object's distance to the library's prototypes (the route's search), the
+    prototypes then anchor nodes of the re-ranking (``[mine] find_rerank_anchors``; ``curate.rerank``, 5.)."""
     short = _nearest(store, ex, key)[:n]
     if len(short) < 2:
         return None
@@ -464,7 +468,8 @@ def _reranked(store: ObjectStore, ex: int, D: np.ndarray, key: np.ndarray, x: np
     X = np.concatenate([x[None], Xs]); W = np.concatenate([w[None], Ws])
     aspects = np.concatenate([[aspect], _aspects(store, short)])
     pair = rerank_pairwise(X, W, aspects, scales, grid, np.concatenate([[0.0], D[short]]))
-    return reranked_key(key, short, pair, k, weight)
+    anchors = None if anchor_d is None or not np.asarray(anchor_d).shape[1] else np.asarray(anchor_d)[np.concatenate([[ex], short])]
+    return reranked_key(key, short, pair, k, weight, anchors)
 
 
 def _search(src, P: np.ndarray, V: np.ndarray, aspect: float, scales: tuple[float, ...], grid: TiltGrid | None,

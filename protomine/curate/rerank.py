@@ -19,6 +19,20 @@ example's class are near *each other* as well, from more sides than the example 
    S is ranked by d*; every object beyond S follows in its one-shot order.  The paper's local query expansion (k2)
    is not used (k2 = 3 lost the upright demo's draw: README "Find").
 
+5. Anchors (``[mine] find_rerank_anchors``).  The library's K prototypes join the neighbourhood graph as K more
+   nodes: the distance of the example or a shortlisted object to prototype c is its pose search against c (find's
+   route already searches every store object against every prototype: no search more), and two prototypes are never
+   each other's neighbours (inf).  The reciprocal sets, their expansion and the Jaccard distance (3., 4.) run over the
+   n + 1 + K nodes, but the example's own vector holds no anchor: the route did not take it, so the library claims it
+   for no class.  Only the example and the shortlist are ranked, and the mixed-in own distance stays the example's
+   divided distance over the shortlist (4.).  Why: the views that crowd a poor example's first places are views of
+   the classes the library has mined, and each lies next to its class's prototype, which then sits in its reciprocal
+   set and takes a share of its vector that the example's cannot match; a view of a never-mined class, like the
+   example, holds few.  The library's knowledge enters as neighbours, not as a decision (the label decision on a poor
+   view is where the route fails).  An example of a never-mined class that the view shows among a mined class's views
+   (in their reciprocal sets, as seed 0's trowel among the L brackets) would otherwise hold that class's anchor too
+   and pull its views up.
+
 Used only when the known-class route (``curate.knownclass``) does not rank: an example the route takes ranks by its
 prototype.  ``distance``, ``score``, ``both_ways`` and ``--add`` stay the one-shot search's.  Cost: n one-prototype
 searches of n + 1 objects (``rerank_pairwise``).
@@ -78,13 +92,16 @@ def expanded_sets(D: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
-def jaccard_distance(D: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+def jaccard_distance(D: np.ndarray, k: int, example_nodes: int | None = None) -> tuple[np.ndarray, np.ndarray]:
     """(d_J (n,), d (n,)): the Jaccard distance of row 0 (the example) to every row of D (n, n) by their k-reciprocal
-    vectors (module docstring, 3. and 4.), and row 0's distances divided by its largest finite one."""
+    vectors (module docstring, 3. and 4.), and row 0's distances divided by its largest finite one.  ``example_nodes``
+    = m: the example's vector holds the first m nodes only (the anchors of 5. after them left out of it)."""
     D = np.asarray(D, np.float64)
     big = np.where(np.isfinite(D), D, -np.inf).max(axis=1, keepdims=True)
     Dn = np.where(np.isfinite(D), D / np.maximum(big, 1e-12), np.inf)
     R = expanded_sets(np.where(np.isfinite(D), D, np.finfo(np.float64).max), k)
+    if example_nodes is not None:
+        R[0, int(example_nodes):] = False
     V = np.where(R, np.exp(-np.where(np.isfinite(Dn), Dn, 0.0)), 0.0)
     V /= np.maximum(V.sum(axis=1, keepdims=True), 1e-12)
     lo = np.minimum(V[0][None], V).sum(axis=1)
@@ -92,12 +109,38 @@ def jaccard_distance(D: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
     return 1.0 - lo / np.maximum(hi, 1e-12), Dn[0]
 
 
-def reranked_key(one_shot_key: np.ndarray, shortlist: np.ndarray, D: np.ndarray, k: int, weight: float) -> np.ndarray:
+def anchored(D: np.ndarray, anchors: np.ndarray) -> np.ndarray:
+    """Distances (n + 1 + K, n + 1 + K) over the example and shortlist of D (n + 1, n + 1) and K prototypes as anchor
+    nodes (module docstring, 5.): ``anchors`` (n + 1, K) the nodes' distances to the prototypes; prototype to
+    prototype inf (never neighbours), a zero diagonal."""
+    D = np.asarray(D, np.float64)
+    a = np.asarray(anchors, np.float64)
+    n1, K = a.shape
+    if len(D) != n1:
+        raise ValueError(f"anchors hold {n1} rows for {len(D)} nodes")
+    out = np.full((n1 + K, n1 + K), np.inf)
+    out[:n1, :n1] = D
+    out[:n1, n1:] = a
+    out[n1:, :n1] = a.T
+    np.fill_diagonal(out, 0.0)
+    return out
+
+
+def reranked_key(one_shot_key: np.ndarray, shortlist: np.ndarray, D: np.ndarray, k: int, weight: float,
+                 anchors: np.ndarray | None = None) -> np.ndarray:
     """The ranking key (N,) (ascending): the shortlist (n,) store rows ranked by (1 - weight) d_J + weight d over the
     pairwise distances D (n + 1, n + 1) (example first, then ``shortlist`` in order), then every other object by
-    ``one_shot_key`` offset past them (unmatched objects stay inf)."""
+    ``one_shot_key`` offset past them (unmatched objects stay inf).  ``anchors`` (n + 1, K): the prototypes as anchor
+    nodes of the Jaccard distance (module docstring, 5.); d stays row 0 of D divided by its largest."""
     base = np.asarray(one_shot_key, np.float64)
-    dj, dn = jaccard_distance(D, k)
+    if anchors is None:
+        dj, dn = jaccard_distance(D, k)
+    else:
+        n1 = len(D)
+        dj = jaccard_distance(anchored(D, anchors), k, example_nodes=n1)[0][:n1]
+        row = np.asarray(D, np.float64)[0]
+        big = float(np.where(np.isfinite(row), row, -np.inf).max())
+        dn = np.where(np.isfinite(row), row / max(big, 1e-12), np.inf)
     fin = (1.0 - weight) * dj[1:] + weight * np.where(np.isfinite(dn[1:]), dn[1:], 1.0)
     lowest = float(base[np.isfinite(base)].min()) if np.isfinite(base).any() else 0.0
     key = np.where(np.isfinite(base), base - lowest + 2.0, np.inf)
