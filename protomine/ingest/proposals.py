@@ -552,8 +552,7 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
 def _masked_under_cut(frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[np.ndarray]:
     """Per frame (M,) bool: the readings of a mask at or under the cut that ``[ingest] under_cut_parts`` keeps, as
     :func:`under_cut_parts` keeps them without masks: steady, over the low band's floor and in the frame's
-    smoothed band (``smoothed_band``), unlike the table's colour about them (``unlike_table``), and farther than
-    the grouping margin from every reading of the same mask
+    smoothed band (``smoothed_band``), and farther than the grouping margin from every reading of the same mask
     above the margin (every frame): a flat part reaching out from under the body, not the lowest millimetres of
     its walls."""
     cut, floor, margin = object_cut(plane, cfg), low_floor(plane), above_plane_margin(plane, cfg)
@@ -570,10 +569,6 @@ def _masked_under_cut(frames: list[FrameData], plane: PlaneFit, cfg: dict) -> li
         hf[fd.pixels] = h
         smooth = smoothed_band(hf.reshape(fd.depth.shape), fd.depth > 0, plane, margin).reshape(-1)[fd.pixels]
         low = (i > 0) & (h > floor) & (h <= cut) & fd.steady & smooth
-        free = np.ones(fd.depth.size, bool)
-        free[fd.pixels[i > 0]] = False
-        w = np.flatnonzero(low)
-        low[w] = unlike_table(fd.rgb, fd.pixels[w], table_chroma(fd.rgb, hf, floor, free))
         for oid in np.unique(i[low]):
             sel = np.flatnonzero(low & (i == oid))
             if int(oid) in trees:
@@ -648,37 +643,6 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     return [p for p in props if p is not None and p.frame.height >= c["min_object_height_m"]]
 
 
-TABLE_WINDOW = 31       # pixels: the window of the table's local colour (under_cut_parts, table_chroma)
-
-
-def table_chroma(rgb: np.ndarray, h: np.ndarray, floor: float, free: np.ndarray) -> np.ndarray:
-    """(H * W, 3) the support surface's local colour about each pixel of a frame: the mean chromaticity of the
-    readings in a TABLE_WINDOW square that lie on the plane (|height| at most ``floor``, bright enough to tell,
-    and ``free``: (H * W,) bool, held by no object); NaN where the window holds none.  rgb (H, W, 3), h (H * W,)."""
-    from scipy.ndimage import uniform_filter
-    shape = rgb.shape[:2]
-    x = rgb.reshape(-1, 3).astype(np.float64)
-    bright = x.sum(axis=1)
-    on = free & (np.abs(h) <= floor) & (bright >= DARK_RGB)
-    ch = np.where(on[:, None], x / np.maximum(bright, 1.0)[:, None], 0.0)
-    w = uniform_filter(on.reshape(shape).astype(np.float64), TABLE_WINDOW, mode="constant")
-    out = np.stack([uniform_filter(ch[:, k].reshape(shape), TABLE_WINDOW, mode="constant") for k in range(3)], -1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        out = out / w[..., None]
-    out[w <= 1e-9] = np.nan
-    return out.reshape(-1, 3)
-
-
-def unlike_table(rgb: np.ndarray, idx: np.ndarray, table: np.ndarray) -> np.ndarray:
-    """(len(idx),) bool: the pixels ``idx`` of a frame whose chromaticity lies farther than GROW_CHROMA from the
-    table's local colour ``table`` (``table_chroma``); a pixel too dark to tell or with no table about it counts as
-    unlike."""
-    x = rgb.reshape(-1, 3)[idx].astype(np.float64)
-    bright = x.sum(axis=1)
-    ch = np.where((bright >= DARK_RGB)[:, None], x / np.maximum(bright, 1.0)[:, None], np.nan)
-    return ~(np.linalg.norm(ch - table[idx], axis=1) <= GROW_CHROMA)
-
-
 CONTEST = 2.0           # under_cut_parts: x cluster_eps_m, the reach of an object of one colour that makes a reading contested
 UNDER_CUT = 1 << 30      # label offset of a reading at or under the cut that stays its object's (under_cut_parts)
 
@@ -701,8 +665,7 @@ def under_cut_parts(kept: list, plane: PlaneFit, cut: float, floor: float, margi
        they differ, the colours part them); one reached by two objects in one step joins neither.
     2. A reading at or under the cut, grown into or joined, stays its object's only where it lies in the frame's
        smoothed band (``smoothed_band``: the median of its window stands over the table's own smoothed noise, so
-       a speckle of the table's noise over the floor does not), its colour differs from the table's about it
-       (``table_chroma``, ``unlike_table``: an object of the table's colour keeps nothing under the cut) and farther than
+       a speckle of the table's noise over the floor does not) and farther than
        the ``margin`` from every reading of that object above the margin (every frame): a flat part reaching out
        from under the body (a base disc, a flange; under an overhanging peg too, which is higher than that).
        The lowest millimetres of the object's own walls lie within the margin of the wall above them and are
@@ -777,7 +740,6 @@ def under_cut_parts(kept: list, plane: PlaneFit, cut: float, floor: float, margi
         idx = np.flatnonzero((lab >= 0) & (h <= cut) & smooth)
         if not len(idx):
             continue
-        idx = idx[unlike_table(fd.rgb, idx, table_chroma(fd.rgb, h, floor, lab < 0))]
         pts = fd.points[po[idx]]
         stay = np.zeros(len(idx), bool)
         for i in np.unique(lab[idx]):
