@@ -528,10 +528,13 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
     above = object_cut(plane, cfg)
     per_id: dict[int, dict[str, np.ndarray]] = {}
     pts_id: dict[int, list[np.ndarray]] = {}
-    for fd in frames:
+    flat = _masked_under_cut(frames, plane, cfg) if cfg["ingest"].get("under_cut_parts", False) else None
+    for f, fd in enumerate(frames):
         ids = fd.mask.reshape(-1)[fd.pixels]
         h = plane.height(fd.points)
         keep = (ids > 0) & (h > above) & fd.steady
+        if flat is not None:
+            keep |= flat[f]
         for oid in np.unique(ids[keep]):
             sel = keep & (ids == oid)
             per_id.setdefault(int(oid), {})[fd.id] = fd.pixels[sel]
@@ -544,6 +547,34 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
         fr, centre = object_frame(pts, plane, outlier_sigma(cfg, len(per_id[oid])))
         props.append(Proposal(f"{cap.name}/{oid}", str(oid), fr, centre, len(pts), per_id[oid]))
     return props
+
+
+def _masked_under_cut(frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[np.ndarray]:
+    """Per frame (M,) bool: the readings of a mask at or under the cut that ``[ingest] under_cut_parts`` keeps, as
+    :func:`under_cut_parts` keeps them without masks: steady, over the low band's floor and in the frame's
+    smoothed band (``smoothed_band``), and farther than the grouping margin from every reading of the same mask
+    above the margin (every frame): a flat part reaching out from under the body, not the lowest millimetres of
+    its walls."""
+    cut, floor, margin = object_cut(plane, cfg), low_floor(plane), above_plane_margin(plane, cfg)
+    ids, hs = [fd.mask.reshape(-1)[fd.pixels] for fd in frames], [plane.height(fd.points) for fd in frames]
+    body: dict[int, list[np.ndarray]] = {}
+    for fd, i, h in zip(frames, ids, hs):
+        sel = (i > 0) & (h > margin) & fd.steady
+        for oid in np.unique(i[sel]):
+            body.setdefault(int(oid), []).append(fd.points[sel & (i == oid)])
+    trees = {oid: cKDTree(np.concatenate(b)) for oid, b in body.items()}
+    out = []
+    for fd, i, h in zip(frames, ids, hs):
+        hf = np.zeros(fd.depth.size)
+        hf[fd.pixels] = h
+        smooth = smoothed_band(hf.reshape(fd.depth.shape), fd.depth > 0, plane, margin).reshape(-1)[fd.pixels]
+        low = (i > 0) & (h > floor) & (h <= cut) & fd.steady & smooth
+        for oid in np.unique(i[low]):
+            sel = np.flatnonzero(low & (i == oid))
+            if int(oid) in trees:
+                low[sel] = trees[int(oid)].query(fd.points[sel], distance_upper_bound=margin)[0] > margin
+        out.append(low)
+    return out
 
 
 def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg: dict) -> list[Proposal]:
@@ -612,6 +643,114 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
     return [p for p in props if p is not None and p.frame.height >= c["min_object_height_m"]]
 
 
+CONTEST = 2.0           # under_cut_parts: x cluster_eps_m, the reach of an object of one colour that makes a reading contested
+UNDER_CUT = 1 << 30      # label offset of a reading at or under the cut that stays its object's (under_cut_parts)
+
+
+def under_cut_parts(kept: list, plane: PlaneFit, cut: float, floor: float, margin: float, label_chroma: np.ndarray,
+                    link: float) -> None:
+    """``[ingest] under_cut_parts``: a flat part whose top lies at or under the ingest's cut (a base disc 2-4 mm
+    thick) stays its object's, without masks.  ``kept``: per frame (FrameData, labels (H * W,) after the growth
+    into the low band, heights (H * W,), point_of, chromaticity (H * W, 3), growth band and smoothed band
+    (H * W,) bool); labels
+    are changed in place: a reading at or under ``cut`` that stays its object's gets ``UNDER_CUT`` + its label.
+
+    1. Across frames, in 3-D: the readings of the frames' low bands (from ``floor`` to the grouping ``margin``,
+       steady, of a known colour) that no growth in their own frame reached (where the image border, a neighbour
+       or the object's own post parts them from the body in that frame) are grown into from every object's
+       readings (all frames, all heights), one ``link`` (m) step at a time, up to LOW_GROW_M: a reading joins
+       object i when it lies within ``link`` of i's readings or of those joined before, is within GROW_CHROMA of
+       i's colour, and no reading of another object of its colour lies within 2 ``link`` of it (never a
+       neighbour's: where two bases of one colour meet nothing joins, and the growth cannot pass there; where
+       they differ, the colours part them); one reached by two objects in one step joins neither.
+    2. A reading at or under the cut, grown into or joined, stays its object's only where it lies in the frame's
+       smoothed band (``smoothed_band``: the median of its window stands over the table's own smoothed noise, so
+       a speckle of the table's noise over the floor does not) and farther than
+       the ``margin`` from every reading of that object above the margin (every frame): a flat part reaching out
+       from under the body (a base disc, a flange; under an overhanging peg too, which is higher than that).
+       The lowest millimetres of the object's own walls lie within the margin of the wall above them and are
+       left to the cut as with masks; the table's readings next to a rim stay out, as the growth crosses only
+       the band between the noise floor and the margin, within the object's colour."""
+    n = len(label_chroma)
+    if n == 0:
+        return
+    body = [[] for _ in range(n)]                   # each object's readings above the margin (3-D)
+    every = [[] for _ in range(n)]                  # all its readings (3-D)
+    cand_pts, cand_at, cand_ch = [], [], []
+    for f, (fd, lab, h, po, ch, band, _) in enumerate(kept):
+        idx = np.flatnonzero(lab >= 0)
+        pts, hh, ll = fd.points[po[idx]], h[idx], lab[idx]
+        for i in np.unique(ll):
+            mine = ll == i
+            body[i].append(pts[mine & (hh > margin)])
+            every[i].append(pts[mine])
+        c = np.flatnonzero((lab < 0) & band & (h > floor) & (h <= margin) & (po >= 0) & ~np.isnan(ch[:, 0]))
+        cand_pts.append(fd.points[po[c]])
+        cand_at.append(np.stack([np.full(len(c), f), c], 1))
+        cand_ch.append(ch[c])
+    every_t = [cKDTree(np.concatenate(e)) if e else None for e in every]
+    body_t = [cKDTree(np.concatenate(e)) if e and sum(len(x) for x in e) else None for e in body]
+    P, at, C = np.concatenate(cand_pts), np.concatenate(cand_at), np.concatenate(cand_ch)
+    if len(P):
+        # each candidate's owner by colour and reach; contested: within 2 link of the readings of two objects
+        # whose colours it has both (joins none, the growth stops there); -2: reached by two in one step
+        owner = np.full(len(P), -1)
+        near_any = np.zeros((len(P), n), bool)
+        for i in range(n):
+            if every_t[i] is not None:
+                near_any[:, i] = every_t[i].query(P, distance_upper_bound=CONTEST * link)[0] <= CONTEST * link
+        colour_ok = np.stack([np.linalg.norm(C - label_chroma[i], axis=1) <= GROW_CHROMA for i in range(n)], 1)
+        reach_ok = np.stack([(every_t[i].query(P, distance_upper_bound=LOW_GROW_M)[0] <= LOW_GROW_M)
+                             if every_t[i] is not None else np.zeros(len(P), bool) for i in range(n)], 1)
+        contested = (near_any & colour_ok).sum(axis=1) > 1
+        tree = cKDTree(P)
+        frontier = []
+        for i in range(n):
+            if every_t[i] is None:
+                frontier.append(np.zeros(0, int))
+                continue
+            hit = np.flatnonzero(every_t[i].query(P, distance_upper_bound=link)[0] <= link)
+            frontier.append(hit)
+        while any(len(x) for x in frontier):
+            claim = np.full(len(P), -1)
+            for i in range(n):
+                if not len(frontier[i]):
+                    continue
+                cand = frontier[i]
+                cand = cand[(owner[cand] == -1) & colour_ok[cand, i] & reach_ok[cand, i] & ~contested[cand]]
+                cand = np.unique(cand)
+                both = claim[cand] >= 0
+                claim[cand[both]] = -2
+                claim[cand[~both]] = i
+            new = np.flatnonzero(claim >= 0)
+            owner[claim == -2] = -2
+            owner[new] = claim[new]
+            nxt = []
+            for i in range(n):
+                mine = new[claim[new] == i]
+                if len(mine):
+                    nb = tree.query_ball_point(P[mine], link)
+                    nxt.append(np.unique(np.concatenate([np.asarray(x, int) for x in nb])))
+                else:
+                    nxt.append(np.zeros(0, int))
+            frontier = nxt
+        for k in np.flatnonzero(owner >= 0):
+            kept[at[k, 0]][1][at[k, 1]] = owner[k]
+    for fd, lab, h, po, _, _, smooth in kept:
+        idx = np.flatnonzero((lab >= 0) & (h <= cut) & smooth)
+        if not len(idx):
+            continue
+        pts = fd.points[po[idx]]
+        stay = np.zeros(len(idx), bool)
+        for i in np.unique(lab[idx]):
+            mine = lab[idx] == i
+            if body_t[i] is None:
+                stay[mine] = True
+            else:
+                stay[mine] = body_t[i].query(pts[mine], distance_upper_bound=margin)[0] > margin
+        lab[idx[stay]] += UNDER_CUT
+
+
 def _seam_readings(frames: list[FrameData], above_sel: list[np.ndarray], inv: np.ndarray) -> list:
     """Per frame ((h, w), pixels (m,), voxels (m,), depth (m,)) of its readings above the plane, for
     ``convexity.seam_steps``; inv: (M,) voxel of every selected reading, frames concatenated."""
@@ -671,13 +810,14 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         sel = (lab_all == i) & ~np.isnan(ch_all[:, 0])
         if sel.any():
             label_chroma[i] = np.median(ch_all[sel], axis=0)
+    kept = []      # per frame (frame, labels (H * W,), heights, point_of, chromaticity, growth band, smoothed band)
     for fd, s, labels, ch in zip(frames, above_sel, seeds_of, chroma_of):
         h = np.zeros(fd.depth.size)
         h[fd.pixels] = plane.height(fd.points)
         steady = np.zeros(fd.depth.size, bool)
         steady[fd.pixels] = fd.steady
-        band = ((h > floor).reshape(fd.depth.shape) | smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane,
-                                                                               above_plane_margin(plane, cfg)))
+        smooth = smoothed_band(h.reshape(fd.depth.shape), fd.depth > 0, plane, above_plane_margin(plane, cfg))
+        band = (h > floor).reshape(fd.depth.shape) | smooth
         point_of = point_of_frame(fd)
         labels = _release_low_strays(labels, h, fd, point_of, ch, label_chroma, own_trees,
                                      np.inf if cfg["ingest"].get("crumb_grow", False) else SUPPORT_BAND_M)
@@ -703,9 +843,16 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
             near, own = tree_lab[jn], labels[new]
             alike = ~(np.linalg.norm(label_chroma[near] - label_chroma[own], axis=1) > GROW_CHROMA)   # NaN: alike
             labels[new[(near != own) & alike]] = -1
+        kept.append((fd, labels, h, point_of, ch, grow_band.reshape(-1), smooth.reshape(-1)))
+    cut = object_cut(plane, cfg)
+    if cfg["ingest"].get("under_cut_parts", False):
+        under_cut_parts(kept, plane, cut, floor, above_plane_margin(plane, cfg), label_chroma, eps)
+    for fd, labels, h, point_of, *_ in kept:
         # like a mask's pixels: readings from half the grouping margin up (the band under it only carried
-        # the growth across a base's low rim; lower readings are the table's as much as the object's)
-        labels[h <= object_cut(plane, cfg)] = -1
+        # the growth across a base's low rim; lower readings are the table's as much as the object's), but with
+        # ``[ingest] under_cut_parts`` a flat part beyond the footprint above the cut (``under_cut_parts``)
+        labels[(h <= cut) & (labels < UNDER_CUT)] = -1
+        labels[labels >= UNDER_CUT] -= UNDER_CUT
         for i, p in enumerate(props):
             pix = np.flatnonzero(labels == i)
             if len(pix):
