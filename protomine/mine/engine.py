@@ -1436,6 +1436,7 @@ class PoseKMeans:
             self.rotation_ = np.swapaxes(res.pre, 1, 2) @ self.rotation_
             self.up_ = self.rotation_[:, 2, :]
         self.polished_ = np.zeros(len(res.labels), bool)
+        fit_rotation = self.rotation_.copy()  # the faces' symmetry is read where the fit's members put the faces
         if grid is not None and self.pose_polish:  # every member's pose searched again against its final prototype
             self.rotation_, self.polished_ = _polished_rotations(
                 source, res.labels, res.dist, self.rotation_, self.prototypes_, self.prototype_weights_, res.aspect,
@@ -1464,9 +1465,16 @@ class PoseKMeans:
                 sel = np.flatnonzero(res.labels == k)
                 if len(reps) > 1 and len(sel):
                     self.rotation_[sel] = sym.reduce_modulo_group(self.rotation_[sel], sym.group_elements(reps, symm[k]))
+                    if self.polished_.any():
+                        fit_rotation[sel] = sym.reduce_modulo_group(fit_rotation[sel], sym.group_elements(reps, symm[k]))
             self.up_ = self.rotation_[:, 2, :]
             ups, counts, self.face_ = faces.group_faces(self.up_, res.labels, self.n_clusters)
-            fsym = faces.face_symmetries(bank, ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol,
+            test_ups = ups
+            if self.polished_.any():  # a face the fit's poses had too is tested at the fit's up (the polish leaves the
+                # faces' symmetry as it was: a face copy's reading moves with a few degrees of its up)
+                fit_ups = faces.group_faces(fit_rotation[:, 2, :], res.labels, self.n_clusters)[0]
+                test_ups = [faces.nearest_faces(u, fu) for u, fu in zip(ups, fit_ups)]
+            fsym = faces.face_symmetries(bank, test_ups, noise, symm, factor=self.symmetry_factor, tol=self.symmetry_tol,
                                          break_effect=float(FACE_BREAK_EFFECT),
                                          run=pooled)
         self.faces_ = {"up": ups, "count": counts, "symmetry": fsym}
