@@ -11,6 +11,7 @@ from scipy.spatial.transform import Rotation
 from protomine import rotations as rot
 from protomine.mine import engine
 from protomine.mine.engine import ArraySource, _polished_rotations
+from protomine.mine.posesearch import pose_distances
 from protomine.mine.tilts import TiltBank, TiltGrid
 
 from test_tilts import MARGINS, _posed
@@ -38,16 +39,15 @@ def _members():
 def test_polish_finds_members_left_upright_at_their_rotation():
     P, V, aspect, X, W, a, grid = _members()
     # the fit left every member upright (identity tilt) at its best yaw against the prototype itself: a coarse basin
-    from protomine.mine.posesearch import pose_distances
     m = pose_distances(X, W, P[None], V[None], scales=SCALES)
     start = rot.tilt_yaw_to_matrix(np.array([[0.0, 0.0, 1.0]] * len(X)), m.yaw_deg[:, 0])
     err_start = rot.geodesic_deg(start, np.stack(ROTATIONS))
     R, moved = _polished_rotations(ArraySource(X, W, a), np.zeros(len(X), np.int64), m.D[:, 0].astype(np.float64),
                                    start, P[None], V[None], np.array([aspect]), SCALES, grid, chunk_size=2)
     err = rot.geodesic_deg(R, np.stack(ROTATIONS))
-    # the members left upright are 41-180 deg from their true rotations; polished on the finest level (14.7 deg apart, Gorski et al.
-    # 2005) and then N_side 8 and 16 (7.3 and 3.7 deg apart) measured 1.1-6.2 deg, mean 4.0 (the tilt search alone on
-    # these five: 0.1-9.4, mean 4.0): the bar is about 2x the worst
+    # the members left upright are 41-180 deg from their true rotations; polished on the finest level (14.7 deg
+    # apart, Gorski et al. 2005) and then N_side 8 and 16 (7.3 and 3.7 deg apart) measured 1.1-6.2 deg, mean 4.0
+    # (the tilt search alone on these five: 0.1-9.4, mean 4.0): the bar is about 2x the worst
     assert moved.all(), moved
     assert err.max() < 12.0, (err, err_start)
     assert err_start.min() > 40.0, err_start
@@ -68,9 +68,18 @@ def test_polish_leaves_a_member_whose_fit_is_already_as_near():
     for i in range(len(X)):
         up, yaw = rot.matrix_to_tilt_yaw(R[i])
         Pc, Vc = bank.copy_at(0, up)
-        from protomine.mine.posesearch import pose_distances
         d.append(float(pose_distances(X[i:i + 1], W[i:i + 1], Pc[None], Vc[None], scales=SCALES).D[0, 0]))
     R2, moved2 = _polished_rotations(src, labels, np.array(d) * (1.0 - 0.5 * engine.POLISH_MARGIN), start, P[None],
                                      V[None], np.array([aspect]), SCALES, grid, chunk_size=8)
     assert not moved2.any()
     np.testing.assert_array_equal(R2, start)
+
+
+def test_nearest_faces_takes_the_fit_face_within_the_radius():
+    from protomine.mine.faces import FACE_RADIUS_DEG, nearest_faces
+    # worked by hand: +z stays; x moved 14 deg about z is within 25 deg of x; y is 90 deg from every other face
+    ups = np.array([[0.0, 0.0, 1.0], [1.0, 0.0, 0.0], [0.0, 1.0, 0.0]])
+    t = np.deg2rad(14.0)
+    others = np.array([[0.0, 0.0, 1.0], [np.cos(t), np.sin(t), 0.0], [0.0, 0.0, -1.0]])
+    out = nearest_faces(ups, others, FACE_RADIUS_DEG)
+    np.testing.assert_allclose(out, [[0, 0, 1], [np.cos(t), np.sin(t), 0], [0, 1, 0]])
