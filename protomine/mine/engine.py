@@ -1051,6 +1051,9 @@ def _synced_prototypes(source: Source, res: _Result, scales: tuple[float, ...], 
 POLISH_MARGIN = 0.02      # pose_polish: a member takes the polished pose only when its distance is below this share under
                           # the fit's (0.02 measured best of 0 / 0.02 / 0.05 / 0.1 on four demo libraries: README "Members' poses
                           # polished against the final prototypes")
+POLISH_MIN_TURN_DEG = 20.0  # pose_polish: a member takes the polished pose only when it turns it by more than this many
+                          # degrees (geodesic) from the fit's: the polish corrects basins the search missed, not its fine
+                          # step (0 / 10 / 20 measured: README "Members' poses polished"; 0 lost on the upright demo)
 POLISH_NSIDES = (8, 16)   # pose_polish: the local levels around a tilted member's best finest-level direction (7.3 and
                           # 3.7 degrees apart)
 
@@ -1104,8 +1107,11 @@ def _polished_rotations(source: Source, labels: np.ndarray, dist: np.ndarray, ro
                         if q.D[0, j] < d:
                             u, d, y = cand[j], float(q.D[0, j]), float(q.yaw_deg[0, j])
                 if d < (1.0 - POLISH_MARGIN) * float(dist[r]):
-                    R[r] = rot.tilt_yaw_to_matrix(u, y)
-                    moved[r] = True
+                    Rn = rot.tilt_yaw_to_matrix(u, y)
+                    turn = np.degrees(np.arccos(np.clip((np.trace(Rn.T @ rotation[r]) - 1.0) / 2.0, -1.0, 1.0)))
+                    if turn > POLISH_MIN_TURN_DEG:
+                        R[r] = Rn
+                        moved[r] = True
     return R, moved
 
 
