@@ -66,6 +66,20 @@ def group_faces(up: np.ndarray, labels: np.ndarray, K: int, radius_deg: float = 
     return ups, counts, face
 
 
+def nearest_faces(ups: np.ndarray, others: np.ndarray, radius_deg: float = FACE_RADIUS_DEG) -> np.ndarray:
+    """Face ups (F, 3) each replaced by the nearest of ``others`` (G, 3) when that lies within ``radius_deg`` (the
+    first, +z, stays +z)."""
+    ups = np.array(ups, np.float64, copy=True)
+    others = np.asarray(others, np.float64).reshape(-1, 3)
+    if not len(others):
+        return ups
+    cos = ups[1:] @ others.T
+    j = np.argmax(cos, axis=1)
+    near = cos[np.arange(len(j)), j] >= np.cos(np.deg2rad(radius_deg))
+    ups[1:][near] = others[j[near]]
+    return ups
+
+
 def face_symmetries(bank, face_ups: list[np.ndarray], noise: np.ndarray, canonical: np.ndarray, *,
                     factor: float = sym.DEFAULT_FACTOR, tol: float = sym.DEFAULT_TOL, run=None,
                     break_effect: float = 0.0) -> list[np.ndarray]:
