@@ -5,7 +5,6 @@ ceil((n + 1)(1 - alpha))-th smallest nonconformity), the joined value being Fish
 scipy.stats.combine_pvalues); ingest keeps whether each held-out view cuts its object off (the store's single/cut)."""
 from __future__ import annotations
 
-import math
 import shutil
 
 import h5py
@@ -15,20 +14,7 @@ from scipy import stats
 from protomine.mine.library import Library
 from protomine.mine.openset import best_second_ratio
 from protomine.mine.pipeline import MIN_FACE_STRETCH_VIEWS, view_calibrated_fields, view_ratio_calibration
-
-
-def _loo(v):   # each value's p-value among all, itself counted: #{j: v_j >= v_i} / m (written out)
-    return np.array([np.mean(v >= w) for w in v])
-
-
-def _fisher(*ps):   # scipy's Fisher combination, one view at a time
-    return np.array([stats.combine_pvalues(list(p), method="fisher")[1] for p in zip(*ps)])
-
-
-def _cut(values, alpha):   # split-conformal cut from its definition: the ceil((n + 1)(1 - alpha))-th largest value
-    v = np.sort(np.asarray(values))[::-1]
-    r = math.ceil((len(v) + 1) * (1 - alpha) - 1e-9)
-    return 0.0 if r > len(v) else float(v[r - 1])
+from test_size_score import _cut, _fisher, _loo   # the split-conformal cut, Fisher's combination, the p-values, written out
 
 
 def _heldout(rng, n, cut_share=0.3):

@@ -46,44 +46,9 @@ def _naive_key(D, A, k, w):
     aug = _augmented(D, A)
     big = 1e300
     finite = [[v if math.isfinite(v) else big for v in row] for row in aug]
-    dj = _naive_jaccard_inf(finite, k, big, len(D))
+    dj = _naive_jaccard(finite, k, big, len(D))
     top = max(D[0])
     return [(1 - w) * dj[i] + w * D[0][i] / top for i in range(1, len(D))]
-
-
-def _naive_jaccard_inf(D, k, big, m):
-    """tests/test_find_rerank.py's twin, with a non-finite pair (read as ``big`` for the nearest-neighbour order)
-    given weight exp(0) and the example's (row 0's) set cut to the first m nodes (the objects)."""
-    n = len(D)
-
-    def nearest(i, kk):
-        return set(sorted(range(n), key=lambda j: (D[i][j], j))[:kk + 1])
-
-    def recip(i, kk):
-        return {j for j in nearest(i, kk) if i in nearest(j, kk)}
-
-    star = []
-    for i in range(n):
-        r = recip(i, k)
-        s = set(r)
-        for q in r:
-            h = recip(q, max(1, k // 2))
-            if 3 * len(h & r) >= 2 * len(h):
-                s |= h
-        star.append(s if i else {j for j in s if j < m})
-    vecs = []
-    for i in range(n):
-        top = max(v for v in D[i] if v < big)
-        wts = {j: (math.exp(-D[i][j] / top) if D[i][j] < big else 1.0) for j in star[i]}
-        tot = sum(wts.values())
-        vecs.append({j: v / tot for j, v in wts.items()})
-    out = []
-    for i in range(n):
-        keys = set(vecs[0]) | set(vecs[i])
-        lo = sum(min(vecs[0].get(j, 0.0), vecs[i].get(j, 0.0)) for j in keys)
-        hi = sum(max(vecs[0].get(j, 0.0), vecs[i].get(j, 0.0)) for j in keys)
-        out.append(1.0 - lo / hi)
-    return out
 
 
 def test_anchored_table_is_the_definition():

@@ -22,8 +22,10 @@ from protomine.curate.rerank import jaccard_distance, reranked_key, symmetrised
 from test_find_expansion import _cfg as _base_cfg, _library, _scene
 
 
-def _naive_jaccard(D: np.ndarray, k: int) -> list[float]:
-    """Zhong et al.'s Jaccard distance of row 0 to every row, from the definitions (eq. 3-10), loops and sets."""
+def _naive_jaccard(D: np.ndarray, k: int, big: float = math.inf, m: int | None = None) -> list[float]:
+    """Zhong et al.'s Jaccard distance of row 0 to every row, from the definitions (eq. 3-10), loops and sets.
+    tests/test_find_anchors.py's use: a pair at ``big`` (non-finite, read as ``big`` for the nearest-neighbour order)
+    weighs exp(0), and the example's (row 0's) set is cut to the first ``m`` nodes (the objects)."""
     n = len(D)
 
     def nearest(i, kk):              # i's kk + 1 nearest, itself included, ties by index
@@ -40,11 +42,11 @@ def _naive_jaccard(D: np.ndarray, k: int) -> list[float]:
             h = recip(q, max(1, k // 2))
             if 3 * len(h & r) >= 2 * len(h):
                 s |= h
-        star.append(s)
+        star.append(s if i or m is None else {j for j in s if j < m})
     vecs = []
     for i in range(n):
-        top = max(D[i][j] for j in range(n))
-        w = {j: math.exp(-D[i][j] / top) for j in star[i]}
+        top = max(v for v in D[i] if v < big)
+        w = {j: (math.exp(-D[i][j] / top) if D[i][j] < big else 1.0) for j in star[i]}
         tot = sum(w.values())
         vecs.append({j: v / tot for j, v in w.items()})
     out = []
