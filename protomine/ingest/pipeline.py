@@ -88,9 +88,10 @@ def object_records(scene: SceneObjects, cfg: dict, grid: Grid, frame_ids: list[s
             singles.append((fid, lift(scene.views(p, [fid], others=grid.reads_others), sframe, grid)))
             cams.append(view_camera(sframe.up, centre, fd.cam_to_world))
             sizes.append(np.array([sframe.radius, sframe.height], np.float64))   # the label stage's size_m of this view
-            held = scene.held(fd).copy()   # does the view cut its object off (the image border, a nearer object), as the
-            held[p.pixels[fid]] -= 1       # label stage's lift_frame finds it (ingest.truncation.cut_pixels)
-            cuts.append(bool(cut_pixels(p.pixels[fid], fd.depth, (held > 0).reshape(fd.depth.shape)).any()))
+            # does the view cut its object off (the image border, a nearer object), as the label stage's lift_frame
+            # finds it (ingest.truncation.cut_pixels)
+            others = scene.others_held(fd, p.pixels[fid]).reshape(fd.depth.shape)
+            cuts.append(bool(cut_pixels(p.pixels[fid], fd.depth, others).any()))
         out.append(ObjectRecord(
             id=p.object_id, capture=scene.capture.name, key=p.key, origin=p.frame.origin, up=p.frame.up,
             center=p.center_world, radius_m=p.frame.radius, height_m=p.frame.height, n_points=p.n_points,

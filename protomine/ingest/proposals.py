@@ -97,11 +97,15 @@ class SceneObjects:
             if fd.id in p.pixels and (frame_ids is None or fd.id in frame_ids):
                 theirs = None
                 if others:
-                    theirs = self.held(fd).copy()
-                    theirs[p.pixels[fd.id]] -= 1
-                    theirs = theirs > 0
+                    theirs = self.others_held(fd, p.pixels[fd.id])
                 out.append(View(fd.depth, fd.rgb, K, fd.cam_to_world, p.pixels[fd.id], fd.flying, theirs, self.cut_m))
         return out
+
+    def others_held(self, fd: FrameData, pixels: np.ndarray) -> np.ndarray:
+        """(H * W,) bool: the pixels of frame ``fd`` that a proposal other than the one holding ``pixels`` holds."""
+        theirs = self.held(fd).copy()
+        theirs[pixels] -= 1
+        return theirs > 0
 
     def held(self, fd: FrameData) -> np.ndarray:
         """(H * W,) how many proposals hold each pixel of frame ``fd`` (counted once a frame)."""

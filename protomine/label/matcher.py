@@ -671,10 +671,8 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
         centre = np.asarray(p.frame.origin, np.float64) + 0.5 * float(p.frame.height) * np.asarray(p.frame.up, np.float64)
         cams.append(view_camera(p.frame.up, centre, fd.cam_to_world) if fd is not None else np.zeros(3))
         if view_cuts:
-            held = scene.held(fd).copy()
-            held[pix] -= 1
-            cuts.append(view_cut(fd.depth, scene.capture.intrinsics.K, fd.cam_to_world, pix, held > 0, p.frame.origin,
-                                 p.frame.up, p.frame.radius, p.frame.height))
+            cuts.append(view_cut(fd.depth, scene.capture.intrinsics.K, fd.cam_to_world, pix, scene.others_held(fd, pix),
+                                 p.frame.origin, p.frame.up, p.frame.radius, p.frame.height))
         # geometry-only proposals are numbered per frame, so their ids name the frame too
         oid = f"{scene.capture.name}/{frame_id}/{p.key}" if geometry_ids else p.object_id
         # the picture's extent: the whole mask region when masks name the object (pixels without a depth
@@ -700,9 +698,7 @@ def _cut_frames(scene: SceneObjects, fd, p, pix: np.ndarray, points: np.ndarray,
                 offsets: tuple[float, ...]) -> list:
     """len(offsets) object frames of proposal ``p`` in frame ``fd``: its visible circle moved toward where the view
     cuts it off (``ingest.truncation``); ``p.frame`` repeated when the view does not cut it."""
-    held = scene.held(fd).copy()
-    held[pix] -= 1
-    cut = cut_pixels(pix, fd.depth, (held > 0).reshape(fd.depth.shape))
+    cut = cut_pixels(pix, fd.depth, scene.others_held(fd, pix).reshape(fd.depth.shape))
     on_cut = np.zeros(fd.depth.size, bool)
     on_cut[pix[cut]] = True
     d = cut_direction(points, on_cut[point_pixels], p.frame.origin, p.frame.up)

@@ -1108,8 +1108,7 @@ def _polished_rotations(source: Source, labels: np.ndarray, dist: np.ndarray, ro
                             u, d, y = cand[j], float(q.D[0, j]), float(q.yaw_deg[0, j])
                 if d < (1.0 - POLISH_MARGIN) * float(dist[r]):
                     Rn = rot.tilt_yaw_to_matrix(u, y)
-                    turn = np.degrees(np.arccos(np.clip((np.trace(Rn.T @ rotation[r]) - 1.0) / 2.0, -1.0, 1.0)))
-                    if turn > POLISH_MIN_TURN_DEG:
+                    if float(rot.geodesic_deg(Rn, rotation[r])) > POLISH_MIN_TURN_DEG:
                         R[r] = Rn
                         moved[r] = True
     return R, moved
@@ -1441,12 +1440,14 @@ class PoseKMeans:
         if res.pre is not None:  # members matched turned onto their own face: object <- copy <- prototype
             self.rotation_ = np.swapaxes(res.pre, 1, 2) @ self.rotation_
             self.up_ = self.rotation_[:, 2, :]
+        # the final prototypes' tilted copies: the polish and the 3-D symmetry tests read the same bank
+        bank = None if grid is None else TiltBank(self.prototypes_, self.prototype_weights_, res.aspect, scales, grid)
         self.polished_ = np.zeros(len(res.labels), bool)
         fit_rotation = self.rotation_.copy()  # the faces' symmetry is read where the fit's members put the faces
         if grid is not None and self.pose_polish:  # every member's pose searched again against its final prototype
             self.rotation_, self.polished_ = _polished_rotations(
                 source, res.labels, res.dist, self.rotation_, self.prototypes_, self.prototype_weights_, res.aspect,
-                scales, grid, self.chunk_size)
+                scales, grid, self.chunk_size, bank=bank)
             self.up_ = self.rotation_[:, 2, :]
         if grid is None:
             self.symmetry_rotations_ = [np.eye(3)[None] for _ in range(self.n_clusters)]
@@ -1454,7 +1455,6 @@ class PoseKMeans:
             fsym = [np.full(len(u), symm[k], np.int64) for k, u in enumerate(ups)]
         else:
             noise = sym.mean_variance(*res.moments).mean(axis=(1, 2, 3, 4))
-            bank = TiltBank(self.prototypes_, self.prototype_weights_, res.aspect, scales, grid)
             # symmetries that move up (a box tipped onto an equal side): poses modulo them before the faces
             self.symmetry_rotations_ = []
 
