@@ -755,93 +755,6 @@ def under_cut_parts(kept: list, plane: PlaneFit, cut: float, floor: float, margi
         lab[idx[stay]] += UNDER_CUT
 
 
-FUSED_CELL = 1.0 / 3.0   # low_band_fused: x cluster_eps_m, the voxel of the fused low band
-FUSED_EDGE = 0.5         # ... x cluster_eps_m: two of its voxels this close are neighbours on a path
-
-
-def low_band_fused(kept: list, plane: PlaneFit, floor: float, margin: float, label_chroma: np.ndarray,
-                   link: float) -> int:
-    """``[ingest] low_band_fused``: the low band's readings that the frames' growth gave to an object go to the
-    object nearest to them along the fused low band, the same in every frame, not to the one whose growth
-    reached them first in each frame.  ``kept`` as in :func:`under_cut_parts` (labels changed in place); returns
-    the number of readings whose object changed.
-
-    The readings of every frame between the noise floor and ``margin`` + ``link`` that an object holds are fused
-    in the world frame (voxels of FUSED_CELL x ``link``, their mean chromaticity); two voxels FUSED_EDGE x ``link``
-    apart are neighbours.  Each object's body, its readings higher than ``margin`` + ``link`` (higher than the
-    noise peaks of a base's rim, which the grouping may give to a neighbour), reaches the voxels within ``link``
-    of it at that distance; from there the shortest path runs through the voxels of its colour (within
-    GROW_CHROMA of its median chromaticity), up to LOW_GROW_M (Dijkstra, scipy).  A low reading (at or under
-    ``margin``) goes to the object of the shortest path to its voxel (a geodesic Voronoi partition of the
-    fused band); a voxel no path reaches, or two within 1 mm alike, keeps what each frame gave it.
-
-    Why: the growth of one frame runs from the body pixels that frame sees; where a neighbour hides an object's
-    foot, or the image border cuts it, the neighbour's growth of its colour takes the object's base (two posts
-    of near one colour, chromaticity 0.036 apart, on touching 3 mm discs: 155 readings of one disc to the
-    other post in 4 of 5 frames).  Fused over the frames, the base lies along the path from its own foot."""
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import dijkstra
-    n = len(label_chroma)
-    if n < 2:
-        return 0
-    top = margin + link
-    body = [[] for _ in range(n)]
-    pts, at, chs, low = [], [], [], []
-    for f, (fd, lab, h, po, ch, _, _) in enumerate(kept):
-        idx = np.flatnonzero((lab >= 0) & (po >= 0))
-        ll, hh = lab[idx], h[idx]
-        p = fd.points[po[idx]]
-        for i in np.unique(ll[hh > top]):
-            body[i].append(p[(hh > top) & (ll == i)])
-        band = (hh > floor) & (hh <= top)
-        pts.append(p[band])
-        at.append(np.stack([np.full(int(band.sum()), f), idx[band]], 1))
-        chs.append(ch[idx[band]])
-        low.append(hh[band] <= margin)
-    P, at, C, low = np.concatenate(pts), np.concatenate(at), np.concatenate(chs), np.concatenate(low)
-    if not low.any():
-        return 0
-    nv, inv = voxel_index(P, FUSED_CELL * link)
-    cnt = np.bincount(inv, minlength=nv).astype(np.float64)
-    V = np.stack([np.bincount(inv, P[:, k], nv) for k in range(3)], 1) / cnt[:, None]
-    ok = ~np.isnan(C[:, 0])
-    vc = np.stack([np.bincount(inv[ok], C[ok, k], nv) for k in range(3)], 1)
-    vn = np.bincount(inv[ok], minlength=nv).astype(np.float64)
-    vc = np.where(vn[:, None] > 0, vc / np.maximum(vn, 1.0)[:, None], np.nan)
-    pairs = cKDTree(V).query_pairs(FUSED_EDGE * link, output_type="ndarray")
-    dist = np.full((n, nv), np.inf)
-    for i in range(n):
-        if not body[i] or np.isnan(label_chroma[i, 0]):
-            continue
-        # the voxels of the object's colour (a dark voxel, of no colour, is nobody's to refuse)
-        allowed = ~(np.linalg.norm(vc - label_chroma[i], axis=1) > GROW_CHROMA)
-        d0 = cKDTree(np.concatenate(body[i])).query(V, distance_upper_bound=link)[0]
-        start = np.flatnonzero(np.isfinite(d0) & allowed)
-        if not len(start):
-            continue
-        e = pairs[allowed[pairs[:, 0]] & allowed[pairs[:, 1]]]
-        ew = np.linalg.norm(V[e[:, 0]] - V[e[:, 1]], axis=1) + 1e-9
-        # one source node (index nv) joined to the voxels the body reaches, at their distance
-        rows = np.concatenate([e[:, 0], np.full(len(start), nv)])
-        cols = np.concatenate([e[:, 1], start])
-        g = coo_matrix((np.concatenate([ew, d0[start] + 1e-9]), (rows, cols)), shape=(nv + 1, nv + 1)).tocsr()
-        dist[i] = dijkstra(g, directed=False, indices=nv, limit=LOW_GROW_M)[:nv]
-    order = np.sort(dist, axis=0)
-    best = np.argmin(dist, axis=0)
-    sure = np.isfinite(order[0]) & ~(np.where(np.isfinite(order[1]), order[1] - order[0], np.inf) < FUSED_TIE_M)
-    low_band_fused.debug = (dist, inv, at, low, V)
-    changed = 0
-    for k in np.flatnonzero(low & sure[inv]):
-        lab = kept[at[k, 0]][1]
-        if lab[at[k, 1]] != best[inv[k]]:
-            lab[at[k, 1]] = best[inv[k]]
-            changed += 1
-    return changed
-
-
-FUSED_TIE_M = 0.001      # low_band_fused: two paths within this of each other leave the frames' growth as it was
-
-
 def _seam_readings(frames: list[FrameData], above_sel: list[np.ndarray], inv: np.ndarray) -> list:
     """Per frame ((h, w), pixels (m,), voxels (m,), depth (m,)) of its readings above the plane, for
     ``convexity.seam_steps``; inv: (M,) voxel of every selected reading, frames concatenated."""
@@ -936,8 +849,6 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
             labels[new[(near != own) & alike]] = -1
         kept.append((fd, labels, h, point_of, ch, grow_band.reshape(-1), smooth.reshape(-1)))
     cut = object_cut(plane, cfg)
-    if cfg["ingest"].get("low_band_fused", False):
-        low_band_fused(kept, plane, floor, above_plane_margin(plane, cfg), label_chroma, eps)
     if cfg["ingest"].get("under_cut_parts", False):
         under_cut_parts(kept, plane, cut, floor, above_plane_margin(plane, cfg), label_chroma, eps)
     for fd, labels, h, point_of, *_ in kept:
