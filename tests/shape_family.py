@@ -15,15 +15,16 @@ INTR = Intrinsics(W, H, 150.0, 150.0, (W - 1) / 2, (H - 1) / 2)
 
 
 def write_family_capture(folder, shapes: dict, kinds: list, rng: np.random.Generator, touching: bool,
-                         target_z: float, noisy: bool) -> list:
+                         target_z: float, noisy: bool, place_step: float = 0.003) -> list:
     """Write a capture of ``shapes[k]`` for each k in ``kinds`` (random yaws and colours; touching one another, or
     on a 10 cm square grid), seen from five cameras at 0.5 m and 35-55 deg elevation aimed at (0, 0, target_z);
-    depth with the demo's gaussian sensor noise when ``noisy``, else exact.  Returns [(kind, base centre in world
+    depth with the demo's gaussian sensor noise when ``noisy``, else exact; ``place_step``: the grid of the
+    touching placement's overlap test (``scenario.place_touching``).  Returns [(kind, base centre in world
     coordinates)]."""
     objs = [shapes[k] for k in kinds]
     yaws = rng.uniform(0, 360, len(kinds))
     if touching:
-        pos = place_touching(objs, yaws, rng)
+        pos = place_touching(objs, yaws, rng, place_step)
     else:
         pos = [(0.1 * (i % 2) - 0.05, 0.1 * (i // 2) - 0.05) for i in range(len(kinds))]
     cols = [tuple(rng.uniform(0.2, 0.9, 3)) for _ in kinds]
