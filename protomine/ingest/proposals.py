@@ -35,6 +35,7 @@ from .volume import ObjectFrame, View
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
 OUTLIER_NEIGHBOURS = 8      # neighbours of the statistical outlier test before the footprint (Rusu et al. 2008)
+LONE_SAMPLE = 2000          # points whose k-th neighbour distance gives lone_points' typical spacing
 DBSCAN_MIN_SAMPLES = 5
 FREE_SPACE_VOTES = 2         # other views that must see through a reading to drop it
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
@@ -461,9 +462,6 @@ def lone_points(points: np.ndarray, index: np.ndarray, factor: float, k: int = O
         base = lone_base(pts, tree, k)
     dk = tree.query(pts[index], k + 1)[0][:, k]   # the nearest is the point itself
     return dk > factor * base
-
-
-LONE_SAMPLE = 2000          # points whose k-th neighbour distance gives lone_points' typical spacing
 
 
 def lone_base(points: np.ndarray, tree: cKDTree, k: int = OUTLIER_NEIGHBOURS) -> float:
