@@ -234,6 +234,69 @@ def test_object_frame_centre_ignores_stray_readings():
     assert abs(filtered.radius - 0.13) < 0.003
 
 
+def _mallet_footprint(rng, n_stray=6):
+    """The mallet-like point set of test_object_frame_centre_ignores_stray_readings: a handle bar x in [-0.13, 0.07],
+    2 cm wide, a head disc of radius 3 cm at x = 0.10, heights in [0, 3 cm], and ``n_stray`` stray readings in a
+    2 cm square about 15 cm out beside the head."""
+    r = 0.03 * np.sqrt(rng.uniform(0, 1, 2000))
+    a = rng.uniform(0, 2 * np.pi, 2000)
+    head = np.stack([0.1 + r * np.cos(a), r * np.sin(a)], 1)
+    handle = np.stack([rng.uniform(-0.13, 0.07, 1400), rng.uniform(-0.01, 0.01, 1400)], 1)
+    stray = np.stack([0.1 + rng.uniform(-0.01, 0.01, n_stray), rng.uniform(0.14, 0.16, n_stray)], 1)
+    xy = np.concatenate([head, handle, stray])
+    return np.concatenate([xy, rng.uniform(0.0, 0.03, (len(xy), 1))], 1)
+
+
+def test_supported_circle_drops_only_lone_points_it_rests_on():
+    """Known answer (elementary geometry, from memory): the footprint of a bar x in [-0.13, 0.07], |y| <= 0.01 and
+    a disc of radius 0.03 about (0.10, 0) has as minimum enclosing circle the one through the bar's far corners
+    (-0.13, +-0.01) and the disc's far point (0.13, 0): centre (c, 0) with (0.13 - c)^2 = (0.13 + c)^2 + 0.01^2,
+    c = -0.01^2 / 0.52 = -0.19 mm, radius 0.13019 m.  Six stray readings 15 cm out (a depth mixed between the
+    head's edge and the table) pull the plain circle's centre by centimetres; ``supported_circle`` drops them, as
+    their 8th nearest neighbour lies > 10 cm off (the surface's own within a few mm), and finds the known circle
+    within the sampling (2 mm).  Where the circle rests on the object's own surface (no strays) it is the plain
+    circle exactly, also the bar's thin end (2 cm wide, as dense as the rest): a real extremity is not dropped."""
+    from protomine.ingest.proposals import footprint, min_enclosing_circle, supported_circle
+    B = np.eye(3)                               # in-plane axes x, y; up z
+    pts = _mallet_footprint(np.random.default_rng(0))
+    c0, r0 = min_enclosing_circle(footprint(pts, B))
+    c1, r1 = supported_circle(pts, B, 4.0)
+    assert np.linalg.norm(c0) > 0.015                                  # the strays hold the plain circle
+    cx = -0.01 ** 2 / 0.52
+    assert np.linalg.norm(np.asarray(c1) - [cx, 0.0]) < 0.002
+    assert abs(r1 - np.hypot(0.13 - cx, 0.0)) < 0.002
+    c2, r2 = supported_circle(pts, B, 0.0)                              # 0: off, the plain circle
+    assert np.array_equal(c2, c0) and r2 == r0
+    clean = _mallet_footprint(np.random.default_rng(0), n_stray=0)
+    c3, r3 = supported_circle(clean, B, 4.0)
+    c4, r4 = min_enclosing_circle(footprint(clean, B))
+    assert np.array_equal(c3, c4) and r3 == r4
+    assert r3 > 0.128                                                   # the bar's end still holds it
+
+
+def _lone_by_definition(pts, index, factor, k):
+    """Reference twin of proposals.lone_points from its definition: full distance matrix (scipy cdist), each
+    point's k-th smallest distance to another point, the median of it over every ceil(M / 2000)-th point."""
+    from scipy.spatial.distance import cdist
+    D = cdist(pts, pts)
+    kth = np.sort(D, axis=1)[:, k]              # column 0 is the point itself
+    step = -(-len(pts) // 2000)
+    return kth[index] > factor * np.median(kth[::step])
+
+
+def test_lone_points_match_their_definition():
+    from protomine.ingest.proposals import lone_points
+    rng = np.random.default_rng(1)
+    # a surface patch (10 x 10 cm, 0.5 mm noise) and ten readings scattered about it
+    sheet = np.concatenate([rng.uniform(-0.05, 0.05, (2500, 2)), rng.normal(0.0, 0.0005, (2500, 1))], 1)
+    pts = np.concatenate([sheet, rng.uniform(-0.3, 0.3, (10, 3))])
+    index = np.arange(len(pts))
+    got = lone_points(pts, index, 4.0, k=8)
+    np.testing.assert_array_equal(got, _lone_by_definition(pts, index, 4.0, 8))
+    assert got[2500:].sum() >= 8 and not got[:2500].any()      # the scattered ones stand alone, the surface does not
+    assert not lone_points(pts, index, 0.0).any()              # factor 0: off
+
+
 def test_centre_candidates_recover_a_circle_from_its_camera_facing_arc():
     """Geometry of a circle's partial arc (from memory, elementary): the points of an arc of half-angle theta
     <= 90 deg of a circle (centre c, radius R) have as minimum enclosing circle the chord's diametral circle,

@@ -35,6 +35,7 @@ from .volume import ObjectFrame, View
 HEIGHT_QUANTILE = 99.0      # object height = this percentile of point heights (robust to spikes)
 FOOTPRINT_TRIM = 97.0       # footprint points farther than this percentile (x 1.15) are dropped
 OUTLIER_NEIGHBOURS = 8      # neighbours of the statistical outlier test before the footprint (Rusu et al. 2008)
+LONE_SAMPLE = 2000          # points whose k-th neighbour distance gives lone_points' typical spacing
 DBSCAN_MIN_SAMPLES = 5
 FREE_SPACE_VOTES = 2         # other views that must see through a reading to drop it
 REST_TOL_M = 0.02           # a point group rests on a plane when its lowest points are this close to it
@@ -445,6 +446,61 @@ def statistical_outliers(points: np.ndarray, sigma: float, k: int = OUTLIER_NEIG
     return md > md.mean() + sigma * md.std()
 
 
+def lone_points(points: np.ndarray, index: np.ndarray, factor: float, k: int = OUTLIER_NEIGHBOURS,
+                tree: cKDTree | None = None, base: float | None = None) -> np.ndarray:
+    """(len(index),) bool: which of the points ``points[index]`` stand alone: their ``k``-th nearest neighbour among
+    ``points`` (M, 3) lies farther than ``factor`` x the median of that distance over the object's points (every
+    ``ceil(M / LONE_SAMPLE)``-th point; ``base`` when given).  A reading of the object's surface has the surface
+    around it, within a few spacings of the fused readings; a stray reading (a depth mixed between the object's
+    edge and what lies behind it) has none.  Nothing stands alone with ``factor`` <= 0 or k or fewer points."""
+    pts = np.asarray(points, np.float64)
+    index = np.asarray(index, np.int64)
+    if not factor > 0 or len(pts) <= k or not len(index):
+        return np.zeros(len(index), bool)
+    tree = cKDTree(pts) if tree is None else tree
+    if base is None:
+        base = lone_base(pts, tree, k)
+    dk = tree.query(pts[index], k + 1)[0][:, k]   # the nearest is the point itself
+    return dk > factor * base
+
+
+def lone_base(points: np.ndarray, tree: cKDTree, k: int = OUTLIER_NEIGHBOURS) -> float:
+    """The median distance from a point to its ``k``-th nearest neighbour over every ``ceil(M / LONE_SAMPLE)``-th
+    point of ``points`` (M, 3) (:func:`lone_points`)."""
+    step = max(1, -(-len(points) // LONE_SAMPLE))
+    return float(np.median(tree.query(points[::step], k + 1)[0][:, k]))
+
+
+def supported_circle(points: np.ndarray, basis: np.ndarray, factor: float, max_drops: int = 64
+                     ) -> tuple[np.ndarray, float]:
+    """The minimum enclosing circle (centre (2,) in-plane, radius) of the :func:`footprint` of the world ``points``
+    (M, 3), held only by points that do not stand alone (:func:`lone_points` with ``factor``): the circle rests on
+    its two or three outermost points, and one stray reading among them moves its centre by centimetres.  While a
+    point the circle rests on stands alone it is dropped and the circle found again (at most ``max_drops``
+    points); every other point is kept, so an object whose circle rests on its own surface keeps the circle it
+    had.  ``factor`` <= 0: the plain circle (``[ingest] circle_support``)."""
+    pts = np.asarray(points, np.float64)
+    xy = pts @ basis[:2].T
+    r_med = np.linalg.norm(xy - np.median(xy, axis=0), axis=1)
+    idx = np.flatnonzero(r_med <= np.percentile(r_med, FOOTPRINT_TRIM) * 1.15)    # as footprint()
+    c, r = min_enclosing_circle(xy[idx])
+    if not factor > 0 or len(pts) <= OUTLIER_NEIGHBOURS:
+        return c, r
+    tree = cKDTree(pts)
+    base = lone_base(pts, tree)
+    dropped = 0
+    while dropped < max_drops:
+        d = np.linalg.norm(xy[idx] - c, axis=1)
+        rest = idx[d >= r * (1.0 - 1e-6)]               # the points the circle rests on
+        lone = rest[lone_points(pts, rest, factor, tree=tree, base=base)][: max_drops - dropped]
+        if not len(lone):
+            break
+        idx = np.setdiff1d(idx, lone)
+        dropped += len(lone)
+        c, r = min_enclosing_circle(xy[idx])
+    return c, r
+
+
 def footprint(points: np.ndarray, basis: np.ndarray) -> np.ndarray:
     """In-plane coordinates (M', 2) of an object's world points (M, 3) (``basis``: the plane's ``plane_basis``),
     without the far stragglers (beyond ``FOOTPRINT_TRIM`` percent of the distances from the median, x 1.15)."""
@@ -494,12 +550,15 @@ def shifted_frames(points: np.ndarray, frame: ObjectFrame, direction: np.ndarray
     return out
 
 
-def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0) -> tuple[ObjectFrame, np.ndarray]:
+def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0, circle_support: float = 0.0
+                 ) -> tuple[ObjectFrame, np.ndarray]:
     """Object frame and centre (3,) from the object's world points (M, 3).
 
     ``outlier_sigma`` > 0 (``[ingest] footprint_outlier_sigma``) first drops the :func:`statistical_outliers`:
     stray readings (mixed depths at silhouettes, a neighbour's edge) lie apart from the object's surface, and a
-    few of them move the minimum enclosing circle, hence the base centre every azimuth is measured about."""
+    few of them move the minimum enclosing circle, hence the base centre every azimuth is measured about.
+    ``circle_support`` > 0 (``[ingest] circle_support``) drops only such readings as the circle rests on
+    (:func:`supported_circle`)."""
     points = np.asarray(points)
     out = statistical_outliers(points, outlier_sigma)
     if out.any():
@@ -508,7 +567,7 @@ def object_frame(points: np.ndarray, plane: PlaneFit, outlier_sigma: float = 0.0
     B = plane_basis(up)
     heights = plane.height(points)
     height = max(float(np.percentile(heights, HEIGHT_QUANTILE)), 1e-3)
-    c2, radius = min_enclosing_circle(footprint(points, B))
+    c2, radius = supported_circle(points, B, circle_support)
     # base centre: the circle's centre, on the plane
     origin = c2 @ B[:2] + plane.offset * up
     centre = origin + 0.5 * height * up
@@ -520,6 +579,12 @@ def outlier_sigma(cfg: dict, n_frames: int) -> float:
     a single frame, where a thin part is a strip of pixels a few wide whose neighbour distances exceed a surface
     patch's and the test would cut it, and for a config recorded before the key existed."""
     return float(cfg["ingest"].get("footprint_outlier_sigma", 0.0)) if n_frames > 1 else 0.0
+
+
+def circle_support(cfg: dict, n_frames: int) -> float:
+    """``[ingest] circle_support`` for a point set fused from ``n_frames`` frames: 0 (off) for a single frame, as
+    :func:`outlier_sigma`, and for a config recorded before the key existed."""
+    return float(cfg["ingest"].get("circle_support", 0.0)) if n_frames > 1 else 0.0
 
 
 def object_cut(plane: PlaneFit, cfg: dict) -> float:
@@ -548,7 +613,7 @@ def _mask_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, cfg:
         pts = np.concatenate(pts_id[oid])
         if len(pts) < 10:
             continue
-        fr, centre = object_frame(pts, plane, outlier_sigma(cfg, len(per_id[oid])))
+        fr, centre = object_frame(pts, plane, outlier_sigma(cfg, len(per_id[oid])), circle_support(cfg, len(per_id[oid])))
         props.append(Proposal(f"{cap.name}/{oid}", str(oid), fr, centre, len(pts), per_id[oid]))
     return props
 
@@ -627,7 +692,7 @@ def _geometry_proposals(cap: Capture, frames: list[FrameData], plane: PlaneFit, 
         sel = lab == l
         if sel.sum() < c["cluster_min_points"]:
             continue
-        fr, centre = object_frame(vox[sel], plane, outlier_sigma(cfg, len(frames)))
+        fr, centre = object_frame(vox[sel], plane, outlier_sigma(cfg, len(frames)), circle_support(cfg, len(frames)))
         if fr.height < c["min_object_height_m"] or not (c["min_object_radius_m"] <= fr.radius <= c["max_object_radius_m"]):
             continue
         clusters.append((vox[sel], fr, centre))
@@ -871,7 +936,7 @@ def _grown_proposals(cap: Capture, frames: list[FrameData], above_sel: list[np.n
         # the frame from every point the object holds now, its low band included (a base disc widens the
         # footprint), like a mask's pixels
         # (each within LOW_GROW_M of its grouped voxels: a base disc reaches farther out than its pegs do)
-        p.frame, p.center_world = object_frame(np.concatenate(g), plane, outlier_sigma(cfg, len(g)))
+        p.frame, p.center_world = object_frame(np.concatenate(g), plane, outlier_sigma(cfg, len(g)), circle_support(cfg, len(g)))
         out.append(p)
     return out
 
