@@ -55,7 +55,9 @@ def main(argv: list[str]) -> None:
         print(f"{demo.name:>6} {k:>16}: known / never-mined {v['n_known']} / {v['n_unknown']}, accuracy "
               f"{v['accuracy']:.3f}, AUROC {v['auroc']:.3f}, flagged {v['unknown_flagged']:.0%} / {v['known_flagged']:.0%}")
     if out is not None:
-        out.write_text(json.dumps({"figures": res, "records": recs}, default=float))
+        import numpy as np   # per record: whether the view cuts its object off, and the unknown cut it was given
+        extra = {k: np.asarray(stats[k]).tolist() for k in ("view_cut", "unknown_cuts") if k in stats}
+        out.write_text(json.dumps({"figures": res, "records": recs, **extra}, default=float))
 
 
 if __name__ == "__main__":
