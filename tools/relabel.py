@@ -6,7 +6,9 @@ views, per depth model, per kind of face), optionally saving the records.
 DEMO_OUT is a `protomine demo` folder (library.h5, scenes/ with scenario.json and truth_full.csv); CONFIG a config for
 the keys the library lacks.  The label stage reads the library's own recorded config; the ``[mine]`` keys a library
 mined before they existed lacks are filled from CONFIG (default: the code's default config), as a library mined by
-this code would record them, and listed.  Keys the library records are kept.  Not a test: about a minute or two.
+this code would record them, and listed.  Keys the library records are kept.  OUT_JSON also keeps, per record,
+``view_cut`` (whether the view cuts its object off) and ``unknown_cuts`` (the cut it was flagged against), for cut-rule
+studies.  Not a test: about a minute or two.
 """
 from __future__ import annotations
 
