@@ -73,3 +73,14 @@ def test_matcher_shrinks_each_strata_cut(tiny_world):
     mc["mine"]["unknown_cut_shrink"] = 0.0
     off = make_matcher(Library(protos, lib.members, {**attrs, "config": json.dumps(mc)}, lib.path), cfg)
     assert np.array_equal(off.view_unknown_cuts([None, object()], 2), [0.07, 0.02])
+    # ``[mine] unknown_cut_split_below`` 0.5: 30 of 100 held-out views cut off is the exception, so the split stays;
+    # 70 of 100 (the touching demos' share, about 60%) is not, so every view takes the pooled cut 0.04
+    mc["mine"].update(unknown_cut_shrink=30.0, unknown_cut_split_below=0.5)
+    guarded = {**attrs, "config": json.dumps(mc)}
+    mt = make_matcher(Library(protos, lib.members, guarded, lib.path), cfg)
+    assert np.allclose(mt.view_unknown_cuts([None, object()], 2), [0.061, 0.03], rtol=1e-12)
+    mostly_cut = {**guarded, "unknown_view_joined_cut": np.linspace(0.001, 1, 70),
+                  "unknown_view_joined_whole": np.linspace(0.001, 1, 30)}
+    mt = make_matcher(Library(protos, lib.members, mostly_cut, lib.path), cfg)
+    assert mt.split_cuts is None
+    assert np.array_equal(mt.view_unknown_cuts([None, object()], 2), [0.04, 0.04])

@@ -162,6 +162,7 @@ class Matcher:
     size_score: bool = False
     cut_split: bool = False
     cut_shrink: float = 0.0
+    cut_split_below: float = 1.0
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -235,6 +236,14 @@ class Matcher:
             pooled = float(at["unknown_view_ratio_cut"])
             self.split_cuts = tuple(shrunk_stratum_cut(c, len(np.atleast_1d(at[a])), pooled, self.cut_shrink)
                                     for c, a in zip(self.split_cuts, ("unknown_view_joined_whole", "unknown_view_joined_cut")))
+        # ``[mine] unknown_cut_split_below``: the split only where the views that cut their object off are the exception
+        # (under this share of the held-out views; where objects touch, most views are cut off by a neighbour and the few
+        # whole ones are not like the label stage's whole views): otherwise the pooled cut for all
+        if (self.split_cuts is not None and self.cut_split_below < 1.0 and "unknown_view_joined_whole" in at
+                and "unknown_view_joined_cut" in at):
+            n_cut, n_whole = (len(np.atleast_1d(at[a])) for a in ("unknown_view_joined_cut", "unknown_view_joined_whole"))
+            if n_cut >= self.cut_split_below * (n_cut + n_whole):
+                self.split_cuts = None
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -630,7 +639,8 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  size_weight=float(m.get("label_size", 0.0)) if weighted else 0.0,
                  size_score=bool(weighted and m.get("label_size_score", False)),
                  cut_split=bool(weighted and m.get("unknown_cut_split", False)),
-                 cut_shrink=float(m.get("unknown_cut_shrink", 0.0))))
+                 cut_shrink=float(m.get("unknown_cut_shrink", 0.0)),
+                 cut_split_below=float(m.get("unknown_cut_split_below", 1.0))))
 
 
 @dataclass
