@@ -6,7 +6,9 @@ views, per depth model, per kind of face), optionally saving the records.
 DEMO_OUT is a `protomine demo` folder (library.h5, scenes/ with scenario.json and truth_full.csv); CONFIG a config for
 the keys the library lacks.  The label stage reads the library's own recorded config; the ``[mine]`` keys a library
 mined before they existed lacks are filled from CONFIG (default: the code's default config), as a library mined by
-this code would record them, and listed.  Keys the library records are kept.  Not a test: about a minute or two.
+this code would record them, and listed.  Keys the library records are kept.  OUT_JSON also keeps, per record,
+``view_cut`` (whether the view cuts its object off) and ``unknown_cuts`` (the cut it was flagged against), for cut-rule
+studies.  Not a test: about a minute or two.
 """
 from __future__ import annotations
 
@@ -55,7 +57,9 @@ def main(argv: list[str]) -> None:
         print(f"{demo.name:>6} {k:>16}: known / never-mined {v['n_known']} / {v['n_unknown']}, accuracy "
               f"{v['accuracy']:.3f}, AUROC {v['auroc']:.3f}, flagged {v['unknown_flagged']:.0%} / {v['known_flagged']:.0%}")
     if out is not None:
-        out.write_text(json.dumps({"figures": res, "records": recs}, default=float))
+        import numpy as np   # per record: whether the view cuts its object off, and the unknown cut it was given
+        extra = {k: np.asarray(stats[k]).tolist() for k in ("view_cut", "unknown_cuts") if k in stats}
+        out.write_text(json.dumps({"figures": res, "records": recs, **extra}, default=float))
 
 
 if __name__ == "__main__":

@@ -161,6 +161,8 @@ class Matcher:
     size_weight: float = 0.0
     size_score: bool = False
     cut_split: bool = False
+    cut_shrink: float = 0.0
+    cut_split_below: float = 1.0
     P: np.ndarray = field(init=False)
     V: np.ndarray = field(init=False)
     search: ViewSearch = field(init=False)
@@ -226,6 +228,22 @@ class Matcher:
                            if self.cut_split and self.view_ratios is not None and self.view_members is None
                            and self.view_size is None and "unknown_view_ratio_cut_whole" in at
                            and "unknown_view_ratio_cut_cut" in at else None)
+        # ``[mine] unknown_cut_shrink``: each stratum's cut drawn toward the pooled one by its number of held-out views
+        # (the strata's joined values, unknown_view_joined_cut / _whole; a library without them keeps the strata's cuts)
+        if (self.split_cuts is not None and self.cut_shrink > 0 and "unknown_view_joined_whole" in at
+                and "unknown_view_joined_cut" in at):
+            from ..mine.openset import shrunk_stratum_cut
+            pooled = float(at["unknown_view_ratio_cut"])
+            self.split_cuts = tuple(shrunk_stratum_cut(c, len(np.atleast_1d(at[a])), pooled, self.cut_shrink)
+                                    for c, a in zip(self.split_cuts, ("unknown_view_joined_whole", "unknown_view_joined_cut")))
+        # ``[mine] unknown_cut_split_below``: the split only where the views that cut their object off are the exception
+        # (under this share of the held-out views; where objects touch, most views are cut off by a neighbour and the few
+        # whole ones are not like the label stage's whole views): otherwise the pooled cut for all
+        if (self.split_cuts is not None and self.cut_split_below < 1.0 and "unknown_view_joined_whole" in at
+                and "unknown_view_joined_cut" in at):
+            n_cut, n_whole = (len(np.atleast_1d(at[a])) for a in ("unknown_view_joined_cut", "unknown_view_joined_whole"))
+            if n_cut >= self.cut_split_below * (n_cut + n_whole):
+                self.split_cuts = None
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
@@ -620,7 +638,9 @@ def _matcher_args(library: Library, cfg: dict, weighted: bool) -> tuple[tuple, d
                  member_score=bool(m.get("label_members_score", False)),
                  size_weight=float(m.get("label_size", 0.0)) if weighted else 0.0,
                  size_score=bool(weighted and m.get("label_size_score", False)),
-                 cut_split=bool(weighted and m.get("unknown_cut_split", False))))
+                 cut_split=bool(weighted and m.get("unknown_cut_split", False)),
+                 cut_shrink=float(m.get("unknown_cut_shrink", 0.0)),
+                 cut_split_below=float(m.get("unknown_cut_split_below", 1.0))))
 
 
 @dataclass
@@ -775,6 +795,7 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     st = {"objects": 0, "frames": 0, "lift_s": 0.0, "match_s": 0.0}
     out: list[dict] = []
     scores: list[np.ndarray] = []
+    per_view: dict[str, list[np.ndarray]] = {}
 
     n_workers = 1 if executor is None else min(executor.n_workers, len(groups))
     # the matcher (its prototype spectra: ~1 s for 8 prototypes) is built here only when this process labels;
@@ -789,6 +810,8 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
             for k in st:
                 st[k] += res[1][k]
             scores.extend(res[1].get("scores", []))
+            for k in ("view_cut", "unknown_cuts"):
+                per_view.setdefault(k, []).extend(res[1].get(k, []))
             if advance:  # a worker's group: its lines and its frames at once
                 replay(progress, res[1]["lines"])
                 b.advance(res[1]["frames"])
@@ -807,6 +830,9 @@ def label_captures(library: Library, capture_paths: list[str | Path], cfg: dict,
     st["workers"] = n_workers
     # (n_records, K) score of every record against every prototype, in record order (decision-rule studies)
     st["scores"] = np.concatenate(scores or [np.zeros((0, K))])
+    # (n_records,) whether each view cuts its object off (ingest.truncation; False when not looked for) and its unknown cut
+    for k, v in per_view.items():
+        st[k] = np.concatenate(v) if v else np.zeros(0)
     if stats is not None:
         stats.update(st)
     return out
@@ -871,6 +897,11 @@ def _match_batch(matcher: Matcher, lifted: list[tuple[str, FrameObjects]], st: d
     out = lifted_records(matcher, lifted, m)
     st["objects"] += len(out)
     st.setdefault("scores", []).append(m["score"])
+    st.setdefault("unknown_cuts", []).append(m["unknown_cut"][np.arange(len(m["best"])), np.maximum(m["best"], 0)]
+                                             if len(m["best"]) else np.zeros(0))
+    st.setdefault("view_cut", []).append(np.array([c is not None for _, fo in lifted for c in fo.cuts], bool)
+                                         if all(fo.cuts is not None for _, fo in lifted) else
+                                         np.zeros(sum(len(fo.facts) for _, fo in lifted), bool))
     return out
 
 

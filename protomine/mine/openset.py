@@ -50,6 +50,19 @@ def conformal_cut(scores, alpha: float) -> float:
     return float(s[s.size - r])
 
 
+def shrunk_stratum_cut(stratum_cut: float, n_views: int, pooled_cut: float, pseudo_views: float) -> float:
+    """A stratum's split-conformal cut drawn toward the pooled one by its sample size (``[mine] unknown_cut_shrink``):
+    (n c_s + n0 c) / (n + n0), the credibility-weighted mean (Buhlmann 1967: weight n / (n + n0) on a group's own
+    estimate, n0 the prior's weight in views).  A stratum of n views sets its 5% cut by its ceil((n + 1) 0.05)-th
+    smallest value, a handful of views for the 60-70 held-out views that cut their object off: with n0 views of the
+    pooled cut behind it, a few misdecided views cannot carry it to 0, and a large stratum keeps its own cut.
+    ``pseudo_views`` 0: the stratum's own cut."""
+    n, n0 = float(n_views), float(pseudo_views)
+    if n0 <= 0:
+        return float(stratum_cut)
+    return float((n * stratum_cut + n0 * pooled_cut) / (n + n0))
+
+
 def library_cut(library) -> float:
     """The unknown cut a library was mined with (``unknown_cut`` attribute)."""
     if "unknown_cut" not in library.attrs:
