@@ -282,8 +282,11 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         cut_ex = cut_example(store, ex, make_matcher(library, cfg, size=False).grid, find_cut_offsets(cfg))
         if cut_ex is not None:
             decision = example_decision(library, store, ex, cfg, cut_ex)
-            if decision[3] > 0 and cfg["mine"].get("find_cut_search", True):
-                store = WithExample(store, ex, cut_ex.volumes[decision[3]], cut_ex.sizes[decision[3]])
+            c = decision[3]
+            if not cfg["mine"].get("find_cut_decide", True):   # the route decides on the store's volume, as without
+                decision = example_decision(library, store, ex, cfg)
+            if c > 0 and cfg["mine"].get("find_cut_search", True):
+                store = WithExample(store, ex, cut_ex.volumes[c], cut_ex.sizes[c])
     scales = tuple(library.scales)
     X1, W1 = _features(store, np.array([ex]), weights)
     if not np.any(W1 > 0):
