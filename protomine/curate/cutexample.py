@@ -1,5 +1,6 @@
-"""Find's cut example (``[mine] find_cut_offsets``): a one-frame example its view cuts off (the image border, a nearer
-object in front of it: ``ingest.truncation``) searched the way the label stage searches a cut view.
+"""Find's cut example (``[mine] find_cut``, with ``find_cut_offsets``, ``find_cut_decide``, ``find_cut_search``): a
+one-frame example its view cuts off (the image border, a nearer object in front of it: ``ingest.truncation``) searched
+the way the label stage searches a cut view.
 
 A cut view shows part of its object, and ingest grids it about the minimum enclosing circle of the visible
 footprint: a centre moved toward the visible part and a radius too small, so every cell of its scale-normalised
