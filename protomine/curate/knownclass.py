@@ -134,18 +134,29 @@ class KnownRoute:
                             # than the example's (-1: not asked); taken when below r (module docstring, 7.)
 
 
-def example_decision(library: Library, store, ex: int, cfg: dict) -> tuple[int, float, float]:
-    """(b, score, cut): the label stage's decision on store object ``ex``'s volume (``label.matcher``)."""
+def example_decision(library: Library, store, ex: int, cfg: dict, cut_ex=None) -> tuple[int, float, float, int]:
+    """(b, score, cut, candidate): the label stage's decision on store object ``ex``'s volume (``label.matcher``).
+    ``cut_ex`` (``curate.cutexample.CutExample``, ``[mine] find_cut_offsets``): a cut example decided as the label
+    stage decides a cut view: its candidates searched together (per prototype the nearest), with its ``ViewCut`` (the
+    copies seen from its camera lose what it could not see; the cut views' unknown cut); ``candidate`` is the one its
+    decided prototype chose (0 without ``cut_ex``: the store's volume)."""
     from ..label.matcher import make_matcher
     # ``[mine] label_size`` stays out of the route's decision: measured on the default seed-0 demo, the size moved the
     # never-mined tape dispenser example onto a known class the route then took (P@10 0.70 -> 0.00)
     mt = make_matcher(library, cfg, size=False)
     cam = _camera(store, ex)
-    vol = store.read_volume_at(np.array([ex]))
-    sizes = np.array([[store.objects["radius_m"][ex], store.objects["height_m"][ex]]], np.float64)
-    m = mt.match(vol, None if cam is None else cam[None], sizes)
+    cam = None if cam is None else cam[None]
+    if cut_ex is None:
+        vol = store.read_volume_at(np.array([ex]))
+        sizes = np.array([[store.objects["radius_m"][ex], store.objects["height_m"][ex]]], np.float64)
+        m = mt.match(vol, cam, sizes)
+    else:
+        several = len(cut_ex.volumes) > 1
+        m = mt.match(cut_ex.volumes[None] if several else cut_ex.volumes[:1], cam, cut_ex.sizes[:1], [cut_ex.cut])
     b = int(m["best"][0])
-    return b, (float(m["score"][0, b]) if b >= 0 else 0.0), float(mt.unknown_cut)
+    cut = float(m["unknown_cut"][0, b]) if b >= 0 and cut_ex is not None else float(mt.unknown_cut)
+    c = int(m["centre"][0, b]) if b >= 0 and "centre" in m else 0
+    return b, (float(m["score"][0, b]) if b >= 0 else 0.0), cut, c
 
 
 def _camera(store, ex: int) -> np.ndarray | None:
@@ -287,14 +298,15 @@ def decide(D: np.ndarray, b: int, s: float, cut: float, one_shot_key: np.ndarray
 
 def known_route(library: Library, store, ex: int, cfg: dict, D: np.ndarray, tilt: np.ndarray, grid: TiltGrid | None,
                 one_shot_key: np.ndarray, sure: float, weak: float = 0.0, overrule_at: int = 0,
-                one_shot_distance: np.ndarray | None = None, fuse: float = 0.0) -> KnownRoute:
+                one_shot_distance: np.ndarray | None = None, fuse: float = 0.0, decision: tuple | None = None) -> KnownRoute:
     """The route for example ``ex``: D (N, K), tilt (N, K) every store object's pose search against every prototype;
     ``one_shot_key`` (N,) the one-shot ranking's key.  Taken when the example's label decision b scores >= max(``sure``,
     the unknown cut), or >= max(``weak``, the cut) (``weak`` > 0) with >= ``AGREE_MIN`` objects agreeing.
     ``overrule_at`` > 0 (``[mine] find_overrule``): a taken route sharing at most ``OVERRULE_AGREE_MAX`` with the
     one-shot ranking ranks by the prototype ``overrule`` picks (module docstring, 3.).  ``fuse`` > 0 (``[mine]
-    find_prototype_fuse``) with ``one_shot_distance`` (N,): the key is ``fused_key`` (module docstring, 4.)."""
-    b, s, cut = example_decision(library, store, ex, cfg)
+    find_prototype_fuse``) with ``one_shot_distance`` (N,): the key is ``fused_key`` (module docstring, 4.).
+    ``decision``: the example's ``example_decision`` when already made (a cut example, ``[mine] find_cut_offsets``)."""
+    b, s, cut = (decision or example_decision(library, store, ex, cfg))[:3]
     N = len(store)
     if b < 0:
         z = np.full(N, np.inf)

@@ -106,7 +106,8 @@ from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_as
 from ..mine.symmetry import detect_symmetry
 from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
-from .knownclass import (OVERRULE_AGREE_MAX, KnownRoute, fused_key, knn_margin, known_route, margin_key, members_key,
+from .cutexample import WithExample, cut_example, find_cut_offsets
+from .knownclass import (OVERRULE_AGREE_MAX, KnownRoute, example_decision, fused_key, knn_margin, known_route, margin_key, members_key,
                          prototype_scores, rank_fusion, reciprocal_member_rank)
 from .names import check_name, refresh_gallery
 from .rerank import rerank_pairwise, reranked_key
@@ -273,6 +274,19 @@ def find_similar(library: Library, store: ObjectStore, example_id: str, cfg: dic
 
 def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
     weights = _feature_weights(library, cfg)
+    decision = None
+    if cfg["mine"].get("find_cut", False) and library.n_clusters >= 1:
+        # ``[mine] find_cut``: a cut example decided as the label stage decides a cut view, and searched as the candidate
+        # its decided prototype chose (``curate.cutexample``)
+        from ..label.matcher import make_matcher
+        cut_ex = cut_example(store, ex, make_matcher(library, cfg, size=False).grid, find_cut_offsets(cfg))
+        if cut_ex is not None:
+            decision = example_decision(library, store, ex, cfg, cut_ex)
+            c = decision[3]
+            if not cfg["mine"].get("find_cut_decide", True):   # the route decides on the store's volume, as without
+                decision = example_decision(library, store, ex, cfg)
+            if c > 0 and cfg["mine"].get("find_cut_search", True):
+                store = WithExample(store, ex, cut_ex.volumes[c], cut_ex.sizes[c])
     scales = tuple(library.scales)
     X1, W1 = _features(store, np.array([ex]), weights)
     if not np.any(W1 > 0):
@@ -340,7 +354,7 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         d1 = both_ways(D, reverse)
         route = known_route(library, store, ex, cfg, Dk, tk, grid, ranking_key(D, reverse), t_route,
                             float(cfg["mine"].get("find_prototype_weak", 0.0)), int(cfg["mine"].get("find_overrule", 0)),
-                            d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)))
+                            d1, float(cfg["mine"].get("find_prototype_fuse", 0.0)), decision)
     k_mem = int(cfg["mine"].get("find_members", 0))
     m_max = float(cfg["mine"].get("find_members_margin", 0.0))
     if k_mem > 0 and route is not None and route.taken:   # the taken route's shortlist by its members (``curate.knownclass``)
