@@ -11,9 +11,9 @@ import numpy as np
 
 from protomine.mine.library import Library
 from protomine.mine.openset import shrunk_stratum_cut
-from protomine.mine.pipeline import view_calibrated_fields, view_ratio_calibration
-from test_cut_split import _heldout
-from test_size_score import _cut, _fisher, _loo
+from protomine.mine.pipeline import view_ratio_calibration
+from test_cut_split import _joined_heldout
+from test_size_score import _cut
 
 
 def test_shrunk_cut_worked_examples():
@@ -31,15 +31,8 @@ def test_mining_records_each_strata_joined_values():
     """The strata's joined values the label stage shrinks with are the Fisher combination (written out) of each view's
     calibrated score and its ratio's leave-one-out p-value, sorted, split by whether the view cuts its object off; the
     strata's cuts are their split-conformal cuts (the ceil((n + 1)(1 - alpha))-th smallest nonconformity, written out)."""
-    rng = np.random.default_rng(5)
     n = 300
-    own, cut, D = _heldout(rng, n)
-    j = np.arange(n)
-    d = D[j, own]
-    fields, _ = view_calibrated_fields(d, np.ones(n), own, np.ones(n, bool), 3, [(0.0, 1.0)] * 3, 0.05)
-    s = Library(fields, {}, {}).score(d, own, single_view=True, upright=np.ones(n, bool), view_normalised=True)
-    from protomine.mine.openset import best_second_ratio
-    joined = _fisher(s, _loo(best_second_ratio(D)[j, np.argmin(D, axis=1)]))
+    own, cut, D, d, fields, joined = _joined_heldout(5, n)
     got = view_ratio_calibration(D, d, own, np.ones(n, bool), fields, 0.05, cut=cut)
     assert np.allclose(got["unknown_view_joined_cut"], np.sort(joined[cut]), rtol=1e-9)
     assert np.allclose(got["unknown_view_joined_whole"], np.sort(joined[~cut]), rtol=1e-9)

@@ -29,20 +29,25 @@ def _heldout(rng, n, cut_share=0.3):
     return own, cut, D
 
 
+def _joined_heldout(seed: int, n: int):
+    """``_heldout``'s n views drawn with default_rng(seed), their calibrated fields and their joined values written out
+    (Fisher's combination of the calibrated score and the ratio's leave-one-out p-value): (own, cut, D, d, fields,
+    joined)."""
+    own, cut, D = _heldout(np.random.default_rng(seed), n)
+    j = np.arange(n)
+    d = D[j, own]
+    fields, _ = view_calibrated_fields(d, np.ones(n), own, np.ones(n, bool), 3, [(0.0, 1.0)] * 3, 0.05)
+    s = Library(fields, {}, {}).score(d, own, single_view=True, upright=np.ones(n, bool), view_normalised=True)
+    return own, cut, D, d, fields, _fisher(s, _loo(best_second_ratio(D)[j, np.argmin(D, axis=1)]))
+
+
 def test_cut_per_stratum_from_its_definition():
     """With the strata given, the cut of each is the split-conformal cut of the joined values (Fisher's combination of
     the calibrated score and the ratio's leave-one-out p-value) of its own views, the pooled cut unchanged; the whole
     views' cut lies above the pooled one and the cut views' below it (the cut views conform worse); a stratum with fewer
     than MIN_FACE_STRETCH_VIEWS views gives no split."""
-    rng = np.random.default_rng(7)
     n = 400
-    own, cut, D = _heldout(rng, n)
-    j = np.arange(n)
-    d = D[j, own]
-    fields, _ = view_calibrated_fields(d, np.ones(n), own, np.ones(n, bool), 3, [(0.0, 1.0)] * 3, 0.05)
-    s = Library(fields, {}, {}).score(d, own, single_view=True, upright=np.ones(n, bool), view_normalised=True)
-    r = best_second_ratio(D)[j, np.argmin(D, axis=1)]
-    joined = _fisher(s, _loo(r))
+    own, cut, D, d, fields, joined = _joined_heldout(7, n)
     got = view_ratio_calibration(D, d, own, np.ones(n, bool), fields, 0.05, cut=cut)
     assert np.isclose(got["unknown_view_ratio_cut"], _cut(joined, 0.05), rtol=1e-9)
     assert np.isclose(got["unknown_view_ratio_cut_cut"], _cut(joined[cut], 0.05), rtol=1e-9)
