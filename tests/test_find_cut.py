@@ -16,7 +16,10 @@ from scipy.spatial.transform import Rotation
 
 from conftest import TINY_CONFIG, TINY_INTRINSICS, make_tiny_capture, tiny_box, tiny_cylinder
 from protomine.config import load_config
-from protomine.curate.cutexample import WithExample, cut_example, find_cut_offsets
+from protomine.curate.cutexample import WithExample, cut_example, find_cut_direction, find_cut_offsets
+from protomine.errors import InputError
+from protomine.geometry import plane_basis
+from protomine.ingest.truncation import centroid_cut_direction
 from protomine.curate.oneshot import find_similar
 from protomine.ingest.pipeline import ingest_captures
 from protomine.ingest.sharded import open_store
@@ -127,6 +130,52 @@ def test_find_cut_offsets_reads_the_non_zero_entries():
     assert find_cut_offsets(cfg) == (0.25, 0.5)
 
 
+def test_the_centroid_direction_moves_the_cut_cylinder_toward_its_hidden_part(cut_world):
+    # known by construction: the image's right border (direction SIDE in the scene, the pinhole projection above) cuts
+    # the cylinder's far part off (about half of it), so the true base centre lies from the visible points toward
+    # SIDE.  The move from the visible points' centroid to the cut points' centroid must point toward SIDE and bring
+    # every moved centre (0.1, 0.25, 0.5 radii) nearer the true one than the visible circle's centre is
+    st, grid = cut_world["store"], Grid.from_config(cut_world["cfg"])
+    Tw = _scene_to_world()
+    true = Tw[:3, :3] @ cut_world["cyl"] + Tw[:3, 3]
+    B = plane_basis(Tw[:3, :3] @ np.array([0.0, 0.0, 1.0]))
+    side = (Tw[:3, :3] @ np.array([np.cos(SIDE), np.sin(SIDE), 0.0])) @ B[:2].T
+    i = [j for j in range(len(st)) if cut_example(st, j, grid, ()) is not None][0]
+    ce = cut_example(st, i, grid, (0.1, 0.25, 0.5), "centroid")
+    moves = (ce.origins[1:] - ce.origins[0]) @ B[:2].T
+    r = ce.sizes[0, 0]
+    assert np.allclose(np.linalg.norm(moves, axis=1), np.array([0.1, 0.25, 0.5]) * r)
+    assert (moves @ side / np.linalg.norm(moves, axis=1) > 0.7).all()
+    dist = np.linalg.norm((ce.origins - true) @ B[:2].T, axis=1)
+    assert (dist[1:] < dist[0]).all()
+    # the store's volume stays candidate 0 whichever direction
+    assert np.array_equal(ce.volumes[0], st.read_volume_at(np.array([i]))[0])
+
+
+def test_centroid_cut_direction_on_a_constructed_half_disc():
+    # a disc of radius 1 about (2, 0) on the plane z = 0, seen only where x < 2.3 (a border at x = 2.3 cuts the rest):
+    # the visible points' centroid lies left of the border, the points at the border are the cut ones, so the direction
+    # is +x (geometry from memory); no point on a cut gives None
+    g = np.stack(np.meshgrid(np.linspace(-1, 1, 81), np.linspace(-1, 1, 81)), -1).reshape(-1, 2)
+    g = g[np.linalg.norm(g, axis=1) <= 1] + np.array([2.0, 0.0])
+    g = g[g[:, 0] < 2.3]
+    pts = np.c_[g, np.zeros(len(g))]
+    cut = g[:, 0] > 2.3 - 0.03
+    d = centroid_cut_direction(pts, cut, np.array([0.0, 0.0, 1.0]))
+    assert d is not None and np.allclose(d, [1.0, 0.0, 0.0], atol=1e-6)
+    assert centroid_cut_direction(pts, np.zeros(len(g), bool), np.array([0.0, 0.0, 1.0])) is None
+
+
+def test_find_cut_direction_reads_and_checks_the_key():
+    cfg = load_config(None)
+    assert find_cut_direction(cfg) == "circle"
+    cfg["mine"]["find_cut_direction"] = "centroid"
+    assert find_cut_direction(cfg) == "centroid"
+    cfg["mine"]["find_cut_direction"] = "middle"
+    with pytest.raises(InputError):
+        find_cut_direction(cfg)
+
+
 def test_find_cut_leaves_an_example_the_view_does_not_cut_alone(cut_world, tiny_world):
     from protomine.mine.library import read_library
     lib = read_library(tiny_world["library"])
@@ -137,3 +186,8 @@ def test_find_cut_leaves_an_example_the_view_does_not_cut_alone(cut_world, tiny_
     whole = [i for i in range(len(st)) if cut_example(st, i, Grid.from_config(off), ()) is None][0]
     a, b = find_similar(lib, st, st.ids[whole], off), find_similar(lib, st, st.ids[whole], on)
     assert np.array_equal(a.distance, b.distance) and np.array_equal(a.rank_key, b.rank_key)
+    # the centroid direction, a small move, the store's volume deciding: an uncut example still takes the unchanged path
+    cen = copy.deepcopy(off)
+    cen["mine"].update(find_cut=True, find_cut_offsets=[0.1], find_cut_direction="centroid", find_cut_decide=False)
+    c = find_similar(lib, st, st.ids[whole], cen)
+    assert np.array_equal(a.distance, c.distance) and np.array_equal(a.rank_key, c.rank_key)

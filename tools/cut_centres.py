@@ -6,7 +6,8 @@ or a nearer object), the in-plane distance (in units of the visible footprint's 
 - the visible footprint's circle centre (ingest's object frame, the grid's centre);
 - that centre moved by OFFSET x r toward the cut (``proposals.shifted_frames``), the direction as
   ``truncation.cut_direction`` takes it (from the circle's centre to the points on a cut pixel: the label stage's
-  ``[mine] view_cut_offsets`` and find's ``find_cut_offsets``), and from the visible points' centroid instead;
+  ``[mine] view_cut_offsets`` and find's ``find_cut_offsets``), and as ``truncation.centroid_cut_direction`` takes it
+  (from the visible points' centroid to the cut points' centroid: find's ``find_cut_direction = "centroid"``);
 
 with the share of views each moved centre brings nearer the truth and the share whose move points toward it (cosine
 above 0).  The views the border cuts and those a nearer object cuts are counted apart, and the views not cut are given
@@ -22,7 +23,7 @@ from protomine.geometry import plane_basis
 from protomine.ingest.pipeline import capture_rng
 from protomine.ingest.proposals import find_objects, shifted_frames
 from protomine.ingest.sharded import open_store
-from protomine.ingest.truncation import BORDER_PX, cut_direction, cut_pixels
+from protomine.ingest.truncation import BORDER_PX, centroid_cut_direction, cut_direction, cut_pixels
 
 folder = Path(sys.argv[1]); offset = float(sys.argv[2]) if len(sys.argv) > 2 else 0.25
 st = open_store(folder / "new_scans.h5"); cfg = st.config; seed = int(st.attrs["seed"])
@@ -55,11 +56,8 @@ for ci, name in enumerate(st.captures["name"]):
         on = np.zeros(H * W, bool)
         on[pix[cp]] = True
         onp = on[fd.pixels[sel]]
-        cen = pts.mean(axis=0)
-        cen = cen - ((cen - o) @ B[2]) * B[2]          # the visible points' centroid, on the footprint's plane
         row = [np.linalg.norm(rel) / r]
-        for ref in (o, cen):
-            d = cut_direction(pts, onp, ref, p.frame.up)
+        for d in (cut_direction(pts, onp, o, p.frame.up), centroid_cut_direction(pts, onp, p.frame.up)):
             if d is None:
                 row += [np.nan, np.nan]
                 continue

@@ -48,9 +48,21 @@ def find_cut_offsets(cfg: dict) -> tuple[float, ...]:
     return tuple(float(o) for o in (cfg["mine"].get("find_cut_offsets") or [0.0]) if float(o) != 0.0)
 
 
-def cut_example(store, ex: int, grid: Grid, offsets: tuple[float, ...]) -> CutExample | None:
+def find_cut_direction(cfg: dict) -> str:
+    """``[mine] find_cut_direction``: "circle" (the move toward the cut taken from the visible circle's centre, as the
+    label stage's ``view_cut_offsets``) or "centroid" (from the visible points' centroid)."""
+    d = str(cfg["mine"].get("find_cut_direction", "circle"))
+    if d not in ("circle", "centroid"):
+        from ..errors import InputError
+        raise InputError(None, "mine.find_cut_direction", f'expected "circle" or "centroid", got {d!r}')
+    return d
+
+
+def cut_example(store, ex: int, grid: Grid, offsets: tuple[float, ...], direction: str = "circle") -> CutExample | None:
     """The :class:`CutExample` of store object ``ex`` lifted on ``grid`` (the library's), or None (module docstring:
-    not cut, not a one-frame object, its capture not found or not reproducing the store's volume)."""
+    not cut, not a one-frame object, its capture not found or not reproducing the store's volume).  ``direction``: the
+    offsets' move toward the cut from the visible circle's centre or the visible points' centroid
+    (:func:`find_cut_direction`)."""
     from ..capture import read_capture
     from ..errors import InputError
     from ..ingest.pipeline import capture_rng, view_camera
@@ -90,7 +102,7 @@ def cut_example(store, ex: int, grid: Grid, offsets: tuple[float, ...]) -> CutEx
     if vc is None:
         return None
     sel = np.isin(fd.pixels, pix)
-    frames = [p.frame] + (_cut_frames(scene, fd, p, pix, fd.points[sel], fd.pixels[sel], offsets) if offsets else [])
+    frames = [p.frame] + (_cut_frames(scene, fd, p, pix, fd.points[sel], fd.pixels[sel], offsets, direction) if offsets else [])
     views = scene.views(p, [frame], others=grid.reads_others)
     vols = np.stack(lift_many([(views, f) for f in frames], grid))
     if not np.array_equal(vols[0], store.read_volume_at(np.array([ex]))[0]):

@@ -106,7 +106,7 @@ from ..mine.pipeline import period_of, store_aspect, world_quaternions, write_as
 from ..mine.symmetry import detect_symmetry
 from ..mine.searchpool import pooled
 from ..mine.tilts import TiltBank, TiltGrid, rotation_of, tilt_pose_distances
-from .cutexample import WithExample, cut_example, find_cut_offsets
+from .cutexample import WithExample, cut_example, find_cut_direction, find_cut_offsets
 from .knownclass import (OVERRULE_AGREE_MAX, KnownRoute, example_decision, fused_key, knn_margin, known_route, margin_key, members_key,
                          prototype_scores, rank_fusion, reciprocal_member_rank)
 from .names import check_name, refresh_gallery
@@ -279,7 +279,8 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         # ``[mine] find_cut``: a cut example decided as the label stage decides a cut view, and searched as the candidate
         # its decided prototype chose (``curate.cutexample``)
         from ..label.matcher import make_matcher
-        cut_ex = cut_example(store, ex, make_matcher(library, cfg, size=False).grid, find_cut_offsets(cfg))
+        cut_ex = cut_example(store, ex, make_matcher(library, cfg, size=False).grid, find_cut_offsets(cfg),
+                             find_cut_direction(cfg))
         if cut_ex is not None:
             decision = example_decision(library, store, ex, cfg, cut_ex)
             c = decision[3]

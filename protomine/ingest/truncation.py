@@ -70,6 +70,23 @@ def cut_direction(points: np.ndarray, cut: np.ndarray, origin: np.ndarray, up: n
     return m @ B[:2]
 
 
+def centroid_cut_direction(points: np.ndarray, cut: np.ndarray, up: np.ndarray) -> np.ndarray | None:
+    """In-plane unit direction (3,) (world) from the centroid of the object's visible world ``points`` (M, 3) to the
+    centroid of those on a cut (``cut`` (M,) bool): for a sliver along the image border the visible circle's centre
+    lies past the cut line (:func:`cut_direction` from it points away from the hidden part), while the visible points
+    lie on the near side of that line.  None when no point is on a cut or the two centroids coincide in the plane."""
+    pts = np.asarray(points, np.float64)
+    on = np.asarray(cut, bool)
+    if not on.any():
+        return None
+    B = plane_basis(np.asarray(up, np.float64))
+    d = (pts[on].mean(axis=0) - pts.mean(axis=0)) @ B[:2].T
+    n = float(np.linalg.norm(d))
+    if n < 1e-9:
+        return None
+    return (d / n) @ B[:2]
+
+
 @dataclass(frozen=True)
 class ViewCut:
     """What a single view could not see of the space about its object: the cells that project outside the image, and

@@ -80,7 +80,7 @@ from ..cores import one_blas_thread
 from ..errors import InputError
 from ..ingest.pipeline import capture_rng, pixel_bbox, unique_capture_names, view_camera
 from ..ingest.proposals import SceneObjects, centre_candidates, find_objects, shifted_frames
-from ..ingest.truncation import cut_direction, cut_pixels, view_cut
+from ..ingest.truncation import centroid_cut_direction, cut_direction, cut_pixels, view_cut
 from ..ingest.volume import Grid, lift_many, matching_features
 from ..mine.library import VIEW_CALIBRATION_FIELDS, Library, reduce_yaw
 from ..mine.memberknn import Members, class_knn, cluster_members, load_members, member_rows, searched_distances
@@ -715,13 +715,18 @@ def lift_frame(scene: SceneObjects, frame_id: str, grid: Grid, width: int, *, ge
 
 
 def _cut_frames(scene: SceneObjects, fd, p, pix: np.ndarray, points: np.ndarray, point_pixels: np.ndarray,
-                offsets: tuple[float, ...]) -> list:
+                offsets: tuple[float, ...], direction: str = "circle") -> list:
     """len(offsets) object frames of proposal ``p`` in frame ``fd``: its visible circle moved toward where the view
-    cuts it off (``ingest.truncation``); ``p.frame`` repeated when the view does not cut it."""
+    cuts it off (``ingest.truncation``); ``p.frame`` repeated when the view does not cut it.  ``direction``: the move's
+    direction taken from the visible circle's centre toward the points on a cut ("circle") or from the visible points'
+    centroid to the cut points' centroid ("centroid", find's ``[mine] find_cut_direction``)."""
     cut = cut_pixels(pix, fd.depth, scene.others_held(fd, pix).reshape(fd.depth.shape))
     on_cut = np.zeros(fd.depth.size, bool)
     on_cut[pix[cut]] = True
-    d = cut_direction(points, on_cut[point_pixels], p.frame.origin, p.frame.up)
+    if direction == "circle":
+        d = cut_direction(points, on_cut[point_pixels], p.frame.origin, p.frame.up)
+    else:
+        d = centroid_cut_direction(points, on_cut[point_pixels], p.frame.up)
     if d is None:
         return [p.frame] * len(offsets)
     return shifted_frames(points, p.frame, d, offsets)
