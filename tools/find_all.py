@@ -20,6 +20,7 @@ from protomine.mine.library import read_library
 from protomine.ingest.sharded import open_store
 from protomine.curate.oneshot import find_similar, retrieval_scores
 from protomine.mine.evaluate import read_truth_table
+from find_draw import find_examples   # tools/ is sys.path[0] when run as a script
 
 ap_ = argparse.ArgumentParser()
 ap_.add_argument("folder"); ap_.add_argument("config", nargs="?"); ap_.add_argument("--extra", type=int, default=0)
@@ -39,22 +40,17 @@ for o, k in zip(lib.members["object"], lib.members["cluster"]):
 cnames = {k: max(set(v), key=v.count) for k, v in cnames.items()}
 rows = []          # (class, drawn by the demo's draw, P@10, AP, cpu s)
 c0 = time.process_time()
-for cls in sorted({l for l in labels if l}):
-    idx = np.flatnonzero(labels == cls)
-    ex = int(np.random.default_rng(seed).choice(idx))
-    rest = idx[idx != ex]
-    more = np.random.default_rng(seed + 1).choice(rest, size=min(args.extra, len(rest)), replace=False) if args.extra else []
-    for e, drawn in [(ex, True)] + [(int(m), False) for m in more]:
-        c1 = time.process_time()
-        m = find_similar(lib, st, st.ids[e], cfg)
-        cpu = time.process_time() - c1
-        others = np.array([i for i in range(len(st)) if i != e])
-        k, p, ap = retrieval_scores(m, others, labels[others] == cls)
-        rows.append((cls, drawn, p, ap, cpu))
-        how = (f"{'members' if m.route.member_rank >= 0 else 'route'} {cnames.get(int(m.route.cluster), '?')} "
-               f"({m.route.example_score:.2f})" if m.route is not None and m.route.taken else "own")
-        print(f"  {cls:15s} {'mined' if cls in mined else 'never mined':11s} example {st.ids[e]:14s} "
-              f"{'draw ' if drawn else 'extra'} P@{k} {p:.2f} AP {ap:.3f} {how:26s} cpu {cpu:.1f} s", flush=True)
+for cls, e, drawn in find_examples(labels, seed, args.extra):
+    c1 = time.process_time()
+    m = find_similar(lib, st, st.ids[e], cfg)
+    cpu = time.process_time() - c1
+    others = np.array([i for i in range(len(st)) if i != e])
+    k, p, ap = retrieval_scores(m, others, labels[others] == cls)
+    rows.append((cls, drawn, p, ap, cpu))
+    how = (f"{'members' if m.route.member_rank >= 0 else 'route'} {cnames.get(int(m.route.cluster), '?')} "
+           f"({m.route.example_score:.2f})" if m.route is not None and m.route.taken else "own")
+    print(f"  {cls:15s} {'mined' if cls in mined else 'never mined':11s} example {st.ids[e]:14s} "
+          f"{'draw ' if drawn else 'extra'} P@{k} {p:.2f} AP {ap:.3f} {how:26s} cpu {cpu:.1f} s", flush=True)
 
 
 def summary(sel, what):

@@ -18,6 +18,7 @@ import numpy as np
 
 def cache(args):
     from protomine.cliutil import config_from
+    from find_draw import find_examples   # tools/ is sys.path[0] when run as a script
     from protomine.mine.library import read_library
     from protomine.ingest.sharded import open_store
     from protomine.curate import oneshot
@@ -45,24 +46,19 @@ def cache(args):
     oneshot.known_route, oneshot.rerank_pairwise = route_spy, pair_spy
     np.save(out / "labels.npy", labels.astype(str))
     np.save(out / "ids.npy", np.asarray(st.ids).astype(str))
-    for cls in sorted({l for l in labels if l}):
-        idx = np.flatnonzero(labels == cls)
-        ex = int(np.random.default_rng(seed).choice(idx))
-        rest = idx[idx != ex]
-        more = np.random.default_rng(seed + 1).choice(rest, size=min(args.extra, len(rest)), replace=False) if args.extra else []
-        for e, drawn in [(ex, True)] + [(int(m), False) for m in more]:
-            cap.clear()
-            c1 = time.process_time()
-            m = oneshot.find_similar(lib, st, st.ids[e], cfg)
-            others = np.array([i for i in range(len(st)) if i != e])
-            k, p, ap = oneshot.retrieval_scores(m, others, labels[others] == cls)
-            r = m.route
-            np.savez(out / f"ex{e}.npz", ex=e, cls=cls, drawn=drawn, p=p, ap=ap, D=m.distance,
-                     reverse=m.reverse if m.reverse is not None else np.zeros(0), rank_key=m.rank_key,
-                     taken=bool(r is not None and r.taken), s=r.example_score if r is not None else 0.0,
-                     Dk=cap.get("Dk", np.zeros((0, 0))), pair=cap.get("pair", np.zeros((0, 0))))
-            print(f"  {cls:15s} ex {e:4d} {'draw ' if drawn else 'extra'} P@{k} {p:.2f} AP {ap:.3f} "
-                  f"{'taken' if r is not None and r.taken else 'not taken'} cpu {time.process_time() - c1:.1f} s", flush=True)
+    for cls, e, drawn in find_examples(labels, seed, args.extra):
+        cap.clear()
+        c1 = time.process_time()
+        m = oneshot.find_similar(lib, st, st.ids[e], cfg)
+        others = np.array([i for i in range(len(st)) if i != e])
+        k, p, ap = oneshot.retrieval_scores(m, others, labels[others] == cls)
+        r = m.route
+        np.savez(out / f"ex{e}.npz", ex=e, cls=cls, drawn=drawn, p=p, ap=ap, D=m.distance,
+                 reverse=m.reverse if m.reverse is not None else np.zeros(0), rank_key=m.rank_key,
+                 taken=bool(r is not None and r.taken), s=r.example_score if r is not None else 0.0,
+                 Dk=cap.get("Dk", np.zeros((0, 0))), pair=cap.get("pair", np.zeros((0, 0))))
+        print(f"  {cls:15s} ex {e:4d} {'draw ' if drawn else 'extra'} P@{k} {p:.2f} AP {ap:.3f} "
+              f"{'taken' if r is not None and r.taken else 'not taken'} cpu {time.process_time() - c1:.1f} s", flush=True)
 
 
 def _scores(key, labels, ids, e, cls):

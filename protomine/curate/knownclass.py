@@ -134,16 +134,18 @@ class KnownRoute:
                             # than the example's (-1: not asked); taken when below r (module docstring, 7.)
 
 
-def example_decision(library: Library, store, ex: int, cfg: dict, cut_ex=None) -> tuple[int, float, float, int]:
+def example_decision(library: Library, store, ex: int, cfg: dict, cut_ex=None, matcher=None
+                     ) -> tuple[int, float, float, int]:
     """(b, score, cut, candidate): the label stage's decision on store object ``ex``'s volume (``label.matcher``).
     ``cut_ex`` (``curate.cutexample.CutExample``, ``[mine] find_cut_offsets``): a cut example decided as the label
     stage decides a cut view: its candidates searched together (per prototype the nearest), with its ``ViewCut`` (the
     copies seen from its camera lose what it could not see; the cut views' unknown cut); ``candidate`` is the one its
-    decided prototype chose (0 without ``cut_ex``: the store's volume)."""
+    decided prototype chose (0 without ``cut_ex``: the store's volume).  ``matcher``: ``make_matcher(library, cfg,
+    size=False)`` when the caller has built it."""
     from ..label.matcher import make_matcher
     # ``[mine] label_size`` stays out of the route's decision: measured on the default seed-0 demo, the size moved the
     # never-mined tape dispenser example onto a known class the route then took (P@10 0.70 -> 0.00)
-    mt = make_matcher(library, cfg, size=False)
+    mt = make_matcher(library, cfg, size=False) if matcher is None else matcher
     cam = _camera(store, ex)
     cam = None if cam is None else cam[None]
     if cut_ex is None:

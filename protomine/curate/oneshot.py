@@ -279,13 +279,13 @@ def _find(library: Library, store: ObjectStore, ex: int, cfg: dict) -> Matches:
         # ``[mine] find_cut``: a cut example decided as the label stage decides a cut view, and searched as the candidate
         # its decided prototype chose (``curate.cutexample``)
         from ..label.matcher import make_matcher
-        cut_ex = cut_example(store, ex, make_matcher(library, cfg, size=False).grid, find_cut_offsets(cfg),
-                             find_cut_direction(cfg))
+        mt = make_matcher(library, cfg, size=False)    # the route's matcher: the library's grid, checked
+        cut_ex = cut_example(store, ex, mt.grid, find_cut_offsets(cfg), find_cut_direction(cfg))
         if cut_ex is not None:
-            decision = example_decision(library, store, ex, cfg, cut_ex)
+            decision = example_decision(library, store, ex, cfg, cut_ex, matcher=mt)
             c = decision[3]
             if not cfg["mine"].get("find_cut_decide", True):   # the route decides on the store's volume, as without
-                decision = example_decision(library, store, ex, cfg)
+                decision = example_decision(library, store, ex, cfg, matcher=mt)
             if c > 0 and cfg["mine"].get("find_cut_search", True):
                 store = WithExample(store, ex, cut_ex.volumes[c], cut_ex.sizes[c])
     scales = tuple(library.scales)

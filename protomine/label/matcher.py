@@ -228,22 +228,21 @@ class Matcher:
                            if self.cut_split and self.view_ratios is not None and self.view_members is None
                            and self.view_size is None and "unknown_view_ratio_cut_whole" in at
                            and "unknown_view_ratio_cut_cut" in at else None)
-        # ``[mine] unknown_cut_shrink``: each stratum's cut drawn toward the pooled one by its number of held-out views
-        # (the strata's joined values, unknown_view_joined_cut / _whole; a library without them keeps the strata's cuts)
-        if (self.split_cuts is not None and self.cut_shrink > 0 and "unknown_view_joined_whole" in at
-                and "unknown_view_joined_cut" in at):
-            from ..mine.openset import shrunk_stratum_cut
-            pooled = float(at["unknown_view_ratio_cut"])
-            self.split_cuts = tuple(shrunk_stratum_cut(c, len(np.atleast_1d(at[a])), pooled, self.cut_shrink)
-                                    for c, a in zip(self.split_cuts, ("unknown_view_joined_whole", "unknown_view_joined_cut")))
         # ``[mine] unknown_cut_split_below``: the split only where the views that cut their object off are the exception
         # (under this share of the held-out views; where objects touch, most views are cut off by a neighbour and the few
-        # whole ones are not like the label stage's whole views): otherwise the pooled cut for all
-        if (self.split_cuts is not None and self.cut_split_below < 1.0 and "unknown_view_joined_whole" in at
-                and "unknown_view_joined_cut" in at):
-            n_cut, n_whole = (len(np.atleast_1d(at[a])) for a in ("unknown_view_joined_cut", "unknown_view_joined_whole"))
-            if n_cut >= self.cut_split_below * (n_cut + n_whole):
+        # whole ones are not like the label stage's whole views): otherwise the pooled cut for all.
+        # ``[mine] unknown_cut_shrink``: each stratum's cut drawn toward the pooled one by its number of held-out views.
+        # Both need the strata's joined values (unknown_view_joined_whole / _cut; a library without them keeps the
+        # strata's own cuts)
+        if self.split_cuts is not None and "unknown_view_joined_whole" in at and "unknown_view_joined_cut" in at:
+            n_whole, n_cut = (len(np.atleast_1d(at[a])) for a in ("unknown_view_joined_whole", "unknown_view_joined_cut"))
+            if self.cut_split_below < 1.0 and n_cut >= self.cut_split_below * (n_cut + n_whole):
                 self.split_cuts = None
+            elif self.cut_shrink > 0:
+                from ..mine.openset import shrunk_stratum_cut
+                pooled = float(at["unknown_view_ratio_cut"])
+                self.split_cuts = tuple(shrunk_stratum_cut(c, n, pooled, self.cut_shrink)
+                                        for c, n in zip(self.split_cuts, (n_whole, n_cut)))
         self.P = np.asarray(self.library.prototypes["features"], np.float32)
         V = np.asarray(self.library.prototypes["weights"], np.float32)
         self.V = V if self.weighted else np.ones_like(V)
