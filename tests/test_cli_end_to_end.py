@@ -293,7 +293,9 @@ def test_bench_quick_writes_every_row(tmp_path):
     t = doc["tilt_mining"]  # the tilt mining row's smoke test: 30 tumbled objects, K = 3
     assert t["n_objects"] == 30 and t["peak_rss_mb"] > 0 and 0.0 <= t["nmi"] <= 1.0 and t["cpu_s"] > 0
     r = doc["tilts"]  # the tilt search row, wall and CPU ratios side by side
-    assert all(np.isfinite(r[k]) and r[k] > 0 for k in ("ratio_per_tilt", "ratio_per_tilt_cpu", "tilt_cpu_s"))
+    assert all(np.isfinite(r[k]) and r[k] > 0 for k in ("ratio_per_tilt", "ratio_per_tilt_cpu", "tilt_cpu_s",
+                                                          "ratio_per_tilt_flat12_cpu", "ratio_per_tilt_flat48_cpu",
+                                                          "flat_growth", "tilt_vs_flat48_cpu"))
     assert "mining" in res.stdout and "assignment" in res.stdout
 
 

@@ -22,7 +22,12 @@ process (first run of the tilt search; on a shared machine the wall clock also c
 ``tilt_margin_cpu_s``: the CPU seconds of the same search, cold, refining only the pairs within ``BENCH_MARGIN`` of
 each object's best so far (``[mine] tilt_refine_margin``; the mining passes' switch, off by default);
 ``tilt_screen_cpu_s``, ``ratio_per_tilt_screen_cpu``: the same search, cold, with its first level a screen on the
-azimuth frequencies 0 .. ``BENCH_BINS`` (``[mine] tilt_coarse_bins``, ``tilts.band_limited``; off by default).  The
+azimuth frequencies 0 .. ``BENCH_BINS`` (``[mine] tilt_coarse_bins``, ``tilts.band_limited``; off by default); ``flat12_cpu_s``, ``flat48_cpu_s`` and ``ratio_per_tilt_flat12_cpu``,
+``ratio_per_tilt_flat48_cpu``: flat searches, every direction of one HEALPix level (N_side 1: 12, N_side 2: 48)
+for every (object, prototype) pair at every scale, cold, so T is exactly 12 N_side^2 (the issue's "pose search with T
+tilts"); ``flat_growth``: the 48-tilt search's CPU over 4 x the 12-tilt one's (1 = linear in T); and
+``tilt_vs_flat48_cpu``: the default coarse-to-fine search's CPU over the flat 48-tilt search's (it reaches the 15
+degree spacing of N_side 4's 192 directions).  The
 tilt search runs its many small operations (copies, column factors, the refinement's products) and the coarse
 level's row blocks on ``searchpool.spectra_pool``'s threads, one torch thread each (``searchpool.pooled``).
 
@@ -189,6 +194,7 @@ from .tilts import TiltBank, TiltGrid
 
 BENCH_MARGIN = 0.25  # the row's search with [mine] tilt_refine_margin at this value (tilt_margin_cpu_s)
 BENCH_BINS = 6       # the row's search with [mine] tilt_coarse_bins at this value (tilt_screen_cpu_s)
+FLAT_NSIDES = (1, 2)  # one-level (flat) searches over all 12 N_side 1 / all 48 N_side 2 directions (flat12_*, flat48_*)
 
 
 def bench_tilts(quick: bool, seed: int, n: int | None = None) -> dict:
@@ -227,17 +233,27 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
         runs.append((t2 - t1, t3 - t2))
         cpus.append(c3 - c1)
         yaw_s, yaw_cpu = min(yaw_s, t1 - t0), min(yaw_cpu, c1 - c0)
-    def cold_cpu(**switch) -> float:
-        """CPU seconds of the same search, cold, with a mining pass's switch."""
+    def cold_cpu(search_grid=grid, **switch) -> float:
+        """CPU seconds of the same search (or one over ``search_grid``), cold, with a mining pass's switch."""
         tilts._GEOMETRY_CACHE.clear()
         c0 = _cpu()
-        TiltBank(P, V, np.ones(K), SCALES, grid, **switch).match_spectra(o)
+        TiltBank(P, V, np.ones(K), SCALES, search_grid, **switch).match_spectra(o)
         return _cpu() - c0
 
     # refining only the pairs within BENCH_MARGIN of each object's best ([mine] tilt_refine_margin), and screening
     # the first level on the azimuth frequencies 0 .. BENCH_BINS ([mine] tilt_coarse_bins)
     margin_cpu = cold_cpu(refine_margin=BENCH_MARGIN)
     screen_cpu = cold_cpu(coarse_bins=BENCH_BINS)
+    # flat searches: every direction of one HEALPix level for every pair at every scale, T = 12 N_side^2 exactly
+    flat = {}
+    for ns in FLAT_NSIDES:
+        T = 12 * ns * ns
+        cpu = cold_cpu(TiltGrid(nsides=(ns,)))
+        flat.update({f"flat{T}_cpu_s": cpu, f"ratio_per_tilt_flat{T}_cpu": cpu / max(yaw_cpu, 1e-9) / T})
+    big = 12 * FLAT_NSIDES[-1] ** 2
+    flat["flat_growth"] = (flat[f"flat{big}_cpu_s"] / flat[f"flat{12 * FLAT_NSIDES[0] ** 2}_cpu_s"]
+                           / (FLAT_NSIDES[-1] / FLAT_NSIDES[0]) ** 2)
+    flat[f"tilt_vs_flat{big}_cpu"] = cpus[0] / max(flat[f"flat{big}_cpu_s"], 1e-9)
     (build_s, search_s), warm = runs[0], sum(runs[1])
     tilt_s = build_s + search_s
     T0 = len(grid.level(0))
@@ -250,7 +266,7 @@ def _bench_tilts_rows(P, V, o, yaw_bank, grid, n: int, K: int) -> dict:
             "tilt_warm_s": warm, "ratio_per_tilt_warm": warm / yaw_s / per_pair,
             "yaw_cpu_s": yaw_cpu, "tilt_cpu_s": cpus[0], "ratio_per_tilt_cpu": cpus[0] / max(yaw_cpu, 1e-9) / per_pair,
             "tilt_margin_cpu_s": margin_cpu, "tilt_screen_cpu_s": screen_cpu,
-            "ratio_per_tilt_screen_cpu": screen_cpu / max(yaw_cpu, 1e-9) / per_pair,
+            "ratio_per_tilt_screen_cpu": screen_cpu / max(yaw_cpu, 1e-9) / per_pair, **flat,
             "load_1m": os.getloadavg()[0]}
 
 
