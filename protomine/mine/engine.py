@@ -1076,11 +1076,12 @@ def _polished_rotations(source: Source, labels: np.ndarray, dist: np.ndarray, ro
     chose.
 
     ``own_out`` (``[mine] pose_polish_own_out``): the member's own pose is judged on the candidates' footing and without
-    its own share of the prototype: its distance is the search's (yaw x scale) against the resampled copy at its own up
-    (``TiltBank.copies_at``, +z too) with the member, aligned at that copy's best yaw and scale, taken out of the copy's
-    weighted mean (:func:`own_out_copy`, the prototype of the other members as that copy sees them); every candidate
-    is a resampled copy as well (+z too), and the best candidate turning more than ``POLISH_MIN_TURN_DEG`` from the
-    member's pose is taken when its distance is below (1 - ``POLISH_MARGIN``) x that.  Without it the fit's ``dist``
+    its own share of the prototype: every member carried into the prototype's frame at its pose
+    (:func:`member_in_frame`), the cluster's aligned sums taken from them, and each member searched (yaw x scale)
+    against the prototype of the others (:func:`left_out`) resampled at its own up and at every candidate up (+z too:
+    one footing); the best candidate whose up is more than ``POLISH_MIN_TURN_DEG`` from the member's is taken when its
+    distance is below (1 - ``OWN_OUT_MARGIN``) x its own up's; ``OWN_OUT_ROUNDS`` rounds, the sums rebuilt from the
+    members' poses before each (:func:`_polished_own_out`).  Without it the fit's ``dist``
     is the reference, which for a member matched turned onto its own face (``face_assign``) or at the identity tilt
     is on another footing (the prototype itself: L brackets 0.008 against 0.026-0.029 at their pose resampled), and
     which counts the member's own pull on its prototype (a tenth of a cluster of ten: its distance 15-25% lower)."""
@@ -1179,7 +1180,7 @@ def own_out_choice(x: np.ndarray, w: np.ndarray, a: float, R0: np.ndarray, P: np
     ``sums`` = (num, den, n): its members' aligned sums, this member's among them, :func:`member_in_frame`) searched
     against that prototype without it (:func:`left_out`), its own
     pose and every candidate on one footing (resampled copies, +z too): the distance at its own up (yaw x scale),
-    and the best pose turning more than ``POLISH_MIN_TURN_DEG`` from R0 over the grid's finest level (and +z),
+    and the best pose turning away from R0 (:func:`_turned_away`) over the grid's finest level (and +z),
     refined on ``POLISH_NSIDES`` around it: (d_own, d, up, yaw); d = inf when no such pose."""
     from .posesearch import pose_distances
     fine = grid.dirs[grid.level(len(grid.nsides) - 1)]
