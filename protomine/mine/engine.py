@@ -1210,9 +1210,10 @@ def own_out_choice(x: np.ndarray, w: np.ndarray, a: float, R0: np.ndarray, P: np
 
 
 OWN_OUT_MARGIN = 0.05  # pose_polish_own_out: a member moves when the best pose onto another up is this share below its
-# own pose's distance (both against its prototype without it); run on the circle_support libraries of all-stereo seed
-# 1, default seed 1 and touching seed 1: 0.02 moved 5 members right (rotation error above 20 -> below 10 deg) and
-# turned 6 others over; 0.05 none turned over, 0.1 fewer moved right
+# own pose's distance (both against its prototype without it).  Run post hoc from the circle_support libraries' final
+# poses (all-stereo seed 1, default seed 1, touching seed 1; members above / below 20 deg of rotation error): 0.02 moved
+# 11 right and turned 8 right ones wrong (upright jugs, an L bracket, tile boxes), 0.05 9 right and 6 wrong; mined again
+# with 0.05 (the polish starting from the fit's poses) the three lose 5, 5 and 3 turned-over members (README)
 OWN_OUT_ROUNDS = 3  # pose_polish_own_out: rounds of (the prototype rebuilt from its members at their poses, every member
 # decided against it without itself, the moves made together); stops early when none moves
 
