@@ -281,7 +281,7 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
                            tilts=model.tilts, face_pairs=model.face_pairs, face_assign=model.face_assign,
                            face_updates=model.face_updates, face_hold_unmoved=model.face_hold_unmoved,
                            symmetry_break_effect=model.symmetry_break_effect, pose_sync=model.pose_sync,
-                           pose_polish=model.pose_polish,
+                           pose_polish=model.pose_polish, polish_own_out=model.polish_own_out,
                            init=(model.prototypes_[rest], model.prototype_weights_[rest],
                                  None if model.aspect_ is None else model.aspect_[rest]),
                            progress=model.progress).fit(source)

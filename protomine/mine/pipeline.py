@@ -146,7 +146,8 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
                   face_hold_unmoved=bool(m.get("face_assign_hold_unmoved", False)),
                   symmetry_break_effect=float(m.get("symmetry_break_effect", 0.0)),
                   pose_sync=bool(m.get("pose_sync", False)), seed_veto_k=int(m.get("seed_veto_k", 0)),
-                  pose_polish=bool(m.get("pose_polish", False)))
+                  pose_polish=bool(m.get("pose_polish", False)),
+                  polish_own_out=bool(m.get("pose_polish_own_out", False)))
     if cfg.get("scale", {}).get("batch_size", 0):
         from .minibatch import fit_minibatch  # yaw-only (grid is None in this mode)
         return fit_minibatch(src, cfg, seed, k, max_k=min(m["max_clusters"], len(store) - 1), progress=progress)
