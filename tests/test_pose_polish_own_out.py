@@ -45,19 +45,24 @@ def test_left_out_is_the_weighted_mean_of_the_others():
         left_out(W[0][None] * X[0], W[0], 1, X[0], W[0])
 
 
-def _cluster():
-    """Four L solids upright and one upside down (turned 180 deg about x), every one recorded upright (identity):
-    the prototype is their weighted mean as the fit would average them at those poses."""
+def _four_up_one_down():
+    """Four L solids upright and one upside down (turned 180 deg about x): their true rotations (5, 3, 3) and their
+    volumes X (5, C, R, A, H), weights W (5, R, A, H) and aspects a (5,)."""
     rng = np.random.default_rng(0)
     true = [np.eye(3)] * 4 + [Rotation.from_euler("x", 180, degrees=True).as_matrix()]
     posed = [_posed("ell", R, rng) for R in true]
-    X = np.stack([p[0] for p in posed])
-    W = np.stack([p[1] for p in posed])
-    a = np.array([p[2] for p in posed])
+    return (np.stack(true), np.stack([p[0] for p in posed]), np.stack([p[1] for p in posed]),
+            np.array([p[2] for p in posed]))
+
+
+def _cluster():
+    """``_four_up_one_down``, every one recorded upright (identity): the prototype is their weighted mean as the fit
+    would average them at those poses."""
+    true, X, W, a = _four_up_one_down()
     P = ((W[:, None] * X).sum(axis=0) / np.maximum(W.sum(axis=0), 1e-12))[None].astype(np.float32)
     V = (W.sum(axis=0) / len(X))[None].astype(np.float32)
     grid = TiltGrid(nsides=(1, 2, 4), radial_margin=MARGINS[0], height_margin=MARGINS[1])
-    return X, W, a, P, V, grid, np.stack(true)
+    return X, W, a, P, V, grid, true
 
 
 def test_own_out_turns_back_the_member_the_fit_took_upright():
@@ -78,19 +83,14 @@ def test_own_out_leaves_a_cluster_recorded_at_its_true_poses():
     # the same five recorded at their true rotations (the prototype their mean at those poses: the upside-down one
     # turned back by its transpose, i.e. counted upright): every own pose is nearest, nothing moves (the rule:
     # a move only when another up is 5% nearer, engine.OWN_OUT_MARGIN)
-    rng = np.random.default_rng(0)
-    true = [np.eye(3)] * 4 + [Rotation.from_euler("x", 180, degrees=True).as_matrix()]
-    posed = [_posed("ell", R, rng) for R in true]
-    X = np.stack([p[0] for p in posed])
-    W = np.stack([p[1] for p in posed])
-    a = np.array([p[2] for p in posed])
+    true, X, W, a = _four_up_one_down()
     up = [_posed("ell", np.eye(3), np.random.default_rng(1))]  # the fifth as the fit would see it turned back
     Xa = np.concatenate([X[:4], up[0][0][None]])
     Wa = np.concatenate([W[:4], up[0][1][None]])
     P = ((Wa[:, None] * Xa).sum(axis=0) / np.maximum(Wa.sum(axis=0), 1e-12))[None].astype(np.float32)
     V = (Wa.sum(axis=0) / len(Xa))[None].astype(np.float32)
     grid = TiltGrid(nsides=(1, 2, 4), radial_margin=MARGINS[0], height_margin=MARGINS[1])
-    R, moved = _polished_own_out(ArraySource(X, W, a), np.zeros(len(X), np.int64), np.stack(true), P, V,
+    R, moved = _polished_own_out(ArraySource(X, W, a), np.zeros(len(X), np.int64), true, P, V,
                                  np.array([float(np.mean(a))]), SCALES, grid, chunk_size=8, bank=None)
     assert not moved.any(), moved
-    np.testing.assert_array_equal(R, np.stack(true))
+    np.testing.assert_array_equal(R, true)

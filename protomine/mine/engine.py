@@ -1224,7 +1224,7 @@ def _polished_own_out(source: Source, labels: np.ndarray, rotation: np.ndarray, 
     """``_polished_rotations(own_out=True)``: per cluster of two or more, ``OWN_OUT_ROUNDS`` rounds: the members'
     aligned sums at their poses (:func:`member_in_frame`, aligned against the fit's prototype in the first round and
     against the rebuilt one after), then every member by :func:`own_out_choice` against those sums without it, moved
-    when the best pose onto another up is below (1 - ``POLISH_MARGIN``) x its own pose's distance."""
+    when the best pose onto another up is below (1 - ``OWN_OUT_MARGIN``) x its own pose's distance."""
     R = np.array(rotation, np.float64, copy=True)
     moved = np.zeros(len(labels), bool)
     obj_aspect = _source_aspect(source)
