@@ -1160,39 +1160,31 @@ def left_out(num: np.ndarray, den: np.ndarray, n: int, xa: np.ndarray, wa: np.nd
     return P2[0], V2[0]
 
 
-OWN_OUT_UP_ONLY = True  # pose_polish_own_out: a candidate turns away when its up is more than POLISH_MIN_TURN_DEG from the
-# member's (another face); False: when its rotation is (a yaw about up as well)
+def _turned_away(ups: np.ndarray, R0: np.ndarray) -> np.ndarray:
+    """Which candidate ups (M, 3) (prototype frame) lie more than ``POLISH_MIN_TURN_DEG`` from R0's (3, 3): another
+    face (a yaw about the member's own up is pose_sync's)."""
+    return rot.angle_between_deg(np.asarray(ups, np.float64), np.asarray(R0, np.float64)[2][None]) > POLISH_MIN_TURN_DEG
 
 
-def _turned_away(ups: np.ndarray, yaw: np.ndarray, R0: np.ndarray) -> np.ndarray:
-    """Which candidate poses (ups (M, 3) in the prototype frame, yaws (M,)) turn more than ``POLISH_MIN_TURN_DEG`` from
-    R0 (3, 3): by their up alone (``OWN_OUT_UP_ONLY``) or by the whole rotation."""
-    R0 = np.asarray(R0, np.float64)
-    if OWN_OUT_UP_ONLY:
-        return rot.angle_between_deg(np.asarray(ups, np.float64), R0[2][None]) > POLISH_MIN_TURN_DEG
-    return rot.geodesic_deg(rot.tilt_yaw_to_matrix(ups, yaw), R0[None]) > POLISH_MIN_TURN_DEG
-
-
-def own_out_choice(x: np.ndarray, w: np.ndarray, a: float, R0: np.ndarray, P: np.ndarray, V: np.ndarray,
+def own_out_choice(x: np.ndarray, w: np.ndarray, R0: np.ndarray, aligned: tuple[np.ndarray, np.ndarray],
                    sums: tuple[np.ndarray, np.ndarray, int], aspect: float, scales: tuple[float, ...], grid: TiltGrid
                    ) -> tuple[float, float, np.ndarray, float]:
-    """One member x (C, R, A, H), w (R, A, H) of aspect ``a`` at rotation R0 of its prototype P, V (aspect ``aspect``;
-    ``sums`` = (num, den, n): its members' aligned sums, this member's among them, :func:`member_in_frame`) searched
-    against that prototype without it (:func:`left_out`), its own
+    """One member x (C, R, A, H), w (R, A, H) at rotation R0 of its prototype (aspect ``aspect``; ``aligned`` = the
+    member carried into the prototype's frame, :func:`member_in_frame`; ``sums`` = (num, den, n): its members' aligned
+    sums, this member's among them) searched against that prototype without it (:func:`left_out`), its own
     pose and every candidate on one footing (resampled copies, +z too): the distance at its own up (yaw x scale),
     and the best pose turning away from R0 (:func:`_turned_away`) over the grid's finest level (and +z),
     refined on ``POLISH_NSIDES`` around it: (d_own, d, up, yaw); d = inf when no such pose."""
     from .posesearch import pose_distances
     fine = grid.dirs[grid.level(len(grid.nsides) - 1)]
     dirs = np.concatenate([np.array([[0.0, 0.0, 1.0]]), fine])
-    xa, wa = member_in_frame(x, w, a, R0, P, V, scales, grid)
-    p2, v2 = left_out(sums[0], sums[1], sums[2], xa, wa)
+    p2, v2 = left_out(sums[0], sums[1], sums[2], *aligned)
     own = TiltBank(p2[None], v2[None], np.array([aspect]), scales, grid)
     x1, w1 = x[None], w[None]
     pc, vc = own.copies_at(0, np.concatenate([np.asarray(R0)[2][None], dirs]))
     pm = pose_distances(x1, w1, pc, vc, scales=scales)
     d_own, D, Y = float(pm.D[0, 0]), pm.D[0, 1:], pm.yaw_deg[0, 1:]
-    far = _turned_away(dirs, Y, R0) & np.isfinite(D)
+    far = _turned_away(dirs, R0) & np.isfinite(D)
     if not far.any():
         return d_own, np.inf, np.array([0.0, 0.0, 1.0]), 0.0
     b = int(np.flatnonzero(far)[np.argmin(D[far])])
@@ -1201,7 +1193,7 @@ def own_out_choice(x: np.ndarray, w: np.ndarray, a: float, R0: np.ndarray, P: np
         cu = cand_all[rot.angle_between_deg(cand_all, u[None]) <= radius]
         pcl, vcl = own.copies_at(0, cu)
         ql = pose_distances(x1, w1, pcl, vcl, scales=scales)
-        ok = _turned_away(cu, ql.yaw_deg[0], R0) & np.isfinite(ql.D[0])
+        ok = _turned_away(cu, R0) & np.isfinite(ql.D[0])
         if ok.any():
             j = int(np.flatnonzero(ok)[np.argmin(ql.D[0][ok])])
             if ql.D[0, j] < d:
@@ -1234,13 +1226,14 @@ def _polished_own_out(source: Source, labels: np.ndarray, rotation: np.ndarray, 
             continue
         ref = (P[k], V[k])
         for _ in range(OWN_OUT_ROUNDS):
-            num, den, aref = 0.0, 0.0, ref
+            num, den, aligned = 0.0, 0.0, {}
             for r0 in range(0, rows.size, chunk_size):
                 part = rows[r0:r0 + chunk_size]
                 x, w = _gather(source, part, chunk_size)
                 for i, r in enumerate(part):
                     xa, wa = member_in_frame(np.asarray(x[i], np.float32), np.asarray(w[i], np.float32),
-                                             float(obj_aspect[r]), R[r], aref[0], aref[1], scales, grid)
+                                             float(obj_aspect[r]), R[r], ref[0], ref[1], scales, grid)
+                    aligned[r] = (xa, wa)   # each member's share, left out again below
                     num, den = num + wa[None] * xa, den + wa
             Pk, Vk = weighted_means(num[None], den[None], np.array([rows.size]))
             ref = (Pk[0], Vk[0])
@@ -1249,9 +1242,8 @@ def _polished_own_out(source: Source, labels: np.ndarray, rotation: np.ndarray, 
                 part = rows[r0:r0 + chunk_size]
                 x, w = _gather(source, part, chunk_size)
                 for i, r in enumerate(part):
-                    d_own, d, u, y = own_out_choice(np.asarray(x[i], np.float32), np.asarray(w[i], np.float32),
-                                                    float(obj_aspect[r]), R[r], aref[0], aref[1], (num, den, rows.size),
-                                                    float(aspect[k]), scales, grid)
+                    d_own, d, u, y = own_out_choice(np.asarray(x[i], np.float32), np.asarray(w[i], np.float32), R[r],
+                                                    aligned[r], (num, den, rows.size), float(aspect[k]), scales, grid)
                     if np.isfinite(d_own) and d < (1.0 - OWN_OUT_MARGIN) * d_own:
                         new[r] = rot.tilt_yaw_to_matrix(u, y)
             if not new:

@@ -646,7 +646,8 @@ def view_ratio_calibration(D: np.ndarray, d: np.ndarray, own: np.ndarray, own_up
         if min(c.sum(), (~c).sum()) >= MIN_FACE_STRETCH_VIEWS:
             out["unknown_view_ratio_cut_cut"] = conformal_cut(joined[c], alpha)
             out["unknown_view_ratio_cut_whole"] = conformal_cut(joined[~c], alpha)
-            # the strata's joined values themselves (sorted): the label stage's ``[mine] unknown_cut_floor``
+            # the strata's joined values themselves (sorted): their counts set the label stage's ``[mine]
+            # unknown_cut_split_below`` and ``unknown_cut_shrink``
             out["unknown_view_joined_cut"] = np.sort(joined[c])
             out["unknown_view_joined_whole"] = np.sort(joined[~c])
     if xm is not None and np.isfinite(xm).sum() > 1:
