@@ -216,7 +216,7 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     from .mine.evaluate import evaluate_mining, read_truth_table
     from .mine.pipeline import mine_store
     from .progress import replay
-    from .scenes.scenario import add_truth_turns, generate_scenario
+    from .scenes.scenario import add_truth_turns, generate_scenario, held_out_setting, scene_params
 
     cfg = config_from(config if config is not None or not quick else "fast")
     size = QUICK_SIZE if quick else FULL_SIZE
@@ -227,13 +227,15 @@ def _demo(out: Path, captures: int | None, single: int | None, frames: int | Non
     out.mkdir(parents=True, exist_ok=True)
     scenes = out / "scenes"
     stereo = float(cfg["scenes"]["stereo_fraction"])
-    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, "size": list(size), **cfg["scenes"]}
+    params = {"captures": captures, "single": single, "frames": frames, "seed": seed, "size": list(size),
+              **scene_params(cfg["scenes"])}
     if rerender or not _scenario_matches(scenes, params):
         say(f"rendering {captures} mining captures x {frames} frames and {single} single-frame captures "
             f"({stereo:.0%} with active-stereo depth)")
         generate_scenario(scenes, n_mining=captures, n_single=single, frames=frames, width=size[0], height=size[1], seed=seed,
                           family=cfg["scenes"]["family"], tumbled_fraction=cfg["scenes"]["tumbled_fraction"],
-                          touching=cfg["scenes"]["touching"], stereo_fraction=stereo, progress=say, executor=executor)
+                          touching=cfg["scenes"]["touching"], stereo_fraction=stereo, progress=say, executor=executor,
+                          held_out=held_out_setting(cfg["scenes"]))
         doc = json.loads((scenes / "scenario.json").read_text())
         doc["demo_params"] = params
         write_text(scenes / "scenario.json", json.dumps(doc, indent=1))

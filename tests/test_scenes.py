@@ -14,6 +14,7 @@ from protomine.capture import Intrinsics, read_capture, write_capture
 from protomine.scenes import shapes as S
 from protomine.scenes.noise import add_sensor_noise, axial_sigma
 from protomine.scenes.render import Render, Scene, SceneObject, look_at, render
+from protomine.errors import InputError
 from protomine.scenes.scenario import generate_scenario
 
 K_SMALL = Intrinsics(64, 48, 60.0, 60.0, 31.5, 23.5)
@@ -293,3 +294,27 @@ def test_layout_drawn_again_from_recorded_resting_poses_is_the_computed_one():
         assert tuple(a.shape.lo) == tuple(b.shape.lo) and tuple(a.shape.hi) == tuple(b.shape.hi)
     with pytest.raises(RuntimeError, match="other resting poses"):
         _layout(pool, np.random.default_rng(12), {}, 0.5, _RestingRecord(rec.poses).replay)
+
+
+def test_held_out_classes_setting_picks_the_never_mined_classes(tmp_path):
+    # [scenes] held_out_classes: the named classes appear in single-frame captures only, the family's others are
+    # mined; "" keeps items.toml's marks; a name outside the family is one clear error naming the key
+    from protomine.scenes.scenario import held_out_setting, scene_params
+    assert held_out_setting({"held_out_classes": ""}) is None
+    assert held_out_setting({"held_out_classes": " tile_box, tripod_stand "}) == ["tile_box", "tripod_stand"]
+    assert "held_out_classes" not in scene_params({"family": "tools", "held_out_classes": ""})
+    assert scene_params({"held_out_classes": "jug"}) == {"held_out_classes": "jug"}
+    out = tmp_path / "swap"
+    generate_scenario(out, n_mining=2, n_single=2, frames=1, width=64, height=48, seed=3,
+                      held_out=["tile_box", "tripod_stand"])
+    doc = json.loads((out / "scenario.json").read_text())
+    tools = {c.name for c in load_item_classes() if c.family == "tools"}
+    assert set(doc["classes"]["held_out"]) == {"tile_box", "tripod_stand"}
+    assert set(doc["classes"]["mining"]) == tools - {"tile_box", "tripod_stand"}
+    full = _rows(out / "truth_full.csv")
+    assert not any(r["class"] in {"tile_box", "tripod_stand"} for r in full if r["split"] == "mining")
+    with pytest.raises(InputError, match="held_out_classes"):
+        generate_scenario(tmp_path / "bad", n_mining=1, n_single=0, frames=1, width=64, height=48, held_out=["anvil"])
+    with pytest.raises(InputError, match="held_out_classes"):
+        generate_scenario(tmp_path / "bad2", n_mining=1, n_single=0, frames=1, width=64, height=48,
+                          held_out=sorted(tools))

@@ -7,7 +7,7 @@ from typing import Annotated
 import typer
 
 from ..cliutil import ConfigOpt, QuietOpt, SeedOpt, VerboseOpt, config_from, reporter
-from .scenario import generate_scenario
+from .scenario import generate_scenario, held_out_setting
 
 
 def scenes(
@@ -25,13 +25,13 @@ def scenes(
 ) -> None:
     """Render the demo scenario: mining captures, single-frame captures and truth files beside them.
 
-    The config's [scenes] table picks the item-class family, the share of tumbled instances and the share
-    of captures with active-stereo depth."""
+    The config's [scenes] table picks the item-class family (and which of its classes are never mined), the share
+    of tumbled instances and the share of captures with active-stereo depth."""
     sc = config_from(config)["scenes"]
     progress = reporter("scenes", quiet, verbose)
     summary = generate_scenario(out, n_mining=captures, n_single=single, frames=frames, width=width,
                                 height=height, seed=seed, family=sc["family"],
                                 tumbled_fraction=sc["tumbled_fraction"], touching=sc["touching"],
-                                stereo_fraction=sc["stereo_fraction"], progress=progress)
+                                stereo_fraction=sc["stereo_fraction"], progress=progress, held_out=held_out_setting(sc))
     typer.echo(f"rendered {summary['objects']} objects in {len(summary['mining'])} mining + {len(summary['single'])} "
                f"single captures ({summary['render_seconds_per_frame']:.2f} s per frame) into {out}")

@@ -67,13 +67,16 @@ def demo_intrinsics(width: int, height: int) -> Intrinsics:
 
 def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int = 24, frames: int = 8,
                       width: int = 320, height: int = 240, seed: int = 0, classes: list[str] | None = None,
-                      single_classes: list[str] | None = None, family: str = "tools",
+                      single_classes: list[str] | None = None, family: str = "tools", held_out: list[str] | None = None,
                       tumbled_fraction: float = 0.0, touching: bool = False, stereo_fraction: float = 0.0,
                       progress: Callable[[str], None] | None = None, executor=None) -> dict:
     """Render the demo scenario into ``out_dir`` and write its truth files.  Returns a summary dict.
 
     family: the item-class family (items.toml ``family``) the default class lists come from.
     classes: item classes used in mining captures (default: every class of the family not marked held_out).
+    held_out: the family's classes seen only in single-frame captures (the never-mined classes), instead of those
+    marked held_out in items.toml; the family's other classes are mined (``[scenes] held_out_classes``; ignored when
+    ``classes`` is given).
     single_classes: classes used in single-frame captures (default: every class of the family).
     tumbled_fraction: share of instances dropped on a resting face drawn by its probability (0 = all
     upright, as built; 1 = all dropped).
@@ -98,10 +101,29 @@ def generate_scenario(out_dir: str | Path, *, n_mining: int = 12, n_single: int 
         raise InputError(None, "scenes.family", f"expected one of {families}, got {family!r}")
     by_name = {c.name: c for c in all_classes}
     own = [c for c in all_classes if c.family == family]
+    if held_out is not None and classes is None:
+        names = [c.name for c in own]
+        bad = [n for n in held_out if n not in names]
+        if bad or len(set(held_out)) >= len(names):
+            raise InputError(None, "scenes.held_out_classes", f"expected classes of the {family!r} family {names}, leaving at "
+                             f"least one to mine, got {list(held_out)}")
+        classes = [n for n in names if n not in set(held_out)]
     mining = _pick(by_name, classes, [c.name for c in own if not c.held_out], "classes")
     single = _pick(by_name, single_classes, [c.name for c in own], "single_classes")
     return _generate(Path(out_dir), n_mining, n_single, frames, width, height, seed, mining, single,
                      float(tumbled_fraction), progress, touching, float(stereo_fraction), executor)
+
+
+def held_out_setting(scenes_cfg: dict) -> list[str] | None:
+    """The config's ``[scenes] held_out_classes`` as a list of class names (None when empty: items.toml's marks)."""
+    names = [n.strip() for n in str(scenes_cfg.get("held_out_classes", "")).split(",") if n.strip()]
+    return names or None
+
+
+def scene_params(scenes_cfg: dict) -> dict:
+    """The ``[scenes]`` settings a rendered scenario is recorded with (``demo_params``): an empty
+    ``held_out_classes`` is left out, so scenes rendered before the key existed still match."""
+    return {k: v for k, v in scenes_cfg.items() if not (k == "held_out_classes" and not held_out_setting(scenes_cfg))}
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
