@@ -33,7 +33,9 @@ On a random subsample of at most ``sample_size`` objects:
    matrix (``face_grid``, ``[mine] face_pairs``) the group count alone, whose groups then join each class's
    resting faces while the silhouette keeps rising with the faces' sub-groups (``climb``, ``[mine] k_climb``:
    the group count climbed by the silhouette, ``silhouette_climb``; ``group_min``, ``[mine] k_group_min``:
-   the least size of a counted group, ``group_count``; ``raise_k``, ``[mine] k_raise``: the group count raised
+   the least size of a counted group, ``group_count``; ``count_outlying``, ``[mine] k_count_outlying``: the
+   groups counted over every sampled object, the outlying ones of step 2 too, ``face_group_count``;
+   ``raise_k``, ``[mine] k_raise``: the group count raised
    to the smallest K not significantly worse than the best K by a paired test of the objects' silhouettes,
    ``silhouette_raise``, for classes whose resting-face fragments are too small to form groups).  The silhouette's
    choice is its argmax (the smallest K on ties) or, with ``one_se``, the smallest K whose mean silhouette
