@@ -144,3 +144,25 @@ def test_silhouette_raise_finds_classes_too_small_for_the_group_count():
     sil = {k: silhouette_samples(S, lab, metric="precomputed") for k, lab in parts.items()}
     k = silhouette_raise(sil, start)
     assert k == 8 and adjusted_rand_score(y, parts[k]) == 1.0
+
+
+def test_face_group_count_keeps_a_loose_class_the_outlier_fence_takes():
+    # Points in the plane, Euclidean distances written out (scipy cdist as the reference metric): three tight
+    # classes of 8 and one loose class of 7 whose nearest-neighbour distances lie beyond Tukey's fence (Tukey 1977,
+    # from memory: Q3 + 1.5 IQR) for most of its objects.  Counted without the outlying objects the loose class keeps
+    # too few for a mutual 4-NN group of 5 and K comes out 3; counted over every object it is one more group.
+    from scipy.spatial.distance import cdist
+    from protomine.mine.choosek import face_group_count
+    from protomine.mine.seeding import outlying
+    rng = np.random.default_rng(0)
+    centres = np.array([[0.0, 0.0], [10.0, 0.0], [0.0, 10.0], [10.0, 10.0]])
+    pts = [c + rng.normal(0, 0.1, (8, 2)) for c in centres[:3]] + [centres[3] + rng.normal(0, 1.0, (7, 2))]
+    S = cdist(np.concatenate(pts), np.concatenate(pts))
+    out = outlying(S)
+    assert out[24:].sum() >= 3 and not out[:24].any()
+    assert face_group_count(S, ~out, None, False) == 3
+    assert face_group_count(S, ~out, None, True) == 4
+    # the fence still rules the objects kept for the silhouettes; a lone far object is never a group of its own
+    lone = np.concatenate([np.concatenate(pts[:3]), [[50.0, 50.0]]])
+    S2 = cdist(lone, lone)
+    assert face_group_count(S2, ~outlying(S2), None, True) == 3

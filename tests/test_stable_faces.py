@@ -99,9 +99,12 @@ def test_choose_k_on_the_stable_face_matrix_joins_each_class_across_its_faces():
     src = ArraySource(X, W, np.array(aspect))
     k_faces, _ = choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect))
     assert k_faces == 2
-    # the defaults' K rule ([mine] k_group_min = 4, k_climb) keeps the two classes: the faces do not split off
+    # the small-store rule (k_group_min = 4, k_climb) and today's default (groups of 5 counted over every object,
+    # outlying ones too) keep the two classes as well: the faces do not split off
     assert choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect),
                     group_min=4, climb=True)[0] == 2
+    assert choose_k(src, max_k=6, scales=(1.0,), random_state=0, face_grid=grid, aspect=np.array(aspect),
+                    group_min=5, count_outlying=True)[0] == 2
     assert choose_k(src, max_k=6, scales=(1.0,), random_state=0)[0] > 2  # yaw and scale only: split by face
 
 

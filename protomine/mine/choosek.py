@@ -33,7 +33,9 @@ On a random subsample of at most ``sample_size`` objects:
    matrix (``face_grid``, ``[mine] face_pairs``) the group count alone, whose groups then join each class's
    resting faces while the silhouette keeps rising with the faces' sub-groups (``climb``, ``[mine] k_climb``:
    the group count climbed by the silhouette, ``silhouette_climb``; ``group_min``, ``[mine] k_group_min``:
-   the least size of a counted group, ``group_count``; ``raise_k``, ``[mine] k_raise``: the group count raised
+   the least size of a counted group, ``group_count``; ``count_outlying``, ``[mine] k_count_outlying``: the
+   groups counted over every sampled object, the outlying ones of step 2 too, ``face_group_count``;
+   ``raise_k``, ``[mine] k_raise``: the group count raised
    to the smallest K not significantly worse than the best K by a paired test of the objects' silhouettes,
    ``silhouette_raise``, for classes whose resting-face fragments are too small to form groups).  The silhouette's
    choice is its argmax (the smallest K on ties) or, with ``one_se``, the smallest K whose mean silhouette
@@ -59,6 +61,7 @@ Public API
   silhouette_se, knn_components, medoid_cost, outlying}; ``distance(X, W, P, V) -> (n, k)`` is the pose-minimised distance (default: the yaw x
   scale search of :mod:`posesearch`).
 - ``knn_components(S, neighbours=3, *, mutual=False, min_size=None) -> int``; ``group_count(S, group_min=None) -> int``;
+  ``face_group_count(S, keep, group_min=None, count_outlying=False) -> int``;
   ``silhouette_climb(table, start) -> k``; ``silhouette_raise(silhouettes, start, z=RAISE_Z) -> k``
 - ``merge_close_prototypes(model, source, *, merge_threshold=0.5) -> (model, merges)``
 - ``fit_auto(source, *, max_k, scales=(1.0,), random_state=None, merge_threshold=0.5, one_se=False, group_min=None,
@@ -87,7 +90,7 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
              min_k: int = 2, sample_size: int = 600, chunk_size: int = 2048, progress=None,
              distance: DistanceFn | None = None, one_se: bool = False, face_grid=None,
              aspect: np.ndarray | None = None, group_min: int | None = None,
-             climb: bool = False, raise_k: bool = False) -> tuple[int, list[dict]]:
+             climb: bool = False, raise_k: bool = False, count_outlying: bool = False) -> tuple[int, list[dict]]:
     """Number of prototypes by mean silhouette of k-medoids partitions of pose-minimised distances
     (module docstring).  ``progress`` (:mod:`protomine.progress`) gets a bar over the distance matrix's rows.
     ``face_grid`` (a ``tilts.TiltGrid``) with the objects' ``aspect`` (N,) and no ``distance``: the matrix searches
@@ -106,7 +109,7 @@ def choose_k(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
     rng = np.random.default_rng(random_state)
     return _choose_k(source, max_k=max_k, scales=scales, rng=rng, min_k=min_k, sample_size=sample_size,
                      chunk_size=chunk_size, progress=progress, distance=distance, one_se=one_se, face_grid=face_grid,
-                     aspect=aspect, group_min=group_min, climb=climb, raise_k=raise_k)
+                     aspect=aspect, group_min=group_min, climb=climb, raise_k=raise_k, count_outlying=count_outlying)
 
 
 def knn_components(S: np.ndarray, neighbours: int = KNN_NEIGHBOURS, *, mutual: bool = False,
@@ -144,6 +147,18 @@ def group_count(S: np.ndarray, group_min: int | None = None) -> int:
     default demo's stores (78 objects, tumbled and upright) and on mirror-pair scenes the count is the same
     either way."""
     return knn_components(S, MUTUAL_NEIGHBOURS, mutual=True, min_size=group_min)
+
+
+def face_group_count(S: np.ndarray, keep: np.ndarray, group_min: int | None = None, count_outlying: bool = False) -> int:
+    """The K scan's group count on the stable-face matrix S (n, n) of the sampled objects: :func:`group_count` over the
+    objects ``keep`` (n,) (those not outlying, ``seeding.outlying``), or with ``count_outlying`` (``[mine]
+    k_count_outlying``) over all of them.
+
+    Why count the outlying ones: the fence is for the silhouettes (an outlier would be a singleton cluster of
+    silhouette 0 that lifts the others'); a group needs mutual nearest neighbours, which a lone far object does not
+    have, but a class whose objects fit one another loosely loses most of its objects to the fence and keeps too few
+    for a group: the upright demo seed 0's jugs, 6 of 10 outlying, 4 left (README "Choosing K on other classes")."""
+    return group_count(S if count_outlying else S[np.ix_(keep, keep)], group_min)
 
 
 def silhouette_climb(table: list[dict], start: int) -> int:
@@ -214,7 +229,8 @@ def silhouette_raise(silhouettes: dict[int, np.ndarray], start: int, z: float = 
 
 
 def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_size, progress=None, distance=None,
-              one_se=False, face_grid=None, aspect=None, group_min=None, climb=False, raise_k=False):
+              one_se=False, face_grid=None, aspect=None, group_min=None, climb=False, raise_k=False,
+              count_outlying=False):
     N = len(source)
     idx = np.sort(rng.choice(N, size=min(N, sample_size), replace=False))
     distance_is_faces = face_grid is not None and distance is None
@@ -223,9 +239,11 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
     Xs, Ws = _gather(source, idx, chunk_size)
     S = pairwise_pose_distances(Xs, Ws, distance, scales=scales, progress=progress, what="choose K")
     out = outlying(S)
-    if len(S) - out.sum() >= min_k + 2:
-        S = S[np.ix_(~out, ~out)]
-    components = group_count(S, group_min if distance_is_faces else None)  # group_min: measured there only
+    keep = ~out if len(S) - out.sum() >= min_k + 2 else np.ones(len(S), bool)
+    # group_min and count_outlying: measured on the stable-face matrix only
+    components = (face_group_count(S, keep, group_min, count_outlying) if distance_is_faces
+                  else group_count(S[np.ix_(keep, keep)]))
+    S = S[np.ix_(keep, keep)]
     table, silhouettes = [], {}
     for k in range(min_k, min(max_k, len(S) - 1) + 1):
         labels, cost = best_kmedoids(S, k, rng)
@@ -290,7 +308,7 @@ def merge_close_prototypes(model: PoseKMeans, source: Source, *, merge_threshold
 
 def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), random_state: int | None = None,
              merge_threshold: float = 0.5, sample_size: int = 600, one_se: bool = False,
-             group_min: int | None = None, climb: bool = False, raise_k: bool = False,
+             group_min: int | None = None, climb: bool = False, raise_k: bool = False, count_outlying: bool = False,
              **engine_kwargs) -> tuple[PoseKMeans, dict]:
     """Choose K (``one_se``: see ``choose_k``), fit on all objects, merge same-shape prototypes.  Returns (model, info)."""
     rng = np.random.default_rng(random_state)
@@ -299,7 +317,7 @@ def fit_auto(source: Source, *, max_k: int, scales: Sequence[float] = (1.0,), ra
     k, table = choose_k(source, max_k=max_k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                         sample_size=sample_size, progress=engine_kwargs.get("progress"), one_se=one_se,
                         face_grid=grid if faces else None, aspect=_source_aspect(source) if faces else None,
-                        group_min=group_min, climb=climb, raise_k=raise_k)
+                        group_min=group_min, climb=climb, raise_k=raise_k, count_outlying=count_outlying)
     model = PoseKMeans(n_clusters=k, scales=scales, random_state=int(rng.integers(2**31 - 1)),
                        **engine_kwargs).fit(source)
     model, merges = merge_close_prototypes(model, source, merge_threshold=merge_threshold)

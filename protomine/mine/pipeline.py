@@ -157,6 +157,7 @@ def fit_engine(store: ObjectStore, cfg: dict, seed: int, n_clusters: int | None,
             progress(f"choosing K in 2..{min(m['max_clusters'], len(store) - 1)} on pose-minimised distances")
         model, table = fit_auto(src, max_k=min(m["max_clusters"], len(store) - 1), merge_threshold=m["merge_threshold"],
                                 one_se=bool(m.get("k_one_se", False)), group_min=k_group_min(cfg),
+                                count_outlying=bool(m.get("k_count_outlying", False)),
                                 climb=bool(m.get("k_climb", False)), raise_k=bool(m.get("k_raise", False)),
                                 symmetry_factor=m["symmetry_factor"], symmetry_tol=m["symmetry_tol"], **common)
         return model, table
