@@ -11,7 +11,6 @@ one of the truth and exactly right.  Not a test: a few seconds per store (the ma
 """
 from __future__ import annotations
 
-import csv
 import sys
 import warnings
 from pathlib import Path
@@ -23,6 +22,7 @@ from protomine.config import load_config
 from protomine.ingest.sharded import open_store
 from protomine.mine.choosek import face_group_count, group_count
 from protomine.mine.engine import _gather
+from protomine.mine.evaluate import read_truth_table
 from protomine.mine.pipeline import clustering_config, store_aspect, tilt_grid
 from protomine.mine.seeding import FaceDistance, outlying, pairwise_pose_distances
 
@@ -37,9 +37,8 @@ def face_matrix(demo: Path) -> tuple[np.ndarray, np.ndarray]:
     scales = tuple(cfg["mine"]["scales"])
     x, w = _gather(store.source(cfg), np.arange(len(store)), 2048)
     S = pairwise_pose_distances(x, w, FaceDistance(store_aspect(store, cfg), scales, tilt_grid(cfg)), scales=scales)
-    with open(demo / "scenes" / "truth_full.csv", newline="") as fh:
-        truth = {r["object"]: r["class"] for r in csv.DictReader(fh)}
-    lab = np.array([truth.get(o, "?") for o in store.ids])
+    truth = read_truth_table(demo / "scenes" / "truth_full.csv")
+    lab = np.array([truth[o]["label"] if o in truth else "?" for o in store.ids])
     np.savez(cache, S=S, lab=lab)
     return S, lab
 

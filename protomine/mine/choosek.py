@@ -240,10 +240,10 @@ def _choose_k(source: Source, *, max_k, scales, rng, min_k, sample_size, chunk_s
     S = pairwise_pose_distances(Xs, Ws, distance, scales=scales, progress=progress, what="choose K")
     out = outlying(S)
     keep = ~out if len(S) - out.sum() >= min_k + 2 else np.ones(len(S), bool)
+    kept = S[np.ix_(keep, keep)]
     # group_min and count_outlying: measured on the stable-face matrix only
-    components = (face_group_count(S, keep, group_min, count_outlying) if distance_is_faces
-                  else group_count(S[np.ix_(keep, keep)]))
-    S = S[np.ix_(keep, keep)]
+    components = face_group_count(S, keep, group_min, count_outlying) if distance_is_faces else group_count(kept)
+    S = kept
     table, silhouettes = [], {}
     for k in range(min_k, min(max_k, len(S) - 1) + 1):
         labels, cost = best_kmedoids(S, k, rng)
