@@ -94,3 +94,23 @@ def test_own_out_leaves_a_cluster_recorded_at_its_true_poses():
                                  np.array([float(np.mean(a))]), SCALES, grid, chunk_size=8, bank=None)
     assert not moved.any(), moved
     np.testing.assert_array_equal(R, true)
+
+
+def test_screen_keeps_the_move_and_searches_the_member_that_needs_it(monkeypatch):
+    # the screen (engine.own_out_screen: a member searched without its share only when, against the whole prototype,
+    # another up is within OWN_OUT_SCREEN x its own) asked of this five-member cluster: the upside-down member is the
+    # one candidate (against the whole prototype its true up is already near; the upright four fit their own up far
+    # better than any other), and the screened polish makes the same move to the same rotation as the unscreened one
+    X, W, a, P, V, grid, true = _cluster()
+    start = np.stack([np.eye(3)] * len(X))
+    asp = np.array([float(np.mean(a))])
+    bank = engine.TiltBank(P, V, asp, SCALES, grid)
+    near = engine.own_out_screen(np.asarray(X, np.float32), np.asarray(W, np.float32), start, bank, SCALES, grid)
+    assert near.tolist() == [False] * 4 + [True], near
+    runs = []
+    for screen_min in (len(X) + 1, 2):      # unscreened (the cluster below the minimum), then screened
+        monkeypatch.setattr(engine, "OWN_OUT_SCREEN_MIN", screen_min)
+        runs.append(_polished_own_out(ArraySource(X, W, a), np.zeros(len(X), np.int64), start, P, V, asp, SCALES, grid,
+                                      chunk_size=2, bank=None))
+    np.testing.assert_array_equal(runs[0][1], runs[1][1])
+    np.testing.assert_allclose(runs[0][0], runs[1][0], atol=1e-12)

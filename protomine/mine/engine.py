@@ -1201,6 +1201,28 @@ def own_out_choice(x: np.ndarray, w: np.ndarray, R0: np.ndarray, aligned: tuple[
     return d_own, d, u, y
 
 
+def own_out_screen(x: np.ndarray, w: np.ndarray, R: np.ndarray, bank: TiltBank, scales: tuple[float, ...],
+                   grid: TiltGrid) -> np.ndarray:
+    """Which members x (n, C, R, A, H), w (n, R, A, H) at rotations R (n, 3, 3) :func:`own_out_choice` should search
+    (n,) bool: against the whole prototype (``bank``, its one prototype), each member's best pose onto another up
+    (:func:`_turned_away`) over the grid's finest level and +z is within ``OWN_OUT_SCREEN`` x its distance at its own up
+    (both resampled copies: one footing).  A member with no other pose there is not searched."""
+    from .posesearch import pose_distances
+    fine = grid.dirs[grid.level(len(grid.nsides) - 1)]
+    dirs = np.concatenate([np.array([[0.0, 0.0, 1.0]]), fine])
+    pc, vc = bank.copies_at(0, dirs)
+    D = pose_distances(x, w, pc, vc, scales=scales).D
+    out = np.zeros(len(x), bool)
+    for i in range(len(x)):
+        far = _turned_away(dirs, R[i]) & np.isfinite(D[i])
+        if not far.any():
+            continue
+        po, vo = bank.copies_at(0, np.asarray(R[i])[2][None])
+        d_own = float(pose_distances(x[i:i + 1], w[i:i + 1], po, vo, scales=scales).D[0, 0])
+        out[i] = not np.isfinite(d_own) or float(np.min(D[i][far])) < OWN_OUT_SCREEN * d_own
+    return out
+
+
 OWN_OUT_MARGIN = 0.05  # pose_polish_own_out: a member moves when the best pose onto another up is this share below its
 # own pose's distance (both against its prototype without it).  Run post hoc from the circle_support libraries' final
 # poses (all-stereo seed 1, default seed 1, touching seed 1; members above / below 20 deg of rotation error): 0.02 moved
@@ -1208,6 +1230,15 @@ OWN_OUT_MARGIN = 0.05  # pose_polish_own_out: a member moves when the best pose 
 # with 0.05 (the polish starting from the fit's poses) the three lose 5, 5 and 3 turned-over members (README)
 OWN_OUT_ROUNDS = 3  # pose_polish_own_out: rounds of (the prototype rebuilt from its members at their poses, every member
 # decided against it without itself, the moves made together); stops early when none moves
+OWN_OUT_SCREEN = 1.5  # pose_polish_own_out: a member of a cluster of at least OWN_OUT_SCREEN_MIN is searched without its own
+# share only when, against the whole prototype (on the same footing: resampled copies at its own up and at the finest
+# level), its best pose onto another up is within this many times its own pose's distance.  Leaving one member of n out
+# raises its own pose's distance by its pull on the prototype (15-25% measured in clusters of ten, README "Members' poses
+# decided without their own pull") and the move needs the other pose 5% below that: a member screened out would need a
+# pull above 1.5 x 0.95 - 1 = 43%.  Its cost is then one batched search of the cluster against the shared copies
+# instead of one left-out prototype's copies per member.  inf: every member searched (the unscreened rule)
+OWN_OUT_SCREEN_MIN = 8  # pose_polish_own_out: clusters with fewer members are not screened (one member's pull on a small
+# cluster is large: half of a cluster of two)
 
 
 def _polished_own_out(source: Source, labels: np.ndarray, rotation: np.ndarray, P: np.ndarray, V: np.ndarray,
@@ -1238,10 +1269,16 @@ def _polished_own_out(source: Source, labels: np.ndarray, rotation: np.ndarray, 
             Pk, Vk = weighted_means(num[None], den[None], np.array([rows.size]))
             ref = (Pk[0], Vk[0])
             new = {}
+            screened = rows.size >= OWN_OUT_SCREEN_MIN and np.isfinite(OWN_OUT_SCREEN)
+            shared = TiltBank(ref[0][None], ref[1][None], np.array([float(aspect[k])]), scales, grid) if screened else None
             for r0 in range(0, rows.size, chunk_size):
                 part = rows[r0:r0 + chunk_size]
                 x, w = _gather(source, part, chunk_size)
+                near = (own_out_screen(np.asarray(x[:len(part)], np.float32), np.asarray(w[:len(part)], np.float32),
+                                       R[part], shared, scales, grid) if screened else np.ones(len(part), bool))
                 for i, r in enumerate(part):
+                    if not near[i]:
+                        continue
                     d_own, d, u, y = own_out_choice(np.asarray(x[i], np.float32), np.asarray(w[i], np.float32), R[r],
                                                     aligned[r], (num, den, rows.size), float(aspect[k]), scales, grid)
                     if np.isfinite(d_own) and d < (1.0 - OWN_OUT_MARGIN) * d_own:
