@@ -1058,6 +1058,12 @@ POLISH_NSIDES = (8, 16)   # pose_polish: the local levels around a tilted member
                           # 3.7 degrees apart)
 
 
+def _polish_dirs(grid: TiltGrid) -> np.ndarray:
+    """The polish's candidate ups (M, 3) in the prototype frame: +z (the prototype itself), then every direction of the
+    grid's finest level."""
+    return np.concatenate([np.array([[0.0, 0.0, 1.0]]), grid.dirs[grid.level(len(grid.nsides) - 1)]])
+
+
 def _polished_rotations(source: Source, labels: np.ndarray, dist: np.ndarray, rotation: np.ndarray, P: np.ndarray,
                         V: np.ndarray, aspect: np.ndarray, scales: tuple[float, ...], grid: TiltGrid, chunk_size: int,
                         bank: TiltBank | None = None, own_out: bool = False) -> tuple[np.ndarray, np.ndarray]:
@@ -1091,8 +1097,7 @@ def _polished_rotations(source: Source, labels: np.ndarray, dist: np.ndarray, ro
     R = np.array(rotation, np.float64, copy=True)
     moved = np.zeros(len(labels), bool)
     bank = bank if bank is not None else TiltBank(P, V, aspect, scales, grid)
-    fine = grid.dirs[grid.level(len(grid.nsides) - 1)]
-    dirs = np.concatenate([np.array([[0.0, 0.0, 1.0]]), fine])
+    dirs = _polish_dirs(grid)
     local = [(rot.up_grid(n), 1.5 * rot.grid_spacing_deg(n)) for n in POLISH_NSIDES]
     for k in range(P.shape[0]):
         rows = np.flatnonzero((labels == k) & np.isfinite(dist))
@@ -1176,8 +1181,7 @@ def own_out_choice(x: np.ndarray, w: np.ndarray, R0: np.ndarray, aligned: tuple[
     and the best pose turning away from R0 (:func:`_turned_away`) over the grid's finest level (and +z),
     refined on ``POLISH_NSIDES`` around it: (d_own, d, up, yaw); d = inf when no such pose."""
     from .posesearch import pose_distances
-    fine = grid.dirs[grid.level(len(grid.nsides) - 1)]
-    dirs = np.concatenate([np.array([[0.0, 0.0, 1.0]]), fine])
+    dirs = _polish_dirs(grid)
     p2, v2 = left_out(sums[0], sums[1], sums[2], *aligned)
     own = TiltBank(p2[None], v2[None], np.array([aspect]), scales, grid)
     x1, w1 = x[None], w[None]
@@ -1208,17 +1212,16 @@ def own_out_screen(x: np.ndarray, w: np.ndarray, R: np.ndarray, bank: TiltBank, 
     (:func:`_turned_away`) over the grid's finest level and +z is within ``OWN_OUT_SCREEN`` x its distance at its own up
     (both resampled copies: one footing).  A member with no other pose there is not searched."""
     from .posesearch import pose_distances
-    fine = grid.dirs[grid.level(len(grid.nsides) - 1)]
-    dirs = np.concatenate([np.array([[0.0, 0.0, 1.0]]), fine])
+    dirs = _polish_dirs(grid)
     pc, vc = bank.copies_at(0, dirs)
     D = pose_distances(x, w, pc, vc, scales=scales).D
+    po, vo = bank.copies_at(0, np.asarray(R, np.float64)[:, 2])   # each member's own up, in one resampling
     out = np.zeros(len(x), bool)
     for i in range(len(x)):
         far = _turned_away(dirs, R[i]) & np.isfinite(D[i])
         if not far.any():
             continue
-        po, vo = bank.copies_at(0, np.asarray(R[i])[2][None])
-        d_own = float(pose_distances(x[i:i + 1], w[i:i + 1], po, vo, scales=scales).D[0, 0])
+        d_own = float(pose_distances(x[i:i + 1], w[i:i + 1], po[i:i + 1], vo[i:i + 1], scales=scales).D[0, 0])
         out[i] = not np.isfinite(d_own) or float(np.min(D[i][far])) < OWN_OUT_SCREEN * d_own
     return out
 
@@ -1274,8 +1277,8 @@ def _polished_own_out(source: Source, labels: np.ndarray, rotation: np.ndarray, 
             for r0 in range(0, rows.size, chunk_size):
                 part = rows[r0:r0 + chunk_size]
                 x, w = _gather(source, part, chunk_size)
-                near = (own_out_screen(np.asarray(x[:len(part)], np.float32), np.asarray(w[:len(part)], np.float32),
-                                       R[part], shared, scales, grid) if screened else np.ones(len(part), bool))
+                near = (own_out_screen(np.asarray(x, np.float32), np.asarray(w, np.float32), R[part], shared, scales, grid)
+                        if screened else np.ones(len(part), bool))
                 for i, r in enumerate(part):
                     if not near[i]:
                         continue

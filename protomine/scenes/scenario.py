@@ -123,7 +123,8 @@ def held_out_setting(scenes_cfg: dict) -> list[str] | None:
 def scene_params(scenes_cfg: dict) -> dict:
     """The ``[scenes]`` settings a rendered scenario is recorded with (``demo_params``): an empty
     ``held_out_classes`` is left out, so scenes rendered before the key existed still match."""
-    return {k: v for k, v in scenes_cfg.items() if not (k == "held_out_classes" and not held_out_setting(scenes_cfg))}
+    named = held_out_setting(scenes_cfg) is not None
+    return {k: v for k, v in scenes_cfg.items() if named or k != "held_out_classes"}
 
 
 def _pick(by_name: dict[str, ItemClass], names: list[str] | None, default: list[str], what: str) -> list[ItemClass]:
