@@ -92,10 +92,11 @@ def test_each_stratum_keeps_its_rate_where_the_pooled_cut_does_not():
 def test_store_keeps_whether_a_single_view_cuts_its_object_and_an_older_store_opens(tiny_world, tmp_path):
     """Ingest keeps, per single view, whether it cuts its object off (single/cut, 0 / 1), as the label stage's lifting
     finds it (ingest.truncation.cut_pixels on the frame's depth and the other objects' pixels); a store written before
-    (the dataset removed) opens with single_cut None, and the calibration then makes no split."""
+    (the dataset removed) opens with single_cut None, and the calibration then makes no split, which mining says in
+    one notice naming the store and the key (none for the store that keeps it)."""
     from protomine.config import load_config
     from protomine.ingest.sharded import open_store
-    from protomine.mine.pipeline import mine_store
+    from protomine.mine.pipeline import mine_store, older_store_notices
     st = open_store(tiny_world["store"])
     cut = np.asarray(st.single_cut)
     assert cut.shape == (len(st.single_object),) and set(np.unique(cut)) <= {0, 1}
@@ -108,8 +109,11 @@ def test_store_keeps_whether_a_single_view_cuts_its_object_and_an_older_store_op
     assert np.array_equal(ost.read_single_views(np.arange(2)), st.read_single_views(np.arange(2)))
     cfg = load_config(tiny_world["config"], {"mine": {"view_normalise_calibrate": True, "view_normalise_ratio": True,
                                                       "unknown_cut_split": True}})
-    lib, _ = mine_store(old, tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
+    lib, info = mine_store(old, tmp_path / "library.h5", cfg, seed=0, n_clusters=2)
     assert "unknown_view_ratio_cut" in lib.attrs and "unknown_view_ratio_cut_whole" not in lib.attrs
+    said = [n for n in info["notices"] if "unknown_cut_split" in n]
+    assert len(said) == 1 and str(old) in said[0]
+    assert older_store_notices(st, cfg) == []
 
 
 def test_matcher_takes_each_views_stratum_cut(tiny_world):

@@ -834,6 +834,7 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         notices.append(f"{store.path} was ingested with {diff}; the config asks for other [volume] settings, "
                        "so the store's are used and recorded in the library")
         cfg = {**cfg, "volume": dict(lifted)}
+    notices += older_store_notices(store, cfg)
     say(progress, f"store {store.path.name}: {len(store)} objects, grid {store.grid_shape}")
     model, k_table = fit_engine(store, cfg, seed, n_clusters, progress, executor)
     fitted = np.array(model.prototypes_, copy=True)   # at the clustering's free-space weight
@@ -865,6 +866,22 @@ def mine_store(store_path: str | Path, library_path: str | Path, cfg: dict, *, s
         draw_pictures(None, item, progress)
     return lib, {"K": K, "iterations": int(model.n_iter_), "inertia": float(getattr(model, "inertia_", np.nan)),
                  "k_selection": k_table, "notices": notices, "pictures": drawn}
+
+
+def older_store_notices(store: ObjectStore, cfg: dict) -> list[str]:
+    """One notice per single-view field the config's [mine] keys read that ``store`` lacks, because older code wrote
+    it: ``single/cut`` (``unknown_cut_split``: the library then has one unknown cut, not the split) and
+    ``single/size`` (``label_size_score``: the term stays off).  Mining goes on without them."""
+    m, out = cfg["mine"], []
+    ratio = bool(m.get("view_normalise_ratio", False))
+    if ratio and bool(m.get("unknown_cut_split", False)) and getattr(store, "single_cut", None) is None:
+        out.append(f"{store.path} keeps no record of which single views cut their object off (ingested before it was "
+                   "kept); [mine] unknown_cut_split needs it: the library gets one unknown cut, not the split. "
+                   "Ingest again for the split")
+    if ratio and bool(m.get("label_size_score", False)) and getattr(store, "single_size", None) is None:
+        out.append(f"{store.path} keeps no metric sizes of its single views (ingested before they were kept); "
+                   "[mine] label_size_score needs them: the term stays off. Ingest again for it")
+    return out
 
 
 def _library_of_fit(store: ObjectStore, store_path: str | Path, cfg: dict, seed: int, model, k_table, executor,
