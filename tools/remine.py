@@ -22,19 +22,10 @@ from pathlib import Path
 import numpy as np
 
 from protomine.config import load_config
-from protomine.ingest.sharded import open_store
 from protomine.mine import engine
 from protomine.mine.evaluate import evaluate_mining, mined_pose_errors, read_truth_table
 from protomine.mine.library import read_library
 from protomine.mine.pipeline import mine_store
-
-
-def old_store_fields(store_path: Path) -> list[str]:
-    """The single-view fields the store at ``store_path`` lacks because older code wrote it (``single/cut``: the
-    unknown cut's split, ``[mine] unknown_cut_split``; ``single/size``: ``[mine] label_size_score``)."""
-    st = open_store(store_path)
-    return [name for name, got in (("single/cut", getattr(st, "single_cut", None)),
-                                   ("single/size", getattr(st, "single_size", None))) if got is None]
 
 
 def common_tails(demo: Path, libraries: list[str]) -> None:
@@ -69,12 +60,10 @@ def main(argv: list[str]) -> None:
             over.setdefault("mine", {})[k] = json.loads(v)
     cfg = load_config(None if cfg_name == "-" else cfg_name, overrides=over or None)
     out.mkdir(parents=True, exist_ok=True)
-    stale = old_store_fields(demo / "objects.h5")
-    if stale:
-        print(f"{demo}: note: the store was written before it kept {' and '.join(stale)}; the library mined here "
-              "lacks what those feed (DEVELOPERS.md 'Tests and benchmark'): ingest again to measure today's")
     t = time.time()
-    lib, _ = mine_store(demo / "objects.h5", out / "library.h5", cfg, seed=seed)
+    lib, info = mine_store(demo / "objects.h5", out / "library.h5", cfg, seed=seed)
+    for notice in info["notices"]:   # e.g. a store written before what today's keys read (DEVELOPERS.md)
+        print(f"{demo}: notice: {notice}")
     ev = evaluate_mining(lib, read_truth_table(demo / "scenes" / "truth_full.csv"))
     print(f"{out}: K {lib.n_clusters} purity {ev['purity']:.3f} NMI {ev['nmi']:.3f} yaw p90 {ev['yaw_error_p90_deg']:.1f} "
           f"median {ev['yaw_error_median_deg']:.1f} rotation p90 {ev['rotation_error_p90_deg']:.1f} deg, symmetry "
